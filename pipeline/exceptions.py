@@ -1,0 +1,47 @@
+"""Exception and warning classes of the pipeline.
+
+Bad input raises the built-in ``ValueError``/``TypeError`` (or the subclasses
+below where a caller may want to catch them specifically).  Recoverable
+conditions warn with a subclass of :class:`PipelineWarning` and carry on.
+"""
+
+__all__ = [
+    "ConfigError",
+    "GeometryWarning",
+    "IngestError",
+    "PipelineError",
+    "PipelineWarning",
+    "RunLockedError",
+    "StageError",
+]
+
+
+class PipelineError(Exception):
+    """Base class of the pipeline's own errors."""
+
+
+class ConfigError(PipelineError, ValueError):
+    """A configuration file or override is invalid.
+
+    The message names the file, the key path and, where known, the line.
+    """
+
+
+class IngestError(PipelineError, ValueError):
+    """A raw block cannot be used; the message names the file and the reason."""
+
+
+class StageError(PipelineError):
+    """A stage failed on one stretch; the runner logs it and goes on."""
+
+
+class RunLockedError(PipelineError):
+    """Another live run holds the lock on the output folder."""
+
+
+class PipelineWarning(UserWarning):
+    """Base class of the pipeline's warnings."""
+
+
+class GeometryWarning(PipelineWarning):
+    """The geometry is less accurate than usual (e.g. past the IERS tables)."""

@@ -1,0 +1,1 @@
+"""Pipeline stages: each module holds pure functions over arrays and tables."""
