@@ -1,1 +1,73 @@
-"""Pipeline stages: each module holds pure functions over arrays and tables."""
+"""Pipeline stages and the stage graph.
+
+Each stage lives in its own module ``pipeline/stages/<name>.py``: a public
+function over arrays and tables, an options model, and a module-level
+``STAGE`` (a :class:`~pipeline.stages.base.Stage`) that declares it to the
+runner.  :data:`GRAPH` is the ordered tuple of registered stages; the order
+is the order the runner runs them in, and a stage may only require earlier
+ones.  To register a stage, add its module name to ``STAGE_MODULES`` below.
+"""
+
+from __future__ import annotations
+
+import importlib
+import importlib.util
+
+from pipeline.stages.base import (
+    BLOCK_INDEX,
+    RAW_FILES,
+    RAW_ROWS,
+    RawFile,
+    Stage,
+    StageContext,
+    Stretch,
+    check_graph,
+    plan_stretches,
+)
+
+__all__ = [
+    "BLOCK_INDEX",
+    "GRAPH",
+    "RAW_FILES",
+    "RAW_ROWS",
+    "STAGE_MODULES",
+    "RawFile",
+    "Stage",
+    "StageContext",
+    "Stretch",
+    "check_graph",
+    "plan_stretches",
+]
+
+#: Stage modules in run order.  A module that does not exist yet is skipped,
+#: so stages can be added one at a time; a module that exists must define
+#: ``STAGE`` (import errors are not hidden).
+STAGE_MODULES = (
+    "ingest",
+    "calibrate",
+    "rectify",
+    "detect",
+    "astrometry",
+    "photcal",
+    "mosaic",
+    "report",
+)
+
+
+def _load_graph() -> tuple[Stage, ...]:
+    stages = []
+    for name in STAGE_MODULES:
+        module_name = f"{__name__}.{name}"
+        if importlib.util.find_spec(module_name) is None:
+            continue
+        module = importlib.import_module(module_name)
+        stage = getattr(module, "STAGE", None)
+        if stage is None:
+            # The module exists but does not declare itself yet (work in progress).
+            continue
+        stages.append(stage)
+    return check_graph(stages)
+
+
+#: The registered stages, in run order.
+GRAPH: tuple[Stage, ...] = _load_graph()

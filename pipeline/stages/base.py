@@ -1,0 +1,340 @@
+"""The stage protocol: what a stage declares and what the runner hands it.
+
+A stage is a pure function of in-memory inputs and typed options.  It never
+opens, writes or even names a file; the runner (:mod:`pipeline.runner`) reads
+the inputs, calls the stage and stores what it returns.  A stage is therefore
+callable from Python on arrays and tables, and the runner can run it serially,
+on a process pool or on a dask cluster without the stage knowing.
+
+The calling convention is::
+
+    products = stage.run(inputs=inputs, options=options, context=context)
+
+``inputs``
+    A mapping from each name in ``stage.requires`` to its value:
+
+    * an upstream stage's name -> that stage's products, a ``dict`` from
+      product name to object.  If the upstream stage has the same scope (or is
+      night-scoped), this is its products for the same stretch (or the night).
+      If a night-scoped stage requires a stretch-scoped one, the value is a
+      read-only sequence with one such ``dict`` per stretch, in stretch order,
+      loaded lazily (see ``context.stretches`` for the row ranges);
+    * :data:`RAW_FILES` (night scope) -> a list of :class:`RawFile`, one per
+      raw file of the night, with its header (or the reason it is unreadable);
+    * :data:`RAW_ROWS` (stretch scope) -> a ``float32`` array of shape
+      ``(context.stretch.hi - context.stretch.lo, n_columns_in_file)`` holding
+      night rows ``[lo, hi)`` (the stretch with its overlap margins) as stored
+      in the raw blocks, overscan columns included, BZERO/BSCALE applied.  Axis
+      0 is the scan axis (time, row 0 read first).  Night rows that no block
+      covers (gaps) are NaN.  The runner assembles it from the block index.
+``options``
+    An instance of ``stage.options`` (a pydantic model), validated from the
+    ``stages.<name>`` section of the config.  Its field names mirror the
+    keyword arguments of the stage's public function, so
+    ``my_function(array, **dict(options))`` reads like the YAML section.
+``context``
+    A :class:`StageContext`: site, camera, run settings, the night's name, the
+    stretch being processed and the whole stretch plan.
+
+The return value is a ``dict`` from product name to object.  The runner stores
+``numpy.ndarray`` as FITS images, ``astropy.io.fits`` HDUs/HDU lists as FITS
+(keeping their headers, e.g. a WCS), ``astropy.table.Table``/``QTable`` as
+ECSV, and ``dict``/``list`` of JSON-able values as JSON; it reads them back as
+the same types for downstream stages.
+
+Rows of the night and stretches
+-------------------------------
+Exactly one night-scoped stage of a graph sets ``defines_rows=True`` and
+returns a product named :data:`BLOCK_INDEX`: an astropy ``Table`` with one row
+per usable raw block and at least the columns ``file`` (name relative to the
+night's ``raw_dir``, as in :attr:`RawFile.name`), ``hdu`` (index of the image
+HDU), ``row_start`` (night row index of the block's first row) and ``n_rows``.
+The night has ``max(row_start + n_rows)`` rows; the runner cuts them into
+stretches of ``run.stretch_rows`` rows (:func:`plan_stretches`), each widened
+by ``run.overlap_rows`` on both sides, and assembles :data:`RAW_ROWS` from the
+index.  Per-stretch products cover ``[lo, hi)``, margins included, unless the
+stage says otherwise in its docstring; ``context.stretch.core`` selects the
+stretch's own rows.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any, Literal
+
+from pydantic import BaseModel
+
+if TYPE_CHECKING:
+    from astropy.io.fits import Header
+
+    from pipeline.geometry.instrument import Camera, Site
+
+__all__ = [
+    "BLOCK_INDEX",
+    "BLOCK_INDEX_COLUMNS",
+    "RAW_FILES",
+    "RAW_ROWS",
+    "RawFile",
+    "Stage",
+    "StageContext",
+    "Stretch",
+    "check_graph",
+    "plan_stretches",
+]
+
+#: Pseudo-input (night scope): the night's raw files with their headers.
+RAW_FILES = "raw_files"
+#: Pseudo-input (stretch scope): the stretch's raw rows, margins included.
+RAW_ROWS = "raw_rows"
+#: Name of the product that defines the night's rows (see module docstring).
+BLOCK_INDEX = "block_index"
+#: Columns the block index must have.
+BLOCK_INDEX_COLUMNS = ("file", "hdu", "row_start", "n_rows")
+
+Scope = Literal["night", "stretch"]
+Products = dict[str, Any]
+
+
+@dataclass(frozen=True)
+class Stretch:
+    """A stretch of night rows: the unit of per-stretch work.
+
+    Parameters
+    ----------
+    index : int
+        Position of the stretch in the night, from 0.
+    start, stop : int
+        The stretch's own night rows ``[start, stop)`` (the scan axis).
+    lo, hi : int
+        The rows handed to the stage, ``[lo, hi)``: ``[start, stop)`` widened
+        by the overlap margin on each side and clipped to the night.
+    """
+
+    index: int
+    start: int
+    stop: int
+    lo: int
+    hi: int
+
+    @property
+    def id(self) -> str:
+        """Name of the stretch in the product store, e.g. ``'s0003'``."""
+        return f"s{self.index:04d}"
+
+    @property
+    def core(self) -> slice:
+        """Slice selecting rows ``[start, stop)`` in an array covering ``[lo, hi)``."""
+        return slice(self.start - self.lo, self.stop - self.lo)
+
+    @property
+    def n_rows(self) -> int:
+        """Number of rows handed to the stage, ``hi - lo``."""
+        return self.hi - self.lo
+
+
+def plan_stretches(n_rows: int, stretch_rows: int, overlap_rows: int) -> tuple[Stretch, ...]:
+    """Cut ``n_rows`` night rows into stretches with overlap margins.
+
+    Parameters
+    ----------
+    n_rows : int
+        Number of rows in the night (scan axis).
+    stretch_rows : int
+        Rows per stretch; the last stretch holds the remainder.
+    overlap_rows : int
+        Margin added on each side of a stretch, clipped to ``[0, n_rows)``.
+
+    Returns
+    -------
+    tuple of Stretch
+        In row order; empty when ``n_rows`` is 0.
+
+    Examples
+    --------
+    >>> [(s.start, s.stop, s.lo, s.hi) for s in plan_stretches(10, 4, 1)]
+    [(0, 4, 0, 5), (4, 8, 3, 9), (8, 10, 7, 10)]
+    """
+    if n_rows < 0:
+        raise ValueError(f"n_rows must be >= 0; got {n_rows}.")
+    if stretch_rows < 1:
+        raise ValueError(f"stretch_rows must be >= 1; got {stretch_rows}.")
+    if overlap_rows < 0:
+        raise ValueError(f"overlap_rows must be >= 0; got {overlap_rows}.")
+    stretches = []
+    for index, start in enumerate(range(0, n_rows, stretch_rows)):
+        stop = min(start + stretch_rows, n_rows)
+        lo = max(start - overlap_rows, 0)
+        hi = min(stop + overlap_rows, n_rows)
+        stretches.append(Stretch(index, start, stop, lo, hi))
+    return tuple(stretches)
+
+
+@dataclass(frozen=True)
+class RawFile:
+    """One raw file of the night, as the runner hands it to a stage.
+
+    Parameters
+    ----------
+    name : str
+        Path relative to the night's ``raw_dir`` (POSIX separators).  Use it
+        in the block index ``file`` column; it is not meant to be opened.
+    hdu : int or None
+        Index of the first HDU holding a 2-D image, or None if there is none.
+    header : astropy.io.fits.Header or None
+        Header of that HDU; None if the file could not be read.
+    size : int
+        File size in bytes.
+    error : str or None
+        Why the file could not be read (None if it could).
+    """
+
+    name: str
+    hdu: int | None
+    header: Header | None
+    size: int
+    error: str | None = None
+
+
+@dataclass(frozen=True)
+class StageContext:
+    """What a stage may know about the night besides its inputs and options.
+
+    Parameters
+    ----------
+    site : pipeline.geometry.Site
+    camera : pipeline.geometry.Camera
+    run : pydantic.BaseModel
+        The config's ``run`` section (``stretch_rows``, ``overlap_rows``, ...).
+    night : str
+        The night's name.
+    stretch : Stretch or None
+        The stretch being processed; None for a night-scoped stage.
+    stretches : tuple of Stretch
+        The night's stretch plan (empty before the block index exists).
+    """
+
+    site: Site
+    camera: Camera
+    run: BaseModel
+    night: str
+    stretch: Stretch | None = None
+    stretches: tuple[Stretch, ...] = ()
+
+
+@dataclass(frozen=True)
+class Stage:
+    """Declaration of a pipeline stage.
+
+    Parameters
+    ----------
+    name : str
+        Stage name: its config section ``stages.<name>``, its folder in the
+        product store, its name on the command line.  Lower case, digits and
+        ``_``.
+    run : callable
+        ``run(*, inputs, options, context) -> dict`` (see the module
+        docstring).  Must be importable by reference (a module-level
+        function) so that worker processes can unpickle it.
+    options : type of pydantic.BaseModel
+        Options model; every field has a default so an absent section is
+        valid.  Declare ``model_config = ConfigDict(extra='forbid',
+        frozen=True)`` so misspelled keys are errors.
+    requires : tuple of str
+        Upstream stage names and/or :data:`RAW_FILES`, :data:`RAW_ROWS`.
+    scope : {'night', 'stretch'}
+        Run once per night or once per stretch.
+    uses : tuple of str
+        Context fields the products depend on, as ``'site'``, ``'camera'``,
+        ``'run'`` or dotted names such as ``'camera.n_columns'``.  They enter
+        the stage's config hash, so changing them marks its products stale.
+    defines_rows : bool
+        This night-scoped stage returns the :data:`BLOCK_INDEX` product.
+    description : str
+        One line for ``zdrift status`` and the docs.
+    """
+
+    name: str
+    run: Callable[..., Mapping[str, Any]]
+    options: type[BaseModel]
+    requires: tuple[str, ...] = ()
+    scope: Scope = "stretch"
+    uses: tuple[str, ...] = ("site", "camera")
+    defines_rows: bool = False
+    description: str = ""
+
+    def __post_init__(self) -> None:
+        if not self.name.isidentifier() or self.name != self.name.lower():
+            raise ValueError(
+                f"Stage name must be a lower-case Python identifier; got {self.name!r}."
+            )
+        if self.scope not in ("night", "stretch"):
+            raise ValueError(
+                f"Stage {self.name!r}: scope must be 'night' or 'stretch'; got {self.scope!r}."
+            )
+        if not (isinstance(self.options, type) and issubclass(self.options, BaseModel)):
+            raise TypeError(
+                f"Stage {self.name!r}: options must be a pydantic BaseModel subclass; "
+                f"got {self.options!r}."
+            )
+        if not callable(self.run):
+            raise TypeError(f"Stage {self.name!r}: run must be callable; got {self.run!r}.")
+        if isinstance(self.requires, str) or isinstance(self.uses, str):
+            raise TypeError(
+                f"Stage {self.name!r}: requires and uses must be tuples of names, "
+                f"not a single string (write ('x',) not 'x')."
+            )
+        if self.defines_rows and self.scope != "night":
+            raise ValueError(f"Stage {self.name!r}: defines_rows needs scope='night'.")
+        if RAW_ROWS in self.requires and self.scope != "stretch":
+            raise ValueError(f"Stage {self.name!r}: {RAW_ROWS!r} needs scope='stretch'.")
+        if RAW_FILES in self.requires and self.scope != "night":
+            raise ValueError(f"Stage {self.name!r}: {RAW_FILES!r} needs scope='night'.")
+
+
+def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
+    """Check that ``graph`` is a usable ordered list of stages.
+
+    Names are unique, every stage requires only earlier stages or the raw
+    pseudo-inputs, at most one stage defines the rows, and it comes before
+    every stretch-scoped stage.
+
+    Returns
+    -------
+    tuple of Stage
+        The graph as a tuple.
+
+    Raises
+    ------
+    ValueError
+        Naming the offending stage and what to change.
+    """
+    graph = tuple(graph)
+    seen: dict[str, Stage] = {}
+    row_stage = None
+    for stage in graph:
+        if not isinstance(stage, Stage):
+            raise TypeError(f"graph entries must be Stage objects; got {stage!r}.")
+        if stage.name in seen:
+            raise ValueError(f"Stage name {stage.name!r} appears twice in the graph.")
+        if stage.name in (RAW_FILES, RAW_ROWS):
+            raise ValueError(f"Stage name {stage.name!r} is reserved for raw inputs.")
+        for need in stage.requires:
+            if need not in seen and need not in (RAW_FILES, RAW_ROWS):
+                raise ValueError(
+                    f"Stage {stage.name!r} requires {need!r}, which is not an earlier "
+                    f"stage; earlier stages: {sorted(seen)}."
+                )
+        if stage.defines_rows:
+            if row_stage is not None:
+                raise ValueError(
+                    f"Stages {row_stage.name!r} and {stage.name!r} both set defines_rows."
+                )
+            row_stage = stage
+        if stage.scope == "stretch" and row_stage is None:
+            raise ValueError(
+                f"Stretch-scoped stage {stage.name!r} comes before any stage with "
+                "defines_rows=True; the runner cannot plan stretches."
+            )
+        seen[stage.name] = stage
+    return graph
