@@ -13,6 +13,7 @@ __all__ = [
     "PipelineWarning",
     "RunLockedError",
     "StageError",
+    "StaleLockWarning",
 ]
 
 
@@ -45,3 +46,7 @@ class PipelineWarning(UserWarning):
 
 class GeometryWarning(PipelineWarning):
     """The geometry is less accurate than usual (e.g. past the IERS tables)."""
+
+
+class StaleLockWarning(PipelineWarning):
+    """A run lock left by a dead process was taken over."""
