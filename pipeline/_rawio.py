@@ -1,0 +1,168 @@
+"""Reading the night's raw files for the runner (stages never read files).
+
+Two services back the raw pseudo-inputs of :mod:`pipeline.stages.base`:
+the list of raw files with their headers (``RAW_FILES``) and the rows of one
+stretch assembled from the blocks a block index lists (``RAW_ROWS``).
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+
+from pipeline._store import hash_json
+from pipeline.stages.base import BLOCK_INDEX, BLOCK_INDEX_COLUMNS, RawFile
+
+__all__ = [
+    "block_index_rows",
+    "blocks_fingerprint",
+    "check_block_index",
+    "list_raw_files",
+    "raw_files_fingerprint",
+    "read_raw_files",
+    "read_rows",
+]
+
+
+def list_raw_files(raw_dir: Path, pattern: str) -> list[str]:
+    """Names (relative to ``raw_dir``, POSIX) of the files matching ``pattern``, sorted."""
+    return sorted(p.relative_to(raw_dir).as_posix() for p in raw_dir.glob(pattern) if p.is_file())
+
+
+def _stat_key(raw_dir: Path, name: str) -> list[Any]:
+    try:
+        stat = (raw_dir / name).stat()
+    except OSError:
+        return [name, None, None]
+    return [name, stat.st_size, stat.st_mtime_ns]
+
+
+def raw_files_fingerprint(raw_dir: Path, names: Sequence[str]) -> str:
+    """Hash of the raw files' names, sizes and modification times.
+
+    Content hashing a night of raw data on every check would cost as much as
+    reading it; like ``make``, size and mtime stand for the content.
+    """
+    return hash_json([_stat_key(raw_dir, name) for name in names])
+
+
+def _image_hdu(hdul: fits.HDUList) -> int | None:
+    for index, hdu in enumerate(hdul):
+        if hdu.header.get("NAXIS") == 2 and hdu.is_image:
+            return index
+    return None
+
+
+def read_raw_files(raw_dir: Path, names: Sequence[str]) -> list[RawFile]:
+    """Read the header of the first 2-D image HDU of every raw file.
+
+    A file that cannot be read is returned with ``error`` set, not raised, so
+    the ingest stage can reject it with its reason and go on.
+    """
+    files = []
+    for name in names:
+        path = raw_dir / name
+        size = path.stat().st_size if path.exists() else 0
+        try:
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                with fits.open(path) as hdul:
+                    index = _image_hdu(hdul)
+                    header = hdul[index].header.copy() if index is not None else None
+            problems = "; ".join(str(w.message) for w in caught)
+            error = None if index is not None else "no 2-D image HDU in the file"
+            if problems and error is None:
+                header["COMMENT"] = f"astropy warned on reading: {problems}"[:2000]
+            files.append(RawFile(name, index, header, size, error))
+        except Exception as exc:  # any unreadable file is reported, not fatal
+            files.append(RawFile(name, None, None, size, f"{type(exc).__name__}: {exc}"))
+    return files
+
+
+def check_block_index(index: Any, stage_name: str) -> Table:
+    """Check that a stage's ``block_index`` product has the required columns."""
+    if not isinstance(index, Table):
+        raise TypeError(
+            f"Stage {stage_name!r} must return {BLOCK_INDEX!r} as an astropy Table; "
+            f"got {type(index).__name__}."
+        )
+    missing = [c for c in BLOCK_INDEX_COLUMNS if c not in index.colnames]
+    if missing:
+        raise ValueError(
+            f"Stage {stage_name!r}: {BLOCK_INDEX!r} lacks columns {missing}; it needs "
+            f"{list(BLOCK_INDEX_COLUMNS)}."
+        )
+    return index
+
+
+def block_index_rows(index: Table) -> int:
+    """Number of rows in the night: ``max(row_start + n_rows)`` (0 if no block)."""
+    if len(index) == 0:
+        return 0
+    return int(np.max(np.asarray(index["row_start"]) + np.asarray(index["n_rows"])))
+
+
+def _overlapping(index: Table, lo: int, hi: int) -> list[tuple[str, int, int, int]]:
+    blocks = []
+    for row in index:
+        start, n_rows = int(row["row_start"]), int(row["n_rows"])
+        if start < hi and start + n_rows > lo:
+            blocks.append((str(row["file"]), int(row["hdu"]), start, n_rows))
+    return blocks
+
+
+def blocks_fingerprint(raw_dir: Path, index: Table, lo: int, hi: int) -> str:
+    """Hash of what :func:`read_rows` would read for rows ``[lo, hi)``."""
+    blocks = _overlapping(index, lo, hi)
+    return hash_json(
+        {"rows": [lo, hi], "blocks": [[*_stat_key(raw_dir, b[0]), *b[1:]] for b in blocks]}
+    )
+
+
+def read_rows(raw_dir: Path, index: Table, lo: int, hi: int) -> np.ndarray:
+    """Assemble night rows ``[lo, hi)`` from the raw blocks.
+
+    Parameters
+    ----------
+    raw_dir : pathlib.Path
+        Folder the ``file`` column is relative to.
+    index : astropy.table.Table
+        Block index (columns ``file``, ``hdu``, ``row_start``, ``n_rows``).
+    lo, hi : int
+        Night rows to read (scan axis).
+
+    Returns
+    -------
+    numpy.ndarray of float32, shape (hi - lo, n_columns_in_file)
+        Rows as stored (overscan included), BZERO/BSCALE applied.  Rows no
+        block covers are NaN.  A block's later rows win where blocks overlap.
+    """
+    out = None
+    for name, hdu_index, start, n_rows in _overlapping(index, lo, hi):
+        r0, r1 = max(lo, start), min(hi, start + n_rows)
+        with fits.open(raw_dir / name) as hdul:
+            hdu = hdul[hdu_index]
+            n_columns = int(hdu.header["NAXIS1"])
+            if int(hdu.header["NAXIS2"]) < r1 - start:
+                raise ValueError(
+                    f"Raw file {name!r} has {hdu.header['NAXIS2']} rows but the block index "
+                    f"says {n_rows}; rerun the stage that builds the block index."
+                )
+            rows = np.asarray(hdu.section[r0 - start : r1 - start, :], dtype=np.float32)
+        if out is None:
+            out = np.full((hi - lo, n_columns), np.nan, dtype=np.float32)
+        elif out.shape[1] != n_columns:
+            raise ValueError(
+                f"Raw file {name!r} has {n_columns} columns, other blocks of the stretch "
+                f"have {out.shape[1]}; a stretch cannot mix camera formats."
+            )
+        out[r0 - lo : r1 - lo] = rows
+    if out is None:
+        raise ValueError(f"No raw block covers night rows [{lo}, {hi}).")
+    return out

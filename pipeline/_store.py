@@ -1,0 +1,323 @@
+"""The product store: atomic product files, provenance sidecars, failure records.
+
+Layout: ``<output_dir>/<night>/<stage>/<unit>/`` holds one file per product
+(``<product>.fits``, ``.ecsv`` or ``.json``), the provenance sidecar
+``_provenance.json`` and, after a failed attempt, ``_failed.json``.  ``<unit>``
+is a stretch id (``s0003``) or ``night``.
+
+Every file is written to a temporary name in the same folder, flushed to disk
+and renamed over its final name (``os.replace`` is atomic on POSIX and
+Windows), so a reader never sees half a file.  A unit is *done* only when its
+sidecar exists, parses and lists product files that exist with the recorded
+sizes; the sidecar is removed before a unit's products are replaced and
+written after all of them, so a run killed at any point leaves the unit either
+done (old or new) or not done, never half-done.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import os
+import uuid
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import QTable, Table
+
+__all__ = [
+    "FAILED_NAME",
+    "SIDECAR_NAME",
+    "LazyProducts",
+    "atomic_write",
+    "clean_unit",
+    "clear_failure",
+    "hash_json",
+    "output_hash",
+    "read_failure",
+    "read_product",
+    "read_products",
+    "read_sidecar",
+    "write_failure",
+    "write_products",
+    "write_sidecar",
+]
+
+SIDECAR_NAME = "_provenance.json"
+FAILED_NAME = "_failed.json"
+SIDECAR_FORMAT = 1
+_TEMP_MARK = ".tmp-"
+
+
+def hash_json(data: Any) -> str:
+    """SHA-256 (hex) of ``data`` serialised as canonical JSON."""
+    text = json.dumps(data, sort_keys=True, separators=(",", ":"), default=_json_default)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, Path):
+        return str(value)
+    raise TypeError(
+        f"{type(value).__name__} is not JSON-serialisable; return plain numbers, strings, "
+        "lists and dicts in a JSON product, or a Table/array product instead."
+    )
+
+
+def _file_sha256(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as stream:
+        for chunk in iter(lambda: stream.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def atomic_write(path: Path, write: Callable[[Path], None]) -> tuple[str, int]:
+    """Write ``path`` via ``write(temp_path)`` and an atomic rename.
+
+    Returns
+    -------
+    sha256 : str
+        Hex digest of the written file.
+    size : int
+        Its size in bytes.
+    """
+    temp = path.with_name(f".{path.name}{_TEMP_MARK}{os.getpid()}-{uuid.uuid4().hex[:8]}")
+    try:
+        write(temp)
+        with open(temp, "rb+") as stream:
+            os.fsync(stream.fileno())
+        digest, size = _file_sha256(temp), temp.stat().st_size
+        os.replace(temp, path)
+    finally:
+        with contextlib.suppress(FileNotFoundError):
+            temp.unlink()
+    return digest, size
+
+
+def _json_text(data: Any) -> str:
+    return json.dumps(data, sort_keys=True, indent=1, default=_json_default) + "\n"
+
+
+def _write_json_file(path: Path, data: Any) -> tuple[str, int]:
+    text = _json_text(data)
+    return atomic_write(path, lambda temp: temp.write_text(text, encoding="utf-8"))
+
+
+# ------------------------------------------------------------------- product kinds
+
+
+def _product_kind(name: str, value: Any) -> str:
+    if isinstance(value, np.ndarray):
+        if value.ndim == 0:
+            raise TypeError(f"Product {name!r} is a 0-d array; return it in a dict instead.")
+        return "array"
+    if isinstance(value, fits.HDUList):
+        return "hdulist"
+    if isinstance(value, fits.PrimaryHDU | fits.ImageHDU):
+        return "hdu"
+    if isinstance(value, Table):
+        return "table"
+    if isinstance(value, Mapping | list):
+        return "json"
+    raise TypeError(
+        f"Product {name!r} has unsupported type {type(value).__name__}; return a "
+        "numpy array, an astropy.io.fits HDU or HDUList, an astropy Table, or a dict/list."
+    )
+
+
+_SUFFIX = {"array": ".fits", "hdu": ".fits", "hdulist": ".fits", "table": ".ecsv", "json": ".json"}
+
+
+def _with_cards(header: fits.Header, cards: Mapping[str, tuple[Any, str]]) -> fits.Header:
+    header = header.copy()
+    for key, (value, comment) in cards.items():
+        header[key] = (value, comment)
+    return header
+
+
+def _writer(kind: str, value: Any, cards: Mapping[str, tuple[Any, str]]) -> Callable[[Path], None]:
+    if kind == "array":
+        data = value.astype(np.uint8) if value.dtype == bool else value
+        hdu = fits.PrimaryHDU(data=data, header=_with_cards(fits.Header(), cards))
+        return lambda temp: hdu.writeto(temp)
+    if kind == "hdu":
+        hdu = fits.PrimaryHDU(data=value.data, header=_with_cards(value.header, cards))
+        return lambda temp: hdu.writeto(temp, output_verify="fix")
+    if kind == "hdulist":
+        hdul = fits.HDUList([hdu.copy() for hdu in value])
+        hdul[0].header = _with_cards(hdul[0].header, cards)
+        return lambda temp: hdul.writeto(temp, output_verify="fix")
+    if kind == "table":
+        return lambda temp: value.write(temp, format="ascii.ecsv")
+    text = _json_text(value)
+    return lambda temp: temp.write_text(text, encoding="utf-8")
+
+
+def write_products(
+    unit_dir: Path, products: Mapping[str, Any], cards: Mapping[str, tuple[Any, str]]
+) -> dict[str, dict[str, Any]]:
+    """Write each product atomically; return the sidecar's ``products`` entry.
+
+    Parameters
+    ----------
+    unit_dir : pathlib.Path
+        The unit's folder (created if needed).
+    products : mapping of str to object
+        What the stage returned.
+    cards : mapping of str to (value, comment)
+        Provenance keywords added to FITS headers (deterministic values only,
+        so that the same inputs give byte-identical files).
+    """
+    unit_dir.mkdir(parents=True, exist_ok=True)
+    entries = {}
+    for name, value in products.items():
+        if not (isinstance(name, str) and name.isidentifier() and not name.startswith("_")):
+            raise ValueError(
+                f"Product name {name!r} must be an identifier not starting with '_' "
+                "(it becomes a file name)."
+            )
+        kind = _product_kind(name, value)
+        file_name = name + _SUFFIX[kind]
+        digest, size = atomic_write(unit_dir / file_name, _writer(kind, value, cards))
+        entry = {"file": file_name, "kind": kind, "sha256": digest, "size": size}
+        if kind == "array":
+            entry["dtype"] = value.dtype.str
+        elif kind == "hdu":
+            entry["class"] = type(value).__name__
+        elif kind == "table":
+            entry["class"] = "QTable" if isinstance(value, QTable) else "Table"
+        entries[name] = entry
+    return entries
+
+
+def read_product(path: Path, entry: Mapping[str, Any]) -> Any:
+    """Load one product file as the type the stage returned (``entry`` from the sidecar)."""
+    kind = entry["kind"]
+    if kind == "array":
+        with fits.open(path, memmap=False) as hdul:
+            return np.asarray(hdul[0].data, dtype=np.dtype(entry["dtype"]))
+    if kind == "hdu":
+        with fits.open(path, memmap=False) as hdul:
+            cls = fits.ImageHDU if entry.get("class") == "ImageHDU" else fits.PrimaryHDU
+            return cls(data=hdul[0].data, header=hdul[0].header)
+    if kind == "hdulist":
+        with fits.open(path, memmap=False) as hdul:
+            return fits.HDUList([hdu.copy() for hdu in hdul])
+    if kind == "table":
+        cls = QTable if entry.get("class") == "QTable" else Table
+        return cls.read(path, format="ascii.ecsv")
+    return json.loads(path.read_text(encoding="utf-8"))
+
+
+def read_products(unit_dir: Path, sidecar: Mapping[str, Any]) -> dict[str, Any]:
+    """Load every product a valid sidecar lists, as the types the stage returned."""
+    return {
+        name: read_product(unit_dir / entry["file"], entry)
+        for name, entry in sidecar["products"].items()
+    }
+
+
+class LazyProducts(Sequence):
+    """Read-only sequence of per-stretch product dicts, each loaded on access."""
+
+    def __init__(self, units: Sequence[tuple[Path, Mapping[str, Any]]]):
+        self._units = list(units)
+
+    def __len__(self) -> int:
+        return len(self._units)
+
+    def __getitem__(self, index: int | slice) -> Any:
+        if isinstance(index, slice):
+            return [self[i] for i in range(*index.indices(len(self)))]
+        unit_dir, sidecar = self._units[index]
+        return read_products(unit_dir, sidecar)
+
+    def __iter__(self) -> Iterator[dict[str, Any]]:
+        for index in range(len(self)):
+            yield self[index]
+
+
+def output_hash(products: Mapping[str, Mapping[str, Any]]) -> str:
+    """Hash identifying a unit's outputs: over its products' names and digests."""
+    return hash_json({name: entry["sha256"] for name, entry in products.items()})
+
+
+# ------------------------------------------------------------------------- sidecars
+
+
+def read_sidecar(unit_dir: Path) -> dict[str, Any] | None:
+    """The unit's provenance record if the unit is complete, else None.
+
+    Complete means: the sidecar parses, has the current format, and every
+    product file it lists exists with the recorded size.
+    """
+    try:
+        record = json.loads((unit_dir / SIDECAR_NAME).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    if not isinstance(record, dict) or record.get("format") != SIDECAR_FORMAT:
+        return None
+    for entry in record.get("products", {}).values():
+        try:
+            if (unit_dir / entry["file"]).stat().st_size != entry["size"]:
+                return None
+        except (OSError, KeyError, TypeError):
+            return None
+    return record
+
+
+def write_sidecar(unit_dir: Path, record: dict[str, Any]) -> None:
+    """Write the provenance sidecar (last step of a unit) atomically."""
+    _write_json_file(unit_dir / SIDECAR_NAME, {"format": SIDECAR_FORMAT, **record})
+    with contextlib.suppress(OSError):  # make the rename durable where supported
+        fd = os.open(unit_dir, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def clean_unit(unit_dir: Path, keep: Sequence[str] = ()) -> None:
+    """Prepare a unit folder for new products.
+
+    Removes the sidecar first (from now on the unit is not done), then
+    leftover temporary files of killed runs and product files not in ``keep``.
+    """
+    with contextlib.suppress(FileNotFoundError):
+        (unit_dir / SIDECAR_NAME).unlink()
+    if not unit_dir.is_dir():
+        return
+    for path in unit_dir.iterdir():
+        is_temp = path.name.startswith(".") and _TEMP_MARK in path.name
+        is_old_product = not path.name.startswith((".", "_")) and path.name not in keep
+        if path.is_file() and (is_temp or is_old_product):
+            path.unlink()
+
+
+def write_failure(unit_dir: Path, record: dict[str, Any]) -> None:
+    """Record why the last attempt at a unit failed."""
+    unit_dir.mkdir(parents=True, exist_ok=True)
+    _write_json_file(unit_dir / FAILED_NAME, record)
+
+
+def read_failure(unit_dir: Path) -> dict[str, Any] | None:
+    """The failure record of the unit's last attempt, or None."""
+    try:
+        return json.loads((unit_dir / FAILED_NAME).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
+def clear_failure(unit_dir: Path) -> None:
+    """Forget a previous failure (before a new attempt)."""
+    with contextlib.suppress(FileNotFoundError):
+        (unit_dir / FAILED_NAME).unlink()

@@ -1,0 +1,238 @@
+"""One unit of work (a stage on one stretch, or on the night), as a worker runs it.
+
+:func:`execute_unit` is the only function the executors ship to worker
+processes.  It loads the unit's inputs, calls the stage, writes the products
+and then the provenance sidecar, and returns a picklable
+:class:`UnitOutcome`; it never raises for a failing stage (the outcome carries
+the reason and traceback), so one bad stretch cannot stop the others.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime
+import logging
+import os
+import platform
+import socket
+import time
+import traceback
+import warnings
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from astropy.table import Table
+from pydantic import BaseModel
+
+import pipeline
+from pipeline._rawio import check_block_index, read_raw_files, read_rows
+from pipeline._store import (
+    LazyProducts,
+    clean_unit,
+    hash_json,
+    output_hash,
+    read_products,
+    write_products,
+    write_sidecar,
+)
+from pipeline.stages.base import BLOCK_INDEX, Stage, StageContext
+
+__all__ = ["InputSpec", "UnitOutcome", "UnitTask", "execute_unit", "failed_outcome"]
+
+
+@dataclass(frozen=True)
+class InputSpec:
+    """How a worker obtains one input of a unit.
+
+    ``kind`` is ``'unit'`` (one upstream unit: ``units`` has one
+    ``(folder, sidecar)``), ``'units'`` (a night-scoped consumer of a
+    stretch-scoped stage: one entry per stretch), ``'raw_files'`` (``names``
+    below ``raw_dir``) or ``'raw_rows'`` (rows ``[lo, hi)`` via ``index``).
+    """
+
+    name: str
+    kind: str
+    units: tuple[tuple[Path, Mapping[str, Any]], ...] = ()
+    raw_dir: Path | None = None
+    names: tuple[str, ...] = ()
+    index: Table | None = None
+    lo: int = 0
+    hi: int = 0
+
+    def load(self) -> Any:
+        """Read the input from the product store or the raw files."""
+        if self.kind == "unit":
+            unit_dir, sidecar = self.units[0]
+            return read_products(unit_dir, sidecar)
+        if self.kind == "units":
+            return LazyProducts(self.units)
+        if self.kind == "raw_files":
+            return read_raw_files(self.raw_dir, self.names)
+        if self.kind == "raw_rows":
+            return read_rows(self.raw_dir, self.index, self.lo, self.hi)
+        raise ValueError(f"Unknown input kind {self.kind!r}.")
+
+
+@dataclass(frozen=True)
+class UnitTask:
+    """Everything a worker needs to run one unit (picklable)."""
+
+    stage: Stage
+    unit: str
+    unit_dir: Path
+    options: BaseModel
+    context: StageContext
+    inputs: tuple[InputSpec, ...]
+    config: Mapping[str, Any]
+    config_hash: str
+    input_hashes: Mapping[str, str]
+    capture_logs: bool = False
+
+
+@dataclass
+class UnitOutcome:
+    """What came of a unit: success with its output hash, or the failure."""
+
+    stage: str
+    unit: str
+    ok: bool
+    seconds: float = 0.0
+    output_hash: str | None = None
+    error: str | None = None
+    traceback: str | None = None
+    records: list[tuple[str, int, str]] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+
+
+def failed_outcome(task: UnitTask, error: str, tb: str | None = None) -> UnitOutcome:
+    """Outcome for a unit whose worker did not report back (died, lost)."""
+    return UnitOutcome(task.stage.name, task.unit, ok=False, error=error, traceback=tb)
+
+
+class _ListHandler(logging.Handler):
+    def __init__(self) -> None:
+        super().__init__(logging.DEBUG)
+        self.records: list[tuple[str, int, str]] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.records.append((record.name, record.levelno, record.getMessage()))
+
+
+@contextlib.contextmanager
+def _captured_logs(enabled: bool) -> Iterator[list[tuple[str, int, str]]]:
+    """Collect log records in a worker process so the main process can re-emit them."""
+    if not enabled:
+        yield []
+        return
+    root = logging.getLogger()
+    handler, old_level = _ListHandler(), root.level
+    root.addHandler(handler)
+    root.setLevel(logging.DEBUG)
+    try:
+        yield handler.records
+    finally:
+        root.removeHandler(handler)
+        root.setLevel(old_level)
+
+
+def _now() -> str:
+    return datetime.datetime.now(datetime.UTC).isoformat(timespec="milliseconds")
+
+
+def _versions() -> dict[str, str]:
+    import astropy
+    import numpy
+
+    return {
+        "python": platform.python_version(),
+        "numpy": numpy.__version__,
+        "astropy": astropy.__version__,
+    }
+
+
+def _fits_cards(task: UnitTask) -> dict[str, tuple[Any, str]]:
+    cards = {
+        "PIPESTAG": (task.stage.name, "pipeline stage that wrote this file"),
+        "PIPEUNIT": (task.unit, "stretch id or 'night'"),
+        "PIPEVERS": (pipeline.__version__, "zdrift version"),
+        # SHA-256 hex digests fill the card: no room for a comment.
+        "PIPECONF": (task.config_hash, ""),
+        "PIPEINPT": (hash_json(task.input_hashes), ""),
+    }
+    stretch = task.context.stretch
+    if stretch is not None:
+        cards["PIPEROW0"] = (stretch.lo, "first night row in this product")
+        cards["PIPEROW1"] = (stretch.hi, "night row after the last one")
+    return cards
+
+
+def _check_products(task: UnitTask, products: Any) -> dict[str, Any]:
+    if not isinstance(products, Mapping):
+        raise TypeError(
+            f"Stage {task.stage.name!r} returned {type(products).__name__}; a stage must "
+            "return a dict from product name to object."
+        )
+    if task.stage.defines_rows:
+        check_block_index(products.get(BLOCK_INDEX), task.stage.name)
+    return dict(products)
+
+
+def execute_unit(task: UnitTask) -> UnitOutcome:
+    """Run one unit: load inputs, call the stage, write products, then the sidecar."""
+    started, t0 = _now(), time.perf_counter()
+    with _captured_logs(task.capture_logs) as records:
+        try:
+            inputs = {spec.name: spec.load() for spec in task.inputs}
+            t1 = time.perf_counter()
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                products = task.stage.run(inputs=inputs, options=task.options, context=task.context)
+            products = _check_products(task, products)
+            t2 = time.perf_counter()
+            clean_unit(task.unit_dir)
+            entries = write_products(task.unit_dir, products, _fits_cards(task))
+            record = {
+                "stage": task.stage.name,
+                "unit": task.unit,
+                "night": task.context.night,
+                "stretch": None if task.context.stretch is None else vars(task.context.stretch),
+                "config_hash": task.config_hash,
+                "config": task.config,
+                "inputs": dict(task.input_hashes),
+                "products": entries,
+                "output_hash": output_hash(entries),
+                "package_version": pipeline.__version__,
+                "versions": _versions(),
+                "host": socket.gethostname(),
+                "pid": os.getpid(),
+                "started": started,
+                "finished": _now(),
+                "timings": {
+                    "load_s": round(t1 - t0, 4),
+                    "compute_s": round(t2 - t1, 4),
+                    "write_s": round(time.perf_counter() - t2, 4),
+                },
+                "warnings": [f"{w.category.__name__}: {w.message}" for w in caught],
+            }
+            write_sidecar(task.unit_dir, record)
+        except Exception as exc:  # reported to the runner, which logs it and goes on
+            return UnitOutcome(
+                task.stage.name,
+                task.unit,
+                ok=False,
+                seconds=time.perf_counter() - t0,
+                error=f"{type(exc).__name__}: {exc}",
+                traceback=traceback.format_exc(),
+                records=list(records),
+            )
+    return UnitOutcome(
+        task.stage.name,
+        task.unit,
+        ok=True,
+        seconds=time.perf_counter() - t0,
+        output_hash=record["output_hash"],
+        records=list(records),
+        warnings=record["warnings"],
+    )

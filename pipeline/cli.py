@@ -1,0 +1,182 @@
+"""The ``zdrift`` command line.
+
+Thin by design: it parses arguments, loads the config, sets up logging and
+progress display, and calls the library.  Every subcommand takes a config
+file and ``--set dotted.key=value`` overrides.
+
+Exit status: 0 success; 1 a unit failed or was blocked (the summary lists
+them); 2 bad command line or config; 3 another run holds the night's lock.
+
+Examples
+--------
+::
+
+    zdrift config night.yaml                     # print the resolved config
+    zdrift plan night.yaml                       # focal length, scale, line time, smear
+    zdrift simulate night.yaml                   # write a synthetic night of raw blocks
+    zdrift run night.yaml                        # the whole night
+    zdrift run night.yaml --stage calibrate --stretches 0,3-5 --force
+    zdrift run night.yaml --from rectify --set stages.detect.threshold=4
+    zdrift status night.yaml
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import sys
+from collections.abc import Callable, Sequence
+
+import pipeline
+from pipeline._logging import TextProgress, cli_logging
+from pipeline.config import Config, load_config
+from pipeline.exceptions import ConfigError, RunLockedError
+from pipeline.runner import LOG_NAME, night_dir, night_status, parse_stretches, run_night
+
+__all__ = ["main"]
+
+EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_LOCKED = 0, 1, 2, 3
+
+
+def _stretch_list(text: str) -> frozenset[int]:
+    try:
+        return parse_stretches(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="zdrift",
+        description="Reduce drift-scan (TDI) nights from zenith-fixed telescopes.",
+    )
+    parser.add_argument("--version", action="version", version=f"zdrift {pipeline.__version__}")
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def command(name: str, help_text: str) -> argparse.ArgumentParser:
+        sub = commands.add_parser(name, help=help_text, description=help_text)
+        sub.add_argument("config", help="YAML config file of the night")
+        sub.add_argument(
+            "--set",
+            dest="overrides",
+            action="append",
+            default=[],
+            metavar="KEY=VALUE",
+            help="override a config value, e.g. stages.detect.threshold=4 (repeatable)",
+        )
+        sub.add_argument(
+            "-v", "--verbose", action="count", default=0, help="more messages (-vv: debug)"
+        )
+        return sub
+
+    run = command("run", "run the night's stages, skipping up-to-date products")
+    which = run.add_mutually_exclusive_group()
+    which.add_argument("--stage", help="run this stage only")
+    which.add_argument("--from", dest="from_stage", metavar="STAGE", help="first stage to run")
+    run.add_argument("--to", dest="to_stage", metavar="STAGE", help="last stage to run")
+    run.add_argument(
+        "--stretches",
+        type=_stretch_list,
+        metavar="LIST",
+        help="stretch indices for per-stretch stages, e.g. 0,3-5 (default all)",
+    )
+    run.add_argument("--force", action="store_true", help="recompute even up-to-date products")
+    command("status", "show which products exist, which are stale and which failed")
+    command("config", "print the fully resolved config as YAML")
+    command("plan", "print what the site and camera imply (scale, line time, smear)")
+    command("simulate", "write a synthetic night of raw blocks (config section 'simulate')")
+    return parser
+
+
+def _cmd_run(args: argparse.Namespace, config: Config) -> int:
+    if args.stage is not None and args.to_stage is not None:
+        print("zdrift run: --to cannot be combined with --stage", file=sys.stderr)
+        return EXIT_USAGE
+    with cli_logging(args.verbose, night_dir(config) / LOG_NAME):
+        try:
+            report = run_night(
+                config,
+                stage=args.stage,
+                from_stage=args.from_stage,
+                to_stage=args.to_stage,
+                stretches=args.stretches,
+                force=args.force,
+                progress=TextProgress(),
+            )
+        except RunLockedError as exc:
+            print(f"zdrift run: {exc}", file=sys.stderr)
+            return EXIT_LOCKED
+        except ValueError as exc:  # e.g. unknown stage name
+            print(f"zdrift run: {exc}", file=sys.stderr)
+            return EXIT_USAGE
+    print(report.format())
+    if not report.ok:
+        print(f"details: {night_dir(config) / LOG_NAME}", file=sys.stderr)
+    return EXIT_OK if report.ok else EXIT_FAILED
+
+
+def _cmd_status(args: argparse.Namespace, config: Config) -> int:
+    with cli_logging(args.verbose):
+        print(night_status(config).format())
+    return EXIT_OK
+
+
+def _cmd_config(args: argparse.Namespace, config: Config) -> int:
+    print(config.to_yaml(), end="")
+    return EXIT_OK
+
+
+def _cmd_plan(args: argparse.Namespace, config: Config) -> int:
+    from pipeline.geometry.plan import format_plan, summarize_plan
+
+    with cli_logging(args.verbose):
+        print(format_plan(summarize_plan(config.site(), config.camera())))
+    return EXIT_OK
+
+
+def _cmd_simulate(args: argparse.Namespace, config: Config) -> int:
+    if importlib.util.find_spec("pipeline.simulate") is None:
+        print("zdrift simulate: the simulator is not installed yet", file=sys.stderr)
+        return EXIT_USAGE
+    from pipeline import simulate
+
+    entry = getattr(simulate, "simulate_from_config", None)
+    if entry is None:
+        print("zdrift simulate: the simulator has no simulate_from_config yet", file=sys.stderr)
+        return EXIT_USAGE
+    if config.section("simulate") is None:
+        print("zdrift simulate: the config has no 'simulate' section", file=sys.stderr)
+        return EXIT_USAGE
+    with cli_logging(args.verbose):
+        print(entry(config))
+    return EXIT_OK
+
+
+_COMMANDS: dict[str, Callable[[argparse.Namespace, Config], int]] = {
+    "run": _cmd_run,
+    "status": _cmd_status,
+    "config": _cmd_config,
+    "plan": _cmd_plan,
+    "simulate": _cmd_simulate,
+}
+
+
+def main(args: Sequence[str] | None = None) -> int:
+    """Run the ``zdrift`` command line; return the exit status.
+
+    Parameters
+    ----------
+    args : sequence of str, optional
+        Arguments without the program name; default ``sys.argv[1:]``.
+    """
+    parser = _parser()
+    try:
+        options = parser.parse_args(args)
+    except SystemExit as exc:  # --help, --version, usage errors
+        return int(exc.code or 0)
+    try:
+        config = load_config(options.config, options.overrides)
+    except ConfigError as exc:
+        print(f"zdrift {options.command}: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    return _COMMANDS[options.command](options, config)
