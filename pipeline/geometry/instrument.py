@@ -74,8 +74,10 @@ class Camera:
     rotation : float
         Camera rotation in degrees: angle from the local west (drift)
         direction to the detector's +row axis, counter-clockwise on the sky
-        as seen looking up (west towards south).  0 means rows run exactly
-        along the drift.
+        as seen looking up with north at the top (west towards north, i.e.
+        from focal-plane +xi towards +eta).  0 means rows run exactly along
+        the drift; a star then drifts along +row and, for a positive angle,
+        towards decreasing column.  Must lie in (-90, 90).
     tilt_east, tilt_north : float
         Offset of the optical axis from the zenith, in arcseconds, towards the
         east and the north.
