@@ -6,6 +6,7 @@ conditions warn with a subclass of :class:`PipelineWarning` and carry on.
 """
 
 __all__ = [
+    "CalibrationWarning",
     "ConfigError",
     "GeometryWarning",
     "IngestError",
@@ -50,3 +51,7 @@ class GeometryWarning(PipelineWarning):
 
 class StaleLockWarning(PipelineWarning):
     """A run lock left by a dead process was taken over."""
+
+
+class CalibrationWarning(PipelineWarning):
+    """Calibration is less reliable than usual (e.g. too little sky variation)."""

@@ -1,0 +1,342 @@
+"""Raw block headers: keyword names, checks and the parsed :class:`BlockInfo`.
+
+The raw data contract (DESIGN.md section 3) names the keywords a raw block
+must carry.  Real cameras spell them differently or omit some, so every
+keyword is looked up through a map from our canonical name to the camera's
+keyword, and a missing keyword may be replaced by a default from the config.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass
+from typing import Any
+
+from astropy.time import Time
+
+from pipeline.exceptions import IngestError
+
+__all__ = [
+    "KEYWORDS",
+    "BlockInfo",
+    "expected_file_size",
+    "parse_block_header",
+    "parse_section",
+]
+
+#: Canonical name -> (default FITS keyword, type, meaning).
+KEYWORDS: dict[str, tuple[str, type, str]] = {
+    "date_obs": ("DATE-OBS", str, "time the block's first row was shifted out (ISO 8601)"),
+    "line_time": ("LINETIME", float, "seconds between row shifts"),
+    "tdi_rows": ("TDIROWS", int, "detector rows each packet crosses"),
+    "block_seq": ("BLOCKSEQ", int, "sequence number of the block in the night"),
+    "datasec": ("DATASEC", str, "image section '[x1:x2,y1:y2]' (1-based)"),
+    "biassec": ("BIASSEC", str, "serial overscan section '[x1:x2,y1:y2]' (1-based)"),
+    "gain": ("GAIN", float, "e-/ADU"),
+    "read_noise": ("RDNOISE", float, "read noise, e-"),
+    "saturation": ("SATURATE", float, "saturation level, ADU"),
+    "site_lat": ("SITELAT", float, "site latitude, deg north"),
+    "site_long": ("SITELONG", float, "site longitude, deg east"),
+    "site_elev": ("SITEELEV", float, "site height, m"),
+    "filter": ("FILTER", str, "passband name"),
+}
+
+_SECTION = re.compile(r"^\s*\[\s*(\d+)\s*:\s*(\d+)\s*,\s*(\d+)\s*:\s*(\d+)\s*\]\s*$")
+_TIME_SCALES = {"UTC": "utc", "TAI": "tai", "TT": "tt"}
+_BYTES_PER_RECORD = 2880
+
+
+def parse_section(text: str) -> tuple[slice, slice]:
+    """Convert a 1-based FITS section ``'[x1:x2,y1:y2]'`` to numpy slices.
+
+    Parameters
+    ----------
+    text : str
+        Section string, inclusive 1-based ranges, x (NAXIS1, columns) first.
+
+    Returns
+    -------
+    (slice, slice)
+        ``(rows, columns)`` 0-based slices for an array of shape
+        ``(NAXIS2, NAXIS1)``.
+
+    Raises
+    ------
+    ValueError
+        If the text is not a section with ascending ranges.
+
+    Examples
+    --------
+    >>> parse_section("[1:2048,1:4096]")
+    (slice(0, 4096, None), slice(0, 2048, None))
+    """
+    match = _SECTION.match(str(text))
+    if match is None:
+        raise ValueError(f"not a section '[x1:x2,y1:y2]': {text!r}")
+    x1, x2, y1, y2 = (int(g) for g in match.groups())
+    if x1 < 1 or y1 < 1 or x2 < x1 or y2 < y1:
+        raise ValueError(f"section {text!r} must have ascending 1-based ranges")
+    return slice(y1 - 1, y2), slice(x1 - 1, x2)
+
+
+@dataclass(frozen=True)
+class BlockInfo:
+    """What ingest knows about one raw block, from its header.
+
+    Parameters
+    ----------
+    name : str
+        File name as the night lists it.
+    hdu : int
+        Index of the image HDU.
+    n_rows, n_columns : int
+        NAXIS2 (rows, the scan axis) and NAXIS1 (columns incl. overscan).
+    bitpix : int
+        BITPIX of the stored data.
+    date_obs : astropy.time.Time
+        UTC time at which the block's first row was shifted out.
+    line_time : float
+        Seconds between row shifts.
+    tdi_rows : int
+        Detector rows crossed by each packet.
+    block_seq : int
+        Block sequence number.
+    datasec, biassec : str
+        Image and overscan sections, 1-based FITS notation.
+    gain, read_noise, saturation : float
+        e-/ADU, e-, ADU.
+    site_lat, site_long, site_elev : float
+        Degrees, degrees, metres.
+    filter : str
+        Passband name.
+    defaulted : tuple of str
+        Canonical names whose values came from the config defaults.
+    """
+
+    name: str
+    hdu: int
+    n_rows: int
+    n_columns: int
+    bitpix: int
+    date_obs: Time
+    line_time: float
+    tdi_rows: int
+    block_seq: int
+    datasec: str
+    biassec: str
+    gain: float
+    read_noise: float
+    saturation: float
+    site_lat: float
+    site_long: float
+    site_elev: float
+    filter: str
+    defaulted: tuple[str, ...] = ()
+
+    @property
+    def data_slices(self) -> tuple[slice, slice]:
+        """``(rows, columns)`` slices of the image section."""
+        return parse_section(self.datasec)
+
+    @property
+    def bias_slices(self) -> tuple[slice, slice]:
+        """``(rows, columns)`` slices of the overscan section."""
+        return parse_section(self.biassec)
+
+    @property
+    def geometry(self) -> tuple[Any, ...]:
+        """Everything that must stay the same within a run of blocks."""
+        return (self.n_columns, self.datasec, self.biassec, self.tdi_rows, self.filter)
+
+
+def expected_file_size(header_bytes: int, n_rows: int, n_columns: int, bitpix: int) -> int:
+    """Smallest size in bytes a FITS file with this image HDU can have.
+
+    Parameters
+    ----------
+    header_bytes : int
+        Bytes of all headers up to and including the image HDU's.
+    n_rows, n_columns, bitpix : int
+        NAXIS2, NAXIS1 and BITPIX.
+
+    Returns
+    -------
+    int
+        ``header_bytes`` plus the unpadded data size (the FITS standard pads
+        to 2880-byte records, but a writer that omits the final padding still
+        leaves every pixel readable, so the padding is not required here).
+    """
+    return header_bytes + n_rows * n_columns * abs(int(bitpix)) // 8
+
+
+def _header_bytes(header, hdu: int) -> int:
+    """Lower bound of the bytes before the data of HDU ``hdu``."""
+    n_cards = len(header.cards)
+    for position, card in enumerate(header.cards):
+        # The runner appends astropy's reading warnings as COMMENT cards at the
+        # end; they are not in the file.
+        if card.keyword == "COMMENT" and str(card.value).startswith("astropy warned"):
+            n_cards = position
+            break
+    n_bytes = 80 * (n_cards + 1)  # + END
+    return -(-n_bytes // _BYTES_PER_RECORD) * _BYTES_PER_RECORD + _BYTES_PER_RECORD * hdu
+
+
+def _lookup(header, canonical, keywords, defaults, name):
+    keyword = keywords.get(canonical, KEYWORDS[canonical][0])
+    if keyword in header:
+        return header[keyword], False
+    if canonical in defaults:
+        return defaults[canonical], True
+    raise IngestError(
+        f"{name}: missing keyword {keyword} ({KEYWORDS[canonical][2]}); add it to the file "
+        f"or give stages.ingest.defaults.{canonical} in the config."
+    )
+
+
+def _convert(value, canonical, keywords, name):
+    kind = KEYWORDS[canonical][1]
+    keyword = keywords.get(canonical, KEYWORDS[canonical][0])
+    if kind is str:
+        return str(value).strip()
+    not_integer = kind is int and isinstance(value, float) and not value.is_integer()
+    if isinstance(value, bool) or not_integer:
+        raise IngestError(f"{name}: keyword {keyword}={value!r} is not a {kind.__name__}.")
+    try:
+        converted = kind(value)
+    except (TypeError, ValueError):
+        raise IngestError(
+            f"{name}: keyword {keyword}={value!r} is not a {kind.__name__}."
+        ) from None
+    if kind is float and not math.isfinite(converted):
+        raise IngestError(f"{name}: keyword {keyword}={value!r} is not finite.")
+    return converted
+
+
+_POSITIVE = ("line_time", "tdi_rows", "gain", "saturation")
+
+
+def parse_block_header(
+    header,
+    name: str = "<header>",
+    *,
+    hdu: int = 0,
+    size: int | None = None,
+    header_bytes: int | None = None,
+    keywords: dict[str, str] | None = None,
+    defaults: dict[str, Any] | None = None,
+) -> BlockInfo:
+    """Check a raw block's header and return its :class:`BlockInfo`.
+
+    Parameters
+    ----------
+    header : astropy.io.fits.Header
+        Header of the block's image HDU.
+    name : str
+        File name, for messages.
+    hdu : int
+        Index of the image HDU in the file.
+    size : int, optional
+        File size in bytes; if given, a file too short for its data is
+        rejected as truncated.
+    header_bytes : int, optional
+        Bytes before the data; default the padded length of ``header`` plus one
+        2880-byte record per earlier HDU (a lower bound).
+    keywords : dict, optional
+        Canonical name -> the camera's keyword, for names that differ from
+        :data:`KEYWORDS`.
+    defaults : dict, optional
+        Canonical name -> value used when the keyword is missing.
+
+    Returns
+    -------
+    BlockInfo
+
+    Raises
+    ------
+    IngestError
+        One line naming the file and the reason.
+    """
+    keywords = dict(keywords or {})
+    defaults = dict(defaults or {})
+    unknown = sorted((set(keywords) | set(defaults)) - set(KEYWORDS))
+    if unknown:
+        raise ValueError(
+            f"Unknown canonical keyword name(s) {unknown} in keywords/defaults; "
+            f"known: {sorted(KEYWORDS)}."
+        )
+    if header.get("NAXIS") != 2:
+        raise IngestError(f"{name}: image HDU {hdu} has NAXIS={header.get('NAXIS')}, not 2.")
+    n_columns, n_rows = int(header["NAXIS1"]), int(header["NAXIS2"])
+    bitpix = int(header["BITPIX"])
+    if n_rows < 1 or n_columns < 2:
+        raise IngestError(f"{name}: empty image ({n_columns} x {n_rows}).")
+    for comment in header.get("COMMENT", []):
+        if "truncated" in str(comment):
+            raise IngestError(f"{name}: truncated file ({str(comment).strip()}).")
+    if size is not None:
+        if header_bytes is None:
+            header_bytes = _header_bytes(header, hdu)
+        need = expected_file_size(header_bytes, n_rows, n_columns, bitpix)
+        if size < need:
+            raise IngestError(
+                f"{name}: truncated file: {size} bytes, but the header promises at least "
+                f"{need} ({n_columns} x {n_rows} pixels of BITPIX {bitpix})."
+            )
+    values, defaulted = {}, []
+    for canonical in KEYWORDS:
+        raw, was_default = _lookup(header, canonical, keywords, defaults, name)
+        values[canonical] = _convert(raw, canonical, keywords, name)
+        if was_default:
+            defaulted.append(canonical)
+    for canonical in _POSITIVE:
+        if values[canonical] <= 0:
+            raise IngestError(
+                f"{name}: {keywords.get(canonical, KEYWORDS[canonical][0])}="
+                f"{values[canonical]} must be positive."
+            )
+    if values["read_noise"] < 0 or not -90 <= values["site_lat"] <= 90:
+        raise IngestError(
+            f"{name}: RDNOISE={values['read_noise']} or SITELAT={values['site_lat']} out of range."
+        )
+    values["date_obs"] = _parse_time(values["date_obs"], header, name)
+    _check_sections(values["datasec"], values["biassec"], n_rows, n_columns, name)
+    return BlockInfo(
+        name=name,
+        hdu=hdu,
+        n_rows=n_rows,
+        n_columns=n_columns,
+        bitpix=bitpix,
+        defaulted=tuple(defaulted),
+        **values,
+    )
+
+
+def _parse_time(text, header, name):
+    system = str(header.get("TIMESYS", "UTC")).strip().upper()
+    if system not in _TIME_SCALES:
+        raise IngestError(f"{name}: TIMESYS={system!r} is not one of {sorted(_TIME_SCALES)}.")
+    try:
+        return Time(text, format="isot", scale=_TIME_SCALES[system]).utc
+    except ValueError:
+        raise IngestError(f"{name}: DATE-OBS={text!r} is not an ISO 8601 time.") from None
+
+
+def _check_sections(datasec, biassec, n_rows, n_columns, name):
+    try:
+        data_rows, data_cols = parse_section(datasec)
+        bias_rows, bias_cols = parse_section(biassec)
+    except ValueError as exc:
+        raise IngestError(f"{name}: {exc}.") from None
+    for label, rows, cols in (("DATASEC", data_rows, data_cols), ("BIASSEC", bias_rows, bias_cols)):
+        if rows.stop > n_rows or cols.stop > n_columns:
+            raise IngestError(f"{name}: {label} reaches outside the {n_columns} x {n_rows} image.")
+    for label, rows in (("DATASEC", data_rows), ("BIASSEC", bias_rows)):
+        if (rows.start, rows.stop) != (0, n_rows):
+            raise IngestError(
+                f"{name}: {label} rows {rows.start + 1}:{rows.stop} do not cover all "
+                f"{n_rows} rows; a TDI block's image and overscan span every row."
+            )
+    if data_cols.start < bias_cols.stop and bias_cols.start < data_cols.stop:
+        raise IngestError(f"{name}: DATASEC {datasec} and BIASSEC {biassec} overlap.")

@@ -1,0 +1,578 @@
+"""Ingest: check the night's raw blocks and index their rows in time.
+
+Raw blocks are FITS files of consecutive TDI rows (DESIGN.md section 3).
+Ingest reads nothing but headers.  It rejects broken blocks with a one-line
+reason each, orders the good ones by time, maps every row to its readout
+time (DATE-OBS is the time row 0 of a block was shifted out; row ``k`` follows
+at ``DATE-OBS + k * LINETIME``) and checks that consecutive blocks join up.
+
+Night rows
+----------
+Night row ``r`` is counted from row 0 of the first good block, at one row
+per LINETIME, so that the rows of a missing block stay in the night as rows
+no block covers (the runner fills them with NaN and calibrate flags them
+GAP).  A gap therefore never shifts the rows that follow it, and nothing
+bridges it: it also ends a *run*, a maximal sequence of blocks that follow
+each other without gap or overlap and share line time, geometry and filter.
+Problems found on the way (gaps, overlaps, duplicates, settings changed
+mid-night, sequence numbers out of step) are reported, one line each.
+
+Functions
+---------
+:func:`read_block_header` and :func:`read_block_rows` are the file edge (the
+runner's business, also handy from Python); :func:`parse_block_header`,
+:func:`index_night` and :func:`describe_rows` are pure.
+"""
+
+from __future__ import annotations
+
+import logging
+import warnings
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+from pydantic import BaseModel, ConfigDict, Field
+
+from pipeline.exceptions import IngestError
+from pipeline.stages._ingest_header import (
+    KEYWORDS,
+    BlockInfo,
+    parse_block_header,
+    parse_section,
+)
+from pipeline.stages.base import BLOCK_INDEX, RAW_FILES, RawFile, Stage
+
+__all__ = [
+    "KEYWORDS",
+    "STAGE",
+    "BlockInfo",
+    "IngestOptions",
+    "NightIndex",
+    "check_block_data",
+    "describe_rows",
+    "index_night",
+    "ingest_files",
+    "parse_block_header",
+    "parse_section",
+    "read_block_header",
+    "read_block_rows",
+    "split_rows",
+]
+
+log = logging.getLogger(__name__)
+
+
+@dataclass
+class NightIndex:
+    """The night's block index and what went wrong on the way.
+
+    Attributes
+    ----------
+    table : astropy.table.Table
+        One row per usable block in time order, columns:
+        ``file``, ``hdu``, ``row_start`` (night row of the block's first row),
+        ``n_rows``, ``block_seq``, ``date_obs`` (ISO UTC), ``t_start`` (s since
+        ``meta['reference_time']``), ``line_time`` (s), ``tdi_rows``, ``run``
+        (0, 1, ...), ``run_row`` (row of the block's first row counted from its
+        run's first row), ``n_columns``, ``datasec``, ``biassec``, ``gain``,
+        ``read_noise``, ``saturation``, ``filter``.
+    problems : list of str
+        One line per continuity problem (gap, overlap, duplicate, change).
+    rejected : list of str
+        One line per unusable file: ``'<file>: <reason>'``.
+    """
+
+    table: Table
+    problems: list[str] = field(default_factory=list)
+    rejected: list[str] = field(default_factory=list)
+
+    @property
+    def ok(self) -> bool:
+        """True if no file was rejected and no problem was found."""
+        return not self.problems and not self.rejected
+
+    @property
+    def n_runs(self) -> int:
+        """Number of runs (0 for an empty night)."""
+        return int(np.max(self.table["run"])) + 1 if len(self.table) else 0
+
+
+# ----------------------------------------------------------------------------
+# File edge
+
+
+def _image_hdu(hdul: fits.HDUList) -> int | None:
+    for index, hdu in enumerate(hdul):
+        if hdu.is_image and hdu.header.get("NAXIS") == 2:
+            return index
+    return None
+
+
+def read_block_header(
+    path: str | Path,
+    keywords: dict[str, str] | None = None,
+    defaults: dict[str, Any] | None = None,
+) -> BlockInfo:
+    """Read and check the header of one raw block (no pixel is read).
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        The FITS file.
+    keywords, defaults : dict, optional
+        See :func:`parse_block_header`.
+
+    Returns
+    -------
+    BlockInfo
+
+    Raises
+    ------
+    IngestError
+        One line naming the file and the reason: not FITS, no 2-D image,
+        missing or ill-typed keyword, inconsistent sections, truncated.
+    """
+    path = Path(path)
+    try:
+        size = path.stat().st_size
+        with warnings.catch_warnings():
+            # A truncated file makes astropy warn; the size check below reports it.
+            warnings.simplefilter("ignore")
+            with fits.open(path, memmap=False, lazy_load_hdus=True) as hdul:
+                index = _image_hdu(hdul)
+                if index is None:
+                    raise IngestError(f"{path.name}: no 2-D image HDU in the file.")
+                header = hdul[index].header.copy()
+                header_bytes = hdul.fileinfo(index)["datLoc"]
+    except IngestError:
+        raise
+    except Exception as exc:  # anything astropy raises means "not a usable FITS file"
+        raise IngestError(f"{path.name}: not a readable FITS file ({exc}).") from None
+    return parse_block_header(
+        header,
+        path.name,
+        hdu=index,
+        size=size,
+        header_bytes=header_bytes,
+        keywords=keywords,
+        defaults=defaults,
+    )
+
+
+def check_block_data(data: np.ndarray, name: str = "<data>") -> None:
+    """Reject a block whose pixels are all non-finite or all equal.
+
+    Parameters
+    ----------
+    data : ndarray, shape (n_rows, n_columns)
+        The block's pixels (or a sample of its rows).
+    name : str
+        File name, for the message.
+
+    Raises
+    ------
+    IngestError
+        If no pixel is finite (a NaN-filled block) or every pixel has the same
+        value (a zero-filled block or a dead readout).
+    """
+    data = np.asarray(data)
+    finite = np.isfinite(data)
+    if not finite.any():
+        raise IngestError(f"{name}: all {data.size} pixels read are NaN or infinite.")
+    values = data[finite]
+    if values.min() == values.max():
+        raise IngestError(f"{name}: all {values.size} finite pixels read equal {values.min()}.")
+
+
+def read_block_rows(
+    path: str | Path,
+    info: BlockInfo,
+    rows: slice | None = None,
+    *,
+    flip_rows: bool = False,
+    flip_columns: bool = False,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Read rows of a raw block as image and overscan arrays.
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        The FITS file.
+    info : BlockInfo
+        Its header information (:func:`read_block_header`).
+    rows : slice, optional
+        Rows to read, counted in readout order (row 0 read first); default all.
+    flip_rows : bool
+        The file stores the rows last-read first; they are reversed so that
+        row 0 is the first read, the row DATE-OBS refers to.
+    flip_columns : bool
+        Reverse the image columns so that the column index grows to the north.
+
+    Returns
+    -------
+    image : ndarray of float32, shape (n_rows, n_image_columns)
+        Raw ADU (BZERO/BSCALE applied); axis 0 is the scan axis.
+    overscan : ndarray of float32, shape (n_rows, n_overscan_columns)
+
+    Raises
+    ------
+    IngestError
+        If the file cannot be read (e.g. truncated) or holds no usable data.
+    """
+    path = Path(path)
+    start, stop, _ = (rows or slice(None)).indices(info.n_rows)
+    if flip_rows:
+        start, stop = info.n_rows - stop, info.n_rows - start
+    try:
+        # memmap=False: astropy 8 refuses sections of memory-mapped scaled
+        # (BZERO) data; a section still reads only the rows asked for.
+        with fits.open(path, memmap=False) as hdul:
+            block = np.asarray(hdul[info.hdu].section[start:stop, :], dtype=np.float32)
+    except Exception as exc:  # astropy raises various errors on truncated data
+        raise IngestError(f"{path.name}: cannot read rows {start}:{stop} ({exc}).") from None
+    if flip_rows:
+        block = block[::-1]
+    check_block_data(block, path.name)
+    return split_rows(block, info.datasec, info.biassec, flip_columns=flip_columns)
+
+
+def split_rows(
+    raw: np.ndarray, datasec: str, biassec: str, *, flip_columns: bool = False
+) -> tuple[np.ndarray, np.ndarray]:
+    """Split stored rows into image and overscan columns.
+
+    Parameters
+    ----------
+    raw : ndarray, shape (n_rows, NAXIS1)
+        Rows as stored, overscan included; axis 0 is the scan axis.
+    datasec, biassec : str
+        1-based FITS sections; only their column ranges are used.
+    flip_columns : bool
+        Reverse the image columns (and the overscan's, for symmetry).
+
+    Returns
+    -------
+    image, overscan : ndarray of float32
+        Shapes (n_rows, n_image_columns) and (n_rows, n_overscan_columns).
+    """
+    _, data_cols = parse_section(datasec)
+    _, bias_cols = parse_section(biassec)
+    image = np.asarray(raw[:, data_cols], dtype=np.float32)
+    overscan = np.asarray(raw[:, bias_cols], dtype=np.float32)
+    if flip_columns:
+        image, overscan = image[:, ::-1], overscan[:, ::-1]
+    return image, overscan
+
+
+# ----------------------------------------------------------------------------
+# The index
+
+
+def index_night(
+    infos: Iterable[BlockInfo],
+    rejected: Sequence[str] = (),
+    *,
+    tolerance_rows: float = 0.5,
+) -> NightIndex:
+    """Order good blocks by time, give each its night rows and check continuity.
+
+    Parameters
+    ----------
+    infos : iterable of BlockInfo
+        The blocks whose headers passed :func:`parse_block_header`.
+    rejected : sequence of str
+        One-line reasons of the files already rejected; carried into the result.
+    tolerance_rows : float
+        Largest mismatch, in rows, between a block's DATE-OBS and the end of the
+        block before it that still counts as contiguous (clock jitter).
+
+    Returns
+    -------
+    NightIndex
+        The index table, problems and rejected files.
+    """
+    blocks = sorted(infos, key=lambda b: (b.date_obs.jd1, b.date_obs.jd2, b.block_seq, b.name))
+    problems: list[str] = []
+    kept: list[BlockInfo] = []
+    rows: list[dict[str, Any]] = []
+    reference = blocks[0].date_obs if blocks else None
+    run = 0
+    for block in blocks:
+        t_start = float((block.date_obs - reference).sec)
+        if not kept:
+            rows.append(_index_row(block, t_start, 0, run, 0))
+            kept.append(block)
+            continue
+        prev, prev_row = kept[-1], rows[-1]
+        expected = prev_row["t_start"] + prev.n_rows * prev.line_time
+        offset = (t_start - expected) / prev.line_time  # rows; > 0 gap, < 0 overlap
+        if abs(t_start - prev_row["t_start"]) < tolerance_rows * prev.line_time and (
+            block.n_rows == prev.n_rows and block.block_seq == prev.block_seq
+        ):
+            problems.append(
+                f"{block.name}: duplicate of {prev.name} (same DATE-OBS and BLOCKSEQ "
+                f"{block.block_seq}); left out."
+            )
+            continue
+        new_run = _continuity(block, prev, offset, tolerance_rows, problems)
+        run += new_run
+        row_start = prev_row["row_start"] + prev.n_rows + round(offset)
+        run_row = 0 if new_run else prev_row["run_row"] + prev.n_rows
+        rows.append(_index_row(block, t_start, row_start, run, run_row))
+        kept.append(block)
+    table = _index_table(rows)
+    table.meta["reference_time"] = reference.isot if reference is not None else None
+    table.meta["n_rejected"] = len(rejected)
+    table.meta["n_problems"] = len(problems)
+    for line in rejected:
+        log.error("Rejected %s", line)
+    for line in problems:
+        log.warning("%s", line)
+    log.info(
+        "Indexed %d blocks in %d run(s), %d rejected, %d problem(s)",
+        len(table),
+        run + 1 if rows else 0,
+        len(rejected),
+        len(problems),
+    )
+    return NightIndex(table, problems, list(rejected))
+
+
+def _continuity(block, prev, offset, tolerance_rows, problems) -> bool:
+    """Append problems between ``prev`` and ``block``; True if a new run starts."""
+    new_run = False
+    changes = []
+    if not np.isclose(block.line_time, prev.line_time, rtol=1e-9, atol=0):
+        changes.append(f"LINETIME {prev.line_time} -> {block.line_time} s")
+    for label, old, new in (
+        ("TDIROWS", prev.tdi_rows, block.tdi_rows),
+        ("NAXIS1", prev.n_columns, block.n_columns),
+        ("DATASEC", prev.datasec, block.datasec),
+        ("BIASSEC", prev.biassec, block.biassec),
+        ("FILTER", prev.filter, block.filter),
+    ):
+        if old != new:
+            changes.append(f"{label} {old} -> {new}")
+    if changes:
+        problems.append(f"{block.name}: changed mid-night ({'; '.join(changes)}); new run.")
+        new_run = True
+    seq_step = block.block_seq - prev.block_seq
+    if offset > tolerance_rows:
+        missing = offset / block.n_rows
+        problems.append(
+            f"{block.name}: gap of {offset:.1f} rows ({offset * prev.line_time:.2f} s, "
+            f"about {missing:.2f} block(s); BLOCKSEQ {prev.block_seq} -> {block.block_seq}) "
+            f"after {prev.name}; new run."
+        )
+        new_run = True
+    elif offset < -tolerance_rows:
+        problems.append(
+            f"{block.name}: starts {-offset:.1f} rows ({-offset * prev.line_time:.2f} s) "
+            f"before the end of {prev.name} (overlap); its rows win; new run."
+        )
+        new_run = True
+    elif seq_step != 1:
+        problems.append(
+            f"{block.name}: BLOCKSEQ {prev.block_seq} -> {block.block_seq} but the times of "
+            f"{prev.name} and {block.name} join up (clock or numbering error?)."
+        )
+    return new_run
+
+
+def _index_row(block: BlockInfo, t_start, row_start, run, run_row) -> dict[str, Any]:
+    return {
+        "file": block.name,
+        "hdu": block.hdu,
+        "row_start": int(row_start),
+        "n_rows": block.n_rows,
+        "block_seq": block.block_seq,
+        "date_obs": block.date_obs.isot,
+        "t_start": t_start,
+        "line_time": block.line_time,
+        "tdi_rows": block.tdi_rows,
+        "run": run,
+        "run_row": int(run_row),
+        "n_columns": block.n_columns,
+        "datasec": block.datasec,
+        "biassec": block.biassec,
+        "gain": block.gain,
+        "read_noise": block.read_noise,
+        "saturation": block.saturation,
+        "filter": block.filter,
+    }
+
+
+_INDEX_DTYPES = {
+    "file": str,
+    "hdu": np.int32,
+    "row_start": np.int64,
+    "n_rows": np.int64,
+    "block_seq": np.int64,
+    "date_obs": str,
+    "t_start": np.float64,
+    "line_time": np.float64,
+    "tdi_rows": np.int32,
+    "run": np.int32,
+    "run_row": np.int64,
+    "n_columns": np.int32,
+    "datasec": str,
+    "biassec": str,
+    "gain": np.float64,
+    "read_noise": np.float64,
+    "saturation": np.float64,
+    "filter": str,
+}
+
+
+def _index_table(rows: list[dict[str, Any]]) -> Table:
+    columns = {}
+    for name, dtype in _INDEX_DTYPES.items():
+        if dtype is str:
+            columns[name] = np.array([r[name] for r in rows], dtype="U") if rows else []
+        else:
+            columns[name] = np.array([r[name] for r in rows], dtype=dtype)
+    table = Table(columns)
+    for name, dtype in _INDEX_DTYPES.items():
+        if dtype is str and not rows:
+            table[name] = table[name].astype("U1")
+    table["t_start"].unit = "s"
+    table["line_time"].unit = "s"
+    return table
+
+
+def describe_rows(index: Table, lo: int, hi: int) -> dict[str, np.ndarray]:
+    """Per-row facts for night rows ``[lo, hi)`` from the block index.
+
+    Parameters
+    ----------
+    index : astropy.table.Table
+        ``NightIndex.table`` (the ``block_index`` product).
+    lo, hi : int
+        Night rows (scan axis).
+
+    Returns
+    -------
+    dict of ndarray, each of shape (hi - lo,)
+        ``covered`` (bool: some block holds the row), ``time`` (readout time,
+        s since ``index.meta['reference_time']``; NaN where not covered),
+        ``run`` (-1 where not covered), ``run_row`` (row counted from its run's
+        first row), ``night_row``, ``gain``, ``read_noise``, ``saturation``
+        (header values; NaN where not covered), ``tdi_rows`` (0 where not
+        covered).  Where blocks overlap, the later block wins, as when the
+        runner reads the rows.
+    """
+    n = max(int(hi) - int(lo), 0)
+    out = {
+        "covered": np.zeros(n, bool),
+        "time": np.full(n, np.nan),
+        "run": np.full(n, -1, np.int64),
+        "run_row": np.full(n, -1, np.int64),
+        "night_row": np.arange(lo, lo + n, dtype=np.int64),
+        "gain": np.full(n, np.nan),
+        "read_noise": np.full(n, np.nan),
+        "saturation": np.full(n, np.nan),
+        "tdi_rows": np.zeros(n, np.int64),
+    }
+    for block in index:
+        start = int(block["row_start"])
+        r0, r1 = max(lo, start), min(hi, start + int(block["n_rows"]))
+        if r0 >= r1:
+            continue
+        sel = slice(r0 - lo, r1 - lo)
+        k = np.arange(r0 - start, r1 - start)
+        out["covered"][sel] = True
+        out["time"][sel] = float(block["t_start"]) + k * float(block["line_time"])
+        out["run"][sel] = int(block["run"])
+        out["run_row"][sel] = int(block["run_row"]) + k
+        for name in ("gain", "read_noise", "saturation", "tdi_rows"):
+            out[name][sel] = block[name]
+    return out
+
+
+# ----------------------------------------------------------------------------
+# The stage
+
+
+class IngestOptions(BaseModel):
+    """Options of the ingest stage (``stages.ingest`` in the config)."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    keywords: dict[str, str] = Field(
+        default_factory=dict,
+        description="Canonical name -> the camera's FITS keyword, where they differ "
+        f"(canonical names: {', '.join(KEYWORDS)}).",
+    )
+    defaults: dict[str, Any] = Field(
+        default_factory=dict,
+        description="Canonical name -> value to use when the keyword is missing.",
+    )
+    tolerance_rows: float = Field(
+        0.5, ge=0, description="Largest DATE-OBS mismatch, in rows, still contiguous."
+    )
+
+
+def ingest_files(files: Sequence[RawFile], options: IngestOptions) -> NightIndex:
+    """Check the runner's raw files and index the good ones.
+
+    Parameters
+    ----------
+    files : sequence of RawFile
+        The night's raw files with their headers.
+    options : IngestOptions
+
+    Returns
+    -------
+    NightIndex
+    """
+    infos, rejected = [], []
+    for raw in files:
+        if raw.error is not None or raw.header is None:
+            rejected.append(f"{raw.name}: {raw.error or 'no header'}")
+            continue
+        try:
+            infos.append(
+                parse_block_header(
+                    raw.header,
+                    raw.name,
+                    hdu=raw.hdu or 0,
+                    size=raw.size,
+                    keywords=options.keywords,
+                    defaults=options.defaults,
+                )
+            )
+        except IngestError as exc:
+            rejected.append(str(exc))
+    return index_night(infos, rejected, tolerance_rows=options.tolerance_rows)
+
+
+def _run(*, inputs, options: IngestOptions, context) -> dict[str, Any]:
+    night = ingest_files(inputs[RAW_FILES], options)
+    return {
+        BLOCK_INDEX: night.table,
+        "ingest_report": {
+            "ok": night.ok,
+            "n_blocks": len(night.table),
+            "n_runs": night.n_runs,
+            "rejected": night.rejected,
+            "problems": night.problems,
+        },
+    }
+
+
+#: Declaration of the ingest stage for the runner.
+STAGE = Stage(
+    name="ingest",
+    run=_run,
+    options=IngestOptions,
+    requires=(RAW_FILES,),
+    scope="night",
+    uses=(),
+    defines_rows=True,
+    description="Check raw block headers, order blocks in time, index rows and runs.",
+)

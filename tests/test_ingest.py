@@ -1,0 +1,230 @@
+"""Tests of the ingest stage: header checks, the block index and broken input."""
+
+from __future__ import annotations
+
+import re
+import warnings
+
+import astropy.units as u
+import numpy as np
+import pytest
+from astropy.io import fits
+from astropy.time import Time
+
+from pipeline.exceptions import IngestError
+from pipeline.stages.base import RawFile
+from pipeline.stages.ingest import (
+    IngestOptions,
+    check_block_data,
+    describe_rows,
+    index_night,
+    ingest_files,
+    parse_block_header,
+    parse_section,
+    read_block_header,
+    read_block_rows,
+)
+
+N_ROWS, N_IMAGE, N_OVERSCAN = 40, 24, 6
+LINE_TIME = 0.05
+START = Time("2026-03-20T02:00:00", scale="utc")
+
+
+def make_header(seq: int, start: Time = START, **changes) -> fits.Header:
+    """Header of block ``seq`` of a contiguous night (invented demo values)."""
+    shape = (N_ROWS, N_IMAGE + N_OVERSCAN)
+    header = fits.PrimaryHDU(np.zeros(shape, np.uint16)).header
+    header["DATE-OBS"] = (start + seq * N_ROWS * LINE_TIME * u.s).isot
+    header["TIMESYS"] = "UTC"
+    header["LINETIME"] = LINE_TIME
+    header["TDIROWS"] = 16
+    header["BLOCKSEQ"] = seq
+    header["DATASEC"] = f"[1:{N_IMAGE},1:{N_ROWS}]"
+    header["BIASSEC"] = f"[{N_IMAGE + 1}:{N_IMAGE + N_OVERSCAN},1:{N_ROWS}]"
+    header["GAIN"] = 2.0
+    header["RDNOISE"] = 5.0
+    header["SATURATE"] = 65535.0
+    header["SITELAT"] = 31.5
+    header["SITELONG"] = -110.2
+    header["SITEELEV"] = 2400.0
+    header["FILTER"] = "r"
+    for key, value in changes.items():
+        if value is None:
+            del header[key]
+        else:
+            header[key] = value
+    return header
+
+
+def write_block(path, header, data=None):
+    """Write a uint16 block (BZERO-scaled, as a camera would)."""
+    if data is None:
+        rng = np.random.default_rng(header.get("BLOCKSEQ", 0))
+        data = rng.integers(1000, 1100, (N_ROWS, N_IMAGE + N_OVERSCAN)).astype(np.uint16)
+    hdu = fits.PrimaryHDU(data, header=header)
+    hdu.writeto(path, overwrite=True)
+    return path
+
+
+def raw_file(path) -> RawFile:
+    """What the runner hands ingest for one file (header read, errors caught)."""
+    try:
+        with warnings.catch_warnings():
+            # The truncation warning is dropped on purpose: ingest must find the
+            # truncation from the file size alone.
+            warnings.simplefilter("ignore")
+            with fits.open(path) as hdul:
+                return RawFile(path.name, 0, hdul[0].header.copy(), path.stat().st_size)
+    except OSError as exc:
+        return RawFile(path.name, None, None, path.stat().st_size, str(exc))
+
+
+def test_parse_section_matches_fits_convention():
+    # FITS standard: 1-based inclusive ranges, NAXIS1 (x, columns) first.
+    rows, cols = parse_section("[3:10,1:4]")
+    data = np.arange(40 * 12).reshape(40, 12)
+    assert data[rows, cols].shape == (4, 8)
+    assert data[rows, cols][0, 0] == data[0, 2]
+    with pytest.raises(ValueError, match="ascending"):
+        parse_section("[10:3,1:4]")
+    with pytest.raises(ValueError, match="not a section"):
+        parse_section("1:4")
+
+
+def test_header_values_and_keyword_map():
+    header = make_header(0)
+    header.rename_keyword("RDNOISE", "RON")
+    del header["FILTER"]
+    info = parse_block_header(
+        header, "b0.fits", keywords={"read_noise": "RON"}, defaults={"filter": "g"}
+    )
+    assert info.read_noise == 5.0 and info.filter == "g"
+    assert info.defaulted == ("filter",)
+    assert info.n_rows == N_ROWS and info.n_columns == N_IMAGE + N_OVERSCAN
+    assert info.date_obs.scale == "utc"
+
+
+def test_tai_date_obs_is_converted_to_utc():
+    # TAI - UTC = 37 s since 2017 (IERS Bulletin C).
+    header = make_header(0, TIMESYS="TAI")
+    info = parse_block_header(header)
+    as_tai = Time(header["DATE-OBS"], scale="tai")
+    as_utc = Time(header["DATE-OBS"], scale="utc")
+    assert (as_tai - info.date_obs).sec == pytest.approx(0, abs=1e-6)  # same instant
+    assert (info.date_obs - as_utc).sec == pytest.approx(-37, abs=1e-6)  # leap seconds
+
+
+BAD_HEADERS = [
+    ({"LINETIME": None}, "missing keyword LINETIME"),
+    ({"LINETIME": "fast"}, "LINETIME='fast' is not a float"),
+    ({"TDIROWS": 16.5}, "TDIROWS=16.5 is not a int"),
+    ({"GAIN": -1.0}, "GAIN=-1.0 must be positive"),
+    ({"DATE-OBS": "yesterday"}, "not an ISO 8601 time"),
+    ({"DATASEC": "[1:24,1:30]"}, "do not cover all"),
+    ({"BIASSEC": "[20:30,1:40]"}, "overlap"),
+    ({"BIASSEC": "[25:40,1:40]"}, "reaches outside"),
+    ({"TIMESYS": "LOCAL"}, "TIMESYS"),
+]
+
+
+@pytest.mark.parametrize(("changes", "message"), BAD_HEADERS)
+def test_bad_header_is_rejected_in_one_line(changes, message):
+    with pytest.raises(IngestError, match=re.escape(message)) as info:
+        parse_block_header(make_header(0, **changes), "bad.fits")
+    assert str(info.value).startswith("bad.fits: ")
+    assert "\n" not in str(info.value)
+
+
+def test_unknown_canonical_name_is_a_config_error():
+    with pytest.raises(ValueError, match="Unknown canonical keyword"):
+        parse_block_header(make_header(0), keywords={"readnoise": "RON"})
+
+
+def test_read_block_header_and_rows(tmp_path):
+    path = write_block(tmp_path / "b0.fits", make_header(0))
+    info = read_block_header(path)
+    image, overscan = read_block_rows(path, info)
+    with fits.open(path) as hdul:
+        stored = hdul[0].data.astype(np.float32)
+    assert image.dtype == np.float32 and image.shape == (N_ROWS, N_IMAGE)
+    np.testing.assert_array_equal(image, stored[:, :N_IMAGE])
+    np.testing.assert_array_equal(overscan, stored[:, N_IMAGE:])
+    flipped, _ = read_block_rows(path, info, slice(0, 5), flip_rows=True, flip_columns=True)
+    np.testing.assert_array_equal(flipped, stored[::-1, :N_IMAGE][:5, ::-1])
+
+
+def test_truncated_and_non_fits_files_are_rejected(tmp_path):
+    path = write_block(tmp_path / "b0.fits", make_header(0))
+    data = path.read_bytes()
+    short = tmp_path / "short.fits"
+    short.write_bytes(data[: len(data) - 1500])
+    with pytest.raises(IngestError, match=r"short\.fits: truncated file"):
+        read_block_header(short)
+    text = tmp_path / "notes.fits"
+    text.write_text("observing log, not an image\n")
+    with pytest.raises(IngestError, match=r"notes\.fits: not a readable FITS file"):
+        read_block_header(text)
+
+
+def test_nan_filled_data_is_rejected():
+    with pytest.raises(IngestError, match="all 6 pixels read are NaN"):
+        check_block_data(np.full((2, 3), np.nan), "nan.fits")
+    with pytest.raises(IngestError, match=r"equal 0\.0"):
+        check_block_data(np.zeros((2, 3)), "zero.fits")
+    check_block_data(np.array([[1.0, np.nan, 2.0]]))
+
+
+def test_contiguous_night_is_one_run():
+    infos = [parse_block_header(make_header(seq), f"b{seq}.fits") for seq in (2, 0, 1)]
+    night = index_night(infos)
+    assert night.ok and night.n_runs == 1
+    assert list(night.table["file"]) == ["b0.fits", "b1.fits", "b2.fits"]
+    assert list(night.table["row_start"]) == [0, N_ROWS, 2 * N_ROWS]
+    rows = describe_rows(night.table, N_ROWS - 1, N_ROWS + 1)
+    # Row k of a block is read at DATE-OBS + k * LINETIME (DESIGN.md section 3).
+    np.testing.assert_allclose(rows["time"], [(N_ROWS - 1) * LINE_TIME, N_ROWS * LINE_TIME])
+    assert rows["covered"].all()
+
+
+def test_gap_overlap_duplicate_and_change_are_reported():
+    infos = [parse_block_header(make_header(seq), f"b{seq}.fits") for seq in (0, 1, 3)]
+    infos.append(parse_block_header(make_header(1), "b1_copy.fits"))
+    # Block 4 starts 10 rows early: an overlap.
+    early = START + (4 * N_ROWS - 10) * LINE_TIME * u.s
+    infos.append(parse_block_header(make_header(4, **{"DATE-OBS": early.isot}), "b4.fits"))
+    after = early + N_ROWS * LINE_TIME * u.s
+    infos.append(parse_block_header(make_header(5, TDIROWS=32, **{"DATE-OBS": after.isot}), "b5"))
+    night = index_night(infos)
+    text = "\n".join(night.problems)
+    assert "b1_copy.fits: duplicate of b1.fits" in text
+    assert "b3.fits: gap of 40.0 rows" in text
+    assert "b4.fits: starts 10.0 rows" in text and "overlap" in text
+    assert "b5: changed mid-night (TDIROWS 16 -> 32)" in text
+    assert len(night.problems) == 4 and not night.ok
+    # The gap stays in the night rows: block 3 starts where it would have.
+    table = night.table
+    assert int(table["row_start"][table["file"] == "b3.fits"][0]) == 3 * N_ROWS
+    assert list(table["run"]) == [0, 0, 1, 2, 3]
+    rows = describe_rows(table, 2 * N_ROWS - 1, 2 * N_ROWS + 1)
+    assert list(rows["covered"]) == [True, False]
+
+
+def test_broken_night_indexes_every_good_block(tmp_path):
+    """One truncated file, one non-FITS file, one missing keyword and one gap."""
+    paths = [write_block(tmp_path / f"b{seq}.fits", make_header(seq)) for seq in (0, 1, 2, 4, 5)]
+    truncated = tmp_path / "b1.fits"
+    truncated.write_bytes(truncated.read_bytes()[:-2000])
+    write_block(tmp_path / "b2.fits", make_header(2, GAIN=None))
+    (tmp_path / "readme.fits").write_text("not FITS")
+    files = [raw_file(p) for p in [*paths, tmp_path / "readme.fits"]]
+    night = ingest_files(files, IngestOptions())
+    assert list(night.table["file"]) == ["b0.fits", "b4.fits", "b5.fits"]
+    assert len(night.rejected) == 3
+    reasons = "\n".join(night.rejected)
+    assert "b1.fits: truncated file" in reasons
+    assert "b2.fits: missing keyword GAIN" in reasons
+    assert "readme.fits:" in reasons
+    # The truncated and the bad-keyword block leave a gap: blocks 1-3 are absent.
+    assert len(night.problems) == 1 and "b4.fits: gap of 120.0 rows" in night.problems[0]
+    assert list(night.table["run"]) == [0, 1, 1]
+    assert not night.ok
