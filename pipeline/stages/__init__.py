@@ -44,6 +44,8 @@ __all__ = [
 #: ``STAGE`` (import errors are not hidden).
 STAGE_MODULES = (
     "ingest",
+    "column_stats",
+    "columns",
     "calibrate",
     "rectify",
     "detect",

@@ -1,0 +1,398 @@
+"""Per-column response (1-D TDI flat) and additive level, solved from the sky.
+
+Every charge packet crosses a whole column, so a TDI camera's flat field and
+dark current are 1-D, one value per column (CHECK_VALUES 3.8; Gunn et al.,
+"The Flat Fields for SDSS DR2").  Column ``c`` records, in electrons after bias
+subtraction,
+
+    B_c(t) = g_c * S(t) + d_c
+
+for a sky level ``S(t)`` that changes along the night.  Regressing each
+column's source-free background on the sky level therefore gives the column's
+response ``g_c`` (slope) and additive level ``d_c`` (intercept).
+
+The solve has two passes so that memory stays flat for any night length:
+
+* :func:`summarize_columns` (per stretch): clipped mean and scatter of every
+  column in every block of ``block_rows`` rows.  Blocks are numbered from the
+  night's row index, so overlapping stretches yield the same blocks and the
+  solve keeps one copy of each.
+* :func:`solve_columns` (per night): the regression over all blocks.
+
+Identifiability: the sky is measured by the same columns, as the mean of a
+fixed set of well-behaved reference columns, so the response comes out
+normalised to mean 1 over them, and the additive level averages to zero over
+them: a uniform dark current cannot be told from sky and stays in the sky
+background (the detect stage subtracts both).  A sky gradient across the strip
+that scales with the sky level is indistinguishable from a response pattern
+and is absorbed into the flat.
+"""
+
+from __future__ import annotations
+
+import logging
+import warnings
+
+import numpy as np
+from astropy.table import Table, unique, vstack
+from scipy.special import erf
+
+from pipeline.exceptions import CalibrationWarning
+from pipeline.masks import MaskBit
+
+__all__ = ["solve_columns", "summarize_columns"]
+
+log = logging.getLogger(__name__)
+
+
+def _truncated_variance(clip: float) -> float:
+    """Variance of a unit normal truncated at +-clip (analytic)."""
+    density = np.exp(-0.5 * clip * clip) / np.sqrt(2.0 * np.pi)
+    return 1.0 - 2.0 * clip * density / erf(clip / np.sqrt(2.0))
+
+
+def summarize_columns(
+    electrons: np.ndarray,
+    rows: np.ndarray,
+    times: np.ndarray,
+    read_noise: float | np.ndarray,
+    ignore: np.ndarray | None = None,
+    *,
+    block_rows: int = 256,
+    clip: float = 3.0,
+) -> Table:
+    """Background statistics of every column in blocks of rows (first pass).
+
+    Parameters
+    ----------
+    electrons : ndarray, shape (n_rows, n_columns)
+        Bias-subtracted raw image in electrons, before flat and dark; axis 0 is
+        the scan axis.
+    rows : ndarray of int, shape (n_rows,)
+        Row index of each row in the night (or run); blocks are
+        ``rows // block_rows``, so they align across stretches.
+    times : ndarray of float, shape (n_rows,)
+        Readout time of each row, in seconds from any reference.
+    read_noise : float or ndarray of shape (n_rows,)
+        Read noise in electrons.
+    ignore : ndarray of bool, shape (n_rows, n_columns), optional
+        Pixels to leave out (saturated, non-finite, ...).
+    block_rows : int
+        Rows per block.
+    clip : float
+        Clipping half-width around each block's median, in units of the noise
+        model ``sqrt(read_noise^2 + level)``; removes stars and cosmic rays.
+
+    Returns
+    -------
+    `~astropy.table.Table`
+        One row per block: ``block`` (int), ``n_rows`` (rows present),
+        ``time`` (s, mean readout time), ``read_noise`` (e-), and the vector
+        columns ``level`` (clipped mean, e-), ``scatter`` (clipped standard
+        deviation corrected for the clipping, e-) and ``n_pixels`` (pixels
+        used), each of length n_columns.
+    """
+    electrons = np.asarray(electrons, dtype=np.float32)
+    n_rows, n_columns = electrons.shape
+    rows = np.asarray(rows)
+    times = np.asarray(times, dtype=np.float64)
+    if rows.shape != (n_rows,) or times.shape != (n_rows,):
+        raise ValueError(
+            f"rows and times must have shape ({n_rows},) like the image's scan axis; "
+            f"got {rows.shape} and {times.shape}."
+        )
+    read_noise = np.broadcast_to(np.asarray(read_noise, dtype=np.float64), (n_rows,))
+    unusable = ~np.isfinite(electrons)
+    if ignore is not None:
+        unusable = unusable | ignore
+    block = rows // int(block_rows)
+    starts = np.flatnonzero(np.r_[True, block[1:] != block[:-1]])
+    stops = np.r_[starts[1:], n_rows]
+    out = {name: [] for name in ("block", "n_rows", "time", "read_noise")}
+    level, scatter, count = [], [], []
+    for start, stop in zip(starts, stops, strict=True):
+        lev, sca, cnt = _block_statistics(
+            electrons[start:stop], unusable[start:stop], float(read_noise[start:stop].mean()), clip
+        )
+        out["block"].append(int(block[start]))
+        out["n_rows"].append(stop - start)
+        out["time"].append(float(times[start:stop].mean()))
+        out["read_noise"].append(float(read_noise[start:stop].mean()))
+        level.append(lev)
+        scatter.append(sca)
+        count.append(cnt)
+    table = Table(out)
+    table["level"] = np.array(level, dtype=np.float32).reshape(-1, n_columns)
+    table["scatter"] = np.array(scatter, dtype=np.float32).reshape(-1, n_columns)
+    table["n_pixels"] = np.array(count, dtype=np.int32).reshape(-1, n_columns)
+    table.meta.update(block_rows=int(block_rows), clip=float(clip))
+    return table
+
+
+def _block_statistics(x, unusable, read_noise, clip):
+    """Clipped mean, corrected scatter and count of each column of one block."""
+    x = np.ascontiguousarray(x.T)  # (n_columns, n_rows_block): rows contiguous
+    unusable = np.ascontiguousarray(unusable.T)
+    any_bad = unusable.any()
+    if any_bad:
+        x = np.where(unusable, np.nan, x)
+        with warnings.catch_warnings():
+            # An all-NaN column gives NaN statistics, which is the documented result.
+            warnings.simplefilter("ignore", RuntimeWarning)
+            median = np.nanmedian(x, axis=1)
+    else:
+        k = x.shape[1] // 2
+        median = np.partition(x, k, axis=1)[:, k]
+    half = clip * np.sqrt(read_noise**2 + np.maximum(median, 0.0))
+    keep = np.abs(x - median[:, None]) <= half[:, None]  # NaN compares false
+    n = keep.sum(axis=1)
+    safe = np.maximum(n, 1)
+    dev = np.where(keep, x - median[:, None], 0.0)
+    mean_dev = dev.sum(axis=1) / safe
+    var = (dev * dev).sum(axis=1) / np.maximum(n - 1, 1) - mean_dev**2 * n / np.maximum(n - 1, 1)
+    scale = _truncated_variance(clip)
+    with np.errstate(invalid="ignore"):
+        level = np.where(n > 0, median + mean_dev, np.nan)
+        scatter = np.where(n > 1, np.sqrt(np.maximum(var, 0.0) / scale), np.nan)
+    return level, scatter, n
+
+
+def solve_columns(
+    summaries: Table | list[Table],
+    *,
+    min_response: float = 0.5,
+    max_response: float = 1.5,
+    noise_limit: float = 1.5,
+    hot_level: float = 5.0,
+    min_blocks: int = 8,
+    clip: float = 4.0,
+    max_flat_error: float = 0.01,
+) -> Table:
+    """Solve each column's response and additive level over the night.
+
+    For block ``k`` the sky level ``s_k`` is the mean level of the reference
+    columns; each column's block levels are fitted as ``a_c s_k + b_c`` by
+    weighted least squares (weights: pixels used / (read noise^2 + level)),
+    rejecting blocks more than ``clip`` standard errors off the line, twice.
+
+    Parameters
+    ----------
+    summaries : Table or list of Table
+        Outputs of :func:`summarize_columns` for the stretches of a night;
+        duplicate blocks (from overlaps) are merged, keeping the fullest.
+    min_response, max_response : float
+        Columns whose response falls outside this range are flagged BAD_COLUMN.
+    noise_limit : float
+        Columns whose scatter exceeds the noise model by this factor, relative
+        to the median column, are flagged BAD_COLUMN.
+    hot_level : float
+        Columns whose additive level exceeds the median column's by more than
+        this many electrons per pixel are flagged HOT_COLUMN.
+    min_blocks : int
+        Minimum number of blocks for a column fit; fewer gives BAD_COLUMN.
+    clip : float
+        Outlier rejection of blocks, in standard errors.
+    max_flat_error : float
+        If the sky level changes too little along the night to give the
+        responses to this precision (median standard error), the additive
+        levels are set to zero and the responses are the ratio of column to sky
+        level, with a :class:`~pipeline.exceptions.CalibrationWarning`.
+
+    Returns
+    -------
+    `~astropy.table.Table`
+        One row per column: ``column`` (0-based image column), ``flat``
+        (response, mean 1 over the reference columns), ``flat_error``,
+        ``dark`` (additive level in e- per pixel, mean 0 over the reference
+        columns), ``dark_error``, ``noise_ratio`` (scatter / noise model,
+        relative to the median column), ``n_blocks`` and ``flags``
+        (:class:`~pipeline.masks.MaskBit` BAD_COLUMN / HOT_COLUMN).  The meta
+        holds ``sky_min``/``sky_max`` (e-), ``n_blocks``, ``n_reference`` and
+        ``method`` (``'regression'`` or ``'ratio'``).
+    """
+    table = _merge_blocks(summaries)
+    level = np.asarray(table["level"], dtype=np.float64)  # (K, C)
+    scatter = np.asarray(table["scatter"], dtype=np.float64)
+    n_pix = np.asarray(table["n_pixels"], dtype=np.float64)
+    read_noise = np.asarray(table["read_noise"], dtype=np.float64)[:, None]
+    valid = np.isfinite(level) & (n_pix > 0)
+    n_blocks, n_columns = level.shape
+
+    noise_ratio = _noise_ratio(level, scatter, read_noise, valid)
+    reference = _initial_reference(level, valid, noise_ratio, noise_limit)
+    weight = np.where(valid, n_pix / (read_noise**2 + np.maximum(level, 1.0)), 0.0)
+    for iteration in range(2):
+        sky = _sky(level, valid, reference)
+        slope, intercept, slope_err, intercept_err, used = _fit_lines(
+            sky, level, weight, valid, clip
+        )
+        if iteration == 0:
+            reference = _refine_reference(slope, intercept, used, reference, min_blocks)
+    # Exactly 1 without rejected blocks; renormalise for the rejections.
+    norm = np.nanmean(slope[reference])
+    slope, slope_err = slope / norm, slope_err / norm
+
+    method = "regression"
+    if not np.nanmedian(slope_err[reference]) <= max_flat_error:
+        warnings.warn(
+            f"The sky level varies too little along the night (from {np.nanmin(sky):.1f} "
+            f"to {np.nanmax(sky):.1f} e-) to separate column response from additive level "
+            f"(median response error {np.nanmedian(slope_err[reference]):.3g} > "
+            f"max_flat_error={max_flat_error}); using level ratios and no additive level.",
+            CalibrationWarning,
+            stacklevel=2,
+        )
+        method = "ratio"
+        slope, intercept, slope_err, intercept_err = _ratio(sky, level, weight)
+        norm = np.nanmean(slope[reference])
+        slope, slope_err = slope / norm, slope_err / norm
+
+    flags = np.zeros(n_columns, dtype=np.uint16)
+    bad = (
+        (used < min_blocks)
+        | ~np.isfinite(slope)
+        | (slope < min_response)
+        | (slope > max_response)
+        | (noise_ratio > noise_limit)
+    )
+    hot = intercept - np.nanmedian(intercept[~bad]) > hot_level
+    flags[bad] |= int(MaskBit.BAD_COLUMN)
+    flags[hot & ~bad] |= int(MaskBit.HOT_COLUMN)
+    result = Table(
+        {
+            "column": np.arange(n_columns),
+            "flat": slope.astype(np.float64),
+            "flat_error": slope_err,
+            "dark": intercept,
+            "dark_error": intercept_err,
+            "noise_ratio": noise_ratio,
+            "n_blocks": used.astype(np.int32),
+            "flags": flags,
+        }
+    )
+    result["dark"].unit = result["dark_error"].unit = "electron"
+    result.meta.update(
+        sky_min=float(np.nanmin(sky)),
+        sky_max=float(np.nanmax(sky)),
+        n_blocks=int(n_blocks),
+        n_reference=int(reference.sum()),
+        method=method,
+        block_rows=int(table.meta.get("block_rows", 0)),
+    )
+    log.info(
+        "Column solve (%s): %d blocks, sky %.1f-%.1f e-, %d bad and %d hot of %d columns",
+        method,
+        n_blocks,
+        result.meta["sky_min"],
+        result.meta["sky_max"],
+        int(bad.sum()),
+        int((hot & ~bad).sum()),
+        n_columns,
+    )
+    return result
+
+
+def _merge_blocks(summaries: Table | list[Table]) -> Table:
+    """Stack stretch summaries and keep the fullest copy of each block."""
+    if isinstance(summaries, Table):
+        summaries = [summaries]
+    if not summaries:
+        raise ValueError("summaries is empty; run summarize_columns on at least one stretch.")
+    widths = {np.shape(s["level"])[1] for s in summaries if len(s)}
+    if len(widths) > 1:
+        raise ValueError(
+            f"summaries disagree on the number of columns ({sorted(widths)}); a night must "
+            "have one geometry (split it into runs at the change)."
+        )
+    table = vstack(summaries, metadata_conflicts="silent")
+    if len(table) == 0:
+        raise ValueError("summaries hold no block; the stretches had no rows.")
+    table.sort(["block", "n_rows"], reverse=True)
+    table = unique(table, keys="block", keep="first")
+    table.sort("block")
+    return table
+
+
+def _noise_ratio(level, scatter, read_noise, valid):
+    """Median over blocks of scatter / noise model, relative to the median column."""
+    expected = np.sqrt(read_noise**2 + np.maximum(level, 0.0))
+    ratio = np.where(valid, scatter / expected, np.nan)
+    with warnings.catch_warnings():
+        # Columns without any valid block give NaN (then flagged bad).
+        warnings.simplefilter("ignore", RuntimeWarning)
+        per_column = np.nanmedian(ratio, axis=0)
+    return per_column / np.nanmedian(per_column)
+
+
+def _initial_reference(level, valid, noise_ratio, noise_limit):
+    """Columns whose typical relative level and noise look normal."""
+    with warnings.catch_warnings():
+        # Blocks or columns without valid data give NaN and drop out.
+        warnings.simplefilter("ignore", RuntimeWarning)
+        block_median = np.nanmedian(np.where(valid, level, np.nan), axis=1, keepdims=True)
+        relative = np.nanmedian(np.where(valid, level, np.nan) / block_median, axis=0)
+    centre = np.nanmedian(relative)
+    spread = 1.4826 * np.nanmedian(np.abs(relative - centre))
+    return (np.abs(relative - centre) <= 5.0 * max(spread, 1e-6)) & (noise_ratio <= noise_limit)
+
+
+def _sky(level, valid, reference):
+    """Sky level of each block: mean level of the reference columns."""
+    ref_valid = valid[:, reference]
+    ref_level = np.where(ref_valid, level[:, reference], 0.0)
+    return ref_level.sum(axis=1) / np.maximum(ref_valid.sum(axis=1), 1)
+
+
+def _fit_lines(sky, level, weight, valid, clip):
+    """Weighted straight-line fit ``level = a * sky + b`` for every column at once."""
+    use = valid.copy()
+    x = sky[:, None]
+    for _ in range(3):
+        w = np.where(use, weight, 0.0)
+        sw = w.sum(axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            xm = (w * x).sum(axis=0) / sw
+            ym = (w * np.where(use, level, 0.0)).sum(axis=0) / sw
+            dx = x - xm
+            sxx = (w * dx * dx).sum(axis=0)
+            slope = (w * dx * np.where(use, level - ym, 0.0)).sum(axis=0) / sxx
+            intercept = ym - slope * xm
+            resid = level - (slope * x + intercept)
+            # Standard errors from the weights, scaled by the reduced chi^2.
+            n = use.sum(axis=0)
+            chi2 = (w * resid * resid).sum(axis=0) / np.maximum(n - 2, 1)
+            scale = np.sqrt(np.maximum(chi2, 1e-12))
+            pull = resid * np.sqrt(weight) / scale
+        new_use = valid & (np.abs(pull) <= clip)
+        if np.array_equal(new_use, use):
+            break
+        use = new_use
+    with np.errstate(invalid="ignore", divide="ignore"):
+        slope_err = scale / np.sqrt(sxx)
+        intercept_err = scale * np.sqrt(1.0 / sw + xm**2 / sxx)
+    return slope, intercept, slope_err, intercept_err, use.sum(axis=0)
+
+
+def _refine_reference(slope, intercept, used, reference, min_blocks):
+    """Drop columns with outlying response or level from the reference set."""
+    good = reference & (used >= min_blocks) & np.isfinite(slope)
+    new = good.copy()
+    for values in (slope, intercept):
+        centre = np.median(values[good])
+        spread = 1.4826 * np.median(np.abs(values[good] - centre))
+        new &= np.abs(values - centre) <= 5.0 * max(spread, 1e-9)
+    return new if new.sum() >= max(3, good.sum() // 2) else good
+
+
+def _ratio(sky, level, weight):
+    """Response as the weighted mean ratio level / sky, no additive level."""
+    w = np.where(np.isfinite(level), weight, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        slope = (w * np.nan_to_num(level) * sky[:, None]).sum(axis=0) / (w * sky[:, None] ** 2).sum(
+            axis=0
+        )
+        resid = level - slope * sky[:, None]
+        chi2 = np.nansum(w * resid * resid, axis=0) / np.maximum((w > 0).sum(axis=0) - 1, 1)
+        slope_err = np.sqrt(chi2 / (w * sky[:, None] ** 2).sum(axis=0))
+    zeros = np.zeros_like(slope)
+    return slope, zeros, slope_err, zeros

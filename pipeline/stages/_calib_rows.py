@@ -1,0 +1,129 @@
+"""Glue between the runner's raw rows and the calibrate functions.
+
+The runner hands a stretch-scoped stage the stored rows ``[lo, hi)`` of the
+night (overscan included, NaN where no block covers a row) and the ingest
+stage's block index; this module splits them into image and overscan columns
+and gathers the per-row header values, run labels and ramp rows that
+:func:`pipeline.stages.calibrate.calibrate_stretch` and
+:func:`~pipeline.stages.calibrate.column_statistics` take.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from astropy.table import Table
+
+from pipeline.exceptions import StageError
+from pipeline.stages.base import BLOCK_INDEX, RAW_ROWS
+from pipeline.stages.ingest import describe_rows, split_rows
+
+__all__ = ["StretchRows", "stretch_rows", "stretch_rows_for_stage"]
+
+
+@dataclass(frozen=True)
+class StretchRows:
+    """Raw image, overscan and per-row facts of one stretch (scan axis first)."""
+
+    image: np.ndarray
+    overscan: np.ndarray
+    night_row: np.ndarray
+    time: np.ndarray
+    segment: np.ndarray
+    rows_since_start: np.ndarray | None
+    gain: np.ndarray
+    read_noise: np.ndarray
+    saturation: np.ndarray
+    tdi_rows: int
+
+    @property
+    def covered(self) -> np.ndarray:
+        """Rows some block holds."""
+        return self.segment >= 0
+
+
+def stretch_rows(
+    raw_rows: np.ndarray,
+    index: Table,
+    lo: int,
+    hi: int,
+    *,
+    flip_columns: bool = False,
+    flip_rows: bool = False,
+    start_ramp: str = "night",
+) -> StretchRows:
+    """Split a stretch's stored rows and look up its per-row facts.
+
+    Parameters
+    ----------
+    raw_rows : ndarray, shape (hi - lo, NAXIS1)
+        The runner's ``raw_rows`` input.
+    index : astropy.table.Table
+        The ingest stage's ``block_index``.
+    lo, hi : int
+        Night rows of ``raw_rows``.
+    flip_columns : bool
+        Camera ``flip_columns``: reverse the image columns.
+    flip_rows : bool
+        Camera ``flip_rows``; not supported here (each block's rows would have
+        to be reversed when the runner reads them).
+    start_ramp : {'night', 'run', 'none'}
+        Where clocking started (see ``CalibrateOptions.start_ramp``).
+
+    Returns
+    -------
+    StretchRows
+    """
+    if flip_rows:
+        raise StageError(
+            "camera.flip_rows is set, but the runner assembles rows as stored; reversing "
+            "each block's rows on reading is not supported yet. Rewrite the blocks in "
+            "readout order or unset flip_rows."
+        )
+    facts = describe_rows(index, lo, hi)
+    covered = facts["covered"]
+    blocks = index[(index["row_start"] < hi) & (index["row_start"] + index["n_rows"] > lo)]
+    geometries = {(str(b["datasec"]), str(b["biassec"])) for b in blocks}
+    if len(geometries) != 1:
+        raise StageError(
+            f"Night rows [{lo}, {hi}) span blocks with {len(geometries)} different "
+            f"DATASEC/BIASSEC ({sorted(geometries)}); a stretch needs one geometry."
+        )
+    datasec, biassec = geometries.pop()
+    image, overscan = split_rows(raw_rows, datasec, biassec, flip_columns=flip_columns)
+    fill = {}
+    for name in ("gain", "read_noise", "saturation"):
+        values = facts[name]
+        fill[name] = np.where(covered, values, np.nanmedian(values[covered]))
+    run, run_row = facts["run"], facts["run_row"]
+    if start_ramp == "night":
+        rows_since_start = np.where(run == 0, run_row, np.iinfo(np.int64).max)
+    elif start_ramp == "run":
+        rows_since_start = np.where(covered, run_row, np.iinfo(np.int64).max)
+    else:
+        rows_since_start = None
+    return StretchRows(
+        image=image,
+        overscan=overscan,
+        night_row=facts["night_row"],
+        time=facts["time"],
+        segment=run,
+        rows_since_start=rows_since_start,
+        tdi_rows=int(facts["tdi_rows"].max()),
+        **fill,
+    )
+
+
+def stretch_rows_for_stage(inputs, context, start_ramp: str = "night") -> StretchRows:
+    """:func:`stretch_rows` from a stretch-scoped stage's ``inputs`` and ``context``."""
+    stretch = context.stretch
+    return stretch_rows(
+        inputs[RAW_ROWS],
+        inputs["ingest"][BLOCK_INDEX],
+        stretch.lo,
+        stretch.hi,
+        flip_columns=context.camera.flip_columns,
+        flip_rows=context.camera.flip_rows,
+        start_ramp=start_ramp,
+    )

@@ -1,0 +1,558 @@
+"""Calibrate: raw TDI rows to electrons, variance and a bit mask.
+
+For one stretch of rows (axis 0 is the scan axis, time; axis 1 the columns
+across the scan) :func:`calibrate_stretch`
+
+1. measures each row's bias in the serial overscan, smooths it along the scan
+   and subtracts it (and an optional fixed per-column bias pattern), then
+   converts ADU to electrons with the header GAIN;
+2. removes the per-column additive level (dark current, hot pixels' dark, bias
+   pattern) and divides by the 1-D TDI flat, both solved from the night's sky
+   (:func:`solve_columns`) or supplied;
+3. computes the variance from the noise model
+   ``(RDNOISE^2 + max(raw electrons, 0) + GAIN^2 / 12) / flat^2``: read noise,
+   Poisson noise of everything collected (sky + dark + sources, counted before
+   the flat divides it) and the ADC's quantisation (a uniform error of one ADU);
+4. builds the mask (:class:`pipeline.masks.MaskBit`): saturation and bleed
+   along the scan, bad and hot columns, cosmic rays, non-finite and missing
+   pixels, the start-of-scan exposure ramp.
+
+Stage wiring
+------------
+The 1-D flat and dark need many rows, so the work is split in three stages:
+
+``column_stats`` (per stretch)
+    :func:`column_statistics`: bias-subtracted electrons, then
+    :func:`summarize_columns`, a small table of per-block column levels.
+``columns`` (per night)
+    :func:`solve_columns` over all stretches' tables: the ``columns`` table
+    (response, additive level, flags per column), persistable so other nights
+    can use or compare it.
+``calibrate`` (per stretch)
+    :func:`calibrate_stretch` with that table.
+"""
+
+from __future__ import annotations
+
+import logging
+import warnings
+from dataclasses import dataclass
+from typing import Any, Literal
+
+import numpy as np
+from astropy.table import Table
+from pydantic import BaseModel, ConfigDict, Field
+
+from pipeline.exceptions import CalibrationWarning
+from pipeline.masks import MASK_DTYPE, MaskBit, describe_mask
+from pipeline.stages._calib_bias import overscan_levels, smooth_levels
+from pipeline.stages._calib_columns import solve_columns, summarize_columns
+from pipeline.stages._calib_cosmics import detect_cosmic_rays
+from pipeline.stages._calib_rows import stretch_rows_for_stage
+from pipeline.stages._calib_saturation import bleed_mask, saturation_mask
+from pipeline.stages.base import RAW_ROWS, Stage
+
+__all__ = [
+    "STAGE",
+    "CalibrateOptions",
+    "CalibratedStretch",
+    "CalibrationWarning",
+    "ColumnSolveOptions",
+    "ColumnStatsOptions",
+    "MaskBit",
+    "calibrate_stretch",
+    "column_statistics",
+    "detect_cosmic_rays",
+    "options_kwargs",
+    "solve_columns",
+    "subtract_bias",
+    "summarize_columns",
+]
+
+log = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True)
+class CalibratedStretch:
+    """Result of :func:`calibrate_stretch`.
+
+    Attributes
+    ----------
+    image : ndarray of float32, shape (n_rows, n_columns)
+        Flat-fielded signal in electrons (sky included); NaN where the mask has
+        NONFINITE, GAP or BAD_COLUMN.
+    variance : ndarray of float32, shape (n_rows, n_columns)
+        Variance of ``image`` in e^2; NaN where ``image`` is.
+    mask : ndarray of uint16, shape (n_rows, n_columns)
+        OR of :class:`~pipeline.masks.MaskBit` values.
+    bias : ndarray of float64, shape (n_rows,)
+        Bias level subtracted from each row, ADU (smoothed overscan).
+    """
+
+    image: np.ndarray
+    variance: np.ndarray
+    mask: np.ndarray
+    bias: np.ndarray
+
+    @property
+    def mask_counts(self) -> dict[str, int]:
+        """Number of pixels carrying each mask bit."""
+        return describe_mask(self.mask)
+
+
+def _per_row(value, n_rows: int, name: str) -> np.ndarray:
+    """Broadcast a scalar or per-row header value to shape (n_rows,)."""
+    array = np.asarray(value, dtype=np.float64)
+    if array.ndim == 0:
+        return np.full(n_rows, float(array))
+    if array.shape != (n_rows,):
+        raise ValueError(
+            f"{name} must be a scalar or have shape ({n_rows},), one value per row; "
+            f"got shape {array.shape}."
+        )
+    return array
+
+
+def _segments(segment, n_rows: int) -> np.ndarray:
+    if segment is None:
+        return np.zeros(n_rows, dtype=np.int64)
+    segment = np.asarray(segment)
+    if segment.shape != (n_rows,):
+        raise ValueError(
+            f"segment must have shape ({n_rows},), one label per row; got {segment.shape}."
+        )
+    return segment
+
+
+def subtract_bias(
+    image: np.ndarray,
+    overscan: np.ndarray,
+    *,
+    gain: float | np.ndarray,
+    read_noise: float | np.ndarray,
+    column_bias: np.ndarray | None = None,
+    segment: np.ndarray | None = None,
+    bias_window: int = 101,
+    bias_polyorder: int = 2,
+    overscan_clip: float = 4.0,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Subtract the smoothed overscan bias of each row and convert to electrons.
+
+    Parameters
+    ----------
+    image : ndarray, shape (n_rows, n_columns)
+        Raw image columns in ADU; axis 0 is the scan axis.
+    overscan : ndarray, shape (n_rows, n_overscan)
+        Raw serial-overscan columns of the same rows, ADU.
+    gain : float or ndarray of shape (n_rows,)
+        e-/ADU (header GAIN).
+    read_noise : float or ndarray of shape (n_rows,)
+        e- (header RDNOISE); sets the overscan clipping.
+    column_bias : ndarray of shape (n_columns,), optional
+        Fixed bias pattern in ADU to subtract from every row (e.g. from the
+        readout electronics).  Without it such a pattern ends up in the
+        solved per-column additive level, which removes it too.
+    segment : ndarray of int, shape (n_rows,), optional
+        Label of each row's run; the bias is smoothed within each run
+        separately and never across a gap.  Rows labelled -1 (no data) get NaN.
+    bias_window : int
+        Savitzky-Golay window in rows (1: no smoothing).
+    bias_polyorder : int
+        Degree of the smoothing polynomial.
+    overscan_clip : float
+        Clipping half-width of the per-row overscan mean, in read noises.
+
+    Returns
+    -------
+    electrons : ndarray of float32, shape (n_rows, n_columns)
+        Bias-subtracted image in electrons.
+    bias : ndarray of float64, shape (n_rows,)
+        Subtracted bias level of each row in ADU.
+    """
+    image = np.asarray(image)
+    if image.ndim != 2 or overscan.ndim != 2 or overscan.shape[0] != image.shape[0]:
+        raise ValueError(
+            f"image and overscan must be 2-D with the same rows (scan axis); got shapes "
+            f"{image.shape} and {np.shape(overscan)}."
+        )
+    n_rows, n_columns = image.shape
+    gain = _per_row(gain, n_rows, "gain")
+    read_noise = _per_row(read_noise, n_rows, "read_noise")
+    segment = _segments(segment, n_rows)
+    levels = overscan_levels(overscan, read_noise / gain, overscan_clip)
+    bias = np.full(n_rows, np.nan)
+    for label in np.unique(segment[segment >= 0]):
+        rows = np.flatnonzero(segment == label)
+        # Split also where a run's rows are not consecutive in this stretch.
+        for part in np.split(rows, np.flatnonzero(np.diff(rows) != 1) + 1):
+            if np.isfinite(levels[part]).any():
+                bias[part] = smooth_levels(levels[part], bias_window, bias_polyorder)
+    offset = bias[:, None]
+    if column_bias is not None:
+        column_bias = np.asarray(column_bias, dtype=np.float64)
+        if column_bias.shape != (n_columns,):
+            raise ValueError(
+                f"column_bias must have shape ({n_columns},), one value per image column; "
+                f"got {column_bias.shape}."
+            )
+        offset = offset + column_bias[None, :]
+    electrons = np.asarray(image, dtype=np.float32) - offset.astype(np.float32)
+    electrons *= gain.astype(np.float32)[:, None]
+    return electrons, bias
+
+
+def column_statistics(
+    image: np.ndarray,
+    overscan: np.ndarray,
+    rows: np.ndarray,
+    times: np.ndarray,
+    *,
+    gain: float | np.ndarray,
+    read_noise: float | np.ndarray,
+    saturation: float | np.ndarray,
+    segment: np.ndarray | None = None,
+    use_rows: np.ndarray | None = None,
+    block_rows: int = 256,
+    clip: float = 3.0,
+    bias_window: int = 101,
+    bias_polyorder: int = 2,
+    overscan_clip: float = 4.0,
+) -> Table:
+    """First pass of the column solve for one stretch.
+
+    Subtracts the bias (:func:`subtract_bias`), leaves out saturated and
+    non-finite pixels and the rows not in ``use_rows``, and returns
+    :func:`summarize_columns` of the rest.
+
+    Parameters
+    ----------
+    image, overscan : ndarray
+        Raw rows in ADU, shapes (n_rows, n_columns) and (n_rows, n_overscan).
+    rows : ndarray of int, shape (n_rows,)
+        Night row index of each row.
+    times : ndarray of float, shape (n_rows,)
+        Readout time of each row, s.
+    gain, read_noise, saturation : float or ndarray of shape (n_rows,)
+        Header GAIN (e-/ADU), RDNOISE (e-) and SATURATE (ADU).
+    segment : ndarray of int, shape (n_rows,), optional
+        Run label per row (-1: no data); see :func:`subtract_bias`.
+    use_rows : ndarray of bool, shape (n_rows,), optional
+        Rows fit for the solve (e.g. not in the start-of-scan ramp); default all
+        rows with data.
+    block_rows, clip
+        See :func:`summarize_columns`.
+    bias_window, bias_polyorder, overscan_clip
+        See :func:`subtract_bias`.
+
+    Returns
+    -------
+    astropy.table.Table
+        As :func:`summarize_columns`.
+    """
+    n_rows = image.shape[0]
+    electrons, _ = subtract_bias(
+        image,
+        overscan,
+        gain=gain,
+        read_noise=read_noise,
+        segment=segment,
+        bias_window=bias_window,
+        bias_polyorder=bias_polyorder,
+        overscan_clip=overscan_clip,
+    )
+    keep = _segments(segment, n_rows) >= 0
+    if use_rows is not None:
+        keep &= np.asarray(use_rows, bool)
+    ignore = saturation_mask(image, _per_row(saturation, n_rows, "saturation"))
+    return summarize_columns(
+        electrons[keep],
+        np.asarray(rows)[keep],
+        np.asarray(times)[keep],
+        _per_row(read_noise, n_rows, "read_noise")[keep],
+        ignore[keep],
+        block_rows=block_rows,
+        clip=clip,
+    )
+
+
+def _column_model(columns, flat, dark, n_columns):
+    """Flat, additive level and column flags as arrays of shape (n_columns,)."""
+    flags = np.zeros(n_columns, dtype=MASK_DTYPE)
+    if columns is not None:
+        if len(columns) != n_columns:
+            raise ValueError(
+                f"columns table has {len(columns)} rows but the image has {n_columns} "
+                "columns; solve the columns for this camera geometry."
+            )
+        flat = np.asarray(columns["flat"], float) if flat is None else flat
+        dark = np.asarray(columns["dark"], float) if dark is None else dark
+        flags = np.asarray(columns["flags"], dtype=MASK_DTYPE)
+    flat = np.ones(n_columns) if flat is None else np.asarray(flat, dtype=np.float64)
+    dark = np.zeros(n_columns) if dark is None else np.asarray(dark, dtype=np.float64)
+    for name, value in (("flat", flat), ("dark", dark)):
+        if value.shape != (n_columns,):
+            raise ValueError(
+                f"{name} must have shape ({n_columns},), one value per image column; got "
+                f"{value.shape}."
+            )
+    bad = ~np.isfinite(flat) | (flat <= 0) | ~np.isfinite(dark)
+    flags[bad] |= int(MaskBit.BAD_COLUMN)
+    flat = np.where(bad, 1.0, flat)
+    dark = np.where(bad, 0.0, dark)
+    return flat, dark, flags
+
+
+def calibrate_stretch(
+    image: np.ndarray,
+    overscan: np.ndarray,
+    *,
+    gain: float | np.ndarray,
+    read_noise: float | np.ndarray,
+    saturation: float | np.ndarray,
+    columns: Table | None = None,
+    flat: np.ndarray | None = None,
+    dark: np.ndarray | None = None,
+    column_bias: np.ndarray | None = None,
+    segment: np.ndarray | None = None,
+    rows_since_start: np.ndarray | None = None,
+    tdi_rows: int | None = None,
+    bias_window: int = 101,
+    bias_polyorder: int = 2,
+    overscan_clip: float = 4.0,
+    bleed_fraction: float = 0.5,
+    bleed_grow_rows: int = 2,
+    bleed_grow_columns: int = 1,
+    cosmic_rays: bool = True,
+    cosmic_sigclip: float = 4.5,
+    cosmic_sigfrac: float = 0.3,
+    cosmic_objlim: float = 5.0,
+    cosmic_iterations: int = 2,
+) -> CalibratedStretch:
+    """Calibrate one stretch of raw TDI rows.
+
+    Parameters
+    ----------
+    image : ndarray, shape (n_rows, n_columns)
+        Raw image columns in ADU; axis 0 is the scan axis (row 0 read first),
+        axis 1 the columns across the scan.
+    overscan : ndarray, shape (n_rows, n_overscan)
+        Raw serial-overscan columns of the same rows, ADU.
+    gain, read_noise, saturation : float or ndarray of shape (n_rows,)
+        Header GAIN (e-/ADU), RDNOISE (e-) and SATURATE (ADU, raw level).
+    columns : astropy.table.Table, optional
+        Output of :func:`solve_columns` (columns ``flat``, ``dark``, ``flags``).
+    flat : ndarray of shape (n_columns,), optional
+        1-D flat (response, mean about 1), e.g. from a twilight strip; overrides
+        ``columns['flat']``.  None and no ``columns``: no flat fielding.
+    dark : ndarray of shape (n_columns,), optional
+        Additive level per column in electrons per pixel; overrides
+        ``columns['dark']``.  None and no ``columns``: nothing subtracted.
+    column_bias : ndarray of shape (n_columns,), optional
+        Fixed bias pattern in ADU (see :func:`subtract_bias`).
+    segment : ndarray of int, shape (n_rows,), optional
+        Run label of each row; -1 marks rows without data (mask GAP).
+    rows_since_start : ndarray of int, shape (n_rows,), optional
+        Rows since charge clocking started; with ``tdi_rows`` the first
+        ``tdi_rows`` of them get LOW_EXPOSURE (CHECK_VALUES 3.8).
+    tdi_rows : int, optional
+        TDIROWS.
+    bias_window, bias_polyorder, overscan_clip
+        See :func:`subtract_bias`.
+    bleed_fraction : float
+        A pixel continuing a saturated pixel's run along its column belongs to
+        the bleed trail if its raw level exceeds the bias by this fraction of
+        (SATURATE - bias).
+    bleed_grow_rows, bleed_grow_columns : int
+        Margin added around saturated and bleed pixels along and across the
+        scan (mask BLEED).
+    cosmic_rays : bool
+        Detect cosmic rays (mask COSMIC_RAY).
+    cosmic_sigclip, cosmic_sigfrac, cosmic_objlim, cosmic_iterations
+        ``sigclip``, ``sigfrac``, ``objlim`` and ``n_iter`` of
+        :func:`detect_cosmic_rays`.
+
+    Returns
+    -------
+    CalibratedStretch
+    """
+    image = np.asarray(image)
+    n_rows, n_columns = image.shape if image.ndim == 2 else (0, 0)
+    gain = _per_row(gain, n_rows, "gain")
+    read_noise = _per_row(read_noise, n_rows, "read_noise")
+    saturation = _per_row(saturation, n_rows, "saturation")
+    segment = _segments(segment, n_rows)
+    electrons, bias = subtract_bias(
+        image,
+        overscan,
+        gain=gain,
+        read_noise=read_noise,
+        column_bias=column_bias,
+        segment=segment,
+        bias_window=bias_window,
+        bias_polyorder=bias_polyorder,
+        overscan_clip=overscan_clip,
+    )
+    flat, dark, column_flags = _column_model(columns, flat, dark, n_columns)
+
+    mask = np.zeros((n_rows, n_columns), dtype=MASK_DTYPE)
+    mask |= column_flags[None, :]
+    nonfinite = ~np.isfinite(electrons)
+    gap = segment < 0
+    mask[nonfinite] |= int(MaskBit.NONFINITE)
+    mask[gap] = (mask[gap] | int(MaskBit.GAP)) & ~MASK_DTYPE.type(MaskBit.NONFINITE)
+    saturated = saturation_mask(image, saturation)
+    bias_level = np.where(np.isfinite(bias), bias, 0.0)
+    bleed = bleed_mask(
+        image,
+        saturated,
+        bias_level + bleed_fraction * (saturation - bias_level),
+        bleed_grow_rows,
+        bleed_grow_columns,
+    )
+    mask[saturated] |= int(MaskBit.SATURATED)
+    mask[bleed] |= int(MaskBit.BLEED)
+    if rows_since_start is not None and tdi_rows:
+        ramp = np.asarray(rows_since_start) < int(tdi_rows)
+        mask[ramp & ~gap] |= int(MaskBit.LOW_EXPOSURE)
+
+    # Variance from the collected electrons, before the flat divides them.
+    quantisation = (gain * gain / 12.0).astype(np.float32)
+    variance = np.maximum(electrons, 0.0)
+    variance += (read_noise * read_noise).astype(np.float32)[:, None] + quantisation[:, None]
+    inv_flat = (1.0 / flat).astype(np.float32)
+    calibrated = electrons
+    calibrated -= dark.astype(np.float32)[None, :]
+    calibrated *= inv_flat[None, :]
+    variance *= (inv_flat * inv_flat)[None, :]
+
+    no_data = (mask & (MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN)) != 0
+    calibrated[no_data] = np.nan
+    variance[no_data] = np.nan
+    if cosmic_rays and n_rows > 0:
+        ignore = no_data | saturated | bleed
+        hits = detect_cosmic_rays(
+            calibrated,
+            variance,
+            ignore,
+            sigclip=cosmic_sigclip,
+            sigfrac=cosmic_sigfrac,
+            objlim=cosmic_objlim,
+            n_iter=cosmic_iterations,
+        )
+        mask[hits] |= int(MaskBit.COSMIC_RAY)
+    return CalibratedStretch(calibrated, variance, mask, bias)
+
+
+# ----------------------------------------------------------------------------
+# Stage options (field names mirror the keyword arguments above)
+
+
+class _Options(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class _BiasOptions(_Options):
+    bias_window: int = Field(101, ge=1, description="Bias smoothing window, rows.")
+    bias_polyorder: int = Field(2, ge=0, description="Bias smoothing polynomial degree.")
+    overscan_clip: float = Field(4.0, gt=0, description="Overscan clipping, read noises.")
+
+
+class ColumnStatsOptions(_BiasOptions):
+    """Options of the ``column_stats`` stage (see :func:`column_statistics`)."""
+
+    block_rows: int = Field(256, ge=8, description="Rows per statistics block.")
+    clip: float = Field(3.0, gt=1, description="Clipping of stars and hits, noise units.")
+
+
+class ColumnSolveOptions(_Options):
+    """Options of the ``columns`` stage (see :func:`solve_columns`)."""
+
+    min_response: float = Field(0.5, ge=0)
+    max_response: float = Field(1.5, gt=0)
+    noise_limit: float = Field(1.5, gt=1)
+    hot_level: float = Field(5.0, gt=0, description="e- per pixel above the median column.")
+    min_blocks: int = Field(8, ge=3)
+    clip: float = Field(4.0, gt=1)
+    max_flat_error: float = Field(0.01, gt=0)
+
+
+class CalibrateOptions(_BiasOptions):
+    """Options of the ``calibrate`` stage (see :func:`calibrate_stretch`)."""
+
+    flat_field: bool = Field(True, description="Apply the solved 1-D flat and dark.")
+    start_ramp: Literal["night", "run", "none"] = Field(
+        "night",
+        description="Where charge clocking started: the first TDIROWS rows of the night, "
+        "of every run, or nowhere get LOW_EXPOSURE.",
+    )
+    bleed_fraction: float = Field(0.5, gt=0, le=1)
+    bleed_grow_rows: int = Field(2, ge=0)
+    bleed_grow_columns: int = Field(1, ge=0)
+    cosmic_rays: bool = True
+    cosmic_sigclip: float = Field(4.5, gt=0)
+    cosmic_sigfrac: float = Field(0.3, gt=0, le=1)
+    cosmic_objlim: float = Field(5.0, gt=0)
+    cosmic_iterations: int = Field(2, ge=1)
+
+
+def options_kwargs(options: BaseModel, exclude: tuple[str, ...] = ()) -> dict[str, Any]:
+    """The options as keyword arguments, leaving out stage-only fields."""
+    return {k: v for k, v in options.model_dump().items() if k not in exclude}
+
+
+# ----------------------------------------------------------------------------
+# The stage
+
+
+def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
+    rows = stretch_rows_for_stage(inputs, context, options.start_ramp)
+    columns = inputs["columns"]["columns"] if options.flat_field else None
+    result = calibrate_stretch(
+        rows.image,
+        rows.overscan,
+        gain=rows.gain,
+        read_noise=rows.read_noise,
+        saturation=rows.saturation,
+        columns=columns,
+        segment=rows.segment,
+        rows_since_start=rows.rows_since_start,
+        tdi_rows=rows.tdi_rows,
+        **options_kwargs(options, exclude=("flat_field", "start_ramp")),
+    )
+    _warn_empty_rows(result, rows, context.stretch)
+    row_table = Table(
+        {"night_row": rows.night_row, "time": rows.time, "bias": result.bias},
+        meta={"time_unit": "s since block_index reference_time", "bias_unit": "adu"},
+    )
+    return {
+        "image": result.image,
+        "variance": result.variance,
+        "mask": result.mask,
+        "rows": row_table,
+        "mask_counts": result.mask_counts,
+    }
+
+
+def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:
+    """Warn about rows that blocks cover but hold no finite pixel (NaN-filled data)."""
+    empty = rows.covered & (result.mask & MaskBit.NONFINITE != 0).all(axis=1)
+    if empty.any():
+        first, last = rows.night_row[empty][[0, -1]]
+        warnings.warn(
+            f"Stretch {stretch.id}: {int(empty.sum())} covered rows between night rows "
+            f"{first} and {last} hold no finite pixel (NaN-filled raw data?).",
+            CalibrationWarning,
+            stacklevel=2,
+        )
+
+
+#: Declaration of the calibrate stage for the runner.
+STAGE = Stage(
+    name="calibrate",
+    run=_run,
+    options=CalibrateOptions,
+    requires=("ingest", "columns", RAW_ROWS),
+    scope="stretch",
+    uses=("camera.flip_columns", "camera.flip_rows"),
+    description="Bias, 1-D flat and dark, variance and mask of each stretch.",
+)

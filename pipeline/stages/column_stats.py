@@ -1,0 +1,47 @@
+"""Column statistics: first pass of the 1-D flat and dark solve, per stretch.
+
+See :mod:`pipeline.stages.calibrate` for the three-stage split
+(``column_stats`` -> ``columns`` -> ``calibrate``).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from pipeline.stages._calib_rows import stretch_rows_for_stage
+from pipeline.stages.base import RAW_ROWS, Stage
+from pipeline.stages.calibrate import ColumnStatsOptions, column_statistics, options_kwargs
+
+__all__ = ["STAGE"]
+
+
+def _run(*, inputs, options: ColumnStatsOptions, context) -> dict[str, Any]:
+    rows = stretch_rows_for_stage(inputs, context, "night")
+    use_rows = None
+    if rows.rows_since_start is not None:
+        use_rows = rows.rows_since_start >= rows.tdi_rows
+    table = column_statistics(
+        rows.image,
+        rows.overscan,
+        rows.night_row,
+        rows.time,
+        gain=rows.gain,
+        read_noise=rows.read_noise,
+        saturation=rows.saturation,
+        segment=rows.segment,
+        use_rows=use_rows,
+        **options_kwargs(options),
+    )
+    return {"column_stats": table}
+
+
+#: Declaration of the column_stats stage for the runner.
+STAGE = Stage(
+    name="column_stats",
+    run=_run,
+    options=ColumnStatsOptions,
+    requires=("ingest", RAW_ROWS),
+    scope="stretch",
+    uses=("camera.flip_columns", "camera.flip_rows"),
+    description="Per-block clipped column levels of each stretch (for the 1-D flat and dark).",
+)

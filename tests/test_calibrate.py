@@ -1,0 +1,388 @@
+"""Tests of the calibrate stage: bias, 1-D flat and dark, variance, masks."""
+
+from __future__ import annotations
+
+import warnings
+
+import astroscrappy
+import numpy as np
+import pytest
+from astropy.table import Table
+
+from pipeline.exceptions import CalibrationWarning
+from pipeline.masks import MaskBit, has_bits
+from pipeline.stages._calib_bias import overscan_levels, smooth_levels
+from pipeline.stages._calib_cosmics import laplacian_plus
+from pipeline.stages._calib_saturation import bleed_mask, saturation_mask
+from pipeline.stages.calibrate import (
+    calibrate_stretch,
+    column_statistics,
+    detect_cosmic_rays,
+    solve_columns,
+    subtract_bias,
+    summarize_columns,
+)
+
+GAIN, READ_NOISE = 2.0, 5.0
+
+
+# ---------------------------------------------------------------------------
+# Bias
+
+
+def test_overscan_level_is_clipped_mean():
+    rng = np.random.default_rng(1)
+    overscan = 1000.0 + rng.normal(0, READ_NOISE / GAIN, (2000, 16))
+    levels = overscan_levels(overscan, READ_NOISE / GAIN)
+    # Gaussian noise of 2.5 ADU over 16 pixels: 0.625 ADU per row.  Clipping
+    # at 4 sigma about the row median drops a pixel only rarely, so the level
+    # is the plain mean to well under a tenth of its own noise, and its
+    # scatter is 0.625 ADU within 5 % (sampling error of an rms over 2000
+    # rows: 1.6 %).
+    assert np.std(levels - overscan.mean(axis=1)) < 0.05
+    assert np.std(levels) == pytest.approx(2.5 / 4, rel=0.05)
+    overscan[10, 3] += 500.0  # a cosmic ray in the overscan
+    assert overscan_levels(overscan, READ_NOISE / GAIN)[10] == pytest.approx(
+        np.delete(overscan[10], 3).mean(), abs=1e-9
+    )
+
+
+def test_smoothing_keeps_quadratic_drift():
+    # A Savitzky-Golay filter of degree 2 reproduces any quadratic exactly
+    # (Savitzky & Golay 1964, Anal. Chem. 36, 1627).
+    x = np.arange(1000.0)
+    drift = 1000 + 0.01 * x - 2e-5 * x**2
+    np.testing.assert_allclose(smooth_levels(drift, 101, 2), drift, atol=1e-8)
+    noise = np.random.default_rng(2).normal(0, 1, 50_000)
+    # White noise through the degree-2 filter over 2m+1 = 101 points keeps a
+    # variance equal to the central weight 3(3m^2+3m-1)/((2m-1)(2m+1)(2m+3))
+    # = 0.02228 (least-squares projection; Savitzky & Golay 1964, derived).
+    # The output is correlated over ~100 rows, so 50000 rows give ~500
+    # independent samples: the rms is known to ~3 %; allow 8 %.
+    assert np.std(smooth_levels(noise, 101, 2)[100:-100]) == pytest.approx(
+        np.sqrt(0.02228), rel=0.08
+    )
+
+
+def test_bias_is_smoothed_per_segment_and_not_across_a_gap():
+    n_rows = 600
+    bias = np.where(np.arange(n_rows) < 300, 1000.0, 1040.0)  # jump across a gap
+    overscan = np.repeat(bias[:, None], 8, axis=1)
+    image = np.repeat(bias[:, None], 4, axis=1) + 10.0
+    segment = np.where(np.arange(n_rows) < 290, 0, 1)
+    segment[290:310] = -1
+    overscan[290:310] = image[290:310] = np.nan
+    electrons, fitted = subtract_bias(
+        image, overscan, gain=GAIN, read_noise=READ_NOISE, segment=segment, bias_window=101
+    )
+    good = segment >= 0
+    np.testing.assert_allclose(fitted[good], bias[good], atol=1e-9)
+    np.testing.assert_allclose(electrons[good], 20.0, atol=1e-4)
+    assert np.isnan(fitted[~good]).all()
+
+
+# ---------------------------------------------------------------------------
+# Saturation and bleed
+
+
+def test_bleed_runs_along_the_scan_only():
+    raw = np.full((40, 9), 1000.0)
+    raw[10:14, 4] = 60000.0  # saturated core
+    raw[14:20, 4] = 50000.0  # trail at near full well
+    raw[20, 4] = 3000.0  # trail end
+    raw[10:14, 3] = 40000.0  # bright, unsaturated neighbour across the scan
+    saturated = saturation_mask(raw, 60000.0)
+    bleed = bleed_mask(raw, saturated, 30000.0, grow_rows=2, grow_columns=1)
+    assert saturated.sum() == 4
+    # The trail (rows 14-19) and 2 rows beyond both ends are bleed in column 4.
+    assert bleed[14:22, 4].all() and bleed[8:10, 4].all()
+    assert not bleed[23:, 4].any() and not bleed[:8, 4].any()
+    # One column of margin each side over the same rows, nothing further out.
+    assert bleed[8:22, 3].all() and bleed[8:22, 5].all()
+    assert not bleed[:, :3].any() and not bleed[:, 6:].any()
+
+
+# ---------------------------------------------------------------------------
+# Cosmic rays
+
+
+def test_laplacian_matches_subsample_convolve_rebin():
+    # L+ as defined by van Dokkum (2001, PASP 113, 1420, eqs. 2-4): subsample
+    # 2x2, convolve with the Laplacian, clip at zero, block-average.
+    rng = np.random.default_rng(3)
+    image = rng.normal(100, 10, (20, 30)).astype(np.float32)
+    sub = np.repeat(np.repeat(image, 2, axis=0), 2, axis=1)
+    padded = np.pad(sub, 1, mode="edge")
+    lap = (
+        4 * sub - padded[:-2, 1:-1] - padded[2:, 1:-1] - padded[1:-1, :-2] - padded[1:-1, 2:]
+    ).clip(min=0)
+    expected = lap.reshape(20, 2, 30, 2).mean(axis=(1, 3))
+    np.testing.assert_allclose(laplacian_plus(image), expected, rtol=1e-5, atol=1e-3)
+
+
+def _star_field(rng, shape, n_stars, fwhm, sky):
+    """Sky plus round Gaussian stars (invented test data), expected electrons."""
+    truth = np.full(shape, sky, dtype=np.float64)
+    sigma = fwhm / 2.3548
+    yy, xx = np.mgrid[-10:11, -10:11]
+    centres = []
+    for _ in range(n_stars):
+        y, x = rng.uniform(12, shape[0] - 12), rng.uniform(12, shape[1] - 12)
+        flux = 10 ** rng.uniform(2.5, 5.0)
+        iy, ix = int(y), int(x)
+        g = np.exp(-((yy + iy - y) ** 2 + (xx + ix - x) ** 2) / (2 * sigma**2))
+        truth[iy - 10 : iy + 11, ix - 10 : ix + 11] += flux * g / (2 * np.pi * sigma**2)
+        centres.append((y, x))
+    return truth, np.array(centres)
+
+
+def _cosmic_rays(rng, shape, n_hits):
+    """Sharp hits of 1-2 pixels, log-normal charge (invented test data)."""
+    deposit = np.zeros(shape)
+    rows = rng.integers(2, shape[0] - 2, n_hits)
+    cols = rng.integers(2, shape[1] - 2, n_hits)
+    charge = 1500 * rng.lognormal(0, 0.6, n_hits)
+    deposit[rows, cols] += charge
+    second = rng.random(n_hits) < 0.5
+    deposit[rows[second] + 1, cols[second]] += 0.5 * charge[second]
+    return deposit, rows, cols
+
+
+def test_cosmic_rays_agree_with_astroscrappy():
+    # astroscrappy is the maintained implementation of L.A.Cosmic (van Dokkum
+    # 2001); with the same parameters and noise model our detector, which
+    # evaluates the median filters only near candidates, must flag nearly
+    # the same pixels.
+    rng = np.random.default_rng(4)
+    shape = (256, 256)
+    truth, _ = _star_field(rng, shape, 40, 3.0, 200.0)
+    deposit, rows, cols = _cosmic_rays(rng, shape, 150)
+    image = (rng.poisson(truth) + rng.normal(0, READ_NOISE, shape) + deposit).astype(np.float32)
+    variance = (READ_NOISE**2 + np.maximum(image, 0)).astype(np.float32)
+    ours = detect_cosmic_rays(image, variance, n_iter=2)
+    theirs, _ = astroscrappy.detect_cosmics(
+        image,
+        invar=variance,
+        gain=1.0,
+        readnoise=READ_NOISE,
+        niter=2,
+        sepmed=False,
+        cleantype="medmask",
+        fsmode="median",
+        satlevel=1e9,
+    )
+    union = (ours | theirs).sum()
+    # Allow 5 % of the union to differ: the 5x5 median of S' uses the centre
+    # pixel's noise here (see the module docstring) and the cleaning differs.
+    assert (ours ^ theirs).sum() <= 0.05 * union
+    assert ours[rows, cols].mean() >= 0.95  # nearly every hit centre found
+
+
+# ---------------------------------------------------------------------------
+# Column solve
+
+
+def _tdi_raw(rng, n_rows=8192, n_columns=48, n_overscan=8, noise=True, sky=None):
+    """A raw TDI stretch with known truth (invented test data).
+
+    Sky ramps along the scan, columns have a response and an additive level,
+    the bias drifts and has a fixed column pattern.
+    """
+    t = np.arange(n_rows) / n_rows
+    sky = 150.0 + 900.0 * t + 100 * np.sin(6 * t) if sky is None else sky
+    response = 1 + 0.02 * rng.standard_normal(n_columns)
+    response[5] = 0.1  # dead column
+    dark = 6 + rng.standard_normal(n_columns)
+    dark[11] += 60.0  # hot column
+    bias_row = 1000.0 + 4.0 * t + 1.5 * np.sin(2 * np.pi * t * 3)
+    pattern = 2.0 * rng.standard_normal(n_columns)
+    expected = response[None, :] * sky[:, None] + dark[None, :]
+    electrons = (
+        rng.poisson(expected) + rng.normal(0, READ_NOISE, expected.shape) if noise else expected
+    )
+    adu = electrons / GAIN + bias_row[:, None] + pattern[None, :]
+    overscan = bias_row[:, None] + (
+        rng.normal(0, READ_NOISE / GAIN, (n_rows, n_overscan)) if noise else 0.0
+    )
+    if noise:
+        adu, overscan = np.rint(adu), np.rint(overscan)
+    truth = {
+        "sky": sky,
+        "response": response,
+        "dark": dark + GAIN * pattern,  # all additive terms in electrons
+        "bias": bias_row,
+        "pattern": pattern,
+    }
+    return adu.astype(np.float32), np.asarray(overscan, np.float32), truth
+
+
+def _solve(adu, overscan, **kwargs):
+    n_rows = adu.shape[0]
+    stats = [
+        column_statistics(
+            adu[s],
+            overscan[s],
+            np.arange(n_rows)[s],
+            np.arange(n_rows)[s] * 0.05,
+            gain=GAIN,
+            read_noise=READ_NOISE,
+            saturation=65535.0,
+        )
+        for s in (slice(0, n_rows // 2 + 300), slice(n_rows // 2 - 300, n_rows))
+    ]  # two overlapping stretches, as the runner cuts them
+    return solve_columns(stats, **kwargs)
+
+
+def test_column_solve_is_exact_without_noise():
+    # Noise-free data follow level = g s + d exactly, so the regression returns
+    # the truth to rounding (analytic).
+    adu, overscan, truth = _tdi_raw(np.random.default_rng(5), noise=False)
+    columns = _solve(adu, overscan)
+    good = columns["flags"] == 0
+    reference = np.ones(adu.shape[1], bool)
+    reference[[5, 11]] = False
+    f = truth["response"] / truth["response"][reference].mean()
+    d = truth["dark"] - f * truth["dark"][reference].mean()  # identifiable part (module doc)
+    np.testing.assert_allclose(columns["flat"][good], f[good], atol=1e-6)
+    np.testing.assert_allclose(columns["dark"][good], d[good], atol=1e-3)
+    assert columns["flags"][5] & MaskBit.BAD_COLUMN
+    assert columns["flags"][11] & MaskBit.HOT_COLUMN
+    assert columns.meta["method"] == "regression"
+
+
+def test_column_summaries_merge_overlaps():
+    adu, overscan, _ = _tdi_raw(np.random.default_rng(6), n_rows=1024, noise=False)
+    rows = np.arange(1024)
+    kwargs = {"gain": GAIN, "read_noise": READ_NOISE, "saturation": 65535.0, "block_rows": 256}
+    whole = column_statistics(adu, overscan, rows, rows * 0.05, **kwargs)
+    first = column_statistics(adu[:600], overscan[:600], rows[:600], rows[:600] * 0.05, **kwargs)
+    assert list(whole["block"]) == [0, 1, 2, 3] and list(first["n_rows"]) == [256, 256, 88]
+
+
+def test_flat_sky_falls_back_to_ratio_with_warning():
+    rng = np.random.default_rng(7)
+    adu, overscan, _truth = _tdi_raw(rng, n_rows=4096, sky=np.full(4096, 500.0))
+    with pytest.warns(CalibrationWarning, match="varies too little"):
+        columns = _solve(adu, overscan)
+    assert columns.meta["method"] == "ratio"
+    assert np.all(columns["dark"] == 0)
+
+
+# ---------------------------------------------------------------------------
+# The whole stretch
+
+
+def _calibrate_with_truth(adu, overscan, truth, **kwargs):
+    """Calibrate with the true flat, additive level and bias pattern."""
+    return calibrate_stretch(
+        adu,
+        overscan,
+        gain=GAIN,
+        read_noise=READ_NOISE,
+        saturation=65535.0,
+        flat=truth["response"],
+        dark=truth["dark"] - GAIN * truth["pattern"],
+        column_bias=truth["pattern"],
+        **kwargs,
+    )
+
+
+def test_calibration_inverts_the_raw_model_without_noise():
+    # Apply-then-remove (common practice): noise-free raw data built from a
+    # known bias, pattern, flat and dark calibrate back to the sky exactly.
+    adu, overscan, truth = _tdi_raw(np.random.default_rng(8), n_rows=2048, noise=False)
+    result = _calibrate_with_truth(adu, overscan, truth, cosmic_rays=False, bias_window=1)
+    good = np.ones(adu.shape[1], bool)
+    # float32 holds a ~1000 ADU raw value to 6e-5 ADU; times GAIN and 1/flat
+    # (10 for the dead column) that is ~1e-3 e-.
+    np.testing.assert_allclose(result.image, np.repeat(truth["sky"][:, None], 48, 1), atol=5e-3)
+    np.testing.assert_allclose(result.bias, truth["bias"], atol=1e-6)
+    # Variance model: RDNOISE^2 + collected electrons + GAIN^2/12, over flat^2.
+    collected = truth["response"] * truth["sky"][:, None] + truth["dark"] - GAIN * truth["pattern"]
+    expected = (READ_NOISE**2 + collected + GAIN**2 / 12) / truth["response"] ** 2
+    np.testing.assert_allclose(result.variance[:, good], expected[:, good], rtol=2e-5)
+    assert result.mask.dtype == np.uint16 and not result.mask.any()
+
+
+def test_column_mask_gap_ramp_and_nonfinite_bits():
+    adu, overscan, _truth = _tdi_raw(np.random.default_rng(9), n_rows=512, noise=False)
+    adu[100, 7] = np.nan
+    segment = np.zeros(512, int)
+    segment[200:220] = -1
+    adu[200:220] = overscan[200:220] = np.nan
+    columns = Table({"flat": np.ones(48), "dark": np.zeros(48), "flags": np.zeros(48, np.uint16)})
+    columns["flags"][3] = MaskBit.BAD_COLUMN
+    result = calibrate_stretch(
+        adu,
+        overscan,
+        gain=GAIN,
+        read_noise=READ_NOISE,
+        saturation=65535.0,
+        columns=columns,
+        segment=segment,
+        rows_since_start=np.arange(512),
+        tdi_rows=64,
+        cosmic_rays=False,
+    )
+    assert has_bits(result.mask[100, 7], MaskBit.NONFINITE)
+    assert has_bits(result.mask[200:220], MaskBit.GAP).all()
+    assert not has_bits(result.mask[200:220], MaskBit.NONFINITE).any()
+    assert has_bits(result.mask[:, 3], MaskBit.BAD_COLUMN).all()
+    assert has_bits(result.mask[:64, 0], MaskBit.LOW_EXPOSURE).all()
+    assert not has_bits(result.mask[64:, 0], MaskBit.LOW_EXPOSURE).any()
+    assert np.isnan(result.image[:, 3]).all() and np.isnan(result.variance[200:220]).all()
+    assert np.isfinite(result.image[300:, 4:]).all()
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"gain": np.ones(3)}, "gain must be a scalar or have shape"),
+        ({"flat": np.ones(5)}, "flat must have shape"),
+        ({"segment": np.zeros(3)}, "segment must have shape"),
+    ],
+)
+def test_bad_arguments_name_the_parameter(kwargs, message):
+    adu, overscan, _ = _tdi_raw(np.random.default_rng(10), n_rows=64, noise=False)
+    args = {"gain": GAIN, "read_noise": READ_NOISE, "saturation": 65535.0} | kwargs
+    with pytest.raises(ValueError, match=message):
+        calibrate_stretch(adu, overscan, **args)
+
+
+def test_normalised_residuals_of_blank_sky():
+    # Self-consistency until the simulator is used: Poisson + Gaussian read
+    # noise + ADC rounding; the noise model must describe the scatter.
+    rng = np.random.default_rng(11)
+    adu, overscan, truth = _tdi_raw(rng, n_rows=4096)
+    result = _calibrate_with_truth(adu, overscan, truth)
+    good = result.mask == 0
+    good[:, 5] = False  # the dead column is nearly all read noise; keep it anyway below
+    pull = (result.image - truth["sky"][:, None]) / np.sqrt(result.variance)
+    # 4096 x 47 pixels: the std of a unit normal sample is known to 0.2 %;
+    # 0.03 is the requirement.
+    assert np.std(pull[good]) == pytest.approx(1.0, abs=0.03)
+    assert abs(np.mean(pull[good])) < 0.03
+
+
+def test_summary_ignores_saturated_and_nonfinite_pixels():
+    electrons = np.full((256, 4), 100.0, dtype=np.float32)
+    electrons[:10, 1] = np.nan
+    electrons[:100, 2] = 1e6
+    ignore = np.zeros(electrons.shape, bool)
+    ignore[:100, 2] = True
+    table = summarize_columns(electrons, np.arange(256), np.arange(256.0), READ_NOISE, ignore)
+    np.testing.assert_allclose(table["level"][0], 100.0)
+    assert list(table["n_pixels"][0]) == [256, 246, 156, 256]
+
+
+def test_solve_columns_needs_input():
+    with pytest.raises(ValueError, match="summaries is empty"):
+        solve_columns([])
+
+
+def test_no_warnings_on_all_nan_block():
+    electrons = np.full((256, 3), np.nan, dtype=np.float32)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        table = summarize_columns(electrons, np.arange(256), np.arange(256.0), READ_NOISE)
+    assert np.isnan(table["level"]).all()
