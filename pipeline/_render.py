@@ -128,14 +128,27 @@ class GaussianMixturePSF:
         return np.clip(r.max(axis=1), 2.5 * self.fwhm, max_fwhm * self.fwhm)
 
 
-def _pixel_profile(edges: np.ndarray, x: np.ndarray, sigma: float) -> np.ndarray:
+def _pixel_profile(edges: np.ndarray, x: np.ndarray, sigma: float, box: float = 0.0):
     """Fraction of a 1-D Gaussian at ``x`` falling in each pixel.
+
+    With ``box > 0`` the Gaussian is first convolved with a top-hat of that
+    width (pixels), using the antiderivative of erf,
+    ``G(z) = z erf(z) + exp(-z^2) / sqrt(pi)``.
 
     edges : (n, K+1) pixel edges; x : (n, S) centres.  Returns (n, S, K).
     """
-    z = (edges[:, None, :] - x[:, :, None]) * (1.0 / (_SQRT2 * sigma))
-    e = erf(z)
-    return 0.5 * (e[:, :, 1:] - e[:, :, :-1])
+    a = _SQRT2 * sigma
+    z = (edges[:, None, :] - x[:, :, None]) * (1.0 / a)
+    if box <= 0:
+        e = erf(z)
+        return 0.5 * (e[:, :, 1:] - e[:, :, :-1])
+    h = 0.5 * box / a
+    e = _erf_antiderivative(z + h) - _erf_antiderivative(z - h)
+    return (0.5 / (2.0 * h)) * (e[:, :, 1:] - e[:, :, :-1])
+
+
+def _erf_antiderivative(z: np.ndarray) -> np.ndarray:
+    return z * erf(z) + np.exp(-z * z) * (1.0 / np.sqrt(np.pi))
 
 
 def _stamp_size(
@@ -164,6 +177,7 @@ def render_tracks(
     *,
     origin: tuple[int, int] = (0, 0),
     radius: np.ndarray | None = None,
+    row_box: float = 0.0,
     out: np.ndarray | None = None,
 ) -> np.ndarray:
     """Add stars that move along tracks to an image, pixel-integrated.
@@ -186,6 +200,10 @@ def render_tracks(
         Stamp half-size in pixels; default ``psf.radius(weights.sum(axis=1))``.
         Light beyond the stamp is folded back (each stamp is renormalised to
         hold exactly ``weights.sum(axis=1)``), so flux is conserved.
+    row_box : float
+        Width (pixels) of a top-hat along the scan convolved with every
+        sample; 1.0 models the discrete one-row steps of TDI clocking (the
+        packet stands still for a line time while the image moves one row).
     out : ndarray, shape ``shape``, optional
         Image to add to (float64); a new zero image if None.
 
@@ -234,19 +252,19 @@ def render_tracks(
         for start in range(0, idx.size, batch):
             sel = idx[start : start + batch]
             stamps = _render_stamps(
-                r[sel], c[sel], weights[sel], r0[sel], c0[sel], kr, kc, psf, flux[sel]
+                r[sel], c[sel], weights[sel], r0[sel], c0[sel], kr, kc, psf, flux[sel], row_box
             )
             _accumulate(flat, stamps, r0[sel] - row_lo, c0[sel] - col_lo, n_rows, n_cols)
     return image
 
 
-def _render_stamps(r, c, w, r0, c0, kr, kc, psf, flux):
+def _render_stamps(r, c, w, r0, c0, kr, kc, psf, flux, row_box):
     """Stamps of shape (n, kr, kc) with top-left pixel (r0, c0), each summing to flux."""
     edges_r = r0[:, None] + np.arange(kr + 1) - 0.5
     edges_c = c0[:, None] + np.arange(kc + 1) - 0.5
     stamps = np.zeros((r.shape[0], kr, kc))
     for sigma, frac in zip(psf.sigmas, psf.weights, strict=True):
-        p = _pixel_profile(edges_r, r, sigma)  # (n, S, kr)
+        p = _pixel_profile(edges_r, r, sigma, row_box)  # (n, S, kr)
         q = _pixel_profile(edges_c, c, sigma)  # (n, S, kc)
         p *= (w * frac)[:, :, None]
         stamps += np.matmul(p.transpose(0, 2, 1), q)
