@@ -8,8 +8,11 @@ stopping the batch.
 
 * ``serial``: one after the other in this process (debugging, profiling).
 * ``local``: :class:`concurrent.futures.ProcessPoolExecutor` with
-  ``run.workers`` processes started with ``spawn`` (safe with threads, same on
-  every OS).  The pool is created on first use and reused by later stages.
+  ``run.workers`` processes started with ``spawn``: fresh interpreters, safe
+  when this process has threads (unlike ``fork``), the same on every OS, and
+  seeing the environment as it is when the run starts (a fork server would
+  keep the environment of its own start).  The pool is created on first use
+  and reused by later stages of the run.
 * ``dask``: a :class:`distributed.Client` connected to ``run.scheduler``, or,
   without a scheduler address, to a ``distributed.LocalCluster`` of
   ``run.workers`` processes started for the run.  Workers must see the same
@@ -36,6 +39,10 @@ log = logging.getLogger(__name__)
 Outcome = Any
 OnError = Callable[[Any, str], Outcome]
 
+_SPAWN = multiprocessing.get_context("spawn")
+_BROKEN = object()  # marker: the task's pool broke before it reported
+_DIED = "its worker process died (killed, or out of memory); see the system log"
+
 
 class Executor:
     """Runs ``fn`` over tasks; a context manager that frees its workers on exit."""
@@ -59,7 +66,7 @@ class Executor:
 
 
 class LocalPoolExecutor(Executor):
-    """A spawn-started process pool on this machine."""
+    """A process pool on this machine, workers started with 'spawn'."""
 
     remote = True
 
@@ -68,26 +75,37 @@ class LocalPoolExecutor(Executor):
         self._pool: ProcessPoolExecutor | None = None
 
     def map(self, fn, tasks, on_error) -> Iterator[Outcome]:
+        # When a worker dies (killed, out of memory) the whole pool breaks and
+        # every unfinished task fails with it.  Those tasks are retried one at
+        # a time in a fresh pool, so only a task that kills its worker by
+        # itself is reported as failed.
+        caught = []
+        for task, outcome in self._batch(fn, tasks, on_error):
+            if outcome is _BROKEN:
+                caught.append(task)
+            else:
+                yield outcome
+        for task in caught:
+            for _, outcome in self._batch(fn, [task], on_error):
+                yield on_error(task, _DIED) if outcome is _BROKEN else outcome
+
+    def _batch(self, fn, tasks, on_error) -> Iterator[tuple[Any, Outcome]]:
         if not tasks:
             return
         if self._pool is None:
-            context = multiprocessing.get_context("spawn")
-            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=context)
+            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=_SPAWN)
             log.debug("started a local pool of %d worker processes", self.workers)
         futures = {self._pool.submit(fn, task): task for task in tasks}
         broken = False
         for future in as_completed(futures):
+            task = futures[future]
             try:
-                yield future.result()
+                yield task, future.result()
             except BrokenProcessPool:
                 broken = True
-                yield on_error(
-                    futures[future],
-                    "a worker process died (killed, or out of memory) while this unit ran "
-                    "or was queued",
-                )
+                yield task, _BROKEN
             except Exception as exc:  # e.g. the task could not be pickled
-                yield on_error(futures[future], f"{type(exc).__name__}: {exc}")
+                yield task, on_error(task, f"{type(exc).__name__}: {exc}")
         if broken:  # a broken pool accepts no more work; start afresh next time
             self.close()
 
@@ -137,7 +155,7 @@ class DaskExecutor(Executor):
             client.submit(fn, task, pure=False, key=f"{task.stage.name}-{task.unit}-{batch}"): task
             for task in tasks
         }
-        for future in distributed.as_completed(list(futures)):
+        for future in distributed.as_completed(list(futures), loop=client.loop):
             try:
                 yield future.result()
             except Exception as exc:  # KilledWorker, lost connection, ...

@@ -39,6 +39,7 @@ scalar (``4`` is an int, ``true`` a bool, ``null`` None, ``[1, 2]`` a list).
 from __future__ import annotations
 
 import dataclasses
+import datetime
 import difflib
 import functools
 import importlib
@@ -51,7 +52,15 @@ from pathlib import Path
 from typing import Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, create_model, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    create_model,
+    field_validator,
+    model_validator,
+)
 
 from pipeline.exceptions import ConfigError
 from pipeline.geometry.instrument import Camera, Site
@@ -87,6 +96,12 @@ class NightSection(StrictModel):
     raw_dir: Path = Field(description="folder holding the raw TDI blocks")
     pattern: str = Field("*.fits", description="glob of raw files below raw_dir")
     output_dir: Path = Field(description="products go to output_dir/<name>/")
+
+    @field_validator("name", mode="before")
+    @classmethod
+    def _date_as_text(cls, value: Any) -> Any:
+        # YAML reads an unquoted 2026-03-14 as a date; a night name is text.
+        return value.isoformat() if isinstance(value, datetime.date) else value
 
 
 class RunSection(StrictModel):
@@ -194,8 +209,24 @@ def _resolve_section(spec: type[BaseModel] | str) -> Any:
     return getattr(importlib.import_module(module_name), attribute, dict[str, Any])
 
 
+def _check_uses(graph: tuple[Stage, ...]) -> None:
+    """Check that every stage ``uses`` only existing site/camera/run fields."""
+    sections = {"site": SiteSection, "camera": CameraSection, "run": RunSection}
+    for stage in graph:
+        for name in stage.uses:
+            section, _, key = name.partition(".")
+            model = sections.get(section)
+            if model is None or (key and key not in model.model_fields):
+                known = ", ".join(model.model_fields) if model else ", ".join(sections)
+                raise ValueError(
+                    f"Stage {stage.name!r} uses {name!r}, which is not 'site', 'camera', "
+                    f"'run' or one of their fields ({known})."
+                )
+
+
 @functools.lru_cache(maxsize=16)
 def _config_model(graph: tuple[Stage, ...]) -> type[BaseModel]:
+    _check_uses(graph)
     stage_fields: dict[str, Any] = {
         stage.name: (stage.options, Field(default_factory=stage.options)) for stage in graph
     }

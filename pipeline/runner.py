@@ -331,26 +331,21 @@ class _Night:
 
     # -- what a unit depends on -------------------------------------------------
 
-    def _context_value(self, stage: Stage, name: str) -> Any:
-        sections = {
-            "site": dataclasses.asdict(self.context.site),
-            "camera": dataclasses.asdict(self.context.camera),
-            "run": self.config.run.model_dump(mode="json"),
-        }
+    def _context_value(self, name: str) -> Any:
+        # names were checked against the sections when the config was built
         section, _, key = name.partition(".")
-        if section not in sections or (key and key not in sections[section]):
-            raise ValueError(
-                f"Stage {stage.name!r} uses {name!r}, which is not 'site', 'camera', 'run' "
-                f"or one of their fields ({', '.join(sorted(sections.get(section, {})))})."
-            )
-        return sections[section][key] if key else sections[section]
+        if section == "run":
+            values = self.config.run.model_dump(mode="json")
+        else:
+            values = dataclasses.asdict(getattr(self.context, section))
+        return values[key] if key else values
 
     def config_data(self, stage: Stage, stretch: Stretch | None) -> dict[str, Any]:
         """What the stage's products depend on besides its inputs (hashed)."""
         options = self.config.stage_options(stage.name)
         return {
             "options": options.model_dump(mode="json"),
-            "uses": {name: self._context_value(stage, name) for name in stage.uses},
+            "uses": {name: self._context_value(name) for name in stage.uses},
             "rows": None
             if stretch is None
             else [stretch.lo, stretch.start, stretch.stop, stretch.hi],

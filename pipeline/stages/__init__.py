@@ -3,9 +3,10 @@
 Each stage lives in its own module ``pipeline/stages/<name>.py``: a public
 function over arrays and tables, an options model, and a module-level
 ``STAGE`` (a :class:`~pipeline.stages.base.Stage`) that declares it to the
-runner.  :data:`GRAPH` is the ordered tuple of registered stages; the order
-is the order the runner runs them in, and a stage may only require earlier
-ones.  To register a stage, add its module name to ``STAGE_MODULES`` below.
+runner.  ``GRAPH`` is the ordered tuple of registered stages (built on first
+access); the order is the order the runner runs them in, and a stage may only
+require earlier ones.  To register a stage, add its module name to
+``STAGE_MODULES`` below.
 """
 
 from __future__ import annotations
@@ -71,5 +72,11 @@ def _load_graph() -> tuple[Stage, ...]:
     return check_graph(stages)
 
 
-#: The registered stages, in run order.
-GRAPH: tuple[Stage, ...] = _load_graph()
+def __getattr__(name: str):
+    # GRAPH is built on first use (PEP 562), so importing pipeline.stages.base
+    # (as every stage module does) does not import every stage.
+    if name == "GRAPH":
+        graph = _load_graph()
+        globals()["GRAPH"] = graph
+        return graph
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

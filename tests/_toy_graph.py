@@ -1,0 +1,142 @@
+"""A tiny stage graph for testing the runner without the real stages.
+
+``index`` (night) turns raw headers into a block index, ``scale`` (per
+stretch) multiplies the raw rows, ``smooth`` (per stretch) box-filters
+``scale``'s image along the scan axis, and ``total`` (night) adds up the
+stretches.  Everything is small numpy work with results known exactly.
+
+Fault injection for the resume tests, through the environment (so that it
+reaches worker processes and does not change the config hash):
+``ZDRIFT_TOY_DIE_ON=<stretch index>`` makes ``scale`` kill its own process
+with ``os._exit`` on that stretch: every time, or, if ``ZDRIFT_TOY_DIE_MARK``
+names a file, only once (it creates the file first and does not die if the
+file exists).
+
+This module lives in ``tests/`` (on ``sys.path`` under pytest), so worker
+processes started by the local pool and by dask can import it by name.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+from pydantic import BaseModel, ConfigDict
+
+from pipeline.stages.base import BLOCK_INDEX, RAW_FILES, RAW_ROWS, Stage
+
+N_COLUMNS = 6
+
+
+class _Options(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class IndexOptions(_Options):
+    sequence_keyword: str = "BLOCKSEQ"
+
+
+class ScaleOptions(_Options):
+    factor: float = 2.0
+    fail_on: list[int] = []
+
+
+class SmoothOptions(_Options):
+    width: int = 3
+
+
+class TotalOptions(_Options):
+    label: str = "sum"
+
+
+def build_index(*, inputs, options, context):
+    good = [f for f in inputs[RAW_FILES] if f.error is None]
+    good.sort(key=lambda f: f.header[options.sequence_keyword])
+    starts = np.cumsum([0] + [f.header["NAXIS2"] for f in good])[:-1]
+    index = Table(
+        {
+            "file": [f.name for f in good],
+            "hdu": [f.hdu for f in good],
+            "row_start": starts.astype(int),
+            "n_rows": [f.header["NAXIS2"] for f in good],
+        }
+    )
+    rejected = {f.name: f.error for f in inputs[RAW_FILES] if f.error is not None}
+    return {BLOCK_INDEX: index, "rejected": rejected}
+
+
+def scale_rows(*, inputs, options, context):
+    stretch = context.stretch
+    if stretch.index in options.fail_on:
+        raise ValueError(f"toy failure on stretch {stretch.index}")
+    if os.environ.get("ZDRIFT_TOY_DIE_ON") == str(stretch.index):
+        mark = os.environ.get("ZDRIFT_TOY_DIE_MARK")
+        if mark is None:
+            os._exit(3)
+        if not Path(mark).exists():
+            Path(mark).touch()
+            os._exit(3)
+    image = inputs[RAW_ROWS] * np.float32(options.factor)
+    header = fits.Header({"FACTOR": options.factor})
+    return {
+        "image": image,
+        "mask": ~np.isfinite(image),
+        "framed": fits.ImageHDU(image[stretch.core], header=header),
+        "stats": {"core_sum": float(np.nansum(image[stretch.core])), "rows": stretch.n_rows},
+    }
+
+
+def smooth_rows(*, inputs, options, context):
+    image = inputs["scale"]["image"]
+    kernel = np.ones(options.width) / options.width
+    smoothed = np.apply_along_axis(np.convolve, 0, image, kernel, mode="same")
+    return {"image": smoothed[context.stretch.core]}
+
+
+def add_up(*, inputs, options, context):
+    sums = [float(products["image"].sum()) for products in inputs["smooth"]]
+    table = Table({"stretch": np.arange(len(sums)), options.label: sums})
+    return {"per_stretch": table, "summary": {"total": float(np.sum(sums)), "n": len(sums)}}
+
+
+GRAPH = (
+    Stage("index", build_index, IndexOptions, (RAW_FILES,), "night", (), defines_rows=True),
+    Stage("scale", scale_rows, ScaleOptions, (RAW_ROWS,), "stretch", ("camera.n_columns",)),
+    Stage("smooth", smooth_rows, SmoothOptions, ("scale",), "stretch", ()),
+    Stage("total", add_up, TotalOptions, ("smooth",), "night", ()),
+)
+
+
+def write_raw_night(raw_dir: Path, n_blocks: int = 4, rows_per_block: int = 25) -> np.ndarray:
+    """Write a toy night of raw blocks (uint16 with BZERO) and return its rows.
+
+    Block files are named so that their alphabetical order differs from the
+    BLOCKSEQ order, which the index stage must follow.
+    """
+    raw_dir.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(12345)
+    night = rng.integers(1000, 60000, size=(n_blocks * rows_per_block, N_COLUMNS))
+    night = night.astype(np.uint16)
+    for seq in range(n_blocks):
+        block = night[seq * rows_per_block : (seq + 1) * rows_per_block]
+        hdu = fits.PrimaryHDU(block, header=fits.Header({"BLOCKSEQ": seq}))
+        hdu.writeto(raw_dir / f"block_{(7 * seq) % n_blocks}_{seq}.fits")
+    return night.astype(np.float64)
+
+
+def toy_config_data(tmp: Path) -> dict:
+    """A config mapping for the toy night under ``tmp``."""
+    return {
+        "night": {"name": "toy", "raw_dir": str(tmp / "raw"), "output_dir": str(tmp / "out")},
+        "site": {"latitude": -20.0, "longitude": 30.0, "name": "Fictional Ridge"},
+        "camera": {
+            "n_columns": N_COLUMNS,
+            "tdi_rows": 16,
+            "pixel_size": 15.0,
+            "focal_length": 4.0,
+        },
+        "run": {"stretch_rows": 30, "overlap_rows": 4, "executor": "serial"},
+    }

@@ -1,0 +1,123 @@
+"""Tests of the zdrift command line: exit codes, output, log file (toy graph)."""
+
+from __future__ import annotations
+
+import json
+import socket
+import subprocess
+import sys
+from pathlib import Path
+
+import _toy_graph
+import pytest
+import yaml
+
+import pipeline
+import pipeline.stages
+from pipeline.cli import main
+
+
+@pytest.fixture
+def toy_file(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    """A toy night on disk and its config file; the CLI sees the toy graph."""
+    monkeypatch.setattr(pipeline.stages, "GRAPH", _toy_graph.GRAPH, raising=False)
+    _toy_graph.write_raw_night(tmp_path / "raw")
+    data = _toy_graph.toy_config_data(tmp_path)
+    data["night"].update(raw_dir="raw", output_dir="out")  # relative to the file
+    path = tmp_path / "night.yaml"
+    path.write_text(yaml.safe_dump(data))
+    return path
+
+
+def test_version(capsys: pytest.CaptureFixture) -> None:
+    assert main(["--version"]) == 0
+    assert capsys.readouterr().out.strip() == f"zdrift {pipeline.__version__}"
+
+
+def test_python_m_pipeline_runs_the_cli() -> None:
+    result = subprocess.run(
+        [sys.executable, "-m", "pipeline", "--version"], capture_output=True, text=True
+    )
+    assert result.returncode == 0 and result.stdout.strip() == f"zdrift {pipeline.__version__}"
+
+
+def test_a_command_is_required(capsys: pytest.CaptureFixture) -> None:
+    assert main([]) == 2
+    assert "required: COMMAND" in capsys.readouterr().err
+
+
+def test_config_prints_the_resolved_config(toy_file: Path, capsys) -> None:
+    assert main(["config", str(toy_file), "--set", "stages.smooth.width=5"]) == 0
+    printed = yaml.safe_load(capsys.readouterr().out)
+    assert printed["night"]["raw_dir"] == str(toy_file.parent / "raw")
+    assert printed["stages"]["smooth"] == {"width": 5}
+    assert printed["run"]["overlap_rows"] == 4 and printed["site"]["height"] == 0.0
+
+
+def test_config_error_exits_2_with_the_key_and_a_hint(toy_file: Path, capsys) -> None:
+    assert main(["config", str(toy_file), "--set", "run.workrs=2"]) == 2
+    err = capsys.readouterr().err
+    assert "--set run.workrs=2: run.workrs: unknown key; did you mean 'workers'?" in err
+
+
+def test_run_status_and_reruns(toy_file: Path, capsys) -> None:
+    assert main(["run", str(toy_file)]) == 0
+    captured = capsys.readouterr()
+    assert "night toy: 10 units ran, 0 up to date, 0 failed, 0 blocked" in captured.out
+    assert "scale: 4/4 units" in captured.err  # progress on stderr
+    log_text = (toy_file.parent / "out/toy/zdrift.log").read_text()
+    assert "scale/s0003 done in" in log_text
+
+    assert main(["status", str(toy_file)]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[1].split() == ["stage", "scope", "done", "stale", "missing", "failed"]
+    assert lines[3].split() == ["scale", "stretch", "4", "0", "0", "0"]
+
+    assert main(["run", str(toy_file), "--stage", "smooth", "--force", "--stretches", "1-2"]) == 0
+    assert "2 units ran, 0 up to date" in capsys.readouterr().out
+
+    assert main(["run", str(toy_file), "--stage", "smooth", "--set", "stages.smooth.width=5"]) == 0
+    out = capsys.readouterr().out
+    assert "4 units ran" in out and "rerun with --from total" in out
+    assert main(["status", str(toy_file), "--set", "stages.smooth.width=5"]) == 0
+    assert "total stale: night: inputs changed: smooth" in capsys.readouterr().out
+
+
+def test_failed_stretch_exits_1_and_logs_the_traceback(toy_file: Path, capsys) -> None:
+    assert main(["run", str(toy_file), "--set", "stages.scale.fail_on=[1]"]) == 1
+    captured = capsys.readouterr()
+    assert "failed: scale/s0001: ValueError: toy failure on stretch 1" in captured.out
+    assert "ERROR: scale/s0001 failed: ValueError: toy failure on stretch 1" in captured.err
+    log_text = (toy_file.parent / "out/toy/zdrift.log").read_text()
+    assert "Traceback (most recent call last)" in log_text
+    assert 'raise ValueError(f"toy failure on stretch' in log_text
+
+
+USAGE_ERRORS = [
+    (["--stage", "smooth", "--to", "total"], "--to cannot be combined with --stage"),
+    (["--stage", "smoth"], "no stage 'smoth'; stages are index, scale, smooth, total"),
+    (["--stretches", "1,x"], "cannot read 'x'"),
+    (["--stage", "scale", "--from", "index"], "not allowed with argument"),
+]
+
+
+@pytest.mark.parametrize(("extra", "message"), USAGE_ERRORS)
+def test_usage_errors_exit_2(toy_file: Path, capsys, extra: list[str], message: str) -> None:
+    assert main(["run", str(toy_file), *extra]) == 2
+    assert message in capsys.readouterr().err
+
+
+def test_locked_night_exits_3(toy_file: Path, capsys) -> None:
+    lock = toy_file.parent / "out/toy/_lock.json"
+    lock.parent.mkdir(parents=True)
+    lock.write_text(json.dumps({"pid": 1, "host": socket.gethostname(), "started": "t"}))
+    assert main(["run", str(toy_file)]) == 3  # pid 1 (init) is always alive
+    assert "Another run holds the lock" in capsys.readouterr().err
+
+
+def test_plan_prints_the_site_and_camera_numbers(toy_file: Path, capsys) -> None:
+    pytest.importorskip("pipeline.geometry.plan")
+    realistic = ["--set", "camera.n_columns=2048", "--set", "camera.tdi_rows=2048"]
+    assert main(["plan", str(toy_file), *realistic]) == 0
+    out = capsys.readouterr().out
+    assert "focal length" in out and "line time" in out

@@ -1,0 +1,490 @@
+"""Tests of the runner, product store, lock and executors, on the toy graph.
+
+The toy stages (tests/_toy_graph.py) do exact integer-valued float work, so
+products are compared for equality, and across executors byte for byte.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import numpy as np
+import pytest
+from _toy_graph import GRAPH, IndexOptions, build_index, toy_config_data, write_raw_night
+from astropy import units as u
+from astropy.io import fits
+from astropy.table import QTable, Table
+
+from pipeline._rawio import read_rows
+from pipeline._store import read_products, read_sidecar, write_products
+from pipeline.config import config_from_mapping
+from pipeline.exceptions import RunLockedError, StaleLockWarning
+from pipeline.runner import (
+    LOCK_NAME,
+    format_ids,
+    night_dir,
+    night_status,
+    parse_stretches,
+    run_night,
+    select_stages,
+)
+from pipeline.stages.base import RAW_FILES, RAW_ROWS, Stage, check_graph, plan_stretches
+
+TESTS_DIR = Path(__file__).parent
+# The toy night: 4 blocks of 25 rows = 100 rows; stretches of 30 rows with a
+# 4-row margin -> 4 stretches (the last has 10 rows of its own).
+N_STRETCHES = 4
+
+
+@pytest.fixture
+def toy(tmp_path: Path):
+    """A toy night on disk; returns (make_config, night rows as float64)."""
+    rows = write_raw_night(tmp_path / "raw")
+
+    def make_config(*overrides: str):
+        return config_from_mapping(toy_config_data(tmp_path), overrides, graph=GRAPH)
+
+    return make_config, rows
+
+
+def sidecars(config) -> dict[str, dict]:
+    """Every complete unit's sidecar, keyed 'stage/unit'."""
+    root = night_dir(config)
+    found = {}
+    for folder in sorted(root.glob("*/*")):
+        record = read_sidecar(folder)
+        if record is not None:
+            found[f"{folder.parent.name}/{folder.name}"] = record
+    return found
+
+
+def product_hashes(config) -> dict[str, dict[str, str]]:
+    return {
+        key: {name: entry["sha256"] for name, entry in record["products"].items()}
+        for key, record in sidecars(config).items()
+    }
+
+
+def expected_total(rows: np.ndarray, factor: float, width: int) -> float:
+    """The toy chain recomputed directly from the night's rows."""
+    total = 0.0
+    for stretch in plan_stretches(len(rows), 30, 4):
+        scaled = rows[stretch.lo : stretch.hi] * factor
+        kernel = np.ones(width) / width
+        smooth = np.apply_along_axis(np.convolve, 0, scaled, kernel, mode="same")
+        total += smooth[stretch.core].sum()
+    return total
+
+
+# ------------------------------------------------------------------ stage protocol
+
+
+def test_plan_stretches_covers_the_night_once() -> None:
+    for n_rows, size, margin in [(100, 30, 4), (90, 30, 0), (7, 30, 50), (0, 5, 1)]:
+        stretches = plan_stretches(n_rows, size, margin)
+        cores = np.concatenate([np.arange(s.start, s.stop) for s in stretches] or [[]])
+        assert np.array_equal(cores, np.arange(n_rows))
+        for s in stretches:
+            assert s.lo == max(s.start - margin, 0) and s.hi == min(s.stop + margin, n_rows)
+            assert s.core.stop - s.core.start == s.stop - s.start
+
+
+def test_stage_declaration_errors() -> None:
+    with pytest.raises(ValueError, match="lower-case Python identifier"):
+        Stage("Bad-Name", build_index, IndexOptions)
+    with pytest.raises(ValueError, match="scope must be 'night' or 'stretch'"):
+        Stage("a", build_index, IndexOptions, scope="nightly")
+    with pytest.raises(TypeError, match="pydantic BaseModel subclass"):
+        Stage("a", build_index, dict)
+    with pytest.raises(TypeError, match="tuples of names"):
+        Stage("a", build_index, IndexOptions, requires="raw_files")
+    with pytest.raises(ValueError, match="'raw_rows' needs scope='stretch'"):
+        Stage("a", build_index, IndexOptions, requires=(RAW_ROWS,), scope="night")
+
+
+def test_check_graph_errors() -> None:
+    index, scale, smooth, _ = GRAPH
+    with pytest.raises(ValueError, match="requires 'scale', which is not an earlier stage"):
+        check_graph([index, smooth, scale])
+    with pytest.raises(ValueError, match="appears twice"):
+        check_graph([index, index])
+    with pytest.raises(ValueError, match="comes before any stage with defines_rows"):
+        check_graph([scale, index])
+    assert check_graph(list(GRAPH)) == GRAPH
+
+
+def test_select_stages_and_stretch_parsing() -> None:
+    assert [s.name for s in select_stages(GRAPH, stage="smooth")] == ["smooth"]
+    assert [s.name for s in select_stages(GRAPH, from_stage="scale", to_stage="smooth")] == [
+        "scale",
+        "smooth",
+    ]
+    assert [s.name for s in select_stages(GRAPH, to_stage="scale")] == ["index", "scale"]
+    with pytest.raises(ValueError, match="no stage 'smoth'; stages are index, scale"):
+        select_stages(GRAPH, stage="smoth")
+    with pytest.raises(ValueError, match="comes after"):
+        select_stages(GRAPH, from_stage="total", to_stage="scale")
+    assert parse_stretches("0, 3-5,9") == {0, 3, 4, 5, 9}
+    with pytest.raises(ValueError, match="cannot read 'x'"):
+        parse_stretches("1,x")
+    assert format_ids(["s0005", "s0000", "s0001", "s0002", "night"]) == (
+        "night, s0000-s0002, s0005"
+    )
+
+
+# --------------------------------------------------------------- store and raw I/O
+
+
+def test_products_round_trip_with_their_types(tmp_path: Path) -> None:
+    header = fits.Header({"CTYPE1": "RA---TAN", "CRVAL1": 10.5})
+    table = QTable({"flux": [1.5, 2.5] * u.electron, "name": ["a", "b"]}, meta={"k": 1})
+    products = {
+        "flags": np.array([[True, False], [False, True]]),
+        "counts": np.arange(6, dtype=np.uint16).reshape(2, 3) + 40000,
+        "image": fits.ImageHDU(np.eye(3, dtype=np.float32), header=header),
+        "cube": fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(np.ones(4), name="W")]),
+        "table": table,
+        "plain": Table({"x": np.array([1, 2], dtype=np.int32)}),
+        "info": {"a": np.float64(1.25), "b": [1, 2], "c": None},
+    }
+    entries = write_products(tmp_path, products, {"PIPESTAG": ("t", "")})
+    back = read_products(tmp_path, {"products": entries})
+    for name in ("flags", "counts"):
+        assert back[name].dtype == products[name].dtype
+        assert np.array_equal(back[name], products[name])
+    assert isinstance(back["image"], fits.ImageHDU)
+    assert back["image"].header["CRVAL1"] == 10.5 and back["image"].header["PIPESTAG"] == "t"
+    assert np.array_equal(back["image"].data, np.eye(3))
+    assert back["cube"]["W"].data.tolist() == [1, 1, 1, 1]
+    assert isinstance(back["table"], QTable) and back["table"]["flux"].unit == u.electron
+    assert back["table"].meta == {"k": 1} and list(back["table"]["name"]) == ["a", "b"]
+    assert type(back["plain"]) is Table and back["plain"]["x"].dtype == np.int32
+    assert back["info"] == {"a": 1.25, "b": [1, 2], "c": None}
+    with pytest.raises(TypeError, match="unsupported type set"):
+        write_products(tmp_path, {"bad": {1, 2}}, {})
+    with pytest.raises(ValueError, match="not starting with '_'"):
+        write_products(tmp_path, {"_x": [1]}, {})
+
+
+def test_read_rows_applies_bzero_and_fills_gaps_with_nan(tmp_path: Path) -> None:
+    data = (np.arange(20, dtype=np.uint16).reshape(5, 4) + 65000).astype(np.uint16)
+    fits.PrimaryHDU(data).writeto(tmp_path / "a.fits")
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(data[:3])]).writeto(tmp_path / "b.fits")
+    index = Table({"file": ["a.fits", "b.fits"], "hdu": [0, 1], "row_start": [0, 8],
+                   "n_rows": [5, 3]})  # fmt: skip
+    rows = read_rows(tmp_path, index, 3, 10)
+    assert rows.dtype == np.float32 and rows.shape == (7, 4)
+    assert np.array_equal(rows[:2], data[3:5])  # BZERO=32768 applied: values above 32767
+    assert np.isnan(rows[2:5]).all()  # night rows 5..7 are a gap
+    assert np.array_equal(rows[5:], data[:2])
+
+
+# ----------------------------------------------------------------------- the runs
+
+
+def test_full_run_products_and_skip_when_up_to_date(toy) -> None:
+    make_config, rows = toy
+    config = make_config()
+    calls = []
+    report = run_night(config, progress=lambda *args: calls.append(args))
+    assert report.ok and report.count("ran") == 2 + 2 * N_STRETCHES
+    assert ("scale", N_STRETCHES, N_STRETCHES) in calls
+    root = night_dir(config)
+    # the index follows BLOCKSEQ, not file names, so stretch 1 holds night rows 26..63
+    scale = read_products(root / "scale/s0001", read_sidecar(root / "scale/s0001"))
+    assert np.array_equal(scale["image"], rows[26:64] * 2)
+    total = read_products(root / "total/night", read_sidecar(root / "total/night"))
+    # float64 sums of ~1e7-sized values in another order: relative 1e-12 is
+    # far above rounding (~1e-15) and far below any real error (whole rows)
+    assert total["summary"]["total"] == pytest.approx(expected_total(rows, 2.0, 3), rel=1e-12)
+    before = sidecars(config)
+    report = run_night(config)
+    assert report.ok and report.count("ran") == 0 and report.count("skipped") == 10
+    assert sidecars(config) == before
+    status = night_status(config)
+    assert all(state == "done" for s in status.stages for state, _ in s.units.values())
+
+
+def test_single_stage_rerun_recomputes_only_that_stage(toy) -> None:
+    make_config, _ = toy
+    config = make_config()
+    run_night(config)
+    before = sidecars(config)
+    report = run_night(config, stage="smooth", force=True)
+    assert {(r.stage, r.status) for r in report.results} == {("smooth", "ran")}
+    after = sidecars(config)
+    for key in before:
+        changed = after[key]["started"] != before[key]["started"]
+        assert changed == key.startswith("smooth/"), key
+    # identical outputs: downstream is not stale
+    assert report.stale_downstream == {}
+
+
+def test_config_change_marks_stage_and_downstream_stale_not_upstream(toy) -> None:
+    make_config, rows = toy
+    run_night(make_config())
+    config = make_config("stages.smooth.width=5")
+    states = {s.name: {st for st, _ in s.units.values()} for s in night_status(config).stages}
+    assert states == {"index": {"done"}, "scale": {"done"}, "smooth": {"stale"},
+                      "total": {"stale"}}  # fmt: skip
+    report = run_night(config, stage="smooth")
+    assert report.count("ran") == N_STRETCHES
+    assert report.stale_downstream == {"total": ["night"]}
+    assert "rerun with --from total" in report.format()
+    report = run_night(config)
+    assert [(r.stage, r.unit) for r in report.results if r.status == "ran"] == [("total", "night")]
+    total = read_products(night_dir(config) / "total/night",
+                          read_sidecar(night_dir(config) / "total/night"))  # fmt: skip
+    # same tolerance argument as in test_full_run_products_and_skip_when_up_to_date
+    assert total["summary"]["total"] == pytest.approx(expected_total(rows, 2.0, 5), rel=1e-12)
+
+
+def test_context_fields_a_stage_uses_enter_its_hash(toy) -> None:
+    make_config, _ = toy
+    run_night(make_config())
+    # no toy stage uses camera.rotation: nothing becomes stale
+    unused = night_status(make_config("camera.rotation=1.5"))
+    assert all(st == "done" for s in unused.stages for st, _ in s.units.values())
+    # scale uses camera.n_columns: scale and everything after it become stale
+    used = {s.name: {st for st, _ in s.units.values()}
+            for s in night_status(make_config("camera.n_columns=7")).stages}  # fmt: skip
+    assert used == {"index": {"done"}, "scale": {"stale"}, "smooth": {"stale"},
+                    "total": {"stale"}}  # fmt: skip
+
+
+def test_changed_raw_file_makes_only_affected_units_stale(toy, tmp_path: Path) -> None:
+    make_config, _ = toy
+    config = make_config()
+    run_night(config)
+    # block with BLOCKSEQ 3 holds night rows 75..99: stretches 2 (lo 56, hi 94) and 3
+    path = next(p for p in (tmp_path / "raw").iterdir() if p.name.endswith("_3.fits"))
+    with fits.open(path, mode="update") as hdul:
+        hdul[0].data[0, 0] += 1
+    status = {s.name: s for s in night_status(config).stages}
+    assert status["index"].units["night"] == ("stale", "inputs changed: raw_files")
+    assert sorted(status["scale"].ids("stale")) == ["s0002", "s0003"]
+    assert status["scale"].units["s0002"][1] == "inputs changed: raw_rows"
+    assert sorted(status["scale"].ids("done")) == ["s0000", "s0001"]
+
+
+def test_stretch_selection(toy) -> None:
+    make_config, _ = toy
+    config = make_config()
+    report = run_night(config, to_stage="scale", stretches={0, 2, 9})
+    assert sorted(r.unit for r in report.results if r.stage == "scale") == ["s0000", "s0002"]
+    status = {s.name: s for s in night_status(config).stages}
+    assert sorted(status["scale"].ids("missing")) == ["s0001", "s0003"]
+
+
+def test_failed_stretch_is_recorded_and_the_rest_goes_on(toy) -> None:
+    make_config, _ = toy
+    config = make_config("stages.scale.fail_on=[1]")
+    report = run_night(config)
+    assert not report.ok
+    by_status = {(r.stage, r.unit): r.status for r in report.results}
+    assert by_status[("scale", "s0001")] == "failed"
+    assert by_status[("smooth", "s0001")] == "blocked" and by_status[("total", "night")] == (
+        "blocked"
+    )
+    assert by_status[("scale", "s0000")] == by_status[("smooth", "s0003")] == "ran"
+    failed = json.loads((night_dir(config) / "scale/s0001/_failed.json").read_text())
+    assert "toy failure on stretch 1" in failed["reason"] and "Traceback" in failed["traceback"]
+    assert "failed: scale/s0001: ValueError: toy failure on stretch 1" in report.format()
+    status = {s.name: s for s in night_status(config).stages}
+    assert status["scale"].ids("failed") == ["s0001"]
+    assert "failed" in night_status(config).format()
+    # fixing the option reruns scale (its config changed) and completes the night
+    report = run_night(make_config())
+    assert report.ok
+    assert not (night_dir(config) / "scale/s0001/_failed.json").exists()
+
+
+def test_a_stage_that_uses_an_unknown_context_field_is_rejected(toy) -> None:
+    make_config, _ = toy
+    bad = Stage("index", build_index, IndexOptions, (RAW_FILES,), "night", ("camera.nope",),
+                defines_rows=True)  # fmt: skip
+    data = {k: v for k, v in make_config().to_dict().items() if k != "stages"}
+    with pytest.raises(ValueError, match=r"uses 'camera\.nope'"):
+        config_from_mapping(data, graph=(bad,))
+
+
+# ---------------------------------------------------------------- kills and resume
+
+KILL_SCRIPT = textwrap.dedent(
+    """
+    import json, os, sys
+    sys.path.insert(0, sys.argv[1])
+    import _toy_graph
+    import pipeline._store as store
+    from pipeline.config import config_from_mapping
+    from pipeline.runner import run_night
+
+    limit, count, real = int(sys.argv[3]), [0], store.atomic_write
+
+    def dying_write(path, write):
+        # Die before the limit-th file write, leaving a half-written temp file.
+        if count[0] == limit:
+            temp = path.with_name(f".{path.name}.tmp-{os.getpid()}-dead")
+            temp.write_bytes(b"SIMPLE  =  half a file")
+            os._exit(9)
+        count[0] += 1
+        return real(path, write)
+
+    store.atomic_write = dying_write
+    config = config_from_mapping(json.loads(sys.argv[2]), graph=_toy_graph.GRAPH)
+    run_night(config)
+    """
+)
+
+# File writes in a serial run: index writes block_index, rejected, sidecar
+# (0-2); scale/s0000 image, mask, framed, stats, sidecar (3-7); scale/s0001
+# the same (8-12).
+KILL_POINTS = [1, 10, 12]
+
+
+@pytest.mark.parametrize("kill_at", KILL_POINTS)
+def test_killed_run_resumes_with_identical_products(tmp_path: Path, kill_at: int) -> None:
+    write_raw_night(tmp_path / "raw")
+    data = toy_config_data(tmp_path)
+    reference = config_from_mapping(
+        {**data, "night": {**data["night"], "name": "reference"}}, graph=GRAPH
+    )
+    run_night(reference)
+    config = config_from_mapping(data, graph=GRAPH)
+    result = subprocess.run(
+        [sys.executable, "-c", KILL_SCRIPT, str(TESTS_DIR), json.dumps(data), str(kill_at)],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert result.returncode == 9, result.stderr
+    done_before = sidecars(config)
+    if kill_at == 10:  # half of scale/s0001 written, no sidecar: not done
+        folder = night_dir(config) / "scale/s0001"
+        assert sorted(p.name for p in folder.iterdir() if not p.name.startswith(".")) == [
+            "image.fits",
+            "mask.fits",
+        ]
+        assert read_sidecar(folder) is None
+    with pytest.warns(StaleLockWarning, match="no longer exists"):  # the killed run's lock
+        report = run_night(config)
+    assert report.ok
+    ran = {f"{r.stage}/{r.unit}" for r in report.results if r.status == "ran"}
+    assert not ran & set(done_before), "finished units were redone"
+    assert product_hashes(config) == product_hashes(reference)
+    assert list(night_dir(config).rglob(".*tmp-*")) == []
+
+
+def test_worker_death_on_the_local_pool_fails_only_that_stretch(toy, tmp_path, monkeypatch):
+    make_config, _ = toy
+    monkeypatch.setenv("ZDRIFT_TOY_DIE_ON", "2")  # scale kills its worker on stretch 2
+    config = make_config("run.executor=local", "run.workers=2")
+    report = run_night(config, to_stage="scale")
+    failed = [(r.stage, r.unit) for r in report.results if r.status == "failed"]
+    assert failed == [("scale", "s0002")]
+    assert "worker process died" in report.problems[0].reason
+    assert report.count("ran") == 1 + N_STRETCHES - 1  # the rest went on
+    # a killer that dies only once succeeds on the isolated retry
+    monkeypatch.setenv("ZDRIFT_TOY_DIE_MARK", str(tmp_path / "died-once"))
+    report = run_night(config)
+    assert report.ok and (tmp_path / "died-once").exists(), report.format()
+    assert [
+        (r.stage, r.unit) for r in report.results if r.stage == "scale" and r.status == "ran"
+    ] == [("scale", "s0002")]
+    reference_data = toy_config_data(tmp_path)
+    reference_data["night"]["name"] = "reference"
+    reference = config_from_mapping(reference_data, graph=GRAPH)
+    run_night(reference)
+    assert product_hashes(config) == product_hashes(reference)
+
+
+# --------------------------------------------------------------------------- lock
+
+
+def test_live_lock_refuses_and_dead_lock_is_taken_over(toy) -> None:
+    make_config, _ = toy
+    config = make_config()
+    lock = night_dir(config) / LOCK_NAME
+    lock.parent.mkdir(parents=True)
+    sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        record = {"pid": sleeper.pid, "host": socket.gethostname(), "started": "earlier"}
+        lock.write_text(json.dumps(record))
+        with pytest.raises(RunLockedError, match=f"Another run holds the lock .*{sleeper.pid}"):
+            run_night(config)
+        assert lock.exists()
+    finally:
+        sleeper.kill()
+        sleeper.wait()
+    with pytest.warns(StaleLockWarning, match=f"process {sleeper.pid} .* no longer exists"):
+        report = run_night(config)
+    assert report.ok and not lock.exists()
+
+
+def test_lock_from_another_host_is_respected(toy) -> None:
+    make_config, _ = toy
+    config = make_config()
+    lock = night_dir(config) / LOCK_NAME
+    lock.parent.mkdir(parents=True)
+    lock.write_text(json.dumps({"pid": 999999999, "host": "elsewhere", "started": "t"}))
+    with pytest.raises(RunLockedError, match="on elsewhere"):
+        run_night(config)
+
+
+def test_lock_is_released_when_the_run_raises(toy, monkeypatch) -> None:
+    make_config, _ = toy
+    config = make_config()
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("executor trouble")
+
+    monkeypatch.setattr("pipeline.runner.execute_unit", broken)
+    with pytest.raises(RuntimeError, match="executor trouble"):
+        run_night(config)
+    assert not (night_dir(config) / LOCK_NAME).exists()
+
+
+# ---------------------------------------------------------------------- executors
+
+
+@pytest.fixture(scope="module")
+def dask_cluster():
+    distributed = pytest.importorskip("distributed")
+    cluster = distributed.LocalCluster(
+        n_workers=2,
+        threads_per_worker=1,
+        processes=True,
+        host="127.0.0.1",
+        dashboard_address=None,
+    )
+    yield cluster
+    cluster.close()
+
+
+def test_local_pool_and_dask_give_identical_products(toy, tmp_path, dask_cluster) -> None:
+    data = toy_config_data(tmp_path)
+    hashes = {}
+    for name, run in [
+        ("serial", {"executor": "serial"}),
+        ("pool", {"executor": "local", "workers": 2}),
+        ("dask", {"scheduler": dask_cluster.scheduler_address}),
+    ]:
+        night = {**data["night"], "name": name}
+        run = {"stretch_rows": 30, "overlap_rows": 4, **run}  # no executor: scheduler -> dask
+        config = config_from_mapping({**data, "night": night, "run": run}, graph=GRAPH)
+        assert config.run.executor == run.get("executor", "dask")
+        report = run_night(config)
+        assert report.ok, report.format()
+        hashes[name] = product_hashes(config)
+        assert len(hashes[name]) == 2 + 2 * N_STRETCHES
+    assert hashes["pool"] == hashes["serial"]
+    assert hashes["dask"] == hashes["serial"]
+    # workers on another process wrote the sidecars
+    pids = {r["pid"] for r in sidecars(config).values()}
+    assert os.getpid() not in pids
