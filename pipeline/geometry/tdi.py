@@ -443,7 +443,11 @@ class TDIModel:
         shape = ra.shape
         ra, dec = ra.ravel(), dec.ravel()
         rate0 = self._drift
-        t_b = after - 0.5 * self._N / rate0
+        # first guess: the first time after t_b at which the axis RA reaches the
+        # star's; t_b is a whole crossing early so that slow (long) crossings
+        # ending just after ``after`` are not missed; early ones are moved on
+        # by a sidereal period below.
+        t_b = after - self._N / rate0
         ra0_b, _ = self.axis.axis_icrs(np.array([t_b]))
         lag = np.mod(np.radians(ra) - ra0_b[0], 2.0 * np.pi) / self._ra_rate
         t_mid = self._solve_u(ra, dec, t_b + lag, self._N / 2.0, rate0)

@@ -49,7 +49,7 @@ __all__ = ["ZenithAxis", "axis_basis_enu", "gnomonic_from_unit", "unit_from_gnom
 log = logging.getLogger(__name__)
 
 _ARCSEC = np.pi / 648000.0
-_CHUNK = 1 << 15
+_CHUNK = 1 << 12
 
 
 def axis_basis_enu(tilt_east: float = 0.0, tilt_north: float = 0.0) -> np.ndarray:
@@ -130,19 +130,20 @@ def _monomials(x: np.ndarray, y: np.ndarray) -> np.ndarray:
     return np.stack([np.ones_like(x), x, y, x2, x * y, y2, x2 * x, x2 * y, x * y2, y2 * y], axis=-1)
 
 
-def _chunked(func, a: ArrayLike, b: ArrayLike, t: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
-    """Apply ``func(a, b, t) -> (p, q)`` on 1-D chunks of the broadcast inputs.
+def _chunked(func, *args: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+    """Apply ``func(*args) -> (p, q)`` on 1-D chunks of the broadcast inputs.
 
     Chunks keep the temporaries (about 30 doubles a point) in cache-sized
     pieces; the result has the broadcast shape of the inputs.
     """
-    a, b, t = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (a, b, t)))
-    p = np.empty(a.shape)
-    q = np.empty(a.shape)
-    fp, fq, fa, fb, ft = p.reshape(-1), q.reshape(-1), a.ravel(), b.ravel(), t.ravel()
-    for lo in range(0, fa.size, _CHUNK):
+    arrays = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in args))
+    p = np.empty(arrays[0].shape)
+    q = np.empty(arrays[0].shape)
+    fp, fq = p.reshape(-1), q.reshape(-1)
+    flat = [x.ravel() for x in arrays]
+    for lo in range(0, fp.size, _CHUNK):
         sl = slice(lo, lo + _CHUNK)
-        fp[sl], fq[sl] = func(fa[sl], fb[sl], ft[sl])
+        fp[sl], fq[sl] = func(*(x[sl] for x in flat))
     return p, q
 
 
@@ -323,21 +324,23 @@ class ZenithAxis:
             Observed gnomonic coordinates about the axis (west, north),
             radians.  NaN outside the fitted field or time range.
         """
-        return _chunked(self._forward, ra, dec, t)
+        # unit vectors before broadcasting: a star's trigonometry is done once
+        # however many times it is sampled
+        dec = np.asarray(dec, dtype=float)
+        cd = np.cos(dec)
+        return _chunked(self._forward, cd * np.cos(ra), cd * np.sin(ra), np.sin(dec), t)
 
-    def _forward(self, ra, dec, t):
+    def _forward(self, sx, sy, sz, t):
         n = self._n_terms
         v = self._values(t, self._coef_fwd)
-        cd = np.cos(dec)
-        x, y = gnomonic_from_unit(cd * np.cos(ra), cd * np.sin(ra), np.sin(dec), v[:, 0], v[:, 1])
+        x, y = gnomonic_from_unit(sx, sy, sz, v[:, 0], v[:, 1])
         s = self.field_radius
         x = x / s
         y = y / s
         outside = ~((np.abs(x) <= 1.0 + 1e-9) & (np.abs(y) <= 1.0 + 1e-9))
         m = _monomials(x, y)
-        c = v[:, 2:].reshape(-1, n, 2)
-        xi = s * np.einsum("pk,pk->p", m, c[:, :, 0])
-        eta = s * np.einsum("pk,pk->p", m, c[:, :, 1])
+        out = s * np.einsum("pk,pkc->cp", m, v[:, 2:].reshape(-1, n, 2))
+        xi, eta = out[0], out[1]
         xi[outside] = np.nan
         eta[outside] = np.nan
         return xi, eta
@@ -357,8 +360,7 @@ class ZenithAxis:
         v = self._values(t, self._coef_axis)
         c = self._values(t, self._coef_inv).reshape(-1, n, 2)
         m = _monomials(xi / s, eta / s)
-        x = s * np.einsum("pk,pk->p", m, c[:, :, 0])
-        y = s * np.einsum("pk,pk->p", m, c[:, :, 1])
+        x, y = s * np.einsum("pk,pkc->cp", m, c)
         outside = ~((np.abs(x) <= s * (1.0 + 1e-9)) & (np.abs(y) <= s * (1.0 + 1e-9)))
         ra, dec = unit_from_gnomonic(x, y, v[:, 0], v[:, 1])
         ra[outside] = np.nan

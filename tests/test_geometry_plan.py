@@ -1,0 +1,75 @@
+"""The plan summary: focal length, scale, line time, smear, bow, spin errors."""
+
+import re
+
+import pytest
+from astropy.time import Time
+
+from pipeline.geometry import Camera, Site, TDIModel, format_plan, summarize_plan
+from pipeline.geometry.optics import ARCSEC_PER_RADIAN
+
+P = 0.35 / ARCSEC_PER_RADIAN
+START = Time("2025-09-10T22:00:00", scale="utc")
+
+
+def test_plan_reproduces_check_values_chip():
+    # CHECK_VALUES section 4 at latitude 29.4 deg (pure geometry: pressure 0):
+    # t_row = 26.709 ms, T = 109.40 s, edge slips -8.022 / +8.019 px, sagittas
+    # 2.0215 / 1.9889 px; first order 8.021 px and 3.5586 tan(delta) px.
+    # Tolerances: table rounding plus the 1e-4 aberration scale that the
+    # table lacks (see tests/test_geometry_tdi.py).
+    site = Site(latitude=29.4, longitude=79.7, pressure=0.0)
+    camera = Camera(n_columns=4096, tdi_rows=4096, pixel_size=15.0, focal_length=15e-6 / P)
+    s = summarize_plan(site, camera, start=START)
+    assert s["plate_scale_arcsec"] == pytest.approx(0.35, rel=1e-12)
+    assert s["line_time_s"] * 1e3 == pytest.approx(26.709, abs=0.0005 + 0.003)
+    assert s["crossing_time_s"] == pytest.approx(109.40, abs=0.005 + 0.012)
+    north, south = s["edges"]["north"], s["edges"]["south"]
+    assert north["slip_px"] == pytest.approx(-8.022, abs=0.0015)
+    assert south["slip_px"] == pytest.approx(+8.019, abs=0.0015)
+    assert north["slip_first_order_px"] == pytest.approx(-8.021, abs=0.0006)
+    assert north["sagitta_px"] == pytest.approx(2.0215, abs=3e-4)
+    assert south["sagitta_px"] == pytest.approx(1.9889, abs=3e-4)
+    assert s["centre_sagitta_px"] == pytest.approx(2.0051, abs=3e-4)
+    assert north["sagitta_first_order_px"] == pytest.approx(2.0215, abs=6e-5)
+    # without refraction the first-order line time p / (w cos phi) differs from
+    # the exact one only by aberration and polar motion (< 1.1e-4)
+    assert s["line_time_first_order_s"] == pytest.approx(s["line_time_s"], rel=1.1e-4)
+
+
+def test_plan_spin_period_and_errors():
+    # CHECK_VALUES 3.9: an ILMT-like mirror spun at 8.000 s at Devasthal
+    # (29.36 deg, 2450 m; gravity 9.785192) has f = 7.932 m.
+    site = Site(latitude=29.36, longitude=79.68, height=2450.0)
+    camera = Camera(n_columns=4096, tdi_rows=4096, pixel_size=15.0, spin_period=8.0)
+    err = 1e-4  # s
+    s = summarize_plan(site, camera, spin_period_error_s=err, start=START)
+    assert s["gravity_m_s2"] == pytest.approx(9.785192, abs=6e-7)
+    assert s["focal_length_m"] == pytest.approx(7.932, abs=5e-4)
+    assert s["spin_period_s"] == 8.0
+    # CHECK_VALUES row 10: df/f = -2 dw/w = +2 dT/T
+    assert s["focal_length_error_m"] == pytest.approx(
+        s["focal_length_m"] * 2 * err / 8.0, rel=1e-12
+    )
+    assert s["spin_error_smear_px"] == pytest.approx(4096 * 2 * err / 8.0, rel=1e-12)
+    # the line-time error is what a mirror spun slower by err really needs:
+    # compare with the exact model of that mirror (second order: 2 err/T ~ 3e-5)
+    slower = Camera(n_columns=4096, tdi_rows=4096, pixel_size=15.0, spin_period=8.0 + err)
+    true_line = TDIModel(site, slower, START, 0.0).matched_line_time
+    assert true_line - s["matched_line_time_s"] == pytest.approx(s["line_time_error_s"], rel=1e-4)
+    assert s["line_time_error_s"] < 0  # longer f, larger image, faster drift in pixels
+    # refraction at the standard-atmosphere pressure of 2450 m (~751 hPa, 5 C)
+    assert s["pressure_hpa"] == pytest.approx(751.5, abs=0.2)  # ISA power law
+    assert 200 < s["refraction_ppm"] < 230  # Almanac: 0.00452 deg P / (273 + T)
+
+
+def test_format_plan_has_units_on_every_line():
+    site = Site(latitude=-31.0, longitude=-70.7, height=2400.0, name="fictional ridge")
+    camera = Camera(n_columns=2048, tdi_rows=2048, pixel_size=13.5, focal_length=6.0, name="cam")
+    text = format_plan(summarize_plan(site, camera, spin_period_error_s=1e-5))
+    lines = text.splitlines()
+    assert "fictional ridge" in lines[0]
+    unit = re.compile(r"\b(deg|m/s\^2|m|mm|s|ms|us|arcsec/px|arcsec/s|hPa|ppm|px)\b")
+    for line in lines[1:]:
+        assert unit.search(line), f"no unit on: {line!r}"
+    assert len(lines) > 25
