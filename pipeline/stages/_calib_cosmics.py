@@ -35,9 +35,48 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
-from numpy.lib.stride_tricks import sliding_window_view
+
+from pipeline.stages._calib_chunks import CHUNK_ROWS, Scratch, row_chunks
 
 __all__ = ["detect_cosmic_rays", "laplacian_plus"]
+
+
+def _cross_differences(array, r0, r1, scratch, prefix=""):
+    """``v - up``, ``v - down``, ``v - left``, ``v - right`` for rows [r0, r1), edges repeated."""
+    n_rows = array.shape[0]
+    n = r1 - r0
+    up, down = scratch.get(prefix + "up", n), scratch.get(prefix + "down", n)
+    left, right = scratch.get(prefix + "left", n), scratch.get(prefix + "right", n)
+    rows = array[r0:r1]
+    if r0 > 0:
+        np.subtract(rows, array[r0 - 1 : r1 - 1], out=up)
+    else:
+        up[0] = 0.0
+        np.subtract(rows[1:], rows[:-1], out=up[1:])
+    if r1 < n_rows:
+        np.subtract(rows, array[r0 + 1 : r1 + 1], out=down)
+    else:
+        down[-1] = 0.0
+        np.subtract(rows[:-1], rows[1:], out=down[:-1])
+    left[:, 0] = 0.0
+    np.subtract(rows[:, 1:], rows[:, :-1], out=left[:, 1:])
+    right[:, -1] = 0.0
+    np.negative(left[:, 1:], out=right[:, :-1])
+    return up, down, left, right
+
+
+def _lplus_rows(array, r0, r1, out, scratch):
+    """``L+`` of rows [r0, r1) of ``array`` into ``out`` (shape (r1 - r0, n_columns))."""
+    up, down, left, right = _cross_differences(array, r0, r1, scratch)
+    term = scratch.get("term", r1 - r0)
+    zero = np.float32(0.0)
+    np.add(up, left, out=out)
+    np.maximum(out, zero, out=out)
+    for a, b in ((up, right), (down, left), (down, right)):
+        np.add(a, b, out=term)
+        np.maximum(term, zero, out=term)
+        out += term
+    out *= np.float32(0.25)
 
 
 def laplacian_plus(image: np.ndarray) -> np.ndarray:
@@ -53,17 +92,44 @@ def laplacian_plus(image: np.ndarray) -> np.ndarray:
     ndarray of float32, shape (n_rows, n_columns)
     """
     v = np.asarray(image, dtype=np.float32)
-    padded = np.pad(v, 1, mode="edge")
-    up = v - padded[:-2, 1:-1]
-    down = v - padded[2:, 1:-1]
-    left = v - padded[1:-1, :-2]
-    right = v - padded[1:-1, 2:]
-    out = np.maximum(up + left, 0.0)
-    out += np.maximum(up + right, 0.0)
-    out += np.maximum(down + left, 0.0)
-    out += np.maximum(down + right, 0.0)
-    out *= 0.25
+    out = np.empty(v.shape, dtype=np.float32)
+    scratch = Scratch(v.shape[1])
+    for r0, r1 in row_chunks(v.shape[0]):
+        _lplus_rows(v, r0, r1, out[r0:r1], scratch)
     return out
+
+
+def _candidates(work, variance, ignore, sigclip):
+    """``L+`` everywhere and the flat indices of the pixels worth testing.
+
+    A pixel can pass ``S' > sigclip`` only if ``L+ > 2 sigclip N``; ``N`` is
+    at least the smallest noise in its cross-shaped neighbourhood, times a
+    margin of sqrt(0.5) for a 5x5 median below that minimum.
+    """
+    lplus = np.empty(work.shape, dtype=np.float32)
+    threshold = np.float32(0.5 * (2.0 * sigclip) ** 2)
+    scratch = Scratch(work.shape[1])
+    keep = np.empty((CHUNK_ROWS, work.shape[1]), dtype=bool)
+    found = []
+    for r0, r1 in row_chunks(work.shape[0]):
+        n = r1 - r0
+        out = lplus[r0:r1]
+        _lplus_rows(work, r0, r1, out, scratch)
+        up, down, left, right = _cross_differences(variance, r0, r1, scratch, "var_")
+        # Smallest variance in the cross: v - max(v - neighbour, 0).
+        vmin = scratch.get("vmin", n)
+        np.maximum(up, down, out=vmin)
+        np.maximum(vmin, left, out=vmin)
+        np.maximum(vmin, right, out=vmin)
+        np.maximum(vmin, np.float32(0.0), out=vmin)
+        np.subtract(variance[r0:r1], vmin, out=vmin)
+        vmin *= threshold
+        test = scratch.get("term", n)
+        np.multiply(out, out, out=test)
+        np.greater(test, vmin, out=keep[:n])
+        keep[:n] &= ~ignore[r0:r1]
+        found.append(np.flatnonzero(keep[:n]) + r0 * work.shape[1])
+    return lplus, np.concatenate(found) if found else np.zeros(0, np.int64)
 
 
 def _laplacian_plus_at(image: np.ndarray, flat_index: np.ndarray) -> np.ndarray:
@@ -82,14 +148,26 @@ def _laplacian_plus_at(image: np.ndarray, flat_index: np.ndarray) -> np.ndarray:
     )
 
 
-def _patches(array: np.ndarray, flat_index: np.ndarray, size: int) -> np.ndarray:
-    """Square ``size`` x ``size`` neighbourhoods, edges repeated: (n, size, size)."""
+def _patch_index(flat_index: np.ndarray, shape: tuple[int, int], size: int) -> np.ndarray:
+    """Flat indices of ``size`` x ``size`` boxes, edges repeated: (n, size * size)."""
     half = size // 2
-    rows, cols = np.divmod(flat_index, array.shape[1])
+    n_rows, n_columns = shape
     offsets = np.arange(-half, half + 1)
-    r = np.clip(rows[:, None] + offsets[None, :], 0, array.shape[0] - 1)
-    c = np.clip(cols[:, None] + offsets[None, :], 0, array.shape[1] - 1)
-    return array[r[:, :, None], c[:, None, :]]
+    index = flat_index[:, None] + (offsets[:, None] * n_columns + offsets[None, :]).ravel()
+    rows, cols = np.divmod(flat_index, n_columns)
+    edge = np.flatnonzero(
+        (rows < half) | (rows >= n_rows - half) | (cols < half) | (cols >= n_columns - half)
+    )
+    if edge.size:
+        r = np.clip(rows[edge, None] + offsets[None, :], 0, n_rows - 1)
+        c = np.clip(cols[edge, None] + offsets[None, :], 0, n_columns - 1)
+        index[edge] = (r[:, :, None] * n_columns + c[:, None, :]).reshape(edge.size, -1)
+    return index
+
+
+def _patches(array: np.ndarray, flat_index: np.ndarray, size: int) -> np.ndarray:
+    """Values of ``size`` x ``size`` boxes, edges repeated: (n, size * size)."""
+    return np.take(array.reshape(-1), _patch_index(flat_index, array.shape, size))
 
 
 def _median_last(values: np.ndarray) -> np.ndarray:
@@ -100,41 +178,52 @@ def _median_last(values: np.ndarray) -> np.ndarray:
 
 def _s_prime(lplus: np.ndarray, noise: np.ndarray, flat_index: np.ndarray) -> np.ndarray:
     """``S' = (L+ - med5(L+)) / (2 N)`` at the given pixels."""
-    box = _patches(lplus, flat_index, 5).reshape(flat_index.size, 25)
+    box = _patches(lplus, flat_index, 5)
     return (lplus.flat[flat_index] - _median_last(box)) / (2.0 * noise)
 
 
 def _noise(variance: np.ndarray, flat_index: np.ndarray) -> np.ndarray:
     """Cosmic-ray-free noise ``sqrt(med5(variance))`` at the given pixels."""
-    box = _patches(variance, flat_index, 5).reshape(flat_index.size, 25)
+    box = _patches(variance, flat_index, 5)
     return np.sqrt(np.maximum(_median_last(box), 1e-5))
 
 
 def _fine_structure(image: np.ndarray, flat_index: np.ndarray) -> np.ndarray:
-    """``med3(I) - med7(med3(I))`` at the given pixels."""
-    patch = _patches(image, flat_index, 9)
-    med3 = _median_last(
-        sliding_window_view(patch, (3, 3), axis=(1, 2)).reshape(flat_index.size, 49, 9)
-    )
-    return med3[:, 24] - _median_last(med3)
+    """``med3(I) - med7(med3(I))`` at the given pixels.
+
+    The 3x3 medians are computed once for every pixel of the union of the 7x7
+    boxes (candidates cluster in star cores, so the union is much smaller than
+    49 boxes per candidate) and gathered from a sparse image.
+    """
+    boxes = _patch_index(flat_index, image.shape, 7)
+    needed = _unique(boxes, image.size)
+    med3 = np.empty(image.size, dtype=np.float32)
+    med3[needed] = _median_last(_patches(image, needed, 3))
+    smooth = med3[boxes]
+    return smooth[:, 24] - _median_last(smooth)
+
+
+def _unique(index: np.ndarray, size: int) -> np.ndarray:
+    """Sorted unique values of ``index`` (flat pixel indices below ``size``)."""
+    if index.size > size // 64:
+        marks = np.zeros(size, dtype=bool)
+        marks[index.ravel()] = True
+        return np.flatnonzero(marks)
+    values = np.sort(index, axis=None)
+    return values[np.r_[True, values[1:] != values[:-1]]]
 
 
 def _neighbours(flat_index: np.ndarray, shape: tuple[int, int], radius: int) -> np.ndarray:
     """Flat indices of the (2 radius + 1)^2 boxes around the given pixels, unique."""
     if flat_index.size == 0:
         return flat_index
-    rows, cols = np.divmod(flat_index, shape[1])
-    offsets = np.arange(-radius, radius + 1)
-    r = rows[:, None, None] + offsets[None, :, None]
-    c = cols[:, None, None] + offsets[None, None, :]
-    r, c = np.broadcast_arrays(r, c)
-    inside = (r >= 0) & (r < shape[0]) & (c >= 0) & (c < shape[1])
-    return np.unique(r[inside] * shape[1] + c[inside])
+    return _unique(_patch_index(flat_index, shape, 2 * radius + 1), shape[0] * shape[1])
 
 
 def _clean(image: np.ndarray, hits: np.ndarray, flat_index: np.ndarray) -> None:
     """Replace hit pixels (in place) by the median of their unflagged 5x5 box."""
-    box = _patches(np.where(hits, np.nan, image), flat_index, 5).reshape(flat_index.size, 25)
+    index = _patch_index(flat_index, image.shape, 5)
+    box = np.where(np.take(hits.reshape(-1), index), np.nan, np.take(image.reshape(-1), index))
     with warnings.catch_warnings():
         # A hit whose whole 5x5 box is flagged keeps its value (NaN -> fallback).
         warnings.simplefilter("ignore", RuntimeWarning)
@@ -161,7 +250,8 @@ def detect_cosmic_rays(
         Calibrated image in electrons (sky included); axis 0 is the scan axis.
         Non-finite pixels must be listed in ``ignore``.
     variance : ndarray, shape (n_rows, n_columns)
-        Variance of ``image`` in e^2 from the noise model.
+        Variance of ``image`` in e^2 from the noise model; give ``inf`` (or
+        NaN, which costs a copy) where there is no data.
     ignore : ndarray of bool, shape (n_rows, n_columns), optional
         Pixels never flagged and left out of the cleaning (saturated, bleed, bad
         columns, non-finite).
@@ -184,22 +274,18 @@ def detect_cosmic_rays(
     shape = image.shape
     ignore = np.zeros(shape, bool) if ignore is None else ignore
     work = np.array(image, dtype=np.float32)
-    bad = ~np.isfinite(work)
-    if bad.any():
-        work[bad] = np.median(work[~bad]) if (~bad).any() else 0.0
-    variance = np.where(np.isfinite(variance), variance, 0).astype(np.float32)
+    bad = np.flatnonzero(~np.isfinite(work))
+    if bad.size:
+        sample = work.reshape(-1)[:: max(work.size // 100_000, 1)]
+        sample = sample[np.isfinite(sample)]
+        work.flat[bad] = np.median(sample) if sample.size else 0.0
+    variance = np.asarray(variance, dtype=np.float32)
+    if np.isnan(variance).any():
+        # No-data pixels get an infinite variance: never the smallest noise,
+        # and the 5x5 median ignores a few of them.
+        variance = np.nan_to_num(variance, nan=np.inf, copy=True)
 
-    lplus = laplacian_plus(work)
-    # Preselection: S' <= L+ / (2 N) with N >= sqrt(min variance in the cross)
-    # times a margin of sqrt(0.5) for a median below that minimum.
-    padded = np.pad(variance, 1, mode="edge")
-    vmin = np.minimum(variance, padded[:-2, 1:-1])
-    np.minimum(vmin, padded[2:, 1:-1], out=vmin)
-    np.minimum(vmin, padded[1:-1, :-2], out=vmin)
-    np.minimum(vmin, padded[1:-1, 2:], out=vmin)
-    threshold = np.float32(0.5 * (2.0 * sigclip) ** 2)
-    candidates = np.flatnonzero((lplus * lplus > threshold * vmin) & ~ignore)
-
+    lplus, candidates = _candidates(work, variance, ignore, sigclip)
     hits = np.zeros(shape, bool)
     for _ in range(max(int(n_iter), 1)):
         found = _one_pass(work, variance, lplus, candidates, hits, ignore, sigclip, sigfrac, objlim)
@@ -211,7 +297,10 @@ def detect_cosmic_rays(
         near = _neighbours(found, shape, 3)
         lplus.flat[near] = _laplacian_plus_at(work, near)
         near = _neighbours(found, shape, 2)
-        candidates = near[~hits.flat[near] & ~ignore.flat[near]]
+        near = near[~hits.flat[near] & ~ignore.flat[near]]
+        # The same cheap preselection as on the first pass.
+        vmin = np.min(_patches(variance, near, 3)[:, [1, 3, 4, 5, 7]], axis=1)
+        candidates = near[lplus.flat[near] ** 2 > 0.5 * (2.0 * sigclip) ** 2 * vmin]
     return hits
 
 
@@ -234,5 +323,5 @@ def _one_pass(work, variance, lplus, candidates, hits, ignore, sigclip, sigfrac,
         if near.size == 0:
             break
         sp_near = _s_prime(lplus, _noise(variance, near), near)
-        found = np.union1d(found, near[sp_near > limit])
+        found = _unique(np.concatenate([found, near[sp_near > limit]]), work.size)
     return found

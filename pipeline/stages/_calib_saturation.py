@@ -11,9 +11,8 @@ not trustworthy either (common practice: grow the mask by a pixel).
 from __future__ import annotations
 
 import numpy as np
-from scipy import ndimage
 
-__all__ = ["bleed_mask", "saturation_mask"]
+__all__ = ["bleed_mask", "bleed_pixels", "saturation_mask"]
 
 
 def saturation_mask(raw: np.ndarray, saturation: float | np.ndarray) -> np.ndarray:
@@ -37,14 +36,14 @@ def saturation_mask(raw: np.ndarray, saturation: float | np.ndarray) -> np.ndarr
     return raw >= saturation
 
 
-def bleed_mask(
+def bleed_pixels(
     raw: np.ndarray,
-    saturated: np.ndarray,
+    saturated_index: np.ndarray,
     bleed_level: float | np.ndarray,
     grow_rows: int = 2,
     grow_columns: int = 1,
 ) -> np.ndarray:
-    """Bleed trails of saturated pixels along the scan, grown by a margin.
+    """Flat indices of the bleed trails of saturated pixels, grown by a margin.
 
     A bleed pixel lies in the same column as a saturated pixel, is connected to
     it along the column through pixels at or above ``bleed_level``, and is not
@@ -54,9 +53,9 @@ def bleed_mask(
     Parameters
     ----------
     raw : ndarray, shape (n_rows, n_columns)
-        Raw image in ADU; axis 0 is the scan axis.
-    saturated : ndarray of bool, shape (n_rows, n_columns)
-        Output of :func:`saturation_mask`.
+        Raw image in ADU (C order); axis 0 is the scan axis.
+    saturated_index : ndarray of int
+        Sorted flat indices of the saturated pixels.
     bleed_level : float or ndarray of shape (n_rows,)
         Raw level in ADU above which a pixel next to a saturated one along the
         column counts as part of its trail.
@@ -66,30 +65,67 @@ def bleed_mask(
 
     Returns
     -------
+    ndarray of int
+        Sorted flat indices of the bleed pixels and the margin, saturated
+        pixels excluded (they carry their own bit).
+    """
+    n_rows, n_columns = raw.shape
+    saturated_index = np.asarray(saturated_index, dtype=np.int64)
+    if saturated_index.size == 0:
+        return saturated_index
+    level = np.broadcast_to(np.asarray(bleed_level, dtype=np.float64), (n_rows,))
+    flat_raw = raw.reshape(-1)
+    is_saturated = np.zeros(raw.size, dtype=bool)
+    is_saturated[saturated_index] = True
+    trail = [saturated_index]
+    # Walk from the ends of every saturated run along its column (the scan
+    # axis) while the pixels stay at or above the bleed level.
+    for step in (-n_columns, n_columns):
+        front = saturated_index
+        while front.size:
+            nxt = front + step
+            nxt = nxt[(nxt >= 0) & (nxt < raw.size)]
+            nxt = nxt[~is_saturated[nxt]]  # saturated pixels are walked from themselves
+            nxt = nxt[flat_raw[nxt] >= level[nxt // n_columns]]
+            trail.append(nxt)
+            front = nxt
+    rows, cols = np.divmod(np.concatenate(trail), n_columns)
+    dr = np.arange(-grow_rows, grow_rows + 1)
+    dc = np.arange(-grow_columns, grow_columns + 1)
+    r = np.clip(rows[:, None, None] + dr[None, :, None], 0, n_rows - 1)
+    c = np.clip(cols[:, None, None] + dc[None, None, :], 0, n_columns - 1)
+    grown = np.zeros(raw.size, dtype=bool)
+    grown[(r * n_columns + c).ravel()] = True
+    grown[saturated_index] = False
+    return np.flatnonzero(grown)
+
+
+def bleed_mask(
+    raw: np.ndarray,
+    saturated: np.ndarray,
+    bleed_level: float | np.ndarray,
+    grow_rows: int = 2,
+    grow_columns: int = 1,
+) -> np.ndarray:
+    """Boolean-image form of :func:`bleed_pixels`.
+
+    Parameters
+    ----------
+    raw : ndarray, shape (n_rows, n_columns)
+        Raw image in ADU; axis 0 is the scan axis.
+    saturated : ndarray of bool, shape (n_rows, n_columns)
+        Output of :func:`saturation_mask`.
+    bleed_level, grow_rows, grow_columns
+        See :func:`bleed_pixels`.
+
+    Returns
+    -------
     ndarray of bool, shape (n_rows, n_columns)
-        True on bleed pixels and on the margin; false on the saturated pixels
-        themselves (they carry their own bit).
+        True on bleed pixels and on the margin; false on saturated pixels.
     """
     result = np.zeros(saturated.shape, dtype=bool)
-    columns = np.flatnonzero(saturated.any(axis=0))
-    if columns.size == 0:
-        return result
-    level = np.asarray(bleed_level, dtype=raw.dtype)
-    if level.ndim == 1:
-        level = level[:, None]
-    # Work on the few columns that hold saturated pixels only.
-    sub_sat = saturated[:, columns]
-    high = (raw[:, columns] >= level) | sub_sat
-    # Runs of high pixels along each column (the scan axis only).
-    labels, _ = ndimage.label(high, structure=np.array([[0, 0, 0], [1, 1, 1], [0, 0, 0]]).T)
-    touched = np.unique(labels[sub_sat])
-    trail = np.isin(labels, touched[touched > 0])
-    if grow_rows > 0:
-        trail = ndimage.binary_dilation(trail, structure=np.ones((2 * grow_rows + 1, 1), bool))
-    n_columns = saturated.shape[1]
-    for shift in range(-grow_columns, grow_columns + 1):
-        target = columns + shift
-        inside = (target >= 0) & (target < n_columns)
-        result[:, target[inside]] |= trail[:, inside]
-    result &= ~saturated
+    index = bleed_pixels(
+        np.ascontiguousarray(raw), np.flatnonzero(saturated), bleed_level, grow_rows, grow_columns
+    )
+    result.reshape(-1)[index] = True
     return result

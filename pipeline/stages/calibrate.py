@@ -46,10 +46,11 @@ from pydantic import BaseModel, ConfigDict, Field
 from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MASK_DTYPE, MaskBit, describe_mask
 from pipeline.stages._calib_bias import overscan_levels, smooth_levels
+from pipeline.stages._calib_chunks import Scratch, row_chunks
 from pipeline.stages._calib_columns import solve_columns, summarize_columns
 from pipeline.stages._calib_cosmics import detect_cosmic_rays
 from pipeline.stages._calib_rows import stretch_rows_for_stage
-from pipeline.stages._calib_saturation import bleed_mask, saturation_mask
+from pipeline.stages._calib_saturation import bleed_pixels, saturation_mask
 from pipeline.stages.base import RAW_ROWS, Stage
 
 __all__ = [
@@ -124,6 +125,22 @@ def _segments(segment, n_rows: int) -> np.ndarray:
     return segment
 
 
+def _row_bias(overscan, gain, read_noise, segment, window, polyorder, clip) -> np.ndarray:
+    """Smoothed overscan bias of each row, ADU, per segment (NaN where segment < 0)."""
+    n_rows = overscan.shape[0]
+    read_noise = _per_row(read_noise, n_rows, "read_noise")
+    segment = _segments(segment, n_rows)
+    levels = overscan_levels(overscan, read_noise / gain, clip)
+    bias = np.full(n_rows, np.nan)
+    for label in np.unique(segment[segment >= 0]):
+        rows = np.flatnonzero(segment == label)
+        # Split also where a run's rows are not consecutive in this stretch.
+        for part in np.split(rows, np.flatnonzero(np.diff(rows) != 1) + 1):
+            if np.isfinite(levels[part]).any():
+                bias[part] = smooth_levels(levels[part], window, polyorder)
+    return bias
+
+
 def subtract_bias(
     image: np.ndarray,
     overscan: np.ndarray,
@@ -177,16 +194,9 @@ def subtract_bias(
         )
     n_rows, n_columns = image.shape
     gain = _per_row(gain, n_rows, "gain")
-    read_noise = _per_row(read_noise, n_rows, "read_noise")
-    segment = _segments(segment, n_rows)
-    levels = overscan_levels(overscan, read_noise / gain, overscan_clip)
-    bias = np.full(n_rows, np.nan)
-    for label in np.unique(segment[segment >= 0]):
-        rows = np.flatnonzero(segment == label)
-        # Split also where a run's rows are not consecutive in this stretch.
-        for part in np.split(rows, np.flatnonzero(np.diff(rows) != 1) + 1):
-            if np.isfinite(levels[part]).any():
-                bias[part] = smooth_levels(levels[part], bias_window, bias_polyorder)
+    bias = _row_bias(
+        overscan, gain, read_noise, segment, bias_window, bias_polyorder, overscan_clip
+    )
     offset = bias[:, None]
     if column_bias is not None:
         column_bias = np.asarray(column_bias, dtype=np.float64)
@@ -375,63 +385,70 @@ def calibrate_stretch(
     -------
     CalibratedStretch
     """
-    image = np.asarray(image)
-    n_rows, n_columns = image.shape if image.ndim == 2 else (0, 0)
+    image = np.asarray(image, dtype=np.float32)
+    overscan = np.asarray(overscan)
+    if image.ndim != 2 or overscan.ndim != 2 or overscan.shape[0] != image.shape[0]:
+        raise ValueError(
+            f"image and overscan must be 2-D with the same rows (scan axis); got shapes "
+            f"{image.shape} and {overscan.shape}."
+        )
+    n_rows, n_columns = image.shape
     gain = _per_row(gain, n_rows, "gain")
     read_noise = _per_row(read_noise, n_rows, "read_noise")
     saturation = _per_row(saturation, n_rows, "saturation")
     segment = _segments(segment, n_rows)
-    electrons, bias = subtract_bias(
-        image,
-        overscan,
-        gain=gain,
-        read_noise=read_noise,
-        column_bias=column_bias,
-        segment=segment,
-        bias_window=bias_window,
-        bias_polyorder=bias_polyorder,
-        overscan_clip=overscan_clip,
+    bias = _row_bias(
+        overscan, gain, read_noise, segment, bias_window, bias_polyorder, overscan_clip
     )
     flat, dark, column_flags = _column_model(columns, flat, dark, n_columns)
+    if column_bias is not None:
+        column_bias = np.asarray(column_bias, dtype=np.float32)
+        if column_bias.shape != (n_columns,):
+            raise ValueError(
+                f"column_bias must have shape ({n_columns},), one value per image column; "
+                f"got {column_bias.shape}."
+            )
+    image_e, variance, saturated, nonfinite = _calibrate_pixels(
+        image, bias, gain, read_noise, saturation, flat, dark, column_bias
+    )
 
     mask = np.zeros((n_rows, n_columns), dtype=MASK_DTYPE)
-    mask |= column_flags[None, :]
-    nonfinite = ~np.isfinite(electrons)
-    gap = segment < 0
-    mask[nonfinite] |= int(MaskBit.NONFINITE)
-    mask[gap] = (mask[gap] | int(MaskBit.GAP)) & ~MASK_DTYPE.type(MaskBit.NONFINITE)
-    saturated = saturation_mask(image, saturation)
+    flat_mask = mask.reshape(-1)
+    for column in np.flatnonzero(column_flags):
+        mask[:, column] |= column_flags[column]
+    gap = np.flatnonzero(segment < 0)
+    mask[gap] |= int(MaskBit.GAP)
+    flat_mask[nonfinite] |= int(MaskBit.NONFINITE)
+    mask[gap] &= ~MASK_DTYPE.type(MaskBit.NONFINITE)
     bias_level = np.where(np.isfinite(bias), bias, 0.0)
-    bleed = bleed_mask(
+    bleed = bleed_pixels(
         image,
         saturated,
         bias_level + bleed_fraction * (saturation - bias_level),
         bleed_grow_rows,
         bleed_grow_columns,
     )
-    mask[saturated] |= int(MaskBit.SATURATED)
-    mask[bleed] |= int(MaskBit.BLEED)
+    flat_mask[saturated] |= int(MaskBit.SATURATED)
+    flat_mask[bleed] |= int(MaskBit.BLEED)
     if rows_since_start is not None and tdi_rows:
-        ramp = np.asarray(rows_since_start) < int(tdi_rows)
-        mask[ramp & ~gap] |= int(MaskBit.LOW_EXPOSURE)
+        ramp = (np.asarray(rows_since_start) < int(tdi_rows)) & (segment >= 0)
+        mask[ramp] |= int(MaskBit.LOW_EXPOSURE)
 
-    # Variance from the collected electrons, before the flat divides them.
-    quantisation = (gain * gain / 12.0).astype(np.float32)
-    variance = np.maximum(electrons, 0.0)
-    variance += (read_noise * read_noise).astype(np.float32)[:, None] + quantisation[:, None]
-    inv_flat = (1.0 / flat).astype(np.float32)
-    calibrated = electrons
-    calibrated -= dark.astype(np.float32)[None, :]
-    calibrated *= inv_flat[None, :]
-    variance *= (inv_flat * inv_flat)[None, :]
-
-    no_data = (mask & (MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN)) != 0
-    calibrated[no_data] = np.nan
-    variance[no_data] = np.nan
+    # Pixels without data: NaN in the products, infinite variance for the
+    # cosmic-ray search (never the smallest noise).
+    no_data = np.zeros((n_rows, n_columns), dtype=bool)
+    bad_columns = np.flatnonzero(column_flags & int(MaskBit.BAD_COLUMN))
+    no_data[:, bad_columns] = True
+    no_data[gap] = True
+    no_data.reshape(-1)[nonfinite] = True
+    image_e[no_data] = np.nan
+    variance[no_data] = np.inf
     if cosmic_rays and n_rows > 0:
-        ignore = no_data | saturated | bleed
+        ignore = no_data
+        ignore.reshape(-1)[saturated] = True
+        ignore.reshape(-1)[bleed] = True
         hits = detect_cosmic_rays(
-            calibrated,
+            image_e,
             variance,
             ignore,
             sigclip=cosmic_sigclip,
@@ -440,7 +457,58 @@ def calibrate_stretch(
             n_iter=cosmic_iterations,
         )
         mask[hits] |= int(MaskBit.COSMIC_RAY)
-    return CalibratedStretch(calibrated, variance, mask, bias)
+    variance[np.isnan(image_e)] = np.nan
+    return CalibratedStretch(image_e, variance, mask, bias)
+
+
+def _calibrate_pixels(image, bias, gain, read_noise, saturation, flat, dark, column_bias):
+    """Electrons, variance, saturated and non-finite flat indices, chunk by chunk.
+
+    ``(raw - bias - column_bias) * gain`` are the collected electrons; the
+    variance is ``RDNOISE^2 + max(electrons, 0) + GAIN^2 / 12``; both are then
+    corrected for the additive level and the flat:
+    ``image = (electrons - dark) / flat``, ``variance /= flat^2``.
+    """
+    n_rows, n_columns = image.shape
+    image_e = np.empty((n_rows, n_columns), dtype=np.float32)
+    variance = np.empty((n_rows, n_columns), dtype=np.float32)
+    bias32 = bias.astype(np.float32)[:, None]
+    gain32 = gain.astype(np.float32)[:, None]
+    constant = (read_noise**2 + gain**2 / 12.0).astype(np.float32)[:, None]
+    saturation32 = saturation.astype(np.float32)[:, None]
+    inv_flat = (1.0 / flat).astype(np.float32)
+    inv_flat2 = inv_flat * inv_flat
+    dark32 = dark.astype(np.float32)
+    scratch = Scratch(n_columns)
+    saturated, nonfinite = [], []
+    zero = np.float32(0.0)
+    for r0, r1 in row_chunks(n_rows):
+        raw = image[r0:r1]
+        e = image_e[r0:r1]
+        v = variance[r0:r1]
+        np.subtract(raw, bias32[r0:r1], out=e)
+        if column_bias is not None:
+            e -= column_bias
+        e *= gain32[r0:r1]
+        np.maximum(e, zero, out=v)
+        v += constant[r0:r1]
+        v *= inv_flat2
+        e -= dark32
+        e *= inv_flat
+        test = scratch.get("test", r1 - r0, bool)
+        np.greater_equal(raw, saturation32[r0:r1], out=test)
+        if test.any():
+            saturated.append(np.flatnonzero(test) + r0 * n_columns)
+        np.isfinite(e, out=test)
+        if not test.all():
+            nonfinite.append(np.flatnonzero(~test) + r0 * n_columns)
+    empty = np.zeros(0, dtype=np.int64)
+    return (
+        image_e,
+        variance,
+        np.concatenate(saturated) if saturated else empty,
+        np.concatenate(nonfinite) if nonfinite else empty,
+    )
 
 
 # ----------------------------------------------------------------------------
