@@ -208,6 +208,12 @@ class TDIModel:
                 "use a smaller |k1|."
             )
         radius = field_margin * float(self._undistort_radius(np.array(corner)))
+        if radius > 0.2:
+            raise ValueError(
+                f"The camera's field (corner {np.degrees(corner):.2f} deg from the axis, "
+                f"x field_margin={field_margin}) exceeds the 0.2 rad a zenith model covers; "
+                "check pixel_size, focal_length and the chip size."
+            )
         rough_crossing = (
             self._N * self._p / (EARTH_ROTATION_RATE * np.cos(np.radians(site.latitude)))
         )
@@ -465,7 +471,9 @@ class TDIModel:
             t_mid = self._solve_u(ra, dec, t_mid, self._N / 2.0, rate0)
         return t_enter.reshape(shape), t_exit.reshape(shape)
 
-    def track(self, ra: ArrayLike, dec: ArrayLike, n_samples: int = 64, **kwargs) -> Track:
+    def track(
+        self, ra: ArrayLike, dec: ArrayLike, n_samples: int = 64, *, after: float = 0.0
+    ) -> Track:
         """The sampled strip curve (smear kernel) of each star.
 
         Parameters
@@ -475,8 +483,9 @@ class TDIModel:
         n_samples : int, optional
             Samples per star, at the midpoints of equal time steps over the
             crossing.
-        **kwargs
-            Passed to :meth:`crossing_window` (``after``).
+        after : float, optional
+            Use the first crossing ending at or after this time (see
+            :meth:`crossing_window`).
 
         Returns
         -------
@@ -488,19 +497,29 @@ class TDIModel:
         ra, dec = (
             a.ravel() for a in np.broadcast_arrays(np.asarray(ra, float), np.asarray(dec, float))
         )
-        t0, t1 = self.crossing_window(ra, dec, **kwargs)
+        t0, t1 = self.crossing_window(ra, dec, after=after)
         frac = (np.arange(n_samples) + 0.5) / n_samples
         t = t0[:, None] + (t1 - t0)[:, None] * frac
         u, v = self.focal_plane(ra[:, None], dec[:, None], t)
         return Track(t=t, u=u, v=v, r=t / self._dt + self._N - u, c=v)
 
     def recorded_centroid(
-        self, ra: ArrayLike, dec: ArrayLike, **kwargs
+        self, ra: ArrayLike, dec: ArrayLike, *, after: float = 0.0
     ) -> tuple[np.ndarray, np.ndarray]:
         """Time-mean strip position of each star's track, pixels.
 
         Gauss-Legendre quadrature of order 16 over the crossing; the track is
-        a low-order polynomial in time, so this is exact to ~1e-9 px.
+        a low-order polynomial in time, so this is exact to ~1e-9 px.  This
+        is where a star's image is centred in the strip (DESIGN.md section 4:
+        astrometry must use it, not the track's apex).
+
+        Parameters
+        ----------
+        ra, dec : array_like
+            ICRS degrees at the observation epoch.
+        after : float, optional
+            Use the first crossing ending at or after this time (see
+            :meth:`crossing_window`).
 
         Returns
         -------
@@ -508,7 +527,7 @@ class TDIModel:
             Strip row and column, broadcast shape of ``ra`` and ``dec``.
         """
         ra, dec = np.broadcast_arrays(np.asarray(ra, dtype=float), np.asarray(dec, dtype=float))
-        t0, t1 = self.crossing_window(ra, dec, **kwargs)
+        t0, t1 = self.crossing_window(ra, dec, after=after)
         x, w = np.polynomial.legendre.leggauss(_GAUSS_ORDER)
         t = 0.5 * (t0 + t1)[..., None] + 0.5 * (t1 - t0)[..., None] * x
         u, v = self.focal_plane(ra[..., None], dec[..., None], t)
