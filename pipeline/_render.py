@@ -239,35 +239,62 @@ def render_tracks(
         & (c0 + nc > col_lo)
         & (c0 < col_lo + n_cols)
     )
-    nr_pad, nc_pad = _round_up(nr), _round_up(nc)
-    groups: dict[tuple[int, int], list[int]] = {}
-    for i in np.flatnonzero(keep):
-        groups.setdefault((int(nr_pad[i]), int(nc_pad[i])), []).append(i)
+    kept = np.flatnonzero(keep)
+    if kept.size == 0:
+        return image
+    nr_pad, nc_pad = _round_up(nr[kept]), _round_up(nc[kept])
+    tables_r = _ProfileTables(psf, int(nr_pad.max()) + 2, row_box)
+    tables_c = _ProfileTables(psf, int(nc_pad.max()) + 2, 0.0)
     flat = image.reshape(-1)
     n_sample = r.shape[1]
-    for (kr, kc), members in groups.items():
-        idx = np.asarray(members)
-        idx = idx[np.argsort(r0[idx], kind="stable")]  # compact batches -> small bincounts
-        batch = max(1, _BATCH_ELEMENTS // (n_sample * (kr + kc + 2) + kr * kc))
+    sizes, group = np.unique(np.stack([nr_pad, nc_pad], axis=1), axis=0, return_inverse=True)
+    for g, (kr, kc) in enumerate(sizes.tolist()):
+        idx = kept[group.ravel() == g]
+        batch = max(1, _BATCH_ELEMENTS // (n_sample * (kr + kc) + kr * kc))
         for start in range(0, idx.size, batch):
             sel = idx[start : start + batch]
-            stamps = _render_stamps(
-                r[sel], c[sel], weights[sel], r0[sel], c0[sel], kr, kc, psf, flux[sel], row_box
-            )
+            p = tables_r.profiles(r0[sel], kr, r[sel])
+            q = tables_c.profiles(c0[sel], kc, c[sel])
+            stamps = _combine(p, q, weights[sel], psf.weights, flux[sel])
             _accumulate(flat, stamps, r0[sel] - row_lo, c0[sel] - col_lo, n_rows, n_cols)
     return image
 
 
-def _render_stamps(r, c, w, r0, c0, kr, kc, psf, flux, row_box):
-    """Stamps of shape (n, kr, kc) with top-left pixel (r0, c0), each summing to flux."""
-    edges_r = r0[:, None] + np.arange(kr + 1) - 0.5
-    edges_c = c0[:, None] + np.arange(kc + 1) - 0.5
-    stamps = np.zeros((r.shape[0], kr, kc))
-    for sigma, frac in zip(psf.sigmas, psf.weights, strict=True):
-        p = _pixel_profile(edges_r, r, sigma, row_box)  # (n, S, kr)
-        q = _pixel_profile(edges_c, c, sigma)  # (n, S, kc)
-        p *= (w * frac)[:, :, None]
-        stamps += np.matmul(p.transpose(0, 2, 1), q)
+class _ProfileTables:
+    """Pixel-integrated 1-D profiles of each PSF component on a fine offset grid.
+
+    ``values[j, m]`` is the fraction of component ``j`` (convolved with a
+    top-hat of width ``box``) falling in a pixel whose centre lies
+    ``d = d0 + m / per_pixel`` pixels from the star; lookups interpolate
+    linearly (error ~ (1/per_pixel)^2 / 8 of the profile curvature: below
+    1e-5 of the peak for sigma >= 0.5 px at 128 nodes per pixel).
+    """
+
+    def __init__(self, psf: GaussianMixturePSF, half_range: int, box: float, per_pixel=128):
+        self.per_pixel = per_pixel
+        self.d0 = -float(half_range)
+        d = self.d0 + np.arange(2 * half_range * per_pixel + 2) / per_pixel
+        edges = np.stack([d - 0.5, d + 0.5], axis=1)  # (M, 2): one pixel per offset
+        centre = np.zeros((d.size, 1))
+        self.values = np.stack(
+            [_pixel_profile(edges, centre, sig, box)[:, 0, 0] for sig in psf.sigmas]
+        )
+        self.slopes = np.diff(self.values, axis=1, append=0.0)
+
+    def profiles(self, k0: np.ndarray, k: int, x: np.ndarray) -> np.ndarray:
+        """Fractions (n_comp, n, S, k) for pixels k0..k0+k-1 and positions x (n, S)."""
+        pos = ((k0[:, None, None] + np.arange(k)) - x[:, :, None] - self.d0) * self.per_pixel
+        i = pos.astype(np.intp)  # pos > 0 by construction, so this is floor
+        f = pos - i
+        return self.values[:, i] + f * self.slopes[:, i]
+
+
+def _combine(p, q, w, fractions, flux):
+    """Stamps (n, kr, kc) = sum_j a_j sum_s w_s p_j[s, :] q_j[s, :], renormalised to flux."""
+    stamps = np.zeros((p.shape[1], p.shape[3], q.shape[3]))
+    for j, frac in enumerate(fractions):
+        pj = p[j] * (w * frac)[:, :, None]
+        stamps += np.matmul(pj.transpose(0, 2, 1), q[j])
     total = stamps.sum(axis=(1, 2))
     scale = np.divide(flux, total, out=np.zeros_like(flux), where=total > 0)
     stamps *= scale[:, None, None]
@@ -283,5 +310,7 @@ def _accumulate(flat, stamps, r0, c0, n_rows, n_cols):
     index = (rows[:, :, None] * n_cols + cols[:, None, :])[ok]
     if index.size == 0:
         return
-    lo, hi = index.min(), index.max() + 1
-    flat[lo:hi] += np.bincount(index - lo, weights=stamps[ok], minlength=hi - lo)
+    # Sum duplicate indices within the batch, then add once per touched pixel: the
+    # cost scales with the batch, not with the image.
+    touched, inverse = np.unique(index, return_inverse=True)
+    flat[touched] += np.bincount(inverse, weights=stamps[ok], minlength=touched.size)
