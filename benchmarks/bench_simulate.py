@@ -48,7 +48,7 @@ def main(argv: list[str] | None = None) -> int:
     tic = time.perf_counter()
     night = simulate_night(site, camera, options)
     total = time.perf_counter() - tic
-    header, data = night.blocks[0]
+    _, data = night.blocks[0]
     print(f"block {data.shape[0]} x {data.shape[1]} (incl. overscan), {data.dtype}")
     print(f"stars in truth: {len(night.truth)}, samples per track: {night.meta['n_samples']}")
     print(f"psf: {args.psf}, FWHM {night.meta['psf_fwhm_px']:.2f} px, BLAS threads {args.threads}")
