@@ -17,6 +17,12 @@ site has a pressure, refraction) projected gnomonically about the axis:
   the component of local north perpendicular to the axis, ``xi = axis x eta``
   (for a zero tilt, exactly west and north).
 
+"Zenith" here is astropy's: the normal to the WGS84 ellipsoid at the site.  A
+liquid mirror's axis follows the local plumb line instead, which differs by the
+deflection of the vertical (a few arcseconds, more in mountains), and may be
+tilted on purpose (e.g. against the Coriolis aberration); both belong in the
+camera's ``tilt_east``/``tilt_north``, which the astrometry stage can fit.
+
 On a coarse grid of times (``node_spacing_s``) astropy/ERFA gives (1) the ICRS
 position of the axis and (2) for a grid of points around it, covering the chip
 and a margin, the observed position.  Per node we fit two 2-D polynomials
