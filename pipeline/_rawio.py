@@ -59,22 +59,40 @@ def _image_hdu(hdul: fits.HDUList) -> int | None:
     return None
 
 
+# Leading bytes of whole-file compression formats astropy reads transparently.
+_COMPRESSED_MAGIC = (b"\x1f\x8b", b"BZh", b"\xfd7zXZ\x00", b"PK\x03\x04")
+
+
+def _file_size(path: Path) -> int | None:
+    """Size in bytes, or None if the file is compressed (or unreadable: 0)."""
+    try:
+        with open(path, "rb") as stream:
+            start = stream.read(6)
+        size = path.stat().st_size
+    except OSError:
+        return 0
+    return None if start.startswith(_COMPRESSED_MAGIC) else size
+
+
 def read_raw_files(raw_dir: Path, names: Sequence[str]) -> list[RawFile]:
     """Read the header of the first 2-D image HDU of every raw file.
 
     A file that cannot be read is returned with ``error`` set, not raised, so
-    the ingest stage can reject it with its reason and go on.
+    the ingest stage can reject it with its reason and go on.  ``size`` is
+    None for compressed files (see :class:`~pipeline.stages.base.RawFile`).
     """
     files = []
     for name in names:
         path = raw_dir / name
-        size = path.stat().st_size if path.exists() else 0
+        size = _file_size(path)
         try:
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
                 with fits.open(path) as hdul:
                     index = _image_hdu(hdul)
                     header = hdul[index].header.copy() if index is not None else None
+                    if index is not None and isinstance(hdul[index], fits.CompImageHDU):
+                        size = None
             problems = "; ".join(str(w.message) for w in caught)
             error = None if index is not None else "no 2-D image HDU in the file"
             if problems and error is None:

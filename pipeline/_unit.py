@@ -168,6 +168,15 @@ def _fits_cards(task: UnitTask) -> dict[str, tuple[Any, str]]:
     return cards
 
 
+def _summarize_warnings(caught: list[warnings.WarningMessage]) -> list[str]:
+    """Each distinct warning once, in order, with its count if it repeated."""
+    counts: dict[str, int] = {}
+    for w in caught:
+        text = f"{w.category.__name__}: {w.message}"
+        counts[text] = counts.get(text, 0) + 1
+    return [text if n == 1 else f"{text} (x{n})" for text, n in counts.items()]
+
+
 def _check_products(task: UnitTask, products: Any) -> dict[str, Any]:
     if not isinstance(products, Mapping):
         raise TypeError(
@@ -214,7 +223,7 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
                     "compute_s": round(t2 - t1, 4),
                     "write_s": round(time.perf_counter() - t2, 4),
                 },
-                "warnings": [f"{w.category.__name__}: {w.message}" for w in caught],
+                "warnings": _summarize_warnings(caught),
             }
             write_sidecar(task.unit_dir, record)
         except Exception as exc:  # reported to the runner, which logs it and goes on

@@ -23,9 +23,9 @@ Examples
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import sys
 from collections.abc import Callable, Sequence
+from pathlib import Path
 
 import pipeline
 from pipeline._logging import TextProgress, cli_logging
@@ -84,7 +84,8 @@ def _parser() -> argparse.ArgumentParser:
     command("status", "show which products exist, which are stale and which failed")
     command("config", "print the fully resolved config as YAML")
     command("plan", "print what the site and camera imply (scale, line time, smear)")
-    command("simulate", "write a synthetic night of raw blocks (config section 'simulate')")
+    simulate = command("simulate", "write a synthetic night of raw blocks (section 'simulate')")
+    simulate.add_argument("--output", help="folder to write to (default: night.raw_dir)")
     return parser
 
 
@@ -135,20 +136,17 @@ def _cmd_plan(args: argparse.Namespace, config: Config) -> int:
 
 
 def _cmd_simulate(args: argparse.Namespace, config: Config) -> int:
-    if importlib.util.find_spec("pipeline.simulate") is None:
-        print("zdrift simulate: the simulator is not installed yet", file=sys.stderr)
-        return EXIT_USAGE
-    from pipeline import simulate
+    from pipeline.simulate import simulate_night, write_night
 
-    entry = getattr(simulate, "simulate_from_config", None)
-    if entry is None:
-        print("zdrift simulate: the simulator has no simulate_from_config yet", file=sys.stderr)
-        return EXIT_USAGE
-    if config.section("simulate") is None:
+    options = config.section("simulate")
+    if options is None:
         print("zdrift simulate: the config has no 'simulate' section", file=sys.stderr)
         return EXIT_USAGE
+    out = Path(args.output) if args.output else Path(config.night.raw_dir)
     with cli_logging(args.verbose):
-        print(entry(config))
+        night = simulate_night(config.site(), config.camera(), options)
+        paths = write_night(night, out)
+    print(f"wrote {len(paths)} files to {out}")
     return EXIT_OK
 
 

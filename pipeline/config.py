@@ -94,7 +94,7 @@ class NightSection(StrictModel):
 
     name: str = Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]*$", description="folder-safe name")
     raw_dir: Path = Field(description="folder holding the raw TDI blocks")
-    pattern: str = Field("*.fits", description="glob of raw files below raw_dir")
+    pattern: str = Field("*.fits*", description="glob of raw files below raw_dir (.fits, .fits.gz)")
     output_dir: Path = Field(description="products go to output_dir/<name>/")
 
     @field_validator("name", mode="before")

@@ -403,6 +403,8 @@ class _Night:
 
     def no_index_reason(self) -> str:
         maker = self.row_stage.name if self.row_stage else "a stage with defines_rows"
+        if self.index is not None:
+            return f"the block index of stage {maker!r} has no rows (were all raw files rejected?)"
         return f"no block index yet; run stage {maker!r} first"
 
     def state(self, stage: Stage, stretch: Stretch | None) -> tuple[str, str]:

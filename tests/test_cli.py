@@ -121,3 +121,35 @@ def test_plan_prints_the_site_and_camera_numbers(toy_file: Path, capsys) -> None
     assert main(["plan", str(toy_file), *realistic]) == 0
     out = capsys.readouterr().out
     assert "focal length" in out and "line time" in out
+
+
+def test_simulate_needs_a_simulate_section(toy_file: Path, capsys) -> None:
+    assert main(["simulate", str(toy_file)]) == 2
+    assert "the config has no 'simulate' section" in capsys.readouterr().err
+
+
+DEMO_NIGHT = """\
+night: {name: 2026-10-15, raw_dir: raw, output_dir: out}
+site: {name: Fictional Ridge, latitude: 31.0, longitude: -105.0, height: 2200}
+camera: {n_columns: 256, tdi_rows: 256, pixel_size: 15, focal_length: 3.5}
+run: {stretch_rows: 400, overlap_rows: 32, workers: 2}
+simulate: {start: "2026-10-15T05:00:00", n_blocks: 4, block_rows: 256, overscan_columns: 16}
+"""
+
+
+@pytest.mark.slow
+def test_simulate_then_run_the_registered_stages(tmp_path: Path, capsys) -> None:
+    """The real stage graph plugs into the runner: a simulated night runs to the end."""
+    config = tmp_path / "night.yaml"
+    config.write_text(DEMO_NIGHT)
+    assert main(["simulate", str(config)]) == 0
+    assert "wrote" in capsys.readouterr().out
+    assert main(["run", str(config)]) == 0, capsys.readouterr()
+    assert " 0 failed, 0 blocked" in capsys.readouterr().out
+    assert main(["run", str(config)]) == 0
+    assert "night 2026-10-15: 0 units ran" in capsys.readouterr().out
+    assert main(["status", str(config)]) == 0
+    table = capsys.readouterr().out.splitlines()[2:]
+    for line in table:
+        done, stale, missing, failed = line.split()[2:6]
+        assert (stale, missing, failed) == ("0", "0", "0") and int(done) >= 1, line

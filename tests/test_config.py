@@ -244,3 +244,10 @@ def test_registered_section_is_validated(night_file: Path) -> None:
         load_config(night_file, ["zz_extra.dpth=4"], graph=TOY_GRAPH)
     with pytest.raises(ValueError, match="reserved"):
         register_section("night", ExtraOptions)
+
+
+def test_the_template_config_is_valid_with_the_registered_stages() -> None:
+    template = Path(__file__).parent.parent / "configs" / "template.yaml"
+    config = load_config(template)  # the registered graph, not the toy one
+    assert config.night.raw_dir == template.parent / "raw" / "2026-10-15"
+    assert config.camera().spin_period == 8.5

@@ -488,3 +488,32 @@ def test_local_pool_and_dask_give_identical_products(toy, tmp_path, dask_cluster
     # workers on another process wrote the sidecars
     pids = {r["pid"] for r in sidecars(config).values()}
     assert os.getpid() not in pids
+
+
+# ------------------------------------------------------------ the documented example
+
+
+def _developers_example() -> tuple[str, str]:
+    text = (TESTS_DIR.parent / "DEVELOPERS.md").read_text()
+    blocks = text.split("```python\n")
+    module = next(b for b in blocks if b.startswith('"""Sky level of every row'))
+    usage = next(b for b in blocks if b.startswith("image = np.full"))
+    return module.split("```")[0], usage.split("```")[0]
+
+
+def test_the_worked_example_in_developers_md_runs(toy) -> None:
+    make_config, _ = toy
+    module, usage = _developers_example()
+    namespace: dict = {}
+    exec(module, namespace)
+    exec(usage, namespace)
+    index, scale, _, _ = GRAPH
+    calibrate = Stage("calibrate", scale.run, scale.options, (RAW_ROWS,), "stretch")
+    graph = (index, calibrate, namespace["STAGE"])
+    data = {k: v for k, v in make_config().to_dict().items() if k != "stages"}
+    config = config_from_mapping(data, ["stages.row_sky.n_sigma=2.5"], graph=graph)
+    assert run_night(config).ok
+    folder = night_dir(config) / "row_sky/s0001"
+    table = read_products(folder, read_sidecar(folder))["row_sky"]
+    assert list(table["night_row"]) == list(range(30, 60))  # the core rows of stretch 1
+    assert np.all(np.isfinite(table["sky"]))

@@ -183,8 +183,11 @@ class RawFile:
         Index of the first HDU holding a 2-D image, or None if there is none.
     header : astropy.io.fits.Header or None
         Header of that HDU; None if the file could not be read.
-    size : int
-        File size in bytes.
+    size : int or None
+        File size in bytes, or None when the file is compressed (gzip, bzip2,
+        ... or a tile-compressed image HDU): then the size on disk says
+        nothing about the size of the data, and a check for truncation must
+        be skipped.
     error : str or None
         Why the file could not be read (None if it could).
     """
@@ -192,7 +195,7 @@ class RawFile:
     name: str
     hdu: int | None
     header: Header | None
-    size: int
+    size: int | None
     error: str | None = None
 
 
