@@ -164,6 +164,7 @@ def solve_columns(
     max_response: float = 1.5,
     noise_limit: float = 1.5,
     hot_level: float = 5.0,
+    hot_sigma: float = 5.0,
     min_blocks: int = 8,
     clip: float = 4.0,
     max_flat_error: float = 0.01,
@@ -185,9 +186,11 @@ def solve_columns(
     noise_limit : float
         Columns whose scatter exceeds the noise model by this factor, relative
         to the median column, are flagged BAD_COLUMN.
-    hot_level : float
+    hot_level, hot_sigma : float
         Columns whose additive level exceeds the median column's by more than
-        this many electrons per pixel are flagged HOT_COLUMN.
+        ``hot_level`` electrons per pixel and by more than ``hot_sigma`` times
+        the columns' robust spread (which a fixed bias pattern sets) are
+        flagged HOT_COLUMN.
     min_blocks : int
         Minimum number of blocks for a column fit; fewer gives BAD_COLUMN.
     clip : float
@@ -255,7 +258,9 @@ def solve_columns(
         | (slope > max_response)
         | (noise_ratio > noise_limit)
     )
-    hot = intercept - np.nanmedian(intercept[~bad]) > hot_level
+    excess = intercept - np.nanmedian(intercept[~bad])
+    spread = 1.4826 * np.nanmedian(np.abs(excess[~bad]))
+    hot = (excess > hot_level) & (excess > hot_sigma * spread)
     flags[bad] |= int(MaskBit.BAD_COLUMN)
     flags[hot & ~bad] |= int(MaskBit.HOT_COLUMN)
     result = Table(
@@ -357,7 +362,7 @@ def _fit_lines(sky, level, weight, valid, clip):
             sxx = (w * dx * dx).sum(axis=0)
             slope = (w * dx * np.where(use, level - ym, 0.0)).sum(axis=0) / sxx
             intercept = ym - slope * xm
-            resid = level - (slope * x + intercept)
+            resid = np.where(valid, level - (slope * x + intercept), 0.0)
             # Standard errors from the weights, scaled by the reduced chi^2.
             n = use.sum(axis=0)
             chi2 = (w * resid * resid).sum(axis=0) / np.maximum(n - 2, 1)

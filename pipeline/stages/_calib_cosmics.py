@@ -38,7 +38,10 @@ import numpy as np
 
 from pipeline.stages._calib_chunks import CHUNK_ROWS, Scratch, row_chunks
 
-__all__ = ["detect_cosmic_rays", "laplacian_plus"]
+__all__ = ["NO_DATA_VARIANCE", "detect_cosmic_rays", "laplacian_plus"]
+
+#: Variance standing for "no data" in the search (finite, so differences work).
+NO_DATA_VARIANCE = np.float32(1e30)
 
 
 def _cross_differences(array, r0, r1, scratch, prefix=""):
@@ -232,6 +235,53 @@ def _clean(image: np.ndarray, hits: np.ndarray, flat_index: np.ndarray) -> None:
     image.flat[flat_index[keep]] = fill[keep]
 
 
+def _fill_no_data(work: np.ndarray) -> bool:
+    """Fill non-finite pixels in place smoothly enough for the Laplacian.
+
+    Whole columns without data (bad columns) are interpolated linearly from
+    the nearest good columns, whole rows (gaps) copied from the nearest row
+    with data, and what is left by the median of a sample of the image: a
+    constant fill would make the neighbours of a bad column look like sharp
+    edges.  Returns False if there is no finite pixel at all.
+    """
+    bad = np.flatnonzero(~np.isfinite(work))
+    if bad.size == 0:
+        return True
+    if bad.size == work.size:
+        return False
+    n_rows, n_columns = work.shape
+    rows, cols = np.divmod(bad, n_columns)
+    full_cols = np.bincount(cols, minlength=n_columns) == n_rows
+    full_rows = np.bincount(rows, minlength=n_rows) == n_columns
+    good_cols = np.flatnonzero(~full_cols)
+    if full_cols.any() and good_cols.size:
+        for c in np.flatnonzero(full_cols):
+            right = np.searchsorted(good_cols, c)
+            left_col = good_cols[max(right - 1, 0)]
+            right_col = good_cols[min(right, good_cols.size - 1)]
+            if left_col == right_col:
+                work[:, c] = work[:, left_col]
+            else:
+                weight = np.float32((c - left_col) / (right_col - left_col))
+                work[:, c] = (1 - weight) * work[:, left_col] + weight * work[:, right_col]
+    good_rows = np.flatnonzero(~full_rows)
+    if full_rows.any():
+        nearest = np.clip(
+            np.searchsorted(good_rows, np.flatnonzero(full_rows)), 0, good_rows.size - 1
+        )
+        below = good_rows[np.maximum(nearest - 1, 0)]
+        above = good_rows[nearest]
+        gap_rows = np.flatnonzero(full_rows)
+        source = np.where(np.abs(gap_rows - below) <= np.abs(above - gap_rows), below, above)
+        work[gap_rows] = work[source]
+    left = np.flatnonzero(~np.isfinite(work.reshape(-1)[bad]))
+    if left.size:
+        sample = work.reshape(-1)[:: max(work.size // 100_000, 1)]
+        sample = sample[np.isfinite(sample)]
+        work.reshape(-1)[bad[left]] = np.median(sample) if sample.size else 0.0
+    return True
+
+
 def detect_cosmic_rays(
     image: np.ndarray,
     variance: np.ndarray,
@@ -250,8 +300,9 @@ def detect_cosmic_rays(
         Calibrated image in electrons (sky included); axis 0 is the scan axis.
         Non-finite pixels must be listed in ``ignore``.
     variance : ndarray, shape (n_rows, n_columns)
-        Variance of ``image`` in e^2 from the noise model; give ``inf`` (or
-        NaN, which costs a copy) where there is no data.
+        Variance of ``image`` in e^2 from the noise model; give
+        :data:`NO_DATA_VARIANCE` (or NaN or inf, which cost a copy) where there
+        is no data.
     ignore : ndarray of bool, shape (n_rows, n_columns), optional
         Pixels never flagged and left out of the cleaning (saturated, bleed, bad
         columns, non-finite).
@@ -274,16 +325,13 @@ def detect_cosmic_rays(
     shape = image.shape
     ignore = np.zeros(shape, bool) if ignore is None else ignore
     work = np.array(image, dtype=np.float32)
-    bad = np.flatnonzero(~np.isfinite(work))
-    if bad.size:
-        sample = work.reshape(-1)[:: max(work.size // 100_000, 1)]
-        sample = sample[np.isfinite(sample)]
-        work.flat[bad] = np.median(sample) if sample.size else 0.0
+    if not _fill_no_data(work):
+        return np.zeros(shape, dtype=bool)
     variance = np.asarray(variance, dtype=np.float32)
-    if np.isnan(variance).any():
-        # No-data pixels get an infinite variance: never the smallest noise,
-        # and the 5x5 median ignores a few of them.
-        variance = np.nan_to_num(variance, nan=np.inf, copy=True)
+    if not np.isfinite(variance).all():
+        # No-data pixels get a huge variance: never the smallest noise, and
+        # the 5x5 median ignores a few of them.
+        variance = np.nan_to_num(variance, nan=NO_DATA_VARIANCE, posinf=NO_DATA_VARIANCE)
 
     lplus, candidates = _candidates(work, variance, ignore, sigclip)
     hits = np.zeros(shape, bool)

@@ -48,7 +48,7 @@ from pipeline.masks import MASK_DTYPE, MaskBit, describe_mask
 from pipeline.stages._calib_bias import overscan_levels, smooth_levels
 from pipeline.stages._calib_chunks import Scratch, row_chunks
 from pipeline.stages._calib_columns import solve_columns, summarize_columns
-from pipeline.stages._calib_cosmics import detect_cosmic_rays
+from pipeline.stages._calib_cosmics import NO_DATA_VARIANCE, detect_cosmic_rays
 from pipeline.stages._calib_rows import stretch_rows_for_stage
 from pipeline.stages._calib_saturation import bleed_pixels, saturation_mask
 from pipeline.stages.base import RAW_ROWS, Stage
@@ -434,7 +434,7 @@ def calibrate_stretch(
         ramp = (np.asarray(rows_since_start) < int(tdi_rows)) & (segment >= 0)
         mask[ramp] |= int(MaskBit.LOW_EXPOSURE)
 
-    # Pixels without data: NaN in the products, infinite variance for the
+    # Pixels without data: NaN in the products, a huge variance for the
     # cosmic-ray search (never the smallest noise).
     no_data = np.zeros((n_rows, n_columns), dtype=bool)
     bad_columns = np.flatnonzero(column_flags & int(MaskBit.BAD_COLUMN))
@@ -442,7 +442,7 @@ def calibrate_stretch(
     no_data[gap] = True
     no_data.reshape(-1)[nonfinite] = True
     image_e[no_data] = np.nan
-    variance[no_data] = np.inf
+    variance[no_data] = NO_DATA_VARIANCE
     if cosmic_rays and n_rows > 0:
         ignore = no_data
         ignore.reshape(-1)[saturated] = True
@@ -539,6 +539,7 @@ class ColumnSolveOptions(_Options):
     max_response: float = Field(1.5, gt=0)
     noise_limit: float = Field(1.5, gt=1)
     hot_level: float = Field(5.0, gt=0, description="e- per pixel above the median column.")
+    hot_sigma: float = Field(5.0, gt=0, description="Robust spreads above the median column.")
     min_blocks: int = Field(8, ge=3)
     clip: float = Field(4.0, gt=1)
     max_flat_error: float = Field(0.01, gt=0)
