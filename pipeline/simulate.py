@@ -52,6 +52,7 @@ reversed (``c_file = n_columns - 1 - c``); the truth table gives both.
 from __future__ import annotations
 
 import argparse
+import functools
 import gzip
 import io
 import logging
@@ -469,7 +470,7 @@ def _transparency(t: np.ndarray, duration: float, sky: SkyOptions) -> np.ndarray
     return 1.0 - sky.cloud_depth * np.exp(-0.5 * ((t - centre) / sky.cloud_width) ** 2)
 
 
-def _sky_rows(rows, dt, n_tdi, duration, sky_rate, sky: SkyOptions, start_ramp: bool):
+def _sky_rows(rows, *, dt, n_tdi, duration, sky_rate, sky: SkyOptions, start_ramp: bool):
     """Sky electrons per pixel for night rows, integrated over each row's exposure.
 
     Row ``k`` is read at ``k dt`` and integrated from ``(k - N) dt`` (or from
@@ -610,7 +611,9 @@ def simulate_night(
         (light-weighted recorded centroid, strip pixels), ``r_geom``,
         ``c_geom`` (time-mean of the track, :meth:`TDIModel.recorded_centroid`),
         ``c_file`` (column in the written files), ``t_mid`` (s since start),
-        ``block``, ``in_missing_block``, ``partial`` (start ramp cut the
+        ``block``, ``in_night`` (centroid inside the night's rows and columns;
+        stars just outside are kept because their light spills in),
+        ``in_missing_block``, ``partial`` (start ramp cut the
         exposure), ``saturated`` (approximate: static-star peak above the full
         well).  ``reference``: see :class:`ReferenceOptions`.
     """
@@ -708,6 +711,18 @@ def simulate_night(
     )
     bias_phase = np.random.default_rng([options.seed, 2, 1]).uniform(0, 2 * np.pi)
     sky_rate = 10.0 ** (-0.4 * (options.sky.sky_brightness - zp)) * model.pixel_scale**2
+    tic = time.perf_counter()
+    sky_of_rows = functools.partial(
+        _sky_rows,
+        dt=dt,
+        n_tdi=n_tdi,
+        duration=duration,
+        sky_rate=sky_rate,
+        sky=options.sky,
+        start_ramp=options.start_ramp,
+    )
+    trails = _bleed_trails(tracks, radius, psf, cols.response, sky_of_rows, n_rows, options)
+    timings["bleed"] = time.perf_counter() - tic
 
     timings["render"] = timings["detector"] = 0.0
     blocks: list[tuple[fits.Header, np.ndarray]] = []
@@ -732,7 +747,8 @@ def simulate_night(
         timings["render"] += time.perf_counter() - tic
         tic = time.perf_counter()
         rows = b * options.block_rows + np.arange(options.block_rows)
-        data = _detect(image, rows, cols, bias_phase, sky_rate, dt, duration, model, options, rng)
+        bleed = _trails_in_block(trails, rows[0], image.shape)
+        data = _detect(image, bleed, rows, cols, bias_phase, sky_of_rows, dt, model, options, rng)
         if camera.flip_columns:
             data[:, :n_cols] = data[:, n_cols - 1 :: -1]
         if camera.flip_rows:
@@ -757,7 +773,7 @@ def simulate_night(
         "line_time_true": dt,
         "line_time_nominal": dt_nominal,
         "focal_length": model.focal_length,
-        "pixel_scale": model.pixel_scale,
+        "pixel_scale": float(model.pixel_scale),
         "crossing_time": model.crossing_time,
         "psf_fwhm_px": psf.fwhm,
         "n_samples": tracks.max_samples,
@@ -779,14 +795,78 @@ def simulate_night(
     return SimulatedNight(blocks=blocks, truth=truth, reference=reference, meta=meta)
 
 
-def _detect(image, rows, cols, bias_phase, sky_rate, dt, duration, model, options, rng):
-    """Turn a block's expected star electrons into raw ADU with the detector's effects."""
+def _bleed_trails(tracks, radius, psf, response, sky_of_rows, n_rows, options):
+    """Bleed trails of saturated stars, computed over the whole night.
+
+    A saturated star spills charge along its columns, possibly across block
+    boundaries.  Each star whose peak may exceed the full well is rendered
+    alone on a canvas of its columns (sky included) long enough for its
+    trail, bled with :func:`bleed_along_columns`, and the change (negative in
+    the core, positive along the trail) is kept for the blocks to add.
+    Trails of different stars are computed independently.
+
+    Returns
+    -------
+    list of (int, int, ndarray)
+        Night row and column of the canvas origin, and the change in
+        electrons (after the column response), shape (rows, columns).
+    """
+    full_well = options.detector.full_well
+    peak = _peak_fraction(psf)
+    trails = []
+    for idx, r, c, w in tracks.groups:
+        flux = w.sum(axis=1)
+        for k in np.flatnonzero(flux * peak * response.max() > 0.5 * full_well):
+            r0 = int(np.floor(r[k].min() - radius[idx[k]]))
+            r1 = int(np.ceil(r[k].max() + radius[idx[k]])) + 1
+            c0 = max(int(np.floor(c[k].min() - radius[idx[k]])), 0)
+            c1 = min(int(np.ceil(c[k].max() + radius[idx[k]])) + 1, response.size)
+            if c1 <= c0:
+                continue
+            sky = float(sky_of_rows(np.array([0.5 * (r0 + r1)]))[0])
+            reach = int(np.ceil(0.5 * flux[k] / max(full_well - sky, 0.05 * full_well))) + 2
+            lo, hi = max(r0 - reach, -1), min(r1 + reach, n_rows + 1)
+            if hi <= lo:
+                continue
+            canvas = np.zeros((hi - lo, c1 - c0))
+            render_tracks(r[k : k + 1], c[k : k + 1], w[k : k + 1], canvas.shape, psf,
+                          origin=(lo, c0), radius=radius[idx[k] : idx[k] + 1], out=canvas,
+                          row_box=1.0 if options.clocking_box else 0.0)  # fmt: skip
+            canvas += sky_of_rows(np.arange(lo, hi))[:, None]
+            canvas *= response[None, c0:c1]
+            before = canvas.copy()
+            bleed_along_columns(canvas, full_well)
+            delta = canvas - before
+            if np.any(delta):
+                trails.append((lo, c0, delta))
+    return trails
+
+
+def _trails_in_block(trails, row0, shape):
+    """Sum of the bleed trails falling in the block whose first night row is ``row0``."""
+    out = np.zeros(shape)
+    for lo, c0, delta in trails:
+        a, b = max(lo, row0), min(lo + delta.shape[0], row0 + shape[0])
+        if b > a:
+            out[a - row0 : b - row0, c0 : c0 + delta.shape[1]] += delta[a - lo : b - lo]
+    return out
+
+
+def _detect(image, bleed, rows, cols, bias_phase, sky_of_rows, dt, model, options, rng):
+    """Turn a block's expected star electrons into raw ADU with the detector's effects.
+
+    ``bleed`` holds the precomputed bleed trails of saturated stars (electrons
+    after the column response), added before the noise.
+    """
     det = options.detector
     n_tdi = model.n_rows
-    sky = _sky_rows(rows, dt, n_tdi, duration, sky_rate, options.sky, options.start_ramp)
+    duration = options.n_blocks * options.block_rows * dt
+    sky = sky_of_rows(rows)
     frac = exposure_fraction(rows, n_tdi, options.start_ramp)
     image += sky[:, None]
     image *= cols.response[None, :]
+    image += bleed
+    np.maximum(image, 0.0, out=image)  # overlapping trails of a sky above full well
     image += cols.dark[None, :] * frac[:, None]
     electrons = rng.poisson(image).astype(float) if options.noise else image
     n_cols = image.shape[1]
@@ -877,11 +957,30 @@ def _truth_table(stars, ra, dec, tracks, r_geom, c_geom, cols, psf, options, cam
     t["c_file"] = (n_cols - 1 - c_mean if camera.flip_columns else c_mean) * u.pix
     t["t_mid"] = tracks.t_mid * u.s
     t["block"] = block
+    t["in_night"] = (
+        (r_mean >= -0.5)
+        & (r_mean < options.n_blocks * options.block_rows - 0.5)
+        & (c_mean >= -0.5)
+        & (c_mean < n_cols - 0.5)
+    )
     t["in_missing_block"] = np.isin(block, options.missing_blocks)
     t["partial"] = tracks.partial
     t["saturated"] = recorded * response * _peak_fraction(psf) > options.detector.full_well
     t.meta["description"] = "simulated stars; strip pixel k covers [k-0.5, k+0.5)"
-    return t
+    return _rounded(t)
+
+
+# Decimals kept in the written tables: 1e-9 deg = 3.6 micro-arcsec, 1e-6 px, 1e-3 e-.
+_DECIMALS = {u.deg: 9, u.pix: 6, u.electron: 3, u.mag: 5, u.s: 6, u.mas / u.yr: 4, u.mas: 3}
+
+
+def _rounded(table: Table) -> Table:
+    """Round float columns to a precision far below any use (keeps the ECSV small)."""
+    for name in table.colnames:
+        col = table[name]
+        if col.dtype.kind == "f" and col.unit in _DECIMALS:
+            table[name] = np.round(col, _DECIMALS[col.unit])
+    return table
 
 
 def _reference_table(stars, truth, options, rng) -> Table:
@@ -909,7 +1008,7 @@ def _reference_table(stars, truth, options, rng) -> Table:
     t["mag_error"] = np.full(n, ref.mag_error) * u.mag
     t["colour"] = (colour + ref.colour_error * rng.standard_normal(n)) * u.mag
     t["colour_error"] = np.full(n, ref.colour_error) * u.mag
-    return t
+    return _rounded(t)
 
 
 # ----------------------------------------------------------------------------

@@ -5,6 +5,8 @@ Small chips keep these fast: a wide, short chip (1024 columns x 512 TDI rows at
 large (several rows at the chip edges) while the cross-scan bow stays small.
 """
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from astropy.io import fits
@@ -18,6 +20,7 @@ from pipeline.geometry.tdi import first_order_bow
 from pipeline.simulate import (
     SimulationOptions,
     draw_magnitudes,
+    load_simulation_config,
     simulate_night,
     tdi_model,
     write_night,
@@ -268,6 +271,7 @@ def test_raw_contract_and_overscan(tmp_path):
         overscan_columns=16,
         missing_blocks=[1],
         stars={"density": 2000.0},
+        sky={"sky_brightness": 24.0},  # 3 arcsec pixels: keep the sky below full well
         detector={"bias_wave": 0.0, "bias_drift": 8.0, "read_noise": 6.0, "gain": 1.5},
     )
     night = simulate_night(site, camera, options)
@@ -366,7 +370,9 @@ def test_detector_defects_and_cosmic_rays():
 
 def test_reproducible_by_seed():
     site, camera = _site(41.65), _camera(n_columns=128)
-    options = SimulationOptions(start=START, n_blocks=1, block_rows=64, seed=7)
+    options = SimulationOptions(
+        start=START, n_blocks=1, block_rows=64, seed=7, sky={"sky_brightness": 24.0}
+    )
     a = simulate_night(site, camera, options)
     b = simulate_night(site, camera, options)
     c = simulate_night(site, camera, options.model_copy(update={"seed": 8}))
@@ -431,3 +437,41 @@ def test_renderer_matches_analytic_pixel_integrals():
     )  # fmt: skip
     # 1e-5 of the flux: the 2001-point average approximates the integral to ~1e-7.
     assert np.abs(boxed - smeared).max() < 1e-5 * flux
+
+
+REPO = Path(__file__).resolve().parents[1]
+DEMO = REPO / "demo_frames"
+DEMO_CONFIG = REPO / "configs" / "simulate_demo.yaml"
+
+
+def test_demo_readme_quotes_the_config():
+    readme = (DEMO / "README.md").read_text()
+    assert DEMO_CONFIG.read_text() in readme
+    assert "python -m pipeline.simulate configs/simulate_demo.yaml" in readme
+
+
+def test_demo_night_regenerates_from_its_config():
+    """The committed demo night is what the config produces (fixed seed)."""
+    site, camera, options, raw_dir = load_simulation_config(DEMO_CONFIG)
+    assert raw_dir == DEMO.resolve()
+    # The spin period gives f = 6.0 m at the site's normal gravity (to 1e-6).
+    night = simulate_night(site, camera, options)
+    assert night.meta["focal_length"] == pytest.approx(6.0, rel=1e-6)
+    files = sorted(DEMO.glob("block_*.fits.gz"))
+    assert len(files) == len(night.blocks) == 4
+    for path, (header, data) in zip(files, night.blocks, strict=True):
+        with fits.open(path) as hdul:
+            written = hdul[0]
+            for key in header:
+                assert written.header[key] == header[key], key
+            # Pixel values: identical but for rare one-ADU rounding flips should the
+            # astropy IERS tables differ (micro-arcsecond shifts).
+            differ = np.abs(written.data.astype(int) - data.astype(int)) > 1
+            assert differ.mean() < 1e-4
+    truth = Table.read(DEMO / "truth.ecsv")
+    assert len(truth) == len(night.truth)
+    # 1e-5 px: the ECSV keeps 1e-6 px; the geometry is deterministic.
+    assert np.allclose(truth["r_mean"], night.truth["r_mean"], atol=1e-5, equal_nan=True)
+    assert np.allclose(truth["c_mean"], night.truth["c_mean"], atol=1e-5, equal_nan=True)
+    reference = Table.read(DEMO / "reference.ecsv")
+    assert np.array_equal(reference["id"], night.reference["id"])
