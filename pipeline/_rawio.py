@@ -24,6 +24,7 @@ __all__ = [
     "blocks_fingerprint",
     "check_block_index",
     "list_raw_files",
+    "overlapping_blocks",
     "raw_files_fingerprint",
     "read_raw_files",
     "read_rows",
@@ -126,13 +127,16 @@ def block_index_rows(index: Table) -> int:
     return int(np.max(np.asarray(index["row_start"]) + np.asarray(index["n_rows"])))
 
 
+def overlapping_blocks(index: Table, lo: int, hi: int) -> np.ndarray:
+    """Indices of the block index rows that hold any of night rows ``[lo, hi)``."""
+    start = np.asarray(index["row_start"], dtype=np.int64)
+    stop = start + np.asarray(index["n_rows"], dtype=np.int64)
+    return np.flatnonzero((start < hi) & (stop > lo))
+
+
 def _overlapping(index: Table, lo: int, hi: int) -> list[tuple[str, int, int, int]]:
-    blocks = []
-    for row in index:
-        start, n_rows = int(row["row_start"]), int(row["n_rows"])
-        if start < hi and start + n_rows > lo:
-            blocks.append((str(row["file"]), int(row["hdu"]), start, n_rows))
-    return blocks
+    rows = index[overlapping_blocks(index, lo, hi)]
+    return [(str(r["file"]), int(r["hdu"]), int(r["row_start"]), int(r["n_rows"])) for r in rows]
 
 
 def blocks_fingerprint(raw_dir: Path, index: Table, lo: int, hi: int) -> str:

@@ -34,6 +34,7 @@ __all__ = [
     "SIDECAR_NAME",
     "LazyProducts",
     "atomic_write",
+    "check_products",
     "clean_unit",
     "clear_failure",
     "hash_json",
@@ -162,6 +163,27 @@ def _writer(kind: str, value: Any, cards: Mapping[str, tuple[Any, str]]) -> Call
     return lambda temp: temp.write_text(text, encoding="utf-8")
 
 
+def check_products(products: Mapping[str, Any]) -> dict[str, str]:
+    """Check product names and types before anything is written; return their kinds.
+
+    Raises
+    ------
+    ValueError
+        For a name that is not an identifier or starts with ``_``.
+    TypeError
+        For an object the store cannot write.
+    """
+    kinds = {}
+    for name, value in products.items():
+        if not (isinstance(name, str) and name.isidentifier() and not name.startswith("_")):
+            raise ValueError(
+                f"Product name {name!r} must be an identifier not starting with '_' "
+                "(it becomes a file name)."
+            )
+        kinds[name] = _product_kind(name, value)
+    return kinds
+
+
 def write_products(
     unit_dir: Path, products: Mapping[str, Any], cards: Mapping[str, tuple[Any, str]]
 ) -> dict[str, dict[str, Any]]:
@@ -177,15 +199,11 @@ def write_products(
         Provenance keywords added to FITS headers (deterministic values only,
         so that the same inputs give byte-identical files).
     """
+    kinds = check_products(products)
     unit_dir.mkdir(parents=True, exist_ok=True)
     entries = {}
     for name, value in products.items():
-        if not (isinstance(name, str) and name.isidentifier() and not name.startswith("_")):
-            raise ValueError(
-                f"Product name {name!r} must be an identifier not starting with '_' "
-                "(it becomes a file name)."
-            )
-        kind = _product_kind(name, value)
+        kind = kinds[name]
         file_name = name + _SUFFIX[kind]
         digest, size = atomic_write(unit_dir / file_name, _writer(kind, value, cards))
         entry = {"file": file_name, "kind": kind, "sha256": digest, "size": size}

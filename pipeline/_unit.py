@@ -30,6 +30,7 @@ import pipeline
 from pipeline._rawio import check_block_index, read_raw_files, read_rows
 from pipeline._store import (
     LazyProducts,
+    check_products,
     clean_unit,
     hash_json,
     output_hash,
@@ -185,6 +186,7 @@ def _check_products(task: UnitTask, products: Any) -> dict[str, Any]:
         )
     if task.stage.defines_rows:
         check_block_index(products.get(BLOCK_INDEX), task.stage.name)
+    check_products(products)  # before the unit's old products are removed
     return dict(products)
 
 

@@ -41,6 +41,7 @@ from pipeline._rawio import (
     block_index_rows,
     blocks_fingerprint,
     list_raw_files,
+    overlapping_blocks,
     raw_files_fingerprint,
 )
 from pipeline._store import (
@@ -368,15 +369,9 @@ class _Night:
                     return hashes, specs, self.no_index_reason()
                 lo, hi = stretch.lo, stretch.hi
                 hashes[name] = blocks_fingerprint(self.raw_dir, self.index, lo, hi)
-                rows = [
-                    i
-                    for i, r in enumerate(self.index)
-                    if r["row_start"] < hi and r["row_start"] + r["n_rows"] > lo
-                ]
+                subset = self.index[overlapping_blocks(self.index, lo, hi)]
                 specs.append(
-                    InputSpec(
-                        name, "raw_rows", raw_dir=self.raw_dir, index=self.index[rows], lo=lo, hi=hi
-                    )
+                    InputSpec(name, "raw_rows", raw_dir=self.raw_dir, index=subset, lo=lo, hi=hi)
                 )
                 continue
             upstream = self.stages[name]

@@ -305,6 +305,30 @@ def test_failed_stretch_is_recorded_and_the_rest_goes_on(toy) -> None:
     assert not (night_dir(config) / "scale/s0001/_failed.json").exists()
 
 
+class _BadOptions(IndexOptions):
+    bad: bool = False
+
+
+def _maybe_bad(*, inputs, options, context):
+    return {"values": {1, 2}} if options.bad else {"values": [1, 2]}
+
+
+def test_unwritable_products_fail_the_unit_and_keep_the_old_ones(toy) -> None:
+    make_config, _ = toy
+    index = GRAPH[0]
+    graph = (index, Stage("maybe", _maybe_bad, _BadOptions, (), "night", ()))
+    data = {k: v for k, v in make_config().to_dict().items() if k != "stages"}
+    assert run_night(config_from_mapping(data, graph=graph)).ok
+    report = run_night(config_from_mapping(data, ["stages.maybe.bad=true"], graph=graph))
+    assert [r.reason for r in report.problems] == [
+        "TypeError: Product 'values' has unsupported type set; return a numpy array, an "
+        "astropy.io.fits HDU or HDUList, an astropy Table, or a dict/list."
+    ]
+    folder = night_dir(make_config()) / "maybe/night"
+    assert read_sidecar(folder) is not None  # the previous result is still complete
+    assert (folder / "_failed.json").exists()
+
+
 def test_a_stage_that_uses_an_unknown_context_field_is_rejected(toy) -> None:
     make_config, _ = toy
     bad = Stage("index", build_index, IndexOptions, (RAW_FILES,), "night", ("camera.nope",),
