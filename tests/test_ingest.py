@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import re
 import warnings
 
@@ -9,6 +10,7 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.io import fits
+from astropy.table import Table
 from astropy.time import Time
 
 from pipeline.exceptions import IngestError
@@ -228,3 +230,72 @@ def test_broken_night_indexes_every_good_block(tmp_path):
     assert len(night.problems) == 1 and "b4.fits: gap of 120.0 rows" in night.problems[0]
     assert list(night.table["run"]) == [0, 1, 1]
     assert not night.ok
+
+
+def test_broken_night_through_the_runner(tmp_path):
+    """The runner on a simulated night with broken files: ingest, columns, calibrate.
+
+    Good blocks are indexed and calibrated; each broken file is reported in one
+    line in the ingest report; the rows of rejected and missing blocks are GAP.
+    """
+    from pipeline.config import load_config
+    from pipeline.geometry.instrument import Camera, Site
+    from pipeline.runner import run_night
+    from pipeline.simulate import SimulationOptions, simulate_night, write_night
+
+    site = Site(20.0, -100.0, 2000.0, name="fictional test site")
+    camera = Camera(n_columns=48, tdi_rows=128, pixel_size=15.0, focal_length=6.2)
+    options = SimulationOptions(
+        start="2026-03-20T04:00:00",
+        n_blocks=8,
+        block_rows=512,
+        overscan_columns=8,
+        compress=False,
+        missing_blocks=[5],
+        sky={"sky_ramp": 4.0},
+        stars={"density": 20000.0},
+    )
+    raw = tmp_path / "raw"
+    write_night(simulate_night(site, camera, options), raw)
+    blocks = sorted(raw.glob("block_*.fits"))
+    assert len(blocks) == 7
+    blocks[1].write_bytes(blocks[1].read_bytes()[:-20000])  # truncated
+    with fits.open(blocks[3], mode="update") as hdul:  # a missing keyword
+        del hdul[0].header["GAIN"]
+    (raw / "block_notes.fits").write_text("observer's notes, not FITS\n")
+    (tmp_path / "night.yaml").write_text(
+        """
+night: {name: broken, raw_dir: raw, pattern: "block_*.fits", output_dir: out}
+site: {latitude: 20.0, longitude: -100.0, height: 2000.0}
+camera: {n_columns: 48, tdi_rows: 128, pixel_size: 15.0, focal_length: 6.2}
+run: {stretch_rows: 1024, overlap_rows: 64, executor: serial}
+stages:
+  column_stats: {block_rows: 128}
+  columns: {min_blocks: 4}
+"""
+    )
+    config = load_config(tmp_path / "night.yaml")
+    report = run_night(config, to_stage="calibrate")
+    assert report.ok  # every unit ran; the bad files are reported by ingest
+    products = tmp_path / "out" / "broken"
+    ingest = json.loads((products / "ingest" / "night" / "ingest_report.json").read_text())
+    assert not ingest["ok"] and ingest["n_blocks"] == 5  # blocks 0, 2, 4, 6, 7
+    rejected = sorted(ingest["rejected"])
+    assert len(rejected) == 3
+    assert rejected[0].startswith("block_0001.fits: truncated file")
+    assert rejected[1].startswith("block_0003.fits: missing keyword GAIN")
+    assert rejected[2].startswith("block_notes.fits: ")
+    assert all("\n" not in line for line in rejected)
+    # Blocks 1, 3 (rejected) and 5 (missing) leave gaps; each is reported.
+    assert [p.split(":")[0] for p in ingest["problems"]] == [
+        "block_0002.fits", "block_0004.fits", "block_0006.fits"
+    ]  # fmt: skip
+    index = Table.read(products / "ingest" / "night" / "block_index.ecsv")
+    assert list(index["row_start"]) == [0, 1024, 2048, 3072, 3584]
+    # Night rows 512-1023 of the rejected (truncated) block 1 are GAP in calibrate.
+    with fits.open(products / "calibrate" / "s0000" / "mask.fits") as hdul:
+        mask = hdul[0].data if hdul[0].data is not None else hdul[1].data
+    from pipeline.masks import MaskBit, has_bits
+
+    assert has_bits(mask[512:1024], MaskBit.GAP).all()
+    assert not has_bits(mask[:512], MaskBit.GAP).any()

@@ -170,6 +170,16 @@ def expected_file_size(header_bytes: int, n_rows: int, n_columns: int, bitpix: i
     return header_bytes + n_rows * n_columns * abs(int(bitpix)) // 8
 
 
+def _reader_note(header) -> str:
+    """Text of the COMMENT cards the runner appends with astropy's reading warnings."""
+    comments = [str(c.value) for c in header.cards if c.keyword == "COMMENT"]
+    for position, text in enumerate(comments):
+        if text.startswith("astropy warned on reading: "):
+            text = "".join(comments[position:])[len("astropy warned on reading: ") :]
+            return "; ".join(dict.fromkeys(text.split("; ")))  # each warning once
+    return ""
+
+
 def _header_bytes(header, hdu: int) -> int:
     """Lower bound of the bytes before the data of HDU ``hdu``."""
     n_cards = len(header.cards)
@@ -272,9 +282,9 @@ def parse_block_header(
     bitpix = int(header["BITPIX"])
     if n_rows < 1 or n_columns < 2:
         raise IngestError(f"{name}: empty image ({n_columns} x {n_rows}).")
-    for comment in header.get("COMMENT", []):
-        if "truncated" in str(comment):
-            raise IngestError(f"{name}: truncated file ({str(comment).strip()}).")
+    note = _reader_note(header)
+    if "truncated" in note:
+        raise IngestError(f"{name}: truncated file ({note}).")
     if size is not None:
         if header_bytes is None:
             header_bytes = _header_bytes(header, hdu)
