@@ -12,6 +12,7 @@ __all__ = [
     "IngestError",
     "PipelineError",
     "PipelineWarning",
+    "RectifyWarning",
     "RunLockedError",
     "StageError",
     "StaleLockWarning",
@@ -55,3 +56,7 @@ class StaleLockWarning(PipelineWarning):
 
 class CalibrationWarning(PipelineWarning):
     """Calibration is less reliable than usual (e.g. too little sky variation)."""
+
+
+class RectifyWarning(PipelineWarning):
+    """Rectification is degraded (e.g. too small an overlap between stretches)."""

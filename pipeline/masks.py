@@ -46,6 +46,10 @@ class MaskBit(enum.IntFlag):
     LOW_EXPOSURE
         The row belongs to the start-of-scan ramp: its packets crossed fewer than
         all TDI rows, so its exposure is partial and the 1-D flat does not apply.
+    OUTSIDE
+        Set by rectify: the rectified pixel draws on strip pixels beyond the
+        chip's columns or beyond the rows handed to the stage (start or end of
+        the night, or too small an overlap).  Image and variance are NaN.
     """
 
     SATURATED = 1 << 0
@@ -56,6 +60,7 @@ class MaskBit(enum.IntFlag):
     NONFINITE = 1 << 5
     GAP = 1 << 6
     LOW_EXPOSURE = 1 << 7
+    OUTSIDE = 1 << 8
 
 
 def has_bits(mask: np.ndarray, bits: int | MaskBit) -> np.ndarray:

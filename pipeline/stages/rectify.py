@@ -1,0 +1,535 @@
+"""Rectify: resample a calibrated TDI strip onto a grid on which tracks are straight.
+
+Off the equator a star's image in a TDI strip is smeared along the scan and
+bowed across it, and its recorded centroid (the time mean of its track) lies
+on a curved, non-uniform grid of sky positions.  This stage resamples each
+stretch of the calibrated strip onto the night's rectified frame
+(:class:`pipeline.geometry.rectified.RectifiedFrame`): image rows are circles
+of constant declination of date, columns lines of constant right ascension of
+date, with an exact ICRS FITS WCS.
+
+Axes: the input arrays have the scan (time) on axis 0 and the chip's columns
+on axis 1.  The rectified arrays have ``y`` (declination, north up) on axis 0
+and ``x`` (right ascension along the scan, **east to the right**) on axis 1:
+a star's smear runs along its row.
+
+Mapping
+    Rectified pixel ``(x, y)`` takes the strip value at ``(r, c)`` =
+    :meth:`TDIModel.recorded_centroid` of its ICRS position, so every star's
+    recorded centroid lands on the position the WCS gives its catalogue
+    coordinates.  The map is exact on a coarse grid of nodes and interpolated
+    (:mod:`pipeline.stages._rectify_map`; error ~1e-9 px).
+Resampling
+    Two 1-D Keys cubic-convolution passes (:mod:`pipeline.stages._resample`):
+    across the scan per strip row, then a sub-pixel shift along the scan per
+    rectified row.  Flux is conserved (Jacobian weights), and for the near
+    translations involved so are stars' centroids and second moments.  Each
+    pass treats the sampling position as constant over blocks of at most 64
+    rows or columns on which it changes by less than 0.002 px (error below
+    0.001 px); blocks lie on a grid that is global for the night.
+Variance and mask
+    Variance is propagated as ``sum(w**2 var)``, exact per pixel but ignoring
+    the covariance the interpolation creates between neighbouring pixels: the
+    variance of an aperture sum is larger than the sum of the variance plane
+    by the ``noise_correlation`` factor (header ``NOISECOR``).  The mask of a
+    rectified pixel is the OR of the masks of every strip pixel with non-zero
+    weight, plus :attr:`MaskBit.OUTSIDE` if a tap falls outside the strip;
+    pixels with a no-data bit (NONFINITE, GAP, BAD_COLUMN, OUTSIDE) are NaN.
+Smear kernels
+    The smear kernel (the star's track relative to its centroid, in rectified
+    pixels) is recorded on a coarse grid (:func:`smear_kernels`), so that
+    detection can model a star as the seeing PSF averaged over the kernel's
+    samples.
+Deconvolution (optional)
+    A band-wise regularised (Wiener-type) filter that replaces the smear
+    kernel with a small round Gaussian (:mod:`pipeline.stages._deconvolve`).
+
+Stretches
+    A stretch with core night rows ``[start, stop)`` writes the rectified
+    columns ``x`` in ``[ceil(X(start - 1/2)), ceil(X(stop - 1/2)))``, where
+    ``X`` is :meth:`RectifiedFrame.column_of_row`: adjacent stretches tile the
+    night's grid without gap or overlap.  The overlap rows only feed the
+    interpolation (and the deconvolution).
+"""
+
+from __future__ import annotations
+
+import functools
+import logging
+import warnings
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+from astropy.time import Time
+from astropy.wcs import WCS
+from pydantic import BaseModel, ConfigDict, Field
+
+from pipeline.exceptions import RectifyWarning
+from pipeline.geometry.instrument import Camera, Site
+from pipeline.geometry.rectified import RectifiedFrame
+from pipeline.geometry.tdi import TDIModel
+from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.stages._deconvolve import deconvolution_margin, deconvolve_smear
+from pipeline.stages._rectify_map import StripMap, smear_kernels
+from pipeline.stages._resample import (
+    keys_weights,
+    noise_correlation_factor,
+    resample_columns,
+    shift_rows,
+)
+from pipeline.stages.base import BLOCK_INDEX, Stage
+
+__all__ = [
+    "NO_DATA_BITS",
+    "STAGE",
+    "RectifiedStretch",
+    "RectifyOptions",
+    "night_model",
+    "rectify",
+    "smear_kernels",
+]
+
+log = logging.getLogger(__name__)
+
+#: Mask bits of pixels that carry no usable data (image and variance NaN).
+NO_DATA_BITS = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN | MaskBit.OUTSIDE
+#: Length of the global blocks over which a sampling position is held fixed.
+_BLOCK = 64
+#: Largest change of a sampling position inside a block, pixels.
+_TOLERANCE = 0.002
+
+
+class RectifyOptions(BaseModel):
+    """Options of the rectify stage (``stages.rectify`` in the config).
+
+    Field names mirror the keyword arguments of :func:`rectify`.
+    """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    pixel_scale: float | None = Field(
+        None,
+        gt=0,
+        description="Rectified pixel size across the scan, arcsec; None: the camera's "
+        "on-sky scale. Along the scan a pixel is always one line time.",
+    )
+    map_step_x: int = Field(256, ge=8, description="Map node spacing along the scan, px.")
+    map_step_y: int = Field(16, ge=2, description="Map node spacing across the scan, px.")
+    kernel_step: int = Field(
+        32, ge=1, description="Spacing of the smear-kernel record across the scan, px."
+    )
+    kernel_samples: int = Field(64, ge=2, description="Time samples per smear kernel.")
+    deconvolve: bool = Field(False, description="Undo the smear (band-wise Wiener filter).")
+    deconvolve_regularization: float = Field(
+        0.01, gt=0, description="Wiener regularisation (noise-to-signal power)."
+    )
+    deconvolve_sigma: float = Field(
+        0.6, ge=0, description="Sigma of the round Gaussian that replaces the kernel, px."
+    )
+    deconvolve_band: int = Field(
+        16, ge=4, description="Height of the bands with their own kernel, px."
+    )
+
+
+@dataclass(frozen=True, eq=False)
+class RectifiedStretch:
+    """A rectified stretch.
+
+    Attributes
+    ----------
+    image : ndarray, shape (n_y, n_x)
+        Electrons per rectified pixel; axis 0 is ``y`` (declination of date,
+        north up), axis 1 is ``x`` (right ascension of date along the scan,
+        east to the right).  NaN where there is no data.
+    variance : ndarray, shape (n_y, n_x)
+        e^2.
+    mask : ndarray of uint16, shape (n_y, n_x)
+        :class:`pipeline.masks.MaskBit` bits.
+    x_start : int
+        Night column ``x`` of the first pixel column.
+    frame : RectifiedFrame
+        The night's rectified frame.
+    smear_kernels : astropy.table.Table
+        See :func:`smear_kernels`.
+    noise_correlation : float
+        Variance of a large aperture sum divided by the sum of the variance
+        plane over it (>= 1; the interpolation correlates neighbours).
+    deconvolution_noise_gain : float or None
+        Rms noise after / before deconvolution for white noise (None if the
+        stretch was not deconvolved).
+    """
+
+    image: np.ndarray
+    variance: np.ndarray
+    mask: np.ndarray
+    x_start: int
+    frame: RectifiedFrame
+    smear_kernels: Table
+    noise_correlation: float
+    deconvolution_noise_gain: float | None = None
+
+    @property
+    def wcs(self) -> WCS:
+        """ICRS FITS WCS of the arrays (astropy)."""
+        return self.frame.wcs(self.x_start, self.image.shape[1])
+
+    def header(self) -> fits.Header:
+        """FITS header: the WCS plus the stage's own cards."""
+        header = self.frame.wcs_header(self.x_start, self.image.shape[1])
+        header["XSTART"] = (self.x_start, "night column x of the first pixel column")
+        header["NOISECOR"] = (
+            round(self.noise_correlation, 5),
+            "aperture variance / sum of variance plane",
+        )
+        header["DECONV"] = (self.deconvolution_noise_gain is not None, "smear deconvolved")
+        if self.deconvolution_noise_gain is not None:
+            header["DECNOISE"] = (
+                round(self.deconvolution_noise_gain, 5),
+                "white-noise rms gain of the deconvolution",
+            )
+        return header
+
+
+# ----------------------------------------------------------------------------
+# Night geometry
+
+
+@functools.lru_cache(maxsize=4)
+def _cached_model(
+    site: Site, camera: Camera, start_isot: str, duration: float, line_time: float
+) -> TDIModel:
+    start = Time(start_isot, format="isot", scale="utc")
+    return TDIModel(site, camera, start, duration, line_time=line_time)
+
+
+def night_model(site: Site, camera: Camera, block_index: Table, n_rows: int) -> TDIModel:
+    """The TDI model of a night from its block index.
+
+    Parameters
+    ----------
+    site, camera : Site, Camera
+        From the config.
+    block_index : astropy.table.Table
+        The ingest stage's ``block_index`` (``meta['reference_time']`` is the
+        time night row 0 was shifted out; column ``line_time``).
+    n_rows : int
+        Night rows (scan axis).
+
+    Returns
+    -------
+    TDIModel
+        Covering the whole night (cached per process).
+
+    Raises
+    ------
+    ValueError
+        If the index is empty or the line time changes within the night.
+    """
+    start = block_index.meta.get("reference_time")
+    if start is None or len(block_index) == 0:
+        raise ValueError("the block index is empty; ingest found no usable block this night.")
+    line_times = np.unique(np.asarray(block_index["line_time"], dtype=float))
+    if line_times.max() - line_times.min() > 1e-9 * line_times.max():
+        raise ValueError(
+            f"the line time changes within the night ({line_times.tolist()} s); rectify "
+            "needs one line time per night: reduce the parts as separate nights."
+        )
+    dt = float(line_times[0])
+    return _cached_model(site, camera, str(start), n_rows * dt, dt)
+
+
+# ----------------------------------------------------------------------------
+# Blocks on a global grid
+
+
+def _global_blocks(lo: int, hi: int, value) -> tuple[list[tuple[int, int, float]], np.ndarray]:
+    """Blocks covering ``[lo, hi)`` on which ``value(position)`` is nearly constant.
+
+    Cells of a global grid of ``_BLOCK`` pixels are halved until ``value``
+    (an array per position) changes by at most ``_TOLERANCE`` over the cell.
+
+    Returns
+    -------
+    blocks : list of (start, stop, centre)
+        ``[start, stop)`` clipped to ``[lo, hi)``; ``centre`` of the whole
+        cell, so that every stretch holds the same value in the same cell.
+    values : ndarray, shape (n_blocks, ...)
+        ``value(centre)`` of each block.
+    """
+    blocks: list[tuple[int, int, float]] = []
+    cache: dict[float, np.ndarray] = {}
+
+    def at(position: float) -> np.ndarray:
+        if position not in cache:
+            cache[position] = value(position)
+        return cache[position]
+
+    def visit(a: int, n: int) -> None:
+        if a + n <= lo or a >= hi:
+            return
+        centre = a + (n - 1) / 2.0
+        if n > 1:
+            mid = at(centre)
+            spread = max(np.max(np.abs(at(a) - mid)), np.max(np.abs(at(a + n - 1) - mid)))
+            if spread > _TOLERANCE / 2.0:
+                visit(a, n // 2)
+                visit(a + n // 2, n - n // 2)
+                return
+        blocks.append((max(a, lo), min(a + n, hi), centre))
+
+    for k in range(lo // _BLOCK, -(-hi // _BLOCK)):
+        visit(k * _BLOCK, _BLOCK)
+    return blocks, np.array([at(centre) for _, _, centre in blocks])
+
+
+def _kernel_positions(x_start: int, x_stop: int, n_y: int, step: int) -> tuple[np.ndarray, ...]:
+    ys = np.unique(np.append(np.arange(0, n_y, step), n_y - 1)).astype(float)
+    xs = np.unique(np.array([x_start, 0.5 * (x_start + x_stop - 1), x_stop - 1], dtype=float))
+    xg, yg = np.meshgrid(xs, ys)
+    return xg.ravel(), yg.ravel()
+
+
+# ----------------------------------------------------------------------------
+# The stage function
+
+
+def _check_planes(image, variance, mask, n_columns: int) -> tuple[np.ndarray, ...]:
+    image = np.asarray(image)
+    variance = np.asarray(variance)
+    mask = np.asarray(mask)
+    if image.ndim != 2 or image.shape[1] != n_columns:
+        raise ValueError(
+            f"image must have shape (n_rows, {n_columns}) (scan axis first, the camera's "
+            f"n_columns across); got {image.shape}."
+        )
+    if variance.shape != image.shape or mask.shape != image.shape:
+        raise ValueError(
+            f"variance and mask must have the image's shape {image.shape}; got "
+            f"{variance.shape} and {mask.shape}."
+        )
+    if not np.issubdtype(mask.dtype, np.unsignedinteger):
+        raise TypeError(f"mask must be an unsigned integer array; got dtype {mask.dtype}.")
+    if not np.issubdtype(image.dtype, np.floating):
+        image = image.astype(np.float64)
+    return image, variance, mask.astype(MASK_DTYPE, copy=False)
+
+
+def rectify(
+    image: np.ndarray,
+    variance: np.ndarray,
+    mask: np.ndarray,
+    model: TDIModel,
+    *,
+    row_lo: int = 0,
+    core: tuple[int, int] | None = None,
+    night_rows: int | None = None,
+    pixel_scale: float | None = None,
+    map_step_x: int = 256,
+    map_step_y: int = 16,
+    kernel_step: int = 32,
+    kernel_samples: int = 64,
+    deconvolve: bool = False,
+    deconvolve_regularization: float = 0.01,
+    deconvolve_sigma: float = 0.6,
+    deconvolve_band: int = 16,
+) -> RectifiedStretch:
+    """Rectify a stretch of a calibrated TDI strip.
+
+    Parameters
+    ----------
+    image, variance : ndarray, shape (n_rows, n_columns)
+        Calibrated electrons and e^2 of night rows ``[row_lo, row_lo +
+        n_rows)``; axis 0 is the scan axis (time), axis 1 the chip's columns
+        (north growing).  NaN where the mask has a no-data bit.
+    mask : ndarray of unsigned int, shape (n_rows, n_columns)
+        Calibration mask (:class:`pipeline.masks.MaskBit`).
+    model : TDIModel
+        Geometry of the night (``model.start`` = time of night row 0).
+    row_lo : int, optional
+        Night row of the arrays' first row.
+    core : (int, int) or None, optional
+        Night rows ``[start, stop)`` whose rectified columns to produce;
+        default all rows given.  Rows outside the core only feed the
+        interpolation.
+    night_rows : int or None, optional
+        Rows in the night (defines the frame's epoch and reference meridian);
+        default ``row_lo + n_rows``.  Give the same value for every stretch.
+    pixel_scale : float or None, optional
+        Rectified pixel size across the scan, arcsec; None: the camera's
+        on-sky scale.
+    map_step_x, map_step_y : int, optional
+        Spacing of the exact map nodes along and across the scan, px.
+    kernel_step : int, optional
+        Spacing of the smear-kernel record across the scan, px (kernels are
+        recorded at the stretch's first, middle and last column).
+    kernel_samples : int, optional
+        Time samples per smear kernel.
+    deconvolve : bool, optional
+        Replace the smear kernel by a small round Gaussian (see
+        :mod:`pipeline.stages._deconvolve`); default off.
+    deconvolve_regularization : float, optional
+        Wiener regularisation: larger is smoother and less noisy.
+    deconvolve_sigma : float, optional
+        Sigma of the target Gaussian, px.
+    deconvolve_band : int, optional
+        Height of the bands (across the scan) that share one kernel, px.
+
+    Returns
+    -------
+    RectifiedStretch
+    """
+    image, variance, mask = _check_planes(image, variance, mask, model.camera.n_columns)
+    n_in = image.shape[0]
+    row_hi = row_lo + n_in
+    core = (row_lo, row_hi) if core is None else (int(core[0]), int(core[1]))
+    if not row_lo <= core[0] <= core[1] <= row_hi:
+        raise ValueError(f"core rows {core} must lie within the rows given, [{row_lo}, {row_hi}).")
+    night_rows = row_hi if night_rows is None else int(night_rows)
+    frame = RectifiedFrame.for_night(model, night_rows, pixel_scale=pixel_scale)
+    bounds = frame.column_of_row(model, np.array(core, dtype=float) - 0.5)
+    x_start, x_stop = (int(v) for v in np.ceil(bounds))
+    x_stop = max(x_stop, x_start)
+
+    margin = (
+        deconvolution_margin(model, frame, deconvolve_regularization, deconvolve_sigma)
+        if deconvolve
+        else 0
+    )
+    x_lo, x_hi = x_start - margin, x_stop + margin
+    row_x = frame.column_of_row(model, np.array([row_lo, row_hi], dtype=float))
+    pad = 16 + map_step_x // 4
+    strip_map = StripMap(
+        model,
+        frame,
+        min(x_lo, row_x[0]) - pad,
+        max(x_hi, row_x[1]) + pad,
+        step_x=map_step_x,
+        step_y=map_step_y,
+    )
+
+    # Pass 2 (along the scan): sub-pixel shift per rectified row and block of x.
+    blocks_x, shifts = _global_blocks(x_lo, x_hi, strip_map.offsets)
+    jac_x = np.array([1.0 + strip_map.offsets_dx(c) for _, _, c in blocks_x])
+    breaks_x = np.array([a for a, _, _ in blocks_x] + [x_hi]) - x_lo
+    need_lo = int(np.floor(x_lo + shifts.min())) - 3
+    need_hi = int(np.ceil(x_hi - 1 + shifts.max())) + 4
+    if (need_lo < row_lo and row_lo > 0) or (need_hi > row_hi and row_hi < night_rows):
+        warnings.warn(
+            f"rectify needs night rows [{need_lo}, {need_hi}) for columns [{x_lo}, {x_hi}) "
+            f"but was given [{row_lo}, {row_hi}): the pixels beyond are flagged OUTSIDE. "
+            "Increase run.overlap_rows.",
+            RectifyWarning,
+            stacklevel=2,
+        )
+    need_lo, need_hi = max(need_lo, row_lo), min(need_hi, row_hi)
+    if need_hi <= need_lo:  # nothing of this stretch is in view: keep one row
+        need_lo, need_hi = row_lo, min(row_lo + 1, row_hi)
+
+    # Pass 1 (across the scan): column positions per block of strip rows.
+    blocks_r, positions = _global_blocks(need_lo, need_hi, strip_map.columns_for_row)
+    jac_y = np.abs(np.gradient(positions, axis=1))
+    breaks_r = np.array([a for a, _, _ in blocks_r] + [need_hi]) - need_lo
+    rows = slice(need_lo - row_lo, need_hi - row_lo)
+    bits = {"outside_bit": int(MaskBit.OUTSIDE), "nonfinite_bit": int(MaskBit.NONFINITE)}
+    across = resample_columns(
+        image[rows], variance[rows], mask[rows], positions, jac_y, breaks=breaks_r, **bits
+    )
+    along = shift_rows(
+        *across, shifts + (x_lo - need_lo), x_hi - x_lo, jac_x, breaks=breaks_x, **bits
+    )
+    out_image, out_variance, out_mask = (np.ascontiguousarray(a.T) for a in along)
+    no_data = (out_mask & MASK_DTYPE.type(NO_DATA_BITS)) != 0
+    out_image[no_data] = np.nan
+    out_variance[no_data] = np.nan
+
+    w_y = keys_weights(positions[0] - np.floor(positions[0])) * jac_y[0]
+    w_x = keys_weights(shifts[0] - np.floor(shifts[0])) * jac_x[0]
+    correlation = float(np.mean(noise_correlation_factor(w_y) * noise_correlation_factor(w_x)))
+
+    kx, ky = _kernel_positions(x_start, max(x_stop, x_start + 1), frame.n_y, kernel_step)
+    kernels = smear_kernels(model, frame, strip_map, kx, ky, kernel_samples)
+
+    gain = None
+    if deconvolve:
+        out_image, out_variance, out_mask, gain = deconvolve_smear(
+            out_image,
+            out_variance,
+            out_mask,
+            model,
+            frame,
+            strip_map,
+            x_lo,
+            regularization=deconvolve_regularization,
+            sigma=deconvolve_sigma,
+            band=deconvolve_band,
+            n_samples=kernel_samples,
+            no_data_bits=int(NO_DATA_BITS),
+        )
+    core_cols = slice(margin, margin + x_stop - x_start)
+    log.debug(
+        "rectified rows [%d, %d) -> columns [%d, %d): %d x-blocks, %d row blocks",
+        core[0],
+        core[1],
+        x_start,
+        x_stop,
+        len(blocks_x),
+        len(blocks_r),
+    )
+    return RectifiedStretch(
+        image=np.ascontiguousarray(out_image[:, core_cols]),
+        variance=np.ascontiguousarray(out_variance[:, core_cols]),
+        mask=np.ascontiguousarray(out_mask[:, core_cols]),
+        x_start=x_start,
+        frame=frame,
+        smear_kernels=kernels,
+        noise_correlation=correlation,
+        deconvolution_noise_gain=gain,
+    )
+
+
+# ----------------------------------------------------------------------------
+# The stage
+
+
+def _run(*, inputs, options: RectifyOptions, context) -> dict[str, Any]:
+    stretch = context.stretch
+    night_rows = context.stretches[-1].stop if context.stretches else stretch.hi
+    model = night_model(context.site, context.camera, inputs["ingest"][BLOCK_INDEX], night_rows)
+    calibrated = inputs["calibrate"]
+    result = rectify(
+        calibrated["image"],
+        calibrated["variance"],
+        calibrated["mask"],
+        model,
+        row_lo=stretch.lo,
+        core=(stretch.start, stretch.stop),
+        night_rows=night_rows,
+        **options.model_dump(),
+    )
+    header = result.header()
+    image_header = header.copy()
+    image_header["BUNIT"] = "electron"
+    variance_header = header.copy()
+    variance_header["BUNIT"] = "electron2"
+    return {
+        "image": fits.ImageHDU(result.image.astype(np.float32), image_header),
+        "variance": fits.ImageHDU(result.variance.astype(np.float32), variance_header),
+        "mask": fits.ImageHDU(result.mask, header.copy()),
+        "smear_kernels": result.smear_kernels,
+    }
+
+
+#: Declaration of the rectify stage for the runner.  Its per-stretch products
+#: cover the rectified columns of the stretch's core rows only (not its margins).
+STAGE = Stage(
+    name="rectify",
+    run=_run,
+    options=RectifyOptions,
+    requires=("ingest", "calibrate"),
+    scope="stretch",
+    uses=("site", "camera"),
+    description="Resample stretches onto the straight-track frame; record smear kernels.",
+)
