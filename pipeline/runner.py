@@ -345,6 +345,7 @@ class _Night:
         """What the stage's products depend on besides its inputs (hashed)."""
         options = self.config.stage_options(stage.name)
         return {
+            "version": stage.version,
             "options": options.model_dump(mode="json"),
             "uses": {name: self._context_value(name) for name in stage.uses},
             "rows": None

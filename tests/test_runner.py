@@ -6,6 +6,7 @@ products are compared for equality, and across executors byte for byte.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import socket
@@ -256,6 +257,19 @@ def test_context_fields_a_stage_uses_enter_its_hash(toy) -> None:
             for s in night_status(make_config("camera.n_columns=7")).stages}  # fmt: skip
     assert used == {"index": {"done"}, "scale": {"stale"}, "smooth": {"stale"},
                     "total": {"stale"}}  # fmt: skip
+
+
+def test_a_new_stage_version_makes_its_products_stale(toy) -> None:
+    make_config, _ = toy
+    config = make_config()
+    run_night(config)
+    index, scale, smooth, total = GRAPH
+    bumped = (index, scale, dataclasses.replace(smooth, version=2), total)
+    data = {k: v for k, v in config.to_dict().items() if k != "stages"}
+    status = night_status(config_from_mapping(data, graph=bumped))
+    states = {s.name: {st for st, _ in s.units.values()} for s in status.stages}
+    assert states == {"index": {"done"}, "scale": {"done"}, "smooth": {"stale"},
+                      "total": {"stale"}}  # fmt: skip
 
 
 def test_changed_raw_file_makes_only_affected_units_stale(toy, tmp_path: Path) -> None:

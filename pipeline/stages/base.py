@@ -255,6 +255,9 @@ class Stage:
         This night-scoped stage returns the :data:`BLOCK_INDEX` product.
     description : str
         One line for ``zdrift status`` and the docs.
+    version : int
+        Bump it when a code change alters what the stage produces: it enters
+        the config hash, so products made by the old code become stale.
     """
 
     name: str
@@ -265,6 +268,7 @@ class Stage:
     uses: tuple[str, ...] = ("site", "camera")
     defines_rows: bool = False
     description: str = ""
+    version: int = 1
 
     def __post_init__(self) -> None:
         if not self.name.isidentifier() or self.name != self.name.lower():
