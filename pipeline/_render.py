@@ -22,6 +22,7 @@ Image axes: axis 0 is the strip row (the scan axis, time), axis 1 the column
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -243,8 +244,8 @@ def render_tracks(
     if kept.size == 0:
         return image
     nr_pad, nc_pad = _round_up(nr[kept]), _round_up(nc[kept])
-    tables_r = _ProfileTables(psf, int(nr_pad.max()) + 2, row_box)
-    tables_c = _ProfileTables(psf, int(nc_pad.max()) + 2, 0.0)
+    tables_r = _profile_tables(psf, int(nr_pad.max()) + 2, float(row_box))
+    tables_c = _profile_tables(psf, int(nc_pad.max()) + 2, 0.0)
     flat = image.reshape(-1)
     n_sample = r.shape[1]
     sizes, group = np.unique(np.stack([nr_pad, nc_pad], axis=1), axis=0, return_inverse=True)
@@ -258,6 +259,16 @@ def render_tracks(
             stamps = _combine(p, q, weights[sel], psf.weights, flux[sel])
             _accumulate(flat, stamps, r0[sel] - row_lo, c0[sel] - col_lo, n_rows, n_cols)
     return image
+
+
+@functools.lru_cache(maxsize=32)
+def _cached_tables(psf: GaussianMixturePSF, half_range: int, box: float) -> _ProfileTables:
+    return _ProfileTables(psf, half_range, box)
+
+
+def _profile_tables(psf: GaussianMixturePSF, half_range: int, box: float) -> _ProfileTables:
+    """Tables covering at least ``half_range`` pixels (rounded up to share them)."""
+    return _cached_tables(psf, int(np.ceil(half_range / 32.0)) * 32, box)
 
 
 class _ProfileTables:

@@ -813,32 +813,37 @@ def _bleed_trails(tracks, radius, psf, response, sky_of_rows, n_rows, options):
     """
     full_well = options.detector.full_well
     peak = _peak_fraction(psf)
+    box = 1.0 if options.clocking_box else 0.0
+    sky_max = float(sky_of_rows(np.arange(-1, n_rows + 1)).max())
     trails = []
     for idx, r, c, w in tracks.groups:
         flux = w.sum(axis=1)
-        for k in np.flatnonzero(flux * peak * response.max() > 0.5 * full_well):
-            r0 = int(np.floor(r[k].min() - radius[idx[k]]))
-            r1 = int(np.ceil(r[k].max() + radius[idx[k]])) + 1
-            c0 = max(int(np.floor(c[k].min() - radius[idx[k]])), 0)
-            c1 = min(int(np.ceil(c[k].max() + radius[idx[k]])) + 1, response.size)
-            if c1 <= c0:
+        # The static-star peak overestimates a smeared star's: a safe preselection.
+        for k in np.flatnonzero(flux * peak * response.max() + sky_max > full_well):
+            rad = radius[idx[k] : idx[k] + 1]
+            r0 = max(int(np.floor(r[k].min() - rad[0])), -1)
+            r1 = min(int(np.ceil(r[k].max() + rad[0])) + 1, n_rows + 1)
+            c0 = max(int(np.floor(c[k].min() - rad[0])), 0)
+            c1 = min(int(np.ceil(c[k].max() + rad[0])) + 1, response.size)
+            if c1 <= c0 or r1 <= r0:
                 continue
-            sky = float(sky_of_rows(np.array([0.5 * (r0 + r1)]))[0])
-            reach = int(np.ceil(0.5 * flux[k] / max(full_well - sky, 0.05 * full_well))) + 2
+            stamp = render_tracks(
+                r[k : k + 1], c[k : k + 1], w[k : k + 1], (r1 - r0, c1 - c0), psf,
+                origin=(r0, c0), radius=rad, row_box=box,
+            )  # fmt: skip
+            stamp += sky_of_rows(np.arange(r0, r1))[:, None]
+            stamp *= response[None, c0:c1]
+            excess = np.maximum(stamp - full_well, 0.0).sum(axis=0).max()
+            if excess == 0:
+                continue
+            # Each side of a column receives about half its excess.
+            reach = int(np.ceil(0.5 * excess / max(full_well - sky_max, 0.05 * full_well))) + 2
             lo, hi = max(r0 - reach, -1), min(r1 + reach, n_rows + 1)
-            if hi <= lo:
-                continue
-            canvas = np.zeros((hi - lo, c1 - c0))
-            render_tracks(r[k : k + 1], c[k : k + 1], w[k : k + 1], canvas.shape, psf,
-                          origin=(lo, c0), radius=radius[idx[k] : idx[k] + 1], out=canvas,
-                          row_box=1.0 if options.clocking_box else 0.0)  # fmt: skip
-            canvas += sky_of_rows(np.arange(lo, hi))[:, None]
-            canvas *= response[None, c0:c1]
+            canvas = sky_of_rows(np.arange(lo, hi))[:, None] * response[None, c0:c1]
+            canvas[r0 - lo : r1 - lo] = stamp
             before = canvas.copy()
             bleed_along_columns(canvas, full_well)
-            delta = canvas - before
-            if np.any(delta):
-                trails.append((lo, c0, delta))
+            trails.append((lo, c0, canvas - before))
     return trails
 
 
