@@ -623,7 +623,7 @@ def night_status(config: Config) -> NightStatus:
         for stretch in night.units(stage):
             status.units[_unit_id(stretch)] = night.state(stage, stretch)
         folder = night.root / stage.name
-        if stage.scope == "stretch" and folder.is_dir():
+        if stage.scope == "stretch" and night.index is not None and folder.is_dir():
             for path in sorted(folder.iterdir()):
                 if path.is_dir() and path.name not in status.units:
                     status.units[path.name] = ("orphan", "not in the current stretch plan")

@@ -287,6 +287,19 @@ def test_changed_raw_file_makes_only_affected_units_stale(toy, tmp_path: Path) -
     assert sorted(status["scale"].ids("done")) == ["s0000", "s0001"]
 
 
+def test_status_of_a_new_night_and_orphan_stretches(toy) -> None:
+    make_config, _ = toy
+    status = night_status(make_config())
+    assert status.n_stretches is None and "no stretch plan yet" in status.format()
+    assert [s.units for s in status.stages] == [{"night": ("missing", "")}, {}, {}, {"night": (
+        "missing", "")}]  # fmt: skip
+    run_night(make_config())
+    longer = make_config("run.stretch_rows=50")  # 2 stretches instead of 4
+    scale = {s.name: s for s in night_status(longer).stages}["scale"]
+    assert scale.ids("orphan") == ["s0002", "s0003"]
+    assert scale.ids("stale") == ["s0000", "s0001"]  # their rows changed
+
+
 def test_stretch_selection(toy) -> None:
     make_config, _ = toy
     config = make_config()
