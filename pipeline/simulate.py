@@ -76,7 +76,17 @@ from pipeline._detector import (
     draw_column_properties,
     exposure_fraction,
 )
+from pipeline._exposure import (
+    bleed_trails,
+    sample_tracks,
+    samples_needed,
+    sky_rows,
+    trails_in_block,
+)
 from pipeline._render import GaussianMixturePSF, render_tracks
+from pipeline._starfield import catalog_stars, draw_magnitudes, draw_star_field, field_bounds
+from pipeline._starfield import extra_stars as user_stars
+from pipeline._truth import reference_table, truth_table
 from pipeline.geometry.instrument import Camera, Site
 from pipeline.geometry.optics import resolve_focal_length
 
@@ -89,7 +99,9 @@ __all__ = [
     "SimulationOptions",
     "SkyOptions",
     "StarOptions",
+    "draw_magnitudes",
     "draw_star_field",
+    "load_simulation_config",
     "main",
     "simulate_night",
     "tdi_model",
@@ -97,8 +109,6 @@ __all__ = [
 ]
 
 log = logging.getLogger(__name__)
-
-_JULIAN_YEAR_S = 365.25 * 86400.0
 
 
 class _Options(BaseModel):
@@ -270,71 +280,6 @@ class SimulatedNight:
 
 
 # ----------------------------------------------------------------------------
-# Star field
-
-
-def draw_magnitudes(
-    n: int, mag_bright: float, mag_faint: float, slope: float, rng: np.random.Generator
-) -> np.ndarray:
-    """Draw magnitudes with ``dN/dm ~ 10**(slope * m)`` between two limits.
-
-    Inverse-CDF sampling of the truncated exponential; ``slope = 0`` is uniform.
-    """
-    x = rng.uniform(size=n)
-    if slope == 0:
-        return mag_bright + x * (mag_faint - mag_bright)
-    a, b = 10.0 ** (slope * mag_bright), 10.0 ** (slope * mag_faint)
-    return np.log10(a + x * (b - a)) / slope
-
-
-def draw_star_field(
-    ra_range: tuple[float, float],
-    dec_range: tuple[float, float],
-    options: StarOptions,
-    rng: np.random.Generator,
-) -> Table:
-    """A reproducible synthetic star field, uniform on the sphere.
-
-    Parameters
-    ----------
-    ra_range : (float, float)
-        RA limits in degrees (the upper may exceed 360; results are wrapped).
-    dec_range : (float, float)
-        Declination limits in degrees.
-    options : StarOptions
-        Density or count, magnitude range, luminosity-function slope, colours,
-        proper motions.
-    rng : numpy.random.Generator
-        Random stream.
-
-    Returns
-    -------
-    astropy.table.Table
-        ``ra``, ``dec`` (deg), ``pmra``, ``pmdec`` (mas/yr), ``mag``, ``colour``.
-    """
-    ra0, ra1 = ra_range
-    d0, d1 = np.radians(sorted(dec_range))
-    area = np.radians(ra1 - ra0) * (np.sin(d1) - np.sin(d0)) * (180.0 / np.pi) ** 2
-    n = options.count if options.count is not None else rng.poisson(options.density * area)
-    ra = (ra0 + (ra1 - ra0) * rng.uniform(size=n)) % 360.0
-    dec = np.degrees(np.arcsin(np.sin(d0) + (np.sin(d1) - np.sin(d0)) * rng.uniform(size=n)))
-    table = Table()
-    table["ra"] = ra * u.deg
-    table["dec"] = dec * u.deg
-    table["pmra"] = options.pm_rms * rng.standard_normal(n) * u.mas / u.yr
-    table["pmdec"] = options.pm_rms * rng.standard_normal(n) * u.mas / u.yr
-    mags = draw_magnitudes(n, options.mag_bright, options.mag_faint, options.slope, rng)
-    table["mag"] = mags * u.mag
-    table["colour"] = (options.colour_mean + options.colour_rms * rng.standard_normal(n)) * u.mag
-    table["source"] = np.full(n, "synthetic")
-    return table
-
-
-def _unwrap_deg(ra: np.ndarray) -> np.ndarray:
-    return np.degrees(np.unwrap(np.radians(ra)))
-
-
-# ----------------------------------------------------------------------------
 # Geometry
 
 
@@ -373,121 +318,6 @@ def tdi_model(site: Site, camera: Camera, options: SimulationOptions):
     return model, nominal
 
 
-def _field_bounds(model, camera: Camera, t_lo: float, t_hi: float, margin_px: float):
-    """RA (unwrapped, deg) and Dec ranges seen by the chip, widened by a margin."""
-    t = np.linspace(t_lo, t_hi, 9)
-    v = np.array([-margin_px, camera.n_columns - 1 + margin_px])
-    ra, dec = model.sky_from_focal_plane(model.n_rows / 2.0, v[:, None], t[None, :])
-    ra = np.vstack([_unwrap_deg(row) for row in ra])
-    ra = ra - 360.0 * np.floor(ra[0, 0] / 360.0)
-    scale = model.pixel_scale / 3600.0
-    # The track bows poleward by ~N^2 p tan(phi)/8 px; pad by that plus the margin.
-    bow = model.n_rows**2 * scale * np.pi / 180.0 * abs(np.tan(np.radians(model.latitude))) / 8.0
-    pad_dec = (margin_px + bow) * scale
-    cosd = np.cos(np.radians(np.clip(np.abs(dec).max(), 0.0, 89.0)))
-    pad_ra = margin_px * scale / cosd
-    return (
-        (float(ra.min() - pad_ra), float(ra.max() + pad_ra)),
-        (float(dec.min() - pad_dec), float(dec.max() + pad_dec)),
-    )
-
-
-def _catalog_stars(kind: str, ra_range, dec_range, options: SimulationOptions) -> Table:
-    """Real stars from a packaged catalogue, at the reference epoch."""
-    from pipeline.catalogs import HIPPARCOS_EPOCH, read_gaia_bright, read_hipparcos
-    from pipeline.geometry.propermotion import positions_at_epoch
-
-    lo, hi = ra_range
-    ra_sel = None if hi - lo >= 360.0 else (lo % 360.0, hi % 360.0)
-    mag_faint = options.stars.mag_faint
-    if kind == "gaia":
-        cat = read_gaia_bright(dec_range, ra_sel, mag_limit=mag_faint)
-        mag = np.asarray(cat["phot_g_mean_mag"], float)
-        colour = np.asarray(cat["phot_bp_mean_mag"] - cat["phot_rp_mean_mag"], float)
-        epoch = cat.meta["epoch"]
-        ids = np.asarray(cat["source_id"])
-    else:
-        cat = read_hipparcos(dec_range, ra_sel, mag_limit=mag_faint)
-        mag = np.asarray(cat["hp_mag"], float)
-        colour = np.asarray(cat["b_v"], float)
-        epoch = HIPPARCOS_EPOCH
-        ids = np.asarray(cat["hip"])
-    pmra = np.nan_to_num(np.asarray(cat["pmra"], float))
-    pmdec = np.nan_to_num(np.asarray(cat["pmdec"], float))
-    ra, dec = positions_at_epoch(
-        np.asarray(cat["ra"], float),
-        np.asarray(cat["dec"], float),
-        pmra,
-        pmdec,
-        epoch,
-        options.reference.epoch,
-    )
-    keep = np.isfinite(mag) & (mag >= options.stars.catalog_mag_bright)
-    table = Table()
-    table["ra"] = ra[keep] * u.deg
-    table["dec"] = dec[keep] * u.deg
-    table["pmra"] = pmra[keep] * u.mas / u.yr
-    table["pmdec"] = pmdec[keep] * u.mas / u.yr
-    table["mag"] = mag[keep] * u.mag
-    colour = np.where(np.isfinite(colour), colour, options.stars.colour_mean)
-    table["colour"] = colour[keep] * u.mag
-    table["source"] = np.array([f"{kind}:{i}" for i in ids[keep]], dtype=str)
-    return table
-
-
-def _extra_stars(extra: Table, options: StarOptions) -> Table:
-    missing = [k for k in ("ra", "dec", "mag") if k not in extra.colnames]
-    if missing:
-        raise ValueError(
-            f"extra_stars lacks column(s) {missing}; give ra, dec (deg) and mag at least."
-        )
-    n = len(extra)
-
-    def column(name, default, unit):
-        values = np.asarray(extra[name], float) if name in extra.colnames else np.full(n, default)
-        return values * unit
-
-    table = Table()
-    table["ra"] = column("ra", 0.0, u.deg)
-    table["dec"] = column("dec", 0.0, u.deg)
-    table["pmra"] = column("pmra", 0.0, u.mas / u.yr)
-    table["pmdec"] = column("pmdec", 0.0, u.mas / u.yr)
-    table["mag"] = column("mag", 0.0, u.mag)
-    table["colour"] = column("colour", options.colour_mean, u.mag)
-    table["source"] = np.full(n, "extra")
-    return table
-
-
-# ----------------------------------------------------------------------------
-# Sky and transparency
-
-
-def _transparency(t: np.ndarray, duration: float, sky: SkyOptions) -> np.ndarray:
-    """Fraction of light passing the atmosphere's cloud at time ``t`` (seconds)."""
-    if sky.cloud_depth == 0:
-        return np.ones_like(np.asarray(t, dtype=float))
-    centre = sky.cloud_time * duration
-    return 1.0 - sky.cloud_depth * np.exp(-0.5 * ((t - centre) / sky.cloud_width) ** 2)
-
-
-def _sky_rows(rows, *, dt, n_tdi, duration, sky_rate, sky: SkyOptions, start_ramp: bool):
-    """Sky electrons per pixel for night rows, integrated over each row's exposure.
-
-    Row ``k`` is read at ``k dt`` and integrated from ``(k - N) dt`` (or from
-    clock start, time 0, with the start ramp).
-    """
-    t_read = rows * dt
-    t_begin = t_read - n_tdi * dt
-    if start_ramp:
-        t_begin = np.maximum(t_begin, 0.0)
-    grid = np.arange(t_begin.min() - dt, t_read.max() + 2 * dt, dt / 4.0)
-    rate = sky_rate * (1.0 + sky.sky_ramp * grid / duration)
-    if sky.cloud_dims_sky:
-        rate = rate * _transparency(grid, duration, sky)
-    cumulative = np.concatenate(([0.0], np.cumsum(0.5 * (rate[1:] + rate[:-1]) * np.diff(grid))))
-    return np.interp(t_read, grid, cumulative) - np.interp(t_begin, grid, cumulative)
-
-
 # ----------------------------------------------------------------------------
 # The night
 
@@ -497,81 +327,6 @@ def _psf_pixels(options: PSFOptions, pixel_scale: float) -> GaussianMixturePSF:
     if options.model == "gaussian":
         return GaussianMixturePSF.gaussian(fwhm)
     return GaussianMixturePSF.moffat(fwhm, options.beta, options.n_components)
-
-
-def _peak_fraction(psf: GaussianMixturePSF) -> float:
-    """Fraction of a static star's light in its central pixel (star at a pixel centre)."""
-    from scipy.special import erf
-
-    sig, frac = np.asarray(psf.sigmas), np.asarray(psf.weights)
-    return float(np.sum(frac * erf(0.5 / (np.sqrt(2.0) * sig)) ** 2))
-
-
-def _samples_needed(coarse, samples_per_pixel: float) -> np.ndarray:
-    """Samples per track so that successive samples are < 1/samples_per_pixel px apart.
-
-    Rounded up a ladder (32, 48, 64, 92, ...) so that stars can be
-    rendered in a few groups of equal sample count.
-    """
-    n_coarse = coarse.r.shape[1]
-    length = np.hypot(np.diff(coarse.r, axis=1), np.diff(coarse.c, axis=1)).sum(axis=1)
-    length = length * n_coarse / max(n_coarse - 1, 1)
-    # At least 32: the midpoint rule shifts the mean of a bowed track of sagitta s
-    # by s / (3 n^2), below 1e-3 px for every s once n >= 32 and n >= 10 s.
-    needed = np.maximum(32, np.ceil(length * samples_per_pixel) + 1)
-    ladder = 32 * 2 ** (np.arange(0, 20) / 2.0)  # 32, 45.3, 64, 90.5, ...
-    ladder = np.ceil(ladder / 4) * 4
-    return ladder[np.searchsorted(ladder, needed)].astype(int)
-
-
-@dataclass
-class _Tracks:
-    """Star tracks in groups of equal sample count, with per-star summaries.
-
-    ``groups`` holds (star indices, r, c, weights) with arrays of shape
-    (n_in_group, n_samples); the summaries are arrays over all stars.
-    """
-
-    groups: list[tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]]
-    flux: np.ndarray  # e- over the full crossing at unit transparency
-    recorded: np.ndarray  # e- deposited (before the column response)
-    r_shift: np.ndarray  # light-weighted minus unweighted sample mean, rows
-    c_shift: np.ndarray  # same, columns
-    t_mid: np.ndarray  # mid-crossing time, s since start
-    partial: np.ndarray  # exposure cut by the start ramp
-    max_samples: int
-
-
-def _sample_tracks(model, ra, dec, flux_rate, n_needed, after, duration, options) -> _Tracks:
-    n = len(ra)
-    out = _Tracks(
-        [],
-        np.zeros(n),
-        np.zeros(n),
-        np.zeros(n),
-        np.zeros(n),
-        np.zeros(n),
-        np.zeros(n, bool),
-        int(n_needed.max(initial=0)),
-    )
-    for n_samp in np.unique(n_needed):
-        idx = np.flatnonzero(n_needed == n_samp)
-        track = model.track(ra[idx], dec[idx], int(n_samp), after=after)
-        crossing = (track.t[:, 1] - track.t[:, 0]) * n_samp
-        flux = flux_rate[idx] * crossing
-        w = (flux / n_samp)[:, None] * _transparency(track.t, duration, options.sky)
-        if options.start_ramp:
-            w = w * (track.t >= 0.0)
-        recorded = w.sum(axis=1)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            out.r_shift[idx] = (w * track.r).sum(axis=1) / recorded - track.r.mean(axis=1)
-            out.c_shift[idx] = (w * track.c).sum(axis=1) / recorded - track.c.mean(axis=1)
-        out.flux[idx] = flux
-        out.recorded[idx] = recorded
-        out.t_mid[idx] = 0.5 * (track.t[:, 0] + track.t[:, -1])
-        out.partial[idx] = options.start_ramp & (w == 0).any(axis=1)
-        out.groups.append((idx, track.r, track.c, w))
-    return out
 
 
 def simulate_night(
@@ -648,7 +403,7 @@ def simulate_night(
     smear = n_tdi * (n_cols / 2.0 + margin) * model.pixel_angle
     smear *= abs(np.tan(np.radians(site.latitude))) + abs(options.line_time_error) * 2
     margin_rows = margin + smear + n_tdi * abs(options.line_time_error)
-    ra_range, dec_range = _field_bounds(
+    ra_range, dec_range = field_bounds(
         model,
         camera,
         (-margin_rows - n_tdi / 2.0) * dt,
@@ -659,9 +414,9 @@ def simulate_night(
         ra_range, dec_range, options.stars, np.random.default_rng([options.seed, 1])
     )
     if options.stars.catalog != "none":
-        stars = vstack([stars, _catalog_stars(options.stars.catalog, ra_range, dec_range, options)])
+        stars = vstack([stars, catalog_stars(options.stars.catalog, ra_range, dec_range, options)])
     if extra_stars is not None:
-        stars = vstack([stars, _extra_stars(extra_stars, options.stars)])
+        stars = vstack([stars, user_stars(extra_stars, options.stars)])
     ra_obs, dec_obs = positions_at_epoch(
         np.asarray(stars["ra"], float),
         np.asarray(stars["dec"], float),
@@ -689,8 +444,8 @@ def simulate_night(
     stars, ra_obs, dec_obs = stars[inside], ra_obs[inside], dec_obs[inside]
     flux_rate, radius = flux_rate[inside], radius[inside]
     coarse_in = type(coarse)(*(getattr(coarse, k)[inside] for k in ("t", "u", "v", "r", "c")))
-    n_needed = _samples_needed(coarse_in, options.samples_per_pixel)
-    tracks = _sample_tracks(model, ra_obs, dec_obs, flux_rate, n_needed, after, duration, options)
+    n_needed = samples_needed(coarse_in, options.samples_per_pixel)
+    tracks = sample_tracks(model, ra_obs, dec_obs, flux_rate, n_needed, after, duration, options)
     r_geom, c_geom = model.recorded_centroid(ra_obs, dec_obs, after=after)
     timings["tracks"] = time.perf_counter() - tic
 
@@ -713,7 +468,7 @@ def simulate_night(
     sky_rate = 10.0 ** (-0.4 * (options.sky.sky_brightness - zp)) * model.pixel_scale**2
     tic = time.perf_counter()
     sky_of_rows = functools.partial(
-        _sky_rows,
+        sky_rows,
         dt=dt,
         n_tdi=n_tdi,
         duration=duration,
@@ -721,7 +476,7 @@ def simulate_night(
         sky=options.sky,
         start_ramp=options.start_ramp,
     )
-    trails = _bleed_trails(tracks, radius, psf, cols.response, sky_of_rows, n_rows, options)
+    trails = bleed_trails(tracks, radius, psf, cols.response, sky_of_rows, n_rows, options)
     timings["bleed"] = time.perf_counter() - tic
 
     timings["render"] = timings["detector"] = 0.0
@@ -747,7 +502,7 @@ def simulate_night(
         timings["render"] += time.perf_counter() - tic
         tic = time.perf_counter()
         rows = b * options.block_rows + np.arange(options.block_rows)
-        bleed = _trails_in_block(trails, rows[0], image.shape)
+        bleed = trails_in_block(trails, rows[0], image.shape)
         data = _detect(image, bleed, rows, cols, bias_phase, sky_of_rows, dt, model, options, rng)
         if camera.flip_columns:
             data[:, :n_cols] = data[:, n_cols - 1 :: -1]
@@ -758,7 +513,7 @@ def simulate_night(
         timings["detector"] += time.perf_counter() - tic
 
     tic = time.perf_counter()
-    truth = _truth_table(stars, ra_obs, dec_obs, tracks, r_geom, c_geom, cols, psf, options, camera)
+    truth = truth_table(stars, ra_obs, dec_obs, tracks, r_geom, c_geom, cols, psf, options, camera)
     truth.meta.update(
         {
             "start": model.start.isot,
@@ -767,7 +522,7 @@ def simulate_night(
             "line_time_nominal": dt_nominal,
         }
     )
-    reference = _reference_table(stars, truth, options, np.random.default_rng([options.seed, 3]))
+    reference = reference_table(stars, truth, options, np.random.default_rng([options.seed, 3]))
     timings["tables"] = time.perf_counter() - tic
     meta = {
         "line_time_true": dt,
@@ -793,68 +548,6 @@ def simulate_night(
         sum(timings.values()),
     )
     return SimulatedNight(blocks=blocks, truth=truth, reference=reference, meta=meta)
-
-
-def _bleed_trails(tracks, radius, psf, response, sky_of_rows, n_rows, options):
-    """Bleed trails of saturated stars, computed over the whole night.
-
-    A saturated star spills charge along its columns, possibly across block
-    boundaries.  Each star whose peak may exceed the full well is rendered
-    alone on a canvas of its columns (sky included) long enough for its
-    trail, bled with :func:`bleed_along_columns`, and the change (negative in
-    the core, positive along the trail) is kept for the blocks to add.
-    Trails of different stars are computed independently.
-
-    Returns
-    -------
-    list of (int, int, ndarray)
-        Night row and column of the canvas origin, and the change in
-        electrons (after the column response), shape (rows, columns).
-    """
-    full_well = options.detector.full_well
-    peak = _peak_fraction(psf)
-    box = 1.0 if options.clocking_box else 0.0
-    sky_max = float(sky_of_rows(np.arange(-1, n_rows + 1)).max())
-    trails = []
-    for idx, r, c, w in tracks.groups:
-        flux = w.sum(axis=1)
-        # The static-star peak overestimates a smeared star's: a safe preselection.
-        for k in np.flatnonzero(flux * peak * response.max() + sky_max > full_well):
-            rad = radius[idx[k] : idx[k] + 1]
-            r0 = max(int(np.floor(r[k].min() - rad[0])), -1)
-            r1 = min(int(np.ceil(r[k].max() + rad[0])) + 1, n_rows + 1)
-            c0 = max(int(np.floor(c[k].min() - rad[0])), 0)
-            c1 = min(int(np.ceil(c[k].max() + rad[0])) + 1, response.size)
-            if c1 <= c0 or r1 <= r0:
-                continue
-            stamp = render_tracks(
-                r[k : k + 1], c[k : k + 1], w[k : k + 1], (r1 - r0, c1 - c0), psf,
-                origin=(r0, c0), radius=rad, row_box=box,
-            )  # fmt: skip
-            stamp += sky_of_rows(np.arange(r0, r1))[:, None]
-            stamp *= response[None, c0:c1]
-            excess = np.maximum(stamp - full_well, 0.0).sum(axis=0).max()
-            if excess == 0:
-                continue
-            # Each side of a column receives about half its excess.
-            reach = int(np.ceil(0.5 * excess / max(full_well - sky_max, 0.05 * full_well))) + 2
-            lo, hi = max(r0 - reach, -1), min(r1 + reach, n_rows + 1)
-            canvas = sky_of_rows(np.arange(lo, hi))[:, None] * response[None, c0:c1]
-            canvas[r0 - lo : r1 - lo] = stamp
-            before = canvas.copy()
-            bleed_along_columns(canvas, full_well)
-            trails.append((lo, c0, canvas - before))
-    return trails
-
-
-def _trails_in_block(trails, row0, shape):
-    """Sum of the bleed trails falling in the block whose first night row is ``row0``."""
-    out = np.zeros(shape)
-    for lo, c0, delta in trails:
-        a, b = max(lo, row0), min(lo + delta.shape[0], row0 + shape[0])
-        if b > a:
-            out[a - row0 : b - row0, c0 : c0 + delta.shape[1]] += delta[a - lo : b - lo]
-    return out
 
 
 def _detect(image, bleed, rows, cols, bias_phase, sky_of_rows, dt, model, options, rng):
@@ -933,87 +626,6 @@ def _block_header(b, t_start, dt_nominal, site, camera, model, options) -> fits.
     h["SIMULATE"] = (True, "these data are simulated")
     h["SIMSEED"] = (options.seed, "random seed of the simulation")
     return h
-
-
-def _truth_table(stars, ra, dec, tracks, r_geom, c_geom, cols, psf, options, camera):
-    n_cols = camera.n_columns
-    recorded = tracks.recorded
-    # Light-weighted centroid = exact time mean + (weighted - unweighted) sample means.
-    r_mean = np.where(recorded > 0, r_geom + tracks.r_shift, np.nan)
-    c_mean = np.where(recorded > 0, c_geom + tracks.c_shift, np.nan)
-    column = np.clip(np.rint(np.nan_to_num(c_geom)).astype(int), 0, n_cols - 1)
-    response = cols.response[column]
-    block = np.floor((r_geom + 0.5) / options.block_rows).astype(int)
-    t = Table()
-    t["id"] = np.arange(len(stars), dtype=np.int64)
-    t["source"] = stars["source"]
-    t["ra"] = ra * u.deg
-    t["dec"] = dec * u.deg
-    t["pmra"] = stars["pmra"]
-    t["pmdec"] = stars["pmdec"]
-    t["mag"] = stars["mag"]
-    t["colour"] = stars["colour"]
-    t["flux"] = tracks.flux * u.electron
-    t["flux_recorded"] = recorded * response * u.electron
-    t["r_mean"] = r_mean * u.pix
-    t["c_mean"] = c_mean * u.pix
-    t["r_geom"] = r_geom * u.pix
-    t["c_geom"] = c_geom * u.pix
-    t["c_file"] = (n_cols - 1 - c_mean if camera.flip_columns else c_mean) * u.pix
-    t["t_mid"] = tracks.t_mid * u.s
-    t["block"] = block
-    t["in_night"] = (
-        (r_mean >= -0.5)
-        & (r_mean < options.n_blocks * options.block_rows - 0.5)
-        & (c_mean >= -0.5)
-        & (c_mean < n_cols - 0.5)
-    )
-    t["in_missing_block"] = np.isin(block, options.missing_blocks)
-    t["partial"] = tracks.partial
-    t["saturated"] = recorded * response * _peak_fraction(psf) > options.detector.full_well
-    t.meta["description"] = "simulated stars; strip pixel k covers [k-0.5, k+0.5)"
-    return _rounded(t)
-
-
-# Decimals kept in the written tables: 1e-9 deg = 3.6 micro-arcsec, 1e-6 px, 1e-3 e-.
-_DECIMALS = {u.deg: 9, u.pix: 6, u.electron: 3, u.mag: 5, u.s: 6, u.mas / u.yr: 4, u.mas: 3}
-
-
-def _rounded(table: Table) -> Table:
-    """Round float columns to a precision far below any use (keeps the ECSV small)."""
-    for name in table.colnames:
-        col = table[name]
-        if col.dtype.kind == "f" and col.unit in _DECIMALS:
-            table[name] = np.round(col, _DECIMALS[col.unit])
-    return table
-
-
-def _reference_table(stars, truth, options, rng) -> Table:
-    """Reference catalogue: truth at the reference epoch with catalogue errors."""
-    ref = options.reference
-    keep = np.asarray(truth["mag"], float) <= ref.mag_limit
-    n = int(keep.sum())
-    ra = np.asarray(stars["ra"], float)[keep]
-    dec = np.asarray(stars["dec"], float)[keep]
-    mas = 1.0 / 3.6e6
-    dra = ref.position_error * rng.standard_normal(n) * mas / np.cos(np.radians(dec))
-    ddec = ref.position_error * rng.standard_normal(n) * mas
-    colour = np.asarray(truth["colour"], float)[keep]
-    mag = np.asarray(truth["mag"], float)[keep] - ref.colour_term * colour
-    t = Table(meta={"epoch": ref.epoch, "description": "simulated reference catalogue"})
-    t["id"] = truth["id"][keep]
-    t["ra"] = ((ra + dra) % 360.0) * u.deg
-    t["dec"] = (dec + ddec) * u.deg
-    t["ra_error"] = np.full(n, ref.position_error) * u.mas
-    t["dec_error"] = np.full(n, ref.position_error) * u.mas
-    t["pmra"] = truth["pmra"][keep]
-    t["pmdec"] = truth["pmdec"][keep]
-    t["epoch"] = np.full(n, ref.epoch)
-    t["mag"] = (mag + ref.mag_error * rng.standard_normal(n)) * u.mag
-    t["mag_error"] = np.full(n, ref.mag_error) * u.mag
-    t["colour"] = (colour + ref.colour_error * rng.standard_normal(n)) * u.mag
-    t["colour_error"] = np.full(n, ref.colour_error) * u.mag
-    return _rounded(t)
 
 
 # ----------------------------------------------------------------------------
