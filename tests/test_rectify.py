@@ -438,9 +438,9 @@ def test_deconvolution_noise_cost():
     inner = (slice(30, -30), slice(120, -120))
     ratio = np.nanstd(sharp.image[inner]) / np.nanstd(plain.image[inner])
     gain = sharp.deconvolution_noise_gain
-    # Both are O(1) for the default target sigma; 35 %: the gain assumes white
-    # noise, the rectified noise is correlated (factor ~1.2-1.6).
-    assert ratio == pytest.approx(gain, rel=0.35)
+    # 15 %: the gain assumes white noise, the rectified noise is slightly
+    # correlated (measured 3-7 % below the gain at 30 and 50 deg).
+    assert ratio == pytest.approx(gain, rel=0.15)
     # The variance plane follows the gain squared.
     assert np.nanmean(sharp.variance[inner]) == pytest.approx(
         np.nanmean(plain.variance[inner]) * gain**2, rel=0.15

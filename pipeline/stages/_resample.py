@@ -49,14 +49,13 @@ __all__ = [
     "noise_correlation_factor",
     "resample_columns",
     "shift_rows",
+    "transposed",
 ]
 
 #: The free parameter of the Keys cubic-convolution kernel.  -0.5 is the only
 #: value that reproduces quadratics (third-order accurate).
 KEYS_A = -0.5
 
-#: Pad width, in pixels, added on both sides of the resampled axis.
-_PAD = 4
 #: Rows (pass 1) or output rows (pass 2) handled at once, so that the working
 #: set stays in the processor cache.
 _CHUNK = 64
@@ -113,6 +112,21 @@ def noise_correlation_factor(weights: np.ndarray) -> np.ndarray:
     return w.sum(axis=0) ** 2 / (w * w).sum(axis=0)
 
 
+def transposed(array: np.ndarray, tile: int = 256) -> np.ndarray:
+    """C-contiguous transpose of a 2-D array, copied tile by tile.
+
+    Copying square tiles keeps both the read and the write side in the
+    processor cache; for large images this is ~2x faster than
+    ``np.ascontiguousarray(array.T)``.
+    """
+    n, m = array.shape
+    out = np.empty((m, n), array.dtype)
+    for i in range(0, n, tile):
+        for j in range(0, m, tile):
+            out[j : j + tile, i : i + tile] = array[i : i + tile, j : j + tile].T
+    return out
+
+
 def _runs(values: np.ndarray) -> list[tuple[int, int, int]]:
     """Maximal runs ``[start, stop)`` of equal integers in ``values``."""
     cut = np.flatnonzero(np.diff(values)) + 1
@@ -121,35 +135,46 @@ def _runs(values: np.ndarray) -> list[tuple[int, int, int]]:
     return [(int(a), int(b), int(values[a])) for a, b in zip(starts, stops, strict=True)]
 
 
-def _padded(
+def _cleaned(
     image: np.ndarray,
     variance: np.ndarray,
     mask: np.ndarray,
-    axis: int,
-    outside_bit: int,
     nonfinite_bit: int,
     dtype: np.dtype,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Copies of the planes padded by ``_PAD`` along ``axis``; NaN -> 0.
+    """The planes in ``dtype`` with non-finite values set to 0 and flagged.
 
-    The padding carries value 0 and mask ``outside_bit``; non-finite image or
-    variance values become 0 and get ``nonfinite_bit``.
+    Returns the inputs themselves (no copy) when they are finite and already
+    of ``dtype``.
     """
-    shape = list(image.shape)
-    shape[axis] += 2 * _PAD
-    inner = [slice(None), slice(None)]
-    inner[axis] = slice(_PAD, _PAD + image.shape[axis])
-    inner_t = tuple(inner)
-    img = np.zeros(shape, dtype)
-    var = np.zeros(shape, dtype)
-    msk = np.full(shape, outside_bit, mask.dtype)
-    finite = np.isfinite(image) & np.isfinite(variance)
-    np.copyto(img[inner_t], image, where=finite, casting="same_kind")
-    np.copyto(var[inner_t], variance, where=finite, casting="same_kind")
-    msk[inner_t] = mask
-    if not finite.all():
-        msk[inner_t] |= np.where(finite, 0, nonfinite_bit).astype(mask.dtype)
+    img = np.asarray(image, dtype=dtype)
+    var = np.asarray(variance, dtype=dtype)
+    # One reduction per plane finds NaN or infinity cheaply in the usual case.
+    if np.isfinite(img.sum()) and np.isfinite(var.sum()):
+        return img, var, mask
+    finite = np.isfinite(img) & np.isfinite(var)
+    img = np.where(finite, img, 0).astype(dtype, copy=False)
+    var = np.where(finite, var, 0).astype(dtype, copy=False)
+    msk = mask | np.where(finite, 0, nonfinite_bit).astype(mask.dtype)
     return img, var, msk
+
+
+def _add_tap(out, vout, mout, src, vsrc, msrc, w, w2, nonzero, scratch) -> None:
+    """``out += w src``, ``vout += w2 vsrc``, ``mout |= msrc`` where ``nonzero``."""
+    tmp = scratch[: out.shape[0], : out.shape[1]]
+    np.multiply(src, w, out=tmp)
+    out += tmp
+    np.multiply(vsrc, w2, out=tmp)
+    vout += tmp
+    if nonzero.all():
+        mout |= msrc
+    else:
+        mout |= msrc * nonzero
+
+
+def _flag(mout: np.ndarray, outside_bit: int, nonzero: np.ndarray) -> None:
+    if mout.size:
+        mout |= np.asarray(outside_bit, mout.dtype) * nonzero
 
 
 def _check_planes(image: np.ndarray, variance: np.ndarray, mask: np.ndarray) -> None:
@@ -245,13 +270,13 @@ def resample_columns(
     n_out = pos.shape[1]
     jac = np.broadcast_to(np.asarray(jacobian, dtype=float), pos.shape)
     dtype = np.dtype(np.float32 if image.dtype == np.float32 else np.float64)
-    # Positions far outside are clamped; they keep a non-zero weight on a padded
-    # (flagged) tap, so they are flagged outside.
+    # Far-off positions are clamped; their non-zero taps fall outside and flag them.
     pos = np.clip(pos, -2.0, n_cols + 1.0)
-    src, vsrc, msrc = _padded(image, variance, mask, 1, outside_bit, nonfinite_bit, dtype)
+    src, vsrc, msrc = _cleaned(image, variance, mask, nonfinite_bit, dtype)
     out = np.zeros((n_rows, n_out), dtype)
     vout = np.zeros((n_rows, n_out), dtype)
     mout = np.zeros((n_rows, n_out), mask.dtype)
+    scratch = np.empty((_CHUNK, n_out), dtype)
     index = np.arange(n_out)
     for block in range(pos.shape[0]):
         j0, w, w2, nonzero = _block_weights(pos[block], jac[block], dtype)
@@ -259,13 +284,27 @@ def resample_columns(
         for r0 in range(int(breaks[block]), int(breaks[block + 1]), _CHUNK):
             r1 = min(r0 + _CHUNK, int(breaks[block + 1]))
             for a, b, offset in runs:
-                o, vo, mo = out[r0:r1, a:b], vout[r0:r1, a:b], mout[r0:r1, a:b]
                 for k in range(4):
-                    s = a + offset + k - 1 + _PAD
-                    cols = slice(s, s + b - a)
-                    o += w[k, a:b] * src[r0:r1, cols]
-                    vo += w2[k, a:b] * vsrc[r0:r1, cols]
-                    mo |= msrc[r0:r1, cols] * nonzero[k, a:b]
+                    s = a + offset + k - 1  # source column of output column a
+                    lo, hi = max(s, 0), min(s + b - a, n_cols)
+                    oa, ob = a + lo - s, a + hi - s  # output columns with a source
+                    if hi > lo:
+                        cols = slice(oa, ob)
+                        _add_tap(
+                            out[r0:r1, cols],
+                            vout[r0:r1, cols],
+                            mout[r0:r1, cols],
+                            src[r0:r1, lo:hi],
+                            vsrc[r0:r1, lo:hi],
+                            msrc[r0:r1, lo:hi],
+                            w[k, cols],
+                            w2[k, cols],
+                            nonzero[k, cols],
+                            scratch,
+                        )
+                    oa, ob = min(max(oa, a), b), min(max(ob, a), b)
+                    _flag(mout[r0:r1, a:oa], outside_bit, nonzero[k, a:oa])
+                    _flag(mout[r0:r1, ob:b], outside_bit, nonzero[k, ob:b])
     return out, vout, mout
 
 
@@ -317,33 +356,38 @@ def shift_rows(
     jac = np.broadcast_to(np.asarray(jacobian, dtype=float), off.shape)
     dtype = np.dtype(np.float32 if image.dtype == np.float32 else np.float64)
     # Clamp so that the integer bases stay small; a clamped column is flagged
-    # outside wherever its taps reach the padding or beyond.
+    # outside wherever its taps reach beyond the input.
     off = np.clip(off, -2.0 - n_out, n_rows + 1.0)
-    src, vsrc, msrc = _padded(image, variance, mask, 0, outside_bit, nonfinite_bit, dtype)
+    src, vsrc, msrc = _cleaned(image, variance, mask, nonfinite_bit, dtype)
     out = np.zeros((n_out, n_cols), dtype)
     vout = np.zeros((n_out, n_cols), dtype)
     mout = np.zeros((n_out, n_cols), mask.dtype)
-    padded_rows = src.shape[0]
-    outside = np.asarray(outside_bit, mask.dtype)
+    scratch = np.empty((_CHUNK, n_cols), dtype)
     for block in range(off.shape[0]):
         i0, w, w2, nonzero = _block_weights(off[block], jac[block], dtype)
         runs = _runs(i0)
         for x0 in range(int(breaks[block]), int(breaks[block + 1]), _CHUNK):
             x1 = min(x0 + _CHUNK, int(breaks[block + 1]))
             for a, b, base in runs:
-                o, vo, mo = out[x0:x1, a:b], vout[x0:x1, a:b], mout[x0:x1, a:b]
+                cols = slice(a, b)
                 for k in range(4):
-                    s = base + x0 + k - 1 + _PAD
-                    lo, hi = max(s, 0), min(s + x1 - x0, padded_rows)
-                    flag = outside * nonzero[k, a:b]
-                    if hi <= lo:
-                        mo |= flag
-                        continue
-                    rows = slice(lo - s, hi - s)
-                    o[rows] += w[k, a:b] * src[lo:hi, a:b]
-                    vo[rows] += w2[k, a:b] * vsrc[lo:hi, a:b]
-                    mo[rows] |= msrc[lo:hi, a:b] * nonzero[k, a:b]
-                    if hi - lo < x1 - x0:
-                        mo[: lo - s] |= flag
-                        mo[hi - s :] |= flag
+                    s = base + x0 + k - 1  # source row of output row x0
+                    lo, hi = max(s, 0), min(s + x1 - x0, n_rows)
+                    oa, ob = x0 + lo - s, x0 + hi - s  # output rows with a source
+                    if hi > lo:
+                        _add_tap(
+                            out[oa:ob, cols],
+                            vout[oa:ob, cols],
+                            mout[oa:ob, cols],
+                            src[lo:hi, cols],
+                            vsrc[lo:hi, cols],
+                            msrc[lo:hi, cols],
+                            w[k, cols],
+                            w2[k, cols],
+                            nonzero[k, cols],
+                            scratch,
+                        )
+                    oa, ob = min(max(oa, x0), x1), min(max(ob, x0), x1)
+                    _flag(mout[x0:oa, cols], outside_bit, nonzero[k, cols])
+                    _flag(mout[ob:x1, cols], outside_bit, nonzero[k, cols])
     return out, vout, mout

@@ -79,6 +79,7 @@ from pipeline.stages._resample import (
     noise_correlation_factor,
     resample_columns,
     shift_rows,
+    transposed,
 )
 from pipeline.stages.base import BLOCK_INDEX, Stage
 
@@ -248,44 +249,42 @@ def night_model(site: Site, camera: Camera, block_index: Table, n_rows: int) -> 
 def _global_blocks(lo: int, hi: int, value) -> tuple[list[tuple[int, int, float]], np.ndarray]:
     """Blocks covering ``[lo, hi)`` on which ``value(position)`` is nearly constant.
 
-    Cells of a global grid of ``_BLOCK`` pixels are halved until ``value``
-    (an array per position) changes by at most ``_TOLERANCE`` over the cell.
+    Each cell of a global grid of ``_BLOCK`` pixels is cut into ``2**k``
+    equal blocks, the fewest for which the change of ``value`` (an array per
+    position) across the cell, shared out evenly, stays within
+    ``_TOLERANCE`` per block.  ``value`` is held at each block's centre, so
+    the largest error is half the tolerance.  The sampling positions vary
+    smoothly (slow aberration and geometry drifts), so the change between
+    the cell's ends measures the change within it.
 
     Returns
     -------
     blocks : list of (start, stop, centre)
         ``[start, stop)`` clipped to ``[lo, hi)``; ``centre`` of the whole
-        cell, so that every stretch holds the same value in the same cell.
+        block, so that every stretch uses the same value in the same block.
     values : ndarray, shape (n_blocks, ...)
         ``value(centre)`` of each block.
     """
     blocks: list[tuple[int, int, float]] = []
-    cache: dict[float, np.ndarray] = {}
-
-    def at(position: float) -> np.ndarray:
-        if position not in cache:
-            cache[position] = value(position)
-        return cache[position]
-
-    def visit(a: int, n: int) -> None:
-        if a + n <= lo or a >= hi:
-            return
-        centre = a + (n - 1) / 2.0
-        if n > 1:
-            mid = at(centre)
-            spread = max(np.max(np.abs(at(a) - mid)), np.max(np.abs(at(a + n - 1) - mid)))
-            if spread > _TOLERANCE / 2.0:
-                visit(a, n // 2)
-                visit(a + n // 2, n - n // 2)
-                return
-        blocks.append((max(a, lo), min(a + n, hi), centre))
-
-    for k in range(lo // _BLOCK, -(-hi // _BLOCK)):
-        visit(k * _BLOCK, _BLOCK)
-    return blocks, np.array([at(centre) for _, _, centre in blocks])
+    values = []
+    for cell in range(lo // _BLOCK, -(-hi // _BLOCK)):
+        a = cell * _BLOCK
+        change = float(np.max(np.abs(value(a + _BLOCK - 1.0) - value(float(a)))))
+        parts = 1
+        while parts < _BLOCK and change / parts > _TOLERANCE:
+            parts *= 2
+        length = _BLOCK // parts
+        for start in range(a, a + _BLOCK, length):
+            if start + length <= lo or start >= hi:
+                continue
+            centre = start + (length - 1) / 2.0
+            blocks.append((max(start, lo), min(start + length, hi), centre))
+            values.append(value(centre))
+    return blocks, np.array(values)
 
 
 def _kernel_positions(x_start: int, x_stop: int, n_y: int, step: int) -> tuple[np.ndarray, ...]:
+    """Smear-kernel record positions: every ``step`` rows (and the last) at 3 columns."""
     ys = np.unique(np.append(np.arange(0, n_y, step), n_y - 1)).astype(float)
     xs = np.unique(np.array([x_start, 0.5 * (x_start + x_stop - 1), x_stop - 1], dtype=float))
     xg, yg = np.meshgrid(xs, ys)
@@ -440,7 +439,7 @@ def rectify(
     along = shift_rows(
         *across, shifts + (x_lo - need_lo), x_hi - x_lo, jac_x, breaks=breaks_x, **bits
     )
-    out_image, out_variance, out_mask = (np.ascontiguousarray(a.T) for a in along)
+    out_image, out_variance, out_mask = (transposed(a) for a in along)
     no_data = (out_mask & MASK_DTYPE.type(NO_DATA_BITS)) != 0
     out_image[no_data] = np.nan
     out_variance[no_data] = np.nan
