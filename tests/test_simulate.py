@@ -507,3 +507,26 @@ def test_hipparcos_stars_can_be_added():
     # (~3 per deg^2 to Hp = 9, common practice); the exact number is not the point.
     assert len(real) >= 1
     assert np.all(np.asarray(real["mag"]) <= 13.0)
+
+
+def test_module_command_writes_a_night(tmp_path, capsys):
+    import yaml
+
+    from pipeline.simulate import main
+
+    config = {
+        "night": {"name": "t", "raw_dir": "raw", "output_dir": "out"},
+        "site": {"latitude": 30.0, "longitude": 10.0, "height": 100.0},
+        "camera": {"n_columns": 64, "tdi_rows": 128, "pixel_size": 15.0, "focal_length": 2.0},
+        "simulate": {"start": START, "n_blocks": 2, "block_rows": 32, "compress": False},
+    }
+    path = tmp_path / "sim.yaml"
+    path.write_text(yaml.safe_dump(config))
+    assert main([str(path)]) == 0
+    assert "wrote 4 files" in capsys.readouterr().out
+    files = sorted(p.name for p in (tmp_path / "raw").iterdir())
+    assert files == ["block_0000.fits", "block_0001.fits", "reference.ecsv", "truth.ecsv"]
+    del config["simulate"]
+    path.write_text(yaml.safe_dump(config))
+    with pytest.raises(ValueError, match="simulate"):
+        load_simulation_config(path)
