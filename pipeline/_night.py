@@ -1,0 +1,252 @@
+"""The product store of one night, seen through the current config.
+
+:class:`NightStore` answers the runner's questions about a night: which
+units exist (the stretch plan comes from the block index), what each unit's
+config hash and input hashes are now, how to load its inputs, and whether it
+is done, stale, missing or failed.  It reads only; writing is the unit
+runner's job (:mod:`pipeline._unit`).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import itertools
+from collections.abc import Iterable
+from pathlib import Path
+from typing import Any
+
+from pipeline._rawio import (
+    block_index_rows,
+    blocks_fingerprint,
+    list_raw_files,
+    overlapping_blocks,
+    raw_files_fingerprint,
+)
+from pipeline._store import hash_json, read_failure, read_product, read_sidecar
+from pipeline._unit import InputSpec, UnitTask
+from pipeline.config import Config
+from pipeline.stages.base import (
+    BLOCK_INDEX,
+    RAW_FILES,
+    RAW_ROWS,
+    Stage,
+    StageContext,
+    Stretch,
+    plan_stretches,
+)
+
+__all__ = ["NIGHT", "NightStore", "format_ids", "night_dir", "unit_id"]
+
+#: Unit id of a night-scoped stage.
+NIGHT = "night"
+
+
+def night_dir(config: Config) -> Path:
+    """The night's output folder, ``<output_dir>/<night name>``."""
+    return Path(config.night.output_dir) / config.night.name
+
+
+def format_ids(ids: Iterable[str]) -> str:
+    """Compress unit ids for display: ``s0000 s0001 s0002 s0005`` -> ``s0000-s0002, s0005``."""
+    ids = sorted(ids)
+    numbered = [(int(i[1:]), i) for i in ids if i[:1] == "s" and i[1:].isdigit()]
+    parts = [i for i in ids if not (i[:1] == "s" and i[1:].isdigit())]
+    for _, run in itertools.groupby(enumerate(numbered), lambda p: p[1][0] - p[0]):
+        run = [item for _, item in run]
+        parts.append(run[0][1] if len(run) == 1 else f"{run[0][1]}-{run[-1][1]}")
+    return ", ".join(parts)
+
+
+def unit_id(stretch: Stretch | None) -> str:
+    return NIGHT if stretch is None else stretch.id
+
+
+class NightStore:
+    """The product store of one night, seen through the current config."""
+
+    def __init__(self, config: Config):
+        self.config = config
+        self.root = night_dir(config)
+        self.raw_dir = Path(config.night.raw_dir)
+        self.stages = {stage.name: stage for stage in config.graph}
+        self.row_stage = next((s for s in config.graph if s.defines_rows), None)
+        self.context = StageContext(
+            site=config.site(), camera=config.camera(), run=config.run, night=config.night.name
+        )
+        self.refresh()
+
+    def refresh(self) -> None:
+        """Forget cached sidecars and states; reload the block index and stretch plan."""
+        self._sidecars: dict[tuple[str, str], dict[str, Any] | None] = {}
+        self._states: dict[tuple[str, str], tuple[str, str]] = {}
+        self._raw_names: list[str] | None = None
+        self.index = None
+        self.stretches: tuple[Stretch, ...] = ()
+        if self.row_stage is None:
+            return
+        record = self.usable(self.row_stage, NIGHT)
+        if record is not None and BLOCK_INDEX in record["products"]:
+            folder = self.unit_dir(self.row_stage, NIGHT)
+            entry = record["products"][BLOCK_INDEX]
+            self.index = read_product(folder / entry["file"], entry)
+            run = self.config.run
+            rows = block_index_rows(self.index)
+            self.stretches = plan_stretches(rows, run.stretch_rows, run.overlap_rows)
+        self.context = dataclasses.replace(self.context, stretches=self.stretches)
+
+    def unit_dir(self, stage: Stage, unit: str) -> Path:
+        return self.root / stage.name / unit
+
+    def units(self, stage: Stage) -> list[Stretch | None]:
+        return [None] if stage.scope == "night" else list(self.stretches)
+
+    def sidecar(self, stage: Stage, unit: str) -> dict[str, Any] | None:
+        key = (stage.name, unit)
+        if key not in self._sidecars:
+            self._sidecars[key] = read_sidecar(self.unit_dir(stage, unit))
+        return self._sidecars[key]
+
+    def usable(self, stage: Stage, unit: str) -> dict[str, Any] | None:
+        """The unit's sidecar, unless the unit is incomplete or its last attempt failed."""
+        if read_failure(self.unit_dir(stage, unit)) is not None:
+            return None
+        return self.sidecar(stage, unit)
+
+    def raw_names(self) -> list[str]:
+        if self._raw_names is None:
+            self._raw_names = list_raw_files(self.raw_dir, self.config.night.pattern)
+        return self._raw_names
+
+    # -- what a unit depends on -------------------------------------------------
+
+    def _context_value(self, name: str) -> Any:
+        # names were checked against the sections when the config was built
+        section, _, key = name.partition(".")
+        if section == "run":
+            values = self.config.run.model_dump(mode="json")
+        else:
+            values = dataclasses.asdict(getattr(self.context, section))
+        return values[key] if key else values
+
+    def config_data(self, stage: Stage, stretch: Stretch | None) -> dict[str, Any]:
+        """What the stage's products depend on besides its inputs (hashed)."""
+        options = self.config.stage_options(stage.name)
+        return {
+            "version": stage.version,
+            "options": options.model_dump(mode="json"),
+            "uses": {name: self._context_value(name) for name in stage.uses},
+            "rows": None
+            if stretch is None
+            else [stretch.lo, stretch.start, stretch.stop, stretch.hi],
+        }
+
+    def inputs(
+        self, stage: Stage, stretch: Stretch | None
+    ) -> tuple[dict[str, str], list[InputSpec], str | None]:
+        """Input hashes, how to load the inputs, and why they are unavailable (or None)."""
+        hashes: dict[str, str] = {}
+        specs: list[InputSpec] = []
+        for name in stage.requires:
+            if name == RAW_FILES:
+                names = tuple(self.raw_names())
+                hashes[name] = raw_files_fingerprint(self.raw_dir, names)
+                specs.append(InputSpec(name, "raw_files", raw_dir=self.raw_dir, names=names))
+                continue
+            if name == RAW_ROWS:
+                if self.index is None:
+                    return hashes, specs, self.no_index_reason()
+                lo, hi = stretch.lo, stretch.hi
+                hashes[name] = blocks_fingerprint(self.raw_dir, self.index, lo, hi)
+                subset = self.index[overlapping_blocks(self.index, lo, hi)]
+                specs.append(
+                    InputSpec(name, "raw_rows", raw_dir=self.raw_dir, index=subset, lo=lo, hi=hi)
+                )
+                continue
+            upstream = self.stages[name]
+            if upstream.scope == "night":
+                ids = [NIGHT]
+            elif stage.scope == "stretch":
+                ids = [stretch.id]
+            else:
+                ids = [s.id for s in self.stretches]
+                if not ids:
+                    return hashes, specs, self.no_index_reason()
+            units = [(self.unit_dir(upstream, i), self.usable(upstream, i)) for i in ids]
+            missing = [i for i, (_, record) in zip(ids, units, strict=True) if record is None]
+            if missing:
+                problem = f"needs {name} products for {format_ids(missing)} (missing or failed)"
+                return hashes, specs, problem
+            if upstream.scope == "stretch" and stage.scope == "night":
+                hashes[name] = hash_json([record["output_hash"] for _, record in units])
+                specs.append(InputSpec(name, "units", units=tuple(units)))
+            else:
+                hashes[name] = units[0][1]["output_hash"]
+                specs.append(InputSpec(name, "unit", units=tuple(units)))
+        return hashes, specs, None
+
+    def no_index_reason(self) -> str:
+        maker = self.row_stage.name if self.row_stage else "a stage with defines_rows"
+        if self.index is not None:
+            return f"the block index of stage {maker!r} has no rows (were all raw files rejected?)"
+        return f"no block index yet; run stage {maker!r} first"
+
+    def state(self, stage: Stage, stretch: Stretch | None) -> tuple[str, str]:
+        """``(state, reason)`` of a unit; see :class:`StageStatus`."""
+        key = (stage.name, unit_id(stretch))
+        if key not in self._states:
+            self._states[key] = self._compute_state(stage, stretch)
+        return self._states[key]
+
+    def _compute_state(self, stage: Stage, stretch: Stretch | None) -> tuple[str, str]:
+        unit = unit_id(stretch)
+        failure = read_failure(self.unit_dir(stage, unit))
+        if failure is not None:
+            return "failed", failure.get("reason", "unknown reason")
+        record = self.sidecar(stage, unit)
+        if record is None:
+            return "missing", ""
+        hashes, _, problem = self.inputs(stage, stretch)
+        if problem is not None:
+            return "stale", problem
+        if record.get("config_hash") != hash_json(self.config_data(stage, stretch)):
+            return "stale", "config changed"
+        recorded = record.get("inputs", {})
+        changed = sorted(k for k in set(hashes) | set(recorded) if hashes.get(k) != recorded.get(k))
+        if changed:
+            return "stale", f"inputs changed: {', '.join(changed)}"
+        for name in stage.requires:
+            upstream = self.stages.get(name)
+            if upstream is None:
+                continue
+            if upstream.scope == "night":
+                ups = [None]
+            else:
+                ups = [stretch] if stage.scope == "stretch" else list(self.stretches)
+            for up in ups:
+                up_state = self.state(upstream, up)[0]
+                if up_state != "done":
+                    return "stale", f"upstream {name} is {up_state}"
+        return "done", ""
+
+    def task(
+        self,
+        stage: Stage,
+        stretch: Stretch | None,
+        specs: list[InputSpec],
+        hashes: dict[str, str],
+        capture_logs: bool,
+    ) -> UnitTask:
+        unit = unit_id(stretch)
+        data = self.config_data(stage, stretch)
+        return UnitTask(
+            stage=stage,
+            unit=unit,
+            unit_dir=self.unit_dir(stage, unit),
+            options=self.config.stage_options(stage.name),
+            context=dataclasses.replace(self.context, stretch=stretch),
+            inputs=tuple(specs),
+            config=data,
+            config_hash=hash_json(data),
+            input_hashes=hashes,
+            capture_logs=capture_logs,
+        )
