@@ -83,7 +83,20 @@ def _parser() -> argparse.ArgumentParser:
     run.add_argument("--force", action="store_true", help="recompute even up-to-date products")
     command("status", "show which products exist, which are stale and which failed")
     command("config", "print the fully resolved config as YAML")
-    command("plan", "print what the site and camera imply (scale, line time, smear)")
+    plan = command("plan", "print what the site and camera imply (scale, line time, smear)")
+    plan.add_argument(
+        "--spin-error",
+        type=float,
+        metavar="SECONDS",
+        help="also report the focal-length and line-time errors (and the smear over the "
+        "TDI rows) that this error in the mirror's spin period causes",
+    )
+    plan.add_argument(
+        "--epoch",
+        metavar="UTC",
+        help="epoch for the exact model, ISO 8601 UTC (default: the simulate section's "
+        "start if any, else 2026-01-01)",
+    )
     simulate = command("simulate", "write a synthetic night of raw blocks (section 'simulate')")
     simulate.add_argument("--output", help="folder to write to (default: night.raw_dir)")
     return parser
@@ -128,10 +141,24 @@ def _cmd_config(args: argparse.Namespace, config: Config) -> int:
 
 
 def _cmd_plan(args: argparse.Namespace, config: Config) -> int:
+    from astropy.time import Time
+
     from pipeline.geometry.plan import format_plan, summarize_plan
 
+    epoch = args.epoch
+    simulate = config.section("simulate")
+    if epoch is None and simulate is not None:
+        epoch = simulate.start
+    try:
+        start = None if epoch is None else Time(epoch, scale="utc")
+    except ValueError as exc:
+        print(f"zdrift plan: --epoch {epoch!r} is not an ISO 8601 time: {exc}", file=sys.stderr)
+        return EXIT_USAGE
     with cli_logging(args.verbose):
-        print(format_plan(summarize_plan(config.site(), config.camera())))
+        summary = summarize_plan(
+            config.site(), config.camera(), spin_period_error_s=args.spin_error, start=start
+        )
+        print(format_plan(summary))
     return EXIT_OK
 
 
