@@ -285,6 +285,22 @@ def test_two_stretches_equal_one():
         joined = np.concatenate([getattr(first, name), getattr(second, name)], axis=1)
         # 1e-9 e-: identical arithmetic; only the map nodes' round-off differs.
         np.testing.assert_allclose(joined, getattr(whole, name), rtol=0, atol=1e-9)
+    # Deconvolved stretches use kernels at their own middle column (the kernel
+    # drifts by ~1e-3 px over a stretch), so they agree to 1e-3 of the
+    # brightest peak, given overlap_rows beyond deconvolution_margin (~90 px).
+    overlap = 140
+    options = {"deconvolve": True, "night_rows": N_ROWS}
+    whole = rectify(*planes, model, deconvolve=True)
+    first = rectify(*(p[: split + overlap] for p in planes), model, core=(0, split), **options)
+    second = rectify(
+        *(p[split - overlap :] for p in planes),
+        model,
+        row_lo=split - overlap,
+        core=(split, N_ROWS),
+        **options,
+    )
+    joined = np.concatenate([first.image, second.image], axis=1)
+    assert np.nanmax(np.abs(joined - whole.image)) < 1e-3 * np.nanmax(whole.image)
 
 
 def test_too_small_overlap_warns():
@@ -503,3 +519,82 @@ def test_stage_run_returns_hdus_with_readable_wcs():
     same = night_model(model.site, model.camera, index, 1024)
     assert same.line_time == model.line_time
     assert len(products["smear_kernels"]) > 0
+
+
+def test_finer_pixel_scale_keeps_flux_and_positions():
+    # A rectified pixel smaller than the camera's (here 0.8x) oversamples the
+    # strip: interpolation then keeps flux (Jacobian weights) and positions.
+    # (Coarser pixels undersample and lose ~0.5 % of flux at 1.25x: not a default.)
+    scene, _ = _grid_scene(50.0)
+    result = rectify(
+        scene.image, scene.variance, scene.mask, scene.model,
+        pixel_scale=0.8 * scene.model.pixel_scale,
+    )  # fmt: skip
+    x_wcs, y_wcs = result.wcs.world_to_pixel(SkyCoord(scene.ra, scene.dec, unit="deg"))
+    flux, xc, yc = np.array(
+        [measure(result.image, x, y, 14) for x, y in zip(x_wcs, y_wcs, strict=True)]
+    ).T
+    assert np.sqrt(np.mean((xc - x_wcs) ** 2 + (yc - y_wcs) ** 2)) < 0.02  # requirement
+    np.testing.assert_allclose(flux, scene.flux, rtol=2e-3)  # requirement: 0.2 %
+
+
+def test_demo_like_camera_with_noise():
+    # A 1024-column, 4096-row camera at 0.52 arcsec per pixel and 41.65 deg
+    # (the demo night's set-up), stars of S/N ~ 700 on a sky with Poisson-like
+    # noise: centroids on the WCS to <= 0.02 px rms (requirement), flux to 0.2 %.
+    camera = small_camera(n_columns=1024, tdi_rows=4096, focal_length=6.0)
+    n_rows = 8192
+    model = scene_model(41.65, n_rows, camera)
+    frame = RectifiedFrame.for_night(model, n_rows)
+    xs = np.linspace(500.0, n_rows - 500.0, 12) + 0.41
+    ys = np.linspace(30.0, frame.n_y - 31.0, 10) + 0.27
+    x, y = np.meshgrid(xs, ys)
+    scene = star_scene(
+        model, n_rows, x.ravel(), y.ravel(), flux=1.0e6, fwhm=2.7, sky=400.0, noise_seed=5
+    )
+    result = rectify(scene.image, scene.variance, scene.mask, model)
+    x_wcs, y_wcs = result.wcs.world_to_pixel(SkyCoord(scene.ra, scene.dec, unit="deg"))
+    sky = np.nanmedian(result.image)
+    flux, xc, yc = np.array(
+        [measure(result.image - sky, a, b, 12) for a, b in zip(x_wcs, y_wcs, strict=True)]
+    ).T
+    # Photon noise of 1e6 e- on 400 e-/px sky: centroid error ~0.002 px, flux
+    # error ~0.15 % (25x25 box of sky), so the budgets test the geometry.
+    assert np.sqrt(np.mean((xc - x_wcs) ** 2)) < 0.02
+    assert np.sqrt(np.mean((yc - y_wcs) ** 2)) < 0.02
+    assert np.abs(np.median(flux / scene.flux - 1)) < 2e-3
+
+
+@pytest.mark.slow
+def test_full_size_chip_at_49_degrees_with_deconvolution():
+    # A 4096 x 4096 chip at 0.35 arcsec per pixel and 49 deg (the set-up of
+    # CHECK_VALUES section 4: edge slip ~16 px, sagitta ~4 px): centroids and
+    # flux as in the small-chip tests, and deconvolution makes edge stars as
+    # round as centre-line stars (requirement: within 0.02).
+    camera = small_camera(n_columns=4096, tdi_rows=4096, focal_length=8.84)
+    n_rows = 6144
+    model = scene_model(49.0, n_rows, camera)
+    frame = RectifiedFrame.for_night(model, n_rows)
+    xs = np.arange(400.0, n_rows - 400.0, 90.0) + 0.3
+    rows = np.array([40.0, (frame.n_y - 1) / 2.0, frame.n_y - 41.0])
+    x, y = np.meshgrid(xs, rows)
+    scene = star_scene(model, n_rows, x.ravel(), y.ravel(), fwhm=4.0, samples_per_pixel=4.0)
+    planes = (scene.image, scene.variance, scene.mask)
+    plain = rectify(*planes, model)
+    x_wcs, y_wcs = plain.wcs.world_to_pixel(SkyCoord(scene.ra, scene.dec, unit="deg"))
+    flux, xc, yc = np.array(
+        [measure(plain.image, a, b, 20) for a, b in zip(x_wcs, y_wcs, strict=True)]
+    ).T
+    assert np.sqrt(np.mean((xc - x_wcs) ** 2 + (yc - y_wcs) ** 2)) < 0.02
+    np.testing.assert_allclose(flux, scene.flux, rtol=2e-3)
+    # A 16-px top-hat needs a weak regularisation (see pipeline.stages._deconvolve).
+    sharp = rectify(*planes, model, deconvolve=True, deconvolve_regularization=1e-4)
+    e = np.array(
+        [
+            _ellipticity(sharp.image, a, b, half=14, sigma_w=4.0)
+            for a, b in zip(x_wcs, y_wcs, strict=True)
+        ]
+    )
+    south, centre, north = (np.mean(e[scene.y == row]) for row in rows)
+    assert abs(south - centre) < 0.02
+    assert abs(north - centre) < 0.02

@@ -125,10 +125,13 @@ class RectifyOptions(BaseModel):
     kernel_samples: int = Field(64, ge=2, description="Time samples per smear kernel.")
     deconvolve: bool = Field(False, description="Undo the smear (band-wise Wiener filter).")
     deconvolve_regularization: float = Field(
-        0.01, gt=0, description="Wiener regularisation (noise-to-signal power)."
+        1e-3,
+        gt=0,
+        description="Wiener regularisation (noise-to-signal power); smaller makes long "
+        "smears rounder at a higher noise cost and needs more overlap_rows.",
     )
     deconvolve_sigma: float = Field(
-        0.6, ge=0, description="Sigma of the round Gaussian that replaces the kernel, px."
+        1.0, ge=0, description="Sigma of the round Gaussian that replaces the kernel, px."
     )
     deconvolve_band: int = Field(
         16, ge=4, description="Height of the bands with their own kernel, px."
@@ -331,8 +334,8 @@ def rectify(
     kernel_step: int = 32,
     kernel_samples: int = 64,
     deconvolve: bool = False,
-    deconvolve_regularization: float = 0.01,
-    deconvolve_sigma: float = 0.6,
+    deconvolve_regularization: float = 1e-3,
+    deconvolve_sigma: float = 1.0,
     deconvolve_band: int = 16,
 ) -> RectifiedStretch:
     """Rectify a stretch of a calibrated TDI strip.
