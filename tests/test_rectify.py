@@ -17,7 +17,14 @@ from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.masks import MaskBit
 from pipeline.stages import GRAPH, StageContext, Stretch
 from pipeline.stages._rectify_map import StripMap, crossing_after
-from pipeline.stages.rectify import STAGE, RectifyOptions, night_model, rectify
+from pipeline.stages.rectify import (
+    STAGE,
+    RectifyOptions,
+    night_model,
+    rectify,
+    smear_kernel_at,
+    smear_kernels,
+)
 
 LATITUDES = [0.0, 30.0, 50.0, -31.0]
 N_ROWS = 2048
@@ -246,6 +253,21 @@ def test_smear_kernel_record_matches_analytic_smear_and_bow(latitude):
     # runs to later rows: towards +x for the poleward edge.
     poleward = kernels[np.argmax(kernels["y"] * np.sign(latitude))]
     assert (poleward["dx"][-1] - poleward["dx"][0]) > 1.0
+
+
+def test_smear_kernel_lookup_matches_exact_kernel():
+    # The interpolated kernel between recorded rows equals the exact kernel of
+    # a star there (TDIModel.track) to well below a hundredth of a pixel.
+    scene, result = _grid_scene(50.0)
+    model, frame = scene.model, result.frame
+    x, y = 1000.0, 101.0
+    dx, dy = smear_kernel_at(result.smear_kernels, x, y)
+    strip_map = StripMap(model, frame, x - 1, x + 1)
+    exact = smear_kernels(model, frame, strip_map, np.array([x]), np.array([y]))
+    # 0.01 px: linear interpolation over 32 px of a kernel whose length
+    # changes linearly with y (first order, CHECK_VALUES 3.3).
+    assert np.abs(dx - exact["dx"][0]).max() < 0.01
+    assert np.abs(dy - exact["dy"][0]).max() < 0.01
 
 
 # ----------------------------------------------------------------------------

@@ -90,6 +90,7 @@ __all__ = [
     "RectifyOptions",
     "night_model",
     "rectify",
+    "smear_kernel_at",
     "smear_kernels",
 ]
 
@@ -284,6 +285,42 @@ def _global_blocks(lo: int, hi: int, value) -> tuple[list[tuple[int, int, float]
             blocks.append((max(start, lo), min(start + length, hi), centre))
             values.append(value(centre))
     return blocks, np.array(values)
+
+
+def smear_kernel_at(kernels: Table, x: float, y: float) -> tuple[np.ndarray, np.ndarray]:
+    """The smear kernel at a rectified position, from a recorded kernel table.
+
+    Takes the recorded column nearest to ``x`` (kernels change by ~1e-3 px
+    over a stretch along the scan) and interpolates linearly in ``y`` between
+    the recorded rows; the samples of two kernels correspond (equal times),
+    so interpolating them sample by sample interpolates the track.
+
+    Parameters
+    ----------
+    kernels : astropy.table.Table
+        The ``smear_kernels`` product (see :func:`smear_kernels`).
+    x, y : float
+        Night rectified pixel position.
+
+    Returns
+    -------
+    dx, dy : ndarray, shape (n_samples,)
+        Offsets of the equal-time samples from the star's centroid, rectified
+        pixels.  A star's image is the seeing PSF averaged over
+        ``(x + dx, y + dy)``.
+    """
+    xs = np.asarray(kernels["x"], dtype=float)
+    column = xs[np.argmin(np.abs(xs - x))]
+    rows = kernels[xs == column]
+    rows = rows[np.argsort(np.asarray(rows["y"], dtype=float))]
+    ys = np.asarray(rows["y"], dtype=float)
+    k = int(np.clip(np.searchsorted(ys, y) - 1, 0, max(len(ys) - 2, 0)))
+    if len(ys) == 1:
+        return np.asarray(rows["dx"][0]), np.asarray(rows["dy"][0])
+    t = float(np.clip((y - ys[k]) / (ys[k + 1] - ys[k]), 0.0, 1.0))
+    dx = (1 - t) * np.asarray(rows["dx"][k]) + t * np.asarray(rows["dx"][k + 1])
+    dy = (1 - t) * np.asarray(rows["dy"][k]) + t * np.asarray(rows["dy"][k + 1])
+    return dx, dy
 
 
 def _kernel_positions(x_start: int, x_stop: int, n_y: int, step: int) -> tuple[np.ndarray, ...]:
