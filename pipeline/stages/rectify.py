@@ -39,7 +39,7 @@ Smear kernels
     The smear kernel (the star's track relative to its centroid, in rectified
     pixels) is recorded on a coarse grid (:func:`smear_kernels`), so that
     detection can model a star as the seeing PSF averaged over the kernel's
-    samples.
+    samples; :func:`smear_kernel_at` interpolates it to any position.
 Deconvolution (optional)
     A band-wise regularised (Wiener-type) filter that replaces the smear
     kernel with a small round Gaussian (:mod:`pipeline.stages._deconvolve`).
@@ -50,6 +50,16 @@ Stretches
     ``X`` is :meth:`RectifiedFrame.column_of_row`: adjacent stretches tile the
     night's grid without gap or overlap.  The overlap rows only feed the
     interpolation (and the deconvolution).
+
+Measured (``tests/test_rectify.py``; 256-column, 1024-row test chip at 6.2
+arcsec per pixel, noise-free stars):  star centroids land on their
+catalogue positions through the product's WCS to 0.0005 px rms or better at
+latitudes 0, +30, +50 and -31; flux is kept to 3e-4; stars of equal
+declination share a row to 0.0013 px; the strip position each pixel samples
+matches the exact model to < 0.001 px; stretches tile to 1e-9 e-.  Speed
+(``benchmarks/bench_rectify.py``, one core, 4096 x 4096 stretch): ~25-30
+Mpx/s for the resampling, ~20 Mpx/s for the whole stage, in plain NumPy
+(no compiled extension needed).
 """
 
 from __future__ import annotations
