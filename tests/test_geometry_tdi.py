@@ -317,3 +317,19 @@ def test_invalid_inputs():
     u_pix, v_pix = model.focal_plane(ra, dec + 5.0, 30.0)
     assert np.isnan(u_pix) and np.isnan(v_pix)
     assert np.all(np.isnan(model.crossing_window(ra, dec + 5.0)))
+
+
+def test_crossing_window_after_early_in_span():
+    """``after`` far before the crossing (even before the modelled span less one
+    crossing) still finds the crossing: regression for a NaN when the search
+    started before the span.  Self-consistency check."""
+    site = Site(latitude=41.65, longitude=-1.02, height=1350.0, pressure=865.0, temperature=4.0)
+    camera = Camera(n_columns=1024, tdi_rows=4096, pixel_size=15.0, focal_length=6.0)
+    model = TDIModel(site, camera, Time("2026-10-15T23:50:00", scale="utc"), 800.0)
+    ra, dec = model.sky_from_strip(np.array([5000.0]), np.array([512.0]))
+    reference = model.crossing_window(ra, dec)
+    for after in (-0.8 * abs(model.t_range[0]), model.t_range[0] + 1.0):
+        t_enter, t_exit = model.crossing_window(ra, dec, after=after)
+        # identical solve, so agreement to rounding (1e-9 s)
+        np.testing.assert_allclose(t_enter, reference[0], atol=1e-9)
+        np.testing.assert_allclose(t_exit, reference[1], atol=1e-9)

@@ -228,7 +228,9 @@ class TDIModel:
             tilt_north=camera.tilt_north,
             node_spacing_s=node_spacing_s,
         )
-        self._drift = self._drift_rate(self.duration / 2.0)
+        # The star used to measure the drift must stay on the mapped field
+        # during the difference step: a small chip crosses in well under 1 s.
+        self._drift = self._drift_rate(self.duration / 2.0, h=min(1.0, rough_crossing / 8.0))
         if not self._drift > 0:
             raise ValueError(
                 "the model gives no forward drift along the rows; check camera.rotation."
@@ -453,7 +455,8 @@ class TDIModel:
         # star's; t_b is a whole crossing early so that slow (long) crossings
         # ending just after ``after`` are not missed; early ones are moved on
         # by a sidereal period below.
-        t_b = after - self._N / rate0
+        # (clamped to the modelled span: the axis is NaN before it)
+        t_b = max(after - self._N / rate0, self.t_range[0])
         ra0_b, _ = self.axis.axis_icrs(np.array([t_b]))
         lag = np.mod(np.radians(ra) - ra0_b[0], 2.0 * np.pi) / self._ra_rate
         t_mid = self._solve_u(ra, dec, t_b + lag, self._N / 2.0, rate0)
