@@ -228,9 +228,10 @@ class TDIModel:
             tilt_north=camera.tilt_north,
             node_spacing_s=node_spacing_s,
         )
-        # The star used to measure the drift must stay on the mapped field
-        # during the difference step: a small chip crosses in well under 1 s.
-        self._drift = self._drift_rate(self.duration / 2.0, h=min(1.0, rough_crossing / 8.0))
+        # Time step of the numerical drift rates: a star must stay on the
+        # mapped field during it, and a small chip is crossed in well under 1 s.
+        self._h = min(1.0, rough_crossing / 8.0)
+        self._drift = self._drift_rate(self.duration / 2.0, h=self._h)
         if not self._drift > 0:
             raise ValueError(
                 "the model gives no forward drift along the rows; check camera.rotation."
@@ -461,7 +462,7 @@ class TDIModel:
         lag = np.mod(np.radians(ra) - ra0_b[0], 2.0 * np.pi) / self._ra_rate
         t_mid = self._solve_u(ra, dec, t_b + lag, self._N / 2.0, rate0)
         for _ in range(2):
-            h = 1.0
+            h = self._h
             up, _ = self.focal_plane(ra, dec, t_mid + h)
             um, _ = self.focal_plane(ra, dec, t_mid - h)
             rate = (up - um) / (2.0 * h)
