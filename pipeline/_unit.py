@@ -38,7 +38,7 @@ from pipeline._store import (
     write_products,
     write_sidecar,
 )
-from pipeline.stages.base import BLOCK_INDEX, Stage, StageContext
+from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, Stage, StageContext
 
 __all__ = ["InputSpec", "UnitOutcome", "UnitTask", "execute_unit", "failed_outcome"]
 
@@ -105,6 +105,7 @@ class UnitOutcome:
     traceback: str | None = None
     records: list[tuple[str, int, str]] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    problems: list[str] = field(default_factory=list)
 
 
 def failed_outcome(task: UnitTask, error: str, tb: str | None = None) -> UnitOutcome:
@@ -178,16 +179,24 @@ def _summarize_warnings(caught: list[warnings.WarningMessage]) -> list[str]:
     return [text if n == 1 else f"{text} (x{n})" for text, n in counts.items()]
 
 
-def _check_products(task: UnitTask, products: Any) -> dict[str, Any]:
+def _check_products(task: UnitTask, products: Any) -> tuple[dict[str, Any], list[str]]:
+    """The products to store and the problems the stage reported (see PROBLEMS)."""
     if not isinstance(products, Mapping):
         raise TypeError(
             f"Stage {task.stage.name!r} returned {type(products).__name__}; a stage must "
             "return a dict from product name to object."
         )
+    products = dict(products)
+    problems = products.pop(PROBLEMS, None) or []
+    if isinstance(problems, str) or not all(isinstance(p, str) for p in problems):
+        raise TypeError(
+            f"Stage {task.stage.name!r} returned {PROBLEMS!r} as {problems!r}; it must be a "
+            "list of one-line strings."
+        )
     if task.stage.defines_rows:
         check_block_index(products.get(BLOCK_INDEX), task.stage.name)
     check_products(products)  # before the unit's old products are removed
-    return dict(products)
+    return products, [" ".join(p.split()) for p in problems]
 
 
 def execute_unit(task: UnitTask) -> UnitOutcome:
@@ -200,7 +209,7 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
                 products = task.stage.run(inputs=inputs, options=task.options, context=task.context)
-            products = _check_products(task, products)
+            products, problems = _check_products(task, products)
             t2 = time.perf_counter()
             clean_unit(task.unit_dir)
             entries = write_products(task.unit_dir, products, _fits_cards(task))
@@ -226,6 +235,7 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
                     "write_s": round(time.perf_counter() - t2, 4),
                 },
                 "warnings": _summarize_warnings(caught),
+                "problems": problems,
             }
             write_sidecar(task.unit_dir, record)
         except Exception as exc:  # reported to the runner, which logs it and goes on
@@ -246,4 +256,5 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
         output_hash=record["output_hash"],
         records=list(records),
         warnings=record["warnings"],
+        problems=problems,
     )

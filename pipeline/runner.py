@@ -130,7 +130,9 @@ class UnitResult:
     """What a run did with one unit.
 
     ``status`` is ``'ran'``, ``'skipped'`` (up to date), ``'failed'`` or
-    ``'blocked'`` (inputs missing).
+    ``'blocked'`` (inputs missing).  ``problems`` are the one-line problems
+    with its input that the stage reported (see
+    :data:`pipeline.stages.base.PROBLEMS`), also for a skipped unit.
     """
 
     stage: str
@@ -138,6 +140,7 @@ class UnitResult:
     status: str
     reason: str = ""
     seconds: float = 0.0
+    problems: tuple[str, ...] = ()
 
 
 @dataclass
@@ -150,13 +153,18 @@ class RunReport:
 
     @property
     def ok(self) -> bool:
-        """True if no unit failed or was blocked."""
-        return not self.problems
+        """True if no unit failed or was blocked and no stage reported a problem."""
+        return not self.problems and not self.flagged
 
     @property
     def problems(self) -> list[UnitResult]:
         """Failed and blocked units."""
         return [r for r in self.results if r.status in ("failed", "blocked")]
+
+    @property
+    def flagged(self) -> list[UnitResult]:
+        """Units whose stage reported problems with its input (partial failures)."""
+        return [r for r in self.results if r.problems]
 
     def count(self, status: str) -> int:
         """Number of units with ``status``."""
@@ -164,12 +172,18 @@ class RunReport:
 
     def format(self) -> str:
         """A human-readable summary."""
-        lines = [
+        summary = (
             f"night {self.night}: {self.count('ran')} units ran, {self.count('skipped')} up "
             f"to date, {self.count('failed')} failed, {self.count('blocked')} blocked"
-        ]
+        )
+        n_problems = sum(len(r.problems) for r in self.results)
+        if n_problems:
+            summary += f", {n_problems} problem{'s' if n_problems > 1 else ''} in the input"
+        lines = [summary]
         for result in sorted(self.problems, key=lambda r: (r.status, r.stage, r.unit)):
             lines.append(f"  {result.status}: {result.stage}/{result.unit}: {result.reason}")
+        for result in self.flagged:
+            lines.extend(f"  problem: {result.stage}/{result.unit}: {p}" for p in result.problems)
         if self.stale_downstream:
             first = next(iter(self.stale_downstream))
             lines.append(f"stale products downstream (rerun with --from {first}):")
@@ -183,12 +197,14 @@ class StageStatus:
     """State of every unit of one stage: ``unit -> (state, reason)``.
 
     States: ``'done'``, ``'stale'``, ``'missing'``, ``'failed'``, ``'orphan'``
-    (a stretch folder outside the current stretch plan).
+    (a stretch folder outside the current stretch plan).  ``problems`` holds
+    the problems with the input that the stage reported, per unit that has any.
     """
 
     name: str
     scope: str
     units: dict[str, tuple[str, str]] = field(default_factory=dict)
+    problems: dict[str, list[str]] = field(default_factory=dict)
 
     def ids(self, state: str) -> list[str]:
         """Unit ids in ``state``."""
@@ -222,6 +238,9 @@ class NightStatus:
                     by_reason.setdefault((state, reason), []).append(unit)
             for (state, reason), ids in sorted(by_reason.items()):
                 lines.append(f"  {stage.name} {state}: {format_ids(ids)}: {reason}")
+        for stage in self.stages:
+            for unit, problems in stage.problems.items():
+                lines.extend(f"  {stage.name} problem: {unit}: {p}" for p in problems)
         return "\n".join(lines)
 
 
@@ -260,7 +279,8 @@ def run_night(
     Returns
     -------
     RunReport
-        ``report.ok`` is False if a unit failed or was blocked; the failures
+        ``report.ok`` is False if a unit failed or was blocked, or a stage
+        reported problems with its input (``report.flagged``); the failures
         are also recorded in the store (``zdrift status`` shows them).
 
     Raises
@@ -316,7 +336,8 @@ def _run_stage(
             continue
         state, reason = night.state(stage, stretch)
         if state == "done" and not force:
-            results.append(UnitResult(stage.name, unit, "skipped"))
+            problems = tuple(night.sidecar(stage, unit).get("problems", ()))
+            results.append(UnitResult(stage.name, unit, "skipped", problems=problems))
             continue
         if reason.startswith("upstream"):
             log.warning(
@@ -345,7 +366,20 @@ def _record_outcome(
         log.warning("%s/%s: %s", outcome.stage, outcome.unit, text)
     if outcome.ok:
         log.info("%s/%s done in %.2f s", outcome.stage, outcome.unit, outcome.seconds)
-        return UnitResult(outcome.stage, outcome.unit, "ran", seconds=outcome.seconds)
+        if outcome.problems:
+            log.warning(
+                "%s/%s reported %d problem(s) with its input",
+                outcome.stage,
+                outcome.unit,
+                len(outcome.problems),
+            )
+        return UnitResult(
+            outcome.stage,
+            outcome.unit,
+            "ran",
+            seconds=outcome.seconds,
+            problems=tuple(outcome.problems),
+        )
     write_failure(
         night.unit_dir(stage, outcome.unit),
         {
@@ -383,7 +417,11 @@ def night_status(config: Config) -> NightStatus:
     for stage in config.graph:
         status = StageStatus(stage.name, stage.scope)
         for stretch in night.units(stage):
-            status.units[unit_id(stretch)] = night.state(stage, stretch)
+            unit = unit_id(stretch)
+            status.units[unit] = night.state(stage, stretch)
+            record = night.sidecar(stage, unit)
+            if status.units[unit][0] != "failed" and record and record.get("problems"):
+                status.problems[unit] = list(record["problems"])
         folder = night.root / stage.name
         if stage.scope == "stretch" and night.index is not None and folder.is_dir():
             for path in sorted(folder.iterdir()):

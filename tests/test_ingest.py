@@ -232,15 +232,16 @@ def test_broken_night_indexes_every_good_block(tmp_path):
     assert not night.ok
 
 
-def test_broken_night_through_the_runner(tmp_path):
-    """The runner on a simulated night with broken files: ingest, columns, calibrate.
+def test_broken_night_through_the_command_line(tmp_path, capsys):
+    """``zdrift run`` on a simulated night with broken files: ingest, columns, calibrate.
 
-    Good blocks are indexed and calibrated; each broken file is reported in one
-    line in the ingest report; the rows of rejected and missing blocks are GAP.
+    Good blocks are indexed and calibrated; each broken file and each gap is
+    reported in one line, in the ingest report and in the run summary; the
+    rows of rejected and missing blocks are GAP; the exit status is 1 (a
+    partial failure), also on a rerun that finds everything up to date.
     """
-    from pipeline.config import load_config
+    from pipeline.cli import main
     from pipeline.geometry.instrument import Camera, Site
-    from pipeline.runner import run_night
     from pipeline.simulate import SimulationOptions, simulate_night, write_night
 
     site = Site(20.0, -100.0, 2000.0, name="fictional test site")
@@ -274,9 +275,27 @@ stages:
   columns: {min_blocks: 4}
 """
     )
-    config = load_config(tmp_path / "night.yaml")
-    report = run_night(config, to_stage="calibrate")
-    assert report.ok  # every unit ran; the bad files are reported by ingest
+    night = str(tmp_path / "night.yaml")
+    assert main(["run", night, "--to", "calibrate"]) == 1
+    summary = capsys.readouterr().out.splitlines()
+    # Every unit ran (none failed or was blocked); the input had 6 problems.
+    assert summary[0] == (
+        "night broken: 10 units ran, 0 up to date, 0 failed, 0 blocked, 6 problems in the input"
+    )
+    problems = [line for line in summary if line.startswith("  problem: ingest/night: ")]
+    assert len(problems) == 6 == len(summary) - 1
+    bad = [line.split(": ")[2] for line in problems]
+    assert bad == [
+        "rejected block_0001.fits", "rejected block_0003.fits", "rejected block_notes.fits",
+        "block_0002.fits", "block_0004.fits", "block_0006.fits",
+    ]  # fmt: skip
+    # A rerun has nothing to do but still reports the problems and fails.
+    assert main(["run", night, "--to", "calibrate"]) == 1
+    again = capsys.readouterr().out.splitlines()
+    assert again[0].startswith("night broken: 0 units ran, 10 up to date")
+    assert again[1:] == summary[1:]
+    assert main(["status", night]) == 0
+    assert sum(" problem: night: " in line for line in capsys.readouterr().out.splitlines()) == 6
     products = tmp_path / "out" / "broken"
     ingest = json.loads((products / "ingest" / "night" / "ingest_report.json").read_text())
     assert not ingest["ok"] and ingest["n_blocks"] == 5  # blocks 0, 2, 4, 6, 7

@@ -16,6 +16,7 @@ import importlib.util
 
 from pipeline.stages.base import (
     BLOCK_INDEX,
+    PROBLEMS,
     RAW_FILES,
     RAW_ROWS,
     RawFile,
@@ -29,6 +30,7 @@ from pipeline.stages.base import (
 __all__ = [
     "BLOCK_INDEX",
     "GRAPH",
+    "PROBLEMS",
     "RAW_FILES",
     "RAW_ROWS",
     "STAGE_MODULES",

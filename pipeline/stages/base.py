@@ -36,7 +36,13 @@ The calling convention is::
     A :class:`StageContext`: site, camera, run settings, the night's name, the
     stretch being processed and the whole stretch plan.
 
-The return value is a ``dict`` from product name to object.  The runner stores
+The return value is a ``dict`` from product name to object.  One name is
+reserved: under :data:`PROBLEMS` a stage may return a list of one-line
+strings, the things wrong with its input that it worked around (a rejected
+file, a gap).  They are not a product: the runner records them in the unit's
+provenance, lists them in the run summary and counts the unit as a partial
+failure (``zdrift run`` exits 1), on every later run too while the unit stays
+up to date.  The runner stores
 ``numpy.ndarray`` as FITS images, ``astropy.io.fits`` HDUs/HDU lists as FITS
 (keeping their headers, e.g. a WCS), ``astropy.table.Table``/``QTable`` as
 ECSV, and ``dict``/``list`` of JSON-able values as JSON; it reads them back as
@@ -73,6 +79,7 @@ if TYPE_CHECKING:
 __all__ = [
     "BLOCK_INDEX",
     "BLOCK_INDEX_COLUMNS",
+    "PROBLEMS",
     "RAW_FILES",
     "RAW_ROWS",
     "RawFile",
@@ -87,6 +94,8 @@ __all__ = [
 RAW_FILES = "raw_files"
 #: Pseudo-input (stretch scope): the stretch's raw rows, margins included.
 RAW_ROWS = "raw_rows"
+#: Reserved key of a stage's return value: one-line problems with its input.
+PROBLEMS = "problems"
 #: Name of the product that defines the night's rows (see module docstring).
 BLOCK_INDEX = "block_index"
 #: Columns the block index must have.

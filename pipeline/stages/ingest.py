@@ -45,7 +45,7 @@ from pipeline.stages._ingest_header import (
     parse_block_header,
     parse_section,
 )
-from pipeline.stages.base import BLOCK_INDEX, RAW_FILES, RawFile, Stage
+from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, RawFile, Stage
 
 __all__ = [
     "KEYWORDS",
@@ -562,6 +562,9 @@ def _run(*, inputs, options: IngestOptions, context) -> dict[str, Any]:
             "rejected": night.rejected,
             "problems": night.problems,
         },
+        # Rejected files and continuity problems make the run a partial
+        # failure (exit status 1) while the good blocks are still reduced.
+        PROBLEMS: [f"rejected {line}" for line in night.rejected] + night.problems,
     }
 
 
