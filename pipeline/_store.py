@@ -28,6 +28,7 @@ from typing import Any
 import numpy as np
 from astropy.io import fits
 from astropy.table import QTable, Table
+from astropy.table.meta import get_header_from_yaml
 
 __all__ = [
     "FAILED_NAME",
@@ -232,8 +233,35 @@ def read_product(path: Path, entry: Mapping[str, Any]) -> Any:
             return fits.HDUList([hdu.copy() for hdu in hdul])
     if kind == "table":
         cls = QTable if entry.get("class") == "QTable" else Table
-        return cls.read(path, format="ascii.ecsv")
+        return _read_ecsv(path, cls)
     return json.loads(path.read_text(encoding="utf-8"))
+
+
+def _read_ecsv(path: Path, cls: type[Table]) -> Table:
+    """Read an ECSV table; also one with no rows and vector columns.
+
+    astropy (up to 8.0 at least) writes a valid ECSV file for a table with no
+    rows and a vector column (subtype ``'float32[5]'``) but cannot read it
+    back ("shape mismatch"); such a table is rebuilt from the file's header.
+    """
+    try:
+        return cls.read(path, format="ascii.ecsv")
+    except ValueError:
+        lines = path.read_text(encoding="utf-8").splitlines()
+        body = [line for line in lines if not line.startswith("#")]
+        if len(body) > 1:
+            raise  # the table has rows: a real error
+        # Lines after '# %ECSV 1.0' and '# ---' hold the YAML header.
+        header = get_header_from_yaml(line[2:] for line in lines[2:] if line.startswith("# "))
+        table = cls(meta=header.get("meta") or {})
+        for column in header["datatype"]:
+            dtype, _, shape = column.get("subtype", column["datatype"]).partition("[")
+            dims = tuple(int(n) for n in shape.rstrip("]").split(",")) if shape else ()
+            dtype = "U1" if dtype == "string" else dtype
+            table[column["name"]] = np.zeros((0, *dims), dtype=dtype)
+            if column.get("unit"):
+                table[column["name"]].unit = column["unit"]
+        return table
 
 
 def read_products(unit_dir: Path, sidecar: Mapping[str, Any]) -> dict[str, Any]:
