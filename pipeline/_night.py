@@ -156,10 +156,19 @@ class NightStore:
                 if self.index is None:
                     return hashes, specs, self.no_index_reason()
                 lo, hi = stretch.lo, stretch.hi
-                hashes[name] = blocks_fingerprint(self.raw_dir, self.index, lo, hi)
+                flip = self.context.camera.flip_rows
+                hashes[name] = blocks_fingerprint(self.raw_dir, self.index, lo, hi, flip_rows=flip)
                 subset = self.index[overlapping_blocks(self.index, lo, hi)]
                 specs.append(
-                    InputSpec(name, "raw_rows", raw_dir=self.raw_dir, index=subset, lo=lo, hi=hi)
+                    InputSpec(
+                        name,
+                        "raw_rows",
+                        raw_dir=self.raw_dir,
+                        index=subset,
+                        lo=lo,
+                        hi=hi,
+                        flip_rows=flip,
+                    )
                 )
                 continue
             upstream = self.stages[name]

@@ -139,16 +139,21 @@ def _overlapping(index: Table, lo: int, hi: int) -> list[tuple[str, int, int, in
     return [(str(r["file"]), int(r["hdu"]), int(r["row_start"]), int(r["n_rows"])) for r in rows]
 
 
-def blocks_fingerprint(raw_dir: Path, index: Table, lo: int, hi: int) -> str:
+def blocks_fingerprint(
+    raw_dir: Path, index: Table, lo: int, hi: int, *, flip_rows: bool = False
+) -> str:
     """Hash of what :func:`read_rows` would read for rows ``[lo, hi)``."""
     blocks = _overlapping(index, lo, hi)
-    return hash_json(
-        {"rows": [lo, hi], "blocks": [[*_stat_key(raw_dir, b[0]), *b[1:]] for b in blocks]}
-    )
+    key = {"rows": [lo, hi], "blocks": [[*_stat_key(raw_dir, b[0]), *b[1:]] for b in blocks]}
+    if flip_rows:  # only then, so that the usual hashes stay what they were
+        key["flip_rows"] = True
+    return hash_json(key)
 
 
-def read_rows(raw_dir: Path, index: Table, lo: int, hi: int) -> np.ndarray:
-    """Assemble night rows ``[lo, hi)`` from the raw blocks.
+def read_rows(
+    raw_dir: Path, index: Table, lo: int, hi: int, *, flip_rows: bool = False
+) -> np.ndarray:
+    """Assemble night rows ``[lo, hi)`` from the raw blocks, in readout order.
 
     Parameters
     ----------
@@ -158,12 +163,18 @@ def read_rows(raw_dir: Path, index: Table, lo: int, hi: int) -> np.ndarray:
         Block index (columns ``file``, ``hdu``, ``row_start``, ``n_rows``).
     lo, hi : int
         Night rows to read (scan axis).
+    flip_rows : bool
+        Camera ``flip_rows``: each block stores its rows last-read first.
+        Its rows are then reversed, block by block, so that night row
+        ``row_start + k`` is the ``k``-th row read out (DATE-OBS stays the
+        time of the first row read, as the raw data contract says).
 
     Returns
     -------
     numpy.ndarray of float32, shape (hi - lo, n_columns_in_file)
-        Rows as stored (overscan included), BZERO/BSCALE applied.  Rows no
-        block covers are NaN.  A block's later rows win where blocks overlap.
+        Rows in readout order, columns as stored (overscan included),
+        BZERO/BSCALE applied.  Rows no block covers are NaN.  A block's later
+        rows win where blocks overlap.
     """
     out = None
     for name, hdu_index, start, n_rows in _overlapping(index, lo, hi):
@@ -176,7 +187,12 @@ def read_rows(raw_dir: Path, index: Table, lo: int, hi: int) -> np.ndarray:
                     f"Raw file {name!r} has {hdu.header['NAXIS2']} rows but the block index "
                     f"says {n_rows}; rerun the stage that builds the block index."
                 )
-            rows = np.asarray(hdu.section[r0 - start : r1 - start, :], dtype=np.float32)
+            k0, k1 = r0 - start, r1 - start  # rows in readout order within the block
+            if flip_rows:  # readout row k is stored at n_rows - 1 - k
+                section = hdu.section[n_rows - k1 : n_rows - k0, :][::-1]
+            else:
+                section = hdu.section[k0:k1, :]
+            rows = np.asarray(section, dtype=np.float32)
         if out is None:
             out = np.full((hi - lo, n_columns), np.nan, dtype=np.float32)
         elif out.shape[1] != n_columns:

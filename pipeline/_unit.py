@@ -50,7 +50,8 @@ class InputSpec:
     ``kind`` is ``'unit'`` (one upstream unit: ``units`` has one
     ``(folder, sidecar)``), ``'units'`` (a night-scoped consumer of a
     stretch-scoped stage: one entry per stretch), ``'raw_files'`` (``names``
-    below ``raw_dir``) or ``'raw_rows'`` (rows ``[lo, hi)`` via ``index``).
+    below ``raw_dir``) or ``'raw_rows'`` (rows ``[lo, hi)`` via ``index``, each
+    block's rows reversed if ``flip_rows``).
     """
 
     name: str
@@ -61,6 +62,7 @@ class InputSpec:
     index: Table | None = None
     lo: int = 0
     hi: int = 0
+    flip_rows: bool = False
 
     def load(self) -> Any:
         """Read the input from the product store or the raw files."""
@@ -72,7 +74,7 @@ class InputSpec:
         if self.kind == "raw_files":
             return read_raw_files(self.raw_dir, self.names)
         if self.kind == "raw_rows":
-            return read_rows(self.raw_dir, self.index, self.lo, self.hi)
+            return read_rows(self.raw_dir, self.index, self.lo, self.hi, flip_rows=self.flip_rows)
         raise ValueError(f"Unknown input kind {self.kind!r}.")
 
 

@@ -380,6 +380,25 @@ def test_solve_columns_needs_input():
         solve_columns([])
 
 
+def test_a_stretch_without_usable_rows_gives_an_empty_summary():
+    """Regression: a stretch whose rows are all left out (gaps, or the start-of-scan
+    ramp of a night no longer than TDIROWS) crashed in the block statistics."""
+    adu, overscan, _ = _tdi_raw(np.random.default_rng(8), n_rows=512, noise=False)
+    rows = np.arange(512)
+    kwargs = {"gain": GAIN, "read_noise": READ_NOISE, "saturation": 65535.0}
+    empty = column_statistics(
+        adu, overscan, rows, rows * 0.05, use_rows=np.zeros(512, bool), **kwargs
+    )
+    assert len(empty) == 0 and empty["level"].shape == (0, adu.shape[1])
+    assert empty["block"].dtype == np.int64
+    with pytest.raises(ValueError, match=r"no stretch had a row usable.*start_ramp=.none."):
+        solve_columns([empty, empty])
+    # Empty stretches merge with full ones.
+    full = column_statistics(adu, overscan, rows, rows * 0.05, block_rows=32, **kwargs)
+    merged = solve_columns([empty, full])
+    assert merged.meta["n_blocks"] == 16
+
+
 def test_no_warnings_on_all_nan_block():
     electrons = np.full((256, 3), np.nan, dtype=np.float32)
     with warnings.catch_warnings():

@@ -448,6 +448,15 @@ def test_demo_readme_quotes_the_config():
     readme = (DEMO / "README.md").read_text()
     assert DEMO_CONFIG.read_text() in readme
     assert "python -m pipeline.simulate configs/simulate_demo.yaml" in readme
+    # The reduction config of the demo night is quoted too, and reduces the
+    # very night the simulation config writes.
+    reduce = REPO / "configs" / "demo.yaml"
+    assert reduce.read_text() in readme and "zdrift run configs/demo.yaml" in readme
+    from pipeline.config import load_config
+
+    night = load_config(reduce).night
+    assert Path(night.raw_dir).resolve() == DEMO.resolve()
+    assert Path(night.output_dir).resolve() == REPO / "demo_products"
 
 
 def test_demo_night_regenerates_from_its_config():

@@ -108,6 +108,8 @@ def summarize_columns(
     block = rows // int(block_rows)
     starts = np.flatnonzero(np.r_[True, block[1:] != block[:-1]])
     stops = np.r_[starts[1:], n_rows]
+    if n_rows == 0:  # all rows in gaps or in the start-of-scan ramp: no blocks
+        starts = stops = starts[:0]
     out = {name: [] for name in ("block", "n_rows", "time", "read_noise")}
     level, scatter, count = [], [], []
     for start, stop in zip(starts, stops, strict=True):
@@ -121,7 +123,15 @@ def summarize_columns(
         level.append(lev)
         scatter.append(sca)
         count.append(cnt)
-    table = Table(out)
+    table = Table(
+        [
+            np.array(out["block"], dtype=np.int64),
+            np.array(out["n_rows"], dtype=np.int64),
+            np.array(out["time"], dtype=np.float64),
+            np.array(out["read_noise"], dtype=np.float64),
+        ],
+        names=list(out),
+    )
     table["level"] = np.array(level, dtype=np.float32).reshape(-1, n_columns)
     table["scatter"] = np.array(scatter, dtype=np.float32).reshape(-1, n_columns)
     table["n_pixels"] = np.array(count, dtype=np.int32).reshape(-1, n_columns)
@@ -167,7 +177,7 @@ def solve_columns(
     hot_sigma: float = 5.0,
     min_blocks: int = 8,
     clip: float = 4.0,
-    max_flat_error: float = 0.01,
+    max_flat_error: float = 0.002,
 ) -> Table:
     """Solve each column's response and additive level over the night.
 
@@ -199,7 +209,10 @@ def solve_columns(
         If the sky level changes too little along the night to give the
         responses to this precision (median standard error), the additive
         levels are set to zero and the responses are the ratio of column to sky
-        level, with a :class:`~pipeline.exceptions.CalibrationWarning`.
+        level, with a :class:`~pipeline.exceptions.CalibrationWarning`.  The
+        default, 0.2 %, is the response precision the calibrate stage is
+        required to reach; a column's additive level then only enters as
+        ``level / sky`` in its response.
 
     Returns
     -------
@@ -311,7 +324,12 @@ def _merge_blocks(summaries: Table | list[Table]) -> Table:
         )
     table = vstack(summaries, metadata_conflicts="silent")
     if len(table) == 0:
-        raise ValueError("summaries hold no block; the stretches had no rows.")
+        raise ValueError(
+            "summaries hold no block: no stretch had a row usable for the column solve "
+            "(rows in gaps and the first TDIROWS rows after clocking started are left out; "
+            "if clocking started before the first block, say so with the ingest option "
+            "start_ramp='none')."
+        )
     table.sort(["block", "n_rows"], reverse=True)
     table = unique(table, keys="block", keep="first")
     table.sort("block")

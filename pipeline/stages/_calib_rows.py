@@ -1,7 +1,8 @@
 """Glue between the runner's raw rows and the calibrate functions.
 
-The runner hands a stretch-scoped stage the stored rows ``[lo, hi)`` of the
-night (overscan included, NaN where no block covers a row) and the ingest
+The runner hands a stretch-scoped stage the raw rows ``[lo, hi)`` of the
+night in readout order (overscan included, NaN where no block covers a row)
+and the ingest
 stage's block index; this module splits them into image and overscan columns
 and gathers the per-row header values, run labels and ramp rows that
 :func:`pipeline.stages.calibrate.calibrate_stretch` and
@@ -31,7 +32,7 @@ class StretchRows:
     night_row: np.ndarray
     time: np.ndarray
     segment: np.ndarray
-    rows_since_start: np.ndarray | None
+    rows_since_start: np.ndarray
     gain: np.ndarray
     read_noise: np.ndarray
     saturation: np.ndarray
@@ -50,37 +51,27 @@ def stretch_rows(
     hi: int,
     *,
     flip_columns: bool = False,
-    flip_rows: bool = False,
-    start_ramp: str = "night",
 ) -> StretchRows:
-    """Split a stretch's stored rows and look up its per-row facts.
+    """Split a stretch's raw rows and look up its per-row facts.
 
     Parameters
     ----------
     raw_rows : ndarray, shape (hi - lo, NAXIS1)
-        The runner's ``raw_rows`` input.
+        The runner's ``raw_rows`` input: rows in readout order (the runner has
+        applied ``camera.flip_rows``), columns as stored.
     index : astropy.table.Table
         The ingest stage's ``block_index``.
     lo, hi : int
         Night rows of ``raw_rows``.
     flip_columns : bool
         Camera ``flip_columns``: reverse the image columns.
-    flip_rows : bool
-        Camera ``flip_rows``; not supported here (each block's rows would have
-        to be reversed when the runner reads them).
-    start_ramp : {'night', 'run', 'none'}
-        Where clocking started (see ``CalibrateOptions.start_ramp``).
 
     Returns
     -------
     StretchRows
+        ``rows_since_start`` comes from the index's ``clock_row`` (the ingest
+        option ``start_ramp``).
     """
-    if flip_rows:
-        raise StageError(
-            "camera.flip_rows is set, but the runner assembles rows as stored; reversing "
-            "each block's rows on reading is not supported yet. Rewrite the blocks in "
-            "readout order or unset flip_rows."
-        )
     facts = describe_rows(index, lo, hi)
     covered = facts["covered"]
     blocks = index[(index["row_start"] < hi) & (index["row_start"] + index["n_rows"] > lo)]
@@ -96,26 +87,19 @@ def stretch_rows(
     for name in ("gain", "read_noise", "saturation"):
         values = facts[name]
         fill[name] = np.where(covered, values, np.nanmedian(values[covered]))
-    run, run_row = facts["run"], facts["run_row"]
-    if start_ramp == "night":
-        rows_since_start = np.where(run == 0, run_row, np.iinfo(np.int64).max)
-    elif start_ramp == "run":
-        rows_since_start = np.where(covered, run_row, np.iinfo(np.int64).max)
-    else:
-        rows_since_start = None
     return StretchRows(
         image=image,
         overscan=overscan,
         night_row=facts["night_row"],
         time=facts["time"],
-        segment=run,
-        rows_since_start=rows_since_start,
+        segment=facts["run"],
+        rows_since_start=facts["rows_since_start"],
         tdi_rows=int(facts["tdi_rows"].max()),
         **fill,
     )
 
 
-def stretch_rows_for_stage(inputs, context, start_ramp: str = "night") -> StretchRows:
+def stretch_rows_for_stage(inputs, context) -> StretchRows:
     """:func:`stretch_rows` from a stretch-scoped stage's ``inputs`` and ``context``."""
     stretch = context.stretch
     return stretch_rows(
@@ -124,6 +108,4 @@ def stretch_rows_for_stage(inputs, context, start_ramp: str = "night") -> Stretc
         stretch.lo,
         stretch.hi,
         flip_columns=context.camera.flip_columns,
-        flip_rows=context.camera.flip_rows,
-        start_ramp=start_ramp,
     )

@@ -23,10 +23,13 @@ The calling convention is::
       raw file of the night, with its header (or the reason it is unreadable);
     * :data:`RAW_ROWS` (stretch scope) -> a ``float32`` array of shape
       ``(context.stretch.hi - context.stretch.lo, n_columns_in_file)`` holding
-      night rows ``[lo, hi)`` (the stretch with its overlap margins) as stored
-      in the raw blocks, overscan columns included, BZERO/BSCALE applied.  Axis
-      0 is the scan axis (time, row 0 read first).  Night rows that no block
-      covers (gaps) are NaN.  The runner assembles it from the block index.
+      night rows ``[lo, hi)`` (the stretch with its overlap margins) from the
+      raw blocks, overscan columns included, BZERO/BSCALE applied.  Axis 0 is
+      the scan axis in readout order (row 0 read first): with
+      ``camera.flip_rows`` the runner reverses each block's stored rows.
+      Columns are as stored (``camera.flip_columns`` is the stage's business,
+      since only it knows DATASEC).  Night rows that no block covers (gaps)
+      are NaN.  The runner assembles it from the block index.
 ``options``
     An instance of ``stage.options`` (a pydantic model), validated from the
     ``stages.<name>`` section of the config.  Its field names mirror the

@@ -37,7 +37,7 @@ from __future__ import annotations
 import logging
 import warnings
 from dataclasses import dataclass
-from typing import Any, Literal
+from typing import Any
 
 import numpy as np
 from astropy.table import Table
@@ -542,18 +542,18 @@ class ColumnSolveOptions(_Options):
     hot_sigma: float = Field(5.0, gt=0, description="Robust spreads above the median column.")
     min_blocks: int = Field(8, ge=3)
     clip: float = Field(4.0, gt=1)
-    max_flat_error: float = Field(0.01, gt=0)
+    max_flat_error: float = Field(
+        0.002,
+        gt=0,
+        description="Largest median standard error of the responses from the regression; "
+        "a night whose sky changes too little for it gets level ratios instead.",
+    )
 
 
 class CalibrateOptions(_BiasOptions):
     """Options of the ``calibrate`` stage (see :func:`calibrate_stretch`)."""
 
     flat_field: bool = Field(True, description="Apply the solved 1-D flat and dark.")
-    start_ramp: Literal["night", "run", "none"] = Field(
-        "night",
-        description="Where charge clocking started: the first TDIROWS rows of the night, "
-        "of every run, or nowhere get LOW_EXPOSURE.",
-    )
     bleed_fraction: float = Field(0.5, gt=0, le=1)
     bleed_grow_rows: int = Field(2, ge=0)
     bleed_grow_columns: int = Field(1, ge=0)
@@ -574,7 +574,7 @@ def options_kwargs(options: BaseModel, exclude: tuple[str, ...] = ()) -> dict[st
 
 
 def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
-    rows = stretch_rows_for_stage(inputs, context, options.start_ramp)
+    rows = stretch_rows_for_stage(inputs, context)
     columns = inputs["columns"]["columns"] if options.flat_field else None
     result = calibrate_stretch(
         rows.image,
@@ -586,7 +586,7 @@ def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
         segment=rows.segment,
         rows_since_start=rows.rows_since_start,
         tdi_rows=rows.tdi_rows,
-        **options_kwargs(options, exclude=("flat_field", "start_ramp")),
+        **options_kwargs(options, exclude=("flat_field",)),
     )
     _warn_empty_rows(result, rows, context.stretch)
     row_table = Table(

@@ -6,8 +6,10 @@ See :mod:`pipeline.stages.calibrate` for the three-stage split
 
 from __future__ import annotations
 
+import warnings
 from typing import Any
 
+from pipeline.exceptions import CalibrationWarning
 from pipeline.stages._calib_rows import stretch_rows_for_stage
 from pipeline.stages.base import RAW_ROWS, Stage
 from pipeline.stages.calibrate import ColumnStatsOptions, column_statistics, options_kwargs
@@ -16,10 +18,19 @@ __all__ = ["STAGE"]
 
 
 def _run(*, inputs, options: ColumnStatsOptions, context) -> dict[str, Any]:
-    rows = stretch_rows_for_stage(inputs, context, "night")
-    use_rows = None
-    if rows.rows_since_start is not None:
-        use_rows = rows.rows_since_start >= rows.tdi_rows
+    rows = stretch_rows_for_stage(inputs, context)
+    # Partly exposed rows after clocking started (ingest's start_ramp) would
+    # bias the regression of level on sky: the dark scales with the exposure.
+    use_rows = rows.rows_since_start >= rows.tdi_rows
+    if not (use_rows & rows.covered).any():
+        warnings.warn(
+            f"Stretch {context.stretch.id}: no row is usable for the column solve (all "
+            f"{int(rows.covered.sum())} rows with data are within TDIROWS={rows.tdi_rows} "
+            "rows of the start of clocking); if clocking started before the first block, "
+            "set stages.ingest.start_ramp: none.",
+            CalibrationWarning,
+            stacklevel=2,
+        )
     table = column_statistics(
         rows.image,
         rows.overscan,

@@ -17,6 +17,15 @@ each other without gap or overlap and share line time, geometry and filter.
 Problems found on the way (gaps, overlaps, duplicates, settings changed
 mid-night, sequence numbers out of step) are reported, one line each.
 
+Start of the scan
+-----------------
+The first TDIROWS rows read after charge clocking starts are only partly
+exposed (CHECK_VALUES 3.8).  Where clocking started is a fact about the
+night, so it is set once, here (``start_ramp``), and recorded per block in the
+``clock_row`` column; :func:`describe_rows` turns it into each row's
+``rows_since_start``, which the calibrate stages use to flag the ramp and
+leave it out of the column solve.
+
 Functions
 ---------
 :func:`read_block_header` and :func:`read_block_rows` are the file edge (the
@@ -31,7 +40,7 @@ import warnings
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from astropy.io import fits
@@ -49,10 +58,12 @@ from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, RawFile, Stag
 
 __all__ = [
     "KEYWORDS",
+    "NEVER",
     "STAGE",
     "BlockInfo",
     "IngestOptions",
     "NightIndex",
+    "StartRamp",
     "check_block_data",
     "describe_rows",
     "index_night",
@@ -65,6 +76,12 @@ __all__ = [
 ]
 
 log = logging.getLogger(__name__)
+
+#: ``rows_since_start`` of rows with no start-of-scan ramp (see :func:`describe_rows`).
+NEVER = np.iinfo(np.int64).max
+
+#: Where charge clocking started (see :func:`index_night`).
+StartRamp = Literal["night", "run", "none"]
 
 
 @dataclass
@@ -80,7 +97,9 @@ class NightIndex:
         ``meta['reference_time']``), ``line_time`` (s), ``tdi_rows``, ``run``
         (0, 1, ...), ``run_row`` (row of the block's first row counted from its
         run's first row), ``n_columns``, ``datasec``, ``biassec``, ``gain``,
-        ``read_noise``, ``saturation``, ``filter``.
+        ``read_noise``, ``saturation``, ``filter``, ``clock_row`` (rows clocked
+        since charge clocking started, at the block's first row; -1 if it
+        started before the data, see ``start_ramp`` of :func:`index_night`).
     problems : list of str
         One line per continuity problem (gap, overlap, duplicate, change).
     rejected : list of str
@@ -278,6 +297,7 @@ def index_night(
     rejected: Sequence[str] = (),
     *,
     tolerance_rows: float = 0.5,
+    start_ramp: StartRamp = "night",
 ) -> NightIndex:
     """Order good blocks by time, give each its night rows and check continuity.
 
@@ -290,6 +310,11 @@ def index_night(
     tolerance_rows : float
         Largest mismatch, in rows, between a block's DATE-OBS and the end of the
         block before it that still counts as contiguous (clock jitter).
+    start_ramp : {'night', 'run', 'none'}
+        Where charge clocking started: with the first good block of the night
+        (and went on through any gap), again at the start of every run
+        (clocking restarted after each gap), or before the first block (the
+        data hold no partly exposed rows).  Sets the ``clock_row`` column.
 
     Returns
     -------
@@ -325,7 +350,14 @@ def index_night(
         run_row = 0 if new_run else prev_row["run_row"] + prev.n_rows
         rows.append(_index_row(block, t_start, row_start, run, run_row))
         kept.append(block)
+    if start_ramp not in ("night", "run", "none"):
+        raise ValueError(f"start_ramp must be 'night', 'run' or 'none'; got {start_ramp!r}.")
+    for row in rows:
+        row["clock_row"] = {"night": row["row_start"], "run": row["run_row"], "none": -1}[
+            start_ramp
+        ]
     table = _index_table(rows)
+    table.meta["start_ramp"] = start_ramp
     table.meta["reference_time"] = reference.isot if reference is not None else None
     table.meta["n_rejected"] = len(rejected)
     table.meta["n_problems"] = len(problems)
@@ -426,6 +458,7 @@ _INDEX_DTYPES = {
     "read_noise": np.float64,
     "saturation": np.float64,
     "filter": str,
+    "clock_row": np.int64,
 }
 
 
@@ -477,6 +510,7 @@ def describe_rows(index: Table, lo: int, hi: int) -> dict[str, np.ndarray]:
         "read_noise": np.full(n, np.nan),
         "saturation": np.full(n, np.nan),
         "tdi_rows": np.zeros(n, np.int64),
+        "rows_since_start": np.full(n, NEVER, np.int64),
     }
     for block in index:
         start = int(block["row_start"])
@@ -491,6 +525,9 @@ def describe_rows(index: Table, lo: int, hi: int) -> dict[str, np.ndarray]:
         out["run_row"][sel] = int(block["run_row"]) + k
         for name in ("gain", "read_noise", "saturation", "tdi_rows"):
             out[name][sel] = block[name]
+        clock_row = int(block["clock_row"]) if "clock_row" in index.colnames else -1
+        if clock_row >= 0:
+            out["rows_since_start"][sel] = clock_row + k
     return out
 
 
@@ -514,6 +551,13 @@ class IngestOptions(BaseModel):
     )
     tolerance_rows: float = Field(
         0.5, ge=0, description="Largest DATE-OBS mismatch, in rows, still contiguous."
+    )
+    start_ramp: StartRamp = Field(
+        "night",
+        description="Where charge clocking started: with the night's first block ('night'), "
+        "at every run after a gap ('run'), or before the first block ('none': no partly "
+        "exposed rows). The first TDIROWS rows after it get LOW_EXPOSURE and stay out of "
+        "the column solve.",
     )
 
 
@@ -548,7 +592,9 @@ def ingest_files(files: Sequence[RawFile], options: IngestOptions) -> NightIndex
             )
         except IngestError as exc:
             rejected.append(str(exc))
-    return index_night(infos, rejected, tolerance_rows=options.tolerance_rows)
+    return index_night(
+        infos, rejected, tolerance_rows=options.tolerance_rows, start_ramp=options.start_ramp
+    )
 
 
 def _run(*, inputs, options: IngestOptions, context) -> dict[str, Any]:
@@ -578,4 +624,5 @@ STAGE = Stage(
     uses=(),
     defines_rows=True,
     description="Check raw block headers, order blocks in time, index rows and runs.",
+    version=2,  # 2: clock_row column (start_ramp)
 )
