@@ -12,9 +12,9 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
-from scipy.signal import savgol_filter
+from scipy.signal import savgol_coeffs, savgol_filter
 
-__all__ = ["overscan_levels", "smooth_levels"]
+__all__ = ["ROW_OUTLIER_SIGMA", "choose_window", "overscan_levels", "smooth_levels"]
 
 
 def overscan_levels(
@@ -65,24 +65,42 @@ def overscan_levels(
         return np.where(count > 0, total / np.maximum(count, 1), np.nan)
 
 
-def smooth_levels(levels: np.ndarray, window: int, polyorder: int = 2) -> np.ndarray:
+#: Rows whose level is this many robust standard deviations off the smoothed
+#: bias are left out and the bias is smoothed again (a glitch in one row's
+#: overscan must not pull its neighbours).
+ROW_OUTLIER_SIGMA = 5.0
+
+
+def smooth_levels(
+    levels: np.ndarray,
+    window: int | None = None,
+    polyorder: int = 2,
+    max_window: int = 2001,
+) -> np.ndarray:
     """Smooth per-row bias levels along the scan with a Savitzky-Golay filter.
 
     A local polynomial of degree ``polyorder`` over ``window`` rows follows a
     slow drift without lag and averages the read noise of the overscan down by
     about ``sqrt(window)`` (Savitzky & Golay 1964).  Rows with a NaN level are
     filled by linear interpolation before smoothing and stay filled, so that
-    every row of a stretch gets a bias.
+    every row of a stretch gets a bias.  Rows more than
+    :data:`ROW_OUTLIER_SIGMA` robust standard deviations off the smoothed
+    levels are then treated like NaN rows and the levels smoothed again.
 
     Parameters
     ----------
     levels : ndarray, shape (n_rows,)
         Per-row bias levels in ADU along the scan.
-    window : int
-        Window length in rows; ``1`` returns the levels unsmoothed.  Shortened
-        to the (odd) number of rows when the stretch is shorter.
+    window : int or None
+        Window length in rows; ``1`` returns the levels unsmoothed.  None
+        (default): the window among odd lengths up to ``max_window`` that
+        predicts left-out rows best (:func:`choose_window`), so that a quiet
+        bias is averaged over many rows and a lively one followed closely.
+        Shortened to the (odd) number of rows when the stretch is shorter.
     polyorder : int
         Degree of the local polynomial; must be below ``window``.
+    max_window : int
+        Longest window tried when ``window`` is None.
 
     Returns
     -------
@@ -96,12 +114,97 @@ def smooth_levels(levels: np.ndarray, window: int, polyorder: int = 2) -> np.nda
             "No row of this stretch has a finite overscan level; check BIASSEC and the "
             "raw data (all overscan pixels are NaN or infinite)."
         )
-    if not good.all():
-        index = np.arange(levels.size)
-        levels = np.interp(index, index[good], levels[good])
-    window = min(int(window), levels.size)
-    if window % 2 == 0:
-        window -= 1
+    if window is None:
+        window = choose_window(levels, polyorder, max_window)
+    window = _odd_window(window, levels.size)
     if window <= polyorder:
+        return _fill(levels, good)
+    smooth = savgol_filter(_fill(levels, good), window, polyorder, mode="interp")
+    resid = np.where(good, levels - smooth, np.nan)
+    sigma = 1.4826 * np.nanmedian(np.abs(resid[good]))
+    outlier = good & (np.abs(np.nan_to_num(resid)) > ROW_OUTLIER_SIGMA * sigma)
+    if outlier.any() and sigma > 0:
+        good = good & ~outlier
+        smooth = savgol_filter(_fill(levels, good), window, polyorder, mode="interp")
+    return smooth
+
+
+def _fill(levels: np.ndarray, good: np.ndarray) -> np.ndarray:
+    """Levels with the rows not ``good`` linearly interpolated."""
+    if good.all():
         return levels
-    return savgol_filter(levels, window, polyorder, mode="interp")
+    index = np.arange(levels.size)
+    return np.interp(index, index[good], levels[good])
+
+
+def _odd_window(window: int, n_rows: int) -> int:
+    window = min(int(window), n_rows)
+    return window - 1 if window % 2 == 0 else window
+
+
+def _hat_diagonal(n_rows: int, window: int, polyorder: int) -> np.ndarray:
+    """Diagonal of the smoothing matrix of ``savgol_filter(..., mode='interp')``.
+
+    Inside, every row gets the filter's central weight; in the first and last
+    ``window // 2`` rows the filter is the least-squares polynomial over the
+    first (last) ``window`` rows, whose hat matrix diagonal is the squared
+    row norm of the orthonormal basis of its Vandermonde matrix.
+    """
+    half = window // 2
+    centre = savgol_coeffs(window, polyorder)[half]
+    diagonal = np.full(n_rows, centre)
+    x = np.arange(window) - half
+    q, _ = np.linalg.qr(np.vander(x / max(half, 1), polyorder + 1))
+    edge = np.sum(q * q, axis=1)
+    diagonal[:half] = edge[:half]
+    diagonal[n_rows - half :] = edge[window - half :]
+    return diagonal
+
+
+def choose_window(levels: np.ndarray, polyorder: int = 2, max_window: int = 2001) -> int:
+    """The smoothing window that best predicts each row's level from the others.
+
+    Leave-one-out cross-validation: a linear smoother with hat matrix ``H``
+    predicts row ``i`` from the other rows with the error
+    ``(y_i - s_i) / (1 - H_ii)`` (e.g. Hastie, Tibshirani & Friedman, The
+    Elements of Statistical Learning, eq. 7.52).  The mean square of these
+    errors over the rows with a finite level is computed for odd windows from
+    ``4 * (polyorder + 1) + 1`` rows up to ``max_window`` in steps of ~1.4x,
+    and the window with the smallest one is returned.  White noise favours
+    long windows, a bias that wanders favours short ones.
+
+    Parameters
+    ----------
+    levels : ndarray, shape (n_rows,)
+        Per-row levels (NaN allowed: interpolated over, not scored).
+    polyorder : int
+        Degree of the local polynomial.
+    max_window : int
+        Longest window tried (cut to the number of rows).
+
+    Returns
+    -------
+    int
+        Odd window length in rows.
+    """
+    levels = np.asarray(levels, dtype=np.float64)
+    good = np.isfinite(levels)
+    n_rows = levels.size
+    shortest = 4 * (polyorder + 1) + 1
+    longest = _odd_window(max_window, n_rows)
+    if longest <= shortest or good.sum() <= shortest:
+        return max(longest, 1)
+    filled = _fill(levels, good)
+    windows = sorted(
+        {_odd_window(w, n_rows) for w in np.geomspace(shortest, longest, 12).astype(int)}
+        | {longest}
+    )
+    best, best_score = longest, np.inf
+    for window in windows:
+        smooth = savgol_filter(filled, window, polyorder, mode="interp")
+        leverage = _hat_diagonal(n_rows, window, polyorder)
+        error = (filled - smooth)[good] / (1.0 - leverage[good])
+        score = float(np.mean(error * error))
+        if score < best_score:
+            best, best_score = window, score
+    return best

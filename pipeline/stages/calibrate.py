@@ -125,8 +125,11 @@ def _segments(segment, n_rows: int) -> np.ndarray:
     return segment
 
 
-def _row_bias(overscan, gain, read_noise, segment, window, polyorder, clip) -> np.ndarray:
-    """Smoothed overscan bias of each row, ADU, per segment (NaN where segment < 0)."""
+def _row_bias(overscan, gain, read_noise, segment, smoothing, clip) -> np.ndarray:
+    """Smoothed overscan bias of each row, ADU, per segment (NaN where segment < 0).
+
+    ``smoothing`` holds the keywords of :func:`smooth_levels`.
+    """
     n_rows = overscan.shape[0]
     read_noise = _per_row(read_noise, n_rows, "read_noise")
     segment = _segments(segment, n_rows)
@@ -137,7 +140,7 @@ def _row_bias(overscan, gain, read_noise, segment, window, polyorder, clip) -> n
         # Split also where a run's rows are not consecutive in this stretch.
         for part in np.split(rows, np.flatnonzero(np.diff(rows) != 1) + 1):
             if np.isfinite(levels[part]).any():
-                bias[part] = smooth_levels(levels[part], window, polyorder)
+                bias[part] = smooth_levels(levels[part], **smoothing)
     return bias
 
 
@@ -149,8 +152,9 @@ def subtract_bias(
     read_noise: float | np.ndarray,
     column_bias: np.ndarray | None = None,
     segment: np.ndarray | None = None,
-    bias_window: int = 101,
+    bias_window: int | None = None,
     bias_polyorder: int = 2,
+    bias_max_window: int = 2001,
     overscan_clip: float = 4.0,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Subtract the smoothed overscan bias of each row and convert to electrons.
@@ -172,10 +176,14 @@ def subtract_bias(
     segment : ndarray of int, shape (n_rows,), optional
         Label of each row's run; the bias is smoothed within each run
         separately and never across a gap.  Rows labelled -1 (no data) get NaN.
-    bias_window : int
-        Savitzky-Golay window in rows (1: no smoothing).
+    bias_window : int or None
+        Savitzky-Golay window in rows (1: no smoothing).  None: chosen for
+        each run of rows by cross-validation among windows up to
+        ``bias_max_window`` (:func:`~pipeline.stages._calib_bias.choose_window`).
     bias_polyorder : int
         Degree of the smoothing polynomial.
+    bias_max_window : int
+        Longest window the cross-validation may choose, rows.
     overscan_clip : float
         Clipping half-width of the per-row overscan mean, in read noises.
 
@@ -194,9 +202,8 @@ def subtract_bias(
         )
     n_rows, n_columns = image.shape
     gain = _per_row(gain, n_rows, "gain")
-    bias = _row_bias(
-        overscan, gain, read_noise, segment, bias_window, bias_polyorder, overscan_clip
-    )
+    smoothing = {"window": bias_window, "polyorder": bias_polyorder, "max_window": bias_max_window}
+    bias = _row_bias(overscan, gain, read_noise, segment, smoothing, overscan_clip)
     offset = bias[:, None]
     if column_bias is not None:
         column_bias = np.asarray(column_bias, dtype=np.float64)
@@ -224,8 +231,9 @@ def column_statistics(
     use_rows: np.ndarray | None = None,
     block_rows: int = 256,
     clip: float = 3.0,
-    bias_window: int = 101,
+    bias_window: int | None = None,
     bias_polyorder: int = 2,
+    bias_max_window: int = 2001,
     overscan_clip: float = 4.0,
 ) -> Table:
     """First pass of the column solve for one stretch.
@@ -251,7 +259,7 @@ def column_statistics(
         rows with data.
     block_rows, clip
         See :func:`summarize_columns`.
-    bias_window, bias_polyorder, overscan_clip
+    bias_window, bias_polyorder, bias_max_window, overscan_clip
         See :func:`subtract_bias`.
 
     Returns
@@ -268,6 +276,7 @@ def column_statistics(
         segment=segment,
         bias_window=bias_window,
         bias_polyorder=bias_polyorder,
+        bias_max_window=bias_max_window,
         overscan_clip=overscan_clip,
     )
     keep = _segments(segment, n_rows) >= 0
@@ -326,8 +335,9 @@ def calibrate_stretch(
     segment: np.ndarray | None = None,
     rows_since_start: np.ndarray | None = None,
     tdi_rows: int | None = None,
-    bias_window: int = 101,
+    bias_window: int | None = None,
     bias_polyorder: int = 2,
+    bias_max_window: int = 2001,
     overscan_clip: float = 4.0,
     bleed_fraction: float = 0.5,
     bleed_grow_rows: int = 2,
@@ -366,7 +376,7 @@ def calibrate_stretch(
         ``tdi_rows`` of them get LOW_EXPOSURE (CHECK_VALUES 3.8).
     tdi_rows : int, optional
         TDIROWS.
-    bias_window, bias_polyorder, overscan_clip
+    bias_window, bias_polyorder, bias_max_window, overscan_clip
         See :func:`subtract_bias`.
     bleed_fraction : float
         A pixel continuing a saturated pixel's run along its column belongs to
@@ -397,9 +407,8 @@ def calibrate_stretch(
     read_noise = _per_row(read_noise, n_rows, "read_noise")
     saturation = _per_row(saturation, n_rows, "saturation")
     segment = _segments(segment, n_rows)
-    bias = _row_bias(
-        overscan, gain, read_noise, segment, bias_window, bias_polyorder, overscan_clip
-    )
+    smoothing = {"window": bias_window, "polyorder": bias_polyorder, "max_window": bias_max_window}
+    bias = _row_bias(overscan, gain, read_noise, segment, smoothing, overscan_clip)
     flat, dark, column_flags = _column_model(columns, flat, dark, n_columns)
     if column_bias is not None:
         column_bias = np.asarray(column_bias, dtype=np.float32)
@@ -520,8 +529,13 @@ class _Options(BaseModel):
 
 
 class _BiasOptions(_Options):
-    bias_window: int = Field(101, ge=1, description="Bias smoothing window, rows.")
+    bias_window: int | None = Field(
+        None, ge=1, description="Bias smoothing window, rows; null: chosen by cross-validation."
+    )
     bias_polyorder: int = Field(2, ge=0, description="Bias smoothing polynomial degree.")
+    bias_max_window: int = Field(
+        2001, ge=1, description="Longest bias smoothing window cross-validation may choose."
+    )
     overscan_clip: float = Field(4.0, gt=0, description="Overscan clipping, read noises.")
 
 
@@ -624,4 +638,5 @@ STAGE = Stage(
     scope="stretch",
     uses=("camera.flip_columns", "camera.flip_rows"),
     description="Bias, 1-D flat and dark, variance and mask of each stretch.",
+    version=2,  # 2: bias smoothing window by cross-validation
 )
