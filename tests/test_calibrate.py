@@ -282,6 +282,38 @@ def test_column_solve_is_exact_without_noise():
     assert columns.meta["method"] == "regression"
 
 
+def test_column_solve_is_exact_when_a_star_hides_reference_columns():
+    """Regression: the sky of a block was the plain mean of the reference columns
+    left in it, so a bright star saturating some of them for a while biased the
+    sky by their flat; each column's level is now divided by its typical
+    relative level first.  Noise-free data: the truth to rounding (analytic)."""
+    adu, overscan, truth = _tdi_raw(np.random.default_rng(5), noise=False)
+    adu[2048:3072, 20:36] = 70000.0  # saturated (65535) for four 256-row blocks
+    columns = _solve(adu, overscan)
+    good = columns["flags"] == 0
+    reference = np.ones(adu.shape[1], bool)
+    reference[[5, 11]] = False
+    f = truth["response"] / truth["response"][reference].mean()
+    d = truth["dark"] - f * truth["dark"][reference].mean()
+    np.testing.assert_allclose(columns["flat"][good], f[good], atol=1e-6)
+    # The typical relative levels that carry the sky across the hidden columns
+    # include the additive levels: a second-order error, measured 0.006 e-
+    # (the plain mean of before: 0.07 e-, and 1e-5 in the flat).
+    np.testing.assert_allclose(columns["dark"][good], d[good], atol=0.02)
+
+
+def test_constant_noise_free_data_give_a_flat_of_ones_without_runtime_warnings():
+    """Regression: zero scatter made every column's noise ratio 0/0 and the
+    reference set empty, so the sky came out as "0.0 to 0.0 e-"."""
+    adu = np.full((512, 8), 1100.0, np.float32)
+    overscan = np.full((512, 4), 1000.0, np.float32)
+    with pytest.warns(CalibrationWarning, match=r"from 200.0 to 200.0 e-"):
+        columns = _solve(adu, overscan, min_blocks=1)  # only the expected warning
+    # Equal columns: every response is exactly 1, nothing is flagged (analytic).
+    np.testing.assert_allclose(columns["flat"], 1.0, rtol=1e-12)
+    assert not np.any(columns["flags"]) and columns.meta["method"] == "ratio"
+
+
 def test_column_summaries_merge_overlaps():
     adu, overscan, _ = _tdi_raw(np.random.default_rng(6), n_rows=1024, noise=False)
     rows = np.arange(1024)

@@ -235,33 +235,41 @@ def solve_columns(
     n_blocks, n_columns = level.shape
 
     noise_ratio = _noise_ratio(level, scatter, read_noise, valid)
-    reference = _initial_reference(level, valid, noise_ratio, noise_limit)
+    reference, relative = _initial_reference(level, valid, noise_ratio, noise_limit)
     weight = np.where(valid, n_pix / (read_noise**2 + np.maximum(level, 1.0)), 0.0)
     for iteration in range(2):
-        sky = _sky(level, valid, reference)
+        sky = _sky(level, valid, reference, relative)
+        fit_valid = valid & np.isfinite(sky)[:, None]  # blocks with a sky level
         slope, intercept, slope_err, intercept_err, used = _fit_lines(
-            sky, level, weight, valid, clip
+            np.nan_to_num(sky), level, weight, fit_valid, clip
         )
         if iteration == 0:
             reference = _refine_reference(slope, intercept, used, reference, min_blocks)
-    # Exactly 1 without rejected blocks; renormalise for the rejections.
-    norm = np.nanmean(slope[reference])
-    slope, slope_err = slope / norm, slope_err / norm
+    if not np.isfinite(sky).any():
+        raise ValueError(
+            f"No block of the {n_blocks} has a usable reference column to measure the sky "
+            "by (every column saturated, empty or much noisier than the others?); check "
+            "the column_stats tables and the raw data."
+        )
+    slope, intercept, slope_err, sky = _normalise(slope, intercept, slope_err, sky, reference)
 
     method = "regression"
-    if not np.nanmedian(slope_err[reference]) <= max_flat_error:
+    flat_error = _median_or_nan(slope_err[reference])
+    if not flat_error <= max_flat_error:
         warnings.warn(
             f"The sky level varies too little along the night (from {np.nanmin(sky):.1f} "
             f"to {np.nanmax(sky):.1f} e-) to separate column response from additive level "
-            f"(median response error {np.nanmedian(slope_err[reference]):.3g} > "
+            f"(median response error {flat_error:.3g} > "
             f"max_flat_error={max_flat_error}); using level ratios and no additive level.",
             CalibrationWarning,
             stacklevel=2,
         )
         method = "ratio"
-        slope, intercept, slope_err, intercept_err = _ratio(sky, level, weight)
-        norm = np.nanmean(slope[reference])
-        slope, slope_err = slope / norm, slope_err / norm
+        slope, intercept, slope_err, intercept_err = _ratio(
+            np.nan_to_num(sky), level, np.where(fit_valid, weight, 0.0)
+        )
+        slope, intercept, slope_err, sky = _normalise(slope, intercept, slope_err, sky, reference)
+        used = fit_valid.sum(axis=0)  # no line, so no block is rejected from one
 
     flags = np.zeros(n_columns, dtype=np.uint16)
     bad = (
@@ -271,8 +279,8 @@ def solve_columns(
         | (slope > max_response)
         | (noise_ratio > noise_limit)
     )
-    excess = intercept - np.nanmedian(intercept[~bad])
-    spread = 1.4826 * np.nanmedian(np.abs(excess[~bad]))
+    excess = intercept - _median_or_nan(intercept[~bad])
+    spread = 1.4826 * _median_or_nan(np.abs(excess[~bad]))
     hot = (excess > hot_level) & (excess > hot_sigma * spread)
     flags[bad] |= int(MaskBit.BAD_COLUMN)
     flags[hot & ~bad] |= int(MaskBit.HOT_COLUMN)
@@ -336,34 +344,84 @@ def _merge_blocks(summaries: Table | list[Table]) -> Table:
     return table
 
 
+def _median_or_nan(values):
+    """Median of the finite values; NaN if there is none (no warning)."""
+    values = values[np.isfinite(values)]
+    return float(np.median(values)) if values.size else np.nan
+
+
 def _noise_ratio(level, scatter, read_noise, valid):
-    """Median over blocks of scatter / noise model, relative to the median column."""
+    """Median over blocks of scatter / noise model, relative to the median column.
+
+    Noise-free data (every scatter 0) give 1 for the columns without scatter
+    and infinity for the others.
+    """
     expected = np.sqrt(read_noise**2 + np.maximum(level, 0.0))
     ratio = np.where(valid, scatter / expected, np.nan)
     with warnings.catch_warnings():
         # Columns without any valid block give NaN (then flagged bad).
         warnings.simplefilter("ignore", RuntimeWarning)
         per_column = np.nanmedian(ratio, axis=0)
-    return per_column / np.nanmedian(per_column)
+        typical = np.nanmedian(per_column)
+    if not typical > 0:
+        return np.where(per_column > 0, np.inf, np.where(np.isnan(per_column), np.nan, 1.0))
+    return per_column / typical
 
 
 def _initial_reference(level, valid, noise_ratio, noise_limit):
-    """Columns whose typical relative level and noise look normal."""
+    """Columns whose typical relative level and noise look normal.
+
+    Returns the reference columns and every column's median level relative to
+    the median column (NaN for columns without valid blocks).
+    """
     with warnings.catch_warnings():
         # Blocks or columns without valid data give NaN and drop out.
         warnings.simplefilter("ignore", RuntimeWarning)
         block_median = np.nanmedian(np.where(valid, level, np.nan), axis=1, keepdims=True)
         relative = np.nanmedian(np.where(valid, level, np.nan) / block_median, axis=0)
-    centre = np.nanmedian(relative)
-    spread = 1.4826 * np.nanmedian(np.abs(relative - centre))
-    return (np.abs(relative - centre) <= 5.0 * max(spread, 1e-6)) & (noise_ratio <= noise_limit)
+        centre = np.nanmedian(relative)
+        spread = 1.4826 * np.nanmedian(np.abs(relative - centre))
+    with np.errstate(invalid="ignore"):
+        normal = np.abs(relative - centre) <= 5.0 * max(spread, 1e-6)
+    reference = normal & (noise_ratio <= noise_limit) & (relative > 0)
+    return reference, relative
 
 
-def _sky(level, valid, reference):
-    """Sky level of each block: mean level of the reference columns."""
+def _sky(level, valid, reference, relative):
+    """Sky level of each block from the reference columns; NaN without any.
+
+    Each valid reference column's level is divided by the column's typical
+    relative level before averaging, so that a block where some reference
+    columns are unusable (saturated by a bright star, say) is not biased by
+    the flat field of the columns that remain.
+    """
     ref_valid = valid[:, reference]
-    ref_level = np.where(ref_valid, level[:, reference], 0.0)
-    return ref_level.sum(axis=1) / np.maximum(ref_valid.sum(axis=1), 1)
+    ratio = np.where(ref_valid, level[:, reference] / relative[reference], 0.0)
+    count = ref_valid.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, ratio.sum(axis=1) / count, np.nan)
+
+
+def _normalise(slope, intercept, slope_err, sky, reference):
+    """Put the lines on the sky scale where the reference columns average 1 and 0.
+
+    ``level = a_c s + b_c`` with mean reference slope ``A`` and intercept ``B``
+    is ``(a_c / A) s' + (b_c - a_c B / A)`` for the sky ``s' = A s + B``: the
+    response averages 1 and the additive level 0 over the reference columns
+    (the identifiable part, module docstring), rejections or not.
+    """
+    finite = reference & np.isfinite(slope) & np.isfinite(intercept)
+    if not finite.any():  # no line could be fitted (constant sky): leave as is
+        return slope, intercept, slope_err, sky
+    mean_slope = np.mean(slope[finite])
+    mean_intercept = np.mean(intercept[finite])
+    new_slope = slope / mean_slope
+    return (
+        new_slope,
+        intercept - new_slope * mean_intercept,
+        slope_err / mean_slope,
+        mean_slope * sky + mean_intercept,
+    )
 
 
 def _fit_lines(sky, level, weight, valid, clip):
@@ -399,6 +457,8 @@ def _fit_lines(sky, level, weight, valid, clip):
 def _refine_reference(slope, intercept, used, reference, min_blocks):
     """Drop columns with outlying response or level from the reference set."""
     good = reference & (used >= min_blocks) & np.isfinite(slope)
+    if not good.any():  # e.g. a sky that never changes: no line to judge by
+        return reference
     new = good.copy()
     for values in (slope, intercept):
         centre = np.median(values[good])

@@ -29,4 +29,5 @@ STAGE = Stage(
     scope="night",
     uses=(),
     description="Solve the night's 1-D flat and per-column additive level from the sky.",
+    version=2,  # 2: sky from relative levels; normalised lines
 )
