@@ -9,12 +9,19 @@ down the read noise of the few overscan pixels per row (common practice).
 
 from __future__ import annotations
 
+import functools
 import warnings
 
 import numpy as np
-from scipy.signal import savgol_coeffs, savgol_filter
+from scipy.signal import fftconvolve, savgol_coeffs
 
-__all__ = ["ROW_OUTLIER_SIGMA", "choose_window", "overscan_levels", "smooth_levels"]
+__all__ = [
+    "ROW_OUTLIER_SIGMA",
+    "choose_window",
+    "overscan_levels",
+    "savitzky_golay",
+    "smooth_levels",
+]
 
 
 def overscan_levels(
@@ -119,14 +126,53 @@ def smooth_levels(
     window = _odd_window(window, levels.size)
     if window <= polyorder:
         return _fill(levels, good)
-    smooth = savgol_filter(_fill(levels, good), window, polyorder, mode="interp")
+    smooth = savitzky_golay(_fill(levels, good), window, polyorder)
     resid = np.where(good, levels - smooth, np.nan)
     sigma = 1.4826 * np.nanmedian(np.abs(resid[good]))
     outlier = good & (np.abs(np.nan_to_num(resid)) > ROW_OUTLIER_SIGMA * sigma)
     if outlier.any() and sigma > 0:
         good = good & ~outlier
-        smooth = savgol_filter(_fill(levels, good), window, polyorder, mode="interp")
+        smooth = savitzky_golay(_fill(levels, good), window, polyorder)
     return smooth
+
+
+def savitzky_golay(values: np.ndarray, window: int, polyorder: int) -> np.ndarray:
+    """``scipy.signal.savgol_filter(values, window, polyorder, mode='interp')``, faster.
+
+    The interior is one FFT convolution, whose cost does not grow with the
+    window (a direct convolution over 2001 rows costs 2001 multiplications
+    per row); the first and last ``window // 2`` rows take the polynomial
+    fitted to the first and last ``window`` rows, as scipy's ``'interp'``
+    mode does.  The mean is taken out first so that the FFT's rounding is
+    relative to the variations, not to the bias level.
+
+    Parameters
+    ----------
+    values : ndarray, shape (n,)
+        Finite values; ``n >= window``.
+    window : int
+        Odd window length.
+    polyorder : int
+        Degree of the local polynomial, below ``window``.
+
+    Returns
+    -------
+    ndarray of float64, shape (n,)
+    """
+    values = np.asarray(values, dtype=np.float64)
+    offset = values.mean()
+    centred = values - offset
+    out = fftconvolve(centred, _coefficients(window, polyorder), mode="same")
+    half = window // 2
+    if half:
+        x = np.arange(window, dtype=np.float64)
+        for edge, rows in (
+            (slice(0, window), slice(0, half)),
+            (slice(-window, None), slice(-half, None)),
+        ):
+            coefficients = np.polynomial.polynomial.polyfit(x, centred[edge], polyorder)
+            out[rows] = np.polynomial.polynomial.polyval(x[rows], coefficients)
+    return out + offset
 
 
 def _fill(levels: np.ndarray, good: np.ndarray) -> np.ndarray:
@@ -142,6 +188,21 @@ def _odd_window(window: int, n_rows: int) -> int:
     return window - 1 if window % 2 == 0 else window
 
 
+@functools.lru_cache(maxsize=64)
+def _coefficients(window: int, polyorder: int) -> np.ndarray:
+    """Savitzky-Golay convolution coefficients (cached; do not modify)."""
+    return savgol_coeffs(window, polyorder)
+
+
+@functools.lru_cache(maxsize=64)
+def _edge_leverage(window: int, polyorder: int) -> np.ndarray:
+    """Hat matrix diagonal of a degree-``polyorder`` fit to ``window`` rows (cached)."""
+    half = window // 2
+    x = np.arange(window) - half
+    q, _ = np.linalg.qr(np.vander(x / max(half, 1), polyorder + 1))
+    return np.sum(q * q, axis=1)
+
+
 def _hat_diagonal(n_rows: int, window: int, polyorder: int) -> np.ndarray:
     """Diagonal of the smoothing matrix of ``savgol_filter(..., mode='interp')``.
 
@@ -151,11 +212,8 @@ def _hat_diagonal(n_rows: int, window: int, polyorder: int) -> np.ndarray:
     row norm of the orthonormal basis of its Vandermonde matrix.
     """
     half = window // 2
-    centre = savgol_coeffs(window, polyorder)[half]
-    diagonal = np.full(n_rows, centre)
-    x = np.arange(window) - half
-    q, _ = np.linalg.qr(np.vander(x / max(half, 1), polyorder + 1))
-    edge = np.sum(q * q, axis=1)
+    diagonal = np.full(n_rows, _coefficients(window, polyorder)[half])
+    edge = _edge_leverage(window, polyorder)
     diagonal[:half] = edge[:half]
     diagonal[n_rows - half :] = edge[window - half :]
     return diagonal
@@ -201,7 +259,7 @@ def choose_window(levels: np.ndarray, polyorder: int = 2, max_window: int = 2001
     )
     best, best_score = longest, np.inf
     for window in windows:
-        smooth = savgol_filter(filled, window, polyorder, mode="interp")
+        smooth = savitzky_golay(filled, window, polyorder)
         leverage = _hat_diagonal(n_rows, window, polyorder)
         error = (filled - smooth)[good] / (1.0 - leverage[good])
         score = float(np.mean(error * error))

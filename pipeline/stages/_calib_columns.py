@@ -39,6 +39,7 @@ from scipy.special import erf
 
 from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MaskBit
+from pipeline.stages._calib_chunks import transposed
 
 __all__ = ["solve_columns", "summarize_columns"]
 
@@ -139,27 +140,41 @@ def summarize_columns(
     return table
 
 
+#: Stands for unusable pixels in the clipped sums: far outside any clipping
+#: window, and, unlike NaN or infinity, zero when multiplied by zero.
+_FAR = np.float32(1e30)
+
+
 def _block_statistics(x, unusable, read_noise, clip):
-    """Clipped mean, corrected scatter and count of each column of one block."""
-    x = np.ascontiguousarray(x.T)  # (n_columns, n_rows_block): rows contiguous
-    unusable = np.ascontiguousarray(unusable.T)
-    any_bad = unusable.any()
-    if any_bad:
-        x = np.where(unusable, np.nan, x)
-        with warnings.catch_warnings():
-            # An all-NaN column gives NaN statistics, which is the documented result.
-            warnings.simplefilter("ignore", RuntimeWarning)
-            median = np.nanmedian(x, axis=1)
-    else:
-        k = x.shape[1] // 2
-        median = np.partition(x, k, axis=1)[:, k]
-    half = clip * np.sqrt(read_noise**2 + np.maximum(median, 0.0))
-    keep = np.abs(x - median[:, None]) <= half[:, None]  # NaN compares false
-    n = keep.sum(axis=1)
-    safe = np.maximum(n, 1)
-    dev = np.where(keep, x - median[:, None], 0.0)
-    mean_dev = dev.sum(axis=1) / safe
-    var = (dev * dev).sum(axis=1) / np.maximum(n - 1, 1) - mean_dev**2 * n / np.maximum(n - 1, 1)
+    """Clipped mean, corrected scatter and count of each column of one block.
+
+    Works on a transposed copy (rows of a column contiguous), which is
+    partitioned in place: the clipped sums do not depend on the order.
+    """
+    xt = transposed(x, np.float32)  # a copy: (n_columns, n_rows_block)
+    k = xt.shape[1] // 2
+    bad_columns = np.flatnonzero(unusable.any(axis=0))
+    if bad_columns.size:  # usually a few columns (saturated stars, bad pixels)
+        bad = unusable[:, bad_columns].T
+        values = np.where(bad, np.inf, xt[bad_columns])
+        values.sort(axis=1)  # the good values first
+        n_good = values.shape[1] - bad.sum(axis=1)
+        bad_median = values[np.arange(bad_columns.size), n_good // 2 - (n_good == 0)]
+        bad_median[n_good == 0] = np.nan
+        xt[bad_columns] = np.where(bad, _FAR, xt[bad_columns])
+    xt.partition(k, axis=1)
+    median = xt[:, k].copy()  # the upper median, like bad_median
+    if bad_columns.size:
+        median[bad_columns] = bad_median
+    half = (clip * np.sqrt(read_noise**2 + np.maximum(median, 0.0))).astype(np.float32)
+    xt -= median[:, None]  # deviations (NaN in all-bad columns)
+    keep = np.abs(xt) <= half[:, None]  # NaN compares false
+    np.multiply(xt, keep, out=xt)  # 0 where not kept (NaN only where nothing is kept)
+    n = np.count_nonzero(keep, axis=1)
+    with np.errstate(invalid="ignore"):
+        mean_dev = xt.sum(axis=1, dtype=np.float64) / np.maximum(n, 1)
+        square = np.einsum("ij,ij->i", xt, xt).astype(np.float64)
+        var = (square - mean_dev**2 * n) / np.maximum(n - 1, 1)
     scale = _truncated_variance(clip)
     with np.errstate(invalid="ignore"):
         level = np.where(n > 0, median + mean_dev, np.nan)

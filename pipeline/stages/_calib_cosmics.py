@@ -68,6 +68,17 @@ def _cross_differences(array, r0, r1, scratch, prefix=""):
     return up, down, left, right
 
 
+def _cross_min(array, r0, r1, out):
+    """Smallest of each pixel and its 4 neighbours, rows [r0, r1) (edges repeated)."""
+    rows = array[r0:r1]
+    np.minimum(rows, array[r0 - 1 : r1 - 1] if r0 > 0 else np.r_[rows[:1], rows[:-1]], out=out)
+    below = array[r0 + 1 : r1 + 1] if r1 < array.shape[0] else np.r_[rows[1:], rows[-1:]]
+    np.minimum(out, below, out=out)
+    np.minimum(out[:, 1:], rows[:, :-1], out=out[:, 1:])
+    np.minimum(out[:, :-1], rows[:, 1:], out=out[:, :-1])
+    return out
+
+
 def _lplus_rows(array, r0, r1, out, scratch):
     """``L+`` of rows [r0, r1) of ``array`` into ``out`` (shape (r1 - r0, n_columns))."""
     up, down, left, right = _cross_differences(array, r0, r1, scratch)
@@ -118,14 +129,7 @@ def _candidates(work, variance, ignore, sigclip):
         n = r1 - r0
         out = lplus[r0:r1]
         _lplus_rows(work, r0, r1, out, scratch)
-        up, down, left, right = _cross_differences(variance, r0, r1, scratch, "var_")
-        # Smallest variance in the cross: v - max(v - neighbour, 0).
-        vmin = scratch.get("vmin", n)
-        np.maximum(up, down, out=vmin)
-        np.maximum(vmin, left, out=vmin)
-        np.maximum(vmin, right, out=vmin)
-        np.maximum(vmin, np.float32(0.0), out=vmin)
-        np.subtract(variance[r0:r1], vmin, out=vmin)
+        vmin = _cross_min(variance, r0, r1, scratch.get("vmin", n))
         vmin *= threshold
         test = scratch.get("term", n)
         np.multiply(out, out, out=test)
@@ -179,16 +183,18 @@ def _median_last(values: np.ndarray) -> np.ndarray:
     return np.partition(values, k, axis=-1)[..., k]
 
 
-def _s_prime(lplus: np.ndarray, noise: np.ndarray, flat_index: np.ndarray) -> np.ndarray:
-    """``S' = (L+ - med5(L+)) / (2 N)`` at the given pixels."""
-    box = _patches(lplus, flat_index, 5)
-    return (lplus.flat[flat_index] - _median_last(box)) / (2.0 * noise)
+def _noise_and_s_prime(
+    variance: np.ndarray, lplus: np.ndarray, flat_index: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Noise ``N = sqrt(med5(variance))`` and ``S' = (L+ - med5(L+)) / (2 N)`` at pixels.
 
-
-def _noise(variance: np.ndarray, flat_index: np.ndarray) -> np.ndarray:
-    """Cosmic-ray-free noise ``sqrt(med5(variance))`` at the given pixels."""
-    box = _patches(variance, flat_index, 5)
-    return np.sqrt(np.maximum(_median_last(box), 1e-5))
+    The noise is free of cosmic rays (the median ignores them); both share
+    one 5x5 patch index.
+    """
+    index = _patch_index(flat_index, variance.shape, 5)
+    noise = np.sqrt(np.maximum(_median_last(np.take(variance.reshape(-1), index)), 1e-5))
+    lplus_median = _median_last(np.take(lplus.reshape(-1), index))
+    return noise, (lplus.flat[flat_index] - lplus_median) / (2.0 * noise)
 
 
 def _fine_structure(image: np.ndarray, flat_index: np.ndarray) -> np.ndarray:
@@ -356,8 +362,7 @@ def _one_pass(work, variance, lplus, candidates, hits, ignore, sigclip, sigfrac,
     """One L.A.Cosmic pass over the candidate pixels; returns new hit indices."""
     if candidates.size == 0:
         return candidates
-    noise = _noise(variance, candidates)
-    sp = _s_prime(lplus, noise, candidates)
+    noise, sp = _noise_and_s_prime(variance, lplus, candidates)
     keep = sp > sigclip
     candidates, noise, sp = candidates[keep], noise[keep], sp[keep]
     if candidates.size == 0:
@@ -370,6 +375,6 @@ def _one_pass(work, variance, lplus, candidates, hits, ignore, sigclip, sigfrac,
         near = near[~ignore.flat[near] & ~hits.flat[near]]
         if near.size == 0:
             break
-        sp_near = _s_prime(lplus, _noise(variance, near), near)
+        _, sp_near = _noise_and_s_prime(variance, lplus, near)
         found = _unique(np.concatenate([found, near[sp_near > limit]]), work.size)
     return found

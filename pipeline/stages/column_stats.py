@@ -55,5 +55,5 @@ STAGE = Stage(
     scope="stretch",
     uses=("camera.flip_columns", "camera.flip_rows"),
     description="Per-block clipped column levels of each stretch (for the 1-D flat and dark).",
-    version=2,  # 2: bias smoothing window by cross-validation
+    version=3,  # 2: bias window by cross-validation; 3: faster passes (rounding)
 )
