@@ -22,7 +22,7 @@ from pipeline._rawio import (
     overlapping_blocks,
     raw_files_fingerprint,
 )
-from pipeline._store import hash_json, read_failure, read_product, read_sidecar
+from pipeline._store import file_digest, hash_json, read_failure, read_product, read_sidecar
 from pipeline._unit import InputSpec, UnitTask
 from pipeline.config import Config
 from pipeline.stages.base import (
@@ -191,6 +191,17 @@ class NightStore:
             else:
                 hashes[name] = units[0][1]["output_hash"]
                 specs.append(InputSpec(name, "unit", units=tuple(units)))
+        options = self.config.stage_options(stage.name)
+        for name in stage.files:
+            path = getattr(options, name)
+            if path is None:
+                specs.append(InputSpec(name, "none"))
+                continue
+            path = Path(path)
+            if not path.is_file():
+                return hashes, specs, f"stages.{stage.name}.{name}: no file {path}"
+            hashes[name] = file_digest(path)
+            specs.append(InputSpec(name, "file", path=path))
         return hashes, specs, None
 
     def no_index_reason(self) -> str:

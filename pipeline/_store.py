@@ -237,6 +237,37 @@ def read_product(path: Path, entry: Mapping[str, Any]) -> Any:
     return json.loads(path.read_text(encoding="utf-8"))
 
 
+def file_digest(path: Path) -> str:
+    """SHA-256 hex digest of a file's content."""
+    return _file_sha256(Path(path))
+
+
+def read_external(path: Path) -> Any:
+    """Read a file a stage option names (see ``Stage.files``), by its suffix.
+
+    ``.ecsv``: an astropy Table; ``.fits``/``.fit``/``.fts`` (optionally
+    gzipped): the first table HDU as a Table, else the primary image as an
+    array; ``.json``: the JSON value.
+    """
+    path = Path(path)
+    suffixes = [s.lower() for s in path.suffixes if s.lower() != ".gz"]
+    kind = suffixes[-1] if suffixes else ""
+    if kind == ".ecsv":
+        return _read_ecsv(path, Table)
+    if kind in (".fits", ".fit", ".fts"):
+        with fits.open(path, memmap=False) as hdul:
+            for hdu in hdul:
+                if isinstance(hdu, fits.BinTableHDU | fits.TableHDU):
+                    return Table.read(hdu)
+            return np.asarray(hdul[0].data)
+    if kind == ".json":
+        return json.loads(path.read_text(encoding="utf-8"))
+    raise ValueError(
+        f"{path}: cannot tell how to read a {kind or 'suffix-less'} file; give an .ecsv, "
+        ".fits or .json file."
+    )
+
+
 def _read_ecsv(path: Path, cls: type[Table]) -> Table:
     """Read an ECSV table; also one with no rows and vector columns.
 

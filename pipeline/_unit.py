@@ -34,6 +34,7 @@ from pipeline._store import (
     clean_unit,
     hash_json,
     output_hash,
+    read_external,
     read_products,
     write_products,
     write_sidecar,
@@ -50,8 +51,9 @@ class InputSpec:
     ``kind`` is ``'unit'`` (one upstream unit: ``units`` has one
     ``(folder, sidecar)``), ``'units'`` (a night-scoped consumer of a
     stretch-scoped stage: one entry per stretch), ``'raw_files'`` (``names``
-    below ``raw_dir``) or ``'raw_rows'`` (rows ``[lo, hi)`` via ``index``, each
-    block's rows reversed if ``flip_rows``).
+    below ``raw_dir``), ``'raw_rows'`` (rows ``[lo, hi)`` via ``index``, each
+    block's rows reversed if ``flip_rows``), ``'file'`` (the file ``path`` an
+    option names, see ``Stage.files``) or ``'none'`` (such an option is None).
     """
 
     name: str
@@ -63,6 +65,7 @@ class InputSpec:
     lo: int = 0
     hi: int = 0
     flip_rows: bool = False
+    path: Path | None = None
 
     def load(self) -> Any:
         """Read the input from the product store or the raw files."""
@@ -73,6 +76,10 @@ class InputSpec:
             return LazyProducts(self.units)
         if self.kind == "raw_files":
             return read_raw_files(self.raw_dir, self.names)
+        if self.kind == "file":
+            return read_external(self.path)
+        if self.kind == "none":
+            return None
         if self.kind == "raw_rows":
             return read_rows(self.raw_dir, self.index, self.lo, self.hi, flip_rows=self.flip_rows)
         raise ValueError(f"Unknown input kind {self.kind!r}.")

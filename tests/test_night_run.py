@@ -12,6 +12,7 @@ import shutil
 from pathlib import Path
 
 import numpy as np
+import pytest
 import yaml
 from astropy.io import fits
 from astropy.table import Table
@@ -185,3 +186,65 @@ def test_the_demo_night_runs_end_to_end(tmp_path, capsys):
     for line in capsys.readouterr().out.splitlines()[2:]:
         done, stale, missing, failed = line.split()[2:6]
         assert (stale, missing, failed) == ("0", "0", "0") and int(done) >= 1, line
+
+
+# ------------------------------------------------------- an external flat
+
+
+def test_columns_can_come_from_another_night(tmp_path, capsys):
+    """stages.columns.flat_file: a solved table is adopted instead of solving one."""
+    first = _night(tmp_path / "first")
+    assert main(["run", str(first), "--to", "columns"]) == 0
+    capsys.readouterr()
+    solved = tmp_path / "first/out/n/columns/night/columns.ecsv"
+    # A second night of the same camera (another seed, a sky too flat to solve
+    # its own flat) uses the first night's table; the path is relative to
+    # its config file.
+    second = _night(
+        tmp_path / "second",
+        simulate={"seed": 7, "sky": {"sky_ramp": 0.0}},
+        stages={"columns": {"flat_file": "../first/out/n/columns/night/columns.ecsv"}},
+    )
+    assert main(["run", str(second), "--to", "calibrate"]) == 0
+    assert "CalibrationWarning" not in capsys.readouterr().err  # no solve, no fallback
+    adopted = _product(tmp_path / "second/out/n/columns/night", "columns")
+    reference = Table.read(solved)
+    np.testing.assert_array_equal(adopted["flat"], reference["flat"])
+    np.testing.assert_array_equal(adopted["dark"], reference["dark"])
+    np.testing.assert_array_equal(adopted["flags"], reference["flags"])
+    assert adopted.meta["method"] == "external" and adopted.meta["source"] == "columns.ecsv"
+    # The file's content is an input: changing it makes the columns stale.
+    reference["flat"][0] *= 1.01
+    reference.write(solved, overwrite=True)
+    assert main(["status", str(second)]) == 0
+    assert "columns stale: night: inputs changed: flat_file" in capsys.readouterr().out
+    # A missing file blocks the stage and says which option names it.
+    solved.unlink()
+    assert main(["run", str(second), "--stage", "columns"]) == 1
+    assert "stages.columns.flat_file: no file" in capsys.readouterr().out
+
+
+def test_an_adopted_table_must_fit_the_camera():
+    from pipeline.stages.calibrate import adopt_columns
+
+    table = Table({"flat": np.ones(4), "dark": np.zeros(4)})
+    assert list(adopt_columns(table, 4)["flags"]) == [0, 0, 0, 0]
+    with pytest.raises(ValueError, match="has 4 rows but the camera has 6 image columns"):
+        adopt_columns(table, 6)
+    with pytest.raises(ValueError, match=r"lacks \['dark'\]"):
+        adopt_columns(Table({"flat": np.ones(4)}), 4)
+
+
+def test_a_stage_names_only_option_fields_as_files():
+    from pydantic import BaseModel
+
+    from pipeline.stages.base import Stage
+
+    class Options(BaseModel):
+        table: Path | None = None
+
+    Stage("uses_a_file", lambda **_: {}, Options, files=("table",))  # fine
+    with pytest.raises(ValueError, match="files names 'tabel', which is not a field"):
+        Stage("uses_a_file", lambda **_: {}, Options, files=("tabel",))
+    with pytest.raises(TypeError, match="must be tuples of names"):
+        Stage("uses_a_file", lambda **_: {}, Options, files="table")

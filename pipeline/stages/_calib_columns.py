@@ -41,7 +41,7 @@ from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MaskBit
 from pipeline.stages._calib_chunks import transposed
 
-__all__ = ["solve_columns", "summarize_columns"]
+__all__ = ["adopt_columns", "solve_columns", "summarize_columns"]
 
 log = logging.getLogger(__name__)
 
@@ -328,6 +328,65 @@ def solve_columns(
         result.meta["sky_max"],
         int(bad.sum()),
         int((hot & ~bad).sum()),
+        n_columns,
+    )
+    return result
+
+
+def adopt_columns(table: Table, n_columns: int, *, source: str = "") -> Table:
+    """Check a solved ``columns`` table from elsewhere and use it for this night.
+
+    A 1-D flat and additive level solved on another night, or on a twilight
+    or dome strip, instead of the night's own sky: useful when the night's
+    sky changes too little to separate them, or to keep one flat for a run
+    of nights.
+
+    Parameters
+    ----------
+    table : astropy.table.Table
+        A table such as :func:`solve_columns` returns: one row per image
+        column with at least ``flat`` (response, mean about 1) and ``dark``
+        (e- per pixel); ``flags`` (MaskBit) is kept if present.
+    n_columns : int
+        Image columns of this night's camera.
+    source : str
+        Where the table comes from, recorded in the meta.
+
+    Returns
+    -------
+    astropy.table.Table
+        ``column``, ``flat``, ``dark``, ``flags`` (and the table's other
+        columns); meta ``method='external'``, ``source`` and the table's own
+        meta under ``source_meta``.
+
+    Raises
+    ------
+    ValueError
+        If a column is missing or the length is not ``n_columns``.
+    """
+    missing = [name for name in ("flat", "dark") if name not in table.colnames]
+    if missing:
+        raise ValueError(
+            f"The columns table {source or ''} lacks {missing}; give a table written by the "
+            "columns stage (its columns.ecsv product)."
+        )
+    if len(table) != n_columns:
+        raise ValueError(
+            f"The columns table {source or ''} has {len(table)} rows but the camera has "
+            f"{n_columns} image columns; use a table solved for this camera geometry."
+        )
+    result = Table(table, copy=True)
+    result["column"] = np.arange(n_columns)
+    if "flags" not in result.colnames:
+        result["flags"] = np.zeros(n_columns, np.uint16)
+    result["flags"] = np.asarray(result["flags"], dtype=np.uint16)
+    first = ["column", "flat", "dark", "flags"]
+    result = result[first + [c for c in result.colnames if c not in first]]
+    result.meta = {"method": "external", "source": source, "source_meta": dict(table.meta)}
+    log.info(
+        "Columns from %s: %d flagged of %d",
+        source or "a table",
+        int(np.count_nonzero(result["flags"])),
         n_columns,
     )
     return result

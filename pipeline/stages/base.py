@@ -265,6 +265,14 @@ class Stage:
         the stage's config hash, so changing them marks its products stale.
     defines_rows : bool
         This night-scoped stage returns the :data:`BLOCK_INDEX` product.
+    files : tuple of str
+        Names of option fields (``pathlib.Path | None``) that name a file the
+        stage uses, e.g. a solved table from another night.  The config
+        resolves the path against the config file's folder; the runner reads
+        the file (``.ecsv`` as a Table, ``.fits`` as its first table HDU or
+        image array, ``.json`` as JSON), hashes its content into the unit's
+        input hashes and hands the object to the stage as ``inputs[name]``
+        (None when the option is None).  The stage never opens it.
     description : str
         One line for ``zdrift status`` and the docs.
     version : int
@@ -279,6 +287,7 @@ class Stage:
     scope: Scope = "stretch"
     uses: tuple[str, ...] = ("site", "camera")
     defines_rows: bool = False
+    files: tuple[str, ...] = ()
     description: str = ""
     version: int = 1
 
@@ -298,11 +307,17 @@ class Stage:
             )
         if not callable(self.run):
             raise TypeError(f"Stage {self.name!r}: run must be callable; got {self.run!r}.")
-        if isinstance(self.requires, str) or isinstance(self.uses, str):
+        if any(isinstance(names, str) for names in (self.requires, self.uses, self.files)):
             raise TypeError(
-                f"Stage {self.name!r}: requires and uses must be tuples of names, "
+                f"Stage {self.name!r}: requires, uses and files must be tuples of names, "
                 f"not a single string (write ('x',) not 'x')."
             )
+        for name in self.files:
+            if name not in self.options.model_fields or name in self.requires:
+                raise ValueError(
+                    f"Stage {self.name!r}: files names {name!r}, which is not a field of "
+                    f"{self.options.__name__} (or clashes with a required input)."
+                )
         if self.defines_rows and self.scope != "night":
             raise ValueError(f"Stage {self.name!r}: defines_rows needs scope='night'.")
         if RAW_ROWS in self.requires and self.scope != "stretch":

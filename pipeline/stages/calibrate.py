@@ -37,6 +37,7 @@ from __future__ import annotations
 import logging
 import warnings
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -47,7 +48,7 @@ from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MASK_DTYPE, MaskBit, describe_mask
 from pipeline.stages._calib_bias import overscan_levels, smooth_levels
 from pipeline.stages._calib_chunks import Scratch, row_chunks
-from pipeline.stages._calib_columns import solve_columns, summarize_columns
+from pipeline.stages._calib_columns import adopt_columns, solve_columns, summarize_columns
 from pipeline.stages._calib_cosmics import NO_DATA_VARIANCE, detect_cosmic_rays
 from pipeline.stages._calib_rows import stretch_rows_for_stage
 from pipeline.stages._calib_saturation import bleed_pixels, saturation_mask
@@ -61,6 +62,7 @@ __all__ = [
     "ColumnSolveOptions",
     "ColumnStatsOptions",
     "MaskBit",
+    "adopt_columns",
     "calibrate_stretch",
     "column_statistics",
     "detect_cosmic_rays",
@@ -566,6 +568,12 @@ class ColumnSolveOptions(_Options):
         gt=0,
         description="Largest median standard error of the responses from the regression; "
         "a night whose sky changes too little for it gets level ratios instead.",
+    )
+    flat_file: Path | None = Field(
+        None,
+        description="A solved columns table (.ecsv, e.g. the columns.ecsv product of another "
+        "night or of a twilight or dome strip) to use instead of solving one; relative paths "
+        "resolve against the config file's folder.",
     )
 
 
