@@ -180,6 +180,14 @@ def test_the_demo_night_runs_end_to_end(tmp_path, capsys):
     assert flags[379] & MaskBit.BAD_COLUMN and flags[996] & MaskBit.BAD_COLUMN
     # The night's sky changes by ~4 %: the flat comes from level ratios.
     assert columns.meta["method"] == "ratio"
+    # No stage warned on the way but for that (the runner records warnings
+    # in each unit's provenance), e.g. no "invalid value encountered".
+    for sidecar in sorted(products.glob("*/*/_provenance.json")):
+        warned = json.loads(sidecar.read_text())["warnings"]
+        if sidecar.parent.parent.name == "columns":
+            assert len(warned) == 1 and "varies too little" in warned[0], warned
+        else:
+            assert warned == [], (sidecar, warned)
     assert main(["run", str(config)]) == 0
     assert ": 0 units ran" in capsys.readouterr().out
     assert main(["status", str(config)]) == 0
