@@ -123,6 +123,13 @@ def test_plan_prints_the_site_and_camera_numbers(toy_file: Path, capsys) -> None
     assert "focal length" in out and "line time" in out
 
 
+def test_plan_of_the_toy_camera(toy_file: Path, capsys) -> None:
+    """Regression: a 6 x 16 px camera failed with 'no forward drift along the rows'."""
+    assert main(["plan", str(toy_file)]) == 0
+    out = capsys.readouterr().out
+    assert "crossing time (exposure)" in out and "nan" not in out
+
+
 def test_simulate_needs_a_simulate_section(toy_file: Path, capsys) -> None:
     assert main(["simulate", str(toy_file)]) == 2
     assert "the config has no 'simulate' section" in capsys.readouterr().err
