@@ -178,16 +178,33 @@ def test_the_demo_night_runs_end_to_end(tmp_path, capsys):
     # demo_frames/README.md: dead/low columns 379 and 996.
     flags = np.asarray(columns["flags"])
     assert flags[379] & MaskBit.BAD_COLUMN and flags[996] & MaskBit.BAD_COLUMN
-    # The night's sky changes by ~4 %: the flat comes from level ratios.
-    assert columns.meta["method"] == "ratio"
-    # No stage warned on the way but for that (the runner records warnings
-    # in each unit's provenance), e.g. no "invalid value encountered".
+    # The twilight sky fades by a third: the flat comes from the regression of
+    # each column's level on the sky, not from the level-ratio fallback.
+    assert columns.meta["method"] == "regression"
+    # demo_frames/README.md: hot columns 362, 683 and 974.  On this 188 s night
+    # the additive levels are measured to ~65 e- (median dark_error) and the
+    # levels of the other columns not flagged BAD_COLUMN scatter by ~62 e-
+    # (robust sigma), while the hot pixels add a few hundred e-: a 10-sigma
+    # separation per column is out of reach (measured 269, 127, 315 e-, i.e.
+    # 4.4, 2.1, 5.1 robust sigma above those columns' median).  Checked
+    # instead, with ~20 % margin on the fixed demo data: each hot column's
+    # level is positive at more than 2 of its own standard errors (measured
+    # 3.8, 2.4, 3.4), and the three together stand more than 5 sigma (of their
+    # mean) above the other columns (measured 6.6; a ratio solve gives 0).
+    hot = [362, 683, 974]
+    dark, dark_error = np.asarray(columns["dark"]), np.asarray(columns["dark_error"])
+    assert np.all(dark[hot] > 2 * dark_error[hot]), (dark[hot], dark_error[hot])
+    others = np.ones(dark.size, bool)
+    others[hot] = False
+    others &= (flags & MaskBit.BAD_COLUMN) == 0
+    centre = np.median(dark[others])
+    sigma = 1.4826 * np.median(np.abs(dark[others] - centre))
+    assert dark[hot].mean() - centre > 5 * sigma / np.sqrt(len(hot)), (dark[hot], sigma)
+    # No stage warned on the way (the runner records warnings in each unit's
+    # provenance), e.g. no "invalid value encountered" and no ratio fallback.
     for sidecar in sorted(products.glob("*/*/_provenance.json")):
         warned = json.loads(sidecar.read_text())["warnings"]
-        if sidecar.parent.parent.name == "columns":
-            assert len(warned) == 1 and "varies too little" in warned[0], warned
-        else:
-            assert warned == [], (sidecar, warned)
+        assert warned == [], (sidecar, warned)
     assert main(["run", str(config)]) == 0
     assert ": 0 units ran" in capsys.readouterr().out
     assert main(["status", str(config)]) == 0
