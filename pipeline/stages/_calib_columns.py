@@ -45,6 +45,9 @@ __all__ = ["adopt_columns", "solve_columns", "summarize_columns"]
 
 log = logging.getLogger(__name__)
 
+#: A hot column's excess level must exceed this many of its own fit errors.
+_HOT_SIGNIFICANCE = 3.0
+
 
 def _truncated_variance(clip: float) -> float:
     """Variance of a unit normal truncated at +-clip (analytic)."""
@@ -214,8 +217,8 @@ def solve_columns(
     hot_level, hot_sigma : float
         Columns whose additive level exceeds the median column's by more than
         ``hot_level`` electrons per pixel and by more than ``hot_sigma`` times
-        the columns' robust spread (which a fixed bias pattern sets) are
-        flagged HOT_COLUMN.
+        the columns' robust spread (which a fixed bias pattern sets), and by
+        more than 3 times their own fit error, are flagged HOT_COLUMN.
     min_blocks : int
         Minimum number of blocks for a column fit; fewer gives BAD_COLUMN.
     clip : float
@@ -296,7 +299,14 @@ def solve_columns(
     )
     excess = intercept - _median_or_nan(intercept[~bad])
     spread = 1.4826 * _median_or_nan(np.abs(excess[~bad]))
-    hot = (excess > hot_level) & (excess > hot_sigma * spread)
+    # ...and the excess must stand out from the column's own fit error, so a
+    # column with few clean blocks (next to a bleed, say) is not called hot on
+    # a noisy level.
+    hot = (
+        (excess > hot_level)
+        & (excess > hot_sigma * spread)
+        & (excess > _HOT_SIGNIFICANCE * intercept_err)
+    )
     flags[bad] |= int(MaskBit.BAD_COLUMN)
     flags[hot & ~bad] |= int(MaskBit.HOT_COLUMN)
     result = Table(

@@ -44,5 +44,5 @@ STAGE = Stage(
     files=("flat_file",),
     description="Solve the night's 1-D flat and per-column additive level from the sky "
     "(or adopt a solved table: flat_file).",
-    version=2,  # 2: sky from relative levels; normalised lines
+    version=3,  # 2: sky from relative levels; normalised lines; 3: hot needs 3 own errors
 )
