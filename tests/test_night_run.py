@@ -112,6 +112,42 @@ def test_the_start_ramp_is_flagged_and_left_out_of_the_solve(tmp_path, capsys):
     assert stats["block"][0] == 2  # blocks of 64 rows: rows 0-127 are left out
 
 
+def test_the_flat_can_be_solved_from_a_strip_of_the_night(tmp_path, capsys):
+    """stages.column_stats.solve_rows: solve the 1-D flat from chosen night rows
+    only (e.g. a strip of twilight).  Self-consistency: the strip's solution
+    uses only its blocks and agrees with the whole night's within errors."""
+    # The tiny test chip measures responses to ~0.3-0.7 %: allow the regression.
+    config = _night(tmp_path, stages={"columns": {"min_blocks": 4, "max_flat_error": 0.02}})
+    assert main(["run", str(config), "--to", "columns"]) == 0
+    whole = _product(tmp_path / "out/n/columns/night", "columns")
+    assert (
+        main(
+            [
+                "run",
+                str(config),
+                "--to",
+                "columns",
+                "--set",
+                "stages.column_stats.solve_rows=[512, 1024]",
+            ]
+        )
+        == 0
+    )
+    strip = _product(tmp_path / "out/n/columns/night", "columns")
+    # 512 rows in blocks of 64 rows
+    assert strip.meta["n_blocks"] == 8 and whole.meta["n_blocks"] > 8
+    assert strip.meta["method"] == "regression"
+    good = (strip["flags"] == 0) & (whole["flags"] == 0)
+    # Both fit the same columns on overlapping data: they agree within 5 times the
+    # strip's own (larger) standard errors, for all but a rare outlier.
+    pull = (strip["flat"] - whole["flat"])[good] / strip["flat_error"][good]
+    assert np.mean(np.abs(pull) < 5) > 0.97, pull
+    # A range the wrong way round is a config error naming the key.
+    capsys.readouterr()
+    assert main(["run", str(config), "--set", "stages.column_stats.solve_rows=[600, 100]"]) == 2
+    assert "solve_rows" in capsys.readouterr().err
+
+
 # ------------------------------------------------------------------- flips
 
 

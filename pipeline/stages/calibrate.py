@@ -42,7 +42,7 @@ from typing import Any
 
 import numpy as np
 from astropy.table import Table
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MASK_DTYPE, MaskBit, describe_mask
@@ -551,6 +551,20 @@ class ColumnStatsOptions(_BiasOptions):
 
     block_rows: int = Field(256, ge=8, description="Rows per statistics block.")
     clip: float = Field(3.0, gt=1, description="Clipping of stars and hits, noise units.")
+    solve_rows: tuple[int, int] | None = Field(
+        None,
+        description="Night rows [start, stop) to solve the 1-D flat and dark from, e.g. a "
+        "strip of evening twilight whose sky changes fast; null: every usable row.",
+    )
+
+    @model_validator(mode="after")
+    def _check_solve_rows(self):
+        if self.solve_rows is not None and not 0 <= self.solve_rows[0] < self.solve_rows[1]:
+            raise ValueError(
+                f"solve_rows must be [start, stop) night rows with 0 <= start < stop; got "
+                f"{list(self.solve_rows)}."
+            )
+        return self
 
 
 class ColumnSolveOptions(_Options):

@@ -22,7 +22,10 @@ def _run(*, inputs, options: ColumnStatsOptions, context) -> dict[str, Any]:
     # Partly exposed rows after clocking started (ingest's start_ramp) would
     # bias the regression of level on sky: the dark scales with the exposure.
     use_rows = rows.rows_since_start >= rows.tdi_rows
-    if not (use_rows & rows.covered).any():
+    if options.solve_rows is not None:  # e.g. only the twilight strip of the night
+        start, stop = options.solve_rows
+        use_rows &= (rows.night_row >= start) & (rows.night_row < stop)
+    if not (use_rows & rows.covered).any() and options.solve_rows is None:
         warnings.warn(
             f"Stretch {context.stretch.id}: no row is usable for the column solve (all "
             f"{int(rows.covered.sum())} rows with data are within TDIROWS={rows.tdi_rows} "
@@ -41,7 +44,7 @@ def _run(*, inputs, options: ColumnStatsOptions, context) -> dict[str, Any]:
         saturation=rows.saturation,
         segment=rows.segment,
         use_rows=use_rows,
-        **options_kwargs(options),
+        **options_kwargs(options, exclude=("solve_rows",)),
     )
     return {"column_stats": table}
 
