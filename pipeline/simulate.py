@@ -87,6 +87,8 @@ from pipeline._render import GaussianMixturePSF, render_tracks
 from pipeline._starfield import catalog_stars, draw_magnitudes, draw_star_field, field_bounds
 from pipeline._starfield import extra_stars as user_stars
 from pipeline._truth import reference_table, truth_table
+from pipeline.config import load_config
+from pipeline.exceptions import ConfigError
 from pipeline.geometry.instrument import Camera, Site
 from pipeline.geometry.optics import resolve_focal_length
 
@@ -674,28 +676,32 @@ def write_night(night: SimulatedNight, out_dir: str | Path) -> list[Path]:
     return written
 
 
-def load_simulation_config(path: str | Path) -> tuple[Site, Camera, SimulationOptions, Path | None]:
-    """Read ``site``, ``camera`` and ``simulate`` from a YAML file (minimal loader).
+def load_simulation_config(path: str | Path) -> tuple[Site, Camera, SimulationOptions, Path]:
+    """Read ``site``, ``camera`` and ``simulate`` from a night's YAML config.
 
-    Returns the site, camera, options and the ``night.raw_dir`` folder (resolved
-    against the file's folder), or None if the file has none.
+    The file is read by :func:`pipeline.config.load_config` (``extends``,
+    strict keys, errors with file and line), as ``zdrift simulate`` reads it.
+
+    Returns
+    -------
+    site : Site
+    camera : Camera
+    options : SimulationOptions
+    raw_dir : pathlib.Path
+        The ``night.raw_dir`` folder, resolved against the file's folder.
+
+    Raises
+    ------
+    pipeline.exceptions.ConfigError
+        If the file is invalid or has no ``simulate`` section.
     """
-    import yaml
-
-    path = Path(path)
-    with open(path) as fh:
-        data = yaml.safe_load(fh) or {}
-    missing = [k for k in ("site", "camera", "simulate") if k not in data]
-    if missing:
-        raise ValueError(f"{path}: missing section(s) {missing}; add them to the config.")
-    raw_dir = (data.get("night") or {}).get("raw_dir")
-    out = (path.parent / raw_dir).resolve() if raw_dir else None
-    return (
-        Site(**data["site"]),
-        Camera(**data["camera"]),
-        SimulationOptions(**data["simulate"]),
-        out,
-    )
+    config = load_config(path)
+    options = config.section("simulate")
+    if options is None:
+        raise ConfigError(
+            f"{path}: no 'simulate' section; add one (see configs/simulate_demo.yaml)."
+        )
+    return config.site(), config.camera(), options, Path(config.night.raw_dir).resolve()
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -709,8 +715,6 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     site, camera, options, raw_dir = load_simulation_config(args.config)
     out = Path(args.output) if args.output else raw_dir
-    if out is None:
-        parser.error("give --output or a night.raw_dir in the config")
     night = simulate_night(site, camera, options)
     paths = write_night(night, out)
     print(f"wrote {len(paths)} files to {out}")
@@ -720,5 +724,9 @@ def main(argv: list[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
+    # Call main of the imported module: the config layer validates the section
+    # with pipeline.simulate's option classes, not with this __main__ copy's.
+    from pipeline.simulate import main as _main
+
     logging.basicConfig(level=logging.INFO)
-    sys.exit(main())
+    sys.exit(_main())

@@ -518,17 +518,22 @@ def test_hipparcos_stars_can_be_added():
     assert np.all(np.asarray(real["mag"]) <= 13.0)
 
 
-def test_module_command_writes_a_night(tmp_path, capsys):
-    import yaml
-
-    from pipeline.simulate import main
-
-    config = {
+def _tiny_night_config():
+    """A config of a 2-block, 64-column night that simulates in a second."""
+    return {
         "night": {"name": "t", "raw_dir": "raw", "output_dir": "out"},
         "site": {"latitude": 30.0, "longitude": 10.0, "height": 100.0},
         "camera": {"n_columns": 64, "tdi_rows": 128, "pixel_size": 15.0, "focal_length": 2.0},
         "simulate": {"start": START, "n_blocks": 2, "block_rows": 32, "compress": False},
     }
+
+
+def test_module_command_writes_a_night(tmp_path, capsys):
+    import yaml
+
+    from pipeline.simulate import main
+
+    config = _tiny_night_config()
     path = tmp_path / "sim.yaml"
     path.write_text(yaml.safe_dump(config))
     assert main([str(path)]) == 0
@@ -539,3 +544,26 @@ def test_module_command_writes_a_night(tmp_path, capsys):
     path.write_text(yaml.safe_dump(config))
     with pytest.raises(ValueError, match="simulate"):
         load_simulation_config(path)
+
+
+def test_module_command_runs_as_a_script(tmp_path):
+    """``python -m pipeline.simulate`` works as a script, not only via main().
+
+    Run as ``__main__`` the module's classes are a second copy; the config layer
+    validates with pipeline.simulate's, so the script must call that main.
+    """
+    import subprocess
+    import sys
+
+    import yaml
+
+    path = tmp_path / "sim.yaml"
+    path.write_text(yaml.safe_dump(_tiny_night_config()))
+    done = subprocess.run(
+        [sys.executable, "-m", "pipeline.simulate", str(path)],
+        capture_output=True,
+        text=True,
+        cwd=REPO,
+    )
+    assert done.returncode == 0, done.stderr
+    assert "wrote 4 files" in done.stdout
