@@ -127,6 +127,30 @@ def _segments(segment, n_rows: int) -> np.ndarray:
     return segment
 
 
+def _check_raw(image, overscan) -> tuple[np.ndarray, np.ndarray]:
+    """Image and overscan as 2-D arrays with the same rows, or a ValueError."""
+    overscan = np.asarray(overscan)
+    if image.ndim != 2 or overscan.ndim != 2 or overscan.shape[0] != image.shape[0]:
+        raise ValueError(
+            f"image and overscan must be 2-D with the same rows (scan axis); got shapes "
+            f"{image.shape} and {overscan.shape}; pass the rows of one stretch, the image "
+            "columns and the overscan columns split by the DATASEC/BIASSEC sections."
+        )
+    return image, overscan
+
+
+def _column_vector(value, n_columns: int, name: str) -> np.ndarray | None:
+    """A per-column float32 vector of shape (n_columns,), None kept as None."""
+    if value is None:
+        return None
+    value = np.asarray(value, dtype=np.float32)
+    if value.shape != (n_columns,):
+        raise ValueError(
+            f"{name} must have shape ({n_columns},), one value per image column; got {value.shape}."
+        )
+    return value
+
+
 def _row_bias(overscan, gain, read_noise, segment, smoothing, clip) -> np.ndarray:
     """Smoothed overscan bias of each row, ADU, per segment (NaN where segment < 0).
 
@@ -196,23 +220,12 @@ def subtract_bias(
     bias : ndarray of float64, shape (n_rows,)
         Subtracted bias level of each row in ADU.
     """
-    image = np.asarray(image)
-    if image.ndim != 2 or overscan.ndim != 2 or overscan.shape[0] != image.shape[0]:
-        raise ValueError(
-            f"image and overscan must be 2-D with the same rows (scan axis); got shapes "
-            f"{image.shape} and {np.shape(overscan)}."
-        )
+    image, overscan = _check_raw(np.asarray(image), overscan)
     n_rows, n_columns = image.shape
     gain = _per_row(gain, n_rows, "gain")
     smoothing = {"window": bias_window, "polyorder": bias_polyorder, "max_window": bias_max_window}
     bias = _row_bias(overscan, gain, read_noise, segment, smoothing, overscan_clip)
-    if column_bias is not None:
-        column_bias = np.asarray(column_bias, dtype=np.float32)
-        if column_bias.shape != (n_columns,):
-            raise ValueError(
-                f"column_bias must have shape ({n_columns},), one value per image column; "
-                f"got {column_bias.shape}."
-            )
+    column_bias = _column_vector(column_bias, n_columns, "column_bias")
     bias32 = bias.astype(np.float32)[:, None]
     gain32 = gain.astype(np.float32)[:, None]
     electrons = np.empty((n_rows, n_columns), dtype=np.float32)
@@ -402,13 +415,7 @@ def calibrate_stretch(
     -------
     CalibratedStretch
     """
-    image = np.asarray(image, dtype=np.float32)
-    overscan = np.asarray(overscan)
-    if image.ndim != 2 or overscan.ndim != 2 or overscan.shape[0] != image.shape[0]:
-        raise ValueError(
-            f"image and overscan must be 2-D with the same rows (scan axis); got shapes "
-            f"{image.shape} and {overscan.shape}."
-        )
+    image, overscan = _check_raw(np.asarray(image, dtype=np.float32), overscan)
     n_rows, n_columns = image.shape
     gain = _per_row(gain, n_rows, "gain")
     read_noise = _per_row(read_noise, n_rows, "read_noise")
@@ -417,13 +424,7 @@ def calibrate_stretch(
     smoothing = {"window": bias_window, "polyorder": bias_polyorder, "max_window": bias_max_window}
     bias = _row_bias(overscan, gain, read_noise, segment, smoothing, overscan_clip)
     flat, dark, column_flags = _column_model(columns, flat, dark, n_columns)
-    if column_bias is not None:
-        column_bias = np.asarray(column_bias, dtype=np.float32)
-        if column_bias.shape != (n_columns,):
-            raise ValueError(
-                f"column_bias must have shape ({n_columns},), one value per image column; "
-                f"got {column_bias.shape}."
-            )
+    column_bias = _column_vector(column_bias, n_columns, "column_bias")
     image_e, variance, saturated, nonfinite = _calibrate_pixels(
         image, bias, gain, read_noise, saturation, flat, dark, column_bias
     )
