@@ -49,6 +49,7 @@ from numpy.typing import ArrayLike
 from scipy.interpolate import CubicSpline
 
 from pipeline.geometry.instrument import Site
+from pipeline.geometry.optics import ARCSEC_PER_RADIAN
 from pipeline.geometry.sitetime import altaz_frame, offline_astropy_warnings, times_since
 
 __all__ = [
@@ -61,7 +62,6 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
-_ARCSEC = np.pi / 648000.0
 _CHUNK = 1 << 12
 
 
@@ -80,7 +80,9 @@ def axis_basis_enu(tilt_east: float = 0.0, tilt_north: float = 0.0) -> np.ndarra
         Rows ``e_xi`` (towards west), ``e_eta`` (towards north) and the axis,
         each an (east, north, up) unit vector.
     """
-    axis = np.array([np.tan(tilt_east * _ARCSEC), np.tan(tilt_north * _ARCSEC), 1.0])
+    axis = np.array(
+        [np.tan(tilt_east / ARCSEC_PER_RADIAN), np.tan(tilt_north / ARCSEC_PER_RADIAN), 1.0]
+    )
     axis /= np.linalg.norm(axis)
     north = np.array([0.0, 1.0, 0.0])
     e_eta = north - axis[1] * axis
@@ -284,7 +286,7 @@ class ZenithAxis:
         log.debug(
             "zenith axis: %d nodes, fit residual %.3g uas",
             len(self.t_nodes),
-            self.fit_residual / _ARCSEC * 1e6,
+            self.fit_residual * ARCSEC_PER_RADIAN * 1e6,
         )
         values = np.column_stack(
             [
