@@ -28,8 +28,9 @@ leave it out of the column solve.
 
 Functions
 ---------
-:func:`read_block_header` and :func:`read_block_rows` are the file edge (the
-runner's business, also handy from Python); :func:`parse_block_header`,
+:func:`read_block_header` and :func:`read_block_rows` read one file, for use
+from Python (the runner reads raw files itself, in ``pipeline._rawio``, and
+hands the stage headers and rows); :func:`parse_block_header`,
 :func:`index_night` and :func:`describe_rows` are pure.
 """
 
