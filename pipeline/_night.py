@@ -112,6 +112,22 @@ class NightStore:
             return None
         return self.sidecar(stage, unit)
 
+    def _raw_names_or_reason(self) -> tuple[tuple[str, ...], str | None]:
+        """The raw file names, or why there are none (a wrong folder or pattern)."""
+        folder = self.raw_dir.resolve()
+        if not folder.is_dir():
+            return (), (
+                f"night.raw_dir {folder} is not a folder: point night.raw_dir (relative "
+                "to the config file) at the folder of the night's raw blocks"
+            )
+        names = tuple(self.raw_names())
+        if not names:
+            return (), (
+                f"no file in {folder} matches night.pattern {self.config.night.pattern!r}: "
+                "check the pattern or the folder"
+            )
+        return names, None
+
     def raw_names(self) -> list[str]:
         if self._raw_names is None:
             self._raw_names = list_raw_files(self.raw_dir, self.config.night.pattern)
@@ -148,7 +164,9 @@ class NightStore:
         specs: list[InputSpec] = []
         for name in stage.requires:
             if name == RAW_FILES:
-                names = tuple(self.raw_names())
+                names, missing = self._raw_names_or_reason()
+                if missing is not None:
+                    return hashes, specs, missing
                 hashes[name] = raw_files_fingerprint(self.raw_dir, names)
                 specs.append(InputSpec(name, "raw_files", raw_dir=self.raw_dir, names=names))
                 continue

@@ -26,6 +26,7 @@ Example
 from __future__ import annotations
 
 import datetime
+import difflib
 import logging
 import socket
 from collections.abc import Callable, Iterable, Sequence
@@ -108,7 +109,9 @@ def select_stages(
 
     def position(name: str, option: str) -> int:
         if name not in names:
-            raise ValueError(f"{option}: no stage {name!r}; stages are {', '.join(names)}.")
+            close = difflib.get_close_matches(name, names, n=1)
+            hint = f" Did you mean {close[0]!r}?" if close else ""
+            raise ValueError(f"{option}: no stage {name!r}.{hint} Stages are {', '.join(names)}.")
         return names.index(name)
 
     if stage is not None:

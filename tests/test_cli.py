@@ -96,7 +96,7 @@ def test_failed_stretch_exits_1_and_logs_the_traceback(toy_file: Path, capsys) -
 
 USAGE_ERRORS = [
     (["--stage", "smooth", "--to", "total"], "--to cannot be combined with --stage"),
-    (["--stage", "smoth"], "no stage 'smoth'; stages are index, scale, smooth, total"),
+    (["--stage", "smoth"], "no stage 'smoth'. Did you mean 'smooth'? Stages are index, scale"),
     (["--stretches", "1,x"], "cannot read 'x'"),
     (["--stage", "scale", "--from", "index"], "not allowed with argument"),
 ]
@@ -106,6 +106,22 @@ USAGE_ERRORS = [
 def test_usage_errors_exit_2(toy_file: Path, capsys, extra: list[str], message: str) -> None:
     assert main(["run", str(toy_file), *extra]) == 2
     assert message in capsys.readouterr().err
+
+
+@pytest.mark.parametrize(
+    ("raw_dir", "message"),
+    [
+        ("missing", "night.raw_dir {path} is not a folder"),
+        ("empty", "no file in {path} matches night.pattern"),
+    ],
+)
+def test_a_night_without_raw_files_says_why(toy_file, capsys, raw_dir, message) -> None:
+    """A wrong raw_dir or pattern blocks ingest with a reason, not a puzzle downstream."""
+    path = toy_file.parent / raw_dir
+    if raw_dir == "empty":
+        path.mkdir()
+    assert main(["run", str(toy_file), "--set", f"night.raw_dir={path}"]) == 1
+    assert f"blocked: index/night: {message.format(path=path)}" in capsys.readouterr().out
 
 
 def test_locked_night_exits_3(toy_file: Path, capsys) -> None:

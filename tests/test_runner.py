@@ -127,7 +127,7 @@ def test_select_stages_and_stretch_parsing() -> None:
         "smooth",
     ]
     assert [s.name for s in select_stages(GRAPH, to_stage="scale")] == ["index", "scale"]
-    with pytest.raises(ValueError, match="no stage 'smoth'; stages are index, scale"):
+    with pytest.raises(ValueError, match=r"no stage 'smoth'\. Did you mean 'smooth'\? Stages are"):
         select_stages(GRAPH, stage="smoth")
     with pytest.raises(ValueError, match="comes after"):
         select_stages(GRAPH, from_stage="total", to_stage="scale")
