@@ -44,6 +44,7 @@ import difflib
 import functools
 import importlib
 import importlib.util
+import os
 import types
 import typing
 from collections.abc import Iterable, Mapping, Sequence
@@ -578,7 +579,8 @@ def _resolve_paths(data: dict[str, Any], keys: Iterable[KeyPath], folder: Path) 
             node = node.get(part) if isinstance(node, dict) else None
         if isinstance(node, dict) and isinstance(node.get(key[-1]), str):
             value = Path(node[key[-1]]).expanduser()
-            node[key[-1]] = str(value if value.is_absolute() else folder / value)
+            # normpath: show users demo_products/, not configs/../demo_products/
+            node[key[-1]] = os.path.normpath(value if value.is_absolute() else folder / value)
 
 
 # -------------------------------------------------------------------------- errors

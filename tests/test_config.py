@@ -76,7 +76,8 @@ def test_relative_paths_resolve_against_the_file_that_sets_them(tmp_path: Path) 
     )
     config = load_config(night, graph=TOY_GRAPH)
     assert config.night.raw_dir == tmp_path / "nights" / "raw"
-    assert config.night.output_dir == tmp_path / "site" / ".." / "shared_out"
+    # site/../shared_out, written without the ".." (normalised)
+    assert config.night.output_dir == tmp_path / "shared_out"
 
 
 def test_deep_merge_keeps_base_keys_and_top_wins(tmp_path: Path) -> None:
