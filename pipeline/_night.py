@@ -35,7 +35,7 @@ from pipeline.stages.base import (
     plan_stretches,
 )
 
-__all__ = ["NIGHT", "NightStore", "format_ids", "night_dir", "unit_id"]
+__all__ = ["NIGHT", "NightStore", "format_ids", "missing_problems", "night_dir", "unit_id"]
 
 #: Unit id of a night-scoped stage.
 NIGHT = "night"
@@ -61,6 +61,27 @@ def unit_id(stretch: Stretch | None) -> str:
     return NIGHT if stretch is None else stretch.id
 
 
+def missing_problems(missing: dict[str, str]) -> list[str]:
+    """Problem lines for the stretches a ``partial_inputs`` stage ran without.
+
+    Examples
+    --------
+    >>> missing_problems({"s0001": "failed in scale", "s0003": "failed in scale"})
+    ['ran without stretches s0001, s0003 (failed in scale)']
+    """
+    return [
+        f"ran without stretch{'es' if len(ids) > 1 else ''} {format_ids(ids)} ({reason})"
+        for reason, ids in _by_reason(missing).items()
+    ]
+
+
+def _by_reason(missing: dict[str, str]) -> dict[str, list[str]]:
+    by_reason: dict[str, list[str]] = {}
+    for unit, reason in missing.items():
+        by_reason.setdefault(reason, []).append(unit)
+    return by_reason
+
+
 class NightStore:
     """The product store of one night, seen through the current config."""
 
@@ -79,6 +100,7 @@ class NightStore:
         """Forget cached sidecars and states; reload the block index and stretch plan."""
         self._sidecars: dict[tuple[str, str], dict[str, Any] | None] = {}
         self._states: dict[tuple[str, str], tuple[str, str]] = {}
+        self._missing: dict[str, dict[str, str]] = {}
         self._raw_names: list[str] | None = None
         self.index = None
         self.stretches: tuple[Stretch, ...] = ()
@@ -111,6 +133,39 @@ class NightStore:
         if read_failure(self.unit_dir(stage, unit)) is not None:
             return None
         return self.sidecar(stage, unit)
+
+    def missing_stretches(self, stage: Stage) -> dict[str, str]:
+        """Stretch id -> why it is left out of a ``partial_inputs`` stage's inputs.
+
+        A stretch is left out when, in any stretch-scoped stage that ``stage``
+        requires, its unit failed, is blocked (its own inputs are unavailable)
+        or has no products.  Empty for other stages.  In plan order.
+        """
+        if stage.name not in self._missing:
+            missing: dict[str, str] = {}
+            upstreams = [
+                self.stages[name]
+                for name in stage.requires
+                if name in self.stages and self.stages[name].scope == "stretch"
+            ]
+            for stretch in self.stretches if stage.partial_inputs else ():
+                for upstream in upstreams:
+                    reason = self._unusable(upstream, stretch)
+                    if reason is not None:
+                        missing[stretch.id] = reason
+                        break
+            self._missing[stage.name] = missing
+        return self._missing[stage.name]
+
+    def _unusable(self, stage: Stage, stretch: Stretch) -> str | None:
+        """Why a stretch's unit of ``stage`` cannot feed a night-wide stage, or None."""
+        if read_failure(self.unit_dir(stage, stretch.id)) is not None:
+            return f"failed in {stage.name}"
+        if self.inputs(stage, stretch)[2] is not None:
+            return f"blocked in {stage.name}"
+        if self.sidecar(stage, stretch.id) is None:
+            return f"missing in {stage.name}"
+        return None
 
     def _raw_names_or_reason(self) -> tuple[tuple[str, ...], str | None]:
         """The raw file names, or why there are none (a wrong folder or pattern)."""
@@ -162,6 +217,7 @@ class NightStore:
         """Input hashes, how to load the inputs, and why they are unavailable (or None)."""
         hashes: dict[str, str] = {}
         specs: list[InputSpec] = []
+        skipped = self.missing_stretches(stage)
         for name in stage.requires:
             if name == RAW_FILES:
                 names, missing = self._raw_names_or_reason()
@@ -195,16 +251,23 @@ class NightStore:
             elif stage.scope == "stretch":
                 ids = [stretch.id]
             else:
-                ids = [s.id for s in self.stretches]
-                if not ids:
+                if not self.stretches:
                     return hashes, specs, self.no_index_reason()
+                ids = [s.id for s in self.stretches if s.id not in skipped]
+                if not ids:
+                    groups = _by_reason(skipped).items()
+                    why = "; ".join(f"{format_ids(group)} {reason}" for reason, group in groups)
+                    return hashes, specs, f"needs {name} products of a stretch; none usable: {why}"
             units = [(self.unit_dir(upstream, i), self.usable(upstream, i)) for i in ids]
             missing = [i for i, (_, record) in zip(ids, units, strict=True) if record is None]
             if missing:
                 problem = f"needs {name} products for {format_ids(missing)} (missing or failed)"
                 return hashes, specs, problem
             if upstream.scope == "stretch" and stage.scope == "night":
-                hashes[name] = hash_json([record["output_hash"] for _, record in units])
+                digests = [record["output_hash"] for _, record in units]
+                # a full set hashes as it always did; a partial one also names its stretches
+                used = {"stretches": ids, "output_hashes": digests} if skipped else digests
+                hashes[name] = hash_json(used)
                 specs.append(InputSpec(name, "units", units=tuple(units)))
             else:
                 hashes[name] = units[0][1]["output_hash"]
@@ -258,8 +321,11 @@ class NightStore:
                 continue
             if upstream.scope == "night":
                 ups = [None]
-            else:
-                ups = [stretch] if stage.scope == "stretch" else list(self.stretches)
+            elif stage.scope == "stretch":
+                ups = [stretch]
+            else:  # the stretches left out are reported as problems, not as staleness
+                skipped = self.missing_stretches(stage)
+                ups = [s for s in self.stretches if s.id not in skipped]
             for up in ups:
                 up_state = self.state(upstream, up)[0]
                 if up_state != "done":
@@ -276,15 +342,23 @@ class NightStore:
     ) -> UnitTask:
         unit = unit_id(stretch)
         data = self.config_data(stage, stretch)
+        missing = self.missing_stretches(stage) if stretch is None else {}
+        context = dataclasses.replace(
+            self.context,
+            stretch=stretch,
+            missing_stretches=tuple(s for s in self.stretches if s.id in missing),
+        )
         return UnitTask(
             stage=stage,
             unit=unit,
             unit_dir=self.unit_dir(stage, unit),
             options=self.config.stage_options(stage.name),
-            context=dataclasses.replace(self.context, stretch=stretch),
+            context=context,
             inputs=tuple(specs),
             config=data,
             config_hash=hash_json(data),
             input_hashes=hashes,
             capture_logs=capture_logs,
+            missing_stretches=dict(missing),
+            input_problems=tuple(missing_problems(missing)),
         )

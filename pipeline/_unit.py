@@ -87,7 +87,12 @@ class InputSpec:
 
 @dataclass(frozen=True)
 class UnitTask:
-    """Everything a worker needs to run one unit (picklable)."""
+    """Everything a worker needs to run one unit (picklable).
+
+    ``missing_stretches`` (stretch id -> reason) are the stretches a
+    ``partial_inputs`` stage runs without; ``input_problems`` are the runner's
+    problem lines about them, recorded before the stage's own problems.
+    """
 
     stage: Stage
     unit: str
@@ -99,6 +104,8 @@ class UnitTask:
     config_hash: str
     input_hashes: Mapping[str, str]
     capture_logs: bool = False
+    missing_stretches: Mapping[str, str] = field(default_factory=dict)
+    input_problems: tuple[str, ...] = ()
 
 
 @dataclass
@@ -219,6 +226,7 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
                 warnings.simplefilter("always")
                 products = task.stage.run(inputs=inputs, options=task.options, context=task.context)
             products, problems = _check_products(task, products)
+            problems = [*task.input_problems, *problems]
             t2 = time.perf_counter()
             clean_unit(task.unit_dir)
             entries = write_products(task.unit_dir, products, _fits_cards(task))
@@ -246,6 +254,8 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
                 "warnings": _summarize_warnings(caught),
                 "problems": problems,
             }
+            if task.stage.partial_inputs:
+                record["missing_stretches"] = dict(task.missing_stretches)
             write_sidecar(task.unit_dir, record)
         except Exception as exc:  # reported to the runner, which logs it and goes on
             return UnitOutcome(

@@ -135,7 +135,8 @@ class UnitResult:
     ``status`` is ``'ran'``, ``'skipped'`` (up to date), ``'failed'`` or
     ``'blocked'`` (inputs missing).  ``problems`` are the one-line problems
     with its input that the stage reported (see
-    :data:`pipeline.stages.base.PROBLEMS`), also for a skipped unit.
+    :data:`pipeline.stages.base.PROBLEMS`) and, for a stage with
+    ``partial_inputs``, the stretches it ran without; also for a skipped unit.
     """
 
     stage: str
@@ -348,6 +349,14 @@ def _run_stage(
                 stage.name,
                 unit,
                 reason,
+            )
+        skipped = night.missing_stretches(stage)
+        if skipped:
+            log.warning(
+                "%s/%s: running without stretches %s (upstream unusable)",
+                stage.name,
+                unit,
+                format_ids(skipped),
             )
         clear_failure(night.unit_dir(stage, unit))
         tasks.append(night.task(stage, stretch, specs, hashes, executor.remote))

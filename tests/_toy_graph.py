@@ -4,13 +4,17 @@
 stretch) multiplies the raw rows, ``smooth`` (per stretch) box-filters
 ``scale``'s image along the scan axis, and ``total`` (night) adds up the
 stretches.  Everything is small numpy work with results known exactly.
+``PARTIAL_GRAPH`` is the same with ``total`` declared ``partial_inputs=True``
+(it adds up the stretches that exist).  ``scale``'s option ``fail_on`` lists
+stretch indices it fails on (a ValueError).
 
 Fault injection for the resume tests, through the environment (so that it
 reaches worker processes and does not change the config hash):
 ``ZDRIFT_TOY_DIE_ON=<stretch index>`` makes ``scale`` kill its own process
 with ``os._exit`` on that stretch: every time, or, if ``ZDRIFT_TOY_DIE_MARK``
 names a file, only once (it creates the file first and does not die if the
-file exists).
+file exists).  ``ZDRIFT_TOY_FAIL_ON=<stretch index>`` makes ``scale`` raise a
+ValueError on that stretch (a crash on odd data, fixed by a later release).
 
 This module lives in ``tests/`` (on ``sys.path`` under pytest), so worker
 processes started by the local pool and by dask can import it by name.
@@ -18,6 +22,7 @@ processes started by the local pool and by dask can import it by name.
 
 from __future__ import annotations
 
+import dataclasses
 import os
 from pathlib import Path
 
@@ -72,6 +77,8 @@ def scale_rows(*, inputs, options, context):
     stretch = context.stretch
     if stretch.index in options.fail_on:
         raise ValueError(f"toy failure on stretch {stretch.index}")
+    if os.environ.get("ZDRIFT_TOY_FAIL_ON") == str(stretch.index):
+        raise ValueError(f"toy crash on stretch {stretch.index}")
     if os.environ.get("ZDRIFT_TOY_DIE_ON") == str(stretch.index):
         mark = os.environ.get("ZDRIFT_TOY_DIE_MARK")
         if mark is None:
@@ -98,7 +105,8 @@ def smooth_rows(*, inputs, options, context):
 
 def add_up(*, inputs, options, context):
     sums = [float(products["image"].sum()) for products in inputs["smooth"]]
-    table = Table({"stretch": np.arange(len(sums)), options.label: sums})
+    stretches = [s.index for s in context.input_stretches]  # all, unless partial_inputs
+    table = Table({"stretch": np.array(stretches, dtype=int), options.label: sums})
     return {"per_stretch": table, "summary": {"total": float(np.sum(sums)), "n": len(sums)}}
 
 
@@ -108,6 +116,7 @@ GRAPH = (
     Stage("smooth", smooth_rows, SmoothOptions, ("scale",), "stretch", ()),
     Stage("total", add_up, TotalOptions, ("smooth",), "night", ()),
 )
+PARTIAL_GRAPH = (*GRAPH[:3], dataclasses.replace(GRAPH[3], partial_inputs=True))
 
 
 def write_raw_night(raw_dir: Path, n_blocks: int = 4, rows_per_block: int = 25) -> np.ndarray:

@@ -17,7 +17,14 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from _toy_graph import GRAPH, IndexOptions, build_index, toy_config_data, write_raw_night
+from _toy_graph import (
+    GRAPH,
+    PARTIAL_GRAPH,
+    IndexOptions,
+    build_index,
+    toy_config_data,
+    write_raw_night,
+)
 from astropy import units as u
 from astropy.io import fits
 from astropy.table import QTable, Table
@@ -72,15 +79,20 @@ def product_hashes(config) -> dict[str, dict[str, str]]:
     }
 
 
-def expected_total(rows: np.ndarray, factor: float, width: int) -> float:
-    """The toy chain recomputed directly from the night's rows."""
-    total = 0.0
+def expected_sums(rows: np.ndarray, factor: float, width: int) -> list[float]:
+    """The toy chain recomputed directly from the night's rows: one sum per stretch."""
+    sums = []
     for stretch in plan_stretches(len(rows), 30, 4):
         scaled = rows[stretch.lo : stretch.hi] * factor
         kernel = np.ones(width) / width
         smooth = np.apply_along_axis(np.convolve, 0, scaled, kernel, mode="same")
-        total += smooth[stretch.core].sum()
-    return total
+        sums.append(smooth[stretch.core].sum())
+    return sums
+
+
+def expected_total(rows: np.ndarray, factor: float, width: int) -> float:
+    """The toy chain's night total recomputed directly from the night's rows."""
+    return float(np.sum(expected_sums(rows, factor, width)))
 
 
 # ------------------------------------------------------------------ stage protocol
@@ -107,6 +119,8 @@ def test_stage_declaration_errors() -> None:
         Stage("a", build_index, IndexOptions, requires="raw_files")
     with pytest.raises(ValueError, match="'raw_rows' needs scope='stretch'"):
         Stage("a", build_index, IndexOptions, requires=(RAW_ROWS,), scope="night")
+    with pytest.raises(ValueError, match="partial_inputs needs scope='night'"):
+        Stage("a", build_index, IndexOptions, scope="stretch", partial_inputs=True)
 
 
 def test_check_graph_errors() -> None:
@@ -117,6 +131,10 @@ def test_check_graph_errors() -> None:
         check_graph([index, index])
     with pytest.raises(ValueError, match="comes before any stage with defines_rows"):
         check_graph([scale, index])
+    partial_index = Stage("partial", build_index, IndexOptions, ("index",), "night",
+                          partial_inputs=True)  # fmt: skip
+    with pytest.raises(ValueError, match="sets partial_inputs but requires no stretch-scoped"):
+        check_graph([index, partial_index])
     assert check_graph(list(GRAPH)) == GRAPH
 
 
@@ -330,6 +348,66 @@ def test_failed_stretch_is_recorded_and_the_rest_goes_on(toy) -> None:
     report = run_night(make_config())
     assert report.ok
     assert not (night_dir(config) / "scale/s0001/_failed.json").exists()
+
+
+def test_a_partial_inputs_stage_runs_on_the_stretches_that_exist(toy, monkeypatch) -> None:
+    make_config, rows = toy
+    data = {k: v for k, v in make_config().to_dict().items() if k != "stages"}
+    config = config_from_mapping(data, graph=PARTIAL_GRAPH)
+    folder = night_dir(config) / "total/night"
+    monkeypatch.setenv("ZDRIFT_TOY_FAIL_ON", "1")  # scale crashes on stretch 1's data
+    report = run_night(config)
+    by_unit = {(r.stage, r.unit): r for r in report.results}
+    assert by_unit[("scale", "s0001")].status == "failed"
+    assert by_unit[("smooth", "s0001")].status == "blocked"
+    total = by_unit[("total", "night")]
+    assert total.status == "ran" and total.problems == (
+        "ran without stretch s0001 (blocked in smooth)",
+    )
+    assert not report.ok  # `zdrift run` exits 1
+    assert "problem: total/night: ran without stretch s0001 (blocked in smooth)" in report.format()
+    record = read_sidecar(folder)
+    assert record["missing_stretches"] == {"s0001": "blocked in smooth"}
+    table = read_products(folder, record)["per_stretch"]
+    assert list(table["stretch"]) == [0, 2, 3]
+    sums = expected_sums(rows, 2.0, 3)
+    # float64 sums of ~1e7-sized values in another order: relative 1e-12 is
+    # far above rounding (~1e-15) and far below any real error (whole rows)
+    assert list(table["sum"]) == pytest.approx([sums[0], sums[2], sums[3]], rel=1e-12)
+    # Still broken: total is up to date (not redone on every run) but still reported.
+    report = run_night(config)
+    total = next(r for r in report.results if r.stage == "total")
+    assert total.status == "skipped" and total.problems and not report.ok
+    status = {s.name: s for s in night_status(config).stages}
+    assert status["total"].units["night"] == ("done", "")
+    assert status["total"].problems == {"night": list(total.problems)}
+    # Fixed: the stretch appears, which makes total stale, and it is redone on all four.
+    monkeypatch.delenv("ZDRIFT_TOY_FAIL_ON")
+    assert run_night(config, to_stage="smooth").ok
+    status = {s.name: s for s in night_status(config).stages}
+    assert status["total"].units["night"] == ("stale", "inputs changed: smooth")
+    report = run_night(config)
+    assert report.ok and [(r.stage, r.unit) for r in report.results if r.status == "ran"] == [
+        ("total", "night")
+    ]
+    record = read_sidecar(folder)
+    assert record["missing_stretches"] == {} and record["problems"] == []
+    table = read_products(folder, record)["per_stretch"]
+    assert list(table["stretch"]) == [0, 1, 2, 3]
+    # same tolerance argument as above
+    assert list(table["sum"]) == pytest.approx(sums, rel=1e-12)
+
+
+def test_a_partial_inputs_stage_without_any_usable_stretch_is_blocked(toy) -> None:
+    make_config, _ = toy
+    data = {k: v for k, v in make_config().to_dict().items() if k != "stages"}
+    config = config_from_mapping(data, ["stages.scale.fail_on=[0,1,2,3]"], graph=PARTIAL_GRAPH)
+    report = run_night(config)
+    total = next(r for r in report.results if r.stage == "total")
+    assert total.status == "blocked"
+    assert total.reason == (
+        "needs smooth products of a stretch; none usable: s0000-s0003 blocked in smooth"
+    )
 
 
 class _BadOptions(IndexOptions):

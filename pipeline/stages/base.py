@@ -18,7 +18,10 @@ The calling convention is::
       night-scoped), this is its products for the same stretch (or the night).
       If a night-scoped stage requires a stretch-scoped one, the value is a
       read-only sequence with one such ``dict`` per stretch, in stretch order,
-      loaded lazily (see ``context.stretches`` for the row ranges);
+      loaded lazily (``context.input_stretches`` gives the stretch of each
+      entry, with its row ranges).  Normally that is every stretch of the plan;
+      a stage declared with ``partial_inputs=True`` gets only the stretches
+      whose upstream products are usable (see :class:`Stage`);
     * :data:`RAW_FILES` (night scope) -> a list of :class:`RawFile`, one per
       raw file of the night, with its header (or the reason it is unreadable);
     * :data:`RAW_ROWS` (stretch scope) -> a ``float32`` array of shape
@@ -227,6 +230,10 @@ class StageContext:
         The stretch being processed; None for a night-scoped stage.
     stretches : tuple of Stretch
         The night's stretch plan (empty before the block index exists).
+    missing_stretches : tuple of Stretch
+        For a night-scoped stage with ``partial_inputs=True``: the stretches
+        of the plan left out of its per-stretch inputs because an upstream
+        unit failed, was blocked or has not run.  Empty otherwise.
     """
 
     site: Site
@@ -235,6 +242,12 @@ class StageContext:
     night: str
     stretch: Stretch | None = None
     stretches: tuple[Stretch, ...] = ()
+    missing_stretches: tuple[Stretch, ...] = ()
+
+    @property
+    def input_stretches(self) -> tuple[Stretch, ...]:
+        """The stretches whose products a night-scoped stage's sequences hold, in order."""
+        return tuple(s for s in self.stretches if s not in self.missing_stretches)
 
 
 @dataclass(frozen=True)
@@ -278,6 +291,17 @@ class Stage:
     version : int
         Bump it when a code change alters what the stage produces: it enters
         the config hash, so products made by the old code become stale.
+    partial_inputs : bool
+        A night-scoped stage that can work on the stretches that exist (a
+        night-wide fit that needs only enough of them) sets this.  The runner
+        then hands it the per-stretch products of the stretches whose
+        upstream units are usable (not failed, not blocked, not missing; a
+        stretch is used only if all its stretch-scoped inputs are), lists the
+        stretches left out in ``context.missing_stretches`` and in the unit's
+        provenance, and reports them as a problem (``zdrift run`` exits 1).
+        Which stretches were used enters the input hash, so the unit becomes
+        stale when a missing stretch appears.  With the default False, one
+        unusable stretch blocks the stage.
     """
 
     name: str
@@ -290,6 +314,7 @@ class Stage:
     files: tuple[str, ...] = ()
     description: str = ""
     version: int = 1
+    partial_inputs: bool = False
 
     def __post_init__(self) -> None:
         if not self.name.isidentifier() or self.name != self.name.lower():
@@ -324,6 +349,11 @@ class Stage:
             raise ValueError(f"Stage {self.name!r}: {RAW_ROWS!r} needs scope='stretch'.")
         if RAW_FILES in self.requires and self.scope != "night":
             raise ValueError(f"Stage {self.name!r}: {RAW_FILES!r} needs scope='night'.")
+        if self.partial_inputs and self.scope != "night":
+            raise ValueError(
+                f"Stage {self.name!r}: partial_inputs needs scope='night' (a per-stretch "
+                "stage gets the products of its own stretch only)."
+            )
 
 
 def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
@@ -331,7 +361,8 @@ def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
 
     Names are unique, every stage requires only earlier stages or the raw
     pseudo-inputs, at most one stage defines the rows, and it comes before
-    every stretch-scoped stage.
+    every stretch-scoped stage; a stage with ``partial_inputs`` requires at
+    least one stretch-scoped stage.
 
     Returns
     -------
@@ -369,6 +400,13 @@ def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
             raise ValueError(
                 f"Stretch-scoped stage {stage.name!r} comes before any stage with "
                 "defines_rows=True; the runner cannot plan stretches."
+            )
+        if stage.partial_inputs and not any(
+            seen[need].scope == "stretch" for need in stage.requires if need in seen
+        ):
+            raise ValueError(
+                f"Stage {stage.name!r} sets partial_inputs but requires no stretch-scoped "
+                "stage; drop partial_inputs or require one."
             )
         seen[stage.name] = stage
     return graph
