@@ -313,3 +313,54 @@ def test_a_stage_names_only_option_fields_as_files():
         Stage("uses_a_file", lambda **_: {}, Options, files=("tabel",))
     with pytest.raises(TypeError, match="must be tuples of names"):
         Stage("uses_a_file", lambda **_: {}, Options, files="table")
+
+
+# ------------------------------------------------------- a bad stretch
+
+
+def test_a_failed_stretch_leaves_the_flat_and_the_other_stretches_calibrated(
+    tmp_path, capsys, monkeypatch
+):
+    """columns (partial_inputs) solves from the stretches whose column_stats
+    exist; calibrate still runs on every stretch; the gap is reported (exit 1)
+    and the solve is redone once the stretch's statistics appear."""
+    import pipeline.stages.column_stats as column_stats
+
+    config = _night(tmp_path)  # 1024 rows: stretches s0000 and s0001 of 512 rows
+    real = column_stats.stretch_rows_for_stage
+
+    def crash_on_the_second_stretch(inputs, context):  # e.g. odd data in one block
+        if context.stretch.index == 1:
+            raise ValueError("injected crash on odd data")
+        return real(inputs, context)
+
+    monkeypatch.setattr(column_stats, "stretch_rows_for_stage", crash_on_the_second_stretch)
+    capsys.readouterr()
+    assert main(["run", str(config), "--to", "calibrate"]) == 1
+    out = capsys.readouterr().out
+    assert "failed: column_stats/s0001: ValueError: injected crash on odd data" in out
+    assert "problem: columns/night: ran without stretch s0001 (failed in column_stats)" in out
+    assert ", 1 failed, 0 blocked" in out  # only column_stats/s0001
+    products = tmp_path / "out/n"
+    partial = _product(products / "columns/night", "columns")
+    first = _product(products / "column_stats/s0000", "column_stats")
+    first = set(first["block"])
+    assert partial.meta["n_blocks"] == len(first) > 0  # s0000's blocks only
+    for unit in ("s0000", "s0001"):
+        image = _product(products / "calibrate" / unit, "image")
+        assert np.isfinite(image).any()
+    # Fixed: column_stats/s0001 reruns, which makes the columns stale: solved on both.
+    monkeypatch.setattr(column_stats, "stretch_rows_for_stage", real)
+    assert main(["run", str(config), "--to", "columns"]) == 0
+    assert main(["status", str(config)]) == 0
+    out = capsys.readouterr().out
+    assert "problem" not in out  # neither in the run summary nor in the status
+    assert "calibrate stale: s0000-s0001: inputs changed: columns" in out
+    whole = _product(products / "columns/night", "columns")
+    second = set(_product(products / "column_stats/s0001", "column_stats")["block"])
+    # the stretches' margins overlap: a block seen by both counts once
+    assert whole.meta["n_blocks"] == len(first | second) > len(first)
+    assert (
+        json.loads((products / "columns/night/_provenance.json").read_text())["missing_stretches"]
+        == {}
+    )

@@ -42,6 +42,7 @@ STAGE = Stage(
     scope="night",
     uses=("camera.n_columns",),
     files=("flat_file",),
+    partial_inputs=True,  # one bad stretch must not stop the night's flat
     description="Solve the night's 1-D flat and per-column additive level from the sky "
     "(or adopt a solved table: flat_file).",
     version=3,  # 2: sky from relative levels; normalised lines; 3: hot needs 3 own errors
