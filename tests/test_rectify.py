@@ -1,5 +1,6 @@
 """Tests of the rectify stage against the exact TDI model, astropy.wcs and analytic results."""
 
+import re
 import warnings
 
 import numpy as np
@@ -335,6 +336,30 @@ def test_too_small_overlap_warns():
         )  # fmt: skip
 
 
+def test_overlap_warning_names_enough_rows_for_deconvolution():
+    # Self-consistency: the number of overlap rows the warning asks for (it
+    # includes the deconvolution's margin) silences it.
+    model = scene_model(50.0, 1024)
+    image = np.ones((1024, 256))
+    mask = np.zeros(image.shape, np.uint16)
+    core = (450, 574)
+
+    def run(overlap):
+        lo, hi = core[0] - overlap, core[1] + overlap
+        return rectify(
+            image[lo:hi], image[lo:hi], mask[lo:hi], model,
+            row_lo=lo, core=core, night_rows=1024, deconvolve=True,
+        )  # fmt: skip
+
+    with pytest.warns(RectifyWarning, match=r"overlap_rows to at least (\d+)") as record:
+        run(16)
+    needed = int(re.search(r"at least (\d+)", str(record[0].message)).group(1))
+    assert needed > 16 + 60  # the deconvolution's margin is ~90 columns here
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        run(needed)
+
+
 def test_variance_and_noise_correlation():
     # Analytic: white noise of variance v rectified has per-pixel variance
     # equal to the variance plane, and aperture sums whose variance is the
@@ -609,8 +634,9 @@ def test_full_size_chip_at_49_degrees_with_deconvolution():
     ).T
     assert np.sqrt(np.mean((xc - x_wcs) ** 2 + (yc - y_wcs) ** 2)) < 0.02
     np.testing.assert_allclose(flux, scene.flux, rtol=2e-3)
-    # A 16-px top-hat needs a weak regularisation (see pipeline.stages._deconvolve).
-    sharp = rectify(*planes, model, deconvolve=True, deconvolve_regularization=1e-4)
+    # The defaults: a 16-px smear gets lambda * (4/16)^2 (band_regularization in
+    # pipeline.stages._deconvolve; measured 0.011 between edges and centre).
+    sharp = rectify(*planes, model, deconvolve=True)
     e = np.array(
         [
             _ellipticity(sharp.image, a, b, half=14, sigma_w=4.0)

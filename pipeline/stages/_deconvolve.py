@@ -33,17 +33,22 @@ Gaussian-weighted second-moment distortion of noise-free bright stars):
   the tests (5 px edge smear, 3 px FWHM seeing, latitude 50): edge stars
   come within 0.006 of the centre line's ellipticity with the defaults
   (``lambda = 1e-3``, ``s = 1 px``) and a white-noise rms gain of 0.57 (the
-  target Gaussian smooths).  A 4096-column chip at 0.35 arcsec and latitude
-  49 (16 px edge smear, 4 px seeing): the defaults leave 0.06; ``lambda =
-  1e-4`` brings it to 0.016 at a noise gain of 1.4.
+  target Gaussian smooths).  The longer the smear, the lower its first zero
+  and the more of the star's power the dip there removes (along the scan
+  only), so each band uses ``lambda (4 px / L)^2`` for an along-scan smear
+  ``L`` longer than 4 px (:func:`band_regularization`).  A 4096-column chip
+  at 0.35 arcsec and latitude 49 (16 px edge smear, 4 px seeing): with the
+  defaults edge stars come within 0.011 of the centre line (a fixed
+  ``lambda = 1e-3`` left 0.06), peaks within 0.5 % of the centre line's,
+  at a header noise gain of 1.41 (blank sky measured 1.42; 1.07 before).
 * Small ``lambda`` makes the filter ring far along the scan (the inverse of a
   top-hat is a comb): :func:`deconvolution_margin` gives the columns each
   stretch needs beyond its own (~90 px for the small chip with the defaults,
-  ~360 px for the large one, ~1100 px with ``lambda = 1e-4``); give the run
-  that much ``overlap_rows`` or the stretch edges are degraded (a warning
-  says so).  Each stretch uses the kernels at its own middle column, so
-  adjacent deconvolved stretches agree to ~1e-3 of a bright star's peak,
-  not exactly (the kernel drifts by ~1e-3 px over a stretch).
+  ~1480 px for the large one); give the run that much ``overlap_rows`` or
+  the stretch edges are degraded (the warning names the rows to set).
+  Each stretch uses the kernels at its own middle column, so adjacent
+  deconvolved stretches agree to ~1e-3 of a bright star's peak, not
+  exactly (the kernel drifts by ~1e-3 px over a stretch).
 * The noise rises by the gain reported in the header (``DECNOISE``, rms after
   / before for white noise; measured within 7 % of the actual ratio in blank
   sky), the variance plane is scaled by its square, and the noise becomes
@@ -59,12 +64,40 @@ from scipy import fft
 
 from pipeline.stages._rectify_map import StripMap, smear_kernels
 
-__all__ = ["deconvolution_margin", "deconvolve_smear", "wiener_filter"]
+__all__ = ["band_regularization", "deconvolution_margin", "deconvolve_smear", "wiener_filter"]
 
 #: Relative level of the filter's response at which its tails are cut.
 _TAIL_LEVEL = 1e-3
 #: Zero-padding columns beyond the image in the filter's FFT.
 _TAIL = 16
+#: Along-scan smear length up to which the regularisation is used as given, px.
+_REFERENCE_LENGTH = 4.0
+
+
+def band_regularization(dx: np.ndarray, regularization: float) -> float:
+    """The ``lambda`` used for a kernel: smaller for smears longer than 4 px.
+
+    A top-hat of length ``L`` has its first transfer-function zero at
+    ``1 / L``; the filter's dip there, of half-width ``~pi sqrt(lambda) / L``,
+    removes the star's power near that frequency along the scan only, and the
+    longer the smear, the more power the star has there and the rounder it
+    must be restored.  ``lambda (4 / L)^2`` for ``L > 4`` px keeps the
+    ellipticity left at the edges of a 16-px-smear chip below 0.02 (see the
+    module docstring), and leaves shorter smears as they were.
+
+    Parameters
+    ----------
+    dx : ndarray, shape (n_samples,)
+        Along-scan kernel samples, pixels.
+    regularization : float
+        The configured ``lambda``.
+
+    Returns
+    -------
+    float
+    """
+    length = float(np.ptp(dx))
+    return regularization * min(1.0, _REFERENCE_LENGTH / max(length, 1e-12)) ** 2
 
 
 def deconvolution_margin(model, frame, regularization: float, sigma: float) -> int:
@@ -82,7 +115,9 @@ def deconvolution_margin(model, frame, regularization: float, sigma: float) -> i
     width = 4096
     extent = 0
     for dx, dy in zip(table["dx"], table["dy"], strict=True):
-        g, _ = wiener_filter(np.asarray(dx), np.asarray(dy), (64, width), regularization, sigma)
+        dx = np.asarray(dx)
+        lam = band_regularization(dx, regularization)
+        g, _ = wiener_filter(dx, np.asarray(dy), (64, width), lam, sigma)
         response = np.abs(fft.irfft2(g, s=(64, width))).max(axis=0)
         response = np.maximum(response[: width // 2], response[::-1][: width // 2])
         extent = max(extent, int(np.flatnonzero(response > _TAIL_LEVEL * response[0]).max()))
@@ -217,9 +252,9 @@ def deconvolve_smear(
         lo = max(int(rows[0]) - pad_y, 0)
         hi = min(int(rows[-1]) + 1 + pad_y, n_y)
         height = fft.next_fast_len(hi - lo + 2 * pad_y)
-        g, gain = wiener_filter(
-            np.asarray(dx), np.asarray(dy), (height, width), regularization, sigma
-        )
+        dx = np.asarray(dx)
+        lam = band_regularization(dx, regularization)
+        g, gain = wiener_filter(dx, np.asarray(dy), (height, width), lam, sigma)
         spectrum = fft.rfft2(work[lo:hi], s=(height, width))
         restored = fft.irfft2(spectrum * g, s=(height, width))[: hi - lo, :n_x]
         sel = slice(int(rows[0]), int(rows[-1]) + 1)
