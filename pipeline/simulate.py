@@ -70,6 +70,7 @@ from astropy.time import Time
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from pipeline._detector import (
+    ColumnProperties,
     bleed_along_columns,
     cosmic_ray_hits,
     digitise,
@@ -101,6 +102,7 @@ __all__ = [
     "SimulationOptions",
     "SkyOptions",
     "StarOptions",
+    "column_properties",
     "draw_magnitudes",
     "draw_star_field",
     "load_simulation_config",
@@ -285,6 +287,49 @@ class SimulatedNight:
 # Geometry
 
 
+def column_properties(
+    options: SimulationOptions, n_columns: int, line_time: float, tdi_rows: int
+) -> ColumnProperties:
+    """The camera's per-column truth that :func:`simulate_night` uses.
+
+    Drawn from the same seeded generator, so a test can compare a solved 1-D
+    flat and dark with the truth without simulating the night again.
+
+    Parameters
+    ----------
+    options : SimulationOptions
+        The simulation options (seed and ``detector`` section).
+    n_columns : int
+        Image columns.
+    line_time : float
+        The camera's true line time, seconds.
+    tdi_rows : int
+        TDI rows (the exposure is ``tdi_rows * line_time``).
+
+    Returns
+    -------
+    ColumnProperties
+        ``response`` (the 1-D flat), ``dark`` (e- per output pixel), the bias
+        pattern and the hot and dead column indices.
+    """
+    detector = options.detector
+    return draw_column_properties(
+        n_columns,
+        np.random.default_rng([options.seed, 2]),
+        flat_rms=detector.flat_rms,
+        vignetting=detector.vignetting,
+        dark_rate=detector.dark_rate,
+        dark_rms=detector.dark_rms,
+        integration_time=tdi_rows * line_time,
+        line_time=line_time,
+        hot_columns=detector.hot_columns,
+        hot_rate=detector.hot_rate,
+        dead_columns=detector.dead_columns,
+        dead_response=detector.dead_response,
+        bias_column_rms=detector.bias_column_rms,
+    )
+
+
 def tdi_model(site: Site, camera: Camera, options: SimulationOptions):
     """The TDI geometry the simulator uses, and the nominal line time.
 
@@ -451,21 +496,7 @@ def simulate_night(
     r_geom, c_geom = model.recorded_centroid(ra_obs, dec_obs, after=after)
     timings["tracks"] = time.perf_counter() - tic
 
-    cols = draw_column_properties(
-        n_cols,
-        np.random.default_rng([options.seed, 2]),
-        flat_rms=options.detector.flat_rms,
-        vignetting=options.detector.vignetting,
-        dark_rate=options.detector.dark_rate,
-        dark_rms=options.detector.dark_rms,
-        integration_time=n_tdi * dt,
-        line_time=dt,
-        hot_columns=options.detector.hot_columns,
-        hot_rate=options.detector.hot_rate,
-        dead_columns=options.detector.dead_columns,
-        dead_response=options.detector.dead_response,
-        bias_column_rms=options.detector.bias_column_rms,
-    )
+    cols = column_properties(options, n_cols, dt, n_tdi)
     bias_phase = np.random.default_rng([options.seed, 2, 1]).uniform(0, 2 * np.pi)
     sky_rate = 10.0 ** (-0.4 * (options.sky.sky_brightness - zp)) * model.pixel_scale**2
     tic = time.perf_counter()

@@ -236,6 +236,19 @@ def test_the_demo_night_runs_end_to_end(tmp_path, capsys):
     centre = np.median(dark[others])
     sigma = 1.4826 * np.median(np.abs(dark[others] - centre))
     assert dark[hot].mean() - centre > 5 * sigma / np.sqrt(len(hot)), (dark[hot], sigma)
+    # Against the simulator's per-column truth (same seed, no re-simulation):
+    # the issue asks for the response to <= 0.2 % rms; measured 0.125 % on the
+    # demo night's usable columns (both sides normalised to the same columns).
+    from pipeline.config import load_config
+    from pipeline.simulate import column_properties, tdi_model
+
+    demo = load_config(config.parent / "simulate_demo.yaml")
+    options = demo.section("simulate")
+    model, _ = tdi_model(demo.site(), demo.camera(), options)
+    truth = column_properties(options, flags.size, model.line_time, demo.camera().tdi_rows)
+    usable = flags == 0
+    ratio = np.asarray(columns["flat"])[usable] / truth.response[usable]
+    assert np.sqrt(np.mean((ratio / ratio.mean() - 1) ** 2)) <= 0.002
     # Column 52, beside a bleed, has a level of ~1000 e- measured to ~870 e- on
     # its few clean blocks: not significant, so it must not be called hot
     # (regression: it was, before the own-error test).  Self-consistency.
