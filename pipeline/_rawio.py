@@ -23,6 +23,7 @@ __all__ = [
     "block_index_rows",
     "blocks_fingerprint",
     "check_block_index",
+    "first_image_hdu",
     "list_raw_files",
     "overlapping_blocks",
     "raw_files_fingerprint",
@@ -53,7 +54,8 @@ def raw_files_fingerprint(raw_dir: Path, names: Sequence[str]) -> str:
     return hash_json([_stat_key(raw_dir, name) for name in names])
 
 
-def _image_hdu(hdul: fits.HDUList) -> int | None:
+def first_image_hdu(hdul: fits.HDUList) -> int | None:
+    """Index of the first 2-D image HDU of a raw file, or None if it has none."""
     for index, hdu in enumerate(hdul):
         if hdu.header.get("NAXIS") == 2 and hdu.is_image:
             return index
@@ -90,7 +92,7 @@ def read_raw_files(raw_dir: Path, names: Sequence[str]) -> list[RawFile]:
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
                 with fits.open(path) as hdul:
-                    index = _image_hdu(hdul)
+                    index = first_image_hdu(hdul)
                     header = hdul[index].header.copy() if index is not None else None
                     if index is not None and isinstance(hdul[index], fits.CompImageHDU):
                         size = None

@@ -135,16 +135,6 @@ class BlockInfo:
     defaulted: tuple[str, ...] = ()
 
     @property
-    def data_slices(self) -> tuple[slice, slice]:
-        """``(rows, columns)`` slices of the image section."""
-        return parse_section(self.datasec)
-
-    @property
-    def bias_slices(self) -> tuple[slice, slice]:
-        """``(rows, columns)`` slices of the overscan section."""
-        return parse_section(self.biassec)
-
-    @property
     def geometry(self) -> tuple[Any, ...]:
         """Everything that must stay the same within a run of blocks."""
         return (self.n_columns, self.datasec, self.biassec, self.tdi_rows, self.filter)

@@ -48,6 +48,7 @@ from astropy.io import fits
 from astropy.table import Table
 from pydantic import BaseModel, ConfigDict, Field
 
+from pipeline._rawio import first_image_hdu
 from pipeline.exceptions import IngestError
 from pipeline.stages._ingest_header import (
     KEYWORDS,
@@ -126,13 +127,6 @@ class NightIndex:
 # File edge
 
 
-def _image_hdu(hdul: fits.HDUList) -> int | None:
-    for index, hdu in enumerate(hdul):
-        if hdu.is_image and hdu.header.get("NAXIS") == 2:
-            return index
-    return None
-
-
 def read_block_header(
     path: str | Path,
     keywords: dict[str, str] | None = None,
@@ -164,7 +158,7 @@ def read_block_header(
             # A truncated file makes astropy warn; the size check below reports it.
             warnings.simplefilter("ignore")
             with fits.open(path, memmap=False, lazy_load_hdus=True) as hdul:
-                index = _image_hdu(hdul)
+                index = first_image_hdu(hdul)
                 if index is None:
                     raise IngestError(f"{path.name}: no 2-D image HDU in the file.")
                 header = hdul[index].header.copy()
