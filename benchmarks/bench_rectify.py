@@ -36,8 +36,8 @@ from pipeline.geometry import Camera, Site, TDIModel
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.masks import MaskBit
 from pipeline.stages import rectify as rectify_module
-from pipeline.stages._deconvolve import deconvolution_margin
-from pipeline.stages._resample import resample_columns, shift_rows, transposed
+from pipeline.stages.rectify._deconvolve import deconvolution_margin
+from pipeline.stages.rectify._resample import resample_columns, shift_rows, transposed
 
 
 def _best(function, repeat: int) -> float:

@@ -33,9 +33,9 @@ from astropy.io import fits  # noqa: E402
 from astropy.table import Table  # noqa: E402
 from pydantic import BaseModel, ConfigDict  # noqa: E402
 
-from pipeline._store import read_products, write_products  # noqa: E402
 from pipeline.config import config_from_mapping  # noqa: E402
 from pipeline.runner import night_status, run_night  # noqa: E402
+from pipeline.runner._store import read_products, write_products  # noqa: E402
 from pipeline.stages.base import BLOCK_INDEX, RAW_FILES, RAW_ROWS, Stage  # noqa: E402
 
 

@@ -28,10 +28,10 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 
 import pipeline
-from pipeline._logging import TextProgress, cli_logging
 from pipeline.config import Config, load_config
 from pipeline.exceptions import ConfigError, RunLockedError
 from pipeline.runner import LOG_NAME, night_dir, night_status, parse_stretches, run_night
+from pipeline.runner._logging import TextProgress, cli_logging
 
 __all__ = ["main"]
 

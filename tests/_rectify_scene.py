@@ -15,10 +15,10 @@ from dataclasses import dataclass
 import numpy as np
 from astropy.time import Time
 
-from pipeline._render import GaussianMixturePSF, render_tracks
 from pipeline.geometry import Camera, Site, TDIModel
 from pipeline.geometry.rectified import RectifiedFrame
-from pipeline.stages._rectify_map import crossing_after
+from pipeline.simulate._render import GaussianMixturePSF, render_tracks
+from pipeline.stages.rectify._map import crossing_after
 
 START = "2026-03-14T04:00:00"
 #: Fictional site longitude (degrees east) used for every latitude.

@@ -11,9 +11,6 @@ from astropy.table import Table
 
 from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MaskBit, has_bits
-from pipeline.stages._calib_bias import overscan_levels, smooth_levels
-from pipeline.stages._calib_cosmics import laplacian_plus
-from pipeline.stages._calib_saturation import bleed_mask, saturation_mask
 from pipeline.stages.calibrate import (
     calibrate_stretch,
     column_statistics,
@@ -22,6 +19,9 @@ from pipeline.stages.calibrate import (
     subtract_bias,
     summarize_columns,
 )
+from pipeline.stages.calibrate._bias import overscan_levels, smooth_levels
+from pipeline.stages.calibrate._cosmics import laplacian_plus
+from pipeline.stages.calibrate._saturation import bleed_mask, saturation_mask
 
 GAIN, READ_NOISE = 2.0, 5.0
 
@@ -67,7 +67,7 @@ def test_smoothing_keeps_quadratic_drift():
 def test_smoothing_window_follows_the_bias_and_ignores_glitches():
     from scipy.signal import savgol_filter
 
-    from pipeline.stages._calib_bias import _hat_diagonal, choose_window
+    from pipeline.stages.calibrate._bias import _hat_diagonal, choose_window
 
     # The leave-one-out shortcut needs the exact diagonal of the smoother,
     # edges included (linear algebra: the smoothing matrix column by column).
@@ -100,7 +100,7 @@ def test_smoothing_window_follows_the_bias_and_ignores_glitches():
 def test_fast_savitzky_golay_matches_scipy(window):
     from scipy.signal import savgol_filter
 
-    from pipeline.stages._calib_bias import savitzky_golay
+    from pipeline.stages.calibrate._bias import savitzky_golay
 
     rng = np.random.default_rng(7)
     levels = 1000.0 + np.cumsum(rng.normal(0, 0.05, 4200)) + rng.normal(0, 0.6, 4200)
@@ -112,7 +112,7 @@ def test_fast_savitzky_golay_matches_scipy(window):
 
 
 def test_tiled_transpose_is_a_transpose():
-    from pipeline.stages._calib_chunks import transposed
+    from pipeline.stages.calibrate._chunks import transposed
 
     x = np.arange(37 * 11, dtype=np.float32).reshape(37, 11)
     out = transposed(x)

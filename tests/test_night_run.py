@@ -17,10 +17,10 @@ import yaml
 from astropy.io import fits
 from astropy.table import Table
 
-from pipeline._rawio import read_rows
-from pipeline._store import read_product
 from pipeline.cli import main
 from pipeline.masks import MaskBit, has_bits
+from pipeline.runner._rawio import read_rows
+from pipeline.runner._store import read_product
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -65,7 +65,7 @@ def _product(unit_dir: Path, name: str):
 
 def test_store_reads_back_an_empty_table_with_vector_columns(tmp_path):
     """astropy cannot read a zero-row ECSV table with a vector column; the store can."""
-    from pipeline._store import write_products
+    from pipeline.runner._store import write_products
 
     table = Table({"block": np.zeros(0, np.int64)})
     table["level"] = np.zeros((0, 5), np.float32)

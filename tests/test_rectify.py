@@ -17,7 +17,6 @@ from pipeline.exceptions import RectifyWarning
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.masks import MaskBit
 from pipeline.stages import GRAPH, StageContext, Stretch
-from pipeline.stages._rectify_map import StripMap, crossing_after
 from pipeline.stages.rectify import (
     STAGE,
     RectifyOptions,
@@ -26,6 +25,7 @@ from pipeline.stages.rectify import (
     smear_kernel_at,
     smear_kernels,
 )
+from pipeline.stages.rectify._map import StripMap, crossing_after
 
 LATITUDES = [0.0, 30.0, 50.0, -31.0]
 N_ROWS = 2048
@@ -635,7 +635,7 @@ def test_full_size_chip_at_49_degrees_with_deconvolution():
     assert np.sqrt(np.mean((xc - x_wcs) ** 2 + (yc - y_wcs) ** 2)) < 0.02
     np.testing.assert_allclose(flux, scene.flux, rtol=2e-3)
     # The defaults: a 16-px smear gets lambda * (4/16)^2 (band_regularization in
-    # pipeline.stages._deconvolve; measured 0.011 between edges and centre).
+    # pipeline.stages.rectify._deconvolve; measured 0.011 between edges and centre).
     sharp = rectify(*planes, model, deconvolve=True)
     e = np.array(
         [

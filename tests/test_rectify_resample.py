@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from pipeline.stages._resample import (
+from pipeline.stages.rectify._resample import (
     keys_weights,
     noise_correlation_factor,
     resample_columns,

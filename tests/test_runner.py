@@ -29,8 +29,6 @@ from astropy import units as u
 from astropy.io import fits
 from astropy.table import QTable, Table
 
-from pipeline._rawio import read_rows
-from pipeline._store import read_products, read_sidecar, write_products
 from pipeline.config import config_from_mapping
 from pipeline.exceptions import RunLockedError, StaleLockWarning
 from pipeline.runner import (
@@ -42,6 +40,8 @@ from pipeline.runner import (
     run_night,
     select_stages,
 )
+from pipeline.runner._rawio import read_rows
+from pipeline.runner._store import read_products, read_sidecar, write_products
 from pipeline.stages.base import RAW_FILES, RAW_ROWS, Stage, check_graph, plan_stretches
 
 TESTS_DIR = Path(__file__).parent
@@ -450,7 +450,7 @@ KILL_SCRIPT = textwrap.dedent(
     import json, os, sys
     sys.path.insert(0, sys.argv[1])
     import _toy_graph
-    import pipeline._store as store
+    import pipeline.runner._store as store
     from pipeline.config import config_from_mapping
     from pipeline.runner import run_night
 

@@ -14,7 +14,6 @@ from astropy.table import Table
 from astropy.time import Time
 from pydantic import ValidationError
 
-from pipeline._render import GaussianMixturePSF, render_tracks
 from pipeline.geometry.instrument import Camera, Site
 from pipeline.geometry.tdi import first_order_bow
 from pipeline.simulate import (
@@ -25,6 +24,7 @@ from pipeline.simulate import (
     tdi_model,
     write_night,
 )
+from pipeline.simulate._render import GaussianMixturePSF, render_tracks
 
 START = "2026-10-15T23:30:00"
 FWHM_ARCSEC = 9.0  # ~2.9 px: a well-sampled Gaussian (sigma ~1.24 px)

@@ -10,9 +10,9 @@ import warnings
 from typing import Any
 
 from pipeline.exceptions import CalibrationWarning
-from pipeline.stages._calib_rows import stretch_rows_for_stage
 from pipeline.stages.base import RAW_ROWS, Stage
 from pipeline.stages.calibrate import ColumnStatsOptions, column_statistics, options_kwargs
+from pipeline.stages.calibrate._rows import stretch_rows_for_stage
 
 __all__ = ["STAGE"]
 

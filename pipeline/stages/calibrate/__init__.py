@@ -46,13 +46,13 @@ from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MASK_DTYPE, MaskBit, describe_mask
-from pipeline.stages._calib_bias import overscan_levels, smooth_levels
-from pipeline.stages._calib_chunks import Scratch, row_chunks
-from pipeline.stages._calib_columns import adopt_columns, solve_columns, summarize_columns
-from pipeline.stages._calib_cosmics import NO_DATA_VARIANCE, detect_cosmic_rays
-from pipeline.stages._calib_rows import stretch_rows_for_stage
-from pipeline.stages._calib_saturation import bleed_pixels, saturation_mask
 from pipeline.stages.base import RAW_ROWS, Stage
+from pipeline.stages.calibrate._bias import overscan_levels, smooth_levels
+from pipeline.stages.calibrate._chunks import Scratch, row_chunks
+from pipeline.stages.calibrate._columns import adopt_columns, solve_columns, summarize_columns
+from pipeline.stages.calibrate._cosmics import NO_DATA_VARIANCE, detect_cosmic_rays
+from pipeline.stages.calibrate._rows import stretch_rows_for_stage
+from pipeline.stages.calibrate._saturation import bleed_pixels, saturation_mask
 
 __all__ = [
     "STAGE",
@@ -205,7 +205,7 @@ def subtract_bias(
     bias_window : int or None
         Savitzky-Golay window in rows (1: no smoothing).  None: chosen for
         each run of rows by cross-validation among windows up to
-        ``bias_max_window`` (:func:`~pipeline.stages._calib_bias.choose_window`).
+        ``bias_max_window`` (:func:`~pipeline.stages.calibrate._bias.choose_window`).
     bias_polyorder : int
         Degree of the smoothing polynomial.
     bias_max_window : int

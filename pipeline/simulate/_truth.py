@@ -9,7 +9,7 @@ import astropy.units as u
 import numpy as np
 from astropy.table import Table
 
-from pipeline._exposure import peak_fraction
+from pipeline.simulate._exposure import peak_fraction
 
 __all__ = ["reference_table", "rounded_table", "truth_table"]
 

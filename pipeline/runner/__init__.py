@@ -4,7 +4,7 @@ The runner is the only part of the pipeline that reads and writes files and
 knows about parallelism.  For one night it walks the stage graph in order;
 each stage runs once for the night or once per stretch of rows ("units").
 Every unit's products live in ``<output_dir>/<night>/<stage>/<unit>/`` with a
-provenance sidecar (:mod:`pipeline._store`).
+provenance sidecar (:mod:`pipeline.runner._store`).
 
 A unit is *up to date* when its sidecar records the current config hash
 (the stage's options, the context fields it ``uses``, its row range) and the
@@ -33,12 +33,12 @@ from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from pipeline._executors import Executor, make_executor
-from pipeline._lock import RunLock
-from pipeline._night import NightStore, format_ids, night_dir, unit_id
-from pipeline._store import clear_failure, write_failure
-from pipeline._unit import UnitOutcome, execute_unit, failed_outcome
 from pipeline.config import Config
+from pipeline.runner._executors import Executor, make_executor
+from pipeline.runner._lock import RunLock
+from pipeline.runner._night import NightStore, format_ids, night_dir, unit_id
+from pipeline.runner._store import clear_failure, write_failure
+from pipeline.runner._unit import UnitOutcome, execute_unit, failed_outcome
 from pipeline.stages.base import Stage
 
 __all__ = [

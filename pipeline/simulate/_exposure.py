@@ -11,8 +11,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from pipeline._detector import bleed_along_columns
-from pipeline._render import GaussianMixturePSF, render_tracks
+from pipeline.simulate._detector import bleed_along_columns
+from pipeline.simulate._render import GaussianMixturePSF, render_tracks
 
 __all__ = [
     "Tracks",

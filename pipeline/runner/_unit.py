@@ -27,8 +27,8 @@ from astropy.table import Table
 from pydantic import BaseModel
 
 import pipeline
-from pipeline._rawio import check_block_index, read_raw_files, read_rows
-from pipeline._store import (
+from pipeline.runner._rawio import check_block_index, read_raw_files, read_rows
+from pipeline.runner._store import (
     LazyProducts,
     check_products,
     clean_unit,

@@ -4,7 +4,7 @@
 units exist (the stretch plan comes from the block index), what each unit's
 config hash and input hashes are now, how to load its inputs, and whether it
 is done, stale, missing or failed.  It reads only; writing is the unit
-runner's job (:mod:`pipeline._unit`).
+runner's job (:mod:`pipeline.runner._unit`).
 """
 
 from __future__ import annotations
@@ -15,16 +15,16 @@ from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
-from pipeline._rawio import (
+from pipeline.config import Config
+from pipeline.runner._rawio import (
     block_index_rows,
     blocks_fingerprint,
     list_raw_files,
     overlapping_blocks,
     raw_files_fingerprint,
 )
-from pipeline._store import file_digest, hash_json, read_failure, read_product, read_sidecar
-from pipeline._unit import InputSpec, UnitTask
-from pipeline.config import Config
+from pipeline.runner._store import file_digest, hash_json, read_failure, read_product, read_sidecar
+from pipeline.runner._unit import InputSpec, UnitTask
 from pipeline.stages.base import (
     BLOCK_INDEX,
     RAW_FILES,

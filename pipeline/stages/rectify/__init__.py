@@ -18,9 +18,9 @@ Mapping
     :meth:`TDIModel.recorded_centroid` of its ICRS position, so every star's
     recorded centroid lands on the position the WCS gives its catalogue
     coordinates.  The map is exact on a coarse grid of nodes and interpolated
-    (:mod:`pipeline.stages._rectify_map`; error ~1e-9 px).
+    (:mod:`pipeline.stages.rectify._map`; error ~1e-9 px).
 Resampling
-    Two 1-D Keys cubic-convolution passes (:mod:`pipeline.stages._resample`):
+    Two 1-D Keys cubic-convolution passes (:mod:`pipeline.stages.rectify._resample`):
     across the scan per strip row, then a sub-pixel shift along the scan per
     rectified row.  Flux is conserved (Jacobian weights), and for the near
     translations involved so are stars' centroids and second moments.  Each
@@ -42,7 +42,7 @@ Smear kernels
     samples; :func:`smear_kernel_at` interpolates it to any position.
 Deconvolution (optional)
     A band-wise regularised (Wiener-type) filter that replaces the smear
-    kernel with a small round Gaussian (:mod:`pipeline.stages._deconvolve`).
+    kernel with a small round Gaussian (:mod:`pipeline.stages.rectify._deconvolve`).
 
 Stretches
     A stretch with core night rows ``[start, stop)`` writes the rectified
@@ -86,16 +86,16 @@ from pipeline.geometry.instrument import Camera, Site
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import TDIModel
 from pipeline.masks import MASK_DTYPE, MaskBit
-from pipeline.stages._deconvolve import deconvolution_margin, deconvolve_smear
-from pipeline.stages._rectify_map import StripMap, smear_kernels
-from pipeline.stages._resample import (
+from pipeline.stages.base import BLOCK_INDEX, Stage
+from pipeline.stages.rectify._deconvolve import deconvolution_margin, deconvolve_smear
+from pipeline.stages.rectify._map import StripMap, smear_kernels
+from pipeline.stages.rectify._resample import (
     keys_weights,
     noise_correlation_factor,
     resample_columns,
     shift_rows,
     transposed,
 )
-from pipeline.stages.base import BLOCK_INDEX, Stage
 
 __all__ = [
     "NO_DATA_BITS",
@@ -423,7 +423,7 @@ def rectify(
         Time samples per smear kernel.
     deconvolve : bool, optional
         Replace the smear kernel by a small round Gaussian (see
-        :mod:`pipeline.stages._deconvolve`); default off.
+        :mod:`pipeline.stages.rectify._deconvolve`); default off.
     deconvolve_regularization : float, optional
         Wiener regularisation for smears up to 4 px (longer smears L use it
         times ``(4 / L)**2``): larger is smoother and less noisy.

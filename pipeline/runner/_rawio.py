@@ -16,7 +16,7 @@ import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
-from pipeline._store import hash_json
+from pipeline.runner._store import hash_json
 from pipeline.stages.base import BLOCK_INDEX, BLOCK_INDEX_COLUMNS, RawFile
 
 __all__ = [

@@ -39,7 +39,7 @@ from scipy.special import erf
 
 from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MaskBit
-from pipeline.stages._calib_chunks import transposed
+from pipeline.stages.calibrate._chunks import transposed
 
 __all__ = ["adopt_columns", "solve_columns", "summarize_columns"]
 

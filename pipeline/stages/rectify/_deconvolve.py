@@ -62,7 +62,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import fft
 
-from pipeline.stages._rectify_map import StripMap, smear_kernels
+from pipeline.stages.rectify._map import StripMap, smear_kernels
 
 __all__ = ["band_regularization", "deconvolution_margin", "deconvolve_smear", "wiener_filter"]
 

@@ -36,7 +36,7 @@ import warnings
 
 import numpy as np
 
-from pipeline.stages._calib_chunks import CHUNK_ROWS, Scratch, row_chunks
+from pipeline.stages.calibrate._chunks import CHUNK_ROWS, Scratch, row_chunks
 
 __all__ = ["NO_DATA_VARIANCE", "detect_cosmic_rays", "laplacian_plus"]
 

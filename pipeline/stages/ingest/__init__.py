@@ -29,7 +29,7 @@ leave it out of the column solve.
 Functions
 ---------
 :func:`read_block_header` and :func:`read_block_rows` read one file, for use
-from Python (the runner reads raw files itself, in ``pipeline._rawio``, and
+from Python (the runner reads raw files itself, in ``pipeline.runner._rawio``, and
 hands the stage headers and rows); :func:`parse_block_header`,
 :func:`index_night` and :func:`describe_rows` are pure.
 """
@@ -48,15 +48,15 @@ from astropy.io import fits
 from astropy.table import Table
 from pydantic import BaseModel, ConfigDict, Field
 
-from pipeline._rawio import first_image_hdu
 from pipeline.exceptions import IngestError
-from pipeline.stages._ingest_header import (
+from pipeline.runner._rawio import first_image_hdu
+from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, RawFile, Stage
+from pipeline.stages.ingest._header import (
     KEYWORDS,
     BlockInfo,
     parse_block_header,
     parse_section,
 )
-from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, RawFile, Stage
 
 __all__ = [
     "KEYWORDS",

@@ -1,7 +1,7 @@
 """Where units run: in this process, on a local process pool, or on dask.
 
 Only the runner uses this module; stages never see an executor.  Each
-executor maps :func:`pipeline._unit.execute_unit` over a batch of tasks and
+executor maps :func:`pipeline.runner._unit.execute_unit` over a batch of tasks and
 yields outcomes as they complete.  A task whose worker does not report back
 (the process died, the cluster lost it) yields a failed outcome instead of
 stopping the batch.

@@ -11,7 +11,7 @@ What is simulated
 * **Stars** along their exact strip tracks (:class:`pipeline.geometry.tdi.TDIModel`),
   sampled uniformly in time at better than ``1 / samples_per_pixel`` pixel
   spacing, each sample a pixel-integrated seeing PSF (Gaussian, or Moffat as a
-  Gaussian mixture; see :mod:`pipeline._render`).  Flux in photo-electrons is
+  Gaussian mixture; see :mod:`pipeline.simulate._render`).  Flux in photo-electrons is
   ``10**(-0.4 (m - zero_point))`` per second of crossing; a passing cloud
   scales each time sample by the transparency at that time.
 * **Star field**: uniform on the sphere over the strip, magnitudes from a
@@ -56,7 +56,6 @@ import functools
 import gzip
 import io
 import logging
-import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -69,7 +68,11 @@ from astropy.table import Table, vstack
 from astropy.time import Time
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-from pipeline._detector import (
+from pipeline.config import load_config
+from pipeline.exceptions import ConfigError
+from pipeline.geometry.instrument import Camera, Site
+from pipeline.geometry.optics import resolve_focal_length
+from pipeline.simulate._detector import (
     ColumnProperties,
     bleed_along_columns,
     cosmic_ray_hits,
@@ -77,21 +80,22 @@ from pipeline._detector import (
     draw_column_properties,
     exposure_fraction,
 )
-from pipeline._exposure import (
+from pipeline.simulate._exposure import (
     bleed_trails,
     sample_tracks,
     samples_needed,
     sky_rows,
     trails_in_block,
 )
-from pipeline._render import GaussianMixturePSF, render_tracks
-from pipeline._starfield import catalog_stars, draw_magnitudes, draw_star_field, field_bounds
-from pipeline._starfield import extra_stars as user_stars
-from pipeline._truth import reference_table, truth_table
-from pipeline.config import load_config
-from pipeline.exceptions import ConfigError
-from pipeline.geometry.instrument import Camera, Site
-from pipeline.geometry.optics import resolve_focal_length
+from pipeline.simulate._render import GaussianMixturePSF, render_tracks
+from pipeline.simulate._starfield import (
+    catalog_stars,
+    draw_magnitudes,
+    draw_star_field,
+    field_bounds,
+)
+from pipeline.simulate._starfield import extra_stars as user_stars
+from pipeline.simulate._truth import reference_table, truth_table
 
 __all__ = [
     "DetectorOptions",
@@ -752,12 +756,3 @@ def main(argv: list[str] | None = None) -> int:
     for key, value in night.meta["timings"].items():
         print(f"  {key:10s} {value:7.2f} s")
     return 0
-
-
-if __name__ == "__main__":
-    # Call main of the imported module: the config layer validates the section
-    # with pipeline.simulate's option classes, not with this __main__ copy's.
-    from pipeline.simulate import main as _main
-
-    logging.basicConfig(level=logging.INFO)
-    sys.exit(_main())
