@@ -111,7 +111,7 @@ def bench_store(root: Path) -> None:
     megabytes = sum(p.nbytes for p in products.values()) / 1e6
     folder = root / "store"
     t0 = time.perf_counter()
-    entries = write_products(folder, products, {"PIPESTAG": ("bench", "")})
+    entries = write_products(folder, products, {"ZDSTAGE": ("bench", "")})
     t1 = time.perf_counter()
     read_products(folder, {"products": entries})
     t2 = time.perf_counter()

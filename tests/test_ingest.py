@@ -176,10 +176,10 @@ def test_nan_filled_data_is_rejected():
     check_block_data(np.array([[1.0, np.nan, 2.0]]))
 
 
-def test_contiguous_night_is_one_run():
+def test_contiguous_night_is_one_segment():
     infos = [parse_block_header(make_header(seq), f"b{seq}.fits") for seq in (2, 0, 1)]
     night = index_night(infos)
-    assert night.ok and night.n_runs == 1
+    assert night.ok and night.n_segments == 1
     assert list(night.table["file"]) == ["b0.fits", "b1.fits", "b2.fits"]
     assert list(night.table["row_start"]) == [0, N_ROWS, 2 * N_ROWS]
     rows = describe_rows(night.table, N_ROWS - 1, N_ROWS + 1)
@@ -206,7 +206,7 @@ def test_gap_overlap_duplicate_and_change_are_reported():
     # The gap stays in the night rows: block 3 starts where it would have.
     table = night.table
     assert int(table["row_start"][table["file"] == "b3.fits"][0]) == 3 * N_ROWS
-    assert list(table["run"]) == [0, 0, 1, 2, 3]
+    assert list(table["segment"]) == [0, 0, 1, 2, 3]
     rows = describe_rows(table, 2 * N_ROWS - 1, 2 * N_ROWS + 1)
     assert list(rows["covered"]) == [True, False]
 
@@ -228,7 +228,7 @@ def test_broken_night_indexes_every_good_block(tmp_path):
     assert "readme.fits:" in reasons
     # The truncated and the bad-keyword block leave a gap: blocks 1-3 are absent.
     assert len(night.problems) == 1 and "b4.fits: gap of 120.0 rows" in night.problems[0]
-    assert list(night.table["run"]) == [0, 1, 1]
+    assert list(night.table["segment"]) == [0, 1, 1]
     assert not night.ok
 
 

@@ -172,13 +172,13 @@ def test_products_round_trip_with_their_types(tmp_path: Path) -> None:
         "plain": Table({"x": np.array([1, 2], dtype=np.int32)}),
         "info": {"a": np.float64(1.25), "b": [1, 2], "c": None},
     }
-    entries = write_products(tmp_path, products, {"PIPESTAG": ("t", "")})
+    entries = write_products(tmp_path, products, {"ZDSTAGE": ("t", "")})
     back = read_products(tmp_path, {"products": entries})
     for name in ("flags", "counts"):
         assert back[name].dtype == products[name].dtype
         assert np.array_equal(back[name], products[name])
     assert isinstance(back["image"], fits.ImageHDU)
-    assert back["image"].header["CRVAL1"] == 10.5 and back["image"].header["PIPESTAG"] == "t"
+    assert back["image"].header["CRVAL1"] == 10.5 and back["image"].header["ZDSTAGE"] == "t"
     assert np.array_equal(back["image"].data, np.eye(3))
     assert back["cube"]["W"].data.tolist() == [1, 1, 1, 1]
     assert isinstance(back["table"], QTable) and back["table"]["flux"].unit == u.electron

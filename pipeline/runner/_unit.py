@@ -172,17 +172,17 @@ def _versions() -> dict[str, str]:
 
 def _fits_cards(task: UnitTask) -> dict[str, tuple[Any, str]]:
     cards = {
-        "PIPESTAG": (task.stage.name, "pipeline stage that wrote this file"),
-        "PIPEUNIT": (task.unit, "stretch id or 'night'"),
-        "PIPEVERS": (pipeline.__version__, "zdrift version"),
+        "ZDSTAGE": (task.stage.name, "pipeline stage that wrote this file"),
+        "ZDUNIT": (task.unit, "stretch id or 'night'"),
+        "ZDVERS": (pipeline.__version__, "zdrift version"),
         # SHA-256 hex digests fill the card: no room for a comment.
-        "PIPECONF": (task.config_hash, ""),
-        "PIPEINPT": (hash_json(task.input_hashes), ""),
+        "ZDCONF": (task.config_hash, ""),
+        "ZDINPUT": (hash_json(task.input_hashes), ""),
     }
     stretch = task.context.stretch
     if stretch is not None:
-        cards["PIPEROW0"] = (stretch.lo, "first night row in this product")
-        cards["PIPEROW1"] = (stretch.hi, "night row after the last one")
+        cards["ZDROW0"] = (stretch.lo, "first night row in this product")
+        cards["ZDROW1"] = (stretch.hi, "night row after the last one")
     return cards
 
 

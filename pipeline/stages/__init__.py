@@ -53,7 +53,7 @@ STAGE_MODULES = (
     "rectify",
     "detect",
     "astrometry",
-    "photcal",
+    "zeropoint",
     "mosaic",
     "report",
 )

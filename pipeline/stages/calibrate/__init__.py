@@ -363,9 +363,9 @@ def calibrate_stretch(
     bleed_grow_rows: int = 2,
     bleed_grow_columns: int = 1,
     cosmic_rays: bool = True,
-    cosmic_sigclip: float = 4.5,
-    cosmic_sigfrac: float = 0.3,
-    cosmic_objlim: float = 5.0,
+    cosmic_significance: float = 4.5,
+    cosmic_neighbour_fraction: float = 0.3,
+    cosmic_contrast: float = 5.0,
     cosmic_iterations: int = 2,
 ) -> CalibratedStretch:
     """Calibrate one stretch of raw TDI rows.
@@ -407,9 +407,9 @@ def calibrate_stretch(
         scan (mask BLEED).
     cosmic_rays : bool
         Detect cosmic rays (mask COSMIC_RAY).
-    cosmic_sigclip, cosmic_sigfrac, cosmic_objlim, cosmic_iterations
-        ``sigclip``, ``sigfrac``, ``objlim`` and ``n_iter`` of
-        :func:`detect_cosmic_rays`.
+    cosmic_significance, cosmic_neighbour_fraction, cosmic_contrast, cosmic_iterations
+        ``significance``, ``neighbour_fraction``, ``contrast`` and ``n_iter`` of
+        :func:`detect_cosmic_rays` (L.A.Cosmic, van Dokkum 2001).
 
     Returns
     -------
@@ -468,9 +468,9 @@ def calibrate_stretch(
             image_e,
             variance,
             ignore,
-            sigclip=cosmic_sigclip,
-            sigfrac=cosmic_sigfrac,
-            objlim=cosmic_objlim,
+            significance=cosmic_significance,
+            neighbour_fraction=cosmic_neighbour_fraction,
+            contrast=cosmic_contrast,
             n_iter=cosmic_iterations,
         )
         mask[hits] |= int(MaskBit.COSMIC_RAY)
@@ -600,9 +600,13 @@ class CalibrateOptions(_BiasOptions):
     bleed_grow_rows: int = Field(2, ge=0)
     bleed_grow_columns: int = Field(1, ge=0)
     cosmic_rays: bool = True
-    cosmic_sigclip: float = Field(4.5, gt=0)
-    cosmic_sigfrac: float = Field(0.3, gt=0, le=1)
-    cosmic_objlim: float = Field(5.0, gt=0)
+    cosmic_significance: float = Field(4.5, gt=0, description="S' limit of a hit, noise units")
+    cosmic_neighbour_fraction: float = Field(
+        0.3, gt=0, le=1, description="fraction of the significance for neighbours of hits"
+    )
+    cosmic_contrast: float = Field(
+        5.0, gt=0, description="least contrast of a hit over the fine-structure image"
+    )
     cosmic_iterations: int = Field(2, ge=1)
 
 

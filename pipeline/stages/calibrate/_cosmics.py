@@ -1,8 +1,9 @@
 """Cosmic-ray detection by Laplacian edge detection (van Dokkum 2001).
 
-This follows L.A.Cosmic (van Dokkum 2001, PASP 113, 1420) as implemented in
-astroscrappy, with the same parameters (``sigclip``, ``sigfrac``, ``objlim``)
-and tests, but evaluates the costly median filters only where they matter:
+This follows L.A.Cosmic (van Dokkum 2001, PASP 113, 1420) and its tests,
+with parameters named for what they do (``significance``,
+``neighbour_fraction``, ``contrast``), but evaluates the costly median filters
+only where they matter:
 
 1. ``L+``: the image is 2x subsampled, convolved with the Laplacian kernel,
    clipped at zero and rebinned.  For one pixel with value ``v`` and
@@ -16,12 +17,12 @@ and tests, but evaluates the costly median filters only where they matter:
 3. Only there: the noise ``N = sqrt(med5(variance))`` (the variance comes from
    the calibrate stage's noise model), ``S' = (L+ - med5(L+)) / (2 N)`` and
    the fine-structure image ``F = (med3(I) - med7(med3(I))) / N``; a pixel is
-   a hit if ``S' > sigclip`` and ``S' / F > objlim``.  (astroscrappy divides
+   a hit if ``S' > significance`` and ``S' / F > contrast``.  (astroscrappy divides
    ``L+`` by its own pixel's noise before the 5x5 median; here the centre
    pixel's noise is used for the whole 5x5 box, which differs only where the
    noise changes within two pixels.)
-4. Neighbours of hits are added if ``S' > sigclip``, then neighbours of those
-   if ``S' > sigfrac * sigclip``; hits are replaced by the median of their
+4. Neighbours of hits are added if ``S' > significance``, then neighbours of
+   those if ``S' > neighbour_fraction * significance``; hits are replaced by the median of their
    unmasked 5x5 neighbourhood and the search repeats near them, ``n_iter``
    times in all, to peel multi-pixel hits.
 
@@ -113,15 +114,15 @@ def laplacian_plus(image: np.ndarray) -> np.ndarray:
     return out
 
 
-def _candidates(work, variance, ignore, sigclip):
+def _candidates(work, variance, ignore, significance):
     """``L+`` everywhere and the flat indices of the pixels worth testing.
 
-    A pixel can pass ``S' > sigclip`` only if ``L+ > 2 sigclip N``; ``N`` is
+    A pixel can pass ``S' > significance`` only if ``L+ > 2 significance N``; ``N`` is
     at least the smallest noise in its cross-shaped neighbourhood, times a
     margin of sqrt(0.5) for a 5x5 median below that minimum.
     """
     lplus = np.empty(work.shape, dtype=np.float32)
-    threshold = np.float32(0.5 * (2.0 * sigclip) ** 2)
+    threshold = np.float32(0.5 * (2.0 * significance) ** 2)
     scratch = Scratch(work.shape[1])
     keep = np.empty((CHUNK_ROWS, work.shape[1]), dtype=bool)
     found = []
@@ -293,9 +294,9 @@ def detect_cosmic_rays(
     variance: np.ndarray,
     ignore: np.ndarray | None = None,
     *,
-    sigclip: float = 4.5,
-    sigfrac: float = 0.3,
-    objlim: float = 5.0,
+    significance: float = 4.5,
+    neighbour_fraction: float = 0.3,
+    contrast: float = 5.0,
     n_iter: int = 2,
 ) -> np.ndarray:
     """Find cosmic-ray hits with L.A.Cosmic's tests (van Dokkum 2001).
@@ -312,11 +313,13 @@ def detect_cosmic_rays(
     ignore : ndarray of bool, shape (n_rows, n_columns), optional
         Pixels never flagged and left out of the cleaning (saturated, bleed, bad
         columns, non-finite).
-    sigclip : float
-        Detection limit of ``S'`` in noise units (astroscrappy default 4.5).
-    sigfrac : float
-        Fraction of ``sigclip`` for the neighbours of hits (default 0.3).
-    objlim : float
+    significance : float
+        Smallest significance ``S'`` of a cosmic-ray pixel, in noise units
+        (default 4.5, as van Dokkum 2001 recommends).
+    neighbour_fraction : float
+        Neighbours of hits are hits too above this fraction of
+        ``significance`` (default 0.3).
+    contrast : float
         Minimum contrast ``S' / F`` between the Laplacian and the fine-structure
         image; larger values protect undersampled stars (default 5).
     n_iter : int
@@ -339,10 +342,20 @@ def detect_cosmic_rays(
         # the 5x5 median ignores a few of them.
         variance = np.nan_to_num(variance, nan=NO_DATA_VARIANCE, posinf=NO_DATA_VARIANCE)
 
-    lplus, candidates = _candidates(work, variance, ignore, sigclip)
+    lplus, candidates = _candidates(work, variance, ignore, significance)
     hits = np.zeros(shape, bool)
     for _ in range(max(int(n_iter), 1)):
-        found = _one_pass(work, variance, lplus, candidates, hits, ignore, sigclip, sigfrac, objlim)
+        found = _one_pass(
+            work,
+            variance,
+            lplus,
+            candidates,
+            hits,
+            ignore,
+            significance,
+            neighbour_fraction,
+            contrast,
+        )
         if found.size == 0:
             break
         hits.flat[found] = True
@@ -354,23 +367,26 @@ def detect_cosmic_rays(
         near = near[~hits.flat[near] & ~ignore.flat[near]]
         # The same cheap preselection as on the first pass.
         vmin = np.min(_patches(variance, near, 3)[:, [1, 3, 4, 5, 7]], axis=1)
-        candidates = near[lplus.flat[near] ** 2 > 0.5 * (2.0 * sigclip) ** 2 * vmin]
+        candidates = near[lplus.flat[near] ** 2 > 0.5 * (2.0 * significance) ** 2 * vmin]
     return hits
 
 
-def _one_pass(work, variance, lplus, candidates, hits, ignore, sigclip, sigfrac, objlim):
+def _one_pass(
+    work, variance, lplus, candidates, hits, ignore, significance, neighbour_fraction, contrast
+):
     """One L.A.Cosmic pass over the candidate pixels; returns new hit indices."""
     if candidates.size == 0:
         return candidates
     noise, sp = _noise_and_s_prime(variance, lplus, candidates)
-    keep = sp > sigclip
+    keep = sp > significance
     candidates, noise, sp = candidates[keep], noise[keep], sp[keep]
     if candidates.size == 0:
         return candidates
     fine = np.maximum(_fine_structure(work, candidates) / noise, 0.01)
-    found = candidates[sp / fine > objlim]
-    # Grow twice into the 3x3 neighbourhood: first at sigclip, then at sigfrac*sigclip.
-    for limit in (sigclip, sigfrac * sigclip):
+    found = candidates[sp / fine > contrast]
+    # Grow twice into the 3x3 neighbourhood: first at the full significance, then
+    # at its neighbour fraction.
+    for limit in (significance, neighbour_fraction * significance):
         near = _neighbours(found, work.shape, 1)
         near = near[~ignore.flat[near] & ~hits.flat[near]]
         if near.size == 0:

@@ -4,7 +4,7 @@ The runner hands a stretch-scoped stage the raw rows ``[lo, hi)`` of the
 night in readout order (overscan included, NaN where no block covers a row)
 and the ingest
 stage's block index; this module splits them into image and overscan columns
-and gathers the per-row header values, run labels and ramp rows that
+and gathers the per-row header values, segment labels and ramp rows that
 :func:`pipeline.stages.calibrate.calibrate_stretch` and
 :func:`~pipeline.stages.calibrate.column_statistics` take.
 """
@@ -75,14 +75,16 @@ def stretch_rows(
     facts = describe_rows(index, lo, hi)
     covered = facts["covered"]
     blocks = index[(index["row_start"] < hi) & (index["row_start"] + index["n_rows"] > lo)]
-    geometries = {(str(b["datasec"]), str(b["biassec"])) for b in blocks}
+    geometries = {(str(b["image_section"]), str(b["overscan_section"])) for b in blocks}
     if len(geometries) != 1:
         raise StageError(
             f"Night rows [{lo}, {hi}) span blocks with {len(geometries)} different "
             f"DATASEC/BIASSEC ({sorted(geometries)}); a stretch needs one geometry."
         )
-    datasec, biassec = geometries.pop()
-    image, overscan = split_rows(raw_rows, datasec, biassec, flip_columns=flip_columns)
+    image_section, overscan_section = geometries.pop()
+    image, overscan = split_rows(
+        raw_rows, image_section, overscan_section, flip_columns=flip_columns
+    )
     fill = {}
     for name in ("gain", "read_noise", "saturation"):
         values = facts[name]
@@ -92,7 +94,7 @@ def stretch_rows(
         overscan=overscan,
         night_row=facts["night_row"],
         time=facts["time"],
-        segment=facts["run"],
+        segment=facts["segment"],
         rows_since_start=facts["rows_since_start"],
         tdi_rows=int(facts["tdi_rows"].max()),
         **fill,

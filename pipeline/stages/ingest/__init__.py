@@ -12,7 +12,7 @@ Night row ``r`` is counted from row 0 of the first good block, at one row
 per LINETIME, so that the rows of a missing block stay in the night as rows
 no block covers (the runner fills them with NaN and calibrate flags them
 GAP).  A gap therefore never shifts the rows that follow it, and nothing
-bridges it: it also ends a *run*, a maximal sequence of blocks that follow
+bridges it: it also ends a *segment*, a maximal sequence of blocks that follow
 each other without gap or overlap and share line time, geometry and filter.
 Problems found on the way (gaps, overlaps, duplicates, settings changed
 mid-night, sequence numbers out of step) are reported, one line each.
@@ -83,7 +83,7 @@ log = logging.getLogger(__name__)
 NEVER = np.iinfo(np.int64).max
 
 #: Where charge clocking started (see :func:`index_night`).
-StartRamp = Literal["night", "run", "none"]
+StartRamp = Literal["night", "segment", "none"]
 
 
 @dataclass
@@ -96,9 +96,10 @@ class NightIndex:
         One row per usable block in time order, columns:
         ``file``, ``hdu``, ``row_start`` (night row of the block's first row),
         ``n_rows``, ``block_seq``, ``date_obs`` (ISO UTC), ``t_start`` (s since
-        ``meta['reference_time']``), ``line_time`` (s), ``tdi_rows``, ``run``
-        (0, 1, ...), ``run_row`` (row of the block's first row counted from its
-        run's first row), ``n_columns``, ``datasec``, ``biassec``, ``gain``,
+        ``meta['reference_time']``), ``line_time`` (s), ``tdi_rows``,
+        ``segment`` (0, 1, ...), ``segment_row`` (row of the block's first row
+        counted from its segment's first row), ``n_columns``, ``image_section``,
+        ``overscan_section``, ``gain``,
         ``read_noise``, ``saturation``, ``filter``, ``clock_row`` (rows clocked
         since charge clocking started, at the block's first row; -1 if it
         started before the data, see ``start_ramp`` of :func:`index_night`).
@@ -118,9 +119,9 @@ class NightIndex:
         return not self.problems and not self.rejected
 
     @property
-    def n_runs(self) -> int:
-        """Number of runs (0 for an empty night)."""
-        return int(np.max(self.table["run"])) + 1 if len(self.table) else 0
+    def n_segments(self) -> int:
+        """Number of segments (0 for an empty night)."""
+        return int(np.max(self.table["segment"])) + 1 if len(self.table) else 0
 
 
 # ----------------------------------------------------------------------------
@@ -252,11 +253,11 @@ def read_block_rows(
     if flip_rows:
         block = block[::-1]
     check_block_data(block, path.name)
-    return split_rows(block, info.datasec, info.biassec, flip_columns=flip_columns)
+    return split_rows(block, info.image_section, info.overscan_section, flip_columns=flip_columns)
 
 
 def split_rows(
-    raw: np.ndarray, datasec: str, biassec: str, *, flip_columns: bool = False
+    raw: np.ndarray, image_section: str, overscan_section: str, *, flip_columns: bool = False
 ) -> tuple[np.ndarray, np.ndarray]:
     """Split stored rows into image and overscan columns.
 
@@ -264,7 +265,7 @@ def split_rows(
     ----------
     raw : ndarray, shape (n_rows, NAXIS1)
         Rows as stored, overscan included; axis 0 is the scan axis.
-    datasec, biassec : str
+    image_section, overscan_section : str
         1-based FITS sections; only their column ranges are used.
     flip_columns : bool
         Reverse the image columns (and the overscan's, for symmetry).
@@ -274,8 +275,8 @@ def split_rows(
     image, overscan : ndarray of float32
         Shapes (n_rows, n_image_columns) and (n_rows, n_overscan_columns).
     """
-    _, data_cols = parse_section(datasec)
-    _, bias_cols = parse_section(biassec)
+    _, data_cols = parse_section(image_section)
+    _, bias_cols = parse_section(overscan_section)
     image = np.asarray(raw[:, data_cols], dtype=np.float32)
     overscan = np.asarray(raw[:, bias_cols], dtype=np.float32)
     if flip_columns:
@@ -305,9 +306,9 @@ def index_night(
     tolerance_rows : float
         Largest mismatch, in rows, between a block's DATE-OBS and the end of the
         block before it that still counts as contiguous (clock jitter).
-    start_ramp : {'night', 'run', 'none'}
+    start_ramp : {'night', 'segment', 'none'}
         Where charge clocking started: with the first good block of the night
-        (and went on through any gap), again at the start of every run
+        (and went on through any gap), again at the start of every segment
         (clocking restarted after each gap), or before the first block (the
         data hold no partly exposed rows).  Sets the ``clock_row`` column.
 
@@ -321,11 +322,11 @@ def index_night(
     kept: list[BlockInfo] = []
     rows: list[dict[str, Any]] = []
     reference = blocks[0].date_obs if blocks else None
-    run = 0
+    segment = 0
     for block in blocks:
         t_start = float((block.date_obs - reference).sec)
         if not kept:
-            rows.append(_index_row(block, t_start, 0, run, 0))
+            rows.append(_index_row(block, t_start, 0, segment, 0))
             kept.append(block)
             continue
         prev, prev_row = kept[-1], rows[-1]
@@ -339,18 +340,17 @@ def index_night(
                 f"{block.block_seq}); left out."
             )
             continue
-        new_run = _continuity(block, prev, offset, tolerance_rows, problems)
-        run += new_run
+        new_segment = _continuity(block, prev, offset, tolerance_rows, problems)
+        segment += new_segment
         row_start = prev_row["row_start"] + prev.n_rows + round(offset)
-        run_row = 0 if new_run else prev_row["run_row"] + prev.n_rows
-        rows.append(_index_row(block, t_start, row_start, run, run_row))
+        segment_row = 0 if new_segment else prev_row["segment_row"] + prev.n_rows
+        rows.append(_index_row(block, t_start, row_start, segment, segment_row))
         kept.append(block)
-    if start_ramp not in ("night", "run", "none"):
-        raise ValueError(f"start_ramp must be 'night', 'run' or 'none'; got {start_ramp!r}.")
+    if start_ramp not in ("night", "segment", "none"):
+        raise ValueError(f"start_ramp must be 'night', 'segment' or 'none'; got {start_ramp!r}.")
     for row in rows:
-        row["clock_row"] = {"night": row["row_start"], "run": row["run_row"], "none": -1}[
-            start_ramp
-        ]
+        clock_rows = {"night": row["row_start"], "segment": row["segment_row"], "none": -1}
+        row["clock_row"] = clock_rows[start_ramp]
     table = _index_table(rows)
     table.meta["start_ramp"] = start_ramp
     table.meta["reference_time"] = reference.isot if reference is not None else None
@@ -361,9 +361,9 @@ def index_night(
     for line in problems:
         log.warning("%s", line)
     log.info(
-        "Indexed %d blocks in %d run(s), %d rejected, %d problem(s)",
+        "Indexed %d blocks in %d segment(s), %d rejected, %d problem(s)",
         len(table),
-        run + 1 if rows else 0,
+        segment + 1 if rows else 0,
         len(rejected),
         len(problems),
     )
@@ -371,47 +371,47 @@ def index_night(
 
 
 def _continuity(block, prev, offset, tolerance_rows, problems) -> bool:
-    """Append problems between ``prev`` and ``block``; True if a new run starts."""
-    new_run = False
+    """Append problems between ``prev`` and ``block``; True if a new segment starts."""
+    new_segment = False
     changes = []
     if not np.isclose(block.line_time, prev.line_time, rtol=1e-9, atol=0):
         changes.append(f"LINETIME {prev.line_time} -> {block.line_time} s")
     for label, old, new in (
         ("TDIROWS", prev.tdi_rows, block.tdi_rows),
         ("NAXIS1", prev.n_columns, block.n_columns),
-        ("DATASEC", prev.datasec, block.datasec),
-        ("BIASSEC", prev.biassec, block.biassec),
+        ("DATASEC", prev.image_section, block.image_section),
+        ("BIASSEC", prev.overscan_section, block.overscan_section),
         ("FILTER", prev.filter, block.filter),
     ):
         if old != new:
             changes.append(f"{label} {old} -> {new}")
     if changes:
-        problems.append(f"{block.name}: changed mid-night ({'; '.join(changes)}); new run.")
-        new_run = True
+        problems.append(f"{block.name}: changed mid-night ({'; '.join(changes)}); new segment.")
+        new_segment = True
     seq_step = block.block_seq - prev.block_seq
     if offset > tolerance_rows:
         missing = offset / block.n_rows
         problems.append(
             f"{block.name}: gap of {offset:.1f} rows ({offset * prev.line_time:.2f} s, "
             f"about {missing:.2f} block(s); BLOCKSEQ {prev.block_seq} -> {block.block_seq}) "
-            f"after {prev.name}; new run."
+            f"after {prev.name}; new segment."
         )
-        new_run = True
+        new_segment = True
     elif offset < -tolerance_rows:
         problems.append(
             f"{block.name}: starts {-offset:.1f} rows ({-offset * prev.line_time:.2f} s) "
-            f"before the end of {prev.name} (overlap); its rows win; new run."
+            f"before the end of {prev.name} (overlap); its rows win; new segment."
         )
-        new_run = True
+        new_segment = True
     elif seq_step != 1:
         problems.append(
             f"{block.name}: BLOCKSEQ {prev.block_seq} -> {block.block_seq} but the times of "
             f"{prev.name} and {block.name} join up (clock or numbering error?)."
         )
-    return new_run
+    return new_segment
 
 
-def _index_row(block: BlockInfo, t_start, row_start, run, run_row) -> dict[str, Any]:
+def _index_row(block: BlockInfo, t_start, row_start, segment, segment_row) -> dict[str, Any]:
     return {
         "file": block.name,
         "hdu": block.hdu,
@@ -422,11 +422,11 @@ def _index_row(block: BlockInfo, t_start, row_start, run, run_row) -> dict[str, 
         "t_start": t_start,
         "line_time": block.line_time,
         "tdi_rows": block.tdi_rows,
-        "run": run,
-        "run_row": int(run_row),
+        "segment": segment,
+        "segment_row": int(segment_row),
         "n_columns": block.n_columns,
-        "datasec": block.datasec,
-        "biassec": block.biassec,
+        "image_section": block.image_section,
+        "overscan_section": block.overscan_section,
         "gain": block.gain,
         "read_noise": block.read_noise,
         "saturation": block.saturation,
@@ -444,11 +444,11 @@ _INDEX_DTYPES = {
     "t_start": np.float64,
     "line_time": np.float64,
     "tdi_rows": np.int32,
-    "run": np.int32,
-    "run_row": np.int64,
+    "segment": np.int32,
+    "segment_row": np.int64,
     "n_columns": np.int32,
-    "datasec": str,
-    "biassec": str,
+    "image_section": str,
+    "overscan_section": str,
     "gain": np.float64,
     "read_noise": np.float64,
     "saturation": np.float64,
@@ -488,8 +488,8 @@ def describe_rows(index: Table, lo: int, hi: int) -> dict[str, np.ndarray]:
     dict of ndarray, each of shape (hi - lo,)
         ``covered`` (bool: some block holds the row), ``time`` (readout time,
         s since ``index.meta['reference_time']``; NaN where not covered),
-        ``run`` (-1 where not covered), ``run_row`` (row counted from its run's
-        first row), ``night_row``, ``gain``, ``read_noise``, ``saturation``
+        ``segment`` (-1 where not covered), ``segment_row`` (row counted from its
+        segment's first row), ``night_row``, ``gain``, ``read_noise``, ``saturation``
         (header values; NaN where not covered), ``tdi_rows`` (0 where not
         covered).  Where blocks overlap, the later block wins, as when the
         runner reads the rows.
@@ -498,8 +498,8 @@ def describe_rows(index: Table, lo: int, hi: int) -> dict[str, np.ndarray]:
     out = {
         "covered": np.zeros(n, bool),
         "time": np.full(n, np.nan),
-        "run": np.full(n, -1, np.int64),
-        "run_row": np.full(n, -1, np.int64),
+        "segment": np.full(n, -1, np.int64),
+        "segment_row": np.full(n, -1, np.int64),
         "night_row": np.arange(lo, lo + n, dtype=np.int64),
         "gain": np.full(n, np.nan),
         "read_noise": np.full(n, np.nan),
@@ -516,8 +516,8 @@ def describe_rows(index: Table, lo: int, hi: int) -> dict[str, np.ndarray]:
         k = np.arange(r0 - start, r1 - start)
         out["covered"][sel] = True
         out["time"][sel] = float(block["t_start"]) + k * float(block["line_time"])
-        out["run"][sel] = int(block["run"])
-        out["run_row"][sel] = int(block["run_row"]) + k
+        out["segment"][sel] = int(block["segment"])
+        out["segment_row"][sel] = int(block["segment_row"]) + k
         for name in ("gain", "read_noise", "saturation", "tdi_rows"):
             out[name][sel] = block[name]
         clock_row = int(block["clock_row"]) if "clock_row" in index.colnames else -1
@@ -550,7 +550,7 @@ class IngestOptions(BaseModel):
     start_ramp: StartRamp = Field(
         "night",
         description="Where charge clocking started: with the night's first block ('night'), "
-        "at every run after a gap ('run'), or before the first block ('none': no partly "
+        "at every segment after a gap ('segment'), or before the first block ('none': no partly "
         "exposed rows). The first TDIROWS rows after it get LOW_EXPOSURE and stay out of "
         "the column solve.",
     )
@@ -599,7 +599,7 @@ def _run(*, inputs, options: IngestOptions, context) -> dict[str, Any]:
         "ingest_report": {
             "ok": night.ok,
             "n_blocks": len(night.table),
-            "n_runs": night.n_runs,
+            "n_segments": night.n_segments,
             "rejected": night.rejected,
             "problems": night.problems,
         },
@@ -618,6 +618,6 @@ STAGE = Stage(
     scope="night",
     uses=(),
     defines_rows=True,
-    description="Check raw block headers, order blocks in time, index rows and runs.",
-    version=2,  # 2: clock_row column (start_ramp)
+    description="Check raw block headers, order blocks in time, index rows and segments.",
+    version=3,  # 2: clock_row column (start_ramp); 3: segment, image/overscan_section
 )

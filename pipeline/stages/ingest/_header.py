@@ -31,8 +31,8 @@ KEYWORDS: dict[str, tuple[str, type, str]] = {
     "line_time": ("LINETIME", float, "seconds between row shifts"),
     "tdi_rows": ("TDIROWS", int, "detector rows each packet crosses"),
     "block_seq": ("BLOCKSEQ", int, "sequence number of the block in the night"),
-    "datasec": ("DATASEC", str, "image section '[x1:x2,y1:y2]' (1-based)"),
-    "biassec": ("BIASSEC", str, "serial overscan section '[x1:x2,y1:y2]' (1-based)"),
+    "image_section": ("DATASEC", str, "image section '[x1:x2,y1:y2]' (1-based)"),
+    "overscan_section": ("BIASSEC", str, "serial overscan section '[x1:x2,y1:y2]' (1-based)"),
     "gain": ("GAIN", float, "e-/ADU"),
     "read_noise": ("RDNOISE", float, "read noise, e-"),
     "saturation": ("SATURATE", float, "saturation level, ADU"),
@@ -102,7 +102,7 @@ class BlockInfo:
         Detector rows crossed by each packet.
     block_seq : int
         Block sequence number.
-    datasec, biassec : str
+    image_section, overscan_section : str
         Image and overscan sections, 1-based FITS notation.
     gain, read_noise, saturation : float
         e-/ADU, e-, ADU.
@@ -123,8 +123,8 @@ class BlockInfo:
     line_time: float
     tdi_rows: int
     block_seq: int
-    datasec: str
-    biassec: str
+    image_section: str
+    overscan_section: str
     gain: float
     read_noise: float
     saturation: float
@@ -136,8 +136,14 @@ class BlockInfo:
 
     @property
     def geometry(self) -> tuple[Any, ...]:
-        """Everything that must stay the same within a run of blocks."""
-        return (self.n_columns, self.datasec, self.biassec, self.tdi_rows, self.filter)
+        """Everything that must stay the same within a segment of blocks."""
+        return (
+            self.n_columns,
+            self.image_section,
+            self.overscan_section,
+            self.tdi_rows,
+            self.filter,
+        )
 
 
 def expected_file_size(header_bytes: int, n_rows: int, n_columns: int, bitpix: int) -> int:
@@ -301,7 +307,7 @@ def parse_block_header(
             f"{name}: RDNOISE={values['read_noise']} or SITELAT={values['site_lat']} out of range."
         )
     values["date_obs"] = _parse_time(values["date_obs"], header, name)
-    _check_sections(values["datasec"], values["biassec"], n_rows, n_columns, name)
+    _check_sections(values["image_section"], values["overscan_section"], n_rows, n_columns, name)
     return BlockInfo(
         name=name,
         hdu=hdu,
@@ -323,10 +329,10 @@ def _parse_time(text, header, name):
         raise IngestError(f"{name}: DATE-OBS={text!r} is not an ISO 8601 time.") from None
 
 
-def _check_sections(datasec, biassec, n_rows, n_columns, name):
+def _check_sections(image_section, overscan_section, n_rows, n_columns, name):
     try:
-        data_rows, data_cols = parse_section(datasec)
-        bias_rows, bias_cols = parse_section(biassec)
+        data_rows, data_cols = parse_section(image_section)
+        bias_rows, bias_cols = parse_section(overscan_section)
     except ValueError as exc:
         raise IngestError(f"{name}: {exc}.") from None
     for label, rows, cols in (("DATASEC", data_rows, data_cols), ("BIASSEC", bias_rows, bias_cols)):
@@ -339,4 +345,6 @@ def _check_sections(datasec, biassec, n_rows, n_columns, name):
                 f"{n_rows} rows; a TDI block's image and overscan span every row."
             )
     if data_cols.start < bias_cols.stop and bias_cols.start < data_cols.stop:
-        raise IngestError(f"{name}: DATASEC {datasec} and BIASSEC {biassec} overlap.")
+        raise IngestError(
+            f"{name}: DATASEC {image_section} and BIASSEC {overscan_section} overlap."
+        )
