@@ -117,13 +117,17 @@ def test_plate_scale_check_values_chip():
 
 
 def test_refraction_constant_almanac():
-    # Astronomical Almanac low-precision formula (CHECK_VALUES rows 11-12):
-    # 58.26"/rad tan z at 1013.25 hPa, 10 C -> 282.5 ppm; 216.7 ppm at 750 hPa,
-    # 0 C.  Values printed to 0.1 ppm / 0.01".
+    # ERFA's refraction constant (dry air, visual 0.55 um) against the Astronomical
+    # Almanac's low-precision formula k = 0.00452 deg P / (273 + T): 58.26"
+    # tan z at 1013.25 hPa, 10 C -> 282.5 ppm; 216.7 ppm at 750 hPa, 0 C.
+    # Tolerances: the Almanac values are printed to 0.1 ppm / 0.01", and the
+    # two models agree to ~0.03 % here.
     assert refraction_constant(1013.25, 10.0) * ARCSEC_PER_RADIAN == pytest.approx(58.26, abs=0.01)
     assert refraction_constant(1013.25, 10.0) * 1e6 == pytest.approx(282.5, abs=0.1)
     assert refraction_constant(750.0, 0.0) * 1e6 == pytest.approx(216.7, abs=0.1)
     assert refraction_constant(0.0, 0.0) == 0.0
+    # humidity lowers it slightly (ERFA refco; the Almanac formula ignores it)
+    assert refraction_constant(1013.25, 10.0, 0.5) < refraction_constant(1013.25, 10.0)
 
 
 def test_resolve_focal_length():

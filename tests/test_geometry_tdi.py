@@ -29,7 +29,7 @@ from pipeline.geometry import (
     first_order_smear,
     positions_at_epoch,
 )
-from pipeline.geometry.optics import ARCSEC_PER_RADIAN, refraction_constant
+from pipeline.geometry.optics import ARCSEC_PER_RADIAN
 
 N = 4096
 SCALE = 0.35  # arcsec/px
@@ -259,7 +259,7 @@ def test_refraction_compresses_the_drift(pressure, temperature):
     dry = {"relative_humidity": 0.0, "wavelength": 0.574, "temperature": temperature}
     off = TDIModel(Site(latitude=-24.6, longitude=-70.4, pressure=0.0, **dry), CHIP, start, 0.0)
     on = TDIModel(Site(latitude=-24.6, longitude=-70.4, pressure=pressure, **dry), CHIP, start, 0.0)
-    k = float(refraction_constant(pressure, temperature))
+    k = np.radians(0.00452) * pressure / (273.0 + temperature)  # the Almanac's formula
     assert 1 - on.drift_rate / off.drift_rate == pytest.approx(k, rel=0.01)
     # the on-sky pixel scale grows by the same factor (1 / (1 - k))
     assert on.pixel_scale / off.pixel_scale - 1 == pytest.approx(k, rel=0.01)

@@ -11,6 +11,7 @@ The functions here are small, pure and vectorised over NumPy arrays.
 
 from __future__ import annotations
 
+import erfa
 import numpy as np
 from numpy.typing import ArrayLike
 
@@ -185,15 +186,19 @@ def resolve_focal_length(site: Site, camera: Camera) -> float:
     return float(focal_length_from_spin(camera.spin_period, gravity))
 
 
-def refraction_constant(pressure_hpa: ArrayLike, temperature_c: ArrayLike) -> np.ndarray:
-    """Low-precision refraction constant near the zenith, in radians.
+def refraction_constant(
+    pressure_hpa: ArrayLike,
+    temperature_c: ArrayLike,
+    relative_humidity: ArrayLike = 0.0,
+    wavelength_um: ArrayLike = 0.55,
+) -> np.ndarray:
+    """Refraction constant near the zenith from ERFA's model, in radians.
 
-    Refraction near the zenith is ``R = k tan z`` with
-    ``k = 0.00452 deg * P / (273 + T)`` (Astronomical Almanac low-precision
-    formula, P in hPa, T in deg C): about 283e-6 at 1013.25 hPa and 10 C.  In
-    gnomonic coordinates about the zenith it is a uniform radial compression by
-    the factor ``1 - k``.  The geometry itself uses astropy/ERFA's refraction;
-    this helper serves plans and first-order estimates (good to ~1 %).
+    Refraction is ``R = A tan z + B tan^3 z`` with ERFA's constants ``A`` and
+    ``B`` (``erfa.refco``, the model astropy's AltAz frame applies); near the
+    zenith ``B tan^3 z`` is negligible and ``A`` is a uniform radial
+    compression of gnomonic coordinates about the zenith by the factor
+    ``1 - A``: about 282e-6 at 1013.25 hPa, 10 C, dry air.
 
     Parameters
     ----------
@@ -201,12 +206,20 @@ def refraction_constant(pressure_hpa: ArrayLike, temperature_c: ArrayLike) -> np
         Air pressure in hPa (0 for no refraction).
     temperature_c : array_like
         Air temperature in degrees Celsius.
+    relative_humidity : array_like, optional
+        0 to 1; default dry air.
+    wavelength_um : array_like, optional
+        Effective wavelength in micrometres; default 0.55 (visual light).
 
     Returns
     -------
     k : ndarray
-        Refraction constant in radians (dimensionless scale compression).
+        Refraction constant ``A`` in radians (dimensionless scale compression).
     """
-    p = np.asarray(pressure_hpa, dtype=float)
-    t = np.asarray(temperature_c, dtype=float)
-    return np.radians(0.00452) * p / (273.0 + t)
+    refa, _ = erfa.refco(
+        np.asarray(pressure_hpa, dtype=float),
+        np.asarray(temperature_c, dtype=float),
+        np.asarray(relative_humidity, dtype=float),
+        np.asarray(wavelength_um, dtype=float),
+    )
+    return np.asarray(refa)

@@ -90,7 +90,9 @@ def summarize_plan(
     )
     p = camera.pixel_size * 1e-6 / focal
     pressure = site_pressure(site)
-    k_refr = float(refraction_constant(pressure, site.temperature))
+    k_refr = float(
+        refraction_constant(pressure, site.temperature, site.relative_humidity, site.wavelength)
+    )
     phi = np.radians(site.latitude)
     first_line = p / (EARTH_ROTATION_RATE * np.cos(phi) * (1.0 - k_refr))
     model = TDIModel(site, camera, start, 0.0)

@@ -13,6 +13,7 @@ import functools
 import warnings
 
 import numpy as np
+from astropy.stats import mad_std
 from scipy.signal import fftconvolve, savgol_coeffs
 
 __all__ = [
@@ -128,7 +129,7 @@ def smooth_levels(
         return _fill(levels, good)
     smooth = savitzky_golay(_fill(levels, good), window, polyorder)
     resid = np.where(good, levels - smooth, np.nan)
-    sigma = 1.4826 * np.nanmedian(np.abs(resid[good]))
+    sigma = mad_std(resid[good], ignore_nan=True)
     outlier = good & (np.abs(np.nan_to_num(resid)) > ROW_OUTLIER_SIGMA * sigma)
     if outlier.any() and sigma > 0:
         good = good & ~outlier

@@ -34,6 +34,7 @@ import logging
 import warnings
 
 import numpy as np
+from astropy.stats import mad_std
 from astropy.table import Table, unique, vstack
 from scipy.special import erf
 
@@ -298,7 +299,7 @@ def solve_columns(
         | (noise_ratio > noise_limit)
     )
     excess = intercept - _median_or_nan(intercept[~bad])
-    spread = 1.4826 * _median_or_nan(np.abs(excess[~bad]))
+    spread = _robust_sigma(intercept[~bad])
     # ...and the excess must stand out from the column's own fit error, so a
     # column with few clean blocks (next to a bleed, say) is not called hot on
     # a noisy level.
@@ -434,6 +435,16 @@ def _median_or_nan(values):
     return float(np.median(values)) if values.size else np.nan
 
 
+def _robust_sigma(values):
+    """Standard deviation from the median absolute deviation of the finite values.
+
+    astropy's ``mad_std`` (the MAD times 1/Phi^-1(3/4) = 1.4826, exact for a
+    normal distribution); NaN if there is no finite value (no warning).
+    """
+    values = values[np.isfinite(values)]
+    return float(mad_std(values)) if values.size else np.nan
+
+
 def _noise_ratio(level, scatter, read_noise, valid):
     """Median over blocks of scatter / noise model, relative to the median column.
 
@@ -464,7 +475,7 @@ def _initial_reference(level, valid, noise_ratio, noise_limit):
         block_median = np.nanmedian(np.where(valid, level, np.nan), axis=1, keepdims=True)
         relative = np.nanmedian(np.where(valid, level, np.nan) / block_median, axis=0)
         centre = np.nanmedian(relative)
-        spread = 1.4826 * np.nanmedian(np.abs(relative - centre))
+        spread = _robust_sigma(relative)
     with np.errstate(invalid="ignore"):
         normal = np.abs(relative - centre) <= 5.0 * max(spread, 1e-6)
     reference = normal & (noise_ratio <= noise_limit) & (relative > 0)
@@ -546,7 +557,7 @@ def _refine_reference(slope, intercept, used, reference, min_blocks):
     new = good.copy()
     for values in (slope, intercept):
         centre = np.median(values[good])
-        spread = 1.4826 * np.median(np.abs(values[good] - centre))
+        spread = _robust_sigma(values[good])
         new &= np.abs(values - centre) <= 5.0 * max(spread, 1e-9)
     return new if new.sum() >= max(3, good.sum() // 2) else good
 
