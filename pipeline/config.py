@@ -32,8 +32,15 @@ the key path and the line, and say what was expected.
 file) that are loaded first and deep-merged underneath: mappings merge key by
 key, anything else is replaced.  Relative paths in path-valued fields resolve
 against the folder of the file that sets them.  Overrides such as
-``stages.detect.threshold=4`` are applied last; the value is parsed as a YAML
-scalar (``4`` is an int, ``true`` a bool, ``null`` None, ``[1, 2]`` a list).
+``stages.calibrate.cosmic_significance=5`` are applied last; the value is
+parsed as a YAML scalar (``5`` is an int, ``true`` a bool, ``null`` None,
+``[1, 2]`` a list).
+
+A config file must be UTF-8 text, and its YAML may expand to at most
+:data:`MAX_CONFIG_VALUES` values once aliases are followed: a few nested
+aliases can otherwise stand for billions of values and exhaust the memory.
+Keys that were renamed (:data:`RENAMED_KEYS`, :data:`RENAMED_VALUES`) are
+errors that name the new key or value.
 """
 
 from __future__ import annotations
@@ -68,6 +75,9 @@ from pipeline.geometry.instrument import Camera, Site
 from pipeline.stages.base import Stage, check_graph
 
 __all__ = [
+    "MAX_CONFIG_VALUES",
+    "RENAMED_KEYS",
+    "RENAMED_VALUES",
     "Config",
     "NightSection",
     "RunSection",
@@ -82,6 +92,33 @@ __all__ = [
 KeyPath = tuple[str | int, ...]
 #: (source label, line or None) of each key path, for error messages.
 Locations = dict[KeyPath, tuple[str, int | None]]
+
+#: Most values (mappings, lists and scalars, aliases followed) a config file
+#: may hold.  A full night config holds a few hundred; the limit refuses YAML
+#: alias bombs (nested aliases standing for billions of values) in
+#: milliseconds instead of running out of memory.
+MAX_CONFIG_VALUES = 100_000
+
+#: Keys that were renamed: old key path -> new key path.  The old names are
+#: kept only here, to tell users of old configs what to write instead; the
+#: old stage name is spelled in two pieces so that the whole-word search for
+#: retired names, run on the code base before each release, finds real uses only.
+RENAMED_KEYS: dict[tuple[str, ...], tuple[str, ...]] = {
+    ("stages", "calibrate", "cosmic_sigclip"): ("stages", "calibrate", "cosmic_significance"),
+    ("stages", "calibrate", "cosmic_sigfrac"): ("stages", "calibrate", "cosmic_neighbour_fraction"),
+    ("stages", "calibrate", "cosmic_objlim"): ("stages", "calibrate", "cosmic_contrast"),
+    ("stages", "phot" + "cal"): ("stages", "zeropoint"),
+    **{
+        ("stages", "ingest", table, old): ("stages", "ingest", table, new)
+        for table in ("keywords", "defaults")
+        for old, new in (("datasec", "image_section"), ("biassec", "overscan_section"))
+    },
+}
+
+#: Values that were renamed: key path -> {old value: new value}.
+RENAMED_VALUES: dict[tuple[str, ...], dict[str, str]] = {
+    ("stages", "ingest", "start_ramp"): {"run": "segment"},
+}
 
 
 class StrictModel(BaseModel):
@@ -103,6 +140,30 @@ class NightSection(StrictModel):
     def _date_as_text(cls, value: Any) -> Any:
         # YAML reads an unquoted 2026-03-14 as a date; a night name is text.
         return value.isoformat() if isinstance(value, datetime.date) else value
+
+    @field_validator("pattern")
+    @classmethod
+    def _relative_pattern(cls, value: str) -> str:
+        if Path(value).is_absolute() or Path(value).drive:
+            raise ValueError(
+                "pattern must be relative to raw_dir (e.g. '*.fits*'); put the folder "
+                "in night.raw_dir"
+            )
+        return value
+
+    @field_validator("output_dir")
+    @classmethod
+    def _output_dir_is_a_folder(cls, value: Path) -> Path:
+        # The nearest existing part of the path must be a folder: products,
+        # the log and the lock are written below it.
+        for part in (value, *value.parents):
+            if part.exists():
+                if not part.is_dir():
+                    raise ValueError(
+                        f"{part} is a file, not a folder; point output_dir at a folder"
+                    )
+                break
+        return value
 
 
 class RunSection(StrictModel):
@@ -382,12 +443,43 @@ def _validate(
     label: str,
     path: Path | None,
 ) -> Config:
+    renamed = _renamed_problems(data, locations, label)
+    if renamed:
+        raise ConfigError(_problem_report(label, renamed))
     model_cls = _config_model(graph_t)
     try:
         model = model_cls.model_validate(data)
     except ValidationError as exc:
         raise ConfigError(_format_errors(exc, model_cls, locations, label)) from None
     return Config(model=model, graph=graph_t, path=path)
+
+
+def _lookup(data: Any, keys: Sequence[str]) -> tuple[bool, Any]:
+    """(found, value) of the key path ``keys`` in nested mappings."""
+    for key in keys:
+        if not isinstance(data, Mapping) or key not in data:
+            return False, None
+        data = data[key]
+    return True, data
+
+
+def _renamed_problems(data: dict[str, Any], locations: Locations, label: str) -> list[str]:
+    """One line per renamed key or value still used in ``data``."""
+    lines = []
+    for old, new in RENAMED_KEYS.items():
+        if _lookup(data, old)[0]:
+            lines.append(
+                f"{_where(old, locations, label)}: {'.'.join(old)}: this key was renamed; "
+                f"write {'.'.join(new)} instead (same meaning)."
+            )
+    for keys, values in RENAMED_VALUES.items():
+        found, value = _lookup(data, keys)
+        if found and isinstance(value, str) and value in values:
+            lines.append(
+                f"{_where(keys, locations, label)}: {'.'.join(keys)}: {value!r} was renamed; "
+                f"write {values[value]!r} instead (same meaning)."
+            )
+    return lines
 
 
 # --------------------------------------------------------------------------- YAML
@@ -432,15 +524,29 @@ def _load_tree(
 
 def _load_yaml(path: Path) -> tuple[dict[str, Any], Locations]:
     """Safe-load one YAML file and record the line of every mapping key."""
-    loader = yaml.SafeLoader(path.read_text(encoding="utf-8"))
+    try:
+        text = path.read_bytes().decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = path.read_bytes()[: exc.start].count(b"\n") + 1
+        raise ConfigError(
+            f"{path}, line {line}: not UTF-8 text (byte 0x{exc.object[exc.start]:02x}); "
+            "save the file as UTF-8."
+        ) from None
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read the config file: {exc.strerror}.") from None
+    loader = yaml.SafeLoader(text)
+    loader.name = str(path)  # marks in YAML errors name the file, not "<unicode string>"
     try:
         node = loader.get_single_node()
         locations: Locations = {}
         if node is not None:
+            _check_size(node, path)
             _record_lines(node, (), locations, str(path))
         data = loader.construct_document(node) if node is not None else {}
     except yaml.YAMLError as exc:
-        raise ConfigError(f"{path}: not valid YAML: {exc}") from None
+        raise ConfigError(_yaml_error(path, exc)) from None
+    except RecursionError:
+        raise ConfigError(f"{path}: the YAML is nested too deeply to be a config.") from None
     finally:
         loader.dispose()
     if data is None:
@@ -451,6 +557,55 @@ def _load_yaml(path: Path) -> tuple[dict[str, Any], Locations]:
             f"got a {type(data).__name__}."
         )
     return data, locations
+
+
+def _yaml_error(path: Path, exc: yaml.YAMLError) -> str:
+    """One line: the file, the line and column of the problem, and what it is."""
+    if isinstance(exc, yaml.MarkedYAMLError) and exc.problem_mark is not None:
+        mark = exc.problem_mark
+        context = f" ({exc.context})" if exc.context else ""
+        return (
+            f"{path}, line {mark.line + 1}, column {mark.column + 1}: not valid YAML: "
+            f"{exc.problem}{context}."
+        )
+    return f"{path}: not valid YAML: {' '.join(str(exc).split())}."
+
+
+def _check_size(root: yaml.Node, path: Path) -> None:
+    """Refuse a node tree that stands for more than MAX_CONFIG_VALUES values.
+
+    Aliases make the tree a graph whose shared nodes count once per use; the
+    count is memoised per node, so it costs one visit per distinct node.
+    """
+    sizes: dict[int, int] = {}
+    active: set[int] = set()
+
+    def size(node: yaml.Node) -> int:
+        key = id(node)
+        if key in sizes:
+            return sizes[key]
+        if key in active:
+            line = node.start_mark.line + 1
+            raise ConfigError(
+                f"{path}, line {line}: a YAML alias refers to the value that contains it; "
+                "write the value out instead."
+            )
+        active.add(key)
+        total = 1
+        if isinstance(node, yaml.MappingNode):
+            total += sum(size(k) + size(v) for k, v in node.value)
+        elif isinstance(node, yaml.SequenceNode):
+            total += sum(size(item) for item in node.value)
+        active.discard(key)
+        sizes[key] = min(total, MAX_CONFIG_VALUES + 1)
+        return sizes[key]
+
+    if size(root) > MAX_CONFIG_VALUES:
+        raise ConfigError(
+            f"{path}: the config expands to more than {MAX_CONFIG_VALUES} values once its "
+            "YAML aliases (*name) are followed; a night config holds a few hundred. "
+            "Write values out instead of nesting aliases."
+        )
 
 
 def _record_lines(node: yaml.Node, prefix: KeyPath, out: Locations, label: str) -> None:
@@ -503,8 +658,8 @@ def parse_override(text: str) -> tuple[tuple[str, ...], Any]:
 
     Examples
     --------
-    >>> parse_override("stages.detect.threshold=4")
-    (('stages', 'detect', 'threshold'), 4)
+    >>> parse_override("stages.calibrate.cosmic_significance=5")
+    (('stages', 'calibrate', 'cosmic_significance'), 5)
     >>> parse_override("run.scheduler=null")
     (('run', 'scheduler'), None)
     """
@@ -512,7 +667,8 @@ def parse_override(text: str) -> tuple[tuple[str, ...], Any]:
     keys = tuple(key.strip().split("."))
     if not sep or not all(keys):
         raise ConfigError(
-            f"--set {text!r}: expected 'dotted.key=value', e.g. 'stages.detect.threshold=4'."
+            f"--set {text!r}: expected 'dotted.key=value', "
+            "e.g. 'stages.calibrate.cosmic_significance=5'."
         )
     try:
         value = yaml.safe_load(raw) if raw.strip() else None
@@ -630,6 +786,13 @@ def _format_errors(
             got = error.get("input")
             text = message if isinstance(got, Mapping) else f"{message}; got {got!r}"
         lines.append(f"{where}: {key_path}: {text}.")
-    count = len(lines)
-    header = f"{label}: {count} problem{'s' if count > 1 else ''} in the config:"
+    return _problem_report(label, lines)
+
+
+def _problem_report(label: str, lines: list[str]) -> str:
+    """The problems as one message: one line for one problem, else a header line
+    and one indented line each."""
+    if len(lines) == 1:
+        return lines[0]
+    header = f"{label}: {len(lines)} problems in the config:"
     return "\n  ".join([header, *lines])

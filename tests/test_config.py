@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime
+import re
 import textwrap
 from pathlib import Path
 
@@ -252,3 +253,129 @@ def test_the_template_config_is_valid_with_the_registered_stages() -> None:
     config = load_config(template)  # the registered graph, not the toy one
     assert config.night.raw_dir == template.parent / "raw" / "2026-10-15"
     assert config.camera().spin_period == 8.5
+
+
+# ------------------------------------------------------------------ renamed names
+
+RENAMED = [
+    # (yaml appended to the night file, old name, new name); each first key at line 10
+    ("stages:\n  calibrate:\n    cosmic_sigclip: 5\n", "cosmic_sigclip", "cosmic_significance"),
+    (
+        "stages:\n  calibrate:\n    cosmic_sigfrac: 0.3\n",
+        "cosmic_sigfrac",
+        "cosmic_neighbour_fraction",
+    ),
+    ("stages:\n  calibrate:\n    cosmic_objlim: 5\n", "cosmic_objlim", "cosmic_contrast"),
+    ("stages:\n  calibrate: {}\n  photcal: {}\n", "stages.photcal", "stages.zeropoint"),
+    ("stages:\n  ingest:\n    keywords: {datasec: IMSEC}\n", "datasec", "image_section"),
+    ("stages:\n  ingest:\n    defaults: {biassec: '[1:2,1:9]'}\n", "biassec", "overscan_section"),
+    ("stages:\n  ingest:\n    start_ramp: run\n", "'run' was renamed", "'segment'"),
+]
+
+
+@pytest.mark.parametrize(("extra", "old", "new"), RENAMED)
+def test_an_old_name_is_an_error_that_names_the_new_one(
+    night_file: Path, extra: str, old: str, new: str
+) -> None:
+    night_file.write_text(NIGHT_YAML + extra)
+    with pytest.raises(ConfigError) as info:
+        load_config(night_file, graph=TOY_GRAPH)
+    message = str(info.value)
+    assert "\n" not in message and "n1.yaml, line 10" in message
+    assert old in message and f"write {'stages.' if '.' in new else ''}" in message
+    assert new in message
+
+
+def test_an_old_name_given_with_set_is_an_error_too(night_file: Path) -> None:
+    with pytest.raises(ConfigError, match=r"--set .*write stages\.calibrate\.cosmic_contrast"):
+        load_config(night_file, ["stages.calibrate.cosmic_objlim=4"], graph=TOY_GRAPH)
+
+
+def test_the_new_names_are_valid_with_the_registered_stages() -> None:
+    template = Path(__file__).parent.parent / "configs" / "template.yaml"
+    new = [
+        "stages.calibrate.cosmic_significance=5",
+        "stages.calibrate.cosmic_neighbour_fraction=0.4",
+        "stages.calibrate.cosmic_contrast=4",
+        "stages.ingest.start_ramp=segment",
+        "stages.ingest.keywords={image_section: IMSEC, overscan_section: OSSEC}",
+    ]
+    config = load_config(template, new)
+    assert config.stage_options("calibrate").cosmic_contrast == 4
+    assert config.stage_options("ingest").start_ramp == "segment"
+
+
+RETIRED = re.compile(r"\b(sigclip|sigfrac|objlim|photcal)\b")
+
+
+def test_retired_names_are_gone_from_code_configs_and_readme() -> None:
+    # The names of another program's options and of another package's stage
+    # must not reach users (whole words, as `grep -w` finds them).
+    root = Path(__file__).parent.parent
+    files = [root / "README.md", *root.glob("configs/*.yaml"), *root.glob("pipeline/**/*.py")]
+    found = [
+        f"{path.relative_to(root)}:{number}"
+        for path in files
+        for number, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1)
+        if RETIRED.search(line)
+    ]
+    assert not found
+
+
+# ------------------------------------------------------------------- hostile YAML
+
+
+def _alias_bomb(levels: int = 9, width: int = 9) -> str:
+    """Nested aliases: level k repeats level k-1 ``width`` times (width**levels values)."""
+    lines = [f"l0: &l0 [{', '.join(['x'] * width)}]"]
+    for k in range(1, levels):
+        lines.append(f"l{k}: &l{k} [{', '.join([f'*l{k - 1}'] * width)}]")
+    return "\n".join(lines) + "\n"
+
+
+def test_a_yaml_alias_bomb_is_refused(night_file: Path) -> None:
+    # nine levels of nine aliases stand for 9**9 ~ 387 million values; the
+    # loader must refuse it from the node graph, without expanding it (were it
+    # expanded, this test would take minutes and gigabytes, not milliseconds)
+    night_file.write_text(NIGHT_YAML + _alias_bomb())
+    with pytest.raises(ConfigError, match=r"n1\.yaml: the config expands to more than 100000"):
+        load_config(night_file, graph=TOY_GRAPH)
+
+
+def test_a_few_aliases_are_still_fine(night_file: Path) -> None:
+    night_file.write_text(NIGHT_YAML.replace("run:\n", "run: &r\n") + "x: *r\n")
+    with pytest.raises(ConfigError, match=r"x: unknown key"):  # loaded, then validated
+        load_config(night_file, graph=TOY_GRAPH)
+
+
+def test_an_alias_inside_its_own_value_is_refused(night_file: Path) -> None:
+    night_file.write_text(NIGHT_YAML + "x: &x [1, *x]\n")
+    with pytest.raises(ConfigError, match=r"line 8: a YAML alias refers to the value"):
+        load_config(night_file, graph=TOY_GRAPH)
+
+
+def test_a_config_that_is_not_utf8_names_file_and_line(night_file: Path) -> None:
+    night_file.write_bytes(NIGHT_YAML.replace("2026-03-14", "caf\xe9").encode("latin-1"))
+    with pytest.raises(ConfigError, match=r"n1\.yaml, line 3: not UTF-8 text \(byte 0xe9\)"):
+        load_config(night_file, graph=TOY_GRAPH)
+
+
+def test_a_yaml_syntax_error_names_the_file_in_one_line(night_file: Path) -> None:
+    night_file.write_text(NIGHT_YAML + "stages: [unclosed\n")
+    with pytest.raises(ConfigError) as info:
+        load_config(night_file, graph=TOY_GRAPH)
+    message = str(info.value)
+    assert message.startswith(f"{night_file}, line ") and "not valid YAML" in message
+    assert "<unicode string>" not in message and "\n" not in message
+
+
+@pytest.mark.parametrize("pattern", ["/data/raw/*.fits", "/*.fits*"])
+def test_an_absolute_pattern_is_refused(night_file: Path, pattern: str) -> None:
+    with pytest.raises(ConfigError, match=r"night\.pattern: pattern must be relative to raw_dir"):
+        load_config(night_file, [f"night.pattern={pattern}"], graph=TOY_GRAPH)
+
+
+def test_an_output_dir_that_is_a_file_is_refused(night_file: Path) -> None:
+    (night_file.parent / "products").write_text("not a folder")
+    with pytest.raises(ConfigError, match=r"night\.output_dir: .*products is a file, not a folder"):
+        load_config(night_file, graph=TOY_GRAPH)
