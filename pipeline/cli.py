@@ -6,6 +6,7 @@ file and ``--set dotted.key=value`` overrides.
 
 Exit status: 0 success; 1 a unit failed or was blocked (the summary lists
 them); 2 bad command line or config; 3 another run holds the night's lock.
+``-v`` (more messages) goes before or after the subcommand.
 
 Examples
 --------
@@ -16,7 +17,7 @@ Examples
     zdrift simulate night.yaml                   # write a synthetic night of raw blocks
     zdrift run night.yaml                        # the whole night
     zdrift run night.yaml --stage calibrate --stretches 0,3-5 --force
-    zdrift run night.yaml --from rectify --set stages.detect.threshold=4
+    zdrift run night.yaml --from calibrate --set stages.calibrate.cosmic_significance=5
     zdrift status night.yaml
 """
 
@@ -37,6 +38,17 @@ __all__ = ["main"]
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_LOCKED = 0, 1, 2, 3
 
+#: The example of ``--set`` in the help; a key that exists (a test loads it).
+SET_EXAMPLE = "stages.calibrate.cosmic_significance=5"
+
+EPILOG = f"""\
+exit status:
+  {EXIT_OK}  success
+  {EXIT_FAILED}  a unit failed or was blocked (the summary lists them)
+  {EXIT_USAGE}  bad command line or config
+  {EXIT_LOCKED}  another run holds the night's lock
+"""
+
 
 def _stretch_list(text: str) -> frozenset[int]:
     try:
@@ -49,12 +61,22 @@ def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="zdrift",
         description="Reduce drift-scan (TDI) nights from zenith-fixed telescopes.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     parser.add_argument("--version", action="version", version=f"zdrift {pipeline.__version__}")
+    verbose_help = "more messages (-vv: debug); before or after the command"
+    parser.add_argument("-v", "--verbose", action="count", default=0, help=verbose_help)
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     def command(name: str, help_text: str) -> argparse.ArgumentParser:
-        sub = commands.add_parser(name, help=help_text, description=help_text)
+        sub = commands.add_parser(
+            name,
+            help=help_text,
+            description=help_text,
+            epilog=EPILOG,
+            formatter_class=argparse.RawDescriptionHelpFormatter,
+        )
         sub.add_argument("config", help="YAML config file of the night")
         sub.add_argument(
             "--set",
@@ -62,10 +84,12 @@ def _parser() -> argparse.ArgumentParser:
             action="append",
             default=[],
             metavar="KEY=VALUE",
-            help="override a config value, e.g. stages.detect.threshold=4 (repeatable)",
+            help=f"override a config value, e.g. {SET_EXAMPLE} (repeatable)",
         )
+        # Its own dest: a subparser's default would overwrite the count given
+        # before the command; main() adds the two.
         sub.add_argument(
-            "-v", "--verbose", action="count", default=0, help="more messages (-vv: debug)"
+            "-v", "--verbose", dest="verbose_after", action="count", default=0, help=verbose_help
         )
         return sub
 
@@ -199,6 +223,7 @@ def main(args: Sequence[str] | None = None) -> int:
         options = parser.parse_args(args)
     except SystemExit as exc:  # --help, --version, usage errors
         return int(exc.code or 0)
+    options.verbose += options.verbose_after
     try:
         config = load_config(options.config, options.overrides)
     except ConfigError as exc:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 import socket
 import subprocess
 import sys
@@ -13,8 +14,10 @@ import pytest
 import yaml
 
 import pipeline
+import pipeline.cli
 import pipeline.stages
 from pipeline.cli import main
+from pipeline.config import load_config
 from pipeline.geometry.optics import focal_length_from_spin, normal_gravity
 
 
@@ -211,3 +214,75 @@ def test_simulate_then_run_the_registered_stages(tmp_path: Path, capsys) -> None
     for line in table:
         done, stale, missing, failed = line.split()[2:6]
         assert (stale, missing, failed) == ("0", "0", "0") and int(done) >= 1, line
+
+
+def test_help_lists_the_exit_codes(capsys: pytest.CaptureFixture) -> None:
+    for args in (["--help"], ["run", "--help"]):
+        assert main(args) == 0
+        out = capsys.readouterr().out
+        assert "exit status:" in out
+        for code in ("0  success", "1  a unit failed", "2  bad command line", "3  another run"):
+            assert code in out
+
+
+def test_the_help_example_of_set_uses_a_key_that_exists(capsys) -> None:
+    assert main(["run", "--help"]) == 0
+    example = re.search(r"e\.g\.\s+(stages\.\S+=\S+)", capsys.readouterr().out).group(1)
+    template = Path(__file__).parent.parent / "configs" / "template.yaml"
+    load_config(template, [example])  # the registered stages, not the toy graph
+
+
+@pytest.mark.parametrize(
+    "args", [["-v", "config", "{}"], ["config", "{}", "-v"], ["-v", "config", "{}", "-v"]]
+)
+def test_verbose_goes_before_or_after_the_command(toy_file, monkeypatch, args) -> None:
+    seen = {}
+
+    def fake(options, config):
+        seen["verbose"] = options.verbose
+        return 0
+
+    monkeypatch.setitem(pipeline.cli._COMMANDS, "config", fake)
+    assert main([a.format(toy_file) for a in args]) == 0
+    assert seen["verbose"] == args.count("-v")
+
+
+def test_stretches_beyond_the_night_exit_2(toy_file: Path, capsys) -> None:
+    # the toy night has 100 rows in stretches of 30: stretches 0 to 3
+    assert main(["run", str(toy_file), "--stretches", "2,7-8"]) == 2
+    last = capsys.readouterr().err.splitlines()[-1]  # after the progress lines
+    assert (
+        last == "zdrift run: --stretches 7,8: the night has stretches 0 to 3; see `zdrift status`."
+    )
+
+
+def _one_line_exit_2(args: list[str], capsys) -> str:
+    assert main(args) == 2
+    captured = capsys.readouterr()
+    assert captured.out == ""
+    lines = captured.err.splitlines()
+    assert len(lines) == 1, lines
+    return lines[0]
+
+
+def test_an_output_dir_that_is_a_file_exits_2_in_one_line(toy_file: Path, capsys) -> None:
+    (toy_file.parent / "out").write_text("a file")
+    line = _one_line_exit_2(["run", str(toy_file)], capsys)
+    assert "night.output_dir" in line and "is a file, not a folder" in line
+
+
+def test_a_config_that_is_not_utf8_exits_2_in_one_line(toy_file: Path, capsys) -> None:
+    toy_file.write_bytes(toy_file.read_bytes().replace(b"Fictional", b"Fict\xeenal"))
+    line = _one_line_exit_2(["run", str(toy_file)], capsys)
+    assert f"{toy_file}, line " in line and "not UTF-8 text" in line
+
+
+def test_an_absolute_pattern_exits_2_in_one_line(toy_file: Path, capsys) -> None:
+    line = _one_line_exit_2(["run", str(toy_file), "--set", "night.pattern=/tmp/*.fits"], capsys)
+    assert "night.pattern: pattern must be relative to raw_dir" in line
+
+
+def test_a_yaml_syntax_error_exits_2_naming_the_file(toy_file: Path, capsys) -> None:
+    toy_file.write_text(toy_file.read_text() + "stages: {unclosed\n")
+    line = _one_line_exit_2(["run", str(toy_file)], capsys)
+    assert f"{toy_file}, line " in line and "<unicode string>" not in line

@@ -292,7 +292,7 @@ def run_night(
     RunLockedError
         If another live run holds the night's lock.
     ValueError
-        For unknown stage names.
+        For unknown stage names and stretches the night does not have.
     """
     selected = select_stages(config.graph, stage, from_stage, to_stage)
     wanted = None if stretches is None else frozenset(stretches)
@@ -328,7 +328,11 @@ def _run_stage(
     if stage.scope == "stretch" and wanted is not None:
         absent = sorted(wanted - {s.index for s in units})
         if absent:
-            log.warning("%s: no stretches %s (the night has %d)", stage.name, absent, len(units))
+            has = f"stretches 0 to {len(units) - 1}" if units else "no stretch"
+            raise ValueError(
+                f"--stretches {','.join(map(str, absent))}: the night has {has}; "
+                "see `zdrift status`."
+            )
         units = [s for s in units if s.index in wanted]
     results, tasks = [], []
     for stretch in units:
