@@ -321,10 +321,12 @@ def test_status_of_a_new_night_and_orphan_stretches(toy) -> None:
 def test_stretch_selection(toy) -> None:
     make_config, _ = toy
     config = make_config()
-    report = run_night(config, to_stage="scale", stretches={0, 2, 9})
+    report = run_night(config, to_stage="scale", stretches={0, 2})
     assert sorted(r.unit for r in report.results if r.stage == "scale") == ["s0000", "s0002"]
     status = {s.name: s for s in night_status(config).stages}
     assert sorted(status["scale"].ids("missing")) == ["s0001", "s0003"]
+    with pytest.raises(ValueError, match="--stretches 9: the night has stretches 0 to 3"):
+        run_night(config, to_stage="scale", stretches={0, 9})
 
 
 def test_failed_stretch_is_recorded_and_the_rest_goes_on(toy) -> None:

@@ -74,7 +74,7 @@ def summarize_columns(
         Bias-subtracted raw image in electrons, before flat and dark; axis 0 is
         the scan axis.
     rows : ndarray of int, shape (n_rows,)
-        Row index of each row in the night (or run); blocks are
+        Row index of each row in the night (or segment); blocks are
         ``rows // block_rows``, so they align across stretches.
     times : ndarray of float, shape (n_rows,)
         Readout time of each row, in seconds from any reference.
