@@ -100,14 +100,11 @@ Locations = dict[KeyPath, tuple[str, int | None]]
 MAX_CONFIG_VALUES = 100_000
 
 #: Keys that were renamed: old key path -> new key path.  The old names are
-#: kept only here, to tell users of old configs what to write instead; the
-#: old stage name is spelled in two pieces so that the whole-word search for
-#: retired names, run on the code base before each release, finds real uses only.
+#: kept only here, to tell users of old configs what to write instead.
 RENAMED_KEYS: dict[tuple[str, ...], tuple[str, ...]] = {
     ("stages", "calibrate", "cosmic_sigclip"): ("stages", "calibrate", "cosmic_significance"),
     ("stages", "calibrate", "cosmic_sigfrac"): ("stages", "calibrate", "cosmic_neighbour_fraction"),
     ("stages", "calibrate", "cosmic_objlim"): ("stages", "calibrate", "cosmic_contrast"),
-    ("stages", "phot" + "cal"): ("stages", "zeropoint"),
     **{
         ("stages", "ingest", table, old): ("stages", "ingest", table, new)
         for table in ("keywords", "defaults")

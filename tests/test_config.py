@@ -266,7 +266,6 @@ RENAMED = [
         "cosmic_neighbour_fraction",
     ),
     ("stages:\n  calibrate:\n    cosmic_objlim: 5\n", "cosmic_objlim", "cosmic_contrast"),
-    ("stages:\n  calibrate: {}\n  photcal: {}\n", "stages.photcal", "stages.zeropoint"),
     ("stages:\n  ingest:\n    keywords: {datasec: IMSEC}\n", "datasec", "image_section"),
     ("stages:\n  ingest:\n    defaults: {biassec: '[1:2,1:9]'}\n", "biassec", "overscan_section"),
     ("stages:\n  ingest:\n    start_ramp: run\n", "'run' was renamed", "'segment'"),
