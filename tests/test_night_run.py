@@ -184,9 +184,15 @@ def test_a_flipped_camera_calibrates_like_an_unflipped_one(tmp_path, capsys):
     for unit in ("s0000", "s0001"):
         a = tmp_path / "plain/out/n/calibrate" / unit
         b = tmp_path / "flipped/out/n/calibrate" / unit
-        np.testing.assert_array_equal(_product(a, "mask"), _product(b, "mask"))
         # Float32 sums in another order (the overscan columns are reversed too):
-        # rounding of ~1e-7 relative.
+        # rounding of ~1e-7 relative, which can move a pixel lying at a
+        # cosmic-ray, saturation or bleed threshold across it.  The column flags
+        # (set from whole-night statistics) must agree; a pixel flag may differ
+        # in at most 1e-3 of the pixels (24 of 24576; measured: none).
+        mask_a, mask_b = _product(a, "mask"), _product(b, "mask")
+        column_bits = MaskBit.BAD_COLUMN | MaskBit.HOT_COLUMN
+        np.testing.assert_array_equal(mask_a & column_bits, mask_b & column_bits)
+        assert np.mean(mask_a != mask_b) < 1e-3
         np.testing.assert_allclose(
             _product(a, "image"), _product(b, "image"), rtol=1e-5, atol=1e-3, equal_nan=True
         )
@@ -360,9 +366,13 @@ def test_a_failed_stretch_leaves_the_flat_and_the_other_stretches_calibrated(
     first = _product(products / "column_stats/s0000", "column_stats")
     first = set(first["block"])
     assert partial.meta["n_blocks"] == len(first) > 0  # s0000's blocks only
-    for unit in ("s0000", "s0001"):
-        image = _product(products / "calibrate" / unit, "image")
-        assert np.isfinite(image).any()
+    partial_images = {
+        unit: (
+            _product(products / "calibrate" / unit, "image"),
+            _product(products / "calibrate" / unit, "mask"),
+        )
+        for unit in ("s0000", "s0001")
+    }
     # Fixed: column_stats/s0001 reruns, which makes the columns stale: solved on both.
     monkeypatch.setattr(column_stats, "stretch_rows_for_stage", real)
     assert main(["run", str(config), "--to", "columns"]) == 0
@@ -378,3 +388,18 @@ def test_a_failed_stretch_leaves_the_flat_and_the_other_stretches_calibrated(
         json.loads((products / "columns/night/_provenance.json").read_text())["missing_stretches"]
         == {}
     )
+    # Compared with the clean run of the same stretches (self-consistency): the
+    # flat and level solved from half the blocks differ from the whole night's
+    # by their own errors, a small part of a pixel's noise (measured: median
+    # 0.03 sigma, worst pixel 2.8 sigma, in an edge column); the same columns
+    # are flagged.
+    assert np.array_equal(partial["flags"], whole["flags"])
+    assert main(["run", str(config), "--to", "calibrate"]) == 0
+    for unit, (image, mask) in partial_images.items():
+        clean = products / "calibrate" / unit
+        deviation = (image - _product(clean, "image")) / np.sqrt(_product(clean, "variance"))
+        assert np.nanmedian(np.abs(deviation)) < 0.1
+        assert np.nanmax(np.abs(deviation)) < 5.0
+        # A recalibrated pixel can cross a cosmic-ray or saturation threshold
+        # (measured: 4 of 24576 pixels, next to a bleed).
+        assert np.mean(mask != _product(clean, "mask")) < 1e-3

@@ -296,8 +296,15 @@ def test_changed_raw_file_makes_only_affected_units_stale(toy, tmp_path: Path) -
     run_night(config)
     # block with BLOCKSEQ 3 holds night rows 75..99: stretches 2 (lo 56, hi 94) and 3
     path = next(p for p in (tmp_path / "raw").iterdir() if p.name.endswith("_3.fits"))
+    before = path.stat()
     with fits.open(path, mode="update") as hdul:
         hdul[0].data[0, 0] += 1
+    # The edit keeps the size; the runner sees it through the modification
+    # time (raw_files_fingerprint).  On a file system with 1-second time stamps
+    # an edit within the same second would keep that too, so the test sets the
+    # time an edit one second later would leave, rather than relying on the clock.
+    assert path.stat().st_size == before.st_size
+    os.utime(path, ns=(before.st_atime_ns, before.st_mtime_ns + 1_000_000_000))
     status = {s.name: s for s in night_status(config).stages}
     assert status["index"].units["night"] == ("stale", "inputs changed: raw_files")
     assert sorted(status["scale"].ids("stale")) == ["s0002", "s0003"]
