@@ -15,6 +15,7 @@ from pydantic import ValidationError
 
 from pipeline.exceptions import RectifyWarning
 from pipeline.geometry.rectified import RectifiedFrame
+from pipeline.geometry.tdi import first_order_bow
 from pipeline.masks import MaskBit
 from pipeline.stages import GRAPH, StageContext, Stretch
 from pipeline.stages.rectify import (
@@ -256,6 +257,31 @@ def test_smear_kernel_record_matches_analytic_smear_and_bow(latitude):
     assert (poleward["dx"][-1] - poleward["dx"][0]) > 1.0
 
 
+@pytest.mark.parametrize("latitude", LATITUDES)
+def test_smear_kernel_bow_has_the_sign_the_geometry_predicts(latitude):
+    # CHECK_VALUES section 3.4 (first_order_bow): a track bows poleward at its
+    # ends, sagitta N^2 p tan(delta) / 8, positive to the north; its time-mean
+    # lies s/3 poleward of the meridian point.  Sampled uniformly in time at
+    # u = t/T - 1/2, the cross-scan offsets from the mean are s (4 u^2 - <4 u^2>).
+    # Fit s to each recorded kernel, signed, and compare: a bow recorded the
+    # wrong way round (south, or north, only) is off by 2 s.
+    scene, result = _grid_scene(latitude)
+    kernels = result.smear_kernels
+    n_samples = kernels.meta["n_samples"]
+    u = (np.arange(n_samples) + 0.5) / n_samples - 0.5
+    shape = 4 * u**2 - np.mean(4 * u**2)
+    dy = np.asarray(kernels["dy"])
+    fitted = dy @ shape / (shape @ shape)
+    offset = np.asarray(kernels["y"]) - (result.image.shape[0] - 1) / 2.0
+    predicted = first_order_bow(latitude, scene.model.n_rows, scene.model.pixel_scale, offset)
+    # 1e-3 px + 2e-4 relative: the first-order sagitta equals the exact one to
+    # 1e-4 (CHECK_VALUES 4.2; measured <= 6e-4 px at 50 deg, 2e-5 px at the
+    # equator, where the edges' sagittas are -/+0.016 px).
+    np.testing.assert_allclose(fitted, predicted, rtol=2e-4, atol=1e-3)
+    # what is left is the parabola's higher orders and the map's interpolation
+    assert np.abs(dy - fitted[:, None] * shape).max() < 0.005
+
+
 def test_smear_kernel_lookup_matches_exact_kernel():
     # The interpolated kernel between recorded rows equals the exact kernel of
     # a star there (TDIModel.track) to well below a hundredth of a pixel.
@@ -446,11 +472,13 @@ def _ellipticity(image, x0, y0, half=9, sigma_w=3.0):
     return np.hypot(ixx - iyy, 2 * ixy) / (ixx + iyy)
 
 
-def test_deconvolution_makes_edge_stars_as_round_as_the_centre():
-    model = scene_model(50.0, N_ROWS)
+@pytest.mark.parametrize("latitude", [50.0, -50.0])
+def test_deconvolution_makes_edge_stars_as_round_as_the_centre(latitude):
+    model = scene_model(latitude, N_ROWS)
     frame = RectifiedFrame.for_night(model, N_ROWS)
     xs = np.arange(200.0, N_ROWS - 200.0, 80.0) + 0.3
-    rows = np.array([26.0, (frame.n_y - 1) / 2.0, frame.n_y - 27.0])
+    # whole rows, so every star has the same sub-pixel phase as its centre-line twin
+    rows = np.array([26.0, float((frame.n_y - 1) // 2), frame.n_y - 27.0])
     x, y = np.meshgrid(xs, rows)
     scene = star_scene(model, N_ROWS, x.ravel(), y.ravel())
     planes = (scene.image, scene.variance, scene.mask)
@@ -487,11 +515,25 @@ def test_deconvolution_makes_edge_stars_as_round_as_the_centre():
     np.testing.assert_allclose(flux, scene.flux, rtol=5e-3)
     assert result.deconvolution_noise_gain is not None
 
+    # The stamps themselves, not only their second moments (which a mirrored
+    # bow leaves unchanged): each edge star, normalised to unit flux, matches
+    # the centre-line star of the same column pixel by pixel.  Measured 1.2 %
+    # of the peak at +/-50 deg (the regularised inverse leaves some smear);
+    # 3 % is the budget, a bow deconvolved the wrong way round gives 20 %.
+    def stamp(x, y, half=8):
+        xi, yi = round(x - result.x_start), round(y)
+        box = result.image[yi - half : yi + half + 1, xi - half : xi + half + 1]
+        return box / box.sum()
+
+    for x in xs:
+        centre_star = stamp(x, rows[1])
+        for row in (rows[0], rows[2]):
+            difference = np.abs(stamp(x, row) - centre_star).max()
+            assert difference < 0.03 * centre_star.max(), (x, row, difference)
+
 
 def test_deconvolution_noise_cost():
-    # Measured noise cost in blank sky: rms after / before deconvolution.  The
-    # header gain is computed for white input noise; the rectified noise is
-    # already smoothed by the interpolation, so the measured ratio is lower.
+    # Measured noise cost in blank sky: rms after / before deconvolution.
     model = scene_model(50.0, 1024)
     rng = np.random.default_rng(11)
     image = rng.normal(200.0, 10.0, (1024, 256))
@@ -499,15 +541,22 @@ def test_deconvolution_noise_cost():
     plain = rectify(*planes, model)
     sharp = rectify(*planes, model, deconvolve=True)
     inner = (slice(30, -30), slice(120, -120))
-    ratio = np.nanstd(sharp.image[inner]) / np.nanstd(plain.image[inner])
+    noise = {"plain": np.nanstd(plain.image[inner]), "sharp": np.nanstd(sharp.image[inner])}
+    # The variance plane describes the measured noise.  Before deconvolution:
+    # the resampling weights' sum of squares, exact for white input (measured
+    # 0.05 % apart); 1 %: the sample rms of ~160 000 pixels correlated over a
+    # few pixels is good to ~0.5 %.
+    assert noise["plain"] == pytest.approx(np.sqrt(np.nanmean(plain.variance[inner])), rel=0.01)
+    # After it the plane is scaled by the white-noise gain squared, which
+    # ignores the correlation left by the resampling (measured 0.6-0.9 % apart
+    # at 50 deg for two noise seeds, where the issue asks for ~3 %; but 10 %
+    # at 30 deg, which this approximation does not reach); 3 %.
+    assert noise["sharp"] == pytest.approx(np.sqrt(np.nanmean(sharp.variance[inner])), rel=0.03)
+    # The header's gain is computed for white input noise; the rectified noise
+    # is already smoothed by the interpolation, so the measured ratio is lower
+    # (measured 6.3 % below at 50 deg); 10 %.
     gain = sharp.deconvolution_noise_gain
-    # 15 %: the gain assumes white noise, the rectified noise is slightly
-    # correlated (measured 3-7 % below the gain at 30 and 50 deg).
-    assert ratio == pytest.approx(gain, rel=0.15)
-    # The variance plane follows the gain squared.
-    assert np.nanmean(sharp.variance[inner]) == pytest.approx(
-        np.nanmean(plain.variance[inner]) * gain**2, rel=0.15
-    )
+    assert noise["sharp"] / noise["plain"] == pytest.approx(gain, rel=0.1)
 
 
 # ----------------------------------------------------------------------------
