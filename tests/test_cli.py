@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 import re
 import socket
 import subprocess
@@ -18,7 +19,6 @@ import pipeline.cli
 import pipeline.stages
 from pipeline.cli import main
 from pipeline.config import load_config
-from pipeline.geometry.optics import focal_length_from_spin, normal_gravity
 
 
 @pytest.fixture
@@ -136,7 +136,6 @@ def test_locked_night_exits_3(toy_file: Path, capsys) -> None:
 
 
 def test_plan_prints_the_site_and_camera_numbers(toy_file: Path, capsys) -> None:
-    pytest.importorskip("pipeline.geometry.plan")
     realistic = ["--set", "camera.n_columns=2048", "--set", "camera.tdi_rows=2048"]
     assert main(["plan", str(toy_file), *realistic]) == 0
     out = capsys.readouterr().out
@@ -159,23 +158,35 @@ def _value(text, label):
 
 
 def test_plan_reports_spin_error_consequences(capsys):
-    assert main(["plan", str(DEMO), "--spin-error", "0.001"]) == 0
+    spin, error = 6.953115, 0.001  # s: the demo mirror (configs/simulate_demo.yaml)
+    assert main(["plan", str(DEMO), "--spin-error", str(error)]) == 0
     out = capsys.readouterr().out
-    # df/f = 2 dT/T: differentiate f = g T^2 / (8 pi^2) (Borra et al. 1990, SPIE 1236,
-    # f = g / 2 w^2; CHECK_VALUES row 10).  Demo mirror: T = 6.953115 s.
-    g = normal_gravity(41.65, 1350.0)
-    f = focal_length_from_spin(6.953115, g)
-    expected_mm = 1e3 * f * 2 * 0.001 / 6.953115
-    assert _value(out, "focal length error") == pytest.approx(expected_mm, rel=1e-3)
+    # A liquid spinning at w = 2 pi / T takes the shape of a paraboloid of focal
+    # length f = g / (2 w^2) (Borra et al. 1990, SPIE 1236; CHECK_VALUES row 10),
+    # with the plan's own normal gravity; printed to 1e-5 m.
+    g = _value(out, "normal gravity")
+    focal = g / (2 * (2 * math.pi / spin) ** 2)
+    slower_focal = g / (2 * (2 * math.pi / (spin + error)) ** 2)
+    assert _value(out, "focal length") == pytest.approx(focal, abs=1e-5)
+    # The errors are first order in dT/T; compare them with the exact
+    # differences to the plan of the same mirror spun 1 ms slower (second
+    # order: dT/T = 1.4e-4 of the error; the printed digits: 1e-4 of it).
+    assert main(["plan", str(DEMO), "--set", f"camera.spin_period={spin + error}"]) == 0
+    slower = capsys.readouterr().out
+    assert _value(slower, "focal length") == pytest.approx(slower_focal, abs=1e-5)
+    assert _value(out, "focal length error") == pytest.approx(
+        1e3 * (slower_focal - focal), rel=5e-4
+    )
     # A longer focal length makes the drift faster in pixels, so the matched
-    # line time shrinks by the same fraction; over 4096 rows the mismatch is
-    # 4096 * df/f rows of smear (DESIGN.md section 4, rate-error smear).
-    line_time_ms = _value(out, "line time ")
+    # line time shrinks; over 4096 rows the mismatch of the old line time is
+    # the smear (DESIGN.md section 4, rate-error smear).
+    line_time = _value(out, "matched line time")
+    slower_line_time = _value(slower, "matched line time")
     assert _value(out, "line time error") == pytest.approx(
-        -1e3 * line_time_ms * 2 * 0.001 / 6.953115, rel=1e-3
+        1e3 * (slower_line_time - line_time), rel=1e-3
     )
     assert _value(out, "smear over 4096 rows") == pytest.approx(
-        4096 * 2 * 0.001 / 6.953115, rel=1e-3
+        4096 * (1 - slower_line_time / line_time), rel=1e-3
     )
 
 
