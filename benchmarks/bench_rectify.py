@@ -2,15 +2,18 @@
 
 Run::
 
-    OMP_NUM_THREADS=1 python benchmarks/bench_rectify.py [--columns 4096] [--rows 4096]
+    python benchmarks/bench_rectify.py [--columns 4096] [--rows 4096] [--repeat 3]
 
 It builds a fictional 4096-column TDI camera at 0.35 arcsec per pixel on a
 site at latitude 49 deg, fills a stretch of calibrated rows (plus 64-row
-overlap margins) with noise, and times, best of ``--repeat`` runs:
+overlap margins) with noise, and times, best and median of ``--repeat`` runs
+with one BLAS/OpenMP thread:
 
-* ``resample``: the two Keys resampling passes and the transposition, with
-  the sampling positions precomputed: the part the design budgets at
-  >= 15 megapixels per second per core;
+* ``resample``: the two Keys resampling passes and the transposition, called
+  with exactly the arguments the stage passes them in this stretch (the
+  positions and shifts per block of rows and columns, the block breaks and
+  the Jacobians, recorded from one run of the stage): the part the design
+  budgets at >= 15 megapixels per second per core;
 * ``rectify``: the whole stage function (frame, map nodes, blocks, smear
   kernels, resampling) without deconvolution;
 * ``rectify + deconvolve``: the same with the optional deconvolution and
@@ -18,35 +21,60 @@ overlap margins) with noise, and times, best of ``--repeat`` runs:
   once); it also prints the deconvolution's margin, its header noise gain and
   the measured blank-sky rms after / before deconvolution.
 
-Throughput counts rectified output pixels (``n_y * n_x``).
+Throughput counts rectified output pixels (``n_y * n_x``).  The load average
+printed before and after says whether other processes shared the core.
 """
 
 from __future__ import annotations
 
 import argparse
-import os
+import statistics
 import time
 
-os.environ.setdefault("OMP_NUM_THREADS", "1")
+# the script's folder is on sys.path when it is run as a script
+from _machine import describe, limit_threads, machine_state, repeat_timing
 
-import numpy as np
-from astropy.time import Time
+limit_threads(1)
 
-from pipeline.geometry import Camera, Site, TDIModel
-from pipeline.geometry.rectified import RectifiedFrame
-from pipeline.masks import MaskBit
-from pipeline.stages import rectify as rectify_module
-from pipeline.stages.rectify._deconvolve import deconvolution_margin
-from pipeline.stages.rectify._resample import resample_columns, shift_rows, transposed
+import numpy as np  # noqa: E402
+from astropy.time import Time  # noqa: E402
+
+from pipeline.geometry import Camera, Site, TDIModel  # noqa: E402
+from pipeline.geometry.rectified import RectifiedFrame  # noqa: E402
+from pipeline.masks import MaskBit  # noqa: E402
+from pipeline.stages import rectify as rectify_module  # noqa: E402
+from pipeline.stages.rectify._deconvolve import deconvolution_margin  # noqa: E402
+
+RESAMPLING_STEPS = ("resample_columns", "shift_rows", "transposed")
 
 
-def _best(function, repeat: int) -> float:
-    times = []
-    for _ in range(repeat):
-        start = time.perf_counter()
-        function()
-        times.append(time.perf_counter() - start)
-    return min(times)
+def record_resampling_calls(run) -> list[tuple[str, tuple, dict]]:
+    """Run the stage once and record its calls of the resampling functions."""
+    calls = []
+    originals = {name: getattr(rectify_module, name) for name in RESAMPLING_STEPS}
+
+    def recorder(name):
+        def call(*args, **kwargs):
+            calls.append((name, args, kwargs))
+            return originals[name](*args, **kwargs)
+
+        return call
+
+    try:
+        for name in RESAMPLING_STEPS:
+            setattr(rectify_module, name, recorder(name))
+        run()
+    finally:
+        for name, function in originals.items():
+            setattr(rectify_module, name, function)
+    return calls
+
+
+def replay(calls) -> None:
+    """Repeat the recorded resampling calls, in order, with their recorded arguments."""
+    functions = {name: getattr(rectify_module, name) for name in RESAMPLING_STEPS}
+    for name, args, kwargs in calls:
+        functions[name](*args, **kwargs)
 
 
 def main(argv: list[str] | None = None) -> None:
@@ -57,6 +85,7 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--deconvolve", action="store_true")
     args = parser.parse_args(argv)
+    print(machine_state())
 
     camera = Camera(
         n_columns=args.columns, tdi_rows=4096, pixel_size=15.0, focal_length=8.84, name="bench"
@@ -86,30 +115,28 @@ def main(argv: list[str] | None = None) -> None:
             **kwargs,
         )
 
+    calls = record_resampling_calls(run)
     result = run()
     n_pixels = result.image.size
+    frame = RectifiedFrame.for_night(model, night_rows)
     print(
         f"stretch: {n_in} x {args.columns} calibrated rows -> {result.image.shape} rectified "
         f"(lat 49 deg, {model.pixel_scale:.3f} arcsec/px)"
     )
+    for name, call_args, call_kwargs in calls:
+        if name != "transposed":
+            breaks = call_kwargs.get("breaks")
+            jacobian = np.asarray(call_args[4] if name == "resample_columns" else call_args[5])
+            print(
+                f"  {name}: {0 if breaks is None else len(breaks) - 1} blocks, "
+                f"Jacobian {jacobian.min():.5f} to {jacobian.max():.5f}"
+            )
 
-    # The resampling alone, with the positions the stage uses.
-    frame = RectifiedFrame.for_night(model, night_rows)
-    n_y, n_x = result.image.shape
-    positions = np.linspace(-2.0, args.columns + 1.0, n_y)
-    shifts = np.full(n_y, float(args.overlap) + 0.37)
-    bits = {"outside_bit": int(MaskBit.OUTSIDE), "nonfinite_bit": int(MaskBit.NONFINITE)}
-    assert frame.n_y == n_y
-
-    def resample():
-        across = resample_columns(image, variance, mask, positions, **bits)
-        along = shift_rows(*across, shifts, n_x, **bits)
-        return [transposed(a) for a in along]
-
-    t_resample = _best(resample, args.repeat)
-    t_rectify = _best(run, args.repeat)
-    print(f"resample            {t_resample:7.3f} s  {n_pixels / t_resample / 1e6:6.1f} Mpx/s")
-    print(f"rectify             {t_rectify:7.3f} s  {n_pixels / t_rectify / 1e6:6.1f} Mpx/s")
+    t_resample = repeat_timing(lambda: replay(calls), args.repeat)
+    t_rectify = repeat_timing(run, args.repeat)
+    for label, times in (("resample", t_resample), ("rectify", t_rectify)):
+        rate = n_pixels / statistics.median(times) / 1e6
+        print(f"{label:20s}{rate:6.1f} Mpx/s (median; {describe(times)})")
     if args.deconvolve:
         # The deconvolution reads beyond the stretch: give it the overlap it
         # asks for, on the same noise (so the blank-sky rms ratio is measured).
@@ -138,6 +165,7 @@ def main(argv: list[str] | None = None) -> None:
             f"header noise gain {sharp.deconvolution_noise_gain:.3f}, blank-sky rms "
             f"after / before {ratio:.3f}"
         )
+    print(machine_state())
 
 
 if __name__ == "__main__":

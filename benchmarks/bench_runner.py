@@ -1,32 +1,44 @@
 """Overheads of the runner: product store, up-to-date checks, executors.
 
-Measures, on invented data in a temporary folder,
+Measures, on invented data in a temporary folder (``--dir``, default the
+system's temporary folder; its file system type is printed),
 
 * product store throughput: writing (temp file, fsync, SHA-256, rename) and
   reading a calibrated-stretch-sized set of products (float32 image and
-  variance, uint16 mask), in MB/s;
+  variance, uint16 mask), in MB/s.  Reads are timed twice: "cold", after the
+  written files' pages are dropped from the page cache
+  (``posix_fadvise(DONTNEED)``, so the read comes from the storage device
+  unless the folder lives in memory, e.g. tmpfs), and "warm", from the page
+  cache, as a reread right after a write is;
 * bookkeeping per unit: a night of many stretches through a stage that does
   no work, serially (first run, then an all-up-to-date rerun, then status);
 * parallel speed-up: a CPU-bound toy stage (a fixed number of matrix
   products per stretch) over 8 stretches on the serial executor and on the
-  local process pool (ratio of wall times; includes the pool's start-up).
-  Meaningful only on an otherwise idle machine.
+  local process pool, alternately, ``--repeat`` times each on fresh output
+  folders; the speed-up is the ratio of the median wall times, everything
+  included (the pool's start-up too), and cannot exceed the worker count or
+  the cores.
 
-Run::
+Each figure is repeated; the machine's load average is printed before and
+after: on a loaded machine (load near the CPU count or above) the parallel
+speed-up is meaningless.  Run::
 
-    OMP_NUM_THREADS=1 python benchmarks/bench_runner.py [--workers 2]
+    python benchmarks/bench_runner.py [--workers 2] [--repeat 3]
 """
 
 from __future__ import annotations
 
 import argparse
 import os
+import statistics
 import tempfile
 import time
 from pathlib import Path
 
-for _name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
-    os.environ.setdefault(_name, "1")
+# the script's folder is on sys.path when it is run as a script
+from _machine import describe, limit_threads, machine_state
+
+limit_threads(1)  # one BLAS thread per process: the pool's workers are the parallelism
 
 import numpy as np  # noqa: E402
 from astropy.io import fits  # noqa: E402
@@ -100,7 +112,33 @@ def config(root: Path, name: str, run: dict, work) -> object:
     return config_from_mapping(data, graph=graph(work))
 
 
-def bench_store(root: Path) -> None:
+def _drop_from_page_cache(folder: Path) -> None:
+    """Ask the kernel to drop the (already fsynced) files' pages from its cache."""
+    for path in folder.iterdir():
+        fd = os.open(path, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+            os.posix_fadvise(fd, 0, 0, os.POSIX_FADV_DONTNEED)
+        finally:
+            os.close(fd)
+
+
+def _file_system(path: Path) -> str:
+    """Type of the file system holding ``path`` (from /proc/mounts), or 'unknown'."""
+    try:
+        mounts = [line.split()[1:3] for line in Path("/proc/mounts").read_text().splitlines()]
+    except OSError:
+        return "unknown"
+    resolved = str(path.resolve())
+    best = max(
+        (m for m in mounts if resolved == m[0] or resolved.startswith(m[0].rstrip("/") + "/")),
+        key=lambda m: len(m[0]),
+        default=(None, "unknown"),
+    )
+    return best[1]
+
+
+def bench_store(root: Path, repeat: int) -> None:
     rng = np.random.default_rng(0)
     shape = (4096 + 128, 2048)  # a stretch with its margins
     products = {
@@ -109,17 +147,25 @@ def bench_store(root: Path) -> None:
         "mask": rng.integers(0, 4, size=shape).astype(np.uint16),
     }
     megabytes = sum(p.nbytes for p in products.values()) / 1e6
-    folder = root / "store"
-    t0 = time.perf_counter()
-    entries = write_products(folder, products, {"ZDSTAGE": ("bench", "")})
-    t1 = time.perf_counter()
-    read_products(folder, {"products": entries})
-    t2 = time.perf_counter()
-    print(
-        f"store: {megabytes:.0f} MB of products written in {t1 - t0:.2f} s "
-        f"({megabytes / (t1 - t0):.0f} MB/s incl. fsync + SHA-256), "
-        f"read in {t2 - t1:.2f} s ({megabytes / (t2 - t1):.0f} MB/s)"
-    )
+    write, cold, warm = [], [], []
+    for attempt in range(repeat):
+        folder = root / f"store{attempt}"
+        t0 = time.perf_counter()
+        entries = write_products(folder, products, {"ZDSTAGE": ("bench", "")})
+        write.append(time.perf_counter() - t0)
+        _drop_from_page_cache(folder)
+        for times in (cold, warm):
+            t0 = time.perf_counter()
+            read_products(folder, {"products": entries})
+            times.append(time.perf_counter() - t0)
+    print(f"store: {megabytes:.0f} MB of products on {_file_system(root)} ({root})")
+
+    def rate(times):
+        return f"{megabytes / statistics.median(times):.0f} MB/s ({describe(times)})"
+
+    print(f"  write incl. fsync + SHA-256: {rate(write)}")
+    print(f"  read, dropped from the page cache: {rate(cold)}")
+    print(f"  read again, from the page cache:   {rate(warm)}")
 
 
 def bench_bookkeeping(root: Path) -> None:
@@ -141,25 +187,26 @@ def bench_bookkeeping(root: Path) -> None:
     )
 
 
-def bench_parallel(root: Path, workers: int) -> None:
-    times = {}
-    for label, executor, work in [
-        ("serial", "serial", busy),
-        ("local", "local", busy),
-        ("start-up", "local", nothing),
-    ]:
-        run = {"stretch_rows": 16, "overlap_rows": 0, "executor": executor, "workers": workers}
-        cfg = config(root, f"parallel-{label}", run, work)
-        t0 = time.perf_counter()
-        report = run_night(cfg)
-        times[label] = time.perf_counter() - t0
-        assert report.ok, report.format()
+def bench_parallel(root: Path, workers: int, repeat: int) -> None:
+    times: dict[str, list[float]] = {"serial": [], "local": []}
+    for attempt in range(repeat):
+        for executor, taken in times.items():  # alternate, so drifting load hits both
+            run = {"stretch_rows": 16, "overlap_rows": 0, "executor": executor, "workers": workers}
+            cfg = config(root, f"parallel-{executor}-{attempt}", run, busy)  # fresh products
+            t0 = time.perf_counter()
+            report = run_night(cfg)
+            taken.append(time.perf_counter() - t0)
+            assert report.ok, report.format()
+    serial, local = times["serial"], times["local"]
+    ratios = [s / p for s, p in zip(serial, local, strict=True)]
     print(
-        f"parallel: 8 stretches of equal CPU work: serial {times['serial']:.2f} s, local pool "
-        f"({workers} workers) {times['local']:.2f} s, of which pool start-up and bookkeeping "
-        f"~{times['start-up']:.2f} s (same night, no work); speed-up "
-        f"{times['serial'] / times['local']:.2f}x, "
-        f"{times['serial'] / (times['local'] - times['start-up']):.2f}x without start-up"
+        f"parallel: 8 stretches of equal CPU work, serial executor {describe(serial)}; "
+        f"local pool of {workers} workers {describe(local)}, its start-up included"
+    )
+    print(
+        f"  speed-up {statistics.median(serial) / statistics.median(local):.2f}x "
+        f"(median of each; per repeat {', '.join(f'{r:.2f}' for r in ratios)}); "
+        f"at most {min(workers, os.cpu_count() or 1)}x on this machine"
     )
 
 
@@ -167,15 +214,19 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--stretches", type=int, default=200, help="units of no work")
+    parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--dir", type=Path, default=None, help="folder for the temporary data")
     args = parser.parse_args()
-    with tempfile.TemporaryDirectory() as tmp:
+    print(machine_state())
+    with tempfile.TemporaryDirectory(dir=args.dir) as tmp:
         root = Path(tmp)
-        bench_store(root)
+        bench_store(root, args.repeat)
         # 16-row stretches: 8 blocks of 128 rows make 64 stretches
         write_night(root / "raw", n_blocks=max(args.stretches // 8, 1), rows=128, columns=8)
         bench_bookkeeping(root)
         write_night(root / "p" / "raw", n_blocks=1, rows=128, columns=8)
-        bench_parallel(root / "p", args.workers)
+        bench_parallel(root / "p", args.workers, args.repeat)
+    print(machine_state())
 
 
 if __name__ == "__main__":
