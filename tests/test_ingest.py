@@ -5,6 +5,8 @@ from __future__ import annotations
 import json
 import re
 import warnings
+from dataclasses import replace
+from pathlib import Path
 
 import astropy.units as u
 import numpy as np
@@ -169,11 +171,149 @@ def test_truncated_and_non_fits_files_are_rejected(tmp_path):
 
 
 def test_nan_filled_data_is_rejected():
-    with pytest.raises(IngestError, match="all 6 pixels read are NaN"):
+    with pytest.raises(IngestError, match="all 6 image pixels are NaN"):
         check_block_data(np.full((2, 3), np.nan), "nan.fits")
-    with pytest.raises(IngestError, match=r"equal 0\.0"):
+    with pytest.raises(IngestError, match=r"equal 0 ADU"):
         check_block_data(np.zeros((2, 3)), "zero.fits")
     check_block_data(np.array([[1.0, np.nan, 2.0]]))
+
+
+def test_read_block_header_reads_compressed_blocks(tmp_path):
+    """Regression: the size check compared the gzip file's size with the data's."""
+    plain = write_block(tmp_path / "b0.fits", make_header(0))
+    packed = write_block(tmp_path / "b0.fits.gz", make_header(0))
+    assert packed.stat().st_size < plain.stat().st_size  # uint16 noise in 0-100 packs well
+    assert read_block_header(packed) == replace(read_block_header(plain), name="b0.fits.gz")
+    # The project's own demo blocks (gzip, see demo_frames/README.md).
+    demo = Path(__file__).resolve().parents[1] / "demo_frames" / "block_0000.fits.gz"
+    assert read_block_header(demo).n_rows == 1024
+
+
+def _unusable(values, **header):
+    """A block whose image section holds ``values``, the overscan a live bias."""
+    rng = np.random.default_rng(3)
+    data = rng.normal(1000.0, 3.0, (N_ROWS, N_IMAGE + N_OVERSCAN)).astype(np.float32)
+    data[:, :N_IMAGE] = values
+    return data, make_header(0, BITPIX=-32, **header)
+
+
+UNUSABLE_BLOCKS = [
+    (0.0, {}, "all 960 finite image pixels equal 0 ADU (a dead readout?)"),
+    (np.nan, {}, "all 960 image pixels are NaN or infinite"),
+    (
+        np.linspace(61000.0, 65535.0, N_IMAGE),
+        {"SATURATE": 60000.0},
+        "all 960 finite image pixels are saturated (61000 to 65535 ADU, SATURATE=60000)",
+    ),
+]
+
+
+@pytest.mark.parametrize(("values", "header", "message"), UNUSABLE_BLOCKS)
+def test_a_block_without_a_usable_pixel_is_rejected_in_one_line(tmp_path, values, header, message):
+    from pipeline.runner._rawio import read_raw_files
+
+    data, header = _unusable(values, **header)
+    path = tmp_path / "b0.fits"
+    fits.PrimaryHDU(data, header).writeto(path)
+    (raw,) = read_raw_files(tmp_path, ["b0.fits"])
+    night = ingest_files([raw], IngestOptions())
+    assert len(night.table) == 0 and len(night.rejected) == 1
+    assert night.rejected[0].startswith(f"b0.fits: {message}")
+    assert night.rejected[0].endswith("its rows are left out of the night (a gap).")
+    with pytest.raises(IngestError, match=re.escape(message)):
+        read_block_header(path)
+    # One row of usable pixels is enough: a block with some usable data is kept.
+    data[5, :N_IMAGE] = np.linspace(1100.0, 1200.0, N_IMAGE)
+    fits.PrimaryHDU(data, header).writeto(path, overwrite=True)
+    assert read_block_header(path).n_rows == N_ROWS
+
+
+def test_pixel_summary_in_chunks_equals_the_whole(tmp_path, monkeypatch):
+    import pipeline.runner._rawio as rawio
+    from pipeline.stages.base import PixelSummary
+
+    data, header = _unusable(np.nan)
+    data[7:30, :N_IMAGE] = np.random.default_rng(4).normal(500, 10, (23, N_IMAGE))
+    fits.PrimaryHDU(data, header).writeto(tmp_path / "b0.fits")
+    monkeypatch.setattr(rawio, "_SUMMARY_ROWS", 6)  # 40 rows in 7 chunks
+    (raw,) = rawio.read_raw_files(tmp_path, ["b0.fits"])
+    whole = PixelSummary.of(data)
+    assert raw.pixels.n_rows == N_ROWS
+    for name in ("n_finite", "minimum", "maximum"):
+        np.testing.assert_array_equal(getattr(raw.pixels, name), getattr(whole, name))
+
+
+def test_a_block_whose_date_obs_goes_backwards_is_named():
+    """Block 2's clock jumped back 10 rows before block 1's start: without the
+    sequence check it would overlap block 0 and the message would blame block 1."""
+    early = START + (N_ROWS - 10) * LINE_TIME * u.s
+    headers = {seq: make_header(seq) for seq in range(5)}
+    headers[2] = make_header(2, **{"DATE-OBS": early.isot})
+    infos = [parse_block_header(h, f"b{seq}.fits") for seq, h in headers.items()]
+    night = index_night(infos)
+    assert list(night.table["file"]) == ["b0.fits", "b1.fits", "b3.fits", "b4.fits"]
+    assert len(night.rejected) == 1
+    assert night.rejected[0].startswith(
+        f"b2.fits: DATE-OBS {early.isot} (BLOCKSEQ 2) goes backwards: earlier than b1.fits"
+    )
+    assert not any("b1.fits" in line.split(":")[0] for line in night.problems)
+    # A block whose clock jumped ahead, past its successor, into block 4, is named too.
+    late = START + (4 * N_ROWS + 5) * LINE_TIME * u.s
+    infos[1] = parse_block_header(make_header(1, **{"DATE-OBS": late.isot}), "b1.fits")
+    night = index_night(infos[:2] + infos[3:])
+    assert (
+        night.rejected[0].startswith("b1.fits: DATE-OBS")
+        and "jumps ahead: later than b3.fits" in (night.rejected[0])
+    )
+
+
+def test_restarted_numbering_leaves_no_block_out():
+    # Sequence numbers that restart halfway do not follow the time, but no
+    # block collides with another in time: nothing is left out, the blocks are
+    # ordered by DATE-OBS, and the restart is reported where it happens.
+    infos = [
+        parse_block_header(make_header(seq, BLOCKSEQ=seq % 3), f"b{seq}.fits") for seq in range(6)
+    ]
+    night = index_night(infos)
+    assert list(night.table["file"]) == [f"b{seq}.fits" for seq in range(6)]
+    assert not night.rejected
+    assert night.problems == [
+        "b3.fits: BLOCKSEQ 2 -> 0 but the times of b2.fits and b3.fits join up (clock or "
+        "numbering error?)."
+    ]
+
+
+def test_site_keywords_are_optional_and_compared_with_the_config():
+    from pipeline.geometry.instrument import Site
+
+    site = Site(31.5, -110.2, 2400.0)  # what make_header writes
+    files = [RawFile(f"b{seq}.fits", 0, make_header(seq), None) for seq in range(3)]
+    assert ingest_files(files, IngestOptions(), site).ok
+    # Without site keywords: nothing to compare, nothing wrong.
+    bare = [
+        RawFile(
+            f"b{seq}.fits", 0, make_header(seq, SITELAT=None, SITELONG=None, SITEELEV=None), None
+        )
+        for seq in range(3)
+    ]
+    night = ingest_files(bare, IngestOptions(), site)
+    assert night.ok and len(night.table) == 3
+    # Within the tolerance (a header rounded to 0.01 deg, a height above sea
+    # level): no problem.  Longitudes compare modulo 360 deg.
+    rounded = [
+        RawFile("b0.fits", 0, make_header(0, SITELAT=31.504, SITELONG=249.8, SITEELEV=2300.0), None)
+    ]
+    assert ingest_files(rounded, IngestOptions(), site).ok
+    # Another station's longitude (the sign flipped) on two blocks: one line for both.
+    files[1] = RawFile("b1.fits", 0, make_header(1, SITELONG=110.2), None)
+    files[2] = RawFile("b2.fits", 0, make_header(2, SITELONG=110.2), None)
+    night = ingest_files(files, IngestOptions(), site)
+    assert night.problems == [
+        "b1.fits and 1 more: header site SITELONG=110.2 (config longitude -110.2 deg) differs "
+        "by more than 0.01 deg or 150 m; the geometry uses the config's site: check site: in "
+        "the config."
+    ]
+    assert len(night.table) == 3  # the blocks are still reduced
 
 
 def test_contiguous_night_is_one_segment():

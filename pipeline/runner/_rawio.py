@@ -1,8 +1,9 @@
 """Reading the night's raw files for the runner (stages never read files).
 
 Two services back the raw pseudo-inputs of :mod:`pipeline.stages.base`:
-the list of raw files with their headers (``RAW_FILES``) and the rows of one
-stretch assembled from the blocks a block index lists (``RAW_ROWS``).
+the list of raw files with their headers and a summary of their pixels
+(``RAW_FILES``) and the rows of one stretch assembled from the blocks a block
+index lists (``RAW_ROWS``).
 """
 
 from __future__ import annotations
@@ -17,7 +18,7 @@ from astropy.io import fits
 from astropy.table import Table
 
 from pipeline.runner._store import hash_json
-from pipeline.stages.base import BLOCK_INDEX, BLOCK_INDEX_COLUMNS, RawFile
+from pipeline.stages.base import BLOCK_INDEX, BLOCK_INDEX_COLUMNS, PixelSummary, RawFile
 
 __all__ = [
     "block_index_rows",
@@ -29,7 +30,11 @@ __all__ = [
     "raw_files_fingerprint",
     "read_raw_files",
     "read_rows",
+    "summarize_pixels",
 ]
+
+#: Rows read at a time when summarising a raw file's pixels (bounds the memory).
+_SUMMARY_ROWS = 1024
 
 
 def list_raw_files(raw_dir: Path, pattern: str) -> list[str]:
@@ -77,12 +82,30 @@ def _file_size(path: Path) -> int | None:
     return None if start.startswith(_COMPRESSED_MAGIC) else size
 
 
-def read_raw_files(raw_dir: Path, names: Sequence[str]) -> list[RawFile]:
+def summarize_pixels(hdu: fits.ImageHDU | fits.PrimaryHDU) -> PixelSummary:
+    """Per-column extremes of an image HDU's pixels, read in chunks of rows.
+
+    Reads every pixel once (``_SUMMARY_ROWS`` rows at a time, so memory stays
+    flat for any block size); BZERO/BSCALE applied.  Open the file with
+    ``memmap=False`` (astropy refuses sections of memory-mapped scaled data).
+    """
+    n_rows = int(hdu.header["NAXIS2"])
+    summary = PixelSummary.of(np.zeros((0, int(hdu.header["NAXIS1"])), np.float32))
+    for start in range(0, n_rows, _SUMMARY_ROWS):
+        rows = hdu.section[start : min(start + _SUMMARY_ROWS, n_rows), :]
+        summary = summary + PixelSummary.of(np.asarray(rows, dtype=np.float32))
+    return summary
+
+
+def read_raw_files(raw_dir: Path, names: Sequence[str], *, pixels: bool = True) -> list[RawFile]:
     """Read the header of the first 2-D image HDU of every raw file.
 
     A file that cannot be read is returned with ``error`` set, not raised, so
     the ingest stage can reject it with its reason and go on.  ``size`` is
     None for compressed files (see :class:`~pipeline.stages.base.RawFile`).
+    With ``pixels`` (the default) every pixel is read once too and summarised
+    (:func:`summarize_pixels`), so that ingest can reject blocks without any
+    usable pixel; pixels that cannot be read leave ``pixel_error`` set.
     """
     files = []
     for name in names:
@@ -91,18 +114,26 @@ def read_raw_files(raw_dir: Path, names: Sequence[str]) -> list[RawFile]:
         try:
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
-                with fits.open(path) as hdul:
+                # memmap=False: sections of scaled (BZERO) data need it.
+                with fits.open(path, memmap=False) as hdul:
                     index = first_image_hdu(hdul)
                     header = hdul[index].header.copy() if index is not None else None
                     if index is not None and isinstance(hdul[index], fits.CompImageHDU):
                         size = None
+                    summary, pixel_error = None, None
+                    if pixels and index is not None:
+                        try:
+                            summary = summarize_pixels(hdul[index])
+                        except Exception as exc:  # truncated data, bad compression, ...
+                            pixel_error = f"{type(exc).__name__}: {exc}"
             problems = "; ".join(str(w.message) for w in caught)
             error = None if index is not None else "no 2-D image HDU in the file"
             if problems and error is None:
                 header["COMMENT"] = f"astropy warned on reading: {problems}"[:2000]
-            files.append(RawFile(name, index, header, size, error))
+            files.append(RawFile(name, index, header, size, error, summary, pixel_error))
         except Exception as exc:  # any unreadable file is reported, not fatal
-            files.append(RawFile(name, None, None, size, f"{type(exc).__name__}: {exc}"))
+            reason = f"not a readable FITS file ({type(exc).__name__}: {exc})"
+            files.append(RawFile(name, None, None, size, reason))
     return files
 
 

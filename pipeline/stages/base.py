@@ -75,6 +75,7 @@ from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Literal
 
+import numpy as np
 from pydantic import BaseModel
 
 if TYPE_CHECKING:
@@ -88,12 +89,15 @@ __all__ = [
     "PROBLEMS",
     "RAW_FILES",
     "RAW_ROWS",
+    "SEGMENT",
+    "PixelSummary",
     "RawFile",
     "Stage",
     "StageContext",
     "Stretch",
     "check_graph",
     "plan_stretches",
+    "segment_rows",
 ]
 
 #: Pseudo-input (night scope): the night's raw files with their headers.
@@ -106,6 +110,8 @@ PROBLEMS = "problems"
 BLOCK_INDEX = "block_index"
 #: Columns the block index must have.
 BLOCK_INDEX_COLUMNS = ("file", "hdu", "row_start", "n_rows")
+#: Optional block index column: blocks with different values never share a stretch.
+SEGMENT = "segment"
 
 Scope = Literal["night", "stretch"]
 Products = dict[str, Any]
@@ -148,27 +154,41 @@ class Stretch:
         return self.hi - self.lo
 
 
-def plan_stretches(n_rows: int, stretch_rows: int, overlap_rows: int) -> tuple[Stretch, ...]:
-    """Cut ``n_rows`` night rows into stretches with overlap margins.
+def plan_stretches(
+    n_rows: int,
+    stretch_rows: int,
+    overlap_rows: int,
+    segments: Sequence[tuple[int, int]] | None = None,
+) -> tuple[Stretch, ...]:
+    """Cut the night's rows into stretches with overlap margins.
 
     Parameters
     ----------
     n_rows : int
         Number of rows in the night (scan axis).
     stretch_rows : int
-        Rows per stretch; the last stretch holds the remainder.
+        Rows per stretch; the last stretch of a segment holds the remainder.
     overlap_rows : int
-        Margin added on each side of a stretch, clipped to ``[0, n_rows)``.
+        Margin added on each side of a stretch, clipped to its segment.
+    segments : sequence of (int, int), optional
+        Night rows ``[start, stop)`` of the night's segments, in row order and
+        not overlapping (see :func:`segment_rows`).  A stretch never crosses a
+        segment boundary and its margins stop there, so that rows of another
+        camera format, or on the far side of a gap, never enter it; rows in no
+        segment (gaps) get no stretch.  Default: one segment, the whole night.
 
     Returns
     -------
     tuple of Stretch
-        In row order; empty when ``n_rows`` is 0.
+        In row order, numbered from 0 across segments; empty when ``n_rows``
+        is 0.
 
     Examples
     --------
     >>> [(s.start, s.stop, s.lo, s.hi) for s in plan_stretches(10, 4, 1)]
     [(0, 4, 0, 5), (4, 8, 3, 9), (8, 10, 7, 10)]
+    >>> [(s.start, s.stop, s.lo, s.hi) for s in plan_stretches(10, 4, 1, [(0, 5), (7, 10)])]
+    [(0, 4, 0, 5), (4, 5, 3, 5), (7, 10, 7, 10)]
     """
     if n_rows < 0:
         raise ValueError(f"n_rows must be >= 0; got {n_rows}.")
@@ -176,13 +196,122 @@ def plan_stretches(n_rows: int, stretch_rows: int, overlap_rows: int) -> tuple[S
         raise ValueError(f"stretch_rows must be >= 1; got {stretch_rows}.")
     if overlap_rows < 0:
         raise ValueError(f"overlap_rows must be >= 0; got {overlap_rows}.")
+    if segments is None:
+        segments = [(0, n_rows)] if n_rows else []
+    segments = [(int(first), int(last)) for first, last in segments]
+    previous_stop = 0
+    for first, last in segments:
+        if not previous_stop <= first < last <= n_rows:
+            raise ValueError(
+                f"segments must be ascending, non-empty, non-overlapping row ranges within "
+                f"[0, {n_rows}); got {segments}."
+            )
+        previous_stop = last
     stretches = []
-    for index, start in enumerate(range(0, n_rows, stretch_rows)):
-        stop = min(start + stretch_rows, n_rows)
-        lo = max(start - overlap_rows, 0)
-        hi = min(stop + overlap_rows, n_rows)
-        stretches.append(Stretch(index, start, stop, lo, hi))
+    for first, last in segments:
+        for start in range(first, last, stretch_rows):
+            stop = min(start + stretch_rows, last)
+            lo = max(start - overlap_rows, first)
+            hi = min(stop + overlap_rows, last)
+            stretches.append(Stretch(len(stretches), start, stop, lo, hi))
     return tuple(stretches)
+
+
+def segment_rows(index: Any) -> list[tuple[int, int]]:
+    """Night rows ``[start, stop)`` of the segments of a block index.
+
+    A segment is a maximal run of blocks that join up in rows (no gap) and
+    share the optional :data:`SEGMENT` column's value.  Where a block starts
+    before the end of the block before it (an overlap), its rows win, as when
+    the runner reads them, and a new segment starts with it if the labels differ.
+
+    Parameters
+    ----------
+    index : astropy.table.Table
+        A block index (columns ``row_start``, ``n_rows``, optionally ``segment``).
+
+    Returns
+    -------
+    list of (int, int)
+        In row order; empty for an empty index.
+
+    Examples
+    --------
+    >>> from astropy.table import Table
+    >>> segment_rows(Table({"row_start": [0, 4, 10], "n_rows": [4, 4, 2]}))
+    [(0, 8), (10, 12)]
+    >>> segment_rows(Table({"row_start": [0, 4, 8], "n_rows": [4, 4, 4], "segment": [0, 1, 0]}))
+    [(0, 4), (4, 8), (8, 12)]
+    """
+    starts = np.asarray(index["row_start"], dtype=np.int64)
+    stops = starts + np.asarray(index["n_rows"], dtype=np.int64)
+    labels = np.asarray(index[SEGMENT]) if SEGMENT in index.colnames else np.zeros(starts.size)
+    segments: list[list[int]] = []
+    label = None
+    for position in np.argsort(starts, kind="stable"):
+        start, stop = int(starts[position]), int(stops[position])
+        if segments and label == labels[position] and start <= segments[-1][1]:
+            segments[-1][1] = max(segments[-1][1], stop)
+            continue
+        if segments and start < segments[-1][1]:  # a new segment's rows win
+            segments[-1][1] = start
+            if segments[-1][1] <= segments[-1][0]:
+                segments.pop()
+        segments.append([start, stop])
+        label = labels[position]
+    return [(start, stop) for start, stop in segments]
+
+
+@dataclass(frozen=True)
+class PixelSummary:
+    """Extremes of every stored column of a raw image, for checks of the data.
+
+    The runner reads each raw file's pixels once (in chunks of rows) and
+    hands ingest this summary, so that a block whose image holds no usable
+    pixel (all NaN, one constant value, or all saturated) is rejected before
+    it can enter a night-wide solution.  Exact: a column summary covers every
+    row of the file.
+
+    Parameters
+    ----------
+    n_rows : int
+        Rows summarised (NAXIS2).
+    n_finite : ndarray of int64, shape (NAXIS1,)
+        Finite pixels in each stored column (overscan included).
+    minimum, maximum : ndarray of float64, shape (NAXIS1,)
+        Smallest and largest finite value of each column, physical ADU
+        (BZERO/BSCALE applied); NaN where a column has no finite pixel.
+    """
+
+    n_rows: int
+    n_finite: np.ndarray
+    minimum: np.ndarray
+    maximum: np.ndarray
+
+    @classmethod
+    def of(cls, rows: np.ndarray) -> PixelSummary:
+        """The summary of an array of rows, shape (n_rows, n_columns)."""
+        rows = np.asarray(rows)
+        if rows.ndim != 2:
+            raise ValueError(f"rows must be a 2-D array (rows, columns); got shape {rows.shape}.")
+        n_rows, n_columns = rows.shape
+        none = np.full(n_columns, np.nan)
+        # fmin/fmax skip NaN (NaN only where a whole column is NaN), without warnings.
+        return cls(
+            n_rows=n_rows,
+            n_finite=np.isfinite(rows).sum(axis=0, dtype=np.int64),
+            minimum=np.fmin.reduce(rows, axis=0).astype(np.float64) if n_rows else none,
+            maximum=np.fmax.reduce(rows, axis=0).astype(np.float64) if n_rows else none,
+        )
+
+    def __add__(self, other: PixelSummary) -> PixelSummary:
+        """The summary of both sets of rows (same columns)."""
+        return PixelSummary(
+            n_rows=self.n_rows + other.n_rows,
+            n_finite=self.n_finite + other.n_finite,
+            minimum=np.fmin(self.minimum, other.minimum),
+            maximum=np.fmax(self.maximum, other.maximum),
+        )
 
 
 @dataclass(frozen=True)
@@ -205,6 +334,11 @@ class RawFile:
         be skipped.
     error : str or None
         Why the file could not be read (None if it could).
+    pixels : PixelSummary or None
+        Summary of the image HDU's pixels; None if they could not be read
+        (``pixel_error`` says why) or were not read.
+    pixel_error : str or None
+        Why the pixels could not be read (e.g. a truncated compressed file).
     """
 
     name: str
@@ -212,6 +346,8 @@ class RawFile:
     header: Header | None
     size: int | None
     error: str | None = None
+    pixels: PixelSummary | None = None
+    pixel_error: str | None = None
 
 
 @dataclass(frozen=True)

@@ -37,7 +37,6 @@ hands the stage headers and rows); :func:`parse_block_header`,
 from __future__ import annotations
 
 import logging
-import warnings
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -49,14 +48,17 @@ from astropy.table import Table
 from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline.exceptions import IngestError
-from pipeline.runner._rawio import first_image_hdu
-from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, RawFile, Stage
+from pipeline.geometry.instrument import Site
+from pipeline.runner._rawio import read_raw_files
+from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, PixelSummary, RawFile, Stage
 from pipeline.stages.ingest._header import (
     KEYWORDS,
     BlockInfo,
     parse_block_header,
     parse_section,
 )
+from pipeline.stages.ingest._order import find_out_of_order
+from pipeline.stages.ingest._site import compare_site
 
 __all__ = [
     "KEYWORDS",
@@ -67,6 +69,8 @@ __all__ = [
     "NightIndex",
     "StartRamp",
     "check_block_data",
+    "check_block_pixels",
+    "check_raw_file",
     "describe_rows",
     "index_night",
     "ingest_files",
@@ -133,12 +137,12 @@ def read_block_header(
     keywords: dict[str, str] | None = None,
     defaults: dict[str, Any] | None = None,
 ) -> BlockInfo:
-    """Read and check the header of one raw block (no pixel is read).
+    """Read and check one raw block as a run does: its header and its pixels.
 
     Parameters
     ----------
     path : str or pathlib.Path
-        The FITS file.
+        The FITS file (plain or compressed, e.g. ``.fits.gz``).
     keywords, defaults : dict, optional
         See :func:`parse_block_header`.
 
@@ -150,58 +154,122 @@ def read_block_header(
     ------
     IngestError
         One line naming the file and the reason: not FITS, no 2-D image,
-        missing or ill-typed keyword, inconsistent sections, truncated.
+        missing or ill-typed keyword, inconsistent sections, truncated, no
+        usable pixel (:func:`check_block_pixels`).
     """
     path = Path(path)
-    try:
-        size = path.stat().st_size
-        with warnings.catch_warnings():
-            # A truncated file makes astropy warn; the size check below reports it.
-            warnings.simplefilter("ignore")
-            with fits.open(path, memmap=False, lazy_load_hdus=True) as hdul:
-                index = first_image_hdu(hdul)
-                if index is None:
-                    raise IngestError(f"{path.name}: no 2-D image HDU in the file.")
-                header = hdul[index].header.copy()
-                header_bytes = hdul.fileinfo(index)["datLoc"]
-    except IngestError:
-        raise
-    except Exception as exc:  # anything astropy raises means "not a usable FITS file"
-        raise IngestError(f"{path.name}: not a readable FITS file ({exc}).") from None
-    return parse_block_header(
-        header,
-        path.name,
-        hdu=index,
-        size=size,
-        header_bytes=header_bytes,
+    (raw,) = read_raw_files(path.parent, [path.name])
+    return check_raw_file(raw, keywords=keywords, defaults=defaults)
+
+
+def check_raw_file(
+    raw: RawFile,
+    *,
+    keywords: dict[str, str] | None = None,
+    defaults: dict[str, Any] | None = None,
+) -> BlockInfo:
+    """:func:`read_block_header` for a file the runner has read (a ``RawFile``).
+
+    Checks the header (:func:`parse_block_header`, with ``keywords`` and
+    ``defaults``), the size and the pixels; raises :class:`IngestError`, one
+    line naming the file and why it cannot be used.
+    """
+    if raw.error is not None or raw.header is None:
+        raise IngestError(f"{raw.name}: {raw.error or 'no header'}.")
+    info = parse_block_header(
+        raw.header,
+        raw.name,
+        hdu=raw.hdu or 0,
+        size=raw.size,
         keywords=keywords,
         defaults=defaults,
     )
+    if raw.pixel_error is not None:
+        raise IngestError(f"{raw.name}: cannot read its pixels ({raw.pixel_error}).")
+    if raw.pixels is not None:
+        check_block_pixels(raw.pixels, info)
+    return info
+
+
+#: What :func:`check_block_pixels` adds to its reasons: what happens to the block.
+_LEFT_OUT = "its rows are left out of the night (a gap)"
+
+
+def check_block_pixels(pixels: PixelSummary, info: BlockInfo) -> None:
+    """Reject a block whose image section holds no usable pixel.
+
+    Such a block (a dead or stuck readout, a NaN-filled file, a camera
+    saturated by light) would otherwise enter night-wide solutions, such as
+    the column solve, as if it held sky.  Only the image section (DATASEC)
+    counts: the overscan of a dead readout may still hold a bias.
+
+    Parameters
+    ----------
+    pixels : PixelSummary
+        Summary of every pixel of the block (the runner's ``RawFile.pixels``).
+    info : BlockInfo
+        The block's header (:func:`parse_block_header`).
+
+    Raises
+    ------
+    IngestError
+        If every image pixel is non-finite, every finite one has the same
+        value, or every finite one is at or above SATURATE.
+    """
+    _, columns = parse_section(info.image_section)
+    n_finite = pixels.n_finite[columns]
+    reason = _no_usable_pixel(
+        pixels.n_rows * n_finite.size,
+        n_finite,
+        pixels.minimum[columns],
+        pixels.maximum[columns],
+        info.saturation,
+    )
+    if reason is not None:
+        raise IngestError(f"{info.name}: {reason}; {_LEFT_OUT}.")
+
+
+def _no_usable_pixel(n_pixels, n_finite, minimum, maximum, saturation=None) -> str | None:
+    """Why no pixel of a summary is usable, or None if some pixel is."""
+    if not n_finite.any():
+        return f"all {n_pixels} image pixels are NaN or infinite"
+    some = n_finite > 0
+    low, high = float(np.min(minimum[some])), float(np.max(maximum[some]))
+    if low == high:
+        return f"all {int(n_finite.sum())} finite image pixels equal {low:g} ADU (a dead readout?)"
+    if saturation is not None and low >= saturation:
+        return (
+            f"all {int(n_finite.sum())} finite image pixels are saturated ({low:g} to {high:g} "
+            f"ADU, SATURATE={saturation:g})"
+        )
+    return None
 
 
 def check_block_data(data: np.ndarray, name: str = "<data>") -> None:
-    """Reject a block whose pixels are all non-finite or all equal.
+    """Reject pixels that are all non-finite or all equal.
 
     Parameters
     ----------
     data : ndarray, shape (n_rows, n_columns)
-        The block's pixels (or a sample of its rows).
+        The block's image pixels (or some of its rows).
     name : str
         File name, for the message.
 
     Raises
     ------
     IngestError
-        If no pixel is finite (a NaN-filled block) or every pixel has the same
-        value (a zero-filled block or a dead readout).
+        If no pixel is finite (a NaN-filled block) or every finite pixel has
+        the same value (a zero-filled block or a dead readout).
     """
-    data = np.asarray(data)
-    finite = np.isfinite(data)
-    if not finite.any():
-        raise IngestError(f"{name}: all {data.size} pixels read are NaN or infinite.")
-    values = data[finite]
-    if values.min() == values.max():
-        raise IngestError(f"{name}: all {values.size} finite pixels read equal {values.min()}.")
+    summary = PixelSummary.of(np.atleast_2d(np.asarray(data, dtype=np.float64)))
+    reason = _no_usable_pixel(
+        summary.n_rows * summary.n_finite.size,
+        summary.n_finite,
+        summary.minimum,
+        summary.maximum,
+    )
+    if reason is not None:
+        raise IngestError(f"{name}: {reason}.")
 
 
 def read_block_rows(
@@ -317,8 +385,10 @@ def index_night(
     NightIndex
         The index table, problems and rejected files.
     """
-    blocks = sorted(infos, key=lambda b: (b.date_obs.jd1, b.date_obs.jd2, b.block_seq, b.name))
+    in_order, out_of_order = find_out_of_order(list(infos), tolerance_rows)
+    rejected = [*rejected, *out_of_order]
     problems: list[str] = []
+    blocks = sorted(in_order, key=lambda b: (b.date_obs.jd1, b.date_obs.jd2, b.block_seq, b.name))
     kept: list[BlockInfo] = []
     rows: list[dict[str, Any]] = []
     reference = blocks[0].date_obs if blocks else None
@@ -556,14 +626,19 @@ class IngestOptions(BaseModel):
     )
 
 
-def ingest_files(files: Sequence[RawFile], options: IngestOptions) -> NightIndex:
+def ingest_files(
+    files: Sequence[RawFile], options: IngestOptions, site: Site | None = None
+) -> NightIndex:
     """Check the runner's raw files and index the good ones.
 
     Parameters
     ----------
     files : sequence of RawFile
-        The night's raw files with their headers.
+        The night's raw files with their headers and pixel summaries.
     options : IngestOptions
+    site : pipeline.geometry.Site, optional
+        The config's site; header site keywords that differ from it are
+        reported (:func:`~pipeline.stages.ingest._site.compare_site`).
 
     Returns
     -------
@@ -571,29 +646,22 @@ def ingest_files(files: Sequence[RawFile], options: IngestOptions) -> NightIndex
     """
     infos, rejected = [], []
     for raw in files:
-        if raw.error is not None or raw.header is None:
-            rejected.append(f"{raw.name}: {raw.error or 'no header'}")
-            continue
         try:
-            infos.append(
-                parse_block_header(
-                    raw.header,
-                    raw.name,
-                    hdu=raw.hdu or 0,
-                    size=raw.size,
-                    keywords=options.keywords,
-                    defaults=options.defaults,
-                )
-            )
+            infos.append(check_raw_file(raw, keywords=options.keywords, defaults=options.defaults))
         except IngestError as exc:
             rejected.append(str(exc))
-    return index_night(
+    night = index_night(
         infos, rejected, tolerance_rows=options.tolerance_rows, start_ramp=options.start_ramp
     )
+    if site is not None:
+        for line in compare_site(infos, site):
+            log.warning("%s", line)
+            night.problems.append(line)
+    return night
 
 
 def _run(*, inputs, options: IngestOptions, context) -> dict[str, Any]:
-    night = ingest_files(inputs[RAW_FILES], options)
+    night = ingest_files(inputs[RAW_FILES], options, context.site)
     return {
         BLOCK_INDEX: night.table,
         "ingest_report": {
@@ -616,8 +684,11 @@ STAGE = Stage(
     options=IngestOptions,
     requires=(RAW_FILES,),
     scope="night",
-    uses=(),
+    uses=("site.latitude", "site.longitude", "site.height"),  # compared with the headers
     defines_rows=True,
     description="Check raw block headers, order blocks in time, index rows and segments.",
-    version=3,  # 2: clock_row column (start_ramp); 3: segment, image/overscan_section
+    # 2: clock_row column (start_ramp); 3: segment, image/overscan_section;
+    # 4: blocks without usable pixels or out of order are rejected, header
+    # sites compared with the config
+    version=4,
 )

@@ -19,6 +19,7 @@ from pipeline.exceptions import IngestError
 
 __all__ = [
     "KEYWORDS",
+    "OPTIONAL",
     "BlockInfo",
     "expected_file_size",
     "parse_block_header",
@@ -41,6 +42,10 @@ KEYWORDS: dict[str, tuple[str, type, str]] = {
     "site_elev": ("SITEELEV", float, "site height, m"),
     "filter": ("FILTER", str, "passband name"),
 }
+
+#: Canonical names whose keyword may be missing (then None, unless defaulted):
+#: the site is the config's; a header site is only compared with it.
+OPTIONAL = ("site_lat", "site_long", "site_elev")
 
 _SECTION = re.compile(r"^\s*\[\s*(\d+)\s*:\s*(\d+)\s*,\s*(\d+)\s*:\s*(\d+)\s*\]\s*$")
 _TIME_SCALES = {"UTC": "utc", "TAI": "tai", "TT": "tt"}
@@ -106,8 +111,8 @@ class BlockInfo:
         Image and overscan sections, 1-based FITS notation.
     gain, read_noise, saturation : float
         e-/ADU, e-, ADU.
-    site_lat, site_long, site_elev : float
-        Degrees, degrees, metres.
+    site_lat, site_long, site_elev : float or None
+        Degrees, degrees, metres; None where the header has no such keyword.
     filter : str
         Passband name.
     defaulted : tuple of str
@@ -128,9 +133,9 @@ class BlockInfo:
     gain: float
     read_noise: float
     saturation: float
-    site_lat: float
-    site_long: float
-    site_elev: float
+    site_lat: float | None
+    site_long: float | None
+    site_elev: float | None
     filter: str
     defaulted: tuple[str, ...] = ()
 
@@ -195,6 +200,8 @@ def _lookup(header, canonical, keywords, defaults, name):
         return header[keyword], False
     if canonical in defaults:
         return defaults[canonical], True
+    if canonical in OPTIONAL:
+        return None, False
     raise IngestError(
         f"{name}: missing keyword {keyword} ({KEYWORDS[canonical][2]}); add it to the file "
         f"or give stages.ingest.defaults.{canonical} in the config."
@@ -202,6 +209,8 @@ def _lookup(header, canonical, keywords, defaults, name):
 
 
 def _convert(value, canonical, keywords, name):
+    if value is None:  # an optional keyword that is missing
+        return None
     kind = KEYWORDS[canonical][1]
     keyword = keywords.get(canonical, KEYWORDS[canonical][0])
     if kind is str:
@@ -302,7 +311,8 @@ def parse_block_header(
                 f"{name}: {keywords.get(canonical, KEYWORDS[canonical][0])}="
                 f"{values[canonical]} must be positive."
             )
-    if values["read_noise"] < 0 or not -90 <= values["site_lat"] <= 90:
+    latitude = values["site_lat"]
+    if values["read_noise"] < 0 or not (latitude is None or -90 <= latitude <= 90):
         raise IngestError(
             f"{name}: RDNOISE={values['read_noise']} or SITELAT={values['site_lat']} out of range."
         )
