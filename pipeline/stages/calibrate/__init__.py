@@ -406,7 +406,10 @@ def calibrate_stretch(
         Margin added around saturated and bleed pixels along and across the
         scan (mask BLEED).
     cosmic_rays : bool
-        Detect cosmic rays (mask COSMIC_RAY).
+        Detect cosmic rays (mask COSMIC_RAY).  Needs the 1-D flat
+        (``columns`` or ``flat``): without it the columns' differences in
+        response and dark stand out of the sky like hits, and whole columns
+        would be flagged (68 columns of a demo block).
     cosmic_significance, cosmic_neighbour_fraction, cosmic_contrast, cosmic_iterations
         ``significance``, ``neighbour_fraction``, ``contrast`` and ``n_iter`` of
         :func:`detect_cosmic_rays` (L.A.Cosmic, van Dokkum 2001).
@@ -414,6 +417,12 @@ def calibrate_stretch(
     Returns
     -------
     CalibratedStretch
+
+    Raises
+    ------
+    ValueError
+        For arguments of the wrong shape, or ``cosmic_rays`` without
+        ``columns`` or ``flat``.
     """
     image, overscan = _check_raw(np.asarray(image, dtype=np.float32), overscan)
     n_rows, n_columns = image.shape
@@ -423,6 +432,12 @@ def calibrate_stretch(
     segment = _segments(segment, n_rows)
     smoothing = {"window": bias_window, "polyorder": bias_polyorder, "max_window": bias_max_window}
     bias = _row_bias(overscan, gain, read_noise, segment, smoothing, overscan_clip)
+    if cosmic_rays and columns is None and flat is None:
+        raise ValueError(
+            "cosmic_rays=True needs the 1-D flat (columns= or flat=): without it the columns' "
+            "response and dark differences look like hits and whole columns would be flagged; "
+            "pass the columns table, or cosmic_rays=False."
+        )
     flat, dark, column_flags = _column_model(columns, flat, dark, n_columns)
     column_bias = _column_vector(column_bias, n_columns, "column_bias")
     image_e, variance, saturated, nonfinite = _calibrate_pixels(
@@ -608,6 +623,15 @@ class CalibrateOptions(_BiasOptions):
         5.0, gt=0, description="least contrast of a hit over the fine-structure image"
     )
     cosmic_iterations: int = Field(2, ge=1)
+
+    @model_validator(mode="after")
+    def _cosmic_rays_need_the_flat(self):
+        if self.cosmic_rays and not self.flat_field:
+            raise ValueError(
+                "flat_field: false needs cosmic_rays: false: without the 1-D flat the "
+                "columns' differences look like cosmic rays and whole columns would be flagged."
+            )
+        return self
 
 
 def options_kwargs(options: BaseModel, exclude: tuple[str, ...] = ()) -> dict[str, Any]:
