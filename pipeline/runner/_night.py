@@ -33,6 +33,7 @@ from pipeline.stages.base import (
     StageContext,
     Stretch,
     plan_stretches,
+    segment_rows,
 )
 
 __all__ = ["NIGHT", "NightStore", "format_ids", "missing_problems", "night_dir", "unit_id"]
@@ -113,7 +114,8 @@ class NightStore:
             self.index = read_product(folder / entry["file"], entry)
             run = self.config.run
             rows = block_index_rows(self.index)
-            self.stretches = plan_stretches(rows, run.stretch_rows, run.overlap_rows)
+            segments = segment_rows(self.index)
+            self.stretches = plan_stretches(rows, run.stretch_rows, run.overlap_rows, segments)
         self.context = dataclasses.replace(self.context, stretches=self.stretches)
 
     def unit_dir(self, stage: Stage, unit: str) -> Path:

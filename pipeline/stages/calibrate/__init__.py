@@ -44,7 +44,7 @@ import numpy as np
 from astropy.table import Table
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
-from pipeline.exceptions import CalibrationWarning
+from pipeline.exceptions import CalibrationWarning, StageError
 from pipeline.masks import MASK_DTYPE, MaskBit, describe_mask
 from pipeline.stages.base import RAW_ROWS, Stage
 from pipeline.stages.calibrate._bias import overscan_levels, smooth_levels
@@ -65,6 +65,7 @@ __all__ = [
     "adopt_columns",
     "calibrate_stretch",
     "column_statistics",
+    "columns_product_name",
     "detect_cosmic_rays",
     "options_kwargs",
     "solve_columns",
@@ -645,7 +646,9 @@ def options_kwargs(options: BaseModel, exclude: tuple[str, ...] = ()) -> dict[st
 
 def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
     rows = stretch_rows_for_stage(inputs, context)
-    columns = inputs["columns"]["columns"] if options.flat_field else None
+    columns = _columns_table(inputs["columns"], rows.image.shape[1], context)
+    if not options.flat_field:
+        columns = None
     result = calibrate_stretch(
         rows.image,
         rows.overscan,
@@ -670,6 +673,26 @@ def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
         "rows": row_table,
         "mask_counts": result.mask_counts,
     }
+
+
+def columns_product_name(n_columns: int, camera_columns: int) -> str:
+    """Name of the ``columns`` stage's table for images ``n_columns`` wide.
+
+    ``'columns'`` for the camera's own format (``camera_columns``),
+    ``'columns_<n_columns>'`` for any other (see :mod:`pipeline.stages.columns`).
+    """
+    return "columns" if n_columns == camera_columns else f"columns_{n_columns}"
+
+
+def _columns_table(products, n_columns: int, context) -> Table:
+    """The columns stage's table for images ``n_columns`` wide."""
+    name = columns_product_name(n_columns, context.camera.n_columns)
+    if name not in products:
+        raise StageError(
+            f"Stretch {context.stretch.id} has {n_columns} image columns but the columns stage "
+            f"solved no table for that format (it has {sorted(products)}); see its problems."
+        )
+    return products[name]
 
 
 def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:

@@ -389,6 +389,7 @@ def index_night(
     rejected = [*rejected, *out_of_order]
     problems: list[str] = []
     blocks = sorted(in_order, key=lambda b: (b.date_obs.jd1, b.date_obs.jd2, b.block_seq, b.name))
+    main_format = _main_format(blocks)
     kept: list[BlockInfo] = []
     rows: list[dict[str, Any]] = []
     reference = blocks[0].date_obs if blocks else None
@@ -410,7 +411,7 @@ def index_night(
                 f"{block.block_seq}); left out."
             )
             continue
-        new_segment = _continuity(block, prev, offset, tolerance_rows, problems)
+        new_segment = _continuity(block, prev, offset, tolerance_rows, problems, main_format)
         segment += new_segment
         row_start = prev_row["row_start"] + prev.n_rows + round(offset)
         segment_row = 0 if new_segment else prev_row["segment_row"] + prev.n_rows
@@ -440,17 +441,40 @@ def index_night(
     return NightIndex(table, problems, list(rejected))
 
 
-def _continuity(block, prev, offset, tolerance_rows, problems) -> bool:
-    """Append problems between ``prev`` and ``block``; True if a new segment starts."""
-    new_segment = False
+def _format(block: BlockInfo) -> tuple[int, str, str]:
+    """The camera format of a block: what its columns are (NAXIS1, DATASEC, BIASSEC)."""
+    return (block.n_columns, block.image_section, block.overscan_section)
+
+
+def _describe_format(block_format: tuple[int, str, str]) -> str:
+    return "NAXIS1 {}, DATASEC {}, BIASSEC {}".format(*block_format)
+
+
+def _main_format(blocks: Sequence[BlockInfo]) -> tuple[int, str, str] | None:
+    """The format most blocks have (the earliest of equally common ones)."""
+    formats = [_format(b) for b in blocks]
+    return max(formats, key=formats.count) if formats else None
+
+
+def _continuity(block, prev, offset, tolerance_rows, problems, main_format) -> bool:
+    """Append problems between ``prev`` and ``block``; True if a new segment starts.
+
+    A change of camera format names the block whose format differs from the
+    night's main format (``main_format``), not the block that returns to it.
+    """
+    new_segment = _format(block) != _format(prev)
+    if new_segment and _format(block) != main_format:
+        n_columns = parse_section(block.image_section)[1]
+        problems.append(
+            f"{block.name}: format {_describe_format(_format(block))} differs from the "
+            f"night's ({_describe_format(main_format)}); new segment, its "
+            f"{n_columns.stop - n_columns.start} image columns solved on their own."
+        )
     changes = []
     if not np.isclose(block.line_time, prev.line_time, rtol=1e-9, atol=0):
         changes.append(f"LINETIME {prev.line_time} -> {block.line_time} s")
     for label, old, new in (
         ("TDIROWS", prev.tdi_rows, block.tdi_rows),
-        ("NAXIS1", prev.n_columns, block.n_columns),
-        ("DATASEC", prev.image_section, block.image_section),
-        ("BIASSEC", prev.overscan_section, block.overscan_section),
         ("FILTER", prev.filter, block.filter),
     ):
         if old != new:

@@ -1,0 +1,266 @@
+"""One bad block in an otherwise good night, through the command line.
+
+Each test plants one bad block in a small simulated night (or a copy of the
+demo night) and checks three things against a clean run of the same night
+without that block's file: the bad block is named in one line, the run
+exits 1 (a partial failure, the documented code for problems with the
+input), and every good block's products are identical.  Self-consistency
+tests: the nights are invented (:mod:`pipeline.simulate`).
+"""
+
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+import astropy.units as u
+import numpy as np
+import pytest
+import yaml
+from astropy.io import fits
+from astropy.table import Table
+from astropy.time import Time
+from test_night_run import _demo_copy, _night, _product
+
+from pipeline.cli import main
+from pipeline.stages.base import plan_stretches, segment_rows
+
+BAD = "block_0002.fits"
+
+
+def _problems(out: str) -> list[str]:
+    return [line.strip() for line in out.splitlines() if line.startswith("  problem: ")]
+
+
+def _run(config: Path, capsys, *args: str) -> tuple[int, str]:
+    capsys.readouterr()
+    code = main(["run", str(config), *args])
+    return code, capsys.readouterr().out
+
+
+@pytest.fixture(scope="module")
+def clean_night(tmp_path_factory):
+    """The small simulated night without block 2, reduced to calibrate once."""
+    root = tmp_path_factory.mktemp("clean")
+    config = _night(root)
+    (root / "raw" / BAD).unlink()
+    assert main(["run", str(config), "--to", "calibrate"]) == 1  # the gap is a problem
+    return root
+
+
+def _copy_night(clean: Path, tmp_path: Path) -> Path:
+    """The clean night's config and raw files (block 2 back in) under ``tmp_path``."""
+    shutil.copytree(clean / "raw", tmp_path / "raw")
+    shutil.copy(clean / "night.yaml", tmp_path / "night.yaml")
+    # The simulation is deterministic: the same config gives the same block 2.
+    scratch = tmp_path / "scratch"
+    _night(scratch)
+    shutil.copy(scratch / "raw" / BAD, tmp_path / "raw" / BAD)
+    shutil.rmtree(scratch)
+    return tmp_path / "night.yaml"
+
+
+def _rewrite(path: Path, change) -> None:
+    """Rewrite a raw block: ``change(data, header) -> (data, header)``."""
+    with fits.open(path) as hdul:
+        data, header = change(hdul[0].data.astype(np.float32), hdul[0].header.copy())
+    fits.PrimaryHDU(data, header).writeto(path, overwrite=True)
+
+
+def _as_float(data, header):
+    for key in ("BZERO", "BSCALE"):
+        header.remove(key, ignore_missing=True)
+    header["BITPIX"] = -32
+    return data, header
+
+
+def _zero(data, header):
+    data[:] = 0.0
+    return data, header
+
+
+def _nan(data, header):
+    data[:] = np.nan
+    return _as_float(data, header)
+
+
+def _saturated(data, header):
+    # Daylight on the detector: every image pixel clipped at or above
+    # SATURATE, the overscan a live bias.
+    image = slice(0, int(header["NAXIS1"]) - 8)  # 8 overscan columns (simulate options)
+    data[:, image] = header["SATURATE"] + np.arange(data.shape[1])[image] % 7
+    return _as_float(data, header)
+
+
+BAD_DATA = [
+    (_zero, "all 12288 finite image pixels equal 0 ADU (a dead readout?)"),
+    (_nan, "all 12288 image pixels are NaN or infinite"),
+    (_saturated, "all 12288 finite image pixels are saturated"),
+]
+
+
+def _assert_same_products(bad: Path, clean: Path, pairs) -> None:
+    """Columns and the calibrate products of matching stretches are identical."""
+    for name in ("flat", "dark", "flags", "n_blocks"):
+        np.testing.assert_array_equal(
+            _product(bad / "columns/night", "columns")[name],
+            _product(clean / "columns/night", "columns")[name],
+        )
+    for ours, theirs in pairs:
+        for name in ("image", "variance", "mask"):
+            np.testing.assert_array_equal(
+                _product(bad / "calibrate" / ours, name),
+                _product(clean / "calibrate" / theirs, name),
+            )
+
+
+@pytest.mark.parametrize(("change", "reason"), BAD_DATA)
+def test_a_block_without_usable_pixels_is_named_and_left_out(
+    clean_night, tmp_path, capsys, change, reason
+):
+    """An all-zero (all-NaN, all-saturated) block used to pass silently and
+    enter the column solve; now it is rejected in one line, exit 1, and the
+    night is reduced exactly as without its file."""
+    config = _copy_night(clean_night, tmp_path)
+    _rewrite(tmp_path / "raw" / BAD, change)
+    code, out = _run(config, capsys, "--to", "calibrate")
+    assert code == 1
+    _, clean_out = _run(clean_night / "night.yaml", capsys, "--to", "calibrate")
+    extra = [line for line in _problems(out) if line not in _problems(clean_out)]
+    assert len(extra) == 1, out
+    assert extra[0].startswith(f"problem: ingest/night: rejected {BAD}: {reason}"), extra
+    assert ", 0 failed, 0 blocked" in out
+    _assert_same_products(
+        tmp_path / "out/n", clean_night / "out/n", [("s0000", "s0000"), ("s0001", "s0001")]
+    )
+
+
+def test_a_block_whose_clock_went_backwards_is_named_and_left_out(clean_night, tmp_path, capsys):
+    """Block 2's DATE-OBS set back to 50 rows before block 1's: it used to be
+    reduced there, between blocks 0 and 1, and the overlap message blamed
+    block 1 ("starts ... before the end of block_0002")."""
+    config = _copy_night(clean_night, tmp_path)
+    with fits.open(tmp_path / "raw" / "block_0001.fits") as hdul:
+        block_1 = Time(hdul[0].header["DATE-OBS"], scale="utc")
+        line_time = hdul[0].header["LINETIME"]
+
+    def backwards(data, header):
+        header["DATE-OBS"] = (block_1 - 50 * line_time * u.s).isot
+        return data, header
+
+    _rewrite(tmp_path / "raw" / BAD, backwards)
+    code, out = _run(config, capsys, "--to", "calibrate")
+    assert code == 1
+    _, clean_out = _run(clean_night / "night.yaml", capsys, "--to", "calibrate")
+    extra = [line for line in _problems(out) if line not in _problems(clean_out)]
+    assert len(extra) == 1, out
+    assert extra[0].startswith(f"problem: ingest/night: rejected {BAD}: DATE-OBS"), extra
+    assert "goes backwards: earlier than block_0001.fits (BLOCKSEQ 1)" in extra[0]
+    _assert_same_products(
+        tmp_path / "out/n", clean_night / "out/n", [("s0000", "s0000"), ("s0001", "s0001")]
+    )
+
+
+def _narrow(data, header):
+    """Block 2 read out with a window of 40 image columns instead of 48."""
+    narrow = np.concatenate([data[:, :40], data[:, 48:]], axis=1)
+    rows = header["NAXIS2"]
+    header["DATASEC"] = f"[1:40,1:{rows}]"
+    header["BIASSEC"] = f"[41:48,1:{rows}]"
+    return narrow, header
+
+
+@pytest.mark.parametrize("overlap_rows", [64, 0])
+def test_a_block_of_another_format_spares_its_neighbours(
+    clean_night, tmp_path, capsys, overlap_rows
+):
+    """Block 2 with 40 image columns: blocks 1 and 3 used to lose every
+    product (the stretches mixed formats), or with overlap_rows 0 the whole
+    night was blocked at columns.  Now block 2 is a segment of its own, its
+    columns are solved on their own, and the others are reduced as without it."""
+    config = _copy_night(clean_night, tmp_path)
+    clean = clean_night
+    if overlap_rows != 64:  # a clean run with the same overlap
+        clean = tmp_path / "clean"
+        shutil.copytree(clean_night / "raw", clean / "raw")
+        shutil.copy(clean_night / "night.yaml", clean / "night.yaml")
+    for folder in {tmp_path, clean}:
+        text = yaml.safe_load((folder / "night.yaml").read_text())
+        text["run"]["overlap_rows"] = overlap_rows
+        (folder / "night.yaml").write_text(yaml.safe_dump(text))
+    if clean != clean_night:
+        assert main(["run", str(clean / "night.yaml"), "--to", "calibrate"]) == 1
+    _rewrite(tmp_path / "raw" / BAD, _narrow)
+    code, out = _run(config, capsys, "--to", "calibrate")
+    assert code == 1 and ", 0 failed, 0 blocked" in out, out
+    problems = _problems(out)
+    assert problems == [
+        f"problem: ingest/night: {BAD}: format NAXIS1 48, DATASEC [1:40,1:256], BIASSEC "
+        "[41:48,1:256] differs from the night's (NAXIS1 56, DATASEC [1:48,1:256], BIASSEC "
+        "[49:56,1:256]); new segment, its 40 image columns solved on their own."
+    ], out
+    # Night rows 0-511 (blocks 0, 1), 512-767 (block 2), 768-1023 (block 3).
+    products = tmp_path / "out/n"
+    assert _product(products / "columns/night", "columns_40").meta["stretches"] == ["s0001"]
+    assert _product(products / "calibrate/s0001", "image").shape == (256, 40)
+    _assert_same_products(products, clean / "out/n", [("s0000", "s0000"), ("s0002", "s0001")])
+
+
+def test_stretches_are_cut_at_segment_boundaries():
+    index = Table(
+        {"row_start": [0, 100, 200, 400], "n_rows": [100, 100, 100, 100], "segment": [0, 1, 1, 2]}
+    )
+    segments = segment_rows(index)
+    assert segments == [(0, 100), (100, 300), (400, 500)]  # rows 300-399: a gap
+    stretches = plan_stretches(500, 150, 20, segments)
+    assert [(s.start, s.stop, s.lo, s.hi) for s in stretches] == [
+        (0, 100, 0, 100),
+        (100, 250, 100, 270),
+        (250, 300, 230, 300),
+        (400, 500, 400, 500),
+    ]
+    assert [s.index for s in stretches] == [0, 1, 2, 3]
+    # Without labels, a gap or an overlap still ends a segment; a later block's rows win.
+    overlap = Table({"row_start": [0, 90, 300], "n_rows": [100, 100, 50], "segment": [0, 1, 2]})
+    assert segment_rows(overlap) == [(0, 90), (90, 190), (300, 350)]
+    assert segment_rows(Table({"row_start": [0, 100], "n_rows": [100, 100]})) == [(0, 200)]
+    with pytest.raises(ValueError, match="segments must be ascending"):
+        plan_stretches(100, 10, 0, [(50, 60), (0, 10)])
+
+
+def test_a_header_site_that_differs_from_the_config_is_reported(tmp_path, capsys):
+    config = _night(tmp_path)  # SITELAT 20.0 in the headers
+    text = yaml.safe_load(config.read_text())
+    text["site"]["latitude"] = 20.5
+    config.write_text(yaml.safe_dump(text))
+    code, out = _run(config, capsys, "--stage", "ingest")
+    assert code == 1
+    assert _problems(out) == [
+        "problem: ingest/night: block_0000.fits and 3 more: header site SITELAT=20 (config "
+        "latitude 20.5 deg) differs by more than 0.01 deg or 150 m; the geometry uses the "
+        "config's site: check site: in the config."
+    ]
+
+
+@pytest.mark.slow
+def test_an_all_zero_demo_block_leaves_the_flat_and_dark_as_without_it(tmp_path, capsys):
+    """The reproduction on the demo night: a zero-filled block_0002 drove every
+    column's dark to ~0 (sky_min -0.0004 e-) and lost six column flags, with
+    exit 0 and no message."""
+    config = _demo_copy(tmp_path / "bad")
+    clean = _demo_copy(tmp_path / "clean")
+    (tmp_path / "clean/demo_frames/block_0002.fits.gz").unlink()
+    _rewrite(tmp_path / "bad/demo_frames/block_0002.fits.gz", _zero)
+    code, out = _run(config, capsys, "--to", "columns")
+    assert code == 1
+    _, clean_out = _run(clean, capsys, "--to", "columns")
+    extra = [line for line in _problems(out) if line not in _problems(clean_out)]
+    assert extra == [
+        "problem: ingest/night: rejected block_0002.fits.gz: all 1048576 finite image pixels "
+        "equal 0 ADU (a dead readout?); its rows are left out of the night (a gap)."
+    ]
+    ours = _product(tmp_path / "bad/demo_products/demo-2026-10-15/columns/night", "columns")
+    theirs = _product(tmp_path / "clean/demo_products/demo-2026-10-15/columns/night", "columns")
+    for name in ("flat", "dark", "flags"):
+        np.testing.assert_array_equal(ours[name], theirs[name])
+    assert ours.meta["sky_min"] == theirs.meta["sky_min"] > 40000  # e-, demo_frames/README.md
