@@ -241,6 +241,19 @@ def test_pixel_summary_in_chunks_equals_the_whole(tmp_path, monkeypatch):
     assert raw.pixels.n_rows == N_ROWS
     for name in ("n_finite", "minimum", "maximum"):
         np.testing.assert_array_equal(getattr(raw.pixels, name), getattr(whole, name))
+    # Integer pixels: the extremes are scaled, not the pixels; BLANK is no data
+    # (FITS standard 4.0, keyword BLANK).  A negative BSCALE swaps the extremes.
+    stored = np.random.default_rng(5).integers(-1000, 1000, (N_ROWS, 9)).astype(np.int16)
+    stored[:, 2] = stored[4, 5] = -32768
+    hdu = fits.PrimaryHDU(stored)
+    hdu.header.update(BLANK=-32768, BSCALE=-2.0, BZERO=10.0)
+    hdu.writeto(tmp_path / "b1.fits")
+    (raw,) = rawio.read_raw_files(tmp_path, ["b1.fits"])
+    with fits.open(tmp_path / "b1.fits") as hdul:  # astropy scales and blanks every pixel
+        whole = PixelSummary.of(hdul[0].data.astype(np.float64))
+    assert list(raw.pixels.n_finite[:3]) == [N_ROWS, N_ROWS, 0]
+    for name in ("n_finite", "minimum", "maximum"):
+        np.testing.assert_array_equal(getattr(raw.pixels, name), getattr(whole, name))
 
 
 def test_a_block_whose_date_obs_goes_backwards_is_named():
@@ -451,10 +464,10 @@ stages:
     ]  # fmt: skip
     index = Table.read(products / "ingest" / "night" / "block_index.ecsv")
     assert list(index["row_start"]) == [0, 1024, 2048, 3072, 3584]
-    # Night rows 512-1023 of the rejected (truncated) block 1 are GAP in calibrate.
-    with fits.open(products / "calibrate" / "s0000" / "mask.fits") as hdul:
-        mask = hdul[0].data if hdul[0].data is not None else hdul[1].data
-    from pipeline.masks import MaskBit, has_bits
+    # Night rows 512-1023 of the rejected (truncated) block 1 are in no
+    # stretch: stretches stop at the end of a segment, margins included.
+    from pipeline.config import load_config
+    from pipeline.runner._night import NightStore
 
-    assert has_bits(mask[512:1024], MaskBit.GAP).all()
-    assert not has_bits(mask[:512], MaskBit.GAP).any()
+    plan = [(s.lo, s.hi) for s in NightStore(load_config(night)).stretches]
+    assert plan == [(0, 512), (1024, 1536), (2048, 2560), (3072, 4096)]

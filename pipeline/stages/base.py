@@ -23,7 +23,9 @@ The calling convention is::
       a stage declared with ``partial_inputs=True`` gets only the stretches
       whose upstream products are usable (see :class:`Stage`);
     * :data:`RAW_FILES` (night scope) -> a list of :class:`RawFile`, one per
-      raw file of the night, with its header (or the reason it is unreadable);
+      raw file of the night, with its header (or the reason it is unreadable)
+      and a :class:`PixelSummary` of its pixels (the runner reads every pixel
+      once, so that blocks without usable data can be rejected);
     * :data:`RAW_ROWS` (stretch scope) -> a ``float32`` array of shape
       ``(context.stretch.hi - context.stretch.lo, n_columns_in_file)`` holding
       night rows ``[lo, hi)`` (the stretch with its overlap margins) from the
@@ -61,11 +63,16 @@ returns a product named :data:`BLOCK_INDEX`: an astropy ``Table`` with one row
 per usable raw block and at least the columns ``file`` (name relative to the
 night's ``raw_dir``, as in :attr:`RawFile.name`), ``hdu`` (index of the image
 HDU), ``row_start`` (night row index of the block's first row) and ``n_rows``.
-The night has ``max(row_start + n_rows)`` rows; the runner cuts them into
-stretches of ``run.stretch_rows`` rows (:func:`plan_stretches`), each widened
-by ``run.overlap_rows`` on both sides, and assembles :data:`RAW_ROWS` from the
-index.  Per-stretch products cover ``[lo, hi)``, margins included, unless the
-stage says otherwise in its docstring; ``context.stretch.core`` selects the
+The night has ``max(row_start + n_rows)`` rows.  They fall into segments
+(:func:`segment_rows`): runs of blocks that join up without a gap and share
+the optional :data:`SEGMENT` column's value (ingest starts a new segment at
+every gap, overlap and change of camera format).  The runner cuts each
+segment into stretches of ``run.stretch_rows`` rows (:func:`plan_stretches`),
+each widened by ``run.overlap_rows`` on both sides but never beyond its
+segment, so a stretch never mixes formats or reaches across a gap (rows in
+gaps belong to no stretch), and assembles :data:`RAW_ROWS` from the index.
+Per-stretch products cover ``[lo, hi)``, margins included, unless the stage
+says otherwise in its docstring; ``context.stretch.core`` selects the
 stretch's own rows.
 """
 
