@@ -10,6 +10,7 @@ tests: the nights are invented (:mod:`pipeline.simulate`).
 
 from __future__ import annotations
 
+import json
 import shutil
 from pathlib import Path
 
@@ -204,6 +205,13 @@ def test_a_block_of_another_format_spares_its_neighbours(
     assert _product(products / "columns/night", "columns_40").meta["stretches"] == ["s0001"]
     assert _product(products / "calibrate/s0001", "image").shape == (256, 40)
     _assert_same_products(products, clean / "out/n", [("s0000", "s0000"), ("s0002", "s0001")])
+    # Rectify flags what lies beyond a segment's edge OUTSIDE, as at the
+    # night's ends, without asking for more overlap_rows (a regression: it did).
+    code, out = _run(config, capsys, "--stage", "rectify", "--stretches", "0,2")
+    assert code == 0, out
+    for unit in ("s0000", "s0002"):
+        sidecar = json.loads((products / "rectify" / unit / "_provenance.json").read_text())
+        assert sidecar["warnings"] == [], sidecar["warnings"]
 
 
 def test_stretches_are_cut_at_segment_boundaries():

@@ -136,7 +136,11 @@ class Stretch:
         The stretch's own night rows ``[start, stop)`` (the scan axis).
     lo, hi : int
         The rows handed to the stage, ``[lo, hi)``: ``[start, stop)`` widened
-        by the overlap margin on each side and clipped to the night.
+        by the overlap margin on each side and clipped to its segment.
+    segment : (int, int) or None
+        Night rows ``[start, stop)`` of the segment the stretch lies in: no
+        data lie beyond them for this stretch (a gap, another camera format,
+        or the night's ends).  None: the whole night.
     """
 
     index: int
@@ -144,6 +148,7 @@ class Stretch:
     stop: int
     lo: int
     hi: int
+    segment: tuple[int, int] | None = None
 
     @property
     def id(self) -> str:
@@ -220,7 +225,7 @@ def plan_stretches(
             stop = min(start + stretch_rows, last)
             lo = max(start - overlap_rows, first)
             hi = min(stop + overlap_rows, last)
-            stretches.append(Stretch(len(stretches), start, stop, lo, hi))
+            stretches.append(Stretch(len(stretches), start, stop, lo, hi, (first, last)))
     return tuple(stretches)
 
 

@@ -646,9 +646,9 @@ def options_kwargs(options: BaseModel, exclude: tuple[str, ...] = ()) -> dict[st
 
 def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
     rows = stretch_rows_for_stage(inputs, context)
-    columns = _columns_table(inputs["columns"], rows.image.shape[1], context)
-    if not options.flat_field:
-        columns = None
+    columns = None
+    if options.flat_field:
+        columns = _columns_table(inputs["columns"], rows.image.shape[1], context)
     result = calibrate_stretch(
         rows.image,
         rows.overscan,

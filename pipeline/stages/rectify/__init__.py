@@ -380,6 +380,7 @@ def rectify(
     row_lo: int = 0,
     core: tuple[int, int] | None = None,
     night_rows: int | None = None,
+    data_rows: tuple[int, int] | None = None,
     pixel_scale: float | None = None,
     map_step_x: int = 256,
     map_step_y: int = 16,
@@ -411,6 +412,11 @@ def rectify(
     night_rows : int or None, optional
         Rows in the night (defines the frame's epoch and reference meridian);
         default ``row_lo + n_rows``.  Give the same value for every stretch.
+    data_rows : (int, int) or None, optional
+        Night rows ``[lo, hi)`` beyond which there are no data (the stretch's
+        segment: a gap or another camera format lies beyond); default the
+        whole night.  Pixels that would need rows beyond are flagged OUTSIDE
+        without the warning that asks for more ``overlap_rows``.
     pixel_scale : float or None, optional
         Rectified pixel size across the scan, arcsec; None: the camera's
         on-sky scale.
@@ -471,7 +477,8 @@ def rectify(
     breaks_x = np.array([a for a, _, _ in blocks_x] + [x_hi]) - x_lo
     need_lo = int(np.floor(x_lo + shifts.min())) - 3
     need_hi = int(np.ceil(x_hi - 1 + shifts.max())) + 4
-    if (need_lo < row_lo and row_lo > 0) or (need_hi > row_hi and row_hi < night_rows):
+    data_lo, data_hi = (0, night_rows) if data_rows is None else data_rows
+    if (need_lo < row_lo and row_lo > data_lo) or (need_hi > row_hi and row_hi < data_hi):
         overlap = max(core[0] - need_lo, need_hi - core[1])
         reason = (
             f" (the deconvolution needs {margin} columns beyond the stretch's own)"
@@ -568,6 +575,7 @@ def _run(*, inputs, options: RectifyOptions, context) -> dict[str, Any]:
         row_lo=stretch.lo,
         core=(stretch.start, stretch.stop),
         night_rows=night_rows,
+        data_rows=stretch.segment,  # no data beyond: a gap or another camera format
         **options.model_dump(),
     )
     header = result.header()
