@@ -272,3 +272,44 @@ def test_an_all_zero_demo_block_leaves_the_flat_and_dark_as_without_it(tmp_path,
     for name in ("flat", "dark", "flags"):
         np.testing.assert_array_equal(ours[name], theirs[name])
     assert ours.meta["sky_min"] == theirs.meta["sky_min"] > 40000  # e-, demo_frames/README.md
+
+
+def test_a_format_that_cannot_be_solved_costs_only_its_stretches():
+    """The odd format's solve fails (no usable row): one problem line; the
+    camera's table is still solved, and calibrate of an odd stretch fails
+    naming the missing table."""
+    from types import SimpleNamespace
+
+    from pipeline.exceptions import StageError
+    from pipeline.stages.base import Stretch
+    from pipeline.stages.calibrate import ColumnSolveOptions, _columns_table, summarize_columns
+    from pipeline.stages.columns import STAGE
+
+    rng = np.random.default_rng(8)
+    sky = np.linspace(1000.0, 5000.0, 512)[:, None]  # a fading twilight: a regression solve
+    good = summarize_columns(
+        sky * rng.uniform(0.95, 1.05, 48) + rng.normal(0, 5, (512, 48)),
+        np.arange(512),
+        np.arange(512) * 0.05,
+        5.0,
+        block_rows=32,
+    )
+    empty = summarize_columns(np.zeros((0, 40)), np.arange(0), np.arange(0.0), 5.0)
+    stretches = (Stretch(0, 0, 512, 0, 512), Stretch(1, 512, 768, 512, 768))
+    context = SimpleNamespace(camera=SimpleNamespace(n_columns=48), input_stretches=stretches)
+    products = STAGE.run(
+        inputs={
+            "column_stats": [{"column_stats": good}, {"column_stats": empty}],
+            "flat_file": None,
+        },
+        options=ColumnSolveOptions(min_blocks=4),
+        context=context,
+    )
+    assert sorted(products) == ["columns", "problems"]
+    assert len(products["columns"]) == 48
+    (line,) = products["problems"]
+    assert line.startswith("no 40-column table for stretches s0001 (not the camera's 48 columns)")
+    odd = SimpleNamespace(camera=context.camera, stretch=stretches[1])
+    with pytest.raises(StageError, match="has 40 image columns but the columns stage solved no"):
+        _columns_table(products, 40, odd)
+    assert _columns_table(products, 48, odd) is products["columns"]

@@ -1,19 +1,27 @@
 """Ingest: check the night's raw blocks and index their rows in time.
 
 Raw blocks are FITS files of consecutive TDI rows (DESIGN.md section 3).
-Ingest reads nothing but headers.  It rejects broken blocks with a one-line
-reason each, orders the good ones by time, maps every row to its readout
-time (DATE-OBS is the time row 0 of a block was shifted out; row ``k`` follows
-at ``DATE-OBS + k * LINETIME``) and checks that consecutive blocks join up.
+Ingest sees each block's header and a summary of its pixels (the runner
+reads every pixel once).  It rejects broken blocks with a one-line reason
+each: unreadable or truncated files, bad headers, blocks whose image holds no
+usable pixel (all NaN, one constant value, all saturated:
+:func:`check_block_pixels`) and blocks whose DATE-OBS contradicts their
+BLOCKSEQ and collides with another block (:mod:`._order`).  It orders the
+good ones by time, maps every row to its readout time (DATE-OBS is the time
+row 0 of a block was shifted out; row ``k`` follows at ``DATE-OBS + k *
+LINETIME``), checks that consecutive blocks join up, and compares header site
+keywords, where present, with the config's site (:mod:`._site`).  A rejected
+block's rows become a gap, so the night is reduced as if its file were absent.
 
 Night rows
 ----------
 Night row ``r`` is counted from row 0 of the first good block, at one row
 per LINETIME, so that the rows of a missing block stay in the night as rows
-no block covers (the runner fills them with NaN and calibrate flags them
-GAP).  A gap therefore never shifts the rows that follow it, and nothing
-bridges it: it also ends a *segment*, a maximal sequence of blocks that follow
-each other without gap or overlap and share line time, geometry and filter.
+no block covers.  A gap therefore never shifts the rows that follow it, and
+nothing bridges it: it also ends a *segment*, a maximal sequence of blocks
+that follow each other without gap or overlap and share line time, camera
+format (NAXIS1, DATASEC, BIASSEC), TDIROWS and filter.  The runner cuts
+stretches within segments only, so rows in gaps belong to no stretch.
 Problems found on the way (gaps, overlaps, duplicates, settings changed
 mid-night, sequence numbers out of step) are reported, one line each.
 
