@@ -82,25 +82,24 @@ def _file_size(path: Path) -> int | None:
     return None if start.startswith(_COMPRESSED_MAGIC) else size
 
 
-def summarize_pixels(path: Path, hdu_index: int) -> PixelSummary:
+def summarize_pixels(hdu: fits.ImageHDU | fits.PrimaryHDU | fits.CompImageHDU) -> PixelSummary:
     """Per-column extremes of an image HDU's pixels, read in chunks of rows.
 
     Reads every pixel once (``_SUMMARY_ROWS`` rows at a time, so memory stays
     flat for any block size) as stored, and applies BSCALE/BZERO to the
     extremes only (a linear map), which is several times faster than scaling
-    every pixel; integer pixels equal to BLANK count as non-finite.
+    every pixel; integer pixels equal to BLANK count as non-finite.  Open the
+    file with ``memmap=False, do_not_scale_image_data=True``.
     """
-    with fits.open(path, memmap=False, do_not_scale_image_data=True) as hdul:
-        hdu = hdul[hdu_index]
-        header = hdu.header
-        n_rows, n_columns = int(header["NAXIS2"]), int(header["NAXIS1"])
-        blank = header.get("BLANK") if int(header["BITPIX"]) > 0 else None
-        summary = PixelSummary.of(np.zeros((0, n_columns), np.float32))
-        for start in range(0, n_rows, _SUMMARY_ROWS):
-            rows = np.asarray(hdu.section[start : min(start + _SUMMARY_ROWS, n_rows), :])
-            if blank is not None:
-                rows = np.where(rows == blank, np.nan, rows.astype(np.float64))
-            summary = summary + PixelSummary.of(rows)
+    header = hdu.header
+    n_rows, n_columns = int(header["NAXIS2"]), int(header["NAXIS1"])
+    blank = header.get("BLANK") if int(header["BITPIX"]) > 0 else None
+    summary = PixelSummary.of(np.zeros((0, n_columns), np.float32))
+    for start in range(0, n_rows, _SUMMARY_ROWS):
+        rows = np.asarray(hdu.section[start : min(start + _SUMMARY_ROWS, n_rows), :])
+        if blank is not None:
+            rows = np.where(rows == blank, np.nan, rows.astype(np.float64))
+        summary = summary + PixelSummary.of(rows)
     scale, zero = float(header.get("BSCALE", 1.0)), float(header.get("BZERO", 0.0))
     low, high = summary.minimum * scale + zero, summary.maximum * scale + zero
     if scale < 0:
@@ -125,17 +124,18 @@ def read_raw_files(raw_dir: Path, names: Sequence[str], *, pixels: bool = True) 
         try:
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
-                with fits.open(path) as hdul:
+                # Stored values (the header keeps BZERO/BSCALE): see summarize_pixels.
+                with fits.open(path, memmap=False, do_not_scale_image_data=True) as hdul:
                     index = first_image_hdu(hdul)
                     header = hdul[index].header.copy() if index is not None else None
                     if index is not None and isinstance(hdul[index], fits.CompImageHDU):
                         size = None
-                summary, pixel_error = None, None
-                if pixels and index is not None:
-                    try:
-                        summary = summarize_pixels(path, index)
-                    except Exception as exc:  # truncated data, bad compression, ...
-                        pixel_error = f"{type(exc).__name__}: {exc}"
+                    summary, pixel_error = None, None
+                    if pixels and index is not None:
+                        try:
+                            summary = summarize_pixels(hdul[index])
+                        except Exception as exc:  # truncated data, bad compression, ...
+                            pixel_error = f"{type(exc).__name__}: {exc}"
             problems = "; ".join(str(w.message) for w in caught)
             error = None if index is not None else "no 2-D image HDU in the file"
             if problems and error is None:
