@@ -1,28 +1,55 @@
-"""Keep astropy strictly offline.
+"""Keep astropy offline while the pipeline works, without touching the caller's settings.
 
 Astropy fetches fresh IERS Earth-orientation tables when its bundled ones are
 older than ``auto_max_age`` days.  Telescopes are often off the network, and a
-reduction must be reproducible, so the pipeline always uses the tables bundled
-with ``astropy-iers-data`` and, past their range, warns instead of failing
-(``iers_degraded_accuracy = 'warn'``).  Setting ``auto_download = False`` alone
-is not enough: with the default ``auto_max_age`` astropy then raises for recent
-dates.
+reduction must be reproducible, so while the pipeline computes it uses the
+tables bundled with ``astropy-iers-data`` and, past their range, warns instead
+of failing (``iers_degraded_accuracy = 'warn'``).  Setting ``auto_download =
+False`` alone is not enough: with the default ``auto_max_age`` astropy then
+raises for recent dates.
+
+:func:`astropy_offline` sets this for the duration of a ``with`` block only
+(astropy's ``conf.set_temp``): the runner (:func:`pipeline.run_night` and
+every unit a worker runs), the command line and the geometry's entry points
+use it, and ``import pipeline`` changes nothing.  :func:`configure_offline`
+sets the same for the whole process, for a script or a test session that
+wants it.
 """
+
+from __future__ import annotations
+
+import contextlib
+from collections.abc import Iterator
 
 from astropy.utils import iers
 from astropy.utils.data import conf as data_conf
 
-__all__ = ["configure_offline"]
+__all__ = ["astropy_offline", "configure_offline"]
+
+#: (configuration object, item, value while offline).
+_OFFLINE = (
+    (iers.conf, "auto_download", False),
+    (iers.conf, "auto_max_age", None),
+    (iers.conf, "iers_degraded_accuracy", "warn"),
+    (data_conf, "allow_internet", False),
+)
+
+
+@contextlib.contextmanager
+def astropy_offline() -> Iterator[None]:
+    """Within the block, astropy never downloads; afterwards its settings are as before.
+
+    Uses the bundled IERS-A/B tables without an age limit, warns (does not
+    raise) for times beyond them, and forbids astropy's remote data access.
+    Nests freely.
+    """
+    with contextlib.ExitStack() as stack:
+        for conf, item, value in _OFFLINE:
+            stack.enter_context(conf.set_temp(item, value))
+        yield
 
 
 def configure_offline() -> None:
-    """Configure astropy so that it never tries to download anything.
-
-    Sets ``astropy.utils.iers.conf`` to use the bundled IERS-A/B tables without
-    an age limit and to warn (not raise) when a time lies beyond them, and
-    forbids astropy's remote data access altogether.
-    """
-    iers.conf.auto_download = False
-    iers.conf.auto_max_age = None
-    iers.conf.iers_degraded_accuracy = "warn"
-    data_conf.allow_internet = False
+    """Set :func:`astropy_offline`'s settings for the rest of the process."""
+    for conf, item, value in _OFFLINE:
+        setattr(conf, item, value)

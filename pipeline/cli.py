@@ -29,6 +29,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 
 import pipeline
+from pipeline._offline import astropy_offline
 from pipeline.config import Config, load_config
 from pipeline.exceptions import ConfigError, RunLockedError
 from pipeline.runner import LOG_NAME, night_dir, night_status, parse_stretches, run_night
@@ -218,6 +219,11 @@ def main(args: Sequence[str] | None = None) -> int:
     args : sequence of str, optional
         Arguments without the program name; default ``sys.argv[1:]``.
     """
+    with astropy_offline():  # for this call only: astropy never downloads
+        return _main(args)
+
+
+def _main(args: Sequence[str] | None) -> int:
     parser = _parser()
     try:
         options = parser.parse_args(args)

@@ -59,20 +59,48 @@ def test_times_since_counts_leap_seconds():
 
 
 @pytest.fixture
-def no_network(monkeypatch):
-    """Make any attempt to open a URL fail loudly."""
+def astropy_defaults():
+    """astropy's own defaults (download allowed), not the test session's offline setup.
+
+    The pipeline must go offline by itself (``pipeline._offline.astropy_offline``
+    in the geometry's entry points), not rely on the caller's settings.
+    """
+    from astropy.utils import iers
+    from astropy.utils.data import conf as data_conf
+
+    with (
+        iers.conf.set_temp("auto_download", True),
+        iers.conf.set_temp("auto_max_age", 30.0),
+        iers.conf.set_temp("iers_degraded_accuracy", "error"),
+        data_conf.set_temp("allow_internet", True),
+    ):
+        yield
+
+
+@pytest.fixture
+def no_network(monkeypatch, astropy_defaults):
+    """Refuse and record any attempt to open a URL (with astropy's default settings).
+
+    astropy catches a failed download and warns, so the attempts are also
+    counted and must be none.
+    """
+    attempts = []
 
     def refuse(*args, **kwargs):
+        attempts.append(args)
         raise AssertionError("astropy tried to download something")
 
     monkeypatch.setattr(urllib.request, "urlopen", refuse)
     monkeypatch.setattr("astropy.utils.data.download_file", refuse)
     monkeypatch.setattr("astropy.utils.iers.iers.download_file", refuse)
+    yield
+    assert attempts == [], f"astropy tried to download: {attempts}"
 
 
 def test_past_iers_table_warns_instead_of_downloading(no_network):
     # astropy.utils.iers documents that past the bundled tables it raises or
-    # downloads unless configured; pipeline._offline configures it to warn.
+    # downloads unless configured; the geometry configures it, for the time
+    # it computes, to warn.
     # The whole model build must give our GeometryWarning and a usable model.
     late = f"{int(iers_table_end().jyear) + 5}-06-01T00:00:00"
     with pytest.warns(GeometryWarning, match="IERS table ends"):
@@ -90,3 +118,83 @@ def test_inside_iers_table_is_silent(no_network):
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         TDIModel(Site(latitude=20.0, longitude=10.0), camera, utc_time("2024-03-01T00:00"), 60.0)
+
+
+IMPORT_CHECK = """
+from astropy.utils import iers
+from astropy.utils.data import conf
+def settings():
+    return (iers.conf.auto_download, iers.conf.auto_max_age,
+            iers.conf.iers_degraded_accuracy, conf.allow_internet)
+before = settings()
+import pipeline, pipeline.cli, pipeline.runner, pipeline.geometry, pipeline.products
+from pipeline import load_config, night_status, open_product, read_image, run_night
+assert settings() == before, (before, settings())
+print(before)
+"""
+
+
+def test_importing_the_package_leaves_astropy_settings_alone():
+    # A fresh interpreter: this test session itself runs offline (conftest).
+    import subprocess
+    import sys
+
+    result = subprocess.run(
+        [sys.executable, "-c", IMPORT_CHECK], capture_output=True, text=True, check=False
+    )
+    assert result.returncode == 0, result.stderr
+    # astropy's documented defaults: downloads on, 30-day table age, errors.
+    assert result.stdout.strip() == "(True, 30.0, 'error', True)"
+
+
+def test_offline_block_restores_the_settings():
+    from astropy.utils import iers
+
+    from pipeline._offline import astropy_offline
+
+    with iers.conf.set_temp("auto_download", True):
+        with astropy_offline():
+            assert iers.conf.auto_download is False
+            assert iers.conf.iers_degraded_accuracy == "warn"
+        assert iers.conf.auto_download is True
+
+
+GEOMETRY_OFFLINE_CHECK = """
+import urllib.request, warnings
+import astropy.utils.data, astropy.utils.iers.iers
+attempts = []
+def refuse(*args, **kwargs):
+    attempts.append(args)
+    raise OSError("no network in this test")
+urllib.request.urlopen = refuse
+astropy.utils.data.download_file = refuse
+astropy.utils.iers.iers.download_file = refuse
+# A clock years after the bundled table was made: with its defaults astropy
+# would now fetch a fresh one.
+from astropy.time import Time
+Time.now = classmethod(lambda cls: cls("2040-01-01T00:00:00", scale="tai"))
+from pipeline.geometry import Camera, Site, TDIModel
+from pipeline.geometry.sitetime import iers_table_end, utc_time
+late = f"{int(iers_table_end().jyear) + 5}-06-01T00:00:00"
+camera = Camera(n_columns=200, tdi_rows=200, pixel_size=15.0, focal_length=8.0)
+with warnings.catch_warnings(record=True) as caught:
+    warnings.simplefilter("always")
+    model = TDIModel(Site(latitude=20.0, longitude=10.0), camera, utc_time(late), 600.0)
+    model.sky_from_strip(100.0, 100.0)
+print(len(attempts), sorted({w.category.__name__ for w in caught}))
+"""
+
+
+def test_geometry_never_downloads_in_a_fresh_process():
+    # A fresh interpreter with astropy's defaults (downloads allowed), no IERS
+    # table loaded yet and a clock that makes the bundled table stale: the
+    # model past the table must neither try a download nor fail; it warns (our
+    # GeometryWarning) instead.
+    import subprocess
+    import sys
+
+    result = subprocess.run(
+        [sys.executable, "-c", GEOMETRY_OFFLINE_CHECK], capture_output=True, text=True, check=False
+    )
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == "0 ['GeometryWarning']", result.stdout

@@ -1,8 +1,10 @@
 """Site location, atmosphere and offline-safe time handling.
 
-Astropy is kept offline by :func:`pipeline._offline.configure_offline` (run on
-``import pipeline``): it uses the IERS Earth-orientation tables bundled with
-``astropy-iers-data`` and never downloads.  Past the end of those tables
+The geometry's entry points (:func:`utc_time`, :func:`offline_astropy_warnings`,
+through which every astropy transform of the zenith model runs) keep astropy
+offline while they compute (:func:`pipeline._offline.astropy_offline`): it
+uses the IERS Earth-orientation tables bundled with ``astropy-iers-data`` and
+never downloads; the caller's settings are restored afterwards.  Past the end of those tables
 astropy extrapolates UT1-UTC and falls back to mean polar motion, and ERFA flags
 "dubious years" past its leap-second knowledge; it says so with its own
 warnings.  :func:`offline_astropy_warnings` turns those into one
@@ -32,6 +34,7 @@ from astropy.utils.exceptions import (
 from erfa import ErfaWarning
 from numpy.typing import ArrayLike
 
+from pipeline._offline import astropy_offline
 from pipeline.exceptions import GeometryWarning
 from pipeline.geometry.instrument import Site
 
@@ -127,7 +130,8 @@ def utc_time(value: str | float | Time, format: str | None = None) -> Time:
 
 def iers_table_end() -> Time:
     """Last date covered by the bundled IERS Earth-orientation table (incl. predictions)."""
-    table = iers.earth_orientation_table.get()
+    with astropy_offline():
+        table = iers.earth_orientation_table.get()
     return Time(float(table["MJD"][-1].value), format="mjd", scale="utc")
 
 
@@ -145,7 +149,7 @@ def offline_astropy_warnings(what: str = "the sky geometry") -> Iterator[None]:
     what : str
         What is being computed, for the message.
     """
-    with warnings.catch_warnings(record=True) as caught:
+    with warnings.catch_warnings(record=True) as caught, astropy_offline():
         warnings.simplefilter("always")
         yield
     astropy_messages: list[str] = []

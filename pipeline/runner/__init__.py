@@ -33,7 +33,9 @@ from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from pipeline._offline import astropy_offline
 from pipeline.config import Config
+from pipeline.runner._access import open_product, read_image
 from pipeline.runner._executors import Executor, make_executor
 from pipeline.runner._lock import RunLock
 from pipeline.runner._night import NightStore, format_ids, night_dir, unit_id
@@ -53,7 +55,9 @@ __all__ = [
     "night_dir",
     "night_status",
     "no_progress",
+    "open_product",
     "parse_stretches",
+    "read_image",
     "run_night",
     "select_stages",
 ]
@@ -293,7 +297,18 @@ def run_night(
         If another live run holds the night's lock.
     ValueError
         For unknown stage names and stretches the night does not have.
+
+    Notes
+    -----
+    astropy is kept offline during the run only
+    (:func:`pipeline._offline.astropy_offline`); the caller's settings are
+    restored afterwards.
     """
+    with astropy_offline():
+        return _run_night(config, stage, from_stage, to_stage, stretches, force, progress)
+
+
+def _run_night(config, stage, from_stage, to_stage, stretches, force, progress) -> RunReport:
     selected = select_stages(config.graph, stage, from_stage, to_stage)
     wanted = None if stretches is None else frozenset(stretches)
     progress = progress or no_progress

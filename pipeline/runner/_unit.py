@@ -27,6 +27,7 @@ from astropy.table import Table
 from pydantic import BaseModel
 
 import pipeline
+from pipeline._offline import astropy_offline
 from pipeline.runner._rawio import check_block_index, read_raw_files, read_rows
 from pipeline.runner._store import (
     LazyProducts,
@@ -179,10 +180,6 @@ def _fits_cards(task: UnitTask) -> dict[str, tuple[Any, str]]:
         "ZDCONF": (task.config_hash, ""),
         "ZDINPUT": (hash_json(task.input_hashes), ""),
     }
-    stretch = task.context.stretch
-    if stretch is not None:
-        cards["ZDROW0"] = (stretch.lo, "first night row in this product")
-        cards["ZDROW1"] = (stretch.hi, "night row after the last one")
     return cards
 
 
@@ -216,7 +213,16 @@ def _check_products(task: UnitTask, products: Any) -> tuple[dict[str, Any], list
 
 
 def execute_unit(task: UnitTask) -> UnitOutcome:
-    """Run one unit: load inputs, call the stage, write products, then the sidecar."""
+    """Run one unit: load inputs, call the stage, write products, then the sidecar.
+
+    astropy is kept offline meanwhile (a worker process may not have been
+    forked from the runner's, so the runner's setting does not carry over).
+    """
+    with astropy_offline():
+        return _execute_unit(task)
+
+
+def _execute_unit(task: UnitTask) -> UnitOutcome:
     started, t0 = _now(), time.perf_counter()
     with _captured_logs(task.capture_logs) as records:
         try:

@@ -68,6 +68,7 @@ from astropy.table import Table, vstack
 from astropy.time import Time
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from pipeline._offline import astropy_offline
 from pipeline.config import load_config
 from pipeline.exceptions import ConfigError
 from pipeline.geometry.instrument import Camera, Site
@@ -750,7 +751,8 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     site, camera, options, raw_dir = load_simulation_config(args.config)
     out = Path(args.output) if args.output else raw_dir
-    night = simulate_night(site, camera, options)
+    with astropy_offline():  # for this call only: astropy never downloads
+        night = simulate_night(site, camera, options)
     paths = write_night(night, out)
     print(f"wrote {len(paths)} files to {out}")
     for key, value in night.meta["timings"].items():
