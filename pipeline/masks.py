@@ -16,7 +16,7 @@ import enum
 
 import numpy as np
 
-__all__ = ["MASK_DTYPE", "MaskBit", "describe_mask", "has_bits"]
+__all__ = ["BIT_MEANINGS", "MASK_DTYPE", "MaskBit", "describe_mask", "has_bits"]
 
 #: dtype of every mask array.
 MASK_DTYPE = np.dtype(np.uint16)
@@ -61,6 +61,21 @@ class MaskBit(enum.IntFlag):
     GAP = 1 << 6
     LOW_EXPOSURE = 1 << 7
     OUTSIDE = 1 << 8
+
+
+#: One-line meaning of each bit (at most 46 characters: a FITS card comment);
+#: image products list them in ``FLAGBITn`` cards.
+BIT_MEANINGS: dict[MaskBit, str] = {
+    MaskBit.SATURATED: "raw value reached SATURATE",
+    MaskBit.BLEED: "charge bled from a saturated pixel",
+    MaskBit.BAD_COLUMN: "unusable column; no data",
+    MaskBit.HOT_COLUMN: "column with a high additive level, subtracted",
+    MaskBit.COSMIC_RAY: "cosmic-ray hit",
+    MaskBit.NONFINITE: "raw value NaN or infinite; no data",
+    MaskBit.GAP: "no raw data for this row; no data",
+    MaskBit.LOW_EXPOSURE: "start-of-scan ramp: partial exposure",
+    MaskBit.OUTSIDE: "rectify drew on pixels beyond the data",
+}
 
 
 def has_bits(mask: np.ndarray, bits: int | MaskBit) -> np.ndarray:

@@ -61,6 +61,11 @@ def _product(unit_dir: Path, name: str):
     return read_product(unit_dir / sidecar["products"][name]["file"], sidecar["products"][name])
 
 
+def _plane(unit_dir: Path, extension: str) -> np.ndarray:
+    """One plane (FLUX, FLUXVAR, FLAGS) of a unit's image product."""
+    return _product(unit_dir, "image")[extension].data
+
+
 # ------------------------------------------------------------------ the store
 
 
@@ -96,7 +101,7 @@ def test_a_night_within_the_start_ramp_says_how_to_fix_it(tmp_path, capsys):
     # The simulated camera was clocking before the first block: say so.
     fixed = ["--set", "stages.ingest.start_ramp=none"]
     assert main(["run", str(config), "--to", "calibrate", *fixed]) == 0
-    mask = _product(tmp_path / "out/n/calibrate/s0000", "mask")
+    mask = _plane(tmp_path / "out/n/calibrate/s0000", "FLAGS")
     assert not has_bits(mask, MaskBit.LOW_EXPOSURE).any()
 
 
@@ -105,7 +110,7 @@ def test_the_start_ramp_is_flagged_and_left_out_of_the_solve(tmp_path, capsys):
     assert main(["run", str(config), "--to", "calibrate"]) == 0
     index = _product(tmp_path / "out/n/ingest/night", "block_index")
     assert list(index["clock_row"]) == [0, 256, 512, 768]
-    mask = _product(tmp_path / "out/n/calibrate/s0000", "mask")
+    mask = _plane(tmp_path / "out/n/calibrate/s0000", "FLAGS")
     # CHECK_VALUES 3.8: the first TDIROWS rows after clocking starts are partly exposed.
     low = has_bits(mask, MaskBit.LOW_EXPOSURE).all(axis=1)
     assert low[:128].all() and not low[128:].any()
@@ -189,12 +194,12 @@ def test_a_flipped_camera_calibrates_like_an_unflipped_one(tmp_path, capsys):
         # cosmic-ray, saturation or bleed threshold across it.  The column flags
         # (set from whole-night statistics) must agree; a pixel flag may differ
         # in at most 1e-3 of the pixels (24 of 24576; measured: none).
-        mask_a, mask_b = _product(a, "mask"), _product(b, "mask")
+        mask_a, mask_b = _plane(a, "FLAGS"), _plane(b, "FLAGS")
         column_bits = MaskBit.BAD_COLUMN | MaskBit.HOT_COLUMN
         np.testing.assert_array_equal(mask_a & column_bits, mask_b & column_bits)
         assert np.mean(mask_a != mask_b) < 1e-3
         np.testing.assert_allclose(
-            _product(a, "image"), _product(b, "image"), rtol=1e-5, atol=1e-3, equal_nan=True
+            _plane(a, "FLUX"), _plane(b, "FLUX"), rtol=1e-5, atol=1e-3, equal_nan=True
         )
 
 
@@ -227,7 +232,7 @@ def test_the_demo_night_runs_end_to_end(tmp_path, capsys):
     # and every column that is has a flagged neighbour (the pixel bleed mask
     # grows one column beyond the flagged ones: measured 52, 111).
     masks = np.concatenate(
-        [_product(unit, "mask") for unit in sorted((products / "calibrate").glob("s*"))]
+        [_plane(unit, "FLAGS") for unit in sorted((products / "calibrate").glob("s*"))]
     )
     bled = has_bits(masks, MaskBit.SATURATED | MaskBit.BLEED).mean(axis=0) >= 0.99
     bad = set(np.flatnonzero(flags & MaskBit.BAD_COLUMN)) - {379, 996}
@@ -382,8 +387,8 @@ def test_a_failed_stretch_leaves_the_flat_and_the_other_stretches_calibrated(
     assert partial.meta["n_blocks"] == len(first) > 0  # s0000's blocks only
     partial_images = {
         unit: (
-            _product(products / "calibrate" / unit, "image"),
-            _product(products / "calibrate" / unit, "mask"),
+            _plane(products / "calibrate" / unit, "FLUX"),
+            _plane(products / "calibrate" / unit, "FLAGS"),
         )
         for unit in ("s0000", "s0001")
     }
@@ -411,9 +416,9 @@ def test_a_failed_stretch_leaves_the_flat_and_the_other_stretches_calibrated(
     assert main(["run", str(config), "--to", "calibrate"]) == 0
     for unit, (image, mask) in partial_images.items():
         clean = products / "calibrate" / unit
-        deviation = (image - _product(clean, "image")) / np.sqrt(_product(clean, "variance"))
+        deviation = (image - _plane(clean, "FLUX")) / np.sqrt(_plane(clean, "FLUXVAR"))
         assert np.nanmedian(np.abs(deviation)) < 0.1
         assert np.nanmax(np.abs(deviation)) < 5.0
         # A recalibrated pixel can cross a cosmic-ray or saturation threshold
         # (measured: 4 of 24576 pixels, next to a bleed).
-        assert np.mean(mask != _product(clean, "mask")) < 1e-3
+        assert np.mean(mask != _plane(clean, "FLAGS")) < 1e-3

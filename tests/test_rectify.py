@@ -17,6 +17,7 @@ from pipeline.exceptions import RectifyWarning
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import first_order_bow
 from pipeline.masks import MaskBit
+from pipeline.products import image_hdulist
 from pipeline.stages import GRAPH, StageContext, Stretch
 from pipeline.stages.rectify import (
     STAGE,
@@ -578,10 +579,17 @@ def test_stage_is_registered_with_strict_options():
         assert name in parameters
 
 
-def test_stage_run_returns_hdus_with_readable_wcs():
+def test_stage_run_returns_an_image_product_with_readable_wcs():
     model = scene_model(30.0, 1024)
     index = Table(
-        {"row_start": [0], "n_rows": [1024], "line_time": [model.line_time]},
+        {
+            "row_start": [0],
+            "n_rows": [1024],
+            "t_start": [0.0],
+            "line_time": [model.line_time],
+            "tdi_rows": [model.camera.tdi_rows],
+            "filter": ["r"],
+        },
         meta={"reference_time": model.start.isot},
     )
     stretch = Stretch(0, 0, 512, 0, 576)
@@ -594,24 +602,32 @@ def test_stage_run_returns_hdus_with_readable_wcs():
         stretches=(stretch, Stretch(1, 512, 1024, 448, 1024)),
     )
     image = np.full((576, 256), 10.0)
-    inputs = {
-        "ingest": {"block_index": index},
-        "calibrate": {
-            "image": image,
-            "variance": image.copy(),
-            "mask": np.zeros(image.shape, np.uint16),
-        },
-    }
+    calibrated = image_hdulist(
+        image,
+        image.copy(),
+        np.zeros(image.shape, np.uint16),
+        unit="electron",
+        header=fits.Header(),
+        metadata=fits.Header(),
+    )
+    inputs = {"ingest": {"block_index": index}, "calibrate": {"image": calibrated}}
     products = STAGE.run(inputs=inputs, options=RectifyOptions(), context=context)
-    assert set(products) == {"image", "variance", "mask", "smear_kernels"}
-    hdu = products["image"]
-    assert isinstance(hdu, fits.ImageHDU)
+    assert set(products) == {"image", "smear_kernels"}
+    planes = products["image"]
+    assert [hdu.name for hdu in planes] == ["PRIMARY", "FLUX", "FLUXVAR", "FLAGS"]
+    flux = planes["FLUX"]
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        wcs = WCS(hdu.header)
+        wcs = WCS(flux.header)
+        night = WCS(flux.header, key="A")
     assert wcs.wcs.ctype[0] == "RA---CAR"
-    assert hdu.header["XSTART"] == 0
-    assert hdu.data.shape[1] == pytest.approx(512, abs=2)
+    # The stretch's first rectified column is night column 0 (the NIGHT grid).
+    assert night.wcs.name == "NIGHT" and night.pixel_to_world_values(0, 0) == (0.0, 0.0)
+    assert flux.data.shape[1] == pytest.approx(512, abs=2)
+    assert flux.header["BUNIT"] == "electron" and planes["FLUXVAR"].header["BUNIT"] == "electron2"
+    # The frame of date's epoch: the night's mid-time (RectifiedFrame.for_night).
+    mid = model.start.utc.mjd + 0.5 * 1024 * model.line_time / 86400.0
+    assert flux.header["MJDREF"] == pytest.approx(mid, abs=1e-9)  # 1e-9 d = 86 us: float MJD
     same = night_model(model.site, model.camera, index, 1024)
     assert same.line_time == model.line_time
     assert len(products["smear_kernels"]) > 0

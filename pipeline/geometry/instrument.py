@@ -36,7 +36,7 @@ class Site:
     wavelength : float
         Effective wavelength of the passband in micrometres (refraction).
     name : str
-        Free-form site name for headers and reports.
+        Free-form site name for headers (``OBSERVAT``) and reports.
     """
 
     latitude: float
@@ -93,7 +93,9 @@ class Camera:
         If true, later rows hold smaller right ascension (scan runs the other
         way on the detector).
     name : str
-        Free-form camera name.
+        Free-form camera name (``INSTRUME`` of the products).
+    telescope : str
+        Free-form name of the telescope the camera sits on (``TELESCOP``).
     """
 
     n_columns: int
@@ -109,6 +111,7 @@ class Camera:
     flip_columns: bool = False
     flip_rows: bool = False
     name: str = "unnamed camera"
+    telescope: str = "unnamed telescope"
 
     def __post_init__(self) -> None:
         if (self.focal_length is None) == (self.spin_period is None):

@@ -311,7 +311,11 @@ class RectifiedFrame:
             ("LONPOLE", float(_wrap180(pole_lon - self.ra_ref)), "native lon of ICRS pole"),
             ("LATPOLE", float(pole_lat), "ICRS lat of native pole (pole of date)"),
             ("RADESYS", "ICRS", ""),
-            ("FRMEPOCH", self.epoch.utc.isot, "UTC epoch of the frame of date"),
+            # The frame of date's epoch as the product's time origin (FITS
+            # WCS time keywords, Rots et al. 2015, A&A 574, A36).
+            ("TIMESYS", "UTC", "time scale of DATEREF"),
+            ("DATEREF", self.epoch.utc.isot, "[UTC] epoch of the frame of date"),
+            ("MJDREF", float(self.epoch.utc.mjd), "[d] DATEREF as MJD (UTC)"),
         ]
         for key, value, comment in cards:
             header[key] = (value, comment)

@@ -154,9 +154,10 @@ def _writer(kind: str, value: Any, cards: Mapping[str, tuple[Any, str]]) -> Call
     if kind == "hdu":
         hdu = fits.PrimaryHDU(data=value.data, header=_with_cards(value.header, cards))
         return lambda temp: hdu.writeto(temp, output_verify="fix")
-    if kind == "hdulist":
+    if kind == "hdulist":  # e.g. an image product (pipeline.products): cards on every HDU
         hdul = fits.HDUList([hdu.copy() for hdu in value])
-        hdul[0].header = _with_cards(hdul[0].header, cards)
+        for hdu in hdul:
+            hdu.header = _with_cards(hdu.header, cards)
         return lambda temp: hdul.writeto(temp, output_verify="fix")
     if kind == "table":
         return lambda temp: value.write(temp, format="ascii.ecsv")

@@ -41,12 +41,15 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from astropy.io import fits
 from astropy.table import Table
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from pipeline.exceptions import CalibrationWarning, StageError
 from pipeline.masks import MASK_DTYPE, MaskBit, describe_mask
-from pipeline.stages.base import RAW_ROWS, Stage
+from pipeline.products import image_hdulist, night_grid_header
+from pipeline.stages._observation import RowTimes, observation_for_rows, row_times
+from pipeline.stages.base import BLOCK_INDEX, RAW_ROWS, Stage
 from pipeline.stages.calibrate._bias import overscan_levels, smooth_levels
 from pipeline.stages.calibrate._chunks import Scratch, row_chunks
 from pipeline.stages.calibrate._columns import adopt_columns, solve_columns, summarize_columns
@@ -69,6 +72,7 @@ __all__ = [
     "detect_cosmic_rays",
     "options_kwargs",
     "solve_columns",
+    "strip_wcs_header",
     "subtract_bias",
     "summarize_columns",
 ]
@@ -662,14 +666,25 @@ def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
         **options_kwargs(options, exclude=("flat_field",)),
     )
     _warn_empty_rows(result, rows, context.stretch)
+    stretch = context.stretch
+    times = row_times(inputs["ingest"][BLOCK_INDEX], stretch.lo, stretch.hi)
     row_table = Table(
         {"night_row": rows.night_row, "time": rows.time, "bias": result.bias},
-        meta={"time_unit": "s since block_index reference_time", "bias_unit": "adu"},
+        meta={"reference_time": times.reference_time.isot},
     )
+    row_table["time"].unit = "s"
+    row_table["time"].description = "readout time since meta['reference_time']"
+    row_table["bias"].unit = "adu"
+    row_table["bias"].description = "bias subtracted from the row (smoothed overscan)"
     return {
-        "image": result.image,
-        "variance": result.variance,
-        "mask": result.mask,
+        "image": image_hdulist(
+            result.image,
+            result.variance,
+            result.mask,
+            unit="electron",
+            header=strip_wcs_header(times, stretch.lo),
+            metadata=observation_for_rows(times, context),
+        ),
         "rows": row_table,
         "mask_counts": result.mask_counts,
     }
@@ -695,6 +710,39 @@ def _columns_table(products, n_columns: int, context) -> Table:
     return products[name]
 
 
+def strip_wcs_header(times: RowTimes, row_lo: int) -> fits.Header:
+    """WCS of a calibrated stretch: chip column and readout time, and the night grid.
+
+    Axis 1 (``COLUMN``) is the image column, 0-based (as calibrated:
+    after ``camera.flip_columns``); axis 2
+    (``TIME``, FITS WCS time axis, Rots et al. 2015) the readout time of
+    the row, s since ``DATEREF``, uniform at one line time per row (as the
+    ingest stage lays out the night's rows: exact to its
+    ``tolerance_rows``).  The alternate WCS ``A`` (``NIGHT``) gives the
+    image column and the night row.
+    """
+    header = fits.Header()
+    cards = [
+        ("WCSAXES", 2, "two image axes"),
+        ("CTYPE1", "COLUMN", "image column (0-based), across the scan"),
+        ("CTYPE2", "TIME", "readout time of the row, along the scan"),
+        ("CUNIT1", "pixel", ""),
+        ("CUNIT2", "s", ""),
+        ("CRPIX1", 1.0, ""),
+        ("CRPIX2", 1.0, ""),
+        ("CRVAL1", 0.0, "[pixel]"),
+        ("CRVAL2", times.first, "[s] since DATEREF, first row"),
+        ("CDELT1", 1.0, "[pixel]"),
+        ("CDELT2", times.line_time, "[s] line time"),
+    ]
+    for key, value, comment in cards:
+        header[key] = (value, comment)
+    header.extend(
+        night_grid_header(0, row_lo, ("COLUMN", "ROW"), ("image column", "night row (scan axis)"))
+    )
+    return header
+
+
 def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:
     """Warn about rows that blocks cover but hold no finite pixel (NaN-filled data)."""
     empty = rows.covered & (result.mask & MaskBit.NONFINITE != 0).all(axis=1)
@@ -715,7 +763,9 @@ STAGE = Stage(
     options=CalibrateOptions,
     requires=("ingest", "columns", RAW_ROWS),
     scope="stretch",
-    uses=("camera.flip_columns", "camera.flip_rows"),
+    uses=("camera.flip_columns", "camera.flip_rows", "camera.name", "camera.telescope", "site"),
     description="Bias, 1-D flat and dark, variance and mask of each stretch.",
-    version=3,  # 2: bias window by cross-validation; 3: faster passes (rounding)
+    # 2: bias window by cross-validation; 3: faster passes (rounding); 4: one
+    # multi-extension image product with units and observation metadata
+    version=4,
 )

@@ -86,6 +86,14 @@ from pipeline.geometry.instrument import Camera, Site
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import TDIModel
 from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.products import (
+    FLAGS_EXTENSION,
+    FLUX_EXTENSION,
+    VARIANCE_EXTENSION,
+    image_hdulist,
+    night_grid_header,
+)
+from pipeline.stages._observation import observation_for_rows, row_times
 from pipeline.stages.base import BLOCK_INDEX, Stage
 from pipeline.stages.rectify._deconvolve import deconvolution_margin, deconvolve_smear
 from pipeline.stages.rectify._map import StripMap, smear_kernels
@@ -197,9 +205,16 @@ class RectifiedStretch:
         return self.frame.wcs(self.x_start, self.image.shape[1])
 
     def header(self) -> fits.Header:
-        """FITS header: the WCS plus the stage's own cards."""
-        header = self.frame.wcs_header(self.x_start, self.image.shape[1])
-        header["XSTART"] = (self.x_start, "night column x of the first pixel column")
+        """FITS header: the WCS, the night grid (alternate WCS ``A``) and the stage's cards."""
+        header = self.frame.wcs_header(self.x_start)
+        header.extend(
+            night_grid_header(
+                self.x_start,
+                0,
+                ("X", "Y"),
+                ("rectified column x (along the scan)", "rectified row y (north up)"),
+            )
+        )
         header["NOISECOR"] = (
             round(self.noise_correlation, 5),
             "aperture variance / sum of variance plane",
@@ -566,11 +581,11 @@ def _run(*, inputs, options: RectifyOptions, context) -> dict[str, Any]:
     stretch = context.stretch
     night_rows = context.stretches[-1].stop if context.stretches else stretch.hi
     model = night_model(context.site, context.camera, inputs["ingest"][BLOCK_INDEX], night_rows)
-    calibrated = inputs["calibrate"]
+    planes = inputs["calibrate"]["image"]
     result = rectify(
-        calibrated["image"],
-        calibrated["variance"],
-        calibrated["mask"],
+        planes[FLUX_EXTENSION].data,
+        planes[VARIANCE_EXTENSION].data,
+        planes[FLAGS_EXTENSION].data,
         model,
         row_lo=stretch.lo,
         core=(stretch.start, stretch.stop),
@@ -578,15 +593,22 @@ def _run(*, inputs, options: RectifyOptions, context) -> dict[str, Any]:
         data_rows=stretch.segment,  # no data beyond: a gap or another camera format
         **options.model_dump(),
     )
-    header = result.header()
-    image_header = header.copy()
-    image_header["BUNIT"] = "electron"
-    variance_header = header.copy()
-    variance_header["BUNIT"] = "electron2"
+    times = row_times(inputs["ingest"][BLOCK_INDEX], stretch.start, stretch.stop)
+    metadata = observation_for_rows(
+        times,
+        context,
+        reference_time=result.frame.epoch,
+        reference_comment="epoch of the frame of date",
+    )
     return {
-        "image": fits.ImageHDU(result.image.astype(np.float32), image_header),
-        "variance": fits.ImageHDU(result.variance.astype(np.float32), variance_header),
-        "mask": fits.ImageHDU(result.mask, header.copy()),
+        "image": image_hdulist(
+            result.image,
+            result.variance,
+            result.mask,
+            unit="electron",
+            header=result.header(),
+            metadata=metadata,
+        ),
         "smear_kernels": result.smear_kernels,
     }
 
@@ -601,5 +623,7 @@ STAGE = Stage(
     scope="stretch",
     uses=("site", "camera"),
     description="Resample stretches onto the straight-track frame; record smear kernels.",
-    version=2,  # 2: deconvolution regularisation scales with the smear length
+    # 2: deconvolution regularisation scales with the smear length; 3: one
+    # multi-extension image product with units, observation metadata, night grid
+    version=3,
 )
