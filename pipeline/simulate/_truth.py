@@ -51,7 +51,8 @@ def truth_table(stars, ra, dec, tracks, r_geom, c_geom, cols, psf, options, came
     t["partial"] = tracks.partial
     t["saturated"] = recorded * response * peak_fraction(psf) > options.detector.full_well
     t.meta["description"] = "simulated stars; strip pixel k covers [k-0.5, k+0.5)"
-    return rounded_table(t)
+    units = {"pmra": "mas / yr", "pmdec": "mas / yr", "mag": "mag", "colour": "mag"}
+    return _add_units(rounded_table(t), units)
 
 
 # Decimals kept in the written tables: 1e-9 deg = 3.6 micro-arcsec, 1e-6 px, 1e-3 e-.
@@ -63,7 +64,16 @@ def rounded_table(table: Table) -> Table:
     for name in table.colnames:
         col = table[name]
         if col.dtype.kind == "f" and col.unit in _DECIMALS:
-            table[name] = np.round(col, _DECIMALS[col.unit])
+            unit = col.unit
+            table[name] = np.round(col, _DECIMALS[unit])
+            table[name].unit = unit  # np.round returns a column without it
+    return table
+
+
+def _add_units(table: Table, units: dict[str, str]) -> Table:
+    """Units of columns given as catalogue values (already at their precision)."""
+    for name, unit in units.items():
+        table[name].unit = unit
     return table
 
 
@@ -92,4 +102,4 @@ def reference_table(stars, truth, options, rng) -> Table:
     t["mag_error"] = np.full(n, ref.mag_error) * u.mag
     t["colour"] = (colour + ref.colour_error * rng.standard_normal(n)) * u.mag
     t["colour_error"] = np.full(n, ref.colour_error) * u.mag
-    return rounded_table(t)
+    return _add_units(rounded_table(t), {"pmra": "mas / yr", "pmdec": "mas / yr", "epoch": "yr"})

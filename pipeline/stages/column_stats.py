@@ -58,5 +58,5 @@ STAGE = Stage(
     scope="stretch",
     uses=("camera.flip_columns", "camera.flip_rows"),
     description="Per-block clipped column levels of each stretch (for the 1-D flat and dark).",
-    version=3,  # 2: bias window by cross-validation; 3: faster passes (rounding)
+    version=4,  # 2: bias window by cross-validation; 3: faster passes (rounding); 4: units
 )

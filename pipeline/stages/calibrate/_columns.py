@@ -140,6 +140,9 @@ def summarize_columns(
     table["level"] = np.array(level, dtype=np.float32).reshape(-1, n_columns)
     table["scatter"] = np.array(scatter, dtype=np.float32).reshape(-1, n_columns)
     table["n_pixels"] = np.array(count, dtype=np.int32).reshape(-1, n_columns)
+    table["time"].unit = "s"
+    for name in ("read_noise", "level", "scatter"):
+        table[name].unit = "electron"
     table.meta.update(block_rows=int(block_rows), clip=float(clip))
     return table
 

@@ -572,6 +572,9 @@ def _index_table(rows: list[dict[str, Any]]) -> Table:
             table[name] = table[name].astype("U1")
     table["t_start"].unit = "s"
     table["line_time"].unit = "s"
+    table["gain"].unit = "electron / adu"
+    table["read_noise"].unit = "electron"
+    table["saturation"].unit = "adu"
     return table
 
 
@@ -722,5 +725,6 @@ STAGE = Stage(
     # 2: clock_row column (start_ramp); 3: segment, image/overscan_section;
     # 4: blocks without usable pixels or out of order are rejected, header
     # sites compared with the config
-    version=4,
+    # 5: units on gain, read_noise, saturation
+    version=5,
 )
