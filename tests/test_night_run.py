@@ -8,12 +8,12 @@ the simulation's settings.
 from __future__ import annotations
 
 import json
-import shutil
 from pathlib import Path
 
 import numpy as np
 import pytest
 import yaml
+from _demo import demo_copy
 from astropy.io import fits
 from astropy.stats import mad_std
 from astropy.table import Table
@@ -22,8 +22,6 @@ from pipeline.cli import main
 from pipeline.masks import MaskBit, has_bits
 from pipeline.runner._rawio import read_rows
 from pipeline.runner._store import read_product
-
-REPO = Path(__file__).resolve().parents[1]
 
 SITE = {"latitude": 20.0, "longitude": -100.0, "height": 2000.0}
 CAMERA = {"n_columns": 48, "tdi_rows": 128, "pixel_size": 15.0, "focal_length": 6.2}
@@ -206,18 +204,9 @@ def test_a_flipped_camera_calibrates_like_an_unflipped_one(tmp_path, capsys):
 # -------------------------------------------------------------- the demo night
 
 
-def _demo_copy(tmp_path: Path) -> Path:
-    """The demo night and its configs copied under ``tmp_path``; returns demo.yaml."""
-    shutil.copytree(REPO / "demo_frames", tmp_path / "demo_frames")
-    (tmp_path / "configs").mkdir()
-    for name in ("demo.yaml", "simulate_demo.yaml"):
-        shutil.copy(REPO / "configs" / name, tmp_path / "configs" / name)
-    return tmp_path / "configs" / "demo.yaml"
-
-
 def test_the_demo_night_runs_end_to_end(tmp_path, capsys):
     """``zdrift run configs/demo.yaml``, the README's main command, on a copy."""
-    config = _demo_copy(tmp_path)
+    config = demo_copy(tmp_path)
     assert main(["run", str(config)]) == 0, capsys.readouterr()
     out = capsys.readouterr().out
     assert ", 0 failed, 0 blocked" in out and "problem" not in out
