@@ -295,14 +295,10 @@ def test_open_product_says_what_is_missing(demo):
         pipeline.open_product(config, "calibrate", 9)
 
 
-def test_public_api_is_listed():
-    assert set(pipeline.__all__) == {
-        "__version__",
-        "load_config",
-        "night_status",
-        "open_product",
-        "read_image",
-        "run_night",
-    }
-    for name in pipeline.__all__:
-        assert getattr(pipeline, name) is not None
+def test_public_api_is_documented():
+    # Every public name resolves and is described in the package docstring.
+    names = [name for name in pipeline.__all__ if name != "__version__"]
+    assert {"load_config", "run_night", "night_status", "open_product"} <= set(names)
+    for name in names:
+        assert callable(getattr(pipeline, name)), name
+        assert f":func:`{name}`" in pipeline.__doc__, name
