@@ -162,7 +162,7 @@ def test_plan_reports_spin_error_consequences(capsys):
     assert main(["plan", str(DEMO), "--spin-error", str(error)]) == 0
     out = capsys.readouterr().out
     # A liquid spinning at w = 2 pi / T takes the shape of a paraboloid of focal
-    # length f = g / (2 w^2) (Borra et al. 1990, SPIE 1236; CHECK_VALUES row 10),
+    # length f = g / (2 w^2) (Borra et al. 1990, SPIE 1236, eq. 1),
     # with the plan's own normal gravity; printed to 1e-5 m.
     g = _value(out, "normal gravity")
     focal = g / (2 * (2 * math.pi / spin) ** 2)
@@ -179,7 +179,7 @@ def test_plan_reports_spin_error_consequences(capsys):
     )
     # A longer focal length makes the drift faster in pixels, so the matched
     # line time shrinks; over 4096 rows the mismatch of the old line time is
-    # the smear (DESIGN.md section 4, rate-error smear).
+    # the smear (docs/conventions.md, "Track geometry").
     line_time = _value(out, "matched line time")
     slower_line_time = _value(slower, "matched line time")
     assert _value(out, "line time error") == pytest.approx(

@@ -1,7 +1,7 @@
 """Gravity, liquid-mirror focal length, plate scale and refraction constant.
 
-Sources: NIMA TR8350.2 (WGS84 normal gravity; CHECK_VALUES rows 6-8), Borra et
-al. SPIE 1236, 653 eq. 1 (f = g / 2 w^2; row 9 and section 3.9), the
+Sources: NIMA TR8350.2 (WGS84 normal gravity), Borra et
+al. SPIE 1236, 653 eq. 1 (f = g / 2 w^2), the
 Astronomical Almanac low-precision refraction formula (rows 11-12).
 """
 
@@ -19,8 +19,8 @@ from pipeline.geometry.optics import (
     spin_period_from_focal_length,
 )
 
-# Gravity of sample sites, CHECK_VALUES row 8: computed in-house (code C) from
-# the NIMA TR8350.2 formulas of rows 6-7, printed to 6 decimals.
+# Gravity of sample sites: computed in-house (derived, docs/conventions.md) from
+# the NIMA TR8350.2 formulas, printed to 6 decimals.
 SITE_GRAVITY = [
     (0.0, 0.0, 9.780325),
     (29.36, 2450.0, 9.785192),
@@ -34,7 +34,7 @@ SITE_GRAVITY = [
 
 def test_normal_gravity_equator_and_pole():
     # NIMA TR8350.2 (3rd ed.): gamma_e = 9.7803253359, gamma_p = 9.8321849378 m/s^2
-    # (CHECK_VALUES row 6).  Somigliana's formula must reproduce both exactly;
+    # (its equator and pole values).  Somigliana's formula must reproduce both exactly;
     # 1e-10 m/s^2 is float rounding of the closed formula.
     assert normal_gravity(0.0) == pytest.approx(9.7803253359, abs=1e-10)
     assert normal_gravity(90.0) == pytest.approx(9.8321849378, abs=1e-10)
@@ -43,14 +43,14 @@ def test_normal_gravity_equator_and_pole():
 
 @pytest.mark.parametrize(("lat", "height", "expected"), SITE_GRAVITY)
 def test_normal_gravity_site_table(lat, height, expected):
-    # CHECK_VALUES row 8 table (derived from NIMA TR8350.2 rows 6-7); the table
+    # The table above (derived from NIMA TR8350.2); the table
     # is rounded to 1e-6 m/s^2, so we allow half a unit in the last place plus
     # float noise.
     assert normal_gravity(lat, height) == pytest.approx(expected, abs=6e-7)
 
 
 def test_normal_gravity_height_term_numeric_form():
-    # CHECK_VALUES row 7, numerical form (hpmuseum.org forum thread 17495, B):
+    # NIMA TR8350.2 height term, numerical form (hpmuseum.org forum thread 17495):
     # dg = -3.0877e-6 (1 - 0.00139 sin^2 phi) h + 7.2e-13 h^2.  The coefficient
     # 3.0877e-6 is rounded to 5 figures: +-5e-11 * 3000 m = 1.5e-7 m/s^2.
     for lat in (0.0, 29.36, 60.0):
@@ -73,7 +73,7 @@ def test_focal_length_matches_formula_by_hand():
 @pytest.mark.parametrize(
     ("f", "g", "period"),
     [
-        # CHECK_VALUES section 3.9 (in-house worked examples of Borra's eq. 1),
+        # In-house worked examples of Borra's eq. 1 (derived, docs/conventions.md),
         # printed to 1 ms: allow half a unit.
         (8.0, 9.785192, 8.034),  # ILMT, f = 8 m at Devasthal gravity
         (8.0, 9.80665, 8.026),  # same at standard gravity g_n (3rd CGPM, exact)
@@ -91,8 +91,8 @@ def test_spin_period_worked_examples(f, g, period):
 @pytest.mark.parametrize(
     ("period", "g", "f"),
     [
-        (8.0, 9.785192, 7.932),  # ILMT spun at 8.000 s (CHECK_VALUES 3.9), to 1 mm
-        (6.0, 9.787159, 4.462),  # NASA-LMT 10 rpm at the NODO site (CHECK_VALUES 3.9)
+        (8.0, 9.785192, 7.932),  # ILMT spun at 8.000 s (derived), to 1 mm
+        (6.0, 9.787159, 4.462),  # NASA-LMT 10 rpm at the NODO site (derived)
     ],
 )
 def test_focal_length_worked_examples(period, g, f):
@@ -100,7 +100,7 @@ def test_focal_length_worked_examples(period, g, f):
 
 
 def test_focal_length_sensitivity_to_spin():
-    # CHECK_VALUES row 10: df/f = -2 dw/w; 1 ppm in rotation is 2 ppm in f
+    # Differentiating f = g / (2 w^2): df/f = -2 dw/w; 1 ppm in rotation is 2 ppm in f
     # (16 um at 8 m).  Linearisation error is ~3 ppm of the 2 ppm, far below 1e-9.
     g = 9.785192
     period = float(spin_period_from_focal_length(8.0, g))
@@ -109,7 +109,7 @@ def test_focal_length_sensitivity_to_spin():
 
 
 def test_plate_scale_check_values_chip():
-    # CHECK_VALUES section 4: 0.35"/px <-> p = 1.696848e-6 rad (7 figures, so
+    # docs/conventions.md, numerical examples: 0.35"/px <-> p = 1.696848e-6 rad (7 figures, so
     # 3e-7 relative); 206264.806"/rad is the definition of the arcsecond.
     p = 1.696848e-6
     assert plate_scale(15.0, 15e-6 / p) == pytest.approx(0.35, rel=5e-7)

@@ -15,7 +15,8 @@ START = Time("2025-09-10T22:00:00", scale="utc")
 
 
 def test_plan_reproduces_check_values_chip():
-    # CHECK_VALUES section 4 at latitude 29.4 deg (pure geometry: pressure 0):
+    # docs/conventions.md, "Numerical examples" (derived), latitude 29.4 deg
+    # (pure geometry: pressure 0):
     # t_row = 26.709 ms, T = 109.40 s, edge slips -8.022 / +8.019 px, sagittas
     # 2.0215 / 1.9889 px; first order 8.021 px and 3.5586 tan(delta) px.
     # Tolerances: table rounding plus the 1e-4 aberration scale that the
@@ -40,7 +41,8 @@ def test_plan_reproduces_check_values_chip():
 
 
 def test_plan_spin_period_and_errors():
-    # CHECK_VALUES 3.9: an ILMT-like mirror spun at 8.000 s at Devasthal
+    # Borra et al. eq. 1, worked example (derived, docs/conventions.md): a
+    # mirror spun at 8.000 s at Devasthal
     # (29.36 deg, 2450 m; gravity 9.785192) has f = 7.932 m.
     site = Site(latitude=29.36, longitude=79.68, height=2450.0)
     camera = Camera(n_columns=4096, tdi_rows=4096, pixel_size=15.0, spin_period=8.0)
@@ -52,7 +54,7 @@ def test_plan_spin_period_and_errors():
     # The errors are first order in err/T; compare each with the exact
     # difference to the mirror spun slower by err (second order: err/T ~ 1e-5,
     # 2 err/T ~ 3e-5 for the line time).  The focal length of that mirror:
-    # f = g / (2 w^2) (CHECK_VALUES 3.9), checked at 8.000 s just above.
+    # f = g / (2 w^2) (Borra et al. eq. 1), checked at 8.000 s just above.
     slower = Camera(n_columns=4096, tdi_rows=4096, pixel_size=15.0, spin_period=8.0 + err)
     slow = summarize_plan(site, slower, start=START)
     assert slow["focal_length_m"] - s["focal_length_m"] == pytest.approx(
@@ -105,8 +107,8 @@ def test_plan_of_a_tiny_camera(n_columns, tdi_rows):
     The drift rate, the crossing and the track shapes are then computed with
     time steps shorter than the crossing: every number is finite.  The line
     time matched at the chip centre does not depend on the chip's size, and
-    without refraction it is p / (w cos phi) (CHECK_VALUES section 4, first
-    order) to the 1.1e-4 of aberration and polar motion, as above.
+    without refraction it is p / (w cos phi) (docs/conventions.md, "Track
+    geometry", first order) to the 1.1e-4 of aberration and polar motion, as above.
     """
     site = Site(latitude=-20.0, longitude=30.0, pressure=0.0)
     small = Camera(n_columns=n_columns, tdi_rows=tdi_rows, pixel_size=15.0, focal_length=4.0)

@@ -1,9 +1,9 @@
 """TDI track geometry: smear, bow, crossing windows, strip conventions.
 
-The numerical tables of CHECK_VALUES section 4 (4096 x 4096 chip at 0.35"/px,
+The numerical tables of docs/conventions.md, "Numerical examples" (4096 x 4096 chip at 0.35"/px,
 clock at the chip-centre drift rate) are in-house integrations (code C) of the
-analytic gnomonic track of section 3.1; the first-order expressions are the
-analytic results of DESIGN.md section 4 / CHECK_VALUES 3.3-3.4.
+analytic gnomonic track; the first-order expressions are the analytic
+results of docs/conventions.md, "Track geometry" (derived).
 
 Those tables are pure geometry: no refraction and no aberration.  We switch
 refraction off (pressure 0).  Aberration cannot be switched off in astropy;
@@ -37,7 +37,8 @@ P = SCALE / ARCSEC_PER_RADIAN
 CHIP = Camera(n_columns=4096, tdi_rows=N, pixel_size=15.0, focal_length=15e-6 / P)
 ABERRATION = 1.1e-4  # largest relative scale change from aberration (annual + diurnal)
 
-# CHECK_VALUES 4.1: latitude -> (T s, t_row ms, slip N edge exact, 1st order,
+# Numerical examples, slip (docs/conventions.md): latitude -> (T s, t_row ms,
+# slip N edge exact, 1st order,
 # slip S edge exact, 1st order, rms at edge exact, centre-track slip exact)
 SLIP_TABLE = {
     0.0: (95.31, 23.270, +0.016, 0.0, +0.016, 0.0, 0.003, +0.016),
@@ -46,7 +47,8 @@ SLIP_TABLE = {
     49.0: (145.28, 35.469, -16.435, -16.375, +16.315, +16.375, 4.75, +0.006),
     -31.0: (111.19, 27.147, +8.548, +8.553, -8.557, -8.553, 2.47, +0.014),
 }
-# CHECK_VALUES 4.2: latitude -> (sagitta N edge, centre, S edge; signed here,
+# Numerical examples, sagitta (docs/conventions.md): latitude -> (sagitta N
+# edge, centre, S edge; signed here,
 # + = ends lie north of the middle; time-mean cross-scan offset from the
 # meridian point centre / N edge / S edge; cross-scan rms of the centre track)
 BOW_TABLE = {
@@ -88,7 +90,7 @@ def test_along_scan_slip_matches_table(case):
     assert shape.slip[1] == pytest.approx(centre, abs=tol)
     # rms along-scan smear at the (north) edge, 2-decimal table
     assert shape.along_rms[0] == pytest.approx(rms_edge, abs=0.005 + ABERRATION * 5)
-    # CHECK_VALUES 3.3: the smear is a top-hat of length |slip|, rms |slip|/sqrt(12);
+    # Track geometry (derived): the smear is a top-hat of length |slip|, rms |slip|/sqrt(12);
     # the centre-rate cubic (<= 0.016 px end to end) bends it by ~1e-3 px
     np.testing.assert_allclose(shape.along_rms, np.abs(shape.slip) / np.sqrt(12), atol=0.002)
 
@@ -101,7 +103,7 @@ def test_along_scan_slip_first_order(case):
     # the helper reproduces the table's first-order column (14.234 tan(phi), 3 decimals)
     assert first[0] == pytest.approx(n_first, abs=0.0006)
     assert first[2] == pytest.approx(s_first, abs=0.0006)
-    # CHECK_VALUES 4.1 notes: the first order is within 0.4 % of the exact
+    # Numerical examples (derived): the first order is within 0.4 % of the exact
     # edge slip once the centre-track cubic residual (<= 0.016 px) is added
     exact_minus_centre = shape.slip - shape.slip[1]
     assert np.all(np.abs(exact_minus_centre - first) <= 0.004 * np.abs(first) + 0.002)
@@ -114,10 +116,10 @@ def test_cross_scan_bow_matches_table(case):
     # 4-decimal table (5e-5) + aberration on up to 4.1 px (4.5e-4)
     tol = 5e-5 + ABERRATION * 4.2
     np.testing.assert_allclose(shape.sagitta, [sag_n, sag_c, sag_s], atol=tol)
-    # first order 3.5586 tan(delta) px (CHECK_VALUES 4.2: "identical to 4 d.p.")
+    # first order 3.5586 tan(delta) px (numerical examples: equal to 4 decimals)
     np.testing.assert_allclose(first_order_bow(lat, N, SCALE, OFFSETS), shape.sagitta, atol=tol)
     # time-mean offset from the meridian point (3-decimal table): a third of
-    # the sagitta poleward (CHECK_VALUES 3.4)
+    # the sagitta poleward (track geometry, derived)
     tol3 = 5e-4 + ABERRATION * 1.4
     np.testing.assert_allclose(shape.centroid_offset, [off_n, off_c, off_s], atol=tol3)
     # cross-scan rms of the centre track about its chord (polar motion tilts
@@ -131,7 +133,7 @@ def test_cross_scan_bow_matches_table(case):
 def test_smear_and_bow_vanish_at_equator_and_flip_in_south(case):
     lat, model, ra, dec = case
     shape = model.track_shape(ra, dec)
-    # DESIGN.md section 4 and CHECK_VALUES 3.3: at latitude 0 there is no
+    # Track geometry (derived): at latitude 0 there is no
     # differential drift (xi = tan H for every declination), and the centre
     # track is the equator, a great circle: straight on the gnomonic plane.
     if lat == 0.0:
@@ -168,7 +170,7 @@ def test_crossing_window_hits_the_chip_ends(case):
 
 def test_crossing_window_after_a_sidereal_day():
     # One Earth rotation angle turn is 86164.0989 s (IERS Conventions 2010,
-    # CHECK_VALUES row 4); a star comes back after that, up to the day's change
+    # 86400 / 1.00273781191135448); a star comes back after that, up to the day's change
     # of aberration and precession (< 0.5" / 15"/s = 0.03 s).
     camera = Camera(n_columns=256, tdi_rows=256, pixel_size=15.0, focal_length=8.0)
     site = Site(latitude=33.0, longitude=-105.0, pressure=0.0)
@@ -207,7 +209,8 @@ def test_sky_from_strip_inverts_strip_from_sky(case):
 
 
 def test_strip_row_convention():
-    # DESIGN.md section 4: r(t) = t / dt + N - u(t); charge at the serial
+    # Strip row convention (pipeline/geometry/tdi.py): r(t) = t / dt + N - u(t);
+    # charge at the serial
     # register (u = N) at t = k dt is strip row k.
     site = Site(latitude=10.0, longitude=0.0, pressure=0.0)
     model = TDIModel(site, CHIP, Time("2024-01-01T00:00:00", scale="utc"), 60.0)
@@ -220,7 +223,7 @@ def test_strip_row_convention():
 
 
 def test_wrong_line_time_adds_uniform_smear():
-    # DESIGN.md section 4: a line time that does not match the drift adds a
+    # Track geometry (derived): a line time that does not match the drift adds a
     # uniform along-scan smear of N * (rate error) rows.
     site = Site(latitude=29.4, longitude=79.7, pressure=0.0)
     start = Time("2025-09-10T22:00:00", scale="utc")
@@ -250,7 +253,7 @@ def test_wrong_line_time_adds_uniform_smear():
 
 @pytest.mark.parametrize(("pressure", "temperature"), [(1013.25, 10.0), (750.0, 0.0)])
 def test_refraction_compresses_the_drift(pressure, temperature):
-    # Astronomical Almanac low-precision refraction (CHECK_VALUES rows 11-12):
+    # Astronomical Almanac low-precision refraction formula:
     # near the zenith a uniform radial compression by k = 0.00452 deg P/(273+T)
     # (282.5 ppm at 1013 hPa, 10 C; 216.7 ppm at 750 hPa, 0 C).  ERFA's model
     # (dry air, 0.574 um) agrees with the low-precision formula to ~0.2 %; we

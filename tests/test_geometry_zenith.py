@@ -3,7 +3,7 @@
 The reference is computed here by hand: astropy transforms each star from ICRS
 to the observed AltAz frame (ERFA: precession-nutation, Earth rotation,
 aberration, refraction), and we project it gnomonically about the axis with
-xi towards local west and eta towards local north (DESIGN.md section 4).
+xi towards local west and eta towards local north (docs/conventions.md, "Track geometry").
 """
 
 import astropy.units as u
@@ -154,13 +154,13 @@ def test_camera_rotation_sign():
     ra, dec = model.sky_from_focal_plane(512.0, 511.5, 30.0)
     u0, v0 = model.focal_plane(ra, dec, 20.0)
     u1, v1 = model.focal_plane(ra, dec, 40.0)
-    # At latitude 0 the track is straight (CHECK_VALUES 3.4), but polar motion
+    # At latitude 0 the track is straight (gnomonic track, derived), but polar motion
     # (~0.3", IERS) turns the drift from local west by ~1e-6 rad: 5e-6 in slope.
     assert (v1 - v0) / (u1 - u0) == pytest.approx(-np.tan(np.radians(rot)), abs=5e-6)
 
 
 def test_axis_interpolation_between_nodes():
-    # DESIGN.md section 4: the axis comes from astropy (AltAz alt = 90 deg ->
+    # The axis comes from astropy (AltAz alt = 90 deg ->
     # ICRS) on coarse nodes; between them the splines must follow astropy.
     site = Site(latitude=41.0, longitude=2.0, pressure=800.0, temperature=10.0)
     start = Time("2025-02-01T18:00:00", scale="utc")
@@ -187,7 +187,7 @@ def test_axis_interpolation_between_nodes():
 )
 def test_sidereal_drift_rate(lat, lon, date):
     # IERS Conventions 2010 Earth rotation angle: 15.0410672"/s at the celestial
-    # equator (CHECK_VALUES rows 1 and 3).  Stars sit still on the apparent
+    # equator (the rate in arcsec per second).  Stars sit still on the apparent
     # sphere (aberration moves them, it does not make them drift), which turns
     # at this rate about the pole, so without refraction the focal-plane drift
     # at the chip centre is 15.0410672" cos(delta) with delta the apparent
@@ -208,7 +208,7 @@ def test_sidereal_drift_rate(lat, lon, date):
 
 def test_axis_returns_after_one_stellar_day():
     # One turn of the Earth rotation angle takes 86164.0989 s (IERS Conventions
-    # 2010, CHECK_VALUES row 4); the axis then points at the same ICRS RA, up
+    # 2010: 86400 / 1.00273781191135448); the axis then points at the same ICRS RA, up
     # to a day's precession (0.14") and change of annual aberration (< 0.35"):
     # 2e-6 rad of 2 pi, i.e. 3e-7 relative.
     site = Site(latitude=20.0, longitude=-156.0, pressure=0.0)

@@ -109,7 +109,7 @@ def test_the_start_ramp_is_flagged_and_left_out_of_the_solve(tmp_path, capsys):
     index = _product(tmp_path / "out/n/ingest/night", "block_index")
     assert list(index["clock_row"]) == [0, 256, 512, 768]
     mask = _plane(tmp_path / "out/n/calibrate/s0000", "FLAGS")
-    # CHECK_VALUES 3.8: the first TDIROWS rows after clocking starts are partly exposed.
+    # TDI readout: the first TDIROWS rows after clocking starts are partly exposed.
     low = has_bits(mask, MaskBit.LOW_EXPOSURE).all(axis=1)
     assert low[:128].all() and not low[128:].any()
     stats = _product(tmp_path / "out/n/column_stats/s0000", "column_stats")
@@ -174,7 +174,7 @@ def test_a_flipped_camera_calibrates_like_an_unflipped_one(tmp_path, capsys):
 
     The simulator writes each block's rows last-read first and the image
     columns south to north when camera.flip_rows / flip_columns are set
-    (DESIGN.md section 3); DATE-OBS stays the time of the first row read.
+    (docs/conventions.md, "Raw data"); DATE-OBS stays the time of the first row read.
     """
     plain = _night(tmp_path / "plain", simulate={"start_ramp": True})
     flips = {"flip_rows": True, "flip_columns": True}

@@ -82,7 +82,7 @@ def test_wcs_is_the_frame_rotation(latitude):
 def test_frame_axes_and_orientation():
     # Design: x grows with RA of date (time runs along +x, east to the right),
     # y grows to the north; one column is one line time of Earth rotation
-    # (IERS Conventions 2010 rate, CHECK_VALUES row 1).
+    # (IERS Conventions 2010 Earth rotation angle rate).
     model = scene_model(30.0, N_ROWS)
     frame = RectifiedFrame.for_night(model, N_ROWS)
     era_rate_deg = 360.0 * 1.00273781191135448 / 86400.0
@@ -164,7 +164,7 @@ def test_resampling_positions_match_wcs_and_model(latitude):
     )
     r_sampled = (r_used / ones)[yy, xx].ravel()
     c_sampled = (c_used / ones)[yy, xx].ravel()
-    # DESIGN.md section 4: exact to well under 0.01 pixel across the product.
+    # The rectified WCS must be exact to well under 0.01 pixel across the product.
     assert np.abs(r_sampled - r_exact).max() < 0.01
     assert np.abs(c_sampled - c_exact).max() < 0.01
 
@@ -202,7 +202,7 @@ def test_star_centroids_land_on_wcs_positions(latitude):
 
 
 def test_track_apex_would_fail_the_centroid_check():
-    # Negative control (CHECK_VALUES section 3.4): a star's mid-crossing point
+    # Negative control (track geometry, derived): a star's mid-crossing point
     # lies s/3 equatorward of its time-mean, s = N^2 p tan(delta) / 8.  Mapping
     # to the apex instead of the mean would put stars ~1.5 px off at 50 deg.
     scene, result = _grid_scene(50.0)
@@ -220,7 +220,7 @@ def test_track_apex_would_fail_the_centroid_check():
 
 @pytest.mark.parametrize("latitude", [30.0, 50.0, -31.0])
 def test_smear_kernel_record_matches_analytic_smear_and_bow(latitude):
-    # CHECK_VALUES section 4.1 notes: the along-scan slip of a track eta north
+    # Numerical examples (derived, docs/conventions.md): the along-scan slip of a track eta north
     # of the centre line is -N eta tan(phi) / (1 - eta tan(phi)) pixels plus the
     # centre track's own (cubic) residual, to <= 0.002 px; section 3.4: the
     # cross-scan sagitta is N^2 p tan(delta) / 8.  The record holds the exact
@@ -245,14 +245,14 @@ def test_smear_kernel_record_matches_analytic_smear_and_bow(latitude):
         runs.append(run)
         delta = phi + np.arctan(eta)
         sagitta = n**2 * p * np.tan(delta) / 8.0
-        # First order equals the exact sagitta to 4 decimals (CHECK_VALUES 4.2); 1 %.
+        # First order equals the exact sagitta to 4 decimals (numerical examples); 1 %.
         assert row["bow"] == pytest.approx(abs(sagitta) * (1 - 2 / n_samples), rel=0.01)
     # What remains is the centre track's cubic residual, the same for every
-    # track (to 0.002 px at 4096 rows, CHECK_VALUES 4.1); 0.01 px allows for
+    # track (to 0.002 px at 4096 rows, numerical examples); 0.01 px allows for
     # our coarse 6-arcsec pixels, and the slip itself spans several pixels.
     assert np.ptp(residuals) < 0.01
     assert np.ptp(runs) > 4.0
-    # Poleward stars lag their packet (CHECK_VALUES 3.3), so their strip track
+    # Poleward stars lag their packet (track geometry), so their strip track
     # runs to later rows: towards +x for the poleward edge.
     poleward = kernels[np.argmax(kernels["y"] * np.sign(latitude))]
     assert (poleward["dx"][-1] - poleward["dx"][0]) > 1.0
@@ -260,7 +260,7 @@ def test_smear_kernel_record_matches_analytic_smear_and_bow(latitude):
 
 @pytest.mark.parametrize("latitude", LATITUDES)
 def test_smear_kernel_bow_has_the_sign_the_geometry_predicts(latitude):
-    # CHECK_VALUES section 3.4 (first_order_bow): a track bows poleward at its
+    # Track geometry (docs/conventions.md; first_order_bow): a track bows poleward at its
     # ends, sagitta N^2 p tan(delta) / 8, positive to the north; its time-mean
     # lies s/3 poleward of the meridian point.  Sampled uniformly in time at
     # u = t/T - 1/2, the cross-scan offsets from the mean are s (4 u^2 - <4 u^2>).
@@ -276,7 +276,7 @@ def test_smear_kernel_bow_has_the_sign_the_geometry_predicts(latitude):
     offset = np.asarray(kernels["y"]) - (result.image.shape[0] - 1) / 2.0
     predicted = first_order_bow(latitude, scene.model.n_rows, scene.model.pixel_scale, offset)
     # 1e-3 px + 2e-4 relative: the first-order sagitta equals the exact one to
-    # 1e-4 (CHECK_VALUES 4.2; measured <= 6e-4 px at 50 deg, 2e-5 px at the
+    # 1e-4 (numerical examples, derived; measured <= 6e-4 px at 50 deg, 2e-5 px at the
     # equator, where the edges' sagittas are -/+0.016 px).
     np.testing.assert_allclose(fitted, predicted, rtol=2e-4, atol=1e-3)
     # what is left is the parabola's higher orders and the map's interpolation
@@ -293,7 +293,7 @@ def test_smear_kernel_lookup_matches_exact_kernel():
     strip_map = StripMap(model, frame, x - 1, x + 1)
     exact = smear_kernels(model, frame, strip_map, np.array([x]), np.array([y]))
     # 0.01 px: linear interpolation over 32 px of a kernel whose length
-    # changes linearly with y (first order, CHECK_VALUES 3.3).
+    # changes linearly with y (first order, track geometry).
     assert np.abs(dx - exact["dx"][0]).max() < 0.01
     assert np.abs(dy - exact["dy"][0]).max() < 0.01
 
@@ -303,7 +303,7 @@ def test_smear_kernel_lookup_matches_exact_kernel():
 
 
 def test_two_stretches_equal_one():
-    # Self-consistency (DESIGN.md section 6): a strip rectified in two
+    # Self-consistency: a strip rectified in two
     # overlapping stretches equals the strip rectified at once.
     model = scene_model(50.0, N_ROWS)
     frame = RectifiedFrame.for_night(model, N_ROWS)
@@ -571,7 +571,7 @@ def test_stage_is_registered_with_strict_options():
         RectifyOptions(pixel_scal=1.0)
     with pytest.raises(ValidationError):
         RectifyOptions(map_step_x=0)
-    # Options mirror the function's keyword arguments (STYLE.md).
+    # Options mirror the function's keyword arguments (DEVELOPERS.md, Style).
     import inspect
 
     parameters = inspect.signature(rectify).parameters
@@ -680,7 +680,7 @@ def test_demo_like_camera_with_noise():
 @pytest.mark.slow
 def test_full_size_chip_at_49_degrees_with_deconvolution():
     # A 4096 x 4096 chip at 0.35 arcsec per pixel and 49 deg (the set-up of
-    # CHECK_VALUES section 4: edge slip ~16 px, sagitta ~4 px): centroids and
+    # docs/conventions.md numerical examples: edge slip ~16 px, sagitta ~4 px): centroids and
     # flux as in the small-chip tests, and deconvolution makes edge stars as
     # round as centre-line stars (requirement: within 0.02).
     camera = small_camera(n_columns=4096, tdi_rows=4096, focal_length=8.84)

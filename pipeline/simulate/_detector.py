@@ -3,7 +3,7 @@
 Private helpers of :mod:`pipeline.simulate`: pure numpy functions over images
 whose axis 0 is the scan axis (strip rows, time) and axis 1 the columns.
 
-The TDI-specific facts used here (CHECK_VALUES section 3.8): every output
+The TDI-specific facts used here (docs/conventions.md, "TDI detector facts"): every output
 pixel of a column has integrated through all detector rows of that column, so
 the flat field and the dark current are 1-D vectors over columns; a hot pixel
 adds its rate times one line time to every output pixel of its column; a
@@ -114,7 +114,7 @@ def exposure_fraction(rows: np.ndarray, tdi_rows: int, start_ramp: bool) -> np.n
     """Fraction of the full integration received by night rows ``rows``.
 
     With ``start_ramp`` clocking starts when night row 0 is read out, so row
-    ``k`` has integrated ``k / tdi_rows`` of the full time (CHECK_VALUES 3.8).
+    ``k`` has integrated ``k / tdi_rows`` of the full time.
 
     Parameters
     ----------

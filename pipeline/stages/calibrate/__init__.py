@@ -398,7 +398,7 @@ def calibrate_stretch(
         Run label of each row; -1 marks rows without data (mask GAP).
     rows_since_start : ndarray of int, shape (n_rows,), optional
         Rows since charge clocking started; with ``tdi_rows`` the first
-        ``tdi_rows`` of them get LOW_EXPOSURE (CHECK_VALUES 3.8).
+        ``tdi_rows`` of them get LOW_EXPOSURE (they crossed part of the chip).
     tdi_rows : int, optional
         TDIROWS.
     bias_window, bias_polyorder, bias_max_window, overscan_clip

@@ -1,7 +1,7 @@
 """Per-column response (1-D TDI flat) and additive level, solved from the sky.
 
 Every charge packet crosses a whole column, so a TDI camera's flat field and
-dark current are 1-D, one value per column (CHECK_VALUES 3.8; Gunn et al.,
+dark current are 1-D, one value per column (Gunn et al.,
 "The Flat Fields for SDSS DR2").  Column ``c`` records, in electrons after bias
 subtraction,
 

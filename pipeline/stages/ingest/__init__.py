@@ -1,6 +1,7 @@
 """Ingest: check the night's raw blocks and index their rows in time.
 
-Raw blocks are FITS files of consecutive TDI rows (DESIGN.md section 3).
+Raw blocks are FITS files of consecutive TDI rows (docs/conventions.md,
+"Raw data").
 Ingest sees each block's header and a summary of its pixels (the runner
 reads every pixel once).  It rejects broken blocks with a one-line reason
 each: unreadable or truncated files, bad headers, blocks whose image holds no
@@ -28,10 +29,11 @@ mid-night, sequence numbers out of step) are reported, one line each.
 Start of the scan
 -----------------
 The first TDIROWS rows read after charge clocking starts are only partly
-exposed (CHECK_VALUES 3.8).  Where clocking started is a fact about the
-night, so it is set once, here (``start_ramp``), and recorded per block in the
-``clock_row`` column; :func:`describe_rows` turns it into each row's
-``rows_since_start``, which the calibrate stages use to flag the ramp and
+exposed: row ``k`` after the start has ``k / TDIROWS`` of the full
+exposure.  Where clocking started is a fact about the night, so it is set
+once, here (``start_ramp``), and recorded per block in the ``clock_row``
+column; :func:`describe_rows` turns it into each row's ``rows_since_start``,
+which the calibrate stages use to flag the ramp and
 leave it out of the column solve.
 
 Functions
