@@ -31,6 +31,7 @@ from astropy.io import fits
 from astropy.table import Table
 from pydantic import BaseModel, ConfigDict
 
+from pipeline.products import image_hdulist
 from pipeline.stages.base import BLOCK_INDEX, RAW_FILES, RAW_ROWS, Stage
 
 N_COLUMNS = 6
@@ -94,6 +95,18 @@ def scale_rows(*, inputs, options, context):
         "framed": fits.ImageHDU(image[stretch.core], header=header),
         "stats": {"core_sum": float(np.nansum(image[stretch.core])), "rows": stretch.n_rows},
     }
+
+
+def image_rows(*, inputs, options, context):
+    """:func:`scale_rows`' image and mask as an image product (``pipeline.products``)."""
+    products = scale_rows(inputs=inputs, options=options, context=context)
+    image = products["image"]
+    flags = products["mask"].astype(np.uint16)
+    empty = fits.Header()
+    product = image_hdulist(
+        image, np.abs(image), flags, unit="electron", header=empty, metadata=empty
+    )
+    return {"image": product}
 
 
 def smooth_rows(*, inputs, options, context):

@@ -22,6 +22,7 @@ from _toy_graph import (
     PARTIAL_GRAPH,
     IndexOptions,
     build_index,
+    image_rows,
     toy_config_data,
     write_raw_night,
 )
@@ -646,7 +647,7 @@ def test_the_worked_example_in_developers_md_runs(toy) -> None:
     exec(module, namespace)
     exec(usage, namespace)
     index, scale, _, _ = GRAPH
-    calibrate = Stage("calibrate", scale.run, scale.options, (RAW_ROWS,), "stretch")
+    calibrate = Stage("calibrate", image_rows, scale.options, (RAW_ROWS,), "stretch")
     graph = (index, calibrate, namespace["STAGE"])
     data = {k: v for k, v in make_config().to_dict().items() if k != "stages"}
     config = config_from_mapping(data, ["stages.row_sky.n_sigma=2.5"], graph=graph)
