@@ -302,3 +302,76 @@ def test_public_api_is_documented():
     for name in names:
         assert callable(getattr(pipeline, name)), name
         assert f":func:`{name}`" in pipeline.__doc__, name
+
+
+# ------------------------------------------------------ metadata on analytic cases
+
+
+def _index(line_time: float = 0.05, tdi_rows: int = 100) -> Table:
+    """Two blocks of 100 rows with a 50-row gap between them (rows 100-149)."""
+    return Table(
+        {
+            "row_start": [0, 150],
+            "n_rows": [100, 100],
+            "t_start": [0.0, 150 * line_time],
+            "line_time": [line_time, line_time],
+            "tdi_rows": [tdi_rows, tdi_rows],
+            "filter": ["r", "r"],
+        },
+        meta={"reference_time": "2026-10-15T18:52:00.000"},
+    )
+
+
+def test_row_times_follow_the_block_clocks():
+    from pipeline.stages._observation import row_times
+
+    # Rows 50-199: read from 2.5 s (row 50) to 9.95 s (row 199); the first
+    # charge of row 50 was collected one crossing (100 x 0.05 s) earlier.
+    times = row_times(_index(), 50, 200)
+    assert times.first == pytest.approx(2.5, abs=1e-12)  # float sums of 0.05
+    assert times.start == pytest.approx(2.5 - 5.0, abs=1e-12)
+    assert times.stop == pytest.approx(9.95, abs=1e-12)
+    assert times.exposure == pytest.approx(5.0, rel=1e-12) and times.filter_name == "r"
+    # Rows entirely in the gap keep the earlier block's clock.
+    gap = row_times(_index(), 110, 140)
+    assert (gap.first, gap.stop) == pytest.approx((5.5, 6.95), abs=1e-12)
+
+
+def test_observation_header_is_standard_fits_time_and_site():
+    # Read back through astropy.wcs (WCSLIB's time and observatory keywords):
+    # no fix-up warning, and the times and site astropy sees are ours.
+    from astropy.coordinates import EarthLocation
+
+    from pipeline.geometry import Camera, Site
+    from pipeline.products import observation_header
+
+    site = Site(latitude=-31.0, longitude=-70.5, height=2400.0, name="Test site")
+    camera = Camera(n_columns=10, tdi_rows=100, pixel_size=15.0, focal_length=6.0)
+    reference = Time("2026-10-15T18:52:00", scale="utc")
+    header = observation_header(
+        reference_time=reference,
+        start=-5.0,
+        stop=10.0,
+        exposure=5.0,
+        site=site,
+        camera=camera,
+        filter_name="r",
+    )
+    header["WCSAXES"] = 1
+    header["CTYPE1"] = "TIME"
+    header["CUNIT1"] = "s"
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        wcs = WCS(header)
+    begin = Time(wcs.wcs.mjdbeg, format="mjd", scale="utc")
+    assert abs((begin - reference).to_value(u.s) + 5.0) < 1e-6  # float MJD: ~1 us
+    assert header["TELAPSE"] == 15.0 and header["XPOSURE"] == 5.0
+    # OBSGEO-X/Y/Z: astropy's WGS84 geocentric position of the site, to 1 mm.
+    location = EarthLocation.from_geodetic(-70.5 * u.deg, -31.0 * u.deg, 2400.0 * u.m)
+    geocentric = [c.to_value(u.m) for c in location.to_geocentric()]
+    np.testing.assert_allclose(wcs.wcs.obsgeo[:3], geocentric, atol=1e-3)
+    assert header["OBSERVAT"] == "Test site" and header["TELESCOP"] == "unnamed telescope"
+    with pytest.raises(ValueError, match="must not precede"):
+        observation_header(
+            reference_time=reference, start=1.0, stop=0.0, exposure=None, site=site, camera=camera
+        )

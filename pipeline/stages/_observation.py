@@ -60,16 +60,18 @@ def row_times(index: Table, lo: int, hi: int) -> RowTimes:
     overlap = (start < hi) & (stop > lo)
     if overlap.any():
         blocks = index[overlap]
+        row_start = np.asarray(blocks["row_start"], dtype=np.int64)
+        # The first and last row of each block's part of [lo, hi).
+        first_row = np.maximum(row_start, lo)
+        last_row = np.minimum(row_start + np.asarray(blocks["n_rows"]), hi) - 1
     else:  # rows in a gap: the clock of the nearest earlier block (or the first)
         earlier = np.flatnonzero(start <= lo)
         blocks = index[earlier[-1:] if earlier.size else [0]]
-    row_start = np.asarray(blocks["row_start"], dtype=np.int64)
+        row_start = np.asarray(blocks["row_start"], dtype=np.int64)
+        first_row, last_row = np.array([lo]), np.array([hi - 1])
     line_times = np.asarray(blocks["line_time"], dtype=float)
     # Each block's clock: night row r is read out at since + r * line_time.
     since = np.asarray(blocks["t_start"], dtype=float) - row_start * line_times
-    # The first and last row of each block's part of [lo, hi), read out when.
-    first_row = np.clip(row_start, lo, hi - 1)
-    last_row = np.clip(row_start + np.asarray(blocks["n_rows"]) - 1, lo, hi - 1)
     read = np.concatenate([since + first_row * line_times, since + last_row * line_times])
     line_time = float(line_times[0])
     first = float(since[0] + lo * line_time)
