@@ -46,7 +46,9 @@ is ``ra_date - ra_ref`` and the native latitude ``dec_date``.  ``CRVAL`` holds
 the ICRS coordinates of the point ``(ra_date, dec_date) = (ra_ref, 0)`` (the
 reference point of ``CAR`` lies on the native equator), ``LONPOLE`` the
 native longitude of the ICRS pole and ``LATPOLE`` the ICRS latitude of the
-native pole (which equals the native latitude of the ICRS pole).
+native pole (which equals the native latitude of the ICRS pole).  The frame's
+epoch is the header's time origin, ``DATEREF``/``MJDREF`` (``TIMESYS =
+'UTC'``; Rots et al. 2015, A&A 574, A36).
 """
 
 from __future__ import annotations
