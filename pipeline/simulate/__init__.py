@@ -233,7 +233,9 @@ class SimulationOptions(_Options):
     overscan_columns: int = Field(32, ge=0, description="serial overscan columns")
     filter: str = "r"
     object: str = "zenith drift scan"
-    telescope: str = "zenith telescope"
+    telescope: str | None = Field(
+        None, description="TELESCOP of the raw files; null: camera.telescope"
+    )
     file_prefix: str = Field("block_", pattern=r"^[A-Za-z0-9._-]*$")
     compress: bool = Field(True, description="write .fits.gz")
     data_type: Literal["uint16", "float32"] = "uint16"
@@ -655,7 +657,7 @@ def _block_header(b, t_start, dt_nominal, site, camera, model, options) -> fits.
     h["SITEELEV"] = (site.height, "[m] height")
     h["FILTER"] = (options.filter, "passband")
     h["OBJECT"] = options.object
-    h["TELESCOP"] = options.telescope
+    h["TELESCOP"] = camera.telescope if options.telescope is None else options.telescope
     h["INSTRUME"] = camera.name
     h["OBSERVAT"] = site.name
     h["BUNIT"] = "adu"
