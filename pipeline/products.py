@@ -27,18 +27,19 @@ WCS and the header as ``meta``.  astropy's own reader gives the same::
 (astropy moves the WCS and time keywords it understands from ``meta`` into
 ``wcs``; :func:`ccddata_from_hdulist` keeps the whole header in ``meta``).
 
-Observation metadata (FITS Standard 4.0, section 4.4.2, and the time
-keywords of Rots et al. 2015, A&A 574, A36, "Representations of time
-coordinates in FITS"): ``TELESCOP``, ``INSTRUME``, ``OBSERVAT``, ``FILTER``,
-``OBSGEO-X/Y/Z`` (the site, geocentric metres, from astropy's
-``EarthLocation``) and ``OBSGEO-L/B/H`` (the same point on the IAU 1976
-ellipsoid, on which WCSLIB relates the two), ``TIMESYS = 'UTC'``, ``TREFPOS = 'TOPOCENTER'``,
-``DATEREF``/``MJDREF`` (the product's time origin), ``TIMEUNIT = 's'``,
-``TSTART``/``TSTOP`` (seconds since ``DATEREF``), ``DATE-OBS`` =
-``DATE-BEG`` (the first pixel row's charge started to collect), ``DATE-END``
-(the last one was read out), ``DATE-AVG``, the matching ``MJD-*``,
-``TELAPSE`` (``DATE-END - DATE-BEG``) and ``XPOSURE``, the effective
-exposure of every pixel: the crossing time ``TDIROWS * LINETIME``.
+Observation metadata (the FITS Standard 4.0's keywords describing
+observations, and the time keywords of Rots et al. 2015, A&A 574, A36,
+"Representations of time coordinates in FITS"): ``TELESCOP``, ``INSTRUME``,
+``OBSERVAT``, ``FILTER``, ``OBSGEO-X/Y/Z`` (the site, geocentric metres, from
+astropy's ``EarthLocation``) and ``OBSGEO-L/B/H`` (the same point on the IAU
+1976 ellipsoid, on which WCSLIB relates the two), ``TIMESYS = 'UTC'``,
+``TREFPOS = 'TOPOCENTER'``, ``DATEREF``/``MJDREF`` (the product's time
+origin), ``TIMEUNIT = 's'``, ``TSTART``/``TSTOP`` (seconds since
+``DATEREF``), ``DATE-OBS`` = ``DATE-BEG`` (the first pixel row's charge
+started to collect), ``DATE-END`` (the last row was read out), ``DATE-AVG``,
+the matching ``MJD-*``, ``TELAPSE`` (``DATE-END - DATE-BEG``) and
+``XPOSURE``, the effective exposure of every pixel: the crossing time
+``TDIROWS * LINETIME``.
 
 Position in the night: an alternate linear WCS ``A`` named ``NIGHT``
 (``WCSNAMEA``) gives each pixel's 0-based night column and row
