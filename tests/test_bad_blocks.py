@@ -18,10 +18,11 @@ import astropy.units as u
 import numpy as np
 import pytest
 import yaml
+from _demo import demo_copy
 from astropy.io import fits
 from astropy.table import Table
 from astropy.time import Time
-from test_night_run import _demo_copy, _night, _product
+from test_night_run import _night, _plane, _product
 
 from pipeline.cli import main
 from pipeline.stages.base import plan_stretches, segment_rows
@@ -108,10 +109,10 @@ def _assert_same_products(bad: Path, clean: Path, pairs) -> None:
             _product(clean / "columns/night", "columns")[name],
         )
     for ours, theirs in pairs:
-        for name in ("image", "variance", "mask"):
+        for plane in ("FLUX", "FLUXVAR", "FLAGS"):
             np.testing.assert_array_equal(
-                _product(bad / "calibrate" / ours, name),
-                _product(clean / "calibrate" / theirs, name),
+                _plane(bad / "calibrate" / ours, plane),
+                _plane(clean / "calibrate" / theirs, plane),
             )
 
 
@@ -203,7 +204,7 @@ def test_a_block_of_another_format_spares_its_neighbours(
     # Night rows 0-511 (blocks 0, 1), 512-767 (block 2), 768-1023 (block 3).
     products = tmp_path / "out/n"
     assert _product(products / "columns/night", "columns_40").meta["stretches"] == ["s0001"]
-    assert _product(products / "calibrate/s0001", "image").shape == (256, 40)
+    assert _plane(products / "calibrate/s0001", "FLUX").shape == (256, 40)
     _assert_same_products(products, clean / "out/n", [("s0000", "s0000"), ("s0002", "s0001")])
     # Rectify flags what lies beyond a segment's edge OUTSIDE, as at the
     # night's ends, without asking for more overlap_rows (a regression: it did).
@@ -255,8 +256,8 @@ def test_an_all_zero_demo_block_leaves_the_flat_and_dark_as_without_it(tmp_path,
     """The reproduction on the demo night: a zero-filled block_0002 drove every
     column's dark to ~0 (sky_min -0.0004 e-) and lost six column flags, with
     exit 0 and no message."""
-    config = _demo_copy(tmp_path / "bad")
-    clean = _demo_copy(tmp_path / "clean")
+    config = demo_copy(tmp_path / "bad")
+    clean = demo_copy(tmp_path / "clean")
     (tmp_path / "clean/demo_frames/block_0002.fits.gz").unlink()
     _rewrite(tmp_path / "bad/demo_frames/block_0002.fits.gz", _zero)
     code, out = _run(config, capsys, "--to", "columns")
