@@ -179,7 +179,7 @@ def test_plan_reports_spin_error_consequences(capsys):
     )
     # A longer focal length makes the drift faster in pixels, so the matched
     # line time shrinks; over 4096 rows the mismatch of the old line time is
-    # the smear (docs/conventions.md, "Track geometry").
+    # the smear (DEVELOPERS.md, "Track geometry").
     line_time = _value(out, "matched line time")
     slower_line_time = _value(slower, "matched line time")
     assert _value(out, "line time error") == pytest.approx(

@@ -19,7 +19,7 @@ from pipeline.geometry.optics import (
     spin_period_from_focal_length,
 )
 
-# Gravity of sample sites: computed in-house (derived, docs/conventions.md) from
+# Gravity of sample sites: computed in-house (derived, DEVELOPERS.md) from
 # the NIMA TR8350.2 formulas, printed to 6 decimals.
 SITE_GRAVITY = [
     (0.0, 0.0, 9.780325),
@@ -73,7 +73,7 @@ def test_focal_length_matches_formula_by_hand():
 @pytest.mark.parametrize(
     ("f", "g", "period"),
     [
-        # In-house worked examples of Borra's eq. 1 (derived, docs/conventions.md),
+        # In-house worked examples of Borra's eq. 1 (derived, DEVELOPERS.md),
         # printed to 1 ms: allow half a unit.
         (8.0, 9.785192, 8.034),  # ILMT, f = 8 m at Devasthal gravity
         (8.0, 9.80665, 8.026),  # same at standard gravity g_n (3rd CGPM, exact)
@@ -109,7 +109,7 @@ def test_focal_length_sensitivity_to_spin():
 
 
 def test_plate_scale_check_values_chip():
-    # docs/conventions.md, numerical examples: 0.35"/px <-> p = 1.696848e-6 rad (7 figures, so
+    # DEVELOPERS.md, numerical examples: 0.35"/px <-> p = 1.696848e-6 rad (7 figures, so
     # 3e-7 relative); 206264.806"/rad is the definition of the arcsecond.
     p = 1.696848e-6
     assert plate_scale(15.0, 15e-6 / p) == pytest.approx(0.35, rel=5e-7)

@@ -15,7 +15,7 @@ START = Time("2025-09-10T22:00:00", scale="utc")
 
 
 def test_plan_reproduces_check_values_chip():
-    # docs/conventions.md, "Numerical examples" (derived), latitude 29.4 deg
+    # DEVELOPERS.md, "Numerical examples" (derived), latitude 29.4 deg
     # (pure geometry: pressure 0):
     # t_row = 26.709 ms, T = 109.40 s, edge slips -8.022 / +8.019 px, sagittas
     # 2.0215 / 1.9889 px; first order 8.021 px and 3.5586 tan(delta) px.
@@ -41,7 +41,7 @@ def test_plan_reproduces_check_values_chip():
 
 
 def test_plan_spin_period_and_errors():
-    # Borra et al. eq. 1, worked example (derived, docs/conventions.md): a
+    # Borra et al. eq. 1, worked example (derived, DEVELOPERS.md): a
     # mirror spun at 8.000 s at Devasthal
     # (29.36 deg, 2450 m; gravity 9.785192) has f = 7.932 m.
     site = Site(latitude=29.36, longitude=79.68, height=2450.0)
@@ -107,7 +107,7 @@ def test_plan_of_a_tiny_camera(n_columns, tdi_rows):
     The drift rate, the crossing and the track shapes are then computed with
     time steps shorter than the crossing: every number is finite.  The line
     time matched at the chip centre does not depend on the chip's size, and
-    without refraction it is p / (w cos phi) (docs/conventions.md, "Track
+    without refraction it is p / (w cos phi) (DEVELOPERS.md, "Track
     geometry", first order) to the 1.1e-4 of aberration and polar motion, as above.
     """
     site = Site(latitude=-20.0, longitude=30.0, pressure=0.0)

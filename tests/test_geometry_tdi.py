@@ -1,9 +1,9 @@
 """TDI track geometry: smear, bow, crossing windows, strip conventions.
 
-The numerical tables of docs/conventions.md, "Numerical examples" (4096 x 4096 chip at 0.35"/px,
+The numerical tables of DEVELOPERS.md, "Numerical examples" (4096 x 4096 chip at 0.35"/px,
 clock at the chip-centre drift rate) are in-house integrations (code C) of the
 analytic gnomonic track; the first-order expressions are the analytic
-results of docs/conventions.md, "Track geometry" (derived).
+results of DEVELOPERS.md, "Track geometry" (derived).
 
 Those tables are pure geometry: no refraction and no aberration.  We switch
 refraction off (pressure 0).  Aberration cannot be switched off in astropy;
@@ -37,7 +37,7 @@ P = SCALE / ARCSEC_PER_RADIAN
 CHIP = Camera(n_columns=4096, tdi_rows=N, pixel_size=15.0, focal_length=15e-6 / P)
 ABERRATION = 1.1e-4  # largest relative scale change from aberration (annual + diurnal)
 
-# Numerical examples, slip (docs/conventions.md): latitude -> (T s, t_row ms,
+# Numerical examples, slip (DEVELOPERS.md): latitude -> (T s, t_row ms,
 # slip N edge exact, 1st order,
 # slip S edge exact, 1st order, rms at edge exact, centre-track slip exact)
 SLIP_TABLE = {
@@ -47,7 +47,7 @@ SLIP_TABLE = {
     49.0: (145.28, 35.469, -16.435, -16.375, +16.315, +16.375, 4.75, +0.006),
     -31.0: (111.19, 27.147, +8.548, +8.553, -8.557, -8.553, 2.47, +0.014),
 }
-# Numerical examples, sagitta (docs/conventions.md): latitude -> (sagitta N
+# Numerical examples, sagitta (DEVELOPERS.md): latitude -> (sagitta N
 # edge, centre, S edge; signed here,
 # + = ends lie north of the middle; time-mean cross-scan offset from the
 # meridian point centre / N edge / S edge; cross-scan rms of the centre track)

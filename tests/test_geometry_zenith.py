@@ -3,7 +3,7 @@
 The reference is computed here by hand: astropy transforms each star from ICRS
 to the observed AltAz frame (ERFA: precession-nutation, Earth rotation,
 aberration, refraction), and we project it gnomonically about the axis with
-xi towards local west and eta towards local north (docs/conventions.md, "Track geometry").
+xi towards local west and eta towards local north (DEVELOPERS.md, "Track geometry").
 """
 
 import astropy.units as u

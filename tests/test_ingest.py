@@ -336,7 +336,7 @@ def test_contiguous_night_is_one_segment():
     assert list(night.table["file"]) == ["b0.fits", "b1.fits", "b2.fits"]
     assert list(night.table["row_start"]) == [0, N_ROWS, 2 * N_ROWS]
     rows = describe_rows(night.table, N_ROWS - 1, N_ROWS + 1)
-    # Row k of a block is read at DATE-OBS + k * LINETIME (docs/conventions.md, "Raw data").
+    # Row k of a block is read at DATE-OBS + k * LINETIME (DEVELOPERS.md, "Raw data").
     np.testing.assert_allclose(rows["time"], [(N_ROWS - 1) * LINE_TIME, N_ROWS * LINE_TIME])
     assert rows["covered"].all()
 

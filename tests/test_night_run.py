@@ -174,7 +174,7 @@ def test_a_flipped_camera_calibrates_like_an_unflipped_one(tmp_path, capsys):
 
     The simulator writes each block's rows last-read first and the image
     columns south to north when camera.flip_rows / flip_columns are set
-    (docs/conventions.md, "Raw data"); DATE-OBS stays the time of the first row read.
+    (DEVELOPERS.md, "Raw data"); DATE-OBS stays the time of the first row read.
     """
     plain = _night(tmp_path / "plain", simulate={"start_ramp": True})
     flips = {"flip_rows": True, "flip_columns": True}

@@ -220,7 +220,7 @@ def test_track_apex_would_fail_the_centroid_check():
 
 @pytest.mark.parametrize("latitude", [30.0, 50.0, -31.0])
 def test_smear_kernel_record_matches_analytic_smear_and_bow(latitude):
-    # Numerical examples (derived, docs/conventions.md): the along-scan slip of a track eta north
+    # Numerical examples (derived, DEVELOPERS.md): the along-scan slip of a track eta north
     # of the centre line is -N eta tan(phi) / (1 - eta tan(phi)) pixels plus the
     # centre track's own (cubic) residual, to <= 0.002 px; section 3.4: the
     # cross-scan sagitta is N^2 p tan(delta) / 8.  The record holds the exact
@@ -260,7 +260,7 @@ def test_smear_kernel_record_matches_analytic_smear_and_bow(latitude):
 
 @pytest.mark.parametrize("latitude", LATITUDES)
 def test_smear_kernel_bow_has_the_sign_the_geometry_predicts(latitude):
-    # Track geometry (docs/conventions.md; first_order_bow): a track bows poleward at its
+    # Track geometry (DEVELOPERS.md; first_order_bow): a track bows poleward at its
     # ends, sagitta N^2 p tan(delta) / 8, positive to the north; its time-mean
     # lies s/3 poleward of the meridian point.  Sampled uniformly in time at
     # u = t/T - 1/2, the cross-scan offsets from the mean are s (4 u^2 - <4 u^2>).
@@ -680,7 +680,7 @@ def test_demo_like_camera_with_noise():
 @pytest.mark.slow
 def test_full_size_chip_at_49_degrees_with_deconvolution():
     # A 4096 x 4096 chip at 0.35 arcsec per pixel and 49 deg (the set-up of
-    # docs/conventions.md numerical examples: edge slip ~16 px, sagitta ~4 px): centroids and
+    # DEVELOPERS.md numerical examples: edge slip ~16 px, sagitta ~4 px): centroids and
     # flux as in the small-chip tests, and deconvolution makes edge stars as
     # round as centre-line stars (requirement: within 0.02).
     camera = small_camera(n_columns=4096, tdi_rows=4096, focal_length=8.84)

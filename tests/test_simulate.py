@@ -142,7 +142,7 @@ def test_equator_stars_are_round():
     s2 = _sigma2(night)
     for _, _, _, var_r, var_c in _measure(night):
         # 2e-3 px^2: the residual differential drift at the equator is < 0.02 px over
-        # the chip (docs/conventions.md, numerical examples, latitude 0) and the sagitta 0.01 px.
+        # the chip (DEVELOPERS.md, numerical examples, latitude 0) and the sagitta 0.01 px.
         assert var_r == pytest.approx(s2 + 1 / 12, abs=2e-3)
         assert var_c == pytest.approx(s2 + 1 / 12, abs=2e-3)
     night, _, _ = _simulate_three(0.0)
@@ -154,7 +154,7 @@ def test_equator_stars_are_round():
 def test_off_equator_smear_and_bow(latitude):
     """Edge stars are smeared along the scan by N eta tan(phi) and bowed across it.
 
-    First-order formulas of docs/conventions.md, "Track geometry": a top-hat
+    First-order formulas of DEVELOPERS.md, "Track geometry": a top-hat
     of length S = N * eta * p * tan(phi) adds S^2/12 to the along-scan variance;
     a parabolic bow of sagitta s adds 4 s^2 / 45 across the scan.
     """
@@ -187,7 +187,7 @@ def test_smear_sign_north_versus_south_edge(latitude):
     A clock slower by a = eta_N p tan(phi) (eps = a / (1 - a)) makes the packets
     match the north-edge star's drift: its smear vanishes and the south-edge
     smear doubles to N 2a / (1 + a).  In the south the required clock error
-    changes sign (docs/conventions.md, "Track geometry": signs flip).
+    changes sign (DEVELOPERS.md, "Track geometry": signs flip).
     """
     site, camera = _site(latitude), _camera()
     model, _ = tdi_model(site, camera, _options())
@@ -197,7 +197,7 @@ def test_smear_sign_north_versus_south_edge(latitude):
     south, _, north = _measure(night, half_r=20)
     smear_south = camera.tdi_rows * 2 * a / (1 + a)
     # 2e-3 px^2 as in the equator test (the first-order drift law is exact on the
-    # meridian, docs/conventions.md; the bow shifts eta by < 0.2 px out of 500).
+    # meridian, DEVELOPERS.md; the bow shifts eta by < 0.2 px out of 500).
     assert north[3] == pytest.approx(s2 + 1 / 6, abs=5e-3)
     assert south[3] == pytest.approx(s2 + 1 / 6 + smear_south**2 / 12, abs=0.01 * smear_south**2)
 
@@ -264,7 +264,7 @@ def test_flux_with_noise_and_cloud():
 
 
 def test_raw_contract_and_overscan(tmp_path):
-    """Files follow the raw data contract (docs/conventions.md); overscan holds each row's bias."""
+    """Files follow the raw data contract (DEVELOPERS.md); overscan holds each row's bias."""
     site, camera = _site(41.65), _camera(n_columns=200)
     options = SimulationOptions(
         start=START,

@@ -514,7 +514,7 @@ class TDIModel:
 
         Gauss-Legendre quadrature of order 16 over the crossing; the track is
         a low-order polynomial in time, so this is exact to ~1e-9 px.  This
-        is where a star's image is centred in the strip (docs/conventions.md, "Track geometry":
+        is where a star's image is centred in the strip (DEVELOPERS.md, "Track geometry":
         astrometry must use it, not the track's apex).
 
         Parameters
@@ -595,7 +595,7 @@ def first_order_smear(
     A star ``eta = column_offset * p`` radians north of the chip's centre
     line drifts at ``(1 - eta tan(phi))`` times the centre rate, so over a
     crossing of ``N`` rows it slips by ``-N * eta * tan(phi)`` pixels
-    (negative: it ends behind its packet, against the drift; docs/conventions.md,
+    (negative: it ends behind its packet, against the drift; DEVELOPERS.md,
     "Track geometry").  In the strip the recorded image is smeared along the scan
     by the magnitude of this slip; stars poleward of the centre lag.
 

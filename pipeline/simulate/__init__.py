@@ -1,7 +1,7 @@
 """Synthetic raw TDI blocks with known truth, for the demo night and the tests.
 
 :func:`simulate_night` builds, in memory, a night of raw TDI blocks that follow
-the raw data contract (docs/conventions.md, "Raw data"), a truth table and a reference
+the raw data contract (DEVELOPERS.md, "Raw data"), a truth table and a reference
 catalogue; :func:`write_night` writes them as FITS and ECSV files.  The CLI
 (``zdrift simulate CONFIG``) and ``python -m pipeline.simulate CONFIG`` read
 the ``site``, ``camera`` and ``simulate`` sections of a YAML config.
@@ -24,7 +24,7 @@ What is simulated
   used as the passband magnitude).
 * **Sky**: ``sky_brightness`` mag/arcsec^2 with a linear ramp over the night,
   integrated over each output row's exposure window, dimmed by the cloud.
-* **Detector** (docs/conventions.md, "TDI detector facts"): 1-D column response (vignetting + random
+* **Detector** (DEVELOPERS.md, "TDI detector facts"): 1-D column response (vignetting + random
   rms) with a few dead/low columns, per-column dark with a few hot columns,
   Poisson noise, cosmic rays (sharp, after the optical image), full-well bleed
   along the columns, read noise, a bias that drifts slowly along the scan plus
@@ -175,7 +175,7 @@ class StarOptions(_Options):
 
 
 class DetectorOptions(_Options):
-    """Camera electronics and detector defects (docs/conventions.md, "TDI detector facts")."""
+    """Camera electronics and detector defects (DEVELOPERS.md, "TDI detector facts")."""
 
     gain: float = Field(2.0, gt=0, description="e-/ADU")
     read_noise: float = Field(5.0, ge=0, description="e- rms")
@@ -634,7 +634,7 @@ def _detect(image, bleed, rows, cols, bias_phase, sky_of_rows, dt, model, option
 
 
 def _block_header(b, t_start, dt_nominal, site, camera, model, options) -> fits.Header:
-    """FITS header of block ``b`` following the raw data contract (docs/conventions.md)."""
+    """FITS header of block ``b`` following the raw data contract (DEVELOPERS.md)."""
     det = options.detector
     n_rows, n_cols, n_os = options.block_rows, camera.n_columns, options.overscan_columns
     date = (model.start + t_start * u.s).utc

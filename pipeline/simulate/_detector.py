@@ -3,7 +3,7 @@
 Private helpers of :mod:`pipeline.simulate`: pure numpy functions over images
 whose axis 0 is the scan axis (strip rows, time) and axis 1 the columns.
 
-The TDI-specific facts used here (docs/conventions.md, "TDI detector facts"): every output
+The TDI-specific facts used here (DEVELOPERS.md, "TDI detector facts"): every output
 pixel of a column has integrated through all detector rows of that column, so
 the flat field and the dark current are 1-D vectors over columns; a hot pixel
 adds its rate times one line time to every output pixel of its column; a

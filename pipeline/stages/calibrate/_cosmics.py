@@ -28,7 +28,7 @@ only where they matter:
 
 TDI does not trail cosmic rays: charge deposited anywhere along a column moves
 with its packet, so hits are as sharp as in a staring exposure
-(docs/conventions.md, "TDI detector facts").
+(DEVELOPERS.md, "TDI detector facts").
 """
 
 from __future__ import annotations

@@ -3,7 +3,7 @@
 In TDI a packet collects charge while it crosses the chip; once it holds a
 full well the excess spills into the packets before and after it in the same
 column, so bleed trails run along the scan axis (rows), never across it
-(docs/conventions.md, "TDI detector facts").  The trail is at or near full well and ends in a partly
+(DEVELOPERS.md, "TDI detector facts").  The trail is at or near full well and ends in a partly
 filled pixel; the saturated star's unsaturated neighbours across the scan are
 not trustworthy either (common practice: grow the mask by a pixel).
 """

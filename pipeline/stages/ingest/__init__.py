@@ -1,6 +1,6 @@
 """Ingest: check the night's raw blocks and index their rows in time.
 
-Raw blocks are FITS files of consecutive TDI rows (docs/conventions.md,
+Raw blocks are FITS files of consecutive TDI rows (DEVELOPERS.md,
 "Raw data").
 Ingest sees each block's header and a summary of its pixels (the runner
 reads every pixel once).  It rejects broken blocks with a one-line reason

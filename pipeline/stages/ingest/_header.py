@@ -1,6 +1,6 @@
 """Raw block headers: keyword names, checks and the parsed :class:`BlockInfo`.
 
-The raw data contract (docs/conventions.md, "Raw data") names the keywords a raw block
+The raw data contract (DEVELOPERS.md, "Raw data") names the keywords a raw block
 must carry.  Real cameras spell them differently or omit some, so every
 keyword is looked up through a map from our canonical name to the camera's
 keyword, and a missing keyword may be replaced by a default from the config.
