@@ -4,8 +4,7 @@ Thin by design: it parses arguments, loads the config, sets up logging and
 progress display, and calls the library.  Every subcommand takes a config
 file and ``--set dotted.key=value`` overrides.
 
-Exit status: 0 success; 1 a unit failed or was blocked (the summary lists
-them); 2 bad command line or config; 3 another run holds the night's lock.
+Exit status (also in ``zdrift --help``): see :data:`EPILOG`.
 ``-v`` (more messages) goes before or after the subcommand.
 
 Examples
@@ -19,11 +18,13 @@ Examples
     zdrift run night.yaml --stage calibrate --stretches 0,3-5 --force
     zdrift run night.yaml --from calibrate --set stages.calibrate.cosmic_significance=5
     zdrift status night.yaml
+    zdrift status night.yaml --verify            # also check every product's SHA-256
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -31,23 +32,30 @@ from pathlib import Path
 import pipeline
 from pipeline._offline import astropy_offline
 from pipeline.config import Config, load_config
-from pipeline.exceptions import ConfigError, RunLockedError
+from pipeline.exceptions import ConfigError, RunLockedError, RunStartError
 from pipeline.runner import LOG_NAME, night_dir, night_status, parse_stretches, run_night
 from pipeline.runner._logging import TextProgress, cli_logging
 
 __all__ = ["main"]
 
-EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_LOCKED = 0, 1, 2, 3
+EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_LOCKED, EXIT_CANNOT_START, EXIT_INCOMPLETE = range(6)
 
 #: The example of ``--set`` in the help; a key that exists (a test loads it).
 SET_EXAMPLE = "stages.calibrate.cosmic_significance=5"
 
+#: The exit status of every command, as ``zdrift --help`` prints it.
 EPILOG = f"""\
 exit status:
-  {EXIT_OK}  success
-  {EXIT_FAILED}  a unit failed or was blocked (the summary lists them)
+  {EXIT_OK}  success (status: every product is done)
+  {EXIT_FAILED}  run: a unit failed or was blocked, a stage reported a problem with its
+     input, or a damaged product was found (and recomputed);
+     status: a unit failed or is damaged, or a stage reported a problem
   {EXIT_USAGE}  bad command line or config
   {EXIT_LOCKED}  another run holds the night's lock
+  {EXIT_CANNOT_START}  run: cannot start, the night's output folder cannot be written (a full
+     disk, no permission); nothing was changed
+  {EXIT_INCOMPLETE}  status: nothing failed, but some products are stale or missing
+     (`zdrift run` brings them up to date)
 """
 
 
@@ -106,7 +114,19 @@ def _parser() -> argparse.ArgumentParser:
         help="stretch indices for per-stretch stages, e.g. 0,3-5 (default all)",
     )
     run.add_argument("--force", action="store_true", help="recompute even up-to-date products")
-    command("status", "show which products exist, which are stale and which failed")
+    run.add_argument(
+        "--verify",
+        action="store_true",
+        help="first check every product against the SHA-256 its provenance records and "
+        "recompute the damaged ones (reads every product)",
+    )
+    status = command("status", "show which products exist, which are stale and which failed")
+    status.add_argument(
+        "--verify",
+        action="store_true",
+        help="also check every product file against the SHA-256 its provenance records "
+        "(reads every product); `zdrift run --verify` recomputes the damaged ones",
+    )
     command("config", "print the fully resolved config as YAML")
     plan = command("plan", "print what the site and camera imply (scale, line time, smear)")
     plan.add_argument(
@@ -131,7 +151,13 @@ def _cmd_run(args: argparse.Namespace, config: Config) -> int:
     if args.stage is not None and args.to_stage is not None:
         print("zdrift run: --to cannot be combined with --stage", file=sys.stderr)
         return EXIT_USAGE
-    with cli_logging(args.verbose, night_dir(config) / LOG_NAME):
+    stack = contextlib.ExitStack()
+    try:  # the night's folder may be on a full or read-only disk
+        stack.enter_context(cli_logging(args.verbose, night_dir(config) / LOG_NAME))
+    except OSError as exc:
+        print(f"zdrift run: cannot write the night's log: {exc}", file=sys.stderr)
+        return EXIT_CANNOT_START
+    with stack:
         try:
             report = run_night(
                 config,
@@ -141,10 +167,14 @@ def _cmd_run(args: argparse.Namespace, config: Config) -> int:
                 stretches=args.stretches,
                 force=args.force,
                 progress=TextProgress(),
+                verify=args.verify,
             )
         except RunLockedError as exc:
             print(f"zdrift run: {exc}", file=sys.stderr)
             return EXIT_LOCKED
+        except RunStartError as exc:
+            print(f"zdrift run: {exc}", file=sys.stderr)
+            return EXIT_CANNOT_START
         except ValueError as exc:  # e.g. unknown stage name
             print(f"zdrift run: {exc}", file=sys.stderr)
             return EXIT_USAGE
@@ -156,8 +186,11 @@ def _cmd_run(args: argparse.Namespace, config: Config) -> int:
 
 def _cmd_status(args: argparse.Namespace, config: Config) -> int:
     with cli_logging(args.verbose):
-        print(night_status(config).format())
-    return EXIT_OK
+        status = night_status(config, verify=args.verify)
+    print(status.format())
+    if status.has_problems:
+        return EXIT_FAILED
+    return EXIT_OK if status.complete else EXIT_INCOMPLETE
 
 
 def _cmd_config(args: argparse.Namespace, config: Config) -> int:

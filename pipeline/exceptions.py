@@ -8,12 +8,14 @@ conditions warn with a subclass of :class:`PipelineWarning` and carry on.
 __all__ = [
     "CalibrationWarning",
     "ConfigError",
+    "DamagedProductError",
     "GeometryWarning",
     "IngestError",
     "PipelineError",
     "PipelineWarning",
     "RectifyWarning",
     "RunLockedError",
+    "RunStartError",
     "StageError",
     "StaleLockWarning",
 ]
@@ -40,6 +42,25 @@ class StageError(PipelineError):
 
 class RunLockedError(PipelineError):
     """Another live run holds the lock on the output folder."""
+
+
+class RunStartError(PipelineError):
+    """A run cannot start: its output folder or lock cannot be written (e.g. a full disk)."""
+
+
+class DamagedProductError(PipelineError):
+    """A stored product cannot be read, or its content differs from its recorded SHA-256.
+
+    ``path`` is the product file, ``reason`` says what is wrong with it.
+    """
+
+    def __init__(self, path, reason: str):
+        super().__init__(f"{path}: {reason}")
+        self.path = str(path)
+        self.reason = reason
+
+    def __reduce__(self):
+        return type(self), (self.path, self.reason)
 
 
 class PipelineWarning(UserWarning):

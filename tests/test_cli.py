@@ -74,8 +74,8 @@ def test_run_status_and_reruns(toy_file: Path, capsys) -> None:
 
     assert main(["status", str(toy_file)]) == 0
     lines = capsys.readouterr().out.splitlines()
-    assert lines[1].split() == ["stage", "scope", "done", "stale", "missing", "failed"]
-    assert lines[3].split() == ["scale", "stretch", "4", "0", "0", "0"]
+    assert lines[1].split() == ["stage", "scope", "done", "stale", "missing", "failed", "damaged"]
+    assert lines[3].split() == ["scale", "stretch", "4", "0", "0", "0", "0"]
 
     assert main(["run", str(toy_file), "--stage", "smooth", "--force", "--stretches", "1-2"]) == 0
     assert "2 units ran, 0 up to date" in capsys.readouterr().out
@@ -83,7 +83,7 @@ def test_run_status_and_reruns(toy_file: Path, capsys) -> None:
     assert main(["run", str(toy_file), "--stage", "smooth", "--set", "stages.smooth.width=5"]) == 0
     out = capsys.readouterr().out
     assert "4 units ran" in out and "rerun with --from total" in out
-    assert main(["status", str(toy_file), "--set", "stages.smooth.width=5"]) == 0
+    assert main(["status", str(toy_file), "--set", "stages.smooth.width=5"]) == 5  # stale
     assert "total stale: night: inputs changed: smooth" in capsys.readouterr().out
 
 

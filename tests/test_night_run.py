@@ -309,7 +309,7 @@ def test_columns_can_come_from_another_night(tmp_path, capsys):
     # The file's content is an input: changing it makes the columns stale.
     reference["flat"][0] *= 1.01
     reference.write(solved, overwrite=True)
-    assert main(["status", str(second)]) == 0
+    assert main(["status", str(second)]) == 5  # stale: nothing failed, work left
     assert "columns stale: night: inputs changed: flat_file" in capsys.readouterr().out
     # A missing file blocks the stage and says which option names it.
     solved.unlink()
@@ -384,7 +384,7 @@ def test_a_failed_stretch_leaves_the_flat_and_the_other_stretches_calibrated(
     # Fixed: column_stats/s0001 reruns, which makes the columns stale: solved on both.
     monkeypatch.setattr(column_stats, "stretch_rows_for_stage", real)
     assert main(["run", str(config), "--to", "columns"]) == 0
-    assert main(["status", str(config)]) == 0
+    assert main(["status", str(config)]) == 5  # calibrate is stale
     out = capsys.readouterr().out
     assert "problem" not in out  # neither in the run summary nor in the status
     assert "calibrate stale: s0000-s0001: inputs changed: columns" in out

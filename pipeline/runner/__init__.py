@@ -37,9 +37,9 @@ from pipeline._offline import astropy_offline
 from pipeline.config import Config
 from pipeline.runner._access import open_product, read_image
 from pipeline.runner._executors import Executor, make_executor
-from pipeline.runner._lock import RunLock
+from pipeline.runner._lock import BROKEN_LOCK_AGE, RunLock, pid_alive, read_lock
 from pipeline.runner._night import NightStore, format_ids, night_dir, unit_id
-from pipeline.runner._store import clear_failure, write_failure
+from pipeline.runner._store import clear_failure, mark_damaged, write_failure
 from pipeline.runner._unit import UnitOutcome, execute_unit, failed_outcome
 from pipeline.stages.base import Stage
 
@@ -51,6 +51,7 @@ __all__ = [
     "RunReport",
     "StageStatus",
     "UnitResult",
+    "describe_lock",
     "format_ids",
     "night_dir",
     "night_status",
@@ -68,6 +69,9 @@ log = logging.getLogger(__name__)
 LOCK_NAME = "_lock.json"
 #: Name of the night's log file (written by the command line).
 LOG_NAME = "zdrift.log"
+
+#: How often one run recomputes damaged products it finds before giving up.
+MAX_REPAIRS = 3
 
 #: ``progress(label, done, total)``: called as units finish.
 Progress = Callable[[str, int, int], None]
@@ -158,11 +162,14 @@ class RunReport:
     night: str
     results: list[UnitResult] = field(default_factory=list)
     stale_downstream: dict[str, list[str]] = field(default_factory=dict)
+    #: One line per damaged product found (and recomputed) during the run.
+    damaged: list[str] = field(default_factory=list)
 
     @property
     def ok(self) -> bool:
-        """True if no unit failed or was blocked and no stage reported a problem."""
-        return not self.problems and not self.flagged
+        """True if no unit failed or was blocked, no stage reported a problem and
+        no product was found damaged."""
+        return not self.problems and not self.flagged and not self.damaged
 
     @property
     def problems(self) -> list[UnitResult]:
@@ -187,7 +194,11 @@ class RunReport:
         n_problems = sum(len(r.problems) for r in self.results)
         if n_problems:
             summary += f", {n_problems} problem{'s' if n_problems > 1 else ''} in the input"
+        if self.damaged:
+            n_damaged = len(self.damaged)
+            summary += f", {n_damaged} damaged product{'s' if n_damaged > 1 else ''}"
         lines = [summary]
+        lines.extend(f"  damaged: {line}" for line in self.damaged)
         for result in sorted(self.problems, key=lambda r: (r.status, r.stage, r.unit)):
             lines.append(f"  {result.status}: {result.stage}/{result.unit}: {result.reason}")
         for result in self.flagged:
@@ -204,7 +215,8 @@ class RunReport:
 class StageStatus:
     """State of every unit of one stage: ``unit -> (state, reason)``.
 
-    States: ``'done'``, ``'stale'``, ``'missing'``, ``'failed'``, ``'orphan'``
+    States: ``'done'``, ``'stale'``, ``'missing'``, ``'failed'``, ``'damaged'``
+    (a product file unreadable or changed since it was written), ``'orphan'``
     (a stretch folder outside the current stretch plan).  ``problems`` holds
     the problems with the input that the stage reported, per unit that has any.
     """
@@ -227,6 +239,22 @@ class NightStatus:
     folder: Path
     n_stretches: int | None
     stages: list[StageStatus]
+    #: The run lock, described (a live run, a stale or broken lock), or None.
+    lock: str | None = None
+
+    def count(self, *states: str) -> int:
+        """Number of units in any of ``states``."""
+        return sum(len(stage.ids(state)) for stage in self.stages for state in states)
+
+    @property
+    def has_problems(self) -> bool:
+        """True if a unit failed or is damaged, or a stage reported problems."""
+        return bool(self.count("failed", "damaged") or any(s.problems for s in self.stages))
+
+    @property
+    def complete(self) -> bool:
+        """True if every unit of every stage is done (nothing stale, missing or worse)."""
+        return all(state == "done" for s in self.stages for state, _ in s.units.values())
 
     def format(self) -> str:
         """A table of unit counts per stage, then the non-done units with reasons."""
@@ -234,7 +262,7 @@ class NightStatus:
             "no stretch plan yet" if self.n_stretches is None else (f"{self.n_stretches} stretches")
         )
         lines = [f"night {self.night} ({plan}) in {self.folder}"]
-        states = ("done", "stale", "missing", "failed")
+        states = ("done", "stale", "missing", "failed", "damaged")
         lines.append(f"  {'stage':<14}{'scope':<9}" + "".join(f"{s:>8}" for s in states))
         for stage in self.stages:
             counts = "".join(f"{len(stage.ids(s)):>8}" for s in states)
@@ -249,6 +277,8 @@ class NightStatus:
         for stage in self.stages:
             for unit, problems in stage.problems.items():
                 lines.extend(f"  {stage.name} problem: {unit}: {p}" for p in problems)
+        if self.lock is not None:
+            lines.append(f"lock: {self.lock}")
         return "\n".join(lines)
 
 
@@ -264,6 +294,7 @@ def run_night(
     stretches: Iterable[int] | None = None,
     force: bool = False,
     progress: Progress | None = None,
+    verify: bool = False,
 ) -> RunReport:
     """Run the night's stages, skipping units that are up to date.
 
@@ -283,6 +314,12 @@ def run_night(
         Recompute selected units even if they are up to date.
     progress : callable, optional
         ``progress(stage_name, done, total)``; default :func:`no_progress`.
+    verify : bool
+        First check every stored product against the SHA-256 its provenance
+        records (reads them all).  Without it, only the products a unit
+        reads are checked, as it reads them.  Either way a damaged product
+        is reported (``report.damaged``), taken out of use and recomputed,
+        with what depends on it.
 
     Returns
     -------
@@ -314,19 +351,88 @@ def _run_night(config, stage, from_stage, to_stage, stretches, force, progress) 
     progress = progress or no_progress
     night = NightStore(config)
     report = RunReport(config.night.name)
-    with RunLock(night.root / LOCK_NAME), make_executor(config.run) as executor:
+    results: dict[tuple[str, str], UnitResult] = {}
+    lock = RunLock(night.root / LOCK_NAME)
+    with lock, make_executor(config.run, config.camera().n_columns) as executor:
+        if verify:
+            night.find_damage()
+        plan = _with_recut_upstream(night, selected)
         log.info(
             "night %s: stages %s, executor %s",
             config.night.name,
-            ", ".join(s.name for s in selected),
+            ", ".join(s.name for s in plan),
             config.run.executor,
         )
-        for current in selected:
-            report.results.extend(_run_stage(night, current, wanted, force, executor, progress))
+        position, repairs, forced = 0, 0, set()
+        while True:
+            damaged = _take_damaged_out_of_use(night, report)
+            if damaged and repairs < MAX_REPAIRS:
+                repairs += 1
+                plan[position:position] = _repair_stages(night, plan, position, damaged)
+            if position == len(plan):
+                break
+            current = plan[position]
+            position += 1
+            run_force = force and current in selected and current.name not in forced
+            forced.add(current.name)
+            for result in _run_stage(
+                night, current, wanted, run_force, executor, progress, (lock.path, lock.token)
+            ):
+                results[(result.stage, result.unit)] = result
             night.refresh()
+        report.results = list(results.values())
         report.stale_downstream = _stale_downstream(night, selected)
     log.info("%s", report.format())
     return report
+
+
+def _with_recut_upstream(night: NightStore, selected: Sequence[Stage]) -> list[Stage]:
+    """``selected``, preceded by the stages whose per-stretch products were cut for other rows.
+
+    After a change of ``run.stretch_rows`` or ``run.overlap_rows``, the
+    per-stretch products of the stages before the first selected one cover
+    the old stretches, which the selected stages cannot use: those stages
+    are recomputed first.
+    """
+    graph = list(night.config.graph)
+    first = graph.index(selected[0])
+    recut = [s for s in graph[:first] if night.cut_for_other_rows(s)]
+    if not recut:
+        return list(selected)
+    start = graph.index(recut[0])
+    log.warning(
+        "the products of %s were cut for other stretch rows (run.stretch_rows or "
+        "run.overlap_rows changed): running from %s",
+        ", ".join(s.name for s in recut),
+        recut[0].name,
+    )
+    return graph[start:first] + list(selected)
+
+
+def _take_damaged_out_of_use(night: NightStore, report: RunReport) -> list[str]:
+    """Move the sidecars of the damaged units found so far aside; return their stages."""
+    found = []
+    for (name, unit), reason in list(night.damaged.items()):
+        stage = night.stages[name]
+        mark_damaged(night.unit_dir(stage, unit), reason)
+        log.error("damaged product in %s/%s: %s; recomputing it", name, unit, reason)
+        report.damaged.append(f"{name}/{unit}: {reason} (recomputed)")
+        found.append(name)
+    night.damaged.clear()
+    if found:
+        night.refresh()
+    return found
+
+
+def _repair_stages(
+    night: NightStore, plan: list[Stage], position: int, damaged: list[str]
+) -> list[Stage]:
+    """The stages to run again, from the earliest damaged one to the one just run."""
+    graph = list(night.config.graph)
+    first = min(graph.index(night.stages[name]) for name in damaged)
+    # found before anything ran: catch up to the first planned stage
+    last = graph.index(plan[position - 1]) if position else graph.index(plan[0]) - 1
+    return graph[first : last + 1]
 
 
 def _run_stage(
@@ -336,6 +442,7 @@ def _run_stage(
     force: bool,
     executor: Executor,
     progress: Progress,
+    lock: tuple[Path, str] | None = None,
 ) -> list[UnitResult]:
     if stage.scope == "stretch" and night.index is None:
         return [UnitResult(stage.name, "*", "blocked", night.no_index_reason())]
@@ -378,7 +485,7 @@ def _run_stage(
                 format_ids(skipped),
             )
         clear_failure(night.unit_dir(stage, unit))
-        tasks.append(night.task(stage, stretch, specs, hashes, executor.remote))
+        tasks.append(night.task(stage, stretch, specs, hashes, executor.remote, lock))
     progress(stage.name, 0, len(tasks))
     outcomes = executor.map(execute_unit, tasks, on_error=failed_outcome)
     for done, outcome in enumerate(outcomes, start=1):
@@ -395,6 +502,8 @@ def _record_outcome(
             logging.getLogger(name).log(level, "[%s/%s] %s", outcome.stage, outcome.unit, message)
     for text in outcome.warnings:
         log.warning("%s/%s: %s", outcome.stage, outcome.unit, text)
+    for path, reason in outcome.damaged:
+        _note_damage(night, Path(path), reason)
     if outcome.ok:
         log.info("%s/%s done in %.2f s", outcome.stage, outcome.unit, outcome.seconds)
         if outcome.problems:
@@ -428,6 +537,14 @@ def _record_outcome(
     return UnitResult(outcome.stage, outcome.unit, "failed", outcome.error or "", outcome.seconds)
 
 
+def _note_damage(night: NightStore, path: Path, reason: str) -> None:
+    """Remember a damaged product file of the store (its unit is taken out of use)."""
+    unit_dir = path.parent
+    stage = night.stages.get(unit_dir.parent.name)
+    if stage is not None and unit_dir.parent.parent.resolve() == night.root.resolve():
+        night.damaged[(stage.name, unit_dir.name)] = f"{path.name} {reason}"
+
+
 def _stale_downstream(night: NightStore, selected: Sequence[Stage]) -> dict[str, list[str]]:
     graph = night.config.graph
     first = graph.index(selected[0])
@@ -441,9 +558,19 @@ def _stale_downstream(night: NightStore, selected: Sequence[Stage]) -> dict[str,
     return stale
 
 
-def night_status(config: Config) -> NightStatus:
-    """The state of every unit of the night, stage by stage (reads only)."""
-    night = NightStore(config)
+def night_status(config: Config, *, verify: bool = False) -> NightStatus:
+    """The state of every unit of the night, stage by stage (reads only).
+
+    Parameters
+    ----------
+    config : Config
+        The resolved config.
+    verify : bool
+        Also check every product file against the SHA-256 its provenance
+        records (reads every product); a mismatch shows the unit as
+        ``'damaged'``.  Otherwise only existence and sizes are checked.
+    """
+    night = NightStore(config, verify=verify)
     stages = []
     for stage in config.graph:
         status = StageStatus(stage.name, stage.scope)
@@ -460,4 +587,24 @@ def night_status(config: Config) -> NightStatus:
                     status.units[path.name] = ("orphan", "not in the current stretch plan")
         stages.append(status)
     n_stretches = len(night.stretches) if night.index is not None else None
-    return NightStatus(config.night.name, night.root, n_stretches, stages)
+    lock = describe_lock(night.root / LOCK_NAME)
+    return NightStatus(config.night.name, night.root, n_stretches, stages, lock)
+
+
+def describe_lock(path: Path) -> str | None:
+    """One line on the run lock at ``path`` (a run going on, a stale or broken lock), or None."""
+    holder = read_lock(path)
+    if holder is None:
+        return None
+    if not isinstance(holder, dict):
+        return (
+            f"{path} is broken (empty or not a JSON object); the next run takes it over "
+            f"(after {BROKEN_LOCK_AGE:g} s) with a warning"
+        )
+    who = f"process {holder.get('pid')} on {holder.get('host')}, started {holder.get('started')}"
+    if holder.get("host") != socket.gethostname():
+        return f"held by {who} (another host: cannot tell whether it still runs)"
+    pid = holder.get("pid")
+    if isinstance(pid, int) and pid_alive(pid):
+        return f"a run is going on: {who} (states may change while it runs)"
+    return f"stale: {who}, which no longer exists; the next run takes it over"

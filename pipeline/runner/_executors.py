@@ -16,14 +16,35 @@ stopping the batch.
 * ``dask``: a :class:`distributed.Client` connected to ``run.scheduler``, or,
   without a scheduler address, to a ``distributed.LocalCluster`` of
   ``run.workers`` processes started for the run.  Workers must see the same
-  file system as this process (they read inputs and write products).
+  file system as this process (they read inputs and write products).  The
+  cluster started for the run listens on the loopback interface only, serves
+  no dashboard and no HTTP routes (its HTTP listener takes a random loopback
+  port and answers nothing), and uses a per-run TLS certificate when the
+  ``cryptography`` package is installed (``Security.temporary()``); without
+  it, any local user could submit work to it while it runs.
+
+Workers of the local pool and of the dask cluster started for the run end
+when the run that started them dies (even by ``kill -9``): on Linux through
+the parent-death signal (``prctl(PR_SET_PDEATHSIG)``), everywhere through a
+watchdog thread that notices the change of parent process within
+:data:`WATCH_INTERVAL` seconds.
+
+Without ``run.workers``, the number of workers is the number of cores,
+lowered so that the workers fit the memory available (see
+:func:`default_workers`); the choice is logged.
 """
 
 from __future__ import annotations
 
+import ctypes
 import logging
 import multiprocessing
 import os
+import pickle
+import signal
+import sys
+import threading
+import time
 import uuid
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import ProcessPoolExecutor, as_completed
@@ -32,7 +53,7 @@ from typing import Any
 
 from pipeline.config import RunSection
 
-__all__ = ["Executor", "make_executor"]
+__all__ = ["Executor", "available_memory", "default_workers", "make_executor", "worker_memory"]
 
 log = logging.getLogger(__name__)
 
@@ -42,6 +63,56 @@ OnError = Callable[[Any, str], Outcome]
 _SPAWN = multiprocessing.get_context("spawn")
 _BROKEN = object()  # marker: the task's pool broke before it reported
 _DIED = "its worker process died (killed, or out of memory); see the system log"
+
+#: Seconds between two checks of a worker's watchdog for the death of its run.
+WATCH_INTERVAL = 0.2
+_PR_SET_PDEATHSIG = 1  # from <linux/prctl.h>
+
+
+def _watch_parent(parent_pid: int) -> None:
+    while True:
+        time.sleep(WATCH_INTERVAL)
+        if os.getppid() != parent_pid:  # the run died: this process was re-parented
+            os._exit(1)
+
+
+def end_with_parent(parent_pid: int, death_signal: bool = True) -> None:
+    """Make this (worker) process end when its parent, the run, dies.
+
+    Parameters
+    ----------
+    parent_pid : int
+        Process id of the run that started this process.
+    death_signal : bool
+        Also ask Linux to send SIGKILL at the parent's death (valid only when
+        the thread that started this process lives as long as the run).
+    """
+    if death_signal and sys.platform.startswith("linux"):
+        try:
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(_PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
+        except (OSError, AttributeError):  # no libc prctl: the watchdog still works
+            pass
+    if os.name != "posix":  # the parent id of a process does not change there
+        return
+    if os.getppid() != parent_pid:  # the run died while this process started
+        os._exit(1)
+    threading.Thread(
+        target=_watch_parent, args=(parent_pid,), name="zdrift-watchdog", daemon=True
+    ).start()
+
+
+def _unpicklable(task: Any) -> str | None:
+    """Why ``task`` cannot be sent to another process, or None if it can."""
+    try:
+        pickle.dumps(task)
+    except Exception as exc:
+        return (
+            f"the unit cannot be sent to a worker process ({type(exc).__name__}: {exc}); a "
+            "stage's run function and options class must be defined at module level of an "
+            "importable module, and its options must hold plain values"
+        )
+    return None
 
 
 class Executor:
@@ -90,10 +161,23 @@ class LocalPoolExecutor(Executor):
                 yield on_error(task, _DIED) if outcome is _BROKEN else outcome
 
     def _batch(self, fn, tasks, on_error) -> Iterator[tuple[Any, Outcome]]:
+        sendable = []
+        for task in tasks:
+            reason = _unpicklable(task)
+            if reason is None:
+                sendable.append(task)
+            else:
+                yield task, on_error(task, reason)
+        tasks = sendable
         if not tasks:
             return
         if self._pool is None:
-            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=_SPAWN)
+            self._pool = ProcessPoolExecutor(
+                max_workers=self.workers,
+                mp_context=_SPAWN,
+                initializer=end_with_parent,
+                initargs=(os.getpid(),),
+            )
             log.debug("started a local pool of %d worker processes", self.workers)
         futures = {self._pool.submit(fn, task): task for task in tasks}
         broken = False
@@ -131,16 +215,16 @@ class DaskExecutor(Executor):
 
         if self._client is None:
             if self.scheduler is None:
-                self._cluster = distributed.LocalCluster(
-                    n_workers=self.workers,
-                    threads_per_worker=1,
-                    processes=True,
-                    dashboard_address=None,
-                )
+                self._cluster = start_local_cluster(self.workers)
                 address = self._cluster.scheduler_address
+                security = self._cluster.security
+                self._client = distributed.Client(address, set_as_default=False, security=security)
+                from pipeline.runner._daskplugin import EndWithRun
+
+                self._client.register_plugin(EndWithRun(os.getpid()))
             else:
                 address = self.scheduler
-            self._client = distributed.Client(address, set_as_default=False)
+                self._client = distributed.Client(address, set_as_default=False)
             log.info("dask scheduler %s", address)
         return self._client
 
@@ -151,10 +235,14 @@ class DaskExecutor(Executor):
 
         client = self._connect()
         batch = uuid.uuid4().hex[:8]
-        futures = {
-            client.submit(fn, task, pure=False, key=f"{task.stage.name}-{task.unit}-{batch}"): task
-            for task in tasks
-        }
+        futures = {}
+        for task in tasks:
+            reason = _unpicklable(task)
+            if reason is not None:
+                yield on_error(task, reason)
+                continue
+            key = f"{task.stage.name}-{task.unit}-{batch}"
+            futures[client.submit(fn, task, pure=False, key=key)] = task
         for future in distributed.as_completed(list(futures), loop=client.loop):
             try:
                 yield future.result()
@@ -170,11 +258,101 @@ class DaskExecutor(Executor):
             self._cluster = None
 
 
-def make_executor(run: RunSection) -> Executor:
-    """The executor the ``run`` section asks for (workers start on first use)."""
-    workers = run.workers or os.cpu_count() or 1
+def start_local_cluster(workers: int):
+    """A ``distributed.LocalCluster`` for one run: loopback only, no HTTP routes, TLS if possible.
+
+    Returns the cluster; its ``security`` is the per-run TLS setting
+    (``Security.temporary()``, which needs the ``cryptography`` package), or
+    None without it.
+    """
+    import dask
+    import distributed
+
+    try:
+        security = distributed.security.Security.temporary()
+    except ImportError:
+        security = None
+        log.info(
+            "dask: no per-run TLS certificate (install 'cryptography' for one); the run's "
+            "scheduler listens on 127.0.0.1 without authentication"
+        )
+    no_routes = {"distributed.scheduler.http.routes": [], "distributed.worker.http.routes": []}
+    with dask.config.set(no_routes):
+        cluster = distributed.LocalCluster(
+            n_workers=workers,
+            threads_per_worker=1,
+            processes=True,
+            host="127.0.0.1",
+            protocol="tls://" if security is not None else "tcp://",
+            security=security,
+            dashboard_address="127.0.0.1:0",  # a random loopback port, not 8787
+            scheduler_kwargs={"dashboard": False},
+        )
+    cluster.security = security
+    return cluster
+
+
+def available_memory() -> int | None:
+    """Bytes of memory available to new processes (Linux ``MemAvailable``), or None."""
+    try:
+        with open("/proc/meminfo", encoding="ascii") as stream:
+            for line in stream:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    try:
+        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (AttributeError, OSError, ValueError):
+        return None
+
+
+def worker_memory(stretch_rows: int, overlap_rows: int, n_columns: int) -> float:
+    """Estimated peak memory of one worker, bytes.
+
+    About 0.25 GB for the interpreter and libraries plus 45 bytes per pixel
+    of a stretch with its margins (the calibrate and rectify stages hold a
+    few float32/float64 planes of it at once); measured on the demo night.
+    """
+    return 0.25e9 + 45.0 * (stretch_rows + 2 * overlap_rows) * n_columns
+
+
+def default_workers(run: RunSection, n_columns: int | None) -> int:
+    """Workers when ``run.workers`` is unset: one per core, as many as fit the memory."""
+    cores = os.cpu_count() or 1
+    memory = available_memory()
+    if n_columns is None or memory is None:
+        log.info("run.workers not set: %d workers (one per core)", cores)
+        return cores
+    need = worker_memory(run.stretch_rows, run.overlap_rows, n_columns)
+    fit = int(memory // need)
+    workers = max(1, min(cores, fit))
+    log.info(
+        "run.workers not set: %d worker%s (%d cores, %.1f GB available, ~%.2f GB per worker)",
+        workers,
+        "s" if workers > 1 else "",
+        cores,
+        memory / 1e9,
+        need / 1e9,
+    )
+    if fit < 1:
+        log.warning(
+            "one worker needs ~%.2f GB but only %.1f GB are available: lower run.stretch_rows "
+            "or free memory",
+            need / 1e9,
+            memory / 1e9,
+        )
+    return workers
+
+
+def make_executor(run: RunSection, n_columns: int | None = None) -> Executor:
+    """The executor the ``run`` section asks for (workers start on first use).
+
+    ``n_columns`` (the camera's) sizes the default number of workers.
+    """
     if run.executor == "serial":
         return Executor()
+    workers = run.workers or default_workers(run, n_columns)
     if run.executor == "dask":
         return DaskExecutor(run.scheduler, workers)
     return LocalPoolExecutor(workers)

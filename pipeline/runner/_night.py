@@ -3,8 +3,15 @@
 :class:`NightStore` answers the runner's questions about a night: which
 units exist (the stretch plan comes from the block index), what each unit's
 config hash and input hashes are now, how to load its inputs, and whether it
-is done, stale, missing or failed.  It reads only; writing is the unit
-runner's job (:mod:`pipeline.runner._unit`).
+is done, stale, missing, failed or damaged.  It reads only; writing is the
+unit runner's job (:mod:`pipeline.runner._unit`).
+
+A unit is *damaged* when one of its product files cannot be read or no
+longer has the SHA-256 its sidecar records.  Workers find this as they read
+their inputs (and the runner takes the unit out of use, see
+:func:`pipeline.runner._store.mark_damaged`); ``NightStore(config,
+verify=True)`` checks every product's content up front (``zdrift status
+--verify``).
 """
 
 from __future__ import annotations
@@ -16,6 +23,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.config import Config
+from pipeline.exceptions import DamagedProductError
 from pipeline.runner._rawio import (
     block_index_rows,
     blocks_fingerprint,
@@ -23,7 +31,16 @@ from pipeline.runner._rawio import (
     overlapping_blocks,
     raw_files_fingerprint,
 )
-from pipeline.runner._store import file_digest, hash_json, read_failure, read_product, read_sidecar
+from pipeline.runner._store import (
+    file_digest,
+    hash_json,
+    read_damage,
+    read_failure,
+    read_product,
+    read_sidecar,
+    verify_product,
+    verify_unit,
+)
 from pipeline.runner._unit import InputSpec, UnitTask
 from pipeline.stages.base import (
     BLOCK_INDEX,
@@ -84,10 +101,25 @@ def _by_reason(missing: dict[str, str]) -> dict[str, list[str]]:
 
 
 class NightStore:
-    """The product store of one night, seen through the current config."""
+    """The product store of one night, seen through the current config.
 
-    def __init__(self, config: Config):
+    Parameters
+    ----------
+    config : Config
+        The resolved config.
+    verify : bool
+        Check every product file's SHA-256 against its sidecar when the unit
+        is first looked at (costs a read of every product); otherwise only
+        the products a unit reads are checked, by the worker that reads them.
+    """
+
+    def __init__(self, config: Config, *, verify: bool = False):
         self.config = config
+        self.verify = verify
+        #: ``(stage name, unit) -> reason`` of damaged units found by this process
+        #: (units already taken out of use have a ``_damaged.json`` record instead).
+        self.damaged: dict[tuple[str, str], str] = {}
+        self._verified: set[tuple[str, str]] = set()
         self.root = night_dir(config)
         self.raw_dir = Path(config.night.raw_dir)
         self.stages = {stage.name: stage for stage in config.graph}
@@ -111,7 +143,19 @@ class NightStore:
         if record is not None and BLOCK_INDEX in record["products"]:
             folder = self.unit_dir(self.row_stage, NIGHT)
             entry = record["products"][BLOCK_INDEX]
-            self.index = read_product(folder / entry["file"], entry)
+            try:
+                verify_product(folder / entry["file"], entry)
+                self.index = read_product(folder / entry["file"], entry)
+            except DamagedProductError as exc:
+                self.damaged[(self.row_stage.name, NIGHT)] = str(exc)
+                self._states.clear()
+                record = None
+            except Exception as exc:  # hashes right but does not parse
+                reason = f"{folder / entry['file']}: cannot be read ({type(exc).__name__}: {exc})"
+                self.damaged[(self.row_stage.name, NIGHT)] = reason
+                self._states.clear()
+                record = None
+        if self.index is not None:
             run = self.config.run
             rows = block_index_rows(self.index)
             segments = segment_rows(self.index)
@@ -130,11 +174,62 @@ class NightStore:
             self._sidecars[key] = read_sidecar(self.unit_dir(stage, unit))
         return self._sidecars[key]
 
+    def damage(self, stage: Stage, unit: str) -> str | None:
+        """Why the unit's products cannot be used as recorded, or None if they can."""
+        key = (stage.name, unit)
+        if key in self.damaged:
+            return self.damaged[key]
+        reason = read_damage(self.unit_dir(stage, unit))  # already taken out of use
+        if reason is not None or not self.verify or key in self._verified:
+            return reason
+        self._verified.add(key)
+        record = self.sidecar(stage, unit)
+        try:
+            if record is not None:
+                verify_unit(self.unit_dir(stage, unit), record)
+        except DamagedProductError as exc:
+            self.damaged[key] = str(exc)
+            return self.damaged[key]
+        return None
+
+    def find_damage(self) -> dict[tuple[str, str], str]:
+        """Check every product of every unit now; return (and keep) the damaged units."""
+        verify, self.verify = self.verify, True
+        try:
+            for stage in self.config.graph:
+                for stretch in self.units(stage):
+                    self.damage(stage, unit_id(stretch))
+        finally:
+            self.verify = verify
+        return dict(self.damaged)
+
     def usable(self, stage: Stage, unit: str) -> dict[str, Any] | None:
-        """The unit's sidecar, unless the unit is incomplete or its last attempt failed."""
+        """The unit's sidecar, unless the unit is incomplete, damaged or its last attempt failed."""
         if read_failure(self.unit_dir(stage, unit)) is not None:
             return None
+        if self.damage(stage, unit) is not None:
+            return None
         return self.sidecar(stage, unit)
+
+    def cut_for_other_rows(self, stage: Stage) -> list[str]:
+        """Units of a stretch-scoped ``stage`` whose products cover other rows than the plan's.
+
+        After a change of ``run.stretch_rows`` or ``run.overlap_rows``, the
+        products of a per-stretch stage were cut for the old layout: a
+        downstream stage cannot use them (their rows do not match), they must
+        be recomputed.
+        """
+        if stage.scope != "stretch":
+            return []
+        changed = []
+        for stretch in self.stretches:
+            record = self.sidecar(stage, stretch.id)
+            if record is None:
+                continue
+            rows = (record.get("config") or {}).get("rows")
+            if rows != [stretch.lo, stretch.start, stretch.stop, stretch.hi]:
+                changed.append(stretch.id)
+        return changed
 
     def missing_stretches(self, stage: Stage) -> dict[str, str]:
         """Stretch id -> why it is left out of a ``partial_inputs`` stage's inputs.
@@ -163,6 +258,8 @@ class NightStore:
         """Why a stretch's unit of ``stage`` cannot feed a night-wide stage, or None."""
         if read_failure(self.unit_dir(stage, stretch.id)) is not None:
             return f"failed in {stage.name}"
+        if self.damage(stage, stretch.id) is not None:
+            return f"damaged in {stage.name}"
         if self.inputs(stage, stretch)[2] is not None:
             return f"blocked in {stage.name}"
         if self.sidecar(stage, stretch.id) is None:
@@ -263,7 +360,9 @@ class NightStore:
             units = [(self.unit_dir(upstream, i), self.usable(upstream, i)) for i in ids]
             missing = [i for i, (_, record) in zip(ids, units, strict=True) if record is None]
             if missing:
-                problem = f"needs {name} products for {format_ids(missing)} (missing or failed)"
+                problem = (
+                    f"needs {name} products for {format_ids(missing)} (missing, failed or damaged)"
+                )
                 return hashes, specs, problem
             if upstream.scope == "stretch" and stage.scope == "night":
                 digests = [record["output_hash"] for _, record in units]
@@ -284,7 +383,7 @@ class NightStore:
             if not path.is_file():
                 return hashes, specs, f"stages.{stage.name}.{name}: no file {path}"
             hashes[name] = file_digest(path)
-            specs.append(InputSpec(name, "file", path=path))
+            specs.append(InputSpec(name, "file", path=path, digest=hashes[name]))
         return hashes, specs, None
 
     def no_index_reason(self) -> str:
@@ -305,6 +404,9 @@ class NightStore:
         failure = read_failure(self.unit_dir(stage, unit))
         if failure is not None:
             return "failed", failure.get("reason", "unknown reason")
+        damage = self.damage(stage, unit)
+        if damage is not None:
+            return "damaged", damage
         record = self.sidecar(stage, unit)
         if record is None:
             return "missing", ""
@@ -341,6 +443,7 @@ class NightStore:
         specs: list[InputSpec],
         hashes: dict[str, str],
         capture_logs: bool,
+        lock: tuple[Path, str] | None = None,
     ) -> UnitTask:
         unit = unit_id(stretch)
         data = self.config_data(stage, stretch)
@@ -363,4 +466,5 @@ class NightStore:
             capture_logs=capture_logs,
             missing_stretches=dict(missing),
             input_problems=tuple(missing_problems(missing)),
+            lock=lock,
         )

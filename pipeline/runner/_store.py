@@ -30,7 +30,10 @@ from astropy.io import fits
 from astropy.table import QTable, Table
 from astropy.table.meta import get_header_from_yaml
 
+from pipeline.exceptions import DamagedProductError
+
 __all__ = [
+    "DAMAGED_NAME",
     "FAILED_NAME",
     "SIDECAR_NAME",
     "LazyProducts",
@@ -39,11 +42,15 @@ __all__ = [
     "clean_unit",
     "clear_failure",
     "hash_json",
+    "mark_damaged",
     "output_hash",
+    "read_damage",
     "read_failure",
     "read_product",
     "read_products",
     "read_sidecar",
+    "verify_product",
+    "verify_unit",
     "write_failure",
     "write_products",
     "write_sidecar",
@@ -51,6 +58,7 @@ __all__ = [
 
 SIDECAR_NAME = "_provenance.json"
 FAILED_NAME = "_failed.json"
+DAMAGED_NAME = "_damaged.json"
 SIDECAR_FORMAT = 1
 _TEMP_MARK = ".tmp-"
 
@@ -297,19 +305,79 @@ def _read_ecsv(path: Path, cls: type[Table]) -> Table:
         return table
 
 
-def read_products(unit_dir: Path, sidecar: Mapping[str, Any]) -> dict[str, Any]:
-    """Load every product a valid sidecar lists, as the types the stage returned."""
-    return {
-        name: read_product(unit_dir / entry["file"], entry)
-        for name, entry in sidecar["products"].items()
-    }
+def verify_product(path: Path, entry: Mapping[str, Any]) -> str:
+    """Check a product file against the SHA-256 its sidecar records; return the digest.
+
+    Raises
+    ------
+    DamagedProductError
+        If the file cannot be read or its content differs from the record.
+    """
+    try:
+        digest = _file_sha256(Path(path))
+    except OSError as exc:
+        raise DamagedProductError(path, f"cannot be read ({exc.strerror or exc})") from None
+    if digest != entry.get("sha256"):
+        raise DamagedProductError(
+            path,
+            f"content changed since it was written (SHA-256 {digest[:12]}..., recorded "
+            f"{str(entry.get('sha256'))[:12]}...)",
+        )
+    return digest
+
+
+def verify_unit(unit_dir: Path, sidecar: Mapping[str, Any]) -> None:
+    """Check every product file a sidecar lists (see :func:`verify_product`)."""
+    for entry in sidecar["products"].values():
+        verify_product(unit_dir / entry["file"], entry)
+
+
+def read_products(
+    unit_dir: Path, sidecar: Mapping[str, Any], read: dict[str, str] | None = None
+) -> dict[str, Any]:
+    """Load every product a valid sidecar lists, as the types the stage returned.
+
+    Each file's content is checked against its recorded SHA-256 first, so a
+    damaged product is never consumed.
+
+    Parameters
+    ----------
+    unit_dir : pathlib.Path
+        The unit's folder.
+    sidecar : mapping
+        Its provenance record.
+    read : dict, optional
+        Filled with ``'<stage>/<unit>/<file>' -> SHA-256`` of each file read.
+
+    Raises
+    ------
+    DamagedProductError
+        A file cannot be read, or differs from its record; the message names it.
+    """
+    products = {}
+    for name, entry in sidecar["products"].items():
+        path = Path(unit_dir) / entry["file"]
+        digest = verify_product(path, entry)
+        try:
+            products[name] = read_product(path, entry)
+        except Exception as exc:  # a file that hashes right but does not parse
+            reason = f"cannot be read ({type(exc).__name__}: {exc})"
+            raise DamagedProductError(path, reason) from exc
+        if read is not None:
+            read[f"{path.parent.parent.name}/{path.parent.name}/{path.name}"] = digest
+    return products
 
 
 class LazyProducts(Sequence):
     """Read-only sequence of per-stretch product dicts, each loaded on access."""
 
-    def __init__(self, units: Sequence[tuple[Path, Mapping[str, Any]]]):
+    def __init__(
+        self,
+        units: Sequence[tuple[Path, Mapping[str, Any]]],
+        read: dict[str, str] | None = None,
+    ):
         self._units = list(units)
+        self._read = read
 
     def __len__(self) -> int:
         return len(self._units)
@@ -318,7 +386,7 @@ class LazyProducts(Sequence):
         if isinstance(index, slice):
             return [self[i] for i in range(*index.indices(len(self)))]
         unit_dir, sidecar = self._units[index]
-        return read_products(unit_dir, sidecar)
+        return read_products(unit_dir, sidecar, self._read)
 
     def __iter__(self) -> Iterator[dict[str, Any]]:
         for index in range(len(self)):
@@ -368,11 +436,13 @@ def write_sidecar(unit_dir: Path, record: dict[str, Any]) -> None:
 def clean_unit(unit_dir: Path, keep: Sequence[str] = ()) -> None:
     """Prepare a unit folder for new products.
 
-    Removes the sidecar first (from now on the unit is not done), then
-    leftover temporary files of killed runs and product files not in ``keep``.
+    Removes the sidecar first (from now on the unit is not done) and any
+    damage record, then leftover temporary files of killed runs and product
+    files not in ``keep``.
     """
-    with contextlib.suppress(FileNotFoundError):
-        (unit_dir / SIDECAR_NAME).unlink()
+    for name in (SIDECAR_NAME, DAMAGED_NAME):
+        with contextlib.suppress(FileNotFoundError):
+            (unit_dir / name).unlink()
     if not unit_dir.is_dir():
         return
     for path in unit_dir.iterdir():
@@ -400,3 +470,25 @@ def clear_failure(unit_dir: Path) -> None:
     """Forget a previous failure (before a new attempt)."""
     with contextlib.suppress(FileNotFoundError):
         (unit_dir / FAILED_NAME).unlink()
+
+
+def mark_damaged(unit_dir: Path, reason: str) -> None:
+    """Take a unit with a damaged product out of use until it is recomputed.
+
+    The sidecar is moved into ``_damaged.json`` (with the reason), so the unit
+    is no longer done and nothing reads its products; :func:`clean_unit`
+    removes the record when the unit is written again.
+    """
+    record = read_sidecar(unit_dir)
+    _write_json_file(unit_dir / DAMAGED_NAME, {"reason": reason, "provenance": record})
+    with contextlib.suppress(FileNotFoundError):
+        (unit_dir / SIDECAR_NAME).unlink()
+
+
+def read_damage(unit_dir: Path) -> str | None:
+    """Why the unit was taken out of use as damaged (see :func:`mark_damaged`), or None."""
+    try:
+        record = json.loads((unit_dir / DAMAGED_NAME).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return str(record.get("reason", "damaged")) if isinstance(record, dict) else "damaged"

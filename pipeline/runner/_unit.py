@@ -28,6 +28,8 @@ from pydantic import BaseModel
 
 import pipeline
 from pipeline._offline import astropy_offline
+from pipeline.exceptions import DamagedProductError
+from pipeline.runner._lock import check_lock_held
 from pipeline.runner._rawio import check_block_index, read_raw_files, read_rows
 from pipeline.runner._store import (
     LazyProducts,
@@ -37,6 +39,7 @@ from pipeline.runner._store import (
     output_hash,
     read_external,
     read_products,
+    verify_product,
     write_products,
     write_sidecar,
 )
@@ -54,7 +57,9 @@ class InputSpec:
     stretch-scoped stage: one entry per stretch), ``'raw_files'`` (``names``
     below ``raw_dir``), ``'raw_rows'`` (rows ``[lo, hi)`` via ``index``, each
     block's rows reversed if ``flip_rows``), ``'file'`` (the file ``path`` an
-    option names, see ``Stage.files``) or ``'none'`` (such an option is None).
+    option names, see ``Stage.files``; ``digest`` is its SHA-256 when the run
+    was planned) or ``'none'`` (such an option is None).  Stored products are
+    checked against their recorded SHA-256 as they are read.
     """
 
     name: str
@@ -67,17 +72,29 @@ class InputSpec:
     hi: int = 0
     flip_rows: bool = False
     path: Path | None = None
+    digest: str | None = None
 
-    def load(self) -> Any:
-        """Read the input from the product store or the raw files."""
+    def load(self, read: dict[str, str] | None = None) -> Any:
+        """Read the input from the product store or the raw files.
+
+        ``read`` is filled with the SHA-256 of every product file read.
+
+        Raises
+        ------
+        DamagedProductError
+            A stored product, or the file an option names, cannot be read or
+            its content is not the one recorded.
+        """
         if self.kind == "unit":
             unit_dir, sidecar = self.units[0]
-            return read_products(unit_dir, sidecar)
+            return read_products(unit_dir, sidecar, read)
         if self.kind == "units":
-            return LazyProducts(self.units)
+            return LazyProducts(self.units, read)
         if self.kind == "raw_files":
             return read_raw_files(self.raw_dir, self.names)
         if self.kind == "file":
+            if self.digest is not None:
+                verify_product(self.path, {"sha256": self.digest})
             return read_external(self.path)
         if self.kind == "none":
             return None
@@ -93,6 +110,8 @@ class UnitTask:
     ``missing_stretches`` (stretch id -> reason) are the stretches a
     ``partial_inputs`` stage runs without; ``input_problems`` are the runner's
     problem lines about them, recorded before the stage's own problems.
+    ``lock`` is the run's lock file and the token it holds: the worker writes
+    nothing once the lock is no longer the run's (the run died).
     """
 
     stage: Stage
@@ -107,11 +126,15 @@ class UnitTask:
     capture_logs: bool = False
     missing_stretches: Mapping[str, str] = field(default_factory=dict)
     input_problems: tuple[str, ...] = ()
+    lock: tuple[Path, str] | None = None
 
 
 @dataclass
 class UnitOutcome:
-    """What came of a unit: success with its output hash, or the failure."""
+    """What came of a unit: success with its output hash, or the failure.
+
+    ``damaged`` lists ``(product file, reason)`` for an input found damaged.
+    """
 
     stage: str
     unit: str
@@ -123,6 +146,7 @@ class UnitOutcome:
     records: list[tuple[str, int, str]] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
     problems: list[str] = field(default_factory=list)
+    damaged: list[tuple[str, str]] = field(default_factory=list)
 
 
 def failed_outcome(task: UnitTask, error: str, tb: str | None = None) -> UnitOutcome:
@@ -212,6 +236,22 @@ def _check_products(task: UnitTask, products: Any) -> tuple[dict[str, Any], list
     return products, [" ".join(p.split()) for p in problems]
 
 
+def _check_lock(task: UnitTask) -> None:
+    if task.lock is not None:
+        check_lock_held(*task.lock)
+
+
+def _damaged_input(exc: BaseException) -> list[tuple[str, str]]:
+    """``[(file, reason)]`` if ``exc`` (or an exception it came from) is a damaged input."""
+    seen = set()
+    while exc is not None and id(exc) not in seen:
+        if isinstance(exc, DamagedProductError):
+            return [(exc.path, exc.reason)]
+        seen.add(id(exc))
+        exc = exc.__cause__ or exc.__context__
+    return []
+
+
 def execute_unit(task: UnitTask) -> UnitOutcome:
     """Run one unit: load inputs, call the stage, write products, then the sidecar.
 
@@ -225,8 +265,9 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
 def _execute_unit(task: UnitTask) -> UnitOutcome:
     started, t0 = _now(), time.perf_counter()
     with _captured_logs(task.capture_logs) as records:
+        read: dict[str, str] = {}
         try:
-            inputs = {spec.name: spec.load() for spec in task.inputs}
+            inputs = {spec.name: spec.load(read) for spec in task.inputs}
             t1 = time.perf_counter()
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
@@ -234,6 +275,7 @@ def _execute_unit(task: UnitTask) -> UnitOutcome:
             products, problems = _check_products(task, products)
             problems = [*task.input_problems, *problems]
             t2 = time.perf_counter()
+            _check_lock(task)
             clean_unit(task.unit_dir)
             entries = write_products(task.unit_dir, products, _fits_cards(task))
             record = {
@@ -244,6 +286,7 @@ def _execute_unit(task: UnitTask) -> UnitOutcome:
                 "config_hash": task.config_hash,
                 "config": task.config,
                 "inputs": dict(task.input_hashes),
+                "read": read,
                 "products": entries,
                 "output_hash": output_hash(entries),
                 "package_version": pipeline.__version__,
@@ -262,8 +305,10 @@ def _execute_unit(task: UnitTask) -> UnitOutcome:
             }
             if task.stage.partial_inputs:
                 record["missing_stretches"] = dict(task.missing_stretches)
+            _check_lock(task)
             write_sidecar(task.unit_dir, record)
         except Exception as exc:  # reported to the runner, which logs it and goes on
+            damaged = _damaged_input(exc)
             return UnitOutcome(
                 task.stage.name,
                 task.unit,
@@ -272,6 +317,7 @@ def _execute_unit(task: UnitTask) -> UnitOutcome:
                 error=f"{type(exc).__name__}: {exc}",
                 traceback=traceback.format_exc(),
                 records=list(records),
+                damaged=damaged,
             )
     return UnitOutcome(
         task.stage.name,
