@@ -7,6 +7,7 @@ products are compared for equality, and across executors byte for byte.
 from __future__ import annotations
 
 import dataclasses
+import errno
 import json
 import os
 import socket
@@ -30,8 +31,10 @@ from astropy import units as u
 from astropy.io import fits
 from astropy.table import QTable, Table
 
+import pipeline.runner._lock as _lock
+import pipeline.runner._store as _store
 from pipeline.config import config_from_mapping
-from pipeline.exceptions import RunLockedError, StaleLockWarning
+from pipeline.exceptions import RunLockedError, RunStartError, StaleLockWarning
 from pipeline.runner import (
     LOCK_NAME,
     format_ids,
@@ -656,3 +659,182 @@ def test_the_worked_example_in_developers_md_runs(toy) -> None:
     table = read_products(folder, read_sidecar(folder))["row_sky"]
     assert list(table["night_row"]) == list(range(30, 60))  # the core rows of stretch 1
     assert np.all(np.isfinite(table["sky"]))
+
+
+# ------------------------------------------------------------- product integrity
+
+
+def _flip_byte(path: Path, offset: int) -> None:
+    """Change one byte of a file in place (same size: only its content tells)."""
+    data = bytearray(path.read_bytes())
+    data[offset] ^= 0x40
+    path.write_bytes(bytes(data))
+
+
+def _reference(tmp_path: Path, *overrides: str):
+    """A clean run of the toy night under another night name."""
+    data = toy_config_data(tmp_path)
+    data["night"]["name"] = "reference"
+    config = config_from_mapping(data, overrides, graph=GRAPH)
+    assert run_night(config).ok
+    return config
+
+
+def test_a_damaged_product_is_found_reported_and_recomputed(toy, tmp_path) -> None:
+    make_config, _ = toy
+    config = make_config()
+    assert run_night(config).ok
+    damaged = night_dir(config) / "scale/s0001/image.fits"
+    _flip_byte(damaged, 2880 + 100)  # a data byte, after the one-block header
+    # Sizes match: only a content check sees it.
+    assert night_status(config).stages[1].units["s0001"][0] == "done"
+    checked = night_status(config, verify=True)
+    assert checked.stages[1].units["s0001"][0] == "damaged"
+    assert "scale/s0001/image.fits: content changed" in checked.stages[1].units["s0001"][1]
+    assert checked.stages[2].units["s0001"][0] == "stale"
+    assert checked.has_problems
+    # A forced rerun of smooth reads scale/s0001: it finds the damage, takes the
+    # unit out of use, recomputes it, then smooth/s0001 from the good product.
+    report = run_night(config, stage="smooth", force=True)
+    assert not report.ok
+    assert len(report.damaged) == 1
+    assert report.damaged[0].startswith("scale/s0001: image.fits content changed")
+    assert "damaged: scale/s0001: image.fits content changed" in report.format()
+    ran = sorted(f"{r.stage}/{r.unit}" for r in report.results if r.status == "ran")
+    assert ran == ["scale/s0001", *(f"smooth/s000{i}" for i in range(N_STRETCHES))]
+    assert product_hashes(config) == product_hashes(_reference(tmp_path))
+    # Provenance names the files that were really read, with their digests.
+    record = read_sidecar(night_dir(config) / "smooth/s0001")
+    upstream = sidecars(config)["scale/s0001"]["products"].values()
+    assert record["read"] == {f"scale/s0001/{e['file']}": e["sha256"] for e in upstream}
+    # Once repaired, the night is clean again.
+    assert run_night(config).ok
+    assert night_status(config, verify=True).complete
+
+
+def test_an_edited_table_is_found_before_its_rows_are_planned(toy, tmp_path) -> None:
+    make_config, _ = toy
+    config = make_config()
+    assert run_night(config).ok
+    table = night_dir(config) / "index/night/block_index.ecsv"
+    text = table.read_text()
+    edited = text.replace(" 0 25 25\n", " 0 35 25\n")  # block 1 moved by 10 rows
+    assert edited != text and len(edited) == len(text)
+    table.write_text(edited)  # same size, one changed value
+    report = run_night(config)
+    assert [line.split(":")[0] for line in report.damaged] == ["index/night"]
+    assert "block_index.ecsv: content changed" in report.damaged[0]
+    assert {f"{r.stage}/{r.unit}" for r in report.results if r.status == "ran"} == {"index/night"}
+    assert product_hashes(config) == product_hashes(_reference(tmp_path))
+
+
+def test_an_unparsable_product_names_its_file(toy, tmp_path, monkeypatch) -> None:
+    """A product whose digest is right but that cannot be read (written by a
+    broken release, say) is treated like a damaged one and named."""
+    make_config, _ = toy
+    config = make_config()
+    assert run_night(config).ok
+    real = _store.read_product
+
+    def unreadable(path, entry):
+        if path.parent.name == "s0002" and path.name == "image.fits":
+            raise OSError("simulated read error")
+        return real(path, entry)
+
+    monkeypatch.setattr(_store, "read_product", unreadable)
+    report = run_night(config, stage="smooth", force=True)
+    assert (
+        "scale/s0002: image.fits cannot be read (OSError: simulated read error)"
+        in (report.damaged[0])
+    )
+    # recomputed, but the unreadable reader stays: the repair gives up after a few tries
+    assert "(not recomputed again after 3 tries)" in report.damaged[-1]
+    assert [r.unit for r in report.results if r.status == "failed"] == ["s0002"]
+    assert "scale/s0002/image.fits" in report.problems[0].reason
+    monkeypatch.setattr(_store, "read_product", real)
+    status = night_status(config)
+    assert status.stages[2].units["s0002"][0] == "failed"
+    assert run_night(config).ok
+    assert product_hashes(config) == product_hashes(_reference(tmp_path))
+
+
+# ------------------------------------------------------------- broken lock, full disk
+
+BROKEN_LOCKS = [b"", b"[1, 2]", b'"a string"', b"{not json", b"\x00\x00\x00"]
+
+
+@pytest.mark.parametrize("content", BROKEN_LOCKS)
+def test_a_broken_lock_is_taken_over_with_a_warning(toy, tmp_path, content: bytes) -> None:
+    make_config, _ = toy
+    config = make_config()
+    lock = night_dir(config) / LOCK_NAME
+    lock.parent.mkdir(parents=True)
+    lock.write_bytes(content)
+    old = lock.stat().st_mtime - 60  # left by a run that crashed a minute ago
+    os.utime(lock, (old, old))
+    with pytest.warns(StaleLockWarning, match="Taking over the broken run lock .* held no lock"):
+        report = run_night(config)
+    assert report.ok and not lock.exists()
+    assert product_hashes(config) == product_hashes(_reference(tmp_path))
+
+
+def test_a_broken_lock_being_written_is_waited_for(toy, monkeypatch) -> None:
+    """A just-created empty lock may be another run writing it: wait, then take it over."""
+    make_config, _ = toy
+    config = make_config()
+    lock = night_dir(config) / LOCK_NAME
+    lock.parent.mkdir(parents=True)
+    lock.write_bytes(b"")
+    monkeypatch.setattr(_lock, "BROKEN_LOCK_AGE", 0.6)  # short, to keep the test fast
+    with pytest.warns(StaleLockWarning, match="broken run lock"):
+        assert run_night(config, stage="index").ok
+
+
+def _full_disk(suffix: str):
+    """An ``os.write`` that fails with ENOSPC on files whose name ends with ``suffix``."""
+    real = os.write
+
+    def write(fd, data):
+        if os.readlink(f"/proc/self/fd/{fd}").endswith(suffix):
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real(fd, data)
+
+    return write
+
+
+@pytest.mark.skipif(not Path("/proc/self/fd").is_dir(), reason="needs Linux /proc")
+@pytest.mark.parametrize("hard_links", [True, False])
+def test_a_full_disk_at_start_leaves_no_lock(toy, monkeypatch, hard_links: bool) -> None:
+    make_config, _ = toy
+    config = make_config()
+    if hard_links:  # the lock's temporary file cannot be written
+        monkeypatch.setattr(os, "write", _full_disk(""))
+    else:  # e.g. FAT or some network file systems: the lock itself, made with O_EXCL
+        monkeypatch.setattr(os, "link", lambda *a: _raise(OSError(errno.EPERM, "no links")))
+        monkeypatch.setattr(os, "write", _full_disk(LOCK_NAME))
+    with pytest.raises(RunStartError, match=r"No space left on device \(ENOSPC\); free space"):
+        run_night(config)
+    monkeypatch.undo()
+    assert sorted(p.name for p in night_dir(config).iterdir()) == []  # no lock, no temp file
+
+
+def _raise(exc: Exception):
+    raise exc
+
+
+# ---------------------------------------------------------- a new stretch layout
+
+
+def test_from_a_later_stage_after_an_overlap_change_recuts_upstream(toy, tmp_path) -> None:
+    """``--from smooth`` after ``run.overlap_rows`` changed: scale's products were
+    cut for the old margins, so scale is recomputed first (smooth alone would
+    read rows that are not the ones its stretch now asks for)."""
+    make_config, _ = toy
+    assert run_night(make_config()).ok
+    config = make_config("run.overlap_rows=7")
+    report = run_night(config, from_stage="smooth")
+    assert report.ok, report.format()
+    ran = {r.stage for r in report.results if r.status == "ran"}
+    assert ran == {"scale", "smooth", "total"}
+    reference = _reference(tmp_path, "run.overlap_rows=7")
+    assert product_hashes(config) == product_hashes(reference)

@@ -365,7 +365,7 @@ def _run_night(config, stage, from_stage, to_stage, stretches, force, progress) 
         )
         position, repairs, forced = 0, 0, set()
         while True:
-            damaged = _take_damaged_out_of_use(night, report)
+            damaged = _take_damaged_out_of_use(night, report, repairs < MAX_REPAIRS)
             if damaged and repairs < MAX_REPAIRS:
                 repairs += 1
                 plan[position:position] = _repair_stages(night, plan, position, damaged)
@@ -378,7 +378,9 @@ def _run_night(config, stage, from_stage, to_stage, stretches, force, progress) 
             for result in _run_stage(
                 night, current, wanted, run_force, executor, progress, (lock.path, lock.token)
             ):
-                results[(result.stage, result.unit)] = result
+                key = (result.stage, result.unit)
+                if result.status != "skipped" or key not in results:  # keep what a unit did
+                    results[key] = result
             night.refresh()
         report.results = list(results.values())
         report.stale_downstream = _stale_downstream(night, selected)
@@ -409,14 +411,15 @@ def _with_recut_upstream(night: NightStore, selected: Sequence[Stage]) -> list[S
     return graph[start:first] + list(selected)
 
 
-def _take_damaged_out_of_use(night: NightStore, report: RunReport) -> list[str]:
+def _take_damaged_out_of_use(night: NightStore, report: RunReport, repair: bool) -> list[str]:
     """Move the sidecars of the damaged units found so far aside; return their stages."""
     found = []
+    what = "recomputed" if repair else f"not recomputed again after {MAX_REPAIRS} tries"
     for (name, unit), reason in list(night.damaged.items()):
         stage = night.stages[name]
         mark_damaged(night.unit_dir(stage, unit), reason)
-        log.error("damaged product in %s/%s: %s; recomputing it", name, unit, reason)
-        report.damaged.append(f"{name}/{unit}: {reason} (recomputed)")
+        log.error("damaged product in %s/%s: %s (%s)", name, unit, reason, what)
+        report.damaged.append(f"{name}/{unit}: {reason} ({what})")
         found.append(name)
     night.damaged.clear()
     if found:

@@ -90,7 +90,7 @@ class RunLock:
     def __enter__(self) -> RunLock:
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
-            for _ in range(20):  # a concurrent take-over can make one attempt lose a race
+            for _ in range(100):  # a concurrent take-over can make one attempt lose a race
                 if self._try_create():
                     return self
                 holder = read_lock(self.path)
