@@ -27,7 +27,11 @@ Workers of the local pool and of the dask cluster started for the run end
 when the run that started them dies (even by ``kill -9``): on Linux through
 the parent-death signal (``prctl(PR_SET_PDEATHSIG)``), everywhere through a
 watchdog thread that notices the change of parent process within
-:data:`WATCH_INTERVAL` seconds.
+:data:`WATCH_INTERVAL` seconds.  Both start only once a worker has imported
+the pipeline (seconds on a loaded machine), so on Linux a tiny reaper process
+also watches the run: when the run's end of a pipe closes, it kills every
+process that carries the run's mark in its environment (see
+:class:`Reaper`).
 
 Without ``run.workers``, the number of workers is the number of cores,
 lowered so that the workers fit the memory available (see
@@ -42,6 +46,7 @@ import multiprocessing
 import os
 import pickle
 import signal
+import subprocess
 import sys
 import threading
 import time
@@ -102,6 +107,78 @@ def end_with_parent(parent_pid: int, death_signal: bool = True) -> None:
     ).start()
 
 
+#: Environment variable that marks the worker processes of one run (value: a token).
+RUN_MARK = "ZDRIFT_RUN_MARK"
+
+# The reaper: waits for EOF on stdin (the run ended, normally or killed), then
+# kills the processes whose environment carries the run's mark.  Plain Python
+# without imports of ours, so it starts in milliseconds.  The multiprocessing
+# resource tracker is spared: it ends by itself once the workers are gone and
+# frees what they leaked.
+_REAPER = """
+import os, signal, sys, time
+signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C reaches the run, which closes the pipe
+mark = sys.argv[1].encode()
+# b"done": the run closed its pool itself; EOF alone: the run died.  Then look
+# again for a while: a process may have been between fork and exec.
+passes = 1 if sys.stdin.buffer.read() == b"done" else 10
+for attempt in range(passes):
+    for name in os.listdir("/proc"):
+        if not name.isdigit() or int(name) == os.getpid():
+            continue
+        try:
+            with open("/proc/%s/environ" % name, "rb") as stream:
+                if mark not in stream.read().split(b"\\0"):
+                    continue
+            with open("/proc/%s/cmdline" % name, "rb") as stream:
+                if b"resource_tracker" in stream.read():
+                    continue
+            os.kill(int(name), signal.SIGKILL)
+        except OSError:
+            pass
+    time.sleep(0.1)
+"""
+
+
+class Reaper:
+    """A process that kills the run's workers when the run ends, however it ends.
+
+    While a reaper is active, processes started by this one carry
+    ``ZDRIFT_RUN_MARK=<token>`` in their environment (the run's own
+    environment, as the kernel shows it, does not).  Linux only (reads
+    ``/proc``); elsewhere it does nothing and the workers' watchdogs remain.
+    """
+
+    def __init__(self) -> None:
+        self._process: subprocess.Popen | None = None
+        self.mark = f"{RUN_MARK}={uuid.uuid4().hex}"
+
+    def start(self) -> None:
+        """Start the reaper and mark the processes started from now on."""
+        if self._process is not None or not os.path.isdir("/proc/self"):
+            return
+        try:
+            self._process = subprocess.Popen(
+                [sys.executable, "-I", "-S", "-c", _REAPER, self.mark],
+                stdin=subprocess.PIPE,
+                env={k: v for k, v in os.environ.items() if k != RUN_MARK},
+            )
+        except OSError as exc:  # the watchdogs still work
+            log.warning("could not start the worker reaper (%s)", exc)
+            return
+        os.environ[RUN_MARK] = self.mark.partition("=")[2]
+
+    def stop(self) -> None:
+        """After the workers are gone: stop marking processes and end the reaper."""
+        if self._process is None:
+            return
+        os.environ.pop(RUN_MARK, None)
+        self._process.stdin.write(b"done")
+        self._process.stdin.close()
+        self._process.wait()
+        self._process = None
+
+
 def _unpicklable(task: Any) -> str | None:
     """Why ``task`` cannot be sent to another process, or None if it can."""
     try:
@@ -144,6 +221,7 @@ class LocalPoolExecutor(Executor):
     def __init__(self, workers: int):
         self.workers = workers
         self._pool: ProcessPoolExecutor | None = None
+        self._reaper = Reaper()
 
     def map(self, fn, tasks, on_error) -> Iterator[Outcome]:
         # When a worker dies (killed, out of memory) the whole pool breaks and
@@ -172,6 +250,7 @@ class LocalPoolExecutor(Executor):
         if not tasks:
             return
         if self._pool is None:
+            self._reaper.start()
             self._pool = ProcessPoolExecutor(
                 max_workers=self.workers,
                 mp_context=_SPAWN,
@@ -197,6 +276,7 @@ class LocalPoolExecutor(Executor):
         if self._pool is not None:
             self._pool.shutdown(wait=True, cancel_futures=True)
             self._pool = None
+        self._reaper.stop()
 
 
 class DaskExecutor(Executor):
@@ -209,12 +289,14 @@ class DaskExecutor(Executor):
         self.workers = workers
         self._client = None
         self._cluster = None
+        self._reaper = Reaper()
 
     def _connect(self):
         import distributed
 
         if self._client is None:
             if self.scheduler is None:
+                self._reaper.start()
                 self._cluster = start_local_cluster(self.workers)
                 address = self._cluster.scheduler_address
                 security = self._cluster.security
@@ -256,6 +338,7 @@ class DaskExecutor(Executor):
         if self._cluster is not None:
             self._cluster.close()
             self._cluster = None
+        self._reaper.stop()
 
 
 def start_local_cluster(workers: int):
