@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import errno
 import json
 import math
+import os
 import re
 import socket
 import subprocess
@@ -232,7 +234,14 @@ def test_help_lists_the_exit_codes(capsys: pytest.CaptureFixture) -> None:
         assert main(args) == 0
         out = capsys.readouterr().out
         assert "exit status:" in out
-        for code in ("0  success", "1  a unit failed", "2  bad command line", "3  another run"):
+        for code in (
+            "0  success",
+            "1  run: a unit failed",
+            "2  bad command line",
+            "3  another run",
+            "4  run: cannot start",
+            "5  status: nothing failed",
+        ):
             assert code in out
 
 
@@ -297,3 +306,75 @@ def test_a_yaml_syntax_error_exits_2_naming_the_file(toy_file: Path, capsys) -> 
     toy_file.write_text(toy_file.read_text() + "stages: {unclosed\n")
     line = _one_line_exit_2(["run", str(toy_file)], capsys)
     assert f"{toy_file}, line " in line and "<unicode string>" not in line
+
+
+# --------------------------------------------------- status: exit codes, lock, content
+
+
+def test_status_exit_codes_say_what_is_left(toy_file: Path, capsys) -> None:
+    assert main(["status", str(toy_file)]) == 5  # nothing run yet: all missing
+    assert main(["run", str(toy_file), "--set", "stages.scale.fail_on=[1]"]) == 1
+    assert main(["status", str(toy_file)]) == 1  # a failed unit
+    assert main(["run", str(toy_file)]) == 0
+    capsys.readouterr()
+    assert main(["status", str(toy_file)]) == 0
+    assert "lock:" not in capsys.readouterr().out
+
+
+def test_status_verify_finds_a_flipped_byte_and_run_verify_repairs_it(
+    toy_file: Path, capsys
+) -> None:
+    assert main(["run", str(toy_file)]) == 0
+    product = toy_file.parent / "out/toy/smooth/s0002/image.fits"
+    data = bytearray(product.read_bytes())
+    data[2880 + 8] ^= 0x01  # one bit of the first data value; same size
+    product.write_bytes(bytes(data))
+    capsys.readouterr()
+    assert main(["status", str(toy_file)]) == 0  # sizes only: not seen
+    assert main(["status", str(toy_file), "--verify"]) == 1
+    out = capsys.readouterr().out
+    assert "smooth damaged: s0002: image.fits content changed since it was written" in out
+    assert main(["run", str(toy_file), "--verify"]) == 1  # found and recomputed: reported
+    captured = capsys.readouterr()
+    assert "1 damaged product" in captured.out
+    assert "damaged: smooth/s0002: image.fits content changed" in captured.out
+    assert "ERROR: damaged product in smooth/s0002" in captured.err
+    assert main(["status", str(toy_file), "--verify"]) == 0
+
+
+def test_status_shows_a_running_a_stale_and_a_broken_lock(toy_file: Path, capsys) -> None:
+    lock = toy_file.parent / "out/toy/_lock.json"
+    lock.parent.mkdir(parents=True)
+    sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        record = {"pid": sleeper.pid, "host": socket.gethostname(), "started": "t0"}
+        lock.write_text(json.dumps(record))
+        main(["status", str(toy_file)])
+        assert f"lock: a run is going on: process {sleeper.pid}" in capsys.readouterr().out
+    finally:
+        sleeper.kill()
+        sleeper.wait()
+    main(["status", str(toy_file)])
+    assert f"lock: stale: process {sleeper.pid}" in capsys.readouterr().out
+    lock.write_text("")
+    main(["status", str(toy_file)])
+    assert "is broken (empty or not a JSON object)" in capsys.readouterr().out
+
+
+@pytest.mark.skipif(not Path("/proc/self/fd").is_dir(), reason="needs Linux /proc")
+def test_a_full_disk_at_start_is_one_line_and_exit_4(toy_file: Path, capsys, monkeypatch):
+    real = os.write
+
+    def full_disk(fd, data):  # the disk fills up as the run writes its lock
+        if "_lock.json" in os.readlink(f"/proc/self/fd/{fd}"):
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real(fd, data)
+
+    monkeypatch.setattr(os, "write", full_disk)
+    assert main(["run", str(toy_file)]) == 4
+    monkeypatch.undo()
+    err = capsys.readouterr().err.splitlines()
+    assert len(err) == 1, err
+    assert err[0].startswith("zdrift run: cannot write the run lock ")
+    assert "No space left on device (ENOSPC); free space on that disk" in err[0]
+    assert not list((toy_file.parent / "out/toy").glob("*lock*"))

@@ -53,7 +53,15 @@ from pipeline.stages.base import (
     segment_rows,
 )
 
-__all__ = ["NIGHT", "NightStore", "format_ids", "missing_problems", "night_dir", "unit_id"]
+__all__ = [
+    "NIGHT",
+    "NightStore",
+    "damage_reason",
+    "format_ids",
+    "missing_problems",
+    "night_dir",
+    "unit_id",
+]
 
 #: Unit id of a night-scoped stage.
 NIGHT = "night"
@@ -91,6 +99,11 @@ def missing_problems(missing: dict[str, str]) -> list[str]:
         f"ran without stretch{'es' if len(ids) > 1 else ''} {format_ids(ids)} ({reason})"
         for reason, ids in _by_reason(missing).items()
     ]
+
+
+def damage_reason(exc: DamagedProductError) -> str:
+    """What is wrong with a unit's damaged product: its file name, then the reason."""
+    return f"{Path(exc.path).name} {exc.reason}"
 
 
 def _by_reason(missing: dict[str, str]) -> dict[str, list[str]]:
@@ -146,15 +159,12 @@ class NightStore:
             try:
                 verify_product(folder / entry["file"], entry)
                 self.index = read_product(folder / entry["file"], entry)
-            except DamagedProductError as exc:
-                self.damaged[(self.row_stage.name, NIGHT)] = str(exc)
+            except Exception as exc:  # damaged, or hashes right but does not parse
+                if not isinstance(exc, DamagedProductError):
+                    reason = f"cannot be read ({type(exc).__name__}: {exc})"
+                    exc = DamagedProductError(folder / entry["file"], reason)
+                self.damaged[(self.row_stage.name, NIGHT)] = damage_reason(exc)
                 self._states.clear()
-                record = None
-            except Exception as exc:  # hashes right but does not parse
-                reason = f"{folder / entry['file']}: cannot be read ({type(exc).__name__}: {exc})"
-                self.damaged[(self.row_stage.name, NIGHT)] = reason
-                self._states.clear()
-                record = None
         if self.index is not None:
             run = self.config.run
             rows = block_index_rows(self.index)
@@ -188,7 +198,7 @@ class NightStore:
             if record is not None:
                 verify_unit(self.unit_dir(stage, unit), record)
         except DamagedProductError as exc:
-            self.damaged[key] = str(exc)
+            self.damaged[key] = damage_reason(exc)
             return self.damaged[key]
         return None
 
