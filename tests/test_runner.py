@@ -942,3 +942,98 @@ def run_night_stage_index(night, lock):
     stage = night.stages["index"]
     hashes, specs, _ = night.inputs(stage, None)
     return execute_unit(night.task(stage, None, specs, hashes, False, lock))
+
+
+# ------------------------------------------------------------ executors: odd paths
+
+
+def _graph_with_a_local_stage():
+    """The toy graph whose smooth stage runs a closure: not picklable by reference."""
+    index, scale, smooth, total = GRAPH
+
+    def smooth_here(*, inputs, options, context):  # defined in a function: no import path
+        return smooth.run(inputs=inputs, options=options, context=context)
+
+    return (index, scale, dataclasses.replace(smooth, run=smooth_here), total)
+
+
+@pytest.mark.parametrize("executor", ["local", "dask"])
+def test_a_unit_that_cannot_be_pickled_fails_with_a_clear_reason(
+    toy, tmp_path, executor, request
+) -> None:
+    run = {"executor": "local", "workers": 2}
+    if executor == "dask":
+        run = {"scheduler": request.getfixturevalue("dask_cluster").scheduler_address}
+    data = toy_config_data(tmp_path)
+    data["run"] = {"stretch_rows": 30, "overlap_rows": 4, **run}
+    config = config_from_mapping(data, graph=_graph_with_a_local_stage())
+    report = run_night(config)
+    failed = sorted({(r.stage, r.status) for r in report.problems})
+    assert failed == [("smooth", "failed"), ("total", "blocked")]
+    reason = report.problems[0].reason
+    assert reason.startswith("the unit cannot be sent to a worker process (")
+    assert "must be defined at module level of an importable module" in reason
+    assert report.count("ran") == 1 + N_STRETCHES  # index and scale ran as usual
+    # in this process the same graph runs
+    data["run"] = {"stretch_rows": 30, "overlap_rows": 4, "executor": "serial"}
+    assert run_night(config_from_mapping(data, graph=_graph_with_a_local_stage())).ok
+
+
+@pytest.mark.slow  # starts its own dask cluster and restarts a worker: ~20 s
+def test_dask_on_a_cluster_of_its_own_survives_a_lost_worker(toy, tmp_path, monkeypatch):
+    make_config, _ = toy
+    monkeypatch.setenv("ZDRIFT_TOY_DIE_ON", "2")  # scale kills its worker on stretch 2,
+    monkeypatch.setenv("ZDRIFT_TOY_DIE_MARK", str(tmp_path / "died"))  # once
+    config = make_config("run.executor=dask", "run.workers=2")
+    assert config.run.scheduler is None
+    report = run_night(config)
+    assert report.ok, report.format()
+    assert (tmp_path / "died").exists()  # the worker did die; dask ran the unit elsewhere
+    assert product_hashes(config) == product_hashes(_reference(tmp_path))
+    # A unit that kills every worker it runs on fails alone, with the reason.
+    monkeypatch.delenv("ZDRIFT_TOY_DIE_MARK")
+    report = run_night(config, stage="scale", force=True)
+    assert [(r.stage, r.unit) for r in report.problems] == [("scale", "s0002")]
+    assert "KilledWorker" in report.problems[0].reason
+
+
+# ------------------------------------------------------------------ raw read errors
+
+
+def _two_blocks(tmp_path: Path, second_columns: int = 4) -> Table:
+    fits.PrimaryHDU(np.zeros((5, 4), np.float32)).writeto(tmp_path / "a.fits")
+    fits.PrimaryHDU(np.ones((3, second_columns), np.float32)).writeto(tmp_path / "b.fits")
+    return Table({"file": ["a.fits", "b.fits"], "hdu": [0, 0], "row_start": [0, 8],
+                  "n_rows": [5, 3]})  # fmt: skip
+
+
+def test_read_rows_refuses_mixed_widths_and_rows_no_block_covers(tmp_path: Path) -> None:
+    index = _two_blocks(tmp_path, second_columns=6)
+    with pytest.raises(ValueError, match=r"'b\.fits' has 6 columns, other blocks of the stretch "):
+        read_rows(tmp_path, index, 0, 11)
+    with pytest.raises(ValueError, match=r"No raw block covers night rows \[5, 8\)"):
+        read_rows(tmp_path, index, 5, 8)
+
+
+def test_read_rows_names_a_file_that_shrank(tmp_path: Path) -> None:
+    index = _two_blocks(tmp_path)
+    path = tmp_path / "b.fits"
+    path.write_bytes(path.read_bytes()[: 2880 + 10])  # the header and 10 bytes of data
+    with pytest.raises(ValueError, match=r"Raw file 'b.fits' cannot be read .* rerun from the"):
+        read_rows(tmp_path, index, 0, 11)
+    assert np.array_equal(read_rows(tmp_path, index, 0, 5), np.zeros((5, 4)))  # a.fits alone
+
+
+def test_a_raw_file_that_shrank_after_ingest_fails_only_its_stretches(toy, tmp_path) -> None:
+    make_config, _ = toy
+    config = make_config()
+    assert run_night(config, stage="index").ok
+    reference = product_hashes(_reference(tmp_path))  # before the file shrinks
+    shrunk = tmp_path / "raw/block_2_2.fits"  # night rows 50-74: stretches 1 and 2
+    shrunk.write_bytes(shrunk.read_bytes()[:3000])
+    report = run_night(config, stage="scale")
+    assert sorted(r.unit for r in report.problems) == ["s0001", "s0002"]
+    for result in report.problems:
+        assert result.reason.startswith("ValueError: Raw file 'block_2_2.fits' cannot be read")
+    for unit in ("s0000", "s0003"):
+        assert product_hashes(config)[f"scale/{unit}"] == reference[f"scale/{unit}"]

@@ -193,6 +193,44 @@ def blocks_fingerprint(
     return hash_json(key)
 
 
+def _read_block_rows(
+    path: Path, hdu_index: int, start: int, n_rows: int, r0: int, r1: int, flip_rows: bool
+) -> np.ndarray:
+    """Night rows ``[r0, r1)`` of the block at ``path`` that starts at night row ``start``."""
+    name = path.name
+    rerun = "the file changed since the block index was built: rerun from the ingest stage"
+    try:
+        with warnings.catch_warnings(record=True) as caught:  # astropy only warns when a
+            warnings.simplefilter("always")  # file is truncated
+            with fits.open(path) as hdul:
+                hdu = hdul[hdu_index]
+                if int(hdu.header["NAXIS2"]) < r1 - start:
+                    raise ValueError(
+                        f"Raw file {name!r} has {hdu.header['NAXIS2']} rows but the block "
+                        f"index says {n_rows}; {rerun}."
+                    )
+                k0, k1 = r0 - start, r1 - start  # rows in readout order within the block
+                if flip_rows:  # readout row k is stored at n_rows - 1 - k
+                    section = hdu.section[n_rows - k1 : n_rows - k0, :][::-1]
+                else:
+                    section = hdu.section[k0:k1, :]
+                rows = np.asarray(section, dtype=np.float32)
+        truncated = [w for w in caught if "truncated" in str(w.message)]
+        if not truncated:
+            return rows
+        error = OSError(str(truncated[0].message))
+    except ValueError as exc:
+        if str(exc).startswith("Raw file"):
+            raise
+        error = exc
+    except Exception as exc:  # OSError, IndexError, astropy's warnings made errors
+        error = exc
+    raise ValueError(
+        f"Raw file {name!r} cannot be read (rows {r0 - start}-{r1 - start - 1} of HDU "
+        f"{hdu_index}): {type(error).__name__}: {error}; {rerun}, or restore the file."
+    ) from error
+
+
 def read_rows(
     raw_dir: Path, index: Table, lo: int, hi: int, *, flip_rows: bool = False
 ) -> np.ndarray:
@@ -222,20 +260,8 @@ def read_rows(
     out = None
     for name, hdu_index, start, n_rows in _overlapping(index, lo, hi):
         r0, r1 = max(lo, start), min(hi, start + n_rows)
-        with fits.open(raw_dir / name) as hdul:
-            hdu = hdul[hdu_index]
-            n_columns = int(hdu.header["NAXIS1"])
-            if int(hdu.header["NAXIS2"]) < r1 - start:
-                raise ValueError(
-                    f"Raw file {name!r} has {hdu.header['NAXIS2']} rows but the block index "
-                    f"says {n_rows}; rerun the stage that builds the block index."
-                )
-            k0, k1 = r0 - start, r1 - start  # rows in readout order within the block
-            if flip_rows:  # readout row k is stored at n_rows - 1 - k
-                section = hdu.section[n_rows - k1 : n_rows - k0, :][::-1]
-            else:
-                section = hdu.section[k0:k1, :]
-            rows = np.asarray(section, dtype=np.float32)
+        rows = _read_block_rows(raw_dir / name, hdu_index, start, n_rows, r0, r1, flip_rows)
+        n_columns = rows.shape[1]
         if out is None:
             out = np.full((hi - lo, n_columns), np.nan, dtype=np.float32)
         elif out.shape[1] != n_columns:

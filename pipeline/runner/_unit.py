@@ -267,10 +267,10 @@ def _execute_unit(task: UnitTask) -> UnitOutcome:
     with _captured_logs(task.capture_logs) as records:
         read: dict[str, str] = {}
         try:
-            inputs = {spec.name: spec.load(read) for spec in task.inputs}
-            t1 = time.perf_counter()
-            with warnings.catch_warnings(record=True) as caught:
+            with warnings.catch_warnings(record=True) as caught:  # reading warns too
                 warnings.simplefilter("always")
+                inputs = {spec.name: spec.load(read) for spec in task.inputs}
+                t1 = time.perf_counter()
                 products = task.stage.run(inputs=inputs, options=task.options, context=task.context)
             products, problems = _check_products(task, products)
             problems = [*task.input_problems, *problems]
