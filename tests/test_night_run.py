@@ -7,6 +7,7 @@ the simulation's settings.
 
 from __future__ import annotations
 
+import hashlib
 import json
 from pathlib import Path
 
@@ -411,3 +412,76 @@ def test_a_failed_stretch_leaves_the_flat_and_the_other_stretches_calibrated(
         # A recalibrated pixel can cross a cosmic-ray or saturation threshold
         # (measured: 4 of 24576 pixels, next to a bleed).
         assert np.mean(mask != _plane(clean, "FLAGS")) < 1e-3
+
+
+# ------------------------------------------------------------ runner paths, real stages
+
+
+def _product_digests(folder: Path) -> dict[str, str]:
+    """SHA-256 of every product file of a night (not provenance, logs or the lock)."""
+    return {
+        path.relative_to(folder).as_posix(): hashlib.sha256(path.read_bytes()).hexdigest()
+        for path in sorted(folder.glob("*/*/*"))
+        if not path.name.startswith(("_", "."))
+    }
+
+
+@pytest.mark.slow  # three runs of the real stages, one on a dask cluster: ~40 s
+def test_the_real_stages_give_identical_products_on_every_executor(tmp_path, capsys):
+    config = _night(tmp_path)
+    runs = {
+        "n": [],  # serial, as the config says
+        "pool": ["run.executor=local", "run.workers=2"],
+        "dask": ["run.executor=dask", "run.workers=2"],  # a cluster of its own
+    }
+    for name, settings in runs.items():
+        overrides = [arg for s in [f"night.name={name}", *settings] for arg in ("--set", s)]
+        assert main(["run", str(config), *overrides]) == 0, capsys.readouterr()
+    serial = _product_digests(tmp_path / "out/n")
+    assert len(serial) > 10 and any(key.startswith("rectify/") for key in serial)
+    assert _product_digests(tmp_path / "out/pool") == serial
+    assert _product_digests(tmp_path / "out/dask") == serial
+
+
+def test_a_line_time_change_mid_night_is_reported_and_stops_rectify(tmp_path, capsys):
+    config = _night(tmp_path)
+    last = tmp_path / "raw/block_0003.fits"
+    line_time = fits.getval(last, "LINETIME")
+    fits.setval(last, "LINETIME", value=line_time * 1.01)  # the camera was reconfigured
+    capsys.readouterr()
+    assert main(["run", str(config)]) == 1
+    out = capsys.readouterr().out
+    assert "problem: ingest/night: block_0003.fits: changed mid-night (LINETIME" in out
+    rectify = [line for line in out.splitlines() if line.startswith("  failed: rectify/")]
+    assert rectify and all("the line time changes within the night" in line for line in rectify)
+    assert ", 0 blocked" in out  # calibrate went on: only rectify needs one line time
+
+
+def test_rectify_with_a_line_time_that_does_not_match_the_drift(tmp_path, capsys):
+    """The camera clocks 1 % slower than the sky drifts: every star is smeared
+    along the scan by tdi_rows x 1 % = 1.28 rows, and rectify's smear kernels
+    say so (common practice: TDI smear = TDI rows x fractional rate error)."""
+    matched = 0.035314903  # s, `zdrift plan` for SITE and CAMERA (from its output)
+    config = _night(tmp_path, camera={"line_time": matched * 1.01})
+    assert main(["run", str(config)]) == 0, capsys.readouterr()
+    kernels = _product(tmp_path / "out/n/rectify/s0001", "smear_kernels")
+    expected = CAMERA["tdi_rows"] * 0.01
+    # 5 %: the kernel's extent is that of its equal-time samples (63/64 of the
+    # track for 64 samples) in rectified pixels; measured 1.247 against 1.28.
+    np.testing.assert_allclose(kernels["length"], expected, rtol=0.05)
+
+
+@pytest.mark.slow  # two runs of the real stages and a partial one: ~30 s
+def test_from_rectify_after_an_overlap_change_recomputes_what_it_needs(tmp_path, capsys):
+    """The reproduction: ``--from rectify`` after changing run.overlap_rows
+    crashed a stretch ("core rows ... must lie within the rows given")."""
+    config = _night(tmp_path)
+    assert main(["run", str(config)]) == 0
+    wider = ["--set", "run.overlap_rows=96"]
+    capsys.readouterr()
+    assert main(["run", str(config), "--from", "rectify", *wider]) == 0, capsys.readouterr()
+    err = capsys.readouterr().err
+    assert "were cut for other stretch rows" in err and "running from column_stats" in err
+    clean = ["--set", "night.name=clean", *wider]
+    assert main(["run", str(config), *clean]) == 0
+    assert _product_digests(tmp_path / "out/n") == _product_digests(tmp_path / "out/clean")
