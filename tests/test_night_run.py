@@ -485,3 +485,23 @@ def test_from_rectify_after_an_overlap_change_recomputes_what_it_needs(tmp_path,
     clean = ["--set", "night.name=clean", *wider]
     assert main(["run", str(config), *clean]) == 0
     assert _product_digests(tmp_path / "out/n") == _product_digests(tmp_path / "out/clean")
+
+
+def test_a_damaged_calibrated_product_is_recomputed_before_rectify_reads_it(tmp_path, capsys):
+    """The reproduction: a same-size byte flip in a calibrated product, then a
+    forced rerun of rectify.  It used to consume the bad data and exit 0."""
+    config = _night(tmp_path)
+    assert main(["run", str(config)]) == 0
+    clean = _product_digests(tmp_path / "out/n")
+    unit = tmp_path / "out/n/calibrate/s0001"
+    target = max(unit.glob("*.fits"), key=lambda p: p.stat().st_size)  # the image data
+    data = bytearray(target.read_bytes())
+    data[len(data) // 2] ^= 0x10
+    target.write_bytes(bytes(data))
+    capsys.readouterr()
+    assert main(["run", str(config), "--from", "rectify", "--force"]) == 1
+    captured = capsys.readouterr()
+    assert f"damaged: calibrate/s0001: {target.name} content changed since" in captured.out
+    assert "(recomputed)" in captured.out
+    assert _product_digests(tmp_path / "out/n") == clean
+    assert main(["status", str(config), "--verify"]) == 0

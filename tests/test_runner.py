@@ -32,6 +32,7 @@ from astropy import units as u
 from astropy.io import fits
 from astropy.table import QTable, Table
 
+import pipeline.runner._executors as _executors
 import pipeline.runner._lock as _lock
 import pipeline.runner._store as _store
 from pipeline.config import config_from_mapping
@@ -1037,3 +1038,45 @@ def test_a_raw_file_that_shrank_after_ingest_fails_only_its_stretches(toy, tmp_p
         assert result.reason.startswith("ValueError: Raw file 'block_2_2.fits' cannot be read")
     for unit in ("s0000", "s0003"):
         assert product_hashes(config)[f"scale/{unit}"] == reference[f"scale/{unit}"]
+
+
+# ------------------------------------------------------- default workers, own cluster
+
+
+def test_the_default_worker_count_fits_the_memory(toy, monkeypatch, caplog) -> None:
+    make_config, _ = toy
+    run = make_config("run.stretch_rows=4096", "run.overlap_rows=256").run
+    monkeypatch.setattr(os, "cpu_count", lambda: 8)
+    # 0.25 GB + 45 B x (4096 + 2 x 256) x 2048 = 0.675 GB per worker (the estimate)
+    assert _executors.worker_memory(4096, 256, 2048) == pytest.approx(0.25e9 + 45 * 4608 * 2048)
+    monkeypatch.setattr(_executors, "available_memory", lambda: 2.0e9)
+    with caplog.at_level("INFO", logger="pipeline.runner._executors"):
+        assert _executors.default_workers(run, 2048) == 2  # 2 GB / 0.675 GB
+    assert "run.workers not set: 2 workers (8 cores, 2.0 GB available" in caplog.text
+    monkeypatch.setattr(_executors, "available_memory", lambda: 64e9)
+    assert _executors.default_workers(run, 2048) == 8  # one per core
+    monkeypatch.setattr(_executors, "available_memory", lambda: 0.3e9)
+    with caplog.at_level("WARNING", logger="pipeline.runner._executors"):
+        assert _executors.default_workers(run, 2048) == 1
+    assert "lower run.stretch_rows or free memory" in caplog.text
+
+
+def test_the_runs_own_dask_cluster_is_loopback_only_without_http_routes() -> None:
+    pytest.importorskip("distributed")
+    import urllib.error
+    import urllib.request
+
+    cluster = _executors.start_local_cluster(1)
+    try:
+        assert cluster.scheduler_address.split("://")[1].startswith("127.0.0.1:")
+        sockets = cluster.scheduler.http_server._sockets.values()
+        addresses = [s.getsockname() for s in sockets]
+        assert addresses and all(host == "127.0.0.1" for host, *_ in addresses)
+        assert all(port != 8787 for _, port, *_ in addresses)  # not the usual dashboard
+        for route in ("/health", "/json/identity.json", "/status"):
+            with pytest.raises(urllib.error.HTTPError, match="404"):
+                urllib.request.urlopen(f"http://127.0.0.1:{addresses[0][1]}{route}", timeout=10)
+        for worker in cluster.scheduler.workers:
+            assert "127.0.0.1:" in worker
+    finally:
+        cluster.close()
