@@ -447,7 +447,7 @@ stages:
     again = capsys.readouterr().out.splitlines()
     assert again[0].startswith("night broken: 0 units ran, 10 up to date")
     assert again[1:] == summary[1:]
-    assert main(["status", night]) == 0
+    assert main(["status", night]) == 1  # the reported problems, as `run` exits 1
     assert sum(" problem: night: " in line for line in capsys.readouterr().out.splitlines()) == 6
     products = tmp_path / "out" / "broken"
     ingest = json.loads((products / "ingest" / "night" / "ingest_report.json").read_text())
