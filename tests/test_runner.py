@@ -1080,3 +1080,16 @@ def test_the_runs_own_dask_cluster_is_loopback_only_without_http_routes() -> Non
             assert "127.0.0.1:" in worker
     finally:
         cluster.close()
+
+
+def test_a_damaged_stretch_outside_the_selection_is_recomputed(toy, tmp_path) -> None:
+    """total reads every stretch of smooth; the damaged one is redone even
+    though the run was asked for other stretches."""
+    make_config, _ = toy
+    config = make_config()
+    assert run_night(config).ok
+    _flip_byte(night_dir(config) / "smooth/s0003/image.fits", 2880 + 8)
+    report = run_night(config, from_stage="smooth", stretches={0}, force=True)
+    assert [line.split(":")[0] for line in report.damaged] == ["smooth/s0003"]
+    assert not report.problems, report.format()
+    assert product_hashes(config) == product_hashes(_reference(tmp_path))

@@ -369,6 +369,9 @@ def _run_night(config, stage, from_stage, to_stage, stretches, force, progress) 
             if damaged and repairs < MAX_REPAIRS:
                 repairs += 1
                 plan[position:position] = _repair_stages(night, plan, position, damaged)
+                if wanted is not None:  # the damaged stretches must be redone too
+                    units = {unit for _, unit in damaged}
+                    wanted |= {s.index for s in night.stretches if s.id in units}
             if position == len(plan):
                 break
             current = plan[position]
@@ -411,8 +414,10 @@ def _with_recut_upstream(night: NightStore, selected: Sequence[Stage]) -> list[S
     return graph[start:first] + list(selected)
 
 
-def _take_damaged_out_of_use(night: NightStore, report: RunReport, repair: bool) -> list[str]:
-    """Move the sidecars of the damaged units found so far aside; return their stages."""
+def _take_damaged_out_of_use(
+    night: NightStore, report: RunReport, repair: bool
+) -> list[tuple[str, str]]:
+    """Move the sidecars of the damaged units found so far aside; return ``(stage, unit)``."""
     found = []
     what = "recomputed" if repair else f"not recomputed again after {MAX_REPAIRS} tries"
     for (name, unit), reason in list(night.damaged.items()):
@@ -420,7 +425,7 @@ def _take_damaged_out_of_use(night: NightStore, report: RunReport, repair: bool)
         mark_damaged(night.unit_dir(stage, unit), reason)
         log.error("damaged product in %s/%s: %s (%s)", name, unit, reason, what)
         report.damaged.append(f"{name}/{unit}: {reason} ({what})")
-        found.append(name)
+        found.append((name, unit))
     night.damaged.clear()
     if found:
         night.refresh()
@@ -428,11 +433,11 @@ def _take_damaged_out_of_use(night: NightStore, report: RunReport, repair: bool)
 
 
 def _repair_stages(
-    night: NightStore, plan: list[Stage], position: int, damaged: list[str]
+    night: NightStore, plan: list[Stage], position: int, damaged: list[tuple[str, str]]
 ) -> list[Stage]:
     """The stages to run again, from the earliest damaged one to the one just run."""
     graph = list(night.config.graph)
-    first = min(graph.index(night.stages[name]) for name in damaged)
+    first = min(graph.index(night.stages[name]) for name, _ in damaged)
     # found before anything ran: catch up to the first planned stage
     last = graph.index(plan[position - 1]) if position else graph.index(plan[0]) - 1
     return graph[first : last + 1]
