@@ -342,10 +342,12 @@ def run_night(
     restored afterwards.
     """
     with astropy_offline():
-        return _run_night(config, stage, from_stage, to_stage, stretches, force, progress)
+        return _run_night(config, stage, from_stage, to_stage, stretches, force, progress, verify)
 
 
-def _run_night(config, stage, from_stage, to_stage, stretches, force, progress) -> RunReport:
+def _run_night(
+    config, stage, from_stage, to_stage, stretches, force, progress, verify
+) -> RunReport:
     selected = select_stages(config.graph, stage, from_stage, to_stage)
     wanted = None if stretches is None else frozenset(stretches)
     progress = progress or no_progress
