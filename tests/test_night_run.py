@@ -318,6 +318,35 @@ def test_columns_can_come_from_another_night(tmp_path, capsys):
     assert "stages.columns.flat_file: no file" in capsys.readouterr().out
 
 
+@pytest.mark.parametrize("suffix", [".fits", ".json"])
+def test_a_columns_file_can_be_fits_or_json(tmp_path, suffix):
+    """flat_file as a FITS table or a JSON object of columns reads as the ECSV table does."""
+    import json
+
+    from pipeline.runner._store import read_external
+    from pipeline.stages.calibrate import adopt_columns
+
+    table = Table({"flat": [1.0, 0.98, 1.02], "dark": [0.0, 1.5, 0.25], "flags": [0, 4, 0]})
+    path = tmp_path / f"columns{suffix}"
+    if suffix == ".json":
+        path.write_text(json.dumps({name: table[name].tolist() for name in table.colnames}))
+    else:
+        table.write(path)
+    adopted = adopt_columns(read_external(path), 3, source=path.name)
+    for name in ("flat", "dark", "flags"):
+        np.testing.assert_array_equal(adopted[name], table[name])
+    assert adopted.meta["method"] == "external" and adopted.meta["source"] == path.name
+
+
+def test_a_columns_file_that_is_not_a_table_says_what_to_give(tmp_path):
+    from pipeline.stages.calibrate import adopt_columns
+
+    with pytest.raises(TypeError, match="holds a list, not a table"):
+        adopt_columns([1.0, 1.0], 2, source="columns.json")
+    with pytest.raises(ValueError, match="one list per column"):
+        adopt_columns({"flat": [1.0, 1.0], "dark": [0.0]}, 2, source="columns.json")
+
+
 def test_an_adopted_table_must_fit_the_camera():
     from pipeline.stages.calibrate import adopt_columns
 

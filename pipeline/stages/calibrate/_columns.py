@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import logging
 import warnings
+from collections.abc import Mapping
 
 import numpy as np
 from astropy.stats import mad_std
@@ -357,10 +358,12 @@ def adopt_columns(table: Table, n_columns: int, *, source: str = "") -> Table:
 
     Parameters
     ----------
-    table : astropy.table.Table
+    table : astropy.table.Table or mapping
         A table such as :func:`solve_columns` returns: one row per image
         column with at least ``flat`` (response, mean about 1) and ``dark``
-        (e- per pixel); ``flags`` (MaskBit) is kept if present.
+        (e- per pixel); ``flags`` (MaskBit) is kept if present.  A mapping of
+        column name to equal-length sequences (a JSON object) is read as such
+        a table.
     n_columns : int
         Image columns of this night's camera.
     source : str
@@ -377,7 +380,23 @@ def adopt_columns(table: Table, n_columns: int, *, source: str = "") -> Table:
     ------
     ValueError
         If a column is missing or the length is not ``n_columns``.
+    TypeError
+        If ``table`` is neither a table nor a mapping of columns.
     """
+    if isinstance(table, Mapping) and not isinstance(table, Table):
+        try:
+            table = Table({name: np.asarray(values) for name, values in table.items()})
+        except ValueError as error:
+            raise ValueError(
+                f"The columns file {source or ''} is a mapping whose columns cannot form a "
+                f"table ({error}); give one list per column, all of the camera's length."
+            ) from None
+    if not isinstance(table, Table):
+        raise TypeError(
+            f"The columns file {source or ''} holds a {type(table).__name__}, not a table; "
+            "give an .ecsv or FITS table, or a JSON object of columns such as "
+            '{"flat": [...], "dark": [...]}.'
+        )
     missing = [name for name in ("flat", "dark") if name not in table.colnames]
     if missing:
         raise ValueError(
