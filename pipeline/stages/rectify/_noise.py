@@ -122,12 +122,7 @@ class RectifiedNoise:
         return lag_y, _TAPS - 1 + int(drift)
 
     def covariance(
-        self,
-        lo: int,
-        hi: int,
-        lags: tuple[int, int],
-        *,
-        window: tuple[int, int] | None = None,
+        self, lo: int, hi: int, lags: tuple[int, int], *, dtype=np.float64, chunk: int = 256
     ) -> np.ndarray:
         """Noise covariance per unit input variance for rows ``[lo, hi)``.
 
@@ -137,22 +132,28 @@ class RectifiedNoise:
             Rectified rows (may reach beyond the image: those rows are 0).
         lags : (int, int)
             ``(L_y, L_x)`` as :meth:`lags` returns.
-        window : (int, int) or None, optional
-            Rows ``[start, stop)`` that exist (others count as absent, as in
-            a zero-padded copy); default the whole image.
+        dtype : numpy dtype, optional
+            Of the result (float32 halves the memory of a whole image's).
+        chunk : int, optional
+            Rows computed at once.
 
         Returns
         -------
         ndarray, shape (n_blocks, hi - lo, 2 L_y + 1, 2 L_x + 1)
             ``S_x S_y`` of the module docstring at ``[b, y - lo, L_y + l_y,
-            L_x + l_x]``; 0 where either row lies outside the image
-            or the window.
+            L_x + l_x]``; 0 where either row lies outside the image.
         """
         lag_y, lag_x = lags
+        out = np.zeros((self.shifts.shape[0], hi - lo, 2 * lag_y + 1, 2 * lag_x + 1), dtype)
+        for start in range(lo, hi, chunk):
+            stop = min(start + chunk, hi)
+            out[:, start - lo : stop - lo] = self._covariance_rows(np.arange(start, stop), lags)
+        return out
+
+    def _covariance_rows(self, rows: np.ndarray, lags: tuple[int, int]) -> np.ndarray:
+        lag_y, lag_x = lags
         n_y = self.n_y
-        first, last = (0, n_y) if window is None else (max(window[0], 0), min(window[1], n_y))
-        rows = np.arange(lo, hi)
-        inside = (rows >= first) & (rows < last)
+        inside = (rows >= 0) & (rows < n_y)
         y1 = np.clip(rows, 0, n_y - 1)
         w, u, base_x, base_y = self._weights
         # The pass-1 block that holds the strip row a pass-2 block reads at each row.
@@ -163,7 +164,7 @@ class RectifiedNoise:
         shifts_x = np.arange(-lag_x, lag_x + 1)
         for ly in range(-lag_y, lag_y + 1):
             y2 = rows + ly
-            both = inside & (y2 >= first) & (y2 < last)
+            both = inside & (y2 >= 0) & (y2 < n_y)
             if not both.any():
                 continue
             y2 = np.clip(y2, 0, n_y - 1)
@@ -190,7 +191,7 @@ class RectifiedNoise:
         variance = np.empty(self.shifts.shape)
         for lo in range(0, self.n_y, chunk):
             hi = min(lo + chunk, self.n_y)
-            covariance = self.covariance(lo, hi, lags)
+            covariance = self._covariance_rows(np.arange(lo, hi), lags)
             zero_frequency[:, lo:hi] = covariance.sum(axis=(2, 3))
             variance[:, lo:hi] = covariance[:, :, lags[0], lags[1]]
         return zero_frequency, variance
