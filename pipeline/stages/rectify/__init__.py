@@ -544,11 +544,13 @@ def rectify(
         positions=positions,
         jac_y=jac_y,
     )
-    zero_frequency, plane = (a.mean(axis=1) for a in noise.power())
-    widths = np.diff(breaks_x)
-    correlation = float(
-        np.average(zero_frequency, weights=widths) / np.average(plane, weights=widths)
-    )
+    correlation = None  # the deconvolution finds its own (and the covariance once)
+    if not deconvolve:
+        zero_frequency, plane = (a.mean(axis=1) for a in noise.power())
+        widths = np.diff(breaks_x)
+        correlation = float(
+            np.average(zero_frequency, weights=widths) / np.average(plane, weights=widths)
+        )
 
     kx, ky = _kernel_positions(x_start, max(x_stop, x_start + 1), frame.n_y, kernel_step)
     kernels = smear_kernels(model, frame, strip_map, kx, ky, kernel_samples)
