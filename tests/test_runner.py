@@ -938,6 +938,29 @@ def test_a_worker_writes_nothing_once_its_run_lost_the_lock(toy) -> None:
     assert sorted(p.name for p in night.unit_dir(stage, "night").iterdir()) == before
 
 
+def test_a_worker_writes_nothing_once_its_run_was_killed(toy) -> None:
+    """A run killed outright leaves its lock: the worker checks the run's process too."""
+    make_config, _ = toy
+    night = NightStore(make_config())
+    lock = night.root / LOCK_NAME
+    with RunLock(lock) as held:
+        assert run_night_stage_index(night, (lock, held.token)).ok
+        # The lock still holds the run's token, but its process is gone (a
+        # child that has exited and been reaped stands for the killed run).
+        record = json.loads(lock.read_text())
+        dead = subprocess.Popen([sys.executable, "-c", "pass"])
+        dead.wait()
+        lock.write_text(json.dumps({**record, "pid": dead.pid}))
+        stage = night.stages["index"]
+        hashes, specs, _ = night.inputs(stage, None)
+        before = sorted(p.name for p in night.unit_dir(stage, "night").iterdir())
+        outcome = execute_unit(night.task(stage, None, specs, hashes, False, (lock, held.token)))
+        lock.write_text(json.dumps(record))  # let RunLock release its own lock
+    assert not outcome.ok
+    assert f"(pid {dead.pid}) has ended" in outcome.error
+    assert sorted(p.name for p in night.unit_dir(stage, "night").iterdir()) == before
+
+
 def run_night_stage_index(night, lock):
     """Run the index unit as a worker of the run holding ``lock`` would."""
     stage = night.stages["index"]

@@ -239,11 +239,18 @@ def check_lock_held(path: Path, token: str) -> None:
 
     A worker calls this before it removes or commits a unit's products: once
     the run that started it is gone (its lock removed or taken over), it
-    writes nothing more.
+    writes nothing more.  A run killed outright leaves its lock behind, so on
+    the run's own host the run's process must also still be alive.
     """
     holder = read_lock(path)
     if not (isinstance(holder, dict) and holder.get("token") == token):
         raise RunLockedError(
             f"the run that started this worker no longer holds the lock {path}; "
+            "nothing written (the next run redoes this unit)"
+        )
+    pid = holder.get("pid")
+    if holder.get("host") == socket.gethostname() and isinstance(pid, int) and not pid_alive(pid):
+        raise RunLockedError(
+            f"the run that started this worker (pid {pid}) has ended; "
             "nothing written (the next run redoes this unit)"
         )
