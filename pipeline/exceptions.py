@@ -9,6 +9,7 @@ __all__ = [
     "CalibrationWarning",
     "ConfigError",
     "DamagedProductError",
+    "DetectWarning",
     "GeometryWarning",
     "IngestError",
     "PipelineError",
@@ -81,3 +82,7 @@ class CalibrationWarning(PipelineWarning):
 
 class RectifyWarning(PipelineWarning):
     """Rectification is degraded (e.g. too small an overlap between stretches)."""
+
+
+class DetectWarning(PipelineWarning):
+    """Source detection found nothing to measure or measured less reliably than usual."""

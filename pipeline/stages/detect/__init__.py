@@ -1,0 +1,537 @@
+"""Detect: find and measure point sources in rectified stretches.
+
+In a rectified product that is not deconvolved a star is the seeing profile
+averaged over its recorded TDI smear kernel, a curved streak whose first
+moment is the position the WCS maps to the sky.  Estimators that weight
+toward the peak (windowed centroids, round-profile fits) land near the apex
+of the bow.  This stage models each star as the seeing profile convolved
+with the smear kernel interpolated at its position
+(:mod:`pipeline.stages.detect._model`), with the seeing width fitted from
+the stretch's bright isolated stars, and fits flux, first-moment position and
+local background by least squares.  A deconvolved product (round stars) uses
+a point kernel.
+
+Steps (:func:`detect`)
+    1. Background and rms: photutils ``Background2D``.
+    2. Significance: filter matched to seeing x smear, per band of rows,
+       with the variance plane and the noise correlation of the resampling
+       (:mod:`pipeline.stages.detect._find`); segmentation and deblending with
+       photutils at ``threshold_sigma``.
+    3. Seeing FWHM from the brightest isolated sources (Brent search on the
+       summed chi-square of smear-aware fits), once per stretch and per band
+       of rows for the report.
+    4. Smear-aware PSF fit of every source (deblended children together),
+       aperture sums at ``aperture_radii`` seeing FWHMs with model aperture
+       corrections, shape from photutils ``SourceCatalog``, flags
+       (:class:`SourceFlag`).
+"""
+
+from __future__ import annotations
+
+import itertools
+import logging
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+from astropy import units as u
+from astropy.table import QTable, Table
+from astropy.wcs.utils import proj_plane_pixel_scales
+from photutils.segmentation import SourceCatalog
+from pydantic import BaseModel, ConfigDict, Field
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
+from scipy.spatial import cKDTree
+
+from pipeline.exceptions import DetectWarning
+from pipeline.masks import MaskBit, has_bits
+from pipeline.stages.detect._find import estimate_background, find_sources, significance_map
+from pipeline.stages.detect._measure import (
+    SourceFlag,
+    aperture_fluxes,
+    best_fwhm,
+    measure_groups,
+    seeing_curves,
+)
+from pipeline.stages.detect._model import KernelGrid, SeeingProfile, fit_stars, model_image
+
+__all__ = [
+    "DetectOptions",
+    "DetectResult",
+    "SeeingProfile",
+    "SourceFlag",
+    "detect",
+    "fit_stars",
+    "model_image",
+]
+
+log = logging.getLogger(__name__)
+
+#: Mask bits of pixels without data (rectify sets image and variance NaN there).
+_NO_DATA = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN | MaskBit.OUTSIDE
+
+
+class DetectOptions(BaseModel):
+    """Options of the detect stage (``stages.detect``); names are :func:`detect`'s keywords."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    threshold_sigma: float = Field(
+        5.0, gt=0, description="Matched-filter signal-to-noise a source must reach."
+    )
+    min_pixels: int = Field(
+        5, ge=1, description="Connected pixels above the threshold a source needs."
+    )
+    background_box: int = Field(64, ge=8, description="Background mesh size, pixels.")
+    filter_band: int = Field(
+        256, ge=16, description="Rows per band sharing one matched-filter template."
+    )
+    deblend_levels: int = Field(
+        32, ge=0, description="Thresholds tried when splitting a segment; 0: no deblending."
+    )
+    deblend_contrast: float = Field(
+        0.005, ge=0, le=1, description="Smallest flux fraction a split-off source may have."
+    )
+    seeing_shape: str = Field(
+        "moffat", pattern="^(gaussian|moffat)$", description="Seeing profile family."
+    )
+    moffat_beta: float = Field(3.5, gt=1.5, description="Moffat index of the seeing profile.")
+    fwhm_guess: float = Field(
+        3.0, gt=0, description="Seeing FWHM used for the first detection pass, pixels."
+    )
+    seeing_stars: int = Field(
+        20, ge=0, description="Bright isolated stars used to fit the seeing width."
+    )
+    seeing_min_snr: float = Field(
+        30.0, gt=0, description="Smallest matched-filter S/N of a star used for the seeing."
+    )
+    seeing_bands: int = Field(
+        4, ge=1, description="Bands across the chip with their own seeing fit (report)."
+    )
+    aperture_radii: tuple[float, ...] = Field(
+        (1.0, 2.0, 3.0), description="Aperture radii in units of the seeing FWHM."
+    )
+    find_in_residual: bool = Field(
+        True,
+        description="Search the image minus the fitted models once more for sources hidden "
+        "by brighter neighbours, then refit.",
+    )
+
+
+@dataclass(frozen=True)
+class DetectResult:
+    """What :func:`detect` returns.
+
+    Attributes
+    ----------
+    catalog : astropy.table.QTable
+        One row per source, units on every column (see :func:`detect`).
+    seeing : astropy.table.Table
+        Seeing FWHM of the stretch and per band of rows.
+    problems : list of str
+        One line per problem with the input.
+    """
+
+    catalog: QTable
+    seeing: Table
+    problems: list[str] = field(default_factory=list)
+
+
+def _candidates(cat, snr_peak, parent, min_snr, n_max):
+    """Bright sources alone in their segment, brightest first."""
+    counts = {}
+    for key in parent.values():
+        counts[key] = counts.get(key, 0) + 1
+    keys = [parent[int(label)] for label in cat.labels]
+    alone = np.array([counts[k] == 1 for k in keys])
+    ok = alone & (snr_peak >= min_snr) & np.isfinite(cat.x_centroid) & np.isfinite(cat.y_centroid)
+    order = np.argsort(-snr_peak)
+    chosen = [i for i in order if ok[i]][:n_max]
+    return chosen
+
+
+def _empty_catalog(radii) -> QTable:
+    return _catalog({}, radii, 0)
+
+
+def _catalog(values: dict, radii, n: int) -> QTable:
+    """Assemble the catalogue table with units."""
+    pix, e = u.pix, u.electron
+    spec = [
+        ("x", pix, "night rectified column (first moment; along the scan)"),
+        ("y", pix, "rectified row (first moment; across the scan, north up)"),
+        ("x_err", pix, "1-sigma error of x"),
+        ("y_err", pix, "1-sigma error of y"),
+        ("ra", u.deg, "ICRS right ascension from the product WCS"),
+        ("dec", u.deg, "ICRS declination from the product WCS"),
+        ("ra_err", u.arcsec, "1-sigma error along right ascension (on the sky)"),
+        ("dec_err", u.arcsec, "1-sigma error of declination"),
+        ("flux_psf", e, "smear-aware PSF flux"),
+        ("flux_psf_err", e, "1-sigma error of flux_psf"),
+        ("snr", u.dimensionless_unscaled, "flux_psf / flux_psf_err"),
+        ("background", e / pix, "local background (mesh + fitted offset)"),
+        ("fwhm", pix, "FWHM of the source's segment (second moments)"),
+        ("ellipticity", u.dimensionless_unscaled, "1 - b/a of the segment"),
+        ("angle", u.deg, "orientation of the major axis, from +x toward +y"),
+        ("chi2", u.dimensionless_unscaled, "reduced chi-square of the PSF fit"),
+        ("group", u.dimensionless_unscaled, "sources fitted together share a group"),
+        ("flags", u.dimensionless_unscaled, "SourceFlag bits"),
+    ]
+    table = QTable()
+    for name, unit, doc in spec:
+        dtype = np.int32 if name in ("group", "flags") else np.float64
+        column = np.asarray(values.get(name, np.zeros(n)), dtype=dtype)
+        table[name] = u.Quantity(column, unit, dtype=dtype)
+        table[name].info.description = doc
+    for j, r in enumerate(radii):
+        tag = f"{j + 1}"
+        for name, unit, doc in (
+            (f"flux_aper{tag}", e, f"aperture sum, radius {r} seeing FWHM"),
+            (f"flux_aper{tag}_err", e, "1-sigma error of the aperture sum"),
+            (f"aper{tag}_corr", u.dimensionless_unscaled, "model total / model in aperture"),
+        ):
+            column = np.asarray(values.get(name, np.zeros(n)), dtype=float)
+            table[name] = u.Quantity(column, unit)
+            table[name].info.description = doc
+    table.meta["flag_bits"] = {flag.name: int(flag) for flag in SourceFlag}
+    table.meta["aperture_radii_fwhm"] = [float(r) for r in radii]
+    return table
+
+
+def _seeing_table(rows) -> Table:
+    table = Table(
+        rows=rows,
+        names=("y_lo", "y_hi", "n_stars", "fwhm"),
+        dtype=(np.int64, np.int64, np.int64, float),
+    )
+    table["y_lo"].unit = table["y_hi"].unit = u.pix
+    table["fwhm"].unit = u.pix
+    table["n_stars"].unit = u.dimensionless_unscaled
+    table.meta["description"] = (
+        "Seeing FWHM fitted from bright isolated stars: the whole stretch (first row), then "
+        "bands of rows across the chip; fwhm NaN where no star qualified."
+    )
+    return table
+
+
+def detect(
+    image: np.ndarray,
+    variance: np.ndarray,
+    mask: np.ndarray,
+    smear_kernels: Table,
+    *,
+    wcs=None,
+    x_start: int = 0,
+    noise_correlation: float = 1.0,
+    deconvolved: bool = False,
+    own_columns: tuple[int, int] | None = None,
+    threshold_sigma: float = 5.0,
+    min_pixels: int = 5,
+    background_box: int = 64,
+    filter_band: int = 256,
+    deblend_levels: int = 32,
+    deblend_contrast: float = 0.005,
+    seeing_shape: str = "moffat",
+    moffat_beta: float = 3.5,
+    fwhm_guess: float = 3.0,
+    seeing_stars: int = 20,
+    seeing_min_snr: float = 30.0,
+    seeing_bands: int = 4,
+    aperture_radii: tuple[float, ...] = (1.0, 2.0, 3.0),
+    find_in_residual: bool = True,
+) -> DetectResult:
+    """Detect and measure the point sources of a rectified stretch.
+
+    Parameters
+    ----------
+    image, variance : ndarray, shape (ny, nx)
+        Rectified electrons and e^2; axis 0 is ``y`` (across the scan), axis 1
+        ``x`` (along the scan).  NaN where there is no data.
+    mask : ndarray of uint16, shape (ny, nx)
+        :class:`pipeline.masks.MaskBit` bits.
+    smear_kernels : astropy.table.Table
+        rectify's ``smear_kernels`` product (night pixel positions).
+    wcs : astropy.wcs.WCS or None
+        Celestial WCS of the arrays; None leaves ``ra``/``dec`` NaN.
+    x_start : int
+        Night column of the arrays' first column.
+    noise_correlation : float
+        rectify's ``NOISECOR`` (>= 1).
+    deconvolved : bool
+        The product was deconvolved (round stars): the smear kernel is not
+        applied.
+    own_columns : (int, int) or None
+        Array columns ``[a, b)`` that belong to this stretch when the arrays
+        include a neighbour's edge; only sources whose fitted ``x`` lies in
+        them are kept (each star of the night is listed once).  None: all.
+    threshold_sigma, min_pixels, background_box, filter_band, deblend_levels,
+    deblend_contrast, seeing_shape, moffat_beta, fwhm_guess, seeing_stars,
+    seeing_min_snr, seeing_bands, aperture_radii, find_in_residual
+        See :class:`DetectOptions`.
+
+    Returns
+    -------
+    DetectResult
+        The catalogue: ``x``, ``y`` (night rectified pixels, first moment),
+        errors, ``ra``, ``dec`` (deg), ``flux_psf`` (e-), aperture sums
+        ``flux_aperN`` with corrections ``aperN_corr``, ``background`` (e-/pix),
+        shape, ``snr``, ``flags`` (:class:`SourceFlag`); and the seeing table.
+    """
+    image = np.asarray(image, dtype=float)
+    variance = np.asarray(variance, dtype=float)
+    mask = np.asarray(mask)
+    if image.ndim != 2 or variance.shape != image.shape or mask.shape != image.shape:
+        raise ValueError(
+            f"image, variance and mask must be 2-D arrays of one shape; got {image.shape}, "
+            f"{variance.shape} and {mask.shape}."
+        )
+    if not noise_correlation >= 1.0 - 1e-6:
+        raise ValueError(f"noise_correlation must be >= 1; got {noise_correlation!r}.")
+    radii = tuple(float(r) for r in aperture_radii)
+    profile = SeeingProfile(float(fwhm_guess), seeing_shape, moffat_beta)
+    no_data = has_bits(mask, _NO_DATA) | ~np.isfinite(image) | ~(variance > 0)
+    empty_seeing = _seeing_table([(0, image.shape[0], 0, np.nan)])
+    if no_data.all():
+        return DetectResult(
+            _empty_catalog(radii),
+            empty_seeing,
+            [f"no usable pixel in the {image.shape[0]} x {image.shape[1]} stretch (all flagged)"],
+        )
+
+    background, _ = estimate_background(image, no_data, background_box)
+    residual = np.where(no_data, np.nan, image - background)
+    var = np.where(no_data, np.nan, variance)
+    grid = KernelGrid(smear_kernels)
+    x_centre = x_start + 0.5 * (image.shape[1] - 1)
+
+    def segment(prof, data=None):
+        snr = significance_map(
+            residual if data is None else data,
+            var,
+            _PointGrid() if deconvolved else grid,
+            prof,
+            x_centre=x_centre,
+            band=filter_band,
+            noise_correlation=noise_correlation,
+        )
+        return snr, *find_sources(
+            snr,
+            no_data,
+            threshold=threshold_sigma,
+            min_pixels=min_pixels,
+            deblend_levels=deblend_levels,
+            deblend_contrast=deblend_contrast,
+        )
+
+    snr, segm, parent = segment(profile)
+    if segm is None:
+        warnings.warn(
+            f"no source above {threshold_sigma} sigma in the stretch at night columns "
+            f"[{x_start}, {x_start + image.shape[1]}); its catalogue is empty.",
+            DetectWarning,
+            stacklevel=2,
+        )
+        return DetectResult(_empty_catalog(radii), empty_seeing)
+
+    data_for_cat = np.where(no_data, 0.0, residual)
+    cat = SourceCatalog(data_for_cat, segm, mask=no_data)
+    peak = np.array([snr[s.slices][s.data.astype(bool)].max() for s in segm.segments])
+    chosen = _candidates(cat, peak, parent, seeing_min_snr, seeing_stars)
+    cx, cy = np.asarray(cat.x_centroid), np.asarray(cat.y_centroid)
+    point = deconvolved
+    fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
+    seeing_y, curves = seeing_curves(
+        residual,
+        var,
+        [(cx[i], cy[i]) for i in chosen],
+        grid,
+        profile,
+        fwhm_grid,
+        x_start=x_start,
+        point_kernel=point,
+    )
+    n_used = len(seeing_y)
+    seeing_rows = [(0, image.shape[0], n_used, np.nan)]
+    if n_used:
+        fwhm = best_fwhm(fwhm_grid, curves)
+        seeing_rows[0] = (0, image.shape[0], n_used, fwhm)
+        edges = np.linspace(0, image.shape[0], seeing_bands + 1).astype(int)
+        for lo, hi in itertools.pairwise(edges):
+            inside = (seeing_y >= lo) & (seeing_y < hi)
+            band_fwhm = best_fwhm(fwhm_grid, curves[inside]) if inside.any() else np.nan
+            seeing_rows.append((lo, hi, int(inside.sum()), band_fwhm))
+        profile = profile.with_fwhm(fwhm)
+        if abs(fwhm - fwhm_guess) > 0.25 * fwhm_guess:  # filter far off: detect again
+            snr, segm, parent = segment(profile)
+            cat = SourceCatalog(data_for_cat, segm, mask=no_data)
+            cx, cy = np.asarray(cat.x_centroid), np.asarray(cat.y_centroid)
+    else:
+        warnings.warn(
+            f"no bright isolated star (S/N >= {seeing_min_snr}) to fit the seeing; using "
+            f"fwhm_guess = {fwhm_guess} px.",
+            DetectWarning,
+            stacklevel=2,
+        )
+    log.debug("seeing FWHM %.3f px from %d stars", profile.fwhm, n_used)
+
+    shape_cols = [
+        np.asarray(q.value, dtype=float) for q in (cat.fwhm, cat.ellipticity, cat.orientation)
+    ]
+    blended = np.asarray(_deblended(cat.labels, parent))
+
+    def fit_all(px, py, split):
+        members = _groups(px, py, grid, x_start, profile.fwhm, point)
+        result = measure_groups(
+            residual,
+            var,
+            mask,
+            [[(px[i], py[i]) for i in g] for g in members],
+            grid,
+            profile,
+            x_start=x_start,
+            point_kernel=point,
+            noise_correlation=noise_correlation,
+            own_columns=own_columns,
+            blended=[[split[i] for i in g] for g in members],
+        )
+        return members, result
+
+    members, fits_ = fit_all(cx, cy, blended)
+    if find_in_residual:
+        # Second pass: sources hidden by brighter neighbours show up in the image
+        # minus the fitted models.
+        cleaned = residual - _models(residual.shape, fits_, profile)
+        _snr2, segm2, _parent2 = segment(profile, cleaned)
+        if segm2 is not None:
+            cat2 = SourceCatalog(np.where(no_data, 0.0, cleaned), segm2, mask=no_data)
+            nx2, ny2 = np.asarray(cat2.x_centroid), np.asarray(cat2.y_centroid)
+            near = cKDTree(np.column_stack([fits_["x"], fits_["y"]])).query(
+                np.column_stack([nx2, ny2])
+            )[0]
+            new = np.flatnonzero((near > 0.5 * profile.fwhm) & np.isfinite(nx2))
+            if new.size:
+                log.debug("%d more sources in the residual image", new.size)
+                order0 = [i for g in members for i in g]
+                px = np.empty(len(cx))
+                py = np.empty(len(cy))
+                px[order0], py[order0] = fits_["x"], fits_["y"]
+                cx = np.concatenate([px, nx2[new]])
+                cy = np.concatenate([py, ny2[new]])
+                blended = np.concatenate([blended, np.ones(new.size, bool)])
+                more = [
+                    np.asarray(q.value, dtype=float)[new]
+                    for q in (cat2.fwhm, cat2.ellipticity, cat2.orientation)
+                ]
+                shape_cols = [
+                    np.concatenate([c0, c1]) for c0, c1 in zip(shape_cols, more, strict=True)
+                ]
+                members, fits_ = fit_all(cx, cy, blended)
+    order = [i for g in members for i in g]
+    keep = np.ones(len(order), bool)
+    if own_columns is not None:
+        keep = (fits_["x"] >= own_columns[0] - 0.5) & (fits_["x"] < own_columns[1] - 0.5)
+    idx = np.flatnonzero(keep)
+    x, y = fits_["x"][idx], fits_["y"][idx]
+    kernels = [fits_["kernel"][i] for i in idx]
+    ap_flux, ap_err, ap_corr = aperture_fluxes(
+        residual,
+        var,
+        no_data,
+        x,
+        y,
+        kernels,
+        profile,
+        [r * profile.fwhm for r in radii],
+        noise_correlation,
+    )
+    src = np.asarray(order)[idx]
+    values = {
+        "x": x + x_start,
+        "y": y,
+        "x_err": fits_["x_err"][idx],
+        "y_err": fits_["y_err"][idx],
+        "flux_psf": fits_["flux"][idx],
+        "flux_psf_err": fits_["flux_err"][idx],
+        "chi2": fits_["chi2"][idx],
+        "group": fits_["group"][idx],
+        "flags": fits_["flags"][idx],
+        "fwhm": shape_cols[0][src],
+        "ellipticity": shape_cols[1][src],
+        "angle": shape_cols[2][src],
+    }
+    values["snr"] = values["flux_psf"] / values["flux_psf_err"]
+    yi = np.clip(np.round(y).astype(int), 0, image.shape[0] - 1)
+    xi = np.clip(np.round(x).astype(int), 0, image.shape[1] - 1)
+    values["background"] = background[yi, xi] + fits_["background"][idx]
+    for j in range(len(radii)):
+        values[f"flux_aper{j + 1}"] = ap_flux[:, j]
+        values[f"flux_aper{j + 1}_err"] = ap_err[:, j]
+        values[f"aper{j + 1}_corr"] = ap_corr[:, j]
+    values["ra"] = values["dec"] = values["ra_err"] = values["dec_err"] = np.full(x.size, np.nan)
+    if wcs is not None and x.size:
+        ra, dec = wcs.all_pix2world(x, y, 0)
+        scale = proj_plane_pixel_scales(wcs.celestial) * 3600.0  # arcsec / pix along x, y
+        values["ra"], values["dec"] = ra, dec
+        values["ra_err"] = values["x_err"] * float(scale[0])
+        values["dec_err"] = values["y_err"] * float(scale[1])
+    catalog = _catalog(values, radii, x.size)
+    catalog.meta["seeing_fwhm"] = float(profile.fwhm)
+    catalog.meta["seeing_shape"] = seeing_shape
+    return DetectResult(catalog, _seeing_table(seeing_rows))
+
+
+def _groups(cx, cy, grid, x_start, fwhm, point) -> list[list[int]]:
+    """Sources whose fit stamps overlap, to be fitted together (index lists)."""
+    n = len(cx)
+    if point:
+        hx = hy = np.zeros(n)
+    else:
+        ext = [grid(x_start + x, y) for x, y in zip(cx, cy, strict=True)]
+        hx = np.array([np.max(np.abs(dx)) for dx, _ in ext])
+        hy = np.array([np.max(np.abs(dy)) for _, dy in ext])
+    hx = hx + 1.5 * fwhm + 1.0
+    hy = hy + 1.5 * fwhm + 1.0
+    pairs = np.array(
+        sorted(cKDTree(np.column_stack([cx, cy])).query_pairs(2.0 * float(np.hypot(hx, hy).max()))),
+        dtype=int,
+    ).reshape(-1, 2)
+    i, j = pairs[:, 0], pairs[:, 1]
+    close = (np.abs(cx[i] - cx[j]) < hx[i] + hx[j]) & (np.abs(cy[i] - cy[j]) < hy[i] + hy[j])
+    graph = coo_matrix((np.ones(close.sum()), (i[close], j[close])), shape=(n, n))
+    _, labels = connected_components(graph, directed=False)
+    order = np.argsort(labels, kind="stable")
+    return [list(g) for g in np.split(order, np.flatnonzero(np.diff(labels[order])) + 1)]
+
+
+def _models(shape, fits_, profile) -> np.ndarray:
+    """Image of all fitted sources (their PSF models), e-."""
+    out = np.zeros(shape)
+    for x, y, flux, (dx, dy) in zip(
+        fits_["x"], fits_["y"], fits_["flux"], fits_["kernel"], strict=True
+    ):
+        if not np.isfinite(flux):
+            continue
+        hx = int(np.ceil(3.0 * profile.fwhm + np.max(np.abs(dx))))
+        hy = int(np.ceil(3.0 * profile.fwhm + np.max(np.abs(dy))))
+        x0, y0 = max(round(x) - hx, 0), max(round(y) - hy, 0)
+        x1, y1 = min(round(x) + hx + 1, shape[1]), min(round(y) + hy + 1, shape[0])
+        if x1 > x0 and y1 > y0:
+            out[y0:y1, x0:x1] += model_image(
+                (y1 - y0, x1 - x0), x - x0, y - y0, dx, dy, profile, flux
+            )
+    return out
+
+
+def _deblended(labels, parent) -> list[bool]:
+    """Whether each source was split off a larger segment by the deblending."""
+    counts: dict[int, int] = {}
+    for key in parent.values():
+        counts[key] = counts.get(key, 0) + 1
+    return [counts[parent[int(label)]] > 1 for label in labels]
+
+
+class _PointGrid:
+    """Kernel lookup for a deconvolved product: no smear."""
+
+    def __call__(self, x, y):
+        return np.zeros(1), np.zeros(1)

@@ -1,0 +1,320 @@
+"""Per-source measurement: seeing width, smear-aware PSF fits, apertures, flags."""
+
+from __future__ import annotations
+
+import enum
+import logging
+
+import numpy as np
+from photutils.aperture import CircularAperture, aperture_photometry
+
+from pipeline.masks import MaskBit, has_bits
+from pipeline.stages.detect._model import (
+    FitResult,
+    KernelGrid,
+    SeeingProfile,
+    fit_stars,
+    model_image,
+    reduce_kernel,
+)
+
+__all__ = ["SourceFlag", "aperture_fluxes", "best_fwhm", "measure_groups", "seeing_curves"]
+
+log = logging.getLogger(__name__)
+
+
+class SourceFlag(enum.IntFlag):
+    """Bits of a catalogue source's ``flags`` column.
+
+    SATURATED
+        A saturated or bleed pixel lies in the star's core (where the unit
+        model exceeds 5 % of its peak).
+    NEAR_FLAGGED
+        A pixel with any mask bit lies in the fitted stamp.
+    BLENDED
+        Fitted together with other sources of the same deblended segment.
+    EDGE
+        The stamp is cut by the image edge or contains no-data pixels.
+    COSMIC_RAY
+        A pixel flagged as a cosmic-ray hit lies in the star's core.
+    OVERLAP
+        The stamp reaches into a neighbouring stretch's columns (the star was
+        measured with the neighbour's edge).
+    FIT_FAILED
+        The fit did not converge, or moved the star by more than a FWHM, or
+        gave a non-positive flux; the position is the segment's first moment
+        and the PSF flux is NaN.
+    """
+
+    SATURATED = 1 << 0
+    NEAR_FLAGGED = 1 << 1
+    BLENDED = 1 << 2
+    EDGE = 1 << 3
+    COSMIC_RAY = 1 << 4
+    OVERLAP = 1 << 5
+    FIT_FAILED = 1 << 6
+
+
+def _stamp(shape, xs, ys, kernels, fwhm):
+    """Stamp bounds ``(y0, y1, x0, x1)`` around stars, and whether they were clipped."""
+    ext_x = max(float(np.max(np.abs(dx))) for dx, _ in kernels)
+    ext_y = max(float(np.max(np.abs(dy))) for _, dy in kernels)
+    hx = 1.5 * fwhm + ext_x + 1.0
+    hy = 1.5 * fwhm + ext_y + 1.0
+    y0 = int(np.floor(np.min(ys) - hy))
+    y1 = int(np.ceil(np.max(ys) + hy)) + 1
+    x0 = int(np.floor(np.min(xs) - hx))
+    x1 = int(np.ceil(np.max(xs) + hx)) + 1
+    clipped = y0 < 0 or x0 < 0 or y1 > shape[0] or x1 > shape[1]
+    return max(y0, 0), min(y1, shape[0]), max(x0, 0), min(x1, shape[1]), clipped
+
+
+def _kernels_at(grid: KernelGrid, x_start, xs, ys, spacing, point: bool):
+    if point:
+        return [(np.zeros(1), np.zeros(1)) for _ in xs]
+    return [reduce_kernel(*grid(x_start + x, y), spacing) for x, y in zip(xs, ys, strict=True)]
+
+
+def seeing_curves(
+    residual,
+    variance,
+    candidates,
+    grid: KernelGrid,
+    profile: SeeingProfile,
+    fwhm_grid: np.ndarray,
+    *,
+    x_start: int = 0,
+    point_kernel: bool = False,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Chi-square of bright stars' fits as a function of the seeing FWHM.
+
+    Each star's position is fitted once with ``profile`` (the first moment
+    of a symmetric profile averaged over a zero-mean kernel does not depend
+    on the profile's width); then, for each trial FWHM, flux and background
+    are solved linearly at that position and the chi-square recorded.
+
+    Parameters
+    ----------
+    residual, variance : ndarray, shape (ny, nx)
+        Background-subtracted image and its variance.
+    candidates : sequence of (x, y)
+        Starting positions of the stars (array pixels).
+    grid : KernelGrid
+    profile : SeeingProfile
+        Family and starting width.
+    fwhm_grid : ndarray, shape (m,)
+        Trial FWHMs, pixels.
+    x_start : int
+        Night column of the array's first column.
+    point_kernel : bool
+        The product is deconvolved: no smear.
+
+    Returns
+    -------
+    y : ndarray, shape (n,)
+        Row of each star used (stars whose stamp is cut by the edge are
+        dropped).
+    chi2 : ndarray, shape (n, m)
+        Chi-square of each star at each trial FWHM.
+    """
+    rows, curves = [], []
+    for x, y in candidates:
+        kern = _kernels_at(grid, x_start, [x], [y], profile.fwhm / 8, point_kernel)
+        y0, y1, x0, x1, clipped = _stamp(residual.shape, [x], [y], kern, 1.5 * profile.fwhm)
+        if clipped:
+            continue
+        data, var = residual[y0:y1, x0:x1], variance[y0:y1, x0:x1]
+        fit = fit_stars(data, var, [x], [y], kern, profile, origin=(y0, x0))
+        if not (fit.success and fit.flux[0] > 0):
+            continue
+        good = np.isfinite(data) & np.isfinite(var) & (var > 0)
+        sw = np.sqrt(1.0 / var[good])
+        d = data[good] * sw
+        curve = []
+        for fwhm in fwhm_grid:
+            unit = model_image(
+                data.shape, fit.x[0] - x0, fit.y[0] - y0, *kern[0], profile.with_fwhm(fwhm)
+            )
+            design = np.column_stack([np.ones(d.size), unit[good]]) * sw[:, None]
+            coef = np.linalg.lstsq(design, d, rcond=None)[0]
+            curve.append(float(np.sum((design @ coef - d) ** 2)))
+        rows.append(y)
+        curves.append(curve)
+    return np.asarray(rows, dtype=float), np.asarray(curves, dtype=float).reshape(
+        -1, len(fwhm_grid)
+    )
+
+
+def best_fwhm(fwhm_grid: np.ndarray, chi2: np.ndarray) -> float:
+    """FWHM at the minimum of summed chi-square curves (parabola through the lowest 3)."""
+    total = np.sum(chi2, axis=0)
+    k = int(np.clip(np.argmin(total), 1, len(fwhm_grid) - 2))
+    a, b, c = total[k - 1 : k + 2]
+    h = fwhm_grid[k + 1] - fwhm_grid[k]
+    denom = a - 2 * b + c
+    shift = 0.5 * (a - c) / denom if denom > 0 else 0.0
+    return float(fwhm_grid[k] + np.clip(shift, -1.0, 1.0) * h)
+
+
+def _flags_for(mask, core, stamp_box, clipped, blended, overlap) -> int:
+    y0, y1, x0, x1 = stamp_box
+    stamp_mask = mask[y0:y1, x0:x1]
+    flags = 0
+    if clipped or has_bits(stamp_mask, MaskBit.OUTSIDE | MaskBit.GAP | MaskBit.NONFINITE).any():
+        flags |= SourceFlag.EDGE
+    if np.any(stamp_mask):
+        flags |= SourceFlag.NEAR_FLAGGED
+    if has_bits(stamp_mask[core], MaskBit.SATURATED | MaskBit.BLEED).any():
+        flags |= SourceFlag.SATURATED
+    if has_bits(stamp_mask[core], MaskBit.COSMIC_RAY).any():
+        flags |= SourceFlag.COSMIC_RAY
+    if blended:
+        flags |= SourceFlag.BLENDED
+    if overlap:
+        flags |= SourceFlag.OVERLAP
+    return int(flags)
+
+
+def measure_groups(
+    residual,
+    variance,
+    mask,
+    groups,
+    grid: KernelGrid,
+    profile: SeeingProfile,
+    *,
+    x_start: int = 0,
+    point_kernel: bool = False,
+    noise_correlation: float = 1.0,
+    own_columns: tuple[int, int] | None = None,
+    blended: list[list[bool]] | None = None,
+) -> dict[str, np.ndarray]:
+    """Fit each group of sources with the smear-aware model.
+
+    Parameters
+    ----------
+    residual, variance, mask : ndarray, shape (ny, nx)
+        Background-subtracted image (e-), variance (e^2), mask bits.
+    groups : list of list of (x, y)
+        Starting positions of sources fitted together (array pixels).
+    grid, profile, x_start, point_kernel, noise_correlation
+        See :func:`fit_seeing` and :func:`~pipeline.stages.detect._model.fit_stars`.
+    own_columns : (int, int) or None
+        Array columns ``[a, b)`` that belong to this stretch; stamps reaching
+        beyond are flagged OVERLAP.
+    blended : list of list of bool or None
+        Per group and member: split off a larger segment by the deblending
+        (flagged BLENDED).
+
+    Returns
+    -------
+    dict of ndarray
+        Per source: ``x``, ``y``, ``x_err``, ``y_err``, ``flux``,
+        ``flux_err``, ``background`` (fitted offset), ``chi2``, ``flags``,
+        ``group``, and ``kernel`` (list of the reduced kernels used).
+    """
+    out = {
+        k: []
+        for k in (
+            "x",
+            "y",
+            "x_err",
+            "y_err",
+            "flux",
+            "flux_err",
+            "background",
+            "chi2",
+            "flags",
+            "group",
+            "kernel",
+        )
+    }
+    spacing = profile.fwhm / 8.0  # sample spacing well below the seeing sigma (fwhm / 2.35)
+    for index, members in enumerate(groups):
+        xs = np.array([m[0] for m in members], dtype=float)
+        ys = np.array([m[1] for m in members], dtype=float)
+        kern = _kernels_at(grid, x_start, xs, ys, spacing, point_kernel)
+        y0, y1, x0, x1, clipped = _stamp(residual.shape, xs, ys, kern, profile.fwhm)
+        overlap = own_columns is not None and (x0 < own_columns[0] or x1 > own_columns[1])
+        fit: FitResult = fit_stars(
+            residual[y0:y1, x0:x1],
+            variance[y0:y1, x0:x1],
+            xs,
+            ys,
+            kern,
+            profile,
+            origin=(y0, x0),
+            noise_correlation=noise_correlation,
+        )
+        moved = np.hypot(fit.x - xs, fit.y - ys) > profile.fwhm
+        failed = moved | ~(fit.flux > 0) | (not fit.success)
+        for i in range(xs.size):
+            unit = model_image((y1 - y0, x1 - x0), fit.x[i] - x0, fit.y[i] - y0, *kern[i], profile)
+            core = unit > 0.05 * unit.max()
+            split = bool(blended[index][i]) if blended is not None else False
+            flags = _flags_for(mask, core, (y0, y1, x0, x1), clipped, split, overlap)
+            if failed[i]:
+                flags |= SourceFlag.FIT_FAILED
+            out["x"].append(xs[i] if failed[i] else fit.x[i])
+            out["y"].append(ys[i] if failed[i] else fit.y[i])
+            out["x_err"].append(np.nan if failed[i] else fit.x_err[i])
+            out["y_err"].append(np.nan if failed[i] else fit.y_err[i])
+            out["flux"].append(np.nan if failed[i] else fit.flux[i])
+            out["flux_err"].append(np.nan if failed[i] else fit.flux_err[i])
+            out["background"].append(fit.background)
+            out["chi2"].append(fit.chi2)
+            out["flags"].append(flags)
+            out["group"].append(index)
+            out["kernel"].append(kern[i])
+    kernels = out.pop("kernel")
+    result = {k: np.asarray(v) for k, v in out.items()}
+    result["kernel"] = kernels
+    return result
+
+
+def aperture_fluxes(residual, variance, no_data, x, y, kernels, profile, radii, noise_correlation):
+    """Aperture sums and their model-based aperture corrections.
+
+    Parameters
+    ----------
+    residual, variance : ndarray, shape (ny, nx)
+    no_data : ndarray of bool
+    x, y : ndarray, shape (n,)
+        Source positions (array pixels).
+    kernels : list of (dx, dy)
+        Smear kernels of the sources.
+    profile : SeeingProfile
+    radii : sequence of float
+        Aperture radii, pixels.
+    noise_correlation : float
+
+    Returns
+    -------
+    flux, flux_err, correction : ndarray, shape (n, n_radii)
+        Sums (e-), their errors and the factor (model total / model inside
+        the aperture) that turns a sum into a total flux.
+    """
+    n = len(x)
+    flux = np.full((n, len(radii)), np.nan)
+    err = np.full((n, len(radii)), np.nan)
+    corr = np.full((n, len(radii)), np.nan)
+    if n == 0:
+        return flux, err, corr
+    positions = np.column_stack([x, y])
+    error = np.sqrt(np.where(no_data, 0.0, variance) * noise_correlation)
+    data = np.where(no_data, 0.0, residual)
+    for j, r in enumerate(radii):
+        table = aperture_photometry(data, CircularAperture(positions, r), error=error, mask=no_data)
+        flux[:, j] = np.asarray(table["aperture_sum"])
+        err[:, j] = np.asarray(table["aperture_sum_err"])
+    rmax = max(radii)
+    for i in range(n):
+        dx, dy = kernels[i]
+        hx = int(np.ceil(rmax + 4 * profile.fwhm + np.max(np.abs(dx))))
+        hy = int(np.ceil(rmax + 4 * profile.fwhm + np.max(np.abs(dy))))
+        fx, fy = x[i] - np.floor(x[i]), y[i] - np.floor(y[i])
+        unit = model_image((2 * hy + 1, 2 * hx + 1), hx + fx, hy + fy, dx, dy, profile)
+        for j, r in enumerate(radii):
+            inside = CircularAperture((hx + fx, hy + fy), r).to_mask(method="exact").multiply(unit)
+            corr[i, j] = 1.0 / np.sum(inside)
+    return flux, err, corr
