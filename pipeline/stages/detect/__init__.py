@@ -52,6 +52,7 @@ from pipeline.stages.detect._measure import (
     best_fwhm,
     measure_groups,
     seeing_curves,
+    single_stars,
 )
 from pipeline.stages.detect._model import KernelGrid, SeeingProfile, fit_stars, model_image
 
@@ -77,14 +78,14 @@ class DetectOptions(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
     threshold_sigma: float = Field(
-        5.0, gt=0, description="Matched-filter signal-to-noise a source must reach."
+        4.0, gt=0, description="Matched-filter signal-to-noise a source must reach."
     )
     min_pixels: int = Field(
-        5, ge=1, description="Connected pixels above the threshold a source needs."
+        3, ge=1, description="Connected pixels above the threshold a source needs."
     )
     background_box: int = Field(64, ge=8, description="Background mesh size, pixels.")
     filter_band: int = Field(
-        256, ge=16, description="Rows per band sharing one matched-filter template."
+        32, ge=8, description="Rows per band sharing one matched-filter template."
     )
     deblend_levels: int = Field(
         32, ge=0, description="Thresholds tried when splitting a segment; 0: no deblending."
@@ -137,14 +138,11 @@ class DetectResult:
     problems: list[str] = field(default_factory=list)
 
 
-def _candidates(cat, snr_peak, parent, min_snr, n_max):
-    """Bright sources alone in their segment, brightest first."""
-    counts = {}
-    for key in parent.values():
-        counts[key] = counts.get(key, 0) + 1
-    keys = [parent[int(label)] for label in cat.labels]
-    alone = np.array([counts[k] == 1 for k in keys])
-    ok = alone & (snr_peak >= min_snr) & np.isfinite(cat.x_centroid) & np.isfinite(cat.y_centroid)
+def _candidates(cat, snr_peak, isolated, min_snr, n_max):
+    """Bright isolated sources, brightest first."""
+    ok = (
+        isolated & (snr_peak >= min_snr) & np.isfinite(cat.x_centroid) & np.isfinite(cat.y_centroid)
+    )
     order = np.argsort(-snr_peak)
     chosen = [i for i in order if ok[i]][:n_max]
     return chosen
@@ -225,10 +223,10 @@ def detect(
     noise_correlation: float = 1.0,
     deconvolved: bool = False,
     own_columns: tuple[int, int] | None = None,
-    threshold_sigma: float = 5.0,
-    min_pixels: int = 5,
+    threshold_sigma: float = 4.0,
+    min_pixels: int = 3,
     background_box: int = 64,
-    filter_band: int = 256,
+    filter_band: int = 32,
     deblend_levels: int = 32,
     deblend_contrast: float = 0.005,
     seeing_shape: str = "moffat",
@@ -336,35 +334,52 @@ def detect(
     data_for_cat = np.where(no_data, 0.0, residual)
     cat = SourceCatalog(data_for_cat, segm, mask=no_data)
     peak = np.array([snr[s.slices][s.data.astype(bool)].max() for s in segm.segments])
-    chosen = _candidates(cat, peak, parent, seeing_min_snr, seeing_stars)
     cx, cy = np.asarray(cat.x_centroid), np.asarray(cat.y_centroid)
     point = deconvolved
     fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
-    seeing_y, curves = seeing_curves(
-        residual,
-        var,
-        [(cx[i], cy[i]) for i in chosen],
-        grid,
-        profile,
-        fwhm_grid,
-        x_start=x_start,
-        point_kernel=point,
-    )
-    n_used = len(seeing_y)
-    seeing_rows = [(0, image.shape[0], n_used, np.nan)]
-    if n_used:
-        fwhm = best_fwhm(fwhm_grid, curves)
-        seeing_rows[0] = (0, image.shape[0], n_used, fwhm)
+
+    def fit_seeing(px, py, brightness, split, prof):
+        """Seeing FWHM (or None) and the seeing table rows from isolated bright sources."""
+        # Isolated: no other source within twice the reach of a fit stamp.
+        isolated = np.zeros(len(px), bool)
+        for members in _groups(px, py, grid, x_start, 2.0 * prof.fwhm + 2.0, point):
+            isolated[members] = len(members) == 1
+        ok = isolated & ~split & (brightness >= seeing_min_snr) & np.isfinite(px + py)
+        chosen = [i for i in np.argsort(-brightness) if ok[i]][:seeing_stars]
+        ys_, curves = seeing_curves(
+            residual,
+            var,
+            [(px[i], py[i]) for i in chosen],
+            grid,
+            prof,
+            fwhm_grid,
+            x_start=x_start,
+            point_kernel=point,
+        )
+        trusted = single_stars(fwhm_grid, curves)
+        ys_, curves = ys_[trusted], curves[trusted]
+        if not len(ys_):
+            return None, [(0, image.shape[0], 0, np.nan)]
+        best = best_fwhm(fwhm_grid, curves)
+        rows = [(0, image.shape[0], len(ys_), best)]
         edges = np.linspace(0, image.shape[0], seeing_bands + 1).astype(int)
         for lo, hi in itertools.pairwise(edges):
-            inside = (seeing_y >= lo) & (seeing_y < hi)
-            band_fwhm = best_fwhm(fwhm_grid, curves[inside]) if inside.any() else np.nan
-            seeing_rows.append((lo, hi, int(inside.sum()), band_fwhm))
+            inside = (ys_ >= lo) & (ys_ < hi)
+            band = best_fwhm(fwhm_grid, curves[inside]) if inside.any() else np.nan
+            rows.append((lo, hi, int(inside.sum()), band))
+        return best, rows
+
+    point = deconvolved
+    cx, cy = np.asarray(cat.x_centroid), np.asarray(cat.y_centroid)
+    blended = np.asarray(_deblended(cat.labels, parent))
+    fwhm, seeing_rows = fit_seeing(cx, cy, peak, blended, profile)
+    if fwhm is not None:
         profile = profile.with_fwhm(fwhm)
         if abs(fwhm - fwhm_guess) > 0.25 * fwhm_guess:  # filter far off: detect again
             snr, segm, parent = segment(profile)
             cat = SourceCatalog(data_for_cat, segm, mask=no_data)
             cx, cy = np.asarray(cat.x_centroid), np.asarray(cat.y_centroid)
+            blended = np.asarray(_deblended(cat.labels, parent))
     else:
         warnings.warn(
             f"no bright isolated star (S/N >= {seeing_min_snr}) to fit the seeing; using "
@@ -372,12 +387,11 @@ def detect(
             DetectWarning,
             stacklevel=2,
         )
-    log.debug("seeing FWHM %.3f px from %d stars", profile.fwhm, n_used)
+    log.debug("seeing FWHM %.3f px from %d stars", profile.fwhm, seeing_rows[0][2])
 
     shape_cols = [
         np.asarray(q.value, dtype=float) for q in (cat.fwhm, cat.ellipticity, cat.orientation)
     ]
-    blended = np.asarray(_deblended(cat.labels, parent))
 
     def fit_all(px, py, split):
         members = _groups(px, py, grid, x_start, profile.fwhm, point)
@@ -397,6 +411,7 @@ def detect(
         return members, result
 
     members, fits_ = fit_all(cx, cy, blended)
+    n_first = len(cx)
     if find_in_residual:
         # Second pass: sources hidden by brighter neighbours show up in the image
         # minus the fitted models.
@@ -408,7 +423,9 @@ def detect(
             near = cKDTree(np.column_stack([fits_["x"], fits_["y"]])).query(
                 np.column_stack([nx2, ny2])
             )[0]
-            new = np.flatnonzero((near > 0.5 * profile.fwhm) & np.isfinite(nx2))
+            # Farther than a FWHM from every fitted source: nearer, a residual is
+            # the misfit of that source, and a second source there is degenerate.
+            new = np.flatnonzero((near > profile.fwhm) & np.isfinite(nx2))
             if new.size:
                 log.debug("%d more sources in the residual image", new.size)
                 order0 = [i for g in members for i in g]
@@ -426,6 +443,32 @@ def detect(
                     np.concatenate([c0, c1]) for c0, c1 in zip(shape_cols, more, strict=True)
                 ]
                 members, fits_ = fit_all(cx, cy, blended)
+                # A source found only in the image minus the models must stand on
+                # its own after the joint refit (residuals of a neighbour's imperfect
+                # model do not); the others are refitted without it.
+                order = np.array([i for g in members for i in g])
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    weak = ~(fits_["flux"] / fits_["flux_err"] >= threshold_sigma)
+                drop = order[(order >= n_first) & weak]
+                if drop.size:
+                    kept = np.setdiff1d(np.arange(len(cx)), drop)
+                    cx, cy, blended = cx[kept], cy[kept], blended[kept]
+                    shape_cols = [c[kept] for c in shape_cols]
+                    members, fits_ = fit_all(cx, cy, blended)
+                # Close companions found now may have widened the seeing stars of the
+                # first pass: fit the seeing again on the sources now known to be
+                # alone, and refit everything if it moved.
+                order = np.array([i for g in members for i in g])
+                px, py, bright = (np.empty(len(cx)) for _ in range(3))
+                px[order], py[order] = fits_["x"], fits_["y"]
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    bright[order] = np.nan_to_num(fits_["flux"] / fits_["flux_err"])
+                again, rows = fit_seeing(px, py, bright, blended, profile)
+                if again is not None:
+                    seeing_rows = rows
+                    if abs(again - profile.fwhm) > 0.003 * profile.fwhm:
+                        profile = profile.with_fwhm(again)
+                        members, fits_ = fit_all(px, py, blended)
     order = [i for g in members for i in g]
     keep = np.ones(len(order), bool)
     if own_columns is not None:

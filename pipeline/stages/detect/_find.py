@@ -20,10 +20,13 @@
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 from astropy.stats import SigmaClip
 from photutils.background import Background2D, MedianBackground, StdBackgroundRMS
 from photutils.segmentation import deblend_sources, detect_sources
+from photutils.utils.exceptions import NoDetectionsWarning
 from scipy.signal import oaconvolve
 
 from pipeline.stages.detect._model import KernelGrid, SeeingProfile, model_image
@@ -146,7 +149,10 @@ def find_sources(
         Label -> parent label for deblended sources (a source not split maps
         to itself).
     """
-    segm = detect_sources(snr, threshold, min_pixels, mask=no_data)
+    with warnings.catch_warnings():
+        # An empty result is reported by the caller with its own warning class.
+        warnings.simplefilter("ignore", NoDetectionsWarning)
+        segm = detect_sources(snr, threshold, min_pixels, mask=no_data)
     if segm is None:
         return None, {}
     if deblend_levels > 0:

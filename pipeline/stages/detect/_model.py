@@ -163,16 +163,17 @@ class KernelGrid:
 def _profiles(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndarray):
     """Pixel-integrated 1-D Gaussians and their derivatives in the centre.
 
-    Returns arrays of shape ``(J, K, n)`` for pixels at ``grid`` (n,),
-    centres (K,) and sigmas (J,).
+    ``grid`` holds consecutive pixel centres.  Returns arrays of shape
+    ``(J, K, n)`` for the ``n`` pixels, centres (K,) and sigmas (J,).  The
+    error function is evaluated once per pixel edge (``n + 1`` edges).
     """
-    u = grid[None, None, :] - centres[None, :, None]
-    s = sigmas[:, None, None]
-    hi = (u + 0.5) / s
-    lo = (u - 0.5) / s
-    value = 0.5 * (erf(hi / _SQRT2) - erf(lo / _SQRT2))
+    edges = np.append(grid - 0.5, grid[-1] + 0.5)
+    z = (edges[None, None, :] - centres[None, :, None]) / sigmas[:, None, None]
+    cdf = erf(z / _SQRT2)
+    value = 0.5 * np.diff(cdf, axis=2)
     # d value / d centre = -(phi(hi) - phi(lo)) / s
-    deriv = -(np.exp(-0.5 * hi * hi) - np.exp(-0.5 * lo * lo)) / (_SQRT2PI * s)
+    pdf = np.exp(-0.5 * z * z)
+    deriv = -np.diff(pdf, axis=2) / (_SQRT2PI * sigmas[:, None, None])
     return value, deriv
 
 
@@ -242,6 +243,8 @@ class FitResult:
         Reduced chi-square of the fit (with the variance plane as given).
     success : bool
         The optimizer converged.
+    units : list of ndarray
+        Unit-flux model of each star on the stamp at the fitted position.
     """
 
     flux: np.ndarray
@@ -253,6 +256,7 @@ class FitResult:
     background: float
     chi2: float
     success: bool
+    units: list
 
 
 def fit_stars(
@@ -344,7 +348,7 @@ def fit_stars(
     def jacobian(p):
         return sw[:, None] * evaluate(p)[1]
 
-    result = least_squares(residual, p0, jac=jacobian, method="lm", xtol=1e-8, ftol=1e-10)
+    result = least_squares(residual, p0, jac=jacobian, method="lm", xtol=1e-8, ftol=1e-8)
     p = result.x
     j = result.jac
     dof = max(int(good.sum()) - p.size, 1)
@@ -364,4 +368,8 @@ def fit_stars(
         background=float(p[0]) if nb else 0.0,
         chi2=chi2,
         success=bool(result.success),
+        units=[
+            _unit_model(xs, ys, p[nb + 3 * i + 1], p[nb + 3 * i + 2], *kernels[i], sigmas, weights)
+            for i in range(n)
+        ],
     )
