@@ -35,7 +35,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from astropy import units as u
-from astropy.table import QTable, Table
+from astropy.table import QTable, Table, vstack
+from astropy.wcs import WCS, FITSFixedWarning
 from astropy.wcs.utils import proj_plane_pixel_scales
 from photutils.segmentation import SourceCatalog
 from pydantic import BaseModel, ConfigDict, Field
@@ -45,6 +46,8 @@ from scipy.spatial import cKDTree
 
 from pipeline.exceptions import DetectWarning
 from pipeline.masks import MaskBit, has_bits
+from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSION
+from pipeline.stages.base import PROBLEMS, Stage
 from pipeline.stages.detect._find import estimate_background, find_sources, significance_map
 from pipeline.stages.detect._measure import (
     SourceFlag,
@@ -55,8 +58,10 @@ from pipeline.stages.detect._measure import (
     single_stars,
 )
 from pipeline.stages.detect._model import KernelGrid, SeeingProfile, fit_stars, model_image
+from pipeline.stages.detect._night import Planes, padded_stretch
 
 __all__ = [
+    "STAGE",
     "DetectOptions",
     "DetectResult",
     "SeeingProfile",
@@ -578,3 +583,118 @@ class _PointGrid:
 
     def __call__(self, x, y):
         return np.zeros(1), np.zeros(1)
+
+
+# ----------------------------------------------------------------------------
+# The stage
+
+
+def _planes(products: dict) -> Planes:
+    """A rectify stretch product as :class:`Planes`."""
+    hdul = products["image"]
+    header = hdul[FLUX_EXTENSION].header
+    with warnings.catch_warnings():
+        # The product's time and observatory cards make astropy.wcs note the
+        # fixes it would apply; only the celestial part is used.
+        warnings.simplefilter("ignore", FITSFixedWarning)
+        wcs = WCS(header).celestial
+    return Planes(
+        np.asarray(hdul[FLUX_EXTENSION].data, dtype=float),
+        np.asarray(hdul[VARIANCE_EXTENSION].data, dtype=float),
+        np.asarray(hdul[FLAGS_EXTENSION].data),
+        # The alternate WCS 'A' (NIGHT) gives each pixel's 0-based night column.
+        round(header["CRVAL1A"] - (header["CRPIX1A"] - 1.0) * header["CDELT1A"]),
+        products["smear_kernels"],
+        wcs,
+    )
+
+
+def seam_margin(kernels: Table, fwhm: float) -> int:
+    """Columns of each neighbour a stretch needs to measure seam stars whole.
+
+    Two fit stamps (a seam star and a neighbour fitted with it) of half-width
+    ``2 FWHM + half the smear length`` each, plus 8 columns for the
+    matched filter's edge, pixels.
+    """
+    half = float(np.max(np.abs(np.asarray(kernels["dx"], dtype=float)))) if len(kernels) else 0.0
+    return int(np.ceil(2.0 * (2.0 * fwhm + half) + 8.0))
+
+
+def _run(*, inputs, options: DetectOptions, context) -> dict:
+    stretches = context.input_stretches
+    rectified = inputs["rectify"]
+    settings = options.model_dump()
+    window: dict[int, Planes] = {}
+
+    def planes(i: int) -> Planes | None:
+        if not 0 <= i < len(stretches):
+            return None
+        if i not in window:
+            window[i] = _planes(rectified[i])
+        return window[i]
+
+    products: dict = {}
+    catalogs, seeing, problems = [], [], []
+    for i, stretch in enumerate(stretches):
+        for old in [k for k in window if k < i - 1]:
+            del window[old]  # keep at most three stretches in memory
+        own = planes(i)
+        header = rectified[i]["image"][FLUX_EXTENSION].header
+        margin = seam_margin(own.kernels, options.fwhm_guess)
+        padded, own_columns = padded_stretch(own, planes(i - 1), planes(i + 1), margin)
+        result = detect(
+            padded.image,
+            padded.variance,
+            padded.mask,
+            padded.kernels,
+            wcs=padded.wcs,
+            x_start=padded.x_start,
+            noise_correlation=float(header.get("NOISECOR", 1.0)),
+            deconvolved=bool(header.get("DECONV", False)),
+            own_columns=own_columns,
+            **settings,
+        )
+        catalog = result.catalog
+        catalog["stretch"] = u.Quantity(np.full(len(catalog), stretch.index, np.int32), u.one)
+        catalog["stretch"].info.description = "index of the stretch whose columns hold x"
+        products[f"catalog_{stretch.id}"] = catalog
+        catalogs.append(catalog)
+        rows = result.seeing
+        rows["stretch"] = np.full(len(rows), stretch.index, np.int32)
+        rows["x_start"] = np.full(len(rows), own.x_start) * u.pix
+        rows["x_stop"] = np.full(len(rows), own.x_stop) * u.pix
+        seeing.append(rows)
+        problems += [f"{stretch.id}: {line}" for line in result.problems]
+        log.info("%s: %d sources, seeing FWHM %.2f px", stretch.id, len(catalog), rows["fwhm"][0])
+    night = (
+        vstack(catalogs, metadata_conflicts="silent")
+        if catalogs
+        else _empty_catalog(tuple(options.aperture_radii))
+    )
+    night.meta["merge_rule"] = (
+        "each source belongs to the stretch whose own columns hold its first-moment column x; "
+        "seam stars were measured with the neighbour's edge columns"
+    )
+    products["catalog"] = night
+    seeing_table = vstack(seeing, metadata_conflicts="silent") if seeing else _seeing_table([])
+    seeing_table["stretch"].unit = u.one if "stretch" in seeing_table.colnames else None
+    products["seeing"] = seeing_table
+    if problems:
+        products[PROBLEMS] = problems
+    return products
+
+
+#: Declaration of the detect stage for the runner.  Night-scoped, so that each
+#: stretch can be measured with its neighbours' edge columns (rectified
+#: stretches do not overlap); ``partial_inputs`` lets it work on the stretches
+#: that rectified.
+STAGE = Stage(
+    name="detect",
+    run=_run,
+    options=DetectOptions,
+    requires=("rectify",),
+    scope="night",
+    uses=(),
+    partial_inputs=True,
+    description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
+)

@@ -156,14 +156,18 @@ def find_sources(
     if segm is None:
         return None, {}
     if deblend_levels > 0:
-        segm = deblend_sources(
-            snr,
-            segm,
-            min_pixels,
-            n_levels=deblend_levels,
-            contrast=deblend_contrast,
-            progress_bar=False,
-        )
+        with warnings.catch_warnings():
+            # photutils notes when it falls back from exponential to linear
+            # thresholds for a segment with non-positive values: not a problem.
+            warnings.filterwarnings("ignore", message="The deblending mode", category=UserWarning)
+            segm = deblend_sources(
+                snr,
+                segm,
+                min_pixels,
+                n_levels=deblend_levels,
+                contrast=deblend_contrast,
+                progress_bar=False,
+            )
     parent = {int(label): int(label) for label in segm.labels}
     for child, par in getattr(segm, "deblended_label_to_parent", {}).items():
         parent[int(child)] = int(par)

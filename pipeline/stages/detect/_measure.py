@@ -10,7 +10,6 @@ from photutils.aperture import CircularAperture, aperture_photometry
 
 from pipeline.masks import MaskBit, has_bits
 from pipeline.stages.detect._model import (
-    FitResult,
     KernelGrid,
     SeeingProfile,
     fit_stars,
@@ -215,6 +214,7 @@ def measure_groups(
     noise_correlation: float = 1.0,
     own_columns: tuple[int, int] | None = None,
     blended: list[list[bool]] | None = None,
+    max_joint: int = 6,
 ) -> dict[str, np.ndarray]:
     """Fit each group of sources with the smear-aware model.
 
@@ -232,6 +232,9 @@ def measure_groups(
     blended : list of list of bool or None
         Per group and member: split off a larger segment by the deblending
         (flagged BLENDED).
+    max_joint : int
+        Largest group fitted jointly; larger groups are fitted star by star
+        with the others' models subtracted (two sweeps).
 
     Returns
     -------
@@ -261,33 +264,29 @@ def measure_groups(
         xs = np.array([m[0] for m in members], dtype=float)
         ys = np.array([m[1] for m in members], dtype=float)
         kern = _kernels_at(grid, x_start, xs, ys, spacing, point_kernel)
-        y0, y1, x0, x1, clipped = _stamp(residual.shape, xs, ys, kern, profile.fwhm)
-        overlap = own_columns is not None and (x0 < own_columns[0] or x1 > own_columns[1])
-        fit: FitResult = fit_stars(
-            residual[y0:y1, x0:x1],
-            variance[y0:y1, x0:x1],
-            xs,
-            ys,
-            kern,
-            profile,
-            origin=(y0, x0),
-            noise_correlation=noise_correlation,
-        )
-        moved = np.hypot(fit.x - xs, fit.y - ys) > profile.fwhm
-        failed = moved | ~(fit.flux > 0) | (not fit.success)
-        for i in range(xs.size):
-            unit = fit.units[i]
+        if xs.size <= max_joint:
+            box = _stamp(residual.shape, xs, ys, kern, profile.fwhm)
+            fit = _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation)
+            per_star = [(fit, i, box) for i in range(xs.size)]
+        else:
+            per_star = _fit_in_turn(residual, variance, xs, ys, kern, profile, noise_correlation)
+        for i, (fit, j, box) in enumerate(per_star):
+            y0, y1, x0, x1, clipped = box
+            overlap = own_columns is not None and (x0 < own_columns[0] or x1 > own_columns[1])
+            moved = np.hypot(fit.x[j] - xs[i], fit.y[j] - ys[i]) > profile.fwhm
+            failed = moved or not (fit.flux[j] > 0) or not fit.success
+            unit = fit.units[j]
             core = unit > 0.05 * unit.max()
             split = bool(blended[index][i]) if blended is not None else False
             flags = _flags_for(mask, core, (y0, y1, x0, x1), clipped, split, overlap)
-            if failed[i]:
+            if failed:
                 flags |= SourceFlag.FIT_FAILED
-            out["x"].append(xs[i] if failed[i] else fit.x[i])
-            out["y"].append(ys[i] if failed[i] else fit.y[i])
-            out["x_err"].append(np.nan if failed[i] else fit.x_err[i])
-            out["y_err"].append(np.nan if failed[i] else fit.y_err[i])
-            out["flux"].append(np.nan if failed[i] else fit.flux[i])
-            out["flux_err"].append(np.nan if failed[i] else fit.flux_err[i])
+            out["x"].append(xs[i] if failed else fit.x[j])
+            out["y"].append(ys[i] if failed else fit.y[j])
+            out["x_err"].append(np.nan if failed else fit.x_err[j])
+            out["y_err"].append(np.nan if failed else fit.y_err[j])
+            out["flux"].append(np.nan if failed else fit.flux[j])
+            out["flux_err"].append(np.nan if failed else fit.flux_err[j])
             out["background"].append(fit.background)
             out["chi2"].append(fit.chi2)
             out["flags"].append(flags)
@@ -297,6 +296,70 @@ def measure_groups(
     result = {k: np.asarray(v) for k, v in out.items()}
     result["kernel"] = kernels
     return result
+
+
+def _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, others=None):
+    y0, y1, x0, x1, _ = box
+    data = residual[y0:y1, x0:x1]
+    if others is not None:
+        data = data - others[y0:y1, x0:x1]
+    return fit_stars(
+        data,
+        variance[y0:y1, x0:x1],
+        xs,
+        ys,
+        kern,
+        profile,
+        origin=(y0, x0),
+        noise_correlation=noise_correlation,
+    )
+
+
+def _fit_in_turn(residual, variance, xs, ys, kern, profile, noise_correlation, sweeps=2):
+    """Fit the stars of a large group one at a time, the others' models subtracted.
+
+    A joint fit of dozens of stars (a crowded patch, a bleed trail split into
+    many sources) costs far more than it gains; two sweeps of single fits,
+    each on its own stamp minus the current models of the others, converge
+    for the separations a group is made of.
+
+    Returns
+    -------
+    list of (FitResult, int, box)
+        Per star: its fit, its index in the fit (0) and its stamp box.
+    """
+    models = np.zeros(residual.shape)
+    boxes = [
+        _stamp(residual.shape, [x], [y], [k], profile.fwhm)
+        for x, y, k in zip(xs, ys, kern, strict=True)
+    ]
+    fits: list = [None] * len(xs)
+    added: list = [None] * len(xs)  # the model of each star now in ``models``
+    x_now, y_now = xs.copy(), ys.copy()
+    for _ in range(sweeps):
+        for i in range(len(xs)):
+            y0, y1, x0, x1, _clipped = boxes[i]
+            if added[i] is not None:  # take this star's own model out of the others
+                models[y0:y1, x0:x1] -= added[i]
+                added[i] = None
+            fit = _fit_box(
+                residual,
+                variance,
+                boxes[i],
+                [x_now[i]],
+                [y_now[i]],
+                [kern[i]],
+                profile,
+                noise_correlation,
+                others=models,
+            )
+            fits[i] = fit
+            near = np.hypot(fit.x[0] - xs[i], fit.y[0] - ys[i]) <= profile.fwhm
+            if fit.success and fit.flux[0] > 0 and near:
+                x_now[i], y_now[i] = fit.x[0], fit.y[0]
+                added[i] = fit.flux[0] * fit.units[0]
+                models[y0:y1, x0:x1] += added[i]
+    return [(fits[i], 0, boxes[i]) for i in range(len(xs))]
 
 
 def aperture_fluxes(residual, variance, no_data, x, y, kernels, profile, radii, noise_correlation):
