@@ -2,17 +2,29 @@
 
 from __future__ import annotations
 
+import inspect
+
 import numpy as np
 import pytest
 from photutils.centroids import centroid_2dg
+from pydantic import ValidationError
 from scipy.spatial import cKDTree
 from scipy.stats import norm
 
 from pipeline.exceptions import DetectWarning
 from pipeline.masks import MaskBit
 from pipeline.simulate._render import GaussianMixturePSF, render_tracks
-from pipeline.stages.detect import SeeingProfile, SourceFlag, detect, fit_stars, model_image
+from pipeline.stages.detect import (
+    DetectOptions,
+    SeeingProfile,
+    SourceFlag,
+    detect,
+    fit_stars,
+    model_image,
+    seam_margin,
+)
 from pipeline.stages.detect._model import KernelGrid, reduce_kernel
+from pipeline.stages.detect._night import Planes, padded_stretch
 from pipeline.stages.rectify import smear_kernel_at
 from tests._detect_scene import kernel_table, render_scene, smear_track
 
@@ -315,3 +327,71 @@ def test_bad_input_is_rejected():
         )
     with pytest.raises(ValueError, match="fwhm"):
         SeeingProfile(-1.0)
+
+
+def test_seam_star_is_measured_whole_and_listed_once():
+    # Three stretches of 200 columns tiling 600 night columns; a star sits on
+    # each seam (first moment 0.3 px either side of it) and one in the middle.
+    xs = np.array([199.7, 400.3, 300.0])
+    ys = np.array([64.0, 64.0, 64.0])
+    scene = render_scene(xs, ys, 5e4, shape=(128, 600), x_start=0, seed=4)
+    parts = []
+    for a in (0, 200, 400):
+        cols = slice(a, a + 200)
+        parts.append(
+            Planes(
+                scene.image[:, cols], scene.variance[:, cols], scene.mask[:, cols], a, scene.kernels
+            )
+        )
+    found = []
+    for i, own in enumerate(parts):
+        left = parts[i - 1] if i > 0 else None
+        right = parts[i + 1] if i < 2 else None
+        padded, own_columns = padded_stretch(own, left, right, seam_margin(own.kernels, 3.0))
+        cat = detect(
+            padded.image,
+            padded.variance,
+            padded.mask,
+            padded.kernels,
+            x_start=padded.x_start,
+            own_columns=own_columns,
+        ).catalog
+        assert np.all((cat["x"].value >= own.x_start - 0.5) & (cat["x"].value < own.x_stop - 0.5))
+        found.append(cat)
+    x = np.sort(np.concatenate([c["x"].value for c in found]))
+    flux = np.concatenate([c["flux_psf"].value for c in found])
+    assert x.size == 3  # each star once
+    np.testing.assert_allclose(x, np.sort(xs), atol=0.05)  # 0.05: 10 sigma at S/N ~200
+    # Whole: the seam stars' fluxes are those of the middle star (same flux) to 2 %.
+    np.testing.assert_allclose(flux, 5e4, rtol=0.02)
+    seam = [
+        c for c in found if len(c) and (c["flags"].value.astype(int) & SourceFlag.OVERLAP).any()
+    ]
+    assert seam  # the seam stars say they used a neighbour's columns
+
+
+def test_lone_stretch_without_neighbours_flags_its_edge_stars():
+    scene = render_scene([3.0, 100.0], [64.0, 64.0], 5e4, shape=(128, 200), x_start=0, seed=4)
+    own = Planes(scene.image, scene.variance, scene.mask, 0, scene.kernels)
+    padded, own_columns = padded_stretch(own, None, None, 20)
+    cat = detect(
+        padded.image,
+        padded.variance,
+        padded.mask,
+        padded.kernels,
+        x_start=padded.x_start,
+        own_columns=own_columns,
+    ).catalog
+    cat.sort("x")
+    assert int(cat["flags"][0].value) & SourceFlag.EDGE
+    assert not int(cat["flags"][1].value) & SourceFlag.EDGE
+
+
+def test_stage_is_registered_with_strict_options():
+    from pipeline.stages import GRAPH
+
+    stage = next(s for s in GRAPH if s.name == "detect")
+    assert stage.scope == "night" and stage.requires == ("rectify",)
+    assert set(DetectOptions.model_fields) <= set(inspect.signature(detect).parameters)
+    with pytest.raises(ValidationError):
+        DetectOptions(threshold=3.0)

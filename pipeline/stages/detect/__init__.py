@@ -69,6 +69,7 @@ __all__ = [
     "detect",
     "fit_stars",
     "model_image",
+    "seam_margin",
 ]
 
 log = logging.getLogger(__name__)
