@@ -84,7 +84,10 @@ class DetectOptions(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
     threshold_sigma: float = Field(
-        4.0, gt=0, description="Matched-filter signal-to-noise a source must reach."
+        4.3,
+        gt=0,
+        description="Matched-filter signal-to-noise a source must reach (4.3: < 1 % of "
+        "detections are noise on a 4096 x 4096 stretch with 3000 stars, > 50 % found at S/N 5).",
     )
     min_pixels: int = Field(
         3, ge=1, description="Connected pixels above the threshold a source needs."
@@ -229,7 +232,7 @@ def detect(
     noise_correlation: float = 1.0,
     deconvolved: bool = False,
     own_columns: tuple[int, int] | None = None,
-    threshold_sigma: float = 4.0,
+    threshold_sigma: float = 4.3,
     min_pixels: int = 3,
     background_box: int = 64,
     filter_band: int = 32,
