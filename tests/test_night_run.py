@@ -97,11 +97,24 @@ def test_a_night_within_the_start_ramp_says_how_to_fix_it(tmp_path, capsys):
     assert "start_ramp='none'" in out
     sidecar = json.loads((tmp_path / "out/n/column_stats/s0000/_provenance.json").read_text())
     assert "set stages.ingest.start_ramp: none" in sidecar["warnings"][0]
-    # The simulated camera was clocking before the first block: say so.
-    fixed = ["--set", "stages.ingest.start_ramp=none"]
+    # The simulated camera was clocking before the first block: say so (and
+    # cut the 128 rows into blocks enough for the column solve's min_blocks=4).
+    fixed = ["--set", "stages.ingest.start_ramp=none", "--set", "stages.column_stats.block_rows=32"]
     assert main(["run", str(config), "--to", "calibrate", *fixed]) == 0
     mask = _plane(tmp_path / "out/n/calibrate/s0000", "FLAGS")
     assert not has_bits(mask, MaskBit.LOW_EXPOSURE).any()
+
+
+def test_a_night_too_short_for_the_column_solve_says_how_to_fix_it(tmp_path, capsys):
+    """Fewer statistics blocks than min_blocks used to flag every column BAD and
+    leave an empty calibrated night with exit 0; now the solve fails and says why."""
+    config = _night(tmp_path, simulate={"n_blocks": 1, "block_rows": 128})
+    fixed = ["--set", "stages.ingest.start_ramp=none"]  # 128 rows: 2 blocks of 64
+    capsys.readouterr()
+    assert main(["run", str(config), "--to", "calibrate", *fixed]) == 1
+    out = capsys.readouterr().out
+    assert "Only 2 blocks of column statistics, fewer than min_blocks=4" in out
+    assert "stages.column_stats.block_rows" in out
 
 
 def test_the_start_ramp_is_flagged_and_left_out_of_the_solve(tmp_path, capsys):

@@ -226,6 +226,7 @@ def solve_columns(
         more than 3 times their own fit error, are flagged HOT_COLUMN.
     min_blocks : int
         Minimum number of blocks for a column fit; fewer gives BAD_COLUMN.
+        A night with fewer blocks in all raises ``ValueError``.
     clip : float
         Outlier rejection of blocks, in standard errors.
     max_flat_error : float
@@ -256,6 +257,15 @@ def solve_columns(
     read_noise = np.asarray(table["read_noise"], dtype=np.float64)[:, None]
     valid = np.isfinite(level) & (n_pix > 0)
     n_blocks, n_columns = level.shape
+    if n_blocks < min_blocks:
+        # Every column would be flagged BAD_COLUMN and the calibrated night
+        # would be empty: say so instead.
+        raise ValueError(
+            f"Only {n_blocks} blocks of column statistics, fewer than min_blocks={min_blocks}, "
+            "so no column's flat can be solved; use shorter blocks "
+            "(stages.column_stats.block_rows), lower stages.columns.min_blocks, or adopt "
+            "a solved table (stages.columns.flat_file)."
+        )
 
     noise_ratio = _noise_ratio(level, scatter, read_noise, valid)
     reference, relative = _initial_reference(level, valid, noise_ratio, noise_limit)
