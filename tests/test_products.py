@@ -14,6 +14,7 @@ import sys
 import warnings
 from pathlib import Path
 
+import astropy
 import astropy.units as u
 import numpy as np
 import pytest
@@ -24,11 +25,15 @@ from astropy.nddata import CCDData, VarianceUncertainty
 from astropy.table import Table
 from astropy.time import Time
 from astropy.wcs import WCS
+from packaging.version import Version
 
 import pipeline
 from pipeline.masks import MaskBit
 from pipeline.products import flag_bits_from_header
 from pipeline.stages.rectify import NO_DATA_BITS
+
+#: CCDData.read loads a flag plane from astropy 8.0 on.
+ASTROPY_READS_FLAGS = Version(astropy.__version__) >= Version("8.0")
 
 #: Mask bits that mean "no data" in a calibrated stretch (pipeline/masks.py).
 CALIBRATE_NO_DATA = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN
@@ -118,16 +123,18 @@ def test_every_image_product_is_a_ccddata(demo):
         assert flag_bits_from_header(image.meta) == {b.name: int(b) for b in MaskBit}
         for key in ("TELESCOP", "INSTRUME", "FILTER", "DATE-OBS", "XPOSURE", "OBSGEO-X"):
             assert key in image.meta, (unit, key)
-        # astropy's own reader with the documented extension names agrees.
+        # astropy's own reader with the documented extension names agrees
+        # (astropy < 8 cannot load flags: "loading flags is currently not
+        # supported"; measured with 7.2.0).
+        flags = {"hdu_flags": "FLAGS"} if ASTROPY_READS_FLAGS else {}
         with warnings.catch_warnings():
             warnings.simplefilter("error")
-            same = CCDData.read(
-                path, hdu="FLUX", hdu_uncertainty="FLUXVAR", hdu_flags="FLAGS", hdu_mask=None
-            )
+            same = CCDData.read(path, hdu="FLUX", hdu_uncertainty="FLUXVAR", hdu_mask=None, **flags)
         np.testing.assert_array_equal(same.data, image.data)
         np.testing.assert_array_equal(same.uncertainty.array, image.uncertainty.array)
         assert isinstance(same.uncertainty, VarianceUncertainty) and same.unit == image.unit
-        np.testing.assert_array_equal(same.flags, image.flags)
+        if ASTROPY_READS_FLAGS:
+            np.testing.assert_array_equal(same.flags, image.flags)
         assert same.wcs.to_header() == image.wcs.to_header(), unit
         assert set(same.meta) <= set(image.meta), unit
         # The NIGHT grid (alternate WCS A) places the first pixel in the night.
@@ -190,6 +197,13 @@ def test_rectify_stretches_tile_the_night_grid(demo):
 #: again: the frame follows the geometry; only the WCS's CRVAL moves, by
 #: 0.75 arcsec), so the sky geometry does not set this tolerance.
 IMAGE_RTOL = 1e-6
+#: Rectify summaries with the oldest dependencies the package allows
+#: (astropy 7.2.0, astropy-iers-data 0.2025.10.27, whose UT1-UTC prediction
+#: for the demo night is 0.17 s off) differ by up to 1.9e-5 (measured, image
+#: sum of s0000; smear-kernel sums by 8e-7): the geometry of date moves
+#: stars across the stretch's edges and changes the kernels slightly.  The
+#: calibrate summaries do not depend on the geometry.
+RECTIFY_RTOL = 1e-4
 #: Table sums: float64 columns, values stored rounded to 10 digits (5e-10).
 TABLE_RTOL = 1e-8
 
@@ -222,8 +236,9 @@ def test_products_keep_the_previous_layouts_values(demo):
             assert new["shape"] == old["shape"] and new["n_nan"] == old["n_nan"], key
             # Integer decisions (thresholds): a changed count means changed pixels.
             assert new["bit_counts"] == old["bit_counts"], key
+            rtol = IMAGE_RTOL if stage == "calibrate" else RECTIFY_RTOL
             for name in ("image_sum", "variance_sum", "image_quantiles"):
-                np.testing.assert_allclose(new[name], old[name], rtol=IMAGE_RTOL, err_msg=key)
+                np.testing.assert_allclose(new[name], old[name], rtol=rtol, err_msg=key)
             if stage == "calibrate":
                 rows = pipeline.open_product(config, stage, stretch, "rows")
                 for column in ("bias", "time"):
@@ -235,7 +250,7 @@ def test_products_keep_the_previous_layouts_values(demo):
                 kernels = pipeline.open_product(config, stage, stretch, "smear_kernels")
                 for column in ("length", "bow"):
                     total = np.sum(kernels[column])
-                    assert total == pytest.approx(old[f"kernel_{column}_sum"], rel=TABLE_RTOL)
+                    assert total == pytest.approx(old[f"kernel_{column}_sum"], rel=RECTIFY_RTOL)
     index = pipeline.open_product(config, "ingest", "night", "block_index")
     for column, total in VALUES["ingest/block_index"].items():
         assert np.sum(index[column]) == pytest.approx(total, rel=TABLE_RTOL), column
