@@ -385,14 +385,7 @@ def test_seam_star_is_measured_whole_and_listed_once():
         left = parts[i - 1] if i > 0 else None
         right = parts[i + 1] if i < 2 else None
         padded, own_columns = padded_stretch(own, left, right, seam_margin(own.kernels, 3.0))
-        cat = detect(
-            padded.image,
-            padded.variance,
-            padded.mask,
-            padded.kernels,
-            x_start=padded.x_start,
-            own_columns=own_columns,
-        ).catalog
+        cat = _detect_padded(padded, own_columns)
         assert np.all((cat["x"].value >= own.x_start - 0.5) & (cat["x"].value < own.x_stop - 0.5))
         found.append(cat)
     x = np.sort(np.concatenate([c["x"].value for c in found]))
@@ -407,11 +400,9 @@ def test_seam_star_is_measured_whole_and_listed_once():
     assert seam  # the seam stars say they used a neighbour's columns
 
 
-def test_lone_stretch_without_neighbours_flags_its_edge_stars():
-    scene = render_scene([3.0, 100.0], [64.0, 64.0], 5e4, shape=(128, 200), x_start=0, seed=4)
-    own = Planes(scene.image, scene.variance, scene.mask, 0, scene.kernels)
-    padded, own_columns = padded_stretch(own, None, None, 20)
-    cat = detect(
+def _detect_padded(padded, own_columns):
+    """The catalogue of a stretch padded with its neighbours' edge columns."""
+    return detect(
         padded.image,
         padded.variance,
         padded.mask,
@@ -419,6 +410,13 @@ def test_lone_stretch_without_neighbours_flags_its_edge_stars():
         x_start=padded.x_start,
         own_columns=own_columns,
     ).catalog
+
+
+def test_lone_stretch_without_neighbours_flags_its_edge_stars():
+    scene = render_scene([3.0, 100.0], [64.0, 64.0], 5e4, shape=(128, 200), x_start=0, seed=4)
+    own = Planes(scene.image, scene.variance, scene.mask, 0, scene.kernels)
+    padded, own_columns = padded_stretch(own, None, None, 20)
+    cat = _detect_padded(padded, own_columns)
     cat.sort("x")
     assert int(cat["flags"][0].value) & SourceFlag.EDGE
     assert not int(cat["flags"][1].value) & SourceFlag.EDGE
