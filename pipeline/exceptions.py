@@ -15,6 +15,7 @@ __all__ = [
     "PipelineError",
     "PipelineWarning",
     "RectifyWarning",
+    "ReferenceCatalogError",
     "RunLockedError",
     "RunStartError",
     "StageError",
@@ -86,3 +87,12 @@ class RectifyWarning(PipelineWarning):
 
 class DetectWarning(PipelineWarning):
     """Source detection found nothing to measure or measured less reliably than usual."""
+
+
+class ReferenceCatalogError(PipelineError, ValueError):
+    """A reference catalogue cannot be used for the night.
+
+    Raised for a missing or empty file, configured columns that the file does
+    not have, or a catalogue without stars in the night's band; the message
+    says what to change.
+    """

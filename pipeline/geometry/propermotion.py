@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import erfa
 import numpy as np
 from astropy.time import Time
 from numpy.typing import ArrayLike
@@ -30,6 +31,9 @@ def positions_at_epoch(
     pmdec_masyr: ArrayLike,
     epoch: Time | ArrayLike,
     obstime: Time | ArrayLike,
+    *,
+    parallax_mas: ArrayLike | None = None,
+    radial_velocity_kms: ArrayLike | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """ICRS positions moved along their proper motion from ``epoch`` to ``obstime``.
 
@@ -39,6 +43,9 @@ def positions_at_epoch(
     velocity (what ERFA ``pmsafe`` does without a parallax); it ignores
     perspective acceleration, which is below 0.1 mas over 30 years except for
     a handful of very nearby fast stars (Barnard's star: ~1 mas/yr^2).
+    Stars given a positive ``parallax_mas`` are moved instead by ERFA
+    ``pmsafe`` (rigorous space motion, including perspective acceleration
+    when ``radial_velocity_kms`` is given).
 
     Parameters
     ----------
@@ -52,6 +59,12 @@ def positions_at_epoch(
         Hipparcos: 1991.25).
     obstime : `~astropy.time.Time` or array_like
         Epoch of observation (a number is a Julian year).
+    parallax_mas : array_like or None, optional
+        Parallax in mas.  Where it is finite and positive the star is moved by
+        ERFA ``pmsafe``; elsewhere (and for ``None``) by the formula above.
+    radial_velocity_kms : array_like or None, optional
+        Radial velocity in km/s (positive receding), used with the parallax;
+        NaN or ``None`` is taken as zero.
 
     Returns
     -------
@@ -73,4 +86,45 @@ def positions_at_epoch(
     z = sd + mud * cd
     ra_out = np.degrees(np.arctan2(y, x)) % 360.0
     dec_out = np.degrees(np.arctan2(z, np.hypot(x, y)))
+    if parallax_mas is None:
+        return ra_out, dec_out
+    return _space_motion(
+        (ra_out, dec_out),
+        (a, d),
+        (mua, mud),
+        parallax_mas,
+        radial_velocity_kms,
+        years,
+        epoch_t,
+        obs_t,
+    )
+
+
+def _space_motion(linear, start, motion, parallax_mas, radial_velocity_kms, years, epoch_t, obs_t):
+    """``linear`` positions, replaced by ERFA ``pmsafe`` where the parallax is positive."""
+    plx = np.asarray(parallax_mas, dtype=float)
+    rv = np.nan_to_num(
+        np.asarray(0.0 if radial_velocity_kms is None else radial_velocity_kms, float)
+    )
+    e0, e1 = epoch_t.tdb, obs_t.tdb
+    arrays = np.broadcast_arrays(
+        *linear, *start, *motion, plx, rv, years, e0.jd1, e0.jd2, e1.jd1, e1.jd2
+    )
+    ra_out, dec_out, a, d, mua, mud, plx, rv, years, *epochs = (np.array(v) for v in arrays)
+    use = np.isfinite(plx) & (plx > 0)
+    if use.any():
+        # mua, mud are the motions over ``years`` in radians; ERFA wants rates per
+        # Julian year with dRA/dt not multiplied by cos(dec).
+        span = np.where(years[use] != 0.0, years[use], 1.0)
+        ra2, dec2, *_ = erfa.pmsafe(
+            a[use],
+            d[use],
+            mua[use] / span / np.cos(d[use]),
+            mud[use] / span,
+            plx[use] / 1000.0,
+            rv[use],
+            *(e[use] for e in epochs),
+        )
+        ra_out[use] = np.degrees(ra2) % 360.0
+        dec_out[use] = np.degrees(dec2)
     return ra_out, dec_out
