@@ -382,13 +382,14 @@ def sky_band_for_site(
     if not half_width > 0:
         raise ValueError(f"half_width must be positive degrees; got {half_width}.")
     frame = abs(obs_epoch - 2000.0) * 20.04 + 9.2 + 20.5 + 30.0  # arcsec, see docstring
-    total = (
-        half_width
-        + _search_margin(half_width, focal_length_range, tilt_range)
-        + (frame + margin) / 3600.0
-    )
+    extra = _search_margin(half_width, focal_length_range, tilt_range) + (frame + margin) / 3600.0
     span = (ra_end - ra_start) if ra_end - ra_start >= 360.0 else (ra_end - ra_start) % 360.0
-    return _band(latitude - total, latitude + total, ra_start, span, total)
+    # the chip reaches half_width beyond the zenith's RA at both ends of the night
+    polar = min(abs(latitude) + half_width, 89.999)
+    ra_half = half_width / math.cos(math.radians(polar))
+    return _band(
+        latitude - half_width, latitude + half_width, ra_start - ra_half, span + 2 * ra_half, extra
+    )
 
 
 def sky_band_for_night(
@@ -494,10 +495,29 @@ def _open_parquet(path: Path) -> _TableFile:
         units = {col["name"]: col.get("unit") for col in header.get("datatype", [])}
 
     def chunks(names: list[str], rows: int, _: str | None) -> Iterator[dict[str, np.ndarray]]:
-        for batch in pq.ParquetFile(path).iter_batches(batch_size=rows, columns=names):
+        # pre_buffer=False: with it, pyarrow keeps every row group it has read
+        # until the file is closed (memory grew by one row group per batch)
+        reader = pq.ParquetFile(path, pre_buffer=False)
+        for batch in reader.iter_batches(batch_size=rows, columns=names):
             yield {n: batch.column(n).to_numpy(zero_copy_only=False) for n in names}
 
     return _TableFile(tuple(schema.names), units, meta_file.metadata.num_rows, chunks)
+
+
+def _line_blocks(path: Path, skip: int, block_bytes: int) -> Iterator[memoryview]:
+    """The file after its first ``skip`` lines, in blocks of whole lines of ~``block_bytes``."""
+    with open(path, "rb") as fh:
+        for _ in range(skip):
+            fh.readline()
+        rest = b""
+        while data := fh.read(block_bytes):
+            data = rest + data if rest else data
+            cut = data.rfind(b"\n") + 1
+            rest = data[cut:]
+            if cut:
+                yield memoryview(data)[:cut]
+        if rest.strip():
+            yield memoryview(rest)
 
 
 def _arrow_csv_chunks(
@@ -509,27 +529,36 @@ def _arrow_csv_chunks(
     all_names: list[str],
     delimiter: str,
 ) -> Iterator[dict[str, np.ndarray]]:
-    """Stream the named columns of a delimited text file with pyarrow, about ``rows`` at a time."""
+    """The named columns of a delimited text file, parsed by pyarrow about ``rows`` at a time.
+
+    The file is cut into blocks of whole lines here and each block parsed on
+    its own: pyarrow's streaming reader reads ahead of a slow consumer without
+    bound (1.3 GB peak for a 1.4 GB file).  Blocks are at most 64 MiB, which
+    kept the peak of a 10-million-row file near 0.5 GB.  Quoted values must not
+    span lines.
+    """
     import pyarrow as pa
     from pyarrow import csv as pa_csv
 
     with open(path, "rb") as fh:
-        sample = b"".join(itertools.islice(fh, skip + 1, skip + 201))
+        sample = b"".join(itertools.islice(fh, skip, skip + 200))
     per_row = max(len(sample) / max(sample.count(b"\n"), 1), 8.0)
-    block = int(min(max(rows * per_row, 1 << 20), 1 << 30))
-    reader = pa_csv.open_csv(
-        path,
-        read_options=pa_csv.ReadOptions(
-            skip_rows=skip, column_names=all_names, block_size=block, use_threads=False
-        ),
-        parse_options=pa_csv.ParseOptions(delimiter=delimiter),
-        convert_options=pa_csv.ConvertOptions(
-            include_columns=names,
-            column_types={n: pa.string() if n == identifier else pa.float64() for n in names},
-        ),
+    block = int(min(max(rows * per_row, 1 << 20), 64 << 20))
+    read_options = pa_csv.ReadOptions(column_names=all_names, use_threads=False)
+    parse_options = pa_csv.ParseOptions(delimiter=delimiter)
+    convert_options = pa_csv.ConvertOptions(
+        include_columns=names,
+        column_types={n: pa.string() if n == identifier else pa.float64() for n in names},
     )
-    for batch in reader:
-        yield {n: batch.column(n).to_numpy(zero_copy_only=False) for n in names}
+    for text in _line_blocks(path, skip, block):
+        table = pa_csv.read_csv(
+            pa.py_buffer(text),
+            read_options=read_options,
+            parse_options=parse_options,
+            convert_options=convert_options,
+        )
+        del text
+        yield {n: table.column(n).to_numpy() for n in names}
 
 
 def _leading_comments(path: Path) -> list[str]:
@@ -594,9 +623,16 @@ def _open_fits(path: Path) -> _TableFile:
             )
         offset = table.fileinfo()["datLoc"]
         n_rows = int(table.header["NAXIS2"])
-        raw_dtype = table.data.dtype  # the on-disk (big-endian) record; reads no rows
-        columns = {c.name: c for c in table.columns}
+        # the on-disk record (FITS is big-endian), built without touching
+        # table.data: that would map the whole table and keep its pages resident
+        raw_dtype = table.columns.dtype.newbyteorder(">")
+        columns = {c.name: (c.null, c.bscale, c.bzero) for c in table.columns}
         units = {c.name: c.unit for c in table.columns}
+    if raw_dtype.itemsize != int(table.header["NAXIS1"]):
+        raise ReferenceCatalogError(
+            f"{path}: the binary table's columns ({raw_dtype.itemsize} bytes) do not add up to "
+            f"its row length NAXIS1={table.header['NAXIS1']}; the file is damaged."
+        )
 
     def chunks(wanted: list[str], rows: int, _: str | None) -> Iterator[dict[str, np.ndarray]]:
         with open(path, "rb") as fh:
@@ -608,18 +644,22 @@ def _open_fits(path: Path) -> _TableFile:
     return _TableFile(tuple(columns), units, n_rows, chunks)
 
 
-def _fits_values(raw: np.ndarray, column: Any) -> np.ndarray:
-    """A FITS column's values: TNULL -> NaN, then TSCAL/TZERO; others in native order."""
-    scaled = column.bscale not in (None, 1) or column.bzero not in (None, 0)
-    if raw.dtype.kind not in "iuf" or not (scaled or column.null is not None):
+def _fits_values(raw: np.ndarray, column: tuple[Any, Any, Any]) -> np.ndarray:
+    """A FITS column's values: TNULL -> NaN, then TSCAL/TZERO; others in native order.
+
+    ``column`` is the column's (TNULL, TSCAL, TZERO), None where absent.
+    """
+    null, scale, zero = column
+    scaled = scale not in (None, 1) or zero not in (None, 0)
+    if raw.dtype.kind not in "iuf" or not (scaled or null is not None):
         return raw.astype(raw.dtype.newbyteorder("="))
     values = raw.astype(float)
-    if column.null is not None and raw.dtype.kind in "iu":
-        values[raw == column.null] = np.nan
-    if column.bscale not in (None, 1):
-        values *= column.bscale
-    if column.bzero not in (None, 0):
-        values += column.bzero
+    if null is not None and raw.dtype.kind in "iu":
+        values[raw == null] = np.nan
+    if scale not in (None, 1):
+        values *= scale
+    if zero not in (None, 0):
+        values += zero
     return values
 
 
@@ -711,42 +751,43 @@ def _cut_chunk(
 ) -> tuple[dict[str, np.ndarray], int]:
     """Rows of one chunk inside ``band`` at ``obs_epoch``, in the pipeline's units.
 
-    Returns the selected columns (kinds as keys, plus ``has_proper_motion``)
-    and the number of rows whose catalogue position lies in the band widened
-    by the chunk's fastest motion (before the magnitude limits).
+    Only the position, motion and epoch columns are converted for the whole
+    chunk; the rest only for the rows near the band.  Returns the selected
+    columns (kinds as keys, plus ``has_proper_motion``) and the number of rows
+    in the band before the magnitude limits.
     """
-    data = {
-        kind: np.asarray(raw[name], dtype=float) * plan.scale.get(kind, 1.0)
-        for kind, name in plan.names.items()
-        if kind != "identifier"
-    }
-    if "identifier" in plan.names:
-        data["identifier"] = np.asarray(raw[plan.names["identifier"]])
-    ra, dec = data["ra"] % 360.0, data["dec"]
-    epoch = data["epoch"] if "epoch" in data else np.full(ra.shape, float(plan.epoch))
-    pm_ra = data.get("pm_ra", np.zeros(ra.shape))
-    pm_dec = data.get("pm_dec", np.zeros(ra.shape))
-    has_pm = np.isfinite(pm_ra) & np.isfinite(pm_dec) & ("pm_ra" in data)
+
+    def column(kind: str, rows: Any = slice(None)) -> np.ndarray:
+        values = raw[plan.names[kind]][rows]
+        if kind == "identifier":
+            return np.asarray(values)
+        return np.asarray(values, dtype=float) * plan.scale.get(kind, 1.0)
+
+    ra, dec = column("ra") % 360.0, column("dec")
+    if "pm_ra" in plan.names:
+        pm_ra, pm_dec = column("pm_ra"), column("pm_dec")
+        has_pm = np.isfinite(pm_ra) & np.isfinite(pm_dec)
+        pm_ra, pm_dec = np.where(has_pm, pm_ra, 0.0), np.where(has_pm, pm_dec, 0.0)
+    else:
+        pm_ra = pm_dec = np.zeros(ra.shape)
+        has_pm = np.zeros(ra.shape, dtype=bool)
+    epoch = column("epoch") if "epoch" in plan.names else np.full(ra.shape, float(plan.epoch))
+    # widen the band by the fastest star's motion between the epochs
     years = np.abs(_julian_year(obs_epoch) - epoch)
-    motion = np.hypot(np.where(has_pm, pm_ra, 0.0), np.where(has_pm, pm_dec, 0.0)) * years
-    reach = float(np.nanmax(motion, initial=0.0)) / _MAS_PER_DEG
-    near = (
-        band.widened(min(reach, 180.0)).contains(ra, dec) if reach > 0 else band.contains(ra, dec)
+    reach = float(np.nanmax(np.hypot(pm_ra, pm_dec) * years, initial=0.0)) / _MAS_PER_DEG
+    near = band.widened(min(reach, 180.0)) if reach > 0 else band
+    rows = np.flatnonzero(near.contains(ra, dec))
+    pick = {"has_proper_motion": has_pm[rows], "pm_ra": pm_ra[rows], "pm_dec": pm_dec[rows]}
+    pick.update(
+        (kind, column(kind, rows))
+        for kind in plan.names
+        if kind not in ("ra", "dec", "pm_ra", "pm_dec", "epoch")
     )
-    n_near = int(near.sum())
-    lo, hi = magnitude_range
-    if lo is not None:
-        near &= data["magnitude"] >= lo
-    if hi is not None:
-        near &= data["magnitude"] <= hi
-    rows = np.flatnonzero(near)
-    pick = {kind: values[rows] for kind, values in data.items()}
-    pick["has_proper_motion"] = has_pm[rows]
     moved_ra, moved_dec = positions_at_epoch(
-        pick["ra"] % 360.0,
-        pick["dec"],
-        np.where(pick["has_proper_motion"], pick.get("pm_ra", 0.0), 0.0),
-        np.where(pick["has_proper_motion"], pick.get("pm_dec", 0.0), 0.0),
+        ra[rows],
+        dec[rows],
+        pick["pm_ra"],
+        pick["pm_dec"],
         epoch[rows],
         obs_epoch,
         parallax_mas=pick.get("parallax"),
@@ -754,7 +795,13 @@ def _cut_chunk(
     )
     pick["ra"], pick["dec"] = np.asarray(moved_ra, float), np.asarray(moved_dec, float)
     keep = band.contains(pick["ra"], pick["dec"])
-    return {kind: values[keep] for kind, values in pick.items()}, n_near
+    n_in_band = int(keep.sum())
+    lo, hi = magnitude_range
+    if lo is not None:
+        keep &= pick["magnitude"] >= lo
+    if hi is not None:
+        keep &= pick["magnitude"] <= hi
+    return {kind: values[keep] for kind, values in pick.items()}, n_in_band
 
 
 # ---------------------------------------------------------------- reading
@@ -789,7 +836,7 @@ def read_reference(
         source has one, ``parallax`` [mas] and ``identifier`` if configured.
         ``meta`` holds ``source``, ``epoch`` (catalogue epoch, a Julian year
         or ``'column <name>'``), ``obs_epoch`` (Julian year), ``band`` (its
-        text), ``n_read`` (rows read), ``n_near_band`` (rows near the band
+        text), ``n_read`` (rows read), ``n_in_band`` (stars in the band
         before the magnitude limits) and ``n_selected``.
 
     Raises
@@ -838,7 +885,7 @@ def _read_file(options: ReferenceOptions, band: SkyBand, obs_epoch, base_dir: Pa
         ) from exc
     plan = _plan(options, table_file, path)
     pieces: list[dict[str, np.ndarray]] = []
-    n_read = n_near = 0
+    n_read = n_in_band = 0
     dec_range = [np.inf, -np.inf]
     limits = (options.magnitude_min, options.magnitude_max)
     names = list(dict.fromkeys(plan.names.values()))
@@ -847,17 +894,17 @@ def _read_file(options: ReferenceOptions, band: SkyBand, obs_epoch, base_dir: Pa
         dec = np.asarray(raw[plan.names["dec"]], dtype=float) * plan.scale["dec"]
         if np.isfinite(dec).any():
             dec_range = [min(dec_range[0], np.nanmin(dec)), max(dec_range[1], np.nanmax(dec))]
-        piece, near = _cut_chunk(raw, plan, band, obs_epoch, limits)
-        n_near += near
+        piece, in_band = _cut_chunk(raw, plan, band, obs_epoch, limits)
+        n_in_band += in_band
         pieces.append(piece)
     source = str(path)
     if n_read == 0:
         raise ReferenceCatalogError(f"reference catalogue {path} is empty: it has no rows.")
     epoch = options.epoch if isinstance(options.epoch, float) else f"column {options.epoch}"
-    return _assemble(pieces, source, epoch, n_read, n_near, band, tuple(dec_range), limits)
+    return _assemble(pieces, source, epoch, n_read, n_in_band, band, tuple(dec_range), limits)
 
 
-def _assemble(pieces, source, epoch, n_read, n_near, band, dec_range, limits) -> QTable:
+def _assemble(pieces, source, epoch, n_read, n_in_band, band, dec_range, limits) -> QTable:
     kinds = pieces[0].keys() if pieces else ()
     data = {k: np.concatenate([p[k] for p in pieces]) for k in kinds}
     n_selected = len(data["ra"]) if data else 0
@@ -868,9 +915,9 @@ def _assemble(pieces, source, epoch, n_read, n_near, band, dec_range, limits) ->
             else "it has no valid declinations"
         )
         hint = (
-            f"; {n_near} stars lie in the band but none within the magnitude limits {limits}, "
+            f"; {n_in_band} stars lie in the band but none within the magnitude limits {limits}, "
             "so widen magnitude_min/magnitude_max"
-            if n_near
+            if n_in_band
             else "; check site.latitude, the night's date, and that the catalogue covers "
             "the telescope's declination"
         )
@@ -883,7 +930,7 @@ def _assemble(pieces, source, epoch, n_read, n_near, band, dec_range, limits) ->
             "source": source,
             "epoch": epoch,
             "n_read": n_read,
-            "n_near_band": n_near,
+            "n_in_band": n_in_band,
             "n_selected": n_selected,
         }
     )
@@ -945,6 +992,6 @@ def _read_packaged(options: ReferenceOptions, band: SkyBand, obs_epoch) -> QTabl
     raw = {k: np.asarray(v) for k, v in raw.items()}
     plan = _Plan({k: k for k in raw}, {}, epoch)
     limits = (options.magnitude_min, options.magnitude_max)
-    piece, n_near = _cut_chunk(raw, plan, band, obs_epoch, limits)
+    piece, n_in_band = _cut_chunk(raw, plan, band, obs_epoch, limits)
     all_sky = (-90.0, 90.0)  # both packaged catalogues cover the whole sky
-    return _assemble([piece], source, epoch, len(raw["dec"]), n_near, band, all_sky, limits)
+    return _assemble([piece], source, epoch, len(raw["dec"]), n_in_band, band, all_sky, limits)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import warnings
+
 import erfa
 import numpy as np
 from astropy.time import Time
@@ -116,15 +118,20 @@ def _space_motion(linear, start, motion, parallax_mas, radial_velocity_kms, year
         # mua, mud are the motions over ``years`` in radians; ERFA wants rates per
         # Julian year with dRA/dt not multiplied by cos(dec).
         span = np.where(years[use] != 0.0, years[use], 1.0)
-        ra2, dec2, *_ = erfa.pmsafe(
-            a[use],
-            d[use],
-            mua[use] / span / np.cos(d[use]),
-            mud[use] / span,
-            plx[use] / 1000.0,
-            rv[use],
-            *(e[use] for e in epochs),
-        )
+        with warnings.catch_warnings():
+            # pmsafe moves a star whose tiny parallax implies more than ~0.1c to a
+            # nearer distance and says so (status 1): the intended outcome for a
+            # noisy catalogue parallax, not a problem to report.
+            warnings.filterwarnings("ignore", 'ERFA function "pmsafe"', erfa.ErfaWarning)
+            ra2, dec2, *_ = erfa.pmsafe(
+                a[use],
+                d[use],
+                mua[use] / span / np.cos(d[use]),
+                mud[use] / span,
+                plx[use] / 1000.0,
+                rv[use],
+                *(e[use] for e in epochs),
+            )
         ra_out[use] = np.degrees(ra2) % 360.0
         dec_out[use] = np.degrees(dec2)
     return ra_out, dec_out
