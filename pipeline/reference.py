@@ -543,7 +543,7 @@ def _arrow_csv_chunks(
     with open(path, "rb") as fh:
         sample = b"".join(itertools.islice(fh, skip, skip + 200))
     per_row = max(len(sample) / max(sample.count(b"\n"), 1), 8.0)
-    block = int(min(max(rows * per_row, 1 << 20), 64 << 20))
+    block = int(min(max(rows * per_row, 1 << 16), 64 << 20))
     read_options = pa_csv.ReadOptions(column_names=all_names, use_threads=False)
     parse_options = pa_csv.ParseOptions(delimiter=delimiter)
     convert_options = pa_csv.ConvertOptions(

@@ -8,6 +8,7 @@ from astropy.table import Table
 from astropy.time import Time
 from pydantic import ValidationError
 
+from pipeline import reference
 from pipeline.catalogs import read_gaia_bright, read_hipparcos
 from pipeline.exceptions import ReferenceCatalogError
 from pipeline.geometry import Camera, Site, TDIModel, positions_at_epoch
@@ -88,11 +89,15 @@ def test_round_trip_each_format(star_files, fmt):
 
 
 @pytest.mark.parametrize("fmt", FORMATS)
-def test_chunked_read_equals_one_shot(star_files, fmt):
+def test_chunked_read_equals_one_shot(star_files, fmt, monkeypatch):
     _, paths = star_files
     band = SkyBand(-30.0, 40.0, 300.0, 60.0)
     whole = read_reference(_options(paths[fmt], chunk_rows=10**7), band, 2026.5)
+    calls = []
+    cut = reference._cut_chunk
+    monkeypatch.setattr(reference, "_cut_chunk", lambda *a: calls.append(1) or cut(*a))
     chunked = read_reference(_options(paths[fmt], chunk_rows=1000), band, 2026.5)
+    assert len(calls) >= 4  # text files: blocks of ~1000 rows, not exactly 1000
     assert 0 < len(whole) < N_STARS
     assert whole.meta["n_read"] == chunked.meta["n_read"] == N_STARS
     for name in whole.colnames:
@@ -342,6 +347,24 @@ def test_barnards_star_propagated_with_erfa_matches_gaia():
     assert moved[0].to_value(u.arcsec) == pytest.approx(pm * 24.75 + 0.4, abs=0.1)
 
 
+def test_barnards_star_from_a_file_with_parallax_and_radial_velocity(tmp_path):
+    """The same check through a file's parallax and radial-velocity columns."""
+    hip = read_hipparcos((4.5, 4.9))
+    star = hip[hip["hip"] == BARNARD_HIP]["ra", "dec", "pmra", "pmdec", "parallax", "hp_mag"]
+    star["rv"] = [-110.5] * u.km / u.s  # SIMBAD, from memory (see above)
+    path = tmp_path / "barnard.ecsv"
+    star.write(path)
+    columns = {"pm_ra": "pmra", "pm_dec": "pmdec", "magnitude": "hp_mag",
+               "parallax": "parallax", "radial_velocity": "rv"}  # fmt: skip
+    options = ReferenceOptions(source="file", path=path, columns=columns, epoch=1991.25)
+    out = read_reference(options, BARNARD_BAND, 2016.0)
+    gaia = read_gaia_bright((4.5, 4.9), (269.3, 269.6), proper_motions=False)
+    published = gaia[gaia["source_id"] == BARNARD_GAIA]
+    sep = SkyCoord(out["ra"], out["dec"]).separation(SkyCoord(published["ra"], published["dec"]))
+    assert sep[0].to_value(u.mas) < 150.0  # as above: 3 x the proper-motion errors
+    assert out["parallax"][0].to_value(u.mas) == pytest.approx(548.31)
+
+
 def test_barnards_star_from_the_hipparcos_source():
     out = read_reference(ReferenceOptions(source="hipparcos2"), BARNARD_BAND, 2016.0)
     star = out[out["identifier"] == BARNARD_HIP]
@@ -395,3 +418,53 @@ def test_gaia_and_hipparcos_sources_agree_at_the_night(night_model):
     assert np.median(sep) < 80.0
     years = 2026.8 - 1991.25
     assert np.median(np.hypot(hip["pm_ra"].value, hip["pm_dec"].value)) * years > 3500.0
+
+
+# ------------------------------------------------------------------ config
+CONFIG_YAML = """\
+night: {name: n1, raw_dir: raw, output_dir: products}
+site: {latitude: -29.25, longitude: -70.7}
+camera: {n_columns: 64, tdi_rows: 64, pixel_size: 15, focal_length: 8}
+stages:
+  astrometry:
+    reference:
+      source: file
+      path: ../catalogs/stars.parquet
+      columns: {ra: ra_icrs, dec: dec_icrs, magnitude: g, colour_bands: [bp, rp]}
+      units: {UNITS}
+      epoch: 2016.0
+      magnitude_max: 16.5
+"""
+
+
+@pytest.fixture(scope="module")
+def graph_with_reference():
+    from _toy_graph import GRAPH, add_up
+    from pydantic import BaseModel, ConfigDict, Field
+
+    from pipeline.stages.base import Stage
+
+    class AstrometryOptions(BaseModel):
+        model_config = ConfigDict(extra="forbid", frozen=True)
+        reference: ReferenceOptions = Field(default_factory=ReferenceOptions)
+
+    return (*GRAPH[:3], Stage("astrometry", add_up, AstrometryOptions, ("smooth",), "night", ()))
+
+
+def test_reference_section_of_a_config_file(tmp_path, graph_with_reference):
+    from pipeline.config import load_config
+    from pipeline.exceptions import ConfigError
+
+    night = tmp_path / "nights" / "n1.yaml"
+    night.parent.mkdir()
+    night.write_text(CONFIG_YAML.replace("{UNITS}", "{pm_ra: mas/yr}"))
+    config = load_config(night, graph=graph_with_reference)
+    options = config.stages.astrometry.reference
+    # relative paths are taken from the config file's folder
+    assert options.path == tmp_path / "catalogs" / "stars.parquet"
+    assert options.columns.colour_bands == ("bp", "rp") and options.magnitude_max == 16.5
+    night.write_text(CONFIG_YAML.replace("{UNITS}", "{ra: furlongs}"))
+    with pytest.raises(
+        ConfigError, match=r"stages\.astrometry\.reference.*unknown unit 'furlongs'"
+    ):
+        load_config(night, graph=graph_with_reference)
