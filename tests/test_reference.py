@@ -8,7 +8,6 @@ from astropy.table import Table
 from astropy.time import Time
 from pydantic import ValidationError
 
-from pipeline import reference
 from pipeline.catalogs import read_gaia_bright, read_hipparcos
 from pipeline.exceptions import ReferenceCatalogError
 from pipeline.geometry import Camera, Site, TDIModel, positions_at_epoch
@@ -19,6 +18,7 @@ from pipeline.reference import (
     sky_band_for_night,
     sky_band_for_site,
 )
+from pipeline.reference import _read as reading
 
 FORMATS = ["ecsv", "fits", "csv", "parquet"]
 WRITE_FORMAT = {"ecsv": "ascii.ecsv", "fits": "fits", "csv": "ascii.csv", "parquet": "parquet"}
@@ -94,8 +94,8 @@ def test_chunked_read_equals_one_shot(star_files, fmt, monkeypatch):
     band = SkyBand(-30.0, 40.0, 300.0, 60.0)
     whole = read_reference(_options(paths[fmt], chunk_rows=10**7), band, 2026.5)
     calls = []
-    cut = reference._cut_chunk
-    monkeypatch.setattr(reference, "_cut_chunk", lambda *a: calls.append(1) or cut(*a))
+    cut = reading._cut_chunk
+    monkeypatch.setattr(reading, "_cut_chunk", lambda *a: calls.append(1) or cut(*a))
     chunked = read_reference(_options(paths[fmt], chunk_rows=1000), band, 2026.5)
     assert len(calls) >= 4  # text files: blocks of ~1000 rows, not exactly 1000
     assert 0 < len(whole) < N_STARS
@@ -377,6 +377,13 @@ def test_barnards_star_from_a_file_with_parallax_and_radial_velocity(tmp_path):
     sep = SkyCoord(out["ra"], out["dec"]).separation(SkyCoord(published["ra"], published["dec"]))
     assert sep[0].to_value(u.mas) < 150.0  # as above: 3 x the proper-motion errors
     assert out["parallax"][0].to_value(u.mas) == pytest.approx(548.31)
+
+
+def test_packaged_catalogues_are_read_wide_enough_for_their_fastest_star():
+    hip = read_hipparcos()
+    fastest = np.nanmax(np.hypot(hip["pmra"].value, hip["pmdec"].value))
+    assert fastest < reading.FASTEST_PM  # Barnard's star, 10359 mas/yr in hip2.dat
+    assert hip["hip"][np.nanargmax(np.hypot(hip["pmra"].value, hip["pmdec"].value))] == BARNARD_HIP
 
 
 def test_barnards_star_from_the_hipparcos_source():
