@@ -197,3 +197,26 @@ def test_scale_to_zero_point_worked_value():
     assert 30 - 2.5 * np.log10(electrons * factor) == pytest.approx(20.0, abs=1e-12)
     with pytest.raises(ValueError, match="exposure"):
         scale_to_zero_point(25.0, 30.0, 0.0)
+
+
+def test_underestimated_errors_get_an_extra_scatter():
+    # Reference errors quoted at 0.01 mag but truly 0.03: the fit adds
+    # sqrt(0.03^2 - 0.01^2) = 0.028 mag in quadrature instead of clipping
+    # a third of the good stars.
+    rng = np.random.default_rng(6)
+    t, delta, _, _, _ = stars(4000, lambda t: np.full_like(t, ZP0), rng, noise=0.03)
+    fit = fit_zero_point(t, delta, np.full(t.size, 0.01), knot_spacing=120.0)
+    # 0.002: the spread of a robust (median-based) scale from 4000 stars is ~1.2 %.
+    assert fit.extra_scatter == pytest.approx(np.sqrt(0.03**2 - 0.01**2), abs=0.002)
+    assert np.mean(fit.used) > 0.99
+
+
+def test_star_flat_noise_alone_is_not_reported():
+    # 30 stars per bin at 0.05 mag: bin medians scatter by ~0.011 mag, above
+    # max_offset, but none is significant at 4 sigma.
+    rng = np.random.default_rng(7)
+    column = rng.uniform(0, 1024, 2000)
+    residual = rng.normal(0, 0.05, 2000)
+    table, trend = star_flat(column, residual, np.ones(2000, bool), 1024, bin_columns=16)
+    assert np.nanmax(np.abs(table["offset"].value)) > 0.01
+    assert trend["deviant"] == []
