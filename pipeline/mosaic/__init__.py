@@ -1,0 +1,35 @@
+"""Multi-night mosaics: tiles, resampling onto them and the co-add of nights.
+
+A mosaic spans many nights of the same strip of sky.  Its tiles
+(:mod:`pipeline.mosaic._tiles`) carry standard celestial WCSs independent of
+any night's frame; every calibrated product that touches a tile is resampled
+onto it, conserving flux (:mod:`pipeline.mosaic._resample`), and the nights
+are co-added with inverse-variance weights and outlier rejection across nights
+(:mod:`pipeline.mosaic._coadd`).  A tile is one independent task:
+:func:`mosaic_tile` takes the products touching it and returns its planes.
+"""
+
+from pipeline.mosaic._options import CoaddOptions, TileCentre, TilingOptions
+from pipeline.mosaic._resample import ResampledImage, resample_to_tile
+from pipeline.mosaic._tiles import (
+    Footprint,
+    Tile,
+    explicit_tiles,
+    footprint_of,
+    strip_tiles,
+    touches,
+)
+
+__all__ = [
+    "CoaddOptions",
+    "Footprint",
+    "ResampledImage",
+    "Tile",
+    "TileCentre",
+    "TilingOptions",
+    "explicit_tiles",
+    "footprint_of",
+    "resample_to_tile",
+    "strip_tiles",
+    "touches",
+]
