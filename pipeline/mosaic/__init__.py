@@ -9,6 +9,19 @@ are co-added with inverse-variance weights and outlier rejection across nights
 :func:`mosaic_tile` takes the products touching it and returns its planes.
 """
 
+from pipeline.mosaic._coadd import (
+    NIGHT_ZERO_POINT_KEY,
+    SEEING_KEY,
+    ZERO_POINT_KEY,
+    CoaddedPlanes,
+    MosaicTile,
+    NightImage,
+    coadd,
+    mosaic_tile,
+    night_image_from_hdulist,
+    select_products,
+    weighted_median,
+)
 from pipeline.mosaic._options import CoaddOptions, TileCentre, TilingOptions
 from pipeline.mosaic._resample import ResampledImage, resample_to_tile
 from pipeline.mosaic._tiles import (
@@ -21,15 +34,26 @@ from pipeline.mosaic._tiles import (
 )
 
 __all__ = [
+    "NIGHT_ZERO_POINT_KEY",
+    "SEEING_KEY",
+    "ZERO_POINT_KEY",
     "CoaddOptions",
+    "CoaddedPlanes",
     "Footprint",
+    "MosaicTile",
+    "NightImage",
     "ResampledImage",
     "Tile",
     "TileCentre",
     "TilingOptions",
+    "coadd",
     "explicit_tiles",
     "footprint_of",
+    "mosaic_tile",
+    "night_image_from_hdulist",
     "resample_to_tile",
+    "select_products",
     "strip_tiles",
     "touches",
+    "weighted_median",
 ]

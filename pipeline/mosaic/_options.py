@@ -4,7 +4,9 @@ from __future__ import annotations
 
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+
+from pipeline.masks import MaskBit
 
 __all__ = ["CoaddOptions", "TileCentre", "TilingOptions"]
 
@@ -12,7 +14,7 @@ __all__ = ["CoaddOptions", "TileCentre", "TilingOptions"]
 class TileCentre(BaseModel):
     """One explicitly placed tile (``tiling.tiles`` entries)."""
 
-    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
+    model_config = ConfigDict(extra="forbid", frozen=True)
 
     ra: float = Field(ge=0, lt=360, description="Right ascension of the tile centre, deg (ICRS).")
     dec: float = Field(ge=-90, le=90, description="Declination of the tile centre, deg (ICRS).")
@@ -31,7 +33,7 @@ class TilingOptions(BaseModel):
     and :func:`pipeline.mosaic.explicit_tiles`.
     """
 
-    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
+    model_config = ConfigDict(extra="forbid", frozen=True)
 
     layout: Literal["tangent_tiles", "cylindrical_strip", "explicit"] = Field(
         "tangent_tiles",
@@ -76,7 +78,7 @@ class CoaddOptions(BaseModel):
     Field names mirror the keyword arguments of :func:`pipeline.mosaic.coadd`.
     """
 
-    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
+    model_config = ConfigDict(extra="forbid", frozen=True)
 
     max_seeing: float | None = Field(
         None,
@@ -118,3 +120,13 @@ class CoaddOptions(BaseModel):
         ("SATURATED", "BLEED", "BAD_COLUMN", "COSMIC_RAY", "NONFINITE", "GAP", "OUTSIDE"),
         description="Flag names (pipeline.masks.MaskBit) whose pixels are left out of the co-add.",
     )
+
+    @field_validator("ignore_flags")
+    @classmethod
+    def _known_flags(cls, names: tuple[str, ...]) -> tuple[str, ...]:
+        unknown = [n for n in names if n not in MaskBit.__members__]
+        if unknown:
+            raise ValueError(
+                f"unknown flag name(s) {unknown}; known: {', '.join(MaskBit.__members__)}."
+            )
+        return names

@@ -1,0 +1,533 @@
+"""Co-add the nights that cover a tile.
+
+Steps (:func:`mosaic_tile`; :func:`coadd` is the part that sees only arrays):
+
+1. Select: products whose seeing FWHM exceeds ``max_seeing`` or whose night
+   zero point lies more than ``max_transparency_loss`` magnitudes below the
+   best product's are left out (:func:`select_products`).
+2. Put every product on one photometric scale (the first kept product's zero
+   point: flux times ``10**(0.4 (zp_common - zp))``, variance times its square)
+   and resample it onto the tile (:func:`~pipeline.mosaic.resample_to_tile`);
+   the products of one night (its stretches) form one plane per night.
+3. Match levels: each night's median offset from the nights' median (its sky
+   level) is removed, keeping the weighted mean level.
+4. Weights: ``w_i = s_i / V_i``, ``V_i`` the night's predicted pixel variance
+   (variance plane times the resampling's pixel factor) and ``s_i = (best FWHM
+   / FWHM_i)**2`` if ``weight_by_seeing``, else 1.
+5. Reject outliers across nights where at least ``min_nights`` nights have
+   data: a night's pixel is rejected when it lies more than ``reject_sigma``
+   times ``sqrt(V_i + (source_tolerance * S)**2)`` from the weighted median,
+   ``S`` the median's signal above the tile's sky (stars seen in different
+   seeing differ by a fraction of their signal; a satellite trail, a cosmic
+   ray or a transient on blank sky does not have that allowance).  Rejections
+   grow by ``grow`` pixels in that night (the faint wings of a trail).
+6. Average: ``image = sum(w x) / sum(w)`` over the kept nights; ``weight =
+   (sum w)**2 / sum(w**2 V)``, the inverse of the predicted pixel variance;
+   ``coverage`` the number of kept nights; ``flags`` the OR of the kept
+   nights' flags (of all nights where none is kept).
+
+The tile's ``noise_correlation`` is the variance of a large aperture sum over
+the sum of ``1 / weight`` across it: the weighted mean over nights of their
+resampled images' ``noise_correlation / pixel_factor``.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+from astropy.io import fits
+from astropy.wcs import WCS
+from scipy import ndimage
+
+from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.mosaic._options import CoaddOptions
+from pipeline.mosaic._resample import resample_to_tile
+from pipeline.mosaic._tiles import Tile
+from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSION
+
+__all__ = [
+    "NIGHT_ZERO_POINT_KEY",
+    "SEEING_KEY",
+    "ZERO_POINT_KEY",
+    "CoaddedPlanes",
+    "MosaicTile",
+    "NightImage",
+    "coadd",
+    "mosaic_tile",
+    "night_image_from_hdulist",
+    "select_products",
+    "weighted_median",
+]
+
+log = logging.getLogger(__name__)
+
+#: Header keyword of a calibrated product's photometric zero point: the AB
+#: magnitude of one electron in its FLUX plane (one fixed value for the survey).
+ZERO_POINT_KEY = "ZEROPNT"
+#: Header keyword of the zero point the night measured before the common scale
+#: was applied (lower: less transparent).
+NIGHT_ZERO_POINT_KEY = "NIGHTZP"
+#: Header keyword of the product's seeing FWHM, arcsec.
+SEEING_KEY = "SEEING"
+
+
+@dataclass(frozen=True, eq=False)
+class NightImage:
+    """A calibrated image product of one night, ready for a mosaic.
+
+    Attributes
+    ----------
+    image, variance : ndarray, shape (n_y, n_x)
+        Electrons per pixel (on the scale of ``zero_point``) and e^2.
+    flags : ndarray of uint16, shape (n_y, n_x)
+        :class:`~pipeline.masks.MaskBit` flags.
+    wcs : astropy.wcs.WCS
+        Celestial WCS of the arrays.
+    zero_point : float
+        Magnitude of one electron in ``image``.
+    night : str
+        The night it belongs to (products of one night count as one in ``coverage``).
+    night_zero_point : float or None
+        Zero point the night measured (transparency); None: ``zero_point``.
+    seeing : float or None
+        Seeing FWHM, arcsec; None: unknown (never excluded by seeing).
+    noise_correlation : float
+        Large-aperture noise factor of the product (rectify's ``NOISECOR``).
+    """
+
+    image: np.ndarray
+    variance: np.ndarray
+    flags: np.ndarray
+    wcs: WCS
+    zero_point: float
+    night: str
+    night_zero_point: float | None = None
+    seeing: float | None = None
+    noise_correlation: float = 1.0
+
+    @property
+    def transparency_zero_point(self) -> float:
+        return self.zero_point if self.night_zero_point is None else self.night_zero_point
+
+
+def night_image_from_hdulist(hdul: fits.HDUList, night: str | None = None) -> NightImage:
+    """A calibrated image product (FLUX, FLUXVAR, FLAGS) as a :class:`NightImage`.
+
+    Parameters
+    ----------
+    hdul : astropy.io.fits.HDUList
+        The product (:func:`pipeline.products.image_hdulist` layout) with
+        ``ZEROPNT`` and optionally ``NIGHTZP``, ``SEEING`` and ``NOISECOR``
+        on its FLUX plane.
+    night : str or None
+        Night label; None: the FLUX plane's ``DATE-OBS`` (its date part).
+
+    Raises
+    ------
+    ValueError
+        A plane or ``ZEROPNT`` is missing.
+    """
+    names = [hdu.name for hdu in hdul]
+    missing = [n for n in (FLUX_EXTENSION, VARIANCE_EXTENSION, FLAGS_EXTENSION) if n not in names]
+    if missing:
+        raise ValueError(
+            f"not an image product: no {', '.join(missing)} extension (found {names})."
+        )
+    header = hdul[FLUX_EXTENSION].header
+    if ZERO_POINT_KEY not in header:
+        raise ValueError(
+            f"the product has no {ZERO_POINT_KEY} card: mosaics combine calibrated products "
+            "(run the zero-point calibration first)."
+        )
+    if night is None:
+        night = str(header.get("DATE-OBS", ""))[:10]
+    return NightImage(
+        image=hdul[FLUX_EXTENSION].data,
+        variance=hdul[VARIANCE_EXTENSION].data,
+        flags=hdul[FLAGS_EXTENSION].data,
+        wcs=WCS(header).celestial,
+        zero_point=float(header[ZERO_POINT_KEY]),
+        night=night,
+        night_zero_point=(
+            float(header[NIGHT_ZERO_POINT_KEY]) if NIGHT_ZERO_POINT_KEY in header else None
+        ),
+        seeing=float(header[SEEING_KEY]) if SEEING_KEY in header else None,
+        noise_correlation=float(header.get("NOISECOR", 1.0)),
+    )
+
+
+def select_products(
+    products: Sequence[NightImage],
+    *,
+    max_seeing: float | None = None,
+    max_transparency_loss: float | None = None,
+) -> tuple[list[NightImage], dict[int, str]]:
+    """Keep the products within the seeing and transparency limits.
+
+    Parameters
+    ----------
+    products : sequence of NightImage
+    max_seeing : float or None
+        Largest seeing FWHM kept, arcsec; None: no limit.
+    max_transparency_loss : float or None
+        Largest loss of zero point below the best product's, mag; None: no limit.
+
+    Returns
+    -------
+    kept : list of NightImage
+    excluded : dict
+        Index in ``products`` -> why it was left out.
+    """
+    excluded: dict[int, str] = {}
+    best = max((p.transparency_zero_point for p in products), default=0.0)
+    for i, product in enumerate(products):
+        if max_seeing is not None and product.seeing is not None and product.seeing > max_seeing:
+            excluded[i] = f"seeing {product.seeing:.2f} arcsec > max_seeing {max_seeing:g}"
+        elif (
+            max_transparency_loss is not None
+            and best - product.transparency_zero_point > max_transparency_loss
+        ):
+            loss = best - product.transparency_zero_point
+            excluded[i] = (
+                f"zero point {loss:.2f} mag below the best > max_transparency_loss "
+                f"{max_transparency_loss:g}"
+            )
+    for i, reason in excluded.items():
+        log.info("night %s left out: %s", products[i].night, reason)
+    return [p for i, p in enumerate(products) if i not in excluded], excluded
+
+
+@dataclass(frozen=True, eq=False)
+class CoaddedPlanes:
+    """The co-add of aligned night planes.
+
+    Attributes
+    ----------
+    image : ndarray, shape (n_y, n_x)
+        Weighted mean, e- per pixel; NaN where no night is kept.
+    weight : ndarray, shape (n_y, n_x)
+        Inverse of the predicted pixel variance, e^-2; 0 without data.
+    coverage : ndarray of uint16, shape (n_y, n_x)
+        Nights kept per pixel.
+    flags : ndarray of uint16, shape (n_y, n_x)
+        OR of the kept nights' flags (of all nights' where none is kept).
+    rejected : ndarray of int, shape (n_nights,)
+        Pixels of each night rejected as outliers (after growing).
+    offsets : ndarray, shape (n_nights,)
+        Level subtracted from each night, e-.
+    """
+
+    image: np.ndarray
+    weight: np.ndarray
+    coverage: np.ndarray
+    flags: np.ndarray
+    rejected: np.ndarray
+    offsets: np.ndarray
+
+
+def _flag_bits(names: Sequence[str]) -> int:
+    bits = 0
+    for name in names:
+        try:
+            bits |= int(MaskBit[name])
+        except KeyError:
+            known = ", ".join(b.name for b in MaskBit)
+            raise ValueError(
+                f"unknown flag name {name!r} in ignore_flags; known: {known}."
+            ) from None
+    return bits
+
+
+def weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Weighted median along axis 0 (weight 0 marks a missing value).
+
+    Parameters
+    ----------
+    values, weights : ndarray, shape (n, ...)
+
+    Returns
+    -------
+    ndarray, shape values.shape[1:]
+        The lowest value at which the cumulative weight reaches half the
+        total; NaN where every weight is 0.
+    """
+    keyed = np.where(weights > 0, values, np.inf)
+    order = np.argsort(keyed, axis=0)
+    sorted_values = np.take_along_axis(keyed, order, axis=0)
+    cumulative = np.cumsum(np.take_along_axis(weights, order, axis=0), axis=0)
+    total = cumulative[-1]
+    index = np.argmax(cumulative >= 0.5 * total, axis=0)
+    median = np.take_along_axis(sorted_values, index[None], axis=0)[0]
+    return np.where(total > 0, median, np.nan)
+
+
+def coadd(
+    images: np.ndarray,
+    variances: np.ndarray,
+    flags: np.ndarray,
+    *,
+    scale: np.ndarray | None = None,
+    reject_sigma: float = 4.0,
+    source_tolerance: float = 0.5,
+    min_nights: int = 3,
+    grow: int = 1,
+    match_levels: bool = True,
+    ignore_flags: Sequence[str] = CoaddOptions().ignore_flags,
+) -> CoaddedPlanes:
+    """Inverse-variance weighted, outlier-rejecting mean of aligned nights.
+
+    Parameters
+    ----------
+    images : ndarray, shape (n_nights, n_y, n_x)
+        Each night on the tile, e- per pixel; NaN without data.
+    variances : ndarray, shape (n_nights, n_y, n_x)
+        Predicted pixel variance of each night, e^2 (the resampled variance
+        plane times its ``pixel_factor``).
+    flags : ndarray of uint16, shape (n_nights, n_y, n_x)
+    scale : ndarray, shape (n_nights,), optional
+        Extra factor on each night's weight (e.g. for seeing); default 1.
+    reject_sigma, source_tolerance, min_nights, grow, match_levels, ignore_flags
+        See :class:`~pipeline.mosaic.CoaddOptions` and the module docstring.
+
+    Returns
+    -------
+    CoaddedPlanes
+    """
+    images = np.asarray(images, dtype=float)
+    variances = np.asarray(variances, dtype=float)
+    flags = np.asarray(flags)
+    if images.ndim != 3 or variances.shape != images.shape or flags.shape != images.shape:
+        raise ValueError(
+            "images, variances and flags must be 3-D (n_nights, n_y, n_x) of one shape; got "
+            f"{images.shape}, {variances.shape} and {flags.shape}."
+        )
+    n_nights = images.shape[0]
+    scale = np.ones(n_nights) if scale is None else np.asarray(scale, dtype=float)
+    valid = np.isfinite(images) & np.isfinite(variances) & (variances > 0)
+    valid &= (flags & MASK_DTYPE.type(_flag_bits(ignore_flags))) == 0
+    weights = np.where(valid, scale[:, None, None] / np.where(valid, variances, 1.0), 0.0)
+    images = np.where(valid, images, 0.0)
+
+    offsets = np.zeros(n_nights)
+    if match_levels and n_nights > 1:
+        reference = weighted_median(images, weights)
+        for i in range(n_nights):
+            both = valid[i] & np.isfinite(reference)
+            if both.any():
+                offsets[i] = np.median(images[i][both] - reference[both])
+        totals = weights.sum(axis=(1, 2))
+        if totals.sum() > 0:
+            offsets -= np.sum(offsets * totals) / totals.sum()
+        images = np.where(valid, images - offsets[:, None, None], 0.0)
+
+    count = valid.sum(axis=0)
+    rejected = np.zeros(images.shape, bool)
+    if n_nights >= min_nights:
+        median = weighted_median(images, weights)
+        sky = np.nanmedian(median) if np.isfinite(median).any() else 0.0
+        signal = np.clip(np.nan_to_num(median - sky), 0.0, None)
+        sigma2 = np.where(valid, variances, 1.0) + (source_tolerance * signal) ** 2
+        rejected = (
+            valid & (count >= min_nights) & ((images - median) ** 2 > reject_sigma**2 * sigma2)
+        )
+        if grow > 0 and rejected.any():
+            structure = np.ones((1, 2 * grow + 1, 2 * grow + 1), bool)
+            rejected = ndimage.binary_dilation(rejected, structure) & valid
+    kept = valid & ~rejected
+    weights = np.where(kept, weights, 0.0)
+    total = weights.sum(axis=0)
+    has_data = total > 0
+    safe = np.where(has_data, total, 1.0)
+    image = np.where(has_data, (weights * images).sum(axis=0) / safe, np.nan)
+    spread = (weights**2 * np.where(kept, variances, 0.0)).sum(axis=0)
+    weight = np.where(has_data, total**2 / np.where(has_data, spread, 1.0), 0.0)
+    used = np.bitwise_or.reduce(np.where(kept, flags, 0).astype(MASK_DTYPE), axis=0)
+    every = np.bitwise_or.reduce(flags.astype(MASK_DTYPE), axis=0)
+    return CoaddedPlanes(
+        image=image.astype(np.float32),
+        weight=weight.astype(np.float32),
+        coverage=kept.sum(axis=0).astype(np.uint16),
+        flags=np.where(has_data, used, every).astype(MASK_DTYPE),
+        rejected=rejected.sum(axis=(1, 2)),
+        offsets=offsets,
+    )
+
+
+@dataclass(frozen=True, eq=False)
+class MosaicTile:
+    """A finished tile: the co-added planes and what went into them.
+
+    Attributes
+    ----------
+    tile : Tile
+    planes : CoaddedPlanes
+    zero_point : float
+        Magnitude of one electron in ``planes.image``.
+    nights : tuple of str
+        The nights co-added, in plane order.
+    noise_correlation : float
+        Variance of a large aperture sum over the sum of ``1 / weight``.
+    excluded : dict
+        Index of a left-out product in the input -> the reason.
+    """
+
+    tile: Tile
+    planes: CoaddedPlanes
+    zero_point: float
+    nights: tuple[str, ...]
+    noise_correlation: float
+    excluded: dict[int, str] = field(default_factory=dict)
+
+    def header(self) -> fits.Header:
+        """The tile's WCS and the mosaic's cards (zero point, nights, noise factor)."""
+        header = self.tile.wcs.to_header()
+        header[ZERO_POINT_KEY] = (self.zero_point, "[mag] magnitude of 1 electron")
+        header["NOISECOR"] = (
+            round(self.noise_correlation, 5),
+            "aperture variance / sum of 1/weight",
+        )
+        header["NNIGHTS"] = (len(self.nights), "nights co-added")
+        for i, night in enumerate(self.nights):
+            header[f"NIGHT{i + 1}"] = (night, "night co-added")
+        return header
+
+
+def _night_planes(
+    products: Sequence[NightImage], tile: Tile, zero_point: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float]:
+    """One night's products resampled onto the tile and merged (inverse-variance where they meet).
+
+    Returns image, predicted pixel variance, flags, and the night's pixel and
+    large-aperture noise factors (means over its products, weighted by area).
+    """
+    shape = tile.shape
+    total_w = np.zeros(shape)
+    total_wx = np.zeros(shape)
+    flags = np.zeros(shape, MASK_DTYPE)
+    touched = np.zeros(shape, bool)
+    factors, areas = [], []
+    for product in products:
+        gain = 10.0 ** (0.4 * (zero_point - product.zero_point))
+        result = resample_to_tile(
+            np.asarray(product.image, np.float32) * np.float32(gain),
+            np.asarray(product.variance, np.float32) * np.float32(gain**2),
+            product.flags,
+            product.wcs,
+            tile,
+            noise_correlation=product.noise_correlation,
+        )
+        if result is None:
+            continue
+        region = result.slices
+        variance = result.variance * result.pixel_factor
+        good = np.isfinite(result.image) & np.isfinite(variance) & (variance > 0)
+        w = np.where(good, 1.0 / np.where(good, variance, 1.0), 0.0)
+        total_w[region] += w
+        total_wx[region] += w * np.where(good, result.image, 0.0)
+        flags[region] |= result.flags
+        touched[region] = True
+        factors.append((result.pixel_factor, result.noise_correlation / result.pixel_factor))
+        areas.append(good.sum())
+    if not factors:
+        return None
+    has = total_w > 0
+    image = np.where(has, total_wx / np.where(has, total_w, 1.0), np.nan)
+    variance = np.where(has, 1.0 / np.where(has, total_w, 1.0), np.nan)
+    flags[~touched] |= MASK_DTYPE.type(int(MaskBit.OUTSIDE))
+    pixel, aperture = np.average(np.array(factors), axis=0, weights=np.maximum(areas, 1))
+    return image, variance, flags, float(pixel), float(aperture)
+
+
+def mosaic_tile(
+    products: Sequence[NightImage], tile: Tile, options: CoaddOptions | None = None
+) -> MosaicTile:
+    """Build one tile from the calibrated products that touch it.
+
+    Parameters
+    ----------
+    products : sequence of NightImage
+        Every product touching the tile (any nights; several per night allowed).
+    tile : Tile
+    options : CoaddOptions, optional
+        Defaults if None.
+
+    Returns
+    -------
+    MosaicTile
+
+    Raises
+    ------
+    ValueError
+        If no product is left after the seeing and transparency limits.
+    """
+    options = options or CoaddOptions()
+    kept, excluded = select_products(
+        products,
+        max_seeing=options.max_seeing,
+        max_transparency_loss=options.max_transparency_loss,
+    )
+    if not kept:
+        raise ValueError(
+            f"all {len(products)} products are outside the limits (max_seeing "
+            f"{options.max_seeing}, max_transparency_loss {options.max_transparency_loss}); "
+            "relax them to build this tile."
+        )
+    zero_point = kept[0].zero_point
+    nights: list[str] = list(dict.fromkeys(p.night for p in kept))
+    planes = []
+    for night in nights:
+        merged = _night_planes([p for p in kept if p.night == night], tile, zero_point)
+        planes.append(None if merged is None else (night, *merged))
+    planes = [p for p in planes if p is not None]
+    seeing = {p.night: p.seeing for p in kept}
+    scale = np.ones(len(planes))
+    if options.weight_by_seeing:
+        known = [s for s in seeing.values() if s is not None]
+        if known:
+            best = min(known)
+            scale = np.array([(best / (seeing[p[0]] or best)) ** 2 for p in planes])
+    n_y, n_x = tile.shape
+    if planes:
+        images = np.stack([p[1] for p in planes])
+        variances = np.stack([p[2] for p in planes])
+        flags = np.stack([p[3] for p in planes])
+    else:
+        images = np.full((0, n_y, n_x), np.nan)
+        variances = np.full((0, n_y, n_x), np.nan)
+        flags = np.zeros((0, n_y, n_x), MASK_DTYPE)
+    result = coadd(
+        images,
+        variances,
+        flags,
+        scale=scale,
+        reject_sigma=options.reject_sigma,
+        source_tolerance=options.source_tolerance,
+        min_nights=options.min_nights,
+        grow=options.grow,
+        match_levels=options.match_levels,
+        ignore_flags=options.ignore_flags,
+    )
+    if planes:
+        totals = np.array([np.nansum(scale[i] / variances[i]) for i in range(len(planes))])
+        aperture = np.array([p[5] for p in planes])
+        noise_correlation = float(np.sum(totals * aperture) / max(totals.sum(), 1e-300))
+    else:
+        noise_correlation = 1.0
+    log.info(
+        "%s: %d nights co-added, %d products left out, rejected pixels per night %s",
+        tile.name,
+        len(planes),
+        len(excluded),
+        result.rejected.tolist(),
+    )
+    return MosaicTile(
+        tile=tile,
+        planes=result,
+        zero_point=zero_point,
+        nights=tuple(p[0] for p in planes),
+        noise_correlation=noise_correlation,
+        excluded=excluded,
+    )
