@@ -192,7 +192,7 @@ def strip_tiles(
     if not footprints:
         raise ValueError("footprints is empty: give the outline of at least one product.")
     n_y, n_x = (int(n) for n in shape)
-    if not 0 <= overlap < n_x:
+    if projection == "TAN" and not 0 <= overlap < n_x:
         raise ValueError(f"overlap must be in [0, {n_x}) pixels (the tile width); got {overlap}.")
     reference = float(np.mean(footprints[0].ra[:_EDGE_SAMPLES]))
     ra = np.concatenate([_unwrapped(f.ra, reference) for f in footprints])
