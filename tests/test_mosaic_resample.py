@@ -1,0 +1,165 @@
+"""Resampling a night onto a tile: flux, positions, variance, noise correlation and flags."""
+
+import numpy as np
+import pytest
+from reproject import reproject_exact
+
+from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.mosaic import resample_to_tile
+from tests._mosaic_scene import RA0, gaussian_stars, night_wcs, tile
+
+#: Night image size (covers the 160 px tile with a margin) and the stars on it:
+#: 0-based night pixel (x, y), flux (e-); sigma 1.8 night px (FWHM 4.2 arcsec).
+SHAPE = (200, 220)
+STARS = [(100.3, 95.6, 2.0e4), (60.7, 130.1, 1.0e4), (150.2, 70.4, 5.0e3), (120.9, 52.55, 8.0e3)]
+SIGMA = 1.8
+
+
+def _planes(image, variance=None, flags=None):
+    variance = np.ones(image.shape) if variance is None else variance
+    flags = np.zeros(image.shape, MASK_DTYPE) if flags is None else flags
+    return image.astype(np.float32), variance.astype(np.float32), flags
+
+
+def _on_tile(result, shape):
+    full = np.full(shape, np.nan)
+    full[result.slices] = result.image
+    return full
+
+
+@pytest.fixture(scope="module")
+def stars_on_tile():
+    """The stars of STARS on a night turned by 0.3 deg and scaled by 1 %, resampled."""
+    wcs = night_wcs(SHAPE, rotation=0.3, scale=1.01)
+    x, y, flux = (np.array(c) for c in zip(*STARS, strict=True))
+    image = gaussian_stars(SHAPE, x, y, flux, SIGMA)
+    target = tile(160)
+    result = resample_to_tile(*_planes(image), wcs, target)
+    ra, dec = wcs.pixel_to_world_values(x, y)
+    tx, ty = target.wcs.world_to_pixel_values(ra, dec)
+    return _on_tile(result, target.shape), tx, ty, flux
+
+
+def _box(image, x, y, half=12):
+    xi, yi = round(x), round(y)
+    gy, gx = np.mgrid[yi - half : yi + half + 1, xi - half : xi + half + 1]
+    return image[gy, gx], gx, gy
+
+
+def test_flux_of_gaussian_stars_is_conserved(stars_on_tile):
+    image, tx, ty, flux = stars_on_tile
+    for x, y, f in zip(tx, ty, flux, strict=True):
+        box, _, _ = _box(image, x, y)
+        # Each night pixel holds the analytic integral of the Gaussian over it
+        # (erf differences), so the box of +-12 px (6.7 sigma) holds the star's
+        # whole flux to 1e-10.  0.2 % is the mosaic's flux-conservation requirement;
+        # the four Keys passes keep it to ~1e-4.
+        assert np.sum(box) / f - 1 == pytest.approx(0, abs=2e-3)
+
+
+def test_stars_land_at_their_true_sky_positions(stars_on_tile):
+    image, tx, ty, _ = stars_on_tile
+    for x, y in zip(tx, ty, strict=True):
+        box, gx, gy = _box(image, x, y)
+        total = box.sum()
+        # First moments of the resampled star against the tile pixel of its sky
+        # position (astropy.wcs, FITS WCS standard).  Keys interpolation keeps a
+        # centroid exactly for a translation and to ~1e-3 px for this small turn
+        # and scale; 0.05 px is the mosaic's astrometric requirement.
+        assert (box * gx).sum() / total == pytest.approx(x, abs=0.05)
+        assert (box * gy).sum() / total == pytest.approx(y, abs=0.05)
+
+
+def test_agrees_with_reproject_exact_on_a_smooth_image():
+    """reproject's exact overlap-area resampler (a reference library) gives the same image."""
+    shape = (120, 130)
+    wcs = night_wcs(shape, rotation=0.3, scale=1.01)
+    # a broad blob: interpolation and exact overlap agree for well-sampled images
+    image = gaussian_stars(shape, [64.2], [58.7], [1.0e6], 9.0) + 50.0
+    target = tile(90)
+    ours = _on_tile(resample_to_tile(*_planes(image), wcs, target), target.shape)
+    # reproject works on surface brightness: divide by the night's pixel area and
+    # multiply by the tile's (both constant to 1e-3 over this small field).
+    ratio = (1 / 1.01) ** 2
+    theirs, footprint = reproject_exact((image, wcs), target.wcs, shape_out=target.shape)
+    inner = np.s_[5:-5, 5:-5]
+    assert footprint[inner].min() > 0.999
+    # exact overlap averages over the pixel (a box filter) where interpolation does
+    # not: for a blob of sigma 9 px that differs by sigma^-2 / 12 ~ 1e-3 of the peak
+    # curvature term; 0.2 % of the peak covers it.
+    peak = ours[inner].max()
+    assert np.abs(ours[inner] - theirs[inner] * ratio).max() < 2e-3 * peak
+
+
+@pytest.fixture(scope="module")
+def white_noise():
+    """Unit white noise on a 560 x 600 night resampled onto a 512 px tile, 4 realisations."""
+    shape = (560, 600)
+    wcs = night_wcs(shape, rotation=0.3, scale=1.01, ra=RA0 + 1e-4, dec=49.7002)
+    target = tile(512)
+    rng = np.random.default_rng(7)
+    return [resample_to_tile(*_planes(rng.normal(0.0, 1.0, shape)), wcs, target) for _ in range(4)]
+
+
+def test_pixel_variance_prediction_matches_the_noise(white_noise):
+    measured = np.mean([r.image[16:-16, 16:-16].var() for r in white_noise])
+    plane = np.mean([r.variance[16:-16, 16:-16].mean() for r in white_noise])
+    factor = white_noise[0].pixel_factor
+    # ~1e6 correlated pixels: the variance is known to ~0.5 %; the factor is
+    # averaged over the phases that occur, which bounds it to ~1 %; 2 % ratchet.
+    assert measured / (plane * factor) == pytest.approx(1.0, abs=0.02)
+    assert factor > 1.05  # same-axis passes correlate; a factor of 1 would miss it
+
+
+def test_large_aperture_noise_prediction(white_noise):
+    n = 16
+    ratios, planes = [], []
+    for r in white_noise:
+        image, variance = r.image[16:-16, 16:-16], r.variance[16:-16, 16:-16]
+        h = (image.shape[0] // n) * n
+        sums = image[:h, :h].reshape(h // n, n, h // n, n).sum(axis=(1, 3))
+        plane = variance[:h, :h].reshape(h // n, n, h // n, n).sum(axis=(1, 3))
+        ratios.append(sums.var())
+        planes.append(plane.mean())
+    # 4 x 900 boxes of 16 x 16 px: the variance of box sums is known to 2.4 %
+    # (sqrt(2 / 3600)); boxes 16 px wide reach the large-aperture limit to ~0.5 %
+    # for kernels 4 px long; 8 % is three standard errors.
+    measured = np.mean(ratios) / np.mean(planes)
+    assert measured == pytest.approx(white_noise[0].noise_correlation, rel=0.08)
+
+
+def test_flags_spread_to_the_pixels_they_feed_and_no_data_stays_empty():
+    wcs = night_wcs(SHAPE, rotation=0.3, scale=1.01)
+    image = np.full(SHAPE, 100.0)
+    flags = np.zeros(SHAPE, MASK_DTYPE)
+    flags[90, 110] = MaskBit.COSMIC_RAY
+    image[40:43, :] = np.nan
+    flags[40:43, :] |= np.uint16(MaskBit.GAP)
+    target = tile(160)
+    result = resample_to_tile(*_planes(image, flags=flags), wcs, target)
+    ra, dec = wcs.pixel_to_world_values(110, 90)
+    tx, ty = target.wcs.world_to_pixel_values(ra, dec)
+    hit = (result.flags & MaskBit.COSMIC_RAY) != 0
+    ys, xs = np.nonzero(hit)
+    ys, xs = ys + result.y_start, xs + result.x_start
+    # A 4-tap pass feeds outputs whose sampling position lies within 2 px of the
+    # pixel, so two passes per axis reach less than 4 px; the OR must cover at
+    # least the 3 x 3 pixels nearest the hit.
+    assert hit.sum() >= 9
+    assert np.abs(xs - tx).max() < 4 and np.abs(ys - ty).max() < 4
+    gap = (result.flags & MaskBit.GAP) != 0
+    assert gap.any()
+    assert np.isnan(result.image[gap]).all() and np.isnan(result.variance[gap]).all()
+    assert np.isfinite(result.image[~gap & ((result.flags & MaskBit.OUTSIDE) == 0)]).all()
+
+
+def test_a_night_that_misses_the_tile_gives_none_and_steep_turns_are_refused():
+    far = night_wcs(SHAPE, ra=120.0)
+    assert resample_to_tile(*_planes(np.ones(SHAPE)), far, tile(64)) is None
+    turned = night_wcs(SHAPE, rotation=30.0)
+    with pytest.raises(ValueError, match="turned by"):
+        resample_to_tile(*_planes(np.ones(SHAPE)), turned, tile(64))
+    with pytest.raises(ValueError, match="one shape"):
+        resample_to_tile(
+            np.ones((3, 3)), np.ones((3, 4)), np.zeros((3, 3), MASK_DTYPE), far, tile(64)
+        )
