@@ -11,14 +11,20 @@ Steps (:func:`mosaic_tile`; :func:`coadd` is the part that sees only arrays):
    the products of one night (its stretches) form one plane per night.
 3. Match levels: each night's median offset from the nights' median (its sky
    level) is removed, keeping the weighted mean level.
-4. Weights: ``w_i = s_i / V_i``, ``V_i`` the night's predicted pixel variance
-   (variance plane times the resampling's pixel factor) and ``s_i = (best FWHM
-   / FWHM_i)**2`` if ``weight_by_seeing``, else 1.
+4. Weights: ``w_i = s_i / B_i``, ``B_i`` the night's predicted pixel variance
+   ``V_i`` (variance plane times the resampling's pixel factor) but at most its
+   median over blocks of 32 x 32 pixels, so that a star's own photon noise does
+   not lower its night's weight (weights that fall where a night has more
+   signal bias co-added fluxes low: 14 % for bright stars in seeing of 1.2-2.4
+   px sigma), and ``s_i = (best FWHM / FWHM_i)**2`` if ``weight_by_seeing``,
+   else 1.
 5. Reject outliers across nights where at least ``min_nights`` nights have
    data: a night's pixel is rejected when it lies more than ``reject_sigma``
-   times ``sqrt(V_i + (source_tolerance * S)**2)`` from the weighted median,
-   ``S`` the median's signal above the tile's sky (stars seen in different
-   seeing differ by a fraction of their signal; a satellite trail, a cosmic
+   times ``sqrt(V_i + V_m + (source_tolerance * S)**2)`` from the weighted
+   median, ``V_m = (pi/2) / sum(1/V_i)`` the median's own variance,
+   ``S`` the highest significant (3 sigma) signal of the median above the
+   tile's sky within ``source_radius`` pixels (stars seen in different seeing differ by a
+   fraction of their signal, out to their wings; a satellite trail, a cosmic
    ray or a transient on blank sky does not have that allowance).  Rejections
    grow by ``grow`` pixels in that night (the faint wings of a trail).
 6. Average: ``image = sum(w x) / sum(w)`` over the kept nights; ``weight =
@@ -241,6 +247,31 @@ def _flag_bits(names: Sequence[str]) -> int:
     return bits
 
 
+#: Side of the blocks over which a night's variance is summarised for its weights, px.
+_WEIGHT_BLOCK = 32
+
+
+def _background_variance(variance: np.ndarray) -> np.ndarray:
+    """``variance``, but at most its median over blocks of ``_WEIGHT_BLOCK`` pixels.
+
+    A star's pixels carry its photon noise; the block median is the sky's.
+    Blocks without data leave ``variance`` as it is.
+    """
+    n_y, n_x = variance.shape
+    b = _WEIGHT_BLOCK
+    n_by, n_bx = -(-n_y // b), -(-n_x // b)
+    padded = np.full((n_by * b, n_bx * b), np.nan)
+    padded[:n_y, :n_x] = variance
+    blocks = padded.reshape(n_by, b, n_bx, b).transpose(0, 2, 1, 3).reshape(n_by, n_bx, b * b)
+    finite = np.isfinite(blocks)
+    counts = finite.sum(axis=-1)
+    ordered = np.sort(np.where(finite, blocks, np.inf), axis=-1)
+    middle = np.take_along_axis(ordered, np.maximum(counts - 1, 0)[..., None] // 2, axis=-1)[..., 0]
+    median = np.where(counts > 0, middle, np.nan)
+    full = np.repeat(np.repeat(median, b, axis=0), b, axis=1)[:n_y, :n_x]
+    return np.fmin(variance, full)
+
+
 def weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
     """Weighted median along axis 0 (weight 0 marks a missing value).
 
@@ -272,6 +303,7 @@ def coadd(
     scale: np.ndarray | None = None,
     reject_sigma: float = 4.0,
     source_tolerance: float = 0.5,
+    source_radius: int = 5,
     min_nights: int = 3,
     grow: int = 1,
     match_levels: bool = True,
@@ -289,7 +321,7 @@ def coadd(
     flags : ndarray of uint16, shape (n_nights, n_y, n_x)
     scale : ndarray, shape (n_nights,), optional
         Extra factor on each night's weight (e.g. for seeing); default 1.
-    reject_sigma, source_tolerance, min_nights, grow, match_levels, ignore_flags
+    reject_sigma, source_tolerance, source_radius, min_nights, grow, match_levels, ignore_flags
         See :class:`~pipeline.mosaic.CoaddOptions` and the module docstring.
 
     Returns
@@ -308,7 +340,10 @@ def coadd(
     scale = np.ones(n_nights) if scale is None else np.asarray(scale, dtype=float)
     valid = np.isfinite(images) & np.isfinite(variances) & (variances > 0)
     valid &= (flags & MASK_DTYPE.type(_flag_bits(ignore_flags))) == 0
-    weights = np.where(valid, scale[:, None, None] / np.where(valid, variances, 1.0), 0.0)
+    background = np.stack(
+        [_background_variance(np.where(valid[i], variances[i], np.nan)) for i in range(n_nights)]
+    )
+    weights = np.where(valid, scale[:, None, None] / np.where(valid, background, 1.0), 0.0)
     images = np.where(valid, images, 0.0)
 
     offsets = np.zeros(n_nights)
@@ -328,8 +363,14 @@ def coadd(
     if n_nights >= min_nights:
         median = weighted_median(images, weights)
         sky = np.nanmedian(median) if np.isfinite(median).any() else 0.0
-        signal = np.clip(np.nan_to_num(median - sky), 0.0, None)
-        sigma2 = np.where(valid, variances, 1.0) + (source_tolerance * signal) ** 2
+        # the noise of a median is ~sqrt(pi/2) times that of the mean (common practice)
+        inverse = np.where(valid, 1.0 / np.where(valid, variances, 1.0), 0.0).sum(axis=0)
+        noise = np.sqrt(0.5 * np.pi / np.where(inverse > 0, inverse, np.inf))
+        signal = np.nan_to_num(median - sky)
+        signal = np.where(signal > 3.0 * noise, signal, 0.0)
+        if source_radius > 0:
+            signal = ndimage.maximum_filter(signal, size=2 * source_radius + 1)
+        sigma2 = np.where(valid, variances, 1.0) + noise**2 + (source_tolerance * signal) ** 2
         rejected = (
             valid & (count >= min_nights) & ((images - median) ** 2 > reject_sigma**2 * sigma2)
         )
@@ -505,6 +546,7 @@ def mosaic_tile(
         scale=scale,
         reject_sigma=options.reject_sigma,
         source_tolerance=options.source_tolerance,
+        source_radius=options.source_radius,
         min_nights=options.min_nights,
         grow=options.grow,
         match_levels=options.match_levels,

@@ -102,8 +102,15 @@ class CoaddOptions(BaseModel):
     source_tolerance: float = Field(
         0.5,
         ge=0,
-        description="Part of the median's signal above the sky added in quadrature to the "
-        "noise when rejecting, so that stars seen in different seeing are kept.",
+        description="Part of the median's signal above the sky (its highest within "
+        "source_radius) added in quadrature to the noise when rejecting, so that stars seen "
+        "in different seeing are kept.",
+    )
+    source_radius: int = Field(
+        5,
+        ge=0,
+        description="Reach of a source's allowance (source_tolerance) around it, pixels: the "
+        "wings of a star in poor seeing stand out of the median far from its core.",
     )
     min_nights: int = Field(
         3, ge=2, description="Reject outliers only where at least this many nights have data."

@@ -1,0 +1,206 @@
+"""Co-adding nights on a tile: noise prediction, outlier rejection, star fluxes, night limits."""
+
+import numpy as np
+import pytest
+from astropy.io import fits
+
+from pipeline.masks import MASK_DTYPE
+from pipeline.mosaic import (
+    CoaddOptions,
+    NightImage,
+    mosaic_tile,
+    night_image_from_hdulist,
+    resample_to_tile,
+    weighted_median,
+)
+from pipeline.products import image_hdulist
+from tests._mosaic_scene import RA0, gaussian_stars, night_wcs, tile
+
+TILE = tile(256)
+NIGHT_SHAPE = (300, 320)
+#: Per night: turn (deg), scale, centre offsets (deg), blank-sky variance (e^2),
+#: seeing sigma (night px).  Five nights of one strip, each framed a little differently.
+NIGHTS = [
+    (0.10, 0.990, 0.0000, 0.0000, 100.0, 1.2),
+    (0.15, 0.995, 0.0004, -0.0002, 150.0, 1.5),
+    (0.20, 1.000, -0.0003, 0.0003, 200.0, 1.8),
+    (0.25, 1.005, 0.0002, 0.0001, 250.0, 2.1),
+    (0.30, 1.010, -0.0001, -0.0003, 300.0, 2.4),
+]
+#: Stars: tile pixel (x, y) of their sky position and flux (e-; S/N ~ 1000).
+STARS = [(200, 60, 3e5), (60, 200, 3e5), (128, 40, 3e5), (40, 128, 3e5), (220, 120, 3e5)]
+#: The satellite trail of night 2 runs through these tile pixels (away from the stars).
+TRAIL = ((0.0, 30.0), (255.0, 229.0))
+
+
+def _sky(x, y):
+    return TILE.wcs.pixel_to_world_values(np.asarray(x, float), np.asarray(y, float))
+
+
+def _night(i, rng, *, trail=False, **fields):
+    rotation, scale, dra, ddec, variance, sigma = NIGHTS[i]
+    wcs = night_wcs(NIGHT_SHAPE, rotation=rotation, scale=scale, ra=RA0 + dra, dec=49.7 + ddec)
+    sx, sy, flux = (np.array(c, float) for c in zip(*STARS, strict=True))
+    x, y = wcs.world_to_pixel_values(*_sky(sx, sy))
+    model = gaussian_stars(NIGHT_SHAPE, x, y, flux, sigma)
+    if trail:
+        (ax, ay), (bx, by) = (wcs.world_to_pixel_values(*_sky(*p)) for p in TRAIL)
+        gy, gx = np.mgrid[: NIGHT_SHAPE[0], : NIGHT_SHAPE[1]]
+        distance = ((gx - ax) * (by - ay) - (gy - ay) * (bx - ax)) / np.hypot(bx - ax, by - ay)
+        model = model + 40.0 * np.sqrt(variance) * np.exp(-0.5 * (distance / sigma) ** 2)
+    total = variance + model
+    image = model + rng.normal(0.0, np.sqrt(total))
+    fields = {"zero_point": 25.0, "night": f"2026-10-{10 + i}", "seeing": 2.3548 * sigma} | fields
+    return NightImage(
+        image.astype(np.float32),
+        total.astype(np.float32),
+        np.zeros(NIGHT_SHAPE, MASK_DTYPE),
+        wcs,
+        **fields,
+    )
+
+
+@pytest.fixture(scope="module")
+def nights():
+    """The five nights without and with the satellite trail (same noise)."""
+    clean = [_night(i, np.random.default_rng(i)) for i in range(5)]
+    trailed = [_night(i, np.random.default_rng(i), trail=(i == 2)) for i in range(5)]
+    return clean, trailed
+
+
+@pytest.fixture(scope="module")
+def coadds(nights):
+    clean, trailed = nights
+    return mosaic_tile(clean, TILE), mosaic_tile(trailed, TILE)
+
+
+def _blank(planes, margin=20):
+    """Pixels far from stars and the trail, inside the tile's margin."""
+    gy, gx = np.mgrid[: TILE.shape[0], : TILE.shape[1]]
+    far = np.ones(TILE.shape, bool)
+    for x, y, _ in STARS:
+        far &= np.hypot(gx - x, gy - y) > 20
+    (ax, ay), (bx, by) = TRAIL
+    far &= np.abs((gx - ax) * (by - ay) - (gy - ay) * (bx - ax)) / np.hypot(bx - ax, by - ay) > 15
+    inner = np.zeros(TILE.shape, bool)
+    inner[margin:-margin, margin:-margin] = True
+    return far & inner & (planes.coverage > 0)
+
+
+def test_blank_sky_noise_matches_the_inverse_variance_prediction(coadds):
+    clean, _ = coadds
+    planes = clean.planes
+    blank = _blank(planes)
+    measured = np.var(planes.image[blank])
+    predicted = np.mean(1.0 / planes.weight[blank])
+    # ~25000 pixels correlated over ~2 px: the measured variance is known to
+    # ~2 %; 5 % on the rms is the mosaic's noise requirement.
+    assert np.sqrt(measured / predicted) == pytest.approx(1.0, abs=0.05)
+    assert np.median(planes.coverage[blank]) == 5
+    # the resampling's correlation is reported for aperture sums (> 1, see
+    # test_mosaic_resample.py for its check against large boxes)
+    assert clean.noise_correlation > 1.5
+
+
+def test_satellite_trail_leaves_no_pixel_above_three_sigma(coadds):
+    clean, trailed = coadds
+    sigma = 1.0 / np.sqrt(clean.planes.weight)
+    # The trail's light in the co-add: the co-add with the trail minus the one
+    # without (same noise), in co-add sigma.  The mosaic's requirement: below 3
+    # sigma everywhere (the trail is 40 sigma of its night; without rejection it
+    # leaves ~30 sigma).  Negative differences are not trail light: they come
+    # from noise outliers of other nights judged against a slightly different
+    # median.
+    excess = (trailed.planes.image - clean.planes.image) / sigma
+    assert np.nanmax(excess[4:-4, 4:-4]) < 3.0
+    assert trailed.planes.rejected[2] > 2000  # the trail's pixels in its night
+    assert trailed.planes.rejected[2] > 20 * np.delete(trailed.planes.rejected, 2).max()
+
+
+def test_star_fluxes_survive_rejection_in_mixed_seeing(coadds):
+    _, trailed = coadds
+    image = trailed.planes.image
+    for x, y, flux in STARS:
+        box = image[y - 14 : y + 15, x - 14 : x + 15]
+        # S/N ~ 1000 per star: noise moves the box sum by ~0.1 %; the mosaic's
+        # requirement for stars of S/N > 100 is 0.5 %.  Seeing sigma 1.2-2.4 px
+        # across the nights: rejecting star cores or wings would bias the sum.
+        assert box.sum() / flux - 1 == pytest.approx(0.0, abs=5e-3)
+
+
+def test_nights_beyond_the_seeing_and_transparency_limits_are_left_out(nights):
+    clean, _ = nights
+    products = list(clean)
+    products[1] = _night(1, np.random.default_rng(1), night_zero_point=24.2)
+    products = [
+        NightImage(p.image, p.variance, p.flags, p.wcs, 25.0, p.night, 25.0, p.seeing)
+        if i != 1
+        else p
+        for i, p in enumerate(products)
+    ]
+    # night 4: seeing 2.3548 * 2.4 = 5.65 arcsec; night 1: 0.8 mag less transparent
+    options = CoaddOptions(max_seeing=5.0, max_transparency_loss=0.5)
+    result = mosaic_tile(products, TILE, options)
+    assert result.nights == ("2026-10-10", "2026-10-12", "2026-10-13")
+    assert set(result.excluded) == {1, 4}
+    assert "seeing" in result.excluded[4] and "zero point" in result.excluded[1]
+    assert result.planes.coverage.max() == 3
+    same = mosaic_tile([products[i] for i in (0, 2, 3)], TILE, options)
+    np.testing.assert_array_equal(result.planes.image, same.planes.image)
+    with pytest.raises(ValueError, match="outside the limits"):
+        mosaic_tile(products, TILE, CoaddOptions(max_seeing=1.0))
+
+
+def test_products_on_other_zero_points_are_rescaled(nights):
+    clean, _ = nights
+    night = clean[0]
+    factor = 10 ** (-0.4 * (25.0 - 24.0))  # fewer electrons per magnitude at zp 24
+    fainter = NightImage(
+        night.image * np.float32(factor),
+        night.variance * np.float32(factor**2),
+        night.flags,
+        night.wcs,
+        24.0,
+        "2026-10-20",
+    )
+    result = mosaic_tile([night, fainter], TILE, CoaddOptions(match_levels=False))
+    alone = resample_to_tile(night.image, night.variance, night.flags, night.wcs, TILE)
+    assert result.zero_point == 25.0
+    # float32 rounding of the rescaled planes: 1e-5 relative
+    np.testing.assert_allclose(
+        result.planes.image[alone.slices], alone.image, rtol=1e-5, atol=1e-3, equal_nan=True
+    )
+
+
+def test_weighted_median_worked_examples():
+    values = np.array([[1.0, 1.0], [2.0, 2.0], [3.0, 3.0], [10.0, 10.0]])
+    weights = np.array([[1.0, 1.0], [1.0, 1.0], [1.0, 1.0], [1.0, 5.0]])
+    # equal weights: the lowest value reaching half the total weight (2 of 4);
+    # one heavy value (5 of 8) is the median by itself (common practice)
+    np.testing.assert_array_equal(weighted_median(values, weights), [2.0, 10.0])
+    assert np.isnan(weighted_median(values[:, :1], np.zeros((4, 1))))[0]
+
+
+def test_night_image_from_an_image_product():
+    wcs = night_wcs((20, 30))
+    header = wcs.to_header()
+    header["ZEROPNT"] = 25.0
+    header["NIGHTZP"] = 24.6
+    header["SEEING"] = 3.1
+    header["NOISECOR"] = 1.4
+    header["DATE-OBS"] = "2026-10-15T21:00:00"
+    hdul = image_hdulist(
+        np.ones((20, 30)),
+        np.ones((20, 30)),
+        np.zeros((20, 30), MASK_DTYPE),
+        unit="electron",
+        header=header,
+        metadata=fits.Header(),
+    )
+    night = night_image_from_hdulist(hdul)
+    assert (night.zero_point, night.night_zero_point, night.seeing) == (25.0, 24.6, 3.1)
+    assert night.noise_correlation == 1.4 and night.night == "2026-10-15"
+    assert night.wcs.wcs.ctype[0] == "RA---CAR"
+    del hdul["FLUX"].header["ZEROPNT"]
+    with pytest.raises(ValueError, match="ZEROPNT"):
+        night_image_from_hdulist(hdul)
