@@ -11,12 +11,13 @@ Steps (:func:`mosaic_tile`; :func:`coadd` is the part that sees only arrays):
    the products of one night (its stretches) form one plane per night.
 3. Match levels: each night's median offset from the nights' median (its sky
    level) is removed, keeping the weighted mean level.
-4. Weights: ``w_i = s_i / B_i``, ``B_i`` the night's predicted pixel variance
-   ``V_i`` (variance plane times the resampling's pixel factor) but at most its
-   median over blocks of 32 x 32 pixels, so that a star's own photon noise does
-   not lower its night's weight (weights that fall where a night has more
-   signal bias co-added fluxes low: 14 % for bright stars in seeing of 1.2-2.4
-   px sigma), and ``s_i = (best FWHM / FWHM_i)**2`` if ``weight_by_seeing``,
+4. Weights: ``w_i = s_i / B_i``, ``B_i`` the median of the night's predicted
+   pixel variance ``V_i`` (variance plane times the resampling's pixel
+   factor) over blocks of 32 x 32 pixels, interpolated bilinearly: smooth and
+   blind to a star's own photon noise (weights that fall where a night has
+   more signal bias co-added fluxes low: 14 % for bright stars in seeing of
+   1.2-2.4 px sigma; weights that follow the resampling's pixel-to-pixel
+   ripple bias them by ~0.5 %), and ``s_i = (best FWHM / FWHM_i)**2`` if ``weight_by_seeing``,
    else 1.
 5. Reject outliers across nights where at least ``min_nights`` nights have
    data: a night's pixel is rejected when it lies more than ``reject_sigma``
@@ -47,6 +48,7 @@ import numpy as np
 from astropy.io import fits
 from astropy.wcs import WCS
 from scipy import ndimage
+from scipy.interpolate import RectBivariateSpline
 
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic._options import CoaddOptions
@@ -252,10 +254,12 @@ _WEIGHT_BLOCK = 32
 
 
 def _background_variance(variance: np.ndarray) -> np.ndarray:
-    """``variance``, but at most its median over blocks of ``_WEIGHT_BLOCK`` pixels.
+    """The median of ``variance`` over blocks of ``_WEIGHT_BLOCK`` pixels, interpolated bilinearly.
 
-    A star's pixels carry its photon noise; the block median is the sky's.
-    Blocks without data leave ``variance`` as it is.
+    A star's pixels carry its photon noise and the resampling's phases make
+    the variance plane ripple from pixel to pixel; the block median is the
+    sky's, and varies smoothly.  Blocks without data take the median of the
+    other blocks.
     """
     n_y, n_x = variance.shape
     b = _WEIGHT_BLOCK
@@ -267,9 +271,18 @@ def _background_variance(variance: np.ndarray) -> np.ndarray:
     counts = finite.sum(axis=-1)
     ordered = np.sort(np.where(finite, blocks, np.inf), axis=-1)
     middle = np.take_along_axis(ordered, np.maximum(counts - 1, 0)[..., None] // 2, axis=-1)[..., 0]
-    median = np.where(counts > 0, middle, np.nan)
-    full = np.repeat(np.repeat(median, b, axis=0), b, axis=1)[:n_y, :n_x]
-    return np.fmin(variance, full)
+    good = counts > 0
+    if not good.any():
+        return np.full(variance.shape, np.nan)
+    grid = np.where(good, middle, np.median(middle[good]))
+    if n_by < 2 or n_bx < 2:
+        return np.full(variance.shape, float(np.median(grid)))
+    centres_y = (np.arange(n_by) + 0.5) * b - 0.5
+    centres_x = (np.arange(n_bx) + 0.5) * b - 0.5
+    spline = RectBivariateSpline(centres_y, centres_x, grid, kx=1, ky=1)
+    rows = np.clip(np.arange(n_y, dtype=float), centres_y[0], centres_y[-1])
+    cols = np.clip(np.arange(n_x, dtype=float), centres_x[0], centres_x[-1])
+    return spline(rows, cols)
 
 
 def weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:

@@ -4,46 +4,42 @@ Values are electrons per pixel (not surface brightness), so the resampled
 value is the interpolated input density times the number of input pixels per
 output pixel (the Jacobian of the pixel mapping).
 
-Method: four separable passes
-    Every night's frame differs from a tile's by a small rotation and scale
-    and by slowly varying higher-order terms (a circle of declination is
-    curved on a tangent-plane tile).  The mapping from tile pixel ``(X, Y)``
-    to input pixel ``(x, y)`` is split into four 1-D resamplings with the
-    Keys cubic-convolution kernel of the rectify stage
-    (:mod:`pipeline.stages.rectify._resample`), each of a kind that shares
-    its weights along whole lines, which makes them fast in plain NumPy:
+Method: two separable passes (Catmull & Smith 1980, SIGGRAPH 14, 279)
+    The mapping from tile pixel ``(X, Y)`` to input pixel ``(x, y)`` is split
+    into two 1-D resamplings with the Keys cubic-convolution kernel of the
+    rectify stage (:func:`pipeline.stages.rectify._resample.keys_weights`):
 
-    1. a shift of every input column along ``y``: ``v = y - G(x)``, where the
-       curve ``y = G(x)`` is the image of the tile's central row (removes the
-       rotation and the curvature of rows);
-    2. a resampling of every row along ``x`` at ``x = F(u)``, the input column
-       of the central row's tile column ``u`` (scale and its variation);
-    3. a shift of every column ``v`` along the tile's ``X``: ``u = X + s(v)``
-       (the shear that remains);
-    4. a resampling along ``v`` at ``v = p(Y)`` for every tile column.
+    1. along ``x`` for every input row ``y``: ``T[y, X] = I[y, x*(X, y)]``, where
+       ``x*`` is the input column at which tile column ``X`` crosses input
+       row ``y``;
+    2. along ``y`` for every tile column ``X``: ``O[Y, X] = T[y(X, Y), X]``.
 
-    ``s`` and ``p`` change slowly with ``X``; they are held fixed over blocks of
-    tile columns on which they change by less than 0.002 px.  The mapping
-    itself is evaluated exactly (astropy WCS) on nodes every 32 px and
-    interpolated by bicubic splines.  The product of the passes' Jacobians
-    is the full Jacobian (the decomposition is triangular), so flux is
-    conserved.  Input axes that run opposite to the tile's (the rectified
-    frame has east to the right) are flipped first; axes more than ~5 deg
-    from the tile's are refused.
+    The decomposition is exact for any smooth invertible mapping, and the
+    product of the two passes' Jacobians (``dx*/dX`` at fixed ``y``, ``dy/dY``
+    at fixed ``X``) is the full Jacobian, so flux is conserved.  Every night's
+    frame differs from a tile's by a small rotation and scale, but the
+    rotation itself changes across a tile (meridians converge: ~0.7 deg from
+    edge to edge of a 1-degree tile at declination 50 deg), so every pixel
+    gets its own sampling position and weights.  The mapping is evaluated
+    exactly (astropy WCS) on nodes every 32 px, interpolated by bicubic
+    splines, and inverted along columns for pass 1.  Axes may be flipped (the
+    rectified frame has east to the right); axes turned by more than ~20 deg
+    from the tile's are refused (the two-pass method loses resolution there).
 Variance and flags
-    Variance is propagated pass by pass as ``sum(w**2 var)``; flags are the
-    OR of every input pixel with non-zero weight, plus
+    Variance is propagated as ``sum(w**2 var)``: exact per pixel for
+    independent input pixels, since each pass acts along its own axis.  Flags
+    are the OR of every input pixel with non-zero weight, plus
     :attr:`~pipeline.masks.MaskBit.OUTSIDE` where a tap falls beyond the input;
     pixels with a no-data bit are NaN.
 Noise correlation
-    The variance plane ignores covariances: passes 1 and 4 both act along
-    ``y`` and passes 2 and 3 along ``x``, and neighbouring output pixels share
-    input pixels.  :class:`ResampledImage` carries two factors computed from
-    the passes' weights (averaged over the sub-pixel phases that occur, for
-    uncorrelated input noise): ``pixel_factor``, the true variance of a pixel
-    over the variance plane, and ``noise_correlation``, the variance of a large
-    aperture sum over the sum of the variance plane (the input's own factor,
-    rectify's ``NOISECOR``, multiplied in).
+    Neighbouring output pixels share input pixels, so the variance of an
+    aperture sum exceeds the sum of the variance plane over it.
+    :class:`ResampledImage` carries ``noise_correlation``, that ratio for a
+    large aperture: the input's own factor (rectify's ``NOISECOR``) times
+    ``J / mean(sum w_1**2 sum w_2**2)`` (``J`` input pixels per output pixel,
+    the sums over each pass's weights with their Jacobians, for uncorrelated
+    input noise), and ``pixel_factor``, the true variance of a pixel over the
+    variance plane: 1 for uncorrelated input noise.
 """
 
 from __future__ import annotations
@@ -55,15 +51,10 @@ import numpy as np
 from astropy.wcs import WCS
 from scipy.interpolate import RectBivariateSpline
 
-from pipeline.masks import MaskBit
+from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic._tiles import Tile
 from pipeline.stages.rectify import NO_DATA_BITS
-from pipeline.stages.rectify._resample import (
-    keys_weights,
-    resample_columns,
-    shift_rows,
-    transposed,
-)
+from pipeline.stages.rectify._resample import _cleaned, keys_weights
 
 __all__ = ["ResampledImage", "resample_to_tile"]
 
@@ -71,14 +62,14 @@ log = logging.getLogger(__name__)
 
 #: Spacing of the nodes on which the mapping is evaluated exactly, px.
 _NODE_STEP = 32
-#: Largest change of a held shift or position inside a block of tile columns, px.
-_TOLERANCE = 0.002
-#: Spacing of the tile columns at which the block boundaries are tested, px.
-_CANDIDATE_STEP = 8
-#: Largest |shear| (tan of the rotation between input and tile axes) accepted.
-_MAX_SHEAR = 0.09
+#: Spacing of the grid on which pass 1's sampling positions are computed, px.
+_GRID_STEP = 16
+#: Largest |shear| (tan of the turn between input and tile axes) accepted: 20 deg.
+_MAX_SHEAR = 0.364
 #: Reach of the 4-tap kernel beyond the sampled coordinate, px.
 _REACH = 3
+#: Output lines handled at once, so that the working set stays in the processor cache.
+_CHUNK = 32
 
 
 @dataclass(frozen=True, eq=False)
@@ -185,8 +176,8 @@ class _Mapping:
 def _covered_box(mapping: _Mapping, tile: Tile, input_shape) -> tuple[int, int, int, int] | None:
     """Tile pixel box ``(y0, y1, x0, x1)`` whose mapping lands on the input (None: none)."""
     n_y, n_x = tile.shape
-    ys = np.append(np.arange(0, n_y, _CANDIDATE_STEP), n_y - 1).astype(float)
-    xs = np.append(np.arange(0, n_x, _CANDIDATE_STEP), n_x - 1).astype(float)
+    ys = np.append(np.arange(0, n_y, _GRID_STEP), n_y - 1).astype(float)
+    xs = np.append(np.arange(0, n_x, _GRID_STEP), n_x - 1).astype(float)
     x, y = mapping.x(ys, xs), mapping.y(ys, xs)
     reach = _REACH + 0.5
     inside = (
@@ -198,90 +189,97 @@ def _covered_box(mapping: _Mapping, tile: Tile, input_shape) -> tuple[int, int, 
     if not inside.any():
         return None
     rows, cols = np.flatnonzero(inside.any(axis=1)), np.flatnonzero(inside.any(axis=0))
-    y0 = max(int(ys[rows[0]]) - _CANDIDATE_STEP, 0)
-    y1 = min(int(ys[rows[-1]]) + _CANDIDATE_STEP + 1, n_y)
-    x0 = max(int(xs[cols[0]]) - _CANDIDATE_STEP, 0)
-    x1 = min(int(xs[cols[-1]]) + _CANDIDATE_STEP + 1, n_x)
+    y0 = max(int(ys[rows[0]]) - _GRID_STEP, 0)
+    y1 = min(int(ys[rows[-1]]) + _GRID_STEP + 1, n_y)
+    x0 = max(int(xs[cols[0]]) - _GRID_STEP, 0)
+    x1 = min(int(xs[cols[-1]]) + _GRID_STEP + 1, n_x)
     return y0, y1, x0, x1
 
 
-def _column_blocks(
-    mapping: _Mapping, x0: int, x1: int, ys: np.ndarray, central: tuple[np.ndarray, np.ndarray]
-) -> np.ndarray:
-    """Tile columns where blocks start (then ``x1``): ``v`` and ``u - X`` vary < tolerance."""
-    xs = np.append(np.arange(x0, x1, _CANDIDATE_STEP), x1 - 1).astype(float)
-    f, g, xe = central
-    x, y = mapping.x(ys, xs), mapping.y(ys, xs)  # (n_ys, n_xs)
-    v = y - np.interp(x, f, g)
-    shear = np.interp(x, f, xe) - xs[None, :]
-    starts = [0]
-    while True:
-        a = starts[-1]
-        moved = np.maximum(
-            np.abs(v[:, a:] - v[:, a : a + 1]).max(axis=0),
-            np.abs(shear[:, a:] - shear[:, a : a + 1]).max(axis=0),
-        )
-        beyond = np.flatnonzero(moved > _TOLERANCE)
-        if beyond.size == 0:
-            break
-        starts.append(max(int(beyond[0]) - 1, a + 1))
-    breaks = [int(xs[i]) for i in starts] + [x1]
-    return np.unique(np.asarray(breaks, dtype=np.intp))
+def _resample_axis(
+    planes: tuple[np.ndarray, np.ndarray, np.ndarray],
+    positions: np.ndarray,
+    jacobian: np.ndarray,
+    axis: int,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """Keys resampling along one axis with a sampling position for every output pixel.
 
+    Parameters
+    ----------
+    planes : (image, variance, flags)
+        Finite float32 image and variance, uint16 flags, shape (n_rows, n_cols).
+    positions, jacobian : ndarray
+        Shape (n_rows, n_out) for ``axis=1`` (output ``[r, j]`` samples
+        ``image[r, positions[r, j]]``) or (n_out, n_cols) for ``axis=0``
+        (output ``[i, c]`` samples ``image[positions[i, c], c]``); the Jacobian
+        multiplies the weights.
 
-def _noise_factors(
-    p1_positions: np.ndarray,
-    p2_positions: np.ndarray,
-    p2_jacobian: np.ndarray,
-    p3_offsets: np.ndarray,
-    p3_jacobian: np.ndarray,
-    p4_positions: np.ndarray,
-    p4_jacobian: np.ndarray,
-    widths: np.ndarray,
-    n_x: int,
-) -> tuple[float, float, float]:
-    """``(E num / E den, E den, J)`` of the module docstring's noise factors.
-
-    Returns the pixel factor, the mean variance plane per unit input variance
-    and the mean number of input pixels per output pixel.
+    Returns
+    -------
+    image, variance, flags : ndarray, shape positions.shape
+    mean_weight2 : float
+        Mean over the output of the sum of the squared weights.
     """
-    # Along y: pass 1's kernel autocorrelation (per input column, averaged) under pass 4.
-    e = keys_weights(p1_positions - np.floor(p1_positions))  # (4, n_cols)
-    lags = np.arange(-3, 4)
-    auto = np.array([sum(e[m] * e[m + lag] for m in range(4) if 0 <= m + lag < 4) for lag in lags])
-    auto = auto.mean(axis=1)
-    d = keys_weights(p4_positions - np.floor(p4_positions)) * p4_jacobian  # (4, nb, n_y)
-    num_y = sum(d[k] * d[j] * auto[j - k + 3] for k in range(4) for j in range(4))
-    den_y = (d * d).sum(axis=0) * auto[3]
-    block_weight = (widths / widths.sum())[:, None] / p4_positions.shape[1]
-    num_y, den_y = float((num_y * block_weight).sum()), float((den_y * block_weight).sum())
-    # Along x: pass 2's kernels at the four taps of pass 3, composed per tile column.
-    base_a = np.floor(p2_positions).astype(np.intp)
-    a = keys_weights(p2_positions - base_a) * p2_jacobian  # (4, n_u)
-    middle = p3_offsets.shape[0] // 2
-    columns = np.unique(np.linspace(0, p3_offsets.shape[1] - 1, 16).astype(np.intp))
-    index = np.arange(n_x)
-    num_x = den_x = 0.0
-    width = 16 + 3 * int(np.ceil(np.abs(np.diff(p2_positions)).max(initial=1.0)))
-    for column in columns:
-        offset = p3_offsets[middle, column]
-        start = int(np.floor(offset))
-        b = keys_weights(np.array(offset - start)) * p3_jacobian[middle, column]
-        taps = np.clip(index[:, None] + start - 1 + np.arange(4)[None, :], 0, a.shape[1] - 1)
-        composed = np.zeros((n_x, width))
-        reference = base_a[taps[:, 0]]
+    image, variance, flags = planes
+    n_rows, n_cols = image.shape
+    n_line = n_cols if axis == 1 else n_rows
+    flat, vflat, mflat = image.ravel(), variance.ravel(), flags.ravel()
+    out = np.zeros(positions.shape, np.float32)
+    vout = np.zeros(positions.shape, np.float32)
+    mout = np.zeros(positions.shape, MASK_DTYPE)
+    outside = MASK_DTYPE.type(int(MaskBit.OUTSIDE))
+    sum_w2 = 0.0
+    for r0 in range(0, positions.shape[0], _CHUNK):
+        r1 = min(r0 + _CHUNK, positions.shape[0])
+        p = positions[r0:r1]
+        base = np.floor(p)
+        w = (keys_weights(p - base) * jacobian[r0:r1]).astype(np.float32)
+        base = base.astype(np.intp)
+        if axis == 1:
+            offset, stride = (np.arange(r0, r1) * n_cols)[:, None], 1
+        else:
+            offset, stride = np.arange(positions.shape[1])[None, :], n_cols
+        o, vo, mo = out[r0:r1], vout[r0:r1], mout[r0:r1]
         for k in range(4):
-            for m in range(4):
-                slot = np.clip(base_a[taps[:, k]] - reference + m, 0, width - 1)
-                composed[index, slot] += b[k] * a[m, taps[:, k]]
-        num_x += float((composed**2).sum())
-        den_x += float(sum(b[k] ** 2 * (a[:, taps[:, k]] ** 2).sum() for k in range(4)))
-    num_x /= columns.size * n_x
-    den_x /= columns.size * n_x
-    jacobian = (
-        float(np.mean(p2_jacobian)) * float(np.mean(p4_jacobian)) * float(np.mean(p3_jacobian))
-    )
-    return (num_y / den_y) * (num_x / den_x), den_y * den_x, jacobian
+            line = base + (k - 1)
+            inside = (line >= 0) & (line < n_line)
+            index = offset + np.clip(line, 0, n_line - 1) * stride
+            wk = w[k] if inside.all() else np.where(inside, w[k], np.float32(0))
+            o += wk * flat[index]
+            w2 = wk * wk
+            vo += w2 * vflat[index]
+            sum_w2 += float(w2.sum(dtype=np.float64))
+            nonzero = w[k] != 0
+            mo |= np.where(nonzero & inside, mflat[index], 0).astype(MASK_DTYPE)
+            if not inside.all():
+                mo |= np.where(nonzero & ~inside, outside, 0).astype(MASK_DTYPE)
+    return out, vout, mout, sum_w2 / max(positions.size, 1)
+
+
+def _crossing_columns(
+    mapping: _Mapping, rows: np.ndarray, columns: np.ndarray, y_range: tuple[float, float]
+) -> np.ndarray:
+    """Input column ``x*(X, y)`` at which tile column ``X`` crosses input row ``y``.
+
+    Exact (spline) on a grid every ``_GRID_STEP`` px, interpolated bicubically
+    to ``rows`` x ``columns``.
+    """
+    y_nodes = np.append(np.arange(rows[0], rows[-1], _GRID_STEP), rows[-1]).astype(float)
+    x_nodes = np.append(np.arange(columns[0], columns[-1], _GRID_STEP), columns[-1]).astype(float)
+    fine = np.arange(y_range[0], y_range[1] + 4.0, 4.0)
+    along = mapping.y(fine, x_nodes)  # input row of tile (X, Y) on a fine Y grid
+    crossing = np.empty((y_nodes.size, x_nodes.size))
+    for j, column in enumerate(x_nodes):
+        tile_rows = _extrapolated(y_nodes, along[:, j], fine)
+        crossing[:, j] = mapping.x.ev(tile_rows, np.full_like(tile_rows, column))
+    if y_nodes.size < 4 or x_nodes.size < 4:
+        degree = (min(3, y_nodes.size - 1), min(3, x_nodes.size - 1))
+    else:
+        degree = (3, 3)
+    if min(degree) < 1:
+        return np.broadcast_to(crossing[:1, :1], (rows.size, columns.size)).copy()
+    spline = RectBivariateSpline(y_nodes, x_nodes, crossing, kx=degree[1], ky=degree[0])
+    return spline(rows.astype(float), columns.astype(float))
 
 
 def resample_to_tile(
@@ -337,86 +335,48 @@ def resample_to_tile(
         image, variance, flags = image[:, ::-1], variance[:, ::-1], flags[:, ::-1]
     if mapping.flip_y:
         image, variance, flags = image[::-1], variance[::-1], flags[::-1]
-    n_cols = image.shape[1]
+    n_rows, n_cols = image.shape
+    ys = np.arange(y0, y1)
+    xs = np.arange(x0, x1)
 
-    # The tile's central row, far enough beyond the box for the shear: F(u), G(x).
-    y_centre = 0.5 * (y0 + y1 - 1)
-    pad = int(_MAX_SHEAR * (y1 - y0)) + 2 * _REACH + 8
-    xe = np.arange(x0 - pad, x1 + pad, dtype=float)
-    f, g = mapping.row(y_centre, xe)
-    if not np.all(np.diff(f) > 0):
-        raise ValueError("the mapping folds over along the tile's rows; check the input's WCS.")
-    ys_sample = np.append(np.arange(y0, y1, _CANDIDATE_STEP), y1 - 1).astype(float)
-    xs_sample = np.append(np.arange(x0, x1, _CANDIDATE_STEP), x1 - 1).astype(float)
-    x_box, y_box = mapping.x(ys_sample, xs_sample), mapping.y(ys_sample, xs_sample)
-    x_lo = max(int(np.floor(x_box.min())) - _REACH, 0)
-    x_hi = min(int(np.ceil(x_box.max())) + _REACH + 1, n_cols)
-    v_box = y_box - np.interp(x_box, f, g)
-    v_lo = int(np.floor(v_box.min())) - _REACH
-    v_hi = int(np.ceil(v_box.max())) + _REACH + 1
+    # Pass 2's positions: the input row of every tile pixel.
+    rows = mapping.y(ys.astype(float), xs.astype(float))
+    jacobian2 = np.abs(np.gradient(rows, axis=0)) if ys.size > 1 else np.ones_like(rows)
+    t_lo = max(int(np.floor(rows.min())) - _REACH, 0)
+    t_hi = min(int(np.ceil(rows.max())) + _REACH + 1, n_rows)
+    if t_hi <= t_lo:
+        return None
+    # Pass 1's positions: where each tile column crosses each input row.
+    pad = _MAX_SHEAR * (x1 - x0) + 2 * _NODE_STEP
+    crossing = _crossing_columns(mapping, np.arange(t_lo, t_hi), xs, (y0 - pad, y1 + pad))
+    jacobian1 = np.abs(np.gradient(crossing, axis=1)) if xs.size > 1 else np.ones_like(crossing)
+    x_lo = max(int(np.floor(crossing.min())) - _REACH, 0)
+    x_hi = min(int(np.ceil(crossing.max())) + _REACH + 1, n_cols)
+    if x_hi <= x_lo:
+        return None
 
-    # Blocks of tile columns; per block, p(Y) (pass 4) and s(v) (pass 3).
-    breaks = _column_blocks(mapping, x0, x1, ys_sample, (f, g, xe))
-    mids = 0.5 * (breaks[:-1] + breaks[1:] - 1)
-    ys = np.arange(y0, y1, dtype=float)
-    vs = np.arange(v_lo, v_hi, dtype=float)
-    p4 = np.empty((mids.size, ys.size))
-    s3 = np.empty((mids.size, vs.size))
-    for b, mid in enumerate(mids):
-        x, y = mapping.column(mid, ys)
-        p4[b] = y - np.interp(x, f, g)
-        y_of_v = _extrapolated(vs, p4[b], ys)
-        s3[b] = np.interp(mapping.x.ev(y_of_v, np.full_like(vs, mid)), f, xe) - mid
-    jac4 = np.abs(np.gradient(p4, axis=1)) if ys.size > 1 else np.ones_like(p4)
-    jac3 = 1.0 + (np.gradient(s3, mids, axis=0) if mids.size > 1 else np.zeros_like(s3))
-    u_lo = int(np.floor(x0 + s3.min())) - _REACH
-    u_hi = int(np.ceil(x1 - 1 + s3.max())) + _REACH + 1
-    if u_lo < xe[0] or u_hi > xe[-1] + 1:
-        raise ValueError(
-            "the mapping shears more than the resampler allows; check the input's WCS."
-        )
-    u_index = slice(int(u_lo - xe[0]), int(u_hi - xe[0]))
-    p2 = f[u_index] - x_lo
-    jac2 = np.abs(np.gradient(f))[u_index]
-    p1 = v_lo + np.interp(np.arange(x_lo, x_hi, dtype=float), f, g)
-
-    bits = {"outside_bit": int(MaskBit.OUTSIDE), "nonfinite_bit": int(MaskBit.NONFINITE)}
-    cols = slice(x_lo, x_hi)
-    planes = shift_rows(image[:, cols], variance[:, cols], flags[:, cols], p1, v_hi - v_lo, **bits)
-    planes = resample_columns(*planes, p2, jac2, **bits)
-    planes = shift_rows(
-        *(transposed(p) for p in planes),
-        x0 + s3 - u_lo,
-        x1 - x0,
-        jac3,
-        breaks=breaks - x0,
-        **bits,
+    planes = _cleaned(
+        image[t_lo:t_hi, x_lo:x_hi],
+        variance[t_lo:t_hi, x_lo:x_hi],
+        flags[t_lo:t_hi, x_lo:x_hi].astype(MASK_DTYPE),
+        int(MaskBit.NONFINITE),
+        np.dtype(np.float32),
     )
-    out, vout, mout = resample_columns(*planes, p4 - v_lo, jac4, breaks=breaks - x0, **bits)
-    out, vout, mout = transposed(out), transposed(vout), transposed(mout)
-    no_data = (mout & int(NO_DATA_BITS)) != 0
+    *planes, weight2_1 = _resample_axis(planes, crossing - x_lo, jacobian1, axis=1)
+    out, vout, mout, weight2_2 = _resample_axis(planes, rows - t_lo, jacobian2, axis=0)
+    no_data = (mout & MASK_DTYPE.type(int(NO_DATA_BITS))) != 0
     out[no_data] = np.nan
     vout[no_data] = np.nan
 
-    pixel_factor, plane, jacobian = _noise_factors(
-        p1, p2, jac2, x0 + s3 - u_lo, jac3, p4 - v_lo, jac4, np.diff(breaks), x1 - x0
-    )
+    jacobian = float(np.mean(jacobian1)) * float(np.mean(jacobian2))
+    correlation = float(noise_correlation) * jacobian / (weight2_1 * weight2_2)
     log.debug(
-        "resampled %s: box y %d:%d x %d:%d, %d column blocks, pixel factor %.3f",
+        "resampled onto %s: box y %d:%d x %d:%d, noise correlation %.3f",
         tile.name,
         y0,
         y1,
         x0,
         x1,
-        mids.size,
-        pixel_factor,
+        correlation,
     )
-    return ResampledImage(
-        out,
-        vout,
-        mout,
-        y0,
-        x0,
-        pixel_factor,
-        float(noise_correlation) * jacobian / plane,
-    )
+    return ResampledImage(out, vout, mout, y0, x0, 1.0, correlation)
