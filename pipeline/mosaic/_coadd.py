@@ -285,6 +285,46 @@ def _background_variance(variance: np.ndarray) -> np.ndarray:
     return spline(rows, cols)
 
 
+#: Up to this many nights the weighted median sorts with a compare-exchange network.
+_NETWORK_NIGHTS = 8
+#: Rows of a tile whose weighted median is computed at once.
+_MEDIAN_ROWS = 16
+#: Every this many rows and columns feed the reference of the level matching.
+_LEVEL_STEP = 4
+
+
+def _sorted_pairs(values: np.ndarray, weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``values`` sorted along axis 0 and ``weights`` carried with them."""
+    n = values.shape[0]
+    if n > _NETWORK_NIGHTS:
+        order = np.argsort(values, axis=0)
+        return np.take_along_axis(values, order, 0), np.take_along_axis(weights, order, 0)
+    # odd-even transposition sort (Knuth, TAOCP vol. 3, 5.3.4): n rounds of
+    # compare-exchanges, each a few whole-array operations
+    v, w = [values[i] for i in range(n)], [weights[i] for i in range(n)]
+    for round_ in range(n):
+        for i in range(round_ % 2, n - 1, 2):
+            swap = v[i] > v[i + 1]
+            v[i], v[i + 1] = np.minimum(v[i], v[i + 1]), np.maximum(v[i], v[i + 1])
+            w[i], w[i + 1] = np.where(swap, w[i + 1], w[i]), np.where(swap, w[i], w[i + 1])
+    return np.stack(v), np.stack(w)
+
+
+def _weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    values = np.where(weights > 0, values, np.inf)
+    ordered, carried = _sorted_pairs(values, np.where(weights > 0, weights, 0))
+    half = 0.5 * carried.sum(axis=0)
+    cumulative = np.zeros_like(half)
+    median = np.full(half.shape, np.nan, dtype=np.result_type(values, np.float32))
+    found = half <= 0
+    for value, weight in zip(ordered, carried, strict=True):
+        cumulative += weight
+        take = (cumulative >= half) & ~found
+        median = np.where(take, value, median)
+        found |= take
+    return median
+
+
 def weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
     """Weighted median along axis 0 (weight 0 marks a missing value).
 
@@ -298,14 +338,15 @@ def weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
         The lowest value at which the cumulative weight reaches half the
         total; NaN where every weight is 0.
     """
-    keyed = np.where(weights > 0, values, np.inf)
-    order = np.argsort(keyed, axis=0)
-    sorted_values = np.take_along_axis(keyed, order, axis=0)
-    cumulative = np.cumsum(np.take_along_axis(weights, order, axis=0), axis=0)
-    total = cumulative[-1]
-    index = np.argmax(cumulative >= 0.5 * total, axis=0)
-    median = np.take_along_axis(sorted_values, index[None], axis=0)[0]
-    return np.where(total > 0, median, np.nan)
+    values, weights = np.asarray(values), np.asarray(weights)
+    if values.ndim < 3:
+        return _weighted_median(values, weights)
+    # in bands of rows, so that the sort's working set stays in the processor cache
+    out = np.empty(values.shape[1:], np.result_type(values, np.float32))
+    for r0 in range(0, values.shape[1], _MEDIAN_ROWS):
+        band = slice(r0, r0 + _MEDIAN_ROWS)
+        out[band] = _weighted_median(values[:, band], weights[:, band])
+    return out
 
 
 def coadd(
@@ -341,8 +382,8 @@ def coadd(
     -------
     CoaddedPlanes
     """
-    images = np.asarray(images, dtype=float)
-    variances = np.asarray(variances, dtype=float)
+    images = np.asarray(images, dtype=np.float32)
+    variances = np.asarray(variances, dtype=np.float32)
     flags = np.asarray(flags)
     if images.ndim != 3 or variances.shape != images.shape or flags.shape != images.shape:
         raise ValueError(
@@ -356,20 +397,24 @@ def coadd(
     background = np.stack(
         [_background_variance(np.where(valid[i], variances[i], np.nan)) for i in range(n_nights)]
     )
-    weights = np.where(valid, scale[:, None, None] / np.where(valid, background, 1.0), 0.0)
-    images = np.where(valid, images, 0.0)
+    scale = scale.astype(np.float32)[:, None, None]
+    weights = np.where(valid, scale / np.where(valid, background, 1.0), 0.0).astype(np.float32)
+    images = np.where(valid, images, np.float32(0))
 
     offsets = np.zeros(n_nights)
     if match_levels and n_nights > 1:
-        reference = weighted_median(images, weights)
+        step = np.s_[:, ::_LEVEL_STEP, ::_LEVEL_STEP]
+        sample, sample_valid = images[step], valid[step]
+        reference = weighted_median(sample, weights[step])
         for i in range(n_nights):
-            both = valid[i] & np.isfinite(reference)
+            both = sample_valid[i] & np.isfinite(reference)
             if both.any():
-                offsets[i] = np.median(images[i][both] - reference[both])
+                offsets[i] = np.median(sample[i][both] - reference[both])
         totals = weights.sum(axis=(1, 2))
         if totals.sum() > 0:
             offsets -= np.sum(offsets * totals) / totals.sum()
-        images = np.where(valid, images - offsets[:, None, None], 0.0)
+        shift = offsets.astype(np.float32)[:, None, None]
+        images = np.where(valid, images - shift, np.float32(0))
 
     count = valid.sum(axis=0)
     rejected = np.zeros(images.shape, bool)
