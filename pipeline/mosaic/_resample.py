@@ -122,55 +122,60 @@ def _extrapolated(x: np.ndarray, xp: np.ndarray, fp: np.ndarray) -> np.ndarray:
     return out
 
 
+def _input_pixels(tile: Tile, wcs: WCS, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Input pixel ``(x, y)`` (stacked on axis 0) of tile pixels ``(x, y)``."""
+    world = tile.wcs.pixel_to_world_values(x, y)
+    out = np.array([np.asarray(a, float) for a in wcs.world_to_pixel_values(*world)])
+    if not np.isfinite(out).all():
+        raise ValueError(
+            "the input's WCS cannot map every point near the tile; the input lies too far "
+            "from the tile (more than 90 deg) for this resampler."
+        )
+    return out
+
+
 @dataclass(frozen=True)
 class _Mapping:
-    """Tile pixel -> input pixel, as bicubic splines over exact nodes (axes flipped as needed)."""
+    """Tile pixel -> input pixel, as bicubic splines over exact nodes (axes flipped as needed).
+
+    ``shear`` is the largest ``|dy/dX / dy/dY|`` or ``|dx/dY / dx/dX|`` over
+    the tile: how far a tile row or column strays across the input's.
+    """
 
     x: RectBivariateSpline
     y: RectBivariateSpline
     flip_x: bool
     flip_y: bool
+    shear: float
 
     @classmethod
     def build(cls, tile: Tile, wcs: WCS, input_shape: tuple[int, int]) -> _Mapping:
         n_y, n_x = tile.shape
-        pad = int(_MAX_SHEAR * max(n_y, n_x)) + 4 * _NODE_STEP
-        xn = np.arange(-pad, n_x + pad + _NODE_STEP, _NODE_STEP, dtype=float)
-        yn = np.arange(-pad, n_y + pad + _NODE_STEP, _NODE_STEP, dtype=float)
-        grid_x, grid_y = np.meshgrid(xn, yn)
-        world = tile.wcs.pixel_to_world_values(grid_x, grid_y)
-        x, y = (np.asarray(a, float) for a in wcs.world_to_pixel_values(*world))
-        if not (np.isfinite(x).all() and np.isfinite(y).all()):
+        # Local derivatives on a coarse 9 x 9 grid (the turn changes across a tile).
+        gx, gy = np.meshgrid(np.linspace(0, n_x - 1, 9), np.linspace(0, n_y - 1, 9))
+        h = 0.5 * _NODE_STEP
+        dx = (_input_pixels(tile, wcs, gx + h, gy) - _input_pixels(tile, wcs, gx - h, gy)) / (2 * h)
+        dy = (_input_pixels(tile, wcs, gx, gy + h) - _input_pixels(tile, wcs, gx, gy - h)) / (2 * h)
+        shear = float(max(np.max(np.abs(dx[1] / dy[1])), np.max(np.abs(dy[0] / dx[0]))))
+        if shear > _MAX_SHEAR or np.ptp(np.sign(dx[0])) or np.ptp(np.sign(dy[1])):
+            angle = np.degrees(np.arctan(shear))
             raise ValueError(
-                "the input's WCS cannot map every point near the tile; the input lies too far "
-                "from the tile (more than 90 deg) for this resampler."
+                f"the input's pixel axes are turned by up to ~{angle:.1f} deg from the tile's; "
+                f"the separable resampler handles up to {np.degrees(np.arctan(_MAX_SHEAR)):.0f} "
+                "deg (a rectified night and a north-up tile differ by about a degree at most)."
             )
-        c = (yn.size // 2, xn.size // 2)
-        dx_dx = (x[c[0], c[1] + 1] - x[c[0], c[1] - 1]) / (2 * _NODE_STEP)
-        dx_dy = (x[c[0] + 1, c[1]] - x[c[0] - 1, c[1]]) / (2 * _NODE_STEP)
-        dy_dx = (y[c[0], c[1] + 1] - y[c[0], c[1] - 1]) / (2 * _NODE_STEP)
-        dy_dy = (y[c[0] + 1, c[1]] - y[c[0] - 1, c[1]]) / (2 * _NODE_STEP)
-        if abs(dx_dy) > _MAX_SHEAR * abs(dx_dx) or abs(dy_dx) > _MAX_SHEAR * abs(dy_dy):
-            angle = np.degrees(np.arctan2(abs(dx_dy), abs(dx_dx)))
-            raise ValueError(
-                f"the input's pixel axes are turned by ~{angle:.1f} deg from the tile's; the "
-                f"separable resampler handles up to {np.degrees(np.arctan(_MAX_SHEAR)):.1f} deg "
-                "(a rectified night and a north-up tile differ by well under a degree)."
-            )
-        flip_x, flip_y = bool(dx_dx < 0), bool(dy_dy < 0)
+        flip_x, flip_y = bool(dx[0].flat[0] < 0), bool(dy[1].flat[0] < 0)
+        pad_x = int(2 * shear * n_y) + 4 * _NODE_STEP
+        pad_y = int(2 * shear * n_x) + 4 * _NODE_STEP
+        xn = np.arange(-pad_x, n_x + pad_x + _NODE_STEP, _NODE_STEP, dtype=float)
+        yn = np.arange(-pad_y, n_y + pad_y + _NODE_STEP, _NODE_STEP, dtype=float)
+        x, y = _input_pixels(tile, wcs, *np.meshgrid(xn, yn))
         if flip_x:
             x = input_shape[1] - 1 - x
         if flip_y:
             y = input_shape[0] - 1 - y
-        return cls(RectBivariateSpline(yn, xn, x), RectBivariateSpline(yn, xn, y), flip_x, flip_y)
-
-    def row(self, y: float, xs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Input ``(x, y)`` along tile row ``y`` at tile columns ``xs``."""
-        return self.x(y, xs)[0], self.y(y, xs)[0]
-
-    def column(self, x: float, ys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Input ``(x, y)`` along tile column ``x`` at tile rows ``ys``."""
-        return self.x(ys, x)[:, 0], self.y(ys, x)[:, 0]
+        splines = RectBivariateSpline(yn, xn, x), RectBivariateSpline(yn, xn, y)
+        return cls(*splines, flip_x, flip_y, shear)
 
 
 def _covered_box(mapping: _Mapping, tile: Tile, input_shape) -> tuple[int, int, int, int] | None:
@@ -347,7 +352,7 @@ def resample_to_tile(
     if t_hi <= t_lo:
         return None
     # Pass 1's positions: where each tile column crosses each input row.
-    pad = _MAX_SHEAR * (x1 - x0) + 2 * _NODE_STEP
+    pad = 1.5 * mapping.shear * (x1 - x0) + 2 * _NODE_STEP
     crossing = _crossing_columns(mapping, np.arange(t_lo, t_hi), xs, (y0 - pad, y1 + pad))
     jacobian1 = np.abs(np.gradient(crossing, axis=1)) if xs.size > 1 else np.ones_like(crossing)
     x_lo = max(int(np.floor(crossing.min())) - _REACH, 0)
