@@ -496,23 +496,24 @@ class MosaicTile:
 
 def _night_planes(
     products: Sequence[NightImage], tile: Tile, zero_point: float
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float]:
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float] | None:
     """One night's products resampled onto the tile and merged (inverse-variance where they meet).
 
-    Returns image, predicted pixel variance, flags, and the night's pixel and
-    large-aperture noise factors (means over its products, weighted by area).
+    Returns image, predicted pixel variance, flags (float32, float32, uint16),
+    and the night's pixel and large-aperture noise factors (means over its
+    products, weighted by area); None if no product reaches the tile.
     """
-    shape = tile.shape
-    total_w = np.zeros(shape)
-    total_wx = np.zeros(shape)
-    flags = np.zeros(shape, MASK_DTYPE)
-    touched = np.zeros(shape, bool)
+    image = np.full(tile.shape, np.nan, np.float32)
+    variance = np.full(tile.shape, np.nan, np.float32)
+    flags = np.full(tile.shape, MaskBit.OUTSIDE, MASK_DTYPE)
     factors, areas = [], []
     for product in products:
-        gain = 10.0 ** (0.4 * (zero_point - product.zero_point))
+        gain = np.float32(10.0 ** (0.4 * (zero_point - product.zero_point)))
+        planes = np.asarray(product.image, np.float32), np.asarray(product.variance, np.float32)
+        if gain != 1:
+            planes = planes[0] * gain, planes[1] * gain**2
         result = resample_to_tile(
-            np.asarray(product.image, np.float32) * np.float32(gain),
-            np.asarray(product.variance, np.float32) * np.float32(gain**2),
+            *planes,
             product.flags,
             product.wcs,
             tile,
@@ -521,21 +522,29 @@ def _night_planes(
         if result is None:
             continue
         region = result.slices
-        variance = result.variance * result.pixel_factor
-        good = np.isfinite(result.image) & np.isfinite(variance) & (variance > 0)
-        w = np.where(good, 1.0 / np.where(good, variance, 1.0), 0.0)
-        total_w[region] += w
-        total_wx[region] += w * np.where(good, result.image, 0.0)
-        flags[region] |= result.flags
-        touched[region] = True
+        new_variance = result.variance * np.float32(result.pixel_factor)
+        new = np.isfinite(result.image) & np.isfinite(new_variance) & (new_variance > 0)
+        old = np.isfinite(image[region])
+        both = new & old
+        if both.any():  # stretches of one night that meet: inverse-variance mean
+            w_old = 1.0 / variance[region][both]
+            w_new = 1.0 / new_variance[both]
+            merged = (w_old * image[region][both] + w_new * result.image[both]) / (w_old + w_new)
+            result.image[both] = merged
+            new_variance[both] = 1.0 / (w_old + w_new)
+        take = new | ~old
+        image[region] = np.where(take, result.image, image[region])
+        variance[region] = np.where(take, new_variance, variance[region])
+        # flags of the products with data at a pixel; of every product where none has
+        flags[region] = np.where(
+            old | new,
+            np.where(old, flags[region], 0) | np.where(new, result.flags, 0),
+            flags[region] | result.flags,
+        )
         factors.append((result.pixel_factor, result.noise_correlation / result.pixel_factor))
-        areas.append(good.sum())
+        areas.append(new.sum())
     if not factors:
         return None
-    has = total_w > 0
-    image = np.where(has, total_wx / np.where(has, total_w, 1.0), np.nan)
-    variance = np.where(has, 1.0 / np.where(has, total_w, 1.0), np.nan)
-    flags[~touched] |= MASK_DTYPE.type(int(MaskBit.OUTSIDE))
     pixel, aperture = np.average(np.array(factors), axis=0, weights=np.maximum(areas, 1))
     return image, variance, flags, float(pixel), float(aperture)
 
