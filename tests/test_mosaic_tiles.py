@@ -13,6 +13,7 @@ from pipeline.mosaic import (
     explicit_tiles,
     footprint_of,
     strip_tiles,
+    tiles_from_options,
     touches,
 )
 from tests._mosaic_scene import night_wcs
@@ -153,3 +154,23 @@ def test_coadd_options_know_the_flag_names():
         CoaddOptions(ignore_flags=["SATURATED", "PURPLE"])
     with pytest.raises(ValidationError, match="Extra inputs"):
         CoaddOptions(sigma=3.0)
+
+
+def test_tiles_from_a_tiling_section(footprints):
+    tangent = TilingOptions(pixel_scale=1.0, tile_width=800, tile_height=500, overlap=96)
+    tiles = tiles_from_options(tangent, footprints)
+    assert tiles[0].shape == (500, 800) and tiles[0].wcs.wcs.ctype[0] == "RA---TAN"
+    strip = TilingOptions(layout="cylindrical_strip", pixel_scale=2.0, tile_height=300)
+    (car,) = tiles_from_options(strip, footprints)
+    assert car.shape[0] == 300 and car.wcs.wcs.ctype[0] == "RA---CAR"
+    explicit = TilingOptions(
+        layout="explicit",
+        pixel_scale=0.5,
+        tile_width=64,
+        tile_height=48,
+        overlap=0,
+        tiles=[{"ra": 10.0, "dec": 20.0}, {"ra": 11.0, "dec": 20.0, "width": 32}],
+    )
+    tiles = tiles_from_options(explicit, [])
+    assert [t.shape for t in tiles] == [(48, 64), (48, 32)]
+    assert tiles[1].wcs.wcs.crval[0] == pytest.approx(11.0)

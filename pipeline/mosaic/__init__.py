@@ -30,6 +30,7 @@ from pipeline.mosaic._tiles import (
     explicit_tiles,
     footprint_of,
     strip_tiles,
+    tiles_from_options,
     touches,
 )
 
@@ -54,6 +55,7 @@ __all__ = [
     "resample_to_tile",
     "select_products",
     "strip_tiles",
+    "tiles_from_options",
     "touches",
     "weighted_median",
 ]

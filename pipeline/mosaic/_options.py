@@ -29,8 +29,8 @@ class TileCentre(BaseModel):
 class TilingOptions(BaseModel):
     """The ``tiling`` section of a mosaic config.
 
-    Field names mirror the keyword arguments of :func:`pipeline.mosaic.strip_tiles`
-    and :func:`pipeline.mosaic.explicit_tiles`.
+    :func:`pipeline.mosaic.tiles_from_options` turns it into tiles (through
+    :func:`~pipeline.mosaic.strip_tiles` or :func:`~pipeline.mosaic.explicit_tiles`).
     """
 
     model_config = ConfigDict(extra="forbid", frozen=True)

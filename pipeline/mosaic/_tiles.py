@@ -28,7 +28,15 @@ from dataclasses import dataclass
 import numpy as np
 from astropy.wcs import WCS
 
-__all__ = ["Footprint", "Tile", "explicit_tiles", "footprint_of", "strip_tiles", "touches"]
+__all__ = [
+    "Footprint",
+    "Tile",
+    "explicit_tiles",
+    "footprint_of",
+    "strip_tiles",
+    "tiles_from_options",
+    "touches",
+]
 
 log = logging.getLogger(__name__)
 
@@ -254,6 +262,37 @@ def explicit_tiles(
         Tile(i, _tile_wcs("TAN", ra, dec, tuple(shape), pixel_scale / 3600.0), tuple(shape))
         for i, ((ra, dec), shape) in enumerate(zip(centres, shapes, strict=True))
     ]
+
+
+def tiles_from_options(options, footprints: Sequence[Footprint]) -> list[Tile]:
+    """The tiles a mosaic config's ``tiling`` section asks for.
+
+    Parameters
+    ----------
+    options : pipeline.mosaic.TilingOptions
+    footprints : sequence of Footprint
+        Outlines of the products (unused for layout ``'explicit'``).
+
+    Returns
+    -------
+    list of Tile
+    """
+    if options.layout == "explicit":
+        return explicit_tiles(
+            [(t.ra, t.dec) for t in options.tiles],
+            pixel_scale=options.pixel_scale,
+            shapes=[
+                (t.height or options.tile_height, t.width or options.tile_width)
+                for t in options.tiles
+            ],
+        )
+    return strip_tiles(
+        footprints,
+        pixel_scale=options.pixel_scale,
+        shape=(options.tile_height, options.tile_width),
+        projection="TAN" if options.layout == "tangent_tiles" else "CAR",
+        overlap=options.overlap if options.layout == "tangent_tiles" else 0,
+    )
 
 
 def touches(tile: Tile, footprint: Footprint, margin: float = 4.0) -> bool:
