@@ -99,7 +99,10 @@ class NightImage:
     night : str
         The night it belongs to (products of one night count as one in ``coverage``).
     night_zero_point : float or None
-        Zero point the night measured (transparency); None: ``zero_point``.
+        Zero point the night measured where the product was recorded
+        (transparency), e.g. the median of
+        :func:`pipeline.stages.zeropoint.fit_zero_point`'s ``Z(t)`` over it;
+        only differences between products matter.  None: ``zero_point``.
     seeing : float or None
         Seeing FWHM, arcsec; None: unknown (never excluded by seeing).
     noise_correlation : float
