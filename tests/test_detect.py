@@ -310,7 +310,7 @@ def _twilight_ramp(shape=(256, 512), seed=3):
 
 def test_background_follows_a_sky_ramp_to_the_stretch_edges():
     image, sky, mask = _twilight_ramp()
-    background, _ = estimate_background(image, mask.astype(bool), 64)
+    background = estimate_background(image, mask.astype(bool), 64)
     error = np.mean(background - sky, axis=0)  # per column, e-
     # 0.1 sigma per pixel (24 e-): the mean over 256 rows of a smooth estimate has
     # a noise of ~245 / sqrt(256 * 64) ~ 2 e-; a mesh background left flat over

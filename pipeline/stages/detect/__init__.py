@@ -48,7 +48,12 @@ from pipeline.exceptions import DetectWarning
 from pipeline.masks import MaskBit, has_bits
 from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSION
 from pipeline.stages.base import PROBLEMS, Stage
-from pipeline.stages.detect._find import estimate_background, find_sources, significance_map
+from pipeline.stages.detect._find import (
+    estimate_background,
+    filter_denominator,
+    find_sources,
+    significance_map,
+)
 from pipeline.stages.detect._measure import (
     SourceFlag,
     aperture_fluxes,
@@ -305,21 +310,29 @@ def detect(
             [f"no usable pixel in the {image.shape[0]} x {image.shape[1]} stretch (all flagged)"],
         )
 
-    background, _ = estimate_background(image, no_data, background_box)
+    background = estimate_background(image, no_data, background_box)
     residual = np.where(no_data, np.nan, image - background)
     var = np.where(no_data, np.nan, variance)
     grid = KernelGrid(smear_kernels)
     x_centre = x_start + 0.5 * (image.shape[1] - 1)
 
+    lookup = _PointGrid() if deconvolved else grid
+    denominators: dict = {}  # the filter's sum(k^2 / V) per profile: one per profile
+
     def segment(prof, data=None):
+        if prof not in denominators:
+            denominators[prof] = filter_denominator(
+                var, lookup, prof, x_centre=x_centre, band=filter_band
+            )
         snr = significance_map(
             residual if data is None else data,
             var,
-            _PointGrid() if deconvolved else grid,
+            lookup,
             prof,
             x_centre=x_centre,
             band=filter_band,
             noise_correlation=noise_correlation,
+            denominator=denominators[prof],
         )
         return snr, *find_sources(
             snr,
