@@ -415,6 +415,8 @@ def detect(
         np.asarray(q.value, dtype=float) for q in (cat.fwhm, cat.ellipticity, cat.orientation)
     ]
 
+    fitted: dict = {}  # groups already fitted, for the later passes
+
     def fit_all(px, py, split):
         members = _groups(px, py, grid, x_start, profile.fwhm, point)
         result = measure_groups(
@@ -429,6 +431,7 @@ def detect(
             noise_correlation=noise_correlation,
             own_columns=own_columns,
             blended=[[split[i] for i in g] for g in members],
+            memo=fitted,
         )
         return members, result
 
@@ -472,6 +475,7 @@ def detect(
                 with np.errstate(invalid="ignore", divide="ignore"):
                     weak = ~(fits_["flux"] / fits_["flux_err"] >= threshold_sigma)
                 drop = order[(order >= n_first) & weak]
+                log.debug("%d of them dropped after the joint refit", drop.size)
                 if drop.size:
                     kept = np.setdiff1d(np.arange(len(cx)), drop)
                     cx, cy, blended = cx[kept], cy[kept], blended[kept]
@@ -486,6 +490,7 @@ def detect(
                 with np.errstate(invalid="ignore", divide="ignore"):
                     bright[order] = np.nan_to_num(fits_["flux"] / fits_["flux_err"])
                 again, rows = fit_seeing(px, py, bright, blended, profile)
+                log.debug("seeing FWHM refitted: %s px", again)
                 if again is not None:
                     seeing_rows = rows
                     if abs(again - profile.fwhm) > 0.003 * profile.fwhm:

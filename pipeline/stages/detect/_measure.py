@@ -215,6 +215,7 @@ def measure_groups(
     own_columns: tuple[int, int] | None = None,
     blended: list[list[bool]] | None = None,
     max_joint: int = 6,
+    memo: dict | None = None,
 ) -> dict[str, np.ndarray]:
     """Fit each group of sources with the smear-aware model.
 
@@ -235,6 +236,11 @@ def measure_groups(
     max_joint : int
         Largest group fitted jointly; larger groups are fitted star by star
         with the others' models subtracted (two sweeps).
+    memo : dict or None
+        Results of earlier calls on the same images, keyed by profile, member
+        positions and blend flags; a group started where an earlier fit of it
+        started or ended is taken from there (a refit would land on the same
+        optimum).  Updated in place.  None: fit every group.
 
     Returns
     -------
@@ -243,59 +249,96 @@ def measure_groups(
         ``flux_err``, ``background`` (fitted offset), ``chi2``, ``flags``,
         ``group``, and ``kernel`` (list of the reduced kernels used).
     """
-    out = {
-        k: []
-        for k in (
-            "x",
-            "y",
-            "x_err",
-            "y_err",
-            "flux",
-            "flux_err",
-            "background",
-            "chi2",
-            "flags",
-            "group",
-            "kernel",
-        )
-    }
+    names = ("x", "y", "x_err", "y_err", "flux", "flux_err", "background", "chi2", "flags")
+    out: dict[str, list] = {k: [] for k in (*names, "group", "kernel")}
     spacing = profile.fwhm / 8.0  # sample spacing well below the seeing sigma (fwhm / 2.35)
     for index, members in enumerate(groups):
-        xs = np.array([m[0] for m in members], dtype=float)
-        ys = np.array([m[1] for m in members], dtype=float)
-        kern = _kernels_at(grid, x_start, xs, ys, spacing, point_kernel)
-        if xs.size <= max_joint:
-            box = _stamp(residual.shape, xs, ys, kern, profile.fwhm)
-            fit = _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation)
-            per_star = [(fit, i, box) for i in range(xs.size)]
-        else:
-            per_star = _fit_in_turn(residual, variance, xs, ys, kern, profile, noise_correlation)
-        for i, (fit, j, box) in enumerate(per_star):
-            y0, y1, x0, x1, clipped = box
-            overlap = own_columns is not None and (x0 < own_columns[0] or x1 > own_columns[1])
-            moved = np.hypot(fit.x[j] - xs[i], fit.y[j] - ys[i]) > profile.fwhm
-            failed = moved or not (fit.flux[j] > 0) or not fit.success
-            unit = fit.units[j]
-            core = unit > 0.05 * unit.max()
-            split = bool(blended[index][i]) if blended is not None else False
-            flags = _flags_for(mask, core, (y0, y1, x0, x1), clipped, split, overlap)
-            if failed:
-                flags |= SourceFlag.FIT_FAILED
-            out["x"].append(xs[i] if failed else fit.x[j])
-            out["y"].append(ys[i] if failed else fit.y[j])
-            out["x_err"].append(np.nan if failed else fit.x_err[j])
-            out["y_err"].append(np.nan if failed else fit.y_err[j])
-            out["flux"].append(np.nan if failed else fit.flux[j])
-            out["flux_err"].append(np.nan if failed else fit.flux_err[j])
-            out["background"].append(fit.background)
-            out["chi2"].append(fit.chi2)
-            out["flags"].append(flags)
+        split = list(blended[index]) if blended is not None else [False] * len(members)
+        key = (profile, tuple((float(m[0]), float(m[1])) for m in members), tuple(split))
+        if memo is None or key not in memo:
+            rows = _measure_group(
+                residual,
+                variance,
+                mask,
+                members,
+                split,
+                grid,
+                profile,
+                spacing,
+                x_start=x_start,
+                point_kernel=point_kernel,
+                noise_correlation=noise_correlation,
+                own_columns=own_columns,
+                max_joint=max_joint,
+            )
+            if memo is not None:
+                # A refit that starts where this fit ended (or where it started)
+                # ends here again: later passes look the group up instead.
+                memo[key] = rows
+                fitted = tuple((float(r["x"]), float(r["y"])) for r in rows)
+                memo[(profile, fitted, tuple(split))] = rows
+        for row in memo[key] if memo is not None else rows:
+            for name in (*names, "kernel"):
+                out[name].append(row[name])
             out["group"].append(index)
-            out["kernel"].append(kern[i])
     kernels = out.pop("kernel")
     result = {k: np.asarray(v) for k, v in out.items()}
     result["kernel"] = kernels
     return result
+
+
+def _measure_group(
+    residual,
+    variance,
+    mask,
+    members,
+    split,
+    grid,
+    profile,
+    spacing,
+    *,
+    x_start,
+    point_kernel,
+    noise_correlation,
+    own_columns,
+    max_joint,
+) -> list[dict]:
+    """Fit one group of sources; one row (dict) per member."""
+    xs = np.array([m[0] for m in members], dtype=float)
+    ys = np.array([m[1] for m in members], dtype=float)
+    kern = _kernels_at(grid, x_start, xs, ys, spacing, point_kernel)
+    if xs.size <= max_joint:
+        box = _stamp(residual.shape, xs, ys, kern, profile.fwhm)
+        fit = _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation)
+        per_star = [(fit, i, box) for i in range(xs.size)]
+    else:
+        per_star = _fit_in_turn(residual, variance, xs, ys, kern, profile, noise_correlation)
+    rows = []
+    for i, (fit, j, box) in enumerate(per_star):
+        y0, y1, x0, x1, clipped = box
+        overlap = own_columns is not None and (x0 < own_columns[0] or x1 > own_columns[1])
+        moved = np.hypot(fit.x[j] - xs[i], fit.y[j] - ys[i]) > profile.fwhm
+        failed = moved or not (fit.flux[j] > 0) or not fit.success
+        unit = fit.units[j]
+        core = unit > 0.05 * unit.max()
+        flags = _flags_for(mask, core, (y0, y1, x0, x1), clipped, bool(split[i]), overlap)
+        if failed:
+            flags |= SourceFlag.FIT_FAILED
+        rows.append(
+            {
+                "x": xs[i] if failed else fit.x[j],
+                "y": ys[i] if failed else fit.y[j],
+                "x_err": np.nan if failed else fit.x_err[j],
+                "y_err": np.nan if failed else fit.y_err[j],
+                "flux": np.nan if failed else fit.flux[j],
+                "flux_err": np.nan if failed else fit.flux_err[j],
+                "background": fit.background,
+                "chi2": fit.chi2,
+                "flags": flags,
+                "kernel": kern[i],
+            }
+        )
+    return rows
 
 
 def _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, others=None):

@@ -18,8 +18,9 @@ lies.
 
 Each Gaussian is separable, so a model is a matrix product of per-sample
 1-D profiles (``(J K, ny)`` by ``(J K, nx)``), with analytic derivatives in
-``x0`` and ``y0``; scipy's Levenberg-Marquardt (:func:`scipy.optimize.least_squares`)
-fits flux, position and background of one or several stars on a stamp.
+``x0`` and ``y0``; damped Gauss-Newton steps (Levenberg-Marquardt, with
+the unit models of each evaluation reused for the linear start and the
+result) fit flux, position and background of one or several stars on a stamp.
 """
 
 from __future__ import annotations
@@ -29,7 +30,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from astropy.table import Table
-from scipy.optimize import least_squares
 from scipy.special import erf
 
 from pipeline.simulate._render import GaussianMixturePSF
@@ -303,58 +303,46 @@ def fit_stars(
     xs = np.arange(nx, dtype=float) + origin[1]
     ys = np.arange(ny, dtype=float) + origin[0]
     good = np.isfinite(data) & np.isfinite(variance) & (variance > 0)
-    weight = np.where(good, 1.0 / np.where(good, variance, 1.0), 0.0)
-    sw = np.sqrt(weight).ravel()
-    d = np.where(good, data, 0.0).ravel()
+    sw = np.sqrt(np.where(good, 1.0 / np.where(good, variance, 1.0), 0.0)).ravel()
+    d = np.where(good, data, 0.0).ravel() * sw
     sigmas, weights = profile.mixture()
     nb = 1 if fit_background else 0
 
-    # Linear start: fluxes (and background) at the starting positions.
-    units = [_unit_model(xs, ys, x[i], y[i], *kernels[i], sigmas, weights) for i in range(n)]
-    design = np.column_stack(([np.ones(d.size)] if nb else []) + [u.ravel() for u in units])
-    coef = np.linalg.lstsq(design * sw[:, None], d * sw, rcond=None)[0]
-    p0 = np.empty(nb + 3 * n)
-    if nb:
-        p0[0] = coef[0]
-    p0[nb::3] = np.maximum(coef[nb:], 1e-3 * np.abs(coef[nb:]).max() + 1e-6)
-    p0[nb + 1 :: 3] = x
-    p0[nb + 2 :: 3] = y
-
-    cache: dict[bytes, tuple] = {}
-
     def evaluate(p):
-        key = p.tobytes()
-        if key not in cache:
-            cache.clear()
-            model = np.full((ny, nx), p[0] if nb else 0.0)
-            jac = np.empty((d.size, p.size))
-            if nb:
-                jac[:, 0] = 1.0
-            for i in range(n):
-                f, xi, yi = p[nb + 3 * i : nb + 3 * i + 3]
-                u, ux, uy = _unit_model(
-                    xs, ys, xi, yi, *kernels[i], sigmas, weights, derivatives=True
-                )
-                model += f * u
-                jac[:, nb + 3 * i] = u.ravel()
-                jac[:, nb + 3 * i + 1] = f * ux.ravel()
-                jac[:, nb + 3 * i + 2] = f * uy.ravel()
-            cache[key] = (model.ravel(), jac)
-        return cache[key]
+        """Weighted residual, weighted Jacobian and the unit models at ``p``."""
+        jac = np.empty((d.size, p.size))
+        if nb:
+            jac[:, 0] = sw
+        units = []
+        model = np.full(d.size, p[0] if nb else 0.0)
+        for i in range(n):
+            f, xi, yi = p[nb + 3 * i : nb + 3 * i + 3]
+            u, ux, uy = _unit_model(xs, ys, xi, yi, *kernels[i], sigmas, weights, derivatives=True)
+            units.append(u)
+            u = u.ravel()
+            model += f * u
+            jac[:, nb + 3 * i] = u * sw
+            jac[:, nb + 3 * i + 1] = f * ux.ravel() * sw
+            jac[:, nb + 3 * i + 2] = f * uy.ravel() * sw
+        return model * sw - d, jac, units
 
-    def residual(p):
-        return sw * (evaluate(p)[0] - d)
-
-    def jacobian(p):
-        return sw[:, None] * evaluate(p)[1]
-
-    result = least_squares(residual, p0, jac=jacobian, method="lm", xtol=1e-8, ftol=1e-8)
-    p = result.x
-    j = result.jac
+    # Linear start: fluxes (and background) at the starting positions, from
+    # the unit models the first evaluation computes anyway.
+    p = np.empty(nb + 3 * n)
+    p[nb + 1 :: 3], p[nb + 2 :: 3] = x, y
+    p[nb::3] = 1.0
+    if nb:
+        p[0] = 0.0
+    _, jac, units = evaluate(p)
+    linear = [0] * nb + list(range(nb, p.size, 3))
+    coef = np.linalg.lstsq(jac[:, linear], d, rcond=None)[0]
+    if nb:
+        p[0] = coef[0]
+    p[nb::3] = np.maximum(coef[nb:], 1e-3 * np.abs(coef[nb:]).max() + 1e-6)
+    p, jac, units, chi2_sum, success = _levenberg_marquardt(evaluate, p, nb, n)
     dof = max(int(good.sum()) - p.size, 1)
-    chi2 = float(np.sum(result.fun**2) / dof)
     try:
-        cov = np.linalg.inv(j.T @ j) * noise_correlation
+        cov = np.linalg.inv(jac.T @ jac) * noise_correlation
         err = np.sqrt(np.clip(np.diag(cov), 0.0, None))
     except np.linalg.LinAlgError:
         err = np.full(p.size, np.nan)
@@ -366,10 +354,54 @@ def fit_stars(
         x_err=err[nb + 1 :: 3],
         y_err=err[nb + 2 :: 3],
         background=float(p[0]) if nb else 0.0,
-        chi2=chi2,
-        success=bool(result.success),
-        units=[
-            _unit_model(xs, ys, p[nb + 3 * i + 1], p[nb + 3 * i + 2], *kernels[i], sigmas, weights)
-            for i in range(n)
-        ],
+        chi2=chi2_sum / dof,
+        success=success,
+        units=units,
     )
+
+
+def _levenberg_marquardt(evaluate, p, nb, n):
+    """Damped Gauss-Newton steps from ``p`` until the step is statistically nothing.
+
+    ``evaluate(p)`` returns the weighted residual, the weighted Jacobian and
+    the unit models.  A step is accepted when it lowers the chi-square;
+    convergence is a step whose predicted chi-square change ``d^T H d`` is
+    below 1e-6 (a thousandth of a standard error in every parameter; the
+    error left after it is of the order of its square), or one that lowers
+    the chi-square by less than 1e-8 of it (MINPACK's ``ftol``: a degenerate
+    fit, e.g. two sources on one star, creeps along a valley).  Position steps are
+    capped at 1 px so a poor start cannot throw a star far away.  At most
+    ``100 (p.size)`` evaluations, MINPACK's default for an analytic Jacobian.
+
+    Returns
+    -------
+    p, jac, units, chi2, converged
+    """
+    r, jac, units = evaluate(p)
+    chi2 = float(r @ r)
+    lam = 1e-3
+    for _ in range(100 * p.size):
+        h = jac.T @ jac
+        g = jac.T @ r
+        try:
+            step = -np.linalg.solve(h + lam * np.diag(np.diag(h)), g)
+        except np.linalg.LinAlgError:
+            return p, jac, units, chi2, False
+        moves = np.abs(np.concatenate([step[nb + 1 :: 3], step[nb + 2 :: 3]]))
+        if moves.size and moves.max() > 1.0:
+            step *= 1.0 / moves.max()
+        trial = p + step
+        r_new, jac_new, units_new = evaluate(trial)
+        chi2_new = float(r_new @ r_new)
+        if np.isfinite(chi2_new) and chi2_new <= chi2:
+            predicted = float(step @ h @ step)
+            gain = chi2 - chi2_new
+            p, r, jac, units, chi2 = trial, r_new, jac_new, units_new, chi2_new
+            lam = max(lam * 0.1, 1e-9)
+            if predicted < 1e-6 or gain <= 1e-8 * chi2:
+                return p, jac, units, chi2, True
+        else:
+            lam *= 10.0
+            if lam > 1e8:  # no step downhill: p is the optimum to rounding
+                return p, jac, units, chi2, True
+    return p, jac, units, chi2, False
