@@ -343,7 +343,8 @@ def detect(
             deblend_contrast=deblend_contrast,
         )
 
-    snr, segm, parent = segment(profile)
+    filter_profile = profile  # the matched filter's profile (kept for the second search)
+    snr, segm, parent = segment(filter_profile)
     if segm is None:
         warnings.warn(
             f"no source above {threshold_sigma} sigma in the stretch at night columns "
@@ -398,7 +399,8 @@ def detect(
     if fwhm is not None:
         profile = profile.with_fwhm(fwhm)
         if abs(fwhm - fwhm_guess) > 0.25 * fwhm_guess:  # filter far off: detect again
-            snr, segm, parent = segment(profile)
+            filter_profile = profile
+            snr, segm, parent = segment(filter_profile)
             cat = SourceCatalog(data_for_cat, segm, mask=no_data)
             cx, cy = np.asarray(cat.x_centroid), np.asarray(cat.y_centroid)
             blended = np.asarray(_deblended(cat.labels, parent))
@@ -441,7 +443,9 @@ def detect(
         # Second pass: sources hidden by brighter neighbours show up in the image
         # minus the fitted models.
         cleaned = residual - _models(residual.shape, fits_, profile)
-        _snr2, segm2, _parent2 = segment(profile, cleaned)
+        # The first search's filter: its denominator is reused, and a filter
+        # a few per cent off the seeing loses a negligible (second-order) S/N.
+        _snr2, segm2, _parent2 = segment(filter_profile, cleaned)
         if segm2 is not None:
             cat2 = SourceCatalog(np.where(no_data, 0.0, cleaned), segm2, mask=no_data)
             nx2, ny2 = np.asarray(cat2.x_centroid), np.asarray(cat2.y_centroid)

@@ -193,8 +193,9 @@ def filter_denominator(
     search on the same stretch (the image minus the fitted models) reuses it.
     See :func:`significance_map` for the parameters.
     """
-    good = np.isfinite(variance) & (variance > 0)
-    inv = np.where(good, 1.0 / np.where(good, variance, 1.0), 0.0).astype(np.float32)
+    var32 = np.asarray(variance, dtype=np.float32)
+    inv = np.zeros(var32.shape, np.float32)
+    np.divide(1.0, var32, out=inv, where=var32 > 0)  # NaN > 0 is False: no data gives 0
     templates = _band_templates(kernels, profile, x_centre, variance.shape[0], band)
     return _filter_bands(inv, templates, square=True)
 
@@ -239,8 +240,10 @@ def significance_map(
         Signal-to-noise; 0 where no data contributes.  The filtering runs in
         single precision (relative rounding ~1e-6, far below the noise).
     """
-    good = np.isfinite(residual) & np.isfinite(variance) & (variance > 0)
-    weighted = np.where(good, residual / np.where(good, variance, 1.0), 0.0).astype(np.float32)
+    res32 = np.asarray(residual, dtype=np.float32)
+    var32 = np.asarray(variance, dtype=np.float32)
+    weighted = np.zeros(res32.shape, np.float32)
+    np.divide(res32, var32, out=weighted, where=np.isfinite(res32) & (var32 > 0))
     templates = _band_templates(kernels, profile, x_centre, residual.shape[0], band)
     num = _filter_bands(weighted, templates, square=False)
     if denominator is None:
