@@ -91,7 +91,9 @@ def _expand_mesh(mesh: np.ndarray, box_size: tuple[int, int], shape: tuple[int, 
     ``scipy.ndimage.zoom`` (order 3, mode 'reflect', grid mode) is linear and
     separable, so it is the matrix product ``Wy @ mesh @ Wx.T`` with each
     axis' matrix the zoom of the unit vectors; cropped to ``shape`` and
-    clipped to the mesh's range like photutils' interpolator.
+    clipped to the mesh's range like photutils' interpolator.  The zoom's
+    weights sum to one, so expanding the mesh minus its median and adding
+    the median back is the same.
     """
     if np.ptp(mesh) == 0:
         return np.full(shape, float(mesh.flat[0]))
@@ -99,9 +101,12 @@ def _expand_mesh(mesh: np.ndarray, box_size: tuple[int, int], shape: tuple[int, 
     def weights(n, factor, size):
         return zoom(np.eye(n), (factor, 1), order=3, mode="reflect", grid_mode=True)[:size]
 
-    wy = weights(mesh.shape[0], box_size[0], shape[0])
-    wx = weights(mesh.shape[1], box_size[1], shape[1])
-    return np.clip((wy @ mesh) @ wx.T, mesh.min(), mesh.max())
+    # Single precision: a 1e5 e- sky to 0.01 e-, the product twice as fast.
+    wy = weights(mesh.shape[0], box_size[0], shape[0]).astype(np.float32)
+    wx = weights(mesh.shape[1], box_size[1], shape[1]).astype(np.float32)
+    level = float(np.median(mesh))  # expand the deviations: no cancellation on a high sky
+    out = (wy @ (mesh - level).astype(np.float32)) @ wx.T
+    return np.clip(out.astype(float) + level, mesh.min(), mesh.max())
 
 
 def column_trend(image: np.ndarray, no_data: np.ndarray, box: int) -> np.ndarray:
