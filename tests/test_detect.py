@@ -21,12 +21,14 @@ from pipeline.stages.detect import (
     DetectOptions,
     SeeingProfile,
     SourceFlag,
+    _measure,
     detect,
     fit_stars,
     model_image,
     seam_margin,
 )
 from pipeline.stages.detect._find import _expand_mesh, estimate_background, find_sources
+from pipeline.stages.detect._measure import measure_groups
 from pipeline.stages.detect._model import KernelGrid, reduce_kernel
 from pipeline.stages.detect._night import Planes, padded_stretch
 from pipeline.stages.rectify import smear_kernel_at
@@ -197,6 +199,36 @@ def test_reduced_kernel_model_matches_the_full_kernel(row):
     # below 1e-4; 2e-4 keeps it a tenth of the 0.2 % flux trend the stage allows.
     assert abs(np.sum((reduced - full) * full) / np.sum(full * full)) < 2e-4
     assert reduced.sum() == pytest.approx(full.sum(), rel=1e-9)  # flux kept
+
+
+def test_later_passes_reuse_fits_of_unchanged_groups(monkeypatch):
+    # A refit that starts where a fit ended lands there again, so measure_groups
+    # takes such groups from its memo; a group with a new member is refitted.
+    scene = render_scene([100.0, 300.0, 306.0], [64.0, 64.0, 66.0], 5e4, shape=(128, 400), seed=5)
+    memo: dict = {}
+
+    def measure(groups):
+        return measure_groups(
+            scene.image - 200.0,
+            scene.variance,
+            scene.mask,
+            groups,
+            KernelGrid(scene.kernels),
+            SeeingProfile(3.2),
+            x_start=1000,
+            memo=memo,
+        )
+
+    first = measure([[(100.4, 64.3)], [(300.3, 63.8), (305.6, 66.2)]])
+    ended = list(zip(first["x"], first["y"], strict=True))
+    calls = []
+    real = _measure.fit_stars
+    monkeypatch.setattr(_measure, "fit_stars", lambda *a, **k: calls.append(1) or real(*a, **k))
+    again = measure([ended[:1], ended[1:]])
+    assert not calls
+    np.testing.assert_array_equal(again["flux"], first["flux"])
+    measure([[ended[0], (110.0, 64.0)]])
+    assert len(calls) == 1
 
 
 # A 512 x 1024 stretch with 12 px smear and a 2 px bow at the edges: 120 stars

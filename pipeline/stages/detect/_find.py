@@ -63,7 +63,8 @@ def estimate_background(image: np.ndarray, no_data: np.ndarray, box: int) -> np.
 
     Notes
     -----
-    The mesh statistics run in single precision (a sky of 1e5 e- is then
+    The mesh statistics use every other row of a tall image and run in
+    single precision (a sky of 1e5 e- is then
     resolved to 0.01 e-, far below its noise) and the mesh is expanded with
     the same cubic spline as photutils' default, applied as one matrix per
     axis (:func:`_expand_mesh`): 4 times faster on a 4096 x 4096 stretch
@@ -72,10 +73,14 @@ def estimate_background(image: np.ndarray, no_data: np.ndarray, box: int) -> np.
     ny, nx = image.shape
     trend = column_trend(image, no_data, box)
     box_size = (min(box, ny), min(box, nx))
+    # Every other row of a tall image: a box's median from 2048 instead of
+    # 4096 pixels has a noise of 2.8 % of a pixel's instead of 2 %, and the
+    # mesh costs half as much; the mesh (and its boxes) is the same.
+    stride = 2 if box_size[0] % 2 == 0 and ny >= 4 * box_size[0] else 1
     bkg = Background2D(
-        np.where(no_data, 0.0, image - trend).astype(np.float32),
-        box_size,
-        mask=no_data,
+        np.where(no_data[::stride], 0.0, image[::stride] - trend).astype(np.float32),
+        (box_size[0] // stride, box_size[1]),
+        mask=no_data[::stride],
         filter_size=(3, 3),
         sigma_clip=SigmaClip(sigma=3.0, maxiters=5),
         bkg_estimator=MedianBackground(),
