@@ -240,6 +240,7 @@ CameraSection = _section_for_dataclass(Camera)
 # (a missing module or attribute means "any mapping" until its owner adds it).
 _SECTIONS: dict[str, type[BaseModel] | str] = {
     "simulate": "pipeline.simulate:SimulateOptions",
+    "report": "pipeline.report:ReportOptions",
 }
 
 
