@@ -19,6 +19,7 @@ Examples
     zdrift run night.yaml --from calibrate --set stages.calibrate.cosmic_significance=5
     zdrift status night.yaml
     zdrift status night.yaml --verify            # also check every product's SHA-256
+    zdrift report night.yaml                     # the night's HTML report page
 """
 
 from __future__ import annotations
@@ -39,6 +40,9 @@ from pipeline.runner._logging import TextProgress, cli_logging
 __all__ = ["main"]
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_LOCKED, EXIT_CANNOT_START, EXIT_INCOMPLETE = range(6)
+
+#: File name of the night's report page in its output folder.
+REPORT_NAME = "report.html"
 
 #: The example of ``--set`` in the help; a key that exists (a test loads it).
 SET_EXAMPLE = "stages.calibrate.cosmic_significance=5"
@@ -142,6 +146,10 @@ def _parser() -> argparse.ArgumentParser:
         help="epoch for the exact model, ISO 8601 UTC (default: the simulate section's "
         "start if any, else 2026-01-01)",
     )
+    report = command("report", "write the night's HTML report from the products that exist")
+    report.add_argument(
+        "--output", metavar="FILE", help=f"page to write (default: <night folder>/{REPORT_NAME})"
+    )
     simulate = command("simulate", "write a synthetic night of raw blocks (section 'simulate')")
     simulate.add_argument("--output", help="folder to write to (default: night.raw_dir)")
     return parser
@@ -220,6 +228,22 @@ def _cmd_plan(args: argparse.Namespace, config: Config) -> int:
     return EXIT_OK
 
 
+def _cmd_report(args: argparse.Namespace, config: Config) -> int:
+    from pipeline.report import report_night
+
+    out = Path(args.output) if args.output else night_dir(config) / REPORT_NAME
+    with cli_logging(args.verbose):
+        page = report_night(config)
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        out.write_text(page, encoding="utf-8")
+    except OSError as exc:
+        print(f"zdrift report: cannot write {out}: {exc}", file=sys.stderr)
+        return EXIT_FAILED
+    print(f"report: {out}")
+    return EXIT_OK
+
+
 def _cmd_simulate(args: argparse.Namespace, config: Config) -> int:
     from pipeline.simulate import simulate_night, write_night
 
@@ -241,6 +265,7 @@ _COMMANDS: dict[str, Callable[[argparse.Namespace, Config], int]] = {
     "config": _cmd_config,
     "plan": _cmd_plan,
     "simulate": _cmd_simulate,
+    "report": _cmd_report,
 }
 
 

@@ -13,9 +13,10 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
+import matplotlib
 import numpy as np
 from astropy.table import Table
-from astropy.visualization import AsinhStretch, ImageNormalize, ZScaleInterval
+from astropy.visualization import AsinhStretch, AsymmetricPercentileInterval, ImageNormalize
 from matplotlib.figure import Figure
 
 from pipeline.report._clock import NightClock
@@ -37,8 +38,16 @@ __all__ = [
 _SIZE = (9.0, 3.4)
 
 
-def _time_label(clock: NightClock) -> str:
-    return f"UTC of mid-exposure (h since {clock.date} 0 h)"
+def _clock_text(hours: float, position: object = None) -> str:
+    """Hours since 0 h as ``HH:MM:SS`` (past 24 h on the next day)."""
+    seconds = round(hours * 3600.0)
+    return f"{seconds // 3600 % 24:02d}:{seconds // 60 % 60:02d}:{seconds % 60:02d}"
+
+
+def _time_axis(ax: Any, clock: NightClock) -> None:
+    """Label the x axis as UTC clock time of mid-exposure."""
+    ax.xaxis.set_major_formatter(_clock_text)
+    ax.set_xlabel(f"UTC of mid-exposure (h:m:s, night of {clock.date})")
 
 
 def _whole_stretch_rows(seeing: Table) -> np.ndarray:
@@ -73,7 +82,7 @@ def seeing_along_night_figure(
     fig = Figure(figsize=_SIZE, layout="constrained")
     ax = fig.add_subplot()
     ax.plot(clock.hours(x), np.asarray(whole["fwhm"], float), "o-", color="tab:blue")
-    ax.set_xlabel(_time_label(clock))
+    _time_axis(ax, clock)
     ax.set_ylabel("seeing FWHM (pix)")
     if pixel_scale:
         second = ax.secondary_yaxis(
@@ -129,7 +138,7 @@ def sky_along_night_figure(sky: Table, clock: NightClock, zero_point: float) -> 
     ax = fig.add_subplot()
     ax.plot(clock.hours(sky["x"]), mag, ".-", color="tab:purple")
     ax.invert_yaxis()  # brighter sky up
-    ax.set_xlabel(_time_label(clock))
+    _time_axis(ax, clock)
     ax.set_ylabel("sky (mag/arcsec$^2$)")
     ax.set_title(f"NOMINAL zero point {zero_point:.2f} mag (1 e$^-$/s), not solved", fontsize=9)
     ax.grid(alpha=0.3)
@@ -177,19 +186,28 @@ def sources_along_night_figure(catalog: Table, clock: NightClock, bin_minutes: f
     fig = Figure(figsize=(_SIZE[0], 1.6 * _SIZE[1]), layout="constrained")
     top, bottom = fig.subplots(2, 1, sharex=True)
     if hours.size:
-        width = bin_minutes / 60.0
-        edges = np.arange(hours.min(), hours.max() + width, width)
-        edges = edges if edges.size > 1 else np.array([hours.min(), hours.min() + width])
+        # Equal bins of about bin_minutes spanning the data exactly, so that
+        # no bin is only partly covered (a rate dip that is not real).
+        first, last = hours.min(), hours.max()
+        if (last - first) * 60.0 < bin_minutes:  # one bin of the nominal width
+            first, last = 0.5 * (first + last - bin_minutes / 60.0), first + bin_minutes / 60.0
+        n_bins = max(1, round((last - first) * 60.0 / bin_minutes))
+        edges = np.linspace(first, last + 1e-9, n_bins + 1)
         counts, _ = np.histogram(hours, edges)
+        minutes = np.diff(edges) * 60.0
         which = np.clip(np.digitize(hours, edges) - 1, 0, counts.size - 1)
-        medians = [np.median(snr[which == i]) if n else np.nan for i, n in enumerate(counts)]
+        good = np.isfinite(snr)
+        medians = [
+            np.median(snr[good & (which == i)]) if np.any(good & (which == i)) else np.nan
+            for i in range(counts.size)
+        ]
         centres = 0.5 * (edges[:-1] + edges[1:])
-        top.step(centres, counts / bin_minutes, where="mid", color="tab:green")
+        top.step(centres, counts / minutes, where="mid", color="tab:green")
         bottom.plot(centres, medians, "o-", color="tab:orange")
     top.set_ylabel("sources per minute")
     bottom.set_ylabel("median S/N")
     bottom.set_yscale("log")
-    bottom.set_xlabel(_time_label(clock))
+    _time_axis(bottom, clock)
     for ax in (top, bottom):
         ax.grid(alpha=0.3)
     return fig
@@ -197,6 +215,10 @@ def sources_along_night_figure(catalog: Table, clock: NightClock, bin_minutes: f
 
 def quicklook_figure(strip: np.ndarray, factor: int, max_aspect: float = 8.0) -> Figure:
     """The rectified strip, block-averaged, asinh stretch, cut into panels if long.
+
+    The median of each column (across the scan) is subtracted first, so the
+    sky's change along the night (twilight) does not swamp the stretch.
+    Pixels without data (masked, gaps) are drawn red.
 
     Parameters
     ----------
@@ -207,13 +229,23 @@ def quicklook_figure(strip: np.ndarray, factor: int, max_aspect: float = 8.0) ->
     max_aspect : float
         Longest panel, in strip heights; a longer strip is cut into panels.
     """
+    strip = np.asarray(strip, dtype=float)
     ny, nx = strip.shape
+    has_data = np.isfinite(strip).any(axis=0)
+    level = np.zeros(nx)
+    level[has_data] = np.nanmedian(strip[:, has_data], axis=0)
+    strip = strip - level
     n_panels = max(1, int(np.ceil(nx / (max_aspect * ny))))
     width = int(np.ceil(nx / n_panels))
     finite = strip[np.isfinite(strip)]
+    # Noise dark, stars bright but not clipped: 1st to 99.9th percentile under
+    # an asinh stretch (common practice for survey quick-looks).
     norm = ImageNormalize(
-        finite if finite.size else np.zeros(1), interval=ZScaleInterval(), stretch=AsinhStretch()
+        finite if finite.size else np.zeros(1),
+        interval=AsymmetricPercentileInterval(1.0, 99.9),
+        stretch=AsinhStretch(0.05),
     )
+    cmap = matplotlib.colormaps["gray"].with_extremes(bad="#b03030")
     fig = Figure(figsize=(_SIZE[0], 0.6 + n_panels * _SIZE[0] / max_aspect), layout="constrained")
     axes = np.atleast_1d(fig.subplots(n_panels, 1, squeeze=False)[:, 0])
     for i, ax in enumerate(axes):
@@ -222,14 +254,17 @@ def quicklook_figure(strip: np.ndarray, factor: int, max_aspect: float = 8.0) ->
         ax.imshow(
             strip[:, lo:hi],
             origin="lower",
-            cmap="gray",
+            cmap=cmap,
             norm=norm,
             extent=extent,
             aspect="auto",
             interpolation="nearest",
         )
         ax.set_ylabel("row y (pix)")
-    axes[-1].set_xlabel(f"night column x, along the scan (pix; {factor} x {factor} binned)")
+    axes[-1].set_xlabel(
+        f"night column x, along the scan (pix; shown {factor} x {factor} binned, "
+        "sky of each column subtracted; red: no data)"
+    )
     return fig
 
 
