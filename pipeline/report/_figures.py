@@ -190,7 +190,8 @@ def sources_along_night_figure(catalog: Table, clock: NightClock, bin_minutes: f
         # no bin is only partly covered (a rate dip that is not real).
         first, last = hours.min(), hours.max()
         if (last - first) * 60.0 < bin_minutes:  # one bin of the nominal width
-            first, last = 0.5 * (first + last - bin_minutes / 60.0), first + bin_minutes / 60.0
+            centre, half = 0.5 * (first + last), 0.5 * bin_minutes / 60.0
+            first, last = centre - half, centre + half
         n_bins = max(1, round((last - first) * 60.0 / bin_minutes))
         edges = np.linspace(first, last + 1e-9, n_bins + 1)
         counts, _ = np.histogram(hours, edges)

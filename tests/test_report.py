@@ -1,0 +1,339 @@
+"""Tests of the nightly report: figures, page, escaping, missing products, the command."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import _report_scene as scene
+import _toy_graph
+import numpy as np
+import pytest
+import yaml
+from astropy import units as u
+from astropy.nddata import block_reduce
+from astropy.time import Time
+from astropy.wcs import WCS
+
+import pipeline.stages
+from pipeline.cli import REPORT_NAME, main
+from pipeline.report import (
+    FIGURES,
+    FigureSpec,
+    NightClock,
+    ReportOptions,
+    bin_image,
+    build_report,
+    column_flat_figure,
+    draw_figures,
+    measure_sky,
+    pixel_area_arcsec2,
+    place_pieces,
+    problem_lines,
+    quicklook_figure,
+    render_page,
+    seeing_across_chip_figure,
+    seeing_along_night_figure,
+    sky_along_night_figure,
+    sky_surface_brightness,
+    sources_along_night_figure,
+    summary_rows,
+)
+from pipeline.report._collect import NightProducts
+from pipeline.report._figures import _clock_text
+from pipeline.runner import NightStatus, StageStatus
+
+SCRIPT = "<script>alert('x')</script>"
+
+
+# ----------------------------------------------------------------- numbers
+
+
+def test_sky_surface_brightness_follows_pogson() -> None:
+    rate = np.array([1.0, 100.0, 400.0])
+    area = 0.25
+    got = sky_surface_brightness(rate, area, 25.0)
+    # astropy's logarithmic units implement Pogson's scale: m = -2.5 log10(flux).
+    expected = 25.0 + u.Magnitude(rate / area * u.electron / u.s / u.arcsec**2).value
+    np.testing.assert_allclose(got, expected, rtol=0, atol=1e-12)  # float64 rounding only
+    # Pogson (1856): a factor 100 in flux is exactly 5 magnitudes.
+    assert got[0] - got[1] == pytest.approx(5.0, abs=1e-12)
+    assert np.isnan(sky_surface_brightness(np.array([0.0, -1.0]), area, 25.0)).all()
+
+
+def test_pixel_area_is_measured_on_the_sky_not_the_plane() -> None:
+    # A plate carree (CAR) with 1 arcsec pixels: away from its equator a pixel
+    # spans cos(dec) of its nominal width along the parallel (FITS WCS paper II,
+    # Calabretta & Greisen 2002, sect. 5.2.3: CAR keeps equal spacing in both angles).
+    wcs = WCS(naxis=2)
+    wcs.wcs.ctype = ["RA---CAR", "DEC--CAR"]
+    wcs.wcs.cdelt = [1 / 3600, 1 / 3600]
+    wcs.wcs.crval = [0.0, 0.0]
+    wcs.wcs.crpix = [1.0, 1.0]
+    y60 = 60.0 * 3600.0  # the pixel row at Dec = 60 deg
+    # Half-pixel finite differences on the sphere: relative error ~ (1 arcsec)^2.
+    assert pixel_area_arcsec2(wcs, 0.0, y60) == pytest.approx(math.cos(math.radians(60)), rel=1e-6)
+    assert pixel_area_arcsec2(wcs, 0.0, 0.0) == pytest.approx(1.0, rel=1e-6)
+
+
+def test_measure_sky_ignores_masked_pixels_and_stars() -> None:
+    flux = np.full((40, 60), 50.0)
+    usable = np.ones(flux.shape, dtype=bool)
+    flux[:30, :20] = 1e9  # most of the first bin: masked (a bleed)
+    usable[:30, :20] = False
+    flux[5, 25:28] = 1e5  # a star in the second bin
+    flux[7, 45] = np.nan
+    sky = measure_sky(flux, usable, x_start=100, exposure=2.0, n_bins=3)
+    np.testing.assert_array_equal(sky["sky_rate"], [25.0, 25.0, 25.0])  # 50 e- / 2 s exactly
+    np.testing.assert_array_equal(sky["x"], [109.5, 129.5, 149.5])
+    assert list(sky["n_pixels"]) == [200, 800, 799]
+
+
+def test_bin_image_matches_astropy_block_reduce_and_skips_nan() -> None:
+    rng = np.random.default_rng(1)
+    data = rng.normal(size=(9, 11))
+    binned = bin_image(data, 2)
+    assert binned.shape == (5, 6)
+    # astropy.nddata.block_reduce (reference) trims ragged edges: compare the full blocks.
+    np.testing.assert_allclose(binned[:4, :5], block_reduce(data, 2, func=np.mean), rtol=1e-12)
+    assert binned[4, 5] == data[8, 10]  # the ragged corner holds one pixel
+    data[:2, :2] = np.nan
+    data[2, 2] = np.nan
+    binned = bin_image(data, 2)
+    assert np.isnan(binned[0, 0])
+    assert binned[1, 1] == pytest.approx(np.mean([data[2, 3], data[3, 2], data[3, 3]]), rel=1e-12)
+
+
+def test_place_pieces_puts_stretches_at_their_columns() -> None:
+    strip = place_pieces([(0, np.ones((3, 5))), (20, np.full((3, 5), 2.0))], factor=2)
+    assert strip.shape == (3, 15)
+    assert (strip[:, :5] == 1).all() and (strip[:, 10:] == 2).all()
+    assert np.isnan(strip[:, 5:10]).all()  # the gap
+    with pytest.raises(ValueError, match="no rectified stretch"):
+        place_pieces([], 2)
+
+
+def test_night_clock_gives_mid_exposure_utc() -> None:
+    clock = NightClock(scene.block_index())
+    assert clock.date == "2026-10-15"
+    half = 0.5 * scene.TDI_ROWS * scene.LINE_TIME  # half a transit before readout
+    midnight = Time("2026-10-15T00:00:00", scale="utc")
+    first = (Time("2026-10-15T23:59:50", scale="utc") - midnight).sec - half
+    second = (Time("2026-10-16T00:00:05", scale="utc") - midnight).sec - half
+    # Time differences in float64 days: about 10 us of rounding.
+    np.testing.assert_allclose(
+        clock.hours([0, 99, 150, 199]) * 3600,
+        [first, first + 99 * scene.LINE_TIME, second, second + 49 * scene.LINE_TIME],
+        atol=1e-4,
+    )
+    assert _clock_text(clock.hours(150)) == "00:00:04"  # the next day, past 24 h
+    with pytest.raises(ValueError, match="no usable block"):
+        NightClock(scene.block_index()[:0])
+
+
+# ----------------------------------------------------------------- figures
+
+
+def _labels_have_text(figure) -> None:
+    for ax in figure.axes:
+        if ax.get_lines() or ax.get_images() or ax.collections:
+            assert ax.get_xlabel() or ax is not figure.axes[-1] or ax.get_ylabel()
+            assert ax.get_ylabel()
+
+
+def test_seeing_along_the_night_plots_the_whole_stretch_values() -> None:
+    clock = NightClock(scene.block_index())
+    fig = seeing_along_night_figure(scene.seeing(), clock, pixel_scale=0.5)
+    (line,) = fig.axes[0].get_lines()
+    np.testing.assert_array_equal(line.get_ydata(), [3.0, 3.4])  # not the first band row
+    np.testing.assert_allclose(line.get_xdata(), clock.hours([50.0, 200.0]))
+    assert "(pix)" in fig.axes[0].get_ylabel() and "UTC" in fig.axes[0].get_xlabel()
+    assert any("arcsec" in ax.get_ylabel() for ax in fig.axes[0].child_axes)
+
+
+def test_seeing_across_the_chip_plots_band_medians() -> None:
+    fig = seeing_across_chip_figure(scene.seeing())
+    points, medians = fig.axes[0].get_lines()
+    assert len(points.get_xdata()) == 4  # two bands x two stretches, whole rows left out
+    np.testing.assert_array_equal(medians.get_xdata(), [25.0, 75.0])
+    np.testing.assert_allclose(medians.get_ydata(), [3.2, 3.3])
+    assert "(pix)" in fig.axes[0].get_xlabel() and "(pix)" in fig.axes[0].get_ylabel()
+
+
+def test_sky_figure_says_the_zero_point_is_nominal() -> None:
+    products = scene.products()
+    fig = sky_along_night_figure(products["sky"], NightClock(products["block_index"]), 24.0)
+    ax = fig.axes[0]
+    (line,) = ax.get_lines()
+    expected = 24.0 - 2.5 * np.log10(np.array([400.0, 300.0, 200.0, 100.0]) / 0.25)
+    np.testing.assert_allclose(line.get_ydata(), expected)
+    assert ax.yaxis_inverted()  # brighter sky up
+    assert "NOMINAL" in ax.get_title() and "24.00" in ax.get_title()
+    assert "mag/arcsec" in ax.get_ylabel()
+
+
+def test_flat_figure_marks_flagged_columns() -> None:
+    columns = scene.products()["columns"]
+    fig = column_flat_figure(columns)
+    _, flagged = fig.axes[0].get_lines()
+    np.testing.assert_array_equal(flagged.get_xdata(), [10, 40])
+    assert np.isfinite(flagged.get_ydata()).all()  # a NaN flat is still marked
+    assert "(pix)" in fig.axes[0].get_xlabel()
+
+
+def test_sources_figure_counts_every_source() -> None:
+    products = scene.products()
+    fig = sources_along_night_figure(products["catalog"], NightClock(products["block_index"]), 0.1)
+    top, bottom = fig.axes
+    (step,) = top.get_lines()
+    centres = step.get_xdata()
+    width_minutes = (centres[1] - centres[0]) * 60.0
+    assert np.sum(step.get_ydata()) * width_minutes == pytest.approx(300)  # all 300 sources
+    (medians,) = bottom.get_lines()
+    assert np.isfinite(medians.get_ydata()).any()
+    # One source: one bin of the nominal width, not a zero-width bin.
+    one = sources_along_night_figure(
+        products["catalog"][:1], NightClock(products["block_index"]), 1
+    )
+    assert one.axes[0].get_lines()[0].get_ydata()[0] == pytest.approx(1.0)
+
+
+def test_quicklook_subtracts_column_sky_and_cuts_long_strips() -> None:
+    strip = np.arange(20.0)[None, :] + np.zeros((10, 20))
+    strip[3, 4] = 100.0
+    fig = quicklook_figure(strip, factor=3, max_aspect=1.0)
+    assert len(fig.axes) == 2  # 20 wide, 10 high, at most 1:1 per panel
+    first = fig.axes[0].get_images()[0]
+    image = np.asarray(first.get_array())
+    assert image[3, 4] == 100.0 - 4.0 and image[0, 0] == 0.0
+    assert first.get_extent() == [0, 30, 0, 30]  # in unbinned night pixels
+    assert "binned" in fig.axes[-1].get_xlabel()
+
+
+def test_every_registered_figure_draws_from_synthetic_products() -> None:
+    drawn = draw_figures(scene.products(), ReportOptions())
+    assert [d.spec.name for d in drawn] == [s.name for s in FIGURES]
+    for item in drawn:
+        assert item.png is not None and item.png.startswith(b"\x89PNG"), item.note
+        assert "\n" not in item.spec.caption and item.spec.caption.endswith(".")
+    for spec in FIGURES:
+        _labels_have_text(spec.draw(scene.products(), ReportOptions()))
+
+
+# -------------------------------------------------------------------- page
+
+
+def test_missing_products_skip_their_figures_with_a_note() -> None:
+    products = scene.products()
+    del products["seeing"]
+    products["sky"] = None
+    drawn = {
+        d.spec.name: d
+        for d in draw_figures(products, ReportOptions(), sources={"seeing": "detect"})
+    }
+    for name in ("seeing_night", "seeing_chip"):
+        assert drawn[name].png is None and not drawn[name].failed
+        assert "no seeing (from stage detect)" in drawn[name].note
+    assert drawn["sky"].png is None and "no sky" in drawn["sky"].note
+    assert drawn["flat"].png is not None
+    page = render_page(night="n", about=[], problems=[], summary=[], figures=list(drawn.values()))
+    assert page.count("<img ") == len(FIGURES) - 3
+    assert page.count("Not drawn: this night has no") == 3
+
+
+def test_a_failing_figure_is_a_note_and_a_problem_not_a_crash(tmp_path: Path) -> None:
+    def broken(products, options):
+        raise RuntimeError("no good <b>")
+
+    spec = FigureSpec("broken", "Broken", ("columns",), broken, "Never drawn.")
+    (item,) = draw_figures(scene.products(), ReportOptions(), specs=[spec])
+    assert item.failed and item.png is None and "RuntimeError: no good <b>" in item.note
+
+
+def test_values_from_config_headers_and_run_are_escaped(tmp_path: Path) -> None:
+    config = scene.config(tmp_path, name=SCRIPT)
+    night = NightProducts(products=scene.products(), header={"FILTER": "<i>r</i>"})
+    page = build_report(night, config, ReportOptions())
+    assert "<script" not in page  # the page has no script of its own
+    assert "&lt;script&gt;alert(&#x27;x&#x27;)&lt;/script&gt;" in page
+    assert "&lt;i&gt;r&lt;/i&gt;" in page and "<i>" not in page
+    page = render_page(
+        night=SCRIPT, about=[], problems=["a <b>bold</b> & bad file"], summary=[], figures=[]
+    )
+    assert "<script" not in page and "<b>" not in page
+    assert "a &lt;b&gt;bold&lt;/b&gt; &amp; bad file" in page
+
+
+def test_page_loads_nothing_from_anywhere(tmp_path: Path) -> None:
+    page = build_report(
+        NightProducts(products=scene.products()), scene.config(tmp_path), ReportOptions()
+    )
+    assert "http://" not in page and "https://" not in page and 'src="//' not in page
+    assert page.count('src="data:image/png;base64,') == len(FIGURES)
+    assert "Content-Security-Policy" in page and "default-src 'none'" in page
+
+
+def test_summary_and_problems_in_words() -> None:
+    rows = dict(summary_rows(scene.products()))
+    assert rows["blocks"] == "2" and rows["gaps"] == "1"
+    assert rows["hours of usable data"] == f"{200 * scene.LINE_TIME / 3600:.2f} h (10 s)"
+    assert rows["sources"].startswith("300 (")
+    assert rows["median seeing FWHM"].endswith("arcsec")
+    assert rows["matched reference stars"].startswith("not available")
+    assert rows["zero point"].startswith("not available")
+    status = NightStatus(
+        night="n",
+        folder=Path("."),
+        n_stretches=2,
+        stages=[
+            StageStatus(
+                "scale",
+                "stretch",
+                units={"s0000": ("done", ""), "s0001": ("failed", "ValueError: boom")},
+                problems={"s0000": ["file x.fits rejected: truncated"]},
+            ),
+            StageStatus("total", "night", units={"night": ("missing", "")}),
+        ],
+    )
+    assert problem_lines(status) == [
+        "Stage scale failed for s0001: ValueError: boom.",
+        "Stage scale (s0000) reported: file x.fits rejected: truncated",
+        "Stage total has not run for night.",
+    ]
+    rows = dict(summary_rows({}, status))
+    assert rows["problems and failures"] == "1 failed unit, 0 damaged units, 1 reported problem"
+    assert rows["sources"].startswith("not available")
+
+
+# ----------------------------------------------------------------- command
+
+
+@pytest.fixture
+def toy_file(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    """A toy night on disk and its config file; the CLI sees the toy graph."""
+    monkeypatch.setattr(pipeline.stages, "GRAPH", _toy_graph.GRAPH, raising=False)
+    _toy_graph.write_raw_night(tmp_path / "raw")
+    data = _toy_graph.toy_config_data(tmp_path)
+    data["night"].update(raw_dir="raw", output_dir="out")
+    path = tmp_path / "night.yaml"
+    path.write_text(yaml.safe_dump(data))
+    return path
+
+
+def test_report_command_puts_failures_first_and_skips_absent_figures(
+    toy_file: Path, capsys
+) -> None:
+    assert main(["run", str(toy_file), "--set", "stages.scale.fail_on=[1]"]) == 1
+    capsys.readouterr()
+    assert main(["report", str(toy_file), "--set", f"site.name={SCRIPT}"]) == 0
+    out = toy_file.parent / "out" / "toy" / REPORT_NAME
+    assert capsys.readouterr().out.strip() == f"report: {out}"
+    page = out.read_text(encoding="utf-8")
+    problems = page.index('class="problems"')
+    assert problems < page.index('id="summary"')
+    assert "Stage scale failed for s0001: ValueError: toy failure on stretch 1." in page
+    assert page.count("Not drawn: this night has no") == len(FIGURES)  # toy graph: no products
+    assert "<script" not in page
+    other = toy_file.parent / "elsewhere" / "page.html"
+    assert main(["report", str(toy_file), "--output", str(other)]) == 0
+    assert other.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
