@@ -17,6 +17,8 @@ from astropy.wcs import WCS
 
 import pipeline.stages
 from pipeline.cli import REPORT_NAME, main
+from pipeline.config import load_config
+from pipeline.exceptions import ConfigError
 from pipeline.report import (
     FIGURES,
     FigureSpec,
@@ -337,3 +339,11 @@ def test_report_command_puts_failures_first_and_skips_absent_figures(
     other = toy_file.parent / "elsewhere" / "page.html"
     assert main(["report", str(toy_file), "--output", str(other)]) == 0
     assert other.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
+
+
+def test_the_report_section_is_checked_like_any_other() -> None:
+    template = Path(__file__).parent.parent / "configs" / "template.yaml"
+    config = load_config(template, ["report.nominal_zero_point=24.5"])
+    assert config.section("report") == ReportOptions(nominal_zero_point=24.5)
+    with pytest.raises(ConfigError, match="nominal_zeropoint"):
+        load_config(template, ["report.nominal_zeropoint=24.5"])
