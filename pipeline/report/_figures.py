@@ -207,7 +207,6 @@ def sources_along_night_figure(catalog: Table, clock: NightClock, bin_minutes: f
         bottom.plot(centres, medians, "o-", color="tab:orange")
     top.set_ylabel("sources per minute")
     bottom.set_ylabel("median S/N")
-    bottom.set_yscale("log")
     _time_axis(bottom, clock)
     for ax in (top, bottom):
         ax.grid(alpha=0.3)
