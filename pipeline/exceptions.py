@@ -6,6 +6,8 @@ conditions warn with a subclass of :class:`PipelineWarning` and carry on.
 """
 
 __all__ = [
+    "AstrometryError",
+    "AstrometryWarning",
     "CalibrationWarning",
     "ConfigError",
     "DamagedProductError",
@@ -40,6 +42,22 @@ class IngestError(PipelineError, ValueError):
 
 class StageError(PipelineError):
     """A stage failed on one stretch; the runner logs it and goes on."""
+
+
+class AstrometryError(PipelineError):
+    """A night's astrometric solution failed (e.g. too few matches).
+
+    The message gives the counts and the likely causes; ``counts`` holds them
+    for a program (detections, reference stars in the band and on the chip,
+    matched pairs, pairs expected by chance).
+    """
+
+    def __init__(self, message: str, counts: dict | None = None):
+        super().__init__(message)
+        self.counts = dict(counts or {})
+
+    def __reduce__(self):
+        return type(self), (str(self), self.counts)
 
 
 class RunLockedError(PipelineError):
@@ -83,6 +101,10 @@ class CalibrationWarning(PipelineWarning):
 
 class RectifyWarning(PipelineWarning):
     """Rectification is degraded (e.g. too small an overlap between stretches)."""
+
+
+class AstrometryWarning(PipelineWarning):
+    """The astrometric solution is less reliable than usual (e.g. few stars in a stretch)."""
 
 
 class DetectWarning(PipelineWarning):

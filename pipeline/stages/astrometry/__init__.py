@@ -1,0 +1,64 @@
+"""Astrometry: a physical model of the night fitted to a reference catalogue.
+
+A zenith telescope cannot point, so where it looked follows from the site, the
+clock and the camera.  This package predicts where reference stars are
+recorded, matches them to the detect stage's catalogue, and fits one
+geometry per night (clock offset, line-time scale, focal length, camera
+rotation, axis tilt, radial distortion) plus a smooth image wander along the
+night.
+
+* :mod:`~pipeline.stages.astrometry._model`: fast recorded centroids for any
+  geometry near the nominal one (:class:`GeometryPredictor`), checked against
+  full :class:`~pipeline.geometry.TDIModel` rebuilds to 1e-5 px.
+* :mod:`~pipeline.stages.astrometry._match`: KD-tree pairs and the
+  pattern-free offset histogram of the search.
+* :mod:`~pipeline.stages.astrometry._fit`: robust Gauss-Newton fit with
+  covariance and the wander spline; the clock/east-tilt degeneracy.
+* :mod:`~pipeline.stages.astrometry._solve`: :func:`solve_night` and
+  :class:`AstrometricSolution` (solved sky positions, predictions, grid
+  statistics, implied focal length and matched line time).
+* :mod:`~pipeline.stages.astrometry._stats`: :func:`residual_grid`.
+
+Coordinates: detections come as night rectified pixels ``(x, y)`` (``x``
+along the scan) of the rectify stage's :class:`~pipeline.geometry.rectified.RectifiedFrame`;
+internally every position is a strip ``(row, column)`` through the nominal
+geometry, where rectify took the pixel from, so matching and fitting never
+invert the map.
+"""
+
+from pipeline.stages.astrometry._fit import FIT_PARAMETERS, GeometryFit, WanderSpline, fit_geometry
+from pipeline.stages.astrometry._match import OffsetPeak, match_nearest, offset_peak
+from pipeline.stages.astrometry._model import (
+    GeometryOffsets,
+    GeometryPredictor,
+    PredictedCentroids,
+    SkyTracks,
+    sky_tracks,
+)
+from pipeline.stages.astrometry._solve import (
+    AstrometricSolution,
+    SearchRanges,
+    search_geometry,
+    solve_night,
+)
+from pipeline.stages.astrometry._stats import residual_grid
+
+__all__ = [
+    "FIT_PARAMETERS",
+    "AstrometricSolution",
+    "GeometryFit",
+    "GeometryOffsets",
+    "GeometryPredictor",
+    "OffsetPeak",
+    "PredictedCentroids",
+    "SearchRanges",
+    "SkyTracks",
+    "WanderSpline",
+    "fit_geometry",
+    "match_nearest",
+    "offset_peak",
+    "residual_grid",
+    "search_geometry",
+    "sky_tracks",
+    "solve_night",
+]

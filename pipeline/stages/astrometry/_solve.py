@@ -1,0 +1,551 @@
+"""The night's astrometric solution: predict, match (searching if needed), fit, invert."""
+
+from __future__ import annotations
+
+import dataclasses
+import logging
+from dataclasses import dataclass
+from functools import cached_property
+
+import numpy as np
+from astropy.table import Table
+from astropy.time import TimeDelta
+from numpy.typing import ArrayLike
+from scipy.spatial import cKDTree
+
+from pipeline.exceptions import AstrometryError
+from pipeline.geometry.optics import (
+    ARCSEC_PER_RADIAN,
+    EARTH_ROTATION_RATE,
+    focal_length_from_spin,
+    normal_gravity,
+)
+from pipeline.geometry.rectified import RectifiedFrame
+from pipeline.geometry.tdi import TDIModel
+from pipeline.stages.astrometry._fit import FIT_PARAMETERS, GeometryFit, fit_geometry
+from pipeline.stages.astrometry._match import (
+    candidate_pairs,
+    match_nearest,
+    offset_peak,
+    scaled_tree,
+)
+from pipeline.stages.astrometry._model import GeometryOffsets, GeometryPredictor, SkyTracks
+from pipeline.stages.astrometry._stats import residual_grid
+
+__all__ = ["AstrometricSolution", "SearchRanges", "search_geometry", "solve_night"]
+
+log = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True)
+class SearchRanges:
+    """How far from the nominal geometry the search looks when the first match fails.
+
+    Attributes
+    ----------
+    clock_offset : float
+        Seconds either side (also covers the east tilt, which acts like it).
+    focal_scale : float
+        Fractional focal-length error either side.
+    rotation : float
+        Degrees either side.
+    tilt : float
+        Arcseconds either side, east and north.
+    bin_size : float
+        Pixels: width of the offset histogram's bins and of the steps of the
+        focal-length and rotation grids at the chip's edge.
+    """
+
+    clock_offset: float = 10.0
+    focal_scale: float = 0.03
+    rotation: float = 0.5
+    tilt: float = 60.0
+    bin_size: float = 4.0
+
+
+def _outward(half_range: float, step: float) -> np.ndarray:
+    """0, +step, -step, +2 step, ... up to ``half_range``."""
+    k = np.arange(1, int(np.floor(half_range / step)) + 1)
+    return np.r_[0.0, np.column_stack([k * step, -k * step]).ravel()]
+
+
+def search_geometry(
+    predictor: GeometryPredictor,
+    ref_tracks: SkyTracks,
+    det_row: np.ndarray,
+    det_column: np.ndarray,
+    ranges: SearchRanges = SearchRanges(),
+):
+    """Find the geometry by a grid over focal length and rotation and offset histograms.
+
+    The clock offset (with the east tilt) is a shift along the scan and the
+    north tilt a shift across it: for each trial focal length and rotation
+    those come out as the peak of the 2-D histogram of detection-minus-
+    prediction offsets of all pairs within the search box, so only the two
+    scale-like parameters need a grid.  Their effect is applied linearly
+    (finite-difference derivatives of the predictor), good to a fraction of a
+    bin over the ranges.
+
+    Returns
+    -------
+    offsets : GeometryOffsets
+        Starting geometry for the fit.
+    peak : OffsetPeak
+        The winning histogram peak (its count and chance background).
+    """
+    base_offsets = GeometryOffsets()
+    pred = predictor.predict(ref_tracks, base_offsets)
+    row0 = pred.rows(predictor.n_rows, predictor.line_time)
+    col0 = pred.column
+
+    def derivative(**change):
+        ((_name, step),) = change.items()
+        p = predictor.predict(ref_tracks, dataclasses.replace(base_offsets, **change))
+        return (p.rows(predictor.n_rows, predictor.line_time) - row0) / step, (
+            p.column - col0
+        ) / step
+
+    d_focal = derivative(focal_scale=1e-3)
+    d_rot = derivative(rotation=60.0)
+    d_north = derivative(tilt_north=10.0)
+    n_col = predictor.model.camera.n_columns
+    dt = predictor.line_time
+    scale = predictor.pixel_angle * ARCSEC_PER_RADIAN
+    cos_lat = np.cos(np.radians(predictor.model.latitude))
+    tilt_s = ranges.tilt / (EARTH_ROTATION_RATE * ARCSEC_PER_RADIAN * cos_lat)
+    rot_arcsec = ranges.rotation * 3600.0
+    half_row = (
+        (ranges.clock_offset + tilt_s) / dt
+        + ranges.focal_scale * np.nanmax(np.abs(d_focal[0]))
+        + rot_arcsec * np.nanmax(np.abs(d_rot[0]))
+        + ranges.tilt * np.nanmax(np.abs(d_north[0]))
+        + 2 * ranges.bin_size
+    )
+    half_col = (
+        ranges.tilt / scale
+        + ranges.focal_scale * np.nanmax(np.abs(d_focal[1]))
+        + rot_arcsec * np.nanmax(np.abs(d_rot[1]))
+        + 2 * ranges.bin_size
+    )
+    tree = scaled_tree(det_row, det_column, half_row, half_col)
+    ri, di = candidate_pairs(row0, col0, tree, half_row, half_col)
+    dr0 = det_row[di] - row0[ri]
+    dc0 = det_column[di] - col0[ri]
+    lever = 0.5 * n_col
+    focal_step = ranges.bin_size / lever
+    rot_step = ranges.bin_size / lever * ARCSEC_PER_RADIAN
+    # grids ordered outwards from the nominal value, so that on a chip too
+    # small to tell trials apart the nominal one wins the ties
+    focal_grid = _outward(ranges.focal_scale, focal_step)
+    rot_grid = _outward(rot_arcsec, rot_step)
+    best = None
+    fr, fc = d_focal[0][ri], d_focal[1][ri]
+    rr, rc = d_rot[0][ri], d_rot[1][ri]
+    for f in focal_grid:
+        base_r = dr0 - f * fr
+        base_c = dc0 - f * fc
+        for a in rot_grid:
+            peak = offset_peak(
+                base_r - a * rr, base_c - a * rc, half_row, half_col, ranges.bin_size
+            )
+            if best is None or peak.count > best[0].count:
+                best = (peak, f, a)
+    peak, f, a = best
+    north_c = np.nanmedian(d_north[1])
+    north_r = np.nanmedian(d_north[0])
+    tilt_north = peak.d_column / north_c
+    clock = -(peak.d_row - tilt_north * north_r) * dt
+    offsets = GeometryOffsets(
+        clock_offset=float(clock),
+        focal_scale=float(f),
+        rotation=float(a),
+        tilt_north=float(tilt_north),
+    )
+    log.info(
+        "geometry search: %d candidate pairs, peak %d over %.1f by chance at %s",
+        ri.size,
+        peak.count,
+        peak.background,
+        offsets,
+    )
+    return offsets, peak
+
+
+def _failure(counts: dict, reason: str) -> AstrometryError:
+    causes = []
+    if counts.get("reference_in_band", 0) == 0:
+        causes.append(
+            "the reference catalogue does not cover the night's band (check its sky "
+            "coverage and the site latitude/longitude)"
+        )
+    if counts.get("detections", 0) < 2 * counts.get("min_matches", 0):
+        causes.append("too few detections (clouds, bad focus or a wrong detection threshold)")
+    causes.append(
+        "the site position or clock is further off than the search covers "
+        "(clock within the search's seconds, site longitude/latitude, DATE-OBS)"
+    )
+    causes.append("a wrong focal length, pixel size or camera rotation in the config")
+    described = ", ".join(f"{k}={v}" for k, v in counts.items())
+    return AstrometryError(
+        f"astrometric solution failed: {reason} ({described}). Likely causes: "
+        + "; ".join(causes)
+        + ".",
+        counts,
+    )
+
+
+def _robust_radius(fit: GeometryFit) -> float:
+    r = np.hypot(fit.residual_row, fit.residual_column)[fit.used]
+    return float(np.median(r) / np.sqrt(2.0 * np.log(2.0)))
+
+
+def solve_night(
+    x: ArrayLike,
+    y: ArrayLike,
+    ref_ra: ArrayLike,
+    ref_dec: ArrayLike,
+    model: TDIModel,
+    frame: RectifiedFrame,
+    *,
+    x_err: ArrayLike | None = None,
+    y_err: ArrayLike | None = None,
+    match_radius: float = 3.0,
+    knot_spacing: float | None = 300.0,
+    parameters: tuple[str, ...] = FIT_PARAMETERS,
+    min_matches: int = 20,
+    good_fraction: float = 0.3,
+    search: SearchRanges | None = SearchRanges(),
+    clip_sigma: float = 5.0,
+) -> AstrometricSolution:
+    """Solve a night's geometry from its detections and a reference catalogue.
+
+    Parameters
+    ----------
+    x, y : array_like, shape (n_det,)
+        Detections' night rectified pixel positions (``x`` along the scan,
+        ``y`` across it), first moments, as the detect stage gives them.
+    ref_ra, ref_dec : array_like, shape (n_ref,)
+        Reference stars, ICRS degrees at the observation epoch.
+    model : TDIModel
+        The nominal geometry of the night (from the config and headers); the
+        one rectify used.
+    frame : RectifiedFrame
+        The night's rectified grid (:meth:`RectifiedFrame.for_night` of ``model``).
+    x_err, y_err : array_like or None
+        1-sigma errors of ``x`` and ``y``, pixels (weights); None: equal.
+    match_radius : float, optional
+        Pixels: the first match at the nominal geometry.
+    knot_spacing : float or None, optional
+        Seconds between knots of the wander correction; None: no correction.
+        A wander of period P is followed to (2 pi knot / P)^4 / 384 of its
+        amplitude (cubic spline interpolation error, common practice).
+    parameters : tuple of str, optional
+        Parameters to fit (see :data:`FIT_PARAMETERS`).
+    min_matches : int, optional
+        Fewest pairs a solution needs.
+    good_fraction : float, optional
+        The nominal match is accepted if it pairs this fraction of the
+        reference stars predicted on the chip (or of the detections, if fewer).
+    search : SearchRanges or None, optional
+        How far to search when the nominal match is poor; None: do not search.
+    clip_sigma : float, optional
+        Outlier rejection threshold (robust sigmas of the residual radius).
+
+    Returns
+    -------
+    AstrometricSolution
+
+    Raises
+    ------
+    AstrometryError
+        If too few stars match; the message has the counts and likely causes.
+    """
+    x = np.asarray(x, dtype=float).ravel()
+    y = np.asarray(y, dtype=float).ravel()
+    ref_ra = np.asarray(ref_ra, dtype=float).ravel()
+    ref_dec = np.asarray(ref_dec, dtype=float).ravel()
+    if x.shape != y.shape or ref_ra.shape != ref_dec.shape:
+        raise ValueError(
+            f"x and y (got {x.shape}, {y.shape}) and ref_ra and ref_dec (got {ref_ra.shape}, "
+            f"{ref_dec.shape}) must have matching shapes."
+        )
+    sig_x = None if x_err is None else np.asarray(x_err, dtype=float).ravel()
+    sig_y = None if y_err is None else np.asarray(y_err, dtype=float).ravel()
+    predictor = GeometryPredictor(model)
+    n_rows = model.n_rows
+    det_tracks = predictor.tracks_from_rectified(frame, x, y)
+    det_row, det_col = predictor.strip(det_tracks)
+    det_ok = np.isfinite(det_row) & np.isfinite(det_col)
+    det_row = np.where(det_ok, det_row, np.nan)
+    det_col = np.where(det_ok, det_col, np.nan)
+
+    # reference stars in the band the chip may see
+    rx, ry = frame.pixel_from_icrs(ref_ra, ref_dec)
+    margin = 2.0 * (search.tilt if search else 10.0) / (frame.cdelt2 * 3600.0) + 0.05 * frame.n_y
+    in_band = (
+        (ry > -margin)
+        & (ry < frame.n_y + margin)
+        & (rx > np.nanmin(x, initial=0.0) - n_rows)
+        & (rx < np.nanmax(x, initial=0.0) + n_rows)
+    )
+    band = np.flatnonzero(in_band)
+    ref_tracks = predictor.tracks(
+        ref_ra[band], ref_dec[band], predictor.mid_time_of_column(rx[band])
+    )
+    counts = {
+        "detections": int(det_ok.sum()),
+        "reference_in_band": int(band.size),
+        "min_matches": int(min_matches),
+    }
+    if band.size == 0 or det_ok.sum() == 0:
+        raise _failure(counts, "no reference stars or no detections in the night's band")
+    good_det = np.flatnonzero(det_ok)
+    tree = cKDTree(np.column_stack([det_row[good_det], det_col[good_det]]))
+    row_lo, row_hi = float(np.nanmin(det_row)), float(np.nanmax(det_row))
+
+    def match(offsets: GeometryOffsets, radius: float, fit: GeometryFit | None = None):
+        pr = predictor.predict(ref_tracks, offsets)
+        dt = predictor.line_time * (1.0 + offsets.line_time_scale)
+        r = pr.rows(n_rows, dt, offsets.clock_offset)
+        c = pr.column
+        if fit is not None and fit.wander is not None:
+            w_r, w_c = fit.wander(pr.t_mid)
+            r, c = r + w_r, c + w_c
+        on_chip = (c > -0.5) & (c < model.camera.n_columns - 0.5) & (r > row_lo) & (r < row_hi)
+        ri, di = match_nearest(r, c, None, None, radius, tree=tree)
+        return ri, good_det[di], int(on_chip.sum())
+
+    offsets = GeometryOffsets()
+    ri, di, n_chip = match(offsets, match_radius)
+    counts["reference_on_chip"] = n_chip
+    counts["matched_nominal"] = int(ri.size)
+    expected = min(n_chip, int(det_ok.sum()))
+    radius = match_radius
+    if ri.size < max(min_matches, good_fraction * expected):
+        if search is None:
+            raise _failure(counts, "the nominal geometry matches too few stars")
+        offsets, peak = search_geometry(
+            predictor, ref_tracks, det_row[good_det], det_col[good_det], search
+        )
+        counts["search_peak"] = peak.count
+        counts["search_chance"] = round(peak.background, 1)
+        if peak.count < min_matches or peak.significance < 5.0:
+            raise _failure(counts, "the search found no significant common offset")
+        radius = 2.0 * search.bin_size
+        ri, di, _ = match(offsets, radius)
+    kwargs = {
+        "sigma_row": sig_x,
+        "sigma_column": sig_y,
+        "parameters": parameters,
+        "clip_sigma": clip_sigma,
+    }
+    fit = None
+    for knots in (None, knot_spacing, knot_spacing):
+        if ri.size < min_matches:
+            counts["matched"] = int(ri.size)
+            raise _failure(counts, f"only {ri.size} reference stars matched")
+        fit = fit_geometry(
+            predictor,
+            ref_tracks,
+            det_row,
+            det_col,
+            ri,
+            di,
+            start=offsets,
+            knot_spacing=knots,
+            **kwargs,
+        )
+        offsets = fit.offsets
+        radius = max(clip_sigma * _robust_radius(fit), 0.05)
+        ri, di, _ = match(offsets, radius, fit)
+    counts["matched"] = int(fit.n_used)
+    if fit.n_used < min_matches:
+        raise _failure(counts, f"only {fit.n_used} reference stars survived the fit")
+    return AstrometricSolution(
+        model=model,
+        frame=frame,
+        predictor=predictor,
+        fit=fit,
+        ref_index=band[fit.ref_index],
+        det_index=fit.det_index,
+        counts=counts,
+        ref_tracks=ref_tracks,
+        det_row=det_row,
+        det_column=det_col,
+    )
+
+
+@dataclass(frozen=True, eq=False)
+class AstrometricSolution:
+    """A night's solved geometry and what follows from it.
+
+    Build with :func:`solve_night`.  Positions in strip pixels are the nominal
+    geometry's; ``ref_index``/``det_index`` index the caller's arrays.
+    """
+
+    model: TDIModel
+    frame: RectifiedFrame
+    predictor: GeometryPredictor
+    fit: GeometryFit
+    ref_index: np.ndarray
+    det_index: np.ndarray
+    counts: dict
+    ref_tracks: SkyTracks
+    det_row: np.ndarray
+    det_column: np.ndarray
+
+    # ----------------------------------------------------------- parameters
+    @property
+    def offsets(self) -> GeometryOffsets:
+        """Fitted departures from the nominal geometry."""
+        return self.fit.offsets
+
+    @property
+    def along_scan_offset(self) -> float:
+        """Along-scan shift of every star from the clock/east-tilt combination, pixels.
+
+        ``-s_eff / line_time``, where ``s_eff`` is the fitted clock offset,
+        i.e. the clock offset plus ``tau_E / (omega cos phi)`` of an unknown
+        east tilt ``tau_E`` (see :mod:`pipeline.stages.astrometry._fit`).
+        """
+        return -self.offsets.clock_offset / self.model.line_time
+
+    @cached_property
+    def solved_model(self) -> TDIModel:
+        """A full :class:`TDIModel` of the fitted geometry (clock offset in ``start``)."""
+        camera = dataclasses.replace(
+            self.model.camera, focal_length=self.model.focal_length, spin_period=None
+        )
+        true_camera, line_time = self.offsets.apply(camera, self.model.line_time)
+        return TDIModel(
+            self.model.site,
+            true_camera,
+            self.model.start + TimeDelta(self.offsets.clock_offset, format="sec"),
+            self.model.duration,
+            line_time=line_time,
+        )
+
+    @property
+    def focal_length(self) -> float:
+        """Focal length the fit implies, metres."""
+        return self.model.focal_length * (1.0 + self.offsets.focal_scale)
+
+    @property
+    def focal_length_from_spin(self) -> float:
+        """Focal length the configured spin period implies (the configured one if none), m."""
+        camera, site = self.model.camera, self.model.site
+        if camera.spin_period is None:
+            return float(self.model.focal_length)
+        return float(
+            focal_length_from_spin(camera.spin_period, normal_gravity(site.latitude, site.height))
+        )
+
+    @property
+    def line_time(self) -> float:
+        """The line time the fit measured (the clocking), seconds."""
+        return self.model.line_time * (1.0 + self.offsets.line_time_scale)
+
+    @property
+    def matched_line_time(self) -> float:
+        """Line time that would match the measured drift at the chip centre, seconds."""
+        return self.solved_model.matched_line_time
+
+    def summary(self) -> dict:
+        """Fitted parameters with errors, focal lengths and line times, as a flat dict."""
+        out = {"n_matched": self.fit.n_used, "chi2_reduced": self.fit.chi2_reduced}
+        for name, err in self.fit.errors.items():
+            out[name] = float(getattr(self.offsets, name))
+            out[name + "_err"] = float(err)
+        out.update(
+            along_scan_offset_px=self.along_scan_offset,
+            focal_length_m=self.focal_length,
+            focal_length_from_spin_m=self.focal_length_from_spin,
+            line_time_s=self.line_time,
+            matched_line_time_s=self.matched_line_time,
+        )
+        return out
+
+    # ------------------------------------------------------------- positions
+    def predict_strip(self, ra: ArrayLike, dec: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+        """Strip (row, column) at which stars are recorded in the solved geometry."""
+        x, _ = self.frame.pixel_from_icrs(ra, dec)
+        tracks = self.predictor.tracks(ra, dec, self.predictor.mid_time_of_column(x))
+        return self._strip(tracks)
+
+    def _strip(self, tracks: SkyTracks):
+        pred = self.predictor.predict(tracks, self.offsets)
+        r = pred.rows(self.model.n_rows, self.line_time, self.offsets.clock_offset)
+        c = pred.column
+        if self.fit.wander is not None:
+            w_r, w_c = self.fit.wander(pred.t_mid)
+            r, c = r + w_r, c + w_c
+        return r, c
+
+    def _invert(self, target_r, target_c, x, y, strip_of) -> tuple[np.ndarray, np.ndarray]:
+        """Rectified ``(x, y)`` with ``strip_of(x, y) = target`` by Newton steps."""
+        x = np.array(x, dtype=float)
+        y = np.array(y, dtype=float)
+        sample = np.linspace(0, x.size - 1, min(x.size, 64)).astype(np.intp)
+        r0, c0 = strip_of(x[sample], y[sample])
+        r1, c1 = strip_of(x[sample] + 1.0, y[sample])
+        r2, c2 = strip_of(x[sample], y[sample] + 1.0)
+        jac = np.array(
+            [
+                [np.nanmedian(r1 - r0), np.nanmedian(r2 - r0)],
+                [np.nanmedian(c1 - c0), np.nanmedian(c2 - c0)],
+            ]
+        )
+        inv = np.linalg.inv(jac)
+        for _ in range(8):
+            r, c = strip_of(x, y)
+            er, ec = target_r - r, target_c - c
+            x += inv[0, 0] * er + inv[0, 1] * ec
+            y += inv[1, 0] * er + inv[1, 1] * ec
+            if not np.nanmax(np.abs(er) + np.abs(ec), initial=0.0) > 1e-6:
+                break
+        return x, y
+
+    def _solved_strip_of_rectified(self, x, y):
+        return self._strip(self.predictor.tracks_from_rectified(self.frame, x, y))
+
+    def _nominal_strip_of_rectified(self, x, y):
+        return self.predictor.strip(self.predictor.tracks_from_rectified(self.frame, x, y))
+
+    def sky_from_rectified(self, x: ArrayLike, y: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+        """Solved ICRS (ra, dec) of detections at night rectified pixels ``(x, y)``, degrees.
+
+        The detection's strip position through the nominal geometry (where
+        rectify took it from) is matched by the solved geometry plus wander
+        (Newton steps to 1e-6 px).
+        """
+        x = np.asarray(x, dtype=float).ravel()
+        y = np.asarray(y, dtype=float).ravel()
+        tr, tc = self._nominal_strip_of_rectified(x, y)
+        xs, ys = self._invert(tr, tc, x, y, self._solved_strip_of_rectified)
+        return self.frame.icrs_from_pixel(xs, ys)
+
+    def predict_rectified(self, ra: ArrayLike, dec: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+        """Night rectified ``(x, y)`` at which stars are recorded in the solved geometry."""
+        ra = np.asarray(ra, dtype=float).ravel()
+        dec = np.asarray(dec, dtype=float).ravel()
+        tr, tc = self.predict_strip(ra, dec)
+        x0, y0 = self.frame.pixel_from_icrs(ra, dec)
+        return self._invert(tr, tc, x0, y0, self._nominal_strip_of_rectified)
+
+    # ------------------------------------------------------------ statistics
+    def residual_grid(self, n_across: int = 4, n_along: int = 8) -> Table:
+        """Residuals of the kept pairs (detection minus model) on a grid, mas."""
+        fit = self.fit
+        scale = self.model.pixel_scale * 1000.0
+        used = fit.used
+        col = self.det_column[fit.det_index]
+        return residual_grid(
+            col[used],
+            fit.t_mid[used],
+            fit.residual_row[used] * scale,  # later rows hold larger RA: along = east
+            fit.residual_column[used] * scale,
+            column_range=(-0.5, self.model.camera.n_columns - 0.5),
+            time_range=(float(np.nanmin(fit.t_mid)), float(np.nanmax(fit.t_mid))),
+            n_across=n_across,
+            n_along=n_along,
+        )
