@@ -33,6 +33,7 @@ from pipeline.stages.astrometry._model import (
     GeometryPredictor,
     PredictedCentroids,
     SkyTracks,
+    east_tilt_equivalent,
     sky_tracks,
 )
 from pipeline.stages.astrometry._solve import (
@@ -54,6 +55,7 @@ __all__ = [
     "SearchRanges",
     "SkyTracks",
     "WanderSpline",
+    "east_tilt_equivalent",
     "fit_geometry",
     "match_nearest",
     "offset_peak",

@@ -45,6 +45,7 @@ __all__ = [
     "GeometryPredictor",
     "PredictedCentroids",
     "SkyTracks",
+    "east_tilt_equivalent",
     "sky_tracks",
 ]
 
@@ -115,6 +116,36 @@ class GeometryOffsets:
             line_time=None,
         )
         return true_camera, line_time * (1.0 + self.line_time_scale)
+
+
+def east_tilt_equivalent(model: TDIModel, tilt_east: float) -> tuple[float, float]:
+    """The clock offset and camera rotation that act like an east tilt of the axis.
+
+    Tilting the axis ``tau`` to the east makes every star cross ``tau / w``
+    seconds earlier, ``w`` the drift rate of the focal plane at the axis
+    (``omega cos(phi)`` scaled by refraction and aberration: ``drift_rate *
+    pixel_angle`` of the model), as a clock running that much late; and it
+    turns the drift direction on the chip by ``tau tan(phi)``, because the
+    local north of the tilted field differs from the ground's north (which
+    the camera follows) by that angle (derived in-house).
+
+    Parameters
+    ----------
+    model : TDIModel
+        The nominal geometry.
+    tilt_east : float
+        Arcseconds.
+
+    Returns
+    -------
+    clock_offset : float
+        Seconds.
+    rotation : float
+        Arcseconds.
+    """
+    rate = model.drift_rate * model.pixel_angle
+    tau = tilt_east / ARCSEC_PER_RADIAN
+    return tau / rate, tilt_east * float(np.tan(np.radians(model.latitude)))
 
 
 @dataclass(frozen=True)
