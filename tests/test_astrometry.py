@@ -135,13 +135,13 @@ def test_offset_peak_finds_common_shift():
 
 
 def test_residual_grid_cells():
-    column = np.array([10.0, 10.0, 300.0, 300.0])
-    time = np.array([1.0, 2.0, 99.0, 98.0])
+    column = np.array([10.0, 10.0, 300.0, 300.0, 150.0])
+    time = np.array([1.0, 2.0, 99.0, 98.0, 50.0])
     table = residual_grid(
         column,
         time,
-        np.array([1.0, 3.0, -2.0, -2.0]),
-        np.zeros(4),
+        np.array([1.0, 3.0, -2.0, -2.0, 7.0]),
+        np.zeros(5),
         column_range=(0.0, 400.0),
         time_range=(0.0, 100.0),
         n_across=4,
@@ -152,7 +152,9 @@ def test_residual_grid_cells():
     last = table[(table["across"] == 3) & (table["along"] == 7)][0]
     assert first["n"] == 2 and first["mean_along"] == 2.0
     assert last["n"] == 2 and last["mean_along"] == -2.0
-    assert table["n"].sum() == 4
+    middle = table[(table["across"] == 1) & (table["along"] == 4)][0]
+    assert middle["n"] == 1 and middle["mean_along"] == 7.0
+    assert table["n"].sum() == 5
     with pytest.raises(ValueError, match="n_across and n_along"):
         residual_grid(
             column, time, column, column, column_range=(0, 1), time_range=(0, 1), n_across=0
