@@ -95,6 +95,7 @@ def make_night(
     seed: int = 1,
     spurious: float = 0.2,
     missed: float = 0.15,
+    n_detections: int | None = None,
 ) -> Night:
     """Build a night at ``latitude`` seen by a mis-set camera.
 
@@ -120,6 +121,9 @@ def make_night(
     spurious, missed : float
         Fractions of detections without a reference star and of reference
         stars without a detection.
+    n_detections : int or None
+        Total detections (spurious ones make up the number); overrides
+        ``spurious``.
     """
     rng = np.random.default_rng(seed)
     site = Site(latitude=latitude, longitude=-70.5, height=1200.0, name="test site")
@@ -168,7 +172,7 @@ def make_night(
     star = np.flatnonzero(seen)
     x_det = x_det[star] + rng.normal(0.0, sigma, star.size)
     y_det = y_det[star] + rng.normal(0.0, sigma, star.size)
-    n_fake = int(spurious * star.size)
+    n_fake = int(spurious * star.size) if n_detections is None else n_detections - star.size
     x_fake = rng.uniform(n, n_rows - 2, n_fake)
     y_fake = rng.uniform(0.0, frame.n_y - 1.0, n_fake)
     order = rng.permutation(star.size + n_fake)

@@ -312,7 +312,11 @@ def fit_geometry(
             rw = res[keep] * weight[keep]
             norm = np.sqrt((jw**2).sum(0))
             norm[norm == 0] = 1.0
-            delta = np.linalg.lstsq(jw / norm, rw, rcond=None)[0] / norm
+            jn = jw / norm
+            # normal equations (columns normalised); lstsq on the small matrix
+            # copes with a rank-deficient one (e.g. a knot interval without stars)
+            normal = jn.T @ jn
+            delta = np.linalg.lstsq(normal, jn.T @ rw, rcond=1e-13)[0] / norm
             values = values + delta[: len(names)]
             offsets = dataclasses.replace(offsets, **dict(zip(names, values, strict=True)))
             if spline_q is not None:
@@ -334,8 +338,7 @@ def fit_geometry(
         n_keep = int(new_used.sum())
         dof = max(2 * n_keep - jw.shape[1], 1)
         chi2 = float((radius[new_used] ** 2).sum() / dof)
-        normal = (jw / norm).T @ (jw / norm)
-        full_cov = np.linalg.pinv(normal) / np.outer(norm, norm) * chi2
+        full_cov = np.linalg.pinv(normal, rcond=1e-13) / np.outer(norm, norm) * chi2
         cov = full_cov[: len(names), : len(names)]
         if np.array_equal(new_used, used):
             break

@@ -15,7 +15,14 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy.spatial import cKDTree
 
-__all__ = ["OffsetPeak", "match_nearest", "offset_peak"]
+__all__ = [
+    "OffsetPeak",
+    "candidate_pairs",
+    "match_nearest",
+    "offset_peak",
+    "peak_count",
+    "scaled_tree",
+]
 
 log = logging.getLogger(__name__)
 
@@ -122,6 +129,34 @@ def scaled_tree(det_row: np.ndarray, det_column: np.ndarray, half_row, half_colu
     return cKDTree(np.column_stack([det_row * (half_column / half_row), det_column]))
 
 
+def _peak_bins(d_row, d_column, half_row, half_column, bin_size):
+    """Bin indices, in-box mask, 3 x 3 box counts and the peak's bin of pair offsets."""
+    n_r = int(np.ceil(2 * half_row / bin_size)) + 1
+    n_c = int(np.ceil(2 * half_column / bin_size)) + 1
+    i = ((d_row + half_row) * (1.0 / bin_size)).astype(np.intp)
+    j = ((d_column + half_column) * (1.0 / bin_size)).astype(np.intp)
+    ok = (
+        (i >= 0)
+        & (i < n_r)
+        & (j >= 0)
+        & (j < n_c)
+        & (d_row > -half_row)
+        & (d_column > -half_column)
+    )
+    hist = np.bincount(i[ok] * n_c + j[ok], minlength=n_r * n_c).reshape(n_r, n_c)
+    padded = np.pad(hist, 1)
+    box = sum(
+        padded[1 + a : 1 + a + n_r, 1 + b : 1 + b + n_c] for a in (-1, 0, 1) for b in (-1, 0, 1)
+    )
+    k = int(np.argmax(box))
+    return i, j, ok, hist, int(box.flat[k]), divmod(k, n_c)
+
+
+def peak_count(d_row, d_column, half_row: float, half_column: float, bin_size: float) -> int:
+    """Pairs in the 3 x 3 bins of the strongest peak (see :func:`offset_peak`)."""
+    return _peak_bins(d_row, d_column, half_row, half_column, bin_size)[4]
+
+
 def offset_peak(
     d_row: np.ndarray,
     d_column: np.ndarray,
@@ -146,23 +181,12 @@ def offset_peak(
         Bin width, pixels; about the largest spread of the true pairs'
         offsets left by the parameters not being scanned.
     """
-    n_r = int(np.ceil(2 * half_row / bin_size)) + 1
-    n_c = int(np.ceil(2 * half_column / bin_size)) + 1
-    i = np.floor((d_row + half_row) / bin_size).astype(np.intp)
-    j = np.floor((d_column + half_column) / bin_size).astype(np.intp)
-    ok = (i >= 0) & (i < n_r) & (j >= 0) & (j < n_c)
-    hist = np.bincount(i[ok] * n_c + j[ok], minlength=n_r * n_c).reshape(n_r, n_c)
-    padded = np.pad(hist, 1)
-    box = sum(
-        padded[1 + a : 1 + a + n_r, 1 + b : 1 + b + n_c] for a in (-1, 0, 1) for b in (-1, 0, 1)
-    )
-    k = int(np.argmax(box))
-    pi, pj = divmod(k, n_c)
+    i, j, ok, hist, count, (pi, pj) = _peak_bins(d_row, d_column, half_row, half_column, bin_size)
     # centroid of the pairs in the peak's 3 x 3 bins
     near = ok & (np.abs(i - pi) <= 1) & (np.abs(j - pj) <= 1)
     return OffsetPeak(
         d_row=float(np.median(d_row[near])),
         d_column=float(np.median(d_column[near])),
-        count=int(box.flat[k]),
+        count=count,
         background=9.0 * ok.sum() / hist.size,
     )

@@ -27,6 +27,7 @@ from pipeline.stages.astrometry._match import (
     candidate_pairs,
     match_nearest,
     offset_peak,
+    peak_count,
     scaled_tree,
 )
 from pipeline.stages.astrometry._model import GeometryOffsets, GeometryPredictor, SkyTracks
@@ -75,6 +76,7 @@ def search_geometry(
     det_row: np.ndarray,
     det_column: np.ndarray,
     ranges: SearchRanges = SearchRanges(),
+    max_stars: int = 3000,
 ):
     """Find the geometry by a grid over focal length and rotation and offset histograms.
 
@@ -82,7 +84,8 @@ def search_geometry(
     north tilt a shift across it: for each trial focal length and rotation
     those come out as the peak of the 2-D histogram of detection-minus-
     prediction offsets of all pairs within the search box, so only the two
-    scale-like parameters need a grid.  Their effect is applied linearly
+    scale-like parameters need a grid.  At most ``max_stars`` reference
+    stars (spread along the night) take part.  Their effect is applied linearly
     (finite-difference derivatives of the predictor), good to a fraction of a
     bin over the ranges.
 
@@ -93,6 +96,12 @@ def search_geometry(
     peak : OffsetPeak
         The winning histogram peak (its count and chance background).
     """
+    if len(ref_tracks) > max_stars:
+        # a spread-out subset is plenty to find the peak, at a fraction of the pairs
+        pick = np.linspace(0, len(ref_tracks) - 1, max_stars).astype(np.intp)
+        ref_tracks = SkyTracks(
+            ref_tracks.t_centre[pick], ref_tracks.half_width, ref_tracks.coef[:, :, pick]
+        )
     base_offsets = GeometryOffsets()
     pred = predictor.predict(ref_tracks, base_offsets)
     row0 = pred.rows(predictor.n_rows, predictor.line_time)
@@ -138,19 +147,22 @@ def search_geometry(
     # small to tell trials apart the nominal one wins the ties
     focal_grid = _outward(ranges.focal_scale, focal_step)
     rot_grid = _outward(rot_arcsec, rot_step)
-    best = None
+    best = (-1, 0.0, 0.0)
     fr, fc = d_focal[0][ri], d_focal[1][ri]
     rr, rc = d_rot[0][ri], d_rot[1][ri]
     for f in focal_grid:
         base_r = dr0 - f * fr
         base_c = dc0 - f * fc
         for a in rot_grid:
-            peak = offset_peak(
+            count = peak_count(
                 base_r - a * rr, base_c - a * rc, half_row, half_col, ranges.bin_size
             )
-            if best is None or peak.count > best[0].count:
-                best = (peak, f, a)
-    peak, f, a = best
+            if count > best[0]:
+                best = (count, f, a)
+    _, f, a = best
+    peak = offset_peak(
+        dr0 - f * fr - a * rr, dc0 - f * fc - a * rc, half_row, half_col, ranges.bin_size
+    )
     north_c = np.nanmedian(d_north[1])
     north_r = np.nanmedian(d_north[0])
     tilt_north = peak.d_column / north_c
