@@ -248,6 +248,13 @@ def test_solved_positions_reach_the_noise(solved_night):
     # ~70 stars at 10 mas noise has a 1.2 mas standard error)
     assert np.nanmax(np.abs(grid["mean_along"])) < 5.0
     assert np.nanmax(np.abs(grid["mean_across"])) < 5.0
+    # the stated errors describe the scatter (pulls of rms 1; 0.9-1.2 allows
+    # for the few-percent sampling error of ~2000 stars and the model part)
+    ra_err, dec_err = solution.position_errors(
+        night.x[real], night.y[real], np.full(real.sum(), night.sigma), night.sigma
+    )
+    assert 0.9 < np.sqrt(np.mean((d_ra / (ra_err * 1000.0)) ** 2)) < 1.2
+    assert 0.9 < np.sqrt(np.mean((d_dec / (dec_err * 1000.0)) ** 2)) < 1.2
     # and the solution's own grid of residuals against the catalogue
     own = solution.residual_grid()
     assert len(own) == 32

@@ -54,7 +54,7 @@ from pipeline.stages.astrometry._model import (
     SkyTracks,
 )
 
-__all__ = ["FIT_PARAMETERS", "GeometryFit", "WanderSpline", "fit_geometry"]
+__all__ = ["FIT_PARAMETERS", "GeometryFit", "WanderSpline", "fit_geometry", "parameter_jacobian"]
 
 log = logging.getLogger(__name__)
 
@@ -91,11 +91,26 @@ class WanderSpline:
         Full knot vector (cubic), seconds since ``start``.
     coef_row, coef_column : ndarray
         B-spline coefficients, pixels along and across the scan.
+    reduce_row, reduce_column : ndarray or None
+        Maps from the fitted coefficients (free of the constant and trend the
+        physical model owns) to ``coef_row`` and ``coef_column``.
     """
 
     knots: np.ndarray
     coef_row: np.ndarray
     coef_column: np.ndarray
+    reduce_row: np.ndarray | None = None
+    reduce_column: np.ndarray | None = None
+
+    def reduced_basis(self, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Derivatives of the offsets at ``t`` by the fitted (constrained) coefficients.
+
+        Returns ``(d_row / d a, d_column / d b)``, shapes ``(n, n_a)`` and
+        ``(n, n_b)``; ``a`` and ``b`` follow the physical parameters in
+        :attr:`GeometryFit.full_covariance`.
+        """
+        basis = _design(self.knots, np.asarray(t, float))
+        return basis @ self.reduce_row, basis @ self.reduce_column
 
     def __call__(self, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Offsets ``(d_row, d_column)`` at times ``t`` (held constant beyond the ends)."""
@@ -129,8 +144,9 @@ class GeometryFit:
         Fitted parameters, the order of ``values`` and ``covariance``.
     values : ndarray
         Fitted values in the units of :class:`GeometryOffsets`.
-    covariance : ndarray, shape (n_par, n_par)
-        Covariance of ``values``, scaled by the reduced chi-square.
+    full_covariance : ndarray, shape (n_par + n_a + n_b, n_par + n_a + n_b)
+        Covariance of ``values`` and the wander's fitted coefficients (see
+        :meth:`WanderSpline.reduced_basis`), scaled by the reduced chi-square.
     wander : WanderSpline or None
         The smooth correction, None if not fitted.
     ref_index, det_index : ndarray of int
@@ -148,7 +164,7 @@ class GeometryFit:
     offsets: GeometryOffsets
     names: tuple[str, ...]
     values: np.ndarray
-    covariance: np.ndarray
+    full_covariance: np.ndarray
     wander: WanderSpline | None
     ref_index: np.ndarray
     det_index: np.ndarray
@@ -157,6 +173,12 @@ class GeometryFit:
     residual_column: np.ndarray
     t_mid: np.ndarray
     chi2_reduced: float
+
+    @property
+    def covariance(self) -> np.ndarray:
+        """Covariance of ``values`` (the physical parameters), shape (n_par, n_par)."""
+        n = len(self.names)
+        return self.full_covariance[:n, :n]
 
     @property
     def errors(self) -> dict[str, float]:
@@ -184,8 +206,14 @@ def _model(predictor: GeometryPredictor, tracks: SkyTracks, offsets: GeometryOff
     return pred, pred.rows(predictor.n_rows, dt, offsets.clock_offset), pred.column
 
 
-def _jacobian(predictor, tracks, offsets, names, pred, row, column):
-    """d(row, column)/d(parameter) for each name; shape (2 n, n_par)."""
+def parameter_jacobian(predictor, tracks, offsets, names, pred, row, column):
+    """Derivatives of strip positions by the named parameters; shape (2 n, n_par).
+
+    ``pred``, ``row`` and ``column`` are the prediction at ``offsets``; the
+    clock offset and line time are differentiated analytically, the others
+    by forward differences of the predictor (steps ``_STEPS``).  Rows of the
+    result are the ``n`` rows, then the ``n`` columns.
+    """
     dt0 = predictor.line_time
     cols = []
     for name in names:
@@ -289,14 +317,14 @@ def fit_geometry(
         return basis @ (q_row @ a), basis @ (q_col @ b)
 
     values = np.array([getattr(offsets, nm) for nm in names], float)
-    cov = np.full((len(names), len(names)), np.nan)
+    full_cov = np.full((len(names), len(names)), np.nan)
     chi2 = np.nan
     for _round in range(6):
         for _ in range(max_iterations):
             pred, row, column = _model(predictor, tracks, offsets)
             w_r, w_c = wander_part()
             res = obs - np.r_[row + w_r, column + w_c]
-            jac = _jacobian(predictor, tracks, offsets, names, pred, row, column)
+            jac = parameter_jacobian(predictor, tracks, offsets, names, pred, row, column)
             if spline_q is not None:
                 _, basis, q_row, q_col = spline_q
                 br, bc = basis @ q_row, basis @ q_col
@@ -339,14 +367,19 @@ def fit_geometry(
         dof = max(2 * n_keep - jw.shape[1], 1)
         chi2 = float((radius[new_used] ** 2).sum() / dof)
         full_cov = np.linalg.pinv(normal, rcond=1e-13) / np.outer(norm, norm) * chi2
-        cov = full_cov[: len(names), : len(names)]
         if np.array_equal(new_used, used):
             break
         used = new_used
     wander = None
     if spline_q is not None:
         knots, _, q_row, q_col = spline_q
-        wander = WanderSpline(knots=knots, coef_row=q_row @ a, coef_column=q_col @ b)
+        wander = WanderSpline(
+            knots=knots,
+            coef_row=q_row @ a,
+            coef_column=q_col @ b,
+            reduce_row=q_row,
+            reduce_column=q_col,
+        )
     log.info(
         "geometry fit: %d of %d pairs kept, reduced chi2 %.3f, %s",
         int(used.sum()),
@@ -358,7 +391,7 @@ def fit_geometry(
         offsets=offsets,
         names=names,
         values=values,
-        covariance=cov,
+        full_covariance=full_cov,
         wander=wander,
         ref_index=ref_index,
         det_index=det_index,

@@ -22,7 +22,12 @@ from pipeline.geometry.optics import (
 )
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import TDIModel
-from pipeline.stages.astrometry._fit import FIT_PARAMETERS, GeometryFit, fit_geometry
+from pipeline.stages.astrometry._fit import (
+    FIT_PARAMETERS,
+    GeometryFit,
+    fit_geometry,
+    parameter_jacobian,
+)
 from pipeline.stages.astrometry._match import (
     candidate_pairs,
     match_nearest,
@@ -222,7 +227,7 @@ def solve_night(
     x_err: ArrayLike | None = None,
     y_err: ArrayLike | None = None,
     match_radius: float = 3.0,
-    knot_spacing: float | None = 300.0,
+    knot_spacing: float | None = 120.0,
     parameters: tuple[str, ...] = FIT_PARAMETERS,
     min_matches: int = 20,
     good_fraction: float = 0.3,
@@ -535,6 +540,52 @@ class AstrometricSolution:
         tr, tc = self._nominal_strip_of_rectified(x, y)
         xs, ys = self._invert(tr, tc, x, y, self._solved_strip_of_rectified)
         return self.frame.icrs_from_pixel(xs, ys)
+
+    def position_errors(
+        self, x: ArrayLike, y: ArrayLike, x_err: ArrayLike, y_err: ArrayLike
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """1-sigma errors of solved sky positions along RA and Dec, arcseconds.
+
+        The centroid errors and the solution's own uncertainty (the fitted
+        parameters' and wander's covariance carried to each position) added
+        in quadrature.
+
+        Parameters
+        ----------
+        x, y : array_like, shape (n,)
+            Night rectified pixels of the detections.
+        x_err, y_err : array_like, shape (n,)
+            Their 1-sigma errors, pixels.
+
+        Returns
+        -------
+        ra_err, dec_err : ndarray
+            Arcseconds on the sky (``ra_err`` along the RA direction).
+        """
+        x = np.asarray(x, dtype=float).ravel()
+        y = np.asarray(y, dtype=float).ravel()
+        fit = self.fit
+        tracks = self.predictor.tracks_from_rectified(self.frame, x, y)
+        pred = self.predictor.predict(tracks, self.offsets)
+        row = pred.rows(self.model.n_rows, self.line_time, self.offsets.clock_offset)
+        jac = parameter_jacobian(
+            self.predictor, tracks, self.offsets, fit.names, pred, row, pred.column
+        )
+        n = x.size
+        g_row, g_col = jac[:n], jac[n:]
+        if fit.wander is not None:
+            b_row, b_col = fit.wander.reduced_basis(pred.t_mid)
+            g_row = np.column_stack([g_row, b_row, np.zeros((n, b_col.shape[1]))])
+            g_col = np.column_stack([g_col, np.zeros((n, b_row.shape[1])), b_col])
+        cov = fit.full_covariance
+        var_row = np.einsum("ij,jk,ik->i", g_row, cov, g_row)
+        var_col = np.einsum("ij,jk,ik->i", g_col, cov, g_col)
+        _, dec = self.frame.icrs_from_pixel(x, y)
+        along = self.frame.cdelt1 * 3600.0 * np.cos(np.radians(dec))
+        across = self.frame.cdelt2 * 3600.0
+        ra_err = along * np.sqrt(np.asarray(x_err, float) ** 2 + var_row)
+        dec_err = across * np.sqrt(np.asarray(y_err, float) ** 2 + var_col)
+        return ra_err, dec_err
 
     def predict_rectified(self, ra: ArrayLike, dec: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
         """Night rectified ``(x, y)`` at which stars are recorded in the solved geometry."""
