@@ -14,18 +14,22 @@ import dataclasses
 
 import numpy as np
 import pytest
+from astropy import units as u
+from astropy.table import QTable
 from astropy.time import TimeDelta
 
 from pipeline.exceptions import AstrometryError
 from pipeline.geometry import Camera, Site, TDIModel
 from pipeline.geometry.optics import ARCSEC_PER_RADIAN, EARTH_ROTATION_RATE
 from pipeline.stages.astrometry import (
+    AstrometryOptions,
     GeometryOffsets,
     GeometryPredictor,
     east_tilt_equivalent,
     match_nearest,
     offset_peak,
     residual_grid,
+    solve_catalog,
     solve_night,
 )
 from tests._astrometry_scene import ISSUE_OFFSETS, Wander, make_night
@@ -318,3 +322,46 @@ def test_too_few_matches_fail_with_counts():
     with pytest.raises(AstrometryError, match="does not cover the night's band") as info:
         solve_night(night.x, night.y, night.ref_ra, night.ref_dec - 5.0, night.nominal, night.frame)
     assert info.value.counts["reference_in_band"] == 0
+
+
+def test_solve_catalog_tables(solved_night):
+    """The table layer: detect-like catalogue in, solved columns with units out."""
+    night, _ = solved_night
+    n = night.x.size
+    catalog = QTable(
+        {
+            "x": night.x * u.pix,
+            "y": night.y * u.pix,
+            "x_err": np.full(n, night.sigma) * u.pix,
+            "y_err": np.full(n, night.sigma) * u.pix,
+            # every tenth detection too faint to enter the fit (but solved)
+            "snr": np.where(np.arange(n) % 10 == 0, 3.0, 100.0),
+        }
+    )
+    solved = solve_catalog(
+        catalog,
+        night.ref_ra * u.deg,
+        night.ref_dec * u.deg,
+        night.nominal,
+        night.frame,
+        AstrometryOptions(knot_spacing=120.0, min_snr=5.0),
+    )
+    out = solved.catalog
+    assert out["ra"].unit == u.deg and out["ra_err"].unit == u.arcsec
+    real = night.star >= 0
+    matched = out["ref_index"] >= 0
+    # matched detections point at their own star (spurious ones at none)
+    assert np.all(night.star[matched] == out["ref_index"][matched])
+    assert matched.sum() > 0.8 * real.sum()
+    assert not matched[::10].any()
+    d_dec = (out["dec"][real].to_value(u.deg) - night.ref_dec[night.star[real]]) * 3.6e6
+    assert np.sqrt(np.mean(d_dec**2)) < 1.2 * night.sigma * night.frame.cdelt2 * 3.6e6
+    table = solved.parameters
+    assert list(table["name"]) == list(solved.solution.fit.names)
+    assert np.shape(table.meta["covariance"]) == (6, 6)
+    assert "east tilt" in table.meta["east_tilt_note"]
+    assert len(solved.grid) == 32
+    with pytest.raises(ValueError, match="lacks columns"):
+        solve_catalog(catalog[["x", "y"]], night.ref_ra, night.ref_dec, night.nominal, night.frame)
+    with pytest.raises(ValueError, match="extra"):
+        AstrometryOptions(match_radiu=3.0)

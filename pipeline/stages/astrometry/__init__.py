@@ -18,6 +18,9 @@ night.
   :class:`AstrometricSolution` (solved sky positions, predictions, grid
   statistics, implied focal length and matched line time).
 * :mod:`~pipeline.stages.astrometry._stats`: :func:`residual_grid`.
+* :mod:`~pipeline.stages.astrometry._catalog`: :func:`solve_catalog`, the
+  table layer (detect's catalogue in, solved catalogue and parameter table
+  out) with its :class:`AstrometryOptions`.
 
 Coordinates: detections come as night rectified pixels ``(x, y)`` (``x``
 along the scan) of the rectify stage's :class:`~pipeline.geometry.rectified.RectifiedFrame`;
@@ -26,6 +29,7 @@ geometry, where rectify took the pixel from, so matching and fitting never
 invert the map.
 """
 
+from pipeline.stages.astrometry._catalog import AstrometryOptions, SolvedCatalog, solve_catalog
 from pipeline.stages.astrometry._fit import FIT_PARAMETERS, GeometryFit, WanderSpline, fit_geometry
 from pipeline.stages.astrometry._match import OffsetPeak, match_nearest, offset_peak
 from pipeline.stages.astrometry._model import (
@@ -47,6 +51,7 @@ from pipeline.stages.astrometry._stats import residual_grid
 __all__ = [
     "FIT_PARAMETERS",
     "AstrometricSolution",
+    "AstrometryOptions",
     "GeometryFit",
     "GeometryOffsets",
     "GeometryPredictor",
@@ -54,6 +59,7 @@ __all__ = [
     "PredictedCentroids",
     "SearchRanges",
     "SkyTracks",
+    "SolvedCatalog",
     "WanderSpline",
     "east_tilt_equivalent",
     "fit_geometry",
@@ -62,5 +68,6 @@ __all__ = [
     "residual_grid",
     "search_geometry",
     "sky_tracks",
+    "solve_catalog",
     "solve_night",
 ]
