@@ -303,6 +303,42 @@ def test_wander_is_followed():
     assert np.sqrt(np.mean((d_dec / noise_dec) ** 2)) < 1.2
 
 
+#: Near the edges of the search ranges: clock -8 s with 50" of east tilt
+#: (together -13 s), focal length 2.5 %, rotation -0.4 deg, 50" north.
+FAR_OFFSETS = GeometryOffsets(
+    clock_offset=-8.0,
+    line_time_scale=-10e-6,
+    focal_scale=0.025,
+    rotation=-1440.0,
+    tilt_east=-50.0,
+    tilt_north=50.0,
+)
+
+
+@pytest.mark.parametrize("latitude", LATITUDES)
+def test_search_finds_a_far_geometry(latitude):
+    """The search brings a geometry near the ends of its ranges within the fit's reach."""
+    night = make_night(
+        latitude,
+        offsets=FAR_OFFSETS,
+        n_stars=1500,
+        sigma=0.02,
+        n_columns=1024,
+        focal_length=4.0,
+        duration=1200.0,
+    )
+    solution = _solve(night)
+    assert solution.counts["matched_nominal"] < 50  # the configured geometry fails
+    fit, truth = solution.offsets, FAR_OFFSETS
+    clock, rotation = east_tilt_equivalent(night.nominal, truth.tilt_east)
+    # the issue's tolerances, except along the scan: 50" of east tilt leaves
+    # second-order terms of the clock equivalence of ~0.02 px (0.05 px allowed)
+    assert abs(fit.clock_offset - truth.clock_offset - clock) / night.nominal.line_time < 0.05
+    assert abs(fit.focal_scale - truth.focal_scale) < 2e-4
+    assert abs(fit.rotation - truth.rotation - rotation) < 2.0
+    assert abs(fit.tilt_north - truth.tilt_north) < 0.05
+
+
 def test_too_few_matches_fail_with_counts():
     night = make_night(50.0, n_stars=300, seed=7)
     keep = np.flatnonzero(night.star >= 0)[:8]
