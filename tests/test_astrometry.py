@@ -321,11 +321,11 @@ def test_search_finds_a_far_geometry(latitude):
     night = make_night(
         latitude,
         offsets=FAR_OFFSETS,
-        n_stars=1500,
+        n_stars=200,
         sigma=0.02,
-        n_columns=1024,
-        focal_length=4.0,
-        duration=1200.0,
+        n_columns=4096,
+        focal_length=8.84,
+        duration=900.0,
     )
     solution = _solve(night)
     assert solution.counts["matched_nominal"] < 50  # the configured geometry fails
