@@ -17,6 +17,7 @@ import pytest
 from astropy import units as u
 from astropy.table import QTable
 from astropy.time import TimeDelta
+from astropy.wcs import WCS
 
 from pipeline.exceptions import AstrometryError
 from pipeline.geometry import Camera, Site, TDIModel
@@ -31,6 +32,7 @@ from pipeline.stages.astrometry import (
     residual_grid,
     solve_catalog,
     solve_night,
+    solved_wcs,
 )
 from tests._astrometry_scene import ISSUE_OFFSETS, Wander, make_night
 
@@ -273,6 +275,23 @@ def test_round_trip_prediction_and_inverse(solved_night):
     # 0.1 mas: the inverse's Newton steps stop at 1e-6 px
     assert np.max(np.abs(ra2 - ra) * np.cos(np.radians(dec))) * 3.6e6 < 0.1
     assert np.max(np.abs(dec2 - dec)) * 3.6e6 < 0.1
+
+
+def test_solved_wcs_reproduces_the_solution(solved_night):
+    """A product's TAN-SIP WCS agrees with the solved geometry to <= 0.02 px (the issue)."""
+    night, solution = solved_night
+    wcs, max_error = solved_wcs(solution, 3000, 1024)
+    # 0.02 px: the issue's bound (measured 0.005 px with SIP degree 3)
+    assert max_error < 0.02
+    # through a FITS header and astropy.wcs, at an arbitrary pixel
+    pixel_mas = night.frame.cdelt2 * 3.6e6
+    again = WCS(wcs.to_header(relax=True))
+    ra, dec = solution.sky_from_rectified(np.array([3000 + 517.3]), np.array([211.7]))
+    sky = again.pixel_to_world(517.3, 211.7)
+    assert abs(sky.ra.deg - ra[0]) * np.cos(np.radians(dec[0])) * 3.6e6 < 0.02 * pixel_mas
+    assert abs(sky.dec.deg - dec[0]) * 3.6e6 < 0.02 * pixel_mas
+    with pytest.raises(ValueError, match="n_x must be"):
+        solved_wcs(solution, 0, 1)
 
 
 def test_wander_is_followed():

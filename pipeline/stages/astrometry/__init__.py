@@ -18,6 +18,8 @@ night.
   :class:`AstrometricSolution` (solved sky positions, predictions, grid
   statistics, implied focal length and matched line time).
 * :mod:`~pipeline.stages.astrometry._stats`: :func:`residual_grid`.
+* :mod:`~pipeline.stages.astrometry._wcs`: :func:`solved_wcs`, a TAN-SIP
+  WCS per product that reproduces the solution (0.005 px on the test chip).
 * :mod:`~pipeline.stages.astrometry._catalog`: :func:`solve_catalog`, the
   table layer (detect's catalogue in, solved catalogue and parameter table
   out) with its :class:`AstrometryOptions`.
@@ -47,6 +49,7 @@ from pipeline.stages.astrometry._solve import (
     solve_night,
 )
 from pipeline.stages.astrometry._stats import residual_grid
+from pipeline.stages.astrometry._wcs import solved_wcs
 
 __all__ = [
     "FIT_PARAMETERS",
@@ -70,4 +73,5 @@ __all__ = [
     "sky_tracks",
     "solve_catalog",
     "solve_night",
+    "solved_wcs",
 ]
