@@ -19,9 +19,12 @@ Degeneracies
   seconds earlier, exactly as a clock that runs that much late, and turns
   the drift direction on the chip by ``tau_E tan phi``, exactly as a camera
   rotation (the local north of the tilted field differs from the ground's by
-  that angle).  The two descriptions agree to 3e-5 px along the scan and 0.002
-  px across it on a 4096-pixel chip at 0.35 arcsec per pixel for 15 arcsec of
-  tilt (``tests/test_astrometry.py``).  The fit therefore holds the east tilt
+  that angle); :func:`~pipeline.stages.astrometry.east_tilt_equivalent`
+  gives both.  The two descriptions
+  agree to 5e-5 px along the scan and 0.002 px across it on a 4096-pixel chip
+  at 0.35 arcsec per pixel for 15 arcsec of tilt at latitude 50 (0.0002 and
+  0.03 px for 60 arcsec: the difference grows as the tilt squared), see
+  ``tests/test_astrometry.py``.  The fit therefore holds the east tilt
   at its configured value and fits ``s_eff = s + tau_E / (omega cos phi)``
   (reported as the clock offset and as the along-scan offset
   ``-s_eff / dt`` in pixels) and ``rotation_eff = rotation + tau_E tan phi``
@@ -280,6 +283,13 @@ def fit_geometry(
     Returns
     -------
     GeometryFit
+
+    Notes
+    -----
+    The east tilt is not fitted: it is degenerate with the clock offset and
+    the rotation (module notes), so the fitted ``clock_offset`` is
+    ``s + tau_E / w`` and the fitted ``rotation`` is
+    ``rotation + tau_E tan(phi)`` for an unknown east tilt ``tau_E``.
     """
     unknown = set(parameters) - set(FIT_PARAMETERS)
     if unknown:
