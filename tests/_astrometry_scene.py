@@ -19,7 +19,13 @@ from dataclasses import dataclass
 import numpy as np
 from astropy.time import Time, TimeDelta
 
-from pipeline.geometry import Camera, Site, TDIModel
+from pipeline.geometry import (
+    Camera,
+    Site,
+    TDIModel,
+    normal_gravity,
+    spin_period_from_focal_length,
+)
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.stages.astrometry import GeometryOffsets
 from pipeline.stages.rectify._map import StripMap, crossing_after
@@ -96,6 +102,7 @@ def make_night(
     spurious: float = 0.2,
     missed: float = 0.15,
     n_detections: int | None = None,
+    spin: bool = False,
 ) -> Night:
     """Build a night at ``latitude`` seen by a mis-set camera.
 
@@ -124,6 +131,9 @@ def make_night(
     n_detections : int or None
         Total detections (spurious ones make up the number); overrides
         ``spurious``.
+    spin : bool
+        Configure the nominal camera by the liquid mirror's spin period
+        (giving ``focal_length``) instead of the focal length.
     """
     rng = np.random.default_rng(seed)
     site = Site(latitude=latitude, longitude=-70.5, height=1200.0, name="test site")
@@ -134,7 +144,15 @@ def make_night(
     true_camera, _ = offsets.apply(base, 1.0)
     matched = TDIModel(site, true_camera, start, duration).matched_line_time
     camera = dataclasses.replace(base, line_time=matched * (1.0 + drift_mismatch))
-    nominal = TDIModel(site, camera, start, duration)
+    configured = camera
+    if spin:
+        gravity = normal_gravity(site.latitude, site.height)
+        configured = dataclasses.replace(
+            camera,
+            focal_length=None,
+            spin_period=float(spin_period_from_focal_length(focal_length, gravity)),
+        )
+    nominal = TDIModel(site, configured, start, duration)
     true_camera, true_dt = offsets.apply(camera, nominal.line_time)
     true = TDIModel(
         site,
