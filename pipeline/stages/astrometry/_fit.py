@@ -15,8 +15,9 @@ mirror wobble and image wander.
 Degeneracies
 ------------
 * **Clock offset and east-west tilt.**  Tilting the axis ``tau_E`` (radians)
-  to the east makes every star cross the chip ``tau_E / (omega cos phi)``
-  seconds earlier, exactly as a clock that runs that much late, and turns
+  to the east makes every star cross the chip ``tau_E / w`` seconds earlier
+  (``w ~ omega cos phi`` the focal plane's drift rate, scaled by refraction
+  and aberration), exactly as a clock that runs that much late, and turns
   the drift direction on the chip by ``tau_E tan phi``, exactly as a camera
   rotation (the local north of the tilted field differs from the ground's by
   that angle); :func:`~pipeline.stages.astrometry.east_tilt_equivalent`
@@ -25,7 +26,7 @@ Degeneracies
   at 0.35 arcsec per pixel for 15 arcsec of tilt at latitude 50 (0.0002 and
   0.03 px for 60 arcsec: the difference grows as the tilt squared), see
   ``tests/test_astrometry.py``.  The fit therefore holds the east tilt
-  at its configured value and fits ``s_eff = s + tau_E / (omega cos phi)``
+  at its configured value and fits ``s_eff = s + tau_E / w``
   (reported as the clock offset and as the along-scan offset
   ``-s_eff / dt`` in pixels) and ``rotation_eff = rotation + tau_E tan phi``
   (reported as the rotation of the rows against the drift).
