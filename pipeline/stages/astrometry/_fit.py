@@ -113,7 +113,7 @@ class WanderSpline:
         ``(n, n_b)``; ``a`` and ``b`` follow the physical parameters in
         :attr:`GeometryFit.full_covariance`.
         """
-        basis = _design(self.knots, np.asarray(t, float))
+        basis = _sparse_design(self.knots, np.asarray(t, float))
         return basis @ self.reduce_row, basis @ self.reduce_column
 
     def __call__(self, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -131,9 +131,39 @@ def _knots(t_lo: float, t_hi: float, spacing: float) -> np.ndarray:
     return np.r_[[t_lo] * 3, inner, [t_hi] * 3]
 
 
-def _design(knots: np.ndarray, t: np.ndarray) -> np.ndarray:
+def _sparse_design(knots: np.ndarray, t: np.ndarray):
+    """Cubic B-spline basis at ``t`` (held at the ends), sparse (n, n_coef)."""
     t = np.clip(t, knots[0], knots[-1])
-    return BSpline.design_matrix(t, knots, 3).toarray()
+    return BSpline.design_matrix(t, knots, 3).tocsr()
+
+
+def _normal_equations(jac, res, w, spline_q):
+    """Normal matrix and right-hand side of the weighted problem.
+
+    ``jac`` (2 n, n_par) holds the physical derivatives, rows then columns;
+    the wander's columns are the sparse B-spline basis times the constraint
+    maps, assembled without forming them densely (the basis has four
+    non-zeros a row).
+    """
+    jw = jac * w[:, None]
+    rw = res * w
+    n_pp = jw.T @ jw
+    r_p = jw.T @ rw
+    if spline_q is None:
+        return n_pp, r_p
+    _, basis, q_row, q_col = spline_q
+    n = basis.shape[0]
+    blocks = []
+    for half, q in ((slice(0, n), q_row), (slice(n, 2 * n), q_col)):
+        bw = basis.multiply(w[half][:, None]).tocsr()
+        n_ss = q.T @ (bw.T @ bw).toarray() @ q
+        n_ps = np.asarray(bw.T @ jw[half]).T @ q
+        r_s = q.T @ np.asarray(bw.T @ rw[half]).ravel()
+        blocks.append((n_ss, n_ps, r_s))
+    (n_aa, n_pa, r_a), (n_bb, n_pb, r_b) = blocks
+    zero = np.zeros((n_aa.shape[0], n_bb.shape[0]))
+    normal = np.block([[n_pp, n_pa, n_pb], [n_pa.T, n_aa, zero], [n_pb.T, zero.T, n_bb]])
+    return normal, np.r_[r_p, r_a, r_b]
 
 
 @dataclass(frozen=True)
@@ -313,10 +343,13 @@ def fit_geometry(
     spline_q = None
     if knot_spacing is not None:
         knots = _knots(float(t_mid[ok].min()) - 1.0, float(t_mid[ok].max()) + 1.0, knot_spacing)
-        basis = _design(knots, t_mid)
+        basis = _sparse_design(knots, t_mid)
         tn = (t_mid - t_mid.mean()) / max(np.ptp(t_mid), 1.0)
-        q_row = null_space(np.vstack([basis[ok].sum(0), (tn[ok, None] * basis[ok]).sum(0)]))
-        q_col = null_space(basis[ok].sum(0)[None, :])
+        kept = basis[np.flatnonzero(ok)]
+        total = np.asarray(kept.sum(axis=0)).ravel()
+        trend = np.asarray(kept.T @ tn[ok]).ravel()
+        q_row = null_space(np.vstack([total, trend]))
+        q_col = null_space(total[None, :])
         spline_q = (knots, basis, q_row, q_col)
         a = np.zeros(q_row.shape[1])
         b = np.zeros(q_col.shape[1])
@@ -336,33 +369,28 @@ def fit_geometry(
             w_r, w_c = wander_part()
             res = obs - np.r_[row + w_r, column + w_c]
             jac = parameter_jacobian(predictor, tracks, offsets, names, pred, row, column)
-            if spline_q is not None:
-                _, basis, q_row, q_col = spline_q
-                br, bc = basis @ q_row, basis @ q_col
-                jac = np.column_stack(
-                    [
-                        jac,
-                        np.r_[br, np.zeros_like(br)],
-                        np.r_[np.zeros_like(bc), bc],
-                    ]
-                )
             keep = np.r_[used, used] & np.isfinite(res) & np.isfinite(jac).all(axis=1)
-            jw = jac[keep] * weight[keep, None]
-            rw = res[keep] * weight[keep]
-            norm = np.sqrt((jw**2).sum(0))
+            w = np.where(keep, weight, 0.0)
+            res = np.where(keep, res, 0.0)
+            jac = np.where(keep[:, None], jac, 0.0)
+            normal, rhs = _normal_equations(jac, res, w, spline_q)
+            norm = np.sqrt(np.diag(normal))
             norm[norm == 0] = 1.0
-            jn = jw / norm
             # normal equations (columns normalised); lstsq on the small matrix
             # copes with a rank-deficient one (e.g. a knot interval without stars)
-            normal = jn.T @ jn
-            delta = np.linalg.lstsq(normal, jn.T @ rw, rcond=1e-13)[0] / norm
+            scaled = normal / np.outer(norm, norm)
+            delta = np.linalg.lstsq(scaled, rhs / norm, rcond=1e-13)[0] / norm
             values = values + delta[: len(names)]
             offsets = dataclasses.replace(offsets, **dict(zip(names, values, strict=True)))
+            step = jac @ delta[: len(names)]
             if spline_q is not None:
-                a = a + delta[len(names) : len(names) + a.size]
-                b = b + delta[len(names) + a.size :]
+                _, basis, q_row, q_col = spline_q
+                d_a = delta[len(names) : len(names) + a.size]
+                d_b = delta[len(names) + a.size :]
+                a, b = a + d_a, b + d_b
+                step = step + np.r_[basis @ (q_row @ d_a), basis @ (q_col @ d_b)]
             # largest change of any position, pixels
-            change = np.abs(jac[keep] @ delta).max() if keep.any() else 0.0
+            change = np.abs(step[keep]).max() if keep.any() else 0.0
             if change < 1e-6:
                 break
         pred, row, column = _model(predictor, tracks, offsets)
@@ -375,9 +403,9 @@ def fit_geometry(
         scale = np.median(radius[used & good]) / np.sqrt(2.0 * np.log(2.0))
         new_used = good & (radius <= clip_sigma * scale)
         n_keep = int(new_used.sum())
-        dof = max(2 * n_keep - jw.shape[1], 1)
+        dof = max(2 * n_keep - normal.shape[0], 1)
         chi2 = float((radius[new_used] ** 2).sum() / dof)
-        full_cov = np.linalg.pinv(normal, rcond=1e-13) / np.outer(norm, norm) * chi2
+        full_cov = np.linalg.pinv(scaled, rcond=1e-13) / np.outer(norm, norm) * chi2
         if np.array_equal(new_used, used):
             break
         used = new_used

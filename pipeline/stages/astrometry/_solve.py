@@ -572,14 +572,19 @@ class AstrometricSolution:
             self.predictor, tracks, self.offsets, fit.names, pred, row, pred.column
         )
         n = x.size
-        g_row, g_col = jac[:n], jac[n:]
-        if fit.wander is not None:
-            b_row, b_col = fit.wander.reduced_basis(pred.t_mid)
-            g_row = np.column_stack([g_row, b_row, np.zeros((n, b_col.shape[1]))])
-            g_col = np.column_stack([g_col, np.zeros((n, b_row.shape[1])), b_col])
         cov = fit.full_covariance
-        var_row = np.einsum("ij,jk,ik->i", g_row, cov, g_row)
-        var_col = np.einsum("ij,jk,ik->i", g_col, cov, g_col)
+        var_row = np.empty(n)
+        var_col = np.empty(n)
+        for lo in range(0, n, 8192):  # chunks keep the wander's basis small
+            sl = slice(lo, lo + 8192)
+            g_row, g_col = jac[:n][sl], jac[n:][sl]
+            if fit.wander is not None:
+                b_row, b_col = fit.wander.reduced_basis(pred.t_mid[sl])
+                m = g_row.shape[0]
+                g_row = np.column_stack([g_row, b_row, np.zeros((m, b_col.shape[1]))])
+                g_col = np.column_stack([g_col, np.zeros((m, b_row.shape[1])), b_col])
+            var_row[sl] = np.einsum("ij,jk,ik->i", g_row, cov, g_row)
+            var_col[sl] = np.einsum("ij,jk,ik->i", g_col, cov, g_col)
         _, dec = self.frame.icrs_from_pixel(x, y)
         along = self.frame.cdelt1 * 3600.0 * np.cos(np.radians(dec))
         across = self.frame.cdelt2 * 3600.0
