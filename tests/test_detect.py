@@ -519,7 +519,8 @@ def test_stage_is_registered_with_strict_options():
     from pipeline.stages import GRAPH
 
     stage = next(s for s in GRAPH if s.name == "detect")
-    assert stage.scope == "night" and stage.requires == ("rectify",)
+    assert stage.scope == "stretch" and stage.requires == ("rectify",)
+    assert stage.neighbours == ("rectify",)
     assert set(DetectOptions.model_fields) <= set(inspect.signature(detect).parameters)
     with pytest.raises(ValidationError):
         DetectOptions(threshold=3.0)

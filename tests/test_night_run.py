@@ -497,9 +497,13 @@ def test_a_line_time_change_mid_night_is_reported_and_stops_rectify(tmp_path, ca
     rectify = [line for line in out.splitlines() if line.startswith("  failed: rectify/")]
     assert rectify and all("the line time changes within the night" in line for line in rectify)
     # Calibrate went on: only rectify needs one line time; what is blocked is
-    # downstream of it (detect, which needs rectified stretches).
+    # downstream of it (detect on every stretch, and the night catalogue).
     blocked = [line for line in out.splitlines() if line.startswith("  blocked: ")]
-    assert ", 1 blocked" in out and blocked[0].startswith("  blocked: detect/night")
+    failed = [line.split(":")[1].split("/")[1] for line in rectify]
+    assert [line.split(":")[1] for line in blocked] == [
+        " catalog/night",
+        *(f" detect/{unit}" for unit in failed),
+    ]
 
 
 def test_rectify_with_a_line_time_that_does_not_match_the_drift(tmp_path, capsys):

@@ -44,6 +44,7 @@ from pipeline.runner._store import (
 from pipeline.runner._unit import InputSpec, UnitTask
 from pipeline.stages.base import (
     BLOCK_INDEX,
+    NEIGHBOURS,
     RAW_FILES,
     RAW_ROWS,
     Stage,
@@ -87,16 +88,21 @@ def unit_id(stretch: Stretch | None) -> str:
     return NIGHT if stretch is None else stretch.id
 
 
-def missing_problems(missing: dict[str, str]) -> list[str]:
+def missing_problems(missing: dict[str, str], what: str = "stretch") -> list[str]:
     """Problem lines for the stretches a ``partial_inputs`` stage ran without.
+
+    ``what`` names them (``'neighbour'`` for a stage with ``neighbours``).
 
     Examples
     --------
     >>> missing_problems({"s0001": "failed in scale", "s0003": "failed in scale"})
     ['ran without stretches s0001, s0003 (failed in scale)']
+    >>> missing_problems({"s0002": "failed in scale"}, "neighbour")
+    ['ran without neighbour s0002 (failed in scale)']
     """
+    plural = "es" if what.endswith("h") else "s"
     return [
-        f"ran without stretch{'es' if len(ids) > 1 else ''} {format_ids(ids)} ({reason})"
+        f"ran without {what}{plural if len(ids) > 1 else ''} {format_ids(ids)} ({reason})"
         for reason, ids in _by_reason(missing).items()
     ]
 
@@ -264,6 +270,35 @@ class NightStore:
             self._missing[stage.name] = missing
         return self._missing[stage.name]
 
+    def neighbour_stretches(self, stretch: Stretch) -> tuple[Stretch | None, Stretch | None]:
+        """The stretches just before and after ``stretch`` in its segment (None: none)."""
+        index = stretch.index
+        before = self.stretches[index - 1] if index > 0 else None
+        after = self.stretches[index + 1] if index + 1 < len(self.stretches) else None
+        return tuple(
+            s if s is not None and s.segment == stretch.segment else None for s in (before, after)
+        )
+
+    def missing_neighbours(self, stage: Stage, stretch: Stretch | None) -> dict[str, str]:
+        """Neighbour stretch id -> why a stage with ``neighbours`` runs without it.
+
+        A neighbour is left out when, in any stage that ``stage`` takes
+        neighbours from, its unit failed, is blocked, is damaged or has no
+        products.  Empty for other stages and for night scope.
+        """
+        missing: dict[str, str] = {}
+        if stretch is None:
+            return missing
+        for neighbour in self.neighbour_stretches(stretch) if stage.neighbours else ():
+            if neighbour is None:
+                continue
+            for name in stage.neighbours:
+                reason = self._unusable(self.stages[name], neighbour)
+                if reason is not None:
+                    missing[neighbour.id] = reason
+                    break
+        return missing
+
     def _unusable(self, stage: Stage, stretch: Stretch) -> str | None:
         """Why a stretch's unit of ``stage`` cannot feed a night-wide stage, or None."""
         if read_failure(self.unit_dir(stage, stretch.id)) is not None:
@@ -383,6 +418,9 @@ class NightStore:
             else:
                 hashes[name] = units[0][1]["output_hash"]
                 specs.append(InputSpec(name, "unit", units=tuple(units)))
+        if stage.neighbours:
+            hashes[NEIGHBOURS], spec = self._neighbour_inputs(stage, stretch)
+            specs.append(spec)
         options = self.config.stage_options(stage.name)
         for name in stage.files:
             path = getattr(options, name)
@@ -395,6 +433,23 @@ class NightStore:
             hashes[name] = file_digest(path)
             specs.append(InputSpec(name, "file", path=path, digest=hashes[name]))
         return hashes, specs, None
+
+    def _neighbour_inputs(self, stage: Stage, stretch: Stretch) -> tuple[str, InputSpec]:
+        """Input hash and spec of the neighbouring stretches' products (None where unusable)."""
+        missing = self.missing_neighbours(stage, stretch)
+        sides = [
+            None if s is None or s.id in missing else s for s in self.neighbour_stretches(stretch)
+        ]
+        digests, pairs = {}, []
+        for name in stage.neighbours:
+            upstream = self.stages[name]
+            units = tuple(
+                None if s is None else (self.unit_dir(upstream, s.id), self.sidecar(upstream, s.id))
+                for s in sides
+            )
+            digests[name] = [None if unit is None else unit[1]["output_hash"] for unit in units]
+            pairs.append((name, units))
+        return hash_json(digests), InputSpec(NEIGHBOURS, "neighbours", neighbours=tuple(pairs))
 
     def no_index_reason(self) -> str:
         maker = self.row_stage.name if self.row_stage else "a stage with defines_rows"
@@ -437,6 +492,13 @@ class NightStore:
                 ups = [None]
             elif stage.scope == "stretch":
                 ups = [stretch]
+                if name in stage.neighbours:  # those left out are problems, not staleness
+                    missing = self.missing_neighbours(stage, stretch)
+                    ups += [
+                        s
+                        for s in self.neighbour_stretches(stretch)
+                        if s is not None and s.id not in missing
+                    ]
             else:  # the stretches left out are reported as problems, not as staleness
                 skipped = self.missing_stretches(stage)
                 ups = [s for s in self.stretches if s.id not in skipped]
@@ -457,12 +519,13 @@ class NightStore:
     ) -> UnitTask:
         unit = unit_id(stretch)
         data = self.config_data(stage, stretch)
-        missing = self.missing_stretches(stage) if stretch is None else {}
-        context = dataclasses.replace(
-            self.context,
-            stretch=stretch,
-            missing_stretches=tuple(s for s in self.stretches if s.id in missing),
-        )
+        if stretch is None:
+            missing, problems = self.missing_stretches(stage), None
+            left_out = tuple(s for s in self.stretches if s.id in missing)
+        else:
+            missing = self.missing_neighbours(stage, stretch)
+            problems, left_out = missing_problems(missing, "neighbour"), ()
+        context = dataclasses.replace(self.context, stretch=stretch, missing_stretches=left_out)
         return UnitTask(
             stage=stage,
             unit=unit,
@@ -475,6 +538,6 @@ class NightStore:
             input_hashes=hashes,
             capture_logs=capture_logs,
             missing_stretches=dict(missing),
-            input_problems=tuple(missing_problems(missing)),
+            input_problems=tuple(missing_problems(missing) if problems is None else problems),
             lock=lock,
         )

@@ -37,6 +37,7 @@ __all__ = [
     "FAILED_NAME",
     "SIDECAR_NAME",
     "LazyProducts",
+    "LazyUnit",
     "atomic_write",
     "check_products",
     "clean_unit",
@@ -354,18 +355,75 @@ def read_products(
     DamagedProductError
         A file cannot be read, or differs from its record; the message names it.
     """
-    products = {}
-    for name, entry in sidecar["products"].items():
-        path = Path(unit_dir) / entry["file"]
-        digest = verify_product(path, entry)
-        try:
-            products[name] = read_product(path, entry)
-        except Exception as exc:  # a file that hashes right but does not parse
-            reason = f"cannot be read ({type(exc).__name__}: {exc})"
-            raise DamagedProductError(path, reason) from exc
-        if read is not None:
-            read[f"{path.parent.parent.name}/{path.parent.name}/{path.name}"] = digest
-    return products
+    return {
+        name: _read_checked(Path(unit_dir) / entry["file"], entry, read)
+        for name, entry in sidecar["products"].items()
+    }
+
+
+def _read_checked(
+    path: Path,
+    entry: Mapping[str, Any],
+    read: dict[str, str] | None,
+    files: contextlib.ExitStack | None = None,
+) -> Any:
+    """One product, checked against its SHA-256 first (see :func:`read_products`).
+
+    With ``files`` given, an HDU list is returned opened lazily (no memmap,
+    ``lazy_load_hdus``): ``hdul[ext].section[...]`` then reads only the part
+    asked for, and ``files`` closes it.
+    """
+    digest = verify_product(path, entry)
+    try:
+        if files is not None and entry["kind"] == "hdulist":
+            value = files.enter_context(fits.open(path, memmap=False, lazy_load_hdus=True))
+        else:
+            value = read_product(path, entry)
+    except Exception as exc:  # a file that hashes right but does not parse
+        reason = f"cannot be read ({type(exc).__name__}: {exc})"
+        raise DamagedProductError(path, reason) from exc
+    if read is not None:
+        read[f"{path.parent.parent.name}/{path.parent.name}/{path.name}"] = digest
+    return value
+
+
+class LazyUnit(Mapping):
+    """One unit's products as a read-only mapping; each product is read when looked up.
+
+    Image products (HDU lists) come opened lazily when ``files`` is given (see
+    :func:`_read_checked`), so a stage can read a few columns of a
+    neighbouring stretch without loading its planes.  Every file is checked
+    against its recorded SHA-256 before use.
+    """
+
+    def __init__(
+        self,
+        unit_dir: Path,
+        sidecar: Mapping[str, Any],
+        read: dict[str, str] | None = None,
+        files: contextlib.ExitStack | None = None,
+    ):
+        self._unit_dir = Path(unit_dir)
+        self._entries = dict(sidecar["products"])
+        self._read = read
+        self._files = files
+        self._loaded: dict[str, Any] = {}
+
+    def __getitem__(self, name: str) -> Any:
+        if name not in self._loaded:
+            entry = self._entries[name]
+            path = self._unit_dir / entry["file"]
+            self._loaded[name] = _read_checked(path, entry, self._read, self._files)
+        return self._loaded[name]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._entries)
+
+    def __len__(self) -> int:
+        return len(self._entries)
+
+    def __repr__(self) -> str:
+        return f"LazyUnit({self._unit_dir}, products={list(self._entries)})"
 
 
 class LazyProducts(Sequence):

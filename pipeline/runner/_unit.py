@@ -33,6 +33,7 @@ from pipeline.runner._lock import check_lock_held
 from pipeline.runner._rawio import check_block_index, read_raw_files, read_rows
 from pipeline.runner._store import (
     LazyProducts,
+    LazyUnit,
     check_products,
     clean_unit,
     hash_json,
@@ -48,13 +49,20 @@ from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, Stage, StageContext
 __all__ = ["InputSpec", "UnitOutcome", "UnitTask", "execute_unit", "failed_outcome"]
 
 
+#: A stored unit: its folder and its provenance sidecar.
+Unit = tuple[Path, Mapping[str, Any]]
+
+
 @dataclass(frozen=True)
 class InputSpec:
     """How a worker obtains one input of a unit.
 
     ``kind`` is ``'unit'`` (one upstream unit: ``units`` has one
     ``(folder, sidecar)``), ``'units'`` (a night-scoped consumer of a
-    stretch-scoped stage: one entry per stretch), ``'raw_files'`` (``names``
+    stretch-scoped stage: one entry per stretch), ``'neighbours'`` (for
+    :data:`~pipeline.stages.base.NEIGHBOURS`: ``neighbours`` holds, per
+    upstream name, the ``(folder, sidecar)`` or None of the stretch before and
+    the one after), ``'raw_files'`` (``names``
     below ``raw_dir``), ``'raw_rows'`` (rows ``[lo, hi)`` via ``index``, each
     block's rows reversed if ``flip_rows``), ``'file'`` (the file ``path`` an
     option names, see ``Stage.files``; ``digest`` is its SHA-256 when the run
@@ -73,11 +81,16 @@ class InputSpec:
     flip_rows: bool = False
     path: Path | None = None
     digest: str | None = None
+    neighbours: tuple[tuple[str, tuple[Unit | None, Unit | None]], ...] = ()
 
-    def load(self, read: dict[str, str] | None = None) -> Any:
+    def load(
+        self, read: dict[str, str] | None = None, files: contextlib.ExitStack | None = None
+    ) -> Any:
         """Read the input from the product store or the raw files.
 
-        ``read`` is filled with the SHA-256 of every product file read.
+        ``read`` is filled with the SHA-256 of every product file read;
+        ``files`` closes the files a lazily read input leaves open (the
+        neighbours' image products).
 
         Raises
         ------
@@ -90,6 +103,11 @@ class InputSpec:
             return read_products(unit_dir, sidecar, read)
         if self.kind == "units":
             return LazyProducts(self.units, read)
+        if self.kind == "neighbours":
+            return {
+                name: tuple(None if unit is None else LazyUnit(*unit, read, files) for unit in pair)
+                for name, pair in self.neighbours
+            }
         if self.kind == "raw_files":
             return read_raw_files(self.raw_dir, self.names)
         if self.kind == "file":
@@ -108,8 +126,9 @@ class UnitTask:
     """Everything a worker needs to run one unit (picklable).
 
     ``missing_stretches`` (stretch id -> reason) are the stretches a
-    ``partial_inputs`` stage runs without; ``input_problems`` are the runner's
-    problem lines about them, recorded before the stage's own problems.
+    ``partial_inputs`` stage runs without, or the neighbouring stretches a
+    stage with ``neighbours`` runs without; ``input_problems`` are the
+    runner's problem lines about them, recorded before the stage's own problems.
     ``lock`` is the run's lock file and the token it holds: the worker writes
     nothing once the lock is no longer the run's (the run died).
     """
@@ -267,9 +286,12 @@ def _execute_unit(task: UnitTask) -> UnitOutcome:
     with _captured_logs(task.capture_logs) as records:
         read: dict[str, str] = {}
         try:
-            with warnings.catch_warnings(record=True) as caught:  # reading warns too
+            with (
+                warnings.catch_warnings(record=True) as caught,  # reading warns too
+                contextlib.ExitStack() as files,
+            ):
                 warnings.simplefilter("always")
-                inputs = {spec.name: spec.load(read) for spec in task.inputs}
+                inputs = {spec.name: spec.load(read, files) for spec in task.inputs}
                 t1 = time.perf_counter()
                 products = task.stage.run(inputs=inputs, options=task.options, context=task.context)
             products, problems = _check_products(task, products)
@@ -303,7 +325,7 @@ def _execute_unit(task: UnitTask) -> UnitOutcome:
                 "warnings": _summarize_warnings(caught),
                 "problems": problems,
             }
-            if task.stage.partial_inputs:
+            if task.stage.partial_inputs or task.stage.neighbours:
                 record["missing_stretches"] = dict(task.missing_stretches)
             _check_lock(task)
             write_sidecar(task.unit_dir, record)

@@ -52,6 +52,7 @@ STAGE_MODULES = (
     "calibrate",
     "rectify",
     "detect",
+    "catalog",
     "astrometry",
     "zeropoint",
     "mosaic",

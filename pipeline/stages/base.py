@@ -22,6 +22,11 @@ The calling convention is::
       entry, with its row ranges).  Normally that is every stretch of the plan;
       a stage declared with ``partial_inputs=True`` gets only the stretches
       whose upstream products are usable (see :class:`Stage`);
+    * :data:`NEIGHBOURS` (stretch scope, for a stage that declares
+      ``neighbours``) -> a ``dict`` from each upstream name in
+      ``stage.neighbours`` to a pair ``(before, after)``: the products of the
+      stretches just before and just after this one in the same segment (see
+      "Neighbouring stretches" below), or None where there is none;
     * :data:`RAW_FILES` (night scope) -> a list of :class:`RawFile`, one per
       raw file of the night, with its header (or the reason it is unreadable)
       and a :class:`PixelSummary` of its pixels (the runner reads every pixel
@@ -74,6 +79,28 @@ gaps belong to no stretch), and assembles :data:`RAW_ROWS` from the index.
 Per-stretch products cover ``[lo, hi)``, margins included, unless the stage
 says otherwise in its docstring; ``context.stretch.core`` selects the
 stretch's own rows.
+
+Neighbouring stretches
+----------------------
+A per-stretch stage whose upstream products tile the night without margins
+(rectify's stretches adjoin exactly) may still need a little of the
+stretches on either side, to measure what lies across a seam whole.  It
+declares ``Stage(neighbours=("rectify",))``, naming stretch-scoped stages it
+requires.  Besides ``inputs["rectify"]`` (its own stretch) it then gets
+``inputs[NEIGHBOURS]["rectify"] == (before, after)``: the products of the
+stretches ``index - 1`` and ``index + 1`` if they lie in the same segment
+(stretches of different segments never adjoin), else None.  Each is a
+read-only mapping that reads a product only when it is looked up; an image
+product (``HDUList``) comes opened lazily, so ``hdul["FLUX"].section[:, :20]``
+reads only those columns from disk (``.data`` reads the whole plane), and the
+runner closes the files after the stage returns.  A neighbour whose upstream
+unit failed, is blocked or has not run is handed over as None too: the
+stretch still runs (the stage treats that side as having no data), and the
+runner reports ``ran without neighbour s0004 (failed in rectify)`` as a
+problem (``zdrift run`` exits 1).  The neighbours' output hashes (None for
+one left out) enter the unit's input hashes, so a changed neighbour, or a
+missing one that appears, makes the unit stale, and a night in which
+nothing changed reruns nothing.
 """
 
 from __future__ import annotations
@@ -93,6 +120,7 @@ if TYPE_CHECKING:
 __all__ = [
     "BLOCK_INDEX",
     "BLOCK_INDEX_COLUMNS",
+    "NEIGHBOURS",
     "PROBLEMS",
     "RAW_FILES",
     "RAW_ROWS",
@@ -111,6 +139,8 @@ __all__ = [
 RAW_FILES = "raw_files"
 #: Pseudo-input (stretch scope): the stretch's raw rows, margins included.
 RAW_ROWS = "raw_rows"
+#: Input key (stretch scope): the products of the neighbouring stretches.
+NEIGHBOURS = "neighbours"
 #: Reserved key of a stage's return value: one-line problems with its input.
 PROBLEMS = "problems"
 #: Name of the product that defines the night's rows (see module docstring).
@@ -450,6 +480,12 @@ class Stage:
         Which stretches were used enters the input hash, so the unit becomes
         stale when a missing stretch appears.  With the default False, one
         unusable stretch blocks the stage.
+    neighbours : tuple of str
+        For a stretch-scoped stage: stretch-scoped stages in ``requires``
+        whose products of the neighbouring stretches the stage also gets, as
+        ``inputs[NEIGHBOURS][name] == (before, after)`` (see "Neighbouring
+        stretches" in the module docstring).  They enter the unit's input
+        hashes.
     """
 
     name: str
@@ -463,6 +499,7 @@ class Stage:
     description: str = ""
     version: int = 1
     partial_inputs: bool = False
+    neighbours: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         if not self.name.isidentifier() or self.name != self.name.lower():
@@ -480,10 +517,11 @@ class Stage:
             )
         if not callable(self.run):
             raise TypeError(f"Stage {self.name!r}: run must be callable; got {self.run!r}.")
-        if any(isinstance(names, str) for names in (self.requires, self.uses, self.files)):
+        names = (self.requires, self.uses, self.files, self.neighbours)
+        if any(isinstance(group, str) for group in names):
             raise TypeError(
-                f"Stage {self.name!r}: requires, uses and files must be tuples of names, "
-                f"not a single string (write ('x',) not 'x')."
+                f"Stage {self.name!r}: requires, uses, files and neighbours must be tuples "
+                f"of names, not a single string (write ('x',) not 'x')."
             )
         for name in self.files:
             if name not in self.options.model_fields or name in self.requires:
@@ -497,6 +535,17 @@ class Stage:
             raise ValueError(f"Stage {self.name!r}: {RAW_ROWS!r} needs scope='stretch'.")
         if RAW_FILES in self.requires and self.scope != "night":
             raise ValueError(f"Stage {self.name!r}: {RAW_FILES!r} needs scope='night'.")
+        for name in self.neighbours:
+            if name not in self.requires or name in (RAW_FILES, RAW_ROWS):
+                raise ValueError(
+                    f"Stage {self.name!r}: neighbours names {name!r}, which is not an "
+                    "upstream stage in requires; add it to requires or drop it."
+                )
+        if self.neighbours and self.scope != "stretch":
+            raise ValueError(
+                f"Stage {self.name!r}: neighbours needs scope='stretch' (a night-scoped "
+                "stage already gets every stretch)."
+            )
         if self.partial_inputs and self.scope != "night":
             raise ValueError(
                 f"Stage {self.name!r}: partial_inputs needs scope='night' (a per-stretch "
@@ -510,7 +559,7 @@ def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
     Names are unique, every stage requires only earlier stages or the raw
     pseudo-inputs, at most one stage defines the rows, and it comes before
     every stretch-scoped stage; a stage with ``partial_inputs`` requires at
-    least one stretch-scoped stage.
+    least one stretch-scoped stage; ``neighbours`` names stretch-scoped stages.
 
     Returns
     -------
@@ -530,8 +579,8 @@ def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
             raise TypeError(f"graph entries must be Stage objects; got {stage!r}.")
         if stage.name in seen:
             raise ValueError(f"Stage name {stage.name!r} appears twice in the graph.")
-        if stage.name in (RAW_FILES, RAW_ROWS):
-            raise ValueError(f"Stage name {stage.name!r} is reserved for raw inputs.")
+        if stage.name in (RAW_FILES, RAW_ROWS, NEIGHBOURS):
+            raise ValueError(f"Stage name {stage.name!r} is reserved for the runner's inputs.")
         for need in stage.requires:
             if need not in seen and need not in (RAW_FILES, RAW_ROWS):
                 raise ValueError(
@@ -556,5 +605,11 @@ def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
                 f"Stage {stage.name!r} sets partial_inputs but requires no stretch-scoped "
                 "stage; drop partial_inputs or require one."
             )
+        for name in stage.neighbours:
+            if seen[name].scope != "stretch":
+                raise ValueError(
+                    f"Stage {stage.name!r}: neighbours names {name!r}, a night-scoped stage; "
+                    "only stretch-scoped stages have neighbouring stretches."
+                )
         seen[stage.name] = stage
     return graph

@@ -35,7 +35,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from astropy import units as u
-from astropy.table import QTable, Table, vstack
+from astropy.table import QTable, Table
 from astropy.wcs import WCS, FITSFixedWarning
 from astropy.wcs.utils import proj_plane_pixel_scales
 from photutils.segmentation import SourceCatalog
@@ -47,7 +47,7 @@ from scipy.spatial import cKDTree
 from pipeline.exceptions import DetectWarning
 from pipeline.masks import MaskBit, has_bits
 from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSION
-from pipeline.stages.base import PROBLEMS, Stage
+from pipeline.stages.base import NEIGHBOURS, PROBLEMS, Stage
 from pipeline.stages.detect._find import (
     estimate_background,
     filter_denominator,
@@ -63,7 +63,7 @@ from pipeline.stages.detect._measure import (
     single_stars,
 )
 from pipeline.stages.detect._model import KernelGrid, SeeingProfile, fit_stars, model_image
-from pipeline.stages.detect._night import Planes, padded_stretch
+from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
 
 __all__ = [
     "STAGE",
@@ -615,7 +615,12 @@ class _PointGrid:
 # The stage
 
 
-def _planes(products: dict) -> Planes:
+def _night_column(header) -> int:
+    """Night column of a rectified plane's first column (its alternate WCS 'A', NIGHT)."""
+    return round(header["CRVAL1A"] - (header["CRPIX1A"] - 1.0) * header["CDELT1A"])
+
+
+def _planes(products) -> Planes:
     """A rectify stretch product as :class:`Planes`."""
     hdul = products["image"]
     header = hdul[FLUX_EXTENSION].header
@@ -628,10 +633,35 @@ def _planes(products: dict) -> Planes:
         np.asarray(hdul[FLUX_EXTENSION].data, dtype=float),
         np.asarray(hdul[VARIANCE_EXTENSION].data, dtype=float),
         np.asarray(hdul[FLAGS_EXTENSION].data),
-        # The alternate WCS 'A' (NIGHT) gives each pixel's 0-based night column.
-        round(header["CRVAL1A"] - (header["CRPIX1A"] - 1.0) * header["CDELT1A"]),
+        _night_column(header),
         products["smear_kernels"],
         wcs,
+    )
+
+
+def _edge_planes(products, margin: int, last: bool) -> Planes | None:
+    """The first (or ``last``) ``margin`` columns of a neighbouring rectified stretch.
+
+    Reads only those columns of its planes (``section``), so a stretch's
+    unit holds its own planes and two thin edges, whatever the night's length.
+    """
+    if products is None:
+        return None
+    hdul = products["image"]
+    header = hdul[FLUX_EXTENSION].header
+    n_columns = int(header["NAXIS1"])
+    columns = slice(max(n_columns - margin, 0), n_columns) if last else slice(0, margin)
+    planes = [
+        np.asarray(hdul[name].section[:, columns])
+        for name in (FLUX_EXTENSION, VARIANCE_EXTENSION, FLAGS_EXTENSION)
+    ]
+    x_start = _night_column(header) + columns.indices(n_columns)[0]
+    return Planes(
+        planes[0].astype(float),
+        planes[1].astype(float),
+        planes[2],
+        x_start,
+        products["smear_kernels"],
     )
 
 
@@ -647,80 +677,54 @@ def seam_margin(kernels: Table, fwhm: float) -> int:
 
 
 def _run(*, inputs, options: DetectOptions, context) -> dict:
-    stretches = context.input_stretches
-    rectified = inputs["rectify"]
-    settings = options.model_dump()
-    window: dict[int, Planes] = {}
-
-    def planes(i: int) -> Planes | None:
-        if not 0 <= i < len(stretches):
-            return None
-        if i not in window:
-            window[i] = _planes(rectified[i])
-        return window[i]
-
-    products: dict = {}
-    catalogs, seeing, problems = [], [], []
-    for i, stretch in enumerate(stretches):
-        for old in [k for k in window if k < i - 1]:
-            del window[old]  # keep at most three stretches in memory
-        own = planes(i)
-        header = rectified[i]["image"][FLUX_EXTENSION].header
-        margin = seam_margin(own.kernels, options.fwhm_guess)
-        padded, own_columns = padded_stretch(own, planes(i - 1), planes(i + 1), margin)
-        result = detect(
-            padded.image,
-            padded.variance,
-            padded.mask,
-            padded.kernels,
-            wcs=padded.wcs,
-            x_start=padded.x_start,
-            noise_correlation=float(header.get("NOISECOR", 1.0)),
-            deconvolved=bool(header.get("DECONV", False)),
-            own_columns=own_columns,
-            **settings,
-        )
-        catalog = result.catalog
-        catalog["stretch"] = u.Quantity(np.full(len(catalog), stretch.index, np.int32), u.one)
-        catalog["stretch"].info.description = "index of the stretch whose columns hold x"
-        products[f"catalog_{stretch.id}"] = catalog
-        catalogs.append(catalog)
-        rows = result.seeing
-        rows["stretch"] = np.full(len(rows), stretch.index, np.int32)
-        rows["x_start"] = np.full(len(rows), own.x_start) * u.pix
-        rows["x_stop"] = np.full(len(rows), own.x_stop) * u.pix
-        seeing.append(rows)
-        problems += [f"{stretch.id}: {line}" for line in result.problems]
-        log.info("%s: %d sources, seeing FWHM %.2f px", stretch.id, len(catalog), rows["fwhm"][0])
-    night = (
-        vstack(catalogs, metadata_conflicts="silent")
-        if catalogs
-        else _empty_catalog(tuple(options.aperture_radii))
+    stretch = context.stretch
+    products = inputs["rectify"]
+    before, after = inputs[NEIGHBOURS]["rectify"]
+    own = _planes(products)
+    header = products["image"][FLUX_EXTENSION].header
+    margin = seam_margin(own.kernels, options.fwhm_guess)
+    padded, own_columns = padded_stretch(
+        own, _edge_planes(before, margin, True), _edge_planes(after, margin, False), margin
     )
-    night.meta["merge_rule"] = (
-        "each source belongs to the stretch whose own columns hold its first-moment column x; "
-        "seam stars were measured with the neighbour's edge columns"
+    result = detect(
+        padded.image,
+        padded.variance,
+        padded.mask,
+        padded.kernels,
+        wcs=padded.wcs,
+        x_start=padded.x_start,
+        noise_correlation=float(header.get("NOISECOR", 1.0)),
+        deconvolved=bool(header.get("DECONV", False)),
+        own_columns=own_columns,
+        **options.model_dump(),
     )
-    products["catalog"] = night
-    seeing_table = vstack(seeing, metadata_conflicts="silent") if seeing else _seeing_table([])
-    seeing_table["stretch"].unit = u.one if "stretch" in seeing_table.colnames else None
-    products["seeing"] = seeing_table
-    if problems:
-        products[PROBLEMS] = problems
-    return products
+    catalog = result.catalog
+    catalog["stretch"] = u.Quantity(np.full(len(catalog), stretch.index, np.int32), u.one)
+    catalog["stretch"].info.description = "index of the stretch whose columns hold x"
+    catalog.meta["merge_rule"] = MERGE_RULE
+    seeing = result.seeing
+    seeing["stretch"] = u.Quantity(np.full(len(seeing), stretch.index, np.int32), u.one)
+    seeing["x_start"] = np.full(len(seeing), own.x_start) * u.pix
+    seeing["x_stop"] = np.full(len(seeing), own.x_stop) * u.pix
+    log.info("%s: %d sources, seeing FWHM %.2f px", stretch.id, len(catalog), seeing["fwhm"][0])
+    out = {"catalog": catalog, "seeing": seeing}
+    if result.problems:
+        out[PROBLEMS] = list(result.problems)
+    return out
 
 
-#: Declaration of the detect stage for the runner.  Night-scoped, so that each
-#: stretch can be measured with its neighbours' edge columns (rectified
-#: stretches do not overlap); ``partial_inputs`` lets it work on the stretches
-#: that rectified.
+#: Declaration of the detect stage for the runner.  Per stretch, with the
+#: neighbouring rectified stretches' edge columns (rectified stretches adjoin
+#: without overlap), so seam stars are measured whole; the night catalogue is
+#: assembled by the ``catalog`` stage (:mod:`pipeline.stages.catalog`).
 STAGE = Stage(
     name="detect",
     run=_run,
     options=DetectOptions,
     requires=("rectify",),
-    scope="night",
+    scope="stretch",
     uses=(),
-    partial_inputs=True,
+    neighbours=("rectify",),
+    version=2,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

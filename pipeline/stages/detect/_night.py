@@ -8,6 +8,11 @@ fitted first-moment column lies in the stretch's own columns.  The merge
 rule of the night catalogue is therefore simply the concatenation of the
 stretch catalogues: every star belongs to the one stretch whose columns hold
 its first moment, so it appears once.
+
+The runner hands a stretch's unit only the neighbours' edge columns
+(``Stage(neighbours=...)``, :mod:`pipeline.stages.base`), so a unit's memory
+does not grow with the night; a neighbour that failed upstream is replaced by
+no-data columns, and the sources there are flagged ``EDGE``.
 """
 
 from __future__ import annotations
@@ -20,7 +25,14 @@ from astropy.wcs import WCS
 
 from pipeline.masks import MASK_DTYPE, MaskBit
 
-__all__ = ["Planes", "padded_stretch"]
+__all__ = ["MERGE_RULE", "Planes", "padded_stretch"]
+
+#: How the night catalogue lists each source once (stored in the catalogues' meta).
+MERGE_RULE = (
+    "each source belongs to the stretch whose own columns hold its first-moment column x "
+    "(x >= first column - 0.5 and x < last column + 0.5); seam stars were measured with the "
+    "neighbouring stretch's edge columns"
+)
 
 
 @dataclass(frozen=True)
