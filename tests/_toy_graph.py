@@ -5,7 +5,9 @@ stretch) multiplies the raw rows, ``smooth`` (per stretch) box-filters
 ``scale``'s image along the scan axis, and ``total`` (night) adds up the
 stretches.  Everything is small numpy work with results known exactly.
 ``PARTIAL_GRAPH`` is the same with ``total`` declared ``partial_inputs=True``
-(it adds up the stretches that exist).  ``scale``'s option ``fail_on`` lists
+(it adds up the stretches that exist).  ``NEIGHBOUR_GRAPH`` has ``seams``
+(per stretch), which takes its neighbours' ``scale`` products and puts their
+edge rows around its own.  ``scale``'s option ``fail_on`` lists
 stretch indices it fails on (a ValueError).
 
 Fault injection for the resume tests, through the environment (so that it
@@ -32,7 +34,7 @@ from astropy.table import Table
 from pydantic import BaseModel, ConfigDict
 
 from pipeline.products import image_hdulist
-from pipeline.stages.base import BLOCK_INDEX, RAW_FILES, RAW_ROWS, Stage
+from pipeline.stages.base import BLOCK_INDEX, NEIGHBOURS, RAW_FILES, RAW_ROWS, Stage
 
 N_COLUMNS = 6
 
@@ -123,6 +125,31 @@ def add_up(*, inputs, options, context):
     return {"per_stretch": table, "summary": {"total": float(np.sum(sums)), "n": len(sums)}}
 
 
+class SeamOptions(_Options):
+    margin: int = 2
+
+
+def seam_rows(*, inputs, options, context):
+    """The stretch's own rows of ``scale``'s image product with ``margin`` rows of each
+    neighbour's own rows around them (NaN where a neighbour is missing), read with
+    ``section`` so that only those rows of a neighbour are loaded."""
+    stretch, margin = context.stretch, options.margin
+    own = inputs["scale"]["image"]["FLUX"].data[stretch.core]
+    parts = [own]
+    for side, products in zip((-1, 1), inputs[NEIGHBOURS]["scale"], strict=True):
+        part = np.full((margin, own.shape[1]), np.nan, np.float32)
+        if products is not None:
+            core = context.stretches[stretch.index + side].core  # its products cover [lo, hi)
+            rows = (
+                slice(core.stop - margin, core.stop)
+                if side < 0
+                else slice(core.start, core.start + margin)
+            )
+            part = products["image"]["FLUX"].section[rows, :]
+        parts.insert(0 if side < 0 else len(parts), part)
+    return {"image": np.vstack(parts)}
+
+
 GRAPH = (
     Stage("index", build_index, IndexOptions, (RAW_FILES,), "night", (), defines_rows=True),
     Stage("scale", scale_rows, ScaleOptions, (RAW_ROWS,), "stretch", ("camera.n_columns",)),
@@ -130,6 +157,12 @@ GRAPH = (
     Stage("total", add_up, TotalOptions, ("smooth",), "night", ()),
 )
 PARTIAL_GRAPH = (*GRAPH[:3], dataclasses.replace(GRAPH[3], partial_inputs=True))
+#: ``scale`` as an image product, and ``seams``: each stretch with its neighbours' edge rows.
+NEIGHBOUR_GRAPH = (
+    GRAPH[0],
+    dataclasses.replace(GRAPH[1], run=image_rows),
+    Stage("seams", seam_rows, SeamOptions, ("scale",), "stretch", (), neighbours=("scale",)),
+)
 
 
 def write_raw_night(raw_dir: Path, n_blocks: int = 4, rows_per_block: int = 25) -> np.ndarray:

@@ -6,6 +6,7 @@ products are compared for equality, and across executors byte for byte.
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import errno
 import json
@@ -21,6 +22,7 @@ import numpy as np
 import pytest
 from _toy_graph import (
     GRAPH,
+    NEIGHBOUR_GRAPH,
     PARTIAL_GRAPH,
     IndexOptions,
     build_index,
@@ -36,7 +38,13 @@ import pipeline.runner._executors as _executors
 import pipeline.runner._lock as _lock
 import pipeline.runner._store as _store
 from pipeline.config import config_from_mapping
-from pipeline.exceptions import RunLockedError, RunStartError, StaleLockWarning
+from pipeline.exceptions import (
+    DamagedProductError,
+    RunLockedError,
+    RunStartError,
+    StaleLockWarning,
+)
+from pipeline.products import image_hdulist
 from pipeline.runner import (
     LOCK_NAME,
     format_ids,
@@ -51,7 +59,14 @@ from pipeline.runner._night import NightStore
 from pipeline.runner._rawio import read_rows
 from pipeline.runner._store import read_products, read_sidecar, write_products
 from pipeline.runner._unit import execute_unit
-from pipeline.stages.base import RAW_FILES, RAW_ROWS, Stage, check_graph, plan_stretches
+from pipeline.stages.base import (
+    NEIGHBOURS,
+    RAW_FILES,
+    RAW_ROWS,
+    Stage,
+    check_graph,
+    plan_stretches,
+)
 
 TESTS_DIR = Path(__file__).parent
 # The toy night: 4 blocks of 25 rows = 100 rows; stretches of 30 rows with a
@@ -59,15 +74,20 @@ TESTS_DIR = Path(__file__).parent
 N_STRETCHES = 4
 
 
-@pytest.fixture
-def toy(tmp_path: Path):
+def toy_night(tmp_path: Path, graph=GRAPH):
     """A toy night on disk; returns (make_config, night rows as float64)."""
     rows = write_raw_night(tmp_path / "raw")
 
     def make_config(*overrides: str):
-        return config_from_mapping(toy_config_data(tmp_path), overrides, graph=GRAPH)
+        return config_from_mapping(toy_config_data(tmp_path), overrides, graph=graph)
 
     return make_config, rows
+
+
+@pytest.fixture
+def toy(tmp_path: Path):
+    """The toy night with the toy graph: (make_config, night rows as float64)."""
+    return toy_night(tmp_path)
 
 
 def sidecars(config) -> dict[str, dict]:
@@ -130,6 +150,10 @@ def test_stage_declaration_errors() -> None:
         Stage("a", build_index, IndexOptions, requires=(RAW_ROWS,), scope="night")
     with pytest.raises(ValueError, match="partial_inputs needs scope='night'"):
         Stage("a", build_index, IndexOptions, scope="stretch", partial_inputs=True)
+    with pytest.raises(ValueError, match="neighbours names 'scale', which is not an upstream"):
+        Stage("a", build_index, IndexOptions, requires=("index",), neighbours=("scale",))
+    with pytest.raises(ValueError, match="neighbours needs scope='stretch'"):
+        Stage("a", build_index, IndexOptions, ("scale",), "night", neighbours=("scale",))
 
 
 def test_check_graph_errors() -> None:
@@ -144,6 +168,11 @@ def test_check_graph_errors() -> None:
                           partial_inputs=True)  # fmt: skip
     with pytest.raises(ValueError, match="sets partial_inputs but requires no stretch-scoped"):
         check_graph([index, partial_index])
+    edges = Stage("edges", build_index, IndexOptions, ("index",), neighbours=("index",))
+    with pytest.raises(ValueError, match="neighbours names 'index', a night-scoped stage"):
+        check_graph([index, edges])
+    with pytest.raises(ValueError, match="reserved for the runner's inputs"):
+        check_graph([index, Stage(NEIGHBOURS, build_index, IndexOptions, ("index",))])
     assert check_graph(list(GRAPH)) == GRAPH
 
 
@@ -304,7 +333,17 @@ def test_changed_raw_file_makes_only_affected_units_stale(toy, tmp_path: Path) -
     config = make_config()
     run_night(config)
     # block with BLOCKSEQ 3 holds night rows 75..99: stretches 2 (lo 56, hi 94) and 3
-    path = next(p for p in (tmp_path / "raw").iterdir() if p.name.endswith("_3.fits"))
+    edit_raw_block(tmp_path / "raw", 3)
+    status = {s.name: s for s in night_status(config).stages}
+    assert status["index"].units["night"] == ("stale", "inputs changed: raw_files")
+    assert sorted(status["scale"].ids("stale")) == ["s0002", "s0003"]
+    assert status["scale"].units["s0002"][1] == "inputs changed: raw_rows"
+    assert sorted(status["scale"].ids("done")) == ["s0000", "s0001"]
+
+
+def edit_raw_block(raw_dir: Path, sequence: int) -> None:
+    """Add 1 to the first pixel of the raw block with BLOCKSEQ ``sequence``."""
+    path = next(p for p in raw_dir.iterdir() if p.name.endswith(f"_{sequence}.fits"))
     before = path.stat()
     with fits.open(path, mode="update") as hdul:
         hdul[0].data[0, 0] += 1
@@ -314,11 +353,6 @@ def test_changed_raw_file_makes_only_affected_units_stale(toy, tmp_path: Path) -
     # time an edit one second later would leave, rather than relying on the clock.
     assert path.stat().st_size == before.st_size
     os.utime(path, ns=(before.st_atime_ns, before.st_mtime_ns + 1_000_000_000))
-    status = {s.name: s for s in night_status(config).stages}
-    assert status["index"].units["night"] == ("stale", "inputs changed: raw_files")
-    assert sorted(status["scale"].ids("stale")) == ["s0002", "s0003"]
-    assert status["scale"].units["s0002"][1] == "inputs changed: raw_rows"
-    assert sorted(status["scale"].ids("done")) == ["s0000", "s0001"]
 
 
 def test_status_of_a_new_night_and_orphan_stretches(toy) -> None:
@@ -1116,3 +1150,131 @@ def test_a_damaged_stretch_outside_the_selection_is_recomputed(toy, tmp_path) ->
     assert [line.split(":")[0] for line in report.damaged] == ["smooth/s0003"]
     assert not report.problems, report.format()
     assert product_hashes(config) == product_hashes(_reference(tmp_path))
+
+
+# ------------------------------------------------------------ neighbouring stretches
+
+
+@pytest.fixture
+def seams(tmp_path: Path):
+    """The toy night with the ``seams`` stage; returns (make_config, night rows)."""
+    return toy_night(tmp_path, NEIGHBOUR_GRAPH)
+
+
+def expected_seams(rows: np.ndarray, missing: tuple[int, ...] = (), margin: int = 2) -> list:
+    """Each stretch's own rows of the scaled night with ``margin`` rows around them,
+    NaN beyond the night and in the rows of the ``missing`` stretches."""
+    stretches = plan_stretches(len(rows), 30, 4)
+    scaled = rows * 2.0
+    for index in missing:
+        scaled[stretches[index].start : stretches[index].stop] = np.nan
+    found = []
+    for stretch in stretches:
+        night_rows = np.arange(stretch.start - margin, stretch.stop + margin)
+        inside = (night_rows >= 0) & (night_rows < len(rows))
+        part = np.full((night_rows.size, rows.shape[1]), np.nan)
+        part[inside] = scaled[night_rows[inside]]
+        found.append(part)
+    return found
+
+
+def ran(report, stage: str) -> list[str]:
+    return sorted(r.unit for r in report.results if r.stage == stage and r.status == "ran")
+
+
+@pytest.mark.parametrize("executor", ["run.executor=serial", "run.executor=local"])
+def test_a_stage_gets_its_neighbours_edge_rows(seams, executor: str) -> None:
+    make_config, rows = seams
+    config = make_config(executor, "run.workers=2")
+    report = run_night(config)
+    assert report.ok, report.format()
+    for stretch, expected in enumerate(expected_seams(rows)):
+        unit = night_dir(config) / f"seams/s{stretch:04d}"
+        got = read_products(unit, read_sidecar(unit))["image"]
+        np.testing.assert_array_equal(got, expected)  # exact: integers times 2 in float32
+    # The worker recorded the neighbours' files it read.
+    read = read_sidecar(night_dir(config) / "seams/s0001")["read"]
+    assert sorted(read) == [f"scale/s000{i}/image.fits" for i in range(3)]
+    # Nothing changed: nothing reruns.
+    again = run_night(config)
+    assert again.ok and again.count("ran") == 0
+
+
+def test_a_changed_stretch_reruns_its_neighbours_only(seams, tmp_path: Path) -> None:
+    make_config, _ = seams
+    config = make_config()
+    run_night(config)
+    # The block with BLOCKSEQ 0 holds night rows 0..24: only scale's stretch 0
+    # (rows 0..34 with its margin; stretch 1 starts at row 26).
+    edit_raw_block(tmp_path / "raw", 0)
+    status = {s.name: s for s in night_status(config).stages}
+    assert status["seams"].units["s0001"] == ("stale", "upstream scale is stale")
+    assert status["seams"].ids("done") == ["s0002", "s0003"]
+    report = run_night(config)
+    assert ran(report, "scale") == ["s0000"]
+    assert ran(report, "seams") == ["s0000", "s0001"]
+
+
+def test_a_failed_neighbour_leaves_no_data_and_a_problem(seams, monkeypatch) -> None:
+    make_config, rows = seams
+    config = make_config()
+    monkeypatch.setenv("ZDRIFT_TOY_FAIL_ON", "1")  # scale crashes on stretch 1's data
+    report = run_night(config)
+    by_unit = {(r.stage, r.unit): r for r in report.results}
+    assert by_unit[("scale", "s0001")].status == "failed"
+    assert by_unit[("seams", "s0001")].status == "blocked"
+    for unit in ("s0000", "s0002"):
+        assert by_unit[("seams", unit)].status == "ran"
+        assert by_unit[("seams", unit)].problems == (
+            "ran without neighbour s0001 (failed in scale)",
+        )
+    assert not report.ok  # `zdrift run` exits 1
+    expected = expected_seams(rows, missing=(1,))
+    for stretch in (0, 2, 3):
+        unit = night_dir(config) / f"seams/s{stretch:04d}"
+        record = read_sidecar(unit)
+        np.testing.assert_array_equal(read_products(unit, record)["image"], expected[stretch])
+    assert record["missing_stretches"] == {}  # s0003 had all its neighbours
+    # Still broken: up to date, still reported.
+    report = run_night(config)
+    assert report.count("ran") == 0 and len(report.flagged) == 2
+    status = {s.name: s for s in night_status(config).stages}
+    assert status["seams"].units["s0000"] == ("done", "")
+    # Fixed: the neighbour appears, and the stretches beside it are redone.
+    monkeypatch.delenv("ZDRIFT_TOY_FAIL_ON")
+    report = run_night(config)
+    assert report.ok and ran(report, "seams") == ["s0000", "s0001", "s0002"]
+    for stretch, want in enumerate(expected_seams(rows)):
+        unit = night_dir(config) / f"seams/s{stretch:04d}"
+        np.testing.assert_array_equal(read_products(unit, read_sidecar(unit))["image"], want)
+
+
+def test_neighbours_stay_within_a_segment(toy) -> None:
+    make_config, _ = toy
+    night = NightStore(make_config())
+    stretches = plan_stretches(10, 4, 1, [(0, 5), (7, 10)])
+    night.stretches = stretches
+    # (0, 4), (4, 5) | gap | (7, 10): the last stretch has no neighbour before it.
+    assert night.neighbour_stretches(stretches[0]) == (None, stretches[1])
+    assert night.neighbour_stretches(stretches[1]) == (stretches[0], None)
+    assert night.neighbour_stretches(stretches[2]) == (None, None)
+
+
+def test_a_lazy_unit_reads_a_product_only_when_asked(tmp_path: Path) -> None:
+    image = np.arange(12.0, dtype=np.float32).reshape(3, 4)
+    empty = fits.Header()
+    flags = np.zeros(image.shape, np.uint16)
+    product = image_hdulist(image, image, flags, unit="electron", header=empty, metadata=empty)
+    entries = write_products(tmp_path, {"image": product, "n": {"rows": 3}}, {})
+    sidecar = {"products": entries}
+    read: dict[str, str] = {}
+    with contextlib.ExitStack() as files:
+        unit = _store.LazyUnit(tmp_path, sidecar, read, files)
+        assert sorted(unit) == ["image", "n"] and read == {}
+        hdul = unit["image"]
+        np.testing.assert_array_equal(hdul["FLUX"].section[:, 1:3], image[:, 1:3])
+        assert list(read) == [f"{tmp_path.parent.name}/{tmp_path.name}/image.fits"]
+    assert hdul._file.closed  # the runner closes what the stage left open
+    (tmp_path / "n.json").write_text('{"rows": 4}')
+    with pytest.raises(DamagedProductError, match="content changed"):
+        _store.LazyUnit(tmp_path, sidecar)["n"]
