@@ -665,6 +665,12 @@ def _edge_planes(products, margin: int, last: bool) -> Planes | None:
     )
 
 
+def _has_data(planes: Planes) -> bool:
+    """Whether any pixel of a stretch holds data (not flagged as none, finite, variance > 0)."""
+    no_data = has_bits(planes.mask, _NO_DATA) | ~np.isfinite(planes.image)
+    return bool(np.any(~no_data & (planes.variance > 0)))
+
+
 def seam_margin(kernels: Table, fwhm: float) -> int:
     """Columns of each neighbour a stretch needs to measure seam stars whole.
 
@@ -683,9 +689,12 @@ def _run(*, inputs, options: DetectOptions, context) -> dict:
     own = _planes(products)
     header = products["image"][FLUX_EXTENSION].header
     margin = seam_margin(own.kernels, options.fwhm_guess)
-    padded, own_columns = padded_stretch(
-        own, _edge_planes(before, margin, True), _edge_planes(after, margin, False), margin
-    )
+    if _has_data(own):
+        padded, own_columns = padded_stretch(
+            own, _edge_planes(before, margin, True), _edge_planes(after, margin, False), margin
+        )
+    else:  # detect reports it; a neighbour's edge alone would leave too few pixels to measure
+        padded, own_columns = own, None
     result = detect(
         padded.image,
         padded.variance,

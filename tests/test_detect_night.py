@@ -1,0 +1,119 @@
+"""The detect and catalog stages through the runner: per-stretch units with their
+neighbours' edge columns, the night catalogue, bad input and reruns.
+
+Self-consistency tests on an invented scene (tests/_seam_graph.py): a
+stand-in for rectify cuts it into stretches that tile the night's columns.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from _seam_graph import FLUX, GRAPH_WITH_DETECT, STARS_X, seam_night_data
+from test_runner import edit_raw_block
+
+from pipeline.config import config_from_mapping
+from pipeline.runner import night_status, open_product, run_night
+from pipeline.stages.detect import SourceFlag
+
+
+@pytest.fixture
+def seam_night(tmp_path):
+    """``make_config(*overrides)`` for the stand-in night under ``tmp_path``."""
+    data = seam_night_data(tmp_path)
+    return lambda *overrides: config_from_mapping(data, overrides, graph=GRAPH_WITH_DETECT)
+
+
+def _ran(report, stage: str) -> list[str]:
+    return sorted(r.unit for r in report.results if r.stage == stage and r.status == "ran")
+
+
+def _flags(catalog) -> np.ndarray:
+    return catalog["flags"].value.astype(int)
+
+
+def test_seam_stars_are_measured_whole_and_listed_once(seam_night):
+    config = seam_night("run.executor=local", "run.workers=2")
+    report = run_night(config)
+    assert report.ok, report.format()
+    assert _ran(report, "detect") == ["s0000", "s0001", "s0002", "s0003"]
+    catalog = open_product(config, "catalog", "night", "catalog")
+    # Each star once, in the stretch whose own columns hold its x (seams at
+    # x = 199.5 and 399.5).
+    order = np.argsort(catalog["x"].value)
+    np.testing.assert_allclose(
+        catalog["x"].value[order], STARS_X, atol=0.05
+    )  # 10 sigma at S/N ~200
+    assert list(catalog["stretch"].value[order].astype(int)) == [0, 1, 2, 2]
+    # Whole: the seam stars' fluxes are the truth to 2 % (about 4 sigma at S/N ~200, and
+    # far below what losing a side of the star would cost), they used the
+    # neighbour's columns (OVERLAP) and saw no edge.
+    np.testing.assert_allclose(catalog["flux_psf"].value, FLUX, rtol=0.02)
+    seam = np.isin(np.round(catalog["x"].value, 1), [199.2, 399.8])
+    assert seam.sum() == 2
+    assert np.all(_flags(catalog)[seam] & SourceFlag.OVERLAP)
+    assert not np.any(_flags(catalog) & SourceFlag.EDGE)
+    # The stretch catalogues hold the same sources; the empty stretch warned.
+    per_stretch = [len(open_product(config, "detect", i, "catalog")) for i in range(4)]
+    assert per_stretch == [1, 1, 2, 0]
+    warnings = report_warnings(config, "detect", "s0003")
+    assert any("DetectWarning: no source above" in w for w in warnings)
+    seeing = open_product(config, "catalog", "night", "seeing")
+    assert sorted(set(seeing["stretch"].tolist())) == [0, 1, 2, 3]
+    # An unchanged night reruns nothing.
+    again = run_night(config)
+    assert again.ok and again.count("ran") == 0
+
+
+def report_warnings(config, stage: str, unit: str) -> list[str]:
+    """The warnings a unit's provenance records."""
+    from pipeline.runner._night import NightStore
+
+    night = NightStore(config)
+    return night.sidecar(night.stages[stage], unit)["warnings"]
+
+
+def test_a_changed_rectified_stretch_reruns_its_detect_unit_and_neighbours_only(
+    seam_night, tmp_path
+):
+    config = seam_night()
+    assert run_night(config).ok
+    edit_raw_block(tmp_path / "raw", 1)  # changes the stand-in's product of stretch 1 only
+    report = run_night(config)
+    assert _ran(report, "rectify") == ["s0001"]
+    assert _ran(report, "detect") == ["s0000", "s0001", "s0002"]
+    assert night_status(config).complete
+
+
+def test_a_failed_neighbour_and_a_fully_flagged_stretch(seam_night):
+    config = seam_night("stages.rectify.fail_on=[1]", "stages.rectify.flag_all=[3]")
+    report = run_night(config)
+    by_unit = {(r.stage, r.unit): r for r in report.results}
+    assert by_unit[("rectify", "s0001")].status == "failed"
+    assert by_unit[("detect", "s0001")].status == "blocked"
+    # The stretches beside the failed one ran without it, and said so.
+    for unit in ("s0000", "s0002"):
+        assert by_unit[("detect", unit)].status == "ran"
+        assert (
+            "ran without neighbour s0001 (failed in rectify)" in by_unit[("detect", unit)].problems
+        )
+    # Their seam stars lost the neighbour's side: flagged at an edge.
+    for index, x in ((0, 199.2), (2, 399.8)):
+        catalog = open_product(config, "detect", index, "catalog")
+        near = np.abs(catalog["x"].value - x) < 0.5
+        assert near.sum() == 1 and _flags(catalog)[near][0] & SourceFlag.EDGE
+    # The fully flagged stretch: an empty catalogue and a reported problem.
+    flagged = by_unit[("detect", "s0003")]
+    assert flagged.status == "ran" and any("no usable pixel" in p for p in flagged.problems)
+    assert len(open_product(config, "detect", 3, "catalog")) == 0
+    # The night catalogue went on without the missing stretch.
+    night = by_unit[("catalog", "night")]
+    assert night.status == "ran"
+    assert night.problems == ("ran without stretch s0001 (blocked in detect)",)
+    assert len(open_product(config, "catalog", "night", "catalog")) == 3
+    assert not report.ok
+    # Fixed: every stretch is measured, the seam stars whole again.
+    report = run_night(seam_night())
+    assert report.ok, report.format()
+    catalog = open_product(config, "catalog", "night", "catalog")
+    assert len(catalog) == 4 and not np.any(_flags(catalog) & SourceFlag.EDGE)
