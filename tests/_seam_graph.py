@@ -11,7 +11,8 @@ centres are integers), two in the middle of stretches 1 and 2, none in
 stretch 3.
 
 Options: ``fail_on`` lists stretch indices the stand-in fails on,
-``flag_all`` those whose every pixel it flags as outside the data.  Its sky
+``flag_all`` those whose every pixel it flags as outside the data,
+``noise_correlation`` goes to the ``NOISECOR`` card.  Its sky
 level carries ``raw[0, 0] mod 7`` of the stretch's first raw row, so editing
 that pixel of a raw block changes that one stretch's product (a changed
 rectified stretch).
@@ -52,6 +53,7 @@ class StandInOptions(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
     fail_on: list[int] = []
     flag_all: list[int] = []
+    noise_correlation: float = 1.0
 
 
 def celestial_header(x_start: int) -> fits.Header:
@@ -88,6 +90,7 @@ def stand_in_rectify(*, inputs, options, context):
         header=celestial_header(stretch.start),
         metadata=fits.Header(),
     )
+    product["FLUX"].header["NOISECOR"] = options.noise_correlation
     kernels = kernel_table(SHAPE[0], stretch.start, stretch.stop - stretch.start, 12.0, 2.0)
     return {"image": product, "smear_kernels": kernels}
 

@@ -7,6 +7,7 @@ import warnings
 
 import numpy as np
 import pytest
+from astropy.wcs import WCS
 from photutils.background import Background2D
 from photutils.centroids import centroid_2dg
 from photutils.segmentation import deblend_sources, detect_sources
@@ -524,3 +525,115 @@ def test_stage_is_registered_with_strict_options():
     assert set(DetectOptions.model_fields) <= set(inspect.signature(detect).parameters)
     with pytest.raises(ValidationError):
         DetectOptions(threshold=3.0)
+
+
+# Noise-free field (expected images, no noise drawn) with stars at optimal S/N 200
+# (seeing), 8 and 5.2, far apart: the matched filter's peak of each is its S/N
+# up to the template's mismatch, so which stars pass the threshold is certain.
+NOISE_FREE_X = [40.0, 100, 160, 220, 280, 340, 400, 460, 60, 200, 330, 470]
+NOISE_FREE_Y = [64.0] * 8 + [190.0] * 4
+NOISE_FREE_SNR = [200.0] * 4 + [5.2] * 4 + [8.0] * 4
+
+
+@pytest.fixture(scope="module")
+def noise_free_field():
+    return render_scene(
+        NOISE_FREE_X, NOISE_FREE_Y, None, snr=NOISE_FREE_SNR, shape=(256, 512), x_start=0
+    )
+
+
+@pytest.mark.parametrize("noise_correlation", [2.0, 4.0])
+def test_noise_correlation_lowers_significance_and_widens_errors(
+    noise_free_field, noise_correlation
+):
+    # rectify's NOISECOR is the factor by which the plane's variance underrates
+    # the variance of a sum over a star (correlated resampled noise), so every
+    # matched-filter significance is divided by sqrt(NOISECOR) and every error
+    # multiplied by it (derived: var(sum w_i n_i) = NOISECOR * sum w_i^2 var_i).
+    scene = noise_free_field
+    catalogs = {}
+    for c in (1.0, noise_correlation):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", DetectWarning)
+            result = detect(
+                scene.image, scene.variance, scene.mask, scene.kernels, noise_correlation=c
+            )
+        catalogs[c] = result.catalog
+        catalogs[c].sort("x")
+    plain, correlated = catalogs[1.0], catalogs[noise_correlation]
+    assert len(plain) == len(scene.x)  # every star passes 4.3 sigma at NOISECOR 1
+    # At NOISECOR c the stars whose S/N / sqrt(c) falls below 4.3 are gone:
+    # S/N 5.2 -> 3.7 at c = 2; S/N 8 -> 5.7 at 2 but 4.0 at 4.
+    kept = np.array(NOISE_FREE_SNR) / np.sqrt(noise_correlation) > 4.3
+    np.testing.assert_allclose(
+        np.sort(correlated["x"].value), np.sort(np.array(NOISE_FREE_X)[kept]), atol=0.05
+    )  # 0.05 px: noise-free fits land on the first moment to a few 0.001 px
+    same = np.isin(np.round(plain["x"].value), np.round(correlated["x"].value))
+    ratio = np.sqrt(noise_correlation)
+    # 1e-4: the same fits (weights equal up to a constant) stop within the
+    # optimiser's tolerance of one optimum (measured 7e-6 apart); a missing
+    # sqrt(NOISECOR) would be 41 % or 100 %.
+    for name in ("x_err", "y_err", "flux_psf_err", "flux_aper2_err"):
+        np.testing.assert_allclose(
+            correlated[name].value, plain[name].value[same] * ratio, rtol=1e-4, err_msg=name
+        )
+    np.testing.assert_allclose(correlated["snr"].value, plain["snr"].value[same] / ratio, rtol=1e-4)
+    np.testing.assert_allclose(
+        correlated["flux_psf"].value, plain["flux_psf"].value[same], rtol=1e-4
+    )
+
+
+def test_a_source_on_a_cosmic_ray_hit_is_flagged():
+    scene = render_scene(
+        [100.0, 200.0, 300.0], [60.0, 60.0, 60.0], [1e5, 1e5, 1e5], shape=(128, 400), x_start=0,
+        seed=1,
+    )  # fmt: skip
+    scene.mask[60, 100] |= np.uint16(MaskBit.COSMIC_RAY)  # in the first star's core
+    scene.mask[10, 200] |= np.uint16(MaskBit.COSMIC_RAY)  # 50 rows from the second star
+    cat = detect(scene.image, scene.variance, scene.mask, scene.kernels).catalog
+    cat.sort("x")
+    flags = cat["flags"].value.astype(int)
+    assert len(cat) == 3
+    assert flags[0] & SourceFlag.COSMIC_RAY and flags[0] & SourceFlag.NEAR_FLAGGED
+    assert not flags[1] & SourceFlag.COSMIC_RAY and not flags[2] & SourceFlag.COSMIC_RAY
+
+
+def _oblique_car_wcs():
+    """A rectified product's celestial WCS: plate carree about an oblique pole (in
+    the form rectify writes; numbers from the demo night), 0.516"/px on the sky at
+    declination ~41.6 deg, where the plane's x degrees are cos(41.6) = 0.75 sky degrees."""
+    header = {
+        "CTYPE1": "RA---CAR", "CTYPE2": "DEC--CAR", "CUNIT1": "deg", "CUNIT2": "deg",
+        "CRPIX1": 1025.0, "CRPIX2": -290160.47056790016,
+        "CRVAL1": 305.9516164047855, "CRVAL2": -0.08665416872904666,
+        "CDELT1": 0.000191744004517349, "CDELT2": 0.000143268335993048,
+        "LONPOLE": -125.27935264517669, "LATPOLE": 89.84996586916132, "RADESYS": "ICRS",
+    }  # fmt: skip
+    return WCS(header)
+
+
+def test_sky_errors_follow_the_pixel_errors_through_the_wcs():
+    scene = render_scene(
+        [60.0, 200.0, 340.0], [30.0, 64.0, 100.0], [2e4, 5e4, 1e5], shape=(128, 400), x_start=0,
+        seed=2,
+    )  # fmt: skip
+    wcs = _oblique_car_wcs()
+    cat = detect(scene.image, scene.variance, scene.mask, scene.kernels, wcs=wcs).catalog
+    assert len(cat) == 3
+    x, y = cat["x"].value, cat["y"].value
+
+    def separation(dx, dy):  # arcsec on the sky per pixel (astropy's separation, Vincenty)
+        a = wcs.pixel_to_world(x - dx, y - dy)
+        b = wcs.pixel_to_world(x + dx, y + dy)
+        return a.separation(b).arcsec
+
+    along_x, along_y = separation(0.5, 0.0), separation(0.0, 0.5)
+    # The pixels are square on the sky, 0.516" (CDELT2), while the plane's CDELT1
+    # is 0.690": an error taken from CDELT1 would be 34 % too large along x.
+    # 0.3 %: the scale along x follows cos(dec) over the rows (measured 0.5163 here).
+    np.testing.assert_allclose(along_x, 0.000143268335993048 * 3600, rtol=3e-3)
+    np.testing.assert_allclose(along_y, 0.000143268335993048 * 3600, rtol=1e-9)  # CDELT2
+    # 1e-4: x runs along RA to 0.15 deg (LATPOLE), so the cross terms add < 1e-5.
+    np.testing.assert_allclose(cat["ra_err"].value, cat["x_err"].value * along_x, rtol=1e-4)
+    np.testing.assert_allclose(cat["dec_err"].value, cat["y_err"].value * along_y, rtol=1e-4)
+    assert cat["ra_err"].unit == "arcsec" and cat["dec_err"].unit == "arcsec"

@@ -7,14 +7,28 @@ stand-in for rectify cuts it into stretches that tile the night's columns.
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
-from _seam_graph import FLUX, GRAPH_WITH_DETECT, STARS_X, seam_night_data
+from _seam_graph import (
+    FLUX,
+    GRAPH_WITH_DETECT,
+    SHAPE,
+    STARS_X,
+    STRETCH_ROWS,
+    StandInOptions,
+    seam_night_data,
+    stand_in_rectify,
+)
 from test_runner import edit_raw_block
 
 from pipeline.config import config_from_mapping
 from pipeline.runner import night_status, open_product, run_night
-from pipeline.stages.detect import SourceFlag
+from pipeline.runner._night import NightStore
+from pipeline.stages import detect
+from pipeline.stages.base import NEIGHBOURS, RAW_ROWS, plan_stretches
+from pipeline.stages.detect import DetectOptions, SourceFlag
 
 
 @pytest.fixture
@@ -67,8 +81,6 @@ def test_seam_stars_are_measured_whole_and_listed_once(seam_night):
 
 def report_warnings(config, stage: str, unit: str) -> list[str]:
     """The warnings a unit's provenance records."""
-    from pipeline.runner._night import NightStore
-
     night = NightStore(config)
     return night.sidecar(night.stages[stage], unit)["warnings"]
 
@@ -117,3 +129,28 @@ def test_a_failed_neighbour_and_a_fully_flagged_stretch(seam_night):
     assert report.ok, report.format()
     catalog = open_product(config, "catalog", "night", "catalog")
     assert len(catalog) == 4 and not np.any(_flags(catalog) & SourceFlag.EDGE)
+
+
+def test_the_stage_takes_the_noise_correlation_from_the_rectified_header(seam_night):
+    config = seam_night()
+    plan = plan_stretches(SHAPE[1], STRETCH_ROWS, 0)
+    context = dataclasses.replace(NightStore(config).context, stretch=plan[1], stretches=plan)
+    raw = np.zeros((STRETCH_ROWS, 6), np.float32)
+    errors = []
+    for noise_correlation in (1.0, 2.0):
+        options = StandInOptions(noise_correlation=noise_correlation)
+        products = [
+            stand_in_rectify(
+                inputs={RAW_ROWS: raw},
+                options=options,
+                context=dataclasses.replace(context, stretch=s),
+            )
+            for s in plan[:3]
+        ]
+        inputs = {"rectify": products[1], NEIGHBOURS: {"rectify": (products[0], products[2])}}
+        out = detect.STAGE.run(inputs=inputs, options=DetectOptions(), context=context)
+        assert len(out["catalog"]) == 1  # the star at x = 300
+        errors.append(out["catalog"]["flux_psf_err"].value[0])
+    # sqrt(NOISECOR): see test_noise_correlation_lowers_significance_and_widens_errors;
+    # 1e-4 as there.
+    assert errors[1] / errors[0] == pytest.approx(np.sqrt(2.0), rel=1e-4)

@@ -93,14 +93,17 @@ stretches ``index - 1`` and ``index + 1`` if they lie in the same segment
 read-only mapping that reads a product only when it is looked up; an image
 product (``HDUList``) comes opened lazily, so ``hdul["FLUX"].section[:, :20]``
 reads only those columns from disk (``.data`` reads the whole plane), and the
-runner closes the files after the stage returns.  A neighbour whose upstream
-unit failed, is blocked or has not run is handed over as None too: the
-stretch still runs (the stage treats that side as having no data), and the
-runner reports ``ran without neighbour s0004 (failed in rectify)`` as a
-problem (``zdrift run`` exits 1).  The neighbours' output hashes (None for
-one left out) enter the unit's input hashes, so a changed neighbour, or a
-missing one that appears, makes the unit stale, and a night in which
-nothing changed reruns nothing.
+runner closes the files after the stage returns (so return no neighbour's HDU
+as a product).  Called from Python with in-memory HDU lists, a stage gets no
+file (``hdul.filename()`` is None, ``section`` does not work): slice ``.data``.
+A neighbour whose upstream unit failed, is blocked or has not run is handed
+over as None too: the stretch still runs (the stage treats that side as
+having no data), and the runner reports ``ran without neighbour s0004
+(failed in rectify)`` as a problem (``zdrift run`` exits 1).  The
+neighbours' output hashes (None for one left out) enter the unit's input
+hashes, and a neighbour's unit that is not up to date makes the unit stale
+too: a changed neighbour, or a missing one that appears, reruns the
+stretch, and a night in which nothing changed reruns nothing.
 """
 
 from __future__ import annotations

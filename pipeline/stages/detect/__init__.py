@@ -37,7 +37,6 @@ import numpy as np
 from astropy import units as u
 from astropy.table import QTable, Table
 from astropy.wcs import WCS, FITSFixedWarning
-from astropy.wcs.utils import proj_plane_pixel_scales
 from photutils.segmentation import SourceCatalog
 from pydantic import BaseModel, ConfigDict, Field
 from scipy.sparse import coo_matrix
@@ -64,6 +63,7 @@ from pipeline.stages.detect._measure import (
 )
 from pipeline.stages.detect._model import KernelGrid, SeeingProfile, fit_stars, model_image
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
+from pipeline.stages.detect._sky import sky_errors
 
 __all__ = [
     "STAGE",
@@ -544,10 +544,9 @@ def detect(
     values["ra"] = values["dec"] = values["ra_err"] = values["dec_err"] = np.full(x.size, np.nan)
     if wcs is not None and x.size:
         ra, dec = wcs.all_pix2world(x, y, 0)
-        scale = proj_plane_pixel_scales(wcs.celestial) * 3600.0  # arcsec / pix along x, y
         values["ra"], values["dec"] = ra, dec
-        values["ra_err"] = values["x_err"] * float(scale[0])
-        values["dec_err"] = values["y_err"] * float(scale[1])
+        errors = sky_errors(wcs, x, y, values["x_err"], values["y_err"])
+        values["ra_err"], values["dec_err"] = errors
     catalog = _catalog(values, radii, x.size)
     catalog.meta["seeing_fwhm"] = float(profile.fwhm)
     catalog.meta["seeing_shape"] = seeing_shape
@@ -651,8 +650,11 @@ def _edge_planes(products, margin: int, last: bool) -> Planes | None:
     header = hdul[FLUX_EXTENSION].header
     n_columns = int(header["NAXIS1"])
     columns = slice(max(n_columns - margin, 0), n_columns) if last else slice(0, margin)
+    # From a file, ``section`` reads only those columns; in memory, slice the data.
     planes = [
-        np.asarray(hdul[name].section[:, columns])
+        np.asarray(
+            hdul[name].section[:, columns] if hdul.filename() else hdul[name].data[:, columns]
+        )
         for name in (FLUX_EXTENSION, VARIANCE_EXTENSION, FLAGS_EXTENSION)
     ]
     x_start = _night_column(header) + columns.indices(n_columns)[0]
