@@ -182,6 +182,20 @@ def write_raw_night(raw_dir: Path, n_blocks: int = 4, rows_per_block: int = 25) 
     return night.astype(np.float64)
 
 
+def edit_raw_block(raw_dir: Path, sequence: int) -> None:
+    """Add 1 to the first pixel of the raw block with BLOCKSEQ ``sequence``."""
+    path = next(p for p in raw_dir.iterdir() if p.name.endswith(f"_{sequence}.fits"))
+    before = path.stat()
+    with fits.open(path, mode="update") as hdul:
+        hdul[0].data[0, 0] += 1
+    # The edit keeps the size; the runner sees it through the modification
+    # time (raw_files_fingerprint).  On a file system with 1-second time stamps
+    # an edit within the same second would keep that too, so the test sets the
+    # time an edit one second later would leave, rather than relying on the clock.
+    assert path.stat().st_size == before.st_size
+    os.utime(path, ns=(before.st_atime_ns, before.st_mtime_ns + 1_000_000_000))
+
+
 def toy_config_data(tmp: Path) -> dict:
     """A config mapping for the toy night under ``tmp``."""
     return {

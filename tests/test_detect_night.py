@@ -21,7 +21,7 @@ from _seam_graph import (
     seam_night_data,
     stand_in_rectify,
 )
-from test_runner import edit_raw_block
+from _toy_graph import edit_raw_block
 
 from pipeline.config import config_from_mapping
 from pipeline.runner import night_status, open_product, run_night

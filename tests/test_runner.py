@@ -26,6 +26,7 @@ from _toy_graph import (
     PARTIAL_GRAPH,
     IndexOptions,
     build_index,
+    edit_raw_block,
     image_rows,
     toy_config_data,
     write_raw_night,
@@ -339,20 +340,6 @@ def test_changed_raw_file_makes_only_affected_units_stale(toy, tmp_path: Path) -
     assert sorted(status["scale"].ids("stale")) == ["s0002", "s0003"]
     assert status["scale"].units["s0002"][1] == "inputs changed: raw_rows"
     assert sorted(status["scale"].ids("done")) == ["s0000", "s0001"]
-
-
-def edit_raw_block(raw_dir: Path, sequence: int) -> None:
-    """Add 1 to the first pixel of the raw block with BLOCKSEQ ``sequence``."""
-    path = next(p for p in raw_dir.iterdir() if p.name.endswith(f"_{sequence}.fits"))
-    before = path.stat()
-    with fits.open(path, mode="update") as hdul:
-        hdul[0].data[0, 0] += 1
-    # The edit keeps the size; the runner sees it through the modification
-    # time (raw_files_fingerprint).  On a file system with 1-second time stamps
-    # an edit within the same second would keep that too, so the test sets the
-    # time an edit one second later would leave, rather than relying on the clock.
-    assert path.stat().st_size == before.st_size
-    os.utime(path, ns=(before.st_atime_ns, before.st_mtime_ns + 1_000_000_000))
 
 
 def test_status_of_a_new_night_and_orphan_stretches(toy) -> None:

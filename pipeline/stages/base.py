@@ -92,7 +92,8 @@ stretches ``index - 1`` and ``index + 1`` if they lie in the same segment
 (stretches of different segments never adjoin), else None.  Each is a
 read-only mapping that reads a product only when it is looked up; an image
 product (``HDUList``) comes opened lazily, so ``hdul["FLUX"].section[:, :20]``
-reads only those columns from disk (``.data`` reads the whole plane), and the
+loads only those columns (``.data`` loads the whole plane; the file is still
+read through once, to check its SHA-256, without being kept), and the
 runner closes the files after the stage returns (so return no neighbour's HDU
 as a product).  Called from Python with in-memory HDU lists, a stage gets no
 file (``hdul.filename()`` is None, ``section`` does not work): slice ``.data``.
