@@ -231,11 +231,11 @@ def test_missing_products_skip_their_figures_with_a_note() -> None:
     products["sky"] = None
     drawn = {
         d.spec.name: d
-        for d in draw_figures(products, ReportOptions(), sources={"seeing": "detect"})
+        for d in draw_figures(products, ReportOptions(), sources={"seeing": "catalog"})
     }
     for name in ("seeing_night", "seeing_chip"):
         assert drawn[name].png is None and not drawn[name].failed
-        assert "no seeing (from stage detect)" in drawn[name].note
+        assert "no seeing (from stage catalog)" in drawn[name].note
     assert drawn["sky"].png is None and "no sky" in drawn["sky"].note
     assert drawn["flat"].png is not None
     page = render_page(night="n", about=[], problems=[], summary=[], figures=list(drawn.values()))

@@ -30,8 +30,8 @@ _NIGHT_PRODUCTS = {
     "block_index": ("ingest", "block_index"),
     "ingest_report": ("ingest", "ingest_report"),
     "columns": ("columns", "columns"),
-    "seeing": ("detect", "seeing"),
-    "catalog": ("detect", "catalog"),
+    "seeing": ("catalog", "seeing"),
+    "catalog": ("catalog", "catalog"),
 }
 
 #: Product key -> the stage that makes it (for the page's notes).
