@@ -8,6 +8,7 @@ large (several rows at the chip edges) while the cross-scan bow stays small.
 import re
 from pathlib import Path
 
+import astropy.units as u
 import numpy as np
 import pytest
 from astropy.io import fits
@@ -610,3 +611,232 @@ def test_module_command_runs_as_a_script(tmp_path):
     )
     assert done.returncode == 0, done.stderr
     assert "wrote 4 files" in done.stdout
+
+
+# ----------------------------------------------------------------------------
+# The night as it really was (simulate.actual): true values the config lacks.
+# Each test compares a perturbed night with the same stars in the night the
+# config describes, against a first-principles expectation of the change.
+
+ACTUAL_LATITUDE = 30.0
+ACTUAL_ROWS = [96.0, 128.0, 160.0]  # one row per star of COLUMNS (south, centre, north)
+
+
+def _drift_factor(columns, model):
+    """1 / (relative drift rate) of stars at these columns: (1 - eta tan(phi))^-1.
+
+    A star eta north of the centre line drifts (1 - eta tan(phi)) times as fast
+    (DESIGN.md section 4, first-order smear law), so it takes that much longer per row.
+    """
+    eta = (np.asarray(columns) - 511.5) * model.pixel_angle
+    return 1.0 / (1.0 - eta * np.tan(np.radians(ACTUAL_LATITUDE)))
+
+
+def _actual_pair(**actual):
+    """The config's night and the perturbed one, with the same stars (placed nominally)."""
+    site, camera = _site(ACTUAL_LATITUDE), _camera()
+    nominal = _options()
+    extra, model = _stars_at(site, camera, nominal, COLUMNS, ACTUAL_ROWS)
+    night0 = simulate_night(site, camera, nominal, extra_stars=extra)
+    night1 = simulate_night(site, camera, _options(actual=actual), extra_stars=extra)
+    return night0, night1, model
+
+
+def _positions(night):
+    return np.asarray(night.truth["r_mean"], float), np.asarray(night.truth["c_mean"], float)
+
+
+def _image_centroids(night, rows, columns):
+    image = _image(night)
+    pairs = zip(rows, columns, strict=True)
+    return np.array([_moments(image, r, c, 14, 10)[1:3] for r, c in pairs]).T
+
+
+def _assert_same_headers(night0, night1):
+    """The raw headers say only what the config implies: the perturbation is invisible."""
+    for (h0, _), (h1, _) in zip(night0.blocks, night1.blocks, strict=True):
+        assert list(h0.items()) == list(h1.items())
+
+
+def test_actual_clock_offset_shifts_rows_not_headers():
+    """Headers dt seconds ahead of the true clock: row 0 was really read dt earlier,
+    so every star lands dt / line_time rows later (the strip mapping r = t / dt + N - u,
+    DESIGN.md section 4), with no change across the scan."""
+    offset = 1.3  # s: ~5.5 rows at this line time
+    night0, night1, model = _actual_pair(clock_offset=offset)
+    r0, c0 = _positions(night0)
+    r1, c1 = _positions(night1)
+    shift = offset / model.line_time
+    # 1e-6 px: the same stars at the same true times, counted from an earlier row 0;
+    # only float rounding of t / dt differs.
+    np.testing.assert_allclose(r1 - r0, shift, atol=1e-6)
+    np.testing.assert_allclose(c1, c0, atol=1e-6)
+    # The image follows: first moments in the pixels (1e-3 px as in the smear tests).
+    mr, mc = _image_centroids(night1, r0 + shift, c0)
+    np.testing.assert_allclose(mr, r0 + shift, atol=1e-3)
+    np.testing.assert_allclose(mc, c0, atol=1e-3)
+    _assert_same_headers(night0, night1)
+    record = night1.truth.meta["actual"]
+    assert record["clock_offset"] == offset
+    assert record["start_header"] == START
+    true_start = Time(START, scale="utc") - offset * u.s
+    # 1 microsecond: the ISO string's printed precision (milliseconds) would allow
+    # 1e-3 s; astropy's isot keeps three decimals.
+    assert abs((Time(record["start"], scale="utc") - true_start).to_value(u.s)) < 1e-3
+    assert night1.truth.meta["start"] == record["start"]
+    assert "actual" not in night0.truth.meta
+
+
+def test_actual_focal_length_scales_offsets_from_the_centre():
+    """A focal length s times the config's scales every focal-plane offset in pixels
+    by s (gnomonic projection times F/pixel: DESIGN.md section 4): cross-scan offsets
+    from the centre line, and rows from the time origin once the camera clocks to the
+    true drift (s times more rows per second)."""
+    scale = 0.98  # edge stars move ~10 px inwards
+    night0, night1, model = _actual_pair(focal_length_scale=scale)
+    r0, c0 = _positions(night0)
+    r1, c1 = _positions(night1)
+    centre = 511.5
+    n_half = 256.0  # N / 2: a star at the chip centre at time t is at row t / dt + N / 2
+    # 5e-3 px: the bow's third of a sagitta (~0.1 px here) does not scale with F but
+    # with 1/F (N^2 p tan(phi) / 24: 2 % of it is 2e-3 px), nor does the smear.
+    np.testing.assert_allclose(c1 - centre, scale * (c0 - centre), atol=5e-3)
+    np.testing.assert_allclose(r1 - n_half, scale * (r0 - n_half), atol=5e-3)
+    # The camera clocks s times faster; the headers keep the config's line time.
+    assert night1.meta["line_time_true"] == pytest.approx(model.line_time / scale, rel=1e-6)
+    assert night1.blocks[0][0]["LINETIME"] == night0.blocks[0][0]["LINETIME"]
+    _, mc = _image_centroids(night1, r1, scale * (c0 - centre) + centre)
+    np.testing.assert_allclose(mc, scale * (c0 - centre) + centre, atol=5e-3)
+    _assert_same_headers(night0, night1)
+    record = night1.truth.meta["actual"]
+    assert record["focal_length"] == pytest.approx(scale * night0.meta["focal_length"], rel=1e-12)
+    assert record["geometric_pixel_scale"] == pytest.approx(
+        model.geometric_pixel_scale / scale, rel=1e-12
+    )
+
+
+def test_actual_rotation_moves_off_centre_stars_along_the_scan():
+    """A camera turned by a (west towards north, Camera.rotation) meets a star eta off
+    the centre line when xi cos(a) + eta sin(a) = 0: eta tan(a) earlier on the drift,
+    so its row falls by (c - c_centre) tan(a) times its slower drift's factor; its
+    mean column moves only at second order (c a^2 / 2 < 1e-3 px)."""
+    angle = 0.1  # degrees: 0.87 rows at the chip's edges
+    night0, night1, model = _actual_pair(rotation_offset=angle)
+    r0, c0 = _positions(night0)
+    r1, c1 = _positions(night1)
+    expected = -(c0 - 511.5) * np.tan(np.radians(angle)) * _drift_factor(c0, model)
+    # 1e-3 px: second-order terms (a^2 c / 2 = 8e-4 px across, the drift factor's
+    # own second order 2e-5 of 0.9 px).
+    np.testing.assert_allclose(r1 - r0, expected, atol=1e-3)
+    np.testing.assert_allclose(c1, c0, atol=1e-3)
+    mr, _ = _image_centroids(night1, r0 + expected, c0)
+    np.testing.assert_allclose(mr, r0 + expected, atol=1e-3)
+    _assert_same_headers(night0, night1)
+    assert night1.truth.meta["actual"]["rotation"] == angle
+
+
+def test_actual_tilt_moves_the_field():
+    """An axis tilted north by b sees the sky b further north, so stars sit b / scale
+    columns further south; tilted east by a, it meets a star at declination delta
+    a / (omega cos(delta)) earlier: a / scale rows for the centre line (the line time
+    matches the drift, scale = omega cos(phi) dt, both in observed angles), times the
+    drift factor off it.  The camera clocks to the drift at the tilted axis,
+    cos(phi) / cos(phi + b) times the zenith's line time, so rows also scale about
+    the time origin.  Tilts are observed (refracted) angles: the geometric scale."""
+    east, north = 20.0, -30.0  # arcsec: ~6.5 and ~9.7 px at 3.09"/px
+    night0, night1, model = _actual_pair(tilt_east_offset=east, tilt_north_offset=north)
+    r0, c0 = _positions(night0)
+    r1, c1 = _positions(night1)
+    scale = model.geometric_pixel_scale
+    phi, b = np.radians(ACTUAL_LATITUDE), np.radians(north / 3600.0)
+    dt_ratio = np.cos(phi) / np.cos(phi + b)
+    expected_r = -east / scale * _drift_factor(c0, model) + (r0 - 256.0) * (1 / dt_ratio - 1)
+    # 2e-3 px: the bow (0.1 px) and smear of the shifted stars change at second order
+    # (1e-4 relative), and the tilt's effect on the drift factor (b tan(phi) ~ 1e-4).
+    np.testing.assert_allclose(c1 - c0, -north / scale, atol=2e-3)
+    np.testing.assert_allclose(r1 - r0, expected_r, atol=2e-3)
+    assert night1.meta["line_time_true"] / night0.meta["line_time_true"] == pytest.approx(
+        dt_ratio, rel=1e-6
+    )
+    _assert_same_headers(night0, night1)
+    record = night1.truth.meta["actual"]
+    assert (record["tilt_east"], record["tilt_north"]) == (east, north)
+
+
+def test_actual_radial_distortion_pushes_edge_stars_out():
+    """rho -> rho (1 + k1 rho^2) (Camera.distortion_k1): a star eta off the centre line,
+    crossing xi in [-X, X] uniformly in time (X = N p / 2), is recorded at the time
+    mean eta (1 + k1 (eta^2 + X^2 / 3)) / p: out by k1 eta (eta^2 + X^2/3) / p."""
+    k1 = 50.0  # rad^-2: ~1.5 px at the chip's edges, < 1e-2 relative in its corners
+    night0, night1, model = _actual_pair(distortion_k1_offset=k1)
+    _, c0 = _positions(night0)
+    _, c1 = _positions(night1)
+    p = model.pixel_angle
+    eta = (c0 - 511.5) * p
+    big_x = 256.0 * p
+    expected = k1 * eta * (eta**2 + big_x**2 / 3.0) / p
+    assert abs(expected[0]) > 1.0
+    # 0.01 px: the crossing's ends move by k1 rho^2 (~0.3 %) of the 5e-2 px X^2 term.
+    np.testing.assert_allclose(c1 - c0, expected, atol=0.01)
+    _assert_same_headers(night0, night1)
+
+
+def test_actual_wander_follows_its_sinusoid():
+    """Images displaced by A sin(2 pi t / P + phase) along and across the scan: the
+    recorded centroid is the displacement's time mean over the crossing,
+    A [cos(w t0 + ph) - cos(w t1 + ph)] / (w T) (calculus), in pixels A / p; along
+    the scan a star ahead on the drift lands at a smaller row."""
+    along, across, period = 3.0, 4.5, 300.0  # arcsec, arcsec, s
+    phase_along, phase_across = 30.0, 120.0  # degrees
+    site, camera = _site(ACTUAL_LATITUDE), _camera()
+    rows = [300.0, 500.0, 700.0, 900.0, 1100.0, 1300.0, 1500.0, 1700.0]
+    nominal = _options(block_rows=2048)
+    extra, model = _stars_at(site, camera, nominal, [511.5] * len(rows), rows)
+    wander = {
+        "along_amplitude": along,
+        "across_amplitude": across,
+        "period": period,
+        "along_phase": phase_along,
+        "across_phase": phase_across,
+    }
+    night0 = simulate_night(site, camera, nominal, extra_stars=extra)
+    night1 = simulate_night(
+        site, camera, _options(block_rows=2048, actual={"wander": wander}), extra_stars=extra
+    )
+    r0, c0 = _positions(night0)
+    r1, c1 = _positions(night1)
+    dt, n = model.line_time, camera.tdi_rows
+    t_mid = (r0 - n / 2.0) * dt  # the star is at the chip centre at row t / dt + N / 2
+    t0, t1 = t_mid - n * dt / 2.0, t_mid + n * dt / 2.0
+    omega = 2.0 * np.pi / period
+
+    def mean_sin(phase):
+        ph = np.radians(phase)
+        return (np.cos(omega * t0 + ph) - np.cos(omega * t1 + ph)) / (omega * (t1 - t0))
+
+    per_arcsec = 1.0 / model.geometric_pixel_scale
+    expected_r = -along * per_arcsec * mean_sin(phase_along)
+    expected_c = across * per_arcsec * mean_sin(phase_across)
+    assert np.ptp(expected_r) > 1.0 and np.ptp(expected_c) > 1.0  # the phase is resolved
+    # 0.01 px: the wander also moves each crossing's window by its along-scan
+    # displacement times dt (A^2 dt / T ~ 4e-3 px here), and the track's differential
+    # drift across the ~1.5-px displacement is < 1e-3 px.
+    np.testing.assert_allclose(r1 - r0, expected_r, atol=0.01)
+    np.testing.assert_allclose(c1 - c0, expected_c, atol=0.01)
+    mr, mc = _image_centroids(night1, r0 + expected_r, c0 + expected_c)
+    np.testing.assert_allclose(mr, r0 + expected_r, atol=0.01)
+    np.testing.assert_allclose(mc, c0 + expected_c, atol=0.01)
+    _assert_same_headers(night0, night1)
+    assert night1.truth.meta["actual"]["wander"] == {**wander}
+
+
+def test_actual_truth_is_written_and_validated(tmp_path):
+    """The true values reach truth.ecsv; bad values are refused with their name."""
+    _, night1, _ = _actual_pair(clock_offset=0.5, rotation_offset=0.01)
+    write_night(night1, tmp_path)
+    written = Table.read(tmp_path / "truth.ecsv")
+    assert written.meta["actual"] == night1.truth.meta["actual"]
+    with pytest.raises(ValidationError, match="focal_length_scale"):
+        _options(actual={"focal_length_scale": 0.0})
+    with pytest.raises(ValidationError, match="clock"):
+        _options(actual={"clock": 1.0})

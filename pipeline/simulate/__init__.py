@@ -73,6 +73,13 @@ from pipeline.config import load_config
 from pipeline.exceptions import ConfigError
 from pipeline.geometry.instrument import Camera, Site
 from pipeline.geometry.optics import resolve_focal_length
+from pipeline.simulate._actual import (
+    ActualOptions,
+    WanderingTDIModel,
+    WanderOptions,
+    actual_record,
+    true_camera,
+)
 from pipeline.simulate._detector import (
     ColumnProperties,
     bleed_along_columns,
@@ -87,6 +94,7 @@ from pipeline.simulate._exposure import (
     samples_needed,
     sky_rows,
     trails_in_block,
+    transparency,
 )
 from pipeline.simulate._render import GaussianMixturePSF, render_tracks
 from pipeline.simulate._starfield import (
@@ -96,9 +104,11 @@ from pipeline.simulate._starfield import (
     field_bounds,
 )
 from pipeline.simulate._starfield import extra_stars as user_stars
+from pipeline.simulate._trail import TrailOptions, trail_samples
 from pipeline.simulate._truth import reference_table, truth_table
 
 __all__ = [
+    "ActualOptions",
     "DetectorOptions",
     "PSFOptions",
     "ReferenceOptions",
@@ -107,6 +117,8 @@ __all__ = [
     "SimulationOptions",
     "SkyOptions",
     "StarOptions",
+    "TrailOptions",
+    "WanderOptions",
     "column_properties",
     "draw_magnitudes",
     "draw_star_field",
@@ -227,7 +239,9 @@ class SimulationOptions(_Options):
     """Options of the ``simulate:`` config section (see the module docstring)."""
 
     seed: int = Field(0, ge=0, description="seed of every random stream")
-    start: str = Field(description="UTC (ISO 8601) at which row 0 of block 0 is read")
+    start: str = Field(
+        description="UTC (ISO 8601) at which row 0 of block 0 is read, as the headers say"
+    )
     n_blocks: int = Field(4, ge=1)
     block_rows: int = Field(1024, ge=1, description="rows per block (scan axis)")
     overscan_columns: int = Field(32, ge=0, description="serial overscan columns")
@@ -250,6 +264,8 @@ class SimulationOptions(_Options):
     stars: StarOptions = Field(default_factory=StarOptions)
     detector: DetectorOptions = Field(default_factory=DetectorOptions)
     reference: ReferenceOptions = Field(default_factory=ReferenceOptions)
+    actual: ActualOptions = Field(default_factory=ActualOptions)
+    trails: tuple[TrailOptions, ...] = Field((), description="satellite trails")
 
     @field_validator("start")
     @classmethod
@@ -350,10 +366,15 @@ def tdi_model(site: Site, camera: Camera, options: SimulationOptions):
     Returns
     -------
     model : pipeline.geometry.tdi.TDIModel
-        Built with the camera's true line time ``dt_nominal * (1 + line_time_error)``;
-        its ``start`` is the DATE-OBS of block 0.
+        The true geometry: the true camera (``options.actual``), ``start`` the
+        true time at which row 0 was read (``options.start - clock_offset``),
+        the true line time (``dt_nominal * (1 + line_time_error)`` when the
+        night is as configured; else ``1 + line_time_error`` times the line
+        time matching the true drift, or the camera's set line time); a
+        :class:`WanderingTDIModel` if the image wanders.
     dt_nominal : float
-        The line time written to the headers (LINETIME), seconds.
+        The line time the config implies, written to the headers (LINETIME),
+        seconds.
     """
     from pipeline.geometry.tdi import TDIModel
 
@@ -365,10 +386,26 @@ def tdi_model(site: Site, camera: Camera, options: SimulationOptions):
     duration = n_rows * dt_guess * (1.0 + abs(options.line_time_error)) * 1.001
     model = TDIModel(site, camera, start, duration)
     nominal = model.line_time
-    if options.line_time_error:
-        model = TDIModel(
-            site, camera, start, duration, line_time=nominal * (1.0 + options.line_time_error)
+    actual = options.actual
+    if not actual.active:
+        if options.line_time_error:
+            model = TDIModel(
+                site, camera, start, duration, line_time=nominal * (1.0 + options.line_time_error)
+            )
+        return model, nominal
+    # The night as it really was: the true camera, row 0 read clock_offset
+    # seconds before the headers say, clocked (1 + line_time_error) times the
+    # line time matching the true drift (or the camera's set line time).
+    camera = true_camera(site, camera, actual)
+    start = start - actual.clock_offset * u.s
+    duration = duration / min(actual.focal_length_scale, 1.0)
+    dt_true = TDIModel(site, camera, start, duration).line_time * (1.0 + options.line_time_error)
+    if actual.wander.active:
+        model = WanderingTDIModel(
+            site, camera, start, duration, line_time=dt_true, wander=actual.wander
         )
+    else:
+        model = TDIModel(site, camera, start, duration, line_time=dt_true)
     return model, nominal
 
 
@@ -442,6 +479,7 @@ def simulate_night(
     timings: dict[str, float] = {}
     tic = time.perf_counter()
     model, dt_nominal = tdi_model(site, camera, options)
+    header_start = Time(options.start, format="isot", scale="utc")
     dt = model.line_time
     n_tdi, n_cols = camera.tdi_rows, camera.n_columns
     n_rows = options.n_blocks * options.block_rows
@@ -454,6 +492,9 @@ def simulate_night(
     zp = options.sky.zero_point
     radius_max = float(psf.radius(10.0 ** (-0.4 * (options.stars.mag_bright - zp)) * 1e3)[0])
     margin = radius_max + 4.0
+    if options.actual.wander.active:
+        wander = options.actual.wander
+        margin += max(wander.along_amplitude, wander.across_amplitude) / model.pixel_scale
     smear = n_tdi * (n_cols / 2.0 + margin) * model.pixel_angle
     smear *= abs(np.tan(np.radians(site.latitude))) + abs(options.line_time_error) * 2
     margin_rows = margin + smear + n_tdi * abs(options.line_time_error)
@@ -516,7 +557,8 @@ def simulate_night(
         sky=options.sky,
         start_ramp=options.start_ramp,
     )
-    trails = bleed_trails(tracks, radius, psf, cols.response, sky_of_rows, n_rows, options)
+    bleeds = bleed_trails(tracks, radius, psf, cols.response, sky_of_rows, n_rows, options)
+    trails, trail_truth = _trails(model, psf, n_cols, duration, options)
     timings["bleed"] = time.perf_counter() - tic
 
     timings["render"] = timings["detector"] = 0.0
@@ -539,16 +581,27 @@ def simulate_night(
                 row_box=1.0 if options.clocking_box else 0.0,
                 out=image,
             )
+        for r, c, w in trails:
+            render_tracks(
+                r,
+                c,
+                w,
+                image.shape,
+                psf,
+                origin=(b * options.block_rows, 0),
+                row_box=1.0 if options.clocking_box else 0.0,
+                out=image,
+            )
         timings["render"] += time.perf_counter() - tic
         tic = time.perf_counter()
         rows = b * options.block_rows + np.arange(options.block_rows)
-        bleed = trails_in_block(trails, rows[0], image.shape)
+        bleed = trails_in_block(bleeds, rows[0], image.shape)
         data = _detect(image, bleed, rows, cols, bias_phase, sky_of_rows, dt, model, options, rng)
         if camera.flip_columns:
             data[:, :n_cols] = data[:, n_cols - 1 :: -1]
         if camera.flip_rows:
             data = data[::-1]
-        header = _block_header(b, rows[0] * dt, dt_nominal, site, camera, model, options)
+        header = _block_header(b, rows[0] * dt, dt_nominal, site, camera, header_start, options)
         blocks.append((header, data))
         timings["detector"] += time.perf_counter() - tic
 
@@ -562,6 +615,11 @@ def simulate_night(
             "line_time_nominal": dt_nominal,
         }
     )
+    actual = actual_record(model, options.start, options.actual) if options.actual.active else None
+    if actual is not None:
+        truth.meta["actual"] = actual
+    if trail_truth:
+        truth.meta["trails"] = trail_truth
     reference = reference_table(stars, truth, options, np.random.default_rng([options.seed, 3]))
     timings["tables"] = time.perf_counter() - tic
     meta = {
@@ -579,7 +637,10 @@ def simulate_night(
         "dead_columns": cols.dead.tolist(),
         "options": options.model_dump(mode="json"),
         "timings": timings,
+        "trails": trail_truth,
     }
+    if actual is not None:
+        meta["actual"] = actual
     log.info(
         "simulated %d blocks, %d stars, up to %d samples per track in %.1f s",
         len(blocks),
@@ -588,6 +649,21 @@ def simulate_night(
         sum(timings.values()),
     )
     return SimulatedNight(blocks=blocks, truth=truth, reference=reference, meta=meta)
+
+
+def _trails(model, psf, n_columns, duration, options):
+    """Rendered samples ``[(r, c, w), ...]`` and truth records of the night's trails."""
+    samples, records = [], []
+    for trail in options.trails:
+        flux_rate = 10.0 ** (-0.4 * (trail.mag - options.sky.zero_point))
+        r, c, t, w, record = trail_samples(trail, model, n_columns, 3.0 * psf.fwhm, flux_rate)
+        w = w * transparency(t, duration, options.sky)
+        if options.start_ramp:
+            w = w * (t >= 0.0)
+        if r.size:
+            samples.append((r, c, w))
+        records.append(record)
+    return samples, records
 
 
 def _detect(image, bleed, rows, cols, bias_phase, sky_of_rows, dt, model, options, rng):
@@ -633,11 +709,15 @@ def _detect(image, bleed, rows, cols, bias_phase, sky_of_rows, dt, model, option
     return np.minimum(adu, det.saturate_adu).astype(np.float32)
 
 
-def _block_header(b, t_start, dt_nominal, site, camera, model, options) -> fits.Header:
-    """FITS header of block ``b`` following the raw data contract (DEVELOPERS.md)."""
+def _block_header(b, t_start, dt_nominal, site, camera, start, options) -> fits.Header:
+    """FITS header of block ``b`` following the raw data contract (DEVELOPERS.md).
+
+    ``start`` is the time the headers give row 0 of block 0 (the true time plus
+    ``actual.clock_offset``); ``camera`` is the camera the config describes.
+    """
     det = options.detector
     n_rows, n_cols, n_os = options.block_rows, camera.n_columns, options.overscan_columns
-    date = (model.start + t_start * u.s).utc
+    date = (start + t_start * u.s).utc
     h = fits.Header()
     h["DATE-OBS"] = (date.isot, "UTC when row 0 of this block was read out")
     h["TIMESYS"] = ("UTC", "time scale of DATE-OBS")
