@@ -840,3 +840,46 @@ def test_actual_truth_is_written_and_validated(tmp_path):
         _options(actual={"focal_length_scale": 0.0})
     with pytest.raises(ValidationError, match="clock"):
         _options(actual={"clock": 1.0})
+
+
+def test_satellite_trail_is_a_straight_streak():
+    """A point crossing the detector at velocity (du/dt, dv/dt) in ~2 s lands at strip
+    row t / dt + N - u(t), column v(t) (the strip mapping, DESIGN.md section 4): a
+    straight streak through (T / dt + N / 2, centre) with slope
+    (1 / dt - du/dt) / (dv/dt) rows per column, holding rate / (dv/dt) electrons per
+    column (flux conservation), across the seam between two blocks."""
+    site, camera = _site(ACTUAL_LATITUDE), _camera()
+    trail = {"time": 30.0, "angle": 60.0, "speed": 0.5, "mag": 12.0}
+    options = _options(n_blocks=2, block_rows=512, trails=[trail])
+    night = simulate_night(site, camera, options)
+    model, _ = tdi_model(site, camera, options)
+    dt, n = model.line_time, camera.tdi_rows
+    speed = 0.5 * 3600.0 / model.pixel_scale  # pixels per second
+    du, dv = speed * np.cos(np.radians(60.0)), speed * np.sin(np.radians(60.0))
+    slope = (1.0 / dt - du) / dv
+    r_centre = 30.0 / dt + n / 2.0
+    image = np.vstack([_image(night, 0), _image(night, 1)])
+    rows = np.arange(image.shape[0])
+    rate = 10.0 ** (-0.4 * (12.0 - options.sky.zero_point))
+    columns = np.arange(150, 900, 50)
+    expected = r_centre + slope * (columns - 511.5)
+    assert expected.min() < 500 < 530 < expected.max()  # the streak crosses the seam
+    for column, r_expected in zip(columns, expected, strict=True):
+        near = np.abs(rows - r_expected) < 12  # ~8 sigma of the PSF
+        cut = image[near, column]
+        # 1e-3 px: a column cut through a straight uniform streak is symmetric about it
+        # (PSF and clocking box are); the profile tables interpolate to 1e-5 of the peak.
+        assert (cut * rows[near]).sum() / cut.sum() == pytest.approx(r_expected, abs=1e-3)
+        # 1e-3: stamps are renormalised to hold their electrons; the light beyond 12
+        # rows of a 1.2-px Gaussian is < 1e-20.
+        assert cut.sum() == pytest.approx(rate / dv, rel=1e-3)
+    record = night.truth.meta["trails"][0]
+    assert record["time"] == 30.0 and record["on_chip"]
+    for end in ("enter", "exit"):
+        # The recorded ends lie on the streak (1e-6 px: float rounding).
+        r_end = r_centre + slope * (record[f"c_{end}"] - 511.5)
+        assert record[f"r_{end}"] == pytest.approx(r_end, abs=1e-6)
+    # It enters at detector row 0 and leaves at row N: 512 / du seconds on the chip.
+    assert record["t_exit"] - record["t_enter"] == pytest.approx(n / du, rel=1e-9)
+    assert record["electrons_per_pixel"] == pytest.approx(rate / np.hypot(1 / dt - du, dv))
+    assert night.meta["trails"] == night.truth.meta["trails"]

@@ -41,6 +41,23 @@ What is simulated
   rows.
 * **Missing blocks**: block numbers in ``missing_blocks`` are simulated (the
   truth keeps their stars) but not returned or written.
+* **The night as it really was** (``actual``, :class:`ActualOptions`): true
+  values the reduction config does not know.  ``clock_offset``: the headers'
+  times are that many seconds ahead of the true ones (row 0 was really read at
+  ``start - clock_offset``); ``focal_length_scale``, ``rotation_offset``
+  (deg), ``tilt_east_offset``, ``tilt_north_offset`` (arcsec) and
+  ``distortion_k1_offset`` (rad^-2) make the true camera; ``wander`` displaces
+  every image sinusoidally along and across the scan (:class:`WanderOptions`).
+  The camera then clocks ``1 + line_time_error`` times the line time matching
+  the *true* drift (or its set ``camera.line_time``).  Headers carry only what
+  the config implies (DATE-OBS from ``start``, LINETIME from the config's
+  camera); the truth table's positions are the true ones, and its meta holds
+  ``actual`` (the true clock, focal length, plate scale, rotation, tilts,
+  distortion, line time and wander; absent when nothing differs).
+* **Satellite trails** (``trails``, :class:`TrailOptions`): a point crossing
+  the detector in a straight line at a given time, angle, speed and
+  magnitude, rendered with the seeing PSF; the truth's meta ``trails`` records
+  each one's strip ends, times and electrons per pixel.
 
 Coordinates: night (strip) row ``r`` counts rows from row 0 of block 0 (the
 scan axis, time); block ``b`` holds rows ``[b * block_rows, (b+1) * block_rows)``.
