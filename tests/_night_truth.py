@@ -1,7 +1,7 @@
 """Detect's night catalogue against the simulator's truth, end to end.
 
 Shared by ``benchmarks/bench_detect_night.py`` and the slow test in
-``tests/test_detect_night.py``: simulate a night (:mod:`pipeline.simulate`),
+``tests/test_detect_truth.py``: simulate a night (:mod:`pipeline.simulate`),
 reduce it with the runner (ingest -> ... -> rectify -> detect), and compare the
 catalogue with the truth in the rectified frame.
 
@@ -19,6 +19,7 @@ catalogue with the truth in the rectified frame.
 
 from __future__ import annotations
 
+import contextlib
 import itertools
 import time
 import warnings
@@ -32,10 +33,13 @@ from astropy.wcs import WCS, FITSFixedWarning
 from scipy.spatial import cKDTree
 
 from pipeline import load_config, open_product, run_night
-from pipeline.simulate import column_properties, simulate_night, tdi_model, write_night
-from pipeline.simulate._render import GaussianMixturePSF, render_tracks
+from pipeline.simulate import _psf_pixels, column_properties, simulate_night, tdi_model, write_night
+from pipeline.simulate._render import render_tracks
 
-MATCH_RADIUS = 1.5  # px: ~0.5 FWHM; the position errors of S/N >= 5 stars are < 0.5 px
+# A detection matches the nearest true star within one seeing FWHM (~2.8 px): faint
+# (S/N ~5) stars are found up to ~2 px off along their smear, and a noise peak falls
+# within 1 FWHM of some true star by chance ~3 % of the time on these fields.
+MATCH_FWHM = 1.0
 
 
 def night_config(
@@ -106,12 +110,17 @@ class NightComparison:
         bad = above & (self.match < 0)
         return float(bad.sum() / max(above.sum(), 1)), int(bad.sum()), int(above.sum())
 
-    def _pairs(self, lo: float, hi: float = np.inf):
-        """Catalogue and truth indices of matched isolated stars with measured S/N in [lo, hi)."""
+    def _pairs(self, lo: float, hi: float = np.inf, isolation: str = "isolated"):
+        """Catalogue and truth indices of matched unflagged stars with measured S/N in [lo, hi).
+
+        ``isolation`` names the truth column that selects the stars: ``isolated``
+        (no neighbour with a tenth of the light within 3 FWHM) or ``alone`` (no
+        neighbour with a hundredth of it, for fluxes).
+        """
         cat_snr = np.asarray(self.catalog["snr"], float)
         k = np.flatnonzero((self.match >= 0) & (cat_snr >= lo) & (cat_snr < hi))
         j = self.match[k]
-        keep = np.asarray(self.truth["isolated"])[j] & (np.asarray(self.catalog["flags"])[k] == 0)
+        keep = np.asarray(self.truth[isolation])[j] & (np.asarray(self.catalog["flags"])[k] == 0)
         return k[keep], j[keep]
 
     def position_bias(self, n_bins: int = 10, snr_min: float = 50.0):
@@ -150,7 +159,7 @@ class NightComparison:
         calibrated image is divided by the flat); the mean ratio is then the
         flat's normalisation times the method's loss, the rms and trend its errors.
         """
-        k, j = self._pairs(snr_min)
+        k, j = self._pairs(snr_min, isolation="alone")
         ratio = (
             np.asarray(self.catalog[column], float)[k]
             / np.asarray(self.truth["flux_flat"], float)[j]
@@ -168,7 +177,7 @@ class NightComparison:
         fitted against the distance from the centre line (0) to the edge (1).
         """
         ratio, edge = self.flux_ratios(column, snr_min)
-        k, _ = self._pairs(snr_min)
+        k, _ = self._pairs(snr_min, isolation="alone")
         noise = (
             np.asarray(self.catalog["flux_psf_err"], float)[k]
             / np.asarray(self.catalog["flux_psf"], float)[k]
@@ -213,13 +222,7 @@ class NightComparison:
 def optimal_snr(truth, site, camera, options, n_grid: int = 33) -> np.ndarray:
     """Optimal S/N of every truth star from its smeared profile at its column."""
     model, _ = tdi_model(site, camera, options)
-    psf_opts = options.psf
-    fwhm = psf_opts.fwhm / model.pixel_scale
-    psf = (
-        GaussianMixturePSF.gaussian(fwhm)
-        if psf_opts.model == "gaussian"
-        else GaussianMixturePSF.moffat(fwhm, psf_opts.beta, psf_opts.n_components)
-    )
+    psf = _psf_pixels(options.psf, model.pixel_scale)  # the simulator's own PSF
     n = camera.tdi_rows
     columns = np.linspace(0.0, camera.n_columns - 1.0, n_grid)
     t_mid = options.n_blocks * options.block_rows * model.line_time / 2.0
@@ -315,17 +318,19 @@ def compare(config_path: Path, fwhm_isolation: float = 3.0) -> NightComparison:
     pts = np.column_stack([np.nan_to_num(x), np.nan_to_num(y)])
     tree = cKDTree(pts)
     flux = np.asarray(truth["flux_recorded"], float)
-    isolated = np.ones(len(truth), bool)
+    brightest = np.zeros(len(truth))  # brightest neighbour within 3 FWHM over own flux
     for i, near in enumerate(tree.query_ball_point(pts, fwhm_isolation * fwhm)):
         others = [k for k in near if k != i]
-        if others and np.max(flux[others]) > 0.1 * flux[i]:
-            isolated[i] = False
-    truth["isolated"] = isolated & whole
+        if others:
+            brightest[i] = np.max(flux[others]) / flux[i]
+    truth["isolated"] = (brightest <= 0.1) & whole
+    # A neighbour with 1 % of the light moves a flux by <= 1 % if fitted as one star.
+    truth["alone"] = (brightest <= 0.01) & whole
     truth["whole"] = whole
     # Detections: nearest true star (of all, saturated included) within the radius.
     cat_pts = np.column_stack([np.asarray(catalog["x"], float), np.asarray(catalog["y"], float)])
     d, j = tree.query(cat_pts)
-    match = np.where(d < MATCH_RADIUS, j, -1)
+    match = np.where(d < MATCH_FWHM * fwhm, j, -1)
     threshold = float(config.stage_options("detect").threshold_sigma)
     return NightComparison(truth, catalog, match, fwhm, camera.n_columns, threshold)
 
@@ -349,3 +354,47 @@ def simulate_and_reduce(config_path: Path, progress=None) -> NightComparison:
     timings["compare"] = time.perf_counter() - tic
     result.timings = timings
     return result
+
+
+class _CentredCatalog:
+    """A photutils SourceCatalog whose NaN centroids are replaced by the box centres."""
+
+    def __init__(self, catalog):
+        self._catalog = catalog
+
+    def __getattr__(self, name):
+        return getattr(self._catalog, name)
+
+    def _centroid(self, axis: str) -> np.ndarray:
+        value = np.array(getattr(self._catalog, f"{axis}_centroid"), dtype=float)
+        lo = np.asarray(getattr(self._catalog, f"bbox_{axis}min"), dtype=float)
+        hi = np.asarray(getattr(self._catalog, f"bbox_{axis}max"), dtype=float)
+        return np.where(np.isfinite(value), value, 0.5 * (lo + hi))
+
+    @property
+    def x_centroid(self) -> np.ndarray:
+        return self._centroid("x")
+
+    @property
+    def y_centroid(self) -> np.ndarray:
+        return self._centroid("y")
+
+
+@contextlib.contextmanager
+def centred_empty_segments():
+    """Detect with a segment of non-positive image sum centred on its box (a workaround).
+
+    Detect (as of this writing) fails on large nights when a segment of its
+    S/N map has a non-positive sum in the image: photutils gives it a NaN
+    centroid, which ``cKDTree`` and the fit stamps refuse.  Inside this
+    context such a segment is placed at its bounding box's centre instead, so
+    the rest of the stage can be measured; the benchmark says when it is used.
+    """
+    import pipeline.stages.detect as stage
+
+    original = stage.SourceCatalog
+    stage.SourceCatalog = lambda *args, **kwargs: _CentredCatalog(original(*args, **kwargs))
+    try:
+        yield
+    finally:
+        stage.SourceCatalog = original
