@@ -42,7 +42,7 @@ def _binomial_floor(p: float, n: int) -> float:
 def test_completeness_at_snr_10_and_5(night):
     """>= 95 % of isolated stars at optimal S/N 10 and >= 50 % at S/N 5 are found.
 
-    Tolerance: two binomial standard errors of the sample (n ~ 100 per bin).
+    Tolerance: two binomial standard errors of the sample (n ~ 60-90 per bin).
     """
     for target, required in ((10.0, 0.95), (5.0, 0.50)):
         found, n = night.completeness(target)
@@ -53,7 +53,7 @@ def test_completeness_at_snr_10_and_5(night):
 def test_spurious_fraction(night):
     """< 1 % of detections above the threshold match no true star within one seeing FWHM.
 
-    Tolerance: two Poisson standard errors of the expected count (1 % of ~1500).
+    Tolerance: two Poisson standard errors of the expected count (1 % of ~1300).
     """
     fraction, bad, above = night.spurious()
     expected = 0.01 * above
@@ -61,12 +61,14 @@ def test_spurious_fraction(night):
 
 
 def test_positions_are_unbiased_across_the_chip(night):
-    """Stars with S/N > 50 are unbiased to <= 0.02 px in every tenth of the chip.
+    """Stars with S/N > 50 are unbiased to <= 0.02 px across the chip.
 
-    Tolerance: plus three standard errors of each tenth's mean (~10-20 stars).
+    In fifths of this 512-column chip (tenths hold as few as 2 such stars here;
+    the benchmark reports tenths of the full chip).  Tolerance: plus three
+    standard errors of each fifth's mean (~20-40 stars).
     """
-    for lo, _, dx, ex, dy, ey, n in night.position_bias():
-        assert n >= 5, (lo, n)
+    for lo, _, dx, ex, dy, ey, n in night.position_bias(n_bins=5):
+        assert n >= 10, (lo, n)
         assert abs(dx) <= 0.02 + 3.0 * ex, (lo, dx, ex)
         assert abs(dy) <= 0.02 + 3.0 * ey, (lo, dy, ey)
 
@@ -76,7 +78,7 @@ def test_position_errors_describe_the_scatter(night):
 
     Detect reports the error of its model fit (the Cramer-Rao bound of the fitted
     model with the variance plane; Mendez, Silva & Lobos 2013, PASP 125, 580).
-    Tolerance: the rms of n ~ 300 unit normals is known to ~1/sqrt(2n) ~ 4 %.
+    Tolerance: the rms of n ~ 240 unit normals is known to 1/sqrt(2n) ~ 5 % (2 sigma).
     """
     pull_x, pull_y, n = night.pulls()
     assert n >= 100, n
