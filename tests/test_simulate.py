@@ -24,6 +24,7 @@ from pipeline.simulate import (
     draw_magnitudes,
     load_simulation_config,
     simulate_night,
+    simulate_nights,
     tdi_model,
     write_night,
 )
@@ -883,3 +884,44 @@ def test_satellite_trail_is_a_straight_streak():
     assert record["t_exit"] - record["t_enter"] == pytest.approx(n / du, rel=1e-9)
     assert record["electrons_per_pixel"] == pytest.approx(rate / np.hypot(1 / dt - du, dv))
     assert night.meta["trails"] == night.truth.meta["trails"]
+
+
+def test_several_nights_of_one_strip():
+    """Nights a sidereal day (and a month) apart see the same stars at the same places.
+
+    At the same local apparent sidereal time (astropy/ERFA) the zenith points at the
+    same apparent place; its ICRS position moves only by precession (~0.14"/day) and
+    annual aberration (20.5" x 2 pi / 365.25 ~ 0.35"/day), from memory: < 0.2 px a day
+    at 3.09"/px.  Seeing and sky change as each night says; the camera does not.
+    """
+    site, camera = _site(ACTUAL_LATITUDE), _camera()
+    options = _options(
+        stars={"count": 400, "mag_bright": 16.0, "mag_faint": 20.0},
+        sky={"sky_brightness": 24.5},
+        nights=[{"days": 1, "psf": {"fwhm": 7.0}, "sky": {"sky_brightness": 24.0}}],
+    )
+    first, second = simulate_nights(site, camera, options)
+    lst = [
+        Time(n.meta["start"], scale="utc").sidereal_time("apparent", longitude=site.longitude)
+        for n in (first, second)
+    ]
+    # 1e-6 h = 3.6 ms: the start is written to the millisecond (ISO 8601).
+    assert abs((lst[1] - lst[0]).hour) < 1e-6
+    days = Time(second.meta["start"]) - Time(first.meta["start"])
+    assert days.to_value(u.s) == pytest.approx(86164.09, abs=1.0)
+    common, i0, i1 = np.intersect1d(first.truth["id"], second.truth["id"], return_indices=True)
+    assert len(common) >= 0.9 * min(len(first.truth), len(second.truth)) > 20
+    for name in ("r_mean", "c_mean"):
+        shift = np.asarray(second.truth[name])[i1] - np.asarray(first.truth[name])[i0]
+        assert np.all(np.abs(shift) < 0.2), name
+    # Seeing and sky as set, camera and stars shared.
+    # 1e-5: the on-sky pixel scale changes by ~1e-6 a day (annual aberration).
+    assert second.meta["psf_fwhm_px"] == pytest.approx(
+        first.meta["psf_fwhm_px"] * 7.0 / 9.0, rel=1e-5
+    )
+    sky = [np.median(n.blocks[0][1][:, :1024].astype(float) - 1000.0) for n in (first, second)]
+    # 1e-3: the median of a noise-free row of sky with ~400 stars on 256 x 1024 pixels.
+    assert sky[1] / sky[0] == pytest.approx(10.0 ** (0.4 * 0.5), rel=1e-3)
+    assert np.array_equal(first.truth["mag"][i0], second.truth["mag"][i1])
+    with pytest.raises(ValueError, match="simulate_nights"):
+        simulate_night(site, camera, options)

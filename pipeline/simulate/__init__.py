@@ -54,6 +54,13 @@ What is simulated
   camera); the truth table's positions are the true ones, and its meta holds
   ``actual`` (the true clock, focal length, plate scale, rotation, tilts,
   distortion, line time and wander; absent when nothing differs).
+* **Several nights of one strip** (``nights``, :class:`RepeatOptions`):
+  :func:`simulate_nights` simulates the first night and each listed one,
+  ``days`` sidereal days later at the same local apparent sidereal time, over
+  one shared star field (truth ``id`` is the same star in every night), each
+  with its own seeing, sky, transparency (``sky.zero_point``, clouds), trails
+  and noise; the camera is shared.  ``python -m pipeline.simulate`` writes
+  them to one folder per night, named by the UTC date of its start.
 * **Satellite trails** (``trails``, :class:`TrailOptions`): a point crossing
   the detector in a straight line at a given time, angle, speed and
   magnitude, rendered with the seeing PSF; the truth's meta ``trails`` records
@@ -129,6 +136,7 @@ __all__ = [
     "DetectorOptions",
     "PSFOptions",
     "ReferenceOptions",
+    "RepeatOptions",
     "SimulateOptions",
     "SimulatedNight",
     "SimulationOptions",
@@ -141,7 +149,9 @@ __all__ = [
     "draw_star_field",
     "load_simulation_config",
     "main",
+    "night_options",
     "simulate_night",
+    "simulate_nights",
     "tdi_model",
     "write_night",
 ]
@@ -252,6 +262,22 @@ class ReferenceOptions(_Options):
     )
 
 
+class RepeatOptions(_Options):
+    """Another night of the same strip (an entry of ``simulate.nights``).
+
+    It starts ``days`` sidereal days after ``simulate.start``, adjusted to the
+    same local apparent sidereal time, so the chip sweeps the same sky; its
+    ``psf`` and ``sky`` entries replace those of the first night (seeing,
+    zero point as transparency, sky brightness, clouds), its ``trails`` are
+    its own.  Stars, camera and everything else are shared.
+    """
+
+    days: int = Field(ge=1, description="sidereal days after the first night")
+    psf: dict = Field(default_factory=dict, description="changes to simulate.psf")
+    sky: dict = Field(default_factory=dict, description="changes to simulate.sky")
+    trails: tuple[TrailOptions, ...] = ()
+
+
 class SimulationOptions(_Options):
     """Options of the ``simulate:`` config section (see the module docstring)."""
 
@@ -283,6 +309,9 @@ class SimulationOptions(_Options):
     reference: ReferenceOptions = Field(default_factory=ReferenceOptions)
     actual: ActualOptions = Field(default_factory=ActualOptions)
     trails: tuple[TrailOptions, ...] = Field((), description="satellite trails")
+    nights: tuple[RepeatOptions, ...] = Field(
+        (), description="more nights of the same strip (simulate_nights)"
+    )
 
     @field_validator("start")
     @classmethod
@@ -430,6 +459,44 @@ def tdi_model(site: Site, camera: Camera, options: SimulationOptions):
 # The night
 
 
+def _margins(site, camera, options, model, psf) -> tuple[float, float]:
+    """Pixels beyond the chip's sides, and rows beyond the night's ends, that stars reach."""
+    n_tdi, n_cols = camera.tdi_rows, camera.n_columns
+    zp = options.sky.zero_point
+    radius_max = float(psf.radius(10.0 ** (-0.4 * (options.stars.mag_bright - zp)) * 1e3)[0])
+    margin = radius_max + 4.0
+    if options.actual.wander.active:
+        wander = options.actual.wander
+        margin += max(wander.along_amplitude, wander.across_amplitude) / model.pixel_scale
+    smear = n_tdi * (n_cols / 2.0 + margin) * model.pixel_angle
+    smear *= abs(np.tan(np.radians(site.latitude))) + abs(options.line_time_error) * 2
+    margin_rows = margin + smear + n_tdi * abs(options.line_time_error)
+    return margin, margin_rows
+
+
+def _draw_field(camera, options, model, margin, margin_rows, pad=0.0) -> Table:
+    """The night's star field (synthetic and catalogue stars), ``pad`` degrees wider."""
+    n_tdi, dt = camera.tdi_rows, model.line_time
+    n_rows = options.n_blocks * options.block_rows
+    ra_range, dec_range = field_bounds(
+        model,
+        camera,
+        (-margin_rows - n_tdi / 2.0) * dt,
+        (n_rows + margin_rows - n_tdi / 2.0) * dt,
+        margin,
+    )
+    if pad:
+        cos_dec = np.cos(np.radians(max(abs(d) for d in dec_range)))
+        ra_range = (ra_range[0] - pad / cos_dec, ra_range[1] + pad / cos_dec)
+        dec_range = (dec_range[0] - pad, dec_range[1] + pad)
+    stars = draw_star_field(
+        ra_range, dec_range, options.stars, np.random.default_rng([options.seed, 1])
+    )
+    if options.stars.catalog != "none":
+        stars = vstack([stars, catalog_stars(options.stars.catalog, ra_range, dec_range, options)])
+    return stars
+
+
 def _psf_pixels(options: PSFOptions, pixel_scale: float) -> GaussianMixturePSF:
     fwhm = options.fwhm / pixel_scale
     if options.model == "gaussian":
@@ -443,6 +510,8 @@ def simulate_night(
     options: SimulationOptions,
     *,
     extra_stars: Table | None = None,
+    star_field: Table | None = None,
+    night_index: int = 0,
 ) -> SimulatedNight:
     """Simulate a night of raw TDI blocks with known truth, in memory.
 
@@ -459,6 +528,14 @@ def simulate_night(
         epoch ``options.reference.epoch``) and ``mag``; optional ``pmra``,
         ``pmdec`` (mas/yr, default 0) and ``colour`` (mag, default
         ``stars.colour_mean``).  Their truth rows have ``source = 'extra'``.
+    star_field : astropy.table.Table, optional
+        The star field to use instead of drawing one (as :func:`simulate_nights`
+        shares one among nights): ``ra``, ``dec``, ``pmra``, ``pmdec``,
+        ``mag``, ``colour``, ``source`` and ``id`` (kept as the truth's ``id``).
+    night_index : int, optional
+        The night's number in a series: its noise, cosmic rays and bias wave
+        are drawn from streams of their own; the camera (flat, dark, bad
+        columns) stays the same.
 
     Returns
     -------
@@ -487,6 +564,11 @@ def simulate_night(
             f"options must be a SimulationOptions; got {type(options).__name__} "
             "(build it with SimulationOptions(**mapping))."
         )
+    if options.nights:
+        raise ValueError(
+            f"simulate.nights lists {len(options.nights)} more night(s): simulate them all with "
+            "simulate_nights() or `python -m pipeline.simulate CONFIG`."
+        )
     bad = [b for b in options.missing_blocks if not 0 <= b < options.n_blocks]
     if bad:
         raise ValueError(
@@ -507,28 +589,16 @@ def simulate_night(
 
     tic = time.perf_counter()
     zp = options.sky.zero_point
-    radius_max = float(psf.radius(10.0 ** (-0.4 * (options.stars.mag_bright - zp)) * 1e3)[0])
-    margin = radius_max + 4.0
-    if options.actual.wander.active:
-        wander = options.actual.wander
-        margin += max(wander.along_amplitude, wander.across_amplitude) / model.pixel_scale
-    smear = n_tdi * (n_cols / 2.0 + margin) * model.pixel_angle
-    smear *= abs(np.tan(np.radians(site.latitude))) + abs(options.line_time_error) * 2
-    margin_rows = margin + smear + n_tdi * abs(options.line_time_error)
-    ra_range, dec_range = field_bounds(
-        model,
-        camera,
-        (-margin_rows - n_tdi / 2.0) * dt,
-        (n_rows + margin_rows - n_tdi / 2.0) * dt,
-        margin,
-    )
-    stars = draw_star_field(
-        ra_range, dec_range, options.stars, np.random.default_rng([options.seed, 1])
-    )
-    if options.stars.catalog != "none":
-        stars = vstack([stars, catalog_stars(options.stars.catalog, ra_range, dec_range, options)])
+    margin, margin_rows = _margins(site, camera, options, model, psf)
+    if star_field is None:
+        stars = _draw_field(camera, options, model, margin, margin_rows)
+    else:
+        stars = star_field
     if extra_stars is not None:
-        stars = vstack([stars, user_stars(extra_stars, options.stars)])
+        extra = user_stars(extra_stars, options.stars)
+        if "id" in stars.colnames:  # extras continue a shared field's ids
+            extra["id"] = int(np.max(stars["id"], initial=-1)) + 1 + np.arange(len(extra))
+        stars = vstack([stars, extra])
     ra_obs, dec_obs = positions_at_epoch(
         np.asarray(stars["ra"], float),
         np.asarray(stars["dec"], float),
@@ -562,7 +632,9 @@ def simulate_night(
     timings["tracks"] = time.perf_counter() - tic
 
     cols = column_properties(options, n_cols, dt, n_tdi)
-    bias_phase = np.random.default_rng([options.seed, 2, 1]).uniform(0, 2 * np.pi)
+    bias_phase = np.random.default_rng(
+        [options.seed, 2, 1, *([night_index] if night_index else [])]
+    ).uniform(0, 2 * np.pi)
     sky_rate = 10.0 ** (-0.4 * (options.sky.sky_brightness - zp)) * model.pixel_scale**2
     tic = time.perf_counter()
     sky_of_rows = functools.partial(
@@ -583,7 +655,7 @@ def simulate_night(
     for b in range(options.n_blocks):
         if b in options.missing_blocks:
             continue
-        rng = np.random.default_rng([options.seed, 4, b])
+        rng = np.random.default_rng([options.seed, 4, b, *([night_index] if night_index else [])])
         tic = time.perf_counter()
         image = np.zeros((options.block_rows, n_cols))
         for idx, r, c, w in tracks.groups:
@@ -666,6 +738,77 @@ def simulate_night(
         sum(timings.values()),
     )
     return SimulatedNight(blocks=blocks, truth=truth, reference=reference, meta=meta)
+
+
+#: Mean sidereal day, SI seconds (23 h 56 m 4.0905 s; from memory).
+SIDEREAL_DAY = 86164.0905
+
+
+def night_options(site: Site, options: SimulationOptions, repeat: RepeatOptions):
+    """The options of a later night of the same strip.
+
+    Parameters
+    ----------
+    site : Site
+        The site (its longitude sets the sidereal time).
+    options : SimulationOptions
+        The first night's options.
+    repeat : RepeatOptions
+        The later night.
+
+    Returns
+    -------
+    SimulationOptions
+        ``start`` moved by ``repeat.days`` sidereal days and adjusted to the
+        first night's local apparent sidereal time (astropy/ERFA), ``psf`` and
+        ``sky`` changed as ``repeat`` says, ``trails`` from ``repeat``.
+    """
+    start = Time(options.start, format="isot", scale="utc")
+    later = start + repeat.days * SIDEREAL_DAY * u.s
+    lst0 = start.sidereal_time("apparent", longitude=site.longitude * u.deg)
+    lst1 = later.sidereal_time("apparent", longitude=site.longitude * u.deg)
+    lag = ((lst1 - lst0).to_value(u.hourangle) + 12.0) % 24.0 - 12.0  # hours, in (-12, 12]
+    later = later - lag * 3600.0 * SIDEREAL_DAY / 86400.0 * u.s
+    data = options.model_dump()
+    data.update(
+        start=later.utc.isot,
+        psf={**data["psf"], **repeat.psf},
+        sky={**data["sky"], **repeat.sky},
+        trails=[t.model_dump() for t in repeat.trails],
+        nights=(),
+    )
+    try:
+        return SimulationOptions(**data)
+    except ValueError as error:
+        raise ValueError(
+            f"simulate.nights entry of {repeat.days} day(s): {error}; fix its psf or sky."
+        ) from None
+
+
+def simulate_nights(site: Site, camera: Camera, options: SimulationOptions) -> list[SimulatedNight]:
+    """The first night and every night of ``options.nights``, over one star field.
+
+    The stars are drawn once, over the first night's field widened by 2
+    arcmin (the strip's ICRS position at one sidereal time moves by tens of
+    arcseconds over a year: precession and annual aberration); every truth
+    table gives each star the same ``id``.
+
+    Returns
+    -------
+    list of SimulatedNight
+        The first night, then the others in the order listed.
+    """
+    first = options.model_copy(update={"nights": ()})
+    model, _ = tdi_model(site, camera, first)
+    psf = _psf_pixels(first.psf, model.pixel_scale)
+    margin, margin_rows = _margins(site, camera, first, model, psf)
+    field = _draw_field(camera, first, model, margin, margin_rows, pad=2.0 / 60.0)
+    field["id"] = np.arange(len(field), dtype=np.int64)
+    nights = [simulate_night(site, camera, first, star_field=field)]
+    for k, repeat in enumerate(options.nights, start=1):
+        later = night_options(site, first, repeat)
+        nights.append(simulate_night(site, camera, later, star_field=field, night_index=k))
+    return nights
 
 
 def _trails(model, psf, n_columns, duration, options):
@@ -851,9 +994,15 @@ def main(argv: list[str] | None = None) -> int:
     site, camera, options, raw_dir = load_simulation_config(args.config)
     out = Path(args.output) if args.output else raw_dir
     with astropy_offline():  # for this call only: astropy never downloads
-        night = simulate_night(site, camera, options)
-    paths = write_night(night, out)
-    print(f"wrote {len(paths)} files to {out}")
-    for key, value in night.meta["timings"].items():
-        print(f"  {key:10s} {value:7.2f} s")
+        if options.nights:
+            nights = simulate_nights(site, camera, options)
+        else:
+            nights = [simulate_night(site, camera, options)]
+    for night in nights:
+        # Several nights: one folder per night, named by its UTC start date.
+        folder = out / night.meta["start"][:10] if len(nights) > 1 else out
+        paths = write_night(night, folder)
+        print(f"wrote {len(paths)} files to {folder}")
+        for key, value in night.meta["timings"].items():
+            print(f"  {key:10s} {value:7.2f} s")
     return 0

@@ -24,7 +24,10 @@ def truth_table(stars, ra, dec, tracks, r_geom, c_geom, cols, psf, options, came
     response = cols.response[column]
     block = np.floor((r_geom + 0.5) / options.block_rows).astype(int)
     t = Table()
-    t["id"] = np.arange(len(stars), dtype=np.int64)
+    if "id" in stars.colnames:  # a shared star field keeps its ids across nights
+        t["id"] = np.asarray(stars["id"], dtype=np.int64)
+    else:
+        t["id"] = np.arange(len(stars), dtype=np.int64)
     t["source"] = stars["source"]
     t["ra"] = ra * u.deg
     t["dec"] = dec * u.deg
