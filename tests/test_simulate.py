@@ -925,3 +925,18 @@ def test_several_nights_of_one_strip():
     assert np.array_equal(first.truth["mag"][i0], second.truth["mag"][i1])
     with pytest.raises(ValueError, match="simulate_nights"):
         simulate_night(site, camera, options)
+
+
+def test_module_command_writes_a_folder_per_night(tmp_path, capsys):
+    import yaml
+
+    from pipeline.simulate import main
+
+    config = _tiny_night_config()
+    config["simulate"]["nights"] = [{"days": 1, "psf": {"fwhm": 1.2}}]
+    path = tmp_path / "sim.yaml"
+    path.write_text(yaml.safe_dump(config))
+    assert main([str(path)]) == 0
+    assert capsys.readouterr().out.count("wrote 4 files") == 2
+    folders = sorted(p.name for p in (tmp_path / "raw").iterdir())
+    assert folders == ["2026-10-15", "2026-10-16"]
