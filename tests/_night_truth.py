@@ -275,7 +275,7 @@ def compare(config_path: Path, fwhm_isolation: float = 3.0) -> NightComparison:
     """
     config = load_config(config_path)
     site, camera, options = config.site(), config.camera(), config.section("simulate")
-    catalog = open_product(config, "detect", "night", "catalog")
+    catalog = open_product(config, "catalog", "night", "catalog")  # the night's, merged
     n_rows = options.n_blocks * options.block_rows
     n_stretches = int(np.ceil(n_rows / config.run.stretch_rows))
     frames = _rectified_wcs(config, n_stretches)
