@@ -245,7 +245,7 @@ def _cmd_report(args: argparse.Namespace, config: Config) -> int:
 
 
 def _cmd_simulate(args: argparse.Namespace, config: Config) -> int:
-    from pipeline.simulate import simulate_night, write_night
+    from pipeline.simulate import simulate_to_folders
 
     options = config.section("simulate")
     if options is None:
@@ -253,9 +253,9 @@ def _cmd_simulate(args: argparse.Namespace, config: Config) -> int:
         return EXIT_USAGE
     out = Path(args.output) if args.output else Path(config.night.raw_dir)
     with cli_logging(args.verbose):
-        night = simulate_night(config.site(), config.camera(), options)
-        paths = write_night(night, out)
-    print(f"wrote {len(paths)} files to {out}")
+        written = simulate_to_folders(config.site(), config.camera(), options, out)
+    for _, folder, paths in written:
+        print(f"wrote {len(paths)} files to {folder}")
     return EXIT_OK
 
 

@@ -927,16 +927,20 @@ def test_several_nights_of_one_strip():
         simulate_night(site, camera, options)
 
 
-def test_module_command_writes_a_folder_per_night(tmp_path, capsys):
+@pytest.mark.parametrize("command", ["module", "zdrift"])
+def test_commands_write_a_folder_per_night(tmp_path, capsys, command):
     import yaml
 
-    from pipeline.simulate import main
+    from pipeline import cli, simulate
 
     config = _tiny_night_config()
     config["simulate"]["nights"] = [{"days": 1, "psf": {"fwhm": 1.2}}]
     path = tmp_path / "sim.yaml"
     path.write_text(yaml.safe_dump(config))
-    assert main([str(path)]) == 0
+    if command == "module":
+        assert simulate.main([str(path)]) == 0
+    else:
+        assert cli.main(["simulate", str(path)]) == 0
     assert capsys.readouterr().out.count("wrote 4 files") == 2
     folders = sorted(p.name for p in (tmp_path / "raw").iterdir())
     assert folders == ["2026-10-15", "2026-10-16"]

@@ -152,6 +152,7 @@ __all__ = [
     "night_options",
     "simulate_night",
     "simulate_nights",
+    "simulate_to_folders",
     "tdi_model",
     "write_night",
 ]
@@ -994,15 +995,34 @@ def main(argv: list[str] | None = None) -> int:
     site, camera, options, raw_dir = load_simulation_config(args.config)
     out = Path(args.output) if args.output else raw_dir
     with astropy_offline():  # for this call only: astropy never downloads
-        if options.nights:
-            nights = simulate_nights(site, camera, options)
-        else:
-            nights = [simulate_night(site, camera, options)]
-    for night in nights:
-        # Several nights: one folder per night, named by its UTC start date.
-        folder = out / night.meta["start"][:10] if len(nights) > 1 else out
-        paths = write_night(night, folder)
+        written = simulate_to_folders(site, camera, options, out)
+    for night, folder, paths in written:
         print(f"wrote {len(paths)} files to {folder}")
         for key, value in night.meta["timings"].items():
             print(f"  {key:10s} {value:7.2f} s")
     return 0
+
+
+def simulate_to_folders(
+    site: Site, camera: Camera, options: SimulationOptions, out: str | Path
+) -> list[tuple[SimulatedNight, Path, list[Path]]]:
+    """Simulate the night (and every night of ``options.nights``) and write them.
+
+    One night goes to ``out``; several go to one folder per night below it,
+    named by the night's UTC start date.
+
+    Returns
+    -------
+    list of (SimulatedNight, Path, list of Path)
+        Each night, its folder and the files written there.
+    """
+    out = Path(out)
+    if options.nights:
+        nights = simulate_nights(site, camera, options)
+    else:
+        nights = [simulate_night(site, camera, options)]
+    written = []
+    for night in nights:
+        folder = out / night.meta["start"][:10] if len(nights) > 1 else out
+        written.append((night, folder, write_night(night, folder)))
+    return written
