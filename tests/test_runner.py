@@ -629,7 +629,10 @@ def dask_cluster():
         threads_per_worker=1,
         processes=True,
         host="127.0.0.1",
-        dashboard_address=None,
+        # A random loopback port, not the usual 8787: another cluster on the
+        # machine must not turn the port-change warning into a test error.
+        dashboard_address="127.0.0.1:0",
+        scheduler_kwargs={"dashboard": False},
     )
     yield cluster
     cluster.close()
