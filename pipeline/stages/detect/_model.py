@@ -30,9 +30,9 @@ from dataclasses import dataclass
 
 import numpy as np
 from astropy.table import Table
-from scipy.special import erf
 
 from pipeline.simulate._render import GaussianMixturePSF
+from pipeline.stages.detect._pixel_gauss import pixel_profiles
 
 __all__ = [
     "FitResult",
@@ -43,8 +43,6 @@ __all__ = [
     "reduce_kernel",
 ]
 
-_SQRT2 = np.sqrt(2.0)
-_SQRT2PI = np.sqrt(2.0 * np.pi)
 _FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
 
 
@@ -185,27 +183,10 @@ class KernelGrid:
         return (1 - t) * dx[k] + t * dx[k + 1], (1 - t) * dy[k] + t * dy[k + 1]
 
 
-def _profiles(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndarray):
-    """Pixel-integrated 1-D Gaussians and their derivatives in the centre.
-
-    ``grid`` holds consecutive pixel centres.  Returns arrays of shape
-    ``(J, K, n)`` for the ``n`` pixels, centres (K,) and sigmas (J,).  The
-    error function is evaluated once per pixel edge (``n + 1`` edges).
-    """
-    edges = np.append(grid - 0.5, grid[-1] + 0.5)
-    z = (edges[None, None, :] - centres[None, :, None]) / sigmas[:, None, None]
-    cdf = erf(z / _SQRT2)
-    value = 0.5 * np.diff(cdf, axis=2)
-    # d value / d centre = -(phi(hi) - phi(lo)) / s
-    pdf = np.exp(-0.5 * z * z)
-    deriv = -np.diff(pdf, axis=2) / (_SQRT2PI * sigmas[:, None, None])
-    return value, deriv
-
-
 def _unit_model(xs, ys, x0, y0, dx, dy, sigmas, weights, derivatives=False):
     """Unit-flux model on the pixel grid ``ys`` x ``xs``; shape (ny, nx)."""
-    gx, dgx = _profiles(xs, x0 + dx, sigmas)
-    gy, dgy = _profiles(ys, y0 + dy, sigmas)
+    gx, dgx = pixel_profiles(xs, x0 + dx, sigmas)
+    gy, dgy = pixel_profiles(ys, y0 + dy, sigmas)
     scale = (weights / dx.size)[:, None, None]
     a = (gx * scale).reshape(-1, xs.size)
     b = gy.reshape(-1, ys.size)

@@ -1,0 +1,82 @@
+"""Pixel-integrated 1-D Gaussians, the inner loop of the smear-aware model.
+
+Every evaluation of the model needs, per seeing component ``j`` and kernel
+sample ``k``, the Gaussian integrated over each pixel of a row of the stamp
+and its derivative in the centre: one error function and one exponential per
+pixel edge.  Evaluated with ``scipy.special.erf`` and ``numpy.exp`` these
+took 8 of the 14 s the fits of a 4096 x 4096 benchmark stretch spent.
+
+:func:`pixel_profiles` gets both from tables of ``erf(z / sqrt 2)`` and
+``exp(-z^2 / 2)`` 1/64 apart in ``z`` (the offset in sigmas), by cubic
+Hermite interpolation with the exact derivatives (``sqrt(2/pi) exp(-z^2/2)``
+and ``-z exp(-z^2/2)``) at the nodes: the error is below ``h^4 / 384``
+times the fourth derivative, < 1e-9 (measured 2e-10), far below what a fit
+can see.  Beyond ``|z| = 8`` the error function is +-1 and the exponential 0
+to 1e-14.  The loop is compiled with numba (``cache=True``: the machine code
+is kept beside the module after the first run); it is 4x faster than the
+numpy evaluation.  :func:`pixel_profiles_direct` is the numpy evaluation,
+the reference the compiled one is tested against.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy.special import erf
+
+__all__ = ["pixel_profiles", "pixel_profiles_direct"]
+
+_SQRT2 = math.sqrt(2.0)
+_SQRT2PI = math.sqrt(2.0 * math.pi)
+_ERF_SLOPE = math.sqrt(2.0 / math.pi)  # d erf(z / sqrt 2) / dz at z = 0
+_NODES_PER_SIGMA = 64  # table step 1/64 sigma: Hermite error ~ 2e-10
+_REACH = 8.0  # |z| beyond which erf is +-1 and exp(-z^2/2) < 1.3e-14
+_Z = np.arange(-_REACH * _NODES_PER_SIGMA, _REACH * _NODES_PER_SIGMA + 1) / _NODES_PER_SIGMA
+_ERF_TABLE = erf(_Z / _SQRT2)
+_GAUSS_TABLE = np.exp(-0.5 * _Z * _Z)
+
+
+def pixel_profiles(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndarray):
+    """Pixel-integrated 1-D Gaussians and their derivatives in the centre.
+
+    Parameters
+    ----------
+    grid : ndarray, shape (n,)
+        Consecutive pixel centres (``grid[0] + arange(n)``), pixels.
+    centres : ndarray, shape (K,)
+        Gaussian centres, pixels.
+    sigmas : ndarray, shape (J,)
+        Gaussian sigmas, pixels.
+
+    Returns
+    -------
+    value, deriv : ndarray, shape (J, K, n)
+        Integral of each unit Gaussian over each pixel, and its derivative
+        with respect to the centre (per pixel).
+    """
+    # numba is imported on first use: importing it and loading the cached
+    # machine code costs about a second, which a run without detect should not pay.
+    from pipeline.stages.detect._pixel_gauss_jit import profiles_compiled
+
+    return profiles_compiled(
+        float(grid[0]),
+        int(grid.size),
+        np.ascontiguousarray(centres, dtype=np.float64),
+        np.ascontiguousarray(sigmas, dtype=np.float64),
+        _ERF_TABLE,
+        _GAUSS_TABLE,
+    )
+
+
+def pixel_profiles_direct(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndarray):
+    """The same as :func:`pixel_profiles`, with ``scipy.special.erf`` and ``numpy.exp``.
+
+    The error function is evaluated once per pixel edge (``n + 1`` edges).
+    """
+    edges = np.append(grid - 0.5, grid[-1] + 0.5)
+    z = (edges[None, None, :] - centres[None, :, None]) / sigmas[:, None, None]
+    value = 0.5 * np.diff(erf(z / _SQRT2), axis=2)
+    # d value / d centre = -(phi(hi) - phi(lo)) / s
+    deriv = -np.diff(np.exp(-0.5 * z * z), axis=2) / (_SQRT2PI * sigmas[:, None, None])
+    return value, deriv
