@@ -8,6 +8,7 @@ import warnings
 import numpy as np
 import pytest
 from astropy.wcs import WCS
+from photutils.aperture import CircularAperture, aperture_photometry
 from photutils.background import Background2D
 from photutils.centroids import centroid_2dg
 from photutils.segmentation import deblend_sources, detect_sources
@@ -637,3 +638,30 @@ def test_sky_errors_follow_the_pixel_errors_through_the_wcs():
     np.testing.assert_allclose(cat["ra_err"].value, cat["x_err"].value * along_x, rtol=1e-4)
     np.testing.assert_allclose(cat["dec_err"].value, cat["y_err"].value * along_y, rtol=1e-4)
     assert cat["ra_err"].unit == "arcsec" and cat["dec_err"].unit == "arcsec"
+
+
+def test_aperture_sums_and_errors_match_photutils():
+    # aperture_fluxes sums the variance plane instead of forming photutils'
+    # error array; both must give photutils' aperture_photometry values
+    # (exact overlap, error = sqrt(sum of error^2 x overlap)) with no-data
+    # pixels (NaN, masked) inside some apertures.
+    rng = np.random.default_rng(5)
+    residual = rng.normal(0.0, 10.0, (60, 80))
+    variance = rng.uniform(50.0, 150.0, residual.shape)
+    no_data = np.zeros(residual.shape, bool)
+    no_data[20:24, 30:33] = True
+    residual[no_data] = np.nan
+    variance[no_data] = np.nan
+    x, y = np.array([31.2, 10.5, 60.0]), np.array([21.7, 40.1, 5.3])
+    kernels = [POINT] * 3
+    radii = [2.0, 4.5]
+    flux, err, _ = _measure.aperture_fluxes(
+        residual, variance, no_data, x, y, kernels, SeeingProfile(3.0), radii, 1.7
+    )
+    data = np.where(no_data, 0.0, residual)
+    error = np.sqrt(np.where(no_data, 0.0, variance) * 1.7)
+    for j, r in enumerate(radii):
+        ref = aperture_photometry(data, CircularAperture(np.column_stack([x, y]), r), error=error)
+        # 1e-12 relative: the same sums in another order (double precision).
+        np.testing.assert_allclose(flux[:, j], ref["aperture_sum"], rtol=1e-12)
+        np.testing.assert_allclose(err[:, j], ref["aperture_sum_err"], rtol=1e-12)

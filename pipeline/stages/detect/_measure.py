@@ -434,12 +434,16 @@ def aperture_fluxes(residual, variance, no_data, x, y, kernels, profile, radii, 
     if n == 0:
         return flux, err, corr
     positions = np.column_stack([x, y])
-    error = np.sqrt(np.where(no_data, 0.0, variance) * noise_correlation)
-    data = np.where(no_data, 0.0, residual)
-    for j, r in enumerate(radii):
-        table = aperture_photometry(data, CircularAperture(positions, r), error=error, mask=no_data)
-        flux[:, j] = np.asarray(table["aperture_sum"])
-        err[:, j] = np.asarray(table["aperture_sum_err"])
+    # The sum of error^2 x overlap photutils forms is the aperture sum of the
+    # variance plane: summing it directly, with no-data pixels masked in each
+    # cutout, needs no whole-image error or zero-filled copies (a second of the
+    # 4096 x 4096 benchmark).
+    apertures = [CircularAperture(positions, r) for r in radii]
+    sums = aperture_photometry(residual, apertures, mask=no_data)
+    variances = aperture_photometry(variance, apertures, mask=no_data)
+    for j in range(len(radii)):
+        flux[:, j] = np.asarray(sums[f"aperture_sum_{j}"])
+        err[:, j] = np.sqrt(np.asarray(variances[f"aperture_sum_{j}"]) * noise_correlation)
     corr[:] = aperture_corrections(kernels, y, profile, radii)
     return flux, err, corr
 
