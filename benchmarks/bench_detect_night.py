@@ -44,7 +44,6 @@ import argparse
 import pathlib
 import sys
 import tempfile
-from contextlib import nullcontext
 
 # the script's folder is on sys.path when it is run as a script
 from _machine import limit_threads, machine_state
@@ -56,7 +55,6 @@ sys.path.insert(0, str(pathlib.Path(__file__).resolve().parents[1]))
 import yaml  # noqa: E402
 
 from tests._night_truth import (  # noqa: E402
-    centred_empty_segments,
     compare,
     night_config,
     simulate_and_reduce,
@@ -75,12 +73,6 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument(
         "--compare-only", action="store_true", help="reuse the night reduced in --workdir"
     )
-    parser.add_argument(
-        "--centre-empty-segments",
-        action="store_true",
-        help="work around detect's failure on segments with a non-positive image sum "
-        "(tests/_night_truth.py: centred_empty_segments)",
-    )
     args = parser.parse_args(argv)
     print(machine_state())
     with tempfile.TemporaryDirectory() as tmp:
@@ -96,9 +88,7 @@ def main(argv: list[str] | None = None) -> int:
         )
         path = work / "night.yaml"
         path.write_text(yaml.safe_dump(config))
-        guard = centred_empty_segments() if args.centre_empty_segments else nullcontext()
-        with guard:
-            result = compare(path) if args.compare_only else simulate_and_reduce(path)
+        result = compare(path) if args.compare_only else simulate_and_reduce(path)
     print(machine_state())
     for line in result.summary():
         print(line)

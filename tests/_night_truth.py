@@ -19,7 +19,6 @@ catalogue with the truth in the rectified frame.
 
 from __future__ import annotations
 
-import contextlib
 import itertools
 import time
 import warnings
@@ -354,47 +353,3 @@ def simulate_and_reduce(config_path: Path, progress=None) -> NightComparison:
     timings["compare"] = time.perf_counter() - tic
     result.timings = timings
     return result
-
-
-class _CentredCatalog:
-    """A photutils SourceCatalog whose NaN centroids are replaced by the box centres."""
-
-    def __init__(self, catalog):
-        self._catalog = catalog
-
-    def __getattr__(self, name):
-        return getattr(self._catalog, name)
-
-    def _centroid(self, axis: str) -> np.ndarray:
-        value = np.array(getattr(self._catalog, f"{axis}_centroid"), dtype=float)
-        lo = np.asarray(getattr(self._catalog, f"bbox_{axis}min"), dtype=float)
-        hi = np.asarray(getattr(self._catalog, f"bbox_{axis}max"), dtype=float)
-        return np.where(np.isfinite(value), value, 0.5 * (lo + hi))
-
-    @property
-    def x_centroid(self) -> np.ndarray:
-        return self._centroid("x")
-
-    @property
-    def y_centroid(self) -> np.ndarray:
-        return self._centroid("y")
-
-
-@contextlib.contextmanager
-def centred_empty_segments():
-    """Detect with a segment of non-positive image sum centred on its box (a workaround).
-
-    Detect (as of this writing) fails on large nights when a segment of its
-    S/N map has a non-positive sum in the image: photutils gives it a NaN
-    centroid, which ``cKDTree`` and the fit stamps refuse.  Inside this
-    context such a segment is placed at its bounding box's centre instead, so
-    the rest of the stage can be measured; the benchmark says when it is used.
-    """
-    import pipeline.stages.detect as stage
-
-    original = stage.SourceCatalog
-    stage.SourceCatalog = lambda *args, **kwargs: _CentredCatalog(original(*args, **kwargs))
-    try:
-        yield
-    finally:
-        stage.SourceCatalog = original

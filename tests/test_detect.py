@@ -665,3 +665,28 @@ def test_aperture_sums_and_errors_match_photutils():
         # 1e-12 relative: the same sums in another order (double precision).
         np.testing.assert_allclose(flux[:, j], ref["aperture_sum"], rtol=1e-12)
         np.testing.assert_allclose(err[:, j], ref["aperture_sum_err"], rtol=1e-12)
+
+
+def test_segment_without_light_starts_at_its_snr_peak():
+    # A segment of the S/N map whose image pixels sum to <= 0 has no centroid
+    # (photutils gives NaN), which crashed the grouping and the fit stamps on
+    # large nights; it must start at its highest S/N pixel instead.
+    from photutils.segmentation import SegmentationImage, SourceCatalog
+
+    from pipeline.stages.detect import _start_positions
+
+    labels = np.zeros((20, 30), dtype=int)
+    labels[2:7, 3:9] = 1  # a star: positive image, centroid defined
+    labels[10:16, 15:25] = 2  # noise: the image sums to a negative value
+    image = np.zeros(labels.shape)
+    image[4, 5] = 100.0
+    image[10:16, 15:25] = -1.0
+    snr = np.zeros(labels.shape)
+    snr[labels > 0] = 3.0
+    snr[12, 21] = 9.0
+    segm = SegmentationImage(labels)
+    cat = SourceCatalog(image, segm)
+    assert not np.isfinite(cat.x_centroid[1])
+    x, y = _start_positions(cat, segm, snr)
+    assert (x[0], y[0]) == (5.0, 4.0)
+    assert (x[1], y[1]) == (21.0, 12.0)

@@ -152,14 +152,35 @@ class DetectResult:
     problems: list[str] = field(default_factory=list)
 
 
-def _candidates(cat, snr_peak, isolated, min_snr, n_max):
-    """Bright isolated sources, brightest first."""
-    ok = (
-        isolated & (snr_peak >= min_snr) & np.isfinite(cat.x_centroid) & np.isfinite(cat.y_centroid)
-    )
-    order = np.argsort(-snr_peak)
-    chosen = [i for i in order if ok[i]][:n_max]
-    return chosen
+def _start_positions(cat, segm, snr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Start positions of the fits: each segment's centroid, or its S/N peak.
+
+    A segment of the S/N map whose image pixels sum to zero or less (noise,
+    or a faint source on a dip left by a neighbour's model) has no centroid
+    (photutils gives NaN); it starts at its highest S/N pixel instead.
+
+    Parameters
+    ----------
+    cat : `~photutils.segmentation.SourceCatalog`
+        Catalogue of the segments, in ``segm``'s label order.
+    segm : `~photutils.segmentation.SegmentationImage`
+    snr : ndarray
+        The S/N map the segments were cut from.
+
+    Returns
+    -------
+    x, y : ndarray
+        Zero-based pixel positions, all finite.
+    """
+    x = np.array(cat.x_centroid, dtype=float)
+    y = np.array(cat.y_centroid, dtype=float)
+    for i in np.flatnonzero(~(np.isfinite(x) & np.isfinite(y))):
+        segment = segm.segments[i]
+        local = np.where(segment.data.astype(bool), snr[segment.slices], -np.inf)
+        iy, ix = np.unravel_index(np.argmax(local), local.shape)
+        y[i] = segment.slices[0].start + iy
+        x[i] = segment.slices[1].start + ix
+    return x, y
 
 
 def _empty_catalog(radii) -> QTable:
@@ -357,7 +378,7 @@ def detect(
     data_for_cat = np.where(no_data, 0.0, residual)
     cat = SourceCatalog(data_for_cat, segm, mask=no_data)
     peak = np.array([snr[s.slices][s.data.astype(bool)].max() for s in segm.segments])
-    cx, cy = np.asarray(cat.x_centroid), np.asarray(cat.y_centroid)
+    cx, cy = _start_positions(cat, segm, snr)
     point = deconvolved
     fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
 
@@ -393,7 +414,6 @@ def detect(
         return best, rows
 
     point = deconvolved
-    cx, cy = np.asarray(cat.x_centroid), np.asarray(cat.y_centroid)
     blended = np.asarray(_deblended(cat.labels, parent))
     fwhm, seeing_rows = fit_seeing(cx, cy, peak, blended, profile)
     if fwhm is not None:
@@ -402,7 +422,7 @@ def detect(
             filter_profile = profile
             snr, segm, parent = segment(filter_profile)
             cat = SourceCatalog(data_for_cat, segm, mask=no_data)
-            cx, cy = np.asarray(cat.x_centroid), np.asarray(cat.y_centroid)
+            cx, cy = _start_positions(cat, segm, snr)
             blended = np.asarray(_deblended(cat.labels, parent))
     else:
         warnings.warn(
@@ -448,7 +468,7 @@ def detect(
         _snr2, segm2, _parent2 = segment(filter_profile, cleaned)
         if segm2 is not None:
             cat2 = SourceCatalog(np.where(no_data, 0.0, cleaned), segm2, mask=no_data)
-            nx2, ny2 = np.asarray(cat2.x_centroid), np.asarray(cat2.y_centroid)
+            nx2, ny2 = _start_positions(cat2, segm2, _snr2)
             near = cKDTree(np.column_stack([fits_["x"], fits_["y"]])).query(
                 np.column_stack([nx2, ny2])
             )[0]
