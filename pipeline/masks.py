@@ -50,6 +50,10 @@ class MaskBit(enum.IntFlag):
         Set by rectify: the rectified pixel draws on strip pixels beyond the
         chip's columns or beyond the rows handed to the stage (start or end of
         the night, or too small an overlap).  Image and variance are NaN.
+    ZERO_POINT
+        Set by the science stage: the pixel lies in a stretch whose zero point
+        is unreliable (a cloud, a jump in the stars' scatter) or was bridged
+        from its neighbours for want of reference stars.  Values are kept.
     """
 
     SATURATED = 1 << 0
@@ -61,6 +65,7 @@ class MaskBit(enum.IntFlag):
     GAP = 1 << 6
     LOW_EXPOSURE = 1 << 7
     OUTSIDE = 1 << 8
+    ZERO_POINT = 1 << 9
 
 
 #: One-line meaning of each bit (at most 46 characters: a FITS card comment);
@@ -75,6 +80,7 @@ BIT_MEANINGS: dict[MaskBit, str] = {
     MaskBit.GAP: "no raw data for this row; no data",
     MaskBit.LOW_EXPOSURE: "start-of-scan ramp: partial exposure",
     MaskBit.OUTSIDE: "rectify drew on pixels beyond the data",
+    MaskBit.ZERO_POINT: "zero point unreliable or interpolated",
 }
 
 

@@ -55,6 +55,7 @@ STAGE_MODULES = (
     "catalog",
     "astrometry",
     "zeropoint",
+    "science",
     "mosaic",
     "report",
 )
@@ -62,6 +63,7 @@ STAGE_MODULES = (
 
 def _load_graph() -> tuple[Stage, ...]:
     stages = []
+    waiting = set()  # registered modules that do not declare a STAGE yet
     for name in STAGE_MODULES:
         module_name = f"{__name__}.{name}"
         if importlib.util.find_spec(module_name) is None:
@@ -70,6 +72,11 @@ def _load_graph() -> tuple[Stage, ...]:
         stage = getattr(module, "STAGE", None)
         if stage is None:
             # The module exists but does not declare itself yet (work in progress).
+            waiting.add(name)
+            continue
+        if waiting.intersection(stage.requires):
+            # It needs a stage still in progress: it joins the graph with it.
+            waiting.add(name)
             continue
         stages.append(stage)
     return check_graph(stages)

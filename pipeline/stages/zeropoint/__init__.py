@@ -1,8 +1,10 @@
 """Zero point: the night's photometric calibration along time.
 
-The stage itself (matched reference stars in, calibrated catalogues and
-images out) joins once astrometry provides the matches; this package holds
-its pure functions:
+The stage (:mod:`._stage`, :func:`calibrate_catalog`) takes astrometry's
+catalogue of matched reference stars and returns the calibrated catalogue,
+the zero point along the night, each stretch's verdict and the star flat;
+the ``science`` stage scales the images to one fixed zero point.  Its pure
+functions:
 
 * :func:`fit_zero_point` (:mod:`._fit`): ``Z(t)`` as a smooth spline in time
   plus an optional colour term, robust to variable and mismatched stars.
@@ -19,13 +21,27 @@ from pipeline.stages.zeropoint._quality import (
     scale_to_zero_point,
     star_flat,
 )
+from pipeline.stages.zeropoint._stage import (
+    STAGE,
+    CalibratedNight,
+    ZeroPointOptions,
+    calibrate_catalog,
+    column_times,
+    night_line_time,
+)
 
 __all__ = [
+    "STAGE",
+    "CalibratedNight",
     "ZeroPointFit",
     "ZeroPointFlag",
+    "ZeroPointOptions",
+    "calibrate_catalog",
     "clear_level",
+    "column_times",
     "fit_zero_point",
     "interval_quality",
+    "night_line_time",
     "scale_to_zero_point",
     "star_flat",
 ]

@@ -1,0 +1,228 @@
+"""Science: calibrated images, scaled to one fixed zero point, with the solved WCS.
+
+Per stretch, the rectified image and its variance are multiplied by
+:func:`~pipeline.stages.zeropoint.scale_to_zero_point` of the zero point
+at each column's time (the zeropoint stage's ``zero_point`` grid,
+interpolated; :func:`~pipeline.stages.zeropoint.column_times`), so that a
+source of magnitude ``m`` sums to ``10**(0.4 (PHOTZP - m))`` on every night
+and nights can be stacked.  The variance is multiplied by the factor's
+square; the flags are carried, plus :attr:`~pipeline.masks.MaskBit.ZERO_POINT`
+on every pixel of a stretch whose zero point the zeropoint stage flagged.
+The solved WCS of astrometry's ``wcs`` product replaces rectify's nominal
+one (the alternate ``NIGHT`` grid stays).
+
+Header cards (FLUX, FLUXVAR, FLAGS and primary):
+
+``PHOTZP``
+    The fixed zero point, mag: ``m = PHOTZP - 2.5 log10(sum of FLUX)``
+    (the keyword of the ESO science data products standard, from memory).
+``ZPMIN``, ``ZPMAX``, ``ZPERR``
+    Range of the zero point at which the stretch was recorded (mag for
+    1 e-/s) and its largest 1-sigma error, mag.
+``ZPFLAGS``, ``ZPINTERP``
+    The stretch's :class:`~pipeline.stages.zeropoint.ZeroPointFlag` bits and
+    whether its zero point was bridged from its neighbours.
+``SEEING``
+    Nominal seeing FWHM of the stretch (detect's fit), arcsec.
+``BUNIT``
+    ``ct`` (variance ``ct2``): counts on the fixed zero point's scale, no
+    longer electrons.
+"""
+
+from __future__ import annotations
+
+import logging
+import re
+import warnings
+
+import numpy as np
+from astropy import units as u
+from astropy.io import fits
+from astropy.wcs import WCS, FITSFixedWarning
+from pydantic import BaseModel, ConfigDict
+
+from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.products import (
+    FLAGS_EXTENSION,
+    FLUX_EXTENSION,
+    VARIANCE_EXTENSION,
+    flag_header,
+)
+from pipeline.stages.base import BLOCK_INDEX, Stage
+from pipeline.stages.zeropoint import column_times, night_line_time, scale_to_zero_point
+
+__all__ = ["STAGE", "ScienceOptions", "calibrate_image", "replace_wcs"]
+
+log = logging.getLogger(__name__)
+
+#: Keywords of a primary (not alternate) celestial WCS, removed before the solved one goes in.
+_WCS_KEY = re.compile(
+    r"^(WCSAXES|WCSNAME|CTYPE\d|CUNIT\d|CRPIX\d|CRVAL\d|CDELT\d|CROTA\d|PC\d_\d|CD\d_\d"
+    r"|PV\d_\d+|PS\d_\d+|LONPOLE|LATPOLE|RADESYS|EQUINOX|A_\w+|B_\w+|AP_\w+|BP_\w+)$"
+)
+#: Unit of calibrated images: counts of the fixed zero point.
+_UNIT = u.ct
+
+
+class ScienceOptions(BaseModel):
+    """Options of the science stage (``stages.science``): none; the zero point is zeropoint's."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+def replace_wcs(header: fits.Header, cards) -> fits.Header:
+    """``header`` with its primary WCS replaced by ``cards`` (alternate WCSs kept).
+
+    Parameters
+    ----------
+    header : astropy.io.fits.Header
+    cards : astropy.io.fits.Header, mapping or sequence
+        The new WCS: a header, ``{keyword: value}``, or ``[keyword, value(,
+        comment)]`` entries (astrometry's ``wcs`` product, read from JSON).
+    """
+    new = fits.Header()
+    if isinstance(cards, fits.Header):
+        new = cards.copy()
+    elif isinstance(cards, dict):
+        for key, value in cards.items():
+            new[key] = tuple(value) if isinstance(value, list) else value
+    else:
+        for entry in cards:
+            new[entry[0]] = tuple(entry[1:]) if len(entry) > 2 else entry[1]
+    out = header.copy()
+    for key in [k for k in out if _WCS_KEY.match(k)]:
+        del out[key]
+    for card in new.cards:
+        out[card.keyword] = (card.value, card.comment)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FITSFixedWarning)
+        if not WCS(out).has_celestial:
+            raise ValueError(
+                "the solved WCS handed to the science stage is not celestial; check "
+                "astrometry's wcs product for this stretch."
+            )
+    return out
+
+
+def calibrate_image(
+    image: np.ndarray,
+    variance: np.ndarray,
+    flags: np.ndarray,
+    zero_point: np.ndarray,
+    *,
+    target_zero_point: float,
+    exposure: float,
+    unreliable: bool = False,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Scale a rectified image to ``target_zero_point``.
+
+    Parameters
+    ----------
+    image, variance : ndarray, shape (n_y, n_x)
+        Rectified electrons and their variance (``x``, axis 1, along the scan).
+    flags : ndarray of uint16, shape (n_y, n_x)
+    zero_point : ndarray, shape (n_x,)
+        Zero point at each column's time, mag for 1 e-/s.
+    target_zero_point : float
+        Fixed zero point of the result, mag.
+    exposure : float
+        Crossing time, s.
+    unreliable : bool, optional
+        Set :attr:`MaskBit.ZERO_POINT` on every pixel.
+
+    Returns
+    -------
+    image, variance, flags : ndarray
+        float32, float32 (scaled by the square) and uint16.
+    """
+    factor = scale_to_zero_point(zero_point, target_zero_point, exposure)[None, :]
+    out_flags = np.asarray(flags).astype(MASK_DTYPE)
+    if unreliable:
+        out_flags = out_flags | MASK_DTYPE.type(MaskBit.ZERO_POINT)
+    return (
+        (np.asarray(image, float) * factor).astype(np.float32),
+        (np.asarray(variance, float) * factor**2).astype(np.float32),
+        out_flags,
+    )
+
+
+def _values(table, name: str) -> np.ndarray:
+    column = table[name]
+    return np.asarray(getattr(column, "value", column), dtype=float)
+
+
+def _night_column(header) -> int:
+    return round(header["CRVAL1A"] - (header["CRPIX1A"] - 1.0) * header["CDELT1A"])
+
+
+def _run(*, inputs, options: ScienceOptions, context) -> dict:
+    stretch = context.stretch
+    rectified = inputs["rectify"]["image"]
+    flux_header = rectified[FLUX_EXTENSION].header
+    zp = inputs["zeropoint"]
+    grid, intervals = zp["zero_point"], zp["intervals"]
+    target = float(grid.meta["target_zero_point_mag"])
+    line_time = night_line_time(inputs["ingest"][BLOCK_INDEX])
+    exposure = float(flux_header.get("XPOSURE", context.camera.tdi_rows * line_time))
+    n_x = rectified[FLUX_EXTENSION].data.shape[1]
+    x = _night_column(flux_header) + np.arange(n_x)
+    t = column_times(x, line_time, context.camera.tdi_rows)
+    z = np.interp(t, _values(grid, "t"), _values(grid, "zero_point"))
+    z_err = np.interp(t, _values(grid, "t"), _values(grid, "zero_point_err"))
+    row = intervals[list(intervals["stretch"]).index(stretch.id)]
+    flags, interpolated = int(row["flags"]), bool(row["interpolated"])
+    image, variance, mask = calibrate_image(
+        rectified[FLUX_EXTENSION].data,
+        rectified[VARIANCE_EXTENSION].data,
+        rectified[FLAGS_EXTENSION].data,
+        z,
+        target_zero_point=target,
+        exposure=exposure,
+        unreliable=bool(flags) or interpolated,
+    )
+    solved = inputs["astrometry"]["wcs"].get(stretch.id)
+    if solved is None:
+        raise ValueError(
+            f"astrometry's wcs product has no solution for {stretch.id}; rerun astrometry."
+        )
+    seeing = inputs["detect"]["seeing"]
+    fwhm_px = float(_values(seeing, "fwhm")[0])  # first row: the whole stretch
+    scale = 3600.0 * abs(float(flux_header.get("CDELT2", np.nan)))
+    cards = [
+        ("PHOTZP", target, "[mag] zero point: m = PHOTZP - 2.5 log10(sum)"),
+        ("ZPMIN", round(float(np.min(z)), 5), "[mag] lowest zero point recorded (1 e-/s)"),
+        ("ZPMAX", round(float(np.max(z)), 5), "[mag] highest zero point recorded (1 e-/s)"),
+        ("ZPERR", round(float(np.max(z_err)), 5), "[mag] largest error of the zero point"),
+        ("ZPFLAGS", flags, "zero-point flags: 1 cloud, 2 scatter, 4 few stars"),
+        ("ZPINTERP", interpolated, "zero point bridged from neighbouring stretches"),
+        ("SEEING", round(fwhm_px * scale, 3), "[arcsec] nominal seeing FWHM (detect)"),
+    ]
+    hdul = fits.HDUList([rectified[0].copy()])
+    for name, data in (
+        (FLUX_EXTENSION, image),
+        (VARIANCE_EXTENSION, variance),
+        (FLAGS_EXTENSION, mask),
+    ):
+        header = replace_wcs(rectified[name].header, solved)
+        for key, value, comment in cards:
+            header[key] = (value, comment)
+        hdul.append(fits.ImageHDU(data=data, header=header, name=name))
+    hdul[FLUX_EXTENSION].header["BUNIT"] = _UNIT.to_string()
+    hdul[VARIANCE_EXTENSION].header["BUNIT"] = (_UNIT**2).to_string()
+    hdul[FLAGS_EXTENSION].header.update(flag_header())  # names the ZERO_POINT bit
+    for key, value, comment in cards:
+        hdul[0].header[key] = (value, comment)
+    log.info("%s: zero point %.3f-%.3f mag -> %.3f", stretch.id, z.min(), z.max(), target)
+    return {"image": hdul}
+
+
+#: Declaration of the science stage: per stretch, after zeropoint.
+STAGE = Stage(
+    name="science",
+    run=_run,
+    options=ScienceOptions,
+    requires=("ingest", "rectify", "detect", "astrometry", "zeropoint"),
+    scope="stretch",
+    uses=("camera.tdi_rows",),
+    description="Calibrated images at one fixed zero point, with the solved WCS.",
+)

@@ -1,0 +1,397 @@
+"""The zeropoint stage: the night's zero point from astrometry's matched catalogue.
+
+Time of a source: the rectified frame's ``x`` runs along the scan at one
+column per line time (:mod:`pipeline.geometry.rectified`), and ``x`` equals
+the night row in which the source's centroid was read out to within a slow
+drift of a few line times.  So a column ``x`` was observed, at mid-crossing,
+``t = (x - tdi_rows / 2) * line_time`` seconds after night row 0 was read
+out (:func:`column_times`); stretch ``[start, stop)`` covers the times of
+columns ``start`` to ``stop``.  The science stage uses the same map.
+"""
+
+from __future__ import annotations
+
+import itertools
+import logging
+from dataclasses import dataclass
+
+import numpy as np
+from astropy import units as u
+from astropy.table import QTable, Table
+from pydantic import BaseModel, ConfigDict, Field
+
+from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, Stage
+from pipeline.stages.detect import SourceFlag
+from pipeline.stages.zeropoint._fit import fit_zero_point
+from pipeline.stages.zeropoint._quality import (
+    ZeroPointFlag,
+    clear_level,
+    interval_quality,
+    star_flat,
+)
+
+__all__ = [
+    "STAGE",
+    "CalibratedNight",
+    "ZeroPointOptions",
+    "calibrate_catalog",
+    "column_times",
+    "night_line_time",
+]
+
+log = logging.getLogger(__name__)
+
+#: 2.5 / ln(10): magnitude error per unit relative flux error (common practice).
+_MAG_PER_RELATIVE_FLUX = 2.5 / np.log(10.0)
+
+#: Source flags that keep a star out of the zero-point fit (its flux is doubtful).
+_DOUBTFUL = (
+    SourceFlag.SATURATED
+    | SourceFlag.BLENDED
+    | SourceFlag.EDGE
+    | SourceFlag.COSMIC_RAY
+    | SourceFlag.FIT_FAILED
+)
+
+
+class ZeroPointOptions(BaseModel):
+    """Options of the zeropoint stage (``stages.zeropoint``)."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    knot_spacing: float = Field(
+        60.0,
+        gt=0,
+        description="Seconds between spline knots of Z(t): the shortest "
+        "change of transparency followed.",
+    )
+    clip: float = Field(4.0, gt=0, description="Reject stars beyond this many sigma.")
+    fit_colour_term: bool = Field(
+        False, description="Fit a colour term from the reference colours (needs them)."
+    )
+    min_snr: float = Field(20.0, gt=0, description="Least S/N of a reference star used in the fit.")
+    max_drop: float = Field(
+        0.1, gt=0, description="Largest drop below the clear level (mag) of a clear stretch."
+    )
+    max_scatter_ratio: float = Field(
+        2.0, gt=1, description="Largest stars' scatter in a stretch over the night's."
+    )
+    min_stars: int = Field(
+        10, ge=1, description="Fewest reference stars for a stretch's own zero point."
+    )
+    flat_bin_columns: int = Field(
+        16, ge=1, description="Chip columns (rectified rows y) per star-flat bin."
+    )
+    flat_min_stars: int = Field(5, ge=1, description="Fewest stars of a star-flat bin.")
+    flat_max_offset: float = Field(
+        0.01, gt=0, description="A star-flat bin further off (mag, and 4 sigma) is deviant."
+    )
+    flat_max_trend: float = Field(
+        0.01, gt=0, description="Largest star-flat trend from edge to edge, mag."
+    )
+    target_zero_point: float = Field(
+        25.0, description="Zero point of calibrated images: mag of a source summing to 1."
+    )
+
+
+def night_line_time(block_index: Table) -> float:
+    """The night's line time (s) from ingest's block index (column ``line_time``)."""
+    if "line_time" not in block_index.colnames or len(block_index) == 0:
+        raise ValueError(
+            "the block index has no line_time column or no block; the zero point needs "
+            "ingest's block index of a night with usable blocks."
+        )
+    return float(np.median(np.asarray(block_index["line_time"], dtype=float)))
+
+
+def column_times(x, line_time: float, tdi_rows: int) -> np.ndarray:
+    """Mid-crossing time (s after night row 0 was read out) of rectified columns ``x``."""
+    return (np.asarray(x, dtype=float) - 0.5 * tdi_rows) * line_time
+
+
+@dataclass(frozen=True)
+class CalibratedNight:
+    """Products of :func:`calibrate_catalog` (see there)."""
+
+    catalog: QTable
+    zero_point: QTable
+    intervals: QTable
+    star_flat: QTable
+    colour_term: dict
+    problems: list[str]
+
+
+def _value(column) -> np.ndarray:
+    return np.asarray(getattr(column, "value", column), dtype=float)
+
+
+def _check_reference(catalog: QTable, fit_colour_term: bool) -> None:
+    if "ref_mag" not in catalog.colnames or not np.isfinite(_value(catalog["ref_mag"])).any():
+        raise ValueError(
+            "The reference catalogue gives no magnitude in the night's passband (ref_mag is "
+            "missing or NaN for every matched star): use a reference catalogue with that "
+            "passband in stages.astrometry, or the zero point cannot be fitted."
+        )
+    if fit_colour_term and (
+        "ref_colour" not in catalog.colnames or not np.isfinite(_value(catalog["ref_colour"])).any()
+    ):
+        raise ValueError(
+            "stages.zeropoint.fit_colour_term is true but the reference catalogue gives no "
+            "colour (ref_colour missing or NaN for every star): use a catalogue with colours "
+            "or set fit_colour_term: false."
+        )
+
+
+def calibrate_catalog(
+    catalog: QTable,
+    *,
+    exposure: float,
+    line_time: float,
+    tdi_rows: int,
+    stretch_rows: list[tuple[int, int]],
+    n_y: int,
+    knot_spacing: float = 60.0,
+    clip: float = 4.0,
+    fit_colour_term: bool = False,
+    min_snr: float = 20.0,
+    max_drop: float = 0.1,
+    max_scatter_ratio: float = 2.0,
+    min_stars: int = 10,
+    flat_bin_columns: int = 16,
+    flat_min_stars: int = 5,
+    flat_max_offset: float = 0.01,
+    flat_max_trend: float = 0.01,
+    target_zero_point: float = 25.0,
+) -> CalibratedNight:
+    """Fit the night's zero point and calibrate every source of the catalogue.
+
+    Parameters
+    ----------
+    catalog : astropy.table.QTable
+        Astrometry's night catalogue: ``x``, ``y`` (rectified pixels; ``x``
+        along the scan), ``flux_psf``, ``flux_psf_err`` (electrons over the
+        crossing), ``flags``, ``ref_mag`` and ``ref_colour`` (mag, NaN where
+        unmatched); ``snr`` optional (else ``flux_psf / flux_psf_err``).
+    exposure : float
+        Crossing time of every pixel, s (``XPOSURE``).
+    line_time : float
+        Line time, s; with ``tdi_rows`` sets :func:`column_times`.
+    tdi_rows : int
+        Rows of the chip a charge packet crosses.
+    stretch_rows : list of (int, int)
+        Each stretch's own night rows ``[start, stop)``: the intervals judged.
+    n_y : int
+        Rows ``y`` of the rectified frame (across the scan), for the star flat.
+    knot_spacing, clip, fit_colour_term : optional
+        See :func:`~pipeline.stages.zeropoint.fit_zero_point`.
+    min_snr : float, optional
+        Least S/N of a reference star used in the fit.
+    max_drop, max_scatter_ratio, min_stars : optional
+        See :func:`~pipeline.stages.zeropoint.interval_quality`.
+    flat_bin_columns, flat_min_stars, flat_max_offset : optional
+        ``bin_columns``, ``min_stars``, ``max_offset`` of
+        :func:`~pipeline.stages.zeropoint.star_flat` (bins of ``y``).
+    flat_max_trend : float, optional
+        A star-flat trend from edge to edge above this (mag) is reported.
+    target_zero_point : float, optional
+        Fixed zero point of calibrated images, mag (stored in the products' meta).
+
+    Returns
+    -------
+    CalibratedNight
+        ``catalog`` (input plus ``t``, ``mag``, ``mag_err``,
+        ``zero_point``, ``zero_point_err``, ``zp_flags``, ``zp_used``),
+        ``zero_point`` (grid table), ``intervals``, ``star_flat``,
+        ``colour_term`` (dict) and ``problems`` (list of str).
+
+    Raises
+    ------
+    ValueError
+        If the reference catalogue has no magnitudes, or no colours while
+        ``fit_colour_term`` is set (the message says what to change).
+    """
+    _check_reference(catalog, fit_colour_term)
+    flux = _value(catalog["flux_psf"])
+    flux_err = _value(catalog["flux_psf_err"])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        snr = _value(catalog["snr"]) if "snr" in catalog.colnames else flux / flux_err
+        m_inst = -2.5 * np.log10(flux / exposure)
+        m_inst_err = _MAG_PER_RELATIVE_FLUX * flux_err / flux
+    t = column_times(_value(catalog["x"]), line_time, tdi_rows)
+    ref_mag = _value(catalog["ref_mag"])
+    colour = _value(catalog["ref_colour"]) if "ref_colour" in catalog.colnames else None
+    flags = np.asarray(catalog["flags"]).astype(np.int64)
+    star = (
+        np.isfinite(ref_mag)
+        & np.isfinite(m_inst)
+        & (snr >= min_snr)
+        & ((flags & int(_DOUBTFUL)) == 0)
+    )
+    if fit_colour_term:
+        star &= np.isfinite(colour)
+    edges = column_times(
+        np.array([s for s, _ in stretch_rows] + [stretch_rows[-1][1]]), line_time, tdi_rows
+    )
+    fit = fit_zero_point(
+        t[star],
+        (ref_mag - m_inst)[star],
+        m_inst_err[star],
+        colour[star] if fit_colour_term else None,
+        knot_spacing=knot_spacing,
+        t_range=(float(edges[0]), float(edges[-1])),
+        clip=clip,
+    )
+    step = knot_spacing / 8.0  # linear interpolation error < 1e-4 mag for 25 s clouds
+    grid_t = np.arange(edges[0], edges[-1] + step, step)
+    grid_z, grid_err = fit(grid_t), fit.error(grid_t)
+    clear = clear_level(grid_z)
+    intervals = interval_quality(
+        edges,
+        t[star],
+        fit.residual,
+        fit.sigma,
+        fit.used,
+        grid_t,
+        grid_z,
+        clear=clear,
+        max_drop=max_drop,
+        max_scatter_ratio=max_scatter_ratio,
+        min_stars=min_stars,
+    )
+    intervals.add_column([f"s{k:04d}" for k in range(len(stretch_rows))], 0, name="stretch")
+    in_hole = [any(a < hi and b > lo for a, b in fit.holes) for lo, hi in itertools.pairwise(edges)]
+    few = (np.asarray(intervals["flags"]) & int(ZeroPointFlag.FEW_STARS)) != 0
+    intervals["interpolated"] = few | np.asarray(in_hole, dtype=bool)
+    intervals.meta["clear_level_mag"] = clear
+
+    # Every source: Z at its time, its stretch's flags, the colour term where it has a colour.
+    which = np.clip(np.searchsorted(edges, t, side="right") - 1, 0, len(stretch_rows) - 1)
+    z, z_err = fit(t), fit.error(t)
+    colour_shift = (
+        np.where(np.isfinite(colour), fit.colour_term * colour, 0.0)
+        if fit_colour_term
+        else np.zeros(len(catalog))
+    )
+    out = catalog.copy()
+    out["t"] = t * u.s
+    out["zero_point"] = z * u.mag
+    out["zero_point_err"] = z_err * u.mag
+    out["mag"] = (m_inst + z + colour_shift) * u.mag
+    out["mag_err"] = np.hypot(m_inst_err, z_err) * u.mag
+    out["zp_flags"] = np.asarray(intervals["flags"])[which].astype(np.int32)
+    used = np.zeros(len(catalog), bool)
+    used[np.flatnonzero(star)[fit.used]] = True
+    out["zp_used"] = used
+    out.meta["zp_flag_bits"] = {flag.name: int(flag) for flag in ZeroPointFlag}
+    out.meta["target_zero_point_mag"] = target_zero_point
+
+    zero_point = QTable(
+        {"t": grid_t * u.s, "zero_point": grid_z * u.mag, "zero_point_err": grid_err * u.mag}
+    )
+    zero_point.meta.update(
+        {
+            "description": "Z(t): mag of a source giving 1 e-/s; t in s after night row 0 "
+            "was read out (mid-crossing of the column).",
+            "line_time_s": line_time,
+            "tdi_rows": int(tdi_rows),
+            "exposure_s": exposure,
+            "target_zero_point_mag": target_zero_point,
+            "holes_s": [list(h) for h in fit.holes],
+        }
+    )
+    flat, trend = star_flat(
+        _value(catalog["y"])[star],
+        fit.residual,
+        fit.used,
+        n_y,
+        bin_columns=flat_bin_columns,
+        min_stars=flat_min_stars,
+        max_offset=flat_max_offset,
+    )
+    flat.meta.update(trend)
+    flat.meta["axis"] = "y (across the scan)"
+    colour_term = {
+        "fitted": bool(fit_colour_term),
+        "colour_term": fit.colour_term,
+        "colour_term_err": fit.colour_term_err,
+        "extra_scatter_mag": fit.extra_scatter,
+        "n_reference": int(star.sum()),
+        "n_used": int(fit.used.sum()),
+    }
+    return CalibratedNight(
+        catalog=out,
+        zero_point=zero_point,
+        intervals=intervals,
+        star_flat=flat,
+        colour_term=colour_term,
+        problems=_problems(intervals, trend, flat_max_trend),
+    )
+
+
+def _problems(intervals: QTable, trend: dict, max_trend: float) -> list[str]:
+    problems = []
+    for row in intervals:
+        flags = ZeroPointFlag(int(row["flags"]))
+        if flags:
+            names = "+".join(f.name for f in ZeroPointFlag if f in flags)
+            what = "interpolated from its neighbours" if row["interpolated"] else "unreliable"
+            problems.append(
+                f"{row['stretch']}: zero point {what} ({names}; {int(row['n_stars'])} stars, "
+                f"drop {row['drop'].to_value(u.mag):.3f} mag)"
+            )
+    if np.isfinite(trend["edge_to_edge"]) and abs(trend["edge_to_edge"]) > max_trend:
+        problems.append(
+            f"star flat: trend of {trend['edge_to_edge']:+.4f} mag from edge to edge "
+            f"(limit {max_trend} mag): check the flat field"
+        )
+    if trend["deviant"]:
+        problems.append(
+            f"star flat: {len(trend['deviant'])} deviant bin(s) {trend['deviant']}: check the "
+            "flat field there"
+        )
+    return problems
+
+
+def _run(*, inputs, options: ZeroPointOptions, context) -> dict:
+    catalog = inputs["astrometry"]["catalog"]
+    line_time = night_line_time(inputs["ingest"][BLOCK_INDEX])
+    tdi_rows = int(context.camera.tdi_rows)
+    stretches = context.stretches
+    n_y = int(np.nanmax(_value(catalog["y"]))) + 1 if len(catalog) else 1
+    result = calibrate_catalog(
+        catalog,
+        exposure=tdi_rows * line_time,
+        line_time=line_time,
+        tdi_rows=tdi_rows,
+        stretch_rows=[(s.start, s.stop) for s in stretches],
+        n_y=n_y,
+        **options.model_dump(),
+    )
+    log.info(
+        "zero point: %d of %d reference stars used, %d stretch(es) flagged",
+        result.colour_term["n_used"],
+        result.colour_term["n_reference"],
+        int(np.count_nonzero(result.intervals["flags"])),
+    )
+    out = {
+        "catalog": result.catalog,
+        "zero_point": result.zero_point,
+        "intervals": result.intervals,
+        "star_flat": result.star_flat,
+        "colour_term": result.colour_term,
+    }
+    if result.problems:
+        out[PROBLEMS] = result.problems
+    return out
+
+
+#: Declaration of the zeropoint stage: night scope, after astrometry.
+STAGE = Stage(
+    name="zeropoint",
+    run=_run,
+    options=ZeroPointOptions,
+    requires=("ingest", "astrometry"),
+    scope="night",
+    uses=("camera.tdi_rows",),
+    description="The night's zero point along time, calibrated magnitudes, star flat.",
+)
