@@ -189,11 +189,11 @@ def _run(*, inputs, options: ScienceOptions, context) -> dict:
     fwhm_px = float(_values(seeing, "fwhm")[0])  # first row: the whole stretch
     scale = 3600.0 * abs(float(flux_header.get("CDELT2", np.nan)))
     cards = [
-        ("PHOTZP", target, "[mag] zero point: m = PHOTZP - 2.5 log10(sum)"),
+        ("PHOTZP", target, "[mag] m = PHOTZP - 2.5 log10(sum of FLUX)"),
         ("ZPMIN", round(float(np.min(z)), 5), "[mag] lowest zero point recorded (1 e-/s)"),
         ("ZPMAX", round(float(np.max(z)), 5), "[mag] highest zero point recorded (1 e-/s)"),
         ("ZPERR", round(float(np.max(z_err)), 5), "[mag] largest error of the zero point"),
-        ("ZPFLAGS", flags, "zero-point flags: 1 cloud, 2 scatter, 4 few stars"),
+        ("ZPFLAGS", flags, "zero point: 1 cloud, 2 scatter, 4 few stars"),
         ("ZPINTERP", interpolated, "zero point bridged from neighbouring stretches"),
         ("SEEING", round(fwhm_px * scale, 3), "[arcsec] nominal seeing FWHM (detect)"),
     ]

@@ -1,0 +1,329 @@
+"""The zeropoint and science stages on a synthetic night through a stand-in upstream.
+
+The stand-ins give what ingest, rectify, detect and astrometry hand these
+stages: a block index with the line time, astrometry's night catalogue with
+``ref_mag``/``ref_colour`` and its ``wcs`` dict, a rectified image product and
+detect's seeing table.  Invented data (self-consistency): the truth is known
+because the catalogue is made from it.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from astropy import units as u
+from astropy.io import fits
+from astropy.table import QTable, Table
+from astropy.wcs import WCS
+
+from pipeline.geometry.instrument import Camera, Site
+from pipeline.masks import MaskBit, has_bits
+from pipeline.products import image_hdulist, night_grid_header
+from pipeline.stages import PROBLEMS, check_graph, science, zeropoint
+from pipeline.stages.base import BLOCK_INDEX, RAW_FILES, Stage, StageContext, Stretch
+from pipeline.stages.zeropoint import ZeroPointFlag, ZeroPointOptions
+
+LINE_TIME = 0.1  # s
+TDI_ROWS = 100  # crossing: 10 s
+STRETCH_ROWS = 3000  # 300 s per stretch
+N_STRETCHES = 6
+N_Y = 256
+CLEAR_ZP = 24.0  # mag for 1 e-/s
+COLOUR_TERM = 0.1  # mag per mag
+CLOUD_STRETCH, THIN_STRETCH = 2, 4
+CLOUD_T = (CLOUD_STRETCH + 0.5) * STRETCH_ROWS * LINE_TIME  # s, mid-stretch
+# A passing cloud 25 % deep, a Gaussian of sigma 25 s in transmission (the issue's case).
+CLOUD_DEPTH, CLOUD_SIGMA = 0.25, 25.0
+
+
+def true_zero_point(t):
+    transmission = 1.0 - CLOUD_DEPTH * np.exp(-0.5 * ((t - CLOUD_T) / CLOUD_SIGMA) ** 2)
+    return CLEAR_ZP + 2.5 * np.log10(transmission)
+
+
+def _time(x):
+    return (np.asarray(x, float) - TDI_ROWS / 2) * LINE_TIME
+
+
+def synthetic_catalog(seed=1, n_stars=4000, flat_error=None):
+    """Astrometry's night catalogue of stars with known magnitudes and colours."""
+    rng = np.random.default_rng(seed)
+    n_x = N_STRETCHES * STRETCH_ROWS
+    x = rng.uniform(0, n_x, n_stars)
+    keep = (x < THIN_STRETCH * STRETCH_ROWS) | (x >= (THIN_STRETCH + 1) * STRETCH_ROWS)
+    keep[np.flatnonzero(~keep)[:3]] = True  # three stars in the thin stretch
+    x = x[keep]
+    n = x.size
+    y = rng.uniform(0, N_Y - 1, n)
+    mag = rng.uniform(12.0, 17.0, n)
+    colour = rng.uniform(0.0, 1.5, n)
+    exposure = TDI_ROWS * LINE_TIME
+    # m_ref - m_inst = Z(t) + COLOUR_TERM * colour (the fit's convention).
+    flux = exposure * 10 ** (0.4 * (true_zero_point(_time(x)) - mag + COLOUR_TERM * colour))
+    if flat_error is not None:
+        flux *= flat_error(y)
+    flux_err = np.sqrt(flux + 400.0)  # photon noise and a sky of 400 e- in the aperture
+    measured = flux + rng.normal(0, 1, n) * flux_err
+    catalog = QTable(
+        {
+            "x": x * u.pix,
+            "y": y * u.pix,
+            "flux_psf": measured * u.electron,
+            "flux_psf_err": flux_err * u.electron,
+            "snr": measured / flux_err,
+            "flags": np.zeros(n, np.int32),
+            "stretch": (x // STRETCH_ROWS).astype(np.int32),
+            # Reference errors of 5 mmag (a typical bright-star catalogue, from memory).
+            "ref_mag": (mag + rng.normal(0, 0.005, n)) * u.mag,
+            "ref_colour": colour * u.mag,
+        }
+    )
+    return catalog, mag
+
+
+def context(stretch=None):
+    stretches = tuple(
+        Stretch(
+            k, k * STRETCH_ROWS, (k + 1) * STRETCH_ROWS, k * STRETCH_ROWS, (k + 1) * STRETCH_ROWS
+        )
+        for k in range(N_STRETCHES)
+    )
+    return StageContext(
+        site=Site(latitude=-20.0, longitude=30.0, name="Fictional Ridge"),
+        camera=Camera(n_columns=N_Y - 8, tdi_rows=TDI_ROWS, pixel_size=15.0, focal_length=4.0),
+        run=None,
+        night="synthetic",
+        stretch=None if stretch is None else stretches[stretch],
+        stretches=stretches,
+    )
+
+
+def block_index():
+    index = Table({"file": ["a.fits"], "hdu": [0], "row_start": [0], "n_rows": [18000]})
+    index["line_time"] = [LINE_TIME]
+    return index
+
+
+def run_zeropoint(catalog, **options):
+    return zeropoint.STAGE.run(
+        inputs={"ingest": {BLOCK_INDEX: block_index()}, "astrometry": {"catalog": catalog}},
+        options=ZeroPointOptions(**{"knot_spacing": 8.0, "fit_colour_term": True} | options),
+        context=context(),
+    )
+
+
+@pytest.fixture(scope="module")
+def night():
+    catalog, truth = synthetic_catalog()
+    return run_zeropoint(catalog), truth
+
+
+def test_calibrated_magnitudes_of_bright_stars_match_the_truth_without_trend(night):
+    products, truth = night
+    cat = products["catalog"]
+    error = cat["mag"].to_value(u.mag) - truth
+    bright = (cat["snr"] > 100) & (cat["zp_flags"] == 0)
+    assert bright.sum() > 1000
+    # 0.01 mag rms: the issue's requirement; here the photon noise of S/N > 100 stars
+    # (< 0.011 mag, mostly far less) and 5 mmag reference errors set it.
+    assert np.sqrt(np.mean(error[bright] ** 2)) <= 0.01
+    # No trend across the chip (y) above 0.005 mag from edge to edge (the issue's limit).
+    slope = np.polyfit(cat["y"].to_value(u.pix)[bright], error[bright], 1)[0]
+    assert abs(slope * N_Y) <= 0.005
+    # The colour term comes back to 0.01 (the issue's requirement).
+    assert products["colour_term"]["colour_term"] == pytest.approx(COLOUR_TERM, abs=0.01)
+    assert np.all(cat["mag_err"] >= cat["zero_point_err"])
+
+
+def test_clear_zero_point_matches_the_truth_and_the_cloud_is_followed(night):
+    products, _ = night
+    grid = products["zero_point"]
+    t = grid["t"].to_value(u.s)
+    error = grid["zero_point"].to_value(u.mag) - true_zero_point(t)
+    thin = (t >= THIN_STRETCH * 300.0 - 60) & (t < (THIN_STRETCH + 1) * 300.0 + 60)
+    near_cloud = np.abs(t - CLOUD_T) < 150
+    clear = ~thin & ~near_cloud & (t > 30) & (t < t[-1] - 30)
+    # 0.005 mag in clear stretches (the issue's requirement; 8 s knots, ~13 stars each).
+    assert np.max(np.abs(error[clear])) <= 0.005 + 0.003  # + 3 sigma of one knot's mean
+    outside_deepest = near_cloud & (np.abs(t - CLOUD_T) > 5)
+    assert np.max(np.abs(error[outside_deepest])) <= 0.01  # the issue's requirement
+
+
+def test_a_cloud_stretch_is_flagged_in_the_catalogue_and_reported(night):
+    products, _ = night
+    intervals = products["intervals"]
+    flags = np.asarray(intervals["flags"])
+    assert flags[CLOUD_STRETCH] & ZeroPointFlag.CLOUD
+    assert not np.any(flags[[0, 1, 3, 5]] & ZeroPointFlag.CLOUD)
+    cat = products["catalog"]
+    in_cloud = cat["stretch"] == CLOUD_STRETCH
+    assert np.all(cat["zp_flags"][in_cloud] & ZeroPointFlag.CLOUD)
+    assert not np.any(cat["zp_flags"][cat["stretch"] == 0])
+    assert any(p.startswith(f"s{CLOUD_STRETCH:04d}") and "CLOUD" in p for p in products[PROBLEMS])
+
+
+def test_a_stretch_with_too_few_stars_is_interpolated_and_flagged(night):
+    products, _ = night
+    row = products["intervals"][THIN_STRETCH]
+    assert row["interpolated"] and row["flags"] & ZeroPointFlag.FEW_STARS
+    assert not products["intervals"]["interpolated"][0]
+    grid = products["zero_point"]
+    t = grid["t"].to_value(u.s)
+    inside = (t >= THIN_STRETCH * 300.0) & (t < (THIN_STRETCH + 1) * 300.0)
+    # Bridged across a clear sky: the line between its neighbours' zero points, within
+    # the 0.005 mag of a clear zero point plus the bridge's end errors (~0.003 mag).
+    error = grid["zero_point"].to_value(u.mag)[inside] - CLEAR_ZP
+    assert np.max(np.abs(error)) <= 0.008
+    assert any(f"s{THIN_STRETCH:04d}" in p and "interpolated" in p for p in products[PROBLEMS])
+
+
+def test_a_flat_field_error_in_a_band_of_chip_columns_shows_in_the_star_flat():
+    # 2 % too high a response in 20 chip columns (the issue's case): +0.021 mag residuals.
+    def flat_error(y):
+        return np.where((y >= 96) & (y < 116), 1.02, 1.0)
+
+    catalog, _ = synthetic_catalog(seed=2, n_stars=12000, flat_error=flat_error)
+    products = run_zeropoint(catalog, knot_spacing=30.0)
+    deviant = products["star_flat"].meta["deviant"]
+    assert set(deviant) & {6, 7}  # bins of 16 columns: 96-111, 112-127
+    assert any("deviant" in p for p in products[PROBLEMS])
+
+
+def test_missing_reference_magnitudes_or_colours_are_clear_errors():
+    catalog, _ = synthetic_catalog(n_stars=300)
+    no_mags = catalog.copy()
+    no_mags["ref_mag"] = np.nan * u.mag
+    with pytest.raises(ValueError, match="no magnitude in the night's passband"):
+        run_zeropoint(no_mags)
+    no_colours = catalog.copy()
+    no_colours["ref_colour"] = np.nan * u.mag
+    with pytest.raises(ValueError, match="set fit_colour_term: false"):
+        run_zeropoint(no_colours)
+
+
+# ---------------------------------------------------------------------------- science
+
+STAR_MAG = 15.0
+EXPOSURE = TDI_ROWS * LINE_TIME
+
+
+def _rectified(stretch: int, flux: float) -> fits.HDUList:
+    n_x = STRETCH_ROWS
+    yy, xx = np.mgrid[:N_Y, :n_x]
+    star = np.exp(-0.5 * ((xx - 1500.3) ** 2 + (yy - 100.7) ** 2) / 2.0**2)
+    image = flux * star / star.sum()
+    header = fits.Header()
+    header["CTYPE1"], header["CTYPE2"] = "RA---CAR", "DEC--CAR"
+    header["CRPIX1"], header["CRPIX2"] = 1.0, 1.0
+    header["CRVAL1"], header["CRVAL2"] = 30.0, 0.0
+    header["CDELT1"], header["CDELT2"] = 1.0 / 3600.0, 1.0 / 3600.0
+    header.update(night_grid_header(stretch * n_x, 0, ("X", "Y"), ("column", "row")))
+    metadata = fits.Header({"XPOSURE": EXPOSURE})
+    return image_hdulist(
+        image,
+        np.full(image.shape, 4.0),
+        np.zeros(image.shape, np.uint16),
+        unit="electron",
+        header=header,
+        metadata=metadata,
+    )
+
+
+def _science(stretch, zero_point_mag, flags=0, interpolated=False):
+    grid = QTable(
+        {
+            "t": [-100.0, 2000.0] * u.s,
+            "zero_point": [zero_point_mag] * 2 * u.mag,
+            "zero_point_err": [0.002] * 2 * u.mag,
+        }
+    )
+    grid.meta["target_zero_point_mag"] = 25.0
+    intervals = QTable(
+        {
+            "stretch": [f"s{k:04d}" for k in range(N_STRETCHES)],
+            "flags": np.zeros(N_STRETCHES, np.int32),
+            "interpolated": np.zeros(N_STRETCHES, bool),
+        }
+    )
+    intervals["flags"][stretch] = flags
+    intervals["interpolated"][stretch] = interpolated
+    solved = {
+        f"s{stretch:04d}": {
+            "CTYPE1": "RA---TAN",
+            "CTYPE2": "DEC--TAN",
+            "CRPIX1": 10.0,
+            "CRPIX2": 20.0,
+            "CRVAL1": 31.0,
+            "CRVAL2": -1.0,
+            "CD1_1": 2.7e-4,
+            "CD1_2": 0.0,
+            "CD2_1": 0.0,
+            "CD2_2": 2.7e-4,
+        }
+    }
+    # A star of magnitude 15 recorded at Z = 24 over 10 s: 10 * 10**(0.4 * 9) e-.
+    flux = EXPOSURE * 10 ** (0.4 * (zero_point_mag - STAR_MAG))
+    seeing = Table({"fwhm": [2.5] * u.pix})
+    return science.STAGE.run(
+        inputs={
+            "ingest": {BLOCK_INDEX: block_index()},
+            "rectify": {"image": _rectified(stretch, flux)},
+            "detect": {"seeing": seeing},
+            "astrometry": {"wcs": solved},
+            "zeropoint": {"zero_point": grid, "intervals": intervals},
+        },
+        options=science.ScienceOptions(),
+        context=context(stretch),
+    )["image"]
+
+
+def test_the_calibrated_image_sums_to_the_star_magnitude_at_the_fixed_zero_point():
+    hdul = _science(1, 24.0)
+    # Worked value: a 15 mag star at PHOTZP = 25 sums to 10**(0.4 * (25 - 15)) = 10000.
+    total = float(np.sum(hdul["FLUX"].data, dtype=float))
+    assert total == pytest.approx(10000.0, rel=1e-5)  # float32 pixels: ~1e-7 each
+    assert hdul["FLUX"].header["PHOTZP"] - 2.5 * np.log10(total) == pytest.approx(15.0, abs=1e-5)
+    factor = 10 ** (0.4 * (25.0 - 24.0)) / EXPOSURE
+    assert hdul["FLUXVAR"].data[0, 0] == pytest.approx(4.0 * factor**2, rel=1e-6)
+    assert hdul["FLUX"].header["BUNIT"] == "ct"
+    # The solved WCS replaced the rectified one; the NIGHT grid stays.
+    wcs = WCS(hdul["FLUX"].header)
+    assert wcs.wcs.ctype[0] == "RA---TAN" and wcs.wcs.crval[0] == 31.0
+    assert hdul["FLUX"].header["CRVAL1A"] == STRETCH_ROWS
+    assert hdul["FLUX"].header["SEEING"] == pytest.approx(2.5, abs=1e-3)
+    assert not np.any(hdul["FLAGS"].data)
+
+
+def test_pixels_of_an_unreliable_stretch_carry_the_zero_point_bit():
+    hdul = _science(2, 23.7, flags=int(ZeroPointFlag.CLOUD))
+    assert np.all(has_bits(hdul["FLAGS"].data, MaskBit.ZERO_POINT))
+    assert hdul["FLAGS"].header["FLAGBIT9"] == "ZERO_POINT"
+    assert hdul["FLUX"].header["ZPFLAGS"] == int(ZeroPointFlag.CLOUD)
+    total = float(np.sum(hdul["FLUX"].data, dtype=float))
+    assert total == pytest.approx(10000.0, rel=1e-5)  # the cloud is calibrated out
+
+
+def _stand_in(name, scope, requires=(), defines_rows=False):
+    return Stage(
+        name,
+        lambda **_: {},
+        zeropoint.ZeroPointOptions,
+        requires,
+        scope,
+        (),
+        defines_rows=defines_rows,
+    )
+
+
+def test_the_stages_join_a_graph_after_astrometry():
+    graph = check_graph(
+        [
+            _stand_in("ingest", "night", (RAW_FILES,), defines_rows=True),
+            _stand_in("rectify", "stretch", ("ingest",)),
+            _stand_in("detect", "stretch", ("rectify",)),
+            _stand_in("astrometry", "night", ("detect",)),
+            zeropoint.STAGE,
+            science.STAGE,
+        ]
+    )
+    assert [s.name for s in graph][-2:] == ["zeropoint", "science"]
