@@ -143,8 +143,9 @@ def test_clear_zero_point_matches_the_truth_and_the_cloud_is_followed(night):
     thin = (t >= THIN_STRETCH * 300.0 - 60) & (t < (THIN_STRETCH + 1) * 300.0 + 60)
     near_cloud = np.abs(t - CLOUD_T) < 150
     clear = ~thin & ~near_cloud & (t > 30) & (t < t[-1] - 30)
-    # 0.005 mag in clear stretches (the requirement; 8 s knots, ~13 stars each).
-    assert np.max(np.abs(error[clear])) <= 0.005 + 0.003  # + 3 sigma of one knot's mean
+    # 0.005 mag rms in clear stretches (the requirement; with 8 s knots of ~13
+    # stars each a single grid point may stray to ~0.006).
+    assert np.sqrt(np.mean(error[clear] ** 2)) <= 0.005
     outside_deepest = near_cloud & (np.abs(t - CLOUD_T) > 5)
     assert np.max(np.abs(error[outside_deepest])) <= 0.01  # the requirement
 
@@ -166,7 +167,7 @@ def test_a_stretch_with_too_few_stars_is_interpolated_and_flagged(night):
     products, _ = night
     row = products["intervals"][THIN_STRETCH]
     assert row["interpolated"] and row["flags"] & ZeroPointFlag.FEW_STARS
-    assert not products["intervals"]["interpolated"][0]
+    assert not np.any(products["intervals"]["interpolated"][[0, 1, 2, 3, 5]])
     grid = products["zero_point"]
     t = grid["t"].to_value(u.s)
     inside = (t >= THIN_STRETCH * 300.0) & (t < (THIN_STRETCH + 1) * 300.0)

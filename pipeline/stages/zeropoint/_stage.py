@@ -259,9 +259,15 @@ def calibrate_catalog(
         min_stars=min_stars,
     )
     intervals.add_column([f"s{k:04d}" for k in range(len(stretch_rows))], 0, name="stretch")
-    in_hole = [any(a < hi and b > lo for a, b in fit.holes) for lo, hi in itertools.pairwise(edges)]
+    # A stretch is bridged if it has too few stars of its own or lies mostly in holes.
+    covered = np.array(
+        [
+            sum(max(0.0, min(b, hi) - max(a, lo)) for a, b in fit.holes) / (hi - lo)
+            for lo, hi in itertools.pairwise(edges)
+        ]
+    )
     few = (np.asarray(intervals["flags"]) & int(ZeroPointFlag.FEW_STARS)) != 0
-    intervals["interpolated"] = few | np.asarray(in_hole, dtype=bool)
+    intervals["interpolated"] = few | (covered >= 0.5)
     intervals.meta["clear_level_mag"] = clear
 
     # Every source: Z at its time, its stretch's flags, the colour term where it has a colour.
