@@ -169,7 +169,13 @@ def _run(*, inputs, options: ScienceOptions, context) -> dict:
     t = column_times(x, line_time, context.camera.tdi_rows)
     z = np.interp(t, _values(grid, "t"), _values(grid, "zero_point"))
     z_err = np.interp(t, _values(grid, "t"), _values(grid, "zero_point_err"))
-    row = intervals[list(intervals["stretch"]).index(stretch.id)]
+    ids = [str(name) for name in intervals["stretch"]]
+    if stretch.id not in ids:
+        raise ValueError(
+            f"zeropoint's intervals have no row for {stretch.id} (the stretch plan changed "
+            "since zeropoint ran); rerun zeropoint."
+        )
+    row = intervals[ids.index(stretch.id)]
     flags, interpolated = int(row["flags"]), bool(row["interpolated"])
     image, variance, mask = calibrate_image(
         rectified[FLUX_EXTENSION].data,
