@@ -208,10 +208,10 @@ STAR_MAG = 15.0
 EXPOSURE = TDI_ROWS * LINE_TIME
 
 
-def _rectified(stretch: int, flux: float) -> fits.HDUList:
+def _rectified(stretch: int, flux: float, star_x: float = 1500.3) -> fits.HDUList:
     n_x = STRETCH_ROWS
     yy, xx = np.mgrid[:N_Y, :n_x]
-    star = np.exp(-0.5 * ((xx - 1500.3) ** 2 + (yy - 100.7) ** 2) / 2.0**2)
+    star = np.exp(-0.5 * ((xx - star_x) ** 2 + (yy - 100.7) ** 2) / 2.0**2)
     image = flux * star / star.sum()
     header = fits.Header()
     header["CTYPE1"], header["CTYPE2"] = "RA---CAR", "DEC--CAR"
@@ -340,3 +340,37 @@ def test_the_registered_graph_holds_the_stages_exactly_when_astrometry_is_a_stag
     assert ("science" in names) == has_astrometry
     if has_astrometry:
         assert names.index("astrometry") < names.index("zeropoint") < names.index("science")
+
+
+def test_the_products_survive_the_store_and_feed_the_science_stage(night, tmp_path):
+    # What the runner writes (ECSV, JSON) and reads back is what science consumes.
+    from pipeline.runner._store import read_product, write_products
+
+    products, _ = night
+    stored = {name: value for name, value in products.items() if name != PROBLEMS}
+    entries = write_products(tmp_path, stored, {})
+    back = {name: read_product(tmp_path / e["file"], e) for name, e in entries.items()}
+    assert back["colour_term"]["fitted"] is True
+    assert back["intervals"]["interpolated"][THIN_STRETCH]
+    assert back["star_flat"].meta["deviant"] == products["star_flat"].meta["deviant"]
+    np.testing.assert_array_equal(back["catalog"]["zp_flags"], products["catalog"]["zp_flags"])
+    # A star 35 s before the cloud's deepest point, where it dims by 0.107 mag and the
+    # zero point changes by 0.006 mag per second.
+    star_x = CLOUD_T / LINE_TIME + TDI_ROWS / 2 - 350 - CLOUD_STRETCH * STRETCH_ROWS + 0.3
+    t_star = _time(star_x + CLOUD_STRETCH * STRETCH_ROWS)
+    flux = EXPOSURE * 10 ** (0.4 * (true_zero_point(t_star) - STAR_MAG))
+    hdul = science.STAGE.run(
+        inputs={
+            "ingest": {BLOCK_INDEX: block_index()},
+            "rectify": {"image": _rectified(CLOUD_STRETCH, flux, star_x)},
+            "detect": {"seeing": Table({"fwhm": [2.5] * u.pix})},
+            "astrometry": {"wcs": {"s0002": [["CTYPE1", "RA---TAN"], ["CTYPE2", "DEC--TAN"]]}},
+            "zeropoint": back,
+        },
+        options=science.ScienceOptions(),
+        context=context(CLOUD_STRETCH),
+    )["image"]
+    # The cloud is calibrated out at the star's column to 0.01 mag (the limit for
+    # following a cloud outside its deepest 10 s), i.e. 0.92 % in flux.
+    assert float(np.sum(hdul["FLUX"].data, dtype=float)) == pytest.approx(10000.0, rel=0.0092)
+    assert np.all(has_bits(hdul["FLAGS"].data, MaskBit.ZERO_POINT))
