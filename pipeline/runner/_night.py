@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import dataclasses
 import itertools
+import operator
 from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
@@ -432,6 +433,16 @@ class NightStore:
                 return hashes, specs, f"stages.{stage.name}.{name}: no file {path}"
             hashes[name] = file_digest(path)
             specs.append(InputSpec(name, "file", path=path, digest=hashes[name]))
+        for name in stage.streams:
+            path = operator.attrgetter(name)(options)
+            if path is None:
+                specs.append(InputSpec(name, "none"))
+                continue
+            path = Path(path)
+            if not path.is_file():
+                return hashes, specs, f"stages.{stage.name}.{name}: no file {path}"
+            hashes[name] = file_digest(path)
+            specs.append(InputSpec(name, "stream", path=path, digest=hashes[name]))
         return hashes, specs, None
 
     def _neighbour_inputs(self, stage: Stage, stretch: Stretch) -> tuple[str, InputSpec]:

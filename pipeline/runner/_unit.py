@@ -44,7 +44,7 @@ from pipeline.runner._store import (
     write_products,
     write_sidecar,
 )
-from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, Stage, StageContext
+from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, ExternalFile, Stage, StageContext
 
 __all__ = ["InputSpec", "UnitOutcome", "UnitTask", "execute_unit", "failed_outcome"]
 
@@ -66,8 +66,10 @@ class InputSpec:
     below ``raw_dir``), ``'raw_rows'`` (rows ``[lo, hi)`` via ``index``, each
     block's rows reversed if ``flip_rows``), ``'file'`` (the file ``path`` an
     option names, see ``Stage.files``; ``digest`` is its SHA-256 when the run
-    was planned) or ``'none'`` (such an option is None).  Stored products are
-    checked against their recorded SHA-256 as they are read.
+    was planned), ``'stream'`` (the same for ``Stage.streams``: handed over
+    as an :class:`~pipeline.stages.base.ExternalFile`, not read) or
+    ``'none'`` (such an option is None).  Stored products are checked
+    against their recorded SHA-256 as they are read.
     """
 
     name: str
@@ -114,6 +116,9 @@ class InputSpec:
             if self.digest is not None:
                 verify_product(self.path, {"sha256": self.digest})
             return read_external(self.path)
+        if self.kind == "stream":
+            verify_product(self.path, {"sha256": self.digest})
+            return ExternalFile(self.path, self.digest)
         if self.kind == "none":
             return None
         if self.kind == "raw_rows":

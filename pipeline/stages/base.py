@@ -111,6 +111,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal
 
 import numpy as np
@@ -129,6 +130,7 @@ __all__ = [
     "RAW_FILES",
     "RAW_ROWS",
     "SEGMENT",
+    "ExternalFile",
     "PixelSummary",
     "RawFile",
     "Stage",
@@ -397,6 +399,23 @@ class RawFile:
 
 
 @dataclass(frozen=True)
+class ExternalFile:
+    """A file an option names that the stage reads in chunks (see ``Stage.streams``).
+
+    Parameters
+    ----------
+    path : pathlib.Path
+        Absolute path of the file.
+    sha256 : str
+        SHA-256 of its content when the runner planned the unit (it entered
+        the unit's input hashes and was checked again before the unit ran).
+    """
+
+    path: Path
+    sha256: str
+
+
+@dataclass(frozen=True)
 class StageContext:
     """What a stage may know about the night besides its inputs and options.
 
@@ -468,6 +487,16 @@ class Stage:
         image array, ``.json`` as JSON), hashes its content into the unit's
         input hashes and hands the object to the stage as ``inputs[name]``
         (None when the option is None).  The stage never opens it.
+    streams : tuple of str
+        Dotted names of option fields (``pathlib.Path | None``, e.g.
+        ``'reference.path'``) naming a file too large to read whole, which the
+        stage reads in chunks through a reader of its own (the reference
+        catalogue: :func:`pipeline.reference.read_reference`).  The runner
+        hashes the file's content into the unit's input hashes (a changed
+        file makes the unit stale), checks it again before the unit runs, and
+        hands ``inputs[name] =`` :class:`ExternalFile` (None when the option
+        is None).  This is the one narrow exception to "a stage never opens a
+        file": the reader opens only the path it is handed, read-only.
     description : str
         One line for ``zdrift status`` and the docs.
     version : int
@@ -504,6 +533,7 @@ class Stage:
     version: int = 1
     partial_inputs: bool = False
     neighbours: tuple[str, ...] = ()
+    streams: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         if not self.name.isidentifier() or self.name != self.name.lower():
@@ -521,17 +551,23 @@ class Stage:
             )
         if not callable(self.run):
             raise TypeError(f"Stage {self.name!r}: run must be callable; got {self.run!r}.")
-        names = (self.requires, self.uses, self.files, self.neighbours)
+        names = (self.requires, self.uses, self.files, self.neighbours, self.streams)
         if any(isinstance(group, str) for group in names):
             raise TypeError(
-                f"Stage {self.name!r}: requires, uses, files and neighbours must be tuples "
-                f"of names, not a single string (write ('x',) not 'x')."
+                f"Stage {self.name!r}: requires, uses, files, neighbours and streams must be "
+                "tuples of names, not a single string (write ('x',) not 'x')."
             )
         for name in self.files:
             if name not in self.options.model_fields or name in self.requires:
                 raise ValueError(
                     f"Stage {self.name!r}: files names {name!r}, which is not a field of "
                     f"{self.options.__name__} (or clashes with a required input)."
+                )
+        for name in self.streams:
+            if name.split(".")[0] not in self.options.model_fields or name in self.requires:
+                raise ValueError(
+                    f"Stage {self.name!r}: streams names {name!r}, which does not start with "
+                    f"a field of {self.options.__name__} (or clashes with a required input)."
                 )
         if self.defines_rows and self.scope != "night":
             raise ValueError(f"Stage {self.name!r}: defines_rows needs scope='night'.")

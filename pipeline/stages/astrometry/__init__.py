@@ -23,6 +23,10 @@ night.
 * :mod:`~pipeline.stages.astrometry._catalog`: :func:`solve_catalog`, the
   table layer (detect's catalogue in, solved catalogue and parameter table
   out) with its :class:`AstrometryOptions`.
+* :mod:`~pipeline.stages.astrometry._stage`: the night-scoped ``astrometry``
+  stage (``STAGE``): nominal geometry as rectify built it, reference stars
+  read in chunks, the solved catalogue with the matched stars' ``ref_mag``
+  and ``ref_colour``, and a solved WCS per rectified stretch.
 
 Coordinates: detections come as night rectified pixels ``(x, y)`` (``x``
 along the scan) of the rectify stage's :class:`~pipeline.geometry.rectified.RectifiedFrame`;
@@ -48,13 +52,21 @@ from pipeline.stages.astrometry._solve import (
     search_geometry,
     solve_night,
 )
+from pipeline.stages.astrometry._stage import (
+    STAGE,
+    AstrometryStageOptions,
+    reference_columns,
+    stretch_wcs_cards,
+)
 from pipeline.stages.astrometry._stats import residual_grid
 from pipeline.stages.astrometry._wcs import solved_wcs
 
 __all__ = [
     "FIT_PARAMETERS",
+    "STAGE",
     "AstrometricSolution",
     "AstrometryOptions",
+    "AstrometryStageOptions",
     "GeometryFit",
     "GeometryOffsets",
     "GeometryPredictor",
@@ -68,10 +80,12 @@ __all__ = [
     "fit_geometry",
     "match_nearest",
     "offset_peak",
+    "reference_columns",
     "residual_grid",
     "search_geometry",
     "sky_tracks",
     "solve_catalog",
     "solve_night",
     "solved_wcs",
+    "stretch_wcs_cards",
 ]

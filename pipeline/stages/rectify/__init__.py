@@ -118,6 +118,7 @@ __all__ = [
     "rectify",
     "smear_kernel_at",
     "smear_kernels",
+    "stretch_columns",
 ]
 
 log = logging.getLogger(__name__)
@@ -281,6 +282,20 @@ def night_model(site: Site, camera: Camera, block_index: Table, n_rows: int) -> 
         )
     dt = float(line_times[0])
     return _cached_model(site, camera, str(start), n_rows * dt, dt)
+
+
+def stretch_columns(
+    model: TDIModel, frame: RectifiedFrame, core: tuple[int, int]
+) -> tuple[int, int]:
+    """Night columns ``[x_start, x_stop)`` that rectify writes for core rows ``core``.
+
+    ``x`` in ``[ceil(X(start - 1/2)), ceil(X(stop - 1/2)))`` with ``X`` =
+    :meth:`RectifiedFrame.column_of_row`, so adjacent stretches tile the
+    night; the astrometry stage uses it to place each stretch's WCS.
+    """
+    bounds = frame.column_of_row(model, np.array(core, dtype=float) - 0.5)
+    x_start, x_stop = (int(v) for v in np.ceil(bounds))
+    return x_start, max(x_stop, x_start)
 
 
 # ----------------------------------------------------------------------------
@@ -472,9 +487,7 @@ def rectify(
         raise ValueError(f"core rows {core} must lie within the rows given, [{row_lo}, {row_hi}).")
     night_rows = row_hi if night_rows is None else int(night_rows)
     frame = RectifiedFrame.for_night(model, night_rows, pixel_scale=pixel_scale)
-    bounds = frame.column_of_row(model, np.array(core, dtype=float) - 0.5)
-    x_start, x_stop = (int(v) for v in np.ceil(bounds))
-    x_stop = max(x_stop, x_start)
+    x_start, x_stop = stretch_columns(model, frame, core)
 
     margin = (
         deconvolution_margin(model, frame, deconvolve_regularization, deconvolve_sigma)

@@ -1,0 +1,204 @@
+"""The astrometry stage: the night catalogue solved against a reference catalogue.
+
+Night scope, after ``catalog``.  The nominal geometry is rebuilt exactly as
+rectify built it (:func:`~pipeline.stages.rectify.night_model` from ingest's
+block index, :meth:`RectifiedFrame.for_night` with the pixel scale read from
+a rectified product's header), the reference stars of the night's band are
+read in chunks (the stage's one file, handed over by the runner as an
+:class:`~pipeline.stages.base.ExternalFile`, see ``Stage.streams``), and
+:func:`solve_catalog` fits the night's geometry.  Each rectified stretch gets
+a TAN-SIP WCS of the solution (:func:`solved_wcs`), checked to reproduce it
+to ``wcs_tolerance`` pixels.
+"""
+
+from __future__ import annotations
+
+import logging
+from typing import Any
+
+import numpy as np
+from astropy import units as u
+from astropy.table import QTable
+from pydantic import Field
+
+from pipeline.exceptions import AstrometryError
+from pipeline.geometry.rectified import RectifiedFrame
+from pipeline.products import FLUX_EXTENSION
+from pipeline.reference import ReferenceOptions, read_reference, sky_band_for_night
+from pipeline.stages.astrometry._catalog import AstrometryOptions, solve_catalog
+from pipeline.stages.astrometry._wcs import solved_wcs
+from pipeline.stages.base import BLOCK_INDEX, Stage
+from pipeline.stages.rectify import night_model, stretch_columns
+
+__all__ = ["STAGE", "AstrometryStageOptions", "reference_columns", "stretch_wcs_cards"]
+
+log = logging.getLogger(__name__)
+
+#: SIP degrees tried in turn until a stretch's WCS is within the tolerance.
+_SIP_DEGREES = (3, 4, 5)
+
+
+class AstrometryStageOptions(AstrometryOptions):
+    """Options of the astrometry stage (``stages.astrometry``).
+
+    The solver's options (:class:`AstrometryOptions`) plus where the
+    reference stars come from and how closely each stretch's WCS must
+    reproduce the solution.
+    """
+
+    reference: ReferenceOptions = Field(
+        default_factory=ReferenceOptions, description="Reference stars (see ReferenceOptions)."
+    )
+    wcs_tolerance: float = Field(
+        0.02,
+        gt=0,
+        description="Pixels: largest allowed distance between a stretch's WCS and the solution.",
+    )
+
+
+def reference_columns(ref_index: np.ndarray, reference: QTable) -> dict[str, u.Quantity]:
+    """``ref_mag`` and ``ref_colour`` of each detection's matched reference star.
+
+    Parameters
+    ----------
+    ref_index : ndarray of int, shape (n,)
+        Row of the matched reference star, -1 where none.
+    reference : QTable
+        The reference stars (``mag``, optionally ``colour``), as
+        :func:`read_reference` returns them.
+
+    Returns
+    -------
+    dict
+        ``ref_mag`` and ``ref_colour`` [mag], NaN where unmatched (and the
+        colour NaN throughout when the reference has none).
+    """
+    ref_index = np.asarray(ref_index, dtype=np.int64)
+    matched = ref_index >= 0
+    out = {}
+    for name, column in (("ref_mag", "mag"), ("ref_colour", "colour")):
+        values = np.full(ref_index.size, np.nan)
+        if column in reference.colnames:
+            source = u.Quantity(reference[column], u.mag).value
+            values[matched] = source[ref_index[matched]]
+        out[name] = values * u.mag
+    return out
+
+
+def stretch_wcs_cards(
+    solution, x_start: int, n_x: int, tolerance: float
+) -> tuple[dict[str, Any], float]:
+    """FITS cards of the solved WCS of one rectified stretch, and its largest error.
+
+    Tries SIP degrees 3, 4, 5 until :func:`solved_wcs` reproduces the
+    solution to ``tolerance`` pixels.
+
+    Returns
+    -------
+    cards : dict
+        Keyword -> value (``astropy.wcs.WCS.to_header(relax=True)``), plus
+        ``WCSDEV``: the largest distance to the solution, pixels.
+    max_error : float
+        That distance.
+
+    Raises
+    ------
+    AstrometryError
+        If no degree reaches the tolerance (the WCS would misplace stars).
+    """
+    for degree in _SIP_DEGREES:
+        wcs, max_error = solved_wcs(solution, x_start, n_x, sip_degree=degree)
+        if max_error <= tolerance:
+            break
+    else:
+        raise AstrometryError(
+            f"the solved WCS of the stretch at night columns [{x_start}, {x_start + n_x}) "
+            f"is {max_error:.4f} px off the solution even with SIP degree {degree} "
+            f"(tolerance {tolerance} px); use shorter stretches (run.stretch_rows) or a "
+            "larger stages.astrometry.wcs_tolerance.",
+            {"max_error_px": max_error},
+        )
+    header = wcs.to_header(relax=True)
+    cards = {key: header[key] for key in header}
+    cards["WCSDEV"] = round(float(max_error), 6)
+    return cards, float(max_error)
+
+
+def _pixel_scale(image, x_start: int, n_x: int, frame_x_ref: int) -> float:
+    """Across-scan pixel scale [arcsec] of a rectified product, checked against the plan."""
+    header = image[FLUX_EXTENSION].header
+    crpix1 = float(header["CRPIX1"])
+    if crpix1 != float(frame_x_ref - x_start + 1) or int(header["NAXIS1"]) != n_x:
+        raise ValueError(
+            f"the rectified product's columns (CRPIX1={crpix1}, NAXIS1={header['NAXIS1']}) are "
+            f"not the ones the night's geometry gives (x_start={x_start}, n_x={n_x}); rerun "
+            "rectify with the current config."
+        )
+    return float(header["CDELT2"]) * 3600.0
+
+
+def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
+    stretches = context.input_stretches
+    night_rows = context.stretches[-1].stop
+    model = night_model(context.site, context.camera, inputs["ingest"][BLOCK_INDEX], night_rows)
+    first = RectifiedFrame.for_night(model, night_rows)
+    columns = [stretch_columns(model, first, (s.start, s.stop)) for s in stretches]
+    x_start, x_stop = columns[0]
+    scale = _pixel_scale(inputs["rectify"][0]["image"], x_start, x_stop - x_start, first.x_ref)
+    frame = RectifiedFrame.for_night(model, night_rows, pixel_scale=scale)
+
+    band = sky_band_for_night(
+        model, focal_length_range=options.search_focal, tilt_range=options.search_tilt
+    )
+    reference_options = options.reference
+    handle = inputs.get("reference.path")
+    if handle is not None:
+        reference_options = reference_options.model_copy(update={"path": handle.path})
+    reference = read_reference(reference_options, band, frame.epoch)
+    solved = solve_catalog(
+        inputs["catalog"]["catalog"], reference["ra"], reference["dec"], model, frame, options
+    )
+    catalog = solved.catalog
+    for name, values in reference_columns(catalog["ref_index"], reference).items():
+        catalog[name] = values
+        catalog[name].info.description = "magnitude/colour of the matched reference star"
+
+    wcs, worst = {}, 0.0
+    for stretch, (start, stop) in zip(stretches, columns, strict=True):
+        if stop > start + 1:
+            wcs[stretch.id], error = stretch_wcs_cards(
+                solved.solution, start, stop - start, options.wcs_tolerance
+            )
+            worst = max(worst, error)
+    parameters = solved.parameters
+    parameters.meta["wcs_max_deviation_px"] = worst
+    parameters.meta["reference"] = {
+        key: reference.meta[key] for key in ("source", "n_read", "n_in_band", "n_selected")
+    }
+    log.info(
+        "astrometry: %d of %d detections matched; stretch WCS within %.4f px",
+        int(np.sum(catalog["ref_index"] >= 0)),
+        len(catalog),
+        worst,
+    )
+    return {
+        "catalog": catalog,
+        "parameters": parameters,
+        "residual_grid": solved.grid,
+        "wcs": wcs,
+    }
+
+
+#: Declaration of the astrometry stage: night scope, after catalog; it reads the
+#: reference catalogue file in chunks (``streams``), so a changed file makes it stale.
+STAGE = Stage(
+    name="astrometry",
+    run=_run,
+    options=AstrometryStageOptions,
+    requires=("ingest", "rectify", "catalog"),
+    scope="night",
+    uses=("site", "camera"),
+    partial_inputs=True,
+    streams=("reference.path",),
+    description="Fit the night's geometry to a reference catalogue; a solved WCS per stretch.",
+)
