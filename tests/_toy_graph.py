@@ -150,6 +150,23 @@ def seam_rows(*, inputs, options, context):
     return {"image": np.vstack(parts)}
 
 
+class ListFile(_Options):
+    path: Path | None = None
+
+
+class CountOptions(_Options):
+    source: ListFile = ListFile()
+
+
+def count_lines(*, inputs, options, context):
+    """Lines of the file ``source.path`` (handed over as an ExternalFile), read in chunks."""
+    handle = inputs["source.path"]
+    if handle is None:
+        return {"summary": {"lines": None}}
+    with open(handle.path, encoding="utf-8") as text:  # the stage's own chunked reader
+        return {"summary": {"lines": sum(1 for _ in text), "sha256": handle.sha256}}
+
+
 GRAPH = (
     Stage("index", build_index, IndexOptions, (RAW_FILES,), "night", (), defines_rows=True),
     Stage("scale", scale_rows, ScaleOptions, (RAW_ROWS,), "stretch", ("camera.n_columns",)),
@@ -157,6 +174,11 @@ GRAPH = (
     Stage("total", add_up, TotalOptions, ("smooth",), "night", ()),
 )
 PARTIAL_GRAPH = (*GRAPH[:3], dataclasses.replace(GRAPH[3], partial_inputs=True))
+#: ``lines``: counts the lines of a file it reads itself (``streams``).
+STREAM_GRAPH = (
+    *GRAPH,
+    Stage("lines", count_lines, CountOptions, ("total",), "night", (), streams=("source.path",)),
+)
 #: ``scale`` as an image product, and ``seams``: each stretch with its neighbours' edge rows.
 NEIGHBOUR_GRAPH = (
     GRAPH[0],

@@ -24,6 +24,7 @@ from _toy_graph import (
     GRAPH,
     NEIGHBOUR_GRAPH,
     PARTIAL_GRAPH,
+    STREAM_GRAPH,
     IndexOptions,
     build_index,
     edit_raw_block,
@@ -51,6 +52,7 @@ from pipeline.runner import (
     format_ids,
     night_dir,
     night_status,
+    open_product,
     parse_stretches,
     run_night,
     select_stages,
@@ -340,6 +342,27 @@ def test_changed_raw_file_makes_only_affected_units_stale(toy, tmp_path: Path) -
     assert sorted(status["scale"].ids("stale")) == ["s0002", "s0003"]
     assert status["scale"].units["s0002"][1] == "inputs changed: raw_rows"
     assert sorted(status["scale"].ids("done")) == ["s0000", "s0001"]
+
+
+def test_a_streamed_file_is_handed_over_and_its_change_makes_the_stage_stale(tmp_path) -> None:
+    """Stage.streams: the stage gets the file's path; its content is an input hash."""
+    make_config, _ = toy_night(tmp_path, graph=STREAM_GRAPH)
+    listing = tmp_path / "list.txt"
+    listing.write_text("a\nb\n")
+    config = make_config(f"stages.lines.source.path={listing}")
+    assert run_night(config).ok
+    assert open_product(config, "lines", "night", "summary")["lines"] == 2
+    listing.write_text("a\nb\nc\n")
+    status = {s.name: s for s in night_status(config).stages}
+    assert status["lines"].units["night"] == ("stale", "inputs changed: source.path")
+    assert status["total"].units["night"][0] == "done"
+    assert run_night(config).ok
+    assert open_product(config, "lines", "night", "summary")["lines"] == 3
+    # None: the stage runs without a file; a missing file blocks it, naming the option
+    assert run_night(make_config()).ok
+    listing.unlink()
+    report = run_night(config)
+    assert "stages.lines.source.path: no file" in report.format()
 
 
 def test_status_of_a_new_night_and_orphan_stretches(toy) -> None:
