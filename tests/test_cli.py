@@ -208,7 +208,10 @@ site: {name: Fictional Ridge, latitude: 31.0, longitude: -105.0, height: 2200}
 camera: {n_columns: 256, tdi_rows: 256, pixel_size: 15, focal_length: 3.5}
 run: {stretch_rows: 400, overlap_rows: 32, workers: 2}
 simulate: {start: "2026-10-15T05:00:00", n_blocks: 4, block_rows: 256, overscan_columns: 16}
-stages: {column_stats: {block_rows: 64}}
+stages:
+  column_stats: {block_rows: 64}
+  astrometry:               # the simulator's own reference catalogue of the strip
+    reference: {source: file, path: raw/reference.ecsv, columns: {pm_ra: pmra, pm_dec: pmdec}}
 """
 
 
