@@ -177,7 +177,7 @@ def test_the_stage_recovers_a_mis_set_camera_from_the_raw_night(tmp_path, latitu
     from astropy.time import Time
 
     from pipeline.config import load_config
-    from pipeline.runner import open_product, run_night
+    from pipeline.runner import night_status, open_product, run_night
     from pipeline.stages.astrometry import east_tilt_equivalent
     from pipeline.stages.rectify import night_model
 
@@ -243,3 +243,9 @@ def test_the_stage_recovers_a_mis_set_camera_from_the_raw_night(tmp_path, latitu
         path.name for path in (tmp_path / "night/out/n/rectify").glob("s*")
     )
     assert max(cards["WCSDEV"] for cards in wcs.values()) <= 0.02
+    # A changed reference catalogue makes the stage (only) stale.
+    reference = tmp_path / "night/raw/reference.ecsv"
+    reference.write_text(reference.read_text(encoding="utf-8") + "\n", encoding="utf-8")
+    status = {stage.name: stage for stage in night_status(config).stages}
+    assert status["astrometry"].units["night"] == ("stale", "inputs changed: reference.path")
+    assert status["catalog"].units["night"][0] == "done"

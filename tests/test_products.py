@@ -84,8 +84,8 @@ def test_readme_python_section_runs(demo):
     folder, out = demo
     lines = out.splitlines()
     # 18 units up to detect (ingest, columns and 4 stretches of column_stats,
-    # calibrate, rectify, detect) and the night-scoped catalog.
-    assert lines[0] == "night demo-2026-10-15: 19 units ran, 0 up to date, 0 failed, 0 blocked"
+    # calibrate, rectify, detect) and the night-scoped catalog and astrometry.
+    assert lines[0] == "night demo-2026-10-15: 20 units ran, 0 up to date, 0 failed, 0 blocked"
     assert "electron electron2 (1035, 1024)" in lines
     # The flag-based "no data" count is the number of NaN pixels of the image.
     image = pipeline.read_image(_night(folder) / "rectify/s0001/image.fits")
