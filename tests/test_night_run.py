@@ -500,14 +500,16 @@ def test_a_line_time_change_mid_night_is_reported_and_stops_rectify(tmp_path, ca
     rectify = [line for line in out.splitlines() if line.startswith("  failed: rectify/")]
     assert rectify and all("the line time changes within the night" in line for line in rectify)
     # Calibrate went on: only rectify needs one line time; what is blocked is
-    # downstream of it (detect on every stretch, the night catalogue and its
-    # astrometry).
+    # downstream of it (detect and science on every stretch, the night
+    # catalogue, its astrometry and zero point).
     blocked = [line for line in out.splitlines() if line.startswith("  blocked: ")]
     failed = [line.split(":")[1].split("/")[1] for line in rectify]
     assert [line.split(":")[1] for line in blocked] == [
         " astrometry/night",
         " catalog/night",
         *(f" detect/{unit}" for unit in failed),
+        *(f" science/{unit}" for unit in failed),
+        " zeropoint/night",
     ]
 
 
