@@ -84,8 +84,9 @@ def test_readme_python_section_runs(demo):
     folder, out = demo
     lines = out.splitlines()
     # 18 units up to detect (ingest, columns and 4 stretches of column_stats,
-    # calibrate, rectify, detect) and the night-scoped catalog and astrometry.
-    assert lines[0] == "night demo-2026-10-15: 20 units ran, 0 up to date, 0 failed, 0 blocked"
+    # calibrate, rectify, detect), the night-scoped catalog, astrometry and
+    # zeropoint, and 4 stretches of science.
+    assert lines[0] == "night demo-2026-10-15: 25 units ran, 0 up to date, 0 failed, 0 blocked"
     assert "electron electron2 (1035, 1024)" in lines
     # The flag-based "no data" count is the number of NaN pixels of the image.
     image = pipeline.read_image(_night(folder) / "rectify/s0001/image.fits")
@@ -96,7 +97,7 @@ def test_readme_python_section_runs(demo):
 def test_every_fits_product_verifies(demo):
     folder, _ = demo
     files = sorted(_night(folder).glob("*/*/*.fits"))
-    assert len(files) == 8  # calibrate and rectify, 4 stretches each
+    assert len(files) == 12  # calibrate, rectify and science, 4 stretches each
     for path in files:
         with fits.open(path) as hdul:
             hdul.verify("exception")  # astropy's FITS standard checks
@@ -106,8 +107,10 @@ def test_every_image_product_is_a_ccddata(demo):
     folder, _ = demo
     products = _image_products(folder)
     assert [unit for unit, _, _ in products] == [
-        f"{stage}/s000{i}" for stage in ("calibrate", "rectify") for i in range(4)
+        f"{stage}/s000{i}" for stage in ("calibrate", "rectify", "science") for i in range(4)
     ]
+    # science images are in counts at a fixed zero point (test_zeropoint_stage.py)
+    products = [entry for entry in products if not entry[0].startswith("science/")]
     for unit, path, sidecar in products:
         image = pipeline.read_image(path)
         assert isinstance(image, CCDData), unit
