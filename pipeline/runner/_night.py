@@ -423,26 +423,19 @@ class NightStore:
             hashes[NEIGHBOURS], spec = self._neighbour_inputs(stage, stretch)
             specs.append(spec)
         options = self.config.stage_options(stage.name)
-        for name in stage.files:
-            path = getattr(options, name)
-            if path is None:
-                specs.append(InputSpec(name, "none"))
-                continue
-            path = Path(path)
-            if not path.is_file():
-                return hashes, specs, f"stages.{stage.name}.{name}: no file {path}"
-            hashes[name] = file_digest(path)
-            specs.append(InputSpec(name, "file", path=path, digest=hashes[name]))
-        for name in stage.streams:
-            path = operator.attrgetter(name)(options)
-            if path is None:
-                specs.append(InputSpec(name, "none"))
-                continue
-            path = Path(path)
-            if not path.is_file():
-                return hashes, specs, f"stages.{stage.name}.{name}: no file {path}"
-            hashes[name] = file_digest(path)
-            specs.append(InputSpec(name, "stream", path=path, digest=hashes[name]))
+        # Files the runner reads for the stage ("file") and files it only hashes
+        # and names, for the stage's own chunked reader ("stream").
+        for kind, names in (("file", stage.files), ("stream", stage.streams)):
+            for name in names:
+                path = operator.attrgetter(name)(options)
+                if path is None:
+                    specs.append(InputSpec(name, "none"))
+                    continue
+                path = Path(path)
+                if not path.is_file():
+                    return hashes, specs, f"stages.{stage.name}.{name}: no file {path}"
+                hashes[name] = file_digest(path)
+                specs.append(InputSpec(name, kind, path=path, digest=hashes[name]))
         return hashes, specs, None
 
     def _neighbour_inputs(self, stage: Stage, stretch: Stretch) -> tuple[str, InputSpec]:
