@@ -26,6 +26,7 @@ from pipeline.simulate import (
     simulate_night,
     simulate_nights,
     tdi_model,
+    true_zero_point,
     write_night,
 )
 from pipeline.simulate._render import GaussianMixturePSF, render_tracks
@@ -944,3 +945,64 @@ def test_commands_write_a_folder_per_night(tmp_path, capsys, command):
     assert capsys.readouterr().out.count("wrote 4 files") == 2
     folders = sorted(p.name for p in (tmp_path / "raw").iterdir())
     assert folders == ["2026-10-15", "2026-10-16"]
+
+
+def test_flat_error_dims_stars_in_its_columns_not_the_sky():
+    """``actual.flat_error``: star light in the band is short by ``error``, the sky is not."""
+    site, camera = _site(41.65), _camera(n_columns=256)
+    band = {"first_column": 120, "columns": 20, "error": 0.02}
+    options = _options(sky={"sky_brightness": 24.0}, actual={"flat_error": band})
+    extra, _ = _stars_at(site, camera, options, [128.0, 60.0], [128.0, 128.0], mag=21.0)
+    night = simulate_night(site, camera, options, extra_stars=extra)
+    inside, outside = night.truth
+    # Exact: the truth's recorded electrons carry the factor, as the image does.
+    assert inside["flux_recorded"] / inside["flux"] == pytest.approx(0.98, rel=1e-9)
+    assert outside["flux_recorded"] / outside["flux"] == pytest.approx(1.0, rel=1e-9)
+    data = night.blocks[0][1]
+    image = data[:, :256].astype(float) - 1000.0
+    sky = np.median(image, axis=0)  # per column, noise-free: the stars fill < 10 % of rows
+    # The sky is the same in and out of the band (flat_rms = 0, no vignetting).
+    assert sky[125] == pytest.approx(sky[10], rel=1e-9)
+    total = _moments(_image(night), inside["r_mean"], inside["c_mean"], 60, 8)[0]
+    # 0.3 %: the renderer's flux conservation in a box (test_isolated_star_flux_is_recovered).
+    assert total == pytest.approx(inside["flux_recorded"], rel=3e-3)
+    photometry = night.truth.meta["photometry"]
+    assert photometry["flat_error_columns"] == list(range(120, 140))
+    assert photometry["flat_error"] == 0.02
+    with pytest.raises(ValueError, match="beyond the camera's 256 image columns"):
+        simulate_night(site, camera, _options(actual={"flat_error": {**band, "first_column": 250}}))
+
+
+def test_true_zero_point_follows_the_cloud_over_the_crossing():
+    """The truth's zero point is the zero point plus the crossing-mean transparency.
+
+    A star's recorded electrons over its flux at unit transparency are the
+    transparency averaged over its crossing, sampled by the simulator along the
+    track; :func:`true_zero_point` integrates the Gaussian dip in closed form.
+    """
+    site, camera = _site(41.65), _camera(n_columns=256)
+    sky = {"cloud_depth": 0.25, "cloud_time": 0.25, "cloud_width": 30.0}
+    options = _options(sky=sky, n_blocks=2, block_rows=256)
+    rows = [150.0, 256.0, 300.0, 400.0]
+    extra, _ = _stars_at(site, camera, options, [128.0] * 4, rows)
+    truth = simulate_night(site, camera, options, extra_stars=extra).truth
+    photometry = truth.meta["photometry"]
+    expected = true_zero_point(np.asarray(truth["t_mid"], float), photometry)
+    measured = options.sky.zero_point + 2.5 * np.log10(truth["flux_recorded"] / truth["flux"])
+    # 1e-4 mag: the track's samples (>= 5 per pixel of a 512-row crossing) integrate
+    # the 30 s dip to better than that (midpoint rule); the crossing time differs from
+    # tdi_rows * line_time by < 0.1 % off the centre line.
+    np.testing.assert_allclose(measured, expected, atol=1e-4)
+    assert np.ptp(expected) > 0.05  # the stars do see the cloud, unequally
+    # The reference catalogue's colour term has the zeropoint stage's sign:
+    # m_ref - m_passband = colour_term * colour.
+    coloured = _options(stars={"count": 200}, reference={"colour_term": 0.1, "mag_error": 0.0})
+    night = simulate_night(site, camera, coloured)
+    ids = {int(i): k for k, i in enumerate(night.truth["id"])}
+    rows = [ids[int(i)] for i in night.reference["id"]]
+    truth_mag = np.asarray(night.truth["mag"], float)[rows]
+    truth_colour = np.asarray(night.truth["colour"], float)[rows]
+    # 1e-5 mag: the tables' rounding.
+    np.testing.assert_allclose(
+        np.asarray(night.reference["mag"], float) - truth_mag, 0.1 * truth_colour, atol=2e-5
+    )

@@ -114,6 +114,7 @@ from pipeline.simulate._detector import (
 )
 from pipeline.simulate._exposure import (
     bleed_trails,
+    mean_transparency,
     sample_tracks,
     samples_needed,
     sky_rows,
@@ -149,11 +150,14 @@ __all__ = [
     "draw_star_field",
     "load_simulation_config",
     "main",
+    "mean_transparency",
     "night_options",
+    "photometry_record",
     "simulate_night",
     "simulate_nights",
     "simulate_to_folders",
     "tdi_model",
+    "true_zero_point",
     "write_night",
 ]
 
@@ -259,7 +263,9 @@ class ReferenceOptions(_Options):
     mag_error: float = Field(0.015, ge=0, description="rms, mag")
     colour_error: float = Field(0.02, ge=0, description="rms, mag")
     colour_term: float = Field(
-        0.0, description="reference mag = true mag - colour_term * colour (+ noise)"
+        0.0,
+        description="reference mag = passband mag + colour_term * colour (+ noise): the "
+        "colour term c of m_ref - m_inst = Z + c * colour",
     )
 
 
@@ -633,6 +639,7 @@ def simulate_night(
     timings["tracks"] = time.perf_counter() - tic
 
     cols = column_properties(options, n_cols, dt, n_tdi)
+    star_response = _star_response(options.actual.flat_error, n_cols)
     bias_phase = np.random.default_rng(
         [options.seed, 2, 1, *([night_index] if night_index else [])]
     ).uniform(0, 2 * np.pi)
@@ -682,6 +689,8 @@ def simulate_night(
                 row_box=1.0 if options.clocking_box else 0.0,
                 out=image,
             )
+        if star_response is not None:
+            image *= star_response[None, :]
         timings["render"] += time.perf_counter() - tic
         tic = time.perf_counter()
         rows = b * options.block_rows + np.arange(options.block_rows)
@@ -696,7 +705,10 @@ def simulate_night(
         timings["detector"] += time.perf_counter() - tic
 
     tic = time.perf_counter()
-    truth = truth_table(stars, ra_obs, dec_obs, tracks, r_geom, c_geom, cols, psf, options, camera)
+    truth = truth_table(
+        stars, ra_obs, dec_obs, tracks, r_geom, c_geom, cols, psf, options, camera, star_response
+    )
+    truth.meta["photometry"] = photometry_record(options, dt, n_tdi, duration)
     truth.meta.update(
         {
             "start": model.start.isot,
@@ -810,6 +822,68 @@ def simulate_nights(site: Site, camera: Camera, options: SimulationOptions) -> l
         later = night_options(site, first, repeat)
         nights.append(simulate_night(site, camera, later, star_field=field, night_index=k))
     return nights
+
+
+def _star_response(flat_error, n_columns: int) -> np.ndarray | None:
+    """Factor on star light per image column from ``actual.flat_error`` (None: no error)."""
+    if not flat_error.active:
+        return None
+    if flat_error.first_column + flat_error.columns > n_columns:
+        raise ValueError(
+            f"simulate.actual.flat_error covers columns {flat_error.first_column} to "
+            f"{flat_error.first_column + flat_error.columns - 1}, beyond the camera's "
+            f"{n_columns} image columns; lower first_column or columns."
+        )
+    return flat_error.star_response(n_columns)
+
+
+def photometry_record(options: SimulationOptions, line_time: float, tdi_rows: int, duration):
+    """The night's photometric truth, for its truth table's meta (``photometry``).
+
+    Returns
+    -------
+    dict
+        ``zero_point`` (mag giving 1 e-/s at unit transparency), ``colour_term``
+        (``reference.colour_term``: reference mag minus passband mag per mag of
+        colour), ``crossing_time`` (s, ``tdi_rows * line_time``), the cloud
+        (``cloud_depth``, ``cloud_centre`` s after night row 0 was read,
+        ``cloud_width`` s) and the flat-field error (``flat_error_columns``,
+        image columns, and ``flat_error``, fraction of star light lost).
+        :func:`true_zero_point` turns it into the zero point along the night.
+    """
+    sky, flat = options.sky, options.actual.flat_error
+    band = range(flat.first_column, flat.first_column + flat.columns) if flat.active else ()
+    return {
+        "zero_point": sky.zero_point,
+        "colour_term": options.reference.colour_term,
+        "crossing_time": tdi_rows * line_time,
+        "cloud_depth": sky.cloud_depth,
+        "cloud_centre": sky.cloud_time * duration,
+        "cloud_width": sky.cloud_width,
+        "flat_error_columns": list(band),
+        "flat_error": flat.error if flat.active else 0.0,
+    }
+
+
+def true_zero_point(t: np.ndarray, photometry: dict) -> np.ndarray:
+    """The true zero point of a star crossing the chip with mid-time ``t``, mag.
+
+    ``photometry`` is a truth table's ``meta['photometry']``.  A star's
+    electrons over its crossing are its rate at the zero point times the
+    transparency integrated over the crossing (:func:`mean_transparency`), so
+    its zero point (mag giving 1 e-/s over the crossing) is ``zero_point +
+    2.5 log10(mean transparency)``; the detector's column response is not
+    included (the calibrated images are divided by the flat).
+    """
+    return photometry["zero_point"] + 2.5 * np.log10(
+        mean_transparency(
+            t,
+            photometry["crossing_time"],
+            depth=photometry["cloud_depth"],
+            centre=photometry["cloud_centre"],
+            width=photometry["cloud_width"],
+        )
+    )
 
 
 def _trails(model, psf, n_columns, duration, options):

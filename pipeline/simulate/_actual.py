@@ -19,7 +19,13 @@ from pipeline.geometry.instrument import Camera, Site
 from pipeline.geometry.optics import ARCSEC_PER_RADIAN, resolve_focal_length
 from pipeline.geometry.tdi import TDIModel
 
-__all__ = ["ActualOptions", "WanderOptions", "WanderingTDIModel", "true_camera"]
+__all__ = [
+    "ActualOptions",
+    "FlatErrorOptions",
+    "WanderOptions",
+    "WanderingTDIModel",
+    "true_camera",
+]
 
 
 class _Options(BaseModel):
@@ -61,6 +67,35 @@ class WanderOptions(_Options):
         return du, dv
 
 
+class FlatErrorOptions(_Options):
+    """Star light lost in a band of columns where the sky's flat shows nothing.
+
+    The calibrate stage solves the 1-D flat from the night's sky, so it
+    corrects whatever dims sky and stars alike.  Here the stars' light (and
+    satellite trails') in columns ``[first_column, first_column + columns)``
+    is reduced by the fraction ``error`` while the sky is not: the flat
+    derived from the sky is wrong there for point sources by ``error``, as
+    when scattered light or a ghost brightens the sky in a band of columns
+    (an illumination error that only a star flat reveals; common practice).
+    Columns are image columns as simulated (before ``flip_columns``).
+    """
+
+    first_column: int = Field(0, ge=0, description="first image column of the band")
+    columns: int = Field(0, ge=0, description="columns in the band (0: no error)")
+    error: float = Field(0.0, gt=-1.0, lt=1.0, description="fraction of star light lost")
+
+    @property
+    def active(self) -> bool:
+        """Whether any star light is lost."""
+        return self.columns > 0 and self.error != 0.0
+
+    def star_response(self, n_columns: int) -> np.ndarray:
+        """Factor on point-source light of every image column (1 outside the band)."""
+        factor = np.ones(n_columns)
+        factor[self.first_column : self.first_column + self.columns] -= self.error
+        return factor
+
+
 class ActualOptions(_Options):
     """True values where the night differs from the config (``simulate.actual``).
 
@@ -86,6 +121,7 @@ class ActualOptions(_Options):
         0.0, description="true radial distortion k1 minus the config's, rad^-2"
     )
     wander: WanderOptions = Field(default_factory=WanderOptions)
+    flat_error: FlatErrorOptions = Field(default_factory=FlatErrorOptions)
 
     @property
     def changes_camera(self) -> bool:
@@ -100,7 +136,11 @@ class ActualOptions(_Options):
 
     @property
     def active(self) -> bool:
-        """Whether anything differs from the config."""
+        """Whether the geometry or the clock differs from the config.
+
+        ``flat_error`` is left out: it changes no geometry, and the truth
+        records it with the photometry (``truth.meta['photometry']``).
+        """
         return self.changes_camera or self.clock_offset != 0.0 or self.wander.active
 
 

@@ -17,6 +17,7 @@ from pipeline.simulate._render import GaussianMixturePSF, render_tracks
 __all__ = [
     "Tracks",
     "bleed_trails",
+    "mean_transparency",
     "peak_fraction",
     "sample_tracks",
     "samples_needed",
@@ -32,6 +33,25 @@ def transparency(t: np.ndarray, duration: float, sky) -> np.ndarray:
         return np.ones_like(np.asarray(t, dtype=float))
     centre = sky.cloud_time * duration
     return 1.0 - sky.cloud_depth * np.exp(-0.5 * ((t - centre) / sky.cloud_width) ** 2)
+
+
+def mean_transparency(t_mid, crossing: float, *, depth: float, centre: float, width: float):
+    """Mean transparency over crossings of ``crossing`` seconds centred on ``t_mid``.
+
+    The mean of :func:`transparency` (a Gaussian dip of ``depth``, centre
+    ``centre`` and sigma ``width`` seconds) over ``[t_mid - crossing / 2,
+    t_mid + crossing / 2]``, in closed form with the error function.
+    """
+    from scipy.special import erf
+
+    t_mid = np.asarray(t_mid, dtype=float)
+    if depth == 0:
+        return np.ones_like(t_mid)
+    scale = np.sqrt(2.0) * width
+    half = 0.5 * crossing
+    upper = erf((t_mid + half - centre) / scale)
+    lower = erf((t_mid - half - centre) / scale)
+    return 1.0 - depth * width * np.sqrt(np.pi / 2.0) * (upper - lower) / crossing
 
 
 def sky_rows(rows, *, dt, n_tdi, duration, sky_rate, sky, start_ramp: bool):

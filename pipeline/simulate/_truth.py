@@ -14,7 +14,9 @@ from pipeline.simulate._exposure import peak_fraction
 __all__ = ["reference_table", "rounded_table", "truth_table"]
 
 
-def truth_table(stars, ra, dec, tracks, r_geom, c_geom, cols, psf, options, camera):
+def truth_table(
+    stars, ra, dec, tracks, r_geom, c_geom, cols, psf, options, camera, star_response=None
+):
     n_cols = camera.n_columns
     recorded = tracks.recorded
     # Light-weighted centroid = exact time mean + (weighted - unweighted) sample means.
@@ -22,6 +24,8 @@ def truth_table(stars, ra, dec, tracks, r_geom, c_geom, cols, psf, options, came
     c_mean = np.where(recorded > 0, c_geom + tracks.c_shift, np.nan)
     column = np.clip(np.rint(np.nan_to_num(c_geom)).astype(int), 0, n_cols - 1)
     response = cols.response[column]
+    if star_response is not None:  # star light lost where the sky's flat shows nothing
+        response = response * star_response[column]
     block = np.floor((r_geom + 0.5) / options.block_rows).astype(int)
     t = Table()
     if "id" in stars.colnames:  # a shared star field keeps its ids across nights
@@ -91,7 +95,7 @@ def reference_table(stars, truth, options, rng) -> Table:
     dra = ref.position_error * rng.standard_normal(n) * mas / np.cos(np.radians(dec))
     ddec = ref.position_error * rng.standard_normal(n) * mas
     colour = np.asarray(truth["colour"], float)[keep]
-    mag = np.asarray(truth["mag"], float)[keep] - ref.colour_term * colour
+    mag = np.asarray(truth["mag"], float)[keep] + ref.colour_term * colour
     t = Table(meta={"epoch": ref.epoch, "description": "simulated reference catalogue"})
     t["id"] = truth["id"][keep]
     t["ra"] = ((ra + dra) % 360.0) * u.deg
