@@ -64,9 +64,33 @@ from numpy.typing import ArrayLike
 
 from pipeline.geometry.optics import EARTH_ROTATION_RATE
 
-__all__ = ["RectifiedFrame", "frame_of_date_matrix"]
+__all__ = ["RectifiedFrame", "column_times", "frame_of_date_matrix"]
 
 _DEG = np.pi / 180.0
+
+
+def column_times(x: ArrayLike, line_time: float, tdi_rows: int) -> np.ndarray:
+    """Mid-crossing time of a star in rectified column ``x``, seconds.
+
+    Counted from the read-out of night row 0.  One rectified column is one
+    line time and ``x`` equals the night row of a star's recorded centroid
+    to within the slow drift described in the module docstring (a few line
+    times); the centroid is read out ``tdi_rows / 2`` line times after the
+    middle of the crossing (:meth:`pipeline.geometry.tdi.TDIModel.recorded_centroid`),
+    so ``t = (x - tdi_rows / 2) * line_time``.  The one map from columns to
+    times for every stage (astrometry's track windows, the zero point along
+    the night, the science images' zero point per column).
+
+    Parameters
+    ----------
+    x : array_like
+        Rectified (night) columns, pixels.
+    line_time : float
+        Line time, seconds.
+    tdi_rows : int
+        Detector rows a charge packet crosses.
+    """
+    return (np.asarray(x, dtype=float) - 0.5 * tdi_rows) * line_time
 
 
 def frame_of_date_matrix(epoch: Time) -> np.ndarray:

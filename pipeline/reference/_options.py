@@ -19,6 +19,7 @@ UNIT_KINDS = {
     "pm_ra": u.mas / u.yr,
     "pm_dec": u.mas / u.yr,
     "magnitude": u.mag,
+    "magnitude_error": u.mag,
     "colour": u.mag,
     "parallax": u.mas,
     "radial_velocity": u.km / u.s,
@@ -35,6 +36,9 @@ class ReferenceColumns(StrictModel):
     )
     pm_dec: str | None = Field("pm_dec", description="Proper motion in Dec; None: none.")
     magnitude: str = Field("mag", description="Magnitude the limits apply to.")
+    magnitude_error: str | None = Field(
+        None, description="1-sigma error of the magnitude (weights of the zero point); None: none."
+    )
     colour: str | None = Field(None, description="A colour index column; None: no colour.")
     colour_bands: tuple[str, str] | None = Field(
         None, description="Two magnitude columns (blue, red); colour = blue - red."
@@ -75,6 +79,7 @@ class ReferenceUnits(StrictModel):
     pm_ra: str | None = None
     pm_dec: str | None = None
     magnitude: str | None = None
+    magnitude_error: str | None = None
     colour: str | None = None
     parallax: str | None = None
     radial_velocity: str | None = None

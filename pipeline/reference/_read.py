@@ -42,7 +42,8 @@ class _Plan:
 def _plan(options: ReferenceOptions, table_file: TableFile, path: Path) -> _Plan:
     cols = options.columns
     wanted: dict[str, str] = {"ra": cols.ra, "dec": cols.dec, "magnitude": cols.magnitude}
-    for kind in ("pm_ra", "pm_dec", "colour", "parallax", "radial_velocity", "identifier"):
+    optional = ("pm_ra", "pm_dec", "magnitude_error", "colour", "parallax", "radial_velocity")
+    for kind in (*optional, "identifier"):
         if getattr(cols, kind) is not None:
             wanted[kind] = getattr(cols, kind)
     if cols.colour_bands is not None:
@@ -195,7 +196,9 @@ def read_reference(
     astropy.table.QTable
         In catalogue order: ``ra``, ``dec`` [deg] (ICRS at ``obs_epoch``),
         ``pm_ra`` (includes cos dec), ``pm_dec`` [mas/yr] (0 where unknown),
-        ``has_proper_motion`` (bool), ``mag`` [mag], ``colour`` [mag] if the
+        ``has_proper_motion`` (bool), ``mag`` [mag], ``mag_error`` [mag] if
+        the source gives one (``columns.magnitude_error``; Hipparcos-2's
+        ``hp_mag_error``), ``colour`` [mag] if the
         source has one, ``parallax`` [mas] and ``identifier`` if configured.
         ``meta`` holds ``source``, ``epoch`` (catalogue epoch, a Julian year
         or ``'column <name>'``), ``obs_epoch`` (Julian year), ``band`` (its
@@ -304,6 +307,8 @@ def _assemble(pieces, source, epoch, n_read, n_in_band, band, dec_range, limits)
         table[out] = np.where(has_pm, values, 0.0) * (u.mas / u.yr)
     table["has_proper_motion"] = has_pm
     table["mag"] = data["magnitude"] * u.mag
+    if "magnitude_error" in data:
+        table["mag_error"] = data["magnitude_error"] * u.mag
     if "colour" in data:
         table["colour"] = data["colour"] * u.mag
     elif "colour_blue" in data:
@@ -330,6 +335,7 @@ def _read_packaged(options: ReferenceOptions, band: SkyBand, obs_epoch) -> QTabl
             "pm_ra": cat["pmra"],
             "pm_dec": cat["pmdec"],
             "magnitude": cat["hp_mag"],
+            "magnitude_error": cat["hp_mag_error"],
             "colour": cat["b_v"],
             "parallax": cat["parallax"],
             "identifier": cat["hip"],

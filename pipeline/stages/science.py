@@ -201,8 +201,10 @@ def _run(*, inputs, options: ScienceOptions, context) -> dict:
         ("ZPERR", round(float(np.max(z_err)), 5), "[mag] largest error of the zero point"),
         ("ZPFLAGS", flags, "zero point: 1 cloud, 2 scatter, 4 few stars"),
         ("ZPINTERP", interpolated, "zero point bridged from neighbouring stretches"),
-        ("SEEING", round(fwhm_px * scale, 3), "[arcsec] nominal seeing FWHM (detect)"),
     ]
+    if np.isfinite(fwhm_px * scale):  # detect may find no star to fit the seeing with
+        cards.append(("SEEING", round(fwhm_px * scale, 3), "[arcsec] nominal seeing FWHM (detect)"))
+
     hdul = fits.HDUList([rectified[0].copy()])
     for name, data in (
         (FLUX_EXTENSION, image),

@@ -37,6 +37,7 @@ from numpy.typing import ArrayLike
 
 from pipeline.geometry.instrument import Camera
 from pipeline.geometry.optics import ARCSEC_PER_RADIAN, EARTH_ROTATION_RATE
+from pipeline.geometry.rectified import column_times
 from pipeline.geometry.tdi import TDIModel
 from pipeline.geometry.zenith import ZenithAxis, axis_basis_enu
 
@@ -342,9 +343,10 @@ class GeometryPredictor:
         """Approximate crossing middle of a star in rectified column ``x``, seconds.
 
         One rectified column is one line time and a star's recorded row is
-        its mid-crossing time over the line time plus ``N / 2``.
+        its mid-crossing time over the line time plus ``N / 2``
+        (:func:`pipeline.geometry.rectified.column_times`).
         """
-        return (np.asarray(x, dtype=float) - 0.5 * self.n_rows) * self.line_time
+        return column_times(x, self.line_time, self.n_rows)
 
     # ---------------------------------------------------------------- predict
     def _detector(

@@ -57,26 +57,31 @@ class AstrometryStageOptions(AstrometryOptions):
 
 
 def reference_columns(ref_index: np.ndarray, reference: QTable) -> dict[str, u.Quantity]:
-    """``ref_mag`` and ``ref_colour`` of each detection's matched reference star.
+    """``ref_mag``, ``ref_mag_err`` and ``ref_colour`` of each detection's reference star.
 
     Parameters
     ----------
     ref_index : ndarray of int, shape (n,)
         Row of the matched reference star, -1 where none.
     reference : QTable
-        The reference stars (``mag``, optionally ``colour``), as
+        The reference stars (``mag``, optionally ``mag_error`` and ``colour``), as
         :func:`read_reference` returns them.
 
     Returns
     -------
     dict
-        ``ref_mag`` and ``ref_colour`` [mag], NaN where unmatched (and the
-        colour NaN throughout when the reference has none).
+        ``ref_mag``, ``ref_mag_err`` and ``ref_colour`` [mag], NaN where
+        unmatched (and the error or colour NaN throughout when the reference
+        has none).
     """
     ref_index = np.asarray(ref_index, dtype=np.int64)
     matched = ref_index >= 0
     out = {}
-    for name, column in (("ref_mag", "mag"), ("ref_colour", "colour")):
+    for name, column in (
+        ("ref_mag", "mag"),
+        ("ref_mag_err", "mag_error"),
+        ("ref_colour", "colour"),
+    ):
         values = np.full(ref_index.size, np.nan)
         if column in reference.colnames:
             source = u.Quantity(reference[column], u.mag).value

@@ -153,6 +153,7 @@ def star_flat(
     min_stars: int = 5,
     max_offset: float = 0.01,
     significance: float = 4.0,
+    sigma: ArrayLike | None = None,
 ) -> tuple[QTable, dict]:
     """Stars' zero-point residuals binned by column: the "star flat".
 
@@ -176,6 +177,12 @@ def star_flat(
     max_offset : float, optional
         A bin whose offset exceeds this (mag) and ``significance`` times its
         error is listed as deviant.
+    sigma : array_like or None, optional
+        Each star's error, mag.  Given, a bin's offset is the weighted mean
+        of its residuals (the fit has already clipped the outliers) and its
+        error the mean's, widened by the square root of the reduced chi-square
+        where the scatter exceeds the errors: bright stars then weigh as much
+        as they should.  None: the median, with the error of a median.
     significance : float, optional
         See ``max_offset``.  4 sigma: a 4096-column chip has 256 bins of 16,
         and 4 sigma keeps a noise-only report to ~1.6 % of nights (normal
@@ -202,10 +209,18 @@ def star_flat(
     stops = np.minimum(starts + bin_columns, n_columns)
     which = np.floor(col / bin_columns).astype(int)
     n, offset, error = [], [], []
+    sig = None if sigma is None else np.asarray(sigma, dtype=float)
     for k in range(len(starts)):
-        here = res[used & (which == k)]
+        in_bin = used & (which == k)
+        here = res[in_bin]
         n.append(here.size)
-        if here.size >= min_stars:
+        if here.size >= min_stars and sig is not None:
+            weight = 1.0 / sig[in_bin] ** 2
+            mean = float(np.sum(weight * here) / np.sum(weight))
+            chi2_red = float(np.sum(weight * (here - mean) ** 2)) / (here.size - 1)
+            offset.append(mean)
+            error.append(float(np.sqrt(max(chi2_red, 1.0) / np.sum(weight))))
+        elif here.size >= min_stars:
             offset.append(float(np.median(here)))
             # Error of a median: 1.2533 sigma / sqrt(n) for normal data (common practice).
             error.append(1.2533 * _robust_sigma(here) / np.sqrt(here.size))

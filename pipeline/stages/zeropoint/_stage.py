@@ -5,7 +5,8 @@ column per line time (:mod:`pipeline.geometry.rectified`), and ``x`` equals
 the night row in which the source's centroid was read out to within a slow
 drift of a few line times.  So a column ``x`` was observed, at mid-crossing,
 ``t = (x - tdi_rows / 2) * line_time`` seconds after night row 0 was read
-out (:func:`column_times`); stretch ``[start, stop)`` covers the times of
+out (:func:`pipeline.geometry.rectified.column_times`, astrometry's map
+too); stretch ``[start, stop)`` covers the times of
 columns ``start`` to ``stop``.  The science stage uses the same map.
 """
 
@@ -20,6 +21,7 @@ from astropy import units as u
 from astropy.table import QTable, Table
 from pydantic import BaseModel, ConfigDict, Field
 
+from pipeline.geometry.rectified import column_times
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, Stage
 from pipeline.stages.detect import SourceFlag
 from pipeline.stages.zeropoint._fit import fit_zero_point
@@ -104,11 +106,6 @@ def night_line_time(block_index: Table) -> float:
     return float(np.median(np.asarray(block_index["line_time"], dtype=float)))
 
 
-def column_times(x, line_time: float, tdi_rows: int) -> np.ndarray:
-    """Mid-crossing time (s after night row 0 was read out) of rectified columns ``x``."""
-    return (np.asarray(x, dtype=float) - 0.5 * tdi_rows) * line_time
-
-
 @dataclass(frozen=True)
 class CalibratedNight:
     """Products of :func:`calibrate_catalog` (see there)."""
@@ -142,6 +139,14 @@ def _check_reference(catalog: QTable, fit_colour_term: bool) -> None:
         )
 
 
+def _reference_error(catalog: QTable) -> np.ndarray:
+    """The reference magnitudes' errors (``ref_mag_err``), mag; 0 where not given."""
+    if "ref_mag_err" not in catalog.colnames:
+        return np.zeros(len(catalog))
+    error = _value(catalog["ref_mag_err"])
+    return np.where(np.isfinite(error) & (error > 0), error, 0.0)
+
+
 def calibrate_catalog(
     catalog: QTable,
     *,
@@ -171,7 +176,10 @@ def calibrate_catalog(
         Astrometry's night catalogue: ``x``, ``y`` (rectified pixels; ``x``
         along the scan), ``flux_psf``, ``flux_psf_err`` (electrons over the
         crossing), ``flags``, ``ref_mag`` and ``ref_colour`` (mag, NaN where
-        unmatched); ``snr`` optional (else ``flux_psf / flux_psf_err``).
+        unmatched); ``snr`` optional (else ``flux_psf / flux_psf_err``);
+        ``ref_mag_err`` optional (mag): each star's weight in the fit is
+        ``1 / (instrumental error^2 + ref_mag_err^2)`` (plus the fit's extra
+        scatter).
     exposure : float
         Crossing time of every pixel, s (``XPOSURE``).
     line_time : float
@@ -235,7 +243,7 @@ def calibrate_catalog(
     fit = fit_zero_point(
         t[star],
         (ref_mag - m_inst)[star],
-        m_inst_err[star],
+        np.hypot(m_inst_err, _reference_error(catalog))[star],
         colour[star] if fit_colour_term else None,
         knot_spacing=knot_spacing,
         t_range=(float(edges[0]), float(edges[-1])),
@@ -313,6 +321,7 @@ def calibrate_catalog(
         bin_columns=flat_bin_columns,
         min_stars=flat_min_stars,
         max_offset=flat_max_offset,
+        sigma=fit.sigma,
     )
     flat.meta.update(trend)
     flat.meta["axis"] = "y (across the scan)"
