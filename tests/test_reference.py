@@ -104,6 +104,18 @@ def test_chunked_read_equals_one_shot(star_files, fmt, monkeypatch):
         np.testing.assert_array_equal(np.asarray(whole[name]), np.asarray(chunked[name]))
 
 
+def test_magnitude_errors_are_read_when_named(tmp_path):
+    """``columns.magnitude_error`` gives a ``mag_error`` column; without it there is none."""
+    table = _stars(50)
+    table["g_error"] = np.linspace(0.001, 0.05, 50)
+    path = _write(table, tmp_path, "ecsv")
+    out = read_reference(_options(path, columns={"magnitude_error": "g_error"}), ALL_SKY, 2016.0)
+    error_of = {str(i): e for i, e in zip(table["source_id"], table["g_error"], strict=True)}
+    expected = [error_of[str(i)] for i in out["identifier"]]
+    np.testing.assert_allclose(out["mag_error"].to_value(u.mag), expected)
+    assert "mag_error" not in read_reference(_options(path), ALL_SKY, 2016.0).colnames
+
+
 @pytest.mark.parametrize("fmt", ["ecsv", "fits", "parquet"])
 def test_units_declared_by_the_file_are_used(tmp_path, fmt):
     stars = _stars(200)

@@ -220,3 +220,23 @@ def test_star_flat_noise_alone_is_not_reported():
     table, trend = star_flat(column, residual, np.ones(2000, bool), 1024, bin_columns=16)
     assert np.nanmax(np.abs(table["offset"].value)) > 0.01
     assert trend["deviant"] == []
+
+
+def test_star_flat_weighs_stars_by_their_errors():
+    """Few stars per bin, mostly faint: the weighted mean finds the band the median misses.
+
+    20 bad columns 2 % off (the issue's case) in bins of 10 columns holding ~20
+    stars each, a fifth of them bright (3 mmag errors), the rest faint (40 mmag).
+    """
+    rng = np.random.default_rng(8)
+    n_columns, n = 512, 1000
+    column = rng.uniform(0, n_columns, n)
+    sigma = np.where(rng.uniform(size=n) < 0.2, 0.003, 0.04)
+    residual = rng.normal(0.0, sigma)
+    bad = (column >= 300) & (column < 320)
+    residual[bad] += 2.5 * np.log10(0.98)
+    used = np.ones(n, bool)
+    _, weighted = star_flat(column, residual, used, n_columns, bin_columns=10, sigma=sigma)
+    assert set(weighted["deviant"]) == {30, 31}  # columns 300-309 and 310-319
+    _, median = star_flat(column, residual, used, n_columns, bin_columns=10)
+    assert not {30, 31} <= set(median["deviant"])

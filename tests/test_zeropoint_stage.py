@@ -230,7 +230,7 @@ def _rectified(stretch: int, flux: float, star_x: float = 1500.3) -> fits.HDULis
     )
 
 
-def _science(stretch, zero_point_mag, flags=0, interpolated=False):
+def _science(stretch, zero_point_mag, flags=0, interpolated=False, fwhm=2.5):
     grid = QTable(
         {
             "t": [-100.0, 2000.0] * u.s,
@@ -264,7 +264,7 @@ def _science(stretch, zero_point_mag, flags=0, interpolated=False):
     }
     # A star of magnitude 15 recorded at Z = 24 over 10 s: 10 * 10**(0.4 * 9) e-.
     flux = EXPOSURE * 10 ** (0.4 * (zero_point_mag - STAR_MAG))
-    seeing = Table({"fwhm": [2.5] * u.pix})
+    seeing = Table({"fwhm": [fwhm] * u.pix})
     return science.STAGE.run(
         inputs={
             "ingest": {BLOCK_INDEX: block_index()},
@@ -302,6 +302,12 @@ def test_pixels_of_an_unreliable_stretch_carry_the_zero_point_bit():
     assert hdul["FLUX"].header["ZPFLAGS"] == int(ZeroPointFlag.CLOUD)
     total = float(np.sum(hdul["FLUX"].data, dtype=float))
     assert total == pytest.approx(10000.0, rel=1e-5)  # the cloud is calibrated out
+
+
+def test_a_stretch_without_a_seeing_fit_has_no_seeing_card():
+    """Detect found no star to fit the seeing with (NaN): the image is still written."""
+    hdul = _science(1, 24.0, fwhm=np.nan)
+    assert "SEEING" not in hdul["FLUX"].header and "PHOTZP" in hdul["FLUX"].header
 
 
 def _stand_in(name, scope, requires=(), defines_rows=False):
@@ -374,3 +380,27 @@ def test_the_products_survive_the_store_and_feed_the_science_stage(night, tmp_pa
     # following a cloud outside its deepest 10 s), i.e. 0.92 % in flux.
     assert float(np.sum(hdul["FLUX"].data, dtype=float)) == pytest.approx(10000.0, rel=0.0092)
     assert np.all(has_bits(hdul["FLAGS"].data, MaskBit.ZERO_POINT))
+
+
+def test_reference_magnitude_errors_weigh_the_fit():
+    """Stars with poor reference magnitudes (``ref_mag_err``) barely move the zero point.
+
+    A third of the stars get reference magnitudes 0.1 mag too bright, each with
+    a quoted error of 0.3 mag (under the 4-sigma clip): weighted by their errors
+    they shift the zero point by < 0.002 mag; unweighted they pull it by ~0.03.
+    """
+    catalog, truth = synthetic_catalog(seed=4)
+    rng = np.random.default_rng(9)
+    poor = rng.uniform(size=len(catalog)) < 1.0 / 3.0
+    catalog["ref_mag"][poor] -= 0.1 * u.mag
+    catalog["ref_mag_err"] = np.where(poor, 0.3, 0.005) * u.mag
+    clear = catalog["x"].value < CLOUD_STRETCH * STRETCH_ROWS
+    weighted = run_zeropoint(catalog)["catalog"]
+    error = weighted["mag"].to_value(u.mag) - truth
+    bright = clear & (weighted["snr"] > 100) & ~poor
+    # 0.002 mag: ~1000 good stars of ~0.01 mag each fix the clear zero point to 0.0003.
+    assert abs(np.median(error[bright])) < 0.002
+    del catalog["ref_mag_err"]
+    unweighted = run_zeropoint(catalog)["catalog"]
+    shift = unweighted["mag"].to_value(u.mag) - truth
+    assert np.median(shift[bright]) < -0.02

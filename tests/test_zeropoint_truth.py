@@ -26,9 +26,11 @@ import numpy as np
 import pytest
 import yaml
 from _night_truth import night_config
+from astropy.io import fits
 from astropy.table import Table
 
 from pipeline import load_config, open_product, run_night
+from pipeline.runner import night_dir
 from pipeline.simulate import (
     column_properties,
     simulate_night,
@@ -129,8 +131,10 @@ class Night:
         good = np.isfinite(flat) & (flat > 0.5) & (response > 0.5)
         self.flat_scale = float(np.median(response[good] / flat[good]))
         self.response = response
+        # The science images' headers (read as FITS: their WCS is not needed here).
         self.science_headers = [
-            open_product(config, "science", i).meta for i in range(len(self.intervals))
+            fits.getheader(night_dir(config) / "science" / str(stretch) / "image.fits", "FLUX")
+            for stretch in self.intervals["stretch"]
         ]
 
     def true_zero_point(self, t):

@@ -47,7 +47,10 @@ What is simulated
   ``start - clock_offset``); ``focal_length_scale``, ``rotation_offset``
   (deg), ``tilt_east_offset``, ``tilt_north_offset`` (arcsec) and
   ``distortion_k1_offset`` (rad^-2) make the true camera; ``wander`` displaces
-  every image sinusoidally along and across the scan (:class:`WanderOptions`).
+  every image sinusoidally along and across the scan (:class:`WanderOptions`);
+  ``flat_error`` takes a fraction of the star light out of a band of columns
+  while the sky keeps it, a flat-field error the sky's flat cannot show
+  (:class:`~pipeline.simulate._actual.FlatErrorOptions`).
   The camera then clocks ``1 + line_time_error`` times the line time matching
   the *true* drift (or its set ``camera.line_time``).  Headers carry only what
   the config implies (DATE-OBS from ``start``, LINETIME from the config's
@@ -61,6 +64,11 @@ What is simulated
   with its own seeing, sky, transparency (``sky.zero_point``, clouds), trails
   and noise; the camera is shared.  ``python -m pipeline.simulate`` writes
   them to one folder per night, named by the UTC date of its start.
+* **Photometric truth**: the truth's meta ``photometry``
+  (:func:`photometry_record`) holds the zero point, the reference colour
+  term, the cloud and the flat-field error; :func:`true_zero_point` gives the
+  zero point of a star crossing with mid-time ``t``, at the transparency
+  averaged over its crossing (:func:`mean_transparency`).
 * **Satellite trails** (``trails``, :class:`TrailOptions`): a point crossing
   the detector in a straight line at a given time, angle, speed and
   magnitude, rendered with the seeing PSF; the truth's meta ``trails`` records
