@@ -288,44 +288,8 @@ def _background_variance(variance: np.ndarray) -> np.ndarray:
     return spline(rows, cols)
 
 
-#: Up to this many nights the weighted median sorts with a compare-exchange network.
-_NETWORK_NIGHTS = 8
-#: Rows of a tile whose weighted median is computed at once.
-_MEDIAN_ROWS = 16
 #: Every this many rows and columns feed the reference of the level matching.
 _LEVEL_STEP = 4
-
-
-def _sorted_pairs(values: np.ndarray, weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """``values`` sorted along axis 0 and ``weights`` carried with them."""
-    n = values.shape[0]
-    if n > _NETWORK_NIGHTS:
-        order = np.argsort(values, axis=0)
-        return np.take_along_axis(values, order, 0), np.take_along_axis(weights, order, 0)
-    # odd-even transposition sort (Knuth, TAOCP vol. 3, 5.3.4): n rounds of
-    # compare-exchanges, each a few whole-array operations
-    v, w = [values[i] for i in range(n)], [weights[i] for i in range(n)]
-    for round_ in range(n):
-        for i in range(round_ % 2, n - 1, 2):
-            swap = v[i] > v[i + 1]
-            v[i], v[i + 1] = np.minimum(v[i], v[i + 1]), np.maximum(v[i], v[i + 1])
-            w[i], w[i + 1] = np.where(swap, w[i + 1], w[i]), np.where(swap, w[i], w[i + 1])
-    return np.stack(v), np.stack(w)
-
-
-def _weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
-    values = np.where(weights > 0, values, np.inf)
-    ordered, carried = _sorted_pairs(values, np.where(weights > 0, weights, 0))
-    half = 0.5 * carried.sum(axis=0)
-    cumulative = np.zeros_like(half)
-    median = np.full(half.shape, np.nan, dtype=np.result_type(values, np.float32))
-    found = half <= 0
-    for value, weight in zip(ordered, carried, strict=True):
-        cumulative += weight
-        take = (cumulative >= half) & ~found
-        median = np.where(take, value, median)
-        found |= take
-    return median
 
 
 def weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
@@ -341,49 +305,26 @@ def weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
         The lowest value at which the cumulative weight reaches half the
         total; NaN where every weight is 0.
     """
+    from pipeline.mosaic._coadd_jit import weighted_median_flat
+
     values, weights = np.asarray(values), np.asarray(weights)
-    if values.ndim < 3:
-        return _weighted_median(values, weights)
-    # in bands of rows, so that the sort's working set stays in the processor cache
-    out = np.empty(values.shape[1:], np.result_type(values, np.float32))
-    for r0 in range(0, values.shape[1], _MEDIAN_ROWS):
-        band = slice(r0, r0 + _MEDIAN_ROWS)
-        out[band] = _weighted_median(values[:, band], weights[:, band])
-    return out
+    if values.shape != weights.shape or values.ndim < 1:
+        raise ValueError(
+            "values and weights must be arrays of one shape (n, ...); got "
+            f"{values.shape} and {weights.shape}."
+        )
+    flat = weighted_median_flat(
+        np.ascontiguousarray(values, np.float64).reshape(values.shape[0], -1),
+        np.ascontiguousarray(weights, np.float64).reshape(values.shape[0], -1),
+    )
+    return flat.reshape(values.shape[1:]).astype(np.result_type(values, np.float32))
 
 
-def coadd(
-    images: np.ndarray,
-    variances: np.ndarray,
-    flags: np.ndarray,
-    *,
-    scale: np.ndarray | None = None,
-    reject_sigma: float = 4.0,
-    source_tolerance: float = 0.5,
-    source_radius: int = 5,
-    min_nights: int = 3,
-    grow: int = 1,
-    match_levels: bool = True,
-    ignore_flags: Sequence[str] = CoaddOptions().ignore_flags,
-) -> CoaddedPlanes:
-    """Inverse-variance weighted, outlier-rejecting mean of aligned nights.
+def _weighted_inputs(images, variances, flags, scale, match_levels, ignore_flags):
+    """Steps 3-4 of the module docstring: validity, weights and levels of the night planes.
 
-    Parameters
-    ----------
-    images : ndarray, shape (n_nights, n_y, n_x)
-        Each night on the tile, e- per pixel; NaN without data.
-    variances : ndarray, shape (n_nights, n_y, n_x)
-        Predicted pixel variance of each night, e^2 (the resampled variance
-        plane times its ``pixel_factor``).
-    flags : ndarray of uint16, shape (n_nights, n_y, n_x)
-    scale : ndarray, shape (n_nights,), optional
-        Extra factor on each night's weight (e.g. for seeing); default 1.
-    reject_sigma, source_tolerance, source_radius, min_nights, grow, match_levels, ignore_flags
-        See :class:`~pipeline.mosaic.CoaddOptions` and the module docstring.
-
-    Returns
-    -------
-    CoaddedPlanes
+    Returns the images (invalid pixels 0, levels matched), the variances and
+    flags, ``valid``, the weights (0 where invalid) and the level offsets.
     """
     images = np.asarray(images, dtype=np.float32)
     variances = np.asarray(variances, dtype=np.float32)
@@ -419,41 +360,81 @@ def coadd(
         shift = offsets.astype(np.float32)[:, None, None]
         images = np.where(valid, images - shift, np.float32(0))
 
-    count = valid.sum(axis=0)
+    return images, variances, flags, valid, weights, offsets
+
+
+def coadd(
+    images: np.ndarray,
+    variances: np.ndarray,
+    flags: np.ndarray,
+    *,
+    scale: np.ndarray | None = None,
+    reject_sigma: float = 4.0,
+    source_tolerance: float = 0.5,
+    source_radius: int = 5,
+    min_nights: int = 3,
+    grow: int = 1,
+    match_levels: bool = True,
+    ignore_flags: Sequence[str] = CoaddOptions().ignore_flags,
+) -> CoaddedPlanes:
+    """Inverse-variance weighted, outlier-rejecting mean of aligned nights.
+
+    Parameters
+    ----------
+    images : ndarray, shape (n_nights, n_y, n_x)
+        Each night on the tile, e- per pixel; NaN without data.
+    variances : ndarray, shape (n_nights, n_y, n_x)
+        Predicted pixel variance of each night, e^2 (the resampled variance
+        plane times its ``pixel_factor``).
+    flags : ndarray of uint16, shape (n_nights, n_y, n_x)
+    scale : ndarray, shape (n_nights,), optional
+        Extra factor on each night's weight (e.g. for seeing); default 1.
+    reject_sigma, source_tolerance, source_radius, min_nights, grow, match_levels, ignore_flags
+        See :class:`~pipeline.mosaic.CoaddOptions` and the module docstring.
+
+    Returns
+    -------
+    CoaddedPlanes
+    """
+    images, variances, flags, valid, weights, offsets = _weighted_inputs(
+        images, variances, flags, scale, match_levels, ignore_flags
+    )
+    n_nights, tile_shape = images.shape[0], images.shape[1:]
+    # numba is imported on first use, as for the resampler
+    from pipeline.mosaic._coadd_jit import combine, grow_rejections, median_and_noise, reject
+
+    planes = (n_nights, -1)
+    images = np.ascontiguousarray(images).reshape(planes)
+    variances = np.ascontiguousarray(variances).reshape(planes)
+    weights = weights.reshape(planes)
+    valid = valid.reshape(planes)
     rejected = np.zeros(images.shape, bool)
     if n_nights >= min_nights:
-        median = weighted_median(images, weights)
+        median, noise2, count = median_and_noise(images, weights, valid, variances)
         sky = np.nanmedian(median) if np.isfinite(median).any() else 0.0
         # the noise of a median is ~sqrt(pi/2) times that of the mean (common practice)
-        inverse = np.where(valid, 1.0 / np.where(valid, variances, 1.0), 0.0).sum(axis=0)
-        noise = np.sqrt(0.5 * np.pi / np.where(inverse > 0, inverse, np.inf))
-        signal = np.nan_to_num(median - sky)
-        signal = np.where(signal > 3.0 * noise, signal, 0.0)
+        signal = np.nan_to_num(median - sky).reshape(tile_shape)
+        signal = np.where(signal > 3.0 * np.sqrt(noise2).reshape(tile_shape), signal, 0.0)
         if source_radius > 0:
             signal = ndimage.maximum_filter(signal, size=2 * source_radius + 1)
-        sigma2 = np.where(valid, variances, 1.0) + noise**2 + (source_tolerance * signal) ** 2
-        rejected = (
-            valid & (count >= min_nights) & ((images - median) ** 2 > reject_sigma**2 * sigma2)
+        arguments = (float(reject_sigma), float(source_tolerance), int(min_nights))
+        rejected = reject(
+            images, variances, valid, median, noise2, signal.ravel(), count, arguments
         )
         if grow > 0 and rejected.any():
-            structure = np.ones((1, 2 * grow + 1, 2 * grow + 1), bool)
-            rejected = ndimage.binary_dilation(rejected, structure) & valid
+            rejected = grow_rejections(
+                rejected.reshape(n_nights, *tile_shape), valid.reshape(n_nights, *tile_shape), grow
+            ).reshape(planes)
     kept = valid & ~rejected
-    weights = np.where(kept, weights, 0.0)
-    total = weights.sum(axis=0)
-    has_data = total > 0
-    safe = np.where(has_data, total, 1.0)
-    image = np.where(has_data, (weights * images).sum(axis=0) / safe, np.nan)
-    spread = (weights**2 * np.where(kept, variances, 0.0)).sum(axis=0)
-    weight = np.where(has_data, total**2 / np.where(has_data, spread, 1.0), 0.0)
-    used = np.bitwise_or.reduce(np.where(kept, flags, 0).astype(MASK_DTYPE), axis=0)
-    every = np.bitwise_or.reduce(flags.astype(MASK_DTYPE), axis=0)
+    image, weight, coverage, used = combine(
+        images, variances, np.ascontiguousarray(flags, MASK_DTYPE).reshape(planes), weights, kept
+    )
     return CoaddedPlanes(
-        image=image.astype(np.float32),
-        weight=weight.astype(np.float32),
-        coverage=kept.sum(axis=0).astype(np.uint16),
-        flags=np.where(has_data, used, every).astype(MASK_DTYPE),
-        rejected=rejected.sum(axis=(1, 2)),
+        image=image.reshape(tile_shape),
+        weight=weight.reshape(tile_shape),
+        coverage=coverage.reshape(tile_shape),
+        flags=used.reshape(tile_shape),
+        rejected=rejected.sum(axis=1),
         offsets=offsets,
     )
 

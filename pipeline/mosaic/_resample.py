@@ -54,7 +54,7 @@ from scipy.interpolate import RectBivariateSpline
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic._tiles import Tile
 from pipeline.stages.rectify import NO_DATA_BITS
-from pipeline.stages.rectify._resample import _cleaned, keys_weights
+from pipeline.stages.rectify._resample import _cleaned
 
 __all__ = ["ResampledImage", "resample_to_tile"]
 
@@ -68,8 +68,6 @@ _GRID_STEP = 16
 _MAX_SHEAR = 0.364
 #: Reach of the 4-tap kernel beyond the sampled coordinate, px.
 _REACH = 3
-#: Output lines handled at once, so that the working set stays in the processor cache.
-_CHUNK = 32
 
 
 @dataclass(frozen=True, eq=False)
@@ -225,39 +223,20 @@ def _resample_axis(
     mean_weight2 : float
         Mean over the output of the sum of the squared weights.
     """
+    # numba is imported on first use (loading it and the cached machine code
+    # takes about a second, which a run without a mosaic should not pay)
+    from pipeline.mosaic._resample_jit import resample_columns, resample_rows
+
     image, variance, flags = planes
-    n_rows, n_cols = image.shape
-    n_line = n_cols if axis == 1 else n_rows
-    flat, vflat, mflat = image.ravel(), variance.ravel(), flags.ravel()
-    out = np.zeros(positions.shape, np.float32)
-    vout = np.zeros(positions.shape, np.float32)
-    mout = np.zeros(positions.shape, MASK_DTYPE)
-    outside = MASK_DTYPE.type(int(MaskBit.OUTSIDE))
-    sum_w2 = 0.0
-    for r0 in range(0, positions.shape[0], _CHUNK):
-        r1 = min(r0 + _CHUNK, positions.shape[0])
-        p = positions[r0:r1]
-        base = np.floor(p)
-        w = (keys_weights(p - base) * jacobian[r0:r1]).astype(np.float32)
-        base = base.astype(np.intp)
-        if axis == 1:
-            offset, stride = (np.arange(r0, r1) * n_cols)[:, None], 1
-        else:
-            offset, stride = np.arange(positions.shape[1])[None, :], n_cols
-        o, vo, mo = out[r0:r1], vout[r0:r1], mout[r0:r1]
-        for k in range(4):
-            line = base + (k - 1)
-            inside = (line >= 0) & (line < n_line)
-            index = offset + np.clip(line, 0, n_line - 1) * stride
-            wk = w[k] if inside.all() else np.where(inside, w[k], np.float32(0))
-            o += wk * flat[index]
-            w2 = wk * wk
-            vo += w2 * vflat[index]
-            sum_w2 += float(w2.sum(dtype=np.float64))
-            nonzero = w[k] != 0
-            mo |= np.where(nonzero & inside, mflat[index], 0).astype(MASK_DTYPE)
-            if not inside.all():
-                mo |= np.where(nonzero & ~inside, outside, 0).astype(MASK_DTYPE)
+    compiled = resample_rows if axis == 1 else resample_columns
+    out, vout, mout, sum_w2 = compiled(
+        image,
+        variance,
+        flags.astype(MASK_DTYPE, copy=False),
+        np.asarray(positions, np.float64),
+        np.asarray(jacobian, np.float64),
+        MASK_DTYPE.type(int(MaskBit.OUTSIDE)),
+    )
     return out, vout, mout, sum_w2 / max(positions.size, 1)
 
 

@@ -1,0 +1,161 @@
+"""The compiled per-pixel loops of :func:`pipeline.mosaic.coadd`.
+
+Kept apart so that numba is imported only when a tile is first co-added.
+Each loop visits a pixel's nights once (the numpy version made a whole-array
+pass per operation and sorted with a compare-exchange network); the
+arithmetic is that of :func:`pipeline.mosaic.coadd`'s module docstring.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+
+__all__ = ["combine", "grow_rejections", "median_and_noise", "reject", "weighted_median_flat"]
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _median_of(values, weights, p, order_v, order_w):
+    """Weighted median of pixel ``p`` (``values[:, p]``; weight <= 0: missing); NaN if none."""
+    n = 0
+    total = 0.0
+    for i in range(values.shape[0]):
+        w = weights[i, p]
+        if w > 0:
+            v = values[i, p]
+            # insertion sort: a handful of nights
+            j = n
+            while j > 0 and order_v[j - 1] > v:
+                order_v[j] = order_v[j - 1]
+                order_w[j] = order_w[j - 1]
+                j -= 1
+            order_v[j] = v
+            order_w[j] = w
+            n += 1
+            total += w
+    half = 0.5 * total
+    if n == 0 or half <= 0:
+        return np.nan
+    cumulative = 0.0
+    for j in range(n):
+        cumulative += order_w[j]
+        if cumulative >= half:
+            return order_v[j]
+    return order_v[n - 1]
+
+
+@numba.njit(cache=True, nogil=True)
+def weighted_median_flat(values, weights):
+    """Weighted median along axis 0 of ``(n, m)`` arrays: float64, shape (m,)."""
+    n, m = values.shape
+    out = np.empty(m, np.float64)
+    order_v = np.empty(n, np.float64)
+    order_w = np.empty(n, np.float64)
+    for p in range(m):
+        out[p] = _median_of(values, weights, p, order_v, order_w)
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def median_and_noise(images, weights, valid, variances):
+    """Per pixel of ``(n, m)`` planes: weighted median, ``V_m = (pi/2) / sum(1/V_i)``, count.
+
+    ``V_m`` is 0 where no night is valid.
+    """
+    n, m = images.shape
+    median = np.empty(m, np.float64)
+    noise2 = np.empty(m, np.float64)
+    count = np.empty(m, np.int64)
+    order_v = np.empty(n, np.float64)
+    order_w = np.empty(n, np.float64)
+    for p in range(m):
+        median[p] = _median_of(images, weights, p, order_v, order_w)
+        inverse = 0.0
+        c = 0
+        for i in range(n):
+            if valid[i, p]:
+                inverse += 1.0 / variances[i, p]
+                c += 1
+        noise2[p] = 0.5 * math.pi / inverse if inverse > 0 else 0.0
+        count[p] = c
+    return median, noise2, count
+
+
+@numba.njit(cache=True, nogil=True)
+def reject(images, variances, valid, median, noise2, signal, count, args):
+    """Outliers of ``(n, m)`` planes: ``(x - median)**2 > reject_sigma**2 * sigma2``.
+
+    ``args`` is ``(reject_sigma, source_tolerance, min_nights)``; ``sigma2 =
+    V_i + V_m + (source_tolerance * signal)**2``.
+    """
+    reject_sigma, source_tolerance, min_nights = args
+    n, m = images.shape
+    rejected = np.zeros((n, m), np.bool_)
+    limit = reject_sigma * reject_sigma
+    for p in range(m):
+        if count[p] < min_nights:
+            continue
+        allowance = noise2[p] + (source_tolerance * signal[p]) ** 2
+        for i in range(n):
+            if valid[i, p]:
+                d = images[i, p] - median[p]
+                rejected[i, p] = d * d > limit * (variances[i, p] + allowance)
+    return rejected
+
+
+@numba.njit(cache=True, nogil=True)
+def grow_rejections(rejected, valid, grow):
+    """Rejections of ``(n, n_y, n_x)`` grown to squares of ``2 grow + 1`` px, within ``valid``."""
+    n, n_y, n_x = rejected.shape
+    out = np.zeros_like(rejected)
+    for i in range(n):
+        for y in range(n_y):
+            for x in range(n_x):
+                if rejected[i, y, x]:
+                    for yy in range(max(y - grow, 0), min(y + grow + 1, n_y)):
+                        for xx in range(max(x - grow, 0), min(x + grow + 1, n_x)):
+                            out[i, yy, xx] = valid[i, yy, xx]
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def combine(images, variances, flags, weights, kept):
+    """Weighted mean of ``(n, m)`` planes over the kept nights.
+
+    Returns image (NaN without data), weight ``(sum w)**2 / sum(w**2 V)``
+    (0 without data), coverage and flags (OR of the kept nights', of all
+    nights' where none is kept), each of shape (m,).
+    """
+    n, m = images.shape
+    image = np.empty(m, np.float32)
+    weight = np.empty(m, np.float32)
+    coverage = np.empty(m, np.uint16)
+    out_flags = np.empty(m, np.uint16)
+    for p in range(m):
+        total = 0.0
+        weighted = 0.0
+        spread = 0.0
+        used = np.uint16(0)
+        every = np.uint16(0)
+        c = 0
+        for i in range(n):
+            every |= flags[i, p]
+            if kept[i, p]:
+                w = weights[i, p]
+                total += w
+                weighted += w * images[i, p]
+                spread += w * w * variances[i, p]
+                used |= flags[i, p]
+                c += 1
+        coverage[p] = c
+        if total > 0:
+            image[p] = weighted / total
+            weight[p] = total * total / spread if spread > 0 else 0.0
+            out_flags[p] = used
+        else:
+            image[p] = np.nan
+            weight[p] = 0.0
+            out_flags[p] = every
+    return image, weight, coverage, out_flags

@@ -1,0 +1,173 @@
+"""Reference (numpy) versions of the mosaic's compiled loops, for tests and benchmarks.
+
+These are the implementations the compiled ones replaced, kept verbatim so
+that tests can compare the two on random inputs and the benchmark can time
+both in one run.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage
+
+from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.mosaic import CoaddedPlanes, CoaddOptions
+from pipeline.mosaic._coadd import _weighted_inputs
+from pipeline.stages.rectify._resample import keys_weights
+
+#: The co-add's default flags to ignore.
+_IGNORE_FLAGS = CoaddOptions().ignore_flags
+#: Output lines handled at once, so that the working set stays in the processor cache.
+CHUNK = 32
+
+
+def resample_axis_numpy(
+    planes: tuple[np.ndarray, np.ndarray, np.ndarray],
+    positions: np.ndarray,
+    jacobian: np.ndarray,
+    axis: int,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """``pipeline.mosaic._resample._resample_axis`` as it was in numpy."""
+    image, variance, flags = planes
+    n_rows, n_cols = image.shape
+    n_line = n_cols if axis == 1 else n_rows
+    flat, vflat, mflat = image.ravel(), variance.ravel(), flags.ravel()
+    out = np.zeros(positions.shape, np.float32)
+    vout = np.zeros(positions.shape, np.float32)
+    mout = np.zeros(positions.shape, MASK_DTYPE)
+    outside = MASK_DTYPE.type(int(MaskBit.OUTSIDE))
+    sum_w2 = 0.0
+    for r0 in range(0, positions.shape[0], CHUNK):
+        r1 = min(r0 + CHUNK, positions.shape[0])
+        p = positions[r0:r1]
+        base = np.floor(p)
+        w = (keys_weights(p - base) * jacobian[r0:r1]).astype(np.float32)
+        base = base.astype(np.intp)
+        if axis == 1:
+            offset, stride = (np.arange(r0, r1) * n_cols)[:, None], 1
+        else:
+            offset, stride = np.arange(positions.shape[1])[None, :], n_cols
+        o, vo, mo = out[r0:r1], vout[r0:r1], mout[r0:r1]
+        for k in range(4):
+            line = base + (k - 1)
+            inside = (line >= 0) & (line < n_line)
+            index = offset + np.clip(line, 0, n_line - 1) * stride
+            wk = w[k] if inside.all() else np.where(inside, w[k], np.float32(0))
+            o += wk * flat[index]
+            w2 = wk * wk
+            vo += w2 * vflat[index]
+            sum_w2 += float(w2.sum(dtype=np.float64))
+            nonzero = w[k] != 0
+            mo |= np.where(nonzero & inside, mflat[index], 0).astype(MASK_DTYPE)
+            if not inside.all():
+                mo |= np.where(nonzero & ~inside, outside, 0).astype(MASK_DTYPE)
+    return out, vout, mout, sum_w2 / max(positions.size, 1)
+
+
+#: Up to this many nights the weighted median sorts with a compare-exchange network.
+_NETWORK_NIGHTS = 8
+#: Rows of a tile whose weighted median is computed at once.
+_MEDIAN_ROWS = 16
+
+
+def _sorted_pairs(values: np.ndarray, weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``values`` sorted along axis 0 and ``weights`` carried with them."""
+    n = values.shape[0]
+    if n > _NETWORK_NIGHTS:
+        order = np.argsort(values, axis=0)
+        return np.take_along_axis(values, order, 0), np.take_along_axis(weights, order, 0)
+    # odd-even transposition sort (Knuth, TAOCP vol. 3, 5.3.4): n rounds of
+    # compare-exchanges, each a few whole-array operations
+    v, w = [values[i] for i in range(n)], [weights[i] for i in range(n)]
+    for round_ in range(n):
+        for i in range(round_ % 2, n - 1, 2):
+            swap = v[i] > v[i + 1]
+            v[i], v[i + 1] = np.minimum(v[i], v[i + 1]), np.maximum(v[i], v[i + 1])
+            w[i], w[i + 1] = np.where(swap, w[i + 1], w[i]), np.where(swap, w[i], w[i + 1])
+    return np.stack(v), np.stack(w)
+
+
+def _weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    values = np.where(weights > 0, values, np.inf)
+    ordered, carried = _sorted_pairs(values, np.where(weights > 0, weights, 0))
+    half = 0.5 * carried.sum(axis=0)
+    cumulative = np.zeros_like(half)
+    median = np.full(half.shape, np.nan, dtype=np.result_type(values, np.float32))
+    found = half <= 0
+    for value, weight in zip(ordered, carried, strict=True):
+        cumulative += weight
+        take = (cumulative >= half) & ~found
+        median = np.where(take, value, median)
+        found |= take
+    return median
+
+
+def weighted_median_numpy(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """:func:`pipeline.mosaic.weighted_median` as it was in numpy."""
+    values, weights = np.asarray(values), np.asarray(weights)
+    if values.ndim < 3:
+        return _weighted_median(values, weights)
+    # in bands of rows, so that the sort's working set stays in the processor cache
+    out = np.empty(values.shape[1:], np.result_type(values, np.float32))
+    for r0 in range(0, values.shape[1], _MEDIAN_ROWS):
+        band = slice(r0, r0 + _MEDIAN_ROWS)
+        out[band] = _weighted_median(values[:, band], weights[:, band])
+    return out
+
+
+def coadd_numpy(
+    images: np.ndarray,
+    variances: np.ndarray,
+    flags: np.ndarray,
+    *,
+    scale: np.ndarray | None = None,
+    reject_sigma: float = 4.0,
+    source_tolerance: float = 0.5,
+    source_radius: int = 5,
+    min_nights: int = 3,
+    grow: int = 1,
+    match_levels: bool = True,
+    ignore_flags=_IGNORE_FLAGS,
+) -> CoaddedPlanes:
+    """:func:`pipeline.mosaic.coadd` as it was in numpy (steps 5-6 of its docstring)."""
+    images, variances, flags, valid, weights, offsets = _weighted_inputs(
+        images, variances, flags, scale, match_levels, ignore_flags
+    )
+    n_nights = images.shape[0]
+    count = valid.sum(axis=0)
+    rejected = np.zeros(images.shape, bool)
+    if n_nights >= min_nights:
+        median = weighted_median_numpy(images, weights)
+        sky = np.nanmedian(median) if np.isfinite(median).any() else 0.0
+        # the noise of a median is ~sqrt(pi/2) times that of the mean (common practice)
+        inverse = np.where(valid, 1.0 / np.where(valid, variances, 1.0), 0.0).sum(axis=0)
+        noise = np.sqrt(0.5 * np.pi / np.where(inverse > 0, inverse, np.inf))
+        signal = np.nan_to_num(median - sky)
+        signal = np.where(signal > 3.0 * noise, signal, 0.0)
+        if source_radius > 0:
+            signal = ndimage.maximum_filter(signal, size=2 * source_radius + 1)
+        sigma2 = np.where(valid, variances, 1.0) + noise**2 + (source_tolerance * signal) ** 2
+        rejected = (
+            valid & (count >= min_nights) & ((images - median) ** 2 > reject_sigma**2 * sigma2)
+        )
+        if grow > 0 and rejected.any():
+            structure = np.ones((1, 2 * grow + 1, 2 * grow + 1), bool)
+            rejected = ndimage.binary_dilation(rejected, structure) & valid
+    kept = valid & ~rejected
+    weights = np.where(kept, weights, 0.0)
+    total = weights.sum(axis=0)
+    has_data = total > 0
+    safe = np.where(has_data, total, 1.0)
+    image = np.where(has_data, (weights * images).sum(axis=0) / safe, np.nan)
+    spread = (weights**2 * np.where(kept, variances, 0.0)).sum(axis=0)
+    weight = np.where(has_data, total**2 / np.where(has_data, spread, 1.0), 0.0)
+    used = np.bitwise_or.reduce(np.where(kept, flags, 0).astype(MASK_DTYPE), axis=0)
+    every = np.bitwise_or.reduce(flags.astype(MASK_DTYPE), axis=0)
+    return CoaddedPlanes(
+        image=image.astype(np.float32),
+        weight=weight.astype(np.float32),
+        coverage=kept.sum(axis=0).astype(np.uint16),
+        flags=np.where(has_data, used, every).astype(MASK_DTYPE),
+        rejected=rejected.sum(axis=(1, 2)),
+        offsets=offsets,
+    )

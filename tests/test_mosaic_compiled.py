@@ -1,0 +1,86 @@
+"""The mosaic's compiled loops against the numpy versions they replaced, on random inputs.
+
+The numpy versions (``tests/_mosaic_reference.py``) are what the accuracy
+tests of ``test_mosaic_resample.py`` and ``test_mosaic_coadd.py`` were first
+written against; these tests are self-consistency checks, not external truth.
+"""
+
+import numpy as np
+import pytest
+
+from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.mosaic import coadd, weighted_median
+from pipeline.mosaic._resample import _resample_axis
+from tests._mosaic_reference import coadd_numpy, resample_axis_numpy, weighted_median_numpy
+
+#: (axis, n_rows, n_cols, output shape) of the random resampling passes.
+PASSES = [(1, 37, 50, (37, 61)), (0, 45, 33, (52, 33)), (1, 3, 5, (3, 9))]
+
+
+def _random_planes(rng, shape):
+    image = rng.normal(100.0, 30.0, shape).astype(np.float32)
+    variance = rng.uniform(1.0, 50.0, shape).astype(np.float32)
+    flags = np.where(rng.random(shape) < 0.05, MaskBit.SATURATED, 0).astype(MASK_DTYPE)
+    return image, variance, flags
+
+
+@pytest.mark.parametrize(("axis", "n_rows", "n_cols", "out_shape"), PASSES)
+def test_compiled_pass_matches_numpy(axis, n_rows, n_cols, out_shape):
+    rng = np.random.default_rng(n_rows)
+    planes = _random_planes(rng, (n_rows, n_cols))
+    n_line = n_cols if axis == 1 else n_rows
+    # positions from 2 px before the first line to 2 px beyond the last (taps
+    # outside), a few on exact integers (a zero weight), Jacobians near 1
+    positions = rng.uniform(-2.0, n_line + 1.0, out_shape)
+    positions.flat[::7] = np.round(positions.flat[::7])
+    jacobian = rng.uniform(0.9, 1.1, out_shape)
+    *ours, ours_w2 = _resample_axis(planes, positions, jacobian, axis)
+    *theirs, theirs_w2 = resample_axis_numpy(planes, positions, jacobian, axis)
+    # the same float32 operations in the same order: equal to float32 rounding
+    # (1e-6 of values ~100, variances ~50)
+    np.testing.assert_allclose(ours[0], theirs[0], rtol=1e-6, atol=1e-4)
+    np.testing.assert_allclose(ours[1], theirs[1], rtol=1e-6, atol=1e-4)
+    np.testing.assert_array_equal(ours[2], theirs[2])
+    assert (ours[2] & MaskBit.OUTSIDE).any()
+    # float64 sums of the same float32 terms, in another order
+    assert ours_w2 == pytest.approx(theirs_w2, rel=1e-9)
+
+
+@pytest.mark.parametrize("n", [1, 2, 5, 9])
+def test_compiled_weighted_median_matches_numpy(n):
+    rng = np.random.default_rng(n)
+    values = rng.normal(0.0, 1.0, (n, 40, 30)).astype(np.float32)
+    weights = rng.uniform(0.0, 2.0, (n, 40, 30)).astype(np.float32)
+    weights[rng.random(weights.shape) < 0.3] = 0.0
+    weights[:, :10] = weights[:, :10] > 0  # equal weights: the cumulative meets half exactly
+    ours, theirs = weighted_median(values, weights), weighted_median_numpy(values, weights)
+    assert ours.dtype == theirs.dtype
+    # the median is one of the values: equal, or NaN at the same pixels
+    np.testing.assert_array_equal(ours, theirs)
+
+
+def test_compiled_coadd_matches_numpy():
+    rng = np.random.default_rng(3)
+    shape = (6, 90, 80)
+    images = rng.normal(50.0, 10.0, shape).astype(np.float32)
+    variances = np.full(shape, 100.0, np.float32) * rng.uniform(0.8, 1.2, (6, 1, 1))
+    images[:, 40:44, 30:34] += 2000.0  # a star in every night
+    images[2, 10, :] += 500.0  # a trail in one night
+    images[4, 60:63, 5:8] = np.nan
+    images[2, 11, 20:25] = np.nan  # beside the trail: rejections must not grow into it
+    images[3:, 20:30, 60:70] = np.nan  # three nights left: still rejecting
+    images[0, 25, 65] += 500.0
+    flags = np.zeros(shape, MASK_DTYPE)
+    flags[1, 70:75, 70:75] = MaskBit.SATURATED
+    images[:, 85:, 75:] = np.nan  # no data: the flags of every night
+    flags[:, 85:, 75:] = MaskBit.GAP
+    scale = np.array([1.0, 0.8, 1.0, 0.5, 1.0, 0.9])
+    ours = coadd(images, variances, flags, scale=scale)
+    theirs = coadd_numpy(images, variances, flags, scale=scale)
+    assert ours.rejected.sum() > 80  # the trail and its grown edges
+    np.testing.assert_array_equal(ours.rejected, theirs.rejected)
+    np.testing.assert_array_equal(ours.coverage, theirs.coverage)
+    np.testing.assert_array_equal(ours.flags, theirs.flags)
+    # float64 sums over nights against float32 ones: 1e-6 relative
+    np.testing.assert_allclose(ours.image, theirs.image, rtol=1e-6)
+    np.testing.assert_allclose(ours.weight, theirs.weight, rtol=1e-6)
