@@ -9,10 +9,11 @@ from __future__ import annotations
 
 import numpy as np
 from scipy import ndimage
+from scipy.interpolate import RectBivariateSpline
 
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic import CoaddedPlanes, CoaddOptions
-from pipeline.mosaic._coadd import _weighted_inputs
+from pipeline.mosaic._coadd import _WEIGHT_BLOCK, _flag_bits, _level_offsets
 from pipeline.stages.rectify._resample import keys_weights
 
 #: The co-add's default flags to ignore.
@@ -115,6 +116,56 @@ def weighted_median_numpy(values: np.ndarray, weights: np.ndarray) -> np.ndarray
     return out
 
 
+def background_variance_numpy(variance: np.ndarray) -> np.ndarray:
+    """``_background_grid`` and its bilinear interpolation, as they were in numpy."""
+    n_y, n_x = variance.shape
+    b = _WEIGHT_BLOCK
+    n_by, n_bx = -(-n_y // b), -(-n_x // b)
+    padded = np.full((n_by * b, n_bx * b), np.nan)
+    padded[:n_y, :n_x] = variance
+    blocks = padded.reshape(n_by, b, n_bx, b).transpose(0, 2, 1, 3).reshape(n_by, n_bx, b * b)
+    finite = np.isfinite(blocks)
+    counts = finite.sum(axis=-1)
+    ordered = np.sort(np.where(finite, blocks, np.inf), axis=-1)
+    middle = np.take_along_axis(ordered, np.maximum(counts - 1, 0)[..., None] // 2, axis=-1)[..., 0]
+    good = counts > 0
+    if not good.any():
+        return np.full(variance.shape, np.nan)
+    grid = np.where(good, middle, np.median(middle[good]))
+    if n_by < 2 or n_bx < 2:
+        return np.full(variance.shape, float(np.median(grid)))
+    centres_y = (np.arange(n_by) + 0.5) * b - 0.5
+    centres_x = (np.arange(n_bx) + 0.5) * b - 0.5
+    spline = RectBivariateSpline(centres_y, centres_x, grid, kx=1, ky=1)
+    rows = np.clip(np.arange(n_y, dtype=float), centres_y[0], centres_y[-1])
+    cols = np.clip(np.arange(n_x, dtype=float), centres_x[0], centres_x[-1])
+    return spline(rows, cols)
+
+
+def weighted_inputs_numpy(images, variances, flags, scale, match_levels, ignore_flags):
+    """``pipeline.mosaic._coadd._weighted_inputs`` as it was in numpy."""
+    images = np.asarray(images, dtype=np.float32)
+    variances = np.asarray(variances, dtype=np.float32)
+    flags = np.asarray(flags)
+    n_nights = images.shape[0]
+    scale = np.ones(n_nights) if scale is None else np.asarray(scale, dtype=float)
+    valid = np.isfinite(images) & np.isfinite(variances) & (variances > 0)
+    valid &= (flags & MASK_DTYPE.type(_flag_bits(ignore_flags))) == 0
+    background = np.stack(
+        [
+            background_variance_numpy(np.where(valid[i], variances[i], np.nan))
+            for i in range(n_nights)
+        ]
+    )
+    scale = scale.astype(np.float32)[:, None, None]
+    weights = np.where(valid, scale / np.where(valid, background, 1.0), 0.0).astype(np.float32)
+    images = np.where(valid, images, np.float32(0))
+    offsets = _level_offsets(images, valid, weights) if match_levels else np.zeros(n_nights)
+    shift = offsets.astype(np.float32)[:, None, None]
+    images = np.where(valid, images - shift, np.float32(0))
+    return images, variances, flags, valid, weights, offsets
+
+
 def coadd_numpy(
     images: np.ndarray,
     variances: np.ndarray,
@@ -130,7 +181,7 @@ def coadd_numpy(
     ignore_flags=_IGNORE_FLAGS,
 ) -> CoaddedPlanes:
     """:func:`pipeline.mosaic.coadd` as it was in numpy (steps 5-6 of its docstring)."""
-    images, variances, flags, valid, weights, offsets = _weighted_inputs(
+    images, variances, flags, valid, weights, offsets = weighted_inputs_numpy(
         images, variances, flags, scale, match_levels, ignore_flags
     )
     n_nights = images.shape[0]

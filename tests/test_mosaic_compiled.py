@@ -63,7 +63,11 @@ def test_compiled_coadd_matches_numpy():
     rng = np.random.default_rng(3)
     shape = (6, 90, 80)
     images = rng.normal(50.0, 10.0, shape).astype(np.float32)
-    variances = np.full(shape, 100.0, np.float32) * rng.uniform(0.8, 1.2, (6, 1, 1))
+    # a sky variance that grows across the tile and ripples from pixel to pixel:
+    # the weights' block medians and their interpolation matter
+    ramp = 1.0 + 0.5 * np.arange(shape[2]) / shape[2]
+    variances = 100.0 * rng.uniform(0.8, 1.2, (6, 1, 1)) * ramp * rng.uniform(0.9, 1.1, shape)
+    variances = variances.astype(np.float32)
     images[:, 40:44, 30:34] += 2000.0  # a star in every night
     images[2, 10, :] += 500.0  # a trail in one night
     images[4, 60:63, 5:8] = np.nan

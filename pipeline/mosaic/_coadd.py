@@ -48,7 +48,6 @@ import numpy as np
 from astropy.io import fits
 from astropy.wcs import WCS
 from scipy import ndimage
-from scipy.interpolate import RectBivariateSpline
 
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic._options import CoaddOptions
@@ -256,36 +255,25 @@ def _flag_bits(names: Sequence[str]) -> int:
 _WEIGHT_BLOCK = 32
 
 
-def _background_variance(variance: np.ndarray) -> np.ndarray:
-    """The median of ``variance`` over blocks of ``_WEIGHT_BLOCK`` pixels, interpolated bilinearly.
+def _background_grid(variance: np.ndarray, valid: np.ndarray) -> np.ndarray:
+    """The median of ``variance`` over blocks of ``_WEIGHT_BLOCK`` pixels (at least 2 x 2 of them).
 
     A star's pixels carry its photon noise and the resampling's phases make
     the variance plane ripple from pixel to pixel; the block median is the
-    sky's, and varies smoothly.  Blocks without data take the median of the
-    other blocks.
+    sky's, and varies smoothly (interpolated bilinearly between the block
+    centres).  Blocks without data take the median of the other blocks; a
+    tile less than two blocks wide gets one value.  NaN without any data.
     """
-    n_y, n_x = variance.shape
-    b = _WEIGHT_BLOCK
-    n_by, n_bx = -(-n_y // b), -(-n_x // b)
-    padded = np.full((n_by * b, n_bx * b), np.nan)
-    padded[:n_y, :n_x] = variance
-    blocks = padded.reshape(n_by, b, n_bx, b).transpose(0, 2, 1, 3).reshape(n_by, n_bx, b * b)
-    finite = np.isfinite(blocks)
-    counts = finite.sum(axis=-1)
-    ordered = np.sort(np.where(finite, blocks, np.inf), axis=-1)
-    middle = np.take_along_axis(ordered, np.maximum(counts - 1, 0)[..., None] // 2, axis=-1)[..., 0]
-    good = counts > 0
+    from pipeline.mosaic._coadd_jit import block_medians
+
+    grid = block_medians(variance, valid, _WEIGHT_BLOCK)
+    good = np.isfinite(grid)
     if not good.any():
-        return np.full(variance.shape, np.nan)
-    grid = np.where(good, middle, np.median(middle[good]))
-    if n_by < 2 or n_bx < 2:
-        return np.full(variance.shape, float(np.median(grid)))
-    centres_y = (np.arange(n_by) + 0.5) * b - 0.5
-    centres_x = (np.arange(n_bx) + 0.5) * b - 0.5
-    spline = RectBivariateSpline(centres_y, centres_x, grid, kx=1, ky=1)
-    rows = np.clip(np.arange(n_y, dtype=float), centres_y[0], centres_y[-1])
-    cols = np.clip(np.arange(n_x, dtype=float), centres_x[0], centres_x[-1])
-    return spline(rows, cols)
+        return np.full((2, 2), np.nan)
+    grid = np.where(good, grid, np.median(grid[good]))
+    if min(grid.shape) < 2:
+        return np.full((2, 2), np.median(grid))
+    return grid
 
 
 #: Every this many rows and columns feed the reference of the level matching.
@@ -326,6 +314,8 @@ def _weighted_inputs(images, variances, flags, scale, match_levels, ignore_flags
     Returns the images (invalid pixels 0, levels matched), the variances and
     flags, ``valid``, the weights (0 where invalid) and the level offsets.
     """
+    from pipeline.mosaic._coadd_jit import bilinear_weights, validity
+
     images = np.asarray(images, dtype=np.float32)
     variances = np.asarray(variances, dtype=np.float32)
     flags = np.asarray(flags)
@@ -336,31 +326,42 @@ def _weighted_inputs(images, variances, flags, scale, match_levels, ignore_flags
         )
     n_nights = images.shape[0]
     scale = np.ones(n_nights) if scale is None else np.asarray(scale, dtype=float)
-    valid = np.isfinite(images) & np.isfinite(variances) & (variances > 0)
-    valid &= (flags & MASK_DTYPE.type(_flag_bits(ignore_flags))) == 0
-    background = np.stack(
-        [_background_variance(np.where(valid[i], variances[i], np.nan)) for i in range(n_nights)]
+    planes = (n_nights, -1)
+    valid, images = validity(
+        np.ascontiguousarray(images).reshape(planes),
+        np.ascontiguousarray(variances).reshape(planes),
+        np.ascontiguousarray(flags, MASK_DTYPE).reshape(planes),
+        MASK_DTYPE.type(_flag_bits(ignore_flags)),
     )
-    scale = scale.astype(np.float32)[:, None, None]
-    weights = np.where(valid, scale / np.where(valid, background, 1.0), 0.0).astype(np.float32)
-    images = np.where(valid, images, np.float32(0))
-
-    offsets = np.zeros(n_nights)
-    if match_levels and n_nights > 1:
-        step = np.s_[:, ::_LEVEL_STEP, ::_LEVEL_STEP]
-        sample, sample_valid = images[step], valid[step]
-        reference = weighted_median(sample, weights[step])
-        for i in range(n_nights):
-            both = sample_valid[i] & np.isfinite(reference)
-            if both.any():
-                offsets[i] = np.median(sample[i][both] - reference[both])
-        totals = weights.sum(axis=(1, 2))
-        if totals.sum() > 0:
-            offsets -= np.sum(offsets * totals) / totals.sum()
+    valid, images = valid.reshape(variances.shape), images.reshape(variances.shape)
+    weights = np.empty(images.shape, np.float32)
+    for i in range(n_nights):
+        grid = _background_grid(variances[i], valid[i])
+        weights[i] = bilinear_weights(grid, _WEIGHT_BLOCK, valid[i], float(np.float32(scale[i])))
+    offsets = _level_offsets(images, valid, weights) if match_levels else np.zeros(n_nights)
+    if offsets.any():
         shift = offsets.astype(np.float32)[:, None, None]
-        images = np.where(valid, images - shift, np.float32(0))
-
+        np.subtract(images, shift, out=images, where=valid)
     return images, variances, flags, valid, weights, offsets
+
+
+def _level_offsets(images: np.ndarray, valid: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Each night's median offset from the nights' weighted median, keeping the weighted mean 0."""
+    n_nights = images.shape[0]
+    offsets = np.zeros(n_nights)
+    if n_nights < 2:
+        return offsets
+    step = np.s_[:, ::_LEVEL_STEP, ::_LEVEL_STEP]
+    sample, sample_valid = images[step], valid[step]
+    reference = weighted_median(sample, weights[step])
+    for i in range(n_nights):
+        both = sample_valid[i] & np.isfinite(reference)
+        if both.any():
+            offsets[i] = np.median(sample[i][both] - reference[both])
+    totals = weights.sum(axis=(1, 2))
+    if totals.sum() > 0:
+        offsets -= np.sum(offsets * totals) / totals.sum()
+    return offsets
 
 
 def coadd(

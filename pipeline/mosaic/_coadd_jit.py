@@ -13,7 +13,16 @@ import math
 import numba
 import numpy as np
 
-__all__ = ["combine", "grow_rejections", "median_and_noise", "reject", "weighted_median_flat"]
+__all__ = [
+    "bilinear_weights",
+    "block_medians",
+    "combine",
+    "grow_rejections",
+    "median_and_noise",
+    "reject",
+    "validity",
+    "weighted_median_flat",
+]
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
@@ -159,3 +168,66 @@ def combine(images, variances, flags, weights, kept):
             weight[p] = 0.0
             out_flags[p] = every
     return image, weight, coverage, out_flags
+
+
+@numba.njit(cache=True, nogil=True)
+def validity(images, variances, flags, ignore_bits):
+    """``valid`` (finite, positive variance, no ignored flag) and the images with 0 elsewhere."""
+    n, m = images.shape
+    valid = np.empty((n, m), np.bool_)
+    cleaned = np.empty((n, m), np.float32)
+    for i in range(n):
+        for p in range(m):
+            x = images[i, p]
+            v = variances[i, p]
+            ok = np.isfinite(x) and np.isfinite(v) and v > 0 and (flags[i, p] & ignore_bits) == 0
+            valid[i, p] = ok
+            cleaned[i, p] = x if ok else np.float32(0.0)
+    return valid, cleaned
+
+
+@numba.njit(cache=True, nogil=True)
+def block_medians(variance, valid, block):
+    """Lower median of the valid ``variance`` in each ``block`` x ``block`` block; NaN if none."""
+    n_y, n_x = variance.shape
+    n_by, n_bx = -(-n_y // block), -(-n_x // block)
+    out = np.full((n_by, n_bx), np.nan)
+    buffer = np.empty(block * block, np.float64)
+    for by in range(n_by):
+        for bx in range(n_bx):
+            c = 0
+            for y in range(by * block, min((by + 1) * block, n_y)):
+                for x in range(bx * block, min((bx + 1) * block, n_x)):
+                    if valid[y, x]:
+                        buffer[c] = variance[y, x]
+                        c += 1
+            if c > 0:
+                out[by, bx] = np.partition(buffer[:c], (c - 1) // 2)[(c - 1) // 2]
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def bilinear_weights(grid, block, valid, scale):
+    """``scale / B`` where ``valid`` (0 elsewhere), ``B`` bilinear in ``grid`` between blocks.
+
+    ``grid`` (at least 2 x 2) holds values at block centres ``(k + 1/2) block - 1/2``;
+    beyond the first and last centres ``B`` is held constant.
+    """
+    n_y, n_x = valid.shape
+    n_by, n_bx = grid.shape
+    out = np.empty((n_y, n_x), np.float32)
+    for y in range(n_y):
+        t = min(max((y + 0.5) / block - 0.5, 0.0), n_by - 1.0)
+        k = min(int(t), n_by - 2)
+        fy = t - k
+        for x in range(n_x):
+            if not valid[y, x]:
+                out[y, x] = 0.0
+                continue
+            u = min(max((x + 0.5) / block - 0.5, 0.0), n_bx - 1.0)
+            j = min(int(u), n_bx - 2)
+            fx = u - j
+            low = (1.0 - fx) * grid[k, j] + fx * grid[k, j + 1]
+            high = (1.0 - fx) * grid[k + 1, j] + fx * grid[k + 1, j + 1]
+            out[y, x] = scale / ((1.0 - fy) * low + fy * high)
+    return out
