@@ -49,7 +49,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from astropy.wcs import WCS
-from scipy.interpolate import RectBivariateSpline
+from scipy.interpolate import BSpline, RectBivariateSpline
 
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic._tiles import Tile
@@ -200,28 +200,28 @@ def _covered_box(mapping: _Mapping, tile: Tile, input_shape) -> tuple[int, int, 
 
 
 def _resample_axis(
-    planes: tuple[np.ndarray, np.ndarray, np.ndarray],
-    positions: np.ndarray,
-    jacobian: np.ndarray,
-    axis: int,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    planes: tuple[np.ndarray, np.ndarray, np.ndarray], positions: np.ndarray, axis: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float]:
     """Keys resampling along one axis with a sampling position for every output pixel.
 
     Parameters
     ----------
     planes : (image, variance, flags)
         Finite float32 image and variance, uint16 flags, shape (n_rows, n_cols).
-    positions, jacobian : ndarray
+    positions : ndarray
         Shape (n_rows, n_out) for ``axis=1`` (output ``[r, j]`` samples
         ``image[r, positions[r, j]]``) or (n_out, n_cols) for ``axis=0``
-        (output ``[i, c]`` samples ``image[positions[i, c], c]``); the Jacobian
-        multiplies the weights.
+        (output ``[i, c]`` samples ``image[positions[i, c], c]``).  The
+        weights are multiplied by the Jacobian ``|d positions / d output|``
+        along the axis (``numpy.gradient``'s differences), which conserves flux.
 
     Returns
     -------
     image, variance, flags : ndarray, shape positions.shape
     mean_weight2 : float
         Mean over the output of the sum of the squared weights.
+    mean_jacobian : float
+        Mean of the Jacobian.
     """
     # numba is imported on first use (loading it and the cached machine code
     # takes about a second, which a run without a mosaic should not pay)
@@ -229,15 +229,28 @@ def _resample_axis(
 
     image, variance, flags = planes
     compiled = resample_rows if axis == 1 else resample_columns
-    out, vout, mout, sum_w2 = compiled(
+    out, vout, mout, sum_w2, sum_jacobian = compiled(
         image,
         variance,
         flags.astype(MASK_DTYPE, copy=False),
         np.asarray(positions, np.float64),
-        np.asarray(jacobian, np.float64),
         MASK_DTYPE.type(int(MaskBit.OUTSIDE)),
     )
-    return out, vout, mout, sum_w2 / max(positions.size, 1)
+    size = max(positions.size, 1)
+    return out, vout, mout, sum_w2 / size, sum_jacobian / size
+
+
+def _grid_values(spline: RectBivariateSpline, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """``spline(x, y)`` on the grid ``x`` by ``y`` (the tensor product of B-spline bases)."""
+    from pipeline.mosaic._resample_jit import tensor_grid
+
+    tx, ty, coefficients = spline.tck
+    kx, ky = spline.degrees
+    coefficients = coefficients.reshape(tx.size - kx - 1, ty.size - ky - 1)
+    basis_x = BSpline.design_matrix(np.asarray(x, float), tx, kx, extrapolate=True).tocsr()
+    basis_y = BSpline.design_matrix(np.asarray(y, float), ty, ky, extrapolate=True)
+    table = np.ascontiguousarray((basis_y @ coefficients.T).T)
+    return tensor_grid(basis_x.indptr, basis_x.indices, basis_x.data, table)
 
 
 def _crossing_columns(
@@ -263,7 +276,7 @@ def _crossing_columns(
     if min(degree) < 1:
         return np.broadcast_to(crossing[:1, :1], (rows.size, columns.size)).copy()
     spline = RectBivariateSpline(y_nodes, x_nodes, crossing, kx=degree[1], ky=degree[0])
-    return spline(rows.astype(float), columns.astype(float))
+    return _grid_values(spline, rows, columns)
 
 
 def resample_to_tile(
@@ -324,8 +337,7 @@ def resample_to_tile(
     xs = np.arange(x0, x1)
 
     # Pass 2's positions: the input row of every tile pixel.
-    rows = mapping.y(ys.astype(float), xs.astype(float))
-    jacobian2 = np.abs(np.gradient(rows, axis=0)) if ys.size > 1 else np.ones_like(rows)
+    rows = _grid_values(mapping.y, ys, xs)
     t_lo = max(int(np.floor(rows.min())) - _REACH, 0)
     t_hi = min(int(np.ceil(rows.max())) + _REACH + 1, n_rows)
     if t_hi <= t_lo:
@@ -333,7 +345,6 @@ def resample_to_tile(
     # Pass 1's positions: where each tile column crosses each input row.
     pad = 1.5 * mapping.shear * (x1 - x0) + 2 * _NODE_STEP
     crossing = _crossing_columns(mapping, np.arange(t_lo, t_hi), xs, (y0 - pad, y1 + pad))
-    jacobian1 = np.abs(np.gradient(crossing, axis=1)) if xs.size > 1 else np.ones_like(crossing)
     x_lo = max(int(np.floor(crossing.min())) - _REACH, 0)
     x_hi = min(int(np.ceil(crossing.max())) + _REACH + 1, n_cols)
     if x_hi <= x_lo:
@@ -342,17 +353,17 @@ def resample_to_tile(
     planes = _cleaned(
         image[t_lo:t_hi, x_lo:x_hi],
         variance[t_lo:t_hi, x_lo:x_hi],
-        flags[t_lo:t_hi, x_lo:x_hi].astype(MASK_DTYPE),
+        flags[t_lo:t_hi, x_lo:x_hi].astype(MASK_DTYPE, copy=False),
         int(MaskBit.NONFINITE),
         np.dtype(np.float32),
     )
-    *planes, weight2_1 = _resample_axis(planes, crossing - x_lo, jacobian1, axis=1)
-    out, vout, mout, weight2_2 = _resample_axis(planes, rows - t_lo, jacobian2, axis=0)
+    *planes, weight2_1, jacobian1 = _resample_axis(planes, crossing - x_lo, axis=1)
+    out, vout, mout, weight2_2, jacobian2 = _resample_axis(planes, rows - t_lo, axis=0)
     no_data = (mout & MASK_DTYPE.type(int(NO_DATA_BITS))) != 0
     out[no_data] = np.nan
     vout[no_data] = np.nan
 
-    jacobian = float(np.mean(jacobian1)) * float(np.mean(jacobian2))
+    jacobian = jacobian1 * jacobian2
     correlation = float(noise_correlation) * jacobian / (weight2_1 * weight2_2)
     log.debug(
         "resampled onto %s: box y %d:%d x %d:%d, noise correlation %.3f",
