@@ -13,7 +13,7 @@ import numpy as np
 from astropy.wcs import WCS
 from scipy.special import erf
 
-from pipeline.mosaic import Tile, explicit_tiles
+from pipeline.mosaic import NightImage, Tile, explicit_tiles
 
 #: Tile centre and pixel scale of the scenes (arcsec per pixel).
 RA0, DEC0, SCALE = 359.99, 49.7, 1.0
@@ -71,3 +71,18 @@ def gaussian_stars(shape, xs, ys, fluxes, sigma) -> np.ndarray:
         fy = np.diff(0.5 * erf((edges_y - y) / root2))
         image += flux * np.outer(fy, fx)
     return image
+
+
+def column_pieces(night: NightImage, column_slices) -> list[NightImage]:
+    """The night's products cut to the night columns ``column_slices``, WCSs sliced to match."""
+    return [
+        NightImage(
+            np.ascontiguousarray(night.image[:, cols]),
+            np.ascontiguousarray(night.variance[:, cols]),
+            np.ascontiguousarray(night.flags[:, cols]),
+            night.wcs.slice((slice(None), cols)),
+            night.zero_point,
+            night.night,
+        )
+        for cols in column_slices
+    ]

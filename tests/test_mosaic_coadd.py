@@ -14,7 +14,7 @@ from pipeline.mosaic import (
     weighted_median,
 )
 from pipeline.products import image_hdulist
-from tests._mosaic_scene import RA0, gaussian_stars, night_wcs, tile
+from tests._mosaic_scene import RA0, column_pieces, gaussian_stars, night_wcs, tile
 
 TILE = tile(256)
 NIGHT_SHAPE = (300, 320)
@@ -209,18 +209,7 @@ def test_night_image_from_an_image_product():
 def test_overlapping_products_of_one_night_count_once(nights):
     clean, _ = nights
     night = clean[0]
-    pieces = []
-    for cols in (slice(0, 180), slice(140, None)):
-        pieces.append(
-            NightImage(
-                np.ascontiguousarray(night.image[:, cols]),
-                np.ascontiguousarray(night.variance[:, cols]),
-                np.ascontiguousarray(night.flags[:, cols]),
-                night.wcs.slice((slice(None), cols)),
-                25.0,
-                night.night,
-            )
-        )
+    pieces = column_pieces(night, [slice(0, 180), slice(140, None)])
     whole = mosaic_tile([night], TILE)
     split = mosaic_tile(pieces, TILE)
     assert split.nights == (night.night,)

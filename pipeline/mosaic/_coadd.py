@@ -52,6 +52,7 @@ from scipy import ndimage
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic._options import CoaddOptions
 from pipeline.mosaic._resample import resample_to_tile
+from pipeline.mosaic._seams import extended_planes
 from pipeline.mosaic._tiles import Tile
 from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSION
 
@@ -482,7 +483,14 @@ class MosaicTile:
 def _night_planes(
     products: Sequence[NightImage], tile: Tile, zero_point: float
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float] | None:
-    """One night's products resampled onto the tile and merged (inverse-variance where they meet).
+    """One night's products resampled onto the tile and merged.
+
+    Each product is resampled with the edge pixels of the night's other
+    products on its grid and answers for the tile pixels that sample its own
+    pixels (:mod:`pipeline.mosaic._seams`), so stretches that meet leave no
+    gap.  Where products overlap, the first one's pixels are kept: one
+    night's products hold the same photons there (a mean of the two would
+    halve the predicted variance of one measurement).
 
     Returns image, predicted pixel variance, flags (float32, float32, uint16),
     and the night's pixel and large-aperture noise factors (means over its
@@ -492,17 +500,17 @@ def _night_planes(
     variance = np.full(tile.shape, np.nan, np.float32)
     flags = np.full(tile.shape, MaskBit.OUTSIDE, MASK_DTYPE)
     factors, areas = [], []
+    scaled = []
     for product in products:
         gain = np.float32(10.0 ** (0.4 * (zero_point - product.zero_point)))
         planes = np.asarray(product.image, np.float32), np.asarray(product.variance, np.float32)
         if gain != 1:
             planes = planes[0] * gain, planes[1] * gain**2
+        scaled.append(((*planes, product.flags), product.wcs))
+    for i, product in enumerate(products):
+        planes, wcs, core = extended_planes(*scaled[i], scaled[:i] + scaled[i + 1 :])
         result = resample_to_tile(
-            *planes,
-            product.flags,
-            product.wcs,
-            tile,
-            noise_correlation=product.noise_correlation,
+            *planes, wcs, tile, noise_correlation=product.noise_correlation, core=core
         )
         if result is None:
             continue
@@ -510,24 +518,15 @@ def _night_planes(
         new_variance = result.variance * np.float32(result.pixel_factor)
         new = np.isfinite(result.image) & np.isfinite(new_variance) & (new_variance > 0)
         old = np.isfinite(image[region])
-        both = new & old
-        if both.any():  # stretches of one night that meet: inverse-variance mean
-            w_old = 1.0 / variance[region][both]
-            w_new = 1.0 / new_variance[both]
-            merged = (w_old * image[region][both] + w_new * result.image[both]) / (w_old + w_new)
-            result.image[both] = merged
-            new_variance[both] = 1.0 / (w_old + w_new)
-        take = new | ~old
+        take = new & ~old
         image[region] = np.where(take, result.image, image[region])
         variance[region] = np.where(take, new_variance, variance[region])
-        # flags of the products with data at a pixel; of every product where none has
+        # flags of the product whose data a pixel keeps; of every product where none has data
         flags[region] = np.where(
-            old | new,
-            np.where(old, flags[region], 0) | np.where(new, result.flags, 0),
-            flags[region] | result.flags,
+            old | new, np.where(old, flags[region], result.flags), flags[region] | result.flags
         )
         factors.append((result.pixel_factor, result.noise_correlation / result.pixel_factor))
-        areas.append(new.sum())
+        areas.append(take.sum())
     if not factors:
         return None
     pixel, aperture = np.average(np.array(factors), axis=0, weights=np.maximum(areas, 1))

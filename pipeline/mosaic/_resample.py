@@ -279,6 +279,17 @@ def _crossing_columns(
     return _grid_values(spline, rows, columns)
 
 
+def _in_core(mapping: _Mapping, core, rows, ys, xs, shape) -> np.ndarray:
+    """Tile pixels whose sampling position (``rows``, and the mapping's column) lies in ``core``."""
+    y_lo, y_hi, x_lo, x_hi = core
+    if mapping.flip_y:
+        y_lo, y_hi = shape[0] - 1 - y_hi, shape[0] - 1 - y_lo
+    if mapping.flip_x:
+        x_lo, x_hi = shape[1] - 1 - x_hi, shape[1] - 1 - x_lo
+    columns = _grid_values(mapping.x, ys, xs)
+    return (rows >= y_lo) & (rows < y_hi) & (columns >= x_lo) & (columns < x_hi)
+
+
 def resample_to_tile(
     image: np.ndarray,
     variance: np.ndarray,
@@ -287,6 +298,7 @@ def resample_to_tile(
     tile: Tile,
     *,
     noise_correlation: float = 1.0,
+    core: tuple[float, float, float, float] | None = None,
 ) -> ResampledImage | None:
     """Resample an image, its variance and flags onto a tile, conserving flux.
 
@@ -305,6 +317,13 @@ def resample_to_tile(
         The output tile.
     noise_correlation : float
         The input's own large-aperture noise factor (rectify's ``NOISECOR``).
+    core : (y_lo, y_hi, x_lo, x_hi), optional
+        Input pixel coordinates (0-based) of the region this call answers
+        for: tile pixels whose sampling position lies outside
+        ``[y_lo, y_hi) x [x_lo, x_hi)`` are left without data (NaN, flagged
+        ``OUTSIDE``), for a neighbour that answers for them.  The arrays may
+        reach beyond it (a neighbour's edge pixels feed the interpolation
+        near a seam).  None: every pixel the input reaches.
 
     Returns
     -------
@@ -360,6 +379,10 @@ def resample_to_tile(
     *planes, weight2_1, jacobian1 = _resample_axis(planes, crossing - x_lo, axis=1)
     out, vout, mout, weight2_2, jacobian2 = _resample_axis(planes, rows - t_lo, axis=0)
     no_data = (mout & MASK_DTYPE.type(int(NO_DATA_BITS))) != 0
+    if core is not None:
+        elsewhere = ~_in_core(mapping, core, rows, ys, xs, (n_rows, n_cols))
+        no_data |= elsewhere
+        mout[elsewhere] |= MASK_DTYPE.type(int(MaskBit.OUTSIDE))
     out[no_data] = np.nan
     vout[no_data] = np.nan
 
