@@ -192,18 +192,47 @@ def block_medians(variance, valid, block):
     n_y, n_x = variance.shape
     n_by, n_bx = -(-n_y // block), -(-n_x // block)
     out = np.full((n_by, n_bx), np.nan)
-    buffer = np.empty(block * block, np.float64)
+    # one band of blocks at a time, read row by row (the order the planes are stored in)
+    buffers = np.empty((n_bx, block * block), np.float64)
+    counts = np.zeros(n_bx, np.int64)
     for by in range(n_by):
+        counts[:] = 0
+        for y in range(by * block, min((by + 1) * block, n_y)):
+            for x in range(n_x):
+                if valid[y, x]:
+                    bx = x // block
+                    buffers[bx, counts[bx]] = variance[y, x]
+                    counts[bx] += 1
         for bx in range(n_bx):
-            c = 0
-            for y in range(by * block, min((by + 1) * block, n_y)):
-                for x in range(bx * block, min((bx + 1) * block, n_x)):
-                    if valid[y, x]:
-                        buffer[c] = variance[y, x]
-                        c += 1
+            c = counts[bx]
             if c > 0:
-                out[by, bx] = np.partition(buffer[:c], (c - 1) // 2)[(c - 1) // 2]
+                out[by, bx] = _select(buffers[bx], c, (c - 1) // 2)
     return out
+
+
+@numba.njit(cache=True, nogil=True)
+def _select(values, n, k):
+    """The ``k``-th smallest of ``values[:n]``, reordering them (Hoare's selection, CACM 4, 321)."""
+    lo, hi = 0, n - 1
+    while lo < hi:
+        pivot = values[(lo + hi) // 2]
+        i, j = lo, hi
+        while i <= j:
+            while values[i] < pivot:
+                i += 1
+            while values[j] > pivot:
+                j -= 1
+            if i <= j:
+                values[i], values[j] = values[j], values[i]
+                i += 1
+                j -= 1
+        if k <= j:
+            hi = j
+        elif k >= i:
+            lo = i
+        else:
+            break
+    return values[k]
 
 
 @numba.njit(cache=True, nogil=True)
