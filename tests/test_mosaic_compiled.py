@@ -73,6 +73,9 @@ def test_compiled_coadd_matches_numpy():
     variances = variances.astype(np.float32)
     images[:, 40:44, 30:34] += 2000.0  # a star in every night
     images[2, 10, :] += 500.0  # a trail in one night
+    # a faint star (~12 sigma in the median) twice as bright in one night: the
+    # source allowance keeps it, without which that night would be rejected
+    images[:, 20:23, 50:53] += np.array([60.0, 60.0, 60.0, 120.0, 60.0, 60.0])[:, None, None]
     images[4, 60:63, 5:8] = np.nan
     images[2, 11, 20:25] = np.nan  # beside the trail: rejections must not grow into it
     images[3:, 20:30, 60:70] = np.nan  # three nights left: still rejecting

@@ -8,7 +8,9 @@ Steps (:func:`mosaic_tile`; :func:`coadd` is the part that sees only arrays):
 2. Put every product on one photometric scale (the first kept product's zero
    point: flux times ``10**(0.4 (zp_common - zp))``, variance times its square)
    and resample it onto the tile (:func:`~pipeline.mosaic.resample_to_tile`);
-   the products of one night (its stretches) form one plane per night.
+   the products of one night (its stretches) form one plane per night, each
+   resampled with its neighbours' edge pixels so that their seams leave no
+   gap (:mod:`pipeline.mosaic._seams`).
 3. Match levels: each night's median offset from the nights' median (its sky
    level) is removed, keeping the weighted mean level.
 4. Weights: ``w_i = s_i / B_i``, ``B_i`` the median of the night's predicted
@@ -315,7 +317,7 @@ def _weighted_inputs(images, variances, flags, scale, match_levels, ignore_flags
     Returns the images (invalid pixels 0, levels matched), the variances and
     flags, ``valid``, the weights (0 where invalid) and the level offsets.
     """
-    from pipeline.mosaic._coadd_jit import bilinear_weights, validity
+    from pipeline.mosaic._coadd_jit import bilinear_weights, shift_levels, validity
 
     images = np.asarray(images, dtype=np.float32)
     variances = np.asarray(variances, dtype=np.float32)
@@ -341,8 +343,7 @@ def _weighted_inputs(images, variances, flags, scale, match_levels, ignore_flags
         weights[i] = bilinear_weights(grid, _WEIGHT_BLOCK, valid[i], float(np.float32(scale[i])))
     offsets = _level_offsets(images, valid, weights) if match_levels else np.zeros(n_nights)
     if offsets.any():
-        shift = offsets.astype(np.float32)[:, None, None]
-        np.subtract(images, shift, out=images, where=valid)
+        shift_levels(images.reshape(planes), valid.reshape(planes), offsets.astype(np.float32))
     return images, variances, flags, valid, weights, offsets
 
 
@@ -403,7 +404,13 @@ def coadd(
     )
     n_nights, tile_shape = images.shape[0], images.shape[1:]
     # numba is imported on first use, as for the resampler
-    from pipeline.mosaic._coadd_jit import combine, grow_rejections, median_and_noise, reject
+    from pipeline.mosaic._coadd_jit import (
+        combine,
+        grow_rejections,
+        median_and_noise,
+        reject,
+        significant_signal,
+    )
 
     planes = (n_nights, -1)
     images = np.ascontiguousarray(images).reshape(planes)
@@ -415,8 +422,7 @@ def coadd(
         median, noise2, count = median_and_noise(images, weights, valid, variances)
         sky = np.nanmedian(median) if np.isfinite(median).any() else 0.0
         # the noise of a median is ~sqrt(pi/2) times that of the mean (common practice)
-        signal = np.nan_to_num(median - sky).reshape(tile_shape)
-        signal = np.where(signal > 3.0 * np.sqrt(noise2).reshape(tile_shape), signal, 0.0)
+        signal = significant_signal(median, noise2, float(sky)).reshape(tile_shape)
         if source_radius > 0:
             signal = ndimage.maximum_filter(signal, size=2 * source_radius + 1)
         arguments = (float(reject_sigma), float(source_tolerance), int(min_nights))

@@ -20,6 +20,8 @@ __all__ = [
     "grow_rejections",
     "median_and_noise",
     "reject",
+    "shift_levels",
+    "significant_signal",
     "validity",
     "weighted_median_flat",
 ]
@@ -259,4 +261,25 @@ def bilinear_weights(grid, block, valid, scale):
             low = (1.0 - fx) * grid[k, j] + fx * grid[k, j + 1]
             high = (1.0 - fx) * grid[k + 1, j] + fx * grid[k + 1, j + 1]
             out[y, x] = scale / ((1.0 - fy) * low + fy * high)
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def shift_levels(images, valid, offsets):
+    """Subtract ``offsets[i]`` from night ``i`` of ``(n, m)`` images where valid, in place."""
+    n, m = images.shape
+    for i in range(n):
+        for p in range(m):
+            if valid[i, p]:
+                images[i, p] -= offsets[i]
+
+
+@numba.njit(cache=True, nogil=True)
+def significant_signal(median, noise2, sky):
+    """``median - sky`` where it exceeds ``3 sqrt(noise2)``, else 0 (and 0 where NaN)."""
+    out = np.zeros(median.size, np.float64)
+    for p in range(median.size):
+        signal = median[p] - sky
+        if signal > 3.0 * math.sqrt(noise2[p]):
+            out[p] = signal
     return out

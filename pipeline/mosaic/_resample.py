@@ -31,6 +31,11 @@ Variance and flags
     are the OR of every input pixel with non-zero weight, plus
     :attr:`~pipeline.masks.MaskBit.OUTSIDE` where a tap falls beyond the input;
     pixels with a no-data bit are NaN.
+Compiled loops
+    Both passes, and the splines' evaluation on the tile grid, run in numba
+    (:mod:`pipeline.mosaic._resample_jit`, compiled on first use and cached);
+    ``tests/_mosaic_reference.py`` keeps the numpy passes they are checked
+    against.
 Noise correlation
     Neighbouring output pixels share input pixels, so the variance of an
     aperture sum exceeds the sum of the variance plane over it.
