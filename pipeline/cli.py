@@ -19,13 +19,15 @@ Examples
     zdrift run night.yaml --from calibrate --set stages.calibrate.cosmic_significance=5
     zdrift status night.yaml
     zdrift status night.yaml --verify            # also check every product's SHA-256
-    zdrift report night.yaml                     # the night's HTML report page
+    zdrift report night.yaml                     # rebuild the night's HTML report page
+    zdrift nightly site.yaml /data/raw           # every new or incomplete night, with reports
 """
 
 from __future__ import annotations
 
 import argparse
 import contextlib
+import shutil
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -34,15 +36,27 @@ import pipeline
 from pipeline._offline import astropy_offline
 from pipeline.config import Config, load_config
 from pipeline.exceptions import ConfigError, RunLockedError, RunStartError
-from pipeline.runner import LOG_NAME, night_dir, night_status, parse_stretches, run_night
+from pipeline.runner import (
+    LOG_NAME,
+    NIGHT_CONFIG_NAME,
+    REPORT_PAGE,
+    NightOutcome,
+    find_nights,
+    night_dir,
+    night_status,
+    parse_stretches,
+    reduce_night,
+    report_page,
+    run_night,
+)
 from pipeline.runner._logging import TextProgress, cli_logging
 
 __all__ = ["main"]
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_LOCKED, EXIT_CANNOT_START, EXIT_INCOMPLETE = range(6)
 
-#: File name of the night's report page in its output folder.
-REPORT_NAME = "report.html"
+#: The stage that makes the night's report page.
+REPORT_STAGE = REPORT_PAGE[0]
 
 #: The example of ``--set`` in the help; a key that exists (a test loads it).
 SET_EXAMPLE = "stages.calibrate.cosmic_significance=5"
@@ -53,6 +67,7 @@ exit status:
   {EXIT_OK}  success (status: every product is done)
   {EXIT_FAILED}  run: a unit failed or was blocked, a stage reported a problem with its
      input, or a damaged product was found (and recomputed);
+     nightly: a night reduced now failed or had such problems;
      status: a unit failed or is damaged, or a stage reported a problem
   {EXIT_USAGE}  bad command line or config
   {EXIT_LOCKED}  another run holds the night's lock
@@ -146,9 +161,37 @@ def _parser() -> argparse.ArgumentParser:
         help="epoch for the exact model, ISO 8601 UTC (default: the simulate section's "
         "start if any, else 2026-01-01)",
     )
-    report = command("report", "write the night's HTML report from the products that exist")
+    report = command(
+        "report",
+        "rebuild the night's HTML report page from the products that exist (the run's "
+        f"last stage, {REPORT_STAGE}, alone)",
+    )
     report.add_argument(
-        "--output", metavar="FILE", help=f"page to write (default: <night folder>/{REPORT_NAME})"
+        "--output", metavar="FILE", help="also copy the page there (it stays in the night folder)"
+    )
+    nightly = commands.add_parser(
+        "nightly",
+        help="reduce every new or incomplete night below a raw folder, each with its report",
+        description="Reduce every night folder below RAW_ROOT that is new or incomplete, "
+        "each to its report, and print one line per night.  A night's config is "
+        f"RAW_ROOT/<night>/{NIGHT_CONFIG_NAME} if there is one, else SITE_FILE with the "
+        "folder's name as night.name and the folder as night.raw_dir (SITE_FILE sets "
+        "night.output_dir).  Exit status 1 if any night reduced now failed or had problems.",
+        epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    nightly.add_argument("site_file", help="YAML file of the site, camera and stage options")
+    nightly.add_argument("raw_root", help="folder holding one folder of raw files per night")
+    nightly.add_argument(
+        "--set",
+        dest="overrides",
+        action="append",
+        default=[],
+        metavar="KEY=VALUE",
+        help="override a config value of every night (repeatable)",
+    )
+    nightly.add_argument(
+        "-v", "--verbose", dest="verbose_after", action="count", default=0, help=verbose_help
     )
     simulate = command("simulate", "write a synthetic night of raw blocks (section 'simulate')")
     simulate.add_argument("--output", help="folder to write to (default: night.raw_dir)")
@@ -187,6 +230,9 @@ def _cmd_run(args: argparse.Namespace, config: Config) -> int:
             print(f"zdrift run: {exc}", file=sys.stderr)
             return EXIT_USAGE
     print(report.format())
+    page = report_page(config)
+    if page is not None:
+        print(f"report: {page}")
     if not report.ok:
         print(f"details: {night_dir(config) / LOG_NAME}", file=sys.stderr)
     return EXIT_OK if report.ok else EXIT_FAILED
@@ -229,19 +275,57 @@ def _cmd_plan(args: argparse.Namespace, config: Config) -> int:
 
 
 def _cmd_report(args: argparse.Namespace, config: Config) -> int:
-    from pipeline.report import report_night
-
-    out = Path(args.output) if args.output else night_dir(config) / REPORT_NAME
-    with cli_logging(args.verbose):
-        page = report_night(config)
+    if REPORT_STAGE not in {stage.name for stage in config.graph}:
+        print(f"zdrift report: the pipeline has no {REPORT_STAGE} stage", file=sys.stderr)
+        return EXIT_USAGE
     try:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        out.write_text(page, encoding="utf-8")
-    except OSError as exc:
-        print(f"zdrift report: cannot write {out}: {exc}", file=sys.stderr)
+        with cli_logging(args.verbose, night_dir(config) / LOG_NAME):
+            run = run_night(config, stage=REPORT_STAGE)
+    except RunLockedError as exc:
+        print(f"zdrift report: {exc}", file=sys.stderr)
+        return EXIT_LOCKED
+    except (OSError, RunStartError) as exc:
+        print(f"zdrift report: {exc}", file=sys.stderr)
+        return EXIT_CANNOT_START
+    page = report_page(config)
+    if page is None:
+        print(run.format())
+        print(f"zdrift report: no page made; see {night_dir(config) / LOG_NAME}", file=sys.stderr)
         return EXIT_FAILED
-    print(f"report: {out}")
+    if args.output:
+        out = Path(args.output)
+        try:
+            out.parent.mkdir(parents=True, exist_ok=True)
+            shutil.copyfile(page, out)
+        except OSError as exc:
+            print(f"zdrift report: cannot write {out}: {exc}", file=sys.stderr)
+            return EXIT_FAILED
+        page = out
+    print(f"report: {page}")
     return EXIT_OK
+
+
+def _cmd_nightly(args: argparse.Namespace) -> int:
+    try:
+        nights = list(find_nights(args.site_file, args.raw_root, args.overrides))
+    except ValueError as exc:
+        print(f"zdrift nightly: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    if not nights:
+        print(f"zdrift nightly: no night folder in {args.raw_root}", file=sys.stderr)
+    failed = 0
+    for _, night in nights:
+        if isinstance(night, Config):
+            try:
+                with cli_logging(args.verbose, night_dir(night) / LOG_NAME):
+                    outcome = reduce_night(night)
+            except OSError as exc:  # the night's log cannot be written
+                outcome = NightOutcome(night.night.name, "failed", f"cannot write its log: {exc}")
+        else:
+            outcome = night
+        failed += outcome.failed
+        print(outcome.line(), flush=True)
+    return EXIT_FAILED if failed else EXIT_OK
 
 
 def _cmd_simulate(args: argparse.Namespace, config: Config) -> int:
@@ -288,6 +372,8 @@ def _main(args: Sequence[str] | None) -> int:
     except SystemExit as exc:  # --help, --version, usage errors
         return int(exc.code or 0)
     options.verbose += options.verbose_after
+    if options.command == "nightly":
+        return _cmd_nightly(options)
     try:
         config = load_config(options.config, options.overrides)
     except ConfigError as exc:

@@ -85,6 +85,7 @@ __all__ = [
     "apply_overrides",
     "config_from_mapping",
     "load_config",
+    "night_config",
     "parse_override",
     "register_section",
 ]
@@ -240,7 +241,6 @@ CameraSection = _section_for_dataclass(Camera)
 # (a missing module or attribute means "any mapping" until its owner adds it).
 _SECTIONS: dict[str, type[BaseModel] | str] = {
     "simulate": "pipeline.simulate:SimulateOptions",
-    "report": "pipeline.report:ReportOptions",
 }
 
 
@@ -404,6 +404,52 @@ def load_config(
     data, locations = _load_tree(path.absolute(), (), path_keys)
     data, locations = apply_overrides(data, locations, overrides)
     return _validate(data, locations, graph_t, str(path), path.absolute())
+
+
+def night_config(
+    site_file: str | Path,
+    name: str,
+    raw_dir: str | Path,
+    overrides: Iterable[str] = (),
+    *,
+    graph: Sequence[Stage] | None = None,
+) -> Config:
+    """The config of one night made from a site file and the night's raw folder.
+
+    The site file (with its ``extends``) holds everything but the night: the
+    site, the camera, the stages' options, and in its ``night`` section the
+    ``output_dir`` (and ``pattern``) shared by every night.  This adds
+    ``night.name = name`` and ``night.raw_dir = raw_dir``, as a night file
+    extending the site file would.
+
+    Parameters
+    ----------
+    site_file : str or pathlib.Path
+        The site's YAML file.
+    name : str
+        The night's name (its raw folder's name, e.g. ``2026-10-15``).
+    raw_dir : str or pathlib.Path
+        The night's raw folder.
+    overrides, graph
+        As for :func:`load_config`.
+
+    Raises
+    ------
+    ConfigError
+        As :func:`load_config`; e.g. when the site file sets no
+        ``night.output_dir``.
+    """
+    path = Path(site_file)
+    graph_t = _graph(graph)
+    data, locations = _load_tree(path.absolute(), (), _path_keys(_config_model(graph_t)))
+    night = data.get("night")
+    data["night"] = {
+        **(night if isinstance(night, dict) else {}),
+        "name": name,
+        "raw_dir": Path(raw_dir).absolute(),
+    }
+    data, locations = apply_overrides(data, locations, overrides)
+    return _validate(data, locations, graph_t, f"{path} (night {name})", path.absolute())
 
 
 def config_from_mapping(

@@ -8,6 +8,9 @@ import numpy as np
 from astropy.table import Table
 
 from pipeline.config import Config, config_from_mapping
+from pipeline.report import NightProducts, ReportOptions, build_report
+from pipeline.stages.base import StageContext
+from pipeline.stages.report import about_rows
 
 #: Line time (s) and TDI rows of the synthetic night.
 LINE_TIME = 0.05
@@ -74,6 +77,78 @@ def products() -> dict:
         "strip": strip,
         "strip_factor": 2,
         "pixel_scale": 0.5,
+        **solved_products(),
+    }
+
+
+def solved_products() -> dict:
+    """Astrometry and zeropoint products as those stages lay them out, made-up values."""
+    rng = np.random.default_rng(6)
+    parameters = Table(
+        {
+            "name": ["clock_offset", "focal_scale", "rotation"],
+            "value": [1e-4, 2e-5, 3.5],
+            "error": [4e-5, 9e-5, 0.8],
+            "unit": ["s", "", "arcsec"],
+        }
+    )
+    parameters.meta.update(
+        n_matched=321,
+        chi2_reduced=1.2,
+        focal_length_m=6.00012,
+        focal_length_from_spin_m=6.0,
+        line_time_s=LINE_TIME * (1 + 1e-4),
+        matched_line_time_s=LINE_TIME,
+    )
+    cells = [(a, b) for a in range(4) for b in range(8)]
+    grid = Table(
+        {
+            "across": [a for a, _ in cells],
+            "along": [b for _, b in cells],
+            "n": rng.integers(0, 30, len(cells)),
+            "mean_along": rng.normal(0, 10, len(cells)),
+            "mean_across": rng.normal(0, 10, len(cells)),
+            "rms_along": rng.uniform(20, 40, len(cells)),
+            "rms_across": rng.uniform(20, 40, len(cells)),
+        }
+    )
+    t = np.linspace(0.0, 12.0, 50)  # s after night row 0: columns 20 to 260
+    zero_point = Table(
+        {
+            "t": t,
+            "zero_point": 27.8 - 0.1 * np.exp(-(((t - 8) / 1.5) ** 2)),
+            "zero_point_err": np.full(t.size, 0.01),
+        }
+    )
+    zero_point.meta.update(line_time_s=LINE_TIME, tdi_rows=TDI_ROWS)
+    intervals = Table(
+        {
+            "stretch": ["s0000", "s0001"],
+            "t_start": [-1.0, 6.5],
+            "t_stop": [4.0, 11.5],
+            "flags": [0, 1],
+            "interpolated": [False, True],
+        }
+    )
+    intervals.meta["clear_level_mag"] = 27.8
+    star_flat = Table(
+        {
+            "column_start": np.arange(0, 64, 16),
+            "column_stop": np.arange(16, 80, 16),
+            "offset": [0.002, -0.001, 0.0, 0.03],
+            "offset_err": [0.002] * 4,
+        }
+    )
+    star_flat.meta.update(slope=2e-4, deviant=[3])
+    return {
+        "astrometry_parameters": parameters,
+        "residual_grid": grid,
+        "matched_x_range": (10.0, 240.0),
+        "n_columns": 64,
+        "tdi_rows": TDI_ROWS,
+        "zero_point": zero_point,
+        "zp_intervals": intervals,
+        "star_flat": star_flat,
     }
 
 
@@ -91,3 +166,12 @@ def config(tmp_path: Path, **site: str) -> Config:
             },
         }
     )
+
+
+def page(night: NightProducts, config: Config, options: ReportOptions | None = None) -> str:
+    """The page the report stage would write for ``night`` under ``config``."""
+    context = StageContext(
+        site=config.site(), camera=config.camera(), run=config.run, night=config.night.name
+    )
+    about = about_rows(context, night.header)
+    return build_report(night, config.night.name, about, options or ReportOptions())

@@ -16,16 +16,16 @@ from astropy.time import Time
 from astropy.wcs import WCS
 
 import pipeline.stages
-from pipeline.cli import REPORT_NAME, main
+from pipeline.cli import main
 from pipeline.config import load_config
 from pipeline.exceptions import ConfigError
 from pipeline.report import (
     FIGURES,
     FigureSpec,
     NightClock,
+    NightProducts,
     ReportOptions,
     bin_image,
-    build_report,
     column_flat_figure,
     draw_figures,
     measure_sky,
@@ -41,9 +41,8 @@ from pipeline.report import (
     sources_along_night_figure,
     summary_rows,
 )
-from pipeline.report._collect import NightProducts
-from pipeline.report._figures import _clock_text
-from pipeline.runner import NightStatus, StageStatus
+from pipeline.report._clock import _clock_text
+from pipeline.stages.report import STAGE as REPORT_STAGE
 
 SCRIPT = "<script>alert('x')</script>"
 
@@ -255,7 +254,7 @@ def test_a_failing_figure_is_a_note_and_a_problem_not_a_crash(tmp_path: Path) ->
 def test_values_from_config_headers_and_run_are_escaped(tmp_path: Path) -> None:
     config = scene.config(tmp_path, name=SCRIPT)
     night = NightProducts(products=scene.products(), header={"FILTER": "<i>r</i>"})
-    page = build_report(night, config, ReportOptions())
+    page = scene.page(night, config)
     assert "<script" not in page  # the page has no script of its own
     assert "&lt;script&gt;alert(&#x27;x&#x27;)&lt;/script&gt;" in page
     assert "&lt;i&gt;r&lt;/i&gt;" in page and "<i>" not in page
@@ -267,9 +266,7 @@ def test_values_from_config_headers_and_run_are_escaped(tmp_path: Path) -> None:
 
 
 def test_page_loads_nothing_from_anywhere(tmp_path: Path) -> None:
-    page = build_report(
-        NightProducts(products=scene.products()), scene.config(tmp_path), ReportOptions()
-    )
+    page = scene.page(NightProducts(products=scene.products()), scene.config(tmp_path))
     assert "http://" not in page and "https://" not in page and 'src="//' not in page
     assert page.count('src="data:image/png;base64,') == len(FIGURES)
     assert "Content-Security-Policy" in page and "default-src 'none'" in page
@@ -281,22 +278,17 @@ def test_summary_and_problems_in_words() -> None:
     assert rows["hours of usable data"] == f"{200 * scene.LINE_TIME / 3600:.2f} h (10 s)"
     assert rows["sources"].startswith("300 (")
     assert rows["median seeing FWHM"].endswith("arcsec")
-    assert rows["matched reference stars"].startswith("not available")
-    assert rows["zero point"].startswith("not available")
-    status = NightStatus(
-        night="n",
-        folder=Path("."),
-        n_stretches=2,
-        stages=[
-            StageStatus(
-                "scale",
-                "stretch",
-                units={"s0000": ("done", ""), "s0001": ("failed", "ValueError: boom")},
-                problems={"s0000": ["file x.fits rejected: truncated"]},
-            ),
-            StageStatus("total", "night", units={"night": ("missing", "")}),
+    status = {
+        "n_stretches": 2,
+        "stages": [
+            {
+                "name": "scale",
+                "units": {"s0000": ["done", ""], "s0001": ["failed", "ValueError: boom"]},
+                "problems": {"s0000": ["file x.fits rejected: truncated"]},
+            },
+            {"name": "total", "units": {"night": ["missing", ""]}, "problems": {}},
         ],
-    )
+    }
     assert problem_lines(status) == [
         "Stage scale failed for s0001: ValueError: boom.",
         "Stage scale (s0000) reported: file x.fits rejected: truncated",
@@ -305,6 +297,8 @@ def test_summary_and_problems_in_words() -> None:
     rows = dict(summary_rows({}, status))
     assert rows["problems and failures"] == "1 failed unit, 0 damaged units, 1 reported problem"
     assert rows["sources"].startswith("not available")
+    for label in ("matched reference stars", "solved parameters", "zero point"):
+        assert rows[label].startswith("not available"), label
 
 
 # ----------------------------------------------------------------- command
@@ -312,8 +306,9 @@ def test_summary_and_problems_in_words() -> None:
 
 @pytest.fixture
 def toy_file(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
-    """A toy night on disk and its config file; the CLI sees the toy graph."""
-    monkeypatch.setattr(pipeline.stages, "GRAPH", _toy_graph.GRAPH, raising=False)
+    """A toy night on disk and its config file; the CLI sees the toy graph and the report."""
+    graph = (*_toy_graph.GRAPH, REPORT_STAGE)
+    monkeypatch.setattr(pipeline.stages, "GRAPH", graph, raising=False)
     _toy_graph.write_raw_night(tmp_path / "raw")
     data = _toy_graph.toy_config_data(tmp_path)
     data["night"].update(raw_dir="raw", output_dir="out")
@@ -326,16 +321,17 @@ def test_report_command_puts_failures_first_and_skips_absent_figures(
     toy_file: Path, capsys
 ) -> None:
     assert main(["run", str(toy_file), "--set", "stages.scale.fail_on=[1]"]) == 1
-    capsys.readouterr()
+    out = toy_file.parent / "out" / "toy" / "report" / "night" / "page.html"
+    # The run ends with the report, whatever failed before it, and says where it is.
+    assert capsys.readouterr().out.strip().endswith(f"report: {out}")
     assert main(["report", str(toy_file), "--set", f"site.name={SCRIPT}"]) == 0
-    out = toy_file.parent / "out" / "toy" / REPORT_NAME
     assert capsys.readouterr().out.strip() == f"report: {out}"
     page = out.read_text(encoding="utf-8")
     problems = page.index('class="problems"')
     assert problems < page.index('id="summary"')
     assert "Stage scale failed for s0001: ValueError: toy failure on stretch 1." in page
     assert page.count("Not drawn: this night has no") == len(FIGURES)  # toy graph: no products
-    assert "<script" not in page
+    assert "<script" not in page and "&lt;script&gt;" in page
     other = toy_file.parent / "elsewhere" / "page.html"
     assert main(["report", str(toy_file), "--output", str(other)]) == 0
     assert other.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
@@ -343,7 +339,7 @@ def test_report_command_puts_failures_first_and_skips_absent_figures(
 
 def test_the_report_section_is_checked_like_any_other() -> None:
     template = Path(__file__).parent.parent / "configs" / "template.yaml"
-    config = load_config(template, ["report.nominal_zero_point=24.5"])
-    assert config.section("report") == ReportOptions(nominal_zero_point=24.5)
+    config = load_config(template, ["stages.report.nominal_zero_point=24.5"])
+    assert config.stage_options("report") == ReportOptions(nominal_zero_point=24.5)
     with pytest.raises(ConfigError, match="nominal_zeropoint"):
-        load_config(template, ["report.nominal_zeropoint=24.5"])
+        load_config(template, ["stages.report.nominal_zeropoint=24.5"])

@@ -23,8 +23,7 @@ from pathlib import Path
 import _report_scene as scene
 import pytest
 
-from pipeline.report import FIGURES, ReportOptions, build_report
-from pipeline.report._collect import NightProducts
+from pipeline.report import FIGURES, NightProducts
 from pipeline.report._page import CONTENT_POLICY
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
@@ -41,12 +40,14 @@ BROWSER_TIMEOUT = 120
 PROBE = """<script>
 window.addEventListener('load', function () {
   var images = Array.prototype.slice.call(document.images);
-  var broken = images.filter(function (i) { return !(i.complete && i.naturalWidth > 0); });
+  var loaded = function (i) { return i.complete && i.naturalWidth > 0; };
+  var broken = images.filter(function (i) { return !loaded(i); });
+  var shown = images.filter(loaded).map(function (i) { return i.alt; });
   var fetched = performance.getEntriesByType('resource').map(function (e) { return e.name; });
   var out = document.createElement('pre');
   out.id = 'probe';
   out.textContent = JSON.stringify({images: images.length, broken: broken.length,
-                                    fetched: fetched});
+                                    shown: shown, fetched: fetched});
   document.body.appendChild(out);
 });
 </script>"""
@@ -141,14 +142,17 @@ def _probe(page: str, tmp_path: Path) -> tuple[dict, list[str]]:
 
 @pytest.fixture
 def page(tmp_path: Path) -> str:
-    night = NightProducts(products=scene.products())
-    return build_report(night, scene.config(tmp_path), ReportOptions())
+    return scene.page(NightProducts(products=scene.products()), scene.config(tmp_path))
 
 
 def test_page_loads_every_image_and_requests_nothing(page: str, tmp_path: Path) -> None:
     probe, requests = _probe(page, tmp_path)
     assert probe["images"] == len(FIGURES)
     assert probe["broken"] == 0
+    # Every figure decoded, those of the solved products (astrometry, zero point) included.
+    assert probe["shown"] == [spec.title for spec in FIGURES]
+    solved = {"zero_point", "star_flat", "residual_map", "residual_night", "focal_length"}
+    assert solved <= {spec.name for spec in FIGURES}
     assert requests == []
     assert [name for name in probe["fetched"] if not name.startswith("data:")] == []
 

@@ -8,24 +8,18 @@ caption; a figure whose products do not exist is left out with a note
 ``data:`` URIs; the page loads nothing from anywhere, and every text from a
 header, the config or the run is HTML-escaped.
 
-Layers: :func:`collect_products` asks the runner for the night's products
-(and reduces the rectified images stretch by stretch); :func:`build_report`
-turns them into the page's text; the command line (``zdrift report``)
-writes it.
-
-Example
--------
->>> from pipeline.config import load_config              # doctest: +SKIP
->>> config = load_config("configs/demo.yaml")            # doctest: +SKIP
->>> page = report_night(config)                          # doctest: +SKIP
+Layers: the ``report`` stage (:mod:`pipeline.stages.report`) gets the
+night's products from the runner; :func:`collect_products` picks what the
+page draws (and reduces the rectified images stretch by stretch);
+:func:`build_report` turns them into the page's text, which the runner
+stores as ``<night>/report/night/page.html``.  ``zdrift run`` ends with it;
+``zdrift report CONFIG`` runs that stage alone.
 """
 
 from __future__ import annotations
 
-from typing import Any
+from collections.abc import Sequence
 
-import pipeline
-from pipeline.config import Config
 from pipeline.report._clock import NightClock
 from pipeline.report._collect import PRODUCT_SOURCES, NightProducts, collect_products
 from pipeline.report._figures import (
@@ -47,7 +41,16 @@ from pipeline.report._sky import (
     place_pieces,
     sky_surface_brightness,
 )
-from pipeline.report._summary import problem_lines, summary_rows
+from pipeline.report._solved import (
+    focal_length_figure,
+    line_time_check,
+    residual_map_figure,
+    residuals_along_night_figure,
+    star_flat_figure,
+    zero_point_at_columns,
+    zero_point_figure,
+)
+from pipeline.report._summary import problem_lines, solved_rows, summary_rows
 
 __all__ = [
     "FIGURES",
@@ -62,45 +65,46 @@ __all__ = [
     "collect_products",
     "column_flat_figure",
     "draw_figures",
+    "focal_length_figure",
+    "line_time_check",
     "measure_sky",
     "pixel_area_arcsec2",
     "place_pieces",
     "problem_lines",
     "quicklook_figure",
     "render_page",
-    "report_night",
+    "residual_map_figure",
+    "residuals_along_night_figure",
     "seeing_across_chip_figure",
     "seeing_along_night_figure",
     "sky_along_night_figure",
     "sky_surface_brightness",
+    "solved_rows",
     "sources_along_night_figure",
+    "star_flat_figure",
     "summary_rows",
+    "zero_point_at_columns",
+    "zero_point_figure",
 ]
 
 
-def _about(config: Config, header: Any) -> list[tuple[str, str]]:
-    site, camera = config.site(), config.camera()
-    rows = [
-        ("night", config.night.name),
-        ("site", site.name),
-        ("telescope", camera.telescope),
-        ("camera", camera.name),
-    ]
-    if header is not None:
-        rows.append(("filter", str(header.get("FILTER", "not recorded")).strip()))
-    rows.append(("zdrift version", pipeline.__version__))
-    return rows
-
-
-def build_report(night: NightProducts, config: Config, options: ReportOptions) -> str:
+def build_report(
+    night: NightProducts,
+    name: str,
+    about: Sequence[tuple[str, str]],
+    options: ReportOptions,
+) -> str:
     """The page for a night's gathered products.
 
     Parameters
     ----------
     night : NightProducts
         From :func:`collect_products` (or made by hand, e.g. in tests).
-    config : Config
-        The night's config (names of the night, site and camera).
+    name : str
+        The night's name.
+    about : sequence of (str, str)
+        Site, telescope, camera, filter... as label and value (escaped on
+        the page like every other text).
     options : ReportOptions
 
     Returns
@@ -112,18 +116,9 @@ def build_report(night: NightProducts, config: Config, options: ReportOptions) -
     problems = [] if night.status is None else problem_lines(night.status)
     problems += [f"Figure '{item.spec.title}': {item.note}" for item in figures if item.failed]
     return render_page(
-        night=config.night.name,
-        about=_about(config, night.header),
+        night=name,
+        about=about,
         problems=problems,
         summary=summary_rows(night.products, night.status),
         figures=figures,
     )
-
-
-def report_night(config: Config) -> str:
-    """Gather the night's products and return its report page (HTML).
-
-    Options come from the config's ``report`` section.
-    """
-    options = config.section("report") or ReportOptions()
-    return build_report(collect_products(config, options), config, options)

@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 from astropy.table import Table
 from astropy.time import Time
 
-__all__ = ["NightClock"]
+__all__ = ["FIGURE_SIZE", "NightClock", "time_axis"]
 
 
 class NightClock:
@@ -51,3 +53,19 @@ class NightClock:
     def hours(self, x: np.ndarray) -> np.ndarray:
         """Mid-exposure of night columns ``x``, hours since 0 h UTC of :attr:`date`."""
         return np.interp(np.asarray(x, dtype=float), self._rows, self._seconds) / 3600.0
+
+
+#: Size of a one-panel figure, inches (about 800 px wide at the default dpi).
+FIGURE_SIZE = (9.0, 3.4)
+
+
+def _clock_text(hours: float, position: object = None) -> str:
+    """Hours since 0 h as ``HH:MM:SS`` (past 24 h on the next day)."""
+    seconds = round(hours * 3600.0)
+    return f"{seconds // 3600 % 24:02d}:{seconds // 60 % 60:02d}:{seconds % 60:02d}"
+
+
+def time_axis(ax: Any, clock: NightClock) -> None:
+    """Label the x axis as UTC clock time of mid-exposure."""
+    ax.xaxis.set_major_formatter(_clock_text)
+    ax.set_xlabel(f"UTC of mid-exposure (h:m:s, night of {clock.date})")

@@ -1,23 +1,25 @@
-"""Gather a night's products for the report, through the runner's readers.
+"""Gather a night's products for the report from the report stage's inputs.
 
-The report reads nothing itself: :func:`collect_products` asks the runner
-(:func:`pipeline.runner.night_status`, :func:`pipeline.runner.open_product`)
-for the products that exist and reduces the rectified images one stretch at a
-time to what the page draws (the sky level in bins, a block-averaged strip),
-so memory stays bounded by one stretch on a long night.
+The report reads nothing itself: the runner hands the ``report`` stage the
+products of the stages before it (those that exist; see
+``Stage.optional``), and :func:`collect_products` picks what the page
+draws and reduces the rectified images one stretch at a time to the sky
+level in bins and a block-averaged strip, so memory stays bounded by one
+stretch on a long night.
 """
 
 from __future__ import annotations
 
 import logging
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 from astropy.table import vstack
 
-from pipeline.config import Config
+from pipeline.products import ccddata_from_hdulist
 from pipeline.report._options import ReportOptions
 from pipeline.report._sky import bin_image, measure_sky, pixel_area_arcsec2, place_pieces
 
@@ -32,6 +34,12 @@ _NIGHT_PRODUCTS = {
     "columns": ("columns", "columns"),
     "seeing": ("catalog", "seeing"),
     "catalog": ("catalog", "catalog"),
+    "astrometry_parameters": ("astrometry", "parameters"),
+    "residual_grid": ("astrometry", "residual_grid"),
+    "zero_point": ("zeropoint", "zero_point"),
+    "zp_intervals": ("zeropoint", "intervals"),
+    "star_flat": ("zeropoint", "star_flat"),
+    "colour_term": ("zeropoint", "colour_term"),
 }
 
 #: Product key -> the stage that makes it (for the page's notes).
@@ -40,6 +48,7 @@ PRODUCT_SOURCES = {key: stage for key, (stage, _) in _NIGHT_PRODUCTS.items()} | 
     "strip": "rectify",
     "strip_factor": "rectify",
     "pixel_scale": "rectify",
+    "matched_x_range": "astrometry",
 }
 
 
@@ -49,7 +58,8 @@ class NightProducts:
 
     ``products`` maps keys (see :data:`PRODUCT_SOURCES`) to tables, arrays
     and numbers; an absent key means the product does not exist.  ``status``
-    is the night's :class:`pipeline.runner.NightStatus`; ``header`` the FLUX
+    is the state of the earlier stages' units (the stage's ``run_status``
+    input, see :data:`pipeline.stages.base.RUN_STATUS`); ``header`` the FLUX
     header of the first rectified stretch (or None).
     """
 
@@ -58,53 +68,46 @@ class NightProducts:
     header: Any = None
 
 
-def _usable(status: Any, stage: str, unit: str) -> bool:
-    for entry in status.stages:
-        if entry.name == stage:
-            return entry.units.get(unit, ("missing", ""))[0] in ("done", "stale")
-    return False
-
-
-def collect_products(config: Config, options: ReportOptions) -> NightProducts:
-    """Read the night's products that exist and reduce the rectified images.
+def collect_products(
+    inputs: Mapping[str, Any], options: ReportOptions, status: Any = None
+) -> NightProducts:
+    """Pick the products the page draws and reduce the rectified images.
 
     Parameters
     ----------
-    config : Config
-        The night's config.
+    inputs : mapping
+        Stage name -> its products (a dict for a night-scoped stage, a
+        sequence of per-stretch dicts for ``rectify``), or None where the
+        stage's products are unusable or the stage is not in the pipeline.
     options : ReportOptions
+    status : dict, optional
+        The ``run_status`` input.
 
     Returns
     -------
     NightProducts
-        Done or stale products only (stale ones are listed among the
-        problems); failed, damaged and missing ones are left out.
     """
-    from pipeline.runner import night_status, open_product
-
-    status = night_status(config)
     night = NightProducts(status=status)
     for key, (stage, name) in _NIGHT_PRODUCTS.items():
-        if _usable(status, stage, "night"):
-            try:
-                night.products[key] = open_product(config, stage, "night", name)
-            except ValueError as exc:  # the unit exists but lacks this product
-                log.info("report: no %s: %s", key, exc)
+        products = inputs.get(stage)
+        if products is not None and name in products:
+            night.products[key] = products[name]
+    astrometry = inputs.get("astrometry")
+    if astrometry is not None and "catalog" in astrometry:
+        solved = astrometry["catalog"]
+        matched = np.asarray(solved["ref_index"]) >= 0
+        x = np.asarray(getattr(solved["x"], "value", solved["x"]), dtype=float)[matched]
+        if x.size:
+            night.products["matched_x_range"] = (float(x.min()), float(x.max()))
     index = night.products.get("block_index")
-    stretches = [
-        unit
-        for entry in status.stages
-        if entry.name == "rectify"
-        for unit, (state, _) in entry.units.items()
-        if state in ("done", "stale")
-    ]
+    stretches = inputs.get("rectify")
     if index is None or not stretches:
         return night
     n_columns = int(np.max(np.asarray(index["row_start"]) + np.asarray(index["n_rows"])))
     factor = max(1, math.ceil(n_columns / options.quicklook_width))
     skies, pieces, areas = [], [], []
-    for unit in sorted(stretches):
-        image = open_product(config, "rectify", unit)
+    for products in stretches:  # one stretch in memory at a time
+        image = ccddata_from_hdulist(products["image"])
         header = image.meta
         night.header = header if night.header is None else night.header
         x_start = round(float(header.get("CRVAL1A", 0)))

@@ -19,9 +19,18 @@ from astropy.table import Table
 from astropy.visualization import AsinhStretch, AsymmetricPercentileInterval, ImageNormalize
 from matplotlib.figure import Figure
 
-from pipeline.report._clock import NightClock
+from pipeline.report._clock import FIGURE_SIZE as _SIZE
+from pipeline.report._clock import NightClock, time_axis
 from pipeline.report._options import ReportOptions
 from pipeline.report._sky import sky_surface_brightness
+from pipeline.report._solved import (
+    focal_length_figure,
+    residual_map_figure,
+    residuals_along_night_figure,
+    star_flat_figure,
+    zero_point_at_columns,
+    zero_point_figure,
+)
 
 __all__ = [
     "FIGURES",
@@ -33,21 +42,6 @@ __all__ = [
     "sky_along_night_figure",
     "sources_along_night_figure",
 ]
-
-#: Size of a one-panel figure, inches (about 800 px wide at the default dpi).
-_SIZE = (9.0, 3.4)
-
-
-def _clock_text(hours: float, position: object = None) -> str:
-    """Hours since 0 h as ``HH:MM:SS`` (past 24 h on the next day)."""
-    seconds = round(hours * 3600.0)
-    return f"{seconds // 3600 % 24:02d}:{seconds // 60 % 60:02d}:{seconds % 60:02d}"
-
-
-def _time_axis(ax: Any, clock: NightClock) -> None:
-    """Label the x axis as UTC clock time of mid-exposure."""
-    ax.xaxis.set_major_formatter(_clock_text)
-    ax.set_xlabel(f"UTC of mid-exposure (h:m:s, night of {clock.date})")
 
 
 def _whole_stretch_rows(seeing: Table) -> np.ndarray:
@@ -82,7 +76,7 @@ def seeing_along_night_figure(
     fig = Figure(figsize=_SIZE, layout="constrained")
     ax = fig.add_subplot()
     ax.plot(clock.hours(x), np.asarray(whole["fwhm"], float), "o-", color="tab:blue")
-    _time_axis(ax, clock)
+    time_axis(ax, clock)
     ax.set_ylabel("seeing FWHM (pix)")
     if pixel_scale:
         second = ax.secondary_yaxis(
@@ -121,8 +115,10 @@ def seeing_across_chip_figure(seeing: Table) -> Figure:
     return fig
 
 
-def sky_along_night_figure(sky: Table, clock: NightClock, zero_point: float) -> Figure:
-    """Sky surface brightness against time, with a nominal zero point.
+def sky_along_night_figure(
+    sky: Table, clock: NightClock, zero_point: float | np.ndarray, solved: bool = False
+) -> Figure:
+    """Sky surface brightness against time.
 
     Parameters
     ----------
@@ -130,17 +126,25 @@ def sky_along_night_figure(sky: Table, clock: NightClock, zero_point: float) -> 
         ``x`` (night column, pix), ``sky_rate`` (electron / (s pix)) and
         ``pixel_area`` (arcsec^2), e.g. from :func:`measure_sky`.
     clock : NightClock
-    zero_point : float
-        Magnitude of 1 electron per second (nominal until it is solved), mag.
+    zero_point : float or ndarray
+        Magnitude of 1 electron per second, mag: one nominal value, or the
+        night's solved zero point at each row of ``sky``.
+    solved : bool
+        Whether ``zero_point`` is the night's solved one (else the title says
+        it is nominal).
     """
     mag = sky_surface_brightness(sky["sky_rate"], sky["pixel_area"], zero_point)
     fig = Figure(figsize=_SIZE, layout="constrained")
     ax = fig.add_subplot()
     ax.plot(clock.hours(sky["x"]), mag, ".-", color="tab:purple")
     ax.invert_yaxis()  # brighter sky up
-    _time_axis(ax, clock)
+    time_axis(ax, clock)
     ax.set_ylabel("sky (mag/arcsec$^2$)")
-    ax.set_title(f"NOMINAL zero point {zero_point:.2f} mag (1 e$^-$/s), not solved", fontsize=9)
+    if solved:
+        ax.set_title("with the night's solved zero point", fontsize=9)
+    else:
+        title = f"NOMINAL zero point {float(zero_point):.2f} mag (1 e$^-$/s), not solved"
+        ax.set_title(title, fontsize=9)
     ax.grid(alpha=0.3)
     return fig
 
@@ -207,7 +211,7 @@ def sources_along_night_figure(catalog: Table, clock: NightClock, bin_minutes: f
         bottom.plot(centres, medians, "o-", color="tab:orange")
     top.set_ylabel("sources per minute")
     bottom.set_ylabel("median S/N")
-    _time_axis(bottom, clock)
+    time_axis(bottom, clock)
     for ax in (top, bottom):
         ax.grid(alpha=0.3)
     return fig
@@ -308,7 +312,39 @@ def _seeing_chip(products: Mapping[str, Any], options: ReportOptions) -> Figure:
 
 def _sky(products: Mapping[str, Any], options: ReportOptions) -> Figure:
     clock = NightClock(products["block_index"])
-    return sky_along_night_figure(products["sky"], clock, options.nominal_zero_point)
+    sky, zero_point = products["sky"], products.get("zero_point")
+    if zero_point is None:
+        return sky_along_night_figure(sky, clock, options.nominal_zero_point)
+    solved = zero_point_at_columns(zero_point, sky["x"])
+    return sky_along_night_figure(sky, clock, solved, solved=True)
+
+
+def _hours_of(products: Mapping[str, Any]) -> tuple[float, float]:
+    """UTC span (hours) of the matched stars: what the residual cells along divide."""
+    clock = NightClock(products["block_index"])
+    return tuple(float(h) for h in clock.hours(np.asarray(products["matched_x_range"])))
+
+
+def _residual_map(products: Mapping[str, Any], options: ReportOptions) -> Figure:
+    n_columns = products["n_columns"]
+    return residual_map_figure(products["residual_grid"], n_columns, _hours_of(products))
+
+
+def _residual_night(products: Mapping[str, Any], options: ReportOptions) -> Figure:
+    return residuals_along_night_figure(products["residual_grid"], _hours_of(products))
+
+
+def _focal(products: Mapping[str, Any], options: ReportOptions) -> Figure:
+    return focal_length_figure(products["astrometry_parameters"], products["tdi_rows"])
+
+
+def _zero_point(products: Mapping[str, Any], options: ReportOptions) -> Figure:
+    clock = NightClock(products["block_index"])
+    return zero_point_figure(products["zero_point"], products["zp_intervals"], clock)
+
+
+def _star_flat(products: Mapping[str, Any], options: ReportOptions) -> Figure:
+    return star_flat_figure(products["star_flat"])
 
 
 def _flat(products: Mapping[str, Any], options: ReportOptions) -> Figure:
@@ -348,7 +384,48 @@ FIGURES: tuple[FigureSpec, ...] = (
         ("sky", "block_index"),
         _sky,
         "Median sky of the rectified strip: twilight, moon and cloud show as a "
-        "brighter sky; the level uses a NOMINAL zero point until it is solved.",
+        "brighter sky; the level uses the solved zero point, or a NOMINAL one (said "
+        "above the plot) when there is none.",
+    ),
+    FigureSpec(
+        "zero_point",
+        "Zero point along the night",
+        ("zero_point", "zp_intervals", "block_index"),
+        _zero_point,
+        "Magnitude giving 1 e-/s against time: dips are cloud; shaded stretches are "
+        "flagged (red) or bridged from their neighbours (orange).",
+    ),
+    FigureSpec(
+        "star_flat",
+        "Star flat (zero point across the chip)",
+        ("star_flat",),
+        _star_flat,
+        "Stars' residual about the zero point in bins of chip columns: a slope or "
+        "deviant bins mean the flat field is off there.",
+    ),
+    FigureSpec(
+        "residual_map",
+        "Astrometric residuals across the chip and along the night",
+        ("residual_grid", "matched_x_range", "block_index", "n_columns"),
+        _residual_map,
+        "Mean star-minus-model offset in cells: coloured patches mean the geometry "
+        "is off there (tilt, wander, a wrong line time).",
+    ),
+    FigureSpec(
+        "residual_night",
+        "Astrometric residuals along the night",
+        ("residual_grid", "matched_x_range", "block_index"),
+        _residual_night,
+        "Mean and rms offsets of the matched stars in time cells: a drift or a jump "
+        "means the clock or the mirror changed during the night.",
+    ),
+    FigureSpec(
+        "focal_length",
+        "Focal length and line time",
+        ("astrometry_parameters", "tdi_rows"),
+        _focal,
+        "Focal length fitted to the stars against the spin period's, and the line "
+        "time clocked against the one matching the drift: apply the correction above.",
     ),
     FigureSpec(
         "flat",

@@ -7,14 +7,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["PENDING_ROWS", "problem_lines", "summary_rows"]
-
-#: Summary rows whose stages are not in the pipeline yet: shown as not available.
-PENDING_ROWS = (
-    ("matched reference stars", "astrometry"),
-    ("solved parameters", "astrometry"),
-    ("zero point", "zeropoint"),
-)
+__all__ = ["problem_lines", "solved_rows", "summary_rows"]
 
 
 def _plural(n: int, word: str) -> str:
@@ -36,8 +29,10 @@ def problem_lines(status: Any) -> list[str]:
 
     Parameters
     ----------
-    status : pipeline.runner.NightStatus
-        The night's status (:func:`pipeline.runner.night_status`).
+    status : dict
+        The report stage's ``run_status`` input
+        (:data:`pipeline.stages.base.RUN_STATUS`): ``stages``, each with
+        ``name``, ``units`` (unit -> [state, reason]) and ``problems``.
 
     Returns
     -------
@@ -48,9 +43,9 @@ def problem_lines(status: Any) -> list[str]:
     from pipeline.runner import format_ids
 
     lines = []
-    for stage in status.stages:
+    for stage in status["stages"]:
         by_reason: dict[tuple[str, str], list[str]] = {}
-        for unit, (state, reason) in stage.units.items():
+        for unit, (state, reason) in stage["units"].items():
             if state != "done":
                 by_reason.setdefault((state, reason), []).append(unit)
         for (state, reason), ids in sorted(by_reason.items()):
@@ -62,12 +57,70 @@ def problem_lines(status: Any) -> list[str]:
                 "orphan": "has products outside the stretch plan",
             }.get(state, state)
             because = f": {reason}" if reason else ""
-            lines.append(f"Stage {stage.name} {what} for {format_ids(ids)}{because}.")
-        for unit, problems in stage.problems.items():
-            lines.extend(f"Stage {stage.name} ({unit}) reported: {p}" for p in problems)
-    if status.lock is not None:
-        lines.append(f"Run lock: {status.lock}.")
+            lines.append(f"Stage {stage['name']} {what} for {format_ids(ids)}{because}.")
+        for unit, problems in stage["problems"].items():
+            lines.extend(f"Stage {stage['name']} ({unit}) reported: {p}" for p in problems)
     return lines
+
+
+def _count(status: Mapping[str, Any], state: str) -> int:
+    return sum(s == state for stage in status["stages"] for s, _ in stage["units"].values())
+
+
+def _error_text(value: float, error: float) -> str:
+    return f"{value:.6g} +- {error:.2g}" if np.isfinite(error) else f"{value:.6g}"
+
+
+def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
+    """Summary rows of the solved products (astrometry, zero point), or why they are absent."""
+    from pipeline.report._solved import line_time_check
+
+    rows = []
+    parameters = products.get("astrometry_parameters")
+    if parameters is None:
+        absent = "not available (no astrometry products)"
+        rows += [("matched reference stars", absent), ("solved parameters", absent)]
+    else:
+        meta = parameters.meta
+        rows.append(("matched reference stars", str(meta.get("n_matched", "not recorded"))))
+        fitted = "; ".join(
+            f"{row['name']} = {_error_text(float(row['value']), float(row['error']))}"
+            + ("" if str(row["unit"]) in ("", "--") else f" {row['unit']}")
+            for row in parameters
+        )
+        chi2 = meta.get("chi2_reduced")
+        rows.append(
+            ("solved parameters", fitted + ("" if chi2 is None else f"; reduced chi2 {chi2:.2f}"))
+        )
+        if "focal_length_m" in meta and "focal_length_from_spin_m" in meta:
+            fit, spin = float(meta["focal_length_m"]), float(meta["focal_length_from_spin_m"])
+            rows.append(
+                (
+                    "focal length",
+                    f"{fit:.5f} m fitted, {spin:.5f} m from the spin period "
+                    f"({1e6 * (fit - spin):+.0f} um)",
+                )
+            )
+        tdi_rows = products.get("tdi_rows")
+        if tdi_rows and "line_time_s" in meta and "matched_line_time_s" in meta:
+            check = line_time_check(meta, tdi_rows)
+            rows.append(
+                (
+                    "line-time error",
+                    f"{check['error_s'] * 1e6:+.3f} us ({check['relative'] * 1e6:+.1f} ppm), "
+                    f"smear {check['smear_px']:.2f} pix over {tdi_rows} rows; correction: add "
+                    f"{check['correction_s'] * 1e6:+.3f} us to the line time",
+                )
+            )
+    intervals = products.get("zp_intervals")
+    if intervals is None:
+        rows.append(("zero point", "not available (no zeropoint products)"))
+    else:
+        clear = intervals.meta.get("clear_level_mag")
+        flagged = int(np.count_nonzero(np.asarray(intervals["flags"])))
+        level = "" if clear is None else f"clear level {float(clear):.3f} mag (1 e-/s), "
+        rows.append(("zero point", f"{level}{flagged} of {len(intervals)} stretches flagged"))
+    return rows
 
 
 def summary_rows(products: Mapping[str, Any], status: Any | None = None) -> list[tuple[str, str]]:
@@ -77,8 +130,9 @@ def summary_rows(products: Mapping[str, Any], status: Any | None = None) -> list
     ----------
     products : mapping
         The night's products by key (see :func:`pipeline.report.collect_products`).
-    status : pipeline.runner.NightStatus, optional
-        For the counts of stretches, failures and problems.
+    status : dict, optional
+        The ``run_status`` input, for the counts of stretches, failures and
+        problems.
     """
     rows: list[tuple[str, str]] = []
     index = products.get("block_index")
@@ -93,15 +147,14 @@ def summary_rows(products: Mapping[str, Any], status: Any | None = None) -> list
     if ingest is not None:
         rows.append(("rejected raw files", str(len(ingest.get("rejected", [])))))
     if status is not None:
-        rows.append(
-            ("stretches", "none planned" if status.n_stretches is None else str(status.n_stretches))
-        )
-        n_problems = sum(len(p) for s in status.stages for p in s.problems.values())
+        n_stretches = status["n_stretches"]
+        rows.append(("stretches", "none planned" if n_stretches is None else str(n_stretches)))
+        n_problems = sum(len(p) for s in status["stages"] for p in s["problems"].values())
         rows.append(
             (
                 "problems and failures",
-                f"{_plural(status.count('failed'), 'failed unit')}, "
-                f"{_plural(status.count('damaged'), 'damaged unit')}, "
+                f"{_plural(_count(status, 'failed'), 'failed unit')}, "
+                f"{_plural(_count(status, 'damaged'), 'damaged unit')}, "
                 f"{_plural(n_problems, 'reported problem')}",
             )
         )
@@ -117,9 +170,4 @@ def summary_rows(products: Mapping[str, Any], status: Any | None = None) -> list
         scale = products.get("pixel_scale")
         arcsec = f" = {median * scale:.2f} arcsec" if scale else ""
         rows.append(("median seeing FWHM", f"{median:.2f} pix{arcsec}"))
-    for label, stage in PENDING_ROWS:
-        if products.get(label) is None:
-            rows.append((label, f"not available (no {stage} products yet)"))
-        else:
-            rows.append((label, str(products[label])))
-    return rows
+    return rows + solved_rows(products)

@@ -35,10 +35,18 @@ from pathlib import Path
 
 from pipeline._offline import astropy_offline
 from pipeline.config import Config
-from pipeline.runner._access import open_product, read_image
+from pipeline.runner._access import open_product, product_path, read_image
 from pipeline.runner._executors import Executor, make_executor
 from pipeline.runner._lock import BROKEN_LOCK_AGE, RunLock, pid_alive, read_lock
 from pipeline.runner._night import NightStore, format_ids, night_dir, unit_id
+from pipeline.runner._nightly import (
+    NIGHT_CONFIG_NAME,
+    REPORT_PAGE,
+    NightOutcome,
+    find_nights,
+    reduce_night,
+    report_page,
+)
 from pipeline.runner._store import clear_failure, mark_damaged, write_failure
 from pipeline.runner._unit import UnitOutcome, execute_unit, failed_outcome
 from pipeline.stages.base import Stage
@@ -46,19 +54,26 @@ from pipeline.stages.base import Stage
 __all__ = [
     "LOCK_NAME",
     "LOG_NAME",
+    "NIGHT_CONFIG_NAME",
+    "REPORT_PAGE",
+    "NightOutcome",
     "NightStatus",
     "Progress",
     "RunReport",
     "StageStatus",
     "UnitResult",
     "describe_lock",
+    "find_nights",
     "format_ids",
     "night_dir",
     "night_status",
     "no_progress",
     "open_product",
     "parse_stretches",
+    "product_path",
     "read_image",
+    "reduce_night",
+    "report_page",
     "run_night",
     "select_stages",
 ]
@@ -583,19 +598,8 @@ def night_status(config: Config, *, verify: bool = False) -> NightStatus:
     night = NightStore(config, verify=verify)
     stages = []
     for stage in config.graph:
-        status = StageStatus(stage.name, stage.scope)
-        for stretch in night.units(stage):
-            unit = unit_id(stretch)
-            status.units[unit] = night.state(stage, stretch)
-            record = night.sidecar(stage, unit)
-            if status.units[unit][0] != "failed" and record and record.get("problems"):
-                status.problems[unit] = list(record["problems"])
-        folder = night.root / stage.name
-        if stage.scope == "stretch" and night.index is not None and folder.is_dir():
-            for path in sorted(folder.iterdir()):
-                if path.is_dir() and path.name not in status.units:
-                    status.units[path.name] = ("orphan", "not in the current stretch plan")
-        stages.append(status)
+        units, problems = night.stage_status(stage)
+        stages.append(StageStatus(stage.name, stage.scope, units, problems))
     n_stretches = len(night.stretches) if night.index is not None else None
     lock = describe_lock(night.root / LOCK_NAME)
     return NightStatus(config.night.name, night.root, n_stretches, stages, lock)

@@ -13,7 +13,7 @@ from pipeline.products import FLUX_EXTENSION, ccddata_from_hdulist
 from pipeline.runner._night import night_dir
 from pipeline.runner._store import read_product, read_sidecar
 
-__all__ = ["open_product", "read_image"]
+__all__ = ["open_product", "product_path", "read_image"]
 
 
 def read_image(path: str | Path) -> CCDData:
@@ -39,6 +39,42 @@ def _unit_name(unit: str | int) -> str:
             raise ValueError(f"unit: a stretch index must be >= 0; got {unit}.")
         return f"s{unit:04d}"
     return str(unit)
+
+
+def _locate(
+    config: Config, stage: str, unit: str | int, product: str | None
+) -> tuple[Path, dict[str, Any]]:
+    unit_dir = night_dir(config) / stage / _unit_name(unit)
+    sidecar = read_sidecar(unit_dir)
+    if sidecar is None:
+        raise ValueError(
+            f"{stage}/{_unit_name(unit)} has no complete products in {unit_dir}; run the "
+            f"night (pipeline.run_night or `zdrift run`) and check pipeline.night_status."
+        )
+    products = sidecar["products"]
+    if product is None:
+        only = len(products) == 1 and "image" not in products
+        product = next(iter(products)) if only else "image"
+    if product not in products:
+        raise ValueError(
+            f"{stage}/{_unit_name(unit)} has no product {product!r}; it has "
+            f"{', '.join(sorted(products))} (pass product=...)."
+        )
+    entry = products[product]
+    return unit_dir / entry["file"], entry
+
+
+def product_path(
+    config: Config, stage: str, unit: str | int = "night", product: str | None = None
+) -> Path:
+    """Path of one product file of a finished unit (arguments as :func:`open_product`).
+
+    Raises
+    ------
+    ValueError
+        If the unit is not done or has no such product.
+    """
+    return _locate(config, stage, unit, product)[0]
 
 
 def open_product(
@@ -71,24 +107,8 @@ def open_product(
         If the unit is not done or has no such product (the message lists
         what it has).
     """
-    unit_dir = night_dir(config) / stage / _unit_name(unit)
-    sidecar = read_sidecar(unit_dir)
-    if sidecar is None:
-        raise ValueError(
-            f"{stage}/{_unit_name(unit)} has no complete products in {unit_dir}; run the "
-            f"night (pipeline.run_night or `zdrift run`) and check pipeline.night_status."
-        )
-    products = sidecar["products"]
-    if product is None:
-        only = len(products) == 1 and "image" not in products
-        product = next(iter(products)) if only else "image"
-    if product not in products:
-        raise ValueError(
-            f"{stage}/{_unit_name(unit)} has no product {product!r}; it has "
-            f"{', '.join(sorted(products))} (pass product=...)."
-        )
-    entry = products[product]
-    value = read_product(unit_dir / entry["file"], entry)
+    path, entry = _locate(config, stage, unit, product)
+    value = read_product(path, entry)
     if isinstance(value, fits.HDUList) and FLUX_EXTENSION in value:
         return ccddata_from_hdulist(value)
     return value

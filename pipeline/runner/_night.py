@@ -48,6 +48,7 @@ from pipeline.stages.base import (
     NEIGHBOURS,
     RAW_FILES,
     RAW_ROWS,
+    RUN_STATUS,
     Stage,
     StageContext,
     Stretch,
@@ -67,6 +68,8 @@ __all__ = [
 
 #: Unit id of a night-scoped stage.
 NIGHT = "night"
+#: Input hash of an optional input the stage runs without.
+ABSENT = "absent"
 
 
 def night_dir(config: Config) -> Path:
@@ -335,6 +338,55 @@ class NightStore:
 
     # -- what a unit depends on -------------------------------------------------
 
+    def stage_status(self, stage: Stage) -> tuple[dict[str, tuple[str, str]], dict[str, list]]:
+        """``(unit -> (state, reason), unit -> problems)`` of every unit of ``stage``.
+
+        Stretch folders outside the current plan are listed as ``'orphan'``.
+        """
+        units, problems = {}, {}
+        for stretch in self.units(stage):
+            unit = unit_id(stretch)
+            units[unit] = self.state(stage, stretch)
+            record = self.sidecar(stage, unit)
+            if units[unit][0] != "failed" and record and record.get("problems"):
+                problems[unit] = list(record["problems"])
+        folder = self.root / stage.name
+        if stage.scope == "stretch" and self.index is not None and folder.is_dir():
+            for path in sorted(folder.iterdir()):
+                if path.is_dir() and path.name not in units:
+                    units[path.name] = ("orphan", "not in the current stretch plan")
+        return units, problems
+
+    def run_status(self, stage: Stage) -> dict[str, Any]:
+        """The :data:`RUN_STATUS` input of ``stage``: the units of the stages before it."""
+        graph = list(self.config.graph)
+        stages = []
+        for earlier in graph[: graph.index(stage)]:
+            units, problems = self.stage_status(earlier)
+            stages.append(
+                {
+                    "name": earlier.name,
+                    "scope": earlier.scope,
+                    "units": {unit: list(state) for unit, state in units.items()},
+                    "problems": problems,
+                }
+            )
+        n_stretches = len(self.stretches) if self.index is not None else None
+        return {"n_stretches": n_stretches, "stages": stages}
+
+    def _optional_absent(self, stage: Stage, name: str) -> str | None:
+        """Why ``stage`` runs without its optional input ``name``, or None if it has it."""
+        upstream = self.stages.get(name)
+        if upstream is None:
+            return "not in the pipeline"
+        if upstream.scope == "night":
+            return None if self.usable(upstream, NIGHT) is not None else "unusable"
+        skipped = self.missing_stretches(stage)
+        ids = [s.id for s in self.stretches if s.id not in skipped]
+        if not ids or any(self.usable(upstream, i) is None for i in ids):
+            return "unusable"
+        return None
+
     def _context_value(self, name: str) -> Any:
         # names were checked against the sections when the config was built
         section, _, key = name.partition(".")
@@ -364,6 +416,15 @@ class NightStore:
         specs: list[InputSpec] = []
         skipped = self.missing_stretches(stage)
         for name in stage.requires:
+            if name == RUN_STATUS:
+                status = self.run_status(stage)
+                hashes[name] = hash_json(status)
+                specs.append(InputSpec(name, "value", value=status))
+                continue
+            if name in stage.optional and self._optional_absent(stage, name) is not None:
+                hashes[name] = ABSENT
+                specs.append(InputSpec(name, "none"))
+                continue
             if name == RAW_FILES:
                 names, missing = self._raw_names_or_reason()
                 if missing is not None:
@@ -490,8 +551,8 @@ class NightStore:
             return "stale", f"inputs changed: {', '.join(changed)}"
         for name in stage.requires:
             upstream = self.stages.get(name)
-            if upstream is None:
-                continue
+            if upstream is None or hashes.get(name) == ABSENT:
+                continue  # a pseudo-input, or an optional input the stage ran without
             if upstream.scope == "night":
                 ups = [None]
             elif stage.scope == "stretch":

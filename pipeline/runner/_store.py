@@ -139,13 +139,23 @@ def _product_kind(name: str, value: Any) -> str:
         return "table"
     if isinstance(value, Mapping | list):
         return "json"
+    if isinstance(value, str):
+        return "html"
     raise TypeError(
         f"Product {name!r} has unsupported type {type(value).__name__}; return a "
-        "numpy array, an astropy.io.fits HDU or HDUList, an astropy Table, or a dict/list."
+        "numpy array, an astropy.io.fits HDU or HDUList, an astropy Table, a dict/list, "
+        "or a str (an HTML page)."
     )
 
 
-_SUFFIX = {"array": ".fits", "hdu": ".fits", "hdulist": ".fits", "table": ".ecsv", "json": ".json"}
+_SUFFIX = {
+    "array": ".fits",
+    "hdu": ".fits",
+    "hdulist": ".fits",
+    "table": ".ecsv",
+    "json": ".json",
+    "html": ".html",
+}
 
 
 def _with_cards(header: fits.Header, cards: Mapping[str, tuple[Any, str]]) -> fits.Header:
@@ -171,6 +181,8 @@ def _writer(kind: str, value: Any, cards: Mapping[str, tuple[Any, str]]) -> Call
         return lambda temp: hdul.writeto(temp, output_verify="exception")
     if kind == "table":
         return lambda temp: value.write(temp, format="ascii.ecsv")
+    if kind == "html":
+        return lambda temp: temp.write_text(value, encoding="utf-8")
     text = _json_text(value)
     return lambda temp: temp.write_text(text, encoding="utf-8")
 
@@ -245,6 +257,8 @@ def read_product(path: Path, entry: Mapping[str, Any]) -> Any:
     if kind == "table":
         cls = QTable if entry.get("class") == "QTable" else Table
         return _read_ecsv(path, cls)
+    if kind == "html":
+        return path.read_text(encoding="utf-8")
     return json.loads(path.read_text(encoding="utf-8"))
 
 

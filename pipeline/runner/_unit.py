@@ -67,8 +67,9 @@ class InputSpec:
     block's rows reversed if ``flip_rows``), ``'file'`` (the file ``path`` an
     option names, see ``Stage.files``; ``digest`` is its SHA-256 when the run
     was planned), ``'stream'`` (the same for ``Stage.streams``: handed over
-    as an :class:`~pipeline.stages.base.ExternalFile`, not read) or
-    ``'none'`` (such an option is None).  Stored products are checked
+    as an :class:`~pipeline.stages.base.ExternalFile`, not read),
+    ``'value'`` (``value`` itself, e.g. the run status) or ``'none'`` (such
+    an option is None, or an optional input the stage runs without).  Stored products are checked
     against their recorded SHA-256 as they are read.
     """
 
@@ -84,6 +85,7 @@ class InputSpec:
     path: Path | None = None
     digest: str | None = None
     neighbours: tuple[tuple[str, tuple[Unit | None, Unit | None]], ...] = ()
+    value: Any = None
 
     def load(
         self, read: dict[str, str] | None = None, files: contextlib.ExitStack | None = None
@@ -121,6 +123,8 @@ class InputSpec:
             return ExternalFile(self.path, self.digest)
         if self.kind == "none":
             return None
+        if self.kind == "value":
+            return self.value
         if self.kind == "raw_rows":
             return read_rows(self.raw_dir, self.index, self.lo, self.hi, flip_rows=self.flip_rows)
         raise ValueError(f"Unknown input kind {self.kind!r}.")

@@ -19,6 +19,7 @@ from pipeline.stages.base import (
     PROBLEMS,
     RAW_FILES,
     RAW_ROWS,
+    RUN_STATUS,
     RawFile,
     Stage,
     StageContext,
@@ -33,6 +34,7 @@ __all__ = [
     "PROBLEMS",
     "RAW_FILES",
     "RAW_ROWS",
+    "RUN_STATUS",
     "STAGE_MODULES",
     "RawFile",
     "Stage",
@@ -74,8 +76,9 @@ def _load_graph() -> tuple[Stage, ...]:
             # The module exists but does not declare itself yet (work in progress).
             waiting.add(name)
             continue
-        if waiting.intersection(stage.requires):
-            # It needs a stage still in progress: it joins the graph with it.
+        if waiting.intersection(set(stage.requires) - set(stage.optional)):
+            # It needs a stage still in progress: it joins the graph with it
+            # (a stage it can do without, in ``optional``, does not hold it back).
             waiting.add(name)
             continue
         stages.append(stage)

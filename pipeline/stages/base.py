@@ -31,6 +31,17 @@ The calling convention is::
       raw file of the night, with its header (or the reason it is unreadable)
       and a :class:`PixelSummary` of its pixels (the runner reads every pixel
       once, so that blocks without usable data can be rejected);
+    * an upstream stage named in ``stage.optional`` -> as above, or None
+      when that stage is not in the graph, or its products are unusable
+      (failed, blocked, damaged, not run; for a stretch-scoped one: no
+      stretch usable).  The stage then works without it;
+    * :data:`RUN_STATUS` (night scope) -> a ``dict`` describing the state
+      of every unit of the stages before this one (see
+      :func:`pipeline.runner.NightStore.run_status`): ``n_stretches`` (None
+      before the block index exists) and ``stages``, a list of
+      ``{"name", "units": {unit: [state, reason]}, "problems": {unit:
+      [line, ...]}}``.  It enters the input hash, so a change of any
+      earlier unit's state reruns the stage;
     * :data:`RAW_ROWS` (stretch scope) -> a ``float32`` array of shape
       ``(context.stretch.hi - context.stretch.lo, n_columns_in_file)`` holding
       night rows ``[lo, hi)`` (the stretch with its overlap margins) from the
@@ -58,7 +69,8 @@ failure (``zdrift run`` exits 1), on every later run too while the unit stays
 up to date.  The runner stores
 ``numpy.ndarray`` as FITS images, ``astropy.io.fits`` HDUs/HDU lists as FITS
 (keeping their headers, e.g. a WCS), ``astropy.table.Table``/``QTable`` as
-ECSV, and ``dict``/``list`` of JSON-able values as JSON; it reads them back as
+ECSV, ``dict``/``list`` of JSON-able values as JSON and a ``str`` as an HTML
+page (``.html``); it reads them back as
 the same types for downstream stages.
 
 Rows of the night and stretches
@@ -129,6 +141,7 @@ __all__ = [
     "PROBLEMS",
     "RAW_FILES",
     "RAW_ROWS",
+    "RUN_STATUS",
     "SEGMENT",
     "ExternalFile",
     "PixelSummary",
@@ -149,6 +162,8 @@ RAW_ROWS = "raw_rows"
 NEIGHBOURS = "neighbours"
 #: Reserved key of a stage's return value: one-line problems with its input.
 PROBLEMS = "problems"
+#: Pseudo-input (night scope): the state of every unit of the earlier stages.
+RUN_STATUS = "run_status"
 #: Name of the product that defines the night's rows (see module docstring).
 BLOCK_INDEX = "block_index"
 #: Columns the block index must have.
@@ -487,6 +502,13 @@ class Stage:
         image array, ``.json`` as JSON), hashes its content into the unit's
         input hashes and hands the object to the stage as ``inputs[name]``
         (None when the option is None).  The stage never opens it.
+    optional : tuple of str
+        Upstream stages in ``requires`` the stage can do without (night
+        scope only): the stage still runs, with ``inputs[name] = None``,
+        when one is not in the graph (a module not written yet, a toy
+        graph) or its products are unusable.  A changed, appearing or
+        vanishing optional input makes the unit stale; an unusable one is
+        not a reason for staleness by itself.
     streams : tuple of str
         Dotted names of option fields (``pathlib.Path | None``, e.g.
         ``'reference.path'``) naming a file too large to read whole, which the
@@ -534,6 +556,7 @@ class Stage:
     partial_inputs: bool = False
     neighbours: tuple[str, ...] = ()
     streams: tuple[str, ...] = ()
+    optional: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         if not self.name.isidentifier() or self.name != self.name.lower():
@@ -551,10 +574,18 @@ class Stage:
             )
         if not callable(self.run):
             raise TypeError(f"Stage {self.name!r}: run must be callable; got {self.run!r}.")
-        names = (self.requires, self.uses, self.files, self.neighbours, self.streams)
+        names = (
+            self.requires,
+            self.uses,
+            self.files,
+            self.neighbours,
+            self.streams,
+            self.optional,
+        )
         if any(isinstance(group, str) for group in names):
             raise TypeError(
-                f"Stage {self.name!r}: requires, uses, files, neighbours and streams must be "
+                f"Stage {self.name!r}: requires, uses, files, neighbours, streams and optional "
+                "must be "
                 "tuples of names, not a single string (write ('x',) not 'x')."
             )
         for name in self.files:
@@ -569,6 +600,19 @@ class Stage:
                     f"Stage {self.name!r}: streams names {name!r}, which does not start with "
                     f"a field of {self.options.__name__} (or clashes with a required input)."
                 )
+        for name in self.optional:
+            if name not in self.requires or name in (RAW_FILES, RAW_ROWS, RUN_STATUS):
+                raise ValueError(
+                    f"Stage {self.name!r}: optional names {name!r}, which is not an upstream "
+                    "stage in requires; add it to requires or drop it."
+                )
+        if self.optional and self.scope != "night":
+            raise ValueError(
+                f"Stage {self.name!r}: optional needs scope='night' (a per-stretch stage "
+                "needs its inputs)."
+            )
+        if RUN_STATUS in self.requires and self.scope != "night":
+            raise ValueError(f"Stage {self.name!r}: {RUN_STATUS!r} needs scope='night'.")
         if self.defines_rows and self.scope != "night":
             raise ValueError(f"Stage {self.name!r}: defines_rows needs scope='night'.")
         if RAW_ROWS in self.requires and self.scope != "stretch":
@@ -600,6 +644,7 @@ def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
     pseudo-inputs, at most one stage defines the rows, and it comes before
     every stretch-scoped stage; a stage with ``partial_inputs`` requires at
     least one stretch-scoped stage; ``neighbours`` names stretch-scoped stages.
+    An ``optional`` requirement may be absent from the graph, but not later.
 
     Returns
     -------
@@ -619,10 +664,12 @@ def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
             raise TypeError(f"graph entries must be Stage objects; got {stage!r}.")
         if stage.name in seen:
             raise ValueError(f"Stage name {stage.name!r} appears twice in the graph.")
-        if stage.name in (RAW_FILES, RAW_ROWS, NEIGHBOURS):
+        if stage.name in (RAW_FILES, RAW_ROWS, RUN_STATUS, NEIGHBOURS):
             raise ValueError(f"Stage name {stage.name!r} is reserved for the runner's inputs.")
         for need in stage.requires:
-            if need not in seen and need not in (RAW_FILES, RAW_ROWS):
+            if need not in seen and need not in (RAW_FILES, RAW_ROWS, RUN_STATUS):
+                if need in stage.optional:
+                    continue  # not in this graph: the stage runs without it
                 raise ValueError(
                     f"Stage {stage.name!r} requires {need!r}, which is not an earlier "
                     f"stage; earlier stages: {sorted(seen)}."
@@ -638,8 +685,11 @@ def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
                 f"Stretch-scoped stage {stage.name!r} comes before any stage with "
                 "defines_rows=True; the runner cannot plan stretches."
             )
-        if stage.partial_inputs and not any(
-            seen[need].scope == "stretch" for need in stage.requires if need in seen
+        absent_optional = [need for need in stage.optional if need not in seen]
+        if (
+            stage.partial_inputs
+            and not absent_optional  # an absent one may be the stretch-scoped stage
+            and not any(seen[need].scope == "stretch" for need in stage.requires if need in seen)
         ):
             raise ValueError(
                 f"Stage {stage.name!r} sets partial_inputs but requires no stretch-scoped "
@@ -652,4 +702,12 @@ def check_graph(graph: Sequence[Stage]) -> tuple[Stage, ...]:
                     "only stretch-scoped stages have neighbouring stretches."
                 )
         seen[stage.name] = stage
+    names = [stage.name for stage in graph]
+    for position, stage in enumerate(graph):
+        later = [need for need in stage.optional if need in names[position:]]
+        if later:
+            raise ValueError(
+                f"Stage {stage.name!r} optionally requires {later}, which come after it; "
+                "a stage may only require earlier ones."
+            )
     return graph
