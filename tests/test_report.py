@@ -28,18 +28,25 @@ from pipeline.report import (
     bin_image,
     column_flat_figure,
     draw_figures,
+    focal_length_figure,
+    line_time_check,
     measure_sky,
     pixel_area_arcsec2,
     place_pieces,
     problem_lines,
     quicklook_figure,
     render_page,
+    residual_map_figure,
+    residuals_along_night_figure,
     seeing_across_chip_figure,
     seeing_along_night_figure,
     sky_along_night_figure,
     sky_surface_brightness,
+    solved_rows,
     sources_along_night_figure,
+    star_flat_figure,
     summary_rows,
+    zero_point_figure,
 )
 from pipeline.report._clock import _clock_text
 from pipeline.stages.report import STAGE as REPORT_STAGE
@@ -219,6 +226,100 @@ def test_every_registered_figure_draws_from_synthetic_products() -> None:
         assert "\n" not in item.spec.caption and item.spec.caption.endswith(".")
     for spec in FIGURES:
         _labels_have_text(spec.draw(scene.products(), ReportOptions()))
+
+
+def test_residual_map_puts_each_cell_at_its_chip_columns_and_time() -> None:
+    grid = scene.solved_products()["residual_grid"]
+    fig = residual_map_figure(grid, 64, (1.0, 2.0))
+    along, across = (ax.get_images()[0] for ax in fig.axes if ax.get_images())
+    cells = np.ma.filled(np.asarray(along.get_array(), dtype=float), np.nan)
+    assert cells.shape == (4, 8)  # 4 cells across the chip (rows), 8 along the night
+    row = grid[(grid["across"] == 2) & (grid["along"] == 5)][0]
+    expected = row["mean_along"] if row["n"] > 0 else np.nan
+    np.testing.assert_array_equal(cells[2, 5], expected)
+    empty = np.asarray(grid["n"]) == 0
+    assert np.isnan(
+        cells[np.asarray(grid["across"])[empty], np.asarray(grid["along"])[empty]]
+    ).all()
+    assert along.get_extent() == [1.0, 2.0, -0.5, 63.5]  # UTC hours x chip columns
+    assert all("(mas)" in ax.get_ylabel() for ax in fig.axes if not ax.get_images())
+    assert "(pix)" in fig.axes[0].get_ylabel() and "UTC" in across.axes.get_xlabel()
+
+
+def test_residuals_along_the_night_pool_the_cells_by_star_count() -> None:
+    grid = scene.solved_products()["residual_grid"]
+    fig = residuals_along_night_figure(grid, (0.0, 8.0))
+    mean_along = fig.axes[0].get_lines()[0].get_ydata()
+    column = grid[grid["along"] == 3]
+    n = np.asarray(column["n"], float)
+    expected = np.sum(n * np.asarray(column["mean_along"])) / n.sum()
+    assert mean_along[3] == pytest.approx(expected, rel=1e-12)  # float64 rounding only
+    np.testing.assert_allclose(fig.axes[0].get_lines()[0].get_xdata(), np.arange(8) + 0.5)
+    assert "(mas)" in fig.axes[0].get_ylabel() and "(mas)" in fig.axes[1].get_ylabel()
+
+
+def test_line_time_error_correction_and_smear() -> None:
+    # A clock 0.2 % slow: the charge drifts 0.002 pixel per row from its star,
+    # 8.2 pixels over 4096 TDI rows (common practice for TDI).
+    check = line_time_check({"line_time_s": 0.0501, "matched_line_time_s": 0.05}, 4096)
+    assert check["error_s"] == pytest.approx(1e-4, rel=1e-9)  # float64 rounding only
+    assert check["correction_s"] == pytest.approx(-1e-4, rel=1e-9)
+    assert check["smear_px"] == pytest.approx(0.002 * 4096, rel=1e-9)
+    fig = focal_length_figure(scene.solved_products()["astrometry_parameters"], scene.TDI_ROWS)
+    left, right = fig.axes
+    assert "(mm)" in left.get_ylabel() and "(ms)" in right.get_ylabel()
+    assert "+120 um" in left.get_title() and "correction" in right.get_title()
+
+
+def test_zero_point_figure_shades_flagged_stretches_at_their_times() -> None:
+    products = scene.solved_products()
+    clock = NightClock(scene.block_index())
+    fig = zero_point_figure(products["zero_point"], products["zp_intervals"], clock)
+    ax = fig.axes[0]
+    line = next(line for line in ax.get_lines() if line.get_label().startswith("zero point"))
+    # t = (x - tdi_rows / 2) * line_time (the zeropoint stage's time of column x).
+    first_column = 0.0 / scene.LINE_TIME + scene.TDI_ROWS / 2
+    assert line.get_xdata()[0] == pytest.approx(clock.hours(first_column)[()], abs=1e-12)
+    spans = [p for p in ax.patches if p.get_label() in ("interpolated stretch", "flagged stretch")]
+    assert len(spans) == 1  # the one flagged stretch, s0001
+    x0 = spans[0].get_x()
+    assert x0 == pytest.approx(clock.hours(6.5 / scene.LINE_TIME + scene.TDI_ROWS / 2)[()])
+    assert "mag" in ax.get_ylabel() and "UTC" in ax.get_xlabel()
+    assert not ax.yaxis_inverted()  # a larger zero point (clearer sky) up
+
+
+def test_star_flat_marks_deviant_bins_in_mmag() -> None:
+    fig = star_flat_figure(scene.solved_products()["star_flat"])
+    ax = fig.axes[0]
+    deviant = next(line for line in ax.get_lines() if line.get_label() == "deviant bin")
+    np.testing.assert_allclose(deviant.get_xdata(), [55.5])  # bin 48-63, centre 55.5
+    np.testing.assert_allclose(deviant.get_ydata(), [30.0])  # 0.03 mag
+    assert "(mmag)" in ax.get_ylabel() and "(pix)" in ax.get_xlabel()
+
+
+def test_sky_uses_the_solved_zero_point_once_there_is_one() -> None:
+    products = scene.products()
+    spec = next(spec for spec in FIGURES if spec.name == "sky")
+    ax = spec.draw(products, ReportOptions()).axes[0]
+    (line,) = ax.get_lines()
+    sky = products["sky"]
+    zp = products["zero_point"]
+    t = (np.asarray(sky["x"]) - scene.TDI_ROWS / 2) * scene.LINE_TIME
+    z = np.interp(t, zp["t"], zp["zero_point"])
+    # astropy's logarithmic units implement Pogson's scale: m = -2.5 log10(flux).
+    rate = np.asarray(sky["sky_rate"]) / 0.25 * u.electron / u.s / u.arcsec**2
+    np.testing.assert_allclose(line.get_ydata(), z + u.Magnitude(rate).value, atol=1e-12)
+    assert "NOMINAL" not in ax.get_title() and "solved" in ax.get_title()
+
+
+def test_summary_states_the_solved_numbers() -> None:
+    rows = dict(solved_rows(scene.products()))
+    assert rows["matched reference stars"] == "321"
+    assert "focal_scale = 2e-05 +- 9e-05;" in rows["solved parameters"]
+    assert "rotation = 3.5 +- 0.8 arcsec" in rows["solved parameters"]
+    assert rows["focal length"] == "6.00012 m fitted, 6.00000 m from the spin period (+120 um)"
+    assert rows["line-time error"].startswith("+5.000 us (+100.0 ppm), smear 0.00 pix")
+    assert rows["zero point"] == "clear level 27.800 mag (1 e-/s), 1 of 2 stretches flagged"
 
 
 # -------------------------------------------------------------------- page
