@@ -96,8 +96,10 @@ def find_nights(
             else:
                 config = night_config(site_file, folder.name, folder, overrides)
         except ConfigError as exc:
-            first = str(exc).strip().splitlines()
-            yield folder.name, NightOutcome(folder.name, "failed", f"config: {' '.join(first)}")
+            lines = [line.strip() for line in str(exc).strip().splitlines()]
+            more = f" (+{len(lines) - 2} more)" if len(lines) > 2 else ""
+            detail = f"config: {' '.join(lines[:2])}{more}"
+            yield folder.name, NightOutcome(folder.name, "failed", detail)
             continue
         raw_dir = Path(config.night.raw_dir)
         if not raw_dir.is_dir() or not list_raw_files(raw_dir, config.night.pattern):
