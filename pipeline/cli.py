@@ -231,7 +231,8 @@ def _cmd_run(args: argparse.Namespace, config: Config) -> int:
             return EXIT_USAGE
     print(report.format())
     page = report_page(config)
-    if page is not None:
+    made = any(r.stage == REPORT_STAGE and r.status in ("ran", "skipped") for r in report.results)
+    if made and page is not None:  # not an old page when the report was not part of this run
         print(f"report: {page}")
     if not report.ok:
         print(f"details: {night_dir(config) / LOG_NAME}", file=sys.stderr)

@@ -130,3 +130,40 @@ def test_a_config_beside_the_data_wins_and_a_bad_one_is_a_failed_night(
 def test_nightly_usage_errors(tmp_path: Path, capsys) -> None:
     assert main(["nightly", str(tmp_path / "site.yaml"), str(tmp_path / "nowhere")]) == 2
     assert "is not a folder" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_nightly_takes_simulated_nights_through_every_stage(tmp_path: Path, capsys) -> None:
+    """The whole graph: the good night's page has every figure, the broken one a page too."""
+    site = {
+        **SITE,
+        "camera": {"n_columns": 256, "tdi_rows": 256, "pixel_size": 15, "focal_length": 3.5},
+        "run": {"stretch_rows": 512, "overlap_rows": 32, "workers": 2},
+        "stages": {
+            "column_stats": {"block_rows": 64},
+            "astrometry": {  # the simulator's reference catalogue of the strip (both nights')
+                "reference": {
+                    "source": "file",
+                    "path": "raw/2026-10-15/reference.ecsv",
+                    "columns": {"pm_ra": "pmra", "pm_dec": "pmdec"},
+                }
+            },
+        },
+    }
+    simulate = {**SIMULATE, "n_blocks": 4, "block_rows": 256, "overscan_columns": 16}
+    site_file, raw, (good, bad) = _nights(tmp_path, site, simulate)
+    _break(bad)
+    assert main(["nightly", str(site_file), str(raw)]) == 1
+    lines = _lines(capsys)
+    # The tiny night may report the star flat's problems (a 256-column night
+    # whose sky is too flat for the column solve), never failures.
+    assert ", 0 failed, 0 blocked," in lines[good.name], lines
+    assert lines[bad.name].startswith("problems (")
+    page = (tmp_path / "products" / good.name / "report" / "night" / "page.html").read_text()
+    assert page.count("Not drawn") == 0
+    for anchor in ("zero_point", "star_flat", "residual_map", "residual_night", "focal_length"):
+        assert f'<h2 id="{anchor}">' in page
+    broken = (tmp_path / "products" / bad.name / "report" / "night" / "page.html").read_text()
+    assert "Stage ingest (night) reported: rejected" in broken
+    assert main(["nightly", str(site_file), str(raw)]) == 0
+    assert all(line.startswith("up to date") for line in _lines(capsys).values())

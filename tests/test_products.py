@@ -85,8 +85,8 @@ def test_readme_python_section_runs(demo):
     lines = out.splitlines()
     # 18 units up to detect (ingest, columns and 4 stretches of column_stats,
     # calibrate, rectify, detect), the night-scoped catalog, astrometry and
-    # zeropoint, and 4 stretches of science.
-    assert lines[0] == "night demo-2026-10-15: 25 units ran, 0 up to date, 0 failed, 0 blocked"
+    # zeropoint, 4 stretches of science, and the night's report.
+    assert lines[0] == "night demo-2026-10-15: 26 units ran, 0 up to date, 0 failed, 0 blocked"
     assert "electron electron2 (1035, 1024)" in lines
     # The flag-based "no data" count is the number of NaN pixels of the image.
     image = pipeline.read_image(_night(folder) / "rectify/s0001/image.fits")

@@ -51,7 +51,7 @@ def _run(*, inputs, options: ReportOptions, context) -> dict[str, Any]:
     night.products["n_columns"] = int(context.camera.n_columns)
     night.products["tdi_rows"] = int(context.camera.tdi_rows)
     page = build_report(night, context.night, about_rows(context, night.header), options)
-    log.info("report: %d figures' worth of products", len(night.products))
+    log.info("report: page of night %s from %d products", context.night, len(night.products))
     return {PAGE: page}
 
 
