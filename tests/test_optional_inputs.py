@@ -26,9 +26,9 @@ def digest(*, inputs, options, context):
     total = inputs["total"]
     smooth = inputs["smooth"]
     failed = sorted(
-        f"{stage['name']}/{unit}"
+        f"{stage['name']}/{unit}: {reason}"
         for stage in inputs[RUN_STATUS]["stages"]
-        for unit, (state, _) in stage["units"].items()
+        for unit, (state, reason) in stage["units"].items()
         if state == "failed"
     )
     seen = {
@@ -40,6 +40,18 @@ def digest(*, inputs, options, context):
     return {"page": f"<p>{seen}</p>", "seen": seen}
 
 
+class CheckOptions(_toy_graph.TotalOptions):
+    fail: bool = False
+
+
+def check(*, inputs, options, context):
+    """A night-scoped side check that digest does not read: it fails on request."""
+    if options.fail:
+        raise ValueError("check failed")
+    return {"summary": {"rows": len(inputs["index"]["block_index"])}}
+
+
+CHECK = Stage("check", check, CheckOptions, ("index",), "night", ())
 DIGEST = Stage(
     "digest",
     digest,
@@ -50,7 +62,7 @@ DIGEST = Stage(
     optional=("total", "smooth", "nowhere"),
     partial_inputs=True,
 )
-GRAPH = (*_toy_graph.GRAPH, DIGEST)
+GRAPH = (*_toy_graph.GRAPH, CHECK, DIGEST)
 
 
 @pytest.fixture
@@ -75,7 +87,8 @@ def test_a_stage_runs_on_the_inputs_that_exist_and_only_when_they_change(night) 
     # three smooth stretches that exist, and sees the failure.
     assert _digest(report.results) == "ran" and not report.ok
     seen = open_product(broken, "digest", product="seen")
-    assert seen == {"total": None, "n_smooth": 3, "nowhere": None, "failed": ["scale/s0001"]}
+    failure = "scale/s0001: ValueError: toy failure on stretch 1"
+    assert seen == {"total": None, "n_smooth": 3, "nowhere": None, "failed": [failure]}
     # An unchanged broken night: scale fails again the same way, digest stays.
     assert _digest(run_night(broken).results) == "skipped"
     states = {s.name: s.units for s in night_status(broken).stages}
@@ -100,8 +113,22 @@ def test_a_failed_optional_input_is_none(night) -> None:
         "total": None,
         "n_smooth": 0,
         "nowhere": None,
-        "failed": [f"scale/s000{i}" for i in range(4)],
+        "failed": [f"scale/s000{i}: ValueError: toy failure on stretch {i}" for i in range(4)],
     }
+
+
+def test_a_failure_elsewhere_alone_rebuilds(night) -> None:
+    config = night()
+    run_night(config)
+    # check fails: nothing digest reads changes, only the run status.
+    broken = night("stages.check.fail=true")
+    assert _digest(run_night(broken).results) == "ran"
+    assert open_product(broken, "digest", product="seen")["failed"] == [
+        "check/night: ValueError: check failed"
+    ]
+    assert _digest(run_night(broken).results) == "skipped"
+    assert _digest(run_night(config).results) == "ran"
+    assert open_product(config, "digest", product="seen")["failed"] == []
 
 
 def test_optional_requirements_are_checked() -> None:
