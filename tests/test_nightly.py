@@ -11,13 +11,14 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import pytest
 import yaml
 
 import pipeline.stages
 from pipeline.cli import main
-from pipeline.config import load_config
-from pipeline.runner import NIGHT_CONFIG_NAME
+from pipeline.config import load_config, night_config
+from pipeline.runner import NIGHT_CONFIG_NAME, open_product
 from pipeline.simulate import simulate_to_folders
 
 #: The site file of the fictional station: everything but the night.
@@ -27,6 +28,15 @@ SITE = {
     "camera": {"n_columns": 64, "tdi_rows": 64, "pixel_size": 15, "focal_length": 3.5},
     "run": {"stretch_rows": 256, "overlap_rows": 16, "executor": "serial"},
 }
+#: mag: the report's sky level and pixel area against the simulator's sky, both
+#: with the simulator's zero point.  Measured +0.007 mag on the slow test's night;
+#: 0.02 mag leaves room for another seed and still names a 2 % error in the
+#: sky level or the pixel area (a plane instead of a sky area is 0.27 mag here).
+SKY_LEVEL_TOLERANCE = 0.02
+#: mag: the same with the night's solved zero point, which on that undersampled
+#: night (0.88 arcsec pixels) comes out 0.043 to 0.051 mag above the simulator's
+#: 27.8 (the zeropoint stage's business); 0.08 covers it and the sky level's 0.02.
+SKY_TOLERANCE = 0.08
 #: Two nights of one strip, a sidereal day apart, 2 blocks of 128 rows each.
 SIMULATE = {
     "start": "2026-10-15T05:00:00",
@@ -150,7 +160,9 @@ def test_nightly_takes_simulated_nights_through_every_stage(tmp_path: Path, caps
             },
         },
     }
-    simulate = {**SIMULATE, "n_blocks": 4, "block_rows": 256, "overscan_columns": 16}
+    # A steady sky (no twilight ramp, no cloud) of known surface brightness.
+    sky = {"sky_brightness": 20.8, "sky_ramp": 0.0, "cloud_depth": 0.0}
+    simulate = {**SIMULATE, "n_blocks": 4, "block_rows": 256, "overscan_columns": 16, "sky": sky}
     site_file, raw, (good, bad) = _nights(tmp_path, site, simulate)
     _break(bad)
     assert main(["nightly", str(site_file), str(raw)]) == 1
@@ -163,6 +175,19 @@ def test_nightly_takes_simulated_nights_through_every_stage(tmp_path: Path, caps
     assert page.count("Not drawn") == 0
     for anchor in ("zero_point", "star_flat", "residual_map", "residual_night", "focal_length"):
         assert f'<h2 id="{anchor}">' in page
+    # Self-consistency with the simulator: the sky brightness the report
+    # measures is the one the simulator put in (columns with data only: the
+    # first 256 night columns of the rectified strip hold none).
+    measured = open_product(night_config(site_file, good.name, good), "report", product="sky")
+    assert measured.meta["solved"]
+    has_data = np.isfinite(np.asarray(measured["sky_brightness"]))
+    assert has_data.sum() >= 8
+    sky_mag = np.asarray(measured["sky_brightness"])[has_data]
+    zero_point = np.asarray(measured["zero_point"])[has_data]
+    # With the simulator's zero point (27.8 mag for 1 e-/s) the report's own
+    # part (sky level per second, pixel area on the sky) is checked alone.
+    np.testing.assert_allclose(sky_mag - zero_point + 27.8, 20.8, atol=SKY_LEVEL_TOLERANCE)
+    np.testing.assert_allclose(sky_mag, 20.8, atol=SKY_TOLERANCE)
     broken = (tmp_path / "products" / bad.name / "report" / "night" / "page.html").read_text()
     assert "Stage ingest (night) reported: rejected" in broken
     # The next morning the good night is left alone; the broken one stays

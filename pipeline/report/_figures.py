@@ -36,6 +36,7 @@ __all__ = [
     "FIGURES",
     "FigureSpec",
     "column_flat_figure",
+    "night_sky",
     "quicklook_figure",
     "seeing_across_chip_figure",
     "seeing_along_night_figure",
@@ -310,13 +311,46 @@ def _seeing_chip(products: Mapping[str, Any], options: ReportOptions) -> Figure:
     return seeing_across_chip_figure(products["seeing"])
 
 
+def night_sky(products: Mapping[str, Any], options: ReportOptions) -> Table:
+    """The sky along the night with the zero point it is measured with.
+
+    Parameters
+    ----------
+    products : mapping
+        ``sky`` (see :func:`measure_sky`, with ``pixel_area``) and, once
+        solved, the zeropoint stage's ``zero_point``.
+    options : ReportOptions
+        For the nominal zero point used until one is solved.
+
+    Returns
+    -------
+    astropy.table.Table
+        ``sky`` plus ``zero_point`` (mag of 1 e-/s at each row) and
+        ``sky_brightness`` (mag/arcsec^2); ``meta['solved']`` says whether
+        the zero point is the night's solved one.
+    """
+    sky = Table(products["sky"], copy=True)
+    zero_point = products.get("zero_point")
+    solved = zero_point is not None
+    if solved:
+        sky["zero_point"] = zero_point_at_columns(zero_point, sky["x"])
+    else:
+        sky["zero_point"] = np.full(len(sky), options.nominal_zero_point)
+    sky["zero_point"].unit = "mag"
+    sky["sky_brightness"] = sky_surface_brightness(
+        sky["sky_rate"], sky["pixel_area"], np.asarray(sky["zero_point"])
+    )
+    sky["sky_brightness"].unit = "mag / arcsec2"
+    sky.meta["solved"] = solved
+    return sky
+
+
 def _sky(products: Mapping[str, Any], options: ReportOptions) -> Figure:
     clock = NightClock(products["block_index"])
-    sky, zero_point = products["sky"], products.get("zero_point")
-    if zero_point is None:
+    sky = night_sky(products, options)
+    if not sky.meta["solved"]:
         return sky_along_night_figure(sky, clock, options.nominal_zero_point)
-    solved = zero_point_at_columns(zero_point, sky["x"])
-    return sky_along_night_figure(sky, clock, solved, solved=True)
+    return sky_along_night_figure(sky, clock, np.asarray(sky["zero_point"]), solved=True)
 
 
 def _hours_of(products: Mapping[str, Any]) -> tuple[float, float]:

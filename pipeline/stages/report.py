@@ -18,7 +18,13 @@ import logging
 from typing import Any
 
 import pipeline
-from pipeline.report import ReportOptions, build_report, collect_products
+from pipeline.report import (
+    ReportOptions,
+    build_report,
+    collect_products,
+    night_sky,
+    summary_rows,
+)
 from pipeline.stages.base import RUN_STATUS, Stage
 
 __all__ = ["PAGE", "STAGE", "about_rows"]
@@ -52,7 +58,13 @@ def _run(*, inputs, options: ReportOptions, context) -> dict[str, Any]:
     night.products["tdi_rows"] = int(context.camera.tdi_rows)
     page = build_report(night, context.night, about_rows(context, night.header), options)
     log.info("report: page of night %s from %d products", context.night, len(night.products))
-    return {PAGE: page}
+    products = {
+        PAGE: page,
+        "summary": [list(row) for row in summary_rows(night.products, night.status)],
+    }
+    if "sky" in night.products:
+        products["sky"] = night_sky(night.products, options)
+    return products
 
 
 #: Declaration of the report stage: night scope, last; every upstream stage is
