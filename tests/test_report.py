@@ -19,6 +19,7 @@ import pipeline.stages
 from pipeline.cli import main
 from pipeline.config import load_config
 from pipeline.exceptions import ConfigError
+from pipeline.geometry.rectified import column_times
 from pipeline.report import (
     FIGURES,
     FigureSpec,
@@ -49,6 +50,7 @@ from pipeline.report import (
     zero_point_figure,
 )
 from pipeline.report._clock import _clock_text
+from pipeline.report._solved import zero_point_columns
 from pipeline.stages.report import STAGE as REPORT_STAGE
 
 SCRIPT = "<script>alert('x')</script>"
@@ -286,6 +288,13 @@ def test_zero_point_figure_shades_flagged_stretches_at_their_times() -> None:
     assert x0 == pytest.approx(clock.hours(6.5 / scene.LINE_TIME + scene.TDI_ROWS / 2)[()])
     assert "mag" in ax.get_ylabel() and "UTC" in ax.get_xlabel()
     assert not ax.yaxis_inverted()  # a larger zero point (clearer sky) up
+
+
+def test_zero_point_columns_invert_the_one_column_time_map() -> None:
+    meta = {"line_time_s": scene.LINE_TIME, "tdi_rows": scene.TDI_ROWS}
+    x = np.array([0.0, 20.0, 137.5, 4000.0])
+    t = column_times(x, scene.LINE_TIME, scene.TDI_ROWS)
+    np.testing.assert_allclose(zero_point_columns(t, meta), x, rtol=0, atol=1e-9)  # rounding
 
 
 def test_star_flat_marks_deviant_bins_in_mmag() -> None:

@@ -14,6 +14,7 @@ import numpy as np
 from astropy.table import Table
 from matplotlib.figure import Figure
 
+from pipeline.geometry.rectified import column_times
 from pipeline.report._clock import FIGURE_SIZE, NightClock, _clock_text, time_axis
 
 __all__ = [
@@ -215,16 +216,18 @@ def focal_length_figure(parameters: Table, tdi_rows: int) -> Figure:
 def zero_point_columns(t: Any, meta: Mapping[str, Any]) -> np.ndarray:
     """Night columns of zero-point times ``t`` (s after night row 0 was read out).
 
-    The zeropoint stage's map ``t = (x - tdi_rows / 2) * line_time``,
-    inverted; ``meta`` is its ``zero_point`` table's meta.
+    The inverse of :func:`pipeline.geometry.rectified.column_times`, the one
+    map from columns to times; ``meta`` is the ``zero_point`` table's meta
+    (``line_time_s``, ``tdi_rows``).
     """
     return _values(t) / float(meta["line_time_s"]) + 0.5 * float(meta["tdi_rows"])
 
 
 def zero_point_at_columns(zero_point: Table, x: Any) -> np.ndarray:
     """The solved zero point Z (mag of 1 e-/s) at night columns ``x``, interpolated."""
-    columns = zero_point_columns(zero_point["t"], zero_point.meta)
-    return np.interp(np.asarray(x, dtype=float), columns, _values(zero_point["zero_point"]))
+    meta = zero_point.meta
+    t = column_times(x, float(meta["line_time_s"]), int(meta["tdi_rows"]))
+    return np.interp(t, _values(zero_point["t"]), _values(zero_point["zero_point"]))
 
 
 def zero_point_figure(zero_point: Table, intervals: Table, clock: NightClock) -> Figure:
