@@ -132,7 +132,11 @@ def _mis_set_night(folder, latitude: float):
         "site": {"latitude": latitude, "longitude": -70.0, "height": 2000.0},
         "camera": CONFIGURED_CAMERA | {"line_time": line_time},
         "run": {"stretch_rows": 1024, "overlap_rows": 64, "executor": "serial"},
-        "stages": {"column_stats": {"block_rows": 128}, "astrometry": {"reference": reference}},
+        "stages": {
+            "column_stats": {"block_rows": 128},
+            # 5 mas: the simulator's reference position error (simulate.reference)
+            "astrometry": {"reference": reference, "reference_error": 5.0},
+        },
         "simulate": {
             "start": start.isot,
             "n_blocks": 4,
@@ -198,14 +202,17 @@ def test_the_stage_recovers_a_mis_set_camera_from_the_raw_night(tmp_path, latitu
     assert abs(fit["focal_scale"] - (6.06 / 6.0 - 1.0)) <= 2e-4
     # 0.05": the issue's bound on the north-south tilt (measured 0.003" north)
     assert abs(fit["tilt_north"] - TRUE_CAMERA["tilt_north"]) <= 0.05
-    # Rotation: the issue asks for 2"; the chain measures ~16" (13 sigma) more
-    # than the truth, as on the demo night (18"), a rotation-like systematic of
-    # detect's centroids across the chip not yet understood.  20": that
-    # measured systematic plus 3 formal sigma, a ratchet to tighten.
+    # Rotation: the issue's 2" plus 3 formal sigma.  Measured +1.5" +- 2.9"
+    # north, +7.7" +- 2.8" south: the 314 reference stars (r <= 21, 5 mas
+    # errors) of a 512-column night fix the rotation to ~2.5" (the scatter
+    # over reference-noise draws matches the formal error), so 2" alone
+    # needs ~5x more stars (the 4096-column night of the issue has them).
+    # Before saturated, edge and cosmic-ray centroids were left out of the
+    # fit and the reference errors weighted it: +15.7" +- 1.2" and +7.4".
     expected_rotation = (
         TRUE_CAMERA["rotation"] * 3600.0 + TRUE_CAMERA["tilt_east"] * rotation_per_tilt
     )
-    assert abs(fit["rotation"] - expected_rotation) <= 20.0 + 3 * error["rotation"]
+    assert abs(fit["rotation"] - expected_rotation) <= 2.0 + 3 * error["rotation"]
     # The line time that matches the drift: the true camera's (0.03 %: the
     # focal-length bound of the issue, which sets it, plus its own error).
     true_matched = _true_model(latitude, Time(index.meta["reference_time"])).matched_line_time
@@ -214,7 +221,11 @@ def test_the_stage_recovers_a_mis_set_camera_from_the_raw_night(tmp_path, latitu
     catalog = open_product(config, "astrometry", "night", "catalog")
     truth = Table.read(tmp_path / "night/raw/truth.ecsv")
     near, d_ra, d_dec = _solved_minus_truth(catalog, truth[truth["in_night"]])
-    bright = np.asarray(catalog["snr"])[near] > 50
+    # Bright stars whose centroids the fit trusts (not saturated, cut by the
+    # edge or hit by a cosmic ray: those have errors far below their offsets).
+    flags = np.asarray(catalog["flags"], dtype=np.int64)[near]
+    trusted = (flags & AstrometryStageOptions().exclude_mask) == 0
+    bright = (np.asarray(catalog["snr"])[near] > 50) & trusted
     pull_ra = d_ra[bright] / catalog["ra_err"].to_value(u.mas)[near][bright]
     pull_dec = d_dec[bright] / catalog["dec_err"].to_value(u.mas)[near][bright]
     print(
@@ -222,8 +233,15 @@ def test_the_stage_recovers_a_mis_set_camera_from_the_raw_night(tmp_path, latitu
         f'rotation {fit["rotation"] - expected_rotation:+.1f}" +- {error["rotation"]:.1f}, '
         f'tilt N {fit["tilt_north"] + 10:+.4f}", n bright {bright.sum()}, median offset '
         f"{np.median(d_ra):+.1f} {np.median(d_dec):+.1f} mas, pull rms "
-        f"{np.std(pull_ra):.2f} {np.std(pull_dec):.2f}"
+        f"{np.sqrt(np.mean(pull_ra**2)):.2f} {np.sqrt(np.mean(pull_dec**2)):.2f}"
     )
+    # 1.2: the issue's bound on bright stars' residuals over their noise along
+    # RA (measured 1.10 north, 1.16 south).  Across the scan (Dec) 1.29 and
+    # 1.31 are measured: a few bright stars sit 0.02-0.05 px off in y, not
+    # from the flat field (its residual moves centroids by 0.004 px rms) and
+    # not yet explained; 1.5 is a ratchet to tighten.
+    assert np.sqrt(np.mean(pull_ra**2)) <= 1.2
+    assert np.sqrt(np.mean(pull_dec**2)) <= 1.5
     # 10 mas: a fifth of a pixel's typical bright-star centroid error (~50 mas);
     # the issue's 5 mas per grid cell needs the rotation systematic gone first.
     assert abs(np.median(d_ra)) < 10.0 and abs(np.median(d_dec)) < 10.0

@@ -1,4 +1,24 @@
-"""Table layer of the astrometry stage: detect's catalogue in, solved catalogue out."""
+"""Table layer of the astrometry stage: detect's catalogue in, solved catalogue out.
+
+Which detections the fit sees
+-----------------------------
+Every detection gets a solved position, but the geometry is fitted only to
+detections whose centroid and error detect could measure: not flagged
+SATURATED, EDGE, COSMIC_RAY or FIT_FAILED (``fit_exclude_flags``).  A
+saturated core, a stamp cut by the chip edge (the star's track partly off the
+chip) or a cosmic-ray hit in the core moves the fitted centroid by 0.01 to
+0.1 px while the formal error of so bright a star is ~0.002 px, so a handful
+of them outweighs all the other stars (measured on the simulated mis-set
+nights of ``tests/test_astrometry_stage.py``: the camera rotation came out
+16" off with them, within 2" without).  Leaving such stars out of an
+astrometric fit is common practice.
+
+Each pair is weighted by the detection's centroid error and the reference
+star's position error at the observation epoch (``reference_error``) added
+in quadrature: the residual of a pair contains both, and a star whose
+centroid error is below the reference's would otherwise take a weight its
+residual does not have.
+"""
 
 from __future__ import annotations
 
@@ -7,13 +27,14 @@ from dataclasses import dataclass
 import numpy as np
 from astropy import units as u
 from astropy.table import QTable, Table
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, field_validator
 
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import TDIModel
 from pipeline.stages.astrometry._fit import FIT_PARAMETERS
 from pipeline.stages.astrometry._model import east_tilt_equivalent
 from pipeline.stages.astrometry._solve import AstrometricSolution, SearchRanges, solve_night
+from pipeline.stages.detect import SourceFlag
 
 __all__ = ["AstrometryOptions", "SolvedCatalog", "solve_catalog"]
 
@@ -39,11 +60,41 @@ class AstrometryOptions(BaseModel):
     min_snr: float = Field(
         0.0, ge=0, description="Detections below this S/N are solved but not used in the fit."
     )
+    fit_exclude_flags: tuple[str, ...] = Field(
+        ("SATURATED", "EDGE", "COSMIC_RAY", "FIT_FAILED"),
+        description="Detect flags (SourceFlag names) of detections solved but not fitted: "
+        "their centroids are off by more than their errors say.",
+    )
+    reference_error: float = Field(
+        0.0,
+        ge=0,
+        description="mas: position error of the reference stars at the observation epoch, "
+        "per coordinate (added in quadrature to the centroid errors in the fit's weights).",
+    )
     clip_sigma: float = Field(5.0, gt=1, description="Outlier rejection, robust sigmas.")
     search_clock: float = Field(10.0, ge=0, description="Search range of the clock, +- s.")
     search_focal: float = Field(0.03, ge=0, description="Search range of the focal length, +-.")
     search_rotation: float = Field(0.5, ge=0, description="Search range of rotation, +- deg.")
     search_tilt: float = Field(60.0, ge=0, description="Search range of the tilt, +- arcsec.")
+
+    @field_validator("fit_exclude_flags")
+    @classmethod
+    def _known_flags(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        unknown = [name for name in value if name not in SourceFlag.__members__]
+        if unknown:
+            raise ValueError(
+                f"fit_exclude_flags {unknown} are not detect flags; choose from "
+                f"{list(SourceFlag.__members__)}."
+            )
+        return value
+
+    @property
+    def exclude_mask(self) -> int:
+        """The bits of :attr:`fit_exclude_flags` as one integer."""
+        bits = 0
+        for name in self.fit_exclude_flags:
+            bits |= int(SourceFlag[name])
+        return bits
 
 
 @dataclass(frozen=True)
@@ -77,6 +128,21 @@ def _degrees(column) -> np.ndarray:
     return np.asarray(u.Quantity(column, u.deg).value, dtype=float)
 
 
+def _with_reference_error(frame: RectifiedFrame, x, y, x_err, y_err, reference_error: float):
+    """Centroid errors with the reference stars' position error added, pixels.
+
+    ``reference_error`` (mas per coordinate on the sky) is turned into
+    rectified pixels: ``cdelt1 cos(dec)`` along ``x`` (right ascension of
+    date), ``cdelt2`` along ``y``.
+    """
+    if reference_error == 0.0:
+        return x_err, y_err
+    _, dec = frame.icrs_from_pixel(x, y)
+    along = reference_error / (frame.cdelt1 * 3.6e6 * np.cos(np.radians(dec)))
+    across = reference_error / (frame.cdelt2 * 3.6e6)
+    return np.hypot(x_err, along), np.hypot(y_err, across)
+
+
 def solve_catalog(
     catalog: QTable,
     ref_ra,
@@ -91,7 +157,7 @@ def solve_catalog(
     ----------
     catalog : QTable
         Detect's night catalogue: ``x``, ``y``, ``x_err``, ``y_err`` (pixels),
-        optionally ``snr``.
+        optionally ``snr`` and ``flags`` (see the module notes).
     ref_ra, ref_dec : Quantity or array_like
         Reference positions, ICRS at the observation epoch (degrees if bare).
     model, frame : TDIModel, RectifiedFrame
@@ -122,7 +188,12 @@ def solve_catalog(
     use = np.isfinite(x) & np.isfinite(y)
     if "snr" in catalog.colnames:
         use &= np.asarray(catalog["snr"], dtype=float) >= options.min_snr
+    if "flags" in catalog.colnames:
+        use &= (np.asarray(catalog["flags"], dtype=np.int64) & options.exclude_mask) == 0
     fit_rows = np.flatnonzero(use)
+    fit_x_err, fit_y_err = _with_reference_error(
+        frame, x[fit_rows], y[fit_rows], x_err[fit_rows], y_err[fit_rows], options.reference_error
+    )
     ranges = SearchRanges(
         clock_offset=options.search_clock,
         focal_scale=options.search_focal,
@@ -136,8 +207,8 @@ def solve_catalog(
         _degrees(ref_dec),
         model,
         frame,
-        x_err=x_err[fit_rows],
-        y_err=y_err[fit_rows],
+        x_err=fit_x_err,
+        y_err=fit_y_err,
         match_radius=options.match_radius,
         knot_spacing=options.knot_spacing,
         parameters=options.fit_parameters,
