@@ -3,6 +3,7 @@
 Run::
 
     python benchmarks/bench_detect.py [--size 4096] [--stars 3000] [--seed 1] [--profile]
+        [--save CATALOGUE.ecsv]
 
 It renders a ``size x size`` rectified stretch (axis 0 across the chip, axis 1
 along the scan) with ``--stars`` stars on a sky of 200 e- per pixel, Moffat
@@ -77,6 +78,7 @@ def main() -> None:
     parser.add_argument(
         "--profile", action="store_true", help="also print where detect spends its time (cProfile)"
     )
+    parser.add_argument("--save", help="write the catalogue to this ECSV file (to compare runs)")
     args = parser.parse_args()
     size, n = args.size, args.stars
     rng = np.random.default_rng(args.seed)
@@ -115,6 +117,8 @@ def main() -> None:
         # The profiler's own overhead inflates the time printed below by ~5 %.
         pstats.Stats(profiler).sort_stats("cumulative").print_stats(r"detect|photutils", 30)
     cat = result.catalog
+    if args.save:
+        cat.write(args.save, format="ascii.ecsv", overwrite=True)
     print(f"detect: {elapsed:.1f} s, {size * size / elapsed / 1e6:.2f} Mpx/s, {len(cat)} sources")
     print(machine_state())
     print(f"seeing FWHM {result.seeing['fwhm'][0]:.3f} px (rendered 4.000)")
