@@ -58,6 +58,7 @@ def test_fit_with_compiled_profiles_matches_the_direct_fit(row, monkeypatch):
 
     compiled = fit()
     monkeypatch.setattr(_model, "pixel_profiles", pixel_profiles_direct)
+    monkeypatch.setattr(_model, "_fit_one", lambda *args: None)  # the Python loop
     direct = fit()
     # What a fit sees must change by < 1e-4 of the flux and < 1e-3 px (a hundredth
     # of these errors: flux_err ~ 1 %, position ~ 0.05 px); profiles agreeing to
@@ -66,3 +67,42 @@ def test_fit_with_compiled_profiles_matches_the_direct_fit(row, monkeypatch):
     assert abs(compiled.x[0] - direct.x[0]) < 1e-5
     assert abs(compiled.y[0] - direct.y[0]) < 1e-5
     assert compiled.flux_err[0] == pytest.approx(direct.flux_err[0], rel=1e-6)
+
+
+@pytest.mark.parametrize(
+    ("row", "start"), [(4000.0, (32.0, 21.0)), (2100.0, (31.2, 20.1)), (3000.0, (33.5, 21.9))]
+)
+def test_compiled_single_star_fit_takes_the_python_loops_steps(row, start, monkeypatch):
+    # One star and a background: the compiled fit must give what the Python
+    # loop (used for groups) gives, step for step, on a long track (row 4000),
+    # a short one (2100) and from a start 1.5 px off.
+    dx, dy = smear_track([row], 4096, 64, 16.0, 3.0)
+    kernel = _model.reduce_kernel(dx[0], dy[0], 0.5)
+    profile = SeeingProfile(4.0)
+    shape = (41, 65)
+    truth = model_image(shape, 32.3, 20.6, *kernel, profile, 2.0e4) + 200.0
+    rng = np.random.default_rng(5)
+    data = truth + rng.normal(0.0, np.sqrt(truth))
+    data[3, 7] = np.nan  # a pixel without data is left out by both
+    origin = (100, 300)
+
+    def fit():
+        return fit_stars(
+            data, truth, [start[0] + 300], [start[1] + 100], [kernel], profile, origin=origin
+        )
+
+    compiled = fit()
+    monkeypatch.setattr(_model, "_fit_one", lambda *args: None)
+    python = fit()
+    # Same steps, same stopping point: only the order of the sums differs
+    # (BLAS against loops), rounding of ~1e-13 relative that the steps carry
+    # to ~1e-10 of the errors; 1e-8 of an error is far below anything a
+    # catalogue shows and far above that rounding.
+    for name in ("flux", "x", "y"):
+        err = getattr(python, f"{name}_err")[0]
+        assert abs(getattr(compiled, name)[0] - getattr(python, name)[0]) < 1e-8 * err
+        assert getattr(compiled, f"{name}_err")[0] == pytest.approx(err, rel=1e-8)
+    assert compiled.background == pytest.approx(python.background, rel=1e-8, abs=1e-8)
+    assert compiled.chi2 == pytest.approx(python.chi2, rel=1e-10)
+    assert compiled.success and python.success
+    np.testing.assert_allclose(compiled.units[0], python.units[0], rtol=0, atol=1e-12)
