@@ -186,7 +186,21 @@ def _flags_for(mask, core, stamp_box, clipped, blended, overlap) -> int:
     y0, y1, x0, x1 = stamp_box
     stamp_mask = mask[y0:y1, x0:x1]
     flags = 0
-    if clipped or has_bits(stamp_mask, MaskBit.OUTSIDE | MaskBit.GAP | MaskBit.NONFINITE).any():
+    if stamp_mask.any():  # most stamps have no flagged pixel: skip the bit tests
+        flags = _mask_flags(stamp_mask, core)
+    if clipped:
+        flags |= SourceFlag.EDGE
+    if blended:
+        flags |= SourceFlag.BLENDED
+    if overlap:
+        flags |= SourceFlag.OVERLAP
+    return int(flags)
+
+
+def _mask_flags(stamp_mask, core) -> int:
+    """The flags set by the mask bits of a stamp and of the star's core in it."""
+    flags = 0
+    if has_bits(stamp_mask, MaskBit.OUTSIDE | MaskBit.GAP | MaskBit.NONFINITE).any():
         flags |= SourceFlag.EDGE
     if np.any(stamp_mask):
         flags |= SourceFlag.NEAR_FLAGGED
@@ -194,10 +208,6 @@ def _flags_for(mask, core, stamp_box, clipped, blended, overlap) -> int:
         flags |= SourceFlag.SATURATED
     if has_bits(stamp_mask[core], MaskBit.COSMIC_RAY).any():
         flags |= SourceFlag.COSMIC_RAY
-    if blended:
-        flags |= SourceFlag.BLENDED
-    if overlap:
-        flags |= SourceFlag.OVERLAP
     return int(flags)
 
 
