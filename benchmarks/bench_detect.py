@@ -52,7 +52,7 @@ sys.path.insert(0, str(pathlib.Path(__file__).resolve().parents[1]))
 import numpy as np  # noqa: E402
 from scipy.spatial import cKDTree  # noqa: E402
 
-from pipeline.stages.detect import SeeingProfile, detect, model_image  # noqa: E402
+from pipeline.stages.detect import SeeingProfile, detect, fit_stars, model_image  # noqa: E402
 from tests._detect_scene import render_scene, smear_track  # noqa: E402
 
 
@@ -101,11 +101,15 @@ def main() -> None:
         seed=args.seed,
     )
     print(f"rendered {n} stars on {size} x {size} in {time.perf_counter() - t0:.1f} s")
-    # The model's compiled loop is loaded (or compiled, the first time) once per
-    # process; a worker pays it once for all its stretches, so it is timed apart.
+    # The model's and the fit's compiled loops are loaded (or compiled, the first
+    # time) once per process; a worker pays it once for all its stretches, so it
+    # is timed apart.
     t0 = time.perf_counter()
-    model_image((3, 3), 1.0, 1.0, np.zeros(1), np.zeros(1), SeeingProfile(4.0))
-    print(f"compiled model loaded in {time.perf_counter() - t0:.2f} s (once per process)")
+    star = model_image((9, 9), 4.0, 4.0, np.zeros(1), np.zeros(1), SeeingProfile(2.0), 100.0)
+    fit_stars(
+        star + 1.0, np.ones((9, 9)), [4.0], [4.0], [(np.zeros(1), np.zeros(1))], SeeingProfile(2.0)
+    )
+    print(f"compiled model and fit loaded in {time.perf_counter() - t0:.2f} s (once per process)")
     profiler = cProfile.Profile() if args.profile else None
     t0 = time.perf_counter()
     if profiler is not None:

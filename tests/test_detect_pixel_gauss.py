@@ -106,3 +106,19 @@ def test_compiled_single_star_fit_takes_the_python_loops_steps(row, start, monke
     assert compiled.chi2 == pytest.approx(python.chi2, rel=1e-10)
     assert compiled.success and python.success
     np.testing.assert_allclose(compiled.units[0], python.units[0], rtol=0, atol=1e-12)
+
+
+def test_compiled_small_solve_matches_lapack_and_reports_a_singular_system():
+    from pipeline.stages.detect._fit_jit import _solve
+
+    rng = np.random.default_rng(8)
+    a = rng.normal(size=(4, 4))
+    b = rng.normal(size=4)
+    x, ok = _solve(a, b)
+    # numpy.linalg.solve (LAPACK gesv, partial pivoting too) is the reference;
+    # 1e-12: rounding of a 4 x 4 elimination with a condition number ~10.
+    assert ok
+    np.testing.assert_allclose(x, np.linalg.solve(a, b), rtol=0, atol=1e-12)
+    # A zero column cannot be solved: reported, so the fit falls back to Python.
+    a[:, 2] = 0.0
+    assert not _solve(a, b)[1]
