@@ -18,7 +18,8 @@ It prints, with one BLAS/OpenMP thread:
 
 * megapixels per second of :func:`pipeline.stages.detect.detect` (background,
   detection, seeing fit, smear-aware fits, apertures), and the machine's load;
-  the once-per-process load of the model's compiled loop is printed apart;
+  the once-per-process load of the model's and the fit's compiled loops is
+  printed apart;
 * completeness at S/N 5 and 10 and the spurious fraction;
 * position bias of stars with S/N > 50 in each tenth of the chip's width
   (across the scan);

@@ -178,8 +178,8 @@ class KernelGrid:
         ys, dx, dy = self._rows[int(np.argmin(np.abs(self.columns - x)))]
         if ys.size == 1:
             return dx[0], dy[0]
-        # Python's min/max on scalars: np.clip on a scalar cost 15 us a call,
-        # a quarter of a second over the benchmark's 17 000 lookups.
+        # Python's min/max on scalars: a lookup costs 9 us instead of 16 us with
+        # np.clip (least of 5), 0.12 s over the benchmark's 17 000 lookups.
         k = min(max(int(np.searchsorted(ys, y)) - 1, 0), ys.size - 2)
         t = min(max(float((y - ys[k]) / (ys[k + 1] - ys[k])), 0.0), 1.0)
         return (1 - t) * dx[k] + t * dx[k + 1], (1 - t) * dy[k] + t * dy[k + 1]
