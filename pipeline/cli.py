@@ -21,6 +21,9 @@ Examples
     zdrift status night.yaml --verify            # also check every product's SHA-256
     zdrift report night.yaml                     # rebuild the night's HTML report page
     zdrift nightly site.yaml /data/raw           # every new or incomplete night, with reports
+    zdrift mosaic strip.yaml                     # co-add the nights' science products
+    zdrift mosaic strip.yaml --status            # which tiles are done, stale or failed
+    zdrift mosaic strip.yaml --tiles 0-2 --force
 """
 
 from __future__ import annotations
@@ -97,7 +100,7 @@ def _parser() -> argparse.ArgumentParser:
     parser.add_argument("-v", "--verbose", action="count", default=0, help=verbose_help)
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    def command(name: str, help_text: str) -> argparse.ArgumentParser:
+    def command(name: str, help_text: str, what: str = "night") -> argparse.ArgumentParser:
         sub = commands.add_parser(
             name,
             help=help_text,
@@ -105,7 +108,7 @@ def _parser() -> argparse.ArgumentParser:
             epilog=EPILOG,
             formatter_class=argparse.RawDescriptionHelpFormatter,
         )
-        sub.add_argument("config", help="YAML config file of the night")
+        sub.add_argument("config", help=f"YAML config file of the {what}")
         sub.add_argument(
             "--set",
             dest="overrides",
@@ -195,6 +198,24 @@ def _parser() -> argparse.ArgumentParser:
     )
     simulate = command("simulate", "write a synthetic night of raw blocks (section 'simulate')")
     simulate.add_argument("--output", help="folder to write to (default: night.raw_dir)")
+    mosaic = command(
+        "mosaic",
+        "co-add nights' calibrated products on tiles, skipping up-to-date tiles",
+        what="mosaic",
+    )
+    mosaic.add_argument(
+        "--status",
+        action="store_true",
+        help="only show which tiles are done, stale, missing or failed (exit status as "
+        "for `zdrift status`)",
+    )
+    mosaic.add_argument(
+        "--tiles",
+        type=_stretch_list,
+        metavar="LIST",
+        help="tile indices to build, e.g. 0,3-5 (default all)",
+    )
+    mosaic.add_argument("--force", action="store_true", help="rebuild even up-to-date tiles")
     return parser
 
 
@@ -344,6 +365,52 @@ def _cmd_simulate(args: argparse.Namespace, config: Config) -> int:
     return EXIT_OK
 
 
+def _cmd_mosaic(args: argparse.Namespace, config) -> int:
+    from pipeline.runner import mosaic_dir, mosaic_status, run_mosaic
+
+    if args.status:
+        if args.tiles is not None or args.force:
+            print(
+                "zdrift mosaic: --status cannot be combined with --tiles or --force",
+                file=sys.stderr,
+            )
+            return EXIT_USAGE
+        with cli_logging(args.verbose):
+            try:
+                status = mosaic_status(config)
+            except (ConfigError, ValueError) as exc:  # a night's config, a night twice
+                print(f"zdrift mosaic: {exc}", file=sys.stderr)
+                return EXIT_USAGE
+        print(status.format())
+        if status.has_problems:
+            return EXIT_FAILED
+        return EXIT_OK if status.complete else EXIT_INCOMPLETE
+    folder = mosaic_dir(config)
+    stack = contextlib.ExitStack()
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        stack.enter_context(cli_logging(args.verbose, folder / LOG_NAME))
+    except OSError as exc:
+        print(f"zdrift mosaic: cannot write the mosaic's log: {exc}", file=sys.stderr)
+        return EXIT_CANNOT_START
+    with stack:
+        try:
+            report = run_mosaic(config, tiles=args.tiles, force=args.force, progress=TextProgress())
+        except RunLockedError as exc:
+            print(f"zdrift mosaic: {exc}", file=sys.stderr)
+            return EXIT_LOCKED
+        except RunStartError as exc:
+            print(f"zdrift mosaic: {exc}", file=sys.stderr)
+            return EXIT_CANNOT_START
+        except (ConfigError, ValueError) as exc:
+            print(f"zdrift mosaic: {exc}", file=sys.stderr)
+            return EXIT_USAGE
+    print(report.format())
+    if not report.ok:
+        print(f"details: {folder / LOG_NAME}", file=sys.stderr)
+    return EXIT_OK if report.ok else EXIT_FAILED
+
+
 _COMMANDS: dict[str, Callable[[argparse.Namespace, Config], int]] = {
     "run": _cmd_run,
     "status": _cmd_status,
@@ -351,6 +418,7 @@ _COMMANDS: dict[str, Callable[[argparse.Namespace, Config], int]] = {
     "plan": _cmd_plan,
     "simulate": _cmd_simulate,
     "report": _cmd_report,
+    "mosaic": _cmd_mosaic,
 }
 
 
@@ -375,8 +443,11 @@ def _main(args: Sequence[str] | None) -> int:
     options.verbose += options.verbose_after
     if options.command == "nightly":
         return _cmd_nightly(options)
+    load = load_config
+    if options.command == "mosaic":
+        from pipeline.mosaic import load_mosaic_config as load
     try:
-        config = load_config(options.config, options.overrides)
+        config = load(options.config, options.overrides)
     except ConfigError as exc:
         print(f"zdrift {options.command}: {exc}", file=sys.stderr)
         return EXIT_USAGE

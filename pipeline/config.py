@@ -79,12 +79,14 @@ __all__ = [
     "RENAMED_KEYS",
     "RENAMED_VALUES",
     "Config",
+    "ExecutorSection",
     "NightSection",
     "RunSection",
     "StrictModel",
     "apply_overrides",
     "config_from_mapping",
     "load_config",
+    "load_model",
     "night_config",
     "parse_override",
     "register_section",
@@ -164,11 +166,9 @@ class NightSection(StrictModel):
         return value
 
 
-class RunSection(StrictModel):
-    """How the runner splits and schedules the work (never what it computes)."""
+class ExecutorSection(StrictModel):
+    """Where the runner's units run (the ``run`` section of a mosaic; part of a night's)."""
 
-    stretch_rows: int = Field(4096, ge=1, description="night rows per stretch (scan axis)")
-    overlap_rows: int = Field(64, ge=0, description="margin rows on each side of a stretch")
     executor: Literal["local", "serial", "dask"] = "local"
     workers: int | None = Field(None, ge=1, description="processes; None: all cores")
     scheduler: str | None = Field(None, description="dask scheduler address, e.g. tcp://h:8786")
@@ -181,13 +181,20 @@ class RunSection(StrictModel):
         return data
 
     @model_validator(mode="after")
-    def _check_scheduler(self) -> RunSection:
+    def _check_scheduler(self) -> ExecutorSection:
         if self.scheduler and self.executor != "dask":
             raise ValueError(
                 f"scheduler {self.scheduler!r} is set but executor is {self.executor!r}; "
                 "remove one of them (a scheduler means executor 'dask')"
             )
         return self
+
+
+class RunSection(ExecutorSection):
+    """How the runner splits and schedules the work (never what it computes)."""
+
+    stretch_rows: int = Field(4096, ge=1, description="night rows per stretch (scan axis)")
+    overlap_rows: int = Field(64, ge=0, description="margin rows on each side of a stretch")
 
 
 # Limits the dataclasses do not check themselves; pydantic enforces them.
@@ -450,6 +457,37 @@ def night_config(
     }
     data, locations = apply_overrides(data, locations, overrides)
     return _validate(data, locations, graph_t, f"{path} (night {name})", path.absolute())
+
+
+def load_model(
+    path: str | Path, model: type[BaseModel], overrides: Iterable[str] = ()
+) -> BaseModel:
+    """Load a YAML file other than a night's (e.g. a mosaic's) into ``model``, as strictly.
+
+    The same rules as :func:`load_config`: ``extends``, relative paths
+    resolved against the folder of the file that sets them (also in lists of
+    paths), ``--set`` overrides, unknown keys and bad values reported with
+    the file, key path and line.
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+    model : type of pydantic.BaseModel
+        The file's model; declare ``extra='forbid'`` in it and its sections.
+    overrides : iterable of str
+        ``'dotted.key=value'`` strings applied last.
+
+    Raises
+    ------
+    ConfigError
+    """
+    path = Path(path)
+    data, locations = _load_tree(path.absolute(), (), _path_keys(model))
+    data, locations = apply_overrides(data, locations, overrides)
+    try:
+        return model.model_validate(data)
+    except ValidationError as exc:
+        raise ConfigError(_format_errors(exc, model, locations, str(path))) from None
 
 
 def config_from_mapping(
@@ -759,12 +797,19 @@ def _unwrap(annotation: Any) -> list[Any]:
     return [annotation]
 
 
+def _is_path_list(annotation: Any) -> bool:
+    """Whether ``annotation`` is ``tuple[Path, ...]`` or ``list[Path]``."""
+    return typing.get_origin(annotation) in (tuple, list) and typing.get_args(annotation)[:1] == (
+        Path,
+    )
+
+
 def _path_keys(model: type[BaseModel], prefix: KeyPath = ()) -> list[KeyPath]:
     """Key paths of every ``Path``-typed field in ``model``, recursively."""
     keys = []
     for name, info in model.model_fields.items():
         for member in _unwrap(info.annotation):
-            if member is Path:
+            if member is Path or _is_path_list(member):
                 keys.append((*prefix, name))
             elif isinstance(member, type) and issubclass(member, BaseModel):
                 keys.extend(_path_keys(member, (*prefix, name)))
@@ -777,10 +822,19 @@ def _resolve_paths(data: dict[str, Any], keys: Iterable[KeyPath], folder: Path) 
         node: Any = data
         for part in key[:-1]:
             node = node.get(part) if isinstance(node, dict) else None
-        if isinstance(node, dict) and isinstance(node.get(key[-1]), str):
-            value = Path(node[key[-1]]).expanduser()
-            # normpath: show users demo_products/, not configs/../demo_products/
-            node[key[-1]] = os.path.normpath(value if value.is_absolute() else folder / value)
+        if not isinstance(node, dict):
+            continue
+        value = node.get(key[-1])
+        if isinstance(value, str):
+            node[key[-1]] = _resolved(value, folder)
+        elif isinstance(value, list):  # a list of paths
+            node[key[-1]] = [_resolved(v, folder) if isinstance(v, str) else v for v in value]
+
+
+def _resolved(text: str, folder: Path) -> str:
+    value = Path(text).expanduser()
+    # normpath: show users demo_products/, not configs/../demo_products/
+    return os.path.normpath(value if value.is_absolute() else folder / value)
 
 
 # -------------------------------------------------------------------------- errors

@@ -67,7 +67,12 @@ from pipeline.masks import BIT_MEANINGS, MASK_DTYPE, MaskBit
 __all__ = [
     "FLAGS_EXTENSION",
     "FLUX_EXTENSION",
+    "NIGHT_ZERO_POINT_KEY",
+    "SEEING_KEY",
     "VARIANCE_EXTENSION",
+    "ZERO_POINT_ERROR_KEY",
+    "ZERO_POINT_FLAGS_KEY",
+    "ZERO_POINT_KEY",
     "ccddata_from_hdulist",
     "flag_bits_from_header",
     "flag_header",
@@ -80,6 +85,21 @@ __all__ = [
 FLUX_EXTENSION = "FLUX"
 VARIANCE_EXTENSION = "FLUXVAR"
 FLAGS_EXTENSION = "FLAGS"
+
+# Header keywords of a calibrated (science) image product, written by
+# pipeline.stages.science and read by the mosaic: one definition for both.
+#: The fixed zero point of the FLUX plane, mag: ``m = PHOTZP - 2.5 log10(sum of FLUX)``
+#: (the keyword of the ESO science data products standard, from memory).
+ZERO_POINT_KEY = "PHOTZP"
+#: Median zero point at which the stretch was recorded, mag for 1 e-/s (lower: less
+#: transparent); only differences between products matter.
+NIGHT_ZERO_POINT_KEY = "ZPMED"
+#: Largest 1-sigma error of the recorded zero point over the stretch, mag.
+ZERO_POINT_ERROR_KEY = "ZPERR"
+#: The stretch's zero-point quality bits (pipeline.stages.zeropoint.ZeroPointFlag).
+ZERO_POINT_FLAGS_KEY = "ZPFLAGS"
+#: Nominal seeing FWHM of the stretch, arcsec.
+SEEING_KEY = "SEEING"
 #: Keyword prefix of the flag-bit definitions (``FLAGBIT0`` ... ``FLAGBIT15``).
 _FLAG_PREFIX = "FLAGBIT"
 

@@ -184,8 +184,9 @@ def test_weighted_median_worked_examples():
 def test_night_image_from_an_image_product():
     wcs = night_wcs((20, 30))
     header = wcs.to_header()
-    header["ZEROPNT"] = 25.0
-    header["NIGHTZP"] = 24.6
+    # the cards the science stage writes
+    header["PHOTZP"] = 25.0
+    header["ZPMED"] = 24.6
     header["SEEING"] = 3.1
     header["NOISECOR"] = 1.4
     header["DATE-OBS"] = "2026-10-15T21:00:00"
@@ -201,8 +202,8 @@ def test_night_image_from_an_image_product():
     assert (night.zero_point, night.night_zero_point, night.seeing) == (25.0, 24.6, 3.1)
     assert night.noise_correlation == 1.4 and night.night == "2026-10-15"
     assert night.wcs.wcs.ctype[0] == "RA---CAR"
-    del hdul["FLUX"].header["ZEROPNT"]
-    with pytest.raises(ValueError, match="ZEROPNT"):
+    del hdul["FLUX"].header["PHOTZP"]
+    with pytest.raises(ValueError, match="PHOTZP"):
         night_image_from_hdulist(hdul)
 
 

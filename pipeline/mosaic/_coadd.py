@@ -56,7 +56,14 @@ from pipeline.mosaic._options import CoaddOptions
 from pipeline.mosaic._resample import resample_to_tile
 from pipeline.mosaic._seams import extended_planes
 from pipeline.mosaic._tiles import Tile
-from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSION
+from pipeline.products import (
+    FLAGS_EXTENSION,
+    FLUX_EXTENSION,
+    NIGHT_ZERO_POINT_KEY,
+    SEEING_KEY,
+    VARIANCE_EXTENSION,
+    ZERO_POINT_KEY,
+)
 
 __all__ = [
     "NIGHT_ZERO_POINT_KEY",
@@ -73,15 +80,6 @@ __all__ = [
 ]
 
 log = logging.getLogger(__name__)
-
-#: Header keyword of a calibrated product's photometric zero point: the AB
-#: magnitude of one electron in its FLUX plane (one fixed value for the survey).
-ZERO_POINT_KEY = "ZEROPNT"
-#: Header keyword of the zero point the night measured before the common scale
-#: was applied (lower: less transparent).
-NIGHT_ZERO_POINT_KEY = "NIGHTZP"
-#: Header keyword of the product's seeing FWHM, arcsec.
-SEEING_KEY = "SEEING"
 
 
 @dataclass(frozen=True, eq=False)
@@ -133,15 +131,16 @@ def night_image_from_hdulist(hdul: fits.HDUList, night: str | None = None) -> Ni
     ----------
     hdul : astropy.io.fits.HDUList
         The product (:func:`pipeline.products.image_hdulist` layout) with
-        ``ZEROPNT`` and optionally ``NIGHTZP``, ``SEEING`` and ``NOISECOR``
-        on its FLUX plane.
+        ``PHOTZP`` and optionally ``ZPMED``, ``SEEING`` and ``NOISECOR``
+        on its FLUX plane: the science stage's calibrated product (the
+        keywords: :data:`pipeline.products.ZERO_POINT_KEY` and its neighbours).
     night : str or None
         Night label; None: the FLUX plane's ``DATE-OBS`` (its date part).
 
     Raises
     ------
     ValueError
-        A plane or ``ZEROPNT`` is missing.
+        A plane or ``PHOTZP`` is missing.
     """
     names = [hdu.name for hdu in hdul]
     missing = [n for n in (FLUX_EXTENSION, VARIANCE_EXTENSION, FLAGS_EXTENSION) if n not in names]
@@ -153,7 +152,7 @@ def night_image_from_hdulist(hdul: fits.HDUList, night: str | None = None) -> Ni
     if ZERO_POINT_KEY not in header:
         raise ValueError(
             f"the product has no {ZERO_POINT_KEY} card: mosaics combine calibrated products "
-            "(run the zero-point calibration first)."
+            "(run the science stage first)."
         )
     if night is None:
         night = str(header.get("DATE-OBS", ""))[:10]

@@ -38,6 +38,7 @@ from pipeline.config import Config
 from pipeline.runner._access import open_product, product_path, read_image
 from pipeline.runner._executors import Executor, make_executor
 from pipeline.runner._lock import BROKEN_LOCK_AGE, RunLock, pid_alive, read_lock
+from pipeline.runner._mosaic import MosaicStatus, mosaic_dir, mosaic_status, run_mosaic
 from pipeline.runner._night import NightStore, format_ids, night_dir, unit_id
 from pipeline.runner._nightly import (
     NIGHT_CONFIG_NAME,
@@ -56,6 +57,7 @@ __all__ = [
     "LOG_NAME",
     "NIGHT_CONFIG_NAME",
     "REPORT_PAGE",
+    "MosaicStatus",
     "NightOutcome",
     "NightStatus",
     "Progress",
@@ -65,6 +67,8 @@ __all__ = [
     "describe_lock",
     "find_nights",
     "format_ids",
+    "mosaic_dir",
+    "mosaic_status",
     "night_dir",
     "night_status",
     "no_progress",
@@ -74,6 +78,7 @@ __all__ = [
     "read_image",
     "reduce_night",
     "report_page",
+    "run_mosaic",
     "run_night",
     "select_stages",
 ]
@@ -179,6 +184,8 @@ class RunReport:
     stale_downstream: dict[str, list[str]] = field(default_factory=dict)
     #: One line per damaged product found (and recomputed) during the run.
     damaged: list[str] = field(default_factory=list)
+    #: What was run: ``'night'``, or ``'mosaic'`` (:func:`run_mosaic`, units are tiles).
+    kind: str = "night"
 
     @property
     def ok(self) -> bool:
@@ -203,7 +210,7 @@ class RunReport:
     def format(self) -> str:
         """A human-readable summary."""
         summary = (
-            f"night {self.night}: {self.count('ran')} units ran, {self.count('skipped')} up "
+            f"{self.kind} {self.night}: {self.count('ran')} units ran, {self.count('skipped')} up "
             f"to date, {self.count('failed')} failed, {self.count('blocked')} blocked"
         )
         n_problems = sum(len(r.problems) for r in self.results)

@@ -141,12 +141,17 @@ def _product_kind(name: str, value: Any) -> str:
         return "json"
     if isinstance(value, str):
         return "html"
+    if isinstance(value, bytes) and value.startswith(PNG_SIGNATURE):
+        return "png"
     raise TypeError(
         f"Product {name!r} has unsupported type {type(value).__name__}; return a "
         "numpy array, an astropy.io.fits HDU or HDUList, an astropy Table, a dict/list, "
-        "or a str (an HTML page)."
+        "a str (an HTML page) or the bytes of a PNG image."
     )
 
+
+#: First bytes of every PNG file (the PNG specification, section 5.2).
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
 _SUFFIX = {
     "array": ".fits",
@@ -155,6 +160,7 @@ _SUFFIX = {
     "table": ".ecsv",
     "json": ".json",
     "html": ".html",
+    "png": ".png",
 }
 
 
@@ -183,6 +189,8 @@ def _writer(kind: str, value: Any, cards: Mapping[str, tuple[Any, str]]) -> Call
         return lambda temp: value.write(temp, format="ascii.ecsv")
     if kind == "html":
         return lambda temp: temp.write_text(value, encoding="utf-8")
+    if kind == "png":
+        return lambda temp: temp.write_bytes(value)
     text = _json_text(value)
     return lambda temp: temp.write_text(text, encoding="utf-8")
 
@@ -259,6 +267,8 @@ def read_product(path: Path, entry: Mapping[str, Any]) -> Any:
         return _read_ecsv(path, cls)
     if kind == "html":
         return path.read_text(encoding="utf-8")
+    if kind == "png":
+        return path.read_bytes()
     return json.loads(path.read_text(encoding="utf-8"))
 
 

@@ -11,14 +11,16 @@ on every pixel of a stretch whose zero point the zeropoint stage flagged.
 The solved WCS of astrometry's ``wcs`` product replaces rectify's nominal
 one (the alternate ``NIGHT`` grid stays).
 
-Header cards (FLUX, FLUXVAR, FLAGS and primary):
+Header cards (FLUX, FLUXVAR, FLAGS and primary; the keywords are defined once,
+in :mod:`pipeline.products`, for this stage and the mosaic that reads them):
 
 ``PHOTZP``
     The fixed zero point, mag: ``m = PHOTZP - 2.5 log10(sum of FLUX)``
     (the keyword of the ESO science data products standard, from memory).
-``ZPMIN``, ``ZPMAX``, ``ZPERR``
-    Range of the zero point at which the stretch was recorded (mag for
-    1 e-/s) and its largest 1-sigma error, mag.
+``ZPMIN``, ``ZPMAX``, ``ZPMED``, ``ZPERR``
+    Range and median of the zero point at which the stretch was recorded
+    (mag for 1 e-/s; the mosaic compares nights' transparency by ``ZPMED``)
+    and its largest 1-sigma error, mag.
 ``ZPFLAGS``, ``ZPINTERP``
     The stretch's :class:`~pipeline.stages.zeropoint.ZeroPointFlag` bits and
     whether its zero point was bridged from its neighbours.
@@ -45,7 +47,12 @@ from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.products import (
     FLAGS_EXTENSION,
     FLUX_EXTENSION,
+    NIGHT_ZERO_POINT_KEY,
+    SEEING_KEY,
     VARIANCE_EXTENSION,
+    ZERO_POINT_ERROR_KEY,
+    ZERO_POINT_FLAGS_KEY,
+    ZERO_POINT_KEY,
     flag_header,
 )
 from pipeline.stages.base import BLOCK_INDEX, Stage
@@ -195,15 +202,18 @@ def _run(*, inputs, options: ScienceOptions, context) -> dict:
     fwhm_px = float(_values(seeing, "fwhm")[0])  # first row: the whole stretch
     scale = 3600.0 * abs(float(flux_header.get("CDELT2", np.nan)))
     cards = [
-        ("PHOTZP", target, "[mag] m = PHOTZP - 2.5 log10(sum of FLUX)"),
+        (ZERO_POINT_KEY, target, "[mag] m = PHOTZP - 2.5 log10(sum of FLUX)"),
         ("ZPMIN", round(float(np.min(z)), 5), "[mag] lowest zero point recorded (1 e-/s)"),
         ("ZPMAX", round(float(np.max(z)), 5), "[mag] highest zero point recorded (1 e-/s)"),
-        ("ZPERR", round(float(np.max(z_err)), 5), "[mag] largest error of the zero point"),
-        ("ZPFLAGS", flags, "zero point: 1 cloud, 2 scatter, 4 few stars"),
+        (NIGHT_ZERO_POINT_KEY, round(float(np.median(z)), 5), "[mag] median zero point (1 e-/s)"),
+        (ZERO_POINT_ERROR_KEY, round(float(np.max(z_err)), 5), "[mag] largest zero point error"),
+        (ZERO_POINT_FLAGS_KEY, flags, "zero point: 1 cloud, 2 scatter, 4 few stars"),
         ("ZPINTERP", interpolated, "zero point bridged from neighbouring stretches"),
     ]
     if np.isfinite(fwhm_px * scale):  # detect may find no star to fit the seeing with
-        cards.append(("SEEING", round(fwhm_px * scale, 3), "[arcsec] nominal seeing FWHM (detect)"))
+        cards.append(
+            (SEEING_KEY, round(fwhm_px * scale, 3), "[arcsec] nominal seeing FWHM (detect)")
+        )
 
     hdul = fits.HDUList([rectified[0].copy()])
     for name, data in (
@@ -232,5 +242,6 @@ STAGE = Stage(
     requires=("ingest", "rectify", "detect", "astrometry", "zeropoint"),
     scope="stretch",
     uses=("camera.tdi_rows",),
+    version=2,  # 2: the ZPMED card, by which the mosaic compares transparency
     description="Calibrated images at one fixed zero point, with the solved WCS.",
 )

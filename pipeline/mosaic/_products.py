@@ -1,0 +1,218 @@
+"""A finished tile's products: its FITS file, catalogue, night table and quick look.
+
+Pure functions of a :class:`~pipeline.mosaic.MosaicTile`; the runner writes
+what they return (:mod:`pipeline.runner._mosaic`).
+
+The tile's FITS file (:func:`tile_hdulist`) holds four image extensions on
+the tile's WCS: ``IMAGE`` (counts on the scale of ``PHOTZP``), ``WEIGHT``
+(inverse predicted pixel variance), ``COVERAGE`` (nights kept per pixel) and
+``FLAGS`` (:class:`~pipeline.masks.MaskBit`).  Its primary header carries the
+zero point (``PHOTZP``), the nights co-added (``NIGHTn``), every input
+product with its SHA-256 (``INPUTn``, ``INHASHn``) and the mosaic config
+(``MOSCONF``, JSON in a long-string card).
+"""
+
+from __future__ import annotations
+
+import io
+import json
+from collections.abc import Mapping, Sequence
+
+import numpy as np
+from astropy import units as u
+from astropy.io import fits
+from astropy.table import QTable, Table
+
+from pipeline.masks import MASK_DTYPE
+from pipeline.mosaic._coadd import MosaicTile, NightImage
+from pipeline.products import FLAGS_EXTENSION, ZERO_POINT_KEY, flag_header
+
+__all__ = [
+    "TILE_EXTENSIONS",
+    "night_table",
+    "quicklook_png",
+    "tile_catalog",
+    "tile_hdulist",
+]
+
+#: Extension names of a tile's FITS file, in order after the primary HDU.
+TILE_EXTENSIONS = ("IMAGE", "WEIGHT", "COVERAGE", FLAGS_EXTENSION)
+
+#: 2.5 / ln(10): magnitude error of a relative flux error (common practice).
+_MAG_PER_LN = 2.5 / np.log(10.0)
+
+
+def tile_hdulist(
+    tile: MosaicTile,
+    inputs: Sequence[tuple[str, str]] = (),
+    config: Mapping | None = None,
+) -> fits.HDUList:
+    """The tile's planes as one FITS file with a standard WCS on every plane.
+
+    Parameters
+    ----------
+    tile : MosaicTile
+    inputs : sequence of (str, str)
+        ``(label, sha256)`` of every input product (e.g. ``'2026-10-15/s0003'``).
+    config : mapping, optional
+        The mosaic config (JSON-able), stored in the primary header.
+
+    Returns
+    -------
+    astropy.io.fits.HDUList
+    """
+    header = tile.header()
+    primary = fits.PrimaryHDU(header=header)
+    primary.header["NINPUTS"] = (len(inputs), "input products (science stretches)")
+    for i, (label, digest) in enumerate(inputs, start=1):
+        primary.header[f"INPUT{i}"] = (label, "input product: night/stretch")
+        primary.header[f"INHASH{i}"] = digest
+    if config is not None:
+        primary.header["MOSCONF"] = json.dumps(config, sort_keys=True, separators=(",", ":"))
+    planes = tile.planes
+    weight_unit = (1 / u.ct**2).to_string()
+    hdul = fits.HDUList([primary])
+    for name, data, unit in (
+        ("IMAGE", planes.image, u.ct.to_string()),
+        ("WEIGHT", planes.weight, weight_unit),
+        ("COVERAGE", planes.coverage, None),
+        (FLAGS_EXTENSION, planes.flags.astype(MASK_DTYPE), None),
+    ):
+        hdu = fits.ImageHDU(data=data, header=header.copy(), name=name)
+        if unit is not None:
+            hdu.header["BUNIT"] = unit
+        hdul.append(hdu)
+    hdul[FLAGS_EXTENSION].header.update(flag_header())
+    return hdul
+
+
+def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
+    """Sources detected and measured on the co-add, with calibrated magnitudes.
+
+    The detect stage's :func:`~pipeline.stages.detect.detect` with round
+    stars (``deconvolved=True``: the co-add of resampled, rectified nights
+    carries no TDI smear kernel), on the variance ``1 / weight``.
+
+    Parameters
+    ----------
+    tile : MosaicTile
+    **detect_options
+        :class:`~pipeline.stages.detect.DetectOptions` fields.
+
+    Returns
+    -------
+    astropy.table.QTable
+        detect's columns (``x``, ``y`` in tile pixels, ``ra``, ``dec`` from
+        the tile's WCS, ``flux_psf`` in counts of the zero point, ...) plus
+        ``mag`` and ``mag_err`` (``PHOTZP - 2.5 log10(flux_psf)``; NaN for a
+        flux <= 0).
+    """
+    from pipeline.stages.detect import detect
+
+    planes = tile.planes
+    weight = np.asarray(planes.weight, float)
+    variance = np.where(weight > 0, 1.0 / np.where(weight > 0, weight, 1.0), np.nan)
+    point = Table({"x": [0.0], "y": [0.0], "dx": [[0.0]], "dy": [[0.0]]})
+    result = detect(
+        planes.image,
+        variance,
+        planes.flags,
+        point,
+        wcs=tile.tile.wcs,
+        noise_correlation=max(1.0, tile.noise_correlation),
+        deconvolved=True,
+        **detect_options,
+    )
+    catalog = result.catalog
+    flux = np.asarray(catalog["flux_psf"].value, float)
+    error = np.asarray(catalog["flux_psf_err"].value, float)
+    positive = flux > 0
+    safe = np.where(positive, flux, 1.0)
+    catalog["mag"] = np.where(positive, tile.zero_point - 2.5 * np.log10(safe), np.nan) * u.mag
+    catalog["mag_err"] = np.where(positive, _MAG_PER_LN * error / safe, np.nan) * u.mag
+    catalog["mag"].info.description = f"{ZERO_POINT_KEY} - 2.5 log10(flux_psf)"
+    catalog["mag_err"].info.description = "1-sigma error of mag"
+    catalog["x"].info.description = "tile column (0-based)"
+    catalog["y"].info.description = "tile row (0-based)"
+    catalog.meta[ZERO_POINT_KEY] = tile.zero_point
+    catalog.meta["tile"] = tile.tile.name
+    catalog.meta["problems"] = list(result.problems)
+    return catalog
+
+
+def night_table(products: Sequence[NightImage], tile: MosaicTile) -> Table:
+    """One row per night offered to the tile: its seeing, transparency and fate.
+
+    What a report needs to draw the mosaic's nights: ``seeing`` (arcsec,
+    NaN: unknown), ``zero_point`` (the transparency zero point, mag),
+    ``used`` (co-added), ``rejected`` (pixels rejected as outliers),
+    ``offset`` (level subtracted, counts) and ``reason`` (why it was left
+    out, empty if used).
+    """
+    nights = list(dict.fromkeys(p.night for p in products))
+    reasons = {products[i].night: why for i, why in tile.excluded.items()}
+    used = {night: k for k, night in enumerate(tile.nights)}
+    rows = []
+    for night in nights:
+        own = [p for p in products if p.night == night]
+        seeing = [p.seeing for p in own if p.seeing is not None]
+        k = used.get(night)
+        rows.append(
+            (
+                night,
+                float(np.median(seeing)) if seeing else np.nan,
+                float(np.median([p.transparency_zero_point for p in own])),
+                k is not None,
+                int(tile.planes.rejected[k]) if k is not None else 0,
+                float(tile.planes.offsets[k]) if k is not None else 0.0,
+                "" if k is not None else reasons.get(night, "does not reach the tile"),
+            )
+        )
+    table = Table(
+        rows=rows or None,
+        names=("night", "seeing", "zero_point", "used", "rejected", "offset", "reason"),
+        dtype=(str, float, float, bool, np.int64, float, str),
+    )
+    table["seeing"].unit = u.arcsec
+    table["zero_point"].unit = u.mag
+    table["offset"].unit = u.ct
+    table.meta["tile"] = tile.tile.name
+    return table
+
+
+def quicklook_png(image: np.ndarray, *, dpi: int = 100) -> bytes:
+    """A quick-look PNG of a co-add: asinh stretch between the 0.5 and 99.5 percentiles.
+
+    Parameters
+    ----------
+    image : ndarray, shape (n_y, n_x)
+        NaN where there is no data (drawn black).
+    dpi : int
+        One image pixel per PNG pixel at this resolution.
+
+    Returns
+    -------
+    bytes
+        The PNG file's content (no time stamp: the same image gives the same bytes).
+    """
+    from astropy.visualization import AsinhStretch, ImageNormalize, PercentileInterval
+    from matplotlib.figure import Figure
+
+    data = np.asarray(image, float)
+    finite = data[np.isfinite(data)]
+    n_y, n_x = data.shape
+    fig = Figure(figsize=(n_x / dpi, n_y / dpi), dpi=dpi)
+    axes = fig.add_axes((0, 0, 1, 1))
+    axes.set_axis_off()
+    if finite.size:
+        norm = ImageNormalize(finite, interval=PercentileInterval(99.0), stretch=AsinhStretch())
+        axes.imshow(
+            np.nan_to_num(data, nan=float(np.min(finite))),
+            origin="lower",
+            cmap="gray",
+            norm=norm,
+            interpolation="nearest",
+        )
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", dpi=dpi, metadata={"Software": None})
+    return buffer.getvalue()

@@ -1,0 +1,88 @@
+"""One tile of a mosaic as a runner unit: the stage the runner ships to its workers.
+
+The runner (:mod:`pipeline.runner._mosaic`) plans the tiles, finds the
+science products touching each and hands them over as ``inputs['science']``
+(one mapping per product, its ``image`` an HDUList), with a
+:class:`TileContext`; :data:`TILE_STAGE` returns the tile's products.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+from pydantic import BaseModel, ConfigDict, Field
+
+from pipeline.mosaic._coadd import mosaic_tile, night_image_from_hdulist
+from pipeline.mosaic._options import CoaddOptions
+from pipeline.mosaic._products import night_table, quicklook_png, tile_catalog, tile_hdulist
+from pipeline.mosaic._tiles import Tile
+from pipeline.stages.base import PROBLEMS, Stage
+from pipeline.stages.detect import DetectOptions
+
+__all__ = ["TILE_STAGE", "TileContext", "TileOptions"]
+
+#: Name of the science stage, whose ``image`` products mosaics combine.
+SCIENCE = "science"
+
+
+class TileOptions(BaseModel):
+    """What a tile's products depend on besides its inputs and its placement."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    coadd: CoaddOptions = Field(default_factory=CoaddOptions)
+    detect: DetectOptions = Field(default_factory=DetectOptions)
+
+
+@dataclass(frozen=True)
+class TileContext:
+    """What a tile's unit knows besides its inputs and options.
+
+    Attributes
+    ----------
+    night : str
+        The mosaic's name (the runner records it where a night's units record the night).
+    tile : Tile
+    inputs : tuple of (str, str, str)
+        ``(night, unit, sha256)`` of each input product, in the order of
+        ``inputs['science']``.
+    config : mapping
+        The mosaic config (JSON-able) for the tile's header.
+    """
+
+    night: str
+    tile: Tile
+    inputs: tuple[tuple[str, str, str], ...] = ()
+    config: Mapping[str, Any] = field(default_factory=dict)
+    stretch: None = None
+
+
+def _run(*, inputs, options: TileOptions, context: TileContext) -> dict:
+    products = [
+        night_image_from_hdulist(unit["image"], night=night)
+        for unit, (night, _, _) in zip(inputs[SCIENCE], context.inputs, strict=True)
+    ]
+    tile = mosaic_tile(products, context.tile, options.coadd)
+    labels = [(f"{night}/{unit}", digest) for night, unit, digest in context.inputs]
+    catalog = tile_catalog(tile, **options.detect.model_dump())
+    return {
+        "tile": tile_hdulist(tile, labels, context.config),
+        "catalog": catalog,
+        "nights": night_table(products, tile),
+        "quicklook": quicklook_png(tile.planes.image),
+        PROBLEMS: list(catalog.meta.pop("problems", [])),
+    }
+
+
+#: The unit of a mosaic: one tile from the science products that touch it.
+TILE_STAGE = Stage(
+    name="tiles",
+    run=_run,
+    options=TileOptions,
+    requires=(SCIENCE,),
+    scope="night",
+    uses=(),
+    description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
+)

@@ -1,0 +1,276 @@
+"""Mosaics through the runner: config, tiles as units, reruns, executors, products, CLI."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+import yaml
+from astropy.io import fits
+from astropy.table import QTable, Table
+from astropy.wcs import WCS
+
+from pipeline.cli import EXIT_FAILED, EXIT_INCOMPLETE, EXIT_OK, EXIT_USAGE, main
+from pipeline.exceptions import ConfigError
+from pipeline.mosaic import TILE_EXTENSIONS, load_mosaic_config, night_image_from_hdulist
+from pipeline.runner import mosaic_dir, mosaic_status, run_mosaic
+from pipeline.runner._store import PNG_SIGNATURE, read_sidecar
+from tests._mosaic_nights import (
+    DEC,
+    NIGHTS,
+    PHOTZP,
+    STARS,
+    TILE_SIZE,
+    ra_of,
+    tiling,
+    write_nights,
+    write_science,
+)
+
+#: Detection on 48-pixel tiles: a background mesh and filter bands that fit in them.
+DETECT = {"background_box": 16, "filter_band": 16}
+
+
+@pytest.fixture(scope="module")
+def nights(tmp_path_factory):
+    """The five nights' product folders (written once; tests that change one copy them)."""
+    return write_nights(tmp_path_factory.mktemp("products"))
+
+
+def write_config(folder, nights, run=None, **sections) -> str:
+    data = {
+        "mosaic": {"name": "strip", "output_dir": "out", "nights": [str(p) for p in nights]},
+        "tiling": tiling(),
+        "detect": DETECT,
+        "run": run or {"executor": "serial"},
+        **sections,
+    }
+    path = folder / "mosaic.yaml"
+    path.write_text(yaml.safe_dump(data, sort_keys=False))
+    return str(path)
+
+
+def ran(report) -> list[str]:
+    return sorted(r.unit for r in report.results if r.status == "ran")
+
+
+def product_digests(config) -> dict[str, dict[str, str]]:
+    folder = mosaic_dir(config) / "tiles"
+    return {
+        unit.name: {n: e["sha256"] for n, e in read_sidecar(unit)["products"].items()}
+        for unit in sorted(folder.iterdir())
+    }
+
+
+# ------------------------------------------------------------------------ the config
+
+
+def test_a_mosaic_config_resolves_paths_against_its_file(tmp_path, nights):
+    config = load_mosaic_config(write_config(tmp_path, nights), ["coadd.max_seeing=3"])
+    assert config.mosaic.output_dir == tmp_path / "out"
+    assert config.mosaic.nights == tuple(nights)
+    assert config.coadd.max_seeing == 3.0 and config.detect.background_box == 16
+    assert len(config.tiling.tiles) == 3
+
+
+@pytest.mark.parametrize(
+    ("change", "match"),
+    [
+        ({"tiling": {**tiling(), "tile_widht": 64}}, r"tiling\.tile_widht: unknown key; did you"),
+        ({"coadd": {"max_seeing": -1}}, r"coadd\.max_seeing: .*greater than 0"),
+        ({"coadd": {"ignore_flags": ["SATURATD"]}}, r"unknown flag name"),
+        ({"detect": {"threshold_sgima": 5}}, r"detect\.threshold_sgima: unknown key"),
+        ({"run": {"executor": "local", "scheduler": "tcp://h:1"}}, r"scheduler .* is set"),
+        ({"tiling": {**tiling(), "tiles": []}}, r"layout 'explicit' needs at least one"),
+        ({"mosaic": {"name": "strip", "output_dir": "out"}}, r"mosaic\.nights: missing"),
+        ({"extra": 1}, r"extra: unknown key"),
+    ],
+)
+def test_mistakes_in_a_mosaic_config_are_errors_that_say_where(tmp_path, nights, change, match):
+    path = tmp_path / "mosaic.yaml"
+    data = yaml.safe_load(Path(write_config(tmp_path, nights)).read_text())
+    path.write_text(yaml.safe_dump({**data, **change}, sort_keys=False))
+    with pytest.raises(ConfigError, match=match) as info:
+        load_mosaic_config(path)
+    assert str(path) in str(info.value)  # the file (and line) of the mistake
+
+
+def test_nights_must_exist_and_be_configs_or_folders(tmp_path, nights):
+    (tmp_path / "notes.txt").write_text("x")
+    for entry, match in [
+        (tmp_path / "nowhere", "no such night config or product folder"),
+        (tmp_path / "notes.txt", "is a .yaml/.yml config or a product folder"),
+        (nights[0], "nights listed twice"),
+    ]:
+        path = write_config(tmp_path, [*nights, entry])
+        with pytest.raises(ConfigError, match=match):
+            load_mosaic_config(path)
+    assert main(["mosaic", path]) == EXIT_USAGE
+
+
+# ------------------------------------------------------------ runs, reruns, executors
+
+
+def test_a_rerun_skips_the_tiles_and_a_changed_night_reruns_only_the_tiles_it_touches(
+    tmp_path, nights
+):
+    # a copy of the folders: one night's product is rewritten below
+    import shutil
+
+    copies = []
+    for folder in nights:
+        shutil.copytree(folder, tmp_path / "products" / folder.name)
+        copies.append(tmp_path / "products" / folder.name)
+    config = load_mosaic_config(write_config(tmp_path, copies))
+    first = run_mosaic(config)
+    assert first.ok, first.format()
+    assert ran(first) == ["tile000", "tile001", "tile002"]
+    again = run_mosaic(config)
+    assert ran(again) == [] and again.count("skipped") == 3
+    assert mosaic_status(config).complete
+    # night n3's second stretch (only tile002's) changes: only tile002 is rebuilt
+    write_science(tmp_path / "products", NIGHTS[2], "s0001", bump=5.0)
+    status = mosaic_status(config)
+    assert status.tiles["tile002"] == ("stale", "inputs changed: n3/s0001")
+    assert [status.tiles[t][0] for t in ("tile000", "tile001")] == ["done", "done"]
+    assert ran(run_mosaic(config)) == ["tile002"]
+    # a changed co-add option changes every tile
+    changed = load_mosaic_config(config_path := write_config(tmp_path, copies), ["coadd.grow=2"])
+    assert {s for s, _ in mosaic_status(changed).tiles.values()} == {"stale"}
+    assert main(["mosaic", config_path, "--status"]) == EXIT_OK
+    assert main(["mosaic", config_path, "--status", "--set", "coadd.grow=2"]) == EXIT_INCOMPLETE
+    assert main(["mosaic", config_path, "--tiles", "1", "--set", "coadd.grow=2"]) == EXIT_OK
+    assert mosaic_status(changed).tiles["tile001"][0] == "done"
+
+
+@pytest.fixture(scope="module")
+def dask_cluster():
+    distributed = pytest.importorskip("distributed")
+    cluster = distributed.LocalCluster(
+        n_workers=2,
+        threads_per_worker=1,
+        processes=True,
+        host="127.0.0.1",
+        # a random loopback port, not 8787, so that another cluster cannot clash
+        dashboard_address="127.0.0.1:0",
+        scheduler_kwargs={"dashboard": False},
+    )
+    yield cluster
+    cluster.close()
+
+
+def test_three_tiles_of_five_nights_on_dask_are_identical_to_the_local_pool(
+    tmp_path, nights, dask_cluster
+):
+    digests = {}
+    for name, run in [
+        ("pool", {"executor": "local", "workers": 2}),
+        ("dask", {"scheduler": dask_cluster.scheduler_address}),
+    ]:
+        (tmp_path / name).mkdir()
+        config = load_mosaic_config(write_config(tmp_path / name, nights, run=run))
+        report = run_mosaic(config)
+        assert report.ok, report.format()
+        assert ran(report) == ["tile000", "tile001", "tile002"]
+        digests[name] = product_digests(config)
+    # every product file (FITS, catalogue, night table, PNG) byte for byte
+    assert digests["dask"] == digests["pool"]
+
+
+# ------------------------------------------------------------------- the products
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory, nights):
+    folder = tmp_path_factory.mktemp("built")
+    config = load_mosaic_config(write_config(folder, nights))
+    report = run_mosaic(config)
+    assert report.ok, report.format()
+    return config
+
+
+def test_a_tile_file_has_its_planes_wcs_zero_point_inputs_and_config(built):
+    with fits.open(mosaic_dir(built) / "tiles" / "tile002" / "tile.fits") as hdul:
+        assert [h.name for h in hdul[1:]] == list(TILE_EXTENSIONS)
+        primary = hdul[0].header
+        assert primary["PHOTZP"] == PHOTZP and primary["NNIGHTS"] == len(NIGHTS)
+        # tile002 is touched by the second stretch of every night only
+        assert [primary[f"INPUT{i + 1}"] for i in range(primary["NINPUTS"])] == [
+            f"{night[0]}/s0001" for night in NIGHTS
+        ]
+        assert json.loads(primary["MOSCONF"])["detect"]["background_box"] == 16
+        for hdu in hdul[1:]:
+            assert hdu.data.shape == (TILE_SIZE, TILE_SIZE)
+            # FITS WCS standard (Calabretta & Greisen 2002): the tile centre is the
+            # centre given in the config
+            wcs = WCS(hdu.header)
+            ra, dec = wcs.pixel_to_world_values((TILE_SIZE - 1) / 2, (TILE_SIZE - 1) / 2)
+            assert (ra, dec) == pytest.approx((ra_of(50.0), DEC), abs=1e-9)
+        assert hdul["COVERAGE"].data.max() == len(NIGHTS)
+
+
+def test_the_tile_catalogues_hold_the_stars_at_their_magnitudes_and_positions(built):
+    for (x, y, mag), name in zip(STARS, ("tile000", "tile001", "tile002"), strict=True):
+        catalog = QTable.read(mosaic_dir(built) / "tiles" / name / "catalog.ecsv")
+        assert len(catalog) == 1
+        star = catalog[0]
+        # a single-profile fit to a co-add of nights in 1.6-3.5 arcsec seeing misses
+        # its shape by up to 4 % of the flux (measured on these tiles); S/N ~ 100
+        # adds 0.01 mag: 0.05 mag
+        assert star["mag"].value == pytest.approx(mag, abs=0.05)
+        # positions through the tile's WCS: within 0.05 arcsec at S/N ~ 100 (its
+        # centroid error is ~ FWHM / S/N = 0.02 arcsec)
+        assert star["ra"].value == pytest.approx(ra_of(x), abs=0.05 / 3600 / np.cos(0.87))
+        assert star["dec"].value == pytest.approx(DEC + y / 3600, abs=0.05 / 3600)
+
+
+def test_the_night_table_and_quick_look_of_a_tile(built):
+    folder = mosaic_dir(built) / "tiles" / "tile000"
+    nights = Table.read(folder / "nights.ecsv")
+    assert list(nights["night"]) == [n[0] for n in NIGHTS]
+    assert list(nights["seeing"]) == [n[1] for n in NIGHTS]
+    assert all(nights["used"])
+    png = (folder / "quicklook.png").read_bytes()
+    assert png.startswith(PNG_SIGNATURE)
+    # PNG specification, section 11.2.2: IHDR holds width then height, big-endian
+    assert int.from_bytes(png[16:20], "big") == TILE_SIZE
+    assert int.from_bytes(png[20:24], "big") == TILE_SIZE
+
+
+def test_nights_beyond_the_seeing_limit_are_left_out_and_listed(tmp_path, nights):
+    config = load_mosaic_config(write_config(tmp_path, nights), ["coadd.max_seeing=3.0"])
+    report = run_mosaic(config, tiles=[1])
+    assert report.ok and ran(report) == ["tile001"]
+    folder = mosaic_dir(config) / "tiles" / "tile001"
+    table = Table.read(folder / "nights.ecsv")
+    left_out = table[~table["used"]]
+    assert list(left_out["night"]) == ["n5"] and "max_seeing" in left_out["reason"][0]
+    assert fits.getheader(folder / "tile.fits")["NNIGHTS"] == len(NIGHTS) - 1
+
+
+def test_a_night_with_failed_science_is_a_problem_of_the_run(tmp_path, nights):
+    import shutil
+
+    broken = tmp_path / "products" / "n9"
+    shutil.copytree(nights[0], broken)
+    (broken / "science" / "s0001" / "_failed.json").write_text('{"reason": "boom"}')
+    config = load_mosaic_config(write_config(tmp_path, [*nights[1:], broken]))
+    report = run_mosaic(config, tiles=[0])
+    assert not report.ok
+    assert "n9: science s0001 left out (boom)" in report.format()
+    assert main(["mosaic", write_config(tmp_path, [*nights[1:], broken]), "--status"]) == (
+        EXIT_FAILED
+    )
+
+
+def test_the_mosaic_reads_the_science_stages_header_cards():
+    from tests.test_zeropoint_stage import _science
+
+    hdul = _science(1, 24.0)
+    night = night_image_from_hdulist(hdul, night="n1")
+    header = hdul["FLUX"].header
+    assert night.zero_point == header["PHOTZP"]
+    assert night.night_zero_point == header["ZPMED"]
+    assert night.seeing == header["SEEING"]
