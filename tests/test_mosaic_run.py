@@ -16,7 +16,7 @@ from astropy.wcs import WCS
 from pipeline.cli import EXIT_FAILED, EXIT_INCOMPLETE, EXIT_OK, EXIT_USAGE, main
 from pipeline.exceptions import ConfigError
 from pipeline.mosaic import TILE_EXTENSIONS, load_mosaic_config, night_image_from_hdulist
-from pipeline.runner import mosaic_dir, mosaic_status, run_mosaic
+from pipeline.runner import mosaic_dir, mosaic_nights, mosaic_status, run_mosaic
 from pipeline.runner._store import PNG_SIGNATURE, read_sidecar
 from tests._mosaic_nights import (
     DEC,
@@ -138,6 +138,10 @@ def test_a_rerun_skips_the_tiles_and_a_changed_night_reruns_only_the_tiles_it_to
     assert status.tiles["tile002"] == ("stale", "inputs changed: n3/s0001")
     assert [status.tiles[t][0] for t in ("tile000", "tile001")] == ["done", "done"]
     assert ran(run_mosaic(config)) == ["tile002"]
+    # a run killed while writing tile001 left no sidecar: the next run resumes there
+    (mosaic_dir(config) / "tiles" / "tile001" / "_provenance.json").unlink()
+    assert mosaic_status(config).tiles["tile001"] == ("missing", "")
+    assert ran(run_mosaic(config)) == ["tile001"]
     # a changed co-add option changes every tile
     changed = load_mosaic_config(config_path := write_config(tmp_path, copies), ["coadd.grow=2"])
     assert {s for s, _ in mosaic_status(changed).tiles.values()} == {"stale"}
@@ -226,6 +230,13 @@ def test_the_tile_catalogues_hold_the_stars_at_their_magnitudes_and_positions(bu
         # centroid error is ~ FWHM / S/N = 0.02 arcsec)
         assert star["ra"].value == pytest.approx(ra_of(x), abs=0.05 / 3600 / np.cos(0.87))
         assert star["dec"].value == pytest.approx(DEC + y / 3600, abs=0.05 / 3600)
+
+
+def test_the_night_tables_of_every_tile_for_a_report(built):
+    table = mosaic_nights(built)
+    assert len(table) == 3 * len(NIGHTS)
+    assert list(table["tile"][:: len(NIGHTS)]) == ["tile000", "tile001", "tile002"]
+    assert set(table["night"]) == {n[0] for n in NIGHTS}
 
 
 def test_the_night_table_and_quick_look_of_a_tile(built):

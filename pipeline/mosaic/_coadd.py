@@ -474,7 +474,7 @@ class MosaicTile:
     def header(self) -> fits.Header:
         """The tile's WCS and the mosaic's cards (zero point, nights, noise factor)."""
         header = self.tile.wcs.to_header()
-        header[ZERO_POINT_KEY] = (self.zero_point, "[mag] magnitude of 1 electron")
+        header[ZERO_POINT_KEY] = (self.zero_point, "[mag] m = PHOTZP - 2.5 log10(sum of IMAGE)")
         header["NOISECOR"] = (
             round(self.noise_correlation, 5),
             "aperture variance / sum of 1/weight",

@@ -38,7 +38,13 @@ from pipeline.config import Config
 from pipeline.runner._access import open_product, product_path, read_image
 from pipeline.runner._executors import Executor, make_executor
 from pipeline.runner._lock import BROKEN_LOCK_AGE, RunLock, pid_alive, read_lock
-from pipeline.runner._mosaic import MosaicStatus, mosaic_dir, mosaic_status, run_mosaic
+from pipeline.runner._mosaic import (
+    MosaicStatus,
+    mosaic_dir,
+    mosaic_nights,
+    mosaic_status,
+    run_mosaic,
+)
 from pipeline.runner._night import NightStore, format_ids, night_dir, unit_id
 from pipeline.runner._nightly import (
     NIGHT_CONFIG_NAME,
@@ -68,6 +74,7 @@ __all__ = [
     "find_nights",
     "format_ids",
     "mosaic_dir",
+    "mosaic_nights",
     "mosaic_status",
     "night_dir",
     "night_status",

@@ -26,6 +26,7 @@ from pathlib import Path
 from typing import Any
 
 from astropy.io import fits
+from astropy.table import Table, vstack
 from astropy.wcs import WCS, FITSFixedWarning
 
 from pipeline._offline import astropy_offline
@@ -42,11 +43,19 @@ from pipeline.runner._store import (
     hash_json,
     read_damage,
     read_failure,
+    read_products,
     read_sidecar,
 )
 from pipeline.runner._unit import InputSpec, UnitTask, execute_unit, failed_outcome
 
-__all__ = ["MosaicStatus", "MosaicStore", "mosaic_dir", "mosaic_status", "run_mosaic"]
+__all__ = [
+    "MosaicStatus",
+    "MosaicStore",
+    "mosaic_dir",
+    "mosaic_nights",
+    "mosaic_status",
+    "run_mosaic",
+]
 
 log = logging.getLogger(__name__)
 
@@ -300,6 +309,31 @@ def mosaic_status(config: MosaicConfig) -> MosaicStatus:
             if path.is_dir() and path.name not in status.tiles:
                 status.tiles[path.name] = ("orphan", "not a tile of the current layout")
     return status
+
+
+def mosaic_nights(config: MosaicConfig) -> Table:
+    """Every built tile's night table, stacked (for a report's figures of the mosaic).
+
+    Returns
+    -------
+    astropy.table.Table
+        The columns of :func:`pipeline.mosaic.night_table` (``night``,
+        ``seeing``, ``zero_point``, ``used``, ``rejected``, ``offset``,
+        ``reason``) after a ``tile`` column; no rows before a tile is built.
+    """
+    tables = []
+    folder = mosaic_dir(config) / TILE_STAGE.name
+    for unit_dir in sorted(folder.iterdir()) if folder.is_dir() else ():
+        record = read_sidecar(unit_dir)
+        if record is None or "nights" not in record["products"]:
+            continue
+        table = read_products(unit_dir, {"products": {"nights": record["products"]["nights"]}})
+        table = table["nights"]
+        table.add_column(unit_dir.name, name="tile", index=0)
+        tables.append(table)
+    if not tables:
+        return Table(names=("tile", "night"), dtype=(str, str))
+    return vstack(tables, metadata_conflicts="silent")
 
 
 def run_mosaic(
