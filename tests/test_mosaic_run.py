@@ -15,9 +15,15 @@ from astropy.wcs import WCS
 
 from pipeline.cli import EXIT_FAILED, EXIT_INCOMPLETE, EXIT_OK, EXIT_USAGE, main
 from pipeline.exceptions import ConfigError
-from pipeline.mosaic import TILE_EXTENSIONS, load_mosaic_config, night_image_from_hdulist
+from pipeline.mosaic import (
+    TILE_EXTENSIONS,
+    load_mosaic_config,
+    night_image_from_hdulist,
+    quicklook_png,
+)
+from pipeline.mosaic._products import _binned
 from pipeline.runner import mosaic_dir, mosaic_nights, mosaic_status, run_mosaic
-from pipeline.runner._store import PNG_SIGNATURE, read_sidecar
+from pipeline.runner._store import PNG_SIGNATURE, read_product, read_sidecar, write_products
 from tests._mosaic_nights import (
     DEC,
     NIGHTS,
@@ -252,6 +258,27 @@ def test_the_night_table_and_quick_look_of_a_tile(built):
     assert int.from_bytes(png[20:24], "big") == TILE_SIZE
 
 
+def test_a_large_tile_has_a_binned_quick_look():
+    image = np.arange(60 * 100, dtype=float).reshape(60, 100)
+    png = quicklook_png(image, max_size=32)  # 100 px -> blocks of 4 -> 25 x 15
+    assert (int.from_bytes(png[16:20], "big"), int.from_bytes(png[20:24], "big")) == (25, 15)
+    # the mean of each block of a ramp is the ramp at the block centre; NaN is ignored
+    image[:2, :2] = np.nan
+    binned = _binned(image, 4)
+    assert binned[1, 1] == image[4:8, 4:8].mean()
+    assert binned[0, 0] == np.nanmean(image[:4, :4])
+    assert binned.shape == (15, 25)
+
+
+def test_a_png_product_goes_through_the_store_and_other_bytes_do_not(tmp_path):
+    png = quicklook_png(np.ones((8, 8)))
+    entries = write_products(tmp_path, {"look": png}, {})
+    assert entries["look"]["file"] == "look.png"
+    assert read_product(tmp_path / "look.png", entries["look"]) == png
+    with pytest.raises(TypeError, match="the bytes of a PNG image"):
+        write_products(tmp_path, {"other": b"GIF89a"}, {})
+
+
 def test_nights_beyond_the_seeing_limit_are_left_out_and_listed(tmp_path, nights):
     config = load_mosaic_config(write_config(tmp_path, nights), ["coadd.max_seeing=3.0"])
     report = run_mosaic(config, tiles=[1])
@@ -287,3 +314,42 @@ def test_the_mosaic_reads_the_science_stages_header_cards():
     assert night.zero_point == header["PHOTZP"]
     assert night.night_zero_point == header["ZPMED"]
     assert night.seeing == header["SEEING"]
+
+
+@pytest.mark.slow  # simulates and reduces a small night first: ~1-2 min
+def test_a_mosaic_of_a_reduced_night_named_by_its_config(tmp_path, capsys):
+    from tests.test_cli import DEMO_NIGHT
+
+    night = tmp_path / "night.yaml"
+    night.write_text(DEMO_NIGHT)
+    assert main(["simulate", str(night)]) == EXIT_OK
+    main(["run", str(night)])  # may report the star flat's problems (see test_cli)
+    assert " 0 failed, 0 blocked" in capsys.readouterr().out
+    science = sorted((tmp_path / "out" / "2026-10-15" / "science").iterdir())
+    header = fits.getheader(science[0] / "image.fits", "FLUX")
+    scale = 3600.0 * abs(header["CDELT2"])
+    data = {
+        "mosaic": {"name": "strip", "output_dir": "mosaics", "nights": ["night.yaml"]},
+        # tiles of twice the night's pixels, as tall as the strip
+        "tiling": {
+            "layout": "tangent_tiles",
+            "pixel_scale": 2 * scale,
+            "tile_width": 256,
+            "tile_height": header["NAXIS2"] // 2 + 16,
+            "overlap": 16,
+        },
+        "coadd": {"min_nights": 2},
+        "detect": {"background_box": 32},
+    }
+    path = tmp_path / "mosaic.yaml"
+    path.write_text(yaml.safe_dump(data))
+    assert main(["mosaic", str(path)]) == EXIT_OK, capsys.readouterr()
+    out = capsys.readouterr().out
+    assert "0 failed, 0 blocked" in out and " 0 units ran" not in out
+    config = load_mosaic_config(path)
+    status = mosaic_status(config)
+    assert status.complete and status.n_products == len(science)
+    assert main(["mosaic", str(path)]) == EXIT_OK
+    assert " 0 units ran" in capsys.readouterr().out
+    tables = mosaic_nights(config)
+    assert set(tables["night"]) == {"2026-10-15"} and all(tables["used"])

@@ -489,7 +489,8 @@ def test_unwritable_products_fail_the_unit_and_keep_the_old_ones(toy) -> None:
     report = run_night(config_from_mapping(data, ["stages.maybe.bad=true"], graph=graph))
     assert [r.reason for r in report.problems] == [
         "TypeError: Product 'values' has unsupported type set; return a numpy array, an "
-        "astropy.io.fits HDU or HDUList, an astropy Table, a dict/list, or a str (an HTML page)."
+        "astropy.io.fits HDU or HDUList, an astropy Table, a dict/list, a str (an HTML page) "
+        "or the bytes of a PNG image."
     ]
     folder = night_dir(make_config()) / "maybe/night"
     assert read_sidecar(folder) is not None  # the previous result is still complete

@@ -180,15 +180,32 @@ def night_table(products: Sequence[NightImage], tile: MosaicTile) -> Table:
     return table
 
 
-def quicklook_png(image: np.ndarray, *, dpi: int = 100) -> bytes:
+def _binned(image: np.ndarray, factor: int) -> np.ndarray:
+    """Mean of ``factor`` x ``factor`` blocks (NaN ignored; the edges padded with NaN)."""
+    if factor <= 1:
+        return image
+    n_y, n_x = image.shape
+    padded = np.full((-(-n_y // factor) * factor, -(-n_x // factor) * factor), np.nan)
+    padded[:n_y, :n_x] = image
+    blocks = padded.reshape(padded.shape[0] // factor, factor, -1, factor)
+    finite = np.isfinite(blocks)
+    counts = finite.sum(axis=(1, 3))
+    sums = np.where(finite, blocks, 0.0).sum(axis=(1, 3))
+    return np.where(counts > 0, sums / np.maximum(counts, 1), np.nan)
+
+
+def quicklook_png(image: np.ndarray, *, max_size: int = 1024, dpi: int = 100) -> bytes:
     """A quick-look PNG of a co-add: asinh stretch between the 0.5 and 99.5 percentiles.
 
     Parameters
     ----------
     image : ndarray, shape (n_y, n_x)
         NaN where there is no data (drawn black).
+    max_size : int
+        Largest side of the PNG, pixels: a larger image is averaged over
+        square blocks of the smallest whole number of its pixels that fits.
     dpi : int
-        One image pixel per PNG pixel at this resolution.
+        Resolution written in the PNG (one pixel of the binned image per PNG pixel).
 
     Returns
     -------
@@ -199,6 +216,7 @@ def quicklook_png(image: np.ndarray, *, dpi: int = 100) -> bytes:
     from matplotlib.figure import Figure
 
     data = np.asarray(image, float)
+    data = _binned(data, -(-max(data.shape) // max_size))
     finite = data[np.isfinite(data)]
     n_y, n_x = data.shape
     fig = Figure(figsize=(n_x / dpi, n_y / dpi), dpi=dpi)
