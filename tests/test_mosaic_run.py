@@ -118,6 +118,9 @@ def test_nights_must_exist_and_be_configs_or_folders(tmp_path, nights):
         with pytest.raises(ConfigError, match=match):
             load_mosaic_config(path)
     assert main(["mosaic", path]) == EXIT_USAGE
+    good = write_config(tmp_path, nights)
+    assert main(["mosaic", good, "--status", "--force"]) == EXIT_USAGE
+    assert main(["mosaic", good, "--tiles", "7"]) == EXIT_USAGE  # the mosaic has tiles 0-2
 
 
 # ------------------------------------------------------------ runs, reruns, executors
