@@ -20,6 +20,7 @@ from pipeline.geometry.tdi import first_order_bow
 from pipeline.masks import MaskBit
 from pipeline.products import image_hdulist
 from pipeline.stages import GRAPH, StageContext, Stretch
+from pipeline.stages.detect._model import KernelGrid
 from pipeline.stages.rectify import (
     STAGE,
     RectifyOptions,
@@ -783,3 +784,36 @@ def test_full_size_chip_at_49_degrees_with_deconvolution():
     south, centre, north = (np.mean(e[scene.y == row]) for row in rows)
     assert abs(south - centre) < 0.02
     assert abs(north - centre) < 0.02
+
+
+def test_recorded_lattice_offsets_are_where_strip_pixels_land():
+    """``lattice_x``/``lattice_y`` (mod 1) are the offsets of the strip's pixel centres.
+
+    Analytic: the Keys kernel reproduces linear functions (Keys 1981, IEEE
+    Trans. ASSP 29, 1153), so the rectified image of one lit strip pixel has
+    its first moment exactly where that pixel's centre maps; modulo 1 that is
+    the recorded lattice offset.  0.01 px: the offsets drift by < 1e-3 px
+    between the records, and the moments of the 4 x 4 footprint are exact
+    to rounding.
+    """
+    model = scene_model(50.0, N_ROWS)
+    image = np.zeros((N_ROWS, 256))
+    rows, columns = np.meshgrid(np.arange(300, N_ROWS - 300, 137), np.arange(20, 236, 31))
+    image[rows.ravel(), columns.ravel()] = 1000.0
+    result = rectify(image, np.ones_like(image), np.zeros(image.shape, np.uint16), model)
+    out = np.nan_to_num(result.image)
+    grid = KernelGrid(result.smear_kernels)
+    checked = 0
+    for iy, ix in zip(*np.nonzero(out > 50.0), strict=True):
+        if out[iy, ix] < out[iy - 2 : iy + 3, ix - 2 : ix + 3].max():
+            continue  # not the footprint's peak
+        box = out[iy - 3 : iy + 4, ix - 3 : ix + 4]
+        yy, xx = np.mgrid[iy - 3 : iy + 4, ix - 3 : ix + 4]
+        xm, ym = np.sum(box * xx) / box.sum(), np.sum(box * yy) / box.sum()
+        # At the peak's pixel centre: a property of the pixel grid, not of the star.
+        response = grid.response(result.x_start + ix, iy)
+        for moment, lattice in ((xm, response.lattice_x), (ym, response.lattice_y)):
+            wrapped = (moment - lattice + 0.5) % 1.0 - 0.5
+            assert abs(wrapped) < 0.01, (xm, ym, response)
+        checked += 1
+    assert checked > 50

@@ -545,6 +545,7 @@ def detect(
         profile,
         [r * profile.fwhm for r in radii],
         noise_correlation,
+        [fits_["response"][i] for i in idx],
     )
     src = np.asarray(order)[idx]
     values = {
@@ -617,8 +618,8 @@ def _subtract_models(image: np.ndarray, fits_, profile) -> np.ndarray:
     """``image`` minus the PSF models of all fitted sources, e- (a new array)."""
     out = image.copy()
     shape = out.shape
-    for x, y, flux, (dx, dy) in zip(
-        fits_["x"], fits_["y"], fits_["flux"], fits_["kernel"], strict=True
+    for x, y, flux, (dx, dy), response in zip(
+        fits_["x"], fits_["y"], fits_["flux"], fits_["kernel"], fits_["response"], strict=True
     ):
         if not np.isfinite(flux):
             continue
@@ -628,7 +629,7 @@ def _subtract_models(image: np.ndarray, fits_, profile) -> np.ndarray:
         x1, y1 = min(round(x) + hx + 1, shape[1]), min(round(y) + hy + 1, shape[0])
         if x1 > x0 and y1 > y0:
             out[y0:y1, x0:x1] -= model_image(
-                (y1 - y0, x1 - x0), x - x0, y - y0, dx, dy, profile, flux
+                (y1 - y0, x1 - x0), x - x0, y - y0, dx, dy, profile, flux, response
             )
     return out
 
@@ -774,6 +775,6 @@ STAGE = Stage(
     scope="stretch",
     uses=(),
     neighbours=("rectify",),
-    version=2,
+    version=3,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

@@ -22,10 +22,62 @@ __all__ = ["fit_one_compiled"]
 
 
 @numba.njit(cache=True, nogil=True)
-def _unit(x0, y0, x_first, nx, y_first, ny, dx, dy, sigmas, weights, erf_table, gauss_table):
-    """Unit model at ``(x0, y0)`` and its derivatives in ``x0`` and ``y0``, each (ny, nx)."""
-    gx, dgx = profiles_compiled(x_first, nx, x0 + dx, sigmas, erf_table, gauss_table)
-    gy, dgy = profiles_compiled(y_first, ny, y0 + dy, sigmas, erf_table, gauss_table)
+def _keys(s):
+    """The Keys (a = -0.5) cubic-convolution kernel at distance ``s``, pixels."""
+    s = abs(s)
+    if s < 1.0:
+        return (1.5 * s - 2.5) * s * s + 1.0
+    if s < 2.0:
+        return ((-0.5 * s + 2.5) * s - 4.0) * s + 2.0
+    return 0.0
+
+
+@numba.njit(cache=True, nogil=True)
+def _sampled(first, n, centres, sigmas, lattice, box, erf_table, gauss_table):
+    """``profiles_compiled`` as rectify samples them (``_model._sampled_profiles``).
+
+    ``lattice`` < 0: no resampling; ``box`` <= 0: no clocking top-hat.
+    """
+    if lattice < 0.0 and box <= 0.0:
+        return profiles_compiled(first, n, centres, sigmas, erf_table, gauss_table)
+    offset = 0.0 if lattice < 0.0 else lattice
+    ext = first - 2.0 + offset
+    if box > 0.0:
+        half = box / np.sqrt(12.0)
+        v, d = profiles_compiled(ext, n + 4, centres - half, sigmas, erf_table, gauss_table)
+        v2, d2 = profiles_compiled(ext, n + 4, centres + half, sigmas, erf_table, gauss_table)
+        v = 0.5 * (v + v2)
+        d = 0.5 * (d + d2)
+    else:
+        v, d = profiles_compiled(ext, n + 4, centres, sigmas, erf_table, gauss_table)
+    out_v = np.zeros((v.shape[0], v.shape[1], n))
+    out_d = np.zeros((v.shape[0], v.shape[1], n))
+    for e in range(5):
+        w = _keys(e - 2.0 + offset) if lattice >= 0.0 else (1.0 if e == 2 else 0.0)
+        if w == 0.0:
+            continue
+        for j in range(v.shape[0]):
+            for k in range(v.shape[1]):
+                for i in range(n):
+                    out_v[j, k, i] += w * v[j, k, i + e]
+                    out_d[j, k, i] += w * d[j, k, i + e]
+    return out_v, out_d
+
+
+@numba.njit(cache=True, nogil=True)
+def _unit(
+    x0, y0, x_first, nx, y_first, ny, dx, dy, sigmas, weights, response, erf_table, gauss_table
+):
+    """Unit model at ``(x0, y0)`` and its derivatives in ``x0`` and ``y0``, each (ny, nx).
+
+    ``response``: lattice offsets along x and y and the row step
+    (:class:`~pipeline.stages.detect._model.Response`; offsets -1 and step
+    0 for none).
+    """
+    gx, dgx = _sampled(
+        x_first, nx, x0 + dx, sigmas, response[0], response[2], erf_table, gauss_table
+    )
+    gy, dgy = _sampled(y_first, ny, y0 + dy, sigmas, response[1], 0.0, erf_table, gauss_table)
     rows = sigmas.size * dx.size
     a = np.empty((rows, nx))
     da = np.empty((rows, nx))
@@ -57,17 +109,22 @@ def _assemble(p, d, sw, unit, unit_x, unit_y):
 
 
 @numba.njit(cache=True, nogil=True)
-def _evaluate(p, d, sw, x_first, nx, y_first, ny, dx, dy, sigmas, weights, erf_table, gauss_table):
+def _evaluate(
+    p, d, sw, x_first, nx, y_first, ny, dx, dy, sigmas, weights, response, erf_table, gauss_table
+):
     """Weighted residual, weighted Jacobian and the unit model at ``p``."""
     unit, unit_x, unit_y = _unit(
-        p[2], p[3], x_first, nx, y_first, ny, dx, dy, sigmas, weights, erf_table, gauss_table
-    )
+        p[2], p[3], x_first, nx, y_first, ny, dx, dy, sigmas, weights, response, erf_table,
+        gauss_table,
+    )  # fmt: skip
     r, jac = _assemble(p, d, sw, unit, unit_x, unit_y)
     return r, jac, unit
 
 
 @numba.njit(cache=True, nogil=True)
-def fit_one_compiled(d, sw, x_first, nx, y_first, ny, x, y, dx, dy, sigmas, weights, erf, gauss):
+def fit_one_compiled(
+    d, sw, x_first, nx, y_first, ny, x, y, dx, dy, sigmas, weights, response, erf, gauss
+):
     """Fit background, flux, x and y of one star; see ``fit_stars``.
 
     Parameters
@@ -81,6 +138,9 @@ def fit_one_compiled(d, sw, x_first, nx, y_first, ny, x, y, dx, dy, sigmas, weig
         Starting position.
     dx, dy, sigmas, weights, erf, gauss : ndarray
         Kernel samples, the profile's mixture and the profile tables.
+    response : ndarray, shape (3,)
+        Rectify's lattice offsets along x and y and the row step (-1, -1, 0:
+        neither resampling nor clocking top-hat).
 
     Returns
     -------
@@ -96,7 +156,7 @@ def fit_one_compiled(d, sw, x_first, nx, y_first, ny, x, y, dx, dy, sigmas, weig
         in Python, which reports it as ``fit_stars`` always did).
     """
     p = np.array([0.0, 0.0, x, y])
-    args = (d, sw, x_first, nx, y_first, ny, dx, dy, sigmas, weights, erf, gauss)
+    args = (d, sw, x_first, nx, y_first, ny, dx, dy, sigmas, weights, response, erf, gauss)
     unit, unit_x, unit_y = _unit(x, y, *args[2:])
     # Linear start: background and flux at the starting position (normal
     # equations of the two columns ``sw`` and ``unit * sw``).

@@ -81,6 +81,16 @@ def _kernels_at(grid: KernelGrid, x_start, xs, ys, spacing, point: bool):
     return [reduce_kernel(*grid(x_start + x, y), spacing) for x, y in zip(xs, ys, strict=True)]
 
 
+def _responses_at(grid: KernelGrid, x_start, xs, ys, point: bool):
+    """Rectify's resampling and clocking response at each position (None: not recorded).
+
+    A deconvolved product has neither (its filter acts on the resampled image).
+    """
+    if point:
+        return [None for _ in xs]
+    return [grid.response(x_start + x, y) for x, y in zip(xs, ys, strict=True)]
+
+
 def seeing_curves(
     residual,
     variance,
@@ -126,11 +136,12 @@ def seeing_curves(
     rows, curves = [], []
     for x, y in candidates:
         kern = _kernels_at(grid, x_start, [x], [y], profile.fwhm / 8, point_kernel)
+        resp = _responses_at(grid, x_start, [x], [y], point_kernel)
         y0, y1, x0, x1, clipped = _stamp(residual.shape, [x], [y], kern, 1.5 * profile.fwhm)
         if clipped:
             continue
         data, var = residual[y0:y1, x0:x1], variance[y0:y1, x0:x1]
-        fit = fit_stars(data, var, [x], [y], kern, profile, origin=(y0, x0))
+        fit = fit_stars(data, var, [x], [y], kern, profile, origin=(y0, x0), responses=resp)
         if not (fit.success and fit.flux[0] > 0):
             continue
         good = np.isfinite(data) & np.isfinite(var) & (var > 0)
@@ -139,7 +150,12 @@ def seeing_curves(
         curve = []
         for fwhm in fwhm_grid:
             unit = model_image(
-                data.shape, fit.x[0] - x0, fit.y[0] - y0, *kern[0], profile.with_fwhm(fwhm)
+                data.shape,
+                fit.x[0] - x0,
+                fit.y[0] - y0,
+                *kern[0],
+                profile.with_fwhm(fwhm),
+                response=resp[0],  # stamp and image pixels differ by whole pixels
             )
             design = np.column_stack([np.ones(d.size), unit[good]]) * sw[:, None]
             coef = np.linalg.lstsq(design, d, rcond=None)[0]
@@ -257,10 +273,12 @@ def measure_groups(
     dict of ndarray
         Per source: ``x``, ``y``, ``x_err``, ``y_err``, ``flux``,
         ``flux_err``, ``background`` (fitted offset), ``chi2``, ``flags``,
-        ``group``, and ``kernel`` (list of the reduced kernels used).
+        ``group``, ``kernel`` (list of the reduced kernels used) and
+        ``response`` (list of the :class:`~pipeline.stages.detect._model.Response`
+        used, or None).
     """
     names = ("x", "y", "x_err", "y_err", "flux", "flux_err", "background", "chi2", "flags")
-    out: dict[str, list] = {k: [] for k in (*names, "group", "kernel")}
+    out: dict[str, list] = {k: [] for k in (*names, "group", "kernel", "response")}
     spacing = profile.fwhm / 8.0  # sample spacing well below the seeing sigma (fwhm / 2.35)
     for index, members in enumerate(groups):
         split = list(blended[index]) if blended is not None else [False] * len(members)
@@ -288,12 +306,14 @@ def measure_groups(
                 fitted = tuple((float(r["x"]), float(r["y"])) for r in rows)
                 memo[(profile, fitted, tuple(split))] = rows
         for row in memo[key] if memo is not None else rows:
-            for name in (*names, "kernel"):
+            for name in (*names, "kernel", "response"):
                 out[name].append(row[name])
             out["group"].append(index)
     kernels = out.pop("kernel")
+    responses = out.pop("response")
     result = {k: np.asarray(v) for k, v in out.items()}
     result["kernel"] = kernels
+    result["response"] = responses
     return result
 
 
@@ -317,12 +337,13 @@ def _measure_group(
     xs = np.array([m[0] for m in members], dtype=float)
     ys = np.array([m[1] for m in members], dtype=float)
     kern = _kernels_at(grid, x_start, xs, ys, spacing, point_kernel)
+    resp = _responses_at(grid, x_start, xs, ys, point_kernel)
     if xs.size <= max_joint:
         box = _stamp(residual.shape, xs, ys, kern, profile.fwhm)
-        fit = _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation)
+        fit = _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, resp)
         per_star = [(fit, i, box) for i in range(xs.size)]
     else:
-        per_star = _fit_in_turn(residual, variance, xs, ys, kern, profile, noise_correlation)
+        per_star = _fit_in_turn(residual, variance, xs, ys, kern, profile, noise_correlation, resp)
     rows = []
     for i, (fit, j, box) in enumerate(per_star):
         y0, y1, x0, x1, clipped = box
@@ -346,12 +367,13 @@ def _measure_group(
                 "chi2": fit.chi2,
                 "flags": flags,
                 "kernel": kern[i],
+                "response": resp[i],
             }
         )
     return rows
 
 
-def _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, others=None):
+def _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, resp, others=None):
     y0, y1, x0, x1, _ = box
     data = residual[y0:y1, x0:x1]
     if others is not None:
@@ -365,10 +387,11 @@ def _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, 
         profile,
         origin=(y0, x0),
         noise_correlation=noise_correlation,
+        responses=resp,
     )
 
 
-def _fit_in_turn(residual, variance, xs, ys, kern, profile, noise_correlation, sweeps=2):
+def _fit_in_turn(residual, variance, xs, ys, kern, profile, noise_correlation, resp, sweeps=2):
     """Fit the stars of a large group one at a time, the others' models subtracted.
 
     A joint fit of dozens of stars (a crowded patch, a bleed trail split into
@@ -404,6 +427,7 @@ def _fit_in_turn(residual, variance, xs, ys, kern, profile, noise_correlation, s
                 [kern[i]],
                 profile,
                 noise_correlation,
+                [resp[i]],
                 others=models,
             )
             fits[i] = fit
@@ -415,7 +439,9 @@ def _fit_in_turn(residual, variance, xs, ys, kern, profile, noise_correlation, s
     return [(fits[i], 0, boxes[i]) for i in range(len(xs))]
 
 
-def aperture_fluxes(residual, variance, no_data, x, y, kernels, profile, radii, noise_correlation):
+def aperture_fluxes(
+    residual, variance, no_data, x, y, kernels, profile, radii, noise_correlation, responses=None
+):
     """Aperture sums and their model-based aperture corrections.
 
     Parameters
@@ -430,6 +456,8 @@ def aperture_fluxes(residual, variance, no_data, x, y, kernels, profile, radii, 
     radii : sequence of float
         Aperture radii, pixels.
     noise_correlation : float
+    responses : list of (Response or None), optional
+        Rectify's resampling and clocking response of each source.
 
     Returns
     -------
@@ -454,11 +482,13 @@ def aperture_fluxes(residual, variance, no_data, x, y, kernels, profile, radii, 
     for j in range(len(radii)):
         flux[:, j] = np.asarray(sums[f"aperture_sum_{j}"])
         err[:, j] = np.sqrt(np.asarray(variances[f"aperture_sum_{j}"]) * noise_correlation)
-    corr[:] = aperture_corrections(kernels, y, profile, radii)
+    corr[:] = aperture_corrections(kernels, y, profile, radii, responses=responses)
     return flux, err, corr
 
 
-def aperture_corrections(kernels, y, profile, radii, step: float = 16.0) -> np.ndarray:
+def aperture_corrections(
+    kernels, y, profile, radii, step: float = 16.0, responses=None
+) -> np.ndarray:
     """Model total over model inside circular apertures, per source.
 
     The correction depends on the smear kernel, which changes slowly across
@@ -481,7 +511,10 @@ def aperture_corrections(kernels, y, profile, radii, step: float = 16.0) -> np.n
             dx, dy = kernels[i]
             hx = int(np.ceil(rmax + 4 * profile.fwhm + np.max(np.abs(dx))))
             hy = int(np.ceil(rmax + 4 * profile.fwhm + np.max(np.abs(dy))))
-            unit = model_image((2 * hy + 1, 2 * hx + 1), hx, hy, dx, dy, profile)
+            # The stamp's pixels differ from the image's by whole pixels: the
+            # lattice offsets hold on it as they are.
+            resp = None if responses is None else responses[i]
+            unit = model_image((2 * hy + 1, 2 * hx + 1), hx, hy, dx, dy, profile, response=resp)
             done[bins[i]] = np.array(
                 [
                     1.0

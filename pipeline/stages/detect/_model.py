@@ -37,6 +37,7 @@ from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE, pixel_
 __all__ = [
     "FitResult",
     "KernelGrid",
+    "Response",
     "SeeingProfile",
     "fit_stars",
     "model_image",
@@ -147,6 +148,74 @@ def reduce_kernel(dx: np.ndarray, dy: np.ndarray, spacing: float) -> tuple[np.nd
     return rx, ry
 
 
+@dataclass(frozen=True)
+class Response:
+    """How a rectified pixel samples the strip, beyond the seeing and the smear.
+
+    Rectify interpolates the strip with the Keys cubic kernel
+    (:mod:`pipeline.stages.rectify._resample`): a rectified pixel is a
+    weighted sum of the strip pixels around it, whose centres lie at
+    ``lattice_x`` (``lattice_y``) modulo 1 from the rectified pixel centres.
+    The kernel reproduces quadratics, so a star's flux and moments are kept,
+    but it blurs the star's core by an amount that depends on that offset
+    (a fit of the seeing width then comes out wider and the flux up to 3 %
+    high at half a pixel).  TDI clocking adds a top-hat of ``row_step``
+    (one strip row) along x: the charge steps one row while the image moves
+    continuously.
+
+    Attributes
+    ----------
+    lattice_x, lattice_y : float
+        Offsets of the strip's pixel centres, in [0, 1) rectified pixels.
+    row_step : float
+        Length of one strip row along x, rectified pixels (0: no top-hat).
+    """
+
+    lattice_x: float
+    lattice_y: float
+    row_step: float
+
+
+def _keys(s: np.ndarray) -> np.ndarray:
+    """The Keys (a = -0.5) cubic-convolution kernel at distances ``s``, pixels."""
+    s = np.abs(s)
+    inner = (1.5 * s - 2.5) * s * s + 1.0
+    outer = ((-0.5 * s + 2.5) * s - 4.0) * s + 2.0
+    return np.where(s < 1.0, inner, np.where(s < 2.0, outer, 0.0))
+
+
+def _sampled_profiles(grid, centres, sigmas, lattice=None, box=0.0):
+    """Pixel profiles of :func:`pixel_profiles` as rectify samples them, shape (J, K, n).
+
+    With a ``lattice`` offset, the profiles are the Keys interpolation at
+    ``grid`` of strip pixels centred at ``lattice`` modulo 1 (four taps: the
+    strip pixels within 2 px); with a ``box``, each is averaged over a
+    top-hat of that width, drawn as two points +-box / sqrt(12) apart from
+    the centre (the top-hat's variance; its fourth moment differs by
+    box^4 / 180, a change < 1e-4 of the profile for seeing sigmas > 1 px).
+    """
+    if lattice is None and box <= 0.0:
+        return pixel_profiles(grid, centres, sigmas)
+    n = grid.size
+    ext = grid[0] - 2.0 + (0.0 if lattice is None else lattice) + np.arange(n + 4)
+    if box > 0.0:
+        half = box / np.sqrt(12.0)
+        lo, dlo = pixel_profiles(ext, centres - half, sigmas)
+        hi, dhi = pixel_profiles(ext, centres + half, sigmas)
+        value, deriv = 0.5 * (lo + hi), 0.5 * (dlo + dhi)
+    else:
+        value, deriv = pixel_profiles(ext, centres, sigmas)
+    if lattice is None:
+        return value[..., 2 : 2 + n], deriv[..., 2 : 2 + n]
+    taps = _keys(np.arange(5) - 2.0 + lattice)  # strip pixel i + e for output pixel i
+    out_v = np.zeros((*value.shape[:-1], n))
+    out_d = np.zeros_like(out_v)
+    for e, w in enumerate(taps):
+        out_v += w * value[..., e : e + n]
+        out_d += w * deriv[..., e : e + n]
+    return out_v, out_d
+
+
 class KernelGrid:
     """Fast lookup of recorded smear kernels (the rectify ``smear_kernels`` table).
 
@@ -165,6 +234,8 @@ class KernelGrid:
         xs = np.asarray(kernels["x"], dtype=float)
         self.columns = np.unique(xs)
         self._rows = []
+        names = ("lattice_x", "lattice_y", "row_step")
+        self._responses = [] if all(n in kernels.colnames for n in names) else None
         for column in self.columns:
             sel = np.flatnonzero(xs == column)
             ys = np.asarray(kernels["y"], dtype=float)[sel]
@@ -172,6 +243,26 @@ class KernelGrid:
             dx = np.asarray(kernels["dx"], dtype=float)[sel][order]
             dy = np.asarray(kernels["dy"], dtype=float)[sel][order]
             self._rows.append((ys[order], dx, dy))
+            if self._responses is not None:
+                self._responses.append(
+                    np.column_stack([np.asarray(kernels[n], float)[sel][order] for n in names])
+                )
+
+    def response(self, x: float, y: float) -> Response | None:
+        """The resampling and clocking :class:`Response` at ``(x, y)``; None if not recorded.
+
+        Linear in ``y`` between recorded rows and in ``x`` between recorded
+        columns: the lattice offsets drift along x (by ~6e-5 px per column
+        on the test nights), so the nearest column would be up to 0.03 px off.
+        """
+        if self._responses is None:
+            return None
+        per_column = [np.array([np.interp(y, rows[0], v[:, k]) for k in range(3)])
+                      for rows, v in zip(self._rows, self._responses, strict=True)]  # fmt: skip
+        values = np.array(
+            [np.interp(x, self.columns, [p[k] for p in per_column]) for k in range(3)]
+        )
+        return Response(float(values[0] % 1.0), float(values[1] % 1.0), float(values[2]))
 
     def __call__(self, x: float, y: float) -> tuple[np.ndarray, np.ndarray]:
         """Kernel samples ``(dx, dy)`` at night rectified position ``(x, y)``, pixels."""
@@ -185,10 +276,18 @@ class KernelGrid:
         return (1 - t) * dx[k] + t * dx[k + 1], (1 - t) * dy[k] + t * dy[k + 1]
 
 
-def _unit_model(xs, ys, x0, y0, dx, dy, sigmas, weights, derivatives=False):
-    """Unit-flux model on the pixel grid ``ys`` x ``xs``; shape (ny, nx)."""
-    gx, dgx = pixel_profiles(xs, x0 + dx, sigmas)
-    gy, dgy = pixel_profiles(ys, y0 + dy, sigmas)
+def _unit_model(xs, ys, x0, y0, dx, dy, sigmas, weights, derivatives=False, response=None):
+    """Unit-flux model on the pixel grid ``ys`` x ``xs``; shape (ny, nx).
+
+    ``response`` (:class:`Response` or None) adds rectify's resampling and
+    the clocking top-hat.
+    """
+    if response is None:
+        gx, dgx = pixel_profiles(xs, x0 + dx, sigmas)
+        gy, dgy = pixel_profiles(ys, y0 + dy, sigmas)
+    else:
+        gx, dgx = _sampled_profiles(xs, x0 + dx, sigmas, response.lattice_x, response.row_step)
+        gy, dgy = _sampled_profiles(ys, y0 + dy, sigmas, response.lattice_y)
     scale = (weights / dx.size)[:, None, None]
     a = (gx * scale).reshape(-1, xs.size)
     b = gy.reshape(-1, ys.size)
@@ -208,6 +307,7 @@ def model_image(
     dy: np.ndarray,
     profile: SeeingProfile,
     flux: float = 1.0,
+    response: Response | None = None,
 ) -> np.ndarray:
     """Render the smear-aware model of one star on an image grid.
 
@@ -222,6 +322,8 @@ def model_image(
     profile : SeeingProfile
     flux : float
         Total flux (electrons).
+    response : Response or None
+        Rectify's resampling and the clocking top-hat; None: neither.
 
     Returns
     -------
@@ -230,7 +332,8 @@ def model_image(
     sigmas, weights = profile.mixture()
     xs = np.arange(shape[1], dtype=float)
     ys = np.arange(shape[0], dtype=float)
-    return flux * _unit_model(xs, ys, x0, y0, np.asarray(dx), np.asarray(dy), sigmas, weights)
+    dx, dy = np.asarray(dx), np.asarray(dy)
+    return flux * _unit_model(xs, ys, x0, y0, dx, dy, sigmas, weights, response=response)
 
 
 @dataclass(frozen=True)
@@ -278,6 +381,7 @@ def fit_stars(
     origin: tuple[int, int] = (0, 0),
     noise_correlation: float = 1.0,
     fit_background: bool = True,
+    responses: list[Response | None] | None = None,
 ) -> FitResult:
     """Least-squares fit of flux, position and background of stars on a stamp.
 
@@ -299,6 +403,9 @@ def fit_stars(
         (rectify's ``NOISECOR``); errors are scaled by its square root.
     fit_background : bool
         Fit a constant background; otherwise it is held at zero.
+    responses : list of (Response or None), optional
+        Rectify's resampling and the clocking top-hat at each star (their
+        lattice offsets are those of the full image: ``origin`` is integer).
 
     Returns
     -------
@@ -315,15 +422,17 @@ def fit_stars(
     d = np.where(good, data, 0.0).ravel() * sw
     sigmas, weights = profile.mixture()
     nb = 1 if fit_background else 0
+    responses = [None] * n if responses is None else list(responses)
 
     def models_at(p):
         """Unit models of the stars at the positions in ``p`` and their derivatives."""
         return [
             _unit_model(
-                xs, ys, p[nb + 3 * i + 1], p[nb + 3 * i + 2], *kernels[i], sigmas, weights, True
+                xs, ys, p[nb + 3 * i + 1], p[nb + 3 * i + 2], *kernels[i], sigmas, weights, True,
+                responses[i],
             )
             for i in range(n)
-        ]
+        ]  # fmt: skip
 
     def assemble(p, models):
         """Weighted residual, weighted Jacobian and the unit models at ``p``."""
@@ -344,7 +453,7 @@ def fit_stars(
         return assemble(p, models_at(p))
 
     if n == 1 and nb:
-        compiled = _fit_one(d, sw, xs, ys, x[0], y[0], kernels[0], sigmas, weights)
+        compiled = _fit_one(d, sw, xs, ys, x[0], y[0], kernels[0], sigmas, weights, responses[0])
         if compiled is not None:
             p, jac, unit, chi2_sum, success = compiled
             return _fit_result(p, jac, [unit], chi2_sum, success, good, nb, noise_correlation)
@@ -364,7 +473,7 @@ def fit_stars(
     return _fit_result(p, jac, units, chi2_sum, success, good, nb, noise_correlation)
 
 
-def _fit_one(d, sw, xs, ys, x, y, kernel, sigmas, weights):
+def _fit_one(d, sw, xs, ys, x, y, kernel, sigmas, weights, response=None):
     """One star and a background fitted in one compiled call; None to fit in Python.
 
     :func:`~pipeline.stages.detect._fit_jit.fit_one_compiled` takes the same
@@ -389,6 +498,11 @@ def _fit_one(d, sw, xs, ys, x, y, kernel, sigmas, weights):
         np.ascontiguousarray(kernel[1], dtype=np.float64),
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
+        np.array(
+            [-1.0, -1.0, 0.0]
+            if response is None
+            else [response.lattice_x, response.lattice_y, response.row_step]
+        ),
         _ERF_TABLE,
         _GAUSS_TABLE,
     )

@@ -660,5 +660,5 @@ STAGE = Stage(
     # 2: deconvolution regularisation scales with the smear length; 3: one
     # multi-extension image product with units, observation metadata, night grid;
     # 4: deconvolved variance, DECNOISE and NOISECOR from the noise's covariance
-    version=4,
+    version=5,
 )

@@ -275,7 +275,11 @@ def smear_kernels(
         One row per position: ``x``, ``y`` (night rectified pixels), ``dx``,
         ``dy`` (shape ``(n_samples,)``: offsets of equal-time samples from the
         kernel's mean, rectified pixels; ``dx`` along the scan), ``length``
-        (``max(dx) - min(dx)``) and ``bow`` (``max(dy) - min(dy)``).
+        (``max(dx) - min(dx)``), ``bow`` (``max(dy) - min(dy)``),
+        ``lattice_x`` and ``lattice_y`` (the strip's pixel centres lie at
+        these offsets modulo 1 from the rectified pixel centres, along x and
+        y; unwrapped, so they interpolate) and ``row_step`` (the length
+        along x of one strip row: the TDI clocking top-hat).
     """
     x = np.asarray(x, dtype=float)
     y = np.asarray(y, dtype=float)
@@ -291,6 +295,13 @@ def smear_kernels(
         inv = inverse[sel]
         dx[sel] = inv[:, 0, 0, None] * dr + inv[:, 0, 1, None] * dc
         dy[sel] = inv[:, 1, 0, None] * dr + inv[:, 1, 1, None] * dc
+    # Where the strip's pixel centres fall between the rectified ones: the two
+    # resampling passes interpolate at these offsets (their cubic kernel blurs
+    # a star's core by an amount that depends on them), and one line of TDI
+    # clocking (the charge steps one row while the image moves continuously:
+    # a top-hat of one strip row along the scan) spans ``row_step`` along x.
+    r, c = strip_map(x, y)
+    sign_c = np.sign(strip_map.jacobian(x, y)[:, 1, 1])
     table = Table(
         {
             "x": x,
@@ -299,9 +310,12 @@ def smear_kernels(
             "dy": dy,
             "length": dx.max(axis=1) - dx.min(axis=1),
             "bow": dy.max(axis=1) - dy.min(axis=1),
+            "lattice_x": x - r,
+            "lattice_y": y - sign_c * c,
+            "row_step": np.abs(inverse[:, 0, 0]),
         }
     )
-    for name in ("x", "y", "dx", "dy", "length", "bow"):
+    for name in ("x", "y", "dx", "dy", "length", "bow", "lattice_x", "lattice_y", "row_step"):
         table[name].unit = "pix"
     table.meta["description"] = (
         "TDI smear kernel: equal-time samples of a star's track relative to its mean, "
