@@ -165,7 +165,10 @@ def _flux_scale_mag(night):
     """2.5 log10 of detect's PSF flux over the true electrons, S/N > 100 (median).
 
     A constant scale of detect's fluxes goes into the zero point whole (it
-    cancels in calibrated magnitudes); measured on this night: +0.020 mag.
+    cancels in calibrated magnitudes); measured on this night: +0.0007 mag
+    (+0.0004 to +0.0010 from S/N 20 to 1000).  It was +0.020 while detect's
+    model left out rectify's resampling and the clocking top-hat and the
+    simulator drew its Moffat with four Gaussians.
     """
     k, _ = _bright(night)
     j = night.truth_row[k]
@@ -206,29 +209,27 @@ def test_zero_point_in_clear_stretches(night):
     """In clear stretches the zero point matches the truth to <= 0.005 mag (the issue).
 
     The truth is the simulator's zero point at the crossing-mean transparency,
-    on the calibrated images' scale (the flat's normalisation), plus detect's
-    PSF flux scale, which the zero point absorbs whole: with that scale the
-    issue's 0.005 mag holds.  Without it the zero point is off by the scale,
-    +0.021 mag here (detect's PSF fluxes are 2 % above the true electrons, at
-    every S/N; at most 0.026 mag with the knots' noise): a ratchet at 0.03 mag
-    until detect's flux scale is fixed.  The 0.005 with the scale removed is
-    met at 0.0043 mag here.
+    on the calibrated images' scale (the flat's normalisation).  Detect's PSF
+    fluxes are the true electrons (their scale, which the zero point would
+    absorb whole, within 0.002 mag: measured +0.0007, the median of ~330
+    stars known to 0.0005), and the zero point meets the issue's 0.005 mag
+    (measured 0.0044 at worst, the knots' noise).
     """
     t, error = _zero_point_error(night)
     ph = night.photometry
     clear = np.abs(t - ph["cloud_centre"]) > 4.0 * ph["cloud_width"]  # dip < 1e-3 mag
     assert clear.sum() > 100
     scale = _flux_scale_mag(night)
-    print(f"flux scale {scale:+.4f} mag; clear: {np.abs(error[clear] - scale).max():.4f} mag")
-    assert np.abs(error[clear] - scale).max() <= 0.005
-    assert np.abs(error[clear]).max() <= 0.03  # ratchet: the issue's figure is 0.005
+    print(f"flux scale {scale:+.4f} mag; clear: {np.abs(error[clear]).max():.4f} mag")
+    assert abs(scale) <= 0.002
+    assert np.abs(error[clear]).max() <= 0.005
 
 
 def test_the_cloud_is_followed_and_flagged(night):
     """The cloud is followed to <= 0.01 mag outside its deepest 10 s; its stretches flagged.
 
-    Followed: the zero point minus the truth (detect's flux scale removed, as
-    in the clear test) within the issue's 0.01 mag wherever the cloud dims by
+    Followed: the zero point minus the truth within the issue's 0.01 mag
+    (measured 0.0050) wherever the cloud dims by
     more than 1e-3 mag, except within 5 s of its deepest point.  Flagged: every
     stretch whose true zero point drops by more than the stage's ``max_drop``
     (0.1 mag) is flagged CLOUD in the intervals, in its sources' ``zp_flags``
@@ -239,9 +240,8 @@ def test_the_cloud_is_followed_and_flagged(night):
     ph = night.photometry
     distance = np.abs(t - ph["cloud_centre"])
     cloudy = (distance > 5.0) & (distance <= 4.0 * ph["cloud_width"])
-    scale = _flux_scale_mag(night)
-    print(f"cloud: {np.abs(error[cloudy] - scale).max():.4f} mag")
-    assert np.abs(error[cloudy] - scale).max() <= 0.01
+    print(f"cloud: {np.abs(error[cloudy]).max():.4f} mag")
+    assert np.abs(error[cloudy]).max() <= 0.01
     clear_level = ph["zero_point"]
     cloud = int(ZeroPointFlag.CLOUD)
     catalog_t = np.asarray(night.catalog["t"].value)
