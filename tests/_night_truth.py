@@ -94,6 +94,9 @@ class NightComparison:
     fwhm: float  # seeing FWHM, px
     n_columns: int
     threshold: float
+    # The calibrated image's electrons over the true ones: the median of the true
+    # column response over the solved flat (as tests/test_zeropoint_truth.py).
+    flat_scale: float = 1.0
     timings: dict = field(default_factory=dict)
 
     def completeness(self, snr: float, width: float = 0.1) -> tuple[float, int]:
@@ -156,7 +159,8 @@ class NightComparison:
 
         The truth is the star's electrons before the column response (the
         calibrated image is divided by the flat); the mean ratio is then the
-        flat's normalisation times the method's loss, the rms and trend its errors.
+        flat's normalisation (:attr:`flat_scale`) times the method's loss, the
+        rms and trend its errors.
         """
         k, j = self._pairs(snr_min, isolation="alone")
         ratio = (
@@ -192,6 +196,7 @@ class NightComparison:
             f"truth: {len(self.truth)} stars inside the night; catalogue: {len(self.catalog)}"
             f" sources; seeing FWHM {self.fwhm:.2f} px"
         )
+        lines.append(f"flat's scale (median true response / solved flat): {self.flat_scale:.5f}")
         for target in (5.0, 10.0):
             frac, n = self.completeness(target)
             lines.append(f"completeness at S/N {target:g} (+-10 %, isolated): {frac:.3f} of {n}")
@@ -212,8 +217,10 @@ class NightComparison:
         for name, column in (("PSF", "flux_psf"), ("aperture 2 FWHM", "flux_aper1")):
             mean, rms, excess, slope, n = self.flux_summary(column)
             lines.append(
-                f"{name:16s} flux/truth - 1, S/N > 100 ({n}): mean {mean:+.4f}, rms {rms:.4f}"
-                f" ({excess:.4f} beyond the noise), centre-to-edge trend {slope:+.4f}"
+                f"{name:16s} flux/truth - 1, S/N > 100 ({n}): mean {mean:+.4f}"
+                f" ({(1.0 + mean) / self.flat_scale - 1.0:+.4f} over the flat's scale),"
+                f" rms {rms:.4f} ({excess:.4f} beyond the noise),"
+                f" centre-to-edge trend {slope:+.4f}"
             )
         return lines
 
@@ -286,6 +293,11 @@ def compare(config_path: Path, fwhm_isolation: float = 3.0) -> NightComparison:
     response = column_properties(options, camera.n_columns, model.line_time, camera.tdi_rows)
     column = np.clip(np.rint(np.nan_to_num(truth["c_geom"])).astype(int), 0, camera.n_columns - 1)
     truth["flux_flat"] = np.asarray(truth["flux_recorded"], float) / response.response[column]
+    # The solved flat is normalised over its reference columns, not to the true
+    # response: the calibrated electrons are the true ones times this scale.
+    flat = np.asarray(open_product(config, "columns", "night", "columns")["flat"], float)
+    good = np.isfinite(flat) & (flat > 0.5) & (response.response > 0.5)
+    flat_scale = float(np.median(response.response[good] / flat[good]))
     ra, dec = np.asarray(truth["ra"], float), np.asarray(truth["dec"], float)
     x = np.full(len(truth), np.nan)
     y = np.full(len(truth), np.nan)
@@ -331,7 +343,7 @@ def compare(config_path: Path, fwhm_isolation: float = 3.0) -> NightComparison:
     d, j = tree.query(cat_pts)
     match = np.where(d < MATCH_FWHM * fwhm, j, -1)
     threshold = float(config.stage_options("detect").threshold_sigma)
-    return NightComparison(truth, catalog, match, fwhm, camera.n_columns, threshold)
+    return NightComparison(truth, catalog, match, fwhm, camera.n_columns, threshold, flat_scale)
 
 
 def simulate_and_reduce(config_path: Path, progress=None) -> NightComparison:
