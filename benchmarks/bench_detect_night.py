@@ -33,9 +33,12 @@ It prints:
   chip's width, along (x) and across (y) the scan, rectified pixels;
 * the scatter of positions over detect's reported errors (the rms of the
   pulls) for S/N 20 to 200;
-* PSF flux over the truth's recorded electrons for S/N > 100: rms and the
-  trend from the centre line to the edges, beside a plain aperture of radius
-  1 FWHM (diameter 2 FWHM) without correction.
+* PSF flux over the truth's recorded electrons for S/N > 100: mean, rms and
+  the trend from the centre line to the edges, beside a plain aperture of
+  radius 1 FWHM (diameter 2 FWHM) without correction.  The mean is printed
+  as measured and over the flat's scale (the median of the simulator's
+  column response over the solved flat, also printed): the calibrated image
+  is divided by the solved flat, whose normalisation is not the true one.
 """
 
 from __future__ import annotations
