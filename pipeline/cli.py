@@ -406,6 +406,8 @@ def _cmd_mosaic(args: argparse.Namespace, config) -> int:
             print(f"zdrift mosaic: {exc}", file=sys.stderr)
             return EXIT_USAGE
     print(report.format())
+    if any(r.status in ("ran", "skipped") for r in report.results):
+        print(f"tiles: {folder / 'tiles'}")
     if not report.ok:
         print(f"details: {folder / LOG_NAME}", file=sys.stderr)
     return EXIT_OK if report.ok else EXIT_FAILED

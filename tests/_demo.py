@@ -1,4 +1,4 @@
-"""The demo night (demo_frames/ and its configs) copied for a test."""
+"""The demo nights (demo_frames/ and their configs) copied for a test."""
 
 from __future__ import annotations
 
@@ -9,13 +9,15 @@ REPO = Path(__file__).resolve().parents[1]
 
 
 def demo_copy(folder: Path) -> Path:
-    """Copy the demo night and its configs under ``folder``; return its ``demo.yaml``.
+    """Copy the demo nights and their configs under ``folder``; return ``demo.yaml``.
 
-    Products of the copy go to ``folder/demo_products/`` (the config's
-    ``output_dir``, relative to ``configs/``).
+    ``demo.yaml`` is the first night's config; ``demo_2026-10-16.yaml``,
+    ``demo_2026-10-17.yaml`` and ``demo_mosaic.yaml`` sit beside it.  Products
+    of the copy go to ``folder/demo_products/`` (the configs' ``output_dir``,
+    relative to ``configs/``).
     """
     shutil.copytree(REPO / "demo_frames", folder / "demo_frames")
     (folder / "configs").mkdir()
-    for name in ("demo.yaml", "simulate_demo.yaml"):
-        shutil.copy(REPO / "configs" / name, folder / "configs" / name)
+    for path in (REPO / "configs").glob("*demo*.yaml"):
+        shutil.copy(path, folder / "configs" / path.name)
     return folder / "configs" / "demo.yaml"

@@ -954,6 +954,25 @@ def test_several_nights_of_one_strip():
         simulate_night(site, camera, options)
 
 
+def test_nights_without_a_pad_keep_the_first_night_as_simulated_alone():
+    """``nights_pad: 0``: the first of several nights is the night simulated alone.
+
+    So a night already written (the demo's first) keeps its files when later
+    nights of its strip are added (self-consistency).
+    """
+    site, camera = _site(ACTUAL_LATITUDE), _camera()
+    options = _options(
+        stars={"count": 100, "mag_bright": 16.0, "mag_faint": 20.0},
+        nights=[{"days": 1}],
+        nights_pad=0.0,
+    )
+    alone = simulate_night(site, camera, options.model_copy(update={"nights": ()}))
+    first, second = simulate_nights(site, camera, options)
+    for (_, a), (_, b) in zip(alone.blocks, first.blocks, strict=True):
+        assert np.array_equal(a, b)
+    assert len(second.truth) > 0
+
+
 @pytest.mark.parametrize("command", ["module", "zdrift"])
 def test_commands_write_a_folder_per_night(tmp_path, capsys, command):
     import yaml

@@ -331,6 +331,12 @@ class SimulationOptions(_Options):
     nights: tuple[RepeatOptions, ...] = Field(
         (), description="more nights of the same strip (simulate_nights)"
     )
+    nights_pad: float = Field(
+        2.0,
+        ge=0,
+        description="arcmin by which the shared star field of simulate.nights is widened "
+        "(0: the first night's own field, so the first night is the one simulated alone)",
+    )
 
     @field_validator("start")
     @classmethod
@@ -813,10 +819,13 @@ def night_options(site: Site, options: SimulationOptions, repeat: RepeatOptions)
 def simulate_nights(site: Site, camera: Camera, options: SimulationOptions) -> list[SimulatedNight]:
     """The first night and every night of ``options.nights``, over one star field.
 
-    The stars are drawn once, over the first night's field widened by 2
-    arcmin (the strip's ICRS position at one sidereal time moves by tens of
-    arcseconds over a year: precession and annual aberration); every truth
-    table gives each star the same ``id``.
+    The stars are drawn once, over the first night's field widened by
+    ``options.nights_pad`` arcmin, 2 by default (the strip's ICRS position at
+    one sidereal time moves by tens of arcseconds over a year: precession and
+    annual aberration); every truth table gives each star the same ``id``.
+    With ``nights_pad: 0`` the field is the one the first night draws alone,
+    so its blocks are those of :func:`simulate_night` (nights a few days
+    apart move by arcseconds, within the field's PSF margin).
 
     Returns
     -------
@@ -827,7 +836,7 @@ def simulate_nights(site: Site, camera: Camera, options: SimulationOptions) -> l
     model, _ = tdi_model(site, camera, first)
     psf = _psf_pixels(first.psf, model.pixel_scale)
     margin, margin_rows = _margins(site, camera, first, model, psf)
-    field = _draw_field(camera, first, model, margin, margin_rows, pad=2.0 / 60.0)
+    field = _draw_field(camera, first, model, margin, margin_rows, pad=first.nights_pad / 60.0)
     field["id"] = np.arange(len(field), dtype=np.int64)
     nights = [simulate_night(site, camera, first, star_field=field)]
     for k, repeat in enumerate(options.nights, start=1):
