@@ -127,7 +127,7 @@ def test_nights_must_exist_and_be_configs_or_folders(tmp_path, nights):
 
 
 def test_a_rerun_skips_the_tiles_and_a_changed_night_reruns_only_the_tiles_it_touches(
-    tmp_path, nights
+    tmp_path, nights, capsys
 ):
     # a copy of the folders: one night's product is rewritten below
     import shutil
@@ -158,7 +158,9 @@ def test_a_rerun_skips_the_tiles_and_a_changed_night_reruns_only_the_tiles_it_to
     assert {s for s, _ in mosaic_status(changed).tiles.values()} == {"stale"}
     assert main(["mosaic", config_path, "--status"]) == EXIT_OK
     assert main(["mosaic", config_path, "--status", "--set", "coadd.grow=2"]) == EXIT_INCOMPLETE
+    capsys.readouterr()
     assert main(["mosaic", config_path, "--tiles", "1", "--set", "coadd.grow=2"]) == EXIT_OK
+    assert f"tiles: {mosaic_dir(changed) / 'tiles'}\n" in capsys.readouterr().out  # where to look
     assert mosaic_status(changed).tiles["tile001"][0] == "done"
 
 
