@@ -164,22 +164,6 @@ def test_a_rerun_skips_the_tiles_and_a_changed_night_reruns_only_the_tiles_it_to
     assert mosaic_status(changed).tiles["tile001"][0] == "done"
 
 
-@pytest.fixture(scope="module")
-def dask_cluster():
-    distributed = pytest.importorskip("distributed")
-    cluster = distributed.LocalCluster(
-        n_workers=2,
-        threads_per_worker=1,
-        processes=True,
-        host="127.0.0.1",
-        # a random loopback port, not 8787, so that another cluster cannot clash
-        dashboard_address="127.0.0.1:0",
-        scheduler_kwargs={"dashboard": False},
-    )
-    yield cluster
-    cluster.close()
-
-
 def test_three_tiles_of_five_nights_on_dask_are_identical_to_the_local_pool(
     tmp_path, nights, dask_cluster
 ):

@@ -645,23 +645,6 @@ def test_lock_is_released_when_the_run_raises(toy, monkeypatch) -> None:
 # ---------------------------------------------------------------------- executors
 
 
-@pytest.fixture(scope="module")
-def dask_cluster():
-    distributed = pytest.importorskip("distributed")
-    cluster = distributed.LocalCluster(
-        n_workers=2,
-        threads_per_worker=1,
-        processes=True,
-        host="127.0.0.1",
-        # A random loopback port, not the usual 8787: another cluster on the
-        # machine must not turn the port-change warning into a test error.
-        dashboard_address="127.0.0.1:0",
-        scheduler_kwargs={"dashboard": False},
-    )
-    yield cluster
-    cluster.close()
-
-
 def test_local_pool_and_dask_give_identical_products(toy, tmp_path, dask_cluster) -> None:
     data = toy_config_data(tmp_path)
     hashes = {}
