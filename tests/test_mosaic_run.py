@@ -107,7 +107,7 @@ def test_mistakes_in_a_mosaic_config_are_errors_that_say_where(tmp_path, nights,
     assert str(path) in str(info.value)  # the file (and line) of the mistake
 
 
-def test_nights_must_exist_and_be_configs_or_folders(tmp_path, nights):
+def test_nights_must_exist_and_be_configs_or_folders(tmp_path, nights, capsys):
     (tmp_path / "notes.txt").write_text("x")
     for entry, match in [
         (tmp_path / "nowhere", "no such night config or product folder"),
@@ -121,6 +121,10 @@ def test_nights_must_exist_and_be_configs_or_folders(tmp_path, nights):
     good = write_config(tmp_path, nights)
     assert main(["mosaic", good, "--status", "--force"]) == EXIT_USAGE
     assert main(["mosaic", good, "--tiles", "7"]) == EXIT_USAGE  # the mosaic has tiles 0-2
+    capsys.readouterr()
+    assert main(["mosaic", good, "--tiles", "1,x"]) == EXIT_USAGE
+    error = capsys.readouterr().err
+    assert "--tiles" in error and "cannot read 'x'" in error and "stretches" not in error
 
 
 # ------------------------------------------------------------ runs, reruns, executors

@@ -109,7 +109,10 @@ def no_progress(label: str, done: int, total: int) -> None:
 
 
 def parse_stretches(text: str) -> frozenset[int]:
-    """Parse a stretch selection such as ``'0,3-5'`` into ``{0, 3, 4, 5}``.
+    """Parse an index selection such as ``'0,3-5'`` into ``{0, 3, 4, 5}``.
+
+    Used for stretches and for mosaic tiles alike: the error names neither,
+    the caller (argparse's option) says which.
 
     Examples
     --------
@@ -124,11 +127,10 @@ def parse_stretches(text: str) -> frozenset[int]:
             hi = int(last) if sep else lo
         except ValueError:
             raise ValueError(
-                f"stretches: cannot read {part.strip()!r} in {text!r}; use indices and "
-                "ranges such as '0,3-5'."
+                f"cannot read {part.strip()!r} in {text!r}; use indices and ranges such as '0,3-5'."
             ) from None
         if lo < 0 or hi < lo:
-            raise ValueError(f"stretches: {part.strip()!r} is not a range of indices >= 0.")
+            raise ValueError(f"{part.strip()!r} is not a range of indices >= 0.")
         selected.update(range(lo, hi + 1))
     return frozenset(selected)
 
