@@ -311,6 +311,39 @@ def test_the_mosaic_reads_the_science_stages_header_cards():
     assert night.seeing == header["SEEING"]
 
 
+def test_a_science_header_reads_through_astropy_wcs_without_fixes():
+    # The solved WCS comes from WCS.to_header (astrometry's stretch_wcs_cards),
+    # which writes MJDREF = 0.0; the product's time reference (DATEREF, MJDREF:
+    # one instant, FITS WCS time keywords, Rots et al. 2015, A&A 574, A36) must
+    # survive, or WCSLIB's datfix warns that they disagree when the mosaic reads it.
+    from astropy.time import Time
+
+    from pipeline.geometry import Camera, Site
+    from pipeline.products import observation_header
+    from pipeline.stages.science import replace_wcs
+
+    reference = Time("2026-10-16T18:49:38.076", scale="utc")
+    rectified = observation_header(
+        reference_time=reference,
+        start=-188.0,
+        stop=47.0,
+        exposure=30.0,
+        site=Site(latitude=49.7, longitude=-120.0, height=1000.0, name="Test site"),
+        camera=Camera(n_columns=10, tdi_rows=100, pixel_size=15.0, focal_length=6.0),
+    )
+    solved = WCS(naxis=2)
+    solved.wcs.ctype = ["RA---TAN", "DEC--TAN"]
+    solved.wcs.crval = [31.0, 49.7]
+    solved.wcs.cdelt = [-1.4e-4, 1.4e-4]
+    header = replace_wcs(rectified, solved.to_header(relax=True))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", FITSFixedWarning)
+        wcs = WCS(header)
+    # float MJD of a 2026 date: ~1 us
+    assert wcs.wcs.mjdref.sum() == pytest.approx(reference.mjd, abs=1e-10)
+    assert header["DATEREF"] == reference.isot
+
+
 @pytest.mark.slow  # simulates and reduces a small night first: ~1-2 min
 def test_a_mosaic_of_a_reduced_night_named_by_its_config(tmp_path, capsys):
     from tests.test_cli import DEMO_NIGHT

@@ -67,6 +67,14 @@ _WCS_KEY = re.compile(
     r"^(WCSAXES|WCSNAME|CTYPE\d|CUNIT\d|CRPIX\d|CRVAL\d|CDELT\d|CROTA\d|PC\d_\d|CD\d_\d"
     r"|PV\d_\d+|PS\d_\d+|LONPOLE|LATPOLE|RADESYS|EQUINOX|A_\w+|B_\w+|AP_\w+|BP_\w+)$"
 )
+#: Time cards in a solved WCS's header: ``WCS.to_header`` writes ``MJDREF = 0.0``
+#: (and may write ``DATEREF``, ``DATE-OBS``, ...) whatever the product's time
+#: origin; the product's own time cards stay, so that ``DATEREF`` and ``MJDREF``
+#: name one instant (the time reference of Rots et al. 2015, A&A 574, A36).
+_TIME_KEY = re.compile(
+    r"^(DATEREF|MJDREF[IF]?|JDREF[IF]?|TIMESYS|TREFPOS|TREFDIR|PLEPHEM|TIMEUNIT"
+    r"|TIMEOFFS|DATE-\w+|MJD-\w+|TSTART|TSTOP|TELAPSE|XPOSURE)$"
+)
 #: Unit of calibrated images: counts of the fixed zero point.
 _UNIT = u.ct
 
@@ -86,6 +94,8 @@ def replace_wcs(header: fits.Header, cards) -> fits.Header:
     cards : astropy.io.fits.Header, mapping or sequence
         The new WCS: a header, ``{keyword: value}``, or ``[keyword, value(,
         comment)]`` entries (astrometry's ``wcs`` product, read from JSON).
+        Time cards among them (``MJDREF = 0.0`` from ``WCS.to_header``) are
+        left out: the header's own time reference stays.
     """
     new = fits.Header()
     if isinstance(cards, fits.Header):
@@ -100,7 +110,8 @@ def replace_wcs(header: fits.Header, cards) -> fits.Header:
     for key in [k for k in out if _WCS_KEY.match(k)]:
         del out[key]
     for card in new.cards:
-        out[card.keyword] = (card.value, card.comment)
+        if not _TIME_KEY.match(card.keyword):
+            out[card.keyword] = (card.value, card.comment)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", FITSFixedWarning)
         if not WCS(out).has_celestial:
