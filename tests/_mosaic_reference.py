@@ -13,7 +13,7 @@ from scipy.interpolate import RectBivariateSpline
 
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic import CoaddedPlanes, CoaddOptions
-from pipeline.mosaic._coadd import _WEIGHT_BLOCK, _flag_bits, _level_offsets
+from pipeline.mosaic._coadd import _WEIGHT_BLOCK, _flag_bits, _level_offsets, level_grid_nodes
 from pipeline.stages.rectify._resample import keys_weights
 
 #: The co-add's default flags to ignore.
@@ -142,6 +142,21 @@ def background_variance_numpy(variance: np.ndarray) -> np.ndarray:
     return spline(rows, cols)
 
 
+def level_surface_numpy(grid: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+    """A night's level on the tile (float32): ``grid`` bilinear between its nodes, linear beyond."""
+    first, spacing = level_grid_nodes()
+    axes = []
+    for n_pixels, n_nodes in zip(shape, grid.shape, strict=True):
+        t = (np.arange(n_pixels) - first) / spacing
+        k = np.clip(np.floor(t).astype(int), 0, n_nodes - 2)
+        axes.append((k, t - k))
+    (ky, fy), (kx, fx) = axes
+    fy, fx = fy[:, None], fx[None, :]
+    low = (1.0 - fx) * grid[ky][:, kx] + fx * grid[ky][:, kx + 1]
+    high = (1.0 - fx) * grid[ky + 1][:, kx] + fx * grid[ky + 1][:, kx + 1]
+    return ((1.0 - fy) * low + fy * high).astype(np.float32)
+
+
 def weighted_inputs_numpy(images, variances, flags, scale, match_levels, ignore_flags):
     """``pipeline.mosaic._coadd._weighted_inputs`` as it was in numpy."""
     images = np.asarray(images, dtype=np.float32)
@@ -160,9 +175,11 @@ def weighted_inputs_numpy(images, variances, flags, scale, match_levels, ignore_
     scale = scale.astype(np.float32)[:, None, None]
     weights = np.where(valid, scale / np.where(valid, background, 1.0), 0.0).astype(np.float32)
     images = np.where(valid, images, np.float32(0))
-    offsets = _level_offsets(images, valid, weights) if match_levels else np.zeros(n_nights)
-    shift = offsets.astype(np.float32)[:, None, None]
-    images = np.where(valid, images - shift, np.float32(0))
+    grids = _level_offsets(images, valid, weights) if match_levels else None
+    offsets = np.zeros(n_nights) if grids is None else grids.mean(axis=(1, 2))
+    if grids is not None:
+        images = images - np.stack([level_surface_numpy(g, images.shape[1:]) for g in grids])
+    images = np.where(valid, images, np.float32(0))
     return images, variances, flags, valid, weights, offsets
 
 

@@ -11,8 +11,11 @@ Steps (:func:`mosaic_tile`; :func:`coadd` is the part that sees only arrays):
    the products of one night (its stretches) form one plane per night, each
    resampled with its neighbours' edge pixels so that their seams leave no
    gap (:mod:`pipeline.mosaic._seams`).
-3. Match levels: each night's median offset from the nights' median (its sky
-   level) is removed, keeping the weighted mean level.
+3. Match levels: each night's offset from the nights' median (its sky
+   level) is removed, keeping the weighted mean level: the median difference
+   over blocks of 128 pixels, interpolated bilinearly (a night's sky changes
+   along the scan, i.e. with time; one offset per night would leave ramps
+   that the rejection takes for outliers).
 4. Weights: ``w_i = s_i / B_i``, ``B_i`` the median of the night's predicted
    pixel variance ``V_i`` (variance plane times the resampling's pixel
    factor) over blocks of 32 x 32 pixels, interpolated bilinearly: smooth and
@@ -229,7 +232,8 @@ class CoaddedPlanes:
     rejected : ndarray of int, shape (n_nights,)
         Pixels of each night rejected as outliers (after growing).
     offsets : ndarray, shape (n_nights,)
-        Level subtracted from each night, e-.
+        Mean level subtracted from each night, e- (the level follows the
+        night's sky across the tile: step 3 of the module docstring).
     """
 
     image: np.ndarray
@@ -257,8 +261,10 @@ def _flag_bits(names: Sequence[str]) -> int:
 _WEIGHT_BLOCK = 32
 
 
-def _background_grid(variance: np.ndarray, valid: np.ndarray) -> np.ndarray:
-    """The median of ``variance`` over blocks of ``_WEIGHT_BLOCK`` pixels (at least 2 x 2 of them).
+def _background_grid(
+    variance: np.ndarray, valid: np.ndarray, block: int = _WEIGHT_BLOCK
+) -> np.ndarray:
+    """The median of ``variance`` over blocks of ``block`` pixels (at least 2 x 2 of them).
 
     A star's pixels carry its photon noise and the resampling's phases make
     the variance plane ripple from pixel to pixel; the block median is the
@@ -268,7 +274,7 @@ def _background_grid(variance: np.ndarray, valid: np.ndarray) -> np.ndarray:
     """
     from pipeline.mosaic._coadd_jit import block_medians
 
-    grid = block_medians(variance, valid, _WEIGHT_BLOCK)
+    grid = block_medians(variance, valid, block)
     good = np.isfinite(grid)
     if not good.any():
         return np.full((2, 2), np.nan)
@@ -280,6 +286,12 @@ def _background_grid(variance: np.ndarray, valid: np.ndarray) -> np.ndarray:
 
 #: Every this many rows and columns feed the reference of the level matching.
 _LEVEL_STEP = 4
+#: Side of the blocks (in those samples) over which a night's level offset is
+#: the median difference from the reference: 32 samples = 128 tile pixels, so
+#: that the offset's own noise (1.25 sigma / 32 per block) adds < 0.2 % to the
+#: co-add's variance, while a sky that changes along the night (along the
+#: scan) is followed to within a small fraction of its gradient.
+_LEVEL_BLOCK = 32
 
 
 def weighted_median(values: np.ndarray, weights: np.ndarray) -> np.ndarray:
@@ -340,29 +352,53 @@ def _weighted_inputs(images, variances, flags, scale, match_levels, ignore_flags
     for i in range(n_nights):
         grid = _background_grid(variances[i], valid[i])
         weights[i] = bilinear_weights(grid, _WEIGHT_BLOCK, valid[i], float(np.float32(scale[i])))
-    offsets = _level_offsets(images, valid, weights) if match_levels else np.zeros(n_nights)
-    if offsets.any():
-        shift_levels(images.reshape(planes), valid.reshape(planes), offsets.astype(np.float32))
+    grids = _level_offsets(images, valid, weights) if match_levels else None
+    offsets = np.zeros(n_nights) if grids is None else grids.mean(axis=(1, 2))
+    if grids is not None and grids.any():
+        shift_levels(images, valid, grids.astype(np.float32), *level_grid_nodes())
     return images, variances, flags, valid, weights, offsets
 
 
-def _level_offsets(images: np.ndarray, valid: np.ndarray, weights: np.ndarray) -> np.ndarray:
-    """Each night's median offset from the nights' weighted median, keeping the weighted mean 0."""
+def level_grid_nodes() -> tuple[float, float]:
+    """Tile pixel of the first node of :func:`_level_offsets`' grids, and their spacing, px."""
+    return _LEVEL_STEP * (0.5 * _LEVEL_BLOCK - 0.5), float(_LEVEL_STEP * _LEVEL_BLOCK)
+
+
+def _level_offsets(images: np.ndarray, valid: np.ndarray, weights: np.ndarray) -> np.ndarray | None:
+    """Each night's offset from the nights' weighted median, smooth across the tile.
+
+    The median of the difference over blocks of ``_LEVEL_BLOCK`` samples
+    (every ``_LEVEL_STEP`` pixels), on nodes at :func:`level_grid_nodes`,
+    to be interpolated bilinearly (a night's sky changes along the scan: a
+    single offset per night leaves a ramp that the rejection takes for an
+    outlier).  Blocks without data take the median of the night's other
+    blocks; a tile less than two blocks wide gets one offset.  Per node the
+    nights' offsets, weighted by their total weights, average to 0 (the
+    co-add keeps the weighted mean level).
+
+    Returns
+    -------
+    ndarray, shape (n_nights, n_by, n_bx) or None
+        None for fewer than two nights.
+    """
     n_nights = images.shape[0]
-    offsets = np.zeros(n_nights)
     if n_nights < 2:
-        return offsets
+        return None
     step = np.s_[:, ::_LEVEL_STEP, ::_LEVEL_STEP]
     sample, sample_valid = images[step], valid[step]
     reference = weighted_median(sample, weights[step])
+    grids = []
     for i in range(n_nights):
         both = sample_valid[i] & np.isfinite(reference)
-        if both.any():
-            offsets[i] = np.median(sample[i][both] - reference[both])
+        difference = np.where(both, sample[i] - reference, 0.0)
+        grid = _background_grid(difference, both, _LEVEL_BLOCK)
+        grids.append(np.where(np.isfinite(grid), grid, 0.0))
+    shape = np.broadcast_shapes(*(g.shape for g in grids))
+    grids = np.stack([np.broadcast_to(g, shape) for g in grids])
     totals = weights.sum(axis=(1, 2))
     if totals.sum() > 0:
-        offsets -= np.sum(offsets * totals) / totals.sum()
-    return offsets
+        grids -= np.tensordot(totals, grids, axes=1) / totals.sum()
+    return grids
 
 
 def coadd(
@@ -486,9 +522,12 @@ class MosaicTile:
 
 
 def _night_planes(
-    products: Sequence[NightImage], tile: Tile, zero_point: float
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float] | None:
-    """One night's products resampled onto the tile and merged.
+    products: Sequence[NightImage],
+    tile: Tile,
+    zero_point: float,
+    planes: tuple[np.ndarray, np.ndarray, np.ndarray],
+) -> tuple[float, float, float] | None:
+    """One night's products resampled onto the tile and merged into ``planes``.
 
     Each product is resampled with the edge pixels of the night's other
     products on its grid and answers for the tile pixels that sample its own
@@ -497,45 +536,46 @@ def _night_planes(
     night's products hold the same photons there (a mean of the two would
     halve the predicted variance of one measurement).
 
-    Returns image, predicted pixel variance, flags (float32, float32, uint16),
-    and the night's pixel and large-aperture noise factors (means over its
-    products, weighted by area); None if no product reaches the tile.
+    ``planes`` (image, predicted pixel variance, flags: float32, float32,
+    uint16, shape of the tile) start as NaN, NaN and ``OUTSIDE`` and are
+    filled in place.  Returns the night's pixel and large-aperture noise
+    factors (means over its products, weighted by area) and the sum of
+    ``1 / variance`` over its pixels; None if no product reaches the tile.
     """
-    image = np.full(tile.shape, np.nan, np.float32)
-    variance = np.full(tile.shape, np.nan, np.float32)
-    flags = np.full(tile.shape, MaskBit.OUTSIDE, MASK_DTYPE)
+    from pipeline.mosaic._coadd_jit import merge_product
+
     factors, areas = [], []
+    inverse_total = 0.0
     scaled = []
     for product in products:
         gain = np.float32(10.0 ** (0.4 * (zero_point - product.zero_point)))
-        planes = np.asarray(product.image, np.float32), np.asarray(product.variance, np.float32)
+        night = np.asarray(product.image, np.float32), np.asarray(product.variance, np.float32)
         if gain != 1:
-            planes = planes[0] * gain, planes[1] * gain**2
-        scaled.append(((*planes, product.flags), product.wcs))
+            night = night[0] * gain, night[1] * gain**2
+        scaled.append(((*night, product.flags), product.wcs))
     for i, product in enumerate(products):
-        planes, wcs, core = extended_planes(*scaled[i], scaled[:i] + scaled[i + 1 :])
+        extended, wcs, core = extended_planes(*scaled[i], scaled[:i] + scaled[i + 1 :])
         result = resample_to_tile(
-            *planes, wcs, tile, noise_correlation=product.noise_correlation, core=core
+            *extended, wcs, tile, noise_correlation=product.noise_correlation, core=core
         )
         if result is None:
             continue
-        region = result.slices
-        new_variance = result.variance * np.float32(result.pixel_factor)
-        new = np.isfinite(result.image) & np.isfinite(new_variance) & (new_variance > 0)
-        old = np.isfinite(image[region])
-        take = new & ~old
-        image[region] = np.where(take, result.image, image[region])
-        variance[region] = np.where(take, new_variance, variance[region])
-        # flags of the product whose data a pixel keeps; of every product where none has data
-        flags[region] = np.where(
-            old | new, np.where(old, flags[region], result.flags), flags[region] | result.flags
+        taken, inverse = merge_product(
+            *planes,
+            result.image,
+            result.variance,
+            result.flags,
+            result.y_start,
+            result.x_start,
+            np.float32(result.pixel_factor),
         )
+        inverse_total += inverse
         factors.append((result.pixel_factor, result.noise_correlation / result.pixel_factor))
-        areas.append(take.sum())
+        areas.append(taken)
     if not factors:
         return None
     pixel, aperture = np.average(np.array(factors), axis=0, weights=np.maximum(areas, 1))
-    return image, variance, flags, float(pixel), float(aperture)
+    return float(pixel), float(aperture), inverse_total
 
 
 def mosaic_tile(
@@ -574,10 +614,23 @@ def mosaic_tile(
         )
     zero_point = kept[0].zero_point
     nights: list[str] = list(dict.fromkeys(p.night for p in kept))
+    n_y, n_x = tile.shape
+    # every night's planes, filled in place (no copies of tile-sized planes)
+    images = np.full((len(nights), n_y, n_x), np.nan, np.float32)
+    variances = np.full((len(nights), n_y, n_x), np.nan, np.float32)
+    flags = np.full((len(nights), n_y, n_x), MaskBit.OUTSIDE, MASK_DTYPE)
     planes = []
-    for night in nights:
-        merged = _night_planes([p for p in kept if p.night == night], tile, zero_point)
+    for i, night in enumerate(nights):
+        merged = _night_planes(
+            [p for p in kept if p.night == night],
+            tile,
+            zero_point,
+            (images[i], variances[i], flags[i]),
+        )
         planes.append(None if merged is None else (night, *merged))
+    if any(p is None for p in planes):
+        reached = [i for i, p in enumerate(planes) if p is not None]
+        images, variances, flags = images[reached], variances[reached], flags[reached]
     planes = [p for p in planes if p is not None]
     seeing = {p.night: p.seeing for p in kept}
     scale = np.ones(len(planes))
@@ -586,15 +639,6 @@ def mosaic_tile(
         if known:
             best = min(known)
             scale = np.array([(best / (seeing[p[0]] or best)) ** 2 for p in planes])
-    n_y, n_x = tile.shape
-    if planes:
-        images = np.stack([p[1] for p in planes])
-        variances = np.stack([p[2] for p in planes])
-        flags = np.stack([p[3] for p in planes])
-    else:
-        images = np.full((0, n_y, n_x), np.nan)
-        variances = np.full((0, n_y, n_x), np.nan)
-        flags = np.zeros((0, n_y, n_x), MASK_DTYPE)
     result = coadd(
         images,
         variances,
@@ -609,8 +653,8 @@ def mosaic_tile(
         ignore_flags=options.ignore_flags,
     )
     if planes:
-        totals = np.array([np.nansum(scale[i] / variances[i]) for i in range(len(planes))])
-        aperture = np.array([p[5] for p in planes])
+        totals = scale * np.array([p[3] for p in planes])
+        aperture = np.array([p[2] for p in planes])
         noise_correlation = float(np.sum(totals * aperture) / max(totals.sum(), 1e-300))
     else:
         noise_correlation = 1.0

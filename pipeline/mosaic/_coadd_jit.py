@@ -19,6 +19,7 @@ __all__ = [
     "combine",
     "grow_rejections",
     "median_and_noise",
+    "merge_product",
     "reject",
     "shift_levels",
     "significant_signal",
@@ -264,14 +265,38 @@ def bilinear_weights(grid, block, valid, scale):
     return out
 
 
+@numba.njit(cache=True, nogil=True, inline="always")
+def _node(position, first, spacing, n_nodes):
+    """Index of the node before ``position`` and the fraction beyond it (extrapolating linearly)."""
+    t = (position - first) / spacing
+    k = min(max(math.floor(t), 0), n_nodes - 2)
+    return k, t - k
+
+
 @numba.njit(cache=True, nogil=True)
-def shift_levels(images, valid, offsets):
-    """Subtract ``offsets[i]`` from night ``i`` of ``(n, m)`` images where valid, in place."""
-    n, m = images.shape
+def shift_levels(images, valid, grids, first, spacing):
+    """Subtract from each night of ``(n, n_y, n_x)`` images its level where valid, in place.
+
+    Night ``i``'s level is ``grids[i]`` (shape (n_by, n_bx), at least 2 x 2, or
+    1 x 1 for one level) on nodes ``first + k spacing`` px along each axis,
+    interpolated bilinearly and continued linearly beyond the outer nodes.
+    """
+    n, n_y, n_x = images.shape
+    n_by, n_bx = grids.shape[1], grids.shape[2]
     for i in range(n):
-        for p in range(m):
-            if valid[i, p]:
-                images[i, p] -= offsets[i]
+        for y in range(n_y):
+            if n_by < 2 or n_bx < 2:
+                for x in range(n_x):
+                    if valid[i, y, x]:
+                        images[i, y, x] -= grids[i, 0, 0]
+                continue
+            k, fy = _node(y, first, spacing, n_by)
+            for x in range(n_x):
+                if valid[i, y, x]:
+                    j, fx = _node(x, first, spacing, n_bx)
+                    low = (1.0 - fx) * grids[i, k, j] + fx * grids[i, k, j + 1]
+                    high = (1.0 - fx) * grids[i, k + 1, j] + fx * grids[i, k + 1, j + 1]
+                    images[i, y, x] -= np.float32((1.0 - fy) * low + fy * high)
 
 
 @numba.njit(cache=True, nogil=True)
@@ -283,3 +308,35 @@ def significant_signal(median, noise2, sky):
         if signal > 3.0 * math.sqrt(noise2[p]):
             out[p] = signal
     return out
+
+
+@numba.njit(cache=True, nogil=True)
+def merge_product(image, variance, flags, new_image, new_variance, new_flags, y0, x0, factor):
+    """Merge a product resampled onto ``[y0:, x0:]`` of a night's tile planes, in place.
+
+    A pixel takes the product's image and variance (times ``factor``) where
+    the product has data (finite, positive variance) and the night has none
+    yet; its flags become the product's there, stay where the night had
+    data, and are OR-ed where neither has.  Returns the number of pixels
+    taken and the sum of ``1 / variance`` over them.
+    """
+    n_y, n_x = new_image.shape
+    taken = 0
+    inverse = 0.0
+    for y in range(n_y):
+        for x in range(n_x):
+            value = new_image[y, x]
+            v = new_variance[y, x] * factor
+            new = np.isfinite(value) and np.isfinite(v) and v > 0
+            old = np.isfinite(image[y0 + y, x0 + x])
+            if new and not old:
+                image[y0 + y, x0 + x] = value
+                variance[y0 + y, x0 + x] = v
+                taken += 1
+                inverse += 1.0 / v
+            if not old:
+                if new:
+                    flags[y0 + y, x0 + x] = new_flags[y, x]
+                else:
+                    flags[y0 + y, x0 + x] |= new_flags[y, x]
+    return taken, inverse

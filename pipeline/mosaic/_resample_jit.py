@@ -82,15 +82,19 @@ def resample_rows(image, variance, flags, positions, outside):
     sum_jacobian = 0.0
     for r in range(n_rows):
         line = positions[r]
+        row_w2 = 0.0
+        row_jacobian = 0.0
         for j in range(n_out):
             jacobian = _slope(
                 line[max(j - 1, 0)], line[j], line[min(j + 1, n_out - 1)], j == 0, j == n_out - 1
             )
-            sum_jacobian += jacobian
+            row_jacobian += jacobian
             out[r, j], vout[r, j], mout[r, j], w2 = _sample(
                 image[r], variance[r], flags[r], line[j], jacobian, outside
             )
-            sum_w2 += w2
+            row_w2 += w2
+        sum_w2 += row_w2
+        sum_jacobian += row_jacobian
     return out, vout, mout, sum_w2, sum_jacobian
 
 
