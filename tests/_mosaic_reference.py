@@ -13,7 +13,14 @@ from scipy.interpolate import RectBivariateSpline
 
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic import CoaddedPlanes, CoaddOptions
-from pipeline.mosaic._coadd import _WEIGHT_BLOCK, _flag_bits, _level_offsets, level_grid_nodes
+from pipeline.mosaic._coadd import (
+    _WEIGHT_BLOCK,
+    _WEIGHT_STRIDE,
+    _flag_bits,
+    _level_offsets,
+    _sky_level,
+    level_grid_nodes,
+)
 from pipeline.stages.rectify._resample import keys_weights
 
 #: The co-add's default flags to ignore.
@@ -119,10 +126,12 @@ def weighted_median_numpy(values: np.ndarray, weights: np.ndarray) -> np.ndarray
 def background_variance_numpy(variance: np.ndarray) -> np.ndarray:
     """``_background_grid`` and its bilinear interpolation, as they were in numpy."""
     n_y, n_x = variance.shape
-    b = _WEIGHT_BLOCK
-    n_by, n_bx = -(-n_y // b), -(-n_x // b)
+    n_by, n_bx = -(-n_y // _WEIGHT_BLOCK), -(-n_x // _WEIGHT_BLOCK)
+    # every _WEIGHT_STRIDE-th row and column of each block
+    b = _WEIGHT_BLOCK // _WEIGHT_STRIDE
+    sample = variance[::_WEIGHT_STRIDE, ::_WEIGHT_STRIDE]
     padded = np.full((n_by * b, n_bx * b), np.nan)
-    padded[:n_y, :n_x] = variance
+    padded[: sample.shape[0], : sample.shape[1]] = sample
     blocks = padded.reshape(n_by, b, n_bx, b).transpose(0, 2, 1, 3).reshape(n_by, n_bx, b * b)
     finite = np.isfinite(blocks)
     counts = finite.sum(axis=-1)
@@ -134,8 +143,8 @@ def background_variance_numpy(variance: np.ndarray) -> np.ndarray:
     grid = np.where(good, middle, np.median(middle[good]))
     if n_by < 2 or n_bx < 2:
         return np.full(variance.shape, float(np.median(grid)))
-    centres_y = (np.arange(n_by) + 0.5) * b - 0.5
-    centres_x = (np.arange(n_bx) + 0.5) * b - 0.5
+    centres_y = (np.arange(n_by) + 0.5) * _WEIGHT_BLOCK - 0.5
+    centres_x = (np.arange(n_bx) + 0.5) * _WEIGHT_BLOCK - 0.5
     spline = RectBivariateSpline(centres_y, centres_x, grid, kx=1, ky=1)
     rows = np.clip(np.arange(n_y, dtype=float), centres_y[0], centres_y[-1])
     cols = np.clip(np.arange(n_x, dtype=float), centres_x[0], centres_x[-1])
@@ -196,6 +205,7 @@ def coadd_numpy(
     grow: int = 1,
     match_levels: bool = True,
     ignore_flags=_IGNORE_FLAGS,
+    overwrite_input: bool = False,  # accepted as coadd does; the numpy version always copies
 ) -> CoaddedPlanes:
     """:func:`pipeline.mosaic.coadd` as it was in numpy (steps 5-6 of its docstring)."""
     images, variances, flags, valid, weights, offsets = weighted_inputs_numpy(
@@ -206,7 +216,7 @@ def coadd_numpy(
     rejected = np.zeros(images.shape, bool)
     if n_nights >= min_nights:
         median = weighted_median_numpy(images, weights)
-        sky = np.nanmedian(median) if np.isfinite(median).any() else 0.0
+        sky = _sky_level(median)
         # the noise of a median is ~sqrt(pi/2) times that of the mean (common practice)
         inverse = np.where(valid, 1.0 / np.where(valid, variances, 1.0), 0.0).sum(axis=0)
         noise = np.sqrt(0.5 * np.pi / np.where(inverse > 0, inverse, np.inf))

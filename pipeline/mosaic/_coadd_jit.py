@@ -22,7 +22,6 @@ __all__ = [
     "merge_product",
     "reject",
     "shift_levels",
-    "significant_signal",
     "validity",
     "weighted_median_flat",
 ]
@@ -96,20 +95,42 @@ def median_and_noise(images, weights, valid, variances):
 
 
 @numba.njit(cache=True, nogil=True)
-def reject(images, variances, valid, median, noise2, signal, count, args):
-    """Outliers of ``(n, m)`` planes: ``(x - median)**2 > reject_sigma**2 * sigma2``.
+def reject(images, variances, valid, median, noise2, count, n_x, sky, args):
+    """Outliers of ``(n, m)`` planes (``m`` pixels of rows ``n_x`` long).
 
-    ``args`` is ``(reject_sigma, source_tolerance, min_nights)``; ``sigma2 =
-    V_i + V_m + (source_tolerance * signal)**2``.
+    Night ``i`` of pixel ``p`` is an outlier where ``(x - median)**2 >
+    reject_sigma**2 * (V_i + V_m + (source_tolerance * S)**2)``, ``S`` the
+    highest significant signal ``median - sky`` (above ``3 sqrt(V_m)``;
+    ``V_m = noise2``) within ``source_radius`` pixels (a square).  ``S`` is
+    needed only where a night lies beyond the limit without it, and is
+    computed there alone.  ``args`` is ``(reject_sigma, source_tolerance,
+    min_nights, source_radius)``.
     """
-    reject_sigma, source_tolerance, min_nights = args
+    reject_sigma, source_tolerance, min_nights, radius = args
     n, m = images.shape
+    n_y = m // n_x
     rejected = np.zeros((n, m), np.bool_)
     limit = reject_sigma * reject_sigma
     for p in range(m):
         if count[p] < min_nights:
             continue
-        allowance = noise2[p] + (source_tolerance * signal[p]) ** 2
+        suspect = False
+        for i in range(n):
+            if valid[i, p]:
+                d = images[i, p] - median[p]
+                suspect |= d * d > limit * (variances[i, p] + noise2[p])
+        if not suspect:
+            continue
+        y = p // n_x
+        x = p - y * n_x
+        signal = 0.0
+        for yy in range(max(y - radius, 0), min(y + radius + 1, n_y)):
+            for xx in range(max(x - radius, 0), min(x + radius + 1, n_x)):
+                q = yy * n_x + xx
+                s = median[q] - sky
+                if s > 3.0 * math.sqrt(noise2[q]) and s > signal:
+                    signal = s
+        allowance = noise2[p] + (source_tolerance * signal) ** 2
         for i in range(n):
             if valid[i, p]:
                 d = images[i, p] - median[p]
@@ -174,11 +195,13 @@ def combine(images, variances, flags, weights, kept):
 
 
 @numba.njit(cache=True, nogil=True)
-def validity(images, variances, flags, ignore_bits):
-    """``valid`` (finite, positive variance, no ignored flag) and the images with 0 elsewhere."""
+def validity(images, variances, flags, ignore_bits, cleaned):
+    """``valid`` (finite, positive variance, no ignored flag); ``cleaned``: images, 0 elsewhere.
+
+    ``cleaned`` may be ``images`` itself.
+    """
     n, m = images.shape
     valid = np.empty((n, m), np.bool_)
-    cleaned = np.empty((n, m), np.float32)
     for i in range(n):
         for p in range(m):
             x = images[i, p]
@@ -190,18 +213,22 @@ def validity(images, variances, flags, ignore_bits):
 
 
 @numba.njit(cache=True, nogil=True)
-def block_medians(variance, valid, block):
-    """Lower median of the valid ``variance`` in each ``block`` x ``block`` block; NaN if none."""
+def block_medians(variance, valid, block, stride):
+    """Lower median of the valid ``variance`` in each ``block`` x ``block`` block; NaN if none.
+
+    Every ``stride``-th row and column of a block is read (``block`` a multiple of it).
+    """
     n_y, n_x = variance.shape
     n_by, n_bx = -(-n_y // block), -(-n_x // block)
     out = np.full((n_by, n_bx), np.nan)
     # one band of blocks at a time, read row by row (the order the planes are stored in)
-    buffers = np.empty((n_bx, block * block), np.float64)
+    side = block // stride
+    buffers = np.empty((n_bx, side * side), np.float64)
     counts = np.zeros(n_bx, np.int64)
     for by in range(n_by):
         counts[:] = 0
-        for y in range(by * block, min((by + 1) * block, n_y)):
-            for x in range(n_x):
+        for y in range(by * block, min((by + 1) * block, n_y), stride):
+            for x in range(0, n_x, stride):
                 if valid[y, x]:
                     bx = x // block
                     buffers[bx, counts[bx]] = variance[y, x]
@@ -239,15 +266,14 @@ def _select(values, n, k):
 
 
 @numba.njit(cache=True, nogil=True)
-def bilinear_weights(grid, block, valid, scale):
-    """``scale / B`` where ``valid`` (0 elsewhere), ``B`` bilinear in ``grid`` between blocks.
+def bilinear_weights(grid, block, valid, scale, out):
+    """``out = scale / B`` where ``valid`` (0 elsewhere), ``B`` bilinear in ``grid`` between blocks.
 
     ``grid`` (at least 2 x 2) holds values at block centres ``(k + 1/2) block - 1/2``;
     beyond the first and last centres ``B`` is held constant.
     """
     n_y, n_x = valid.shape
     n_by, n_bx = grid.shape
-    out = np.empty((n_y, n_x), np.float32)
     for y in range(n_y):
         t = min(max((y + 0.5) / block - 0.5, 0.0), n_by - 1.0)
         k = min(int(t), n_by - 2)
@@ -297,17 +323,6 @@ def shift_levels(images, valid, grids, first, spacing):
                     low = (1.0 - fx) * grids[i, k, j] + fx * grids[i, k, j + 1]
                     high = (1.0 - fx) * grids[i, k + 1, j] + fx * grids[i, k + 1, j + 1]
                     images[i, y, x] -= np.float32((1.0 - fy) * low + fy * high)
-
-
-@numba.njit(cache=True, nogil=True)
-def significant_signal(median, noise2, sky):
-    """``median - sky`` where it exceeds ``3 sqrt(noise2)``, else 0 (and 0 where NaN)."""
-    out = np.zeros(median.size, np.float64)
-    for p in range(median.size):
-        signal = median[p] - sky
-        if signal > 3.0 * math.sqrt(noise2[p]):
-            out[p] = signal
-    return out
 
 
 @numba.njit(cache=True, nogil=True)

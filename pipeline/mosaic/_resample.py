@@ -381,10 +381,14 @@ def resample_to_tile(
         int(MaskBit.NONFINITE),
         np.dtype(np.float32),
     )
-    *planes, weight2_1, jacobian1 = _resample_axis(planes, crossing - x_lo, axis=1)
-    out, vout, mout, weight2_2, jacobian2 = _resample_axis(planes, rows - t_lo, axis=0)
+    crossing -= x_lo  # in place: the positions are ours, and tile-sized
+    *planes, weight2_1, jacobian1 = _resample_axis(planes, crossing, axis=1)
+    del crossing
+    rows -= t_lo
+    out, vout, mout, weight2_2, jacobian2 = _resample_axis(planes, rows, axis=0)
     no_data = (mout & MASK_DTYPE.type(int(NO_DATA_BITS))) != 0
     if core is not None:
+        rows += t_lo
         elsewhere = ~_in_core(mapping, core, rows, ys, xs, (n_rows, n_cols))
         no_data |= elsewhere
         mout[elsewhere] |= MASK_DTYPE.type(int(MaskBit.OUTSIDE))
