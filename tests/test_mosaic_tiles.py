@@ -37,8 +37,11 @@ def test_tangent_tiles_share_the_overlap_along_the_central_declination(footprint
     decs = np.concatenate([f.dec for f in footprints])
     for tile in tiles:
         assert tile.shape == (500, 800)
-        # centres on the strip's central declination (midway between its edges)
-        assert tile.wcs.wcs.crval[1] == pytest.approx(0.5 * (decs.min() + decs.max()), abs=1e-12)
+        # centres on the strip's central declination (midway between its edges),
+        # rounded to a whole number of pixels (1 arcsec) from the equator
+        middle = 0.5 * (decs.min() + decs.max())
+        assert abs(tile.wcs.wcs.crval[1] - middle) <= 0.5 / 3600 + 1e-12
+        assert tile.wcs.wcs.crval[1] * 3600 == pytest.approx(round(middle * 3600), abs=1e-6)
         assert tile.wcs.wcs.ctype[0] == "RA---TAN"
     for west, east in itertools.pairwise(tiles):
         # Tiles run west to east, and east is to the left (CDELT1 < 0, the FITS
@@ -79,6 +82,33 @@ def test_tangent_tiles_cover_the_strip_across_ra_zero(footprints):
         assert inside.all()
         assert all(isinstance(touches(t, fp), bool) for t in tiles)
         assert any(touches(t, fp) for t in tiles)
+
+
+@pytest.mark.parametrize("overlap", [0, 96])
+def test_a_night_that_extends_the_strip_leaves_the_existing_tiles_in_place(footprints, overlap):
+    # The first two stretches, then all three (the strip grows east across RA
+    # 0), then the last two (a night that only covers the east end): every
+    # tile of a shorter strip comes back with the same name and the same WCS.
+    def layout(chosen):
+        tiles = strip_tiles(chosen, pixel_scale=1.0, shape=(700, 800), overlap=overlap)
+        return {t.name: (t.shape, t.wcs.wcs.crval.tolist()) for t in tiles}
+
+    full = layout(footprints)
+    for part in (footprints[:2], footprints[1:], footprints[:1]):
+        tiles = layout(part)
+        assert len(tiles) < len(full)
+        for name, (shape, crval) in tiles.items():
+            assert full[name][0] == shape
+            # the same arithmetic on the same integers: equal to float rounding
+            np.testing.assert_allclose(full[name][1], crval, rtol=0, atol=1e-9)
+        # and still every point of the shorter strip lies in one of its tiles
+        chosen = strip_tiles(part, pixel_scale=1.0, shape=(700, 800), overlap=overlap)
+        for fp in part:
+            inside = np.zeros(fp.ra.size, bool)
+            for tile in chosen:
+                x, y = tile.wcs.world_to_pixel_values(fp.ra, fp.dec)
+                inside |= (x >= -0.5) & (x <= 799.5) & (y >= -0.5) & (y <= 699.5)
+            assert inside.all()
 
 
 def test_cylindrical_strip_rows_follow_circles_of_declination(footprints):

@@ -5,8 +5,10 @@ east to the left (``CDELT1 < 0``), independent of the nights' frames.  Three
 layouts:
 
 * :func:`strip_tiles` with ``projection='TAN'``: gnomonic tiles of
-  ``shape`` pixels whose centres lie on the strip's central declination,
-  spaced so that neighbours share ``overlap`` columns along it;
+  ``shape`` pixels whose centres lie on the strip's central declination
+  (rounded to a whole number of pixels), spaced so that neighbours share
+  ``overlap`` columns along it, on a grid anchored at right ascension 0: a
+  night that extends the strip adds tiles without moving the others;
 * :func:`strip_tiles` with ``projection='CAR'``: one plate-carree image along
   the whole strip.  Its reference point lies on the celestial equator
   (Calabretta & Greisen 2002, A&A 395, 1077, section 5.2.3), so rows are
@@ -16,7 +18,9 @@ layouts:
 * :func:`explicit_tiles`: gnomonic tiles at given centres and sizes.
 
 Right ascensions are unwrapped about the first footprint's centre, so strips
-that cross 0/360 deg are laid out like any other.
+that cross 0/360 deg are laid out like any other; the tangent tiles' grid is
+then counted from the strip's western end's side of 0 h (a night that moves
+that end across 0 h moves the grid).
 """
 
 from __future__ import annotations
@@ -65,7 +69,10 @@ class Tile:
     Attributes
     ----------
     index : int
-        Position of the tile along the strip (0, 1, ...).
+        Position of the tile along the strip: for tiles along a strip, its
+        place on the sky's grid of tiles (centre at right ascension ``index
+        * step``), so that it keeps its name when nights extend the strip;
+        0, 1, ... for explicit tiles.
     wcs : astropy.wcs.WCS
         Celestial ICRS WCS of the tile's pixels.
     shape : (int, int)
@@ -205,9 +212,12 @@ def strip_tiles(
     reference = float(np.mean(footprints[0].ra[:_EDGE_SAMPLES]))
     ra = np.concatenate([_unwrapped(f.ra, reference) for f in footprints])
     dec = np.concatenate([f.dec for f in footprints])
-    dec_centre = 0.5 * (dec.min() + dec.max())
-    ra_lo, ra_hi = float(ra.min()), float(ra.max())
     scale_deg = pixel_scale / 3600.0
+    # anchored: the centre row on a whole number of pixels from the equator,
+    # right ascensions with the strip's western end in [0, 360)
+    dec_centre = float(np.round(0.5 * (dec.min() + dec.max()) / scale_deg) * scale_deg)
+    ra = ra - 360.0 * np.floor(ra.min() / 360.0)
+    ra_lo, ra_hi = float(ra.min()), float(ra.max())
     height = (dec.max() - dec.min()) / scale_deg
     if height > n_y:
         log.info(
@@ -225,12 +235,19 @@ def strip_tiles(
             Tile(0, _tile_wcs("CAR", centre, dec_centre, (n_y, length), scale_deg), (n_y, length))
         ]
     step = _tan_spacing((n_x - overlap) * scale_deg, dec_centre)
-    width = n_x * scale_deg / cos_dec
-    n_tiles = max(1, int(np.ceil((ra_hi - ra_lo - width) / step)) + 1)
-    first = 0.5 * (ra_lo + ra_hi) - 0.5 * (n_tiles - 1) * step
+    # Tile k is centred at right ascension k * step: a night that extends the
+    # strip adds tiles and leaves the others as they were.  Half the tile's
+    # extent in right ascension where it is narrowest (its row nearest the
+    # equator; gnomonic alpha = atan2(xi, cos d0 - eta sin d0), Calabretta &
+    # Greisen 2002, eq. 54 inverted).
+    xi, eta = np.radians(0.5 * n_x * scale_deg), np.radians(0.5 * n_y * scale_deg)
+    d0 = np.radians(dec_centre)
+    half = float(np.degrees(np.arctan2(xi, np.cos(d0) + eta * abs(np.sin(d0)))))
+    first = int(np.floor((ra_lo + half) / step))
+    last = max(int(np.ceil((ra_hi - half) / step)), first)
     return [
-        Tile(i, _tile_wcs("TAN", first + i * step, dec_centre, (n_y, n_x), scale_deg), (n_y, n_x))
-        for i in range(n_tiles)
+        Tile(k, _tile_wcs("TAN", (k * step) % 360.0, dec_centre, (n_y, n_x), scale_deg), (n_y, n_x))
+        for k in range(first, last + 1)
     ]
 
 
