@@ -76,9 +76,9 @@ def median_and_noise(images, weights, valid, variances):
     ``V_m`` is 0 where no night is valid.
     """
     n, m = images.shape
-    median = np.empty(m, np.float64)
+    median = np.empty(m, images.dtype)  # one of the values
     noise2 = np.empty(m, np.float64)
-    count = np.empty(m, np.int64)
+    count = np.empty(m, np.uint16)
     order_v = np.empty(n, np.float64)
     order_w = np.empty(n, np.float64)
     for p in range(m):
