@@ -58,9 +58,10 @@ def test_the_three_demo_nights_coadd_with_coverage_three(tmp_path, capsys):
     )
     assert coverage.max() == 3
     # The nights share the strip to within arcseconds (same sidereal time, a day
-    # apart), so most covered pixels hold all three.  Measured: 0.875; the rest
-    # is mostly ~96000 pixels of the 2026-10-16 night that the co-add rejects
-    # at one end of the middle tile (its nights.ecsv 'rejected'), and the strip's
-    # edges.  0.8 leaves room for that, far above the 0 of a night on other sky.
+    # apart), so most covered pixels hold all three.  Measured: 0.971, the rest
+    # mostly the strip's edges and the satellite trail (0.875 while one level
+    # per night left the 2026-10-16 sky's 2 e- ramp along the scan for the
+    # rejection: ~96000 pixels of the middle tile).  0.95 leaves room for the
+    # edges to move with the tiles, and fails on that ramp's rejections.
     covered = coverage > 0
-    assert np.mean(coverage[covered] == 3) > 0.8
+    assert np.mean(coverage[covered] == 3) > 0.95

@@ -70,6 +70,24 @@ def test_stars_land_at_their_true_sky_positions(stars_on_tile):
         assert (box * gy).sum() / total == pytest.approx(y, abs=0.05)
 
 
+@pytest.mark.parametrize("n_rows", [30, 45])
+def test_a_night_only_a_few_rows_deep_on_the_tile_keeps_its_stars(n_rows):
+    # A tile that the strip only grazes: pass 1's crossing columns are known
+    # on 3 or 4 input rows, and their spline's degree along the rows must
+    # follow (an anchored tile at the strip's end met this).
+    shape = (n_rows, 220)
+    wcs = night_wcs(shape, rotation=0.3, scale=1.01)
+    x, y, flux = np.array([60.3, 150.7]), np.array([n_rows / 2 - 0.2, n_rows / 2 + 0.4]), 1e4
+    image = gaussian_stars(shape, x, y, np.full(2, flux), SIGMA)
+    target = tile(160)
+    resampled = _on_tile(resample_to_tile(*_planes(image), wcs, target), target.shape)
+    tx, ty = target.wcs.world_to_pixel_values(*wcs.pixel_to_world_values(x, y))
+    for star_x, star_y in zip(tx, ty, strict=True):
+        box, _, _ = _box(resampled, star_x, star_y)
+        # the mosaic's 0.2 % flux requirement, as for the full night above
+        assert np.nansum(box) / flux - 1 == pytest.approx(0, abs=2e-3)
+
+
 def test_agrees_with_reproject_exact_on_a_smooth_image():
     """reproject's exact overlap-area resampler (a reference library) gives the same image."""
     shape = (120, 130)

@@ -280,7 +280,7 @@ def _crossing_columns(
         degree = (3, 3)
     if min(degree) < 1:
         return np.broadcast_to(crossing[:1, :1], (rows.size, columns.size)).copy()
-    spline = RectBivariateSpline(y_nodes, x_nodes, crossing, kx=degree[1], ky=degree[0])
+    spline = RectBivariateSpline(y_nodes, x_nodes, crossing, kx=degree[0], ky=degree[1])
     return _grid_values(spline, rows, columns)
 
 
