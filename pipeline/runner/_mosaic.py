@@ -382,9 +382,11 @@ def _run_mosaic(config, tiles, force, progress):
         wanted = frozenset(tiles)
         absent = sorted(wanted - {t.index for t in store.tiles})
         if absent:
+            indices = [t.index for t in store.tiles]
+            have = f"tiles {min(indices)} to {max(indices)}" if indices else "no tiles"
             raise ValueError(
-                f"--tiles {','.join(map(str, absent))}: the mosaic has tiles 0 to "
-                f"{len(store.tiles) - 1}; see `zdrift mosaic --status`."
+                f"--tiles {','.join(map(str, absent))}: the mosaic has {have} (the numbers "
+                "in their names); see `zdrift mosaic --status`."
             )
         selected = [t for t in store.tiles if t.index in wanted]
     report = RunReport(config.mosaic.name, kind="mosaic")
