@@ -652,9 +652,10 @@ def test_aperture_sums_and_errors_match_photutils():
     no_data[20:24, 30:33] = True
     residual[no_data] = np.nan
     variance[no_data] = np.nan
-    x, y = np.array([31.2, 10.5, 60.0]), np.array([21.7, 40.1, 5.3])
-    kernels = [POINT] * 3
-    radii = [2.0, 4.5]
+    # the last two apertures are cut by the image's edges
+    x, y = np.array([31.2, 10.5, 60.0, 1.3, 78.6]), np.array([21.7, 40.1, 5.3, 58.8, 0.2])
+    kernels = [POINT] * 5
+    radii = [2.0, 4.5, 3.3]
     flux, err, _ = _measure.aperture_fluxes(
         residual, variance, no_data, x, y, kernels, SeeingProfile(3.0), radii, 1.7
     )

@@ -40,9 +40,10 @@ from scipy.signal import oaconvolve, savgol_filter
 from pipeline.stages.detect._model import KernelGrid, SeeingProfile, model_image
 
 __all__ = [
+    "band_templates",
     "column_trend",
     "estimate_background",
-    "filter_denominator",
+    "filter_scale",
     "find_sources",
     "inverse_variance",
     "significance_map",
@@ -185,8 +186,12 @@ def template(
     return img, (hy, hx)
 
 
-def _band_templates(kernels, profile, x_centre, ny, band):
-    """Per band of rows: ``(lo, hi, flipped template, half height)``."""
+def band_templates(kernels, profile, x_centre: float, ny: int, band: int) -> list:
+    """Matched-filter templates per band of ``band`` rows of ``ny``.
+
+    Returns a list of ``(lo, hi, flipped template, half height)``, rows
+    ``[lo, hi)``, float32 templates (see :func:`template`).
+    """
     out = []
     for lo in range(0, ny, band):
         hi = min(lo + band, ny)
@@ -223,24 +228,37 @@ def inverse_variance(variance: np.ndarray) -> np.ndarray:
     return inv
 
 
-def filter_denominator(
+def filter_scale(
     variance: np.ndarray,
     kernels: KernelGrid,
     profile: SeeingProfile,
     *,
     x_centre: float,
-    band: int = 256,
+    band: int = 64,
+    noise_correlation: float = 1.0,
     inverse: np.ndarray | None = None,
+    templates: list | None = None,
 ) -> np.ndarray:
-    """``sum(k^2 / V)`` of the matched filter at each pixel, shape of ``variance``.
+    """``1 / sqrt(noise_correlation sum(k^2 / V))`` at each pixel, float32, shape of ``variance``.
 
-    It depends only on the variance plane and the template, so a second
-    search on the same stretch (the image minus the fitted models) reuses it.
-    See :func:`significance_map` for the parameters.
+    The matched filter's correlation with the data times this plane is its
+    signal-to-noise.  It depends only on the variance plane and the
+    template, so it is made once per stretch and profile and a second search
+    (the image minus the fitted models) reuses it: the square root and the
+    division are then one multiplication per search.  0 where no pixel with
+    data contributes.  See :func:`significance_map` for the parameters.
     """
     inv = inverse_variance(variance) if inverse is None else inverse
-    templates = _band_templates(kernels, profile, x_centre, variance.shape[0], band)
-    return _filter_bands(inv, templates, square=True)
+    if templates is None:
+        templates = band_templates(kernels, profile, x_centre, variance.shape[0], band)
+    scale = _filter_bands(inv, templates, square=True)
+    # Rounding leaves tiny values (and negatives) where no pixel has data.
+    valid = scale > 1e-12 * float(scale.max())
+    scale *= np.float32(noise_correlation)
+    np.sqrt(scale, out=scale, where=valid)
+    np.divide(np.float32(1.0), scale, out=scale, where=valid)
+    scale[~valid] = 0.0
+    return scale
 
 
 def significance_map(
@@ -250,10 +268,11 @@ def significance_map(
     profile: SeeingProfile,
     *,
     x_centre: float,
-    band: int = 256,
+    band: int = 64,
     noise_correlation: float = 1.0,
-    denominator: np.ndarray | None = None,
+    scale: np.ndarray | None = None,
     inverse: np.ndarray | None = None,
+    templates: list | None = None,
 ) -> np.ndarray:
     """Matched-filter signal-to-noise of a point source at each pixel.
 
@@ -274,11 +293,14 @@ def significance_map(
         Rows per template band (the smear changes across the chip).
     noise_correlation : float
         rectify's ``NOISECOR``.
-    denominator : ndarray or None
-        :func:`filter_denominator` of the same variance, kernels, profile and
-        bands, if already computed; None computes it.
+    scale : ndarray or None
+        :func:`filter_scale` of the same variance, kernels, profile, bands
+        and noise correlation, if already computed; None computes it.
     inverse : ndarray of float32 or None
         :func:`inverse_variance` of ``variance``, if already computed.
+    templates : list or None
+        :func:`band_templates` of the same kernels, profile and bands, if
+        already computed.
 
     Returns
     -------
@@ -294,19 +316,21 @@ def significance_map(
     weighted = np.empty(inv.shape, np.float32)
     np.multiply(residual, inv, out=weighted, casting="same_kind")
     weighted[~np.isfinite(weighted)] = 0.0  # NaN residual (no data); inv is 0 there too
-    templates = _band_templates(kernels, profile, x_centre, residual.shape[0], band)
-    num = _filter_bands(weighted, templates, square=False)
-    if denominator is None:
-        denominator = filter_denominator(
-            variance, kernels, profile, x_centre=x_centre, band=band, inverse=inv
+    if templates is None:
+        templates = band_templates(kernels, profile, x_centre, residual.shape[0], band)
+    if scale is None:
+        scale = filter_scale(
+            variance,
+            kernels,
+            profile,
+            x_centre=x_centre,
+            noise_correlation=noise_correlation,
+            inverse=inv,
+            templates=templates,
         )
-    floor = 1e-12 * float(denominator.max())
-    valid = denominator > floor
-    with np.errstate(invalid="ignore"):  # rounding leaves tiny negatives where no data is
-        norm = np.sqrt(denominator * np.float32(noise_correlation))
-    np.divide(num, norm, out=num, where=valid)
-    num[~valid] = 0.0
-    return num
+    snr = _filter_bands(weighted, templates, square=False)
+    snr *= scale
+    return snr
 
 
 def find_sources(

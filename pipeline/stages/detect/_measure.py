@@ -6,7 +6,8 @@ import enum
 import logging
 
 import numpy as np
-from photutils.aperture import CircularAperture, aperture_photometry
+from photutils.aperture import CircularAperture
+from photutils.geometry import circular_overlap_grid
 
 from pipeline.masks import MaskBit, has_bits
 from pipeline.stages.detect._model import (
@@ -471,19 +472,61 @@ def aperture_fluxes(
     corr = np.full((n, len(radii)), np.nan)
     if n == 0:
         return flux, err, corr
-    positions = np.column_stack([x, y])
-    # The sum of error^2 x overlap photutils forms is the aperture sum of the
-    # variance plane: summing it directly, with no-data pixels masked in each
-    # cutout, needs no whole-image error or zero-filled copies (a second of the
-    # 4096 x 4096 benchmark).
-    apertures = [CircularAperture(positions, r) for r in radii]
-    sums = aperture_photometry(residual, apertures, mask=no_data)
-    variances = aperture_photometry(variance, apertures, mask=no_data)
-    for j in range(len(radii)):
-        flux[:, j] = np.asarray(sums[f"aperture_sum_{j}"])
-        err[:, j] = np.sqrt(np.asarray(variances[f"aperture_sum_{j}"]) * noise_correlation)
+    sums, variances = _aperture_sums(residual, variance, no_data, x, y, radii)
+    flux[:] = sums
+    err[:] = np.sqrt(variances * noise_correlation)
     corr[:] = aperture_corrections(kernels, y, profile, radii, responses=responses)
     return flux, err, corr
+
+
+def _aperture_sums(residual, variance, no_data, x, y, radii):
+    """Exact circular-aperture sums of ``residual`` and ``variance``, shape (n, n_radii) each.
+
+    The sums photutils' ``aperture_photometry`` forms (exact overlap from
+    :func:`photutils.geometry.circular_overlap_grid`, no-data pixels
+    counted as 0), with one cutout per source for all radii and both planes:
+    the sum of error^2 x overlap photutils forms for an error is the
+    aperture sum of the variance plane.  Two ``aperture_photometry`` calls
+    built each overlap grid twice and a table per call: 0.38 s of CPU for
+    2800 sources and 3 radii on the 4096 x 4096 benchmark stretch.
+    """
+    ny, nx = residual.shape
+    rmax = max(radii)
+    sums = np.zeros((len(x), len(radii)))
+    variances = np.zeros((len(x), len(radii)))
+    missing = bool(no_data.any())
+    for i, (xc, yc) in enumerate(zip(x, y, strict=True)):
+        # photutils' bounding box of the largest aperture (pixel centres at integers)
+        x0, x1 = int(np.floor(xc - rmax + 0.5)), int(np.ceil(xc + rmax + 0.5))
+        y0, y1 = int(np.floor(yc - rmax + 0.5)), int(np.ceil(yc + rmax + 0.5))
+        a0, a1, b0, b1 = max(x0, 0), min(x1, nx), max(y0, 0), min(y1, ny)
+        if a1 <= a0 or b1 <= b0:
+            continue
+        weights = np.array(
+            [
+                circular_overlap_grid(
+                    a0 - 0.5 - xc,
+                    a1 - 0.5 - xc,
+                    b0 - 0.5 - yc,
+                    b1 - 0.5 - yc,
+                    a1 - a0,
+                    b1 - b0,
+                    r,
+                    1,
+                    1,
+                ).ravel()
+                for r in radii
+            ]
+        )
+        data = residual[b0:b1, a0:a1]
+        var = variance[b0:b1, a0:a1]
+        if missing:
+            gone = no_data[b0:b1, a0:a1]
+            data = np.where(gone, 0.0, data)
+            var = np.where(gone, 0.0, var)
+        sums[i] = weights @ data.ravel()
+        variances[i] = weights @ var.ravel()
+    return sums, variances
 
 
 def aperture_corrections(
