@@ -605,15 +605,12 @@ def _groups(cx, cy, grid, x_start, fwhm, point) -> list[list[int]]:
     if point:
         hx = hy = np.zeros(n)
     else:
-        ext = [grid(x_start + x, y) for x, y in zip(cx, cy, strict=True)]
-        hx = np.array([np.max(np.abs(dx)) for dx, _ in ext])
-        hy = np.array([np.max(np.abs(dy)) for _, dy in ext])
+        hx, hy = grid.extents(x_start + np.asarray(cx, dtype=float), cy)
     hx = hx + 1.5 * fwhm + 1.0
     hy = hy + 1.5 * fwhm + 1.0
-    pairs = np.array(
-        sorted(cKDTree(np.column_stack([cx, cy])).query_pairs(2.0 * float(np.hypot(hx, hy).max()))),
-        dtype=int,
-    ).reshape(-1, 2)
+    reach = 2.0 * float(np.hypot(hx, hy).max())
+    tree = cKDTree(np.column_stack([cx, cy]))
+    pairs = tree.query_pairs(reach, output_type="ndarray").reshape(-1, 2).astype(int)
     i, j = pairs[:, 0], pairs[:, 1]
     close = (np.abs(cx[i] - cx[j]) < hx[i] + hx[j]) & (np.abs(cy[i] - cy[j]) < hy[i] + hy[j])
     graph = coo_matrix((np.ones(close.sum()), (i[close], j[close])), shape=(n, n))
@@ -792,6 +789,6 @@ STAGE = Stage(
     scope="stretch",
     uses=(),
     neighbours=("rectify",),
-    version=3,
+    version=4,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
