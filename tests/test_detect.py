@@ -164,6 +164,50 @@ def test_deconvolved_round_stars():
     assert result.seeing["fwhm"][0] == pytest.approx(3.2, rel=0.02)
 
 
+def test_deconvolved_noise_anticorrelated_at_the_smear_length():
+    """A deconvolved product's NOISECOR < 1 is no error, and errors follow the star's scale.
+
+    Rectify's deconvolution sharpens the smear: its filter rings at lags of
+    the smear's length and anti-correlates the noise there, so a large
+    aperture sees less noise than the variance plane sums (``NOISECOR`` =
+    1 / sum(h^2) < 1) while a star a few pixels wide sees about the variance
+    plane's.  Here the noise is white noise filtered along the scan by
+    ``h = (1 + 2a) delta(0) - a delta(+-L)`` with L = 20 px, far beyond the
+    star: the fits' pulls must stay 1 (taking NOISECOR at its word would
+    shrink the errors by sqrt(sum(h^2)) = 1.66).
+    """
+    rng = np.random.default_rng(11)
+    n = 60
+    x = rng.uniform(30, 480, n)
+    y = rng.uniform(20, 236, n)
+    flux = rng.uniform(2e4, 1e5, n)
+    scene = render_scene(x, y, flux, shape=(256, 512), x_start=0, round_stars=True)
+    a, lag = 0.3, 20
+    white = rng.standard_normal(scene.image.shape) * np.sqrt(scene.variance)
+    noise = (1 + 2 * a) * white
+    noise[:, lag:] -= a * white[:, :-lag]
+    noise[:, :-lag] -= a * white[:, lag:]
+    gain = (1 + 2 * a) ** 2 + 2 * a**2  # sum(h^2)
+    result = detect(
+        scene.image + noise,
+        scene.variance * gain,
+        scene.mask,
+        scene.kernels,
+        noise_correlation=1.0 / gain,
+        deconvolved=True,
+        fwhm_guess=3.0,
+    )
+    cat = result.catalog
+    d, j = cKDTree(np.column_stack([x, y])).query(np.column_stack([cat["x"].value, cat["y"].value]))
+    assert len(cat) == n and np.all(d < 0.5)
+    pull_x = (cat["x"].value - x[j]) / cat["x_err"].value
+    pull_f = (cat["flux_psf"].value - flux[j]) / cat["flux_psf_err"].value
+    # Unit pulls: 60 stars give the standard deviation to 9 %; 3 sigma = 0.3
+    # (NOISECOR's errors would give 1.66).
+    assert np.std(pull_x) == pytest.approx(1.0, abs=0.3)
+    assert np.std(pull_f) == pytest.approx(1.0, abs=0.3)
+
+
 def test_kernel_grid_matches_rectify_lookup():
     table = kernel_table(256, 100, 400, 12.0, 2.0)
     grid = KernelGrid(table)
@@ -510,7 +554,7 @@ def test_bad_input_is_rejected():
             np.ones((4, 4)),
             np.zeros((4, 4), np.uint16),
             None,
-            noise_correlation=0.5,
+            noise_correlation=0.0,
         )
     with pytest.raises(ValueError, match="fwhm"):
         SeeingProfile(-1.0)

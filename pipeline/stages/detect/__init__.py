@@ -53,6 +53,7 @@ from pipeline.stages.detect._find import (
     filter_scale,
     find_sources,
     inverse_variance,
+    measured_noise_correlation,
     significance_map,
 )
 from pipeline.stages.detect._measure import (
@@ -291,7 +292,10 @@ def detect(
     x_start : int
         Night column of the arrays' first column.
     noise_correlation : float
-        rectify's ``NOISECOR`` (>= 1).
+        rectify's ``NOISECOR`` (> 0): the variance of an aperture sum over the
+        sum of the variance plane.  Not used for a deconvolved product, whose
+        factor at the scale of a star is measured on its blank sky instead
+        (:func:`~pipeline.stages.detect._find.measured_noise_correlation`).
     deconvolved : bool
         The product was deconvolved (round stars): the smear kernel is not
         applied.
@@ -320,8 +324,10 @@ def detect(
             f"image, variance and mask must be 2-D arrays of one shape; got {image.shape}, "
             f"{variance.shape} and {mask.shape}."
         )
-    if not noise_correlation >= 1.0 - 1e-6:
-        raise ValueError(f"noise_correlation must be >= 1; got {noise_correlation!r}.")
+    if not noise_correlation > 0.0:
+        raise ValueError(
+            f"noise_correlation must be > 0 (rectify's NOISECOR); got {noise_correlation!r}."
+        )
     radii = tuple(float(r) for r in aperture_radii)
     profile = SeeingProfile(float(fwhm_guess), seeing_shape, moffat_beta)
     no_data = has_bits(mask, _NO_DATA) | ~np.isfinite(image) | ~(variance > 0)
@@ -349,6 +355,13 @@ def detect(
     # made once and reused by the second search.
     filters: dict = {}
     inverse = inverse_variance(var)
+    if deconvolved:
+        noise_correlation = measured_noise_correlation(
+            significance_map(
+                residual, var, lookup, profile, x_centre=x_centre, band=filter_band, inverse=inverse
+            ),
+            no_data,
+        )
 
     def segment(prof, data=None):
         if prof not in filters:
@@ -785,6 +798,7 @@ STAGE = Stage(
     scope="stretch",
     uses=(),
     neighbours=("rectify",),
-    version=4,
+    # 5: a deconvolved product's noise correlation measured at a star's scale
+    version=5,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

@@ -333,6 +333,41 @@ def significance_map(
     return snr
 
 
+def measured_noise_correlation(snr: np.ndarray, no_data: np.ndarray) -> float:
+    """Blank-sky variance of a significance map made with ``noise_correlation=1``.
+
+    The header's ``NOISECOR`` is the factor of a large aperture.  For a
+    deconvolved product that is not the factor at the scale of a star: the
+    filter that sharpens the smear amplifies the noise at high frequencies
+    and anti-correlates it at lags of the smear's length, so a large aperture
+    sees less noise than the variance plane sums (``NOISECOR`` < 1) while a
+    star-sized template sees about the variance plane's.  The matched
+    filter's own output says which: on blank sky its signal-to-noise has
+    variance ``k^T C k / k^T diag(C) k`` for the template ``k`` and the
+    noise covariance ``C`` (common practice: calibrate a detection image's
+    noise on its own blank sky), which also scales the PSF fits' errors,
+    whose weights are the same template.
+
+    Parameters
+    ----------
+    snr : ndarray, shape (ny, nx)
+        :func:`significance_map` with ``noise_correlation=1``.
+    no_data : ndarray of bool, shape (ny, nx)
+        Pixels without data (left out).
+
+    Returns
+    -------
+    float
+        The variance of the 3-sigma-clipped significance (sources clipped),
+        or 1 when fewer than 100 pixels have data.
+    """
+    values = snr[~no_data & (snr != 0)]
+    if values.size < 100:
+        return 1.0
+    _, _, std = sigma_clipped_stats(values, sigma=3.0, maxiters=10)
+    return float(std) ** 2
+
+
 def find_sources(
     snr: np.ndarray,
     no_data: np.ndarray,
