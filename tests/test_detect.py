@@ -136,6 +136,16 @@ def test_bowed_star_position_is_the_first_moment_not_the_apex():
     assert abs(gx - x0) < 0.05  # along the scan the track is symmetric
 
 
+def _round_star_pulls(result, x, y, flux):
+    """Position and flux pulls of the catalogue against the truth (all found within 0.5 px)."""
+    cat = result.catalog
+    d, j = cKDTree(np.column_stack([x, y])).query(np.column_stack([cat["x"].value, cat["y"].value]))
+    assert len(cat) == len(x) and np.all(d < 0.5)
+    pull_x = (cat["x"].value - x[j]) / cat["x_err"].value
+    pull_f = (cat["flux_psf"].value - flux[j]) / cat["flux_psf_err"].value
+    return pull_x, pull_f
+
+
 def test_deconvolved_round_stars():
     rng = np.random.default_rng(5)
     n = 60
@@ -151,11 +161,7 @@ def test_deconvolved_round_stars():
         deconvolved=True,
         fwhm_guess=3.0,
     )
-    cat = result.catalog
-    d, j = cKDTree(np.column_stack([x, y])).query(np.column_stack([cat["x"].value, cat["y"].value]))
-    assert len(cat) == n and np.all(d < 0.5)
-    pull_x = (cat["x"].value - x[j]) / cat["x_err"].value
-    pull_f = (cat["flux_psf"].value - flux[j]) / cat["flux_psf_err"].value
+    pull_x, pull_f = _round_star_pulls(result, x, y, flux)
     # Unit pulls: 60 stars give the standard deviation to 9 %; 3 sigma = 0.3.
     assert np.std(pull_x) == pytest.approx(1.0, abs=0.3)
     assert np.std(pull_f) == pytest.approx(1.0, abs=0.3)
@@ -197,11 +203,7 @@ def test_deconvolved_noise_anticorrelated_at_the_smear_length():
         deconvolved=True,
         fwhm_guess=3.0,
     )
-    cat = result.catalog
-    d, j = cKDTree(np.column_stack([x, y])).query(np.column_stack([cat["x"].value, cat["y"].value]))
-    assert len(cat) == n and np.all(d < 0.5)
-    pull_x = (cat["x"].value - x[j]) / cat["x_err"].value
-    pull_f = (cat["flux_psf"].value - flux[j]) / cat["flux_psf_err"].value
+    pull_x, pull_f = _round_star_pulls(result, x, y, flux)
     # Unit pulls: 60 stars give the standard deviation to 9 %; 3 sigma = 0.3
     # (NOISECOR's errors would give 1.66).
     assert np.std(pull_x) == pytest.approx(1.0, abs=0.3)
