@@ -387,6 +387,7 @@ def _run_night(
     results: dict[tuple[str, str], UnitResult] = {}
     lock = RunLock(night.root / LOCK_NAME)
     with lock, make_executor(config.run, config.camera().n_columns) as executor:
+        executor.warm(sorted({stage.run.__module__ for stage in config.graph}))
         if verify:
             night.find_damage()
         plan = _with_recut_upstream(night, selected)

@@ -11,8 +11,12 @@ stopping the batch.
   ``run.workers`` processes started with ``spawn``: fresh interpreters, safe
   when this process has threads (unlike ``fork``), the same on every OS, and
   seeing the environment as it is when the run starts (a fork server would
-  keep the environment of its own start).  The pool is created on first use
-  and reused by later stages of the run.
+  keep the environment of its own start).  The pool is created on first use,
+  with all its workers at once (each imports the run's stage modules as it
+  starts: see :meth:`LocalPoolExecutor.warm`), and reused by later stages of
+  the run.  When the run ends with no unit in progress, the idle workers are
+  terminated rather than waited for: a worker's interpreter takes seconds to
+  exit with the libraries it loaded, and it has nothing left to write.
 * ``dask``: a :class:`distributed.Client` connected to ``run.scheduler``, or,
   without a scheduler address, to a ``distributed.LocalCluster`` of
   ``run.workers`` processes started for the run.  Workers must see the same
@@ -40,7 +44,9 @@ lowered so that the workers fit the memory available (see
 
 from __future__ import annotations
 
+import contextlib
 import ctypes
+import importlib
 import logging
 import multiprocessing
 import os
@@ -192,11 +198,32 @@ def _unpicklable(task: Any) -> str | None:
     return None
 
 
+def _start_worker(parent_pid: int, modules: Sequence[str]) -> None:
+    """Initializer of a pool worker: end with the run, then import ``modules``.
+
+    Importing the stage modules (and the libraries they load) as the worker
+    starts, rather than when its first unit is unpickled, lets every worker
+    warm up at once.  An import that fails is left for the unit that needs it
+    to report.
+    """
+    end_with_parent(parent_pid)
+    for module in modules:
+        with contextlib.suppress(Exception):
+            importlib.import_module(module)
+
+
+def _ready() -> None:
+    """A task that does nothing: submitted once per worker to start them all."""
+
+
 class Executor:
     """Runs ``fn`` over tasks; a context manager that frees its workers on exit."""
 
     #: Whether workers are other processes (their log records must be shipped back).
     remote = False
+
+    def warm(self, modules: Sequence[str]) -> None:
+        """Name the modules workers import as they start (before the first batch)."""
 
     def map(self, fn: Callable[[Any], Outcome], tasks: Sequence[Any], on_error: OnError):
         """Yield ``fn(task)`` for every task, in completion order."""
@@ -222,6 +249,11 @@ class LocalPoolExecutor(Executor):
         self.workers = workers
         self._pool: ProcessPoolExecutor | None = None
         self._reaper = Reaper()
+        self._modules: tuple[str, ...] = ()
+        self._futures: list = []
+
+    def warm(self, modules: Sequence[str]) -> None:
+        self._modules = tuple(modules)
 
     def map(self, fn, tasks, on_error) -> Iterator[Outcome]:
         # When a worker dies (killed, out of memory) the whole pool breaks and
@@ -254,11 +286,16 @@ class LocalPoolExecutor(Executor):
             self._pool = ProcessPoolExecutor(
                 max_workers=self.workers,
                 mp_context=_SPAWN,
-                initializer=end_with_parent,
-                initargs=(os.getpid(),),
+                initializer=_start_worker,
+                initargs=(os.getpid(), self._modules),
             )
+            # The pool starts a worker per task submitted while none is idle:
+            # start them all now, so that they import in parallel.
+            for _ in range(self.workers):
+                self._pool.submit(_ready)
             log.debug("started a local pool of %d worker processes", self.workers)
         futures = {self._pool.submit(fn, task): task for task in tasks}
+        self._futures = list(futures)
         broken = False
         for future in as_completed(futures):
             task = futures[future]
@@ -274,7 +311,16 @@ class LocalPoolExecutor(Executor):
 
     def close(self) -> None:
         if self._pool is not None:
-            self._pool.shutdown(wait=True, cancel_futures=True)
+            if all(future.done() for future in self._futures):
+                # Idle workers: end them now instead of waiting for their exit.
+                processes = list((self._pool._processes or {}).values())
+                self._pool.shutdown(wait=False, cancel_futures=True)
+                for process in processes:
+                    process.terminate()
+                for process in processes:
+                    process.join()
+            else:  # e.g. interrupted: let the units in progress finish
+                self._pool.shutdown(wait=True, cancel_futures=True)
             self._pool = None
         self._reaper.stop()
 
