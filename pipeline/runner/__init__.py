@@ -55,8 +55,8 @@ from pipeline.runner._nightly import (
     report_page,
 )
 from pipeline.runner._store import clear_failure, mark_damaged, write_failure
-from pipeline.runner._unit import UnitOutcome, execute_unit, failed_outcome
-from pipeline.stages.base import Stage
+from pipeline.runner._unit import UnitOutcome, UnitTask, execute_unit, failed_outcome
+from pipeline.stages.base import Stage, Stretch
 
 __all__ = [
     "LOCK_NAME",
@@ -387,7 +387,7 @@ def _run_night(
     results: dict[tuple[str, str], UnitResult] = {}
     lock = RunLock(night.root / LOCK_NAME)
     with lock, make_executor(config.run, config.camera().n_columns) as executor:
-        executor.warm(sorted({stage.run.__module__ for stage in config.graph}))
+        executor.warm(_stage_modules(config.graph))
         if verify:
             night.find_damage()
         plan = _with_recut_upstream(night, selected)
@@ -408,13 +408,27 @@ def _run_night(
                     wanted |= {s.index for s in night.stretches if s.id in units}
             if position == len(plan):
                 break
-            current = plan[position]
-            position += 1
-            run_force = force and current in selected and current.name not in forced
-            forced.add(current.name)
-            for result in _run_stage(
-                night, current, wanted, run_force, executor, progress, (lock.path, lock.token)
-            ):
+            chain = _stretch_chain(plan, position)
+            position += len(chain)
+            forcing = {s.name for s in chain if force and s in selected and s.name not in forced}
+            forced.update(s.name for s in chain)
+            lock_token = (lock.path, lock.token)
+            if len(chain) > 1 and night.index is not None:
+                ran = _run_chain(night, chain, wanted, forcing, executor, progress, lock_token)
+            else:
+                ran = []
+                for current in chain:
+                    ran += _run_stage(
+                        night,
+                        current,
+                        wanted,
+                        current.name in forcing,
+                        executor,
+                        progress,
+                        lock_token,
+                    )
+                    night.refresh()
+            for result in ran:
                 key = (result.stage, result.unit)
                 if result.status != "skipped" or key not in results:  # keep what a unit did
                     results[key] = result
@@ -423,6 +437,12 @@ def _run_night(
         report.stale_downstream = _stale_downstream(night, selected)
     log.info("%s", report.format())
     return report
+
+
+def _stage_modules(graph: Sequence[Stage]) -> list[str]:
+    """The importable modules that define the stages' run functions (for warm workers)."""
+    names = {getattr(stage.run, "__module__", None) for stage in graph}
+    return sorted(name for name in names if isinstance(name, str) and name != "__main__")
 
 
 def _with_recut_upstream(night: NightStore, selected: Sequence[Stage]) -> list[Stage]:
@@ -477,6 +497,152 @@ def _repair_stages(
     return graph[first : last + 1]
 
 
+def _selected_units(night: NightStore, stage: Stage, wanted: frozenset[int] | None) -> list:
+    """The stage's units (stretches, or None for the night) that the run selects."""
+    units = night.units(stage)
+    if stage.scope == "stretch" and wanted is not None:
+        absent = sorted(wanted - {s.index for s in units})
+        if absent:
+            has = f"stretches 0 to {len(units) - 1}" if units else "no stretch"
+            raise ValueError(
+                f"--stretches {','.join(map(str, absent))}: the night has {has}; "
+                "see `zdrift status`."
+            )
+        units = [s for s in units if s.index in wanted]
+    return units
+
+
+def _prepare_unit(
+    night: NightStore,
+    stage: Stage,
+    stretch: Stretch | None,
+    force: bool,
+    remote: bool,
+    lock: tuple[Path, str] | None,
+) -> UnitResult | UnitTask:
+    """The unit's result if it is blocked or up to date, else the task that runs it."""
+    unit = unit_id(stretch)
+    hashes, specs, problem = night.inputs(stage, stretch)
+    if problem is not None:
+        log.warning("%s/%s blocked: %s", stage.name, unit, problem)
+        return UnitResult(stage.name, unit, "blocked", problem)
+    state, reason = night.state(stage, stretch)
+    if state == "done" and not force:
+        problems = tuple(night.sidecar(stage, unit).get("problems", ()))
+        return UnitResult(stage.name, unit, "skipped", problems=problems)
+    if reason.startswith("upstream"):
+        log.warning(
+            "%s/%s: running on upstream products that are not current (%s)",
+            stage.name,
+            unit,
+            reason,
+        )
+    skipped = night.missing_stretches(stage)
+    if skipped:
+        log.warning(
+            "%s/%s: running without stretches %s (upstream unusable)",
+            stage.name,
+            unit,
+            format_ids(skipped),
+        )
+    clear_failure(night.unit_dir(stage, unit))
+    return night.task(stage, stretch, specs, hashes, remote, lock)
+
+
+def _stretch_chain(plan: Sequence[Stage], position: int) -> list[Stage]:
+    """The stage at ``position`` and, if stretch-scoped, the stretch-scoped ones right after."""
+    chain = [plan[position]]
+    if chain[0].scope == "stretch":
+        for stage in plan[position + 1 :]:
+            if stage.scope != "stretch" or stage in chain:
+                break
+            chain.append(stage)
+    return chain
+
+
+def _run_chain(
+    night: NightStore,
+    chain: Sequence[Stage],
+    wanted: frozenset[int] | None,
+    forcing: set[str],
+    executor: Executor,
+    progress: Progress,
+    lock: tuple[Path, str] | None,
+) -> list[UnitResult]:
+    """Run consecutive stretch-scoped stages, each unit once the units it reads are done.
+
+    A unit waits for the units of earlier stages of the chain that it reads:
+    its own stretch's, and its neighbours' for a stage with ``neighbours``.
+    Nothing waits for a whole stage, so a free worker takes e.g. the first
+    stretch's rectify while the last stretch is still being calibrated.  The
+    units are prepared (inputs hashed, up-to-date check) only then, from the
+    products their upstream units have just written.
+    """
+    units = {(s.name, st.id): (s, st) for s in chain for st in _selected_units(night, s, wanted)}
+    waiting: dict[tuple[str, str], set[tuple[str, str]]] = {}
+    dependents: dict[tuple[str, str], list[tuple[str, str]]] = {key: [] for key in units}
+    for key, (stage, stretch) in units.items():
+        needs = set()
+        for earlier in chain[: chain.index(stage)]:
+            if earlier.name in stage.requires:
+                needs.add((earlier.name, stretch.id))
+            if earlier.name in stage.neighbours:
+                sides = night.neighbour_stretches(stretch)
+                needs.update((earlier.name, side.id) for side in sides if side is not None)
+        waiting[key] = needs & units.keys()
+        for need in waiting[key]:
+            dependents[need].append(key)
+    depth = {stage.name: position for position, stage in enumerate(chain)}
+    counts = {stage.name: [0, sum(s is stage for s, _ in units.values())] for stage in chain}
+    results: list[UnitResult] = []
+
+    def finished(key: tuple[str, str]) -> list[tuple[str, str]]:
+        """Mark ``key`` done; return the units that waited only for it."""
+        now_ready = []
+        for dependent in dependents[key]:
+            waiting[dependent].discard(key)
+            if not waiting[dependent]:
+                now_ready.append(dependent)
+        return now_ready
+
+    def prepare(keys: list[tuple[str, str]]) -> list[UnitTask]:
+        tasks = []
+        while keys:
+            stage, stretch = units[keys.pop(0)]
+            item = _prepare_unit(
+                night, stage, stretch, stage.name in forcing, executor.remote, lock
+            )
+            if isinstance(item, UnitTask):
+                tasks.append(item)
+                continue
+            results.append(item)
+            counts[stage.name][1] -= 1  # not run: one unit fewer to wait for
+            keys.extend(finished((stage.name, stretch.id)))
+        return tasks
+
+    def on_done(outcome: UnitOutcome) -> list[UnitTask]:
+        stage = night.stages[outcome.stage]
+        results.append(_record_outcome(night, stage, outcome, executor.remote))
+        night.forget(stage, outcome.unit)
+        counts[stage.name][0] += 1
+        progress(stage.name, *counts[stage.name])
+        return prepare(finished((stage.name, outcome.unit)))
+
+    tasks = prepare([key for key, needs in waiting.items() if not needs])
+    for stage in chain:
+        progress(stage.name, 0, counts[stage.name][1])
+    executor.flow(
+        execute_unit,
+        tasks,
+        on_error=failed_outcome,
+        on_done=on_done,
+        key=lambda task: (-depth[task.stage.name], task.context.stretch.index),
+    )
+    night.refresh()
+    order = {stage.name: position for position, stage in enumerate(chain)}
+    return sorted(results, key=lambda r: (order[r.stage], r.unit))
+
+
 def _run_stage(
     night: NightStore,
     stage: Stage,
@@ -488,46 +654,13 @@ def _run_stage(
 ) -> list[UnitResult]:
     if stage.scope == "stretch" and night.index is None:
         return [UnitResult(stage.name, "*", "blocked", night.no_index_reason())]
-    units = night.units(stage)
-    if stage.scope == "stretch" and wanted is not None:
-        absent = sorted(wanted - {s.index for s in units})
-        if absent:
-            has = f"stretches 0 to {len(units) - 1}" if units else "no stretch"
-            raise ValueError(
-                f"--stretches {','.join(map(str, absent))}: the night has {has}; "
-                "see `zdrift status`."
-            )
-        units = [s for s in units if s.index in wanted]
     results, tasks = [], []
-    for stretch in units:
-        unit = unit_id(stretch)
-        hashes, specs, problem = night.inputs(stage, stretch)
-        if problem is not None:
-            log.warning("%s/%s blocked: %s", stage.name, unit, problem)
-            results.append(UnitResult(stage.name, unit, "blocked", problem))
-            continue
-        state, reason = night.state(stage, stretch)
-        if state == "done" and not force:
-            problems = tuple(night.sidecar(stage, unit).get("problems", ()))
-            results.append(UnitResult(stage.name, unit, "skipped", problems=problems))
-            continue
-        if reason.startswith("upstream"):
-            log.warning(
-                "%s/%s: running on upstream products that are not current (%s)",
-                stage.name,
-                unit,
-                reason,
-            )
-        skipped = night.missing_stretches(stage)
-        if skipped:
-            log.warning(
-                "%s/%s: running without stretches %s (upstream unusable)",
-                stage.name,
-                unit,
-                format_ids(skipped),
-            )
-        clear_failure(night.unit_dir(stage, unit))
-        tasks.append(night.task(stage, stretch, specs, hashes, executor.remote, lock))
+    for stretch in _selected_units(night, stage, wanted):
+        item = _prepare_unit(night, stage, stretch, force, executor.remote, lock)
+        if isinstance(item, UnitTask):
+            tasks.append(item)
+        else:
+            results.append(item)
     progress(stage.name, 0, len(tasks))
     outcomes = executor.map(execute_unit, tasks, on_error=failed_outcome)
     for done, outcome in enumerate(outcomes, start=1):

@@ -58,7 +58,7 @@ import threading
 import time
 import uuid
 from collections.abc import Callable, Iterator, Sequence
-from concurrent.futures import ProcessPoolExecutor, as_completed
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, as_completed, wait
 from concurrent.futures.process import BrokenProcessPool
 from typing import Any
 
@@ -225,6 +225,28 @@ class Executor:
     def warm(self, modules: Sequence[str]) -> None:
         """Name the modules workers import as they start (before the first batch)."""
 
+    def flow(
+        self,
+        fn: Callable[[Any], Outcome],
+        tasks: Sequence[Any],
+        on_error: OnError,
+        on_done: Callable[[Outcome], Sequence[Any]],
+        key: Callable[[Any], Any] | None = None,
+    ) -> None:
+        """Run ``fn`` over ``tasks`` and over the tasks ``on_done(outcome)`` returns.
+
+        ``on_done`` is called in this process for every outcome, as it comes;
+        the tasks it returns (those its outcome made ready) run next.  Here
+        (and on dask) in waves: a wave's new tasks start once the wave is
+        done; the local pool starts each as soon as a worker is free, the
+        smallest ``key(task)`` first.
+        """
+        while tasks:
+            ready: list[Any] = []
+            for outcome in self.map(fn, sorted(tasks, key=key) if key else tasks, on_error):
+                ready.extend(on_done(outcome))
+            tasks = ready
+
     def map(self, fn: Callable[[Any], Outcome], tasks: Sequence[Any], on_error: OnError):
         """Yield ``fn(task)`` for every task, in completion order."""
         for task in tasks:
@@ -281,20 +303,7 @@ class LocalPoolExecutor(Executor):
         tasks = sendable
         if not tasks:
             return
-        if self._pool is None:
-            self._reaper.start()
-            self._pool = ProcessPoolExecutor(
-                max_workers=self.workers,
-                mp_context=_SPAWN,
-                initializer=_start_worker,
-                initargs=(os.getpid(), self._modules),
-            )
-            # The pool starts a worker per task submitted while none is idle:
-            # start them all now, so that they import in parallel.
-            for _ in range(self.workers):
-                self._pool.submit(_ready)
-            log.debug("started a local pool of %d worker processes", self.workers)
-        futures = {self._pool.submit(fn, task): task for task in tasks}
+        futures = {self._start().submit(fn, task): task for task in tasks}
         self._futures = list(futures)
         broken = False
         for future in as_completed(futures):
@@ -308,6 +317,58 @@ class LocalPoolExecutor(Executor):
                 yield task, on_error(task, f"{type(exc).__name__}: {exc}")
         if broken:  # a broken pool accepts no more work; start afresh next time
             self.close()
+
+    def flow(self, fn, tasks, on_error, on_done, key=None) -> None:
+        ready, pending, caught = list(tasks), {}, []
+        while ready or pending or caught:
+            if caught and not pending:  # the pool broke: each task it held again, alone
+                task = caught.pop(0)
+                for _, outcome in self._batch(fn, [task], on_error):
+                    ready.extend(on_done(on_error(task, _DIED) if outcome is _BROKEN else outcome))
+                continue
+            if key is not None:
+                ready.sort(key=key)
+            # one task queued beyond the busy workers, so that none waits for this process
+            while ready and not caught and len(pending) <= self.workers:
+                task = ready.pop(0)
+                reason = _unpicklable(task)
+                if reason is not None:
+                    ready.extend(on_done(on_error(task, reason)))
+                    continue
+                pending[self._start().submit(fn, task)] = task
+            self._futures = list(pending)
+            if not pending:
+                continue
+            done, _ = wait(pending, return_when=FIRST_COMPLETED)
+            for future in done:
+                task = pending.pop(future)
+                try:
+                    outcome = future.result()
+                except BrokenProcessPool:
+                    caught.append(task)
+                    continue
+                except Exception as exc:
+                    outcome = on_error(task, f"{type(exc).__name__}: {exc}")
+                ready.extend(on_done(outcome))
+            if caught and not pending:  # a broken pool accepts no more work
+                self.close()
+
+    def _start(self) -> ProcessPoolExecutor:
+        """The pool, started (all its workers at once) if it is not running."""
+        if self._pool is None:
+            self._reaper.start()
+            self._pool = ProcessPoolExecutor(
+                max_workers=self.workers,
+                mp_context=_SPAWN,
+                initializer=_start_worker,
+                initargs=(os.getpid(), self._modules),
+            )
+            # The pool starts a worker per task submitted while none is idle:
+            # start them all now, so that they import in parallel.
+            for _ in range(self.workers):
+                self._pool.submit(_ready)
+            log.debug("started a local pool of %d worker processes", self.workers)
+        return self._pool
 
     def close(self) -> None:
         if self._pool is not None:

@@ -143,6 +143,10 @@ class NightStore:
         #: (units already taken out of use have a ``_damaged.json`` record instead).
         self.damaged: dict[tuple[str, str], str] = {}
         self._verified: set[tuple[str, str]] = set()
+        #: The block index last parsed, by its SHA-256 (refreshed after every stage).
+        self._parsed_index: tuple[str, Any] | None = None
+        #: SHA-256 of the files options name, by (path, size, modification time).
+        self._digests: dict[tuple[str, int, int], str] = {}
         self.root = night_dir(config)
         self.raw_dir = Path(config.night.raw_dir)
         self.stages = {stage.name: stage for stage in config.graph}
@@ -167,8 +171,10 @@ class NightStore:
             folder = self.unit_dir(self.row_stage, NIGHT)
             entry = record["products"][BLOCK_INDEX]
             try:
-                verify_product(folder / entry["file"], entry)
-                self.index = read_product(folder / entry["file"], entry)
+                digest = verify_product(folder / entry["file"], entry)
+                if self._parsed_index is None or self._parsed_index[0] != digest:
+                    self._parsed_index = (digest, read_product(folder / entry["file"], entry))
+                self.index = self._parsed_index[1]
             except Exception as exc:  # damaged, or hashes right but does not parse
                 if not isinstance(exc, DamagedProductError):
                     reason = f"cannot be read ({type(exc).__name__}: {exc})"
@@ -181,6 +187,12 @@ class NightStore:
             segments = segment_rows(self.index)
             self.stretches = plan_stretches(rows, run.stretch_rows, run.overlap_rows, segments)
         self.context = dataclasses.replace(self.context, stretches=self.stretches)
+
+    def forget(self, stage: Stage, unit: str) -> None:
+        """Forget what was read of a unit just (re)written, and every state derived from it."""
+        self._sidecars.pop((stage.name, unit), None)
+        self._states.clear()
+        self._missing.clear()
 
     def unit_dir(self, stage: Stage, unit: str) -> Path:
         return self.root / stage.name / unit
@@ -495,7 +507,7 @@ class NightStore:
                 path = Path(path)
                 if not path.is_file():
                     return hashes, specs, f"stages.{stage.name}.{name}: no file {path}"
-                hashes[name] = file_digest(path)
+                hashes[name] = self.file_digest(path)
                 specs.append(InputSpec(name, kind, path=path, digest=hashes[name]))
         return hashes, specs, None
 
@@ -515,6 +527,19 @@ class NightStore:
             digests[name] = [None if unit is None else unit[1]["output_hash"] for unit in units]
             pairs.append((name, units))
         return hash_json(digests), InputSpec(NEIGHBOURS, "neighbours", neighbours=tuple(pairs))
+
+    def file_digest(self, path: Path) -> str:
+        """SHA-256 of a file an option names, hashed once per run unless it changes.
+
+        Every up-to-date check and every task of the stage asks for it; a
+        reference catalogue can be large.  A change of the file's size or
+        modification time hashes it again.
+        """
+        stat = path.stat()
+        key = (str(path.resolve()), stat.st_size, stat.st_mtime_ns)
+        if key not in self._digests:
+            self._digests[key] = file_digest(path)
+        return self._digests[key]
 
     def no_index_reason(self) -> str:
         maker = self.row_stage.name if self.row_stage else "a stage with defines_rows"
