@@ -236,16 +236,16 @@ class Executor:
         """Run ``fn`` over ``tasks`` and over the tasks ``on_done(outcome)`` returns.
 
         ``on_done`` is called in this process for every outcome, as it comes;
-        the tasks it returns (those its outcome made ready) run next.  Here
-        (and on dask) in waves: a wave's new tasks start once the wave is
-        done; the local pool starts each as soon as a worker is free, the
-        smallest ``key(task)`` first.
+        the tasks it returns (those its outcome made ready) join the ready
+        ones.  Here one at a time, the smallest ``key(task)`` first; the local
+        pool starts each ready task as soon as a worker is free, dask in waves
+        (a wave's new tasks start once the wave is done).
         """
-        while tasks:
-            ready: list[Any] = []
-            for outcome in self.map(fn, sorted(tasks, key=key) if key else tasks, on_error):
-                ready.extend(on_done(outcome))
-            tasks = ready
+        ready = list(tasks)
+        while ready:
+            if key is not None:
+                ready.sort(key=key)
+            ready.extend(on_done(fn(ready.pop(0))))
 
     def map(self, fn: Callable[[Any], Outcome], tasks: Sequence[Any], on_error: OnError):
         """Yield ``fn(task)`` for every task, in completion order."""
@@ -437,6 +437,13 @@ class DaskExecutor(Executor):
                 yield future.result()
             except Exception as exc:  # KilledWorker, lost connection, ...
                 yield on_error(futures[future], f"{type(exc).__name__}: {exc}")
+
+    def flow(self, fn, tasks, on_error, on_done, key=None) -> None:
+        while tasks:
+            ready: list[Any] = []
+            for outcome in self.map(fn, sorted(tasks, key=key) if key else tasks, on_error):
+                ready.extend(on_done(outcome))
+            tasks = ready
 
     def close(self) -> None:
         if self._client is not None:
