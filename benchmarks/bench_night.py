@@ -43,6 +43,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import datetime
 import json
 import statistics
 import subprocess
@@ -189,16 +190,19 @@ def timed_run(config: Path, *settings: str, force: bool = True) -> tuple[float, 
     return wall, memory.peak
 
 
-def stage_times(folder: Path) -> list[tuple[str, float, float, int]]:
-    """Per stage of the last run: (name, span s, summed compute s, units), in start order."""
+def stage_times(folder: Path, since: float) -> list[tuple[str, float, float, int]]:
+    """Per stage of the run started at ``since`` (Unix time): (name, span s, summed
+    compute s, units), in start order; units written before it (e.g. of another
+    stretch plan) are left out."""
     spans: dict[str, list] = {}
     for path in (folder / "out" / "bench").glob("*/*/_provenance.json"):
         record = json.loads(path.read_text())
         start, end = (
-            time.mktime(time.strptime(record[key][:19], "%Y-%m-%dT%H:%M:%S"))
-            + float("0" + record[key][19:23])
+            datetime.datetime.fromisoformat(record[key]).timestamp()
             for key in ("started", "finished")
         )
+        if start < since:
+            continue
         entry = spans.setdefault(record["stage"], [start, end, 0.0, 0])
         entry[0], entry[1] = min(entry[0], start), max(entry[1], end)
         entry[2] += record["timings"]["compute_s"]
@@ -208,7 +212,7 @@ def stage_times(folder: Path) -> list[tuple[str, float, float, int]]:
 
 
 def print_stage_times(folder: Path, wall: float) -> None:
-    rows = stage_times(folder)
+    rows = stage_times(folder, time.time() - wall)
     if not rows:
         return
     print(f"  per stage (last run, wall {wall:.1f} s): span / summed compute / units")

@@ -238,8 +238,8 @@ class Executor:
         ``on_done`` is called in this process for every outcome, as it comes;
         the tasks it returns (those its outcome made ready) join the ready
         ones.  Here one at a time, the smallest ``key(task)`` first; the local
-        pool starts each ready task as soon as a worker is free, dask in waves
-        (a wave's new tasks start once the wave is done).
+        pool starts each ready task as soon as a worker is free (the smallest
+        key first), dask as soon as it is ready (the scheduler's order).
         """
         ready = list(tasks)
         while ready:
@@ -439,11 +439,36 @@ class DaskExecutor(Executor):
                 yield on_error(futures[future], f"{type(exc).__name__}: {exc}")
 
     def flow(self, fn, tasks, on_error, on_done, key=None) -> None:
-        while tasks:
-            ready: list[Any] = []
-            for outcome in self.map(fn, sorted(tasks, key=key) if key else tasks, on_error):
-                ready.extend(on_done(outcome))
-            tasks = ready
+        if not tasks:
+            return
+        import distributed
+
+        client = self._connect()
+        batch = uuid.uuid4().hex[:8]
+        futures = {}
+
+        def submit(ready: Sequence[Any]) -> list:
+            submitted = []
+            for task in sorted(ready, key=key) if key is not None else ready:
+                reason = _unpicklable(task)
+                if reason is not None:
+                    submitted += submit(on_done(on_error(task, reason)))
+                    continue
+                future = client.submit(
+                    fn, task, pure=False, key=f"{task.stage.name}-{task.unit}-{batch}"
+                )
+                futures[future] = task
+                submitted.append(future)
+            return submitted
+
+        completed = distributed.as_completed(submit(tasks), loop=client.loop)
+        for future in completed:
+            try:
+                outcome = future.result()
+            except Exception as exc:  # KilledWorker, lost connection, ...
+                outcome = on_error(futures[future], f"{type(exc).__name__}: {exc}")
+            for new in submit(on_done(outcome)):
+                completed.add(new)
 
     def close(self) -> None:
         if self._client is not None:
