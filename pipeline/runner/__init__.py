@@ -3,6 +3,8 @@
 The runner is the only part of the pipeline that reads and writes files and
 knows about parallelism.  For one night it walks the stage graph in order;
 each stage runs once for the night or once per stretch of rows ("units").
+Consecutive per-stretch stages run together: each unit starts as soon as the
+units it reads are written (see :func:`_run_chain`).
 Every unit's products live in ``<output_dir>/<night>/<stage>/<unit>/`` with a
 provenance sidecar (:mod:`pipeline.runner._store`).
 
