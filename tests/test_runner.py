@@ -534,10 +534,11 @@ KILL_SCRIPT = textwrap.dedent(
     """
 )
 
-# File writes in a serial run: index writes block_index, rejected, sidecar
-# (0-2); scale/s0000 image, mask, framed, stats, sidecar (3-7); scale/s0001
-# the same (8-12).
-KILL_POINTS = [1, 10, 12]
+# File writes in a serial run, which takes each stretch as deep as it can
+# (smooth/s0000 needs only scale/s0000): index writes block_index, rejected,
+# sidecar (0-2); scale/s0000 image, mask, framed, stats, sidecar (3-7);
+# smooth/s0000 image, sidecar (8-9); scale/s0001 as scale/s0000 (10-14).
+KILL_POINTS = [1, 12, 14]
 
 
 @pytest.mark.parametrize("kill_at", KILL_POINTS)
@@ -557,7 +558,7 @@ def test_killed_run_resumes_with_identical_products(tmp_path: Path, kill_at: int
     )
     assert result.returncode == 9, result.stderr
     done_before = sidecars(config)
-    if kill_at == 10:  # half of scale/s0001 written, no sidecar: not done
+    if kill_at == 12:  # half of scale/s0001 written, no sidecar: not done
         folder = night_dir(config) / "scale/s0001"
         assert sorted(p.name for p in folder.iterdir() if not p.name.startswith(".")) == [
             "image.fits",
