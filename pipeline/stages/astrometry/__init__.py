@@ -18,6 +18,10 @@ night.
   :class:`AstrometricSolution` (solved sky positions, predictions, grid
   statistics, implied focal length and matched line time).
 * :mod:`~pipeline.stages.astrometry._stats`: :func:`residual_grid`.
+* :mod:`~pipeline.stages.astrometry._transparency`: :func:`fit_transparency`,
+  the sky's transparency within the crossings from the matched stars' fluxes;
+  under a cloud the predictor weights each track by it (light-weighted
+  centroids).
 * :mod:`~pipeline.stages.astrometry._wcs`: :func:`solved_wcs`, a TAN-SIP
   WCS per product that reproduces the solution (0.005 px on the test chip).
 * :mod:`~pipeline.stages.astrometry._catalog`: :func:`solve_catalog`, the
@@ -59,6 +63,7 @@ from pipeline.stages.astrometry._stage import (
     stretch_wcs_cards,
 )
 from pipeline.stages.astrometry._stats import residual_grid
+from pipeline.stages.astrometry._transparency import TransparencyCurve, fit_transparency
 from pipeline.stages.astrometry._wcs import solved_wcs
 
 __all__ = [
@@ -75,9 +80,11 @@ __all__ = [
     "SearchRanges",
     "SkyTracks",
     "SolvedCatalog",
+    "TransparencyCurve",
     "WanderSpline",
     "east_tilt_equivalent",
     "fit_geometry",
+    "fit_transparency",
     "match_nearest",
     "offset_peak",
     "reference_columns",

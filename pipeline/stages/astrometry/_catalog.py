@@ -22,6 +22,7 @@ residual does not have.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -31,9 +32,10 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator
 
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import TDIModel
-from pipeline.stages.astrometry._fit import FIT_PARAMETERS
+from pipeline.stages.astrometry._fit import FIT_PARAMETERS, _subset
 from pipeline.stages.astrometry._model import east_tilt_equivalent
 from pipeline.stages.astrometry._solve import AstrometricSolution, SearchRanges, solve_night
+from pipeline.stages.astrometry._transparency import fit_transparency
 from pipeline.stages.detect import SourceFlag
 
 __all__ = ["AstrometryOptions", "SolvedCatalog", "solve_catalog"]
@@ -72,6 +74,18 @@ class AstrometryOptions(BaseModel):
         "per coordinate (added in quadrature to the centroid errors in the fit's weights).",
     )
     clip_sigma: float = Field(5.0, gt=1, description="Outlier rejection, robust sigmas.")
+    light_weighting: bool = Field(
+        True,
+        description="Measure the sky's transparency from the matched stars' fluxes and, "
+        "where a cloud dims it, predict light-weighted centroids (needs flux_psf and "
+        "reference magnitudes).",
+    )
+    min_cloud_depth: float = Field(
+        0.05,
+        ge=0,
+        description="Fractional loss of light below which the sky counts as clear (no "
+        "light weighting): above the ~0.01-0.02 a clear night's curve shows from noise.",
+    )
     search_clock: float = Field(10.0, ge=0, description="Search range of the clock, +- s.")
     search_focal: float = Field(0.03, ge=0, description="Search range of the focal length, +-.")
     search_rotation: float = Field(0.5, ge=0, description="Search range of rotation, +- deg.")
@@ -143,6 +157,23 @@ def _with_reference_error(frame: RectifiedFrame, x, y, x_err, y_err, reference_e
     return np.hypot(x_err, along), np.hypot(y_err, across)
 
 
+def _transparency(solution: AstrometricSolution, flux, flux_err, ref_mag):
+    """The sky's transparency from the fitted pairs' fluxes and crossing windows."""
+    fit = solution.fit
+    used = fit.used
+    predictor = solution.predictor
+    tracks = _subset(solution.ref_tracks, fit.ref_index[used])
+    pred = predictor.predict(tracks, solution.offsets, light_weighted=False)
+    det = fit.det_index[used]
+    return fit_transparency(
+        pred.t_start,
+        pred.t_end,
+        flux[det],
+        ref_mag[solution.ref_index[used]],
+        flux_err=None if flux_err is None else flux_err[det],
+    )
+
+
 def solve_catalog(
     catalog: QTable,
     ref_ra,
@@ -150,6 +181,7 @@ def solve_catalog(
     model: TDIModel,
     frame: RectifiedFrame,
     options: AstrometryOptions | None = None,
+    ref_mag=None,
 ) -> SolvedCatalog:
     """Solve a night's detect catalogue against reference positions.
 
@@ -164,6 +196,9 @@ def solve_catalog(
         The night's nominal geometry and rectified grid.
     options : AstrometryOptions or None
         None for the defaults.
+    ref_mag : array_like or None
+        Reference magnitudes (for the sky's transparency, see
+        ``light_weighting``); None: the fit assumes a clear sky.
 
     Returns
     -------
@@ -200,22 +235,29 @@ def solve_catalog(
         rotation=options.search_rotation,
         tilt=options.search_tilt,
     )
-    solution = solve_night(
-        x[fit_rows],
-        y[fit_rows],
-        _degrees(ref_ra),
-        _degrees(ref_dec),
-        model,
-        frame,
-        x_err=fit_x_err,
-        y_err=fit_y_err,
-        match_radius=options.match_radius,
-        knot_spacing=options.knot_spacing,
-        parameters=options.fit_parameters,
-        min_matches=options.min_matches,
-        clip_sigma=options.clip_sigma,
-        search=ranges,
-    )
+    args = (x[fit_rows], y[fit_rows], _degrees(ref_ra), _degrees(ref_dec), model, frame)
+    kwargs = {
+        "x_err": fit_x_err,
+        "y_err": fit_y_err,
+        "match_radius": options.match_radius,
+        "knot_spacing": options.knot_spacing,
+        "parameters": options.fit_parameters,
+        "min_matches": options.min_matches,
+        "clip_sigma": options.clip_sigma,
+        "search": ranges,
+    }
+    solution = solve_night(*args, **kwargs)
+    cloud = None
+    if options.light_weighting and ref_mag is not None and "flux_psf" in catalog.colnames:
+        flux = np.asarray(u.Quantity(catalog["flux_psf"]).value, dtype=float)[fit_rows]
+        flux_err = None
+        if "flux_psf_err" in catalog.colnames:
+            flux_err = np.asarray(u.Quantity(catalog["flux_psf_err"]).value, float)[fit_rows]
+        cloud = _transparency(solution, flux, flux_err, np.asarray(ref_mag, dtype=float))
+        if cloud is not None and cloud.depth >= options.min_cloud_depth:
+            solution = solve_night(*args, transparency=cloud, **kwargs)
+        else:
+            cloud = dataclasses.replace(cloud, applied=False) if cloud is not None else None
     ra, dec = solution.sky_from_rectified(x, y)
     ra_err, dec_err = solution.position_errors(x, y, x_err, y_err)
     out = catalog.copy()
@@ -243,6 +285,8 @@ def solve_catalog(
     clock_per_tilt, rotation_per_tilt = east_tilt_equivalent(model, 1.0)
     parameters.meta.update(solution.summary())
     parameters.meta["covariance"] = fit.covariance.tolist()
+    parameters.meta["cloud_depth"] = None if cloud is None else cloud.depth
+    parameters.meta["light_weighted"] = cloud is not None and cloud.applied
     parameters.meta["east_tilt_note"] = (
         "clock_offset and rotation include any east tilt of the axis: 1 arcsec east acts as "
         f"{clock_per_tilt:.6f} s of clock and {rotation_per_tilt:.6f} arcsec of rotation"

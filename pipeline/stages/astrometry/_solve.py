@@ -233,6 +233,7 @@ def solve_night(
     good_fraction: float = 0.3,
     search: SearchRanges | None = SearchRanges(),
     clip_sigma: float = 5.0,
+    transparency=None,
 ) -> AstrometricSolution:
     """Solve a night's geometry from its detections and a reference catalogue.
 
@@ -267,6 +268,11 @@ def solve_night(
         How far to search when the nominal match is poor; None: do not search.
     clip_sigma : float, optional
         Outlier rejection threshold (robust sigmas of the residual radius).
+    transparency : callable or None, optional
+        Relative transparency of the sky, of true seconds since the model's
+        start (:func:`~pipeline.stages.astrometry.fit_transparency`): the
+        predicted centroids are then the light-weighted means of the tracks
+        (see :mod:`~pipeline.stages.astrometry._transparency`); None: time means.
 
     Returns
     -------
@@ -289,6 +295,7 @@ def solve_night(
     sig_x = None if x_err is None else np.asarray(x_err, dtype=float).ravel()
     sig_y = None if y_err is None else np.asarray(y_err, dtype=float).ravel()
     predictor = GeometryPredictor(model)
+    predictor.transparency = transparency
     n_rows = model.n_rows
     det_tracks = predictor.tracks_from_rectified(frame, x, y)
     det_row, det_col = predictor.strip(det_tracks)

@@ -160,8 +160,17 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
     if handle is not None:
         reference_options = reference_options.model_copy(update={"path": handle.path})
     reference = read_reference(reference_options, band, frame.epoch)
+    ref_mag = None
+    if "mag" in reference.colnames:
+        ref_mag = u.Quantity(reference["mag"], u.mag).value
     solved = solve_catalog(
-        inputs["catalog"]["catalog"], reference["ra"], reference["dec"], model, frame, options
+        inputs["catalog"]["catalog"],
+        reference["ra"],
+        reference["dec"],
+        model,
+        frame,
+        options,
+        ref_mag=ref_mag,
     )
     catalog = solved.catalog
     for name, values in reference_columns(catalog["ref_index"], reference).items():
