@@ -142,7 +142,10 @@ def test_a_clear_night_is_left_as_time_means(cloudy_night):
     fit keeps the time means (no light weighting)."""
     parameters = cloudy_night(clear=True)
     # 0.05: AstrometryOptions.min_cloud_depth, above the ~0.035 of noise here
-    print(f"clear night: depth {parameters.meta['cloud_depth']:.3f}")
+    print(
+        f"clear night: depth {parameters.meta['cloud_depth']:.3f}, "
+        f"{parameters.meta['cloud_significance']:.1f} sigma"
+    )
     assert not parameters.meta["light_weighted"]
     assert parameters.meta["cloud_depth"] < 0.05
     rotation, error = _rotation(parameters)

@@ -86,6 +86,13 @@ class AstrometryOptions(BaseModel):
         description="Fractional loss of light below which the sky counts as clear (no "
         "light weighting): above the ~0.01-0.02 a clear night's curve shows from noise.",
     )
+    min_cloud_significance: float = Field(
+        5.0,
+        ge=0,
+        description="Sigmas by which the transparency curve must fit the stars' fluxes "
+        "better than a clear sky before it is used (a few stars per knot make noisy "
+        "curves deep).",
+    )
     search_clock: float = Field(10.0, ge=0, description="Search range of the clock, +- s.")
     search_focal: float = Field(0.03, ge=0, description="Search range of the focal length, +-.")
     search_rotation: float = Field(0.5, ge=0, description="Search range of rotation, +- deg.")
@@ -254,7 +261,11 @@ def solve_catalog(
         if "flux_psf_err" in catalog.colnames:
             flux_err = np.asarray(u.Quantity(catalog["flux_psf_err"]).value, float)[fit_rows]
         cloud = _transparency(solution, flux, flux_err, np.asarray(ref_mag, dtype=float))
-        if cloud is not None and cloud.depth >= options.min_cloud_depth:
+        if (
+            cloud is not None
+            and cloud.depth >= options.min_cloud_depth
+            and cloud.significance >= options.min_cloud_significance
+        ):
             solution = solve_night(*args, transparency=cloud, **kwargs)
         else:
             cloud = dataclasses.replace(cloud, applied=False) if cloud is not None else None
@@ -286,6 +297,7 @@ def solve_catalog(
     parameters.meta.update(solution.summary())
     parameters.meta["covariance"] = fit.covariance.tolist()
     parameters.meta["cloud_depth"] = None if cloud is None else cloud.depth
+    parameters.meta["cloud_significance"] = None if cloud is None else cloud.significance
     parameters.meta["light_weighted"] = cloud is not None and cloud.applied
     parameters.meta["east_tilt_note"] = (
         "clock_offset and rotation include any east tilt of the axis: 1 arcsec east acts as "

@@ -63,6 +63,9 @@ class TransparencyCurve:
         B-spline coefficients.
     depth : float
         Largest fractional loss of light over the stars' mid-crossing times.
+    significance : float
+        How far the curve fits the fluxes better than a clear sky, sigmas of
+        the chi-square a flat sky would gain from noise (see the code).
     n_stars : int
         Stars the curve was fitted to (after clipping).
     applied : bool
@@ -72,6 +75,7 @@ class TransparencyCurve:
     knots: np.ndarray
     coef: np.ndarray
     depth: float
+    significance: float
     n_stars: int
     applied: bool = True
 
@@ -190,12 +194,27 @@ def fit_transparency(
     t_mid = 0.5 * (t0[used] + t1[used])
     grid = np.linspace(t_mid.min(), t_mid.max(), 20 * n_int + 1)
     depth = float(1.0 - BSpline(knots, coef, 3)(grid).min())
+    # Is there a cloud at all?  The chi-square gained over a constant sky,
+    # in units of the fit's own reduced chi-square (flux errors are often
+    # understated), against the n_coef it may gain from noise alone: a
+    # chi-square's mean n and sigma sqrt(2 n) (an F-test, common practice).
+    w = np.where(used, 1.0 / (sigma * scale), 0.0)
+    chi2_fit = float(np.sum((w * (ratio - model)) ** 2))
+    flat = np.sum(w**2 * ratio) / np.sum(w**2)
+    chi2_flat = float(np.sum((w * (ratio - flat)) ** 2))
+    dof = max(int(used.sum()) - n_coef - 1, 1)
+    gained = (chi2_flat - chi2_fit) / max(chi2_fit / dof, 1.0)
+    significance = float((gained - n_coef) / np.sqrt(2.0 * n_coef))
     log.info(
-        "transparency: %d of %d stars, %d knots over %.0f s, deepest loss %.3f",
+        "transparency: %d of %d stars, %d knots over %.0f s, deepest loss %.3f "
+        "(%.1f sigma over a clear sky)",
         int(used.sum()),
         int(ok.sum()),
         n_int + 1,
         hi - lo,
         depth,
+        significance,
     )
-    return TransparencyCurve(knots=knots, coef=coef, depth=depth, n_stars=int(used.sum()))
+    return TransparencyCurve(
+        knots=knots, coef=coef, depth=depth, significance=significance, n_stars=int(used.sum())
+    )
