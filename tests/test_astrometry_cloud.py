@@ -47,6 +47,23 @@ def test_fit_transparency_recovers_a_cloud_from_crossing_means():
     # knots is ~0.005
     assert np.max(np.abs(curve(t) - truth)) < 0.06
     assert curve.depth == pytest.approx(DEPTH, abs=0.03)
+    assert curve.significance > 5.0
+
+
+def test_noise_alone_makes_no_significant_cloud():
+    """A clear sky seen by few stars per knot (the 512-column mis-set night's
+    short crossings): the curve dips by noise, and says it is noise."""
+    rng = np.random.default_rng(5)
+    crossing = 23.5  # s: 512 TDI rows
+    t_mid = rng.uniform(0.0, 94.0, 200)
+    ref_mag = rng.uniform(15.0, 20.0, t_mid.size)
+    flux = 1e6 * 10.0 ** (-0.4 * (ref_mag - 15.0)) * (1.0 + 0.03 * rng.standard_normal(200))
+    t0, t1 = t_mid - crossing / 2, t_mid + crossing / 2
+    curve = fit_transparency(t0, t1, flux, ref_mag, flux_err=0.01 * flux)
+    print(f"noise: depth {curve.depth:.3f}, {curve.significance:.1f} sigma")
+    # 3: the statistic is ~N(0, 1) on noise (0.4 measured), so 3 sigma for
+    # one draw; AstrometryOptions.min_cloud_significance asks 5
+    assert curve.significance < 3.0
 
 
 @pytest.fixture(scope="module")
