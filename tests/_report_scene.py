@@ -4,8 +4,9 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import astropy.units as u
 import numpy as np
-from astropy.table import Table
+from astropy.table import QTable, Table
 
 from pipeline.config import Config, config_from_mapping
 from pipeline.report import NightProducts, ReportOptions, build_report
@@ -121,11 +122,12 @@ def solved_products() -> dict:
         }
     )
     zero_point.meta.update(line_time_s=LINE_TIME, tdi_rows=TDI_ROWS)
-    intervals = Table(
+    intervals = QTable(  # as the zeropoint stage writes it
         {
             "stretch": ["s0000", "s0001"],
-            "t_start": [-1.0, 6.5],
-            "t_stop": [4.0, 11.5],
+            # seconds as Quantity, as the zeropoint stage writes them
+            "t_start": [-1.0, 6.5] * u.s,
+            "t_stop": [4.0, 11.5] * u.s,
             "flags": [0, 1],
             "interpolated": [False, True],
         }

@@ -251,11 +251,12 @@ def zero_point_figure(zero_point: Table, intervals: Table, clock: NightClock) ->
     ax = fig.add_subplot()
     flagged = np.asarray(intervals["flags"]) != 0
     interpolated = np.asarray(intervals["interpolated"], dtype=bool)
+    starts, stops = _values(intervals["t_start"]), _values(intervals["t_stop"])
     labelled = set()
-    for row, bad, bridged in zip(intervals, flagged, interpolated, strict=True):
+    for start, stop, bad, bridged in zip(starts, stops, flagged, interpolated, strict=True):
         if not bad:
             continue
-        span = clock.hours(zero_point_columns(np.array([row["t_start"], row["t_stop"]]), meta))
+        span = clock.hours(zero_point_columns(np.array([start, stop]), meta))
         label = "interpolated stretch" if bridged else "flagged stretch"
         ax.axvspan(
             *span,
