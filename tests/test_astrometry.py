@@ -499,6 +499,3 @@ def test_fit_leaves_out_flagged_centroids_and_weights_by_the_reference(noisy_ref
     assert abs(_rotation_error(night, biased)) > 2.0
     with pytest.raises(ValueError, match="not detect flags"):
         AstrometryOptions(fit_exclude_flags=("SATURATE",))
-    # A likely unresolved pair's centroid is the light-weighted mean of two
-    # stars, not the matched reference star's position: left out by default.
-    assert "UNRESOLVED" in AstrometryOptions().fit_exclude_flags

@@ -4,15 +4,13 @@ Which detections the fit sees
 -----------------------------
 Every detection gets a solved position, but the geometry is fitted only to
 detections whose centroid and error detect could measure: not flagged
-SATURATED, EDGE, COSMIC_RAY, FIT_FAILED or UNRESOLVED (``fit_exclude_flags``).
-A saturated core, a stamp cut by the chip edge (the star's track partly off the
+SATURATED, EDGE, COSMIC_RAY or FIT_FAILED (``fit_exclude_flags``).  A
+saturated core, a stamp cut by the chip edge (the star's track partly off the
 chip) or a cosmic-ray hit in the core moves the fitted centroid by 0.01 to
 0.1 px while the formal error of so bright a star is ~0.002 px, so a handful
 of them outweighs all the other stars (measured on the simulated mis-set
 nights of ``tests/test_astrometry_stage.py``: the camera rotation came out
-16" off with them, within 2" without).  A likely unresolved pair (two stars
-closer than the seeing, measured as one) has the light-weighted centroid of
-both, not the position of the reference star it matches.  Leaving such stars out of an
+16" off with them, within 2" without).  Leaving such stars out of an
 astrometric fit is common practice.
 
 Each pair is weighted by the detection's centroid error and the reference
@@ -65,7 +63,7 @@ class AstrometryOptions(BaseModel):
         0.0, ge=0, description="Detections below this S/N are solved but not used in the fit."
     )
     fit_exclude_flags: tuple[str, ...] = Field(
-        ("SATURATED", "EDGE", "COSMIC_RAY", "FIT_FAILED", "UNRESOLVED"),
+        ("SATURATED", "EDGE", "COSMIC_RAY", "FIT_FAILED"),
         description="Detect flags (SourceFlag names) of detections solved but not fitted: "
         "their centroids are off by more than their errors say.",
     )
