@@ -15,6 +15,7 @@ Examples
     zdrift plan night.yaml                       # focal length, scale, line time, smear
     zdrift simulate night.yaml                   # write a synthetic night of raw blocks
     zdrift run night.yaml                        # the whole night
+    zdrift run strip.yaml                        # a mosaic's nights, its tiles, its page
     zdrift run night.yaml --stage calibrate --stretches 0,3-5 --force
     zdrift run night.yaml --from calibrate --set stages.calibrate.cosmic_significance=5
     zdrift status night.yaml
@@ -34,6 +35,9 @@ import shutil
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
+from typing import Any
+
+import yaml
 
 import pipeline
 from pipeline._offline import astropy_offline
@@ -124,7 +128,13 @@ def _parser() -> argparse.ArgumentParser:
         )
         return sub
 
-    run = command("run", "run the night's stages, skipping up-to-date products")
+    run = command(
+        "run",
+        "run the night's stages, skipping up-to-date products; given a mosaic config "
+        "(a 'mosaic' section), reduce each night it lists, then build its tiles and the "
+        "page across the nights",
+        what="night (or of a mosaic)",
+    )
     which = run.add_mutually_exclusive_group()
     which.add_argument("--stage", help="run this stage only")
     which.add_argument("--from", dest="from_stage", metavar="STAGE", help="first stage to run")
@@ -260,6 +270,69 @@ def _cmd_run(args: argparse.Namespace, config: Config) -> int:
     return EXIT_OK if report.ok else EXIT_FAILED
 
 
+def _is_mosaic_config(path: str) -> bool:
+    """Whether the file has a top-level ``mosaic`` section (else it is a night's)."""
+    try:
+        data = yaml.safe_load(Path(path).read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, yaml.YAMLError):
+        return False  # the night's loader reports what is wrong
+    return isinstance(data, dict) and "mosaic" in data
+
+
+def _cmd_run_nights(args: argparse.Namespace, config) -> int:
+    """``zdrift run MOSAIC.yaml``: each listed night, the tiles, the page across the nights."""
+    from pipeline.runner import mosaic_dir, run_nights_and_mosaic
+
+    night_only = {
+        "--stage": args.stage,
+        "--from": args.from_stage,
+        "--to": args.to_stage,
+        "--stretches": args.stretches,
+        "--verify": args.verify or None,
+    }
+    given = [name for name, value in night_only.items() if value is not None]
+    if given:
+        print(
+            f"zdrift run: {', '.join(given)} apply to one night; run the night's own config "
+            f"(one of {config.mosaic.nights[0]}, ...)",
+            file=sys.stderr,
+        )
+        return EXIT_USAGE
+    folder = mosaic_dir(config)
+
+    def night_done(night: Config, report) -> None:
+        page = report_page(night)
+        where = f"report: {page}" if page is not None else "no report page"
+        print(f"night {night.night.name}: {_night_line(report)}; {where}", flush=True)
+
+    code, outcome = _in_mosaic_folder(
+        "run",
+        folder,
+        args.verbose,
+        lambda: run_nights_and_mosaic(
+            config, force=args.force, progress=TextProgress(), on_night=night_done
+        ),
+    )
+    if code is not None:
+        return code
+    print(f"mosaic {config.mosaic.name}: {_night_line(outcome.mosaic)}; tiles: {folder / 'tiles'}")
+    if outcome.page is not None:
+        print(f"across the nights: {outcome.page}")
+    if not outcome.ok:
+        print(f"details: {folder / LOG_NAME} and each night's {LOG_NAME}", file=sys.stderr)
+    return EXIT_OK if outcome.ok else EXIT_FAILED
+
+
+def _night_line(report) -> str:
+    """Units ran, skipped, failed and blocked, and problems, of one run report."""
+    n_problems = sum(len(r.problems) for r in report.results)
+    return (
+        f"{report.count('ran')} ran, {report.count('skipped')} up to date, "
+        f"{report.count('failed')} failed, {report.count('blocked')} blocked, "
+        f"{n_problems} problem(s)"
+    )
+
+
 def _cmd_status(args: argparse.Namespace, config: Config) -> int:
     with cli_logging(args.verbose):
         status = night_status(config, verify=args.verify)
@@ -365,6 +438,33 @@ def _cmd_simulate(args: argparse.Namespace, config: Config) -> int:
     return EXIT_OK
 
 
+def _in_mosaic_folder(command: str, folder: Path, verbose: int, call: Callable[[], Any]):
+    """``call()`` with its log in the mosaic's folder: ``(exit status or None, result)``.
+
+    The status is None when ``call`` returned; else it says why it could not
+    run (the message is printed).
+    """
+    stack = contextlib.ExitStack()
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        stack.enter_context(cli_logging(verbose, folder / LOG_NAME))
+    except OSError as exc:
+        print(f"zdrift {command}: cannot write the mosaic's log: {exc}", file=sys.stderr)
+        return EXIT_CANNOT_START, None
+    with stack:
+        try:
+            return None, call()
+        except RunLockedError as exc:
+            print(f"zdrift {command}: {exc}", file=sys.stderr)
+            return EXIT_LOCKED, None
+        except RunStartError as exc:
+            print(f"zdrift {command}: {exc}", file=sys.stderr)
+            return EXIT_CANNOT_START, None
+        except (ConfigError, ValueError) as exc:  # a night's config, a night twice
+            print(f"zdrift {command}: {exc}", file=sys.stderr)
+            return EXIT_USAGE, None
+
+
 def _cmd_mosaic(args: argparse.Namespace, config) -> int:
     from pipeline.runner import mosaic_dir, mosaic_status, run_mosaic
 
@@ -386,25 +486,14 @@ def _cmd_mosaic(args: argparse.Namespace, config) -> int:
             return EXIT_FAILED
         return EXIT_OK if status.complete else EXIT_INCOMPLETE
     folder = mosaic_dir(config)
-    stack = contextlib.ExitStack()
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-        stack.enter_context(cli_logging(args.verbose, folder / LOG_NAME))
-    except OSError as exc:
-        print(f"zdrift mosaic: cannot write the mosaic's log: {exc}", file=sys.stderr)
-        return EXIT_CANNOT_START
-    with stack:
-        try:
-            report = run_mosaic(config, tiles=args.tiles, force=args.force, progress=TextProgress())
-        except RunLockedError as exc:
-            print(f"zdrift mosaic: {exc}", file=sys.stderr)
-            return EXIT_LOCKED
-        except RunStartError as exc:
-            print(f"zdrift mosaic: {exc}", file=sys.stderr)
-            return EXIT_CANNOT_START
-        except (ConfigError, ValueError) as exc:
-            print(f"zdrift mosaic: {exc}", file=sys.stderr)
-            return EXIT_USAGE
+    code, report = _in_mosaic_folder(
+        "mosaic",
+        folder,
+        args.verbose,
+        lambda: run_mosaic(config, tiles=args.tiles, force=args.force, progress=TextProgress()),
+    )
+    if code is not None:
+        return code
     print(report.format())
     if any(r.status in ("ran", "skipped") for r in report.results):
         print(f"tiles: {folder / 'tiles'}")
@@ -446,11 +535,16 @@ def _main(args: Sequence[str] | None) -> int:
     if options.command == "nightly":
         return _cmd_nightly(options)
     load = load_config
-    if options.command == "mosaic":
+    command = _COMMANDS[options.command]
+    if options.command == "mosaic" or (
+        options.command == "run" and _is_mosaic_config(options.config)
+    ):
         from pipeline.mosaic import load_mosaic_config as load
+
+        command = _cmd_mosaic if options.command == "mosaic" else _cmd_run_nights
     try:
         config = load(options.config, options.overrides)
     except ConfigError as exc:
         print(f"zdrift {options.command}: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    return _COMMANDS[options.command](options, config)
+    return command(options, config)

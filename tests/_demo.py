@@ -9,10 +9,11 @@ REPO = Path(__file__).resolve().parents[1]
 
 
 def demo_copy(folder: Path) -> Path:
-    """Copy the demo nights and their configs under ``folder``; return ``demo.yaml``.
+    """Copy the demo nights and their configs; return the first night's config.
 
-    ``demo.yaml`` is the first night's config; ``demo_2026-10-16.yaml``,
-    ``demo_2026-10-17.yaml`` and ``demo_mosaic.yaml`` sit beside it.  Products
+    That is ``demo_2026-10-15.yaml``; ``demo_2026-10-16.yaml``,
+    ``demo_2026-10-17.yaml`` and ``demo.yaml`` (the three and their mosaic,
+    the README's first command) sit beside it.  Products
     of the copy go to ``folder/demo_products/`` (the configs' ``output_dir``,
     relative to ``configs/``).
     """
@@ -20,4 +21,4 @@ def demo_copy(folder: Path) -> Path:
     (folder / "configs").mkdir()
     for path in (REPO / "configs").glob("*demo*.yaml"):
         shutil.copy(path, folder / "configs" / path.name)
-    return folder / "configs" / "demo.yaml"
+    return folder / "configs" / "demo_2026-10-15.yaml"

@@ -4,7 +4,7 @@ Produced before the image products became one multi-extension file per unit,
 with the code and demo night of commit 8257681203d6 (the main line just
 before the change; an export of it, run from its own folder), with::
 
-    python -m pipeline run configs/demo.yaml --set night.output_dir=OLD
+    python -m pipeline run configs/demo_2026-10-15.yaml --set night.output_dir=OLD
 
 and, for every calibrate and rectify stretch, from its ``image.fits``,
 ``variance.fits`` and ``mask.fits`` (one plane per file then): the shape, the

@@ -177,3 +177,41 @@ def page(night: NightProducts, config: Config, options: ReportOptions | None = N
     )
     about = about_rows(context, night.header)
     return build_report(night, config.night.name, about, options or ReportOptions())
+
+
+def nights(names: tuple[str, ...] = ("2026-10-15", "2026-10-16")) -> list[tuple[str, dict]]:
+    """Nights as the page across the nights gets them: the synthetic night, each a bit worse.
+
+    Night ``i`` has its seeing times ``1 + 0.2 i`` and its zero point ``0.1 i``
+    mag fainter; each links to ``../<name>/page.html``.
+    """
+    from pipeline.report import night_sky, summary_rows
+
+    entries = []
+    for i, name in enumerate(names):
+        night = products()
+        night["seeing"]["fwhm"] *= 1 + 0.2 * i
+        night["zero_point"]["zero_point"] -= 0.1 * i
+        entries.append(
+            (
+                name,
+                {
+                    "summary": [list(row) for row in summary_rows(night, None)],
+                    "seeing": night["seeing"],
+                    "block_index": night["block_index"],
+                    "sky": night_sky(night, ReportOptions()),
+                    "zero_point": night["zero_point"],
+                    "residual_grid": night["residual_grid"],
+                    "page": f"../{name}/page.html",
+                },
+            )
+        )
+    return entries
+
+
+def nights_page(entries: list[tuple[str, dict]] | None = None) -> str:
+    """The page across the nights for ``entries`` (default :func:`nights`)."""
+    from pipeline.report import build_nights_report
+
+    about = [("mosaic", "test-strip"), ("nights", "2")]
+    return build_nights_report(entries or nights(), "test-strip", about, ReportOptions())

@@ -1,4 +1,4 @@
-"""The demo's three nights and their mosaic (configs/demo_mosaic.yaml)."""
+"""The demo's three nights and their mosaic (configs/demo.yaml, the README's first command)."""
 
 from __future__ import annotations
 
@@ -15,13 +15,13 @@ from pipeline.mosaic import load_mosaic_config
 
 
 def _night_configs():
-    return load_mosaic_config(REPO / "configs" / "demo_mosaic.yaml").mosaic.nights
+    return load_mosaic_config(REPO / "configs" / "demo.yaml").mosaic.nights
 
 
 def test_the_demo_mosaic_names_three_nights_of_the_same_sky():
     nights = _night_configs()
     assert [p.name for p in nights] == [
-        "demo.yaml",
+        "demo_2026-10-15.yaml",
         "demo_2026-10-16.yaml",
         "demo_2026-10-17.yaml",
     ]
@@ -43,14 +43,29 @@ def test_the_demo_mosaic_names_three_nights_of_the_same_sky():
 
 
 @pytest.mark.slow  # reduces the three demo nights (~1 min each) and co-adds them
-def test_the_three_demo_nights_coadd_with_coverage_three(tmp_path, capsys):
+def test_the_demo_command_reduces_three_nights_and_coadds_them(tmp_path, capsys):
     demo_copy(tmp_path)
-    configs = tmp_path / "configs"
-    for name in ("demo.yaml", "demo_2026-10-16.yaml", "demo_2026-10-17.yaml"):
-        assert main(["run", str(configs / name)]) == EXIT_OK, capsys.readouterr()
-    assert main(["mosaic", str(configs / "demo_mosaic.yaml")]) == EXIT_OK, capsys.readouterr()
-    tiles = tmp_path / "demo_products" / "mosaics" / "demo-strip" / "tiles"
-    assert f"tiles: {tiles}" in capsys.readouterr().out
+    demo = tmp_path / "configs" / "demo.yaml"
+    assert main(["run", str(demo)]) == EXIT_OK, capsys.readouterr()
+    out = capsys.readouterr().out
+    products = tmp_path / "demo_products"
+    for night in ("2026-10-15", "2026-10-16", "2026-10-17"):
+        page = products / f"demo-{night}" / "report" / "night" / "page.html"
+        assert f"night demo-{night}: " in out and f"report: {page}" in out, out
+    strip = products / "mosaics" / "demo-strip"
+    across = strip / "report" / "page.html"
+    assert f"across the nights: {across}" in out
+    text = across.read_text()
+    assert text.count('<img src="data:image/png;base64,') == 4
+    for night in ("2026-10-15", "2026-10-16", "2026-10-17"):
+        assert f'href="../../../demo-{night}/report/night/page.html"' in text
+    assert out.count(" 0 failed, 0 blocked, 0 problem(s)") == 4, out  # 3 nights, the tiles
+    # Rerun: everything is up to date, nothing runs.
+    assert main(["run", str(demo)]) == EXIT_OK
+    rerun = capsys.readouterr().out
+    assert rerun.count(": 0 ran, ") == 4, rerun
+    tiles = strip / "tiles"
+    assert f"tiles: {tiles}" in out
     names = sorted(p.name for p in tiles.iterdir())
     assert len(names) >= 2
     coverage = np.concatenate(

@@ -222,7 +222,7 @@ def test_a_flipped_camera_calibrates_like_an_unflipped_one(tmp_path, capsys):
 
 
 def test_the_demo_night_runs_end_to_end(tmp_path, capsys):
-    """``zdrift run configs/demo.yaml``, the README's main command, on a copy."""
+    """``zdrift run configs/demo_2026-10-15.yaml``: the first demo night alone, on a copy."""
     config = demo_copy(tmp_path)
     assert main(["run", str(config)]) == 0, capsys.readouterr()
     out = capsys.readouterr().out

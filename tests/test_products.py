@@ -156,7 +156,7 @@ def test_calibrate_time_axis_gives_each_rows_readout_time(demo):
     # rounding both ends sets the 1e-3 s (1/46 of a line time) tolerance
     # (measured 0.34 ms at block 1).
     folder, _ = demo
-    config = pipeline.load_config(folder / "configs/demo.yaml")
+    config = pipeline.load_config(folder / "configs/demo_2026-10-15.yaml")
     for stretch in range(4):
         image = pipeline.open_product(config, "calibrate", stretch)
         rows = pipeline.open_product(config, "calibrate", stretch, "rows")
@@ -180,7 +180,7 @@ def test_rectify_stretches_tile_the_night_grid(demo):
     # a pixel's position is the same through either stretch's WCS (to 1e-9
     # deg, float precision of the CRPIX/CRVAL arithmetic).
     folder, _ = demo
-    config = pipeline.load_config(folder / "configs/demo.yaml")
+    config = pipeline.load_config(folder / "configs/demo_2026-10-15.yaml")
     images = [pipeline.open_product(config, "rectify", i) for i in range(4)]
     starts = [WCS(image.meta, key="A").pixel_to_world_values(0, 0)[0] for image in images]
     for image, start, following in zip(images, starts, starts[1:], strict=False):
@@ -229,7 +229,7 @@ def _summary(image: CCDData) -> dict:
 
 def test_products_keep_the_previous_layouts_values(demo):
     folder, _ = demo
-    config = pipeline.load_config(folder / "configs/demo.yaml")
+    config = pipeline.load_config(folder / "configs/demo_2026-10-15.yaml")
     for stage in ("calibrate", "rectify"):
         for stretch in range(4):
             key = f"{stage}/s000{stretch}"
@@ -290,7 +290,7 @@ TABLE_UNITS = {
 
 def test_table_columns_carry_units(demo):
     folder, _ = demo
-    config = pipeline.load_config(folder / "configs/demo.yaml")
+    config = pipeline.load_config(folder / "configs/demo_2026-10-15.yaml")
     for (stage, name), units in TABLE_UNITS.items():
         unit = "night" if stage in ("ingest", "columns") else 0
         table = pipeline.open_product(config, stage, unit, name)
@@ -308,7 +308,7 @@ def test_table_columns_carry_units(demo):
 
 def test_open_product_says_what_is_missing(demo):
     folder, _ = demo
-    config = pipeline.load_config(folder / "configs/demo.yaml")
+    config = pipeline.load_config(folder / "configs/demo_2026-10-15.yaml")
     with pytest.raises(ValueError, match=r"has no product 'nope'; it has .*rows"):
         pipeline.open_product(config, "calibrate", 0, "nope")
     with pytest.raises(ValueError, match="no complete products"):

@@ -23,7 +23,7 @@ from pathlib import Path
 import _report_scene as scene
 import pytest
 
-from pipeline.report import FIGURES, NightProducts
+from pipeline.report import FIGURES, NIGHTS_FIGURES, NightProducts
 from pipeline.report._page import CONTENT_POLICY
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
@@ -181,3 +181,14 @@ def test_screenshot_of_the_page(page: str, tmp_path: Path) -> None:
     assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert shot.stat().st_size > 50_000  # figures drawn, not a blank page (~6 kB)
     assert trap.requests == []
+
+
+def test_page_across_the_nights_loads_every_image_and_requests_nothing(tmp_path: Path) -> None:
+    probe, requests = _probe(scene.nights_page(), tmp_path)
+    assert probe["images"] == len(NIGHTS_FIGURES)
+    assert probe["broken"] == 0
+    assert probe["shown"] == [spec.title for spec in NIGHTS_FIGURES]
+    assert requests == []
+    assert [name for name in probe["fetched"] if not name.startswith("data:")] == []
+    # The links to the nights' pages are not followed on load.
+    assert all("page.html" not in name for name in probe["fetched"])

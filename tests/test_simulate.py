@@ -488,8 +488,8 @@ def test_demo_readme_quotes_the_config():
     assert "python -m pipeline.simulate configs/simulate_demo.yaml" in readme
     # The reduction config of the demo night is quoted too, and reduces the
     # very night the simulation config writes.
-    reduce = REPO / "configs" / "demo.yaml"
-    assert reduce.read_text() in readme and "zdrift run configs/demo.yaml" in readme
+    reduce = REPO / "configs" / "demo_2026-10-15.yaml"
+    assert reduce.read_text() in readme and "zdrift run configs/demo_2026-10-15.yaml" in readme
     from pipeline.config import load_config
 
     night = load_config(reduce).night

@@ -33,6 +33,7 @@ from pipeline.report._figures import (
     sky_along_night_figure,
     sources_along_night_figure,
 )
+from pipeline.report._nights import NIGHTS_FIGURES, build_nights_report, pooled_residuals
 from pipeline.report._options import ReportOptions
 from pipeline.report._page import DrawnFigure, draw_figures, render_page
 from pipeline.report._sky import (
@@ -55,6 +56,7 @@ from pipeline.report._summary import problem_lines, solved_rows, summary_rows
 
 __all__ = [
     "FIGURES",
+    "NIGHTS_FIGURES",
     "PRODUCT_SOURCES",
     "DrawnFigure",
     "FigureSpec",
@@ -62,6 +64,7 @@ __all__ = [
     "NightProducts",
     "ReportOptions",
     "bin_image",
+    "build_nights_report",
     "build_report",
     "collect_products",
     "column_flat_figure",
@@ -72,6 +75,7 @@ __all__ = [
     "night_sky",
     "pixel_area_arcsec2",
     "place_pieces",
+    "pooled_residuals",
     "problem_lines",
     "quicklook_figure",
     "render_page",

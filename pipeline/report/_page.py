@@ -15,7 +15,15 @@ from matplotlib.figure import Figure
 from pipeline.report._figures import FIGURES, FigureSpec
 from pipeline.report._options import ReportOptions
 
-__all__ = ["DrawnFigure", "draw_figures", "figure_png", "render_page"]
+__all__ = [
+    "DrawnFigure",
+    "draw_figures",
+    "figure_png",
+    "page_document",
+    "problem_block",
+    "render_page",
+    "section",
+]
 
 log = logging.getLogger(__name__)
 
@@ -32,6 +40,7 @@ table { border-collapse: collapse; } td, th { padding: 0.2em 0.8em; text-align: 
 .note { color: #855; font-style: italic; }
 figure { margin: 0; } img { max-width: 100%; }
 figcaption { font-size: 0.92em; color: #444; }
+.wide { overflow-x: auto; } .nights td, .nights th { white-space: nowrap; }
 """
 
 
@@ -118,6 +127,51 @@ def _figure(item: DrawnFigure) -> str:
     )
 
 
+def problem_block(
+    problems: Sequence[str],
+    where: str = "in this run",
+    none: str = "The run reported no problems.",
+) -> str:
+    """The problems in words (escaped), or the line ``none`` when there are none."""
+    if not problems:
+        return f'<div class="ok">{html.escape(none)}</div>\n'
+    items = "\n".join(f"<li>{html.escape(line)}</li>" for line in problems)
+    return (
+        f'<div class="problems"><strong>{len(problems)} problem'
+        f"{'' if len(problems) == 1 else 's'} {html.escape(where)}:</strong>"
+        f"<ul>{items}</ul></div>\n"
+    )
+
+
+def section(name: str, heading: str | None, rows: Sequence[tuple[str, str]]) -> str:
+    """A table of label and value rows (escaped), under an optional heading."""
+    title = "" if heading is None else f'<h2 id="{name}">{html.escape(heading)}</h2>\n'
+    return f'{title}<table class="{name}">\n{_rows(rows)}\n</table>\n'
+
+
+def page_document(title: str, body: str, figures: Sequence[DrawnFigure]) -> str:
+    """The whole page: head (style, content policy), the title, ``body``, then the figures.
+
+    ``title`` is escaped here; ``body`` is HTML made of escaped parts.
+    """
+    title = html.escape(title)
+    drawn = "\n".join(_figure(item) for item in figures)
+    return f"""<!DOCTYPE html>
+<html lang="en">
+<head>
+<meta charset="utf-8">
+<meta http-equiv="Content-Security-Policy" content="{CONTENT_POLICY}">
+<title>{title}</title>
+<style>{_STYLE}</style>
+</head>
+<body>
+<h1>{title}</h1>
+{body}{drawn}
+</body>
+</html>
+"""
+
+
 def render_page(
     *,
     night: str,
@@ -145,35 +199,6 @@ def render_page(
         The summary table.
     figures : sequence of DrawnFigure
     """
-    if problems:
-        items = "\n".join(f"<li>{html.escape(line)}</li>" for line in problems)
-        problem_block = (
-            f'<div class="problems"><strong>{len(problems)} problem'
-            f"{'' if len(problems) == 1 else 's'} in this run:</strong><ul>{items}</ul></div>"
-        )
-    else:
-        problem_block = '<div class="ok">The run reported no problems.</div>'
-    body = "\n".join(_figure(item) for item in figures)
-    title = html.escape(f"zdrift nightly report: {night}")
-    return f"""<!DOCTYPE html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<meta http-equiv="Content-Security-Policy" content="{CONTENT_POLICY}">
-<title>{title}</title>
-<style>{_STYLE}</style>
-</head>
-<body>
-<h1>{title}</h1>
-{problem_block}
-<table class="about">
-{_rows(about)}
-</table>
-<h2 id="summary">Summary</h2>
-<table class="summary">
-{_rows(summary)}
-</table>
-{body}
-</body>
-</html>
-"""
+    body = problem_block(problems) + section("about", None, about)
+    body += section("summary", "Summary", summary)
+    return page_document(f"zdrift nightly report: {night}", body, figures)

@@ -27,6 +27,7 @@ Example
 
 from __future__ import annotations
 
+import contextlib
 import datetime
 import difflib
 import logging
@@ -57,17 +58,20 @@ from pipeline.runner._nightly import (
     report_page,
 )
 from pipeline.runner._store import clear_failure, mark_damaged, write_failure
+from pipeline.runner._strip import NIGHTS_PAGE, NightsRun, nights_page, run_nights_and_mosaic
 from pipeline.runner._unit import UnitOutcome, UnitTask, execute_unit, failed_outcome
 from pipeline.stages.base import Stage, Stretch
 
 __all__ = [
     "LOCK_NAME",
     "LOG_NAME",
+    "NIGHTS_PAGE",
     "NIGHT_CONFIG_NAME",
     "REPORT_PAGE",
     "MosaicStatus",
     "NightOutcome",
     "NightStatus",
+    "NightsRun",
     "Progress",
     "RunReport",
     "StageStatus",
@@ -80,6 +84,7 @@ __all__ = [
     "mosaic_status",
     "night_dir",
     "night_status",
+    "nights_page",
     "no_progress",
     "open_product",
     "parse_stretches",
@@ -89,6 +94,7 @@ __all__ = [
     "report_page",
     "run_mosaic",
     "run_night",
+    "run_nights_and_mosaic",
     "select_stages",
 ]
 
@@ -328,6 +334,7 @@ def run_night(
     force: bool = False,
     progress: Progress | None = None,
     verify: bool = False,
+    executor: Executor | None = None,
 ) -> RunReport:
     """Run the night's stages, skipping units that are up to date.
 
@@ -353,6 +360,10 @@ def run_night(
         reads are checked, as it reads them.  Either way a damaged product
         is reported (``report.damaged``), taken out of use and recomputed,
         with what depends on it.
+    executor : Executor, optional
+        Run the units there, and leave it open (several nights can share
+        one pool of workers); default one made from ``config.run`` for this
+        run and closed at its end.
 
     Returns
     -------
@@ -375,11 +386,13 @@ def run_night(
     restored afterwards.
     """
     with astropy_offline():
-        return _run_night(config, stage, from_stage, to_stage, stretches, force, progress, verify)
+        return _run_night(
+            config, stage, from_stage, to_stage, stretches, force, progress, verify, executor
+        )
 
 
 def _run_night(
-    config, stage, from_stage, to_stage, stretches, force, progress, verify
+    config, stage, from_stage, to_stage, stretches, force, progress, verify, shared
 ) -> RunReport:
     selected = select_stages(config.graph, stage, from_stage, to_stage)
     wanted = None if stretches is None else frozenset(stretches)
@@ -388,7 +401,11 @@ def _run_night(
     report = RunReport(config.night.name)
     results: dict[tuple[str, str], UnitResult] = {}
     lock = RunLock(night.root / LOCK_NAME)
-    with lock, make_executor(config.run, config.camera().n_columns) as executor:
+    if shared is None:
+        workers = make_executor(config.run, config.camera().n_columns)
+    else:
+        workers = contextlib.nullcontext(shared)
+    with lock, workers as executor:
         executor.warm(_stage_modules(config.graph))
         if verify:
             night.find_damage()

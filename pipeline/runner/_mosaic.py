@@ -18,6 +18,7 @@ and a killed run resumes.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import warnings
 from collections.abc import Iterable
@@ -342,6 +343,7 @@ def run_mosaic(
     tiles: Iterable[int] | None = None,
     force: bool = False,
     progress=None,
+    executor=None,
 ):
     """Build the mosaic's tiles, skipping those that are up to date.
 
@@ -354,6 +356,9 @@ def run_mosaic(
         Rebuild the selected tiles even if they are up to date.
     progress : callable, optional
         ``progress('tiles', done, total)``.
+    executor : Executor, optional
+        Build the tiles there and leave it open; default one made from
+        ``config.run`` for this run.
 
     Returns
     -------
@@ -369,10 +374,10 @@ def run_mosaic(
         For tile indices the layout does not have, or a night listed twice.
     """
     with astropy_offline():
-        return _run_mosaic(config, tiles, force, progress)
+        return _run_mosaic(config, tiles, force, progress, executor)
 
 
-def _run_mosaic(config, tiles, force, progress):
+def _run_mosaic(config, tiles, force, progress, shared):
     from pipeline.runner import LOCK_NAME, RunReport, UnitResult, _record_outcome, no_progress
 
     progress = progress or no_progress
@@ -396,7 +401,8 @@ def _run_mosaic(config, tiles, force, progress):
         )
     store.root.mkdir(parents=True, exist_ok=True)
     lock = RunLock(store.root / LOCK_NAME)
-    with lock, make_executor(config.run) as executor:
+    workers = make_executor(config.run) if shared is None else contextlib.nullcontext(shared)
+    with lock, workers as executor:
         tasks = []
         for tile in selected:
             state, _ = store.state(tile)

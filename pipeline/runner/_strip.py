@@ -1,0 +1,192 @@
+"""Several nights and their mosaic in one run: ``zdrift run MOSAIC.yaml``.
+
+A mosaic config lists the nights it co-adds (their configs, or product
+folders of nights reduced elsewhere).  :func:`run_nights_and_mosaic` brings
+every listed night config up to date, its report included
+(:func:`pipeline.runner.run_night`), then builds the mosaic's tiles
+(:func:`pipeline.runner.run_mosaic`) and writes the page across the nights
+(:func:`pipeline.report.build_nights_report`) to
+``<mosaic output_dir>/<name>/report/page.html``.
+
+The nights run one after the other on one pool of workers (started once,
+from the first night's ``run`` section; a night whose ``run`` section
+differs gets its own), so the workers' imports and compiled kernels serve
+every night.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import os
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pipeline.config import Config, load_config
+from pipeline.exceptions import ConfigError
+from pipeline.runner._access import open_product
+from pipeline.runner._executors import make_executor
+from pipeline.runner._mosaic import mosaic_dir, mosaic_nights, run_mosaic
+from pipeline.runner._nightly import report_page
+
+__all__ = ["NIGHTS_PAGE", "NightsRun", "night_configs", "nights_page", "run_nights_and_mosaic"]
+
+log = logging.getLogger(__name__)
+
+#: Where the page across the nights goes, below the mosaic's folder.
+NIGHTS_PAGE = Path("report") / "page.html"
+
+#: Key of the page's night products -> (stage, product) in the night's store.
+_PRODUCTS = {
+    "summary": ("report", "summary"),
+    "sky": ("report", "sky"),
+    "seeing": ("catalog", "seeing"),
+    "block_index": ("ingest", "block_index"),
+    "zero_point": ("zeropoint", "zero_point"),
+    "residual_grid": ("astrometry", "residual_grid"),
+}
+
+
+@dataclass
+class NightsRun:
+    """What :func:`run_nights_and_mosaic` did.
+
+    ``nights`` holds each night config's name and its
+    :class:`pipeline.runner.RunReport`; ``mosaic`` the tiles' report;
+    ``page`` the page across the nights (None if it could not be written).
+    """
+
+    nights: list[tuple[str, Any]] = field(default_factory=list)
+    mosaic: Any = None
+    page: Path | None = None
+
+    @property
+    def ok(self) -> bool:
+        """True if every night and the mosaic ran without failure or problem."""
+        reports = [report for _, report in self.nights] + [self.mosaic]
+        return all(report is not None and report.ok for report in reports)
+
+
+def night_configs(config: Any) -> list[Config]:
+    """The night configs a mosaic config lists (product folders are left out).
+
+    Raises
+    ------
+    ConfigError
+        If a listed night config is invalid (naming the file).
+    """
+    return [load_config(path) for path in config.mosaic.nights if Path(path).is_file()]
+
+
+def _same_workers(a: Config, b: Config) -> bool:
+    return a.run.model_dump() == b.run.model_dump() and (
+        a.camera().n_columns == b.camera().n_columns
+    )
+
+
+def run_nights_and_mosaic(
+    config: Any,
+    *,
+    force: bool = False,
+    progress: Callable[[str, int, int], None] | None = None,
+    on_night: Callable[[Config, Any], None] | None = None,
+) -> NightsRun:
+    """Reduce the mosaic's nights, build its tiles and the page across the nights.
+
+    Parameters
+    ----------
+    config : pipeline.mosaic.MosaicConfig
+    force : bool
+        Recompute every unit and tile even if up to date.
+    progress : callable, optional
+        ``progress(label, done, total)`` for the units of each stage and the tiles.
+    on_night : callable, optional
+        ``on_night(night_config, run_report)`` after each night (e.g. to
+        print where its page is).
+
+    Returns
+    -------
+    NightsRun
+
+    Raises
+    ------
+    ConfigError
+        If a listed night config is invalid (before anything runs).
+    RunLockedError
+        If another run holds a night's or the mosaic's lock.
+    """
+    from pipeline.runner import run_night
+
+    nights = night_configs(config)
+    outcome = NightsRun()
+    with contextlib.ExitStack() as stack:
+        shared = None
+        if nights:
+            first = nights[0]
+            shared = stack.enter_context(make_executor(first.run, first.camera().n_columns))
+        for night in nights:
+            executor = shared if _same_workers(night, nights[0]) else None
+            log.info("night %s of mosaic %s", night.night.name, config.mosaic.name)
+            report = run_night(night, force=force, progress=progress, executor=executor)
+            outcome.nights.append((night.night.name, report))
+            if on_night is not None:
+                on_night(night, report)
+    outcome.mosaic = run_mosaic(config, force=force, progress=progress)
+    try:
+        outcome.page = write_nights_page(config, nights)
+    except OSError as exc:
+        log.error("cannot write the page across the nights: %s", exc)
+    return outcome
+
+
+def _night_products(night: Config) -> dict[str, Any]:
+    """The products of a night the page across the nights draws (those that exist)."""
+    products: dict[str, Any] = {}
+    for key, (stage, name) in _PRODUCTS.items():
+        if stage not in {s.name for s in night.graph}:
+            continue
+        try:
+            products[key] = open_product(night, stage, "night", name)
+        except (ValueError, OSError) as exc:  # not made, failed, damaged
+            log.info("night %s: no %s for the page across the nights (%s)", night, key, exc)
+    return products
+
+
+def nights_page(config: Any) -> Path:
+    """Where the page across the mosaic's nights is written."""
+    return mosaic_dir(config) / NIGHTS_PAGE
+
+
+def write_nights_page(config: Any, nights: list[Config]) -> Path:
+    """Write the page across ``nights`` (with the mosaic's tiles); return its path."""
+    from pipeline.report import ReportOptions, build_nights_report
+
+    path = nights_page(config)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    entries = []
+    for night in nights:
+        products = _night_products(night)
+        page = report_page(night)
+        if page is not None:
+            products["page"] = Path(os.path.relpath(page, path.parent)).as_posix()
+        entries.append((night.night.name, products))
+    options = night_options(nights)
+    tiles = mosaic_nights(config)
+    about = [
+        ("mosaic", config.mosaic.name),
+        ("nights", str(len(config.mosaic.nights))),
+        ("tiles built", str(len(set(tiles["tile"])) if len(tiles) else 0)),
+    ]
+    text = build_nights_report(entries, config.mosaic.name, about, options or ReportOptions())
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def night_options(nights: list[Config]) -> Any:
+    """The report options of the first night (figure size, dpi), or None."""
+    for night in nights:
+        with contextlib.suppress(ConfigError, KeyError, AttributeError):
+            return night.stage_options("report")
+    return None

@@ -1,0 +1,98 @@
+"""``zdrift run MOSAIC.yaml``: the listed nights, the tiles and the page across the nights."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+import yaml
+from test_mosaic_run import DETECT, tiling
+
+from pipeline.cli import EXIT_OK, EXIT_USAGE, main
+from pipeline.mosaic import load_mosaic_config
+from pipeline.runner import RunReport, _strip, nights_page
+from tests._mosaic_nights import write_nights
+
+NIGHT = """\
+night: {{name: {name}, raw_dir: raw, output_dir: out}}
+site: {{name: Fictional Ridge, latitude: 31.0, longitude: -105.0, height: 2200}}
+camera: {{n_columns: 256, tdi_rows: 256, pixel_size: 15, focal_length: 3.5}}
+run: {{executor: {executor}, workers: 2}}
+"""
+
+
+def _mosaic(folder: Path, nights: list[str]) -> Path:
+    data = {
+        "mosaic": {"name": "strip", "output_dir": "mosaics", "nights": nights},
+        "tiling": tiling(),
+        "detect": DETECT,
+        "run": {"executor": "serial"},
+    }
+    path = folder / "mosaic.yaml"
+    path.write_text(yaml.safe_dump(data, sort_keys=False))
+    return path
+
+
+def test_run_on_a_mosaic_of_product_folders_builds_the_tiles_and_the_page(tmp_path, capsys):
+    folders = write_nights(tmp_path / "products")
+    path = _mosaic(tmp_path, [str(p) for p in folders])
+    assert main(["run", str(path)]) == EXIT_OK, capsys.readouterr()
+    out = capsys.readouterr().out
+    page = nights_page(load_mosaic_config(path))
+    assert "mosaic strip: 3 ran, 0 up to date, 0 failed, 0 blocked" in out, out
+    assert f"across the nights: {page}" in out
+    assert page.read_text().startswith("<!DOCTYPE html>")
+    # Product folders are co-added as they are: no night is reduced.
+    assert "night " not in out
+    assert main(["run", str(path)]) == EXIT_OK
+    assert "mosaic strip: 0 ran, 3 up to date" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("option", [["--stage", "detect"], ["--stretches", "0"], ["--verify"]])
+def test_options_for_one_night_are_refused_for_a_mosaic(tmp_path, capsys, option):
+    (tmp_path / "n1.yaml").write_text(NIGHT.format(name="n1", executor="local"))
+    path = _mosaic(tmp_path, ["n1.yaml"])
+    assert main(["run", str(path), *option]) == EXIT_USAGE
+    assert "apply to one night; run the night's own config" in capsys.readouterr().err
+
+
+def test_a_bad_night_config_is_a_usage_error_naming_it(tmp_path, capsys):
+    (tmp_path / "n1.yaml").write_text(NIGHT.format(name="n1", executor="local") + "colour: 3\n")
+    path = _mosaic(tmp_path, ["n1.yaml"])
+    assert main(["run", str(path)]) == EXIT_USAGE
+    assert "n1.yaml" in capsys.readouterr().err
+
+
+def test_nights_with_the_same_run_section_share_one_pool(tmp_path, monkeypatch):
+    # n1 and n2 ask for the same local pool; n3 for another kind of executor.
+    for name, executor in (("n1", "local"), ("n2", "local"), ("n3", "serial")):
+        (tmp_path / f"{name}.yaml").write_text(NIGHT.format(name=name, executor=executor))
+    config = load_mosaic_config(_mosaic(tmp_path, ["n1.yaml", "n2.yaml", "n3.yaml"]))
+    made, given = [], {}
+
+    class Pool:
+        closed = False
+
+        def __enter__(self):
+            return self
+
+        def __exit__(self, *exc):
+            self.closed = True
+
+    def make_executor(run, n_columns=None):
+        made.append(Pool())
+        return made[-1]
+
+    def run_night(night, *, executor=None, **kwargs):
+        assert executor is None or not executor.closed  # open for every night
+        given[night.night.name] = executor
+        return RunReport(night.night.name)
+
+    monkeypatch.setattr(_strip, "make_executor", make_executor)
+    monkeypatch.setattr("pipeline.runner.run_night", run_night)
+    monkeypatch.setattr(_strip, "run_mosaic", lambda *a, **k: RunReport("strip", kind="mosaic"))
+    outcome = _strip.run_nights_and_mosaic(config)
+    assert [name for name, _ in outcome.nights] == ["n1", "n2", "n3"]
+    assert len(made) == 1 and given["n1"] is made[0] and given["n2"] is made[0]
+    assert given["n3"] is None  # run_night makes its own from its run section
+    assert made[0].closed  # and the shared pool ends with the nights
