@@ -77,6 +77,18 @@ def products() -> dict:
         ),
         "strip": strip,
         "strip_factor": 2,
+        "smear_widths": Table(
+            {
+                "x": rng.uniform(0, 250, 40),
+                "y": rng.uniform(0, 100, 40),
+                "fwhm_seeing": np.full(40, 3.0),
+                "along": rng.normal(2.0, 0.05, 40),
+                "across": rng.normal(1.5, 0.05, 40),
+                "model_along": np.full(40, 1.95),
+                "model_across": np.full(40, 1.52),
+            }
+        ),
+        "strip_rows": 100,
         "pixel_scale": 0.5,
         **solved_products(),
     }

@@ -22,6 +22,7 @@ from astropy.table import vstack
 from pipeline.products import ccddata_from_hdulist
 from pipeline.report._options import ReportOptions
 from pipeline.report._sky import bin_image, measure_sky, pixel_area_arcsec2, place_pieces
+from pipeline.report._smear import measure_smear_widths
 
 __all__ = ["PRODUCT_SOURCES", "NightProducts", "collect_products"]
 
@@ -49,6 +50,8 @@ PRODUCT_SOURCES = {key: stage for key, (stage, _) in _NIGHT_PRODUCTS.items()} | 
     "strip_factor": "rectify",
     "pixel_scale": "rectify",
     "matched_x_range": "astrometry",
+    "smear_widths": "rectify",
+    "strip_rows": "rectify",
 }
 
 
@@ -105,7 +108,8 @@ def collect_products(
         return night
     n_columns = int(np.max(np.asarray(index["row_start"]) + np.asarray(index["n_rows"])))
     factor = max(1, math.ceil(n_columns / options.quicklook_width))
-    skies, pieces, areas = [], [], []
+    skies, pieces, areas, widths = [], [], [], []
+    catalog, seeing = night.products.get("catalog"), night.products.get("seeing")
     for products in stretches:  # one stretch in memory at a time
         image = ccddata_from_hdulist(products["image"])
         header = image.meta
@@ -126,9 +130,18 @@ def collect_products(
         skies.append(sky)
         areas.append(area)
         pieces.append((x_start, bin_image(np.where(usable, data, np.nan), factor)))
+        smeared = not header.get("DECONV", False) and "smear_kernels" in products
+        if smeared and catalog is not None and seeing is not None:
+            kernels = products["smear_kernels"]
+            widths.append(
+                measure_smear_widths(data, usable, catalog, seeing, kernels, x_start=x_start)
+            )
+            night.products["strip_rows"] = ny
     night.products["sky"] = vstack(skies)
     night.products["sky"]["pixel_area"].unit = "arcsec2"
     night.products["strip"] = place_pieces(pieces, factor)
     night.products["strip_factor"] = factor
     night.products["pixel_scale"] = float(np.sqrt(np.median(areas)))
+    if widths:
+        night.products["smear_widths"] = vstack(widths, metadata_conflicts="silent")
     return night

@@ -23,8 +23,10 @@ from pipeline.report._clock import FIGURE_SIZE as _SIZE
 from pipeline.report._clock import NightClock, time_axis
 from pipeline.report._options import ReportOptions
 from pipeline.report._sky import sky_surface_brightness
+from pipeline.report._smear import smear_figure
 from pipeline.report._solved import (
     focal_length_figure,
+    line_time_check,
     residual_map_figure,
     residuals_along_night_figure,
     star_flat_figure,
@@ -372,6 +374,14 @@ def _focal(products: Mapping[str, Any], options: ReportOptions) -> Figure:
     return focal_length_figure(products["astrometry_parameters"], products["tdi_rows"])
 
 
+def _smear(products: Mapping[str, Any], options: ReportOptions) -> Figure:
+    parameters = products.get("astrometry_parameters")
+    line_time = None
+    if parameters is not None and "tdi_rows" in products:
+        line_time = line_time_check(parameters.meta, products["tdi_rows"])
+    return smear_figure(products["smear_widths"], products["strip_rows"], line_time)
+
+
 def _zero_point(products: Mapping[str, Any], options: ReportOptions) -> Figure:
     clock = NightClock(products["block_index"])
     return zero_point_figure(products["zero_point"], products["zp_intervals"], clock)
@@ -460,6 +470,15 @@ FIGURES: tuple[FigureSpec, ...] = (
         _focal,
         "Focal length fitted to the stars against the spin period's, and the line "
         "time clocked against the one matching the drift: apply the correction above.",
+    ),
+    FigureSpec(
+        "smear",
+        "Smear: PSF widths along and across the scan",
+        ("smear_widths", "strip_rows"),
+        _smear,
+        "Bright isolated stars' widths (solid) beside the geometry's for the same stars "
+        "(dashed): along above and across below it means the line time or drift rate is "
+        "off (the line-time error above says by how much); a gap at one side, tilt.",
     ),
     FigureSpec(
         "flat",

@@ -779,6 +779,7 @@ def _run(*, inputs, options: DetectOptions, context) -> dict:
     seeing["stretch"] = u.Quantity(np.full(len(seeing), stretch.index, np.int32), u.one)
     seeing["x_start"] = np.full(len(seeing), own.x_start) * u.pix
     seeing["x_stop"] = np.full(len(seeing), own.x_stop) * u.pix
+    seeing.meta.update(seeing_shape=options.seeing_shape, moffat_beta=options.moffat_beta)
     log.info("%s: %d sources, seeing FWHM %.2f px", stretch.id, len(catalog), seeing["fwhm"][0])
     out = {"catalog": catalog, "seeing": seeing}
     if result.problems:
