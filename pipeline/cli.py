@@ -56,7 +56,7 @@ from pipeline.runner import (
     report_page,
     run_night,
 )
-from pipeline.runner._logging import TextProgress, cli_logging
+from pipeline.runner._logging import TextProgress, cli_logging, thread_log
 
 __all__ = ["main"]
 
@@ -310,7 +310,11 @@ def _cmd_run_nights(args: argparse.Namespace, config) -> int:
         folder,
         args.verbose,
         lambda: run_nights_and_mosaic(
-            config, force=args.force, progress=TextProgress(), on_night=night_done
+            config,
+            force=args.force,
+            progress=TextProgress(),
+            on_night=night_done,
+            night_log=lambda night: thread_log(night_dir(night) / LOG_NAME),
         ),
     )
     if code is not None:

@@ -276,6 +276,7 @@ class LocalPoolExecutor(Executor):
 
     def warm(self, modules: Sequence[str]) -> None:
         self._modules = tuple(modules)
+        self._starting = threading.Lock()  # several nights' runs may share the pool
 
     def map(self, fn, tasks, on_error) -> Iterator[Outcome]:
         # When a worker dies (killed, out of memory) the whole pool breaks and
@@ -355,6 +356,10 @@ class LocalPoolExecutor(Executor):
 
     def _start(self) -> ProcessPoolExecutor:
         """The pool, started (all its workers at once) if it is not running."""
+        with self._starting:
+            return self._start_locked()
+
+    def _start_locked(self) -> ProcessPoolExecutor:
         if self._pool is None:
             self._reaper.start()
             self._pool = ProcessPoolExecutor(

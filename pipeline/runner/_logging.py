@@ -12,11 +12,12 @@ from __future__ import annotations
 import contextlib
 import logging
 import sys
+import threading
 from collections.abc import Iterator
 from pathlib import Path
 from typing import TextIO
 
-__all__ = ["TextProgress", "cli_logging"]
+__all__ = ["TextProgress", "cli_logging", "thread_log"]
 
 _LOGGERS = ("pipeline", "py.warnings")
 _FILE_FORMAT = "%(asctime)s %(levelname)-7s %(name)s: %(message)s"
@@ -82,3 +83,27 @@ class TextProgress:
         elif done == total:
             self.stream.write(text + "\n")
         self.stream.flush()
+
+
+@contextlib.contextmanager
+def thread_log(log_file: Path) -> Iterator[None]:
+    """Also append the records this thread logs (DEBUG and up) to ``log_file``.
+
+    For runs of several nights at once, one per thread: each night's records
+    go to its own log as well as to the handlers of :func:`cli_logging`.
+    """
+    log_file.parent.mkdir(parents=True, exist_ok=True)
+    handler = logging.FileHandler(log_file, encoding="utf-8")
+    handler.setLevel(logging.DEBUG)
+    handler.setFormatter(logging.Formatter(_FILE_FORMAT))
+    thread = threading.get_ident()
+    handler.addFilter(lambda record: record.thread == thread)
+    loggers = [logging.getLogger(name) for name in _LOGGERS]
+    for logger in loggers:
+        logger.addHandler(handler)
+    try:
+        yield
+    finally:
+        for logger in loggers:
+            logger.removeHandler(handler)
+        handler.close()

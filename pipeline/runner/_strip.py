@@ -8,10 +8,13 @@ every listed night config up to date, its report included
 (:func:`pipeline.report.build_nights_report`) to
 ``<mosaic output_dir>/<name>/report/page.html``.
 
-The nights run one after the other on one pool of workers (started once,
-from the first night's ``run`` section; a night whose ``run`` section
-differs gets its own), so the workers' imports and compiled kernels serve
-every night.
+The nights run at the same time, each in a thread of this process, on one
+pool of workers (started once, from the first night's ``run`` section; a
+night whose ``run`` section differs gets its own): the pool starts once, its
+workers' imports and compiled kernels serve every night, and while one
+night waits on a stage with a single unit (the column solve, astrometry,
+the report) the other workers take the units of the other nights.  Each
+night still keeps its own lock and its stages' order.
 """
 
 from __future__ import annotations
@@ -20,10 +23,12 @@ import contextlib
 import logging
 import os
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor, wait
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from pipeline._offline import astropy_offline
 from pipeline.config import Config, load_config
 from pipeline.exceptions import ConfigError
 from pipeline.runner._access import open_product
@@ -80,6 +85,18 @@ def night_configs(config: Any) -> list[Config]:
     return [load_config(path) for path in config.mosaic.nights if Path(path).is_file()]
 
 
+def _same_pool(run: Any, nights: list[Config]) -> bool:
+    """Whether the mosaic's ``run`` section asks for the pool the nights share."""
+    if not nights or run.executor == "serial":
+        return False
+    first = nights[0].run
+    return (run.executor, run.workers, run.scheduler) == (
+        first.executor,
+        first.workers,
+        first.scheduler,
+    )
+
+
 def _same_workers(a: Config, b: Config) -> bool:
     return a.run.model_dump() == b.run.model_dump() and (
         a.camera().n_columns == b.camera().n_columns
@@ -92,6 +109,7 @@ def run_nights_and_mosaic(
     force: bool = False,
     progress: Callable[[str, int, int], None] | None = None,
     on_night: Callable[[Config, Any], None] | None = None,
+    night_log: Callable[[Config], contextlib.AbstractContextManager] | None = None,
 ) -> NightsRun:
     """Reduce the mosaic's nights, build its tiles and the page across the nights.
 
@@ -105,6 +123,9 @@ def run_nights_and_mosaic(
     on_night : callable, optional
         ``on_night(night_config, run_report)`` after each night (e.g. to
         print where its page is).
+    night_log : callable, optional
+        ``night_log(night_config)``: a context manager entered in the night's
+        thread for its run (e.g. a log file of the night's records).
 
     Returns
     -------
@@ -121,19 +142,37 @@ def run_nights_and_mosaic(
 
     nights = night_configs(config)
     outcome = NightsRun()
-    with contextlib.ExitStack() as stack:
+    progress = progress or (lambda label, done, total: None)
+    with astropy_offline(), contextlib.ExitStack() as stack:  # one setting for every thread
         shared = None
         if nights:
             first = nights[0]
             shared = stack.enter_context(make_executor(first.run, first.camera().n_columns))
-        for night in nights:
-            executor = shared if _same_workers(night, nights[0]) else None
-            log.info("night %s of mosaic %s", night.night.name, config.mosaic.name)
-            report = run_night(night, force=force, progress=progress, executor=executor)
-            outcome.nights.append((night.night.name, report))
+
+        def reduce(night: Config) -> Any:
+            name = night.night.name
+            logged = night_log(night) if night_log is not None else contextlib.nullcontext()
+            with logged:
+                log.info("night %s of mosaic %s", name, config.mosaic.name)
+                report = run_night(
+                    night,
+                    force=force,
+                    progress=lambda label, done, total: progress(f"{name} {label}", done, total),
+                    executor=shared if _same_workers(night, nights[0]) else None,
+                )
             if on_night is not None:
                 on_night(night, report)
-    outcome.mosaic = run_mosaic(config, force=force, progress=progress)
+            return report
+
+        with ThreadPoolExecutor(max_workers=max(1, len(nights))) as threads:
+            runs = [threads.submit(reduce, night) for night in nights]
+            wait(runs)
+        for night, run in zip(nights, runs, strict=True):
+            outcome.nights.append((night.night.name, run.result()))  # raises a night's error
+        mosaic_executor = shared if _same_pool(config.run, nights) else None
+        outcome.mosaic = run_mosaic(
+            config, force=force, progress=progress, executor=mosaic_executor
+        )
     try:
         outcome.page = write_nights_page(config, nights)
     except OSError as exc:
