@@ -2,13 +2,19 @@
 
 from __future__ import annotations
 
+import warnings
+
 import astropy.units as u
 import numpy as np
 import pytest
 from _demo import REPO, demo_copy
 from astropy.io import fits
+from astropy.table import QTable, Table
 from astropy.time import Time
+from astropy.wcs import WCS, FITSFixedWarning
+from scipy.spatial import cKDTree
 
+from pipeline import open_product
 from pipeline.cli import EXIT_OK, main
 from pipeline.config import load_config
 from pipeline.mosaic import load_mosaic_config
@@ -42,36 +48,131 @@ def test_the_demo_mosaic_names_three_nights_of_the_same_sky():
     np.testing.assert_allclose(lasts, lasts[0], atol=1e-5)
 
 
-@pytest.mark.slow  # reduces the three demo nights (~1 min each) and co-adds them
-def test_the_demo_command_reduces_three_nights_and_coadds_them(tmp_path, capsys):
-    demo_copy(tmp_path)
-    demo = tmp_path / "configs" / "demo.yaml"
-    assert main(["run", str(demo)]) == EXIT_OK, capsys.readouterr()
-    out = capsys.readouterr().out
-    products = tmp_path / "demo_products"
-    for night in ("2026-10-15", "2026-10-16", "2026-10-17"):
-        page = products / f"demo-{night}" / "report" / "night" / "page.html"
-        assert f"night demo-{night}: " in out and f"report: {page}" in out, out
-    strip = products / "mosaics" / "demo-strip"
-    across = strip / "report" / "page.html"
-    assert f"across the nights: {across}" in out
+# ------------------------------------------- the README's first command, end to end
+#
+# One run of ``zdrift run configs/demo.yaml`` on a copy serves the tests below:
+# the three simulated nights through every stage, their mosaic and pages, then
+# astrometry, photometry and the mosaic against the simulator's truth
+# (demo_frames/*/truth.ecsv: every star's ICRS position at the night's epoch
+# and its magnitude; invented data, self-consistency).
+
+NIGHTS = ("2026-10-15", "2026-10-16", "2026-10-17")
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    """The copy the demo command ran in, and what it printed."""
+    folder = tmp_path_factory.mktemp("demo")
+    demo_copy(folder)
+    code = main(["run", str(folder / "configs" / "demo.yaml")])
+    return folder, code
+
+
+def _truth(folder, night: str) -> Table:
+    raw = folder / "demo_frames" / ("" if night == NIGHTS[0] else night)
+    return Table.read(raw / "truth.ecsv")
+
+
+def _match(catalog, truth, snr_min: float = 100.0):
+    """Unflagged sources above ``snr_min`` within 0.3 arcsec of a true star.
+
+    Returns their catalogue indices, truth indices and offsets (mas) in RA
+    (times cos dec) and Dec.  0.3 arcsec is far below the star spacing and
+    far above the errors of these stars (~10 mas).
+    """
+    cos_dec = np.cos(np.radians(np.median(truth["dec"])))
+    tree = cKDTree(np.column_stack([np.asarray(truth["ra"]) * cos_dec, truth["dec"]]))
+    ra = np.asarray(getattr(catalog["ra"], "value", catalog["ra"]), float)
+    dec = np.asarray(getattr(catalog["dec"], "value", catalog["dec"]), float)
+    distance, index = tree.query(np.column_stack([ra * cos_dec, dec]))
+    snr = np.asarray(getattr(catalog["snr"], "value", catalog["snr"]), float)
+    keep = np.flatnonzero((distance * 3.6e6 < 300.0) & (snr > snr_min) & (catalog["flags"] == 0))
+    j = index[keep]
+    d_ra = (ra[keep] - np.asarray(truth["ra"])[j]) * cos_dec * 3.6e6
+    d_dec = (dec[keep] - np.asarray(truth["dec"])[j]) * 3.6e6
+    return keep, j, d_ra, d_dec
+
+
+@pytest.mark.slow  # reduces the three demo nights and co-adds them: 2-10 min
+def test_the_demo_command_reduces_three_nights_and_coadds_them(demo, capsys):
+    folder, code = demo
+    assert code == EXIT_OK
+    demo_config = folder / "configs" / "demo.yaml"
+    products = folder / "demo_products"
+    across = products / "mosaics" / "demo-strip" / "report" / "page.html"
     text = across.read_text()
     assert text.count('<img src="data:image/png;base64,') == 4
-    for night in ("2026-10-15", "2026-10-16", "2026-10-17"):
+    for night in NIGHTS:
         assert f'href="../../../demo-{night}/report/night/page.html"' in text
-    assert out.count(" 0 failed, 0 blocked, 0 problem(s)") == 4, out  # 3 nights, the tiles
-    # Rerun: everything is up to date, nothing runs.
-    assert main(["run", str(demo)]) == EXIT_OK
-    rerun = capsys.readouterr().out
-    assert rerun.count(": 0 ran, ") == 4, rerun
-    tiles = strip / "tiles"
-    assert f"tiles: {tiles}" in out
-    names = sorted(p.name for p in tiles.iterdir())
-    assert len(names) >= 2
-    coverage = np.concatenate(
-        [fits.getdata(tiles / n / "tile.fits", "COVERAGE").ravel() for n in names]
-    )
-    assert coverage.max() == 3
+        page = (products / f"demo-{night}" / "report" / "night" / "page.html").read_text()
+        assert "The run reported no problems." in page
+        assert 'id="smear"' in page and "Not drawn" not in page
+        assert (products / f"demo-{night}" / "zdrift.log").stat().st_size > 0
+    # Rerun: everything is up to date, nothing runs, and it says where to look.
+    assert main(["run", str(demo_config)]) == EXIT_OK
+    out = capsys.readouterr().out
+    assert out.count(": 0 ran, ") == 4, out  # three nights and the tiles
+    assert out.count(" 0 failed, 0 blocked, 0 problem(s)") == 4, out
+    for night in NIGHTS:
+        page = products / f"demo-{night}" / "report" / "night" / "page.html"
+        assert f"night demo-{night}: " in out and f"report: {page}" in out, out
+    assert f"across the nights: {across}" in out
+    assert f"tiles: {products / 'mosaics' / 'demo-strip' / 'tiles'}" in out
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("night", NIGHTS)
+def test_each_night_against_the_truth(demo, night):
+    """Positions and calibrated magnitudes of the bright stars of each night.
+
+    Stars of S/N > 100 (100-120 a night): their centroid errors are ~FWHM /
+    S/N, ~13 mas at S/N 100 (measured rms 8-11 mas a night), so the rms is
+    held to 20 mas; the mean offset to 5 mas: the fit to ~210 reference stars
+    with 5 mas errors sets the frame to ~0.4 mas, the ~110 stars' mean is
+    known to ~1 mas (measured 0.8-1.2).  Magnitudes: the photon noise of S/N
+    > 100 is <= 0.011 mag (measured rms 0.007-0.010, held to 0.02); the zero
+    point comes from ~210 reference stars with 0.015 mag errors, ~0.001 mag,
+    and the issue's figure for the zero point in clear sky is 0.005 mag
+    (measured median offsets 0.001-0.003), held to 0.01.  The demo's
+    reference magnitudes have no colour term (simulate.reference.colour_term
+    is 0): the truth is the passband magnitude.
+    """
+    folder, _ = demo
+    config = load_config(folder / "configs" / f"demo_{night}.yaml")
+    catalog = open_product(config, "zeropoint", "night", "catalog")
+    truth = _truth(folder, night)
+    keep, j, d_ra, d_dec = _match(catalog, truth)
+    assert keep.size > 80
+    for offsets in (d_ra, d_dec):
+        assert abs(np.mean(offsets)) <= 5.0
+        assert np.sqrt(np.mean(offsets**2)) <= 20.0
+    error = np.asarray(catalog["mag"].value)[keep] - np.asarray(truth["mag"])[j]
+    assert abs(np.median(error)) <= 0.01
+    assert np.sqrt(np.mean((error - np.median(error)) ** 2)) <= 0.02
+
+
+def _tiles(folder):
+    return sorted((folder / "demo_products" / "mosaics" / "demo-strip" / "tiles").iterdir())
+
+
+@pytest.mark.slow
+def test_the_tiles_against_the_truth(demo):
+    """Coverage, the tiles' WCS along the scan and their flux scale against the truth.
+
+    Positions: the tile catalogues' RA of bright stars (S/N > 50; 15-120 a
+    tile) against the truth, mean within 20 mas (measured -6 to +4; the
+    rms of 10-24 mas over 15 stars allows ~6 mas).  Flux scale: each bright
+    true star's (r < 20) light within 8 arcsec of its true position in the
+    tile image, above the median of a ring at 11-15 arcsec, at the tile's
+    PHOTZP, against its true magnitude: the median within 0.03 mag of 0
+    (measured +0.008 to +0.018: the Moffat light beyond 8 arcsec, about 1.5 %
+    in the worst night's 1.8 arcsec seeing).
+    """
+    folder, _ = demo
+    truth = _truth(folder, NIGHTS[0])  # the same stars every night (ids match)
+    tiles = _tiles(folder)
+    coverage = np.concatenate([fits.getdata(t / "tile.fits", "COVERAGE").ravel() for t in tiles])
+    assert len(tiles) >= 2 and coverage.max() == 3
     # The nights share the strip to within arcseconds (same sidereal time, a day
     # apart), so most covered pixels hold all three.  Measured: 0.971, the rest
     # mostly the strip's edges and the satellite trail (0.875 while one level
@@ -80,3 +181,61 @@ def test_the_demo_command_reduces_three_nights_and_coadds_them(tmp_path, capsys)
     # edges to move with the tiles, and fails on that ramp's rejections.
     covered = coverage > 0
     assert np.mean(coverage[covered] == 3) > 0.95
+    bright = truth[(truth["mag"] < 20) & ~truth["saturated"] & truth["in_night"]]
+    for tile in tiles:
+        keep, _, d_ra, _ = _match(QTable.read(tile / "catalog.ecsv"), truth, snr_min=50.0)
+        assert keep.size >= 10, tile.name
+        assert abs(np.mean(d_ra)) <= 20.0, tile.name
+        offsets = _aperture_offsets(tile / "tile.fits", bright)
+        assert len(offsets) >= 5, tile.name
+        assert abs(np.median(offsets)) <= 0.03, (tile.name, np.median(offsets))
+
+
+def _aperture_offsets(path, stars, radius: float = 8.0, ring: tuple = (11.0, 15.0)):
+    """Aperture magnitude minus true magnitude of each star fully covered by all nights."""
+    with fits.open(path) as hdus, warnings.catch_warnings():
+        warnings.simplefilter("ignore", FITSFixedWarning)  # the date cards astropy tidies
+        header = hdus["IMAGE"].header
+        image, coverage = hdus["IMAGE"].data.astype(float), hdus["COVERAGE"].data
+        wcs = WCS(header)
+    zero_point = header.get("PHOTZP", fits.getheader(path, 0).get("PHOTZP"))
+    x, y = wcs.world_to_pixel_values(stars["ra"], stars["dec"])
+    half = int(ring[1]) + 1
+    offsets = []
+    for xi, yi, mag in zip(x, y, np.asarray(stars["mag"]), strict=True):
+        i, j = int(np.rint(xi)), int(np.rint(yi))
+        cut = np.s_[j - half : j + half + 1, i - half : i + half + 1]
+        if not (half <= i < image.shape[1] - half and half <= j < image.shape[0] - half):
+            continue
+        stamp = image[cut]
+        if not np.isfinite(stamp).all() or (coverage[cut] < 3).any():
+            continue
+        jj, ii = np.mgrid[cut]
+        r = np.hypot(ii - xi, jj - yi)
+        sky = np.median(stamp[(r > ring[0]) & (r < ring[1])])
+        offsets.append(zero_point - 2.5 * np.log10((stamp - sky)[r < radius].sum()) - mag)
+    return np.array(offsets)
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(
+    strict=True,
+    reason="the tile catalogues fit round profiles to the co-added stars, whose smear "
+    "bows across the scan: their Dec is off by -140 to -175 mas and their magnitudes by "
+    "-0.06 to +0.13 mag per tile (measured on the demo); the nightly catalogues, which "
+    "model the smear kernel, are right to ~1 mas and ~0.003 mag",
+)
+def test_the_tile_catalogues_against_the_truth(demo):
+    """Tile catalogue Dec and magnitudes of bright stars: what the nights' catalogues meet.
+
+    Mean Dec offset within 20 mas and median magnitude offset within 0.03 mag
+    (the tolerances of the tiles' RA and aperture fluxes above).
+    """
+    folder, _ = demo
+    truth = _truth(folder, NIGHTS[0])
+    for tile in _tiles(folder):
+        catalog = QTable.read(tile / "catalog.ecsv")
+        keep, j, _, d_dec = _match(catalog, truth, snr_min=50.0)
+        assert abs(np.mean(d_dec)) <= 20.0, (tile.name, np.mean(d_dec))
+        error = np.asarray(catalog["mag"].value)[keep] - np.asarray(truth["mag"])[j]
+        assert abs(np.median(error)) <= 0.03, (tile.name, np.median(error))

@@ -168,7 +168,8 @@ def residuals_over_nights_figure(nights: Sequence[Night]) -> Figure:
     bottom.set_ylabel("rms residual (mas)")
     bottom.set_xticks(position, names)
     bottom.set_xlabel("night")
-    bottom.set_ylim(bottom=0.0)
+    highest = np.nanmax([[p["rms_along"], p["rms_across"]] for p in pooled] + [[1.0, 1.0]])
+    bottom.set_ylim(0.0, 1.15 * highest)
     for ax in (top, bottom):
         ax.grid(alpha=0.3)
         ax.legend(loc="best", fontsize="small")
