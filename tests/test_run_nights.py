@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import threading
 from pathlib import Path
 
 import pytest
@@ -70,6 +71,8 @@ def test_nights_with_the_same_run_section_share_one_pool(tmp_path, monkeypatch):
     config = load_mosaic_config(_mosaic(tmp_path, ["n1.yaml", "n2.yaml", "n3.yaml"]))
     made, given = [], {}
 
+    threads = set()
+
     class Pool:
         closed = False
 
@@ -78,6 +81,9 @@ def test_nights_with_the_same_run_section_share_one_pool(tmp_path, monkeypatch):
 
         def __exit__(self, *exc):
             self.closed = True
+            # A worker process dies with the thread that started it (Linux's
+            # parent-death signal): every night's thread must outlive the pool.
+            self.threads_alive = [thread.is_alive() for thread in threads]
 
     def make_executor(run, n_columns=None):
         made.append(Pool())
@@ -85,6 +91,7 @@ def test_nights_with_the_same_run_section_share_one_pool(tmp_path, monkeypatch):
 
     def run_night(night, *, executor=None, **kwargs):
         assert executor is None or not executor.closed  # open for every night
+        threads.add(threading.current_thread())
         given[night.night.name] = executor
         return RunReport(night.night.name)
 
@@ -96,3 +103,4 @@ def test_nights_with_the_same_run_section_share_one_pool(tmp_path, monkeypatch):
     assert len(made) == 1 and given["n1"] is made[0] and given["n2"] is made[0]
     assert given["n3"] is None  # run_night makes its own from its run section
     assert made[0].closed  # and the shared pool ends with the nights
+    assert len(threads) >= 1 and all(made[0].threads_alive)

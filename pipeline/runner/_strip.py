@@ -143,7 +143,11 @@ def run_nights_and_mosaic(
     nights = night_configs(config)
     outcome = NightsRun()
     progress = progress or (lambda label, done, total: None)
-    with astropy_offline(), contextlib.ExitStack() as stack:  # one setting for every thread
+    # The threads outlive the pool: a worker process dies with the thread that
+    # started it (Linux's parent-death signal, see end_with_parent), and any
+    # night's thread may start one.  So the pool closes first, then the threads.
+    threads = ThreadPoolExecutor(max_workers=max(1, len(nights)))
+    with astropy_offline(), threads, contextlib.ExitStack() as stack:  # one astropy setting
         shared = None
         if nights:
             first = nights[0]
@@ -164,9 +168,8 @@ def run_nights_and_mosaic(
                 on_night(night, report)
             return report
 
-        with ThreadPoolExecutor(max_workers=max(1, len(nights))) as threads:
-            runs = [threads.submit(reduce, night) for night in nights]
-            wait(runs)
+        runs = [threads.submit(reduce, night) for night in nights]
+        wait(runs)
         for night, run in zip(nights, runs, strict=True):
             outcome.nights.append((night.night.name, run.result()))  # raises a night's error
         mosaic_executor = shared if _same_pool(config.run, nights) else None
