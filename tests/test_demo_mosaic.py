@@ -188,7 +188,8 @@ def test_the_tiles_against_the_truth(demo):
             continue
         assert abs(np.mean(d_ra)) <= 20.0, tile.name
         offsets = _aperture_offsets(tile / "tile.fits", bright)
-        assert abs(np.median(offsets)) <= 0.03, (tile.name, np.median(offsets))
+        if len(offsets) >= 5:  # stars fully covered by all three nights
+            assert abs(np.median(offsets)) <= 0.03, (tile.name, np.median(offsets))
 
 
 def _aperture_offsets(path, stars, radius: float = 8.0, ring: tuple = (11.0, 15.0)):
