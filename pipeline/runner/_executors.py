@@ -273,10 +273,10 @@ class LocalPoolExecutor(Executor):
         self._reaper = Reaper()
         self._modules: tuple[str, ...] = ()
         self._futures: list = []
+        self._starting = threading.Lock()  # several nights' runs may share the pool
 
     def warm(self, modules: Sequence[str]) -> None:
         self._modules = tuple(modules)
-        self._starting = threading.Lock()  # several nights' runs may share the pool
 
     def map(self, fn, tasks, on_error) -> Iterator[Outcome]:
         # When a worker dies (killed, out of memory) the whole pool breaks and
