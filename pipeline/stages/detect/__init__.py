@@ -355,13 +355,24 @@ def detect(
     # made once and reused by the second search.
     filters: dict = {}
     inverse = inverse_variance(var)
-    if deconvolved:
-        noise_correlation = measured_noise_correlation(
-            significance_map(
-                residual, var, lookup, profile, x_centre=x_centre, band=filter_band, inverse=inverse
-            ),
-            no_data,
+    if deconvolved:  # the factor at a star's scale, from a first filtering with factor 1
+        templates = band_templates(lookup, profile, x_centre, image.shape[0], filter_band)
+        scale = filter_scale(
+            var, lookup, profile, x_centre=x_centre, inverse=inverse, templates=templates
         )
+        snr = significance_map(
+            residual,
+            var,
+            lookup,
+            profile,
+            x_centre=x_centre,
+            band=filter_band,
+            scale=scale,
+            inverse=inverse,
+            templates=templates,
+        )
+        noise_correlation = measured_noise_correlation(snr, no_data)
+        filters[profile] = (templates, scale / np.float32(np.sqrt(noise_correlation)))
 
     def segment(prof, data=None):
         if prof not in filters:
