@@ -66,6 +66,11 @@ from pipeline.stages.detect._measure import (
 )
 from pipeline.stages.detect._model import KernelGrid, SeeingProfile, fit_stars, model_image
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
+from pipeline.stages.detect._saturated import (
+    CLIPPED,
+    merge_on_footprints,
+    saturated_footprints,
+)
 from pipeline.stages.detect._sky import sky_errors
 
 __all__ = [
@@ -347,6 +352,12 @@ def detect(
     if missing:
         residual[no_data] = np.nan
     var = _filled(variance, no_data, np.nan, missing)
+    # Saturated stars: fitted on their unsaturated wings, one source each.
+    footprints = saturated_footprints(mask, profile.fwhm)
+    var_fit = var
+    if footprints is not None:
+        var_fit = var.copy()
+        var_fit[has_bits(mask, CLIPPED)] = np.nan
     grid = KernelGrid(smear_kernels)
     x_centre = x_start + 0.5 * (image.shape[1] - 1)
 
@@ -421,9 +432,18 @@ def detect(
         return DetectResult(_empty_catalog(radii), empty_seeing)
 
     data_for_cat = _filled(residual, no_data, 0.0, missing)
-    cat = SourceCatalog(data_for_cat, segm, mask=no_data)
+
+    def sources(segm, snr, data):
+        """Catalogue and start positions, one source per saturated footprint."""
+        cat = SourceCatalog(data, segm, mask=no_data)
+        cx, cy = _start_positions(cat, segm, snr)
+        if merge_on_footprints(segm, cx, cy, footprints):
+            cat = SourceCatalog(data, segm, mask=no_data)
+            cx, cy = _start_positions(cat, segm, snr)
+        return cat, cx, cy
+
+    cat, cx, cy = sources(segm, snr, data_for_cat)
     peak = np.array([snr[s.slices][s.data.astype(bool)].max() for s in segm.segments])
-    cx, cy = _start_positions(cat, segm, snr)
     point = deconvolved
     fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
 
@@ -437,7 +457,7 @@ def detect(
         chosen = [i for i in np.argsort(-brightness) if ok[i]][:seeing_stars]
         ys_, curves = seeing_curves(
             residual,
-            var,
+            var_fit,
             [(px[i], py[i]) for i in chosen],
             grid,
             prof,
@@ -466,8 +486,7 @@ def detect(
         if abs(fwhm - fwhm_guess) > 0.25 * fwhm_guess:  # filter far off: detect again
             filter_profile = profile
             snr, segm, parent = segment(filter_profile)
-            cat = SourceCatalog(data_for_cat, segm, mask=no_data)
-            cx, cy = _start_positions(cat, segm, snr)
+            cat, cx, cy = sources(segm, snr, data_for_cat)
             blended = np.asarray(_deblended(cat.labels, parent))
     else:
         warnings.warn(
@@ -488,7 +507,7 @@ def detect(
         members = _groups(px, py, grid, x_start, profile.fwhm, point)
         result = measure_groups(
             residual,
-            var,
+            var_fit,
             mask,
             [[(px[i], py[i]) for i in g] for g in members],
             grid,
@@ -499,6 +518,7 @@ def detect(
             own_columns=own_columns,
             blended=[[split[i] for i in g] for g in members],
             memo=fitted,
+            footprints=footprints,
         )
         return members, result
 
@@ -512,8 +532,7 @@ def detect(
         # a few per cent off the seeing loses a negligible (second-order) S/N.
         _snr2, segm2, _parent2 = segment(filter_profile, cleaned)
         if segm2 is not None:
-            cat2 = SourceCatalog(_filled(cleaned, no_data, 0.0, missing), segm2, mask=no_data)
-            nx2, ny2 = _start_positions(cat2, segm2, _snr2)
+            cat2, nx2, ny2 = sources(segm2, _snr2, _filled(cleaned, no_data, 0.0, missing))
             near = cKDTree(np.column_stack([fits_["x"], fits_["y"]])).query(
                 np.column_stack([nx2, ny2])
             )[0]
@@ -811,6 +830,7 @@ STAGE = Stage(
     uses=(),
     neighbours=("rectify",),
     # 5: a deconvolved product's noise correlation measured at a star's scale
-    version=5,
+    # 6: a saturated star is one source, fitted on its unclipped wings
+    version=6,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

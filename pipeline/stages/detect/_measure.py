@@ -17,6 +17,7 @@ from pipeline.stages.detect._model import (
     model_image,
     reduce_kernel,
 )
+from pipeline.stages.detect._saturated import Footprints, footprint_bounds
 
 __all__ = [
     "SourceFlag",
@@ -253,6 +254,7 @@ def measure_groups(
     blended: list[list[bool]] | None = None,
     max_joint: int = 6,
     memo: dict | None = None,
+    footprints: Footprints | None = None,
 ) -> dict[str, np.ndarray]:
     """Fit each group of sources with the smear-aware model.
 
@@ -278,6 +280,12 @@ def measure_groups(
         positions and blend flags; a group started where an earlier fit of it
         started or ended is taken from there (a refit would land on the same
         optimum).  Updated in place.  None: fit every group.
+    footprints : Footprints or None
+        Saturated stars' footprints
+        (:func:`~pipeline.stages.detect._saturated.saturated_footprints`): a
+        jointly fitted group on one has its stamp widened to the footprint
+        and the wings around it (the clipped pixels themselves carry no
+        weight: NaN in ``variance``).
 
     Returns
     -------
@@ -309,6 +317,7 @@ def measure_groups(
                 noise_correlation=noise_correlation,
                 own_columns=own_columns,
                 max_joint=max_joint,
+                footprints=footprints,
             )
             if memo is not None:
                 # A refit that starts where this fit ended (or where it started)
@@ -343,6 +352,7 @@ def _measure_group(
     noise_correlation,
     own_columns,
     max_joint,
+    footprints=None,
 ) -> list[dict]:
     """Fit one group of sources; one row (dict) per member."""
     xs = np.array([m[0] for m in members], dtype=float)
@@ -351,6 +361,16 @@ def _measure_group(
     resp = _responses_at(grid, x_start, xs, ys, point_kernel)
     if xs.size <= max_joint:
         box = _stamp(residual.shape, xs, ys, kern, profile.fwhm)
+        corners = footprint_bounds(xs, ys, footprints)
+        if corners is not None:  # the clipped core and the wings around it
+            wide = _stamp(residual.shape, *corners, kern, profile.fwhm)
+            box = (
+                min(wide[0], box[0]),
+                max(wide[1], box[1]),
+                min(wide[2], box[2]),
+                max(wide[3], box[3]),
+                box[4],
+            )
         fit = _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, resp)
         per_star = [(fit, i, box) for i in range(xs.size)]
         pair = _unresolved(residual, variance, box, fit, profile, noise_correlation)
