@@ -51,18 +51,21 @@ Position in the night: an alternate linear WCS ``A`` named ``NIGHT``
 from __future__ import annotations
 
 from collections.abc import Mapping
+from typing import TYPE_CHECKING
 
 import astropy.units as u
 import erfa
 import numpy as np
 from astropy.io import fits
-from astropy.nddata import CCDData, VarianceUncertainty
 from astropy.time import Time, TimeDelta
 from astropy.wcs import WCS
 
 from pipeline.geometry.instrument import Camera, Site
 from pipeline.geometry.sitetime import earth_location
 from pipeline.masks import BIT_MEANINGS, MASK_DTYPE, MaskBit
+
+if TYPE_CHECKING:
+    from astropy.nddata import CCDData
 
 __all__ = [
     "FLAGS_EXTENSION",
@@ -369,6 +372,8 @@ def ccddata_from_hdulist(hdul: fits.HDUList) -> CCDData:
     ValueError
         If a plane is missing or has no ``BUNIT``.
     """
+    from astropy.nddata import CCDData, VarianceUncertainty  # loads scipy: only when used
+
     names = [hdu.name for hdu in hdul]
     missing = [n for n in (FLUX_EXTENSION, VARIANCE_EXTENSION, FLAGS_EXTENSION) if n not in names]
     if missing:

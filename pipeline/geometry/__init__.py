@@ -12,33 +12,16 @@
   crossing windows, tracks (smear kernels), recorded centroids.
 * :mod:`~pipeline.geometry.propermotion`: catalogue positions at the epoch.
 * :mod:`~pipeline.geometry.plan`: what a site and camera imply.
+
+Importing the package is light: each name is imported from its module on
+first use (the coordinate machinery and scipy only when the sky geometry is
+needed), so that reading a config, which needs :class:`Site` and
+:class:`Camera`, does not load them.
 """
 
-from pipeline.geometry.instrument import Camera, Site
-from pipeline.geometry.optics import (
-    focal_length_from_spin,
-    normal_gravity,
-    plate_scale,
-    refraction_constant,
-    resolve_focal_length,
-    spin_period_from_focal_length,
-)
-from pipeline.geometry.plan import format_plan, summarize_plan
-from pipeline.geometry.propermotion import positions_at_epoch
-from pipeline.geometry.sitetime import (
-    earth_location,
-    site_pressure,
-    standard_pressure,
-    utc_time,
-)
-from pipeline.geometry.tdi import (
-    TDIModel,
-    Track,
-    TrackShape,
-    first_order_bow,
-    first_order_smear,
-)
-from pipeline.geometry.zenith import ZenithAxis
+from __future__ import annotations
+
+from pipeline._lazy import lazy_exports
 
 __all__ = [
     "Camera",
@@ -63,3 +46,23 @@ __all__ = [
     "summarize_plan",
     "utc_time",
 ]
+
+__getattr__, __dir__ = lazy_exports(
+    __name__,
+    {
+        "instrument": ["Camera", "Site"],
+        "optics": [
+            "focal_length_from_spin",
+            "normal_gravity",
+            "plate_scale",
+            "refraction_constant",
+            "resolve_focal_length",
+            "spin_period_from_focal_length",
+        ],
+        "plan": ["format_plan", "summarize_plan"],
+        "propermotion": ["positions_at_epoch"],
+        "sitetime": ["earth_location", "site_pressure", "standard_pressure", "utc_time"],
+        "tdi": ["TDIModel", "Track", "TrackShape", "first_order_bow", "first_order_smear"],
+        "zenith": ["ZenithAxis"],
+    },
+)

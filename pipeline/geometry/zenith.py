@@ -46,7 +46,6 @@ import numpy as np
 from astropy.coordinates import ICRS, SkyCoord
 from astropy.time import Time
 from numpy.typing import ArrayLike
-from scipy.interpolate import CubicSpline
 
 from pipeline.geometry.instrument import Site
 from pipeline.geometry.optics import ARCSEC_PER_RADIAN
@@ -244,6 +243,8 @@ class ZenithAxis:
 
     # ------------------------------------------------------------------ build
     def _build(self, n_grid: int) -> None:
+        from scipy.interpolate import CubicSpline
+
         s = self.field_radius
         a = self.basis[2]
         axis_alt = np.arcsin(a[2])

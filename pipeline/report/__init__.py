@@ -19,40 +19,13 @@ stores as ``<night>/report/night/page.html``.  ``zdrift run`` ends with it;
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import TYPE_CHECKING
 
-from pipeline.report._clock import NightClock
-from pipeline.report._collect import PRODUCT_SOURCES, NightProducts, collect_products
-from pipeline.report._figures import (
-    FIGURES,
-    FigureSpec,
-    column_flat_figure,
-    night_sky,
-    quicklook_figure,
-    seeing_across_chip_figure,
-    seeing_along_night_figure,
-    sky_along_night_figure,
-    sources_along_night_figure,
-)
-from pipeline.report._nights import NIGHTS_FIGURES, build_nights_report, pooled_residuals
-from pipeline.report._options import ReportOptions
-from pipeline.report._page import DrawnFigure, draw_figures, render_page
-from pipeline.report._sky import (
-    bin_image,
-    measure_sky,
-    pixel_area_arcsec2,
-    place_pieces,
-    sky_surface_brightness,
-)
-from pipeline.report._solved import (
-    focal_length_figure,
-    line_time_check,
-    residual_map_figure,
-    residuals_along_night_figure,
-    star_flat_figure,
-    zero_point_at_columns,
-    zero_point_figure,
-)
-from pipeline.report._summary import problem_lines, solved_rows, summary_rows
+from pipeline._lazy import lazy_exports
+
+if TYPE_CHECKING:
+    from pipeline.report._collect import NightProducts
+    from pipeline.report._options import ReportOptions
 
 __all__ = [
     "FIGURES",
@@ -93,6 +66,46 @@ __all__ = [
     "zero_point_figure",
 ]
 
+# Imported on first use: the report stage's options without matplotlib.
+__getattr__, __dir__ = lazy_exports(
+    __name__,
+    {
+        "_clock": ["NightClock"],
+        "_collect": ["PRODUCT_SOURCES", "NightProducts", "collect_products"],
+        "_figures": [
+            "FIGURES",
+            "FigureSpec",
+            "column_flat_figure",
+            "night_sky",
+            "quicklook_figure",
+            "seeing_across_chip_figure",
+            "seeing_along_night_figure",
+            "sky_along_night_figure",
+            "sources_along_night_figure",
+        ],
+        "_nights": ["NIGHTS_FIGURES", "build_nights_report", "pooled_residuals"],
+        "_options": ["ReportOptions"],
+        "_page": ["DrawnFigure", "draw_figures", "render_page"],
+        "_sky": [
+            "bin_image",
+            "measure_sky",
+            "pixel_area_arcsec2",
+            "place_pieces",
+            "sky_surface_brightness",
+        ],
+        "_solved": [
+            "focal_length_figure",
+            "line_time_check",
+            "residual_map_figure",
+            "residuals_along_night_figure",
+            "star_flat_figure",
+            "zero_point_at_columns",
+            "zero_point_figure",
+        ],
+        "_summary": ["problem_lines", "solved_rows", "summary_rows"],
+    },
+)
+
 
 def build_report(
     night: NightProducts,
@@ -118,6 +131,10 @@ def build_report(
     str
         The HTML page.
     """
+    from pipeline.report._collect import PRODUCT_SOURCES
+    from pipeline.report._page import draw_figures, render_page
+    from pipeline.report._summary import problem_lines, summary_rows
+
     figures = draw_figures(night.products, options, sources=PRODUCT_SOURCES)
     problems = [] if night.status is None else problem_lines(night.status)
     problems += [f"Figure '{item.spec.title}': {item.note}" for item in figures if item.failed]

@@ -36,18 +36,12 @@ from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from pipeline._lazy import lazy_exports
 from pipeline._offline import astropy_offline
 from pipeline.config import Config
 from pipeline.runner._access import open_product, product_path, read_image
 from pipeline.runner._executors import Executor, make_executor
 from pipeline.runner._lock import BROKEN_LOCK_AGE, RunLock, pid_alive, read_lock
-from pipeline.runner._mosaic import (
-    MosaicStatus,
-    mosaic_dir,
-    mosaic_nights,
-    mosaic_status,
-    run_mosaic,
-)
 from pipeline.runner._night import NightStore, format_ids, night_dir, unit_id
 from pipeline.runner._nightly import (
     NIGHT_CONFIG_NAME,
@@ -58,7 +52,6 @@ from pipeline.runner._nightly import (
     report_page,
 )
 from pipeline.runner._store import clear_failure, mark_damaged, write_failure
-from pipeline.runner._strip import NIGHTS_PAGE, NightsRun, nights_page, run_nights_and_mosaic
 from pipeline.runner._unit import UnitOutcome, UnitTask, execute_unit, failed_outcome
 from pipeline.stages.base import Stage, Stretch
 
@@ -97,6 +90,16 @@ __all__ = [
     "run_nights_and_mosaic",
     "select_stages",
 ]
+
+# Imported on first use: the mosaic and the strip of nights load the mosaic's
+# modules (and through them the detection's), which a night's run does not need.
+__getattr__, __dir__ = lazy_exports(
+    __name__,
+    {
+        "_mosaic": ["MosaicStatus", "mosaic_dir", "mosaic_nights", "mosaic_status", "run_mosaic"],
+        "_strip": ["NIGHTS_PAGE", "NightsRun", "nights_page", "run_nights_and_mosaic"],
+    },
+)
 
 log = logging.getLogger(__name__)
 

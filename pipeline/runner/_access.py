@@ -3,15 +3,17 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from astropy.io import fits
-from astropy.nddata import CCDData
 
 from pipeline.config import Config
 from pipeline.products import FLUX_EXTENSION, ccddata_from_hdulist
 from pipeline.runner._night import night_dir
 from pipeline.runner._store import read_product, read_sidecar
+
+if TYPE_CHECKING:
+    from astropy.nddata import CCDData
 
 __all__ = ["open_product", "product_path", "read_image"]
 

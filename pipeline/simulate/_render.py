@@ -26,7 +26,6 @@ import functools
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import erf, gamma, roots_genlaguerre
 
 __all__ = ["GaussianMixturePSF", "render_tracks"]
 
@@ -85,6 +84,8 @@ class GaussianMixturePSF:
         n_components : int
             Number of Gaussians.
         """
+        from scipy.special import gamma, roots_genlaguerre
+
         if not fwhm > 0:
             raise ValueError(f"fwhm must be a positive number of pixels; got {fwhm!r}.")
         if not beta > 1.5:
@@ -138,6 +139,8 @@ def _pixel_profile(edges: np.ndarray, x: np.ndarray, sigma: float, box: float = 
 
     edges : (n, K+1) pixel edges; x : (n, S) centres.  Returns (n, S, K).
     """
+    from scipy.special import erf
+
     a = _SQRT2 * sigma
     z = (edges[:, None, :] - x[:, :, None]) * (1.0 / a)
     if box <= 0:
@@ -149,6 +152,8 @@ def _pixel_profile(edges: np.ndarray, x: np.ndarray, sigma: float, box: float = 
 
 
 def _erf_antiderivative(z: np.ndarray) -> np.ndarray:
+    from scipy.special import erf
+
     return z * erf(z) + np.exp(-z * z) * (1.0 / np.sqrt(np.pi))
 
 

@@ -18,13 +18,7 @@ import logging
 from typing import Any
 
 import pipeline
-from pipeline.report import (
-    ReportOptions,
-    build_report,
-    collect_products,
-    night_sky,
-    summary_rows,
-)
+from pipeline.report import ReportOptions
 from pipeline.stages.base import RUN_STATUS, Stage
 
 __all__ = ["PAGE", "STAGE", "about_rows"]
@@ -53,6 +47,8 @@ def about_rows(context: Any, header: Any) -> list[tuple[str, str]]:
 
 
 def _run(*, inputs, options: ReportOptions, context) -> dict[str, Any]:
+    from pipeline.report import build_report, collect_products, night_sky, summary_rows
+
     night = collect_products(inputs, options, status=inputs.get(RUN_STATUS))
     night.products["n_columns"] = int(context.camera.n_columns)
     night.products["tdi_rows"] = int(context.camera.tdi_rows)

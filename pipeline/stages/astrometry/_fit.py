@@ -49,8 +49,6 @@ import logging
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.interpolate import BSpline
-from scipy.linalg import null_space
 
 from pipeline.stages.astrometry._model import (
     GeometryOffsets,
@@ -118,6 +116,8 @@ class WanderSpline:
 
     def __call__(self, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Offsets ``(d_row, d_column)`` at times ``t`` (held constant beyond the ends)."""
+        from scipy.interpolate import BSpline
+
         t = np.clip(np.asarray(t, float), self.knots[0], self.knots[-1])
         return (
             BSpline(self.knots, self.coef_row, 3, extrapolate=False)(t),
@@ -133,6 +133,8 @@ def _knots(t_lo: float, t_hi: float, spacing: float) -> np.ndarray:
 
 def _sparse_design(knots: np.ndarray, t: np.ndarray):
     """Cubic B-spline basis at ``t`` (held at the ends), sparse (n, n_coef)."""
+    from scipy.interpolate import BSpline
+
     t = np.clip(t, knots[0], knots[-1])
     return BSpline.design_matrix(t, knots, 3).tocsr()
 
@@ -322,6 +324,8 @@ def fit_geometry(
     ``s + tau_E / w`` and the fitted ``rotation`` is
     ``rotation + tau_E tan(phi)`` for an unknown east tilt ``tau_E``.
     """
+    from scipy.linalg import null_space
+
     unknown = set(parameters) - set(FIT_PARAMETERS)
     if unknown:
         raise ValueError(

@@ -10,10 +10,13 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy.spatial import cKDTree
+
+if TYPE_CHECKING:
+    from scipy.spatial import cKDTree
 
 __all__ = [
     "OffsetPeak",
@@ -58,6 +61,8 @@ def match_nearest(
     ref_index, det_index : ndarray of int, shape (n_pairs,)
         Matched pairs, sorted by reference index.
     """
+    from scipy.spatial import cKDTree
+
     if not radius > 0:
         raise ValueError(f"radius must be positive pixels; got {radius}.")
     ref = np.column_stack([np.asarray(ref_row, float), np.asarray(ref_column, float)])
@@ -126,6 +131,8 @@ def candidate_pairs(
 
 def scaled_tree(det_row: np.ndarray, det_column: np.ndarray, half_row, half_column) -> cKDTree:
     """KD-tree of detections with rows scaled for :func:`candidate_pairs`."""
+    from scipy.spatial import cKDTree
+
     return cKDTree(np.column_stack([det_row * (half_column / half_row), det_column]))
 
 

@@ -11,7 +11,6 @@ import numpy as np
 from astropy.table import Table
 from astropy.time import TimeDelta
 from numpy.typing import ArrayLike
-from scipy.spatial import cKDTree
 
 from pipeline.exceptions import AstrometryError
 from pipeline.geometry.optics import (
@@ -283,6 +282,8 @@ def solve_night(
     AstrometryError
         If too few stars match; the message has the counts and likely causes.
     """
+    from scipy.spatial import cKDTree
+
     x = np.asarray(x, dtype=float).ravel()
     y = np.asarray(y, dtype=float).ravel()
     ref_ra = np.asarray(ref_ra, dtype=float).ravel()

@@ -41,8 +41,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy.interpolate import BSpline
-from scipy.optimize import lsq_linear
 
 __all__ = ["TransparencyCurve", "fit_transparency"]
 
@@ -81,12 +79,16 @@ class TransparencyCurve:
 
     def __call__(self, t: ArrayLike) -> np.ndarray:
         """Transparency at times ``t`` (seconds), held at the ends beyond the span."""
+        from scipy.interpolate import BSpline
+
         t = np.clip(np.asarray(t, dtype=float), self.knots[0], self.knots[-1])
         return BSpline(self.knots, self.coef, 3, extrapolate=False)(t)
 
 
 def _window_means(knots: np.ndarray, t0: np.ndarray, t1: np.ndarray) -> np.ndarray:
     """Mean of every basis spline over each window ``[t0, t1]``, shape (n, n_coef)."""
+    from scipy.interpolate import BSpline
+
     n_coef = knots.size - 4
     anti = [
         BSpline(knots, np.eye(n_coef)[j], 3, extrapolate=False).antiderivative()
@@ -136,6 +138,9 @@ def fit_transparency(
         None if fewer stars than twice the curve's coefficients have a
         finite, positive flux and magnitude.
     """
+    from scipy.interpolate import BSpline
+    from scipy.optimize import lsq_linear
+
     t0, t1, flux, ref_mag = (np.asarray(a, dtype=float).ravel() for a in (t0, t1, flux, ref_mag))
     rel_err = np.zeros_like(flux) if flux_err is None else np.asarray(flux_err, float) / flux
     ok = (

@@ -37,7 +37,6 @@ from collections.abc import Mapping
 import numpy as np
 from astropy.stats import mad_std
 from astropy.table import Table, unique, vstack
-from scipy.special import erf
 
 from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MaskBit
@@ -53,6 +52,8 @@ _HOT_SIGNIFICANCE = 3.0
 
 def _truncated_variance(clip: float) -> float:
     """Variance of a unit normal truncated at +-clip (analytic)."""
+    from scipy.special import erf
+
     density = np.exp(-0.5 * clip * clip) / np.sqrt(2.0 * np.pi)
     return 1.0 - 2.0 * clip * density / erf(clip / np.sqrt(2.0))
 

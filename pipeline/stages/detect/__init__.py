@@ -32,17 +32,15 @@ import itertools
 import logging
 import warnings
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 from astropy import units as u
 from astropy.table import QTable, Table
 from astropy.wcs import WCS, FITSFixedWarning
-from photutils.segmentation import SourceCatalog
 from pydantic import BaseModel, ConfigDict, Field
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
-from scipy.spatial import cKDTree
 
+from pipeline._lazy import lazy_exports
 from pipeline.exceptions import DetectWarning
 from pipeline.masks import MaskBit, has_bits
 from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSION
@@ -64,7 +62,6 @@ from pipeline.stages.detect._measure import (
     seeing_curves,
     single_stars,
 )
-from pipeline.stages.detect._model import KernelGrid, SeeingProfile, fit_stars, model_image
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
 from pipeline.stages.detect._saturated import (
     CLIPPED,
@@ -72,6 +69,9 @@ from pipeline.stages.detect._saturated import (
     saturated_footprints,
 )
 from pipeline.stages.detect._sky import sky_errors
+
+if TYPE_CHECKING:
+    from pipeline.stages.detect._model import SeeingProfile
 
 __all__ = [
     "STAGE",
@@ -84,6 +84,11 @@ __all__ = [
     "model_image",
     "seam_margin",
 ]
+
+# The model and the fits (and numba, scipy with them) are imported on first use.
+__getattr__, __dir__ = lazy_exports(
+    __name__, {"_model": ["SeeingProfile", "fit_stars", "model_image"]}
+)
 
 log = logging.getLogger(__name__)
 
@@ -321,6 +326,11 @@ def detect(
         ``flux_aperN`` with corrections ``aperN_corr``, ``background`` (e-/pix),
         shape, ``snr``, ``flags`` (:class:`SourceFlag`); and the seeing table.
     """
+    from photutils.segmentation import SourceCatalog
+    from scipy.spatial import cKDTree
+
+    from pipeline.stages.detect._model import KernelGrid, SeeingProfile
+
     image = np.asarray(image, dtype=float)
     variance = np.asarray(variance, dtype=float)
     mask = np.asarray(mask)
@@ -640,6 +650,10 @@ def detect(
 
 def _groups(cx, cy, grid, x_start, fwhm, point) -> list[list[int]]:
     """Sources whose fit stamps overlap, to be fitted together (index lists)."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+    from scipy.spatial import cKDTree
+
     n = len(cx)
     if point:
         hx = hy = np.zeros(n)
@@ -669,6 +683,8 @@ def _filled(plane: np.ndarray, no_data: np.ndarray, value: float, missing: bool)
 
 def _subtract_models(image: np.ndarray, fits_, profile) -> np.ndarray:
     """``image`` minus the PSF models of all fitted sources, e- (a new array)."""
+    from pipeline.stages.detect._model import model_image
+
     out = image.copy()
     shape = out.shape
     for x, y, flux, (dx, dy), response in zip(

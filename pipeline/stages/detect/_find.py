@@ -28,16 +28,13 @@
 from __future__ import annotations
 
 import warnings
+from typing import TYPE_CHECKING
 
 import numpy as np
 from astropy.stats import SigmaClip, sigma_clipped_stats
-from photutils.background import Background2D, MedianBackground, StdBackgroundRMS
-from photutils.segmentation import deblend_sources, detect_sources
-from photutils.utils.exceptions import NoDetectionsWarning
-from scipy.ndimage import zoom
-from scipy.signal import oaconvolve, savgol_filter
 
-from pipeline.stages.detect._model import KernelGrid, SeeingProfile, model_image
+if TYPE_CHECKING:
+    from pipeline.stages.detect._model import KernelGrid, SeeingProfile
 
 __all__ = [
     "band_templates",
@@ -72,6 +69,8 @@ def estimate_background(image: np.ndarray, no_data: np.ndarray, box: int) -> np.
     axis (:func:`_expand_mesh`): 4 times faster on a 4096 x 4096 stretch
     than the two-dimensional zoom, and equal to it to rounding.
     """
+    from photutils.background import Background2D, MedianBackground, StdBackgroundRMS
+
     ny, nx = image.shape
     trend = column_trend(image, no_data, box)
     box_size = (min(box, ny), min(box, nx))
@@ -117,6 +116,8 @@ def _expand_mesh(
         return np.broadcast_to((trend + level).astype(np.float32), shape).copy()
 
     def weights(n, factor, size):
+        from scipy.ndimage import zoom
+
         return zoom(np.eye(n), (factor, 1), order=3, mode="reflect", grid_mode=True)[:size]
 
     # Single precision: a 1e5 e- sky to 0.01 e-, the product twice as fast.
@@ -137,6 +138,8 @@ def column_trend(image: np.ndarray, no_data: np.ndarray, box: int) -> np.ndarray
     when fewer than 3 columns have data.  Tall images use every n-th row (at
     least 512 rows).
     """
+    from scipy.signal import savgol_filter
+
     ny, nx = image.shape
     # Every ``stride``-th row, at least 512 of them: the median of 512 rows has
     # a noise of 1.25 / sqrt(512) = 6 % of a pixel's, and the quadratic
@@ -180,6 +183,8 @@ def template(
 
     Returns the image (odd sizes) and its centre pixel ``(cy, cx)``.
     """
+    from pipeline.stages.detect._model import model_image
+
     hx = int(np.ceil(2.0 * profile.fwhm + np.max(np.abs(dx))))
     hy = int(np.ceil(2.0 * profile.fwhm + np.max(np.abs(dy))))
     img = model_image((2 * hy + 1, 2 * hx + 1), hx, hy, dx, dy, profile)
@@ -211,6 +216,8 @@ def _filter_bands(plane: np.ndarray, templates, square: bool) -> np.ndarray:
     least of 5 interleaved runs, 0.37 s here against 0.61 s (all bands at
     once) and 0.37 s (groups of 8).
     """
+    from scipy.signal import oaconvolve
+
     ny = plane.shape[0]
     out = np.empty(plane.shape, np.float32)
     for lo, hi, k, hy in templates:
@@ -387,6 +394,9 @@ def find_sources(
         Label -> parent label for deblended sources (a source not split maps
         to itself).
     """
+    from photutils.segmentation import deblend_sources, detect_sources
+    from photutils.utils.exceptions import NoDetectionsWarning
+
     with warnings.catch_warnings():
         # An empty result is reported by the caller with its own warning class.
         warnings.simplefilter("ignore", NoDetectionsWarning)

@@ -4,20 +4,15 @@ from __future__ import annotations
 
 import enum
 import logging
+from typing import TYPE_CHECKING
 
 import numpy as np
-from photutils.aperture import CircularAperture
-from photutils.geometry import circular_overlap_grid
 
 from pipeline.masks import MaskBit, has_bits
-from pipeline.stages.detect._model import (
-    KernelGrid,
-    SeeingProfile,
-    fit_stars,
-    model_image,
-    reduce_kernel,
-)
 from pipeline.stages.detect._saturated import Footprints, footprint_bounds
+
+if TYPE_CHECKING:
+    from pipeline.stages.detect._model import KernelGrid, SeeingProfile
 
 __all__ = [
     "SourceFlag",
@@ -88,6 +83,8 @@ def _stamp(shape, xs, ys, kernels, fwhm):
 
 
 def _kernels_at(grid: KernelGrid, x_start, xs, ys, spacing, point: bool):
+    from pipeline.stages.detect._model import reduce_kernel
+
     if point:
         return [(np.zeros(1), np.zeros(1)) for _ in xs]
     return [reduce_kernel(*grid(x_start + x, y), spacing) for x, y in zip(xs, ys, strict=True)]
@@ -145,6 +142,8 @@ def seeing_curves(
     chi2 : ndarray, shape (n, m)
         Reduced chi-square of each star at each trial FWHM.
     """
+    from pipeline.stages.detect._model import fit_stars, model_image
+
     rows, curves = [], []
     for x, y in candidates:
         kern = _kernels_at(grid, x_start, [x], [y], profile.fwhm / 8, point_kernel)
@@ -490,6 +489,8 @@ def _unresolved(residual, variance, box, fit, profile, noise_correlation) -> np.
 
 
 def _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, resp, others=None):
+    from pipeline.stages.detect._model import fit_stars
+
     y0, y1, x0, x1, _ = box
     data = residual[y0:y1, x0:x1]
     if others is not None:
@@ -605,6 +606,8 @@ def _aperture_sums(residual, variance, no_data, x, y, radii):
     built each overlap grid twice and a table per call: 0.38 s of CPU for
     2800 sources and 3 radii on the 4096 x 4096 benchmark stretch.
     """
+    from photutils.geometry import circular_overlap_grid
+
     ny, nx = residual.shape
     rmax = max(radii)
     sums = np.zeros((len(x), len(radii)))
@@ -659,6 +662,10 @@ def aperture_corrections(
     -------
     ndarray, shape (n, n_radii)
     """
+    from photutils.aperture import CircularAperture
+
+    from pipeline.stages.detect._model import model_image
+
     n = len(kernels)
     out = np.empty((n, len(radii)))
     rmax = max(radii)

@@ -20,7 +20,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage
 
 from pipeline.masks import MaskBit, has_bits
 
@@ -79,6 +78,8 @@ def saturated_footprints(mask: np.ndarray, grow: float) -> Footprints | None:
     Footprints or None
         None when no pixel is clipped.
     """
+    from scipy import ndimage
+
     clipped = has_bits(mask, CLIPPED)
     if not clipped.any():
         return None

@@ -83,7 +83,6 @@ Gaussian-weighted second-moment distortion of noise-free bright stars):
 from __future__ import annotations
 
 import numpy as np
-from scipy import fft
 
 from pipeline.stages.rectify._map import StripMap, smear_kernels
 from pipeline.stages.rectify._noise import RectifiedNoise
@@ -138,6 +137,8 @@ def deconvolution_margin(model, frame, regularization: float, sigma: float) -> i
     data missing beyond it changes the stretch's own columns by less than
     that fraction of the brightest star there.
     """
+    from scipy import fft
+
     x = float(frame.x_ref)
     strip_map = StripMap(model, frame, x - 1, x + 1)
     y = np.array([0.0, (frame.n_y - 1) / 2.0, frame.n_y - 1.0])
@@ -191,6 +192,8 @@ def wiener_filter(
     gain : float
         White-noise rms gain ``sqrt(mean |G|^2)`` over the full frequency grid.
     """
+    from scipy import fft
+
     fy = fft.fftfreq(shape[0])
     fx = fft.rfftfreq(shape[1])
     n = dx.size
@@ -230,6 +233,8 @@ def filter_lag_products(g: np.ndarray, shape: tuple[int, int], lags: tuple[int, 
     ndarray, shape (n_rows, 2 L_y + 1, 2 L_x + 1)
         ``Q`` at ``[a mod n_rows, L_y + l_y, L_x + l_x]``.
     """
+    from scipy import fft
+
     lag_y, lag_x = lags
     # Rows of h as rfft spectra along x; Parseval over the full x grid from
     # the half grid: the mirrored half adds the conjugate, so interior
@@ -357,6 +362,8 @@ def deconvolve_smear(
         its variance plane (the filter keeps the noise power at frequency 0,
         ``G(0) = 1``, and changes the per-pixel variance).
     """
+    from scipy import fft
+
     n_y, n_x = image.shape
     noise = RectifiedNoise.white(n_y, n_x) if noise is None else noise
     covariance = noise.covariance(0, n_y, noise.lags(), dtype=np.float32)

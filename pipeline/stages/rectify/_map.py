@@ -29,7 +29,6 @@ import math
 
 import numpy as np
 from astropy.table import Table
-from scipy.interpolate import CubicSpline
 
 __all__ = ["StripMap", "crossing_after", "smear_kernels"]
 
@@ -93,6 +92,8 @@ class StripMap:
     def __init__(
         self, model, frame, x_lo: float, x_hi: float, *, step_x: int = 256, step_y: int = 16
     ) -> None:
+        from scipy.interpolate import CubicSpline
+
         if step_x < 1 or step_y < 1:
             raise ValueError(
                 f"map node steps must be positive pixels; got step_x={step_x}, step_y={step_y}."

@@ -31,17 +31,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy import sparse
-from scipy.interpolate import BSpline
-from scipy.linalg import cho_solve_banded, cholesky_banded
-from scipy.stats import chi2
 
 __all__ = ["ZeroPointFit", "fit_zero_point"]
 
 _DEGREE = 3
-#: Median of a chi-square variable with one degree of freedom (0.4549): the
-#: robust target of the squared normalised residuals.
-_CHI2_MEDIAN = float(chi2.ppf(0.5, 1))
 
 
 @dataclass(frozen=True)
@@ -91,6 +84,8 @@ class ZeroPointFit:
         return float(self.knots[_DEGREE]), float(self.knots[-_DEGREE - 1])
 
     def _spline(self, t: np.ndarray) -> np.ndarray:
+        from scipy.interpolate import BSpline
+
         return BSpline(self.knots, self.coefficients, _DEGREE, extrapolate=False)(t)
 
     def _bridged(self, t: np.ndarray, values: np.ndarray, ends) -> np.ndarray:
@@ -116,6 +111,8 @@ class ZeroPointFit:
         return self._bridged(t, self._spline_error(t, chunk), ends)
 
     def _spline_error(self, t: np.ndarray, chunk: int) -> np.ndarray:
+        from scipy.linalg import cho_solve_banded
+
         out = np.empty(t.shape)
         flat_t, flat_out = t.ravel(), out.reshape(-1)
         for lo in range(0, flat_t.size, chunk):
@@ -135,11 +132,15 @@ def _knot_vector(t_min: float, t_max: float, spacing: float) -> np.ndarray:
 
 
 def _design(t: np.ndarray, knots: np.ndarray):
+    from scipy.interpolate import BSpline
+
     return BSpline.design_matrix(t, knots, _DEGREE)
 
 
 def _banded_normal(design, weight: np.ndarray, penalty: float) -> np.ndarray:
     """Upper banded form (bandwidth ``_DEGREE``) of ``A^T W A + penalty D1^T D1``."""
+    from scipy import sparse
+
     n = design.shape[1]
     d1 = sparse.diags([-1.0, 1.0], [0, 1], shape=(max(n - 1, 0), n))
     normal = (design.T @ design.multiply(weight[:, None]) + penalty * (d1.T @ d1)).tocsr()
@@ -151,6 +152,8 @@ def _banded_normal(design, weight: np.ndarray, penalty: float) -> np.ndarray:
 
 def _solve(design, delta, weight, colour, penalty):
     """Weighted penalised least squares; returns (coef, c, c_err, factor, x)."""
+    from scipy.linalg import cho_solve_banded, cholesky_banded
+
     n = design.shape[1]
     factor = cholesky_banded(_banded_normal(design, weight, penalty), lower=False)
     rhs = design.T @ (weight * delta)
@@ -192,13 +195,18 @@ def _holes(t_used: np.ndarray, knots: np.ndarray, min_stars: int):
 
 def _extra_scatter(residual: np.ndarray, sigma: np.ndarray) -> float:
     """Scatter ``s`` (mag) with median((r / sqrt(sigma^2 + s^2))^2) = chi2 median."""
+    from scipy.stats import chi2
+
+    # median of a chi-square variable with one degree of freedom (0.4549): the
+    # robust target of the squared normalised residuals
+    chi2_median = float(chi2.ppf(0.5, 1))
     z2 = residual**2
-    if np.median(z2 / sigma**2) <= _CHI2_MEDIAN:
+    if np.median(z2 / sigma**2) <= chi2_median:
         return 0.0
-    lo, hi = 0.0, float(np.sqrt(np.median(z2) / _CHI2_MEDIAN)) + float(np.max(sigma))
+    lo, hi = 0.0, float(np.sqrt(np.median(z2) / chi2_median)) + float(np.max(sigma))
     for _ in range(60):
         mid = 0.5 * (lo + hi)
-        if np.median(z2 / (sigma**2 + mid**2)) > _CHI2_MEDIAN:
+        if np.median(z2 / (sigma**2 + mid**2)) > chi2_median:
             lo = mid
         else:
             hi = mid
