@@ -1,0 +1,110 @@
+"""What the command line imports before it has work to do.
+
+Reading a config builds the stage graph, which imports every stage module;
+a run in which everything is up to date needs only the config, the product
+store and the provenance checks.  The heavy libraries (scipy, photutils,
+matplotlib, numba, dask) must be imported by the stages that use them, when
+they run, or every command pays seconds of start-up (measured in
+``benchmarks/bench_night.py``).  Each check runs in a fresh interpreter, since
+this test process has long imported everything.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import yaml
+
+from pipeline.cli import main
+
+#: Libraries a command must not import before a stage runs (top-level names).
+#: astropy.nddata imports scipy.sparse; distributed and reproject are heavy too.
+HEAVY = (
+    "astropy.nddata",
+    "dask",
+    "distributed",
+    "matplotlib",
+    "numba",
+    "photutils",
+    "reproject",
+    "scipy",
+)
+
+
+def _heavy_imported(code: str) -> list[str]:
+    """The :data:`HEAVY` modules in ``sys.modules`` after ``code`` runs in a fresh interpreter."""
+    report = f"import json, sys\nprint(json.dumps([m for m in {HEAVY!r} if m in sys.modules]))"
+    done = subprocess.run(
+        [sys.executable, "-c", f"{code}\n{report}"],
+        capture_output=True,
+        text=True,
+        check=False,
+    )
+    assert done.returncode == 0, done.stderr
+    return json.loads(done.stdout.splitlines()[-1])
+
+
+def test_importing_the_command_line_loads_no_heavy_library():
+    assert _heavy_imported("import pipeline.cli") == []
+
+
+def test_reading_a_config_loads_no_heavy_library():
+    """Every stage's options, through the graph, from the template config."""
+    template = Path(__file__).parents[1] / "configs" / "template.yaml"
+    code = (
+        "from pipeline.config import load_config\n"
+        f"config = load_config({str(template)!r})\n"
+        "names = [s.name for s in config.graph]\n"
+        "assert len(names) > 5 and all(config.stage_options(n) is not None for n in names)"
+    )
+    assert _heavy_imported(code) == []
+
+
+@pytest.fixture(scope="module")
+def done_night(tmp_path_factory) -> Path:
+    """A small simulated night run through the catalogue stage; returns its config."""
+    folder = tmp_path_factory.mktemp("night")
+    config = {
+        "night": {"name": "n", "raw_dir": "raw", "pattern": "block_*.fits", "output_dir": "out"},
+        "site": {"latitude": 20.0, "longitude": -100.0, "height": 2000.0},
+        "camera": {"n_columns": 48, "tdi_rows": 128, "pixel_size": 15.0, "focal_length": 6.2},
+        "run": {"stretch_rows": 512, "overlap_rows": 64, "executor": "serial"},
+        "stages": {"column_stats": {"block_rows": 64}, "columns": {"min_blocks": 4}},
+        "simulate": {
+            "start": "2026-03-20T04:00:00",
+            "n_blocks": 4,
+            "block_rows": 256,
+            "overscan_columns": 8,
+            "compress": False,
+            "sky": {"sky_ramp": 4.0},
+        },
+    }
+    path = folder / "night.yaml"
+    path.write_text(yaml.safe_dump(config))
+    assert main(["simulate", str(path)]) == 0
+    # a 48-column chip holds too few reference stars for astrometry: stop before it
+    assert main(["run", str(path), "--to", "catalog"]) == 0
+    return path
+
+
+def test_a_run_with_everything_up_to_date_loads_no_heavy_library(done_night):
+    code = (
+        "from pipeline.cli import main\n"
+        f"assert main(['run', {str(done_night)!r}, '--to', 'catalog']) == 0"
+    )
+    assert _heavy_imported(code) == []
+    # it was up to date (nothing ran, so nothing needed the libraries)
+    assert main(["run", str(done_night), "--to", "catalog"]) == 0
+
+
+def test_status_loads_no_heavy_library(done_night):
+    # exit status EXIT_INCOMPLETE: the stages after the catalogue have not run
+    code = (
+        "from pipeline.cli import EXIT_INCOMPLETE, main\n"
+        f"assert main(['status', {str(done_night)!r}]) == EXIT_INCOMPLETE"
+    )
+    assert _heavy_imported(code) == []
