@@ -409,10 +409,12 @@ def _run_night(
     else:
         workers = contextlib.nullcontext(shared)
     with lock, workers as executor:
-        executor.warm(_stage_modules(config.graph))
         if verify:
             night.find_damage()
         plan = _with_recut_upstream(night, selected)
+        # workers import the modules of the planned stages only (a stage added to
+        # repair a damaged product is imported when its first unit arrives)
+        executor.warm(_stage_modules(plan))
         log.info(
             "night %s: stages %s, executor %s",
             config.night.name,
