@@ -12,11 +12,13 @@ stopping the batch.
   when this process has threads (unlike ``fork``), the same on every OS, and
   seeing the environment as it is when the run starts (a fork server would
   keep the environment of its own start).  The pool is created on first use,
-  with all its workers at once (each imports the run's stage modules as it
-  starts: see :meth:`LocalPoolExecutor.warm`), and reused by later stages of
-  the run.  When the run ends with no unit in progress, the idle workers are
-  terminated rather than waited for: a worker's interpreter takes seconds to
-  exit with the libraries it loaded, and it has nothing left to write.
+  with all its workers at once (each imports the modules of the stages the
+  run plans as it starts, see :meth:`LocalPoolExecutor.warm`; the libraries a
+  stage computes with are imported by its functions, when a unit of it first
+  runs there), and reused by later stages of the run.  When the run ends
+  with no unit in progress, the idle workers are terminated rather than
+  waited for: a worker's interpreter takes seconds to exit with the
+  libraries it loaded, and it has nothing left to write.
 * ``dask``: a :class:`distributed.Client` connected to ``run.scheduler``, or,
   without a scheduler address, to a ``distributed.LocalCluster`` of
   ``run.workers`` processes started for the run.  Workers must see the same
@@ -201,10 +203,11 @@ def _unpicklable(task: Any) -> str | None:
 def _start_worker(parent_pid: int, modules: Sequence[str]) -> None:
     """Initializer of a pool worker: end with the run, then import ``modules``.
 
-    Importing the stage modules (and the libraries they load) as the worker
-    starts, rather than when its first unit is unpickled, lets every worker
-    warm up at once.  An import that fails is left for the unit that needs it
-    to report.
+    Importing the stage modules as the worker starts, rather than when its
+    first unit is unpickled, lets every worker warm up at once; the heavy
+    libraries a stage computes with are imported by its functions, so a
+    worker loads only those of the stages it runs.  An import that fails is
+    left for the unit that needs it to report.
     """
     end_with_parent(parent_pid)
     for module in modules:
