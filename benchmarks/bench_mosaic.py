@@ -53,12 +53,11 @@ from pipeline.masks import MASK_DTYPE  # noqa: E402
 from pipeline.mosaic import (  # noqa: E402
     NightImage,
     _coadd,
-    _resample,
     coadd,
     mosaic_tile,
     resample_to_tile,
 )
-from tests._mosaic_reference import coadd_numpy, resample_axis_numpy  # noqa: E402
+from tests._mosaic_reference import coadd_numpy, merge_onto_tile_numpy  # noqa: E402
 from tests._mosaic_scene import RA0, gaussian_stars, night_wcs, tile  # noqa: E402
 
 SIGMA = 1.8  # star sigma, night pixels
@@ -116,25 +115,15 @@ def rate(what: str, megapixels: float, timing: tuple[float, float]) -> str:
     )
 
 
-def _numpy_axis(planes, positions, axis):
-    """The resampling pass as it was: numpy.gradient's Jacobian, then the numpy loop."""
-    one = positions.shape[axis] == 1
-    jacobian = np.ones(positions.shape) if one else np.abs(np.gradient(positions, axis=axis))
-    *out, weight2 = resample_axis_numpy(planes, positions, jacobian, axis)
-    return (*out, weight2, float(np.mean(jacobian)))
-
-
 @contextlib.contextmanager
 def numpy_loops():
-    """The mosaic with the numpy loops (and FITPACK's grid evaluation) it had before."""
-    saved = _resample._resample_axis, _resample._grid_values, _coadd.coadd
-    _resample._resample_axis = _numpy_axis
-    _resample._grid_values = lambda spline, x, y: spline(np.asarray(x, float), np.asarray(y, float))
-    _coadd.coadd = coadd_numpy
+    """The mosaic with the numpy loops it had before (stored positions, separate merge)."""
+    saved = _coadd.merge_onto_tile, _coadd.coadd
+    _coadd.merge_onto_tile, _coadd.coadd = merge_onto_tile_numpy, coadd_numpy
     try:
         yield
     finally:
-        _resample._resample_axis, _resample._grid_values, _coadd.coadd = saved
+        _coadd.merge_onto_tile, _coadd.coadd = saved
 
 
 def isolated(tx, ty, distance=30.0):

@@ -21,6 +21,14 @@ from pipeline.mosaic._coadd import (
     _sky_level,
     level_grid_nodes,
 )
+from pipeline.mosaic._resample import (
+    ResampledImage,
+    _checked,
+    _input_planes,
+    _noise_correlation,
+    _plan,
+)
+from pipeline.stages.rectify import NO_DATA_BITS
 from pipeline.stages.rectify._resample import keys_weights
 
 #: The co-add's default flags to ignore.
@@ -70,6 +78,68 @@ def resample_axis_numpy(
             if not inside.all():
                 mo |= np.where(nonzero & ~inside, outside, 0).astype(MASK_DTYPE)
     return out, vout, mout, sum_w2 / max(positions.size, 1)
+
+
+def _numpy_pass(planes, positions, axis):
+    """One pass with ``numpy.gradient``'s Jacobian, as the resampler had it."""
+    one = positions.shape[axis] == 1
+    jacobian = np.ones(positions.shape) if one else np.abs(np.gradient(positions, axis=axis))
+    *out, weight2 = resample_axis_numpy(planes, positions, jacobian, axis)
+    return out, weight2, float(np.mean(jacobian))
+
+
+def resample_to_tile_numpy(image, variance, flags, wcs, tile, *, noise_correlation=1.0, core=None):
+    """:func:`pipeline.mosaic.resample_to_tile` with stored positions and the numpy passes.
+
+    The sampling (the plan: box, crops and position splines) is the
+    resampler's own; the positions are evaluated on the whole grid first, and
+    the two passes, the no-data and core masks run as whole-array numpy
+    operations, as they did before the passes were compiled and fused.
+    """
+    image, variance, flags = _checked(image, variance, flags)
+    plan = _plan(image.shape, wcs, tile, core)
+    if plan is None:
+        return None
+    planes = _input_planes(plan, image, variance, flags)
+    crossing = plan.crossing.values() - plan.x_lo
+    planes, weight2_1, jacobian1 = _numpy_pass(planes, crossing, axis=1)
+    rows = plan.rows.values() - plan.t_lo
+    (out, vout, mout), weight2_2, jacobian2 = _numpy_pass(planes, rows, axis=0)
+    no_data = (mout & MASK_DTYPE.type(int(NO_DATA_BITS))) != 0
+    if core is not None:
+        y_lo, y_hi, x_lo, x_hi = plan.core_box
+        rows += plan.t_lo
+        columns = plan.core_columns.values()
+        elsewhere = ~((rows >= y_lo) & (rows < y_hi) & (columns >= x_lo) & (columns < x_hi))
+        no_data |= elsewhere
+        mout[elsewhere] |= MASK_DTYPE.type(int(MaskBit.OUTSIDE))
+    out[no_data] = np.nan
+    vout[no_data] = np.nan
+    sums = (weight2_1, jacobian1, weight2_2, jacobian2)
+    correlation = _noise_correlation(plan, tile, sums, noise_correlation)
+    return ResampledImage(out, vout, mout, plan.box[0], plan.box[2], 1.0, correlation)
+
+
+def merge_onto_tile_numpy(
+    image, variance, flags, wcs, tile, planes, *, noise_correlation=1.0, core=None, scratch=None
+):
+    """:func:`pipeline.mosaic._resample.merge_onto_tile`: the numpy resampling, then a merge."""
+    result = resample_to_tile_numpy(
+        image, variance, flags, wcs, tile, noise_correlation=noise_correlation, core=core
+    )
+    if result is None:
+        return None
+    image, variance, flags = (plane[result.slices] for plane in planes)
+    v = result.variance * np.float32(result.pixel_factor)
+    new = np.isfinite(result.image) & np.isfinite(v) & (v > 0)
+    old = np.isfinite(image)
+    take = new & ~old
+    image[take] = result.image[take]
+    variance[take] = v[take]
+    flags[take] = result.flags[take]
+    flags[~old & ~new] |= result.flags[~old & ~new]
+    inverse = float(np.sum(1.0 / v[take].astype(np.float64)))
+    return int(take.sum()), inverse, result.pixel_factor, result.noise_correlation
 
 
 #: Up to this many nights the weighted median sorts with a compare-exchange network.

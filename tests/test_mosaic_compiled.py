@@ -10,9 +10,17 @@ import pytest
 from scipy.interpolate import RectBivariateSpline
 
 from pipeline.masks import MASK_DTYPE, MaskBit
-from pipeline.mosaic import coadd, weighted_median
-from pipeline.mosaic._resample import _grid_values, _resample_axis
-from tests._mosaic_reference import coadd_numpy, resample_axis_numpy, weighted_median_numpy
+from pipeline.mosaic import coadd, resample_to_tile, weighted_median
+from pipeline.mosaic._resample import _grid_values, _SplineGrid, merge_onto_tile
+from pipeline.mosaic._resample_jit import resample_columns, resample_rows
+from tests._mosaic_reference import (
+    coadd_numpy,
+    merge_onto_tile_numpy,
+    resample_axis_numpy,
+    resample_to_tile_numpy,
+    weighted_median_numpy,
+)
+from tests._mosaic_scene import night_wcs, tile
 
 #: (axis, n_rows, n_cols, output shape) of the random resampling passes.
 PASSES = [(1, 37, 50, (37, 61)), (0, 45, 33, (52, 33)), (1, 3, 5, (3, 9)), (0, 4, 6, (1, 6))]
@@ -25,6 +33,31 @@ def _random_planes(rng, shape):
     return image, variance, flags
 
 
+def _compiled_pass(planes, positions, axis):
+    """One compiled pass at the given positions (a spline grid with an identity basis)."""
+    n_lines = positions.shape[0]
+    grid = _SplineGrid(
+        np.arange(n_lines + 1, dtype=np.int32),
+        np.arange(n_lines, dtype=np.int32),
+        np.ones(n_lines),
+        np.ascontiguousarray(positions, float),
+    ).arrays
+    out = (
+        np.empty(positions.shape, np.float32),
+        np.empty(positions.shape, np.float32),
+        np.empty(positions.shape, MASK_DTYPE),
+    )
+    outside = MASK_DTYPE.type(int(MaskBit.OUTSIDE))
+    if axis == 1:
+        w2, jacobian = resample_rows(*planes, grid, 0.0, outside, *out)
+    else:
+        # no no-data bits: every pixel stored as computed
+        settings = (outside, MASK_DTYPE.type(0), False, np.float32(1.0), False)
+        box = (0.0, 0.0, 0.0, 0.0)
+        w2, jacobian, _, _ = resample_columns(*planes, grid, 0.0, grid, box, settings, out, (0, 0))
+    return (*out, w2 / positions.size, jacobian / positions.size)
+
+
 @pytest.mark.parametrize(("axis", "n_rows", "n_cols", "out_shape"), PASSES)
 def test_compiled_pass_matches_numpy(axis, n_rows, n_cols, out_shape):
     rng = np.random.default_rng(n_rows)
@@ -34,7 +67,7 @@ def test_compiled_pass_matches_numpy(axis, n_rows, n_cols, out_shape):
     # outside), a few on exact integers (a zero weight)
     positions = rng.uniform(-2.0, n_line + 1.0, out_shape)
     positions.flat[::7] = np.round(positions.flat[::7])
-    *ours, ours_w2, ours_jacobian = _resample_axis(planes, positions, axis)
+    *ours, ours_w2, ours_jacobian = _compiled_pass(planes, positions, axis)
     one = positions.shape[axis] == 1  # the resampler's Jacobian for a single output line
     jacobian = np.ones(out_shape) if one else np.abs(np.gradient(positions, axis=axis))
     *theirs, theirs_w2 = resample_axis_numpy(planes, positions, jacobian, axis)
@@ -108,3 +141,51 @@ def test_spline_on_a_grid_matches_scipy(degree):
     np.testing.assert_allclose(
         _grid_values(spline, ys, xs), spline(ys.astype(float), xs.astype(float)), atol=1e-9
     )
+
+
+#: (core, planes already holding data) of the fused resampling's comparisons:
+#: a whole product, one answering for a core (a stretch between neighbours),
+#: and one merged into a night's planes that another product partly filled.
+FUSED = [(None, False), ((20.5, 150.5, -0.5, 120.5), False), ((20.5, 150.5, -0.5, 120.5), True)]
+
+
+@pytest.mark.parametrize(("core", "filled"), FUSED)
+def test_fused_resampling_matches_numpy(core, filled):
+    """Positions made line by line, pass 2 stored or merged in place, against the numpy path."""
+    rng = np.random.default_rng(7)
+    shape = (200, 220)
+    image, variance, flags = _random_planes(rng, shape)
+    image[40:43, :] = np.nan  # no data: NaN on the tile, flagged
+    flags[90:92, 100:103] |= np.uint16(MaskBit.COSMIC_RAY)
+    wcs = night_wcs(shape, rotation=0.3, scale=1.01)
+    target = tile(160)
+    ours = resample_to_tile(image, variance, flags, wcs, target, core=core)
+    theirs = resample_to_tile_numpy(image, variance, flags, wcs, target, core=core)
+    assert ours.slices == theirs.slices
+    # float32 sums of the same terms in the same order: equal to float32
+    # rounding of values ~100 (1e-6) and of variances ~50 times weights
+    np.testing.assert_allclose(ours.image, theirs.image, rtol=1e-6, atol=1e-4)
+    np.testing.assert_allclose(ours.variance, theirs.variance, rtol=1e-6, atol=1e-4)
+    np.testing.assert_array_equal(ours.flags, theirs.flags)
+    assert np.isnan(ours.image).any() and np.isfinite(ours.image).any()
+    # float64 sums of the same float32 terms, in another order
+    assert ours.noise_correlation == pytest.approx(theirs.noise_correlation, rel=1e-9)
+
+    def night_planes():
+        planes = (
+            np.full(target.shape, np.nan, np.float32),
+            np.full(target.shape, np.nan, np.float32),
+            np.full(target.shape, MaskBit.OUTSIDE, MASK_DTYPE),
+        )
+        if filled:  # another product of the night already holds the left half
+            planes[0][:, :80], planes[1][:, :80], planes[2][:, :80] = 5.0, 2.0, MaskBit.SATURATED
+        return planes
+
+    merged, reference = night_planes(), night_planes()
+    a = merge_onto_tile(image, variance, flags, wcs, target, merged, core=core)
+    b = merge_onto_tile_numpy(image, variance, flags, wcs, target, reference, core=core)
+    assert a[0] == b[0] > 0  # pixels taken
+    assert a[1] == pytest.approx(b[1], rel=1e-9)
+    np.testing.assert_allclose(merged[0], reference[0], rtol=1e-6, atol=1e-4)
+    np.testing.assert_allclose(merged[1], reference[1], rtol=1e-6, atol=1e-4)
+    np.testing.assert_array_equal(merged[2], reference[2])

@@ -55,7 +55,7 @@ from astropy.wcs import WCS
 
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic._options import CoaddOptions
-from pipeline.mosaic._resample import resample_to_tile
+from pipeline.mosaic._resample import _Scratch, merge_onto_tile
 from pipeline.mosaic._seams import extended_planes
 from pipeline.mosaic._tiles import Tile
 from pipeline.products import (
@@ -548,6 +548,7 @@ def _night_planes(
     tile: Tile,
     zero_point: float,
     planes: tuple[np.ndarray, np.ndarray, np.ndarray],
+    scratch: _Scratch | None = None,
 ) -> tuple[float, float, float] | None:
     """One night's products resampled onto the tile and merged into ``planes``.
 
@@ -564,8 +565,6 @@ def _night_planes(
     factors (means over its products, weighted by area) and the sum of
     ``1 / variance`` over its pixels; None if no product reaches the tile.
     """
-    from pipeline.mosaic._coadd_jit import merge_product
-
     factors, areas = [], []
     inverse_total = 0.0
     scaled = []
@@ -577,22 +576,20 @@ def _night_planes(
         scaled.append(((*night, product.flags), product.wcs))
     for i, product in enumerate(products):
         extended, wcs, core = extended_planes(*scaled[i], scaled[:i] + scaled[i + 1 :])
-        result = resample_to_tile(
-            *extended, wcs, tile, noise_correlation=product.noise_correlation, core=core
+        merged = merge_onto_tile(
+            *extended,
+            wcs,
+            tile,
+            planes,
+            noise_correlation=product.noise_correlation,
+            core=core,
+            scratch=scratch,
         )
-        if result is None:
+        if merged is None:
             continue
-        taken, inverse = merge_product(
-            *planes,
-            result.image,
-            result.variance,
-            result.flags,
-            result.y_start,
-            result.x_start,
-            np.float32(result.pixel_factor),
-        )
+        taken, inverse, pixel_factor, correlation = merged
         inverse_total += inverse
-        factors.append((result.pixel_factor, result.noise_correlation / result.pixel_factor))
+        factors.append((pixel_factor, correlation / pixel_factor))
         areas.append(taken)
     if not factors:
         return None
@@ -642,12 +639,14 @@ def mosaic_tile(
     variances = np.full((len(nights), n_y, n_x), np.nan, np.float32)
     flags = np.full((len(nights), n_y, n_x), MaskBit.OUTSIDE, MASK_DTYPE)
     planes = []
+    scratch = _Scratch()  # pass 1's planes, shared by every product's resampling
     for i, night in enumerate(nights):
         merged = _night_planes(
             [p for p in kept if p.night == night],
             tile,
             zero_point,
             (images[i], variances[i], flags[i]),
+            scratch,
         )
         planes.append(None if merged is None else (night, *merged))
     if any(p is None for p in planes):

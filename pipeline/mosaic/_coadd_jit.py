@@ -19,7 +19,6 @@ __all__ = [
     "combine",
     "grow_rejections",
     "median_and_noise",
-    "merge_product",
     "reject",
     "shift_levels",
     "validity",
@@ -323,35 +322,3 @@ def shift_levels(images, valid, grids, first, spacing):
                     low = (1.0 - fx) * grids[i, k, j] + fx * grids[i, k, j + 1]
                     high = (1.0 - fx) * grids[i, k + 1, j] + fx * grids[i, k + 1, j + 1]
                     images[i, y, x] -= np.float32((1.0 - fy) * low + fy * high)
-
-
-@numba.njit(cache=True, nogil=True)
-def merge_product(image, variance, flags, new_image, new_variance, new_flags, y0, x0, factor):
-    """Merge a product resampled onto ``[y0:, x0:]`` of a night's tile planes, in place.
-
-    A pixel takes the product's image and variance (times ``factor``) where
-    the product has data (finite, positive variance) and the night has none
-    yet; its flags become the product's there, stay where the night had
-    data, and are OR-ed where neither has.  Returns the number of pixels
-    taken and the sum of ``1 / variance`` over them.
-    """
-    n_y, n_x = new_image.shape
-    taken = 0
-    inverse = 0.0
-    for y in range(n_y):
-        for x in range(n_x):
-            value = new_image[y, x]
-            v = new_variance[y, x] * factor
-            new = np.isfinite(value) and np.isfinite(v) and v > 0
-            old = np.isfinite(image[y0 + y, x0 + x])
-            if new and not old:
-                image[y0 + y, x0 + x] = value
-                variance[y0 + y, x0 + x] = v
-                taken += 1
-                inverse += 1.0 / v
-            if not old:
-                if new:
-                    flags[y0 + y, x0 + x] = new_flags[y, x]
-                else:
-                    flags[y0 + y, x0 + x] |= new_flags[y, x]
-    return taken, inverse

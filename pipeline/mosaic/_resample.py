@@ -61,7 +61,7 @@ from pipeline.mosaic._tiles import Tile
 from pipeline.stages.rectify import NO_DATA_BITS
 from pipeline.stages.rectify._resample import _cleaned
 
-__all__ = ["ResampledImage", "resample_to_tile"]
+__all__ = ["ResampledImage", "merge_onto_tile", "resample_to_tile"]
 
 log = logging.getLogger(__name__)
 
@@ -204,95 +204,249 @@ def _covered_box(mapping: _Mapping, tile: Tile, input_shape) -> tuple[int, int, 
     return y0, y1, x0, x1
 
 
-def _resample_axis(
-    planes: tuple[np.ndarray, np.ndarray, np.ndarray], positions: np.ndarray, axis: int
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float]:
-    """Keys resampling along one axis with a sampling position for every output pixel.
+@dataclass(frozen=True, eq=False)
+class _SplineGrid:
+    """A tensor-product spline on a grid, kept as ``B @ table``.
 
-    Parameters
-    ----------
-    planes : (image, variance, flags)
-        Finite float32 image and variance, uint16 flags, shape (n_rows, n_cols).
-    positions : ndarray
-        Shape (n_rows, n_out) for ``axis=1`` (output ``[r, j]`` samples
-        ``image[r, positions[r, j]]``) or (n_out, n_cols) for ``axis=0``
-        (output ``[i, c]`` samples ``image[positions[i, c], c]``).  The
-        weights are multiplied by the Jacobian ``|d positions / d output|``
-        along the axis (``numpy.gradient``'s differences), which conserves flux.
-
-    Returns
-    -------
-    image, variance, flags : ndarray, shape positions.shape
-    mean_weight2 : float
-        Mean over the output of the sum of the squared weights.
-    mean_jacobian : float
-        Mean of the Jacobian.
+    ``B`` (CSR: ``indptr``, ``indices``, ``data``) holds the B-spline basis
+    along the grid's lines (a few non-zero terms per line), ``table`` the
+    spline's coefficients already combined with the basis along them, shape
+    (n_basis, n_columns).  The resampling passes evaluate it one line at a
+    time; :meth:`values` gives the whole grid.
     """
-    # numba is imported on first use (loading it and the cached machine code
-    # takes about a second, which a run without a mosaic should not pay)
-    from pipeline.mosaic._resample_jit import resample_columns, resample_rows
 
-    image, variance, flags = planes
-    compiled = resample_rows if axis == 1 else resample_columns
-    out, vout, mout, sum_w2, sum_jacobian = compiled(
-        image,
-        variance,
-        flags.astype(MASK_DTYPE, copy=False),
-        np.asarray(positions, np.float64),
-        MASK_DTYPE.type(int(MaskBit.OUTSIDE)),
-    )
-    size = max(positions.size, 1)
-    return out, vout, mout, sum_w2 / size, sum_jacobian / size
+    indptr: np.ndarray
+    indices: np.ndarray
+    data: np.ndarray
+    table: np.ndarray
+
+    @property
+    def arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        return self.indptr, self.indices, self.data, self.table
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.indptr.size - 1, self.table.shape[1]
+
+    def values(self) -> np.ndarray:
+        """The spline on the whole grid, shape (n_lines, n_columns), float64."""
+        from pipeline.mosaic._resample_jit import tensor_grid
+
+        return tensor_grid(*self.arrays)
 
 
-def _grid_values(spline: RectBivariateSpline, x: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """``spline(x, y)`` on the grid ``x`` by ``y`` (the tensor product of B-spline bases)."""
-    from pipeline.mosaic._resample_jit import tensor_grid
-
+def _spline_grid(spline: RectBivariateSpline, x: np.ndarray, y: np.ndarray) -> _SplineGrid:
+    """``spline`` on the grid ``x`` by ``y`` (lines along ``x``), as a :class:`_SplineGrid`."""
     tx, ty, coefficients = spline.tck
     kx, ky = spline.degrees
     coefficients = coefficients.reshape(tx.size - kx - 1, ty.size - ky - 1)
     basis_x = BSpline.design_matrix(np.asarray(x, float), tx, kx, extrapolate=True).tocsr()
     basis_y = BSpline.design_matrix(np.asarray(y, float), ty, ky, extrapolate=True)
     table = np.ascontiguousarray((basis_y @ coefficients.T).T)
-    return tensor_grid(basis_x.indptr, basis_x.indices, basis_x.data, table)
+    return _SplineGrid(basis_x.indptr, basis_x.indices, basis_x.data, table)
 
 
-def _crossing_columns(
+def _grid_values(spline: RectBivariateSpline, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """``spline(x, y)`` on the grid ``x`` by ``y`` (the tensor product of B-spline bases)."""
+    return _spline_grid(spline, x, y).values()
+
+
+def _constant_grid(value: float, n_lines: int, n_columns: int) -> _SplineGrid:
+    """A :class:`_SplineGrid` equal to ``value`` everywhere."""
+    return _SplineGrid(
+        np.arange(n_lines + 1, dtype=np.int32),
+        np.zeros(n_lines, np.int32),
+        np.ones(n_lines),
+        np.full((1, n_columns), float(value)),
+    )
+
+
+def _grid_nodes(first: int, last: int) -> np.ndarray:
+    """Every ``_GRID_STEP``-th pixel from ``first``, and ``last``."""
+    return np.append(np.arange(first, last, _GRID_STEP), last).astype(float)
+
+
+def _crossing_grid(
     mapping: _Mapping, rows: np.ndarray, columns: np.ndarray, y_range: tuple[float, float]
-) -> np.ndarray:
+) -> tuple[_SplineGrid, float, float]:
     """Input column ``x*(X, y)`` at which tile column ``X`` crosses input row ``y``.
 
     Exact (spline) on a grid every ``_GRID_STEP`` px, interpolated bicubically
-    to ``rows`` x ``columns``.
+    to ``rows`` x ``columns``.  Returns the grid and the least and largest
+    value on its nodes.
     """
-    y_nodes = np.append(np.arange(rows[0], rows[-1], _GRID_STEP), rows[-1]).astype(float)
-    x_nodes = np.append(np.arange(columns[0], columns[-1], _GRID_STEP), columns[-1]).astype(float)
+    y_nodes = _grid_nodes(rows[0], rows[-1])
+    x_nodes = _grid_nodes(columns[0], columns[-1])
     fine = np.arange(y_range[0], y_range[1] + 4.0, 4.0)
     along = mapping.y(fine, x_nodes)  # input row of tile (X, Y) on a fine Y grid
     crossing = np.empty((y_nodes.size, x_nodes.size))
     for j, column in enumerate(x_nodes):
         tile_rows = _extrapolated(y_nodes, along[:, j], fine)
         crossing[:, j] = mapping.x.ev(tile_rows, np.full_like(tile_rows, column))
+    lo, hi = float(crossing.min()), float(crossing.max())
     if y_nodes.size < 4 or x_nodes.size < 4:
         degree = (min(3, y_nodes.size - 1), min(3, x_nodes.size - 1))
     else:
         degree = (3, 3)
     if min(degree) < 1:
-        return np.broadcast_to(crossing[:1, :1], (rows.size, columns.size)).copy()
+        return _constant_grid(crossing[0, 0], rows.size, columns.size), lo, hi
     spline = RectBivariateSpline(y_nodes, x_nodes, crossing, kx=degree[0], ky=degree[1])
-    return _grid_values(spline, rows, columns)
+    return _spline_grid(spline, rows, columns), lo, hi
 
 
-def _in_core(mapping: _Mapping, core, rows, ys, xs, shape) -> np.ndarray:
-    """Tile pixels whose sampling position (``rows``, and the mapping's column) lies in ``core``."""
-    y_lo, y_hi, x_lo, x_hi = core
-    if mapping.flip_y:
-        y_lo, y_hi = shape[0] - 1 - y_hi, shape[0] - 1 - y_lo
-    if mapping.flip_x:
-        x_lo, x_hi = shape[1] - 1 - x_hi, shape[1] - 1 - x_lo
-    columns = _grid_values(mapping.x, ys, xs)
-    return (rows >= y_lo) & (rows < y_hi) & (columns >= x_lo) & (columns < x_hi)
+def _crossing_columns(
+    mapping: _Mapping, rows: np.ndarray, columns: np.ndarray, y_range: tuple[float, float]
+) -> np.ndarray:
+    """:func:`_crossing_grid`'s values on the whole grid, shape (rows.size, columns.size)."""
+    return _crossing_grid(mapping, rows, columns, y_range)[0].values()
+
+
+#: Pixels added beyond the extreme sampling positions found on the nodes
+#: every ``_GRID_STEP`` px when cropping the input: the mappings are affine to
+#: ~1e-3 px over a tile (their extremes lie on the box's corners, which are
+#: nodes), so one pixel is ample; a wider crop changes no output value.
+_CROP_MARGIN = 1
+
+
+@dataclass(frozen=True, eq=False)
+class _Plan:
+    """What the two passes need: where they sample, and the input crop they read.
+
+    ``box`` is the tile pixel box ``(y0, y1, x0, x1)``; pass 1 fills input
+    rows ``t_lo:t_hi`` (columns ``x_lo:x_hi`` of the oriented input) at
+    positions ``crossing - x_lo``; pass 2 samples them at ``rows - t_lo``.
+    With a core, ``core_columns`` is the input column of every tile pixel and
+    ``core_box`` the core in the oriented input's pixels.
+    """
+
+    mapping: _Mapping
+    box: tuple[int, int, int, int]
+    t_lo: int
+    t_hi: int
+    x_lo: int
+    x_hi: int
+    rows: _SplineGrid
+    crossing: _SplineGrid
+    core_columns: _SplineGrid | None
+    core_box: tuple[float, float, float, float]
+
+
+def _plan(shape: tuple[int, int], wcs: WCS, tile: Tile, core) -> _Plan | None:
+    """The sampling of an input of ``shape`` onto ``tile``; None if it misses the tile."""
+    mapping = _Mapping.build(tile, wcs, shape)
+    box = _covered_box(mapping, tile, shape)
+    if box is None:
+        return None
+    y0, y1, x0, x1 = box
+    n_rows, n_cols = shape
+    ys, xs = np.arange(y0, y1), np.arange(x0, x1)
+    # Pass 2's positions: the input row of every tile pixel; its extremes from the nodes.
+    on_nodes = mapping.y(_grid_nodes(y0, y1 - 1), _grid_nodes(x0, x1 - 1))
+    t_lo = max(int(np.floor(on_nodes.min())) - _REACH - _CROP_MARGIN, 0)
+    t_hi = min(int(np.ceil(on_nodes.max())) + _REACH + _CROP_MARGIN + 1, n_rows)
+    if t_hi <= t_lo:
+        return None
+    # Pass 1's positions: where each tile column crosses each input row.
+    pad = 1.5 * mapping.shear * (x1 - x0) + 2 * _NODE_STEP
+    crossing, lo, hi = _crossing_grid(mapping, np.arange(t_lo, t_hi), xs, (y0 - pad, y1 + pad))
+    x_lo = max(int(np.floor(lo)) - _REACH - _CROP_MARGIN, 0)
+    x_hi = min(int(np.ceil(hi)) + _REACH + _CROP_MARGIN + 1, n_cols)
+    if x_hi <= x_lo:
+        return None
+    core_columns, core_box = None, (0.0, 0.0, 0.0, 0.0)
+    if core is not None:
+        y_lo, y_hi, c_lo, c_hi = (float(c) for c in core)
+        if mapping.flip_y:
+            y_lo, y_hi = n_rows - 1 - y_hi, n_rows - 1 - y_lo
+        if mapping.flip_x:
+            c_lo, c_hi = n_cols - 1 - c_hi, n_cols - 1 - c_lo
+        core_columns, core_box = _spline_grid(mapping.x, ys, xs), (y_lo, y_hi, c_lo, c_hi)
+    rows = _spline_grid(mapping.y, ys, xs)
+    return _Plan(mapping, box, t_lo, t_hi, x_lo, x_hi, rows, crossing, core_columns, core_box)
+
+
+def _input_planes(plan: _Plan, image, variance, flags) -> tuple[np.ndarray, ...]:
+    """The oriented input's crop that pass 1 reads: finite float32, uint16 flags."""
+    if plan.mapping.flip_x:
+        image, variance, flags = image[:, ::-1], variance[:, ::-1], flags[:, ::-1]
+    if plan.mapping.flip_y:
+        image, variance, flags = image[::-1], variance[::-1], flags[::-1]
+    crop = np.s_[plan.t_lo : plan.t_hi, plan.x_lo : plan.x_hi]
+    return _cleaned(
+        image[crop],
+        variance[crop],
+        flags[crop].astype(MASK_DTYPE, copy=False),
+        int(MaskBit.NONFINITE),
+        np.dtype(np.float32),
+    )
+
+
+class _Scratch:
+    """Pass 1's output planes, kept between calls (fresh memory costs page faults)."""
+
+    def __init__(self) -> None:
+        self._buffers = (np.empty(0, np.float32), np.empty(0, np.float32), np.empty(0, MASK_DTYPE))
+
+    def planes(self, shape: tuple[int, int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        size = shape[0] * shape[1]
+        if self._buffers[0].size < size:
+            self._buffers = tuple(np.empty(size, b.dtype) for b in self._buffers)
+        return tuple(b[:size].reshape(shape) for b in self._buffers)
+
+
+def _run_passes(plan: _Plan, planes_in, planes_out, origin, factor, merge, scratch):
+    """Both passes; pass 2 stores into (or merges into) ``planes_out`` at ``origin``.
+
+    Returns the means over each pass's output of the sum of the squared
+    weights and of the Jacobian, the pixels taken and the sum of their
+    ``1 / variance`` (merging).
+    """
+    # numba is imported on first use (loading it and the cached machine code
+    # takes about a second, which a run without a mosaic should not pay)
+    from pipeline.mosaic._resample_jit import resample_columns, resample_rows
+
+    outside = MASK_DTYPE.type(int(MaskBit.OUTSIDE))
+    between = (scratch or _Scratch()).planes(plan.crossing.shape)
+    w2_1, jacobian1 = resample_rows(
+        *planes_in, plan.crossing.arrays, float(plan.x_lo), outside, *between
+    )
+    use_core = plan.core_columns is not None
+    settings = (outside, MASK_DTYPE.type(int(NO_DATA_BITS)), use_core, np.float32(factor), merge)
+    w2_2, jacobian2, taken, inverse = resample_columns(
+        *between,
+        plan.rows.arrays,
+        float(plan.t_lo),
+        (plan.core_columns if use_core else plan.rows).arrays,
+        plan.core_box,
+        settings,
+        tuple(planes_out),
+        origin,
+    )
+    size1, size2 = max(between[0].size, 1), max(plan.rows.shape[0] * plan.rows.shape[1], 1)
+    return w2_1 / size1, jacobian1 / size1, w2_2 / size2, jacobian2 / size2, taken, inverse
+
+
+def _noise_correlation(plan: _Plan, tile: Tile, sums, noise_correlation: float) -> float:
+    """The large-aperture noise factor of the module docstring, from the passes' sums."""
+    weight2_1, jacobian1, weight2_2, jacobian2 = sums[:4]
+    correlation = float(noise_correlation) * jacobian1 * jacobian2 / (weight2_1 * weight2_2)
+    log.debug(
+        "resampled onto %s: box y %d:%d x %d:%d, noise correlation %.3f",
+        tile.name,
+        *plan.box,
+        correlation,
+    )
+    return correlation
+
+
+def _checked(image, variance, flags) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    image, variance, flags = np.asarray(image), np.asarray(variance), np.asarray(flags)
+    if image.ndim != 2 or variance.shape != image.shape or flags.shape != image.shape:
+        raise ValueError(
+            "image, variance and flags must be 2-D arrays of one shape; got "
+            f"{image.shape}, {variance.shape} and {flags.shape}."
+        )
+    return image, variance, flags
 
 
 def resample_to_tile(
@@ -341,69 +495,55 @@ def resample_to_tile(
     ValueError
         Planes of different shapes, or axes turned too far from the tile's.
     """
-    image, variance, flags = np.asarray(image), np.asarray(variance), np.asarray(flags)
-    if image.ndim != 2 or variance.shape != image.shape or flags.shape != image.shape:
-        raise ValueError(
-            "image, variance and flags must be 2-D arrays of one shape; got "
-            f"{image.shape}, {variance.shape} and {flags.shape}."
-        )
-    mapping = _Mapping.build(tile, wcs, image.shape)
-    box = _covered_box(mapping, tile, image.shape)
-    if box is None:
+    image, variance, flags = _checked(image, variance, flags)
+    plan = _plan(image.shape, wcs, tile, core)
+    if plan is None:
         return None
-    y0, y1, x0, x1 = box
-    if mapping.flip_x:
-        image, variance, flags = image[:, ::-1], variance[:, ::-1], flags[:, ::-1]
-    if mapping.flip_y:
-        image, variance, flags = image[::-1], variance[::-1], flags[::-1]
-    n_rows, n_cols = image.shape
-    ys = np.arange(y0, y1)
-    xs = np.arange(x0, x1)
-
-    # Pass 2's positions: the input row of every tile pixel.
-    rows = _grid_values(mapping.y, ys, xs)
-    t_lo = max(int(np.floor(rows.min())) - _REACH, 0)
-    t_hi = min(int(np.ceil(rows.max())) + _REACH + 1, n_rows)
-    if t_hi <= t_lo:
-        return None
-    # Pass 1's positions: where each tile column crosses each input row.
-    pad = 1.5 * mapping.shear * (x1 - x0) + 2 * _NODE_STEP
-    crossing = _crossing_columns(mapping, np.arange(t_lo, t_hi), xs, (y0 - pad, y1 + pad))
-    x_lo = max(int(np.floor(crossing.min())) - _REACH, 0)
-    x_hi = min(int(np.ceil(crossing.max())) + _REACH + 1, n_cols)
-    if x_hi <= x_lo:
-        return None
-
-    planes = _cleaned(
-        image[t_lo:t_hi, x_lo:x_hi],
-        variance[t_lo:t_hi, x_lo:x_hi],
-        flags[t_lo:t_hi, x_lo:x_hi].astype(MASK_DTYPE, copy=False),
-        int(MaskBit.NONFINITE),
-        np.dtype(np.float32),
+    y0, y1, x0, x1 = plan.box
+    out = (
+        np.empty((y1 - y0, x1 - x0), np.float32),
+        np.empty((y1 - y0, x1 - x0), np.float32),
+        np.empty((y1 - y0, x1 - x0), MASK_DTYPE),
     )
-    crossing -= x_lo  # in place: the positions are ours, and tile-sized
-    *planes, weight2_1, jacobian1 = _resample_axis(planes, crossing, axis=1)
-    del crossing
-    rows -= t_lo
-    out, vout, mout, weight2_2, jacobian2 = _resample_axis(planes, rows, axis=0)
-    no_data = (mout & MASK_DTYPE.type(int(NO_DATA_BITS))) != 0
-    if core is not None:
-        rows += t_lo
-        elsewhere = ~_in_core(mapping, core, rows, ys, xs, (n_rows, n_cols))
-        no_data |= elsewhere
-        mout[elsewhere] |= MASK_DTYPE.type(int(MaskBit.OUTSIDE))
-    out[no_data] = np.nan
-    vout[no_data] = np.nan
+    planes = _input_planes(plan, image, variance, flags)
+    sums = _run_passes(plan, planes, out, (0, 0), 1.0, False, None)
+    correlation = _noise_correlation(plan, tile, sums, noise_correlation)
+    return ResampledImage(*out, y0, x0, 1.0, correlation)
 
-    jacobian = jacobian1 * jacobian2
-    correlation = float(noise_correlation) * jacobian / (weight2_1 * weight2_2)
-    log.debug(
-        "resampled onto %s: box y %d:%d x %d:%d, noise correlation %.3f",
-        tile.name,
-        y0,
-        y1,
-        x0,
-        x1,
-        correlation,
-    )
-    return ResampledImage(out, vout, mout, y0, x0, 1.0, correlation)
+
+def merge_onto_tile(
+    image: np.ndarray,
+    variance: np.ndarray,
+    flags: np.ndarray,
+    wcs: WCS,
+    tile: Tile,
+    planes: tuple[np.ndarray, np.ndarray, np.ndarray],
+    *,
+    noise_correlation: float = 1.0,
+    core: tuple[float, float, float, float] | None = None,
+    scratch: _Scratch | None = None,
+) -> tuple[int, float, float, float] | None:
+    """:func:`resample_to_tile`, merged straight into a night's tile planes.
+
+    ``planes`` (image, variance, flags of the whole tile: float32, float32,
+    uint16) take the resampled pixel where it has data (finite, positive
+    variance) and they have none yet (NaN image); their flags become the
+    new ones there, stay where they had data, and are OR-ed where neither
+    has.  ``scratch`` (a ``_Scratch``) keeps pass 1's planes between calls.
+
+    Returns
+    -------
+    (taken, inverse, pixel_factor, noise_correlation) or None
+        Pixels taken, the sum of their ``1 / variance``, and the factors of
+        :class:`ResampledImage`; None if the input does not reach the tile.
+    """
+    image, variance, flags = _checked(image, variance, flags)
+    plan = _plan(image.shape, wcs, tile, core)
+    if plan is None:
+        return None
+    pixel_factor = 1.0
+    origin = plan.box[0], plan.box[2]
+    inputs = _input_planes(plan, image, variance, flags)
+    sums = _run_passes(plan, inputs, planes, origin, pixel_factor, True, scratch)
+    correlation = _noise_correlation(plan, tile, sums, noise_correlation)
+    return sums[4], sums[5], pixel_factor, correlation

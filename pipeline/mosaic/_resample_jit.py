@@ -5,6 +5,14 @@ Each pass is one loop over the output pixels: the four Keys weights (the
 rectify stage's kernel, :func:`pipeline.stages.rectify._resample.keys_weights`),
 computed in float64 and rounded to float32 as the numpy passes did, then the
 image, variance and flag taps, in the same order.
+
+The sampling positions are not stored: each pass evaluates the
+tensor-product spline that gives them (``B @ table``, a sparse B-spline
+basis along the output lines times a table along them) one output line at a
+time, as :func:`tensor_grid` does for a whole grid (the same terms in the same
+order, so the same values).  Pass 2 stores its pixels straight into the
+caller's planes, or merges them into a night's tile planes
+(:func:`pipeline.mosaic.mosaic_tile`), with no intermediate copy.
 """
 
 from __future__ import annotations
@@ -28,29 +36,37 @@ def _keys(f, jacobian):
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
-def _sample(image, variance, flags, p, jacobian, outside):
-    """Image, variance, flags and sum of squared weights at position ``p`` of 1-D lines."""
-    base = np.floor(p)
-    w = _keys(p - base, jacobian)
-    first = int(base) - 1
-    n_line = image.shape[0]
+def _sample(image, variance, flags, row, column, along_rows, n_line, w, outside):
+    """Image, variance, flags and sum of squared weights of four taps along a line.
+
+    The taps are ``[row + k, column]`` (``along_rows``) or ``[row, column +
+    k]``, ``k = 0 ... 3``, on a line of ``n_line`` pixels from index 0.  A tap
+    beyond the line adds the ``outside`` flag where its weight is non-zero;
+    one of zero weight adds nothing.  The planes hold finite values, so
+    ``0 x value`` adds zero.
+    """
+    first = row if along_rows else column
     o = np.float32(0.0)
     vo = np.float32(0.0)
     mo = np.uint16(0)
     sum_w2 = 0.0
+    inside = first >= 0 and first + 3 < n_line
     for k in range(4):
         wk = w[k]
-        if wk == 0:
-            continue
-        line = first + k
-        if 0 <= line < n_line:
-            o += wk * image[line]
-            w2 = wk * wk
-            vo += w2 * variance[line]
-            sum_w2 += w2
-            mo |= flags[line]
-        else:
-            mo |= outside
+        if not inside:
+            if wk == 0:
+                continue
+            if not 0 <= first + k < n_line:
+                mo |= outside
+                continue
+        y = row + k if along_rows else row
+        x = column if along_rows else column + k
+        o += wk * image[y, x]
+        w2 = wk * wk
+        vo += w2 * variance[y, x]
+        sum_w2 += w2
+        if wk != 0:
+            mo |= flags[y, x]
     return o, vo, mo, sum_w2
 
 
@@ -66,22 +82,42 @@ def _slope(before, here, after, at_start, at_end):
     return abs(after - before) / 2.0
 
 
-@numba.njit(cache=True, nogil=True)
-def resample_rows(image, variance, flags, positions, outside):
-    """Pass along axis 1: output ``[r, j]`` samples ``image[r, positions[r, j]]``.
+@numba.njit(cache=True, nogil=True, inline="always")
+def _grid_line(grid, i, shift, line):
+    """Line ``i`` of the spline grid ``(indptr, indices, data, table)`` minus ``shift``."""
+    indptr, indices, data, table = grid
+    n = line.size
+    for j in range(n):
+        line[j] = 0.0
+    for p in range(indptr[i], indptr[i + 1]):
+        weight = data[p]
+        row = indices[p]
+        for j in range(n):
+            line[j] += weight * table[row, j]
+    if shift != 0.0:
+        for j in range(n):
+            line[j] -= shift
 
-    The weights are multiplied by the Jacobian ``|d positions / d j|``.
-    Returns image, variance, flags (shape ``positions.shape``), the sum over
-    the output of the sum of the squared weights and the sum of the Jacobians.
+
+@numba.njit(cache=True, nogil=True)
+def resample_rows(image, variance, flags, grid, shift, outside, out, vout, mout):
+    """Pass along axis 1: output ``[r, j]`` samples ``image[r, position]``.
+
+    ``position`` is line ``r`` of the spline ``grid`` (see :func:`_grid_line`)
+    minus ``shift``; the weights are multiplied by the Jacobian
+    ``|d position / d j|``.  ``image``, ``variance``, ``flags`` are C-ordered
+    rows (``image[r]`` contiguous); ``out``, ``vout``, ``mout`` (shape
+    ``(n_rows, n_out)``) are overwritten.  Returns the sum over the output of
+    the sum of the squared weights and the sum of the Jacobians.
     """
-    n_rows, n_out = positions.shape
-    out = np.zeros((n_rows, n_out), np.float32)
-    vout = np.zeros((n_rows, n_out), np.float32)
-    mout = np.zeros((n_rows, n_out), np.uint16)
+    n_rows, n_out = out.shape
+    n_line = image.shape[1]
+    line = np.empty(n_out)
     sum_w2 = 0.0
     sum_jacobian = 0.0
     for r in range(n_rows):
-        line = positions[r]
+        _grid_line(grid, r, shift, line)
+        row_out, row_vout, row_mout = out[r], vout[r], mout[r]
         row_w2 = 0.0
         row_jacobian = 0.0
         for j in range(n_out):
@@ -89,38 +125,113 @@ def resample_rows(image, variance, flags, positions, outside):
                 line[max(j - 1, 0)], line[j], line[min(j + 1, n_out - 1)], j == 0, j == n_out - 1
             )
             row_jacobian += jacobian
-            out[r, j], vout[r, j], mout[r, j], w2 = _sample(
-                image[r], variance[r], flags[r], line[j], jacobian, outside
+            base = np.floor(line[j])
+            w = _keys(line[j] - base, jacobian)
+            o, vo, mo, w2 = _sample(
+                image, variance, flags, r, int(base) - 1, False, n_line, w, outside
             )
+            row_out[j], row_vout[j], row_mout[j] = o, vo, mo
             row_w2 += w2
         sum_w2 += row_w2
         sum_jacobian += row_jacobian
-    return out, vout, mout, sum_w2, sum_jacobian
+    return sum_w2, sum_jacobian
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _store(out, vout, mout, y, x, o, vo, mo, no_data, factor, merge):
+    """Store a pixel (NaN without data), or merge it into a night's planes.
+
+    Merging (``merge``): the pixel takes the new image and variance (times
+    ``factor``) where the new pixel has data (finite, positive variance) and
+    the planes have none yet; its flags become the new ones there, stay
+    where the planes had data, and are OR-ed where neither has.  Returns
+    whether the pixel was taken and ``1 / variance`` of it.
+    """
+    value = np.float32(np.nan) if no_data else o
+    v = np.float32(np.nan) if no_data else vo
+    if not merge:
+        out[y, x], vout[y, x], mout[y, x] = value, v, mo
+        return False, 0.0
+    v = v * factor
+    new = np.isfinite(value) and np.isfinite(v) and v > 0
+    if np.isfinite(out[y, x]):
+        return False, 0.0
+    if new:
+        out[y, x], vout[y, x], mout[y, x] = value, v, mo
+        return True, 1.0 / v
+    mout[y, x] |= mo
+    return False, 0.0
 
 
 @numba.njit(cache=True, nogil=True)
-def resample_columns(image, variance, flags, positions, outside):
-    """Pass along axis 0: output ``[i, c]`` samples ``image[positions[i, c], c]``.
+def resample_columns(image, variance, flags, grid, shift, core, box, settings, planes, origin):
+    """Pass along axis 0: output ``[i, c]`` samples ``image[position, c]``.
 
-    Returns as :func:`resample_rows` (the Jacobian ``|d positions / d i|``).
+    ``position`` is line ``i`` of the spline ``grid`` minus ``shift``; the
+    weights are multiplied by ``|d position / d i|``.  A pixel has no data
+    where a no-data flag reaches it, or (with a core) where its sampling
+    position, before the shift, and its input column (line ``i`` of the
+    spline ``core``) lie outside ``box = (y_lo, y_hi, x_lo, x_hi)``: it is
+    also flagged ``outside`` there.
+
+    ``settings`` is ``(outside, no_data_bits, use_core, factor, merge)`` and
+    ``planes`` ``(out, vout, mout)``: output pixel ``[i, c]`` goes to
+    ``[origin[0] + i, origin[1] + c]`` of them, stored or merged (see
+    :func:`_store`).  The output has ``grid``'s shape (lines x
+    ``image.shape[1]`` columns).  Returns the sums of the squared weights and
+    of the Jacobians over the output, the number of pixels taken and the sum
+    of their ``1 / variance`` (merging only).
     """
-    n_out, n_cols = positions.shape
-    out = np.zeros((n_out, n_cols), np.float32)
-    vout = np.zeros((n_out, n_cols), np.float32)
-    mout = np.zeros((n_out, n_cols), np.uint16)
+    outside, no_data_bits, use_core, factor, merge = settings
+    out, vout, mout = planes
+    y0, x0 = origin
+    y_lo, y_hi, x_lo, x_hi = box
+    n_out = grid[0].size - 1
+    n_line, n_cols = image.shape
+    before = np.empty(n_cols)
+    here = np.empty(n_cols)
+    after = np.empty(n_cols)
+    columns = np.empty(n_cols if use_core else 0)
+    _grid_line(grid, 0, shift, here)
+    if n_out > 1:
+        _grid_line(grid, 1, shift, after)
+    else:
+        after[:] = here
+    before[:] = here
     sum_w2 = 0.0
     sum_jacobian = 0.0
+    taken = 0
+    inverse = 0.0
     for i in range(n_out):
-        before = positions[max(i - 1, 0)]
-        after = positions[min(i + 1, n_out - 1)]
+        if i > 0:
+            before, here, after = here, after, before
+            if i + 1 < n_out:
+                _grid_line(grid, i + 1, shift, after)
+            else:
+                after[:] = here
+        if use_core:
+            _grid_line(core, i, 0.0, columns)
         for c in range(n_cols):
-            jacobian = _slope(before[c], positions[i, c], after[c], i == 0, i == n_out - 1)
+            p = here[c]
+            jacobian = _slope(before[c], p, after[c], i == 0, i == n_out - 1)
             sum_jacobian += jacobian
-            out[i, c], vout[i, c], mout[i, c], w2 = _sample(
-                image[:, c], variance[:, c], flags[:, c], positions[i, c], jacobian, outside
+            base = np.floor(p)
+            w = _keys(p - base, jacobian)
+            o, vo, mo, w2 = _sample(
+                image, variance, flags, int(base) - 1, c, True, n_line, w, outside
             )
             sum_w2 += w2
-    return out, vout, mout, sum_w2, sum_jacobian
+            no_data = (mo & no_data_bits) != 0
+            if use_core:
+                row = p + shift
+                column = columns[c]
+                if not (row >= y_lo and row < y_hi and column >= x_lo and column < x_hi):
+                    mo |= outside
+                    no_data = True
+            took, inv = _store(out, vout, mout, y0 + i, x0 + c, o, vo, mo, no_data, factor, merge)
+            taken += took
+            inverse += inv
+    return sum_w2, sum_jacobian, taken, inverse
 
 
 @numba.njit(cache=True, nogil=True)
