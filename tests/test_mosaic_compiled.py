@@ -12,6 +12,7 @@ from scipy.interpolate import RectBivariateSpline
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic import coadd, resample_to_tile, weighted_median
 from pipeline.mosaic._resample import _grid_values, _SplineGrid, merge_onto_tile
+from pipeline.mosaic._coadd_jit import median_and_noise
 from pipeline.mosaic._resample_jit import resample_columns, resample_rows
 from tests._mosaic_reference import (
     coadd_numpy,
@@ -93,6 +94,20 @@ def test_compiled_weighted_median_matches_numpy(n):
     assert ours.dtype == theirs.dtype
     # the median is one of the values: equal, or NaN at the same pixels
     np.testing.assert_array_equal(ours, theirs)
+    # the co-add's median (pairwise comparisons over runs of pixels, not a sort)
+    valid = weights > 0
+    variances = rng.uniform(1.0, 3.0, values.shape).astype(np.float32)
+    m = values[0].size
+    median, noise2, count = np.empty(m, np.float32), np.empty(m), np.empty(m, np.uint16)
+    median_and_noise(
+        *(a.reshape(n, -1) for a in (values, weights, valid, variances)), median, noise2, count
+    )
+    np.testing.assert_array_equal(median.reshape(theirs.shape), theirs)
+    np.testing.assert_array_equal(count.reshape(theirs.shape), valid.sum(axis=0))
+    inverse = np.where(valid, 1.0 / variances.astype(float), 0.0).sum(axis=0)
+    expected = np.where(inverse > 0, 0.5 * np.pi / np.where(inverse > 0, inverse, 1.0), 0.0)
+    # float64 sums of the same terms in the same order
+    np.testing.assert_allclose(noise2.reshape(theirs.shape), expected, rtol=1e-12)
 
 
 def test_compiled_coadd_matches_numpy():

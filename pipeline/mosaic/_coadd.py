@@ -356,13 +356,17 @@ def _weighted_inputs(images, variances, flags, scale, match_levels, ignore_flags
     scale = np.ones(n_nights) if scale is None else np.asarray(scale, dtype=float)
     planes = (n_nights, -1)
     images = np.ascontiguousarray(images).reshape(planes)
-    valid, images = validity(
+    valid = np.empty(images.shape, np.bool_)
+    cleaned = images if overwrite_input else np.empty_like(images)
+    validity(
         images,
         np.ascontiguousarray(variances).reshape(planes),
         np.ascontiguousarray(flags, MASK_DTYPE).reshape(planes),
         MASK_DTYPE.type(_flag_bits(ignore_flags)),
-        images if overwrite_input else np.empty_like(images),
+        cleaned,
+        valid,
     )
+    images = cleaned
     valid, images = valid.reshape(variances.shape), images.reshape(variances.shape)
     weights = np.empty(images.shape, np.float32)
     for i in range(n_nights):
@@ -460,21 +464,21 @@ def coadd(
     )
     n_nights, tile_shape = images.shape[0], images.shape[1:]
     # numba is imported on first use, as for the resampler
-    from pipeline.mosaic._coadd_jit import (
-        combine,
-        grow_rejections,
-        median_and_noise,
-        reject,
-    )
+    from pipeline.mosaic._coadd_jit import combine, exclude, median_and_noise, reject
 
     planes = (n_nights, -1)
     images = np.ascontiguousarray(images).reshape(planes)
     variances = np.ascontiguousarray(variances).reshape(planes)
     weights = weights.reshape(planes)
-    valid = valid.reshape(planes)
-    rejected = np.zeros(images.shape, bool)
+    # the kept nights: valid, less the (grown) rejections, cleared in place
+    kept = valid.reshape(planes)
+    rejected = np.zeros(n_nights, np.int64)
+    m = images.shape[1]
+    # outputs are allocated by numpy (which asks for huge pages: far fewer
+    # page faults than the compiled code's own allocations)
     if n_nights >= min_nights:
-        median, noise2, count = median_and_noise(images, weights, valid, variances)
+        median, noise2, count = np.empty(m, images.dtype), np.empty(m), np.empty(m, np.uint16)
+        median_and_noise(images, weights, kept, variances, median, noise2, count)
         sky = _sky_level(median.reshape(tile_shape))
         # the noise of a median is ~sqrt(pi/2) times that of the mean (common practice)
         arguments = (
@@ -483,23 +487,28 @@ def coadd(
             int(min_nights),
             max(int(source_radius), 0),
         )
-        rejected = reject(
-            images, variances, valid, median, noise2, count, tile_shape[1], sky, arguments
-        )
-        if grow > 0 and rejected.any():
-            rejected = grow_rejections(
-                rejected.reshape(n_nights, *tile_shape), valid.reshape(n_nights, *tile_shape), grow
-            ).reshape(planes)
-    kept = valid & ~rejected
-    image, weight, coverage, used = combine(
-        images, variances, np.ascontiguousarray(flags, MASK_DTYPE).reshape(planes), weights, kept
+        hits = reject(images, variances, kept, median, noise2, count, tile_shape[1], sky, arguments)
+        del median, noise2, count
+        rejected = exclude(kept, hits, tile_shape[1], max(int(grow), 0))
+    image, weight = np.empty(m, np.float32), np.empty(m, np.float32)
+    coverage, used = np.empty(m, MASK_DTYPE), np.empty(m, MASK_DTYPE)
+    combine(
+        images,
+        variances,
+        np.ascontiguousarray(flags, MASK_DTYPE).reshape(planes),
+        weights,
+        kept,
+        image,
+        weight,
+        coverage,
+        used,
     )
     return CoaddedPlanes(
         image=image.reshape(tile_shape),
         weight=weight.reshape(tile_shape),
         coverage=coverage.reshape(tile_shape),
         flags=used.reshape(tile_shape),
-        rejected=rejected.sum(axis=1),
+        rejected=rejected,
         offsets=offsets,
     )
 

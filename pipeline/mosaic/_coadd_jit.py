@@ -17,7 +17,7 @@ __all__ = [
     "bilinear_weights",
     "block_medians",
     "combine",
-    "grow_rejections",
+    "exclude",
     "median_and_noise",
     "reject",
     "shift_levels",
@@ -68,34 +68,72 @@ def weighted_median_flat(values, weights):
     return out
 
 
+#: Pixels handled at once by the loops over ``(n, m)`` planes: each plane is
+#: read in runs of this many pixels (planes of 2**k pixels lie 2**k * 4 bytes
+#: apart, so reading one pixel of every night at a time maps every read to one
+#: cache set), and the per-pixel sums over nights are SIMD loops over the run.
+CHUNK = 512
+
+
 @numba.njit(cache=True, nogil=True)
-def median_and_noise(images, weights, valid, variances):
+def median_and_noise(images, weights, valid, variances, median, noise2, count):
     """Per pixel of ``(n, m)`` planes: weighted median, ``V_m = (pi/2) / sum(1/V_i)``, count.
 
-    ``V_m`` is 0 where no night is valid.
+    Written into ``median`` (the images' dtype), ``noise2`` (float64) and
+    ``count`` (uint16), shape (m,); ``V_m`` is 0 where no night is valid.  The median is the least value
+    whose nights at or below it hold half the total weight: the lowest value
+    at which the cumulative weight of the sorted values reaches half (as
+    :func:`weighted_median_flat`), found by comparing every pair of nights
+    instead of sorting (the same value while the float64 sums of the float32
+    weights are exact: weights within a factor ~2**25 of one another).
     """
     n, m = images.shape
-    median = np.empty(m, images.dtype)  # one of the values
-    noise2 = np.empty(m, np.float64)
-    count = np.empty(m, np.uint16)
-    order_v = np.empty(n, np.float64)
-    order_w = np.empty(n, np.float64)
-    for p in range(m):
-        median[p] = _median_of(images, weights, p, order_v, order_w)
-        inverse = 0.0
-        c = 0
+    w = np.empty((n, CHUNK), np.float64)
+    x = np.empty((n, CHUNK), images.dtype)
+    total = np.empty(CHUNK, np.float64)
+    below = np.empty(CHUNK, np.float64)
+    best = np.empty(CHUNK, images.dtype)
+    inverse = np.empty(CHUNK, np.float64)
+    counted = np.empty(CHUNK, np.uint16)
+    for p0 in range(0, m, CHUNK):
+        size = min(CHUNK, m - p0)
+        total[:size] = 0.0
+        inverse[:size] = 0.0
+        counted[:size] = 0
         for i in range(n):
-            if valid[i, p]:
-                inverse += 1.0 / variances[i, p]
-                c += 1
-        noise2[p] = 0.5 * math.pi / inverse if inverse > 0 else 0.0
-        count[p] = c
-    return median, noise2, count
+            for q in range(size):
+                wi = np.float64(weights[i, p0 + q])
+                wi = wi if wi > 0 else 0.0
+                w[i, q] = wi
+                x[i, q] = images[i, p0 + q]
+                total[q] += wi
+                ok = valid[i, p0 + q]
+                inverse[q] += 1.0 / variances[i, p0 + q] if ok else 0.0
+                counted[q] += ok
+        best[:size] = np.inf
+        for j in range(n):
+            for q in range(size):
+                below[q] = 0.0
+            for i in range(n):
+                for q in range(size):
+                    below[q] += w[i, q] * (x[i, q] <= x[j, q])
+            for q in range(size):
+                v = x[j, q]
+                take = (w[j, q] > 0) & (below[q] >= 0.5 * total[q]) & (v < best[q])
+                best[q] = v if take else best[q]
+        for q in range(size):
+            half = 0.5 * total[q]
+            median[p0 + q] = best[q] if half > 0 else np.nan
+            noise2[p0 + q] = 0.5 * math.pi / inverse[q] if inverse[q] > 0 else 0.0
+            count[p0 + q] = counted[q]
 
 
 @numba.njit(cache=True, nogil=True)
 def reject(images, variances, valid, median, noise2, count, n_x, sky, args):
-    """Outliers of ``(n, m)`` planes (``m`` pixels of rows ``n_x`` long).
+    """Outliers of ``(n, m)`` planes (``m`` pixels of rows ``n_x`` long), as flat indices.
+
+    Returns the indices ``i * m + p`` of the rejected night ``i`` of pixel
+    ``p``, increasing.
 
     Night ``i`` of pixel ``p`` is an outlier where ``(x - median)**2 >
     reject_sigma**2 * (V_i + V_m + (source_tolerance * S)**2)``, ``S`` the
@@ -108,99 +146,125 @@ def reject(images, variances, valid, median, noise2, count, n_x, sky, args):
     reject_sigma, source_tolerance, min_nights, radius = args
     n, m = images.shape
     n_y = m // n_x
-    rejected = np.zeros((n, m), np.bool_)
+    hits = np.empty(1024, np.int64)
+    n_hits = 0
     limit = reject_sigma * reject_sigma
-    for p in range(m):
-        if count[p] < min_nights:
-            continue
-        suspect = False
+    suspect = np.empty(CHUNK, np.bool_)
+    for p0 in range(0, m, CHUNK):
+        size = min(CHUNK, m - p0)
+        suspect[:size] = False
         for i in range(n):
-            if valid[i, p]:
+            for q in range(size):
+                p = p0 + q
                 d = images[i, p] - median[p]
-                suspect |= d * d > limit * (variances[i, p] + noise2[p])
-        if not suspect:
-            continue
+                beyond = d * d > limit * (variances[i, p] + noise2[p])
+                suspect[q] |= valid[i, p] & beyond
+        for q in range(size):
+            p = p0 + q
+            if not suspect[q] or count[p] < min_nights:
+                continue
+            y = p // n_x
+            x = p - y * n_x
+            signal = 0.0
+            for yy in range(max(y - radius, 0), min(y + radius + 1, n_y)):
+                for xx in range(max(x - radius, 0), min(x + radius + 1, n_x)):
+                    r = yy * n_x + xx
+                    s = median[r] - sky
+                    if s > 3.0 * math.sqrt(noise2[r]) and s > signal:
+                        signal = s
+            allowance = noise2[p] + (source_tolerance * signal) ** 2
+            for i in range(n):
+                if valid[i, p]:
+                    d = images[i, p] - median[p]
+                    if d * d > limit * (variances[i, p] + allowance):
+                        if n_hits == hits.size:
+                            hits = np.concatenate((hits, np.empty(hits.size, np.int64)))
+                        hits[n_hits] = i * m + p
+                        n_hits += 1
+    return np.sort(hits[:n_hits])
+
+
+@numba.njit(cache=True, nogil=True)
+def exclude(valid, hits, n_x, grow):
+    """Clear ``valid`` (``(n, m)``, rows ``n_x`` long) in squares of ``2 grow + 1`` px around hits.
+
+    ``hits`` are flat indices ``i * m + p`` (:func:`reject`'s).  Returns the
+    number of pixels cleared in each night: the grown rejections within
+    ``valid``.
+    """
+    n, m = valid.shape
+    n_y = m // n_x
+    cleared = np.zeros(n, np.int64)
+    for h in hits:
+        i = h // m
+        p = h - i * m
         y = p // n_x
         x = p - y * n_x
-        signal = 0.0
-        for yy in range(max(y - radius, 0), min(y + radius + 1, n_y)):
-            for xx in range(max(x - radius, 0), min(x + radius + 1, n_x)):
+        for yy in range(max(y - grow, 0), min(y + grow + 1, n_y)):
+            for xx in range(max(x - grow, 0), min(x + grow + 1, n_x)):
                 q = yy * n_x + xx
-                s = median[q] - sky
-                if s > 3.0 * math.sqrt(noise2[q]) and s > signal:
-                    signal = s
-        allowance = noise2[p] + (source_tolerance * signal) ** 2
-        for i in range(n):
-            if valid[i, p]:
-                d = images[i, p] - median[p]
-                rejected[i, p] = d * d > limit * (variances[i, p] + allowance)
-    return rejected
+                if valid[i, q]:
+                    valid[i, q] = False
+                    cleared[i] += 1
+    return cleared
 
 
 @numba.njit(cache=True, nogil=True)
-def grow_rejections(rejected, valid, grow):
-    """Rejections of ``(n, n_y, n_x)`` grown to squares of ``2 grow + 1`` px, within ``valid``."""
-    n, n_y, n_x = rejected.shape
-    out = np.zeros_like(rejected)
-    for i in range(n):
-        for y in range(n_y):
-            for x in range(n_x):
-                if rejected[i, y, x]:
-                    for yy in range(max(y - grow, 0), min(y + grow + 1, n_y)):
-                        for xx in range(max(x - grow, 0), min(x + grow + 1, n_x)):
-                            out[i, yy, xx] = valid[i, yy, xx]
-    return out
-
-
-@numba.njit(cache=True, nogil=True)
-def combine(images, variances, flags, weights, kept):
+def combine(images, variances, flags, weights, kept, image, weight, coverage, out_flags):
     """Weighted mean of ``(n, m)`` planes over the kept nights.
 
-    Returns image (NaN without data), weight ``(sum w)**2 / sum(w**2 V)``
-    (0 without data), coverage and flags (OR of the kept nights', of all
-    nights' where none is kept), each of shape (m,).
+    Writes image (float32, NaN without data), weight ``(sum w)**2 / sum(w**2
+    V)`` (float32, 0 without data), coverage and flags (uint16: OR of the
+    kept nights', of all nights' where none is kept), each of shape (m,).
     """
     n, m = images.shape
-    image = np.empty(m, np.float32)
-    weight = np.empty(m, np.float32)
-    coverage = np.empty(m, np.uint16)
-    out_flags = np.empty(m, np.uint16)
-    for p in range(m):
-        total = 0.0
-        weighted = 0.0
-        spread = 0.0
-        used = np.uint16(0)
-        every = np.uint16(0)
-        c = 0
+    total = np.empty(CHUNK, np.float64)
+    weighted = np.empty(CHUNK, np.float64)
+    spread = np.empty(CHUNK, np.float64)
+    used = np.empty(CHUNK, np.uint16)
+    every = np.empty(CHUNK, np.uint16)
+    counted = np.empty(CHUNK, np.uint16)
+    for p0 in range(0, m, CHUNK):
+        size = min(CHUNK, m - p0)
+        total[:size] = 0.0
+        weighted[:size] = 0.0
+        spread[:size] = 0.0
+        used[:size] = 0
+        every[:size] = 0
+        counted[:size] = 0
         for i in range(n):
-            every |= flags[i, p]
-            if kept[i, p]:
-                w = weights[i, p]
-                total += w
-                weighted += w * images[i, p]
-                spread += w * w * variances[i, p]
-                used |= flags[i, p]
-                c += 1
-        coverage[p] = c
-        if total > 0:
-            image[p] = weighted / total
-            weight[p] = total * total / spread if spread > 0 else 0.0
-            out_flags[p] = used
-        else:
-            image[p] = np.nan
-            weight[p] = 0.0
-            out_flags[p] = every
-    return image, weight, coverage, out_flags
+            for q in range(size):
+                p = p0 + q
+                k = kept[i, p]
+                f = flags[i, p]
+                every[q] |= f
+                # the images are finite (0 where invalid): 0 x image adds zero
+                w = weights[i, p] if k else np.float32(0.0)
+                total[q] += w
+                weighted[q] += w * images[i, p]
+                spread[q] += w * w * variances[i, p] if k else 0.0
+                used[q] |= f if k else np.uint16(0)
+                counted[q] += k
+        for q in range(size):
+            p = p0 + q
+            coverage[p] = counted[q]
+            if total[q] > 0:
+                image[p] = weighted[q] / total[q]
+                weight[p] = total[q] * total[q] / spread[q] if spread[q] > 0 else 0.0
+                out_flags[p] = used[q]
+            else:
+                image[p] = np.nan
+                weight[p] = 0.0
+                out_flags[p] = every[q]
 
 
 @numba.njit(cache=True, nogil=True)
-def validity(images, variances, flags, ignore_bits, cleaned):
+def validity(images, variances, flags, ignore_bits, cleaned, valid):
     """``valid`` (finite, positive variance, no ignored flag); ``cleaned``: images, 0 elsewhere.
 
-    ``cleaned`` may be ``images`` itself.
+    ``cleaned`` may be ``images`` itself; both are written.
     """
     n, m = images.shape
-    valid = np.empty((n, m), np.bool_)
     for i in range(n):
         for p in range(m):
             x = images[i, p]
@@ -208,7 +272,6 @@ def validity(images, variances, flags, ignore_bits, cleaned):
             ok = np.isfinite(x) and np.isfinite(v) and v > 0 and (flags[i, p] & ignore_bits) == 0
             valid[i, p] = ok
             cleaned[i, p] = x if ok else np.float32(0.0)
-    return valid, cleaned
 
 
 @numba.njit(cache=True, nogil=True)
@@ -273,20 +336,23 @@ def bilinear_weights(grid, block, valid, scale, out):
     """
     n_y, n_x = valid.shape
     n_by, n_bx = grid.shape
+    # every row of block centres interpolated along x first (the same terms
+    # as interpolating at each pixel)
+    along = np.empty((n_by, n_x))
+    for x in range(n_x):
+        u = min(max((x + 0.5) / block - 0.5, 0.0), n_bx - 1.0)
+        j = min(int(u), n_bx - 2)
+        fx = u - j
+        for k in range(n_by):
+            along[k, x] = (1.0 - fx) * grid[k, j] + fx * grid[k, j + 1]
     for y in range(n_y):
         t = min(max((y + 0.5) / block - 0.5, 0.0), n_by - 1.0)
         k = min(int(t), n_by - 2)
         fy = t - k
+        low, high, ok, row = along[k], along[k + 1], valid[y], out[y]
         for x in range(n_x):
-            if not valid[y, x]:
-                out[y, x] = 0.0
-                continue
-            u = min(max((x + 0.5) / block - 0.5, 0.0), n_bx - 1.0)
-            j = min(int(u), n_bx - 2)
-            fx = u - j
-            low = (1.0 - fx) * grid[k, j] + fx * grid[k, j + 1]
-            high = (1.0 - fx) * grid[k + 1, j] + fx * grid[k + 1, j + 1]
-            out[y, x] = scale / ((1.0 - fy) * low + fy * high)
+            b = (1.0 - fy) * low[x] + fy * high[x]
+            row[x] = scale / b if ok[x] else 0.0
     return out
 
 
