@@ -11,8 +11,8 @@ from scipy.interpolate import RectBivariateSpline
 
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic import coadd, resample_to_tile, weighted_median
-from pipeline.mosaic._resample import _grid_values, _SplineGrid, merge_onto_tile
 from pipeline.mosaic._coadd_jit import median_and_noise
+from pipeline.mosaic._resample import _grid_values, _SplineGrid, merge_onto_tile
 from pipeline.mosaic._resample_jit import resample_columns, resample_rows
 from tests._mosaic_reference import (
     coadd_numpy,

@@ -80,8 +80,9 @@ def median_and_noise(images, weights, valid, variances, median, noise2, count):
     """Per pixel of ``(n, m)`` planes: weighted median, ``V_m = (pi/2) / sum(1/V_i)``, count.
 
     Written into ``median`` (the images' dtype), ``noise2`` (float64) and
-    ``count`` (uint16), shape (m,); ``V_m`` is 0 where no night is valid.  The median is the least value
-    whose nights at or below it hold half the total weight: the lowest value
+    ``count`` (uint16), shape (m,); ``V_m`` is 0 where no night is valid.
+    The median is the least value whose nights at or below it hold half the
+    total weight: the lowest value
     at which the cumulative weight of the sorted values reaches half (as
     :func:`weighted_median_flat`), found by comparing every pair of nights
     instead of sorting (the same value while the float64 sums of the float32
@@ -90,11 +91,9 @@ def median_and_noise(images, weights, valid, variances, median, noise2, count):
     n, m = images.shape
     w = np.empty((n, CHUNK), np.float64)
     x = np.empty((n, CHUNK), images.dtype)
-    total = np.empty(CHUNK, np.float64)
-    below = np.empty(CHUNK, np.float64)
+    total, below, inverse = np.empty((3, CHUNK), np.float64)
     best = np.empty(CHUNK, images.dtype)
-    inverse = np.empty(CHUNK, np.float64)
-    counted = np.empty(CHUNK, np.uint16)
+    counted = np.zeros(CHUNK, np.uint16)
     for p0 in range(0, m, CHUNK):
         size = min(CHUNK, m - p0)
         total[:size] = 0.0
@@ -218,12 +217,8 @@ def combine(images, variances, flags, weights, kept, image, weight, coverage, ou
     kept nights', of all nights' where none is kept), each of shape (m,).
     """
     n, m = images.shape
-    total = np.empty(CHUNK, np.float64)
-    weighted = np.empty(CHUNK, np.float64)
-    spread = np.empty(CHUNK, np.float64)
-    used = np.empty(CHUNK, np.uint16)
-    every = np.empty(CHUNK, np.uint16)
-    counted = np.empty(CHUNK, np.uint16)
+    total, weighted, spread = np.empty((3, CHUNK), np.float64)
+    used, every, counted = np.empty((3, CHUNK), np.uint16)
     for p0 in range(0, m, CHUNK):
         size = min(CHUNK, m - p0)
         total[:size] = 0.0
