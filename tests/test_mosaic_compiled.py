@@ -99,9 +99,8 @@ def test_compiled_weighted_median_matches_numpy(n):
     variances = rng.uniform(1.0, 3.0, values.shape).astype(np.float32)
     m = values[0].size
     median, noise2, count = np.empty(m, np.float32), np.empty(m), np.empty(m, np.uint16)
-    median_and_noise(
-        *(a.reshape(n, -1) for a in (values, weights, valid, variances)), median, noise2, count
-    )
+    planes = (a.reshape(n, -1) for a in (values, weights, valid, variances))
+    median_and_noise(*planes, 16.0, median, noise2, count)
     np.testing.assert_array_equal(median.reshape(theirs.shape), theirs)
     np.testing.assert_array_equal(count.reshape(theirs.shape), valid.sum(axis=0))
     inverse = np.where(valid, 1.0 / variances.astype(float), 0.0).sum(axis=0)

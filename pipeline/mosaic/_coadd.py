@@ -478,7 +478,8 @@ def coadd(
     # page faults than the compiled code's own allocations)
     if n_nights >= min_nights:
         median, noise2, count = np.empty(m, images.dtype), np.empty(m), np.empty(m, np.uint16)
-        median_and_noise(images, weights, kept, variances, median, noise2, count)
+        limit = float(reject_sigma) * float(reject_sigma)
+        suspects = median_and_noise(images, weights, kept, variances, limit, median, noise2, count)
         sky = _sky_level(median.reshape(tile_shape))
         # the noise of a median is ~sqrt(pi/2) times that of the mean (common practice)
         arguments = (
@@ -487,7 +488,9 @@ def coadd(
             int(min_nights),
             max(int(source_radius), 0),
         )
-        hits = reject(images, variances, kept, median, noise2, count, tile_shape[1], sky, arguments)
+        hits = reject(
+            images, variances, kept, median, noise2, count, tile_shape[1], sky, arguments, suspects
+        )
         del median, noise2, count
         rejected = exclude(kept, hits, tile_shape[1], max(int(grow), 0))
     image, weight = np.empty(m, np.float32), np.empty(m, np.float32)

@@ -2,8 +2,10 @@
 
 Kept apart so that numba is imported only when a tile is first co-added.
 Each loop visits a pixel's nights once (the numpy version made a whole-array
-pass per operation and sorted with a compare-exchange network); the
-arithmetic is that of :func:`pipeline.mosaic.coadd`'s module docstring.
+pass per operation and sorted with a compare-exchange network), reading the
+night planes in runs of ``CHUNK`` pixels; the arithmetic is that of
+:func:`pipeline.mosaic.coadd`'s module docstring.  Tile-sized outputs are
+allocated by the caller with numpy.
 """
 
 from __future__ import annotations
@@ -76,13 +78,17 @@ CHUNK = 512
 
 
 @numba.njit(cache=True, nogil=True)
-def median_and_noise(images, weights, valid, variances, median, noise2, count):
+def median_and_noise(images, weights, valid, variances, limit, median, noise2, count):
     """Per pixel of ``(n, m)`` planes: weighted median, ``V_m = (pi/2) / sum(1/V_i)``, count.
 
     Written into ``median`` (the images' dtype), ``noise2`` (float64) and
     ``count`` (uint16), shape (m,); ``V_m`` is 0 where no night is valid.
+    Returns the suspects: the pixels, increasing, where a valid night lies
+    beyond the rejection limit before any allowance for sources, ``(x -
+    median)**2 > limit (V_i + V_m)`` (:func:`reject` looks at these alone).
+
     The median is the least value whose nights at or below it hold half the
-    total weight: the lowest value
+    total weight, i.e. the lowest value
     at which the cumulative weight of the sorted values reaches half (as
     :func:`weighted_median_flat`), found by comparing every pair of nights
     instead of sorting (the same value while the float64 sums of the float32
@@ -94,6 +100,9 @@ def median_and_noise(images, weights, valid, variances, median, noise2, count):
     total, below, inverse = np.empty((3, CHUNK), np.float64)
     best = np.empty(CHUNK, images.dtype)
     counted = np.zeros(CHUNK, np.uint16)
+    suspect = np.empty(CHUNK, np.bool_)
+    suspects = np.empty(1024, np.int64)
+    n_suspects = 0
     for p0 in range(0, m, CHUNK):
         size = min(CHUNK, m - p0)
         total[:size] = 0.0
@@ -125,10 +134,30 @@ def median_and_noise(images, weights, valid, variances, median, noise2, count):
             median[p0 + q] = best[q] if half > 0 else np.nan
             noise2[p0 + q] = 0.5 * math.pi / inverse[q] if inverse[q] > 0 else 0.0
             count[p0 + q] = counted[q]
+        suspect[:size] = False
+        for i in range(n):
+            for q in range(size):
+                p = p0 + q
+                d = x[i, q] - median[p]
+                beyond = d * d > limit * (variances[i, p] + noise2[p])
+                suspect[q] |= valid[i, p] & beyond
+        for q in range(size):
+            if suspect[q]:
+                suspects, n_suspects = _append(suspects, n_suspects, p0 + q)
+    return suspects[:n_suspects]
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _append(buffer, n, value):
+    """``buffer[n] = value``, doubling ``buffer`` when full; returns it and ``n + 1``."""
+    if n == buffer.size:
+        buffer = np.concatenate((buffer, np.empty(buffer.size, buffer.dtype)))
+    buffer[n] = value
+    return buffer, n + 1
 
 
 @numba.njit(cache=True, nogil=True)
-def reject(images, variances, valid, median, noise2, count, n_x, sky, args):
+def reject(images, variances, valid, median, noise2, count, n_x, sky, args, suspects):
     """Outliers of ``(n, m)`` planes (``m`` pixels of rows ``n_x`` long), as flat indices.
 
     Returns the indices ``i * m + p`` of the rejected night ``i`` of pixel
@@ -138,9 +167,10 @@ def reject(images, variances, valid, median, noise2, count, n_x, sky, args):
     reject_sigma**2 * (V_i + V_m + (source_tolerance * S)**2)``, ``S`` the
     highest significant signal ``median - sky`` (above ``3 sqrt(V_m)``;
     ``V_m = noise2``) within ``source_radius`` pixels (a square).  ``S`` is
-    needed only where a night lies beyond the limit without it, and is
-    computed there alone.  ``args`` is ``(reject_sigma, source_tolerance,
-    min_nights, source_radius)``.
+    needed only where a night lies beyond the limit without it (the
+    ``suspects`` of :func:`median_and_noise`), and is computed there alone.
+    ``args`` is ``(reject_sigma, source_tolerance, min_nights,
+    source_radius)``.
     """
     reject_sigma, source_tolerance, min_nights, radius = args
     n, m = images.shape
@@ -148,20 +178,8 @@ def reject(images, variances, valid, median, noise2, count, n_x, sky, args):
     hits = np.empty(1024, np.int64)
     n_hits = 0
     limit = reject_sigma * reject_sigma
-    suspect = np.empty(CHUNK, np.bool_)
-    for p0 in range(0, m, CHUNK):
-        size = min(CHUNK, m - p0)
-        suspect[:size] = False
-        for i in range(n):
-            for q in range(size):
-                p = p0 + q
-                d = images[i, p] - median[p]
-                beyond = d * d > limit * (variances[i, p] + noise2[p])
-                suspect[q] |= valid[i, p] & beyond
-        for q in range(size):
-            p = p0 + q
-            if not suspect[q] or count[p] < min_nights:
-                continue
+    for p in suspects:
+        if count[p] >= min_nights:
             y = p // n_x
             x = p - y * n_x
             signal = 0.0
@@ -176,10 +194,7 @@ def reject(images, variances, valid, median, noise2, count, n_x, sky, args):
                 if valid[i, p]:
                     d = images[i, p] - median[p]
                     if d * d > limit * (variances[i, p] + allowance):
-                        if n_hits == hits.size:
-                            hits = np.concatenate((hits, np.empty(hits.size, np.int64)))
-                        hits[n_hits] = i * m + p
-                        n_hits += 1
+                        hits, n_hits = _append(hits, n_hits, i * m + p)
     return np.sort(hits[:n_hits])
 
 

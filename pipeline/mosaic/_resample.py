@@ -32,10 +32,14 @@ Variance and flags
     :attr:`~pipeline.masks.MaskBit.OUTSIDE` where a tap falls beyond the input;
     pixels with a no-data bit are NaN.
 Compiled loops
-    Both passes, and the splines' evaluation on the tile grid, run in numba
-    (:mod:`pipeline.mosaic._resample_jit`, compiled on first use and cached);
-    ``tests/_mosaic_reference.py`` keeps the numpy passes they are checked
-    against.
+    Both passes run in numba (:mod:`pipeline.mosaic._resample_jit`,
+    compiled on first use and cached).  They evaluate the position splines
+    one output line at a time instead of storing them for the whole tile, and
+    pass 2 writes its pixels straight into the caller's planes
+    (:func:`merge_onto_tile` merges them into a night's tile planes for the
+    co-add); pass 1's planes are the only intermediate.
+    ``tests/_mosaic_reference.py`` keeps the numpy passes, with stored
+    positions and a separate merge, that they are checked against.
 Noise correlation
     Neighbouring output pixels share input pixels, so the variance of an
     aperture sum exceeds the sum of the variance plane over it.
