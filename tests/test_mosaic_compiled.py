@@ -99,14 +99,18 @@ def test_compiled_weighted_median_matches_numpy(n):
     variances = rng.uniform(1.0, 3.0, values.shape).astype(np.float32)
     m = values[0].size
     median, noise2, count = np.empty(m, np.float32), np.empty(m), np.empty(m, np.uint16)
-    planes = (a.reshape(n, -1) for a in (values, weights, valid, variances))
-    median_and_noise(*planes, 16.0, median, noise2, count)
+    images, weights, valid, variances = (
+        a.reshape(n, -1) for a in (values, weights, valid, variances)
+    )
+    planes = (images, variances, np.zeros(images.shape, MASK_DTYPE), weights)
+    combined = (np.empty(m, np.float32), np.empty(m, np.float32), *np.empty((2, m), MASK_DTYPE))
+    median_and_noise(planes, valid, 16.0, median, noise2, count, combined)
     np.testing.assert_array_equal(median.reshape(theirs.shape), theirs)
-    np.testing.assert_array_equal(count.reshape(theirs.shape), valid.sum(axis=0))
+    np.testing.assert_array_equal(count, valid.sum(axis=0))
     inverse = np.where(valid, 1.0 / variances.astype(float), 0.0).sum(axis=0)
     expected = np.where(inverse > 0, 0.5 * np.pi / np.where(inverse > 0, inverse, 1.0), 0.0)
     # float64 sums of the same terms in the same order
-    np.testing.assert_allclose(noise2.reshape(theirs.shape), expected, rtol=1e-12)
+    np.testing.assert_allclose(noise2, expected, rtol=1e-12)
 
 
 def test_compiled_coadd_matches_numpy():

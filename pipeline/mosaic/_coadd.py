@@ -476,10 +476,19 @@ def coadd(
     m = images.shape[1]
     # outputs are allocated by numpy (which asks for huge pages: far fewer
     # page faults than the compiled code's own allocations)
-    if n_nights >= min_nights:
+    image, weight = np.empty(m, np.float32), np.empty(m, np.float32)
+    coverage, used = np.empty(m, MASK_DTYPE), np.empty(m, MASK_DTYPE)
+    out = (image, weight, coverage, used)
+    flags = np.ascontiguousarray(flags, MASK_DTYPE).reshape(planes)
+    arrays = (images, variances, flags, weights)
+    if n_nights < min_nights:
+        combine(arrays, kept, out, np.empty(0, np.int64))
+    else:
+        # combined with every valid night kept as the median is found; the
+        # pixels whose nights the rejections clear are combined again
         median, noise2, count = np.empty(m, images.dtype), np.empty(m), np.empty(m, np.uint16)
         limit = float(reject_sigma) * float(reject_sigma)
-        suspects = median_and_noise(images, weights, kept, variances, limit, median, noise2, count)
+        suspects = median_and_noise(arrays, kept, limit, median, noise2, count, out)
         sky = _sky_level(median.reshape(tile_shape))
         # the noise of a median is ~sqrt(pi/2) times that of the mean (common practice)
         arguments = (
@@ -492,20 +501,9 @@ def coadd(
             images, variances, kept, median, noise2, count, tile_shape[1], sky, arguments, suspects
         )
         del median, noise2, count
-        rejected = exclude(kept, hits, tile_shape[1], max(int(grow), 0))
-    image, weight = np.empty(m, np.float32), np.empty(m, np.float32)
-    coverage, used = np.empty(m, MASK_DTYPE), np.empty(m, MASK_DTYPE)
-    combine(
-        images,
-        variances,
-        np.ascontiguousarray(flags, MASK_DTYPE).reshape(planes),
-        weights,
-        kept,
-        image,
-        weight,
-        coverage,
-        used,
-    )
+        rejected, touched = exclude(kept, hits, tile_shape[1], max(int(grow), 0))
+        if touched.size:
+            combine(arrays, kept, out, touched)
     return CoaddedPlanes(
         image=image.reshape(tile_shape),
         weight=weight.reshape(tile_shape),

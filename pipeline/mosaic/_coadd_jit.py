@@ -78,8 +78,13 @@ CHUNK = 512
 
 
 @numba.njit(cache=True, nogil=True)
-def median_and_noise(images, weights, valid, variances, limit, median, noise2, count):
+def median_and_noise(planes, valid, limit, median, noise2, count, out):
     """Per pixel of ``(n, m)`` planes: weighted median, ``V_m = (pi/2) / sum(1/V_i)``, count.
+
+    ``planes`` is ``(images, variances, flags, weights)``.  Each run of
+    pixels is also combined into ``out`` (:func:`combine` with every valid
+    night kept) while it is in the processor cache: only the pixels whose
+    nights a rejection clears need combining again.
 
     Written into ``median`` (the images' dtype), ``noise2`` (float64) and
     ``count`` (uint16), shape (m,); ``V_m`` is 0 where no night is valid.
@@ -94,7 +99,9 @@ def median_and_noise(images, weights, valid, variances, limit, median, noise2, c
     instead of sorting (the same value while the float64 sums of the float32
     weights are exact: weights within a factor ~2**25 of one another).
     """
+    images, variances, _, weights = planes
     n, m = images.shape
+    work = _combine_work()
     w = np.empty((n, CHUNK), np.float64)
     x = np.empty((n, CHUNK), images.dtype)
     total, below, inverse = np.empty((3, CHUNK), np.float64)
@@ -144,6 +151,7 @@ def median_and_noise(images, weights, valid, variances, limit, median, noise2, c
         for q in range(size):
             if suspect[q]:
                 suspects, n_suspects = _append(suspects, n_suspects, p0 + q)
+        _combine_run(planes, valid, p0, size, work, out)
     return suspects[:n_suspects]
 
 
@@ -203,12 +211,14 @@ def exclude(valid, hits, n_x, grow):
     """Clear ``valid`` (``(n, m)``, rows ``n_x`` long) in squares of ``2 grow + 1`` px around hits.
 
     ``hits`` are flat indices ``i * m + p`` (:func:`reject`'s).  Returns the
-    number of pixels cleared in each night: the grown rejections within
-    ``valid``.
+    number of pixels cleared in each night (the grown rejections within
+    ``valid``) and the pixels cleared in any night.
     """
     n, m = valid.shape
     n_y = m // n_x
     cleared = np.zeros(n, np.int64)
+    touched = np.empty(1024, np.int64)
+    n_touched = 0
     for h in hits:
         i = h // m
         p = h - i * m
@@ -220,52 +230,78 @@ def exclude(valid, hits, n_x, grow):
                 if valid[i, q]:
                     valid[i, q] = False
                     cleared[i] += 1
-    return cleared
+                    touched, n_touched = _append(touched, n_touched, q)
+    return cleared, touched[:n_touched]
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _combine_run(planes, kept, p0, size, work, out):
+    """:func:`combine` for pixels ``p0 ... p0 + size - 1`` (at most ``CHUNK``).
+
+    ``planes`` is ``(images, variances, flags, weights)``, ``work`` a pair of
+    (3, CHUNK) float64 and uint16 buffers, ``out`` ``(image, weight,
+    coverage, flags)``.
+    """
+    images, variances, flags, weights = planes
+    image, weight, coverage, out_flags = out
+    total, weighted, spread = work[0][0], work[0][1], work[0][2]
+    used, every, counted = work[1][0], work[1][1], work[1][2]
+    total[:size] = 0.0
+    weighted[:size] = 0.0
+    spread[:size] = 0.0
+    used[:size] = 0
+    every[:size] = 0
+    counted[:size] = 0
+    for i in range(images.shape[0]):
+        for q in range(size):
+            p = p0 + q
+            k = kept[i, p]
+            f = flags[i, p]
+            every[q] |= f
+            # the images are finite (0 where invalid): 0 x image adds zero
+            w = weights[i, p] if k else np.float32(0.0)
+            total[q] += w
+            weighted[q] += w * images[i, p]
+            spread[q] += w * w * variances[i, p] if k else 0.0
+            used[q] |= f if k else np.uint16(0)
+            counted[q] += k
+    for q in range(size):
+        p = p0 + q
+        coverage[p] = counted[q]
+        if total[q] > 0:
+            image[p] = weighted[q] / total[q]
+            weight[p] = total[q] * total[q] / spread[q] if spread[q] > 0 else 0.0
+            out_flags[p] = used[q]
+        else:
+            image[p] = np.nan
+            weight[p] = 0.0
+            out_flags[p] = every[q]
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _combine_work():
+    return np.empty((3, CHUNK), np.float64), np.empty((3, CHUNK), np.uint16)
 
 
 @numba.njit(cache=True, nogil=True)
-def combine(images, variances, flags, weights, kept, image, weight, coverage, out_flags):
+def combine(planes, kept, out, pixels):
     """Weighted mean of ``(n, m)`` planes over the kept nights.
 
-    Writes image (float32, NaN without data), weight ``(sum w)**2 / sum(w**2
-    V)`` (float32, 0 without data), coverage and flags (uint16: OR of the
-    kept nights', of all nights' where none is kept), each of shape (m,).
+    ``planes`` is ``(images, variances, flags, weights)``.  Writes into
+    ``out = (image, weight, coverage, flags)``, each of shape (m,): image
+    (float32, NaN without data), weight ``(sum w)**2 / sum(w**2 V)``
+    (float32, 0 without data), coverage and flags (uint16: OR of the kept
+    nights', of all nights' where none is kept), at every pixel, or at
+    ``pixels`` alone if it is not empty.
     """
-    n, m = images.shape
-    total, weighted, spread = np.empty((3, CHUNK), np.float64)
-    used, every, counted = np.empty((3, CHUNK), np.uint16)
+    m = kept.shape[1]
+    work = _combine_work()
+    if pixels.size:
+        for p in pixels:
+            _combine_run(planes, kept, p, 1, work, out)
+        return
     for p0 in range(0, m, CHUNK):
-        size = min(CHUNK, m - p0)
-        total[:size] = 0.0
-        weighted[:size] = 0.0
-        spread[:size] = 0.0
-        used[:size] = 0
-        every[:size] = 0
-        counted[:size] = 0
-        for i in range(n):
-            for q in range(size):
-                p = p0 + q
-                k = kept[i, p]
-                f = flags[i, p]
-                every[q] |= f
-                # the images are finite (0 where invalid): 0 x image adds zero
-                w = weights[i, p] if k else np.float32(0.0)
-                total[q] += w
-                weighted[q] += w * images[i, p]
-                spread[q] += w * w * variances[i, p] if k else 0.0
-                used[q] |= f if k else np.uint16(0)
-                counted[q] += k
-        for q in range(size):
-            p = p0 + q
-            coverage[p] = counted[q]
-            if total[q] > 0:
-                image[p] = weighted[q] / total[q]
-                weight[p] = total[q] * total[q] / spread[q] if spread[q] > 0 else 0.0
-                out_flags[p] = used[q]
-            else:
-                image[p] = np.nan
-                weight[p] = 0.0
-                out_flags[p] = every[q]
+        _combine_run(planes, kept, p0, min(CHUNK, m - p0), work, out)
 
 
 @numba.njit(cache=True, nogil=True)
