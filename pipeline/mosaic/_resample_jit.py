@@ -36,6 +36,15 @@ def _keys(f, jacobian):
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
+def _tap(o, vo, sum_w2, wk, value, variance):
+    """Add a tap of weight ``wk``: to the value, the variance and the sum of squared weights."""
+    o += wk * value
+    w2 = wk * wk
+    vo += w2 * variance
+    return o, vo, sum_w2 + w2
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
 def _sample(image, variance, flags, row, column, along_rows, n_line, w, outside):
     """Image, variance, flags and sum of squared weights of four taps along a line.
 
@@ -50,23 +59,25 @@ def _sample(image, variance, flags, row, column, along_rows, n_line, w, outside)
     vo = np.float32(0.0)
     mo = np.uint16(0)
     sum_w2 = 0.0
-    inside = first >= 0 and first + 3 < n_line
+    if first >= 0 and first + 3 < n_line:
+        # every tap inside (the usual case): no tests but the weight's for the flags
+        for k in range(4):
+            y = row + k if along_rows else row
+            x = column if along_rows else column + k
+            o, vo, sum_w2 = _tap(o, vo, sum_w2, w[k], image[y, x], variance[y, x])
+            mo |= flags[y, x] if w[k] != 0 else np.uint16(0)
+        return o, vo, mo, sum_w2
     for k in range(4):
         wk = w[k]
-        if not inside:
-            if wk == 0:
-                continue
-            if not 0 <= first + k < n_line:
-                mo |= outside
-                continue
+        if wk == 0:
+            continue
+        if not 0 <= first + k < n_line:
+            mo |= outside
+            continue
         y = row + k if along_rows else row
         x = column if along_rows else column + k
-        o += wk * image[y, x]
-        w2 = wk * wk
-        vo += w2 * variance[y, x]
-        sum_w2 += w2
-        if wk != 0:
-            mo |= flags[y, x]
+        o, vo, sum_w2 = _tap(o, vo, sum_w2, wk, image[y, x], variance[y, x])
+        mo |= flags[y, x]
     return o, vo, mo, sum_w2
 
 
