@@ -80,6 +80,7 @@ __all__ = [
     "flag_bits_from_header",
     "flag_header",
     "image_hdulist",
+    "night_column",
     "night_grid_header",
     "observation_header",
 ]
@@ -274,6 +275,28 @@ def night_grid_header(
         header[f"CRVAL{axis}A"] = (float(start), "0-based night index at CRPIX")
         header[f"CDELT{axis}A"] = (1.0, "")
     return header
+
+
+def night_column(header: Mapping) -> int:
+    """0-based night column of a product's first pixel column (its alternate WCS ``A``).
+
+    Parameters
+    ----------
+    header : mapping
+        A plane's header with the cards of :func:`night_grid_header`.
+
+    Raises
+    ------
+    ValueError
+        The header has no ``NIGHT`` grid (``CRVAL1A``).
+    """
+    if "CRVAL1A" not in header:
+        raise ValueError(
+            "the header has no NIGHT grid (CRVAL1A, alternate WCS 'A'); only products of "
+            "the pipeline's stages carry their place in the night."
+        )
+    first = header.get("CRPIX1A", 1.0) - 1.0
+    return round(header["CRVAL1A"] - first * header.get("CDELT1A", 1.0))
 
 
 def _merged(first: fits.Header, second: fits.Header) -> fits.Header:

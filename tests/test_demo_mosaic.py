@@ -260,24 +260,31 @@ def _aperture_offsets(path, stars, radius: float = 8.0, ring: tuple = (11.0, 15.
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(
-    strict=True,
-    reason="the tile catalogues fit round profiles to the co-added stars, whose smear "
-    "bows across the scan: their Dec is off by -140 to -175 mas and their magnitudes by "
-    "-0.06 to +0.13 mag per tile (measured on the demo); the nightly catalogues, which "
-    "model the smear kernel, are right to ~1 mas and ~0.003 mag",
-)
 def test_the_tile_catalogues_against_the_truth(demo):
-    """Tile catalogue Dec and magnitudes of bright stars: what the nights' catalogues meet.
+    """Tile catalogue positions and magnitudes of bright stars (S/N > 100, 28-54 a tile).
 
-    Mean Dec offset within 20 mas and median magnitude offset within 0.03 mag
-    (the tolerances of the tiles' RA and aperture fluxes above).
+    The tiles' stars are fitted with the smear kernel they carry from the
+    nights and the nights' seeing mixed with the co-add's weights
+    (pipeline.mosaic._kernels).  Positions: the issue's 0.05 px rms (50 mas
+    at 1 arcsec a pixel) on each axis (measured 8-13 mas); the mean Dec
+    within 10 mas: the nights' frames are held to 5 mas above and the mean
+    of ~30-50 stars of ~10 mas each to ~2 mas (measured +2.9 to +3.5 mas;
+    round profiles, blind to the bow across the scan, gave -140 to -175 mas,
+    the bow turned the wrong way +290 mas).  Magnitudes: the median within
+    0.02 mag (measured -0.011, -0.004, +0.002; the nights' own catalogues
+    give -0.007 to +0.005 on the same stars, and the tiles differ from them
+    by -0.009 to +0.002: tile858 misses the issue's 0.5 % there.  A single
+    Moffat for the three nights' 1.2-1.8 arcsec seeing gave +0.018 to +0.027,
+    round profiles -0.06 to +0.13).
     """
     folder, _ = demo
     truth = _truth(folder, NIGHTS[0])
     for tile in _tiles(folder):
         catalog = QTable.read(tile / "catalog.ecsv")
-        keep, j, _, d_dec = _match(catalog, truth, snr_min=50.0)
-        assert abs(np.mean(d_dec)) <= 20.0, (tile.name, np.mean(d_dec))
+        keep, j, d_ra, d_dec = _match(catalog, truth, snr_min=100.0)
+        assert keep.size >= 20, tile.name
+        assert abs(np.mean(d_dec)) <= 10.0, (tile.name, np.mean(d_dec))
+        for offsets in (d_ra, d_dec):
+            assert np.sqrt(np.mean(offsets**2)) <= 50.0, tile.name
         error = np.asarray(catalog["mag"].value)[keep] - np.asarray(truth["mag"])[j]
-        assert abs(np.median(error)) <= 0.03, (tile.name, np.median(error))
+        assert abs(np.median(error)) <= 0.02, (tile.name, np.median(error))

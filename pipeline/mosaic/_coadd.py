@@ -51,9 +51,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from astropy.io import fits
+from astropy.table import Table
 from astropy.wcs import WCS
 
 from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.mosaic._kernels import carried_kernels
 from pipeline.mosaic._options import CoaddOptions
 from pipeline.mosaic._resample import _Scratch, merge_onto_tile
 from pipeline.mosaic._seams import extended_planes
@@ -65,6 +67,7 @@ from pipeline.products import (
     SEEING_KEY,
     VARIANCE_EXTENSION,
     ZERO_POINT_KEY,
+    night_column,
 )
 
 __all__ = [
@@ -109,6 +112,10 @@ class NightImage:
         Seeing FWHM, arcsec; None: unknown (never excluded by seeing).
     noise_correlation : float
         Large-aperture noise factor of the product (rectify's ``NOISECOR``).
+    smear_kernels : astropy.table.Table or None
+        The TDI smear kernels of its stars (rectify's ``smear_kernels``
+        layout) with ``x``, ``y`` in the arrays' own pixels (0-based); None:
+        round stars (a deconvolved product, or no kernel recorded).
     """
 
     image: np.ndarray
@@ -120,13 +127,16 @@ class NightImage:
     night_zero_point: float | None = None
     seeing: float | None = None
     noise_correlation: float = 1.0
+    smear_kernels: Table | None = None
 
     @property
     def transparency_zero_point(self) -> float:
         return self.zero_point if self.night_zero_point is None else self.night_zero_point
 
 
-def night_image_from_hdulist(hdul: fits.HDUList, night: str | None = None) -> NightImage:
+def night_image_from_hdulist(
+    hdul: fits.HDUList, night: str | None = None, smear_kernels: Table | None = None
+) -> NightImage:
     """A calibrated image product (FLUX, FLUXVAR, FLAGS) as a :class:`NightImage`.
 
     Parameters
@@ -138,6 +148,10 @@ def night_image_from_hdulist(hdul: fits.HDUList, night: str | None = None) -> Ni
         keywords: :data:`pipeline.products.ZERO_POINT_KEY` and its neighbours).
     night : str or None
         Night label; None: the FLUX plane's ``DATE-OBS`` (its date part).
+    smear_kernels : astropy.table.Table or None
+        The science stage's ``smear_kernels`` product (night pixels: ``x`` is
+        shifted by the product's first night column, ``NIGHT`` grid ``CRVAL1A``).
+        Not used for a deconvolved product (``DECONV``: round stars).
 
     Raises
     ------
@@ -158,6 +172,11 @@ def night_image_from_hdulist(hdul: fits.HDUList, night: str | None = None) -> Ni
         )
     if night is None:
         night = str(header.get("DATE-OBS", ""))[:10]
+    if smear_kernels is not None and not header.get("DECONV", False):
+        smear_kernels = Table(smear_kernels, copy=True)
+        smear_kernels["x"] = np.asarray(smear_kernels["x"], float) - night_column(header)
+    else:
+        smear_kernels = None
     return NightImage(
         image=hdul[FLUX_EXTENSION].data,
         variance=hdul[VARIANCE_EXTENSION].data,
@@ -170,6 +189,7 @@ def night_image_from_hdulist(hdul: fits.HDUList, night: str | None = None) -> Ni
         ),
         seeing=float(header[SEEING_KEY]) if SEEING_KEY in header else None,
         noise_correlation=float(header.get("NOISECOR", 1.0)),
+        smear_kernels=smear_kernels,
     )
 
 
@@ -530,6 +550,14 @@ class MosaicTile:
         Variance of a large aperture sum over the sum of ``1 / weight``.
     excluded : dict
         Index of a left-out product in the input -> the reason.
+    smear_kernels : astropy.table.Table or None
+        The smear kernel of a co-added star on nodes of the tile, in tile
+        pixels (:func:`~pipeline.mosaic._kernels.carried_kernels`); None:
+        round stars.
+    seeing : tuple of (float, float, float)
+        ``(FWHM arcsec, weight, pixel arcsec)`` of each night co-added whose
+        seeing is known: a star's seeing is their mix
+        (:class:`~pipeline.mosaic._kernels.SeeingMix`).
     """
 
     tile: Tile
@@ -538,6 +566,8 @@ class MosaicTile:
     nights: tuple[str, ...]
     noise_correlation: float
     excluded: dict[int, str] = field(default_factory=dict)
+    smear_kernels: Table | None = None
+    seeing: tuple[tuple[float, float, float], ...] = ()
 
     def header(self) -> fits.Header:
         """The tile's WCS and the mosaic's cards (zero point, nights, noise factor)."""
@@ -664,12 +694,20 @@ def mosaic_tile(
         images, variances, flags = images[reached], variances[reached], flags[reached]
     planes = [p for p in planes if p is not None]
     seeing = {p.night: p.seeing for p in kept}
+    pixel = {p.night: pixel_arcsec(p.wcs, p.image.shape) for p in kept}
     scale = np.ones(len(planes))
     if options.weight_by_seeing:
         known = [s for s in seeing.values() if s is not None]
         if known:
             best = min(known)
             scale = np.array([(best / (seeing[p[0]] or best)) ** 2 for p in planes])
+    # The nights' weights for their stars' kernels: the co-add's, w = s / (sky variance)
+    # (its block medians are the sky's; one value per night is enough for kernels that
+    # differ little between nights).
+    night_weight = {
+        p[0]: s / _sky_variance(v) for p, s, v in zip(planes, scale, variances, strict=True)
+    }
+    kernels = carried_kernels(kept, tile, [night_weight.get(p.night, 0.0) for p in kept])
     result = coadd(
         images,
         variances,
@@ -704,4 +742,33 @@ def mosaic_tile(
         nights=tuple(p[0] for p in planes),
         noise_correlation=noise_correlation,
         excluded=excluded,
+        smear_kernels=kernels,
+        seeing=tuple(
+            (float(seeing[night]), float(night_weight[night]), pixel[night])
+            for night in (p[0] for p in planes)
+            if seeing[night] is not None and night_weight[night] > 0
+        ),
     )
+
+
+def pixel_arcsec(wcs: WCS, shape: tuple[int, int]) -> float:
+    """Side of a pixel of ``wcs`` at the centre of an image of ``shape`` (root of its area), arcsec.
+
+    From the sky positions of the neighbouring pixels: a plate carree's
+    right-ascension increment is not an angle on the sky.
+    """
+    y, x = (shape[0] - 1) / 2.0, (shape[1] - 1) / 2.0
+    world = wcs.pixel_to_world_values([x, x + 1, x], [y, y, y + 1])
+    ra, dec = (np.asarray(a, float) for a in world)
+    east = (ra[1:] - ra[0] + 180.0) % 360.0 - 180.0
+    d_east = east * np.cos(np.radians(dec[0]))
+    d_north = dec[1:] - dec[0]
+    area = abs(d_east[0] * d_north[1] - d_east[1] * d_north[0])
+    return 3600.0 * float(np.sqrt(area))
+
+
+def _sky_variance(variance: np.ndarray) -> float:
+    """Median of a night's variance plane on the tile (every 4th row and column), e^2."""
+    sample = variance[::4, ::4]
+    finite = sample[np.isfinite(sample) & (sample > 0)]
+    return float(np.median(finite)) if finite.size else np.inf

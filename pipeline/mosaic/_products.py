@@ -24,8 +24,10 @@ from astropy.io import fits
 from astropy.table import QTable, Table
 
 from pipeline.masks import MASK_DTYPE
-from pipeline.mosaic._coadd import MosaicTile, NightImage
+from pipeline.mosaic._coadd import MosaicTile, NightImage, pixel_arcsec
+from pipeline.mosaic._kernels import SeeingMix
 from pipeline.products import FLAGS_EXTENSION, ZERO_POINT_KEY, flag_header
+from pipeline.stages.detect import SeeingProfile
 
 __all__ = [
     "TILE_EXTENSIONS",
@@ -89,9 +91,13 @@ def tile_hdulist(
 def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
     """Sources detected and measured on the co-add, with calibrated magnitudes.
 
-    The detect stage's :func:`~pipeline.stages.detect.detect` with round
-    stars (``deconvolved=True``: the co-add of resampled, rectified nights
-    carries no TDI smear kernel), on the variance ``1 / weight``.
+    The detect stage's :func:`~pipeline.stages.detect.detect` on the
+    variance ``1 / weight``, with the smear kernel the co-added stars carry
+    (``tile.smear_kernels``: the nights' kernels turned into tile pixels,
+    :mod:`pipeline.mosaic._kernels`), so that the fitted position is the
+    first moment the tile's WCS maps to the sky and the flux is the whole
+    streak's; round stars (``deconvolved=True``) where the tile has no
+    kernels (deconvolved nights).
 
     Parameters
     ----------
@@ -112,15 +118,21 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
     planes = tile.planes
     weight = np.asarray(planes.weight, float)
     variance = np.where(weight > 0, 1.0 / np.where(weight > 0, weight, 1.0), np.nan)
-    point = Table({"x": [0.0], "y": [0.0], "dx": [[0.0]], "dy": [[0.0]]})
+    kernels = tile.smear_kernels
+    if kernels is None:
+        kernels = Table({"x": [0.0], "y": [0.0], "dx": [[0.0]], "dy": [[0.0]]})
+    mix = _seeing_mix(tile, detect_options)
+    if mix is not None:  # the nights' mean seeing is a better start than a fixed guess
+        detect_options = {**detect_options, "fwhm_guess": mix.fwhm}
     result = detect(
         planes.image,
         variance,
         planes.flags,
-        point,
+        kernels,
         wcs=tile.tile.wcs,
         noise_correlation=max(1.0, tile.noise_correlation),
-        deconvolved=True,
+        deconvolved=tile.smear_kernels is None,
+        seeing_profile=mix,
         **detect_options,
     )
     catalog = result.catalog
@@ -138,6 +150,21 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
     catalog.meta["tile"] = tile.tile.name
     catalog.meta["problems"] = list(result.problems)
     return catalog
+
+
+def _seeing_mix(tile: MosaicTile, detect_options) -> SeeingProfile | None:
+    """The co-added stars' seeing: the nights' profiles mixed with their weights (None: unknown)."""
+    if not tile.seeing:
+        return None
+    scale = pixel_arcsec(tile.tile.wcs, tile.tile.shape)
+    fwhms, weights, pixels = (np.asarray(c, float) for c in zip(*tile.seeing, strict=True))
+    return SeeingMix.of_nights(
+        fwhms / scale,
+        weights,
+        pixels / scale,
+        detect_options.get("seeing_shape", "moffat"),
+        detect_options.get("moffat_beta", 3.5),
+    )
 
 
 def night_table(products: Sequence[NightImage], tile: MosaicTile) -> Table:

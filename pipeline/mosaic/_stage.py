@@ -25,6 +25,8 @@ __all__ = ["TILE_STAGE", "TileContext", "TileOptions"]
 
 #: Name of the science stage, whose ``image`` products mosaics combine.
 SCIENCE = "science"
+#: Its product of the stars' smear kernels (absent from products made before it was).
+KERNELS = "smear_kernels"
 
 
 class TileOptions(BaseModel):
@@ -61,19 +63,22 @@ class TileContext:
 
 def _run(*, inputs, options: TileOptions, context: TileContext) -> dict:
     products = [
-        night_image_from_hdulist(unit["image"], night=night)
+        night_image_from_hdulist(unit["image"], night=night, smear_kernels=unit.get(KERNELS))
         for unit, (night, _, _) in zip(inputs[SCIENCE], context.inputs, strict=True)
     ]
     tile = mosaic_tile(products, context.tile, options.coadd)
     labels = [(f"{night}/{unit}", digest) for night, unit, digest in context.inputs]
     catalog = tile_catalog(tile, **options.detect.model_dump())
-    return {
+    out = {
         "tile": tile_hdulist(tile, labels, context.config),
         "catalog": catalog,
         "nights": night_table(products, tile),
         "quicklook": quicklook_png(tile.planes.image),
         PROBLEMS: list(catalog.meta.pop("problems", [])),
     }
+    if tile.smear_kernels is not None:
+        out[KERNELS] = tile.smear_kernels
+    return out
 
 
 #: The unit of a mosaic: one tile from the science products that touch it.
@@ -84,5 +89,6 @@ TILE_STAGE = Stage(
     requires=(SCIENCE,),
     scope="night",
     uses=(),
+    version=2,  # 2: catalogues measured with the smear kernel the co-added stars carry
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )

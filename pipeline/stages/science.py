@@ -9,7 +9,10 @@ and nights can be stacked.  The variance is multiplied by the factor's
 square; the flags are carried, plus :attr:`~pipeline.masks.MaskBit.ZERO_POINT`
 on every pixel of a stretch whose zero point the zeropoint stage flagged.
 The solved WCS of astrometry's ``wcs`` product replaces rectify's nominal
-one (the alternate ``NIGHT`` grid stays).
+one (the alternate ``NIGHT`` grid stays).  Rectify's ``smear_kernels`` table
+goes beside the image unchanged (night pixels, as detect reads it): a
+calibrated star is still the seeing averaged over that kernel, and the
+mosaic carries it onto its tiles (:mod:`pipeline.mosaic._kernels`).
 
 Header cards (FLUX, FLUXVAR, FLAGS and primary; the keywords are defined once,
 in :mod:`pipeline.products`, for this stage and the mosaic that reads them):
@@ -54,6 +57,7 @@ from pipeline.products import (
     ZERO_POINT_FLAGS_KEY,
     ZERO_POINT_KEY,
     flag_header,
+    night_column,
 )
 from pipeline.stages.base import BLOCK_INDEX, Stage
 from pipeline.stages.zeropoint import column_times, night_line_time, scale_to_zero_point
@@ -169,10 +173,6 @@ def _values(table, name: str) -> np.ndarray:
     return np.asarray(getattr(column, "value", column), dtype=float)
 
 
-def _night_column(header) -> int:
-    return round(header["CRVAL1A"] - (header["CRPIX1A"] - 1.0) * header["CDELT1A"])
-
-
 def _run(*, inputs, options: ScienceOptions, context) -> dict:
     stretch = context.stretch
     rectified = inputs["rectify"]["image"]
@@ -183,7 +183,7 @@ def _run(*, inputs, options: ScienceOptions, context) -> dict:
     line_time = night_line_time(inputs["ingest"][BLOCK_INDEX])
     exposure = float(flux_header.get("XPOSURE", context.camera.tdi_rows * line_time))
     n_x = rectified[FLUX_EXTENSION].data.shape[1]
-    x = _night_column(flux_header) + np.arange(n_x)
+    x = night_column(flux_header) + np.arange(n_x)
     t = column_times(x, line_time, context.camera.tdi_rows)
     z = np.interp(t, _values(grid, "t"), _values(grid, "zero_point"))
     z_err = np.interp(t, _values(grid, "t"), _values(grid, "zero_point_err"))
@@ -242,7 +242,9 @@ def _run(*, inputs, options: ScienceOptions, context) -> dict:
     for key, value, comment in cards:
         hdul[0].header[key] = (value, comment)
     log.info("%s: zero point %.3f-%.3f mag -> %.3f", stretch.id, z.min(), z.max(), target)
-    return {"image": hdul}
+    # A calibrated product is not deconvolved unless rectify deconvolved it: its
+    # stars keep the recorded smear, which the mosaic carries onto its tiles.
+    return {"image": hdul, "smear_kernels": inputs["rectify"]["smear_kernels"]}
 
 
 #: Declaration of the science stage: per stretch, after zeropoint.
@@ -253,6 +255,8 @@ STAGE = Stage(
     requires=("ingest", "rectify", "detect", "astrometry", "zeropoint"),
     scope="stretch",
     uses=("camera.tdi_rows",),
-    version=2,  # 2: the ZPMED card, by which the mosaic compares transparency
+    # 2: the ZPMED card, by which the mosaic compares transparency; 3: rectify's
+    # smear kernels beside the image, for the mosaic's tile catalogues
+    version=3,
     description="Calibrated images at one fixed zero point, with the solved WCS.",
 )

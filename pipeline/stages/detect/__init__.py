@@ -285,6 +285,7 @@ def detect(
     seeing_bands: int = 4,
     aperture_radii: tuple[float, ...] = (1.0, 2.0, 3.0),
     find_in_residual: bool = True,
+    seeing_profile: SeeingProfile | None = None,
 ) -> DetectResult:
     """Detect and measure the point sources of a rectified stretch.
 
@@ -317,6 +318,12 @@ def detect(
     deblend_contrast, seeing_shape, moffat_beta, fwhm_guess, seeing_stars,
     seeing_min_snr, seeing_bands, aperture_radii, find_in_residual
         See :class:`DetectOptions`.
+    seeing_profile : SeeingProfile or None
+        The seeing's shape when it is not one of ``seeing_shape``'s families
+        (e.g. a mosaic tile's mixture of nights in different seeing: a
+        subclass whose :meth:`~SeeingProfile.with_fwhm` scales every
+        component); its width is fitted from ``fwhm_guess`` as the family's
+        is.  None: ``seeing_shape`` and ``moffat_beta``.
 
     Returns
     -------
@@ -344,7 +351,10 @@ def detect(
             f"noise_correlation must be > 0 (rectify's NOISECOR); got {noise_correlation!r}."
         )
     radii = tuple(float(r) for r in aperture_radii)
-    profile = SeeingProfile(float(fwhm_guess), seeing_shape, moffat_beta)
+    if seeing_profile is None:
+        profile = SeeingProfile(float(fwhm_guess), seeing_shape, moffat_beta)
+    else:
+        profile = seeing_profile.with_fwhm(float(fwhm_guess))
     no_data = has_bits(mask, _NO_DATA) | ~np.isfinite(image) | ~(variance > 0)
     empty_seeing = _seeing_table([(0, image.shape[0], 0, np.nan)])
     if no_data.all():

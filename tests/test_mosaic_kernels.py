@@ -1,0 +1,158 @@
+"""Smeared stars on a tile: the nights' smear kernels carried through the resampling.
+
+Invented nights (self-consistency): each star is a Moffat seeing profile
+averaged over a bowed TDI smear kernel, rendered in the night's pixels by
+detect's own model (:func:`pipeline.stages.detect.model_image`), on nights
+turned by up to a degree against the tile, east to the right, with pixels
+0.52 of the tile's (the demo's camera and tile scales).
+"""
+
+import numpy as np
+import pytest
+from astropy.table import Table
+
+from pipeline.mosaic import CoaddOptions, NightImage, mosaic_tile, tile_catalog
+from pipeline.mosaic._kernels import SeeingMix, carried_kernels
+from pipeline.stages.detect import DetectOptions, SeeingProfile, model_image
+from tests._mosaic_scene import night_wcs, tile
+
+#: Night pixels per tile pixel (0.516 arcsec camera pixels on 1 arcsec tiles).
+SCALE = 0.52
+NIGHT_SHAPE = (340, 340)
+#: (night, rotation deg, seeing FWHM in night px, sky e-)
+NIGHTS = [("n1", 0.3, 2.9, 120.0), ("n2", -0.6, 3.4, 150.0), ("n3", 0.9, 3.9, 100.0)]
+#: Kernel samples: 12 night px along the scan, a bow of 2.5 px across it that
+#: grows by half from the bottom of the night to its top.
+N_SAMPLES = 32
+LENGTH, BOW = 12.0, 2.5
+TILE_SIZE = 160
+FLUX = 2.0e5  # e-: S/N ~ 600 in one night
+
+
+def _kernel(y: float) -> tuple[np.ndarray, np.ndarray]:
+    u = (np.arange(N_SAMPLES) + 0.5) / N_SAMPLES - 0.5
+    dx = LENGTH * u
+    dy = BOW * (1.0 + 0.5 * (y / NIGHT_SHAPE[0] - 0.5)) * 4.0 * u**2
+    return dx - dx.mean(), dy - dy.mean()
+
+
+def _kernel_table(columns=(0.0, 170.0, 339.0), rows=(0.0, 85.0, 170.0, 255.0, 339.0)) -> Table:
+    x, y, dx, dy = [], [], [], []
+    for column in columns:
+        for row in rows:
+            kx, ky = _kernel(row)
+            x.append(column), y.append(row), dx.append(kx), dy.append(ky)
+    return Table({"x": x, "y": y, "dx": np.array(dx), "dy": np.array(dy)})
+
+
+def _stars(rng, n=16):
+    """Tile pixel positions of the stars: a jittered grid inside the tile."""
+    g = np.linspace(35, TILE_SIZE - 36, 4)
+    x, y = (a.ravel() for a in np.meshgrid(g, g))
+    return x + rng.uniform(-0.5, 0.5, x.size), y + rng.uniform(-0.5, 0.5, y.size)
+
+
+def _night(target, name, rotation, fwhm, sky, tx, ty, rng) -> NightImage:
+    wcs = night_wcs(NIGHT_SHAPE, rotation=rotation, scale=SCALE)
+    x, y = wcs.world_to_pixel_values(*target.wcs.pixel_to_world_values(tx, ty))
+    profile = SeeingProfile(fwhm, "moffat", 3.5)
+    image = np.zeros(NIGHT_SHAPE)
+    half = 30
+    for xi, yi in zip(x, y, strict=True):
+        x0, y0 = round(xi) - half, round(yi) - half
+        stamp = model_image((2 * half + 1, 2 * half + 1), xi - x0, yi - y0, *_kernel(yi), profile)
+        image[y0 : y0 + 2 * half + 1, x0 : x0 + 2 * half + 1] += FLUX * stamp
+    variance = sky + image
+    image = image + sky + rng.normal(0.0, np.sqrt(variance))
+    return NightImage(
+        image.astype(np.float32),
+        variance.astype(np.float32),
+        np.zeros(NIGHT_SHAPE, np.uint16),
+        wcs,
+        25.0,
+        name,
+        seeing=fwhm * SCALE,
+        smear_kernels=_kernel_table(),
+    )
+
+
+@pytest.fixture(scope="module")
+def smeared():
+    rng = np.random.default_rng(14)
+    target = tile(TILE_SIZE)
+    tx, ty = _stars(rng)
+    nights = [_night(target, *n, tx, ty, rng) for n in NIGHTS]
+    return target, nights, tx, ty
+
+
+def test_the_carried_kernel_is_the_nights_track_seen_in_tile_pixels(smeared):
+    target, nights, _, _ = smeared
+    night = nights[1]  # turned by -0.6 deg
+    table = carried_kernels([night], target)
+    # Each sample of the night's kernel is a point of the sky (FITS WCS standard,
+    # Calabretta & Greisen 2002, through astropy.wcs): map the points themselves
+    # onto the tile, relative to the mapped kernel centre.
+    for row in table[:: max(len(table) // 7, 1)]:
+        x, y = night.wcs.world_to_pixel_values(
+            *target.wcs.pixel_to_world_values(row["x"], row["y"])
+        )
+        kx, ky = _kernel(float(y))
+        px, py = target.wcs.world_to_pixel_values(*night.wcs.pixel_to_world_values(x + kx, y + ky))
+        cx, cy = target.wcs.world_to_pixel_values(*night.wcs.pixel_to_world_values(x, y))
+        # the carried kernel is the map's linear part: its curvature over the
+        # 6 px of a track moves a sample by ~1e-6 px; the nearest node (16 px
+        # spacing) and linear interpolation of the table (its bow changes by
+        # 6e-4 px per night px) leave < 1e-2 px.
+        np.testing.assert_allclose(row["dx"], px - cx, atol=1e-2)
+        np.testing.assert_allclose(row["dy"], py - cy, atol=1e-2)
+    # east is to the right in the night and to the left on the tile
+    span = LENGTH * SCALE * (N_SAMPLES - 1) / N_SAMPLES  # first to last sample, tile px
+    assert np.ptp(table["dx"][0]) == pytest.approx(span, rel=0.02)
+    assert table["dx"][0][-1] < table["dx"][0][0]
+
+
+def _measured(target, nights, tx, ty, **changes):
+    built = mosaic_tile(nights, target, CoaddOptions())
+    if changes:
+        built = type(built)(**{**built.__dict__, **changes})
+    options = DetectOptions(background_box=32, fwhm_guess=1.8).model_dump()
+    catalog = tile_catalog(built, **options)
+    x, y = np.asarray(catalog["x"].value), np.asarray(catalog["y"].value)
+    near = np.hypot(x[:, None] - tx[None, :], y[:, None] - ty[None, :])
+    j = np.argmin(near, axis=0)
+    assert (near[j, np.arange(tx.size)] < 1.0).all()
+    flux = np.asarray(catalog["flux_psf"].value)[j] / FLUX - 1.0
+    snr = np.asarray(catalog["snr"].value)[j]
+    return flux, x[j] - tx, y[j] - ty, snr
+
+
+def test_tile_catalogue_fluxes_and_positions_of_smeared_stars(smeared):
+    flux, d_x, d_y, snr = _measured(*smeared)
+    assert (snr > 100).all()
+    # Positions: the issue's 0.05 px rms (measured 0.007 px: S/N ~ 1000 in the
+    # co-add).  The bow turned the wrong way moves every star by ~0.4 px.
+    assert np.sqrt(np.mean(d_x**2 + d_y**2)) <= 0.05
+    # Fluxes: the issue asks for 0.5 %; the mean of 16 stars of ~0.2 % noise
+    # each is known to 0.05 %, and measured +0.03 %: 0.2 % is 4 sigma.  A
+    # single Moffat fitted to the three nights' seeing puts it at -0.5 %,
+    # Gaussians integrated over the tile's pixels (not narrowed to the nights'
+    # 0.52 px) at -0.4 %, round stars at -1 %.
+    assert abs(np.mean(flux)) <= 0.002
+    # each star within 4 sigma of its photon noise (measured sd 0.19 %)
+    assert np.std(flux) <= 0.004
+
+
+def test_a_mix_of_one_night_on_its_own_pixels_is_the_family_itself():
+    mix = SeeingMix.of_nights([2.5], [3.0], [1.0], "moffat", 3.5)
+    sigmas, weights = mix.mixture()
+    own = SeeingProfile(2.5, "moffat", 3.5).mixture()
+    np.testing.assert_allclose(sigmas, own[0])
+    np.testing.assert_allclose(weights, own[1])
+    two = SeeingMix.of_nights([2.0, 3.0], [1.0, 3.0], [0.5, 0.5], "gaussian", 3.5)
+    assert two.fwhm == pytest.approx(2.75)  # the weighted mean FWHM
+    sigmas, weights = two.with_fwhm(5.5).mixture()
+    # Gaussian FWHM = 2 sqrt(2 ln 2) sigma (common practice), scaled together by 2,
+    # then narrowed by (1 - 0.5**2) / 12 px^2 (a top-hat's variance, common practice)
+    expected = (np.array([4.0, 6.0]) / (2 * np.sqrt(2 * np.log(2)))) ** 2 - 0.75 / 12
+    np.testing.assert_allclose(sigmas**2, expected)
+    np.testing.assert_allclose(weights, [0.25, 0.75])
