@@ -97,7 +97,9 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
     :mod:`pipeline.mosaic._kernels`), so that the fitted position is the
     first moment the tile's WCS maps to the sky and the flux is the whole
     streak's; round stars (``deconvolved=True``) where the tile has no
-    kernels (deconvolved nights).
+    kernels (deconvolved nights).  The seeing is the nights' profiles mixed
+    with the co-add's weights (:class:`~pipeline.mosaic._kernels.SeeingMix`,
+    its width fitted by detect) where the nights' seeing is known.
 
     Parameters
     ----------
