@@ -12,6 +12,7 @@ from test_mosaic_run import DETECT, tiling
 from pipeline.cli import EXIT_OK, EXIT_USAGE, main
 from pipeline.mosaic import load_mosaic_config
 from pipeline.runner import RunReport, _strip, nights_page
+from pipeline.runner._store import output_hash, write_products, write_sidecar
 from tests._mosaic_nights import write_nights
 
 NIGHT = """\
@@ -47,6 +48,24 @@ def test_run_on_a_mosaic_of_product_folders_builds_the_tiles_and_the_page(tmp_pa
     assert "night " not in out
     assert main(["run", str(path)]) == EXIT_OK
     assert "mosaic strip: 0 ran, 3 up to date" in capsys.readouterr().out
+
+
+def test_a_product_folder_has_its_row_on_the_page_across_the_nights(tmp_path, capsys):
+    folders = write_nights(tmp_path / "products")
+    # the first folder's night was reduced in full once: its report unit is there
+    unit_dir = folders[0] / "report" / "night"
+    summary = [["stars detected", "1234"]]
+    entries = write_products(unit_dir, {"summary": summary, "page": "<html></html>"}, {})
+    record = {"stage": "report", "unit": "night", "night": folders[0].name, "products": entries}
+    write_sidecar(unit_dir, {**record, "output_hash": output_hash(entries)})
+    path = _mosaic(tmp_path, [str(p) for p in folders])
+    assert main(["run", str(path)]) == EXIT_OK, capsys.readouterr()
+    text = nights_page(load_mosaic_config(path)).read_text()
+    for folder in folders:  # a row per night, named as the mosaic names it
+        assert f">{folder.name}</" in text
+    link = Path("..", "..", "..", "products", folders[0].name, "report", "night", "page.html")
+    assert f'<a href="{link.as_posix()}">{folders[0].name}</a>' in text
+    assert "<th>stars detected</th>" in text and "<td>1234</td>" in text
 
 
 @pytest.mark.parametrize("option", [["--stage", "detect"], ["--stretches", "0"], ["--verify"]])

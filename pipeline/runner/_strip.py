@@ -30,11 +30,12 @@ from typing import Any
 
 from pipeline._offline import astropy_offline
 from pipeline.config import Config, load_config
-from pipeline.exceptions import ConfigError
+from pipeline.exceptions import ConfigError, DamagedProductError
 from pipeline.runner._access import open_product
 from pipeline.runner._executors import make_executor
 from pipeline.runner._mosaic import mosaic_dir, mosaic_nights, run_mosaic
-from pipeline.runner._nightly import report_page
+from pipeline.runner._nightly import REPORT_PAGE, report_page
+from pipeline.runner._store import read_products, read_sidecar
 
 __all__ = ["NIGHTS_PAGE", "NightsRun", "night_configs", "nights_page", "run_nights_and_mosaic"]
 
@@ -196,13 +197,40 @@ def _night_products(night: Config) -> dict[str, Any]:
     return products
 
 
+def _folder_products(folder: Path) -> dict[str, Any]:
+    """The page's products in a night's product folder (those made and sound), and its page.
+
+    A product folder listed in a mosaic is co-added as it is, without its
+    config: its night-scope units are read from ``<folder>/<stage>/night``.
+    """
+    products: dict[str, Any] = {}
+    for key, (stage, name) in {**_PRODUCTS, "page": REPORT_PAGE}.items():
+        unit_dir = folder / stage / "night"
+        record = read_sidecar(unit_dir)
+        if record is None or name not in record["products"]:
+            continue
+        entry = record["products"][name]
+        if key == "page":
+            products[key] = unit_dir / entry["file"]
+            continue
+        try:
+            products[key] = read_products(unit_dir, {"products": {name: entry}})[name]
+        except (DamagedProductError, OSError, ValueError) as exc:
+            log.info("%s: no %s for the page across the nights (%s)", folder, key, exc)
+    return products
+
+
 def nights_page(config: Any) -> Path:
     """Where the page across the mosaic's nights is written."""
     return mosaic_dir(config) / NIGHTS_PAGE
 
 
 def write_nights_page(config: Any, nights: list[Config]) -> Path:
-    """Write the page across ``nights`` (with the mosaic's tiles); return its path."""
+    """Write the page across ``nights`` and the mosaic's product folders; return its path.
+
+    A product folder's row and figures come from the night-scope products it
+    holds (its name is the mosaic's name for the night), after the configs' nights.
+    """
     from pipeline.report import ReportOptions, build_nights_report
 
     path = nights_page(config)
@@ -214,6 +242,11 @@ def write_nights_page(config: Any, nights: list[Config]) -> Path:
         if page is not None:
             products["page"] = Path(os.path.relpath(page, path.parent)).as_posix()
         entries.append((night.night.name, products))
+    for folder in (Path(p) for p in config.mosaic.nights if Path(p).is_dir()):
+        products = _folder_products(folder)
+        if "page" in products:
+            products["page"] = Path(os.path.relpath(products["page"], path.parent)).as_posix()
+        entries.append((folder.name, products))  # the mosaic's name for the night
     options = night_options(nights)
     tiles = mosaic_nights(config)
     about = [
