@@ -230,7 +230,14 @@ def _rectified(stretch: int, flux: float, star_x: float = 1500.3) -> fits.HDULis
     )
 
 
-def _science(stretch, zero_point_mag, flags=0, interpolated=False, fwhm=2.5):
+def _kernels(stretch: int) -> Table:
+    """A rectify smear-kernel table of the stretch (night columns): a 6 px streak."""
+    x = stretch * STRETCH_ROWS + np.array([0.0, 0.0, 1000.0, 1000.0])
+    dx = np.tile(np.linspace(-3.0, 3.0, 8), (4, 1))
+    return Table({"x": x, "y": [0.0, 200.0, 0.0, 200.0], "dx": dx, "dy": np.zeros_like(dx)})
+
+
+def _science(stretch, zero_point_mag, flags=0, interpolated=False, fwhm=2.5, product="image"):
     grid = QTable(
         {
             "t": [-100.0, 2000.0] * u.s,
@@ -268,14 +275,31 @@ def _science(stretch, zero_point_mag, flags=0, interpolated=False, fwhm=2.5):
     return science.STAGE.run(
         inputs={
             "ingest": {BLOCK_INDEX: block_index()},
-            "rectify": {"image": _rectified(stretch, flux)},
+            "rectify": {"image": _rectified(stretch, flux), "smear_kernels": _kernels(stretch)},
             "detect": {"seeing": seeing},
             "astrometry": {"wcs": solved},
             "zeropoint": {"zero_point": grid, "intervals": intervals},
         },
         options=science.ScienceOptions(),
         context=context(stretch),
-    )["image"]
+    )[product]
+
+
+def test_the_science_product_keeps_rectifys_smear_kernels_for_the_mosaic():
+    from pipeline.mosaic import night_image_from_hdulist
+
+    kernels = _science(1, 24.0, product="smear_kernels")
+    expected = _kernels(1)
+    for name in expected.colnames:
+        np.testing.assert_array_equal(kernels[name], expected[name])
+    # The mosaic reads them in the product's own pixels: the NIGHT grid (CRVAL1A)
+    # puts the stretch's first column at night column STRETCH_ROWS.
+    hdul = _science(1, 24.0)
+    night = night_image_from_hdulist(hdul, "n1", smear_kernels=kernels)
+    np.testing.assert_array_equal(night.smear_kernels["x"], expected["x"] - STRETCH_ROWS)
+    np.testing.assert_array_equal(night.smear_kernels["dx"], expected["dx"])
+    hdul["FLUX"].header["DECONV"] = True  # a deconvolved product's stars are round
+    assert night_image_from_hdulist(hdul, "n1", smear_kernels=kernels).smear_kernels is None
 
 
 def test_the_calibrated_image_sums_to_the_star_magnitude_at_the_fixed_zero_point():
@@ -368,7 +392,10 @@ def test_the_products_survive_the_store_and_feed_the_science_stage(night, tmp_pa
     hdul = science.STAGE.run(
         inputs={
             "ingest": {BLOCK_INDEX: block_index()},
-            "rectify": {"image": _rectified(CLOUD_STRETCH, flux, star_x)},
+            "rectify": {
+                "image": _rectified(CLOUD_STRETCH, flux, star_x),
+                "smear_kernels": _kernels(CLOUD_STRETCH),
+            },
             "detect": {"seeing": Table({"fwhm": [2.5] * u.pix})},
             "astrometry": {"wcs": {"s0002": [["CTYPE1", "RA---TAN"], ["CTYPE2", "DEC--TAN"]]}},
             "zeropoint": back,
