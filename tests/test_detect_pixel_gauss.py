@@ -74,7 +74,7 @@ def test_fit_with_compiled_profiles_matches_the_direct_fit(row, monkeypatch):
 )
 def test_compiled_single_star_fit_takes_the_python_loops_steps(row, start, monkeypatch):
     # One star and a background: the compiled fit must give what the Python
-    # loop (used for groups) gives, step for step, on a long track (row 4000),
+    # loop (the reference) gives, step for step, on a long track (row 4000),
     # a short one (2100) and from a start 1.5 px off.
     dx, dy = smear_track([row], 4096, 64, 16.0, 3.0)
     kernel = _model.reduce_kernel(dx[0], dy[0], 0.5)

@@ -21,6 +21,8 @@ Each Gaussian is separable, so a model is a matrix product of per-sample
 ``x0`` and ``y0``; damped Gauss-Newton steps (Levenberg-Marquardt, with
 the unit models of each evaluation reused for the linear start and the
 result) fit flux, position and background of one or several stars on a stamp.
+The loop here is the reference; with a fitted background the same steps run
+compiled (:mod:`pipeline.stages.detect._fit_jit`).
 """
 
 from __future__ import annotations
@@ -475,11 +477,11 @@ def fit_stars(
     def evaluate(p):
         return assemble(p, models_at(p))
 
-    if n == 1 and nb:
-        compiled = _fit_one(d, sw, xs, ys, x[0], y[0], kernels[0], sigmas, weights, responses[0])
+    if nb and n:
+        compiled = _fit_one(d, sw, xs, ys, x, y, kernels, sigmas, weights, responses)
         if compiled is not None:
-            p, jac, unit, chi2_sum, success = compiled
-            return _fit_result(p, jac, [unit], chi2_sum, success, good, nb, noise_correlation)
+            p, jac, units, chi2_sum, success = compiled
+            return _fit_result(p, jac, units, chi2_sum, success, good, nb, noise_correlation)
     # Linear start: fluxes (and background) at the starting positions, from
     # the unit models the first step needs anyway.
     p = np.empty(nb + 3 * n)
@@ -496,40 +498,44 @@ def fit_stars(
     return _fit_result(p, jac, units, chi2_sum, success, good, nb, noise_correlation)
 
 
-def _fit_one(d, sw, xs, ys, x, y, kernel, sigmas, weights, response=None):
-    """One star and a background fitted in one compiled call; None to fit in Python.
+def _fit_one(d, sw, xs, ys, x, y, kernels, sigmas, weights, responses):
+    """The stars and a background fitted in one compiled call; None to fit in Python.
 
-    :func:`~pipeline.stages.detect._fit_jit.fit_one_compiled` takes the same
-    steps as the Python loop; measured on the benchmark's stamps, 0.15 to
-    0.5 ms per fit instead of 0.6 to 1.1 ms (``benchmarks/bench_detect.py``
-    stars of short and long tracks).  A singular step (None) is left to the
-    Python loop, which reports it.
+    :func:`~pipeline.stages.detect._fit_jit.fit_compiled` takes the same
+    steps as the Python loop, for one star or a group; measured on the
+    benchmark's stamps, 0.15 to 0.5 ms per single-star fit instead of 0.6 to
+    1.1 ms (``benchmarks/bench_detect.py`` stars of short and long tracks).
+    A singular step (None) is left to the Python loop, which reports it.
     """
     # numba is imported on first use (see pixel_profiles).
-    from pipeline.stages.detect._fit_jit import fit_one_compiled
+    from pipeline.stages.detect._fit_jit import fit_compiled
 
-    p, jac, unit, chi2, status = fit_one_compiled(
+    bounds = np.zeros(len(kernels) + 1, dtype=np.int64)
+    bounds[1:] = np.cumsum([np.size(k[0]) for k in kernels])
+    p, jac, units, chi2, status = fit_compiled(
         d,
         sw,
         float(xs[0]),
         int(xs.size),
         float(ys[0]),
         int(ys.size),
-        float(x),
-        float(y),
-        np.ascontiguousarray(kernel[0], dtype=np.float64),
-        np.ascontiguousarray(kernel[1], dtype=np.float64),
+        np.array(x, dtype=np.float64),
+        np.array(y, dtype=np.float64),
+        np.concatenate([np.asarray(k[0], dtype=np.float64).ravel() for k in kernels]),
+        np.concatenate([np.asarray(k[1], dtype=np.float64).ravel() for k in kernels]),
+        bounds,
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
         np.array(
-            [-1.0, -1.0, 0.0]
-            if response is None
-            else [response.lattice_x, response.lattice_y, response.row_step]
+            [
+                [-1.0, -1.0, 0.0] if r is None else [r.lattice_x, r.lattice_y, r.row_step]
+                for r in responses
+            ]
         ),
         _ERF_TABLE,
         _GAUSS_TABLE,
     )
-    return None if status < 0 else (p, jac, unit, chi2, status == 1)
+    return None if status < 0 else (p, jac, list(units), chi2, status == 1)
 
 
 def _fit_result(p, jac, units, chi2_sum, success, good, nb, noise_correlation) -> FitResult:
