@@ -136,10 +136,15 @@ def _units(p, x_first, nx, y_first, ny, dx, dy, bounds, sigmas, weights, respons
     units_y = np.empty((n, ny, nx))
     for s in range(n):
         k0, k1 = bounds[s], bounds[s + 1]
-        units[s], units_x[s], units_y[s] = _unit(
+        u, ux, uy = _unit(
             p[2 + 3 * s], p[3 + 3 * s], x_first, nx, y_first, ny, dx[k0:k1], dy[k0:k1], sigmas,
             weights, responses[s], erf, gauss,
         )  # fmt: skip
+        for j in range(ny):
+            for i in range(nx):
+                units[s, j, i] = u[j, i]
+                units_x[s, j, i] = ux[j, i]
+                units_y[s, j, i] = uy[j, i]
     return units, units_x, units_y
 
 
@@ -199,10 +204,12 @@ def fit_compiled(
     units, units_x, units_y = _units(p, *model)
     # Linear start: background and fluxes at the starting positions (normal
     # equations of the columns ``sw`` and ``unit * sw`` of each star).
+    flat = units.reshape(n, d.size)
     design = np.empty((d.size, 1 + n))
-    design[:, 0] = sw
-    for s in range(n):
-        design[:, 1 + s] = units[s].ravel() * sw
+    for i in range(d.size):
+        design[i, 0] = sw[i]
+        for s in range(n):
+            design[i, 1 + s] = flat[s, i] * sw[i]
     normal, rhs = _normal(design, d)
     coef, ok = _solve(normal, rhs)
     if not ok:
@@ -253,12 +260,20 @@ def fit_compiled(
 def _normal(jac, r):
     """``jac^T jac`` and ``jac^T r``.
 
-    With the BLAS products the model uses already: a group of four stars
-    has 13 columns, whose products took 0.40 ms per step in loops and
-    0.05 ms in BLAS (45 x 70 stamp).
+    ``jac^T jac`` with the BLAS matrix product the model binds already: a
+    group of four stars has 13 columns, whose products took 0.40 ms per
+    step in loops and 0.05 ms in BLAS (45 x 70 stamp).  ``jac^T r`` in a
+    loop, and the arrays filled by loops rather than slice assignments: a
+    matrix-vector product and the broadcasting copies added about 6 s of CPU
+    to the first compilation (20 to 28 s, on a loaded machine), where the
+    loops cost nothing measurable.
     """
     jt = np.ascontiguousarray(jac.T)
-    return np.dot(jt, jac), np.dot(jt, r)
+    g = np.zeros(jt.shape[0])
+    for a in range(jt.shape[0]):
+        for i in range(r.size):
+            g[a] += jt[a, i] * r[i]
+    return np.dot(jt, jac), g
 
 
 @numba.njit(cache=True, nogil=True)
