@@ -189,6 +189,7 @@ def solve_catalog(
     frame: RectifiedFrame,
     options: AstrometryOptions | None = None,
     ref_mag=None,
+    start=None,
 ) -> SolvedCatalog:
     """Solve a night's detect catalogue against reference positions.
 
@@ -206,6 +207,8 @@ def solve_catalog(
     ref_mag : array_like or None
         Reference magnitudes (for the sky's transparency, see
         ``light_weighting``); None: the fit assumes a clear sky.
+    start : GeometryOffsets or None
+        Geometry of the first match (see :func:`solve_night`); None: nominal.
 
     Returns
     -------
@@ -252,6 +255,7 @@ def solve_catalog(
         "min_matches": options.min_matches,
         "clip_sigma": options.clip_sigma,
         "search": ranges,
+        "start": start,
     }
     solution = solve_night(*args, **kwargs)
     cloud = None

@@ -233,6 +233,7 @@ def solve_night(
     search: SearchRanges | None = SearchRanges(),
     clip_sigma: float = 5.0,
     transparency=None,
+    start: GeometryOffsets | None = None,
 ) -> AstrometricSolution:
     """Solve a night's geometry from its detections and a reference catalogue.
 
@@ -272,6 +273,10 @@ def solve_night(
         start (:func:`~pipeline.stages.astrometry.fit_transparency`): the
         predicted centroids are then the light-weighted means of the tracks
         (see :mod:`~pipeline.stages.astrometry._transparency`); None: time means.
+    start : GeometryOffsets or None, optional
+        Geometry of the first match (e.g. an earlier solution of the same
+        night); None: the nominal one.  If it matches too few stars the
+        search starts from the nominal geometry as usual.
 
     Returns
     -------
@@ -340,7 +345,7 @@ def solve_night(
         ri, di = match_nearest(r, c, None, None, radius, tree=tree)
         return ri, good_det[di], int(on_chip.sum())
 
-    offsets = GeometryOffsets()
+    offsets = GeometryOffsets() if start is None else start
     ri, di, n_chip = match(offsets, match_radius)
     counts["reference_on_chip"] = n_chip
     counts["matched_nominal"] = int(ri.size)

@@ -13,6 +13,7 @@ to ``wcs_tolerance`` pixels.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 from typing import Any
 
@@ -26,8 +27,15 @@ from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.products import FLUX_EXTENSION
 from pipeline.reference import ReferenceOptions, read_reference, sky_band_for_night
 from pipeline.stages.astrometry._catalog import AstrometryOptions, solve_catalog
+from pipeline.stages.astrometry._second_pass import (
+    centroid_noise,
+    kernel_change,
+    solved_kernels,
+)
 from pipeline.stages.astrometry._wcs import solved_wcs
 from pipeline.stages.base import BLOCK_INDEX, Stage
+from pipeline.stages.catalog import stack_catalogs
+from pipeline.stages.detect import DetectOptions, detect_stretch
 from pipeline.stages.rectify import night_model, stretch_columns
 
 __all__ = ["STAGE", "AstrometryStageOptions", "reference_columns", "stretch_wcs_cards"]
@@ -53,6 +61,18 @@ class AstrometryStageOptions(AstrometryOptions):
         0.02,
         gt=0,
         description="Pixels: largest allowed distance between a stretch's WCS and the solution.",
+    )
+    max_passes: int = Field(
+        3,
+        ge=1,
+        description="Solutions per night at most: after each, detect measures the stretches "
+        "again with the solved geometry's smear kernels if they differ enough (1: never).",
+    )
+    second_pass_noise: float = Field(
+        1.0,
+        gt=0,
+        description="Measure again when the solved geometry moves some smear-kernel sample "
+        "by more than this many bright-star centroid noises (see _second_pass).",
     )
 
 
@@ -142,6 +162,116 @@ def _pixel_scale(image, x_start: int, n_x: int, frame_x_ref: int) -> float:
     return float(header["CDELT2"]) * 3600.0
 
 
+#: Comment of the ``ASTPASS`` card of each stretch's solved WCS.
+_PASS_COMMENT = "astrometric solutions made; >1: smear re-measured"
+
+
+def _detect_options(catalog) -> DetectOptions:
+    """The options detect measured the night with (recorded in its catalogue)."""
+    recorded = catalog.meta.get("detect_options")
+    if recorded is None:
+        log.warning(
+            "the night catalogue does not record detect's options (made before they were "
+            "recorded): the second pass measures with detect's defaults; rerun detect to "
+            "measure with the config's."
+        )
+        return DetectOptions()
+    return DetectOptions(**recorded)
+
+
+def _remeasure(inputs, stretches, kernels: list, detect_options) -> QTable:
+    """The night catalogue measured again, each stretch with ``kernels[i]``."""
+    products = inputs["rectify"]
+    position = {stretch.index: i for i, stretch in enumerate(stretches)}
+    catalogs, seeing = [], []
+    for i, stretch in enumerate(stretches):
+        sides = [position.get(stretch.index - 1), position.get(stretch.index + 1)]
+        out = detect_stretch(
+            products[i],
+            *(None if k is None else products[k] for k in sides),
+            detect_options,
+            stretch_index=stretch.index,
+            kernels=(kernels[i], *(None if k is None else kernels[k] for k in sides)),
+        )
+        catalogs.append(out["catalog"])
+        seeing.append(out["seeing"])
+    catalog, _ = stack_catalogs(catalogs, seeing)
+    return catalog
+
+
+def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
+    """Solve, and measure again with the solved smear kernels while they differ enough.
+
+    Returns the last solution and one record per pass (what the kernels
+    followed, the kernel change the solution implies, the threshold, the
+    decision), for the parameters' provenance.
+    """
+    catalog = inputs["catalog"]["catalog"]
+    detect_options = _detect_options(catalog)
+    kernels = [inputs["rectify"][i]["smear_kernels"] for i in range(len(stretches))]
+    deconvolved = any(
+        bool(inputs["rectify"][i]["image"][FLUX_EXTENSION].header.get("DECONV", False))
+        for i in range(len(stretches))
+    )
+    passes, start = [], None
+    while True:
+        solved = solve_catalog(
+            catalog,
+            reference["ra"],
+            reference["dec"],
+            model,
+            frame,
+            options,
+            ref_mag=ref_mag,
+            start=start,
+        )
+        new = [solved_kernels(k, solved.solution, model, frame) for k in kernels]
+        change = max((kernel_change(a, b) for a, b in zip(kernels, new, strict=True)), default=0.0)
+        noise = centroid_noise(
+            u.Quantity(catalog["x_err"], u.pix).value,
+            u.Quantity(catalog["y_err"], u.pix).value,
+            np.asarray(catalog["snr"], float) if "snr" in catalog.colnames else None,
+            np.asarray(solved.catalog["ref_index"]) >= 0,
+        )
+        threshold = options.second_pass_noise * noise
+        record = {
+            "pass": len(passes) + 1,
+            "kernels_from": "config" if not passes else f"pass {len(passes)}",
+            "n_matched": int(solved.solution.fit.n_used),
+            "kernel_change_px": round(change, 4),
+            "centroid_noise_px": round(noise, 4),
+            "threshold_px": round(threshold, 4),
+            "geometry": {
+                k: float(v) for k, v in dataclasses.asdict(solved.solution.offsets).items()
+            },
+        }
+        again = bool(change > threshold) and len(passes) + 1 < options.max_passes
+        if again and deconvolved:
+            record["next"] = (
+                "none: the products are deconvolved with the configured kernels (rerun "
+                "rectify with a corrected camera section)"
+            )
+            again = False
+        else:
+            record["next"] = "measure again with these kernels" if again else "none"
+        passes.append(record)
+        log.info(
+            "astrometry pass %d: %d matched, smear kernels move by %.3f px "
+            "(threshold %.3f px = %.1f x centroid noise): %s",
+            record["pass"],
+            record["n_matched"],
+            change,
+            threshold,
+            options.second_pass_noise,
+            record["next"],
+        )
+        if not again:
+            return solved, passes
+        kernels = new
+        catalog = _remeasure(inputs, stretches, kernels, detect_options)
+        start = solved.solution.offsets
+
+
 def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
     stretches = context.input_stretches
     night_rows = context.stretches[-1].stop
@@ -163,15 +293,7 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
     ref_mag = None
     if "mag" in reference.colnames:
         ref_mag = u.Quantity(reference["mag"], u.mag).value
-    solved = solve_catalog(
-        inputs["catalog"]["catalog"],
-        reference["ra"],
-        reference["dec"],
-        model,
-        frame,
-        options,
-        ref_mag=ref_mag,
-    )
+    solved, passes = _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag)
     catalog = solved.catalog
     for name, values in reference_columns(catalog["ref_index"], reference).items():
         catalog[name] = values
@@ -183,9 +305,12 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
             wcs[stretch.id], error = stretch_wcs_cards(
                 solved.solution, start, stop - start, options.wcs_tolerance
             )
+            wcs[stretch.id]["ASTPASS"] = [len(passes), _PASS_COMMENT]
             worst = max(worst, error)
     parameters = solved.parameters
     parameters.meta["wcs_max_deviation_px"] = worst
+    parameters.meta["passes"] = passes
+    catalog.meta["astrometry_passes"] = len(passes)
     parameters.meta["reference"] = {
         key: reference.meta[key] for key in ("source", "n_read", "n_in_band", "n_selected")
     }

@@ -80,6 +80,7 @@ __all__ = [
     "SeeingProfile",
     "SourceFlag",
     "detect",
+    "detect_stretch",
     "fit_stars",
     "model_image",
     "seam_margin",
@@ -737,8 +738,8 @@ def _night_column(header) -> int:
     return round(header["CRVAL1A"] - (header["CRPIX1A"] - 1.0) * header["CDELT1A"])
 
 
-def _planes(products) -> Planes:
-    """A rectify stretch product as :class:`Planes`."""
+def _planes(products, kernels=None) -> Planes:
+    """A rectify stretch product as :class:`Planes` (``kernels``: None, its own)."""
     hdul = products["image"]
     header = hdul[FLUX_EXTENSION].header
     with warnings.catch_warnings():
@@ -751,12 +752,12 @@ def _planes(products) -> Planes:
         np.asarray(hdul[VARIANCE_EXTENSION].data, dtype=float),
         np.asarray(hdul[FLAGS_EXTENSION].data),
         _night_column(header),
-        products["smear_kernels"],
+        products["smear_kernels"] if kernels is None else kernels,
         wcs,
     )
 
 
-def _edge_planes(products, margin: int, last: bool) -> Planes | None:
+def _edge_planes(products, margin: int, last: bool, kernels=None) -> Planes | None:
     """The first (or ``last``) ``margin`` columns of a neighbouring rectified stretch.
 
     Reads only those columns of its planes (``section``), so a stretch's
@@ -781,7 +782,7 @@ def _edge_planes(products, margin: int, last: bool) -> Planes | None:
         planes[1].astype(float),
         planes[2],
         x_start,
-        products["smear_kernels"],
+        products["smear_kernels"] if kernels is None else kernels,
     )
 
 
@@ -802,16 +803,53 @@ def seam_margin(kernels: Table, fwhm: float) -> int:
     return int(np.ceil(2.0 * (2.0 * fwhm + half) + 8.0))
 
 
-def _run(*, inputs, options: DetectOptions, context) -> dict:
-    stretch = context.stretch
-    products = inputs["rectify"]
-    before, after = inputs[NEIGHBOURS]["rectify"]
-    own = _planes(products)
+def detect_stretch(
+    products,
+    before=None,
+    after=None,
+    options: DetectOptions | None = None,
+    *,
+    stretch_index: int = 0,
+    kernels=None,
+) -> dict:
+    """Detect and measure one rectified stretch, with its neighbours' edge columns.
+
+    The detect stage's unit of work, also used by astrometry's second pass
+    (which measures the same planes with the smear kernels of its solved
+    geometry).
+
+    Parameters
+    ----------
+    products : mapping
+        rectify's products of the stretch (``image``, ``smear_kernels``).
+    before, after : mapping or None
+        The adjacent stretches' rectify products, or None.
+    options : DetectOptions, optional
+        Default ``DetectOptions()``.
+    stretch_index : int
+        Written to the catalogue's and seeing table's ``stretch`` column.
+    kernels : (Table, Table or None, Table or None) or None
+        The smear kernels to model the stars of the stretch, of ``before``
+        and of ``after`` with (rectify's record redone for another
+        geometry); None: the ones rectify recorded.
+
+    Returns
+    -------
+    dict
+        ``catalog``, ``seeing`` and, if any, ``PROBLEMS`` (the stage's products).
+    """
+    options = DetectOptions() if options is None else options
+
+    own_kernels, before_kernels, after_kernels = (None, None, None) if kernels is None else kernels
+    own = _planes(products, own_kernels)
     header = products["image"][FLUX_EXTENSION].header
     margin = seam_margin(own.kernels, options.fwhm_guess)
     if _has_data(own):
         padded, own_columns = padded_stretch(
-            own, _edge_planes(before, margin, True), _edge_planes(after, margin, False), margin
+            own,
+            _edge_planes(before, margin, True, before_kernels),
+            _edge_planes(after, margin, False, after_kernels),
+            margin,
         )
     else:  # detect reports it; a neighbour's edge alone would leave too few pixels to measure
         padded, own_columns = own, None
@@ -828,18 +866,33 @@ def _run(*, inputs, options: DetectOptions, context) -> dict:
         **options.model_dump(),
     )
     catalog = result.catalog
-    catalog["stretch"] = u.Quantity(np.full(len(catalog), stretch.index, np.int32), u.one)
+    catalog["stretch"] = u.Quantity(np.full(len(catalog), stretch_index, np.int32), u.one)
     catalog["stretch"].info.description = "index of the stretch whose columns hold x"
     catalog.meta["merge_rule"] = MERGE_RULE
     seeing = result.seeing
-    seeing["stretch"] = u.Quantity(np.full(len(seeing), stretch.index, np.int32), u.one)
+    seeing["stretch"] = u.Quantity(np.full(len(seeing), stretch_index, np.int32), u.one)
     seeing["x_start"] = np.full(len(seeing), own.x_start) * u.pix
     seeing["x_stop"] = np.full(len(seeing), own.x_stop) * u.pix
     seeing.meta.update(seeing_shape=options.seeing_shape, moffat_beta=options.moffat_beta)
-    log.info("%s: %d sources, seeing FWHM %.2f px", stretch.id, len(catalog), seeing["fwhm"][0])
     out = {"catalog": catalog, "seeing": seeing}
     if result.problems:
         out[PROBLEMS] = list(result.problems)
+    return out
+
+
+def _run(*, inputs, options: DetectOptions, context) -> dict:
+    before, after = inputs[NEIGHBOURS]["rectify"]
+    out = detect_stretch(
+        inputs["rectify"], before, after, options, stretch_index=context.stretch.index
+    )
+    # the options ride with the catalogue: astrometry's second pass measures again with them
+    out["catalog"].meta["detect_options"] = options.model_dump(mode="json")
+    log.info(
+        "%s: %d sources, seeing FWHM %.2f px",
+        context.stretch.id,
+        len(out["catalog"]),
+        out["seeing"]["fwhm"][0],
+    )
     return out
 
 

@@ -249,6 +249,7 @@ def smear_kernels(
     x: np.ndarray,
     y: np.ndarray,
     n_samples: int = 64,
+    sky: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> Table:
     """The smear kernel at rectified positions, in rectified pixels.
 
@@ -269,6 +270,12 @@ def smear_kernels(
         Rectified (night) pixel positions.
     n_samples : int
         Time samples per kernel.
+    sky : (ndarray, ndarray) or None
+        ICRS (ra, dec) [deg] of the stars ``model`` records at ``(x, y)``
+        when ``model`` is not the geometry ``frame`` and ``strip_map`` were
+        made with (a solved geometry: the kernels of the true tracks on the
+        grid rectify resampled with the nominal one); None: the frame's sky
+        at ``(x, y)``.
 
     Returns
     -------
@@ -286,7 +293,7 @@ def smear_kernels(
     y = np.asarray(y, dtype=float)
     dx = np.empty((x.size, n_samples))
     dy = np.empty((x.size, n_samples))
-    ra, dec = frame.icrs_from_pixel(x, y)
+    ra, dec = frame.icrs_from_pixel(x, y) if sky is None else sky
     inverse = np.linalg.inv(strip_map.jacobian(x, y))
     for value in np.unique(x):
         sel = np.flatnonzero(x == value)

@@ -1,0 +1,145 @@
+"""Astrometry's second pass: the smear kernels of the solved geometry, and when they matter.
+
+Why a second pass
+-----------------
+rectify records each star's smear kernel (its track over the crossing,
+relative to its mean) from the configured geometry, and detect fits every
+star with the seeing profile averaged over that kernel.  If the config is
+wrong, so is the kernel: a focal length 1 % short makes rectify expect the
+rows to be clocked 1 % off the drift, a streak ``0.01 N`` rows longer than the
+real one (41 rows over 4096 TDI rows, DESIGN.md section 4).  A model streak
+much longer than the star leaves the fitted position free to slide along it,
+so detect's centroids scatter by px, growing with the kernel error towards
+the chip's edges, and the solution built on them is poor.
+
+Once a solution exists, the tracks it implies are the ones on the chip.
+rectify's resampling is only a change of coordinates, which astrometry undoes
+exactly through the same nominal map, so the rectified planes need not be
+made again: only the kernels change.  :func:`solved_kernels` computes them
+at rectify's recorded positions, as the solved geometry's tracks of the stars
+recorded there, turned into rectified pixels with the nominal map's Jacobian
+(the map rectify resampled with).  detect then measures the same planes with
+these kernels, and the night is solved again.  A deconvolved product is the
+exception (its stars were made round with the configured kernels): it would
+need rectify again, which this pass does not do.
+
+When
+----
+:func:`kernel_change` is the largest displacement of any equal-time sample
+of any recorded kernel between the kernels detect used and the solved
+geometry's.  A model that differs from the star's true image by at most
+that much anywhere along the streak cannot pull the fitted centre further
+than that; when it stays below the bright stars' centroid noise
+(:func:`centroid_noise`) times ``second_pass_noise``, a second measurement
+cannot improve the bright stars' positions noticeably and is not made.  A
+night whose config is right, solved with reasonable errors, thus has no
+second pass: a focal length off by ``e`` changes the kernels by about
+``N e`` rows (0.04 px for ``e = 1e-5`` over 4096 TDI rows), against bright
+stars' 0.01-0.05 px.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from astropy.table import Table
+
+from pipeline.stages.rectify._map import StripMap, smear_kernels
+
+__all__ = ["BRIGHT_SNR", "centroid_noise", "kernel_change", "solved_kernels"]
+
+#: Signal-to-noise of the bright stars whose centroid noise sets the second
+#: pass's threshold (the issue's bright-star residual bound refers to them).
+BRIGHT_SNR = 50.0
+
+#: Node spacing of the nominal map used for the kernels' Jacobian, rectified
+#: px (rectify's defaults; the Jacobian is smooth on far larger scales).
+_MAP_STEP = (256, 16)
+
+
+def solved_kernels(kernels: Table, solution, nominal_model, frame) -> Table:
+    """rectify's kernel record redone with the tracks of a solved geometry.
+
+    Parameters
+    ----------
+    kernels : astropy.table.Table
+        rectify's ``smear_kernels`` product of one stretch (``x``, ``y`` in
+        night rectified pixels; ``meta['n_samples']``).
+    solution : AstrometricSolution
+        The night's solution: ``solution.solved_model`` gives the tracks,
+        ``solution.sky_from_rectified`` the star recorded at each position.
+    nominal_model : TDIModel
+        The geometry rectify resampled with (the config's).
+    frame : RectifiedFrame
+        The night's rectified grid.
+
+    Returns
+    -------
+    astropy.table.Table
+        Same positions and columns as ``kernels`` (see
+        :func:`pipeline.stages.rectify.smear_kernels`).
+    """
+    x = np.asarray(kernels["x"], dtype=float)
+    y = np.asarray(kernels["y"], dtype=float)
+    n_samples = int(kernels.meta.get("n_samples", np.shape(kernels["dx"])[1]))
+    pad = 16 + _MAP_STEP[0] // 4
+    strip_map = StripMap(
+        nominal_model,
+        frame,
+        float(x.min()) - pad,
+        float(x.max()) + pad,
+        step_x=_MAP_STEP[0],
+        step_y=_MAP_STEP[1],
+    )
+    sky = solution.sky_from_rectified(x, y)
+    return smear_kernels(solution.solved_model, frame, strip_map, x, y, n_samples, sky=sky)
+
+
+def kernel_change(before: Table, after: Table) -> float:
+    """Largest displacement of an equal-time kernel sample between two records, px.
+
+    Both tables hold the kernels of the same positions (as
+    :func:`solved_kernels` returns them for rectify's record).
+    """
+    if len(before) != len(after):
+        raise ValueError(
+            f"the kernel records differ in length ({len(before)} and {len(after)}); "
+            "compare the kernels of the same positions."
+        )
+    if len(before) == 0:
+        return 0.0
+    dx = np.asarray(after["dx"], float) - np.asarray(before["dx"], float)
+    dy = np.asarray(after["dy"], float) - np.asarray(before["dy"], float)
+    return float(np.nanmax(np.hypot(dx, dy)))
+
+
+def centroid_noise(x_err, y_err, snr, matched) -> float:
+    """Typical centroid noise of the night's bright matched stars, px.
+
+    The median of ``sqrt((x_err^2 + y_err^2) / 2)`` over the matched
+    detections with S/N >= :data:`BRIGHT_SNR`; if fewer than 5 are that
+    bright, over the best-measured tenth of the matched ones (at least 5).
+
+    Parameters
+    ----------
+    x_err, y_err : array_like, shape (n,)
+        Centroid errors, rectified px.
+    snr : array_like or None, shape (n,)
+        Detection signal-to-noise; None: rank by the errors alone.
+    matched : array_like of bool, shape (n,)
+        Which detections matched a reference star.
+
+    Returns
+    -------
+    float
+        px; NaN if nothing matched.
+    """
+    sigma = np.sqrt(0.5 * (np.asarray(x_err, float) ** 2 + np.asarray(y_err, float) ** 2))
+    good = np.asarray(matched, bool) & np.isfinite(sigma)
+    if not good.any():
+        return float("nan")
+    if snr is not None:
+        bright = good & (np.asarray(snr, float) >= BRIGHT_SNR)
+        if bright.sum() >= 5:
+            return float(np.median(sigma[bright]))
+    ranked = np.sort(sigma[good])
+    return float(np.median(ranked[: max(5, ranked.size // 10)]))
