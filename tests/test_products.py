@@ -395,3 +395,15 @@ def test_observation_header_is_standard_fits_time_and_site():
         observation_header(
             reference_time=reference, start=1.0, stop=0.0, exposure=None, site=site, camera=camera
         )
+
+
+def test_the_demo_night_is_solved_in_one_pass(demo):
+    """The demo's config is its camera: the first solution's smear kernels differ from
+    rectify's by less than the bright stars' centroid noise, so detect does not
+    measure the night again (self-consistency; the second pass's threshold,
+    pipeline/stages/astrometry/_second_pass.py)."""
+    folder, _ = demo
+    parameters = Table.read(_night(folder) / "astrometry/night/parameters.ecsv")
+    (only,) = parameters.meta["passes"]
+    assert only["kernel_change_px"] <= only["threshold_px"], only
+    assert only["next"] == "none"

@@ -22,6 +22,10 @@ night.
   the sky's transparency within the crossings from the matched stars' fluxes;
   under a cloud the predictor weights each track by it (light-weighted
   centroids).
+* :mod:`~pipeline.stages.astrometry._second_pass`: :func:`solved_kernels`,
+  rectify's smear kernels redone with a solved geometry's tracks, and the
+  threshold (kernel change against the bright stars' centroid noise) at
+  which the stage has detect measure the night again with them.
 * :mod:`~pipeline.stages.astrometry._wcs`: :func:`solved_wcs`, a TAN-SIP
   WCS per product that reproduces the solution (0.005 px on the test chip).
 * :mod:`~pipeline.stages.astrometry._catalog`: :func:`solve_catalog`, the
@@ -49,6 +53,11 @@ from pipeline.stages.astrometry._model import (
     SkyTracks,
     east_tilt_equivalent,
     sky_tracks,
+)
+from pipeline.stages.astrometry._second_pass import (
+    centroid_noise,
+    kernel_change,
+    solved_kernels,
 )
 from pipeline.stages.astrometry._solve import (
     AstrometricSolution,
@@ -82,9 +91,11 @@ __all__ = [
     "SolvedCatalog",
     "TransparencyCurve",
     "WanderSpline",
+    "centroid_noise",
     "east_tilt_equivalent",
     "fit_geometry",
     "fit_transparency",
+    "kernel_change",
     "match_nearest",
     "offset_peak",
     "reference_columns",
@@ -93,6 +104,7 @@ __all__ = [
     "sky_tracks",
     "solve_catalog",
     "solve_night",
+    "solved_kernels",
     "solved_wcs",
     "stretch_wcs_cards",
 ]

@@ -31,21 +31,34 @@ geometry's.  A model that differs from the star's true image by at most
 that much anywhere along the streak cannot pull the fitted centre further
 than that; when it stays below the bright stars' centroid noise
 (:func:`centroid_noise`) times ``second_pass_noise``, a second measurement
-cannot improve the bright stars' positions noticeably and is not made.  A
-night whose config is right, solved with reasonable errors, thus has no
-second pass: a focal length off by ``e`` changes the kernels by about
-``N e`` rows (0.04 px for ``e = 1e-5`` over 4096 TDI rows), against bright
-stars' 0.01-0.05 px.
+cannot improve the bright stars' positions noticeably and is not made.  Nor
+is it when the change is not known: below 3 sigma of its own uncertainty
+(:func:`kernel_change_error`, the fit's covariance carried to the kernels),
+since kernels that follow the fit's noise move the centroids with it and the
+passes would chase that noise (on the demo night, whose config is right, the
+focal length and distortion walked off by 1-2 sigma a pass, 0.15 px of
+kernel change growing to 0.46 px over three passes).  A focal length off by
+``e`` changes the kernels by about ``N e`` rows (41 rows for the issue's
+``e = 1 %`` over 4096 TDI rows, 0.04 px for ``e = 1e-5``), against bright
+stars' 0.01-0.05 px of centroid noise.
 """
 
 from __future__ import annotations
+
+import dataclasses
 
 import numpy as np
 from astropy.table import Table
 
 from pipeline.stages.rectify._map import StripMap, smear_kernels
 
-__all__ = ["BRIGHT_SNR", "centroid_noise", "kernel_change", "solved_kernels"]
+__all__ = [
+    "BRIGHT_SNR",
+    "centroid_noise",
+    "kernel_change",
+    "kernel_change_error",
+    "solved_kernels",
+]
 
 #: Signal-to-noise of the bright stars whose centroid noise sets the second
 #: pass's threshold (the issue's bright-star residual bound refers to them).
@@ -56,7 +69,7 @@ BRIGHT_SNR = 50.0
 _MAP_STEP = (256, 16)
 
 
-def solved_kernels(kernels: Table, solution, nominal_model, frame) -> Table:
+def solved_kernels(kernels: Table, solution, nominal_model, frame, model=None) -> Table:
     """rectify's kernel record redone with the tracks of a solved geometry.
 
     Parameters
@@ -71,6 +84,8 @@ def solved_kernels(kernels: Table, solution, nominal_model, frame) -> Table:
         The geometry rectify resampled with (the config's).
     frame : RectifiedFrame
         The night's rectified grid.
+    model : TDIModel or None
+        The tracks' geometry; None: ``solution.solved_model``.
 
     Returns
     -------
@@ -91,7 +106,8 @@ def solved_kernels(kernels: Table, solution, nominal_model, frame) -> Table:
         step_y=_MAP_STEP[1],
     )
     sky = solution.sky_from_rectified(x, y)
-    return smear_kernels(solution.solved_model, frame, strip_map, x, y, n_samples, sky=sky)
+    model = solution.solved_model if model is None else model
+    return smear_kernels(model, frame, strip_map, x, y, n_samples, sky=sky)
 
 
 def kernel_change(before: Table, after: Table) -> float:
@@ -143,3 +159,54 @@ def centroid_noise(x_err, y_err, snr, matched) -> float:
             return float(np.median(sigma[bright]))
     ranked = np.sort(sigma[good])
     return float(np.median(ranked[: max(5, ranked.size // 10)]))
+
+
+def kernel_change_error(kernels: Table, solved: Table, solution, nominal_model, frame) -> float:
+    """1-sigma uncertainty of :func:`kernel_change` from the solution's covariance, px.
+
+    Each fitted parameter is moved by its error and the kernels redone
+    (:func:`solved_kernels`); the displacements, combined with the
+    parameters' correlations, give the variance of the kernel sample that
+    moves most, along its move.
+
+    Parameters
+    ----------
+    kernels, solved : astropy.table.Table
+        The kernels detect used and the solution's (:func:`solved_kernels`)
+        at the same positions.
+    solution : AstrometricSolution
+        Its ``fit`` holds the parameters' errors and covariance.
+    nominal_model, frame
+        As for :func:`solved_kernels`.
+    """
+    if len(kernels) == 0:
+        return 0.0
+    dx = np.asarray(solved["dx"], float) - np.asarray(kernels["dx"], float)
+    dy = np.asarray(solved["dy"], float) - np.asarray(kernels["dy"], float)
+    row, sample = np.unravel_index(np.nanargmax(np.hypot(dx, dy)), dx.shape)
+    # the recorded column of the worst kernel is enough (the kernels change
+    # smoothly along the scan, and each column costs a track computation)
+    column = np.flatnonzero(np.asarray(kernels["x"]) == kernels["x"][row])
+    kernels, solved = kernels[column], solved[column]
+    worst = (int(np.searchsorted(column, row)), sample)
+    dx, dy = dx[column], dy[column]
+    size = np.hypot(dx[worst], dy[worst])
+    direction = (dx[worst] / size, dy[worst] / size) if size > 0 else (1.0, 0.0)
+    fit = solution.fit
+    errors = fit.errors
+    moves = []
+    for name in fit.names:
+        offsets = dataclasses.replace(
+            solution.offsets, **{name: getattr(solution.offsets, name) + errors[name]}
+        )
+        moved = solved_kernels(
+            kernels, solution, nominal_model, frame, model=solution.model_for(offsets)
+        )
+        moves.append(
+            direction[0] * (moved["dx"][worst] - solved["dx"][worst])
+            + direction[1] * (moved["dy"][worst] - solved["dy"][worst])
+        )
+    sigma = np.sqrt(np.diag(fit.covariance))
+    correlation = fit.covariance / np.outer(sigma, sigma)
+    moves = np.asarray(moves, dtype=float)
+    return float(np.sqrt(max(moves @ correlation @ moves, 0.0)))

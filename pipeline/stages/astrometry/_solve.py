@@ -443,14 +443,18 @@ class AstrometricSolution:
     @cached_property
     def solved_model(self) -> TDIModel:
         """A full :class:`TDIModel` of the fitted geometry (clock offset in ``start``)."""
+        return self.model_for(self.offsets)
+
+    def model_for(self, offsets: GeometryOffsets) -> TDIModel:
+        """A full :class:`TDIModel` of the nominal geometry plus ``offsets``."""
         camera = dataclasses.replace(
             self.model.camera, focal_length=self.model.focal_length, spin_period=None
         )
-        true_camera, line_time = self.offsets.apply(camera, self.model.line_time)
+        true_camera, line_time = offsets.apply(camera, self.model.line_time)
         return TDIModel(
             self.model.site,
             true_camera,
-            self.model.start + TimeDelta(self.offsets.clock_offset, format="sec"),
+            self.model.start + TimeDelta(offsets.clock_offset, format="sec"),
             self.model.duration,
             line_time=line_time,
         )

@@ -9,6 +9,16 @@ read in chunks (the stage's one file, handed over by the runner as an
 :func:`solve_catalog` fits the night's geometry.  Each rectified stretch gets
 a TAN-SIP WCS of the solution (:func:`solved_wcs`), checked to reproduce it
 to ``wcs_tolerance`` pixels.
+
+Second pass: when the solution's tracks differ from the configured ones by
+more than the bright stars' centroid noise (``second_pass_noise``; see
+:mod:`~pipeline.stages.astrometry._second_pass`), detect measures every
+rectified stretch again with the solved geometry's smear kernels (with the
+options it recorded in its catalogue) and the night is solved again, from
+the previous solution, up to ``max_passes`` solutions.  Each pass is recorded
+in ``parameters.meta['passes']`` (kernel change, centroid noise, threshold,
+the geometry found, what followed) and the number of passes in each stretch
+WCS's ``ASTPASS`` card, which the science images carry.
 """
 
 from __future__ import annotations
@@ -30,6 +40,7 @@ from pipeline.stages.astrometry._catalog import AstrometryOptions, solve_catalog
 from pipeline.stages.astrometry._second_pass import (
     centroid_noise,
     kernel_change,
+    kernel_change_error,
     solved_kernels,
 )
 from pipeline.stages.astrometry._wcs import solved_wcs
@@ -226,7 +237,12 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
             start=start,
         )
         new = [solved_kernels(k, solved.solution, model, frame) for k in kernels]
-        change = max((kernel_change(a, b) for a, b in zip(kernels, new, strict=True)), default=0.0)
+        changes = [kernel_change(a, b) for a, b in zip(kernels, new, strict=True)]
+        change, error = 0.0, 0.0
+        if changes:
+            i = int(np.argmax(changes))
+            change = changes[i]
+            error = kernel_change_error(kernels[i], new[i], solved.solution, model, frame)
         noise = centroid_noise(
             u.Quantity(catalog["x_err"], u.pix).value,
             u.Quantity(catalog["y_err"], u.pix).value,
@@ -239,13 +255,18 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
             "kernels_from": "config" if not passes else f"pass {len(passes)}",
             "n_matched": int(solved.solution.fit.n_used),
             "kernel_change_px": round(change, 4),
+            "kernel_change_error_px": round(error, 4),
             "centroid_noise_px": round(noise, 4),
             "threshold_px": round(threshold, 4),
             "geometry": {
                 k: float(v) for k, v in dataclasses.asdict(solved.solution.offsets).items()
             },
         }
-        again = bool(change > threshold) and len(passes) + 1 < options.max_passes
+        # measured again only for a change both larger than the bright stars'
+        # noise and known: 3 sigma of the solution's own uncertainty (common
+        # practice), else the passes would chase the fit's noise
+        again = bool(change > threshold and change > 3.0 * error)
+        again &= len(passes) + 1 < options.max_passes
         if again and deconvolved:
             record["next"] = (
                 "none: the products are deconvolved with the configured kernels (rerun "
@@ -256,11 +277,12 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
             record["next"] = "measure again with these kernels" if again else "none"
         passes.append(record)
         log.info(
-            "astrometry pass %d: %d matched, smear kernels move by %.3f px "
-            "(threshold %.3f px = %.1f x centroid noise): %s",
+            "astrometry pass %d: %d matched, smear kernels move by %.3f +- %.3f px "
+            "(threshold %.3f px = %.1f x centroid noise, and 3 sigma): %s",
             record["pass"],
             record["n_matched"],
             change,
+            error,
             threshold,
             options.second_pass_noise,
             record["next"],
