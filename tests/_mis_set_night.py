@@ -1,7 +1,8 @@
 """The issue's mis-set night, raw blocks to astrometry, and its figures against the truth.
 
-Shared by the slow test in ``tests/test_astrometry_stage.py`` (a 512-column
-chip) and ``benchmarks/bench_astrometry_night.py`` (a 4096-column chip): the
+Shared by the slow tests in ``tests/test_astrometry_stage.py`` (a 512-column
+chip, and a 4096-column one with 2048 TDI rows) and
+``benchmarks/bench_astrometry_night.py`` (4096 x 4096 by default): the
 simulator (``simulate.actual``) takes the night with the true camera, the
 config believes another one (the clock 2 s behind, a focal length 1 % short, no
 rotation and no tilt), and the camera clocks its rows 0.1 % slower than the
