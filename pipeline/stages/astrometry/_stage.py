@@ -174,7 +174,7 @@ def _pixel_scale(image, x_start: int, n_x: int, frame_x_ref: int) -> float:
 
 
 #: Comment of the ``ASTPASS`` card of each stretch's solved WCS.
-_PASS_COMMENT = "astrometric solutions made; >1: smear re-measured"
+_PASS_COMMENT = "astrometry passes; >1: smear measured again"
 
 
 def _detect_options(catalog) -> DetectOptions:
