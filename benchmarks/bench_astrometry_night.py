@@ -7,7 +7,7 @@ Run::
 
 The slow tests ``tests/test_astrometry_stage.py -k mis_set`` run this night on
 a 512-column chip, whose lever arm and few reference stars fix the camera
-rotation only to ~2", and on a 4096-column one with 2048 TDI rows.  Here the
+rotation only to ~2".  Here the
 chip is the issue's 4096 columns (and as many TDI rows), the night short
 (2048 rows by default) to stay affordable: the
 simulator (``simulate.actual``) takes it with the true camera, the config
