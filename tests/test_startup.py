@@ -17,7 +17,7 @@ import sys
 from pathlib import Path
 
 import pytest
-import yaml
+from test_night_run import _night
 
 from pipeline.cli import main
 
@@ -67,25 +67,7 @@ def test_reading_a_config_loads_no_heavy_library():
 @pytest.fixture(scope="module")
 def done_night(tmp_path_factory) -> Path:
     """A small simulated night run through the catalogue stage; returns its config."""
-    folder = tmp_path_factory.mktemp("night")
-    config = {
-        "night": {"name": "n", "raw_dir": "raw", "pattern": "block_*.fits", "output_dir": "out"},
-        "site": {"latitude": 20.0, "longitude": -100.0, "height": 2000.0},
-        "camera": {"n_columns": 48, "tdi_rows": 128, "pixel_size": 15.0, "focal_length": 6.2},
-        "run": {"stretch_rows": 512, "overlap_rows": 64, "executor": "serial"},
-        "stages": {"column_stats": {"block_rows": 64}, "columns": {"min_blocks": 4}},
-        "simulate": {
-            "start": "2026-03-20T04:00:00",
-            "n_blocks": 4,
-            "block_rows": 256,
-            "overscan_columns": 8,
-            "compress": False,
-            "sky": {"sky_ramp": 4.0},
-        },
-    }
-    path = folder / "night.yaml"
-    path.write_text(yaml.safe_dump(config))
-    assert main(["simulate", str(path)]) == 0
+    path = _night(tmp_path_factory.mktemp("night"))
     # a 48-column chip holds too few reference stars for astrometry: stop before it
     assert main(["run", str(path), "--to", "catalog"]) == 0
     return path
