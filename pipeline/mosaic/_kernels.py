@@ -41,6 +41,7 @@ from astropy.table import Table
 from pipeline.mosaic._tiles import Tile
 from pipeline.stages.detect import SeeingProfile
 from pipeline.stages.detect._model import KernelGrid
+from pipeline.stages.rectify._map import kernel_table
 
 __all__ = ["SeeingMix", "carried_kernels"]
 
@@ -182,24 +183,16 @@ def carried_kernels(
         return None
     dx = sum_x[keep] / total[keep, None]
     dy = sum_y[keep] / total[keep, None]
-    table = Table(
-        {
-            "x": x[keep],
-            "y": y[keep],
-            "dx": dx,
-            "dy": dy,
-            "length": dx.max(axis=1) - dx.min(axis=1),
-            "bow": dy.max(axis=1) - dy.min(axis=1),
-        }
-    )
-    for name in table.colnames:
-        table[name].unit = "pix"
-    table.meta["description"] = (
+    table = kernel_table(
+        x[keep],
+        y[keep],
+        dx,
+        dy,
+        n_samples,
         "TDI smear kernel of a co-added star: the nights' recorded kernels carried into "
         "tile pixels and averaged with the co-add's weights (equal-time samples relative "
-        "to their mean; a star's image is the seeing averaged over them)."
+        "to their mean; a star's image is the seeing averaged over them).",
     )
-    table.meta["n_samples"] = int(n_samples)
     log.debug(
         "%s: kernels on %d nodes, longest %.2f px, widest bow %.2f px",
         tile.name,

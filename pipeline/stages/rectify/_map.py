@@ -30,7 +30,7 @@ import math
 import numpy as np
 from astropy.table import Table
 
-__all__ = ["StripMap", "crossing_after", "smear_kernels"]
+__all__ = ["StripMap", "crossing_after", "kernel_table", "smear_kernels"]
 
 
 def crossing_after(model, x: float) -> float:
@@ -310,6 +310,28 @@ def smear_kernels(
     # a top-hat of one strip row along the scan) spans ``row_step`` along x.
     r, c = strip_map(x, y)
     sign_c = np.sign(strip_map.jacobian(x, y)[:, 1, 1])
+    return kernel_table(
+        x,
+        y,
+        dx,
+        dy,
+        n_samples,
+        "TDI smear kernel: equal-time samples of a star's track relative to its mean, "
+        "in rectified pixels (dx along the scan, east; dy north). A star's image is the "
+        "seeing PSF averaged over the samples.",
+        lattice_x=x - r,
+        lattice_y=y - sign_c * c,
+        row_step=np.abs(inverse[:, 0, 0]),
+    )
+
+
+def kernel_table(x, y, dx, dy, n_samples: int, description: str, **more) -> Table:
+    """A ``smear_kernels`` table: kernels ``dx``, ``dy`` (pixels) at ``(x, y)``.
+
+    Adds each kernel's ``length`` and ``bow`` (its extent along ``x`` and
+    ``y``); ``more`` are further per-position columns, all in pixels, as the
+    detect stage reads them.
+    """
     table = Table(
         {
             "x": x,
@@ -318,17 +340,11 @@ def smear_kernels(
             "dy": dy,
             "length": dx.max(axis=1) - dx.min(axis=1),
             "bow": dy.max(axis=1) - dy.min(axis=1),
-            "lattice_x": x - r,
-            "lattice_y": y - sign_c * c,
-            "row_step": np.abs(inverse[:, 0, 0]),
+            **more,
         }
     )
-    for name in ("x", "y", "dx", "dy", "length", "bow", "lattice_x", "lattice_y", "row_step"):
+    for name in table.colnames:
         table[name].unit = "pix"
-    table.meta["description"] = (
-        "TDI smear kernel: equal-time samples of a star's track relative to its mean, "
-        "in rectified pixels (dx along the scan, east; dy north). A star's image is the "
-        "seeing PSF averaged over the samples."
-    )
+    table.meta["description"] = description
     table.meta["n_samples"] = int(n_samples)
     return table
