@@ -63,11 +63,7 @@ from pipeline.stages.detect._measure import (
     single_stars,
 )
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
-from pipeline.stages.detect._saturated import (
-    CLIPPED,
-    merge_on_footprints,
-    saturated_footprints,
-)
+from pipeline.stages.detect._saturated import merge_on_footprints, saturated_footprints
 from pipeline.stages.detect._sky import sky_errors
 
 if TYPE_CHECKING:
@@ -378,7 +374,7 @@ def detect(
     var_fit = var
     if footprints is not None:
         var_fit = var.copy()
-        var_fit[has_bits(mask, CLIPPED)] = np.nan
+        var_fit[footprints.clipped] = np.nan
     grid = KernelGrid(smear_kernels)
     x_centre = x_start + 0.5 * (image.shape[1] - 1)
 

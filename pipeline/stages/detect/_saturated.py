@@ -46,10 +46,13 @@ class Footprints:
         Footprint number (1, 2, ...) per pixel, 0 outside.
     slices : list of (slice, slice)
         Bounding box of footprint ``k`` at index ``k - 1``.
+    clipped : ndarray of bool
+        The clipped pixels themselves (saturated or bleed).
     """
 
     labels: np.ndarray
     slices: list
+    clipped: np.ndarray
 
     def at(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
         """Footprint number under each position (0: none), pixels (zero-based)."""
@@ -83,12 +86,13 @@ def saturated_footprints(mask: np.ndarray, grow: float) -> Footprints | None:
     clipped = has_bits(mask, CLIPPED)
     if not clipped.any():
         return None
+    grown = clipped
     r = max(int(np.ceil(grow)), 0)
     if r:
         yy, xx = np.mgrid[-r : r + 1, -r : r + 1]
-        clipped = ndimage.binary_dilation(clipped, structure=xx**2 + yy**2 <= r * r)
-    labels, _ = ndimage.label(clipped)
-    return Footprints(labels.astype(np.int32), ndimage.find_objects(labels))
+        grown = ndimage.binary_dilation(clipped, structure=xx**2 + yy**2 <= r * r)
+    labels, _ = ndimage.label(grown)
+    return Footprints(labels.astype(np.int32), ndimage.find_objects(labels), clipped)
 
 
 def on_footprint(x: np.ndarray, y: np.ndarray, footprints: Footprints | None) -> np.ndarray:
