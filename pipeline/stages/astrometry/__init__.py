@@ -44,7 +44,13 @@ invert the map.
 """
 
 from pipeline.stages.astrometry._catalog import AstrometryOptions, SolvedCatalog, solve_catalog
-from pipeline.stages.astrometry._fit import FIT_PARAMETERS, GeometryFit, WanderSpline, fit_geometry
+from pipeline.stages.astrometry._fit import (
+    FIT_PARAMETERS,
+    GeometryFit,
+    WanderSpline,
+    error_floor,
+    fit_geometry,
+)
 from pipeline.stages.astrometry._match import OffsetPeak, match_nearest, offset_peak
 from pipeline.stages.astrometry._model import (
     GeometryOffsets,
@@ -93,6 +99,7 @@ __all__ = [
     "WanderSpline",
     "centroid_noise",
     "east_tilt_equivalent",
+    "error_floor",
     "fit_geometry",
     "fit_transparency",
     "kernel_change",

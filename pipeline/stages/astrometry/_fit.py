@@ -56,7 +56,14 @@ from pipeline.stages.astrometry._model import (
     SkyTracks,
 )
 
-__all__ = ["FIT_PARAMETERS", "GeometryFit", "WanderSpline", "fit_geometry", "parameter_jacobian"]
+__all__ = [
+    "FIT_PARAMETERS",
+    "GeometryFit",
+    "WanderSpline",
+    "error_floor",
+    "fit_geometry",
+    "parameter_jacobian",
+]
 
 log = logging.getLogger(__name__)
 
@@ -194,7 +201,10 @@ class GeometryFit:
     t_mid : ndarray
         Middle of each pair's crossing, seconds since ``start``.
     chi2_reduced : float
-        Of the kept pairs, with the given position errors.
+        Of the kept pairs, with the given position errors and ``error_floor``.
+    error_floor : float
+        Position error added in quadrature to every pair's in the weights,
+        strip pixels (0 unless the fit estimated it).
     """
 
     offsets: GeometryOffsets
@@ -209,6 +219,7 @@ class GeometryFit:
     residual_column: np.ndarray
     t_mid: np.ndarray
     chi2_reduced: float
+    error_floor: float = 0.0
 
     @property
     def covariance(self) -> np.ndarray:
@@ -270,6 +281,39 @@ def parameter_jacobian(predictor, tracks, offsets, names, pred, row, column):
     return np.column_stack(cols)
 
 
+def error_floor(residual: np.ndarray, sigma: np.ndarray, dof: float) -> float:
+    """Error to add in quadrature to every ``sigma`` so that the chi-square is ``dof``.
+
+    Solves ``sum(residual^2 / (sigma^2 + e^2)) = dof`` for ``e >= 0`` (the
+    left side falls as ``e`` grows); 0 when the residuals are already no
+    larger than their errors say.  Adding a common error in quadrature until
+    the reduced chi-square is 1 is common practice for a component of the
+    noise that the given errors lack (here: the reference catalogue's
+    positions, when the config does not give their error).
+
+    Parameters
+    ----------
+    residual, sigma : ndarray, shape (n,)
+        Residuals and their known 1-sigma errors, same units.
+    dof : float
+        Degrees of freedom of the fit.
+
+    Returns
+    -------
+    float
+        ``e``, in the units of ``residual``.
+    """
+    from scipy.optimize import brentq
+
+    r2 = np.asarray(residual, float) ** 2
+    s2 = np.asarray(sigma, float) ** 2
+    if dof <= 0 or np.sum(r2 / s2) <= dof:
+        return 0.0
+    # at e^2 = sum(r^2) / dof every term is below r^2 / e^2: the sum is < dof
+    e2 = brentq(lambda e2: np.sum(r2 / (s2 + e2)) - dof, 0.0, float(np.sum(r2)) / dof)
+    return float(np.sqrt(e2))
+
+
 def fit_geometry(
     predictor: GeometryPredictor,
     ref_tracks: SkyTracks,
@@ -285,6 +329,7 @@ def fit_geometry(
     knot_spacing: float | None = None,
     clip_sigma: float = 5.0,
     max_iterations: int = 10,
+    fit_error_floor: bool = False,
 ) -> GeometryFit:
     """Fit the geometry (and optionally the wander) to matched pairs.
 
@@ -312,6 +357,11 @@ def fit_geometry(
         its robust scale.
     max_iterations : int
         Gauss-Newton iterations per clipping round.
+    fit_error_floor : bool
+        Also estimate a position error added in quadrature to every pair's
+        (:func:`error_floor`), re-weighting the pairs with it at each
+        clipping round: the reference stars' errors where the caller could
+        not include them, or any jitter the model lacks.
 
     Returns
     -------
@@ -338,6 +388,7 @@ def fit_geometry(
     obs = np.r_[det_row[det_index], det_column[det_index]]
     s_r = np.ones(n) if sigma_row is None else np.asarray(sigma_row, float)[det_index]
     s_c = np.ones(n) if sigma_column is None else np.asarray(sigma_column, float)[det_index]
+    floor = 0.0
     weight = 1.0 / np.r_[s_r, s_c]
     pred, row, column = _model(predictor, tracks, offsets)
     ok = np.isfinite(row) & np.isfinite(column)
@@ -367,7 +418,7 @@ def fit_geometry(
     values = np.array([getattr(offsets, nm) for nm in names], float)
     full_cov = np.full((len(names), len(names)), np.nan)
     chi2 = np.nan
-    for _round in range(6):
+    for _round in range(10):
         for _ in range(max_iterations):
             pred, row, column = _model(predictor, tracks, offsets)
             w_r, w_c = wander_part()
@@ -401,7 +452,8 @@ def fit_geometry(
         w_r, w_c = wander_part()
         res_r = det_row[det_index] - row - w_r
         res_c = det_column[det_index] - column - w_c
-        radius = np.hypot(res_r / s_r, res_c / s_c)
+        e_r, e_c = np.hypot(s_r, floor), np.hypot(s_c, floor)
+        radius = np.hypot(res_r / e_r, res_c / e_c)
         good = np.isfinite(radius)
         # robust scale of a 2-D Gaussian's radius: median = sigma sqrt(2 ln 2)
         scale = np.median(radius[used & good]) / np.sqrt(2.0 * np.log(2.0))
@@ -410,9 +462,16 @@ def fit_geometry(
         dof = max(2 * n_keep - normal.shape[0], 1)
         chi2 = float((radius[new_used] ** 2).sum() / dof)
         full_cov = np.linalg.pinv(scaled, rcond=1e-13) / np.outer(norm, norm) * chi2
-        if np.array_equal(new_used, used):
+        new_floor = floor
+        if fit_error_floor:
+            k = np.flatnonzero(new_used)
+            new_floor = error_floor(np.r_[res_r[k], res_c[k]], np.r_[s_r[k], s_c[k]], dof)
+        # a floor within 2 % of the last changes the weights by < 2 %
+        settled = abs(new_floor - floor) <= 0.02 * max(new_floor, 1e-12)
+        if np.array_equal(new_used, used) and settled:
             break
-        used = new_used
+        used, floor = new_used, new_floor
+        weight = 1.0 / np.r_[np.hypot(s_r, floor), np.hypot(s_c, floor)]
     wander = None
     if spline_q is not None:
         knots, _, q_row, q_col = spline_q
@@ -443,4 +502,5 @@ def fit_geometry(
         residual_column=res_c,
         t_mid=pred.t_mid,
         chi2_reduced=chi2,
+        error_floor=floor,
     )

@@ -232,6 +232,7 @@ def solve_night(
     good_fraction: float = 0.3,
     search: SearchRanges | None = SearchRanges(),
     clip_sigma: float = 5.0,
+    fit_error_floor: bool = False,
     transparency=None,
     start: GeometryOffsets | None = None,
 ) -> AstrometricSolution:
@@ -268,6 +269,10 @@ def solve_night(
         How far to search when the nominal match is poor; None: do not search.
     clip_sigma : float, optional
         Outlier rejection threshold (robust sigmas of the residual radius).
+    fit_error_floor : bool, optional
+        Estimate a position error common to every pair and weight with it
+        added to ``x_err``, ``y_err`` (see
+        :func:`~pipeline.stages.astrometry._fit.error_floor`).
     transparency : callable or None, optional
         Relative transparency of the sky, of true seconds since the model's
         start (:func:`~pipeline.stages.astrometry.fit_transparency`): the
@@ -368,6 +373,7 @@ def solve_night(
         "sigma_column": sig_y,
         "parameters": parameters,
         "clip_sigma": clip_sigma,
+        "fit_error_floor": fit_error_floor,
     }
     fit = None
     for knots in (None, knot_spacing, knot_spacing):
@@ -486,7 +492,11 @@ class AstrometricSolution:
 
     def summary(self) -> dict:
         """Fitted parameters with errors, focal lengths and line times, as a flat dict."""
-        out = {"n_matched": self.fit.n_used, "chi2_reduced": self.fit.chi2_reduced}
+        out = {
+            "n_matched": self.fit.n_used,
+            "chi2_reduced": self.fit.chi2_reduced,
+            "error_floor_px": self.fit.error_floor,
+        }
         for name, err in self.fit.errors.items():
             out[name] = float(getattr(self.offsets, name))
             out[name + "_err"] = float(err)
