@@ -120,6 +120,24 @@ def test_a_night_too_short_for_the_column_solve_says_how_to_fix_it(tmp_path, cap
     assert "stages.column_stats.block_rows" in out
 
 
+def test_a_short_night_gets_blocks_enough_for_the_column_solve(tmp_path, capsys):
+    """Left unset, the statistics blocks shrink on a short night (an eighth of its
+    rows, at least 16) so that its column solve has eight of them, and the
+    night is calibrated (with the default 256 rows it had one block and failed)."""
+    config = _night(tmp_path, simulate={"n_blocks": 1, "block_rows": 128})
+    unset = [
+        "--set",
+        "stages.ingest.start_ramp=none",
+        "--set",
+        "stages.column_stats.block_rows=null",
+    ]
+    assert main(["run", str(config), "--to", "calibrate", *unset]) == 0
+    stats = _product(tmp_path / "out/n/column_stats/s0000", "column_stats")
+    assert list(stats["block"]) == list(range(8))  # 128 rows: 8 blocks of 16
+    columns = _product(tmp_path / "out/n/columns/night", "columns")
+    assert (np.asarray(columns["flags"]) == 0).mean() > 0.9
+
+
 def test_the_start_ramp_is_flagged_and_left_out_of_the_solve(tmp_path, capsys):
     config = _night(tmp_path, simulate={"start_ramp": True})
     assert main(["run", str(config), "--to", "calibrate"]) == 0

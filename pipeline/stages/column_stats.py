@@ -14,7 +14,27 @@ from pipeline.stages.base import RAW_ROWS, Stage
 from pipeline.stages.calibrate import ColumnStatsOptions, column_statistics, options_kwargs
 from pipeline.stages.calibrate._rows import stretch_rows_for_stage
 
-__all__ = ["STAGE"]
+__all__ = ["STAGE", "auto_block_rows"]
+
+#: Rows per statistics block on a night long enough for :data:`AUTO_BLOCKS` of them.
+AUTO_BLOCK_ROWS = 256
+#: Blocks a night should give the column solve (``stages.columns.min_blocks``'s default).
+AUTO_BLOCKS = 8
+#: Fewest rows per block: a clipped column mean of 16 pixels still rejects a
+#: star's core (sigma clipping wants a dozen samples or more: common practice).
+MIN_BLOCK_ROWS = 16
+
+
+def auto_block_rows(night_rows: int) -> int:
+    """Rows per statistics block when the config leaves ``block_rows`` unset.
+
+    256 rows, or on a night of fewer than ``8 x 256`` rows an eighth of its
+    rows (at least 16): a short night still gives the column solve its
+    eight blocks instead of failing for want of them.
+    """
+    if night_rows >= AUTO_BLOCKS * AUTO_BLOCK_ROWS:
+        return AUTO_BLOCK_ROWS
+    return max(MIN_BLOCK_ROWS, int(night_rows) // AUTO_BLOCKS)
 
 
 def _run(*, inputs, options: ColumnStatsOptions, context) -> dict[str, Any]:
@@ -34,6 +54,9 @@ def _run(*, inputs, options: ColumnStatsOptions, context) -> dict[str, Any]:
             CalibrationWarning,
             stacklevel=2,
         )
+    block_rows = options.block_rows
+    if block_rows is None:
+        block_rows = auto_block_rows(sum(s.stop - s.start for s in context.stretches))
     table = column_statistics(
         rows.image,
         rows.overscan,
@@ -44,7 +67,8 @@ def _run(*, inputs, options: ColumnStatsOptions, context) -> dict[str, Any]:
         saturation=rows.saturation,
         segment=rows.segment,
         use_rows=use_rows,
-        **options_kwargs(options, exclude=("solve_rows",)),
+        block_rows=block_rows,
+        **options_kwargs(options, exclude=("solve_rows", "block_rows")),
     )
     return {"column_stats": table}
 
@@ -58,5 +82,7 @@ STAGE = Stage(
     scope="stretch",
     uses=("camera.flip_columns", "camera.flip_rows"),
     description="Per-block clipped column levels of each stretch (for the 1-D flat and dark).",
-    version=4,  # 2: bias window by cross-validation; 3: faster passes (rounding); 4: units
+    # 2: bias window by cross-validation; 3: faster passes (rounding); 4: units;
+    # 5: block rows chosen by the night's length unless configured
+    version=5,
 )

@@ -570,7 +570,13 @@ class _BiasOptions(_Options):
 class ColumnStatsOptions(_BiasOptions):
     """Options of the ``column_stats`` stage (see :func:`column_statistics`)."""
 
-    block_rows: int = Field(256, ge=8, description="Rows per statistics block.")
+    block_rows: int | None = Field(
+        None,
+        ge=8,
+        description="Rows per statistics block; null: 256, or on a night shorter than 8 such "
+        "blocks an eighth of its rows (at least 16), so that its column solve has blocks "
+        "enough (stages.columns.min_blocks, 8).",
+    )
     clip: float = Field(3.0, gt=1, description="Clipping of stars and hits, noise units.")
     solve_rows: tuple[int, int] | None = Field(
         None,
