@@ -16,7 +16,9 @@ import subprocess
 import sys
 import textwrap
 import time
+import types
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -1051,6 +1053,57 @@ def test_dask_on_a_cluster_of_its_own_survives_a_lost_worker(toy, tmp_path, monk
     report = run_night(config, stage="scale", force=True)
     assert [(r.stage, r.unit) for r in report.problems] == [("scale", "s0002")]
     assert "KilledWorker" in report.problems[0].reason
+
+
+@dataclasses.dataclass(frozen=True)
+class _Sleep:
+    """A unit of work that only sleeps (the executors name tasks by stage and unit)."""
+
+    seconds: float
+    stage: Any = dataclasses.field(default_factory=lambda: types.SimpleNamespace(name="sleep"))
+    unit: str = "s0000"
+
+
+def _sleep(task: _Sleep) -> None:
+    time.sleep(task.seconds)
+
+
+@pytest.mark.slow  # starts its own dask cluster: ~10 s
+@pytest.mark.parametrize("way", ["map", "flow"])
+def test_a_cluster_of_its_own_without_workers_fails_the_waiting_units(monkeypatch, way):
+    """Every worker gone for good (each died, none restarted): the waiting units
+    fail with the reason after NO_WORKERS_TIMEOUT instead of dask waiting for
+    a worker forever (seen once: the lost-worker test above hung with no
+    worker process left)."""
+    import threading
+
+    monkeypatch.setattr(_executors, "NO_WORKERS_TIMEOUT", 2.0)
+    executor = _executors.DaskExecutor(None, 1)
+    outcomes = []
+
+    def on_error(task, reason):
+        return ("failed", task, reason)
+
+    task = _Sleep(600.0)  # far longer than the test: only failing it ends the test
+
+    def wait_for_the_unit():
+        if way == "map":
+            outcomes.extend(executor.map(_sleep, [task], on_error))
+        else:
+            executor.flow(_sleep, [task], on_error, lambda o: outcomes.append(o) or [])
+
+    waiting = threading.Thread(target=wait_for_the_unit, daemon=True)
+    try:
+        executor._connect()
+        threading.Timer(2.0, executor._cluster.scale, args=(0,)).start()
+        waiting.start()
+        waiting.join(timeout=60.0)  # 2 s to lose the worker, 2 s alone, ~1 s per check
+        assert not waiting.is_alive(), "the unit still waits for a worker"
+    finally:
+        executor.close()
+    assert len(outcomes) == 1
+    assert outcomes[0][:2] == ("failed", task)
+    assert "dask cluster has had no worker" in outcomes[0][2]
 
 
 # ------------------------------------------------------------------ raw read errors

@@ -53,6 +53,7 @@ import logging
 import multiprocessing
 import os
 import pickle
+import queue
 import signal
 import subprocess
 import sys
@@ -76,6 +77,14 @@ OnError = Callable[[Any, str], Outcome]
 _SPAWN = multiprocessing.get_context("spawn")
 _BROKEN = object()  # marker: the task's pool broke before it reported
 _DIED = "its worker process died (killed, or out of memory); see the system log"
+#: Seconds the run's own dask cluster may have no worker at all before its
+#: waiting units fail (a worker that died is restarted within seconds; one
+#: whose restart failed is not, and dask would wait for it forever).
+NO_WORKERS_TIMEOUT = 60.0
+_NO_WORKERS = (
+    "the run's dask cluster has had no worker for {:.0f} s (each one died and was not "
+    "restarted: killed, out of memory, or too slow to start); see the log"
+)
 
 #: Seconds between two checks of a worker's watchdog for the death of its run.
 WATCH_INTERVAL = 0.2
@@ -394,6 +403,10 @@ class LocalPoolExecutor(Executor):
         self._reaper.stop()
 
 
+class _NoWorkersError(RuntimeError):
+    """The run's own dask cluster has lost every worker for good."""
+
+
 class DaskExecutor(Executor):
     """A dask.distributed client on a given scheduler or on a LocalCluster of its own."""
 
@@ -428,7 +441,6 @@ class DaskExecutor(Executor):
     def map(self, fn, tasks, on_error) -> Iterator[Outcome]:
         if not tasks:
             return
-        import distributed
 
         client = self._connect()
         batch = uuid.uuid4().hex[:8]
@@ -440,16 +452,21 @@ class DaskExecutor(Executor):
                 continue
             key = f"{task.stage.name}-{task.unit}-{batch}"
             futures[client.submit(fn, task, pure=False, key=key)] = task
-        for future in distributed.as_completed(list(futures), loop=client.loop):
-            try:
-                yield future.result()
-            except Exception as exc:  # KilledWorker, lost connection, ...
-                yield on_error(futures[future], f"{type(exc).__name__}: {exc}")
+        pending = set(futures)
+        try:
+            for future in self._completed(client, pending):
+                try:
+                    yield future.result()
+                except Exception as exc:  # KilledWorker, lost connection, ...
+                    yield on_error(futures[future], f"{type(exc).__name__}: {exc}")
+        except _NoWorkersError as exc:
+            for future in list(pending):
+                future.cancel()
+                yield on_error(futures[future], str(exc))
 
     def flow(self, fn, tasks, on_error, on_done, key=None) -> None:
         if not tasks:
             return
-        import distributed
 
         client = self._connect()
         batch = uuid.uuid4().hex[:8]
@@ -469,14 +486,52 @@ class DaskExecutor(Executor):
                 submitted.append(future)
             return submitted
 
-        completed = distributed.as_completed(submit(tasks), loop=client.loop)
-        for future in completed:
+        pending = set(submit(tasks))
+        try:
+            for future in self._completed(client, pending):
+                try:
+                    outcome = future.result()
+                except Exception as exc:  # KilledWorker, lost connection, ...
+                    outcome = on_error(futures[future], f"{type(exc).__name__}: {exc}")
+                pending.update(submit(on_done(outcome)))
+        except _NoWorkersError as exc:
+            # the units waiting fail, and so do those that would follow them
+            failed = [futures[future] for future in pending]
+            for future in pending:
+                future.cancel()
+            while failed:
+                for task in on_done(on_error(failed.pop(), str(exc))):
+                    failed.append(task)
+
+    def _completed(self, client, pending: set) -> Iterator[Any]:
+        """Futures of ``pending`` as they finish (the caller may add to it).
+
+        Raises `_NoWorkersError` if the run's own cluster has had no worker for
+        :data:`NO_WORKERS_TIMEOUT` seconds (a scheduler given in the config
+        may gain workers later: there the run waits).
+        """
+        finished: queue.SimpleQueue = queue.SimpleQueue()
+        watched: set = set()
+        alone_since = None
+        while pending:
+            for future in pending - watched:
+                future.add_done_callback(finished.put)
+                watched.add(future)
             try:
-                outcome = future.result()
-            except Exception as exc:  # KilledWorker, lost connection, ...
-                outcome = on_error(futures[future], f"{type(exc).__name__}: {exc}")
-            for new in submit(on_done(outcome)):
-                completed.add(new)
+                # wake up now and then to see whether the cluster still has workers
+                future = finished.get(timeout=min(5.0, NO_WORKERS_TIMEOUT / 4))
+            except queue.Empty:
+                if self._cluster is None or client.scheduler_info().get("workers"):
+                    alone_since = None
+                elif alone_since is None:
+                    alone_since = time.monotonic()
+                elif time.monotonic() - alone_since > NO_WORKERS_TIMEOUT:
+                    raise _NoWorkersError(_NO_WORKERS.format(NO_WORKERS_TIMEOUT)) from None
+                continue
+            alone_since = None
+            if future in pending:
+                pending.discard(future)
+                yield future
 
     def close(self) -> None:
         if self._client is not None:
