@@ -89,6 +89,8 @@ TILE_STAGE = Stage(
     requires=(SCIENCE,),
     scope="night",
     uses=(),
-    version=2,  # 2: catalogues measured with the smear kernel the co-added stars carry
+    # 2: catalogues measured with the smear kernel the co-added stars carry;
+    # 3: and with the nights' TDI clocking top-hat
+    version=3,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )

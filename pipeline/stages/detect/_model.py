@@ -266,6 +266,26 @@ class KernelGrid:
         )
         return Response(float(values[0] % 1.0), float(values[1] % 1.0), float(values[2]))
 
+    def row_steps(self, x: np.ndarray, y: np.ndarray) -> np.ndarray | None:
+        """The clocking top-hat's length along x at many positions, pixels; None if not recorded.
+
+        The ``row_step`` of :meth:`response` (the same interpolation: linear
+        in ``y`` within each recorded column, then in ``x`` between columns)
+        for all positions in one pass.
+        """
+        if self._responses is None:
+            return None
+        x = np.atleast_1d(np.asarray(x, dtype=float))
+        y = np.atleast_1d(np.asarray(y, dtype=float))
+        pairs = zip(self._rows, self._responses, strict=True)
+        per_column = np.array([np.interp(y, rows[0], v[:, 2]) for rows, v in pairs])
+        if self.columns.size == 1:
+            return per_column[0]
+        k = np.clip(np.searchsorted(self.columns, x) - 1, 0, self.columns.size - 2)
+        t = np.clip((x - self.columns[k]) / (self.columns[k + 1] - self.columns[k]), 0.0, 1.0)
+        n = np.arange(x.size)
+        return (1.0 - t) * per_column[k, n] + t * per_column[k + 1, n]
+
     def __call__(self, x: float, y: float) -> tuple[np.ndarray, np.ndarray]:
         """Kernel samples ``(dx, dy)`` at night rectified position ``(x, y)``, pixels."""
         ys, dx, dy = self._rows[int(np.argmin(np.abs(self.columns - x)))]
