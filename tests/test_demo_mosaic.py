@@ -271,11 +271,12 @@ def test_the_tile_catalogues_against_the_truth(demo):
     of ~30-50 stars of ~10 mas each to ~2 mas (measured +2.9 to +3.5 mas;
     round profiles, blind to the bow across the scan, gave -140 to -175 mas,
     the bow turned the wrong way +290 mas).  Magnitudes: the median within
-    0.02 mag (measured -0.011, -0.004, +0.002; the nights' own catalogues
-    give -0.007 to +0.005 on the same stars, and the tiles differ from them
-    by -0.009 to +0.002: tile858 misses the issue's 0.5 % there.  A single
-    Moffat for the three nights' 1.2-1.8 arcsec seeing gave +0.018 to +0.027,
-    round profiles -0.06 to +0.13).
+    0.02 mag (measured -0.0074, -0.0022, -0.0019; the nights' own catalogues
+    give -0.007 to +0.012 on the same stars, and the tiles differ from them
+    by -0.0050 to +0.0019.  Without the nights' clocking top-hat on the
+    tiles: -0.0107, -0.0055, -0.0028, the tiles -0.0072 to -0.0027 from the
+    nights.  A single Moffat for the three nights' 1.2-1.8 arcsec seeing gave
+    +0.018 to +0.027, round profiles -0.06 to +0.13).
     """
     folder, _ = demo
     truth = _truth(folder, NIGHTS[0])
