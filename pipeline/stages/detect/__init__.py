@@ -517,6 +517,9 @@ def detect(
     shape_cols = [
         np.asarray(q.value, dtype=float) for q in (cat.fwhm, cat.ellipticity, cat.orientation)
     ]
+    # the search's planes are done with: free them before the fits and the second
+    # search make theirs (each a plane of the stretch)
+    del cat, snr, segm, parent, data_for_cat
 
     fitted: dict = {}  # groups already fitted, for the later passes
 
@@ -549,7 +552,9 @@ def detect(
         # a few per cent off the seeing loses a negligible (second-order) S/N.
         _snr2, segm2, _parent2 = segment(filter_profile, cleaned)
         if segm2 is not None:
-            cat2, nx2, ny2 = sources(segm2, _snr2, _filled(cleaned, no_data, 0.0, missing))
+            if missing:  # filled in place: searched already, no copy needed
+                cleaned[no_data] = 0.0
+            cat2, nx2, ny2 = sources(segm2, _snr2, cleaned)
             near = cKDTree(np.column_stack([fits_["x"], fits_["y"]])).query(
                 np.column_stack([nx2, ny2])
             )[0]
@@ -572,6 +577,7 @@ def detect(
                 shape_cols = [
                     np.concatenate([c0, c1]) for c0, c1 in zip(shape_cols, more, strict=True)
                 ]
+                del cleaned, _snr2, segm2, _parent2, cat2  # as after the first search
                 members, fits_ = fit_all(cx, cy, blended)
                 # A source found only in the image minus the models must stand on
                 # its own after the joint refit (residuals of a neighbour's imperfect
@@ -743,9 +749,11 @@ def _planes(products, kernels=None) -> Planes:
         # fixes it would apply; only the celestial part is used.
         warnings.simplefilter("ignore", FITSFixedWarning)
         wcs = WCS(header).celestial
+    # as stored (float32): padded_stretch makes the float64 planes detect works on,
+    # so a float64 copy here would only double what the unit holds
     return Planes(
-        np.asarray(hdul[FLUX_EXTENSION].data, dtype=float),
-        np.asarray(hdul[VARIANCE_EXTENSION].data, dtype=float),
+        np.asarray(hdul[FLUX_EXTENSION].data),
+        np.asarray(hdul[VARIANCE_EXTENSION].data),
         np.asarray(hdul[FLAGS_EXTENSION].data),
         _night_column(header),
         products["smear_kernels"] if kernels is None else kernels,
