@@ -1,0 +1,77 @@
+"""What detect holds in memory: a whole stretch's planes are counted in the pipeline's peak.
+
+A worker's memory peaks while detect measures a stretch (its planes are
+float64 copies of the rectified product's float32 ones), so planes that are
+no longer needed must not live through the long fitting passes, and the
+product's own planes must not be copied before they are padded with the
+neighbours' edges.  Self-consistency checks on an invented scene.
+"""
+
+from __future__ import annotations
+
+import tracemalloc
+
+import numpy as np
+import pytest
+from _detect_scene import render_scene
+from astropy.io import fits
+
+from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSION
+from pipeline.stages.detect import _planes, detect
+
+#: Largest peak of detect's own allocations, in planes of the image (float64,
+#: ny x nx).  Measured 6.2 on the scene below (background, residual, the
+#: variance filled and its copy for the fits, the fits' stamps and the second
+#: search's planes); 8.6 when the first search's planes (catalogue, filled
+#: residual, significance, segmentation) lived through the fits.  The 0.8
+#: plane of slack is for other library versions' temporaries.
+MAX_PLANES = 7.0
+
+
+@pytest.fixture(scope="module")
+def scene_with_gap():
+    """A 512 x 1024 stretch of 400 stars, S/N 5 to 300, with 6 columns without data."""
+    rng = np.random.default_rng(11)
+    gy, gx = np.mgrid[20:500:24, 20:1004:24]
+    pick = rng.permutation(gx.size)[:400]
+    x = gx.ravel()[pick] + rng.uniform(-3, 3, 400)
+    y = gy.ravel()[pick] + rng.uniform(-3, 3, 400)
+    scene = render_scene(x, y, None, snr=10 ** rng.uniform(np.log10(5), np.log10(300), 400), seed=7)
+    scene.image[:, :6] = np.nan  # with pixels lacking data, the planes are filled copies
+    return scene
+
+
+def test_detect_peak_memory_is_a_few_planes(scene_with_gap):
+    scene = scene_with_gap
+    with np.errstate(all="ignore"):
+        detect(scene.image, scene.variance, scene.mask, scene.kernels, x_start=1000)  # imports
+        tracemalloc.start()
+        try:
+            result = detect(scene.image, scene.variance, scene.mask, scene.kernels, x_start=1000)
+            _, peak = tracemalloc.get_traced_memory()
+        finally:
+            tracemalloc.stop()
+    assert len(result.catalog) > 300  # the scene was measured, not rejected
+    assert peak / scene.image.nbytes <= MAX_PLANES
+
+
+def test_own_planes_are_used_as_stored():
+    """detect_stretch's view of the product shares the stored (float32) planes."""
+    header = fits.Header(
+        {"CTYPE1": "RA---TAN", "CTYPE2": "DEC--TAN", "CRVAL1": 10.0, "CRVAL2": 50.0}
+        | {"CDELT1": -1e-4, "CDELT2": 1e-4, "CRPIX1": 8.0, "CRPIX2": 4.0}
+        | {"WCSNAMEA": "NIGHT", "CRVAL1A": 100.0, "CRPIX1A": 1.0, "CDELT1A": 1.0}
+    )
+    planes = {
+        FLUX_EXTENSION: np.ones((8, 16), np.float32),
+        VARIANCE_EXTENSION: np.full((8, 16), 2.0, np.float32),
+        FLAGS_EXTENSION: np.zeros((8, 16), np.uint16),
+    }
+    hdul = fits.HDUList(
+        [fits.PrimaryHDU()]
+        + [fits.ImageHDU(data, header=header, name=name) for name, data in planes.items()]
+    )
+    own = _planes({"image": hdul, "smear_kernels": None})
+    for array, name in zip((own.image, own.variance, own.mask), planes, strict=True):
+        assert np.shares_memory(array, hdul[name].data), name
+    assert own.x_start == 100
