@@ -19,9 +19,11 @@ processes, ``--repeat`` times.  It prints
   nights' (raw megapixels, wall time), and the tiny night's wall time;
 * how the time scales with the rows (long over short: 4x the rows by
   default);
-* the peak resident memory of the whole process tree (the run and its
-  workers, summed; sampled every 0.05 s; shared pages count once per
-  process, so this overstates);
+* the peak memory of the whole process tree (the run and its workers,
+  summed; sampled every 0.05 s) as resident size (RSS: shared pages count
+  once per process, so this overstates) and as proportional set size (PSS:
+  shared pages split among the processes, the tree's real memory), and
+  each process's own peak PSS (the run first, then the workers);
 * where the time goes: per stage, the span from its first unit's start to
   its last unit's end and the summed compute time of its units (from the
   provenance sidecars of the last run);
@@ -139,10 +141,19 @@ def raw_megapixels(folder: Path) -> float:
 
 
 class TreeMemory:
-    """Samples the summed resident memory of a process and all its descendants."""
+    """Samples the memory of a process and all its descendants.
+
+    ``peak`` is the largest sum of their resident sizes (RSS: a page shared
+    by several processes, e.g. of a library, counts once per process, so this
+    overstates); ``peak_pss`` the largest sum of their proportional set sizes
+    (PSS: a shared page is split among the processes that map it, so the sum
+    is the tree's memory; Linux only, else equal to the RSS); ``processes``
+    each process's own largest PSS, by process id, in start order.
+    """
 
     def __init__(self, pid: int, interval: float = 0.05):
-        self.pid, self.interval, self.peak = pid, interval, 0
+        self.pid, self.interval, self.peak, self.peak_pss = pid, interval, 0, 0
+        self.processes: dict[int, int] = {}
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._sample, daemon=True)
 
@@ -152,15 +163,26 @@ class TreeMemory:
         except psutil.NoSuchProcess:
             return
         while not self._stop.is_set():
-            total = 0
+            rss = pss = 0
             try:
                 for process in [root, *root.children(recursive=True)]:
                     with contextlib.suppress(psutil.Error):  # it just ended
-                        total += process.memory_info().rss
+                        info = process.memory_full_info()
+                        own = getattr(info, "pss", info.rss)
+                        rss, pss = rss + info.rss, pss + own
+                        self.processes[process.pid] = max(self.processes.get(process.pid, 0), own)
             except psutil.Error:
                 break
-            self.peak = max(self.peak, total)
+            self.peak, self.peak_pss = max(self.peak, rss), max(self.peak_pss, pss)
             self._stop.wait(self.interval)
+
+    def describe(self) -> str:
+        """The peaks in GB: summed RSS, summed PSS, then the run's and each helper's PSS."""
+        own = [f"{value / 1e9:.2f}" for value in self.processes.values() if value > 50e6]
+        return (
+            f"peak tree memory {self.peak / 1e9:.2f} GB RSS, {self.peak_pss / 1e9:.2f} GB PSS "
+            f"(per process, PSS: {', '.join(own)})"
+        )
 
     def __enter__(self) -> TreeMemory:
         self._thread.start()
@@ -171,8 +193,8 @@ class TreeMemory:
         self._thread.join()
 
 
-def timed_run(config: Path, *settings: str, force: bool = True) -> tuple[float, int]:
-    """Wall seconds and peak tree memory (bytes) of ``zdrift run`` on the night."""
+def timed_run(config: Path, *settings: str, force: bool = True) -> tuple[float, TreeMemory]:
+    """Wall seconds and the memory samples of ``zdrift run`` on the night."""
     args = ["run", str(config), "--to", LAST_STAGE, *(["--force"] if force else [])]
     for setting in settings:
         args += ["--set", setting]
@@ -187,7 +209,7 @@ def timed_run(config: Path, *settings: str, force: bool = True) -> tuple[float, 
     if process.returncode != 0 and not (process.returncode == 1 and "0 failed, 0 blocked" in text):
         tail = "\n".join(text.splitlines()[-15:])
         raise RuntimeError(f"zdrift run failed on {config} ({process.returncode}):\n{tail}")
-    return wall, memory.peak
+    return wall, memory
 
 
 def stage_times(folder: Path, since: float) -> list[tuple[str, float, float, int]]:
@@ -265,12 +287,13 @@ def main(argv: list[str] | None = None) -> int:
             if name == "long" and not args.no_dask:
                 runs.append(("dask", dask))
             for executor, settings in runs:
-                wall, peak = timed_run(config, *settings)
+                wall, memory = timed_run(config, *settings)
                 walls.setdefault(f"{name}/{executor}", []).append(wall)
-                peaks.setdefault(f"{name}/{executor}", []).append(peak)
+                peaks.setdefault(f"{name}/{executor}", []).append(memory.peak)
+                peaks.setdefault(f"{name}/{executor}/pss", []).append(memory.peak_pss)
                 print(
                     f"  run {attempt + 1}: {name} night, {executor}: {wall:.1f} s, "
-                    f"peak tree memory {peak / 1e9:.2f} GB",
+                    f"{memory.describe()}",
                     flush=True,
                 )
                 if executor == "local" and attempt == args.repeat - 1:
@@ -291,7 +314,8 @@ def main(argv: list[str] | None = None) -> int:
         print(
             f"  {name:5s} night {pixels[name]:7.1f} Mpx: {wall:6.1f} s, "
             f"{pixels[name] / wall:5.2f} Mpx/s, peak tree memory "
-            f"{max(peaks[f'{name}/local']) / 1e9:.2f} GB"
+            f"{max(peaks[f'{name}/local']) / 1e9:.2f} GB RSS, "
+            f"{max(peaks[f'{name}/local/pss']) / 1e9:.2f} GB PSS"
         )
     short, long = median(walls["short/local"]), median(walls["long/local"])
     slope = (long - short) / (pixels["long"] - pixels["short"])
@@ -314,7 +338,8 @@ def main(argv: list[str] | None = None) -> int:
             f"  long night on a dask LocalCluster: {median(walls['long/dask']):.1f} s, "
             f"{median(walls['long/dask']) / long:.2f}x the local pool (per repeat: "
             + ", ".join(f"{r:.2f}" for r in ratios)
-            + f"), peak tree memory {max(peaks['long/dask']) / 1e9:.2f} GB"
+            + f"), peak tree memory {max(peaks['long/dask']) / 1e9:.2f} GB RSS, "
+            f"{max(peaks['long/dask/pss']) / 1e9:.2f} GB PSS"
         )
     return 0
 
