@@ -20,23 +20,22 @@ from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSIO
 from pipeline.stages.detect import _planes, detect
 
 #: Largest peak of detect's own allocations, in planes of the image (float64,
-#: ny x nx).  Measured 6.2 on the scene below (background, residual, the
+#: ny x nx).  Measured 6.8 on the scene below (background, residual, the
 #: variance filled and its copy for the fits, the fits' stamps and the second
-#: search's planes); 8.6 when the first search's planes (catalogue, filled
-#: residual, significance, segmentation) lived through the fits.  The 0.8
-#: plane of slack is for other library versions' temporaries.
-MAX_PLANES = 7.0
+#: search's planes); 9.1 when the first search's planes (catalogue, filled
+#: residual, significance, segmentation) lived through the fits, 9.3 before
+#: they were freed.  The 0.7 plane of slack is for other library versions'
+#: temporaries, and still catches one float64 plane more.
+MAX_PLANES = 7.5
 
 
 @pytest.fixture(scope="module")
 def scene_with_gap():
-    """A 512 x 1024 stretch of 400 stars, S/N 5 to 300, with 6 columns without data."""
-    rng = np.random.default_rng(11)
-    gy, gx = np.mgrid[20:500:24, 20:1004:24]
-    pick = rng.permutation(gx.size)[:400]
-    x = gx.ravel()[pick] + rng.uniform(-3, 3, 400)
-    y = gy.ravel()[pick] + rng.uniform(-3, 3, 400)
-    scene = render_scene(x, y, None, snr=10 ** rng.uniform(np.log10(5), np.log10(300), 400), seed=7)
+    """A 512 x 1024 stretch of 300 stars at random places, S/N 5 to 300, 6 columns without data."""
+    rng = np.random.default_rng(5)
+    x, y = rng.uniform(10, 1014, 300), rng.uniform(10, 502, 300)
+    snr = 10 ** rng.uniform(np.log10(5), np.log10(300), x.size)
+    scene = render_scene(x, y, None, snr=snr, seed=7)
     scene.image[:, :6] = np.nan  # with pixels lacking data, the planes are filled copies
     return scene
 
@@ -51,7 +50,7 @@ def test_detect_peak_memory_is_a_few_planes(scene_with_gap):
             _, peak = tracemalloc.get_traced_memory()
         finally:
             tracemalloc.stop()
-    assert len(result.catalog) > 300  # the scene was measured, not rejected
+    assert len(result.catalog) > 200  # the scene was measured, not rejected
     assert peak / scene.image.nbytes <= MAX_PLANES
 
 
