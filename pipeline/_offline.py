@@ -13,7 +13,8 @@ raises for recent dates.
 every unit a worker runs), the command line and the geometry's entry points
 use it, and ``import pipeline`` changes nothing.  :func:`configure_offline`
 sets the same for the whole process, for a script or a test session that
-wants it.
+wants it.  :func:`load_earth_orientation` reads the bundled tables ahead of
+their first use (a worker process does it as it starts).
 """
 
 from __future__ import annotations
@@ -24,7 +25,7 @@ from collections.abc import Iterator
 from astropy.utils import iers
 from astropy.utils.data import conf as data_conf
 
-__all__ = ["astropy_offline", "configure_offline"]
+__all__ = ["astropy_offline", "configure_offline", "load_earth_orientation"]
 
 #: (configuration object, item, value while offline).
 _OFFLINE = (
@@ -53,3 +54,17 @@ def configure_offline() -> None:
     """Set :func:`astropy_offline`'s settings for the rest of the process."""
     for conf, item, value in _OFFLINE:
         setattr(conf, item, value)
+
+
+def load_earth_orientation() -> None:
+    """Read the bundled IERS tables now, with the offline settings.
+
+    Astropy parses them (text tables, about half a second on an idle core)
+    the first time a transformation needs Earth orientation, once per
+    process, and keeps them: a worker process calls this as it starts (see
+    ``Stage.warm``), so that the first unit that needs them does not wait.
+    The table is the one the first transformation would read, so nothing it
+    computes changes.
+    """
+    with astropy_offline():
+        iers.earth_orientation_table.get()

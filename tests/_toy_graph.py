@@ -17,6 +17,8 @@ with ``os._exit`` on that stretch: every time, or, if ``ZDRIFT_TOY_DIE_MARK``
 names a file, only once (it creates the file first and does not die if the
 file exists).  ``ZDRIFT_TOY_FAIL_ON=<stretch index>`` makes ``scale`` raise a
 ValueError on that stretch (a crash on odd data, fixed by a later release).
+``WARM_GRAPH``'s ``scale`` warms its workers with :func:`slow_warm_up`,
+which records when it ended in the folder ``ZDRIFT_TOY_WARM_DIR`` names.
 
 This module lives in ``tests/`` (on ``sys.path`` under pytest), so worker
 processes started by the local pool and by dask can import it by name.
@@ -26,6 +28,7 @@ from __future__ import annotations
 
 import dataclasses
 import os
+import time
 from pathlib import Path
 
 import numpy as np
@@ -167,6 +170,18 @@ def count_lines(*, inputs, options, context):
         return {"summary": {"lines": sum(1 for _ in text), "sha256": handle.sha256}}
 
 
+#: Seconds :func:`slow_warm_up` takes: far longer than the ``index`` unit that
+#: runs first, so that a ``scale`` unit that did not wait for it starts before it ends.
+WARM_UP_SECONDS = 1.5
+
+
+def slow_warm_up() -> None:
+    """A worker's warm-up for ``scale``: sleeps, then writes when it ended (file: the pid)."""
+    time.sleep(WARM_UP_SECONDS)
+    folder = Path(os.environ["ZDRIFT_TOY_WARM_DIR"])
+    (folder / str(os.getpid())).write_text(repr(time.time()))
+
+
 GRAPH = (
     Stage("index", build_index, IndexOptions, (RAW_FILES,), "night", (), defines_rows=True),
     Stage("scale", scale_rows, ScaleOptions, (RAW_ROWS,), "stretch", ("camera.n_columns",)),
@@ -178,6 +193,14 @@ PARTIAL_GRAPH = (*GRAPH[:3], dataclasses.replace(GRAPH[3], partial_inputs=True))
 STREAM_GRAPH = (
     *GRAPH,
     Stage("lines", count_lines, CountOptions, ("total",), "night", (), streams=("source.path",)),
+)
+#: ``scale`` warms its workers up (a module that does not exist first: it is skipped).
+WARM_GRAPH = (
+    GRAPH[0],
+    dataclasses.replace(
+        GRAPH[1], warm=("no_such_module_of_zdrift", "_toy_graph:slow_warm_up", "scipy.special")
+    ),
+    *GRAPH[2:],
 )
 #: ``scale`` as an image product, and ``seams``: each stretch with its neighbours' edge rows.
 NEIGHBOUR_GRAPH = (

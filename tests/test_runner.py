@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import datetime
 import errno
 import json
 import os
@@ -27,6 +28,7 @@ from _toy_graph import (
     NEIGHBOUR_GRAPH,
     PARTIAL_GRAPH,
     STREAM_GRAPH,
+    WARM_GRAPH,
     IndexOptions,
     build_index,
     edit_raw_block,
@@ -597,6 +599,33 @@ def test_worker_death_on_the_local_pool_fails_only_that_stretch(toy, tmp_path, m
     reference = config_from_mapping(reference_data, graph=GRAPH)
     run_night(reference)
     assert product_hashes(config) == product_hashes(reference)
+
+
+def test_pool_workers_warm_up_in_the_background_and_a_unit_waits_for_its_stage(
+    tmp_path, monkeypatch
+):
+    """A worker loads what the planned stages declare in ``warm`` as it starts, in a
+    thread: a unit of ``index`` (nothing to warm) starts at once, a unit of ``scale``
+    once its worker's warm-up for ``scale`` has ended; the products do not change."""
+    make_config, _ = toy_night(tmp_path, WARM_GRAPH)
+    warmed = tmp_path / "warmed"
+    warmed.mkdir()
+    monkeypatch.setenv("ZDRIFT_TOY_WARM_DIR", str(warmed))
+    config = make_config("run.executor=local", "run.workers=2")
+    assert run_night(config).ok
+    ended = {int(path.name): float(path.read_text()) for path in warmed.iterdir()}
+    records = sidecars(config)
+
+    def started(key: str) -> float:
+        return datetime.datetime.fromisoformat(records[key]["started"]).timestamp()
+
+    index = records["index/night"]
+    assert index["pid"] in ended and started("index/night") < ended[index["pid"]]
+    scaled = [key for key in records if key.startswith("scale/")]
+    assert len(scaled) == N_STRETCHES
+    for key in scaled:
+        assert started(key) >= ended[records[key]["pid"]], key
+    assert product_hashes(config) == product_hashes(_reference(tmp_path))
 
 
 # --------------------------------------------------------------------------- lock
@@ -1186,6 +1215,28 @@ def test_the_runs_own_dask_cluster_is_loopback_only_without_http_routes() -> Non
                 urllib.request.urlopen(f"http://127.0.0.1:{addresses[0][1]}{route}", timeout=10)
         for worker in cluster.scheduler.workers:
             assert "127.0.0.1:" in worker
+    finally:
+        cluster.close()
+
+
+def test_idle_workers_of_the_runs_own_cluster_are_ended_and_not_started_again() -> None:
+    """Closing the cluster would wait up to 4 s for each worker to exit; the run
+    kills its idle workers instead, and their nannies must not start them again."""
+    from distributed.core import Status
+
+    cluster = _executors.start_local_cluster(2)
+    try:
+        nannies = list(cluster.workers.values())
+        pids = [nanny.pid for nanny in nannies]
+        assert all(pids)
+        _executors.end_idle_workers(cluster)
+        # the nannies notice within milliseconds; the bound only stops a wrong
+        # version (a nanny that starts its worker again never closes)
+        deadline = time.monotonic() + 30
+        while time.monotonic() < deadline and any(n.status != Status.closed for n in nannies):
+            time.sleep(0.05)
+        assert [nanny.status for nanny in nannies] == [Status.closed] * 2
+        assert not any(_lock.pid_alive(pid) for pid in pids)
     finally:
         cluster.close()
 

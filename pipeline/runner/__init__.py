@@ -53,6 +53,7 @@ from pipeline.runner._nightly import (
 )
 from pipeline.runner._store import clear_failure, mark_damaged, write_failure
 from pipeline.runner._unit import UnitOutcome, UnitTask, execute_unit, failed_outcome
+from pipeline.runner._warm import warm_plan
 from pipeline.stages.base import Stage, Stretch
 
 __all__ = [
@@ -414,7 +415,7 @@ def _run_night(
         plan = _with_recut_upstream(night, selected)
         # workers import the modules of the planned stages only (a stage added to
         # repair a damaged product is imported when its first unit arrives)
-        executor.warm(_stage_modules(plan))
+        executor.warm(_stage_modules(plan), warm_plan(plan))
         log.info(
             "night %s: stages %s, executor %s",
             config.night.name,

@@ -65,13 +65,17 @@ from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, as_complete
 from concurrent.futures.process import BrokenProcessPool
 from typing import Any
 
+from pipeline._offline import configure_offline
 from pipeline.config import RunSection
+from pipeline.runner._warm import start_warming
 
 __all__ = ["Executor", "available_memory", "default_workers", "make_executor", "worker_memory"]
 
 log = logging.getLogger(__name__)
 
 Outcome = Any
+#: ``((stage name, what it loads on first use), ...)``, see :func:`pipeline.runner._warm.warm_plan`.
+WarmPlan = Sequence[tuple[str, tuple[str, ...]]]
 OnError = Callable[[Any, str], Outcome]
 
 _SPAWN = multiprocessing.get_context("spawn")
@@ -209,19 +213,28 @@ def _unpicklable(task: Any) -> str | None:
     return None
 
 
-def _start_worker(parent_pid: int, modules: Sequence[str]) -> None:
-    """Initializer of a pool worker: end with the run, then import ``modules``.
+def prepare_worker(modules: Sequence[str], plan: WarmPlan) -> None:
+    """Import ``modules``, keep astropy offline, and start the warm-up of ``plan``.
 
     Importing the stage modules as the worker starts, rather than when its
-    first unit is unpickled, lets every worker warm up at once; the heavy
-    libraries a stage computes with are imported by its functions, so a
-    worker loads only those of the stages it runs.  An import that fails is
-    left for the unit that needs it to report.
+    first unit is unpickled, lets every worker warm up at once.  The heavy
+    libraries a stage computes with are imported by its functions; a thread
+    loads those of the planned stages meanwhile (:mod:`pipeline.runner._warm`).
+    The process is the run's, so astropy stays offline in all of it (the
+    warm-up's thread too).  An import that fails is left for the unit that
+    needs it to report.
     """
-    end_with_parent(parent_pid)
     for module in modules:
         with contextlib.suppress(Exception):
             importlib.import_module(module)
+    configure_offline()
+    start_warming(plan)
+
+
+def _start_worker(parent_pid: int, modules: Sequence[str], plan: WarmPlan = ()) -> None:
+    """Initializer of a pool worker: end with the run, then :func:`prepare_worker`."""
+    end_with_parent(parent_pid)
+    prepare_worker(modules, plan)
 
 
 def _ready() -> None:
@@ -234,8 +247,12 @@ class Executor:
     #: Whether workers are other processes (their log records must be shipped back).
     remote = False
 
-    def warm(self, modules: Sequence[str]) -> None:
-        """Name the modules workers import as they start (before the first batch)."""
+    def warm(self, modules: Sequence[str], plan: WarmPlan = ()) -> None:
+        """Name the modules workers import as they start, and what they load meanwhile.
+
+        Called before the first batch; ``plan`` is
+        :func:`pipeline.runner._warm.warm_plan` of the planned stages.
+        """
 
     def flow(
         self,
@@ -284,11 +301,12 @@ class LocalPoolExecutor(Executor):
         self._pool: ProcessPoolExecutor | None = None
         self._reaper = Reaper()
         self._modules: tuple[str, ...] = ()
+        self._plan: WarmPlan = ()
         self._futures: list = []
         self._starting = threading.Lock()  # several nights' runs may share the pool
 
-    def warm(self, modules: Sequence[str]) -> None:
-        self._modules = tuple(modules)
+    def warm(self, modules: Sequence[str], plan: WarmPlan = ()) -> None:
+        self._modules, self._plan = tuple(modules), tuple(plan)
 
     def map(self, fn, tasks, on_error) -> Iterator[Outcome]:
         # When a worker dies (killed, out of memory) the whole pool breaks and
@@ -378,7 +396,7 @@ class LocalPoolExecutor(Executor):
                 max_workers=self.workers,
                 mp_context=_SPAWN,
                 initializer=_start_worker,
-                initargs=(os.getpid(), self._modules),
+                initargs=(os.getpid(), self._modules, self._plan),
             )
             # The pool starts a worker per task submitted while none is idle:
             # start them all now, so that they import in parallel.
@@ -418,6 +436,14 @@ class DaskExecutor(Executor):
         self._client = None
         self._cluster = None
         self._reaper = Reaper()
+        self._modules: tuple[str, ...] = ()
+        self._plan: WarmPlan = ()
+        self._futures: list = []  # of the last batch
+
+    def warm(self, modules: Sequence[str], plan: WarmPlan = ()) -> None:
+        # only the workers of the cluster started for the run: those of a
+        # scheduler given by address are not the run's to set up
+        self._modules, self._plan = tuple(modules), tuple(plan)
 
     def _connect(self):
         import distributed
@@ -431,7 +457,7 @@ class DaskExecutor(Executor):
                 self._client = distributed.Client(address, set_as_default=False, security=security)
                 from pipeline.runner._daskplugin import EndWithRun
 
-                self._client.register_plugin(EndWithRun(os.getpid()))
+                self._client.register_plugin(EndWithRun(os.getpid(), self._modules, self._plan))
             else:
                 address = self.scheduler
                 self._client = distributed.Client(address, set_as_default=False)
@@ -452,6 +478,7 @@ class DaskExecutor(Executor):
                 continue
             key = f"{task.stage.name}-{task.unit}-{batch}"
             futures[client.submit(fn, task, pure=False, key=key)] = task
+        self._futures = list(futures)
         pending = set(futures)
         try:
             for future in self._completed(client, pending):
@@ -484,6 +511,7 @@ class DaskExecutor(Executor):
                 )
                 futures[future] = task
                 submitted.append(future)
+            self._futures = list(futures)
             return submitted
 
         pending = set(submit(tasks))
@@ -538,9 +566,30 @@ class DaskExecutor(Executor):
             self._client.close()
             self._client = None
         if self._cluster is not None:
+            if all(future.done() for future in self._futures):
+                end_idle_workers(self._cluster)
             self._cluster.close()
             self._cluster = None
         self._reaper.stop()
+
+
+def end_idle_workers(cluster) -> None:
+    """Kill the worker processes of the run's own ``LocalCluster``, which have nothing to do.
+
+    Closing the cluster asks each worker to close and waits up to 4 s
+    (distributed's default) before killing it: a worker's interpreter takes
+    that long to exit with the libraries it loaded, and an idle worker of
+    the run has nothing left to write (its units wrote their products).  Each
+    nanny is first told not to start its worker again
+    (``Nanny.close_gracefully``), as it would after an unexpected death.
+    """
+    for nanny in list(cluster.workers.values()):
+        pid = getattr(nanny, "pid", None)
+        if not pid:
+            continue
+        nanny.close_gracefully()
+        with contextlib.suppress(ProcessLookupError):
+            os.kill(pid, signal.SIGKILL)
 
 
 def start_local_cluster(workers: int):

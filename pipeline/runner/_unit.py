@@ -44,6 +44,7 @@ from pipeline.runner._store import (
     write_products,
     write_sidecar,
 )
+from pipeline.runner._warm import wait_warm
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, ExternalFile, Stage, StageContext
 
 __all__ = ["InputSpec", "UnitOutcome", "UnitTask", "execute_unit", "failed_outcome"]
@@ -291,6 +292,7 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
 
 
 def _execute_unit(task: UnitTask) -> UnitOutcome:
+    wait_warm(task.stage.name)  # what the worker loads for the stage as it starts
     started, t0 = _now(), time.perf_counter()
     with _captured_logs(task.capture_logs) as records:
         read: dict[str, str] = {}

@@ -541,6 +541,14 @@ class Stage:
         ``inputs[NEIGHBOURS][name] == (before, after)`` (see "Neighbouring
         stretches" in the module docstring).  They enter the unit's input
         hashes.
+    warm : tuple of str
+        What a worker process prepares, in the background, as it starts, so
+        that the stage's first unit there does not wait for it: modules the
+        stage's functions import on first use (``'scipy.signal'``), or
+        ``'module:function'``, a function called with no arguments that loads
+        per-process state (Earth-orientation tables, compiled kernels from
+        numba's disk cache).  It must not change what the stage produces;
+        it does not enter the config hash.
     """
 
     name: str
@@ -557,6 +565,7 @@ class Stage:
     neighbours: tuple[str, ...] = ()
     streams: tuple[str, ...] = ()
     optional: tuple[str, ...] = ()
+    warm: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         if not self.name.isidentifier() or self.name != self.name.lower():
@@ -581,12 +590,12 @@ class Stage:
             self.neighbours,
             self.streams,
             self.optional,
+            self.warm,
         )
         if any(isinstance(group, str) for group in names):
             raise TypeError(
-                f"Stage {self.name!r}: requires, uses, files, neighbours, streams and optional "
-                "must be "
-                "tuples of names, not a single string (write ('x',) not 'x')."
+                f"Stage {self.name!r}: requires, uses, files, neighbours, streams, optional "
+                "and warm must be tuples of names, not a single string (write ('x',) not 'x')."
             )
         for name in self.files:
             if name not in self.options.model_fields or name in self.requires:

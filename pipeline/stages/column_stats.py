@@ -11,7 +11,7 @@ from typing import Any
 
 from pipeline.exceptions import CalibrationWarning
 from pipeline.stages.base import RAW_ROWS, Stage
-from pipeline.stages.calibrate import ColumnStatsOptions, column_statistics, options_kwargs
+from pipeline.stages.calibrate import WARM, ColumnStatsOptions, column_statistics, options_kwargs
 from pipeline.stages.calibrate._rows import stretch_rows_for_stage
 
 __all__ = ["STAGE", "auto_block_rows"]
@@ -82,6 +82,7 @@ STAGE = Stage(
     scope="stretch",
     uses=("camera.flip_columns", "camera.flip_rows"),
     description="Per-block clipped column levels of each stretch (for the 1-D flat and dark).",
+    warm=WARM,
     # 2: bias window by cross-validation; 3: faster passes (rounding); 4: units;
     # 5: block rows chosen by the night's length unless configured
     version=5,

@@ -46,7 +46,9 @@ from pipeline.stages.astrometry._second_pass import (
 from pipeline.stages.astrometry._wcs import solved_wcs
 from pipeline.stages.base import BLOCK_INDEX, Stage
 from pipeline.stages.catalog import stack_catalogs
+from pipeline.stages.detect import WARM as DETECT_WARM
 from pipeline.stages.detect import DetectOptions, detect_stretch
+from pipeline.stages.rectify import WARM as RECTIFY_WARM
 from pipeline.stages.rectify import night_model, stretch_columns
 
 __all__ = ["STAGE", "AstrometryStageOptions", "reference_columns", "stretch_wcs_cards"]
@@ -386,4 +388,12 @@ STAGE = Stage(
     partial_inputs=True,
     streams=("reference.path",),
     description="Fit the night's geometry to a reference catalogue; a solved WCS per stretch.",
+    # the geometry model, the fits, the reference reader, detect's for the second pass
+    warm=(
+        *RECTIFY_WARM,
+        "scipy.linalg",
+        "scipy.optimize",
+        "pyarrow.csv",
+        *DETECT_WARM,
+    ),
 )

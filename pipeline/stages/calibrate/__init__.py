@@ -762,6 +762,10 @@ def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:
         )
 
 
+#: What a worker loads as it starts for calibrate and column_stats (``Stage.warm``):
+#: the bias windows' filters and the column solve's error function.
+WARM = ("scipy.signal", "scipy.special")
+
 #: Declaration of the calibrate stage for the runner.
 STAGE = Stage(
     name="calibrate",
@@ -771,6 +775,7 @@ STAGE = Stage(
     scope="stretch",
     uses=("camera.flip_columns", "camera.flip_rows", "camera.name", "camera.telescope", "site"),
     description="Bias, 1-D flat and dark, variance and mask of each stretch.",
+    warm=WARM,
     # 2: bias window by cross-validation; 3: faster passes (rounding); 4: one
     # multi-extension image product with units and observation metadata
     version=4,

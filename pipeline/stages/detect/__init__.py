@@ -900,6 +900,23 @@ def _run(*, inputs, options: DetectOptions, context) -> dict:
     return out
 
 
+#: What a worker loads as it starts for detect (``Stage.warm``): the libraries
+#: its functions import on first use, the smear-aware model and its compiled
+#: kernels (numba's disk cache).
+WARM = (
+    "scipy.ndimage",
+    "scipy.signal",
+    "scipy.sparse.csgraph",
+    "scipy.spatial",
+    "photutils.aperture",
+    "photutils.background",
+    "photutils.geometry",
+    "photutils.segmentation",
+    "pipeline.stages.detect._model",
+    "pipeline.stages.detect._fit_jit",
+    "pipeline.stages.detect._pixel_gauss:load_compiled",
+)
+
 #: Declaration of the detect stage for the runner.  Per stretch, with the
 #: neighbouring rectified stretches' edge columns (rectified stretches adjoin
 #: without overlap), so seam stars are measured whole; the night catalogue is
@@ -912,6 +929,7 @@ STAGE = Stage(
     scope="stretch",
     uses=(),
     neighbours=("rectify",),
+    warm=WARM,
     # 5: a deconvolved product's noise correlation measured at a star's scale
     # 6: a saturated star is one source, fitted on its unclipped wings
     version=6,

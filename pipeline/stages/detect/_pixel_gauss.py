@@ -25,7 +25,7 @@ import math
 import numpy as np
 from scipy.special import erf
 
-__all__ = ["pixel_profiles", "pixel_profiles_direct"]
+__all__ = ["load_compiled", "pixel_profiles", "pixel_profiles_direct"]
 
 _SQRT2 = math.sqrt(2.0)
 _SQRT2PI = math.sqrt(2.0 * math.pi)
@@ -67,6 +67,16 @@ def pixel_profiles(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndarray):
         _ERF_TABLE,
         _GAUSS_TABLE,
     )
+
+
+def load_compiled() -> None:
+    """Load the compiled loop in this process (from numba's disk cache once it is there).
+
+    One call on a three-pixel grid with the argument types of every call
+    (``pixel_profiles`` normalises them), so no other specialisation is
+    compiled.  A worker process calls it as it starts (see ``Stage.warm``).
+    """
+    pixel_profiles(np.arange(3.0), np.zeros(1), np.ones(1))
 
 
 def pixel_profiles_direct(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndarray):

@@ -647,6 +647,11 @@ def _run(*, inputs, options: RectifyOptions, context) -> dict[str, Any]:
     }
 
 
+#: What a worker loads as it starts for rectify (``Stage.warm``): the
+#: deconvolution's FFTs, the track splines and the Earth-orientation tables the
+#: night's geometry model reads.
+WARM = ("scipy.fft", "scipy.interpolate", "pipeline._offline:load_earth_orientation")
+
 #: Declaration of the rectify stage for the runner.  Its per-stretch products
 #: cover the rectified columns of the stretch's core rows only (not its margins).
 STAGE = Stage(
@@ -657,6 +662,7 @@ STAGE = Stage(
     scope="stretch",
     uses=("site", "camera"),
     description="Resample stretches onto the straight-track frame; record smear kernels.",
+    warm=WARM,
     # 2: deconvolution regularisation scales with the smear length; 3: one
     # multi-extension image product with units, observation metadata, night grid;
     # 4: deconvolved variance, DECNOISE and NOISECOR from the noise's covariance

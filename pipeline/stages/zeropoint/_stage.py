@@ -409,4 +409,5 @@ STAGE = Stage(
     scope="night",
     uses=("camera.tdi_rows",),
     description="The night's zero point along time, calibrated magnitudes, star flat.",
+    warm=("scipy.interpolate", "scipy.linalg", "scipy.sparse", "scipy.stats"),
 )
