@@ -32,6 +32,12 @@ processes, ``--repeat`` times.  It prints
 * the long night on a dask LocalCluster of the same number of workers,
   alternating with the local pool so that drifting load hits both.
 
+The command runs with Python's bytecode cache, as an installed package
+does: where the environment forbids writing it (``PYTHONDONTWRITEBYTECODE``,
+set in some sandboxes; every command would then compile the package's
+sources again, about 0.1 s of each run), the cache is kept in
+``--dir/pycache`` instead (``PYTHONPYCACHEPREFIX``).
+
 The machine's load average is printed before and after: on a shared machine
 (load near or above the CPU count) the figures are upper bounds, and ratios
 measured within one run of this script are the useful ones.  Run::
@@ -47,6 +53,7 @@ import argparse
 import contextlib
 import datetime
 import json
+import os
 import statistics
 import subprocess
 import sys
@@ -112,6 +119,19 @@ def night_config(columns: int, block_rows: int, blocks: int, workers: int) -> di
 def zdrift(*args: str) -> list[str]:
     """The command line of ``zdrift`` in this interpreter's environment."""
     return [sys.executable, "-m", "pipeline", *args]
+
+
+#: The environment of the measured commands (see :func:`with_bytecode_cache`).
+ENVIRONMENT = dict(os.environ)
+
+
+def with_bytecode_cache(folder: Path) -> dict[str, str]:
+    """This environment, with a bytecode cache in ``folder/pycache`` if it forbids one."""
+    env = dict(os.environ)
+    if env.pop("PYTHONDONTWRITEBYTECODE", None):
+        env.setdefault("PYTHONPYCACHEPREFIX", str(folder / "pycache"))
+        print(f"PYTHONDONTWRITEBYTECODE is set: bytecode cached in {folder / 'pycache'}")
+    return env
 
 
 def prepare(folder: Path, columns: int, block_rows: int, blocks: int, workers: int) -> Path:
@@ -199,7 +219,9 @@ def timed_run(config: Path, *settings: str, force: bool = True) -> tuple[float, 
     for setting in settings:
         args += ["--set", setting]
     t0 = time.perf_counter()
-    process = subprocess.Popen(zdrift(*args), stdout=subprocess.PIPE, stderr=subprocess.STDOUT)
+    process = subprocess.Popen(
+        zdrift(*args), stdout=subprocess.PIPE, stderr=subprocess.STDOUT, env=ENVIRONMENT
+    )
     with TreeMemory(process.pid) as memory:
         output, _ = process.communicate()
     wall = time.perf_counter() - t0
@@ -212,34 +234,50 @@ def timed_run(config: Path, *settings: str, force: bool = True) -> tuple[float, 
     return wall, memory
 
 
-def stage_times(folder: Path, since: float) -> list[tuple[str, float, float, int]]:
-    """Per stage of the run started at ``since`` (Unix time): (name, span s, summed
-    compute s, units), in start order; units written before it (e.g. of another
-    stretch plan) are left out."""
-    spans: dict[str, list] = {}
+def unit_spans(folder: Path, since: float) -> list[tuple[str, float, float, float]]:
+    """(stage, start, end, compute s) of every unit of the run started at ``since``
+    (Unix time), from the provenance sidecars; units written before it (e.g. of
+    another stretch plan) are left out."""
+    spans = []
     for path in (folder / "out" / "bench").glob("*/*/_provenance.json"):
         record = json.loads(path.read_text())
         start, end = (
             datetime.datetime.fromisoformat(record[key]).timestamp()
             for key in ("started", "finished")
         )
-        if start < since:
-            continue
-        entry = spans.setdefault(record["stage"], [start, end, 0.0, 0])
+        if start >= since:
+            spans.append((record["stage"], start, end, record["timings"]["compute_s"]))
+    return spans
+
+
+def stage_times(folder: Path, since: float) -> list[tuple[str, float, float, int]]:
+    """Per stage of the run started at ``since``: (name, span s, summed compute s,
+    units), in start order."""
+    spans: dict[str, list] = {}
+    for stage, start, end, compute in unit_spans(folder, since):
+        entry = spans.setdefault(stage, [start, end, 0.0, 0])
         entry[0], entry[1] = min(entry[0], start), max(entry[1], end)
-        entry[2] += record["timings"]["compute_s"]
+        entry[2] += compute
         entry[3] += 1
     ordered = sorted(spans.items(), key=lambda item: item[1][0])
     return [(name, end - start, compute, n) for name, (start, end, compute, n) in ordered]
 
 
 def print_stage_times(folder: Path, wall: float) -> None:
-    rows = stage_times(folder, time.time() - wall)
+    since = time.time() - wall
+    rows = stage_times(folder, since)
     if not rows:
         return
     print(f"  per stage (last run, wall {wall:.1f} s): span / summed compute / units")
     for name, span, compute, n in rows:
         print(f"    {name:13s} {span:7.2f} s {compute:8.2f} s {n:4d}")
+    spans = unit_spans(folder, since)
+    first = min(start for _, start, _, _ in spans) - since
+    last = max(end for _, _, end, _ in spans) - since
+    print(
+        f"    the first unit started {first:.2f} s after the command, the last ended "
+        f"{wall - last:.2f} s before it returned"
+    )
 
 
 def median(values: list[float]) -> float:
@@ -258,6 +296,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--no-dask", action="store_true", help="skip the dask LocalCluster runs")
     args = parser.parse_args(argv)
     print(machine_state(), flush=True)
+    ENVIRONMENT.clear()
+    ENVIRONMENT.update(with_bytecode_cache(args.dir))
     shape = f"{args.columns}x{args.block_rows}"
     nights = {
         "tiny": prepare(args.dir / f"{args.columns}x256x2", args.columns, 256, 2, args.workers),
