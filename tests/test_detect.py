@@ -13,6 +13,7 @@ from photutils.background import Background2D
 from photutils.centroids import centroid_2dg
 from photutils.segmentation import deblend_sources, detect_sources
 from pydantic import ValidationError
+from scipy.ndimage import gaussian_filter
 from scipy.spatial import cKDTree
 from scipy.stats import norm
 
@@ -30,7 +31,12 @@ from pipeline.stages.detect import (
     model_image,
     seam_margin,
 )
-from pipeline.stages.detect._find import _expand_mesh, estimate_background, find_sources
+from pipeline.stages.detect._find import (
+    _expand_mesh,
+    estimate_background,
+    find_sources,
+    segment_map,
+)
 from pipeline.stages.detect._measure import measure_groups
 from pipeline.stages.detect._model import KernelGrid, reduce_kernel
 from pipeline.stages.detect._night import Planes, padded_stretch
@@ -513,6 +519,36 @@ def test_deblending_only_multi_peak_segments_changes_nothing():
     )
     np.testing.assert_array_equal(segm.data, everything.data)
     assert len(set(parent.values())) < len(parent)  # the pair was split
+
+
+#: (min_pixels, threshold): single-pixel segments kept, small ones dropped.
+SEGMENT_CASES = [(1, 2.5), (3, 2.0), (6, 2.0)]
+
+
+@pytest.mark.parametrize(("min_pixels", "threshold"), SEGMENT_CASES)
+def test_segment_map_is_photutils_detect_sources(min_pixels, threshold):
+    # photutils' detect_sources is the reference: the same labels, in the same
+    # order, the same bounding boxes and areas, exactly.  Smoothed noise (as in
+    # a matched-filter map) at these thresholds makes many segments of 1 to 20
+    # pixels (so some are dropped and the rest renumbered), and sources touch
+    # the image edges and the masked columns.
+    rng = np.random.default_rng(7)
+    yy, xx = np.mgrid[:150, :260]
+    snr = gaussian_filter(rng.normal(0, 1, (150, 260)), 1.0)
+    snr /= snr.std()
+    for x0, y0, amp in [(0, 40, 30), (120, 149, 25), (200, 70, 12), (57, 75, 40)]:
+        snr += amp * np.exp(-((xx - x0) ** 2 + (yy - y0) ** 2) / (2 * 2.5**2))
+    no_data = np.zeros(snr.shape, bool)
+    no_data[:, 55:58] = True  # cuts the star at x = 57 in two
+    ours = segment_map(snr, no_data, threshold=threshold, min_pixels=min_pixels)
+    theirs = detect_sources(snr, threshold, min_pixels, mask=no_data)
+    assert theirs.n_labels > 20  # many segments (and for min_pixels > 1, many dropped)
+    np.testing.assert_array_equal(ours.data, theirs.data)
+    assert ours.data.dtype == theirs.data.dtype
+    np.testing.assert_array_equal(ours.labels, theirs.labels)
+    assert ours.slices == theirs.slices
+    np.testing.assert_array_equal(ours.areas, theirs.areas)
+    assert segment_map(snr, no_data, threshold=1e3, min_pixels=1) is None
 
 
 def test_sky_ramp_along_the_scan_gives_no_false_sources():

@@ -394,13 +394,9 @@ def find_sources(
         Label -> parent label for deblended sources (a source not split maps
         to itself).
     """
-    from photutils.segmentation import deblend_sources, detect_sources
-    from photutils.utils.exceptions import NoDetectionsWarning
+    from photutils.segmentation import deblend_sources
 
-    with warnings.catch_warnings():
-        # An empty result is reported by the caller with its own warning class.
-        warnings.simplefilter("ignore", NoDetectionsWarning)
-        segm = detect_sources(snr, threshold, min_pixels, mask=no_data)
+    segm = segment_map(snr, no_data, threshold=threshold, min_pixels=min_pixels)
     if segm is None:
         return None, {}
     crowded = _several_peaks(snr, segm)
@@ -422,6 +418,85 @@ def find_sources(
     for child, par in getattr(segm, "deblended_label_to_parent", {}).items():
         parent[int(child)] = int(par)
     return segm, parent
+
+
+def segment_map(snr: np.ndarray, no_data: np.ndarray, *, threshold: float, min_pixels: int):
+    """Segments of ``snr`` above ``threshold``: photutils' ``detect_sources``, faster.
+
+    The same segmentation image as
+    :func:`photutils.segmentation.detect_sources` (``snr``, ``threshold``,
+    ``min_pixels``, ``mask=no_data``, 8-connected): pixels above the
+    threshold and not masked, labelled in raster order by
+    ``scipy.ndimage.label``, segments of fewer than ``min_pixels`` pixels
+    removed and the rest numbered 1, 2, ... in the same order, with the same
+    labels and bounding-box slices.  photutils visits the whole image three
+    more times (the relabelling look-up, ``find_objects`` and a copy of the
+    inverted mask) where the segments cover a few per cent of it; here only
+    their pixels are visited after the labelling: on the 4096 x 4096
+    benchmark stretch's first significance map, 0.045 s of CPU instead of
+    0.094 s (least of 3, interleaved, on a loaded machine: 0.07 s instead of
+    0.14 s).  ``tests/test_detect.py`` checks the result against photutils'.
+
+    Parameters
+    ----------
+    snr : ndarray, shape (ny, nx)
+        Significance map (finite).
+    no_data : ndarray of bool, shape (ny, nx)
+        Pixels that belong to no segment.
+    threshold : float
+        A pixel belongs to a segment where ``snr > threshold``.
+    min_pixels : int
+        Smallest segment, pixels.
+
+    Returns
+    -------
+    photutils.segmentation.SegmentationImage or None
+        None when no segment is left.
+    """
+    from photutils.segmentation import SegmentationImage
+    from scipy.ndimage import label
+
+    above = snr > threshold
+    above[no_data] = False
+    labels, n = label(above, structure=np.ones((3, 3), bool))
+    if n == 0:
+        return None
+    flat = labels.reshape(-1)
+    where = np.flatnonzero(above)  # a bool plane: faster than the labels
+    old = flat[where]
+    keep = np.bincount(old, minlength=n + 1) >= min_pixels
+    keep[0] = False
+    n_kept = int(keep.sum())
+    if n_kept == 0:
+        return None
+    renumber = np.zeros(n + 1, labels.dtype)
+    renumber[keep] = np.arange(1, n_kept + 1, dtype=labels.dtype)
+    new = renumber[old]
+    if n_kept < n:
+        flat[where] = new
+        inside = new > 0
+        where, new = where[inside], new[inside]
+    rows, cols = np.divmod(where, labels.shape[1])
+    bounds = []
+    for values, start in ((rows, labels.shape[0]), (cols, labels.shape[1])):
+        lo = np.full(n_kept + 1, start, np.int64)
+        hi = np.full(n_kept + 1, -1, np.int64)
+        np.minimum.at(lo, new, values)
+        np.maximum.at(hi, new, values)
+        bounds.append((lo[1:], hi[1:] + 1))
+    # The SegmentationImage as photutils' detect_sources builds it, with its
+    # labels and slices known (its constructor would find the labels again
+    # with a sort of the whole image).
+    segm = object.__new__(SegmentationImage)
+    segm._data = labels
+    segm.__dict__["labels"] = np.arange(1, n_kept + 1, dtype=labels.dtype)
+    (row_lo, row_hi), (col_lo, col_hi) = bounds
+    segm.__dict__["slices"] = [
+        (slice(int(a), int(b)), slice(int(c), int(d)))
+        for a, b, c, d in zip(row_lo, row_hi, col_lo, col_hi, strict=True)
+    ]
+    segm.__dict__["_deblend_label_map"] = {}
+    return segm
 
 
 def _several_peaks(snr: np.ndarray, segm) -> np.ndarray:
