@@ -37,7 +37,7 @@ from pipeline.stages.detect._find import (
     find_sources,
     segment_map,
 )
-from pipeline.stages.detect._measure import measure_groups
+from pipeline.stages.detect._measure import measure_groups, residual_quadrupole
 from pipeline.stages.detect._model import KernelGrid, reduce_kernel
 from pipeline.stages.detect._night import Planes, padded_stretch
 from pipeline.stages.rectify import smear_kernel_at
@@ -985,3 +985,30 @@ def test_psf_flux_of_resampled_clocked_stars_matches_their_electrons():
     assert abs(np.median(ratio)) < 1e-3, np.median(ratio)
     # The seeing is the simulator's (0.2 %: the width search's grid interpolation).
     assert result.seeing["fwhm"][0] == pytest.approx(fwhm, rel=2e-3)
+
+
+def test_residual_quadrupole_is_its_documented_sums():
+    # Reference: the formulas of residual_quadrupole's docstring written out
+    # with numpy (self-consistency: the compiled sums must be these sums).  A
+    # stamp cut from a larger image (not contiguous) with no-data pixels.
+    rng = np.random.default_rng(11)
+    image = rng.normal(0, 10, (40, 60))
+    data = image[5:35, 4:54]
+    data[3, 7:12] = np.nan
+    variance = rng.uniform(50, 300, data.shape)
+    variance[20, 30] = 0.0
+    model = rng.normal(0, 3, data.shape)
+    unit = rng.uniform(0, 1, data.shape)
+    x, y, corr = 21.3, 13.8, 1.7
+    chi2, elongation = residual_quadrupole(data, variance, model, unit, x, y, corr)
+    good = np.isfinite(data) & (variance > 0)
+    dy, dx = np.mgrid[: data.shape[0], : data.shape[1]] - np.array([y, x])[:, None, None]
+    w = np.where(good, unit, 0.0)
+    g = np.array([w * (dx**2 - dy**2), w * 2 * dx * dy])
+    r = np.where(good, data - model, 0.0)
+    e = np.sum(g * r, axis=(1, 2))
+    cov = np.einsum("ayx,byx->ab", g, g * np.where(good, variance, 0.0) * corr)
+    second = np.sum(w * (dx**2 + dy**2) * model)
+    # 1e-10: sums of ~1500 terms in another order (relative rounding ~1e-13).
+    assert chi2 == pytest.approx(e @ np.linalg.solve(cov, e), rel=1e-10)
+    assert elongation == pytest.approx(np.hypot(*e) / second, rel=1e-10)
