@@ -22,7 +22,7 @@ import numpy as np
 
 from pipeline.stages.detect._pixel_gauss_jit import profiles_compiled
 
-__all__ = ["fit_compiled"]
+__all__ = ["fit_compiled", "reduce_compiled"]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -311,3 +311,33 @@ def _solve(a, b):
             x[c] -= m[c, k] * x[k]
         x[c] /= m[c, c]
     return x, True
+
+
+@numba.njit(cache=True, nogil=True)
+def reduce_compiled(dx, dy, spacing):
+    """:func:`pipeline.stages.detect._model.reduce_kernel`, compiled (its steps, in its order)."""
+    n = dx.size
+    if n < 2:
+        return dx, dy
+    # Samples 1/m apart in time are (fastest speed) / m apart at most.
+    fastest = 0.0
+    for k in range(n - 1):
+        fastest = max(fastest, np.hypot(dx[k + 1] - dx[k], dy[k + 1] - dy[k]))
+    fastest *= n
+    wanted = max(1, int(np.ceil(fastest / max(spacing, 1e-6) - 1e-9)))
+    if wanted >= n:
+        return dx, dy
+    times = (np.arange(n) + 0.5) / n
+    new = (np.arange(wanted) + 0.5) / wanted
+    rx = np.interp(new, times, dx)
+    ry = np.interp(new, times, dy)
+    rx -= rx.mean()
+    ry -= ry.mean()
+    # Stretch each axis to the samples' own spread: m points of a track are
+    # narrower than the track (by about a step^2 / 12 in variance).
+    for out, full in ((rx, dx), (ry, dy)):
+        spread = np.sum(out * out)
+        if spread > 0:
+            centred = full - full.mean()
+            out *= np.sqrt(np.sum(centred * centred) / n * wanted / spread)
+    return rx, ry

@@ -127,27 +127,16 @@ def reduce_kernel(dx: np.ndarray, dy: np.ndarray, spacing: float) -> tuple[np.nd
     dx, dy : ndarray, shape (K',)
         ``K' <= K``; the input itself when no fewer samples would do.
     """
-    dx = np.asarray(dx, dtype=float)
-    dy = np.asarray(dy, dtype=float)
-    n = dx.size
-    if n < 2:
-        return dx, dy
-    # Samples 1/m apart in time are (fastest speed) / m apart at most.
-    fastest = n * float(np.max(np.hypot(np.diff(dx), np.diff(dy))))
-    wanted = max(1, int(np.ceil(fastest / max(spacing, 1e-6) - 1e-9)))
-    if wanted >= n:
-        return dx, dy
-    times = (np.arange(n) + 0.5) / n
-    new = (np.arange(wanted) + 0.5) / wanted
-    rx, ry = np.interp(new, times, dx), np.interp(new, times, dy)
-    rx, ry = rx - rx.mean(), ry - ry.mean()
-    # Stretch each axis to the samples' own spread: m points of a track are
-    # narrower than the track (by about a step^2 / 12 in variance).
-    for out, full in ((rx, dx), (ry, dy)):
-        spread = float(np.sum(out * out))
-        if spread > 0:
-            out *= np.sqrt(float(np.sum((full - full.mean()) ** 2)) / n * wanted / spread)
-    return rx, ry
+    # numba is imported on first use (see pixel_profiles).  Compiled: 5 us
+    # instead of 60 us per source, 0.16 s of CPU less for the 3000 sources of
+    # the 4096 x 4096 benchmark stretch.
+    from pipeline.stages.detect._fit_jit import reduce_compiled
+
+    return reduce_compiled(
+        np.ascontiguousarray(dx, dtype=np.float64),
+        np.ascontiguousarray(dy, dtype=np.float64),
+        float(spacing),
+    )
 
 
 @dataclass(frozen=True)
