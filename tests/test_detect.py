@@ -504,7 +504,9 @@ def test_deblending_only_multi_peak_segments_changes_nothing():
     rng = np.random.default_rng(4)
     yy, xx = np.mgrid[:128, :256]
     snr = rng.normal(0, 1, (128, 256))
-    for x0, y0, amp in [(30, 30, 40), (80, 60, 25), (86.5, 60, 20), (160, 90, 30), (200, 40, 8)]:
+    stars = [(30, 30, 40), (80, 60, 25), (86.5, 60, 20), (160, 90, 30), (200, 40, 8)]
+    stars += [(120, 20, 30), (127, 21, 15), (240, 110, 25), (246, 113, 25)]  # two more pairs
+    for x0, y0, amp in stars:
         snr += amp * np.exp(-((xx - x0) ** 2 + (yy - y0) ** 2) / (2 * 2.0**2))
     no_data = np.zeros(snr.shape, bool)
     options = {"threshold": 4.3, "min_pixels": 3, "deblend_levels": 32, "deblend_contrast": 0.005}
@@ -518,6 +520,10 @@ def test_deblending_only_multi_peak_segments_changes_nothing():
         progress_bar=False,
     )
     np.testing.assert_array_equal(segm.data, everything.data)
+    # and the segments are deblended one by one as photutils does them together
+    np.testing.assert_array_equal(segm.labels, everything.labels)
+    assert segm.slices == everything.slices
+    assert segm.deblended_label_to_parent == everything.deblended_label_to_parent
     assert len(set(parent.values())) < len(parent)  # the pair was split
 
 
