@@ -24,6 +24,7 @@ from pipeline.stages.detect import (
     DetectOptions,
     SeeingProfile,
     SourceFlag,
+    _deblended,
     _measure,
     _model,
     detect,
@@ -525,6 +526,11 @@ def test_deblending_only_multi_peak_segments_changes_nothing():
     assert segm.slices == everything.slices
     assert segm.deblended_label_to_parent == everything.deblended_label_to_parent
     assert len(set(parent.values())) < len(parent)  # the pair was split
+    # Only the children count as deblended, also where a segment left whole
+    # is renumbered to the label a split segment had (here label 1).
+    children = set(segm.deblended_label_to_parent)
+    assert 1 not in children and 1 in segm.deblended_label_to_parent.values()
+    assert _deblended(segm.labels, parent) == [int(k) in children for k in segm.labels]
 
 
 #: (min_pixels, threshold): single-pixel segments kept, small ones dropped.

@@ -391,8 +391,9 @@ def find_sources(
     segm : photutils SegmentationImage or None
         None when nothing is above the threshold.
     parent : dict
-        Label -> parent label for deblended sources (a source not split maps
-        to itself).
+        Label -> a key shared by the children of one split segment (minus
+        the segment's label before deblending); a source not split maps to
+        itself.
     """
     segm = segment_map(snr, no_data, threshold=threshold, min_pixels=min_pixels)
     if segm is None:
@@ -403,8 +404,10 @@ def find_sources(
             snr, segm, crowded, min_pixels, levels=deblend_levels, contrast=deblend_contrast
         )
     parent = {int(label): int(label) for label in segm.labels}
+    # A split segment's label is that of the segmentation before deblending,
+    # which the relabelled segments left whole reuse: negated, it is nobody's.
     for child, par in getattr(segm, "deblended_label_to_parent", {}).items():
-        parent[int(child)] = int(par)
+        parent[int(child)] = -int(par)
     return segm, parent
 
 
