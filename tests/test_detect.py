@@ -1024,3 +1024,19 @@ def test_residual_quadrupole_is_its_documented_sums():
     # 1e-10: sums of ~1500 terms in another order (relative rounding ~1e-13).
     assert chi2 == pytest.approx(e @ np.linalg.solve(cov, e), rel=1e-10)
     assert elongation == pytest.approx(np.hypot(*e) / second, rel=1e-10)
+
+
+@pytest.mark.parametrize("response", [None, _model.Response(0.3, 0.7, 0.9)])
+def test_model_image_is_the_numpy_model(response):
+    # Self-consistency: model_image runs compiled; _model._unit_model (numpy)
+    # is the reference the fits' Python loop uses.
+    dx, dy = smear_track([3900.0], 4096, 40, 16.0, 3.0)
+    profile = SeeingProfile(4.0)
+    sigmas, weights = profile.mixture()
+    ours = model_image((31, 45), 20.3, 14.6, dx[0], dy[0], profile, 1234.0, response)
+    reference = 1234.0 * _model._unit_model(
+        np.arange(45.0), np.arange(31.0), 20.3, 14.6, dx[0], dy[0], sigmas, weights,
+        response=response,
+    )  # fmt: skip
+    # 1e-12 of the peak: the same sums, in another order at most.
+    np.testing.assert_allclose(ours, reference, rtol=0, atol=1e-12 * reference.max())

@@ -22,7 +22,7 @@ import numpy as np
 
 from pipeline.stages.detect._pixel_gauss_jit import profiles_compiled
 
-__all__ = ["fit_compiled", "reduce_compiled"]
+__all__ = ["fit_compiled", "model_compiled", "reduce_compiled"]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -82,18 +82,34 @@ def _unit(
         x_first, nx, x0 + dx, sigmas, response[0], response[2], erf_table, gauss_table
     )
     gy, dgy = _sampled(y_first, ny, y0 + dy, sigmas, response[1], 0.0, erf_table, gauss_table)
-    rows = sigmas.size * dx.size
-    a = np.empty((rows, nx))
-    da = np.empty((rows, nx))
-    for j in range(sigmas.size):
-        scale = weights[j] / dx.size
-        for k in range(dx.size):
-            for e in range(nx):
-                a[j * dx.size + k, e] = gx[j, k, e] * scale
-                da[j * dx.size + k, e] = dgx[j, k, e] * scale
-    bt = np.ascontiguousarray(gy.reshape(rows, ny).T)
-    dbt = np.ascontiguousarray(dgy.reshape(rows, ny).T)
+    a = _weighted_rows(gx, weights)
+    da = _weighted_rows(dgx, weights)
+    bt = np.ascontiguousarray(gy.reshape(-1, ny).T)
+    dbt = np.ascontiguousarray(dgy.reshape(-1, ny).T)
     return np.dot(bt, a), np.dot(bt, da), np.dot(dbt, a)
+
+
+@numba.njit(cache=True, nogil=True)
+def _weighted_rows(profiles, weights):
+    """Profiles (J, K, n) times each component's weight over K, as rows (J K, n)."""
+    n_samples, n = profiles.shape[1], profiles.shape[2]
+    out = np.empty((weights.size * n_samples, n))
+    for j in range(weights.size):
+        scale = weights[j] / n_samples
+        for k in range(n_samples):
+            for e in range(n):
+                out[j * n_samples + k, e] = profiles[j, k, e] * scale
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def model_compiled(
+    x0, y0, x_first, nx, y_first, ny, dx, dy, sigmas, weights, response, erf_table, gauss_table
+):
+    """The unit model of :func:`_unit` alone, without its derivatives, shape (ny, nx)."""
+    gx, _ = _sampled(x_first, nx, x0 + dx, sigmas, response[0], response[2], erf_table, gauss_table)
+    gy, _ = _sampled(y_first, ny, y0 + dy, sigmas, response[1], 0.0, erf_table, gauss_table)
+    return np.dot(np.ascontiguousarray(gy.reshape(-1, ny).T), _weighted_rows(gx, weights))
 
 
 @numba.njit(cache=True, nogil=True)

@@ -363,11 +363,36 @@ def model_image(
     -------
     ndarray, shape (ny, nx)
     """
+    # numba is imported on first use (see pixel_profiles).  Compiled: 0.6 ms
+    # instead of 1.1 ms with the numpy model (:func:`_unit_model`, the
+    # reference) for a 31 x 45 stamp, 40 kernel samples and a resampling
+    # response (least of 3); detect renders one per source to search the
+    # image minus the models.
+    from pipeline.stages.detect._fit_jit import model_compiled
+
     sigmas, weights = profile.mixture()
-    xs = np.arange(shape[1], dtype=float)
-    ys = np.arange(shape[0], dtype=float)
-    dx, dy = np.asarray(dx), np.asarray(dy)
-    return flux * _unit_model(xs, ys, x0, y0, dx, dy, sigmas, weights, response=response)
+    return flux * model_compiled(
+        float(x0),
+        float(y0),
+        0.0,
+        int(shape[1]),
+        0.0,
+        int(shape[0]),
+        np.ascontiguousarray(dx, dtype=np.float64),
+        np.ascontiguousarray(dy, dtype=np.float64),
+        np.ascontiguousarray(sigmas, dtype=np.float64),
+        np.ascontiguousarray(weights, dtype=np.float64),
+        _response_row(response),
+        _ERF_TABLE,
+        _GAUSS_TABLE,
+    )
+
+
+def _response_row(response: Response | None) -> np.ndarray:
+    """A :class:`Response` as the compiled model takes it (-1, -1, 0: none)."""
+    if response is None:
+        return np.array([-1.0, -1.0, 0.0])
+    return np.array([response.lattice_x, response.lattice_y, response.row_step])
 
 
 @dataclass(frozen=True)
@@ -535,12 +560,7 @@ def _fit_one(d, sw, xs, ys, x, y, kernels, sigmas, weights, responses):
         bounds,
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
-        np.array(
-            [
-                [-1.0, -1.0, 0.0] if r is None else [r.lattice_x, r.lattice_y, r.row_step]
-                for r in responses
-            ]
-        ),
+        np.array([_response_row(r) for r in responses]),
         _ERF_TABLE,
         _GAUSS_TABLE,
     )
