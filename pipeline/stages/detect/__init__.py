@@ -932,6 +932,7 @@ STAGE = Stage(
     warm=WARM,
     # 5: a deconvolved product's noise correlation measured at a star's scale
     # 6: a saturated star is one source, fitted on its unclipped wings
-    version=6,
+    # 7: only the children of a split segment are flagged BLENDED
+    version=7,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
