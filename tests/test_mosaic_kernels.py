@@ -260,13 +260,13 @@ def test_resampled_gaussian_stars_keep_their_flux_on_the_tile():
     tx, ty = (a.ravel() + rng.uniform(-0.5, 0.5, a.size) for a in np.meshgrid(g, g))
     night = _night(target, "n1", 0.3, 2.8, 1e5, tx, ty, rng, _point, noise=False, shape="gaussian")
     flux = _held_width_fluxes(target, [night], tx, ty, seeing_shape="gaussian")
-    # Measured +0.11 % (36 stars; each star's phase on the night's pixels
-    # leaves a spread of 0.47 %, 0.08 % on the mean).  The variance alone
-    # (no fourth cumulant) gave -0.46 %, without the Keys kernel's -0.84 %:
-    # 0.25 % is 2 standard errors of the mean beyond the measured value and
-    # far from either.
-    assert abs(np.mean(flux)) <= 0.0025
-    assert np.std(flux) <= 0.006  # the phases' spread (measured 0.47 %)
+    # Measured +0.14 % (36 stars; each star's phase on the night's pixels,
+    # which the model does not hold, leaves a spread of 0.54 %, 0.09 % on the
+    # mean).  The variance alone (no fourth cumulant) gave -0.42 %, without
+    # the Keys kernel's -0.79 %: 0.3 % is 2 standard errors of the mean
+    # beyond the measured value, and short of either.
+    assert abs(np.mean(flux)) <= 0.003
+    assert np.std(flux) <= 0.008  # the phases' spread (measured 0.54 %)
 
 
 #: Rectify's response on the night below: lattice offsets of 0.2 and 0.05 px
