@@ -644,11 +644,13 @@ def available_memory() -> int | None:
 def worker_memory(stretch_rows: int, overlap_rows: int, n_columns: int) -> float:
     """Estimated peak memory of one worker, bytes.
 
-    About 0.25 GB for the interpreter and libraries plus 45 bytes per pixel
-    of a stretch with its margins (the calibrate and rectify stages hold a
-    few float32/float64 planes of it at once); measured on the demo night.
+    About 0.25 GB for the interpreter and libraries plus 100 bytes per pixel
+    of a stretch with its margins: detect, the largest, holds about a dozen
+    float32/float64 planes of it at once (measured with bench_night.py's
+    1040 x 4224-pixel stretches: 0.66-0.69 GB per worker, proportional set
+    size; calibrate and rectify alone needed 45 bytes per pixel).
     """
-    return 0.25e9 + 45.0 * (stretch_rows + 2 * overlap_rows) * n_columns
+    return 0.25e9 + 100.0 * (stretch_rows + 2 * overlap_rows) * n_columns
 
 
 def default_workers(run: RunSection, n_columns: int | None) -> int:
