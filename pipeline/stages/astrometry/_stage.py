@@ -247,18 +247,6 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
             ref_mag=ref_mag,
             start=start,
         )
-        guide = solved
-        if options.fit_error_floor:
-            guide = solve_catalog(
-                catalog,
-                reference["ra"],
-                reference["dec"],
-                model,
-                frame,
-                unfloored,
-                ref_mag=ref_mag,
-                start=solved.solution.offsets,
-            )
         new = [solved_kernels(k, solved.solution, model, frame) for k in kernels]
         changes = [kernel_change(a, b) for a, b in zip(kernels, new, strict=True)]
         change, error = 0.0, 0.0
@@ -313,7 +301,18 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
         )
         if not again:
             return solved, passes
-        if guide is not solved:
+        guide = solved
+        if options.fit_error_floor:  # only a pass that is followed needs it
+            guide = solve_catalog(
+                catalog,
+                reference["ra"],
+                reference["dec"],
+                model,
+                frame,
+                unfloored,
+                ref_mag=ref_mag,
+                start=solved.solution.offsets,
+            )
             new = [solved_kernels(k, guide.solution, model, frame) for k in kernels]
         kernels = new
         catalog = _remeasure(inputs, stretches, kernels, detect_options)
