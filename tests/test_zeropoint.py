@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from astropy.table import QTable
 from scipy.special import erf
 
 from pipeline.stages.zeropoint import (
@@ -22,6 +23,7 @@ from pipeline.stages.zeropoint import (
     scale_to_zero_point,
     star_flat,
 )
+from pipeline.stages.zeropoint._stage import _problems
 
 ZP0 = 25.0
 NIGHT = 1800.0  # seconds of night in the synthetic sets
@@ -220,6 +222,47 @@ def test_star_flat_noise_alone_is_not_reported():
     table, trend = star_flat(column, residual, np.ones(2000, bool), 1024, bin_columns=16)
     assert np.nanmax(np.abs(table["offset"].value)) > 0.01
     assert trend["deviant"] == []
+
+
+def test_a_star_flat_trend_is_reported_only_beyond_its_noise():
+    # ~240 stars on a 1024-column chip at 0.03 mag (a short night's share): a
+    # line through bins of 16 columns has an edge-to-edge error near 0.006 mag
+    # (sqrt(12 / n) * 0.03 for stars spread evenly, common practice), so pure
+    # noise passes the 0.01 mag limit on ~10 % of nights.
+    n_columns, n = 1024, 240
+    trends, errors = [], []
+    for seed in range(200):
+        rng = np.random.default_rng(seed)
+        column = rng.uniform(0, n_columns, n)
+        sigma = np.full(n, 0.03)
+        residual = rng.normal(0.0, sigma)
+        _, trend = star_flat(column, residual, np.ones(n, bool), n_columns, sigma=sigma)
+        trends.append(trend["edge_to_edge"])
+        errors.append(trend["edge_to_edge_err"])
+    trends, errors = np.asarray(trends), np.asarray(errors)
+    # The reported error is the trends' spread: 200 nights know a spread to
+    # ~5 % (1 / sqrt(2 * 200)); 15 % allows three of those.
+    assert np.std(trends) == pytest.approx(np.median(errors), rel=0.15)
+    assert np.median(errors) == pytest.approx(np.sqrt(12 / n) * 0.03, rel=0.15)
+    over = np.abs(trends) > 0.01
+    assert over.sum() >= 5  # the limit alone would cry wolf on these nights
+    intervals = QTable({"flags": np.zeros(0, int)})
+    reported = [
+        _problems(intervals, {"edge_to_edge": t, "edge_to_edge_err": e, "deviant": []}, 0.01)
+        for t, e in zip(trends[over], errors[over], strict=True)
+    ]
+    # 3 sigma: ~0.3 % of the 200 noise-only nights (normal tail), so at most one.
+    assert sum(bool(r) for r in reported) <= 1
+
+    # A real 2 % tilt on many stars stands far out of the noise: reported.
+    rng = np.random.default_rng(1)
+    column = rng.uniform(0, n_columns, 5000)
+    sigma = np.full(column.size, 0.03)
+    residual = rng.normal(0.0, sigma) + 0.02 * (column / (n_columns - 1) - 0.5)
+    _, trend = star_flat(column, residual, np.ones(column.size, bool), n_columns, sigma=sigma)
+    assert trend["edge_to_edge"] == pytest.approx(0.02, abs=4 * trend["edge_to_edge_err"])
+    problems = _problems(intervals, trend, 0.01)  # (its edge bins may be deviant too)
+    assert any("trend of +0.02" in problem for problem in problems)
 
 
 def test_star_flat_weighs_stars_by_their_errors():

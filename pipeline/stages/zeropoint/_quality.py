@@ -194,8 +194,9 @@ def star_flat(
         ``column_start``, ``column_stop`` (pix), ``n_stars``, ``offset``
         (median residual, mag), ``offset_err`` (mag).
     trend : dict
-        ``slope`` (mag per pixel) and ``edge_to_edge`` (mag) of a weighted
-        straight line through the bins, and ``deviant`` (indices of the bins
+        ``slope`` (mag per pixel), ``edge_to_edge`` (mag) and its standard
+        error ``edge_to_edge_err`` (mag) of a straight line through the
+        stars' residuals (weighted by ``sigma`` when given), and ``deviant`` (indices of the bins
         that are off, see ``max_offset``).
     """
     col = np.asarray(column, dtype=float)
@@ -236,20 +237,53 @@ def star_flat(
             "offset_err": u.Quantity(error, u.mag),
         }
     )
-    centre = 0.5 * (starts + stops - 1)
     ok = np.isfinite(offset) & (np.asarray(error) > 0)
-    slope = np.nan
-    if ok.sum() >= 2:
-        w = 1.0 / np.asarray(error)[ok] ** 2
-        slope = float(np.polyfit(centre[ok], np.asarray(offset)[ok], 1, w=np.sqrt(w))[0])
+    slope, slope_err = _trend(col[used], res[used], None if sig is None else sig[used])
     off = np.abs(np.asarray(offset))
     with np.errstate(invalid="ignore"):
         deviant = np.flatnonzero(ok & (off > max_offset) & (off > significance * np.asarray(error)))
     return table, {
         "slope": slope,
         "edge_to_edge": slope * (n_columns - 1),
+        "edge_to_edge_err": slope_err * (n_columns - 1),
         "deviant": [int(k) for k in deviant],
     }
+
+
+#: A star-flat trend is reported only when it is also this many of its
+#: standard errors from zero: one test per night, so 3 sigma raises a false
+#: alarm on ~0.3 % of nights (normal two-sided tail probability 2.7e-3).
+TREND_SIGNIFICANCE = 3.0
+
+
+def _trend(column: np.ndarray, residual: np.ndarray, sigma: np.ndarray | None):
+    """Slope of a straight line through the stars' residuals, and its standard error.
+
+    Fitted to the stars themselves, not to the bins: on a sparse night most
+    bins hold fewer than ``min_stars`` and would leave their stars out.
+    Weighted by ``sigma`` when given; the error is the least-squares one,
+    widened by the square root of the reduced chi-square where the stars
+    scatter beyond their errors (without ``sigma``, the scatter about the
+    line is the error).  NaN and NaN for fewer than three stars.
+
+    Returns
+    -------
+    slope, slope_err : float
+        mag per pixel.
+    """
+    if column.size < 3:
+        return np.nan, np.nan
+    weight = np.ones(column.size) if sigma is None else 1.0 / sigma**2
+    design = np.column_stack([column, np.ones_like(column)])
+    normal = design.T @ (design * weight[:, None])
+    try:
+        cov = np.linalg.inv(normal)
+    except np.linalg.LinAlgError:  # every star in one column
+        return np.nan, np.nan
+    coef = cov @ (design.T @ (weight * residual))
+    chi2_red = float(np.sum(weight * (residual - design @ coef) ** 2)) / (column.size - 2)
+    scale = chi2_red if sigma is None else max(chi2_red, 1.0)
+    return float(coef[0]), float(np.sqrt(cov[0, 0] * scale))
 
 
 def scale_to_zero_point(zero_point: ArrayLike, target: float, exposure: float) -> np.ndarray:
