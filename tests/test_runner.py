@@ -1381,3 +1381,28 @@ def test_a_lazy_unit_reads_a_product_only_when_asked(tmp_path: Path) -> None:
     (tmp_path / "n.json").write_text('{"rows": 4}')
     with pytest.raises(DamagedProductError, match="content changed"):
         _store.LazyUnit(tmp_path, sidecar)["n"]
+
+
+def test_a_night_wide_stage_reads_only_the_products_it_looks_up(tmp_path: Path) -> None:
+    # A night-wide stage that wants one header of one stretch (astrometry's
+    # pixel scale) or one table of each must not read every plane of every
+    # stretch: only what it looks up is read (and recorded as read).
+    image = np.zeros((3, 4), np.float32)
+    empty = fits.Header({"CDELT2": 1e-4})
+    flags = image.astype(np.uint16)
+    product = image_hdulist(image, image, flags, unit="electron", header=empty, metadata=empty)
+    units = []
+    for stretch in range(2):
+        unit_dir = tmp_path / f"s{stretch:04d}"
+        entries = write_products(unit_dir, {"image": product, "n": {"rows": stretch}}, {})
+        units.append((unit_dir, {"products": entries}))
+    read: dict[str, str] = {}
+    with contextlib.ExitStack() as files:
+        stretches = _store.LazyProducts(units, read, files)
+        assert [products["n"]["rows"] for products in stretches] == [0, 1]
+        assert sorted(read) == [f"{tmp_path.name}/s000{i}/n.json" for i in range(2)]
+        hdul = stretches[0]["image"]
+        assert hdul["FLUX"].header["CDELT2"] == 1e-4
+        assert not hdul["FLUX"]._data_loaded  # opened lazily: the header alone
+        assert len(read) == 3
+    assert hdul._file.closed

@@ -451,15 +451,23 @@ class LazyUnit(Mapping):
 
 
 class LazyProducts(Sequence):
-    """Read-only sequence of per-stretch product dicts, each loaded on access."""
+    """Read-only sequence of per-stretch products, each read when looked up.
+
+    Each item is a :class:`LazyUnit`: a night-wide stage that needs one
+    product of every stretch (their catalogues), or one header of one stretch,
+    reads only that, not every plane of every stretch.  With ``files`` given,
+    image products come opened lazily and ``files`` closes them.
+    """
 
     def __init__(
         self,
         units: Sequence[tuple[Path, Mapping[str, Any]]],
         read: dict[str, str] | None = None,
+        files: contextlib.ExitStack | None = None,
     ):
         self._units = list(units)
         self._read = read
+        self._files = files
 
     def __len__(self) -> int:
         return len(self._units)
@@ -468,7 +476,7 @@ class LazyProducts(Sequence):
         if isinstance(index, slice):
             return [self[i] for i in range(*index.indices(len(self)))]
         unit_dir, sidecar = self._units[index]
-        return read_products(unit_dir, sidecar, self._read)
+        return LazyUnit(unit_dir, sidecar, self._read, self._files)
 
     def __iter__(self) -> Iterator[dict[str, Any]]:
         for index in range(len(self)):

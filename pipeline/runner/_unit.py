@@ -107,7 +107,7 @@ class InputSpec:
             unit_dir, sidecar = self.units[0]
             return read_products(unit_dir, sidecar, read)
         if self.kind == "units":
-            return LazyProducts(self.units, read)
+            return LazyProducts(self.units, read, files)
         if self.kind == "neighbours":
             return {
                 name: tuple(None if unit is None else LazyUnit(*unit, read, files) for unit in pair)
