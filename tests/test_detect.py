@@ -11,9 +11,9 @@ from astropy.wcs import WCS
 from photutils.aperture import CircularAperture, aperture_photometry
 from photutils.background import Background2D
 from photutils.centroids import centroid_2dg
-from photutils.segmentation import deblend_sources, detect_sources
+from photutils.segmentation import SourceCatalog, deblend_sources, detect_sources
 from pydantic import ValidationError
-from scipy.ndimage import gaussian_filter
+from scipy.ndimage import find_objects, gaussian_filter
 from scipy.spatial import cKDTree
 from scipy.stats import norm
 
@@ -41,6 +41,7 @@ from pipeline.stages.detect._find import (
 from pipeline.stages.detect._measure import measure_groups, residual_quadrupole
 from pipeline.stages.detect._model import KernelGrid, reduce_kernel
 from pipeline.stages.detect._night import Planes, padded_stretch
+from pipeline.stages.detect._saturated import Footprints, merge_on_footprints
 from pipeline.stages.rectify import smear_kernel_at
 from tests._detect_scene import kernel_table, render_scene, smear_track
 
@@ -652,6 +653,46 @@ def test_a_saturated_star_is_one_source(bleed):
     (on,) = np.flatnonzero((np.abs(y - 100.0) < 8.0) & (np.abs(x - 150.0) < 12.0 + bleed))
     assert np.hypot(x[on] - 150.0, y[on] - 100.0) < 0.05
     assert np.min(np.hypot(x - 150.0, y - 114.0)) < 0.5  # the neighbour, 14 px away
+
+
+def test_merging_on_footprints_is_photutils_reassign_labels():
+    # photutils' reassign_labels for the segments of each footprint in turn is
+    # the reference: the same label image, labels, boxes, areas and deblending
+    # parents, exactly.  Three footprints: one over a deblended pair and a
+    # third star (the merged box grows across all three), one over two
+    # isolated stars, one over a single star (nothing to merge).
+    rng = np.random.default_rng(5)
+    yy, xx = np.mgrid[:128, :256]
+    snr = rng.normal(0, 1, (128, 256))
+    stars = [(60, 40, 30), (66.5, 40, 25), (70, 60, 20), (150, 30, 20), (175, 90, 20)]
+    stars += [(220, 100, 15), (30, 110, 12)]
+    for x0, y0, amp in stars:
+        snr += amp * np.exp(-((xx - x0) ** 2 + (yy - y0) ** 2) / (2 * 2.0**2))
+    options = {"threshold": 4.3, "min_pixels": 3, "deblend_levels": 32, "deblend_contrast": 0.005}
+    segm, _ = find_sources(snr, np.zeros(snr.shape, bool), **options)
+    assert segm.deblended_label_to_parent  # the pair was split
+    areas = np.zeros(snr.shape, np.int32)
+    areas[25:75, 50:80] = 1
+    areas[20:100, 140:185] = 2
+    areas[90:110, 210:230] = 3
+    footprints = Footprints(areas, find_objects(areas), np.zeros(snr.shape, bool))
+    cat = SourceCatalog(snr, segm)
+    x, y = np.asarray(cat.x_centroid), np.asarray(cat.y_centroid)
+    expected = segm.copy()
+    owner = footprints.at(x, y)
+    for k in (1, 2, 3):
+        same = np.asarray(segm.labels)[owner == k]
+        if same.size > 1:
+            expected.reassign_labels(same[1:], same[0])
+    assert expected.n_labels == segm.n_labels - 3  # two merges in one footprint, one in another
+    assert merge_on_footprints(segm, x, y, footprints)
+    np.testing.assert_array_equal(segm.data, expected.data)
+    np.testing.assert_array_equal(segm.labels, expected.labels)
+    assert segm.slices == expected.slices
+    np.testing.assert_array_equal(segm.areas, expected.areas)
+    assert segm.deblended_label_to_parent == expected.deblended_label_to_parent
+    again = SourceCatalog(snr, segm)  # one segment per footprint now: nothing to merge
+    assert not merge_on_footprints(segm, again.x_centroid, again.y_centroid, footprints)
 
 
 def test_bad_input_is_rejected():

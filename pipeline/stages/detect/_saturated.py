@@ -124,6 +124,16 @@ def footprint_bounds(xs, ys, footprints: Footprints | None):
 def merge_on_footprints(segm, x: np.ndarray, y: np.ndarray, footprints) -> bool:
     """Merge the segments whose start positions fall on one saturated footprint.
 
+    The same result as photutils' ``segm.reassign_labels(same[1:], same[0])``
+    for the segments ``same`` of each footprint in turn (labels not
+    renumbered), in one pass: each of those calls maps and copies the whole
+    image and the segmentation's labels and boxes are then found again from
+    the whole image (0.74 s of the 3.8 s of CPU of detect on a crowded
+    1035 x 4096 stretch with ~50 saturated stars); here only the merged
+    segments' boxes are visited, and the labels, boxes and deblending
+    parents are updated from the ones known.  ``tests/test_detect.py``
+    checks the result against photutils'.
+
     Parameters
     ----------
     segm : `~photutils.segmentation.SegmentationImage`
@@ -142,10 +152,44 @@ def merge_on_footprints(segm, x: np.ndarray, y: np.ndarray, footprints) -> bool:
     """
     owner = on_footprint(x, y, footprints)
     labels = np.asarray(segm.labels)
-    merged = False
-    for k in np.unique(owner[owner > 0]):
-        same = labels[owner == k]
-        if same.size > 1:
-            segm.reassign_labels(same[1:], same[0])
-            merged = True
-    return merged
+    groups = [labels[owner == k] for k in np.unique(owner[owner > 0])]
+    groups = [same for same in groups if same.size > 1]
+    if not groups:
+        return False
+    _merge_labels(segm, groups)
+    return True
+
+
+def _merge_labels(segm, groups: list) -> None:
+    """Give the segments of each array in ``groups`` the label of its first one, in place.
+
+    What photutils' ``reassign_labels`` does for each group in turn (no
+    renumbering), with the segmentation's labels, bounding boxes and
+    deblending map set from the ones it had.
+    """
+    data = segm.data
+    labels = np.asarray(segm.labels)
+    slices = list(segm.slices)
+    index = {int(label): i for i, label in enumerate(labels)}
+    relabel = np.arange(int(labels.max()) + 1, dtype=data.dtype)
+    gone = np.zeros(labels.size, bool)
+    for same in groups:
+        target = int(same[0])
+        box = slices[index[target]]
+        for label in same[1:]:
+            i = index[int(label)]
+            own = slices[i]
+            view = data[own]
+            view[view == label] = target
+            relabel[label] = target
+            gone[i] = True
+            box = (
+                slice(min(box[0].start, own[0].start), max(box[0].stop, own[0].stop)),
+                slice(min(box[1].start, own[1].start), max(box[1].stop, own[1].stop)),
+            )
+        slices[index[target]] = box
+    parents = {key: relabel[value] for key, value in segm._deblend_label_map.items()}
+    segm._reset_lazyproperties()
+    segm.__dict__["labels"] = labels[~gone]
+    segm.__dict__["slices"] = [box for box, drop in zip(slices, gone, strict=True) if not drop]
+    segm.__dict__["_deblend_label_map"] = parents
