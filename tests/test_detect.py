@@ -229,6 +229,22 @@ def test_kernel_grid_matches_rectify_lookup():
         np.testing.assert_allclose(dy, ry, atol=1e-12)
 
 
+def test_kernel_grid_responses_are_its_response_to_the_bit():
+    # The vectorised lookup against the point-by-point one (numpy's interp):
+    # the same floats, exactly, at recorded rows and columns, between them,
+    # beyond both ends, and with lattice offsets that wrap past 1.
+    table = kernel_table(256, 100, 400, 12.0, 2.0)
+    rng = np.random.default_rng(3)
+    table["lattice_x"] = 0.9 + 0.3 * rng.random(len(table))
+    table["lattice_y"] = rng.random(len(table))
+    table["row_step"] = 1.0 + 0.01 * rng.random(len(table))
+    grid = KernelGrid(table)
+    x = np.concatenate([[100.0, 299.5, 499.0, 50.0, 600.0], rng.uniform(90, 510, 200)])
+    y = np.concatenate([[0.0, 32.0, 255.0, -5.0, 300.0], rng.uniform(-10, 270, 200)])
+    assert grid.responses(x, y) == [grid.response(a, b) for a, b in zip(x, y, strict=True)]
+    assert KernelGrid(kernel_table(64, 0, 64, 4.0, 1.0)).responses(x[:3], y[:3]) == [None] * 3
+
+
 def test_reduced_kernel_keeps_the_mean_and_the_extent():
     dx, dy = smear_track([500.0], 512, 64, 12.0, 2.0)
     rx, ry = reduce_kernel(dx[0], dy[0], 0.5)

@@ -102,14 +102,17 @@ def on_footprint(x: np.ndarray, y: np.ndarray, footprints: Footprints | None) ->
     return footprints.at(x, y)
 
 
-def footprint_bounds(xs, ys, footprints: Footprints | None):
+def footprint_bounds(xs, ys, footprints: Footprints | None, owner=None):
     """Corners ``(x, y)`` of the footprints under the positions, or None if none.
 
     Returns the two lists ``[x_min, x_max]`` and ``[y_min, y_max]`` (pixels)
     of the union of the bounding boxes, for widening a fit stamp so that it
-    holds the clipped core and the unsaturated wings around it.
+    holds the clipped core and the unsaturated wings around it.  ``owner``:
+    :func:`on_footprint` of the positions, if known.
     """
-    owner = on_footprint(xs, ys, footprints)
+    if footprints is None:
+        return None
+    owner = on_footprint(xs, ys, footprints) if owner is None else owner
     found = np.unique(owner[owner > 0])
     if not found.size:
         return None
