@@ -102,6 +102,27 @@ def test_gaussian_star_flux_and_centroid_are_recovered():
     assert abs(np.mean(xs) - x0) < 4 * crb / np.sqrt(200)
 
 
+def test_fit_leaves_out_pixels_without_data_and_counts_the_rest():
+    # Zero, negative or NaN variance and non-finite data all mean "no data"
+    # (fit_stars' documented rule): the fit equals the one with those pixels
+    # NaN in the data, and its reduced chi-square is the sum over the pixels
+    # used, over their number less the 4 parameters (the definition).
+    profile = SeeingProfile(3.0)
+    image = model_image((24, 30), 14.2, 11.6, *POINT, profile, 2.0e4) + 40.0
+    variance = image.copy()
+    noisy = image + np.random.default_rng(2).normal(0.0, np.sqrt(variance))
+    data, var = noisy.copy(), variance.copy()
+    var[3, 4], var[5, 20], var[12, 15], data[8, 9], data[20, 2] = 0.0, -1.0, np.nan, np.nan, np.inf
+    gone = ~(np.isfinite(data) & np.isfinite(var) & (var > 0))
+    fit = fit_stars(data, var, [14.0], [11.9], [POINT], profile)
+    reference = fit_stars(np.where(gone, np.nan, noisy), variance, [14.0], [11.9], [POINT], profile)
+    for name in ("flux", "x", "y", "flux_err", "x_err", "y_err"):
+        np.testing.assert_array_equal(getattr(fit, name), getattr(reference, name))
+    model = fit.background + fit.flux[0] * fit.units[0]
+    chi2 = np.sum(((noisy - model) ** 2 / variance)[~gone]) / (np.count_nonzero(~gone) - 4)
+    assert fit.chi2 == pytest.approx(chi2, rel=1e-9)  # round-off of two sums of 700 terms
+
+
 def _bowed_star(bow=2.5, length=10.0, flux=2.0e5, fwhm=3.0):
     """A noise-free star on a curved smear, rendered with 256 samples."""
     t = (np.arange(256) + 0.5) / 256 - 0.5

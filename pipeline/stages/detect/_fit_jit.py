@@ -22,7 +22,7 @@ import numpy as np
 
 from pipeline.stages.detect._pixel_gauss_jit import profiles_compiled
 
-__all__ = ["fit_compiled", "model_compiled", "reduce_compiled"]
+__all__ = ["fit_compiled", "model_compiled", "reduce_compiled", "weighted_compiled"]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -327,6 +327,31 @@ def _solve(a, b):
             x[c] -= m[c, k] * x[k]
         x[c] /= m[c, c]
     return x, True
+
+
+@numba.njit(cache=True, nogil=True)
+def weighted_compiled(data, variance):
+    """Weighted data ``data / sigma``, weights ``1 / sigma`` and the number of pixels used.
+
+    Both flattened (row by row), 0 where a pixel is left out (non-finite
+    data or variance, or variance <= 0): what ``fit_stars`` formed with
+    eight array operations (0.25 s of CPU of numpy's call overhead over a
+    crowded stretch's 3300 fits), with the same arithmetic.
+    """
+    ny, nx = data.shape
+    sw = np.zeros(ny * nx)
+    d = np.zeros(ny * nx)
+    n_good = 0
+    for j in range(ny):
+        for i in range(nx):
+            v = variance[j, i]
+            value = data[j, i]
+            if np.isfinite(value) and np.isfinite(v) and v > 0.0:
+                w = np.sqrt(1.0 / v)
+                sw[j * nx + i] = w
+                d[j * nx + i] = value * w
+                n_good += 1
+    return sw, d, n_good
 
 
 @numba.njit(cache=True, nogil=True)

@@ -511,18 +511,27 @@ def fit_stars(
     -------
     FitResult
     """
+    # numba is imported on first use (see pixel_profiles).
+    from pipeline.stages.detect._fit_jit import weighted_compiled
+
     x = np.atleast_1d(np.asarray(x, dtype=float))
     y = np.atleast_1d(np.asarray(y, dtype=float))
     n = x.size
     ny, nx = data.shape
-    xs = np.arange(nx, dtype=float) + origin[1]
-    ys = np.arange(ny, dtype=float) + origin[0]
-    good = np.isfinite(data) & np.isfinite(variance) & (variance > 0)
-    sw = np.sqrt(np.where(good, 1.0 / np.where(good, variance, 1.0), 0.0)).ravel()
-    d = np.where(good, data, 0.0).ravel() * sw
+    # sw = 1 / sigma and d = data / sigma, 0 where a pixel is left out
+    sw, d, n_good = weighted_compiled(
+        np.asarray(data, dtype=np.float64), np.asarray(variance, dtype=np.float64)
+    )
     sigmas, weights = profile.mixture()
     nb = 1 if fit_background else 0
     responses = [None] * n if responses is None else list(responses)
+    if nb and n:
+        compiled = _fit_one(d, sw, origin, (ny, nx), x, y, kernels, sigmas, weights, responses)
+        if compiled is not None:
+            p, jac, units, chi2_sum, success = compiled
+            return _fit_result(p, jac, units, chi2_sum, success, n_good, nb, noise_correlation)
+    xs = np.arange(nx, dtype=float) + origin[1]
+    ys = np.arange(ny, dtype=float) + origin[0]
 
     def models_at(p):
         """Unit models of the stars at the positions in ``p`` and their derivatives."""
@@ -552,11 +561,6 @@ def fit_stars(
     def evaluate(p):
         return assemble(p, models_at(p))
 
-    if nb and n:
-        compiled = _fit_one(d, sw, xs, ys, x, y, kernels, sigmas, weights, responses)
-        if compiled is not None:
-            p, jac, units, chi2_sum, success = compiled
-            return _fit_result(p, jac, units, chi2_sum, success, good, nb, noise_correlation)
     # Linear start: fluxes (and background) at the starting positions, from
     # the unit models the first step needs anyway.
     p = np.empty(nb + 3 * n)
@@ -570,10 +574,10 @@ def fit_stars(
     p, jac, units, chi2_sum, success = _levenberg_marquardt(
         evaluate, p, nb, n, first=assemble(p, start)
     )
-    return _fit_result(p, jac, units, chi2_sum, success, good, nb, noise_correlation)
+    return _fit_result(p, jac, units, chi2_sum, success, n_good, nb, noise_correlation)
 
 
-def _fit_one(d, sw, xs, ys, x, y, kernels, sigmas, weights, responses):
+def _fit_one(d, sw, origin, shape, x, y, kernels, sigmas, weights, responses):
     """The stars and a background fitted in one compiled call; None to fit in Python.
 
     :func:`~pipeline.stages.detect._fit_jit.fit_compiled` takes the same
@@ -585,19 +589,26 @@ def _fit_one(d, sw, xs, ys, x, y, kernels, sigmas, weights, responses):
     # numba is imported on first use (see pixel_profiles).
     from pipeline.stages.detect._fit_jit import fit_compiled
 
-    bounds = np.zeros(len(kernels) + 1, dtype=np.int64)
-    bounds[1:] = np.cumsum([np.size(k[0]) for k in kernels])
+    if len(kernels) == 1:  # most fits: one star, its samples as they are
+        dx = np.ascontiguousarray(kernels[0][0], dtype=np.float64).ravel()
+        dy = np.ascontiguousarray(kernels[0][1], dtype=np.float64).ravel()
+        bounds = np.array([0, dx.size], dtype=np.int64)
+    else:
+        dx = np.concatenate([np.asarray(k[0], dtype=np.float64).ravel() for k in kernels])
+        dy = np.concatenate([np.asarray(k[1], dtype=np.float64).ravel() for k in kernels])
+        bounds = np.zeros(len(kernels) + 1, dtype=np.int64)
+        bounds[1:] = np.cumsum([np.size(k[0]) for k in kernels])
     p, jac, units, chi2, status = fit_compiled(
         d,
         sw,
-        float(xs[0]),
-        int(xs.size),
-        float(ys[0]),
-        int(ys.size),
+        float(origin[1]),
+        int(shape[1]),
+        float(origin[0]),
+        int(shape[0]),
         np.array(x, dtype=np.float64),
         np.array(y, dtype=np.float64),
-        np.concatenate([np.asarray(k[0], dtype=np.float64).ravel() for k in kernels]),
-        np.concatenate([np.asarray(k[1], dtype=np.float64).ravel() for k in kernels]),
+        dx,
+        dy,
         bounds,
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
@@ -608,9 +619,12 @@ def _fit_one(d, sw, xs, ys, x, y, kernels, sigmas, weights, responses):
     return None if status < 0 else (p, jac, list(units), chi2, status == 1)
 
 
-def _fit_result(p, jac, units, chi2_sum, success, good, nb, noise_correlation) -> FitResult:
-    """:class:`FitResult` of the parameters ``p`` (background first if ``nb``)."""
-    dof = max(int(good.sum()) - p.size, 1)
+def _fit_result(p, jac, units, chi2_sum, success, n_good, nb, noise_correlation) -> FitResult:
+    """:class:`FitResult` of the parameters ``p`` (background first if ``nb``).
+
+    ``n_good``: the number of pixels fitted.
+    """
+    dof = max(int(n_good) - p.size, 1)
     try:
         cov = np.linalg.inv(jac.T @ jac) * noise_correlation
         err = np.sqrt(np.maximum(np.diag(cov), 0.0))
