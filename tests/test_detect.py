@@ -13,7 +13,7 @@ from photutils.background import Background2D
 from photutils.centroids import centroid_2dg
 from photutils.segmentation import SourceCatalog, deblend_sources, detect_sources
 from pydantic import ValidationError
-from scipy.ndimage import find_objects, gaussian_filter
+from scipy.ndimage import binary_dilation, find_objects, gaussian_filter
 from scipy.spatial import cKDTree
 from scipy.stats import norm
 
@@ -41,7 +41,7 @@ from pipeline.stages.detect._find import (
 from pipeline.stages.detect._measure import measure_groups, residual_quadrupole
 from pipeline.stages.detect._model import KernelGrid, reduce_kernel
 from pipeline.stages.detect._night import Planes, padded_stretch
-from pipeline.stages.detect._saturated import Footprints, merge_on_footprints
+from pipeline.stages.detect._saturated import Footprints, dilate_sparse, merge_on_footprints
 from pipeline.stages.rectify import smear_kernel_at
 from tests._detect_scene import kernel_table, render_scene, smear_track
 
@@ -730,6 +730,26 @@ def test_merging_on_footprints_is_photutils_reassign_labels():
     assert segm.deblended_label_to_parent == expected.deblended_label_to_parent
     again = SourceCatalog(snr, segm)  # one segment per footprint now: nothing to merge
     assert not merge_on_footprints(segm, again.x_centroid, again.y_centroid, footprints)
+
+
+#: Image shapes for the tiled dilation: several tiles with a partial last
+#: one, one exact tile, and a tile cut on both axes.
+DILATION_SHAPES = [(300, 470), (64, 64), (65, 63)]
+
+
+@pytest.mark.parametrize("shape", DILATION_SHAPES)
+def test_sparse_dilation_is_scipy_binary_dilation(shape):
+    # scipy's binary_dilation of the whole image is the reference, exactly:
+    # pixels on the image edges and on both sides of tile borders (64), with
+    # a disk of radius 3 and an asymmetric-reach structure (5 x 9).
+    rng = np.random.default_rng(8)
+    pixels = rng.random(shape) < 0.003
+    pixels[0, 0] = pixels[-1, -1] = pixels[0, -1] = True
+    pixels[min(63, shape[0] - 1), min(64, shape[1] - 1)] = True
+    yy, xx = np.mgrid[-3:4, -3:4]
+    for structure in (xx**2 + yy**2 <= 9, np.ones((5, 9), bool)):
+        expected = binary_dilation(pixels, structure=structure)
+        np.testing.assert_array_equal(dilate_sparse(pixels, structure), expected)
 
 
 def test_bad_input_is_rejected():
