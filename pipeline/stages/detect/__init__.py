@@ -61,6 +61,7 @@ from pipeline.stages.detect._measure import (
     measure_groups,
     seeing_curves,
     single_stars,
+    split_pair,
 )
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
 from pipeline.stages.detect._saturated import merge_on_footprints, saturated_footprints
@@ -140,6 +141,11 @@ class DetectOptions(BaseModel):
         True,
         description="Search the image minus the fitted models once more for sources hidden "
         "by brighter neighbours, then refit.",
+    )
+    split_pairs: bool = Field(
+        True,
+        description="Fit a source the model leaves elongated (UNRESOLVED) as two, and keep "
+        "the two when the data want them (a pair along a long smear looks like one star).",
     )
 
 
@@ -282,6 +288,7 @@ def detect(
     seeing_bands: int = 4,
     aperture_radii: tuple[float, ...] = (1.0, 2.0, 3.0),
     find_in_residual: bool = True,
+    split_pairs: bool = True,
     seeing_profile: SeeingProfile | None = None,
 ) -> DetectResult:
     """Detect and measure the point sources of a rectified stretch.
@@ -313,7 +320,7 @@ def detect(
         them are kept (each star of the night is listed once).  None: all.
     threshold_sigma, min_pixels, background_box, filter_band, deblend_levels,
     deblend_contrast, seeing_shape, moffat_beta, fwhm_guess, seeing_stars,
-    seeing_min_snr, seeing_bands, aperture_radii, find_in_residual
+    seeing_min_snr, seeing_bands, aperture_radii, find_in_residual, split_pairs
         See :class:`DetectOptions`.
     seeing_profile : SeeingProfile or None
         The seeing's shape when it is not one of ``seeing_shape``'s families
@@ -523,7 +530,24 @@ def detect(
 
     fitted: dict = {}  # groups already fitted, for the later passes
 
+    def split_one(group_xy, which):
+        return split_pair(
+            residual,
+            var_fit,
+            group_xy,
+            which,
+            grid,
+            profile,
+            x_start=x_start,
+            point_kernel=point,
+            noise_correlation=noise_correlation,
+            min_snr=threshold_sigma,
+        )
+
+    started: dict = {}  # where the last fit of every source started
+
     def fit_all(px, py, split):
+        started["x"], started["y"] = np.array(px, dtype=float), np.array(py, dtype=float)
         members = _groups(px, py, grid, x_start, profile.fwhm, point)
         result = measure_groups(
             residual,
@@ -607,6 +631,25 @@ def detect(
                     if abs(again - profile.fwhm) > 0.003 * profile.fwhm:
                         profile = profile.with_fwhm(again)
                         members, fits_ = fit_all(px, py, blended)
+    # One split per group at a time, the one that gains most: a pair fitted as
+    # one elongates its neighbours' residuals too, until it is resolved.
+    for _ in range(SPLIT_ROUNDS if split_pairs else 0):
+        found = _split_unresolved(members, fits_, threshold_sigma, split_one)
+        if not found:
+            break
+        # The other sources start where their last fit started: their groups
+        # are the same, and the memo gives their fits back unchanged.
+        px, py = started["x"], started["y"]
+        parents = np.array([i for i, _ in found])
+        for i, (first, _second) in found:
+            px[i], py[i] = first
+        cx = np.concatenate([px, [second[0] for _, (_, second) in found]])
+        cy = np.concatenate([py, [second[1] for _, (_, second) in found]])
+        blended = np.asarray(blended, bool).copy()
+        blended[parents] = True
+        blended = np.concatenate([blended, np.ones(len(found), bool)])
+        shape_cols = [np.concatenate([c, c[parents]]) for c in shape_cols]
+        members, fits_ = fit_all(cx, cy, blended)
     order = [i for g in members for i in g]
     keep = np.ones(len(order), bool)
     if own_columns is not None:
@@ -659,6 +702,58 @@ def detect(
     catalog.meta["seeing_fwhm"] = float(profile.fwhm)
     catalog.meta["seeing_shape"] = seeing_shape
     return DetectResult(catalog, _seeing_table(seeing_rows))
+
+
+#: Largest fraction of the bright sources (S/N >= 50) flagged UNRESOLVED for
+#: which they are split into pairs: beyond it the model is off for the
+#: stretch (a smear kernel of the wrong length elongates every bright star's
+#: residual), not the sky crowded with pairs, and splitting would double stars.
+SPLIT_MAX_FRACTION = 0.05
+#: ... and at least this many of them: a few pairs among a few bright stars
+#: are pairs.
+SPLIT_MIN_SUSPECT = 5
+#: Rounds of splitting (each at most one source per group, then a refit).
+SPLIT_ROUNDS = 3
+
+
+def _split_unresolved(members, fits_, threshold_sigma, split_one):
+    """``[(source, (first, second)), ...]``: UNRESOLVED sources that are two.
+
+    ``split_one(group_xy, which)`` is :func:`split_pair` on the stretch's
+    planes.  Nothing is split (and a warning says why) when more than
+    :data:`SPLIT_MAX_FRACTION` of the bright sources are flagged.
+    """
+
+    flags = np.asarray(fits_["flags"])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        snr = np.asarray(fits_["flux"]) / np.asarray(fits_["flux_err"])
+    flagged = ((flags & SourceFlag.UNRESOLVED) != 0) & ((flags & SourceFlag.FIT_FAILED) == 0)
+    if not flagged.any():
+        return []
+    bright = snr >= 50.0
+    n_flagged = int((flagged & bright).sum())
+    if n_flagged > max(SPLIT_MIN_SUSPECT, SPLIT_MAX_FRACTION * bright.sum()):
+        warnings.warn(
+            f"{n_flagged} of {int(bright.sum())} sources of S/N >= 50 "
+            "are elongated against the model (UNRESOLVED): the smear kernels or the seeing "
+            "may be off for this stretch; they are kept whole, not split into pairs.",
+            DetectWarning,
+            stacklevel=3,
+        )
+        return []
+    order = [i for g in members for i in g]
+    positions = np.column_stack([fits_["x"], fits_["y"]])
+    where = {source: k for k, source in enumerate(order)}
+    best: dict[int, tuple] = {}  # per group: (gain, source, halves)
+    for k in np.flatnonzero(flagged & (snr >= 2.0 * threshold_sigma)):
+        index = int(fits_["group"][k])
+        group = members[index]
+        group_xy = [tuple(positions[where[i]]) for i in group]
+        split = split_one(group_xy, group.index(order[k]))
+        if split is not None and split[1] > best.get(index, (-np.inf,))[0]:
+            best[index] = (split[1], order[k], split[0])
+    log.debug("%d of %d UNRESOLVED sources split into pairs", len(best), int(flagged.sum()))
+    return [(source, halves) for _, source, halves in best.values()]
 
 
 def _groups(cx, cy, grid, x_start, fwhm, point) -> list[list[int]]:
@@ -933,6 +1028,7 @@ STAGE = Stage(
     # 5: a deconvolved product's noise correlation measured at a star's scale
     # 6: a saturated star is one source, fitted on its unclipped wings
     # 7: only the children of a split segment are flagged BLENDED
-    version=7,
+    # 8: UNRESOLVED sources the data show to be two are split into a pair
+    version=8,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

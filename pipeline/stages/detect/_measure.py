@@ -22,6 +22,7 @@ __all__ = [
     "residual_quadrupole",
     "seeing_curves",
     "single_stars",
+    "split_pair",
 ]
 
 log = logging.getLogger(__name__)
@@ -529,6 +530,135 @@ def _unresolved(residual, variance, box, fit, profile, noise_correlation) -> np.
         )
         out[j] = chi2 > UNRESOLVED_CHI2 and elongation > UNRESOLVED_ELONGATION
     return out
+
+
+#: Chi-square that splitting an UNRESOLVED source into two must gain over its
+#: fit as one, on the same stamp, in units of the split fit's reduced
+#: chi-square (a model a little off for a bright star inflates both): the
+#: second source adds three parameters, and a chi-square with 3 degrees of
+#: freedom exceeds 25 with probability 1.6e-5 (normal tail beyond ~4.3 sigma).
+SPLIT_CHI2 = 25.0
+#: Separations tried for the two halves of a split, in seeing FWHMs, along the
+#: residual's elongation: from just resolved to the longest smears (a pair
+#: along a 16 px track of 4 px seeing can be 4 FWHM apart and look like one).
+SPLIT_SEPARATIONS = (0.6, 1.0, 1.5, 2.0, 3.0, 4.0)
+
+
+def split_pair(
+    residual,
+    variance,
+    members,
+    which: int,
+    grid: KernelGrid,
+    profile: SeeingProfile,
+    *,
+    x_start: int = 0,
+    point_kernel: bool = False,
+    noise_correlation: float = 1.0,
+    min_snr: float = 5.0,
+) -> tuple[tuple[tuple[float, float], tuple[float, float]], float] | None:
+    """Two sources in place of one that the fit left elongated, if the data want them.
+
+    The group of ``members`` is fitted again on its stamp, then with member
+    ``which`` replaced by two sources placed symmetrically about it along the
+    major axis of its residual's quadrupole (see :func:`residual_quadrupole`),
+    at each of :data:`SPLIT_SEPARATIONS`.  The best split is kept when it
+    lowers the chi-square by more than :data:`SPLIT_CHI2` times its reduced
+    chi-square, both halves have a positive flux of S/N >= ``min_snr``, and
+    they end at least half a FWHM apart (closer, two sources only widen the
+    model), each within a FWHM of where it was put and a FWHM or more from
+    the group's other sources.
+
+    Parameters
+    ----------
+    residual, variance : ndarray, shape (ny, nx)
+        Background-subtracted image (e-) and variance (e^2).
+    members : list of (x, y)
+        The group's fitted positions (array pixels).
+    which : int
+        Index in ``members`` of the source to split.
+    grid, profile, x_start, point_kernel, noise_correlation
+        See :func:`measure_groups`.
+    min_snr : float
+        Least S/N of each half.
+
+    Returns
+    -------
+    (((x1, y1), (x2, y2)), gain) or None
+        The halves' fitted positions (array pixels), the brighter first, and
+        the chi-square the split gained; None when the source stays one.
+    """
+    from pipeline.stages.detect._measure_jit import quadrupole_sums
+
+    xs = np.array([m[0] for m in members], dtype=float)
+    ys = np.array([m[1] for m in members], dtype=float)
+    spacing = profile.fwhm / 8.0
+    kern = _kernels_at(grid, x_start, xs, ys, spacing, point_kernel)
+    resp = _responses_at(grid, x_start, xs, ys, point_kernel)
+    box = _stamp(residual.shape, xs, ys, kern, profile.fwhm)
+    y0, y1, x0, x1, _ = box
+    data, var = residual[y0:y1, x0:x1], variance[y0:y1, x0:x1]
+    n_good = int(np.sum(np.isfinite(data) & np.isfinite(var) & (var > 0)))
+    one = _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, resp)
+    if not (one.success and one.flux[which] > 0):
+        return None
+    chi2_one = one.chi2 * max(n_good - (3 * xs.size + 1), 1)
+    model = one.background + sum(f * u for f, u in zip(one.flux, one.units, strict=True))
+    sums = quadrupole_sums(
+        np.asarray(data, dtype=float),
+        np.asarray(var, dtype=float),
+        np.asarray(model, dtype=float),
+        np.asarray(one.units[which], dtype=float),
+        float(one.x[which] - x0),
+        float(one.y[which] - y0),
+    )
+    angle = 0.5 * np.arctan2(sums[1], sums[0])  # major axis of the residual's excess
+    axis = np.array([np.cos(angle), np.sin(angle)])
+    centre = np.array([one.x[which], one.y[which]])
+    best, best_chi2 = None, np.inf
+    for separation in SPLIT_SEPARATIONS:
+        half = 0.5 * separation * profile.fwhm * axis
+        first, second = centre + half, centre - half
+        tx = np.append(np.where(np.arange(xs.size) == which, first[0], one.x), second[0])
+        ty = np.append(np.where(np.arange(xs.size) == which, first[1], one.y), second[1])
+        two = _fit_box(
+            residual,
+            variance,
+            box,
+            tx,
+            ty,
+            [*kern, kern[which]],
+            profile,
+            noise_correlation,
+            [*resp, resp[which]],
+        )
+        if not two.success:
+            continue
+        chi2_two = two.chi2 * max(n_good - (3 * tx.size + 1), 1)
+        halves = [which, xs.size]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            snr = two.flux[halves] / two.flux_err[halves]
+        hx, hy = two.x[halves], two.y[halves]
+        apart = float(np.hypot(hx[0] - hx[1], hy[0] - hy[1]))
+        # Each half stays about where it was put (a half that slid onto a
+        # neighbour fits the neighbour's misfit, not a pair), and clear of
+        # the group's other sources.
+        drift = np.hypot(hx - [first[0], second[0]], hy - [first[1], second[1]])
+        others = np.delete(np.arange(xs.size), which)
+        clear = np.hypot(hx[:, None] - two.x[others], hy[:, None] - two.y[others])
+        gain = chi2_one - chi2_two
+        if (
+            np.all(snr >= min_snr)
+            and apart >= 0.5 * profile.fwhm
+            and np.all(drift <= profile.fwhm)
+            and np.all(clear >= profile.fwhm)
+            and gain > SPLIT_CHI2 * max(two.chi2, 1.0)
+            and chi2_two < best_chi2
+        ):
+            order = np.argsort(-two.flux[halves])
+            positions = tuple((float(two.x[halves[k]]), float(two.y[halves[k]])) for k in order)
+            best, best_chi2 = (positions, float(gain)), chi2_two
+    return best
 
 
 def _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, resp, others=None):
