@@ -633,8 +633,9 @@ def detect(
                         members, fits_ = fit_all(px, py, blended)
     # One split per group at a time, the one that gains most: a pair fitted as
     # one elongates its neighbours' residuals too, until it is resolved.
+    tried: set = set()
     for _ in range(SPLIT_ROUNDS if split_pairs else 0):
-        found = _split_unresolved(members, fits_, threshold_sigma, split_one)
+        found = _split_unresolved(members, fits_, threshold_sigma, split_one, tried)
         if not found:
             break
         # The other sources start where their last fit started: their groups
@@ -716,12 +717,14 @@ SPLIT_MIN_SUSPECT = 5
 SPLIT_ROUNDS = 3
 
 
-def _split_unresolved(members, fits_, threshold_sigma, split_one):
+def _split_unresolved(members, fits_, threshold_sigma, split_one, tried):
     """``[(source, (first, second)), ...]``: UNRESOLVED sources that are two.
 
     ``split_one(group_xy, which)`` is :func:`split_pair` on the stretch's
     planes.  Nothing is split (and a warning says why) when more than
-    :data:`SPLIT_MAX_FRACTION` of the bright sources are flagged.
+    :data:`SPLIT_MAX_FRACTION` of the bright sources are flagged.  ``tried``
+    (a set, updated) holds the groups already tried, as fitted positions: a
+    group left as it was is not tried again.
     """
 
     flags = np.asarray(fits_["flags"])
@@ -749,6 +752,10 @@ def _split_unresolved(members, fits_, threshold_sigma, split_one):
         index = int(fits_["group"][k])
         group = members[index]
         group_xy = [tuple(positions[where[i]]) for i in group]
+        key = (tuple(group_xy), group.index(order[k]))
+        if key in tried:
+            continue
+        tried.add(key)
         split = split_one(group_xy, group.index(order[k]))
         if split is not None and split[1] > best.get(index, (-np.inf,))[0]:
             best[index] = (split[1], order[k], split[0])

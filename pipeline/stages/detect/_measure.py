@@ -540,8 +540,9 @@ def _unresolved(residual, variance, box, fit, profile, noise_correlation) -> np.
 SPLIT_CHI2 = 25.0
 #: Separations tried for the two halves of a split, in seeing FWHMs, along the
 #: residual's elongation: from just resolved to the longest smears (a pair
-#: along a 16 px track of 4 px seeing can be 4 FWHM apart and look like one).
-SPLIT_SEPARATIONS = (0.6, 1.0, 1.5, 2.0, 3.0, 4.0)
+#: along a 16 px track of 4 px seeing can be 4 FWHM apart and look like one);
+#: each half may move a FWHM from its start, so the steps leave no gap.
+SPLIT_SEPARATIONS = (0.75, 1.5, 2.5, 3.5)
 
 
 def split_pair(
@@ -559,10 +560,11 @@ def split_pair(
 ) -> tuple[tuple[tuple[float, float], tuple[float, float]], float] | None:
     """Two sources in place of one that the fit left elongated, if the data want them.
 
-    The group of ``members`` is fitted again on its stamp, then with member
-    ``which`` replaced by two sources placed symmetrically about it along the
-    major axis of its residual's quadrupole (see :func:`residual_quadrupole`),
-    at each of :data:`SPLIT_SEPARATIONS`.  The best split is kept when it
+    The group of ``members`` is fitted again on its stamp; then, with the
+    other members' models held and subtracted, member ``which`` is fitted as
+    two sources started symmetrically about it along the major axis of its
+    residual's quadrupole (see :func:`residual_quadrupole`), at each of
+    :data:`SPLIT_SEPARATIONS`.  The best split is kept when it
     lowers the chi-square by more than :data:`SPLIT_CHI2` times its reduced
     chi-square, both halves have a positive flux of S/N >= ``min_snr``, and
     they end at least half a FWHM apart (closer, two sources only widen the
@@ -615,37 +617,39 @@ def split_pair(
     angle = 0.5 * np.arctan2(sums[1], sums[0])  # major axis of the residual's excess
     axis = np.array([np.cos(angle), np.sin(angle)])
     centre = np.array([one.x[which], one.y[which]])
+    # The halves are fitted with the group's other sources held at their fit
+    # (their models subtracted): two stars instead of the whole group again
+    # per trial, and a gain that can only understate the joint refit's.
+    from pipeline.stages.detect._model import fit_stars
+
+    others = np.delete(np.arange(xs.size), which)
+    held = data - sum((one.flux[i] * one.units[i] for i in others), np.zeros(data.shape))
     best, best_chi2 = None, np.inf
     for separation in SPLIT_SEPARATIONS:
         half = 0.5 * separation * profile.fwhm * axis
         first, second = centre + half, centre - half
-        tx = np.append(np.where(np.arange(xs.size) == which, first[0], one.x), second[0])
-        ty = np.append(np.where(np.arange(xs.size) == which, first[1], one.y), second[1])
-        two = _fit_box(
-            residual,
-            variance,
-            box,
-            tx,
-            ty,
-            [*kern, kern[which]],
+        two = fit_stars(
+            held,
+            var,
+            [first[0], second[0]],
+            [first[1], second[1]],
+            [kern[which]] * 2,
             profile,
-            noise_correlation,
-            [*resp, resp[which]],
+            origin=(y0, x0),
+            noise_correlation=noise_correlation,
+            responses=[resp[which]] * 2,
         )
         if not two.success:
             continue
-        chi2_two = two.chi2 * max(n_good - (3 * tx.size + 1), 1)
-        halves = [which, xs.size]
+        chi2_two = two.chi2 * max(n_good - 7, 1)
         with np.errstate(invalid="ignore", divide="ignore"):
-            snr = two.flux[halves] / two.flux_err[halves]
-        hx, hy = two.x[halves], two.y[halves]
-        apart = float(np.hypot(hx[0] - hx[1], hy[0] - hy[1]))
+            snr = two.flux / two.flux_err
+        apart = float(np.hypot(two.x[0] - two.x[1], two.y[0] - two.y[1]))
         # Each half stays about where it was put (a half that slid onto a
         # neighbour fits the neighbour's misfit, not a pair), and clear of
         # the group's other sources.
-        drift = np.hypot(hx - [first[0], second[0]], hy - [first[1], second[1]])
-        others = np.delete(np.arange(xs.size), which)
-        clear = np.hypot(hx[:, None] - two.x[others], hy[:, None] - two.y[others])
+        drift = np.hypot(two.x - [first[0], second[0]], two.y - [first[1], second[1]])
+        clear = np.hypot(two.x[:, None] - one.x[others], two.y[:, None] - one.y[others])
         gain = chi2_one - chi2_two
         if (
             np.all(snr >= min_snr)
@@ -655,8 +659,8 @@ def split_pair(
             and gain > SPLIT_CHI2 * max(two.chi2, 1.0)
             and chi2_two < best_chi2
         ):
-            order = np.argsort(-two.flux[halves])
-            positions = tuple((float(two.x[halves[k]]), float(two.y[halves[k]])) for k in order)
+            order = np.argsort(-two.flux)
+            positions = tuple((float(two.x[k]), float(two.y[k])) for k in order)
             best, best_chi2 = (positions, float(gain)), chi2_two
     return best
 
