@@ -721,7 +721,7 @@ def _split_unresolved(members, fits_, threshold_sigma, split_one, tried):
     """``[(source, (first, second)), ...]``: UNRESOLVED sources that are two.
 
     ``split_one(group_xy, which)`` is :func:`split_pair` on the stretch's
-    planes.  Nothing is split (and a warning says why) when more than
+    planes.  Nothing is split (and the log says why) when more than
     :data:`SPLIT_MAX_FRACTION` of the bright sources are flagged.  ``tried``
     (a set, updated) holds the groups already tried, as fitted positions: a
     group left as it was is not tried again.
@@ -736,12 +736,15 @@ def _split_unresolved(members, fits_, threshold_sigma, split_one, tried):
     bright = snr >= 50.0
     n_flagged = int((flagged & bright).sum())
     if n_flagged > max(SPLIT_MIN_SUSPECT, SPLIT_MAX_FRACTION * bright.sum()):
-        warnings.warn(
-            f"{n_flagged} of {int(bright.sum())} sources of S/N >= 50 "
-            "are elongated against the model (UNRESOLVED): the smear kernels or the seeing "
-            "may be off for this stretch; they are kept whole, not split into pairs.",
-            DetectWarning,
-            stacklevel=3,
+        # Not a warning: the flags are in the catalogue, and a stretch whose
+        # smear the nominal geometry misses (before astrometry has solved the
+        # night) is common; the second pass measures it again.
+        log.info(
+            "%d of %d sources of S/N >= 50 are elongated against the model (UNRESOLVED): "
+            "the smear kernels or the seeing may be off for this stretch; they are kept "
+            "whole, not split into pairs",
+            n_flagged,
+            int(bright.sum()),
         )
         return []
     order = [i for g in members for i in g]
