@@ -395,4 +395,6 @@ STAGE = Stage(
         "pyarrow.csv",
         *DETECT_WARM,
     ),
+    # 2: the stretch WCSs fitted linearly (closer to the solution)
+    version=2,
 )

@@ -6,10 +6,18 @@ the solution the sky position of a product pixel is
 from the nominal WCS by a smooth field (a shift, a fraction of a percent of
 scale and shear, the wander over a few minutes), so a gnomonic (``TAN``) WCS
 with SIP polynomials (Shupe et al. 2005, the SIP convention astropy.wcs
-reads) fitted to the solved positions on a grid reproduces it
-(:func:`astropy.wcs.utils.fit_wcs_from_points`).  :func:`solved_wcs` reports
-the largest disagreement on a finer, offset grid, so a caller can refuse a
-WCS that is not good enough.
+reads) fitted to the solved positions on a grid reproduces it.
+:func:`solved_wcs` reports the largest disagreement on a finer, offset grid,
+so a caller can refuse a WCS that is not good enough.
+
+The fit is linear: with the reference pixel at the product's centre and
+``CRVAL`` the solved sky there, astropy's own gnomonic projection gives each
+grid point's intermediate world coordinates, and those are a polynomial in
+the pixel offsets whose linear part is the CD matrix and whose higher terms,
+through the CD matrix's inverse, are the SIP coefficients.  One least-squares
+solve replaces :func:`astropy.wcs.utils.fit_wcs_from_points`' nonlinear fit
+(0.2-1 s per stretch, numerical derivatives over astropy.modeling models:
+32 stretches of a 4096-column night spent 33 s there).
 """
 
 from __future__ import annotations
@@ -17,8 +25,7 @@ from __future__ import annotations
 import numpy as np
 from astropy import units as u
 from astropy.coordinates import SkyCoord
-from astropy.wcs import WCS
-from astropy.wcs.utils import fit_wcs_from_points
+from astropy.wcs import WCS, Sip
 
 __all__ = ["solved_wcs"]
 
@@ -59,15 +66,53 @@ def solved_wcs(
 
     px, py = grid(n_grid, 0.0)
     ra, dec = solution.sky_from_rectified(px + x_start, py)
-    wcs = fit_wcs_from_points(
-        (px, py),  # astropy fits zero-based pixels here (measured: +1 gives a 1-px offset)
-        SkyCoord(ra * u.deg, dec * u.deg, frame="icrs"),
-        proj_point="center",
-        projection="TAN",
-        sip_degree=sip_degree,
-    )
+    ref_x, ref_y = 0.5 * (n_x - 1), 0.5 * (n_y - 1)
+    ref_ra, ref_dec = solution.sky_from_rectified(np.array([ref_x + x_start]), np.array([ref_y]))
+    wcs = _fit_tan_sip(px, py, ra, dec, (ref_x, ref_y), (ref_ra[0], ref_dec[0]), sip_degree)
     wcs.pixel_shape = (int(n_x), int(n_y))
     cx, cy = grid(2 * n_grid, 0.25)
     ra, dec = solution.sky_from_rectified(cx + x_start, cy)
     qx, qy = wcs.world_to_pixel(SkyCoord(ra * u.deg, dec * u.deg, frame="icrs"))
     return wcs, float(np.max(np.hypot(qx - cx, qy - cy)))
+
+
+def _fit_tan_sip(px, py, ra, dec, ref_pixel, ref_sky, degree: int) -> WCS:
+    """A TAN-SIP WCS through zero-based pixels ``(px, py)`` at sky ``(ra, dec)`` (deg).
+
+    ``ref_pixel`` (zero-based) maps to ``ref_sky`` exactly (``CRPIX``,
+    ``CRVAL``); the CD matrix and the SIP polynomials of orders 2 to
+    ``degree`` are fitted by linear least squares (see the module docstring).
+    """
+    # Intermediate world coordinates (deg) by astropy's projection: a TAN WCS
+    # with a unit CD matrix maps the sky to them as its "pixels".
+    plane = WCS(naxis=2)
+    plane.wcs.ctype = ["RA---TAN", "DEC--TAN"]
+    plane.wcs.crval = ref_sky
+    plane.wcs.crpix = [1.0, 1.0]  # zero-based pixel 0 is the reference: xi = "pixel"
+    plane.wcs.cd = np.eye(2)
+    xi, eta = plane.wcs_world2pix(ra, dec, 0)
+    u_off, v_off = px - ref_pixel[0], py - ref_pixel[1]
+    scale = max(np.abs(u_off).max(), np.abs(v_off).max(), 1.0)  # conditioning
+    terms = [(p, q) for total in range(1, degree + 1) for p in range(total, -1, -1)
+             for q in [total - p]]  # fmt: skip
+    design = np.column_stack([(u_off / scale) ** p * (v_off / scale) ** q for p, q in terms])
+    coef = np.linalg.lstsq(design, np.column_stack([xi, eta]), rcond=None)[0]
+    coef /= np.array([scale ** (p + q) for p, q in terms])[:, None]  # back to pixels
+    cd = np.array([coef[terms.index((1, 0))], coef[terms.index((0, 1))]]).T
+    # CD (u + f, v + g) = (xi, eta): the higher terms through CD^-1 are f and g.
+    higher = np.linalg.solve(cd, coef.T)  # (2, n_terms)
+    a_sip = np.zeros((degree + 1, degree + 1))
+    b_sip = np.zeros((degree + 1, degree + 1))
+    for k, (p, q) in enumerate(terms):
+        if p + q >= 2:
+            a_sip[p, q], b_sip[p, q] = higher[0, k], higher[1, k]
+    crpix = [ref_pixel[0] + 1.0, ref_pixel[1] + 1.0]  # FITS pixels are 1-based
+    wcs = WCS(naxis=2)
+    wcs.wcs.ctype = ["RA---TAN-SIP", "DEC--TAN-SIP"]
+    wcs.wcs.crval = ref_sky
+    wcs.wcs.crpix = crpix
+    wcs.wcs.cd = cd
+    wcs.wcs.radesys = "ICRS"
+    wcs.sip = Sip(a_sip, b_sip, None, None, crpix)
+    wcs.wcs.set()
+    return wcs
