@@ -8,7 +8,7 @@ A night is described by a YAML file such as::
       raw_dir: raw/2026-03-14      # relative to this file's folder
       output_dir: products
     run:
-      stretch_rows: 4096
+      stretch_rows: 2048           # default: 4096 up to 1024 columns, fewer on wider chips
     stages:
       calibrate:
         cosmic_rays: true
@@ -72,7 +72,7 @@ from pydantic import (
 
 from pipeline.exceptions import ConfigError
 from pipeline.geometry.instrument import Camera, Site
-from pipeline.stages.base import Stage, check_graph
+from pipeline.stages.base import Stage, check_graph, default_stretch_rows
 
 __all__ = [
     "MAX_CONFIG_VALUES",
@@ -193,7 +193,18 @@ class ExecutorSection(StrictModel):
 class RunSection(ExecutorSection):
     """How the runner splits and schedules the work (never what it computes)."""
 
-    stretch_rows: int = Field(4096, ge=1, description="night rows per stretch (scan axis)")
+    stretch_rows: int | None = Field(
+        None,
+        ge=1,
+        description="night rows per stretch (scan axis); None: 4096, fewer on chips wider "
+        "than 1024 columns so that a stretch holds at most 4096 x 1024 pixels",
+    )
+
+    def rows_per_stretch(self, n_columns: int) -> int:
+        """``stretch_rows``, or when unset the default for a chip of ``n_columns`` columns
+        (:func:`pipeline.stages.base.default_stretch_rows`)."""
+        return self.stretch_rows or default_stretch_rows(n_columns)
+
     overlap_rows: int = Field(64, ge=0, description="margin rows on each side of a stretch")
 
 

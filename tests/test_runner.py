@@ -43,6 +43,7 @@ from astropy.table import QTable, Table
 import pipeline.runner._executors as _executors
 import pipeline.runner._lock as _lock
 import pipeline.runner._store as _store
+import pipeline.stages.base as base
 from pipeline.config import config_from_mapping
 from pipeline.exceptions import (
     DamagedProductError,
@@ -72,6 +73,7 @@ from pipeline.stages.base import (
     RAW_ROWS,
     Stage,
     check_graph,
+    default_stretch_rows,
     plan_stretches,
 )
 
@@ -142,6 +144,29 @@ def test_plan_stretches_covers_the_night_once() -> None:
         for s in stretches:
             assert s.lo == max(s.start - margin, 0) and s.hi == min(s.stop + margin, n_rows)
             assert s.core.stop - s.core.start == s.stop - s.start
+
+
+#: Chip widths (image columns) of real and invented cameras, 1 to 20000.
+CHIP_WIDTHS = [1, 6, 1000, 1024, 1056, 2048, 3000, 4096, 6144, 9216, 16384, 20000]
+
+
+@pytest.mark.parametrize("n_columns", CHIP_WIDTHS)
+def test_default_stretch_rows_bound_a_stretch_by_pixels(n_columns) -> None:
+    rows = default_stretch_rows(n_columns)
+    assert rows % base.STRETCH_ROWS_STEP == 0 and rows >= base.STRETCH_ROWS_STEP
+    assert rows <= base.MAX_STRETCH_ROWS
+    # at most STRETCH_PIXELS pixels, unless one step of rows is already more
+    assert rows * n_columns <= base.STRETCH_PIXELS or rows == base.STRETCH_ROWS_STEP
+    # and as long as that allows: one more step would exceed the budget or the cap
+    longer = rows + base.STRETCH_ROWS_STEP
+    assert longer * n_columns > base.STRETCH_PIXELS or longer > base.MAX_STRETCH_ROWS
+
+
+def test_default_stretch_rows_keep_narrow_chips_at_4096_rows() -> None:
+    # the layout of every night on a chip of up to 1024 columns (the demo's) is unchanged
+    assert [default_stretch_rows(n) for n in (6, 1024, 2048, 4096)] == [4096, 4096, 2048, 1024]
+    with pytest.raises(ValueError, match="n_columns must be >= 1; got 0"):
+        default_stretch_rows(0)
 
 
 def test_stage_declaration_errors() -> None:
@@ -1197,6 +1222,30 @@ def test_the_default_worker_count_fits_the_memory(toy, monkeypatch, caplog) -> N
     with caplog.at_level("WARNING", logger="pipeline.runner._executors"):
         assert _executors.default_workers(run, 2048) == 1
     assert "lower run.stretch_rows or free memory" in caplog.text
+
+
+def test_the_default_worker_count_counts_the_default_stretch(toy, monkeypatch) -> None:
+    make_config, _ = toy
+    run = make_config("run.stretch_rows=null", "run.overlap_rows=0").run
+    monkeypatch.setattr(os, "cpu_count", lambda: 8)
+    # a 4096-column chip's default stretch: 1024 rows, 0.25 GB + 100 B x 1024 x 4096
+    # = 0.67 GB per worker (4096 rows would need 1.93 GB)
+    monkeypatch.setattr(_executors, "available_memory", lambda: 1.5e9)
+    assert _executors.default_workers(run, 4096) == 2
+
+
+def test_unset_stretch_rows_plan_stretches_by_the_chips_pixels(toy, monkeypatch) -> None:
+    make_config, _ = toy
+    # scaled down to the toy night (100 rows of 6 columns): 40 rows of 6 columns
+    monkeypatch.setattr(base, "STRETCH_PIXELS", 40 * 6 + 5)
+    monkeypatch.setattr(base, "STRETCH_ROWS_STEP", 10)
+    config = make_config("run.stretch_rows=null")
+    assert config.camera().n_columns == 6
+    assert run_night(config, stage="index").ok
+    planned = [(s.start, s.stop) for s in NightStore(config).stretches]
+    assert planned == [(0, 40), (40, 80), (80, 100)]
+    explicit = make_config("run.stretch_rows=30")  # a configured length is kept
+    assert [s.stop - s.start for s in NightStore(explicit).stretches] == [30, 30, 30, 10]
 
 
 def test_the_runs_own_dask_cluster_is_loopback_only_without_http_routes() -> None:

@@ -54,7 +54,7 @@ from pipeline.runner._nightly import (
 from pipeline.runner._store import clear_failure, mark_damaged, write_failure
 from pipeline.runner._unit import UnitOutcome, UnitTask, execute_unit, failed_outcome
 from pipeline.runner._warm import warm_plan
-from pipeline.stages.base import Stage, Stretch
+from pipeline.stages.base import STRETCH_PIXELS, Stage, Stretch
 
 __all__ = [
     "LOCK_NAME",
@@ -422,6 +422,14 @@ def _run_night(
             ", ".join(s.name for s in plan),
             config.run.executor,
         )
+        if config.run.stretch_rows is None:
+            n_columns = config.camera().n_columns
+            log.info(
+                "run.stretch_rows not set: %d rows per stretch (%d columns, at most %d pixels)",
+                config.run.rows_per_stretch(n_columns),
+                n_columns,
+                STRETCH_PIXELS,
+            )
         position, repairs, forced = 0, 0, set()
         while True:
             damaged = _take_damaged_out_of_use(night, report, repairs < MAX_REPAIRS)

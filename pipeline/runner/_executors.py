@@ -660,7 +660,7 @@ def default_workers(run: RunSection, n_columns: int | None) -> int:
     if n_columns is None or memory is None:
         log.info("run.workers not set: %d workers (one per core)", cores)
         return cores
-    need = worker_memory(run.stretch_rows, run.overlap_rows, n_columns)
+    need = worker_memory(run.rows_per_stretch(n_columns), run.overlap_rows, n_columns)
     fit = int(memory // need)
     workers = max(1, min(cores, fit))
     log.info(

@@ -185,7 +185,8 @@ class NightStore:
             run = self.config.run
             rows = block_index_rows(self.index)
             segments = segment_rows(self.index)
-            self.stretches = plan_stretches(rows, run.stretch_rows, run.overlap_rows, segments)
+            stretch_rows = run.rows_per_stretch(self.context.camera.n_columns)
+            self.stretches = plan_stretches(rows, stretch_rows, run.overlap_rows, segments)
         self.context = dataclasses.replace(self.context, stretches=self.stretches)
 
     def forget(self, stage: Stage, unit: str) -> None:

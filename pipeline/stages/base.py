@@ -84,13 +84,14 @@ The night has ``max(row_start + n_rows)`` rows.  They fall into segments
 (:func:`segment_rows`): runs of blocks that join up without a gap and share
 the optional :data:`SEGMENT` column's value (ingest starts a new segment at
 every gap, overlap and change of camera format).  The runner cuts each
-segment into stretches of ``run.stretch_rows`` rows (:func:`plan_stretches`),
-each widened by ``run.overlap_rows`` on both sides but never beyond its
-segment, so a stretch never mixes formats or reaches across a gap (rows in
-gaps belong to no stretch), and assembles :data:`RAW_ROWS` from the index.
-Per-stretch products cover ``[lo, hi)``, margins included, unless the stage
-says otherwise in its docstring; ``context.stretch.core`` selects the
-stretch's own rows.
+segment into stretches of ``run.stretch_rows`` rows (:func:`plan_stretches`;
+unset, as many rows as keep a stretch within :data:`STRETCH_PIXELS` pixels,
+:func:`default_stretch_rows`), each widened by ``run.overlap_rows`` on both
+sides but never beyond its segment, so a stretch never mixes formats or
+reaches across a gap (rows in gaps belong to no stretch), and assembles
+:data:`RAW_ROWS` from the index.  Per-stretch products cover ``[lo, hi)``,
+margins included, unless the stage says otherwise in its docstring;
+``context.stretch.core`` selects the stretch's own rows.
 
 Neighbouring stretches
 ----------------------
@@ -150,6 +151,7 @@ __all__ = [
     "StageContext",
     "Stretch",
     "check_graph",
+    "default_stretch_rows",
     "plan_stretches",
     "segment_rows",
 ]
@@ -215,6 +217,50 @@ class Stretch:
     def n_rows(self) -> int:
         """Number of rows handed to the stage, ``hi - lo``."""
         return self.hi - self.lo
+
+
+#: Most pixels (core rows x image columns) of a stretch whose length the
+#: config leaves to the runner (``run.stretch_rows`` unset).  A worker's peak
+#: memory grows with its stretch's pixels (detect holds about 100 bytes per
+#: pixel of the stretch it measures, see
+#: :func:`pipeline.runner._executors.worker_memory`), so a wide chip gets
+#: proportionally shorter stretches.
+STRETCH_PIXELS = 4096 * 1024
+#: Rows of such a stretch on a chip of at most ``STRETCH_PIXELS / 4096`` columns.
+MAX_STRETCH_ROWS = 4096
+#: The stretch rows chosen are a multiple of this (and at least this many):
+#: the column statistics' blocks (256 rows by default) then lie whole in
+#: stretches, and a rectified stretch stays far wider than the seam margins
+#: of detect (a few tens of columns).
+STRETCH_ROWS_STEP = 256
+
+
+def default_stretch_rows(n_columns: int) -> int:
+    """Rows per stretch when ``run.stretch_rows`` is unset.
+
+    At most :data:`MAX_STRETCH_ROWS` rows, and no more than fit
+    :data:`STRETCH_PIXELS` pixels with ``n_columns`` columns, rounded down to
+    a multiple of :data:`STRETCH_ROWS_STEP` (at least one step): 4096 rows up
+    to 1024 columns, 2048 at 2048, 1024 at 4096, 256 from 16384 on.
+
+    Parameters
+    ----------
+    n_columns : int
+        The camera's image columns (across the scan; overscan excluded).
+
+    Returns
+    -------
+    int
+
+    Examples
+    --------
+    >>> [default_stretch_rows(n) for n in (1024, 2048, 3000, 4096, 20000)]
+    [4096, 2048, 1280, 1024, 256]
+    """
+    if n_columns < 1:
+        raise ValueError(f"n_columns must be >= 1; got {n_columns}.")
+    fit = STRETCH_PIXELS // int(n_columns) // STRETCH_ROWS_STEP * STRETCH_ROWS_STEP
+    return int(min(MAX_STRETCH_ROWS, max(STRETCH_ROWS_STEP, fit)))
 
 
 def plan_stretches(
