@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import inspect
 import logging
+import tracemalloc
 import warnings
 
 import numpy as np
@@ -860,6 +861,39 @@ def test_seam_star_is_measured_whole_and_listed_once():
         c for c in found if len(c) and (c["flags"].value.astype(int) & SourceFlag.OVERLAP).any()
     ]
     assert seam  # the seam stars say they used a neighbour's columns
+
+
+def test_overwriting_the_input_planes_spares_two_planes_and_changes_nothing():
+    # 40 stars on a 256 x 600 stretch whose first 20 columns have no data
+    rng = np.random.default_rng(5)
+    x, y = rng.uniform(40, 580, 40), rng.uniform(20, 236, 40)
+    scene = render_scene(x, y, 2e4, shape=(256, 600), x_start=0, seed=6)
+    image, variance = scene.image.astype(float), scene.variance.astype(float)
+    image[:, :20] = np.nan
+    mask = scene.mask.copy()
+    mask[:, :20] |= mask.dtype.type(MaskBit.OUTSIDE)
+
+    def run(overwrite):
+        planes = image.copy(), variance.copy()
+        tracemalloc.start()
+        try:
+            result = detect(*planes, mask, scene.kernels, overwrite_input=overwrite)
+            peak = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+        return result, planes, peak
+
+    run(False)  # first: the one-time allocations (imports, caches) out of the way
+    kept, planes, peak_kept = run(False)
+    assert np.array_equal(planes[0], image, equal_nan=True)  # the inputs are left alone
+    assert np.array_equal(planes[1], variance, equal_nan=True)
+    reused, planes, peak_reused = run(True)
+    for name in kept.catalog.colnames:
+        assert np.array_equal(reused.catalog[name], kept.catalog[name], equal_nan=True), name
+    # detect makes its residual and filled variance in the input planes instead of
+    # two new float64 planes; 1.5: half a plane of slack for what else the peak holds
+    assert peak_kept - peak_reused > 1.5 * image.nbytes
+    assert np.isnan(planes[0][:, :20]).all() and not np.array_equal(planes[0], image)
 
 
 def _detect_padded(padded, own_columns):

@@ -154,3 +154,39 @@ def test_the_stage_takes_the_noise_correlation_from_the_rectified_header(seam_ni
     # sqrt(NOISECOR): see test_noise_correlation_lowers_significance_and_widens_errors;
     # 1e-4 as there.
     assert errors[1] / errors[0] == pytest.approx(np.sqrt(2.0), rel=1e-4)
+
+
+def test_the_stage_lets_detect_reuse_its_padded_planes(seam_night, monkeypatch):
+    config = seam_night()
+    plan = plan_stretches(SHAPE[1], STRETCH_ROWS, 0)
+    context = dataclasses.replace(NightStore(config).context, stretch=plan[1], stretches=plan)
+    raw = np.zeros((STRETCH_ROWS, 6), np.float32)
+    products = [
+        stand_in_rectify(
+            inputs={RAW_ROWS: raw},
+            options=StandInOptions(),
+            context=dataclasses.replace(context, stretch=s),
+        )
+        for s in plan[:3]
+    ]
+    stored = [p["image"]["FLUX"].data.copy() for p in products]
+    inputs = {"rectify": products[1], NEIGHBOURS: {"rectify": (products[0], products[2])}}
+    real, seen = detect.detect, []
+    catalogs = []
+    for reuse in (True, False):
+
+        def spy(*args, overwrite_input, reuse=reuse, **kwargs):
+            seen.append(overwrite_input)
+            return real(*args, overwrite_input=overwrite_input and reuse, **kwargs)
+
+        monkeypatch.setattr(detect, "detect", spy)
+        out = detect.STAGE.run(inputs=inputs, options=DetectOptions(), context=context)
+        catalogs.append(out["catalog"])
+    # the padded planes are the stage's own copies: detect may overwrite them, and
+    # the rectified products it read stay as they were
+    assert seen == [True, True]
+    for product, flux in zip(products, stored, strict=True):
+        assert np.array_equal(product["image"]["FLUX"].data, flux, equal_nan=True)
+    assert len(catalogs[0]) == 1
+    for name in catalogs[0].colnames:
+        assert np.array_equal(catalogs[0][name], catalogs[1][name], equal_nan=True), name
