@@ -79,7 +79,9 @@ def night_config(columns: int, block_rows: int, blocks: int, workers: int) -> di
     15 um pixels behind a 6 m focal length (0.516 arcsec per pixel), Moffat
     seeing of 1.4 arcsec, a sky brightening by 30 % over the night (the column
     solve needs a changing sky), stars r = 15 to 22.5, the simulator's
-    reference catalogue to r = 21.
+    reference catalogue to r = 21.  Stretches of the default length
+    (``run.stretch_rows`` unset: 4096 rows up to 1024 columns, 1024 rows
+    on 4096 columns).
     """
     return {
         "night": {"name": "bench", "raw_dir": "raw", "pattern": "block_*.fits",
@@ -88,8 +90,7 @@ def night_config(columns: int, block_rows: int, blocks: int, workers: int) -> di
                  "temperature": 4.0},
         "camera": {"n_columns": columns, "tdi_rows": 2048, "pixel_size": 15.0,
                    "focal_length": 6.0},
-        "run": {"stretch_rows": 4096, "overlap_rows": 64, "executor": "local",
-                "workers": workers},
+        "run": {"overlap_rows": 64, "executor": "local", "workers": workers},
         "stages": {
             "ingest": {"start_ramp": "none"},
             "column_stats": {"block_rows": 64},
