@@ -12,6 +12,7 @@ import datetime
 import errno
 import json
 import os
+import shutil
 import socket
 import subprocess
 import sys
@@ -651,6 +652,41 @@ def test_pool_workers_warm_up_in_the_background_and_a_unit_waits_for_its_stage(
     for key in scaled:
         assert started(key) >= ended[records[key]["pid"]], key
     assert product_hashes(config) == product_hashes(_reference(tmp_path))
+
+
+def test_a_run_starts_no_more_workers_than_it_has_units_to_run_at_once(toy, tmp_path, monkeypatch):
+    """A night of one stretch, one selected stretch or night-scoped stages only run
+    in one worker; new raw files may bring more stretches than the stored index."""
+    make_config, _ = toy
+    started = []
+    pool = _executors.ProcessPoolExecutor
+
+    def recording_pool(max_workers, **kwargs):
+        started.append(max_workers)
+        return pool(max_workers=max_workers, **kwargs)
+
+    monkeypatch.setattr(_executors, "ProcessPoolExecutor", recording_pool)
+    assert run_night(make_config()).ok  # serial: the block index, 4 stretches
+    config = make_config("run.executor=local", "run.workers=3")
+    for selection, workers in [
+        ({}, 3),  # 4 stretches
+        ({"stretches": {1}}, 1),
+        ({"stretches": {0, 2}}, 2),
+        ({"stage": "total"}, 1),  # night-scoped: one unit at a time
+    ]:
+        assert run_night(config, force=True, **selection).ok
+        assert started.pop() == workers, selection
+    # 110-row stretches: the 100 rows make one, and a fifth block of 25 rows two
+    config = make_config("run.executor=local", "run.workers=2", "run.stretch_rows=110")
+    assert run_night(config, force=True).ok
+    assert started.pop() == 1
+    for n_blocks, selection, workers in [(5, {}, 2), (6, {"stretches": {0}}, 1)]:
+        shutil.rmtree(tmp_path / "raw")
+        write_raw_night(tmp_path / "raw", n_blocks=n_blocks)
+        report = run_night(config, **selection)
+        assert report.ok and report.count("ran") == 2 + 2 * workers, report.format()
+        # the index was stale: the stretches were not known, the selection bounds them
+        assert started.pop() == workers, selection
 
 
 # --------------------------------------------------------------------------- lock

@@ -416,6 +416,8 @@ def _run_night(
         # workers import the modules of the planned stages only (a stage added to
         # repair a damaged product is imported when its first unit arrives)
         executor.warm(_stage_modules(plan), warm_plan(plan))
+        if shared is None:  # a shared executor serves other nights too
+            executor.fit(_units_at_once(night, plan, wanted))
         log.info(
             "night %s: stages %s, executor %s",
             config.night.name,
@@ -476,6 +478,30 @@ def _stage_modules(graph: Sequence[Stage]) -> list[str]:
     """The importable modules that define the stages' run functions (for warm workers)."""
     names = {getattr(stage.run, "__module__", None) for stage in graph}
     return sorted(name for name in names if isinstance(name, str) and name != "__main__")
+
+
+def _units_at_once(
+    night: NightStore, plan: Sequence[Stage], wanted: frozenset[int] | None
+) -> int | None:
+    """The most units ``plan`` can run at once, or None if that is not known yet.
+
+    One if every stage is night-scoped, else the stretches run (those
+    ``wanted``).  The stored stretch plan holds when the stage that defines
+    the rows is up to date, forced or not: rerun on the same raw files with
+    the same options, it writes the same block index.  Otherwise (a new
+    night, new raw files) it may find more rows than the stored index has,
+    and only ``wanted`` bounds the count.
+    """
+    if all(stage.scope == "night" for stage in plan):
+        return 1
+    row_stage = night.row_stage
+    known = night.index is not None and (
+        row_stage not in plan or night.state(row_stage, None)[0] == "done"
+    )
+    if not known:
+        return None if wanted is None else len(wanted)
+    indices = {stretch.index for stretch in night.stretches}
+    return len(indices if wanted is None else indices & wanted)
 
 
 def _with_recut_upstream(night: NightStore, selected: Sequence[Stage]) -> list[Stage]:

@@ -15,7 +15,9 @@ stopping the batch.
   with all its workers at once (each imports the modules of the stages the
   run plans as it starts, see :meth:`LocalPoolExecutor.warm`; the libraries a
   stage computes with are imported by its functions, when a unit of it first
-  runs there), and reused by later stages of the run.  When the run ends
+  runs there), and reused by later stages of the run.  It has no more
+  workers than the run has units to run at once (:meth:`Executor.fit`): a
+  night of one stretch runs in one worker.  When the run ends
   with no unit in progress, the idle workers are terminated rather than
   waited for: a worker's interpreter takes seconds to exit with the
   libraries it loaded, and it has nothing left to write.
@@ -254,6 +256,14 @@ class Executor:
         :func:`pipeline.runner._warm.warm_plan` of the planned stages.
         """
 
+    def fit(self, units_at_once: int | None) -> None:
+        """Start no more workers than ``units_at_once`` (None: not known, all of them).
+
+        Called before the first batch by the run that made this executor; a
+        night of one stretch then runs in one worker instead of paying the
+        start-up of several, which have nothing to do but compete for cores.
+        """
+
     def flow(
         self,
         fn: Callable[[Any], Outcome],
@@ -304,9 +314,14 @@ class LocalPoolExecutor(Executor):
         self._plan: WarmPlan = ()
         self._futures: list = []
         self._starting = threading.Lock()  # several nights' runs may share the pool
+        self._size = workers  # workers to start: at most ``workers``, see fit()
 
     def warm(self, modules: Sequence[str], plan: WarmPlan = ()) -> None:
         self._modules, self._plan = tuple(modules), tuple(plan)
+
+    def fit(self, units_at_once: int | None) -> None:
+        if self._pool is None:
+            self._size = _fitted(self.workers, units_at_once)
 
     def map(self, fn, tasks, on_error) -> Iterator[Outcome]:
         # When a worker dies (killed, out of memory) the whole pool breaks and
@@ -360,7 +375,7 @@ class LocalPoolExecutor(Executor):
             if key is not None:
                 ready.sort(key=key)
             # one task queued beyond the busy workers, so that none waits for this process
-            while ready and not caught and len(pending) <= self.workers:
+            while ready and not caught and len(pending) <= self._size:
                 task = ready.pop(0)
                 reason = _unpicklable(task)
                 if reason is not None:
@@ -393,16 +408,16 @@ class LocalPoolExecutor(Executor):
         if self._pool is None:
             self._reaper.start()
             self._pool = ProcessPoolExecutor(
-                max_workers=self.workers,
+                max_workers=self._size,
                 mp_context=_SPAWN,
                 initializer=_start_worker,
                 initargs=(os.getpid(), self._modules, self._plan),
             )
             # The pool starts a worker per task submitted while none is idle:
             # start them all now, so that they import in parallel.
-            for _ in range(self.workers):
+            for _ in range(self._size):
                 self._pool.submit(_ready)
-            log.debug("started a local pool of %d worker processes", self.workers)
+            log.debug("started a local pool of %d worker processes", self._size)
         return self._pool
 
     def close(self) -> None:
@@ -439,6 +454,11 @@ class DaskExecutor(Executor):
         self._modules: tuple[str, ...] = ()
         self._plan: WarmPlan = ()
         self._futures: list = []  # of the last batch
+        self._size = workers  # workers of the cluster started for the run, see fit()
+
+    def fit(self, units_at_once: int | None) -> None:
+        if self._client is None:
+            self._size = _fitted(self.workers, units_at_once)
 
     def warm(self, modules: Sequence[str], plan: WarmPlan = ()) -> None:
         # only the workers of the cluster started for the run: those of a
@@ -451,7 +471,7 @@ class DaskExecutor(Executor):
         if self._client is None:
             if self.scheduler is None:
                 self._reaper.start()
-                self._cluster = start_local_cluster(self.workers)
+                self._cluster = start_local_cluster(self._size)
                 address = self._cluster.scheduler_address
                 security = self._cluster.security
                 self._client = distributed.Client(address, set_as_default=False, security=security)
@@ -571,6 +591,19 @@ class DaskExecutor(Executor):
             self._cluster.close()
             self._cluster = None
         self._reaper.stop()
+
+
+def _fitted(workers: int, units_at_once: int | None) -> int:
+    """Workers to start for a run of at most ``units_at_once`` units at once (None: unknown)."""
+    if units_at_once is None or units_at_once >= workers:
+        return workers
+    log.info(
+        "%d worker%s instead of %d: the run has no more units to run at once",
+        max(units_at_once, 1),
+        "s" if units_at_once > 1 else "",
+        workers,
+    )
+    return max(units_at_once, 1)
 
 
 def end_idle_workers(cluster) -> None:
