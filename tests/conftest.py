@@ -4,14 +4,20 @@ The test session keeps astropy offline for the whole process (as reproject's
 conftest turns off IERS auto-download), so the tests are hermetic.  The
 package itself changes no astropy setting on import; tests that check that
 the pipeline goes offline by itself restore astropy's defaults first
-(``astropy_defaults`` in ``tests/test_geometry_sitetime.py``).
+(``astropy_defaults`` in ``tests/test_geometry_sitetime.py``).  Nor does a
+test use the per-user cache folder (``ZDRIFT_CACHE_DIR`` is set empty).
 """
+
+import os
 
 import pytest
 
-from pipeline._offline import configure_offline
+from pipeline._offline import CACHE_ENV, configure_offline
 
 configure_offline()
+# No per-user cache of parsed IERS tables (the test workers inherit this):
+# tests neither read nor write the user's cache folder.
+os.environ[CACHE_ENV] = ""
 
 
 @pytest.fixture(scope="module")
