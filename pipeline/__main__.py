@@ -1,6 +1,6 @@
 """``python -m pipeline``: the same as the ``zdrift`` command."""
 
-from pipeline.cli import main
+from pipeline.cli import run
 
 if __name__ == "__main__":
-    raise SystemExit(main())
+    run()

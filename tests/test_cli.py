@@ -391,3 +391,34 @@ def test_a_full_disk_at_start_is_one_line_and_exit_4(toy_file: Path, capsys, mon
     assert err[0].startswith("zdrift run: cannot write the run lock ")
     assert "No space left on device (ENOSPC); free space on that disk" in err[0]
     assert not list((toy_file.parent / "out/toy").glob("*lock*"))
+
+
+EXIT_SCRIPT = """
+import atexit, pathlib, sys, threading, time
+from pipeline.cli import exit_now
+
+folder = pathlib.Path(sys.argv[1])
+atexit.register((folder / "handler").write_text, "ran")
+if sys.argv[2] == "thread":  # the interpreter would wait for it
+    late = lambda: (time.sleep(0.5), (folder / "thread").write_text("ran"))
+    threading.Thread(target=late).start()
+print("a line in the buffer of a pipe")
+exit_now(3)
+"""
+
+
+@pytest.mark.parametrize("thread", ["thread", "no-thread"])
+def test_the_command_ends_with_its_status_output_and_exit_handlers(tmp_path, thread):
+    """``exit_now`` (how ``zdrift`` ends) skips only the interpreter's teardown."""
+    env = {k: v for k, v in os.environ.items() if k != "PYTHONUNBUFFERED"}  # a buffered pipe
+    result = subprocess.run(
+        [sys.executable, "-c", EXIT_SCRIPT, str(tmp_path), thread],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        env=env,
+    )
+    assert result.returncode == 3, result.stderr
+    assert result.stdout == "a line in the buffer of a pipe\n"
+    assert (tmp_path / "handler").read_text() == "ran"
+    assert (tmp_path / "thread").exists() == (thread == "thread")
