@@ -367,7 +367,8 @@ def run_night(
     executor : Executor, optional
         Run the units there, and leave it open (several nights can share
         one pool of workers); default one made from ``config.run`` for this
-        run and closed at its end.
+        run, with no more workers than it has units to run at once, and
+        closed at its end.
 
     Returns
     -------
