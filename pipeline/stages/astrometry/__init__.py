@@ -27,7 +27,7 @@ night.
   threshold (kernel change against the bright stars' centroid noise) at
   which the stage has detect measure the night again with them.
 * :mod:`~pipeline.stages.astrometry._wcs`: :func:`solved_wcs`, a TAN-SIP
-  WCS per product that reproduces the solution (0.005 px on the test chip).
+  WCS per product that reproduces the solution (2e-6 px on the test chip).
 * :mod:`~pipeline.stages.astrometry._catalog`: :func:`solve_catalog`, the
   table layer (detect's catalogue in, solved catalogue and parameter table
   out) with its :class:`AstrometryOptions`.
