@@ -83,6 +83,12 @@ def test_a_mosaic_config_resolves_paths_against_its_file(tmp_path, nights):
     assert config.mosaic.output_dir == tmp_path / "out"
     assert config.mosaic.nights == tuple(nights)
     assert config.coadd.max_seeing == 3.0 and config.detect.background_box == 16
+    # a tile's model blends nights: no pair splitting unless asked (its detect
+    # section here does not name it)
+    assert not config.detect.split_pairs
+    assert not load_mosaic_config(write_config(tmp_path, relative)).detect.split_pairs
+    asked = load_mosaic_config(write_config(tmp_path, relative), ["detect.split_pairs=true"])
+    assert asked.detect.split_pairs
     assert len(config.tiling.tiles) == 3
 
 
