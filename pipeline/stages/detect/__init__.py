@@ -734,7 +734,6 @@ def _split_unresolved(members, fits_, threshold_sigma, split_one, tried):
     (a set, updated) holds the groups already tried, as fitted positions: a
     group left as it was is not tried again.
     """
-
     flags = np.asarray(fits_["flags"])
     with np.errstate(invalid="ignore", divide="ignore"):
         snr = np.asarray(fits_["flux"]) / np.asarray(fits_["flux_err"])
@@ -746,7 +745,8 @@ def _split_unresolved(members, fits_, threshold_sigma, split_one, tried):
     if n_flagged > max(SPLIT_MIN_SUSPECT, SPLIT_MAX_FRACTION * bright.sum()):
         # Not a warning: the flags are in the catalogue, and a stretch whose
         # smear the nominal geometry misses (before astrometry has solved the
-        # night) is common; the second pass measures it again.
+        # night) is common; astrometry measures it again when the solved
+        # smear differs.
         log.info(
             "%d of %d sources of S/N >= 50 are elongated against the model (UNRESOLVED): "
             "the smear kernels or the seeing may be off for this stretch; they are kept "
