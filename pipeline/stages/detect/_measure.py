@@ -516,11 +516,16 @@ def residual_quadrupole(data, variance, model, unit, x, y, noise_correlation=1.0
     return chi2, float(np.hypot(*e) / second) if second > 0 else 0.0
 
 
+def _fitted_model(fit) -> np.ndarray:
+    """The whole model of a fit on its stamp: background plus every star (e-)."""
+    return fit.background + sum(f * u for f, u in zip(fit.flux, fit.units, strict=True))
+
+
 def _unresolved(residual, variance, box, fit, profile, noise_correlation) -> np.ndarray:
     """Per source of a joint fit: flagged as a likely unresolved pair (bool array)."""
     y0, y1, x0, x1, _ = box
     data, var = residual[y0:y1, x0:x1], variance[y0:y1, x0:x1]
-    model = fit.background + sum(f * u for f, u in zip(fit.flux, fit.units, strict=True))
+    model = _fitted_model(fit)
     out = np.zeros(len(fit.flux), bool)
     for j in range(len(fit.flux)):
         if not (fit.success and fit.flux[j] > 0):
@@ -591,6 +596,7 @@ def split_pair(
         the chi-square the split gained; None when the source stays one.
     """
     from pipeline.stages.detect._measure_jit import quadrupole_sums
+    from pipeline.stages.detect._model import fit_stars
 
     xs = np.array([m[0] for m in members], dtype=float)
     ys = np.array([m[1] for m in members], dtype=float)
@@ -605,7 +611,7 @@ def split_pair(
     if not (one.success and one.flux[which] > 0):
         return None
     chi2_one = one.chi2 * max(n_good - (3 * xs.size + 1), 1)
-    model = one.background + sum(f * u for f, u in zip(one.flux, one.units, strict=True))
+    model = _fitted_model(one)
     sums = quadrupole_sums(
         np.asarray(data, dtype=float),
         np.asarray(var, dtype=float),
@@ -620,8 +626,6 @@ def split_pair(
     # The halves are fitted with the group's other sources held at their fit
     # (their models subtracted): two stars instead of the whole group again
     # per trial, and a gain that can only understate the joint refit's.
-    from pipeline.stages.detect._model import fit_stars
-
     others = np.delete(np.arange(xs.size), which)
     held = data - sum((one.flux[i] * one.units[i] for i in others), np.zeros(data.shape))
     best, best_chi2 = None, np.inf
