@@ -90,3 +90,32 @@ def test_compiled_group_fit_takes_the_python_loops_steps(stars, monkeypatch):
     assert len(compiled.units) == len(stars)
     for unit, reference in zip(compiled.units, python.units, strict=True):
         np.testing.assert_allclose(unit, reference, rtol=0, atol=1e-12)
+
+
+@pytest.mark.parametrize("loop", ["compiled", "python"])
+def test_fit_ends_with_the_models_and_chi2_of_its_result(loop, monkeypatch):
+    # The converged fit's last step is taken without evaluating the model
+    # there (units and chi-square moved to first order): what it returns must
+    # still be the model at the parameters it returns, as rendered afresh.
+    profile = SeeingProfile(4.0)
+    shape = (45, 70)
+    response = Response(0.31, 0.72, 1.0)
+    dx, dy = smear_track([4000.0], 4096, 64, 16.0, 3.0)
+    kernel = _model.reduce_kernel(dx[0], dy[0], 0.5)
+    truth = 200.0 + model_image(shape, 33.3, 21.6, *kernel, profile, 3.0e5, response=response)
+    rng = np.random.default_rng(11)
+    data = truth + rng.normal(0.0, np.sqrt(truth))
+    if loop == "python":
+        monkeypatch.setattr(_model, "_fit_one", lambda *args: None)
+    fit = fit_stars(data, truth, [34.1], [20.9], [kernel], profile, responses=[response])
+    assert fit.success
+    unit = model_image(shape, fit.x[0], fit.y[0], *kernel, profile, response=response)
+    # The step left out is < 1e-2 of a position error (~3e-3 px at S/N ~1000),
+    # so the unit model errs by its square, ~1e-10 of the peak; moved to zeroth
+    # order (the unit model of the point before) it errs by ~3e-6 of the peak.
+    np.testing.assert_allclose(fit.units[0], unit, rtol=0, atol=1e-8 * unit.max())
+    model = fit.background + fit.flux[0] * unit
+    chi2 = np.sum((data - model) ** 2 / truth) / (data.size - 4)
+    # The chi-square moves by the step's predicted change (< 1e-4 of the sum,
+    # whose size is ~3000), to first order exactly: 1e-9 relative is ~3e-6 of it.
+    assert fit.chi2 == pytest.approx(chi2, rel=1e-9)

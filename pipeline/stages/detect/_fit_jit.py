@@ -165,14 +165,6 @@ def _units(p, x_first, nx, y_first, ny, dx, dy, bounds, sigmas, weights, respons
 
 
 @numba.njit(cache=True, nogil=True)
-def _evaluate(p, d, sw, *model):
-    """Weighted residual, weighted Jacobian and the unit models at ``p``."""
-    units, units_x, units_y = _units(p, *model)
-    r, jac = _assemble(p, d, sw, units, units_x, units_y)
-    return r, jac, units
-
-
-@numba.njit(cache=True, nogil=True)
 def fit_compiled(
     d, sw, x_first, nx, y_first, ny, x, y, dx, dy, bounds, sigmas, weights, responses, erf, gauss
 ):
@@ -202,9 +194,10 @@ def fit_compiled(
     p : ndarray, shape (1 + 3 n,)
         Background, then flux, x, y of each star.
     jac : ndarray, shape (ny * nx, 1 + 3 n)
-        Weighted Jacobian at ``p``.
+        Weighted Jacobian at the last point evaluated (``p`` less the last
+        step, a hundredth of a standard error, when converged).
     units : ndarray, shape (n, ny, nx)
-        Unit models at ``p``.
+        Unit models at ``p`` (moved to first order over the last step).
     chi2 : float
     status : int
         1 converged, 0 not converged, -1 a singular step (the caller refits
@@ -252,24 +245,53 @@ def fit_compiled(
             moves = max(moves, abs(step[2 + 3 * s]), abs(step[3 + 3 * s]))
         if moves > 1.0:
             step *= 1.0 / moves
+        predicted = 0.0
+        for i in range(size):
+            for k in range(size):
+                predicted += step[i] * h[i, k] * step[k]
+        if predicted < 1e-4:  # converged: the last step is taken to first order
+            p, units, chi2 = _last_step(p, step, r, jac, units, units_x, units_y)
+            return p, jac, units, chi2, 1
         trial = p + step
-        r_new, jac_new, units_new = _evaluate(trial, d, sw, *model)
+        units_new, units_x_new, units_y_new = _units(trial, *model)
+        r_new, jac_new = _assemble(trial, d, sw, units_new, units_x_new, units_y_new)
         chi2_new = float(np.sum(r_new * r_new))
         if np.isfinite(chi2_new) and chi2_new <= chi2:
-            predicted = 0.0
-            for i in range(size):
-                for k in range(size):
-                    predicted += step[i] * h[i, k] * step[k]
             gain = chi2 - chi2_new
-            p, r, jac, units, chi2 = trial, r_new, jac_new, units_new, chi2_new
+            p, r, jac, chi2 = trial, r_new, jac_new, chi2_new
+            units, units_x, units_y = units_new, units_x_new, units_y_new
             lam = max(lam * 0.1, 1e-9)
-            if predicted < 1e-4 or gain <= 1e-8 * chi2:
+            if gain <= 1e-8 * chi2:
                 return p, jac, units, chi2, 1
         else:
             lam *= 10.0
             if lam > 1e8:  # no step downhill: p is the optimum to rounding
                 return p, jac, units, chi2, 1
     return p, jac, units, chi2, 0
+
+
+@numba.njit(cache=True, nogil=True)
+def _last_step(p, step, r, jac, units, units_x, units_y):
+    """``p + step``, the unit models there and the chi-square, to first order in ``step``.
+
+    The residual moves by ``jac step`` and each unit model by its
+    derivatives times the position step: for a step of predicted
+    chi-square change < 1e-4 (a hundredth of a standard error), the
+    neglected second order is ~1e-4 of a standard error's effect.
+    """
+    moved = units.copy()
+    for s in range(units.shape[0]):
+        ax, ay = step[2 + 3 * s], step[3 + 3 * s]
+        for j in range(units.shape[1]):
+            for i in range(units.shape[2]):
+                moved[s, j, i] += ax * units_x[s, j, i] + ay * units_y[s, j, i]
+    chi2 = 0.0
+    for i in range(r.size):
+        value = r[i]
+        for a in range(step.size):
+            value += jac[i, a] * step[a]
+        chi2 += value * value
+    return p + step, moved, chi2
 
 
 @numba.njit(cache=True, nogil=True)

@@ -556,9 +556,10 @@ def fit_stars(
             jac[:, nb + 3 * i] = u * sw
             jac[:, nb + 3 * i + 1] = f * ux.ravel() * sw
             jac[:, nb + 3 * i + 2] = f * uy.ravel() * sw
-        return model * sw - d, jac, [m[0] for m in models]
+        return model * sw - d, jac, models
 
     def evaluate(p):
+        """Weighted residual, weighted Jacobian and the unit models and derivatives at ``p``."""
         return assemble(p, models_at(p))
 
     # Linear start: fluxes (and background) at the starting positions, from
@@ -648,12 +649,16 @@ def _levenberg_marquardt(evaluate, p, nb, n, first=None):
     """Damped Gauss-Newton steps from ``p`` until the step is statistically nothing.
 
     ``evaluate(p)`` returns the weighted residual, the weighted Jacobian and
-    the unit models; ``first`` is what it returns at ``p``, if known.  A step
-    is accepted when it lowers the chi-square; convergence is a step whose
-    predicted chi-square change ``d^T H d`` is below 1e-4 (a hundredth of a
-    standard error in every parameter; the error left after it is of the
-    order of its square, 1e-4 of a standard error), or one that lowers
-    the chi-square by less than 1e-8 of it (MINPACK's ``ftol``: a degenerate
+    each star's unit model and its derivatives in x and y; ``first`` is what
+    it returns at ``p``, if known.  Convergence is a step whose predicted
+    chi-square change ``d^T H d`` is below 1e-4 (a hundredth of a standard
+    error in every parameter; the error left after it is of the order of its
+    square, 1e-4 of a standard error): it is taken without evaluating the
+    model there, the residual and the unit models moved to first order (the
+    Jacobian, for the errors, stays that of the last point evaluated: it
+    changes by ~1e-2 of a standard error's effect).  Otherwise a step is
+    evaluated and accepted when it lowers the chi-square; one that lowers it
+    by less than 1e-8 of it also ends the fit (MINPACK's ``ftol``: a degenerate
     fit, e.g. two sources on one star, creeps along a valley).  Position steps are
     capped at 1 px so a poor start cannot throw a star far away.  At most
     ``100 (p.size)`` evaluations, MINPACK's default for an analytic Jacobian.
@@ -662,7 +667,7 @@ def _levenberg_marquardt(evaluate, p, nb, n, first=None):
     -------
     p, jac, units, chi2, converged
     """
-    r, jac, units = evaluate(p) if first is None else first
+    r, jac, models = evaluate(p) if first is None else first
     chi2 = float(r @ r)
     lam = 1e-3
     for _ in range(100 * p.size):
@@ -671,22 +676,28 @@ def _levenberg_marquardt(evaluate, p, nb, n, first=None):
         try:
             step = -np.linalg.solve(h + lam * np.diag(np.diag(h)), g)
         except np.linalg.LinAlgError:
-            return p, jac, units, chi2, False
+            return p, jac, [m[0] for m in models], chi2, False
         moves = np.abs(np.concatenate([step[nb + 1 :: 3], step[nb + 2 :: 3]]))
         if moves.size and moves.max() > 1.0:
             step *= 1.0 / moves.max()
+        if float(step @ h @ step) < 1e-4:  # converged: the last step to first order
+            units = [
+                u + step[nb + 3 * i + 1] * ux + step[nb + 3 * i + 2] * uy
+                for i, (u, ux, uy) in enumerate(models)
+            ]
+            moved = r + jac @ step
+            return p + step, jac, units, float(moved @ moved), True
         trial = p + step
-        r_new, jac_new, units_new = evaluate(trial)
+        r_new, jac_new, models_new = evaluate(trial)
         chi2_new = float(r_new @ r_new)
         if np.isfinite(chi2_new) and chi2_new <= chi2:
-            predicted = float(step @ h @ step)
             gain = chi2 - chi2_new
-            p, r, jac, units, chi2 = trial, r_new, jac_new, units_new, chi2_new
+            p, r, jac, models, chi2 = trial, r_new, jac_new, models_new, chi2_new
             lam = max(lam * 0.1, 1e-9)
-            if predicted < 1e-4 or gain <= 1e-8 * chi2:
-                return p, jac, units, chi2, True
+            if gain <= 1e-8 * chi2:
+                return p, jac, [m[0] for m in models], chi2, True
         else:
             lam *= 10.0
             if lam > 1e8:  # no step downhill: p is the optimum to rounding
-                return p, jac, units, chi2, True
-    return p, jac, units, chi2, False
+                return p, jac, [m[0] for m in models], chi2, True
+    return p, jac, [m[0] for m in models], chi2, False
