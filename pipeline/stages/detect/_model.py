@@ -110,8 +110,13 @@ def reduce_kernel(dx: np.ndarray, dy: np.ndarray, spacing: float) -> tuple[np.nd
     star moves fastest; the samples' mean is removed so the model's first
     moment is unchanged, and each axis is stretched about it to the input
     samples' variance (``m`` points of a track are narrower than it), so the
-    second moments are kept too and the profile changes by a negligible
-    amount (fourth order in ``spacing / sigma``).
+    second moments are kept too.  The first and last of the ``m`` times are
+    moved out by a 24th of a step, which cancels the leading error of a mean
+    over equal-time points (the midpoint rule's, from the change of speed
+    and direction between the track's ends): at ``spacing`` = FWHM / 6 the
+    model differs from that of the full kernel by < 3.5e-4 of its peak
+    (5.5e-4 at FWHM / 8 without the end points moved), for tracks 1.5 to
+    12 px long with a 1.5 px bow, FWHM 2.7 px.
     Any ``m`` is allowed: group means needed a divisor of the sample count,
     i.e. all 64 samples for a track 16 px long, twice the 33 needed.
 
