@@ -20,7 +20,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from pipeline.stages.detect._pixel_gauss_jit import profiles_compiled
+from pipeline.stages.detect._pixel_gauss_jit import boxed_profiles_compiled, profiles_compiled
 
 __all__ = ["fit_compiled", "model_compiled", "reduce_compiled", "weighted_compiled"]
 
@@ -47,11 +47,7 @@ def _sampled(first, n, centres, sigmas, lattice, box, erf_table, gauss_table):
     offset = 0.0 if lattice < 0.0 else lattice
     ext = first - 2.0 + offset
     if box > 0.0:
-        half = box / np.sqrt(12.0)
-        v, d = profiles_compiled(ext, n + 4, centres - half, sigmas, erf_table, gauss_table)
-        v2, d2 = profiles_compiled(ext, n + 4, centres + half, sigmas, erf_table, gauss_table)
-        v = 0.5 * (v + v2)
-        d = 0.5 * (d + d2)
+        v, d = boxed_profiles_compiled(ext, n + 4, centres, sigmas, box, erf_table, gauss_table)
     else:
         v, d = profiles_compiled(ext, n + 4, centres, sigmas, erf_table, gauss_table)
     out_v = np.zeros((v.shape[0], v.shape[1], n))

@@ -34,7 +34,12 @@ import numpy as np
 from astropy.table import Table
 
 from pipeline.simulate._render import GaussianMixturePSF
-from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE, pixel_profiles
+from pipeline.stages.detect._pixel_gauss import (
+    _ERF_TABLE,
+    _GAUSS_TABLE,
+    boxed_profiles,
+    pixel_profiles,
+)
 
 __all__ = [
     "FitResult",
@@ -186,19 +191,14 @@ def _sampled_profiles(grid, centres, sigmas, lattice=None, box=0.0):
     With a ``lattice`` offset, the profiles are the Keys interpolation at
     ``grid`` of strip pixels centred at ``lattice`` modulo 1 (four taps: the
     strip pixels within 2 px); with a ``box``, each is averaged over a
-    top-hat of that width, drawn as two points +-box / sqrt(12) apart from
-    the centre (the top-hat's variance; its fourth moment differs by
-    box^4 / 180, a change < 1e-4 of the profile for seeing sigmas > 1 px).
+    top-hat of that width (:func:`boxed_profiles`).
     """
     if lattice is None and box <= 0.0:
         return pixel_profiles(grid, centres, sigmas)
     n = grid.size
     ext = grid[0] - 2.0 + (0.0 if lattice is None else lattice) + np.arange(n + 4)
     if box > 0.0:
-        half = box / np.sqrt(12.0)
-        lo, dlo = pixel_profiles(ext, centres - half, sigmas)
-        hi, dhi = pixel_profiles(ext, centres + half, sigmas)
-        value, deriv = 0.5 * (lo + hi), 0.5 * (dlo + dhi)
+        value, deriv = boxed_profiles(ext, centres, sigmas, box)
     else:
         value, deriv = pixel_profiles(ext, centres, sigmas)
     if lattice is None:
