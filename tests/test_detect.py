@@ -36,6 +36,7 @@ from pipeline.stages.detect import (
 )
 from pipeline.stages.detect._find import (
     _expand_mesh,
+    deblend_segments,
     estimate_background,
     find_sources,
     segment_map,
@@ -663,6 +664,93 @@ def test_segment_map_is_photutils_detect_sources(min_pixels, threshold):
     assert ours.slices == theirs.slices
     np.testing.assert_array_equal(ours.areas, theirs.areas)
     assert segment_map(snr, no_data, threshold=1e3, min_pixels=1) is None
+
+
+def _crowded_map(seed: int, pedestal: float = 0.0) -> np.ndarray:
+    """A matched-filter-like map (float32, as the stage's): smoothed noise and 150
+    blended stars of S/N 5 to 500, a faint companion beside some bright ones, and,
+    if ``pedestal``, a block of noise on it (one segment with hundreds of peaks)."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[:160, :300]
+    snr = gaussian_filter(rng.normal(0, 1, yy.shape), 1.0)
+    snr /= snr.std()
+    for x0, y0, amp, width in zip(
+        rng.uniform(0, 300, 150),
+        rng.uniform(0, 160, 150),
+        np.exp(rng.uniform(np.log(5), np.log(500), 150)),
+        rng.uniform(1.3, 2.5, 150),
+        strict=True,
+    ):
+        snr += amp * np.exp(-((xx - x0) ** 2 + (yy - y0) ** 2) / (2 * width**2))
+        if amp > 100:  # a companion of about 1 % of it, 4 to 6 px away
+            x1, y1 = x0 + rng.uniform(4, 6), y0 + rng.uniform(-2, 2)
+            snr += 0.01 * amp * np.exp(-((xx - x1) ** 2 + (yy - y1) ** 2) / (2 * width**2))
+    if pedestal:  # the block alone (a ring of 0 around it), noise on the pedestal
+        snr[96:156, 18:182] = 0.0
+        snr[98:154, 20:180] = pedestal + gaussian_filter(rng.normal(0, 3, (56, 160)), 0.5)
+    return snr.astype(np.float32)
+
+
+#: (seed, pedestal, threshold, min_pixels, levels, contrast): the stage's options
+#: on a crowded map; more pixels, fewer levels and a contrast that removes
+#: children; a segment with more than 200 markers (photutils starts it again with
+#: linear thresholds); thresholds below 0 (segments with a non-positive minimum:
+#: linear thresholds from the start).
+DEBLEND_CASES = [
+    (11, 0.0, 4.3, 3, 32, 0.005),
+    (12, 0.0, 3.0, 5, 16, 0.05),
+    (13, 10.0, 4.3, 3, 32, 0.005),
+    (14, 0.0, -0.5, 3, 8, 0.01),
+]
+
+
+@pytest.mark.parametrize(
+    ("seed", "pedestal", "threshold", "min_pixels", "levels", "contrast"), DEBLEND_CASES
+)
+def test_deblend_segments_is_photutils_deblend_sources(
+    seed, pedestal, threshold, min_pixels, levels, contrast, monkeypatch
+):
+    # photutils' deblend_sources of every segment is the reference: the same
+    # label image, labels, boxes and parents, exactly (deblend_segments makes
+    # the markers and floods all segments together on one plane).
+    from pipeline.stages.detect import _find
+
+    snr = _crowded_map(seed, pedestal)
+    no_data = np.zeros(snr.shape, bool)
+    no_data[:, 200:203] = True  # segments cut by no-data columns
+    segm = segment_map(snr, no_data, threshold=threshold, min_pixels=min_pixels)
+    handed_over = []  # segments left to photutils (more than 200 markers)
+
+    def photutils_deblend(data, own, label, *args):
+        handed_over.append(label)
+        return _photutils_deblend(data, own, label, *args)
+
+    _photutils_deblend = _find._photutils_deblend
+    monkeypatch.setattr(_find, "_photutils_deblend", photutils_deblend)
+    # narrow shelves: boxes above and below each other on the plane, too
+    monkeypatch.setattr(_find, "SHELF_WIDTH", 64)
+    options = {"levels": levels, "contrast": contrast}
+    ours = deblend_segments(snr, segm, segm.labels, min_pixels, **options)
+    with warnings.catch_warnings():
+        # photutils notes the segments it deblends with linear thresholds
+        warnings.filterwarnings("ignore", message="The deblending mode", category=UserWarning)
+        theirs = deblend_sources(
+            snr,
+            detect_sources(snr, threshold, min_pixels, mask=no_data),
+            min_pixels,
+            n_levels=levels,
+            contrast=contrast,
+            progress_bar=False,
+        )
+    assert len(theirs.deblended_label_to_parent) > 20  # many segments split
+    np.testing.assert_array_equal(ours.data, theirs.data)
+    np.testing.assert_array_equal(ours.labels, theirs.labels)
+    assert ours.slices == theirs.slices
+    assert ours.deblended_label_to_parent == theirs.deblended_label_to_parent
+    assert bool(handed_over) == (pedestal > 0)
+    if contrast > 0.01:  # the contrast removed children
+        loose = deblend_segments(snr, segm, segm.labels, min_pixels, levels=levels, contrast=0)
+        assert loose.n_labels > ours.n_labels
 
 
 def test_sky_ramp_along_the_scan_gives_no_false_sources():
