@@ -13,7 +13,12 @@ from astropy.wcs import WCS
 from photutils.aperture import CircularAperture, aperture_photometry
 from photutils.background import Background2D
 from photutils.centroids import centroid_2dg
-from photutils.segmentation import SourceCatalog, deblend_sources, detect_sources
+from photutils.segmentation import (
+    SegmentationImage,
+    SourceCatalog,
+    deblend_sources,
+    detect_sources,
+)
 from pydantic import ValidationError
 from scipy.ndimage import binary_dilation, find_objects, gaussian_filter
 from scipy.spatial import cKDTree
@@ -40,6 +45,7 @@ from pipeline.stages.detect._find import (
     estimate_background,
     find_sources,
     segment_map,
+    segment_moments,
 )
 from pipeline.stages.detect._measure import KERNEL_SPACING, measure_groups, residual_quadrupole
 from pipeline.stages.detect._model import KernelGrid, reduce_kernel
@@ -753,6 +759,48 @@ def test_deblend_segments_is_photutils_deblend_sources(
         assert loose.n_labels > ours.n_labels
 
 
+def test_segment_moments_are_photutils_source_catalog():
+    # photutils' SourceCatalog is the reference for the centroids and shapes,
+    # to rounding (sums in another order).  The segments include masked pixels
+    # and NaN data (both counted as 0), negative pixels (0 too), one-pixel-wide
+    # segments (the covariance widened by 1/12 px^2), a segment whose data are
+    # all negative (NaN centroid and shape) and labels with gaps.
+    rng = np.random.default_rng(8)
+    snr = _crowded_map(21)
+    data = 30.0 * snr.astype(float) + rng.normal(0, 20.0, snr.shape)
+    segm = segment_map(snr, np.zeros(snr.shape, bool), threshold=4.3, min_pixels=3)
+    labels = segm.labels
+    segm.data[5, 10:40] = labels.max() + 1  # a one-pixel-wide row
+    segm.data[20:35, 290] = labels.max() + 2  # a one-pixel-wide column
+    segm.data[60:63, 150:153] = labels.max() + 3
+    data[60:63, 150:153] = -5.0  # no positive pixel
+    segm.data[segm.data == labels[3]] = 0  # a gap in the labels
+    segm = SegmentationImage(segm.data)
+    mask = np.zeros(snr.shape, bool)
+    mask[:, 100:104] = True  # segments cut by masked columns
+    data[40:45, :] = np.nan
+    theirs = SourceCatalog(np.where(mask | ~np.isfinite(data), 0.0, data), segm, mask=mask)
+    ours = segment_moments(data, segm, mask, snr)
+    assert segm.n_labels > 50 and not np.array_equal(segm.labels, np.arange(1, segm.n_labels + 1))
+    # 1e-9 px and 1e-9 deg: sums of ~1e5 e- products in another order (relative
+    # rounding ~1e-15 each); the thin segments' widening is exact.
+    for name, ref in (
+        ("x", theirs.x_centroid),
+        ("y", theirs.y_centroid),
+        ("fwhm", theirs.fwhm.value),
+        ("ellipticity", theirs.ellipticity.value),
+        ("orientation", theirs.orientation.value),
+    ):
+        np.testing.assert_allclose(getattr(ours, name), ref, rtol=0, atol=1e-9, err_msg=name)
+    assert np.isnan(ours.x[-1]) and np.isnan(ours.fwhm[-1])  # all negative: nothing
+    thin = np.asarray(theirs.semiminor_axis.value)[-3:-1]  # widened: sqrt(1/12) px
+    np.testing.assert_allclose(thin, np.sqrt(1 / 12), rtol=1e-12)
+    peaks = [
+        snr[box][segm.data[box] == k].max() for k, box in zip(segm.labels, segm.slices, strict=True)
+    ]
+    np.testing.assert_array_equal(ours.peak, peaks)
+
+
 def test_sky_ramp_along_the_scan_gives_no_false_sources():
     image, sky, mask = _twilight_ramp()
     with warnings.catch_warnings():
@@ -1163,8 +1211,6 @@ def test_segment_without_light_starts_at_its_snr_peak():
     # A segment of the S/N map whose image pixels sum to <= 0 has no centroid
     # (photutils gives NaN), which crashed the grouping and the fit stamps on
     # large nights; it must start at its highest S/N pixel instead.
-    from photutils.segmentation import SegmentationImage, SourceCatalog
-
     from pipeline.stages.detect import _start_positions
 
     labels = np.zeros((20, 30), dtype=int)
@@ -1177,8 +1223,8 @@ def test_segment_without_light_starts_at_its_snr_peak():
     snr[labels > 0] = 3.0
     snr[12, 21] = 9.0
     segm = SegmentationImage(labels)
-    cat = SourceCatalog(image, segm)
-    assert not np.isfinite(cat.x_centroid[1])
+    cat = segment_moments(image, segm, np.zeros(labels.shape, bool), snr)
+    assert not np.isfinite(cat.x[1])
     x, y = _start_positions(cat, segm, snr)
     assert (x[0], y[0]) == (5.0, 4.0)
     assert (x[1], y[1]) == (21.0, 12.0)

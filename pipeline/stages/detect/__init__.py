@@ -52,6 +52,7 @@ from pipeline.stages.detect._find import (
     find_sources,
     inverse_variance,
     measured_noise_correlation,
+    segment_moments,
     significance_map,
 )
 from pipeline.stages.detect._measure import (
@@ -168,17 +169,17 @@ class DetectResult:
     problems: list[str] = field(default_factory=list)
 
 
-def _start_positions(cat, segm, snr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _start_positions(moments, segm, snr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Start positions of the fits: each segment's centroid, or its S/N peak.
 
     A segment of the S/N map whose image pixels sum to zero or less (noise,
     or a faint source on a dip left by a neighbour's model) has no centroid
-    (photutils gives NaN); it starts at its highest S/N pixel instead.
+    (NaN); it starts at its highest S/N pixel instead.
 
     Parameters
     ----------
-    cat : `~photutils.segmentation.SourceCatalog`
-        Catalogue of the segments, in ``segm``'s label order.
+    moments : `~pipeline.stages.detect._find.SegmentMoments`
+        Of the segments, in ``segm``'s label order.
     segm : `~photutils.segmentation.SegmentationImage`
     snr : ndarray
         The S/N map the segments were cut from.
@@ -188,14 +189,14 @@ def _start_positions(cat, segm, snr: np.ndarray) -> tuple[np.ndarray, np.ndarray
     x, y : ndarray
         Zero-based pixel positions, all finite.
     """
-    x = np.array(cat.x_centroid, dtype=float)
-    y = np.array(cat.y_centroid, dtype=float)
+    x = np.array(moments.x, dtype=float)
+    y = np.array(moments.y, dtype=float)
     for i in np.flatnonzero(~(np.isfinite(x) & np.isfinite(y))):
-        segment = segm.segments[i]
-        local = np.where(segment.data.astype(bool), snr[segment.slices], -np.inf)
+        box = segm.slices[i]
+        local = np.where(segm.data[box] == segm.labels[i], snr[box], -np.inf)
         iy, ix = np.unravel_index(np.argmax(local), local.shape)
-        y[i] = segment.slices[0].start + iy
-        x[i] = segment.slices[1].start + ix
+        y[i] = box[0].start + iy
+        x[i] = box[1].start + ix
     return x, y
 
 
@@ -345,7 +346,6 @@ def detect(
         ``flux_aperN`` with corrections ``aperN_corr``, ``background`` (e-/pix),
         shape, ``snr``, ``flags`` (:class:`SourceFlag`); and the seeing table.
     """
-    from photutils.segmentation import SourceCatalog
     from scipy.spatial import cKDTree
 
     from pipeline.stages.detect._model import KernelGrid, SeeingProfile
@@ -463,19 +463,17 @@ def detect(
         )
         return DetectResult(_empty_catalog(radii), empty_seeing)
 
-    data_for_cat = _filled(residual, no_data, 0.0, missing)
-
     def sources(segm, snr, data):
-        """Catalogue and start positions, one source per saturated footprint."""
-        cat = SourceCatalog(data, segm, mask=no_data)
+        """Segments' moments and start positions, one source per saturated footprint."""
+        cat = segment_moments(data, segm, no_data, snr)
         cx, cy = _start_positions(cat, segm, snr)
         if merge_on_footprints(segm, cx, cy, footprints):
-            cat = SourceCatalog(data, segm, mask=no_data)
+            cat = segment_moments(data, segm, no_data, snr)
             cx, cy = _start_positions(cat, segm, snr)
         return cat, cx, cy
 
-    cat, cx, cy = sources(segm, snr, data_for_cat)
-    peak = np.array([snr[s.slices][s.data.astype(bool)].max() for s in segm.segments])
+    cat, cx, cy = sources(segm, snr, residual)
+    peak = cat.peak
     point = deconvolved
     fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
 
@@ -511,15 +509,15 @@ def detect(
         return best, rows
 
     point = deconvolved
-    blended = np.asarray(_deblended(cat.labels, parent))
+    blended = np.asarray(_deblended(segm.labels, parent))
     fwhm, seeing_rows = fit_seeing(cx, cy, peak, blended, profile)
     if fwhm is not None:
         profile = profile.with_fwhm(fwhm)
         if abs(fwhm - fwhm_guess) > 0.25 * fwhm_guess:  # filter far off: detect again
             filter_profile = profile
             snr, segm, parent = segment(filter_profile)
-            cat, cx, cy = sources(segm, snr, data_for_cat)
-            blended = np.asarray(_deblended(cat.labels, parent))
+            cat, cx, cy = sources(segm, snr, residual)
+            blended = np.asarray(_deblended(segm.labels, parent))
     else:
         warnings.warn(
             f"no bright isolated star (S/N >= {seeing_min_snr}) to fit the seeing; using "
@@ -529,12 +527,10 @@ def detect(
         )
     log.debug("seeing FWHM %.3f px from %d stars", profile.fwhm, seeing_rows[0][2])
 
-    shape_cols = [
-        np.asarray(q.value, dtype=float) for q in (cat.fwhm, cat.ellipticity, cat.orientation)
-    ]
+    shape_cols = [cat.fwhm, cat.ellipticity, cat.orientation]
     # the search's planes are done with: free them before the fits and the second
     # search make theirs (each a plane of the stretch)
-    del cat, snr, segm, parent, data_for_cat
+    del cat, snr, segm, parent
 
     fitted: dict = {}  # groups already fitted, for the later passes
 
@@ -584,8 +580,6 @@ def detect(
         # a few per cent off the seeing loses a negligible (second-order) S/N.
         _snr2, segm2, _parent2 = segment(filter_profile, cleaned)
         if segm2 is not None:
-            if missing:  # filled in place: searched already, no copy needed
-                cleaned[no_data] = 0.0
             cat2, nx2, ny2 = sources(segm2, _snr2, cleaned)
             near = cKDTree(np.column_stack([fits_["x"], fits_["y"]])).query(
                 np.column_stack([nx2, ny2])
@@ -602,10 +596,7 @@ def detect(
                 cx = np.concatenate([px, nx2[new]])
                 cy = np.concatenate([py, ny2[new]])
                 blended = np.concatenate([blended, np.ones(new.size, bool)])
-                more = [
-                    np.asarray(q.value, dtype=float)[new]
-                    for q in (cat2.fwhm, cat2.ellipticity, cat2.orientation)
-                ]
+                more = [q[new] for q in (cat2.fwhm, cat2.ellipticity, cat2.orientation)]
                 shape_cols = [
                     np.concatenate([c0, c1]) for c0, c1 in zip(shape_cols, more, strict=True)
                 ]
