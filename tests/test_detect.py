@@ -46,6 +46,7 @@ from pipeline.stages.detect._find import (
     find_sources,
     segment_map,
     segment_moments,
+    segment_pixels,
 )
 from pipeline.stages.detect._measure import KERNEL_SPACING, measure_groups, residual_quadrupole
 from pipeline.stages.detect._model import KernelGrid, reduce_kernel
@@ -669,6 +670,7 @@ def test_segment_map_is_photutils_detect_sources(min_pixels, threshold):
     np.testing.assert_array_equal(ours.labels, theirs.labels)
     assert ours.slices == theirs.slices
     np.testing.assert_array_equal(ours.areas, theirs.areas)
+    np.testing.assert_array_equal(segment_pixels(ours), np.flatnonzero(theirs.data))
     assert segment_map(snr, no_data, threshold=1e3, min_pixels=1) is None
 
 
@@ -753,6 +755,7 @@ def test_deblend_segments_is_photutils_deblend_sources(
     np.testing.assert_array_equal(ours.labels, theirs.labels)
     assert ours.slices == theirs.slices
     assert ours.deblended_label_to_parent == theirs.deblended_label_to_parent
+    np.testing.assert_array_equal(segment_pixels(ours), np.flatnonzero(theirs.data))
     assert bool(handed_over) == (pedestal > 0)
     if contrast > 0.01:  # the contrast removed children
         loose = deblend_segments(snr, segm, segm.labels, min_pixels, levels=levels, contrast=0)
@@ -928,6 +931,7 @@ def test_merging_on_footprints_is_photutils_reassign_labels():
     assert segm.slices == expected.slices
     np.testing.assert_array_equal(segm.areas, expected.areas)
     assert segm.deblended_label_to_parent == expected.deblended_label_to_parent
+    np.testing.assert_array_equal(segment_pixels(segm), np.flatnonzero(expected.data))
     again = SourceCatalog(snr, segm)  # one segment per footprint now: nothing to merge
     assert not merge_on_footprints(segm, again.x_centroid, again.y_centroid, footprints)
 
