@@ -553,11 +553,14 @@ def detect(
     def fit_all(px, py, split):
         started["x"], started["y"] = np.array(px, dtype=float), np.array(py, dtype=float)
         members = _groups(px, py, grid, x_start, profile.fwhm, point)
+        # Python lists: indexing them per source is ~10 times cheaper than arrays
+        xy = list(zip(started["x"].tolist(), started["y"].tolist(), strict=True))
+        split = np.asarray(split, bool).tolist()
         result = measure_groups(
             residual,
             var_fit,
             mask,
-            [[(px[i], py[i]) for i in g] for g in members],
+            [[xy[i] for i in g] for g in members],
             grid,
             profile,
             x_start=x_start,
@@ -786,7 +789,7 @@ def _groups(cx, cy, grid, x_start, fwhm, point) -> list[list[int]]:
     graph = coo_matrix((np.ones(close.sum()), (i[close], j[close])), shape=(n, n))
     _, labels = connected_components(graph, directed=False)
     order = np.argsort(labels, kind="stable")
-    return [list(g) for g in np.split(order, np.flatnonzero(np.diff(labels[order])) + 1)]
+    return [g.tolist() for g in np.split(order, np.flatnonzero(np.diff(labels[order])) + 1)]
 
 
 def _filled(
