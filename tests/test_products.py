@@ -7,6 +7,7 @@ interpreter with astropy's default settings, as a user would.
 
 from __future__ import annotations
 
+import io
 import json
 import re
 import subprocess
@@ -20,9 +21,10 @@ import numpy as np
 import pytest
 from _demo import REPO, demo_copy
 from _previous_layout import VALUES
+from _tables import assert_same_table
 from astropy.io import fits
 from astropy.nddata import CCDData, VarianceUncertainty
-from astropy.table import Table
+from astropy.table import QTable, Table
 from astropy.time import Time
 from astropy.wcs import WCS
 from packaging.version import Version
@@ -30,6 +32,7 @@ from packaging.version import Version
 import pipeline
 from pipeline.masks import MaskBit
 from pipeline.products import flag_bits_from_header
+from pipeline.runner._store import read_product
 from pipeline.stages.rectify import NO_DATA_BITS
 
 #: CCDData.read loads a flag plane from astropy 8.0 on.
@@ -304,6 +307,26 @@ def test_table_columns_carry_units(demo):
         table = Table.read(REPO / "demo_frames" / name)
         for column, expected in units.items():
             assert table[column].unit == u.Unit(expected), (name, column)
+
+
+def test_every_table_product_is_astropy_s_ecsv(demo):
+    """The store writes and reads its tables on fast paths (pipeline/runner/_ecsv.py);
+    astropy's ECSV writer and reader are the reference: each table product of the
+    demo night, read by astropy, is written by astropy to the same bytes, and
+    the store reads it to the same table (tests/test_ecsv.py compares them)."""
+    folder, _ = demo
+    paths = sorted(_night(folder).glob("*/*/*.ecsv"))
+    catalogues = [path for path in paths if path.name == "catalog.ecsv"]
+    assert len(catalogues) >= 7, paths  # detect's four, catalog, astrometry, zeropoint
+    for path in paths:
+        sidecar = json.loads((path.parent / "_provenance.json").read_text(encoding="utf-8"))
+        entry = next(e for e in sidecar["products"].values() if e["file"] == path.name)
+        cls = QTable if entry.get("class") == "QTable" else Table
+        theirs = cls.read(path, format="ascii.ecsv")
+        stream = io.StringIO()
+        theirs.write(stream, format="ascii.ecsv")
+        assert stream.getvalue().encode() == path.read_bytes(), path
+        assert_same_table(read_product(path, entry), theirs)
 
 
 def test_open_product_says_what_is_missing(demo):

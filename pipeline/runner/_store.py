@@ -31,6 +31,7 @@ from astropy.table import QTable, Table
 from astropy.table.meta import get_header_from_yaml
 
 from pipeline.exceptions import DamagedProductError
+from pipeline.runner._ecsv import read_ecsv, write_ecsv
 
 __all__ = [
     "DAMAGED_NAME",
@@ -186,7 +187,7 @@ def _writer(kind: str, value: Any, cards: Mapping[str, tuple[Any, str]]) -> Call
         # Born valid: a card astropy would have to fix is the stage's bug.
         return lambda temp: hdul.writeto(temp, output_verify="exception")
     if kind == "table":
-        return lambda temp: value.write(temp, format="ascii.ecsv")
+        return lambda temp: write_ecsv(value, temp)
     if kind == "html":
         return lambda temp: temp.write_text(value, encoding="utf-8")
     if kind == "png":
@@ -311,7 +312,7 @@ def _read_ecsv(path: Path, cls: type[Table]) -> Table:
     back ("shape mismatch"); such a table is rebuilt from the file's header.
     """
     try:
-        return cls.read(path, format="ascii.ecsv")
+        return read_ecsv(path, cls)
     except ValueError:
         lines = path.read_text(encoding="utf-8").splitlines()
         body = [line for line in lines if not line.startswith("#")]

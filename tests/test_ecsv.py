@@ -1,0 +1,171 @@
+"""The store's fast ECSV paths give astropy's bytes and astropy's tables.
+
+The reference is astropy's own ECSV writer and reader (astropy.io.ascii.ecsv,
+the ECSV standard of astropy APE 6): every file written here must be the bytes
+astropy writes for the same table, and every table read here must equal the
+one astropy reads from the same file, value for value (bit for bit, NaNs
+included), with the same dtypes, units, descriptions, formats and meta.
+"""
+
+import io
+from collections import OrderedDict
+
+import astropy.units as u
+import numpy as np
+import pytest
+from _tables import assert_same_table
+from astropy.table import Column, MaskedColumn, QTable, Table
+
+from pipeline.runner import _ecsv
+from pipeline.runner._ecsv import read_ecsv, write_ecsv
+
+
+def _astropy_bytes(table: Table) -> bytes:
+    stream = io.StringIO()
+    table.write(stream, format="ascii.ecsv")
+    return stream.getvalue().encode()
+
+
+def _check_round_trip(table: Table, tmp_path, cls=None) -> Table:
+    """Write with both writers, read with both readers; return ours."""
+    cls = cls or type(table)
+    path = tmp_path / "table.ecsv"
+    write_ecsv(table, path)
+    assert path.read_bytes() == _astropy_bytes(table)
+    ours = read_ecsv(path, cls)
+    assert_same_table(ours, cls.read(path, format="ascii.ecsv"))
+    return ours
+
+
+def _random_floats(rng, n, dtype):
+    """Every kind of float of ``dtype``: random bit patterns (subnormals, huge,
+    tiny), the specials, and round numbers that print positionally."""
+    unsigned = f"u{np.dtype(dtype).itemsize}"
+    values = rng.integers(0, np.iinfo(unsigned).max, n, dtype=unsigned, endpoint=True).view(dtype)
+    info = np.finfo(dtype)
+    specials = [np.nan, np.inf, -np.inf, 0.0, -0.0, 1.0, 100.0, 1e15, 1e16, 1e-4, 1e-5]
+    specials += [info.max, info.min, info.tiny, info.smallest_subnormal, info.eps, 0.1]
+    with np.errstate(over="ignore"):  # 1e15 and 1e16 are inf in float16
+        return np.concatenate([values, np.array(specials, dtype=dtype)])
+
+
+def _catalogue_like(n_rows: int, seed: int = 1) -> QTable:
+    """A table shaped like a night catalogue (common practice of our stages:
+    Quantity float columns, integer and boolean flags, nested meta)."""
+    rng = np.random.default_rng(seed)
+    table = QTable(meta=OrderedDict(flag_bits={"EDGE": 8, "SATURATED": 1}, radii=[1.0, 2.0]))
+    table["x"] = rng.uniform(0, 4096, n_rows) * u.pix
+    table["x"].info.description = "night rectified column"
+    table["flux"] = rng.lognormal(8, 2, n_rows) * u.electron
+    table["snr"] = rng.lognormal(3, 1, n_rows)
+    table["ra"] = rng.uniform(0, 360, n_rows) * u.deg
+    table["flags"] = rng.integers(0, 256, n_rows).astype(float)
+    table["ref_index"] = rng.integers(-1, 10**6, n_rows)
+    table["zp_flags"] = rng.integers(0, 8, n_rows).astype(np.int32)
+    table["zp_used"] = rng.random(n_rows) < 0.5
+    table.meta["detect_options"] = {"split_pairs": True, "threshold_sigma": 4.3}
+    return table
+
+
+def test_catalogue_like_table_round_trips(tmp_path):
+    table = _catalogue_like(2000)
+    table["flux"][3] = np.nan
+    ours = _check_round_trip(table, tmp_path)
+    assert ours.meta["detect_options"]["threshold_sigma"] == 4.3
+    assert ours["ra"].unit == u.deg and ours["x"].info.description == "night rectified column"
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32, np.float16])
+def test_floats_of_every_kind_round_trip(tmp_path, dtype):
+    values = _random_floats(np.random.default_rng(2), 20000, dtype)
+    _check_round_trip(Table({"v": values}), tmp_path)
+
+
+INTEGER_DTYPES = ["int8", "int16", "int32", "int64", "uint8", "uint16", "uint32", "uint64"]
+
+
+@pytest.mark.parametrize("dtype", INTEGER_DTYPES)
+def test_integers_to_their_limits_round_trip(tmp_path, dtype):
+    info = np.iinfo(dtype)
+    values = np.array([info.min, info.max, 0, 1, info.max - 1], dtype=dtype)
+    _check_round_trip(Table({"v": values, "b": [True, False, True, False, True]}), tmp_path)
+
+
+def test_empty_and_one_row_tables_round_trip(tmp_path):
+    table = _catalogue_like(1)
+    _check_round_trip(table, tmp_path)
+    _check_round_trip(table[:0], tmp_path)
+
+
+def test_a_qtable_file_reads_as_a_table_and_back(tmp_path):
+    table = _catalogue_like(50)
+    path = tmp_path / "table.ecsv"
+    write_ecsv(table, path)
+    plain = read_ecsv(path, Table)
+    assert_same_table(plain, Table.read(path, format="ascii.ecsv"))
+    assert type(plain["x"]) is Column and plain["x"].unit == u.pix
+
+
+#: Tables the fast paths leave to astropy, and why.
+OTHER_TABLES = {
+    "strings with spaces": lambda: Table({"name": ["a b", "c", ""], "v": [1.0, 2.0, 3.0]}),
+    "masked values": lambda: Table({"v": MaskedColumn([1.0, 2.0, 3.0], mask=[0, 1, 0])}),
+    "vector column": lambda: Table({"v": np.arange(6.0).reshape(3, 2)}),
+    "object column": lambda: Table({"v": np.array([{"a": 1}, [1, 2], None], dtype=object)}),
+    "masked Quantity": lambda: QTable({"v": u.Quantity(np.ma.array([1.0, 2.0], mask=[1, 0]))}),
+}
+
+
+@pytest.mark.parametrize("make", OTHER_TABLES.values(), ids=OTHER_TABLES.keys())
+def test_other_tables_are_astropy_s_own(tmp_path, make):
+    _check_round_trip(make(), tmp_path)
+
+
+#: Files written by hand that astropy reads: the fast reader must read them the
+#: same or leave them to astropy.
+FOREIGN_FILES = {
+    "comma delimiter": "# %ECSV 1.0\n# ---\n# delimiter: ','\n"
+    "# datatype:\n# - {name: a, datatype: float64}\n# - {name: b, datatype: int64}\n"
+    "# schema: astropy-2.0\na,b\n1.5,2\n3.5,4\n",
+    "blank line and comment": "# %ECSV 1.0\n# ---\n"
+    "# datatype:\n# - {name: a, datatype: float64}\n# - {name: b, datatype: int64}\n"
+    "# schema: astropy-2.0\na b\n1.5 2\n\n# a comment\n3.5 4\n",
+    "empty value": "# %ECSV 1.0\n# ---\n"
+    "# datatype:\n# - {name: a, datatype: float64}\n# - {name: b, datatype: int64}\n"
+    '# schema: astropy-2.0\na b\n1.5 ""\n3.5 4\n',
+    "two spaces": "# %ECSV 1.0\n# ---\n"
+    "# datatype:\n# - {name: a, datatype: float64}\n# - {name: b, datatype: int64}\n"
+    "# schema: astropy-2.0\na b\n1.5  2\n3.5 4\n",
+    "booleans as 0 and 1": "# %ECSV 1.0\n# ---\n"
+    "# datatype:\n# - {name: a, datatype: bool}\n# - {name: b, datatype: float32}\n"
+    "# schema: astropy-2.0\na b\n1 0.1\n0 nan\nTrue -inf\n",
+    "windows line ends": "# %ECSV 1.0\r\n# ---\r\n"
+    "# datatype:\r\n# - {name: a, datatype: float64}\r\n# schema: astropy-2.0\r\na\r\n1.5\r\n",
+}
+
+
+@pytest.mark.parametrize("text", FOREIGN_FILES.values(), ids=FOREIGN_FILES.keys())
+def test_foreign_files_read_as_astropy_reads_them(tmp_path, text):
+    path = tmp_path / "table.ecsv"
+    path.write_bytes(text.encode())
+    assert_same_table(read_ecsv(path, Table), Table.read(path, format="ascii.ecsv"))
+
+
+def test_a_bad_file_gets_astropy_s_error(tmp_path):
+    path = tmp_path / "table.ecsv"
+    path.write_text(
+        "# %ECSV 1.0\n# ---\n# datatype:\n# - {name: a, datatype: float64}\n"
+        "# schema: astropy-2.0\na\n1.5\nnot-a-number\n",
+        encoding="utf-8",
+    )
+    with pytest.raises(ValueError, match="column 'a' failed to convert"):
+        read_ecsv(path, Table)
+
+
+def test_the_stages_tables_take_the_fast_paths(tmp_path):
+    """Without this, a fast path that silently gave up would pass every test above."""
+    table = _catalogue_like(100)
+    assert _ecsv._column_texts(table) is not None
+    path = tmp_path / "table.ecsv"
+    write_ecsv(table, path)
+    assert _ecsv._read_plain(path.read_text(encoding="utf-8")) is not None
