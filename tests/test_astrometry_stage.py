@@ -52,6 +52,22 @@ def test_stage_declaration_and_options():
         Stage("x", STAGE.run, AstrometryStageOptions, ("catalog",), "night", streams=("nope",))
 
 
+def test_any_deconvolved_stretch_makes_the_night_deconvolved():
+    """Any stretch with ``DECONV`` stops further passes (the demo's one-pass night
+    reads no image for it: tests/test_products.py)."""
+    from astropy.io import fits
+
+    from pipeline.stages.astrometry._stage import _deconvolved
+
+    def unit(deconvolved):
+        header = fits.Header({"DECONV": True} if deconvolved else {})
+        flux = fits.ImageHDU(header=header, name="FLUX")
+        return {"image": fits.HDUList([fits.PrimaryHDU(), flux])}
+
+    assert _deconvolved([unit(False), unit(True), unit(False)], 3)
+    assert not _deconvolved([unit(False), unit(False)], 2)
+
+
 @pytest.fixture(scope="module")
 def solution():
     night = make_night(50.0, n_stars=1500, duration=900.0)
