@@ -52,6 +52,10 @@ _FAST_DATATYPES = frozenset(
 #: (quotes, tabs, ``#`` comment lines, carriage returns) is astropy's to read.
 _PLAIN_ROWS = re.compile(r"[0-9A-Za-z.+\- \n]*")
 
+#: A column of strings, vectors or objects in the header (``datatype: string``,
+#: ``subtype: ...``).
+_OTHER_COLUMNS = re.compile(r"^# +- \{.*(?:datatype: string|subtype: )", re.MULTILINE)
+
 #: The header: the lines from the start that begin with ``#``.
 _HEADER = re.compile(r"(?:#[^\n]*\n)*")
 
@@ -142,6 +146,8 @@ def _read_plain(text: str) -> Table | None:
     names_end = text.find("\n", names_start)
     if names_start == 0 or names_end < 0:
         return None
+    if _OTHER_COLUMNS.search(text, 0, names_start):
+        return None  # found before the YAML is parsed: astropy reads such files alone
     body = text[names_end + 1 :]
     if not _PLAIN_ROWS.fullmatch(body):
         return None
