@@ -13,12 +13,13 @@ value's text is the same function of the value (``str`` of a Python float is
 the shortest repr that numpy's ``str`` of a float64 also gives; integers and
 booleans print alike; a vector is the JSON of its list, as astropy writes it).
 
-Reading, for numeric and boolean columns of a value per row, the rows are
-parsed by pyarrow's CSV reader (floats correctly rounded, as numpy parses
-them) and handed to astropy's own header parser and outputter.  Vector
-columns are left to astropy, which parses their JSON about as fast.
+Reading, for numeric and boolean columns of a value or a vector per row,
+the rows are parsed by pyarrow (its CSV reader, and for vectors its string
+split and cast, after a check that each element is a JSON number; floats
+correctly rounded, as numpy and json read them) and handed to astropy's own
+header parser and outputter.
 
-Anything else (string, masked, object or matrix columns, a comma delimiter,
+Anything else (string, masked, object or matrix columns, boolean vectors, a comma delimiter,
 comments, blank lines or quotes among the rows) goes to astropy unchanged, so
 the fast paths never decide what a file means, only how fast it is read.
 """
@@ -48,13 +49,27 @@ _FAST_DATATYPES = frozenset(
 )
 
 #: What the rows of such a file are made of: numbers (``1.5e-05``, ``nan``,
-#: ``-inf``), ``True``/``False``, single spaces and newlines.  Anything else
-#: (quotes, tabs, ``#`` comment lines, carriage returns) is astropy's to read.
-_PLAIN_ROWS = re.compile(r"[0-9A-Za-z.+\- \n]*")
+#: ``-inf``), ``True``/``False``, vectors (``[1.5,NaN]``), single spaces and
+#: newlines.  Anything else (quotes, tabs, ``#`` comment lines, carriage
+#: returns) is astropy's to read.
+_PLAIN_ROWS = re.compile(r"[0-9A-Za-z.+\-,\[\] \n]*")
 
-#: A column of strings, vectors or objects in the header (``datatype: string``,
-#: ``subtype: ...``).
-_OTHER_COLUMNS = re.compile(r"^# +- \{.*(?:datatype: string|subtype: )", re.MULTILINE)
+#: A column of strings, objects or matrices in the header: ``datatype: string``
+#: not followed by the subtype of a vector of numbers (``'float32[4096]'``).
+_OTHER_COLUMNS = re.compile(
+    r"^# +- \{.*datatype: string(?!, subtype: '?(?:u?int|float)[0-9]+\[[0-9]+\]'?[,}])",
+    re.MULTILINE,
+)
+
+#: Datatypes of the vector columns the fast reader parses: not booleans (JSON's
+#: ``true``/``false``), not float128.
+_VECTOR_DATATYPES = _FAST_DATATYPES - {"bool", "float128"}
+
+#: A number as Python's json module writes a float or an integer (RFC 8259,
+#: section 6, with json's NaN and Infinity), for pyarrow's RE2: one vector
+#: element.  The integer ``-0`` is left out apart (json reads it as 0, a float
+#: parser as -0.0).
+_JSON_NUMBER = r"^(?:-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?|NaN|-?Infinity)$"
 
 #: The header: the lines from the start that begin with ``#``.
 _HEADER = re.compile(r"(?:#[^\n]*\n)*")
@@ -157,14 +172,18 @@ def _read_plain(text: str) -> Table | None:
     except Exception:  # astropy's own read gives the error, in its words
         return None
     columns = reader.header.cols
-    plain = reader.header.splitter.delimiter == " " and all(
-        column.dtype in _FAST_DATATYPES and not column.subtype and not column.shape
-        for column in columns
-    )
+    lengths = [_vector_length(column) for column in columns]
+    plain = reader.header.splitter.delimiter == " " and -1 not in lengths
     if not plain or "__table_indices__" in reader.header.table_meta:
         return None
+    if any(lengths) and not body.strip():
+        return None  # astropy cannot read vector columns of no rows (the store can)
+    dtypes = [
+        np.dtype(column.subtype if length else column.dtype)
+        for column, length in zip(columns, lengths, strict=True)
+    ]
     try:
-        values = _parse_rows(body, [np.dtype(column.dtype) for column in columns])
+        values = _parse_rows(body, dtypes, lengths)
     except ValueError:  # pyarrow's ArrowInvalid is a ValueError
         return None  # a masked (empty) value, a blank line, a ragged row
     for column, data in zip(columns, values, strict=True):
@@ -173,21 +192,36 @@ def _read_plain(text: str) -> Table | None:
     return _Outputter()(columns, reader.meta)
 
 
-def _parse_rows(body: str, dtypes: list[np.dtype]) -> list[np.ndarray]:
+def _vector_length(column) -> int:
+    """0 for a scalar column the fast reader parses, n for a vector of n numbers,
+    -1 for any other column."""
+    if not column.subtype and not column.shape:
+        return 0 if column.dtype in _FAST_DATATYPES else -1
+    vector = column.dtype == "str" and column.subtype in _VECTOR_DATATYPES
+    shape = column.shape
+    if vector and len(shape) == 1 and isinstance(shape[0], int) and shape[0] >= 1:
+        return shape[0]
+    return -1
+
+
+def _parse_rows(body: str, dtypes: list[np.dtype], lengths: list[int]) -> list[np.ndarray]:
     """The columns of space-separated rows, parsed as astropy's converters do.
 
     Floats are read as float64 (correctly rounded, as ``numpy.array(texts,
-    float)``) and cast, integers exactly, booleans from ``True``/``False``/
-    ``1``/``0`` (astropy's bool converter).  A row of another length, an empty
-    value or text that is not a number raises.
+    float)`` and ``json.loads`` read them) and cast, integers exactly, booleans
+    from ``True``/``False``/``1``/``0`` (astropy's bool converter), vectors
+    (``lengths`` > 0) from their JSON lists.  A row of another length, an
+    empty value or text that is not a number raises.
     """
     import pyarrow as pa  # loaded only when a table is read
     from pyarrow import csv as pa_csv
 
     names = [str(index) for index in range(len(dtypes))]
     types = {
-        name: pa.float64() if dtype.kind == "f" else pa.from_numpy_dtype(dtype)
-        for name, dtype in zip(names, dtypes, strict=True)
+        name: pa.string()
+        if length
+        else (pa.float64() if dtype.kind == "f" else pa.from_numpy_dtype(dtype))
+        for name, dtype, length in zip(names, dtypes, lengths, strict=True)
     }
     table = pa_csv.read_csv(
         io.BytesIO(body.encode("ascii")),
@@ -204,9 +238,40 @@ def _parse_rows(body: str, dtypes: list[np.dtype]) -> list[np.ndarray]:
         ),
     )
     return [
-        table.column(name).to_numpy(zero_copy_only=False).astype(dtype, copy=False)
-        for name, dtype in zip(names, dtypes, strict=True)
+        _parse_vectors(table.column(name), dtype, length)
+        if length
+        else table.column(name).to_numpy(zero_copy_only=False).astype(dtype, copy=False)
+        for name, dtype, length in zip(names, dtypes, lengths, strict=True)
     ]
+
+
+def _parse_vectors(cells, dtype: np.dtype, length: int) -> np.ndarray:
+    """A vector column from its cells (a pyarrow string array of JSON lists).
+
+    Each cell must be ``[`` ``length`` JSON numbers ``]``; the numbers are
+    read as astropy reads them through ``json.loads`` and a cast to ``dtype``
+    (floats through float64, integers exactly).  Anything else (a null, a
+    nested list, a list of another length) raises, and astropy reads the file.
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if len(cells) == 0:
+        raise ValueError("no rows")
+    starts = pc.utf8_slice_codeunits(cells, 0, 1)
+    ends = pc.utf8_slice_codeunits(cells, -1)
+    if not (pc.all(pc.equal(starts, "[")).as_py() and pc.all(pc.equal(ends, "]")).as_py()):
+        raise ValueError("not a JSON list")
+    lists = pc.split_pattern(pc.utf8_slice_codeunits(cells, 1, -1), ",")
+    if not pc.all(pc.equal(pc.list_value_length(lists), length)).as_py():
+        raise ValueError("a list of another length")
+    numbers = pc.list_flatten(lists)
+    valid = pc.all(pc.match_substring_regex(numbers, _JSON_NUMBER)).as_py()
+    if not valid or pc.any(pc.equal(numbers, "-0")).as_py():
+        raise ValueError("not JSON numbers")
+    kind = pa.float64() if dtype.kind == "f" else pa.from_numpy_dtype(dtype)
+    values = pc.cast(numbers, kind).to_numpy(zero_copy_only=False)
+    return values.reshape(len(cells), length).astype(dtype, copy=False)
 
 
 class _Outputter(EcsvOutputter):
