@@ -1305,6 +1305,23 @@ def test_the_runs_own_dask_cluster_is_loopback_only_without_http_routes() -> Non
         cluster.close()
 
 
+def test_the_workers_of_the_runs_own_dask_cluster_do_not_profile_themselves() -> None:
+    """A worker's profiler samples its threads every 10 ms, taking the GIL from the
+    unit computing; the run's cluster serves no dashboard to show it."""
+    pytest.importorskip("distributed")
+    from distributed import Client
+
+    def sampling(dask_worker) -> list[str]:
+        return sorted(set(dask_worker.periodic_callbacks) & {"profile", "profile-cycle"})
+
+    cluster = _executors.start_local_cluster(1)
+    try:
+        with Client(cluster, set_as_default=False, security=cluster.security) as client:
+            assert list(client.run(sampling).values()) == [[]]
+    finally:
+        cluster.close()
+
+
 def test_idle_workers_of_the_runs_own_cluster_are_ended_and_not_started_again() -> None:
     """Closing the cluster would wait up to 4 s for each worker to exit; the run
     kills its idle workers instead, and their nannies must not start them again."""

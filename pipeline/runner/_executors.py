@@ -626,9 +626,24 @@ def end_idle_workers(cluster) -> None:
             os.kill(pid, signal.SIGKILL)
 
 
+#: dask settings of the cluster a run starts for itself (its workers get them
+#: from their nannies): no HTTP routes, and none of the workers' sampling of
+#: their own threads, which takes the GIL from the unit computing (every 10 ms
+#: for the statistical profile, every 1 ms for the GIL contention metric when
+#: ``gilknocker`` is installed) for diagnostics that no one reads, as the
+#: cluster serves no dashboard.
+CLUSTER_SETTINGS = {
+    "distributed.scheduler.http.routes": [],
+    "distributed.worker.http.routes": [],
+    "distributed.worker.profile.enabled": False,
+    "distributed.admin.system-monitor.gil.enabled": False,
+}
+
+
 def start_local_cluster(workers: int):
     """A ``distributed.LocalCluster`` for one run: loopback only, no HTTP routes, TLS if possible.
 
+    Its workers do not profile themselves (see :data:`CLUSTER_SETTINGS`).
     Returns the cluster; its ``security`` is the per-run TLS setting
     (``Security.temporary()``, which needs the ``cryptography`` package), or
     None without it.
@@ -644,8 +659,7 @@ def start_local_cluster(workers: int):
             "dask: no per-run TLS certificate (install 'cryptography' for one); the run's "
             "scheduler listens on 127.0.0.1 without authentication"
         )
-    no_routes = {"distributed.scheduler.http.routes": [], "distributed.worker.http.routes": []}
-    with dask.config.set(no_routes):
+    with dask.config.set(CLUSTER_SETTINGS):
         cluster = distributed.LocalCluster(
             n_workers=workers,
             threads_per_worker=1,
