@@ -654,9 +654,28 @@ def test_pool_workers_warm_up_in_the_background_and_a_unit_waits_for_its_stage(
     assert product_hashes(config) == product_hashes(_reference(tmp_path))
 
 
+def test_a_run_of_one_unit_at_a_time_warms_up_in_this_process(tmp_path, monkeypatch):
+    """With one unit at a time the local pool's units run in this process, which warms
+    up as a worker does: in a thread, a unit of ``scale`` waiting for its share."""
+    make_config, _ = toy_night(tmp_path, WARM_GRAPH)
+    warmed = tmp_path / "warmed"
+    warmed.mkdir()
+    monkeypatch.setenv("ZDRIFT_TOY_WARM_DIR", str(warmed))
+    assert run_night(make_config()).ok  # serial, which does not warm up: the block index
+    assert not list(warmed.iterdir())
+    config = make_config("run.executor=local", "run.workers=2")
+    assert run_night(config, stretches={1}, force=True).ok
+    ended = float((warmed / str(os.getpid())).read_text())
+    record = sidecars(config)["scale/s0001"]
+    assert record["pid"] == os.getpid()
+    assert datetime.datetime.fromisoformat(record["started"]).timestamp() >= ended
+    assert product_hashes(config) == product_hashes(_reference(tmp_path))
+
+
 def test_a_run_starts_no_more_workers_than_it_has_units_to_run_at_once(toy, tmp_path, monkeypatch):
-    """A night of one stretch, one selected stretch or night-scoped stages only run
-    in one worker; new raw files may bring more stretches than the stored index."""
+    """A run of one unit at a time (one stretch, one selected stretch, night-scoped
+    stages only) starts no worker: its units run in this process.  New raw files may
+    bring more stretches than the stored index."""
     make_config, _ = toy
     started = []
     pool = _executors.ProcessPoolExecutor
@@ -665,28 +684,36 @@ def test_a_run_starts_no_more_workers_than_it_has_units_to_run_at_once(toy, tmp_
         started.append(max_workers)
         return pool(max_workers=max_workers, **kwargs)
 
+    def pid(config, unit: str) -> int:
+        """The process the unit ('stage/unit') ran in."""
+        return sidecars(config)[unit]["pid"]
+
     monkeypatch.setattr(_executors, "ProcessPoolExecutor", recording_pool)
     assert run_night(make_config()).ok  # serial: the block index, 4 stretches
     config = make_config("run.executor=local", "run.workers=3")
     for selection, workers in [
         ({}, 3),  # 4 stretches
-        ({"stretches": {1}}, 1),
+        ({"stretches": {1}}, 0),
         ({"stretches": {0, 2}}, 2),
-        ({"stage": "total"}, 1),  # night-scoped: one unit at a time
+        ({"stage": "total"}, 0),  # night-scoped: one unit at a time
     ]:
         assert run_night(config, force=True, **selection).ok
-        assert started.pop() == workers, selection
+        assert (started.pop() if started else 0) == workers, selection
+    here = {key for key, record in sidecars(config).items() if record["pid"] == os.getpid()}
+    assert {"scale/s0001", "total/night"} <= here  # one unit at a time
+    assert not {"scale/s0000", "scale/s0002"} & here  # two: in workers
     # 110-row stretches: the 100 rows make one, and a fifth block of 25 rows two
     config = make_config("run.executor=local", "run.workers=2", "run.stretch_rows=110")
     assert run_night(config, force=True).ok
-    assert started.pop() == 1
-    for n_blocks, selection, workers in [(5, {}, 2), (6, {"stretches": {0}}, 1)]:
+    assert not started and pid(config, "scale/s0000") == os.getpid()
+    for n_blocks, selection, workers in [(5, {}, 2), (6, {"stretches": {0}}, 0)]:
         shutil.rmtree(tmp_path / "raw")
         write_raw_night(tmp_path / "raw", n_blocks=n_blocks)
         report = run_night(config, **selection)
-        assert report.ok and report.count("ran") == 2 + 2 * workers, report.format()
+        assert report.ok and report.count("ran") == 2 + 2 * max(workers, 1), report.format()
         # the index was stale: the stretches were not known, the selection bounds them
-        assert started.pop() == workers, selection
+        assert (started.pop() if started else 0) == workers, selection
+    assert pid(config, "scale/s0000") == os.getpid()  # the last run's one stretch
 
 
 # --------------------------------------------------------------------------- lock

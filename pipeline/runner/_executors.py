@@ -16,8 +16,13 @@ stopping the batch.
   run plans as it starts, see :meth:`LocalPoolExecutor.warm`; the libraries a
   stage computes with are imported by its functions, when a unit of it first
   runs there), and reused by later stages of the run.  It has no more
-  workers than the run has units to run at once (:meth:`Executor.fit`): a
-  night of one stretch runs in one worker.  When the run ends
+  workers than the run has units to run at once (:meth:`Executor.fit`).  A
+  run with one unit at a time (a night of one stretch, night-scoped stages
+  only, one worker) runs its units in this process instead, as ``serial``
+  does, with the warm-up in a thread of this process: a worker would cost a
+  second interpreter's start and imports (about 0.4 s of CPU, on the run's
+  critical path) and run nothing alongside; such a run gives up the pool's
+  isolation (a unit that kills its process ends the run).  When the run ends
   with no unit in progress, the idle workers are terminated rather than
   waited for: a worker's interpreter takes seconds to exit with the
   libraries it loaded, and it has nothing left to write.
@@ -261,8 +266,9 @@ class Executor:
         """Start no more workers than ``units_at_once`` (None: not known, all of them).
 
         Called before the first batch by the run that made this executor; a
-        night of one stretch then runs in one worker instead of paying the
-        start-up of several, which have nothing to do but compete for cores.
+        night of two stretches then runs in two workers instead of paying the
+        start-up of more, which have nothing to do but compete for cores, and
+        the local pool runs a night of one stretch in this process.
         """
 
     def flow(
@@ -316,15 +322,32 @@ class LocalPoolExecutor(Executor):
         self._futures: list = []
         self._starting = threading.Lock()  # several nights' runs may share the pool
         self._size = workers  # workers to start: at most ``workers``, see fit()
+        self.remote = True  # False: one unit at a time, run in this process (fit())
+        self._warming = False  # whether this process warms up (when not remote)
 
     def warm(self, modules: Sequence[str], plan: WarmPlan = ()) -> None:
         self._modules, self._plan = tuple(modules), tuple(plan)
 
     def fit(self, units_at_once: int | None) -> None:
         if self._pool is None:
-            self._size = _fitted(self.workers, units_at_once)
+            if self.workers <= 1 or (units_at_once is not None and units_at_once <= 1):
+                self._size, self.remote = 1, False  # see the module docstring
+                log.info("one unit at a time: the units run in this process, not in a worker")
+            else:
+                self._size = _fitted(self.workers, units_at_once)
+
+    def _here(self) -> None:
+        """Before units run in this process: start its warm-up (once)."""
+        if not self._warming:
+            self._warming = True
+            start_warming(self._plan)
 
     def map(self, fn, tasks, on_error) -> Iterator[Outcome]:
+        if not self.remote:
+            if tasks:
+                self._here()
+            yield from super().map(fn, tasks, on_error)
+            return
         # When a worker dies (killed, out of memory) the whole pool breaks and
         # every unfinished task fails with it.  Those tasks are retried one at
         # a time in a fresh pool, so only a task that kills its worker by
@@ -366,6 +389,11 @@ class LocalPoolExecutor(Executor):
             self.close()
 
     def flow(self, fn, tasks, on_error, on_done, key=None) -> None:
+        if not self.remote:
+            if tasks:
+                self._here()
+            super().flow(fn, tasks, on_error, on_done, key)
+            return
         ready, pending, caught = list(tasks), {}, []
         while ready or pending or caught:
             if caught and not pending:  # the pool broke: each task it held again, alone
