@@ -66,7 +66,7 @@ from pipeline.runner import (
 from pipeline.runner._lock import RunLock
 from pipeline.runner._night import NightStore
 from pipeline.runner._rawio import read_rows
-from pipeline.runner._store import read_products, read_sidecar, write_products
+from pipeline.runner._store import SIDECAR_NAME, read_products, read_sidecar, write_products
 from pipeline.runner._unit import execute_unit
 from pipeline.stages.base import (
     NEIGHBOURS,
@@ -670,6 +670,14 @@ def test_a_run_of_one_unit_at_a_time_warms_up_in_this_process(tmp_path, monkeypa
     assert record["pid"] == os.getpid()
     assert datetime.datetime.fromisoformat(record["started"]).timestamp() >= ended
     assert product_hashes(config) == product_hashes(_reference(tmp_path))
+    # the warm-up of stages whose units are up to date goes on after the last unit
+    # ran; the run waits for it (a load in it may hold astropy offline meanwhile)
+    for path in warmed.iterdir():
+        path.unlink()
+    (night_dir(config) / "index/night" / SIDECAR_NAME).unlink()  # index again: the same
+    report = run_night(config, stretches={1})
+    assert report.ok and report.count("ran") == 1, report.format()
+    assert (warmed / str(os.getpid())).exists()
 
 
 def test_a_run_starts_no_more_workers_than_it_has_units_to_run_at_once(toy, tmp_path, monkeypatch):

@@ -323,7 +323,7 @@ class LocalPoolExecutor(Executor):
         self._starting = threading.Lock()  # several nights' runs may share the pool
         self._size = workers  # workers to start: at most ``workers``, see fit()
         self.remote = True  # False: one unit at a time, run in this process (fit())
-        self._warming = False  # whether this process warms up (when not remote)
+        self._warming: threading.Thread | bool = False  # this process's warm-up (not remote)
 
     def warm(self, modules: Sequence[str], plan: WarmPlan = ()) -> None:
         self._modules, self._plan = tuple(modules), tuple(plan)
@@ -338,9 +338,8 @@ class LocalPoolExecutor(Executor):
 
     def _here(self) -> None:
         """Before units run in this process: start its warm-up (once)."""
-        if not self._warming:
-            self._warming = True
-            start_warming(self._plan)
+        if self._warming is False:
+            self._warming = start_warming(self._plan) or True
 
     def map(self, fn, tasks, on_error) -> Iterator[Outcome]:
         if not self.remote:
@@ -450,6 +449,11 @@ class LocalPoolExecutor(Executor):
         return self._pool
 
     def close(self) -> None:
+        if isinstance(self._warming, threading.Thread):
+            # Its loads may change astropy's settings for a while (offline, see
+            # pipeline._offline): the run does not end before they are restored.
+            self._warming.join()
+            self._warming = True
         if self._pool is not None:
             if all(future.done() for future in self._futures):
                 # Idle workers: end them now instead of waiting for their exit.
