@@ -74,6 +74,13 @@ def test_seam_stars_are_measured_whole_and_listed_once(seam_night):
     assert any("DetectWarning: no source above" in w for w in warnings)
     seeing = open_product(config, "catalog", "night", "seeing")
     assert sorted(set(seeing["stretch"].tolist())) == [0, 1, 2, 3]
+    # The night records detect's settings once, as each stretch did (astrometry
+    # measures again with them), and no one stretch's seeing as the night's.
+    stretch = open_product(config, "detect", 0, "catalog")
+    assert catalog.meta["aperture_radii_fwhm"] == stretch.meta["aperture_radii_fwhm"]
+    assert catalog.meta["detect_options"] == stretch.meta["detect_options"]
+    assert DetectOptions(**catalog.meta["detect_options"]) == DetectOptions()
+    assert "seeing_fwhm" not in catalog.meta
     # An unchanged night reruns nothing.
     again = run_night(config)
     assert again.ok and again.count("ran") == 0
@@ -190,3 +197,30 @@ def test_the_stage_lets_detect_reuse_its_padded_planes(seam_night, monkeypatch):
     assert len(catalogs[0]) == 1
     for name in catalogs[0].colnames:
         assert np.array_equal(catalogs[0][name], catalogs[1][name], equal_nan=True), name
+
+
+def test_the_night_catalogue_keeps_the_metadata_its_stretches_share():
+    from astropy.table import QTable, Table
+
+    from pipeline.stages.catalog import stack_catalogs
+
+    def stretch(seeing_fwhm):
+        table = QTable({"x": [1.0, 2.0]})
+        table.meta.update(
+            aperture_radii_fwhm=[1.0, 2.0, 3.0],
+            detect_options={"aperture_radii": [1.0, 2.0, 3.0], "fwhm_guess": 3.0},
+            flag_bits={"SATURATED": 1},
+            seeing_fwhm=seeing_fwhm,
+        )
+        return table
+
+    night, seeing = stack_catalogs(
+        [stretch(2.70), stretch(2.72), stretch(2.71)], [Table({"stretch": [i]}) for i in range(3)]
+    )
+    assert len(night) == 6 and len(seeing) == 3
+    # astropy's vstack joins list metadata (nine radii here): each is kept once
+    assert night.meta["aperture_radii_fwhm"] == [1.0, 2.0, 3.0]
+    assert night.meta["detect_options"] == {"aperture_radii": [1.0, 2.0, 3.0], "fwhm_guess": 3.0}
+    assert night.meta["flag_bits"] == {"SATURATED": 1}
+    assert "seeing_fwhm" not in night.meta  # per stretch: in the seeing table
+    assert "merge_rule" in night.meta

@@ -8,6 +8,11 @@ night-scoped step stacks them, in stretch order, into the night catalogue,
 and the stretches' seeing tables into the night's seeing table.  It reads
 tables only, one stretch at a time; what it holds grows with the number of
 sources (about 0.3 kB each), not with the images.
+
+The night catalogue's metadata is what every stretch catalogue records
+alike (detect's options, flag bits, aperture radii); a value that differs
+between stretches (each stretch's fitted ``seeing_fwhm``) is left out, the
+night's seeing table holding it per stretch.
 """
 
 from __future__ import annotations
@@ -15,13 +20,14 @@ from __future__ import annotations
 import logging
 from collections.abc import Sequence
 
+import numpy as np
 from astropy.table import QTable, Table, vstack
 from pydantic import BaseModel, ConfigDict
 
 from pipeline.stages.base import Stage
 from pipeline.stages.detect._night import MERGE_RULE
 
-__all__ = ["STAGE", "CatalogOptions", "stack_catalogs"]
+__all__ = ["STAGE", "CatalogOptions", "common_meta", "stack_catalogs"]
 
 log = logging.getLogger(__name__)
 
@@ -61,8 +67,36 @@ def stack_catalogs(catalogs: Sequence[QTable], seeing: Sequence[Table]) -> tuple
             f"one; got {len(catalogs)} and {len(seeing)}."
         )
     night = vstack(list(catalogs), metadata_conflicts="silent")
+    # vstack merges metadata by joining lists and dicts (32 stretches' three
+    # aperture radii become 96): the night keeps only what all stretches share.
+    night.meta = common_meta([c.meta for c in catalogs])
     night.meta["merge_rule"] = MERGE_RULE
-    return night, vstack(list(seeing), metadata_conflicts="silent")
+    seeing_table = vstack(list(seeing), metadata_conflicts="silent")
+    seeing_table.meta = common_meta([s.meta for s in seeing])
+    return night, seeing_table
+
+
+def common_meta(metas: Sequence[dict]) -> dict:
+    """The items of the first of ``metas`` that every other one holds with an equal value.
+
+    Values are compared whole (a nested list or dict equal item by item), so
+    a night of stretches measured alike keeps each recorded setting as one
+    stretch recorded it.
+    """
+    first, *others = metas
+    return {
+        key: value
+        for key, value in first.items()
+        if all(key in other and _equal(other[key], value) for other in others)
+    }
+
+
+def _equal(a, b) -> bool:
+    """Whether two metadata values are equal (NaN equal to NaN; arrays item by item)."""
+    try:
+        return bool(np.array_equal(a, b, equal_nan=True))
+    except TypeError:  # not numbers: nested dicts, strings
+        return a == b
 
 
 def _run(*, inputs, options: CatalogOptions, context) -> dict:
@@ -85,5 +119,8 @@ STAGE = Stage(
     scope="night",
     uses=(),
     partial_inputs=True,
+    # 2: the night catalogue's metadata is what its stretches share (vstack
+    #    joined their lists: 96 aperture radii for 32 stretches)
+    version=2,
     description="The night's source catalogue and seeing table, from detect's stretches.",
 )
