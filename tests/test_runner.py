@@ -44,6 +44,7 @@ from astropy.table import QTable, Table
 import pipeline.runner._executors as _executors
 import pipeline.runner._lock as _lock
 import pipeline.runner._store as _store
+import pipeline.runner._warm as _warm
 import pipeline.stages.base as base
 from pipeline.config import config_from_mapping
 from pipeline.exceptions import (
@@ -679,6 +680,32 @@ def test_a_run_of_one_unit_at_a_time_warms_up_in_this_process(tmp_path, monkeypa
     report = run_night(config, stretches={1})
     assert report.ok and report.count("ran") == 1, report.format()
     assert (warmed / str(os.getpid())).exists()
+
+
+def test_a_worker_freezes_its_objects_for_the_collector_once_warm(monkeypatch):
+    """Between units, a worker whose warm-up is done freezes what it holds (once):
+    later full collections skip the libraries' objects.  Not before the warm-up
+    ends, and not in a process that did not ask (the run's own)."""
+    import threading
+
+    frozen: list[str] = []
+    monkeypatch.setattr(_warm.gc, "collect", lambda: frozen.append("collect"))
+    monkeypatch.setattr(_warm.gc, "freeze", lambda: frozen.append("freeze"))
+    ready = {"scale": threading.Event(), "sum": threading.Event()}
+    monkeypatch.setattr(_warm, "_READY", ready)
+    monkeypatch.setattr(_warm, "_SETTLE", {"wanted": True, "done": False})
+    ready["scale"].set()
+    assert not _warm.settle_after_warm() and frozen == []  # "sum" still loading
+    ready["sum"].set()
+    assert _warm.settle_after_warm() and frozen == ["collect", "freeze"]
+    assert not _warm.settle_after_warm() and len(frozen) == 2  # once
+    monkeypatch.setattr(_warm, "_SETTLE", {"wanted": False, "done": False})
+    assert not _warm.settle_after_warm() and len(frozen) == 2
+    # a pool or dask worker asks for it as it starts; the run's process does not
+    asked = []
+    monkeypatch.setattr(_executors, "start_warming", lambda plan, **kw: asked.append(kw))
+    _executors.prepare_worker((), ())
+    assert asked == [{"settle": True}]
 
 
 def test_a_run_starts_no_more_workers_than_it_has_units_to_run_at_once(toy, tmp_path, monkeypatch):

@@ -236,7 +236,7 @@ def prepare_worker(modules: Sequence[str], plan: WarmPlan) -> None:
         with contextlib.suppress(Exception):
             importlib.import_module(module)
     configure_offline()
-    start_warming(plan)
+    start_warming(plan, settle=True)
 
 
 def _start_worker(parent_pid: int, modules: Sequence[str], plan: WarmPlan = ()) -> None:
