@@ -423,6 +423,52 @@ def test_positions_fluxes_and_errors_on_smeared_field(field):
         assert cat[name].unit is not None
 
 
+@pytest.mark.parametrize("background", [True, False])
+def test_a_fit_ends_unconverged_at_its_evaluation_cap(background):
+    # A star started 3.6 px from its place: position steps are capped at 1 px
+    # (fit_stars' documented rule), so the fit needs at least 4 evaluations;
+    # capped at 2 it ends unconverged, uncapped it reaches the truth.  With a
+    # background the compiled loop fits, without it the Python loop.
+    profile = SeeingProfile(3.0)
+    image = model_image((32, 40), 20.3, 15.7, *POINT, profile, 1.0e4) + (
+        50.0 if background else 0.0
+    )
+    variance = image + 10.0
+    args = (image, variance, [16.7], [15.7], [POINT], profile)
+    capped = fit_stars(*args, fit_background=background, max_evaluations=2)
+    assert not capped.success
+    fit = fit_stars(*args, fit_background=background)
+    assert fit.success
+    # Noise-free: the optimum is the truth to the optimizer's tolerance.
+    assert fit.x[0] == pytest.approx(20.3, abs=1e-5)
+
+
+def test_split_trials_are_capped_and_still_split_a_pair(monkeypatch):
+    # Every two-source trial of split_pair stops at SPLIT_MAX_EVALUATIONS (a
+    # trial on one star creeps along a degenerate valley for hundreds), and a
+    # pair 1.5 FWHM apart along the smear is still split into its two stars.
+    fwhm = 3.2
+    scene = render_scene([100.0, 100.0 + 1.5 * fwhm], [40.0, 40.0], [6.0e4, 3.0e4],
+                         shape=(80, 200), x_start=0, seed=3, fwhm=fwhm)  # fmt: skip
+    caps = []
+    fit_stars_ = _model.fit_stars
+
+    def recording(*args, **kwargs):
+        if len(args[2]) == 2:
+            caps.append(kwargs.get("max_evaluations"))
+        return fit_stars_(*args, **kwargs)
+
+    monkeypatch.setattr(_model, "fit_stars", recording)
+    centre = (100.0 + 0.5 * fwhm, 40.0)
+    halves, _gain = _measure.split_pair(
+        scene.image, scene.variance, [centre], 0, KernelGrid(scene.kernels), SeeingProfile(fwhm)
+    )
+    assert caps and all(c == _measure.SPLIT_MAX_EVALUATIONS for c in caps), caps
+    # The brighter half first; 0.3 px: a few position errors at S/N > 100 in
+    # a blend (the fainter half's error along the smear is ~0.05 px).
+    np.testing.assert_allclose(halves, [(100.0, 40.0), (100.0 + 1.5 * fwhm, 40.0)], atol=0.3)
+
+
 def test_close_pairs_are_both_found_and_measured():
     # Pairs 1.5 FWHM apart with a flux ratio of 5, along and across the smear.
     fwhm = 3.2

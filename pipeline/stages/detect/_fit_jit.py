@@ -162,8 +162,9 @@ def _units(p, x_first, nx, y_first, ny, dx, dy, bounds, sigmas, weights, respons
 
 @numba.njit(cache=True, nogil=True)
 def fit_compiled(
-    d, sw, x_first, nx, y_first, ny, x, y, dx, dy, bounds, sigmas, weights, responses, erf, gauss
-):
+    d, sw, x_first, nx, y_first, ny, x, y, dx, dy, bounds, sigmas, weights, responses, erf, gauss,
+    max_evaluations,
+):  # fmt: skip
     """Fit a background and flux, x and y of each of ``n`` stars; see ``fit_stars``.
 
     Parameters
@@ -184,6 +185,10 @@ def fit_compiled(
     responses : ndarray, shape (n, 3)
         Per star, rectify's lattice offsets along x and y and the row step
         (-1, -1, 0: neither resampling nor clocking top-hat).
+    max_evaluations : int
+        Most model evaluations after the start (``fit_stars``'
+        ``max_evaluations``); a fit that has not converged by then ends with
+        status 0.
 
     Returns
     -------
@@ -228,7 +233,7 @@ def fit_compiled(
     r, jac = _assemble(p, d, sw, units, units_x, units_y)
     chi2 = float(np.sum(r * r))
     lam = 1e-3
-    for _ in range(100 * size):
+    for _ in range(max_evaluations):
         h, g = _normal(jac, r)
         damped = h.copy()
         for i in range(size):

@@ -556,6 +556,16 @@ SPLIT_CHI2 = 25.0
 #: along a 16 px track of 4 px seeing can be 4 FWHM apart and look like one);
 #: each half may move a FWHM from its start, so the steps leave no gap.
 SPLIT_SEPARATIONS = (0.75, 1.5, 2.5, 3.5)
+#: Most model evaluations of one split trial (a fit of 7 parameters).  A trial
+#: on a pair converges in a few steps; on one star the two halves creep along
+#: the valley of a degenerate fit (hundreds of evaluations, up to 0.1 s each
+#: trial) to an end that fails the :data:`SPLIT_CHI2` test or that another
+#: separation reaches faster.  On a crowded 1035 x 4096 stretch (68 trials of
+#: 17 sources) the trials that passed took 4 to 33 evaluations, except four
+#: (46 to 176) whose sources another separation split with the same
+#: chi-square in 33 or fewer; the trials beyond 50 took 40 % of all trials'
+#: evaluations.  A trial not converged by then is no pair.
+SPLIT_MAX_EVALUATIONS = 50
 
 
 def split_pair(
@@ -577,7 +587,8 @@ def split_pair(
     other members' models held and subtracted, member ``which`` is fitted as
     two sources started symmetrically about it along the major axis of its
     residual's quadrupole (see :func:`residual_quadrupole`), at each of
-    :data:`SPLIT_SEPARATIONS`.  The best split is kept when it
+    :data:`SPLIT_SEPARATIONS`, each trial with at most
+    :data:`SPLIT_MAX_EVALUATIONS` evaluations.  The best split is kept when it
     lowers the chi-square by more than :data:`SPLIT_CHI2` times its reduced
     chi-square, both halves have a positive flux of S/N >= ``min_snr``, and
     they end at least half a FWHM apart (closer, two sources only widen the
@@ -650,6 +661,7 @@ def split_pair(
             origin=(y0, x0),
             noise_correlation=noise_correlation,
             responses=[resp[which]] * 2,
+            max_evaluations=SPLIT_MAX_EVALUATIONS,
         )
         if not two.success:
             continue

@@ -487,6 +487,7 @@ def fit_stars(
     noise_correlation: float = 1.0,
     fit_background: bool = True,
     responses: list[Response | None] | None = None,
+    max_evaluations: int | None = None,
 ) -> FitResult:
     """Least-squares fit of flux, position and background of stars on a stamp.
 
@@ -511,6 +512,10 @@ def fit_stars(
     responses : list of (Response or None), optional
         Rectify's resampling and the clocking top-hat at each star (their
         lattice offsets are those of the full image: ``origin`` is integer).
+    max_evaluations : int or None
+        Most model evaluations after the start; a fit not converged by then
+        ends unconverged (``success`` False).  None: ``100`` per parameter,
+        MINPACK's default for an analytic Jacobian.
 
     Returns
     -------
@@ -530,8 +535,12 @@ def fit_stars(
     sigmas, weights = profile.mixture()
     nb = 1 if fit_background else 0
     responses = [None] * n if responses is None else list(responses)
+    if max_evaluations is None:
+        max_evaluations = 100 * (nb + 3 * n)
     if nb and n:
-        compiled = _fit_one(d, sw, origin, (ny, nx), x, y, kernels, sigmas, weights, responses)
+        compiled = _fit_one(
+            d, sw, origin, (ny, nx), x, y, kernels, sigmas, weights, responses, max_evaluations
+        )
         if compiled is not None:
             p, jac, units, chi2_sum, success = compiled
             return _fit_result(p, jac, units, chi2_sum, success, n_good, nb, noise_correlation)
@@ -578,12 +587,12 @@ def fit_stars(
         p[0] = coef[0]
     p[nb::3] = np.maximum(coef[nb:], 1e-3 * np.abs(coef[nb:]).max() + 1e-6)
     p, jac, units, chi2_sum, success = _levenberg_marquardt(
-        evaluate, p, nb, n, first=assemble(p, start)
+        evaluate, p, nb, n, first=assemble(p, start), max_evaluations=max_evaluations
     )
     return _fit_result(p, jac, units, chi2_sum, success, n_good, nb, noise_correlation)
 
 
-def _fit_one(d, sw, origin, shape, x, y, kernels, sigmas, weights, responses):
+def _fit_one(d, sw, origin, shape, x, y, kernels, sigmas, weights, responses, max_evaluations):
     """The stars and a background fitted in one compiled call; None to fit in Python.
 
     :func:`~pipeline.stages.detect._fit_jit.fit_compiled` takes the same
@@ -621,6 +630,7 @@ def _fit_one(d, sw, origin, shape, x, y, kernels, sigmas, weights, responses):
         np.array([_response_row(r) for r in responses]),
         _ERF_TABLE,
         _GAUSS_TABLE,
+        int(max_evaluations),
     )
     return None if status < 0 else (p, jac, list(units), chi2, status == 1)
 
@@ -650,7 +660,7 @@ def _fit_result(p, jac, units, chi2_sum, success, n_good, nb, noise_correlation)
     )
 
 
-def _levenberg_marquardt(evaluate, p, nb, n, first=None):
+def _levenberg_marquardt(evaluate, p, nb, n, first=None, max_evaluations=None):
     """Damped Gauss-Newton steps from ``p`` until the step is statistically nothing.
 
     ``evaluate(p)`` returns the weighted residual, the weighted Jacobian and
@@ -666,7 +676,8 @@ def _levenberg_marquardt(evaluate, p, nb, n, first=None):
     by less than 1e-8 of it also ends the fit (MINPACK's ``ftol``: a degenerate
     fit, e.g. two sources on one star, creeps along a valley).  Position steps are
     capped at 1 px so a poor start cannot throw a star far away.  At most
-    ``100 (p.size)`` evaluations, MINPACK's default for an analytic Jacobian.
+    ``max_evaluations`` evaluations (None: ``100 (p.size)``, MINPACK's
+    default for an analytic Jacobian).
 
     Returns
     -------
@@ -675,7 +686,7 @@ def _levenberg_marquardt(evaluate, p, nb, n, first=None):
     r, jac, models = evaluate(p) if first is None else first
     chi2 = float(r @ r)
     lam = 1e-3
-    for _ in range(100 * p.size):
+    for _ in range(100 * p.size if max_evaluations is None else max_evaluations):
         h = jac.T @ jac
         g = jac.T @ r
         try:
