@@ -276,6 +276,28 @@ def test_kernel_grid_responses_are_its_response_to_the_bit():
     assert KernelGrid(kernel_table(64, 0, 64, 4.0, 1.0)).responses(x[:3], y[:3]) == [None] * 3
 
 
+def test_kernels_looked_up_at_once_are_those_looked_up_one_by_one():
+    # The batched lookup and reduction measure_groups uses against the
+    # point-by-point ones (KernelGrid.__call__, then reduce_kernel): the same
+    # floats, exactly, at recorded rows and columns, between them and beyond
+    # both ends; the extents are the reduced samples' largest |dx|, |dy|.
+    table = kernel_table(256, 100, 400, 12.0, 2.0)
+    grid = KernelGrid(table)
+    rng = np.random.default_rng(4)
+    x = np.concatenate([[100.0, 299.5, 499.0, 50.0, 600.0], rng.uniform(90, 510, 200)])
+    y = np.concatenate([[0.0, 32.0, 255.0, -5.0, 300.0], rng.uniform(-10, 270, 200)])
+    spacing = KERNEL_SPACING * 3.2
+    kernels, extents = _measure._reduced_kernels(grid, 0, x, y, spacing, point=False)
+    for a, b, (kx, ky), (ex, ey) in zip(x, y, kernels, extents, strict=True):
+        one_x, one_y = reduce_kernel(*grid(a, b), spacing)
+        np.testing.assert_array_equal(kx, one_x)
+        np.testing.assert_array_equal(ky, one_y)
+        assert (ex, ey) == (np.max(np.abs(one_x)), np.max(np.abs(one_y)))
+    many_x, many_y = grid.many(x, y)
+    np.testing.assert_array_equal(many_x[7], grid(x[7], y[7])[0])
+    assert grid.extents(x, y)[1][7] == np.max(np.abs(many_y[7]))
+
+
 def test_reduced_kernel_keeps_the_mean_and_the_extent():
     dx, dy = smear_track([500.0], 512, 64, 12.0, 2.0)
     rx, ry = reduce_kernel(dx[0], dy[0], 0.5)

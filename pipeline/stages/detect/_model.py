@@ -313,28 +313,40 @@ class KernelGrid:
         t = min(max(float((y - ys[k]) / (ys[k + 1] - ys[k])), 0.0), 1.0)
         return (1 - t) * dx[k] + t * dx[k + 1], (1 - t) * dy[k] + t * dy[k + 1]
 
-    def extents(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Largest ``|dx|`` and ``|dy|`` of the kernels at many positions, pixels, shape (n,) each.
+    def many(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The kernels of :meth:`__call__` at many positions, shape (n, K) each.
 
-        The same kernels as :meth:`__call__` (nearest column, linear in
-        ``y``), for all positions in one pass: 0.02 s instead of 0.15 s for
-        3000 positions.
+        The same samples to the bit (nearest column, the same linear
+        interpolation in ``y``), in a few array operations per recorded
+        column instead of ~10 numpy calls per position.
         """
         x = np.atleast_1d(np.asarray(x, dtype=float))
         y = np.atleast_1d(np.asarray(y, dtype=float))
-        hx, hy = np.empty(x.size), np.empty(x.size)
+        size = self._rows[0][1].shape[1]
+        out_x, out_y = np.empty((x.size, size)), np.empty((x.size, size))
+        if x.size == 0:
+            return out_x, out_y
         nearest = np.argmin(np.abs(self.columns[:, None] - x[None, :]), axis=0)
         for c in np.unique(nearest):
             sel = np.flatnonzero(nearest == c)
             ys, dx, dy = self._rows[c]
             if ys.size == 1:
-                hx[sel], hy[sel] = np.max(np.abs(dx[0])), np.max(np.abs(dy[0]))
+                out_x[sel], out_y[sel] = dx[0], dy[0]
                 continue
             k = np.clip(np.searchsorted(ys, y[sel]) - 1, 0, ys.size - 2)
             t = np.clip((y[sel] - ys[k]) / (ys[k + 1] - ys[k]), 0.0, 1.0)[:, None]
-            hx[sel] = np.max(np.abs((1 - t) * dx[k] + t * dx[k + 1]), axis=1)
-            hy[sel] = np.max(np.abs((1 - t) * dy[k] + t * dy[k + 1]), axis=1)
-        return hx, hy
+            out_x[sel] = (1 - t) * dx[k] + t * dx[k + 1]
+            out_y[sel] = (1 - t) * dy[k] + t * dy[k + 1]
+        return out_x, out_y
+
+    def extents(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Largest ``|dx|`` and ``|dy|`` of the kernels at many positions, pixels, shape (n,) each.
+
+        The kernels of :meth:`many`: 0.02 s instead of 0.15 s for 3000
+        positions looked up one by one.
+        """
+        dx, dy = self.many(x, y)
+        return np.max(np.abs(dx), axis=1, initial=0.0), np.max(np.abs(dy), axis=1, initial=0.0)
 
 
 def _interp_each(x: np.ndarray, xp: np.ndarray, fp: np.ndarray) -> np.ndarray:
