@@ -491,6 +491,24 @@ def test_split_trials_are_capped_and_still_split_a_pair(monkeypatch):
     np.testing.assert_allclose(halves, [(100.0, 40.0), (100.0 + 1.5 * fwhm, 40.0)], atol=0.3)
 
 
+def test_fit_errors_are_the_inverse_normal_matrix_diagonal():
+    # Reference: numpy's inverse of J^T J (the covariance of a least-squares
+    # fit, up to the noise-correlation scale); a singular J^T J (two equal
+    # columns) has no errors.
+    from pipeline.stages.detect._fit_jit import errors_compiled
+
+    rng = np.random.default_rng(12)
+    jac = rng.normal(size=(300, 7)) * np.array([1.0, 30.0, 0.1, 5.0, 2.0, 0.5, 8.0])
+    err, ok = errors_compiled(jac, 1.7)
+    assert ok
+    expected = np.sqrt(np.diag(np.linalg.inv(jac.T @ jac)) * 1.7)
+    # 1e-10: two eliminations of a 7 x 7 system of condition ~1e4 differ by
+    # ~1e-16 x 1e4 relative.
+    np.testing.assert_allclose(err, expected, rtol=1e-10)
+    jac[:, 3] = jac[:, 2]
+    assert not errors_compiled(jac, 1.7)[1]
+
+
 def test_close_pairs_are_both_found_and_measured():
     # Pairs 1.5 FWHM apart with a flux ratio of 5, along and across the smear.
     fwhm = 3.2

@@ -23,6 +23,7 @@ import numpy as np
 from pipeline.stages.detect._pixel_gauss_jit import boxed_profiles_compiled, profiles_compiled
 
 __all__ = [
+    "errors_compiled",
     "fit_compiled",
     "model_compiled",
     "reduce_compiled",
@@ -447,3 +448,27 @@ def reduce_many_compiled(dx, dy, spacing):
         out_x[bounds[i] : bounds[i + 1]] = parts_x[i]
         out_y[bounds[i] : bounds[i + 1]] = parts_y[i]
     return out_x, out_y, bounds, extents
+
+
+@numba.njit(cache=True, nogil=True)
+def errors_compiled(jac, scale):
+    """Square roots of the diagonal of ``scale (jac^T jac)^-1``, and False if it is singular.
+
+    ``fit_stars``' errors: numpy's ``inv`` (and its error state) cost
+    ~35 us per fit in call overhead, as much as a small fit's arithmetic;
+    here each column of the inverse is solved by :func:`_solve` (the same
+    partial-pivoting elimination, to rounding).  Negative diagonal values
+    (rounding, for a nearly singular matrix) give 0.
+    """
+    h, _ = _normal(jac, np.zeros(jac.shape[0]))
+    size = h.shape[0]
+    out = np.empty(size)
+    unit = np.zeros(size)
+    for a in range(size):
+        unit[:] = 0.0
+        unit[a] = 1.0
+        column, ok = _solve(h, unit)
+        if not ok:
+            return out, False
+        out[a] = np.sqrt(max(column[a] * scale, 0.0))
+    return out, True

@@ -652,11 +652,11 @@ def _fit_result(p, jac, units, chi2_sum, success, n_good, nb, noise_correlation)
 
     ``n_good``: the number of pixels fitted.
     """
+    from pipeline.stages.detect._fit_jit import errors_compiled
+
     dof = max(int(n_good) - p.size, 1)
-    try:
-        cov = np.linalg.inv(jac.T @ jac) * noise_correlation
-        err = np.sqrt(np.maximum(np.diag(cov), 0.0))
-    except np.linalg.LinAlgError:
+    err, ok = errors_compiled(np.ascontiguousarray(jac, dtype=np.float64), float(noise_correlation))
+    if not ok:  # singular
         err = np.full(p.size, np.nan)
     return FitResult(
         flux=p[nb::3].copy(),
