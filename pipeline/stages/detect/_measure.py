@@ -326,14 +326,16 @@ def measure_groups(
         used, or None).
     """
     names = ("x", "y", "x_err", "y_err", "flux", "flux_err", "background", "chi2", "flags")
-    out: dict[str, list] = {k: [] for k in (*names, "group", "kernel", "response")}
     spacing = KERNEL_SPACING * profile.fwhm
+    # The profile's fields, not the profile, in the keys: its dataclass hash
+    # is a Python call at every look-up of a key.
+    shape = (profile.fwhm, profile.shape, profile.beta)
     splits = [
         list(blended[index]) if blended is not None else [False] * len(members)
         for index, members in enumerate(groups)
     ]
     keys = [
-        (profile, tuple((float(m[0]), float(m[1])) for m in members), tuple(split))
+        (shape, tuple((float(m[0]), float(m[1])) for m in members), tuple(split))
         for members, split in zip(groups, splits, strict=True)
     ]
     # What each source to fit needs from the whole stretch, looked up for all
@@ -343,6 +345,8 @@ def measure_groups(
         grid, x_start, [groups[i] for i in pending], point_kernel, footprints, spacing
     )
     lookups = dict(zip(pending, looked_up, strict=True))
+    all_rows: list[dict] = []
+    group: list[int] = []
     for index, members in enumerate(groups):
         split, key = splits[index], keys[index]
         if memo is None or key not in memo:
@@ -368,16 +372,14 @@ def measure_groups(
                 # ends here again: later passes look the group up instead.
                 memo[key] = rows
                 fitted = tuple((float(r["x"]), float(r["y"])) for r in rows)
-                memo[(profile, fitted, tuple(split))] = rows
-        for row in memo[key] if memo is not None else rows:
-            for name in (*names, "kernel", "response"):
-                out[name].append(row[name])
-            out["group"].append(index)
-    kernels = out.pop("kernel")
-    responses = out.pop("response")
-    result = {k: np.asarray(v) for k, v in out.items()}
-    result["kernel"] = kernels
-    result["response"] = responses
+                memo[(shape, fitted, tuple(split))] = rows
+        got = memo[key] if memo is not None else rows
+        all_rows.extend(got)
+        group.extend([index] * len(got))
+    result = {name: np.asarray([row[name] for row in all_rows]) for name in names}
+    result["group"] = np.asarray(group)
+    result["kernel"] = [row["kernel"] for row in all_rows]
+    result["response"] = [row["response"] for row in all_rows]
     return result
 
 
