@@ -6,8 +6,9 @@ Layout: ``<output_dir>/<night>/<stage>/<unit>/`` holds one file per product
 is a stretch id (``s0003``) or ``night``.
 
 Every file is written to a temporary name in the same folder, flushed to disk
-and renamed over its final name (``os.replace`` is atomic on POSIX and
-Windows), so a reader never sees half a file.  A unit is *done* only when its
+(while its SHA-256 is computed) and renamed over its final name
+(``os.replace`` is atomic on POSIX and Windows), so a reader never sees half
+a file.  A unit is *done* only when its
 sidecar exists, parses and lists product files that exist with the recorded
 sizes; the sidecar is removed before a unit's products are replaced and
 written after all of them, so a run killed at any point leaves the unit either
@@ -22,6 +23,7 @@ import json
 import os
 import uuid
 from collections.abc import Callable, Iterator, Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -106,8 +108,13 @@ def atomic_write(path: Path, write: Callable[[Path], None]) -> tuple[str, int]:
     try:
         write(temp)
         with open(temp, "rb+") as stream:
-            os.fsync(stream.fileno())
-        digest, size = _file_sha256(temp), temp.stat().st_size
+            # The disk flush waits on the device and the digest on the CPU: both
+            # at once, the flush finished before the rename all the same.
+            with ThreadPoolExecutor(1, thread_name_prefix="zdrift-fsync") as flusher:
+                flushed = flusher.submit(os.fsync, stream.fileno())
+                digest = _file_sha256(temp)
+                flushed.result()  # raises the flush's OSError here
+        size = temp.stat().st_size
         os.replace(temp, path)
     finally:
         with contextlib.suppress(FileNotFoundError):
