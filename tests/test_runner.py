@@ -263,6 +263,40 @@ def test_products_round_trip_with_their_types(tmp_path: Path) -> None:
         write_products(tmp_path, {"_x": [1]}, {})
 
 
+def test_a_product_is_on_disk_before_it_takes_its_name(tmp_path: Path, monkeypatch) -> None:
+    """The flush runs beside the digest, but the rename waits for it: a product
+    under its final name has been flushed (its content survives a power cut)."""
+    events, real_fsync, real_replace = [], os.fsync, os.replace
+
+    def slow_fsync(fd: int) -> None:
+        time.sleep(0.2)  # longer than hashing a few bytes: a rename not waiting comes first
+        real_fsync(fd)
+        events.append(("flushed", os.fstat(fd).st_ino))
+
+    def replace(source, target) -> None:
+        events.append(("renamed", os.stat(source).st_ino))
+        real_replace(source, target)
+
+    monkeypatch.setattr(os, "fsync", slow_fsync)
+    monkeypatch.setattr(os, "replace", replace)
+    path = tmp_path / "plane.json"
+    digest, size = _store.atomic_write(path, lambda temp: temp.write_text("[1, 2]\n"))
+    inode = path.stat().st_ino
+    assert events == [("flushed", inode), ("renamed", inode)]
+    assert (digest, size) == (_store.file_digest(path), 7)
+
+
+def test_a_failed_flush_fails_the_write_and_leaves_no_file(tmp_path: Path, monkeypatch) -> None:
+    def failing_fsync(fd: int) -> None:
+        raise OSError(errno.EIO, os.strerror(errno.EIO))
+
+    monkeypatch.setattr(os, "fsync", failing_fsync)
+    path = tmp_path / "plane.json"
+    with pytest.raises(OSError, match=os.strerror(errno.EIO)):
+        _store.atomic_write(path, lambda temp: temp.write_text("[1, 2]\n"))
+    assert list(tmp_path.iterdir()) == []  # neither the product nor its temporary file
+
+
 def test_read_rows_applies_bzero_and_fills_gaps_with_nan(tmp_path: Path) -> None:
     data = (np.arange(20, dtype=np.uint16).reshape(5, 4) + 65000).astype(np.uint16)
     fits.PrimaryHDU(data).writeto(tmp_path / "a.fits")

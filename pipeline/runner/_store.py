@@ -107,13 +107,16 @@ def atomic_write(path: Path, write: Callable[[Path], None]) -> tuple[str, int]:
     temp = path.with_name(f".{path.name}{_TEMP_MARK}{os.getpid()}-{uuid.uuid4().hex[:8]}")
     try:
         write(temp)
-        with open(temp, "rb+") as stream:
-            # The disk flush waits on the device and the digest on the CPU: both
-            # at once, the flush finished before the rename all the same.
-            with ThreadPoolExecutor(1, thread_name_prefix="zdrift-fsync") as flusher:
-                flushed = flusher.submit(os.fsync, stream.fileno())
-                digest = _file_sha256(temp)
-                flushed.result()  # raises the flush's OSError here
+        # The disk flush waits on the device and the digest on the CPU: both at
+        # once, the flush finished before the rename all the same (the pool is
+        # left first, waiting for the flush, while the file is still open).
+        with (
+            open(temp, "rb+") as stream,
+            ThreadPoolExecutor(1, thread_name_prefix="zdrift-fsync") as flusher,
+        ):
+            flushed = flusher.submit(os.fsync, stream.fileno())
+            digest = _file_sha256(temp)
+            flushed.result()  # raises the flush's OSError here
         size = temp.stat().st_size
         os.replace(temp, path)
     finally:
