@@ -4,7 +4,8 @@ A worker that writes a unit's products (:func:`pipeline.runner._store.write_prod
 encodes them, flushes each file to disk, hashes it (SHA-256) and renames it;
 while it flushes or hashes, its core does no stage work.  This script reads the
 products of one stretch of a reduced night (``calibrate`` and ``rectify``, the
-image planes that flow between the per-stretch stages), then writes them again
+image planes that flow between the per-stretch stages; in this machine's byte
+order, as a stage returns them), then writes them again
 into a scratch folder ``--repeat`` times per tree, alternating this tree with
 ``--against OTHER_TREE`` (that tree's ``pipeline`` package first on
 ``PYTHONPATH``; make one with ``git archive REV | tar -x -C DIR``) so that
@@ -34,12 +35,17 @@ STAGES = ("calibrate", "rectify")
 _CHILD = """
 import json, shutil, sys, time
 from pathlib import Path
+from astropy.io import fits
 from pipeline.runner._store import read_products, read_sidecar, write_products
 night, stretch, scratch = Path(sys.argv[1]), sys.argv[2], Path(sys.argv[3])
 out = {}
 for stage in sys.argv[4:]:
     unit = night / stage / stretch
     products = read_products(unit, read_sidecar(unit))
+    for value in products.values():  # planes in this machine's byte order, as a stage's are
+        for hdu in value if isinstance(value, fits.HDUList) else ():
+            if hdu.data is not None and hdu.data.dtype.names is None:
+                hdu.data = hdu.data.astype(hdu.data.dtype.newbyteorder("="))
     target = scratch / stage
     shutil.rmtree(target, ignore_errors=True)
     wall0, cpu0 = time.perf_counter(), time.process_time()

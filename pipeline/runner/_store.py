@@ -191,9 +191,11 @@ def _writer(kind: str, value: Any, cards: Mapping[str, tuple[Any, str]]) -> Call
         hdu = fits.PrimaryHDU(data=value.data, header=_with_cards(value.header, cards))
         return lambda temp: hdu.writeto(temp, output_verify="fix")
     if kind == "hdulist":  # e.g. an image product (pipeline.products): cards on every HDU
-        hdul = fits.HDUList([hdu.copy() for hdu in value])
-        for hdu in hdul:
-            hdu.header = _with_cards(hdu.header, cards)
+        # New HDUs over the stage's planes (not copies of them: a stretch's planes
+        # are tens of MB); only the headers are copied, to take the cards.
+        hdul = fits.HDUList(
+            [type(hdu)(data=hdu.data, header=_with_cards(hdu.header, cards)) for hdu in value]
+        )
         # Born valid: a card astropy would have to fix is the stage's bug.
         return lambda temp: hdul.writeto(temp, output_verify="exception")
     if kind == "table":
