@@ -1429,7 +1429,7 @@ def test_the_runs_own_dask_cluster_is_loopback_only_without_http_routes() -> Non
         cluster.close()
 
 
-def test_the_workers_of_the_runs_own_dask_cluster_do_not_profile_themselves() -> None:
+def test_the_workers_of_the_runs_own_dask_cluster_do_not_profile_themselves(monkeypatch) -> None:
     """A worker's profiler samples its threads every 10 ms, taking the GIL from the
     unit computing; the run's cluster serves no dashboard to show it.  Its workers
     keep glibc's memory thresholds (dask's MALLOC_TRIM_THRESHOLD_ made every large
@@ -1443,6 +1443,10 @@ def test_the_workers_of_the_runs_own_dask_cluster_do_not_profile_themselves() ->
     def environ() -> tuple:
         return os.environ.get("MALLOC_TRIM_THRESHOLD_"), os.environ.get("OMP_NUM_THREADS")
 
+    # A nanny sets its variables in the spawning process's own environment too,
+    # where later workers inherit them: a cluster with dask's defaults started
+    # earlier in this process (another test) has left the variable here.
+    monkeypatch.delenv("MALLOC_TRIM_THRESHOLD_", raising=False)
     cluster = _executors.start_local_cluster(1)
     try:
         with Client(cluster, set_as_default=False, security=cluster.security) as client:

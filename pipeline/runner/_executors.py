@@ -677,7 +677,8 @@ CLUSTER_SETTINGS = {
 #: array above 128 kB is mapped afresh and its pages faulted in and zeroed on
 #: each allocation: astrometry's unit took 13.8 s of CPU, 8.5 s of it in the
 #: kernel, instead of 5.2 s.  The thread limits (one BLAS/OpenMP thread per
-#: single-threaded worker) are kept.
+#: single-threaded worker) are kept.  A value in the run's own environment
+#: (the user's) still reaches the workers: a nanny's workers inherit it.
 UNSET_WORKER_ENVIRON = ("MALLOC_TRIM_THRESHOLD_",)
 
 
