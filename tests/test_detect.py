@@ -51,7 +51,12 @@ from pipeline.stages.detect._find import (
 from pipeline.stages.detect._measure import KERNEL_SPACING, measure_groups, residual_quadrupole
 from pipeline.stages.detect._model import KernelGrid, reduce_kernel
 from pipeline.stages.detect._night import Planes, padded_stretch
-from pipeline.stages.detect._saturated import Footprints, dilate_sparse, merge_on_footprints
+from pipeline.stages.detect._saturated import (
+    Footprints,
+    dilate_sparse,
+    merge_on_footprints,
+    saturated_footprints,
+)
 from pipeline.stages.rectify import smear_kernel_at
 from tests._detect_scene import kernel_table, render_scene, smear_track
 
@@ -979,6 +984,55 @@ def test_a_saturated_star_is_one_source(bleed):
     (on,) = np.flatnonzero((np.abs(y - 100.0) < 8.0) & (np.abs(x - 150.0) < 12.0 + bleed))
     assert np.hypot(x[on] - 150.0, y[on] - 100.0) < 0.05
     assert np.min(np.hypot(x - 150.0, y - 114.0)) < 0.5  # the neighbour, 14 px away
+
+
+def test_clipped_pixels_left_out_of_the_fits_only():
+    """The fits see a saturated star's clipped pixels as missing; nothing else does.
+
+    detect punches the holes in its own variance plane (no copy) and puts the
+    values back before the aperture sums, or, when the plane is the caller's,
+    in a copy.  Self-consistency: every catalogue column the same on both
+    paths (float64 read-only planes of the caller; the caller's scratch
+    planes; float32 planes, converted), the scratch variance whole again
+    afterwards (the aperture errors of the
+    saturated star are finite: its apertures hold clipped pixels).
+    """
+    scene, _ = _clipped_scene(4e6, 1)
+    image, variance = scene.image.astype(float), scene.variance.astype(float)
+    for plane in (image, variance):  # the caller's planes may be read-only (a memory map)
+        plane.setflags(write=False)
+
+    def run(image_in, variance_in, overwrite):
+        return detect(
+            image_in, variance_in, scene.mask, scene.kernels, overwrite_input=overwrite
+        ).catalog
+
+    given = run(image, variance, False)  # the caller's planes: the fits get a copy
+    scratch = variance.copy()
+    for other in (run(image.copy(), scratch, True), run(scene.image, scene.variance, False)):
+        for name in given.colnames:
+            assert np.array_equal(other[name], given[name], equal_nan=True), name
+    assert np.array_equal(scratch, variance)  # no pixel lacks data: no NaN filled in
+    x, y = np.asarray(given["x"]), np.asarray(given["y"])
+    (on,) = np.flatnonzero(np.hypot(x - 150.0, y - 100.0) < 8.0)
+    assert np.isfinite(given["flux_aper3_err"][on])
+
+
+@pytest.mark.parametrize("count", [3, 255, 256, 70_000])
+def test_footprints_are_numbered_in_a_small_type_without_wrapping(count):
+    """Each footprint's number comes back at its pixel, however many there are.
+
+    The numbers are kept in the smallest unsigned type that holds the count
+    (a plane of the stretch); 256 footprints do not fit uint8 and 70,000 not
+    uint16.  Self-consistency with scipy.ndimage.label's raster order.
+    """
+    side = int(np.ceil(np.sqrt(count)))
+    mask = np.zeros((4 * side, 4 * side), np.uint16)
+    ys, xs = np.divmod(np.arange(count), side)
+    mask[4 * ys + 1, 4 * xs + 1] = np.uint16(MaskBit.SATURATED)  # one pixel each, apart
+    footprints = saturated_footprints(mask, 0.0)
+    assert footprints.labels.dtype == np.min_scalar_type(count)
+    assert np.array_equal(footprints.at(4 * xs + 1, 4 * ys + 1), np.arange(1, count + 1))
 
 
 def test_merging_on_footprints_is_photutils_reassign_labels():

@@ -350,6 +350,7 @@ def detect(
 
     from pipeline.stages.detect._model import KernelGrid, SeeingProfile
 
+    given_variance = variance
     image = np.asarray(image, dtype=float)
     variance = np.asarray(variance, dtype=float)
     mask = np.asarray(mask)
@@ -384,12 +385,10 @@ def detect(
     if missing:
         residual[no_data] = np.nan
     var = _filled(variance, no_data, np.nan, missing, in_place=overwrite_input)
+    # ``var`` is detect's own plane (a copy, or the caller's scratch space)
+    owned = overwrite_input or not np.may_share_memory(var, given_variance)
     # Saturated stars: fitted on their unsaturated wings, one source each.
     footprints = saturated_footprints(mask, profile.fwhm)
-    var_fit = var
-    if footprints is not None:
-        var_fit = var.copy()
-        var_fit[footprints.clipped] = np.nan
     grid = KernelGrid(smear_kernels)
     x_centre = x_start + 0.5 * (image.shape[1] - 1)
 
@@ -462,6 +461,11 @@ def detect(
             stacklevel=2,
         )
         return DetectResult(_empty_catalog(radii), empty_seeing)
+    # The fits leave the clipped pixels out (NaN variance): from here on they
+    # are NaN in ``var`` itself (held aside and put back before the apertures,
+    # its only later reader; the filters use ``inverse``, made above), which
+    # spares a copy of the plane (8 bytes per pixel) when it is detect's own.
+    var_fit, held = _without_clipped(var, footprints, owned)
 
     def sources(segm, snr, data):
         """Segments' moments and start positions, one source per saturated footprint."""
@@ -660,6 +664,8 @@ def detect(
     idx = np.flatnonzero(keep)
     x, y = fits_["x"][idx], fits_["y"][idx]
     kernels = [fits_["kernel"][i] for i in idx]
+    if held is not None:
+        var[footprints.clipped] = held
     ap_flux, ap_err, ap_corr = aperture_fluxes(
         residual,
         var,
@@ -790,6 +796,28 @@ def _groups(cx, cy, grid, x_start, fwhm, point) -> list[list[int]]:
     _, labels = connected_components(graph, directed=False)
     order = np.argsort(labels, kind="stable")
     return [g.tolist() for g in np.split(order, np.flatnonzero(np.diff(labels[order])) + 1)]
+
+
+def _without_clipped(
+    var: np.ndarray, footprints, owned: bool
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """The variance the fits see (NaN on clipped pixels) and the values it replaced.
+
+    Returns ``(var, None)`` without saturated footprints; a copy with the
+    holes and None when ``var`` is not detect's own (``owned`` False: it is the
+    caller's, to be left as it is); else ``var`` itself with the holes and the
+    clipped pixels' values, which the caller puts back
+    (``var[footprints.clipped] = held``).
+    """
+    if footprints is None:
+        return var, None
+    if not owned:
+        out = var.copy()
+        out[footprints.clipped] = np.nan
+        return out, None
+    held = var[footprints.clipped]
+    var[footprints.clipped] = np.nan
+    return var, held
 
 
 def _filled(

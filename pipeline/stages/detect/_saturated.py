@@ -43,8 +43,9 @@ class Footprints:
 
     Attributes
     ----------
-    labels : ndarray of int32
-        Footprint number (1, 2, ...) per pixel, 0 outside.
+    labels : ndarray of unsigned integers
+        Footprint number (1, 2, ...) per pixel, 0 outside (the smallest
+        unsigned type that holds the count).
     slices : list of (slice, slice)
         Bounding box of footprint ``k`` at index ``k - 1``.
     clipped : ndarray of bool
@@ -92,8 +93,11 @@ def saturated_footprints(mask: np.ndarray, grow: float) -> Footprints | None:
     if r:
         yy, xx = np.mgrid[-r : r + 1, -r : r + 1]
         grown = dilate_sparse(clipped, xx**2 + yy**2 <= r * r)
-    labels, _ = ndimage.label(grown)
-    return Footprints(labels.astype(np.int32), ndimage.find_objects(labels), clipped)
+    labels, count = ndimage.label(grown)
+    # the smallest type that numbers them: a plane of the stretch, uint8 (a
+    # quarter of int32's bytes) up to 255 footprints, uint16 up to 65535
+    kept = labels.astype(np.min_scalar_type(count))
+    return Footprints(kept, ndimage.find_objects(labels), clipped)
 
 
 def dilate_sparse(pixels: np.ndarray, structure: np.ndarray, tile: int = 64) -> np.ndarray:

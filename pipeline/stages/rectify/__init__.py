@@ -543,7 +543,16 @@ def rectify(
     along = shift_rows(
         *across, shifts + (x_lo - need_lo), x_hi - x_lo, jac_x, breaks=breaks_x, **bits
     )
-    out_image, out_variance, out_mask = (transposed(a) for a in along)
+    # Each intermediate plane is let go as soon as the next is made: the three
+    # planes of each pass (~10 bytes per pixel of the stretch) are the unit's
+    # peak memory when they are all held at once.
+    del across
+    along = list(along)
+    for k, plane in enumerate(along):
+        along[k] = transposed(plane)
+        del plane
+    out_image, out_variance, out_mask = along
+    del along
     no_data = (out_mask & MASK_DTYPE.type(NO_DATA_BITS)) != 0
     out_image[no_data] = np.nan
     out_variance[no_data] = np.nan
