@@ -597,17 +597,32 @@ def detect(
             if new.size:
                 log.debug("%d more sources in the residual image", new.size)
                 order0 = [i for g in members for i in g]
-                px = np.empty(len(cx))
-                py = np.empty(len(cy))
+                px, py, bright = (np.empty(len(cx)) for _ in range(3))
                 px[order0], py[order0] = fits_["x"], fits_["y"]
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    bright[order0] = np.nan_to_num(fits_["flux"] / fits_["flux_err"])
                 cx = np.concatenate([px, nx2[new]])
                 cy = np.concatenate([py, ny2[new]])
                 blended = np.concatenate([blended, np.ones(new.size, bool)])
+                bright = np.concatenate([bright, np.asarray(cat2.peak, float)[new]])
                 more = [q[new] for q in (cat2.fwhm, cat2.ellipticity, cat2.orientation)]
                 shape_cols = [
                     np.concatenate([c0, c1]) for c0, c1 in zip(shape_cols, more, strict=True)
                 ]
                 del cleaned, _snr2, segm2, _parent2, cat2  # as after the first search
+                # Close companions found now may have widened the seeing stars of the
+                # first pass: fit the seeing again on the sources now known to be
+                # alone, before the joint refit, so that a seeing that moved costs no
+                # second refit of every group.  The seeing stars are isolated, so
+                # their first fits are those the joint refit would give them again
+                # (their groups are unchanged); the new sources, all flagged as split
+                # off, only bar their neighbours.
+                again, rows = fit_seeing(cx, cy, bright, blended, profile)
+                log.debug("seeing FWHM refitted: %s px", again)
+                if again is not None:
+                    seeing_rows = rows
+                    if abs(again - profile.fwhm) > 0.003 * profile.fwhm:
+                        profile = profile.with_fwhm(again)
                 members, fits_ = fit_all(cx, cy, blended)
                 # A source found only in the image minus the models must stand on
                 # its own after the joint refit (residuals of a neighbour's imperfect
@@ -622,21 +637,6 @@ def detect(
                     cx, cy, blended = cx[kept], cy[kept], blended[kept]
                     shape_cols = [c[kept] for c in shape_cols]
                     members, fits_ = fit_all(cx, cy, blended)
-                # Close companions found now may have widened the seeing stars of the
-                # first pass: fit the seeing again on the sources now known to be
-                # alone, and refit everything if it moved.
-                order = np.array([i for g in members for i in g])
-                px, py, bright = (np.empty(len(cx)) for _ in range(3))
-                px[order], py[order] = fits_["x"], fits_["y"]
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    bright[order] = np.nan_to_num(fits_["flux"] / fits_["flux_err"])
-                again, rows = fit_seeing(px, py, bright, blended, profile)
-                log.debug("seeing FWHM refitted: %s px", again)
-                if again is not None:
-                    seeing_rows = rows
-                    if abs(again - profile.fwhm) > 0.003 * profile.fwhm:
-                        profile = profile.with_fwhm(again)
-                        members, fits_ = fit_all(px, py, blended)
     # One split per group at a time, the one that gains most: a pair fitted as
     # one elongates its neighbours' residuals too, until it is resolved.
     tried: set = set()
