@@ -1385,6 +1385,26 @@ def test_aperture_sums_and_errors_match_photutils():
         np.testing.assert_allclose(err[:, j], ref["aperture_sum_err"], rtol=1e-12)
 
 
+def test_aperture_corrections_match_photutils():
+    # Reference: photutils' exact circular aperture mask applied to the unit
+    # model (CircularAperture.to_mask(method="exact").multiply), the model
+    # total over it; one source per 16-row bin, smears of 1 to 12 px.
+    profile = SeeingProfile(2.8)
+    ys = np.array([3.0, 40.0, 300.0, 500.0])
+    dx, dy = smear_track([500.0] * 4, 512, 64, 12.0, 2.0)
+    kernels = [reduce_kernel(dx[0] * s, dy[0] * s, 0.4) for s in (0.1, 0.4, 0.8, 1.0)]
+    radii = [2.8, 5.6, 8.4]
+    corr = _measure.aperture_corrections(kernels, ys, profile, radii)
+    for i, (kx, ky) in enumerate(kernels):
+        hx = int(np.ceil(max(radii) + 4 * profile.fwhm + np.max(np.abs(kx))))
+        hy = int(np.ceil(max(radii) + 4 * profile.fwhm + np.max(np.abs(ky))))
+        unit = model_image((2 * hy + 1, 2 * hx + 1), hx, hy, kx, ky, profile)
+        for j, r in enumerate(radii):
+            inside = CircularAperture((hx, hy), r).to_mask(method="exact").multiply(unit)
+            # 1e-12 relative: the same products summed over another box (double precision)
+            assert corr[i, j] == pytest.approx(1.0 / inside.sum(), rel=1e-12)
+
+
 def test_segment_without_light_starts_at_its_snr_peak():
     # A segment of the S/N map whose image pixels sum to <= 0 has no centroid
     # (photutils gives NaN), which crashed the grouping and the fit stamps on
