@@ -49,7 +49,7 @@ from pipeline.stages.detect._find import (
     segment_pixels,
 )
 from pipeline.stages.detect._measure import KERNEL_SPACING, measure_groups, residual_quadrupole
-from pipeline.stages.detect._model import KernelGrid, reduce_kernel
+from pipeline.stages.detect._model import KernelGrid, Response, reduce_kernel
 from pipeline.stages.detect._night import Planes, padded_stretch
 from pipeline.stages.detect._saturated import (
     Footprints,
@@ -502,6 +502,41 @@ def test_a_fit_ends_unconverged_at_its_evaluation_cap(background):
     assert fit.success
     # Noise-free: the optimum is the truth to the optimizer's tolerance.
     assert fit.x[0] == pytest.approx(20.3, abs=1e-5)
+
+
+@pytest.mark.parametrize(("seed", "background"), [(2, True), (1, False)])
+def test_a_fit_pulled_by_a_sharp_spike_converges_in_few_steps(seed, background):
+    # A few hot pixels (a cosmic-ray hit's shape, taken from a crowded stretch)
+    # fitted as a star: the Gauss-Newton model of the chi-square is poor, and
+    # full steps overshoot to and fro, each lowering the chi-square a little
+    # (221 and > 250 evaluations here).  Raising the damping after a step that
+    # gains less than a quarter of its prediction (the gain ratio of
+    # trust-region methods, from memory: Madsen, Nielsen & Tingleff, "Methods
+    # for non-linear least squares problems") ends them in 9 and 11.  With a
+    # background the compiled loop fits, without it the Python loop.
+    t = np.linspace(-1.0, 1.0, 17)
+    kernel = (t * 2.2, 0.9 * t**2 - np.mean(0.9 * t**2))
+    profile = SeeingProfile(2.8)
+    rng = np.random.default_rng(seed)
+    image = rng.normal(0.0, 20.0, (14, 17))
+    image[6, 8:10] += 20.0 * np.array([6.1, 3.5])
+    image[7, 7:10] += 20.0 * np.array([3.0, 13.8, 6.8])
+    variance = np.full(image.shape, 400.0)
+    response = {"responses": [Response(0.669, 0.669, 1.00007)]}  # rectify's, at the hit
+    # 30: three times what the fits take now
+    fit = fit_stars(
+        image, variance, [8.2], [7.0], [kernel], profile, fit_background=background,
+        max_evaluations=30, **response,
+    )  # fmt: skip
+    assert fit.success
+    # an optimum: a fit started where it ended stays there (to 0.01 of an error,
+    # the convergence rule's hundredth of a standard error in every parameter)
+    again = fit_stars(
+        image, variance, fit.x, fit.y, [kernel], profile, fit_background=background, **response
+    )
+    assert abs(again.x[0] - fit.x[0]) < 0.01 * fit.x_err[0]
+    assert abs(again.y[0] - fit.y[0]) < 0.01 * fit.y_err[0]
+    assert abs(again.flux[0] - fit.flux[0]) < 0.01 * fit.flux_err[0]
 
 
 def test_split_trials_are_capped_and_still_split_a_pair(monkeypatch):

@@ -1076,6 +1076,11 @@ STAGE = Stage(
     # 8: UNRESOLVED sources the data show to be two are split into a pair
     # 9: smear kernels sampled FWHM / 6 apart with end correction, the last
     #    fit step taken to first order (fluxes move <= 0.04 sigma rms)
-    version=9,
+    # 10: the seeing refitted before the joint refit with the residual's
+    #     sources, and the fits' damping raised after a step that gains less
+    #     than a quarter of its prediction (crowded stretches: 85 % of the
+    #     fluxes unchanged, 98 % within 0.01 sigma, 0.03 % -- members of
+    #     degenerate groups -- by 1 to 10 sigma; rms 0.02 sigma without them)
+    version=10,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

@@ -684,7 +684,10 @@ def _levenberg_marquardt(evaluate, p, nb, n, first=None, max_evaluations=None):
     model there, the residual and the unit models moved to first order (the
     Jacobian, for the errors, stays that of the last point evaluated: it
     changes by ~1e-2 of a standard error's effect).  Otherwise a step is
-    evaluated and accepted when it lowers the chi-square; one that lowers it
+    evaluated and accepted when it lowers the chi-square (the damping then
+    falls, or rises if the fall was less than
+    :data:`~pipeline.stages.detect._fit_jit.POOR_GAIN` of the predicted
+    one); one that lowers it
     by less than 1e-8 of it also ends the fit (MINPACK's ``ftol``: a degenerate
     fit, e.g. two sources on one star, creeps along a valley).  Position steps are
     capped at 1 px so a poor start cannot throw a star far away.  At most
@@ -695,6 +698,8 @@ def _levenberg_marquardt(evaluate, p, nb, n, first=None, max_evaluations=None):
     -------
     p, jac, units, chi2, converged
     """
+    from pipeline.stages.detect._fit_jit import POOR_GAIN
+
     r, jac, models = evaluate(p) if first is None else first
     chi2 = float(r @ r)
     lam = 1e-3
@@ -720,8 +725,9 @@ def _levenberg_marquardt(evaluate, p, nb, n, first=None, max_evaluations=None):
         chi2_new = float(r_new @ r_new)
         if np.isfinite(chi2_new) and chi2_new <= chi2:
             gain = chi2 - chi2_new
+            expected = -(2.0 * float(g @ step) + float(step @ h @ step))
             p, r, jac, models, chi2 = trial, r_new, jac_new, models_new, chi2_new
-            lam = max(lam * 0.1, 1e-9)
+            lam = lam * 10.0 if gain < POOR_GAIN * expected else max(lam * 0.1, 1e-9)
             if gain <= 1e-8 * chi2:
                 return p, jac, [m[0] for m in models], chi2, True
         else:
