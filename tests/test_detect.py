@@ -509,11 +509,11 @@ def test_a_fit_pulled_by_a_sharp_spike_converges_in_few_steps(seed, background):
     # A few hot pixels (a cosmic-ray hit's shape, taken from a crowded stretch)
     # fitted as a star: the Gauss-Newton model of the chi-square is poor, and
     # full steps overshoot to and fro, each lowering the chi-square a little
-    # (221 and > 250 evaluations here).  Raising the damping after a step that
-    # gains less than a quarter of its prediction (the gain ratio of
-    # trust-region methods, from memory: Madsen, Nielsen & Tingleff, "Methods
-    # for non-linear least squares problems") ends them in 9 and 11.  With a
-    # background the compiled loop fits, without it the Python loop.
+    # (> 250 evaluations with a background, 221 without).  Raising the damping
+    # after a step that gains less than a quarter of its prediction (the gain
+    # ratio of trust-region methods, from memory: Madsen, Nielsen & Tingleff,
+    # "Methods for non-linear least squares problems") ends them in 11 and 9.
+    # With a background the compiled loop fits, without it the Python loop.
     t = np.linspace(-1.0, 1.0, 17)
     kernel = (t * 2.2, 0.9 * t**2 - np.mean(0.9 * t**2))
     profile = SeeingProfile(2.8)
