@@ -223,9 +223,12 @@ def _parse_rows(body: str, dtypes: list[np.dtype], lengths: list[int]) -> list[n
         else (pa.float64() if dtype.kind == "f" else pa.from_numpy_dtype(dtype))
         for name, dtype, length in zip(names, dtypes, lengths, strict=True)
     }
+    # On the calling thread: pyarrow's thread pool, left running when a script
+    # that read a product exits, got the process killed by the C++ runtime now
+    # and then (and a worker computes on one thread by design).
     table = pa_csv.read_csv(
         io.BytesIO(body.encode("ascii")),
-        read_options=pa_csv.ReadOptions(column_names=names),
+        read_options=pa_csv.ReadOptions(column_names=names, use_threads=False),
         parse_options=pa_csv.ParseOptions(
             delimiter=" ", quote_char=False, escape_char=False, ignore_empty_lines=False
         ),
