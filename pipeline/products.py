@@ -54,18 +54,19 @@ from collections.abc import Mapping
 from typing import TYPE_CHECKING
 
 import astropy.units as u
-import erfa
 import numpy as np
 from astropy.io import fits
-from astropy.time import Time, TimeDelta
-from astropy.wcs import WCS
 
 from pipeline.geometry.instrument import Camera, Site
-from pipeline.geometry.sitetime import earth_location
 from pipeline.masks import BIT_MEANINGS, MASK_DTYPE, MaskBit
 
 if TYPE_CHECKING:
     from astropy.nddata import CCDData
+    from astropy.time import Time
+
+# astropy.time, astropy.wcs and the site's geometry (which bring
+# astropy.coordinates and the IERS tables' code, ~0.1 s of CPU) are imported
+# by the functions that use them: the command line imports this module.
 
 __all__ = [
     "FLAGS_EXTENSION",
@@ -161,6 +162,8 @@ _IAU1976_ELLIPSOID = (6378140.0, 1.0 / 298.257)
 
 def _geodetic_cards(location) -> list:
     """OBSGEO-L/B/H of a site: its geocentric X/Y/Z on the IAU 1976 ellipsoid (ERFA gc2gde)."""
+    import erfa
+
     xyz = np.array([location.x.to_value(u.m), location.y.to_value(u.m), location.z.to_value(u.m)])
     longitude, latitude, height = erfa.gc2gde(*_IAU1976_ELLIPSOID, xyz)
     return [
@@ -208,6 +211,10 @@ def observation_header(
     """
     if not stop >= start:
         raise ValueError(f"stop ({stop} s) must not precede start ({start} s).")
+    from astropy.time import TimeDelta
+
+    from pipeline.geometry.sitetime import earth_location
+
     reference = reference_time.utc
     begin = reference + TimeDelta(float(start), format="sec")
     end = reference + TimeDelta(float(stop), format="sec")
@@ -396,6 +403,7 @@ def ccddata_from_hdulist(hdul: fits.HDUList) -> CCDData:
         If a plane is missing or has no ``BUNIT``.
     """
     from astropy.nddata import CCDData, VarianceUncertainty  # loads scipy: only when used
+    from astropy.wcs import WCS
 
     names = [hdu.name for hdu in hdul]
     missing = [n for n in (FLUX_EXTENSION, VARIANCE_EXTENSION, FLAGS_EXTENSION) if n not in names]

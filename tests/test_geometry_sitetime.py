@@ -159,6 +159,42 @@ def test_offline_block_restores_the_settings():
         assert iers.conf.auto_download is True
 
 
+LATE_IMPORT_CHECK = """
+import sys
+from pipeline._offline import astropy_offline
+assert "astropy.utils.iers" not in sys.modules and "astropy.utils.data" not in sys.modules
+def settings():
+    from astropy.utils import iers
+    from astropy.utils.data import conf
+    return (iers.conf.auto_download, iers.conf.auto_max_age,
+            iers.conf.iers_degraded_accuracy, conf.allow_internet)
+with astropy_offline():
+    with astropy_offline():
+        pass
+    inside = settings()  # imported here, after the block began
+print(inside, settings())
+"""
+
+
+def test_offline_block_holds_for_astropy_modules_imported_inside_it():
+    # The settings are written to astropy's configuration store before its
+    # IERS and data modules are imported (so a command that never needs them
+    # does not import them); once imported inside the block they must read
+    # the offline values, and astropy's defaults after it (a nested block
+    # must not end the outer one).
+    import subprocess
+    import sys
+
+    result = subprocess.run(
+        [sys.executable, "-c", LATE_IMPORT_CHECK], capture_output=True, text=True, check=False
+    )
+    assert result.returncode == 0, result.stderr
+    # astropy's documented defaults after the block: downloads on, 30-day
+    # table age, errors past the table.
+    offline, defaults = "(False, None, 'warn', False)", "(True, 30.0, 'error', True)"
+    assert result.stdout.strip() == f"{offline} {defaults}"
+
+
 GEOMETRY_OFFLINE_CHECK = """
 import urllib.request, warnings
 import astropy.utils.data, astropy.utils.iers.iers
