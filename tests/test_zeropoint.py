@@ -201,6 +201,17 @@ def test_scale_to_zero_point_worked_value():
         scale_to_zero_point(25.0, 30.0, 0.0)
 
 
+def test_chi2_median_is_scipy_stats():
+    # scipy.stats (the reference) is not imported by the stage; its value
+    # must be the same to the bit, or the extra scatter would change.
+    from scipy.stats import chi2
+
+    from pipeline.stages.zeropoint._fit import chi2_median_1dof
+
+    assert chi2_median_1dof() == float(chi2.ppf(0.5, 1))
+    assert abs(chi2_median_1dof() - 0.454936) < 1e-6  # tables (common practice)
+
+
 def test_underestimated_errors_get_an_extra_scatter():
     # Reference errors quoted at 0.01 mag but truly 0.03: the fit adds
     # sqrt(0.03^2 - 0.01^2) = 0.028 mag in quadrature instead of clipping

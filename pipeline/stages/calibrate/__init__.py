@@ -763,8 +763,9 @@ def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:
 
 
 #: What a worker loads as it starts for calibrate and column_stats (``Stage.warm``):
-#: the bias windows' filters and the column solve's error function.
-WARM = ("scipy.signal", "scipy.special")
+#: the bias windows' filters (:mod:`pipeline.stages._signal`: FFTs and least
+#: squares) and the column solve's error function.
+WARM = ("scipy.fft", "scipy.linalg", "scipy.special")
 
 #: Declaration of the calibrate stage for the runner.
 STAGE = Stage(

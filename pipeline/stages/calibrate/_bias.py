@@ -15,6 +15,8 @@ import warnings
 import numpy as np
 from astropy.stats import mad_std
 
+from pipeline.stages._signal import fftconvolve, savgol_coeffs
+
 __all__ = [
     "ROW_OUTLIER_SIGMA",
     "choose_window",
@@ -159,8 +161,6 @@ def savitzky_golay(values: np.ndarray, window: int, polyorder: int) -> np.ndarra
     -------
     ndarray of float64, shape (n,)
     """
-    from scipy.signal import fftconvolve
-
     values = np.asarray(values, dtype=np.float64)
     offset = values.mean()
     centred = values - offset
@@ -193,8 +193,6 @@ def _odd_window(window: int, n_rows: int) -> int:
 @functools.lru_cache(maxsize=64)
 def _coefficients(window: int, polyorder: int) -> np.ndarray:
     """Savitzky-Golay convolution coefficients (cached; do not modify)."""
-    from scipy.signal import savgol_coeffs
-
     return savgol_coeffs(window, polyorder)
 
 

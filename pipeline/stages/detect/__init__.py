@@ -1044,8 +1044,9 @@ def _run(*, inputs, options: DetectOptions, context) -> dict:
 #: its functions import on first use, the smear-aware model and its compiled
 #: kernels (numba's disk cache).
 WARM = (
+    "scipy.fft",
+    "scipy.linalg",
     "scipy.ndimage",
-    "scipy.signal",
     "scipy.sparse.csgraph",
     "scipy.spatial",
     "photutils.aperture",

@@ -37,6 +37,8 @@ from typing import TYPE_CHECKING
 import numpy as np
 from astropy.stats import SigmaClip, sigma_clipped_stats
 
+from pipeline.stages._signal import oaconvolve, savgol_filter
+
 if TYPE_CHECKING:
     from pipeline.stages.detect._model import KernelGrid, SeeingProfile
 
@@ -144,8 +146,6 @@ def column_trend(image: np.ndarray, no_data: np.ndarray, box: int) -> np.ndarray
     when fewer than 3 columns have data.  Tall images use every n-th row (at
     least 512 rows).
     """
-    from scipy.signal import savgol_filter
-
     ny, nx = image.shape
     # Every ``stride``-th row, at least 512 of them: the median of 512 rows has
     # a noise of 1.25 / sqrt(512) = 6 % of a pixel's, and the quadratic
@@ -177,7 +177,7 @@ def column_trend(image: np.ndarray, no_data: np.ndarray, box: int) -> np.ndarray
     n = b - a
     window = min(2 * box + 1, n if n % 2 else n - 1)
     if window > 2:
-        level[a:b] = savgol_filter(level[a:b], window, 2, mode="interp")
+        level[a:b] = savgol_filter(level[a:b], window, 2)  # mode 'interp'
         level[:a], level[b:] = level[a], level[b - 1]
     return level
 
@@ -222,13 +222,11 @@ def _filter_bands(plane: np.ndarray, templates, square: bool) -> np.ndarray:
     least of 5 interleaved runs, 0.37 s here against 0.61 s (all bands at
     once) and 0.37 s (groups of 8).
     """
-    from scipy.signal import oaconvolve
-
     ny = plane.shape[0]
     out = np.empty(plane.shape, np.float32)
     for lo, hi, k, hy in templates:
         a, b = max(lo - hy, 0), min(hi + hy, ny)
-        out[lo:hi] = oaconvolve(plane[a:b], k * k if square else k, mode="same")[lo - a : hi - a]
+        out[lo:hi] = oaconvolve(plane[a:b], k * k if square else k, "same")[lo - a : hi - a]
     return out
 
 

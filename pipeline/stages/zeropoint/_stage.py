@@ -417,7 +417,7 @@ STAGE = Stage(
     scope="night",
     uses=("camera.tdi_rows",),
     description="The night's zero point along time, calibrated magnitudes, star flat.",
-    warm=("scipy.interpolate", "scipy.linalg", "scipy.sparse", "scipy.stats"),
+    warm=("scipy.interpolate", "scipy.linalg", "scipy.sparse", "scipy.special"),
     # 2: the star-flat trend fitted to the stars, with its error
     version=2,
 )
