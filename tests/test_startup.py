@@ -96,3 +96,31 @@ def test_status_loads_no_heavy_library(done_night):
         f"assert main(['status', {str(done_night)!r}]) == EXIT_INCOMPLETE"
     )
     assert _heavy_imported(code) == []
+
+
+#: What the stages of a run from raw blocks to zero points do without: scipy.signal
+#: and scipy.stats (~0.45 s of CPU: pipeline.stages._signal and scipy.special do
+#: their share), photutils.segmentation (with astropy.modeling and
+#: astropy.convolution; the stage has its own Segmentation).
+NOT_IN_A_RUN = ("astropy.modeling", "photutils.segmentation", "scipy.signal", "scipy.stats")
+
+
+def test_a_run_and_the_stages_warm_up_leave_unused_libraries_alone(done_night):
+    # The run does the work (serial executor, in this fresh interpreter): the
+    # libraries its functions import on first use count; then every stage's
+    # warm-up through zeropoint (astrometry and zeropoint do not run on this
+    # small chip).
+    code = (
+        "from pipeline.cli import main\n"
+        f"assert main(['run', {str(done_night)!r}, '--to', 'catalog', '--force']) == 0\n"
+        "from pipeline.runner._warm import _load, warm_plan\n"
+        "from pipeline.stages import GRAPH, STAGE_MODULES\n"
+        "names = STAGE_MODULES[: STAGE_MODULES.index('zeropoint') + 1]\n"
+        "stages = [stage for stage in GRAPH if stage.name in names]\n"
+        "for _, entries in warm_plan(stages):\n"
+        "    for entry in entries:\n"
+        "        _load(entry)\n"
+        "import sys\n"
+        "assert 'photutils.background' in sys.modules and 'numba' in sys.modules  # they ran"
+    )
+    assert _heavy_imported(code, NOT_IN_A_RUN) == []

@@ -180,7 +180,7 @@ def _start_positions(moments, segm, snr: np.ndarray) -> tuple[np.ndarray, np.nda
     ----------
     moments : `~pipeline.stages.detect._find.SegmentMoments`
         Of the segments, in ``segm``'s label order.
-    segm : `~photutils.segmentation.SegmentationImage`
+    segm : `~pipeline.stages.detect._find.Segmentation`
     snr : ndarray
         The S/N map the segments were cut from.
 
@@ -1052,7 +1052,6 @@ WARM = (
     "photutils.aperture",
     "photutils.background",
     "photutils.geometry",
-    "photutils.segmentation",
     "pipeline.stages.detect._model",
     "pipeline.stages.detect._fit_jit",
     "pipeline.stages.detect._pixel_gauss:load_compiled",

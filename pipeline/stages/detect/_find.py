@@ -43,6 +43,7 @@ if TYPE_CHECKING:
     from pipeline.stages.detect._model import KernelGrid, SeeingProfile
 
 __all__ = [
+    "Segmentation",
     "band_templates",
     "column_trend",
     "estimate_background",
@@ -392,7 +393,7 @@ def find_sources(
 
     Returns
     -------
-    segm : photutils SegmentationImage or None
+    segm : Segmentation or None
         None when nothing is above the threshold.
     parent : dict
         Label -> a key shared by the children of one split segment (minus
@@ -464,7 +465,7 @@ def segment_moments(data: np.ndarray, segm, mask: np.ndarray, snr: np.ndarray) -
     ----------
     data : ndarray, shape (ny, nx)
         Background-subtracted image, e-.
-    segm : photutils.segmentation.SegmentationImage
+    segm : Segmentation
         The segments (labels increasing, any gaps).
     mask : ndarray of bool, shape (ny, nx)
         Pixels left out.
@@ -563,7 +564,7 @@ def segment_map(snr: np.ndarray, no_data: np.ndarray, *, threshold: float, min_p
 
     Returns
     -------
-    photutils.segmentation.SegmentationImage or None
+    Segmentation or None
         None when no segment is left.
     """
     from scipy.ndimage import label
@@ -604,30 +605,68 @@ def segment_map(snr: np.ndarray, no_data: np.ndarray, *, threshold: float, min_p
     return _segmentation_image(labels, slices, {}, where)
 
 
-def _segmentation_image(data: np.ndarray, slices: list, deblended: dict, pixels: np.ndarray):
-    """A SegmentationImage of consecutive labels 1..n whose slices and pixels are known.
+class Segmentation:
+    """Labelled segments of a map: what the stage uses of photutils' ``SegmentationImage``.
 
-    Built as photutils' own ``detect_sources`` and ``deblend_sources`` build
-    theirs, with the labels, their bounding-box ``slices`` and the map of
-    ``deblended`` parents (original label -> its children's labels) set: the
-    public constructor would find the labels again with a sort of the whole
-    image, and the slices with another pass over it.  ``pixels``, the flat
-    indices of the segments' pixels (increasing), is kept for
-    :func:`segment_pixels`.
+    The attributes of the same names as photutils' hold the same values for
+    the same segments (``tests/test_detect.py`` compares them); photutils'
+    class is not used itself because ``photutils.segmentation`` imports
+    scipy.signal, scipy.stats and astropy.modeling (~0.3 s of CPU per
+    process).  Not a general container: the stage's functions make and
+    change it (:func:`segment_map`, :func:`deblend_segments`,
+    :func:`pipeline.stages.detect._saturated.merge_on_footprints`).
+
+    Parameters
+    ----------
+    data : ndarray of int, shape (ny, nx)
+        Each pixel's segment label, 0 outside segments.
+    labels : ndarray of int, shape (n,)
+        The segments' labels, increasing.
+    slices : list of (slice, slice)
+        Each segment's bounding box (rows, columns), in ``labels`` order.
+    deblended : dict, optional
+        The label a split segment had -> its children's labels (ndarray).
+    pixels : ndarray of int, optional
+        Flat indices of the segments' pixels, increasing (see
+        :func:`segment_pixels`); None: not known.
     """
-    from photutils.segmentation import SegmentationImage
 
-    segm = object.__new__(SegmentationImage)
-    segm._data = data
-    segm.__dict__["labels"] = np.arange(1, len(slices) + 1, dtype=data.dtype)
-    segm.__dict__["slices"] = slices
-    segm.__dict__["_deblend_label_map"] = deblended
-    segm.__dict__[_PIXELS] = pixels
-    return segm
+    def __init__(self, data, labels, slices, deblended=None, pixels=None):
+        self.data = data
+        self.labels = labels
+        self.slices = slices
+        self.deblended = {} if deblended is None else deblended
+        self.pixels = pixels
+
+    @property
+    def n_labels(self) -> int:
+        """Number of segments."""
+        return len(self.labels)
+
+    @property
+    def max_label(self) -> int:
+        """Largest label (0 without segments)."""
+        return int(np.max(self.labels)) if self.n_labels else 0
+
+    @property
+    def deblended_label_to_parent(self) -> dict:
+        """Label of each child of a split segment -> the label the segment had."""
+        return {child: parent for parent, kids in self.deblended.items() for child in kids}
+
+    @property
+    def areas(self) -> np.ndarray:
+        """Pixels in each segment, in ``labels`` order."""
+        counts = np.bincount(
+            self.data.reshape(-1)[segment_pixels(self)], minlength=self.max_label + 1
+        )
+        return counts[self.labels]
 
 
-#: Where :func:`_segmentation_image` keeps the segments' pixels on the object.
-_PIXELS = "_zdrift_pixels"
+def _segmentation_image(data: np.ndarray, slices: list, deblended: dict, pixels: np.ndarray):
+    """A :class:`Segmentation` of consecutive labels 1..n whose slices and pixels are known."""
+    return Segmentation(
+        data, np.arange(1, len(slices) + 1, dtype=data.dtype), slices, deblended, pixels
+    )
 
 
 def segment_pixels(segm) -> np.ndarray:
@@ -640,7 +679,7 @@ def segment_pixels(segm) -> np.ndarray:
     over the image finds them.  Each pass costs ~15 ms of CPU on a 4096 x
     1035 stretch.
     """
-    pixels = segm.__dict__.get(_PIXELS)
+    pixels = getattr(segm, "pixels", None)
     return np.flatnonzero(segm.data) if pixels is None else pixels
 
 
@@ -671,7 +710,7 @@ def deblend_segments(
     ----------
     snr : ndarray, shape (ny, nx)
         The map ``segm`` was cut from.
-    segm : photutils.segmentation.SegmentationImage
+    segm : Segmentation
         Consecutive labels 1..n (:func:`segment_map`).
     labels : ndarray of int
         Increasing labels of the segments to deblend.
@@ -682,7 +721,7 @@ def deblend_segments(
 
     Returns
     -------
-    photutils.segmentation.SegmentationImage
+    Segmentation
     """
     data = segm.data
     shelves = _Shelves.of(snr, segm, labels, min_pixels, levels)

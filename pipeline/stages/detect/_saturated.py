@@ -189,7 +189,7 @@ def merge_on_footprints(segm, x: np.ndarray, y: np.ndarray, footprints) -> bool:
 
     Parameters
     ----------
-    segm : `~photutils.segmentation.SegmentationImage`
+    segm : `~pipeline.stages.detect._find.Segmentation`
         Modified in place: the segments of each footprint take the label of
         its first one.
     x, y : ndarray
@@ -241,8 +241,6 @@ def _merge_labels(segm, groups: list) -> None:
                 slice(min(box[1].start, own[1].start), max(box[1].stop, own[1].stop)),
             )
         slices[index[target]] = box
-    parents = {key: relabel[value] for key, value in segm._deblend_label_map.items()}
-    segm._reset_lazyproperties()
-    segm.__dict__["labels"] = labels[~gone]
-    segm.__dict__["slices"] = [box for box, drop in zip(slices, gone, strict=True) if not drop]
-    segm.__dict__["_deblend_label_map"] = parents
+    segm.deblended = {key: relabel[value] for key, value in segm.deblended.items()}
+    segm.labels = labels[~gone]
+    segm.slices = [box for box, drop in zip(slices, gone, strict=True) if not drop]
