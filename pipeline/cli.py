@@ -38,35 +38,26 @@ import sys
 import threading
 from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Any, NoReturn
-
-import yaml
+from typing import TYPE_CHECKING, Any, NoReturn
 
 import pipeline
-from pipeline._offline import astropy_offline
-from pipeline.config import Config, load_config
 from pipeline.exceptions import ConfigError, RunLockedError, RunStartError
-from pipeline.runner import (
-    LOG_NAME,
-    NIGHT_CONFIG_NAME,
-    REPORT_PAGE,
-    NightOutcome,
-    find_nights,
-    night_dir,
-    night_status,
-    parse_stretches,
-    reduce_night,
-    report_page,
-    run_night,
-)
-from pipeline.runner._logging import TextProgress, cli_logging, thread_log
+
+if TYPE_CHECKING:
+    from pipeline.config import Config
+
+# The config, the runner and astropy (~0.4 s of CPU) are imported by the
+# commands that use them, once the arguments are parsed: ``zdrift --help``,
+# ``--version`` and a usage error need none of them.
 
 __all__ = ["exit_now", "main", "run"]
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_LOCKED, EXIT_CANNOT_START, EXIT_INCOMPLETE = range(6)
 
-#: The stage that makes the night's report page.
-REPORT_STAGE = REPORT_PAGE[0]
+#: The stage that makes the night's report page (``pipeline.runner.REPORT_PAGE[0]``).
+REPORT_STAGE = "report"
+#: A night folder's own config (``pipeline.runner.NIGHT_CONFIG_NAME``), for the help.
+NIGHT_CONFIG_NAME = "night.yaml"
 
 #: The example of ``--set`` in the help; a key that exists (a test loads it).
 SET_EXAMPLE = "stages.calibrate.cosmic_significance=5"
@@ -89,6 +80,8 @@ exit status:
 
 
 def _stretch_list(text: str) -> frozenset[int]:
+    from pipeline.runner import parse_stretches
+
     try:
         return parse_stretches(text)
     except ValueError as exc:
@@ -233,6 +226,9 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def _cmd_run(args: argparse.Namespace, config: Config) -> int:
+    from pipeline.runner import LOG_NAME, night_dir, report_page, run_night
+    from pipeline.runner._logging import TextProgress, cli_logging
+
     if args.stage is not None and args.to_stage is not None:
         print("zdrift run: --to cannot be combined with --stage", file=sys.stderr)
         return EXIT_USAGE
@@ -275,6 +271,8 @@ def _cmd_run(args: argparse.Namespace, config: Config) -> int:
 
 def _is_mosaic_config(path: str) -> bool:
     """Whether the file has a top-level ``mosaic`` section (else it is a night's)."""
+    import yaml
+
     try:
         data = yaml.safe_load(Path(path).read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, yaml.YAMLError):
@@ -284,7 +282,14 @@ def _is_mosaic_config(path: str) -> bool:
 
 def _cmd_run_nights(args: argparse.Namespace, config) -> int:
     """``zdrift run MOSAIC.yaml``: each listed night, the tiles, the page across the nights."""
-    from pipeline.runner import mosaic_dir, run_nights_and_mosaic
+    from pipeline.runner import (
+        LOG_NAME,
+        mosaic_dir,
+        night_dir,
+        report_page,
+        run_nights_and_mosaic,
+    )
+    from pipeline.runner._logging import TextProgress, thread_log
 
     night_only = {
         "--stage": args.stage,
@@ -341,6 +346,9 @@ def _night_line(report) -> str:
 
 
 def _cmd_status(args: argparse.Namespace, config: Config) -> int:
+    from pipeline.runner import night_status
+    from pipeline.runner._logging import cli_logging
+
     with cli_logging(args.verbose):
         status = night_status(config, verify=args.verify)
     print(status.format())
@@ -358,6 +366,7 @@ def _cmd_plan(args: argparse.Namespace, config: Config) -> int:
     from astropy.time import Time
 
     from pipeline.geometry.plan import format_plan, summarize_plan
+    from pipeline.runner._logging import cli_logging
 
     epoch = args.epoch
     simulate = config.section("simulate")
@@ -377,6 +386,9 @@ def _cmd_plan(args: argparse.Namespace, config: Config) -> int:
 
 
 def _cmd_report(args: argparse.Namespace, config: Config) -> int:
+    from pipeline.runner import LOG_NAME, night_dir, report_page, run_night
+    from pipeline.runner._logging import cli_logging
+
     if REPORT_STAGE not in {stage.name for stage in config.graph}:
         print(f"zdrift report: the pipeline has no {REPORT_STAGE} stage", file=sys.stderr)
         return EXIT_USAGE
@@ -408,6 +420,10 @@ def _cmd_report(args: argparse.Namespace, config: Config) -> int:
 
 
 def _cmd_nightly(args: argparse.Namespace) -> int:
+    from pipeline.config import Config
+    from pipeline.runner import LOG_NAME, NightOutcome, find_nights, night_dir, reduce_night
+    from pipeline.runner._logging import cli_logging
+
     try:
         nights = list(find_nights(args.site_file, args.raw_root, args.overrides))
     except ValueError as exc:
@@ -431,6 +447,7 @@ def _cmd_nightly(args: argparse.Namespace) -> int:
 
 
 def _cmd_simulate(args: argparse.Namespace, config: Config) -> int:
+    from pipeline.runner._logging import cli_logging
     from pipeline.simulate import simulate_to_folders
 
     options = config.section("simulate")
@@ -451,6 +468,9 @@ def _in_mosaic_folder(command: str, folder: Path, verbose: int, call: Callable[[
     The status is None when ``call`` returned; else it says why it could not
     run (the message is printed).
     """
+    from pipeline.runner import LOG_NAME
+    from pipeline.runner._logging import cli_logging
+
     stack = contextlib.ExitStack()
     try:
         folder.mkdir(parents=True, exist_ok=True)
@@ -473,7 +493,8 @@ def _in_mosaic_folder(command: str, folder: Path, verbose: int, call: Callable[[
 
 
 def _cmd_mosaic(args: argparse.Namespace, config) -> int:
-    from pipeline.runner import mosaic_dir, mosaic_status, run_mosaic
+    from pipeline.runner import LOG_NAME, mosaic_dir, mosaic_status, run_mosaic
+    from pipeline.runner._logging import TextProgress, cli_logging
 
     if args.status:
         if args.tiles is not None or args.force:
@@ -528,8 +549,15 @@ def main(args: Sequence[str] | None = None) -> int:
     args : sequence of str, optional
         Arguments without the program name; default ``sys.argv[1:]``.
     """
-    with astropy_offline():  # for this call only: astropy never downloads
-        return _main(args)
+    parser = _parser()
+    try:
+        options = parser.parse_args(args)
+    except SystemExit as exc:  # --help, --version, usage errors
+        return int(exc.code or 0)
+    from pipeline._offline import astropy_offline
+
+    with astropy_offline():  # for this command only: astropy never downloads
+        return _main(options)
 
 
 def run() -> NoReturn:
@@ -560,12 +588,9 @@ def exit_now(code: int) -> NoReturn:
     os._exit(code)
 
 
-def _main(args: Sequence[str] | None) -> int:
-    parser = _parser()
-    try:
-        options = parser.parse_args(args)
-    except SystemExit as exc:  # --help, --version, usage errors
-        return int(exc.code or 0)
+def _main(options: argparse.Namespace) -> int:
+    from pipeline.config import load_config
+
     options.verbose += options.verbose_after
     if options.command == "nightly":
         return _cmd_nightly(options)

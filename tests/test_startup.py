@@ -58,6 +58,23 @@ def test_importing_the_command_line_loads_no_heavy_library():
     assert _heavy_imported("import pipeline.cli", HEAVY + NOT_AT_START) == []
 
 
+def test_help_and_usage_errors_import_nothing_but_the_command_line():
+    # zdrift --help, --version and a bad command line parse the arguments
+    # only: not even numpy, astropy, pydantic or YAML (~0.4 s of CPU).
+    light = ("astropy", "numpy", "pydantic", "yaml", "pipeline.config", "pipeline.runner")
+    for args, status in ((["--help"], 0), (["--version"], 0), (["no-such-command"], 2)):
+        code = f"from pipeline.cli import main\nassert main({args!r}) == {status}"
+        assert _heavy_imported(code, light) == [], args
+
+
+def test_the_command_lines_constants_are_the_runners():
+    # the command line names them without importing the runner
+    from pipeline import cli, runner
+
+    assert runner.REPORT_PAGE[0] == cli.REPORT_STAGE
+    assert runner.NIGHT_CONFIG_NAME == cli.NIGHT_CONFIG_NAME
+
+
 def test_reading_a_config_loads_no_heavy_library():
     """Every stage's options, through the graph, from the template config."""
     template = Path(__file__).parents[1] / "configs" / "template.yaml"
