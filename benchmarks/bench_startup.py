@@ -20,9 +20,12 @@ and the wall time of a whole ``python -m pipeline --help`` process
 tree, alternately (a drifting load on a shared machine hits both alike), the
 tree chosen by ``PYTHONPATH``; it prints each figure's median for both trees
 and their ratio (other / this: above 1, this tree starts faster).  Python's
-byte-code cache goes to ``--pycache`` (default: a folder in the system's
-temporary folder), so that neither tree compiles its sources in the timed
-runs when ``PYTHONDONTWRITEBYTECODE`` is set.  Run::
+byte-code cache of both trees and of the libraries goes to ``--pycache``
+(default: a folder in the system's temporary folder; with
+``PYTHONPYCACHEPREFIX`` set, Python reads byte code from there only), and
+is written whatever ``PYTHONDONTWRITEBYTECODE`` says: an untimed first
+round fills it, so that no timed run compiles sources (with the variable
+set, every import would compile its module, seconds in all).  Run::
 
     python benchmarks/bench_startup.py [--against OTHER_TREE] [--rounds 5]
 """
@@ -88,6 +91,7 @@ def help_wall(tree: pathlib.Path, env: dict[str, str]) -> float:
 def run_tree(tree: pathlib.Path, pycache: str) -> dict[str, float]:
     """All figures for source tree ``tree``, each from a fresh process."""
     env = {**os.environ, "PYTHONPATH": str(tree), "PYTHONPYCACHEPREFIX": pycache}
+    env.pop("PYTHONDONTWRITEBYTECODE", None)  # fill the cache (see the module docstring)
     child = subprocess.run(
         [sys.executable, __file__, "--child"],
         env=env,

@@ -17,13 +17,13 @@ wants it.  :func:`load_earth_orientation` reads the bundled tables ahead of
 their first use (a worker process does it as it starts), from a per-user
 cache of the parsed table when there is one.
 
-Going offline imports neither ``astropy.utils.iers`` (with ``astropy.table``,
-~0.3 s of CPU) nor ``astropy.utils.data``: astropy's configuration items read
-their value from its configuration store (:func:`astropy.config.get_config`,
-the in-memory form of ``astropy.cfg``) each time they are used, so the
-settings are written there, where the modules find them once a stage
-imports them.  A command that never needs Earth orientation (``zdrift
-status``, a run with everything up to date) does not load the tables' code.
+Going offline imports neither ``astropy.utils.iers`` (which brings
+``astropy.table`` and ``astropy.io.fits``) nor ``astropy.utils.data``:
+astropy's configuration items read their value from its configuration store
+(:func:`astropy.config.get_config`, the in-memory form of ``astropy.cfg``)
+each time they are used, so the settings are written there, where the
+modules find them once a stage imports them: the command line does not
+load the tables' code before a command needs it.
 """
 
 from __future__ import annotations

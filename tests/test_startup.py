@@ -116,7 +116,7 @@ def test_status_loads_no_heavy_library(done_night):
 
 
 #: What the stages of a run from raw blocks to zero points do without: scipy.signal
-#: and scipy.stats (~0.45 s of CPU: pipeline.stages._signal and scipy.special do
+#: and scipy.stats (0.2 s of CPU: pipeline.stages._signal and scipy.special do
 #: their share), photutils.segmentation (with astropy.modeling and
 #: astropy.convolution; the stage has its own Segmentation).
 NOT_IN_A_RUN = ("astropy.modeling", "photutils.segmentation", "scipy.signal", "scipy.stats")

@@ -3,11 +3,12 @@
 The stages use four functions of :mod:`scipy.signal`: ``savgol_coeffs``,
 ``savgol_filter`` (``mode='interp'``), ``fftconvolve`` and ``oaconvolve``.
 Importing ``scipy.signal`` loads its whole package (windows, filter design,
-LTI systems, and with them ``scipy.stats``): ~0.45 s of CPU, once per process,
-on a run's critical path.  These are the same computations on
-:mod:`scipy.fft`, :mod:`scipy.linalg` and :mod:`scipy.ndimage` (which the
-stages load anyway), step for step as scipy 1.17 makes them for real NumPy
-arrays, so that they return the same numbers to the bit; ``tests/test_signal.py``
+LTI systems, ``scipy.stats``, ``scipy.interpolate``): 0.3 s of CPU once per
+process, 0.2 s beyond the libraries a run loads anyway, on its critical
+path.  These are the same computations on :mod:`scipy.fft`,
+:mod:`scipy.linalg` and :mod:`scipy.ndimage` (which the stages load
+anyway), step for step as scipy 1.17 makes them for real NumPy arrays, so
+that they return the same numbers to the bit; ``tests/test_signal.py``
 checks them against ``scipy.signal``.
 """
 

@@ -611,7 +611,7 @@ class Segmentation:
     The attributes of the same names as photutils' hold the same values for
     the same segments (``tests/test_detect.py`` compares them); photutils'
     class is not used itself because ``photutils.segmentation`` imports
-    scipy.signal, scipy.stats and astropy.modeling (~0.3 s of CPU per
+    scipy.signal, scipy.stats and astropy.modeling (0.2 s of CPU per
     process).  Not a general container: the stage's functions make and
     change it (:func:`segment_map`, :func:`deblend_segments`,
     :func:`pipeline.stages.detect._saturated.merge_on_footprints`).
