@@ -102,3 +102,27 @@ def test_no_cache_folder_parses(tmp_path, monkeypatch):
     monkeypatch.setenv("HOME", str(tmp_path))
     load_earth_orientation()
     assert iers.IERS_Auto.iers_table is not None and not list(tmp_path.rglob("*.pickle"))
+
+
+def test_the_geometry_takes_the_tables_from_the_cache(fresh_table, monkeypatch):
+    # A process that did not warm up (serial executor, a script) builds the
+    # sky geometry: it must take the parsed tables from the cache, not have
+    # astropy parse their text again (~0.45 s of CPU), and compute the same.
+    from astropy.time import Time
+
+    from pipeline.geometry import Site
+    from pipeline.geometry.zenith import ZenithAxis
+
+    site, start = Site(latitude=50.0, longitude=-1.0), Time("2024-03-01T00:00", scale="utc")
+    parsed = ZenithAxis(site, start, 0.0, 600.0, 0.01)  # the first parses, writes the cache
+    assert list(fresh_table.glob("iers-auto-*.pickle"))
+    iers.IERS_Auto.iers_table = None
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("astropy parsed the IERS text tables")
+
+    monkeypatch.setattr(iers.IERS_Auto, "read", refuse)
+    cached = ZenithAxis(site, start, 0.0, 600.0, 0.01)
+    assert iers.IERS_Auto.iers_table is not None
+    for name in ("_coef_axis", "_coef_fwd", "_coef_inv"):  # bit for bit
+        assert np.array_equal(getattr(cached, name), getattr(parsed, name)), name

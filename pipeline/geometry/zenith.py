@@ -47,6 +47,7 @@ from astropy.coordinates import ICRS, SkyCoord
 from astropy.time import Time
 from numpy.typing import ArrayLike
 
+from pipeline._offline import load_earth_orientation
 from pipeline.geometry.instrument import Site
 from pipeline.geometry.optics import ARCSEC_PER_RADIAN
 from pipeline.geometry.sitetime import altaz_frame, offline_astropy_warnings, times_since
@@ -245,6 +246,11 @@ class ZenithAxis:
     def _build(self, n_grid: int) -> None:
         from scipy.interpolate import CubicSpline
 
+        # The transformations need Earth orientation: the bundled tables from
+        # the per-user cache when it holds them (~10 ms), instead of astropy
+        # parsing their text (~0.45 s) in a process that did not warm up
+        # (the serial executor, scripts); the same table either way.
+        load_earth_orientation()
         s = self.field_radius
         a = self.basis[2]
         axis_alt = np.arcsin(a[2])
