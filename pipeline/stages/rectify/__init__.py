@@ -657,9 +657,15 @@ def _run(*, inputs, options: RectifyOptions, context) -> dict[str, Any]:
 
 
 #: What a worker loads as it starts for rectify (``Stage.warm``): the
-#: deconvolution's FFTs, the track splines and the Earth-orientation tables the
-#: night's geometry model reads.
-WARM = ("scipy.fft", "scipy.interpolate", "pipeline._offline:load_earth_orientation")
+#: deconvolution's FFTs, the track splines, the Earth-orientation tables the
+#: night's geometry model reads and the resampling's compiled loops (numba's
+#: disk cache).
+WARM = (
+    "scipy.fft",
+    "scipy.interpolate",
+    "pipeline._offline:load_earth_orientation",
+    "pipeline.stages.rectify._resample_jit",
+)
 
 #: Declaration of the rectify stage for the runner.  Its per-stretch products
 #: cover the rectified columns of the stretch's core rows only (not its margins).

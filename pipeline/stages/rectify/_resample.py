@@ -56,10 +56,6 @@ __all__ = [
 #: value that reproduces quadratics (third-order accurate).
 KEYS_A = -0.5
 
-#: Rows (pass 1) or output rows (pass 2) handled at once, so that the working
-#: set stays in the processor cache.
-_CHUNK = 64
-
 
 def keys_weights(frac: np.ndarray) -> np.ndarray:
     """Weights of the Keys (a = -0.5) cubic-convolution kernel.
@@ -127,14 +123,6 @@ def transposed(array: np.ndarray, tile: int = 256) -> np.ndarray:
     return out
 
 
-def _runs(values: np.ndarray) -> list[tuple[int, int, int]]:
-    """Maximal runs ``[start, stop)`` of equal integers in ``values``."""
-    cut = np.flatnonzero(np.diff(values)) + 1
-    starts = np.concatenate([[0], cut])
-    stops = np.concatenate([cut, [values.size]])
-    return [(int(a), int(b), int(values[a])) for a, b in zip(starts, stops, strict=True)]
-
-
 def _cleaned(
     image: np.ndarray,
     variance: np.ndarray,
@@ -157,24 +145,6 @@ def _cleaned(
     var = np.where(finite, var, 0).astype(dtype, copy=False)
     msk = mask | np.where(finite, 0, nonfinite_bit).astype(mask.dtype)
     return img, var, msk
-
-
-def _add_tap(out, vout, mout, src, vsrc, msrc, w, w2, nonzero, scratch) -> None:
-    """``out += w src``, ``vout += w2 vsrc``, ``mout |= msrc`` where ``nonzero``."""
-    tmp = scratch[: out.shape[0], : out.shape[1]]
-    np.multiply(src, w, out=tmp)
-    out += tmp
-    np.multiply(vsrc, w2, out=tmp)
-    vout += tmp
-    if nonzero.all():
-        mout |= msrc
-    else:
-        mout |= msrc * nonzero
-
-
-def _flag(mout: np.ndarray, outside_bit: int, nonzero: np.ndarray) -> None:
-    if mout.size:
-        mout |= np.asarray(outside_bit, mout.dtype) * nonzero
 
 
 def _check_planes(image: np.ndarray, variance: np.ndarray, mask: np.ndarray) -> None:
@@ -223,6 +193,43 @@ def _block_weights(
     return base, weights.astype(dtype), (weights * weights).astype(dtype), weights != 0
 
 
+def _columns_setup(image, variance, mask, positions, jacobian, breaks, nonfinite_bit):
+    """Pass 1's checked inputs: cleaned planes, clamped positions, Jacobians, breaks, outputs."""
+    _check_planes(image, variance, mask)
+    n_rows, n_cols = image.shape
+    width = np.shape(positions)[-1] if np.ndim(positions) else -1
+    pos, breaks = _blocks(positions, breaks, n_rows, width, "positions")
+    n_out = pos.shape[1]
+    jac = np.broadcast_to(np.asarray(jacobian, dtype=float), pos.shape)
+    dtype = np.dtype(np.float32 if image.dtype == np.float32 else np.float64)
+    # Far-off positions are clamped; their non-zero taps fall outside and flag them.
+    pos = np.clip(pos, -2.0, n_cols + 1.0)
+    planes = _cleaned(image, variance, mask, nonfinite_bit, dtype)
+    out = np.zeros((n_rows, n_out), dtype)
+    vout = np.zeros((n_rows, n_out), dtype)
+    mout = np.zeros((n_rows, n_out), mask.dtype)
+    return planes, pos, jac, breaks, (out, vout, mout)
+
+
+def _rows_setup(image, variance, mask, offsets, n_out, jacobian, breaks, nonfinite_bit):
+    """Pass 2's checked inputs: cleaned planes, clamped offsets, Jacobians, breaks, outputs."""
+    _check_planes(image, variance, mask)
+    n_rows, n_cols = image.shape
+    if n_out < 0:
+        raise ValueError(f"n_out must be >= 0; got {n_out}.")
+    off, breaks = _blocks(offsets, breaks, n_out, n_cols, "offsets")
+    jac = np.broadcast_to(np.asarray(jacobian, dtype=float), off.shape)
+    dtype = np.dtype(np.float32 if image.dtype == np.float32 else np.float64)
+    # Clamp so that the integer bases stay small; a clamped column is flagged
+    # outside wherever its taps reach beyond the input.
+    off = np.clip(off, -2.0 - n_out, n_rows + 1.0)
+    planes = _cleaned(image, variance, mask, nonfinite_bit, dtype)
+    out = np.zeros((n_out, n_cols), dtype)
+    vout = np.zeros((n_out, n_cols), dtype)
+    mout = np.zeros((n_out, n_cols), mask.dtype)
+    return planes, off, jac, breaks, (out, vout, mout)
+
+
 def resample_columns(
     image: np.ndarray,
     variance: np.ndarray,
@@ -263,48 +270,16 @@ def resample_columns(
     mask : ndarray, shape (n_rows, n_out)
         Same dtype as the input mask.
     """
-    _check_planes(image, variance, mask)
-    n_rows, n_cols = image.shape
-    width = np.shape(positions)[-1] if np.ndim(positions) else -1
-    pos, breaks = _blocks(positions, breaks, n_rows, width, "positions")
-    n_out = pos.shape[1]
-    jac = np.broadcast_to(np.asarray(jacobian, dtype=float), pos.shape)
-    dtype = np.dtype(np.float32 if image.dtype == np.float32 else np.float64)
-    # Far-off positions are clamped; their non-zero taps fall outside and flag them.
-    pos = np.clip(pos, -2.0, n_cols + 1.0)
-    src, vsrc, msrc = _cleaned(image, variance, mask, nonfinite_bit, dtype)
-    out = np.zeros((n_rows, n_out), dtype)
-    vout = np.zeros((n_rows, n_out), dtype)
-    mout = np.zeros((n_rows, n_out), mask.dtype)
-    scratch = np.empty((_CHUNK, n_out), dtype)
-    index = np.arange(n_out)
+    from pipeline.stages.rectify._resample_jit import resample_columns_block
+
+    planes, pos, jac, breaks, (out, vout, mout) = _columns_setup(
+        image, variance, mask, positions, jacobian, breaks, nonfinite_bit
+    )
+    outside = np.uint64(outside_bit)
     for block in range(pos.shape[0]):
-        j0, w, w2, nonzero = _block_weights(pos[block], jac[block], dtype)
-        runs = _runs(j0 - index)
-        for r0 in range(int(breaks[block]), int(breaks[block + 1]), _CHUNK):
-            r1 = min(r0 + _CHUNK, int(breaks[block + 1]))
-            for a, b, offset in runs:
-                for k in range(4):
-                    s = a + offset + k - 1  # source column of output column a
-                    lo, hi = max(s, 0), min(s + b - a, n_cols)
-                    oa, ob = a + lo - s, a + hi - s  # output columns with a source
-                    if hi > lo:
-                        cols = slice(oa, ob)
-                        _add_tap(
-                            out[r0:r1, cols],
-                            vout[r0:r1, cols],
-                            mout[r0:r1, cols],
-                            src[r0:r1, lo:hi],
-                            vsrc[r0:r1, lo:hi],
-                            msrc[r0:r1, lo:hi],
-                            w[k, cols],
-                            w2[k, cols],
-                            nonzero[k, cols],
-                            scratch,
-                        )
-                    oa, ob = min(max(oa, a), b), min(max(ob, a), b)
-                    _flag(mout[r0:r1, a:oa], outside_bit, nonzero[k, a:oa])
-                    _flag(mout[r0:r1, ob:b], outside_bit, nonzero[k, ob:b])
+        j0, w, w2, nonzero = _block_weights(pos[block], jac[block], out.dtype)
+        rows = (int(breaks[block]), int(breaks[block + 1]))
+        resample_columns_block(*planes, out, vout, mout, *rows, j0, w, w2, nonzero, outside)
     return out, vout, mout
 
 
@@ -348,46 +323,14 @@ def shift_rows(
     -------
     image, variance, mask : ndarray, shape (n_out, n_columns)
     """
-    _check_planes(image, variance, mask)
-    n_rows, n_cols = image.shape
-    if n_out < 0:
-        raise ValueError(f"n_out must be >= 0; got {n_out}.")
-    off, breaks = _blocks(offsets, breaks, n_out, n_cols, "offsets")
-    jac = np.broadcast_to(np.asarray(jacobian, dtype=float), off.shape)
-    dtype = np.dtype(np.float32 if image.dtype == np.float32 else np.float64)
-    # Clamp so that the integer bases stay small; a clamped column is flagged
-    # outside wherever its taps reach beyond the input.
-    off = np.clip(off, -2.0 - n_out, n_rows + 1.0)
-    src, vsrc, msrc = _cleaned(image, variance, mask, nonfinite_bit, dtype)
-    out = np.zeros((n_out, n_cols), dtype)
-    vout = np.zeros((n_out, n_cols), dtype)
-    mout = np.zeros((n_out, n_cols), mask.dtype)
-    scratch = np.empty((_CHUNK, n_cols), dtype)
+    from pipeline.stages.rectify._resample_jit import shift_rows_block
+
+    planes, off, jac, breaks, (out, vout, mout) = _rows_setup(
+        image, variance, mask, offsets, n_out, jacobian, breaks, nonfinite_bit
+    )
+    outside = np.uint64(outside_bit)
     for block in range(off.shape[0]):
-        i0, w, w2, nonzero = _block_weights(off[block], jac[block], dtype)
-        runs = _runs(i0)
-        for x0 in range(int(breaks[block]), int(breaks[block + 1]), _CHUNK):
-            x1 = min(x0 + _CHUNK, int(breaks[block + 1]))
-            for a, b, base in runs:
-                cols = slice(a, b)
-                for k in range(4):
-                    s = base + x0 + k - 1  # source row of output row x0
-                    lo, hi = max(s, 0), min(s + x1 - x0, n_rows)
-                    oa, ob = x0 + lo - s, x0 + hi - s  # output rows with a source
-                    if hi > lo:
-                        _add_tap(
-                            out[oa:ob, cols],
-                            vout[oa:ob, cols],
-                            mout[oa:ob, cols],
-                            src[lo:hi, cols],
-                            vsrc[lo:hi, cols],
-                            msrc[lo:hi, cols],
-                            w[k, cols],
-                            w2[k, cols],
-                            nonzero[k, cols],
-                            scratch,
-                        )
-                    oa, ob = min(max(oa, x0), x1), min(max(ob, x0), x1)
-                    _flag(mout[x0:oa, cols], outside_bit, nonzero[k, cols])
-                    _flag(mout[ob:x1, cols], outside_bit, nonzero[k, cols])
+        i0, w, w2, nonzero = _block_weights(off[block], jac[block], out.dtype)
+        rows = (int(breaks[block]), int(breaks[block + 1]))
+        shift_rows_block(*planes, out, vout, mout, *rows, i0, w, w2, nonzero, outside)
     return out, vout, mout

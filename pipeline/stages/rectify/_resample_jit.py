@@ -1,0 +1,83 @@
+"""The compiled loops of the rectify stage's two resampling passes.
+
+:func:`pipeline.stages.rectify._resample.resample_columns` and
+:func:`~pipeline.stages.rectify._resample.shift_rows` hand each block of rows
+to one loop here.  Per output pixel it adds the four taps in their order,
+each as the numpy passes it replaced did for a whole chunk at once (kept in
+``tests/_rectify_reference.py``): ``out += w src`` and ``var += w2 vsrc`` in
+the planes' dtype, the flags OR-ed where the tap's weight is non-zero, and
+the ``outside`` bit where such a tap falls beyond the input.  The same
+operations on the same values in the same order give the same bits: no
+fused multiply-add (no ``fastmath``), and no constant that would widen a
+float32 sum.  One pass over the output instead of four read-modify-writes
+of whole chunks per tap (plus a scratch plane) is what makes it cheaper.
+
+Kept apart so that numba is imported only when a stretch is first rectified
+(the stage's ``Stage.warm`` loads it, with numba's disk cache, as a worker
+starts).
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+
+__all__ = ["resample_columns_block", "shift_rows_block"]
+
+
+@numba.njit(cache=True, nogil=True)
+def resample_columns_block(
+    src, vsrc, msrc, out, vout, mout, r0, r1, base, w, w2, nonzero, outside_bit
+):
+    """Pass 1 for rows ``[r0, r1)``: output column ``o`` reads ``base[o] - 1 ... base[o] + 2``.
+
+    ``out``, ``vout`` and ``mout`` hold zeros and are filled in place;
+    ``w``, ``w2`` and ``nonzero`` have shape ``(4, n_out)``.
+    """
+    n_cols = src.shape[1]
+    n_out = out.shape[1]
+    for r in range(r0, r1):
+        for o in range(n_out):
+            value = out[r, o]
+            var = vout[r, o]
+            flags = np.uint64(mout[r, o])  # one unsigned type for all the ORs
+            for k in range(4):
+                s = base[o] + k - 1
+                if 0 <= s < n_cols:
+                    value += w[k, o] * src[r, s]
+                    var += w2[k, o] * vsrc[r, s]
+                    if nonzero[k, o]:
+                        flags |= np.uint64(msrc[r, s])
+                elif nonzero[k, o]:
+                    flags |= outside_bit
+            out[r, o] = value
+            vout[r, o] = var
+            mout[r, o] = flags
+
+
+@numba.njit(cache=True, nogil=True)
+def shift_rows_block(src, vsrc, msrc, out, vout, mout, x0, x1, base, w, w2, nonzero, outside_bit):
+    """Pass 2 for output rows ``[x0, x1)``: row ``x`` of column ``y`` reads ``base[y] + x - 1 ...``.
+
+    As :func:`resample_columns_block`, with ``w``, ``w2`` and ``nonzero`` of
+    shape ``(4, n_columns)``.
+    """
+    n_rows = src.shape[0]
+    n_cols = out.shape[1]
+    for x in range(x0, x1):
+        for y in range(n_cols):
+            value = out[x, y]
+            var = vout[x, y]
+            flags = np.uint64(mout[x, y])
+            for k in range(4):
+                s = base[y] + x + k - 1
+                if 0 <= s < n_rows:
+                    value += w[k, y] * src[s, y]
+                    var += w2[k, y] * vsrc[s, y]
+                    if nonzero[k, y]:
+                        flags |= np.uint64(msrc[s, y])
+                elif nonzero[k, y]:
+                    flags |= outside_bit
+            out[x, y] = value
+            vout[x, y] = var
+            mout[x, y] = flags

@@ -1,0 +1,86 @@
+"""The rectify stage's compiled resampling loops against the numpy passes they replaced.
+
+The numpy passes (``tests/_rectify_reference.py``) are what the analytic
+tests of ``test_rectify_resample.py`` were first written against; these are
+self-consistency checks, not external truth: the compiled passes must give
+the same bytes, since the stage's products must not change with the speed-up.
+"""
+
+import numpy as np
+import pytest
+
+from pipeline.stages.rectify._resample import resample_columns, shift_rows
+from tests._rectify_reference import resample_columns_numpy, shift_rows_numpy
+
+OUT = 1 << 8
+NONFINITE = 1 << 5
+BITS = {"outside_bit": OUT, "nonfinite_bit": NONFINITE}
+
+
+def _planes(rng, shape, dtype):
+    """Noisy planes with random flags and a few non-finite values."""
+    image = rng.normal(100.0, 30.0, shape).astype(dtype)
+    variance = rng.uniform(1.0, 50.0, shape).astype(dtype)
+    mask = rng.choice(
+        np.array([0, 1, 2, 4, 1 << 12], np.uint16), shape, p=[0.8, 0.05, 0.05, 0.05, 0.05]
+    )
+    image.flat[rng.choice(image.size, 5, replace=False)] = np.nan
+    variance.flat[rng.choice(image.size, 3, replace=False)] = np.inf
+    return image, variance, mask
+
+
+def _positions(rng, n_blocks, n_out, n_in):
+    """Positions per block: rising with a non-unit slope, exact integers, falling, far off."""
+    index = np.arange(n_out, dtype=float)
+    rows = [
+        rng.uniform(-1.0, 1.0) + index * 0.93,  # a slope: bases that skip
+        np.round(rng.uniform(-3.0, 3.0)) + index,  # integer positions: zero-weight taps
+        n_in - 1.3 - index * 1.07,  # falling
+        np.linspace(-40.0, n_in + 40.0, n_out),  # far beyond both edges
+    ]
+    return np.array([rows[b % len(rows)] for b in range(n_blocks)])
+
+
+def _same_bytes(got, expected):
+    for a, b in zip(got, expected, strict=True):
+        assert a.dtype == b.dtype and a.shape == b.shape
+        assert a.tobytes() == b.tobytes()
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_compiled_columns_pass_gives_the_numpy_bytes(dtype, seed):
+    rng = np.random.default_rng(seed)
+    n_rows, n_cols, n_out = 150, 47, 61
+    planes = _planes(rng, (n_rows, n_cols), dtype)
+    positions = _positions(rng, 4, n_out, n_cols)
+    jacobian = rng.uniform(0.8, 1.2, positions.shape)
+    breaks = np.array([0, 37, 37, 101, n_rows])  # one empty block
+    args = (*planes, positions, jacobian)
+    _same_bytes(
+        resample_columns(*args, breaks=breaks, **BITS),
+        resample_columns_numpy(*args, breaks=breaks, **BITS),
+    )
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_compiled_rows_pass_gives_the_numpy_bytes(dtype, seed):
+    rng = np.random.default_rng(seed)
+    n_rows, n_cols, n_out = 90, 53, 130
+    planes = _planes(rng, (n_rows, n_cols), dtype)
+    # Offsets per block and column: sub-pixel phases, integers, and far off.
+    offsets = np.stack(
+        [
+            rng.uniform(-5.0, 5.0, n_cols),
+            np.round(rng.uniform(-3.0, 3.0, n_cols)),
+            rng.uniform(-200.0, 200.0, n_cols),
+        ]
+    )
+    jacobian = rng.uniform(0.9, 1.1, offsets.shape)
+    breaks = np.array([0, 70, 71, n_out])
+    args = (*planes, offsets, n_out, jacobian)
+    _same_bytes(
+        shift_rows(*args, breaks=breaks, **BITS),
+        shift_rows_numpy(*args, breaks=breaks, **BITS),
+    )
