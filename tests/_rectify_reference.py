@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from pipeline.stages.rectify._noise import _at_offsets, _cross_sums
 from pipeline.stages.rectify._resample import _block_weights, _columns_setup, _rows_setup
 
 #: Rows (pass 1) or output rows (pass 2) handled at once, so that the working
@@ -139,3 +140,27 @@ def shift_rows_numpy(
                     _flag(mout[x0:oa, cols], outside_bit, nonzero[k, cols])
                     _flag(mout[ob:x1, cols], outside_bit, nonzero[k, cols])
     return out, vout, mout
+
+
+def noise_power_numpy(noise, chunk: int = 1024) -> tuple[np.ndarray, np.ndarray]:
+    """:meth:`pipeline.stages.rectify._noise.RectifiedNoise.power` in numpy."""
+    lag_y, _ = noise.lags()
+    n_y = noise.n_y
+    w, u, _, base_y = noise._weights
+    total_w = w.sum(axis=0)  # (nb, n_y)
+    zero_frequency = np.zeros(noise.shifts.shape)
+    variance = np.empty(noise.shifts.shape)
+    for lo in range(0, n_y, chunk):
+        rows = np.arange(lo, min(lo + chunk, n_y))
+        block = noise._pass1_blocks(rows)
+        u1 = u[:, block, rows]
+        variance[:, rows] = np.sum(w[:, :, rows] ** 2, axis=0) * np.sum(u1**2, axis=0)
+        for ly in range(-lag_y, lag_y + 1):
+            y2 = rows + ly
+            both = (y2 >= 0) & (y2 < n_y)
+            y2 = np.clip(y2, 0, n_y - 1)
+            offset_y = base_y[block, y2] - base_y[block, rows]  # (nb, n)
+            across = _at_offsets(_cross_sums(u1, u[:, block, y2]), offset_y[..., None])
+            along = total_w[:, rows] * total_w[:, y2]
+            zero_frequency[:, rows] += np.where(both, along * across[..., 0], 0.0)
+    return zero_frequency, variance

@@ -1,16 +1,18 @@
-"""The rectify stage's compiled resampling loops against the numpy passes they replaced.
+"""The rectify stage's compiled loops against the numpy code they replaced.
 
-The numpy passes (``tests/_rectify_reference.py``) are what the analytic
-tests of ``test_rectify_resample.py`` were first written against; these are
-self-consistency checks, not external truth: the compiled passes must give
-the same bytes, since the stage's products must not change with the speed-up.
+The numpy code (``tests/_rectify_reference.py``) is what the analytic tests
+of ``test_rectify_resample.py`` and the covariance check of
+``test_rectify_noise.py`` were first written against; these are
+self-consistency checks, not external truth: the compiled loops must give the
+same bytes, since the stage's products must not change with the speed-up.
 """
 
 import numpy as np
 import pytest
 
 from pipeline.stages.rectify._resample import resample_columns, shift_rows
-from tests._rectify_reference import resample_columns_numpy, shift_rows_numpy
+from tests._rectify_reference import noise_power_numpy, resample_columns_numpy, shift_rows_numpy
+from tests.test_rectify_noise import _noise
 
 OUT = 1 << 8
 NONFINITE = 1 << 5
@@ -84,3 +86,10 @@ def test_compiled_rows_pass_gives_the_numpy_bytes(dtype, seed):
         shift_rows(*args, breaks=breaks, **BITS),
         shift_rows_numpy(*args, breaks=breaks, **BITS),
     )
+
+
+@pytest.mark.parametrize(("scale", "chunk", "seed"), [(0.6, 1024, 0), (0.6, 37, 1), (1.7, 64, 2)])
+def test_compiled_noise_power_gives_the_numpy_bytes(scale, chunk, seed):
+    # Rows finer (0.6) and coarser (1.7) than the camera's: many row lags or few.
+    noise = _noise(scale=scale, seed=seed)
+    _same_bytes(noise.power(chunk=chunk), noise_power_numpy(noise, chunk=chunk))

@@ -150,16 +150,22 @@ class RectifiedNoise:
             out[:, start - lo : stop - lo] = self._covariance_rows(np.arange(start, stop), lags)
         return out
 
+    def _pass1_blocks(self, rows: np.ndarray) -> np.ndarray:
+        """The pass-1 block that holds the strip row each pass-2 block reads at ``rows``.
+
+        Returns an ndarray of int, shape ``(n_blocks, rows.size)``.
+        """
+        strip_rows = self.x_centres[:, None] + self.shifts[:, rows]
+        block = np.searchsorted(self.row_starts, strip_rows, side="right") - 1
+        return np.clip(block, 0, self.positions.shape[0] - 1)
+
     def _covariance_rows(self, rows: np.ndarray, lags: tuple[int, int]) -> np.ndarray:
         lag_y, lag_x = lags
         n_y = self.n_y
         inside = (rows >= 0) & (rows < n_y)
         y1 = np.clip(rows, 0, n_y - 1)
         w, u, base_x, base_y = self._weights
-        # The pass-1 block that holds the strip row a pass-2 block reads at each row.
-        strip_rows = self.x_centres[:, None] + self.shifts[:, y1]
-        block = np.searchsorted(self.row_starts, strip_rows, side="right") - 1
-        block = np.clip(block, 0, self.positions.shape[0] - 1)  # (nb, n)
+        block = self._pass1_blocks(y1)
         out = np.zeros((self.shifts.shape[0], rows.size, 2 * lag_y + 1, 2 * lag_x + 1))
         shifts_x = np.arange(-lag_x, lag_x + 1)
         for ly in range(-lag_y, lag_y + 1):
@@ -198,6 +204,8 @@ class RectifiedNoise:
             is the large-aperture factor of :func:`noise_correlation_factor
             <pipeline.stages.rectify._resample.noise_correlation_factor>`.
         """
+        from pipeline.stages.rectify._resample_jit import zero_frequency_rows
+
         lag_y, _ = self.lags()
         n_y = self.n_y
         w, u, _, base_y = self._weights
@@ -206,18 +214,8 @@ class RectifiedNoise:
         variance = np.empty(self.shifts.shape)
         for lo in range(0, n_y, chunk):
             rows = np.arange(lo, min(lo + chunk, n_y))
-            # The pass-1 block that holds the strip row a pass-2 block reads at each row.
-            strip_rows = self.x_centres[:, None] + self.shifts[:, rows]
-            block = np.searchsorted(self.row_starts, strip_rows, side="right") - 1
-            block = np.clip(block, 0, self.positions.shape[0] - 1)  # (nb, n)
+            block = self._pass1_blocks(rows)
             u1 = u[:, block, rows]
             variance[:, rows] = np.sum(w[:, :, rows] ** 2, axis=0) * np.sum(u1**2, axis=0)
-            for ly in range(-lag_y, lag_y + 1):
-                y2 = rows + ly
-                both = (y2 >= 0) & (y2 < n_y)
-                y2 = np.clip(y2, 0, n_y - 1)
-                offset_y = base_y[block, y2] - base_y[block, rows]  # (nb, n)
-                across = _at_offsets(_cross_sums(u1, u[:, block, y2]), offset_y[..., None])
-                along = total_w[:, rows] * total_w[:, y2]
-                zero_frequency[:, rows] += np.where(both, along * across[..., 0], 0.0)
+            zero_frequency_rows(u, base_y, block, rows, total_w, lag_y, zero_frequency)
         return zero_frequency, variance

@@ -1,4 +1,4 @@
-"""The compiled loops of the rectify stage's two resampling passes.
+"""The compiled loops of the rectify stage: its two resampling passes and its noise power.
 
 :func:`pipeline.stages.rectify._resample.resample_columns` and
 :func:`~pipeline.stages.rectify._resample.shift_rows` hand each block of rows
@@ -12,6 +12,10 @@ fused multiply-add (no ``fastmath``), and no constant that would widen a
 float32 sum.  One pass over the output instead of four read-modify-writes
 of whole chunks per tap (plus a scratch plane) is what makes it cheaper.
 
+:func:`zero_frequency_rows` does the same for the row-lag sum of the noise
+power (:meth:`pipeline.stages.rectify._noise.RectifiedNoise.power`), which
+formed all seven tap offsets of every pair of rows to pick one.
+
 Kept apart so that numba is imported only when a stretch is first rectified
 (the stage's ``Stage.warm`` loads it, with numba's disk cache, as a worker
 starts).
@@ -22,7 +26,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-__all__ = ["resample_columns_block", "shift_rows_block"]
+__all__ = ["resample_columns_block", "shift_rows_block", "zero_frequency_rows"]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -81,3 +85,34 @@ def shift_rows_block(src, vsrc, msrc, out, vout, mout, x0, x1, base, w, w2, nonz
             out[x, y] = value
             vout[x, y] = var
             mout[x, y] = flags
+
+
+@numba.njit(cache=True, nogil=True)
+def zero_frequency_rows(u, base_y, block, rows, total_w, lag_y, zero_frequency):
+    """Add ``sum_l_y W(y) W(y + l_y) S_y(y, l_y)`` to ``zero_frequency[:, rows]``.
+
+    The row-lag sum of :meth:`pipeline.stages.rectify._noise.RectifiedNoise.power`
+    for pass-2 blocks ``b`` reading pass-1 blocks ``block[b, i]`` at rows
+    ``rows[i]``, in the numpy loop's order: lags from ``-lag_y`` up, each
+    ``S_y`` summed over the taps ``k`` in order, and 0 added for a lag beyond
+    the image.
+    """
+    n_y = total_w.shape[1]
+    for b in range(block.shape[0]):
+        for i in range(rows.size):
+            y1 = rows[i]
+            first = block[b, i]
+            total = zero_frequency[b, y1]
+            for ly in range(-lag_y, lag_y + 1):
+                y2 = min(max(y1 + ly, 0), n_y - 1)
+                offset = base_y[first, y2] - base_y[first, y1]
+                across = 0.0
+                for k in range(4):
+                    j = k - offset
+                    if 0 <= j < 4:
+                        across += u[k, first, y1] * u[j, first, y2]
+                if 0 <= y1 + ly < n_y:
+                    total += total_w[b, y1] * total_w[b, y2] * across
+                else:
+                    total += 0.0
+            zero_frequency[b, y1] = total
