@@ -3,6 +3,7 @@
 Run::
 
     python benchmarks/bench_rectify.py [--columns 4096] [--rows 4096] [--repeat 3]
+        [--deconvolve] [--against OTHER_TREE] [--rounds 3]
 
 It builds a fictional 4096-column TDI camera at 0.35 arcsec per pixel on a
 site at latitude 49 deg, fills a stretch of calibrated rows (plus 64-row
@@ -23,18 +24,34 @@ with one BLAS/OpenMP thread:
 
 Throughput counts rectified output pixels (``n_y * n_x``).  The load average
 printed before and after says whether other processes shared the core.
+
+``--against OTHER_TREE`` measures this source tree against another (e.g. a
+``git archive`` of an older commit): it runs this script ``--rounds`` times
+with each tree's package, alternately (so a drifting load on a shared
+machine hits both alike), each run in a fresh process with ``--repeat``
+timed runs, and prints the process CPU time of ``resample`` and ``rectify``
+per tree and the ratios of their medians.
 """
 
 from __future__ import annotations
 
 import argparse
+import json
+import pathlib
 import statistics
+import subprocess
+import sys
 import time
 
 # the script's folder is on sys.path when it is run as a script
 from _machine import describe, limit_threads, machine_state, repeat_timing
 
 limit_threads(1)
+
+ROOT = pathlib.Path(__file__).resolve().parents[1]
+# --tree=DIR (given by --against): import the package from that source tree.
+TREE = next((a.split("=", 1)[1] for a in sys.argv if a.startswith("--tree=")), str(ROOT))
+sys.path.insert(0, TREE)
 
 import numpy as np  # noqa: E402
 from astropy.time import Time  # noqa: E402
@@ -77,6 +94,50 @@ def replay(calls) -> None:
         functions[name](*args, **kwargs)
 
 
+def cpu_timing(function, repeat: int) -> list[float]:
+    """Process CPU seconds of ``repeat`` calls of ``function``."""
+    times = []
+    for _ in range(repeat):
+        start = time.process_time()
+        function()
+        times.append(time.process_time() - start)
+    return times
+
+
+def against(args) -> None:
+    """Alternate fresh-process runs with this tree's package and another's; print the ratios."""
+    trees = {"this": ROOT, "other": pathlib.Path(args.against).resolve()}
+    steps = ("resample", "rectify")
+    runs = {name: {step: [] for step in steps} for name in trees}
+    for _ in range(args.rounds):
+        for name, tree in trees.items():
+            command = [
+                sys.executable,
+                str(pathlib.Path(__file__).resolve()),
+                f"--columns={args.columns}",
+                f"--rows={args.rows}",
+                f"--overlap={args.overlap}",
+                f"--repeat={args.repeat}",
+                "--json",
+                f"--tree={tree}",
+            ]
+            out = subprocess.run(command, check=True, capture_output=True, text=True).stdout
+            figures = json.loads(out.strip().splitlines()[-1])
+            for step in steps:
+                runs[name][step].extend(figures[step])
+            cpu = "; ".join(
+                f"{step} {', '.join(f'{t:.3f}' for t in figures[step])}" for step in steps
+            )
+            print(f"{name:5s} ({tree}): CPU s: {cpu}", flush=True)
+    print(machine_state())
+    for step in steps:
+        this, other = (statistics.median(runs[name][step]) for name in trees)
+        print(
+            f"{step:9s} median CPU: this tree {this:.3f} s, other tree {other:.3f} s; "
+            f"other / this = {other / this:.2f}"
+        )
+
+
 def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--columns", type=int, default=4096)
@@ -84,8 +145,16 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--overlap", type=int, default=64)
     parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--deconvolve", action="store_true")
+    parser.add_argument("--against", help="another source tree to measure alternately")
+    parser.add_argument("--rounds", type=int, default=3, help="alternations with --against")
+    parser.add_argument("--json", action="store_true", help="print CPU times as JSON only")
+    parser.add_argument("--tree", help=argparse.SUPPRESS)  # the package's tree, for --against
     args = parser.parse_args(argv)
-    print(machine_state())
+    if args.against:
+        against(args)
+        return
+    if not args.json:
+        print(machine_state())
 
     camera = Camera(
         n_columns=args.columns, tdi_rows=4096, pixel_size=15.0, focal_length=8.84, name="bench"
@@ -117,6 +186,10 @@ def main(argv: list[str] | None = None) -> None:
 
     calls = record_resampling_calls(run)
     result = run()
+    if args.json:
+        resample = cpu_timing(lambda: replay(calls), args.repeat)
+        print(json.dumps({"resample": resample, "rectify": cpu_timing(run, args.repeat)}))
+        return
     n_pixels = result.image.size
     frame = RectifiedFrame.for_night(model, night_rows)
     print(

@@ -279,6 +279,7 @@ def resample_columns(
     for block in range(pos.shape[0]):
         j0, w, w2, nonzero = _block_weights(pos[block], jac[block], out.dtype)
         rows = (int(breaks[block]), int(breaks[block + 1]))
+        nonzero = nonzero.astype(mout.dtype)
         resample_columns_block(*planes, out, vout, mout, *rows, j0, w, w2, nonzero, outside)
     return out, vout, mout
 
@@ -332,5 +333,6 @@ def shift_rows(
     for block in range(off.shape[0]):
         i0, w, w2, nonzero = _block_weights(off[block], jac[block], out.dtype)
         rows = (int(breaks[block]), int(breaks[block + 1]))
+        nonzero = nonzero.astype(mout.dtype)
         shift_rows_block(*planes, out, vout, mout, *rows, i0, w, w2, nonzero, outside)
     return out, vout, mout

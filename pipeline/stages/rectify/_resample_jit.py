@@ -36,7 +36,8 @@ def resample_columns_block(
     """Pass 1 for rows ``[r0, r1)``: output column ``o`` reads ``base[o] - 1 ... base[o] + 2``.
 
     ``out``, ``vout`` and ``mout`` hold zeros and are filled in place;
-    ``w``, ``w2`` and ``nonzero`` have shape ``(4, n_out)``.
+    ``w``, ``w2`` and ``nonzero`` (1 where a tap's weight is non-zero, else 0)
+    have shape ``(4, n_out)``.
     """
     n_cols = src.shape[1]
     n_out = out.shape[1]
@@ -44,16 +45,22 @@ def resample_columns_block(
         for o in range(n_out):
             value = out[r, o]
             var = vout[r, o]
-            flags = np.uint64(mout[r, o])  # one unsigned type for all the ORs
-            for k in range(4):
-                s = base[o] + k - 1
-                if 0 <= s < n_cols:
-                    value += w[k, o] * src[r, s]
-                    var += w2[k, o] * vsrc[r, s]
-                    if nonzero[k, o]:
-                        flags |= np.uint64(msrc[r, s])
-                elif nonzero[k, o]:
-                    flags |= outside_bit
+            flags = np.uint64(mout[r, o])
+            first = base[o] - 1
+            if first >= 0 and first + 3 < n_cols:  # all four taps inside
+                for k in range(4):
+                    value += w[k, o] * src[r, first + k]
+                    var += w2[k, o] * vsrc[r, first + k]
+                    flags |= np.uint64(msrc[r, first + k]) * np.uint64(nonzero[k, o])
+            else:
+                for k in range(4):
+                    s = first + k
+                    if 0 <= s < n_cols:
+                        value += w[k, o] * src[r, s]
+                        var += w2[k, o] * vsrc[r, s]
+                        flags |= np.uint64(msrc[r, s]) * np.uint64(nonzero[k, o])
+                    else:
+                        flags |= outside_bit * np.uint64(nonzero[k, o])
             out[r, o] = value
             vout[r, o] = var
             mout[r, o] = flags
@@ -73,15 +80,21 @@ def shift_rows_block(src, vsrc, msrc, out, vout, mout, x0, x1, base, w, w2, nonz
             value = out[x, y]
             var = vout[x, y]
             flags = np.uint64(mout[x, y])
-            for k in range(4):
-                s = base[y] + x + k - 1
-                if 0 <= s < n_rows:
-                    value += w[k, y] * src[s, y]
-                    var += w2[k, y] * vsrc[s, y]
-                    if nonzero[k, y]:
-                        flags |= np.uint64(msrc[s, y])
-                elif nonzero[k, y]:
-                    flags |= outside_bit
+            first = base[y] + x - 1
+            if first >= 0 and first + 3 < n_rows:  # all four taps inside
+                for k in range(4):
+                    value += w[k, y] * src[first + k, y]
+                    var += w2[k, y] * vsrc[first + k, y]
+                    flags |= np.uint64(msrc[first + k, y]) * np.uint64(nonzero[k, y])
+            else:
+                for k in range(4):
+                    s = first + k
+                    if 0 <= s < n_rows:
+                        value += w[k, y] * src[s, y]
+                        var += w2[k, y] * vsrc[s, y]
+                        flags |= np.uint64(msrc[s, y]) * np.uint64(nonzero[k, y])
+                    else:
+                        flags |= outside_bit * np.uint64(nonzero[k, y])
             out[x, y] = value
             vout[x, y] = var
             mout[x, y] = flags
