@@ -7,6 +7,11 @@ self-consistency checks, not external truth: the compiled loops must give the
 same bytes, since the stage's products must not change with the speed-up.
 """
 
+import os
+import pathlib
+import subprocess
+import sys
+
 import numpy as np
 import pytest
 
@@ -93,3 +98,35 @@ def test_compiled_noise_power_gives_the_numpy_bytes(scale, chunk, seed):
     # Rows finer (0.6) and coarser (1.7) than the camera's: many row lags or few.
     noise = _noise(scale=scale, seed=seed)
     _same_bytes(noise.power(chunk=chunk), noise_power_numpy(noise, chunk=chunk))
+
+
+WARM_CHECK = """
+import numpy as np
+from _rectify_scene import night_model
+from pipeline.stages.rectify import rectify
+from pipeline.stages.rectify import _resample_jit as jit
+from pipeline.stages.rectify._resample import load_compiled
+
+load_compiled()
+kernels = (jit.resample_columns_block, jit.shift_rows_block, jit.zero_frequency_rows)
+loaded = [list(k.signatures) for k in kernels]
+# planes as the stage reads them (float32, big-endian from FITS) and native
+image = np.random.default_rng(1).normal(100.0, 10.0, (512, 256)).astype(">f4")
+for dtype in (">f4", np.float32):
+    rectify(image.astype(dtype), np.full(image.shape, 100.0, dtype),
+            np.zeros(image.shape, np.uint16), night_model(30.0, 512))
+print([list(k.signatures) == s for k, s in zip(kernels, loaded)])
+"""
+
+
+def test_the_warm_up_loads_what_a_stretch_calls():
+    # A worker calls load_compiled as it starts (Stage.warm): a stretch of the
+    # stage's planes must then need no other specialisation (each would be
+    # compiled, or loaded, on the unit's own time).  In a fresh process, so
+    # that other tests' calls have loaded nothing.
+    tests = pathlib.Path(__file__).parent
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(tests), str(tests.parent)])}
+    out = subprocess.run(
+        [sys.executable, "-c", WARM_CHECK], check=True, capture_output=True, text=True, env=env
+    )
+    assert out.stdout.split() == ["[True,", "True,", "True]"]

@@ -664,7 +664,7 @@ WARM = (
     "scipy.fft",
     "scipy.interpolate",
     "pipeline._offline:load_earth_orientation",
-    "pipeline.stages.rectify._resample_jit",
+    "pipeline.stages.rectify._resample:load_compiled",
 )
 
 #: Declaration of the rectify stage for the runner.  Its per-stretch products

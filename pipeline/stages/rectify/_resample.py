@@ -46,6 +46,7 @@ import numpy as np
 __all__ = [
     "KEYS_A",
     "keys_weights",
+    "load_compiled",
     "noise_correlation_factor",
     "resample_columns",
     "shift_rows",
@@ -106,6 +107,28 @@ def noise_correlation_factor(weights: np.ndarray) -> np.ndarray:
     """
     w = np.asarray(weights, dtype=float)
     return w.sum(axis=0) ** 2 / (w * w).sum(axis=0)
+
+
+def load_compiled() -> None:
+    """Load the compiled loops in this process (from numba's disk cache once it is there).
+
+    One call of each pass on a few pixels, and of the noise power, with the
+    argument types of the stage's calls, so no other specialisation is
+    compiled: native float32 planes resample in float32, any others (the
+    big-endian float32 planes read from FITS products) in float64.  A worker process calls it as it
+    starts (see ``Stage.warm``): the first compiled call of a process sets
+    numba up, ~0.5 s of CPU.
+    """
+    from pipeline.masks import MASK_DTYPE
+    from pipeline.stages.rectify._noise import RectifiedNoise
+
+    bits = {"outside_bit": 1, "nonfinite_bit": 2}
+    for dtype in (np.float32, np.float64):
+        ones = np.ones((4, 4), dtype)
+        planes = (ones, ones, np.zeros(ones.shape, MASK_DTYPE))
+        resample_columns(*planes, np.arange(4.0) + 0.5, **bits)
+        shift_rows(*planes, np.full(4, 0.5), 4, **bits)
+    RectifiedNoise.white(4, 4).power()
 
 
 def transposed(array: np.ndarray, tile: int = 256) -> np.ndarray:
