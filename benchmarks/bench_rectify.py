@@ -7,7 +7,8 @@ Run::
 
 It builds a fictional 4096-column TDI camera at 0.35 arcsec per pixel on a
 site at latitude 49 deg, fills a stretch of calibrated rows (plus 64-row
-overlap margins) with noise, and times, best and median of ``--repeat`` runs
+overlap margins) with noise (big-endian float32, as the stage reads them
+from the calibrate products), and times, best and median of ``--repeat`` runs
 with one BLAS/OpenMP thread:
 
 * ``resample``: the two Keys resampling passes and the transposition, called
@@ -167,7 +168,9 @@ def main(argv: list[str] | None = None) -> None:
     row_lo = args.rows - args.overlap
     n_in = args.rows + 2 * args.overlap
     rng = np.random.default_rng(0)
-    image = rng.normal(100.0, 10.0, (n_in, args.columns)).astype(np.float32)
+    # Big-endian float32, as the stage reads the calibrated planes from FITS
+    # (the passes resample those in float64).
+    image = rng.normal(100.0, 10.0, (n_in, args.columns)).astype(">f4")
     variance = np.full_like(image, 100.0)
     mask = np.zeros(image.shape, np.uint16)
     mask[::97, ::13] = MaskBit.COSMIC_RAY
