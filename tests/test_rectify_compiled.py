@@ -93,6 +93,26 @@ def test_compiled_rows_pass_gives_the_numpy_bytes(dtype, seed):
     )
 
 
+def test_big_endian_float32_planes_resample_in_single_precision():
+    # Planes read from FITS are big-endian float32 (">f4"), which compares
+    # unequal to np.float32: they must resample as native float32 ones do
+    # (same values, same precision), not in float64 at twice the memory.
+    rng = np.random.default_rng(3)
+    planes = _planes(rng, (120, 40), np.float32)
+    swapped = (planes[0].astype(">f4"), planes[1].astype(">f4"), planes[2])
+    positions = _positions(rng, 1, 52, 40)
+    jacobian = np.ones(positions.shape)
+    breaks = np.array([0, 120])
+    native = resample_columns(*planes, positions, jacobian, breaks=breaks, **BITS)
+    got = resample_columns(*swapped, positions, jacobian, breaks=breaks, **BITS)
+    assert got[0].dtype == np.float32 and got[1].dtype == np.float32
+    _same_bytes(got, native)
+    offsets = rng.uniform(-3.0, 3.0, (1, 40))
+    native = shift_rows(*planes, offsets, 120, np.ones((1, 40)), breaks=breaks, **BITS)
+    got = shift_rows(*swapped, offsets, 120, np.ones((1, 40)), breaks=breaks, **BITS)
+    _same_bytes(got, native)
+
+
 @pytest.mark.parametrize(("scale", "chunk", "seed"), [(0.6, 1024, 0), (0.6, 37, 1), (1.7, 64, 2)])
 def test_compiled_noise_power_gives_the_numpy_bytes(scale, chunk, seed):
     # Rows finer (0.6) and coarser (1.7) than the camera's: many row lags or few.

@@ -680,6 +680,7 @@ STAGE = Stage(
     warm=WARM,
     # 2: deconvolution regularisation scales with the smear length; 3: one
     # multi-extension image product with units, observation metadata, night grid;
-    # 4: deconvolved variance, DECNOISE and NOISECOR from the noise's covariance
-    version=5,
+    # 4: deconvolved variance, DECNOISE and NOISECOR from the noise's covariance;
+    # 6: planes read from FITS (big-endian float32) resample in float32
+    version=6,
 )

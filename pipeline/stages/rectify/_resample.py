@@ -114,8 +114,8 @@ def load_compiled() -> None:
 
     One call of each pass on a few pixels, and of the noise power, with the
     argument types of the stage's calls, so no other specialisation is
-    compiled: native float32 planes resample in float32, any others (the
-    big-endian float32 planes read from FITS products) in float64.  A worker process calls it as it
+    compiled: float32 planes of either byte order resample in native float32,
+    any others in float64.  A worker process calls it as it
     starts (see ``Stage.warm``): the first compiled call of a process sets
     numba up, ~0.5 s of CPU.
     """
@@ -168,6 +168,18 @@ def _cleaned(
     var = np.where(finite, var, 0).astype(dtype, copy=False)
     msk = mask | np.where(finite, 0, nonfinite_bit).astype(mask.dtype)
     return img, var, msk
+
+
+def _working_dtype(image: np.ndarray) -> np.dtype:
+    """Native float32 for single-precision planes of either byte order, else float64.
+
+    Planes read from FITS products are big-endian (``>f4``), which compares
+    unequal to ``np.float32``: testing the kind and size keeps them in single
+    precision, as native ones are, instead of doubling their memory and work.
+    """
+    if image.dtype.kind == "f" and image.dtype.itemsize == 4:
+        return np.dtype(np.float32)
+    return np.dtype(np.float64)
 
 
 def _check_planes(image: np.ndarray, variance: np.ndarray, mask: np.ndarray) -> None:
@@ -224,7 +236,7 @@ def _columns_setup(image, variance, mask, positions, jacobian, breaks, nonfinite
     pos, breaks = _blocks(positions, breaks, n_rows, width, "positions")
     n_out = pos.shape[1]
     jac = np.broadcast_to(np.asarray(jacobian, dtype=float), pos.shape)
-    dtype = np.dtype(np.float32 if image.dtype == np.float32 else np.float64)
+    dtype = _working_dtype(image)
     # Far-off positions are clamped; their non-zero taps fall outside and flag them.
     pos = np.clip(pos, -2.0, n_cols + 1.0)
     planes = _cleaned(image, variance, mask, nonfinite_bit, dtype)
@@ -242,7 +254,7 @@ def _rows_setup(image, variance, mask, offsets, n_out, jacobian, breaks, nonfini
         raise ValueError(f"n_out must be >= 0; got {n_out}.")
     off, breaks = _blocks(offsets, breaks, n_out, n_cols, "offsets")
     jac = np.broadcast_to(np.asarray(jacobian, dtype=float), off.shape)
-    dtype = np.dtype(np.float32 if image.dtype == np.float32 else np.float64)
+    dtype = _working_dtype(image)
     # Clamp so that the integer bases stay small; a clamped column is flagged
     # outside wherever its taps reach beyond the input.
     off = np.clip(off, -2.0 - n_out, n_rows + 1.0)
