@@ -33,6 +33,7 @@ from pipeline.stages.detect import (
     SourceFlag,
     _deblended,
     _measure,
+    _measure_jit,
     _model,
     detect,
     fit_stars,
@@ -49,6 +50,7 @@ from pipeline.stages.detect._find import (
     segment_pixels,
 )
 from pipeline.stages.detect._measure import KERNEL_SPACING, measure_groups, residual_quadrupole
+from pipeline.stages.detect._measure_jit import quadrupole_sums
 from pipeline.stages.detect._model import KernelGrid, Response, reduce_kernel
 from pipeline.stages.detect._night import Planes, padded_stretch
 from pipeline.stages.detect._saturated import (
@@ -357,11 +359,93 @@ def test_later_passes_reuse_fits_of_unchanged_groups(monkeypatch):
     calls = []
     real = _model.fit_stars  # _measure imports it from _model when it fits
     monkeypatch.setattr(_model, "fit_stars", lambda *a, **k: calls.append(1) or real(*a, **k))
+    batch = _measure_jit.fit_groups_compiled  # ... and the joint fits from _measure_jit
+
+    def fit_groups(*args):
+        calls.extend([1] * len(args[3]))  # one per group (stamp box)
+        return batch(*args)
+
+    monkeypatch.setattr(_measure_jit, "fit_groups_compiled", fit_groups)
     again = measure([ended[:1], ended[1:]])
     assert not calls
     np.testing.assert_array_equal(again["flux"], first["flux"])
     measure([[ended[0], (110.0, 64.0)]])
     assert len(calls) == 1
+
+
+def test_joint_fits_in_one_call_equal_the_fits_one_by_one(monkeypatch):
+    # measure_groups fits its joint groups in one compiled call
+    # (fit_groups_compiled); _measure_group, the reference, fits them one by
+    # one through fit_stars.  Same arithmetic in the same order: the same
+    # catalogue to the bit, flags included.  The scene holds a lone star, a
+    # pair, a pair 0.5 FWHM apart fitted as one (UNRESOLVED), a star with a
+    # cosmic-ray hit in its core and one with a flagged pixel in its wings only,
+    # a star cut by the image edge and a star beside pixels without data.
+    x = [100.0, 300.0, 306.0, 500.0, 501.6, 700.0, 800.0, 3.0, 900.0]
+    y = [64.0, 64.0, 66.0, 64.0, 64.0, 64.0, 64.0, 64.0, 64.0]
+    flux = [5e4, 5e4, 2e4, 6e4, 5e4, 5e4, 5e4, 5e4, 5e4]
+    scene = render_scene(x, y, flux, shape=(128, 1000), seed=7)
+    image, mask = scene.image - 200.0, scene.mask.copy()
+    mask[64, 700] |= np.uint16(MaskBit.COSMIC_RAY)
+    mask[69, 800] |= np.uint16(MaskBit.COSMIC_RAY)
+    image[60:70, 906] = np.nan
+    mask[60:70, 906] |= np.uint16(MaskBit.NONFINITE)
+    groups = [[(100.3, 64.2)], [(300.2, 63.9), (305.7, 66.1)], [(500.8, 64.1)],
+              [(700.2, 63.8)], [(799.6, 64.3)], [(3.4, 64.2)], [(900.3, 64.1)]]  # fmt: skip
+
+    def measure():
+        return measure_groups(
+            image,
+            scene.variance,
+            mask,
+            groups,
+            KernelGrid(scene.kernels),
+            SeeingProfile(3.2),
+            x_start=1000,
+            own_columns=(10, 1000),
+            blended=[[False], [True, True], [False], [False], [False], [False], [False]],
+        )
+
+    recorded = []
+    compiled = _measure_jit.fit_groups_compiled
+
+    def recording(*args):
+        recorded.append((args, compiled(*args)))
+        return recorded[-1][1]
+
+    monkeypatch.setattr(_measure_jit, "fit_groups_compiled", recording)
+    batch = measure()
+    # The residual quadrupole's sums (which set UNRESOLVED) of each fitted star,
+    # as _unresolved forms them from fit_stars' result on the stamp.
+    (_, variance, _, boxes, members, xs, ys, dx, dy, samples, *_), (_, sums, _) = recorded[0]
+    grid = KernelGrid(scene.kernels)
+    for g, (y0, y1, x0, x1) in enumerate(boxes):
+        a, b = members[g], members[g + 1]
+        data, var = image[y0:y1, x0:x1], variance[y0:y1, x0:x1]
+        kernels = [(dx[samples[s] : samples[s + 1]], dy[samples[s] : samples[s + 1]])
+                   for s in range(a, b)]  # fmt: skip
+        responses = grid.responses(1000 + xs[a:b], ys[a:b])
+        fit = fit_stars(data, var, xs[a:b], ys[a:b], kernels, SeeingProfile(3.2),
+                        origin=(y0, x0), responses=responses)  # fmt: skip
+        model = _measure._fitted_model(fit)
+        for s in range(a, b):
+            x, y = fit.x[s - a] - x0, fit.y[s - a] - y0
+            reference = quadrupole_sums(data, var, model, fit.units[s - a], x, y)
+            np.testing.assert_array_equal(sums[s], reference)
+    monkeypatch.setattr(_measure, "_measure_joint", lambda *args: {})
+    one_by_one = measure()
+    for name in ("x", "y", "x_err", "y_err", "flux", "flux_err", "background", "chi2"):
+        np.testing.assert_array_equal(batch[name], one_by_one[name], err_msg=name)
+    np.testing.assert_array_equal(batch["flags"], one_by_one["flags"])
+    np.testing.assert_array_equal(batch["group"], one_by_one["group"])
+    flags = [SourceFlag(int(f)) for f in batch["flags"]]
+    assert flags[1] & flags[2] & SourceFlag.BLENDED
+    assert flags[3] & SourceFlag.UNRESOLVED
+    assert flags[4] & SourceFlag.COSMIC_RAY
+    assert flags[5] & SourceFlag.NEAR_FLAGGED and not flags[5] & SourceFlag.COSMIC_RAY
+    assert flags[6] & SourceFlag.EDGE and flags[6] & SourceFlag.OVERLAP  # rows: as the groups
+    assert flags[7] & SourceFlag.EDGE and not flags[7] & SourceFlag.OVERLAP
+    assert all(np.isfinite(batch["flux"]))
 
 
 def test_a_seeing_moved_by_hidden_companions_costs_one_refit(monkeypatch):
@@ -529,14 +613,15 @@ def test_a_fit_pulled_by_a_sharp_spike_converges_in_few_steps(seed, background):
         max_evaluations=30, **response,
     )  # fmt: skip
     assert fit.success
-    # an optimum: a fit started where it ended stays there (to 0.01 of an error,
-    # the convergence rule's hundredth of a standard error in every parameter)
+    # an optimum: a fit started where it ended stays there (to 0.1 of an error,
+    # the convergence rule's tenth of a standard error in every parameter,
+    # CONVERGED; measured 0.02)
     again = fit_stars(
         image, variance, fit.x, fit.y, [kernel], profile, fit_background=background, **response
     )
-    assert abs(again.x[0] - fit.x[0]) < 0.01 * fit.x_err[0]
-    assert abs(again.y[0] - fit.y[0]) < 0.01 * fit.y_err[0]
-    assert abs(again.flux[0] - fit.flux[0]) < 0.01 * fit.flux_err[0]
+    assert abs(again.x[0] - fit.x[0]) < 0.1 * fit.x_err[0]
+    assert abs(again.y[0] - fit.y[0]) < 0.1 * fit.y_err[0]
+    assert abs(again.flux[0] - fit.flux[0]) < 0.1 * fit.flux_err[0]
 
 
 def test_split_trials_are_capped_and_still_split_a_pair(monkeypatch):

@@ -10,7 +10,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from pipeline.masks import MaskBit, has_bits
+from pipeline.masks import MaskBit
 from pipeline.stages.detect._saturated import Footprints, footprint_bounds, on_footprint
 
 if TYPE_CHECKING:
@@ -242,29 +242,29 @@ def best_fwhm(fwhm_grid: np.ndarray, chi2: np.ndarray) -> float:
 def _flags_for(mask, core, stamp_box, clipped, blended, overlap) -> int:
     y0, y1, x0, x1 = stamp_box
     stamp_mask = mask[y0:y1, x0:x1]
-    flags = 0
+    stamp_bits = core_bits = 0
     if stamp_mask.any():  # most stamps have no flagged pixel: skip the bit tests
-        flags = _mask_flags(stamp_mask, core)
-    if clipped:
-        flags |= SourceFlag.EDGE
-    if blended:
-        flags |= SourceFlag.BLENDED
+        stamp_bits = int(np.bitwise_or.reduce(stamp_mask, axis=None))
+        core_bits = int(np.bitwise_or.reduce(stamp_mask[core], axis=None))
+    flags = _flags_from_bits(stamp_bits, core_bits, clipped, blended)
     if overlap:
         flags |= SourceFlag.OVERLAP
     return int(flags)
 
 
-def _mask_flags(stamp_mask, core) -> int:
-    """The flags set by the mask bits of a stamp and of the star's core in it."""
+def _flags_from_bits(stamp_bits: int, core_bits: int, clipped, blended) -> int:
+    """The flags of a star from the OR of the mask bits over its stamp and its core."""
     flags = 0
-    if has_bits(stamp_mask, MaskBit.OUTSIDE | MaskBit.GAP | MaskBit.NONFINITE).any():
+    if stamp_bits & (MaskBit.OUTSIDE | MaskBit.GAP | MaskBit.NONFINITE) or clipped:
         flags |= SourceFlag.EDGE
-    if np.any(stamp_mask):
+    if stamp_bits:
         flags |= SourceFlag.NEAR_FLAGGED
-    if has_bits(stamp_mask[core], MaskBit.SATURATED | MaskBit.BLEED).any():
+    if core_bits & (MaskBit.SATURATED | MaskBit.BLEED):
         flags |= SourceFlag.SATURATED
-    if has_bits(stamp_mask[core], MaskBit.COSMIC_RAY).any():
+    if core_bits & MaskBit.COSMIC_RAY:
         flags |= SourceFlag.COSMIC_RAY
+    if blended:
+        flags |= SourceFlag.BLENDED
     return int(flags)
 
 
@@ -345,28 +345,36 @@ def measure_groups(
         grid, x_start, [groups[i] for i in pending], point_kernel, footprints, spacing
     )
     lookups = dict(zip(pending, looked_up, strict=True))
+    options = {
+        "x_start": x_start,
+        "point_kernel": point_kernel,
+        "noise_correlation": noise_correlation,
+        "own_columns": own_columns,
+        "max_joint": max_joint,
+        "footprints": footprints,
+    }
+    # The joint fits, all in one compiled call; None for a group to fit here.
+    batch = _measure_joint(
+        residual,
+        variance,
+        mask,
+        {i: groups[i] for i in pending if len(groups[i]) <= max_joint},
+        splits,
+        lookups,
+        profile,
+        options,
+    )
     all_rows: list[dict] = []
     group: list[int] = []
     for index, members in enumerate(groups):
         split, key = splits[index], keys[index]
         if memo is None or key not in memo:
-            rows = _measure_group(
-                residual,
-                variance,
-                mask,
-                members,
-                split,
-                grid,
-                profile,
-                spacing,
-                x_start=x_start,
-                point_kernel=point_kernel,
-                noise_correlation=noise_correlation,
-                own_columns=own_columns,
-                max_joint=max_joint,
-                footprints=footprints,
-                looked_up=lookups.get(index),
-            )
+            rows = batch.get(index)
+            if rows is None:
+                model = (grid, profile, spacing)
+                looked = lookups.get(index)
+                planes = (residual, variance, mask)
+                rows = _measure_group(*planes, members, split, *model, looked_up=looked, **options)
             if memo is not None:
                 # A refit that starts where this fit ended (or where it started)
                 # ends here again: later passes look the group up instead.
@@ -434,17 +442,7 @@ def _measure_group(
         looked_up = _lookups(grid, x_start, [members], point_kernel, footprints, spacing)[0]
     kern, extents, resp, owners = looked_up
     if xs.size <= max_joint:
-        box = _stamp(residual.shape, xs, ys, kern, profile.fwhm, extents)
-        corners = footprint_bounds(xs, ys, footprints, owners)
-        if corners is not None:  # the clipped core and the wings around it
-            wide = _stamp(residual.shape, *corners, kern, profile.fwhm, extents)
-            box = (
-                min(wide[0], box[0]),
-                max(wide[1], box[1]),
-                min(wide[2], box[2]),
-                max(wide[3], box[3]),
-                box[4],
-            )
+        box = _joint_box(residual.shape, xs, ys, kern, extents, owners, profile.fwhm, footprints)
         fit = _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, resp)
         per_star = [(fit, i, box) for i in range(xs.size)]
         pair = _unresolved(residual, variance, box, fit, profile, noise_correlation)
@@ -456,32 +454,137 @@ def _measure_group(
     rows = []
     for i, (fit, j, box) in enumerate(per_star):
         y0, y1, x0, x1, clipped = box
-        overlap = own_columns is not None and (x0 < own_columns[0] or x1 > own_columns[1])
-        moved = np.hypot(fit.x[j] - xs[i], fit.y[j] - ys[i]) > profile.fwhm
-        failed = moved or not (fit.flux[j] > 0) or not fit.success
         unit = fit.units[j]
         core = unit > 0.05 * unit.max()
-        flags = _flags_for(mask, core, (y0, y1, x0, x1), clipped, bool(split[i]), overlap)
-        if failed:
-            flags |= SourceFlag.FIT_FAILED
-        elif pair[i]:
-            flags |= SourceFlag.UNRESOLVED
+        flags = _flags_for(mask, core, (y0, y1, x0, x1), clipped, bool(split[i]), False)
+        values = (fit.flux[j], fit.x[j], fit.y[j], fit.flux_err[j], fit.x_err[j], fit.y_err[j])
+        fitted = (values, fit.background, fit.chi2, fit.success)
         rows.append(
-            {
-                "x": xs[i] if failed else fit.x[j],
-                "y": ys[i] if failed else fit.y[j],
-                "x_err": np.nan if failed else fit.x_err[j],
-                "y_err": np.nan if failed else fit.y_err[j],
-                "flux": np.nan if failed else fit.flux[j],
-                "flux_err": np.nan if failed else fit.flux_err[j],
-                "background": fit.background,
-                "chi2": fit.chi2,
-                "flags": flags,
-                "kernel": kern[i],
-                "response": resp[i],
-            }
+            _row(members[i], fitted, flags, pair[i], box, kern[i], resp[i], profile, own_columns)
         )
     return rows
+
+
+def _joint_box(shape, xs, ys, kern, extents, owners, fwhm, footprints):
+    """The stamp of a group fitted jointly: :func:`_stamp`, widened over saturated footprints."""
+    box = _stamp(shape, xs, ys, kern, fwhm, extents)
+    corners = footprint_bounds(xs, ys, footprints, owners)
+    if corners is None:
+        return box
+    # the clipped core and the wings around it
+    wide = _stamp(shape, *corners, kern, fwhm, extents)
+    return (min(wide[0], box[0]), max(wide[1], box[1]), min(wide[2], box[2]),
+            max(wide[3], box[3]), box[4])  # fmt: skip
+
+
+def _row(start, fitted, flags, pair, box, kernel, response, profile, own_columns) -> dict:
+    """The catalogue row (dict) of one star of a fitted group.
+
+    ``start``: the star's starting ``(x, y)``; ``fitted``: ``((flux, x, y,
+    flux_err, x_err, y_err), background, chi2, success)`` of its fit;
+    ``flags``: those of the mask, the stamp's edge and the blend; ``pair``:
+    the residual's quadrupole marks it UNRESOLVED.  A fit that failed (not
+    converged, a flux not positive, or a move of more than a FWHM) keeps the
+    start as the position and NaN as the flux.
+    """
+    (flux, x, y, flux_err, x_err, y_err), background, chi2, success = fitted
+    moved = math.hypot(x - start[0], y - start[1]) > profile.fwhm
+    failed = moved or not (flux > 0) or not success
+    if own_columns is not None and (box[2] < own_columns[0] or box[3] > own_columns[1]):
+        flags |= SourceFlag.OVERLAP
+    if failed:
+        flags |= SourceFlag.FIT_FAILED
+    elif pair:
+        flags |= SourceFlag.UNRESOLVED
+    return {
+        "x": float(start[0]) if failed else x,
+        "y": float(start[1]) if failed else y,
+        "x_err": np.nan if failed else x_err,
+        "y_err": np.nan if failed else y_err,
+        "flux": np.nan if failed else flux,
+        "flux_err": np.nan if failed else flux_err,
+        "background": background,
+        "chi2": chi2,
+        "flags": int(flags),
+        "kernel": kernel,
+        "response": response,
+    }
+
+
+def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, options) -> dict:
+    """Rows of the groups fitted jointly, by :func:`_measure_group`'s rules, in one compiled call.
+
+    ``groups``: ``{index: members}`` of groups of at most ``max_joint``
+    stars; ``splits`` and ``lookups``: per group index, its blend flags and
+    :func:`_lookups` entry.  Returns ``{index: rows}``, without the groups
+    whose fit met a singular step (the Python loop fits them again and
+    reports it).
+    """
+    from pipeline.stages.detect._measure_jit import fit_groups_compiled
+    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_row
+
+    if not groups:
+        return {}
+    fwhm = profile.fwhm
+    order = list(groups)
+    starts = [m for i in order for m in groups[i]]
+    kern = [k for i in order for k in lookups[i][0]]
+    resp = [r for i in order for r in lookups[i][2]]
+    boxes = []
+    for i in order:
+        xs = [m[0] for m in groups[i]]
+        ys = [m[1] for m in groups[i]]
+        _, extents, _, owners = lookups[i]
+        boxes.append(
+            _joint_box(residual.shape, xs, ys, None, extents, owners, fwhm, options["footprints"])
+        )
+    bounds = np.zeros(len(order) + 1, dtype=np.int64)
+    bounds[1:] = np.cumsum([len(groups[i]) for i in order])
+    samples = np.zeros(len(kern) + 1, dtype=np.int64)
+    samples[1:] = np.cumsum([k[0].size for k in kern])
+    sigmas, weights = profile.mixture()
+    stars, quadrupoles, fits = fit_groups_compiled(
+        residual,
+        variance,
+        mask,
+        np.array([b[:4] for b in boxes], dtype=np.int64).reshape(-1, 4),
+        bounds,
+        np.array([m[0] for m in starts], dtype=np.float64),
+        np.array([m[1] for m in starts], dtype=np.float64),
+        np.concatenate([np.asarray(k[0], dtype=np.float64).ravel() for k in kern]),
+        np.concatenate([np.asarray(k[1], dtype=np.float64).ravel() for k in kern]),
+        samples,
+        np.ascontiguousarray(sigmas, dtype=np.float64),
+        np.ascontiguousarray(weights, dtype=np.float64),
+        np.array([_response_row(r) for r in resp]).reshape(-1, 3),
+        _ERF_TABLE,
+        _GAUSS_TABLE,
+        float(options["noise_correlation"]),
+    )
+    nc = options["noise_correlation"]
+    out = {}
+    stars_list = stars.tolist()
+    for g, index in enumerate(order):
+        background, chi2, status, stamp_bits = fits[g].tolist()
+        if status < 0:
+            continue
+        box = boxes[g]
+        rows = []
+        for s in range(bounds[g], bounds[g + 1]):
+            values = stars_list[s]
+            pair = False
+            if np.isfinite(quadrupoles[s, 0]):
+                pair = _quadrupole_test(quadrupoles[s], nc)
+            flags = _flags_from_bits(
+                int(stamp_bits), int(values[6]), box[4], splits[index][s - bounds[g]]
+            )
+            fitted = (tuple(values[:6]), background, chi2, status == 1)
+            rows.append(
+                _row(starts[s], fitted, flags, pair, box, kern[s], resp[s], profile,
+                     options["own_columns"])
+            )  # fmt: skip
+        out[index] = rows
+    return out
 
 
 #: Chi-square (two degrees of freedom) of a fit residual's quadrupole moment
@@ -543,6 +646,11 @@ def residual_quadrupole(data, variance, model, unit, x, y, noise_correlation=1.0
         float(x),
         float(y),
     )
+    return _quadrupole_figures(sums, noise_correlation)
+
+
+def _quadrupole_figures(sums, noise_correlation) -> tuple[float, float]:
+    """``residual_quadrupole``'s chi-square and elongation from its sums (``quadrupole_sums``)."""
     e1, e2, c11, c12, c22, second = sums.tolist()
     c11, c12, c22 = c11 * noise_correlation, c12 * noise_correlation, c22 * noise_correlation
     # e^T C^-1 e of the 2 x 2 covariance written out: numpy's solve took
@@ -553,6 +661,12 @@ def residual_quadrupole(data, variance, model, unit, x, y, noise_correlation=1.0
         return 0.0, 0.0
     chi2 = (c22 * e1 * e1 - 2.0 * c12 * e1 * e2 + c11 * e2 * e2) / det
     return chi2, math.hypot(e1, e2) / second if second > 0 else 0.0
+
+
+def _quadrupole_test(sums, noise_correlation) -> bool:
+    """Whether a fit's residual quadrupole (its sums) marks the source UNRESOLVED."""
+    chi2, elongation = _quadrupole_figures(sums, noise_correlation)
+    return chi2 > UNRESOLVED_CHI2 and elongation > UNRESOLVED_ELONGATION
 
 
 def _fitted_model(fit) -> np.ndarray:

@@ -698,7 +698,7 @@ def _levenberg_marquardt(evaluate, p, nb, n, first=None, max_evaluations=None):
     -------
     p, jac, units, chi2, converged
     """
-    from pipeline.stages.detect._fit_jit import POOR_GAIN
+    from pipeline.stages.detect._fit_jit import CONVERGED, POOR_GAIN
 
     r, jac, models = evaluate(p) if first is None else first
     chi2 = float(r @ r)
@@ -713,7 +713,8 @@ def _levenberg_marquardt(evaluate, p, nb, n, first=None, max_evaluations=None):
         moves = np.abs(np.concatenate([step[nb + 1 :: 3], step[nb + 2 :: 3]]))
         if moves.size and moves.max() > 1.0:
             step *= 1.0 / moves.max()
-        if float(step @ h @ step) < 1e-4:  # converged: the last step to first order
+        predicted = float(step @ h @ step)
+        if predicted < 1e-4 or predicted * (1.0 + lam) ** 2 < CONVERGED:  # to first order
             units = [
                 u + step[nb + 3 * i + 1] * ux + step[nb + 3 * i + 2] * uy
                 for i, (u, ux, uy) in enumerate(models)
