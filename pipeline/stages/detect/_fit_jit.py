@@ -30,6 +30,7 @@ __all__ = [
     "model_compiled",
     "reduce_compiled",
     "reduce_many_compiled",
+    "subtract_models_compiled",
     "weighted_compiled",
 ]
 
@@ -510,3 +511,44 @@ def errors_compiled(jac, scale):
             return out, False
         out[a] = np.sqrt(max(column[a] * scale, 0.0))
     return out, True
+
+
+@numba.njit(cache=True, nogil=True)
+def subtract_models_compiled(
+    image, x, y, flux, dx, dy, kernels, responses, sigmas, weights, reach, erf, gauss
+):
+    """Subtract the models of many stars from ``image`` in place.
+
+    Star ``s`` (flux ``flux[s]``, skipped if not finite) is rendered as
+    ``model_image`` renders it, on the pixels within ``reach`` plus its
+    kernel's largest ``|dx|`` (``|dy|``) of its position rounded to the
+    nearest pixel (ties to even, as Python's ``round``), cut by the image's
+    edges; its kernel samples are ``[kernels[s], kernels[s + 1])`` of
+    ``dx``, ``dy`` and its response ``responses[s]``.  The arithmetic of
+    ``model_image`` and of the subtraction, star after star.
+    """
+    ny, nx = image.shape
+    for s in range(x.size):
+        if not np.isfinite(flux[s]):
+            continue
+        k0, k1 = kernels[s], kernels[s + 1]
+        ex = 0.0
+        ey = 0.0
+        for k in range(k0, k1):
+            ex = max(ex, abs(dx[k]))
+            ey = max(ey, abs(dy[k]))
+        hx = int(np.ceil(reach + ex))
+        hy = int(np.ceil(reach + ey))
+        cx = int(np.rint(x[s]))
+        cy = int(np.rint(y[s]))
+        x0, y0 = max(cx - hx, 0), max(cy - hy, 0)
+        x1, y1 = min(cx + hx + 1, nx), min(cy + hy + 1, ny)
+        if x1 <= x0 or y1 <= y0:
+            continue
+        model = model_compiled(
+            x[s] - x0, y[s] - y0, 0.0, x1 - x0, 0.0, y1 - y0, dx[k0:k1].copy(),
+            dy[k0:k1].copy(), sigmas, weights, responses[s], erf, gauss,
+        )  # fmt: skip
+        for j in range(y1 - y0):
+            for i in range(x1 - x0):
+                image[y0 + j, x0 + i] -= flux[s] * model[j, i]
