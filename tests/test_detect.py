@@ -50,7 +50,12 @@ from pipeline.stages.detect._find import (
     segment_moments,
     segment_pixels,
 )
-from pipeline.stages.detect._measure import KERNEL_SPACING, measure_groups, residual_quadrupole
+from pipeline.stages.detect._measure import (
+    KERNEL_SPACING,
+    measure_groups,
+    residual_quadrupole,
+    seeing_curves,
+)
 from pipeline.stages.detect._measure_jit import quadrupole_sums
 from pipeline.stages.detect._model import KernelGrid, Response, reduce_kernel
 from pipeline.stages.detect._night import Planes, padded_stretch
@@ -480,6 +485,40 @@ def test_models_subtracted_in_one_call_equal_model_image_one_by_one():
             expected[y0:y1, x0:x1] -= model
     np.testing.assert_array_equal(got, expected)
     assert not np.array_equal(got, scene.image)
+
+
+def test_seeing_curves_equal_least_squares_per_trial_width():
+    # seeing_curves solves background and flux at each trial width by the
+    # normal equations, compiled; the reference is numpy's lstsq of the
+    # weighted columns 1 and model_image's unit model, per trial.  Equal to
+    # rounding: 1e-10 relative (measured ~1e-14; a curve off by a wrong
+    # weight or pixel is off by > 1e-3).  A pixel without data is left out.
+    profile = SeeingProfile(3.2)
+    scene = render_scene([100.0], [64.0], 5e4, shape=(128, 200), seed=4)
+    image = scene.image - 200.0
+    image[62, 99] = np.nan
+    grid = KernelGrid(scene.kernels)
+    fwhm_grid = np.linspace(2.0, 5.0, 7)
+    _, curves = seeing_curves(
+        image, scene.variance, [(100.2, 63.9)], grid, profile, fwhm_grid, x_start=1000
+    )
+    spacing = KERNEL_SPACING * profile.fwhm
+    kernel = reduce_kernel(*grid(1000 + 100.2, 63.9), spacing)
+    response = grid.response(1000 + 100.2, 63.9)
+    y0, y1, x0, x1, _ = _measure._stamp(image.shape, [100.2], [63.9], [kernel], 1.5 * 3.2)
+    data, var = image[y0:y1, x0:x1], scene.variance[y0:y1, x0:x1]
+    fit = fit_stars(data, var, [100.2], [63.9], [kernel], profile, origin=(y0, x0),
+                    responses=[response])  # fmt: skip
+    good = np.isfinite(data)
+    sw = np.sqrt(1.0 / var[good])
+    expected = []
+    for fwhm in fwhm_grid:
+        unit = model_image(data.shape, fit.x[0] - x0, fit.y[0] - y0, *kernel,
+                           profile.with_fwhm(fwhm), response=response)  # fmt: skip
+        design = np.column_stack([np.ones(sw.size), unit[good]]) * sw[:, None]
+        coef = np.linalg.lstsq(design, data[good] * sw, rcond=None)[0]
+        expected.append(np.sum((design @ coef - data[good] * sw) ** 2) / (sw.size - 2))
+    np.testing.assert_allclose(curves[0], expected, rtol=1e-10)
 
 
 def test_a_seeing_moved_by_hidden_companions_costs_one_refit(monkeypatch):

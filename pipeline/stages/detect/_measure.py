@@ -172,8 +172,10 @@ def seeing_curves(
     chi2 : ndarray, shape (n, m)
         Reduced chi-square of each star at each trial FWHM.
     """
-    from pipeline.stages.detect._model import fit_stars, model_image
+    from pipeline.stages.detect._measure_jit import seeing_chi2_compiled
+    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_row, fit_stars
 
+    mixtures = _mixture_tables(profile, fwhm_grid)
     rows, curves = [], []
     for x, y in candidates:
         kern = _kernels_at(grid, x_start, [x], [y], KERNEL_SPACING * profile.fwhm, point_kernel)
@@ -185,27 +187,38 @@ def seeing_curves(
         fit = fit_stars(data, var, [x], [y], kern, profile, origin=(y0, x0), responses=resp)
         if not (fit.success and fit.flux[0] > 0):
             continue
-        good = np.isfinite(data) & np.isfinite(var) & (var > 0)
-        sw = np.sqrt(1.0 / var[good])
-        d = data[good] * sw
-        curve = []
-        for fwhm in fwhm_grid:
-            unit = model_image(
-                data.shape,
-                fit.x[0] - x0,
-                fit.y[0] - y0,
-                *kern[0],
-                profile.with_fwhm(fwhm),
-                response=resp[0],  # stamp and image pixels differ by whole pixels
-            )
-            design = np.column_stack([np.ones(d.size), unit[good]]) * sw[:, None]
-            coef = np.linalg.lstsq(design, d, rcond=None)[0]
-            curve.append(float(np.sum((design @ coef - d) ** 2)) / max(d.size - 2, 1))
+        curve = seeing_chi2_compiled(
+            np.asarray(data, dtype=np.float64),
+            np.asarray(var, dtype=np.float64),
+            float(fit.x[0] - x0),
+            float(fit.y[0] - y0),
+            np.ascontiguousarray(kern[0][0], dtype=np.float64),
+            np.ascontiguousarray(kern[0][1], dtype=np.float64),
+            _response_row(resp[0]),  # stamp and image pixels differ by whole pixels
+            *mixtures,
+            _ERF_TABLE,
+            _GAUSS_TABLE,
+        )
         rows.append(y)
         curves.append(curve)
     return np.asarray(rows, dtype=float), np.asarray(curves, dtype=float).reshape(
         -1, len(fwhm_grid)
     )
+
+
+def _mixture_tables(profile, fwhm_grid) -> tuple[np.ndarray, np.ndarray]:
+    """Sigmas and weights of ``profile`` at each width of ``fwhm_grid``, shape (m, J) each.
+
+    A mixture with fewer components than the longest is padded with zero
+    weights (sigma 1), which add nothing to a model.
+    """
+    parts = [profile.with_fwhm(fwhm).mixture() for fwhm in fwhm_grid]
+    size = max(len(sigmas) for sigmas, _ in parts)
+    sigmas = np.ones((len(parts), size))
+    weights = np.zeros((len(parts), size))
+    for t, (s, w) in enumerate(parts):
+        sigmas[t, : len(s)], weights[t, : len(w)] = s, w
+    return sigmas, weights
 
 
 def single_stars(fwhm_grid: np.ndarray, chi2: np.ndarray) -> np.ndarray:

@@ -12,9 +12,14 @@ import math
 import numba
 import numpy as np
 
-from pipeline.stages.detect._fit_jit import errors_compiled, fit_compiled, weighted_compiled
+from pipeline.stages.detect._fit_jit import (
+    errors_compiled,
+    fit_compiled,
+    model_compiled,
+    weighted_compiled,
+)
 
-__all__ = ["fit_groups_compiled", "quadrupole_sums"]
+__all__ = ["fit_groups_compiled", "quadrupole_sums", "seeing_chi2_compiled"]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -170,3 +175,53 @@ def fit_groups_compiled(
                     data, var, model, units[s], p[2 + 3 * s] - x0, p[3 + 3 * s] - y0
                 )
     return stars, quadrupoles, groups
+
+
+@numba.njit(cache=True, nogil=True)
+def seeing_chi2_compiled(data, variance, x, y, dx, dy, response, sigmas, weights, erf, gauss):
+    """Reduced chi-square of a star's stamp against the model at each trial seeing width.
+
+    For trial ``t`` (mixture ``sigmas[t]``, ``weights[t]``; zero weights pad
+    a shorter mixture) the unit model at ``(x, y)`` (stamp pixels) is
+    ``model_compiled``'s, and background and flux are solved linearly by
+    the normal equations of the weighted columns ``1`` and ``unit``: what
+    ``seeing_curves`` did with one ``model_image`` and ``lstsq`` per trial,
+    to rounding (~1e-13 of each value).  Pixels with non-finite data or
+    variance, or variance <= 0, are left out.
+
+    Returns
+    -------
+    ndarray, shape (m,)
+    """
+    ny, nx = data.shape
+    sw, d, n_good = weighted_compiled(data, variance)
+    out = np.empty(sigmas.shape[0])
+    dof = max(n_good - 2, 1)
+    for t in range(sigmas.shape[0]):
+        unit = model_compiled(
+            x, y, 0.0, nx, 0.0, ny, dx, dy, sigmas[t], weights[t], response, erf, gauss
+        ).ravel()
+        a11 = a12 = a22 = b1 = b2 = 0.0
+        for i in range(d.size):
+            if sw[i] == 0.0:
+                continue
+            u = unit[i] * sw[i]
+            a11 += sw[i] * sw[i]
+            a12 += sw[i] * u
+            a22 += u * u
+            b1 += sw[i] * d[i]
+            b2 += u * d[i]
+        det = a11 * a22 - a12 * a12
+        if det == 0.0:
+            out[t] = np.nan
+            continue
+        c1 = (a22 * b1 - a12 * b2) / det
+        c2 = (a11 * b2 - a12 * b1) / det
+        chi2 = 0.0
+        for i in range(d.size):
+            if sw[i] == 0.0:
+                continue
+            r = c1 * sw[i] + c2 * unit[i] * sw[i] - d[i]
+            chi2 += r * r
+        out[t] = chi2 / dof
+    return out
