@@ -454,6 +454,35 @@ def test_joint_fits_in_one_call_equal_the_fits_one_by_one(monkeypatch):
     assert all(np.isfinite(batch["flux"]))
 
 
+def test_a_joint_fit_with_a_singular_step_is_fitted_again_one_by_one(monkeypatch):
+    # Two sources started on the same pixel have the same unit model: the
+    # compiled fit meets a singular step (status -1) and the group is fitted
+    # again through fit_stars (the Python loop, which reports it), as the fits
+    # one by one do; the other groups of the call are kept from the batch.
+    scene = render_scene([100.0, 300.0], [64.0, 64.0], 5e4, shape=(128, 400), seed=3)
+    groups = [[(100.3, 64.2), (100.3, 64.2)], [(300.2, 63.9)]]
+    statuses = []
+    compiled = _measure_jit.fit_groups_compiled
+
+    def recording(*args):
+        out = compiled(*args)
+        statuses.extend(out[2][:, 2].tolist())
+        return out
+
+    planes = (scene.image - 200.0, scene.variance, scene.mask)
+
+    def measure():
+        return measure_groups(*planes, groups, KernelGrid(scene.kernels), SeeingProfile(3.2))
+
+    monkeypatch.setattr(_measure_jit, "fit_groups_compiled", recording)
+    batch = measure()
+    assert statuses == [-1.0, 1.0]
+    monkeypatch.setattr(_measure, "_measure_joint", lambda *args: {})
+    one_by_one = measure()
+    for name in ("x", "y", "flux", "flux_err", "chi2", "flags"):
+        np.testing.assert_array_equal(batch[name], one_by_one[name], err_msg=name)
+
+
 def test_models_subtracted_in_one_call_equal_model_image_one_by_one():
     # _subtract_models renders and subtracts every source's model in one
     # compiled call; the reference is model_image per source on the pixels

@@ -252,17 +252,15 @@ def best_fwhm(fwhm_grid: np.ndarray, chi2: np.ndarray) -> float:
     return float(fwhm_grid[k] + np.clip(shift, -1.0, 1.0) * h)
 
 
-def _flags_for(mask, core, stamp_box, clipped, blended, overlap) -> int:
+def _flags_for(mask, core, stamp_box, clipped, blended) -> int:
+    """The flags of a star from the mask over its stamp and its ``core`` (bool, on the stamp)."""
     y0, y1, x0, x1 = stamp_box
     stamp_mask = mask[y0:y1, x0:x1]
     stamp_bits = core_bits = 0
     if stamp_mask.any():  # most stamps have no flagged pixel: skip the bit tests
         stamp_bits = int(np.bitwise_or.reduce(stamp_mask, axis=None))
         core_bits = int(np.bitwise_or.reduce(stamp_mask[core], axis=None))
-    flags = _flags_from_bits(stamp_bits, core_bits, clipped, blended)
-    if overlap:
-        flags |= _OVERLAP
-    return flags
+    return _flags_from_bits(stamp_bits, core_bits, clipped, blended)
 
 
 # The bits as plain ints: an IntFlag's ``|`` and ``&`` are Python calls (0.14 s
@@ -480,7 +478,7 @@ def _measure_group(
         y0, y1, x0, x1, clipped = box
         unit = fit.units[j]
         core = unit > 0.05 * unit.max()
-        flags = _flags_for(mask, core, (y0, y1, x0, x1), clipped, bool(split[i]), False)
+        flags = _flags_for(mask, core, (y0, y1, x0, x1), clipped, bool(split[i]))
         values = (fit.flux[j], fit.x[j], fit.y[j], fit.flux_err[j], fit.x_err[j], fit.y_err[j])
         fitted = (values, fit.background, fit.chi2, fit.success)
         rows.append(
