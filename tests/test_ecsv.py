@@ -82,6 +82,62 @@ def test_floats_of_every_kind_round_trip(tmp_path, dtype):
     _check_round_trip(Table({"v": values}), tmp_path)
 
 
+def _every_notation(rng) -> np.ndarray:
+    """float64 values of every notation Python's repr uses and pyarrow's text does
+    not share: integral ones (``100.0``, ``-0.0``, up to 1e16), ones printed
+    positionally from 1e-4 up, one-digit exponents (``1e-05`` to ``1e-09``),
+    ``e+16`` and up, and the values either side of each boundary (Python's
+    ``float_repr_style`` 'short', the Python documentation of ``repr``)."""
+    edges = np.array([1e-4, 1e-5, 1e-9, 1e-10, 1e15, 1e16, 2.0**53, 0.0])
+    around = np.concatenate([edges, np.nextafter(edges, 0), np.nextafter(edges, np.inf)])
+    scale = 10.0 ** rng.uniform(-12, 19, 20000)
+    spread = rng.normal(size=20000) * scale
+    values = np.concatenate([around, spread, np.round(spread), [1.0, 100.0, 1e-7, 1.5e-5]])
+    return np.concatenate([values, -values])
+
+
+def test_floats_of_every_notation_print_as_python_s_repr(tmp_path):
+    values = _every_notation(np.random.default_rng(4))
+    assert _ecsv._float64_texts(values).to_pylist() == list(map(str, values.tolist()))
+    _check_round_trip(Table({"v": values}), tmp_path)
+
+
+def test_a_fresh_process_writes_integer_columns():
+    """The writer imports the pyarrow modules it uses itself: a worker process that
+    has read no table (column_stats' first unit) writes integer columns."""
+    import subprocess
+    import sys
+
+    script = (
+        "import numpy as np, pathlib, tempfile\n"
+        "from astropy.table import Table\n"
+        "from pipeline.runner._ecsv import write_ecsv\n"
+        "path = pathlib.Path(tempfile.mkdtemp()) / 't.ecsv'\n"
+        "write_ecsv(Table({'n': np.arange(3)}), path)\n"
+        "print(path.read_text().splitlines()[-1])\n"
+    )
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == "2"
+
+
+def test_catalogue_values_are_printed_without_python_s_str(monkeypatch):
+    """The fast writer hands to ``str`` only the few values pyarrow prints otherwise:
+    none of a catalogue's positions, fluxes, integral flags and zeros."""
+    printed = []
+
+    def spy(value):
+        printed.append(value)
+        return str(value)
+
+    monkeypatch.setattr(_ecsv, "str", spy, raising=False)
+    table = _catalogue_like(500)
+    table["zero"] = np.zeros(500)
+    table["zp_used"] = np.zeros(500, dtype=int)  # no booleans: they go through str
+    assert _ecsv._column_texts(table) is not None
+    assert printed == []
+
+
 INTEGER_DTYPES = ["int8", "int16", "int32", "int64", "uint8", "uint16", "uint32", "uint64"]
 
 
