@@ -23,6 +23,7 @@ from pipeline.stages.astrometry._second_pass import (
     centroid_noise,
     kernel_change,
     solved_kernels,
+    solved_kernels_of_stretches,
 )
 from pipeline.stages.rectify._map import StripMap, smear_kernels
 
@@ -118,3 +119,23 @@ def test_second_pass_options():
     assert options.max_passes == 3 and options.second_pass_noise == 1.0
     with pytest.raises(ValueError, match="max_passes"):
         AstrometryStageOptions(max_passes=0)
+
+
+def test_the_stretches_kernels_together_are_each_stretch_s_own():
+    """solved_kernels_of_stretches (one pass for the sky, the map's shared node
+    columns computed once) gives every stretch the kernels it gets alone."""
+    model = night_model(LATITUDES[0], N_ROWS, small_camera(tdi_rows=TDI_ROWS))
+    frame = RectifiedFrame.for_night(model, N_ROWS)
+    records = []
+    for columns in ([1200.0, 1300.0], [1400.0, 1500.0, 1650.0], [1700.0]):  # adjacent stretches
+        x = np.repeat(columns, 9)
+        y = np.tile(np.linspace(0.0, frame.n_y - 1.0, 9), len(columns))
+        strip_map = StripMap(model, frame, min(columns) - 100.0, max(columns) + 100.0)
+        records.append(smear_kernels(model, frame, strip_map, x, y))
+    solution = _solution(model, frame, 0.005)
+    solution.sky_from_rectified_groups = lambda groups: [frame.icrs_from_pixel(*g) for g in groups]
+    together = solved_kernels_of_stretches(records, solution, model, frame)
+    for record, kernels in zip(records, together, strict=True):
+        alone = solved_kernels(record, solution, model, frame)
+        for name in alone.colnames:  # the same computation: to the bit
+            np.testing.assert_array_equal(kernels[name], alone[name])

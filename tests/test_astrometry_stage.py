@@ -95,6 +95,79 @@ def test_stretch_wcs_cards_reproduce_the_solution(solution):
         stretch_wcs_cards(solution, x_start, n_x, 1e-9)
 
 
+def _pixel_miss(solution, sky, expected) -> float:
+    """Largest distance between two lists of ``(ra, dec)``, in rectified pixels."""
+    (ra, dec), (ra0, dec0) = sky, expected
+    along = (ra - ra0) * np.cos(np.radians(dec0)) / solution.frame.cdelt1
+    return float(np.max(np.hypot(along, (dec - dec0) / solution.frame.cdelt2)))
+
+
+def test_groups_are_solved_as_each_alone(solution):
+    """sky_from_rectified_groups gives each group what sky_from_rectified gives it
+    alone: groups of different sizes (1, 5, 300 points), which need different
+    numbers of Newton steps, each with its own Jacobian and stopping rule."""
+    rng = np.random.default_rng(7)
+    n_y = solution.frame.n_y
+    groups = [
+        (np.array([2500.0]), np.array([0.5 * n_y])),
+        (rng.uniform(1000, 1100, 5), rng.uniform(0, n_y, 5)),
+        (rng.uniform(3000, 3900, 300), rng.uniform(-0.5, n_y - 0.5, 300)),
+    ]
+    together = solution.sky_from_rectified_groups(groups)
+    for (x, y), sky in zip(groups, together, strict=True):
+        alone = solution.sky_from_rectified(x, y)
+        assert sky[0].shape == x.shape
+        # 1e-6 px: the Newton steps' stopping tolerance (each group stops on its own)
+        assert _pixel_miss(solution, sky, alone) < 1e-6
+
+
+def test_each_group_takes_its_own_newton_steps():
+    """invert_groups on a map with a known inverse (r = x + x^2 / 1000, c = y):
+    a group that starts on its solution stops after one step while another
+    still steps; both end where they end alone (the same arithmetic: to the bit)
+    and on the analytic solution."""
+    from pipeline.stages.astrometry._solve import invert_groups
+
+    def strip_of(x, y):
+        return x + x * x / 1000.0, y.copy()
+
+    exact_b = np.array([120.0, 220.0, 320.0])
+    start_a, start_b = np.array([10.0]), np.array([100.0, 200.0, 300.0])
+    groups = [
+        (*strip_of(start_a, np.zeros(1)), start_a, np.zeros(1)),  # already solved
+        (*strip_of(exact_b, np.ones(3)), start_b, np.ones(3)),  # 20 px to go
+    ]
+    together = invert_groups(groups, strip_of)
+    for group, (x, y) in zip(groups, together, strict=True):
+        ((x_alone, y_alone),) = invert_groups([group], strip_of)
+        np.testing.assert_array_equal(x, x_alone)
+        np.testing.assert_array_equal(y, y_alone)
+    # 1e-6 px: the stopping tolerance (the map's slope is 1.3-1.8)
+    np.testing.assert_allclose(together[1][0], exact_b, atol=1e-6)
+    assert together[0][0][0] == 10.0
+
+
+def test_stretch_wcs_cards_from_the_night_s_pass_are_each_stretch_s_own(solution):
+    """The stage computes every stretch's solved points in one pass (wcs_sky);
+    each stretch's cards are the ones it gets alone."""
+    from pipeline.stages.astrometry._wcs import wcs_sky
+
+    products = [(1000, 700), (1700, 650), (2350, 2)]
+    skies = wcs_sky(solution, products)
+    for (x_start, n_x), sky in zip(products, skies, strict=True):
+        cards, error = stretch_wcs_cards(solution, x_start, n_x, 0.02, sky=sky)
+        alone, alone_error = stretch_wcs_cards(solution, x_start, n_x, 0.02)
+        assert cards.keys() == alone.keys()
+        for key, value in cards.items():
+            if isinstance(value, str):
+                assert value == alone[key]
+                continue
+            # 1e-9 relative: positions within the Newton tolerance (1e-6 px) of
+            # each other move a SIP coefficient by far less
+            assert value == pytest.approx(alone[key], rel=1e-9, abs=1e-12), key
+        assert error == pytest.approx(alone_error, abs=1e-6)
+
+
 # ----------------------------------------------------- end to end, mis-set camera
 
 

@@ -58,6 +58,7 @@ __all__ = [
     "kernel_change",
     "kernel_change_error",
     "solved_kernels",
+    "solved_kernels_of_stretches",
 ]
 
 #: Signal-to-noise of the bright stars whose centroid noise sets the second
@@ -69,7 +70,9 @@ BRIGHT_SNR = 50.0
 _MAP_STEP = (256, 16)
 
 
-def solved_kernels(kernels: Table, solution, nominal_model, frame, model=None) -> Table:
+def solved_kernels(
+    kernels: Table, solution, nominal_model, frame, model=None, *, sky=None, nodes=None
+) -> Table:
     """rectify's kernel record redone with the tracks of a solved geometry.
 
     Parameters
@@ -86,6 +89,12 @@ def solved_kernels(kernels: Table, solution, nominal_model, frame, model=None) -
         The night's rectified grid.
     model : TDIModel or None
         The tracks' geometry; None: ``solution.solved_model``.
+    sky : (ndarray, ndarray) or None
+        ``solution.sky_from_rectified`` of the kernels' positions, if made
+        already (see :func:`solved_kernels_of_stretches`).
+    nodes : dict or None
+        Node columns of the nominal map shared with other stretches' calls
+        (see :class:`~pipeline.stages.rectify._map.StripMap`).
 
     Returns
     -------
@@ -104,10 +113,28 @@ def solved_kernels(kernels: Table, solution, nominal_model, frame, model=None) -
         float(x.max()) + pad,
         step_x=_MAP_STEP[0],
         step_y=_MAP_STEP[1],
+        nodes=nodes,
     )
-    sky = solution.sky_from_rectified(x, y)
+    if sky is None:
+        sky = solution.sky_from_rectified(x, y)
     model = solution.solved_model if model is None else model
     return smear_kernels(model, frame, strip_map, x, y, n_samples, sky=sky)
+
+
+def solved_kernels_of_stretches(kernels: list[Table], solution, nominal_model, frame) -> list:
+    """:func:`solved_kernels` of every stretch's record, each as alone, made together.
+
+    The solved sky of every record's positions comes from one pass
+    (:meth:`~AstrometricSolution.sky_from_rectified_groups`), and the nominal
+    map's node columns that adjacent stretches share are computed once.
+    """
+    groups = [(np.asarray(k["x"], dtype=float), np.asarray(k["y"], dtype=float)) for k in kernels]
+    skies = solution.sky_from_rectified_groups(groups) if kernels else []
+    nodes: dict = {}
+    return [
+        solved_kernels(k, solution, nominal_model, frame, sky=sky, nodes=nodes)
+        for k, sky in zip(kernels, skies, strict=True)
+    ]
 
 
 def kernel_change(before: Table, after: Table) -> float:

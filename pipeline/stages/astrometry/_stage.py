@@ -41,9 +41,9 @@ from pipeline.stages.astrometry._second_pass import (
     centroid_noise,
     kernel_change,
     kernel_change_error,
-    solved_kernels,
+    solved_kernels_of_stretches,
 )
-from pipeline.stages.astrometry._wcs import solved_wcs
+from pipeline.stages.astrometry._wcs import solved_wcs, wcs_sky
 from pipeline.stages.base import BLOCK_INDEX, Stage
 from pipeline.stages.catalog import stack_catalogs
 from pipeline.stages.detect import WARM as DETECT_WARM
@@ -124,12 +124,14 @@ def reference_columns(ref_index: np.ndarray, reference: QTable) -> dict[str, u.Q
 
 
 def stretch_wcs_cards(
-    solution, x_start: int, n_x: int, tolerance: float
+    solution, x_start: int, n_x: int, tolerance: float, sky=None
 ) -> tuple[dict[str, Any], float]:
     """FITS cards of the solved WCS of one rectified stretch, and its largest error.
 
     Tries SIP degrees 3, 4, 5 until :func:`solved_wcs` reproduces the
-    solution to ``tolerance`` pixels.
+    solution to ``tolerance`` pixels.  ``sky``: the stretch's item of
+    :func:`~pipeline.stages.astrometry._wcs.wcs_sky`, if made already (the
+    solved positions do not depend on the degree: made once).
 
     Returns
     -------
@@ -144,8 +146,10 @@ def stretch_wcs_cards(
     AstrometryError
         If no degree reaches the tolerance (the WCS would misplace stars).
     """
+    if sky is None and n_x >= 2:
+        (sky,) = wcs_sky(solution, [(x_start, n_x)])
     for degree in _SIP_DEGREES:
-        wcs, max_error = solved_wcs(solution, x_start, n_x, sip_degree=degree)
+        wcs, max_error = solved_wcs(solution, x_start, n_x, sip_degree=degree, sky=sky)
         if max_error <= tolerance:
             break
     else:
@@ -256,7 +260,7 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
             ref_mag=ref_mag,
             start=start,
         )
-        new = [solved_kernels(k, solved.solution, model, frame) for k in kernels]
+        new = solved_kernels_of_stretches(kernels, solved.solution, model, frame)
         changes = [kernel_change(a, b) for a, b in zip(kernels, new, strict=True)]
         change, error = 0.0, 0.0
         if changes:
@@ -322,7 +326,7 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
                 ref_mag=ref_mag,
                 start=solved.solution.offsets,
             )
-            new = [solved_kernels(k, guide.solution, model, frame) for k in kernels]
+            new = solved_kernels_of_stretches(kernels, guide.solution, model, frame)
         kernels = new
         catalog = _remeasure(inputs, stretches, kernels, detect_options)
         start = guide.solution.offsets
@@ -356,13 +360,18 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
         catalog[name].info.description = "magnitude/colour of the matched reference star"
 
     wcs, worst = {}, 0.0
-    for stretch, (start, stop) in zip(stretches, columns, strict=True):
-        if stop > start + 1:
-            wcs[stretch.id], error = stretch_wcs_cards(
-                solved.solution, start, stop - start, options.wcs_tolerance
-            )
-            wcs[stretch.id]["ASTPASS"] = [len(passes), _PASS_COMMENT]
-            worst = max(worst, error)
+    products = [
+        (s, start, stop - start) for s, (start, stop) in zip(stretches, columns, strict=True)
+    ]
+    products = [(stretch, start, n_x) for stretch, start, n_x in products if n_x > 1]
+    # every stretch's solved points in one pass (the fixed cost of each pass is ~5 ms)
+    skies = wcs_sky(solved.solution, [(start, n_x) for _, start, n_x in products])
+    for (stretch, start, n_x), sky in zip(products, skies, strict=True):
+        wcs[stretch.id], error = stretch_wcs_cards(
+            solved.solution, start, n_x, options.wcs_tolerance, sky=sky
+        )
+        wcs[stretch.id]["ASTPASS"] = [len(passes), _PASS_COMMENT]
+        worst = max(worst, error)
     parameters = solved.parameters
     parameters.meta["wcs_max_deviation_px"] = worst
     parameters.meta["passes"] = passes

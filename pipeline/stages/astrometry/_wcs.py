@@ -27,11 +27,52 @@ from astropy import units as u
 from astropy.coordinates import SkyCoord
 from astropy.wcs import WCS, Sip
 
-__all__ = ["solved_wcs"]
+__all__ = ["solved_wcs", "wcs_sky"]
+
+
+def _grid(n_x: int, n_y: int, n: int, offset: float) -> tuple[np.ndarray, np.ndarray]:
+    """Zero-based product pixels of an ``n`` x ``n`` grid (``offset`` steps in from the edges)."""
+    f = (np.arange(n) + offset) / (n - 1 + 2 * offset)
+    gx, gy = np.meshgrid(-0.5 + f * n_x, -0.5 + f * n_y)
+    return gx.ravel(), gy.ravel()
+
+
+def _points(n_x: int, n_y: int, n_grid: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    """The fit grid, the reference pixel and the check grid of a product, zero-based."""
+    reference = (np.array([0.5 * (n_x - 1)]), np.array([0.5 * (n_y - 1)]))
+    return [_grid(n_x, n_y, n_grid, 0.0), reference, _grid(n_x, n_y, 2 * n_grid, 0.25)]
+
+
+def wcs_sky(solution, products, *, n_grid: int = 16) -> list[list[tuple[np.ndarray, np.ndarray]]]:
+    """The solved sky of the points :func:`solved_wcs` fits and checks, for many products.
+
+    Parameters
+    ----------
+    solution : AstrometricSolution
+        The night's solution.
+    products : sequence of (int, int)
+        ``(x_start, n_x)`` of each product (see :func:`solved_wcs`).
+    n_grid : int, optional
+        As for :func:`solved_wcs`.
+
+    Returns
+    -------
+    list
+        Per product, the ``(ra, dec)`` (deg) of its fit grid, its reference
+        pixel and its check grid: what :func:`solved_wcs` computes for it
+        alone (:meth:`~AstrometricSolution.sky_from_rectified_groups`, one
+        pass for all of them).
+    """
+    n_y = solution.frame.n_y
+    groups = [
+        (px + x_start, py) for x_start, n_x in products for px, py in _points(n_x, n_y, n_grid)
+    ]
+    sky = solution.sky_from_rectified_groups(groups)
+    return [sky[3 * i : 3 * i + 3] for i in range(len(products))]
 
 
 def solved_wcs(
-    solution, x_start: int, n_x: int, *, sip_degree: int = 3, n_grid: int = 16
+    solution, x_start: int, n_x: int, *, sip_degree: int = 3, n_grid: int = 16, sky=None
 ) -> tuple[WCS, float]:
     """A TAN-SIP WCS of the product whose first column is night column ``x_start``.
 
@@ -46,6 +87,9 @@ def solved_wcs(
         Degree of the SIP polynomials.
     n_grid : int, optional
         Fit points per axis (``n_grid**2`` solved positions).
+    sky : list or None, optional
+        The product's item of :func:`wcs_sky` (same ``n_grid``), if made
+        already; None: computed here.
 
     Returns
     -------
@@ -58,21 +102,13 @@ def solved_wcs(
     if n_x < 2:
         raise ValueError(f"n_x must be at least 2 columns; got {n_x}.")
     n_y = solution.frame.n_y
-
-    def grid(n, offset):
-        f = (np.arange(n) + offset) / (n - 1 + 2 * offset)
-        gx, gy = np.meshgrid(-0.5 + f * n_x, -0.5 + f * n_y)
-        return gx.ravel(), gy.ravel()
-
-    px, py = grid(n_grid, 0.0)
-    ra, dec = solution.sky_from_rectified(px + x_start, py)
-    ref_x, ref_y = 0.5 * (n_x - 1), 0.5 * (n_y - 1)
-    ref_ra, ref_dec = solution.sky_from_rectified(np.array([ref_x + x_start]), np.array([ref_y]))
-    wcs = _fit_tan_sip(px, py, ra, dec, (ref_x, ref_y), (ref_ra[0], ref_dec[0]), sip_degree)
+    (px, py), (ref_x, ref_y), (cx, cy) = _points(n_x, n_y, n_grid)
+    if sky is None:
+        (sky,) = wcs_sky(solution, [(x_start, n_x)], n_grid=n_grid)
+    (ra, dec), (ref_ra, ref_dec), (check_ra, check_dec) = sky
+    wcs = _fit_tan_sip(px, py, ra, dec, (ref_x[0], ref_y[0]), (ref_ra[0], ref_dec[0]), sip_degree)
     wcs.pixel_shape = (int(n_x), int(n_y))
-    cx, cy = grid(2 * n_grid, 0.25)
-    ra, dec = solution.sky_from_rectified(cx + x_start, cy)
-    qx, qy = wcs.world_to_pixel(SkyCoord(ra * u.deg, dec * u.deg, frame="icrs"))
+    qx, qy = wcs.world_to_pixel(SkyCoord(check_ra * u.deg, check_dec * u.deg, frame="icrs"))
     return wcs, float(np.max(np.hypot(qx - cx, qy - cy)))
 
 

@@ -82,6 +82,10 @@ class StripMap:
         Range of rectified columns ``x`` the map must serve.
     step_x, step_y : int
         Node spacing in rectified pixels along and across the scan.
+    nodes : dict or None
+        Node columns already computed, by ``x``: maps of the same model,
+        frame and ``step_y`` share them (adjacent stretches' maps have nodes
+        in common) and this map adds its own; None: computed here alone.
 
     Raises
     ------
@@ -90,7 +94,15 @@ class StripMap:
     """
 
     def __init__(
-        self, model, frame, x_lo: float, x_hi: float, *, step_x: int = 256, step_y: int = 16
+        self,
+        model,
+        frame,
+        x_lo: float,
+        x_hi: float,
+        *,
+        step_x: int = 256,
+        step_y: int = 16,
+        nodes: dict | None = None,
     ) -> None:
         from scipy.interpolate import CubicSpline
 
@@ -111,11 +123,13 @@ class StripMap:
         self.y_nodes = np.arange(-2, int(np.ceil((n_y - 1) / step_y)) + 3) * float(step_y)
         offsets = np.empty((self.x_nodes.size, self.y_nodes.size))
         columns = np.empty_like(offsets)
+        nodes = {} if nodes is None else nodes
         for k, xn in enumerate(self.x_nodes):
-            ra, dec = frame.icrs_from_pixel(xn, self.y_nodes)
-            r, c = model.recorded_centroid(ra, dec, after=crossing_after(model, xn))
-            offsets[k] = r - xn
-            columns[k] = c
+            if xn not in nodes:
+                ra, dec = frame.icrs_from_pixel(xn, self.y_nodes)
+                r, c = model.recorded_centroid(ra, dec, after=crossing_after(model, xn))
+                nodes[xn] = (r - xn, c)
+            offsets[k], columns[k] = nodes[xn]
         if not (np.isfinite(offsets).all() and np.isfinite(columns).all()):
             raise ValueError(
                 f"the TDI model cannot map rectified columns {x_lo:g}..{x_hi:g} (nodes "
