@@ -167,3 +167,30 @@ def test_a_clear_night_is_left_as_time_means(cloudy_night):
     assert parameters.meta["cloud_depth"] < 0.05
     rotation, error = _rotation(parameters)
     assert abs(rotation) <= 3 * error
+
+
+def test_window_means_are_the_basis_splines_mean_over_each_window():
+    """Each entry is the mean of one cubic basis spline over one window: scipy's
+    own integral of that spline alone (BSpline.integrate), and the entries of a
+    window inside the knots sum to 1 (the basis splines sum to one there: a
+    partition of unity, de Boor, A Practical Guide to Splines, ch. IX)."""
+    from scipy.interpolate import BSpline
+
+    from pipeline.stages.astrometry._transparency import _window_means
+
+    knots = np.r_[[0.0] * 3, np.linspace(0.0, 600.0, 13), [600.0] * 3]
+    rng = np.random.default_rng(3)
+    t0 = rng.uniform(-40.0, 560.0, 40)
+    t1 = t0 + rng.uniform(20.0, 80.0, 40)
+    means = _window_means(knots, t0, t1)
+    assert means.shape == (40, knots.size - 4)
+    for j in range(knots.size - 4):
+        basis = BSpline(knots, np.eye(knots.size - 4)[j], 3, extrapolate=False)
+        expected = [
+            basis.integrate(max(a, 0.0), min(b, 600.0)) / (b - a)
+            for a, b in zip(t0, t1, strict=True)
+        ]
+        # 1e-12: two evaluations of the same cubic integrals in double precision
+        np.testing.assert_allclose(means[:, j], expected, rtol=1e-12, atol=1e-14)
+    inside = (t0 >= 0.0) & (t1 <= 600.0)
+    np.testing.assert_allclose(means[inside].sum(axis=1), 1.0, rtol=1e-12)
