@@ -86,6 +86,25 @@ def test_predictor_matches_full_model(latitude):
         assert np.max(np.abs(c - c_true)) < 1e-3
 
 
+def test_a_prediction_does_not_depend_on_the_ones_before():
+    """The predictor keeps the last tilted axis it made (and the quadrature nodes):
+    each geometry's prediction is the one a fresh predictor makes, to the bit,
+    whatever was predicted in between."""
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 50)
+    tilted = [GeometryOffsets(tilt_north=20.0), GeometryOffsets(tilt_east=-15.0, tilt_north=5.0)]
+    fresh = []
+    for offsets in tilted:
+        predictor = GeometryPredictor(nominal)
+        fresh.append(predictor.strip(predictor.tracks(ra, dec, t_mid), offsets))
+    predictor = GeometryPredictor(nominal)
+    tracks = predictor.tracks(ra, dec, t_mid)
+    for offsets, expected in zip([*tilted, *tilted[::-1]], [*fresh, *fresh[::-1]], strict=True):
+        row, column = predictor.strip(tracks, offsets)
+        np.testing.assert_array_equal(row, expected[0])
+        np.testing.assert_array_equal(column, expected[1])
+
+
 @pytest.mark.parametrize("latitude", LATITUDES)
 def test_east_tilt_acts_as_clock_and_rotation(latitude):
     """An east tilt tau equals a clock offset tau/(omega cos phi) and a rotation tau tan phi.

@@ -33,6 +33,7 @@ rows were really read ``s`` seconds later than the headers say.
 from __future__ import annotations
 
 import dataclasses
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -153,6 +154,14 @@ def east_tilt_equivalent(model: TDIModel, tilt_east: float) -> tuple[float, floa
     rate = model.drift_rate * model.pixel_angle
     tau = tilt_east / ARCSEC_PER_RADIAN
     return tau / rate, tilt_east * float(np.tan(np.radians(model.latitude)))
+
+
+@functools.cache
+def _gauss_legendre(order: int) -> tuple[np.ndarray, np.ndarray]:
+    """Gauss-Legendre nodes and weights on [-1, 1] (numpy's), made once per order."""
+    x, w = np.polynomial.legendre.leggauss(order)
+    x.flags.writeable = w.flags.writeable = False  # shared by every prediction
+    return x, w
 
 
 @dataclass(frozen=True)
@@ -307,6 +316,8 @@ class GeometryPredictor:
         self.field_radius = 1.05 * max(along, across) + tilt_room
         self._axis: ZenithAxis | None = None
         self._axis_span: tuple[float, float] | None = None
+        self._tilt_key: tuple[float, float] | None = None  # see _tilted
+        self._tilt_matrix: np.ndarray | None = None
         #: Relative transparency of the sky, a callable of true seconds since
         #: ``start`` (:class:`~pipeline.stages.astrometry.TransparencyCurve`):
         #: centroids are then light-weighted means of the tracks; None: time means.
@@ -367,11 +378,8 @@ class GeometryPredictor:
         self, xi: np.ndarray, eta: np.ndarray, offsets: GeometryOffsets
     ) -> tuple[np.ndarray, np.ndarray]:
         if offsets.tilt_east or offsets.tilt_north:
-            new = axis_basis_enu(
-                self.tilt_east + offsets.tilt_east, self.tilt_north + offsets.tilt_north
-            )
             # direction in east/north/up, then gnomonic about the tilted axis
-            m = new @ self.basis.T  # rows: new basis vectors in the old basis
+            m = self._tilted(offsets.tilt_east, offsets.tilt_north)
             w = m[2, 0] * xi + m[2, 1] * eta + m[2, 2]
             xi, eta = (
                 (m[0, 0] * xi + m[0, 1] * eta + m[0, 2]) / w,
@@ -387,6 +395,17 @@ class GeometryPredictor:
             xc, ec = xc * scale, ec * scale
         p = self.pixel_angle / (1.0 + offsets.focal_scale)
         return xc / p + 0.5 * self.n_rows, ec / p + self.v_centre
+
+    def _tilted(self, tilt_east: float, tilt_north: float) -> np.ndarray:
+        """The basis of the axis tilted by these offsets, in the nominal basis (rows).
+
+        The last one is kept: a prediction asks for it about a dozen times.
+        """
+        key = (tilt_east, tilt_north)
+        if self._tilt_key != key:
+            new = axis_basis_enu(self.tilt_east + tilt_east, self.tilt_north + tilt_north)
+            self._tilt_key, self._tilt_matrix = key, new @ self.basis.T
+        return self._tilt_matrix
 
     def _crossing(self, tracks: SkyTracks, offsets: GeometryOffsets, target: float, t, slope):
         for _ in range(_NEWTON_STEPS):
@@ -432,14 +451,14 @@ class GeometryPredictor:
         mid = 0.5 * (t0 + t1)
         outside = (np.abs(t0 - t_c) > tracks.half_width) | (np.abs(t1 - t_c) > tracks.half_width)
         if self.transparency is None or not light_weighted:
-            x, w = np.polynomial.legendre.leggauss(_GAUSS_ORDER)
+            x, w = _gauss_legendre(_GAUSS_ORDER)
             t = mid[:, None] + 0.5 * (t1 - t0)[:, None] * x
             u, v = self._detector(*tracks.focal(t), offsets)
             u_mean = 0.5 * (u @ w)
             column = 0.5 * (v @ w)
         else:
             # light-weighted means of the track (module notes of _transparency)
-            x, w = np.polynomial.legendre.leggauss(_GAUSS_ORDER_WEIGHTED)
+            x, w = _gauss_legendre(_GAUSS_ORDER_WEIGHTED)
             t = mid[:, None] + 0.5 * (t1 - t0)[:, None] * x
             u, v = self._detector(*tracks.focal(t), offsets)
             light = w * self.transparency(np.nan_to_num(t))
