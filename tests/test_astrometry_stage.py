@@ -168,6 +168,27 @@ def test_stretch_wcs_cards_from_the_night_s_pass_are_each_stretch_s_own(solution
         assert error == pytest.approx(alone_error, abs=1e-6)
 
 
+def test_kernel_change_error_with_the_stretches_shared_map_nodes(solution):
+    """The stage hands kernel_change_error the node columns its stretches' kernels
+    computed: the error is the one computed afresh, to the bit."""
+    from pipeline.stages.astrometry._second_pass import (
+        kernel_change_error,
+        solved_kernels_of_stretches,
+    )
+    from pipeline.stages.rectify._map import StripMap, smear_kernels
+
+    model, frame = solution.model, solution.frame
+    x = np.repeat([1500.0, 1600.0], 5)
+    y = np.tile(np.linspace(0.0, frame.n_y - 1.0, 5), 2)
+    record = smear_kernels(model, frame, StripMap(model, frame, 1400.0, 1700.0), x, y)
+    nodes: dict = {}
+    (solved,) = solved_kernels_of_stretches([record], solution, model, frame, nodes=nodes)
+    assert nodes  # filled for the error's own map
+    shared = kernel_change_error(record, solved, solution, model, frame, nodes=nodes)
+    alone = kernel_change_error(record, solved, solution, model, frame)
+    assert shared == alone and np.isfinite(alone) and alone > 0
+
+
 # ----------------------------------------------------- end to end, mis-set camera
 
 

@@ -121,16 +121,19 @@ def solved_kernels(
     return smear_kernels(model, frame, strip_map, x, y, n_samples, sky=sky)
 
 
-def solved_kernels_of_stretches(kernels: list[Table], solution, nominal_model, frame) -> list:
+def solved_kernels_of_stretches(
+    kernels: list[Table], solution, nominal_model, frame, *, nodes=None
+) -> list:
     """:func:`solved_kernels` of every stretch's record, each as alone, made together.
 
     The solved sky of every record's positions comes from one pass
     (:meth:`~AstrometricSolution.sky_from_rectified_groups`), and the nominal
-    map's node columns that adjacent stretches share are computed once.
+    map's node columns that adjacent stretches share are computed once
+    (``nodes``: a dict to keep them in, e.g. for :func:`kernel_change_error`).
     """
     groups = [(np.asarray(k["x"], dtype=float), np.asarray(k["y"], dtype=float)) for k in kernels]
     skies = solution.sky_from_rectified_groups(groups) if kernels else []
-    nodes: dict = {}
+    nodes = {} if nodes is None else nodes
     return [
         solved_kernels(k, solution, nominal_model, frame, sky=sky, nodes=nodes)
         for k, sky in zip(kernels, skies, strict=True)
@@ -188,7 +191,9 @@ def centroid_noise(x_err, y_err, snr, matched) -> float:
     return float(np.median(ranked[: max(5, ranked.size // 10)]))
 
 
-def kernel_change_error(kernels: Table, solved: Table, solution, nominal_model, frame) -> float:
+def kernel_change_error(
+    kernels: Table, solved: Table, solution, nominal_model, frame, *, nodes=None
+) -> float:
     """1-sigma uncertainty of :func:`kernel_change` from the solution's covariance, px.
 
     Each fitted parameter is moved by its error and the kernels redone
@@ -205,6 +210,8 @@ def kernel_change_error(kernels: Table, solved: Table, solution, nominal_model, 
         Its ``fit`` holds the parameters' errors and covariance.
     nominal_model, frame
         As for :func:`solved_kernels`.
+    nodes : dict or None
+        As for :func:`solved_kernels` (the stretches' shared node columns).
     """
     if len(kernels) == 0:
         return 0.0
@@ -222,12 +229,23 @@ def kernel_change_error(kernels: Table, solved: Table, solution, nominal_model, 
     fit = solution.fit
     errors = fit.errors
     moves = []
+    # the stars recorded at the column's positions: the solution's, whichever
+    # parameter is moved (made once)
+    sky = solution.sky_from_rectified(
+        np.asarray(kernels["x"], dtype=float), np.asarray(kernels["y"], dtype=float)
+    )
     for name in fit.names:
         offsets = dataclasses.replace(
             solution.offsets, **{name: getattr(solution.offsets, name) + errors[name]}
         )
         moved = solved_kernels(
-            kernels, solution, nominal_model, frame, model=solution.model_for(offsets)
+            kernels,
+            solution,
+            nominal_model,
+            frame,
+            model=solution.model_for(offsets),
+            sky=sky,
+            nodes=nodes,
         )
         moves.append(
             direction[0] * (moved["dx"][worst] - solved["dx"][worst])

@@ -260,13 +260,16 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
             ref_mag=ref_mag,
             start=start,
         )
-        new = solved_kernels_of_stretches(kernels, solved.solution, model, frame)
+        nodes: dict = {}  # the nominal map's node columns, shared by every stretch's kernels
+        new = solved_kernels_of_stretches(kernels, solved.solution, model, frame, nodes=nodes)
         changes = [kernel_change(a, b) for a, b in zip(kernels, new, strict=True)]
         change, error = 0.0, 0.0
         if changes:
             i = int(np.argmax(changes))
             change = changes[i]
-            error = kernel_change_error(kernels[i], new[i], solved.solution, model, frame)
+            error = kernel_change_error(
+                kernels[i], new[i], solved.solution, model, frame, nodes=nodes
+            )
         noise = centroid_noise(
             u.Quantity(catalog["x_err"], u.pix).value,
             u.Quantity(catalog["y_err"], u.pix).value,
