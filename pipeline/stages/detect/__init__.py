@@ -1056,8 +1056,10 @@ def _run(*, inputs, options: DetectOptions, context) -> dict:
 
 #: What a worker loads as it starts for detect (``Stage.warm``): the libraries
 #: its functions import on first use, the smear-aware model and its compiled
-#: kernels (numba's disk cache).
+#: kernels (numba's disk cache); photutils without its scan of every installed
+#: distribution (:func:`pipeline._imports.import_photutils`).
 WARM = (
+    "pipeline._imports:import_photutils",
     "scipy.fft",
     "scipy.linalg",
     "scipy.ndimage",
