@@ -21,6 +21,7 @@ import contextlib
 import hashlib
 import json
 import os
+import threading
 import uuid
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
@@ -65,6 +66,9 @@ FAILED_NAME = "_failed.json"
 DAMAGED_NAME = "_damaged.json"
 SIDECAR_FORMAT = 1
 _TEMP_MARK = ".tmp-"
+#: Tables a night-wide stage's stretches are read ahead of its look-ups (see
+#: :class:`LazyProducts`): two reads at once while the stage waits for one.
+READ_AHEAD = 2
 
 
 def hash_json(data: Any) -> str:
@@ -410,6 +414,15 @@ def _read_checked(
     ``lazy_load_hdus``): ``hdul[ext].section[...]`` then reads only the part
     asked for, and ``files`` closes it.
     """
+    digest, value = _load_checked(path, entry, files)
+    _note_read(read, path, digest)
+    return value
+
+
+def _load_checked(
+    path: Path, entry: Mapping[str, Any], files: contextlib.ExitStack | None = None
+) -> tuple[str, Any]:
+    """``(SHA-256, value)`` of one product, checked first (see :func:`_read_checked`)."""
     digest = verify_product(path, entry)
     try:
         if files is not None and entry["kind"] == "hdulist":
@@ -419,9 +432,38 @@ def _read_checked(
     except Exception as exc:  # a file that hashes right but does not parse
         reason = f"cannot be read ({type(exc).__name__}: {exc})"
         raise DamagedProductError(path, reason) from exc
+    return digest, value
+
+
+def _note_read(read: dict[str, str] | None, path: Path, digest: str) -> None:
+    """Record in ``read`` that the stage read ``path`` (``'<stage>/<unit>/<file>'``)."""
     if read is not None:
         read[f"{path.parent.parent.name}/{path.parent.name}/{path.name}"] = digest
-    return value
+
+
+class _ReadAhead:
+    """One table product read (and checked) in a thread of its own, for a later look-up."""
+
+    def __init__(self, path: Path, entry: Mapping[str, Any]):
+        self._outcome: tuple[str, Any] | None = None
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(
+            target=self._read, args=(path, entry), name="zdrift-read-ahead", daemon=True
+        )
+        self._thread.start()
+
+    def _read(self, path: Path, entry: Mapping[str, Any]) -> None:
+        try:
+            self._outcome = _load_checked(path, entry)
+        except BaseException as exc:  # raised where the stage looks the product up
+            self._error = exc
+
+    def result(self) -> tuple[str, Any]:
+        """``(SHA-256, value)``, once read; the read's error, if it failed."""
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        return self._outcome
 
 
 class LazyUnit(Mapping):
@@ -439,18 +481,24 @@ class LazyUnit(Mapping):
         sidecar: Mapping[str, Any],
         read: dict[str, str] | None = None,
         files: contextlib.ExitStack | None = None,
+        source: tuple[LazyProducts, int] | None = None,
     ):
         self._unit_dir = Path(unit_dir)
         self._entries = dict(sidecar["products"])
         self._read = read
         self._files = files
+        self._source = source  # (the sequence, this unit's index in it), see LazyProducts
         self._loaded: dict[str, Any] = {}
 
     def __getitem__(self, name: str) -> Any:
         if name not in self._loaded:
             entry = self._entries[name]
             path = self._unit_dir / entry["file"]
-            self._loaded[name] = _read_checked(path, entry, self._read, self._files)
+            if self._source is None:
+                self._loaded[name] = _read_checked(path, entry, self._read, self._files)
+            else:
+                sequence, index = self._source
+                self._loaded[name] = sequence._take(index, name, path, entry)
         return self._loaded[name]
 
     def __iter__(self) -> Iterator[str]:
@@ -470,6 +518,15 @@ class LazyProducts(Sequence):
     product of every stretch (their catalogues), or one header of one stretch,
     reads only that, not every plane of every stretch.  With ``files`` given,
     image products come opened lazily and ``files`` closes them.
+
+    A table looked up in one stretch's products is read ahead in the next
+    ``read_ahead`` stretches' (a thread per file: the text parse and the
+    SHA-256 run outside Python's lock, so two files are read at once on two
+    cores): a night-wide stage that goes through the stretches' tables in
+    order (the column solve's 32 statistics tables, 80 MB of text on a
+    4096-column night) finds them read.  Each table is still checked against
+    its recorded SHA-256, recorded in ``read`` and its error raised only when
+    the stage looks it up; a table read ahead and never looked up is dropped.
     """
 
     def __init__(
@@ -477,10 +534,13 @@ class LazyProducts(Sequence):
         units: Sequence[tuple[Path, Mapping[str, Any]]],
         read: dict[str, str] | None = None,
         files: contextlib.ExitStack | None = None,
+        read_ahead: int = READ_AHEAD,
     ):
         self._units = list(units)
         self._read = read
         self._files = files
+        self._read_ahead = read_ahead
+        self._ahead: dict[tuple[int, str], _ReadAhead] = {}
 
     def __len__(self) -> int:
         return len(self._units)
@@ -489,11 +549,33 @@ class LazyProducts(Sequence):
         if isinstance(index, slice):
             return [self[i] for i in range(*index.indices(len(self)))]
         unit_dir, sidecar = self._units[index]
-        return LazyUnit(unit_dir, sidecar, self._read, self._files)
+        index = range(len(self))[index]  # negative indices count from the end
+        return LazyUnit(unit_dir, sidecar, self._read, self._files, source=(self, index))
 
     def __iter__(self) -> Iterator[dict[str, Any]]:
         for index in range(len(self)):
             yield self[index]
+
+    def _take(self, index: int, name: str, path: Path, entry: Mapping[str, Any]) -> Any:
+        """Product ``name`` of unit ``index``: read ahead or read now; read the next ahead."""
+        pending = self._ahead.pop((index, name), None)
+        if entry["kind"] == "table":
+            self._start_reading(index, name)
+        if pending is None:
+            digest, value = _load_checked(path, entry, self._files)
+        else:
+            digest, value = pending.result()
+        _note_read(self._read, path, digest)
+        return value
+
+    def _start_reading(self, index: int, name: str) -> None:
+        """Start reading table ``name`` of the ``read_ahead`` units after ``index``."""
+        for later in range(index + 1, min(index + 1 + self._read_ahead, len(self))):
+            unit_dir, sidecar = self._units[later]
+            entry = sidecar["products"].get(name)
+            if (later, name) in self._ahead or entry is None or entry["kind"] != "table":
+                continue
+            self._ahead[(later, name)] = _ReadAhead(Path(unit_dir) / entry["file"], entry)
 
 
 def output_hash(products: Mapping[str, Mapping[str, Any]]) -> str:
