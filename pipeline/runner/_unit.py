@@ -44,7 +44,7 @@ from pipeline.runner._store import (
     write_products,
     write_sidecar,
 )
-from pipeline.runner._warm import settle_after_warm, wait_warm
+from pipeline.runner._warm import settle_after_warm, unit_running, wait_warm
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, ExternalFile, Stage, StageContext
 
 __all__ = ["InputSpec", "UnitOutcome", "UnitTask", "execute_unit", "failed_outcome"]
@@ -287,7 +287,7 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
     astropy is kept offline meanwhile (a worker process may not have been
     forked from the runner's, so the runner's setting does not carry over).
     """
-    with astropy_offline():
+    with astropy_offline(), unit_running():
         outcome = _execute_unit(task)
     settle_after_warm()  # between units: nothing of the unit's is left to freeze
     return outcome

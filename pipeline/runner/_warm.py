@@ -12,6 +12,17 @@ stage's share is loaded (:func:`wait_warm`), so that the two threads never
 load the same thing at once, and then runs while the thread goes on with the
 stages after it.  Nothing loaded changes what a stage computes.
 
+The thread loads only while no unit runs in the process, or while every
+unit that runs waits for it (:func:`unit_running`): Python's lock lets one
+thread run at a time, and a unit that gives it up often (reading a file,
+a numpy call) gets it back from a thread busy importing only after the
+switch interval (5 ms), again and again: a unit that reads sixteen raw
+blocks took three times as long beside a busy thread.  A worker's
+warm-up so fills the time the worker waits for work (its first unit of a
+stage waits for that stage's share, as before), and stays off the units
+that the run waits for (ingest and the column statistics, which the night
+waits for before it can calibrate).
+
 Once a worker's warm-up is done, the next unit to end there moves what the
 process then holds (the libraries' hundreds of thousands of objects) out of the garbage
 collector's reach (:func:`settle_after_warm`): a full collection walked
@@ -20,13 +31,14 @@ them all, ~0.1 s of CPU, about once per unit.
 
 from __future__ import annotations
 
+import contextlib
 import gc
 import importlib
 import logging
 import threading
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 
-__all__ = ["settle_after_warm", "start_warming", "wait_warm", "warm_plan"]
+__all__ = ["settle_after_warm", "start_warming", "unit_running", "wait_warm", "warm_plan"]
 
 log = logging.getLogger(__name__)
 
@@ -35,6 +47,12 @@ _READY: dict[str, threading.Event] = {}
 #: Whether :func:`settle_after_warm` is to freeze this process's objects
 #: (a worker's, set by ``start_warming(settle=True)``), and whether it has.
 _SETTLE = {"wanted": False, "done": False}
+#: Units running in this process, and per stage how many of them wait for its
+#: share of the warm-up: the warm-up loads only while every unit that runs
+#: waits for a share not loaded yet (see :func:`unit_running`).
+_UNITS = {"running": 0}
+_WAITING: dict[str, int] = {}
+_UNITS_CHANGED = threading.Condition()
 
 
 def warm_plan(stages: Sequence) -> tuple[tuple[str, tuple[str, ...]], ...]:
@@ -55,10 +73,18 @@ def _load(entry: str) -> None:
         getattr(target, function)()
 
 
+def _idle() -> bool:
+    """Whether every unit running in this process waits for a share not loaded yet."""
+    waiting = sum(n for stage, n in _WAITING.items() if not _READY[stage].is_set())
+    return _UNITS["running"] <= waiting
+
+
 def _warm(plan: Sequence[tuple[str, tuple[str, ...]]]) -> None:
     for name, entries in plan:
         try:
             for entry in entries:
+                with _UNITS_CHANGED:
+                    _UNITS_CHANGED.wait_for(_idle)
                 try:
                     _load(entry)
                 except Exception as exc:  # the unit that needs it reports the error
@@ -90,10 +116,39 @@ def start_warming(
 
 
 def wait_warm(stage: str) -> None:
-    """Wait until this process's warm-up has loaded what ``stage`` declares (if it warms it)."""
+    """Wait until this process's warm-up has loaded what ``stage`` declares (if it warms it).
+
+    Called by a unit within :func:`unit_running`: the warm-up goes on while
+    the unit waits.
+    """
     ready = _READY.get(stage)
-    if ready is not None:
+    if ready is None or ready.is_set():
+        return
+    _count(_WAITING, stage, +1)
+    try:
         ready.wait()
+    finally:
+        _count(_WAITING, stage, -1)
+
+
+@contextlib.contextmanager
+def unit_running() -> Iterator[None]:
+    """Mark a unit as running in this process: the warm-up pauses meanwhile.
+
+    The warm-up finishes the load it is in and starts the next one only when
+    no unit runs, or while all that run wait for it (:func:`wait_warm`).
+    """
+    _count(_UNITS, "running", +1)
+    try:
+        yield
+    finally:
+        _count(_UNITS, "running", -1)
+
+
+def _count(counts: dict[str, int], what: str, change: int) -> None:
+    with _UNITS_CHANGED:
+        counts[what] = counts.get(what, 0) + change
+        _UNITS_CHANGED.notify_all()
 
 
 def settle_after_warm() -> bool:
