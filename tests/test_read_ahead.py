@@ -10,6 +10,7 @@ the reference is the store's own read without read-ahead.
 
 from __future__ import annotations
 
+import contextlib
 import threading
 from pathlib import Path
 
@@ -99,3 +100,21 @@ def test_a_damaged_table_raises_only_when_looked_up_and_is_recorded_only_then(st
         sequence[2]["stats"]
     assert not any("s0002" in key for key in read)
     assert sequence[3]["stats"]["n"][0] == 3  # the others read as before
+
+
+def test_no_read_ahead_outlives_the_unit(stretches, monkeypatch):
+    load = _store._load_checked
+    release = threading.Event()
+
+    def slow(path, entry, files=None):  # a read ahead still going as the unit ends
+        if threading.current_thread().name == "zdrift-read-ahead":
+            release.wait(5.0)
+        return load(path, entry, files)
+
+    monkeypatch.setattr(_store, "_load_checked", slow)
+    with contextlib.ExitStack() as files:  # the runner closes it as the unit ends
+        sequence = _store.LazyProducts(stretches, {}, files)
+        sequence[0]["stats"]  # the stage stops here: stretches 1 and 2 are read ahead
+        threading.Timer(0.2, release.set).start()
+    assert not any(t.name == "zdrift-read-ahead" for t in threading.enumerate())
+    assert sequence._ahead == {}

@@ -458,9 +458,13 @@ class _ReadAhead:
         except BaseException as exc:  # raised where the stage looks the product up
             self._error = exc
 
+    def join(self) -> None:
+        """Wait until the read has ended."""
+        self._thread.join()
+
     def result(self) -> tuple[str, Any]:
         """``(SHA-256, value)``, once read; the read's error, if it failed."""
-        self._thread.join()
+        self.join()
         if self._error is not None:
             raise self._error
         return self._outcome
@@ -526,7 +530,8 @@ class LazyProducts(Sequence):
     order (the column solve's 32 statistics tables, 80 MB of text on a
     4096-column night) finds them read.  Each table is still checked against
     its recorded SHA-256, recorded in ``read`` and its error raised only when
-    the stage looks it up; a table read ahead and never looked up is dropped.
+    the stage looks it up; a table read ahead and never looked up is dropped,
+    its read waited for when ``files`` closes (no thread outlives the unit).
     """
 
     def __init__(
@@ -541,6 +546,8 @@ class LazyProducts(Sequence):
         self._files = files
         self._read_ahead = read_ahead
         self._ahead: dict[tuple[int, str], _ReadAhead] = {}
+        if files is not None:
+            files.callback(self._drop_reads_ahead)
 
     def __len__(self) -> int:
         return len(self._units)
@@ -567,6 +574,12 @@ class LazyProducts(Sequence):
             digest, value = pending.result()
         _note_read(self._read, path, digest)
         return value
+
+    def _drop_reads_ahead(self) -> None:
+        """Wait for the reads ahead that the stage did not look up, and drop them."""
+        for pending in self._ahead.values():
+            pending.join()
+        self._ahead.clear()
 
     def _start_reading(self, index: int, name: str) -> None:
         """Start reading table ``name`` of the ``read_ahead`` units after ``index``."""
