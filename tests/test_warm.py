@@ -29,7 +29,7 @@ def loads(monkeypatch) -> list[str]:
     loaded: list[str] = []
     monkeypatch.setattr(_warm, "_load", loaded.append)
     monkeypatch.setattr(_warm, "_READY", {})
-    monkeypatch.setattr(_warm, "_UNITS", {"running": 0})
+    monkeypatch.setattr(_warm, "_UNITS", {"running": 0, "ended": float("-inf")})
     monkeypatch.setattr(_warm, "_WAITING", {})
     monkeypatch.setattr(_warm, "_SETTLE", {"wanted": False, "done": False})
     return loaded
@@ -68,5 +68,20 @@ def test_after_its_share_the_unit_runs_alone_again(loads):
         assert loads[:1] == ["first-load"]
         time.sleep(PATIENCE / 4)
         assert loads == ["first-load"]  # the unit computes: "second" waits
+    thread.join(PATIENCE)
+    assert loads == ["first-load", "second-load"]
+
+
+def test_a_unit_that_follows_another_soon_keeps_the_warm_up_paused(loads):
+    # A worker's next task is queued: it starts milliseconds after the last
+    # one ended, well within the grace (GRACE, 0.1 s), and no load starts in
+    # the gap to run beside it.
+    with _warm.unit_running():
+        thread = _warm.start_warming(PLAN)
+        time.sleep(PATIENCE / 20)
+    time.sleep(_warm.GRACE / 10)
+    with _warm.unit_running():
+        time.sleep(PATIENCE / 4)
+        assert loads == []
     thread.join(PATIENCE)
     assert loads == ["first-load", "second-load"]

@@ -36,6 +36,7 @@ import gc
 import importlib
 import logging
 import threading
+import time
 from collections.abc import Iterator, Sequence
 
 __all__ = ["settle_after_warm", "start_warming", "unit_running", "wait_warm", "warm_plan"]
@@ -47,10 +48,13 @@ _READY: dict[str, threading.Event] = {}
 #: Whether :func:`settle_after_warm` is to freeze this process's objects
 #: (a worker's, set by ``start_warming(settle=True)``), and whether it has.
 _SETTLE = {"wanted": False, "done": False}
-#: Units running in this process, and per stage how many of them wait for its
+#: Seconds of no unit running, after a unit ended, before the warm-up loads again.
+GRACE = 0.1
+#: Units running in this process (and when the last one ended, on
+#: :func:`time.monotonic`'s clock), and per stage how many of them wait for its
 #: share of the warm-up: the warm-up loads only while every unit that runs
 #: waits for a share not loaded yet (see :func:`unit_running`).
-_UNITS = {"running": 0}
+_UNITS = {"running": 0, "ended": float("-inf")}
 _WAITING: dict[str, int] = {}
 _UNITS_CHANGED = threading.Condition()
 
@@ -79,12 +83,28 @@ def _idle() -> bool:
     return _UNITS["running"] <= waiting
 
 
+def _wait_until_idle() -> None:
+    """Return once the warm-up may load its next entry (see :func:`unit_running`).
+
+    When a unit has just ended, the next one usually follows within
+    milliseconds (a worker's next task is queued already): the warm-up waits
+    :data:`GRACE` seconds of no unit first, so that a load does not start in
+    the gap and run beside the next unit.  A unit that waits for a share is
+    not kept waiting.
+    """
+    with _UNITS_CHANGED:
+        while True:
+            _UNITS_CHANGED.wait_for(_idle)
+            if _UNITS["running"] or time.monotonic() - _UNITS["ended"] >= GRACE:
+                return
+            _UNITS_CHANGED.wait(GRACE)
+
+
 def _warm(plan: Sequence[tuple[str, tuple[str, ...]]]) -> None:
     for name, entries in plan:
         try:
             for entry in entries:
-                with _UNITS_CHANGED:
-                    _UNITS_CHANGED.wait_for(_idle)
+                _wait_until_idle()
                 try:
                     _load(entry)
                 except Exception as exc:  # the unit that needs it reports the error
@@ -142,6 +162,8 @@ def unit_running() -> Iterator[None]:
     try:
         yield
     finally:
+        with _UNITS_CHANGED:
+            _UNITS["ended"] = time.monotonic()
         _count(_UNITS, "running", -1)
 
 
