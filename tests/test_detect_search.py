@@ -1,0 +1,56 @@
+"""Tests of the detect stage's search: background mesh, matched filter, local maxima.
+
+Each replaces a call into a reference library (photutils, scipy) with a
+cheaper computation of the same thing; the reference is what it is checked
+against.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.ndimage import gaussian_filter, maximum_filter
+
+from pipeline.stages.detect._find import _several_peaks, segment_map
+
+
+def _peaky_map(seed: int) -> np.ndarray:
+    """A matched-filter-like map (float32): smoothed noise, 120 stars of S/N 5 to
+    300 (many blended), some cut by the image edges, and a two-pixel plateau."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[:140, :230]
+    snr = gaussian_filter(rng.normal(0, 1, yy.shape), 1.0)
+    snr /= snr.std()
+    for x0, y0, amp in zip(
+        rng.uniform(-3, 233, 120),
+        rng.uniform(-3, 143, 120),
+        np.exp(rng.uniform(np.log(5), np.log(300), 120)),
+        strict=True,
+    ):
+        snr += amp * np.exp(-((xx - x0) ** 2 + (yy - y0) ** 2) / (2 * 1.8**2))
+    snr[69:72, 99:103] = np.minimum(snr[69:72, 99:103], 49.0)
+    snr[70, 100:102] = 50.0  # a peak of two equal pixels (both are maxima)
+    return snr.astype(np.float32)
+
+
+@pytest.mark.parametrize("seed", [3, 4])
+def test_several_peaks_counts_scipy_local_maxima(seed):
+    # scipy.ndimage.maximum_filter (3 x 3, each segment alone, -inf elsewhere) is
+    # the reference: a local maximum is a segment's pixel not below any of its 8
+    # neighbours in the segment; the segments with two or more are listed.
+    snr = _peaky_map(seed)
+    no_data = np.zeros(snr.shape, bool)
+    segm = segment_map(snr, no_data, threshold=4.3, min_pixels=3)
+    expected = []
+    for label in segm.labels:
+        own = segm.data == label
+        alone = np.where(own, snr, -np.inf)
+        peaks = own & (alone >= maximum_filter(alone, size=3, mode="constant", cval=-np.inf))
+        if np.count_nonzero(peaks) > 1:
+            expected.append(label)
+    ours = _several_peaks(snr, segm)
+    # the map holds both kinds, and segments on all four edges of the image
+    assert 10 < len(expected) < segm.n_labels - 10
+    edges = segm.data[[0, -1]].ravel().tolist() + segm.data[:, [0, -1]].ravel().tolist()
+    assert len(set(edges) - {0}) > 4
+    np.testing.assert_array_equal(ours, expected)
