@@ -54,3 +54,45 @@ def test_several_peaks_counts_scipy_local_maxima(seed):
     edges = segm.data[[0, -1]].ravel().tolist() + segm.data[:, [0, -1]].ravel().tolist()
     assert len(set(edges) - {0}) > 4
     np.testing.assert_array_equal(ours, expected)
+
+
+def _band_templates(rng, ny: int, band: int) -> list:
+    """Bands of ``band`` rows (the last one shorter), each with its own odd-sized
+    random template (heights 3 to 11, widths 5 to 21), as ``band_templates``
+    lists them: (lo, hi, flipped template, half height)."""
+    out = []
+    for lo in range(0, ny, band):
+        hy, hx = int(rng.integers(1, 6)), int(rng.integers(2, 11))
+        k = rng.uniform(0.0, 1.0, (2 * hy + 1, 2 * hx + 1)).astype(np.float32)
+        out.append((lo, min(lo + band, ny), k[::-1, ::-1].copy(), hy))
+    return out
+
+
+@pytest.mark.parametrize("square", [False, True])
+def test_filter_bands_is_scipy_oaconvolve_per_band(square):
+    # scipy.signal.oaconvolve of each band of rows with its margins ('same'
+    # size, zeros beyond the plane) is the reference, to single-precision
+    # rounding; the bands' templates differ in size, the last band is short,
+    # and the plane's first and last rows and columns are filtered with zeros
+    # beyond them.
+    from scipy.signal import oaconvolve
+
+    from pipeline.stages.detect import _find
+
+    rng = np.random.default_rng(5)
+    ny, nx, band = 150, 211, 16
+    plane = rng.normal(0.0, 1.0, (ny, nx)).astype(np.float32)
+    plane[40:43, 100:103] += 300.0  # a bright source among noise
+    templates = _band_templates(rng, ny, band)
+    expected = np.empty((ny, nx))
+    for lo, hi, k, hy in templates:
+        a, b = max(lo - hy, 0), min(hi + hy, ny)
+        kernel = k.astype(float) ** 2 if square else k.astype(float)
+        expected[lo:hi] = oaconvolve(plane[a:b].astype(float), kernel, "same")[lo - a : hi - a]
+    ours = _find._filter_bands(plane, templates, square)
+    assert ours.dtype == np.float32 and ours.flags.c_contiguous
+    # 1e-6 of the largest value: single-precision transforms (relative rounding
+    # 6e-8 per operation, growing as log2 of the lengths, ~10) of values up to
+    # the source's; the noise alone filters to values ~1e-2 of it.
+    atol = 1e-6 * np.max(np.abs(expected))
+    np.testing.assert_allclose(ours, expected, rtol=0, atol=atol)
