@@ -7,11 +7,16 @@ against.
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pytest
+from astropy.stats import SigmaClip, sigma_clipped_stats
+from photutils.background import Background2D, MedianBackground
 from scipy.ndimage import gaussian_filter, maximum_filter
 
 from pipeline.stages.detect._find import _several_peaks, segment_map
+from pipeline.stages.detect._mesh import background_mesh, clipped_medians
 
 
 def _peaky_map(seed: int) -> np.ndarray:
@@ -96,3 +101,111 @@ def test_filter_bands_is_scipy_oaconvolve_per_band(square):
     # the source's; the noise alone filters to values ~1e-2 of it.
     atol = 1e-6 * np.max(np.abs(expected))
     np.testing.assert_allclose(ours, expected, rtol=0, atol=atol)
+
+
+def _clipping_rows(seed: int) -> np.ndarray:
+    """Rows of samples (float32) of every kind a clipping meets: sky noise with
+    stars in it, an even and an odd number of samples (NaN for the rest), whole
+    numbers (ties), a constant row, a row without samples, two samples."""
+    rng = np.random.default_rng(seed)
+    rows = rng.normal(1000.0, 30.0, (60, 257))
+    stars = rng.random(rows.shape) < 0.08
+    rows[stars] += rng.exponential(400.0, stars.sum())  # outliers on one side
+    rows[1::3, 200:] = np.nan  # 200 samples
+    rows[2::3, 201:] = np.nan  # 201 samples
+    rows[5] = np.round(rows[5] / 10.0)  # whole numbers: many equal values
+    rows[7] = 42.0
+    rows[8] = np.nan
+    rows[9, 2:] = np.nan
+    return rows.astype(np.float32)
+
+
+@pytest.mark.parametrize("maxiters", [1, 2, 5, 10])
+def test_clipped_medians_are_astropy_sigma_clipped_stats(maxiters):
+    # astropy's sigma_clipped_stats (median centre, standard deviation, median
+    # of what is left) along the rows is the reference, to the bit: the same
+    # passes and the same single-precision median of the values kept.
+    rows = _clipping_rows(6)
+    ours, n_kept = clipped_medians(rows, sigma=3.0, maxiters=maxiters)
+    missing = np.isnan(rows)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # the row without samples
+        _, expected, _ = sigma_clipped_stats(
+            np.where(missing, 0, rows), mask=missing, axis=1, sigma=3.0, maxiters=maxiters
+        )
+    kept = SigmaClip(sigma=3.0, maxiters=maxiters)(
+        np.ma.MaskedArray(np.where(missing, 0, rows), missing), axis=1
+    )
+    assert ours.dtype == np.float32
+    np.testing.assert_array_equal(ours, expected)
+    np.testing.assert_array_equal(n_kept, np.count_nonzero(~kept.mask, axis=1))
+    assert np.isnan(ours[8]) and ours[7] == 42.0
+
+
+#: (shape, box, masked): partial boxes on both edges (a last row of boxes with
+#: more than half a box of rows, kept; a last column with fewer, excluded and
+#: filled), boxes mostly masked (excluded) and stars; a plane of whole boxes.
+MESH_CASES = [((215, 280), (20, 64), True), ((160, 256), (32, 64), False)]
+
+
+@pytest.mark.parametrize(("shape", "box", "masked"), MESH_CASES)
+def test_background_mesh_is_photutils_background2d(shape, box, masked):
+    # photutils' Background2D mesh with the stage's options is the reference,
+    # to the bit (the clipping bounds agree to ~1e-15 of the noise and no value
+    # lies that close to one of them).
+    rng = np.random.default_rng(9)
+    yy, xx = np.mgrid[: shape[0], : shape[1]]
+    data = 500.0 + 0.3 * xx - 0.2 * yy + rng.normal(0.0, 25.0, shape)
+    for x0, y0, flux in zip(
+        rng.uniform(0, shape[1], 80),
+        rng.uniform(0, shape[0], 80),
+        rng.exponential(2e4, 80),
+        strict=True,
+    ):
+        data += flux / (2 * np.pi * 2.0**2) * np.exp(-((xx - x0) ** 2 + (yy - y0) ** 2) / 8.0)
+    data = data.astype(np.float32)
+    mask = np.zeros(shape, bool)
+    if masked:
+        mask[30:55, 70:140] = True  # a box wholly masked, others in part
+        mask[100:110, :] = True
+    reference = Background2D(
+        data,
+        box,
+        mask=mask,
+        filter_size=(3, 3),
+        sigma_clip=SigmaClip(sigma=3.0, maxiters=5),
+        bkg_estimator=MedianBackground(),
+        exclude_percentile=50.0,
+    ).background_mesh
+    ours = background_mesh(data, mask, box, sigma=3.0, maxiters=5, exclude_percentile=50.0)
+    assert ours.dtype == reference.dtype
+    np.testing.assert_array_equal(ours, reference)
+
+
+def test_background_mesh_says_when_every_box_is_masked():
+    data = np.zeros((64, 64), np.float32)
+    with pytest.raises(ValueError, match="every background box"):
+        background_mesh(data, np.ones(data.shape, bool), (32, 32))
+
+
+def test_background_mesh_excludes_a_box_half_masked_as_photutils_does():
+    # photutils' Background2D excludes a box keeping no more than
+    # (1 - exclude_percentile / 100) of its pixels: here one with exactly half
+    # of them masked and none clipped (uniform noise reaches only 1.7 sigma),
+    # filled from its neighbours like photutils fills it.
+    rng = np.random.default_rng(10)
+    data = (100.0 + 10.0 * np.arange(24)[None, :] + rng.uniform(0, 1, (24, 24))).astype(np.float32)
+    mask = np.zeros(data.shape, bool)
+    mask[8:12, 8:16] = True  # half of the middle box
+    reference = Background2D(
+        data,
+        (8, 8),
+        mask=mask,
+        filter_size=(3, 3),
+        sigma_clip=SigmaClip(sigma=3.0, maxiters=5),
+        bkg_estimator=MedianBackground(),
+        exclude_percentile=50.0,
+    )
+    assert np.isnan(reference._bkg_stats[1, 1])  # excluded (photutils' own mesh)
+    ours = background_mesh(data, mask, (8, 8), sigma=3.0, maxiters=5, exclude_percentile=50.0)
+    np.testing.assert_array_equal(ours, reference.background_mesh)

@@ -1056,8 +1056,8 @@ def _run(*, inputs, options: DetectOptions, context) -> dict:
 
 #: What a worker loads as it starts for detect (``Stage.warm``): the libraries
 #: its functions import on first use, the smear-aware model and its compiled
-#: kernels (numba's disk cache); photutils without its scan of every installed
-#: distribution (:func:`pipeline._imports.import_photutils`).
+#: kernels, the background's clipping loop (numba's disk cache); photutils without its
+#: scan of every installed distribution (:func:`pipeline._imports.import_photutils`).
 WARM = (
     "pipeline._imports:import_photutils",
     "scipy.fft",
@@ -1066,12 +1066,13 @@ WARM = (
     "scipy.sparse.csgraph",
     "scipy.spatial",
     "photutils.aperture",
-    "photutils.background",
+    "photutils.utils",
     "photutils.geometry",
     "pipeline.stages.detect._model",
     "pipeline.stages.detect._fit_jit",
     "pipeline.stages.detect._measure_jit",
     "pipeline.stages.detect._pixel_gauss:load_compiled",
+    "pipeline.stages.detect._mesh:load_compiled",
 )
 
 #: Declaration of the detect stage for the runner.  Per stretch, with the
