@@ -839,6 +839,26 @@ def _thresholds(values: np.ndarray, levels: int) -> np.ndarray | None:
     return (low * (high / low) ** normalized)[1:-1]
 
 
+def _thresholds_of(low: np.ndarray, high: np.ndarray, levels: int) -> np.ndarray:
+    """:func:`_thresholds` of many segments, from their minima and maxima (all different).
+
+    Returns
+    -------
+    ndarray, shape (n, levels)
+        Row ``i``: the thresholds of the segment of minimum ``low[i]`` and
+        maximum ``high[i]``, the same operations on the same types
+        element by element.
+    """
+    linear = np.linspace(low, high, levels + 2, axis=1)
+    out = linear[:, 1:-1].copy()
+    positive = low > 0
+    if positive.any():
+        lo, hi = low[positive, None], high[positive, None]
+        normalized = (linear[positive] - lo) / (hi - lo)
+        out[positive] = (lo * (hi / lo) ** normalized)[:, 1:-1]
+    return out
+
+
 #: Width of the plane on which :func:`deblend_segments` places the segments'
 #: boxes, pixels: shelves of boxes about as wide as a stretch is tall.
 SHELF_WIDTH = 1024
@@ -890,27 +910,38 @@ class _Shelves:
         photutils leaves whole a segment of fewer than ``2 min_pixels``
         pixels or of one value.
         """
-        data = segm.data
-        kept, boxes, exponential, rows, cols, values, ranks = [], [], [], [], [], [], []
-        for label in np.asarray(labels, dtype=int):
-            box = segm.slices[label - 1]
-            r, c = np.nonzero(data[box] == label)
-            if r.size < 2 * min_pixels:
-                continue
-            v = snr[box][r, c]
-            thresholds = _thresholds(v, levels)
-            if thresholds is None:
-                continue
-            kept.append(int(label))
-            boxes.append(box)
-            exponential.append(bool(np.nanmin(v) > 0))
-            rows.append(r)
-            cols.append(c)
-            values.append(v)
-            # photutils' ``data > threshold`` at each threshold, counted
-            ranks.append(np.count_nonzero(v[:, None] > thresholds[None, :], axis=1))
-        if not kept:
+        # All the segments' pixels at once, grouped by segment (stable: each
+        # in raster order): 5 ms of CPU instead of 26 ms for a loop over 178
+        # segments' boxes (the benchmark night's stretch 5, least of 5).
+        data = segm.data.reshape(-1)
+        chosen = np.zeros(segm.max_label + 1, bool)
+        chosen[np.asarray(labels, dtype=int)] = True
+        where = segment_pixels(segm)
+        where = where[chosen[data[where]]]
+        order = np.argsort(data[where], kind="stable")
+        where = where[order]
+        own = data[where]
+        firsts = np.flatnonzero(np.r_[True, own[1:] != own[:-1]])
+        counts = np.diff(np.r_[firsts, own.size])
+        values = snr.reshape(-1)[where]
+        low = np.minimum.reduceat(values, firsts) if own.size else values[:0]
+        high = np.maximum.reduceat(values, firsts) if own.size else values[:0]
+        keep = (counts >= 2 * min_pixels) & (low != high)
+        if not keep.any():
             return None
+        segment = np.repeat(np.arange(firsts.size), counts)
+        inside = keep[segment]
+        where, values = where[inside], values[inside]
+        counts, low, high = counts[keep], low[keep], high[keep]
+        kept = [int(label) for label in own[firsts[keep]]]
+        boxes = [segm.slices[label - 1] for label in kept]
+        thresholds = _thresholds_of(low, high, levels)
+        segment = np.repeat(np.arange(len(kept)), counts)
+        # photutils' ``data > threshold`` at each threshold, counted
+        ranks = np.count_nonzero(values[:, None] > thresholds[segment], axis=1)
+        pixel_rows, pixel_cols = np.divmod(where, segm.data.shape[1])
+        rows = pixel_rows - np.array([b[0].start for b in boxes])[segment]
+        cols = pixel_cols - np.array([b[1].start for b in boxes])[segment]
         heights = [b[0].stop - b[0].start for b in boxes]
         widths = [b[1].stop - b[1].start for b in boxes]
         width = max(SHELF_WIDTH, max(widths) + 1)
@@ -921,20 +952,19 @@ class _Shelves:
             origin.append((y, x))
             x, shelf = x + w + 1, max(shelf, h)
         starts = np.zeros(len(kept) + 1, np.int64)
-        starts[1:] = np.cumsum([r.size for r in rows])
-        position = np.concatenate(
-            [(y0 + r) * width + x0 + c for (y0, x0), r, c in zip(origin, rows, cols, strict=True)]
-        )
+        starts[1:] = np.cumsum(counts)
+        origin = np.array(origin).reshape(-1, 2)
+        position = (origin[segment, 0] + rows) * width + origin[segment, 1] + cols
         return cls(
             kept,
             boxes,
-            np.array(exponential),
+            low > 0,
             starts,
-            np.concatenate(rows),
-            np.concatenate(cols),
+            rows,
+            cols,
             position,
-            np.concatenate(values),
-            np.concatenate(ranks),
+            values,
+            ranks,
             (y + shelf, width),
         )
 
