@@ -209,3 +209,30 @@ def test_background_mesh_excludes_a_box_half_masked_as_photutils_does():
     assert np.isnan(reference._bkg_stats[1, 1])  # excluded (photutils' own mesh)
     ours = background_mesh(data, mask, (8, 8), sigma=3.0, maxiters=5, exclude_percentile=50.0)
     np.testing.assert_array_equal(ours, reference.background_mesh)
+
+
+@pytest.mark.parametrize("fill", [0.2, 0.35])
+def test_label_pixels_groups_them_as_scipy_label(fill):
+    # scipy.ndimage.label (8-connected) of the plane holding the pixels is the
+    # reference: the same regions (numbered otherwise: by first pixel in the
+    # list), with pixels on every edge of the plane (no region may wrap from
+    # one row's end to the next row's start).
+    from scipy.ndimage import label
+
+    from pipeline.stages.detect._find_jit import label_pixels
+
+    rng = np.random.default_rng(11)
+    shape = (23, 37)
+    plane = rng.random(shape) < fill
+    position = rng.permutation(np.flatnonzero(plane))
+    scratch = np.full(plane.size, -1, np.int64)
+    region, count = label_pixels(position, shape[1], scratch)
+    expected, n = label(plane, structure=np.ones((3, 3), bool))
+    theirs = expected.reshape(-1)[position]
+    assert count == n > 5
+    # one region of theirs per region of ours and back: the same partition
+    pairs = set(zip(region.tolist(), theirs.tolist(), strict=True))
+    assert len(pairs) == n
+    assert np.all(scratch == -1)  # left as it was given
+    first = np.unique(region, return_index=True)[1]
+    np.testing.assert_array_equal(region[np.sort(first)], np.arange(1, n + 1))

@@ -1056,7 +1056,7 @@ def _run(*, inputs, options: DetectOptions, context) -> dict:
 
 #: What a worker loads as it starts for detect (``Stage.warm``): the libraries
 #: its functions import on first use, the smear-aware model and its compiled
-#: kernels, the background's clipping loop (numba's disk cache); photutils without its
+#: kernels, the search's compiled loops (numba's disk cache); photutils without its
 #: scan of every installed distribution (:func:`pipeline._imports.import_photutils`).
 WARM = (
     "pipeline._imports:import_photutils",
@@ -1072,7 +1072,7 @@ WARM = (
     "pipeline.stages.detect._fit_jit",
     "pipeline.stages.detect._measure_jit",
     "pipeline.stages.detect._pixel_gauss:load_compiled",
-    "pipeline.stages.detect._mesh:load_compiled",
+    "pipeline.stages.detect._find_jit:load_compiled",
 )
 
 #: Declaration of the detect stage for the runner.  Per stretch, with the

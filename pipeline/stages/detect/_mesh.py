@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["background_mesh", "clipped_medians", "load_compiled"]
+__all__ = ["background_mesh", "clipped_medians"]
 
 
 def clipped_medians(
@@ -61,22 +61,13 @@ def clipped_medians(
     the values: the bounds agree to ~1e-15 of the standard deviation, so a
     value is clipped differently only if it lies that close to a bound.
     """
-    from pipeline.stages.detect._mesh_jit import clip_sorted_rows
+    from pipeline.stages.detect._find_jit import clip_sorted_rows
 
     ordered = np.sort(np.asarray(values, dtype=np.float32), axis=1)  # NaN last
     median = np.empty(ordered.shape[0], np.float32)
     n_kept = np.empty(ordered.shape[0], np.int64)
     clip_sorted_rows(ordered, float(sigma), int(maxiters), median, n_kept)
     return median, n_kept
-
-
-def load_compiled() -> None:
-    """Load the compiled loop in this process (from numba's disk cache once it is there).
-
-    One call with the argument types of every call.  A worker process calls
-    it as it starts (see ``Stage.warm``).
-    """
-    clipped_medians(np.zeros((1, 3), np.float32))
 
 
 def _boxes(plane: np.ndarray, box_size: tuple[int, int]) -> list:

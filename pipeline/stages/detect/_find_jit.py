@@ -1,7 +1,10 @@
-"""The compiled loop of :func:`pipeline.stages.detect._mesh.clipped_medians`.
+"""The compiled loops of the detect stage's search.
 
-Kept apart so that numba is imported only when the detect stage first
-estimates a background.
+:func:`clip_sorted_rows` for :func:`pipeline.stages.detect._mesh.clipped_medians`
+(the background), :func:`label_pixels` for the deblending's
+(:func:`pipeline.stages.detect._find.deblend_segments`) regions above each
+threshold.  Kept apart so that numba is imported only when the detect stage
+first runs.
 """
 
 from __future__ import annotations
@@ -11,7 +14,7 @@ import math
 import numba
 import numpy as np
 
-__all__ = ["clip_sorted_rows"]
+__all__ = ["clip_sorted_rows", "label_pixels", "load_compiled"]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -90,3 +93,78 @@ def clip_sorted_rows(ordered, sigma, maxiters, median, n_kept):
             median[r] = row[first + k // 2]
         else:  # numpy's median of float32 values: their mean in single precision
             median[r] = (row[first + k // 2 - 1] + row[first + k // 2]) / np.float32(2.0)
+
+
+@numba.njit(cache=True, nogil=True)
+def _root(parent, i):
+    """Root of ``i``'s tree in a union-find forest, halving the path on the way."""
+    while parent[i] != i:
+        parent[i] = parent[parent[i]]
+        i = parent[i]
+    return i
+
+
+@numba.njit(cache=True, nogil=True)
+def label_pixels(position, width, scratch):
+    """8-connected regions of a set of pixels of a plane ``width`` pixels wide.
+
+    Parameters
+    ----------
+    position : ndarray of int64, shape (n,)
+        The pixels' flat indices on the plane (distinct).
+    width : int
+        The plane's width, pixels.
+    scratch : ndarray of int64, shape (plane size,)
+        -1 everywhere; left so.
+
+    Returns
+    -------
+    region : ndarray of int64, shape (n,)
+        Each pixel's region, 1..count, numbered in the order of the
+        regions' first pixels in ``position``.
+    count : int
+        Number of regions.
+    """
+    n = position.shape[0]
+    parent = np.arange(n)
+    for i in range(n):
+        scratch[position[i]] = i
+    for i in range(n):
+        p = position[i]
+        column = p % width
+        # the neighbours before it in raster order: each touching pair once
+        for q, ok in (
+            (p - width - 1, column > 0),
+            (p - width, True),
+            (p - width + 1, column < width - 1),
+            (p - 1, column > 0),
+        ):
+            if ok and q >= 0:
+                j = scratch[q]
+                if j >= 0:
+                    a, b = _root(parent, i), _root(parent, j)
+                    if a != b:
+                        parent[max(a, b)] = min(a, b)
+    region = np.empty(n, np.int64)
+    number = np.zeros(n, np.int64)
+    count = 0
+    for i in range(n):
+        r = _root(parent, i)
+        if number[r] == 0:
+            count += 1
+            number[r] = count
+        region[i] = number[r]
+        scratch[position[i]] = -1
+    return region, count
+
+
+def load_compiled() -> None:
+    """Load the compiled loops in this process (from numba's disk cache once it is there).
+
+    One call of each with the argument types of every call.  A worker
+    process calls it as it starts (see ``Stage.warm``).
+    """
+    clip_sorted_rows(
+        np.zeros((1, 3), np.float32), 3.0, 5, np.empty(1, np.float32), np.empty(1, np.int64)
+    )
+    label_pixels(np.zeros(1, np.int64), 1, np.full(1, -1, np.int64))
