@@ -229,12 +229,12 @@ def _filter_bands(plane: np.ndarray, templates, square: bool) -> np.ndarray:
     ``y`` (the band's own rows kept) and along ``x``.  A batch's arrays
     (a few MB) stay in the processor's cache, where whole-plane ones
     (18 MB each) made the filtering's time vary twofold with the memory
-    traffic of other processes.  The
-    same values to single-precision rounding (~1e-7 of a row's largest);
-    on the benchmark night's stretch 5 (4109 x 1090 pixels, 129 bands) a
-    filtering takes 34 ms of CPU instead of 60 ms for ``oaconvolve`` per
-    band (least of 5), which transforms each band's rows and margins along
-    ``x`` again and pads, slices and adds its blocks in Python.
+    traffic of other processes.  The same values to single-precision
+    rounding (~1e-7 of a row's largest); on the benchmark night's stretch 5
+    (4109 x 1090 pixels, 129 bands) a filtering takes 31 ms of CPU inside
+    the stage instead of 55 ms for ``oaconvolve`` per band (least of 3),
+    which transforms each band's rows and margins along ``x`` again and
+    pads, slices and adds its blocks in Python.
     """
     from scipy.fft import fft, ifft, irfft, next_fast_len, rfft
 
