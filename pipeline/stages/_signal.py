@@ -1,7 +1,7 @@
 """Savitzky-Golay smoothing and FFT convolution, without importing ``scipy.signal``.
 
-The stages use four functions of :mod:`scipy.signal`: ``savgol_coeffs``,
-``savgol_filter`` (``mode='interp'``), ``fftconvolve`` and ``oaconvolve``.
+The stages use three functions of :mod:`scipy.signal`: ``savgol_coeffs``,
+``savgol_filter`` (``mode='interp'``) and ``fftconvolve``.
 Importing ``scipy.signal`` loads its whole package (windows, filter design,
 LTI systems, ``scipy.stats``, ``scipy.interpolate``): 0.3 s of CPU once per
 process, 0.2 s beyond the libraries a run loads anyway, on its critical
@@ -14,12 +14,11 @@ checks them against ``scipy.signal``.
 
 from __future__ import annotations
 
-import math
 import warnings
 
 import numpy as np
 
-__all__ = ["fftconvolve", "oaconvolve", "savgol_coeffs", "savgol_filter"]
+__all__ = ["fftconvolve", "savgol_coeffs", "savgol_filter"]
 
 _MODES = ("full", "same")
 
@@ -178,109 +177,4 @@ def fftconvolve(in1: np.ndarray, in2: np.ndarray, mode: str = "full") -> np.ndar
     else:
         fshape = [next_fast_len(shape[a], True) for a in axes]
         full = _product(in1, in2, axes, fshape)[tuple(slice(n) for n in shape)]
-    return _with_mode(full, s1, mode)
-
-
-def _block_lengths(s1: int, s2: int) -> tuple[int, int | None, int, int]:
-    """scipy's overlap-add block: (FFT length, overlap or None, step of in1, step of in2)."""
-    from scipy.fft import next_fast_len
-    from scipy.special import lambertw
-
-    fallback = (s1 + s2 - 1, None, s1, s2)
-    if s1 == s2 or s1 == 1 or s2 == 1:
-        return fallback
-    swapped = s2 > s1
-    if swapped:
-        s1, s2 = s2, s1
-    if s2 >= s1 / 2:
-        return fallback
-    overlap = s2 - 1
-    # the block length of least cost per output sample, N = -K W(-1 / (2 e K))
-    # for an overlap K (Lambert's W, lower branch)
-    best = -overlap * lambertw(-1 / (2 * math.e * overlap), k=-1).real
-    block = next_fast_len(math.ceil(best))
-    if block >= s1:
-        return fallback
-    if swapped:
-        return block, overlap, s2, block - s2 + 1
-    return block, overlap, block - s2 + 1, s2
-
-
-def _steps(n: int, step: int, block: int, overlap: int, final: int) -> tuple[int, int]:
-    """(blocks, zero padding) of an input of length ``n`` cut in ``step``-long parts."""
-    if n <= step:
-        return 1, 0
-    count = math.ceil((n + 1) / step)
-    if (block - overlap) * count < final:
-        count += 1
-    return count, count * step - n
-
-
-def oaconvolve(in1: np.ndarray, in2: np.ndarray, mode: str = "full") -> np.ndarray:
-    """``scipy.signal.oaconvolve(in1, in2, mode)`` of real arrays: overlap-add FFT convolution.
-
-    The larger input is cut into blocks along each axis where the other is at
-    most half as long; each block's convolution is one FFT of a length chosen
-    for the least cost per sample, and the blocks' overlapping ends are
-    added.  Parameters and result as for :func:`fftconvolve`.
-    """
-    in1, in2, axes = _conv_inputs(in1, in2, mode)
-    if in1.size == 0 or in2.size == 0:
-        return np.asarray([])
-    if in1.shape == in2.shape:
-        return fftconvolve(in1, in2, mode)
-    s1, s2 = in1.shape, in2.shape
-    if not axes:
-        return _with_mode(in1 * in2, s1, mode)
-    final = [s1[i] + s2[i] - 1 if i in axes else None for i in range(in1.ndim)]
-    lengths = [
-        _block_lengths(s1[i], s2[i]) if i in axes else (-1, -1, s1[i], s2[i])
-        for i in range(in1.ndim)
-    ]
-    block, overlaps, step1, step2 = zip(*lengths, strict=True)
-    if step1 == s1 and step2 == s2:  # one block along every axis
-        return fftconvolve(in1, in2, mode)
-    pad1, pad2, n1, n2 = [], [], [], []
-    for i in range(in1.ndim):
-        if i not in axes:
-            pad1.append((0, 0))
-            pad2.append((0, 0))
-            continue
-        count1, extra1 = _steps(s1[i], step1[i], block[i], overlaps[i], final[i])
-        count2, extra2 = _steps(s2[i], step2[i], block[i], overlaps[i], final[i])
-        n1.append(count1)
-        n2.append(count2)
-        pad1.append((0, extra1))
-        pad2.append((0, extra2))
-    if any(p != (0, 0) for p in pad1):
-        in1 = np.pad(in1, pad1, mode="constant", constant_values=0)
-    if any(p != (0, 0) for p in pad2):
-        in2 = np.pad(in2, pad2, mode="constant", constant_values=0)
-    # each transformed axis becomes (blocks, block length)
-    split_axes = [axis + i for i, axis in enumerate(axes)]
-    fft_axes = [axis + 1 for axis in split_axes]
-    shape1, shape2 = list(step1), list(step2)
-    for i, axis in enumerate(split_axes):
-        shape1.insert(axis, n1[i])
-        shape2.insert(axis, n2[i])
-    out = _product(in1.reshape(shape1), in2.reshape(shape2), fft_axes, [block[i] for i in axes])
-    for axis, fft_axis, split_axis in zip(axes, fft_axes, split_axes, strict=True):
-        overlap = overlaps[axis]
-        if overlap is None:
-            continue
-        # the last ``overlap`` samples of each block go onto the next block's first ones
-        size = out.shape[fft_axis]
-        tail = np.swapaxes(np.swapaxes(out, fft_axis, 0)[size - overlap :], fft_axis, 0)
-        out = np.swapaxes(np.swapaxes(out, fft_axis, 0)[: size - overlap], fft_axis, 0)
-        n_blocks = tail.shape[split_axis]
-        tail = np.swapaxes(np.swapaxes(tail, split_axis, 0)[: n_blocks - 1], split_axis, 0)
-        head = np.swapaxes(np.swapaxes(out, fft_axis, 0)[:overlap], fft_axis, 0)
-        head = np.swapaxes(np.swapaxes(head, split_axis, 0)[1:], split_axis, 0)
-        head += tail
-    merged = [
-        out.shape[i] * out.shape[i - 1] if i in fft_axes else out.shape[i]
-        for i in range(out.ndim)
-        if i not in split_axes
-    ]
-    full = out.reshape(merged)[tuple(slice(n) for n in final)]
     return _with_mode(full, s1, mode)
