@@ -236,3 +236,35 @@ def test_label_pixels_groups_them_as_scipy_label(fill):
     assert np.all(scratch == -1)  # left as it was given
     first = np.unique(region, return_index=True)[1]
     np.testing.assert_array_equal(region[np.sort(first)], np.arange(1, n + 1))
+
+
+def test_filter_bands_weights_and_scales_rows_as_whole_plane_steps():
+    # The same scipy.signal.oaconvolve reference, of the weighted plane (float64
+    # data times float32 weights, rounded to single precision, 0 where the data
+    # are NaN: pixels without data) and times a scale afterwards.
+    from scipy.signal import oaconvolve
+
+    from pipeline.stages.detect import _find
+
+    rng = np.random.default_rng(12)
+    ny, nx = 200, 150
+    data = rng.normal(0.0, 5.0, (ny, nx))
+    data[:, 60:63] = np.nan  # no data
+    weights = rng.uniform(0.5, 2.0, (ny, nx)).astype(np.float32)
+    weights[:, 60:63] = 0.0
+    scale = rng.uniform(0.1, 10.0, (ny, nx)).astype(np.float32)
+    templates = _band_templates(rng, ny, 8)  # 25 bands: two batches
+    assert len(templates) > _find.BANDS_PER_CALL
+    weighted = np.empty((ny, nx), np.float32)
+    np.multiply(data, weights, out=weighted, casting="same_kind")
+    weighted[~np.isfinite(weighted)] = 0.0
+    expected = np.empty((ny, nx))
+    for lo, hi, k, hy in templates:
+        a, b = max(lo - hy, 0), min(hi + hy, ny)
+        expected[lo:hi] = oaconvolve(weighted[a:b].astype(float), k.astype(float), "same")[
+            lo - a : hi - a
+        ]
+    expected *= scale
+    ours = _find._filter_bands(data, templates, False, weights=weights, scale=scale)
+    # as above: single-precision rounding of values up to the largest
+    np.testing.assert_allclose(ours, expected, rtol=0, atol=1e-6 * np.max(np.abs(expected)))
