@@ -208,9 +208,12 @@ def band_templates(kernels, profile, x_centre: float, ny: int, band: int) -> lis
     return out
 
 
-#: Bands of rows whose transforms along ``y`` :func:`_filter_bands` makes in one
-#: call (each a complex block of ``band + 2 margin`` rows of the plane's
-#: spectrum along ``x``: 16 bands of a 4096 x 1090 stretch hold 3.5 MB).
+#: Most bands of rows :func:`_filter_bands` transforms in one batch (each a
+#: complex block of ``band + 2 margin`` rows of the rows' spectrum along
+#: ``x``: 16 bands of a 4109 x 1090 stretch hold 3.5 MB), and at most an
+#: eighth of the plane's rows: a batch's arrays (~0.9 MB per band of 32 rows
+#: of 1090 pixels) then hold less than half a float64 plane of the stretch,
+#: which the stage's peak memory counts.
 BANDS_PER_CALL = 16
 
 
@@ -233,8 +236,8 @@ def _filter_bands(
     The 'same'-size convolution of each band of rows (and its margins of
     half a template, zero beyond the plane) with the band's flipped
     template, as ``oaconvolve(plane[band and margins], k, 'same')`` makes
-    it, by FFT in single precision, :data:`BANDS_PER_CALL` adjoining bands
-    at a time: their rows (and margins) are transformed along ``x`` once
+    it, by FFT in single precision, a batch of adjoining bands at a time
+    (:data:`BANDS_PER_CALL`): their rows (and margins) are transformed along ``x`` once
     (padded with zeros to at least half a template, so that the circular
     convolution wraps onto zeros), then each band's rows with its margins
     along ``y`` (a length holding them: no wrap either); multiplied by the
@@ -255,12 +258,13 @@ def _filter_bands(
     margin = max(hy for _, _, _, hy in templates)
     rows = max(hi - lo for lo, hi, _, _ in templates) + 2 * margin
     ly = next_fast_len(rows, False)
+    per_call = max(1, min(BANDS_PER_CALL, ny // (8 * (rows - 2 * margin))))
     lx = next_fast_len(nx + max(k.shape[1] // 2 for _, _, k, _ in templates), True)
     if weights is None:
         plane = np.asarray(plane, np.float32)
     out = np.empty((ny, nx), np.float32)
-    for first in range(0, len(templates), BANDS_PER_CALL):
-        group = templates[first : first + BANDS_PER_CALL]
+    for first in range(0, len(templates), per_call):
+        group = templates[first : first + per_call]
         top, bottom = group[0][0], group[-1][1]  # the group's rows (its bands adjoin)
         a, b = max(top - margin, 0), min(bottom + margin, ny)
         rows = plane[a:b]
