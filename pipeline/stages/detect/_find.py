@@ -775,11 +775,14 @@ def deblend_segments(
     segment's label in ``segm``.  photutils thresholds, labels and floods
     each segment's box in turn (on a crowded stretch ~100 segments x 32
     levels of a few hundred pixels: mostly call overhead); here every
-    segment's box is placed on one plane (:class:`_Shelves`), each level is
-    one labelling of that plane (:func:`_level_markers`) and the watershed
-    one flooding of it (:func:`_watershed_children`): 0.10 s of CPU instead
-    of 0.30 s (least of 5) for the 241 segments of the two searches of the
-    benchmark night's stretch 5 (4096 columns, ~400 stars per megapixel).
+    segment's box is placed on one plane (:class:`_Shelves`, gathered from
+    the segments' pixel list), each level is one labelling of the pixels
+    above it (:func:`_level_markers`) and the watershed one flooding of the
+    plane (:func:`_watershed_children`): 0.10 s of CPU instead of 0.30 s
+    (least of 5) for the 241 segments of the two searches of the benchmark
+    night's stretch 5 (4096 columns, ~400 stars per megapixel) with a
+    labelling of the whole plane per level and the pixels gathered box by
+    box; ~0.06 s now.
     A segment with more than 200 markers (photutils then starts again with
     linear thresholds) is left to photutils.  ``tests/test_detect.py``
     checks the result against photutils'.
