@@ -13,6 +13,8 @@ variance, scale and significance maps (``band_templates``,
 ``inverse_variance``, ``filter_scale``, ``significance_map``) and the
 segmentation with its deblending (``find_sources``), for both searches.
 It prints each run's search CPU time with its parts (ms) and the unit's.
+After the first, untimed run the process's objects are frozen for the
+garbage collector, as a pool worker's are once it is warm.
 
 ``--against OTHER_TREE`` runs this script ``--rounds`` times in each tree,
 alternately, each in a fresh process (an older tree without this script is
@@ -21,7 +23,7 @@ measured by this one on its package), and prints the ratio of the medians.
 
 from __future__ import annotations
 
-import argparse
+import gc
 import importlib
 import json
 import pathlib
@@ -72,6 +74,11 @@ def measure(args) -> list[dict]:
     own, before, after = load_stretch(pathlib.Path(args.night), args.stretch)
     options = detect.DetectOptions()
     detect.detect_stretch(own, before, after, options, stretch_index=args.stretch)  # loads
+    # as a worker does once warm (pipeline.runner._warm.settle_after_warm): the
+    # libraries' objects out of the collector's reach, so that a full collection
+    # (~0.1 s) does not land in whichever function allocates when it comes due
+    gc.collect()
+    gc.freeze()
     runs = []
     for _ in range(args.repeat):
         spent.clear()
@@ -108,30 +115,29 @@ def against(args) -> None:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("night", help="the reduced night's folder (holding rectify/)")
-    parser.add_argument("--stretch", type=int, default=5, help="stretch index (default 5)")
-    parser.add_argument("--repeat", type=int, default=3, help="timed runs (default 3)")
-    parser.add_argument("--against", help="another source tree to measure alternately")
-    parser.add_argument("--rounds", type=int, default=3, help="alternations with --against")
-    parser.add_argument("--json", action="store_true", help="print the figures as JSON")
-    parser.add_argument("--tree", help=argparse.SUPPRESS)  # the package's tree, for --against
+    from bench_detect_stretch import arguments
+
+    parser = arguments(__doc__.splitlines()[0], 5)
     args = parser.parse_args(argv)
     sys.path.insert(0, str(ROOT / "benchmarks"))
     sys.path.insert(0, args.tree or str(ROOT))
     if args.against:
         against(args)
-        return 0
-    runs = measure(args)
+    else:
+        report(args, measure(args))
+    return 0
+
+
+def report(args, runs: list[dict]) -> None:
+    """Print the runs' figures (as JSON with ``--json``, for :func:`against`)."""
     if args.json:
         print(json.dumps(runs))
-        return 0
+        return
     print(machine_state())
     for run in runs:
         parts = ", ".join(f"{k} {run[k] * 1e3:.0f}" for k in SEARCH if k in run)
         total = sum(run[k] for k in SEARCH if k in run)
         print(f"stretch {args.stretch}: search {total:.3f} s of {run['unit']:.2f} s ({parts} ms)")
-    return 0
 
 
 if __name__ == "__main__":

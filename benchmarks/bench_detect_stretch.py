@@ -172,18 +172,26 @@ def against(args) -> None:
     )
 
 
-def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+def arguments(description: str, stretch: int) -> argparse.ArgumentParser:
+    """The options of a stretch benchmark that can run against another tree."""
+    parser = argparse.ArgumentParser(description=description)
     parser.add_argument("night", help="the reduced night's folder (holding rectify/)")
-    parser.add_argument("--stretch", type=int, default=1, help="stretch index (default 1)")
+    parser.add_argument(
+        "--stretch", type=int, default=stretch, help=f"stretch index (default {stretch})"
+    )
     parser.add_argument("--repeat", type=int, default=3, help="timed runs (default 3)")
-    parser.add_argument("--profile", action="store_true", help="print cProfile's figures")
-    parser.add_argument("--save", help="write the catalogue to this ECSV file")
-    parser.add_argument("--compare", help="compare the catalogue with this ECSV file")
     parser.add_argument("--against", help="another source tree to measure alternately")
     parser.add_argument("--rounds", type=int, default=3, help="alternations with --against")
     parser.add_argument("--json", action="store_true", help="print the figures as JSON")
     parser.add_argument("--tree", help=argparse.SUPPRESS)  # the package's tree, for --against
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = arguments(__doc__.splitlines()[0], 1)
+    parser.add_argument("--profile", action="store_true", help="print cProfile's figures")
+    parser.add_argument("--save", help="write the catalogue to this ECSV file")
+    parser.add_argument("--compare", help="compare the catalogue with this ECSV file")
     args = parser.parse_args(argv)
     if args.tree:
         sys.path.insert(0, args.tree)
