@@ -148,7 +148,9 @@ def test_integers_to_their_limits_round_trip(tmp_path, dtype):
     _check_round_trip(Table({"v": values, "b": [True, False, True, False, True]}), tmp_path)
 
 
-@pytest.mark.parametrize("dtype", [np.float64, np.float32, np.int64, np.int16, np.bool_])
+@pytest.mark.parametrize(
+    "dtype", [np.float64, np.float32, np.float16, np.int64, np.int16, np.uint64, np.bool_]
+)
 def test_vector_columns_round_trip(tmp_path, dtype):
     """A vector per row (rectify's smear kernels), with every kind of value."""
     rng = np.random.default_rng(3)
@@ -162,6 +164,29 @@ def test_vector_columns_round_trip(tmp_path, dtype):
     values = values[: 64 * 300 // 64 * 64].reshape(-1, 64)
     table = QTable({"x": np.arange(len(values)) * u.pix, "dx": values, "one": values[:, :1]})
     _check_round_trip(table, tmp_path)
+
+
+def test_vector_elements_of_every_notation_print_as_json_does(tmp_path):
+    """Each element as ``json.dumps`` writes a float (its ``repr``; NaN and the
+    infinities by their JSON names), in rows of specials only, of one element
+    and of none; astropy's writer is the reference."""
+    values = _every_notation(np.random.default_rng(5))[: 64 * 600].reshape(-1, 64)
+    values[1] = np.nan
+    values[2, ::2] = np.inf
+    values[2, 1::2] = -np.inf
+    values[3] = -0.0
+    table = Table({"dx": values, "one": values[:, :1], "none": values[:, :0]})
+    _check_round_trip(table, tmp_path)
+
+
+def test_vector_columns_are_printed_without_json(monkeypatch):
+    """No row of a numeric vector column goes through ``json.dumps``, whose call per
+    row took most of rectify's write of its smear kernels."""
+    calls = []
+    monkeypatch.setattr(_ecsv.json, "dumps", lambda *a, **k: calls.append(a) or "[]")
+    table = Table({"dx": np.ones((5, 64)), "n": np.ones((5, 3), dtype=np.int32)})
+    assert _ecsv._column_texts(table) is not None
+    assert calls == []
 
 
 def test_vector_columns_of_no_rows_are_astropy_s_error(tmp_path):

@@ -142,9 +142,11 @@ def _column_texts(table: Table) -> list | None:
         values = column.data
         if type(column) is not Column or values.dtype.kind not in _FAST_KINDS:
             return None
+        if values.ndim == 2 and values.dtype.kind in "iuf" and values.dtype.itemsize <= 8:
+            texts.append(_vector_texts(values))
+            continue
         if values.ndim == 2 and values.dtype.itemsize <= 8:
-            # A vector per row (rectify's smear kernels): JSON of its list, as
-            # astropy writes it.
+            # A vector of booleans per row: JSON of its list, as astropy writes it.
             text = [json.dumps(row, separators=(",", ":")) for row in values.tolist()]
         elif values.ndim != 1:
             return None
@@ -163,6 +165,42 @@ def _column_texts(table: Table) -> list | None:
             text = list(map(str, values.tolist()))
         texts.append(pa.array(text, pa.large_string()))
     return texts
+
+
+#: JSON's names of the float specials (Python's json module; RFC 8259 has none).
+_JSON_SPECIALS = {"nan": "NaN", "inf": "Infinity", "-inf": "-Infinity"}
+
+
+def _vector_texts(values: np.ndarray):
+    """JSON of each row's list of numbers (``[1.5,-0.0,NaN]``), as astropy writes a
+    vector per row (rectify's smear kernels), as a pyarrow array of large strings.
+
+    ``json.dumps`` writes a Python float as its ``repr`` (NaN and the infinities
+    by their JSON names) and an integer as its digits; a float16/32 element's
+    Python float is its exact float64, so every float is printed by
+    :func:`_float64_texts` and the elements of a row joined by commas (one
+    ``json.dumps`` per row took 20 ms of rectify's 390-row table).
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    flat = values.reshape(-1)
+    if values.dtype.kind == "f":
+        with np.errstate(invalid="ignore"):  # a signalling NaN: NaN all the same
+            flat = flat.astype(np.float64)
+        texts = _float64_texts(flat)
+        special = ~np.isfinite(flat)
+        if special.any():
+            names = [_JSON_SPECIALS[str(value)] for value in flat[special].tolist()]
+            texts = pc.replace_with_mask(
+                texts, pa.array(special), pa.array(names, pa.large_string())
+            )
+    else:
+        texts = pc.cast(pa.array(flat), pa.large_string())
+    offsets = pa.array(np.arange(len(values) + 1, dtype=np.int64) * values.shape[1])
+    comma, open_, close, nothing = (pa.scalar(t, pa.large_string()) for t in (",", "[", "]", ""))
+    rows = pc.binary_join(pa.LargeListArray.from_arrays(offsets, texts), comma)
+    return pc.binary_join_element_wise(open_, rows, close, nothing)
 
 
 def _float64_texts(values: np.ndarray):
