@@ -476,8 +476,16 @@ _PART_COLUMNS = 256
 
 
 def _column_parts(n_columns: int) -> list[slice]:
-    """Slices of :data:`_PART_COLUMNS` columns covering ``n_columns`` (one if none)."""
-    return [slice(c, c + _PART_COLUMNS) for c in range(0, max(n_columns, 1), _PART_COLUMNS)]
+    """Slices of :data:`_PART_COLUMNS` columns covering ``n_columns`` (one if none).
+
+    No slice is one column wide unless the array is: numpy sums a single
+    column down its blocks pairwise, several columns row by row, which
+    rounds otherwise.
+    """
+    starts = list(range(0, max(n_columns, 1), _PART_COLUMNS))
+    if len(starts) > 1 and n_columns - starts[-1] == 1:
+        starts.pop()  # the last column joins the slice before it
+    return [slice(start, stop) for start, stop in zip(starts, [*starts[1:], None], strict=True)]
 
 
 def _nanmedian(values: np.ndarray, axis: int) -> np.ndarray:
