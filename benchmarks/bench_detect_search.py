@@ -23,7 +23,6 @@ measured by this one on its package), and prints the ratio of the medians.
 
 from __future__ import annotations
 
-import gc
 import importlib
 import json
 import pathlib
@@ -53,7 +52,7 @@ def measure(args) -> list[dict]:
     """Per timed run: the search's CPU time by function and the unit's, seconds."""
     # the package first: bench_detect_stretch puts its own tree first on the path
     detect = importlib.import_module("pipeline.stages.detect")
-    from bench_detect_stretch import load_stretch
+    from bench_detect_stretch import load_stretch, settle_as_a_worker
 
     spent: dict[str, float] = {}
 
@@ -74,11 +73,7 @@ def measure(args) -> list[dict]:
     own, before, after = load_stretch(pathlib.Path(args.night), args.stretch)
     options = detect.DetectOptions()
     detect.detect_stretch(own, before, after, options, stretch_index=args.stretch)  # loads
-    # as a worker does once warm (pipeline.runner._warm.settle_after_warm): the
-    # libraries' objects out of the collector's reach, so that a full collection
-    # (~0.1 s) does not land in whichever function allocates when it comes due
-    gc.collect()
-    gc.freeze()
+    settle_as_a_worker()
     runs = []
     for _ in range(args.repeat):
         spent.clear()

@@ -13,10 +13,11 @@ are crowded (20 000 stars per square degree to r = 22.5, ~400 per
 megapixel).  The stretch and its neighbours' products are read once; then
 :func:`pipeline.stages.detect.detect_stretch` (the stage's unit of work,
 with the stage's default options) runs once untimed (the compiled loops and
-the libraries it imports on first use, once per process) and ``--repeat``
-times timed.  It prints the process CPU time of each run (least and median),
-megapixels of the stretch's own columns per CPU second, and the number of
-sources.
+the libraries it imports on first use, once per process), the process's
+objects are frozen for the garbage collector as a warm worker's are, and
+the stage runs ``--repeat`` times timed.  It prints the process CPU time
+of each run (least and median), megapixels of the stretch's own columns per
+CPU second, and the number of sources.
 
 ``--save`` writes the catalogue; ``--compare`` reads one written so and
 prints, per column, the largest difference relative to the column's scale
@@ -34,6 +35,7 @@ from __future__ import annotations
 
 import argparse
 import cProfile
+import gc
 import json
 import pathlib
 import pstats
@@ -94,6 +96,18 @@ def compare(catalog, path: str) -> list[str]:
     return lines
 
 
+def settle_as_a_worker() -> None:
+    """Freeze this process's objects for the garbage collector, as a warm worker does.
+
+    A pool worker does it once its warm-up is done
+    (:func:`pipeline.runner._warm.settle_after_warm`); without it a full
+    collection walks the libraries' objects about once per unit (~0.1 s of
+    a crowded unit's CPU) and lands in whichever function allocates then.
+    """
+    gc.collect()
+    gc.freeze()
+
+
 def measure(args) -> dict:
     """Time detect on the stretch in this process; returns the figures as a dict."""
     from pipeline.stages.detect import DetectOptions, detect_stretch
@@ -105,6 +119,7 @@ def measure(args) -> dict:
     t0 = time.perf_counter()
     detect_stretch(own, before, after, options, stretch_index=args.stretch)
     first = time.perf_counter() - t0
+    settle_as_a_worker()
     times, walls = [], []
     result = None
     profiler = cProfile.Profile(time.process_time) if args.profile else None
