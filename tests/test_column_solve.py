@@ -37,6 +37,17 @@ def _holey(rng, shape, nan_fraction=0.1):
     return values
 
 
+def _same_to_rounding(ours, reference):
+    """Equal to a few double-precision roundings (1e-14 relative), NaN and infinities alike.
+
+    To rounding, not to the bit, so that a numpy release that computes a
+    median's halving or a mean otherwise does not fail the test; the bugs
+    these tests are about (the other middle value, a line's count taken
+    wrongly, a median over a slice) move a value by 1e-3 of it or more.
+    """
+    np.testing.assert_allclose(ours, reference, rtol=1e-14, atol=0)
+
+
 def _numpy_nanmedian(values, axis):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN lines: NaN, as ours
@@ -51,9 +62,9 @@ def test_nanmedian_is_numpys(shape, axis):
     rng = np.random.default_rng(3)
     values = _holey(rng, shape)
     before = values.copy()
-    # Exact: the same two middle values and the same (low + high) / 2
-    # (reference: numpy.nanmedian).
-    np.testing.assert_array_equal(_nanmedian(values, axis), _numpy_nanmedian(values, axis))
+    # The same two middle values and the same (low + high) / 2 (reference:
+    # numpy.nanmedian; to the bit today).
+    _same_to_rounding(_nanmedian(values, axis), _numpy_nanmedian(values, axis))
     np.testing.assert_array_equal(values, before)  # the input is left alone
 
 
@@ -62,9 +73,8 @@ def test_nanmedian_without_any_nan_is_numpys():
     for n_rows in (64, 65):  # the partition path alone, even and odd
         values = rng.normal(size=(n_rows, 50))
         for axis in (0, 1):
-            np.testing.assert_array_equal(
-                _nanmedian(values, axis), np.median(values, axis=axis)
-            )  # reference: numpy.median, exact (same arithmetic)
+            # reference: numpy.median (the same arithmetic: to the bit today)
+            _same_to_rounding(_nanmedian(values, axis), np.median(values, axis=axis))
 
 
 def _lines(rng, n_blocks=60, n_columns=N_COLUMNS):
@@ -137,8 +147,8 @@ def test_noise_ratio_and_relative_levels_are_numpy_nanmedians():
         per_column = np.nanmedian(np.where(valid, scatter / expected, np.nan), axis=0)
         masked = np.where(valid, level, np.nan)
         relative = np.nanmedian(masked / np.nanmedian(masked, axis=1, keepdims=True), axis=0)
-    # Exact: the same medians (reference: numpy.nanmedian) and one division.
+    # The same medians (reference: numpy.nanmedian) and one division.
     ratio = _noise_ratio(level, scatter, read_noise, valid)
-    np.testing.assert_array_equal(ratio, per_column / np.nanmedian(per_column))
+    _same_to_rounding(ratio, per_column / np.nanmedian(per_column))
     _, ours = _initial_reference(level, valid, ratio, 1.5)
-    np.testing.assert_array_equal(ours, relative)
+    _same_to_rounding(ours, relative)
