@@ -153,7 +153,8 @@ def background_mesh(
     if not good.any():
         raise ValueError(
             f"every background box of {box_size[0]} x {box_size[1]} pixels has more than "
-            f"{exclude_percentile:g} % of its pixels masked or clipped; use larger boxes."
+            f"{exclude_percentile:g} % of its pixels masked or clipped; use larger boxes "
+            "(stages.detect.background_box)."
         )
     if not good.all():  # photutils' filling of excluded boxes
         from photutils.utils import ShepardIDWInterpolator
