@@ -378,6 +378,26 @@ def test_single_stage_rerun_recomputes_only_that_stage(toy) -> None:
     assert report.stale_downstream == {}
 
 
+def test_a_rewritten_unit_changes_what_its_readers_are_handed(toy) -> None:
+    """The store works out a unit's inputs once, until a unit it reads is rewritten."""
+    make_config, _ = toy
+    config = make_config()
+    run_night(config)
+    night = NightStore(config)
+    scale, smooth = night.stages["scale"], night.stages["smooth"]
+    stretch = night.stretches[1]
+    before = night.inputs(smooth, stretch)[0]["scale"]
+    assert night.state(smooth, stretch) == ("done", "")
+    # scale/s0001 rewritten with other values (as a run of that unit does) ...
+    assert run_night(make_config("stages.scale.factor=3"), stage="scale", stretches=[1]).ok
+    night.forget(scale, stretch.id)
+    # ... hands smooth/s0001 the new products' hash, and makes it stale
+    after = night.inputs(smooth, stretch)[0]["scale"]
+    assert after != before
+    assert after == read_sidecar(night.unit_dir(scale, stretch.id))["output_hash"]
+    assert night.state(smooth, stretch) == ("stale", "inputs changed: scale")
+
+
 def test_config_change_marks_stage_and_downstream_stale_not_upstream(toy) -> None:
     make_config, rows = toy
     run_night(make_config())

@@ -160,6 +160,7 @@ class NightStore:
         """Forget cached sidecars and states; reload the block index and stretch plan."""
         self._sidecars: dict[tuple[str, str], dict[str, Any] | None] = {}
         self._states: dict[tuple[str, str], tuple[str, str]] = {}
+        self._inputs: dict[tuple[str, str], tuple[dict[str, str], list[InputSpec], str | None]] = {}
         self._missing: dict[str, dict[str, str]] = {}
         self._raw_names: list[str] | None = None
         self.index = None
@@ -181,6 +182,7 @@ class NightStore:
                     exc = DamagedProductError(folder / entry["file"], reason)
                 self.damaged[(self.row_stage.name, NIGHT)] = damage_reason(exc)
                 self._states.clear()
+                self._inputs.clear()
         if self.index is not None:
             run = self.config.run
             rows = block_index_rows(self.index)
@@ -193,6 +195,7 @@ class NightStore:
         """Forget what was read of a unit just (re)written, and every state derived from it."""
         self._sidecars.pop((stage.name, unit), None)
         self._states.clear()
+        self._inputs.clear()
         self._missing.clear()
 
     def unit_dir(self, stage: Stage, unit: str) -> Path:
@@ -424,7 +427,22 @@ class NightStore:
     def inputs(
         self, stage: Stage, stretch: Stretch | None
     ) -> tuple[dict[str, str], list[InputSpec], str | None]:
-        """Input hashes, how to load the inputs, and why they are unavailable (or None)."""
+        """Input hashes, how to load the inputs, and why they are unavailable (or None).
+
+        Worked out once per unit until a unit is rewritten (:meth:`forget`) or
+        the store refreshed: a run asks again for every unit a later stage
+        reads, and its neighbours' (a night of 32 stretches: ~1800 asks for
+        133 units).  Each ask gets its own dict and list.
+        """
+        key = (stage.name, unit_id(stretch))
+        if key not in self._inputs:
+            self._inputs[key] = self._find_inputs(stage, stretch)
+        hashes, specs, problem = self._inputs[key]
+        return dict(hashes), list(specs), problem
+
+    def _find_inputs(
+        self, stage: Stage, stretch: Stretch | None
+    ) -> tuple[dict[str, str], list[InputSpec], str | None]:
         hashes: dict[str, str] = {}
         specs: list[InputSpec] = []
         skipped = self.missing_stretches(stage)

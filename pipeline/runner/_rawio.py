@@ -178,8 +178,12 @@ def overlapping_blocks(index: Table, lo: int, hi: int) -> np.ndarray:
 
 
 def _overlapping(index: Table, lo: int, hi: int) -> list[tuple[str, int, int, int]]:
-    rows = index[overlapping_blocks(index, lo, hi)]
-    return [(str(r["file"]), int(r["hdu"]), int(r["row_start"]), int(r["n_rows"])) for r in rows]
+    # by column, not by rows of a sliced table (~1 ms per slice in astropy)
+    columns = [index[name] for name in ("file", "hdu", "row_start", "n_rows")]
+    return [
+        (str(columns[0][i]), int(columns[1][i]), int(columns[2][i]), int(columns[3][i]))
+        for i in overlapping_blocks(index, lo, hi)
+    ]
 
 
 def blocks_fingerprint(
