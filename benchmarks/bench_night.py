@@ -61,13 +61,13 @@ import threading
 import time
 from pathlib import Path
 
-# the script's folder is on sys.path when it is run as a script
-from _machine import limit_threads, machine_state
+import psutil  # (comes with distributed, the 'distributed' extra)
+import yaml
 
-limit_threads(1)  # one BLAS thread per process: the pool's workers are the parallelism
-
-import psutil  # noqa: E402  (comes with distributed, the 'distributed' extra)
-import yaml  # noqa: E402
+# the script's folder is on sys.path when it is run as a script.  No thread
+# limits are set here: the runs are measured with the threads a user gets (the
+# local pool gives its workers one BLAS thread each, as dask's nannies do).
+from _machine import machine_state
 
 #: The stages measured: everything up to the zero point.
 LAST_STAGE = "zeropoint"

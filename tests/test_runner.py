@@ -1476,6 +1476,25 @@ def test_the_workers_of_the_runs_own_dask_cluster_do_not_profile_themselves(monk
         cluster.close()
 
 
+def _thread_settings(_task) -> tuple:
+    """The BLAS and OpenMP thread counts this process was started with."""
+    return tuple(os.environ.get(name) for name in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
+                                                   "OMP_NUM_THREADS"))  # fmt: skip
+
+
+def test_local_pool_workers_get_one_blas_thread_unless_the_run_sets_it(monkeypatch) -> None:
+    """As dask's workers do: a worker per core, each with one BLAS thread; a value
+    the user set is kept, OpenMP's (pyarrow's thread pool) is left alone, and the
+    run's own environment is as it was."""
+    monkeypatch.delenv("OPENBLAS_NUM_THREADS", raising=False)
+    monkeypatch.setenv("MKL_NUM_THREADS", "3")
+    monkeypatch.delenv("OMP_NUM_THREADS", raising=False)
+    with _executors.LocalPoolExecutor(2) as executor:
+        seen = set(executor.map(_thread_settings, [0, 1], None))
+    assert seen == {("1", "3", None)}
+    assert _thread_settings(None) == (None, "3", None)
+
+
 def test_idle_workers_of_the_runs_own_cluster_are_ended_and_not_started_again() -> None:
     """Closing the cluster would wait up to 4 s for each worker to exit; the run
     kills its idle workers instead, and their nannies must not start them again."""

@@ -25,7 +25,9 @@ stopping the batch.
   isolation (a unit that kills its process ends the run).  When the run ends
   with no unit in progress, the idle workers are terminated rather than
   waited for: a worker's interpreter takes seconds to exit with the
-  libraries it loaded, and it has nothing left to write.
+  libraries it loaded, and it has nothing left to write.  The workers get
+  one BLAS thread each unless the run's environment sets the count
+  (:data:`WORKER_THREAD_LIMITS`).
 * ``dask``: a :class:`distributed.Client` connected to ``run.scheduler``, or,
   without a scheduler address, to a ``distributed.LocalCluster`` of
   ``run.workers`` processes started for the run.  Workers must see the same
@@ -86,6 +88,17 @@ WarmPlan = Sequence[tuple[str, tuple[str, ...]]]
 OnError = Callable[[Any, str], Outcome]
 
 _SPAWN = multiprocessing.get_context("spawn")
+
+#: Thread counts the local pool's workers get for BLAS (numpy's and scipy's
+#: OpenBLAS, or MKL), unless this process's environment sets them: one
+#: each, as dask's nannies give theirs.  The pool's workers are the
+#: parallelism, one per core; a BLAS that starts a thread per core in every
+#: worker has its threads wait for cores the other workers hold (detect's
+#: compiled fits call BLAS for every group: on a busy machine a night's detect
+#: units took from 1.0 to 13 times their time with one thread).  OpenMP's
+#: count (``OMP_NUM_THREADS``) is left alone: pyarrow sizes its thread pool
+#: by it, which reads the night-wide stages' tables.
+WORKER_THREAD_LIMITS = {"OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 _BROKEN = object()  # marker: the task's pool broke before it reported
 _DIED = "its worker process died (killed, or out of memory); see the system log"
 #: Seconds the run's own dask cluster may have no worker at all before its
@@ -206,6 +219,18 @@ class Reaper:
         self._process.stdin.close()
         self._process.wait()
         self._process = None
+
+
+@contextlib.contextmanager
+def _environment(defaults: dict[str, str]) -> Iterator[None]:
+    """Within the block, the variables of ``defaults`` this process's environment lacks are set."""
+    added = [name for name in defaults if name not in os.environ]
+    os.environ.update({name: defaults[name] for name in added})
+    try:
+        yield
+    finally:
+        for name in added:
+            os.environ.pop(name, None)
 
 
 def _unpicklable(task: Any) -> str | None:
@@ -442,9 +467,11 @@ class LocalPoolExecutor(Executor):
                 initargs=(os.getpid(), self._modules, self._plan),
             )
             # The pool starts a worker per task submitted while none is idle:
-            # start them all now, so that they import in parallel.
-            for _ in range(self._size):
-                self._pool.submit(_ready)
+            # start them all now, so that they import in parallel (a worker
+            # takes this process's environment as it starts).
+            with _environment(WORKER_THREAD_LIMITS):
+                for _ in range(self._size):
+                    self._pool.submit(_ready)
             log.debug("started a local pool of %d worker processes", self._size)
         return self._pool
 
