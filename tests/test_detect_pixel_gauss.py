@@ -296,3 +296,21 @@ def test_compiled_rows_are_the_numpy_sampled_profiles_to_the_bit(first, lattice,
     columns, columns_d = _rows(first, n, centres, sigmas, weights, lattice, box, *tables, True)
     np.testing.assert_array_equal(columns, value.reshape(-1, n).T)
     np.testing.assert_array_equal(columns_d, deriv.reshape(-1, n).T)
+
+
+@pytest.mark.parametrize("response", [(-1.0, -1.0, 0.0), (0.38988594, 0.123456789, 1.00007),
+                                      (0.3, 0.7, 0.9)])  # fmt: skip
+def test_model_without_derivatives_is_the_fits_model_to_the_bit(response):
+    # Self-consistency: model_compiled (the seeing curves' and the subtracted
+    # models) leaves the derivatives out; its values are those the fits'
+    # _unit computes with them, to the last bit.
+    from pipeline.stages.detect._fit_jit import _unit, model_compiled
+    from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE
+
+    dx, dy = smear_track([3900.0], 4096, 24, 16.0, 3.0)
+    sigmas, weights = SeeingProfile(2.7).mixture()
+    args = (2.0, 23, 1.0, 17, dx[0], dy[0], sigmas, weights, np.array(response), _ERF_TABLE,
+            _GAUSS_TABLE)  # fmt: skip
+    model, model_x, model_y = _unit(13.37, 9.81, *args)
+    assert np.abs(model_x).max() > 0 and np.abs(model_y).max() > 0
+    np.testing.assert_array_equal(model_compiled(13.37, 9.81, *args), model)

@@ -12,7 +12,10 @@ on a short track (0.6 ms per fit of a 16 x 16 stamp, where the arithmetic
 takes a tenth of it).  On a dense stretch (1035 x 4096 px, 467 groups) the
 group fits took 10.2 s of CPU in the Python loop and about 2.5 s here
 (one run each, on a machine loaded four times over).  Kept apart
-so that numba is imported only when the detect model first runs.
+so that numba is imported only when the detect model first runs.  Its cached
+machine code holds :mod:`~pipeline.stages.detect._pixel_gauss_jit`'s and is
+held by :mod:`~pipeline.stages.detect._measure_jit`'s, and numba checks only
+each file's own stamp: see the note there.
 """
 
 from __future__ import annotations
@@ -107,20 +110,28 @@ def _taps(first, lattice, box):
 
 
 @numba.njit(cache=True, nogil=True)
-def _rows(first, n, centres, sigmas, weights, lattice, box, erf_table, gauss_table, transpose):
+def _rows(
+    first, n, centres, sigmas, weights, lattice, box, erf_table, gauss_table, transpose,
+    derivatives=True,
+):  # fmt: skip
     """Profiles as rectify samples them, laid out for the model's matrix products.
 
     ``transpose`` False: each times its component's weight over K, as rows
     of shape (J K, n); True: unweighted, transposed to (n, J K).  Each value
     the same sums of the same products in the same order as the numpy model
     (:func:`~pipeline.stages.detect._model._sampled_profiles` times
-    ``weights / K``), so equal to it to the bit.
+    ``weights / K``), so equal to it to the bit.  ``derivatives`` False:
+    the derivatives' rows are left out (shape (0, 0)), for a model alone.
     """
     start, extra, taps, shifts = _taps(first, lattice, box)
     if box > 0.0:
-        v, d, stride = boxed_flat(start, n + extra, centres, sigmas, box, erf_table, gauss_table)
+        v, d, stride = boxed_flat(
+            start, n + extra, centres, sigmas, box, erf_table, gauss_table, derivatives
+        )
     else:
-        v, d, stride = profiles_flat(start, n + extra, centres, sigmas, erf_table, gauss_table)
+        v, d, stride = profiles_flat(
+            start, n + extra, centres, sigmas, erf_table, gauss_table, derivatives
+        )
     n_samples = centres.size
     rows = sigmas.size * n_samples
     # Tap by tap along all the rows laid end to end (long loops that the
@@ -130,44 +141,55 @@ def _rows(first, n, centres, sigmas, weights, lattice, box, erf_table, gauss_tab
     # not used.
     width = rows * stride
     flat_v = v.reshape(width)
-    flat_d = d.reshape(width)
+    flat_d = d.reshape(width if derivatives else 0)
     span = width - extra
     acc_v = np.zeros(span)
-    acc_d = np.zeros(span)
+    acc_d = np.zeros(span if derivatives else 0)
     for t in range(taps.size):
         w = taps[t]
         # views from the tap's shift on: an index the compiler knows is not
         # negative (``q + shift`` would take numba's wraparound test, which
         # keeps the loop from being vectorised)
         from_v = flat_v[shifts[t] :]
-        from_d = flat_d[shifts[t] :]
         for q in range(span):
             acc_v[q] += w * from_v[q]
-            acc_d[q] += w * from_d[q]
+        if derivatives:
+            from_d = flat_d[shifts[t] :]
+            for q in range(span):
+                acc_d[q] += w * from_d[q]
     if transpose:
-        out_v = np.empty((n, rows))
-        out_d = np.empty((n, rows))
-        for r in range(rows):
-            row_v = acc_v[r * stride :]
-            row_d = acc_d[r * stride :]
-            for i in range(n):
-                out_v[i, r] = row_v[i]
-                out_d[i, r] = row_d[i]
+        out_v = _columns(acc_v, stride, n, rows)
+        out_d = _columns(acc_d, stride, n, rows if derivatives else 0)
         return out_v, out_d
-    out_v = np.empty((rows, n))
-    out_d = np.empty((rows, n))
-    for j in range(sigmas.size):
+    out_v = _scaled_rows(acc_v, stride, n, weights, n_samples, sigmas.size)
+    out_d = _scaled_rows(acc_d, stride, n, weights, n_samples, sigmas.size if derivatives else 0)
+    return out_v, out_d
+
+
+@numba.njit(cache=True, nogil=True)
+def _columns(flat, stride, n, rows):
+    """Rows ``stride`` apart in ``flat`` (their first ``n`` values) as columns, shape (n, rows)."""
+    out = np.empty((n if rows else 0, rows))
+    for r in range(rows):
+        row = flat[r * stride :]
+        for i in range(n):
+            out[i, r] = row[i]
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def _scaled_rows(flat, stride, n, weights, n_samples, n_sigmas):
+    """Rows ``stride`` apart in ``flat`` times ``weights[j] / n_samples``, shape (J K, n)."""
+    out = np.empty((n_sigmas * n_samples, n if n_sigmas else 0))
+    for j in range(n_sigmas):
         scale = weights[j] / n_samples
         for k in range(n_samples):
             r = j * n_samples + k
-            row_v = acc_v[r * stride :]
-            row_d = acc_d[r * stride :]
-            to_v = out_v[r]
-            to_d = out_d[r]
+            row = flat[r * stride :]
+            to = out[r]
             for i in range(n):
-                to_v[i] = row_v[i] * scale
-                to_d[i] = row_d[i] * scale
-    return out_v, out_d
+                to[i] = row[i] * scale
+    return out
 
 
 @numba.njit(cache=True, nogil=True)
@@ -197,11 +219,12 @@ def model_compiled(
     """The unit model of :func:`_unit` alone, without its derivatives, shape (ny, nx)."""
     a, _ = _rows(
         x_first, nx, x0 + dx, sigmas, weights, response[0], response[2], erf_table, gauss_table,
-        False,
+        False, False,
     )  # fmt: skip
     bt, _ = _rows(
-        y_first, ny, y0 + dy, sigmas, weights, response[1], 0.0, erf_table, gauss_table, True
-    )
+        y_first, ny, y0 + dy, sigmas, weights, response[1], 0.0, erf_table, gauss_table, True,
+        False,
+    )  # fmt: skip
     return np.dot(bt, a)
 
 

@@ -99,7 +99,7 @@ def _erf_and_gauss_many(zs, erf_table, gauss_table, c, g, scratch):
 
 
 @numba.njit(cache=True, nogil=True)
-def profiles_flat(first, n, centres, sigmas, erf_table, gauss_table):
+def profiles_flat(first, n, centres, sigmas, erf_table, gauss_table, derivatives=True):
     """:func:`profiles_compiled`'s values, each sigma's rows laid end to end ``n + 1`` apart.
 
     Returns ``value``, ``deriv`` and the stride: pixel ``e < n`` of centre
@@ -107,12 +107,13 @@ def profiles_flat(first, n, centres, sigmas, erf_table, gauss_table):
     stride is not a pixel).  The loops run along all the rows at once,
     which the compiler vectorises (rows of 20 pixels cost more in loop
     overhead than in arithmetic); the same arithmetic as each edge in turn.
+    ``derivatives`` False: ``deriv`` is left out (shape (J, 0)).
     """
     size = centres.size
     stride = n + 1
     m = size * stride
     value = np.empty((sigmas.size, m))
-    deriv = np.empty((sigmas.size, m))
+    deriv = np.empty((sigmas.size, m if derivatives else 0))
     # the edges first - 0.5, then (first + e) + 0.5, as each row subtracts its centre
     edges = np.empty(stride)
     edges[0] = first - 0.5
@@ -132,12 +133,15 @@ def profiles_flat(first, n, centres, sigmas, erf_table, gauss_table):
             for e in range(stride):
                 to[e] = (edges[e] - centre) * inv
         _erf_and_gauss_many(zs, erf_table, gauss_table, c, g, scratch)
-        vj, dj = value[j], deriv[j]
+        vj = value[j]
         for e in range(m - 1):
             vj[e] = 0.5 * (c1[e] - c[e])
-            dj[e] = -(g1[e] - g[e]) * scale
         vj[m - 1] = 0.0
-        dj[m - 1] = 0.0
+        if derivatives:
+            dj = deriv[j]
+            for e in range(m - 1):
+                dj[e] = -(g1[e] - g[e]) * scale
+            dj[m - 1] = 0.0
     return value, deriv, stride
 
 
@@ -173,16 +177,17 @@ def _normal_sums(z, erf_table, gauss_table):
 
 
 @numba.njit(cache=True, nogil=True)
-def boxed_flat(first, n, centres, sigmas, box, erf_table, gauss_table):
+def boxed_flat(first, n, centres, sigmas, box, erf_table, gauss_table, derivatives=True):
     """:func:`boxed_profiles_compiled`'s values laid out as :func:`profiles_flat`'s.
 
     Returns ``value``, ``deriv`` and the stride (pixel ``e < n`` of centre
     ``k`` at ``[j, k * stride + e]``).  The normal sums at every centre's
     edges are evaluated together, per sigma, and the loops run along all
     the rows at once: the same arithmetic as each edge in turn.
+    ``derivatives`` False: ``deriv`` is left out (shape (J, 0)).
     """
     if box < _LEAST_BOX:
-        return profiles_flat(first, n, centres, sigmas, erf_table, gauss_table)
+        return profiles_flat(first, n, centres, sigmas, erf_table, gauss_table, derivatives)
     q = int(np.floor(box + 0.5))
     eps = box - q
     shared = q >= 1 and abs(eps) <= _SHARED_SLACK
@@ -201,7 +206,7 @@ def boxed_flat(first, n, centres, sigmas, box, erf_table, gauss_table):
     c, g, scratch = np.empty(total), np.empty(total), np.empty((7, total))
     psi_m, cdf_m, psi_p, cdf_p = np.empty(total), np.empty(total), np.empty(total), np.empty(total)
     value = np.empty((sigmas.size, total))
-    deriv = np.empty((sigmas.size, total))
+    deriv = np.empty((sigmas.size, total if derivatives else 0))
     span = total - ahead  # points with a partner ``ahead`` further on
     zq, psi_q, cdf_q, pdf_q = zs[ahead:], psi[ahead:], cdf[ahead:], pdf[ahead:]
     psi_m1, cdf_m1, psi_p1, cdf_p1 = psi_m[1:], cdf_m[1:], psi_p[1:], cdf_p[1:]
@@ -226,20 +231,26 @@ def boxed_flat(first, n, centres, sigmas, box, erf_table, gauss_table):
             # point e + q shifted by +eps / 2: Taylor's formula to second order.
             for e in range(span):
                 psi_m[e] = psi[e] - h * cdf[e] + 0.5 * h * h * pdf[e]
-                cdf_m[e] = cdf[e] - h * pdf[e] - 0.5 * h * h * zs[e] * pdf[e]
                 psi_p[e] = psi_q[e] + h * cdf_q[e] + 0.5 * h * h * pdf_q[e]
-                cdf_p[e] = cdf_q[e] + h * pdf_q[e] - 0.5 * h * h * zq[e] * pdf_q[e]
+            if derivatives:
+                for e in range(span):
+                    cdf_m[e] = cdf[e] - h * pdf[e] - 0.5 * h * h * zs[e] * pdf[e]
+                    cdf_p[e] = cdf_q[e] + h * pdf_q[e] - 0.5 * h * h * zq[e] * pdf_q[e]
         else:
             for e in range(span):
                 psi_m[e], cdf_m[e] = psi[e], cdf[e]
                 psi_p[e], cdf_p[e] = psi_q[e], cdf_q[e]
-        vj, dj = value[j], deriv[j]
+        vj = value[j]
         for e in range(span - 1):
             vj[e] = (s / box) * (psi_p1[e] - psi_p[e] - psi_m1[e] + psi_m[e])
-            dj[e] = -(cdf_p1[e] - cdf_p[e] - cdf_m1[e] + cdf_m[e]) / box
         for e in range(span - 1, total):
             vj[e] = 0.0
-            dj[e] = 0.0
+        if derivatives:
+            dj = deriv[j]
+            for e in range(span - 1):
+                dj[e] = -(cdf_p1[e] - cdf_p[e] - cdf_m1[e] + cdf_m[e]) / box
+            for e in range(span - 1, total):
+                dj[e] = 0.0
     return value, deriv, stride
 
 
