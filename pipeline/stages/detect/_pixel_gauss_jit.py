@@ -22,7 +22,11 @@ __all__ = ["boxed_flat", "boxed_profiles_compiled", "profiles_compiled", "profil
 
 @numba.njit(cache=True, nogil=True)
 def _erf_and_gauss(z, erf_table, gauss_table):
-    """``erf(z / sqrt 2)`` and ``exp(-z^2 / 2)`` by Hermite interpolation in the tables."""
+    """``erf(z / sqrt 2)`` and ``exp(-z^2 / 2)`` by Hermite interpolation in the tables.
+
+    One value: the reference that :func:`_erf_and_gauss_many` (what the
+    profiles use) equals to the bit (the tests' one-edge-at-a-time loop).
+    """
     u = (z + _REACH) * _NODES_PER_SIGMA
     if u <= 0.0:
         return -1.0, 0.0
@@ -168,15 +172,6 @@ def profiles_compiled(first, n, centres, sigmas, erf_table, gauss_table):
 
 
 @numba.njit(cache=True, nogil=True)
-def _normal_sums(z, erf_table, gauss_table):
-    """``Psi(z) = z Phi(z) + phi(z)`` (the normal CDF's integral), ``Phi(z)`` and ``phi(z)``."""
-    c, g = _erf_and_gauss(z, erf_table, gauss_table)
-    cdf = 0.5 * (1.0 + c)
-    pdf = g / _SQRT2PI
-    return z * cdf + pdf, cdf, pdf
-
-
-@numba.njit(cache=True, nogil=True)
 def boxed_flat(first, n, centres, sigmas, box, erf_table, gauss_table, derivatives=True):
     """:func:`boxed_profiles_compiled`'s values laid out as :func:`profiles_flat`'s.
 
@@ -256,7 +251,11 @@ def boxed_flat(first, n, centres, sigmas, box, erf_table, gauss_table, derivativ
 
 @numba.njit(cache=True, nogil=True)
 def _normal_sums_many(zs, erf_table, gauss_table, psi, cdf, pdf, c, g, scratch):
-    """:func:`_normal_sums` at each of ``zs`` (the same arithmetic), into ``psi``, ``cdf``, ``pdf``."""
+    """``Psi(z) = z Phi(z) + phi(z)`` (the normal CDF's integral), ``Phi(z)`` and ``phi(z)``.
+
+    At each of ``zs``, into ``psi``, ``cdf`` and ``pdf``, from
+    :func:`_erf_and_gauss_many`.
+    """
     _erf_and_gauss_many(zs, erf_table, gauss_table, c, g, scratch)
     for e in range(zs.size):
         cdf[e] = 0.5 * (1.0 + c[e])
