@@ -181,3 +181,136 @@ def test_a_narrow_top_hat_is_left_out():
     # ... which changes the profile by < 2.6e-4 of its peak (box^2 / 12 of variance)
     exact = boxed_profiles_direct(grid, centres, sigmas, 0.04)[0]
     assert np.abs(value - exact).max() < 2.6e-4 * value.max()
+
+
+def _one_edge_at_a_time(first, n, centres, sigmas, box=0.0):
+    """The profiles with each edge's table look-up in turn, in Python (the reference).
+
+    ``box`` 0: :func:`pixel_profiles`' formula; otherwise
+    :func:`boxed_profiles`' (shared edges near a whole number of pixels, with
+    Taylor's formula to second order), each step in the compiled loop's order
+    of operations, from the scalar look-up ``_erf_and_gauss``.
+    """
+    from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE, _SQRT2PI
+    from pipeline.stages.detect._pixel_gauss_jit import _erf_and_gauss
+
+    look = _erf_and_gauss.py_func
+
+    def sums(z):
+        c, g = look(z, _ERF_TABLE, _GAUSS_TABLE)
+        cdf = 0.5 * (1.0 + c)
+        pdf = g / _SQRT2PI
+        return z * cdf + pdf, cdf, pdf
+
+    value = np.empty((len(sigmas), len(centres), n))
+    deriv = np.empty_like(value)
+    q = int(np.floor(box + 0.5))
+    eps = box - q
+    shared = q >= 1 and abs(eps) <= 0.01
+    for j, s in enumerate(sigmas.tolist()):
+        inv = 1.0 / s
+        for k, centre in enumerate(centres.tolist()):
+            if box == 0.0:
+                c_lo, g_lo = look((first - 0.5 - centre) * inv, _ERF_TABLE, _GAUSS_TABLE)
+                for e in range(n):
+                    c_hi, g_hi = look((first + e + 0.5 - centre) * inv, _ERF_TABLE, _GAUSS_TABLE)
+                    value[j, k, e] = 0.5 * (c_hi - c_lo)
+                    deriv[j, k, e] = -(g_hi - g_lo) * (1.0 / (_SQRT2PI * s))
+                    c_lo, g_lo = c_hi, g_hi
+                continue
+            if shared:
+                h = 0.5 * eps * inv
+                zs = [(first - 0.5 + e - 0.5 * q - centre) * inv for e in range(n + 1 + q)]
+                psi, cdf, pdf = zip(*[sums(z) for z in zs], strict=True)
+                minus = [(psi[e] - h * cdf[e] + 0.5 * h * h * pdf[e],
+                          cdf[e] - h * pdf[e] - 0.5 * h * h * zs[e] * pdf[e])
+                         for e in range(n + 1)]  # fmt: skip
+                plus = [(psi[e + q] + h * cdf[e + q] + 0.5 * h * h * pdf[e + q],
+                         cdf[e + q] + h * pdf[e + q] - 0.5 * h * h * zs[e + q] * pdf[e + q])
+                        for e in range(n + 1)]  # fmt: skip
+            else:
+                edges = [first - 0.5 + e - centre for e in range(n + 1)]
+                minus = [sums((edge - 0.5 * box) * inv)[:2] for edge in edges]
+                plus = [sums((edge + 0.5 * box) * inv)[:2] for edge in edges]
+            for e in range(n):
+                value[j, k, e] = (s / box) * (
+                    plus[e + 1][0] - plus[e][0] - minus[e + 1][0] + minus[e][0]
+                )
+                deriv[j, k, e] = -(plus[e + 1][1] - plus[e][1] - minus[e + 1][1] + minus[e][1]) / box
+    return value, deriv
+
+
+@pytest.mark.parametrize("box", [0.0, *BOXES])
+def test_profiles_are_each_edge_looked_up_in_turn_to_the_bit(box):
+    # Self-consistency: the compiled loops look the tables up for every edge
+    # of every centre first and interpolate afterwards, along all the rows
+    # at once; each value is the same arithmetic as one edge at a time, so
+    # the same to the last bit (the fits' results stay as they were).
+    first, n = -30.4, 23
+    centres = first + np.array([-40.0, -3.2, 0.0, 12.37, 22.5, 22.51, 30.9, 61.0])
+    sigmas = np.array([0.58, 1.63, 2.82, 7.5])
+    grid = first + np.arange(float(n))
+    if box == 0.0:
+        value, deriv = pixel_profiles(grid, centres, sigmas)
+    else:
+        value, deriv = boxed_profiles(grid, centres, sigmas, box)
+    ref_value, ref_deriv = _one_edge_at_a_time(first, n, centres, sigmas, box)
+    np.testing.assert_array_equal(value, ref_value)
+    np.testing.assert_array_equal(deriv, ref_deriv)
+
+
+#: Grid starts, lattice offsets (-1: none) and top-hats (0: none).  Where
+#: there is a lattice, ``(first - 2) + lattice`` and ``first + (lattice -
+#: 2)`` round apart (checked in the test): the rows must take the numpy
+#: model's order (at (2, 0.123456789, 0) the other one moves 230 values
+#: by a unit in the last place).
+ROWS_CASES = [(1.0, 0.38988594, 1.00007), (2.0, 0.123456789, 0.0), (2.0, -1.0, 1.00007),
+              (5.0, -1.0, 0.0), (2.0, 0.123456789, 0.9)]  # fmt: skip
+
+
+@pytest.mark.parametrize(("first", "lattice", "box"), ROWS_CASES)
+def test_compiled_rows_are_the_numpy_sampled_profiles_to_the_bit(first, lattice, box):
+    # Self-consistency: the compiled model's rows (each Keys tap along all
+    # the rows at once, then weighted or transposed) are
+    # _model._sampled_profiles (numpy, the Python fits' model) times the
+    # component weights over K, to the last bit.
+    from pipeline.stages.detect._fit_jit import _rows
+    from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE
+
+    if lattice >= 0.0:
+        assert (first - 2.0) + lattice != first + (lattice - 2.0)
+    n = 19
+    dx, _ = smear_track([3900.0], 4096, 20, 16.0, 3.0)
+    centres = first + 9.37 + dx[0]
+    profile = SeeingProfile(2.7)
+    sigmas, weights = profile.mixture()
+    grid = first + np.arange(float(n))
+    value, deriv = _model._sampled_profiles(
+        grid, centres, sigmas, None if lattice < 0.0 else lattice, box
+    )
+    scale = (weights / centres.size)[:, None, None]
+    tables = (_ERF_TABLE, _GAUSS_TABLE)
+    rows, rows_d = _rows(first, n, centres, sigmas, weights, lattice, box, *tables, False)
+    np.testing.assert_array_equal(rows, (value * scale).reshape(-1, n))
+    np.testing.assert_array_equal(rows_d, (deriv * scale).reshape(-1, n))
+    columns, columns_d = _rows(first, n, centres, sigmas, weights, lattice, box, *tables, True)
+    np.testing.assert_array_equal(columns, value.reshape(-1, n).T)
+    np.testing.assert_array_equal(columns_d, deriv.reshape(-1, n).T)
+
+
+@pytest.mark.parametrize("response", [(-1.0, -1.0, 0.0), (0.38988594, 0.123456789, 1.00007),
+                                      (0.3, 0.7, 0.9)])  # fmt: skip
+def test_model_without_derivatives_is_the_fits_model_to_the_bit(response):
+    # Self-consistency: model_compiled (the seeing curves' and the subtracted
+    # models) leaves the derivatives out; its values are those the fits'
+    # _unit computes with them, to the last bit.
+    from pipeline.stages.detect._fit_jit import _unit, model_compiled
+    from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE
+
+    dx, dy = smear_track([3900.0], 4096, 24, 16.0, 3.0)
+    sigmas, weights = SeeingProfile(2.7).mixture()
+    args = (2.0, 23, 1.0, 17, dx[0], dy[0], sigmas, weights, np.array(response), _ERF_TABLE,
+            _GAUSS_TABLE)  # fmt: skip
+    model, model_x, model_y = _unit(13.37, 9.81, *args)
+    assert np.abs(model_x).max() > 0 and np.abs(model_y).max() > 0
+    np.testing.assert_array_equal(model_compiled(13.37, 9.81, *args), model)

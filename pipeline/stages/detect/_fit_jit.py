@@ -12,7 +12,10 @@ on a short track (0.6 ms per fit of a 16 x 16 stamp, where the arithmetic
 takes a tenth of it).  On a dense stretch (1035 x 4096 px, 467 groups) the
 group fits took 10.2 s of CPU in the Python loop and about 2.5 s here
 (one run each, on a machine loaded four times over).  Kept apart
-so that numba is imported only when the detect model first runs.
+so that numba is imported only when the detect model first runs.  Its cached
+machine code holds :mod:`~pipeline.stages.detect._pixel_gauss_jit`'s and is
+held by :mod:`~pipeline.stages.detect._measure_jit`'s, and numba checks only
+each file's own stamp: see the note there.
 """
 
 from __future__ import annotations
@@ -20,7 +23,12 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from pipeline.stages.detect._pixel_gauss_jit import boxed_profiles_compiled, profiles_compiled
+from pipeline.stages.detect._pixel_gauss_jit import (
+    boxed_flat,
+    boxed_profiles_compiled,
+    profiles_compiled,
+    profiles_flat,
+)
 
 __all__ = [
     "CONVERGED",
@@ -74,31 +82,114 @@ def _keys(s):
 
 
 @numba.njit(cache=True, nogil=True)
-def _sampled(first, n, centres, sigmas, lattice, box, erf_table, gauss_table):
-    """``profiles_compiled`` as rectify samples them (``_model._sampled_profiles``).
+def _taps(first, lattice, box):
+    """Where rectify's sampling reads the profiles, and with what weights.
 
     ``lattice`` < 0: no resampling; ``box`` <= 0: no clocking top-hat.
+    Returns the first pixel centre of the grid the profiles are evaluated
+    on (``first - 2 + offset``, in that order: the numpy model's
+    :func:`~pipeline.stages.detect._model._sampled_profiles` arithmetic, to
+    the bit), its extra pixels, and the taps: output pixel ``i`` is ``sum_t
+    weights[t] profile[i + shifts[t]]`` over the Keys kernel's non-zero
+    taps, in order.
     """
     if lattice < 0.0 and box <= 0.0:
-        return profiles_compiled(first, n, centres, sigmas, erf_table, gauss_table)
+        return first, 0, np.ones(1), np.zeros(1, dtype=np.int64)
     offset = 0.0 if lattice < 0.0 else lattice
-    ext = first - 2.0 + offset
-    if box > 0.0:
-        v, d = boxed_profiles_compiled(ext, n + 4, centres, sigmas, box, erf_table, gauss_table)
-    else:
-        v, d = profiles_compiled(ext, n + 4, centres, sigmas, erf_table, gauss_table)
-    out_v = np.zeros((v.shape[0], v.shape[1], n))
-    out_d = np.zeros((v.shape[0], v.shape[1], n))
+    weights = np.empty(5)
+    shifts = np.empty(5, dtype=np.int64)
+    count = 0
     for e in range(5):
         w = _keys(e - 2.0 + offset) if lattice >= 0.0 else (1.0 if e == 2 else 0.0)
         if w == 0.0:
             continue
-        for j in range(v.shape[0]):
-            for k in range(v.shape[1]):
-                for i in range(n):
-                    out_v[j, k, i] += w * v[j, k, i + e]
-                    out_d[j, k, i] += w * d[j, k, i + e]
+        weights[count] = w
+        shifts[count] = e
+        count += 1
+    return first - 2.0 + offset, 4, weights[:count], shifts[:count]
+
+
+@numba.njit(cache=True, nogil=True)
+def _rows(
+    first, n, centres, sigmas, weights, lattice, box, erf_table, gauss_table, transpose,
+    derivatives=True,
+):  # fmt: skip
+    """Profiles as rectify samples them, laid out for the model's matrix products.
+
+    ``transpose`` False: each times its component's weight over K, as rows
+    of shape (J K, n); True: unweighted, transposed to (n, J K).  Each value
+    the same sums of the same products in the same order as the numpy model
+    (:func:`~pipeline.stages.detect._model._sampled_profiles` times
+    ``weights / K``), so equal to it to the bit.  ``derivatives`` False:
+    the derivatives' rows are left out (shape (0, 0)), for a model alone.
+    """
+    start, extra, taps, shifts = _taps(first, lattice, box)
+    if box > 0.0:
+        v, d, stride = boxed_flat(
+            start, n + extra, centres, sigmas, box, erf_table, gauss_table, derivatives
+        )
+    else:
+        v, d, stride = profiles_flat(
+            start, n + extra, centres, sigmas, erf_table, gauss_table, derivatives
+        )
+    n_samples = centres.size
+    rows = sigmas.size * n_samples
+    # Tap by tap along all the rows laid end to end (long loops that the
+    # compiler vectorises; 160 rows of 20 pixels each cost more in loop
+    # overhead than in arithmetic); each pixel's sum in the taps' order, as
+    # before.  Sums past a row's pixels (whose taps read the next row) are
+    # not used.
+    width = rows * stride
+    flat_v = v.reshape(width)
+    flat_d = d.reshape(width if derivatives else 0)
+    span = width - extra
+    acc_v = np.zeros(span)
+    acc_d = np.zeros(span if derivatives else 0)
+    for t in range(taps.size):
+        w = taps[t]
+        # views from the tap's shift on: an index the compiler knows is not
+        # negative (``q + shift`` would take numba's wraparound test, which
+        # keeps the loop from being vectorised)
+        from_v = flat_v[shifts[t] :]
+        for q in range(span):
+            acc_v[q] += w * from_v[q]
+        if derivatives:
+            from_d = flat_d[shifts[t] :]
+            for q in range(span):
+                acc_d[q] += w * from_d[q]
+    if transpose:
+        out_v = _columns(acc_v, stride, n, rows)
+        out_d = _columns(acc_d, stride, n, rows if derivatives else 0)
+        return out_v, out_d
+    out_v = _scaled_rows(acc_v, stride, n, weights, n_samples, sigmas.size)
+    out_d = _scaled_rows(acc_d, stride, n, weights, n_samples, sigmas.size if derivatives else 0)
     return out_v, out_d
+
+
+@numba.njit(cache=True, nogil=True)
+def _columns(flat, stride, n, rows):
+    """Rows ``stride`` apart in ``flat`` (their first ``n`` values) as columns, shape (n, rows)."""
+    out = np.empty((n if rows else 0, rows))
+    for r in range(rows):
+        row = flat[r * stride :]
+        for i in range(n):
+            out[i, r] = row[i]
+    return out
+
+
+@numba.njit(cache=True, nogil=True)
+def _scaled_rows(flat, stride, n, weights, n_samples, n_sigmas):
+    """Rows ``stride`` apart in ``flat`` times ``weights[j] / n_samples``, shape (J K, n)."""
+    out = np.empty((n_sigmas * n_samples, n if n_sigmas else 0))
+    for j in range(n_sigmas):
+        scale = weights[j] / n_samples
+        for k in range(n_samples):
+            r = j * n_samples + k
+            row = flat[r * stride :]
+            to = out[r]
+            for i in range(n):
+                to[i] = row[i] * scale
+    return out
 
 
 @numba.njit(cache=True, nogil=True)
@@ -111,28 +202,14 @@ def _unit(
     (:class:`~pipeline.stages.detect._model.Response`; offsets -1 and step
     0 for none).
     """
-    gx, dgx = _sampled(
-        x_first, nx, x0 + dx, sigmas, response[0], response[2], erf_table, gauss_table
+    a, da = _rows(
+        x_first, nx, x0 + dx, sigmas, weights, response[0], response[2], erf_table, gauss_table,
+        False,
+    )  # fmt: skip
+    bt, dbt = _rows(
+        y_first, ny, y0 + dy, sigmas, weights, response[1], 0.0, erf_table, gauss_table, True
     )
-    gy, dgy = _sampled(y_first, ny, y0 + dy, sigmas, response[1], 0.0, erf_table, gauss_table)
-    a = _weighted_rows(gx, weights)
-    da = _weighted_rows(dgx, weights)
-    bt = np.ascontiguousarray(gy.reshape(-1, ny).T)
-    dbt = np.ascontiguousarray(dgy.reshape(-1, ny).T)
     return np.dot(bt, a), np.dot(bt, da), np.dot(dbt, a)
-
-
-@numba.njit(cache=True, nogil=True)
-def _weighted_rows(profiles, weights):
-    """Profiles (J, K, n) times each component's weight over K, as rows (J K, n)."""
-    n_samples, n = profiles.shape[1], profiles.shape[2]
-    out = np.empty((weights.size * n_samples, n))
-    for j in range(weights.size):
-        scale = weights[j] / n_samples
-        for k in range(n_samples):
-            for e in range(n):
-                out[j * n_samples + k, e] = profiles[j, k, e] * scale
-    return out
 
 
 @numba.njit(cache=True, nogil=True)
@@ -140,9 +217,15 @@ def model_compiled(
     x0, y0, x_first, nx, y_first, ny, dx, dy, sigmas, weights, response, erf_table, gauss_table
 ):
     """The unit model of :func:`_unit` alone, without its derivatives, shape (ny, nx)."""
-    gx, _ = _sampled(x_first, nx, x0 + dx, sigmas, response[0], response[2], erf_table, gauss_table)
-    gy, _ = _sampled(y_first, ny, y0 + dy, sigmas, response[1], 0.0, erf_table, gauss_table)
-    return np.dot(np.ascontiguousarray(gy.reshape(-1, ny).T), _weighted_rows(gx, weights))
+    a, _ = _rows(
+        x_first, nx, x0 + dx, sigmas, weights, response[0], response[2], erf_table, gauss_table,
+        False, False,
+    )  # fmt: skip
+    bt, _ = _rows(
+        y_first, ny, y0 + dy, sigmas, weights, response[1], 0.0, erf_table, gauss_table, True,
+        False,
+    )  # fmt: skip
+    return np.dot(bt, a)
 
 
 @numba.njit(cache=True, nogil=True)

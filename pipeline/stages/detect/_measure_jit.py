@@ -3,6 +3,16 @@
 of many groups in one call.
 
 Kept apart so that numba is imported only when the detect stage first measures.
+
+numba's disk cache (``cache=True``) keeps each function's machine code with
+the code of the compiled functions it calls from other modules (the model of
+:mod:`~pipeline.stages.detect._fit_jit` and
+:mod:`~pipeline.stages.detect._pixel_gauss_jit`), but checks only this file's
+own time stamp: a change to those modules alone leaves this one's cached code
+as it was (measured: the group fits kept the old model's speed after the
+model was rewritten).  Edit this file with them (this paragraph was written
+with the model's vectorised rows), or clear the ``__pycache__`` ``*.nbi``/``*.nbc``
+files.
 """
 
 from __future__ import annotations
