@@ -236,7 +236,9 @@ def _one_edge_at_a_time(first, n, centres, sigmas, box=0.0):
                 value[j, k, e] = (s / box) * (
                     plus[e + 1][0] - plus[e][0] - minus[e + 1][0] + minus[e][0]
                 )
-                deriv[j, k, e] = -(plus[e + 1][1] - plus[e][1] - minus[e + 1][1] + minus[e][1]) / box
+                deriv[j, k, e] = (
+                    -(plus[e + 1][1] - plus[e][1] - minus[e + 1][1] + minus[e][1]) / box
+                )
     return value, deriv
 
 

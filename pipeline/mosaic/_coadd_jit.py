@@ -12,8 +12,9 @@ from __future__ import annotations
 
 import math
 
-import numba
 import numpy as np
+
+from pipeline._jit import njit
 
 __all__ = [
     "bilinear_weights",
@@ -28,7 +29,7 @@ __all__ = [
 ]
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _median_of(values, weights, p, order_v, order_w):
     """Weighted median of pixel ``p`` (``values[:, p]``; weight <= 0: missing); NaN if none."""
     n = 0
@@ -58,7 +59,7 @@ def _median_of(values, weights, p, order_v, order_w):
     return order_v[n - 1]
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def weighted_median_flat(values, weights):
     """Weighted median along axis 0 of ``(n, m)`` arrays: float64, shape (m,)."""
     n, m = values.shape
@@ -77,7 +78,7 @@ def weighted_median_flat(values, weights):
 CHUNK = 512
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def median_and_noise(planes, valid, limit, median, noise2, count, out):
     """Per pixel of ``(n, m)`` planes: weighted median, ``V_m = (pi/2) / sum(1/V_i)``, count.
 
@@ -155,7 +156,7 @@ def median_and_noise(planes, valid, limit, median, noise2, count, out):
     return suspects[:n_suspects]
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _append(buffer, n, value):
     """``buffer[n] = value``, doubling ``buffer`` when full; returns it and ``n + 1``."""
     if n == buffer.size:
@@ -164,7 +165,7 @@ def _append(buffer, n, value):
     return buffer, n + 1
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def reject(images, variances, valid, median, noise2, count, n_x, sky, args, suspects):
     """Outliers of ``(n, m)`` planes (``m`` pixels of rows ``n_x`` long), as flat indices.
 
@@ -206,7 +207,7 @@ def reject(images, variances, valid, median, noise2, count, n_x, sky, args, susp
     return np.sort(hits[:n_hits])
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def exclude(valid, hits, n_x, grow):
     """Clear ``valid`` (``(n, m)``, rows ``n_x`` long) in squares of ``2 grow + 1`` px around hits.
 
@@ -234,7 +235,7 @@ def exclude(valid, hits, n_x, grow):
     return cleared, touched[:n_touched]
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _combine_run(planes, kept, p0, size, work, out):
     """:func:`combine` for pixels ``p0 ... p0 + size - 1`` (at most ``CHUNK``).
 
@@ -278,12 +279,12 @@ def _combine_run(planes, kept, p0, size, work, out):
             out_flags[p] = every[q]
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _combine_work():
     return np.empty((3, CHUNK), np.float64), np.empty((3, CHUNK), np.uint16)
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def combine(planes, kept, out, pixels):
     """Weighted mean of ``(n, m)`` planes over the kept nights.
 
@@ -304,7 +305,7 @@ def combine(planes, kept, out, pixels):
         _combine_run(planes, kept, p0, min(CHUNK, m - p0), work, out)
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def validity(images, variances, flags, ignore_bits, cleaned, valid):
     """``valid`` (finite, positive variance, no ignored flag); ``cleaned``: images, 0 elsewhere.
 
@@ -320,7 +321,7 @@ def validity(images, variances, flags, ignore_bits, cleaned, valid):
             cleaned[i, p] = x if ok else np.float32(0.0)
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def block_medians(variance, valid, block, stride):
     """Lower median of the valid ``variance`` in each ``block`` x ``block`` block; NaN if none.
 
@@ -348,7 +349,7 @@ def block_medians(variance, valid, block, stride):
     return out
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _select(values, n, k):
     """The ``k``-th smallest of ``values[:n]``, reordering them (Hoare's selection, CACM 4, 321)."""
     lo, hi = 0, n - 1
@@ -373,7 +374,7 @@ def _select(values, n, k):
     return values[k]
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def bilinear_weights(grid, block, valid, scale, out):
     """``out = scale / B`` where ``valid`` (0 elsewhere), ``B`` bilinear in ``grid`` between blocks.
 
@@ -402,7 +403,7 @@ def bilinear_weights(grid, block, valid, scale, out):
     return out
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _node(position, first, spacing, n_nodes):
     """Index of the node before ``position`` and the fraction beyond it (extrapolating linearly)."""
     t = (position - first) / spacing
@@ -410,7 +411,7 @@ def _node(position, first, spacing, n_nodes):
     return k, t - k
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def shift_levels(images, valid, grids, first, spacing):
     """Subtract from each night of ``(n, n_y, n_x)`` images its level where valid, in place.
 

@@ -17,13 +17,14 @@ caller's planes, or merges them into a night's tile planes
 
 from __future__ import annotations
 
-import numba
 import numpy as np
+
+from pipeline._jit import njit
 
 __all__ = ["resample_columns", "resample_rows", "tensor_grid"]
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _keys(f, jacobian):
     """Keys (a = -0.5) weights of pixels ``floor(p) - 1 ... floor(p) + 2`` times ``jacobian``."""
     f2 = f * f
@@ -35,7 +36,7 @@ def _keys(f, jacobian):
     return w0, w1, w2, w3
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _tap(o, vo, sum_w2, wk, value, variance):
     """Add a tap of weight ``wk``: to the value, the variance and the sum of squared weights."""
     o += wk * value
@@ -44,7 +45,7 @@ def _tap(o, vo, sum_w2, wk, value, variance):
     return o, vo, sum_w2 + w2
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _sample(image, variance, flags, row, column, along_rows, n_line, w, outside):
     """Image, variance, flags and sum of squared weights of four taps along a line.
 
@@ -81,7 +82,7 @@ def _sample(image, variance, flags, row, column, along_rows, n_line, w, outside)
     return o, vo, mo, sum_w2
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _slope(before, here, after, at_start, at_end):
     """``|d position / d output pixel|`` as ``numpy.gradient`` takes it (one-sided at the ends)."""
     if at_start and at_end:
@@ -93,7 +94,7 @@ def _slope(before, here, after, at_start, at_end):
     return abs(after - before) / 2.0
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _grid_line(grid, i, shift, line):
     """Line ``i`` of the spline grid ``(indptr, indices, data, table)`` minus ``shift``."""
     indptr, indices, data, table = grid
@@ -110,7 +111,7 @@ def _grid_line(grid, i, shift, line):
             line[j] -= shift
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _slopes_along(line, jacobian):
     """:func:`_slope` at every pixel of ``line``, along it."""
     n = line.size
@@ -121,7 +122,7 @@ def _slopes_along(line, jacobian):
         jacobian[n - 1] = _slope(line[n - 2], line[n - 1], line[n - 1], False, True)
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _slopes_across(before, here, after, at_start, at_end, jacobian):
     """:func:`_slope` at every pixel of line ``here``, across the lines."""
     if at_start and at_end:
@@ -137,7 +138,7 @@ def _slopes_across(before, here, after, at_start, at_end, jacobian):
             jacobian[c] = abs(after[c] - before[c]) / 2.0
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _line_weights(positions, jacobian, first, weights):
     """First tap and the four weights (:func:`_keys`) of every position of a line.
 
@@ -154,7 +155,7 @@ def _line_weights(positions, jacobian, first, weights):
         weights[3, j] = w3
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def resample_rows(image, variance, flags, grid, shift, outside, out, vout, mout):
     """Pass along axis 1: output ``[r, j]`` samples ``image[r, position]``.
 
@@ -200,7 +201,7 @@ def resample_rows(image, variance, flags, grid, shift, outside, out, vout, mout)
     return sum_w2, sum_jacobian
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+@njit(nogil=True, inline="always")
 def _store(out, vout, mout, y, x, o, vo, mo, no_data, factor, merge):
     """Store a pixel (NaN without data), or merge it into a night's planes.
 
@@ -226,7 +227,7 @@ def _store(out, vout, mout, y, x, o, vo, mo, no_data, factor, merge):
     return False, 0.0
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def resample_columns(image, variance, flags, grid, shift, core, box, settings, planes, origin):
     """Pass along axis 0: output ``[i, c]`` samples ``image[position, c]``.
 
@@ -306,7 +307,7 @@ def resample_columns(image, variance, flags, grid, shift, core, box, settings, p
     return sum_w2, sum_jacobian, taken, inverse
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def tensor_grid(indptr, indices, data, table):
     """``B @ table`` for a sparse (CSR) ``B``: a tensor-product spline on a grid."""
     n_rows = indptr.size - 1

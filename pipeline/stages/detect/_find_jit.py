@@ -11,13 +11,14 @@ from __future__ import annotations
 
 import math
 
-import numba
 import numpy as np
+
+from pipeline._jit import njit
 
 __all__ = ["clip_sorted_rows", "label_pixels", "load_compiled"]
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _count_below(row, n, value, inclusive):
     """Number of the first ``n`` (sorted) values of ``row`` below ``value`` (or equal to it)."""
     lo, hi = 0, n
@@ -31,7 +32,7 @@ def _count_below(row, n, value, inclusive):
     return lo
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def clip_sorted_rows(ordered, sigma, maxiters, median, n_kept):
     """Sigma-clipped median of each sorted row (NaN last) of ``ordered`` (float32).
 
@@ -95,7 +96,7 @@ def clip_sorted_rows(ordered, sigma, maxiters, median, n_kept):
             median[r] = (row[first + k // 2 - 1] + row[first + k // 2]) / np.float32(2.0)
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _root(parent, i):
     """Root of ``i``'s tree in a union-find forest, halving the path on the way."""
     while parent[i] != i:
@@ -104,7 +105,7 @@ def _root(parent, i):
     return i
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def label_pixels(position, width, scratch):
     """8-connected regions of a set of pixels of a plane ``width`` pixels wide.
 

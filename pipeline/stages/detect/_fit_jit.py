@@ -20,13 +20,11 @@ each file's own stamp: see the note there.
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
+from pipeline._jit import njit
 from pipeline.stages.detect._pixel_gauss_jit import (
     boxed_flat,
-    boxed_profiles_compiled,
-    profiles_compiled,
     profiles_flat,
 )
 
@@ -70,7 +68,7 @@ POOR_GAIN = 0.25
 CONVERGED = 1e-2
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _keys(s):
     """The Keys (a = -0.5) cubic-convolution kernel at distance ``s``, pixels."""
     s = abs(s)
@@ -81,7 +79,7 @@ def _keys(s):
     return 0.0
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _taps(first, lattice, box):
     """Where rectify's sampling reads the profiles, and with what weights.
 
@@ -109,7 +107,7 @@ def _taps(first, lattice, box):
     return first - 2.0 + offset, 4, weights[:count], shifts[:count]
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _rows(
     first, n, centres, sigmas, weights, lattice, box, erf_table, gauss_table, transpose,
     derivatives=True,
@@ -166,7 +164,7 @@ def _rows(
     return out_v, out_d
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _columns(flat, stride, n, rows):
     """Rows ``stride`` apart in ``flat`` (their first ``n`` values) as columns, shape (n, rows)."""
     out = np.empty((n if rows else 0, rows))
@@ -177,7 +175,7 @@ def _columns(flat, stride, n, rows):
     return out
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _scaled_rows(flat, stride, n, weights, n_samples, n_sigmas):
     """Rows ``stride`` apart in ``flat`` times ``weights[j] / n_samples``, shape (J K, n)."""
     out = np.empty((n_sigmas * n_samples, n if n_sigmas else 0))
@@ -192,7 +190,7 @@ def _scaled_rows(flat, stride, n, weights, n_samples, n_sigmas):
     return out
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _unit(
     x0, y0, x_first, nx, y_first, ny, dx, dy, sigmas, weights, response, erf_table, gauss_table
 ):
@@ -212,7 +210,7 @@ def _unit(
     return np.dot(bt, a), np.dot(bt, da), np.dot(dbt, a)
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def model_compiled(
     x0, y0, x_first, nx, y_first, ny, dx, dy, sigmas, weights, response, erf_table, gauss_table
 ):
@@ -228,7 +226,7 @@ def model_compiled(
     return np.dot(bt, a)
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _assemble(p, d, sw, units, units_x, units_y):
     """Weighted residual and weighted Jacobian at ``p``.
 
@@ -255,7 +253,7 @@ def _assemble(p, d, sw, units, units_x, units_y):
     return r, jac
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _units(p, x_first, nx, y_first, ny, dx, dy, bounds, sigmas, weights, responses, erf, gauss):
     """Unit models of the stars at the positions in ``p`` and their derivatives, each (n, ny, nx).
 
@@ -280,7 +278,7 @@ def _units(p, x_first, nx, y_first, ny, dx, dy, bounds, sigmas, weights, respons
     return units, units_x, units_y
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def fit_compiled(
     d, sw, x_first, nx, y_first, ny, x, y, dx, dy, bounds, sigmas, weights, responses, erf, gauss,
     max_evaluations,
@@ -400,7 +398,7 @@ def fit_compiled(
     return p, jac, units, chi2, 0
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _last_step(p, step, r, jac, units, units_x, units_y):
     """``p + step``, the unit models there and the chi-square, to first order in ``step``.
 
@@ -424,7 +422,7 @@ def _last_step(p, step, r, jac, units, units_x, units_y):
     return p + step, moved, chi2
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _normal(jac, r):
     """``jac^T jac`` and ``jac^T r``.
 
@@ -444,7 +442,7 @@ def _normal(jac, r):
     return np.dot(jt, jac), g
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _solve(a, b):
     """``a^-1 b`` by Gaussian elimination with partial pivoting, and False if singular.
 
@@ -481,7 +479,7 @@ def _solve(a, b):
     return x, True
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def weighted_compiled(data, variance):
     """Weighted data ``data / sigma``, weights ``1 / sigma`` and the number of pixels used.
 
@@ -506,7 +504,7 @@ def weighted_compiled(data, variance):
     return sw, d, n_good
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def reduce_compiled(dx, dy, spacing):
     """:func:`pipeline.stages.detect._model.reduce_kernel`, compiled (its steps, in its order)."""
     n = dx.size
@@ -543,7 +541,7 @@ def reduce_compiled(dx, dy, spacing):
     return rx, ry
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def reduce_many_compiled(dx, dy, spacing):
     """:func:`reduce_compiled` of each row of ``dx``, ``dy`` (n, K), and each result's extent.
 
@@ -572,7 +570,7 @@ def reduce_many_compiled(dx, dy, spacing):
     return out_x, out_y, bounds, extents
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def errors_compiled(jac, scale):
     """Square roots of the diagonal of ``scale (jac^T jac)^-1``, and False if it is singular.
 
@@ -596,7 +594,7 @@ def errors_compiled(jac, scale):
     return out, True
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def subtract_models_compiled(
     image, x, y, flux, dx, dy, kernels, responses, sigmas, weights, reach, erf, gauss
 ):

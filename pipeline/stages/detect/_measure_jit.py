@@ -4,24 +4,20 @@ of many groups in one call.
 
 Kept apart so that numba is imported only when the detect stage first measures.
 
-numba's disk cache (``cache=True``) keeps each function's machine code with
-the code of the compiled functions it calls from other modules (the model of
-:mod:`~pipeline.stages.detect._fit_jit` and
-:mod:`~pipeline.stages.detect._pixel_gauss_jit`), but checks only this file's
-own time stamp: a change to those modules alone leaves this one's cached code
-as it was (measured: the group fits kept the old model's speed after the
-model was rewritten).  Edit this file with them (this paragraph was written
-with the model's vectorised rows), or clear the ``__pycache__`` ``*.nbi``/``*.nbc``
-files.
+Its functions call the model of :mod:`~pipeline.stages.detect._fit_jit` and
+:mod:`~pipeline.stages.detect._pixel_gauss_jit`, whose machine code numba
+caches with theirs: :mod:`pipeline._jit` keeps the cache in a folder per
+version of all the compiled modules, so a change to the model alone is
+compiled anew here too.
 """
 
 from __future__ import annotations
 
 import math
 
-import numba
 import numpy as np
 
+from pipeline._jit import njit
 from pipeline.stages.detect._fit_jit import (
     errors_compiled,
     fit_compiled,
@@ -32,7 +28,7 @@ from pipeline.stages.detect._fit_jit import (
 __all__ = ["fit_groups_compiled", "quadrupole_sums", "seeing_chi2_compiled"]
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def quadrupole_sums(data, variance, model, unit, x, y):
     """The sums of ``residual_quadrupole`` over the good pixels of a stamp.
 
@@ -66,7 +62,7 @@ def quadrupole_sums(data, variance, model, unit, x, y):
     return out
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _stamp_bits(mask, y0, y1, x0, x1, units):
     """OR of the mask bits over a stamp, and over each star's core in it.
 
@@ -99,7 +95,7 @@ def _stamp_bits(mask, y0, y1, x0, x1, units):
     return stamp, cores
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def fit_groups_compiled(
     residual, variance, mask, boxes, members, x, y, dx, dy, kernels, sigmas, weights, responses,
     erf, gauss, noise_correlation,
@@ -187,7 +183,7 @@ def fit_groups_compiled(
     return stars, quadrupoles, groups
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def seeing_chi2_compiled(data, variance, x, y, dx, dy, response, sigmas, weights, erf, gauss):
     """Reduced chi-square of a star's stamp against the model at each trial seeing width.
 

@@ -5,9 +5,9 @@ Kept apart so that numba is imported only when the detect model first runs.
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
+from pipeline._jit import njit
 from pipeline.stages.detect._pixel_gauss import (
     _ERF_SLOPE,
     _LEAST_BOX,
@@ -20,7 +20,7 @@ from pipeline.stages.detect._pixel_gauss import (
 __all__ = ["boxed_flat", "boxed_profiles_compiled", "profiles_compiled", "profiles_flat"]
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _erf_and_gauss(z, erf_table, gauss_table):
     """``erf(z / sqrt 2)`` and ``exp(-z^2 / 2)`` by Hermite interpolation in the tables.
 
@@ -50,7 +50,7 @@ def _erf_and_gauss(z, erf_table, gauss_table):
     return c, g
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _erf_and_gauss_many(zs, erf_table, gauss_table, c, g, scratch):
     """:func:`_erf_and_gauss` at each of ``zs``, into ``c`` and ``g`` (the same arithmetic).
 
@@ -102,7 +102,7 @@ def _erf_and_gauss_many(zs, erf_table, gauss_table, c, g, scratch):
         g[e] = gv if flag == 0.0 else 0.0
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def profiles_flat(first, n, centres, sigmas, erf_table, gauss_table, derivatives=True):
     """:func:`profiles_compiled`'s values, each sigma's rows laid end to end ``n + 1`` apart.
 
@@ -149,7 +149,7 @@ def profiles_flat(first, n, centres, sigmas, erf_table, gauss_table, derivatives
     return value, deriv, stride
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _unflatten(value, deriv, stride, size, n):
     """Flat profiles (:func:`profiles_flat`) as arrays of shape (J, K, n)."""
     out_v = np.empty((value.shape[0], size, n))
@@ -164,14 +164,14 @@ def _unflatten(value, deriv, stride, size, n):
     return out_v, out_d
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def profiles_compiled(first, n, centres, sigmas, erf_table, gauss_table):
     """Pixel-integrated Gaussians and their derivatives, shape (J, K, n); see ``pixel_profiles``."""
     value, deriv, stride = profiles_flat(first, n, centres, sigmas, erf_table, gauss_table)
     return _unflatten(value, deriv, stride, centres.size, n)
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def boxed_flat(first, n, centres, sigmas, box, erf_table, gauss_table, derivatives=True):
     """:func:`boxed_profiles_compiled`'s values laid out as :func:`profiles_flat`'s.
 
@@ -249,7 +249,7 @@ def boxed_flat(first, n, centres, sigmas, box, erf_table, gauss_table, derivativ
     return value, deriv, stride
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def _normal_sums_many(zs, erf_table, gauss_table, psi, cdf, pdf, c, g, scratch):
     """``Psi(z) = z Phi(z) + phi(z)`` (the normal CDF's integral), ``Phi(z)`` and ``phi(z)``.
 
@@ -263,7 +263,7 @@ def _normal_sums_many(zs, erf_table, gauss_table, psi, cdf, pdf, c, g, scratch):
         psi[e] = zs[e] * cdf[e] + pdf[e]
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def boxed_profiles_compiled(first, n, centres, sigmas, box, erf_table, gauss_table):
     """Pixel profiles of Gaussians averaged over a top-hat ``box`` pixels wide, and derivatives.
 

@@ -23,13 +23,14 @@ starts).
 
 from __future__ import annotations
 
-import numba
 import numpy as np
+
+from pipeline._jit import njit
 
 __all__ = ["resample_columns_block", "shift_rows_block", "zero_frequency_rows"]
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def resample_columns_block(
     src, vsrc, msrc, out, vout, mout, r0, r1, base, w, w2, nonzero, outside_bit
 ):
@@ -66,7 +67,7 @@ def resample_columns_block(
             mout[r, o] = flags
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def shift_rows_block(src, vsrc, msrc, out, vout, mout, x0, x1, base, w, w2, nonzero, outside_bit):
     """Pass 2 for output rows ``[x0, x1)``: row ``x`` of column ``y`` reads ``base[y] + x - 1 ...``.
 
@@ -100,7 +101,7 @@ def shift_rows_block(src, vsrc, msrc, out, vout, mout, x0, x1, base, w, w2, nonz
             mout[x, y] = flags
 
 
-@numba.njit(cache=True, nogil=True)
+@njit(nogil=True)
 def zero_frequency_rows(u, base_y, block, rows, total_w, lag_y, zero_frequency):
     """Add ``sum_l_y W(y) W(y + l_y) S_y(y, l_y)`` to ``zero_frequency[:, rows]``.
 
