@@ -9,16 +9,19 @@ ones.  Self-consistency checks on an invented scene.
 
 from __future__ import annotations
 
+import gc
 import tracemalloc
+import weakref
 
 import numpy as np
 import pytest
 from _detect_scene import render_scene
 from astropy.io import fits
 
+import pipeline.stages.detect as detect_module
 from pipeline.masks import MaskBit
 from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSION
-from pipeline.stages.detect import _planes, detect
+from pipeline.stages.detect import _planes, detect, detect_stretch
 
 #: Largest peak of detect's own allocations, in planes of the image (float64,
 #: ny x nx).  Measured 6.8 on the scene below (background, residual, the
@@ -140,3 +143,52 @@ def test_float32_planes_are_measured_as_their_float64_copies(float32_scene):
     assert np.array_equal(scratch[1][:, 6:], variance[:, 6:])
     plane = image.size * np.dtype(np.float64).itemsize
     assert peak32 < peak64 - 1.4 * plane
+
+
+def _stretch_products(image, variance, mask, kernels, x_start):
+    """A rectified stretch's products (in memory, as the store reads them) of the planes."""
+    header = fits.Header(
+        {"CTYPE1": "RA---TAN", "CTYPE2": "DEC--TAN", "CRVAL1": 10.0, "CRVAL2": 50.0}
+        | {"CDELT1": -1e-4, "CDELT2": 1e-4, "CRPIX1": 8.0, "CRPIX2": 4.0}
+        | {"WCSNAMEA": "NIGHT", "CRVAL1A": float(x_start), "CRPIX1A": 1.0, "CDELT1A": 1.0}
+    )
+    planes = {FLUX_EXTENSION: image, VARIANCE_EXTENSION: variance, FLAGS_EXTENSION: mask}
+    hdul = fits.HDUList(
+        [fits.PrimaryHDU()]
+        + [fits.ImageHDU(data.copy(), header=header, name=name) for name, data in planes.items()]
+    )
+    return {"image": hdul, "smear_kernels": kernels}
+
+
+def test_the_stage_drops_the_stretch_planes_once_padded(float32_scene, monkeypatch):
+    """The stage's unit frees its input planes once it has copied them (release=True).
+
+    The unit's inputs are its own (the runner reads them for it): its
+    stretch's planes are then held once, not twice, while it measures.
+    Self-consistency: the same catalogue as when they are kept, and no
+    reference to the planes left anywhere (a Planes view of them kept by
+    detect_stretch would keep them, 10 bytes per pixel).
+    """
+    image, variance, mask, kernels, _ = float32_scene
+    kept_products = _stretch_products(image, variance, mask, kernels, 1000)
+    released_products = _stretch_products(image, variance, mask, kernels, 1000)
+    planes = [
+        weakref.ref(released_products["image"][name].data)
+        for name in (FLUX_EXTENSION, VARIANCE_EXTENSION, FLAGS_EXTENSION)
+    ]
+    alive_while_measured = []
+
+    def measure(*args, **kwargs):  # detect, noting whether the planes are still held
+        gc.collect()
+        alive_while_measured.append([ref() is not None for ref in planes])
+        return detect(*args, **kwargs)
+
+    with np.errstate(all="ignore"):
+        kept = detect_stretch(kept_products)["catalog"]
+        monkeypatch.setattr(detect_module, "detect", measure)
+        released = detect_stretch(released_products, release=True)["catalog"]
+    assert len(kept) > 250
+    for name in kept.colnames:
+        assert np.array_equal(released[name], kept[name], equal_nan=True), name
+    assert alive_while_measured == [[False, False, False]]
+    assert kept_products["image"][FLUX_EXTENSION].data is not None  # left as it was

@@ -1036,6 +1036,12 @@ def _edge_planes(products, margin: int, last: bool, kernels=None) -> Planes | No
     )
 
 
+def _release_planes(hdul) -> None:
+    """Drop the image, variance and flag planes an HDU list holds (not its headers)."""
+    for name in (FLUX_EXTENSION, VARIANCE_EXTENSION, FLAGS_EXTENSION):
+        del hdul[name].data
+
+
 def _has_data(planes: Planes) -> bool:
     """Whether any pixel of a stretch holds data (not flagged as none, finite, variance > 0)."""
     no_data = has_bits(planes.mask, _NO_DATA) | ~np.isfinite(planes.image)
@@ -1061,6 +1067,7 @@ def detect_stretch(
     *,
     stretch_index: int = 0,
     kernels=None,
+    release: bool = False,
 ) -> dict:
     """Detect and measure one rectified stretch, with its neighbours' edge columns.
 
@@ -1082,6 +1089,14 @@ def detect_stretch(
         The smear kernels to model the stars of the stretch, of ``before``
         and of ``after`` with (rectify's record redone for another
         geometry); None: the ones rectify recorded.
+    release : bool
+        Drop the stretch's planes from ``products["image"]`` (``del
+        hdu.data``) once they are copied into the padded planes detect
+        measures: the detect stage's unit, whose inputs are its own, then
+        holds them once (10 bytes per pixel fewer while it runs, 42 MB on the
+        benchmark night's stretches).  Default False: ``products`` is left
+        as it is.
+
     Returns
     -------
     dict
@@ -1103,6 +1118,9 @@ def detect_stretch(
     else:  # detect reports it; a neighbour's edge alone would leave too few pixels to measure
         padded, own_columns = own, None
     own_span = own.x_start, own.x_stop
+    if release and own_columns is not None:  # the padded planes are copies
+        own = None
+        _release_planes(products["image"])
     result = detect(
         padded.image,
         padded.variance,
@@ -1134,8 +1152,14 @@ def detect_stretch(
 
 def _run(*, inputs, options: DetectOptions, context) -> dict:
     before, after = inputs[NEIGHBOURS]["rectify"]
+    # the unit's inputs are its own: the stretch's planes are dropped once padded
     out = detect_stretch(
-        inputs["rectify"], before, after, options, stretch_index=context.stretch.index
+        inputs["rectify"],
+        before,
+        after,
+        options,
+        stretch_index=context.stretch.index,
+        release=True,
     )
     # the options ride with the catalogue: astrometry's second pass measures again with them
     out["catalog"].meta["detect_options"] = options.model_dump(mode="json")
