@@ -168,18 +168,18 @@ def test_the_stage_lets_detect_reuse_its_padded_planes(seam_night, monkeypatch):
     plan = plan_stretches(SHAPE[1], STRETCH_ROWS, 0)
     context = dataclasses.replace(NightStore(config).context, stretch=plan[1], stretches=plan)
     raw = np.zeros((STRETCH_ROWS, 6), np.float32)
-    products = [
-        stand_in_rectify(
+
+    def rectified(stretch):
+        return stand_in_rectify(
             inputs={RAW_ROWS: raw},
             options=StandInOptions(),
-            context=dataclasses.replace(context, stretch=s),
+            context=dataclasses.replace(context, stretch=stretch),
         )
-        for s in plan[:3]
-    ]
-    stored = [p["image"]["FLUX"].data.copy() for p in products]
-    inputs = {"rectify": products[1], NEIGHBOURS: {"rectify": (products[0], products[2])}}
+
+    neighbours = (rectified(plan[0]), rectified(plan[2]))
+    stored = [p["image"]["FLUX"].data.copy() for p in neighbours]
     real, seen = detect.detect, []
-    catalogs = []
+    catalogs, owns = [], []
     for reuse in (True, False):
 
         def spy(*args, overwrite_input, reuse=reuse, **kwargs):
@@ -187,13 +187,18 @@ def test_the_stage_lets_detect_reuse_its_padded_planes(seam_night, monkeypatch):
             return real(*args, overwrite_input=overwrite_input and reuse, **kwargs)
 
         monkeypatch.setattr(detect, "detect", spy)
+        owns.append(rectified(plan[1]))  # the runner reads the unit's inputs for it
+        inputs = {"rectify": owns[-1], NEIGHBOURS: {"rectify": neighbours}}
         out = detect.STAGE.run(inputs=inputs, options=DetectOptions(), context=context)
         catalogs.append(out["catalog"])
-    # the padded planes are the stage's own copies: detect may overwrite them, and
-    # the rectified products it read stay as they were
+    # the padded planes are the stage's own copies: detect may overwrite them, the
+    # neighbours' rectified products stay as they were, and the unit's own
+    # product (its input, read for it) has its planes dropped once padded
     assert seen == [True, True]
-    for product, flux in zip(products, stored, strict=True):
+    for product, flux in zip(neighbours, stored, strict=True):
         assert np.array_equal(product["image"]["FLUX"].data, flux, equal_nan=True)
+    for own in owns:
+        assert "data" not in vars(own["image"]["FLUX"])
     assert len(catalogs[0]) == 1
     for name in catalogs[0].colnames:
         assert np.array_equal(catalogs[0][name], catalogs[1][name], equal_nan=True), name

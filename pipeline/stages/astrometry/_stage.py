@@ -209,6 +209,9 @@ def _remeasure(inputs, stretches, kernels: list, detect_options) -> QTable:
             detect_options,
             stretch_index=stretch.index,
             kernels=(kernels[i], *(None if k is None else kernels[k] for k in sides)),
+            # the stretch's planes, read for this pass (its image files stay open until
+            # the unit ends, holding what they read), are dropped once padded
+            release=True,
         )
         catalogs.append(out["catalog"])
         seeing.append(out["seeing"])

@@ -74,6 +74,12 @@ def padded_stretch(
     same number of rows; otherwise that side is padded with no-data columns
     (flag OUTSIDE), so sources there are flagged EDGE.
 
+    The image and variance planes are float32 (native byte order) when the
+    stretch's and the neighbours' edges are (a rectified product's, as
+    stored; :func:`~pipeline.stages.detect.detect` keeps them so), else
+    float64; each padded plane is made once and filled in place (no copy
+    of the stretch's planes in between).
+
     Returns
     -------
     planes : Planes
@@ -82,54 +88,69 @@ def padded_stretch(
     own_columns : (int, int)
         Array columns ``[a, b)`` of the stretch's own columns.
     """
-    ny = own.image.shape[0]
+    ny, nx = own.image.shape[0], own.image.shape[1]
 
-    def side(neighbour, take_last: bool):
+    def edge(neighbour, take_last: bool):
+        """The neighbour's edge planes (views), or None if it does not adjoin."""
         ok = (
             neighbour is not None
             and neighbour.image.shape[0] == ny
             and (neighbour.x_stop == own.x_start if take_last else neighbour.x_start == own.x_stop)
         )
         if not ok:
-            return (
-                np.full((ny, margin), np.nan),
-                np.full((ny, margin), np.nan),
-                np.full((ny, margin), int(MaskBit.OUTSIDE), MASK_DTYPE),
-                None,
-            )
+            return None
         cols = (
             slice(max(neighbour.image.shape[1] - margin, 0), None)
             if take_last
             else slice(0, margin)
         )
-        planes = [
+        return [
             np.asarray(a)[:, cols] for a in (neighbour.image, neighbour.variance, neighbour.mask)
         ]
-        width = planes[0].shape[1]
-        if width < margin:  # a narrow neighbour: pad the rest with no data
-            pad = margin - width
-            fill = [
-                np.full((ny, pad), np.nan),
-                np.full((ny, pad), np.nan),
-                np.full((ny, pad), int(MaskBit.OUTSIDE), MASK_DTYPE),
-            ]
-            planes = [
-                np.hstack([f, p]) if take_last else np.hstack([p, f])
-                for f, p in zip(fill, planes, strict=True)
-            ]
-        return (*planes, neighbour.kernels)
 
-    lo = side(left, True)
-    hi = side(right, False)
-    image = np.hstack([lo[0], np.asarray(own.image, dtype=float), hi[0]])
-    variance = np.hstack([lo[1], np.asarray(own.variance, dtype=float), hi[1]])
-    mask = np.hstack([lo[2], np.asarray(own.mask).astype(MASK_DTYPE), hi[2]])
+    lo, hi = edge(left, True), edge(right, False)
+    sources = [own.image, own.variance] + [p for e in (lo, hi) if e is not None for p in e[:2]]
+    single = all(np.asarray(a).dtype.kind == "f" and np.asarray(a).itemsize == 4 for a in sources)
+    dtype = np.float32 if single else np.float64
+    width = nx + 2 * margin
+    image = np.empty((ny, width), dtype)
+    variance = np.empty((ny, width), dtype)
+    mask = np.empty((ny, width), MASK_DTYPE)
+    for planes, columns, take_last in (
+        (lo, slice(0, margin), True),
+        ([own.image, own.variance, own.mask], slice(margin, margin + nx), None),
+        (hi, slice(margin + nx, width), False),
+    ):
+        targets = (image[:, columns], variance[:, columns], mask[:, columns])
+        n = columns.stop - columns.start
+        if planes is None:
+            got = 0
+        else:
+            got = np.asarray(planes[0]).shape[1]
+            # a narrow neighbour: its columns next to the stretch, no data beyond
+            place = slice(n - got, n) if take_last else slice(0, got)
+            for target, plane in zip(targets, planes, strict=True):
+                target[:, place] = plane
+        if got < n:  # no neighbour, or a narrow one: the rest has no data
+            rest = slice(0, n - got) if take_last else slice(got, n)
+            targets[0][:, rest] = np.nan
+            targets[1][:, rest] = np.nan
+            targets[2][:, rest] = int(MaskBit.OUTSIDE)
     kernels = vstack(
-        [k for k in (lo[3], own.kernels, hi[3]) if k is not None], metadata_conflicts="silent"
+        [
+            k
+            for k in (
+                left.kernels if lo is not None else None,
+                own.kernels,
+                right.kernels if hi is not None else None,
+            )
+            if k is not None
+        ],
+        metadata_conflicts="silent",
     )
     wcs = None
     if own.wcs is not None:
         wcs = own.wcs.deepcopy()
         wcs.wcs.crpix[0] += margin
     planes = Planes(image, variance, mask, own.x_start - margin, kernels, wcs)
-    return planes, (margin, margin + own.image.shape[1])
+    return planes, (margin, margin + nx)
