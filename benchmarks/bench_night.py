@@ -296,6 +296,11 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--no-dask", action="store_true", help="skip the dask LocalCluster runs")
     args = parser.parse_args(argv)
+    if args.blocks <= args.short_blocks:
+        parser.error(
+            f"--blocks ({args.blocks}) must be more than --short-blocks ({args.short_blocks}): "
+            "the fixed cost is the intercept through the short and the long night"
+        )
     print(machine_state(), flush=True)
     ENVIRONMENT.clear()
     ENVIRONMENT.update(with_bytecode_cache(args.dir))
