@@ -55,10 +55,11 @@ def _erf_and_gauss_many(zs, erf_table, gauss_table, c, g, scratch):
     """:func:`_erf_and_gauss` at each of ``zs``, into ``c`` and ``g`` (the same arithmetic).
 
     In two loops: the table look-ups, one value at a time, into
-    ``scratch`` (shape (6, zs.size)); then the Hermite interpolation,
-    which the compiler vectorises (a loop that reads the tables at
-    computed indices is not, the gathers' cost being judged too high), 1.6
-    times faster than :func:`_erf_and_gauss` for each value in turn.
+    ``scratch`` (shape (7, zs.size), the last row the table indices); then
+    the Hermite interpolation, which the compiler vectorises (a loop that
+    reads the tables at computed indices is not, the gathers' cost being
+    judged too high), 1.6 times faster than :func:`_erf_and_gauss` for each
+    value in turn.
     """
     m = zs.size
     last = erf_table.size - 2
