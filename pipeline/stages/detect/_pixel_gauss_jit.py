@@ -21,45 +21,19 @@ __all__ = ["boxed_flat", "boxed_profiles_compiled", "profiles_compiled", "profil
 
 
 @njit(nogil=True)
-def _erf_and_gauss(z, erf_table, gauss_table):
-    """``erf(z / sqrt 2)`` and ``exp(-z^2 / 2)`` by Hermite interpolation in the tables.
-
-    One value: the reference that :func:`_erf_and_gauss_many` (what the
-    profiles use) equals to the bit (the tests' one-edge-at-a-time loop).
-    """
-    u = (z + _REACH) * _NODES_PER_SIGMA
-    if u <= 0.0:
-        return -1.0, 0.0
-    i = int(u)
-    if i >= erf_table.size - 1:
-        return 1.0, 0.0
-    f = u - i
-    f2 = f * f
-    f3 = f2 * f
-    h00 = 2.0 * f3 - 3.0 * f2 + 1.0
-    h10 = f3 - 2.0 * f2 + f
-    h01 = -2.0 * f3 + 3.0 * f2
-    h11 = f3 - f2
-    step = 1.0 / _NODES_PER_SIGMA
-    g0 = gauss_table[i]
-    g1 = gauss_table[i + 1]
-    z0 = i * step - _REACH
-    # d erf(z / sqrt 2) / dz = sqrt(2 / pi) exp(-z^2 / 2); d exp(-z^2 / 2) / dz = -z exp(..)
-    c = h00 * erf_table[i] + h01 * erf_table[i + 1] + step * _ERF_SLOPE * (h10 * g0 + h11 * g1)
-    g = h00 * g0 + h01 * g1 - step * (h10 * z0 * g0 + h11 * (z0 + step) * g1)
-    return c, g
-
-
-@njit(nogil=True)
 def _erf_and_gauss_many(zs, erf_table, gauss_table, c, g, scratch):
-    """:func:`_erf_and_gauss` at each of ``zs``, into ``c`` and ``g`` (the same arithmetic).
+    """``erf(z / sqrt 2)`` and ``exp(-z^2 / 2)`` at each of ``zs``, into ``c`` and ``g``.
+
+    Hermite interpolation in the tables (their values and slopes at nodes
+    ``1 / _NODES_PER_SIGMA`` apart); -1 and 0 below the tables, 1 and 0
+    above.
 
     In two loops: the table look-ups, one value at a time, into
     ``scratch`` (shape (7, zs.size), the last row the table indices); then
     the Hermite interpolation, which the compiler vectorises (a loop that
     reads the tables at computed indices is not, the gathers' cost being
-    judged too high), 1.6 times faster than :func:`_erf_and_gauss` for each
-    value in turn.
+    judged too high), 1.6 times faster than one value at a time (the
+    tests' reference, which this equals to the bit).
     """
     m = zs.size
     last = erf_table.size - 2
