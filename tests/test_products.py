@@ -30,6 +30,7 @@ from astropy.wcs import WCS
 from packaging.version import Version
 
 import pipeline
+from pipeline import products
 from pipeline.masks import MaskBit
 from pipeline.products import flag_bits_from_header
 from pipeline.runner._ecsv import write_ecsv
@@ -447,3 +448,39 @@ def test_the_demo_night_is_solved_in_one_pass(demo):
     change = only["kernel_change_px"]
     assert change <= only["threshold_px"] or change <= 3 * only["kernel_change_error_px"], only
     assert only["next"] == "none"
+
+
+@pytest.mark.parametrize("read_bytes", [4 << 20, 3 * 2 * 37, 1])
+@pytest.mark.parametrize("columns", [slice(0, 5), slice(30, 37), slice(12, 20), slice(35, 99)])
+def test_plane_columns_match_astropy(tmp_path, monkeypatch, read_bytes, columns):
+    # The reference is astropy's own reading of the planes (``.data``): the
+    # strips hold the same values and dtypes, float32 and the flags' uint16
+    # (stored as int16 with BZERO = 32768, FITS Standard 4.0 sec. 5.2.5),
+    # whether read in one piece, a few rows (3 * 2 * 37: three rows of int16)
+    # or one row at a time.
+    monkeypatch.setattr(products, "_READ_BYTES", read_bytes)
+    rng = np.random.default_rng(5)
+    image = rng.normal(size=(23, 37)).astype(np.float32)
+    flags = rng.integers(0, 65536, size=(23, 37)).astype(np.uint16)
+    path = tmp_path / "planes.fits"
+    fits.HDUList(
+        [fits.PrimaryHDU(), fits.ImageHDU(image, name="FLUX"), fits.ImageHDU(flags, name="FLAGS")]
+    ).writeto(path)
+    with fits.open(path, memmap=False, lazy_load_hdus=True) as hdul:
+        for name, plane in (("FLUX", image), ("FLAGS", flags)):
+            strip = products.plane_columns(hdul[name], columns)
+            assert strip.dtype == plane.dtype
+            np.testing.assert_array_equal(strip, plane[:, columns])
+    # in memory (no file): the same strips, sliced
+    memory = fits.ImageHDU(flags, name="FLAGS")
+    np.testing.assert_array_equal(products.plane_columns(memory, columns), flags[:, columns])
+
+
+def test_plane_columns_rejects_a_step(tmp_path):
+    path = tmp_path / "plane.fits"
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(np.zeros((4, 6), np.float32))]).writeto(path)
+    with (
+        fits.open(path, memmap=False, lazy_load_hdus=True) as hdul,
+        pytest.raises(ValueError, match="contiguous columns"),
+    ):
+        products.plane_columns(hdul[1], slice(0, 6, 2))

@@ -104,12 +104,15 @@ requires.  Besides ``inputs["rectify"]`` (its own stretch) it then gets
 stretches ``index - 1`` and ``index + 1`` if they lie in the same segment
 (stretches of different segments never adjoin), else None.  Each is a
 read-only mapping that reads a product only when it is looked up; an image
-product (``HDUList``) comes opened lazily, so ``hdul["FLUX"].section[:, :20]``
-loads only those columns (``.data`` loads the whole plane; the file is still
-read through once, to check its SHA-256, without being kept), and the
+product (``HDUList``) comes opened lazily, so
+``pipeline.products.plane_columns(hdul["FLUX"], slice(0, 20))`` keeps only
+those columns (``.data`` keeps the whole plane; astropy's ``section[:, :20]``
+reads such a strip row by row, slowly; the file is still read through once,
+to check its SHA-256, without being kept), and the
 runner closes the files after the stage returns (so return no neighbour's HDU
 as a product).  Called from Python with in-memory HDU lists, a stage gets no
-file (``hdul.filename()`` is None, ``section`` does not work): slice ``.data``.
+file (``hdul.filename()`` is None, ``section`` does not work;
+``plane_columns`` slices ``.data`` then).
 A neighbour whose upstream unit failed, is blocked or has not run is handed
 over as None too: the stretch still runs (the stage treats that side as
 having no data), and the runner reports ``ran without neighbour s0004

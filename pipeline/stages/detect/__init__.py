@@ -43,7 +43,12 @@ from pydantic import BaseModel, ConfigDict, Field
 from pipeline._lazy import lazy_exports
 from pipeline.exceptions import DetectWarning
 from pipeline.masks import MaskBit, has_bits
-from pipeline.products import FLAGS_EXTENSION, FLUX_EXTENSION, VARIANCE_EXTENSION
+from pipeline.products import (
+    FLAGS_EXTENSION,
+    FLUX_EXTENSION,
+    VARIANCE_EXTENSION,
+    plane_columns,
+)
 from pipeline.stages.base import NEIGHBOURS, PROBLEMS, Stage
 from pipeline.stages.detect._find import (
     background_model,
@@ -1009,8 +1014,9 @@ def _planes(products, kernels=None) -> Planes:
 def _edge_planes(products, margin: int, last: bool, kernels=None) -> Planes | None:
     """The first (or ``last``) ``margin`` columns of a neighbouring rectified stretch.
 
-    Reads only those columns of its planes (``section``), so a stretch's
-    unit holds its own planes and two thin edges, whatever the night's length.
+    Keeps only those columns of its planes (:func:`~pipeline.products.plane_columns`),
+    so a stretch's unit holds its own planes and two thin edges, whatever the
+    night's length.
     """
     if products is None:
         return None
@@ -1018,11 +1024,8 @@ def _edge_planes(products, margin: int, last: bool, kernels=None) -> Planes | No
     header = hdul[FLUX_EXTENSION].header
     n_columns = int(header["NAXIS1"])
     columns = slice(max(n_columns - margin, 0), n_columns) if last else slice(0, margin)
-    # From a file, ``section`` reads only those columns; in memory, slice the data.
     planes = [
-        np.asarray(
-            hdul[name].section[:, columns] if hdul.filename() else hdul[name].data[:, columns]
-        )
+        plane_columns(hdul[name], columns)
         for name in (FLUX_EXTENSION, VARIANCE_EXTENSION, FLAGS_EXTENSION)
     ]
     x_start = _night_column(header) + columns.indices(n_columns)[0]
