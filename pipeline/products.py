@@ -342,8 +342,9 @@ def plane_columns(hdu: fits.ImageHDU, columns: slice) -> np.ndarray:
         raise ValueError(f"plane_columns reads contiguous columns; got step {step} in {columns}.")
     row_bytes = max(n_columns * abs(hdu.header["BITPIX"]) // 8, 1)
     rows = max(_READ_BYTES // row_bytes, 1)
+    # each strip copied out at once, so that its rows' block can go
     parts = [
-        np.asarray(hdu.section[first : min(first + rows, n_rows), :])[:, start:stop]
+        np.asarray(hdu.section[first : min(first + rows, n_rows), :])[:, start:stop].copy()
         for first in range(0, n_rows, rows)
     ]
     if not parts:
