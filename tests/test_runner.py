@@ -1495,6 +1495,37 @@ def test_local_pool_workers_get_one_blas_thread_unless_the_run_sets_it(monkeypat
     assert _thread_settings(None) == (None, "3", None)
 
 
+def _blas_threads(_task) -> set[int]:
+    """The thread counts of the BLAS libraries loaded in this process (threadpoolctl)."""
+    from threadpoolctl import threadpool_info
+
+    return {info["num_threads"] for info in threadpool_info() if info["user_api"] == "blas"}
+
+
+@pytest.mark.parametrize("set_by_user", [False, True])
+def test_units_computed_in_this_process_use_a_workers_blas_threads(monkeypatch, set_by_user):
+    """OpenBLAS's results change in their last bits with its thread count, so a
+    unit computed in the run's own process (serial, one unit at a time) uses the
+    one thread a worker has, unless the environment sets the count (then this
+    process has it too).  The run's own count is as it was afterwards."""
+    from threadpoolctl import threadpool_limits
+
+    for name in _executors.WORKER_THREAD_LIMITS:
+        monkeypatch.delenv(name, raising=False)
+    if set_by_user:
+        monkeypatch.setenv("OPENBLAS_NUM_THREADS", "2")
+    expected = {2} if set_by_user else {1}
+    with threadpool_limits(limits=2, user_api="blas"):  # as on a machine of 2 cores or more
+        assert _blas_threads(None) == {2}
+        seen = [next(iter(_executors.Executor().map(_blas_threads, [0], None)))]
+        _executors.Executor().flow(_blas_threads, [0], None, lambda out: seen.append(out) or [])
+        with _executors.LocalPoolExecutor(2) as executor:
+            executor.fit(1)  # one unit at a time: here
+            seen += list(executor.map(_blas_threads, [0], None))
+        assert seen == [expected] * 3
+        assert _blas_threads(None) == {2}
+
+
 def test_idle_workers_of_the_runs_own_cluster_are_ended_and_not_started_again() -> None:
     """Closing the cluster would wait up to 4 s for each worker to exit; the run
     kills its idle workers instead, and their nannies must not start them again."""

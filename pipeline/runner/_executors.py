@@ -27,7 +27,9 @@ stopping the batch.
   waited for: a worker's interpreter takes seconds to exit with the
   libraries it loaded, and it has nothing left to write.  The workers get
   one BLAS thread each unless the run's environment sets the count
-  (:data:`WORKER_THREAD_LIMITS`).
+  (:data:`WORKER_THREAD_LIMITS`), and so do the units a run computes in its
+  own process (here and ``serial``, :func:`threads_of_a_worker`): a product
+  does not depend on the process that made it.
 * ``dask``: a :class:`distributed.Client` connected to ``run.scheduler``, or,
   without a scheduler address, to a ``distributed.LocalCluster`` of
   ``run.workers`` processes started for the run.  Workers must see the same
@@ -233,6 +235,28 @@ def _environment(defaults: dict[str, str]) -> Iterator[None]:
             os.environ.pop(name, None)
 
 
+@contextlib.contextmanager
+def threads_of_a_worker() -> Iterator[None]:
+    """Within the block, BLAS computes with the threads a pool worker has.
+
+    A worker starts with :data:`WORKER_THREAD_LIMITS` (one BLAS thread) unless
+    the run's environment sets the counts; this process loaded its BLAS with
+    one thread per core.  OpenBLAS's results change in their last bits with
+    its thread count (the astrometry's transparency fit moved ~1e-10 between
+    a unit computed here and in a worker), so the units a run computes here
+    (one unit at a time, the serial executor) use a worker's count: a product
+    is the same whichever process made it.  Nothing is limited when the
+    environment sets a count (this process then has it too).
+    """
+    if any(name in os.environ for name in WORKER_THREAD_LIMITS):
+        yield
+        return
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
+
+
 def _unpicklable(task: Any) -> str | None:
     """Why ``task`` cannot be sent to another process, or None if it can."""
     try:
@@ -268,6 +292,12 @@ def _start_worker(parent_pid: int, modules: Sequence[str], plan: WarmPlan = ()) 
     """Initializer of a pool worker: end with the run, then :func:`prepare_worker`."""
     end_with_parent(parent_pid)
     prepare_worker(modules, plan)
+
+
+def _here(fn: Callable[[Any], Outcome], task: Any) -> Outcome:
+    """``fn(task)`` in this process, with a worker's BLAS threads (:func:`threads_of_a_worker`)."""
+    with threads_of_a_worker():
+        return fn(task)
 
 
 def _ready() -> None:
@@ -316,12 +346,12 @@ class Executor:
         while ready:
             if key is not None:
                 ready.sort(key=key)
-            ready.extend(on_done(fn(ready.pop(0))))
+            ready.extend(on_done(_here(fn, ready.pop(0))))
 
     def map(self, fn: Callable[[Any], Outcome], tasks: Sequence[Any], on_error: OnError):
         """Yield ``fn(task)`` for every task, in completion order."""
         for task in tasks:
-            yield fn(task)
+            yield _here(fn, task)
 
     def close(self) -> None:
         """Release workers."""
