@@ -147,6 +147,56 @@ def test_each_group_takes_its_own_newton_steps():
     assert together[0][0][0] == 10.0
 
 
+def test_a_given_first_evaluation_replaces_the_first_step_s_call():
+    """invert_groups with ``first`` (strip_of of the starting points, made by the
+    caller) makes one call fewer and ends on the same bits as without it."""
+    from pipeline.stages.astrometry._solve import invert_groups
+
+    calls = []
+
+    def strip_of(x, y):
+        calls.append(x.size)
+        return x + x * x / 1000.0, y + 0.01 * x
+
+    exact = np.array([120.0, 220.0, 320.0])
+    groups = [
+        (*strip_of(exact, np.ones(3)), np.array([100.0, 200.0, 300.0]), np.ones(3)),
+        (*strip_of(np.array([50.0]), np.zeros(1)), np.array([45.0]), np.zeros(1)),
+    ]
+    calls.clear()
+    alone = invert_groups(groups, strip_of)
+    n_alone = len(calls)
+    starts = (np.r_[groups[0][2], groups[1][2]], np.r_[groups[0][3], groups[1][3]])
+    first = strip_of(*starts)
+    calls.clear()
+    given = invert_groups(groups, strip_of, first=first)
+    assert len(calls) == n_alone - 1
+    for (x, y), (x0, y0) in zip(given, alone, strict=True):
+        np.testing.assert_array_equal(x, x0)
+        np.testing.assert_array_equal(y, y0)
+
+
+def test_remembered_tracks_serve_only_the_same_positions(solution):
+    """The solution remembers the last positions' tracks (sky_from_rectified, then
+    position_errors of the same detections): positions of the same shape but
+    other values get their own, and the same ones the same bits as afresh."""
+    rng = np.random.default_rng(3)
+    n_y = solution.frame.n_y
+    x1, y1 = rng.uniform(1000, 3000, 50), rng.uniform(0, n_y, 50)
+    x2, y2 = x1 + 7.0, y1.copy()
+    err = np.full(50, 0.05)
+    solution.__dict__.pop("_tracks_memo", None)
+    fresh = solution.position_errors(x2, y2, err, err)
+    fresh_sky = solution.sky_from_rectified(x1, y1)
+    solution.__dict__.pop("_tracks_memo", None)
+    solution.sky_from_rectified(x1, y1)  # remembers x1's tracks
+    for got, want in zip(solution.position_errors(x2, y2, err, err), fresh, strict=True):
+        np.testing.assert_array_equal(got, want)
+    solution.position_errors(x1, y1, err, err)  # remembers x1's again
+    for got, want in zip(solution.sky_from_rectified(x1, y1), fresh_sky, strict=True):
+        np.testing.assert_array_equal(got, want)
+
+
 def test_stretch_wcs_cards_from_the_night_s_pass_are_each_stretch_s_own(solution):
     """The stage computes every stretch's solved points in one pass (wcs_sky);
     each stretch's cards are the ones it gets alone."""
