@@ -411,9 +411,11 @@ STAGE = Stage(
     partial_inputs=True,
     streams=("reference.path",),
     description="Fit the night's geometry to a reference catalogue; a solved WCS per stretch.",
-    # the geometry model, the fits, the reference reader, detect's for the second pass
+    # the geometry model, the fits, the reference reader, the predictor's compiled
+    # loop, detect's for the second pass
     warm=(
         *RECTIFY_WARM,
+        "pipeline.stages.astrometry._model_jit:load_compiled",
         "scipy.linalg",
         "scipy.optimize",
         "pyarrow.csv",
