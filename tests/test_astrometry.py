@@ -138,6 +138,28 @@ def test_the_compiled_pass_is_the_numpy_arithmetic_to_the_bit(monkeypatch):
         np.testing.assert_array_equal(a, b)
 
 
+def test_tracks_made_in_two_threads_are_the_ones_made_in_one():
+    """sky_tracks with a helper thread (half of the axis map's chunks there) gives
+    the coefficients it gives alone, to the bit, over several chunks."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    from pipeline.geometry.zenith import _CHUNK
+    from pipeline.stages.astrometry._model import sky_tracks
+
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 2500)
+    predictor = GeometryPredictor(nominal)
+    axis = predictor._axis_for(float(t_mid.min()) - 200.0, float(t_mid.max()) + 200.0)
+    assert 9 * ra.size > 4 * _CHUNK  # several chunks each side
+    # the split first: a chunk it missed would not find the other's values in
+    # memory just freed
+    with ThreadPoolExecutor(max_workers=1) as helper:
+        two = sky_tracks(axis, ra, dec, t_mid, predictor.half_width, helper=helper)
+    alone = sky_tracks(axis, ra, dec, t_mid, predictor.half_width)
+    np.testing.assert_array_equal(two.coef, alone.coef)
+    np.testing.assert_array_equal(two.t_centre, alone.t_centre)
+
+
 @pytest.mark.parametrize("latitude", LATITUDES)
 def test_east_tilt_acts_as_clock_and_rotation(latitude):
     """An east tilt tau equals a clock offset tau/(omega cos phi) and a rotation tau tan phi.

@@ -173,8 +173,9 @@ def _helper_thread(pid: int | None = None):
     thread gets its own).
 
     Night-wide, astrometry runs on one worker while the pool's other core
-    idles; the compiled pass over the tracks releases the GIL, so half of
-    each large prediction runs here.
+    idles; the compiled pass over the tracks releases the GIL, and so do
+    numpy's loops in the sky tracks' evaluations, so half of each large
+    prediction and of each large set of tracks runs here.
     """
     try:
         n_cpu = len(os.sched_getaffinity(0))
@@ -239,6 +240,8 @@ def sky_tracks(
     t_centre: ArrayLike,
     half_width: float,
     degree: int = _TRACK_DEGREE,
+    *,
+    helper=None,
 ) -> SkyTracks:
     """Fit each star's focal-plane path over ``t_centre +- half_width``.
 
@@ -256,6 +259,9 @@ def sky_tracks(
         Polynomial degree; 8 keeps the interpolation error below 1e-6 px over
         windows of a few minutes (the paths are smooth: drift, bow, slow
         changes of precession and aberration).
+    helper : concurrent.futures.Executor or None, optional
+        Evaluates half of the points in another thread (see
+        :meth:`ZenithAxis.icrs_to_focal`; the same values either way).
 
     Returns
     -------
@@ -267,7 +273,7 @@ def sky_tracks(
     k = np.arange(degree + 1)
     nodes = np.cos(np.pi * (k + 0.5) / (degree + 1))
     xi, eta = axis.icrs_to_focal(
-        ra[:, None], dec[:, None], t_centre[:, None] + half_width * nodes[None, :]
+        ra[:, None], dec[:, None], t_centre[:, None] + half_width * nodes[None, :], helper=helper
     )
     vander_inv = np.linalg.inv(np.vander(nodes, degree + 1))  # highest power first
     coef = np.stack([vander_inv @ xi.T, vander_inv @ eta.T], axis=1)
@@ -388,7 +394,9 @@ class GeometryPredictor:
         axis = self._axis_for(
             float(t_mid_guess.min()) - self.half_width, float(t_mid_guess.max()) + self.half_width
         )
-        return sky_tracks(axis, ra, dec, t_mid_guess, self.half_width)
+        return sky_tracks(
+            axis, ra, dec, t_mid_guess, self.half_width, helper=_helper_thread(os.getpid())
+        )
 
     def tracks_from_rectified(self, frame, x: ArrayLike, y: ArrayLike) -> SkyTracks:
         """Tracks of the sky positions of rectified pixels ``(x, y)`` of ``frame``."""
