@@ -147,6 +147,55 @@ def test_each_group_takes_its_own_newton_steps():
     assert together[0][0][0] == 10.0
 
 
+def test_the_kernel_tables_are_read_beside_the_first_solution(monkeypatch):
+    """_solve_passes reads the stretches' smear-kernel tables in a thread while
+    the first solution is computed: they come in the stretches' order, and
+    when the solution fails the reading thread has ended with it (no thread
+    outlives the unit)."""
+    import threading
+    import time
+    from types import SimpleNamespace
+
+    from pipeline.stages.astrometry import _stage
+
+    looked_up = []
+
+    class Slow(dict):
+        def __getitem__(self, name):
+            time.sleep(0.05)
+            index = dict.__getitem__(self, "index")
+            looked_up.append((name, index))
+            return ("kernels of", index)
+
+    inputs = {
+        "catalog": {"catalog": QTable(meta={"detect_options": {}})},
+        "rectify": [Slow(index=i) for i in range(4)],
+    }
+    stretches = [SimpleNamespace(index=i) for i in range(4)]
+    options = AstrometryStageOptions()
+
+    def fails(*args, **kwargs):
+        raise AstrometryError("too few", {})
+
+    monkeypatch.setattr(_stage, "solve_catalog", fails)
+    with pytest.raises(AstrometryError):
+        _stage._solve_passes(inputs, stretches, None, None, options, {"ra": 0, "dec": 0}, None)
+    assert looked_up == [("smear_kernels", i) for i in range(4)]
+    assert not [t for t in threading.enumerate() if t.name.startswith("astrometry-kernels")]
+
+    seen = []
+
+    def stop(kernels, *args, **kwargs):
+        seen.append(list(kernels))
+        raise RuntimeError("stop here")
+
+    monkeypatch.setattr(_stage, "solve_catalog", lambda *a, **k: SimpleNamespace(solution=None))
+    monkeypatch.setattr(_stage, "solved_kernels_of_stretches", stop)
+    with pytest.raises(RuntimeError, match="stop here"):
+        _stage._solve_passes(inputs, stretches, None, None, options, {"ra": 0, "dec": 0}, None)
+    assert seen == [[("kernels of", i) for i in range(4)]]
+
+
 def test_a_given_first_evaluation_replaces_the_first_step_s_call():
     """invert_groups with ``first`` (strip_of of the starting points, made by the
     caller) makes one call fewer and ends on the same bits as without it."""
