@@ -225,24 +225,15 @@ def test_a_given_first_evaluation_replaces_the_first_step_s_call():
         np.testing.assert_array_equal(y, y0)
 
 
-def test_remembered_tracks_serve_only_the_same_positions(solution):
-    """The solution remembers the last positions' tracks (sky_from_rectified, then
-    position_errors of the same detections): positions of the same shape but
-    other values get their own, and the same ones the same bits as afresh."""
+def test_sky_and_errors_are_those_made_apart(solution):
+    """sky_and_errors (one set of tracks for both) gives the bits of
+    sky_from_rectified and position_errors made apart."""
     rng = np.random.default_rng(3)
-    n_y = solution.frame.n_y
-    x1, y1 = rng.uniform(1000, 3000, 50), rng.uniform(0, n_y, 50)
-    x2, y2 = x1 + 7.0, y1.copy()
-    err = np.full(50, 0.05)
-    solution.__dict__.pop("_tracks_memo", None)
-    fresh = solution.position_errors(x2, y2, err, err)
-    fresh_sky = solution.sky_from_rectified(x1, y1)
-    solution.__dict__.pop("_tracks_memo", None)
-    solution.sky_from_rectified(x1, y1)  # remembers x1's tracks
-    for got, want in zip(solution.position_errors(x2, y2, err, err), fresh, strict=True):
-        np.testing.assert_array_equal(got, want)
-    solution.position_errors(x1, y1, err, err)  # remembers x1's again
-    for got, want in zip(solution.sky_from_rectified(x1, y1), fresh_sky, strict=True):
+    x, y = rng.uniform(1000, 3000, 50), rng.uniform(0, solution.frame.n_y, 50)
+    x_err, y_err = rng.uniform(0.01, 0.1, 50), rng.uniform(0.01, 0.1, 50)
+    together = solution.sky_and_errors(x, y, x_err, y_err)
+    apart = (*solution.sky_from_rectified(x, y), *solution.position_errors(x, y, x_err, y_err))
+    for got, want in zip(together, apart, strict=True):
         np.testing.assert_array_equal(got, want)
 
 

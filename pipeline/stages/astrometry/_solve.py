@@ -597,26 +597,9 @@ class AstrometricSolution:
         return x, y
 
     def _rectified_tracks(self, x: np.ndarray, y: np.ndarray):
-        """Sky tracks of rectified ``(x, y)`` and their prediction in the solved geometry.
-
-        The last pair of position arrays asked for is remembered with its
-        result: the solved catalogue asks for the detections' positions
-        twice (:meth:`sky_from_rectified`, then :meth:`position_errors`), and
-        the tracks of ~55 000 detections take ~0.1 s.
-        """
-        memo = self.__dict__.get("_tracks_memo")
-        if (
-            memo is not None
-            and memo[0].shape == x.shape
-            and np.array_equal(memo[0], x)
-            and np.array_equal(memo[1], y)
-        ):
-            return memo[2], memo[3]
+        """Sky tracks of rectified ``(x, y)`` and their prediction in the solved geometry."""
         tracks = self.predictor.tracks_from_rectified(self.frame, x, y)
-        pred = self.predictor.predict(tracks, self.offsets)
-        # a frozen dataclass: kept beside the fields, as cached_property does
-        self.__dict__["_tracks_memo"] = (x.copy(), y.copy(), tracks, pred)
-        return tracks, pred
+        return tracks, self.predictor.predict(tracks, self.offsets)
 
     def _solved_strip_of_rectified(self, x, y):
         return self._strip(self.predictor.tracks_from_rectified(self.frame, x, y))
@@ -645,9 +628,12 @@ class AstrometricSolution:
         points = [(np.asarray(x, float).ravel(), np.asarray(y, float).ravel()) for x, y in groups]
         x = np.concatenate([x for x, _ in points])
         y = np.concatenate([y for _, y in points])
+        return self._sky_of_groups(points, x, y, *self._rectified_tracks(x, y))
+
+    def _sky_of_groups(self, points, x, y, tracks, pred):
+        """:meth:`sky_from_rectified_groups` given the concatenated points' tracks."""
         # the sky tracks of the points serve twice: the nominal strip position
         # (the target) and the solved one (the first Newton step's evaluation)
-        tracks, pred = self._rectified_tracks(x, y)
         tr, tc = self.predictor.strip(tracks)
         ends = np.cumsum([0] + [x.size for x, _ in points])
         parts = [slice(lo, hi) for lo, hi in itertools.pairwise(ends)]
@@ -684,8 +670,33 @@ class AstrometricSolution:
         """
         x = np.asarray(x, dtype=float).ravel()
         y = np.asarray(y, dtype=float).ravel()
-        fit = self.fit
+        return self._errors(x, y, x_err, y_err, *self._rectified_tracks(x, y))
+
+    def sky_and_errors(
+        self, x: ArrayLike, y: ArrayLike, x_err: ArrayLike, y_err: ArrayLike
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`sky_from_rectified` and :meth:`position_errors` of the same positions.
+
+        The same values, with the positions' sky tracks and solved prediction
+        made once for both (~0.1 s for the ~55 000 detections of a
+        4096-column night).
+
+        Returns
+        -------
+        ra, dec : ndarray
+            Degrees.
+        ra_err, dec_err : ndarray
+            Arcseconds.
+        """
+        x = np.asarray(x, dtype=float).ravel()
+        y = np.asarray(y, dtype=float).ravel()
         tracks, pred = self._rectified_tracks(x, y)
+        ((ra, dec),) = self._sky_of_groups([(x, y)], x, y, tracks, pred)
+        return ra, dec, *self._errors(x, y, x_err, y_err, tracks, pred)
+
+    def _errors(self, x, y, x_err, y_err, tracks, pred):
+        """:meth:`position_errors` given the positions' tracks and solved prediction."""
+        fit = self.fit
         row = pred.rows(self.model.n_rows, self.line_time, self.offsets.clock_offset)
         jac = parameter_jacobian(
             self.predictor, tracks, self.offsets, fit.names, pred, row, pred.column
