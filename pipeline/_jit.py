@@ -41,6 +41,7 @@ __all__ = ["COMPILED_MODULES", "cache_folder", "njit", "sources_digest"]
 COMPILED_MODULES = (
     "mosaic/_coadd_jit.py",
     "mosaic/_resample_jit.py",
+    "stages/astrometry/_model_jit.py",
     "stages/detect/_find_jit.py",
     "stages/detect/_fit_jit.py",
     "stages/detect/_measure_jit.py",

@@ -105,6 +105,61 @@ def test_a_prediction_does_not_depend_on_the_ones_before():
         np.testing.assert_array_equal(column, expected[1])
 
 
+def test_the_compiled_pass_is_the_numpy_arithmetic_to_the_bit(monkeypatch):
+    """GeometryPredictor._track_detector (one compiled pass, split between two
+    threads when large) gives the bits of the numpy steps it replaced,
+    ``_detector(*tracks.focal(t), offsets)``: times of one or many per star, a
+    tilted axis with distortion and rotation, NaN times, and a call large
+    enough to be split (and the same call unsplit)."""
+    from pipeline.stages.astrometry import _model
+
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 3000)
+    predictor = GeometryPredictor(nominal)
+    tracks = predictor.tracks(ra, dec, t_mid)
+    rng = np.random.default_rng(11)
+    one = t_mid + rng.uniform(-60.0, 60.0, t_mid.size)
+    many = t_mid[:, None] + rng.uniform(-60.0, 60.0, (t_mid.size, 8))  # 24 000 points
+    one[3] = many[5, 2] = np.nan
+    assert many.size >= _model._SPLIT_POINTS > one.size
+    geometries = (GeometryOffsets(), OFFSETS_WITH_DISTORTION, GeometryOffsets(tilt_east=-15.0))
+    for offsets in geometries:
+        for t in (one, many):
+            expected = predictor._detector(*tracks.focal(t), offsets)
+            got = predictor._track_detector(tracks, t, offsets)
+            for a, b in zip(got, expected, strict=True):
+                assert a.shape == t.shape
+                np.testing.assert_array_equal(a, b)
+    monkeypatch.setattr(_model, "_SPLIT_POINTS", 10**9)  # one thread
+    alone = predictor._track_detector(tracks, many, OFFSETS_WITH_DISTORTION)
+    monkeypatch.undo()
+    split = predictor._track_detector(tracks, many, OFFSETS_WITH_DISTORTION)
+    for a, b in zip(split, alone, strict=True):
+        np.testing.assert_array_equal(a, b)
+
+
+def test_tracks_made_in_two_threads_are_the_ones_made_in_one():
+    """sky_tracks with a helper thread (half of the axis map's chunks there) gives
+    the coefficients it gives alone, to the bit, over several chunks."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    from pipeline.geometry.zenith import _CHUNK
+    from pipeline.stages.astrometry._model import sky_tracks
+
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 2500)
+    predictor = GeometryPredictor(nominal)
+    axis = predictor._axis_for(float(t_mid.min()) - 200.0, float(t_mid.max()) + 200.0)
+    assert 9 * ra.size > 4 * _CHUNK  # several chunks each side
+    # the split first: a chunk it missed would not find the other's values in
+    # memory just freed
+    with ThreadPoolExecutor(max_workers=1) as helper:
+        two = sky_tracks(axis, ra, dec, t_mid, predictor.half_width, helper=helper)
+    alone = sky_tracks(axis, ra, dec, t_mid, predictor.half_width)
+    np.testing.assert_array_equal(two.coef, alone.coef)
+    np.testing.assert_array_equal(two.t_centre, alone.t_centre)
+
+
 @pytest.mark.parametrize("latitude", LATITUDES)
 def test_east_tilt_acts_as_clock_and_rotation(latitude):
     """An east tilt tau equals a clock offset tau/(omega cos phi) and a rotation tau tan phi.

@@ -147,6 +147,96 @@ def test_each_group_takes_its_own_newton_steps():
     assert together[0][0][0] == 10.0
 
 
+def test_the_kernel_tables_are_read_beside_the_first_solution(monkeypatch):
+    """_solve_passes reads the stretches' smear-kernel tables in a thread while
+    the first solution is computed: they come in the stretches' order, and
+    when the solution fails the reading thread has ended with it (no thread
+    outlives the unit)."""
+    import threading
+    import time
+    from types import SimpleNamespace
+
+    from pipeline.stages.astrometry import _stage
+
+    looked_up = []
+
+    class Slow(dict):
+        def __getitem__(self, name):
+            time.sleep(0.05)
+            index = dict.__getitem__(self, "index")
+            looked_up.append((name, index))
+            return ("kernels of", index)
+
+    inputs = {
+        "catalog": {"catalog": QTable(meta={"detect_options": {}})},
+        "rectify": [Slow(index=i) for i in range(4)],
+    }
+    stretches = [SimpleNamespace(index=i) for i in range(4)]
+    options = AstrometryStageOptions()
+
+    def fails(*args, **kwargs):
+        raise AstrometryError("too few", {})
+
+    monkeypatch.setattr(_stage, "solve_catalog", fails)
+    with pytest.raises(AstrometryError):
+        _stage._solve_passes(inputs, stretches, None, None, options, {"ra": 0, "dec": 0}, None)
+    assert looked_up == [("smear_kernels", i) for i in range(4)]
+    assert not [t for t in threading.enumerate() if t.name.startswith("astrometry-kernels")]
+
+    seen = []
+
+    def stop(kernels, *args, **kwargs):
+        seen.append(list(kernels))
+        raise RuntimeError("stop here")
+
+    monkeypatch.setattr(_stage, "solve_catalog", lambda *a, **k: SimpleNamespace(solution=None))
+    monkeypatch.setattr(_stage, "solved_kernels_of_stretches", stop)
+    with pytest.raises(RuntimeError, match="stop here"):
+        _stage._solve_passes(inputs, stretches, None, None, options, {"ra": 0, "dec": 0}, None)
+    assert seen == [[("kernels of", i) for i in range(4)]]
+
+
+def test_a_given_first_evaluation_replaces_the_first_step_s_call():
+    """invert_groups with ``first`` (strip_of of the starting points, made by the
+    caller) makes one call fewer and ends on the same bits as without it."""
+    from pipeline.stages.astrometry._solve import invert_groups
+
+    calls = []
+
+    def strip_of(x, y):
+        calls.append(x.size)
+        return x + x * x / 1000.0, y + 0.01 * x
+
+    exact = np.array([120.0, 220.0, 320.0])
+    groups = [
+        (*strip_of(exact, np.ones(3)), np.array([100.0, 200.0, 300.0]), np.ones(3)),
+        (*strip_of(np.array([50.0]), np.zeros(1)), np.array([45.0]), np.zeros(1)),
+    ]
+    calls.clear()
+    alone = invert_groups(groups, strip_of)
+    n_alone = len(calls)
+    starts = (np.r_[groups[0][2], groups[1][2]], np.r_[groups[0][3], groups[1][3]])
+    first = strip_of(*starts)
+    calls.clear()
+    given = invert_groups(groups, strip_of, first=first)
+    assert len(calls) == n_alone - 1
+    for (x, y), (x0, y0) in zip(given, alone, strict=True):
+        np.testing.assert_array_equal(x, x0)
+        np.testing.assert_array_equal(y, y0)
+
+
+def test_sky_and_errors_are_those_made_apart(solution):
+    """sky_and_errors (one set of tracks for both) gives the bits of
+    sky_from_rectified and position_errors made apart."""
+    rng = np.random.default_rng(3)
+    x, y = rng.uniform(1000, 3000, 50), rng.uniform(0, solution.frame.n_y, 50)
+    x_err, y_err = rng.uniform(0.01, 0.1, 50), rng.uniform(0.01, 0.1, 50)
+    together = solution.sky_and_errors(x, y, x_err, y_err)
+    apart = (*solution.sky_from_rectified(x, y), *solution.position_errors(x, y, x_err, y_err))
+    for got, want in zip(together, apart, strict=True):
+        np.testing.assert_array_equal(got, want)
+
+
 def test_stretch_wcs_cards_from_the_night_s_pass_are_each_stretch_s_own(solution):
     """The stage computes every stretch's solved points in one pass (wcs_sky);
     each stretch's cards are the ones it gets alone."""

@@ -160,20 +160,36 @@ def fit_degree(field_radius: float) -> int:
     return 3 if field_radius <= 0.02 else 5
 
 
-def _chunked(func, *args: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+def _chunked(func, *args: ArrayLike, helper=None) -> tuple[np.ndarray, np.ndarray]:
     """Apply ``func(*args) -> (p, q)`` on 1-D chunks of the broadcast inputs.
 
     Chunks keep the temporaries (about 30 doubles a point) in cache-sized
-    pieces; the result has the broadcast shape of the inputs.
+    pieces; the result has the broadcast shape of the inputs.  ``helper``: an
+    executor (e.g. a ``ThreadPoolExecutor``) that does the second half of
+    the chunks while the calling thread does the first (numpy's loops release
+    the GIL); every chunk is the same computation either way.
     """
     arrays = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in args))
     p = np.empty(arrays[0].shape)
     q = np.empty(arrays[0].shape)
     fp, fq = p.reshape(-1), q.reshape(-1)
     flat = [x.ravel() for x in arrays]
-    for lo in range(0, fp.size, _CHUNK):
-        sl = slice(lo, lo + _CHUNK)
-        fp[sl], fq[sl] = func(*(x[sl] for x in flat))
+    starts = range(0, fp.size, _CHUNK)
+
+    def run(chunk_starts) -> None:
+        for lo in chunk_starts:
+            sl = slice(lo, lo + _CHUNK)
+            fp[sl], fq[sl] = func(*(x[sl] for x in flat))
+
+    if helper is None or len(starts) < 2:
+        run(starts)
+    else:
+        half = len(starts) // 2
+        other = helper.submit(run, starts[half:])
+        try:
+            run(starts[:half])
+        finally:
+            other.result()
     return p, q
 
 
@@ -347,7 +363,7 @@ class ZenithAxis:
         return jac.reshape((*t.shape, 2, 2))
 
     def icrs_to_focal(
-        self, ra: ArrayLike, dec: ArrayLike, t: ArrayLike
+        self, ra: ArrayLike, dec: ArrayLike, t: ArrayLike, *, helper=None
     ) -> tuple[np.ndarray, np.ndarray]:
         """Focal-plane (xi, eta) of ICRS directions at times ``t``.
 
@@ -357,6 +373,9 @@ class ZenithAxis:
             ICRS right ascension and declination, radians.
         t : array_like
             Seconds since ``start``; broadcast with ``ra`` and ``dec``.
+        helper : concurrent.futures.Executor or None, optional
+            Does half of the points' chunks in another thread (the same
+            values either way); None: all in the calling thread.
 
         Returns
         -------
@@ -368,7 +387,9 @@ class ZenithAxis:
         # however many times it is sampled
         dec = np.asarray(dec, dtype=float)
         cd = np.cos(dec)
-        return _chunked(self._forward, cd * np.cos(ra), cd * np.sin(ra), np.sin(dec), t)
+        return _chunked(
+            self._forward, cd * np.cos(ra), cd * np.sin(ra), np.sin(dec), t, helper=helper
+        )
 
     def _forward(self, sx, sy, sz, t):
         n = self._n_terms

@@ -288,8 +288,7 @@ def solve_catalog(
             solution = solve_night(*args, transparency=cloud, **kwargs)
         else:
             cloud = dataclasses.replace(cloud, applied=False) if cloud is not None else None
-    ra, dec = solution.sky_from_rectified(x, y)
-    ra_err, dec_err = solution.position_errors(x, y, x_err, y_err)
+    ra, dec, ra_err, dec_err = solution.sky_and_errors(x, y, x_err, y_err)
     out = catalog.copy()
     out["ra"] = ra * u.deg
     out["dec"] = dec * u.deg

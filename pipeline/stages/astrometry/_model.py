@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import os
 from dataclasses import dataclass
 
 import numpy as np
@@ -59,6 +60,9 @@ _GAUSS_ORDER = 8
 #: (the demo's 25 s sigma in 188 s) needs ~4 nodes across it.
 _GAUSS_ORDER_WEIGHTED = 48
 _TRACK_DEGREE = 8
+#: The axis basis of an untilted geometry (unused by the compiled loop, which
+#: skips the re-projection then).
+_NO_TILT = np.eye(3)
 _NEWTON_STEPS = 3
 
 
@@ -156,6 +160,34 @@ def east_tilt_equivalent(model: TDIModel, tilt_east: float) -> tuple[float, floa
     return tau / rate, tilt_east * float(np.tan(np.radians(model.latitude)))
 
 
+#: Points (stars x times) from which a prediction's compiled pass is split
+#: between two threads (below, a thread hand-over costs more than it saves).
+_SPLIT_POINTS = 16384
+
+
+@functools.cache
+def _helper_thread(pid: int | None = None):
+    """One helper thread for the predictor's compiled passes; None on a single CPU.
+
+    ``pid``: the calling process' (a process forked from one that made the
+    thread gets its own).
+
+    Night-wide, astrometry runs on one worker while the pool's other core
+    idles; the compiled pass over the tracks releases the GIL, and so do
+    numpy's loops in the sky tracks' evaluations, so half of each large
+    prediction and of each large set of tracks runs here.
+    """
+    try:
+        n_cpu = len(os.sched_getaffinity(0))
+    except AttributeError:  # not on every platform
+        n_cpu = os.cpu_count() or 1
+    if n_cpu < 2:
+        return None
+    from concurrent.futures import ThreadPoolExecutor
+
+    return ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-predict")
+
+
 @functools.cache
 def _gauss_legendre(order: int) -> tuple[np.ndarray, np.ndarray]:
     """Gauss-Legendre nodes and weights on [-1, 1] (numpy's), made once per order."""
@@ -208,6 +240,8 @@ def sky_tracks(
     t_centre: ArrayLike,
     half_width: float,
     degree: int = _TRACK_DEGREE,
+    *,
+    helper=None,
 ) -> SkyTracks:
     """Fit each star's focal-plane path over ``t_centre +- half_width``.
 
@@ -225,6 +259,9 @@ def sky_tracks(
         Polynomial degree; 8 keeps the interpolation error below 1e-6 px over
         windows of a few minutes (the paths are smooth: drift, bow, slow
         changes of precession and aberration).
+    helper : concurrent.futures.Executor or None, optional
+        Evaluates half of the points in another thread (see
+        :meth:`ZenithAxis.icrs_to_focal`; the same values either way).
 
     Returns
     -------
@@ -236,7 +273,7 @@ def sky_tracks(
     k = np.arange(degree + 1)
     nodes = np.cos(np.pi * (k + 0.5) / (degree + 1))
     xi, eta = axis.icrs_to_focal(
-        ra[:, None], dec[:, None], t_centre[:, None] + half_width * nodes[None, :]
+        ra[:, None], dec[:, None], t_centre[:, None] + half_width * nodes[None, :], helper=helper
     )
     vander_inv = np.linalg.inv(np.vander(nodes, degree + 1))  # highest power first
     coef = np.stack([vander_inv @ xi.T, vander_inv @ eta.T], axis=1)
@@ -357,7 +394,9 @@ class GeometryPredictor:
         axis = self._axis_for(
             float(t_mid_guess.min()) - self.half_width, float(t_mid_guess.max()) + self.half_width
         )
-        return sky_tracks(axis, ra, dec, t_mid_guess, self.half_width)
+        return sky_tracks(
+            axis, ra, dec, t_mid_guess, self.half_width, helper=_helper_thread(os.getpid())
+        )
 
     def tracks_from_rectified(self, frame, x: ArrayLike, y: ArrayLike) -> SkyTracks:
         """Tracks of the sky positions of rectified pixels ``(x, y)`` of ``frame``."""
@@ -396,6 +435,53 @@ class GeometryPredictor:
         p = self.pixel_angle / (1.0 + offsets.focal_scale)
         return xc / p + 0.5 * self.n_rows, ec / p + self.v_centre
 
+    def _track_detector(
+        self, tracks: SkyTracks, t: np.ndarray, offsets: GeometryOffsets
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """``self._detector(*tracks.focal(t), offsets)`` in one compiled pass, to the bit.
+
+        ``t`` has shape ``(n,)`` or ``(n, k)`` (see :meth:`SkyTracks.focal`);
+        :func:`~pipeline.stages.astrometry._model_jit.track_detector` does the
+        same arithmetic per point in the same order.
+        """
+        from pipeline.stages.astrometry._model_jit import track_detector
+
+        t = np.asarray(t, dtype=float)
+        t2 = t.reshape(t.shape[0], -1) if t.ndim == 1 else t
+        tilt = bool(offsets.tilt_east or offsets.tilt_north)
+        m = self._tilted(offsets.tilt_east, offsets.tilt_north) if tilt else _NO_TILT
+        angle = self.rotation + offsets.rotation / ARCSEC_PER_RADIAN
+        u = np.empty(t2.shape)
+        v = np.empty(t2.shape)
+        args = (
+            np.ascontiguousarray(tracks.coef, dtype=float),
+            np.ascontiguousarray(tracks.t_centre, dtype=float),
+            float(tracks.half_width),
+            np.ascontiguousarray(t2),
+            tilt,
+            m,
+            float(np.cos(angle)),
+            float(np.sin(angle)),
+            float(self.distortion_k1 + offsets.distortion_k1),
+            float(self.pixel_angle / (1.0 + offsets.focal_scale)),
+            float(0.5 * self.n_rows),
+            float(self.v_centre),
+            u,
+            v,
+        )
+        n = t2.shape[0]
+        pool = _helper_thread(os.getpid()) if t2.size >= _SPLIT_POINTS else None
+        if pool is None:
+            track_detector(*args, 0, n)
+        else:
+            # the second half of the stars on the helper thread (the loop
+            # releases the GIL): each point's arithmetic is the same either way
+            half = n // 2
+            other = pool.submit(track_detector, *args, half, n)
+            track_detector(*args, 0, half)
+            other.result()
+        return u.reshape(t.shape), v.reshape(t.shape)
+
     def _tilted(self, tilt_east: float, tilt_north: float) -> np.ndarray:
         """The basis of the axis tilted by these offsets, in the nominal basis (rows).
 
@@ -409,7 +495,7 @@ class GeometryPredictor:
 
     def _crossing(self, tracks: SkyTracks, offsets: GeometryOffsets, target: float, t, slope):
         for _ in range(_NEWTON_STEPS):
-            u, _ = self._detector(*tracks.focal(t), offsets)
+            u, _ = self._track_detector(tracks, t, offsets)
             t = t - (u - target) / slope
         return t
 
@@ -440,8 +526,8 @@ class GeometryPredictor:
         offsets = offsets or GeometryOffsets()
         t_c = tracks.t_centre
         h = 0.25 * tracks.half_width
-        u_plus, _ = self._detector(*tracks.focal(t_c + h), offsets)
-        u_minus, _ = self._detector(*tracks.focal(t_c - h), offsets)
+        u_plus, _ = self._track_detector(tracks, t_c + h, offsets)
+        u_minus, _ = self._track_detector(tracks, t_c - h, offsets)
         slope = (u_plus - u_minus) / (2.0 * h)
         u_c = 0.5 * (u_plus + u_minus)
         t_mid = t_c + (0.5 * self.n_rows - u_c) / slope
@@ -453,14 +539,14 @@ class GeometryPredictor:
         if self.transparency is None or not light_weighted:
             x, w = _gauss_legendre(_GAUSS_ORDER)
             t = mid[:, None] + 0.5 * (t1 - t0)[:, None] * x
-            u, v = self._detector(*tracks.focal(t), offsets)
+            u, v = self._track_detector(tracks, t, offsets)
             u_mean = 0.5 * (u @ w)
             column = 0.5 * (v @ w)
         else:
             # light-weighted means of the track (module notes of _transparency)
             x, w = _gauss_legendre(_GAUSS_ORDER_WEIGHTED)
             t = mid[:, None] + 0.5 * (t1 - t0)[:, None] * x
-            u, v = self._detector(*tracks.focal(t), offsets)
+            u, v = self._track_detector(tracks, t, offsets)
             light = w * self.transparency(np.nan_to_num(t))
             light = light / light.sum(axis=1, keepdims=True)
             mid = (t * light).sum(axis=1)

@@ -35,7 +35,12 @@ from pipeline.stages.astrometry._match import (
     peak_count,
     scaled_tree,
 )
-from pipeline.stages.astrometry._model import GeometryOffsets, GeometryPredictor, SkyTracks
+from pipeline.stages.astrometry._model import (
+    GeometryOffsets,
+    GeometryPredictor,
+    PredictedCentroids,
+    SkyTracks,
+)
 from pipeline.stages.astrometry._stats import residual_grid
 
 __all__ = ["AstrometricSolution", "SearchRanges", "search_geometry", "solve_night"]
@@ -412,7 +417,7 @@ def solve_night(
     )
 
 
-def invert_groups(groups, strip_of) -> list[tuple[np.ndarray, np.ndarray]]:
+def invert_groups(groups, strip_of, first=None) -> list[tuple[np.ndarray, np.ndarray]]:
     """Rectified ``(x, y)`` with ``strip_of(x, y) = target``, for each group, at once.
 
     ``groups`` holds ``(target_r, target_c, x, y)``: strip targets and
@@ -423,6 +428,10 @@ def invert_groups(groups, strip_of) -> list[tuple[np.ndarray, np.ndarray]]:
     miss is below 1e-6 px (at most 8 steps); only the evaluations of
     ``strip_of`` are shared, one call per step for the points of every
     group still stepping (each call has a fixed cost of ~1 ms).
+
+    ``first``: ``strip_of`` of every group's starting points, concatenated in
+    the groups' order, if the caller has it already (the first step's
+    evaluation, which is then not made again); None: evaluated here.
     """
     xs = [np.array(x, dtype=float) for _, _, x, _ in groups]
     ys = [np.array(y, dtype=float) for _, _, _, y in groups]
@@ -444,10 +453,14 @@ def invert_groups(groups, strip_of) -> list[tuple[np.ndarray, np.ndarray]]:
         )
         inverses.append(np.linalg.inv(jac))
     stepping = list(range(len(groups)))
-    for _ in range(8):
-        r, c = strip_of(
-            np.concatenate([xs[g] for g in stepping]), np.concatenate([ys[g] for g in stepping])
-        )
+    for step in range(8):
+        if step == 0 and first is not None:
+            r, c = first  # every group, at its starting points
+        else:
+            r, c = strip_of(
+                np.concatenate([xs[g] for g in stepping]),
+                np.concatenate([ys[g] for g in stepping]),
+            )
         ends = np.cumsum([0] + [xs[g].size for g in stepping])
         still = []
         for g, lo, hi in zip(stepping, ends[:-1], ends[1:], strict=True):
@@ -568,8 +581,9 @@ class AstrometricSolution:
         tracks = self.predictor.tracks(ra, dec, self.predictor.mid_time_of_column(x))
         return self._strip(tracks)
 
-    def _strip(self, tracks: SkyTracks):
-        pred = self.predictor.predict(tracks, self.offsets)
+    def _strip(self, tracks: SkyTracks, pred: PredictedCentroids | None = None):
+        if pred is None:
+            pred = self.predictor.predict(tracks, self.offsets)
         r = pred.rows(self.model.n_rows, self.line_time, self.offsets.clock_offset)
         c = pred.column
         if self.fit.wander is not None:
@@ -581,6 +595,11 @@ class AstrometricSolution:
         """Rectified ``(x, y)`` with ``strip_of(x, y) = target`` by Newton steps."""
         ((x, y),) = invert_groups([(target_r, target_c, x, y)], strip_of)
         return x, y
+
+    def _rectified_tracks(self, x: np.ndarray, y: np.ndarray):
+        """Sky tracks of rectified ``(x, y)`` and their prediction in the solved geometry."""
+        tracks = self.predictor.tracks_from_rectified(self.frame, x, y)
+        return tracks, self.predictor.predict(tracks, self.offsets)
 
     def _solved_strip_of_rectified(self, x, y):
         return self._strip(self.predictor.tracks_from_rectified(self.frame, x, y))
@@ -609,11 +628,19 @@ class AstrometricSolution:
         points = [(np.asarray(x, float).ravel(), np.asarray(y, float).ravel()) for x, y in groups]
         x = np.concatenate([x for x, _ in points])
         y = np.concatenate([y for _, y in points])
-        tr, tc = self._nominal_strip_of_rectified(x, y)
+        return self._sky_of_groups(points, x, y, *self._rectified_tracks(x, y))
+
+    def _sky_of_groups(self, points, x, y, tracks, pred):
+        """:meth:`sky_from_rectified_groups` given the concatenated points' tracks."""
+        # the sky tracks of the points serve twice: the nominal strip position
+        # (the target) and the solved one (the first Newton step's evaluation)
+        tr, tc = self.predictor.strip(tracks)
         ends = np.cumsum([0] + [x.size for x, _ in points])
         parts = [slice(lo, hi) for lo, hi in itertools.pairwise(ends)]
         solved = invert_groups(
-            [(tr[p], tc[p], x[p], y[p]) for p in parts], self._solved_strip_of_rectified
+            [(tr[p], tc[p], x[p], y[p]) for p in parts],
+            self._solved_strip_of_rectified,
+            first=self._strip(tracks, pred),
         )
         ra, dec = self.frame.icrs_from_pixel(
             np.concatenate([x for x, _ in solved]), np.concatenate([y for _, y in solved])
@@ -643,9 +670,33 @@ class AstrometricSolution:
         """
         x = np.asarray(x, dtype=float).ravel()
         y = np.asarray(y, dtype=float).ravel()
+        return self._errors(x, y, x_err, y_err, *self._rectified_tracks(x, y))
+
+    def sky_and_errors(
+        self, x: ArrayLike, y: ArrayLike, x_err: ArrayLike, y_err: ArrayLike
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`sky_from_rectified` and :meth:`position_errors` of the same positions.
+
+        The same values, with the positions' sky tracks and solved prediction
+        made once for both (~0.1 s for the ~55 000 detections of a
+        4096-column night).
+
+        Returns
+        -------
+        ra, dec : ndarray
+            Degrees.
+        ra_err, dec_err : ndarray
+            Arcseconds.
+        """
+        x = np.asarray(x, dtype=float).ravel()
+        y = np.asarray(y, dtype=float).ravel()
+        tracks, pred = self._rectified_tracks(x, y)
+        ((ra, dec),) = self._sky_of_groups([(x, y)], x, y, tracks, pred)
+        return ra, dec, *self._errors(x, y, x_err, y_err, tracks, pred)
+
+    def _errors(self, x, y, x_err, y_err, tracks, pred):
+        """:meth:`position_errors` given the positions' tracks and solved prediction."""
         fit = self.fit
-        tracks = self.predictor.tracks_from_rectified(self.frame, x, y)
-        pred = self.predictor.predict(tracks, self.offsets)
         row = pred.rows(self.model.n_rows, self.line_time, self.offsets.clock_offset)
         jac = parameter_jacobian(
             self.predictor, tracks, self.offsets, fit.names, pred, row, pred.column

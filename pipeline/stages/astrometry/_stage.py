@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import dataclasses
 import logging
+from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -232,6 +233,11 @@ def _deconvolved(rectified, n_stretches: int) -> bool:
     )
 
 
+def _kernel_tables(rectified, n_stretches: int) -> list:
+    """rectify's ``smear_kernels`` table of each stretch, in order."""
+    return [rectified[i]["smear_kernels"] for i in range(n_stretches)]
+
+
 def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
     """Solve, and measure again with the solved smear kernels while they differ enough.
 
@@ -241,7 +247,17 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
     """
     catalog = inputs["catalog"]["catalog"]
     detect_options = _detect_options(catalog)
-    kernels = [inputs["rectify"][i]["smear_kernels"] for i in range(len(stretches))]
+    # The stretches' smear-kernel tables (32 ECSV files of a 4096-column night,
+    # ~0.4 s to parse and check against their SHA-256, mostly outside Python's
+    # lock) are read in a thread while the first solution is computed: nothing
+    # else reads the store meanwhile, and the thread has ended when the block
+    # does, whatever the solution raised.
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-kernels") as reader:
+        pending = reader.submit(_kernel_tables, inputs["rectify"], len(stretches))
+        first = solve_catalog(
+            catalog, reference["ra"], reference["dec"], model, frame, options, ref_mag=ref_mag
+        )
+        kernels = pending.result()
     passes, start = [], None
     # The next pass's kernels follow a fit weighted by the given errors alone:
     # while the kernels are wrong, the centroids' excess scatter is the same
@@ -253,16 +269,19 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
     # errors are honest once the kernels are right.
     unfloored = options.model_copy(update={"fit_error_floor": False})
     while True:
-        solved = solve_catalog(
-            catalog,
-            reference["ra"],
-            reference["dec"],
-            model,
-            frame,
-            options,
-            ref_mag=ref_mag,
-            start=start,
-        )
+        if first is not None:
+            solved, first = first, None
+        else:
+            solved = solve_catalog(
+                catalog,
+                reference["ra"],
+                reference["dec"],
+                model,
+                frame,
+                options,
+                ref_mag=ref_mag,
+                start=start,
+            )
         nodes: dict = {}  # the nominal map's node columns, shared by every stretch's kernels
         new = solved_kernels_of_stretches(kernels, solved.solution, model, frame, nodes=nodes)
         changes = [kernel_change(a, b) for a, b in zip(kernels, new, strict=True)]
@@ -411,9 +430,11 @@ STAGE = Stage(
     partial_inputs=True,
     streams=("reference.path",),
     description="Fit the night's geometry to a reference catalogue; a solved WCS per stretch.",
-    # the geometry model, the fits, the reference reader, detect's for the second pass
+    # the geometry model, the fits, the reference reader, the predictor's compiled
+    # loop, detect's for the second pass
     warm=(
         *RECTIFY_WARM,
+        "pipeline.stages.astrometry._model_jit:load_compiled",
         "scipy.linalg",
         "scipy.optimize",
         "pyarrow.csv",
