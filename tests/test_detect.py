@@ -379,6 +379,41 @@ def test_later_passes_reuse_fits_of_unchanged_groups(monkeypatch):
     assert len(calls) == 1
 
 
+@pytest.mark.parametrize("n", [1, 2, 300])
+def test_groups_are_the_overlapping_stamps_components(n):
+    # _groups against a brute-force reference: every pair of sources whose
+    # stamps (half sizes 1.5 FWHM + 1 for point kernels) overlap on both axes
+    # joined, the components by union-find; each group's members increasing
+    # and the groups in the order of their first members, as the fits and
+    # the catalogue's rows take them (self-consistency, invented positions).
+    from pipeline.stages.detect import _groups
+
+    rng = np.random.default_rng(n)
+    cx, cy = rng.uniform(0, 400, n), rng.uniform(0, 60, n)
+    fwhm = 3.0
+    half = 1.5 * fwhm + 1.0
+    parent = list(range(n))
+
+    def root(i):
+        while parent[i] != i:
+            i = parent[i]
+        return i
+
+    for i in range(n):
+        for j in range(i + 1, n):
+            if abs(cx[i] - cx[j]) < 2 * half and abs(cy[i] - cy[j]) < 2 * half:
+                parent[root(j)] = root(i)
+    components: dict = {}
+    for i in range(n):
+        components.setdefault(root(i), []).append(i)
+    expected = sorted(components.values(), key=lambda members: members[0])
+    got = _groups(cx, cy, None, 0, fwhm, True)
+    assert got == expected
+    assert all(type(i) is int for members in got for i in members)
+    if n == 300:  # crowded enough for groups of several sizes
+        assert {len(g) for g in got} >= {1, 2, 3}
+
+
 def test_joint_fits_in_one_call_equal_the_fits_one_by_one(monkeypatch):
     # measure_groups fits its joint groups in one compiled call
     # (fit_groups_compiled); _measure_group, the reference, fits them one by
