@@ -1144,6 +1144,29 @@ def test_deblend_segments_is_photutils_deblend_sources(
         assert loose.n_labels > ours.n_labels
 
 
+def test_a_segment_split_only_at_the_top_threshold_is_split_as_photutils_splits_it():
+    # Two equal peaks joined by a ridge that only the last (highest) of the
+    # 32 exponential thresholds clears: photutils' deblend_sources (the
+    # reference) splits the segment there, and so must deblend_segments (a
+    # loop over the levels that skips the last one, or one level late, does
+    # not).  Invented map: a plateau of 2 with a rim of 1.1 (the segment's
+    # minimum), peaks of 100 and a ridge of 80; thresholds 1.1 (100 / 1.1)^(k / 33),
+    # k = 1..32: the 31st is 76.1 (below the ridge), the 32nd 87.2 (above it).
+    snr = np.zeros((20, 30))
+    snr[5:15, 5:25] = 1.1
+    snr[6:14, 6:24] = 2.0
+    snr[9:11, 8:10] = snr[9:11, 18:20] = 100.0
+    snr[9:11, 10:18] = 80.0
+    no_data = np.zeros(snr.shape, bool)
+    segm = segment_map(snr, no_data, threshold=1.0, min_pixels=3)
+    ours = deblend_segments(snr, segm, segm.labels, 3, levels=32, contrast=0.005)
+    theirs = deblend_sources(
+        snr, detect_sources(snr, 1.0, 3), 3, n_levels=32, contrast=0.005, progress_bar=False
+    )
+    assert theirs.n_labels == 2  # the reference splits it
+    np.testing.assert_array_equal(ours.data, theirs.data)
+    assert ours.deblended_label_to_parent == theirs.deblended_label_to_parent
+
 def test_segment_moments_are_photutils_source_catalog():
     # photutils' SourceCatalog is the reference for the centroids and shapes,
     # to rounding (sums in another order).  The segments include masked pixels
