@@ -1403,13 +1403,16 @@ DILATION_SHAPES = [(300, 470), (64, 64), (65, 63)]
 def test_sparse_dilation_is_scipy_binary_dilation(shape):
     # scipy's binary_dilation of the whole image is the reference, exactly:
     # pixels on the image edges and on both sides of tile borders (64), with
-    # a disk of radius 3 and an asymmetric-reach structure (5 x 9).
+    # a disk of radius 3, an asymmetric-reach structure (5 x 9) and one not
+    # symmetric about its centre (which way it is placed matters).
     rng = np.random.default_rng(8)
     pixels = rng.random(shape) < 0.003
     pixels[0, 0] = pixels[-1, -1] = pixels[0, -1] = True
     pixels[min(63, shape[0] - 1), min(64, shape[1] - 1)] = True
     yy, xx = np.mgrid[-3:4, -3:4]
-    for structure in (xx**2 + yy**2 <= 9, np.ones((5, 9), bool)):
+    lopsided = np.zeros((5, 3), bool)
+    lopsided[0, 0] = lopsided[2, 1] = lopsided[4, 1] = lopsided[3, 2] = True
+    for structure in (xx**2 + yy**2 <= 9, np.ones((5, 9), bool), lopsided):
         expected = binary_dilation(pixels, structure=structure)
         np.testing.assert_array_equal(dilate_sparse(pixels, structure), expected)
 
