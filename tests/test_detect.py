@@ -585,6 +585,36 @@ def test_seeing_curves_equal_least_squares_per_trial_width():
     np.testing.assert_allclose(curves[0], expected, rtol=1e-10)
 
 
+def test_seeing_curves_of_many_stars_are_those_of_each_alone():
+    # Self-consistency: seeing_curves looks up the kernels and responses of
+    # all its candidates at once; each star's curve must be the one it gets
+    # alone, to the bit (a star given a neighbour's kernel or response, or a
+    # candidate dropped at the edge shifting the others', is off).  Stars on
+    # rows far apart (kernels and responses differ), one cut by the edge.
+    x = [100.0, 300.0, 500.0, 700.0]
+    y = [20.0, 60.0, 2.0, 110.0]
+    scene = render_scene(x, y, [5e4, 4e4, 5e4, 6e4], shape=(128, 800), seed=9)
+    image = scene.image - 200.0
+    table = scene.kernels.copy()  # with responses that differ from star to star
+    rng = np.random.default_rng(9)
+    table["lattice_x"] = rng.uniform(0.1, 0.9, len(table))
+    table["lattice_y"] = rng.uniform(0.1, 0.9, len(table))
+    table["row_step"] = 1.0 + 0.01 * rng.random(len(table))
+    grid = KernelGrid(table)
+    profile = SeeingProfile(3.2)
+    fwhm_grid = np.linspace(2.0, 5.0, 5)
+    stars = [(100.3, 20.2), (299.8, 59.9), (500.1, 2.1), (700.2, 110.3)]
+    rows, curves = seeing_curves(
+        image, scene.variance, stars, grid, profile, fwhm_grid, x_start=1000
+    )
+    alone = [seeing_curves(image, scene.variance, [s], grid, profile, fwhm_grid, x_start=1000)
+             for s in stars]  # fmt: skip
+    assert rows.tolist() == [20.2, 59.9, 110.3]  # the star at row 2 is cut by the edge
+    np.testing.assert_array_equal(rows, np.concatenate([r for r, _ in alone]))
+    np.testing.assert_array_equal(curves, np.concatenate([c for _, c in alone]))
+    assert len({tuple(r) for r in curves}) == 3
+
+
 def test_a_seeing_moved_by_hidden_companions_costs_one_refit(monkeypatch):
     # The brightest stars, which the first seeing fit picks as isolated, each
     # hide a faint companion 1.2 FWHM away that only the search of the image
