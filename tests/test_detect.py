@@ -379,6 +379,41 @@ def test_later_passes_reuse_fits_of_unchanged_groups(monkeypatch):
     assert len(calls) == 1
 
 
+@pytest.mark.parametrize("n", [1, 2, 300])
+def test_groups_are_the_overlapping_stamps_components(n):
+    # _groups against a brute-force reference: every pair of sources whose
+    # stamps (half sizes 1.5 FWHM + 1 for point kernels) overlap on both axes
+    # joined, the components by union-find; each group's members increasing
+    # and the groups in the order of their first members, as the fits and
+    # the catalogue's rows take them (self-consistency, invented positions).
+    from pipeline.stages.detect import _groups
+
+    rng = np.random.default_rng(n)
+    cx, cy = rng.uniform(0, 400, n), rng.uniform(0, 60, n)
+    fwhm = 3.0
+    half = 1.5 * fwhm + 1.0
+    parent = list(range(n))
+
+    def root(i):
+        while parent[i] != i:
+            i = parent[i]
+        return i
+
+    for i in range(n):
+        for j in range(i + 1, n):
+            if abs(cx[i] - cx[j]) < 2 * half and abs(cy[i] - cy[j]) < 2 * half:
+                parent[root(j)] = root(i)
+    components: dict = {}
+    for i in range(n):
+        components.setdefault(root(i), []).append(i)
+    expected = sorted(components.values(), key=lambda members: members[0])
+    got = _groups(cx, cy, None, 0, fwhm, True)
+    assert got == expected
+    assert all(type(i) is int for members in got for i in members)
+    if n == 300:  # crowded enough for groups of several sizes
+        assert {len(g) for g in got} >= {1, 2, 3}
+
+
 def test_joint_fits_in_one_call_equal_the_fits_one_by_one(monkeypatch):
     # measure_groups fits its joint groups in one compiled call
     # (fit_groups_compiled); _measure_group, the reference, fits them one by
@@ -548,6 +583,36 @@ def test_seeing_curves_equal_least_squares_per_trial_width():
         coef = np.linalg.lstsq(design, data[good] * sw, rcond=None)[0]
         expected.append(np.sum((design @ coef - data[good] * sw) ** 2) / (sw.size - 2))
     np.testing.assert_allclose(curves[0], expected, rtol=1e-10)
+
+
+def test_seeing_curves_of_many_stars_are_those_of_each_alone():
+    # Self-consistency: seeing_curves looks up the kernels and responses of
+    # all its candidates at once; each star's curve must be the one it gets
+    # alone, to the bit (a star given a neighbour's kernel or response, or a
+    # candidate dropped at the edge shifting the others', is off).  Stars on
+    # rows far apart (kernels and responses differ), one cut by the edge.
+    x = [100.0, 300.0, 500.0, 700.0]
+    y = [20.0, 60.0, 2.0, 110.0]
+    scene = render_scene(x, y, [5e4, 4e4, 5e4, 6e4], shape=(128, 800), seed=9)
+    image = scene.image - 200.0
+    table = scene.kernels.copy()  # with responses that differ from star to star
+    rng = np.random.default_rng(9)
+    table["lattice_x"] = rng.uniform(0.1, 0.9, len(table))
+    table["lattice_y"] = rng.uniform(0.1, 0.9, len(table))
+    table["row_step"] = 1.0 + 0.01 * rng.random(len(table))
+    grid = KernelGrid(table)
+    profile = SeeingProfile(3.2)
+    fwhm_grid = np.linspace(2.0, 5.0, 5)
+    stars = [(100.3, 20.2), (299.8, 59.9), (500.1, 2.1), (700.2, 110.3)]
+    rows, curves = seeing_curves(
+        image, scene.variance, stars, grid, profile, fwhm_grid, x_start=1000
+    )
+    alone = [seeing_curves(image, scene.variance, [s], grid, profile, fwhm_grid, x_start=1000)
+             for s in stars]  # fmt: skip
+    assert rows.tolist() == [20.2, 59.9, 110.3]  # the star at row 2 is cut by the edge
+    np.testing.assert_array_equal(rows, np.concatenate([r for r, _ in alone]))
+    np.testing.assert_array_equal(curves, np.concatenate([c for _, c in alone]))
+    assert len({tuple(r) for r in curves}) == 3
 
 
 def test_a_seeing_moved_by_hidden_companions_costs_one_refit(monkeypatch):
@@ -1109,6 +1174,29 @@ def test_deblend_segments_is_photutils_deblend_sources(
         assert loose.n_labels > ours.n_labels
 
 
+def test_a_segment_split_only_at_the_top_threshold_is_split_as_photutils_splits_it():
+    # Two equal peaks joined by a ridge that only the last (highest) of the
+    # 32 exponential thresholds clears: photutils' deblend_sources (the
+    # reference) splits the segment there, and so must deblend_segments (a
+    # loop over the levels that skips the last one, or one level late, does
+    # not).  Invented map: a plateau of 2 with a rim of 1.1 (the segment's
+    # minimum), peaks of 100 and a ridge of 80; thresholds 1.1 (100 / 1.1)^(k / 33),
+    # k = 1..32: the 31st is 76.1 (below the ridge), the 32nd 87.2 (above it).
+    snr = np.zeros((20, 30))
+    snr[5:15, 5:25] = 1.1
+    snr[6:14, 6:24] = 2.0
+    snr[9:11, 8:10] = snr[9:11, 18:20] = 100.0
+    snr[9:11, 10:18] = 80.0
+    no_data = np.zeros(snr.shape, bool)
+    segm = segment_map(snr, no_data, threshold=1.0, min_pixels=3)
+    ours = deblend_segments(snr, segm, segm.labels, 3, levels=32, contrast=0.005)
+    theirs = deblend_sources(
+        snr, detect_sources(snr, 1.0, 3), 3, n_levels=32, contrast=0.005, progress_bar=False
+    )
+    assert theirs.n_labels == 2  # the reference splits it
+    np.testing.assert_array_equal(ours.data, theirs.data)
+    assert ours.deblended_label_to_parent == theirs.deblended_label_to_parent
+
 def test_segment_moments_are_photutils_source_catalog():
     # photutils' SourceCatalog is the reference for the centroids and shapes,
     # to rounding (sums in another order).  The segments include masked pixels
@@ -1345,13 +1433,16 @@ DILATION_SHAPES = [(300, 470), (64, 64), (65, 63)]
 def test_sparse_dilation_is_scipy_binary_dilation(shape):
     # scipy's binary_dilation of the whole image is the reference, exactly:
     # pixels on the image edges and on both sides of tile borders (64), with
-    # a disk of radius 3 and an asymmetric-reach structure (5 x 9).
+    # a disk of radius 3, an asymmetric-reach structure (5 x 9) and one not
+    # symmetric about its centre (which way it is placed matters).
     rng = np.random.default_rng(8)
     pixels = rng.random(shape) < 0.003
     pixels[0, 0] = pixels[-1, -1] = pixels[0, -1] = True
     pixels[min(63, shape[0] - 1), min(64, shape[1] - 1)] = True
     yy, xx = np.mgrid[-3:4, -3:4]
-    for structure in (xx**2 + yy**2 <= 9, np.ones((5, 9), bool)):
+    lopsided = np.zeros((5, 3), bool)
+    lopsided[0, 0] = lopsided[2, 1] = lopsided[4, 1] = lopsided[3, 2] = True
+    for structure in (xx**2 + yy**2 <= 9, np.ones((5, 9), bool), lopsided):
         expected = binary_dilation(pixels, structure=structure)
         np.testing.assert_array_equal(dilate_sparse(pixels, structure), expected)
 

@@ -272,6 +272,26 @@ def _one_edge_at_a_time(first, n, centres, sigmas, box=0.0):
     return value, deriv
 
 
+def test_table_look_ups_stay_inside_the_tables_and_equal_one_at_a_time():
+    # Self-consistency: the compiled look-ups (run here as Python, where an
+    # index past the tables raises IndexError, which the compiled code would
+    # not) give each value the scalar reference's bits, at the tables' ends
+    # and beyond them on both sides, and read no table entry past the last.
+    from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE, _REACH
+    from pipeline.stages.detect._pixel_gauss_jit import _erf_and_gauss_many
+
+    step = 1.0 / 64.0
+    ends = [-_REACH, _REACH - step, _REACH]
+    zs = np.array([-1e3, -50.0, -_REACH - 1e-9, -3.3, 0.0, 0.01, 2.5, 7.99, 1e3,
+                   *[e + d for e in ends for d in (-1e-12, 0.0, 1e-12)]])  # fmt: skip
+    c, g, scratch = np.empty(zs.size), np.empty(zs.size), np.full((7, zs.size), np.nan)
+    _erf_and_gauss_many.py_func(zs, _ERF_TABLE, _GAUSS_TABLE, c, g, scratch)
+    reference = np.array([_erf_and_gauss(z, _ERF_TABLE, _GAUSS_TABLE) for z in zs])
+    np.testing.assert_array_equal(c, reference[:, 0])
+    np.testing.assert_array_equal(g, reference[:, 1])
+    assert np.all((scratch[6] >= 0) & (scratch[6] <= _ERF_TABLE.size - 2))
+
+
 @pytest.mark.parametrize("box", [0.0, *BOXES])
 def test_profiles_are_each_edge_looked_up_in_turn_to_the_bit(box):
     # Self-consistency: the compiled loops look the tables up for every edge

@@ -3,7 +3,7 @@
 :func:`clip_sorted_rows` for :func:`pipeline.stages.detect._mesh.clipped_medians`
 (the background), :func:`label_pixels` for the deblending's
 (:func:`pipeline.stages.detect._find.deblend_segments`) regions above each
-threshold.  Kept apart so that numba is imported only when the detect stage
+threshold, and :func:`level_markers`, its markers from all the thresholds.  Kept apart so that numba is imported only when the detect stage
 first runs.
 """
 
@@ -15,7 +15,7 @@ import numpy as np
 
 from pipeline._jit import njit
 
-__all__ = ["clip_sorted_rows", "label_pixels", "load_compiled"]
+__all__ = ["clip_sorted_rows", "label_pixels", "level_markers", "load_compiled"]
 
 
 @njit(nogil=True)
@@ -159,6 +159,97 @@ def label_pixels(position, width, scratch):
     return region, count
 
 
+@njit(nogil=True)
+def level_markers(rank, position, segment, n_boxes, width, size, min_pixels, levels):
+    """The watershed markers of segments from their regions above each threshold.
+
+    The loop of :func:`pipeline.stages.detect._find._level_markers` (see
+    there), compiled: per level, the pixels still above it, their regions
+    (:func:`label_pixels`), the regions of at least ``min_pixels`` pixels
+    and the markers they replace, each a pass or two over the pixels
+    instead of about twenty array operations (64 levels per unit of the
+    benchmark night); the same markers.
+
+    Parameters
+    ----------
+    rank : ndarray of int, shape (n,)
+        How many of its segment's thresholds each pixel exceeds.
+    position : ndarray of int64, shape (n,)
+        Each pixel's flat index on the plane.
+    segment : ndarray of int64, shape (n,)
+        Each pixel's segment, 0 .. ``n_boxes`` - 1.
+    n_boxes : int
+        Number of segments.
+    width, size : int
+        The plane's width and number of pixels.
+    min_pixels, levels : int
+        Smallest region kept; number of thresholds.
+
+    Returns
+    -------
+    marker : ndarray of int64, shape (n,)
+        Each pixel's marker id: 0 none, ``1 .. n_boxes`` its segment's
+        placeholder (no region found at any level), above that a region's.
+    next_id : int
+        One more than the largest id given.
+    """
+    n = rank.size
+    marker = segment + 1  # a segment's placeholder, replaced by the first regions found
+    next_id = n_boxes + 1
+    scratch = np.full(size, -1, np.int64)
+    active = np.arange(n)
+    n_active = n
+    for level in range(levels):
+        kept = 0
+        for t in range(n_active):  # the pixels above this level's threshold, in order
+            if rank[active[t]] > level:
+                active[kept] = active[t]
+                kept += 1
+        n_active = kept
+        if n_active < min_pixels:
+            break
+        places = np.empty(n_active, np.int64)
+        for t in range(n_active):
+            places[t] = position[active[t]]
+        region, count = label_pixels(places, width, scratch)
+        pixels = np.zeros(count + 1, np.int64)
+        for t in range(n_active):
+            pixels[region[t]] += 1
+        big = pixels >= min_pixels
+        big[0] = False
+        # each big region's marker (a region lies in one marker)
+        owner = np.zeros(count + 1, np.int64)
+        inside = False
+        for t in range(n_active):
+            if big[region[t]]:
+                owner[region[t]] = marker[active[t]]
+                inside = True
+        if not inside:
+            continue
+        held = np.zeros(next_id, np.int64)  # big regions per marker
+        for r in range(1, count + 1):
+            if big[r]:
+                held[owner[r]] += 1
+        replace = held >= 2
+        for i in range(1, n_boxes + 1):
+            replace[i] = held[i] >= 1  # the first regions
+        replace[0] = False
+        if not replace.any():
+            continue
+        ids = np.zeros(count + 1, np.int64)  # the new markers, in region order
+        for r in range(1, count + 1):
+            if big[r] and replace[owner[r]]:
+                ids[r] = next_id
+                next_id += 1
+        for i in range(n):
+            if replace[marker[i]]:
+                marker[i] = 0
+        for t in range(n_active):
+            if ids[region[t]] > 0:
+                marker[active[t]] = ids[region[t]]
+    return marker, next_id
+
+
 def load_compiled() -> None:
     """Load the compiled loops in this process (from numba's disk cache once it is there).
 
@@ -169,3 +260,5 @@ def load_compiled() -> None:
         np.zeros((1, 3), np.float32), 3.0, 5, np.empty(1, np.float32), np.empty(1, np.int64)
     )
     label_pixels(np.zeros(1, np.int64), 1, np.full(1, -1, np.int64))
+    one = np.zeros(1, np.int64)
+    level_markers(one, one, one, 1, 1, 1, 1, 1)

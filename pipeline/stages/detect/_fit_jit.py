@@ -141,20 +141,24 @@ def _rows(
     flat_v = v.reshape(width)
     flat_d = d.reshape(width if derivatives else 0)
     span = width - extra
-    acc_v = np.zeros(span)
-    acc_d = np.zeros(span if derivatives else 0)
-    for t in range(taps.size):
-        w = taps[t]
-        # views from the tap's shift on: an index the compiler knows is not
-        # negative (``q + shift`` would take numba's wraparound test, which
-        # keeps the loop from being vectorised)
-        from_v = flat_v[shifts[t] :]
-        for q in range(span):
-            acc_v[q] += w * from_v[q]
-        if derivatives:
-            from_d = flat_d[shifts[t] :]
+    if taps.size == 4:  # a lattice offset strictly between 0 and 1: every fit's case
+        acc_v = _four_taps(flat_v, taps, shifts, span)
+        acc_d = _four_taps(flat_d, taps, shifts, span if derivatives else 0)
+    else:
+        acc_v = np.zeros(span)
+        acc_d = np.zeros(span if derivatives else 0)
+        for t in range(taps.size):
+            w = taps[t]
+            # views from the tap's shift on: an index the compiler knows is not
+            # negative (``q + shift`` would take numba's wraparound test, which
+            # keeps the loop from being vectorised)
+            from_v = flat_v[shifts[t] :]
             for q in range(span):
-                acc_d[q] += w * from_d[q]
+                acc_v[q] += w * from_v[q]
+            if derivatives:
+                from_d = flat_d[shifts[t] :]
+                for q in range(span):
+                    acc_d[q] += w * from_d[q]
     if transpose:
         out_v = _columns(acc_v, stride, n, rows)
         out_d = _columns(acc_d, stride, n, rows if derivatives else 0)
@@ -162,6 +166,27 @@ def _rows(
     out_v = _scaled_rows(acc_v, stride, n, weights, n_samples, sigmas.size)
     out_d = _scaled_rows(acc_d, stride, n, weights, n_samples, sigmas.size if derivatives else 0)
     return out_v, out_d
+
+
+@njit(nogil=True)
+def _four_taps(flat, taps, shifts, span):
+    """``sum_t taps[t] flat[q + shifts[t]]`` for ``q < span``, four taps in one pass.
+
+    The sums of :func:`_rows`' loop over the taps (a zero, then each tap's
+    product added in turn: the same operations in the same order, so the
+    same bits, a product of -0 included) without passing over the sums once
+    per tap: 0.85 us instead of 2.3 us for 2400 values.
+    """
+    out = np.empty(span)
+    if span == 0:
+        return out
+    w0, w1, w2, w3 = taps[0], taps[1], taps[2], taps[3]
+    # views from each tap's shift on (indices the compiler knows are not
+    # negative: no wraparound test, and the loop is vectorised)
+    a, b, c, d = flat[shifts[0] :], flat[shifts[1] :], flat[shifts[2] :], flat[shifts[3] :]
+    for q in range(span):
+        out[q] = (((0.0 + w0 * a[q]) + w1 * b[q]) + w2 * c[q]) + w3 * d[q]
+    return out
 
 
 @njit(nogil=True)

@@ -127,7 +127,10 @@ def _responses_at(grid: KernelGrid, x_start, xs, ys, point: bool):
     """
     if point:
         return [None for _ in xs]
-    return [grid.response(x_start + x, y) for x, y in zip(xs, ys, strict=True)]
+    if not len(xs):
+        return []
+    # all at once: the same values as ``grid.response`` one by one
+    return grid.responses(x_start + np.asarray(xs, dtype=float), ys)
 
 
 def seeing_curves(
@@ -177,9 +180,14 @@ def seeing_curves(
 
     mixtures = _mixture_tables(profile, fwhm_grid)
     rows, curves = [], []
-    for x, y in candidates:
-        kern = _kernels_at(grid, x_start, [x], [y], KERNEL_SPACING * profile.fwhm, point_kernel)
-        resp = _responses_at(grid, x_start, [x], [y], point_kernel)
+    # every candidate's kernel and response looked up at once (the same values
+    # as one by one)
+    xs, ys = [x for x, _ in candidates], [y for _, y in candidates]
+    spacing = KERNEL_SPACING * profile.fwhm
+    kernels = _kernels_at(grid, x_start, xs, ys, spacing, point_kernel) if xs else []
+    responses = _responses_at(grid, x_start, xs, ys, point_kernel)
+    for x, y, one_kernel, one_response in zip(xs, ys, kernels, responses, strict=True):
+        kern, resp = [one_kernel], [one_response]
         y0, y1, x0, x1, clipped = _stamp(residual.shape, [x], [y], kern, 1.5 * profile.fwhm)
         if clipped:
             continue

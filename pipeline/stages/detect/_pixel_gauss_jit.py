@@ -28,12 +28,19 @@ def _erf_and_gauss_many(zs, erf_table, gauss_table, c, g, scratch):
     ``1 / _NODES_PER_SIGMA`` apart); -1 and 0 below the tables, 1 and 0
     above.
 
-    In two loops: the table look-ups, one value at a time, into
-    ``scratch`` (shape (7, zs.size), the last row the table indices); then
-    the Hermite interpolation, which the compiler vectorises (a loop that
-    reads the tables at computed indices is not, the gathers' cost being
-    judged too high), 1.6 times faster than one value at a time (the
-    tests' reference, which this equals to the bit).
+    In three loops: each value's table index, fraction and state (below,
+    inside or above the tables), without branches (selects, which the
+    compiler can vectorise; the loop that did this with branches and the
+    look-ups together ran one value at a time); the table look-ups at those
+    indices; then the Hermite interpolation, which
+    the compiler vectorises (a loop that also reads the tables at computed
+    indices is not, the gathers' cost being judged too high).  All into
+    ``scratch`` (shape (7, zs.size), the last row the table indices).  The
+    same values as one at a time (the tests' reference, which this equals
+    to the bit): outside the tables the index is 0 and the fraction ``u``,
+    as before, and the state sets the result.  The look-ups took 1.7 ns per
+    value instead of 2.2 to 2.5 ns with one branchy loop (2400 values
+    within +-6 or +-20 sigma, this machine).
     """
     m = zs.size
     last = erf_table.size - 2
@@ -41,24 +48,22 @@ def _erf_and_gauss_many(zs, erf_table, gauss_table, c, g, scratch):
     frac, e0, e1, g0s, g1s, state = (
         scratch[0], scratch[1], scratch[2], scratch[3], scratch[4], scratch[5]
     )  # fmt: skip
+    index = scratch[6]
     for e in range(m):
         u = (zs[e] + _REACH) * _NODES_PER_SIGMA
-        i = 0
-        if u <= 0.0:
-            state[e] = -1.0
-        else:
-            i = int(u)
-            if i > last:
-                state[e] = 1.0
-                i = 0
-            else:
-                state[e] = 0.0
+        k = int(max(u, 0.0))
+        low = u <= 0.0
+        high = k > last
+        i = 0 if (low or high) else k
+        state[e] = -1.0 if low else (1.0 if high else 0.0)
         frac[e] = u - i
+        index[e] = i
+    for e in range(m):
+        i = int(index[e])
         e0[e] = erf_table[i]
         e1[e] = erf_table[i + 1]
         g0s[e] = gauss_table[i]
         g1s[e] = gauss_table[i + 1]
-        scratch[6, e] = i
     for e in range(m):
         f = frac[e]
         f2 = f * f

@@ -100,15 +100,17 @@ def saturated_footprints(mask: np.ndarray, grow: float) -> Footprints | None:
     return Footprints(kept, ndimage.find_objects(labels), clipped)
 
 
-def dilate_sparse(pixels: np.ndarray, structure: np.ndarray, tile: int = 64) -> np.ndarray:
+def dilate_sparse(pixels: np.ndarray, structure: np.ndarray) -> np.ndarray:
     """``scipy.ndimage.binary_dilation(pixels, structure)`` where few pixels are set.
 
-    Dilation distributes over a union: the image is cut into tiles of
-    ``tile`` x ``tile`` pixels and only the tiles holding set pixels are
-    dilated, each in a window widened by the structure's reach, so the
-    result is the same, exactly.  On a crowded 1035 x 4096 stretch (22 000
-    saturated and bleed pixels, a disk of radius 3) 0.07 s of CPU for the
-    whole image, a few ms here.
+    The dilation is the union of the structure placed on each set pixel
+    (its centre on the pixel, cut by the image's edges): one shifted copy of
+    the set pixels' coordinates per element of the structure, set in an
+    empty image, so the result is the same, exactly.  On the benchmark
+    night's stretch 5 (4109 x 1090 pixels, 18 000 saturated and bleed
+    pixels, a disk of radius 3) 0.018 s of CPU with a dilation of each
+    64 x 64 tile that held some (which had replaced 0.07 s for the whole
+    image on a crowded 1035 x 4096 stretch), 0.009 s here.
 
     Parameters
     ----------
@@ -119,27 +121,14 @@ def dilate_sparse(pixels: np.ndarray, structure: np.ndarray, tile: int = 64) -> 
     -------
     ndarray of bool, shape (ny, nx)
     """
-    from scipy import ndimage
-
     ny, nx = pixels.shape
     ry, rx = structure.shape[0] // 2, structure.shape[1] // 2
-    out = np.zeros_like(pixels, dtype=bool)
-    rows = np.flatnonzero(
-        np.logical_or.reduceat(pixels, np.arange(0, ny, tile), axis=0).any(axis=1)
-    )
-    for i in rows:
-        band = pixels[i * tile : (i + 1) * tile]
-        for j in np.flatnonzero(
-            np.logical_or.reduceat(band, np.arange(0, nx, tile), axis=1).any(axis=0)
-        ):
-            y0, y1 = max(i * tile - ry, 0), min((i + 1) * tile + ry, ny)
-            x0, x1 = max(j * tile - rx, 0), min((j + 1) * tile + rx, nx)
-            own = np.zeros((y1 - y0, x1 - x0), bool)
-            a, b = i * tile - y0, j * tile - x0
-            own[a : a + tile, b : b + tile] = pixels[
-                i * tile : (i + 1) * tile, j * tile : (j + 1) * tile
-            ]
-            out[y0:y1, x0:x1] |= ndimage.binary_dilation(own, structure=structure)
+    out = np.zeros(pixels.shape, dtype=bool)
+    ys, xs = np.nonzero(pixels)
+    for dy, dx in zip(*np.nonzero(structure), strict=True):
+        y, x = ys + (int(dy) - ry), xs + (int(dx) - rx)
+        inside = (y >= 0) & (y < ny) & (x >= 0) & (x < nx)
+        out[y[inside], x[inside]] = True
     return out
 
 
