@@ -1712,3 +1712,29 @@ def test_a_night_wide_stage_reads_only_the_products_it_looks_up(tmp_path: Path) 
         assert not hdul["FLUX"]._data_loaded  # opened lazily: the header alone
         assert len(read) == 3
     assert hdul._file.closed
+
+
+def test_units_are_profiled_where_they_run_when_asked(toy, tmp_path, monkeypatch) -> None:
+    """With ZDRIFT_PROFILE_DIR set, every unit that runs leaves a cProfile file of its
+    stage's computation, in the workers too (they inherit the variable); the
+    products are those of a run without it."""
+    import pstats
+
+    from pipeline.runner._unit import PROFILE_DIR_VARIABLE
+
+    make_config, _ = toy
+    config = make_config("run.executor=local", "run.workers=2")
+    assert run_night(config).ok
+    reference = product_hashes(config)
+    folder = tmp_path / "profiles"
+    monkeypatch.setenv(PROFILE_DIR_VARIABLE, str(folder))
+    assert run_night(config, force=True).ok
+    assert product_hashes(config) == reference
+    files = sorted(folder.glob("*.prof"))
+    units = {"-".join(path.stem.split("-")[:2]) for path in files}
+    assert units == {key.replace("/", "-") for key in sidecars(config)}
+    pids = {int(path.stem.split("-")[2]) for path in files}
+    assert pids == {record["pid"] for record in sidecars(config).values()}
+    assert len(pids) > 1  # in the workers: the stretches ran in two
+    stats = pstats.Stats(*map(str, files))
+    assert any(name == "scale_rows" for _file, _line, name in stats.stats)

@@ -282,6 +282,37 @@ def _damaged_input(exc: BaseException) -> list[tuple[str, str]]:
     return []
 
 
+#: Environment variable naming a folder: each unit's computation (the stage's
+#: ``run``, not its reading and writing) is profiled with cProfile there, one
+#: file ``<stage>-<unit>-<pid>.prof`` per unit, in whichever process runs it.
+PROFILE_DIR_VARIABLE = "ZDRIFT_PROFILE_DIR"
+
+
+@contextlib.contextmanager
+def _profiled(task: UnitTask) -> Iterator[None]:
+    """Profile the block into :data:`PROFILE_DIR_VARIABLE`'s folder, if it is set.
+
+    A stage's cost inside a whole run can differ from a benchmark of it
+    alone (it reads its inputs from files, beside another worker); the
+    files add up with ``pstats.Stats(*files)``.
+    """
+    folder = os.environ.get(PROFILE_DIR_VARIABLE)
+    if not folder:
+        yield
+        return
+    import cProfile
+
+    profile = cProfile.Profile()
+    profile.enable()
+    try:
+        yield
+    finally:
+        profile.disable()
+        name = f"{task.stage.name}-{task.unit}-{os.getpid()}.prof"
+        os.makedirs(folder, exist_ok=True)
+        profile.dump_stats(os.path.join(folder, name))
+
+
 def execute_unit(task: UnitTask) -> UnitOutcome:
     """Run one unit: load inputs, call the stage, write products, then the sidecar.
 
@@ -308,7 +339,10 @@ def _execute_unit(task: UnitTask) -> UnitOutcome:
                 warnings.simplefilter("always")
                 inputs = {spec.name: spec.load(read, files) for spec in task.inputs}
                 t1 = time.perf_counter()
-                products = task.stage.run(inputs=inputs, options=task.options, context=task.context)
+                with _profiled(task):
+                    products = task.stage.run(
+                        inputs=inputs, options=task.options, context=task.context
+                    )
             products, problems = _check_products(task, products)
             problems = [*task.input_problems, *problems]
             t2 = time.perf_counter()
