@@ -3,8 +3,8 @@
 :func:`clip_sorted_rows` for :func:`pipeline.stages.detect._mesh.clipped_medians`
 (the background), :func:`label_pixels` for the deblending's
 (:func:`pipeline.stages.detect._find.deblend_segments`) regions above each
-threshold, and :func:`level_markers`, its markers from all the thresholds.  Kept apart so that numba is imported only when the detect stage
-first runs.
+threshold, and :func:`level_markers`, its markers from all the thresholds.
+Kept apart so that numba is imported only when the detect stage first runs.
 """
 
 from __future__ import annotations
