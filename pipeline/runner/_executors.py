@@ -294,7 +294,7 @@ def _start_worker(parent_pid: int, modules: Sequence[str], plan: WarmPlan = ()) 
     prepare_worker(modules, plan)
 
 
-def _here(fn: Callable[[Any], Outcome], task: Any) -> Outcome:
+def _computed_here(fn: Callable[[Any], Outcome], task: Any) -> Outcome:
     """``fn(task)`` in this process, with a worker's BLAS threads (:func:`threads_of_a_worker`)."""
     with threads_of_a_worker():
         return fn(task)
@@ -346,12 +346,12 @@ class Executor:
         while ready:
             if key is not None:
                 ready.sort(key=key)
-            ready.extend(on_done(_here(fn, ready.pop(0))))
+            ready.extend(on_done(_computed_here(fn, ready.pop(0))))
 
     def map(self, fn: Callable[[Any], Outcome], tasks: Sequence[Any], on_error: OnError):
         """Yield ``fn(task)`` for every task, in completion order."""
         for task in tasks:
-            yield _here(fn, task)
+            yield _computed_here(fn, task)
 
     def close(self) -> None:
         """Release workers."""
