@@ -10,6 +10,7 @@ import contextlib
 import dataclasses
 import datetime
 import errno
+import hashlib
 import json
 import os
 import shutil
@@ -322,6 +323,91 @@ def test_a_failed_flush_fails_the_write_and_leaves_no_file(tmp_path: Path, monke
     with pytest.raises(OSError, match=os.strerror(errno.EIO)):
         _store.atomic_write(path, lambda temp: temp.write_text("[1, 2]\n"))
     assert list(tmp_path.iterdir()) == []  # neither the product nor its temporary file
+
+
+def _count_hashing(monkeypatch) -> list[Path]:
+    """Record every file the store hashes from its bytes."""
+    hashed, real = [], _store._file_sha256
+
+    def counting(path: Path) -> str:
+        hashed.append(Path(path))
+        return real(path)
+
+    monkeypatch.setattr(_store, "_file_sha256", counting)
+    monkeypatch.setattr(_store, "_KNOWN", {})
+    return hashed
+
+
+def _sha256(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def _settled(path: Path, seconds: float = 1.0) -> int:
+    """Date ``path``'s times ``seconds`` back (its change time becomes now); the new time."""
+    back = time.time_ns() - int(seconds * 1e9)
+    back -= back % 1_000_000 - 123_457  # a time with sub-millisecond digits, as ext4 keeps
+    os.utime(path, ns=(back, back))
+    return back
+
+
+def test_a_settled_file_this_process_hashed_is_checked_by_its_identity(tmp_path, monkeypatch):
+    hashed = _count_hashing(monkeypatch)
+    path = tmp_path / "table.json"
+
+    def write(temp: Path) -> None:
+        temp.write_text("[1, 2]\n")
+        _settled(temp)  # as a file written well before it is hashed
+
+    digest, _ = _store.atomic_write(path, write)
+    assert [p.name[:12] for p in hashed] == [".table.json."]  # the temporary file, once
+    for _ in range(3):  # read back: known by its identity and times, not hashed again
+        assert _store.verify_product(path, {"sha256": digest}) == digest
+    assert len(hashed) == 1
+    # An unknown settled file is hashed once, then known.
+    other = tmp_path / "other.json"
+    other.write_text("[3]\n")
+    _settled(other)
+    for _ in range(2):
+        _store.verify_product(other, {"sha256": _sha256(other)})
+    assert hashed[1:] == [other]
+
+
+def test_a_known_file_changed_in_place_is_hashed_again(tmp_path, monkeypatch) -> None:
+    _count_hashing(monkeypatch)
+    path = tmp_path / "table.json"
+    path.write_text("[1, 2]\n")
+    back = _settled(path)
+    entry = {"sha256": _sha256(path)}
+    _store.verify_product(path, entry)  # now known
+    # Same size, and the modification time put back (as `touch -r` or a copy
+    # keeping times would): only the change time tells.
+    path.write_text("[1, 3]\n")
+    os.utime(path, ns=(back, back))
+    with pytest.raises(DamagedProductError, match="content changed"):
+        _store.verify_product(path, entry)
+    # Replaced by another file (a new inode) with the same content and times: hashed again.
+    path.write_text("[1, 2]\n")
+    os.utime(path, ns=(back, back))
+    assert _store.verify_product(path, entry) == entry["sha256"]
+
+
+def test_a_file_hashed_just_after_it_changed_is_not_remembered(tmp_path, monkeypatch) -> None:
+    # A change within the clock tick the file system stamps times with could
+    # keep the times the file had when hashed: it is hashed at every check.
+    hashed = _count_hashing(monkeypatch)
+    path = tmp_path / "table.json"
+    _store.atomic_write(path, lambda temp: temp.write_text("[1, 2]\n"))
+    entry = {"sha256": _sha256(path)}
+    path.write_text("[1, 2]\n")  # fresh times
+    for _ in range(2):
+        _store.verify_product(path, entry)
+    assert len(hashed) == 3  # written, then checked twice
+    # Neither are files whose times are in whole milliseconds (a file system with coarse times).
+    coarse = time.time_ns() - 10**9
+    os.utime(path, ns=(coarse - coarse % 1_000_000,) * 2)
+    for _ in range(2):
+        _store.verify_product(path, entry)
+    assert len(hashed) == 5
 
 
 def test_read_rows_applies_bzero_and_fills_gaps_with_nan(tmp_path: Path) -> None:

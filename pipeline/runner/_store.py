@@ -13,6 +13,18 @@ sidecar exists, parses and lists product files that exist with the recorded
 sizes; the sidecar is removed before a unit's products are replaced and
 written after all of them, so a run killed at any point leaves the unit either
 done (old or new) or not done, never half-done.
+
+A product's content is checked against the SHA-256 its sidecar records
+before it is read (:func:`verify_product`).  Hashing is the store's main
+cost (a long night's units hash ~7 GB, ~4 s of CPU), so a process remembers
+the digests of the files it has hashed (written or checked) with the file's
+identity and times (device, inode, size, modification and change times) and
+checks a file it remembers by those alone: a file rewritten or renamed over
+gets a new inode or new times.  A file modified less than
+:data:`SETTLE_SECONDS` before it was hashed is not remembered (a second
+change within the file system's clock tick could leave its times as they
+were, the "racy" case of version-control tools), nor are files on a file
+system that keeps coarse times.
 """
 
 from __future__ import annotations
@@ -22,6 +34,7 @@ import hashlib
 import json
 import os
 import threading
+import time
 import uuid
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
@@ -98,6 +111,60 @@ def _file_sha256(path: Path) -> str:
     return digest.hexdigest()
 
 
+# ------------------------------------------------------- digests this process knows
+
+#: Seconds a file must have been left unmodified, when its state is taken,
+#: for its digest to be remembered (see the module docstring): twice the
+#: longest clock tick Linux stamps file times with (10 ms; a change after
+#: that moment gets a later time).
+SETTLE_SECONDS = 0.02
+#: Files remembered at most (the oldest are forgotten first).
+_KNOWN_MAX = 4096
+#: ``path -> (identity and times, SHA-256)`` of files this process hashed.
+_KNOWN: dict[str, tuple[tuple[int, ...], str]] = {}
+
+
+def _identity(status: os.stat_result) -> tuple[int, ...]:
+    return (
+        status.st_dev,
+        status.st_ino,
+        status.st_size,
+        status.st_mtime_ns,
+        status.st_ctime_ns,
+    )
+
+
+def _remember(path: Path, digest: str, taken_ns: int, status: os.stat_result) -> None:
+    """Remember ``path``'s digest, if the file had settled when its state was taken.
+
+    ``status`` is the state of the file whose content has ``digest``, taken
+    just after ``taken_ns`` (:func:`time.time_ns`).  Times in whole
+    milliseconds mark a file system with coarse times, where a later change
+    may keep them: such files are not remembered.
+    """
+    modified = status.st_mtime_ns
+    if modified % 1_000_000 == 0 or taken_ns - modified < SETTLE_SECONDS * 1e9:
+        return
+    key = os.path.abspath(path)
+    _KNOWN.pop(key, None)
+    _KNOWN[key] = (_identity(status), digest)
+    while len(_KNOWN) > _KNOWN_MAX:
+        _KNOWN.pop(next(iter(_KNOWN)), None)
+
+
+def _checked_sha256(path: Path) -> str:
+    """SHA-256 of a file: remembered if it is unchanged since this process hashed it."""
+    taken_ns = time.time_ns()
+    status = os.stat(path)
+    known = _KNOWN.get(os.path.abspath(path))
+    if known is not None and known[0] == _identity(status):
+        return known[1]
+    digest = _file_sha256(path)
+    if _identity(os.stat(path)) == _identity(status):  # not changed while hashed
+        _remember(path, digest, taken_ns, status)
+    return digest
+
+
 def atomic_write(path: Path, write: Callable[[Path], None]) -> tuple[str, int]:
     """Write ``path`` via ``write(temp_path)`` and an atomic rename.
 
@@ -123,6 +190,7 @@ def atomic_write(path: Path, write: Callable[[Path], None]) -> tuple[str, int]:
             flushed.result()  # raises the flush's OSError here
         size = temp.stat().st_size
         os.replace(temp, path)
+        _remember(path, digest, time.time_ns(), os.stat(path))
     finally:
         with contextlib.suppress(FileNotFoundError):
             temp.unlink()
@@ -356,7 +424,7 @@ def verify_product(path: Path, entry: Mapping[str, Any]) -> str:
         If the file cannot be read or its content differs from the record.
     """
     try:
-        digest = _file_sha256(Path(path))
+        digest = _checked_sha256(Path(path))
     except OSError as exc:
         raise DamagedProductError(path, f"cannot be read ({exc.strerror or exc})") from None
     if digest != entry.get("sha256"):
