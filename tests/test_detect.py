@@ -1197,6 +1197,7 @@ def test_a_segment_split_only_at_the_top_threshold_is_split_as_photutils_splits_
     np.testing.assert_array_equal(ours.data, theirs.data)
     assert ours.deblended_label_to_parent == theirs.deblended_label_to_parent
 
+
 def test_segment_moments_are_photutils_source_catalog():
     # photutils' SourceCatalog is the reference for the centroids and shapes,
     # to rounding (sums in another order).  The segments include masked pixels
