@@ -43,6 +43,7 @@ from astropy import units as u
 from astropy.io import fits
 from astropy.table import QTable, Table
 
+import pipeline.runner as runner_module
 import pipeline.runner._executors as _executors
 import pipeline.runner._lock as _lock
 import pipeline.runner._store as _store
@@ -70,7 +71,7 @@ from pipeline.runner._lock import RunLock
 from pipeline.runner._night import NightStore
 from pipeline.runner._rawio import read_rows
 from pipeline.runner._store import SIDECAR_NAME, read_products, read_sidecar, write_products
-from pipeline.runner._unit import execute_unit
+from pipeline.runner._unit import UnitOutcome, UnitTask, execute_unit
 from pipeline.stages.base import (
     NEIGHBOURS,
     RAW_FILES,
@@ -363,13 +364,17 @@ def test_a_settled_file_this_process_hashed_is_checked_by_its_identity(tmp_path,
     for _ in range(3):  # read back: known by its identity and times, not hashed again
         assert _store.verify_product(path, {"sha256": digest}) == digest
     assert len(hashed) == 1
+    # An explicit check of a unit (`zdrift status --verify`) hashes every file.
+    _store.verify_unit(tmp_path, {"products": {"t": {"file": path.name, "sha256": digest}}})
+    assert hashed[1:] == [path]
+    hashed.clear()
     # An unknown settled file is hashed once, then known.
     other = tmp_path / "other.json"
     other.write_text("[3]\n")
     _settled(other)
     for _ in range(2):
         _store.verify_product(other, {"sha256": _sha256(other)})
-    assert hashed[1:] == [other]
+    assert hashed == [other]
 
 
 def test_a_known_file_changed_in_place_is_hashed_again(tmp_path, monkeypatch) -> None:
@@ -1693,6 +1698,42 @@ def test_a_stage_gets_its_neighbours_edge_rows(seams, executor: str) -> None:
     # Nothing changed: nothing reruns.
     again = run_night(config)
     assert again.ok and again.count("ran") == 0
+
+
+def test_a_product_is_hashed_once_whichever_worker_reads_it(seams, tmp_path, monkeypatch):
+    # Each unit runs as in a fresh worker (remembering nothing but what the
+    # run hands it); every file is remembered as soon as it is written.
+    monkeypatch.setattr(_store, "SETTLE_SECONDS", 0.0)
+    hashed = _count_hashing(monkeypatch)
+    tasks, real = [], runner_module.execute_unit
+
+    def as_in_a_new_worker(task: UnitTask) -> UnitOutcome:
+        tasks.append(task)
+        run_process, _store._KNOWN = _store._KNOWN, {}
+        try:
+            return real(task)
+        finally:
+            _store._KNOWN = run_process
+
+    monkeypatch.setattr(runner_module, "execute_unit", as_in_a_new_worker)
+    make_config, _ = seams
+    config = make_config()
+    probe = tmp_path / "probe"
+    probe.write_text("")
+    if probe.stat().st_mtime_ns % 1_000_000 == 0:
+        pytest.skip("a file system with coarse times: nothing is remembered there")
+    assert run_night(config).ok
+    # seams/s0001 reads scale's s0000, s0001 and s0002: handed their identities and digests.
+    task = next(t for t in tasks if (t.stage.name, t.unit) == ("seams", "s0001"))
+    records = sidecars(config)
+    expected = {
+        os.path.abspath(night_dir(config) / "scale" / unit / entry["file"]): entry["sha256"]
+        for unit in ("s0000", "s0001", "s0002")
+        for entry in records[f"scale/{unit}"]["products"].values()
+    }
+    assert {path: digest for path, (_, digest) in task.known_inputs.items()} == expected
+    # Only files being written were hashed (under their temporary names): no read hashed one.
+    assert hashed and [p for p in hashed if not p.name.startswith(".")] == []
 
 
 def test_a_changed_stretch_reruns_its_neighbours_only(seams, tmp_path: Path) -> None:

@@ -51,7 +51,7 @@ from pipeline.runner._nightly import (
     reduce_night,
     report_page,
 )
-from pipeline.runner._store import clear_failure, mark_damaged, write_failure
+from pipeline.runner._store import clear_failure, learn_digests, mark_damaged, write_failure
 from pipeline.runner._unit import UnitOutcome, UnitTask, execute_unit, failed_outcome
 from pipeline.runner._warm import warm_plan
 from pipeline.stages.base import STRETCH_PIXELS, Stage, Stretch
@@ -751,6 +751,8 @@ def _record_outcome(
     for path, reason in outcome.damaged:
         _note_damage(night, Path(path), reason)
     if outcome.ok:
+        night.known.update(outcome.known)  # for the units that read them
+        learn_digests(outcome.known)  # and this process (the night's block index)
         log.info("%s/%s done in %.2f s", outcome.stage, outcome.unit, outcome.seconds)
         if outcome.problems:
             log.warning(

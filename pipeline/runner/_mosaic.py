@@ -162,6 +162,8 @@ class MosaicStore:
         self.root = mosaic_dir(config)
         self.stages = {TILE_STAGE.name: TILE_STAGE}
         self.damaged: dict[tuple[str, str], str] = {}
+        #: What the workers remember of the tiles they wrote (no tile reads another's).
+        self.known: dict[str, tuple[tuple[int, ...], str]] = {}
         self.options = TileOptions(coadd=config.coadd, detect=config.detect)
         self.products: list[InputProduct] = []
         self.problems: list[str] = []

@@ -19,7 +19,8 @@ from __future__ import annotations
 import dataclasses
 import itertools
 import operator
-from collections.abc import Iterable
+import os
+from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -147,6 +148,9 @@ class NightStore:
         self._parsed_index: tuple[str, Any] | None = None
         #: SHA-256 of the files options name, by (path, size, modification time).
         self._digests: dict[tuple[str, int, int], str] = {}
+        #: What this run's workers remember of the products they wrote, by path
+        #: (see :func:`pipeline.runner._store.known_digests`), for the units that read them.
+        self.known: dict[str, tuple[tuple[int, ...], str]] = {}
         self.root = night_dir(config)
         self.raw_dir = Path(config.night.raw_dir)
         self.stages = {stage.name: stage for stage in config.graph}
@@ -649,4 +653,18 @@ class NightStore:
             missing_stretches=dict(missing),
             input_problems=tuple(missing_problems(missing) if problems is None else problems),
             lock=lock,
+            known_inputs=self._known_inputs(specs),
         )
+
+    def _known_inputs(self, specs: Sequence[InputSpec]) -> dict[str, tuple[tuple[int, ...], str]]:
+        """What the run's workers remember of the product files ``specs`` read."""
+        units = []
+        for spec in specs:
+            units += spec.units
+            units += [unit for _, pair in spec.neighbours for unit in pair if unit is not None]
+        paths = (
+            os.path.abspath(folder / entry["file"])
+            for folder, sidecar in units
+            for entry in sidecar["products"].values()
+        )
+        return {path: self.known[path] for path in paths if path in self.known}

@@ -24,7 +24,11 @@ gets a new inode or new times.  A file modified less than
 :data:`SETTLE_SECONDS` before it was hashed is not remembered (a second
 change within the file system's clock tick could leave its times as they
 were, the "racy" case of version-control tools), nor are files on a file
-system that keeps coarse times.
+system that keeps coarse times.  A worker hands what it remembers of the
+files it wrote to the runner (:func:`known_digests`), which hands it to the
+units of the same run that read them (:func:`learn_digests`): a stretch's
+products are then hashed once, as they are written, whichever worker reads
+them.  An explicit check of a night (:func:`verify_unit`) hashes every file.
 """
 
 from __future__ import annotations
@@ -36,7 +40,7 @@ import os
 import threading
 import time
 import uuid
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
@@ -60,6 +64,8 @@ __all__ = [
     "clean_unit",
     "clear_failure",
     "hash_json",
+    "known_digests",
+    "learn_digests",
     "mark_damaged",
     "output_hash",
     "read_damage",
@@ -122,6 +128,7 @@ SETTLE_SECONDS = 0.02
 _KNOWN_MAX = 4096
 #: ``path -> (identity and times, SHA-256)`` of files this process hashed.
 _KNOWN: dict[str, tuple[tuple[int, ...], str]] = {}
+Known = Mapping[str, tuple[tuple[int, ...], str]]
 
 
 def _identity(status: os.stat_result) -> tuple[int, ...]:
@@ -145,18 +152,36 @@ def _remember(path: Path, digest: str, taken_ns: int, status: os.stat_result) ->
     modified = status.st_mtime_ns
     if modified % 1_000_000 == 0 or taken_ns - modified < SETTLE_SECONDS * 1e9:
         return
-    key = os.path.abspath(path)
-    _KNOWN.pop(key, None)
-    _KNOWN[key] = (_identity(status), digest)
+    learn_digests({os.path.abspath(path): (_identity(status), digest)})
+
+
+def known_digests(paths: Iterable[Path]) -> dict[str, tuple[tuple[int, ...], str]]:
+    """What this process remembers of ``paths`` (see the module docstring), by absolute path.
+
+    For :func:`learn_digests` in another process of the same run.
+    """
+    keys = (os.path.abspath(path) for path in paths)
+    return {key: _KNOWN[key] for key in keys if key in _KNOWN}
+
+
+def learn_digests(known: Known) -> None:
+    """Remember files' digests, identities and times that :func:`known_digests` gave.
+
+    Only for what a process of the same run remembered: such a file is then
+    checked by its identity and times, as in the process that hashed it.
+    """
+    for key, (identity, digest) in known.items():
+        _KNOWN.pop(key, None)
+        _KNOWN[key] = (tuple(identity), digest)
     while len(_KNOWN) > _KNOWN_MAX:
         _KNOWN.pop(next(iter(_KNOWN)), None)
 
 
-def _checked_sha256(path: Path) -> str:
+def _checked_sha256(path: Path, remembered: bool = True) -> str:
     """SHA-256 of a file: remembered if it is unchanged since this process hashed it."""
     taken_ns = time.time_ns()
     status = os.stat(path)
-    known = _KNOWN.get(os.path.abspath(path))
+    known = _KNOWN.get(os.path.abspath(path)) if remembered else None
     if known is not None and known[0] == _identity(status):
         return known[1]
     digest = _file_sha256(path)
@@ -415,8 +440,11 @@ def _read_ecsv(path: Path, cls: type[Table]) -> Table:
         return table
 
 
-def verify_product(path: Path, entry: Mapping[str, Any]) -> str:
+def verify_product(path: Path, entry: Mapping[str, Any], remembered: bool = True) -> str:
     """Check a product file against the SHA-256 its sidecar records; return the digest.
+
+    A file this process remembers (see the module docstring) is checked by
+    its identity and times, unless ``remembered`` is False.
 
     Raises
     ------
@@ -424,7 +452,7 @@ def verify_product(path: Path, entry: Mapping[str, Any]) -> str:
         If the file cannot be read or its content differs from the record.
     """
     try:
-        digest = _checked_sha256(Path(path))
+        digest = _checked_sha256(Path(path), remembered)
     except OSError as exc:
         raise DamagedProductError(path, f"cannot be read ({exc.strerror or exc})") from None
     if digest != entry.get("sha256"):
@@ -437,9 +465,9 @@ def verify_product(path: Path, entry: Mapping[str, Any]) -> str:
 
 
 def verify_unit(unit_dir: Path, sidecar: Mapping[str, Any]) -> None:
-    """Check every product file a sidecar lists (see :func:`verify_product`)."""
+    """Check every product file a sidecar lists, hashing each (see :func:`verify_product`)."""
     for entry in sidecar["products"].values():
-        verify_product(unit_dir / entry["file"], entry)
+        verify_product(unit_dir / entry["file"], entry, remembered=False)
 
 
 def read_products(

@@ -38,6 +38,8 @@ from pipeline.runner._store import (
     check_products,
     clean_unit,
     hash_json,
+    known_digests,
+    learn_digests,
     output_hash,
     read_external,
     read_products,
@@ -142,6 +144,8 @@ class UnitTask:
     runner's problem lines about them, recorded before the stage's own problems.
     ``lock`` is the run's lock file and the token it holds: the worker writes
     nothing once the lock is no longer the run's (the run died).
+    ``known_inputs`` is what the run's workers remembered of the input files
+    they wrote (:func:`pipeline.runner._store.known_digests`).
     """
 
     stage: Stage
@@ -157,13 +161,16 @@ class UnitTask:
     missing_stretches: Mapping[str, str] = field(default_factory=dict)
     input_problems: tuple[str, ...] = ()
     lock: tuple[Path, str] | None = None
+    known_inputs: Mapping[str, tuple[tuple[int, ...], str]] = field(default_factory=dict)
 
 
 @dataclass
 class UnitOutcome:
     """What came of a unit: success with its output hash, or the failure.
 
-    ``damaged`` lists ``(product file, reason)`` for an input found damaged.
+    ``damaged`` lists ``(product file, reason)`` for an input found damaged;
+    ``known`` is what the worker remembers of the files it wrote (for the
+    units that read them, see :attr:`UnitTask.known_inputs`).
     """
 
     stage: str
@@ -177,6 +184,7 @@ class UnitOutcome:
     warnings: list[str] = field(default_factory=list)
     problems: list[str] = field(default_factory=list)
     damaged: list[tuple[str, str]] = field(default_factory=list)
+    known: dict[str, tuple[tuple[int, ...], str]] = field(default_factory=dict)
 
 
 def failed_outcome(task: UnitTask, error: str, tb: str | None = None) -> UnitOutcome:
@@ -328,6 +336,7 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
 
 def _execute_unit(task: UnitTask) -> UnitOutcome:
     wait_warm(task.stage.name)  # what the worker loads for the stage as it starts
+    learn_digests(task.known_inputs)
     started, t0 = _now(), time.perf_counter()
     with _captured_logs(task.capture_logs) as records:
         read: dict[str, str] = {}
@@ -396,6 +405,7 @@ def _execute_unit(task: UnitTask) -> UnitOutcome:
         ok=True,
         seconds=time.perf_counter() - t0,
         output_hash=record["output_hash"],
+        known=known_digests(task.unit_dir / entry["file"] for entry in entries.values()),
         records=list(records),
         warnings=record["warnings"],
         problems=problems,
