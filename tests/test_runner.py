@@ -415,6 +415,38 @@ def test_a_file_hashed_just_after_it_changed_is_not_remembered(tmp_path, monkeyp
     assert len(hashed) == 5
 
 
+def test_a_small_table_is_parsed_once_and_handed_out_as_copies(tmp_path, monkeypatch) -> None:
+    monkeypatch.setattr(_store, "_PARSED", {})
+    parsed, real = [], _store.read_product
+
+    def counting(path: Path, entry) -> Any:
+        parsed.append(Path(path).name)
+        return real(path, entry)
+
+    monkeypatch.setattr(_store, "read_product", counting)
+    table = Table({"row": [1, 2, 3]}, meta={"night": "n1"})
+    sidecar = {"products": write_products(tmp_path, {"index": table}, {})}
+    first = read_products(tmp_path, sidecar)["index"]
+    first["row"][0] = 99  # a stage changing what it was handed
+    first.meta["night"] = "changed"
+    second = read_products(tmp_path, sidecar)["index"]
+    second["row"][1] = 98
+    third = read_products(tmp_path, sidecar)["index"]
+    assert parsed == ["index.ecsv"]
+    for copy in (second, third):
+        assert list(copy["row"][::2]) == [1, 3] and copy.meta["night"] == "n1"
+    assert third["row"][1] == 2
+    # The same file rewritten with other content: parsed again.
+    sidecar = {"products": write_products(tmp_path, {"index": Table({"row": [4]})}, {})}
+    assert list(read_products(tmp_path, sidecar)["index"]["row"]) == [4]
+    assert parsed == ["index.ecsv", "index.ecsv"]
+    # A few tables at most are kept.
+    for n in range(2 * _store._PARSED_MAX):
+        sidecar = {"products": write_products(tmp_path / f"u{n}", {"t": Table({"a": [n]})}, {})}
+        read_products(tmp_path / f"u{n}", sidecar)
+    assert len(_store._PARSED) == _store._PARSED_MAX
+
+
 def test_read_rows_applies_bzero_and_fills_gaps_with_nan(tmp_path: Path) -> None:
     data = (np.arange(20, dtype=np.uint16).reshape(5, 4) + 65000).astype(np.uint16)
     fits.PrimaryHDU(data).writeto(tmp_path / "a.fits")
