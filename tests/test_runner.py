@@ -290,6 +290,17 @@ def test_an_image_product_is_written_without_copying_its_planes(tmp_path: Path) 
     assert np.array_equal(image["FLAGS"].data, kept[1])
     back = read_products(tmp_path, {"products": entries})["image"]
     assert np.array_equal(back["FLUX"].data, kept[0]) and back["FLUX"].header["ZDSTAGE"] == "t"
+    # Read back without copies either: the three planes as read (5 MiB), headers,
+    # and the digest's reads (1 MiB); a copy of the planes would hold 5 MiB more.
+    tracemalloc.start()
+    try:
+        back = read_products(tmp_path, {"products": entries})["image"]
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    planes = sum(hdu.data.nbytes for hdu in back if hdu.data is not None)
+    assert planes == 5 * 2**20 and peak < planes + 2 * 2**20
+    assert np.array_equal(back["FLAGS"].data, kept[1]) and back["FLAGS"].header["ZDSTAGE"] == "t"
 
 
 def test_a_product_is_on_disk_before_it_takes_its_name(tmp_path: Path, monkeypatch) -> None:
