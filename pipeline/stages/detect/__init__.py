@@ -943,7 +943,7 @@ def _subtract_models(image: np.ndarray, fits_, profile, in_place: bool = False) 
     cost as much again in Python as the models).
     """
     from pipeline.stages.detect._fit_jit import subtract_models_compiled
-    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_row
+    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_rows
 
     out = image if in_place else image.copy()
     kernels = fits_["kernel"]
@@ -960,7 +960,7 @@ def _subtract_models(image: np.ndarray, fits_, profile, in_place: bool = False) 
         np.concatenate([np.asarray(k[0], dtype=np.float64).ravel() for k in kernels]),
         np.concatenate([np.asarray(k[1], dtype=np.float64).ravel() for k in kernels]),
         samples,
-        np.array([_response_row(r) for r in fits_["response"]]).reshape(-1, 3),
+        _response_rows(fits_["response"]),
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
         3.0 * profile.fwhm,

@@ -625,7 +625,11 @@ def segment_moments(data: np.ndarray, segm, mask: np.ndarray, snr: np.ndarray) -
     labels = np.asarray(segm.labels)
     n = labels.size
     where = segment_pixels(segm)
-    index = np.searchsorted(labels, segm.data.reshape(-1)[where])  # each pixel's segment
+    # each pixel's segment, from a table of the labels' positions: the
+    # labels' binary search per pixel cost 1.6 ms a call on a crowded stretch
+    position = np.zeros(int(labels[-1]) + 1 if n else 1, dtype=np.intp)
+    position[labels] = np.arange(n)
+    index = position[segm.data.reshape(-1)[where]]
     rows, cols = np.divmod(where, segm.data.shape[1])
     corner_y = np.array([box[0].start for box in segm.slices], dtype=float)
     corner_x = np.array([box[1].start for box in segm.slices], dtype=float)
