@@ -250,6 +250,24 @@ def test_label_pixels_groups_them_as_scipy_label(fill):
     np.testing.assert_array_equal(region[np.sort(first)], np.arange(1, n + 1))
 
 
+def test_threshold_ranks_count_as_numpy_comparisons():
+    # numpy's ``values > thresholds`` (float32, as the deblending's map and
+    # thresholds) counted per pixel is the reference, with values equal to
+    # thresholds (not above them) and NaN (above none).
+    from pipeline.stages.detect._find_jit import threshold_ranks
+
+    rng = np.random.default_rng(12)
+    thresholds = np.sort(rng.random((5, 8)).astype(np.float32), axis=1)
+    segment = rng.integers(0, 5, 400)
+    values = rng.random(400).astype(np.float32)
+    values[:40] = thresholds[segment[:40], rng.integers(0, 8, 40)]  # ties
+    values[40] = np.nan
+    expected = np.count_nonzero(values[:, None] > thresholds[segment], axis=1)
+    ours = threshold_ranks(values, thresholds, segment)
+    np.testing.assert_array_equal(ours, expected)
+    assert ours[40] == 0 and ours.dtype == expected.dtype
+
+
 def test_filter_bands_weights_and_scales_rows_as_whole_plane_steps():
     # The same scipy.signal.oaconvolve reference, of the weighted plane (float64
     # data times float32 weights, rounded to single precision, 0 where the data

@@ -3,7 +3,8 @@
 :func:`clip_sorted_rows` for :func:`pipeline.stages.detect._mesh.clipped_medians`
 (the background), :func:`label_pixels` for the deblending's
 (:func:`pipeline.stages.detect._find.deblend_segments`) regions above each
-threshold, and :func:`level_markers`, its markers from all the thresholds.
+threshold, :func:`level_markers`, its markers from all the thresholds, and
+:func:`threshold_ranks`, how many thresholds each pixel exceeds.
 Kept apart so that numba is imported only when the detect stage first runs.
 """
 
@@ -15,7 +16,7 @@ import numpy as np
 
 from pipeline._jit import njit
 
-__all__ = ["clip_sorted_rows", "label_pixels", "level_markers", "load_compiled"]
+__all__ = ["clip_sorted_rows", "label_pixels", "level_markers", "load_compiled", "threshold_ranks"]
 
 
 @njit(nogil=True)
@@ -250,6 +251,28 @@ def level_markers(rank, position, segment, n_boxes, width, size, min_pixels, lev
     return marker, next_id
 
 
+@njit(nogil=True)
+def threshold_ranks(values, thresholds, segment):
+    """How many of its segment's thresholds each value exceeds (``>``), int64.
+
+    ``thresholds[segment[i]]`` are value ``i``'s; numpy's
+    ``count_nonzero(values[:, None] > thresholds[segment], axis=1)`` (the
+    same comparisons, of the same types) without its (pixels x levels)
+    arrays.
+    """
+    n, levels = values.shape[0], thresholds.shape[1]
+    out = np.zeros(n, np.int64)
+    for i in range(n):
+        row = thresholds[segment[i]]
+        v = values[i]
+        count = 0
+        for j in range(levels):
+            if v > row[j]:
+                count += 1
+        out[i] = count
+    return out
+
+
 def load_compiled() -> None:
     """Load the compiled loops in this process (from numba's disk cache once it is there).
 
@@ -262,3 +285,5 @@ def load_compiled() -> None:
     label_pixels(np.zeros(1, np.int64), 1, np.full(1, -1, np.int64))
     one = np.zeros(1, np.int64)
     level_markers(one, one, one, 1, 1, 1, 1, 1)
+    # the search's map is float32, its thresholds too (linspace of float32 bounds)
+    threshold_ranks(np.zeros(1, np.float32), np.zeros((1, 1), np.float32), one)
