@@ -268,6 +268,34 @@ def test_threshold_ranks_count_as_numpy_comparisons():
     assert ours[40] == 0 and ours.dtype == expected.dtype
 
 
+@pytest.mark.parametrize("plane_type", [np.float64, np.float32])
+def test_weighted_rows_are_numpys_product_with_the_inverse_variance(plane_type):
+    # numpy's steps are the reference, to the bit: the inverse variance in
+    # single precision (0 where the variance is NaN or <= 0), the product
+    # ``multiply(plane, inverse, out=<float32>)`` and 0 where not finite
+    # (no data, or an overflow to infinity).
+    from pipeline.stages.detect._find import inverse_variance
+    from pipeline.stages.detect._find_jit import weighted_rows
+
+    rng = np.random.default_rng(13)
+    shape = (40, 70)
+    plane = rng.normal(0.0, 30.0, shape).astype(plane_type)
+    plane[5, :] = np.nan
+    plane[6, :3] = 3e38  # times an inverse above 1: infinite in single precision
+    variance = rng.uniform(1e-3, 200.0, shape).astype(np.float32)
+    variance[:, 7] = np.nan
+    variance[:, 8] = 0.0
+    variance[:, 9] = -1.0
+    variance[6, :3] = 0.01
+    expected = np.empty(shape, np.float32)
+    with np.errstate(over="ignore"):
+        np.multiply(plane, inverse_variance(variance), out=expected)
+    assert np.isinf(expected[6, :3]).all()
+    expected[~np.isfinite(expected)] = 0.0
+    ours = weighted_rows(plane, variance, np.empty(shape, np.float32))
+    np.testing.assert_array_equal(ours.view(np.int32), expected.view(np.int32))
+
+
 def test_filter_bands_weights_and_scales_rows_as_whole_plane_steps():
     # The same scipy.signal.oaconvolve reference, of the weighted plane (float64
     # data times float32 weights, rounded to single precision, 0 where the data

@@ -318,6 +318,8 @@ def _filter_bands(
     """
     from scipy.fft import fft, ifft, irfft, next_fast_len, rfft
 
+    from pipeline.stages.detect._find_jit import weighted_rows
+
     ny, nx = (plane if plane is not None else variance).shape
     margin = max(hy for _, _, _, hy in templates)
     rows = max(hi - lo for lo, hi, _, _ in templates) + 2 * margin
@@ -332,10 +334,17 @@ def _filter_bands(
         top, bottom = group[0][0], group[-1][1]  # the group's rows (its bands adjoin)
         a, b = max(top - margin, 0), min(bottom + margin, ny)
         inverse = weights[a:b] if weights is not None else None
-        if inverse is None and variance is not None:
-            inverse = inverse_variance(variance[a:b])
-        if plane is None:
-            rows = inverse
+        if plane is not None and inverse is None and variance is not None:
+            # the inverse variance and the product in one compiled pass (the
+            # same values): 2.5 ms of CPU instead of 10 ms for the 4109 x
+            # 1090 pixels of the benchmark night's stretch 5
+            rows = weighted_rows(
+                np.ascontiguousarray(plane[a:b]),
+                np.ascontiguousarray(variance[a:b]),
+                np.empty((b - a, nx), np.float32),
+            )
+        elif plane is None:
+            rows = inverse if inverse is not None else inverse_variance(variance[a:b])
         elif inverse is not None:
             # in double precision, rounded once to single (as numpy's
             # ``multiply(plane, weights, out=<float32>)``)

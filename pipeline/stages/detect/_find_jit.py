@@ -4,7 +4,8 @@
 (the background), :func:`label_pixels` for the deblending's
 (:func:`pipeline.stages.detect._find.deblend_segments`) regions above each
 threshold, :func:`level_markers`, its markers from all the thresholds, and
-:func:`threshold_ranks`, how many thresholds each pixel exceeds.
+:func:`threshold_ranks`, how many thresholds each pixel exceeds, and
+:func:`weighted_rows`, the matched filter's weighted rows.
 Kept apart so that numba is imported only when the detect stage first runs.
 """
 
@@ -16,7 +17,14 @@ import numpy as np
 
 from pipeline._jit import njit
 
-__all__ = ["clip_sorted_rows", "label_pixels", "level_markers", "load_compiled", "threshold_ranks"]
+__all__ = [
+    "clip_sorted_rows",
+    "label_pixels",
+    "level_markers",
+    "load_compiled",
+    "threshold_ranks",
+    "weighted_rows",
+]
 
 
 @njit(nogil=True)
@@ -273,6 +281,26 @@ def threshold_ranks(values, thresholds, segment):
     return out
 
 
+@njit(nogil=True)
+def weighted_rows(plane, variance, out):
+    """``plane / variance`` as the search filters it, float32, into ``out``; returns ``out``.
+
+    ``plane x inverse_variance(variance)`` (the inverse in single precision,
+    0 where the variance is NaN or <= 0), multiplied in double precision and
+    rounded once to single, 0 where not finite: numpy's
+    ``multiply(plane, inverse, out=<float32>)`` and the zeroing after it,
+    the same operations on the same types in one pass instead of five.
+    """
+    ny, nx = plane.shape
+    for i in range(ny):
+        for j in range(nx):
+            v = np.float32(variance[i, j])
+            inverse = np.float32(1.0) / v if v > 0 else np.float32(0.0)
+            value = np.float32(np.float64(plane[i, j]) * np.float64(inverse))
+            out[i, j] = value if np.isfinite(value) else np.float32(0.0)
+    return out
+
+
 def load_compiled() -> None:
     """Load the compiled loops in this process (from numba's disk cache once it is there).
 
@@ -287,3 +315,5 @@ def load_compiled() -> None:
     level_markers(one, one, one, 1, 1, 1, 1, 1)
     # the search's map is float32, its thresholds too (linspace of float32 bounds)
     threshold_ranks(np.zeros(1, np.float32), np.zeros((1, 1), np.float32), one)
+    # the residual (float64) over a rectified product's variance (float32)
+    weighted_rows(np.zeros((1, 1)), np.ones((1, 1), np.float32), np.empty((1, 1), np.float32))
