@@ -741,6 +741,8 @@ def segment_map(snr: np.ndarray, no_data: np.ndarray, *, threshold: float, min_p
     """
     from scipy.ndimage import label
 
+    from pipeline.stages.detect._find_jit import segment_bounds
+
     above = snr > threshold
     above[no_data] = False
     labels, n = label(above, structure=np.ones((3, 3), bool))
@@ -761,15 +763,9 @@ def segment_map(snr: np.ndarray, no_data: np.ndarray, *, threshold: float, min_p
         flat[where] = new
         inside = new > 0
         where, new = where[inside], new[inside]
-    rows, cols = np.divmod(where, labels.shape[1])
-    bounds = []
-    for values, start in ((rows, labels.shape[0]), (cols, labels.shape[1])):
-        lo = np.full(n_kept + 1, start, np.int64)
-        hi = np.full(n_kept + 1, -1, np.int64)
-        np.minimum.at(lo, new, values)
-        np.maximum.at(hi, new, values)
-        bounds.append((lo[1:], hi[1:] + 1))
-    (row_lo, row_hi), (col_lo, col_hi) = bounds
+    # the boxes in one compiled pass over the pixels: a division and four
+    # ufunc.at took 7 ms of CPU a call on a crowded stretch
+    row_lo, row_hi, col_lo, col_hi = segment_bounds(where, new, n_kept, labels.shape)
     slices = [
         (slice(int(a), int(b)), slice(int(c), int(d)))
         for a, b, c, d in zip(row_lo, row_hi, col_lo, col_hi, strict=True)

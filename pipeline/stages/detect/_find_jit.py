@@ -4,8 +4,9 @@
 (the background), :func:`label_pixels` for the deblending's
 (:func:`pipeline.stages.detect._find.deblend_segments`) regions above each
 threshold, :func:`level_markers`, its markers from all the thresholds, and
-:func:`threshold_ranks`, how many thresholds each pixel exceeds, and
-:func:`weighted_rows`, the matched filter's weighted rows.
+:func:`threshold_ranks`, how many thresholds each pixel exceeds,
+:func:`weighted_rows`, the matched filter's weighted rows, and
+:func:`segment_bounds`, the segments' boxes.
 Kept apart so that numba is imported only when the detect stage first runs.
 """
 
@@ -22,6 +23,7 @@ __all__ = [
     "label_pixels",
     "level_markers",
     "load_compiled",
+    "segment_bounds",
     "threshold_ranks",
     "weighted_rows",
 ]
@@ -301,6 +303,32 @@ def weighted_rows(plane, variance, out):
     return out
 
 
+@njit(nogil=True)
+def segment_bounds(where, label, n_labels, shape):
+    """Each label's bounding box from its pixels: rows and columns, first and past-the-last.
+
+    ``where``: the pixels' flat indices on a plane of ``shape``; ``label``:
+    each one's label, 1..``n_labels``.  Returns ``(row_lo, row_hi, col_lo,
+    col_hi)``, int64 arrays of ``n_labels``, as numpy's ``minimum.at`` and
+    ``maximum.at`` of the pixels' rows and columns give them (``hi`` one
+    past the largest), in one pass.
+    """
+    ny, nx = shape
+    row_lo = np.full(n_labels + 1, ny, np.int64)
+    row_hi = np.full(n_labels + 1, -1, np.int64)
+    col_lo = np.full(n_labels + 1, nx, np.int64)
+    col_hi = np.full(n_labels + 1, -1, np.int64)
+    for i in range(where.shape[0]):
+        k = label[i]
+        r = where[i] // nx
+        c = where[i] - r * nx
+        row_lo[k] = min(row_lo[k], r)
+        row_hi[k] = max(row_hi[k], r)
+        col_lo[k] = min(col_lo[k], c)
+        col_hi[k] = max(col_hi[k], c)
+    return row_lo[1:], row_hi[1:] + 1, col_lo[1:], col_hi[1:] + 1
+
+
 def load_compiled() -> None:
     """Load the compiled loops in this process (from numba's disk cache once it is there).
 
@@ -317,3 +345,5 @@ def load_compiled() -> None:
     threshold_ranks(np.zeros(1, np.float32), np.zeros((1, 1), np.float32), one)
     # the residual (float64) over a rectified product's variance (float32)
     weighted_rows(np.zeros((1, 1)), np.ones((1, 1), np.float32), np.empty((1, 1), np.float32))
+    # scipy.ndimage.label's labels are int32
+    segment_bounds(one, np.ones(1, np.int32), 1, (1, 1))
