@@ -296,6 +296,35 @@ def test_weighted_rows_are_numpys_product_with_the_inverse_variance(plane_type):
     np.testing.assert_array_equal(ours.view(np.int32), expected.view(np.int32))
 
 
+@pytest.mark.parametrize("image_type", [np.float32, np.float64])
+@pytest.mark.parametrize("into", ["new", "image", "other"])
+def test_residual_is_numpys_double_precision_difference(image_type, into):
+    # numpy's ``subtract(image, background, out=..., dtype=float64)`` and NaN
+    # where there is no data are the reference, to the bit, whether the
+    # result is a new plane, the image itself (float64) or another plane;
+    # and a big-endian image (a FITS file's) gives the same values.
+    from pipeline.stages.detect import _residual
+
+    if into == "image" and image_type is np.float32:
+        pytest.skip("the image holds the result only when it is float64")
+    rng = np.random.default_rng(14)
+    shape = (30, 50)
+    # values apart by more than a factor of two: their single-precision
+    # difference would be rounded
+    image = rng.normal(1e4, 100.0, shape).astype(image_type)
+    background = rng.uniform(0.0, 3e4, shape).astype(np.float32)
+    no_data = rng.random(shape) < 0.1
+    expected = np.subtract(image, background, dtype=np.float64)
+    expected[no_data] = np.nan
+    out = {"new": False, "image": image, "other": np.zeros(shape)}[into]
+    ours = _residual(image.copy() if into != "image" else image, background, no_data, True, out)
+    np.testing.assert_array_equal(ours.view(np.int64), expected.view(np.int64))
+    if into != "image":
+        swapped = image.astype(image.dtype.newbyteorder(">"))
+        again = _residual(swapped, background, no_data, True, False)
+        np.testing.assert_array_equal(again.view(np.int64), expected.view(np.int64))
+
+
 def test_filter_bands_weights_and_scales_rows_as_whole_plane_steps():
     # The same scipy.signal.oaconvolve reference, of the weighted plane (float64
     # data times float32 weights, rounded to single precision, 0 where the data

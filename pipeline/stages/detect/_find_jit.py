@@ -5,8 +5,9 @@
 (:func:`pipeline.stages.detect._find.deblend_segments`) regions above each
 threshold, :func:`level_markers`, its markers from all the thresholds, and
 :func:`threshold_ranks`, how many thresholds each pixel exceeds,
-:func:`weighted_rows`, the matched filter's weighted rows, and
-:func:`segment_bounds`, the segments' boxes.
+:func:`weighted_rows`, the matched filter's weighted rows,
+:func:`segment_bounds`, the segments' boxes, and :func:`residual_rows`, the
+image minus the background.
 Kept apart so that numba is imported only when the detect stage first runs.
 """
 
@@ -23,6 +24,7 @@ __all__ = [
     "label_pixels",
     "level_markers",
     "load_compiled",
+    "residual_rows",
     "segment_bounds",
     "threshold_ranks",
     "weighted_rows",
@@ -329,6 +331,25 @@ def segment_bounds(where, label, n_labels, shape):
     return row_lo[1:], row_hi[1:] + 1, col_lo[1:], col_hi[1:] + 1
 
 
+@njit(nogil=True)
+def residual_rows(image, background, no_data, out):
+    """``image - background`` in double precision, NaN where ``no_data``, into ``out``.
+
+    numpy's ``subtract(image, background, out=out, dtype=float64)`` and
+    ``out[no_data] = nan`` (each value converted to float64 before the
+    subtraction) in one pass instead of two and a boolean index; ``out``
+    may be ``image`` itself (float64).  Returns ``out``.
+    """
+    ny, nx = image.shape
+    for i in range(ny):
+        for j in range(nx):
+            if no_data[i, j]:
+                out[i, j] = np.nan
+            else:
+                out[i, j] = np.float64(image[i, j]) - np.float64(background[i, j])
+    return out
+
+
 def load_compiled() -> None:
     """Load the compiled loops in this process (from numba's disk cache once it is there).
 
@@ -347,3 +368,8 @@ def load_compiled() -> None:
     weighted_rows(np.zeros((1, 1)), np.ones((1, 1), np.float32), np.empty((1, 1), np.float32))
     # scipy.ndimage.label's labels are int32
     segment_bounds(one, np.ones(1, np.int32), 1, (1, 1))
+    # a rectified product's image (float32) or detect's float64 copy, less the
+    # background (float32)
+    for image_type in (np.float32, np.float64):
+        plane = np.zeros((1, 1), image_type)
+        residual_rows(plane, np.zeros((1, 1), np.float32), np.ones((1, 1), bool), np.empty((1, 1)))
