@@ -1021,6 +1021,22 @@ def test_mesh_expansion_matches_photutils():
     np.testing.assert_allclose(ours, bkg.background, rtol=0, atol=1e-4)
 
 
+def test_mesh_expansion_of_images_of_other_shapes_in_turn():
+    # The axes' zoom matrices are kept between calls (_zoom_weights): each
+    # image must still get its own.  photutils Background2D's expansion is the
+    # reference, as above; 300 and 290 rows give meshes of 5 rows of 64
+    # (the same zoom of the same mesh rows, cropped to another height), 520
+    # and 500 columns meshes of 9 and 8 columns.
+    rng = np.random.default_rng(3)
+    for shape in [(300, 520), (290, 500), (300, 500), (300, 520)]:
+        yy, xx = np.mgrid[: shape[0], : shape[1]]
+        image = 40.0 * np.sin(xx / 90.0) * np.cos(yy / 70.0) + rng.normal(0, 20, shape)
+        bkg = Background2D(image, (64, 64), filter_size=(3, 3))
+        ours = _expand_mesh(np.asarray(bkg.background_mesh), (64, 64), image.shape)
+        assert ours.shape == shape
+        np.testing.assert_allclose(ours, bkg.background, rtol=0, atol=1e-4)
+
+
 def test_deblending_only_multi_peak_segments_changes_nothing():
     # Isolated stars and close pairs: deblending every segment (photutils'
     # default) and only those with more than one local maximum must agree.

@@ -250,6 +250,82 @@ def test_label_pixels_groups_them_as_scipy_label(fill):
     np.testing.assert_array_equal(region[np.sort(first)], np.arange(1, n + 1))
 
 
+def test_threshold_ranks_count_as_numpy_comparisons():
+    # numpy's ``values > thresholds`` (float32, as the deblending's map and
+    # thresholds) counted per pixel is the reference, with values equal to
+    # thresholds (not above them) and NaN (above none).
+    from pipeline.stages.detect._find_jit import threshold_ranks
+
+    rng = np.random.default_rng(12)
+    thresholds = np.sort(rng.random((5, 8)).astype(np.float32), axis=1)
+    segment = rng.integers(0, 5, 400)
+    values = rng.random(400).astype(np.float32)
+    values[:40] = thresholds[segment[:40], rng.integers(0, 8, 40)]  # ties
+    values[40] = np.nan
+    expected = np.count_nonzero(values[:, None] > thresholds[segment], axis=1)
+    ours = threshold_ranks(values, thresholds, segment)
+    np.testing.assert_array_equal(ours, expected)
+    assert ours[40] == 0 and ours.dtype == expected.dtype
+
+
+@pytest.mark.parametrize("plane_type", [np.float64, np.float32])
+def test_weighted_rows_are_numpys_product_with_the_inverse_variance(plane_type):
+    # numpy's steps are the reference, to the bit: the inverse variance in
+    # single precision (0 where the variance is NaN or <= 0), the product
+    # ``multiply(plane, inverse, out=<float32>)`` and 0 where not finite
+    # (no data, or an overflow to infinity).
+    from pipeline.stages.detect._find import inverse_variance
+    from pipeline.stages.detect._find_jit import weighted_rows
+
+    rng = np.random.default_rng(13)
+    shape = (40, 70)
+    plane = rng.normal(0.0, 30.0, shape).astype(plane_type)
+    plane[5, :] = np.nan
+    plane[6, :3] = 3e38  # times an inverse above 1: infinite in single precision
+    variance = rng.uniform(1e-3, 200.0, shape).astype(np.float32)
+    variance[:, 7] = np.nan
+    variance[:, 8] = 0.0
+    variance[:, 9] = -1.0
+    variance[6, :3] = 0.01
+    expected = np.empty(shape, np.float32)
+    with np.errstate(over="ignore"):
+        np.multiply(plane, inverse_variance(variance), out=expected)
+    assert np.isinf(expected[6, :3]).all()
+    expected[~np.isfinite(expected)] = 0.0
+    ours = weighted_rows(plane, variance, np.empty(shape, np.float32))
+    np.testing.assert_array_equal(ours.view(np.int32), expected.view(np.int32))
+
+
+@pytest.mark.parametrize(
+    ("image_type", "into"),
+    [(np.float32, "new"), (np.float32, "other"), (np.float64, "new"), (np.float64, "image"),
+     (np.float64, "other")],
+)  # fmt: skip
+def test_residual_is_numpys_double_precision_difference(image_type, into):
+    # numpy's ``subtract(image, background, out=..., dtype=float64)`` and NaN
+    # where there is no data are the reference, to the bit, whether the
+    # result is a new plane, the image itself (float64) or another plane;
+    # and a big-endian image (a FITS file's) gives the same values.
+    from pipeline.stages.detect import _residual
+
+    rng = np.random.default_rng(14)
+    shape = (30, 50)
+    # values apart by more than a factor of two: their single-precision
+    # difference would be rounded
+    image = rng.normal(1e4, 100.0, shape).astype(image_type)
+    background = rng.uniform(0.0, 3e4, shape).astype(np.float32)
+    no_data = rng.random(shape) < 0.1
+    expected = np.subtract(image, background, dtype=np.float64)
+    expected[no_data] = np.nan
+    out = {"new": False, "image": image, "other": np.zeros(shape)}[into]
+    ours = _residual(image.copy() if into != "image" else image, background, no_data, True, out)
+    np.testing.assert_array_equal(ours.view(np.int64), expected.view(np.int64))
+    if into != "image":
+        swapped = image.astype(image.dtype.newbyteorder(">"))
+        again = _residual(swapped, background, no_data, True, False)
+        np.testing.assert_array_equal(again.view(np.int64), expected.view(np.int64))
+
+
 def test_filter_bands_weights_and_scales_rows_as_whole_plane_steps():
     # The same scipy.signal.oaconvolve reference, of the weighted plane (float64
     # data times float32 weights, rounded to single precision, 0 where the data

@@ -3,7 +3,11 @@
 :func:`clip_sorted_rows` for :func:`pipeline.stages.detect._mesh.clipped_medians`
 (the background), :func:`label_pixels` for the deblending's
 (:func:`pipeline.stages.detect._find.deblend_segments`) regions above each
-threshold, and :func:`level_markers`, its markers from all the thresholds.
+threshold, :func:`level_markers`, its markers from all the thresholds, and
+:func:`threshold_ranks`, how many thresholds each pixel exceeds,
+:func:`weighted_rows`, the matched filter's weighted rows,
+:func:`segment_bounds`, the segments' boxes, and :func:`residual_rows`, the
+image minus the background.
 Kept apart so that numba is imported only when the detect stage first runs.
 """
 
@@ -15,7 +19,16 @@ import numpy as np
 
 from pipeline._jit import njit
 
-__all__ = ["clip_sorted_rows", "label_pixels", "level_markers", "load_compiled"]
+__all__ = [
+    "clip_sorted_rows",
+    "label_pixels",
+    "level_markers",
+    "load_compiled",
+    "residual_rows",
+    "segment_bounds",
+    "threshold_ranks",
+    "weighted_rows",
+]
 
 
 @njit(nogil=True)
@@ -250,6 +263,93 @@ def level_markers(rank, position, segment, n_boxes, width, size, min_pixels, lev
     return marker, next_id
 
 
+@njit(nogil=True)
+def threshold_ranks(values, thresholds, segment):
+    """How many of its segment's thresholds each value exceeds (``>``), int64.
+
+    ``thresholds[segment[i]]`` are value ``i``'s; numpy's
+    ``count_nonzero(values[:, None] > thresholds[segment], axis=1)`` (the
+    same comparisons, of the same types) without its (pixels x levels)
+    arrays.
+    """
+    n, levels = values.shape[0], thresholds.shape[1]
+    out = np.zeros(n, np.int64)
+    for i in range(n):
+        row = thresholds[segment[i]]
+        v = values[i]
+        count = 0
+        for j in range(levels):
+            if v > row[j]:
+                count += 1
+        out[i] = count
+    return out
+
+
+@njit(nogil=True)
+def weighted_rows(plane, variance, out):
+    """``plane / variance`` as the search filters it, float32, into ``out``; returns ``out``.
+
+    ``plane x inverse_variance(variance)`` (the inverse in single precision,
+    0 where the variance is NaN or <= 0), multiplied in double precision and
+    rounded once to single, 0 where not finite: numpy's
+    ``multiply(plane, inverse, out=<float32>)`` and the zeroing after it,
+    the same operations on the same types in one pass instead of five.
+    """
+    ny, nx = plane.shape
+    for i in range(ny):
+        for j in range(nx):
+            v = np.float32(variance[i, j])
+            inverse = np.float32(1.0) / v if v > 0 else np.float32(0.0)
+            value = np.float32(np.float64(plane[i, j]) * np.float64(inverse))
+            out[i, j] = value if np.isfinite(value) else np.float32(0.0)
+    return out
+
+
+@njit(nogil=True)
+def segment_bounds(where, label, n_labels, shape):
+    """Each label's bounding box from its pixels: rows and columns, first and past-the-last.
+
+    ``where``: the pixels' flat indices on a plane of ``shape``; ``label``:
+    each one's label, 1..``n_labels``.  Returns ``(row_lo, row_hi, col_lo,
+    col_hi)``, int64 arrays of ``n_labels``, as numpy's ``minimum.at`` and
+    ``maximum.at`` of the pixels' rows and columns give them (``hi`` one
+    past the largest), in one pass.
+    """
+    ny, nx = shape
+    row_lo = np.full(n_labels + 1, ny, np.int64)
+    row_hi = np.full(n_labels + 1, -1, np.int64)
+    col_lo = np.full(n_labels + 1, nx, np.int64)
+    col_hi = np.full(n_labels + 1, -1, np.int64)
+    for i in range(where.shape[0]):
+        k = label[i]
+        r = where[i] // nx
+        c = where[i] - r * nx
+        row_lo[k] = min(row_lo[k], r)
+        row_hi[k] = max(row_hi[k], r)
+        col_lo[k] = min(col_lo[k], c)
+        col_hi[k] = max(col_hi[k], c)
+    return row_lo[1:], row_hi[1:] + 1, col_lo[1:], col_hi[1:] + 1
+
+
+@njit(nogil=True)
+def residual_rows(image, background, no_data, out):
+    """``image - background`` in double precision, NaN where ``no_data``, into ``out``.
+
+    numpy's ``subtract(image, background, out=out, dtype=float64)`` and
+    ``out[no_data] = nan`` (each value converted to float64 before the
+    subtraction) in one pass instead of two and a boolean index; ``out``
+    may be ``image`` itself (float64).  Returns ``out``.
+    """
+    ny, nx = image.shape
+    for i in range(ny):
+        for j in range(nx):
+            if no_data[i, j]:
+                out[i, j] = np.nan
+            else:
+                out[i, j] = np.float64(image[i, j]) - np.float64(background[i, j])
+    return out
+
+
 def load_compiled() -> None:
     """Load the compiled loops in this process (from numba's disk cache once it is there).
 
@@ -262,3 +362,14 @@ def load_compiled() -> None:
     label_pixels(np.zeros(1, np.int64), 1, np.full(1, -1, np.int64))
     one = np.zeros(1, np.int64)
     level_markers(one, one, one, 1, 1, 1, 1, 1)
+    # the search's map is float32, its thresholds too (linspace of float32 bounds)
+    threshold_ranks(np.zeros(1, np.float32), np.zeros((1, 1), np.float32), one)
+    # the residual (float64) over a rectified product's variance (float32)
+    weighted_rows(np.zeros((1, 1)), np.ones((1, 1), np.float32), np.empty((1, 1), np.float32))
+    # scipy.ndimage.label's labels are int32
+    segment_bounds(one, np.ones(1, np.int32), 1, (1, 1))
+    # a rectified product's image (float32) or detect's float64 copy, less the
+    # background (float32)
+    for image_type in (np.float32, np.float64):
+        plane = np.zeros((1, 1), image_type)
+        residual_rows(plane, np.zeros((1, 1), np.float32), np.ones((1, 1), bool), np.empty((1, 1)))

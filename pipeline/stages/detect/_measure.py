@@ -6,6 +6,7 @@ import enum
 import itertools
 import logging
 import math
+import operator
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -414,7 +415,9 @@ def measure_groups(
         got = memo[key] if memo is not None else rows
         all_rows.extend(got)
         group.extend([index] * len(got))
-    result = {name: np.asarray([row[name] for row in all_rows]) for name in names}
+    # one pass over the rows for all the columns
+    columns = zip(*map(operator.itemgetter(*names), all_rows)) if all_rows else [[]] * len(names)
+    result = {name: np.asarray(column) for name, column in zip(names, columns, strict=True)}
     result["group"] = np.asarray(group)
     result["kernel"] = [row["kernel"] for row in all_rows]
     result["response"] = [row["response"] for row in all_rows]
@@ -572,7 +575,7 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
     reports it).
     """
     from pipeline.stages.detect._measure_jit import fit_groups_compiled
-    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_row
+    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_rows
 
     if not groups:
         return {}
@@ -587,7 +590,13 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
     ys = np.array([m[1] for m in starts], dtype=np.float64)
     extents = np.array([e for i in order for e in lookups[i][1]], dtype=np.float64)
     boxes = _stamps(residual.shape, xs, ys, extents.reshape(-1, 2), bounds, fwhm)
-    for g, i in enumerate(order):  # the few groups on a saturated footprint
+    # the few groups on a saturated footprint (none without footprints)
+    on = []
+    if options["footprints"] is not None:
+        owned = np.concatenate([lookups[i][3] for i in order]) != 0
+        on = np.flatnonzero(np.logical_or.reduceat(owned, bounds[:-1])).tolist()
+    for g in on:
+        i = order[g]
         _, extents_i, _, owners = lookups[i]
         if owners.any():
             members = groups[i]
@@ -609,31 +618,30 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
         samples,
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
-        np.array([_response_row(r) for r in resp]).reshape(-1, 3),
+        _response_rows(resp),
         _ERF_TABLE,
         _GAUSS_TABLE,
         float(options["noise_correlation"]),
     )
-    nc = options["noise_correlation"]
+    nc, own_columns = options["noise_correlation"], options["own_columns"]
     out = {}
     stars_list, sums, fits_list = stars.tolist(), quadrupoles.tolist(), fits.tolist()
+    cuts = bounds.tolist()  # Python ints: numpy's scalars cost more per group
     for g, index in enumerate(order):
         background, chi2, status, stamp_bits = fits_list[g]
         if status < 0:
             continue
-        box = boxes[g]
+        box, first, split = boxes[g], cuts[g], splits[index]
+        stamp_bits, success = int(stamp_bits), status == 1
         rows = []
-        for s in range(bounds[g], bounds[g + 1]):
+        for s in range(first, cuts[g + 1]):
             values = stars_list[s]
             pair = math.isfinite(sums[s][0]) and _quadrupole_test(sums[s], nc)
-            flags = _flags_from_bits(
-                int(stamp_bits), int(values[6]), box[4], splits[index][s - bounds[g]]
-            )
-            fitted = (tuple(values[:6]), background, chi2, status == 1)
+            flags = _flags_from_bits(stamp_bits, int(values[6]), box[4], split[s - first])
+            fitted = (tuple(values[:6]), background, chi2, success)
             rows.append(
-                _row(starts[s], fitted, flags, pair, box, kern[s], resp[s], profile,
-                     options["own_columns"])
-            )  # fmt: skip
+                _row(starts[s], fitted, flags, pair, box, kern[s], resp[s], profile, own_columns)
+            )
         out[index] = rows
     return out
 
@@ -1012,14 +1020,16 @@ def _aperture_sums(residual, variance, no_data, x, y, radii):
     2800 sources and 3 radii on the 4096 x 4096 benchmark stretch.
     """
     ny, nx = residual.shape
-    rmax = max(radii)
+    rmax = float(max(radii))
     sums = np.zeros((len(x), len(radii)))
     variances = np.zeros((len(x), len(radii)))
     missing = bool(no_data.any())
-    for i, (xc, yc) in enumerate(zip(x, y, strict=True)):
+    # Python floats: the same values, without numpy's scalar arithmetic per source
+    xs, ys = np.asarray(x, dtype=float).tolist(), np.asarray(y, dtype=float).tolist()
+    for i, (xc, yc) in enumerate(zip(xs, ys, strict=True)):
         # photutils' bounding box of the largest aperture (pixel centres at integers)
-        x0, x1 = int(np.floor(xc - rmax + 0.5)), int(np.ceil(xc + rmax + 0.5))
-        y0, y1 = int(np.floor(yc - rmax + 0.5)), int(np.ceil(yc + rmax + 0.5))
+        x0, x1 = math.floor(xc - rmax + 0.5), math.ceil(xc + rmax + 0.5)
+        y0, y1 = math.floor(yc - rmax + 0.5), math.ceil(yc + rmax + 0.5)
         a0, a1, b0, b1 = max(x0, 0), min(x1, nx), max(y0, 0), min(y1, ny)
         if a1 <= a0 or b1 <= b0:
             continue

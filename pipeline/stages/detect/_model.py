@@ -453,6 +453,17 @@ def _response_row(response: Response | None) -> np.ndarray:
     return np.array([response.lattice_x, response.lattice_y, response.row_step])
 
 
+def _response_rows(responses) -> np.ndarray:
+    """:func:`_response_row` of each of ``responses`` (Response or None), shape (n, 3).
+
+    One array from a list of tuples: an array per source cost ~1.5 us each,
+    ~3600 sources per crowded stretch at each fit and subtraction.
+    """
+    none = (-1.0, -1.0, 0.0)
+    rows = [none if r is None else (r.lattice_x, r.lattice_y, r.row_step) for r in responses]
+    return np.array(rows, dtype=np.float64).reshape(-1, 3)
+
+
 @dataclass(frozen=True)
 class FitResult:
     """Result of a fit of ``n`` stars on one stamp.
