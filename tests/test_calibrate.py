@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import warnings
+from types import SimpleNamespace
 
 import astroscrappy
 import numpy as np
@@ -10,7 +11,7 @@ import pytest
 from astropy.table import Table
 
 from pipeline.exceptions import CalibrationWarning
-from pipeline.masks import MaskBit, has_bits
+from pipeline.masks import MaskBit, describe_mask, has_bits
 from pipeline.stages.calibrate import (
     calibrate_stretch,
     column_statistics,
@@ -19,6 +20,7 @@ from pipeline.stages.calibrate import (
     subtract_bias,
     summarize_columns,
 )
+from pipeline.stages.calibrate import _warn_empty_rows
 from pipeline.stages.calibrate._bias import overscan_levels, smooth_levels
 from pipeline.stages.calibrate._cosmics import laplacian_plus
 from pipeline.stages.calibrate._saturation import bleed_mask, saturation_mask
@@ -441,6 +443,39 @@ def test_column_mask_gap_ramp_and_nonfinite_bits():
     assert not has_bits(result.mask[64:, 0], MaskBit.LOW_EXPOSURE).any()
     assert np.isnan(result.image[:, 3]).all() and np.isnan(result.variance[200:220]).all()
     assert np.isfinite(result.image[300:, 4:]).all()
+
+
+def test_mask_counts_count_every_bit_of_every_pixel():
+    # Self-consistency: each bit counted over the plane on its own, pixels with
+    # several bits counted for each of them.
+    rng = np.random.default_rng(4)
+    mask = np.zeros((64, 48), np.uint16)
+    mask[rng.random(mask.shape) < 0.1] |= int(MaskBit.COSMIC_RAY)
+    mask[:, 5] |= int(MaskBit.BAD_COLUMN | MaskBit.HOT_COLUMN)
+    mask[:8] |= int(MaskBit.LOW_EXPOSURE)
+    mask[40, 40] = MaskBit.ZERO_POINT | MaskBit.OUTSIDE
+    counts = describe_mask(mask)
+    assert counts == {bit.name: int(has_bits(mask, bit).sum()) for bit in MaskBit}
+    assert counts["BAD_COLUMN"] == counts["HOT_COLUMN"] == 64
+    assert counts["LOW_EXPOSURE"] == 8 * 48 and counts["ZERO_POINT"] == 1
+    assert counts["SATURATED"] == 0
+    assert describe_mask(np.zeros((3, 4), np.uint16)) == {bit.name: 0 for bit in MaskBit}
+
+
+def test_empty_rows_warning_needs_every_pixel_of_a_covered_row_without_data():
+    mask = np.zeros((6, 5), np.uint16)
+    mask[1] = MaskBit.NONFINITE  # a covered row without one finite pixel
+    mask[2, 0] = MaskBit.NONFINITE  # only its first pixel
+    mask[3, 1:] = MaskBit.NONFINITE  # all but its first pixel
+    mask[5] = MaskBit.NONFINITE  # no block covers it
+    rows = SimpleNamespace(covered=np.arange(6) != 5, night_row=100 + np.arange(6))
+    result = SimpleNamespace(mask=mask)
+    with pytest.warns(CalibrationWarning, match="s0007: 1 covered rows between night rows 101 and 101"):
+        _warn_empty_rows(result, rows, SimpleNamespace(id="s0007"))
+    mask[1, 3] = 0
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        _warn_empty_rows(result, rows, SimpleNamespace(id="s0007"))
 
 
 @pytest.mark.parametrize(

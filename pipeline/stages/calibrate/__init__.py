@@ -751,7 +751,11 @@ def strip_wcs_header(times: RowTimes, row_lo: int) -> fits.Header:
 
 def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:
     """Warn about rows that blocks cover but hold no finite pixel (NaN-filled data)."""
-    empty = rows.covered & (result.mask & MaskBit.NONFINITE != 0).all(axis=1)
+    nonfinite = MASK_DTYPE.type(MaskBit.NONFINITE)
+    # A row is empty only if its first pixel is: only those rows are read whole.
+    empty = rows.covered & (result.mask[:, 0] & nonfinite != 0)
+    if empty.any():
+        empty[empty] = (result.mask[empty] & nonfinite != 0).all(axis=1)
     if empty.any():
         first, last = rows.night_row[empty][[0, -1]]
         warnings.warn(
