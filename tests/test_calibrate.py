@@ -13,6 +13,7 @@ from astropy.table import Table
 from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MaskBit, describe_mask, has_bits
 from pipeline.stages.calibrate import (
+    _warn_empty_rows,
     calibrate_stretch,
     column_statistics,
     detect_cosmic_rays,
@@ -20,7 +21,6 @@ from pipeline.stages.calibrate import (
     subtract_bias,
     summarize_columns,
 )
-from pipeline.stages.calibrate import _warn_empty_rows
 from pipeline.stages.calibrate._bias import overscan_levels, smooth_levels
 from pipeline.stages.calibrate._cosmics import laplacian_plus
 from pipeline.stages.calibrate._saturation import bleed_mask, saturation_mask
@@ -470,7 +470,8 @@ def test_empty_rows_warning_needs_every_pixel_of_a_covered_row_without_data():
     mask[5] = MaskBit.NONFINITE  # no block covers it
     rows = SimpleNamespace(covered=np.arange(6) != 5, night_row=100 + np.arange(6))
     result = SimpleNamespace(mask=mask)
-    with pytest.warns(CalibrationWarning, match="s0007: 1 covered rows between night rows 101 and 101"):
+    message = "s0007: 1 covered rows between night rows 101 and 101"
+    with pytest.warns(CalibrationWarning, match=message):
         _warn_empty_rows(result, rows, SimpleNamespace(id="s0007"))
     mask[1, 3] = 0
     with warnings.catch_warnings():
