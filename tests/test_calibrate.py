@@ -178,6 +178,32 @@ def test_laplacian_matches_subsample_convolve_rebin():
     np.testing.assert_allclose(laplacian_plus(image), expected, rtol=1e-5, atol=1e-3)
 
 
+@pytest.mark.parametrize("shape", [(40, 57), (1, 9), (9, 1), (2, 2), (1, 1), (3, 3)])
+def test_compiled_search_gives_the_laplacian_and_candidates_of_whole_plane_numpy(shape):
+    # Self-consistency: the compiled pass gives laplacian_plus's bytes (the
+    # chunked numpy passes) and the pixels whose L+ could pass the test with
+    # the smallest variance of their cross (edges repeated), as whole-plane
+    # numpy finds them.
+    from pipeline.stages.calibrate._cosmics import _candidates
+
+    rng = np.random.default_rng(sum(shape))
+    work = rng.normal(100, 10, shape).astype(np.float32)
+    work[rng.random(shape) < 0.05] += 300  # sharp hits
+    variance = (10 ** rng.uniform(-1, 3, shape)).astype(
+        np.float32
+    )  # so the cross's minimum matters
+    ignore = rng.random(shape) < 0.1
+    lplus, candidates = _candidates(work, variance, ignore, 4.5)
+    assert lplus.tobytes() == laplacian_plus(work).tobytes()
+    padded = np.pad(variance, 1, mode="edge")
+    cross = (padded[:-2, 1:-1], padded[2:, 1:-1], padded[1:-1, :-2], padded[1:-1, 2:])
+    smallest = np.minimum.reduce([variance, *cross])
+    threshold = np.float32(0.5 * 9.0**2)
+    expected = np.flatnonzero((lplus * lplus > smallest * threshold) & ~ignore)
+    assert candidates.dtype == np.int64 and np.array_equal(candidates, expected)
+    assert shape != (40, 57) or 200 < candidates.size < 2000
+
+
 def _star_field(rng, shape, n_stars, fwhm, sky):
     """Sky plus round Gaussian stars (invented test data), expected electrons."""
     truth = np.full(shape, sky, dtype=np.float64)

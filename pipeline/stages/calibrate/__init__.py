@@ -770,6 +770,8 @@ def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:
 #: the bias windows' filters (:mod:`pipeline.stages._signal`: FFTs and least
 #: squares) and the column solve's error function.
 WARM = ("scipy.fft", "scipy.linalg", "scipy.special")
+#: ... and for calibrate also the cosmic-ray search's compiled loop (numba's disk cache).
+CALIBRATE_WARM = (*WARM, "pipeline.stages.calibrate._cosmics_jit:load_compiled")
 
 #: Declaration of the calibrate stage for the runner.
 STAGE = Stage(
@@ -780,7 +782,7 @@ STAGE = Stage(
     scope="stretch",
     uses=("camera.flip_columns", "camera.flip_rows", "camera.name", "camera.telescope", "site"),
     description="Bias, 1-D flat and dark, variance and mask of each stretch.",
-    warm=WARM,
+    warm=CALIBRATE_WARM,
     # 2: bias window by cross-validation; 3: faster passes (rounding); 4: one
     # multi-extension image product with units and observation metadata
     version=4,
