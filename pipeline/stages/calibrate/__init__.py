@@ -753,7 +753,7 @@ def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:
     """Warn about rows that blocks cover but hold no finite pixel (NaN-filled data)."""
     nonfinite = MASK_DTYPE.type(MaskBit.NONFINITE)
     # A row is empty only if its first pixel is: only those rows are read whole.
-    empty = rows.covered & (result.mask[:, 0] & nonfinite != 0)
+    empty = rows.covered & (result.mask[:, :1] & nonfinite != 0).all(axis=1)
     if empty.any():
         empty[empty] = (result.mask[empty] & nonfinite != 0).all(axis=1)
     if empty.any():

@@ -12,13 +12,13 @@ fused multiply-add (no ``fastmath``), and no constant that would widen a
 float32 sum.  One pass over the output instead of four read-modify-writes
 of whole chunks per tap (plus a scratch plane) is what makes it cheaper.
 
-:func:`zero_nonfinite` clears the non-finite pixels of the input planes in
-one pass, where numpy made a pass per test, per ``where`` and per ``|``
-(seven over a stretch, on top of the two sums that find them).
-
 :func:`zero_frequency_rows` does the same for the row-lag sum of the noise
 power (:meth:`pipeline.stages.rectify._noise.RectifiedNoise.power`), which
 formed all seven tap offsets of every pair of rows to pick one.
+
+:func:`zero_nonfinite` clears the non-finite pixels of the input planes in
+one pass, where numpy made a pass per test, per ``where`` and per ``|``
+(seven over a stretch, on top of the two sums that find them).
 
 Kept apart so that numba is imported only when a stretch is first rectified
 (the stage's ``Stage.warm`` loads it, with numba's disk cache, as a worker
