@@ -42,6 +42,7 @@ COMPILED_MODULES = (
     "mosaic/_coadd_jit.py",
     "mosaic/_resample_jit.py",
     "stages/astrometry/_model_jit.py",
+    "stages/calibrate/_cosmics_jit.py",
     "stages/detect/_find_jit.py",
     "stages/detect/_fit_jit.py",
     "stages/detect/_measure_jit.py",

@@ -407,16 +407,19 @@ def image_hdulist(
     unit_text = unit.to_string()
     variance_text = (unit**2).to_string()
     header = _merged(metadata, header)
+    # The planes themselves when they already have the stored dtype (a copy
+    # would cost a pass over each and its memory): the product does not
+    # outlive the stage's arrays, which are not changed after.
     planes = [
-        _plane(image.astype(np.float32), header, FLUX_EXTENSION, [("BUNIT", unit_text)]),
+        _plane(np.asarray(image, np.float32), header, FLUX_EXTENSION, [("BUNIT", unit_text)]),
         _plane(
-            np.asarray(variance).astype(np.float32),
+            np.asarray(variance, np.float32),
             header,
             VARIANCE_EXTENSION,
             [("BUNIT", variance_text), ("UTYPE", "VarianceUncertainty")],
         ),
         _plane(
-            np.asarray(flags).astype(MASK_DTYPE),
+            np.asarray(flags, MASK_DTYPE),
             _merged(header, flag_header()),
             FLAGS_EXTENSION,
             [],

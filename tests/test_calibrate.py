@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import warnings
+from types import SimpleNamespace
 
 import astroscrappy
 import numpy as np
@@ -10,8 +11,9 @@ import pytest
 from astropy.table import Table
 
 from pipeline.exceptions import CalibrationWarning
-from pipeline.masks import MaskBit, has_bits
+from pipeline.masks import MaskBit, describe_mask, has_bits
 from pipeline.stages.calibrate import (
+    _warn_empty_rows,
     calibrate_stretch,
     column_statistics,
     detect_cosmic_rays,
@@ -174,6 +176,32 @@ def test_laplacian_matches_subsample_convolve_rebin():
     ).clip(min=0)
     expected = lap.reshape(20, 2, 30, 2).mean(axis=(1, 3))
     np.testing.assert_allclose(laplacian_plus(image), expected, rtol=1e-5, atol=1e-3)
+
+
+@pytest.mark.parametrize("shape", [(40, 57), (1, 9), (9, 1), (2, 2), (1, 1), (3, 3)])
+def test_compiled_search_gives_the_laplacian_and_candidates_of_whole_plane_numpy(shape):
+    # Self-consistency: the compiled pass gives laplacian_plus's bytes (the
+    # chunked numpy passes) and the pixels whose L+ could pass the test with
+    # the smallest variance of their cross (edges repeated), as whole-plane
+    # numpy finds them.
+    from pipeline.stages.calibrate._cosmics import _candidates
+
+    rng = np.random.default_rng(sum(shape))
+    work = rng.normal(100, 10, shape).astype(np.float32)
+    work[rng.random(shape) < 0.05] += 300  # sharp hits
+    variance = (10 ** rng.uniform(-1, 3, shape)).astype(
+        np.float32
+    )  # so the cross's minimum matters
+    ignore = rng.random(shape) < 0.1
+    lplus, candidates = _candidates(work, variance, ignore, 4.5)
+    assert lplus.tobytes() == laplacian_plus(work).tobytes()
+    padded = np.pad(variance, 1, mode="edge")
+    cross = (padded[:-2, 1:-1], padded[2:, 1:-1], padded[1:-1, :-2], padded[1:-1, 2:])
+    smallest = np.minimum.reduce([variance, *cross])
+    threshold = np.float32(0.5 * 9.0**2)
+    expected = np.flatnonzero((lplus * lplus > smallest * threshold) & ~ignore)
+    assert candidates.dtype == np.int64 and np.array_equal(candidates, expected)
+    assert shape != (40, 57) or 200 < candidates.size < 2000
 
 
 def _star_field(rng, shape, n_stars, fwhm, sky):
@@ -441,6 +469,40 @@ def test_column_mask_gap_ramp_and_nonfinite_bits():
     assert not has_bits(result.mask[64:, 0], MaskBit.LOW_EXPOSURE).any()
     assert np.isnan(result.image[:, 3]).all() and np.isnan(result.variance[200:220]).all()
     assert np.isfinite(result.image[300:, 4:]).all()
+
+
+def test_mask_counts_count_every_bit_of_every_pixel():
+    # Self-consistency: each bit counted over the plane on its own, pixels with
+    # several bits counted for each of them.
+    rng = np.random.default_rng(4)
+    mask = np.zeros((64, 48), np.uint16)
+    mask[rng.random(mask.shape) < 0.1] |= int(MaskBit.COSMIC_RAY)
+    mask[:, 5] |= int(MaskBit.BAD_COLUMN | MaskBit.HOT_COLUMN)
+    mask[:8] |= int(MaskBit.LOW_EXPOSURE)
+    mask[40, 40] = MaskBit.ZERO_POINT | MaskBit.OUTSIDE
+    counts = describe_mask(mask)
+    assert counts == {bit.name: int(has_bits(mask, bit).sum()) for bit in MaskBit}
+    assert counts["BAD_COLUMN"] == counts["HOT_COLUMN"] == 64
+    assert counts["LOW_EXPOSURE"] == 8 * 48 and counts["ZERO_POINT"] == 1
+    assert counts["SATURATED"] == 0
+    assert describe_mask(np.zeros((3, 4), np.uint16)) == {bit.name: 0 for bit in MaskBit}
+
+
+def test_empty_rows_warning_needs_every_pixel_of_a_covered_row_without_data():
+    mask = np.zeros((6, 5), np.uint16)
+    mask[1] = MaskBit.NONFINITE  # a covered row without one finite pixel
+    mask[2, 0] = MaskBit.NONFINITE  # only its first pixel
+    mask[3, 1:] = MaskBit.NONFINITE  # all but its first pixel
+    mask[5] = MaskBit.NONFINITE  # no block covers it
+    rows = SimpleNamespace(covered=np.arange(6) != 5, night_row=100 + np.arange(6))
+    result = SimpleNamespace(mask=mask)
+    message = "s0007: 1 covered rows between night rows 101 and 101"
+    with pytest.warns(CalibrationWarning, match=message):
+        _warn_empty_rows(result, rows, SimpleNamespace(id="s0007"))
+    mask[1, 3] = 0
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        _warn_empty_rows(result, rows, SimpleNamespace(id="s0007"))
 
 
 @pytest.mark.parametrize(

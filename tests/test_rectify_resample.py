@@ -183,6 +183,28 @@ def test_outside_and_nonfinite_flags():
     np.testing.assert_allclose(out[:, good], 1.0, rtol=1e-12)  # constant is reproduced
 
 
+@pytest.mark.parametrize("dtype", [np.float32, np.float64, ">f4"])
+def test_nonfinite_variance_flags_too_and_the_planes_given_are_left_alone(dtype):
+    # Definition: a pixel is data only where its value and its variance are
+    # finite; the passes read the others as zero without changing the caller's
+    # planes (native ones are cleaned in copies).
+    image = np.ones((6, 20), dtype)
+    variance = np.ones_like(image)
+    variance[:, 7] = np.inf
+    image[:, 12] = np.nan
+    mask = np.zeros(image.shape, np.uint16)
+    given = image.copy(), variance.copy()
+    out, var, flags = resample_columns(
+        image, variance, mask, np.arange(20.0), outside_bit=OUT, nonfinite_bit=NONFINITE
+    )
+    assert (np.flatnonzero(flags[0] & NONFINITE) == [7, 12]).all()
+    assert np.isfinite(out).all() and np.isfinite(var).all()
+    assert (out[:, [7, 12]] == 0).all() and (var[:, [7, 12]] == 0).all()
+    np.testing.assert_array_equal(image, given[0])
+    np.testing.assert_array_equal(variance, given[1])
+    assert not mask.any()
+
+
 def test_bad_input_raises():
     with pytest.raises(ValueError, match="one shape"):
         resample_columns(

@@ -751,7 +751,11 @@ def strip_wcs_header(times: RowTimes, row_lo: int) -> fits.Header:
 
 def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:
     """Warn about rows that blocks cover but hold no finite pixel (NaN-filled data)."""
-    empty = rows.covered & (result.mask & MaskBit.NONFINITE != 0).all(axis=1)
+    nonfinite = MASK_DTYPE.type(MaskBit.NONFINITE)
+    # A row is empty only if its first pixel is: only those rows are read whole.
+    empty = rows.covered & (result.mask[:, :1] & nonfinite != 0).all(axis=1)
+    if empty.any():
+        empty[empty] = (result.mask[empty] & nonfinite != 0).all(axis=1)
     if empty.any():
         first, last = rows.night_row[empty][[0, -1]]
         warnings.warn(
@@ -766,6 +770,8 @@ def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:
 #: the bias windows' filters (:mod:`pipeline.stages._signal`: FFTs and least
 #: squares) and the column solve's error function.
 WARM = ("scipy.fft", "scipy.linalg", "scipy.special")
+#: ... and for calibrate also the cosmic-ray search's compiled loop (numba's disk cache).
+CALIBRATE_WARM = (*WARM, "pipeline.stages.calibrate._cosmics_jit:load_compiled")
 
 #: Declaration of the calibrate stage for the runner.
 STAGE = Stage(
@@ -776,7 +782,7 @@ STAGE = Stage(
     scope="stretch",
     uses=("camera.flip_columns", "camera.flip_rows", "camera.name", "camera.telescope", "site"),
     description="Bias, 1-D flat and dark, variance and mask of each stretch.",
-    warm=WARM,
+    warm=CALIBRATE_WARM,
     # 2: bias window by cross-validation; 3: faster passes (rounding); 4: one
     # multi-extension image product with units and observation metadata
     version=4,

@@ -37,7 +37,7 @@ import warnings
 
 import numpy as np
 
-from pipeline.stages.calibrate._chunks import CHUNK_ROWS, Scratch, row_chunks
+from pipeline.stages.calibrate._chunks import Scratch, row_chunks
 
 __all__ = ["NO_DATA_VARIANCE", "detect_cosmic_rays", "laplacian_plus"]
 
@@ -67,17 +67,6 @@ def _cross_differences(array, r0, r1, scratch, prefix=""):
     right[:, -1] = 0.0
     np.negative(left[:, 1:], out=right[:, :-1])
     return up, down, left, right
-
-
-def _cross_min(array, r0, r1, out):
-    """Smallest of each pixel and its 4 neighbours, rows [r0, r1) (edges repeated)."""
-    rows = array[r0:r1]
-    np.minimum(rows, array[r0 - 1 : r1 - 1] if r0 > 0 else np.r_[rows[:1], rows[:-1]], out=out)
-    below = array[r0 + 1 : r1 + 1] if r1 < array.shape[0] else np.r_[rows[1:], rows[-1:]]
-    np.minimum(out, below, out=out)
-    np.minimum(out[:, 1:], rows[:, :-1], out=out[:, 1:])
-    np.minimum(out[:, :-1], rows[:, 1:], out=out[:, :-1])
-    return out
 
 
 def _lplus_rows(array, r0, r1, out, scratch):
@@ -121,23 +110,18 @@ def _candidates(work, variance, ignore, significance):
     at least the smallest noise in its cross-shaped neighbourhood, times a
     margin of sqrt(0.5) for a 5x5 median below that minimum.
     """
+    from pipeline.stages.calibrate._cosmics_jit import lplus_candidates
+
     lplus = np.empty(work.shape, dtype=np.float32)
     threshold = np.float32(0.5 * (2.0 * significance) ** 2)
-    scratch = Scratch(work.shape[1])
-    keep = np.empty((CHUNK_ROWS, work.shape[1]), dtype=bool)
-    found = []
-    for r0, r1 in row_chunks(work.shape[0]):
-        n = r1 - r0
-        out = lplus[r0:r1]
-        _lplus_rows(work, r0, r1, out, scratch)
-        vmin = _cross_min(variance, r0, r1, scratch.get("vmin", n))
-        vmin *= threshold
-        test = scratch.get("term", n)
-        np.multiply(out, out, out=test)
-        np.greater(test, vmin, out=keep[:n])
-        keep[:n] &= ~ignore[r0:r1]
-        found.append(np.flatnonzero(keep[:n]) + r0 * work.shape[1])
-    return lplus, np.concatenate(found) if found else np.zeros(0, np.int64)
+    candidates = lplus_candidates(
+        work,
+        np.ascontiguousarray(variance, dtype=np.float32),
+        np.ascontiguousarray(ignore, dtype=bool),
+        threshold,
+        lplus,
+    )
+    return lplus, candidates
 
 
 def _laplacian_plus_at(image: np.ndarray, flat_index: np.ndarray) -> np.ndarray:

@@ -210,12 +210,15 @@ class RectifiedNoise:
         n_y = self.n_y
         w, u, _, base_y = self._weights
         total_w = w.sum(axis=0)  # (nb, n_y)
+        # The squared weights summed over the taps once per block and row (the
+        # same sums, in the same order, as per chunk of the blocks' rows).
+        w2 = np.sum(w**2, axis=0)  # (nb, n_y)
+        u2 = np.sum(u**2, axis=0)  # (n_row_blocks, n_y)
         zero_frequency = np.zeros(self.shifts.shape)
         variance = np.empty(self.shifts.shape)
         for lo in range(0, n_y, chunk):
             rows = np.arange(lo, min(lo + chunk, n_y))
             block = self._pass1_blocks(rows)
-            u1 = u[:, block, rows]
-            variance[:, rows] = np.sum(w[:, :, rows] ** 2, axis=0) * np.sum(u1**2, axis=0)
+            variance[:, rows] = w2[:, rows] * u2[block, rows]
             zero_frequency_rows(u, base_y, block, rows, total_w, lag_y, zero_frequency)
         return zero_frequency, variance

@@ -125,6 +125,7 @@ def load_compiled() -> None:
     bits = {"outside_bit": 1, "nonfinite_bit": 2}
     for dtype in (np.float32, np.float64):
         ones = np.ones((4, 4), dtype)
+        ones[0, 0] = np.nan  # and the cleaning of non-finite pixels
         planes = (ones, ones, np.zeros(ones.shape, MASK_DTYPE))
         resample_columns(*planes, np.arange(4.0) + 0.5, **bits)
         shift_rows(*planes, np.full(4, 0.5), 4, **bits)
@@ -158,15 +159,20 @@ def _cleaned(
     Returns the inputs themselves (no copy) when they are finite and already
     of ``dtype``.
     """
+    from pipeline.stages.rectify._resample_jit import zero_nonfinite
+
     img = np.asarray(image, dtype=dtype)
     var = np.asarray(variance, dtype=dtype)
     # One reduction per plane finds NaN or infinity cheaply in the usual case.
     if np.isfinite(img.sum()) and np.isfinite(var.sum()):
         return img, var, mask
-    finite = np.isfinite(img) & np.isfinite(var)
-    img = np.where(finite, img, 0).astype(dtype, copy=False)
-    var = np.where(finite, var, 0).astype(dtype, copy=False)
-    msk = mask | np.where(finite, 0, nonfinite_bit).astype(mask.dtype)
+    # Cleaned in place: the conversions made above, copies of the planes given.
+    if np.may_share_memory(img, image):
+        img = img.copy()
+    if np.may_share_memory(var, variance):
+        var = var.copy()
+    msk = np.array(mask, dtype=mask.dtype.newbyteorder("="))
+    zero_nonfinite(img, var, msk, msk.dtype.type(nonfinite_bit))
     return img, var, msk
 
 
