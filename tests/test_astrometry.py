@@ -160,6 +160,25 @@ def test_tracks_made_in_two_threads_are_the_ones_made_in_one():
     np.testing.assert_array_equal(two.t_centre, alone.t_centre)
 
 
+def test_a_subset_of_tracks_is_held_contiguous_with_the_same_values():
+    """A subset of stars' tracks (``coef[:, :, index]``, strided star-first by
+    numpy's indexing) is held C-contiguous, so the compiled pass does not copy
+    it on every call; its values and predictions are the full set's rows."""
+    from pipeline.stages.astrometry._fit import _subset
+
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 300)
+    predictor = GeometryPredictor(nominal)
+    tracks = predictor.tracks(ra, dec, t_mid)
+    index = np.arange(0, ra.size, 3)
+    part = _subset(tracks, index)
+    assert part.coef.flags.c_contiguous and part.t_centre.flags.c_contiguous
+    np.testing.assert_array_equal(part.coef, tracks.coef[:, :, index])
+    whole, some = predictor.predict(tracks), predictor.predict(part)
+    np.testing.assert_array_equal(some.u_mean, whole.u_mean[index])
+    np.testing.assert_array_equal(some.column, whole.column[index])
+
+
 @pytest.mark.parametrize("latitude", LATITUDES)
 def test_east_tilt_acts_as_clock_and_rotation(latitude):
     """An east tilt tau equals a clock offset tau/(omega cos phi) and a rotation tau tan phi.
