@@ -165,6 +165,14 @@ def east_tilt_equivalent(model: TDIModel, tilt_east: float) -> tuple[float, floa
 _SPLIT_POINTS = 16384
 
 
+def n_cpus() -> int:
+    """CPUs this process may run on."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not on every platform
+        return os.cpu_count() or 1
+
+
 @functools.cache
 def _helper_thread(pid: int | None = None):
     """One helper thread for the predictor's compiled passes; None on a single CPU.
@@ -177,11 +185,7 @@ def _helper_thread(pid: int | None = None):
     numpy's loops in the sky tracks' evaluations, so half of each large
     prediction and of each large set of tracks runs here.
     """
-    try:
-        n_cpu = len(os.sched_getaffinity(0))
-    except AttributeError:  # not on every platform
-        n_cpu = os.cpu_count() or 1
-    if n_cpu < 2:
+    if n_cpus() < 2:
         return None
     from concurrent.futures import ThreadPoolExecutor
 
