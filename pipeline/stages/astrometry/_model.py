@@ -365,8 +365,8 @@ class GeometryPredictor:
         self.field_radius = 1.05 * max(along, across) + tilt_room
         self._axis: ZenithAxis | None = None
         self._axis_span: tuple[float, float] | None = None
-        self._tilt_key: tuple[float, float] | None = None  # see _tilted
-        self._tilt_matrix: np.ndarray | None = None
+        #: The last tilt asked for and its matrix, one tuple (see _tilted).
+        self._tilt: tuple[tuple[float, float], np.ndarray] | None = None
         #: Relative transparency of the sky, a callable of true seconds since
         #: ``start`` (:class:`~pipeline.stages.astrometry.TransparencyCurve`):
         #: centroids are then light-weighted means of the tracks; None: time means.
@@ -497,13 +497,16 @@ class GeometryPredictor:
     def _tilted(self, tilt_east: float, tilt_north: float) -> np.ndarray:
         """The basis of the axis tilted by these offsets, in the nominal basis (rows).
 
-        The last one is kept: a prediction asks for it about a dozen times.
+        The last one is kept: a prediction asks for it about a dozen times.  Key
+        and matrix are one tuple, read and replaced whole: predictions of other
+        tilts in other threads never hand this one their matrix.
         """
         key = (tilt_east, tilt_north)
-        if self._tilt_key != key:
+        kept = self._tilt
+        if kept is None or kept[0] != key:
             new = axis_basis_enu(self.tilt_east + tilt_east, self.tilt_north + tilt_north)
-            self._tilt_key, self._tilt_matrix = key, new @ self.basis.T
-        return self._tilt_matrix
+            kept = self._tilt = (key, new @ self.basis.T)
+        return kept[1]
 
     def _crossing(self, tracks: SkyTracks, offsets: GeometryOffsets, target: float, t, slope):
         for _ in range(_NEWTON_STEPS):
