@@ -68,7 +68,11 @@ def _catalogue_like(n_rows: int, seed: int = 1) -> QTable:
     return table
 
 
-def test_catalogue_like_table_round_trips(tmp_path):
+@pytest.mark.parametrize("threaded", [False, True])
+def test_catalogue_like_table_round_trips(tmp_path, threaded, monkeypatch):
+    """astropy's bytes, read back as astropy reads them; also with the second
+    half of the columns printed in a thread (as a large table's are)."""
+    monkeypatch.setattr(_ecsv, "THREADED_VALUES", 1 if threaded else 10**12)
     table = _catalogue_like(2000)
     table["flux"][3] = np.nan
     ours = _check_round_trip(table, tmp_path)
