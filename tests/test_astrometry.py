@@ -179,6 +179,28 @@ def test_a_subset_of_tracks_is_held_contiguous_with_the_same_values():
     np.testing.assert_array_equal(some.column, whole.column[index])
 
 
+def test_the_jacobian_s_predictions_in_two_threads_are_those_in_one(monkeypatch):
+    """parameter_jacobian predicts the moved geometries' second half in a thread
+    on two CPUs: the same columns, in the parameters' order, to the bit."""
+    from pipeline.stages.astrometry import _fit
+
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 400)
+    predictor = GeometryPredictor(nominal)
+    tracks = predictor.tracks(ra, dec, t_mid)
+    offsets = GeometryOffsets(clock_offset=0.3, focal_scale=1e-3, rotation=20.0, tilt_north=5.0)
+    names = _fit.FIT_PARAMETERS
+    pred, row, column = _fit._model(predictor, tracks, offsets)
+    jacobians = []
+    for cpus in (1, 2):
+        monkeypatch.setattr(_fit, "n_cpus", lambda cpus=cpus: cpus)
+        jacobians.append(
+            _fit.parameter_jacobian(predictor, tracks, offsets, names, pred, row, column)
+        )
+    assert sum(name not in ("clock_offset", "line_time_scale") for name in names) >= 2
+    np.testing.assert_array_equal(jacobians[0], jacobians[1])
+
+
 @pytest.mark.parametrize("latitude", LATITUDES)
 def test_east_tilt_acts_as_clock_and_rotation(latitude):
     """An east tilt tau equals a clock offset tau/(omega cos phi) and a rotation tau tan phi.

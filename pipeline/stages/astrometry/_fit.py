@@ -46,6 +46,7 @@ from __future__ import annotations
 
 import dataclasses
 import logging
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -54,6 +55,7 @@ from pipeline.stages.astrometry._model import (
     GeometryOffsets,
     GeometryPredictor,
     SkyTracks,
+    n_cpus,
 )
 
 __all__ = [
@@ -262,6 +264,12 @@ def parameter_jacobian(predictor, tracks, offsets, names, pred, row, column):
     result are the ``n`` rows, then the ``n`` columns.
     """
     dt0 = predictor.line_time
+    differenced = [name for name in names if name not in ("clock_offset", "line_time_scale")]
+    moved = [
+        dataclasses.replace(offsets, **{name: getattr(offsets, name) + _STEPS[name]})
+        for name in differenced
+    ]
+    models = dict(zip(differenced, _models(predictor, tracks, moved), strict=True))
     cols = []
     for name in names:
         if name == "clock_offset":
@@ -274,11 +282,29 @@ def parameter_jacobian(predictor, tracks, offsets, names, pred, row, column):
             d_col = np.zeros(row.shape)
         else:
             step = _STEPS[name]
-            moved = dataclasses.replace(offsets, **{name: getattr(offsets, name) + step})
-            _, row2, col2 = _model(predictor, tracks, moved)
+            _, row2, col2 = models.pop(name)
             d_row, d_col = (row2 - row) / step, (col2 - column) / step
         cols.append(np.r_[d_row, d_col])
     return np.column_stack(cols)
+
+
+def _models(predictor: GeometryPredictor, tracks: SkyTracks, geometries: list) -> list:
+    """:func:`_model` of each geometry; the second half in a thread of their own.
+
+    The night-wide stage runs on one worker while the pool's other core idles;
+    a prediction's numpy steps between its compiled passes run on its own
+    thread, so two predictions at once fill both cores (their compiled passes
+    still split between a thread and the predictor's helper).  Each
+    prediction is the same computation either way.
+    """
+    half = len(geometries) // 2
+    if half == 0 or n_cpus() < 2:
+        return [_model(predictor, tracks, g) for g in geometries]
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-models") as pool:
+        # (the block waits for the thread whatever the first half raised)
+        later = pool.submit(lambda: [_model(predictor, tracks, g) for g in geometries[half:]])
+        first = [_model(predictor, tracks, g) for g in geometries[:half]]
+        return first + later.result()
 
 
 def error_floor(residual: np.ndarray, sigma: np.ndarray, dof: float) -> float:
