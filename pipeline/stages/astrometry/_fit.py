@@ -46,7 +46,6 @@ from __future__ import annotations
 
 import dataclasses
 import logging
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -55,7 +54,7 @@ from pipeline.stages.astrometry._model import (
     GeometryOffsets,
     GeometryPredictor,
     SkyTracks,
-    n_cpus,
+    in_two_threads,
 )
 
 __all__ = [
@@ -289,22 +288,15 @@ def parameter_jacobian(predictor, tracks, offsets, names, pred, row, column):
 
 
 def _models(predictor: GeometryPredictor, tracks: SkyTracks, geometries: list) -> list:
-    """:func:`_model` of each geometry; the second half in a thread of their own.
+    """:func:`_model` of each geometry, two at a time (see :func:`in_two_threads`).
 
-    The night-wide stage runs on one worker while the pool's other core idles;
-    a prediction's numpy steps between its compiled passes run on its own
+    A prediction's numpy steps between its compiled passes run on its own
     thread, so two predictions at once fill both cores (their compiled passes
-    still split between a thread and the predictor's helper).  Each
-    prediction is the same computation either way.
+    still split between a thread and the predictor's helper).
     """
-    half = len(geometries) // 2
-    if half == 0 or n_cpus() < 2:
-        return [_model(predictor, tracks, g) for g in geometries]
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-models") as pool:
-        # (the block waits for the thread whatever the first half raised)
-        later = pool.submit(lambda: [_model(predictor, tracks, g) for g in geometries[half:]])
-        first = [_model(predictor, tracks, g) for g in geometries[:half]]
-        return first + later.result()
+    return in_two_threads(
+        lambda geometry: _model(predictor, tracks, geometry), geometries, "astrometry-models"
+    )
 
 
 def error_floor(residual: np.ndarray, sigma: np.ndarray, dof: float) -> float:

@@ -35,6 +35,7 @@ from __future__ import annotations
 import dataclasses
 import functools
 import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -173,6 +174,23 @@ def n_cpus() -> int:
         return os.cpu_count() or 1
 
 
+def in_two_threads(work, items: list, name: str) -> list:
+    """``[work(item) for item in items]``; on two CPUs the second half in a thread.
+
+    A night-wide stage runs on one worker while the pool's other core idles;
+    ``work`` must release the GIL for most of its time (numpy, compiled
+    loops) and compute each item the same in any thread.  The results come
+    in the items' order; the thread (named ``name``) has ended when the call
+    returns or raises.
+    """
+    half = len(items) // 2
+    if half == 0 or n_cpus() < 2:
+        return [work(item) for item in items]
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix=name) as pool:
+        later = pool.submit(lambda: [work(item) for item in items[half:]])
+        return [work(item) for item in items[:half]] + later.result()
+
+
 @functools.cache
 def _helper_thread(pid: int | None = None):
     """One helper thread for the predictor's compiled passes; None on a single CPU.
@@ -187,8 +205,6 @@ def _helper_thread(pid: int | None = None):
     """
     if n_cpus() < 2:
         return None
-    from concurrent.futures import ThreadPoolExecutor
-
     return ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-predict")
 
 

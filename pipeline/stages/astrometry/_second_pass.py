@@ -46,12 +46,11 @@ stars' 0.01-0.05 px of centroid noise.
 from __future__ import annotations
 
 import dataclasses
-from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 from astropy.table import Table
 
-from pipeline.stages.astrometry._model import n_cpus
+from pipeline.stages.astrometry._model import in_two_threads
 from pipeline.stages.rectify._map import StripMap, smear_kernels
 
 __all__ = [
@@ -132,33 +131,23 @@ def solved_kernels_of_stretches(
     (:meth:`~AstrometricSolution.sky_from_rectified_groups`), and the nominal
     map's node columns that adjacent stretches share are computed once
     (``nodes``: a dict to keep them in, e.g. for :func:`kernel_change_error`).
+    On two CPUs the second half of the stretches is made in a thread
+    (:func:`~pipeline.stages.astrometry._model.in_two_threads`).
     """
     groups = [(np.asarray(k["x"], dtype=float), np.asarray(k["y"], dtype=float)) for k in kernels]
     skies = solution.sky_from_rectified_groups(groups) if kernels else []
     nodes = {} if nodes is None else nodes
     model = solution.solved_model if kernels else None  # made once, before any thread
 
-    def some(stretches: range) -> list:
-        return [
-            solved_kernels(
-                kernels[i], solution, nominal_model, frame, model, sky=skies[i], nodes=nodes
-            )
-            for i in stretches
-        ]
-
-    # The second half of the stretches in a thread of their own (the night-wide
-    # stage runs on one worker while the pool's other core idles; the maps'
-    # numpy loops release the GIL).  Each stretch's kernels are the same
-    # computation either way; a node column both halves need may be computed
-    # twice, to the same values.
-    half = len(kernels) // 2
-    if half == 0 or n_cpus() < 2:
-        return some(range(len(kernels)))
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-kernels") as pool:
-        # (the block waits for the thread whatever the first half raised)
-        later = pool.submit(some, range(half, len(kernels)))
-        first = some(range(half))
-        return first + later.result()
+    # each stretch's kernels are the same computation in either thread; a node
+    # column both halves need may be computed twice, to the same values
+    return in_two_threads(
+        lambda i: solved_kernels(
+            kernels[i], solution, nominal_model, frame, model, sky=skies[i], nodes=nodes
+        ),
+        range(len(kernels)),
+        "astrometry-kernels",
+    )
 
 
 def kernel_change(before: Table, after: Table) -> float:
