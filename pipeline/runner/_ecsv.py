@@ -115,12 +115,28 @@ def write_ecsv(table: Table, path: Path) -> None:
         stream.write(header.getvalue())
         if len(table):
             stream.flush()
-            stream.buffer.write(_joined_rows(texts))
+            for rows in _joined_rows(texts):
+                stream.buffer.write(rows)
 
 
-def _joined_rows(texts: list) -> bytes:
+def _joined_rows(texts: list) -> list:
     """The rows of the columns' ``texts``: values joined by spaces, each row ended by
-    ``os.linesep`` (as astropy writes them)."""
+    ``os.linesep`` (as astropy writes them), as consecutive pieces of bytes.
+
+    A large table's second half of rows is joined in a thread of its own (see
+    :data:`THREADED_VALUES`; pyarrow's kernel releases the GIL).
+    """
+    n_rows = len(texts[0])
+    half = n_rows // 2
+    if half == 0 or n_rows * len(texts) < THREADED_VALUES:
+        return [_rows_text(texts)]
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="zdrift-ecsv") as pool:
+        later = pool.submit(_rows_text, [text.slice(half) for text in texts])
+        return [_rows_text([text.slice(0, half) for text in texts]), later.result()]
+
+
+def _rows_text(texts: list) -> memoryview:
+    """The text of the rows of ``texts`` (see :func:`_joined_rows`), not copied."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
@@ -129,7 +145,7 @@ def _joined_rows(texts: list) -> bytes:
     rows = pc.binary_join_element_wise(rows, nothing, end)
     offsets = np.frombuffer(rows.buffers()[1], dtype=np.int64)
     start, stop = offsets[rows.offset], offsets[rows.offset + len(rows)]
-    return rows.buffers()[2].to_pybytes()[start:stop]
+    return memoryview(rows.buffers()[2])[start:stop]
 
 
 def _column_texts(table: Table) -> list | None:
