@@ -23,9 +23,15 @@ are joined by pyarrow too.
 
 Reading, for numeric and boolean columns of a value or a vector per row,
 the rows are parsed by pyarrow (its CSV reader, and for vectors its string
-split and cast, after a check that each element is a JSON number; floats
-correctly rounded, as numpy and json read them) and handed to astropy's own
-header parser and outputter.
+split and cast, after a check that each cell is a JSON list of numbers;
+floats correctly rounded, as numpy and json read them) and handed to
+astropy's own header reader and outputter.
+
+A night catalogue (from :data:`THREADED_VALUES` values) is printed and joined
+on two threads, half of its columns, then half of its rows each (the
+night-wide stages that write it run while the pool's other worker idles);
+the header's YAML is read by libyaml's parser with astropy's constructors
+(:func:`_get_cols`), astropy's pure-Python parser taking ~13 ms a header.
 
 Anything else (string, masked, object or matrix columns, boolean vectors, a comma delimiter,
 comments, blank lines or quotes among the rows) goes to astropy unchanged, so
