@@ -201,6 +201,30 @@ def test_the_jacobian_s_predictions_in_two_threads_are_those_in_one(monkeypatch)
     np.testing.assert_array_equal(jacobians[0], jacobians[1])
 
 
+def test_many_stars_predictions_stay_on_one_thread(monkeypatch):
+    """Above _THREADED_STARS (the detections' errors) the jacobian's predictions
+    are made one at a time: two at once would hold both's temporaries at the
+    stage's memory peak."""
+    from pipeline.stages.astrometry import _fit
+
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 50)
+    predictor = GeometryPredictor(nominal)
+    tracks = predictor.tracks(ra, dec, t_mid)
+    offsets = GeometryOffsets()
+    pred, row, column = _fit._model(predictor, tracks, offsets)
+
+    def no_threads(*args, **kwargs):
+        raise AssertionError("predictions of many stars in two threads")
+
+    monkeypatch.setattr(_fit, "_THREADED_STARS", 49)
+    monkeypatch.setattr(_fit, "in_two_threads", no_threads)
+    jac = _fit.parameter_jacobian(
+        predictor, tracks, offsets, _fit.FIT_PARAMETERS, pred, row, column
+    )
+    assert jac.shape == (2 * 50, len(_fit.FIT_PARAMETERS))
+
+
 @pytest.mark.parametrize("latitude", LATITUDES)
 def test_east_tilt_acts_as_clock_and_rotation(latitude):
     """An east tilt tau equals a clock offset tau/(omega cos phi) and a rotation tau tan phi.

@@ -172,8 +172,7 @@ def test_a_clear_night_is_left_as_time_means(cloudy_night):
 @pytest.mark.parametrize("clear", [False, True])
 def test_the_catalogue_s_sky_is_the_final_solution_s(cloudy_night, clear):
     """The sky and errors of every detection are the final solution's: the
-    light-weighted one's under a cloud (the clear sky's, made in a thread
-    beside the transparency fit, are dropped), the first one's on a clear night."""
+    light-weighted one's under a cloud, the first one's on a clear night."""
     solved = cloudy_night(clear=clear, whole=True)
     assert solved.parameters.meta["light_weighted"] is not clear
     catalog = solved.catalog

@@ -30,7 +30,6 @@ measured the night again for a kernel change that was not there.
 from __future__ import annotations
 
 import dataclasses
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -41,7 +40,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import TDIModel
 from pipeline.stages.astrometry._fit import FIT_PARAMETERS, _subset
-from pipeline.stages.astrometry._model import east_tilt_equivalent, n_cpus
+from pipeline.stages.astrometry._model import east_tilt_equivalent
 from pipeline.stages.astrometry._solve import AstrometricSolution, SearchRanges, solve_night
 from pipeline.stages.astrometry._transparency import fit_transparency
 from pipeline.stages.detect import SourceFlag
@@ -196,25 +195,6 @@ def _transparency(solution: AstrometricSolution, flux, flux_err, ref_mag):
     )
 
 
-def _transparency_beside_sky(solution, flux, flux_err, ref_mag, x, y, x_err, y_err):
-    """``(transparency, sky)``: :func:`_transparency` and ``solution.sky_and_errors``.
-
-    On two CPUs or more the sky and errors of every detection (what the night
-    gets unless the transparency is deep and significant enough to be applied,
-    as it is under a clear sky) are computed in a thread while the
-    transparency is fitted: the stage runs on one worker while the pool's
-    other core idles, and both are numpy and LAPACK loops that mostly release
-    the GIL.  The same values either way; the block waits for the thread,
-    whatever the fit raised.
-    """
-    if n_cpus() < 2:
-        return _transparency(solution, flux, flux_err, ref_mag), None
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-sky") as pool:
-        sky = pool.submit(solution.sky_and_errors, x, y, x_err, y_err)
-        cloud = _transparency(solution, flux, flux_err, ref_mag)
-        return cloud, sky.result()
-
-
 def solve_catalog(
     catalog: QTable,
     ref_ra,
@@ -293,25 +273,22 @@ def solve_catalog(
         "start": start,
     }
     solution = solve_night(*args, **kwargs)
-    cloud, sky = None, None
+    cloud = None
     if options.light_weighting and ref_mag is not None and "flux_psf" in catalog.colnames:
         flux = np.asarray(u.Quantity(catalog["flux_psf"]).value, dtype=float)[fit_rows]
         flux_err = None
         if "flux_psf_err" in catalog.colnames:
             flux_err = np.asarray(u.Quantity(catalog["flux_psf_err"]).value, float)[fit_rows]
-        mag = np.asarray(ref_mag, dtype=float)
-        cloud, sky = _transparency_beside_sky(solution, flux, flux_err, mag, x, y, x_err, y_err)
+        cloud = _transparency(solution, flux, flux_err, np.asarray(ref_mag, dtype=float))
         if (
             cloud is not None
             and cloud.depth >= options.min_cloud_depth
             and cloud.significance >= options.min_cloud_significance
         ):
-            solution, sky = solve_night(*args, transparency=cloud, **kwargs), None
+            solution = solve_night(*args, transparency=cloud, **kwargs)
         else:
             cloud = dataclasses.replace(cloud, applied=False) if cloud is not None else None
-    if sky is None:
-        sky = solution.sky_and_errors(x, y, x_err, y_err)
-    ra, dec, ra_err, dec_err = sky
+    ra, dec, ra_err, dec_err = solution.sky_and_errors(x, y, x_err, y_err)
     out = catalog.copy()
     out["ra"] = ra * u.deg
     out["dec"] = dec * u.deg

@@ -294,9 +294,20 @@ def _models(predictor: GeometryPredictor, tracks: SkyTracks, geometries: list) -
     thread, so two predictions at once fill both cores (their compiled passes
     still split between a thread and the predictor's helper).
     """
-    return in_two_threads(
-        lambda geometry: _model(predictor, tracks, geometry), geometries, "astrometry-models"
-    )
+
+    def model(geometry):
+        return _model(predictor, tracks, geometry)
+
+    if len(tracks) > _THREADED_STARS:
+        return [model(geometry) for geometry in geometries]
+    return in_two_threads(model, geometries, "astrometry-models")
+
+
+#: Stars up to which two predictions are made at once (the fit's ~22 000
+#: matched stars on the 4096-column night): the errors of all ~55 000
+#: detections would hold two predictions' temporaries at the stage's
+#: memory peak, and the process tree's peak with them.
+_THREADED_STARS = 30_000
 
 
 def error_floor(residual: np.ndarray, sigma: np.ndarray, dof: float) -> float:
