@@ -160,6 +160,71 @@ def test_tracks_made_in_two_threads_are_the_ones_made_in_one():
     np.testing.assert_array_equal(two.t_centre, alone.t_centre)
 
 
+def test_a_subset_of_tracks_is_held_contiguous_with_the_same_values():
+    """A subset of stars' tracks (``coef[:, :, index]``, strided star-first by
+    numpy's indexing) is held C-contiguous, so the compiled pass does not copy
+    it on every call; its values and predictions are the full set's rows."""
+    from pipeline.stages.astrometry._fit import _subset
+
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 300)
+    predictor = GeometryPredictor(nominal)
+    tracks = predictor.tracks(ra, dec, t_mid)
+    index = np.arange(0, ra.size, 3)
+    part = _subset(tracks, index)
+    assert part.coef.flags.c_contiguous and part.t_centre.flags.c_contiguous
+    np.testing.assert_array_equal(part.coef, tracks.coef[:, :, index])
+    whole, some = predictor.predict(tracks), predictor.predict(part)
+    np.testing.assert_array_equal(some.u_mean, whole.u_mean[index])
+    np.testing.assert_array_equal(some.column, whole.column[index])
+
+
+def test_the_jacobian_s_predictions_in_two_threads_are_those_in_one(monkeypatch):
+    """parameter_jacobian predicts the moved geometries' second half in a thread
+    on two CPUs: the same columns, in the parameters' order, to the bit."""
+    from pipeline.stages.astrometry import _fit, _model
+
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 400)
+    predictor = GeometryPredictor(nominal)
+    tracks = predictor.tracks(ra, dec, t_mid)
+    offsets = GeometryOffsets(clock_offset=0.3, focal_scale=1e-3, rotation=20.0, tilt_north=5.0)
+    names = _fit.FIT_PARAMETERS
+    pred, row, column = _fit._model(predictor, tracks, offsets)
+    jacobians = []
+    for cpus in (1, 2):
+        monkeypatch.setattr(_model, "n_cpus", lambda cpus=cpus: cpus)
+        jacobians.append(
+            _fit.parameter_jacobian(predictor, tracks, offsets, names, pred, row, column)
+        )
+    assert sum(name not in ("clock_offset", "line_time_scale") for name in names) >= 2
+    np.testing.assert_array_equal(jacobians[0], jacobians[1])
+
+
+def test_many_stars_predictions_stay_on_one_thread(monkeypatch):
+    """Above _THREADED_STARS (the detections' errors) the jacobian's predictions
+    are made one at a time: two at once would hold both's temporaries at the
+    stage's memory peak."""
+    from pipeline.stages.astrometry import _fit
+
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 50)
+    predictor = GeometryPredictor(nominal)
+    tracks = predictor.tracks(ra, dec, t_mid)
+    offsets = GeometryOffsets()
+    pred, row, column = _fit._model(predictor, tracks, offsets)
+
+    def no_threads(*args, **kwargs):
+        raise AssertionError("predictions of many stars in two threads")
+
+    monkeypatch.setattr(_fit, "_THREADED_STARS", 49)
+    monkeypatch.setattr(_fit, "in_two_threads", no_threads)
+    jac = _fit.parameter_jacobian(
+        predictor, tracks, offsets, _fit.FIT_PARAMETERS, pred, row, column
+    )
+    assert jac.shape == (2 * 50, len(_fit.FIT_PARAMETERS))
+
+
 @pytest.mark.parametrize("latitude", LATITUDES)
 def test_east_tilt_acts_as_clock_and_rotation(latitude):
     """An east tilt tau equals a clock offset tau/(omega cos phi) and a rotation tau tan phi.

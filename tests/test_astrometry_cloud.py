@@ -97,7 +97,7 @@ def cloudy_night():
     strip_map = StripMap(model, frame, -4096, 4096 + 4096)
     x0, y0 = frame.pixel_from_icrs(np.asarray(truth["ra"]), np.asarray(truth["dec"]))
 
-    def solve(clear: bool = False, **fit_options):
+    def solve(clear: bool = False, whole: bool = False, **fit_options):
         kind = "geom" if clear else "mean"
         r, c = (np.asarray(truth[f"{a}_{kind}"], float) for a in ("r", "c"))
         x, y = _invert_map(strip_map, r, c, x0, y0)
@@ -120,7 +120,7 @@ def cloudy_night():
             AstrometryOptions(**fit_options),
             ref_mag=np.asarray(truth["mag"]),
         )
-        return solved.parameters
+        return solved if whole else solved.parameters
 
     return solve
 
@@ -167,6 +167,21 @@ def test_a_clear_night_is_left_as_time_means(cloudy_night):
     assert parameters.meta["cloud_depth"] < 0.05
     rotation, error = _rotation(parameters)
     assert abs(rotation) <= 3 * error
+
+
+@pytest.mark.parametrize("clear", [False, True])
+def test_the_catalogue_s_sky_is_the_final_solution_s(cloudy_night, clear):
+    """The sky and errors of every detection are the final solution's: the
+    light-weighted one's under a cloud, the first one's on a clear night."""
+    solved = cloudy_night(clear=clear, whole=True)
+    assert solved.parameters.meta["light_weighted"] is not clear
+    catalog = solved.catalog
+    x, y, x_err, y_err = (u.Quantity(catalog[c], u.pix).value for c in ("x", "y", "x_err", "y_err"))
+    ra, dec, ra_err, dec_err = solved.solution.sky_and_errors(x, y, x_err, y_err)
+    np.testing.assert_array_equal(u.Quantity(catalog["ra"], u.deg).value, ra)
+    np.testing.assert_array_equal(u.Quantity(catalog["dec"], u.deg).value, dec)
+    np.testing.assert_array_equal(u.Quantity(catalog["ra_err"], u.arcsec).value, ra_err)
+    np.testing.assert_array_equal(u.Quantity(catalog["dec_err"], u.arcsec).value, dec_err)
 
 
 def test_window_means_are_the_basis_splines_mean_over_each_window():

@@ -68,7 +68,11 @@ def _catalogue_like(n_rows: int, seed: int = 1) -> QTable:
     return table
 
 
-def test_catalogue_like_table_round_trips(tmp_path):
+@pytest.mark.parametrize("threaded", [False, True])
+def test_catalogue_like_table_round_trips(tmp_path, threaded, monkeypatch):
+    """astropy's bytes, read back as astropy reads them; also with the second
+    half of the columns printed in a thread (as a large table's are)."""
+    monkeypatch.setattr(_ecsv, "THREADED_VALUES", 1 if threaded else 10**12)
     table = _catalogue_like(2000)
     table["flux"][3] = np.nan
     ours = _check_round_trip(table, tmp_path)
@@ -347,3 +351,36 @@ def test_rows_are_parsed_on_the_calling_thread(tmp_path, monkeypatch):
     write_ecsv(_catalogue_like(50), path)
     read_ecsv(path)
     assert used == [False]
+
+
+def test_the_header_read_by_libyaml_is_astropy_s(tmp_path, monkeypatch):
+    """The fast reader parses the header's YAML with libyaml and astropy's
+    constructors: the table's and columns' meta (ordered maps, nested maps and
+    lists, units, a Quantity, non-ASCII and quoted text) come out as astropy's
+    reader gives them, types and order included."""
+    import yaml
+
+    if not yaml.__with_libyaml__:
+        pytest.skip("PyYAML without libyaml: astropy's parser is used")
+    assert _ecsv._get_cols().__globals__["meta"] is _ecsv._LibyamlMeta
+    table = _catalogue_like(50)
+    table.meta["nested"] = OrderedDict(b=[1, 2.5, "x: y"], a={"deep": [True, None]})
+    table.meta["limit"] = 3.5 * u.arcsec
+    table.meta["site"] = 'Sierra de Prueba, 1350 m — "north" pier'
+    table["x"].info.meta = OrderedDict(z=1, y="two")
+    path = tmp_path / "table.ecsv"
+    write_ecsv(table, path)
+    fallbacks = []
+    astropy_s = _ecsv.table_meta.get_header_from_yaml
+    monkeypatch.setattr(
+        _ecsv.table_meta,
+        "get_header_from_yaml",
+        lambda lines: fallbacks.append(1) or astropy_s(lines),
+    )
+    ours = read_ecsv(path, QTable)
+    assert fallbacks == []  # libyaml read it
+    monkeypatch.undo()
+    theirs = QTable.read(path, format="ascii.ecsv")
+    assert_same_table(ours, theirs)
+    assert repr(ours.meta) == repr(theirs.meta)
+    assert list(ours.meta["nested"]) == ["b", "a"]

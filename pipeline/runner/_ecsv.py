@@ -23,9 +23,15 @@ are joined by pyarrow too.
 
 Reading, for numeric and boolean columns of a value or a vector per row,
 the rows are parsed by pyarrow (its CSV reader, and for vectors its string
-split and cast, after a check that each element is a JSON number; floats
-correctly rounded, as numpy and json read them) and handed to astropy's own
-header parser and outputter.
+split and cast, after a check that each cell is a JSON list of numbers;
+floats correctly rounded, as numpy and json read them) and handed to
+astropy's own header reader and outputter.
+
+A night catalogue (from :data:`THREADED_VALUES` values) is printed and joined
+on two threads, half of its columns, then half of its rows each (the
+night-wide stages that write it run while the pool's other worker idles);
+the header's YAML is read by libyaml's parser with astropy's constructors
+(:func:`_get_cols`), astropy's pure-Python parser taking ~13 ms a header.
 
 Anything else (string, masked, object or matrix columns, boolean vectors, a comma delimiter,
 comments, blank lines or quotes among the rows) goes to astropy unchanged, so
@@ -34,15 +40,21 @@ the fast paths never decide what a file means, only how fast it is read.
 
 from __future__ import annotations
 
+import functools
 import io
 import json
 import os
 import re
+import textwrap
+import types
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
+import yaml
 from astropy.io.ascii.ecsv import Ecsv, EcsvOutputter
 from astropy.table import Column, Table, serialize
+from astropy.table import meta as table_meta
 from astropy.utils.data_info import serialize_context_as
 
 __all__ = ["read_ecsv", "write_ecsv"]
@@ -79,6 +91,9 @@ _VECTOR_DATATYPES = _FAST_DATATYPES - {"bool", "float128"}
 #: parser as -0.0).
 _JSON_NUMBER = r"^(?:-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?|NaN|-?Infinity)$"
 
+#: A JSON list of such numbers, no spaces (``[1.5,-0.0,NaN]``), as json writes it.
+_JSON_NUMBER_LIST = rf"^\[{_JSON_NUMBER[1:-1]}(?:,{_JSON_NUMBER[1:-1]})*\]$"
+
 #: The header: the lines from the start that begin with ``#``.
 _HEADER = re.compile(r"(?:#[^\n]*\n)*")
 
@@ -106,12 +121,28 @@ def write_ecsv(table: Table, path: Path) -> None:
         stream.write(header.getvalue())
         if len(table):
             stream.flush()
-            stream.buffer.write(_joined_rows(texts))
+            for rows in _joined_rows(texts):
+                stream.buffer.write(rows)
 
 
-def _joined_rows(texts: list) -> bytes:
+def _joined_rows(texts: list) -> list:
     """The rows of the columns' ``texts``: values joined by spaces, each row ended by
-    ``os.linesep`` (as astropy writes them)."""
+    ``os.linesep`` (as astropy writes them), as consecutive pieces of bytes.
+
+    A large table's second half of rows is joined in a thread of its own (see
+    :data:`THREADED_VALUES`; pyarrow's kernel releases the GIL).
+    """
+    n_rows = len(texts[0])
+    half = n_rows // 2
+    if half == 0 or n_rows * len(texts) < THREADED_VALUES:
+        return [_rows_text(texts)]
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="zdrift-ecsv") as pool:
+        later = pool.submit(_rows_text, [text.slice(half) for text in texts])
+        return [_rows_text([text.slice(0, half) for text in texts]), later.result()]
+
+
+def _rows_text(texts: list) -> memoryview:
+    """The text of the rows of ``texts`` (see :func:`_joined_rows`), not copied."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
@@ -120,7 +151,7 @@ def _joined_rows(texts: list) -> bytes:
     rows = pc.binary_join_element_wise(rows, nothing, end)
     offsets = np.frombuffer(rows.buffers()[1], dtype=np.int64)
     start, stop = offsets[rows.offset], offsets[rows.offset + len(rows)]
-    return rows.buffers()[2].to_pybytes()[start:stop]
+    return memoryview(rows.buffers()[2])[start:stop]
 
 
 def _column_texts(table: Table) -> list | None:
@@ -128,43 +159,69 @@ def _column_texts(table: Table) -> list | None:
 
     Each is a pyarrow array of (large) strings.  None when the table has no
     column, a column is not one the fast path writes (see the module's
-    docstring) or the table carries indices.
+    docstring) or the table carries indices.  A large table's second half of
+    columns is printed in a thread of its own (see :data:`THREADED_VALUES`).
     """
-    import pyarrow as pa
-    import pyarrow.compute as pc
-
     if table.indices or not table.colnames:
         return None
     with serialize_context_as("ecsv"):
         plain = serialize.represent_mixins_as_columns(table)
-    texts = []
-    for column in plain.itercols():
-        values = column.data
-        if type(column) is not Column or values.dtype.kind not in _FAST_KINDS:
-            return None
-        if values.ndim == 2 and values.dtype.kind in "iuf" and values.dtype.itemsize <= 8:
-            texts.append(_vector_texts(values))
-            continue
-        if values.ndim == 2 and values.dtype.itemsize <= 8:
-            # A vector of booleans per row: JSON of its list, as astropy writes it.
-            text = [json.dumps(row, separators=(",", ":")) for row in values.tolist()]
-        elif values.ndim != 1:
-            return None
-        elif values.dtype == np.dtype(float):
-            texts.append(_float64_texts(values))
-            continue
-        elif values.dtype.kind in "iu":
-            # pyarrow prints integers as Python does: the digits, a minus sign
-            texts.append(pc.cast(pa.array(values), pa.large_string()))
-            continue
-        elif values.dtype.kind == "f":
-            # float16/32/128: numpy's own str of each scalar, as astropy prints it.
-            text = [str(value) for value in values]
-        else:
-            # Python bools print as numpy's do.
-            text = list(map(str, values.tolist()))
-        texts.append(pa.array(text, pa.large_string()))
-    return texts
+    columns = list(plain.itercols())
+    if not all(_fast_column(column) for column in columns):
+        return None
+    half = len(columns) // 2
+    if half == 0 or len(plain) * _n_values(columns) < THREADED_VALUES:
+        return [_texts(column.data) for column in columns]
+    # pyarrow's kernels and numpy's loops release the GIL: a night-wide stage's
+    # catalogue is printed on two cores while the pool's other worker idles
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="zdrift-ecsv") as pool:
+        later = pool.submit(lambda: [_texts(column.data) for column in columns[half:]])
+        return [_texts(column.data) for column in columns[:half]] + later.result()
+
+
+#: Values (rows x columns, a vector's elements each) from which a table's
+#: columns are printed in two threads: the 4096-column night's catalogue
+#: (~2.2 million, written by catalog, astrometry and zero point while the
+#: pool's other worker idles; 0.22 -> 0.13-0.16 s), not a stretch's tables
+#: (column statistics ~0.4 million), written while both workers compute.
+THREADED_VALUES = 1_000_000
+
+
+def _n_values(columns: list) -> int:
+    """Values per row of ``columns`` (a vector's elements each)."""
+    return sum(int(np.prod(column.data.shape[1:], dtype=np.int64)) for column in columns)
+
+
+def _fast_column(column) -> bool:
+    """Whether the fast path prints ``column`` (see the module's docstring)."""
+    values = column.data
+    if type(column) is not Column or values.dtype.kind not in _FAST_KINDS:
+        return False
+    return values.ndim == 1 or (values.ndim == 2 and values.dtype.itemsize <= 8)
+
+
+def _texts(values: np.ndarray):
+    """The text of each of a fast column's ``values`` (see :func:`_column_texts`)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if values.ndim == 2 and values.dtype.kind in "iuf":
+        return _vector_texts(values)
+    if values.ndim == 2:
+        # A vector of booleans per row: JSON of its list, as astropy writes it.
+        text = [json.dumps(row, separators=(",", ":")) for row in values.tolist()]
+    elif values.dtype == np.dtype(float):
+        return _float64_texts(values)
+    elif values.dtype.kind in "iu":
+        # pyarrow prints integers as Python does: the digits, a minus sign
+        return pc.cast(pa.array(values), pa.large_string())
+    elif values.dtype.kind == "f":
+        # float16/32/128: numpy's own str of each scalar, as astropy prints it.
+        text = [str(value) for value in values]
+    else:
+        # Python bools print as numpy's do.
+        text = list(map(str, values.tolist()))
+    return pa.array(text, pa.large_string())
 
 
 #: JSON's names of the float specials (Python's json module; RFC 8259 has none).
@@ -287,7 +344,7 @@ def _read_plain(text: str) -> Table | None:
         return None
     reader = Ecsv()
     try:
-        reader.header.get_cols(text[:names_end].splitlines())
+        _get_cols()(reader.header, text[:names_end].splitlines())
     except Exception:  # astropy's own read gives the error, in its words
         return None
     columns = reader.header.cols
@@ -309,6 +366,64 @@ def _read_plain(text: str) -> Table | None:
         column.data = data
     reader.meta["table"].update(reader.header.table_meta)
     return _Outputter()(columns, reader.meta)
+
+
+@functools.cache
+def _get_cols():
+    """astropy's ``EcsvHeader.get_cols``, its YAML read by libyaml's parser.
+
+    astropy's reader parses the header's YAML with PyYAML's pure-Python
+    parser (~13 ms for a detect catalogue's 28 columns and meta, 0.4 s of
+    the 4096-column night's catalog stage, under Python's lock).  This is
+    astropy's own function (its code, defaults and closure) with the name
+    ``meta`` bound to :class:`_LibyamlMeta`, whose
+    ``get_header_from_yaml`` builds the same objects with astropy's
+    constructors through libyaml's scanner and parser, and hands any header
+    it cannot read to astropy's.  astropy's own function when PyYAML has no
+    libyaml, or when it no longer looks the parser up as ``meta``.
+    """
+    from astropy.io.ascii.ecsv import EcsvHeader
+
+    original = EcsvHeader.get_cols
+    if not yaml.__with_libyaml__ or "meta" not in original.__code__.co_names:
+        return original
+    namespace = dict(original.__globals__, meta=_LibyamlMeta)
+    return types.FunctionType(
+        original.__code__, namespace, original.__name__, original.__defaults__, original.__closure__
+    )
+
+
+class _LibyamlMeta:
+    """``astropy.table.meta``, its ``get_header_from_yaml`` by libyaml (see :func:`_get_cols`)."""
+
+    YamlParseError = table_meta.YamlParseError
+
+    @staticmethod
+    def get_header_from_yaml(lines: list[str]):
+        """astropy's header dict of the ECSV header ``lines`` (comment marks removed)."""
+        text = textwrap.dedent("\n".join(lines))  # as astropy's
+        # The first line is the '%ECSV 1.0' version line, a directive libyaml
+        # refuses and PyYAML's parser passes over; the document starts after it.
+        version, _, document = text.partition("\n")
+        if version.startswith("%ECSV"):
+            try:
+                return yaml.load(document, Loader=_libyaml_loader())
+            except Exception:  # astropy's parser reads it, or says why not
+                pass
+        return table_meta.get_header_from_yaml(lines)
+
+
+@functools.cache
+def _libyaml_loader() -> type:
+    """A libyaml loader with the constructors of astropy's table header loader."""
+    from astropy.io.misc.yaml import AstropyLoader
+
+    class Loader(yaml.CSafeLoader):
+        """libyaml's scanner and parser, PyYAML's resolver, astropy's constructors."""
+
+    Loader.yaml_constructors = dict(AstropyLoader.yaml_constructors)
+    Loader.add_constructor("tag:yaml.org,2002:omap", table_meta._construct_odict)
+    return Loader
 
 
 def _vector_length(column) -> int:
@@ -380,17 +495,15 @@ def _parse_vectors(cells, dtype: np.dtype, length: int) -> np.ndarray:
 
     if len(cells) == 0:
         raise ValueError("no rows")
-    starts = pc.utf8_slice_codeunits(cells, 0, 1)
-    ends = pc.utf8_slice_codeunits(cells, -1)
-    if not (pc.all(pc.equal(starts, "[")).as_py() and pc.all(pc.equal(ends, "]")).as_py()):
-        raise ValueError("not a JSON list")
+    # one match per cell (a match per element cost twice as much)
+    if not pc.all(pc.match_substring_regex(cells, _JSON_NUMBER_LIST)).as_py():
+        raise ValueError("not a JSON list of numbers")
     lists = pc.split_pattern(pc.utf8_slice_codeunits(cells, 1, -1), ",")
     if not pc.all(pc.equal(pc.list_value_length(lists), length)).as_py():
         raise ValueError("a list of another length")
     numbers = pc.list_flatten(lists)
-    valid = pc.all(pc.match_substring_regex(numbers, _JSON_NUMBER)).as_py()
-    if not valid or pc.any(pc.equal(numbers, "-0")).as_py():
-        raise ValueError("not JSON numbers")
+    if pc.any(pc.equal(numbers, "-0")).as_py():
+        raise ValueError("the integer -0")
     kind = pa.float64() if dtype.kind == "f" else pa.from_numpy_dtype(dtype)
     values = pc.cast(numbers, kind).to_numpy(zero_copy_only=False)
     return values.reshape(len(cells), length).astype(dtype, copy=False)

@@ -35,6 +35,7 @@ from __future__ import annotations
 import dataclasses
 import functools
 import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -165,6 +166,31 @@ def east_tilt_equivalent(model: TDIModel, tilt_east: float) -> tuple[float, floa
 _SPLIT_POINTS = 16384
 
 
+def n_cpus() -> int:
+    """CPUs this process may run on."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not on every platform
+        return os.cpu_count() or 1
+
+
+def in_two_threads(work, items: list, name: str) -> list:
+    """``[work(item) for item in items]``; on two CPUs the second half in a thread.
+
+    A night-wide stage runs on one worker while the pool's other core idles;
+    ``work`` must release the GIL for most of its time (numpy, compiled
+    loops) and compute each item the same in any thread.  The results come
+    in the items' order; the thread (named ``name``) has ended when the call
+    returns or raises.
+    """
+    half = len(items) // 2
+    if half == 0 or n_cpus() < 2:
+        return [work(item) for item in items]
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix=name) as pool:
+        later = pool.submit(lambda: [work(item) for item in items[half:]])
+        return [work(item) for item in items[:half]] + later.result()
+
+
 @functools.cache
 def _helper_thread(pid: int | None = None):
     """One helper thread for the predictor's compiled passes; None on a single CPU.
@@ -177,14 +203,8 @@ def _helper_thread(pid: int | None = None):
     numpy's loops in the sky tracks' evaluations, so half of each large
     prediction and of each large set of tracks runs here.
     """
-    try:
-        n_cpu = len(os.sched_getaffinity(0))
-    except AttributeError:  # not on every platform
-        n_cpu = os.cpu_count() or 1
-    if n_cpu < 2:
+    if n_cpus() < 2:
         return None
-    from concurrent.futures import ThreadPoolExecutor
-
     return ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-predict")
 
 
@@ -215,6 +235,14 @@ class SkyTracks:
     t_centre: np.ndarray
     half_width: float
     coef: np.ndarray
+
+    def __post_init__(self) -> None:
+        # Held C-contiguous (the same values): a subset of stars
+        # (``coef[:, :, index]``) comes out strided star-first, and the compiled
+        # pass (:meth:`GeometryPredictor._track_detector`) would copy it on every
+        # call (~1500 calls a night, 0.5 s of the 4096-column night's unit).
+        object.__setattr__(self, "coef", np.ascontiguousarray(self.coef, dtype=float))
+        object.__setattr__(self, "t_centre", np.ascontiguousarray(self.t_centre, dtype=float))
 
     def __len__(self) -> int:
         return self.t_centre.size
@@ -353,8 +381,8 @@ class GeometryPredictor:
         self.field_radius = 1.05 * max(along, across) + tilt_room
         self._axis: ZenithAxis | None = None
         self._axis_span: tuple[float, float] | None = None
-        self._tilt_key: tuple[float, float] | None = None  # see _tilted
-        self._tilt_matrix: np.ndarray | None = None
+        #: The last tilt asked for and its matrix, one tuple (see _tilted).
+        self._tilt: tuple[tuple[float, float], np.ndarray] | None = None
         #: Relative transparency of the sky, a callable of true seconds since
         #: ``start`` (:class:`~pipeline.stages.astrometry.TransparencyCurve`):
         #: centroids are then light-weighted means of the tracks; None: time means.
@@ -485,13 +513,16 @@ class GeometryPredictor:
     def _tilted(self, tilt_east: float, tilt_north: float) -> np.ndarray:
         """The basis of the axis tilted by these offsets, in the nominal basis (rows).
 
-        The last one is kept: a prediction asks for it about a dozen times.
+        The last one is kept: a prediction asks for it about a dozen times.  Key
+        and matrix are one tuple, read and replaced whole: predictions of other
+        tilts in other threads never hand this one their matrix.
         """
         key = (tilt_east, tilt_north)
-        if self._tilt_key != key:
+        kept = self._tilt
+        if kept is None or kept[0] != key:
             new = axis_basis_enu(self.tilt_east + tilt_east, self.tilt_north + tilt_north)
-            self._tilt_key, self._tilt_matrix = key, new @ self.basis.T
-        return self._tilt_matrix
+            kept = self._tilt = (key, new @ self.basis.T)
+        return kept[1]
 
     def _crossing(self, tracks: SkyTracks, offsets: GeometryOffsets, target: float, t, slope):
         for _ in range(_NEWTON_STEPS):

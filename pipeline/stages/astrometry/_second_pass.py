@@ -50,6 +50,7 @@ import dataclasses
 import numpy as np
 from astropy.table import Table
 
+from pipeline.stages.astrometry._model import in_two_threads
 from pipeline.stages.rectify._map import StripMap, smear_kernels
 
 __all__ = [
@@ -130,14 +131,23 @@ def solved_kernels_of_stretches(
     (:meth:`~AstrometricSolution.sky_from_rectified_groups`), and the nominal
     map's node columns that adjacent stretches share are computed once
     (``nodes``: a dict to keep them in, e.g. for :func:`kernel_change_error`).
+    On two CPUs the second half of the stretches is made in a thread
+    (:func:`~pipeline.stages.astrometry._model.in_two_threads`).
     """
     groups = [(np.asarray(k["x"], dtype=float), np.asarray(k["y"], dtype=float)) for k in kernels]
     skies = solution.sky_from_rectified_groups(groups) if kernels else []
     nodes = {} if nodes is None else nodes
-    return [
-        solved_kernels(k, solution, nominal_model, frame, sky=sky, nodes=nodes)
-        for k, sky in zip(kernels, skies, strict=True)
-    ]
+    model = solution.solved_model if kernels else None  # made once, before any thread
+
+    # each stretch's kernels are the same computation in either thread; a node
+    # column both halves need may be computed twice, to the same values
+    return in_two_threads(
+        lambda i: solved_kernels(
+            kernels[i], solution, nominal_model, frame, model, sky=skies[i], nodes=nodes
+        ),
+        range(len(kernels)),
+        "astrometry-kernels",
+    )
 
 
 def kernel_change(before: Table, after: Table) -> float:
