@@ -912,7 +912,8 @@ def _residual(image, background, no_data, missing: bool, out) -> np.ndarray:
     if missing and _compiled_types(image, background, no_data, out):
         # one compiled pass (the same values): 7 ms of CPU instead of 12 ms
         # for a 4109 x 1170 plane
-        return residual_rows(image, background, no_data, np.empty(image.shape) if out is None else out)
+        out = np.empty(image.shape) if out is None else out
+        return residual_rows(image, background, no_data, out)
     residual = np.subtract(image, background, out=out, dtype=np.float64)
     if missing:
         residual[no_data] = np.nan

@@ -416,7 +416,8 @@ def measure_groups(
         all_rows.extend(got)
         group.extend([index] * len(got))
     # one pass over the rows for all the columns
-    columns = zip(*map(operator.itemgetter(*names), all_rows)) if all_rows else [[]] * len(names)
+    rows = map(operator.itemgetter(*names), all_rows)
+    columns = zip(*rows, strict=True) if all_rows else [[]] * len(names)
     result = {name: np.asarray(column) for name, column in zip(names, columns, strict=True)}
     result["group"] = np.asarray(group)
     result["kernel"] = [row["kernel"] for row in all_rows]
