@@ -734,3 +734,23 @@ def test_the_fit_estimates_the_reference_error_it_was_not_given():
     distance = float(d @ np.linalg.solve(fit.covariance[np.ix_(k, k)], d))
     # 13.8: the 99.9 % point of chi-square with 2 degrees of freedom
     assert distance < 13.8, d / np.sqrt(np.diag(fit.covariance[np.ix_(k, k)]))
+
+
+def test_the_predictors_helper_thread_lets_the_command_end_at_once():
+    # `zdrift` ends with pipeline.cli.exit_now, which waits for any thread
+    # that is not a daemon (and so runs the interpreter's slow teardown): the
+    # helper thread astrometry keeps for its predictions must be a daemon.
+    import operator
+    import os
+    import threading
+
+    from pipeline.stages.astrometry import _model
+
+    helper = _model.DaemonHelper("test-helper")
+    assert [helper.submit(operator.add, n, 3).result() for n in range(3)] == [3, 4, 5]
+    with pytest.raises(ZeroDivisionError):
+        helper.submit(operator.truediv, 1, 0).result()
+    if _model._helper_thread(os.getpid()) is None:
+        pytest.skip("one CPU: no helper thread")
+    kept = [t for t in threading.enumerate() if t.name.startswith("astrometry-predict")]
+    assert kept and all(t.daemon for t in kept)

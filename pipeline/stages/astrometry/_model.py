@@ -35,7 +35,9 @@ from __future__ import annotations
 import dataclasses
 import functools
 import os
-from concurrent.futures import ThreadPoolExecutor
+import queue
+import threading
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -191,8 +193,39 @@ def in_two_threads(work, items: list, name: str) -> list:
         return [work(item) for item in items[:half]] + later.result()
 
 
+class DaemonHelper:
+    """A thread that runs the calls submitted to it, in order; results come as futures.
+
+    Unlike a :class:`~concurrent.futures.ThreadPoolExecutor`'s, its thread is a
+    daemon: one that lives as long as the process does not keep the process
+    from ending at once (``zdrift`` ends with
+    :func:`pipeline.cli.exit_now`, which waits for every other thread).
+    Whoever submits waits for the result; nothing runs there at the end.
+    """
+
+    def __init__(self, name: str):
+        self._calls: queue.SimpleQueue = queue.SimpleQueue()
+        threading.Thread(target=self._serve, name=name, daemon=True).start()
+
+    def _serve(self) -> None:
+        while True:
+            future, work, args = self._calls.get()
+            if not future.set_running_or_notify_cancel():
+                continue
+            try:
+                future.set_result(work(*args))
+            except BaseException as exc:  # handed to whoever waits for the result
+                future.set_exception(exc)
+
+    def submit(self, work, *args) -> Future:
+        """Run ``work(*args)`` in the thread; its result or exception comes in the future."""
+        future: Future = Future()
+        self._calls.put((future, work, args))
+        return future
+
+
 @functools.cache
-def _helper_thread(pid: int | None = None):
+def _helper_thread(pid: int | None = None) -> DaemonHelper | None:
     """One helper thread for the predictor's compiled passes; None on a single CPU.
 
     ``pid``: the calling process' (a process forked from one that made the
@@ -205,7 +238,7 @@ def _helper_thread(pid: int | None = None):
     """
     if n_cpus() < 2:
         return None
-    return ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-predict")
+    return DaemonHelper("astrometry-predict")
 
 
 @functools.cache
