@@ -1423,6 +1423,56 @@ def test_dask_on_a_cluster_of_its_own_survives_a_lost_worker(toy, tmp_path, monk
     assert "KilledWorker" in report.problems[0].reason
 
 
+class _DyingClient:
+    """A dask client stand-in: ``bad`` kills every worker it runs on, and the
+    first time round ``held`` waits on such a worker (dask counts that death
+    against it too)."""
+
+    def __init__(self) -> None:
+        self.submitted: list[str] = []
+
+    def submit(self, fn, task, pure, key):
+        import concurrent.futures
+
+        from distributed import KilledWorker
+
+        self.submitted.append(task.unit)
+        future = concurrent.futures.Future()
+        if task.unit == "bad" or (task.unit == "held" and self.submitted.count("held") == 1):
+            worker = types.SimpleNamespace(address="tcp://127.0.0.1:1")
+            future.set_exception(KilledWorker(key, worker, 3))
+        else:
+            future.set_result(("ran", task.unit))
+        return future
+
+
+@pytest.mark.parametrize("way", ["map", "flow"])
+def test_dask_retries_alone_a_unit_whose_workers_died(monkeypatch, way) -> None:
+    # A unit that kills its worker takes the units waiting there with it (dask
+    # fails them too after a few deaths): those are run again alone, so only
+    # the unit that kills its worker by itself fails, as on the local pool.
+    pytest.importorskip("distributed")
+    executor, client = _executors.DaskExecutor(None, 2), _DyingClient()
+    monkeypatch.setattr(executor, "_connect", lambda: client)
+    tasks = [
+        types.SimpleNamespace(stage=types.SimpleNamespace(name="t"), unit=u)
+        for u in ("held", "bad", "good")
+    ]
+    on_error = lambda task, reason: ("failed", task.unit, reason)  # noqa: E731
+    if way == "map":
+        outcomes = list(executor.map(None, tasks, on_error))
+    else:
+        outcomes = []
+        executor.flow(None, tasks, on_error, lambda outcome: outcomes.append(outcome) or [])
+    assert sorted(outcome[:2] for outcome in outcomes) == [
+        ("failed", "bad"),
+        ("ran", "good"),
+        ("ran", "held"),
+    ]
+    assert next(o for o in outcomes if o[0] == "failed")[2].startswith("KilledWorker: ")
+    assert sorted(client.submitted) == ["bad", "bad", "good", "held", "held"]
+
+
 @dataclasses.dataclass(frozen=True)
 class _Sleep:
     """A unit of work that only sleeps (the executors name tasks by stage and unit)."""

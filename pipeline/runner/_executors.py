@@ -590,16 +590,44 @@ class DaskExecutor(Executor):
             futures[client.submit(fn, task, pure=False, key=key)] = task
         self._futures = list(futures)
         pending = set(futures)
+        killed = []
         try:
             for future in self._completed(client, pending):
                 try:
                     yield future.result()
                 except Exception as exc:  # KilledWorker, lost connection, ...
-                    yield on_error(futures[future], f"{type(exc).__name__}: {exc}")
+                    if _killed_worker(exc):
+                        killed.append(futures[future])
+                    else:
+                        yield on_error(futures[future], f"{type(exc).__name__}: {exc}")
+            while killed:
+                outcome = self._alone(client, fn, killed[0], on_error)
+                killed.pop(0)
+                yield outcome
         except _NoWorkersError as exc:
             for future in list(pending):
                 future.cancel()
                 yield on_error(futures[future], str(exc))
+            for task in killed:
+                yield on_error(task, str(exc))
+
+    def _alone(self, client, fn, task, on_error) -> Outcome:
+        """Run a unit whose workers died again, alone on the cluster.
+
+        dask counts a death against every unit a dying worker held, the one
+        it ran and those waiting there, and fails a unit after a few: a unit
+        that kills its worker took others with it.  Retried alone, only a
+        unit that kills its worker by itself fails (as on the local pool).
+        """
+        key = f"{task.stage.name}-{task.unit}-{uuid.uuid4().hex[:8]}"
+        future = client.submit(fn, task, pure=False, key=key)
+        self._futures = [future]
+        for done in self._completed(client, {future}):
+            try:
+                return done.result()
+            except Exception as exc:  # KilledWorker, lost connection, ...
+                return on_error(task, f"{type(exc).__name__}: {exc}")
+        raise AssertionError("unreachable: the future completes or _completed raises")
 
     def flow(self, fn, tasks, on_error, on_done, key=None) -> None:
         if not tasks:
@@ -625,16 +653,25 @@ class DaskExecutor(Executor):
             return submitted
 
         pending = set(submit(tasks))
+        killed: list = []  # retried alone once nothing else runs (see _alone)
         try:
-            for future in self._completed(client, pending):
-                try:
-                    outcome = future.result()
-                except Exception as exc:  # KilledWorker, lost connection, ...
-                    outcome = on_error(futures[future], f"{type(exc).__name__}: {exc}")
-                pending.update(submit(on_done(outcome)))
+            while pending or killed:
+                for future in self._completed(client, pending):
+                    try:
+                        outcome = future.result()
+                    except Exception as exc:  # KilledWorker, lost connection, ...
+                        if _killed_worker(exc):
+                            killed.append(futures[future])
+                            continue
+                        outcome = on_error(futures[future], f"{type(exc).__name__}: {exc}")
+                    pending.update(submit(on_done(outcome)))
+                if killed:
+                    outcome = self._alone(client, fn, killed[0], on_error)
+                    killed.pop(0)
+                    pending.update(submit(on_done(outcome)))
         except _NoWorkersError as exc:
             # the units waiting fail, and so do those that would follow them
-            failed = [futures[future] for future in pending]
+            failed = [futures[future] for future in pending] + killed
             for future in pending:
                 future.cancel()
             while failed:
@@ -681,6 +718,11 @@ class DaskExecutor(Executor):
             self._cluster.close()
             self._cluster = None
         self._reaper.stop()
+
+
+def _killed_worker(exc: BaseException) -> bool:
+    """Whether dask gave up on a task because workers died while they held it."""
+    return type(exc).__name__ == "KilledWorker"
 
 
 def _fitted(workers: int, units_at_once: int | None) -> int:
