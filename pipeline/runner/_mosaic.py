@@ -40,6 +40,7 @@ from pipeline.runner._executors import make_executor
 from pipeline.runner._lock import RunLock
 from pipeline.runner._night import NightStore, format_ids
 from pipeline.runner._store import (
+    Known,
     clear_failure,
     hash_json,
     read_damage,
@@ -163,7 +164,7 @@ class MosaicStore:
         self.stages = {TILE_STAGE.name: TILE_STAGE}
         self.damaged: dict[tuple[str, str], str] = {}
         #: What the workers remember of the tiles they wrote (no tile reads another's).
-        self.known: dict[str, tuple[tuple[int, ...], str]] = {}
+        self.known: Known = {}
         self.options = TileOptions(coadd=config.coadd, detect=config.detect)
         self.products: list[InputProduct] = []
         self.problems: list[str] = []

@@ -34,6 +34,7 @@ from pipeline.runner._rawio import (
     raw_files_fingerprint,
 )
 from pipeline.runner._store import (
+    Known,
     file_digest,
     hash_json,
     read_damage,
@@ -150,7 +151,7 @@ class NightStore:
         self._digests: dict[tuple[str, int, int], str] = {}
         #: What this run's workers remember of the products they wrote, by path
         #: (see :func:`pipeline.runner._store.known_digests`), for the units that read them.
-        self.known: dict[str, tuple[tuple[int, ...], str]] = {}
+        self.known: Known = {}
         self.root = night_dir(config)
         self.raw_dir = Path(config.night.raw_dir)
         self.stages = {stage.name: stage for stage in config.graph}
@@ -656,7 +657,7 @@ class NightStore:
             known_inputs=self._known_inputs(specs),
         )
 
-    def _known_inputs(self, specs: Sequence[InputSpec]) -> dict[str, tuple[tuple[int, ...], str]]:
+    def _known_inputs(self, specs: Sequence[InputSpec]) -> Known:
         """What the run's workers remember of the product files ``specs`` read."""
         units = []
         for spec in specs:

@@ -16,7 +16,8 @@ done (old or new) or not done, never half-done.
 
 A product's content is checked against the SHA-256 its sidecar records
 before it is read (:func:`verify_product`).  Hashing is the store's main
-cost (a long night's units hash ~7 GB, ~4 s of CPU), so a process remembers
+cost (~0.5 s of CPU per GB; each stretch's products are read by up to three
+units, its own and its two neighbours' detect), so a process remembers
 the digests of the files it has hashed (written or checked) with the file's
 identity and times (device, inode, size, modification and change times) and
 checks a file it remembers by those alone: a file rewritten or renamed over
@@ -126,9 +127,10 @@ def _file_sha256(path: Path) -> str:
 SETTLE_SECONDS = 0.02
 #: Files remembered at most (the oldest are forgotten first).
 _KNOWN_MAX = 4096
-#: ``path -> (identity and times, SHA-256)`` of files this process hashed.
-_KNOWN: dict[str, tuple[tuple[int, ...], str]] = {}
-Known = Mapping[str, tuple[tuple[int, ...], str]]
+#: ``path -> (identity and times, SHA-256)`` of files a process remembers.
+Known = dict[str, tuple[tuple[int, ...], str]]
+#: What this process remembers.
+_KNOWN: Known = {}
 
 
 def _identity(status: os.stat_result) -> tuple[int, ...]:
@@ -155,7 +157,7 @@ def _remember(path: Path, digest: str, taken_ns: int, status: os.stat_result) ->
     learn_digests({os.path.abspath(path): (_identity(status), digest)})
 
 
-def known_digests(paths: Iterable[Path]) -> dict[str, tuple[tuple[int, ...], str]]:
+def known_digests(paths: Iterable[Path]) -> Known:
     """What this process remembers of ``paths`` (see the module docstring), by absolute path.
 
     For :func:`learn_digests` in another process of the same run.
@@ -164,7 +166,7 @@ def known_digests(paths: Iterable[Path]) -> dict[str, tuple[tuple[int, ...], str
     return {key: _KNOWN[key] for key in keys if key in _KNOWN}
 
 
-def learn_digests(known: Known) -> None:
+def learn_digests(known: Mapping[str, tuple[tuple[int, ...], str]]) -> None:
     """Remember files' digests, identities and times that :func:`known_digests` gave.
 
     Only for what a process of the same run remembered: such a file is then

@@ -33,6 +33,7 @@ from pipeline.runner._heap import release_free_memory
 from pipeline.runner._lock import check_lock_held
 from pipeline.runner._rawio import check_block_index, read_raw_files, read_rows
 from pipeline.runner._store import (
+    Known,
     LazyProducts,
     LazyUnit,
     check_products,
@@ -161,7 +162,7 @@ class UnitTask:
     missing_stretches: Mapping[str, str] = field(default_factory=dict)
     input_problems: tuple[str, ...] = ()
     lock: tuple[Path, str] | None = None
-    known_inputs: Mapping[str, tuple[tuple[int, ...], str]] = field(default_factory=dict)
+    known_inputs: Known = field(default_factory=dict)
 
 
 @dataclass
@@ -184,7 +185,7 @@ class UnitOutcome:
     warnings: list[str] = field(default_factory=list)
     problems: list[str] = field(default_factory=list)
     damaged: list[tuple[str, str]] = field(default_factory=list)
-    known: dict[str, tuple[tuple[int, ...], str]] = field(default_factory=dict)
+    known: Known = field(default_factory=dict)
 
 
 def failed_outcome(task: UnitTask, error: str, tb: str | None = None) -> UnitOutcome:
