@@ -38,7 +38,10 @@ stopping the batch.
   no dashboard and no HTTP routes (its HTTP listener takes a random loopback
   port and answers nothing), and uses a per-run TLS certificate when the
   ``cryptography`` package is installed (``Security.temporary()``); without
-  it, any local user could submit work to it while it runs.
+  it, any local user could submit work to it while it runs.  A unit dask
+  gave up on because workers died while they held it is run again alone
+  (:meth:`DaskExecutor._alone`), as the local pool retries the units of a
+  broken pool: only a unit that kills its worker by itself fails.
 
 Workers of the local pool and of the dask cluster started for the run end
 when the run that started them dies (even by ``kill -9``): on Linux through
