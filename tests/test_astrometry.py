@@ -182,7 +182,8 @@ def test_a_subset_of_tracks_is_held_contiguous_with_the_same_values():
 def test_the_jacobian_s_predictions_in_two_threads_are_those_in_one(monkeypatch):
     """parameter_jacobian predicts the moved geometries' second half in a thread
     on two CPUs: the same columns, in the parameters' order, to the bit."""
-    from pipeline.stages.astrometry import _fit, _model
+    from pipeline import _threads
+    from pipeline.stages.astrometry import _fit
 
     _, _, _, nominal = _full_chip(LATITUDES[0])
     ra, dec, t_mid = _stars_on_chip(nominal, 400)
@@ -193,7 +194,7 @@ def test_the_jacobian_s_predictions_in_two_threads_are_those_in_one(monkeypatch)
     pred, row, column = _fit._model(predictor, tracks, offsets)
     jacobians = []
     for cpus in (1, 2):
-        monkeypatch.setattr(_model, "n_cpus", lambda cpus=cpus: cpus)
+        monkeypatch.setattr(_threads, "n_cpus", lambda cpus=cpus: cpus)
         jacobians.append(
             _fit.parameter_jacobian(predictor, tracks, offsets, names, pred, row, column)
         )

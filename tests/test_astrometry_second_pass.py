@@ -126,9 +126,9 @@ def test_the_stretches_kernels_together_are_each_stretch_s_own(cpus, monkeypatch
     """solved_kernels_of_stretches (one pass for the sky, the map's shared node
     columns computed once, on two CPUs the second half of the stretches in a
     thread) gives every stretch the kernels it gets alone, in order."""
-    from pipeline.stages.astrometry import _model
+    from pipeline import _threads
 
-    monkeypatch.setattr(_model, "n_cpus", lambda: cpus)
+    monkeypatch.setattr(_threads, "n_cpus", lambda: cpus)
     model = night_model(LATITUDES[0], N_ROWS, small_camera(tdi_rows=TDI_ROWS))
     frame = RectifiedFrame.for_night(model, N_ROWS)
     records = []

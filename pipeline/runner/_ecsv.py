@@ -47,7 +47,6 @@ import os
 import re
 import textwrap
 import types
-from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -56,6 +55,8 @@ from astropy.io.ascii.ecsv import Ecsv, EcsvOutputter
 from astropy.table import Column, Table, serialize
 from astropy.table import meta as table_meta
 from astropy.utils.data_info import serialize_context_as
+
+from pipeline._threads import in_two_threads
 
 __all__ = ["read_ecsv", "write_ecsv"]
 
@@ -136,9 +137,8 @@ def _joined_rows(texts: list) -> list:
     half = n_rows // 2
     if half == 0 or n_rows * len(texts) < THREADED_VALUES:
         return [_rows_text(texts)]
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="zdrift-ecsv") as pool:
-        later = pool.submit(_rows_text, [text.slice(half) for text in texts])
-        return [_rows_text([text.slice(0, half) for text in texts]), later.result()]
+    halves = [[text.slice(0, half) for text in texts], [text.slice(half) for text in texts]]
+    return in_two_threads(_rows_text, halves, "zdrift-ecsv")
 
 
 def _rows_text(texts: list) -> memoryview:
@@ -174,9 +174,7 @@ def _column_texts(table: Table) -> list | None:
         return [_texts(column.data) for column in columns]
     # pyarrow's kernels and numpy's loops release the GIL: a night-wide stage's
     # catalogue is printed on two cores while the pool's other worker idles
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="zdrift-ecsv") as pool:
-        later = pool.submit(lambda: [_texts(column.data) for column in columns[half:]])
-        return [_texts(column.data) for column in columns[:half]] + later.result()
+    return in_two_threads(lambda column: _texts(column.data), columns, "zdrift-ecsv")
 
 
 #: Values (rows x columns, a vector's elements each) from which a table's

@@ -50,12 +50,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from pipeline.stages.astrometry._model import (
-    GeometryOffsets,
-    GeometryPredictor,
-    SkyTracks,
-    in_two_threads,
-)
+from pipeline._threads import in_two_threads
+from pipeline.stages.astrometry._model import GeometryOffsets, GeometryPredictor, SkyTracks
 
 __all__ = [
     "FIT_PARAMETERS",

@@ -50,7 +50,7 @@ import dataclasses
 import numpy as np
 from astropy.table import Table
 
-from pipeline.stages.astrometry._model import in_two_threads
+from pipeline._threads import in_two_threads
 from pipeline.stages.rectify._map import StripMap, smear_kernels
 
 __all__ = [
@@ -132,7 +132,7 @@ def solved_kernels_of_stretches(
     map's node columns that adjacent stretches share are computed once
     (``nodes``: a dict to keep them in, e.g. for :func:`kernel_change_error`).
     On two CPUs the second half of the stretches is made in a thread
-    (:func:`~pipeline.stages.astrometry._model.in_two_threads`).
+    (:func:`~pipeline._threads.in_two_threads`).
     """
     groups = [(np.asarray(k["x"], dtype=float), np.asarray(k["y"], dtype=float)) for k in kernels]
     skies = solution.sky_from_rectified_groups(groups) if kernels else []
