@@ -34,6 +34,7 @@ the CPU time of each tree's runs and the ratio of their medians.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import cProfile
 import gc
 import json
@@ -43,6 +44,7 @@ import statistics
 import subprocess
 import sys
 import time
+from collections.abc import Mapping
 
 # the script's folder is on sys.path when it is run as a script
 from _machine import limit_threads, machine_state
@@ -55,19 +57,32 @@ sys.path.insert(0, str(ROOT))
 import numpy as np  # noqa: E402
 
 
-def load_stretch(night: pathlib.Path, index: int) -> tuple[dict, dict | None, dict | None]:
-    """The rectify products of stretch ``index`` and of its neighbours (None where absent)."""
-    from pipeline.runner._store import read_products, read_sidecar
+#: Keeps the neighbours' files open for the process's life (they are read
+#: lazily, as a run's worker reads them).
+_FILES = contextlib.ExitStack()
 
-    def products(i: int) -> dict | None:
+
+def load_stretch(night: pathlib.Path, index: int) -> tuple[dict, Mapping | None, Mapping | None]:
+    """The rectify products of stretch ``index`` and of its neighbours (None where absent).
+
+    The neighbours come as a run's worker gets them: each product read when
+    looked up, image files opened lazily so that only their edge columns are
+    read.
+    """
+    from pipeline.runner._store import LazyUnit, read_products, read_sidecar
+
+    def sidecar_of(i: int) -> tuple[pathlib.Path, dict | None]:
         unit = night / "rectify" / f"s{i:04d}"
-        sidecar = read_sidecar(unit) if i >= 0 else None
-        return None if sidecar is None else read_products(unit, sidecar)
+        return unit, (read_sidecar(unit) if i >= 0 else None)
 
-    own = products(index)
-    if own is None:
+    unit, sidecar = sidecar_of(index)
+    if sidecar is None:
         raise SystemExit(f"no finished rectify/s{index:04d} in {night}: reduce the night first.")
-    return own, products(index - 1), products(index + 1)
+    neighbours = []
+    for i in (index - 1, index + 1):
+        folder, record = sidecar_of(i)
+        neighbours.append(None if record is None else LazyUnit(folder, record, files=_FILES))
+    return read_products(unit, sidecar), *neighbours
 
 
 def compare(catalog, path: str) -> list[str]:
