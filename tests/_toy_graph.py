@@ -27,7 +27,6 @@ processes started by the local pool and by dask can import it by name.
 from __future__ import annotations
 
 import dataclasses
-import logging
 import os
 import time
 from pathlib import Path
@@ -78,13 +77,6 @@ def build_index(*, inputs, options, context):
     )
     rejected = {f.name: f.error for f in inputs[RAW_FILES] if f.error is not None}
     return {BLOCK_INDEX: index, "rejected": rejected}
-
-
-def build_index_and_log(*, inputs, options, context):
-    """:func:`build_index`, logging how many blocks it indexed (``QUICK_GRAPH``)."""
-    products = build_index(inputs=inputs, options=options, context=context)
-    logging.getLogger(__name__).info("indexed %d blocks", len(products[BLOCK_INDEX]))
-    return products
 
 
 def scale_rows(*, inputs, options, context):
@@ -210,9 +202,6 @@ WARM_GRAPH = (
     ),
     *GRAPH[2:],
 )
-#: ``index`` quick (the local pool runs it in the run's process while its workers start),
-#: logging what it indexed.
-QUICK_GRAPH = (dataclasses.replace(GRAPH[0], run=build_index_and_log, quick=True), *GRAPH[1:])
 #: ``scale`` as an image product, and ``seams``: each stretch with its neighbours' edge rows.
 NEIGHBOUR_GRAPH = (
     GRAPH[0],

@@ -30,7 +30,6 @@ from _toy_graph import (
     GRAPH,
     NEIGHBOUR_GRAPH,
     PARTIAL_GRAPH,
-    QUICK_GRAPH,
     STREAM_GRAPH,
     WARM_GRAPH,
     IndexOptions,
@@ -922,34 +921,6 @@ def test_a_worker_freezes_its_objects_for_the_collector_once_warm(monkeypatch):
     monkeypatch.setattr(_executors, "start_warming", lambda plan, **kw: asked.append(kw))
     _executors.prepare_worker((), ())
     assert asked == [{"settle": True}]
-
-
-def test_a_quick_first_unit_runs_in_this_process_while_the_pool_starts(tmp_path, caplog):
-    """A run whose first work is one unit of a ``quick`` stage computes it in this
-    process while the local pool's workers start; the per-stretch units run in the
-    workers, the products are those of a serial run, and the unit's log record is
-    written once.  Once the pool is up (a second batch), a quick unit goes to it."""
-    make_config, _ = toy_night(tmp_path, QUICK_GRAPH)
-    config = make_config("run.executor=local", "run.workers=2")
-    with caplog.at_level("INFO", logger="_toy_graph"):
-        assert run_night(config).ok
-    records = sidecars(config)
-    assert records["index/night"]["pid"] == os.getpid()
-    assert all(r["pid"] != os.getpid() for key, r in records.items() if key != "index/night")
-    assert product_hashes(config) == product_hashes(_reference(tmp_path))
-    logged = [r for r in caplog.records if r.getMessage().endswith("indexed 4 blocks")]
-    assert len(logged) == 1, [r.getMessage() for r in logged]
-    with pytest.raises(ValueError, match="quick needs scope='night'"):
-        dataclasses.replace(QUICK_GRAPH[1], quick=True)
-    # the pool already running: the quick unit is one of its batches
-    executor = _executors.LocalPoolExecutor(2)
-    executor.warm(())
-    with executor:
-        executor._start()
-        config = make_config("run.executor=local", "run.workers=2")
-        report = run_night(config, force=True, executor=executor)
-        assert report.ok, report.format()
-    assert sidecars(config)["index/night"]["pid"] != os.getpid()
 
 
 def test_a_run_starts_no_more_workers_than_it_has_units_to_run_at_once(toy, tmp_path, monkeypatch):

@@ -22,12 +22,7 @@ stopping the batch.
   does, with the warm-up in a thread of this process: a worker would cost a
   second interpreter's start and imports (about 0.4 s of CPU, on the run's
   critical path) and run nothing alongside; such a run gives up the pool's
-  isolation (a unit that kills its process ends the run).  A run whose first
-  work is one unit of a ``quick`` stage (ingest, see
-  :class:`~pipeline.stages.base.Stage`) starts the pool and computes that
-  unit in this process meanwhile: a worker would take about 0.4 s to start
-  and import, and then load the stage's own libraries, before it could
-  begin; this process has most of them loaded by then.  When the run ends
+  isolation (a unit that kills its process ends the run).  When the run ends
   with no unit in progress, the idle workers are terminated rather than
   waited for: a worker's interpreter takes seconds to exit with the
   libraries it loaded, and it has nothing left to write.  The workers get
@@ -67,7 +62,6 @@ from __future__ import annotations
 
 import contextlib
 import ctypes
-import dataclasses
 import importlib
 import logging
 import multiprocessing
@@ -410,12 +404,6 @@ class LocalPoolExecutor(Executor):
             if tasks:
                 self._here()
             yield from super().map(fn, tasks, on_error)
-            return
-        if self._pool is None and len(tasks) == 1 and getattr(tasks[0].stage, "quick", False):
-            # the run's first work, and light: here, while the workers start
-            # (its log records go to this process's handlers as it logs them)
-            self._start()
-            yield _computed_here(fn, dataclasses.replace(tasks[0], capture_logs=False))
             return
         # When a worker dies (killed, out of memory) the whole pool breaks and
         # every unfinished task fails with it.  Those tasks are retried one at

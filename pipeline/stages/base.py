@@ -598,15 +598,6 @@ class Stage:
         per-process state (Earth-orientation tables, compiled kernels from
         numba's disk cache).  It must not change what the stage produces;
         it does not enter the config hash.
-    quick : bool
-        The stage's unit is short and light (ingest: an index of the raw
-        files' headers and a summary of their pixels, a block at a time):
-        the local pool runs such a unit, when it is the first work of a run,
-        in the run's own process while the pool's workers start, instead of
-        waiting for a worker to import the libraries and then load the
-        stage's (about half a second of every run).  Set it only for a
-        night-scoped stage whose unit cannot harm the run's process: it
-        gives up a worker's isolation.
     """
 
     name: str
@@ -624,7 +615,6 @@ class Stage:
     streams: tuple[str, ...] = ()
     optional: tuple[str, ...] = ()
     warm: tuple[str, ...] = ()
-    quick: bool = False
 
     def __post_init__(self) -> None:
         if not self.name.isidentifier() or self.name != self.name.lower():
@@ -681,8 +671,6 @@ class Stage:
             )
         if RUN_STATUS in self.requires and self.scope != "night":
             raise ValueError(f"Stage {self.name!r}: {RUN_STATUS!r} needs scope='night'.")
-        if self.quick and self.scope != "night":
-            raise ValueError(f"Stage {self.name!r}: quick needs scope='night'.")
         if self.defines_rows and self.scope != "night":
             raise ValueError(f"Stage {self.name!r}: defines_rows needs scope='night'.")
         if RAW_ROWS in self.requires and self.scope != "stretch":

@@ -729,5 +729,4 @@ STAGE = Stage(
     # sites compared with the config
     # 5: units on gain, read_noise, saturation
     version=5,
-    quick=True,  # headers and pixel summaries, a block at a time: run while the pool starts
 )
