@@ -56,7 +56,6 @@ sys.path.insert(0, str(ROOT))
 
 import numpy as np  # noqa: E402
 
-
 #: Keeps the neighbours' files open for the process's life (they are read
 #: lazily, as a run's worker reads them).
 _FILES = contextlib.ExitStack()
