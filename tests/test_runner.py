@@ -45,6 +45,7 @@ from astropy.table import QTable, Table
 
 import pipeline.runner as runner_module
 import pipeline.runner._executors as _executors
+import pipeline.runner._heap as _heap
 import pipeline.runner._lock as _lock
 import pipeline.runner._store as _store
 import pipeline.runner._warm as _warm
@@ -921,6 +922,38 @@ def test_a_worker_freezes_its_objects_for_the_collector_once_warm(monkeypatch):
     monkeypatch.setattr(_executors, "start_warming", lambda plan, **kw: asked.append(kw))
     _executors.prepare_worker((), ())
     assert asked == [{"settle": True}]
+
+
+def test_a_worker_returns_its_free_heap_memory_once_idle_not_after_each_unit(monkeypatch):
+    """After a unit, a process gives its heap's free pages back (``malloc_trim``) only
+    once no unit has run in it for ``IDLE_SECONDS``: the next unit, queued already,
+    reuses them instead of faulting them in again.  Once per spell of idleness."""
+    released: list[float] = []
+    monkeypatch.setattr(_heap, "release_free_memory", lambda: released.append(time.monotonic()))
+    monkeypatch.setattr(_heap, "IDLE_SECONDS", 0.05)
+    _heap.release_when_idle()  # the thread running; a release due from earlier tests done
+    time.sleep(0.2)
+    released.clear()
+
+    def unit(seconds: float) -> float:
+        """A unit as execute_unit brackets it; returns when it ended."""
+        with _warm.unit_running():
+            time.sleep(seconds)
+        ended = time.monotonic()
+        _heap.release_when_idle()
+        return ended
+
+    unit(0.01)
+    unit(0.2)  # follows at once: nothing released between the two, nor during
+    assert released == []
+    ended = unit(0.01)
+    time.sleep(0.3)
+    assert len(released) == 1 and released[0] >= ended + 0.05
+    time.sleep(0.15)
+    assert len(released) == 1  # idle on: once
+    unit(0.01)
+    time.sleep(0.2)
+    assert len(released) == 2
 
 
 def test_a_run_starts_no_more_workers_than_it_has_units_to_run_at_once(toy, tmp_path, monkeypatch):

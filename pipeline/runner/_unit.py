@@ -29,7 +29,7 @@ from pydantic import BaseModel
 import pipeline
 from pipeline._offline import astropy_offline
 from pipeline.exceptions import DamagedProductError
-from pipeline.runner._heap import release_free_memory
+from pipeline.runner._heap import release_when_idle
 from pipeline.runner._lock import check_lock_held
 from pipeline.runner._rawio import check_block_index, read_raw_files, read_rows
 from pipeline.runner._store import (
@@ -331,7 +331,7 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
     with astropy_offline(), unit_running():
         outcome = _execute_unit(task)
     settle_after_warm()  # between units: nothing of the unit's is left to freeze
-    release_free_memory()  # ... nor to reuse, in a worker that may now wait
+    release_when_idle()  # ... nor to reuse, once the worker waits
     return outcome
 
 

@@ -39,7 +39,14 @@ import threading
 import time
 from collections.abc import Iterator, Sequence
 
-__all__ = ["settle_after_warm", "start_warming", "unit_running", "wait_warm", "warm_plan"]
+__all__ = [
+    "seconds_idle",
+    "settle_after_warm",
+    "start_warming",
+    "unit_running",
+    "wait_warm",
+    "warm_plan",
+]
 
 log = logging.getLogger(__name__)
 
@@ -165,6 +172,17 @@ def unit_running() -> Iterator[None]:
         with _UNITS_CHANGED:
             _UNITS["ended"] = time.monotonic()
         _count(_UNITS, "running", -1)
+
+
+def seconds_idle() -> float:
+    """Seconds since this process's last unit ended (see :func:`unit_running`); 0 while one runs.
+
+    Infinite before the first unit.
+    """
+    with _UNITS_CHANGED:
+        if _UNITS["running"]:
+            return 0.0
+        return time.monotonic() - _UNITS["ended"]
 
 
 def _count(counts: dict[str, int], what: str, change: int) -> None:
