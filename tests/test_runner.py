@@ -33,6 +33,8 @@ from _toy_graph import (
     STREAM_GRAPH,
     WARM_GRAPH,
     IndexOptions,
+    TotalOptions,
+    add_up,
     build_index,
     edit_raw_block,
     image_rows,
@@ -77,6 +79,7 @@ from pipeline.stages.base import (
     NEIGHBOURS,
     RAW_FILES,
     RAW_ROWS,
+    RUN_STATUS,
     Stage,
     check_graph,
     default_stretch_rows,
@@ -511,6 +514,27 @@ def test_single_stage_rerun_recomputes_only_that_stage(toy) -> None:
         assert changed == key.startswith("smooth/"), key
     # identical outputs: downstream is not stale
     assert report.stale_downstream == {}
+
+
+def test_a_rewritten_unit_forgets_only_the_states_that_depend_on_it(tmp_path) -> None:
+    """After a unit is rewritten the store forgets the states and inputs of its stage and
+    of the stages that depend on it (requires, transitively, and a stage taking the run
+    status after it); those of the stages upstream stay worked out."""
+    status = Stage("status", add_up, TotalOptions, (RUN_STATUS,), "night", ())
+    make_config, _ = toy_night(tmp_path, (*GRAPH, status))
+    config = make_config()
+    assert run_night(config, to_stage="total").ok
+    night = NightStore(config)
+    stretch = night.stretches[1]
+    units = {"index": None, "scale": stretch, "smooth": stretch, "total": None, "status": None}
+    for name, unit in units.items():
+        night.state(night.stages[name], unit)
+    night.forget(night.stages["smooth"], stretch.id)
+    assert {name for name, _ in night._states} == {"index", "scale"}
+    assert {name for name, _ in night._inputs} == {"index", "scale"}
+    assert night._affected_by("index") == set(units)
+    assert night._affected_by("scale") == {"scale", "smooth", "total", "status"}
+    assert night._affected_by("status") == {"status"}
 
 
 def test_a_rewritten_unit_changes_what_its_readers_are_handed(toy) -> None:

@@ -791,6 +791,7 @@ def _note_damage(night: NightStore, path: Path, reason: str) -> None:
     stage = night.stages.get(unit_dir.parent.name)
     if stage is not None and unit_dir.parent.parent.resolve() == night.root.resolve():
         night.damaged[(stage.name, unit_dir.name)] = f"{path.name} {reason}"
+        night.forget(stage, unit_dir.name)  # its state and its dependents' change
 
 
 def _stale_downstream(night: NightStore, selected: Sequence[Stage]) -> dict[str, list[str]]:
