@@ -922,10 +922,11 @@ def test_a_run_of_one_unit_at_a_time_warms_up_in_this_process(tmp_path, monkeypa
     assert (warmed / str(os.getpid())).exists()
 
 
-def test_a_worker_freezes_its_objects_for_the_collector_once_warm(monkeypatch):
-    """Between units, a worker whose warm-up is done freezes what it holds (once):
-    later full collections skip the libraries' objects.  Not before the warm-up
-    ends, and not in a process that did not ask (the run's own)."""
+def test_a_worker_freezes_its_objects_after_each_stages_first_unit_and_once_warm(monkeypatch):
+    """Between units, a worker freezes what it holds after the first unit of each stage
+    (which loaded that stage's libraries) and once more when its warm-up is done: later
+    full collections skip the libraries' objects.  Not in a process that did not ask
+    (the run's own)."""
     import threading
 
     frozen: list[str] = []
@@ -933,14 +934,17 @@ def test_a_worker_freezes_its_objects_for_the_collector_once_warm(monkeypatch):
     monkeypatch.setattr(_warm.gc, "freeze", lambda: frozen.append("freeze"))
     ready = {"scale": threading.Event(), "sum": threading.Event()}
     monkeypatch.setattr(_warm, "_READY", ready)
-    monkeypatch.setattr(_warm, "_SETTLE", {"wanted": True, "done": False})
+    monkeypatch.setattr(_warm, "_SETTLE", {"wanted": True, "done": False, "stages": set()})
     ready["scale"].set()
-    assert not _warm.settle_after_warm() and frozen == []  # "sum" still loading
+    assert _warm.settle_after_warm("scale") and frozen == ["collect", "freeze"]  # first unit
+    assert not _warm.settle_after_warm("scale") and len(frozen) == 2  # "sum" still loading
     ready["sum"].set()
-    assert _warm.settle_after_warm() and frozen == ["collect", "freeze"]
-    assert not _warm.settle_after_warm() and len(frozen) == 2  # once
-    monkeypatch.setattr(_warm, "_SETTLE", {"wanted": False, "done": False})
-    assert not _warm.settle_after_warm() and len(frozen) == 2
+    assert _warm.settle_after_warm("scale") and len(frozen) == 4  # the warm-up done
+    assert not _warm.settle_after_warm("scale") and len(frozen) == 4  # once
+    assert _warm.settle_after_warm("sum") and len(frozen) == 6  # another stage's first unit
+    assert not _warm.settle_after_warm("sum") and len(frozen) == 6
+    monkeypatch.setattr(_warm, "_SETTLE", {"wanted": False, "done": False, "stages": set()})
+    assert not _warm.settle_after_warm("total") and len(frozen) == 6
     # a pool or dask worker asks for it as it starts; the run's process does not
     asked = []
     monkeypatch.setattr(_executors, "start_warming", lambda plan, **kw: asked.append(kw))

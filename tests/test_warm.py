@@ -31,7 +31,7 @@ def loads(monkeypatch) -> list[str]:
     monkeypatch.setattr(_warm, "_READY", {})
     monkeypatch.setattr(_warm, "_UNITS", {"running": 0, "ended": float("-inf")})
     monkeypatch.setattr(_warm, "_WAITING", {})
-    monkeypatch.setattr(_warm, "_SETTLE", {"wanted": False, "done": False})
+    monkeypatch.setattr(_warm, "_SETTLE", {"wanted": False, "done": False, "stages": set()})
     return loaded
 
 

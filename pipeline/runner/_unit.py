@@ -330,7 +330,7 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
     """
     with astropy_offline(), unit_running():
         outcome = _execute_unit(task)
-    settle_after_warm()  # between units: nothing of the unit's is left to freeze
+    settle_after_warm(task.stage.name)  # between units: nothing of the unit's to freeze
     release_when_idle()  # ... nor to reuse, once the worker waits
     return outcome
 
