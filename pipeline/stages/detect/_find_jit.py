@@ -8,7 +8,8 @@ threshold, :func:`level_markers`, its markers from all the thresholds, and
 :func:`threshold_ranks`, how many thresholds each pixel exceeds,
 :func:`weighted_rows`, the matched filter's weighted rows,
 :func:`segment_bounds`, the segments' boxes, :func:`local_maxima`, their
-peaks, and :func:`residual_rows`, the
+peaks, :func:`segment_first_sums` and :func:`segment_second_sums`, their
+moments, and :func:`residual_rows`, the
 image minus the background.
 Kept apart so that numba is imported only when the detect stage first runs.
 """
@@ -30,6 +31,8 @@ __all__ = [
     "local_maxima",
     "residual_rows",
     "segment_bounds",
+    "segment_first_sums",
+    "segment_second_sums",
     "threshold_ranks",
     "weighted_rows",
 ]
@@ -428,23 +431,101 @@ def local_maxima(labels, values, where, n_labels):
     ny, nx = labels.shape
     flat_labels, flat_values = labels.reshape(-1), values.reshape(-1)
     counts = np.zeros(n_labels + 1, np.int64)
+    steps = np.array([-nx - 1, -nx, -nx + 1, -1, 1, nx - 1, nx, nx + 1])
     for i in range(where.shape[0]):
         p = where[i]
         r = p // nx
         c = p - r * nx
         own, value = flat_labels[p], flat_values[p]
         peak = True
-        for dy in range(-1, 2):
-            for dx in range(-1, 2):
-                if dy == 0 and dx == 0:
-                    continue
-                inside = 0 <= r + dy < ny and 0 <= c + dx < nx
-                q = p + dy * nx + dx if inside else p
+        if 0 < r < ny - 1 and 0 < c < nx - 1:  # all 8 neighbours on the image
+            for step in steps:
+                q = p + step
                 if flat_labels[q] == own and not flat_values[q] <= value:
                     peak = False
+                    break
+        else:
+            for dy in range(-1, 2):
+                for dx in range(-1, 2):
+                    if dy == 0 and dx == 0:
+                        continue
+                    inside = 0 <= r + dy < ny and 0 <= c + dx < nx
+                    q = p + dy * nx + dx if inside else p
+                    if flat_labels[q] == own and not flat_values[q] <= value:
+                        peak = False
         if peak:
             counts[own] += 1
     return counts
+
+
+@njit(nogil=True)
+def segment_first_sums(where, labels, position, width, corner_x, corner_y, data, mask, snr):
+    """Per segment, the sums of ``w``, ``w x``, ``w y`` and the largest ``snr``, in one pass.
+
+    The first half of :func:`pipeline.stages.detect._find.segment_moments`'
+    array steps, the same operations in the same order: each pixel's
+    segment ``position[labels[p]]``, its ``x``, ``y`` about the segment's
+    box corner and its weight (``data`` as float64, 0 where not finite,
+    negative or ``mask``), summed pixel after pixel as ``np.bincount``
+    sums them, and ``np.maximum.at`` of ``snr``.  ``labels``, ``data``,
+    ``mask`` and ``snr`` are flat planes; ``where`` the segments' pixels.
+
+    Returns
+    -------
+    index : ndarray of int64
+        Each pixel's segment.
+    m00, mx, my : ndarray of float64
+        The sums.
+    peak : ndarray of ``snr``'s type
+    """
+    n = corner_x.shape[0]
+    index = np.empty(where.shape[0], np.int64)
+    m00, mx, my = np.zeros(n), np.zeros(n), np.zeros(n)
+    peak = np.full(n, -np.inf, snr.dtype)
+    for i in range(where.shape[0]):
+        p = where[i]
+        k = position[labels[p]]
+        index[i] = k
+        # (written out here and below: a compiled helper returning the
+        # three took five times as long)
+        r = p // width
+        x, y = np.float64(p - r * width) - corner_x[k], np.float64(r) - corner_y[k]
+        w = np.float64(data[p])
+        if not (np.isfinite(w) and w >= 0) or mask[p]:
+            w = 0.0
+        m00[k] += w
+        mx[k] += w * x
+        my[k] += w * y
+        s = snr[p]
+        if s > peak[k] or s != s:  # np.maximum: NaN wins
+            peak[k] = s
+    return index, m00, mx, my, peak
+
+
+@njit(nogil=True)
+def segment_second_sums(where, index, width, corner_x, corner_y, data, mask, xc, yc):
+    """Per segment, the sums of ``w dx dx``, ``w dx dy``, ``w dy dy`` about ``(xc, yc)``.
+
+    The second half of :func:`pipeline.stages.detect._find.segment_moments`'
+    array steps (see :func:`segment_first_sums`): ``dx = x - xc``, ``(w
+    dx) dx`` and so on, summed pixel after pixel as ``np.bincount`` sums them.
+    """
+    n = corner_x.shape[0]
+    sxx, sxy, syy = np.zeros(n), np.zeros(n), np.zeros(n)
+    for i in range(where.shape[0]):
+        k = index[i]
+        p = where[i]
+        r = p // width
+        x, y = np.float64(p - r * width) - corner_x[k], np.float64(r) - corner_y[k]
+        w = np.float64(data[p])
+        if not (np.isfinite(w) and w >= 0) or mask[p]:
+            w = 0.0
+        dx = x - xc[k]
+        dy = y - yc[k]
+        sxx[k] += w * dx * dx
+        sxy[k] += w * dx * dy
+        syy[k] += w * dy * dy
+    return sxx, sxy, syy
 
 
 @njit(nogil=True)
@@ -487,6 +568,13 @@ def load_compiled() -> None:
     segment_bounds(one, np.ones(1, np.int32), 1, (1, 1))
     # the segments' labels (int32) on the search's map (float32)
     local_maxima(np.ones((1, 1), np.int32), np.zeros((1, 1), np.float32), one, 1)
+    # the segments' moments: labels int32, the residual float64, the map float32
+    flat, corner = np.zeros(1), np.zeros(1)
+    first = segment_first_sums(
+        one, np.zeros(1, np.int32), one, 1, corner, corner, flat, np.zeros(1, bool),
+        np.zeros(1, np.float32),
+    )  # fmt: skip
+    segment_second_sums(one, first[0], 1, corner, corner, flat, np.zeros(1, bool), flat, flat)
     # a rectified product's image (float32) or detect's float64 copy, less the
     # background (float32)
     for image_type in (np.float32, np.float64):
