@@ -900,6 +900,8 @@ def deblend_segments(
     -------
     Segmentation
     """
+    from pipeline.stages.detect._find_jit import segment_bounds
+
     data = segm.data
     shelves = _Shelves.of(snr, segm, labels, min_pixels, levels)
     children = {}  # label -> its box's child labels 1..k (0 elsewhere)
@@ -930,21 +932,25 @@ def deblend_segments(
     out = np.zeros(data.shape, data.dtype)  # only the segments' pixels are set: no copy
     out.reshape(-1)[where] = renumber[data.reshape(-1)[where]]
     slices = [box for box, keep in zip(segm.slices, whole[1:], strict=True) if keep]
+    first_child = first = len(slices) + 1
     deblended = {}
     for label, split in children.items():
         box = segm.slices[label - 1]
-        first = len(slices) + 1
         n_children = int(split.max())
         out[box][split > 0] = split[split > 0] + (first - 1)
-        for child in range(1, n_children + 1):
-            rows, cols = np.nonzero(split == child)
-            slices.append(
-                (
-                    slice(box[0].start + int(rows.min()), box[0].start + int(rows.max()) + 1),
-                    slice(box[1].start + int(cols.min()), box[1].start + int(cols.max()) + 1),
-                )
-            )
         deblended[label] = np.arange(first, first + n_children, dtype=data.dtype)
+        first += n_children
+    # the children's boxes from their pixels, all at once (a np.nonzero per
+    # child took ~5 ms of CPU per unit of the benchmark night)
+    new = out.reshape(-1)[where]
+    child = new >= first_child
+    bounds = segment_bounds(
+        where[child], new[child] - (first_child - 1), first - first_child, out.shape
+    )
+    slices += [
+        (slice(a, b), slice(c, d))
+        for a, b, c, d in zip(*(bound.tolist() for bound in bounds), strict=True)
+    ]
     return _segmentation_image(out, slices, deblended, where)
 
 
