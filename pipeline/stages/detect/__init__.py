@@ -1075,10 +1075,23 @@ def _release_planes(hdul) -> None:
         del hdul[name].data
 
 
+#: Rows of a stretch :func:`_has_data` looks at in one go.
+HAS_DATA_ROWS = 256
+
+
 def _has_data(planes: Planes) -> bool:
-    """Whether any pixel of a stretch holds data (not flagged as none, finite, variance > 0)."""
-    no_data = has_bits(planes.mask, _NO_DATA) | ~np.isfinite(planes.image)
-    return bool(np.any(~no_data & (planes.variance > 0)))
+    """Whether any pixel of a stretch holds data (not flagged as none, finite, variance > 0).
+
+    A band of :data:`HAS_DATA_ROWS` rows at a time, stopping at the first
+    that holds some: six passes over the whole planes took ~5 ms of CPU per
+    unit of the benchmark night to find what the first band tells.
+    """
+    for first in range(0, planes.image.shape[0], HAS_DATA_ROWS):
+        rows = slice(first, first + HAS_DATA_ROWS)
+        no_data = has_bits(planes.mask[rows], _NO_DATA) | ~np.isfinite(planes.image[rows])
+        if np.any(~no_data & (planes.variance[rows] > 0)):
+            return True
+    return False
 
 
 def seam_margin(kernels: Table, fwhm: float) -> int:
