@@ -1929,3 +1929,23 @@ def test_model_image_is_the_numpy_model(response):
     )  # fmt: skip
     # 1e-12 of the peak: the same sums, in another order at most.
     np.testing.assert_allclose(ours, reference, rtol=0, atol=1e-12 * reference.max())
+
+
+def test_kernel_samples_are_the_kernels_end_to_end():
+    # numpy's per-kernel steps are the reference: each kernel's samples as
+    # float64, flattened, concatenated, and each kernel's first sample.
+    from pipeline.stages.detect._model import _kernel_samples
+
+    rng = np.random.default_rng(17)
+    kernels = [
+        (rng.normal(size=5), rng.normal(size=5)),
+        (np.zeros(1), np.zeros(1)),
+        (rng.normal(size=3).astype(np.float32), rng.normal(size=3).astype(np.float32)),
+        (rng.normal(size=(2, 2)), rng.normal(size=(2, 2))),
+    ]
+    dx, dy, bounds = _kernel_samples(kernels)
+    for ours, axis in ((dx, 0), (dy, 1)):
+        theirs = np.concatenate([np.asarray(k[axis], dtype=np.float64).ravel() for k in kernels])
+        np.testing.assert_array_equal(ours, theirs)
+        assert ours.dtype == np.float64
+    np.testing.assert_array_equal(bounds, [0, 5, 6, 9, 13])

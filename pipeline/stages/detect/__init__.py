@@ -969,22 +969,26 @@ def _subtract_models(image: np.ndarray, fits_, profile, in_place: bool = False) 
     cost as much again in Python as the models).
     """
     from pipeline.stages.detect._fit_jit import subtract_models_compiled
-    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_rows
+    from pipeline.stages.detect._model import (
+        _ERF_TABLE,
+        _GAUSS_TABLE,
+        _kernel_samples,
+        _response_rows,
+    )
 
     out = image if in_place else image.copy()
     kernels = fits_["kernel"]
     if not kernels:
         return out
-    samples = np.zeros(len(kernels) + 1, dtype=np.int64)
-    samples[1:] = np.cumsum([np.size(k[0]) for k in kernels])
+    dx, dy, samples = _kernel_samples(kernels)
     sigmas, weights = profile.mixture()
     subtract_models_compiled(
         out,
         np.asarray(fits_["x"], dtype=np.float64),
         np.asarray(fits_["y"], dtype=np.float64),
         np.asarray(fits_["flux"], dtype=np.float64),
-        np.concatenate([np.asarray(k[0], dtype=np.float64).ravel() for k in kernels]),
-        np.concatenate([np.asarray(k[1], dtype=np.float64).ravel() for k in kernels]),
+        dx,
+        dy,
         samples,
         _response_rows(fits_["response"]),
         np.ascontiguousarray(sigmas, dtype=np.float64),

@@ -576,7 +576,12 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
     reports it).
     """
     from pipeline.stages.detect._measure_jit import fit_groups_compiled
-    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_rows
+    from pipeline.stages.detect._model import (
+        _ERF_TABLE,
+        _GAUSS_TABLE,
+        _kernel_samples,
+        _response_rows,
+    )
 
     if not groups:
         return {}
@@ -603,8 +608,7 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
             members = groups[i]
             boxes[g] = _joint_box(residual.shape, [m[0] for m in members], [m[1] for m in members],
                                   None, extents_i, owners, fwhm, options["footprints"])  # fmt: skip
-    samples = np.zeros(len(kern) + 1, dtype=np.int64)
-    samples[1:] = np.cumsum([k[0].size for k in kern])
+    dx, dy, samples = _kernel_samples(kern)
     sigmas, weights = profile.mixture()
     stars, quadrupoles, fits = fit_groups_compiled(
         residual,
@@ -614,8 +618,8 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
         bounds,
         xs,
         ys,
-        np.concatenate([np.asarray(k[0], dtype=np.float64).ravel() for k in kern]),
-        np.concatenate([np.asarray(k[1], dtype=np.float64).ravel() for k in kern]),
+        dx,
+        dy,
         samples,
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
