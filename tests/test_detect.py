@@ -1275,6 +1275,34 @@ def test_fully_flagged_stretch_is_a_problem():
     assert result.problems and "no usable pixel" in result.problems[0]
 
 
+def test_has_data_looks_at_every_band_of_rows(monkeypatch):
+    # numpy's whole-plane test is the reference: a pixel holds data when it is
+    # not flagged as none, finite and of positive variance.  One such pixel in
+    # the last row of a stretch taller than a band (and others that fail one
+    # condition each) must be found.
+    import pipeline.stages.detect as stage
+    from pipeline.stages.detect import _has_data
+
+    monkeypatch.setattr(stage, "HAS_DATA_ROWS", 8)
+    shape = (30, 5)
+    image = np.full(shape, np.nan, np.float32)
+    variance = np.ones(shape, np.float32)
+    mask = np.zeros(shape, np.uint16)
+    image[3, 1], mask[3, 1] = 1.0, int(MaskBit.OUTSIDE)  # flagged
+    image[12, 2], variance[12, 2] = 1.0, 0.0  # no variance
+    image[20, 3] = np.inf  # not finite
+
+    def reference():
+        bits = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN | MaskBit.OUTSIDE
+        no_data = (mask & int(bits)) != 0
+        return bool(np.any(~no_data & np.isfinite(image) & (variance > 0)))
+
+    planes = Planes(image, variance, mask, 0, None)
+    assert _has_data(planes) is reference() is False
+    image[29, 4] = 2.0
+    assert _has_data(planes) is reference() is True
+
+
 def test_flags_mark_saturation_and_edges():
     scene = render_scene(
         [100.0, 5.0], [60.0, 60.0], [1e5, 1e5], shape=(128, 256), x_start=0, seed=1
@@ -1901,3 +1929,23 @@ def test_model_image_is_the_numpy_model(response):
     )  # fmt: skip
     # 1e-12 of the peak: the same sums, in another order at most.
     np.testing.assert_allclose(ours, reference, rtol=0, atol=1e-12 * reference.max())
+
+
+def test_kernel_samples_are_the_kernels_end_to_end():
+    # numpy's per-kernel steps are the reference: each kernel's samples as
+    # float64, flattened, concatenated, and each kernel's first sample.
+    from pipeline.stages.detect._model import _kernel_samples
+
+    rng = np.random.default_rng(17)
+    kernels = [
+        (rng.normal(size=5), rng.normal(size=5)),
+        (np.zeros(1), np.zeros(1)),
+        (rng.normal(size=3).astype(np.float32), rng.normal(size=3).astype(np.float32)),
+        (rng.normal(size=(2, 2)), rng.normal(size=(2, 2))),
+    ]
+    dx, dy, bounds = _kernel_samples(kernels)
+    for ours, axis in ((dx, 0), (dy, 1)):
+        theirs = np.concatenate([np.asarray(k[axis], dtype=np.float64).ravel() for k in kernels])
+        np.testing.assert_array_equal(ours, theirs)
+        assert ours.dtype == np.float64
+    np.testing.assert_array_equal(bounds, [0, 5, 6, 9, 13])

@@ -61,6 +61,72 @@ def test_several_peaks_counts_scipy_local_maxima(seed):
     np.testing.assert_array_equal(ours, expected)
 
 
+def test_several_peaks_do_not_wrap_across_rows():
+    # One segment filling a 2 x 3 map: the last pixel of the first row (9) and
+    # the first of the second (10) are the next pixel of each other in memory
+    # but not neighbours; scipy.ndimage.maximum_filter (3 x 3, nothing beyond
+    # the edges) finds both maxima.
+    snr = np.array([[1.0, 2.0, 9.0], [10.0, 1.0, 1.0]], np.float32)
+    segm = segment_map(snr, np.zeros(snr.shape, bool), threshold=0.5, min_pixels=1)
+    assert segm.n_labels == 1
+    peaks = snr >= maximum_filter(snr, size=3, mode="constant", cval=-np.inf)
+    assert np.count_nonzero(peaks) == 2
+    np.testing.assert_array_equal(_several_peaks(snr, segm), [1])
+
+
+def test_segment_sums_are_numpys_bincount_steps():
+    # numpy's array steps that segment_moments took before its compiled passes
+    # are the reference, to the bit: per pixel its segment, x and y about the
+    # box corner and its weight (float64 data, 0 where NaN, negative or
+    # masked), ``np.bincount`` of w, w x, w y, then of (w dx) dx, (w dx) dy,
+    # (w dy) dy about the centroid, and ``np.maximum.at`` of the map.
+    from pipeline.stages.detect._find_jit import segment_first_sums, segment_second_sums
+
+    rng = np.random.default_rng(14)
+    snr = _peaky_map(5)
+    segm = segment_map(snr, np.zeros(snr.shape, bool), threshold=4.3, min_pixels=3)
+    data = 30.0 * snr.astype(float) + rng.normal(0.0, 20.0, snr.shape)
+    data[40:43] = np.nan
+    mask = np.zeros(snr.shape, bool)
+    mask[:, 100:103] = True
+    labels, n = segm.labels, segm.n_labels
+    where = np.flatnonzero(segm.data)
+    position = np.zeros(int(labels[-1]) + 1, np.intp)
+    position[labels] = np.arange(n)
+    corner_y = np.array([box[0].start for box in segm.slices], dtype=float)
+    corner_x = np.array([box[1].start for box in segm.slices], dtype=float)
+    # the reference
+    index = position[segm.data.reshape(-1)[where]]
+    rows, cols = np.divmod(where, snr.shape[1])
+    x, y = cols - corner_x[index], rows - corner_y[index]
+    w = data.reshape(-1)[where].astype(float)
+    w[~(np.isfinite(w) & (w >= 0)) | mask.reshape(-1)[where]] = 0.0
+    assert np.count_nonzero(w == 0.0) > 100 and np.count_nonzero(w) > 1000
+
+    def total(weights):
+        return np.bincount(index, weights, minlength=n)
+
+    m00, mx, my = total(w), total(w * x), total(w * y)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        xc, yc = mx / m00, my / m00
+    dx, dy = x - xc[index], y - yc[index]
+    second = [total(w * a * b) for a, b in ((dx, dx), (dx, dy), (dy, dy))]
+    peak = np.full(n, -np.inf, dtype=snr.dtype)
+    np.maximum.at(peak, index, snr.reshape(-1)[where])
+    # ours
+    planes = (segm.data.reshape(-1), data.reshape(-1), mask.reshape(-1), snr.reshape(-1))
+    first = segment_first_sums(where, planes[0], position, snr.shape[1], corner_x, corner_y,
+                               *planes[1:])  # fmt: skip
+    np.testing.assert_array_equal(first[0], index)
+    for ours, theirs in zip(first[1:], (m00, mx, my, peak), strict=True):
+        np.testing.assert_array_equal(ours, theirs)
+        assert ours.dtype == theirs.dtype
+    ours = segment_second_sums(where, index, snr.shape[1], corner_x, corner_y, *planes[1:3],
+                               xc, yc)  # fmt: skip
+    for a, b in zip(ours, second, strict=True):
+        np.testing.assert_array_equal(a, b)
+
+
 def _band_templates(rng, ny: int, band: int) -> list:
     """Bands of ``band`` rows (the last one shorter), each with its own odd-sized
     random template (heights 3 to 11, widths 5 to 21), as ``band_templates``
@@ -248,6 +314,31 @@ def test_label_pixels_groups_them_as_scipy_label(fill):
     assert np.all(scratch == -1)  # left as it was given
     first = np.unique(region, return_index=True)[1]
     np.testing.assert_array_equal(region[np.sort(first)], np.arange(1, n + 1))
+
+
+@pytest.mark.parametrize("diagonal", [True, False])
+@pytest.mark.parametrize("fill", [0.05, 0.3, 0.6])
+def test_label_sorted_is_scipy_label(diagonal, fill):
+    # scipy.ndimage.label of the plane is the reference, labels and all
+    # (numbered in raster order), 8-connected (structure of ones) or with
+    # scipy's default 4-connected structure; pixels on every edge of the
+    # plane (no region may wrap from one row's end to the next row's start).
+    from scipy.ndimage import label
+
+    from pipeline.stages.detect._find_jit import label_sorted
+
+    rng = np.random.default_rng(13)
+    for shape in ((23, 37), (40, 9), (1, 30), (30, 1)):
+        plane = rng.random(shape) < fill
+        plane[0, 0] = plane[-1, -1] = True
+        where = np.flatnonzero(plane)
+        region, count = label_sorted(where, shape[1], diagonal)
+        structure = np.ones((3, 3), bool) if diagonal else None
+        expected, n = label(plane, structure=structure)
+        assert count == n
+        assert region.dtype == expected.dtype
+        np.testing.assert_array_equal(region, expected.reshape(-1)[where])
+    assert n > 1
 
 
 def test_threshold_ranks_count_as_numpy_comparisons():

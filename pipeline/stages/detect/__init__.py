@@ -969,22 +969,26 @@ def _subtract_models(image: np.ndarray, fits_, profile, in_place: bool = False) 
     cost as much again in Python as the models).
     """
     from pipeline.stages.detect._fit_jit import subtract_models_compiled
-    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_rows
+    from pipeline.stages.detect._model import (
+        _ERF_TABLE,
+        _GAUSS_TABLE,
+        _kernel_samples,
+        _response_rows,
+    )
 
     out = image if in_place else image.copy()
     kernels = fits_["kernel"]
     if not kernels:
         return out
-    samples = np.zeros(len(kernels) + 1, dtype=np.int64)
-    samples[1:] = np.cumsum([np.size(k[0]) for k in kernels])
+    dx, dy, samples = _kernel_samples(kernels)
     sigmas, weights = profile.mixture()
     subtract_models_compiled(
         out,
         np.asarray(fits_["x"], dtype=np.float64),
         np.asarray(fits_["y"], dtype=np.float64),
         np.asarray(fits_["flux"], dtype=np.float64),
-        np.concatenate([np.asarray(k[0], dtype=np.float64).ravel() for k in kernels]),
-        np.concatenate([np.asarray(k[1], dtype=np.float64).ravel() for k in kernels]),
+        dx,
+        dy,
         samples,
         _response_rows(fits_["response"]),
         np.ascontiguousarray(sigmas, dtype=np.float64),
@@ -1075,10 +1079,23 @@ def _release_planes(hdul) -> None:
         del hdul[name].data
 
 
+#: Rows of a stretch :func:`_has_data` looks at in one go.
+HAS_DATA_ROWS = 256
+
+
 def _has_data(planes: Planes) -> bool:
-    """Whether any pixel of a stretch holds data (not flagged as none, finite, variance > 0)."""
-    no_data = has_bits(planes.mask, _NO_DATA) | ~np.isfinite(planes.image)
-    return bool(np.any(~no_data & (planes.variance > 0)))
+    """Whether any pixel of a stretch holds data (not flagged as none, finite, variance > 0).
+
+    A band of :data:`HAS_DATA_ROWS` rows at a time, stopping at the first
+    that holds some: six passes over the whole planes took ~5 ms of CPU per
+    unit of the benchmark night to find what the first band tells.
+    """
+    for first in range(0, planes.image.shape[0], HAS_DATA_ROWS):
+        rows = slice(first, first + HAS_DATA_ROWS)
+        no_data = has_bits(planes.mask[rows], _NO_DATA) | ~np.isfinite(planes.image[rows])
+        if np.any(~no_data & (planes.variance[rows] > 0)):
+            return True
+    return False
 
 
 def seam_margin(kernels: Table, fwhm: float) -> int:

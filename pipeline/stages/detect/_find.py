@@ -645,6 +645,8 @@ def segment_moments(data: np.ndarray, segm, mask: np.ndarray, snr: np.ndarray) -
     SegmentMoments
         One value per segment, in ``segm.labels`` order.
     """
+    from pipeline.stages.detect._find_jit import segment_first_sums, segment_second_sums
+
     labels = np.asarray(segm.labels)
     n = labels.size
     where = segment_pixels(segm)
@@ -652,23 +654,27 @@ def segment_moments(data: np.ndarray, segm, mask: np.ndarray, snr: np.ndarray) -
     # labels' binary search per pixel cost 1.6 ms a call on a crowded stretch
     position = np.zeros(int(labels[-1]) + 1 if n else 1, dtype=np.intp)
     position[labels] = np.arange(n)
-    index = position[segm.data.reshape(-1)[where]]
-    rows, cols = np.divmod(where, segm.data.shape[1])
     corner_y = np.array([box[0].start for box in segm.slices], dtype=float)
     corner_x = np.array([box[1].start for box in segm.slices], dtype=float)
-    x = cols - corner_x[index]
-    y = rows - corner_y[index]
-    w = data.reshape(-1)[where].astype(float)
-    w[~(np.isfinite(w) & (w >= 0)) | mask.reshape(-1)[where]] = 0.0
-
-    def total(weights):
-        return np.bincount(index, weights, minlength=n)
-
-    m00 = total(w)
+    # The sums over each segment's pixels (weights: ``data`` as float64, 0
+    # where not finite, negative or masked; positions about the box's
+    # corner), pixel after pixel as ``np.bincount`` sums them, in two
+    # compiled passes: the same values as the array steps (a gather, a cast
+    # and a bincount per sum, ``np.maximum.at`` for the peaks: 9 ms of CPU a
+    # call on the benchmark night's stretch 5, four calls per unit).
+    flat = (np.ascontiguousarray(plane).reshape(-1) for plane in (segm.data, data, mask, snr))
+    labels_flat, data_flat, mask_flat, snr_flat = flat
+    width = segm.data.shape[1]
+    index, m00, mx, my, peak = segment_first_sums(
+        where, labels_flat, position, width, corner_x, corner_y, data_flat, mask_flat, snr_flat
+    )
     with np.errstate(invalid="ignore", divide="ignore"):
-        xc, yc = total(w * x) / m00, total(w * y) / m00
-        dx, dy = x - xc[index], y - yc[index]
-        xx, xy, yy = (total(w * a * b) / m00 for a, b in ((dx, dx), (dx, dy), (dy, dy)))
+        xc, yc = mx / m00, my / m00
+    sums = segment_second_sums(
+        where, index, width, corner_x, corner_y, data_flat, mask_flat, xc, yc
+    )
+    with np.errstate(invalid="ignore", divide="ignore"):
+        xx, xy, yy = (total / m00 for total in sums)
     covariance = np.empty((n, 2, 2))
     covariance[:, 0, 0], covariance[:, 0, 1], covariance[:, 1, 0], covariance[:, 1, 1] = (
         xx,
@@ -694,8 +700,6 @@ def segment_moments(data: np.ndarray, segm, mask: np.ndarray, snr: np.ndarray) -
     orientation = 0.5 * np.arctan2(
         2.0 * covariance[:, 0, 1], covariance[:, 0, 0] - covariance[:, 1, 1]
     )
-    peak = np.full(n, -np.inf, dtype=snr.dtype)
-    np.maximum.at(peak, index, snr.reshape(-1)[where])
     return SegmentMoments(
         x=xc + corner_x,
         y=yc + corner_y,
@@ -712,13 +716,14 @@ def segment_map(snr: np.ndarray, no_data: np.ndarray, *, threshold: float, min_p
     The same segmentation image as
     :func:`photutils.segmentation.detect_sources` (``snr``, ``threshold``,
     ``min_pixels``, ``mask=no_data``, 8-connected): pixels above the
-    threshold and not masked, labelled in raster order by
-    ``scipy.ndimage.label``, segments of fewer than ``min_pixels`` pixels
+    threshold and not masked, labelled in raster order as
+    ``scipy.ndimage.label`` labels them, segments of fewer than ``min_pixels`` pixels
     removed and the rest numbered 1, 2, ... in the same order, with the same
     labels and bounding-box slices.  photutils visits the whole image three
     more times (the relabelling look-up, ``find_objects`` and a copy of the
     inverted mask) where the segments cover a few per cent of it; here only
-    their pixels are visited after the labelling: on the 4096 x 4096
+    their pixels are visited after the thresholding, the labelling too
+    (:func:`~pipeline.stages.detect._find_jit.label_sorted`): on the 4096 x 4096
     benchmark stretch's first significance map, 0.045 s of CPU instead of
     0.094 s (least of 3, interleaved, on a loaded machine: 0.07 s instead of
     0.14 s).  ``tests/test_detect.py`` checks the result against photutils'.
@@ -739,30 +744,31 @@ def segment_map(snr: np.ndarray, no_data: np.ndarray, *, threshold: float, min_p
     Segmentation or None
         None when no segment is left.
     """
-    from scipy.ndimage import label
-
-    from pipeline.stages.detect._find_jit import segment_bounds
+    from pipeline.stages.detect._find_jit import label_sorted, segment_bounds
 
     above = snr > threshold
     above[no_data] = False
-    labels, n = label(above, structure=np.ones((3, 3), bool))
+    where = np.flatnonzero(above)
+    del above
+    # scipy's labels of the pixels above (int32, numbered in raster order),
+    # from the pixels alone (label_sorted): scipy.ndimage.label visited the
+    # whole plane, 11 ms of CPU a call on the benchmark night's stretches
+    old, n = label_sorted(where, snr.shape[1], True)
     if n == 0:
         return None
-    flat = labels.reshape(-1)
-    where = np.flatnonzero(above)  # a bool plane: faster than the labels
-    old = flat[where]
     keep = np.bincount(old, minlength=n + 1) >= min_pixels
     keep[0] = False
     n_kept = int(keep.sum())
     if n_kept == 0:
         return None
-    renumber = np.zeros(n + 1, labels.dtype)
-    renumber[keep] = np.arange(1, n_kept + 1, dtype=labels.dtype)
+    renumber = np.zeros(n + 1, old.dtype)
+    renumber[keep] = np.arange(1, n_kept + 1, dtype=old.dtype)
     new = renumber[old]
     if n_kept < n:
-        flat[where] = new
         inside = new > 0
         where, new = where[inside], new[inside]
+    labels = np.zeros(snr.shape, old.dtype)
+    labels.reshape(-1)[where] = new
     # the boxes in one compiled pass over the pixels: a division and four
     # ufunc.at took 7 ms of CPU a call on a crowded stretch
     row_lo, row_hi, col_lo, col_hi = segment_bounds(where, new, n_kept, labels.shape)
@@ -894,6 +900,8 @@ def deblend_segments(
     -------
     Segmentation
     """
+    from pipeline.stages.detect._find_jit import segment_bounds
+
     data = segm.data
     shelves = _Shelves.of(snr, segm, labels, min_pixels, levels)
     children = {}  # label -> its box's child labels 1..k (0 elsewhere)
@@ -924,21 +932,25 @@ def deblend_segments(
     out = np.zeros(data.shape, data.dtype)  # only the segments' pixels are set: no copy
     out.reshape(-1)[where] = renumber[data.reshape(-1)[where]]
     slices = [box for box, keep in zip(segm.slices, whole[1:], strict=True) if keep]
+    first_child = first = len(slices) + 1
     deblended = {}
     for label, split in children.items():
         box = segm.slices[label - 1]
-        first = len(slices) + 1
         n_children = int(split.max())
         out[box][split > 0] = split[split > 0] + (first - 1)
-        for child in range(1, n_children + 1):
-            rows, cols = np.nonzero(split == child)
-            slices.append(
-                (
-                    slice(box[0].start + int(rows.min()), box[0].start + int(rows.max()) + 1),
-                    slice(box[1].start + int(cols.min()), box[1].start + int(cols.max()) + 1),
-                )
-            )
         deblended[label] = np.arange(first, first + n_children, dtype=data.dtype)
+        first += n_children
+    # the children's boxes from their pixels, all at once (a np.nonzero per
+    # child took ~5 ms of CPU per unit of the benchmark night)
+    new = out.reshape(-1)[where]
+    child = new >= first_child
+    bounds = segment_bounds(
+        where[child], new[child] - (first_child - 1), first - first_child, out.shape
+    )
+    slices += [
+        (slice(a, b), slice(c, d))
+        for a, b, c, d in zip(*(bound.tolist() for bound in bounds), strict=True)
+    ]
     return _segmentation_image(out, slices, deblended, where)
 
 
@@ -1259,22 +1271,14 @@ def _several_peaks(snr: np.ndarray, segm) -> np.ndarray:
     with a single one cannot be split and is left out of the (costly)
     deblending: the result is the same.  Different segments never touch
     (they would be one), so pixels outside segments do not count.  Only the
-    segments' pixels are visited, all at once: each of the 8 neighbours in
-    turn, over the pixels still candidates (on the benchmark night's
-    stretch 5, 1558 segments of 302,000 pixels, 13 ms of CPU instead of
-    28 ms for a loop over the segments' boxes, least of 5).
+    segments' pixels are visited, in one compiled pass
+    (:func:`~pipeline.stages.detect._find_jit.local_maxima`): on the
+    benchmark night's stretch 5 (1558 segments of 302,000 pixels) the
+    array steps over each of the 8 neighbours in turn took 13 ms of CPU
+    (28 ms for a loop over the segments' boxes before them).
     """
-    labels = segm.data.reshape(-1)
-    values = snr.reshape(-1)
-    nx = segm.data.shape[1]
-    where = segment_pixels(segm)  # the candidates, fewer after each neighbour
-    own, value = labels[where], values[where]
-    for dy, dx in ((0, 1), (0, -1), (1, 0), (-1, 0), (1, 1), (-1, -1), (1, -1), (-1, 1)):
-        neighbour = where + (dy * nx + dx)
-        # off the image: compared with the pixel itself, which is not higher
-        off = (neighbour // nx - where // nx != dy) | (neighbour < 0) | (neighbour >= labels.size)
-        neighbour[off] = where[off]
-        keep = (labels[neighbour] != own) | (values[neighbour] <= value)
-        where, own, value = where[keep], own[keep], value[keep]
-    counts = np.bincount(own, minlength=segm.max_label + 1)
+    from pipeline.stages.detect._find_jit import local_maxima
+
+    data, values = np.ascontiguousarray(segm.data), np.ascontiguousarray(snr)
+    counts = local_maxima(data, values, segment_pixels(segm), segm.max_label)
     return np.flatnonzero(counts > 1)

@@ -576,7 +576,12 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
     reports it).
     """
     from pipeline.stages.detect._measure_jit import fit_groups_compiled
-    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_rows
+    from pipeline.stages.detect._model import (
+        _ERF_TABLE,
+        _GAUSS_TABLE,
+        _kernel_samples,
+        _response_rows,
+    )
 
     if not groups:
         return {}
@@ -603,8 +608,7 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
             members = groups[i]
             boxes[g] = _joint_box(residual.shape, [m[0] for m in members], [m[1] for m in members],
                                   None, extents_i, owners, fwhm, options["footprints"])  # fmt: skip
-    samples = np.zeros(len(kern) + 1, dtype=np.int64)
-    samples[1:] = np.cumsum([k[0].size for k in kern])
+    dx, dy, samples = _kernel_samples(kern)
     sigmas, weights = profile.mixture()
     stars, quadrupoles, fits = fit_groups_compiled(
         residual,
@@ -614,8 +618,8 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
         bounds,
         xs,
         ys,
-        np.concatenate([np.asarray(k[0], dtype=np.float64).ravel() for k in kern]),
-        np.concatenate([np.asarray(k[1], dtype=np.float64).ravel() for k in kern]),
+        dx,
+        dy,
         samples,
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
@@ -1037,8 +1041,8 @@ def _aperture_sums(residual, variance, no_data, x, y, radii):
         weights = _overlap_weights(xc, yc, (b0, b1, a0, a1), radii)
         data = residual[b0:b1, a0:a1]
         var = variance[b0:b1, a0:a1]
-        if missing:
-            gone = no_data[b0:b1, a0:a1]
+        # no-data pixels as 0 (most cutouts have none: two np.where spared)
+        if missing and (gone := no_data[b0:b1, a0:a1]).any():
             data = np.where(gone, 0.0, data)
             var = np.where(gone, 0.0, var)
         sums[i] = weights @ data.ravel()

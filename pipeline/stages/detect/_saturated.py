@@ -83,7 +83,7 @@ def saturated_footprints(mask: np.ndarray, grow: float) -> Footprints | None:
     Footprints or None
         None when no pixel is clipped.
     """
-    from scipy import ndimage
+    from pipeline.stages.detect._find_jit import label_sorted, segment_bounds
 
     clipped = has_bits(mask, CLIPPED)
     if not clipped.any():
@@ -93,11 +93,24 @@ def saturated_footprints(mask: np.ndarray, grow: float) -> Footprints | None:
     if r:
         yy, xx = np.mgrid[-r : r + 1, -r : r + 1]
         grown = dilate_sparse(clipped, xx**2 + yy**2 <= r * r)
-    labels, count = ndimage.label(grown)
+    # scipy.ndimage's ``label(grown)`` (4-connected) and ``find_objects`` of
+    # it, from the grown pixels alone (a few per mille of the plane): the
+    # same labels and boxes without three passes over the plane (~15 ms of
+    # CPU per unit of the benchmark night)
+    where = np.flatnonzero(grown)
+    number, count = label_sorted(where, grown.shape[1], False)
     # the smallest type that numbers them: a plane of the stretch, uint8 (a
     # quarter of int32's bytes) up to 255 footprints, uint16 up to 65535
-    kept = labels.astype(np.min_scalar_type(count))
-    return Footprints(kept, ndimage.find_objects(labels), clipped)
+    kept = np.zeros(grown.shape, np.min_scalar_type(count))
+    kept.reshape(-1)[where] = number
+    row_lo, row_hi, col_lo, col_hi = segment_bounds(where, number, count, grown.shape)
+    slices = [
+        (slice(a, b), slice(c, d))
+        for a, b, c, d in zip(
+            row_lo.tolist(), row_hi.tolist(), col_lo.tolist(), col_hi.tolist(), strict=True
+        )
+    ]
+    return Footprints(kept, slices, clipped)
 
 
 def dilate_sparse(pixels: np.ndarray, structure: np.ndarray) -> np.ndarray:
