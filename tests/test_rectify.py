@@ -31,7 +31,7 @@ from pipeline.stages.rectify import (
     smear_kernels,
 )
 from pipeline.stages.rectify._deconvolve import filter_lag_products, wiener_filter
-from pipeline.stages.rectify._map import StripMap, crossing_after
+from pipeline.stages.rectify._map import StripMap, column_tracks, crossing_after, map_nodes
 
 LATITUDES = [0.0, 30.0, 50.0, -31.0]
 N_ROWS = 2048
@@ -143,6 +143,36 @@ def test_map_interpolation_error():
         xx = xx - (strip_map(xx, yy)[0] - row)
     # 1e-6 px: both are the same interpolant; the Taylor step neglects ~1e-9.
     assert np.abs(c_row - strip_map(xx, yy)[1]).max() < 1e-6
+
+
+def test_map_nodes_and_column_tracks_are_each_columns_own():
+    """map_nodes and column_tracks search many columns' crossings together; each
+    node column must be (r - x, c) of TDIModel.recorded_centroid of its own
+    stars, and each column's track TDIModel.track of its own, to the bit, with
+    the crossing its column picks (crossing_after).  Self-consistency check."""
+    model = scene_model(50.0, N_ROWS, small_camera(rotation=0.3))
+    frame = RectifiedFrame.for_night(model, N_ROWS)
+    nodes: dict = {}
+    map_nodes(model, frame, [(200.0, 700.0), (600.0, 1300.0)], nodes, step_x=256, step_y=64)
+    y_nodes = StripMap(model, frame, 200.0, 700.0, step_x=256, step_y=64).y_nodes
+    assert sorted(nodes) == [256.0 * k for k in range(-1, 8)]
+    for xn, (offset, column) in nodes.items():
+        ra, dec = frame.icrs_from_pixel(xn, y_nodes)
+        r, c = model.recorded_centroid(ra, dec, after=crossing_after(model, xn))
+        np.testing.assert_array_equal(offset, r - xn)
+        np.testing.assert_array_equal(column, c)
+    sets = []
+    for columns in ([300.0, 900.0], [1500.0, 1500.0, 100.0]):
+        x = np.repeat(columns, 3)
+        y = np.tile([5.0, 40.0, 77.0], len(columns))
+        sets.append((x, *frame.icrs_from_pixel(x, y)))
+    for (x, ra, dec), tracks in zip(sets, column_tracks(model, sets, 7), strict=True):
+        assert len(tracks) == np.unique(x).size
+        for value, track in zip(np.unique(x), tracks, strict=True):
+            sel = x == value
+            alone = model.track(ra[sel], dec[sel], 7, after=crossing_after(model, value))
+            np.testing.assert_array_equal(track.r, alone.r)
+            np.testing.assert_array_equal(track.c, alone.c)
 
 
 @pytest.mark.parametrize("latitude", [50.0, -31.0])
