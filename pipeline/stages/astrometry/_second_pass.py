@@ -153,18 +153,19 @@ def solved_kernels_of_stretches(
     skies = solution.sky_from_rectified_groups(groups)
     nodes = {} if nodes is None else nodes
     model = solution.solved_model  # made once, before any thread
-    # every stretch's nominal map nodes at once, before the threads read them
-    map_nodes(
-        nominal_model,
-        frame,
-        [_map_range(x) for x, _ in groups],
-        nodes,
-        step_x=_MAP_STEP[0],
-        step_y=_MAP_STEP[1],
-    )
 
     def stretches(part: range) -> list:
-        # the part's kernel tracks in one pass (each the same as alone), then each stretch
+        # the part's map nodes in one pass, its kernel tracks in another (each the
+        # same as alone; a node column both halves need is made in both, to the
+        # same values), then each stretch
+        map_nodes(
+            nominal_model,
+            frame,
+            [_map_range(groups[i][0]) for i in part],
+            nodes,
+            step_x=_MAP_STEP[0],
+            step_y=_MAP_STEP[1],
+        )
         samples = {_n_samples(kernels[i]) for i in part}
         tracks = [None] * len(part)
         if len(samples) == 1:
