@@ -595,14 +595,25 @@ class TDIModel:
         dec = np.asarray(dec, dtype=float)
         sizes = [ra.size] if sizes is None else sizes
         t_enter, t_exit = self.crossing_windows(ra, dec, afters, sizes)
+        return [
+            self.track_in_window(ra[lo:hi], dec[lo:hi], t_enter[lo:hi], t_exit[lo:hi], n_samples)
+            for lo, hi in itertools.pairwise(np.r_[0, np.cumsum(sizes)])
+        ]
+
+    def track_in_window(
+        self, ra: np.ndarray, dec: np.ndarray, t0: np.ndarray, t1: np.ndarray, n_samples: int
+    ) -> Track:
+        """The :meth:`track` of stars (1-D, degrees) over their crossing windows ``[t0, t1]``.
+
+        With the windows of :meth:`crossing_window` (or :meth:`crossing_windows`)
+        it is :meth:`track`, to the bit.
+        """
+        if n_samples < 1:
+            raise ValueError(f"n_samples must be >= 1; got {n_samples}.")
         frac = (np.arange(n_samples) + 0.5) / n_samples
-        out = []
-        for lo, hi in itertools.pairwise(np.r_[0, np.cumsum(sizes)]):
-            t0, t1 = t_enter[lo:hi], t_exit[lo:hi]
-            t = t0[:, None] + (t1 - t0)[:, None] * frac
-            u, v = self.focal_plane(ra[lo:hi, None], dec[lo:hi, None], t)
-            out.append(Track(t=t, u=u, v=v, r=t / self._dt + self._N - u, c=v))
-        return out
+        t = t0[:, None] + (t1 - t0)[:, None] * frac
+        u, v = self.focal_plane(ra[:, None], dec[:, None], t)
+        return Track(t=t, u=u, v=v, r=t / self._dt + self._N - u, c=v)
 
     def recorded_centroid(
         self, ra: ArrayLike, dec: ArrayLike, *, after: float = 0.0

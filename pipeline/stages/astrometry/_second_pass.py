@@ -51,7 +51,7 @@ import numpy as np
 from astropy.table import Table
 
 from pipeline._threads import in_two_threads
-from pipeline.stages.rectify._map import StripMap, column_tracks, map_nodes, smear_kernels
+from pipeline.stages.rectify._map import StripMap, column_windows, map_nodes, smear_kernels
 
 __all__ = [
     "BRIGHT_SNR",
@@ -80,7 +80,7 @@ def solved_kernels(
     *,
     sky=None,
     nodes=None,
-    tracks=None,
+    windows=None,
 ) -> Table:
     """rectify's kernel record redone with the tracks of a solved geometry.
 
@@ -104,9 +104,10 @@ def solved_kernels(
     nodes : dict or None
         Node columns of the nominal map shared with other stretches' calls
         (see :class:`~pipeline.stages.rectify._map.StripMap`).
-    tracks : list or None
-        The tracks of the kernels' columns in ``model``, if made already
-        (:func:`~pipeline.stages.rectify._map.column_tracks`); None: made here.
+    windows : list or None
+        The crossing windows of the kernels' columns in ``model``, if made
+        already (:func:`~pipeline.stages.rectify._map.column_windows`); None:
+        made here.
 
     Returns
     -------
@@ -122,7 +123,9 @@ def solved_kernels(
     if sky is None:
         sky = solution.sky_from_rectified(x, y)
     model = solution.solved_model if model is None else model
-    return smear_kernels(model, frame, strip_map, x, y, _n_samples(kernels), sky=sky, tracks=tracks)
+    return smear_kernels(
+        model, frame, strip_map, x, y, _n_samples(kernels), sky=sky, windows=windows
+    )
 
 
 def _map_range(x: np.ndarray) -> tuple[float, float]:
@@ -155,9 +158,9 @@ def solved_kernels_of_stretches(
     model = solution.solved_model  # made once, before any thread
 
     def stretches(part: range) -> list:
-        # the part's map nodes in one pass, its kernel tracks in another (each the
-        # same as alone; a node column both halves need is made in both, to the
-        # same values), then each stretch
+        # the part's map nodes in one pass, its kernel columns' crossing windows
+        # in another (each the same as alone; a node column both halves need is
+        # made in both, to the same values), then each stretch
         map_nodes(
             nominal_model,
             frame,
@@ -166,10 +169,7 @@ def solved_kernels_of_stretches(
             step_x=_MAP_STEP[0],
             step_y=_MAP_STEP[1],
         )
-        samples = {_n_samples(kernels[i]) for i in part}
-        tracks = [None] * len(part)
-        if len(samples) == 1:
-            tracks = column_tracks(model, [(groups[i][0], *skies[i]) for i in part], *samples)
+        windows = column_windows(model, [(groups[i][0], *skies[i]) for i in part])
         return [
             solved_kernels(
                 kernels[i],
@@ -179,7 +179,7 @@ def solved_kernels_of_stretches(
                 model,
                 sky=skies[i],
                 nodes=nodes,
-                tracks=tracks[k],
+                windows=windows[k],
             )
             for k, i in enumerate(part)
         ]

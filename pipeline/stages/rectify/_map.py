@@ -25,6 +25,7 @@ derivatives for the Jacobian.
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -32,7 +33,7 @@ from astropy.table import Table
 
 __all__ = [
     "StripMap",
-    "column_tracks",
+    "column_windows",
     "crossing_after",
     "kernel_table",
     "map_nodes",
@@ -304,7 +305,7 @@ def smear_kernels(
     y: np.ndarray,
     n_samples: int = 64,
     sky: tuple[np.ndarray, np.ndarray] | None = None,
-    tracks: list | None = None,
+    windows: list | None = None,
 ) -> Table:
     """The smear kernel at rectified positions, in rectified pixels.
 
@@ -331,8 +332,8 @@ def smear_kernels(
         made with (a solved geometry: the kernels of the true tracks on the
         grid rectify resampled with the nominal one); None: the frame's sky
         at ``(x, y)``.
-    tracks : list of Track or None
-        ``column_tracks`` of these positions, if made already (e.g. with
+    windows : list or None
+        :func:`column_windows` of these positions, if made already (e.g. with
         other stretches'); None: made here.
 
     Returns
@@ -353,10 +354,11 @@ def smear_kernels(
     dy = np.empty((x.size, n_samples))
     ra, dec = frame.icrs_from_pixel(x, y) if sky is None else sky
     inverse = np.linalg.inv(strip_map.jacobian(x, y))
-    if tracks is None:
-        (tracks,) = column_tracks(model, [(x, ra, dec)], n_samples)
-    for value, track in zip(np.unique(x), tracks, strict=True):
+    if windows is None:
+        (windows,) = column_windows(model, [(x, ra, dec)])
+    for value, (t0, t1) in zip(np.unique(x), windows, strict=True):
         sel = np.flatnonzero(x == value)
+        track = model.track_in_window(ra[sel], dec[sel], t0, t1, n_samples)
         dr = track.r - track.r.mean(axis=1, keepdims=True)
         dc = track.c - track.c.mean(axis=1, keepdims=True)
         inv = inverse[sel]
@@ -384,31 +386,36 @@ def smear_kernels(
     )
 
 
-def column_tracks(model, positions, n_samples: int) -> list[list]:
-    """The tracks :func:`smear_kernels` follows, of several sets of positions at once.
+def column_windows(model, positions) -> list[list[tuple[np.ndarray, np.ndarray]]]:
+    """The crossing windows :func:`smear_kernels` samples, of several sets of positions at once.
 
     ``positions``: ``(x, ra, dec)`` of each set (night rectified columns, the
-    stars recorded there, degrees).  Per set, the :meth:`TDIModel.track` of
-    the stars of each of its columns (``np.unique(x)``, in order), with the
-    crossing that :func:`crossing_after` the column picks: each the track
-    the column's stars get alone, their crossing windows searched together
-    (:meth:`~pipeline.geometry.TDIModel.tracks_of_groups`; a kernel record
+    stars recorded there, degrees).  Per set, the
+    :meth:`~pipeline.geometry.TDIModel.crossing_window` ``(t_enter, t_exit)``
+    of the stars of each of its columns (``np.unique(x)``, in order), with the
+    crossing :func:`crossing_after` the column picks: each what the column's
+    stars get alone, searched together
+    (:meth:`~pipeline.geometry.TDIModel.crossing_windows`; a kernel record
     has a few columns of ~130 stars, and each model call a fixed cost).
+    The tracks themselves are sampled column by column, as they are used
+    (:meth:`~pipeline.geometry.TDIModel.track_in_window`): a night's kernel
+    tracks held at once would be tens of MB.
     """
     columns = []
     for x, ra, dec in positions:
-        values = np.unique(x)
-        columns.append([(value, np.flatnonzero(x == value), ra, dec) for value in values])
+        columns.append([(value, np.flatnonzero(x == value), ra, dec) for value in np.unique(x)])
     flat = [column for per_set in columns for column in per_set]
-    tracks = model.tracks_of_groups(
+    sizes = [sel.size for _, sel, _, _ in flat]
+    t_enter, t_exit = model.crossing_windows(
         np.concatenate([ra[sel] for _, sel, ra, _ in flat]) if flat else np.empty(0),
         np.concatenate([dec[sel] for _, sel, _, dec in flat]) if flat else np.empty(0),
-        n_samples,
         [crossing_after(model, value) for value, _, _, _ in flat],
-        [sel.size for _, sel, _, _ in flat],
+        sizes,
     )
-    handed = iter(tracks)
-    return [[next(handed) for _ in per_set] for per_set in columns]
+    windows = iter(
+        (t_enter[lo:hi], t_exit[lo:hi]) for lo, hi in itertools.pairwise(np.cumsum([0, *sizes]))
+    )
+    return [[next(windows) for _ in per_set] for per_set in columns]
 
 
 def kernel_table(x, y, dx, dy, n_samples: int, description: str, **more) -> Table:
