@@ -29,9 +29,7 @@ measured the night again for a kernel change that was not there.
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -39,7 +37,6 @@ from astropy import units as u
 from astropy.table import QTable, Table
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
-from pipeline._threads import n_cpus
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import TDIModel
 from pipeline.stages.astrometry._fit import FIT_PARAMETERS, _subset
@@ -198,26 +195,6 @@ def _transparency(solution: AstrometricSolution, flux, flux_err, ref_mag):
     )
 
 
-@contextlib.contextmanager
-def _sky_ahead(solution: AstrometricSolution, x, y, x_err, y_err):
-    """``solution.sky_and_errors(x, y, x_err, y_err)`` in a thread, as a future (None: 1 CPU).
-
-    While the sky's transparency is fitted (~0.3 s of the 4096-column night,
-    mostly LAPACK's QR), the other CPU makes the detections' solved sky
-    (~0.45 s): the night's unless a cloud makes the solution light-weighted
-    (then it is made again, from the new solution).  The same values in
-    either thread; nothing else meanwhile builds tracks (which may extend the
-    predictor's axis, :meth:`GeometryPredictor.tracks`): the transparency
-    fit only predicts from the tracks made.  The thread has ended when the
-    block does.
-    """
-    if n_cpus() < 2:
-        yield None
-        return
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-sky") as pool:
-        yield pool.submit(solution.sky_and_errors, x, y, x_err, y_err)
-
-
 def solve_catalog(
     catalog: QTable,
     ref_ra,
@@ -297,26 +274,21 @@ def solve_catalog(
     }
     solution = solve_night(*args, **kwargs)
     cloud = None
-    sky = None  # the solved sky and errors of every detection, once made
     if options.light_weighting and ref_mag is not None and "flux_psf" in catalog.colnames:
         flux = np.asarray(u.Quantity(catalog["flux_psf"]).value, dtype=float)[fit_rows]
         flux_err = None
         if "flux_psf_err" in catalog.colnames:
             flux_err = np.asarray(u.Quantity(catalog["flux_psf_err"]).value, float)[fit_rows]
-        with _sky_ahead(solution, x, y, x_err, y_err) as ahead:
-            cloud = _transparency(solution, flux, flux_err, np.asarray(ref_mag, dtype=float))
-            if (
-                cloud is not None
-                and cloud.depth >= options.min_cloud_depth
-                and cloud.significance >= options.min_cloud_significance
-            ):
-                solution = solve_night(*args, transparency=cloud, **kwargs)
-            else:
-                cloud = dataclasses.replace(cloud, applied=False) if cloud is not None else None
-                sky = ahead.result() if ahead is not None else None
-    if sky is None:
-        sky = solution.sky_and_errors(x, y, x_err, y_err)
-    ra, dec, ra_err, dec_err = sky
+        cloud = _transparency(solution, flux, flux_err, np.asarray(ref_mag, dtype=float))
+        if (
+            cloud is not None
+            and cloud.depth >= options.min_cloud_depth
+            and cloud.significance >= options.min_cloud_significance
+        ):
+            solution = solve_night(*args, transparency=cloud, **kwargs)
+        else:
+            cloud = dataclasses.replace(cloud, applied=False) if cloud is not None else None
+    ra, dec, ra_err, dec_err = solution.sky_and_errors(x, y, x_err, y_err)
     out = catalog.copy()
     out["ra"] = ra * u.deg
     out["dec"] = dec * u.deg
