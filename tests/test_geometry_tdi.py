@@ -336,3 +336,48 @@ def test_crossing_window_after_early_in_span():
         # identical solve, so agreement to rounding (1e-9 s)
         np.testing.assert_allclose(t_enter, reference[0], atol=1e-9)
         np.testing.assert_allclose(t_exit, reference[1], atol=1e-9)
+
+
+def test_groups_of_stars_get_what_each_gets_alone():
+    """crossing_windows, tracks_of_groups and recorded_centroids share the model's
+    calls between groups of stars, each with its own ``after``: every group must
+    get, to the bit, what crossing_window, track and recorded_centroid give it
+    alone (the astrometry stage's products are compared byte for byte).
+    Self-consistency check."""
+    camera = Camera(n_columns=256, tdi_rows=256, pixel_size=15.0, focal_length=8.0)
+    site = Site(latitude=33.0, longitude=-105.0, pressure=0.0)
+    model = TDIModel(site, camera, Time("2024-02-01T02:00:00", scale="utc"), 90000.0)
+    columns = np.linspace(-20.0, 275.0, 7)
+    groups, afters = [], []
+    for t_centre, after in ((600.0, 0.0), (900.0, 0.0), (3000.0, 2500.0), (600.0, 606.0)):
+        # (600 s, after 606 s): the transit found first (the crossing takes
+        # 7.9 s) ends before ``after``, the next one, a sidereal day on, is searched
+        groups.append(model.sky_from_focal_plane(128.0, columns, t_centre))
+        afters.append(after)
+    # one star on the centre line: its first search converges a step before
+    # the others' (a step more would move its times by rounding)
+    groups.append(model.sky_from_focal_plane(128.0, np.array([128.0]), 700.0))
+    afters.append(0.0)
+    groups.insert(2, (np.empty(0), np.empty(0)))  # a group without stars
+    afters.insert(2, 0.0)
+    ra = np.concatenate([g[0] for g in groups])
+    dec = np.concatenate([g[1] for g in groups])
+    sizes = [g[0].size for g in groups]
+    t_enter, t_exit = model.crossing_windows(ra, dec, afters, sizes)
+    tracks = model.tracks_of_groups(ra, dec, 5, afters, sizes)
+    centroids = model.recorded_centroids(ra, dec, afters, sizes)
+    ends = np.cumsum([0, *sizes])
+    for (g_ra, g_dec), after, lo, hi, track, (r, c) in zip(
+        groups, afters, ends[:-1], ends[1:], tracks, centroids, strict=True
+    ):
+        alone = model.crossing_window(g_ra, g_dec, after=after)
+        np.testing.assert_array_equal(t_enter[lo:hi], alone[0])
+        np.testing.assert_array_equal(t_exit[lo:hi], alone[1])
+        expected = model.track(g_ra, g_dec, 5, after=after)
+        for name in ("t", "u", "v", "r", "c"):
+            np.testing.assert_array_equal(getattr(track, name), getattr(expected, name))
+        r_alone, c_alone = model.recorded_centroid(g_ra, g_dec, after=after)
+        np.testing.assert_array_equal(r, r_alone)
+        np.testing.assert_array_equal(c, c_alone)
+    # the late group's window is the next transit's (the case the test is about)
+    assert np.all(t_exit[ends[4] : ends[5]] > 86000.0)

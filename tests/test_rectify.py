@@ -31,7 +31,7 @@ from pipeline.stages.rectify import (
     smear_kernels,
 )
 from pipeline.stages.rectify._deconvolve import filter_lag_products, wiener_filter
-from pipeline.stages.rectify._map import StripMap, crossing_after
+from pipeline.stages.rectify._map import StripMap, column_windows, crossing_after, map_nodes
 
 LATITUDES = [0.0, 30.0, 50.0, -31.0]
 N_ROWS = 2048
@@ -143,6 +143,42 @@ def test_map_interpolation_error():
         xx = xx - (strip_map(xx, yy)[0] - row)
     # 1e-6 px: both are the same interpolant; the Taylor step neglects ~1e-9.
     assert np.abs(c_row - strip_map(xx, yy)[1]).max() < 1e-6
+
+
+def test_map_nodes_and_column_windows_are_each_columns_own():
+    """map_nodes and column_windows search many columns' crossings together; each
+    node column must be (r - x, c) of TDIModel.recorded_centroid of its own
+    stars, and each column's window TDIModel.crossing_window of its own (and
+    so its track TDIModel.track), to the bit, with the crossing its column
+    picks (crossing_after).  Self-consistency check."""
+    model = scene_model(50.0, N_ROWS, small_camera(rotation=0.3))
+    frame = RectifiedFrame.for_night(model, N_ROWS)
+    nodes: dict = {}
+    map_nodes(model, frame, [(200.0, 700.0), (600.0, 1300.0)], nodes, step_x=256, step_y=64)
+    y_nodes = StripMap(model, frame, 200.0, 700.0, step_x=256, step_y=64).y_nodes
+    assert sorted(nodes) == [256.0 * k for k in range(-1, 8)]
+    for xn, (offset, column) in nodes.items():
+        ra, dec = frame.icrs_from_pixel(xn, y_nodes)
+        r, c = model.recorded_centroid(ra, dec, after=crossing_after(model, xn))
+        np.testing.assert_array_equal(offset, r - xn)
+        np.testing.assert_array_equal(column, c)
+    sets = []
+    for columns in ([300.0, 900.0], [1500.0, 1500.0, 100.0]):
+        x = np.repeat(columns, 3)
+        y = np.tile([5.0, 40.0, 77.0], len(columns))
+        sets.append((x, *frame.icrs_from_pixel(x, y)))
+    for (x, ra, dec), windows in zip(sets, column_windows(model, sets), strict=True):
+        assert len(windows) == np.unique(x).size
+        for value, (t0, t1) in zip(np.unique(x), windows, strict=True):
+            sel = x == value
+            after = crossing_after(model, value)
+            alone = model.crossing_window(ra[sel], dec[sel], after=after)
+            np.testing.assert_array_equal(t0, alone[0])
+            np.testing.assert_array_equal(t1, alone[1])
+            track = model.track_in_window(ra[sel], dec[sel], t0, t1, 7)
+            expected = model.track(ra[sel], dec[sel], 7, after=after)
+            np.testing.assert_array_equal(track.r, expected.r)
+            np.testing.assert_array_equal(track.c, expected.c)
 
 
 @pytest.mark.parametrize("latitude", [50.0, -31.0])

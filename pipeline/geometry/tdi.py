@@ -46,6 +46,7 @@ A star's recorded image is the seeing PSF convolved with the curve
 
 from __future__ import annotations
 
+import itertools
 import logging
 from dataclasses import dataclass
 
@@ -75,6 +76,18 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 _GAUSS_ORDER = 16
+
+
+def _starts(sizes: np.ndarray) -> np.ndarray:
+    """First index of each of consecutive groups of these sizes."""
+    return np.cumsum(sizes) - sizes
+
+
+def _members(sizes: np.ndarray, groups: np.ndarray) -> np.ndarray:
+    """Indices of the points of ``groups`` (in order) among consecutive groups of ``sizes``."""
+    starts = _starts(sizes)[groups]
+    parts = [np.arange(lo, lo + n) for lo, n in zip(starts, sizes[groups], strict=True)]
+    return np.concatenate(parts) if parts else np.empty(0, dtype=np.intp)
 
 
 @dataclass(frozen=True)
@@ -417,15 +430,41 @@ class TDIModel:
         return float((u[1] - u[0]) / (2.0 * h))
 
     def _solve_u(
-        self, ra: np.ndarray, dec: np.ndarray, t: np.ndarray, target: float, rate: np.ndarray
+        self,
+        ra: np.ndarray,
+        dec: np.ndarray,
+        t: np.ndarray,
+        target: float,
+        rate,
+        ends: np.ndarray | None = None,
     ) -> np.ndarray:
-        """Newton steps with slope ``rate`` for the times at which u = target."""
+        """Newton steps with slope ``rate`` for the times at which u = target.
+
+        ``ends``: the points form groups ``ends[g]:ends[g + 1]``, each stepped
+        as if alone (until its own steps are all below 1e-9 s, at most 30),
+        with one :meth:`focal_plane` call per step for the points of every
+        group still stepping (a call has a fixed cost of ~0.1 ms, and the
+        smear kernels' searches are of a few hundred stars); None: one group.
+        Every point's arithmetic is elementwise, so a group's times are the
+        same whatever other groups are solved with it.
+        """
+        t = np.array(t, dtype=float)  # stepped in place
+        rate = np.broadcast_to(rate, t.shape)
+        sizes = np.diff(np.array([0, t.size]) if ends is None else ends)
+        stepping = np.flatnonzero(sizes)
+        points = slice(None) if stepping.size == sizes.size else _members(sizes, stepping)
         for _ in range(30):
-            u, _ = self.focal_plane(ra, dec, t)
-            step = (u - target) / rate
-            t = t - step
-            if not np.any(np.abs(step) > 1e-9):
+            u, _ = self.focal_plane(ra[points], dec[points], t[points])
+            step = (u - target) / rate[points]
+            t[points] -= step
+            if not stepping.size:
                 break
+            still = np.logical_or.reduceat(np.abs(step) > 1e-9, _starts(sizes[stepping]))
+            if not still.all():
+                stepping = stepping[still]
+                if not stepping.size:
+                    break
+                points = _members(sizes, stepping)
         return t
 
     def crossing_window(
@@ -449,31 +488,69 @@ class TDIModel:
             outside :attr:`t_range`.
         """
         ra, dec = np.broadcast_arrays(np.asarray(ra, dtype=float), np.asarray(dec, dtype=float))
-        shape = ra.shape
-        ra, dec = ra.ravel(), dec.ravel()
+        t_enter, t_exit = self.crossing_windows(ra.ravel(), dec.ravel(), [after], [ra.size])
+        return t_enter.reshape(ra.shape), t_exit.reshape(ra.shape)
+
+    def crossing_windows(
+        self, ra: np.ndarray, dec: np.ndarray, afters, sizes
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`crossing_window` of groups of stars, each with its own ``after``, at once.
+
+        ``ra`` and ``dec`` (1-D, degrees) hold the groups one after the
+        other, ``sizes[g]`` stars with ``afters[g]``.  Each group's times are
+        those :meth:`crossing_window` gives it alone (the same steps, to the
+        bit); only the :meth:`focal_plane` calls are shared.
+        """
+        ra = np.asarray(ra, dtype=float)
+        dec = np.asarray(dec, dtype=float)
+        sizes = np.asarray(sizes, dtype=np.intp)
+        ends = np.r_[0, np.cumsum(sizes)]
+        after = np.repeat(np.asarray(afters, dtype=float), sizes)
         rate0 = self._drift
         # first guess: the first time after t_b at which the axis RA reaches the
         # star's; t_b is a whole crossing early so that slow (long) crossings
         # ending just after ``after`` are not missed; early ones are moved on
         # by a sidereal period below.
         # (clamped to the modelled span: the axis is NaN before it)
-        t_b = max(after - self._N / rate0, self.t_range[0])
-        ra0_b, _ = self.axis.axis_icrs(np.array([t_b]))
-        lag = np.mod(np.radians(ra) - ra0_b[0], 2.0 * np.pi) / self._ra_rate
-        t_mid = self._solve_u(ra, dec, t_b + lag, self._N / 2.0, rate0)
-        for _ in range(2):
+        t_b = np.maximum(np.asarray(afters, dtype=float) - self._N / rate0, self.t_range[0])
+        ra0_b, _ = self.axis.axis_icrs(t_b)
+        lag = np.mod(np.radians(ra) - np.repeat(ra0_b, sizes), 2.0 * np.pi) / self._ra_rate
+        t_mid = self._solve_u(ra, dec, np.repeat(t_b, sizes) + lag, self._N / 2.0, rate0, ends)
+        t_enter = np.empty_like(t_mid)
+        t_exit = np.empty_like(t_mid)
+        groups = np.flatnonzero(sizes)  # those whose window is (still) sought
+        for attempt in range(2):
+            points = _members(sizes, groups)
+            part = np.r_[0, np.cumsum(sizes[groups])]
+            p_ra, p_dec, p_mid = ra[points], dec[points], t_mid[points]
             h = self._h
-            up, _ = self.focal_plane(ra, dec, t_mid + h)
-            um, _ = self.focal_plane(ra, dec, t_mid - h)
+            up, _ = self.focal_plane(p_ra, p_dec, p_mid + h)
+            um, _ = self.focal_plane(p_ra, p_dec, p_mid - h)
             rate = (up - um) / (2.0 * h)
-            t_enter = self._solve_u(ra, dec, t_mid - 0.5 * self._N / rate, 0.0, rate)
-            t_exit = self._solve_u(ra, dec, t_mid + 0.5 * self._N / rate, float(self._N), rate)
-            late = t_exit < after
-            if not np.any(late):
+            enter = self._solve_u(p_ra, p_dec, p_mid - 0.5 * self._N / rate, 0.0, rate, part)
+            leave = self._solve_u(
+                p_ra, p_dec, p_mid + 0.5 * self._N / rate, float(self._N), rate, part
+            )
+            t_enter[points], t_exit[points] = enter, leave
+            late = leave < after[points]
+            if not groups.size or attempt == 1:
                 break
-            t_mid = np.where(late, t_mid + self.sidereal_period, t_mid)
-            t_mid = self._solve_u(ra, dec, t_mid, self._N / 2.0, rate0)
-        return t_enter.reshape(shape), t_exit.reshape(shape)
+            again = np.logical_or.reduceat(late, part[:-1])
+            if not again.any():
+                break
+            # a crossing that ended before ``after``: the next transit
+            p_mid = np.where(late, p_mid + self.sidereal_period, p_mid)
+            keep = np.repeat(again, sizes[groups])
+            groups = groups[again]
+            t_mid[points[keep]] = self._solve_u(
+                p_ra[keep],
+                p_dec[keep],
+                p_mid[keep],
+                self._N / 2.0,
+                rate0,
+                np.r_[0, np.cumsum(sizes[groups])],
+            )
+        return t_enter, t_exit
 
     def track(
         self, ra: ArrayLike, dec: ArrayLike, n_samples: int = 64, *, after: float = 0.0
@@ -496,12 +573,43 @@ class TDIModel:
         Track
             Arrays of shape ``(n_star, n_samples)``.
         """
-        if n_samples < 1:
-            raise ValueError(f"n_samples must be >= 1; got {n_samples}.")
         ra, dec = (
             a.ravel() for a in np.broadcast_arrays(np.asarray(ra, float), np.asarray(dec, float))
         )
-        t0, t1 = self.crossing_window(ra, dec, after=after)
+        (track,) = self.tracks_of_groups(ra, dec, n_samples, [after])
+        return track
+
+    def tracks_of_groups(
+        self, ra: np.ndarray, dec: np.ndarray, n_samples: int, afters, sizes=None
+    ) -> list[Track]:
+        """:meth:`track` of groups of stars, each with its own ``after``, at once.
+
+        ``ra``, ``dec``, ``afters`` and ``sizes`` as :meth:`crossing_windows`
+        takes them (``sizes`` None: one group).  Each group's track is the one
+        :meth:`track` gives it alone: its crossing window is searched with the
+        others' (:meth:`crossing_windows`), then sampled alone.
+        """
+        if n_samples < 1:
+            raise ValueError(f"n_samples must be >= 1; got {n_samples}.")
+        ra = np.asarray(ra, dtype=float)
+        dec = np.asarray(dec, dtype=float)
+        sizes = [ra.size] if sizes is None else sizes
+        t_enter, t_exit = self.crossing_windows(ra, dec, afters, sizes)
+        return [
+            self.track_in_window(ra[lo:hi], dec[lo:hi], t_enter[lo:hi], t_exit[lo:hi], n_samples)
+            for lo, hi in itertools.pairwise(np.r_[0, np.cumsum(sizes)])
+        ]
+
+    def track_in_window(
+        self, ra: np.ndarray, dec: np.ndarray, t0: np.ndarray, t1: np.ndarray, n_samples: int
+    ) -> Track:
+        """The :meth:`track` of stars (1-D, degrees) over their crossing windows ``[t0, t1]``.
+
+        With the windows of :meth:`crossing_window` (or :meth:`crossing_windows`)
+        it is :meth:`track`, to the bit.
+        """
+        if n_samples < 1:
+            raise ValueError(f"n_samples must be >= 1; got {n_samples}.")
         frac = (np.arange(n_samples) + 0.5) / n_samples
         t = t0[:, None] + (t1 - t0)[:, None] * frac
         u, v = self.focal_plane(ra[:, None], dec[:, None], t)
@@ -531,7 +639,28 @@ class TDIModel:
             Strip row and column, broadcast shape of ``ra`` and ``dec``.
         """
         ra, dec = np.broadcast_arrays(np.asarray(ra, dtype=float), np.asarray(dec, dtype=float))
-        t0, t1 = self.crossing_window(ra, dec, after=after)
+        return self._time_mean(ra, dec, *self.crossing_window(ra, dec, after=after))
+
+    def recorded_centroids(
+        self, ra: np.ndarray, dec: np.ndarray, afters, sizes
+    ) -> list[tuple[np.ndarray, np.ndarray]]:
+        """:meth:`recorded_centroid` of groups of stars, each with its own ``after``, at once.
+
+        ``ra``, ``dec`` (1-D), ``afters`` and ``sizes`` as
+        :meth:`crossing_windows` takes them.  Each group's ``(r_mean, c_mean)``
+        is the one :meth:`recorded_centroid` gives it alone: its crossing
+        window is searched with the others', then averaged alone.
+        """
+        ra = np.asarray(ra, dtype=float)
+        dec = np.asarray(dec, dtype=float)
+        t0, t1 = self.crossing_windows(ra, dec, afters, sizes)
+        return [
+            self._time_mean(ra[lo:hi], dec[lo:hi], t0[lo:hi], t1[lo:hi])
+            for lo, hi in itertools.pairwise(np.r_[0, np.cumsum(sizes)])
+        ]
+
+    def _time_mean(self, ra, dec, t0, t1) -> tuple[np.ndarray, np.ndarray]:
+        """Strip ``(r, c)`` of the tracks averaged over the windows ``[t0, t1]`` (16-point rule)."""
         x, w = np.polynomial.legendre.leggauss(_GAUSS_ORDER)
         t = 0.5 * (t0 + t1)[..., None] + 0.5 * (t1 - t0)[..., None] * x
         u, v = self.focal_plane(ra[..., None], dec[..., None], t)

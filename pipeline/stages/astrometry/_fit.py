@@ -415,7 +415,11 @@ def fit_geometry(
     s_c = np.ones(n) if sigma_column is None else np.asarray(sigma_column, float)[det_index]
     floor = 0.0
     weight = 1.0 / np.r_[s_r, s_c]
-    pred, row, column = _model(predictor, tracks, offsets)
+    # the prediction at ``offsets``, None once they move: the first iteration of
+    # each round predicts at the geometry the round before ended with (and the
+    # first round at ``start``), made already (4 of ~46 predictions a fit)
+    model = _model(predictor, tracks, offsets)
+    pred, row, column = model
     ok = np.isfinite(row) & np.isfinite(column)
     used = ok.copy()
     t_mid = np.where(ok, pred.t_mid, np.nanmedian(pred.t_mid) if ok.any() else 0.0)
@@ -445,7 +449,7 @@ def fit_geometry(
     chi2 = np.nan
     for _round in range(10):
         for _ in range(max_iterations):
-            pred, row, column = _model(predictor, tracks, offsets)
+            pred, row, column = model or _model(predictor, tracks, offsets)
             w_r, w_c = wander_part()
             res = obs - np.r_[row + w_r, column + w_c]
             jac = parameter_jacobian(predictor, tracks, offsets, names, pred, row, column)
@@ -462,6 +466,7 @@ def fit_geometry(
             delta = np.linalg.lstsq(scaled, rhs / norm, rcond=1e-13)[0] / norm
             values = values + delta[: len(names)]
             offsets = dataclasses.replace(offsets, **dict(zip(names, values, strict=True)))
+            model = None
             step = jac @ delta[: len(names)]
             if spline_q is not None:
                 _, basis, q_row, q_col = spline_q
@@ -473,7 +478,7 @@ def fit_geometry(
             change = np.abs(step[keep]).max() if keep.any() else 0.0
             if change < 1e-6:
                 break
-        pred, row, column = _model(predictor, tracks, offsets)
+        pred, row, column = model = model or _model(predictor, tracks, offsets)
         w_r, w_c = wander_part()
         res_r = det_row[det_index] - row - w_r
         res_c = det_column[det_index] - column - w_c

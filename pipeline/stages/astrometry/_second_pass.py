@@ -51,7 +51,7 @@ import numpy as np
 from astropy.table import Table
 
 from pipeline._threads import in_two_threads
-from pipeline.stages.rectify._map import StripMap, smear_kernels
+from pipeline.stages.rectify._map import StripMap, column_windows, map_nodes, smear_kernels
 
 __all__ = [
     "BRIGHT_SNR",
@@ -72,7 +72,15 @@ _MAP_STEP = (256, 16)
 
 
 def solved_kernels(
-    kernels: Table, solution, nominal_model, frame, model=None, *, sky=None, nodes=None
+    kernels: Table,
+    solution,
+    nominal_model,
+    frame,
+    model=None,
+    *,
+    sky=None,
+    nodes=None,
+    windows=None,
 ) -> Table:
     """rectify's kernel record redone with the tracks of a solved geometry.
 
@@ -96,6 +104,10 @@ def solved_kernels(
     nodes : dict or None
         Node columns of the nominal map shared with other stretches' calls
         (see :class:`~pipeline.stages.rectify._map.StripMap`).
+    windows : list or None
+        The crossing windows of the kernels' columns in ``model``, if made
+        already (:func:`~pipeline.stages.rectify._map.column_windows`); None:
+        made here.
 
     Returns
     -------
@@ -105,21 +117,25 @@ def solved_kernels(
     """
     x = np.asarray(kernels["x"], dtype=float)
     y = np.asarray(kernels["y"], dtype=float)
-    n_samples = int(kernels.meta.get("n_samples", np.shape(kernels["dx"])[1]))
-    pad = 16 + _MAP_STEP[0] // 4
     strip_map = StripMap(
-        nominal_model,
-        frame,
-        float(x.min()) - pad,
-        float(x.max()) + pad,
-        step_x=_MAP_STEP[0],
-        step_y=_MAP_STEP[1],
-        nodes=nodes,
+        nominal_model, frame, *_map_range(x), step_x=_MAP_STEP[0], step_y=_MAP_STEP[1], nodes=nodes
     )
     if sky is None:
         sky = solution.sky_from_rectified(x, y)
     model = solution.solved_model if model is None else model
-    return smear_kernels(model, frame, strip_map, x, y, n_samples, sky=sky)
+    return smear_kernels(
+        model, frame, strip_map, x, y, _n_samples(kernels), sky=sky, windows=windows
+    )
+
+
+def _map_range(x: np.ndarray) -> tuple[float, float]:
+    """Columns the nominal map of a kernel record at columns ``x`` serves."""
+    pad = 16 + _MAP_STEP[0] // 4
+    return float(x.min()) - pad, float(x.max()) + pad
+
+
+def _n_samples(kernels: Table) -> int:
+    return int(kernels.meta.get("n_samples", np.shape(kernels["dx"])[1]))
 
 
 def solved_kernels_of_stretches(
@@ -135,19 +151,45 @@ def solved_kernels_of_stretches(
     (:func:`~pipeline._threads.in_two_threads`).
     """
     groups = [(np.asarray(k["x"], dtype=float), np.asarray(k["y"], dtype=float)) for k in kernels]
-    skies = solution.sky_from_rectified_groups(groups) if kernels else []
+    if not kernels:
+        return []
+    skies = solution.sky_from_rectified_groups(groups)
     nodes = {} if nodes is None else nodes
-    model = solution.solved_model if kernels else None  # made once, before any thread
+    model = solution.solved_model  # made once, before any thread
 
-    # each stretch's kernels are the same computation in either thread; a node
-    # column both halves need may be computed twice, to the same values
-    return in_two_threads(
-        lambda i: solved_kernels(
-            kernels[i], solution, nominal_model, frame, model, sky=skies[i], nodes=nodes
-        ),
-        range(len(kernels)),
-        "astrometry-kernels",
+    def stretches(part: range) -> list:
+        # the part's map nodes in one pass, its kernel columns' crossing windows
+        # in another (each the same as alone; a node column both halves need is
+        # made in both, to the same values), then each stretch
+        map_nodes(
+            nominal_model,
+            frame,
+            [_map_range(groups[i][0]) for i in part],
+            nodes,
+            step_x=_MAP_STEP[0],
+            step_y=_MAP_STEP[1],
+        )
+        windows = column_windows(model, [(groups[i][0], *skies[i]) for i in part])
+        return [
+            solved_kernels(
+                kernels[i],
+                solution,
+                nominal_model,
+                frame,
+                model,
+                sky=skies[i],
+                nodes=nodes,
+                windows=windows[k],
+            )
+            for k, i in enumerate(part)
+        ]
+
+    # each half of the stretches is the same computation in either thread
+    half = (len(kernels) + 1) // 2
+    halves = in_two_threads(
+        stretches, [range(half), range(half, len(kernels))], "astrometry-kernels"
     )
+    return [table for part in halves for table in part]
 
 
 def kernel_change(before: Table, after: Table) -> float:

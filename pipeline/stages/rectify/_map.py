@@ -25,12 +25,20 @@ derivatives for the Jacobian.
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
 from astropy.table import Table
 
-__all__ = ["StripMap", "crossing_after", "kernel_table", "smear_kernels"]
+__all__ = [
+    "StripMap",
+    "column_windows",
+    "crossing_after",
+    "kernel_table",
+    "map_nodes",
+    "smear_kernels",
+]
 
 
 def crossing_after(model, x: float) -> float:
@@ -67,6 +75,45 @@ def _lagrange4_derivative(t: np.ndarray) -> np.ndarray:
             (3.0 * t * t - 1.0) / 6.0,
         ]
     )
+
+
+def _x_nodes(x_lo: float, x_hi: float, step_x: float) -> np.ndarray:
+    """Node columns of a map serving rectified columns ``x_lo`` to ``x_hi``."""
+    k0 = int(np.floor(x_lo / step_x)) - 1
+    k1 = int(np.floor(x_hi / step_x)) + 2
+    return np.arange(k0, k1 + 1) * float(step_x)
+
+
+def _y_nodes(n_y: int, step_y: float) -> np.ndarray:
+    """Node rows of a map of a frame ``n_y`` rows high."""
+    return np.arange(-2, int(np.ceil((n_y - 1) / step_y)) + 3) * float(step_y)
+
+
+def map_nodes(model, frame, ranges, nodes: dict, *, step_x: int = 256, step_y: int = 16) -> None:
+    """Add to ``nodes`` the node columns of the maps of ``ranges`` it lacks.
+
+    ``ranges``: the ``(x_lo, x_hi)`` of :class:`StripMap` s (of ``model``,
+    ``frame`` and these steps) that will read ``nodes``.  Each node column is
+    the recorded centroids of the sky at ``(x, y_nodes)``, ``(r - x, c)``,
+    exactly as alone; the crossing searches of all of them are made
+    together (:meth:`~pipeline.geometry.TDIModel.recorded_centroids`: a
+    call of the model has a fixed cost of ~0.1 ms and a node column is a few
+    hundred stars).
+    """
+    y_nodes = _y_nodes(frame.n_y, step_y)
+    wanted = dict.fromkeys(xn for lo, hi in ranges for xn in _x_nodes(lo, hi, step_x))
+    missing = [xn for xn in wanted if xn not in nodes]
+    if not missing:
+        return
+    skies = [np.broadcast_arrays(*frame.icrs_from_pixel(xn, y_nodes)) for xn in missing]
+    centroids = model.recorded_centroids(
+        np.concatenate([ra.ravel() for ra, _ in skies]),
+        np.concatenate([dec.ravel() for _, dec in skies]),
+        [crossing_after(model, xn) for xn in missing],
+        [ra.size for ra, _ in skies],
+    )
+    for xn, (ra, _), (r, c) in zip(missing, skies, centroids, strict=True):
+        nodes[xn] = (r.reshape(ra.shape) - xn, c.reshape(ra.shape))
 
 
 class StripMap:
@@ -115,20 +162,14 @@ class StripMap:
         self.frame = frame
         self.step_x = int(step_x)
         self.step_y = int(step_y)
-        k0 = int(np.floor(x_lo / step_x)) - 1
-        k1 = int(np.floor(x_hi / step_x)) + 2
-        self._k0 = k0
-        self.x_nodes = np.arange(k0, k1 + 1) * float(step_x)
-        n_y = frame.n_y
-        self.y_nodes = np.arange(-2, int(np.ceil((n_y - 1) / step_y)) + 3) * float(step_y)
+        self._k0 = int(np.floor(x_lo / step_x)) - 1
+        self.x_nodes = _x_nodes(x_lo, x_hi, step_x)
+        self.y_nodes = _y_nodes(frame.n_y, step_y)
         offsets = np.empty((self.x_nodes.size, self.y_nodes.size))
         columns = np.empty_like(offsets)
         nodes = {} if nodes is None else nodes
+        map_nodes(model, frame, [(x_lo, x_hi)], nodes, step_x=step_x, step_y=step_y)
         for k, xn in enumerate(self.x_nodes):
-            if xn not in nodes:
-                ra, dec = frame.icrs_from_pixel(xn, self.y_nodes)
-                r, c = model.recorded_centroid(ra, dec, after=crossing_after(model, xn))
-                nodes[xn] = (r - xn, c)
             offsets[k], columns[k] = nodes[xn]
         if not (np.isfinite(offsets).all() and np.isfinite(columns).all()):
             raise ValueError(
@@ -140,7 +181,7 @@ class StripMap:
         self.node_columns = columns
         self._a_spline = CubicSpline(self.y_nodes, offsets, axis=1)
         self._c_spline = CubicSpline(self.y_nodes, columns, axis=1)
-        y = np.arange(n_y, dtype=float)
+        y = np.arange(frame.n_y, dtype=float)
         self._a = self._a_spline(y)  # (n_xnodes, n_y)
         self._c = self._c_spline(y)
 
@@ -264,6 +305,7 @@ def smear_kernels(
     y: np.ndarray,
     n_samples: int = 64,
     sky: tuple[np.ndarray, np.ndarray] | None = None,
+    windows: list | None = None,
 ) -> Table:
     """The smear kernel at rectified positions, in rectified pixels.
 
@@ -290,6 +332,9 @@ def smear_kernels(
         made with (a solved geometry: the kernels of the true tracks on the
         grid rectify resampled with the nominal one); None: the frame's sky
         at ``(x, y)``.
+    windows : list or None
+        :func:`column_windows` of these positions, if made already (e.g. with
+        other stretches'); None: made here.
 
     Returns
     -------
@@ -309,9 +354,11 @@ def smear_kernels(
     dy = np.empty((x.size, n_samples))
     ra, dec = frame.icrs_from_pixel(x, y) if sky is None else sky
     inverse = np.linalg.inv(strip_map.jacobian(x, y))
-    for value in np.unique(x):
+    if windows is None:
+        (windows,) = column_windows(model, [(x, ra, dec)])
+    for value, (t0, t1) in zip(np.unique(x), windows, strict=True):
         sel = np.flatnonzero(x == value)
-        track = model.track(ra[sel], dec[sel], n_samples, after=crossing_after(model, value))
+        track = model.track_in_window(ra[sel], dec[sel], t0, t1, n_samples)
         dr = track.r - track.r.mean(axis=1, keepdims=True)
         dc = track.c - track.c.mean(axis=1, keepdims=True)
         inv = inverse[sel]
@@ -337,6 +384,38 @@ def smear_kernels(
         lattice_y=y - sign_c * c,
         row_step=np.abs(inverse[:, 0, 0]),
     )
+
+
+def column_windows(model, positions) -> list[list[tuple[np.ndarray, np.ndarray]]]:
+    """The crossing windows :func:`smear_kernels` samples, of several sets of positions at once.
+
+    ``positions``: ``(x, ra, dec)`` of each set (night rectified columns, the
+    stars recorded there, degrees).  Per set, the
+    :meth:`~pipeline.geometry.TDIModel.crossing_window` ``(t_enter, t_exit)``
+    of the stars of each of its columns (``np.unique(x)``, in order), with the
+    crossing :func:`crossing_after` the column picks: each what the column's
+    stars get alone, searched together
+    (:meth:`~pipeline.geometry.TDIModel.crossing_windows`; a kernel record
+    has a few columns of ~130 stars, and each model call a fixed cost).
+    The tracks themselves are sampled column by column, as they are used
+    (:meth:`~pipeline.geometry.TDIModel.track_in_window`): a night's kernel
+    tracks held at once would be tens of MB.
+    """
+    columns = []
+    for x, ra, dec in positions:
+        columns.append([(value, np.flatnonzero(x == value), ra, dec) for value in np.unique(x)])
+    flat = [column for per_set in columns for column in per_set]
+    sizes = [sel.size for _, sel, _, _ in flat]
+    t_enter, t_exit = model.crossing_windows(
+        np.concatenate([ra[sel] for _, sel, ra, _ in flat]) if flat else np.empty(0),
+        np.concatenate([dec[sel] for _, sel, _, dec in flat]) if flat else np.empty(0),
+        [crossing_after(model, value) for value, _, _, _ in flat],
+        sizes,
+    )
+    windows = iter(
+        (t_enter[lo:hi], t_exit[lo:hi]) for lo, hi in itertools.pairwise(np.cumsum([0, *sizes]))
+    )
+    return [[next(windows) for _ in per_set] for per_set in columns]
 
 
 def kernel_table(x, y, dx, dy, n_samples: int, description: str, **more) -> Table:
