@@ -2016,6 +2016,6 @@ def test_units_are_profiled_where_they_run_when_asked(toy, tmp_path, monkeypatch
     assert units == {key.replace("/", "-") for key in sidecars(config)}
     pids = {int(path.stem.split("-")[2]) for path in files}
     assert pids == {record["pid"] for record in sidecars(config).values()}
-    assert len(pids) > 1  # in the workers: the stretches ran in two
+    assert os.getpid() not in pids  # in the workers (how many took units depends on the load)
     stats = pstats.Stats(*map(str, files))
     assert any(name == "scale_rows" for _file, _line, name in stats.stats)
