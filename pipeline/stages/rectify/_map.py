@@ -162,8 +162,8 @@ class StripMap:
         self.frame = frame
         self.step_x = int(step_x)
         self.step_y = int(step_y)
-        self._k0 = int(np.floor(x_lo / step_x)) - 1
         self.x_nodes = _x_nodes(x_lo, x_hi, step_x)
+        self._k0 = round(self.x_nodes[0] / self.step_x)  # the first node's index
         self.y_nodes = _y_nodes(frame.n_y, step_y)
         offsets = np.empty((self.x_nodes.size, self.y_nodes.size))
         columns = np.empty_like(offsets)
