@@ -13,6 +13,7 @@ import errno
 import hashlib
 import json
 import os
+import platform
 import shutil
 import socket
 import subprocess
@@ -982,6 +983,85 @@ def test_a_worker_returns_its_free_heap_memory_once_idle_not_after_each_unit(mon
     unit(0.01)
     time.sleep(0.4)
     assert len(released) == 2
+
+
+#: A fresh process: where a 40 MB block comes from (the heap, or a mapping of its
+#: own) with glibc's defaults, once large blocks are kept, around a night-wide
+#: unit, and the page faults of five allocations of such a plane (4 kB pages:
+#: numpy's huge-page advice off, so that each page counts).
+_HEAP_PROBE = """
+import resource
+import numpy as np
+import pipeline.runner._heap as heap
+np._core.multiarray._set_madvise_hugepage(False)
+
+def in_heap():
+    address = np.ones(40 * 2**20 // 8).ctypes.data  # freed on return
+    for line in open("/proc/self/maps"):
+        if line.rstrip().endswith("[heap]"):
+            low, high = (int(x, 16) for x in line.split()[0].split("-"))
+            if low <= address < high:
+                return True
+    return False
+
+def faults():
+    before = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+    for _ in range(5):
+        np.ones(40 * 2**20 // 8)
+    return resource.getrusage(resource.RUSAGE_SELF).ru_minflt - before
+
+default = (in_heap(), faults())
+kept = heap.keep_large_blocks()
+print(default[0], kept, in_heap(), end=" ")
+heap.release_before("night")
+print(in_heap(), end=" ")
+heap.release_after("night")
+print(in_heap(), default[1], faults())
+"""
+
+
+@pytest.mark.skipif(
+    not (sys.platform.startswith("linux") and platform.libc_ver()[0] == "glibc"),
+    reason="glibc's mallopt and /proc/self/maps",
+)
+def test_a_pool_worker_keeps_large_blocks_in_its_heap_but_not_in_night_wide_units():
+    """With glibc's defaults a plane above 32 MB is mapped on its own and its pages
+    faulted in (and zeroed by the kernel) at every allocation; a pool worker keeps such
+    blocks in its heap for the next unit, except while a night-wide unit runs (the
+    tree's memory peaked there).  In a fresh process: the settings are the process's."""
+    out = subprocess.run(
+        [sys.executable, "-c", _HEAP_PROBE], capture_output=True, text=True, check=True
+    ).stdout.split()
+    # in the heap: by default, once kept (and the settings taken), in a night-wide
+    # unit, after it
+    assert " ".join(out[:5]) == "False True True False True"
+    faults_default, faults_kept = int(out[5]), int(out[6])
+    # 5 x 10,240 pages with the defaults; the heap's pages are faulted in once
+    assert faults_default > 40_000 and faults_kept < faults_default / 3
+
+
+def test_a_pool_worker_starts_keeping_large_blocks_and_units_ready_the_heap(toy, monkeypatch):
+    """The local pool's initializer keeps large blocks (dask's workers do not: their
+    tree has no room for it), and every unit readies the heap for its scope before it
+    runs and gives its memory back after, a night-wide one at once."""
+    calls = []
+    monkeypatch.setattr(_executors, "end_with_parent", lambda pid: calls.append("parent"))
+    monkeypatch.setattr(_executors, "keep_large_blocks", lambda: calls.append("keep"))
+    monkeypatch.setattr(_executors, "prepare_worker", lambda *a: calls.append("prepare"))
+    _executors._start_worker(os.getpid(), (), ())
+    assert calls == ["parent", "keep", "prepare"]
+
+    import pipeline.runner._unit as _unit
+
+    calls.clear()
+    monkeypatch.setattr(_unit, "release_before", lambda scope: calls.append(("before", scope)))
+    monkeypatch.setattr(_unit, "release_after", lambda scope: calls.append(("after", scope)))
+    make_config, _ = toy
+    night = NightStore(make_config())
+    lock = night.root / LOCK_NAME
+    with RunLock(lock) as held:
+        assert run_night_stage_index(night, (lock, held.token)).ok
+    assert calls == [("before", "night"), ("after", "night")]
 
 
 def test_a_run_starts_no_more_workers_than_it_has_units_to_run_at_once(toy, tmp_path, monkeypatch):

@@ -81,6 +81,7 @@ from typing import Any
 
 from pipeline._offline import configure_offline
 from pipeline.config import RunSection
+from pipeline.runner._heap import keep_large_blocks
 from pipeline.runner._warm import start_warming
 
 __all__ = ["Executor", "available_memory", "default_workers", "make_executor", "worker_memory"]
@@ -292,8 +293,15 @@ def prepare_worker(modules: Sequence[str], plan: WarmPlan) -> None:
 
 
 def _start_worker(parent_pid: int, modules: Sequence[str], plan: WarmPlan = ()) -> None:
-    """Initializer of a pool worker: end with the run, then :func:`prepare_worker`."""
+    """Initializer of a pool worker: end with the run, keep large blocks, :func:`prepare_worker`.
+
+    The worker's heap keeps the blocks of its units' planes for reuse
+    (:func:`pipeline.runner._heap.keep_large_blocks`).  Not done in the
+    workers of a dask cluster, whose scheduler and nannies leave no room for
+    it in the process tree's memory (see the README's throughput section).
+    """
     end_with_parent(parent_pid)
+    keep_large_blocks()
     prepare_worker(modules, plan)
 
 

@@ -29,7 +29,7 @@ from pydantic import BaseModel
 import pipeline
 from pipeline._offline import astropy_offline
 from pipeline.exceptions import DamagedProductError
-from pipeline.runner._heap import release_when_idle
+from pipeline.runner._heap import release_after, release_before
 from pipeline.runner._lock import check_lock_held
 from pipeline.runner._rawio import check_block_index, read_raw_files, read_rows
 from pipeline.runner._store import (
@@ -328,10 +328,11 @@ def execute_unit(task: UnitTask) -> UnitOutcome:
     astropy is kept offline meanwhile (a worker process may not have been
     forked from the runner's, so the runner's setting does not carry over).
     """
+    release_before(task.stage.scope)  # what earlier units left in the heap
     with astropy_offline(), unit_running():
         outcome = _execute_unit(task)
     settle_after_warm(task.stage.name)  # between units: nothing of the unit's to freeze
-    release_when_idle()  # ... nor to reuse, once the worker waits
+    release_after(task.stage.scope)  # ... nor to reuse, once the worker waits
     return outcome
 
 
