@@ -50,8 +50,6 @@ Position in the night: an alternate linear WCS ``A`` named ``NIGHT``
 
 from __future__ import annotations
 
-import contextlib
-import os
 from collections.abc import Mapping
 from typing import TYPE_CHECKING
 
@@ -311,6 +309,9 @@ def night_column(header: Mapping) -> int:
 
 #: Bytes :func:`plane_columns` reads from a file at a time (whole rows).
 _READ_BYTES = 4 * 1024 * 1024
+#: ... and at most this many for a plane whose strip it converts itself
+#: (:func:`_unsigned_columns`): buffers the C library keeps in its heap.
+_RAW_READ_BYTES = 1024 * 1024
 
 
 def plane_columns(hdu: fits.ImageHDU, columns: slice) -> np.ndarray:
@@ -346,7 +347,7 @@ def plane_columns(hdu: fits.ImageHDU, columns: slice) -> np.ndarray:
     rows = max(_READ_BYTES // row_bytes, 1)
     unsigned = _pseudo_unsigned(hdu)
     if unsigned is not None and n_rows and stop > start:
-        return _unsigned_columns(hdu, unsigned, start, stop, rows, row_bytes)
+        return _unsigned_columns(hdu, unsigned, start, stop, row_bytes)
     # each strip copied out at once, so that its rows' block can go
     parts = [
         np.asarray(hdu.section[first : min(first + rows, n_rows), :])[:, start:stop].copy()
@@ -374,46 +375,38 @@ def _pseudo_unsigned(hdu: fits.ImageHDU) -> np.dtype | None:
     return given if given.kind == "u" and given.itemsize * 8 == bitpix else None
 
 
-def _unsigned_columns(hdu, unsigned: np.dtype, start: int, stop: int, rows: int, row_bytes: int):
+def _unsigned_columns(hdu, unsigned: np.dtype, start: int, stop: int, row_bytes: int):
     """:func:`plane_columns` of a pseudo-unsigned plane: only the strip's pixels converted.
 
     astropy's section converts every pixel of the rows it reads (``np.array(raw,
     dtype=unsigned)`` less ``2^(bits - 1)``, wrapping) into new arrays:
     5.2 ms of CPU for a 40-column strip of a 4109 x 1024 flag plane.  Here
-    the raw rows are read ``rows`` at a time into one buffer (the file opened
-    again by its name when it has one: a read into memory already touched
-    costs a tenth of one into a new array) and only the strip's pixels are
-    converted, with the same arithmetic: ~1 ms.
+    the raw rows are read through astropy's handle of the file (its position
+    restored after), at most :data:`_RAW_READ_BYTES` at a time, and only the
+    strip's pixels are converted, with the same arithmetic: 0.39 ms (least
+    of 15; 3.8 ms in 4 MB reads, whose buffers the C library maps afresh
+    each time).
     """
     info = hdu.fileinfo()
-    offset, name = info["datLoc"], getattr(info["file"], "name", None)
+    file, offset = info["file"], info["datLoc"]
     n_rows, n_columns = hdu.shape
+    rows = max(min(_READ_BYTES, _RAW_READ_BYTES) // row_bytes, 1)
     raw = np.dtype(f">i{unsigned.itemsize}")
     out = np.empty((n_rows, stop - start), unsigned)
-    if not (isinstance(name, str) and os.path.isfile(name)):
-        name = None
-    buffer = np.empty((min(rows, n_rows), n_columns), raw)
-    with open(name, "rb") if name else contextlib.nullcontext(info["file"]) as file:
-        position = None if name else file.tell()
-        try:
-            for first in range(0, n_rows, rows):
-                count = min(rows, n_rows - first)
-                block = buffer[:count]
-                file.seek(offset + first * row_bytes)
-                if name:
-                    got = file.readinto(memoryview(block.reshape(-1).view(np.uint8)))
-                else:
-                    data = file.read(count * row_bytes)
-                    got = len(data)
-                    block = np.frombuffer(data, dtype=raw).reshape(count, n_columns)
-                if got != count * row_bytes:
-                    raise OSError(f"{name or hdu.name}: the plane's data end before its last row.")
-                strip = out[first : first + count]
-                strip[...] = block[:, start:stop]  # wraps, as astropy's conversion
-                strip -= np.uint64(1 << (unsigned.itemsize * 8 - 1))
-        finally:
-            if position is not None:
-                file.seek(position)
+    position = file.tell()
+    try:
+        for first in range(0, n_rows, rows):
+            count = min(rows, n_rows - first)
+            file.seek(offset + first * row_bytes)
+            data = file.read(count * row_bytes)
+            if len(data) != count * row_bytes:
+                raise OSError(f"{hdu.name}: the plane's data end before its last row.")
+            strip = out[first : first + count]
+            block = np.frombuffer(data, dtype=raw).reshape(count, n_columns)
+            strip[...] = block[:, start:stop]  # wraps, as astropy's conversion
+            strip -= np.uint64(1 << (unsigned.itemsize * 8 - 1))
+    finally:
+        file.seek(position)
     return out
 
 
