@@ -309,6 +309,9 @@ def night_column(header: Mapping) -> int:
 
 #: Bytes :func:`plane_columns` reads from a file at a time (whole rows).
 _READ_BYTES = 4 * 1024 * 1024
+#: ... and at most this many for a plane whose strip it converts itself
+#: (:func:`_unsigned_columns`): buffers the C library keeps in its heap.
+_RAW_READ_BYTES = 1024 * 1024
 
 
 def plane_columns(hdu: fits.ImageHDU, columns: slice) -> np.ndarray:
@@ -342,6 +345,9 @@ def plane_columns(hdu: fits.ImageHDU, columns: slice) -> np.ndarray:
         raise ValueError(f"plane_columns reads contiguous columns; got step {step} in {columns}.")
     row_bytes = max(n_columns * abs(hdu.header["BITPIX"]) // 8, 1)
     rows = max(_READ_BYTES // row_bytes, 1)
+    unsigned = _pseudo_unsigned(hdu)
+    if unsigned is not None and n_rows and stop > start:
+        return _unsigned_columns(hdu, unsigned, start, stop, row_bytes)
     # each strip copied out at once, so that its rows' block can go
     parts = [
         np.asarray(hdu.section[first : min(first + rows, n_rows), :])[:, start:stop].copy()
@@ -350,6 +356,58 @@ def plane_columns(hdu: fits.ImageHDU, columns: slice) -> np.ndarray:
     if not parts:
         return np.asarray(hdu.section[:, :])[:, start:stop].copy()
     return np.concatenate(parts, axis=0)
+
+
+def _pseudo_unsigned(hdu: fits.ImageHDU) -> np.dtype | None:
+    """The unsigned type astropy gives a plane of signed integers offset by ``BZERO``, else None.
+
+    FITS stores unsigned integers as signed ones with ``BZERO = 2^(bits - 1)``
+    and ``BSCALE = 1`` (FITS Standard 4.0 sec. 5.2.5); astropy gives them back
+    as unsigned (``uint=True``, its default), which the type of a one-pixel
+    section tells.
+    """
+    bitpix = hdu.header["BITPIX"]
+    if bitpix not in (16, 32, 64) or hdu.header.get("BSCALE", 1) != 1:
+        return None
+    if hdu.header.get("BZERO", 0) != 1 << (bitpix - 1) or 0 in hdu.shape:
+        return None
+    given = np.asarray(hdu.section[0:1, 0:1]).dtype
+    return given if given.kind == "u" and given.itemsize * 8 == bitpix else None
+
+
+def _unsigned_columns(hdu, unsigned: np.dtype, start: int, stop: int, row_bytes: int):
+    """:func:`plane_columns` of a pseudo-unsigned plane: only the strip's pixels converted.
+
+    astropy's section converts every pixel of the rows it reads (``np.array(raw,
+    dtype=unsigned)`` less ``2^(bits - 1)``, wrapping) into new arrays:
+    5.2 ms of CPU for a 40-column strip of a 4109 x 1024 flag plane.  Here
+    the raw rows are read through astropy's handle of the file (its position
+    restored after), at most :data:`_RAW_READ_BYTES` at a time, and only the
+    strip's pixels are converted, with the same arithmetic: 0.39 ms (least
+    of 15; 3.8 ms in 4 MB reads, whose buffers the C library maps afresh
+    each time).
+    """
+    info = hdu.fileinfo()
+    file, offset = info["file"], info["datLoc"]
+    n_rows, n_columns = hdu.shape
+    rows = max(min(_READ_BYTES, _RAW_READ_BYTES) // row_bytes, 1)
+    raw = np.dtype(f">i{unsigned.itemsize}")
+    out = np.empty((n_rows, stop - start), unsigned)
+    position = file.tell()
+    try:
+        for first in range(0, n_rows, rows):
+            count = min(rows, n_rows - first)
+            file.seek(offset + first * row_bytes)
+            data = file.read(count * row_bytes)
+            if len(data) != count * row_bytes:
+                raise OSError(f"{hdu.name}: the plane's data end before its last row.")
+            strip = out[first : first + count]
+            block = np.frombuffer(data, dtype=raw).reshape(count, n_columns)
+            strip[...] = block[:, start:stop]  # wraps, as astropy's conversion
+            strip -= np.uint64(1 << (unsigned.itemsize * 8 - 1))
+    finally:
+        file.seek(position)
+    return out
 
 
 def _merged(first: fits.Header, second: fits.Header) -> fits.Header:

@@ -476,6 +476,28 @@ def test_plane_columns_match_astropy(tmp_path, monkeypatch, read_bytes, columns)
     np.testing.assert_array_equal(products.plane_columns(memory, columns), flags[:, columns])
 
 
+def test_plane_columns_of_unsigned_flags_match_astropy(tmp_path, monkeypatch):
+    # The flags' strip is read raw and only its pixels converted (int16 less
+    # BZERO = 32768, wrapping: FITS Standard 4.0 sec. 5.2.5); astropy's
+    # ``.data`` is the reference, with the extreme values, read four rows at a
+    # time through astropy's handle, whose position is left as it was.
+    monkeypatch.setattr(products, "_READ_BYTES", 2 * 41 * 4)
+    rng = np.random.default_rng(6)
+    flags = rng.integers(0, 65536, size=(31, 41)).astype(np.uint16)
+    flags[0, :4] = [0, 65535, 32768, 32767]
+    path = tmp_path / "flags.fits"
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(flags, name="FLAGS")]).writeto(path)
+    with fits.open(path, memmap=False, lazy_load_hdus=True) as hdul:
+        handle = hdul["FLAGS"].fileinfo()["file"]
+        handle.seek(5)
+        for columns in (slice(0, 4), slice(37, 41), slice(10, 11)):
+            strip = products.plane_columns(hdul["FLAGS"], columns)
+            assert strip.dtype == np.uint16
+            np.testing.assert_array_equal(strip, flags[:, columns])
+            assert handle.tell() == 5
+        np.testing.assert_array_equal(hdul["FLAGS"].data, flags)
+
+
 def test_plane_columns_rejects_a_step(tmp_path):
     path = tmp_path / "plane.fits"
     fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(np.zeros((4, 6), np.float32))]).writeto(path)

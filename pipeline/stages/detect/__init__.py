@@ -725,10 +725,10 @@ def detect(
     x, y = fits_["x"][idx], fits_["y"][idx]
     kernels = [fits_["kernel"][i] for i in idx]
     if held is not None:
-        var[footprints.clipped] = held
+        footprints.put(var, held)
     if single:  # the apertures' variance: the fits' without the holes, as float64 planes'
         if footprints is not None:
-            var_fit[footprints.clipped] = var[footprints.clipped]
+            footprints.put(var_fit, footprints.take(var))
         var = var_fit
     ap_flux, ap_err, ap_corr = aperture_fluxes(
         residual,
@@ -883,10 +883,10 @@ def _without_clipped(
         return var, None
     if not owned:
         out = var.copy()
-        out[footprints.clipped] = np.nan
+        footprints.put(out, np.nan)
         return out, None
-    held = var[footprints.clipped]
-    var[footprints.clipped] = np.nan
+    held = footprints.take(var)
+    footprints.put(var, np.nan)
     return var, held
 
 
@@ -943,7 +943,7 @@ def _fit_variance(var: np.ndarray, footprints) -> np.ndarray:
     """The variance the fits see, float64: ``var`` with NaN on clipped pixels (a new array)."""
     out = var.astype(np.float64)
     if footprints is not None:
-        out[footprints.clipped] = np.nan
+        footprints.put(out, np.nan)
     return out
 
 

@@ -139,7 +139,7 @@ def background_model(image: np.ndarray, no_data: np.ndarray, box: int) -> Backgr
     # mesh costs half as much; the mesh (and its boxes) is the same.
     stride = 2 if box_size[0] % 2 == 0 and ny >= 4 * box_size[0] else 1
     mesh = background_mesh(
-        (image[::stride] - trend).astype(np.float32),  # no-data pixels are masked
+        _less_trend(image[::stride], trend),  # no-data pixels are masked
         no_data[::stride],
         (box_size[0] // stride, box_size[1]),
         sigma=3.0,
@@ -147,6 +147,18 @@ def background_model(image: np.ndarray, no_data: np.ndarray, box: int) -> Backgr
         exclude_percentile=50.0,
     )
     return BackgroundModel(np.asarray(mesh, dtype=float), box_size, image.shape, trend)
+
+
+def _less_trend(rows: np.ndarray, trend: np.ndarray) -> np.ndarray:
+    """``(rows - trend).astype(np.float32)``: the difference in double precision, rounded once.
+
+    numpy subtracts into the float32 result a buffer of rows at a time
+    (``dtype=float64``: each value converted to double, subtracted, then
+    rounded to single), the same values without the float64 plane of the
+    difference: 1.1 ms of CPU instead of 2.1 ms for every other row of a
+    4109 x 1090 stretch (least of 5).
+    """
+    return np.subtract(rows, trend, out=np.empty(rows.shape, np.float32), dtype=np.float64)
 
 
 def _expand_mesh(
@@ -176,7 +188,12 @@ def _expand_mesh(
     wy = _zoom_weights(mesh.shape[0], box_size[0], shape[0])
     wx = _zoom_weights(mesh.shape[1], box_size[1], shape[1])
     out = (wy @ (mesh - level).astype(np.float32)) @ wx.T
-    np.clip(out, mesh.min() - level, mesh.max() - level, out=out)
+    # Clipped to the bounds rounded to single precision: rounding is monotonic,
+    # so it commutes with the clip, and each value is the same as clipped to
+    # the double-precision bounds and rounded back, without numpy's
+    # conversion of every pixel to double and back (1.1 ms of CPU instead of
+    # 3.4 ms on a 4109 x 1090 plane, least of 5).
+    np.clip(out, np.float32(mesh.min() - level), np.float32(mesh.max() - level), out=out)
     out += (trend + level).astype(np.float32)
     return out
 
@@ -429,13 +446,27 @@ def filter_scale(
     scale = _filter_bands(
         inverse, templates, square=True, variance=variance if inverse is None else None
     )
-    # Rounding leaves tiny values (and negatives) where no pixel has data.
-    valid = scale > 1e-12 * float(scale.max())
-    scale *= np.float32(noise_correlation)
-    np.sqrt(scale, out=scale, where=valid)
-    np.divide(np.float32(1.0), scale, out=scale, where=valid)
-    scale[~valid] = 0.0
-    return scale
+    return _inverse_root(scale, noise_correlation)
+
+
+def _inverse_root(sums: np.ndarray, noise_correlation: float) -> np.ndarray:
+    """``1 / sqrt(noise_correlation sums)`` in place (float32), 0 where ``sums`` is not valid.
+
+    Rounding leaves tiny values (and negatives) where no pixel has data:
+    valid are the sums above ``1e-12`` of the largest.  The square root and
+    the division are taken of every pixel and the invalid ones (NaN or inf
+    there) set to 0 after: each valid pixel's value is the same as with
+    ``where=valid`` in both, whose masked loops took 2.8 ms of CPU more on
+    the benchmark night's stretch 5 (4109 x 1090 pixels; 3.8 ms instead of
+    6.6 ms, least of 3).  Returns ``sums``.
+    """
+    valid = sums > 1e-12 * float(sums.max())
+    sums *= np.float32(noise_correlation)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        np.sqrt(sums, out=sums)
+        np.divide(np.float32(1.0), sums, out=sums)
+    np.copyto(sums, np.float32(0.0), where=~valid)
+    return sums
 
 
 def significance_map(
@@ -746,10 +777,12 @@ def segment_map(snr: np.ndarray, no_data: np.ndarray, *, threshold: float, min_p
     """
     from pipeline.stages.detect._find_jit import label_sorted, segment_bounds
 
-    above = snr > threshold
-    above[no_data] = False
-    where = np.flatnonzero(above)
-    del above
+    # The pixels above, less those without data: the same (increasing) flat
+    # indices as thresholding and clearing the no-data pixels in a plane,
+    # without the boolean-index pass over it (0.85 ms of CPU instead of 1.4
+    # ms on a 4109 x 1090 map, least of 3).
+    where = np.flatnonzero(snr > threshold)
+    where = where[~no_data.reshape(-1)[where]]
     # scipy's labels of the pixels above (int32, numbered in raster order),
     # from the pixels alone (label_sorted): scipy.ndimage.label visited the
     # whole plane, 11 ms of CPU a call on the benchmark night's stretches

@@ -365,8 +365,10 @@ def measure_groups(
         list(blended[index]) if blended is not None else [False] * len(members)
         for index, members in enumerate(groups)
     ]
+    # tuples of lists, not of generators: the same keys, ~2 ms of CPU fewer
+    # per unit of the benchmark night (four calls of ~1700 sources)
     keys = [
-        (shape, tuple((float(m[0]), float(m[1])) for m in members), tuple(split))
+        (shape, tuple([(float(m[0]), float(m[1])) for m in members]), tuple(split))
         for members, split in zip(groups, splits, strict=True)
     ]
     # What each source to fit needs from the whole stretch, looked up for all
@@ -410,7 +412,7 @@ def measure_groups(
                 # A refit that starts where this fit ended (or where it started)
                 # ends here again: later passes look the group up instead.
                 memo[key] = rows
-                fitted = tuple((float(r["x"]), float(r["y"])) for r in rows)
+                fitted = tuple([(float(r["x"]), float(r["y"])) for r in rows])
                 memo[(shape, fitted, tuple(split))] = rows
         got = memo[key] if memo is not None else rows
         all_rows.extend(got)
@@ -1023,26 +1025,48 @@ def _aperture_sums(residual, variance, no_data, x, y, radii):
     aperture sum of the variance plane.  Two ``aperture_photometry`` calls
     built each overlap grid twice and a table per call: 0.38 s of CPU for
     2800 sources and 3 radii on the 4096 x 4096 benchmark stretch.
+
+    The boxes and their pixels' edges are found for all sources at once
+    (the same floor, ceiling and differences of the same double-precision
+    values as per source in Python) and each source's sums are the same
+    matrix products as before: the same values, with ~4 us of Python per
+    source fewer (27 ms of CPU instead of 33 ms for the 1733 sources of the
+    benchmark night's stretch 5, least of 5).
     """
+    from photutils.geometry import circular_overlap_grid
+
     ny, nx = residual.shape
     rmax = float(max(radii))
+    radii = [float(r) for r in radii]
     sums = np.zeros((len(x), len(radii)))
     variances = np.zeros((len(x), len(radii)))
     missing = bool(no_data.any())
-    # Python floats: the same values, without numpy's scalar arithmetic per source
-    xs, ys = np.asarray(x, dtype=float).tolist(), np.asarray(y, dtype=float).tolist()
-    for i, (xc, yc) in enumerate(zip(xs, ys, strict=True)):
-        # photutils' bounding box of the largest aperture (pixel centres at integers)
-        x0, x1 = math.floor(xc - rmax + 0.5), math.ceil(xc + rmax + 0.5)
-        y0, y1 = math.floor(yc - rmax + 0.5), math.ceil(yc + rmax + 0.5)
-        a0, a1, b0, b1 = max(x0, 0), min(x1, nx), max(y0, 0), min(y1, ny)
-        if a1 <= a0 or b1 <= b0:
+    xs, ys = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    if not (np.isfinite(xs).all() and np.isfinite(ys).all()):
+        raise ValueError("aperture positions must be finite; got NaN or inf in x or y.")
+    # photutils' bounding box of the largest aperture (pixel centres at
+    # integers), cut by the image's edges, and its pixels' edges about the
+    # centre (:func:`_overlap_weights`' arithmetic)
+    a0 = np.maximum(np.floor(xs - rmax + 0.5), 0).astype(np.int64)
+    a1 = np.minimum(np.ceil(xs + rmax + 0.5), nx).astype(np.int64)
+    b0 = np.maximum(np.floor(ys - rmax + 0.5), 0).astype(np.int64)
+    b1 = np.minimum(np.ceil(ys + rmax + 0.5), ny).astype(np.int64)
+    boxes = zip(
+        b0.tolist(), b1.tolist(), a0.tolist(), a1.tolist(),
+        (a0 - 0.5 - xs).tolist(), (a1 - 0.5 - xs).tolist(),
+        (b0 - 0.5 - ys).tolist(), (b1 - 0.5 - ys).tolist(),
+        strict=True,
+    )  # fmt: skip
+    for i, (y0, y1, x0, x1, *edges) in enumerate(boxes):
+        if x1 <= x0 or y1 <= y0:
             continue
-        weights = _overlap_weights(xc, yc, (b0, b1, a0, a1), radii)
-        data = residual[b0:b1, a0:a1]
-        var = variance[b0:b1, a0:a1]
+        weights = np.array(
+            [circular_overlap_grid(*edges, x1 - x0, y1 - y0, r, 1, 1).ravel() for r in radii]
+        )
+        data = residual[y0:y1, x0:x1]
+        var = variance[y0:y1, x0:x1]
         # no-data pixels as 0 (most cutouts have none: two np.where spared)
-        if missing and (gone := no_data[b0:b1, a0:a1]).any():
+        if missing and (gone := no_data[y0:y1, x0:x1]).any():
             data = np.where(gone, 0.0, data)
             var = np.where(gone, 0.0, var)
         sums[i] = weights @ data.ravel()
@@ -1085,23 +1109,26 @@ def aperture_corrections(
     from pipeline.stages.detect._model import model_image
 
     n = len(kernels)
-    out = np.empty((n, len(radii)))
+    if n == 0:
+        return np.empty((0, len(radii)))
     rmax = max(radii)
     bins = np.floor(np.asarray(y, dtype=float) / step).astype(int)
-    done: dict[int, np.ndarray] = {}
-    for i in range(n):
-        if bins[i] not in done:
-            dx, dy = kernels[i]
-            hx = int(np.ceil(rmax + 4 * profile.fwhm + np.max(np.abs(dx))))
-            hy = int(np.ceil(rmax + 4 * profile.fwhm + np.max(np.abs(dy))))
-            # The stamp's pixels differ from the image's by whole pixels: the
-            # lattice offsets hold on it as they are.
-            resp = None if responses is None else responses[i]
-            unit = model_image((2 * hy + 1, 2 * hx + 1), hx, hy, dx, dy, profile, response=resp)
-            # photutils' bounding box of the largest aperture, inside the stamp
-            y0, x0 = int(np.floor(hy - rmax + 0.5)), int(np.floor(hx - rmax + 0.5))
-            y1, x1 = int(np.ceil(hy + rmax + 0.5)), int(np.ceil(hx + rmax + 0.5))
-            weights = _overlap_weights(hx, hy, (y0, y1, x0, x1), radii)
-            done[bins[i]] = 1.0 / (weights @ unit[y0:y1, x0:x1].ravel())
-        out[i] = done[bins[i]]
-    return out
+    # The first source of each bin (np.unique's first occurrences) and each
+    # source's bin: the rows of the bins' corrections are gathered at the
+    # end, not looked up and set source by source (the same values).
+    _, first, inverse = np.unique(bins, return_index=True, return_inverse=True)
+    done = np.empty((first.size, len(radii)))
+    for b, i in enumerate(first.tolist()):
+        dx, dy = kernels[i]
+        hx = int(np.ceil(rmax + 4 * profile.fwhm + np.max(np.abs(dx))))
+        hy = int(np.ceil(rmax + 4 * profile.fwhm + np.max(np.abs(dy))))
+        # The stamp's pixels differ from the image's by whole pixels: the
+        # lattice offsets hold on it as they are.
+        resp = None if responses is None else responses[i]
+        unit = model_image((2 * hy + 1, 2 * hx + 1), hx, hy, dx, dy, profile, response=resp)
+        # photutils' bounding box of the largest aperture, inside the stamp
+        y0, x0 = int(np.floor(hy - rmax + 0.5)), int(np.floor(hx - rmax + 0.5))
+        y1, x1 = int(np.ceil(hy + rmax + 0.5)), int(np.ceil(hx + rmax + 0.5))
+        weights = _overlap_weights(hx, hy, (y0, y1, x0, x1), radii)
+        done[b] = 1.0 / (weights @ unit[y0:y1, x0:x1].ravel())
+    return done[inverse.reshape(-1)]

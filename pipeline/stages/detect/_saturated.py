@@ -17,6 +17,7 @@ the clipped pixels) is lost; it could not be measured there anyway.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -55,6 +56,32 @@ class Footprints:
     labels: np.ndarray
     slices: list
     clipped: np.ndarray
+
+    @functools.cached_property
+    def clipped_index(self) -> np.ndarray:
+        """Flat (row-major) indices of :attr:`clipped`'s pixels, increasing.
+
+        ``plane.reshape(-1)[clipped_index]`` is ``plane[clipped]`` for a
+        C-contiguous plane of the same shape, in the same order: a few
+        thousand pixels looked up instead of a boolean plane read (0.02 ms
+        instead of 0.7 ms on a 4109 x 1090 stretch with 18 000 clipped
+        pixels; detect reads or sets them five times per unit).  Found once
+        (0.6 ms), on first use.
+        """
+        return np.flatnonzero(self.clipped)
+
+    def take(self, plane: np.ndarray) -> np.ndarray:
+        """``plane[self.clipped]``: the clipped pixels' values, in row-major order."""
+        if plane.flags.c_contiguous and plane.shape == self.clipped.shape:
+            return plane.reshape(-1)[self.clipped_index]
+        return plane[self.clipped]
+
+    def put(self, plane: np.ndarray, values) -> None:
+        """``plane[self.clipped] = values`` (``plane`` changed in place)."""
+        if plane.flags.c_contiguous and plane.shape == self.clipped.shape:
+            plane.reshape(-1)[self.clipped_index] = values
+        else:
+            plane[self.clipped] = values
 
     def at(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
         """Footprint number under each position (0: none), pixels (zero-based)."""
@@ -123,7 +150,8 @@ def dilate_sparse(pixels: np.ndarray, structure: np.ndarray) -> np.ndarray:
     night's stretch 5 (4109 x 1090 pixels, 18 000 saturated and bleed
     pixels, a disk of radius 3) 0.018 s of CPU with a dilation of each
     64 x 64 tile that held some (which had replaced 0.07 s for the whole
-    image on a crowded 1035 x 4096 stretch), 0.009 s here.
+    image on a crowded 1035 x 4096 stretch), 0.009 s here, ~0.004 s with
+    the set pixels found by ``flatnonzero``.
 
     Parameters
     ----------
@@ -137,7 +165,11 @@ def dilate_sparse(pixels: np.ndarray, structure: np.ndarray) -> np.ndarray:
     ny, nx = pixels.shape
     ry, rx = structure.shape[0] // 2, structure.shape[1] // 2
     out = np.zeros(pixels.shape, dtype=bool)
-    ys, xs = np.nonzero(pixels)
+    # The set pixels' rows and columns from their flat indices: the same
+    # (row-major) coordinates as ``np.nonzero(pixels)``, whose 2-D path took
+    # 5.7 ms of CPU on a 4109 x 1090 plane holding 18 000 set pixels, where
+    # ``flatnonzero`` and a division take 0.75 ms (least of 3).
+    ys, xs = np.divmod(np.flatnonzero(pixels), nx)
     for dy, dx in zip(*np.nonzero(structure), strict=True):
         y, x = ys + (int(dy) - ry), xs + (int(dx) - rx)
         inside = (y >= 0) & (y < ny) & (x >= 0) & (x < nx)
