@@ -29,7 +29,9 @@ stopping the batch.
   one BLAS thread each unless the run's environment sets the count
   (:data:`WORKER_THREAD_LIMITS`), and so do the units a run computes in its
   own process (here and ``serial``, :func:`threads_of_a_worker`): a product
-  does not depend on the process that made it.
+  does not depend on the process that made it.  A worker keeps its
+  per-stretch units' large blocks in its heap for the next unit
+  (:func:`pipeline.runner._heap.keep_large_blocks`).
 * ``dask``: a :class:`distributed.Client` connected to ``run.scheduler``, or,
   without a scheduler address, to a ``distributed.LocalCluster`` of
   ``run.workers`` processes started for the run.  Workers must see the same
