@@ -170,6 +170,11 @@ def fit_transparency(
     # unknowns: the clear-sky ratio k and the loss spline e >= 0 (T = 1 - B e / k):
     # ratio = k - design @ e, linear, with the loss bounded below by zero
     system = np.column_stack([np.ones(flux.size), -design])
+    # Each (stars x coefficients) array is ~19 MB on the 4096-column benchmark
+    # night (~40,000 matched stars), and the factorisation below is where its
+    # astrometry, and the process tree, peaked: the design and the weighted
+    # system are dropped once used.
+    del design
     # a light prior on the loss, each a thousandth of the data's weight per
     # coefficient: its first differences (smooth where the stars cannot tell)
     # and its size (no loss the fluxes do not need: a clear sky is the prior;
@@ -187,8 +192,12 @@ def fit_transparency(
         # The same bounded least squares on the triangle of a QR factorisation
         # (||A x - b||^2 = ||R x - Q^T b||^2 + const): one factorisation of the
         # stars' rows instead of one per solver step.
-        q, r = np.linalg.qr(np.vstack([weighted, rows]))
+        stacked = np.vstack([weighted, rows])
+        del weighted  # not held through the factorisation, the fit's peak
+        q, r = np.linalg.qr(stacked)
+        del stacked  # nor these two through the bounded solve (19 MB of the unit's peak)
         target = q.T @ np.r_[w * ratio, np.zeros(prior.shape[0])]
+        del q
         solution = lsq_linear(r, target, bounds=bounds).x
         model = system @ solution
         pull = (ratio - model) / (sigma * scale)
