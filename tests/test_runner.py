@@ -988,12 +988,12 @@ def test_a_worker_returns_its_free_heap_memory_once_idle_not_after_each_unit(mon
 #: A fresh process: where a 40 MB block comes from (the heap, or a mapping of its
 #: own) with glibc's defaults, once large blocks are kept, around a night-wide
 #: unit, and the page faults of five allocations of such a plane (4 kB pages:
-#: numpy's huge-page advice off, so that each page counts).
+#: numpy's huge-page advice off through its documented NUMPY_MADVISE_HUGEPAGE
+#: variable, so that each page counts).
 _HEAP_PROBE = """
 import resource
 import numpy as np
 import pipeline.runner._heap as heap
-np._core.multiarray._set_madvise_hugepage(False)
 
 def in_heap():
     address = np.ones(40 * 2**20 // 8).ctypes.data  # freed on return
@@ -1030,7 +1030,11 @@ def test_a_pool_worker_keeps_large_blocks_in_its_heap_but_not_in_night_wide_unit
     blocks in its heap for the next unit, except while a night-wide unit runs (the
     tree's memory peaked there).  In a fresh process: the settings are the process's."""
     out = subprocess.run(
-        [sys.executable, "-c", _HEAP_PROBE], capture_output=True, text=True, check=True
+        [sys.executable, "-c", _HEAP_PROBE],
+        capture_output=True,
+        text=True,
+        check=True,
+        env={**os.environ, "NUMPY_MADVISE_HUGEPAGE": "0"},
     ).stdout.split()
     # in the heap: by default, once kept (and the settings taken), in a night-wide
     # unit, after it
