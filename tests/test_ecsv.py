@@ -384,3 +384,45 @@ def test_the_header_read_by_libyaml_is_astropy_s(tmp_path, monkeypatch):
     assert_same_table(ours, theirs)
     assert repr(ours.meta) == repr(theirs.meta)
     assert list(ours.meta["nested"]) == ["b", "a"]
+
+
+def _awkward_meta_table() -> QTable:
+    """A table whose header holds what YAML emitters quote, escape, fold or alias
+    differently if they differ at all (common practice of YAML: quoting of
+    strings that read as other types, escapes of non-ASCII text, line folding)."""
+    table = _catalogue_like(5)
+    shared = [1, 2, 3]
+    table.meta["site"] = 'Sierra de Prueba, 1350 m — "north" pier'
+    table.meta["long"] = " ".join(f"word{i}" for i in range(80))  # past the 130 columns
+    table.meta["lines"] = "first line\nsecond line\n"
+    table.meta["looks_like"] = ["yes", "no", "null", "1.5", "0x1f", "~", "", " padded ", "a: b"]
+    table.meta["specials"] = [float("nan"), float("inf"), -float("inf"), 1e17, 1e-7, -0.0]
+    table.meta["same_list_twice"] = OrderedDict(a=shared, b=shared)
+    table.meta["odd keys"] = {"with space": 1, "3": "three", "key: colon": [True, None]}
+    table.meta["limit"] = 3.5 * u.arcsec
+    table["x"].info.meta = OrderedDict(z=1, y="two", tab="a\tb", ctrl="bell\x07")
+    table["snr"].info.description = "signal-to-noise: 'peak' / sigma, # not a comment"
+    return table
+
+
+def test_the_header_written_by_libyaml_is_astropy_s():
+    """The fast writer emits the header's YAML with libyaml and astropy's
+    representers: the same lines as astropy's writer (and not a fallback to
+    it), for the stages' tables and for meta that YAML emitters treat
+    specially."""
+    import yaml
+
+    if not yaml.__with_libyaml__:
+        pytest.skip("PyYAML without libyaml: astropy's emitter is used")
+    tables = [
+        _catalogue_like(20),
+        _awkward_meta_table(),
+        QTable({"dx": np.linspace(-3, 3, 640).reshape(10, 64) * u.pix}),
+        Table({"a": [1, 2]}, meta={"empty": {}, "none": None, "tuple": (1, "a")}),
+    ]
+    for table in tables:
+        lines = _ecsv._header_lines(table[:0])
+        assert lines is not None  # libyaml wrote it
+        theirs = io.StringIO()
+        table[:0].write(theirs, format="ascii.ecsv")
+        assert "\n".join(lines) + "\n" == theirs.getvalue().replace("\r\n", "\n")

@@ -29,9 +29,12 @@ astropy's own header reader and outputter.
 
 A night catalogue (from :data:`THREADED_VALUES` values) is printed and joined
 on two threads, half of its columns, then half of its rows each (the
-night-wide stages that write it run while the pool's other worker idles);
-the header's YAML is read by libyaml's parser with astropy's constructors
-(:func:`_get_cols`), astropy's pure-Python parser taking ~13 ms a header.
+night-wide stages that write it run while the pool's other worker idles).
+The header's YAML is read by libyaml's parser with astropy's constructors
+(:func:`_get_cols`), astropy's pure-Python parser taking ~13 ms a header,
+and written by libyaml's emitter with astropy's representers
+(:func:`_header_lines`), PyYAML's pure-Python emitter taking about half of
+the 35 ms a detect catalogue's header took to write.
 
 Anything else (string, masked, object or matrix columns, boolean vectors, a comma delimiter,
 comments, blank lines or quotes among the rows) goes to astropy unchanged, so
@@ -113,17 +116,123 @@ def write_ecsv(table: Table, path: Path) -> None:
     if texts is None:
         table.write(path, format="ascii.ecsv", overwrite=True)
         return
-    header = io.StringIO()
-    table[:0].write(header, format="ascii.ecsv")
+    header = _header_text(table)
     # astropy opens the file the same way: the locale's encoding, no newline
     # translation (its line ends are os.linesep already).  The rows are ASCII,
     # the same bytes in any encoding that extends it.
     with open(path, "w", newline="") as stream:
-        stream.write(header.getvalue())
+        stream.write(header)
         if len(table):
             stream.flush()
             for rows in _joined_rows(texts):
                 stream.buffer.write(rows)
+
+
+def _header_text(table: Table) -> str:
+    """The header astropy's ECSV writer writes for ``table``: what it writes for
+    the table's first zero rows, each line ended by ``os.linesep``."""
+    empty = table[:0]
+    lines = _header_lines(empty)
+    if lines is not None:
+        return os.linesep.join(lines) + os.linesep
+    stream = io.StringIO()
+    empty.write(stream, format="ascii.ecsv")
+    return stream.getvalue()
+
+
+def _header_lines(table: Table) -> list[str] | None:
+    """The lines astropy's ECSV writer writes for ``table``, its YAML emitted by
+    libyaml; None where PyYAML has no libyaml or astropy no longer looks the
+    emitter up as this expects, or where the write raised (astropy's own write
+    then gives the error, in its words).
+
+    astropy's ``ascii.write`` hands its writer a shallow copy of the table and
+    joins the lines it returns; here the writer is astropy's ECSV writer with
+    the header's ``write`` bound to :func:`_libyaml_header_yaml` (see
+    :func:`_libyaml_writer`), made as ``ascii.write`` makes it.
+    """
+    writer_class = _libyaml_writer()
+    if writer_class is None:
+        return None
+    from astropy.io.ascii import core as ascii_core
+
+    try:
+        writer = ascii_core._get_writer(writer_class, False, strip_whitespace=True)
+        return writer.write(table.__class__(table, copy=False))
+    except Exception:
+        return None
+
+
+@functools.cache
+def _libyaml_writer() -> type | None:
+    """astropy's ECSV writer, its header's YAML emitted by libyaml (see :func:`_header_lines`).
+
+    The header's ``write`` is astropy's ``EcsvHeader.write`` (its code,
+    defaults and closure) with the name ``meta`` bound to a namespace whose
+    ``get_yaml_from_header`` is astropy's with the name ``yaml`` bound to
+    PyYAML with :func:`_libyaml_dump` for ``dump``: astropy's table dumper,
+    representers and resolver, libyaml's emitter (the C library PyYAML's own
+    emitter was ported from, ~10x faster).  A test compares the bytes with
+    astropy's for the stages' tables and for meta with quotes, non-ASCII
+    text, long lines, nested and repeated values.  None when PyYAML has no
+    libyaml, or either function no longer looks the name up.
+    """
+    from astropy.io.ascii.ecsv import Ecsv, EcsvHeader
+
+    write, to_yaml = EcsvHeader.write, table_meta.get_yaml_from_header
+    if not yaml.__with_libyaml__ or "meta" not in write.__code__.co_names:
+        return None
+    if "yaml" not in to_yaml.__code__.co_names:
+        return None
+    libyaml = types.SimpleNamespace(**vars(yaml))
+    libyaml.dump = _libyaml_dump
+    meta = types.SimpleNamespace(get_yaml_from_header=_with_names(to_yaml, yaml=libyaml))
+    header = type("_LibyamlEcsvHeader", (EcsvHeader,), {"write": _with_names(write, meta=meta)})
+    # no ``_format_name``: astropy's registry of formats is left as it is
+    return type("_LibyamlEcsv", (Ecsv,), {"header_class": header})
+
+
+def _libyaml_dump(data, stream=None, Dumper=yaml.Dumper, **kwds):
+    """``yaml.dump`` through libyaml's emitter, with ``Dumper``'s representers and resolver."""
+    from yaml._yaml import CEmitter
+    from yaml.representer import BaseRepresenter
+    from yaml.resolver import BaseResolver
+
+    class LibyamlDumper(CEmitter, Dumper):
+        """libyaml's emitter and serializer, ``Dumper``'s representers and resolver
+        (as PyYAML's ``CSafeDumper`` combines them with the safe ones)."""
+
+        def __init__(
+            self, stream, default_style=None, default_flow_style=False, canonical=None,
+            indent=None, width=None, allow_unicode=None, line_break=None, encoding=None,
+            explicit_start=None, explicit_end=None, version=None, tags=None, sort_keys=True,
+        ):  # fmt: skip
+            CEmitter.__init__(
+                self, stream, canonical=canonical, indent=indent, width=width,
+                encoding=encoding, allow_unicode=allow_unicode, line_break=line_break,
+                explicit_start=explicit_start, explicit_end=explicit_end, version=version,
+                tags=tags,
+            )  # fmt: skip
+            BaseRepresenter.__init__(
+                self, default_style=default_style, default_flow_style=default_flow_style,
+                sort_keys=sort_keys,
+            )  # fmt: skip
+            BaseResolver.__init__(self)
+
+    return yaml.dump(data, stream, Dumper=LibyamlDumper, **kwds)
+
+
+def _with_names(function: types.FunctionType, **names) -> types.FunctionType:
+    """``function`` (its code, defaults and closure) with global ``names`` bound anew."""
+    rebound = types.FunctionType(
+        function.__code__,
+        dict(function.__globals__, **names),
+        function.__name__,
+        function.__defaults__,
+        function.__closure__,
+    )
+    rebound.__kwdefaults__ = function.__kwdefaults__
+    return rebound
 
 
 def _joined_rows(texts: list) -> list:
@@ -385,10 +494,7 @@ def _get_cols():
     original = EcsvHeader.get_cols
     if not yaml.__with_libyaml__ or "meta" not in original.__code__.co_names:
         return original
-    namespace = dict(original.__globals__, meta=_LibyamlMeta)
-    return types.FunctionType(
-        original.__code__, namespace, original.__name__, original.__defaults__, original.__closure__
-    )
+    return _with_names(original, meta=_LibyamlMeta)
 
 
 class _LibyamlMeta:
