@@ -48,6 +48,7 @@ import io
 import json
 import os
 import re
+import string
 import textwrap
 import types
 from pathlib import Path
@@ -72,11 +73,13 @@ _FAST_DATATYPES = frozenset(
     + [f"{sign}int{bits}" for sign in ("", "u") for bits in (8, 16, 32, 64)]
 )
 
-#: What the rows of such a file are made of: numbers (``1.5e-05``, ``nan``,
-#: ``-inf``), ``True``/``False``, vectors (``[1.5,NaN]``), single spaces and
-#: newlines.  Anything else (quotes, tabs, ``#`` comment lines, carriage
-#: returns) is astropy's to read.
-_PLAIN_ROWS = re.compile(r"[0-9A-Za-z.+\-,\[\] \n]*")
+#: The bytes the rows of such a file are made of: numbers (``1.5e-05``,
+#: ``nan``, ``-inf``), ``True``/``False``, vectors (``[1.5,NaN]``), single
+#: spaces and newlines.  Anything else (quotes, tabs, ``#`` comment lines,
+#: non-ASCII text) is astropy's to read.  Checked by deleting these bytes
+#: from the rows (``bytes.translate``; a regular expression took 11 ms of the
+#: 52 ms a column statistics table of the 4096-column night took to read).
+_PLAIN_BYTES = (string.digits + string.ascii_letters + ".+-,[] \n").encode("ascii")
 
 #: A column of strings, objects or matrices in the header: ``datatype: string``
 #: not followed by the subtype of a vector of numbers (``'float32[4096]'``).
@@ -99,7 +102,7 @@ _JSON_NUMBER = r"^(?:-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?|NaN|-?
 _JSON_NUMBER_LIST = rf"^\[{_JSON_NUMBER[1:-1]}(?:,{_JSON_NUMBER[1:-1]})*\]$"
 
 #: The header: the lines from the start that begin with ``#``.
-_HEADER = re.compile(r"(?:#[^\n]*\n)*")
+_HEADER = re.compile(rb"(?:#[^\n]*\n)*")
 
 
 def write_ecsv(table: Table, path: Path) -> None:
@@ -430,28 +433,38 @@ def read_ecsv(path: Path, cls: type[Table] = Table) -> Table:
         The table, with the same columns, values, dtypes, units, descriptions,
         formats and meta as astropy's reader gives.
     """
-    with open(path) as stream:  # the locale's encoding, as astropy's reader
-        text = stream.read()
-    table = _read_plain(text)
+    table = _read_plain(Path(path).read_bytes())
     if table is None:
         return cls.read(path, format="ascii.ecsv")
     return table if type(table) is cls else cls(table, copy=False)
 
 
-def _read_plain(text: str) -> Table | None:
-    """The table in ``text`` if the fast path can read it, else None."""
-    names_start = _HEADER.match(text).end()
-    names_end = text.find("\n", names_start)
+def _read_plain(data: bytes) -> Table | None:
+    """The table in a file's bytes ``data`` if the fast path can read it, else None.
+
+    The header is decoded as astropy's reader opens the file (the locale's
+    encoding, universal newlines); the rows, plain ASCII if the fast path
+    reads them, are parsed as bytes, each line end made a newline as text
+    mode makes it.
+    """
+    names_start = _HEADER.match(data).end()
+    names_end = data.find(b"\n", names_start)
     if names_start == 0 or names_end < 0:
         return None
-    if _OTHER_COLUMNS.search(text, 0, names_start):
-        return None  # found before the YAML is parsed: astropy reads such files alone
-    body = text[names_end + 1 :]
-    if not _PLAIN_ROWS.fullmatch(body):
+    body = data[names_end + 1 :]
+    if b"\r" in body:  # universal newlines, as astropy's reader sees the rows
+        body = body.replace(b"\r\n", b"\n").replace(b"\r", b"\n")
+    if body.translate(None, _PLAIN_BYTES):
         return None
+    try:
+        header = io.TextIOWrapper(io.BytesIO(data[: names_end + 1])).read()
+    except UnicodeDecodeError:
+        return None  # astropy's reader says what is wrong with it
+    if _OTHER_COLUMNS.search(header):
+        return None  # found before the YAML is parsed: astropy reads such files alone
     reader = Ecsv()
     try:
-        _get_cols()(reader.header, text[:names_end].splitlines())
+        _get_cols()(reader.header, header.splitlines())
     except Exception:  # astropy's own read gives the error, in its words
         return None
     columns = reader.header.cols
@@ -542,7 +555,7 @@ def _vector_length(column) -> int:
     return -1
 
 
-def _parse_rows(body: str, dtypes: list[np.dtype], lengths: list[int]) -> list[np.ndarray]:
+def _parse_rows(body: bytes, dtypes: list[np.dtype], lengths: list[int]) -> list[np.ndarray]:
     """The columns of space-separated rows, parsed as astropy's converters do.
 
     Floats are read as float64 (correctly rounded, as ``numpy.array(texts,
@@ -565,7 +578,7 @@ def _parse_rows(body: str, dtypes: list[np.dtype], lengths: list[int]) -> list[n
     # that read a product exits, got the process killed by the C++ runtime now
     # and then (and a worker computes on one thread by design).
     table = pa_csv.read_csv(
-        io.BytesIO(body.encode("ascii")),
+        io.BytesIO(body),
         read_options=pa_csv.ReadOptions(column_names=names, use_threads=False),
         parse_options=pa_csv.ParseOptions(
             delimiter=" ", quote_char=False, escape_char=False, ignore_empty_lines=False
