@@ -4,6 +4,13 @@ A night-wide stage runs on one worker while the pool's other core idles:
 numpy's loops, compiled loops and pyarrow's kernels release the GIL, so
 half of such work can go to a second thread (:func:`in_two_threads`), or
 to a thread kept for the process (:class:`DaemonHelper`).
+
+A per-stretch unit shares its work only while a core is idle
+(:func:`spare_cores`): the last units of a flow, with the pool's other
+worker waiting for them, and a night of one stretch, whose units run in
+the run's own process.  Whoever runs the units says how many cores are
+idle (:func:`report_spare_cores`); a stage run by anything else (a script,
+a test) is told none.
 """
 
 from __future__ import annotations
@@ -11,9 +18,34 @@ from __future__ import annotations
 import os
 import queue
 import threading
+from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 
-__all__ = ["DaemonHelper", "in_two_threads", "n_cpus"]
+__all__ = ["DaemonHelper", "in_two_threads", "n_cpus", "report_spare_cores", "spare_cores"]
+
+#: What :func:`spare_cores` asks (see :func:`report_spare_cores`).
+_SPARE: list[Callable[[], int]] = [lambda: 0]
+
+
+def spare_cores() -> int:
+    """Cores that no unit of the run computes on right now, besides this thread's.
+
+    0 unless whoever runs the units said otherwise (:func:`report_spare_cores`).
+    A unit may then share work that releases the GIL with a thread; its
+    results must not depend on it.
+    """
+    return max(int(_SPARE[0]()), 0)
+
+
+def report_spare_cores(source: Callable[[], int] | None) -> None:
+    """Make :func:`spare_cores` ask ``source()`` (None: report none).
+
+    Called by the runner in the processes it runs units in: a pool worker
+    reads what the run publishes as its workers take and finish units, the
+    run's own process reports every other core while it computes a unit
+    alone.
+    """
+    _SPARE[0] = source if source is not None else (lambda: 0)
 
 
 def n_cpus() -> int:

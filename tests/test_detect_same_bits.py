@@ -178,3 +178,47 @@ def test_aperture_corrections_are_each_bins_first_source():
     assert len(set(map(tuple, expected.tolist()))) == len(done) == 4
     _same_bits(ours, expected)
     assert _measure.aperture_corrections([], np.zeros(0), profile, radii).shape == (0, 3)
+
+
+def test_joint_fits_shared_with_a_thread_give_the_same_catalogue(monkeypatch):
+    """While a core is idle (the last units of a flow, a night of one stretch)
+    the joint fits of the groups are split between two threads
+    (``_measure.fit_groups``); each group is fitted on its own, so the
+    catalogue is the same, to the bit, as with one call."""
+    from pipeline import _threads
+    from pipeline.stages.detect import _measure_jit, detect
+    from tests._detect_scene import render_scene
+
+    rng = np.random.default_rng(21)
+    # 40 pairs of stars 1.4 FWHM apart: each pair is fitted jointly
+    x0, y0 = rng.uniform(40, 980, 40), rng.uniform(40, 470, 40)
+    x, y = np.r_[x0, x0 + 4.5], np.r_[y0, y0 + 1.0]
+    scene = render_scene(x, y, 2e4, shape=(512, 1024), seed=4)
+    calls = []
+    compiled = _measure_jit.fit_groups_compiled
+
+    def spy(*args):
+        calls.append(args[3].shape[0])  # the groups it fits
+        return compiled(*args)
+
+    monkeypatch.setattr(_measure_jit, "fit_groups_compiled", spy)
+
+    def catalogue():
+        result = detect(scene.image, scene.variance, scene.mask, scene.kernels, fwhm_guess=3.2)
+        return result.catalog
+
+    alone = catalogue()
+    one_call = list(calls)
+    assert max(one_call) >= _measure.SHARED_GROUPS  # enough groups to share
+    calls.clear()
+    _threads.report_spare_cores(lambda: 1)
+    try:
+        shared = catalogue()
+    finally:
+        _threads.report_spare_cores(None)
+    # each call of enough groups made in two, of the same groups in all
+    assert len(calls) > len(one_call)
+    assert sum(calls) == sum(one_call)
+    assert alone.colnames == shared.colnames and len(alone) == len(shared) > 70
+    for name in alone.colnames:
+        _same_bits(np.asarray(alone[name]), np.asarray(shared[name]))

@@ -1855,6 +1855,44 @@ def test_units_computed_in_this_process_use_a_workers_blas_threads(monkeypatch, 
         assert _blas_threads(None) == {2}
 
 
+def _spare_cores(task: tuple) -> tuple[int, int]:
+    """:func:`pipeline._threads.spare_cores` once the unit ``other`` runs too (both have
+    left a file in ``folder``; None: at once), and again ``linger`` seconds later."""
+    from pipeline._threads import spare_cores
+
+    folder, name, other, linger = task
+    if other is not None:
+        (folder / name).touch()
+        deadline = time.monotonic() + 120
+        while not (folder / other).exists() and time.monotonic() < deadline:
+            time.sleep(0.01)
+    first = spare_cores()
+    time.sleep(linger)
+    return first, spare_cores()
+
+
+def test_units_are_told_which_cores_the_run_leaves_idle(monkeypatch, tmp_path) -> None:
+    """A unit may share its work with a thread while a core is idle: the run's
+    own process computing a unit alone has every other core; a pool worker
+    sees the cores the run's other workers leave idle, as they take and finish
+    units; a stage run outside a run (or on dask) is told none."""
+    from pipeline import _threads
+
+    monkeypatch.setattr(_executors, "n_cpus", lambda: 4)  # the run's view of the machine
+    assert _threads.spare_cores() == 0
+    alone = (tmp_path, "a", None, 0.0)
+    assert list(_executors.Executor().map(_spare_cores, [alone], None)) == [(3, 3)]
+    assert _threads.spare_cores() == 0
+    with _executors.LocalPoolExecutor(2) as executor:
+        seen = []
+        executor.flow(_spare_cores, [alone], None, lambda out: seen.append(out) or [])
+        assert seen == [(3, 3)]
+        # two units at once, the two workers busy (4 - 2 cores idle); the short
+        # one ends, and the long one's worker then sees a third core idle
+        pair = [(tmp_path, "short", "long", 0.0), (tmp_path, "long", "short", 1.5)]
+        assert list(executor.map(_spare_cores, pair, None)) == [(2, 2), (2, 3)]
+
+
 def test_idle_workers_of_the_runs_own_cluster_are_ended_and_not_started_again() -> None:
     """Closing the cluster would wait up to 4 s for each worker to exit; the run
     kills its idle workers instead, and their nannies must not start them again."""

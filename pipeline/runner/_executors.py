@@ -82,6 +82,7 @@ from concurrent.futures.process import BrokenProcessPool
 from typing import Any
 
 from pipeline._offline import configure_offline
+from pipeline._threads import n_cpus, report_spare_cores
 from pipeline.config import RunSection
 from pipeline.runner._heap import keep_large_blocks
 from pipeline.runner._warm import start_warming
@@ -294,7 +295,7 @@ def prepare_worker(modules: Sequence[str], plan: WarmPlan) -> None:
     start_warming(plan, settle=True)
 
 
-def _start_worker(parent_pid: int, modules: Sequence[str], plan: WarmPlan = ()) -> None:
+def _start_worker(parent_pid: int, modules: Sequence[str], plan: WarmPlan = (), spare=None) -> None:
     """Initializer of a pool worker: end with the run, keep large blocks, :func:`prepare_worker`.
 
     The worker's heap keeps the blocks of its units' planes for reuse
@@ -302,16 +303,29 @@ def _start_worker(parent_pid: int, modules: Sequence[str], plan: WarmPlan = ()) 
     workers of a dask cluster, whose scheduler and nannies leave no room for
     it in the process tree's memory: there it made the long benchmark night
     1.03x faster and the tree peak at 1.54-1.57 GB RSS instead of 1.50-1.52.
+    ``spare``: the shared integer in which the run publishes the cores its
+    workers leave idle (:meth:`LocalPoolExecutor._units_at_work`), what the
+    worker's units see as :func:`pipeline._threads.spare_cores`.
     """
     end_with_parent(parent_pid)
     keep_large_blocks()
+    if spare is not None:
+        report_spare_cores(lambda: spare.value)
     prepare_worker(modules, plan)
 
 
 def _computed_here(fn: Callable[[Any], Outcome], task: Any) -> Outcome:
-    """``fn(task)`` in this process, with a worker's BLAS threads (:func:`threads_of_a_worker`)."""
-    with threads_of_a_worker():
-        return fn(task)
+    """``fn(task)`` in this process, with a worker's BLAS threads (:func:`threads_of_a_worker`).
+
+    The unit is the only one the run computes meanwhile: it may share its
+    work with every other core (:func:`pipeline._threads.spare_cores`).
+    """
+    report_spare_cores(lambda: n_cpus() - 1)
+    try:
+        with threads_of_a_worker():
+            return fn(task)
+    finally:
+        report_spare_cores(None)
 
 
 def _ready() -> None:
@@ -393,6 +407,11 @@ class LocalPoolExecutor(Executor):
         self._size = workers  # workers to start: at most ``workers``, see fit()
         self.remote = True  # False: one unit at a time, run in this process (fit())
         self._warming: threading.Thread | bool = False  # this process's warm-up (not remote)
+        # cores the workers leave idle, read by them, and the units at work per
+        # batch or flow of this process (nights may share the pool; _units_at_work)
+        self._spare = _SPAWN.RawValue("i", 0)
+        self._at_work: dict[object, int] = {}
+        self._at_work_lock = threading.Lock()
 
     def warm(self, modules: Sequence[str], plan: WarmPlan = ()) -> None:
         self._modules, self._plan = tuple(modules), tuple(plan)
@@ -444,15 +463,18 @@ class LocalPoolExecutor(Executor):
         futures = {self._start().submit(fn, task): task for task in tasks}
         self._futures = list(futures)
         broken = False
-        for future in as_completed(futures):
-            task = futures[future]
-            try:
-                yield task, future.result()
-            except BrokenProcessPool:
-                broken = True
-                yield task, _BROKEN
-            except Exception as exc:  # e.g. the task could not be pickled
-                yield task, on_error(task, f"{type(exc).__name__}: {exc}")
+        with self._units_at_work() as publish:
+            publish(len(futures))
+            for left, future in enumerate(as_completed(futures), 1):
+                publish(len(futures) - left)
+                task = futures[future]
+                try:
+                    yield task, future.result()
+                except BrokenProcessPool:
+                    broken = True
+                    yield task, _BROKEN
+                except Exception as exc:  # e.g. the task could not be pickled
+                    yield task, on_error(task, f"{type(exc).__name__}: {exc}")
         if broken:  # a broken pool accepts no more work; start afresh next time
             self.close()
 
@@ -462,6 +484,11 @@ class LocalPoolExecutor(Executor):
                 self._here()
             super().flow(fn, tasks, on_error, on_done, key)
             return
+        with self._units_at_work() as publish:
+            self._flow(fn, tasks, on_error, on_done, key, publish)
+
+    def _flow(self, fn, tasks, on_error, on_done, key, publish) -> None:
+        """:meth:`flow` on the pool; ``publish(n)``: ``n`` units are at work."""
         ready, pending, caught = list(tasks), {}, []
         while ready or pending or caught:
             if caught and not pending:  # the pool broke: each task it held again, alone
@@ -480,6 +507,7 @@ class LocalPoolExecutor(Executor):
                     continue
                 pending[self._start().submit(fn, task)] = task
             self._futures = list(pending)
+            publish(len(pending))
             if not pending:
                 continue
             done, _ = wait(pending, return_when=FIRST_COMPLETED)
@@ -496,6 +524,33 @@ class LocalPoolExecutor(Executor):
             if caught and not pending:  # a broken pool accepts no more work
                 self.close()
 
+    @contextlib.contextmanager
+    def _units_at_work(self) -> Iterator[Callable[[int], None]]:
+        """Within the block, ``publish(n)`` tells the workers that the block has
+        ``n`` units at work (none after it), and so how many cores they leave idle.
+
+        A unit's work shared with a thread (:func:`pipeline._threads.spare_cores`)
+        then fills the cores of the workers that wait for it: the last
+        stretches of a flow, with nothing else ready.  ``n`` counts the tasks
+        submitted and not yet done, at most a worker each (one may wait in the
+        queue, see :meth:`flow`), over the blocks of every night that shares
+        the pool.
+        """
+        block = object()
+
+        def publish(units: int) -> None:
+            with self._at_work_lock:
+                self._at_work[block] = units
+                busy = min(sum(self._at_work.values()), self._size)
+                self._spare.value = max(n_cpus() - busy, 0)
+
+        try:
+            yield publish
+        finally:
+            publish(0)
+            with self._at_work_lock:
+                self._at_work.pop(block, None)
+
     def _start(self) -> ProcessPoolExecutor:
         """The pool, started (all its workers at once) if it is not running."""
         with self._starting:
@@ -508,7 +563,7 @@ class LocalPoolExecutor(Executor):
                 max_workers=self._size,
                 mp_context=_SPAWN,
                 initializer=_start_worker,
-                initargs=(os.getpid(), self._modules, self._plan),
+                initargs=(os.getpid(), self._modules, self._plan, self._spare),
             )
             # The pool starts a worker per task submitted while none is idle:
             # start them all now, so that they import in parallel (a worker

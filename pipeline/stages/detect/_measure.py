@@ -568,6 +568,57 @@ def _row(start, fitted, flags, pair, box, kernel, response, profile, own_columns
     }
 
 
+#: Groups from which the joint fits are shared with a thread when a core is
+#: idle (see :func:`fit_groups`): fewer cost less than the thread's start.
+SHARED_GROUPS = 16
+
+
+def fit_groups(
+    residual, variance, mask, boxes, members, x, y, dx, dy, kernels, sigmas, weights,
+    responses, erf, gauss, noise_correlation,
+):  # fmt: skip
+    """``fit_groups_compiled`` of the groups; the later ones in a thread while a core is idle.
+
+    The compiled call releases the GIL and fits each group on its own, so
+    the groups split in two give the same numbers, bit for bit, in either
+    thread.  Shared only when :func:`pipeline._threads.spare_cores` reports
+    an idle core (a stretch's last units, with the pool's other worker
+    waiting; a night of one stretch), at the group where the stamps' pixels
+    times their stars (the fits' work, roughly) reach half of the total.
+    Arguments and results as ``fit_groups_compiled``'s.
+    """
+    from pipeline._threads import spare_cores
+    from pipeline.stages.detect._measure_jit import fit_groups_compiled
+
+    shared = (residual, variance, mask)
+    table = (sigmas, weights)
+    rest = (erf, gauss, noise_correlation)
+    n_groups = boxes.shape[0]
+    if n_groups < SHARED_GROUPS or spare_cores() < 1:
+        return fit_groups_compiled(
+            *shared, boxes, members, x, y, dx, dy, kernels, *table, responses, *rest
+        )
+    work = (boxes[:, 1] - boxes[:, 0]) * (boxes[:, 3] - boxes[:, 2]) * np.diff(members)
+    half = int(np.searchsorted(np.cumsum(work), work.sum() / 2.0)) + 1
+    half = min(max(half, 1), n_groups - 1)
+
+    def part(first: int, stop: int):
+        a, b = members[first], members[stop]
+        k0, k1 = kernels[a], kernels[b]
+        return fit_groups_compiled(
+            *shared, boxes[first:stop], members[first : stop + 1] - a, x[a:b], y[a:b],
+            dx[k0:k1], dy[k0:k1], kernels[a : b + 1] - k0, *table, responses[a:b], *rest,
+        )  # fmt: skip
+
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="detect-fits") as pool:
+        later = pool.submit(part, half, n_groups)
+        first = part(0, half)
+        second = later.result()
+    return tuple(np.concatenate([a, b]) for a, b in zip(first, second, strict=True))
+
+
 def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, options) -> dict:
     """Rows of the groups fitted jointly, by :func:`_measure_group`'s rules, in one compiled call.
 
@@ -577,7 +628,6 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
     whose fit met a singular step (the Python loop fits them again and
     reports it).
     """
-    from pipeline.stages.detect._measure_jit import fit_groups_compiled
     from pipeline.stages.detect._model import (
         _ERF_TABLE,
         _GAUSS_TABLE,
@@ -612,7 +662,7 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
                                   None, extents_i, owners, fwhm, options["footprints"])  # fmt: skip
     dx, dy, samples = _kernel_samples(kern)
     sigmas, weights = profile.mixture()
-    stars, quadrupoles, fits = fit_groups_compiled(
+    stars, quadrupoles, fits = fit_groups(
         residual,
         variance,
         mask,
