@@ -1856,17 +1856,23 @@ def test_units_computed_in_this_process_use_a_workers_blas_threads(monkeypatch, 
 
 
 def _spare_cores(task: tuple) -> tuple[int, int]:
-    """:func:`pipeline._threads.spare_cores` once the unit ``other`` runs too (both have
-    left a file in ``folder``; None: at once), and again ``linger`` seconds later."""
+    """:func:`pipeline._threads.spare_cores` while the unit ``other`` runs too (None:
+    alone), and again ``linger`` seconds after both have read it."""
     from pipeline._threads import spare_cores
 
     folder, name, other, linger = task
-    if other is not None:
-        (folder / name).touch()
+
+    def meet(step: str) -> None:  # leave a file, wait for the other unit's
+        if other is None:
+            return
+        (folder / f"{name}.{step}").touch()
         deadline = time.monotonic() + 120
-        while not (folder / other).exists() and time.monotonic() < deadline:
+        while not (folder / f"{other}.{step}").exists() and time.monotonic() < deadline:
             time.sleep(0.01)
+
+    meet("started")
     first = spare_cores()
+    meet("read")
     time.sleep(linger)
     return first, spare_cores()
 
