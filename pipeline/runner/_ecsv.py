@@ -150,9 +150,9 @@ def _header_lines(table: Table) -> list[str] | None:
     then gives the error, in its words).
 
     astropy's ``ascii.write`` hands its writer a shallow copy of the table and
-    joins the lines it returns; here the writer is astropy's ECSV writer with
-    the header's ``write`` bound to :func:`_libyaml_header_yaml` (see
-    :func:`_libyaml_writer`), made as ``ascii.write`` makes it.
+    joins the lines it returns; here the writer is :func:`_libyaml_writer`'s
+    (astropy's ECSV writer, its header's YAML dumped through
+    :func:`_libyaml_dump`), made as ``ascii.write`` makes it.
     """
     writer_class = _libyaml_writer()
     if writer_class is None:

@@ -587,6 +587,8 @@ def fit_groups(
     times their stars (the fits' work, roughly) reach half of the total.
     Arguments and results as ``fit_groups_compiled``'s.
     """
+    from concurrent.futures import ThreadPoolExecutor
+
     from pipeline._threads import spare_cores
     from pipeline.stages.detect._measure_jit import fit_groups_compiled
 
@@ -609,8 +611,6 @@ def fit_groups(
             *shared, boxes[first:stop], members[first : stop + 1] - a, x[a:b], y[a:b],
             dx[k0:k1], dy[k0:k1], kernels[a : b + 1] - k0, *table, responses[a:b], *rest,
         )  # fmt: skip
-
-    from concurrent.futures import ThreadPoolExecutor
 
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="detect-fits") as pool:
         later = pool.submit(part, half, n_groups)
