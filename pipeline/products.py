@@ -309,7 +309,7 @@ def night_column(header: Mapping) -> int:
 
 #: Bytes :func:`plane_columns` reads from a file at a time (whole rows).
 _READ_BYTES = 4 * 1024 * 1024
-#: ... and at most this many for a plane whose strip it converts itself
+#: ... and this many (fewer) for a plane whose strip it converts itself
 #: (:func:`_unsigned_columns`): buffers the C library keeps in its heap.
 _RAW_READ_BYTES = 1024 * 1024
 
@@ -390,7 +390,7 @@ def _unsigned_columns(hdu, unsigned: np.dtype, start: int, stop: int, row_bytes:
     info = hdu.fileinfo()
     file, offset = info["file"], info["datLoc"]
     n_rows, n_columns = hdu.shape
-    rows = max(min(_READ_BYTES, _RAW_READ_BYTES) // row_bytes, 1)
+    rows = max(_RAW_READ_BYTES // row_bytes, 1)
     raw = np.dtype(f">i{unsigned.itemsize}")
     out = np.empty((n_rows, stop - start), unsigned)
     position = file.tell()
