@@ -256,6 +256,40 @@ def test_pixel_summary_in_chunks_equals_the_whole(tmp_path, monkeypatch):
         np.testing.assert_array_equal(getattr(raw.pixels, name), getattr(whole, name))
 
 
+def test_integer_pixels_without_blank_are_summarised_as_astropy_scales_them(tmp_path, monkeypatch):
+    """Unsigned 16-bit pixels stored as FITS does (BITPIX 16, BZERO 32768: FITS
+    standard 4.0, section 5.2.5), no BLANK: every pixel is finite, and the
+    extremes of the stored integers, scaled, are those of astropy's scaled
+    pixels."""
+    import pipeline.runner._rawio as rawio
+    from pipeline.stages.base import PixelSummary
+
+    rng = np.random.default_rng(11)
+    pixels = rng.integers(0, 65536, (N_ROWS, 9)).astype(np.uint16)
+    pixels[:, 3] = 1200  # a constant column
+    pixels[17, 4], pixels[31, 4] = 0, 65535  # a column spanning the whole range
+    fits.PrimaryHDU(pixels).writeto(tmp_path / "b0.fits")  # astropy stores BZERO 32768
+    monkeypatch.setattr(rawio, "_SUMMARY_ROWS", 6)  # 40 rows in 7 chunks
+    (raw,) = rawio.read_raw_files(tmp_path, ["b0.fits"])
+    with fits.open(tmp_path / "b0.fits") as hdul:
+        assert hdul[0].header["BZERO"] == 32768 and "BLANK" not in hdul[0].header
+        whole = PixelSummary.of(hdul[0].data.astype(np.float64))
+    assert raw.pixels.n_rows == N_ROWS
+    assert list(raw.pixels.n_finite) == [N_ROWS] * 9
+    assert (raw.pixels.minimum[4], raw.pixels.maximum[4]) == (0.0, 65535.0)
+    for name in ("n_finite", "minimum", "maximum"):
+        np.testing.assert_array_equal(getattr(raw.pixels, name), getattr(whole, name))
+        assert getattr(raw.pixels, name).dtype == getattr(whole, name).dtype
+    # Signed and big-endian integers directly: as their float64 values.
+    for dtype in (">i2", "<i4", "u1"):
+        rows = rng.integers(0, 100, (5, 4)).astype(dtype)
+        exact = PixelSummary.of(rows.astype(np.float64))
+        summary = PixelSummary.of(rows)
+        for name in ("n_finite", "minimum", "maximum"):
+            np.testing.assert_array_equal(getattr(summary, name), getattr(exact, name))
+            assert getattr(summary, name).dtype == getattr(exact, name).dtype
+
+
 def test_a_block_whose_date_obs_goes_backwards_is_named():
     """Block 2's clock jumped back 10 rows before block 1's start: without the
     sequence check it would overlap block 0 and the message would blame block 1."""

@@ -19,6 +19,7 @@ import socket
 import subprocess
 import sys
 import textwrap
+import threading
 import time
 import tracemalloc
 import types
@@ -329,6 +330,53 @@ def test_a_product_is_on_disk_before_it_takes_its_name(tmp_path: Path, monkeypat
     inode = path.stat().st_ino
     assert events == [("flushed", inode), ("renamed", inode)]
     assert (digest, size) == (_store.file_digest(path), 7)
+
+
+def test_old_products_lose_their_names_at_once_and_go_while_the_new_are_written(
+    tmp_path: Path, monkeypatch
+) -> None:
+    """A forced rerun's unit: the sidecar and the old products' names are gone
+    before anything is written, the old files are removed while the block
+    writes (their removal waits for the block here: done first, it would
+    wait in vain), and none is left after it."""
+    unit = tmp_path / "calibrate/s0003"
+    unit.mkdir(parents=True)
+    for name in ("image.fits", "extra.json", _store.SIDECAR_NAME, _store.DAMAGED_NAME):
+        (unit / name).write_text("old")
+    (unit / ".image.fits.tmp-1-dead").write_text("left by a killed run")
+    writing, removed, real_unlink = threading.Event(), [], Path.unlink
+
+    def unlink(path: Path, missing_ok: bool = False) -> None:
+        if _store._TEMP_MARK in path.name:  # an old file, renamed away
+            removed.append((path.read_text(), writing.wait(timeout=5)))
+        real_unlink(path, missing_ok=missing_ok)
+
+    monkeypatch.setattr(Path, "unlink", unlink)
+    with _store.clean_unit(unit):
+        assert sorted(p.name for p in unit.iterdir() if not p.name.startswith(".")) == []
+        writing.set()
+        _store.atomic_write(unit / "image.fits", lambda temp: temp.write_text("new"))
+    assert sorted(p.name for p in unit.iterdir()) == ["image.fits"]
+    assert (unit / "image.fits").read_text() == "new"
+    assert sorted(removed) == [("left by a killed run", True), ("old", True), ("old", True)]
+
+
+def test_an_old_product_that_cannot_be_removed_fails_after_the_block(
+    tmp_path: Path, monkeypatch
+) -> None:
+    (tmp_path / "image.fits").write_text("old")
+    real_unlink = Path.unlink
+
+    def unlink(path: Path, missing_ok: bool = False) -> None:
+        if _store._TEMP_MARK in path.name:
+            raise PermissionError(errno.EACCES, os.strerror(errno.EACCES), str(path))
+        real_unlink(path, missing_ok=missing_ok)
+
+    monkeypatch.setattr(Path, "unlink", unlink)
+    written = []
+    with pytest.raises(PermissionError), _store.clean_unit(tmp_path):
+        written.append(True)
+    assert written == [True]  # the block ran; the error comes after it
 
 
 def test_a_failed_flush_fails_the_write_and_leaves_no_file(tmp_path: Path, monkeypatch) -> None:

@@ -192,6 +192,11 @@ def _checked_sha256(path: Path, remembered: bool = True) -> str:
     return digest
 
 
+def _temp_name(path: Path) -> Path:
+    """A temporary name for ``path`` in its folder (:func:`clean_unit` removes such files)."""
+    return path.with_name(f".{path.name}{_TEMP_MARK}{os.getpid()}-{uuid.uuid4().hex[:8]}")
+
+
 def atomic_write(path: Path, write: Callable[[Path], None]) -> tuple[str, int]:
     """Write ``path`` via ``write(temp_path)`` and an atomic rename.
 
@@ -202,7 +207,7 @@ def atomic_write(path: Path, write: Callable[[Path], None]) -> tuple[str, int]:
     size : int
         Its size in bytes.
     """
-    temp = path.with_name(f".{path.name}{_TEMP_MARK}{os.getpid()}-{uuid.uuid4().hex[:8]}")
+    temp = _temp_name(path)
     try:
         write(temp)
         # The disk flush waits on the device and the digest on the CPU: both at
@@ -749,23 +754,55 @@ def write_sidecar(unit_dir: Path, record: dict[str, Any]) -> None:
             os.close(fd)
 
 
-def clean_unit(unit_dir: Path, keep: Sequence[str] = ()) -> None:
-    """Prepare a unit folder for new products.
+@contextlib.contextmanager
+def clean_unit(unit_dir: Path, keep: Sequence[str] = ()) -> Iterator[None]:
+    """Within the block, a unit folder ready for new products; after it, the old files gone.
 
     Removes the sidecar first (from now on the unit is not done) and any
-    damage record, then leftover temporary files of killed runs and product
-    files not in ``keep``.
+    damage record.  Leftover temporary files of killed runs and product
+    files not in ``keep`` are renamed to temporary names as the block starts
+    (the folder then holds none of the old products, and a run killed in the
+    block leaves them for the next clean) and removed in a thread while the
+    block writes the new ones: removing a file waits for the file system to
+    free its blocks, ~30 ms for a 47 MB stretch image on an ext4 disk, once
+    per image in every unit of a forced rerun.  On leaving the block the
+    thread has ended; an error of a removal is raised then (unless the block
+    raised one).
     """
     for name in (SIDECAR_NAME, DAMAGED_NAME):
         with contextlib.suppress(FileNotFoundError):
             (unit_dir / name).unlink()
-    if not unit_dir.is_dir():
+    doomed = []
+    if unit_dir.is_dir():
+        for path in unit_dir.iterdir():
+            is_temp = path.name.startswith(".") and _TEMP_MARK in path.name
+            is_old_product = not path.name.startswith((".", "_")) and path.name not in keep
+            if path.is_file() and is_temp:
+                doomed.append(path)
+            elif path.is_file() and is_old_product:
+                doomed.append(path.rename(_temp_name(path)))
+    if not doomed:
+        yield
         return
-    for path in unit_dir.iterdir():
-        is_temp = path.name.startswith(".") and _TEMP_MARK in path.name
-        is_old_product = not path.name.startswith((".", "_")) and path.name not in keep
-        if path.is_file() and (is_temp or is_old_product):
-            path.unlink()
+    errors: list[OSError] = []
+
+    def remove() -> None:
+        for path in doomed:
+            try:
+                path.unlink()
+            except FileNotFoundError:
+                pass
+            except OSError as exc:
+                errors.append(exc)
+
+    remover = threading.Thread(target=remove, name="zdrift-clean", daemon=True)
+    remover.start()
+    try:
+        yield
+    finally:
+        remover.join()
+    if errors:
+        raise errors[0]
 
 
 def write_failure(unit_dir: Path, record: dict[str, Any]) -> None:

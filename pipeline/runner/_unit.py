@@ -358,8 +358,8 @@ def _execute_unit(task: UnitTask) -> UnitOutcome:
             problems = [*task.input_problems, *problems]
             t2 = time.perf_counter()
             _check_lock(task)
-            clean_unit(task.unit_dir)
-            entries = write_products(task.unit_dir, products, _fits_cards(task))
+            with clean_unit(task.unit_dir):  # the old files removed meanwhile
+                entries = write_products(task.unit_dir, products, _fits_cards(task))
             record = {
                 "stage": task.stage.name,
                 "unit": task.unit,

@@ -408,6 +408,16 @@ class PixelSummary:
             raise ValueError(f"rows must be a 2-D array (rows, columns); got shape {rows.shape}.")
         n_rows, n_columns = rows.shape
         none = np.full(n_columns, np.nan)
+        if rows.dtype.kind in "iu" and n_rows:
+            # Integers (raw pixels as stored, without BLANK) are all finite: the
+            # same summary without a mask of the rows, whose count took 60 % of
+            # it (a 1024 x 4112 chunk of 16-bit pixels: 1.6 ms instead of 4.9).
+            return cls(
+                n_rows=n_rows,
+                n_finite=np.full(n_columns, n_rows, dtype=np.int64),
+                minimum=rows.min(axis=0).astype(np.float64),
+                maximum=rows.max(axis=0).astype(np.float64),
+            )
         # fmin/fmax skip NaN (NaN only where a whole column is NaN), without warnings.
         return cls(
             n_rows=n_rows,
