@@ -789,9 +789,7 @@ def clean_unit(unit_dir: Path, keep: Sequence[str] = ()) -> Iterator[None]:
     def remove() -> None:
         for path in doomed:
             try:
-                path.unlink()
-            except FileNotFoundError:
-                pass
+                path.unlink(missing_ok=True)
             except OSError as exc:
                 errors.append(exc)
 
