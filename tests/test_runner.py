@@ -347,7 +347,8 @@ def test_old_products_lose_their_names_at_once_and_go_while_the_new_are_written(
     writing, removed, real_unlink = threading.Event(), [], Path.unlink
 
     def unlink(path: Path, missing_ok: bool = False) -> None:
-        if _store._TEMP_MARK in path.name:  # an old file, renamed away
+        if threading.current_thread().name == "zdrift-clean":  # the old files' remover
+            assert _store._TEMP_MARK in path.name  # renamed away first
             removed.append((path.read_text(), writing.wait(timeout=5)))
         real_unlink(path, missing_ok=missing_ok)
 
