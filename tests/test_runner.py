@@ -28,6 +28,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+from _tables import assert_same_table
 from _toy_graph import (
     GRAPH,
     NEIGHBOUR_GRAPH,
@@ -72,6 +73,7 @@ from pipeline.runner import (
     run_night,
     select_stages,
 )
+from pipeline.runner._ecsv import write_ecsv
 from pipeline.runner._lock import RunLock
 from pipeline.runner._night import NightStore
 from pipeline.runner._rawio import read_rows
@@ -480,8 +482,8 @@ def test_a_file_hashed_just_after_it_changed_is_not_remembered(tmp_path, monkeyp
     assert len(hashed) == 5
 
 
-def test_a_small_table_is_parsed_once_and_handed_out_as_copies(tmp_path, monkeypatch) -> None:
-    monkeypatch.setattr(_store, "_PARSED", {})
+def _counting_parses(monkeypatch) -> list[str]:
+    """The names of the product files :func:`_store.read_product` parses from now on."""
     parsed, real = [], _store.read_product
 
     def counting(path: Path, entry) -> Any:
@@ -489,8 +491,15 @@ def test_a_small_table_is_parsed_once_and_handed_out_as_copies(tmp_path, monkeyp
         return real(path, entry)
 
     monkeypatch.setattr(_store, "read_product", counting)
+    return parsed
+
+
+def test_a_small_table_is_parsed_once_and_handed_out_as_copies(tmp_path, monkeypatch) -> None:
+    monkeypatch.setattr(_store, "_PARSED", {})
     table = Table({"row": [1, 2, 3]}, meta={"night": "n1"})
     sidecar = {"products": write_products(tmp_path, {"index": table}, {})}
+    _store._PARSED.clear()  # as if another process had written it
+    parsed = _counting_parses(monkeypatch)
     first = read_products(tmp_path, sidecar)["index"]
     first["row"][0] = 99  # a stage changing what it was handed
     first.meta["night"] = "changed"
@@ -501,15 +510,53 @@ def test_a_small_table_is_parsed_once_and_handed_out_as_copies(tmp_path, monkeyp
     for copy in (second, third):
         assert list(copy["row"][::2]) == [1, 3] and copy.meta["night"] == "n1"
     assert third["row"][1] == 2
-    # The same file rewritten with other content: parsed again.
-    sidecar = {"products": write_products(tmp_path, {"index": Table({"row": [4]})}, {})}
-    assert list(read_products(tmp_path, sidecar)["index"]["row"]) == [4]
+    # The same file rewritten with other content (here by another process): parsed again.
+    write_ecsv(Table({"row": [4]}), tmp_path / "index.ecsv")
+    entry = {**sidecar["products"]["index"], "sha256": _sha256(tmp_path / "index.ecsv")}
+    assert list(read_products(tmp_path, {"products": {"index": entry}})["index"]["row"]) == [4]
     assert parsed == ["index.ecsv", "index.ecsv"]
-    # A few tables at most are kept.
-    for n in range(2 * _store._PARSED_MAX):
-        sidecar = {"products": write_products(tmp_path / f"u{n}", {"t": Table({"a": [n]})}, {})}
-        read_products(tmp_path / f"u{n}", sidecar)
-    assert len(_store._PARSED) == _store._PARSED_MAX
+
+
+def test_a_table_written_is_handed_to_readers_in_its_process_unparsed(tmp_path, monkeypatch):
+    """What a worker writes, the later units it runs read without parsing: copies of
+    the table the file reads back (here the parse's own result is the reference),
+    of the class the stage returned."""
+    monkeypatch.setattr(_store, "_PARSED", {})
+    catalogue = QTable({"x": np.linspace(0, 4096, 500) * u.pix, "flag": np.arange(500)})
+    catalogue["x"][7] = np.nan
+    catalogue.meta["band"] = "r"
+    kernels = Table({"dx": np.ones((50, 64)), "w": np.full(50, -np.float32(np.nan))})
+    sidecar = {"products": write_products(tmp_path, {"cat": catalogue, "k": kernels}, {})}
+    parsed = _counting_parses(monkeypatch)
+    first = read_products(tmp_path, sidecar)
+    assert parsed == []
+    for name, entry in sidecar["products"].items():
+        assert_same_table(first[name], _store.read_product(tmp_path / entry["file"], entry))
+    first["cat"]["flag"][0] = -5  # a stage changing what it was handed
+    first["k"].meta["changed"] = True
+    again = read_products(tmp_path, sidecar)
+    assert again["cat"]["flag"][0] == 0 and "changed" not in again["k"].meta
+    assert parsed == ["cat.ecsv", "k.ecsv"]  # the two references above only
+
+
+def test_tables_kept_stay_within_their_budget(tmp_path, monkeypatch) -> None:
+    """The oldest tables go first, once those kept pass their bytes or their count;
+    a large table is not kept."""
+    monkeypatch.setattr(_store, "_PARSED", {})
+    monkeypatch.setattr(_store, "PARSED_TOTAL_BYTES", 10_000)
+    for n in range(8):  # 2400 bytes each
+        write_products(tmp_path / f"u{n}", {"t": Table({"a": np.full(300, float(n))})}, {})
+    kept = [key[0] for key in _store._PARSED]
+    assert kept == [str(tmp_path / f"u{n}" / "t.ecsv") for n in (4, 5, 6, 7)]
+    assert sum(size for _, size in _store._PARSED.values()) <= 10_000
+    monkeypatch.setattr(_store, "WRITTEN_BYTES", 2000)
+    write_products(tmp_path / "large", {"t": Table({"a": np.zeros(300)})}, {})
+    assert [key[0] for key in _store._PARSED] == kept
+    monkeypatch.setattr(_store, "PARSED_TOTAL_BYTES", 1 << 30)
+    monkeypatch.setattr(_store, "_PARSED_MAX", 6)
+    for n in range(10):
+        write_products(tmp_path / f"v{n}", {"t": Table({"a": [n]})}, {})
+    assert len(_store._PARSED) == 6
 
 
 def test_read_rows_applies_bzero_and_fills_gaps_with_nan(tmp_path: Path) -> None:

@@ -27,6 +27,12 @@ split and cast, after a check that each cell is a JSON list of numbers;
 floats correctly rounded, as numpy and json read them) and handed to
 astropy's own header reader and outputter.
 
+The writer can also give the table as the reader reads the file back
+(``write_ecsv(..., as_read=cls)``), from the values in memory: the header it
+wrote read as the reader reads it, each value cast to the datatype declared
+and every NaN made the one ``nan`` reads as (the store hands it to the later
+units of the process that wrote it, :func:`pipeline.runner._store._keep_parsed`).
+
 A night catalogue (from :data:`THREADED_VALUES` values) is printed and joined
 on two threads, half of its columns, then half of its rows each (the
 night-wide stages that write it run while the pool's other worker idles).
@@ -105,7 +111,7 @@ _JSON_NUMBER_LIST = rf"^\[{_JSON_NUMBER[1:-1]}(?:,{_JSON_NUMBER[1:-1]})*\]$"
 _HEADER = re.compile(rb"(?:#[^\n]*\n)*")
 
 
-def write_ecsv(table: Table, path: Path) -> None:
+def write_ecsv(table: Table, path: Path, *, as_read: type[Table] | None = None) -> Table | None:
     """Write ``table`` to ``path`` as ECSV, the same bytes as astropy's writer.
 
     Parameters
@@ -114,11 +120,23 @@ def write_ecsv(table: Table, path: Path) -> None:
         The table (Quantity columns are written as astropy writes them).
     path : pathlib.Path
         The file to write (replaced if it exists).
+    as_read : type, optional
+        ``Table`` or ``QTable``: also return the table as :func:`read_ecsv`
+        reads the file back as this class (see :func:`_as_read`), made from
+        the values in memory rather than by parsing the text.
+
+    Returns
+    -------
+    astropy.table.Table or None
+        With ``as_read``, the table :func:`read_ecsv` would read, or None
+        where only reading the file tells (astropy's writer or reader, a
+        dtype whose text is read through another, no rows).
     """
-    texts = _column_texts(table)
-    if texts is None:
+    columns = _fast_columns(table)
+    if columns is None:
         table.write(path, format="ascii.ecsv", overwrite=True)
-        return
+        return None
+    texts = _column_texts_of(columns, len(table))
     header = _header_text(table)
     # astropy opens the file the same way: the locale's encoding, no newline
     # translation (its line ends are os.linesep already).  The rows are ASCII,
@@ -129,6 +147,47 @@ def write_ecsv(table: Table, path: Path) -> None:
             stream.flush()
             for rows in _joined_rows(texts):
                 stream.buffer.write(rows)
+    if as_read is None or not len(table):
+        return None
+    kept = _as_read(header, [column.data for column in columns])
+    return None if kept is None else _of_class(kept, as_read)
+
+
+#: Datatypes whose values the fast writer prints so that the reader gets them
+#: back exactly: booleans, integers, float32 and float64 (the shortest text
+#: that reads back to the value, through float64).  Not float16 nor float128,
+#: whose own shortest text is read through float64 and rounded again.
+_EXACT_DATATYPES = frozenset(
+    ["bool", "float32", "float64"]
+    + [f"{sign}int{bits}" for sign in ("", "u") for bits in (8, 16, 32, 64)]
+)
+
+
+def _as_read(header: str, arrays: list[np.ndarray]) -> Table | None:
+    """The table :func:`read_ecsv` reads from a file of ``header`` and ``arrays``' rows.
+
+    The same steps as the reader's (:func:`_read_plain`), the values taken
+    from ``arrays`` instead of parsed from the rows: each cast to the
+    datatype the header declares, NaN made the one NaN the text ``nan``
+    reads as (the writer prints every NaN so, whatever its sign and
+    payload).  None where the reader would hand the file to astropy, or
+    where a datatype's text reads back to another value (see
+    :data:`_EXACT_DATATYPES`).
+    """
+    parts = _plain_header(header)
+    if parts is None:
+        return None
+    reader, columns, dtypes, lengths = parts
+    values = []
+    for data, dtype, length in zip(arrays, dtypes, lengths, strict=True):
+        shape_ok = data.ndim == 1 if not length else data.shape[1:] == (length,)
+        if dtype.name not in _EXACT_DATATYPES or not shape_ok:
+            return None
+        value = np.array(data, dtype=dtype)
+        if dtype.kind == "f":
+            value[np.isnan(value)] = np.nan
+        values.append(value)
+    return _assembled(reader, columns, values)
 
 
 def _header_text(table: Table) -> str:
@@ -266,13 +325,11 @@ def _rows_text(texts: list) -> memoryview:
     return memoryview(rows.buffers()[2])[start:stop]
 
 
-def _column_texts(table: Table) -> list | None:
-    """Each column's values as astropy's ECSV writer prints them, or None.
+def _fast_columns(table: Table) -> list | None:
+    """The columns the fast path writes for ``table``, or None.
 
-    Each is a pyarrow array of (large) strings.  None when the table has no
-    column, a column is not one the fast path writes (see the module's
-    docstring) or the table carries indices.  A large table's second half of
-    columns is printed in a thread of its own (see :data:`THREADED_VALUES`).
+    None when the table has no column, a column is not one the fast path
+    writes (see the module's docstring) or the table carries indices.
     """
     if table.indices or not table.colnames:
         return None
@@ -281,8 +338,24 @@ def _column_texts(table: Table) -> list | None:
     columns = list(plain.itercols())
     if not all(_fast_column(column) for column in columns):
         return None
+    return columns
+
+
+def _column_texts(table: Table) -> list | None:
+    """Each column's values as astropy's ECSV writer prints them, or None (see
+    :func:`_fast_columns`)."""
+    columns = _fast_columns(table)
+    return None if columns is None else _column_texts_of(columns, len(table))
+
+
+def _column_texts_of(columns: list, n_rows: int) -> list:
+    """Each of the fast ``columns``' values as astropy's ECSV writer prints them.
+
+    Each is a pyarrow array of (large) strings.  A large table's second half
+    of columns is printed in a thread of its own (see :data:`THREADED_VALUES`).
+    """
     half = len(columns) // 2
-    if half == 0 or len(plain) * _n_values(columns) < THREADED_VALUES:
+    if half == 0 or n_rows * _n_values(columns) < THREADED_VALUES:
         return [_texts(column.data) for column in columns]
     # pyarrow's kernels and numpy's loops release the GIL: a night-wide stage's
     # catalogue is printed on two cores while the pool's other worker idles
@@ -436,6 +509,11 @@ def read_ecsv(path: Path, cls: type[Table] = Table) -> Table:
     table = _read_plain(Path(path).read_bytes())
     if table is None:
         return cls.read(path, format="ascii.ecsv")
+    return _of_class(table, cls)
+
+
+def _of_class(table: Table, cls: type[Table]) -> Table:
+    """``table`` as a ``cls``, as astropy's reader hands it out."""
     return table if type(table) is cls else cls(table, copy=False)
 
 
@@ -460,6 +538,27 @@ def _read_plain(data: bytes) -> Table | None:
         header = io.TextIOWrapper(io.BytesIO(data[: names_end + 1])).read()
     except UnicodeDecodeError:
         return None  # astropy's reader says what is wrong with it
+    parts = _plain_header(header)
+    if parts is None:
+        return None
+    reader, columns, dtypes, lengths = parts
+    if any(lengths) and not body.strip():
+        return None  # astropy cannot read vector columns of no rows (the store can)
+    try:
+        values = _parse_rows(body, dtypes, lengths)
+    except ValueError:  # pyarrow's ArrowInvalid is a ValueError
+        return None  # a masked (empty) value, a blank line, a ragged row
+    return _assembled(reader, columns, values)
+
+
+def _plain_header(header: str) -> tuple | None:
+    """The fast reader's reading of a file's ``header`` (its lines up to the
+    column names'): ``(reader, columns, dtypes, lengths)``, or None where
+    astropy reads the file (see :func:`_read_plain`).
+
+    ``dtypes`` are the columns' values' (a vector's elements'), ``lengths``
+    those of :func:`_vector_length`.
+    """
     if _OTHER_COLUMNS.search(header):
         return None  # found before the YAML is parsed: astropy reads such files alone
     reader = Ecsv()
@@ -472,16 +571,15 @@ def _read_plain(data: bytes) -> Table | None:
     plain = reader.header.splitter.delimiter == " " and -1 not in lengths
     if not plain or "__table_indices__" in reader.header.table_meta:
         return None
-    if any(lengths) and not body.strip():
-        return None  # astropy cannot read vector columns of no rows (the store can)
     dtypes = [
         np.dtype(column.subtype if length else column.dtype)
         for column, length in zip(columns, lengths, strict=True)
     ]
-    try:
-        values = _parse_rows(body, dtypes, lengths)
-    except ValueError:  # pyarrow's ArrowInvalid is a ValueError
-        return None  # a masked (empty) value, a blank line, a ragged row
+    return reader, columns, dtypes, lengths
+
+
+def _assembled(reader, columns: list, values: list[np.ndarray]) -> Table:
+    """The table of ``reader``'s header (:func:`_plain_header`) and the columns' ``values``."""
     for column, data in zip(columns, values, strict=True):
         column.data = data
     reader.meta["table"].update(reader.header.table_meta)
