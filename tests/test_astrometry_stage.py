@@ -237,6 +237,23 @@ def test_sky_and_errors_are_those_made_apart(solution):
         np.testing.assert_array_equal(got, want)
 
 
+def test_position_errors_of_many_detections_are_each_one_s_own(solution):
+    """position_errors of 20 000 detections (three chunks of the parameters'
+    Jacobian, shared between two threads): at the chunks' edges each
+    detection's errors are those it gets alone (to rounding: the sums of one
+    row may run in another order)."""
+    rng = np.random.default_rng(4)
+    n = 20_000
+    x, y = rng.uniform(1000, 3000, n), rng.uniform(0, solution.frame.n_y, n)
+    x_err, y_err = rng.uniform(0.01, 0.1, n), rng.uniform(0.01, 0.1, n)
+    ra_err, dec_err = solution.position_errors(x, y, x_err, y_err)
+    for i in (0, 8191, 8192, 16383, 16384, n - 1):
+        alone = solution.position_errors(
+            x[i : i + 1], y[i : i + 1], x_err[i : i + 1], y_err[i : i + 1]
+        )
+        np.testing.assert_allclose([ra_err[i], dec_err[i]], np.ravel(alone), rtol=1e-12)
+
+
 def test_stretch_wcs_cards_from_the_night_s_pass_are_each_stretch_s_own(solution):
     """The stage computes every stretch's solved points in one pass (wcs_sky);
     each stretch's cards are the ones it gets alone."""

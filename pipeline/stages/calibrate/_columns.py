@@ -38,6 +38,7 @@ import numpy as np
 from astropy.stats import mad_std
 from astropy.table import Table, unique, vstack
 
+from pipeline._threads import in_two_threads
 from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MaskBit
 from pipeline.stages.calibrate._chunks import transposed
@@ -613,14 +614,18 @@ def _normalise(slope, intercept, slope_err, sky, reference):
 def _fit_lines(sky, level, weight, valid, clip):
     """Weighted straight-line fit ``level = a * sky + b`` for every column.
 
-    Columns are fitted independently, :data:`_PART_COLUMNS` at a time.
-    Returns ``slope, intercept, slope_err, intercept_err, used`` (blocks
-    kept), each of shape (n_columns,).
+    Columns are fitted independently, :data:`_PART_COLUMNS` at a time, the
+    later half of the parts in a second thread (numpy's loops release the
+    GIL; the column solve runs while the pool's other worker idles: 0.17 ->
+    0.10-0.13 s on a 4096-column night of 512 blocks).  Returns ``slope,
+    intercept, slope_err, intercept_err, used`` (blocks kept), each of
+    shape (n_columns,).
     """
-    parts = [
-        _fit_some_lines(sky, level[:, part], weight[:, part], valid[:, part], clip)
-        for part in _column_parts(level.shape[1])
-    ]
+    parts = in_two_threads(
+        lambda part: _fit_some_lines(sky, level[:, part], weight[:, part], valid[:, part], clip),
+        list(_column_parts(level.shape[1])),
+        "column-fits",
+    )
     return tuple(np.concatenate(values) for values in zip(*parts, strict=True))
 
 
