@@ -112,6 +112,27 @@ def test_floats_of_every_notation_print_as_python_s_repr(tmp_path):
     _check_round_trip(Table({"v": values}), tmp_path)
 
 
+def test_notation_flags_are_pyarrow_s_substring_kernels():
+    """The flags read from the texts' bytes (an ``e``, a ``.``, a one-digit
+    exponent) are those of the pyarrow kernels they replaced, on texts of every
+    notation, a slice of them (an offset into the buffers) and none."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    values = np.concatenate([_every_notation(np.random.default_rng(6)), [np.nan, np.inf, -0.0]])
+    texts = pc.cast(pa.array(values), pa.large_string())
+    for part in (texts, texts.slice(7, 3000), texts.slice(0, 0)):
+        expected = [
+            pc.match_substring(part, "e"),
+            pc.match_substring(part, "."),
+            pc.equal(pc.utf8_slice_codeunits(part, -3, -2), "e"),
+        ]
+        got = _ecsv._notation_flags(part)
+        for mine, theirs in zip(got, expected, strict=True):
+            np.testing.assert_array_equal(mine, theirs.to_numpy(zero_copy_only=False))
+    assert all(flag.sum() > 100 for flag in _ecsv._notation_flags(texts))
+
+
 def test_a_fresh_process_writes_integer_columns():
     """The writer imports the pyarrow modules it uses itself: a worker process that
     has read no table (column_stats' first unit) writes integer columns."""

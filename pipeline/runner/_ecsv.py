@@ -461,13 +461,7 @@ def _float64_texts(values: np.ndarray):
     import pyarrow.compute as pc
 
     texts = pc.cast(pa.array(values), pa.large_string())
-
-    def flags(array) -> np.ndarray:
-        return array.to_numpy(zero_copy_only=False)
-
-    exponent = flags(pc.match_substring(texts, "e"))
-    point = flags(pc.match_substring(texts, "."))
-    one_digit = flags(pc.equal(pc.utf8_slice_codeunits(texts, -3, -2), "e"))  # e-7, not e-07
+    exponent, point, one_digit = _notation_flags(texts)
     with np.errstate(invalid="ignore"):
         magnitude = np.abs(values)
         finite = np.isfinite(values)
@@ -488,6 +482,34 @@ def _float64_texts(values: np.ndarray):
         python = pa.array(list(map(str, values[redo].tolist())), pa.large_string())
         texts = pc.replace_with_mask(texts, pa.array(~kept), python)
     return texts
+
+
+def _notation_flags(texts) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per text of ``texts`` (pyarrow large strings of ASCII, no nulls): whether it
+    holds an ``e``, whether it holds a ``.``, and whether its third character from
+    the end is the ``e`` (a one-digit exponent, ``1e-7``).
+
+    From the texts' bytes and offsets, by numpy: pyarrow's substring kernels,
+    one pass over every text each, took 4.4 ms per 55 000 values (0.16 s of
+    the ~0.44 s a night catalogue's 36 float columns took to print on one
+    thread).
+    """
+    n = len(texts)
+    offsets = np.frombuffer(texts.buffers()[1], dtype=np.int64)[texts.offset : texts.offset + n + 1]
+    first, last = int(offsets[0]), int(offsets[-1])
+    data = np.frombuffer(texts.buffers()[2], dtype=np.uint8)
+
+    def holding(byte: int) -> np.ndarray:
+        found = np.zeros(n, dtype=bool)
+        at = np.flatnonzero(data[first:last] == byte) + first
+        found[np.searchsorted(offsets, at, side="right") - 1] = True
+        return found
+
+    starts, ends = offsets[:-1], offsets[1:]
+    one_digit = np.zeros(n, dtype=bool)
+    long = ends - starts >= 3
+    one_digit[long] = data[ends[long] - 3] == ord("e")
+    return holding(ord("e")), holding(ord(".")), one_digit
 
 
 def read_ecsv(path: Path, cls: type[Table] = Table) -> Table:
