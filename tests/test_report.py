@@ -123,6 +123,18 @@ def test_place_pieces_puts_stretches_at_their_columns() -> None:
         place_pieces([], 2)
 
 
+def test_place_pieces_shows_a_stretch_starting_before_column_0_from_there() -> None:
+    """The first stretch's rectified frame may start a column before the night's
+    first (CRVAL1A -1 on a 4096-column camera at latitude 50 deg): binned by 21,
+    its first binned column lies before night column 0 and is left out, the
+    rest placed from 0 (it was an empty slice, and the report failed)."""
+    first = np.arange(6.0)[None, :].repeat(2, axis=0)
+    strip = place_pieces([(-1, first), (147, np.full((2, 4), 9.0))], factor=21)
+    assert strip.shape == (2, 11)
+    np.testing.assert_array_equal(strip[:, :5], first[:, 1:])
+    assert np.isnan(strip[:, 5:7]).all() and (strip[:, 7:] == 9).all()
+
+
 def test_night_clock_gives_mid_exposure_utc() -> None:
     clock = NightClock(scene.block_index())
     assert clock.date == "2026-10-15"

@@ -160,14 +160,19 @@ def place_pieces(pieces: list[tuple[int, np.ndarray]], factor: int) -> np.ndarra
     Returns
     -------
     ndarray, shape (max ny, last column)
-        The strip from night column 0; NaN where no stretch lies (gaps).
+        The strip from night column 0; NaN where no stretch lies (gaps).  A
+        stretch that starts before night column 0 (the first one's rectified
+        frame may, by a column or so) is shown from there: its binned
+        columns before it are left out.
     """
     if not pieces:
         raise ValueError("pieces is empty: there is no rectified stretch to show.")
     starts = [x // factor for x, _ in pieces]
     ny = max(image.shape[0] for _, image in pieces)
     nx = max(start + image.shape[1] for start, (_, image) in zip(starts, pieces, strict=True))
-    strip = np.full((ny, nx), np.nan)
+    strip = np.full((ny, max(nx, 0)), np.nan)
     for start, (_, image) in zip(starts, pieces, strict=True):
-        strip[: image.shape[0], start : start + image.shape[1]] = image
+        shown = image[:, max(-start, 0) :]
+        first = max(start, 0)
+        strip[: shown.shape[0], first : first + shown.shape[1]] = shown
     return strip
