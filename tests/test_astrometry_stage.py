@@ -254,6 +254,37 @@ def test_position_errors_of_many_detections_are_each_one_s_own(solution):
         np.testing.assert_allclose([ra_err[i], dec_err[i]], np.ravel(alone), rtol=1e-12)
 
 
+def test_exposures_are_the_stars_crossing_times_in_the_solved_geometry(solution):
+    """A detection's exposure is the time its star takes to cross the chip: the
+    crossing window of the solved geometry's TDIModel (pipeline.geometry.tdi,
+    which solves the star's detector row through astropy/ERFA's
+    transformations, not through the fitted tracks), and to first order sec(dec)
+    relative to the chip's centre line (the drift rate varies as cos(dec),
+    DESIGN.md; common practice)."""
+    n = 25
+    x = np.linspace(1200.0, 2800.0, n)
+    y = np.linspace(1.0, solution.frame.n_y - 2.0, n)
+    errors = np.full(n, 0.05)
+    ra, dec, ra_err, dec_err, exposure = solution.sky_errors_and_exposures(x, y, errors, errors)
+    together = solution.sky_and_errors(x, y, errors, errors)
+    for got, want in zip((ra, dec, ra_err, dec_err), together, strict=True):
+        np.testing.assert_array_equal(got, want)
+    model = solution.solved_model
+    t_mid = solution.predictor.mid_time_of_column(x) - solution.offsets.clock_offset
+    # (the tracks are those of the detections' positions in the rectified
+    # frame's own WCS, which the solved sky moves by arcseconds: 1e-5 of the
+    # exposure per 2 arcsec of declination at latitude 50)
+    nominal = solution.frame.icrs_from_pixel(x, y)
+    t_enter, t_exit = model.crossing_windows(*nominal, t_mid, np.ones(n, dtype=np.intp))
+    np.testing.assert_allclose(
+        exposure, t_exit - t_enter, rtol=0, atol=1e-6
+    )  # s of ~54 (2e-8 here)
+    centre = np.argmin(np.abs(y - 0.5 * (solution.frame.n_y - 1)))
+    sec = np.cos(np.radians(dec[centre])) / np.cos(np.radians(dec))
+    np.testing.assert_allclose(exposure / exposure[centre], sec, rtol=2e-5)  # 1.4e-6 here
+    assert np.ptp(exposure) / exposure[centre] > 3e-3  # the effect is there to see
+
+
 def test_stretch_wcs_cards_from_the_night_s_pass_are_each_stretch_s_own(solution):
     """The stage computes every stretch's solved points in one pass (wcs_sky);
     each stretch's cards are the ones it gets alone."""

@@ -288,12 +288,16 @@ def solve_catalog(
             solution = solve_night(*args, transparency=cloud, **kwargs)
         else:
             cloud = dataclasses.replace(cloud, applied=False) if cloud is not None else None
-    ra, dec, ra_err, dec_err = solution.sky_and_errors(x, y, x_err, y_err)
+    ra, dec, ra_err, dec_err, exposure = solution.sky_errors_and_exposures(x, y, x_err, y_err)
     out = catalog.copy()
     out["ra"] = ra * u.deg
     out["dec"] = dec * u.deg
     out["ra_err"] = ra_err * u.arcsec
     out["dec_err"] = dec_err * u.arcsec
+    out["exposure"] = exposure * u.s
+    out[
+        "exposure"
+    ].info.description = "the star's crossing time of the chip in the solved geometry: its exposure"
     ref_index = np.full(len(out), -1, dtype=np.int64)
     fit = solution.fit
     ref_index[fit_rows[fit.det_index[fit.used]]] = solution.ref_index[fit.used]

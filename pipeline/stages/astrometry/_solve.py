@@ -689,11 +689,34 @@ class AstrometricSolution:
         ra_err, dec_err : ndarray
             Arcseconds.
         """
+        return self.sky_errors_and_exposures(x, y, x_err, y_err)[:4]
+
+    def sky_errors_and_exposures(
+        self, x: ArrayLike, y: ArrayLike, x_err: ArrayLike, y_err: ArrayLike
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`sky_and_errors` and each position's exposure, from the same tracks.
+
+        A star's exposure in drift scanning is the time it takes to cross the
+        chip (entry to exit of its solved track), not the charge packets'
+        ``N`` line times: its drift rate varies as cos(dec), so a star off
+        the chip's centre line collects its light for longer (poleward) or
+        shorter, by about ``tan(phi) * d_dec`` (1.2 % from edge to edge of a
+        0.59 deg chip at latitude 50), while every packet collects the sky
+        for ``N`` line times.  Zero points of point sources divide by it.
+
+        Returns
+        -------
+        ra, dec, ra_err, dec_err : ndarray
+            As :meth:`sky_and_errors` gives them.
+        exposure : ndarray
+            Seconds; NaN where the crossing leaves the tracked window.
+        """
         x = np.asarray(x, dtype=float).ravel()
         y = np.asarray(y, dtype=float).ravel()
         tracks, pred = self._rectified_tracks(x, y)
         ((ra, dec),) = self._sky_of_groups([(x, y)], x, y, tracks, pred)
-        return ra, dec, *self._errors(x, y, x_err, y_err, tracks, pred)
+        exposure = pred.t_end - pred.t_start
+        return ra, dec, *self._errors(x, y, x_err, y_err, tracks, pred), exposure
 
     def _errors(self, x, y, x_err, y_err, tracks, pred):
         """:meth:`position_errors` given the positions' tracks and solved prediction."""

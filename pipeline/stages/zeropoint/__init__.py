@@ -28,6 +28,7 @@ from pipeline.stages.zeropoint._stage import (
     calibrate_catalog,
     column_times,
     night_line_time,
+    source_exposures,
 )
 
 __all__ = [
@@ -43,5 +44,6 @@ __all__ = [
     "interval_quality",
     "night_line_time",
     "scale_to_zero_point",
+    "source_exposures",
     "star_flat",
 ]

@@ -40,6 +40,7 @@ __all__ = [
     "calibrate_catalog",
     "column_times",
     "night_line_time",
+    "source_exposures",
 ]
 
 log = logging.getLogger(__name__)
@@ -123,6 +124,27 @@ def _value(column) -> np.ndarray:
     return np.asarray(getattr(column, "value", column), dtype=float)
 
 
+def source_exposures(catalog: QTable, exposure: float) -> np.ndarray | float:
+    """Each source's exposure, seconds: the time its star took to cross the chip.
+
+    Astrometry's ``exposure`` column (the crossing time of the star's solved
+    track) where it is known, else ``exposure`` (``XPOSURE``, the charge
+    packets' ``N`` line times, which is a star's on the chip's centre line
+    when the line time matches the drift).  A star's drift rate varies as
+    cos(dec), so off the centre line it collects its light for longer
+    (poleward) or shorter while the sky fills every packet for ``N`` line
+    times: ``flux / XPOSURE`` alone leaves a trend of about ``tan(phi) *
+    d_dec`` across the chip in the calibrated magnitudes (1.2 % from edge to
+    edge of a 0.59 deg chip at latitude 50), which the star flat then
+    reported as a flat-field error.
+    """
+    if "exposure" not in catalog.colnames:
+        return exposure
+    own = catalog["exposure"]
+    own = u.Quantity(own).to_value(u.s) if getattr(own, "unit", None) else _value(own)
+    return np.where(np.isfinite(own) & (own > 0), own, exposure)
+
+
 def _check_reference(catalog: QTable, fit_colour_term: bool) -> None:
     if "ref_mag" not in catalog.colnames or not np.isfinite(_value(catalog["ref_mag"])).any():
         raise ValueError(
@@ -180,9 +202,11 @@ def calibrate_catalog(
         unmatched); ``snr`` optional (else ``flux_psf / flux_psf_err``);
         ``ref_mag_err`` optional (mag): each star's weight in the fit is
         ``1 / (instrumental error^2 + ref_mag_err^2)`` (plus the fit's extra
-        scatter).
+        scatter); ``exposure`` optional (s, each star's crossing time).
     exposure : float
-        Crossing time of every pixel, s (``XPOSURE``).
+        Crossing time of every pixel, s (``XPOSURE``): a source's exposure
+        where the catalogue gives none of its own (``exposure``, see
+        :func:`source_exposures`).
     line_time : float
         Line time, s; with ``tdi_rows`` sets :func:`column_times`.
     tdi_rows : int
@@ -224,7 +248,7 @@ def calibrate_catalog(
     flux_err = _value(catalog["flux_psf_err"])
     with np.errstate(divide="ignore", invalid="ignore"):
         snr = _value(catalog["snr"]) if "snr" in catalog.colnames else flux / flux_err
-        m_inst = -2.5 * np.log10(flux / exposure)
+        m_inst = -2.5 * np.log10(flux / source_exposures(catalog, exposure))
         m_inst_err = _MAG_PER_RELATIVE_FLUX * flux_err / flux
     t = column_times(_value(catalog["x"]), line_time, tdi_rows)
     ref_mag = _value(catalog["ref_mag"])
