@@ -560,11 +560,11 @@ PARSED_BYTES = 1 << 20
 #: process that writes it, as the file reads back (see :func:`_keep_parsed`).
 WRITTEN_BYTES = 4 << 20
 #: Tables kept (read or written) at most, and their values' bytes at most
-#: together: the oldest are dropped first.  A worker writes about 2.3 MB of
-#: such tables per stretch of a 4096-column camera (column statistics 0.8,
-#: detect's catalogue 0.5, rectify's smear kernels 0.4), so the night-wide
-#: unit that reads a kind of them finds the last ~16 stretches' of its
-#: process kept.
+#: together: the oldest are dropped first.  On a 4096-column camera a
+#: stretch's column statistics hold 0.8 MB, written before the flow (the
+#: column solve finds a worker's 16 of a 32-stretch night kept), and the flow
+#: writes ~1 MB per stretch (detect's catalogue 0.5, rectify's smear kernels
+#: 0.4), so the catalogue finds the last ~16 stretches' of its worker kept.
 _PARSED_MAX = 256
 PARSED_TOTAL_BYTES = 16 << 20
 #: ``(absolute path, SHA-256) -> (table, bytes of its values)``, oldest first.

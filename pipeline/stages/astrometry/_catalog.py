@@ -295,9 +295,8 @@ def solve_catalog(
     out["ra_err"] = ra_err * u.arcsec
     out["dec_err"] = dec_err * u.arcsec
     out["exposure"] = exposure * u.s
-    out[
-        "exposure"
-    ].info.description = "the star's crossing time of the chip in the solved geometry: its exposure"
+    crossing = "the star's crossing time of the chip in the solved geometry: its exposure"
+    out["exposure"].info.description = crossing
     ref_index = np.full(len(out), -1, dtype=np.int64)
     fit = solution.fit
     ref_index[fit_rows[fit.det_index[fit.used]]] = solution.ref_index[fit.used]
