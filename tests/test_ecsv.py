@@ -39,8 +39,8 @@ def _check_round_trip(table: Table, tmp_path, cls=None) -> Table:
     assert path.read_bytes() == _astropy_bytes(table)
     ours = read_ecsv(path, cls)
     assert_same_table(ours, cls.read(path, format="ascii.ecsv"))
-    if kept is not None:
-        assert_same_table(kept, ours)
+    if kept is not None and kept.table() is not None:
+        assert_same_table(kept.table(), ours)
     return ours
 
 
@@ -226,8 +226,11 @@ def test_a_table_written_is_kept_as_it_reads_back(tmp_path):
     table["n"] = np.arange(1200, dtype=np.uint16).reshape(300, 4)
     path = tmp_path / "table.ecsv"
     for cls in (QTable, Table):
-        kept = write_ecsv(table, path, as_read=cls)
-        assert kept is not None
+        read_back = write_ecsv(table, path, as_read=cls)
+        table["flux"][0] *= 2  # the writer's table changed after the write: no matter
+        table["dx"][0] = 7.0
+        kept = read_back.table()
+        assert kept is not None and read_back.table() is kept  # made once
         assert_same_table(kept, read_ecsv(path, cls))
         assert_same_table(kept, cls.read(path, format="ascii.ecsv"))
     assert write_ecsv(table, tmp_path / "other.ecsv") is None  # only when asked

@@ -56,7 +56,7 @@ from astropy.table import QTable, Table
 from astropy.table.meta import get_header_from_yaml
 
 from pipeline.exceptions import DamagedProductError
-from pipeline.runner._ecsv import read_ecsv, write_ecsv
+from pipeline.runner._ecsv import ReadBack, read_ecsv, write_ecsv
 
 __all__ = [
     "DAMAGED_NAME",
@@ -319,14 +319,14 @@ def _writer(kind: str, value: Any, cards: Mapping[str, tuple[Any, str]]) -> Call
 class _TableWriter:
     """Writes a table product, and keeps it as the file reads back if it is small.
 
-    ``as_read`` is then the table :func:`read_product` would read (of the
-    class the stage returned), made from the values in memory
-    (:func:`~pipeline.runner._ecsv.write_ecsv`'s ``as_read``), or None.
+    ``as_read`` then makes the table :func:`read_product` would read (of
+    the class the stage returned) from the values in memory
+    (:func:`~pipeline.runner._ecsv.write_ecsv`'s ``as_read``), or is None.
     """
 
     def __init__(self, table: Table):
         self.table = table
-        self.as_read: Table | None = None
+        self.as_read: ReadBack | None = None
 
     def __call__(self, temp: Path) -> None:
         cls = QTable if isinstance(self.table, QTable) else Table  # as read_product reads it
@@ -567,8 +567,9 @@ WRITTEN_BYTES = 4 << 20
 #: 0.4), so the catalogue finds the last ~16 stretches' of its worker kept.
 _PARSED_MAX = 256
 PARSED_TOTAL_BYTES = 16 << 20
-#: ``(absolute path, SHA-256) -> (table, bytes of its values)``, oldest first.
-_PARSED: dict[tuple[str, str], tuple[Table, int]] = {}
+#: ``(absolute path, SHA-256) -> (table or what makes it, bytes of its values)``,
+#: oldest first.
+_PARSED: dict[tuple[str, str], tuple[Table | ReadBack, int]] = {}
 _PARSED_LOCK = threading.Lock()
 
 
@@ -577,8 +578,9 @@ def _table_bytes(table: Table) -> int:
     return sum(getattr(column, "nbytes", 0) for column in table.itercols())
 
 
-def _keep_parsed(path: Path, digest: str, table: Table) -> None:
-    """Keep ``table``, the parsed content of ``path`` whose SHA-256 is ``digest``.
+def _keep_parsed(path: Path, digest: str, table: Table | ReadBack) -> None:
+    """Keep ``table``, the parsed content of ``path`` whose SHA-256 is ``digest``
+    (or the :class:`~pipeline.runner._ecsv.ReadBack` that makes it).
 
     A later read of the file that finds this digest (checked against the file
     as every read is, :func:`verify_product`) gets a copy instead of parsing
@@ -588,7 +590,7 @@ def _keep_parsed(path: Path, digest: str, table: Table) -> None:
     ~0.9 s of its 1.7 s on the 4096 x 16 x 2048 night; the catalogue's 32
     detect catalogues ~0.5 s), and the others are parsed as before.
     """
-    size = _table_bytes(table)
+    size = table.nbytes if isinstance(table, ReadBack) else _table_bytes(table)
     with _PARSED_LOCK:
         key = (os.path.abspath(path), digest)
         _PARSED.pop(key, None)
@@ -602,7 +604,10 @@ def _parsed(path: Path, digest: str) -> Table | None:
     """A copy of the table kept for ``path`` of content ``digest``, or None."""
     with _PARSED_LOCK:
         kept = _PARSED.get((os.path.abspath(path), digest))
-    return None if kept is None else kept[0].copy()
+    if kept is None:
+        return None
+    table = kept[0].table() if isinstance(kept[0], ReadBack) else kept[0]
+    return None if table is None else table.copy()
 
 
 def _load_checked(
