@@ -46,6 +46,8 @@ from pipeline.stages.detect._find import (
     deblend_segments,
     estimate_background,
     find_sources,
+    measured_noise_correlation,
+    measured_noise_correlation_rows,
     segment_map,
     segment_moments,
     segment_pixels,
@@ -261,6 +263,70 @@ def test_deconvolved_noise_anticorrelated_at_the_smear_length():
     # (NOISECOR's errors would give 1.66).
     assert np.std(pull_x) == pytest.approx(1.0, abs=0.3)
     assert np.std(pull_f) == pytest.approx(1.0, abs=0.3)
+
+
+def test_deconvolved_noise_calibrated_per_band_of_rows():
+    """A deconvolved product's noise, unlike across the scan, is measured band by band.
+
+    Rectify's deconvolution undoes a smear that grows toward the chip's
+    edges with one filter per band of rows, so the noise at a star's scale
+    differs across the scan (over 100 times the variance plane's in the
+    outermost rows of a wide chip at latitude 50).  Here the noise of the
+    first 128 rows is twice the variance plane's rms, of the others the
+    plane's: detect must find no source there that is not a star (one
+    factor for the whole stretch put the threshold near 2.8 sigma there) and
+    keep unit pulls on both sides (common practice: calibrate a detection
+    image's noise on its own blank sky, where it is used).
+    """
+    rng = np.random.default_rng(21)
+    n = 120
+    x = rng.uniform(20, 490, n)
+    y = rng.uniform(10, 502, n)
+    flux = rng.uniform(2e4, 1e5, n)
+    scene = render_scene(x, y, flux, shape=(512, 512), x_start=0, round_stars=True)
+    loud = np.ones(scene.image.shape[0])
+    loud[:128] = 2.0
+    noise = rng.standard_normal(scene.image.shape) * np.sqrt(scene.variance) * loud[:, None]
+    result = detect(
+        scene.image + noise,
+        scene.variance,
+        scene.mask,
+        scene.kernels,
+        deconvolved=True,
+        fwhm_guess=3.0,
+    )
+    cat = result.catalog
+    d, j = cKDTree(np.column_stack([x, y])).query(np.column_stack([cat["x"].value, cat["y"].value]))
+    # every star found once, nothing else (one factor for all rows: 15 spurious sources)
+    assert np.all(d < 0.5) and len(cat) == n
+    pull_f = (cat["flux_psf"].value - flux[j]) / cat["flux_psf_err"].value
+    top = y[j] < 128
+    # ~30 and ~90 stars: the standard deviation to 13 % and 7.5 %, 3 sigma 0.4 and 0.23
+    # (here 0.92 and 0.86; one factor for all rows: 1.36 and 0.73)
+    assert np.std(pull_f[top]) == pytest.approx(1.0, abs=0.4)
+    assert np.std(pull_f[~top]) == pytest.approx(1.0, abs=0.23)
+
+
+def test_noise_factor_per_band_of_rows():
+    """Each band's blank-sky variance at its centre, interpolated between, the map's when short."""
+    rng = np.random.default_rng(4)
+    rms = np.where(np.arange(256) < 64, 3.0, 1.0)  # variance 9 in the first band, 1 after
+    snr = (rng.standard_normal((256, 400)) * rms[:, None]).astype(np.float32)
+    no_data = np.zeros(snr.shape, bool)
+    factor = measured_noise_correlation_rows(snr, no_data, band=64)
+    bands = [
+        measured_noise_correlation(snr[a : a + 64], no_data[a : a + 64]) for a in range(0, 256, 64)
+    ]
+    # 25 600 values per band: the variance to ~1 % (3 sigma clipping trims ~3 % of it)
+    assert bands[0] == pytest.approx(9.0, rel=0.05)
+    assert bands[1:] == pytest.approx([1.0] * 3, rel=0.05)
+    # at the bands' centres, linear between them, constant beyond the outer ones
+    centres = [31.5, 95.5, 159.5, 223.5]
+    np.testing.assert_allclose(factor, np.interp(np.arange(256), centres, bands), rtol=1e-12)
+    # bands of fewer than 1000 values with data take the whole map's factor
+    no_data[:, 10:] = True
+    short = measured_noise_correlation_rows(snr, no_data, band=64)
+    np.testing.assert_array_equal(short, measured_noise_correlation(snr, no_data))
 
 
 def test_kernel_grid_matches_rectify_lookup():

@@ -56,7 +56,7 @@ from pipeline.stages.detect._find import (
     filter_scale,
     find_sources,
     inverse_variance,
-    measured_noise_correlation,
+    measured_noise_correlation_rows,
     segment_moments,
     significance_map,
 )
@@ -316,8 +316,9 @@ def detect(
     noise_correlation : float
         rectify's ``NOISECOR`` (> 0): the variance of an aperture sum over the
         sum of the variance plane.  Not used for a deconvolved product, whose
-        factor at the scale of a star is measured on its blank sky instead
-        (:func:`~pipeline.stages.detect._find.measured_noise_correlation`).
+        factor at the scale of a star is measured on its blank sky instead,
+        per band of rows, and multiplies detect's copy of the variance
+        (:func:`~pipeline.stages.detect._find.measured_noise_correlation_rows`).
     deconvolved : bool
         The product was deconvolved (round stars): the smear kernel is not
         applied.
@@ -432,7 +433,11 @@ def detect(
     # their holes in ``var``; float32 ones: a batch of rows at a time as each
     # search filters, from ``var`` (never holed)
     inverse = None if single else inverse_variance(var)
-    if deconvolved:  # the factor at a star's scale, from a first filtering with factor 1
+    if deconvolved:
+        # The factor at a star's scale, measured per band of rows on a first
+        # filtering with factor 1, goes into detect's variance plane: every
+        # use of the noise (the searches' thresholds, the fits' weights and
+        # errors, the apertures' errors) then has its own row's.
         templates = band_templates(lookup, profile, x_centre, image.shape[0], filter_band)
         scale = filter_scale(
             var, lookup, profile, x_centre=x_centre, inverse=inverse, templates=templates
@@ -448,8 +453,14 @@ def detect(
             inverse=inverse,
             templates=templates,
         )
-        noise_correlation = measured_noise_correlation(snr, no_data)
-        filters[profile] = (templates, scale / np.float32(np.sqrt(noise_correlation)))
+        factor = measured_noise_correlation_rows(snr, no_data).astype(var.dtype)[:, None]
+        del snr, scale
+        if np.may_share_memory(var, given_variance):  # the caller's plane stays as it was
+            var, owned = var * factor, True
+        else:
+            var *= factor
+        inverse = None if single else inverse_variance(var)
+        noise_correlation = 1.0
 
     def segment(prof, data=None):
         if prof not in filters:
@@ -1270,6 +1281,8 @@ STAGE = Stage(
     # 11: a fit converges at a step under a tenth of a standard error (was a
     #     hundredth), taken to first order (crowded stretch: every flux and
     #     position within 0.1 sigma, rms 0.001-0.003 sigma)
-    version=11,
+    # 12: a deconvolved product's noise factor measured per band of 64 rows
+    #     and put into the variance (products of deconvolved stretches only)
+    version=12,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
