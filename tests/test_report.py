@@ -333,6 +333,40 @@ def test_sky_uses_the_solved_zero_point_once_there_is_one() -> None:
     assert "NOMINAL" not in ax.get_title() and "solved" in ax.get_title()
 
 
+def test_a_line_time_error_within_its_uncertainty_asks_for_no_correction() -> None:
+    """The line-time error is clocked minus matched, and the matched line time
+    follows the fitted focal length, so its uncertainty is at least the focal
+    scale's. A simulated 256-column night (its clock matched to the drift) fitted
+    focal_scale = +0.00126 +- 0.00145, and the page said "+61.008 us (+1259.6
+    ppm), smear 2.58 pix; correction: add -61.008 us to the line time": advice
+    from noise. Within 3 sigma of zero (common practice) it now says so."""
+    meta = {
+        "line_time_s": 0.0501,
+        "matched_line_time_s": 0.05,
+        "line_time_scale_err": 3e-7,
+        "focal_scale_err": 1e-3,
+    }
+    check = line_time_check(meta, 4096)
+    # quadrature of the two scales' errors, as the docstring derives
+    assert check["relative_err"] == pytest.approx(math.hypot(3e-7, 1e-3), rel=1e-12)
+    assert not check["significant"]  # 0.002 is 2 sigma
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    text = rows["line-time error"]
+    assert text.startswith("+100.000 +- 50.000 us (+2000.0 +- 1000.0 ppm)")
+    assert "within 3 sigma" in text and "correction: add" not in text
+    meta["focal_scale_err"] = 5e-4  # 0.002 is now 4 sigma: a real error, corrected
+    check = line_time_check(meta, 4096)
+    assert check["significant"]
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    assert "correction: add -100.000 us to the line time" in rows["line-time error"]
+
+
+def _with_meta(meta: dict):
+    parameters = scene.solved_products()["astrometry_parameters"].copy()
+    parameters.meta.update(meta)
+    return parameters
+
+
 def test_summary_states_the_solved_numbers() -> None:
     rows = dict(solved_rows(scene.products()))
     assert rows["matched reference stars"] == "321"

@@ -73,7 +73,7 @@ def _error_text(value: float, error: float) -> str:
 
 def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
     """Summary rows of the solved products (astrometry, zero point), or why they are absent."""
-    from pipeline.report._solved import line_time_check
+    from pipeline.report._solved import line_time_check, line_time_text
 
     rows = []
     parameters = products.get("astrometry_parameters")
@@ -104,14 +104,7 @@ def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
         tdi_rows = products.get("tdi_rows")
         if tdi_rows and "line_time_s" in meta and "matched_line_time_s" in meta:
             check = line_time_check(meta, tdi_rows)
-            rows.append(
-                (
-                    "line-time error",
-                    f"{check['error_s'] * 1e6:+.3f} us ({check['relative'] * 1e6:+.1f} ppm), "
-                    f"smear {check['smear_px']:.2f} pix over {tdi_rows} rows; correction: add "
-                    f"{check['correction_s'] * 1e6:+.3f} us to the line time",
-                )
-            )
+            rows.append(("line-time error", line_time_text(check, tdi_rows)))
     intervals = products.get("zp_intervals")
     if intervals is None:
         rows.append(("zero point", "not available (no zeropoint products)"))
