@@ -361,6 +361,22 @@ def test_a_line_time_error_within_its_uncertainty_asks_for_no_correction() -> No
     assert "correction: add -100.000 us to the line time" in rows["line-time error"]
 
 
+def test_a_configured_focal_length_is_not_called_the_spin_period_s() -> None:
+    """With camera.focal_length (no spin period) the nominal focal length is the
+    configured one: the page said "6.00000 m from the spin period" on such nights."""
+    meta = {"focal_length_given": "focal_length"}
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    assert rows["focal length"] == "6.00012 m fitted, 6.00000 m configured (+120 um)"
+    fig = focal_length_figure(_with_meta(meta), scene.TDI_ROWS)
+    assert [t.get_text() for t in fig.axes[0].get_xticklabels()] == [
+        "fitted to the stars",
+        "configured",
+    ]
+    meta = {"focal_length_given": "spin_period"}
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    assert rows["focal length"].endswith("6.00000 m from the spin period (+120 um)")
+
+
 def _with_meta(meta: dict):
     parameters = scene.solved_products()["astrometry_parameters"].copy()
     parameters.meta.update(meta)

@@ -21,6 +21,7 @@ __all__ = [
     "focal_length_figure",
     "line_time_check",
     "line_time_text",
+    "nominal_focal_length_label",
     "residual_map_figure",
     "residuals_along_night_figure",
     "star_flat_figure",
@@ -207,6 +208,19 @@ def line_time_text(check: Mapping[str, Any], tdi_rows: int) -> str:
     )
 
 
+def nominal_focal_length_label(meta: Mapping[str, Any]) -> str:
+    """Where the nominal focal length of the astrometry's parameters came from.
+
+    ``focal_length_from_spin_m`` holds the spin period's focal length when
+    the camera gives a spin period, else the configured ``focal_length``
+    (``focal_length_given`` says which; parameters made before it was
+    recorded are taken as from the spin period).
+    """
+    if meta.get("focal_length_given") == "focal_length":
+        return "configured"
+    return "from the spin period"
+
+
 def focal_length_figure(parameters: Table, tdi_rows: int) -> Figure:
     """Focal length from the fit against the one from the spin; clocked and matched line time.
 
@@ -231,7 +245,7 @@ def focal_length_figure(parameters: Table, tdi_rows: int) -> Figure:
     left, right = fig.subplots(1, 2)
     left.errorbar([0], [fit * 1e3], yerr=[fit_err * 1e3], fmt="o", color="tab:blue", capsize=4)
     left.plot([1], [spin * 1e3], "s", color="tab:green")
-    left.set_xticks([0, 1], ["fitted to the stars", "from the spin period"])
+    left.set_xticks([0, 1], ["fitted to the stars", nominal_focal_length_label(meta)])
     left.set_xlim(-0.6, 1.6)
     left.set_ylabel("focal length (mm)")
     left.set_title(f"difference {1e6 * (fit - spin):+.0f} um", fontsize=9)

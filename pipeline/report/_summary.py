@@ -73,7 +73,11 @@ def _error_text(value: float, error: float) -> str:
 
 def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
     """Summary rows of the solved products (astrometry, zero point), or why they are absent."""
-    from pipeline.report._solved import line_time_check, line_time_text
+    from pipeline.report._solved import (
+        line_time_check,
+        line_time_text,
+        nominal_focal_length_label,
+    )
 
     rows = []
     parameters = products.get("astrometry_parameters")
@@ -97,7 +101,7 @@ def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
             rows.append(
                 (
                     "focal length",
-                    f"{fit:.5f} m fitted, {spin:.5f} m from the spin period "
+                    f"{fit:.5f} m fitted, {spin:.5f} m {nominal_focal_length_label(meta)} "
                     f"({1e6 * (fit - spin):+.0f} um)",
                 )
             )

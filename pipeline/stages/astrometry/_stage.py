@@ -543,6 +543,7 @@ STAGE = Stage(
         *DETECT_WARM,
     ),
     # 2: the stretch WCSs fitted linearly (closer to the solution); 3: a pass
-    # stopped by max_passes (or deconvolved products) is recorded as such
+    # stopped by max_passes (or deconvolved products) is recorded as such;
+    # parameters record focal_length_given
     version=3,
 )
