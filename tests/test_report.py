@@ -515,3 +515,28 @@ def test_the_report_section_is_checked_like_any_other() -> None:
     assert config.stage_options("report") == ReportOptions(nominal_zero_point=24.5)
     with pytest.raises(ConfigError, match="nominal_zeropoint"):
         load_config(template, ["stages.report.nominal_zeropoint=24.5"])
+
+
+def test_the_sources_are_the_last_measurement_of_the_night() -> None:
+    """When astrometry measured the stretches again with the solved smear
+    kernels (passes > 1), the page counts its catalogue, the one the zero point
+    and the science products use, not detect's first one: on a night whose
+    camera was turned 0.3 deg unknown to its config the page said "4727
+    sources (4269 flagged)" from the first measurement with the wrong kernels,
+    where the night's catalogue held 2082."""
+    from astropy.table import QTable
+
+    from pipeline.report import collect_products
+
+    first = QTable({"x": [1.0, 2.0, 3.0, 4.0], "flags": [1, 1, 1, 0]})
+    again = QTable({"x": [1.0, 3.0], "flags": [0, 0], "ref_index": [0, -1]})
+    again.meta["astrometry_passes"] = 3
+    inputs = {"catalog": {"catalog": first}, "astrometry": {"catalog": again}}
+    night = collect_products(inputs, ReportOptions())
+    assert night.products["catalog"] is again
+    rows = dict(summary_rows(night.products))
+    assert rows["sources"] == "2 (0 flagged, as astrometry's pass 3 measured them)"
+    again.meta["astrometry_passes"] = 1  # the same measurement: detect's catalogue stays
+    night = collect_products(inputs, ReportOptions())
+    assert night.products["catalog"] is first
+    assert dict(summary_rows(night.products))["sources"] == "4 (3 flagged)"

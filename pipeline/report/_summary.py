@@ -158,7 +158,9 @@ def summary_rows(products: Mapping[str, Any], status: Any | None = None) -> list
     catalog = products.get("catalog")
     if catalog is not None:
         flagged = int(np.sum(np.asarray(catalog["flags"]) != 0))
-        rows.append(("sources", f"{len(catalog)} ({flagged} flagged)"))
+        passes = int(catalog.meta.get("astrometry_passes", 1))
+        again = f", as astrometry's pass {passes} measured them" if passes > 1 else ""
+        rows.append(("sources", f"{len(catalog)} ({flagged} flagged{again})"))
     else:
         rows.append(("sources", "not available (no detect catalogue)"))
     seeing = products.get("seeing")
