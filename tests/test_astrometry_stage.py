@@ -462,3 +462,21 @@ def test_a_night_whose_kernels_settle_reports_nothing(monkeypatch):
     assert problems == []
     _, passes, problems = _passes_with_kernel_changes(monkeypatch, [0.01], max_passes=1)
     assert passes[0]["next"] == "none" and problems == []
+
+
+def test_an_error_floor_beyond_the_limit_is_a_problem():
+    """The fit's error floor makes its reduced chi-square 1 whatever the
+    residuals: a simulated night whose blocks were time-stamped by a clock 0.5 %
+    off LINETIME (ingest saw 10-row overlaps between its 2048-row blocks) was
+    solved with a floor of 1.54 px (0.79 arcsec; 0.68 arcsec rms along the scan
+    against the truth) and nothing said so. Beyond max_error_floor (0.1 arcsec,
+    twice the 45 mas absolute accuracy of SDSS drift scans, Pier et al. 2003,
+    AJ 125, 1559) it is a problem; the demo-like nights' 0.0096 px is not."""
+    from pipeline.stages.astrometry._stage import error_floor_problem
+
+    problem = error_floor_problem(1.536, 0.5158, 0.1)
+    assert problem is not None and "0.792 arcsec (1.536 px)" in problem
+    assert "max_error_floor=0.1 arcsec" in problem
+    assert error_floor_problem(0.0096, 0.5158, 0.1) is None
+    assert error_floor_problem(0.0, 0.5158, 0.1) is None
+    assert AstrometryStageOptions().max_error_floor == 0.1

@@ -55,6 +55,7 @@ from pipeline.stages.rectify import night_model, stretch_columns
 __all__ = [
     "STAGE",
     "AstrometryStageOptions",
+    "error_floor_problem",
     "kernels_differ",
     "next_pass",
     "reference_columns",
@@ -89,6 +90,12 @@ class AstrometryStageOptions(AstrometryOptions):
         ge=1,
         description="Solutions per night at most: after each, detect measures the stretches "
         "again with the solved geometry's smear kernels if they differ enough (1: never).",
+    )
+    max_error_floor: float = Field(
+        0.1,
+        gt=0,
+        description="Arcsec: an error common to every pair (the fit's error floor) above this "
+        "is reported as a problem: the geometry does not fit the stars.",
     )
     second_pass_noise: float = Field(
         1.0,
@@ -341,6 +348,40 @@ def unconverged_problem(record: dict, why: str) -> str:
     )
 
 
+def error_floor_problem(floor_px: float, pixel_scale: float, limit: float) -> str | None:
+    """The problem line of a solution whose residuals its model does not explain.
+
+    Parameters
+    ----------
+    floor_px : float
+        The fit's error floor: the error common to every pair that makes its
+        reduced chi-square 1, rectified pixels.
+    pixel_scale : float
+        Arcsec per rectified pixel across the scan.
+    limit : float
+        ``stages.astrometry.max_error_floor``, arcsec.  Its default, 0.1
+        arcsec, is twice the absolute accuracy of a well-calibrated drift
+        scan (45 mas rms per coordinate; Pier et al. 2003, AJ 125, 1559):
+        scatter beyond it is the model's, not the stars'.
+
+    Returns
+    -------
+    str or None
+        None when the floor is within the limit.
+    """
+    floor = floor_px * pixel_scale
+    if not floor > limit:
+        return None
+    return (
+        f"the geometry does not fit the stars: every pair needed an extra error of "
+        f"{floor:.3f} arcsec ({floor_px:.3f} px) for a reduced chi-square of 1 (limit "
+        f"stages.astrometry.max_error_floor={limit:g} arcsec), so positions are that "
+        "uncertain; look for what the model lacks (a LINETIME that is not the camera's "
+        "clock: ingest's gaps or overlaps between blocks; a camera section far from the "
+        "solved one)"
+    )
+
+
 def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
     """Solve, and measure again with the solved smear kernels while they differ enough.
 
@@ -478,6 +519,10 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
     solved, passes, problems = _solve_passes(
         inputs, stretches, model, frame, options, reference, ref_mag
     )
+    floor = error_floor_problem(
+        float(solved.solution.fit.error_floor), scale, options.max_error_floor
+    )
+    problems = [*problems, floor] if floor is not None else problems
     catalog = solved.catalog
     for name, values in reference_columns(catalog["ref_index"], reference).items():
         catalog[name] = values
