@@ -378,6 +378,9 @@ def test_recovers_mis_set_geometry(solved_night):
     assert (night.nominal.camera.spin_period is not None) == (night.nominal.latitude < 0)
     summary = solution.summary()
     assert summary["focal_scale_err"] > 0 and np.isfinite(summary["rotation_err"])
+    # the report names the nominal focal length by what the config gave
+    given = "spin_period" if night.nominal.latitude < 0 else "focal_length"
+    assert summary["focal_length_given"] == given
     assert solution.counts["matched"] > 1500
 
 

@@ -400,3 +400,83 @@ def test_the_stage_recovers_a_mis_set_camera_from_the_raw_night(tmp_path, latitu
     status = {stage.name: stage for stage in night_status(config).stages}
     assert status["astrometry"].units["night"] == ("stale", "inputs changed: reference.path")
     assert status["catalog"].units["night"][0] == "done"
+
+
+def _passes_with_kernel_changes(monkeypatch, changes, *, max_passes):
+    """_solve_passes on a stub night whose solutions move the kernels by ``changes``
+    (px, one per pass; error 0.1 px, bright-star centroid noise 0.02 px)."""
+    import dataclasses
+    from types import SimpleNamespace
+
+    from pipeline.stages.astrometry import _stage
+
+    @dataclasses.dataclass
+    class Offsets:
+        rotation: float = 0.0
+
+    catalog = QTable(
+        {"x_err": [0.02] * u.pix, "y_err": [0.02] * u.pix}, meta={"detect_options": {}}
+    )
+    solved = SimpleNamespace(
+        solution=SimpleNamespace(fit=SimpleNamespace(n_used=5, error_floor=0.0), offsets=Offsets()),
+        catalog={"ref_index": np.array([0])},
+    )
+    remaining = list(changes)
+    monkeypatch.setattr(_stage, "solve_catalog", lambda *a, **k: solved)
+    monkeypatch.setattr(_stage, "solved_kernels_of_stretches", lambda kernels, *a, **k: kernels)
+    monkeypatch.setattr(_stage, "kernel_change", lambda a, b: remaining.pop(0))
+    monkeypatch.setattr(_stage, "kernel_change_error", lambda *a, **k: 0.1)
+    monkeypatch.setattr(_stage, "centroid_noise", lambda *a, **k: 0.02)
+    monkeypatch.setattr(_stage, "_remeasure", lambda *a, **k: catalog)
+    monkeypatch.setattr(_stage, "_deconvolved", lambda *a, **k: False)
+    inputs = {"catalog": {"catalog": catalog}, "rectify": [{"smear_kernels": "kernels"}]}
+    options = AstrometryStageOptions(max_passes=max_passes, fit_error_floor=False)
+    return _stage._solve_passes(inputs, [None], None, None, options, {"ra": 0, "dec": 0}, None)
+
+
+def test_a_night_stopped_by_max_passes_says_it_did_not_converge(monkeypatch):
+    """When the last solution max_passes allows still moves the smear kernels
+    (above the threshold and 3 sigma), the stage reports a problem: detect's
+    positions and fluxes were measured with kernels that do not fit the stars.
+    A simulated night whose camera was turned 0.3 deg, tilted 30" east and
+    distorted (k1 = 500) unknown to its config ended after the default 3
+    passes with the kernels still moving by 2.3 px, the focal length fitted
+    16 sigma off and the photometry 0.15 mag off, and nothing said so (7
+    passes converged)."""
+    _, passes, problems = _passes_with_kernel_changes(monkeypatch, [10.0, 6.3, 2.3], max_passes=3)
+    assert [p["next"] for p in passes] == [
+        "measure again with these kernels",
+        "measure again with these kernels",
+        "none: max_passes=3 reached",
+    ]
+    (problem,) = problems
+    assert "did not converge" in problem and "2.300 +- 0.100 px" in problem
+    assert "max_passes=3" in problem
+
+
+def test_a_night_whose_kernels_settle_reports_nothing(monkeypatch):
+    """A change within 3 sigma of its error (0.2 px against 0.1 px) ends the passes
+    without a problem, as does one below the threshold."""
+    _, passes, problems = _passes_with_kernel_changes(monkeypatch, [10.0, 0.2], max_passes=3)
+    assert [p["next"] for p in passes] == ["measure again with these kernels", "none"]
+    assert problems == []
+    _, passes, problems = _passes_with_kernel_changes(monkeypatch, [0.01], max_passes=1)
+    assert passes[0]["next"] == "none" and problems == []
+
+
+def test_an_error_floor_beyond_the_limit_is_a_problem():
+    """The fit's error floor makes its reduced chi-square 1 whatever the
+    residuals: a simulated night whose blocks were time-stamped by a clock 0.5 %
+    off LINETIME (ingest saw 10-row overlaps between its 2048-row blocks) was
+    solved with a floor of 1.54 px (0.79 arcsec; 0.68 arcsec rms along the scan
+    against the truth) and nothing said so. Beyond max_error_floor (0.1 arcsec,
+    twice the 45 mas absolute accuracy of SDSS drift scans, Pier et al. 2003,
+    AJ 125, 1559) it is a problem; the demo-like nights' 0.0096 px is not."""
+    from pipeline.stages.astrometry._stage import error_floor_problem
+
+    problem = error_floor_problem(1.536, 0.5158, 0.1)
+    assert problem is not None and "0.792 arcsec (1.536 px)" in problem
+    assert "max_error_floor=0.1 arcsec" in problem
+    assert error_floor_problem(0.0096, 0.5158, 0.1) is None
+    assert error_floor_problem(0.0, 0.5158, 0.1) is None
+    assert AstrometryStageOptions().max_error_floor == 0.1

@@ -147,3 +147,41 @@ def test_plan_refraction_is_the_models():
     on = TDIModel(Site(**wet), camera, START, 0.0).drift_rate
     off = TDIModel(Site(**wet, pressure=0.0), camera, START, 0.0).drift_rate
     assert s["refraction_ppm"] == pytest.approx((1 - on / off) * 1e6, rel=1e-3)
+
+
+@pytest.mark.parametrize("rotation", [0.0, 0.3, -0.5])
+def test_plan_states_the_cross_scan_drift_of_a_turned_camera(rotation):
+    """A camera turned by a drifts each star across the columns by -N tan(a)
+    over its crossing (rows at angle a to the drift: N rows along, N tan(a)
+    across; Camera's sign convention, derived), a smear rectify cannot undo:
+    -10.7 px for 0.3 deg on 2048 rows. The plan printed nothing of it."""
+    site = Site(latitude=45.0, longitude=10.0, pressure=0.0)
+    camera = Camera(
+        n_columns=1024, tdi_rows=2048, pixel_size=15.0, focal_length=6.0, rotation=rotation
+    )
+    s = summarize_plan(site, camera, start=START)
+    expected = -2048 * np.tan(np.radians(rotation))
+    # 0.02 px: the drift's change over the crossing (the star's rate varies
+    # by ~1e-5 along the track) and the sampled ends
+    assert s["cross_scan_drift_px"] == pytest.approx(expected, abs=0.02)
+    assert "cross-scan drift (rotation)" in format_plan(s)
+
+
+def test_plan_states_the_smear_of_a_configured_line_time():
+    """A line time 0.1 % longer than the drift's smears every star by N x 0.001
+    rows along the scan (DESIGN.md section 4, first order)."""
+    site = Site(latitude=45.0, longitude=10.0)
+    camera = Camera(n_columns=1024, tdi_rows=2048, pixel_size=15.0, focal_length=6.0)
+    matched = summarize_plan(site, camera, start=START)
+    assert matched["line_time_smear_px"] == 0.0
+    slow = Camera(
+        n_columns=1024,
+        tdi_rows=2048,
+        pixel_size=15.0,
+        focal_length=6.0,
+        line_time=matched["matched_line_time_s"] * 1.001,
+    )
+    s = summarize_plan(site, slow, start=START)
+    # float64 rounding only: the same two line times
+    assert s["line_time_smear_px"] == pytest.approx(2048 * 0.001, rel=1e-9)
+    assert "+2.048 px over 2048 rows" in format_plan(s)

@@ -506,3 +506,33 @@ def test_plane_columns_rejects_a_step(tmp_path):
         pytest.raises(ValueError, match="contiguous columns"),
     ):
         products.plane_columns(hdul[1], slice(0, 6, 2))
+
+
+def test_the_night_grid_of_a_product_with_a_sip_wcs_stays_linear():
+    """A science product's primary WCS is TAN-SIP (astrometry's solution); its
+    NIGHT grid (alternate WCS A) is linear: night = CRVAL + CDELT (p - CRPIX)
+    (FITS WCS standard, Greisen & Calabretta 2002, A&A 395, 1061, eq. 3, via
+    astropy.wcs). The SIP convention (Shupe et al. 2005) has no alternate
+    keys, but astropy builds every WCS of the header with the SIP cards,
+    so WCS(header, key='A') put the night grid of a simulated night's science
+    product up to 21 px off; night_grid_wcs leaves them out."""
+    from astropy.wcs import Sip
+
+    sip = WCS(naxis=2)
+    sip.wcs.ctype = ["RA---TAN-SIP", "DEC--TAN-SIP"]
+    sip.wcs.crval = [217.6, 45.1]
+    sip.wcs.crpix = [2048.5, 518.0]
+    sip.wcs.cd = [[1.43e-4, 3e-7], [-3e-7, 1.43e-4]]
+    a = np.zeros((4, 4))
+    b = np.zeros((4, 4))
+    a[1, 1], b[2, 0] = -2.5e-6, 1.25e-6  # the size of the simulated night's terms
+    sip.sip = Sip(a, b, None, None, sip.wcs.crpix)
+    header = sip.to_header(relax=True)
+    header.update(products.night_grid_header(12288, 40, ("X", "Y"), ("along", "across")))
+    pixels = np.array([[0.0, 0.0], [4095.0, 1034.0], [2048.0, 517.0]])
+    night = products.night_grid_wcs(header).all_pix2world(pixels, 0)  # distortions included
+    # float64 rounding only: a linear axis with unit CDELT
+    np.testing.assert_allclose(night, pixels + np.array([12288.0, 40.0]), atol=1e-9)
+    assert "A_ORDER" in header  # the product's own WCS is untouched
+    with pytest.raises(ValueError, match="no NIGHT grid"):
+        products.night_grid_wcs(sip.to_header(relax=True))

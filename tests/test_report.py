@@ -333,6 +333,56 @@ def test_sky_uses_the_solved_zero_point_once_there_is_one() -> None:
     assert "NOMINAL" not in ax.get_title() and "solved" in ax.get_title()
 
 
+def test_a_line_time_error_within_its_uncertainty_asks_for_no_correction() -> None:
+    """The line-time error is clocked minus matched, and the matched line time
+    follows the fitted focal length, so its uncertainty is at least the focal
+    scale's. A simulated 256-column night (its clock matched to the drift) fitted
+    focal_scale = +0.00126 +- 0.00145, and the page said "+61.008 us (+1259.6
+    ppm), smear 2.58 pix; correction: add -61.008 us to the line time": advice
+    from noise. Within 3 sigma of zero (common practice) it now says so."""
+    meta = {
+        "line_time_s": 0.0501,
+        "matched_line_time_s": 0.05,
+        "line_time_scale_err": 3e-7,
+        "focal_scale_err": 1e-3,
+    }
+    check = line_time_check(meta, 4096)
+    # quadrature of the two scales' errors, as the docstring derives
+    assert check["relative_err"] == pytest.approx(math.hypot(3e-7, 1e-3), rel=1e-12)
+    assert not check["significant"]  # 0.002 is 2 sigma
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    text = rows["line-time error"]
+    assert text.startswith("+100.000 +- 50.000 us (+2000.0 +- 1000.0 ppm)")
+    assert "within 3 sigma" in text and "correction: add" not in text
+    meta["focal_scale_err"] = 5e-4  # 0.002 is now 4 sigma: a real error, corrected
+    check = line_time_check(meta, 4096)
+    assert check["significant"]
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    assert "correction: add -100.000 us to the line time" in rows["line-time error"]
+
+
+def test_a_configured_focal_length_is_not_called_the_spin_period_s() -> None:
+    """With camera.focal_length (no spin period) the nominal focal length is the
+    configured one: the page said "6.00000 m from the spin period" on such nights."""
+    meta = {"focal_length_given": "focal_length"}
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    assert rows["focal length"] == "6.00012 m fitted, 6.00000 m configured (+120 um)"
+    fig = focal_length_figure(_with_meta(meta), scene.TDI_ROWS)
+    assert [t.get_text() for t in fig.axes[0].get_xticklabels()] == [
+        "fitted to the stars",
+        "configured",
+    ]
+    meta = {"focal_length_given": "spin_period"}
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    assert rows["focal length"].endswith("6.00000 m from the spin period (+120 um)")
+
+
+def _with_meta(meta: dict):
+    parameters = scene.solved_products()["astrometry_parameters"].copy()
+    parameters.meta.update(meta)
+    return parameters
+
+
 def test_summary_states_the_solved_numbers() -> None:
     rows = dict(solved_rows(scene.products()))
     assert rows["matched reference stars"] == "321"
@@ -465,3 +515,28 @@ def test_the_report_section_is_checked_like_any_other() -> None:
     assert config.stage_options("report") == ReportOptions(nominal_zero_point=24.5)
     with pytest.raises(ConfigError, match="nominal_zeropoint"):
         load_config(template, ["stages.report.nominal_zeropoint=24.5"])
+
+
+def test_the_sources_are_the_last_measurement_of_the_night() -> None:
+    """When astrometry measured the stretches again with the solved smear
+    kernels (passes > 1), the page counts its catalogue, the one the zero point
+    and the science products use, not detect's first one: on a night whose
+    camera was turned 0.3 deg unknown to its config the page said "4727
+    sources (4269 flagged)" from the first measurement with the wrong kernels,
+    where the night's catalogue held 2082."""
+    from astropy.table import QTable
+
+    from pipeline.report import collect_products
+
+    first = QTable({"x": [1.0, 2.0, 3.0, 4.0], "flags": [1, 1, 1, 0]})
+    again = QTable({"x": [1.0, 3.0], "flags": [0, 0], "ref_index": [0, -1]})
+    again.meta["astrometry_passes"] = 3
+    inputs = {"catalog": {"catalog": first}, "astrometry": {"catalog": again}}
+    night = collect_products(inputs, ReportOptions())
+    assert night.products["catalog"] is again
+    rows = dict(summary_rows(night.products))
+    assert rows["sources"] == "2 (0 flagged, as astrometry's pass 3 measured them)"
+    again.meta["astrometry_passes"] = 1  # the same measurement: detect's catalogue stays
+    night = collect_products(inputs, ReportOptions())
+    assert night.products["catalog"] is first
+    assert dict(summary_rows(night.products))["sources"] == "4 (3 flagged)"

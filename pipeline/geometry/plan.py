@@ -43,6 +43,24 @@ def _track_shape(model: TDIModel, column_offset: float) -> dict[str, float]:
     }
 
 
+def _cross_scan_drift(model: TDIModel) -> float:
+    """Exact column change of the chip-centre star from entry to exit, pixels.
+
+    Zero for rows that run along the drift; a turned camera
+    (``camera.rotation`` ``a``) makes a star drift across the columns by
+    about ``-N tan(a)`` over its crossing (towards decreasing column for a
+    positive angle, see :class:`~pipeline.geometry.instrument.Camera`): a
+    cross-scan smear no rectification undoes.  The bow's ends lie at one
+    column, so it does not enter.
+    """
+    ra, dec = model.sky_from_focal_plane(
+        model.n_rows / 2.0, (model.camera.n_columns - 1) / 2.0, model.duration / 2.0
+    )
+    n = 65  # samples at the midpoints of equal steps: the ends are 1/(2n) in
+    c = model.track(ra, dec, n_samples=n).c[0]
+    return float((c[-1] - c[0]) * n / (n - 1))
+
+
 def summarize_plan(
     site: Site,
     camera: Camera,
@@ -76,7 +94,11 @@ def summarize_plan(
         ``edges`` (``{'north': {...}, 'south': {...}}`` with exact
         ``slip_px``, ``sagitta_px``, ``centroid_offset_px`` and first-order
         ``slip_first_order_px``, ``sagitta_first_order_px``),
-        ``centre_sagitta_px``, and, with ``spin_period_error_s``,
+        ``centre_sagitta_px``, ``cross_scan_drift_px`` (the chip-centre
+        star's column change over its crossing: the camera rotation's
+        cross-scan smear), ``line_time_smear_px`` (``N (dt / dt_matched -
+        1)`` rows of along-scan smear from the configured line time, 0 when
+        it is the matched one), and, with ``spin_period_error_s``,
         ``spin_period_error_s``, ``focal_length_error_m``,
         ``line_time_error_s``, ``spin_error_smear_px``.
     """
@@ -128,6 +150,9 @@ def summarize_plan(
         "n_columns": camera.n_columns,
         "edges": edges,
         "centre_sagitta_px": _track_shape(model, 0.0)["sagitta_px"],
+        "cross_scan_drift_px": _cross_scan_drift(model),
+        # a rate mismatch accumulates one relative error per row (DESIGN.md section 4)
+        "line_time_smear_px": n * (model.line_time / model.matched_line_time - 1.0),
     }
     if spin_period_error_s is not None:
         rel_f = 2.0 * spin_period_error_s / spin  # df/f = -2 dw/w = +2 dT/T
@@ -170,6 +195,15 @@ def format_plan(summary: dict) -> str:
             (f"{name} edge centroid offset", f"{e['centroid_offset_px']:+.4f} px cross-scan"),
         ]
     rows.append(("centre track sagitta", f"{s['centre_sagitta_px']:+.4f} px"))
+    rows.append(
+        ("cross-scan drift (rotation)", f"{s['cross_scan_drift_px']:+.3f} px over the crossing")
+    )
+    rows.append(
+        (
+            "line-time smear",
+            f"{s['line_time_smear_px']:+.3f} px over {s['n_rows']} rows (line time vs matched)",
+        )
+    )
     if "spin_period_error_s" in s:
         rows += [
             ("spin period error", f"{s['spin_period_error_s']:+.6f} s"),

@@ -227,11 +227,13 @@ def smear_figure(
     ax.set_xlabel("rectified row y, across the scan (the chip's columns) (pix)")
     ax.set_ylabel("rms width in window (pix)")
     title = f"{len(widths)} bright isolated stars, median per band of {n_rows // bands} rows"
-    if line_time is not None:
+    if line_time is not None and line_time.get("significant", True):
         title += (
             f"; line time off by {line_time['error_s'] * 1e6:+.2f} us "
             f"({line_time['relative'] * 1e6:+.0f} ppm): smear {line_time['smear_px']:.2f} pix"
         )
+    elif line_time is not None:
+        title += "; line-time error within 3 sigma of zero"
     ax.set_title(title, fontsize=9)
     ax.legend(loc="best", fontsize="small", ncols=2)
     ax.grid(alpha=0.3)

@@ -20,6 +20,8 @@ from pipeline.report._clock import FIGURE_SIZE, NightClock, _clock_text, time_ax
 __all__ = [
     "focal_length_figure",
     "line_time_check",
+    "line_time_text",
+    "nominal_focal_length_label",
     "residual_map_figure",
     "residuals_along_night_figure",
     "star_flat_figure",
@@ -130,7 +132,7 @@ def _parameter(parameters: Table, name: str) -> tuple[float, float] | None:
     return float(row["value"]), float(row["error"])
 
 
-def line_time_check(meta: Mapping[str, Any], tdi_rows: int) -> dict[str, float]:
+def line_time_check(meta: Mapping[str, Any], tdi_rows: int) -> dict[str, Any]:
     """The line-time error the solution implies, its correction and the smear it causes.
 
     Parameters
@@ -138,7 +140,9 @@ def line_time_check(meta: Mapping[str, Any], tdi_rows: int) -> dict[str, float]:
     meta : mapping
         The astrometry ``parameters`` table's meta: ``line_time_s`` (the
         clocking the fit measured) and ``matched_line_time_s`` (the one that
-        matches the stars' drift at the chip centre), seconds.
+        matches the stars' drift at the chip centre), seconds; and, when
+        fitted, ``line_time_scale_err`` and ``focal_scale_err`` (1-sigma,
+        dimensionless), from which the error's uncertainty follows.
     tdi_rows : int
         Rows a charge packet is clocked over.
 
@@ -150,18 +154,71 @@ def line_time_check(meta: Mapping[str, Any], tdi_rows: int) -> dict[str, float]:
         minus the error) and ``smear_px``: how far the charge drifts from its
         star over the ``tdi_rows`` rows, ``tdi_rows * |relative|`` pixels
         (a rate mismatch accumulates one relative error per row; common
-        practice for TDI).
+        practice for TDI).  ``relative_err`` and ``error_err_s`` are the
+        1-sigma uncertainties of ``relative`` and ``error_s`` (NaN when the
+        meta records neither scale's error), and ``significant`` says
+        whether the error lies more than 3 of them from zero (True when
+        unknown).  The matched line time is proportional to the focal
+        length (one line is one pixel of drift), so ``relative`` is about
+        ``line_time_scale - focal_scale``; its uncertainty is taken as the
+        two errors in quadrature, leaving out their covariance (derived; the
+        clocking is measured along the night, the scale across the chip).
     """
     clocked = float(meta["line_time_s"])
     matched = float(meta["matched_line_time_s"])
     error = clocked - matched
     relative = error / matched
+    errors = [float(meta[k]) for k in ("line_time_scale_err", "focal_scale_err") if k in meta]
+    relative_err = float(np.sqrt(np.sum(np.square(errors)))) if errors else float("nan")
     return {
         "error_s": error,
         "relative": relative,
         "correction_s": -error,
         "smear_px": abs(relative) * tdi_rows,
+        "relative_err": relative_err,
+        "error_err_s": relative_err * matched,
+        # 3 sigma: common practice for calling a measured offset real
+        "significant": not abs(relative) <= 3.0 * relative_err,
     }
+
+
+def line_time_text(check: Mapping[str, Any], tdi_rows: int) -> str:
+    """The line-time error in words: value, uncertainty, smear and what to do.
+
+    Parameters
+    ----------
+    check : mapping
+        :func:`line_time_check`'s result.
+    tdi_rows : int
+        Rows a charge packet is clocked over.
+    """
+    error_us, relative_ppm = check["error_s"] * 1e6, check["relative"] * 1e6
+    if np.isfinite(check["relative_err"]):
+        value = (
+            f"{error_us:+.3f} +- {check['error_err_s'] * 1e6:.3f} us ({relative_ppm:+.1f} +- "
+            f"{check['relative_err'] * 1e6:.1f} ppm)"
+        )
+    else:
+        value = f"{error_us:+.3f} us ({relative_ppm:+.1f} ppm)"
+    if not check["significant"]:
+        return f"{value}: within 3 sigma of zero, no correction indicated"
+    return (
+        f"{value}, smear {check['smear_px']:.2f} pix over {tdi_rows} rows; correction: add "
+        f"{check['correction_s'] * 1e6:+.3f} us to the line time"
+    )
+
+
+def nominal_focal_length_label(meta: Mapping[str, Any]) -> str:
+    """Where the nominal focal length of the astrometry's parameters came from.
+
+    ``focal_length_from_spin_m`` holds the spin period's focal length when
+    the camera gives a spin period, else the configured ``focal_length``
+    (``focal_length_given`` says which; parameters made before it was
+    recorded are taken as from the spin period).
+    """
+    if meta.get("focal_length_given") == "focal_length":
+        return "configured"
+    return "from the spin period"
 
 
 def focal_length_figure(parameters: Table, tdi_rows: int) -> Figure:
@@ -188,7 +245,7 @@ def focal_length_figure(parameters: Table, tdi_rows: int) -> Figure:
     left, right = fig.subplots(1, 2)
     left.errorbar([0], [fit * 1e3], yerr=[fit_err * 1e3], fmt="o", color="tab:blue", capsize=4)
     left.plot([1], [spin * 1e3], "s", color="tab:green")
-    left.set_xticks([0, 1], ["fitted to the stars", "from the spin period"])
+    left.set_xticks([0, 1], ["fitted to the stars", nominal_focal_length_label(meta)])
     left.set_xlim(-0.6, 1.6)
     left.set_ylabel("focal length (mm)")
     left.set_title(f"difference {1e6 * (fit - spin):+.0f} um", fontsize=9)
@@ -199,11 +256,17 @@ def focal_length_figure(parameters: Table, tdi_rows: int) -> Figure:
     right.set_xticks([0, 1], ["clocked (fit)", "matching the drift"])
     right.set_xlim(-0.6, 1.6)
     right.set_ylabel("line time (ms)")
-    right.set_title(
-        f"error {check['error_s'] * 1e6:+.2f} us; correction {check['correction_s'] * 1e6:+.2f} "
-        f"us; smear {check['smear_px']:.2f} pix",
-        fontsize=9,
-    )
+    if check["significant"]:
+        title = (
+            f"error {check['error_s'] * 1e6:+.2f} us; correction "
+            f"{check['correction_s'] * 1e6:+.2f} us; smear {check['smear_px']:.2f} pix"
+        )
+    else:
+        title = (
+            f"error {check['error_s'] * 1e6:+.2f} +- {check['error_err_s'] * 1e6:.2f} us: "
+            "within 3 sigma of zero"
+        )
+    right.set_title(title, fontsize=9)
     for ax in (left, right):
         ax.ticklabel_format(axis="y", useOffset=False)
         ax.grid(alpha=0.3)

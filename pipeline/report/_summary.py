@@ -73,7 +73,11 @@ def _error_text(value: float, error: float) -> str:
 
 def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
     """Summary rows of the solved products (astrometry, zero point), or why they are absent."""
-    from pipeline.report._solved import line_time_check
+    from pipeline.report._solved import (
+        line_time_check,
+        line_time_text,
+        nominal_focal_length_label,
+    )
 
     rows = []
     parameters = products.get("astrometry_parameters")
@@ -97,21 +101,14 @@ def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
             rows.append(
                 (
                     "focal length",
-                    f"{fit:.5f} m fitted, {spin:.5f} m from the spin period "
+                    f"{fit:.5f} m fitted, {spin:.5f} m {nominal_focal_length_label(meta)} "
                     f"({1e6 * (fit - spin):+.0f} um)",
                 )
             )
         tdi_rows = products.get("tdi_rows")
         if tdi_rows and "line_time_s" in meta and "matched_line_time_s" in meta:
             check = line_time_check(meta, tdi_rows)
-            rows.append(
-                (
-                    "line-time error",
-                    f"{check['error_s'] * 1e6:+.3f} us ({check['relative'] * 1e6:+.1f} ppm), "
-                    f"smear {check['smear_px']:.2f} pix over {tdi_rows} rows; correction: add "
-                    f"{check['correction_s'] * 1e6:+.3f} us to the line time",
-                )
-            )
+            rows.append(("line-time error", line_time_text(check, tdi_rows)))
     intervals = products.get("zp_intervals")
     if intervals is None:
         rows.append(("zero point", "not available (no zeropoint products)"))
@@ -161,7 +158,9 @@ def summary_rows(products: Mapping[str, Any], status: Any | None = None) -> list
     catalog = products.get("catalog")
     if catalog is not None:
         flagged = int(np.sum(np.asarray(catalog["flags"]) != 0))
-        rows.append(("sources", f"{len(catalog)} ({flagged} flagged)"))
+        passes = int(catalog.meta.get("astrometry_passes", 1))
+        again = f", as astrometry's pass {passes} measured them" if passes > 1 else ""
+        rows.append(("sources", f"{len(catalog)} ({flagged} flagged{again})"))
     else:
         rows.append(("sources", "not available (no detect catalogue)"))
     seeing = products.get("seeing")

@@ -75,4 +75,8 @@ STAGE = Stage(
     uses=("site", "camera"),
     partial_inputs=True,
     description="The night's HTML report page: problems, summary and figures.",
+    # 2: a line-time error within 3 sigma of zero asks for no correction; a
+    # configured focal length is not called the spin period's; the sources are
+    # astrometry's last measurement when it measured again
+    version=2,
 )

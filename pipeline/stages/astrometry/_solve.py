@@ -570,6 +570,10 @@ class AstrometricSolution:
             along_scan_offset_px=self.along_scan_offset,
             focal_length_m=self.focal_length,
             focal_length_from_spin_m=self.focal_length_from_spin,
+            # what the config gave: the nominal focal length is the spin period's only then
+            focal_length_given=(
+                "focal_length" if self.model.camera.spin_period is None else "spin_period"
+            ),
             line_time_s=self.line_time,
             matched_line_time_s=self.matched_line_time,
         )

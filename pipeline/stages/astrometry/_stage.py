@@ -45,14 +45,23 @@ from pipeline.stages.astrometry._second_pass import (
     solved_kernels_of_stretches,
 )
 from pipeline.stages.astrometry._wcs import solved_wcs, wcs_sky
-from pipeline.stages.base import BLOCK_INDEX, Stage
+from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, Stage
 from pipeline.stages.catalog import stack_catalogs
 from pipeline.stages.detect import WARM as DETECT_WARM
 from pipeline.stages.detect import DetectOptions, detect_stretch
 from pipeline.stages.rectify import WARM as RECTIFY_WARM
 from pipeline.stages.rectify import night_model, stretch_columns
 
-__all__ = ["STAGE", "AstrometryStageOptions", "reference_columns", "stretch_wcs_cards"]
+__all__ = [
+    "STAGE",
+    "AstrometryStageOptions",
+    "error_floor_problem",
+    "kernels_differ",
+    "next_pass",
+    "reference_columns",
+    "stretch_wcs_cards",
+    "unconverged_problem",
+]
 
 log = logging.getLogger(__name__)
 
@@ -81,6 +90,12 @@ class AstrometryStageOptions(AstrometryOptions):
         ge=1,
         description="Solutions per night at most: after each, detect measures the stretches "
         "again with the solved geometry's smear kernels if they differ enough (1: never).",
+    )
+    max_error_floor: float = Field(
+        0.1,
+        gt=0,
+        description="Arcsec: an error common to every pair (the fit's error floor) above this "
+        "is reported as a problem: the geometry does not fit the stars.",
     )
     second_pass_noise: float = Field(
         1.0,
@@ -238,12 +253,142 @@ def _kernel_tables(rectified, n_stretches: int) -> list:
     return [rectified[i]["smear_kernels"] for i in range(n_stretches)]
 
 
+def kernels_differ(change: float, error: float, threshold: float) -> bool:
+    """Whether the solved geometry's smear kernels differ from those detect used.
+
+    Parameters
+    ----------
+    change : float
+        Largest displacement of a kernel sample between the kernels detect
+        measured with and the solved geometry's, pixels
+        (:func:`~pipeline.stages.astrometry._second_pass.kernel_change`).
+    error : float
+        Its 1-sigma uncertainty from the solution's covariance, pixels.
+    threshold : float
+        ``second_pass_noise`` times the bright stars' centroid noise, pixels.
+
+    Returns
+    -------
+    bool
+        True for a change both larger than the bright stars' noise and known:
+        above 3 sigma of the solution's own uncertainty (common practice),
+        else the passes would chase the fit's noise.
+    """
+    return bool(change > threshold and change > 3.0 * error)
+
+
+def next_pass(
+    wanted: bool, n_done: int, max_passes: int, *, deconvolved: bool = False
+) -> tuple[bool, str, str | None]:
+    """What follows a solution: another measurement, or the end (and why).
+
+    Parameters
+    ----------
+    wanted : bool
+        Whether the solved kernels differ enough from the ones measured with
+        (:func:`kernels_differ`).
+    n_done : int
+        Solutions made so far, this one included.
+    max_passes : int
+        ``stages.astrometry.max_passes``.
+    deconvolved : bool, optional
+        Whether the rectified products were deconvolved with the configured
+        kernels (another measurement of the same planes cannot help).
+
+    Returns
+    -------
+    again : bool
+        Whether detect measures the stretches again with the solved kernels.
+    next : str
+        What followed, for the pass's record.
+    problem : str or None
+        Why the night ended with kernels that do not match its stars: the
+        positions and fluxes were measured with a wrong model, so the
+        solution (and the photometry after it) may be biased.  None when the
+        kernels match, or another pass follows.
+    """
+    if not wanted:
+        return False, "none", None
+    if deconvolved:
+        return (
+            False,
+            "none: the products are deconvolved with the configured kernels (rerun "
+            "rectify with a corrected camera section)",
+            "the rectified products are deconvolved with the configured kernels: rerun "
+            "from rectify with the camera section set nearer the solved geometry "
+            "(parameters.ecsv)",
+        )
+    if n_done >= max_passes:
+        return (
+            False,
+            f"none: max_passes={max_passes} reached",
+            f"stages.astrometry.max_passes={max_passes} reached: raise it, or set the camera "
+            "section nearer the solved geometry (parameters.ecsv) and rerun from rectify",
+        )
+    return True, "measure again with these kernels", None
+
+
+def unconverged_problem(record: dict, why: str) -> str:
+    """The problem line of a night whose last solution still moves the smear kernels.
+
+    Parameters
+    ----------
+    record : dict
+        The last pass's record (``kernel_change_px``, ``kernel_change_error_px``,
+        ``threshold_px``, ``pass``).
+    why : str
+        Why no further pass was made, and the fix (from :func:`next_pass`).
+    """
+    return (
+        f"astrometry did not converge: after {record['pass']} pass(es) the solved geometry "
+        f"still moves the stars' smear kernels by {record['kernel_change_px']:.3f} +- "
+        f"{record['kernel_change_error_px']:.3f} px (threshold "
+        f"{record['threshold_px']:.3f} px), so positions and fluxes were measured with "
+        f"kernels that do not fit the stars and the solution may be biased; {why}"
+    )
+
+
+def error_floor_problem(floor_px: float, pixel_scale: float, limit: float) -> str | None:
+    """The problem line of a solution whose residuals its model does not explain.
+
+    Parameters
+    ----------
+    floor_px : float
+        The fit's error floor: the error common to every pair that makes its
+        reduced chi-square 1, rectified pixels.
+    pixel_scale : float
+        Arcsec per rectified pixel across the scan.
+    limit : float
+        ``stages.astrometry.max_error_floor``, arcsec.  Its default, 0.1
+        arcsec, is twice the absolute accuracy of a well-calibrated drift
+        scan (45 mas rms per coordinate; Pier et al. 2003, AJ 125, 1559):
+        scatter beyond it is the model's, not the stars'.
+
+    Returns
+    -------
+    str or None
+        None when the floor is within the limit.
+    """
+    floor = floor_px * pixel_scale
+    if not floor > limit:
+        return None
+    return (
+        f"the geometry does not fit the stars: every pair needed an extra error of "
+        f"{floor:.3f} arcsec ({floor_px:.3f} px) for a reduced chi-square of 1 (limit "
+        f"stages.astrometry.max_error_floor={limit:g} arcsec), so positions are that "
+        "uncertain; look for what the model lacks (a LINETIME that is not the camera's "
+        "clock: ingest's gaps or overlaps between blocks; a camera section far from the "
+        "solved one)"
+    )
+
+
 def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
     """Solve, and measure again with the solved smear kernels while they differ enough.
 
-    Returns the last solution and one record per pass (what the kernels
+    Returns the last solution, one record per pass (what the kernels
     followed, the kernel change the solution implies, the threshold, the
-    decision), for the parameters' provenance.
+    decision), for the parameters' provenance, and the problems: one line
+    when the last solution still moves the kernels (:func:`next_pass`).
     """
     catalog = inputs["catalog"]["catalog"]
     detect_options = _detect_options(catalog)
@@ -312,19 +457,11 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
                 k: float(v) for k, v in dataclasses.asdict(solved.solution.offsets).items()
             },
         }
-        # measured again only for a change both larger than the bright stars'
-        # noise and known: 3 sigma of the solution's own uncertainty (common
-        # practice), else the passes would chase the fit's noise
-        again = bool(change > threshold and change > 3.0 * error)
-        again &= len(passes) + 1 < options.max_passes
-        if again and _deconvolved(inputs["rectify"], len(stretches)):
-            record["next"] = (
-                "none: the products are deconvolved with the configured kernels (rerun "
-                "rectify with a corrected camera section)"
-            )
-            again = False
-        else:
-            record["next"] = "measure again with these kernels" if again else "none"
+        wanted = kernels_differ(change, error, threshold)
+        deconvolved = wanted and _deconvolved(inputs["rectify"], len(stretches))
+        again, record["next"], problem = next_pass(
+            wanted, record["pass"], options.max_passes, deconvolved=deconvolved
+        )
         passes.append(record)
         log.info(
             "astrometry pass %d: %d matched, smear kernels move by %.3f +- %.3f px "
@@ -338,7 +475,8 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
             record["next"],
         )
         if not again:
-            return solved, passes
+            problems = [] if problem is None else [unconverged_problem(record, problem)]
+            return solved, passes, problems
         guide = solved
         if options.fit_error_floor:  # only a pass that is followed needs it
             guide = solve_catalog(
@@ -378,7 +516,13 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
     ref_mag = None
     if "mag" in reference.colnames:
         ref_mag = u.Quantity(reference["mag"], u.mag).value
-    solved, passes = _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag)
+    solved, passes, problems = _solve_passes(
+        inputs, stretches, model, frame, options, reference, ref_mag
+    )
+    floor = error_floor_problem(
+        float(solved.solution.fit.error_floor), scale, options.max_error_floor
+    )
+    problems = [*problems, floor] if floor is not None else problems
     catalog = solved.catalog
     for name, values in reference_columns(catalog["ref_index"], reference).items():
         catalog[name] = values
@@ -410,12 +554,15 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
         len(catalog),
         worst,
     )
-    return {
+    out = {
         "catalog": catalog,
         "parameters": parameters,
         "residual_grid": solved.grid,
         "wcs": wcs,
     }
+    if problems:
+        out[PROBLEMS] = problems
+    return out
 
 
 #: Declaration of the astrometry stage: night scope, after catalog; it reads the
@@ -440,6 +587,8 @@ STAGE = Stage(
         "pyarrow.csv",
         *DETECT_WARM,
     ),
-    # 2: the stretch WCSs fitted linearly (closer to the solution)
-    version=2,
+    # 2: the stretch WCSs fitted linearly (closer to the solution); 3: a pass
+    # stopped by max_passes (or deconvolved products) is recorded as such;
+    # parameters record focal_length_given
+    version=3,
 )
