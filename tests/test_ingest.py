@@ -108,6 +108,21 @@ def test_header_values_and_keyword_map():
     assert info.date_obs.scale == "utc"
 
 
+def test_a_date_obs_without_time_of_day_is_rejected_with_the_reason():
+    """DATE-OBS='2026-03-20' (a date alone, which the FITS standard's datetime
+    format allows) used to read as midnight: every block of a night then
+    started at 00:00, each 'overlapped' the one before and its rows 'won', so
+    the night collapsed onto one block's rows with a message about overlaps."""
+    header = make_header(1, **{"DATE-OBS": "2026-03-20", "TIME-OBS": "02:00:02.000"})
+    with pytest.raises(IngestError, match=r"b1.fits: DATE-OBS='2026-03-20' gives a date without"):
+        parse_block_header(header, "b1.fits")
+    with pytest.raises(IngestError, match=r"TIME-OBS='02:00:02.000' may hold the time"):
+        parse_block_header(header, "b1.fits")
+    # A full date and time still reads, to the millisecond.
+    info = parse_block_header(make_header(1, **{"DATE-OBS": "2026-03-20T02:00:02.000"}))
+    assert info.date_obs.isot == "2026-03-20T02:00:02.000"
+
+
 def test_tai_date_obs_is_converted_to_utc():
     # TAI - UTC = 37 s since 2017 (IERS Bulletin C).
     header = make_header(0, TIMESYS="TAI")

@@ -728,5 +728,6 @@ STAGE = Stage(
     # 4: blocks without usable pixels or out of order are rejected, header
     # sites compared with the config
     # 5: units on gain, read_noise, saturation
-    version=5,
+    # 6: a DATE-OBS without a time of day is rejected (it read as midnight)
+    version=6,
 )
