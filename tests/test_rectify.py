@@ -25,6 +25,7 @@ from pipeline.stages.detect._model import KernelGrid
 from pipeline.stages.rectify import (
     STAGE,
     RectifyOptions,
+    night_line_time,
     night_model,
     rectify,
     smear_kernel_at,
@@ -881,3 +882,21 @@ def test_recorded_lattice_offsets_are_where_strip_pixels_land():
             assert abs(wrapped) < 0.01, (xm, ym, response)
         checked += 1
     assert checked > 50
+
+
+def test_line_times_that_differ_by_header_rounding_are_one_line_time():
+    """One block's LINETIME printed with 7 decimals (0.0458929 s against
+    0.045892920031762555 s, 4.4e-7 apart) used to fail rectify, and so the
+    whole night, on every stretch: 'the line time changes within the night'.
+    Over the night's 5120 rows the two give row times 0.002 rows apart
+    (derived), so they are one line time: the one of the most rows."""
+    line_times = np.array([0.045892920031762555] * 3 + [0.0458929] + [0.045892920031762555])
+    rows = np.full(5, 1024)
+    assert night_line_time(line_times, rows, 5120) == 0.045892920031762555
+    # The rounded value on most rows wins; equally common values take the shortest.
+    mostly_rounded = np.array([0.0458929] * 3 + [0.045892920031762555] * 2)
+    assert night_line_time(mostly_rounded, rows, 5120) == 0.0458929
+    assert night_line_time(np.array([0.05, 0.05 + 1e-9]), np.array([10, 10]), 100) == 0.05
+    # A real change of the clock is still refused: 1e-5 relative is 0.05 rows over 5120.
+    with pytest.raises(ValueError, match=r"differ by 0.0512 rows over its 5120 rows"):
+        night_line_time(np.array([0.05, 0.05 * (1 + 1e-5)]), np.array([2560, 2560]), 5120)

@@ -114,6 +114,7 @@ __all__ = [
     "STAGE",
     "RectifiedStretch",
     "RectifyOptions",
+    "night_line_time",
     "night_model",
     "rectify",
     "smear_kernel_at",
@@ -274,14 +275,54 @@ def night_model(site: Site, camera: Camera, block_index: Table, n_rows: int) -> 
     start = block_index.meta.get("reference_time")
     if start is None or len(block_index) == 0:
         raise ValueError("the block index is empty; ingest found no usable block this night.")
-    line_times = np.unique(np.asarray(block_index["line_time"], dtype=float))
-    if line_times.max() - line_times.min() > 1e-9 * line_times.max():
-        raise ValueError(
-            f"the line time changes within the night ({line_times.tolist()} s); rectify "
-            "needs one line time per night: reduce the parts as separate nights."
-        )
-    dt = float(line_times[0])
+    dt = night_line_time(
+        np.asarray(block_index["line_time"], dtype=float),
+        np.asarray(block_index["n_rows"], dtype=np.int64),
+        n_rows,
+    )
     return _cached_model(site, camera, str(start), n_rows * dt, dt)
+
+
+#: Line times of a night's blocks are one line time when the row times they
+#: give differ by at most this many rows over the whole night (headers that
+#: print the same clock with another number of digits).
+LINE_TIME_TOLERANCE_ROWS = 0.01
+
+
+def night_line_time(line_times: np.ndarray, block_rows: np.ndarray, n_rows: int) -> float:
+    """The one line time of a night whose blocks' LINETIME may differ by rounding.
+
+    Parameters
+    ----------
+    line_times : ndarray of float, shape (n_blocks,)
+        Each block's LINETIME, s.
+    block_rows : ndarray of int, shape (n_blocks,)
+        Each block's rows.
+    n_rows : int
+        Night rows (scan axis).
+
+    Returns
+    -------
+    float
+        The line time of the most rows (the shortest of equally common ones), s.
+
+    Raises
+    ------
+    ValueError
+        If the line times differ so much that the row times they give over
+        the night's ``n_rows`` rows differ by more than
+        :data:`LINE_TIME_TOLERANCE_ROWS` rows.
+    """
+    values, where = np.unique(line_times, return_inverse=True)
+    if (values[-1] - values[0]) * n_rows > LINE_TIME_TOLERANCE_ROWS * values[0]:
+        raise ValueError(
+            f"the line time changes within the night ({values.tolist()} s: the row times "
+            f"differ by {(values[-1] - values[0]) * n_rows / values[0]:.3g} rows over its "
+            f"{n_rows} rows, more than {LINE_TIME_TOLERANCE_ROWS}); rectify needs one line "
+            "time per night: reduce the parts as separate nights."
+        )
+    rows = np.bincount(where.ravel(), weights=block_rows, minlength=values.size)
+    return float(values[np.argmax(rows)])
 
 
 def stretch_columns(
