@@ -390,6 +390,27 @@ def test_contiguous_night_is_one_segment():
     assert rows["covered"].all()
 
 
+def test_a_gain_that_changes_mid_night_is_reported_and_the_rows_stay_one_segment():
+    """A block whose header says GAIN=1.0 among blocks of 2.0 e-/ADU halves its
+    fluxes in e-; it used to pass without a word, and the astrometry of a
+    simulated night then failed on its transparency ('the solved WCS ... is
+    0.0416 px off the solution ...') with nothing pointing at the header."""
+    infos = [
+        parse_block_header(make_header(seq, GAIN=1.0 if seq == 1 else 2.0), f"b{seq}.fits")
+        for seq in range(3)
+    ]
+    night = index_night(infos)
+    assert night.n_segments == 1  # calibrate follows the gain row by row
+    assert night.problems == [
+        "b1.fits: readout changed mid-night (GAIN 2.0 -> 1.0 e-/ADU); calibrated with its own "
+        "values: check the header if the camera's readout mode did not change.",
+        "b2.fits: readout changed mid-night (GAIN 1.0 -> 2.0 e-/ADU); calibrated with its own "
+        "values: check the header if the camera's readout mode did not change.",
+    ]
+    same = [parse_block_header(make_header(seq), f"b{seq}.fits") for seq in range(3)]
+    assert index_night(same).problems == []
+
+
 def test_gap_overlap_duplicate_and_change_are_reported():
     infos = [parse_block_header(make_header(seq), f"b{seq}.fits") for seq in (0, 1, 3)]
     infos.append(parse_block_header(make_header(1), "b1_copy.fits"))

@@ -492,6 +492,23 @@ def _continuity(block, prev, offset, tolerance_rows, problems, main_format) -> b
     if changes:
         problems.append(f"{block.name}: changed mid-night ({'; '.join(changes)}); new segment.")
         new_segment = True
+    # Calibrate follows these per row, so the rows stay one segment; but a change
+    # mid-night is either a new readout mode or a wrong header, and a wrong GAIN
+    # scales the block's fluxes: say so.
+    readout = [
+        f"{label} {old} -> {new} {unit}"
+        for label, old, new, unit in (
+            ("GAIN", prev.gain, block.gain, "e-/ADU"),
+            ("RDNOISE", prev.read_noise, block.read_noise, "e-"),
+            ("SATURATE", prev.saturation, block.saturation, "ADU"),
+        )
+        if not np.isclose(old, new, rtol=1e-6, atol=0)
+    ]
+    if readout:
+        problems.append(
+            f"{block.name}: readout changed mid-night ({'; '.join(readout)}); calibrated with "
+            "its own values: check the header if the camera's readout mode did not change."
+        )
     seq_step = block.block_seq - prev.block_seq
     if offset > tolerance_rows:
         missing = offset / block.n_rows
@@ -728,6 +745,7 @@ STAGE = Stage(
     # 4: blocks without usable pixels or out of order are rejected, header
     # sites compared with the config
     # 5: units on gain, read_noise, saturation
-    # 6: a DATE-OBS without a time of day is rejected (it read as midnight)
+    # 6: a DATE-OBS without a time of day is rejected (it read as midnight), a
+    # GAIN, RDNOISE or SATURATE that changes mid-night is reported
     version=6,
 )
