@@ -45,7 +45,7 @@ from pipeline.stages.astrometry._second_pass import (
     solved_kernels_of_stretches,
 )
 from pipeline.stages.astrometry._wcs import solved_wcs, wcs_sky
-from pipeline.stages.base import BLOCK_INDEX, Stage
+from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, Stage
 from pipeline.stages.catalog import stack_catalogs
 from pipeline.stages.detect import WARM as DETECT_WARM
 from pipeline.stages.detect import DetectOptions, detect_stretch
@@ -125,14 +125,16 @@ def reference_columns(ref_index: np.ndarray, reference: QTable) -> dict[str, u.Q
 
 
 def stretch_wcs_cards(
-    solution, x_start: int, n_x: int, tolerance: float, sky=None
+    solution, x_start: int, n_x: int, tolerance: float, sky=None, *, strict: bool = True
 ) -> tuple[dict[str, Any], float]:
     """FITS cards of the solved WCS of one rectified stretch, and its largest error.
 
     Tries SIP degrees 3, 4, 5 until :func:`solved_wcs` reproduces the
     solution to ``tolerance`` pixels.  ``sky``: the stretch's item of
     :func:`~pipeline.stages.astrometry._wcs.wcs_sky`, if made already (the
-    solved positions do not depend on the degree: made once).
+    solved positions do not depend on the degree: made once).  ``strict``:
+    raise when no degree reaches the tolerance; False: return the closest
+    of them (the caller compares ``max_error`` with ``tolerance``).
 
     Returns
     -------
@@ -149,11 +151,16 @@ def stretch_wcs_cards(
     """
     if sky is None and n_x >= 2:
         (sky,) = wcs_sky(solution, [(x_start, n_x)])
+    tried = []
     for degree in _SIP_DEGREES:
         wcs, max_error = solved_wcs(solution, x_start, n_x, sip_degree=degree, sky=sky)
         if max_error <= tolerance:
             break
+        tried.append((max_error, degree, wcs))
     else:
+        if not strict:
+            max_error, _, wcs = min(tried, key=lambda item: (item[0], item[1]))
+            return _wcs_cards(wcs, max_error), float(max_error)
         raise AstrometryError(
             f"the solved WCS of the stretch at night columns [{x_start}, {x_start + n_x}) "
             f"is {max_error:.4f} px off the solution even with SIP degree {degree} "
@@ -161,10 +168,14 @@ def stretch_wcs_cards(
             "larger stages.astrometry.wcs_tolerance.",
             {"max_error_px": max_error},
         )
+    return _wcs_cards(wcs, max_error), float(max_error)
+
+
+def _wcs_cards(wcs, max_error: float) -> dict[str, Any]:
     header = wcs.to_header(relax=True)
     cards = {key: header[key] for key in header}
     cards["WCSDEV"] = round(float(max_error), 6)
-    return cards, float(max_error)
+    return cards
 
 
 def _pixel_scale(image, x_start: int, n_x: int, frame_x_ref: int) -> float:
@@ -391,12 +402,24 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
     products = [(stretch, start, n_x) for stretch, start, n_x in products if n_x > 1]
     # every stretch's solved points in one pass (the fixed cost of each pass is ~5 ms)
     skies = wcs_sky(solved.solution, [(start, n_x) for _, start, n_x in products])
+    problems = []
     for (stretch, start, n_x), sky in zip(products, skies, strict=True):
+        # A stretch whose WCS cannot follow the solution (the start-of-scan ramp,
+        # a transparency step) keeps its closest WCS and is reported: failing the
+        # stage would cost every stretch of the night its zero point and science.
         wcs[stretch.id], error = stretch_wcs_cards(
-            solved.solution, start, n_x, options.wcs_tolerance, sky=sky
+            solved.solution, start, n_x, options.wcs_tolerance, sky=sky, strict=False
         )
         wcs[stretch.id]["ASTPASS"] = [len(passes), _PASS_COMMENT]
         worst = max(worst, error)
+        if error > options.wcs_tolerance:
+            problems.append(
+                f"{stretch.id}: its solved WCS is {error:.4f} px off the solution even with "
+                f"SIP degree {_SIP_DEGREES[-1]} (tolerance {options.wcs_tolerance} px): the "
+                "image's WCS is approximate there (card WCSDEV), the catalogue's positions "
+                "are the solution's; shorter stretches (run.stretch_rows) or a larger "
+                "stages.astrometry.wcs_tolerance."
+            )
     parameters = solved.parameters
     parameters.meta["wcs_max_deviation_px"] = worst
     parameters.meta["passes"] = passes
@@ -410,12 +433,15 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
         len(catalog),
         worst,
     )
-    return {
+    out = {
         "catalog": catalog,
         "parameters": parameters,
         "residual_grid": solved.grid,
         "wcs": wcs,
     }
+    if problems:
+        out[PROBLEMS] = problems
+    return out
 
 
 #: Declaration of the astrometry stage: night scope, after catalog; it reads the
