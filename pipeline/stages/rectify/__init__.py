@@ -117,6 +117,7 @@ __all__ = [
     "night_line_time",
     "night_model",
     "rectify",
+    "segment_row_offset",
     "smear_kernel_at",
     "smear_kernels",
     "stretch_columns",
@@ -325,6 +326,43 @@ def night_line_time(line_times: np.ndarray, block_rows: np.ndarray, n_rows: int)
     return float(values[np.argmax(rows)])
 
 
+def segment_row_offset(
+    block_index: Table, segment: tuple[int, int] | None, line_time: float
+) -> float:
+    """Rows by which a segment was read later than the night's row clock.
+
+    Ingest places a block after a gap at a whole night row (the gap rounded
+    to rows); its DATE-OBS may fall anywhere between.  The first block of
+    the segment starting at night row ``segment[0]`` was read at
+    ``t_start``, the night's clock says ``row_start * line_time``: the
+    difference, in rows (at most half a row).  The rows of a segment join up,
+    so its first block's time holds for all of it.
+
+    Parameters
+    ----------
+    block_index : astropy.table.Table
+        Ingest's block index (``row_start``, ``t_start`` in s since night row 0).
+    segment : (int, int) or None
+        Night rows ``[start, stop)`` of the segment; None: the whole night (0).
+    line_time : float
+        The night's line time, s.
+
+    Returns
+    -------
+    float
+        Rows; 0 for the night's first segment and when no block starts at
+        ``segment[0]``.
+    """
+    if segment is None or len(block_index) == 0:
+        return 0.0
+    row_start = np.asarray(block_index["row_start"], dtype=np.int64)
+    first = np.flatnonzero(row_start == int(segment[0]))
+    if first.size == 0:
+        return 0.0
+    t_start = float(np.asarray(block_index["t_start"], dtype=float)[first[-1]])
+    return t_start / float(line_time) - float(row_start[first[-1]])
+
+
 def stretch_columns(
     model: TDIModel, frame: RectifiedFrame, core: tuple[int, int]
 ) -> tuple[int, int]:
@@ -459,6 +497,7 @@ def rectify(
     core: tuple[int, int] | None = None,
     night_rows: int | None = None,
     data_rows: tuple[int, int] | None = None,
+    row_offset: float = 0.0,
     pixel_scale: float | None = None,
     map_step_x: int = 256,
     map_step_y: int = 16,
@@ -495,6 +534,12 @@ def rectify(
         segment: a gap or another camera format lies beyond); default the
         whole night.  Pixels that would need rows beyond are flagged OUTSIDE
         without the warning that asks for more ``overlap_rows``.
+    row_offset : float, optional
+        Rows by which the given rows were read later than the night's row
+        clock says (``model``: night row ``r`` read at ``r * line_time``):
+        a segment after a gap starts at a whole night row, its first
+        block's DATE-OBS at any time (:func:`segment_row_offset`).  The
+        rows are resampled to the clock's; default 0.
     pixel_scale : float or None, optional
         Rectified pixel size across the scan, arcsec; None: the camera's
         on-sky scale.
@@ -549,6 +594,8 @@ def rectify(
 
     # Pass 2 (along the scan): sub-pixel shift per rectified row and block of x.
     blocks_x, shifts = _global_blocks(x_lo, x_hi, strip_map.offsets)
+    if row_offset:  # the strip row read at the clock's time r lies at r - row_offset
+        shifts = shifts - float(row_offset)
     jac_x = np.array([1.0 + strip_map.offsets_dx(c) for _, _, c in blocks_x])
     breaks_x = np.array([a for a, _, _ in blocks_x] + [x_hi]) - x_lo
     need_lo = int(np.floor(x_lo + shifts.min())) - 3
@@ -675,6 +722,9 @@ def _run(*, inputs, options: RectifyOptions, context) -> dict[str, Any]:
         core=(stretch.start, stretch.stop),
         night_rows=night_rows,
         data_rows=stretch.segment,  # no data beyond: a gap or another camera format
+        row_offset=segment_row_offset(
+            inputs["ingest"][BLOCK_INDEX], stretch.segment, model.line_time
+        ),
         **options.model_dump(),
     )
     times = row_times(inputs["ingest"][BLOCK_INDEX], stretch.start, stretch.stop)
@@ -722,6 +772,7 @@ STAGE = Stage(
     # 2: deconvolution regularisation scales with the smear length; 3: one
     # multi-extension image product with units, observation metadata, night grid;
     # 4: deconvolved variance, DECNOISE and NOISECOR from the noise's covariance;
-    # 6: planes read from FITS (big-endian float32) resample in float32
-    version=6,
+    # 6: planes read from FITS (big-endian float32) resample in float32; 7: a
+    # segment after a gap resampled to the night's row clock (segment_row_offset)
+    version=7,
 )
