@@ -22,6 +22,7 @@ from pipeline.stages.astrometry import (
     solve_night,
     stretch_wcs_cards,
 )
+from pipeline.stages.astrometry._stage import unmatched_stretches
 from pipeline.stages.base import Stage
 from tests._astrometry_scene import make_night
 from tests._mis_set_night import Chip, mis_set_config, mis_set_figures
@@ -462,3 +463,29 @@ def test_a_stretch_whose_wcs_misses_the_tolerance_is_reported_not_the_night_lost
     assert wcs["s0000"]["WCSDEV"] > 0.005
     for stretch in wcs:
         assert (tmp_path / "out/n/science" / stretch / "image.fits").exists()
+
+
+def test_a_stretch_the_fit_left_out_whole_is_named():
+    """A block whose DATE-OBS was 30 ms early (a new segment after a 1-row
+    'overlap') put its stretch's stars 0.35 arcsec off in RA on a simulated
+    night; the fit rejected all 120 of its pairs and the only word was the
+    zero point's 'FEW_STARS; 0 stars'.  Invented counts, self-consistency."""
+    from astropy.table import Table
+
+    stretch = np.repeat(np.arange(5.0), 200)
+    ref_index = np.where(np.arange(1000) % 2 == 0, 1, -1)  # 100 matched per stretch
+    ref_index[600:1000] = -1  # stretch 3: none
+    ref_index[800:1000:40] = 1  # stretch 4: 5, fewer than 10 % of the median
+    catalog = Table({"stretch": stretch, "ref_index": ref_index})
+    ids = ["s0000", "s0001", "s0002", "s0003", "s0004"]
+    lines = unmatched_stretches(catalog, ids)
+    assert lines == [
+        "s0003: 0 of its 200 detections in the fit against a median of 100 per stretch: its "
+        "positions are the solution's, unchecked (a clock error in its segment's DATE-OBS? "
+        "a cloud?).",
+        "s0004: 5 of its 200 detections in the fit against a median of 100 per stretch: its "
+        "positions are the solution's, unchecked (a clock error in its segment's DATE-OBS? "
+        "a cloud?).",
+    ]
+    # A sparse night (median below 10 per stretch) says nothing.
+    assert unmatched_stretches(catalog[::40], ids) == []

@@ -171,6 +171,51 @@ def stretch_wcs_cards(
     return _wcs_cards(wcs, max_error), float(max_error)
 
 
+#: A stretch with fewer matched detections than this fraction of the night's
+#: median per stretch is reported (:func:`unmatched_stretches`).
+UNMATCHED_FRACTION = 0.1
+
+
+def unmatched_stretches(catalog, stretch_ids: list[str], min_median: int = 10) -> list[str]:
+    """One line per stretch whose detections the fit (nearly) all left out.
+
+    A stretch whose stars the night's solution does not fit (a clock error
+    in its segment's DATE-OBS, a camera that moved) keeps positions that
+    nothing checks; the zero point then calls it FEW_STARS.  Reported when
+    the stretch has detections but fewer matched ones than
+    :data:`UNMATCHED_FRACTION` of the median of the night's stretches, and
+    that median is at least ``min_median``.
+
+    Parameters
+    ----------
+    catalog : astropy.table.Table
+        The solved catalogue (``stretch``: index into ``stretch_ids``;
+        ``ref_index``: -1 where not in the fit).
+    stretch_ids : list of str
+        The ids of the catalogue's stretches, in order.
+    min_median : int, optional
+        Fewest matched detections per stretch, as a median, for the check.
+
+    Returns
+    -------
+    list of str
+    """
+    index = np.asarray(catalog["stretch"], dtype=float)
+    matched = np.asarray(catalog["ref_index"]) >= 0
+    detected = np.array([np.sum(index == k) for k in range(len(stretch_ids))])
+    kept = np.array([np.sum(matched & (index == k)) for k in range(len(stretch_ids))])
+    if not len(kept) or np.median(kept) < min_median:
+        return []
+    median = float(np.median(kept))
+    return [
+        f"{stretch_ids[k]}: {kept[k]} of its {detected[k]} detections in the fit against a "
+        f"median of {median:g} per stretch: its positions are the solution's, unchecked "
+        "(a clock error in its segment's DATE-OBS? a cloud?)."
+        for k in range(len(stretch_ids))
+        if detected[k] > 0 and kept[k] < UNMATCHED_FRACTION * median
+    ]
+
+
 def _wcs_cards(wcs, max_error: float) -> dict[str, Any]:
     header = wcs.to_header(relax=True)
     cards = {key: header[key] for key in header}
@@ -420,6 +465,7 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
                 "are the solution's; shorter stretches (run.stretch_rows) or a larger "
                 "stages.astrometry.wcs_tolerance."
             )
+    problems.extend(unmatched_stretches(catalog, [s.id for s in stretches]))
     parameters = solved.parameters
     parameters.meta["wcs_max_deviation_px"] = worst
     parameters.meta["passes"] = passes
