@@ -378,6 +378,22 @@ def test_site_keywords_are_optional_and_compared_with_the_config():
     assert len(night.table) == 3  # the blocks are still reduced
 
 
+def test_header_tdirows_that_differ_from_the_config_are_reported():
+    """Every header said TDIROWS=2048 while camera.tdi_rows was 1024: the
+    geometry and the catalogue's magnitudes used 1024, the images' XPOSURE
+    2048, so a simulated night's science images came out at half the scale
+    of its catalogue (0.75 mag) without a word."""
+    files = [RawFile(f"b{seq}.fits", 0, make_header(seq), None) for seq in range(3)]
+    assert ingest_files(files, IngestOptions(), tdi_rows=16).problems == []  # headers: 16
+    night = ingest_files(files, IngestOptions(), tdi_rows=32)
+    assert night.problems == [
+        "b0.fits and 2 more: header TDIROWS=16 but the config's camera.tdi_rows is 32: the "
+        "geometry and the catalogue use the config's, the images' exposure (XPOSURE) the "
+        "header's; check camera.tdi_rows or the camera's header."
+    ]
+    assert len(night.table) == 3  # the blocks are still reduced
+
+
 def test_contiguous_night_is_one_segment():
     infos = [parse_block_header(make_header(seq), f"b{seq}.fits") for seq in (2, 0, 1)]
     night = index_night(infos)
