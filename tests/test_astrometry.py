@@ -557,6 +557,12 @@ def test_too_few_matches_fail_with_counts():
     with pytest.raises(AstrometryError, match="does not cover the night's band") as info:
         solve_night(night.x, night.y, night.ref_ra, night.ref_dec - 5.0, night.nominal, night.frame)
     assert info.value.counts["reference_in_band"] == 0
+    # no detection at all (every stretch flagged, e.g. a sky above the full
+    # well): it used to crash in the predictor ("cannot reshape array of size 0")
+    with pytest.raises(AstrometryError, match="holds no detection") as info:
+        empty = np.array([])
+        solve_night(empty, empty, night.ref_ra, night.ref_dec, night.nominal, night.frame)
+    assert info.value.counts["detections"] == 0
 
 
 def test_solve_catalog_tables(solved_night):

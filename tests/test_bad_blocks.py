@@ -163,6 +163,47 @@ def test_a_block_whose_clock_went_backwards_is_named_and_left_out(clean_night, t
     )
 
 
+def _dropout(value):
+    """Rows 100-159 of the block read as one value in every pixel, overscan included."""
+
+    def change(data, header):
+        data[100:160, :] = value
+        return _as_float(data, header)
+
+    return change
+
+
+@pytest.mark.parametrize("value", [0.0, 59800.0])
+def test_readout_dropout_rows_are_flagged_gap_and_named(clean_night, tmp_path, capsys, value):
+    """Rows of one raw value in every pixel (0 ADU, or full scale, overscan
+    included) used to pass as data: their bias followed them, so 0 ADU became
+    a sky of 0 e- with the variance of the read noise alone, and detect
+    found hundreds of unflagged false sources along the edges of the dark
+    band (a 200-row dropout of a simulated night: 2840 sources against 2114).
+    Now they are no data (GAP, NaN) and named as a problem, and the rest of
+    the block is kept."""
+    config = _copy_night(clean_night, tmp_path)
+    _rewrite(tmp_path / "raw" / BAD, _dropout(value))
+    code, out = _run(config, capsys, "--to", "calibrate")
+    assert code == 1
+    problems = [line for line in _problems(out) if "calibrate/" in line]
+    # Block 2 holds night rows 512-767; stretch s0001 starts at row 512.
+    assert problems == [
+        f"problem: calibrate/s0001: night rows 612-671 (60 rows) hold one raw value "
+        f"({value:g} ADU) in every image and overscan pixel: a readout dropout, not data; "
+        "flagged GAP (no data) and left out of the bias, flat and sky."
+    ], out
+    flags = _plane(tmp_path / "out/n/calibrate/s0001", "FLAGS")
+    image = _plane(tmp_path / "out/n/calibrate/s0001", "FLUX")
+    rows = Table.read(tmp_path / "out/n/calibrate/s0001/rows.ecsv")
+    dropout = (rows["night_row"] >= 612) & (rows["night_row"] <= 671)
+    assert (flags[dropout] & 64).all()  # MaskBit.GAP
+    assert np.isnan(image[dropout]).all()
+    # The rows around it are data, with a bias near the simulator's 1000 ADU.
+    assert not (flags[~dropout] & 64).any()
+    assert np.all(np.abs(rows["bias"][~dropout] - 1000.0) < 20.0)
+
+
 def _narrow(data, header):
     """Block 2 read out with a window of 40 image columns instead of 48."""
     narrow = np.concatenate([data[:, :40], data[:, 48:]], axis=1)

@@ -108,6 +108,21 @@ def test_header_values_and_keyword_map():
     assert info.date_obs.scale == "utc"
 
 
+def test_a_date_obs_without_time_of_day_is_rejected_with_the_reason():
+    """DATE-OBS='2026-03-20' (a date alone, which the FITS standard's datetime
+    format allows) used to read as midnight: every block of a night then
+    started at 00:00, each 'overlapped' the one before and its rows 'won', so
+    the night collapsed onto one block's rows with a message about overlaps."""
+    header = make_header(1, **{"DATE-OBS": "2026-03-20", "TIME-OBS": "02:00:02.000"})
+    with pytest.raises(IngestError, match=r"b1.fits: DATE-OBS='2026-03-20' gives a date without"):
+        parse_block_header(header, "b1.fits")
+    with pytest.raises(IngestError, match=r"TIME-OBS='02:00:02.000' may hold the time"):
+        parse_block_header(header, "b1.fits")
+    # A full date and time still reads, to the millisecond.
+    info = parse_block_header(make_header(1, **{"DATE-OBS": "2026-03-20T02:00:02.000"}))
+    assert info.date_obs.isot == "2026-03-20T02:00:02.000"
+
+
 def test_tai_date_obs_is_converted_to_utc():
     # TAI - UTC = 37 s since 2017 (IERS Bulletin C).
     header = make_header(0, TIMESYS="TAI")
@@ -363,6 +378,22 @@ def test_site_keywords_are_optional_and_compared_with_the_config():
     assert len(night.table) == 3  # the blocks are still reduced
 
 
+def test_header_tdirows_that_differ_from_the_config_are_reported():
+    """Every header said TDIROWS=2048 while camera.tdi_rows was 1024: the
+    geometry and the catalogue's magnitudes used 1024, the images' XPOSURE
+    2048, so a simulated night's science images came out at half the scale
+    of its catalogue (0.75 mag) without a word."""
+    files = [RawFile(f"b{seq}.fits", 0, make_header(seq), None) for seq in range(3)]
+    assert ingest_files(files, IngestOptions(), tdi_rows=16).problems == []  # headers: 16
+    night = ingest_files(files, IngestOptions(), tdi_rows=32)
+    assert night.problems == [
+        "b0.fits and 2 more: header TDIROWS=16 but the config's camera.tdi_rows is 32: the "
+        "geometry and the catalogue use the config's, the images' exposure (XPOSURE) the "
+        "header's; check camera.tdi_rows or the camera's header."
+    ]
+    assert len(night.table) == 3  # the blocks are still reduced
+
+
 def test_contiguous_night_is_one_segment():
     infos = [parse_block_header(make_header(seq), f"b{seq}.fits") for seq in (2, 0, 1)]
     night = index_night(infos)
@@ -373,6 +404,27 @@ def test_contiguous_night_is_one_segment():
     # Row k of a block is read at DATE-OBS + k * LINETIME (DEVELOPERS.md, "Raw data").
     np.testing.assert_allclose(rows["time"], [(N_ROWS - 1) * LINE_TIME, N_ROWS * LINE_TIME])
     assert rows["covered"].all()
+
+
+def test_a_gain_that_changes_mid_night_is_reported_and_the_rows_stay_one_segment():
+    """A block whose header says GAIN=1.0 among blocks of 2.0 e-/ADU halves its
+    fluxes in e-; it used to pass without a word, and the astrometry of a
+    simulated night then failed on its transparency ('the solved WCS ... is
+    0.0416 px off the solution ...') with nothing pointing at the header."""
+    infos = [
+        parse_block_header(make_header(seq, GAIN=1.0 if seq == 1 else 2.0), f"b{seq}.fits")
+        for seq in range(3)
+    ]
+    night = index_night(infos)
+    assert night.n_segments == 1  # calibrate follows the gain row by row
+    assert night.problems == [
+        "b1.fits: readout changed mid-night (GAIN 2.0 -> 1.0 e-/ADU); calibrated with its own "
+        "values: check the header if the camera's readout mode did not change.",
+        "b2.fits: readout changed mid-night (GAIN 1.0 -> 2.0 e-/ADU); calibrated with its own "
+        "values: check the header if the camera's readout mode did not change.",
+    ]
+    same = [parse_block_header(make_header(seq), f"b{seq}.fits") for seq in range(3)]
+    assert index_night(same).problems == []
 
 
 def test_gap_overlap_duplicate_and_change_are_reported():

@@ -25,8 +25,10 @@ from pipeline.stages.detect._model import KernelGrid
 from pipeline.stages.rectify import (
     STAGE,
     RectifyOptions,
+    night_line_time,
     night_model,
     rectify,
+    segment_row_offset,
     smear_kernel_at,
     smear_kernels,
 )
@@ -881,3 +883,58 @@ def test_recorded_lattice_offsets_are_where_strip_pixels_land():
             assert abs(wrapped) < 0.01, (xm, ym, response)
         checked += 1
     assert checked > 50
+
+
+def test_line_times_that_differ_by_header_rounding_are_one_line_time():
+    """One block's LINETIME printed with 7 decimals (0.0458929 s against
+    0.045892920031762555 s, 4.4e-7 apart) used to fail rectify, and so the
+    whole night, on every stretch: 'the line time changes within the night'.
+    Over the night's 5120 rows the two give row times 0.002 rows apart
+    (derived), so they are one line time: the one of the most rows."""
+    line_times = np.array([0.045892920031762555] * 3 + [0.0458929] + [0.045892920031762555])
+    rows = np.full(5, 1024)
+    assert night_line_time(line_times, rows, 5120) == 0.045892920031762555
+    # The rounded value on most rows wins; equally common values take the shortest.
+    mostly_rounded = np.array([0.0458929] * 3 + [0.045892920031762555] * 2)
+    assert night_line_time(mostly_rounded, rows, 5120) == 0.0458929
+    assert night_line_time(np.array([0.05, 0.05 + 1e-9]), np.array([10, 10]), 100) == 0.05
+    # A real change of the clock is still refused: 1e-5 relative is 0.05 rows over 5120.
+    with pytest.raises(ValueError, match=r"differ by 0.0512 rows over its 5120 rows"):
+        night_line_time(np.array([0.05, 0.05 * (1 + 1e-5)]), np.array([2560, 2560]), 5120)
+
+
+def test_a_segment_after_a_fractional_gap_is_resampled_to_the_night_s_row_clock():
+    """A camera that stops for 10.4 rows: ingest places the next block 10 rows
+    on (rows are whole), and its rows were read 0.4 rows later than the
+    night's row clock says.  Rectify used to ignore the 0.4 rows: on a
+    simulated 5-block night with such a gap before block 3, the stars after
+    it came out 54 mas off in RA (rms 45 mas, a third of them lost to the
+    astrometric fit) and the fit bent its wander to follow them (rms dRA
+    38 mas over the night against 12 mas).  Now the segment's rows are
+    resampled by -0.4 rows: its stars move 0.4 px along the scan."""
+    import astropy.units as u
+    from astropy.time import Time
+    from test_ingest import LINE_TIME, START, make_header
+    from test_ingest import N_ROWS as BLOCK_ROWS
+
+    from pipeline.stages.ingest import index_night, parse_block_header
+
+    late = Time(START) + (3 * BLOCK_ROWS + 10.4) * LINE_TIME * u.s
+    headers = [make_header(seq) for seq in range(3)]
+    headers.append(make_header(3, **{"DATE-OBS": late.isot}))
+    index = index_night([parse_block_header(h, f"b{k}.fits") for k, h in enumerate(headers)]).table
+    assert list(index["row_start"]) == [0, BLOCK_ROWS, 2 * BLOCK_ROWS, 3 * BLOCK_ROWS + 10]
+    # DATE-OBS is written to the millisecond: 0.4 rows to 1 ms / 50 ms = 0.02 rows.
+    segment = (3 * BLOCK_ROWS + 10, 4 * BLOCK_ROWS + 10)
+    assert segment_row_offset(index, segment, LINE_TIME) == pytest.approx(0.4, abs=0.02)
+    assert segment_row_offset(index, (0, 3 * BLOCK_ROWS), LINE_TIME) == 0.0
+
+    # The rectified stars move by the offset along the scan (x), not across it.
+    scene, plain = _grid_scene(40.0)
+    later = rectify(scene.image, scene.variance, scene.mask, scene.model, row_offset=0.4)
+    for x, y in zip(scene.x, scene.y, strict=True):
+        _, x0, y0 = measure(plain.image, x - plain.x_start, y, 8)
+        _, x1, y1 = measure(later.image, x - later.x_start, y, 8)
+        # 0.005 px: the resampling's interpolation at two sub-pixel phases (measured ~1e-3)
+        assert x1 - x0 == pytest.approx(0.4, abs=0.005)
+        assert y1 - y0 == pytest.approx(0.0, abs=0.005)

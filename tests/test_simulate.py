@@ -354,6 +354,23 @@ def test_saturation_bleeds_along_the_scan():
     assert 0.95 * 50000.0 <= header["SATURATE"] - 1000.0 < 50000.0
 
 
+def test_a_sky_above_the_full_well_saturates_every_pixel():
+    """A sky that fills every packet by itself saturates the whole image.  The
+    bleed trail of each saturated star used to carry the sky's own excess,
+    so overlapping trails took it off twice and drove the sky to zero: a
+    simulated moonlit night had a fifth of its pixels at the bias level."""
+    site, camera = _site(41.65), _camera(n_columns=128)
+    options = _options(
+        detector={"full_well": 50000.0, "gain": 1.0},
+        sky={"sky_brightness": 12.0, "sky_ramp": 0.0},
+        data_type="uint16",
+    )
+    extra, _ = _stars_at(site, camera, options, [60.0, 63.0, 66.0], [120.0, 126.0, 132.0], 9.0)
+    night = simulate_night(site, camera, options, extra_stars=extra)
+    header, data = night.blocks[0]
+    assert np.all(data[:, :128] == header["SATURATE"])
+
+
 def test_detector_defects_and_cosmic_rays():
     site, camera = _site(41.65), _camera(n_columns=256)
     options = _options(

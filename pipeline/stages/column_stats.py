@@ -84,6 +84,7 @@ STAGE = Stage(
     description="Per-block clipped column levels of each stretch (for the 1-D flat and dark).",
     warm=WARM,
     # 2: bias window by cross-validation; 3: faster passes (rounding); 4: units;
-    # 5: block rows chosen by the night's length unless configured
-    version=5,
+    # 5: block rows chosen by the night's length unless configured; 6: readout
+    # dropout rows (one raw value in every pixel) left out
+    version=6,
 )

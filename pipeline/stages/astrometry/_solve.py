@@ -310,6 +310,14 @@ def solve_night(
             f"x and y (got {x.shape}, {y.shape}) and ref_ra and ref_dec (got {ref_ra.shape}, "
             f"{ref_dec.shape}) must have matching shapes."
         )
+    if x.size == 0:  # the predictor's arrays need at least one track
+        raise AstrometryError(
+            "astrometric solution failed: the night's catalogue holds no detection "
+            f"(detections=0, reference stars={ref_ra.size}). Likely causes: detect found no "
+            "source in any stretch (see its problems: every pixel flagged, e.g. a sky "
+            "brighter than the full well, or a night of cloud).",
+            {"detections": 0, "reference": int(ref_ra.size)},
+        )
     sig_x = None if x_err is None else np.asarray(x_err, dtype=float).ravel()
     sig_y = None if y_err is None else np.asarray(y_err, dtype=float).ravel()
     predictor = GeometryPredictor(model)

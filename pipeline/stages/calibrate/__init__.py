@@ -49,7 +49,7 @@ from pipeline.exceptions import CalibrationWarning, StageError
 from pipeline.masks import MASK_DTYPE, MaskBit, describe_mask
 from pipeline.products import image_hdulist, night_grid_header
 from pipeline.stages._observation import RowTimes, observation_for_rows, row_times
-from pipeline.stages.base import BLOCK_INDEX, RAW_ROWS, Stage
+from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_ROWS, Stage
 from pipeline.stages.calibrate._bias import overscan_levels, smooth_levels
 from pipeline.stages.calibrate._chunks import Scratch, row_chunks
 from pipeline.stages.calibrate._columns import adopt_columns, solve_columns, summarize_columns
@@ -682,7 +682,7 @@ def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
     row_table["time"].description = "readout time since meta['reference_time']"
     row_table["bias"].unit = "adu"
     row_table["bias"].description = "bias subtracted from the row (smoothed overscan)"
-    return {
+    out = {
         "image": image_hdulist(
             result.image,
             result.variance,
@@ -694,6 +694,41 @@ def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
         "rows": row_table,
         "mask_counts": result.mask_counts,
     }
+    problems = dropout_problems(rows.night_row, rows.dropout, rows.image)
+    if problems:
+        out[PROBLEMS] = problems
+    return out
+
+
+def dropout_problems(night_row: np.ndarray, dropout: np.ndarray, image: np.ndarray) -> list[str]:
+    """One line per run of readout-dropout rows (:func:`~._rows.dropout_rows`).
+
+    Parameters
+    ----------
+    night_row : ndarray of int, shape (n_rows,)
+        Night row of each stretch row.
+    dropout : ndarray of bool, shape (n_rows,) or None
+        The dropout rows.
+    image : ndarray, shape (n_rows, n_columns)
+        Raw image columns, ADU (for the value the rows hold).
+
+    Returns
+    -------
+    list of str
+        Empty when there is no dropout row.
+    """
+    if dropout is None or not dropout.any():
+        return []
+    rows = np.flatnonzero(dropout)
+    lines = []
+    for part in np.split(rows, np.flatnonzero(np.diff(rows) != 1) + 1):
+        first, last = int(night_row[part[0]]), int(night_row[part[-1]])
+        lines.append(
+            f"night rows {first}-{last} ({part.size} rows) hold one raw value "
+            f"({float(image[part[0], 0]):g} ADU) in every image and overscan pixel: a readout "
+            "dropout, not data; flagged GAP (no data) and left out of the bias, flat and sky."
+        )
+    return lines
 
 
 def columns_product_name(n_columns: int, camera_columns: int) -> str:
@@ -784,6 +819,7 @@ STAGE = Stage(
     description="Bias, 1-D flat and dark, variance and mask of each stretch.",
     warm=CALIBRATE_WARM,
     # 2: bias window by cross-validation; 3: faster passes (rounding); 4: one
-    # multi-extension image product with units and observation metadata
-    version=4,
+    # multi-extension image product with units and observation metadata; 5: readout
+    # dropout rows (one raw value in every pixel) flagged GAP
+    version=5,
 )

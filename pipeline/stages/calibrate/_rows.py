@@ -20,7 +20,7 @@ from pipeline.exceptions import StageError
 from pipeline.stages.base import BLOCK_INDEX, RAW_ROWS
 from pipeline.stages.ingest import describe_rows, split_rows
 
-__all__ = ["StretchRows", "stretch_rows", "stretch_rows_for_stage"]
+__all__ = ["StretchRows", "dropout_rows", "stretch_rows", "stretch_rows_for_stage"]
 
 
 @dataclass(frozen=True)
@@ -37,11 +37,47 @@ class StretchRows:
     read_noise: np.ndarray
     saturation: np.ndarray
     tdi_rows: int
+    dropout: np.ndarray | None = None
 
     @property
     def covered(self) -> np.ndarray:
-        """Rows some block holds."""
+        """Rows some block holds (dropout rows excluded: they hold no data)."""
         return self.segment >= 0
+
+
+def dropout_rows(image: np.ndarray, overscan: np.ndarray) -> np.ndarray:
+    """Rows whose every image and overscan pixel holds one and the same raw value.
+
+    A real row carries read noise (and sky) in every pixel, so its pixels
+    never all agree; a row of one value in the image and in the serial
+    overscan alike (0 ADU, or the converter's full scale) is a readout
+    dropout, not data (common practice).  Its bias cannot be measured and
+    its image holds no sky, so it must be kept out like a gap.
+
+    Parameters
+    ----------
+    image : ndarray, shape (n_rows, n_columns)
+        Raw image columns, ADU; axis 0 is the scan axis.
+    overscan : ndarray, shape (n_rows, n_overscan)
+        Raw serial-overscan columns of the same rows, ADU.
+
+    Returns
+    -------
+    ndarray of bool, shape (n_rows,)
+        True for dropout rows.  NaN rows are not dropouts (they are flagged
+        NONFINITE).
+    """
+    first = image[:, 0] if image.shape[1] else np.full(image.shape[0], np.nan)
+    # Cheap screen on a few pixels, then the whole row for the candidates.
+    candidate = np.isfinite(first) & (image[:, -1] == first)
+    if overscan.shape[1]:
+        candidate &= overscan[:, 0] == first
+    rows = np.flatnonzero(candidate)
+    if rows.size:
+        same = (image[rows] == first[rows, None]).all(axis=1)
+        same &= (overscan[rows] == first[rows, None]).all(axis=1)
+        candidate[rows] = same
+    return candidate
 
 
 def stretch_rows(
@@ -85,6 +121,8 @@ def stretch_rows(
     image, overscan = split_rows(
         raw_rows, image_section, overscan_section, flip_columns=flip_columns
     )
+    dropout = dropout_rows(image, overscan) & covered
+    segment = np.where(dropout, -1, facts["segment"])  # kept out like a gap (mask GAP)
     fill = {}
     for name in ("gain", "read_noise", "saturation"):
         values = facts[name]
@@ -94,9 +132,10 @@ def stretch_rows(
         overscan=overscan,
         night_row=facts["night_row"],
         time=facts["time"],
-        segment=facts["segment"],
+        segment=segment,
         rows_since_start=facts["rows_since_start"],
         tdi_rows=int(facts["tdi_rows"].max()),
+        dropout=dropout,
         **fill,
     )
 

@@ -81,6 +81,7 @@ __all__ = [
     "check_block_data",
     "check_block_pixels",
     "check_raw_file",
+    "compare_tdi_rows",
     "describe_rows",
     "index_night",
     "ingest_files",
@@ -492,6 +493,23 @@ def _continuity(block, prev, offset, tolerance_rows, problems, main_format) -> b
     if changes:
         problems.append(f"{block.name}: changed mid-night ({'; '.join(changes)}); new segment.")
         new_segment = True
+    # Calibrate follows these per row, so the rows stay one segment; but a change
+    # mid-night is either a new readout mode or a wrong header, and a wrong GAIN
+    # scales the block's fluxes: say so.
+    readout = [
+        f"{label} {old} -> {new} {unit}"
+        for label, old, new, unit in (
+            ("GAIN", prev.gain, block.gain, "e-/ADU"),
+            ("RDNOISE", prev.read_noise, block.read_noise, "e-"),
+            ("SATURATE", prev.saturation, block.saturation, "ADU"),
+        )
+        if not np.isclose(old, new, rtol=1e-6, atol=0)
+    ]
+    if readout:
+        problems.append(
+            f"{block.name}: readout changed mid-night ({'; '.join(readout)}); calibrated with "
+            "its own values: check the header if the camera's readout mode did not change."
+        )
     seq_step = block.block_seq - prev.block_seq
     if offset > tolerance_rows:
         missing = offset / block.n_rows
@@ -664,7 +682,10 @@ class IngestOptions(BaseModel):
 
 
 def ingest_files(
-    files: Sequence[RawFile], options: IngestOptions, site: Site | None = None
+    files: Sequence[RawFile],
+    options: IngestOptions,
+    site: Site | None = None,
+    tdi_rows: int | None = None,
 ) -> NightIndex:
     """Check the runner's raw files and index the good ones.
 
@@ -676,6 +697,9 @@ def ingest_files(
     site : pipeline.geometry.Site, optional
         The config's site; header site keywords that differ from it are
         reported (:func:`~pipeline.stages.ingest._site.compare_site`).
+    tdi_rows : int, optional
+        The config's ``camera.tdi_rows``; header TDIROWS that differ from it
+        are reported (:func:`compare_tdi_rows`).
 
     Returns
     -------
@@ -690,15 +714,50 @@ def ingest_files(
     night = index_night(
         infos, rejected, tolerance_rows=options.tolerance_rows, start_ramp=options.start_ramp
     )
-    if site is not None:
-        for line in compare_site(infos, site):
-            log.warning("%s", line)
-            night.problems.append(line)
+    lines = compare_site(infos, site) if site is not None else []
+    if tdi_rows is not None:
+        lines += compare_tdi_rows(infos, tdi_rows)
+    for line in lines:
+        log.warning("%s", line)
+        night.problems.append(line)
     return night
 
 
+def compare_tdi_rows(infos: Sequence[BlockInfo], tdi_rows: int) -> list[str]:
+    """Problem lines for blocks whose header TDIROWS differs from the config's.
+
+    The geometry (the stars' tracks and exposures, hence the catalogue's
+    magnitudes) uses ``camera.tdi_rows``; the image products' exposure
+    (``XPOSURE``, and so the science images' scale) and the start-of-scan
+    ramp use the header's.  Two different values mean one of them is wrong.
+
+    Parameters
+    ----------
+    infos : sequence of BlockInfo
+        The blocks.
+    tdi_rows : int
+        The config's ``camera.tdi_rows``.
+
+    Returns
+    -------
+    list of str
+        One line per distinct header value that differs, naming the blocks.
+    """
+    by_value: dict[int, list[str]] = {}
+    for info in infos:
+        if info.tdi_rows != tdi_rows:
+            by_value.setdefault(info.tdi_rows, []).append(info.name)
+    return [
+        f"{names[0] if len(names) == 1 else f'{names[0]} and {len(names) - 1} more'}: header "
+        f"TDIROWS={value} but the config's camera.tdi_rows is {tdi_rows}: the geometry and the "
+        "catalogue use the config's, the images' exposure (XPOSURE) the header's; check "
+        "camera.tdi_rows or the camera's header."
+        for value, names in by_value.items()
+    ]
+
+
 def _run(*, inputs, options: IngestOptions, context) -> dict[str, Any]:
-    night = ingest_files(inputs[RAW_FILES], options, context.site)
+    night = ingest_files(inputs[RAW_FILES], options, context.site, context.camera.tdi_rows)
     return {
         BLOCK_INDEX: night.table,
         "ingest_report": {
@@ -721,12 +780,16 @@ STAGE = Stage(
     options=IngestOptions,
     requires=(RAW_FILES,),
     scope="night",
-    uses=("site.latitude", "site.longitude", "site.height"),  # compared with the headers
+    # compared with the headers
+    uses=("site.latitude", "site.longitude", "site.height", "camera.tdi_rows"),
     defines_rows=True,
     description="Check raw block headers, order blocks in time, index rows and segments.",
     # 2: clock_row column (start_ramp); 3: segment, image/overscan_section;
     # 4: blocks without usable pixels or out of order are rejected, header
     # sites compared with the config
     # 5: units on gain, read_noise, saturation
-    version=5,
+    # 6: a DATE-OBS without a time of day is rejected (it read as midnight), a
+    # GAIN, RDNOISE or SATURATE that changes mid-night is reported, and header
+    # TDIROWS that differ from camera.tdi_rows
+    version=6,
 )

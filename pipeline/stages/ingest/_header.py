@@ -49,6 +49,7 @@ OPTIONAL = ("site_lat", "site_long", "site_elev")
 
 _SECTION = re.compile(r"^\s*\[\s*(\d+)\s*:\s*(\d+)\s*,\s*(\d+)\s*:\s*(\d+)\s*\]\s*$")
 _TIME_SCALES = {"UTC": "utc", "TAI": "tai", "TT": "tt"}
+_DATE_ONLY = re.compile(r"^\s*\d{4}-\d{2}-\d{2}\s*$")
 _BYTES_PER_RECORD = 2880
 
 
@@ -333,6 +334,19 @@ def _parse_time(text, header, name):
     system = str(header.get("TIMESYS", "UTC")).strip().upper()
     if system not in _TIME_SCALES:
         raise IngestError(f"{name}: TIMESYS={system!r} is not one of {sorted(_TIME_SCALES)}.")
+    if _DATE_ONLY.match(str(text)):
+        # The FITS datetime format allows a date alone (FITS 4.0, section 9.1.1, from memory),
+        # which astropy reads as midnight: every block of the night would start at 00:00.
+        hint = "".join(
+            f"; the header's {key}={header[key]!r} may hold the time"
+            for key in ("TIME-OBS", "UTSTART", "UT")
+            if key in header
+        )
+        raise IngestError(
+            f"{name}: DATE-OBS={text!r} gives a date without a time of day{hint}; a block "
+            "needs the UTC time its first row was read, as 'YYYY-MM-DDThh:mm:ss.sss': write "
+            "it into DATE-OBS, or name the keyword that holds it in stages.ingest.keywords."
+        )
     try:
         return Time(text, format="isot", scale=_TIME_SCALES[system]).utc
     except ValueError:

@@ -114,8 +114,10 @@ __all__ = [
     "STAGE",
     "RectifiedStretch",
     "RectifyOptions",
+    "night_line_time",
     "night_model",
     "rectify",
+    "segment_row_offset",
     "smear_kernel_at",
     "smear_kernels",
     "stretch_columns",
@@ -274,14 +276,91 @@ def night_model(site: Site, camera: Camera, block_index: Table, n_rows: int) -> 
     start = block_index.meta.get("reference_time")
     if start is None or len(block_index) == 0:
         raise ValueError("the block index is empty; ingest found no usable block this night.")
-    line_times = np.unique(np.asarray(block_index["line_time"], dtype=float))
-    if line_times.max() - line_times.min() > 1e-9 * line_times.max():
-        raise ValueError(
-            f"the line time changes within the night ({line_times.tolist()} s); rectify "
-            "needs one line time per night: reduce the parts as separate nights."
-        )
-    dt = float(line_times[0])
+    dt = night_line_time(
+        np.asarray(block_index["line_time"], dtype=float),
+        np.asarray(block_index["n_rows"], dtype=np.int64),
+        n_rows,
+    )
     return _cached_model(site, camera, str(start), n_rows * dt, dt)
+
+
+#: Line times of a night's blocks are one line time when the row times they
+#: give differ by at most this many rows over the whole night (headers that
+#: print the same clock with another number of digits).
+LINE_TIME_TOLERANCE_ROWS = 0.01
+
+
+def night_line_time(line_times: np.ndarray, block_rows: np.ndarray, n_rows: int) -> float:
+    """The one line time of a night whose blocks' LINETIME may differ by rounding.
+
+    Parameters
+    ----------
+    line_times : ndarray of float, shape (n_blocks,)
+        Each block's LINETIME, s.
+    block_rows : ndarray of int, shape (n_blocks,)
+        Each block's rows.
+    n_rows : int
+        Night rows (scan axis).
+
+    Returns
+    -------
+    float
+        The line time of the most rows (the shortest of equally common ones), s.
+
+    Raises
+    ------
+    ValueError
+        If the line times differ so much that the row times they give over
+        the night's ``n_rows`` rows differ by more than
+        :data:`LINE_TIME_TOLERANCE_ROWS` rows.
+    """
+    values, where = np.unique(line_times, return_inverse=True)
+    if (values[-1] - values[0]) * n_rows > LINE_TIME_TOLERANCE_ROWS * values[0]:
+        raise ValueError(
+            f"the line time changes within the night ({values.tolist()} s: the row times "
+            f"differ by {(values[-1] - values[0]) * n_rows / values[0]:.3g} rows over its "
+            f"{n_rows} rows, more than {LINE_TIME_TOLERANCE_ROWS}); rectify needs one line "
+            "time per night: reduce the parts as separate nights."
+        )
+    rows = np.bincount(where.ravel(), weights=block_rows, minlength=values.size)
+    return float(values[np.argmax(rows)])
+
+
+def segment_row_offset(
+    block_index: Table, segment: tuple[int, int] | None, line_time: float
+) -> float:
+    """Rows by which a segment was read later than the night's row clock.
+
+    Ingest places a block after a gap at a whole night row (the gap rounded
+    to rows); its DATE-OBS may fall anywhere between.  The first block of
+    the segment starting at night row ``segment[0]`` was read at
+    ``t_start``, the night's clock says ``row_start * line_time``: the
+    difference, in rows (at most half a row).  The rows of a segment join up,
+    so its first block's time holds for all of it.
+
+    Parameters
+    ----------
+    block_index : astropy.table.Table
+        Ingest's block index (``row_start``, ``t_start`` in s since night row 0).
+    segment : (int, int) or None
+        Night rows ``[start, stop)`` of the segment; None: the whole night (0).
+    line_time : float
+        The night's line time, s.
+
+    Returns
+    -------
+    float
+        Rows; 0 for the night's first segment and when no block starts at
+        ``segment[0]``.
+    """
+    if segment is None or len(block_index) == 0:
+        return 0.0
+    row_start = np.asarray(block_index["row_start"], dtype=np.int64)
+    first = np.flatnonzero(row_start == int(segment[0]))
+    if first.size == 0:
+        return 0.0
+    t_start = float(np.asarray(block_index["t_start"], dtype=float)[first[-1]])
+    return t_start / float(line_time) - float(row_start[first[-1]])
 
 
 def stretch_columns(
@@ -418,6 +497,7 @@ def rectify(
     core: tuple[int, int] | None = None,
     night_rows: int | None = None,
     data_rows: tuple[int, int] | None = None,
+    row_offset: float = 0.0,
     pixel_scale: float | None = None,
     map_step_x: int = 256,
     map_step_y: int = 16,
@@ -454,6 +534,12 @@ def rectify(
         segment: a gap or another camera format lies beyond); default the
         whole night.  Pixels that would need rows beyond are flagged OUTSIDE
         without the warning that asks for more ``overlap_rows``.
+    row_offset : float, optional
+        Rows by which the given rows were read later than the night's row
+        clock says (``model``: night row ``r`` read at ``r * line_time``):
+        a segment after a gap starts at a whole night row, its first
+        block's DATE-OBS at any time (:func:`segment_row_offset`).  The
+        rows are resampled to the clock's; default 0.
     pixel_scale : float or None, optional
         Rectified pixel size across the scan, arcsec; None: the camera's
         on-sky scale.
@@ -508,6 +594,8 @@ def rectify(
 
     # Pass 2 (along the scan): sub-pixel shift per rectified row and block of x.
     blocks_x, shifts = _global_blocks(x_lo, x_hi, strip_map.offsets)
+    if row_offset:  # the strip row read at the clock's time r lies at r - row_offset
+        shifts = shifts - float(row_offset)
     jac_x = np.array([1.0 + strip_map.offsets_dx(c) for _, _, c in blocks_x])
     breaks_x = np.array([a for a, _, _ in blocks_x] + [x_hi]) - x_lo
     need_lo = int(np.floor(x_lo + shifts.min())) - 3
@@ -634,6 +722,9 @@ def _run(*, inputs, options: RectifyOptions, context) -> dict[str, Any]:
         core=(stretch.start, stretch.stop),
         night_rows=night_rows,
         data_rows=stretch.segment,  # no data beyond: a gap or another camera format
+        row_offset=segment_row_offset(
+            inputs["ingest"][BLOCK_INDEX], stretch.segment, model.line_time
+        ),
         **options.model_dump(),
     )
     times = row_times(inputs["ingest"][BLOCK_INDEX], stretch.start, stretch.stop)
@@ -681,6 +772,7 @@ STAGE = Stage(
     # 2: deconvolution regularisation scales with the smear length; 3: one
     # multi-extension image product with units, observation metadata, night grid;
     # 4: deconvolved variance, DECNOISE and NOISECOR from the noise's covariance;
-    # 6: planes read from FITS (big-endian float32) resample in float32
-    version=6,
+    # 6: planes read from FITS (big-endian float32) resample in float32; 7: a
+    # segment after a gap resampled to the night's row clock (segment_row_offset)
+    version=7,
 )
