@@ -289,6 +289,22 @@ def test_stretches_beyond_the_night_exit_2(toy_file: Path, capsys) -> None:
     )
 
 
+def test_stretches_with_only_night_scoped_stages_say_they_change_nothing(
+    toy_file: Path, capsys
+) -> None:
+    """``--stretches`` picks units of per-stretch stages; a night-scoped one runs whole."""
+    assert main(["run", str(toy_file), "--to", "smooth"]) == 0
+    capsys.readouterr()
+    assert main(["run", str(toy_file), "--stage", "total", "--stretches", "1"]) == 0
+    err = capsys.readouterr().err
+    assert (
+        "--stretches has no effect on total: a night-scoped stage runs over the whole night" in err
+    )
+    # with a per-stretch stage selected too, nothing is said at the default verbosity
+    assert main(["run", str(toy_file), "--from", "smooth", "--stretches", "1"]) == 0
+    assert "--stretches" not in capsys.readouterr().err
+
+
 def _one_line_exit_2(args: list[str], capsys) -> str:
     assert main(args) == 2
     captured = capsys.readouterr()

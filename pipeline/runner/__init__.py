@@ -401,6 +401,8 @@ def _run_night(
 ) -> RunReport:
     selected = select_stages(config.graph, stage, from_stage, to_stage)
     wanted = None if stretches is None else frozenset(stretches)
+    if wanted is not None:
+        _note_whole_night(selected)
     progress = progress or no_progress
     night = NightStore(config)
     report = RunReport(config.night.name)
@@ -479,6 +481,27 @@ def _stage_modules(graph: Sequence[Stage]) -> list[str]:
     """The importable modules that define the stages' run functions (for warm workers)."""
     names = {getattr(stage.run, "__module__", None) for stage in graph}
     return sorted(name for name in names if isinstance(name, str) and name != "__main__")
+
+
+def _note_whole_night(selected: Sequence[Stage]) -> None:
+    """Say which selected stages ``--stretches`` does not narrow: those of night scope.
+
+    A night-scoped stage has one unit, the night (the catalogue, astrometry
+    and the zero point need every stretch): it runs whole, on the products
+    of all the stretches there are.  A warning when no selected stage is per
+    stretch (the option then changes nothing), else a note in the log.
+    """
+    whole = [stage.name for stage in selected if stage.scope == "night"]
+    if not whole:
+        return
+    names = ", ".join(whole)
+    if len(whole) == len(selected):
+        log.warning(
+            "--stretches has no effect on %s: a night-scoped stage runs over the whole night",
+            names,
+        )
+    else:
+        log.info("--stretches narrows the per-stretch stages only; %s run(s) for the night", names)
 
 
 def _units_at_once(
