@@ -828,3 +828,26 @@ def test_cosmic_rays_need_the_flat_on_a_demo_block():
     hit_fraction = has_bits(result.mask, MaskBit.COSMIC_RAY).mean(axis=0)
     hit_fraction[truth.dead] = 0.0
     assert hit_fraction.max() < 0.2, np.flatnonzero(hit_fraction >= 0.2)
+
+
+def test_rows_whose_sky_saturated_are_named():
+    """A sky above the full well saturates whole rows; saturated stars only a few pixels.
+
+    (common practice: a star field's saturated stars cover a few per cent of
+    a row at most.)"""
+    from pipeline.masks import MASK_DTYPE, MaskBit, describe_mask
+    from pipeline.stages.calibrate import saturated_sky_problems
+
+    mask = np.zeros((400, 200), MASK_DTYPE)
+    sat = MASK_DTYPE.type(int(MaskBit.SATURATED))
+    mask[::7, 10:16] = sat  # saturated stars: 6 of 200 pixels in every 7th row
+    mask[250:300, :190] = sat  # the sky filled the wells in rows 250-299 ...
+    mask[250:300, 190:] = MASK_DTYPE.type(int(MaskBit.BAD_COLUMN))  # ... but dead columns
+    night_row = np.arange(1000, 1400)
+    lines = saturated_sky_problems(night_row, mask, describe_mask(mask))
+    assert lines == [
+        "night rows 1250-1299 (50 rows): 100% of their pixels are saturated, the sky itself "
+        "filled the wells (twilight, moonlight, a light leak?): no star there can be measured."
+    ]
+    mask[250:300] = 0  # stars alone say nothing
+    assert saturated_sky_problems(night_row, mask, describe_mask(mask)) == []

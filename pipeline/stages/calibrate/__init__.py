@@ -695,9 +695,63 @@ def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
         "mask_counts": result.mask_counts,
     }
     problems = dropout_problems(rows.night_row, rows.dropout, rows.image)
+    problems += saturated_sky_problems(rows.night_row, result.mask, result.mask_counts)
     if problems:
         out[PROBLEMS] = problems
     return out
+
+
+#: Fraction of a row's pixels with data flagged SATURATED above which its sky,
+#: not its stars, filled the wells: saturated stars cover a few per cent of a
+#: row even in crowded fields (common practice).
+SATURATED_SKY_FRACTION = 0.5
+#: Share of a stretch's pixels saturated below which its rows are not looked
+#: at (the benchmark night's crowded stretches: ~0.2 %).
+SATURATED_SKY_SHARE = 0.025
+
+
+def saturated_sky_problems(night_row: np.ndarray, mask: np.ndarray, counts: dict) -> list[str]:
+    """One line per run of rows whose sky saturated (twilight, moonlight, a light leak).
+
+    Their stars cannot be measured, and the stages after say only that they
+    found few stars; this says why.
+
+    Parameters
+    ----------
+    night_row : ndarray of int, shape (n_rows,)
+        Night row of each stretch row.
+    mask : ndarray of uint16, shape (n_rows, n_columns)
+        The calibrated mask (:class:`~pipeline.masks.MaskBit`).
+    counts : dict
+        :func:`~pipeline.masks.describe_mask` of ``mask``: the rows are
+        looked at only when more than :data:`SATURATED_SKY_SHARE` of the
+        stretch's pixels are saturated (a star field's saturated stars stay
+        far below; a sky saturated in fewer rows goes unsaid).
+
+    Returns
+    -------
+    list of str
+        Empty when no row's sky saturated.
+    """
+    if counts.get("SATURATED", 0) <= SATURATED_SKY_SHARE * mask.size:
+        return []
+    no_data = int(MaskBit.GAP | MaskBit.NONFINITE | MaskBit.BAD_COLUMN)
+    with_data = ((mask & MASK_DTYPE.type(no_data)) == 0).sum(axis=1)
+    saturated = ((mask & MASK_DTYPE.type(int(MaskBit.SATURATED))) != 0).sum(axis=1)
+    full = (with_data > 0) & (saturated > SATURATED_SKY_FRACTION * with_data)
+    if not full.any():
+        return []
+    rows = np.flatnonzero(full)
+    lines = []
+    for part in np.split(rows, np.flatnonzero(np.diff(rows) != 1) + 1):
+        first, last = int(night_row[part[0]]), int(night_row[part[-1]])
+        share = saturated[part].sum() / max(int(with_data[part].sum()), 1)
+        lines.append(
+            f"night rows {first}-{last} ({part.size} rows): {share:.0%} of their pixels are "
+            "saturated, the sky itself filled the wells (twilight, moonlight, a light leak?): "
+            "no star there can be measured."
+        )
+    return lines
 
 
 def dropout_problems(night_row: np.ndarray, dropout: np.ndarray, image: np.ndarray) -> list[str]:
