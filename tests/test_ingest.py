@@ -185,6 +185,26 @@ def test_truncated_and_non_fits_files_are_rejected(tmp_path):
         read_block_header(text)
 
 
+def test_a_truncated_compressed_block_is_named_as_such(tmp_path):
+    """astropy calls a cut gzip file "Empty or corrupt"; the stream says it ends early.
+
+    (gzip: RFC 1952, a member ends with its CRC-32 and size; Python's gzip
+    module raises EOFError for a stream cut before them.)"""
+    import gzip
+
+    path = write_block(tmp_path / "b0.fits", make_header(0))
+    packed = gzip.compress(path.read_bytes())
+    cut = tmp_path / "cut.fits.gz"
+    cut.write_bytes(packed[: len(packed) // 2])
+    with pytest.raises(
+        IngestError, match=r"cut\.fits\.gz: .*its gz stream is damaged or ends early"
+    ):
+        read_block_header(cut)
+    whole = tmp_path / "whole.fits.gz"
+    whole.write_bytes(packed)
+    assert read_block_header(whole).n_rows == read_block_header(path).n_rows
+
+
 def test_nan_filled_data_is_rejected():
     with pytest.raises(IngestError, match="all 6 image pixels are NaN"):
         check_block_data(np.full((2, 3), np.nan), "nan.fits")

@@ -143,8 +143,49 @@ def read_raw_files(raw_dir: Path, names: Sequence[str], *, pixels: bool = True) 
             files.append(RawFile(name, index, header, size, error, summary, pixel_error))
         except Exception as exc:  # any unreadable file is reported, not fatal
             reason = f"not a readable FITS file ({type(exc).__name__}: {exc})"
+            damage = compressed_damage(path)
+            if damage is not None:
+                reason = f"{reason}: {damage}"
             files.append(RawFile(name, None, None, size, reason))
     return files
+
+
+def compressed_damage(path: Path) -> str | None:
+    """Why a gzip or bzip2 file cannot be decompressed to its end, or None.
+
+    astropy reads a damaged or truncated compressed file as "Empty or
+    corrupt FITS file"; decompressing it says which (an interrupted copy
+    leaves a stream that ends early).  Called only for a file that could not
+    be read.
+
+    Parameters
+    ----------
+    path : pathlib.Path
+        The file; other suffixes than ``.gz`` and ``.bz2`` give None.
+
+    Returns
+    -------
+    str or None
+        The reason, for the file's rejection line; None when the stream
+        decompresses (or the file is not gzip or bzip2).
+    """
+    import bz2
+    import gzip
+    import zlib
+
+    opener = {".gz": gzip.open, ".bz2": bz2.open}.get(path.suffix.lower())
+    if opener is None:
+        return None
+    try:
+        with opener(path, "rb") as stream:
+            while stream.read(1 << 20):
+                pass
+    except (EOFError, OSError, zlib.error) as exc:
+        return (
+            f"its {path.suffix[1:]} stream is damaged or ends early ({exc}): an interrupted "
+            "copy? copy the file again"
+        )
+    return None
 
 
 def check_block_index(index: Any, stage_name: str) -> Table:
