@@ -139,6 +139,8 @@ BAD_HEADERS = [
     ({"TDIROWS": 16.5}, "TDIROWS=16.5 is not a int"),
     ({"GAIN": -1.0}, "GAIN=-1.0 must be positive"),
     ({"DATE-OBS": "yesterday"}, "not an ISO 8601 time"),
+    # FITS datetimes carry no zone designator (FITS 4.0, section 9.1.1, from memory)
+    ({"DATE-OBS": "2026-03-20T02:00:02+00:00"}, "ends with a time-zone designator ('+00:00')"),
     ({"DATASEC": "[1:24,1:30]"}, "do not cover all"),
     ({"BIASSEC": "[20:30,1:40]"}, "overlap"),
     ({"BIASSEC": "[25:40,1:40]"}, "reaches outside"),

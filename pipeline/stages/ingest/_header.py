@@ -50,6 +50,8 @@ OPTIONAL = ("site_lat", "site_long", "site_elev")
 _SECTION = re.compile(r"^\s*\[\s*(\d+)\s*:\s*(\d+)\s*,\s*(\d+)\s*:\s*(\d+)\s*\]\s*$")
 _TIME_SCALES = {"UTC": "utc", "TAI": "tai", "TT": "tt"}
 _DATE_ONLY = re.compile(r"^\s*\d{4}-\d{2}-\d{2}\s*$")
+#: A time-zone designator at the end of an ISO 8601 time ('Z', '+00:00', '-0500').
+_ZONE = re.compile(r"(Z|[+-]\d{2}:?\d{2})$")
 _BYTES_PER_RECORD = 2880
 
 
@@ -350,6 +352,15 @@ def _parse_time(text, header, name):
     try:
         return Time(text, format="isot", scale=_TIME_SCALES[system]).utc
     except ValueError:
+        zone = _ZONE.search(str(text).strip())
+        if zone is not None:
+            # FITS datetimes carry no time-zone designator: the time scale is
+            # TIMESYS's (FITS 4.0, section 9.1.1, from memory)
+            raise IngestError(
+                f"{name}: DATE-OBS={text!r} ends with a time-zone designator "
+                f"({zone.group(0)!r}), which a FITS date does not carry (its time scale is "
+                f"TIMESYS, here {system}): write the time without it."
+            ) from None
         raise IngestError(f"{name}: DATE-OBS={text!r} is not an ISO 8601 time.") from None
 
 
