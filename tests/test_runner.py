@@ -828,6 +828,19 @@ def test_a_partial_inputs_stage_runs_on_the_stretches_that_exist(toy, monkeypatc
     assert list(table["sum"]) == pytest.approx(sums, rel=1e-12)
 
 
+def test_stretches_not_reduced_are_not_called_blocked(toy) -> None:
+    """A run of some stretches leaves the others unmade: nothing failed upstream of them."""
+    make_config, _ = toy
+    data = {k: v for k, v in make_config().to_dict().items() if k != "stages"}
+    config = config_from_mapping(data, graph=PARTIAL_GRAPH)
+    assert run_night(config, to_stage="scale", stretches=[1]).ok
+    assert run_night(config, stage="smooth", stretches=[1]).ok
+    report = run_night(config, stage="total")
+    total = next(r for r in report.results if r.stage == "total")
+    # smooth's stretches 0, 2, 3 were never made, nor scale's before them
+    assert total.problems == ("ran without stretches s0000, s0002-s0003 (not reduced in smooth)",)
+
+
 def test_a_partial_inputs_stage_without_any_usable_stretch_is_blocked(toy) -> None:
     make_config, _ = toy
     data = {k: v for k, v in make_config().to_dict().items() if k != "stages"}

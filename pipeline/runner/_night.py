@@ -360,16 +360,36 @@ class NightStore:
         return missing
 
     def _unusable(self, stage: Stage, stretch: Stretch) -> str | None:
-        """Why a stretch's unit of ``stage`` cannot feed a night-wide stage, or None."""
+        """Why a stretch's unit of ``stage`` cannot feed a night-wide stage, or None.
+
+        A unit never made whose inputs were never made either (a run of other
+        stretches, ``--stretches``) is "not reduced", not "blocked": nothing
+        upstream of it failed.
+        """
         if read_failure(self.unit_dir(stage, stretch.id)) is not None:
             return f"failed in {stage.name}"
         if self.damage(stage, stretch.id) is not None:
             return f"damaged in {stage.name}"
+        made = self.sidecar(stage, stretch.id) is not None
         if self.inputs(stage, stretch)[2] is not None:
+            if not made and self._not_reduced_upstream(stage, stretch):
+                return f"not reduced in {stage.name}"
             return f"blocked in {stage.name}"
-        if self.sidecar(stage, stretch.id) is None:
+        if not made:
             return f"missing in {stage.name}"
         return None
+
+    def _not_reduced_upstream(self, stage: Stage, stretch: Stretch) -> bool:
+        """Whether the stretch's per-stretch inputs of ``stage`` were only never made."""
+        reasons = [
+            self._unusable(self.stages[name], stretch)
+            for name in stage.requires
+            if name in self.stages and self.stages[name].scope == "stretch"
+        ]
+        unusable = [reason for reason in reasons if reason is not None]
+        return bool(unusable) and all(
+            reason.startswith(("missing in ", "not reduced in ")) for reason in unusable
+        )
 
     def _raw_names_or_reason(self) -> tuple[tuple[str, ...], str | None]:
         """The raw file names, or why there are none (a wrong folder or pattern)."""
