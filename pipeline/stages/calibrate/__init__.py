@@ -695,7 +695,7 @@ def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
         "mask_counts": result.mask_counts,
     }
     problems = dropout_problems(rows.night_row, rows.dropout, rows.image)
-    problems += saturated_sky_problems(rows.night_row, result.mask, result.mask_counts)
+    problems += saturated_sky_problems(rows.night_row, result.mask, out["mask_counts"])
     if problems:
         out[PROBLEMS] = problems
     return out
