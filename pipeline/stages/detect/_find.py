@@ -627,14 +627,16 @@ def measured_noise_correlation_rows(
     if band < 1:
         raise ValueError(f"band must be a positive number of rows; got {band}.")
     ny = snr.shape[0]
-    overall = measured_noise_correlation(snr, no_data)
     starts = np.arange(0, ny, band)
     stops = np.minimum(starts + band, ny)
-    factors = np.full(starts.size, overall)
+    factors = np.full(starts.size, np.nan)
     for i, (lo, hi) in enumerate(zip(starts, stops, strict=True)):
         part, empty = snr[lo:hi], no_data[lo:hi]
         if np.count_nonzero(~empty & (part != 0)) >= NOISE_BAND_MIN_PIXELS:
             factors[i] = measured_noise_correlation(part, empty)
+    short = np.isnan(factors)
+    if short.any():  # the whole map's factor, clipped over every pixel, only when needed
+        factors[short] = measured_noise_correlation(snr, no_data)
     return np.interp(np.arange(ny), (starts + stops - 1) / 2.0, factors)
 
 
