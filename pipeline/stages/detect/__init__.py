@@ -253,6 +253,11 @@ def _catalog(values: dict, radii, n: int) -> QTable:
     return table
 
 
+#: Fewer trusted seeing stars than this, far from every other source, and
+#: detect takes the stars fitted alone instead (a crowded field).
+SEEING_STARS_CROWDED = 5
+
+
 def _seeing_table(rows) -> Table:
     table = Table(
         rows=rows,
@@ -532,13 +537,15 @@ def detect(
     point = deconvolved
     fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
 
-    def fit_seeing(px, py, brightness, split, prof):
-        """Seeing FWHM (or None) and the seeing table rows from isolated bright sources."""
-        # Isolated: no other source within twice the reach of a fit stamp.
+    def seeing_star_curves(px, py, brightness, usable, reach, prof):
+        """Rows and chi-square curves of the brightest usable stars no other source nears.
+
+        Near: within ``reach`` (the width :func:`_groups` spreads a fit stamp by).
+        """
         isolated = np.zeros(len(px), bool)
-        for members in _groups(px, py, grid, x_start, 2.0 * prof.fwhm + 2.0, point):
+        for members in _groups(px, py, grid, x_start, reach, point):
             isolated[members] = len(members) == 1
-        ok = isolated & ~split & (brightness >= seeing_min_snr) & np.isfinite(px + py)
+        ok = isolated & usable
         chosen = [i for i in np.argsort(-brightness) if ok[i]][:seeing_stars]
         ys_, curves = seeing_curves(
             residual,
@@ -551,7 +558,20 @@ def detect(
             point_kernel=point,
         )
         trusted = single_stars(fwhm_grid, curves)
-        ys_, curves = ys_[trusted], curves[trusted]
+        return ys_[trusted], curves[trusted]
+
+    def fit_seeing(px, py, brightness, split, prof):
+        """Seeing FWHM (or None) and the seeing table rows from isolated bright sources."""
+        usable = ~split & (brightness >= seeing_min_snr) & np.isfinite(px + py)
+        # Isolated: no other source within twice the reach of a fit stamp.
+        ys_, curves = seeing_star_curves(px, py, brightness, usable, 2.0 * prof.fwhm + 2.0, prof)
+        if len(ys_) < SEEING_STARS_CROWDED:
+            # A crowded field has few stars that far from every other (at
+            # ~2,600 sources per megapixel, ~1 in 1,000): take the stars whose
+            # fit stamp no other source's overlaps, which are fitted alone.
+            crowded = seeing_star_curves(px, py, brightness, usable, prof.fwhm, prof)
+            if len(crowded[0]) > len(ys_):
+                ys_, curves = crowded
         if not len(ys_):
             return None, [(0, image.shape[0], 0, np.nan)]
         best = best_fwhm(fwhm_grid, curves)
@@ -1283,6 +1303,8 @@ STAGE = Stage(
     #     position within 0.1 sigma, rms 0.001-0.003 sigma)
     # 12: a deconvolved product's noise factor measured per band of 64 rows
     #     and put into the variance (products of deconvolved stretches only)
-    version=12,
+    # 13: a crowded field's seeing from the stars fitted alone when fewer
+    #     than SEEING_STARS_CROWDED are far from every other source
+    version=13,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
