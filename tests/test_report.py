@@ -366,7 +366,7 @@ def test_a_configured_focal_length_is_not_called_the_spin_period_s() -> None:
     configured one: the page said "6.00000 m from the spin period" on such nights."""
     meta = {"focal_length_given": "focal_length"}
     rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
-    assert rows["focal length"] == "6.00012 m fitted, 6.00000 m configured (+120 um)"
+    assert rows["focal length"] == "6.00012 m fitted, 6.00000 m configured (+120 +- 540 um)"
     fig = focal_length_figure(_with_meta(meta), scene.TDI_ROWS)
     assert [t.get_text() for t in fig.axes[0].get_xticklabels()] == [
         "fitted to the stars",
@@ -374,7 +374,7 @@ def test_a_configured_focal_length_is_not_called_the_spin_period_s() -> None:
     ]
     meta = {"focal_length_given": "spin_period"}
     rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
-    assert rows["focal length"].endswith("6.00000 m from the spin period (+120 um)")
+    assert rows["focal length"].endswith("6.00000 m from the spin period (+120 +- 540 um)")
 
 
 def _with_meta(meta: dict):
@@ -388,7 +388,10 @@ def test_summary_states_the_solved_numbers() -> None:
     assert rows["matched reference stars"] == "321"
     assert "focal_scale = 2e-05 +- 9e-05;" in rows["solved parameters"]
     assert "rotation = 3.5 +- 0.8 arcsec" in rows["solved parameters"]
-    assert rows["focal length"] == "6.00012 m fitted, 6.00000 m from the spin period (+120 um)"
+    # focal_scale 2e-05 +- 9e-05 of 6 m: +120 +- 540 um
+    assert rows["focal length"] == (
+        "6.00012 m fitted, 6.00000 m from the spin period (+120 +- 540 um)"
+    )
     assert rows["line-time error"].startswith("+5.000 us (+100.0 ppm), smear 0.00 pix")
     assert rows["zero point"] == "clear level 27.800 mag (1 e-/s), 1 of 2 stretches flagged"
 

@@ -74,6 +74,7 @@ def _error_text(value: float, error: float) -> str:
 def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
     """Summary rows of the solved products (astrometry, zero point), or why they are absent."""
     from pipeline.report._solved import (
+        _parameter,
         line_time_check,
         line_time_text,
         nominal_focal_length_label,
@@ -98,11 +99,15 @@ def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
         )
         if "focal_length_m" in meta and "focal_length_from_spin_m" in meta:
             fit, spin = float(meta["focal_length_m"]), float(meta["focal_length_from_spin_m"])
+            # fitted = nominal * (1 + focal_scale): the difference's error is
+            # the nominal focal length times the scale's
+            scale = _parameter(parameters, "focal_scale")
+            error = "" if scale is None else f" +- {1e6 * spin * scale[1]:.0f}"
             rows.append(
                 (
                     "focal length",
                     f"{fit:.5f} m fitted, {spin:.5f} m {nominal_focal_length_label(meta)} "
-                    f"({1e6 * (fit - spin):+.0f} um)",
+                    f"({1e6 * (fit - spin):+.0f}{error} um)",
                 )
             )
         tdi_rows = products.get("tdi_rows")

@@ -78,5 +78,6 @@ STAGE = Stage(
     # 2: a line-time error within 3 sigma of zero asks for no correction; a
     # configured focal length is not called the spin period's; the sources are
     # astrometry's last measurement when it measured again
-    version=2,
+    # 3: the fitted focal length's difference from the nominal with its error
+    version=3,
 )
