@@ -175,11 +175,13 @@ def test_read_block_header_and_rows(tmp_path):
 
 
 def test_truncated_and_non_fits_files_are_rejected(tmp_path):
+    """A file cut before its first row is whole has nothing to salvage."""
     path = write_block(tmp_path / "b0.fits", make_header(0))
     data = path.read_bytes()
     short = tmp_path / "short.fits"
-    short.write_bytes(data[: len(data) - 1500])
-    with pytest.raises(IngestError, match=r"short\.fits: truncated file"):
+    row_bytes = (N_IMAGE + N_OVERSCAN) * 2
+    short.write_bytes(data[: 2880 + row_bytes - 1])  # one header record, then < 1 row
+    with pytest.raises(IngestError, match=r"short\.fits: truncated file: it ends before its first"):
         read_block_header(short)
     text = tmp_path / "notes.fits"
     text.write_text("observing log, not an image\n")
@@ -187,17 +189,100 @@ def test_truncated_and_non_fits_files_are_rejected(tmp_path):
         read_block_header(text)
 
 
+def _cut_night(tmp_path, suffix=""):
+    """Three contiguous blocks; the middle one cut after 23 whole rows (and 11 bytes)."""
+    import gzip
+
+    stored = []
+    for seq in range(3):
+        path = write_block(tmp_path / f"b{seq}.fits", make_header(seq))
+        with fits.open(path) as hdul:
+            stored.append(np.asarray(hdul[0].data, np.float32))
+    cut = tmp_path / "b1.fits"
+    whole = cut.read_bytes()
+    row_bytes = (N_IMAGE + N_OVERSCAN) * 2
+    cut.write_bytes(whole[: 2880 + 23 * row_bytes + 11])
+    if suffix == ".gz":  # an interrupted copy of a gzip file: its stream ends early
+        for seq in range(3):
+            path = tmp_path / f"b{seq}.fits"
+            packed = gzip.compress(whole if seq == 1 else path.read_bytes())
+            if seq == 1:  # cut where the stream has given 23 whole rows (and not 24)
+                need = 2880 + 23 * row_bytes + 11
+                n = next(n for n in range(len(packed)) if len(zlib_partial(packed[:n])) >= need)
+                assert len(zlib_partial(packed[:n])) < 2880 + 24 * row_bytes
+                packed = packed[:n]
+            (tmp_path / f"b{seq}.fits.gz").write_bytes(packed)
+            path.unlink()
+    return stored
+
+
+def zlib_partial(packed: bytes) -> bytes:
+    """What a cut gzip stream decompresses to (RFC 1952 wrapper, Python's zlib)."""
+    import zlib
+
+    return zlib.decompressobj(16 + zlib.MAX_WBITS).decompress(packed)
+
+
+@pytest.mark.parametrize("suffix", ["", ".gz"])
+def test_a_file_cut_short_keeps_its_whole_rows_and_names_the_lost_ones(tmp_path, suffix):
+    """An interrupted copy used to reject its block whole, though the rows
+    before the cut are readable: now they are the block, the rest a gap,
+    and one line names the file and the rows lost."""
+    from pipeline.runner._rawio import read_raw_files, read_rows
+
+    stored = _cut_night(tmp_path, suffix)
+    names = [f"b{seq}.fits{suffix}" for seq in range(3)]
+    info = read_block_header(tmp_path / names[1])
+    assert (info.n_rows, info.lost_rows) == (23, N_ROWS - 23)
+    night = ingest_files(read_raw_files(tmp_path, names), IngestOptions())
+    assert not night.rejected
+    assert list(night.table["file"]) == names
+    assert list(night.table["n_rows"]) == [N_ROWS, 23, N_ROWS]
+    assert list(night.table["row_start"]) == [0, N_ROWS, 2 * N_ROWS]
+    assert night.problems[0] == (
+        f"{names[1]}: truncated file (cut after 23 whole rows: an interrupted copy?): the first "
+        f"23 of its {N_ROWS} rows are used; rows 23-{N_ROWS - 1} (night rows {N_ROWS + 23}-"
+        f"{2 * N_ROWS - 1}, {(N_ROWS - 23) * LINE_TIME:.2f} s) are lost and left out as a gap; "
+        "copy the file again if the camera's copy is whole."
+    )
+    assert night.problems[1].startswith(f"{names[2]}: gap of {N_ROWS - 23}.0 rows")
+    rows = read_rows(tmp_path, night.table, 0, 3 * N_ROWS)
+    np.testing.assert_array_equal(rows[N_ROWS : N_ROWS + 23], stored[1][:23])
+    assert np.isnan(rows[N_ROWS + 23 : 2 * N_ROWS]).all()
+    np.testing.assert_array_equal(rows[2 * N_ROWS :], stored[2])
+
+
+def test_a_cut_file_stored_last_read_first_keeps_its_last_read_rows(tmp_path):
+    """With camera.flip_rows the rows stored first are the last read: those are
+    kept, and the block starts lost_rows line times after its DATE-OBS."""
+    from pipeline.runner._rawio import read_raw_files, read_rows
+
+    stored = _cut_night(tmp_path)
+    names = [f"b{seq}.fits" for seq in range(3)]
+    night = ingest_files(read_raw_files(tmp_path, names), IngestOptions(), flip_rows=True)
+    lost = N_ROWS - 23
+    assert list(night.table["row_start"]) == [0, N_ROWS + lost, 2 * N_ROWS]
+    assert night.table["t_start"][1] == pytest.approx((N_ROWS + lost) * LINE_TIME, abs=1e-6)
+    assert f"(night rows {N_ROWS}-{N_ROWS + lost - 1}," in night.problems[0]
+    rows = read_rows(tmp_path, night.table, 0, 3 * N_ROWS, flip_rows=True)
+    # Readout row k of a flipped block is stored at N_ROWS - 1 - k.
+    np.testing.assert_array_equal(rows[N_ROWS + lost : 2 * N_ROWS], stored[1][:23][::-1])
+    assert np.isnan(rows[N_ROWS : N_ROWS + lost]).all()
+
+
 def test_a_truncated_compressed_block_is_named_as_such(tmp_path):
     """astropy calls a cut gzip file "Empty or corrupt"; the stream says it ends early.
 
     (gzip: RFC 1952, a member ends with its CRC-32 and size; Python's gzip
-    module raises EOFError for a stream cut before them.)"""
+    module raises EOFError for a stream cut before them.)  Here the cut comes
+    within the header, so no row can be salvaged."""
     import gzip
 
     path = write_block(tmp_path / "b0.fits", make_header(0))
     packed = gzip.compress(path.read_bytes())
     cut = tmp_path / "cut.fits.gz"
-    cut.write_bytes(packed[: len(packed) // 2])
+    cut.write_bytes(packed[:30])
+    assert len(zlib_partial(packed[:30])) < 2880
     with pytest.raises(
         IngestError, match=r"cut\.fits\.gz: .*its gz stream is damaged or ends early"
     ):
@@ -498,8 +583,9 @@ def test_broken_night_through_the_command_line(tmp_path, capsys):
 
     Good blocks are indexed and calibrated; each broken file and each gap is
     reported in one line, in the ingest report and in the run summary; the
-    rows of rejected and missing blocks are GAP; the exit status is 1 (a
-    partial failure), also on a rerun that finds everything up to date.
+    rows of rejected and missing blocks, and those a cut file lost, are in no
+    stretch; the exit status is 1 (a partial failure), also on a rerun that
+    finds everything up to date.
     """
     from pipeline.cli import main
     from pipeline.geometry.instrument import Camera, Site
@@ -547,7 +633,7 @@ stages:
     assert len(problems) == 6 == len(summary) - 1
     bad = [line.split(": ")[2] for line in problems]
     assert bad == [
-        "rejected block_0001.fits", "rejected block_0003.fits", "rejected block_notes.fits",
+        "rejected block_0003.fits", "rejected block_notes.fits", "block_0001.fits",
         "block_0002.fits", "block_0004.fits", "block_0006.fits",
     ]  # fmt: skip
     # A rerun has nothing to do but still reports the problems and fails.
@@ -559,23 +645,31 @@ stages:
     assert sum(" problem: night: " in line for line in capsys.readouterr().out.splitlines()) == 6
     products = tmp_path / "out" / "broken"
     ingest = json.loads((products / "ingest" / "night" / "ingest_report.json").read_text())
-    assert not ingest["ok"] and ingest["n_blocks"] == 5  # blocks 0, 2, 4, 6, 7
+    assert not ingest["ok"] and ingest["n_blocks"] == 6  # blocks 0, 1 (cut), 2, 4, 6, 7
     rejected = sorted(ingest["rejected"])
-    assert len(rejected) == 3
-    assert rejected[0].startswith("block_0001.fits: truncated file")
-    assert rejected[1].startswith("block_0003.fits: missing keyword GAIN")
-    assert rejected[2].startswith("block_notes.fits: ")
+    assert len(rejected) == 2
+    assert rejected[0].startswith("block_0003.fits: missing keyword GAIN")
+    assert rejected[1].startswith("block_notes.fits: ")
     assert all("\n" not in line for line in rejected)
-    # Blocks 1, 3 (rejected) and 5 (missing) leave gaps; each is reported.
+    # The cut block 1 keeps its whole rows; its lost rows, block 3 (rejected)
+    # and block 5 (missing) leave gaps; each is reported.
     assert [p.split(":")[0] for p in ingest["problems"]] == [
-        "block_0002.fits", "block_0004.fits", "block_0006.fits"
+        "block_0001.fits", "block_0002.fits", "block_0004.fits", "block_0006.fits"
     ]  # fmt: skip
     index = Table.read(products / "ingest" / "night" / "block_index.ecsv")
-    assert list(index["row_start"]) == [0, 1024, 2048, 3072, 3584]
-    # Night rows 512-1023 of the rejected (truncated) block 1 are in no
-    # stretch: stretches stop at the end of a segment, margins included.
+    assert list(index["row_start"]) == [0, 512, 1024, 2048, 3072, 3584]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # astropy: "File may have been truncated"
+        with fits.open(blocks[1]) as hdul:
+            data_start = hdul.fileinfo(0)["datLoc"]
+    whole = int(index["n_rows"][1])  # the rows wholly before the cut (56 columns of 2 bytes)
+    assert whole == (blocks[1].stat().st_size - data_start) // (56 * 2) < 512
+    assert f"rows {whole}-511 (night rows {512 + whole}-1023, " in ingest["problems"][0]
+    # Night rows 512 + whole to 1023, lost with the cut, and those of the
+    # rejected block 3 are in no stretch: stretches stop at the end of a
+    # segment, margins included.
     from pipeline.config import load_config
     from pipeline.runner._night import NightStore
 
     plan = [(s.lo, s.hi) for s in NightStore(load_config(night)).stretches]
-    assert plan == [(0, 512), (1024, 1536), (2048, 2560), (3072, 4096)]
+    assert plan == [(0, 512 + whole), (1024, 1536), (2048, 2560), (3072, 4096)]

@@ -8,8 +8,10 @@ index lists (``RAW_ROWS``).
 
 from __future__ import annotations
 
+import io
 import warnings
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -24,8 +26,10 @@ __all__ = [
     "block_index_rows",
     "blocks_fingerprint",
     "check_block_index",
+    "complete_rows",
     "first_image_hdu",
     "list_raw_files",
+    "open_raw",
     "overlapping_blocks",
     "raw_files_fingerprint",
     "read_raw_files",
@@ -82,17 +86,22 @@ def _file_size(path: Path) -> int | None:
     return None if start.startswith(_COMPRESSED_MAGIC) else size
 
 
-def summarize_pixels(hdu: fits.ImageHDU | fits.PrimaryHDU | fits.CompImageHDU) -> PixelSummary:
+def summarize_pixels(
+    hdu: fits.ImageHDU | fits.PrimaryHDU | fits.CompImageHDU, n_rows: int | None = None
+) -> PixelSummary:
     """Per-column extremes of an image HDU's pixels, read in chunks of rows.
 
     Reads every pixel once (``_SUMMARY_ROWS`` rows at a time, so memory stays
     flat for any block size) as stored, and applies BSCALE/BZERO to the
     extremes only (a linear map), which is several times faster than scaling
     every pixel; integer pixels equal to BLANK count as non-finite.  Open the
-    file with ``memmap=False, do_not_scale_image_data=True``.
+    file with ``memmap=False, do_not_scale_image_data=True``.  ``n_rows``
+    limits the summary to the first rows (those wholly in a file cut short,
+    :func:`complete_rows`); default all NAXIS2.
     """
     header = hdu.header
-    n_rows, n_columns = int(header["NAXIS2"]), int(header["NAXIS1"])
+    n_columns = int(header["NAXIS1"])
+    n_rows = int(header["NAXIS2"]) if n_rows is None else int(n_rows)
     blank = header.get("BLANK") if int(header["BITPIX"]) > 0 else None
     summary = PixelSummary.of(np.zeros((0, n_columns), np.float32))
     for start in range(0, n_rows, _SUMMARY_ROWS):
@@ -107,6 +116,95 @@ def summarize_pixels(hdu: fits.ImageHDU | fits.PrimaryHDU | fits.CompImageHDU) -
     return PixelSummary(summary.n_rows, summary.n_finite, low, high)
 
 
+def complete_rows(hdul: fits.HDUList, index: int, size: int | None) -> int | None:
+    """Rows of image HDU ``index`` wholly in a file cut short, or None if it holds them all.
+
+    A copy interrupted part-way through a block leaves its header and the
+    rows written before the cut: rows are stored one after the other (FITS
+    4.0, section 3.3.2, from memory: the first axis varies fastest), so
+    every row that ends before the end of the file is whole.
+
+    Parameters
+    ----------
+    hdul : astropy.io.fits.HDUList
+        The open file.
+    index : int
+        Its image HDU.
+    size : int or None
+        Bytes of the (uncompressed) FITS stream; None when unknown (a
+        compressed file read whole, or a tile-compressed HDU, whose stored
+        bytes are not its rows): then None.
+
+    Returns
+    -------
+    int or None
+        The number of whole rows (0 if the cut comes before the first row
+        ends), or None when the file holds every row of NAXIS2.
+    """
+    hdu = hdul[index]
+    if size is None or isinstance(hdu, fits.CompImageHDU):
+        return None
+    header = hdu.header
+    n_rows = int(header["NAXIS2"])
+    row_bytes = int(header["NAXIS1"]) * abs(int(header["BITPIX"])) // 8
+    start = int(hdul.fileinfo(index)["datLoc"])
+    whole = max(size - start, 0) // row_bytes if row_bytes else n_rows
+    return int(whole) if whole < n_rows else None
+
+
+def _partial_stream(path: Path) -> bytes | None:
+    """What a cut gzip or bzip2 file decompresses to before its end, or None.
+
+    None when the file is not such a file or its stream is whole (then
+    nothing is salvaged from it: it is damaged in another way).
+    """
+    import bz2
+    import zlib
+
+    suffix = path.suffix.lower()
+    if suffix == ".gz":
+        decoder = zlib.decompressobj(16 + zlib.MAX_WBITS)  # gzip wrapper (RFC 1952)
+    elif suffix == ".bz2":
+        decoder = bz2.BZ2Decompressor()
+    else:
+        return None
+    pieces = []
+    try:
+        with open(path, "rb") as stream:
+            while chunk := stream.read(1 << 20):
+                pieces.append(decoder.decompress(chunk))
+    except (OSError, EOFError, zlib.error):
+        pass  # damaged part-way: keep what came before
+    ended = decoder.eof
+    return None if ended else b"".join(pieces)
+
+
+@contextmanager
+def open_raw(path: Path, **kwargs: Any) -> Iterator[tuple[fits.HDUList, int | None]]:
+    """Open a raw file with astropy, also a gzip or bzip2 file whose stream was cut.
+
+    Yields
+    ------
+    hdul : astropy.io.fits.HDUList
+    size : int or None
+        Bytes of the FITS stream: the file's size for a plain file, the
+        decompressed bytes of a cut compressed file (read from memory), None
+        for a whole compressed file.
+    """
+    path = Path(path)
+    size = _file_size(path)
+    try:
+        hdul = fits.open(path, **kwargs)
+    except Exception:
+        data = _partial_stream(path) if size is None else None
+        if data is None:
+            raise
+        size = len(data)
+        hdul = fits.open(io.BytesIO(data), **kwargs)
+    with hdul:
+        yield hdul, size
+
+
 def read_raw_files(raw_dir: Path, names: Sequence[str], *, pixels: bool = True) -> list[RawFile]:
     """Read the header of the first 2-D image HDU of every raw file.
 
@@ -115,7 +213,10 @@ def read_raw_files(raw_dir: Path, names: Sequence[str], *, pixels: bool = True) 
     None for compressed files (see :class:`~pipeline.stages.base.RawFile`).
     With ``pixels`` (the default) every pixel is read once too and summarised
     (:func:`summarize_pixels`), so that ingest can reject blocks without any
-    usable pixel; pixels that cannot be read leave ``pixel_error`` set.
+    usable pixel; pixels that cannot be read leave ``pixel_error`` set.  A
+    file cut short (an interrupted copy, plain or gzip/bzip2) has
+    ``complete_rows`` set (:func:`complete_rows`) and only those rows
+    summarised, so that ingest can use them and report the rest as lost.
     """
     files = []
     for name in names:
@@ -125,22 +226,25 @@ def read_raw_files(raw_dir: Path, names: Sequence[str], *, pixels: bool = True) 
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
                 # Stored values (the header keeps BZERO/BSCALE): see summarize_pixels.
-                with fits.open(path, memmap=False, do_not_scale_image_data=True) as hdul:
+                with open_raw(path, memmap=False, do_not_scale_image_data=True) as (hdul, stream):
                     index = first_image_hdu(hdul)
                     header = hdul[index].header.copy() if index is not None else None
+                    whole = complete_rows(hdul, index, stream) if index is not None else None
                     if index is not None and isinstance(hdul[index], fits.CompImageHDU):
                         size = None
                     summary, pixel_error = None, None
-                    if pixels and index is not None:
+                    if pixels and index is not None and whole != 0:
                         try:
-                            summary = summarize_pixels(hdul[index])
+                            summary = summarize_pixels(hdul[index], whole)
                         except Exception as exc:  # truncated data, bad compression, ...
                             pixel_error = f"{type(exc).__name__}: {exc}"
+            # A cut file's truncation warning is what complete_rows measured.
+            caught = [w for w in caught if whole is None or "truncated" not in str(w.message)]
             problems = "; ".join(str(w.message) for w in caught)
             error = None if index is not None else "no 2-D image HDU in the file"
             if problems and error is None:
                 header["COMMENT"] = f"astropy warned on reading: {problems}"[:2000]
-            files.append(RawFile(name, index, header, size, error, summary, pixel_error))
+            files.append(RawFile(name, index, header, size, error, summary, pixel_error, whole))
         except Exception as exc:  # any unreadable file is reported, not fatal
             reason = f"not a readable FITS file ({type(exc).__name__}: {exc})"
             damage = compressed_damage(path)
@@ -247,8 +351,11 @@ def _read_block_rows(
     try:
         with warnings.catch_warnings(record=True) as caught:  # astropy only warns when a
             warnings.simplefilter("always")  # file is truncated
-            with fits.open(path) as hdul:
+            with open_raw(path) as (hdul, _):
                 hdu = hdul[hdu_index]
+                # A block the index holds fewer rows of than NAXIS2 is a file cut
+                # short whose whole rows ingest kept; reading past them raises.
+                cut = int(hdu.header["NAXIS2"]) > n_rows
                 if int(hdu.header["NAXIS2"]) < r1 - start:
                     raise ValueError(
                         f"Raw file {name!r} has {hdu.header['NAXIS2']} rows but the block "
@@ -261,7 +368,7 @@ def _read_block_rows(
                     section = hdu.section[k0:k1, :]
                 rows = np.asarray(section, dtype=np.float32)
         truncated = [w for w in caught if "truncated" in str(w.message)]
-        if not truncated:
+        if not truncated or cut:
             return rows
         error = OSError(str(truncated[0].message))
     except ValueError as exc:

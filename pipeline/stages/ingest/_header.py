@@ -120,6 +120,9 @@ class BlockInfo:
         Passband name.
     defaulted : tuple of str
         Canonical names whose values came from the config defaults.
+    lost_rows : int
+        Rows the header promises (NAXIS2) that a file cut short does not
+        hold whole; ``n_rows`` counts only the whole rows, stored first.
     """
 
     name: str
@@ -141,6 +144,7 @@ class BlockInfo:
     site_elev: float | None
     filter: str
     defaulted: tuple[str, ...] = ()
+    lost_rows: int = 0
 
     @property
     def geometry(self) -> tuple[Any, ...]:
@@ -244,6 +248,7 @@ def parse_block_header(
     header_bytes: int | None = None,
     keywords: dict[str, str] | None = None,
     defaults: dict[str, Any] | None = None,
+    complete_rows: int | None = None,
 ) -> BlockInfo:
     """Check a raw block's header and return its :class:`BlockInfo`.
 
@@ -266,6 +271,12 @@ def parse_block_header(
         :data:`KEYWORDS`.
     defaults : dict, optional
         Canonical name -> value used when the keyword is missing.
+    complete_rows : int, optional
+        For a file cut short (the runner measures it,
+        :func:`pipeline.runner._rawio.complete_rows`): the rows stored whole
+        before the cut.  The block is then those rows (``n_rows``), the rest
+        ``lost_rows``, and ``size`` is not checked; with none whole the file
+        is rejected.
 
     Returns
     -------
@@ -291,9 +302,18 @@ def parse_block_header(
     if n_rows < 1 or n_columns < 2:
         raise IngestError(f"{name}: empty image ({n_columns} x {n_rows}).")
     note = _reader_note(header)
-    if "truncated" in note:
+    lost_rows = 0
+    if complete_rows is not None and complete_rows < n_rows:
+        if complete_rows < 1:
+            raise IngestError(
+                f"{name}: truncated file: it ends before its first row ({n_columns} pixels of "
+                f"BITPIX {bitpix}) is whole, so none of its {n_rows} rows can be used; copy the "
+                "file again from the camera."
+            )
+        lost_rows = n_rows - complete_rows
+    elif "truncated" in note:
         raise IngestError(f"{name}: truncated file ({note}).")
-    if size is not None:
+    elif size is not None:
         if header_bytes is None:
             header_bytes = _header_bytes(header, hdu)
         need = expected_file_size(header_bytes, n_rows, n_columns, bitpix)
@@ -324,10 +344,11 @@ def parse_block_header(
     return BlockInfo(
         name=name,
         hdu=hdu,
-        n_rows=n_rows,
+        n_rows=n_rows - lost_rows,
         n_columns=n_columns,
         bitpix=bitpix,
         defaulted=tuple(defaulted),
+        lost_rows=lost_rows,
         **values,
     )
 
