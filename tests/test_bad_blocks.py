@@ -202,6 +202,24 @@ def test_readout_dropout_rows_are_flagged_gap_and_named(clean_night, tmp_path, c
     # The rows around it are data, with a bias near the simulator's 1000 ADU.
     assert not (flags[~dropout] & 64).any()
     assert np.all(np.abs(rows["bias"][~dropout] - 1000.0) < 20.0)
+    assert list(rows["data"]) == list(~dropout)
+
+
+def test_the_hours_of_data_leave_out_readout_dropout_rows(clean_night, tmp_path, capsys):
+    """The report's hours of usable data counted every row a block holds, the
+    rows of a readout dropout (no data, flagged GAP by calibrate) too."""
+    config = _copy_night(clean_night, tmp_path)
+    _rewrite(tmp_path / "raw" / BAD, _dropout(0.0))
+    assert _run(config, capsys, "--to", "rectify")[0] == 1  # the report reads rectify's too
+    assert _run(config, capsys, "--stage", "report")[0] == 0
+    index = Table.read(tmp_path / "out/n/ingest/night/block_index.ecsv")
+    line_time = float(index["line_time"][0])
+    assert np.allclose(index["line_time"], line_time)
+    seconds = (int(np.sum(index["n_rows"])) - 60) * line_time  # the 60 dropout rows out
+    summary = dict(json.loads((tmp_path / "out/n/report/night/summary.json").read_text()))
+    assert summary["hours of usable data"] == (
+        f"{seconds / 3600:.2f} h ({seconds:.0f} s; 60 rows without data left out)"
+    )
 
 
 def _narrow(data, header):
