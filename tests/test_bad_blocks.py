@@ -256,9 +256,9 @@ def test_a_block_of_another_format_spares_its_neighbours(
     assert code == 1 and ", 0 failed, 0 blocked" in out, out
     problems = _problems(out)
     assert problems == [
-        f"problem: ingest/night: {BAD}: format NAXIS1 48, DATASEC [1:40,1:256], BIASSEC "
-        "[41:48,1:256] differs from the night's (NAXIS1 56, DATASEC [1:48,1:256], BIASSEC "
-        "[49:56,1:256]); new segment, its 40 image columns solved on their own."
+        f"problem: ingest/night: {BAD}: format NAXIS1 48, DATASEC columns 1:40, BIASSEC "
+        "columns 41:48 differs from the night's (NAXIS1 56, DATASEC columns 1:48, BIASSEC "
+        "columns 49:56); new segment, its 40 image columns solved on their own."
     ], out
     # Night rows 0-511 (blocks 0, 1), 512-767 (block 2), 768-1023 (block 3).
     products = tmp_path / "out/n"

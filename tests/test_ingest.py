@@ -513,6 +513,45 @@ def test_contiguous_night_is_one_segment():
     assert rows["covered"].all()
 
 
+def test_a_shorter_block_or_spaced_sections_keep_the_camera_format():
+    """A shorter last block (DATASEC rows 1:20 of its 20 rows) and a DATASEC
+    written with spaces used to count as a change of camera format: a new
+    segment, a problem line, and calibrate refused a stretch across them
+    ("2 different DATASEC/BIASSEC").  Only the sections' columns say what
+    the camera read."""
+    from pipeline.stages.calibrate._rows import stretch_rows
+
+    short = N_ROWS // 2
+    headers = [
+        make_header(0),
+        make_header(1, DATASEC=f"[1:{N_IMAGE}, 1:{N_ROWS}] "),
+        make_header(
+            2,
+            NAXIS2=short,
+            DATASEC=f"[1:{N_IMAGE},1:{short}]",
+            BIASSEC=f"[{N_IMAGE + 1}:{N_IMAGE + N_OVERSCAN},1:{short}]",
+        ),
+    ]
+    infos = [parse_block_header(h, f"b{seq}.fits") for seq, h in enumerate(headers)]
+    night = index_night(infos)
+    assert night.ok and night.n_segments == 1, night.problems
+    assert list(night.table["n_rows"]) == [N_ROWS, N_ROWS, short]
+    raw = np.arange((N_ROWS + short) * (N_IMAGE + N_OVERSCAN), dtype=np.float32)
+    raw = raw.reshape(N_ROWS + short, N_IMAGE + N_OVERSCAN)
+    rows = stretch_rows(raw, night.table, N_ROWS, 2 * N_ROWS + short)
+    np.testing.assert_array_equal(rows.image, raw[:, :N_IMAGE])
+    np.testing.assert_array_equal(rows.overscan, raw[:, N_IMAGE:])
+    # A window of other columns is still a new format, named by its columns.
+    after_short = START - (N_ROWS - short) * LINE_TIME * u.s  # b3 follows b2 without a gap
+    narrow = make_header(3, after_short, DATASEC=f"[1:20,1:{N_ROWS}]")
+    night = index_night([*infos, parse_block_header(narrow, "b3.fits")])
+    assert night.problems == [
+        "b3.fits: format NAXIS1 30, DATASEC columns 1:20, BIASSEC columns 25:30 differs from "
+        "the night's (NAXIS1 30, DATASEC columns 1:24, BIASSEC columns 25:30); new segment, "
+        "its 20 image columns solved on their own."
+    ]
+
+
 def test_a_gain_that_changes_mid_night_is_reported_and_the_rows_stay_one_segment():
     """A block whose header says GAIN=1.0 among blocks of 2.0 e-/ADU halves its
     fluxes in e-; it used to pass without a word, and the astrometry of a

@@ -69,6 +69,7 @@ from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, PixelSummary,
 from pipeline.stages.ingest._header import (
     KEYWORDS,
     BlockInfo,
+    camera_format,
     parse_block_header,
     parse_section,
 )
@@ -83,6 +84,7 @@ __all__ = [
     "IngestOptions",
     "NightIndex",
     "StartRamp",
+    "camera_format",
     "check_block_data",
     "check_block_pixels",
     "check_raw_file",
@@ -505,16 +507,17 @@ def index_night(
     return NightIndex(table, problems, list(rejected))
 
 
-def _format(block: BlockInfo) -> tuple[int, str, str]:
-    """The camera format of a block: what its columns are (NAXIS1, DATASEC, BIASSEC)."""
-    return (block.n_columns, block.image_section, block.overscan_section)
+def _format(block: BlockInfo) -> tuple[int, tuple[int, int], tuple[int, int]]:
+    """The camera format of a block: what its columns are (:func:`camera_format`)."""
+    return camera_format(block.n_columns, block.image_section, block.overscan_section)
 
 
-def _describe_format(block_format: tuple[int, str, str]) -> str:
-    return "NAXIS1 {}, DATASEC {}, BIASSEC {}".format(*block_format)
+def _describe_format(block_format: tuple[int, tuple[int, int], tuple[int, int]]) -> str:
+    n_columns, (d1, d2), (b1, b2) = block_format
+    return f"NAXIS1 {n_columns}, DATASEC columns {d1}:{d2}, BIASSEC columns {b1}:{b2}"
 
 
-def _main_format(blocks: Sequence[BlockInfo]) -> tuple[int, str, str] | None:
+def _main_format(blocks: Sequence[BlockInfo]) -> tuple[int, tuple, tuple] | None:
     """The format most blocks have (the earliest of equally common ones)."""
     formats = [_format(b) for b in blocks]
     return max(formats, key=formats.count) if formats else None
@@ -868,6 +871,7 @@ STAGE = Stage(
     # GAIN, RDNOISE or SATURATE that changes mid-night is reported, and header
     # TDIROWS that differ from camera.tdi_rows
     # 7: a file cut short keeps its whole rows (the rest a gap, reported)
-    # instead of being rejected whole
+    # instead of being rejected whole; the camera format is the sections'
+    # columns (a shorter block, or spaces in DATASEC, is no new format)
     version=7,
 )

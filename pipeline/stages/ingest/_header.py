@@ -21,6 +21,7 @@ __all__ = [
     "KEYWORDS",
     "OPTIONAL",
     "BlockInfo",
+    "camera_format",
     "expected_file_size",
     "parse_block_header",
     "parse_section",
@@ -88,6 +89,37 @@ def parse_section(text: str) -> tuple[slice, slice]:
     return slice(y1 - 1, y2), slice(x1 - 1, x2)
 
 
+def camera_format(
+    n_columns: int, image_section: str, overscan_section: str
+) -> tuple[int, tuple[int, int], tuple[int, int]]:
+    """What a block's columns are: NAXIS1 and the DATASEC and BIASSEC columns.
+
+    Only the columns say what the camera read out: the sections' row ranges
+    span each block's own rows (a shorter block, such as the last of a
+    night, has a shorter range), and the text may be spaced differently.
+
+    Parameters
+    ----------
+    n_columns : int
+        NAXIS1.
+    image_section, overscan_section : str
+        DATASEC and BIASSEC, 1-based FITS sections.
+
+    Returns
+    -------
+    (int, (int, int), (int, int))
+        NAXIS1 and the 1-based inclusive column ranges of DATASEC and BIASSEC.
+
+    Examples
+    --------
+    >>> camera_format(1056, "[1:1024,1:512]", "[1025:1056, 1:512]")
+    (1056, (1, 1024), (1025, 1056))
+    """
+    data = parse_section(image_section)[1]
+    bias = parse_section(overscan_section)[1]
+    return (int(n_columns), (data.start + 1, data.stop), (bias.start + 1, bias.stop))
+
+
 @dataclass(frozen=True)
 class BlockInfo:
     """What ingest knows about one raw block, from its header.
@@ -150,9 +182,7 @@ class BlockInfo:
     def geometry(self) -> tuple[Any, ...]:
         """Everything that must stay the same within a segment of blocks."""
         return (
-            self.n_columns,
-            self.image_section,
-            self.overscan_section,
+            *camera_format(self.n_columns, self.image_section, self.overscan_section),
             self.tdi_rows,
             self.filter,
         )
