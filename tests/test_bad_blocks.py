@@ -11,6 +11,7 @@ tests: the nights are invented (:mod:`pipeline.simulate`).
 from __future__ import annotations
 
 import json
+import re
 import shutil
 from pathlib import Path
 
@@ -373,3 +374,21 @@ def test_a_format_that_cannot_be_solved_costs_only_its_stretches():
     with pytest.raises(StageError, match="has 40 image columns but the columns stage solved no"):
         _columns_table(products, 40, odd)
     assert _columns_table(products, 48, odd) is products["columns"]
+
+
+def test_a_gain_the_raw_data_contradict_is_named(clean_night, tmp_path, capsys):
+    """GAIN=1e5 e-/ADU in every header (the simulator's camera has 2.0) ran to
+    the end without a word, while the noise model it implies flagged most
+    pixels as cosmic rays; the columns stage now compares it with the gain
+    the sky's photon noise shows.  The clean night raises no such line."""
+    clean = _problems(_run(clean_night / "night.yaml", capsys, "--to", "columns")[1])
+    assert not [line for line in clean if "columns/night" in line]
+    config = _copy_night(clean_night, tmp_path)
+    for path in sorted((tmp_path / "raw").glob("block_*.fits")):
+        with fits.open(path, mode="update") as hdul:
+            hdul[0].header["GAIN"] = 1e5
+    code, out = _run(config, capsys, "--to", "columns")
+    assert code == 1
+    (line,) = [line for line in _problems(out) if "columns/night" in line]
+    said = re.search(r"GAIN=1e\+05 e-/ADU, but the sky's photon noise says (\S+)", line)
+    assert float(said.group(1).rstrip(".;")) == pytest.approx(2.0, rel=0.1), line
