@@ -270,6 +270,33 @@ def test_a_cut_file_stored_last_read_first_keeps_its_last_read_rows(tmp_path):
     assert np.isnan(rows[N_ROWS : N_ROWS + lost]).all()
 
 
+def test_an_image_extension_inherits_the_primary_keywords_when_it_says_so(tmp_path):
+    """A camera that writes its keywords once, in the primary header, and its
+    pixels in an extension with INHERIT = T (the FITS INHERIT convention)
+    was rejected for a "missing keyword DATE-OBS"."""
+    header = make_header(0)
+    data = np.random.default_rng(0).integers(1000, 1100, (N_ROWS, N_IMAGE + N_OVERSCAN))
+    primary = fits.PrimaryHDU(header=fits.Header([c for c in header.cards if c.keyword not in (
+        "SIMPLE", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2", "EXTEND")]))  # fmt: skip
+    primary.header["GAIN"] = 99.0  # the extension's own value wins
+    image = fits.ImageHDU(data.astype(np.uint16), fits.Header([("INHERIT", True), ("GAIN", 2.0)]))
+    path = tmp_path / "mef.fits"
+    fits.HDUList([primary, image]).writeto(path)
+    info = read_block_header(path)
+    assert (info.hdu, info.n_rows, info.gain, info.date_obs.isot) == (
+        1, N_ROWS, 2.0, header["DATE-OBS"]
+    )  # fmt: skip
+    assert info.block_seq == 0 and info.image_section == header["DATASEC"]
+    del image.header["INHERIT"]
+    fits.HDUList([primary, image]).writeto(path, overwrite=True)
+    with pytest.raises(
+        IngestError,
+        match=r"mef\.fits: missing keyword DATE-OBS .* \(the image is in extension 1, whose "
+        r"header is read with the primary's only when it says INHERIT = T\)",
+    ):
+        read_block_header(path)
+
+
 def test_a_truncated_compressed_block_is_named_as_such(tmp_path):
     """astropy calls a cut gzip file "Empty or corrupt"; the stream says it ends early.
 

@@ -28,6 +28,7 @@ __all__ = [
     "check_block_index",
     "complete_rows",
     "first_image_hdu",
+    "image_header",
     "list_raw_files",
     "open_raw",
     "overlapping_blocks",
@@ -61,6 +62,38 @@ def raw_files_fingerprint(raw_dir: Path, names: Sequence[str]) -> str:
     reading it; like ``make``, size and mtime stand for the content.
     """
     return hash_json([_stat_key(raw_dir, name) for name in names])
+
+
+#: Primary-header cards an extension never inherits: the structure of the file
+#: and of the primary HDU's own data.
+_NOT_INHERITED = (
+    "SIMPLE", "BITPIX", "NAXIS", "EXTEND", "BSCALE", "BZERO", "BLANK", "BUNIT",
+    "CHECKSUM", "DATASUM",
+)  # fmt: skip
+
+
+def image_header(hdul: fits.HDUList, index: int) -> fits.Header:
+    """A copy of the image HDU's header, with the primary's cards when it inherits them.
+
+    An extension with ``INHERIT = T`` takes the primary header's keywords it
+    does not set itself (the FITS INHERIT convention, a registered FITS
+    convention: from memory), as a camera that writes its observation
+    keywords once, in the primary header, means it to.  Structural cards
+    (``NAXISn``, ``BITPIX``, ``BZERO``, ...) are never inherited.
+    """
+    header = hdul[index].header.copy()
+    if index == 0 or header.get("INHERIT") is not True:
+        return header
+    for card in hdul[0].header.cards:
+        keyword = card.keyword
+        if (
+            keyword in header
+            or keyword in ("", "COMMENT", "HISTORY", "INHERIT")
+            or keyword.startswith(_NOT_INHERITED)
+        ):
+            continue
+        header.append(card)
+    return header
 
 
 def first_image_hdu(hdul: fits.HDUList) -> int | None:
@@ -228,7 +261,7 @@ def read_raw_files(raw_dir: Path, names: Sequence[str], *, pixels: bool = True) 
                 # Stored values (the header keeps BZERO/BSCALE): see summarize_pixels.
                 with open_raw(path, memmap=False, do_not_scale_image_data=True) as (hdul, stream):
                     index = first_image_hdu(hdul)
-                    header = hdul[index].header.copy() if index is not None else None
+                    header = image_header(hdul, index) if index is not None else None
                     whole = complete_rows(hdul, index, stream) if index is not None else None
                     if index is not None and isinstance(hdul[index], fits.CompImageHDU):
                         size = None

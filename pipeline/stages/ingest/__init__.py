@@ -872,6 +872,7 @@ STAGE = Stage(
     # TDIROWS that differ from camera.tdi_rows
     # 7: a file cut short keeps its whole rows (the rest a gap, reported)
     # instead of being rejected whole; the camera format is the sections'
-    # columns (a shorter block, or spaces in DATASEC, is no new format)
+    # columns (a shorter block, or spaces in DATASEC, is no new format); an
+    # image extension with INHERIT = T takes the primary header's keywords
     version=7,
 )

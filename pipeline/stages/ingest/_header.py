@@ -231,7 +231,7 @@ def _header_bytes(header, hdu: int) -> int:
     return -(-n_bytes // _BYTES_PER_RECORD) * _BYTES_PER_RECORD + _BYTES_PER_RECORD * hdu
 
 
-def _lookup(header, canonical, keywords, defaults, name):
+def _lookup(header, canonical, keywords, defaults, name, hdu=0):
     keyword = keywords.get(canonical, KEYWORDS[canonical][0])
     if keyword in header:
         return header[keyword], False
@@ -239,9 +239,15 @@ def _lookup(header, canonical, keywords, defaults, name):
         return defaults[canonical], True
     if canonical in OPTIONAL:
         return None, False
+    extension = (
+        f" (the image is in extension {hdu}, whose header is read with the primary's only "
+        "when it says INHERIT = T)"
+        if hdu
+        else ""
+    )
     raise IngestError(
-        f"{name}: missing keyword {keyword} ({KEYWORDS[canonical][2]}); add it to the file "
-        f"or give stages.ingest.defaults.{canonical} in the config."
+        f"{name}: missing keyword {keyword} ({KEYWORDS[canonical][2]}){extension}; add it to "
+        f"the file or give stages.ingest.defaults.{canonical} in the config."
     )
 
 
@@ -354,7 +360,7 @@ def parse_block_header(
             )
     values, defaulted = {}, []
     for canonical in KEYWORDS:
-        raw, was_default = _lookup(header, canonical, keywords, defaults, name)
+        raw, was_default = _lookup(header, canonical, keywords, defaults, name, hdu)
         values[canonical] = _convert(raw, canonical, keywords, name)
         if was_default:
             defaulted.append(canonical)
