@@ -185,8 +185,15 @@ def test_truncated_and_non_fits_files_are_rejected(tmp_path):
         read_block_header(short)
     text = tmp_path / "notes.fits"
     text.write_text("observing log, not an image\n")
-    with pytest.raises(IngestError, match=r"notes\.fits: not a readable FITS file"):
+    with pytest.raises(IngestError, match=r"notes\.fits: not a readable FITS file") as error:
         read_block_header(text)
+    # astropy's advice (ignore_missing_simple=True) is no use to a night's run.
+    assert "ignore_missing_simple" not in str(error.value)
+    assert "move it out of the raw folder or narrow night.pattern" in str(error.value)
+    empty = tmp_path / "empty.fits"
+    empty.write_bytes(b"")
+    with pytest.raises(IngestError, match=r"empty\.fits: empty file \(0 bytes: a copy that "):
+        read_block_header(empty)  # astropy said "Empty or corrupt FITS file"
 
 
 def _cut_night(tmp_path, suffix=""):

@@ -279,12 +279,37 @@ def read_raw_files(raw_dir: Path, names: Sequence[str], *, pixels: bool = True) 
                 header["COMMENT"] = f"astropy warned on reading: {problems}"[:2000]
             files.append(RawFile(name, index, header, size, error, summary, pixel_error, whole))
         except Exception as exc:  # any unreadable file is reported, not fatal
-            reason = f"not a readable FITS file ({type(exc).__name__}: {exc})"
-            damage = compressed_damage(path)
-            if damage is not None:
-                reason = f"{reason}: {damage}"
+            reason = unreadable_reason(path, exc)
             files.append(RawFile(name, None, None, size, reason))
     return files
+
+
+def unreadable_reason(path: Path, exc: Exception) -> str:
+    """Why astropy could not open a raw file, in words that say what to do.
+
+    An empty file (a copy that never started) and a file that is not FITS
+    (notes, a log, a checksum list that matches ``night.pattern``) are said
+    as such, without astropy's advice to read a file without its SIMPLE
+    card, which a night's reduction cannot take; a damaged compressed stream
+    adds :func:`compressed_damage`.
+    """
+    try:
+        size = path.stat().st_size
+    except OSError:
+        size = None
+    if size == 0:
+        return "empty file (0 bytes: a copy that never started?); copy it again or remove it"
+    text = str(exc).split(" If this is really a FITS file")[0].rstrip()
+    reason = f"not a readable FITS file ({type(exc).__name__}: {text})"
+    damage = compressed_damage(path)
+    if damage is not None:
+        return f"{reason}: {damage}"
+    if "SIMPLE" in text:
+        reason += (
+            "; it matches night.pattern but does not start as a FITS file does: move it out "
+            "of the raw folder or narrow night.pattern"
+        )
+    return reason
 
 
 def compressed_damage(path: Path) -> str | None:
