@@ -277,6 +277,25 @@ def test_a_cut_file_stored_last_read_first_keeps_its_last_read_rows(tmp_path):
     assert np.isnan(rows[N_ROWS : N_ROWS + lost]).all()
 
 
+def test_a_tile_compressed_file_cut_short_says_what_to_do(tmp_path):
+    """Its rejection named astropy's warning alone, not that nothing was kept."""
+    header = make_header(0)
+    data = np.random.default_rng(0).integers(1000, 1100, (N_ROWS, N_IMAGE + N_OVERSCAN))
+    path = tmp_path / "b0.fits.fz"
+    fits.HDUList([fits.PrimaryHDU(), fits.CompImageHDU(data.astype(np.uint16), header)]).writeto(
+        path
+    )
+    assert read_block_header(path).n_rows == N_ROWS
+    whole = path.read_bytes()
+    path.write_bytes(whole[: len(whole) - 2000])
+    with pytest.raises(
+        IngestError,
+        match=r"b0\.fits\.fz: truncated file \(.*\): none of its rows are used .*copy the file "
+        "again from the camera",
+    ):
+        read_block_header(path)
+
+
 def test_an_image_extension_inherits_the_primary_keywords_when_it_says_so(tmp_path):
     """A camera that writes its keywords once, in the primary header, and its
     pixels in an extension with INHERIT = T (the FITS INHERIT convention)

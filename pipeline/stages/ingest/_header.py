@@ -348,7 +348,13 @@ def parse_block_header(
             )
         lost_rows = n_rows - complete_rows
     elif "truncated" in note:
-        raise IngestError(f"{name}: truncated file ({note}).")
+        # The runner measures the whole rows of plain and gzip/bzip2 files; a
+        # tile-compressed image's rows are in tiles it does not salvage.
+        raise IngestError(
+            f"{name}: truncated file ({note}): none of its rows are used (rows are kept "
+            "from a plain or gzip/bzip2 file cut short, not from a tile-compressed image); "
+            "copy the file again from the camera."
+        )
     elif size is not None:
         if header_bytes is None:
             header_bytes = _header_bytes(header, hdu)
