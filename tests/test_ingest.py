@@ -259,6 +259,26 @@ def test_a_file_cut_short_keeps_its_whole_rows_and_names_the_lost_ones(tmp_path,
     np.testing.assert_array_equal(rows[2 * N_ROWS :], stored[2])
 
 
+def test_a_file_without_its_final_padding_holds_every_row(tmp_path):
+    """A writer that leaves out the padding after the last row (the FITS
+    standard pads the data to 2880-byte records) leaves every pixel readable;
+    astropy warns "File may have been truncated" and the block was rejected
+    as a truncated file."""
+    from pipeline.runner._rawio import read_raw_files, read_rows
+
+    path = write_block(tmp_path / "b0.fits", make_header(0))
+    with fits.open(path) as hdul:
+        stored = np.asarray(hdul[0].data, np.float32)
+    data_bytes = N_ROWS * (N_IMAGE + N_OVERSCAN) * 2
+    assert data_bytes % 2880  # there is padding to leave out
+    path.write_bytes(path.read_bytes()[: 2880 + data_bytes])
+    info = read_block_header(path)
+    assert (info.n_rows, info.lost_rows) == (N_ROWS, 0)
+    night = ingest_files(read_raw_files(tmp_path, ["b0.fits"]), IngestOptions())
+    assert night.ok, (night.rejected, night.problems)
+    np.testing.assert_array_equal(read_rows(tmp_path, night.table, 0, N_ROWS), stored)
+
+
 def test_a_cut_file_stored_last_read_first_keeps_its_last_read_rows(tmp_path):
     """With camera.flip_rows the rows stored first are the last read: those are
     kept, and the block starts lost_rows line times after its DATE-OBS."""

@@ -30,6 +30,7 @@ __all__ = [
     "first_image_hdu",
     "image_header",
     "list_raw_files",
+    "measurable",
     "open_raw",
     "overlapping_blocks",
     "raw_files_fingerprint",
@@ -149,6 +150,15 @@ def summarize_pixels(
     return PixelSummary(summary.n_rows, summary.n_finite, low, high)
 
 
+def measurable(hdul: fits.HDUList, index: int, size: int | None) -> bool:
+    """True when :func:`complete_rows` can tell which rows of HDU ``index`` the file holds.
+
+    That is, the bytes of the FITS stream are known (a plain file, or a cut
+    compressed stream read from memory) and the image is not tile-compressed.
+    """
+    return size is not None and not isinstance(hdul[index], fits.CompImageHDU)
+
+
 def complete_rows(hdul: fits.HDUList, index: int, size: int | None) -> int | None:
     """Rows of image HDU ``index`` wholly in a file cut short, or None if it holds them all.
 
@@ -174,10 +184,9 @@ def complete_rows(hdul: fits.HDUList, index: int, size: int | None) -> int | Non
         The number of whole rows (0 if the cut comes before the first row
         ends), or None when the file holds every row of NAXIS2.
     """
-    hdu = hdul[index]
-    if size is None or isinstance(hdu, fits.CompImageHDU):
+    if not measurable(hdul, index, size):
         return None
-    header = hdu.header
+    header = hdul[index].header
     n_rows = int(header["NAXIS2"])
     row_bytes = int(header["NAXIS1"]) * abs(int(header["BITPIX"])) // 8
     start = int(hdul.fileinfo(index)["datLoc"])
@@ -271,8 +280,10 @@ def read_raw_files(raw_dir: Path, names: Sequence[str], *, pixels: bool = True) 
                             summary = summarize_pixels(hdul[index], whole)
                         except Exception as exc:  # truncated data, bad compression, ...
                             pixel_error = f"{type(exc).__name__}: {exc}"
-            # A cut file's truncation warning is what complete_rows measured.
-            caught = [w for w in caught if whole is None or "truncated" not in str(w.message)]
+            # Where complete_rows measured the rows, astropy's truncation warning
+            # says no more (a file without its final padding holds every row).
+            if index is not None and measurable(hdul, index, stream):
+                caught = [w for w in caught if "truncated" not in str(w.message)]
             problems = "; ".join(str(w.message) for w in caught)
             error = None if index is not None else "no 2-D image HDU in the file"
             if problems and error is None:
@@ -409,11 +420,8 @@ def _read_block_rows(
     try:
         with warnings.catch_warnings(record=True) as caught:  # astropy only warns when a
             warnings.simplefilter("always")  # file is truncated
-            with open_raw(path) as (hdul, _):
+            with open_raw(path) as (hdul, size):
                 hdu = hdul[hdu_index]
-                # A block the index holds fewer rows of than NAXIS2 is a file cut
-                # short whose whole rows ingest kept; reading past them raises.
-                cut = int(hdu.header["NAXIS2"]) > n_rows
                 if int(hdu.header["NAXIS2"]) < r1 - start:
                     raise ValueError(
                         f"Raw file {name!r} has {hdu.header['NAXIS2']} rows but the block "
@@ -425,8 +433,15 @@ def _read_block_rows(
                 else:
                     section = hdu.section[k0:k1, :]
                 rows = np.asarray(section, dtype=np.float32)
+                # A file cut short (or without its final padding) whose rows read
+                # are wholly in it: astropy's truncation warning is about others.
+                stored_stop = n_rows - k0 if flip_rows else k1
+                whole = complete_rows(hdul, hdu_index, size)
+                present = measurable(hdul, hdu_index, size) and (
+                    whole is None or stored_stop <= whole
+                )
         truncated = [w for w in caught if "truncated" in str(w.message)]
-        if not truncated or cut:
+        if not truncated or present:
             return rows
         error = OSError(str(truncated[0].message))
     except ValueError as exc:
