@@ -279,6 +279,28 @@ def test_a_file_without_its_final_padding_holds_every_row(tmp_path):
     np.testing.assert_array_equal(read_rows(tmp_path, night.table, 0, N_ROWS), stored)
 
 
+def test_blank_pixels_of_unsigned_data_are_no_data(tmp_path):
+    """A camera's 16-bit unsigned data (BZERO = 32768) with BLANK pixels: the
+    pixel summary counted them as no data, but the rows read gave them a
+    value, 0 ADU (astropy keeps unsigned data as integers; FITS 4.0, section
+    4.4.2.5: BLANK marks undefined integer pixels, from memory)."""
+    from pipeline.runner._rawio import read_raw_files, read_rows
+
+    data = np.random.default_rng(0).integers(1000, 1100, (N_ROWS, N_IMAGE + N_OVERSCAN))
+    data = data.astype(np.uint16)
+    data[5, 7] = 0  # stored as -32768, the BLANK value
+    header = make_header(0)
+    hdu = fits.PrimaryHDU(data, header=header)
+    hdu.header["BLANK"] = -32768
+    hdu.writeto(tmp_path / "b0.fits")
+    (raw,) = read_raw_files(tmp_path, ["b0.fits"])
+    assert raw.pixels.n_finite[7] == N_ROWS - 1
+    night = ingest_files([raw], IngestOptions())
+    rows = read_rows(tmp_path, night.table, 0, N_ROWS)
+    assert np.isnan(rows[5, 7]) and np.count_nonzero(np.isnan(rows)) == 1
+    np.testing.assert_array_equal(rows[6], data[6])
+
+
 def test_a_cut_file_stored_last_read_first_keeps_its_last_read_rows(tmp_path):
     """With camera.flip_rows the rows stored first are the last read: those are
     kept, and the block starts lost_rows line times after its DATE-OBS."""

@@ -23,6 +23,7 @@ from pipeline.runner._store import hash_json
 from pipeline.stages.base import BLOCK_INDEX, BLOCK_INDEX_COLUMNS, PixelSummary, RawFile
 
 __all__ = [
+    "blank_to_nan",
     "block_index_rows",
     "blocks_fingerprint",
     "check_block_index",
@@ -411,6 +412,23 @@ def blocks_fingerprint(
     return hash_json(key)
 
 
+def blank_to_nan(rows: np.ndarray, header: fits.Header) -> np.ndarray:
+    """Set the pixels an integer image marks undefined (BLANK) to NaN, in place.
+
+    astropy turns BLANK into NaN when it scales an image to floats, but an
+    unsigned one (BZERO = 2^(BITPIX-1), as cameras write 16-bit data) it
+    returns as integers with the BLANK pixels at ``BLANK + BZERO``, which
+    then passed as a value of 0 ADU.  ``rows`` holds physical values
+    (BSCALE and BZERO applied).
+    """
+    blank = header.get("BLANK")
+    if blank is None or int(header["BITPIX"]) < 0:
+        return rows
+    physical = float(blank) * float(header.get("BSCALE", 1.0)) + float(header.get("BZERO", 0.0))
+    rows[rows == np.float32(physical)] = np.nan
+    return rows
+
+
 def _read_block_rows(
     path: Path, hdu_index: int, start: int, n_rows: int, r0: int, r1: int, flip_rows: bool
 ) -> np.ndarray:
@@ -432,7 +450,7 @@ def _read_block_rows(
                     section = hdu.section[n_rows - k1 : n_rows - k0, :][::-1]
                 else:
                     section = hdu.section[k0:k1, :]
-                rows = np.asarray(section, dtype=np.float32)
+                rows = blank_to_nan(np.asarray(section, dtype=np.float32), hdu.header)
                 # A file cut short (or without its final padding) whose rows read
                 # are wholly in it: astropy's truncation warning is about others.
                 stored_stop = n_rows - k0 if flip_rows else k1

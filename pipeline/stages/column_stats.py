@@ -99,6 +99,7 @@ STAGE = Stage(
     # 2: bias window by cross-validation; 3: faster passes (rounding); 4: units;
     # 5: block rows chosen by the night's length unless configured; 6: readout
     # dropout rows (one raw value in every pixel) left out; 7: the gain and read
-    # noise the raw rows show, in the table's meta ('noise')
+    # noise the raw rows show, in the table's meta ('noise'); BLANK pixels of
+    # unsigned raw data are NaN (they read as 0 ADU)
     version=7,
 )

@@ -904,6 +904,7 @@ STAGE = Stage(
     # 2: bias window by cross-validation; 3: faster passes (rounding); 4: one
     # multi-extension image product with units and observation metadata; 5: readout
     # dropout rows (one raw value in every pixel) flagged GAP; 6: rows.ecsv says
-    # which rows hold data (column 'data'), for the report's hours of data
+    # which rows hold data (column 'data'), for the report's hours of data, and
+    # BLANK pixels of unsigned raw data are NaN (they read as 0 ADU)
     version=6,
 )
