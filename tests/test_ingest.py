@@ -108,6 +108,19 @@ def test_header_values_and_keyword_map():
     assert info.date_obs.scale == "utc"
 
 
+def test_an_out_of_range_value_names_its_keyword_alone():
+    """The message said "RDNOISE=-5.0 or SITELAT=31.5 out of range" for a bad
+    RDNOISE: it named a good keyword beside the bad one."""
+    with pytest.raises(
+        IngestError, match=r"^b0.fits: RDNOISE=-5.0 is out of range: it must be 0 or"
+    ):
+        parse_block_header(make_header(0, RDNOISE=-5.0), "b0.fits")
+    with pytest.raises(
+        IngestError, match=r"^b0.fits: SITELAT=95.0 is out of range: it must be -90"
+    ):
+        parse_block_header(make_header(0, SITELAT=95.0), "b0.fits")
+
+
 def test_a_date_obs_without_time_of_day_is_rejected_with_the_reason():
     """DATE-OBS='2026-03-20' (a date alone, which the FITS standard's datetime
     format allows) used to read as midnight: every block of a night then

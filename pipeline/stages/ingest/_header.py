@@ -377,10 +377,15 @@ def parse_block_header(
                 f"{values[canonical]} must be positive."
             )
     latitude = values["site_lat"]
-    if values["read_noise"] < 0 or not (latitude is None or -90 <= latitude <= 90):
-        raise IngestError(
-            f"{name}: RDNOISE={values['read_noise']} or SITELAT={values['site_lat']} out of range."
-        )
+    for canonical, bad, allowed in (
+        ("read_noise", values["read_noise"] < 0, "0 or more (e-)"),
+        ("site_lat", not (latitude is None or -90 <= latitude <= 90), "-90 to 90 (deg)"),
+    ):
+        if bad:
+            keyword = keywords.get(canonical, KEYWORDS[canonical][0])
+            raise IngestError(
+                f"{name}: {keyword}={values[canonical]} is out of range: it must be {allowed}."
+            )
     values["date_obs"] = _parse_time(values["date_obs"], header, name)
     _check_sections(values["image_section"], values["overscan_section"], n_rows, n_columns, name)
     return BlockInfo(
