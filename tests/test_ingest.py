@@ -314,6 +314,18 @@ def test_blank_pixels_of_unsigned_data_are_no_data(tmp_path):
     np.testing.assert_array_equal(rows[6], data[6])
 
 
+def test_a_gap_after_a_cut_file_is_counted_in_blocks_of_the_header_size():
+    """Two files cut after half their rows: the gap between them was said to
+    be "about 1.00 block(s)", counted in blocks of the 20 rows kept, not of
+    the 40 the header promises."""
+    infos = [
+        replace(parse_block_header(make_header(seq), f"b{seq}.fits"), n_rows=20, lost_rows=20)
+        for seq in range(2)
+    ]
+    (line,) = index_night(infos).problems
+    assert line.startswith("b1.fits: gap of 20.0 rows (1.00 s, about 0.50 block(s); ")
+
+
 def test_a_cut_file_stored_last_read_first_keeps_its_last_read_rows(tmp_path):
     """With camera.flip_rows the rows stored first are the last read: those are
     kept, and the block starts lost_rows line times after its DATE-OBS."""

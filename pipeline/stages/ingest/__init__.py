@@ -568,7 +568,7 @@ def _continuity(block, prev, offset, tolerance_rows, problems, main_format) -> b
         )
     seq_step = block.block_seq - prev.block_seq
     if offset > tolerance_rows:
-        missing = offset / block.n_rows
+        missing = offset / (block.n_rows + block.lost_rows)  # in blocks of its header's size
         problems.append(
             f"{block.name}: gap of {offset:.1f} rows ({offset * prev.line_time:.2f} s, "
             f"about {missing:.2f} block(s); BLOCKSEQ {prev.block_seq} -> {block.block_seq}) "

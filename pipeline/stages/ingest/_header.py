@@ -351,9 +351,9 @@ def parse_block_header(
         # The runner measures the whole rows of plain and gzip/bzip2 files; a
         # tile-compressed image's rows are in tiles it does not salvage.
         raise IngestError(
-            f"{name}: truncated file ({note}): none of its rows are used (rows are kept "
-            "from a plain or gzip/bzip2 file cut short, not from a tile-compressed image); "
-            "copy the file again from the camera."
+            f"{name}: truncated file ({note}): none of its rows are used (whole rows are "
+            "kept only from a plain file or a gzip/bzip2 stream cut short, not from a "
+            "tile-compressed image); copy the file again from the camera."
         )
     elif size is not None:
         if header_bytes is None:
