@@ -254,6 +254,8 @@ def test_a_file_cut_short_keeps_its_whole_rows_and_names_the_lost_ones(tmp_path,
     names = [f"b{seq}.fits{suffix}" for seq in range(3)]
     info = read_block_header(tmp_path / names[1])
     assert (info.n_rows, info.lost_rows) == (23, N_ROWS - 23)
+    image, overscan = read_block_rows(tmp_path / names[1], info)  # the Python reader too
+    np.testing.assert_array_equal(np.hstack([image, overscan]), stored[1][:23])
     night = ingest_files(read_raw_files(tmp_path, names), IngestOptions())
     assert not night.rejected
     assert list(night.table["file"]) == names

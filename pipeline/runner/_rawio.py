@@ -35,6 +35,7 @@ __all__ = [
     "open_raw",
     "overlapping_blocks",
     "raw_files_fingerprint",
+    "read_block_readout_rows",
     "read_raw_files",
     "read_rows",
     "summarize_pixels",
@@ -429,7 +430,7 @@ def blank_to_nan(rows: np.ndarray, header: fits.Header) -> np.ndarray:
     return rows
 
 
-def _read_block_rows(
+def read_block_readout_rows(
     path: Path, hdu_index: int, start: int, n_rows: int, r0: int, r1: int, flip_rows: bool
 ) -> np.ndarray:
     """Night rows ``[r0, r1)`` of the block at ``path`` that starts at night row ``start``."""
@@ -503,7 +504,7 @@ def read_rows(
     out = None
     for name, hdu_index, start, n_rows in _overlapping(index, lo, hi):
         r0, r1 = max(lo, start), min(hi, start + n_rows)
-        rows = _read_block_rows(raw_dir / name, hdu_index, start, n_rows, r0, r1, flip_rows)
+        rows = read_block_readout_rows(raw_dir / name, hdu_index, start, n_rows, r0, r1, flip_rows)
         n_columns = rows.shape[1]
         if out is None:
             out = np.full((hi - lo, n_columns), np.nan, dtype=np.float32)

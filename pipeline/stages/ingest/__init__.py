@@ -58,13 +58,12 @@ from typing import Any, Literal
 
 import astropy.units as u
 import numpy as np
-from astropy.io import fits
 from astropy.table import Table
 from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline.exceptions import IngestError
 from pipeline.geometry.instrument import Site
-from pipeline.runner._rawio import read_raw_files
+from pipeline.runner._rawio import read_block_readout_rows, read_raw_files
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, PixelSummary, RawFile, Stage
 from pipeline.stages.ingest._header import (
     KEYWORDS,
@@ -375,17 +374,10 @@ def read_block_rows(
     """
     path = Path(path)
     start, stop, _ = (rows or slice(None)).indices(info.n_rows)
-    if flip_rows:
-        start, stop = info.n_rows - stop, info.n_rows - start
-    try:
-        # memmap=False: astropy 8 refuses sections of memory-mapped scaled
-        # (BZERO) data; a section still reads only the rows asked for.
-        with fits.open(path, memmap=False) as hdul:
-            block = np.asarray(hdul[info.hdu].section[start:stop, :], dtype=np.float32)
-    except Exception as exc:  # astropy raises various errors on truncated data
+    try:  # as the runner reads them (a file cut short, BLANK pixels, flipped rows)
+        block = read_block_readout_rows(path, info.hdu, 0, info.n_rows, start, stop, flip_rows)
+    except ValueError as exc:
         raise IngestError(f"{path.name}: cannot read rows {start}:{stop} ({exc}).") from None
-    if flip_rows:
-        block = block[::-1]
     check_block_data(block, path.name)
     return split_rows(block, info.image_section, info.overscan_section, flip_columns=flip_columns)
 
