@@ -108,6 +108,17 @@ def test_header_values_and_keyword_map():
     assert info.date_obs.scale == "utc"
 
 
+@pytest.mark.parametrize("text", ["2026-03-20 02:00:00.000", "2026-03-20t02:00:00"])
+def test_a_date_obs_with_a_space_for_its_t_says_how_to_write_it(text):
+    """It was rejected as "not an ISO 8601 time", which it nearly is (ISO 8601
+    allows a space by agreement); the FITS datetime format asks for a 'T'
+    (FITS 4.0, section 9.1.1, from memory)."""
+    with pytest.raises(IngestError, match=r"write it as 'YYYY-MM-DDThh:mm:ss\[\.sss\]' \(a 'T'"):
+        parse_block_header(make_header(0, **{"DATE-OBS": text}), "b0.fits")
+    with pytest.raises(IngestError, match=r"write it as 'YYYY-MM-DDThh:mm:ss\[\.sss\]', or"):
+        parse_block_header(make_header(0, **{"DATE-OBS": "20/03/2026 02:00:00"}), "b0.fits")
+
+
 def test_an_out_of_range_value_names_its_keyword_alone():
     """The message said "RDNOISE=-5.0 or SITELAT=31.5 out of range" for a bad
     RDNOISE: it named a good keyword beside the bad one."""
@@ -151,7 +162,7 @@ BAD_HEADERS = [
     ({"LINETIME": "fast"}, "LINETIME='fast' is not a float"),
     ({"TDIROWS": 16.5}, "TDIROWS=16.5 is not a int"),
     ({"GAIN": -1.0}, "GAIN=-1.0 must be positive"),
-    ({"DATE-OBS": "yesterday"}, "not an ISO 8601 time"),
+    ({"DATE-OBS": "yesterday"}, "is not a FITS date and time: write it as"),
     # FITS datetimes carry no zone designator (FITS 4.0, section 9.1.1, from memory)
     ({"DATE-OBS": "2026-03-20T02:00:02+00:00"}, "ends with a time-zone designator ('+00:00')"),
     ({"DATASEC": "[1:24,1:30]"}, "do not cover all"),

@@ -53,6 +53,8 @@ _TIME_SCALES = {"UTC": "utc", "TAI": "tai", "TT": "tt"}
 _DATE_ONLY = re.compile(r"^\s*\d{4}-\d{2}-\d{2}\s*$")
 #: A time-zone designator at the end of an ISO 8601 time ('Z', '+00:00', '-0500').
 _ZONE = re.compile(r"(Z|[+-]\d{2}:?\d{2})$")
+#: A date and a time joined by something else than 'T' (a space, a lower-case 't').
+_SPACED = re.compile(r"^\d{4}-\d{2}-\d{2}(\s+|t)\d{2}:\d{2}")
 _BYTES_PER_RECORD = 2880
 
 
@@ -429,7 +431,13 @@ def _parse_time(text, header, name):
                 f"({zone.group(0)!r}), which a FITS date does not carry (its time scale is "
                 f"TIMESYS, here {system}): write the time without it."
             ) from None
-        raise IngestError(f"{name}: DATE-OBS={text!r} is not an ISO 8601 time.") from None
+        spaced = _SPACED.match(str(text).strip()) is not None
+        hint = " (a 'T', not a space or a 't', between date and time)" if spaced else ""
+        raise IngestError(
+            f"{name}: DATE-OBS={text!r} is not a FITS date and time: write it as "
+            f"'YYYY-MM-DDThh:mm:ss[.sss]'{hint}, or name the keyword that holds it in "
+            "stages.ingest.keywords."
+        ) from None
 
 
 def _check_sections(image_section, overscan_section, n_rows, n_columns, name):
