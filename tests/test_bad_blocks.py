@@ -11,6 +11,7 @@ tests: the nights are invented (:mod:`pipeline.simulate`).
 from __future__ import annotations
 
 import json
+import re
 import shutil
 from pathlib import Path
 
@@ -202,6 +203,24 @@ def test_readout_dropout_rows_are_flagged_gap_and_named(clean_night, tmp_path, c
     # The rows around it are data, with a bias near the simulator's 1000 ADU.
     assert not (flags[~dropout] & 64).any()
     assert np.all(np.abs(rows["bias"][~dropout] - 1000.0) < 20.0)
+    assert list(rows["data"]) == list(~dropout)
+
+
+def test_the_hours_of_data_leave_out_readout_dropout_rows(clean_night, tmp_path, capsys):
+    """The report's hours of usable data counted every row a block holds, the
+    rows of a readout dropout (no data, flagged GAP by calibrate) too."""
+    config = _copy_night(clean_night, tmp_path)
+    _rewrite(tmp_path / "raw" / BAD, _dropout(0.0))
+    assert _run(config, capsys, "--to", "rectify")[0] == 1  # the report reads rectify's too
+    assert _run(config, capsys, "--stage", "report")[0] == 0
+    index = Table.read(tmp_path / "out/n/ingest/night/block_index.ecsv")
+    line_time = float(index["line_time"][0])
+    assert np.allclose(index["line_time"], line_time)
+    seconds = (int(np.sum(index["n_rows"])) - 60) * line_time  # the 60 dropout rows out
+    summary = dict(json.loads((tmp_path / "out/n/report/night/summary.json").read_text()))
+    assert summary["hours of usable data"] == (
+        f"{seconds / 3600:.2f} h ({seconds:.0f} s; 60 rows without data left out)"
+    )
 
 
 def _narrow(data, header):
@@ -238,9 +257,9 @@ def test_a_block_of_another_format_spares_its_neighbours(
     assert code == 1 and ", 0 failed, 0 blocked" in out, out
     problems = _problems(out)
     assert problems == [
-        f"problem: ingest/night: {BAD}: format NAXIS1 48, DATASEC [1:40,1:256], BIASSEC "
-        "[41:48,1:256] differs from the night's (NAXIS1 56, DATASEC [1:48,1:256], BIASSEC "
-        "[49:56,1:256]); new segment, its 40 image columns solved on their own."
+        f"problem: ingest/night: {BAD}: format NAXIS1 48, DATASEC columns 1:40, BIASSEC "
+        "columns 41:48 differs from the night's (NAXIS1 56, DATASEC columns 1:48, BIASSEC "
+        "columns 49:56); new segment, its 40 image columns solved on their own."
     ], out
     # Night rows 0-511 (blocks 0, 1), 512-767 (block 2), 768-1023 (block 3).
     products = tmp_path / "out/n"
@@ -355,3 +374,21 @@ def test_a_format_that_cannot_be_solved_costs_only_its_stretches():
     with pytest.raises(StageError, match="has 40 image columns but the columns stage solved no"):
         _columns_table(products, 40, odd)
     assert _columns_table(products, 48, odd) is products["columns"]
+
+
+def test_a_gain_the_raw_data_contradict_is_named(clean_night, tmp_path, capsys):
+    """GAIN=1e5 e-/ADU in every header (the simulator's camera has 2.0) ran to
+    the end without a word, while the noise model it implies flagged most
+    pixels as cosmic rays; the columns stage now compares it with the gain
+    the sky's photon noise shows.  The clean night raises no such line."""
+    clean = _problems(_run(clean_night / "night.yaml", capsys, "--to", "columns")[1])
+    assert not [line for line in clean if "columns/night" in line]
+    config = _copy_night(clean_night, tmp_path)
+    for path in sorted((tmp_path / "raw").glob("block_*.fits")):
+        with fits.open(path, mode="update") as hdul:
+            hdul[0].header["GAIN"] = 1e5
+    code, out = _run(config, capsys, "--to", "columns")
+    assert code == 1
+    (line,) = [line for line in _problems(out) if "columns/night" in line]
+    said = re.search(r"GAIN=1e\+05 e-/ADU, but the sky's photon noise says (\S+)", line)
+    assert float(said.group(1).rstrip(".;")) == pytest.approx(2.0, rel=0.1), line

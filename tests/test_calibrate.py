@@ -17,6 +17,7 @@ from pipeline.stages.calibrate import (
     calibrate_stretch,
     column_statistics,
     detect_cosmic_rays,
+    empty_rows,
     solve_columns,
     subtract_bias,
     summarize_columns,
@@ -495,14 +496,17 @@ def test_empty_rows_warning_needs_every_pixel_of_a_covered_row_without_data():
     mask[3, 1:] = MaskBit.NONFINITE  # all but its first pixel
     mask[5] = MaskBit.NONFINITE  # no block covers it
     rows = SimpleNamespace(covered=np.arange(6) != 5, night_row=100 + np.arange(6))
-    result = SimpleNamespace(mask=mask)
+    empty = empty_rows(mask, rows.covered)
+    assert list(np.flatnonzero(empty)) == [1]
     message = "s0007: 1 covered rows between night rows 101 and 101"
     with pytest.warns(CalibrationWarning, match=message):
-        _warn_empty_rows(result, rows, SimpleNamespace(id="s0007"))
+        _warn_empty_rows(empty, rows, SimpleNamespace(id="s0007"))
     mask[1, 3] = 0
+    empty = empty_rows(mask, rows.covered)
+    assert not empty.any()
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        _warn_empty_rows(result, rows, SimpleNamespace(id="s0007"))
+        _warn_empty_rows(empty, rows, SimpleNamespace(id="s0007"))
 
 
 @pytest.mark.parametrize(

@@ -108,6 +108,30 @@ def test_header_values_and_keyword_map():
     assert info.date_obs.scale == "utc"
 
 
+@pytest.mark.parametrize("text", ["2026-03-20 02:00:00.000", "2026-03-20t02:00:00"])
+def test_a_date_obs_with_a_space_for_its_t_says_how_to_write_it(text):
+    """It was rejected as "not an ISO 8601 time", which it nearly is (ISO 8601
+    allows a space by agreement); the FITS datetime format asks for a 'T'
+    (FITS 4.0, section 9.1.1, from memory)."""
+    with pytest.raises(IngestError, match=r"write it as 'YYYY-MM-DDThh:mm:ss\[\.sss\]' \(a 'T'"):
+        parse_block_header(make_header(0, **{"DATE-OBS": text}), "b0.fits")
+    with pytest.raises(IngestError, match=r"write it as 'YYYY-MM-DDThh:mm:ss\[\.sss\]', or"):
+        parse_block_header(make_header(0, **{"DATE-OBS": "20/03/2026 02:00:00"}), "b0.fits")
+
+
+def test_an_out_of_range_value_names_its_keyword_alone():
+    """The message said "RDNOISE=-5.0 or SITELAT=31.5 out of range" for a bad
+    RDNOISE: it named a good keyword beside the bad one."""
+    with pytest.raises(
+        IngestError, match=r"^b0.fits: RDNOISE=-5.0 is out of range: it must be 0 or"
+    ):
+        parse_block_header(make_header(0, RDNOISE=-5.0), "b0.fits")
+    with pytest.raises(
+        IngestError, match=r"^b0.fits: SITELAT=95.0 is out of range: it must be -90"
+    ):
+        parse_block_header(make_header(0, SITELAT=95.0), "b0.fits")
+
+
 def test_a_date_obs_without_time_of_day_is_rejected_with_the_reason():
     """DATE-OBS='2026-03-20' (a date alone, which the FITS standard's datetime
     format allows) used to read as midnight: every block of a night then
@@ -138,7 +162,7 @@ BAD_HEADERS = [
     ({"LINETIME": "fast"}, "LINETIME='fast' is not a float"),
     ({"TDIROWS": 16.5}, "TDIROWS=16.5 is not a int"),
     ({"GAIN": -1.0}, "GAIN=-1.0 must be positive"),
-    ({"DATE-OBS": "yesterday"}, "not an ISO 8601 time"),
+    ({"DATE-OBS": "yesterday"}, "is not a FITS date and time: write it as"),
     # FITS datetimes carry no zone designator (FITS 4.0, section 9.1.1, from memory)
     ({"DATE-OBS": "2026-03-20T02:00:02+00:00"}, "ends with a time-zone designator ('+00:00')"),
     ({"DATASEC": "[1:24,1:30]"}, "do not cover all"),
@@ -175,29 +199,223 @@ def test_read_block_header_and_rows(tmp_path):
 
 
 def test_truncated_and_non_fits_files_are_rejected(tmp_path):
+    """A file cut before its first row is whole has nothing to salvage."""
     path = write_block(tmp_path / "b0.fits", make_header(0))
     data = path.read_bytes()
     short = tmp_path / "short.fits"
-    short.write_bytes(data[: len(data) - 1500])
-    with pytest.raises(IngestError, match=r"short\.fits: truncated file"):
+    row_bytes = (N_IMAGE + N_OVERSCAN) * 2
+    short.write_bytes(data[: 2880 + row_bytes - 1])  # one header record, then < 1 row
+    with pytest.raises(IngestError, match=r"short\.fits: truncated file: it ends before its first"):
         read_block_header(short)
     text = tmp_path / "notes.fits"
     text.write_text("observing log, not an image\n")
-    with pytest.raises(IngestError, match=r"notes\.fits: not a readable FITS file"):
+    with pytest.raises(IngestError, match=r"notes\.fits: not a readable FITS file") as error:
         read_block_header(text)
+    # astropy's advice (ignore_missing_simple=True) is no use to a night's run.
+    assert "ignore_missing_simple" not in str(error.value)
+    assert "move it out of the raw folder or narrow night.pattern" in str(error.value)
+    empty = tmp_path / "empty.fits"
+    empty.write_bytes(b"")
+    with pytest.raises(IngestError, match=r"empty\.fits: empty file \(0 bytes: a copy that "):
+        read_block_header(empty)  # astropy said "Empty or corrupt FITS file"
+
+
+def _cut_night(tmp_path, suffix=""):
+    """Three contiguous blocks; the middle one cut after 23 whole rows (and 11 bytes)."""
+    import gzip
+
+    stored = []
+    for seq in range(3):
+        path = write_block(tmp_path / f"b{seq}.fits", make_header(seq))
+        with fits.open(path) as hdul:
+            stored.append(np.asarray(hdul[0].data, np.float32))
+    cut = tmp_path / "b1.fits"
+    whole = cut.read_bytes()
+    row_bytes = (N_IMAGE + N_OVERSCAN) * 2
+    cut.write_bytes(whole[: 2880 + 23 * row_bytes + 11])
+    if suffix == ".gz":  # an interrupted copy of a gzip file: its stream ends early
+        for seq in range(3):
+            path = tmp_path / f"b{seq}.fits"
+            packed = gzip.compress(whole if seq == 1 else path.read_bytes())
+            if seq == 1:  # cut where the stream has given 23 whole rows (and not 24)
+                need = 2880 + 23 * row_bytes + 11
+                n = next(n for n in range(len(packed)) if len(zlib_partial(packed[:n])) >= need)
+                assert len(zlib_partial(packed[:n])) < 2880 + 24 * row_bytes
+                packed = packed[:n]
+            (tmp_path / f"b{seq}.fits.gz").write_bytes(packed)
+            path.unlink()
+    return stored
+
+
+def zlib_partial(packed: bytes) -> bytes:
+    """What a cut gzip stream decompresses to (RFC 1952 wrapper, Python's zlib)."""
+    import zlib
+
+    return zlib.decompressobj(16 + zlib.MAX_WBITS).decompress(packed)
+
+
+@pytest.mark.parametrize("suffix", ["", ".gz"])
+def test_a_file_cut_short_keeps_its_whole_rows_and_names_the_lost_ones(tmp_path, suffix):
+    """An interrupted copy used to reject its block whole, though the rows
+    before the cut are readable: now they are the block, the rest a gap,
+    and one line names the file and the rows lost."""
+    from pipeline.runner._rawio import read_raw_files, read_rows
+
+    stored = _cut_night(tmp_path, suffix)
+    names = [f"b{seq}.fits{suffix}" for seq in range(3)]
+    info = read_block_header(tmp_path / names[1])
+    assert (info.n_rows, info.lost_rows) == (23, N_ROWS - 23)
+    image, overscan = read_block_rows(tmp_path / names[1], info)  # the Python reader too
+    np.testing.assert_array_equal(np.hstack([image, overscan]), stored[1][:23])
+    night = ingest_files(read_raw_files(tmp_path, names), IngestOptions())
+    assert not night.rejected
+    assert list(night.table["file"]) == names
+    assert list(night.table["n_rows"]) == [N_ROWS, 23, N_ROWS]
+    assert list(night.table["row_start"]) == [0, N_ROWS, 2 * N_ROWS]
+    assert night.problems[0] == (
+        f"{names[1]}: truncated file (cut after 23 whole rows: an interrupted copy?): the first "
+        f"23 of its {N_ROWS} rows are used; rows 23-{N_ROWS - 1} (night rows {N_ROWS + 23}-"
+        f"{2 * N_ROWS - 1}, {(N_ROWS - 23) * LINE_TIME:.2f} s) are lost and left out as a gap; "
+        "copy the file again if the camera's copy is whole."
+    )
+    assert night.problems[1].startswith(f"{names[2]}: gap of {N_ROWS - 23}.0 rows")
+    rows = read_rows(tmp_path, night.table, 0, 3 * N_ROWS)
+    np.testing.assert_array_equal(rows[N_ROWS : N_ROWS + 23], stored[1][:23])
+    assert np.isnan(rows[N_ROWS + 23 : 2 * N_ROWS]).all()
+    np.testing.assert_array_equal(rows[2 * N_ROWS :], stored[2])
+
+
+def test_a_file_without_its_final_padding_holds_every_row(tmp_path):
+    """A writer that leaves out the padding after the last row (the FITS
+    standard pads the data to 2880-byte records) leaves every pixel readable;
+    astropy warns "File may have been truncated" and the block was rejected
+    as a truncated file."""
+    from pipeline.runner._rawio import read_raw_files, read_rows
+
+    path = write_block(tmp_path / "b0.fits", make_header(0))
+    with fits.open(path) as hdul:
+        stored = np.asarray(hdul[0].data, np.float32)
+    data_bytes = N_ROWS * (N_IMAGE + N_OVERSCAN) * 2
+    assert data_bytes % 2880  # there is padding to leave out
+    path.write_bytes(path.read_bytes()[: 2880 + data_bytes])
+    info = read_block_header(path)
+    assert (info.n_rows, info.lost_rows) == (N_ROWS, 0)
+    night = ingest_files(read_raw_files(tmp_path, ["b0.fits"]), IngestOptions())
+    assert night.ok, (night.rejected, night.problems)
+    np.testing.assert_array_equal(read_rows(tmp_path, night.table, 0, N_ROWS), stored)
+
+
+def test_blank_pixels_of_unsigned_data_are_no_data(tmp_path):
+    """A camera's 16-bit unsigned data (BZERO = 32768) with BLANK pixels: the
+    pixel summary counted them as no data, but the rows read gave them a
+    value, 0 ADU (astropy keeps unsigned data as integers; FITS 4.0, section
+    4.4.2.5: BLANK marks undefined integer pixels, from memory)."""
+    from pipeline.runner._rawio import read_raw_files, read_rows
+
+    data = np.random.default_rng(0).integers(1000, 1100, (N_ROWS, N_IMAGE + N_OVERSCAN))
+    data = data.astype(np.uint16)
+    data[5, 7] = 0  # stored as -32768, the BLANK value
+    header = make_header(0)
+    hdu = fits.PrimaryHDU(data, header=header)
+    hdu.header["BLANK"] = -32768
+    hdu.writeto(tmp_path / "b0.fits")
+    (raw,) = read_raw_files(tmp_path, ["b0.fits"])
+    assert raw.pixels.n_finite[7] == N_ROWS - 1
+    night = ingest_files([raw], IngestOptions())
+    rows = read_rows(tmp_path, night.table, 0, N_ROWS)
+    assert np.isnan(rows[5, 7]) and np.count_nonzero(np.isnan(rows)) == 1
+    np.testing.assert_array_equal(rows[6], data[6])
+
+
+def test_a_gap_after_a_cut_file_is_counted_in_blocks_of_the_header_size():
+    """Two files cut after half their rows: the gap between them was said to
+    be "about 1.00 block(s)", counted in blocks of the 20 rows kept, not of
+    the 40 the header promises."""
+    infos = [
+        replace(parse_block_header(make_header(seq), f"b{seq}.fits"), n_rows=20, lost_rows=20)
+        for seq in range(2)
+    ]
+    (line,) = index_night(infos).problems
+    assert line.startswith("b1.fits: gap of 20.0 rows (1.00 s, about 0.50 block(s); ")
+
+
+def test_a_cut_file_stored_last_read_first_keeps_its_last_read_rows(tmp_path):
+    """With camera.flip_rows the rows stored first are the last read: those are
+    kept, and the block starts lost_rows line times after its DATE-OBS."""
+    from pipeline.runner._rawio import read_raw_files, read_rows
+
+    stored = _cut_night(tmp_path)
+    names = [f"b{seq}.fits" for seq in range(3)]
+    night = ingest_files(read_raw_files(tmp_path, names), IngestOptions(), flip_rows=True)
+    lost = N_ROWS - 23
+    assert list(night.table["row_start"]) == [0, N_ROWS + lost, 2 * N_ROWS]
+    assert night.table["t_start"][1] == pytest.approx((N_ROWS + lost) * LINE_TIME, abs=1e-6)
+    assert f"(night rows {N_ROWS}-{N_ROWS + lost - 1}," in night.problems[0]
+    rows = read_rows(tmp_path, night.table, 0, 3 * N_ROWS, flip_rows=True)
+    # Readout row k of a flipped block is stored at N_ROWS - 1 - k.
+    np.testing.assert_array_equal(rows[N_ROWS + lost : 2 * N_ROWS], stored[1][:23][::-1])
+    assert np.isnan(rows[N_ROWS : N_ROWS + lost]).all()
+
+
+def test_a_tile_compressed_file_cut_short_says_what_to_do(tmp_path):
+    """Its rejection named astropy's warning alone, not that nothing was kept."""
+    header = make_header(0)
+    data = np.random.default_rng(0).integers(1000, 1100, (N_ROWS, N_IMAGE + N_OVERSCAN))
+    path = tmp_path / "b0.fits.fz"
+    fits.HDUList([fits.PrimaryHDU(), fits.CompImageHDU(data.astype(np.uint16), header)]).writeto(
+        path
+    )
+    assert read_block_header(path).n_rows == N_ROWS
+    whole = path.read_bytes()
+    path.write_bytes(whole[: len(whole) - 2000])
+    with pytest.raises(
+        IngestError,
+        match=r"b0\.fits\.fz: truncated file \(.*\): none of its rows are used .*copy the file "
+        "again from the camera",
+    ):
+        read_block_header(path)
+
+
+def test_an_image_extension_inherits_the_primary_keywords_when_it_says_so(tmp_path):
+    """A camera that writes its keywords once, in the primary header, and its
+    pixels in an extension with INHERIT = T (the FITS INHERIT convention)
+    was rejected for a "missing keyword DATE-OBS"."""
+    header = make_header(0)
+    data = np.random.default_rng(0).integers(1000, 1100, (N_ROWS, N_IMAGE + N_OVERSCAN))
+    primary = fits.PrimaryHDU(header=fits.Header([c for c in header.cards if c.keyword not in (
+        "SIMPLE", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2", "EXTEND")]))  # fmt: skip
+    primary.header["GAIN"] = 99.0  # the extension's own value wins
+    image = fits.ImageHDU(data.astype(np.uint16), fits.Header([("INHERIT", True), ("GAIN", 2.0)]))
+    path = tmp_path / "mef.fits"
+    fits.HDUList([primary, image]).writeto(path)
+    info = read_block_header(path)
+    assert (info.hdu, info.n_rows, info.gain, info.date_obs.isot) == (
+        1, N_ROWS, 2.0, header["DATE-OBS"]
+    )  # fmt: skip
+    assert info.block_seq == 0 and info.image_section == header["DATASEC"]
+    del image.header["INHERIT"]
+    fits.HDUList([primary, image]).writeto(path, overwrite=True)
+    with pytest.raises(
+        IngestError,
+        match=r"mef\.fits: missing keyword DATE-OBS .* \(the image is in extension 1, whose "
+        r"header is read with the primary's only when it says INHERIT = T\)",
+    ):
+        read_block_header(path)
 
 
 def test_a_truncated_compressed_block_is_named_as_such(tmp_path):
     """astropy calls a cut gzip file "Empty or corrupt"; the stream says it ends early.
 
     (gzip: RFC 1952, a member ends with its CRC-32 and size; Python's gzip
-    module raises EOFError for a stream cut before them.)"""
+    module raises EOFError for a stream cut before them.)  Here the cut comes
+    within the header, so no row can be salvaged."""
     import gzip
 
     path = write_block(tmp_path / "b0.fits", make_header(0))
     packed = gzip.compress(path.read_bytes())
     cut = tmp_path / "cut.fits.gz"
-    cut.write_bytes(packed[: len(packed) // 2])
+    cut.write_bytes(packed[:30])
+    assert len(zlib_partial(packed[:30])) < 2880
     with pytest.raises(
         IngestError, match=r"cut\.fits\.gz: .*its gz stream is damaged or ends early"
     ):
@@ -428,6 +646,45 @@ def test_contiguous_night_is_one_segment():
     assert rows["covered"].all()
 
 
+def test_a_shorter_block_or_spaced_sections_keep_the_camera_format():
+    """A shorter last block (DATASEC rows 1:20 of its 20 rows) and a DATASEC
+    written with spaces used to count as a change of camera format: a new
+    segment, a problem line, and calibrate refused a stretch across them
+    ("2 different DATASEC/BIASSEC").  Only the sections' columns say what
+    the camera read."""
+    from pipeline.stages.calibrate._rows import stretch_rows
+
+    short = N_ROWS // 2
+    headers = [
+        make_header(0),
+        make_header(1, DATASEC=f"[1:{N_IMAGE}, 1:{N_ROWS}] "),
+        make_header(
+            2,
+            NAXIS2=short,
+            DATASEC=f"[1:{N_IMAGE},1:{short}]",
+            BIASSEC=f"[{N_IMAGE + 1}:{N_IMAGE + N_OVERSCAN},1:{short}]",
+        ),
+    ]
+    infos = [parse_block_header(h, f"b{seq}.fits") for seq, h in enumerate(headers)]
+    night = index_night(infos)
+    assert night.ok and night.n_segments == 1, night.problems
+    assert list(night.table["n_rows"]) == [N_ROWS, N_ROWS, short]
+    raw = np.arange((N_ROWS + short) * (N_IMAGE + N_OVERSCAN), dtype=np.float32)
+    raw = raw.reshape(N_ROWS + short, N_IMAGE + N_OVERSCAN)
+    rows = stretch_rows(raw, night.table, N_ROWS, 2 * N_ROWS + short)
+    np.testing.assert_array_equal(rows.image, raw[:, :N_IMAGE])
+    np.testing.assert_array_equal(rows.overscan, raw[:, N_IMAGE:])
+    # A window of other columns is still a new format, named by its columns.
+    after_short = START - (N_ROWS - short) * LINE_TIME * u.s  # b3 follows b2 without a gap
+    narrow = make_header(3, after_short, DATASEC=f"[1:20,1:{N_ROWS}]")
+    night = index_night([*infos, parse_block_header(narrow, "b3.fits")])
+    assert night.problems == [
+        "b3.fits: format NAXIS1 30, DATASEC columns 1:20, BIASSEC columns 25:30 differs from "
+        "the night's (NAXIS1 30, DATASEC columns 1:24, BIASSEC columns 25:30); new segment, "
+        "its 20 image columns solved on their own."
+    ]
+
+
 def test_a_gain_that_changes_mid_night_is_reported_and_the_rows_stay_one_segment():
     """A block whose header says GAIN=1.0 among blocks of 2.0 e-/ADU halves its
     fluxes in e-; it used to pass without a word, and the astrometry of a
@@ -498,8 +755,9 @@ def test_broken_night_through_the_command_line(tmp_path, capsys):
 
     Good blocks are indexed and calibrated; each broken file and each gap is
     reported in one line, in the ingest report and in the run summary; the
-    rows of rejected and missing blocks are GAP; the exit status is 1 (a
-    partial failure), also on a rerun that finds everything up to date.
+    rows of rejected and missing blocks, and those a cut file lost, are in no
+    stretch; the exit status is 1 (a partial failure), also on a rerun that
+    finds everything up to date.
     """
     from pipeline.cli import main
     from pipeline.geometry.instrument import Camera, Site
@@ -547,7 +805,7 @@ stages:
     assert len(problems) == 6 == len(summary) - 1
     bad = [line.split(": ")[2] for line in problems]
     assert bad == [
-        "rejected block_0001.fits", "rejected block_0003.fits", "rejected block_notes.fits",
+        "rejected block_0003.fits", "rejected block_notes.fits", "block_0001.fits",
         "block_0002.fits", "block_0004.fits", "block_0006.fits",
     ]  # fmt: skip
     # A rerun has nothing to do but still reports the problems and fails.
@@ -559,23 +817,31 @@ stages:
     assert sum(" problem: night: " in line for line in capsys.readouterr().out.splitlines()) == 6
     products = tmp_path / "out" / "broken"
     ingest = json.loads((products / "ingest" / "night" / "ingest_report.json").read_text())
-    assert not ingest["ok"] and ingest["n_blocks"] == 5  # blocks 0, 2, 4, 6, 7
+    assert not ingest["ok"] and ingest["n_blocks"] == 6  # blocks 0, 1 (cut), 2, 4, 6, 7
     rejected = sorted(ingest["rejected"])
-    assert len(rejected) == 3
-    assert rejected[0].startswith("block_0001.fits: truncated file")
-    assert rejected[1].startswith("block_0003.fits: missing keyword GAIN")
-    assert rejected[2].startswith("block_notes.fits: ")
+    assert len(rejected) == 2
+    assert rejected[0].startswith("block_0003.fits: missing keyword GAIN")
+    assert rejected[1].startswith("block_notes.fits: ")
     assert all("\n" not in line for line in rejected)
-    # Blocks 1, 3 (rejected) and 5 (missing) leave gaps; each is reported.
+    # The cut block 1 keeps its whole rows; its lost rows, block 3 (rejected)
+    # and block 5 (missing) leave gaps; each is reported.
     assert [p.split(":")[0] for p in ingest["problems"]] == [
-        "block_0002.fits", "block_0004.fits", "block_0006.fits"
+        "block_0001.fits", "block_0002.fits", "block_0004.fits", "block_0006.fits"
     ]  # fmt: skip
     index = Table.read(products / "ingest" / "night" / "block_index.ecsv")
-    assert list(index["row_start"]) == [0, 1024, 2048, 3072, 3584]
-    # Night rows 512-1023 of the rejected (truncated) block 1 are in no
-    # stretch: stretches stop at the end of a segment, margins included.
+    assert list(index["row_start"]) == [0, 512, 1024, 2048, 3072, 3584]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # astropy: "File may have been truncated"
+        with fits.open(blocks[1]) as hdul:
+            data_start = hdul.fileinfo(0)["datLoc"]
+    whole = int(index["n_rows"][1])  # the rows wholly before the cut (56 columns of 2 bytes)
+    assert whole == (blocks[1].stat().st_size - data_start) // (56 * 2) < 512
+    assert f"rows {whole}-511 (night rows {512 + whole}-1023, " in ingest["problems"][0]
+    # Night rows 512 + whole to 1023, lost with the cut, and those of the
+    # rejected block 3 are in no stretch: stretches stop at the end of a
+    # segment, margins included.
     from pipeline.config import load_config
     from pipeline.runner._night import NightStore
 
     plan = [(s.lo, s.hi) for s in NightStore(load_config(night)).stretches]
-    assert plan == [(0, 512), (1024, 1536), (2048, 2560), (3072, 4096)]
+    assert plan == [(0, 512 + whole), (1024, 1536), (2048, 2560), (3072, 4096)]

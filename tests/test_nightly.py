@@ -63,9 +63,13 @@ def _nights(tmp_path: Path, site: dict, simulate: dict) -> tuple[Path, Path, lis
 
 
 def _break(folder: Path) -> None:
-    """Make every raw block of a night unreadable (a copy cut off after its header)."""
+    """Make every raw block of a night unusable: a copy cut off before its first row.
+
+    (A copy cut later keeps its whole rows: a gzip stream cut after 2880 bytes
+    holds the header and a few rows.)
+    """
     for path in folder.glob("*.fits*"):
-        path.write_bytes(path.read_bytes()[:2880])
+        path.write_bytes(path.read_bytes()[: 200 if path.suffix == ".gz" else 2880])
 
 
 @pytest.fixture

@@ -24,7 +24,7 @@ from pipeline.report._options import ReportOptions
 from pipeline.report._sky import bin_image, measure_sky, pixel_area_arcsec2, place_pieces
 from pipeline.report._smear import measure_smear_widths
 
-__all__ = ["PRODUCT_SOURCES", "NightProducts", "collect_products"]
+__all__ = ["PRODUCT_SOURCES", "NightProducts", "collect_products", "rows_without_data"]
 
 log = logging.getLogger(__name__)
 
@@ -52,6 +52,7 @@ PRODUCT_SOURCES = {key: stage for key, (stage, _) in _NIGHT_PRODUCTS.items()} | 
     "matched_x_range": "astrometry",
     "smear_widths": "rectify",
     "strip_rows": "rectify",
+    "no_data_rows": "calibrate",
 }
 
 
@@ -69,6 +70,32 @@ class NightProducts:
     products: dict[str, Any] = field(default_factory=dict)
     status: Any = None
     header: Any = None
+
+
+def rows_without_data(calibrated: Any) -> np.ndarray:
+    """Night rows a block covers that calibrate found without data.
+
+    Parameters
+    ----------
+    calibrated : sequence of mapping
+        The calibrate stage's products per stretch; only ``rows`` is read
+        (its ``night_row``, ``time``, NaN where no block covers the row, and
+        ``data``).
+
+    Returns
+    -------
+    ndarray of int64
+        Sorted, each row once (stretches' margins overlap): readout
+        dropouts and NaN-filled rows.
+    """
+    lost = []
+    for products in calibrated:
+        rows = products["rows"]
+        if "data" not in rows.colnames:
+            continue
+        covered = np.isfinite(np.asarray(rows["time"], dtype=float))
+        lost.append(np.asarray(rows["night_row"], np.int64)[covered & ~np.asarray(rows["data"])])
+    return np.unique(np.concatenate(lost)) if lost else np.zeros(0, np.int64)
 
 
 def collect_products(
@@ -110,6 +137,9 @@ def collect_products(
         if x.size:
             night.products["matched_x_range"] = (float(x.min()), float(x.max()))
     index = night.products.get("block_index")
+    calibrated = inputs.get("calibrate")
+    if index is not None and calibrated:
+        night.products["no_data_rows"] = rows_without_data(calibrated)
     stretches = inputs.get("rectify")
     if index is None or not stretches:
         return night

@@ -7,7 +7,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["problem_lines", "solved_rows", "summary_rows"]
+__all__ = ["data_seconds", "problem_lines", "solved_rows", "summary_rows"]
 
 
 def _plural(n: int, word: str) -> str:
@@ -22,6 +22,37 @@ def _gaps(block_index: Any) -> int:
         (np.asarray(block_index["row_start"]) + np.asarray(block_index["n_rows"]))[order]
     )
     return int(np.sum(starts[1:] > stops[:-1]))
+
+
+def data_seconds(index: Any, no_data_rows: np.ndarray | None) -> tuple[float, int]:
+    """Seconds of rows with data: the blocks' rows less those without data.
+
+    Parameters
+    ----------
+    index : astropy.table.Table
+        The block index (``row_start``, ``n_rows``, ``line_time``).
+    no_data_rows : ndarray of int or None
+        Night rows the blocks cover that hold no data (readout dropouts,
+        NaN-filled rows: :func:`pipeline.report._collect.rows_without_data`);
+        None when calibrate's products are not there.
+
+    Returns
+    -------
+    seconds : float
+        One line time for every row a block holds, less those without data.
+    n_without : int
+        Rows left out.
+    """
+    order = np.argsort(np.asarray(index["row_start"]), kind="stable")
+    start = np.asarray(index["row_start"], dtype=np.int64)[order]
+    n_rows = np.asarray(index["n_rows"], dtype=np.int64)[order]
+    line_time = np.asarray(index["line_time"], dtype=float)[order]
+    seconds = float(np.sum(n_rows * line_time))
+    rows = np.asarray([] if no_data_rows is None else no_data_rows, dtype=np.int64)
+    # The block holding each row (where blocks overlap, the later one, as read).
+    block = np.searchsorted(start, rows, side="right") - 1
+    inside = (block >= 0) & (rows < start[np.maximum(block, 0)] + n_rows[np.maximum(block, 0)])
+    return seconds - float(np.sum(line_time[block[inside]])), int(np.count_nonzero(inside))
 
 
 def problem_lines(status: Any) -> list[str]:
@@ -139,10 +170,11 @@ def summary_rows(products: Mapping[str, Any], status: Any | None = None) -> list
     rows: list[tuple[str, str]] = []
     index = products.get("block_index")
     if index is not None:
-        seconds = float(np.sum(np.asarray(index["n_rows"]) * np.asarray(index["line_time"])))
+        seconds, without = data_seconds(index, products.get("no_data_rows"))
         rows.append(("blocks", str(len(index))))
         rows.append(("gaps", str(_gaps(index))))
-        rows.append(("hours of usable data", f"{seconds / 3600:.2f} h ({seconds:.0f} s)"))
+        left_out = f"; {_plural(without, 'row')} without data left out" if without else ""
+        rows.append(("hours of usable data", f"{seconds / 3600:.2f} h ({seconds:.0f} s{left_out})"))
     else:
         rows.append(("blocks", "not available (no block index: ingest has not run)"))
     ingest = products.get("ingest_report")

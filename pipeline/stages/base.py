@@ -461,6 +461,10 @@ class RawFile:
         (``pixel_error`` says why) or were not read.
     pixel_error : str or None
         Why the pixels could not be read (e.g. a truncated compressed file).
+    complete_rows : int or None
+        For a file cut short part-way through its image (an interrupted
+        copy): the rows stored whole before the cut (``pixels`` summarises
+        those only).  None when the file holds every row.
     """
 
     name: str
@@ -470,6 +474,7 @@ class RawFile:
     error: str | None = None
     pixels: PixelSummary | None = None
     pixel_error: str | None = None
+    complete_rows: int | None = None
 
 
 @dataclass(frozen=True)

@@ -7,11 +7,13 @@ See :mod:`pipeline.stages.calibrate` for the three-stage split
 from __future__ import annotations
 
 import warnings
+from dataclasses import asdict
 from typing import Any
 
 from pipeline.exceptions import CalibrationWarning
 from pipeline.stages.base import RAW_ROWS, Stage
 from pipeline.stages.calibrate import WARM, ColumnStatsOptions, column_statistics, options_kwargs
+from pipeline.stages.calibrate._noise import measure_gain
 from pipeline.stages.calibrate._rows import stretch_rows_for_stage
 
 __all__ = ["STAGE", "auto_block_rows"]
@@ -70,6 +72,17 @@ def _run(*, inputs, options: ColumnStatsOptions, context) -> dict[str, Any]:
         block_rows=block_rows,
         **options_kwargs(options, exclude=("solve_rows", "block_rows")),
     )
+    noise = measure_gain(
+        rows.image,
+        rows.overscan,
+        use_rows & rows.covered,
+        rows.segment,
+        rows.gain,
+        rows.read_noise,
+        rows.saturation,
+    )
+    if noise is not None:  # for the columns stage's check of GAIN and RDNOISE
+        table.meta["noise"] = asdict(noise)
     return {"column_stats": table}
 
 
@@ -85,6 +98,8 @@ STAGE = Stage(
     warm=WARM,
     # 2: bias window by cross-validation; 3: faster passes (rounding); 4: units;
     # 5: block rows chosen by the night's length unless configured; 6: readout
-    # dropout rows (one raw value in every pixel) left out
-    version=6,
+    # dropout rows (one raw value in every pixel) left out; 7: the gain and read
+    # noise the raw rows show, in the table's meta ('noise'); BLANK pixels of
+    # unsigned raw data are NaN (they read as 0 ADU)
+    version=7,
 )

@@ -7,6 +7,10 @@ with the option ``flat_file`` naming such a table (another night's, or a
 twilight or dome strip's), the stage adopts it instead of solving
 (:func:`pipeline.stages.calibrate.adopt_columns`).
 
+It also compares the gain and read noise the raw rows show (measured by
+``column_stats``, :mod:`pipeline.stages.calibrate._noise`) with the header's
+GAIN and RDNOISE, and reports a contradiction as a problem.
+
 Camera formats
 --------------
 A night may hold blocks of another format (a windowed readout with another
@@ -34,6 +38,7 @@ from pipeline.stages.calibrate import (
     options_kwargs,
     solve_columns,
 )
+from pipeline.stages.calibrate._noise import NoiseMeasurement, gain_problems
 
 __all__ = ["STAGE"]
 
@@ -59,7 +64,15 @@ def _run(*, inputs, options: ColumnSolveOptions, context) -> dict[str, Any]:
         )
     else:
         products["columns"] = solve_columns([t for _, t in by_width[camera_columns]], **solve)
-    problems = []
+    problems = gain_problems(
+        [
+            (stretch.id, NoiseMeasurement(**products["column_stats"].meta["noise"]))
+            for stretch, products in zip(
+                context.input_stretches, inputs["column_stats"], strict=True
+            )
+            if "noise" in products["column_stats"].meta
+        ]
+    )
     for width, stretches in sorted(by_width.items()):
         if width == camera_columns:
             continue

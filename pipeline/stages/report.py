@@ -29,7 +29,7 @@ log = logging.getLogger(__name__)
 PAGE = "page"
 
 #: Upstream stages the page draws from, all optional.
-_UPSTREAM = ("ingest", "columns", "rectify", "catalog", "astrometry", "zeropoint")
+_UPSTREAM = ("ingest", "columns", "calibrate", "rectify", "catalog", "astrometry", "zeropoint")
 
 
 def about_rows(context: Any, header: Any) -> list[tuple[str, str]]:
@@ -77,7 +77,8 @@ STAGE = Stage(
     description="The night's HTML report page: problems, summary and figures.",
     # 2: a line-time error within 3 sigma of zero asks for no correction; a
     # configured focal length is not called the spin period's; the sources are
-    # astrometry's last measurement when it measured again
-    # 3: the fitted focal length's difference from the nominal with its error
+    # astrometry's last measurement when it measured again; 3: the hours of
+    # data leave out the rows calibrate found without data (readout dropouts);
+    # the fitted focal length's difference from the nominal with its error
     version=3,
 )

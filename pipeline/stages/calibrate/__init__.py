@@ -70,6 +70,7 @@ __all__ = [
     "column_statistics",
     "columns_product_name",
     "detect_cosmic_rays",
+    "empty_rows",
     "options_kwargs",
     "solve_columns",
     "strip_wcs_header",
@@ -671,17 +672,28 @@ def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
         tdi_rows=rows.tdi_rows,
         **options_kwargs(options, exclude=("flat_field",)),
     )
-    _warn_empty_rows(result, rows, context.stretch)
+    empty = empty_rows(result.mask, rows.covered)
+    _warn_empty_rows(empty, rows, context.stretch)
     stretch = context.stretch
     times = row_times(inputs["ingest"][BLOCK_INDEX], stretch.lo, stretch.hi)
     row_table = Table(
-        {"night_row": rows.night_row, "time": rows.time, "bias": result.bias},
+        {
+            "night_row": rows.night_row,
+            "time": rows.time,
+            "bias": result.bias,
+            "data": rows.covered & ~empty,
+        },
         meta={"reference_time": times.reference_time.isot},
     )
     row_table["time"].unit = "s"
     row_table["time"].description = "readout time since meta['reference_time']"
     row_table["bias"].unit = "adu"
     row_table["bias"].description = "bias subtracted from the row (smoothed overscan)"
+    row_table[
+        "data"
+    ].description = (
+        "the row holds data: a block covers it, and it is no readout dropout and not all NaN"
+    )
     out = {
         "image": image_hdulist(
             result.image,
@@ -838,13 +850,30 @@ def strip_wcs_header(times: RowTimes, row_lo: int) -> fits.Header:
     return header
 
 
-def _warn_empty_rows(result: CalibratedStretch, rows, stretch) -> None:
-    """Warn about rows that blocks cover but hold no finite pixel (NaN-filled data)."""
+def empty_rows(mask: np.ndarray, covered: np.ndarray) -> np.ndarray:
+    """Rows that blocks cover but hold no finite pixel (NaN-filled raw data).
+
+    Parameters
+    ----------
+    mask : ndarray of uint16, shape (n_rows, n_columns)
+        The calibrated mask (:class:`~pipeline.masks.MaskBit`).
+    covered : ndarray of bool, shape (n_rows,)
+        Rows some block holds.
+
+    Returns
+    -------
+    ndarray of bool, shape (n_rows,)
+    """
     nonfinite = MASK_DTYPE.type(MaskBit.NONFINITE)
     # A row is empty only if its first pixel is: only those rows are read whole.
-    empty = rows.covered & (result.mask[:, :1] & nonfinite != 0).all(axis=1)
+    empty = covered & (mask[:, :1] & nonfinite != 0).all(axis=1)
     if empty.any():
-        empty[empty] = (result.mask[empty] & nonfinite != 0).all(axis=1)
+        empty[empty] = (mask[empty] & nonfinite != 0).all(axis=1)
+    return empty
+
+
+def _warn_empty_rows(empty: np.ndarray, rows, stretch) -> None:
+    """Warn about rows that blocks cover but hold no finite pixel (:func:`empty_rows`)."""
     if empty.any():
         first, last = rows.night_row[empty][[0, -1]]
         warnings.warn(
@@ -874,6 +903,8 @@ STAGE = Stage(
     warm=CALIBRATE_WARM,
     # 2: bias window by cross-validation; 3: faster passes (rounding); 4: one
     # multi-extension image product with units and observation metadata; 5: readout
-    # dropout rows (one raw value in every pixel) flagged GAP
-    version=5,
+    # dropout rows (one raw value in every pixel) flagged GAP; 6: rows.ecsv says
+    # which rows hold data (column 'data'), for the report's hours of data, and
+    # BLANK pixels of unsigned raw data are NaN (they read as 0 ADU)
+    version=6,
 )

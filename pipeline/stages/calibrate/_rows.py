@@ -18,7 +18,7 @@ from astropy.table import Table
 
 from pipeline.exceptions import StageError
 from pipeline.stages.base import BLOCK_INDEX, RAW_ROWS
-from pipeline.stages.ingest import describe_rows, split_rows
+from pipeline.stages.ingest import camera_format, describe_rows, split_rows
 
 __all__ = ["StretchRows", "dropout_rows", "stretch_rows", "stretch_rows_for_stage"]
 
@@ -111,13 +111,21 @@ def stretch_rows(
     facts = describe_rows(index, lo, hi)
     covered = facts["covered"]
     blocks = index[(index["row_start"] < hi) & (index["row_start"] + index["n_rows"] > lo)]
-    geometries = {(str(b["image_section"]), str(b["overscan_section"])) for b in blocks}
+    # Only the sections' columns count (a shorter block has a shorter row range).
+    geometries = {
+        camera_format(0, str(b["image_section"]), str(b["overscan_section"]))[1:]: (
+            str(b["image_section"]),
+            str(b["overscan_section"]),
+        )
+        for b in blocks
+    }
     if len(geometries) != 1:
         raise StageError(
             f"Night rows [{lo}, {hi}) span blocks with {len(geometries)} different "
-            f"DATASEC/BIASSEC ({sorted(geometries)}); a stretch needs one geometry."
+            f"DATASEC/BIASSEC columns ({sorted(geometries.values())}); a stretch needs one "
+            "geometry."
         )
-    image_section, overscan_section = geometries.pop()
+    ((image_section, overscan_section),) = geometries.values()
     image, overscan = split_rows(
         raw_rows, image_section, overscan_section, flip_columns=flip_columns
     )

@@ -4,7 +4,7 @@ Raw blocks are FITS files of consecutive TDI rows (DEVELOPERS.md,
 "Raw data").
 Ingest sees each block's header and a summary of its pixels (the runner
 reads every pixel once).  It rejects broken blocks with a one-line reason
-each: unreadable or truncated files, bad headers, blocks whose image holds no
+each: unreadable files, bad headers, blocks whose image holds no
 usable pixel (all NaN, one constant value, all saturated:
 :func:`check_block_pixels`) and blocks whose DATE-OBS contradicts their
 BLOCKSEQ and collides with another block (:mod:`._order`).  It orders the
@@ -13,6 +13,10 @@ row 0 of a block was shifted out; row ``k`` follows at ``DATE-OBS + k *
 LINETIME``), checks that consecutive blocks join up, and compares header site
 keywords, where present, with the config's site (:mod:`._site`).  A rejected
 block's rows become a gap, so the night is reduced as if its file were absent.
+A file cut short part-way through its image (an interrupted copy, plain or
+gzip/bzip2) keeps the rows stored whole before the cut; the rows it lost
+become a gap like a missing block's, named in one line
+(:func:`lost_rows_problems`).
 
 Night rows
 ----------
@@ -48,22 +52,23 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Literal
 
+import astropy.units as u
 import numpy as np
-from astropy.io import fits
 from astropy.table import Table
 from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline.exceptions import IngestError
 from pipeline.geometry.instrument import Site
-from pipeline.runner._rawio import read_raw_files
+from pipeline.runner._rawio import read_block_readout_rows, read_raw_files
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, PixelSummary, RawFile, Stage
 from pipeline.stages.ingest._header import (
     KEYWORDS,
     BlockInfo,
+    camera_format,
     parse_block_header,
     parse_section,
 )
@@ -78,6 +83,7 @@ __all__ = [
     "IngestOptions",
     "NightIndex",
     "StartRamp",
+    "camera_format",
     "check_block_data",
     "check_block_pixels",
     "check_raw_file",
@@ -85,6 +91,7 @@ __all__ = [
     "describe_rows",
     "index_night",
     "ingest_files",
+    "lost_rows_problems",
     "parse_block_header",
     "parse_section",
     "read_block_header",
@@ -178,12 +185,17 @@ def check_raw_file(
     *,
     keywords: dict[str, str] | None = None,
     defaults: dict[str, Any] | None = None,
+    flip_rows: bool = False,
 ) -> BlockInfo:
     """:func:`read_block_header` for a file the runner has read (a ``RawFile``).
 
     Checks the header (:func:`parse_block_header`, with ``keywords`` and
     ``defaults``), the size and the pixels; raises :class:`IngestError`, one
-    line naming the file and why it cannot be used.
+    line naming the file and why it cannot be used.  A file cut short
+    (``raw.complete_rows``) is the block of its whole rows, the rows stored
+    first: the first read, or with ``flip_rows`` (rows stored last-read
+    first) the last read, whose DATE-OBS is then moved on to the first of
+    them (``lost_rows`` line times later).
     """
     if raw.error is not None or raw.header is None:
         raise IngestError(f"{raw.name}: {raw.error or 'no header'}.")
@@ -194,12 +206,54 @@ def check_raw_file(
         size=raw.size,
         keywords=keywords,
         defaults=defaults,
+        complete_rows=raw.complete_rows,
     )
     if raw.pixel_error is not None:
         raise IngestError(f"{raw.name}: cannot read its pixels ({raw.pixel_error}).")
     if raw.pixels is not None:
         check_block_pixels(raw.pixels, info)
+    if flip_rows and info.lost_rows:
+        info = replace(info, date_obs=info.date_obs + info.lost_rows * info.line_time * u.s)
     return info
+
+
+def lost_rows_problems(night: NightIndex, infos: Sequence[BlockInfo], flip_rows: bool) -> list[str]:
+    """One line per indexed block of a file cut short: which of its rows were lost.
+
+    Parameters
+    ----------
+    night : NightIndex
+        The index of the blocks.
+    infos : sequence of BlockInfo
+        The blocks (:func:`check_raw_file`); those with ``lost_rows`` count.
+    flip_rows : bool
+        Rows stored last-read first: the rows lost are the first read.
+
+    Returns
+    -------
+    list of str
+    """
+    lost = {info.name: info for info in infos if info.lost_rows}
+    lines = []
+    for block in night.table:
+        info = lost.get(str(block["file"]))
+        if info is None:
+            continue
+        kept, total = info.n_rows, info.n_rows + info.lost_rows
+        start = int(block["row_start"])
+        if flip_rows:  # the whole rows are the last read
+            rows, night_rows = (0, info.lost_rows - 1), (start - info.lost_rows, start - 1)
+            which = f"last {kept} of its {total} rows (stored first)"
+        else:
+            rows, night_rows = (kept, total - 1), (start + kept, start + total - 1)
+            which = f"first {kept} of its {total} rows"
+        lines.append(
+            f"{info.name}: truncated file (cut after {kept} whole rows: an interrupted copy?): "
+            f"the {which} are used; rows {rows[0]}-{rows[1]} (night rows "
+            f"{night_rows[0]}-{night_rows[1]}, {info.lost_rows * info.line_time:.2f} s) are "
+            "lost and left out as a gap; copy the file again if the camera's copy is whole."
+        )
+    return lines
 
 
 #: What :func:`check_block_pixels` adds to its reasons: what happens to the block.
@@ -320,17 +374,10 @@ def read_block_rows(
     """
     path = Path(path)
     start, stop, _ = (rows or slice(None)).indices(info.n_rows)
-    if flip_rows:
-        start, stop = info.n_rows - stop, info.n_rows - start
-    try:
-        # memmap=False: astropy 8 refuses sections of memory-mapped scaled
-        # (BZERO) data; a section still reads only the rows asked for.
-        with fits.open(path, memmap=False) as hdul:
-            block = np.asarray(hdul[info.hdu].section[start:stop, :], dtype=np.float32)
-    except Exception as exc:  # astropy raises various errors on truncated data
+    try:  # as the runner reads them (a file cut short, BLANK pixels, flipped rows)
+        block = read_block_readout_rows(path, info.hdu, 0, info.n_rows, start, stop, flip_rows)
+    except ValueError as exc:
         raise IngestError(f"{path.name}: cannot read rows {start}:{stop} ({exc}).") from None
-    if flip_rows:
-        block = block[::-1]
     check_block_data(block, path.name)
     return split_rows(block, info.image_section, info.overscan_section, flip_columns=flip_columns)
 
@@ -452,16 +499,17 @@ def index_night(
     return NightIndex(table, problems, list(rejected))
 
 
-def _format(block: BlockInfo) -> tuple[int, str, str]:
-    """The camera format of a block: what its columns are (NAXIS1, DATASEC, BIASSEC)."""
-    return (block.n_columns, block.image_section, block.overscan_section)
+def _format(block: BlockInfo) -> tuple[int, tuple[int, int], tuple[int, int]]:
+    """The camera format of a block: what its columns are (:func:`camera_format`)."""
+    return camera_format(block.n_columns, block.image_section, block.overscan_section)
 
 
-def _describe_format(block_format: tuple[int, str, str]) -> str:
-    return "NAXIS1 {}, DATASEC {}, BIASSEC {}".format(*block_format)
+def _describe_format(block_format: tuple[int, tuple[int, int], tuple[int, int]]) -> str:
+    n_columns, (d1, d2), (b1, b2) = block_format
+    return f"NAXIS1 {n_columns}, DATASEC columns {d1}:{d2}, BIASSEC columns {b1}:{b2}"
 
 
-def _main_format(blocks: Sequence[BlockInfo]) -> tuple[int, str, str] | None:
+def _main_format(blocks: Sequence[BlockInfo]) -> tuple[int, tuple, tuple] | None:
     """The format most blocks have (the earliest of equally common ones)."""
     formats = [_format(b) for b in blocks]
     return max(formats, key=formats.count) if formats else None
@@ -512,7 +560,7 @@ def _continuity(block, prev, offset, tolerance_rows, problems, main_format) -> b
         )
     seq_step = block.block_seq - prev.block_seq
     if offset > tolerance_rows:
-        missing = offset / block.n_rows
+        missing = offset / (block.n_rows + block.lost_rows)  # in blocks of its header's size
         problems.append(
             f"{block.name}: gap of {offset:.1f} rows ({offset * prev.line_time:.2f} s, "
             f"about {missing:.2f} block(s); BLOCKSEQ {prev.block_seq} -> {block.block_seq}) "
@@ -686,6 +734,8 @@ def ingest_files(
     options: IngestOptions,
     site: Site | None = None,
     tdi_rows: int | None = None,
+    *,
+    flip_rows: bool = False,
 ) -> NightIndex:
     """Check the runner's raw files and index the good ones.
 
@@ -700,20 +750,35 @@ def ingest_files(
     tdi_rows : int, optional
         The config's ``camera.tdi_rows``; header TDIROWS that differ from it
         are reported (:func:`compare_tdi_rows`).
+    flip_rows : bool
+        The config's ``camera.flip_rows`` (for the rows of a file cut short:
+        :func:`check_raw_file`).
 
     Returns
     -------
     NightIndex
+        A file cut short part-way through its image is indexed with its
+        whole rows; its lost rows are a gap, named in a problem line
+        (:func:`lost_rows_problems`).
     """
     infos, rejected = [], []
     for raw in files:
         try:
-            infos.append(check_raw_file(raw, keywords=options.keywords, defaults=options.defaults))
+            infos.append(
+                check_raw_file(
+                    raw, keywords=options.keywords, defaults=options.defaults, flip_rows=flip_rows
+                )
+            )
         except IngestError as exc:
             rejected.append(str(exc))
     night = index_night(
         infos, rejected, tolerance_rows=options.tolerance_rows, start_ramp=options.start_ramp
     )
+    # A cut file's line goes first: the gap after it, reported by the index, follows from it.
+    cut = lost_rows_problems(night, infos, flip_rows)
+    for line in cut:
+        log.warning("%s", line)
+    night.problems[:0] = cut
     lines = compare_site(infos, site) if site is not None else []
     if tdi_rows is not None:
         lines += compare_tdi_rows(infos, tdi_rows)
@@ -757,7 +822,13 @@ def compare_tdi_rows(infos: Sequence[BlockInfo], tdi_rows: int) -> list[str]:
 
 
 def _run(*, inputs, options: IngestOptions, context) -> dict[str, Any]:
-    night = ingest_files(inputs[RAW_FILES], options, context.site, context.camera.tdi_rows)
+    night = ingest_files(
+        inputs[RAW_FILES],
+        options,
+        context.site,
+        context.camera.tdi_rows,
+        flip_rows=context.camera.flip_rows,
+    )
     return {
         BLOCK_INDEX: night.table,
         "ingest_report": {
@@ -781,7 +852,7 @@ STAGE = Stage(
     requires=(RAW_FILES,),
     scope="night",
     # compared with the headers
-    uses=("site.latitude", "site.longitude", "site.height", "camera.tdi_rows"),
+    uses=("site.latitude", "site.longitude", "site.height", "camera.tdi_rows", "camera.flip_rows"),
     defines_rows=True,
     description="Check raw block headers, order blocks in time, index rows and segments.",
     # 2: clock_row column (start_ramp); 3: segment, image/overscan_section;
@@ -791,5 +862,9 @@ STAGE = Stage(
     # 6: a DATE-OBS without a time of day is rejected (it read as midnight), a
     # GAIN, RDNOISE or SATURATE that changes mid-night is reported, and header
     # TDIROWS that differ from camera.tdi_rows
-    version=6,
+    # 7: a file cut short keeps its whole rows (the rest a gap, reported)
+    # instead of being rejected whole; the camera format is the sections'
+    # columns (a shorter block, or spaces in DATASEC, is no new format); an
+    # image extension with INHERIT = T takes the primary header's keywords
+    version=7,
 )

@@ -21,6 +21,7 @@ __all__ = [
     "KEYWORDS",
     "OPTIONAL",
     "BlockInfo",
+    "camera_format",
     "expected_file_size",
     "parse_block_header",
     "parse_section",
@@ -52,6 +53,8 @@ _TIME_SCALES = {"UTC": "utc", "TAI": "tai", "TT": "tt"}
 _DATE_ONLY = re.compile(r"^\s*\d{4}-\d{2}-\d{2}\s*$")
 #: A time-zone designator at the end of an ISO 8601 time ('Z', '+00:00', '-0500').
 _ZONE = re.compile(r"(Z|[+-]\d{2}:?\d{2})$")
+#: A date and a time joined by something else than 'T' (a space, a lower-case 't').
+_SPACED = re.compile(r"^\d{4}-\d{2}-\d{2}(\s+|t)\d{2}:\d{2}")
 _BYTES_PER_RECORD = 2880
 
 
@@ -88,6 +91,37 @@ def parse_section(text: str) -> tuple[slice, slice]:
     return slice(y1 - 1, y2), slice(x1 - 1, x2)
 
 
+def camera_format(
+    n_columns: int, image_section: str, overscan_section: str
+) -> tuple[int, tuple[int, int], tuple[int, int]]:
+    """What a block's columns are: NAXIS1 and the DATASEC and BIASSEC columns.
+
+    Only the columns say what the camera read out: the sections' row ranges
+    span each block's own rows (a shorter block, such as the last of a
+    night, has a shorter range), and the text may be spaced differently.
+
+    Parameters
+    ----------
+    n_columns : int
+        NAXIS1.
+    image_section, overscan_section : str
+        DATASEC and BIASSEC, 1-based FITS sections.
+
+    Returns
+    -------
+    (int, (int, int), (int, int))
+        NAXIS1 and the 1-based inclusive column ranges of DATASEC and BIASSEC.
+
+    Examples
+    --------
+    >>> camera_format(1056, "[1:1024,1:512]", "[1025:1056, 1:512]")
+    (1056, (1, 1024), (1025, 1056))
+    """
+    data = parse_section(image_section)[1]
+    bias = parse_section(overscan_section)[1]
+    return (int(n_columns), (data.start + 1, data.stop), (bias.start + 1, bias.stop))
+
+
 @dataclass(frozen=True)
 class BlockInfo:
     """What ingest knows about one raw block, from its header.
@@ -120,6 +154,9 @@ class BlockInfo:
         Passband name.
     defaulted : tuple of str
         Canonical names whose values came from the config defaults.
+    lost_rows : int
+        Rows the header promises (NAXIS2) that a file cut short does not
+        hold whole; ``n_rows`` counts only the whole rows, stored first.
     """
 
     name: str
@@ -141,14 +178,13 @@ class BlockInfo:
     site_elev: float | None
     filter: str
     defaulted: tuple[str, ...] = ()
+    lost_rows: int = 0
 
     @property
     def geometry(self) -> tuple[Any, ...]:
         """Everything that must stay the same within a segment of blocks."""
         return (
-            self.n_columns,
-            self.image_section,
-            self.overscan_section,
+            *camera_format(self.n_columns, self.image_section, self.overscan_section),
             self.tdi_rows,
             self.filter,
         )
@@ -197,7 +233,7 @@ def _header_bytes(header, hdu: int) -> int:
     return -(-n_bytes // _BYTES_PER_RECORD) * _BYTES_PER_RECORD + _BYTES_PER_RECORD * hdu
 
 
-def _lookup(header, canonical, keywords, defaults, name):
+def _lookup(header, canonical, keywords, defaults, name, hdu=0):
     keyword = keywords.get(canonical, KEYWORDS[canonical][0])
     if keyword in header:
         return header[keyword], False
@@ -205,9 +241,15 @@ def _lookup(header, canonical, keywords, defaults, name):
         return defaults[canonical], True
     if canonical in OPTIONAL:
         return None, False
+    extension = (
+        f" (the image is in extension {hdu}, whose header is read with the primary's only "
+        "when it says INHERIT = T)"
+        if hdu
+        else ""
+    )
     raise IngestError(
-        f"{name}: missing keyword {keyword} ({KEYWORDS[canonical][2]}); add it to the file "
-        f"or give stages.ingest.defaults.{canonical} in the config."
+        f"{name}: missing keyword {keyword} ({KEYWORDS[canonical][2]}){extension}; add it to "
+        f"the file or give stages.ingest.defaults.{canonical} in the config."
     )
 
 
@@ -244,6 +286,7 @@ def parse_block_header(
     header_bytes: int | None = None,
     keywords: dict[str, str] | None = None,
     defaults: dict[str, Any] | None = None,
+    complete_rows: int | None = None,
 ) -> BlockInfo:
     """Check a raw block's header and return its :class:`BlockInfo`.
 
@@ -266,6 +309,12 @@ def parse_block_header(
         :data:`KEYWORDS`.
     defaults : dict, optional
         Canonical name -> value used when the keyword is missing.
+    complete_rows : int, optional
+        For a file cut short (the runner measures it,
+        :func:`pipeline.runner._rawio.complete_rows`): the rows stored whole
+        before the cut.  The block is then those rows (``n_rows``), the rest
+        ``lost_rows``, and ``size`` is not checked; with none whole the file
+        is rejected.
 
     Returns
     -------
@@ -291,9 +340,24 @@ def parse_block_header(
     if n_rows < 1 or n_columns < 2:
         raise IngestError(f"{name}: empty image ({n_columns} x {n_rows}).")
     note = _reader_note(header)
-    if "truncated" in note:
-        raise IngestError(f"{name}: truncated file ({note}).")
-    if size is not None:
+    lost_rows = 0
+    if complete_rows is not None and complete_rows < n_rows:
+        if complete_rows < 1:
+            raise IngestError(
+                f"{name}: truncated file: it ends before its first row ({n_columns} pixels of "
+                f"BITPIX {bitpix}) is whole, so none of its {n_rows} rows can be used; copy the "
+                "file again from the camera."
+            )
+        lost_rows = n_rows - complete_rows
+    elif "truncated" in note:
+        # The runner measures the whole rows of plain and gzip/bzip2 files; a
+        # tile-compressed image's rows are in tiles it does not salvage.
+        raise IngestError(
+            f"{name}: truncated file ({note}): none of its rows are used (whole rows are "
+            "kept only from a plain file or a gzip/bzip2 stream cut short, not from a "
+            "tile-compressed image); copy the file again from the camera."
+        )
+    elif size is not None:
         if header_bytes is None:
             header_bytes = _header_bytes(header, hdu)
         need = expected_file_size(header_bytes, n_rows, n_columns, bitpix)
@@ -304,7 +368,7 @@ def parse_block_header(
             )
     values, defaulted = {}, []
     for canonical in KEYWORDS:
-        raw, was_default = _lookup(header, canonical, keywords, defaults, name)
+        raw, was_default = _lookup(header, canonical, keywords, defaults, name, hdu)
         values[canonical] = _convert(raw, canonical, keywords, name)
         if was_default:
             defaulted.append(canonical)
@@ -315,19 +379,25 @@ def parse_block_header(
                 f"{values[canonical]} must be positive."
             )
     latitude = values["site_lat"]
-    if values["read_noise"] < 0 or not (latitude is None or -90 <= latitude <= 90):
-        raise IngestError(
-            f"{name}: RDNOISE={values['read_noise']} or SITELAT={values['site_lat']} out of range."
-        )
+    for canonical, bad, allowed in (
+        ("read_noise", values["read_noise"] < 0, "0 or more (e-)"),
+        ("site_lat", not (latitude is None or -90 <= latitude <= 90), "-90 to 90 (deg)"),
+    ):
+        if bad:
+            keyword = keywords.get(canonical, KEYWORDS[canonical][0])
+            raise IngestError(
+                f"{name}: {keyword}={values[canonical]} is out of range: it must be {allowed}."
+            )
     values["date_obs"] = _parse_time(values["date_obs"], header, name)
     _check_sections(values["image_section"], values["overscan_section"], n_rows, n_columns, name)
     return BlockInfo(
         name=name,
         hdu=hdu,
-        n_rows=n_rows,
+        n_rows=n_rows - lost_rows,
         n_columns=n_columns,
         bitpix=bitpix,
         defaulted=tuple(defaulted),
+        lost_rows=lost_rows,
         **values,
     )
 
@@ -361,7 +431,13 @@ def _parse_time(text, header, name):
                 f"({zone.group(0)!r}), which a FITS date does not carry (its time scale is "
                 f"TIMESYS, here {system}): write the time without it."
             ) from None
-        raise IngestError(f"{name}: DATE-OBS={text!r} is not an ISO 8601 time.") from None
+        spaced = _SPACED.match(str(text).strip()) is not None
+        hint = " (a 'T', not a space or a 't', between date and time)" if spaced else ""
+        raise IngestError(
+            f"{name}: DATE-OBS={text!r} is not a FITS date and time: write it as "
+            f"'YYYY-MM-DDThh:mm:ss[.sss]'{hint}, or name the keyword that holds it in "
+            "stages.ingest.keywords."
+        ) from None
 
 
 def _check_sections(image_section, overscan_section, n_rows, n_columns, name):
