@@ -648,7 +648,6 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
         [(start, n_x) for _, start, n_x in products],
         segments=[by_stretch[stretch.index] for stretch, _, _ in products],
     )
-    problems = []
     for (stretch, start, n_x), sky in zip(products, skies, strict=True):
         # A stretch whose WCS cannot follow the solution (the start-of-scan ramp,
         # a transparency step) keeps its closest WCS and is reported: failing the
@@ -736,6 +735,7 @@ STAGE = Stage(
     # 2: the stretch WCSs fitted linearly (closer to the solution); 3: a pass
     # stopped by max_passes (or deconvolved products) is recorded as such;
     # parameters record focal_length_given; 4: a clock offset per segment after a
-    # gap (parameters' segment_clocks), the stretch WCSs timed by their segment's
+    # gap (parameters' segment_clocks), the stretch WCSs timed by their segment's;
+    # the passes' and the error floor's problems are no longer dropped
     version=4,
 )
