@@ -61,6 +61,7 @@ from pipeline.exceptions import IngestError
 from pipeline.geometry.instrument import Site
 from pipeline.runner._rawio import read_raw_files
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, PixelSummary, RawFile, Stage
+from pipeline.stages.ingest._clock import Boundary, find_clock_drift
 from pipeline.stages.ingest._header import (
     KEYWORDS,
     BlockInfo,
@@ -405,6 +406,8 @@ def index_night(
     rows: list[dict[str, Any]] = []
     reference = blocks[0].date_obs if blocks else None
     segment = 0
+    boundaries: list[Boundary] = []  # every join, for the clock's pattern (._clock)
+    off_lines: dict[int, int] = {}  # boundary -> its gap or overlap line in problems
     for block in blocks:
         t_start = float((block.date_obs - reference).sec)
         if not kept:
@@ -422,12 +425,31 @@ def index_night(
                 f"{block.block_seq}); left out."
             )
             continue
-        new_segment = _continuity(block, prev, offset, tolerance_rows, problems, main_format)
+        new_segment = _continuity(block, prev, problems, main_format)
+        apart, line, off = _join(block, prev, offset, tolerance_rows)
+        if off:
+            off_lines[len(boundaries)] = len(problems)
+        if line is not None:
+            problems.append(line)
+        boundaries.append(
+            Boundary(
+                before=prev.name,
+                after=block.name,
+                offset=float(offset),
+                rows=int(prev.n_rows),
+                seconds=float(t_start - prev_row["t_start"]),
+                line_time=float(prev.line_time),
+                follows=block.block_seq - prev.block_seq == 1
+                and bool(np.isclose(block.line_time, prev.line_time, rtol=1e-9, atol=0)),
+            )
+        )
+        new_segment = new_segment or apart
         segment += new_segment
         row_start = prev_row["row_start"] + prev.n_rows + round(offset)
         segment_row = 0 if new_segment else prev_row["segment_row"] + prev.n_rows
         rows.append(_index_row(block, t_start, row_start, segment, segment_row))
         kept.append(block)
+    _one_clock_fault(problems, boundaries, off_lines, tolerance_rows)
     if start_ramp not in ("night", "segment", "none"):
         raise ValueError(f"start_ramp must be 'night', 'segment' or 'none'; got {start_ramp!r}.")
     for row in rows:
@@ -467,8 +489,8 @@ def _main_format(blocks: Sequence[BlockInfo]) -> tuple[int, str, str] | None:
     return max(formats, key=formats.count) if formats else None
 
 
-def _continuity(block, prev, offset, tolerance_rows, problems, main_format) -> bool:
-    """Append problems between ``prev`` and ``block``; True if a new segment starts.
+def _continuity(block, prev, problems, main_format) -> bool:
+    """Append format and setting problems between ``prev`` and ``block``; True: new segment.
 
     A change of camera format names the block whose format differs from the
     night's main format (``main_format``), not the block that returns to it.
@@ -510,27 +532,60 @@ def _continuity(block, prev, offset, tolerance_rows, problems, main_format) -> b
             f"{block.name}: readout changed mid-night ({'; '.join(readout)}); calibrated with "
             "its own values: check the header if the camera's readout mode did not change."
         )
+    return new_segment
+
+
+def _join(block, prev, offset, tolerance_rows) -> tuple[bool, str | None, bool]:
+    """Whether ``block`` joins ``prev`` in time: ``(new_segment, problem, off)``.
+
+    ``off``: the problem is a gap or an overlap (a boundary off in time).
+    """
     seq_step = block.block_seq - prev.block_seq
     if offset > tolerance_rows:
         missing = offset / block.n_rows
-        problems.append(
+        return (
+            True,
             f"{block.name}: gap of {offset:.1f} rows ({offset * prev.line_time:.2f} s, "
             f"about {missing:.2f} block(s); BLOCKSEQ {prev.block_seq} -> {block.block_seq}) "
-            f"after {prev.name}; new segment."
+            f"after {prev.name}; new segment.",
+            True,
         )
-        new_segment = True
-    elif offset < -tolerance_rows:
-        problems.append(
+    if offset < -tolerance_rows:
+        return (
+            True,
             f"{block.name}: starts {-offset:.1f} rows ({-offset * prev.line_time:.2f} s) "
-            f"before the end of {prev.name} (overlap); its rows win; new segment."
+            f"before the end of {prev.name} (overlap); its rows win; new segment.",
+            True,
         )
-        new_segment = True
-    elif seq_step != 1:
-        problems.append(
+    if seq_step != 1:
+        return (
+            False,
             f"{block.name}: BLOCKSEQ {prev.block_seq} -> {block.block_seq} but the times of "
-            f"{prev.name} and {block.name} join up (clock or numbering error?)."
+            f"{prev.name} and {block.name} join up (clock or numbering error?).",
+            False,
         )
-    return new_segment
+    return False, None, False
+
+
+def _one_clock_fault(problems: list[str], boundaries, off_lines: dict, tolerance_rows) -> None:
+    """Replace the gap and overlap lines of a clock that is not LINETIME by one line.
+
+    ``off_lines``: boundary index -> index of its gap or overlap line in
+    ``problems`` (see :mod:`._clock`).  The per-boundary lines are logged at
+    debug level instead.
+    """
+    drift = find_clock_drift(boundaries, tolerance_rows)
+    if drift is None:
+        return
+    replaced = sorted(off_lines[i] for i in drift.members if i in off_lines)
+    if not replaced:
+        return
+    for k in replaced:
+        log.debug("%s", problems[k])
+    line = drift.describe(boundaries, tolerance_rows)
+    kept = [p for k, p in enumerate(problems) if k not in set(replaced)]
+    kept.insert(replaced[0], line)
+    problems[:] = kept
 
 
 def _index_row(block: BlockInfo, t_start, row_start, segment, segment_row) -> dict[str, Any]:
@@ -791,5 +846,7 @@ STAGE = Stage(
     # 6: a DATE-OBS without a time of day is rejected (it read as midnight), a
     # GAIN, RDNOISE or SATURATE that changes mid-night is reported, and header
     # TDIROWS that differ from camera.tdi_rows
-    version=6,
+    # 7: a camera clock off its LINETIME (the same gap or overlap at every block)
+    # is one problem with the line time the DATE-OBS stamps imply
+    version=7,
 )
