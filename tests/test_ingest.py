@@ -631,3 +631,23 @@ def test_gaps_of_different_sizes_stay_gaps():
     assert all("gap of" in p for p in night.problems)
     pair = index_night(_clocked_night([0, 1, 2], LINE_TIME * 1.02))
     assert len(pair.problems) == 2 and all("gap of 0.8 rows" in p for p in pair.problems)
+
+
+def test_the_stamps_line_time_on_request_joins_the_blocks():
+    """stages.ingest.line_time_from_stamps: the drifting night of 2 % is indexed
+    at the line time its stamps imply (0.051 s, as planted, to the 1 ms of
+    DATE-OBS): one segment, each row at its true time. Off (the default), the
+    timing is LINETIME's. Invented values."""
+    infos = _clocked_night(list(range(8)), LINE_TIME * 1.02)
+    night = index_night(infos, line_time_from_stamps=True)
+    assert night.n_segments == 1
+    assert list(night.table["row_start"]) == [k * N_ROWS for k in range(8)]
+    np.testing.assert_allclose(night.table["line_time"], LINE_TIME * 1.02, rtol=1e-4)
+    (line,) = night.problems
+    assert line.startswith("LINETIME 0.05 s taken as 0.051") and "+20000 ppm" in line
+    rows = describe_rows(night.table, 7 * N_ROWS - 1, 7 * N_ROWS + 1)
+    true_times = np.array([7 * N_ROWS - 1, 7 * N_ROWS]) * LINE_TIME * 1.02
+    np.testing.assert_allclose(rows["time"], true_times, atol=1.5e-3)  # DATE-OBS: 1 ms
+    assert index_night(infos).n_segments == 8
+    options = IngestOptions(line_time_from_stamps=True)
+    assert options.line_time_from_stamps and not IngestOptions().line_time_from_stamps

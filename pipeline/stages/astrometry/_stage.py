@@ -483,7 +483,8 @@ def segment_clock_problems(records: list[dict]) -> list[str]:
         f"{abs(r['offset_ms']):.1f} +- {r['offset_err_ms']:.1f} ms "
         f"{'late' if r['offset_ms'] < 0 else 'early'} against the night's clock "
         f"({r['ra_mas']:+.0f} mas in RA): the solution gives the segment its own clock "
-        "(parameters' segment_clocks); check the camera computer's clock."
+        "(parameters' segment_clocks); check the camera computer's clock, or LINETIME if "
+        "ingest finds the same jump at every block."
         for r in records
         if r["fitted"] and abs(r["offset_ms"]) > max(5.0 * r["offset_err_ms"], 1.0)
     ]

@@ -46,6 +46,7 @@ hands the stage headers and rows); :func:`parse_block_header`,
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
@@ -374,6 +375,7 @@ def index_night(
     *,
     tolerance_rows: float = 0.5,
     start_ramp: StartRamp = "night",
+    line_time_from_stamps: bool = False,
 ) -> NightIndex:
     """Order good blocks by time, give each its night rows and check continuity.
 
@@ -391,6 +393,11 @@ def index_night(
         (and went on through any gap), again at the start of every segment
         (clocking restarted after each gap), or before the first block (the
         data hold no partly exposed rows).  Sets the ``clock_row`` column.
+    line_time_from_stamps : bool
+        When the block boundaries show a camera clock off its LINETIME (the
+        same gap or overlap at every block, :mod:`._clock`), index the night
+        again with the line time the DATE-OBS stamps imply for those blocks:
+        they join up, and that line time is the night's.
 
     Returns
     -------
@@ -449,7 +456,9 @@ def index_night(
         segment_row = 0 if new_segment else prev_row["segment_row"] + prev.n_rows
         rows.append(_index_row(block, t_start, row_start, segment, segment_row))
         kept.append(block)
-    _one_clock_fault(problems, boundaries, off_lines, tolerance_rows)
+    drift = _one_clock_fault(problems, boundaries, off_lines, tolerance_rows)
+    if drift is not None and line_time_from_stamps:
+        return _indexed_at(drift, blocks, rejected, tolerance_rows, start_ramp)
     if start_ramp not in ("night", "segment", "none"):
         raise ValueError(f"start_ramp must be 'night', 'segment' or 'none'; got {start_ramp!r}.")
     for row in rows:
@@ -567,25 +576,49 @@ def _join(block, prev, offset, tolerance_rows) -> tuple[bool, str | None, bool]:
     return False, None, False
 
 
-def _one_clock_fault(problems: list[str], boundaries, off_lines: dict, tolerance_rows) -> None:
+def _one_clock_fault(problems: list[str], boundaries, off_lines: dict, tolerance_rows):
     """Replace the gap and overlap lines of a clock that is not LINETIME by one line.
 
     ``off_lines``: boundary index -> index of its gap or overlap line in
     ``problems`` (see :mod:`._clock`).  The per-boundary lines are logged at
-    debug level instead.
+    debug level instead.  Returns the :class:`~._clock.ClockDrift`, or None.
     """
     drift = find_clock_drift(boundaries, tolerance_rows)
     if drift is None:
-        return
+        return None
     replaced = sorted(off_lines[i] for i in drift.members if i in off_lines)
     if not replaced:
-        return
+        return None
     for k in replaced:
         log.debug("%s", problems[k])
     line = drift.describe(boundaries, tolerance_rows)
     kept = [p for k, p in enumerate(problems) if k not in set(replaced)]
     kept.insert(replaced[0], line)
     problems[:] = kept
+    return drift
+
+
+def _indexed_at(drift, blocks, rejected, tolerance_rows, start_ramp) -> NightIndex:
+    """The night indexed again with the line time the stamps imply (``line_time_from_stamps``).
+
+    Blocks whose LINETIME is the drifting one take the implied line time;
+    the first problem line says so.
+    """
+    header = drift.header_line_time
+    again = [
+        dataclasses.replace(b, line_time=drift.line_time)
+        if np.isclose(b.line_time, header, rtol=1e-9, atol=0)
+        else b
+        for b in blocks
+    ]
+    night = index_night(again, rejected, tolerance_rows=tolerance_rows, start_ramp=start_ramp)
+    night.problems.insert(
+        0,
+        f"LINETIME {header:.9g} s taken as {drift.line_time:.9g} s, the line time the "
+        f"DATE-OBS stamps imply ({drift.relative * 1e6:+.0f} ppm; "
+        "stages.ingest.line_time_from_stamps): the camera's clock is not its LINETIME.",
+    )
+    return night
 
 
 def _index_row(block: BlockInfo, t_start, row_start, segment, segment_row) -> dict[str, Any]:
@@ -727,6 +760,12 @@ class IngestOptions(BaseModel):
     tolerance_rows: float = Field(
         0.5, ge=0, description="Largest DATE-OBS mismatch, in rows, still contiguous."
     )
+    line_time_from_stamps: bool = Field(
+        False,
+        description="When every block boundary shows the same camera clock off LINETIME "
+        "(a gap or overlap of the same size at every block), index the night with the line "
+        "time the DATE-OBS stamps imply instead of LINETIME.",
+    )
     start_ramp: StartRamp = Field(
         "night",
         description="Where charge clocking started: with the night's first block ('night'), "
@@ -767,7 +806,11 @@ def ingest_files(
         except IngestError as exc:
             rejected.append(str(exc))
     night = index_night(
-        infos, rejected, tolerance_rows=options.tolerance_rows, start_ramp=options.start_ramp
+        infos,
+        rejected,
+        tolerance_rows=options.tolerance_rows,
+        start_ramp=options.start_ramp,
+        line_time_from_stamps=options.line_time_from_stamps,
     )
     lines = compare_site(infos, site) if site is not None else []
     if tdi_rows is not None:
@@ -847,6 +890,7 @@ STAGE = Stage(
     # GAIN, RDNOISE or SATURATE that changes mid-night is reported, and header
     # TDIROWS that differ from camera.tdi_rows
     # 7: a camera clock off its LINETIME (the same gap or overlap at every block)
-    # is one problem with the line time the DATE-OBS stamps imply
+    # is one problem with the line time the DATE-OBS stamps imply (and, with
+    # line_time_from_stamps, the night's line time)
     version=7,
 )

@@ -111,7 +111,8 @@ class ClockDrift:
             f"{self.header_line_time:.9g} s ({self.relative * 1e6:+.0f} ppm, "
             f"{self.relative * rows:+.2f} rows per {rows}-row block, beyond the "
             f"{tolerance_rows:g}-row tolerance); each block is a segment of its own and the "
-            "night's timing is off: set LINETIME to the clock the camera ran at."
+            "night's timing is off: set LINETIME to the clock the camera ran at (or "
+            "stages.ingest.line_time_from_stamps: true)."
         )
 
 
