@@ -27,7 +27,8 @@ from pipeline.geometry import (
     spin_period_from_focal_length,
 )
 from pipeline.geometry.rectified import RectifiedFrame
-from pipeline.stages.astrometry import GeometryOffsets
+from pipeline.stages.astrometry import GeometryOffsets, solve_night
+from pipeline.stages.astrometry._segments import NightSegments
 from pipeline.stages.rectify._map import StripMap, crossing_after
 
 #: The issue's mis-set geometry: clock 2 s late, focal length 1 % long,
@@ -76,6 +77,8 @@ class Night:
     star: np.ndarray  # index into ref_ra of each detection, -1 for spurious ones
     t_mid: np.ndarray  # true crossing middle of each reference star
     wander: Wander | None
+    segments: NightSegments | None = None  # with a gap: the two segments' rows
+    segment: np.ndarray | None = None  # segment number of each detection
 
 
 def _invert_map(strip_map: StripMap, r, c, x, y, steps: int = 6):
@@ -103,6 +106,8 @@ def make_night(
     missed: float = 0.15,
     n_detections: int | None = None,
     spin: bool = False,
+    gap: tuple[int, int] | None = None,
+    segment_clock: float = 0.0,
 ) -> Night:
     """Build a night at ``latitude`` seen by a mis-set camera.
 
@@ -134,6 +139,14 @@ def make_night(
     spin : bool
         Configure the nominal camera by the liquid mirror's spin period
         (giving ``focal_length``) instead of the focal length.
+    gap : (int, int) or None
+        Night rows ``[start, stop)`` without data: the night is two segments
+        (``segments``), no detection lies in the gap.
+    segment_clock : float
+        Seconds by which the rows after the gap were really read later than
+        their header times say, beyond the night's ``offsets.clock_offset``
+        (the second segment's first DATE-OBS is that much early): their
+        stars are recorded ``segment_clock / line_time`` rows earlier.
     """
     rng = np.random.default_rng(seed)
     site = Site(latitude=latitude, longitude=-70.5, height=1200.0, name="test site")
@@ -184,6 +197,16 @@ def make_night(
         d_r, d_c = wander.mean_over(t0, t1)
         r, c = r + d_r, c + d_c
     on_chip = (c > 0.0) & (c < n_columns - 1.0) & (r > n) & (r < n_rows - 2)
+    segments = None
+    if gap is not None:
+        after_gap = r >= gap[1] - 0.5
+        r = np.where(after_gap, r - segment_clock / true.line_time, r)
+        on_chip &= (r < gap[0] - 0.5) | (r >= gap[1] - 0.5)
+        segments = NightSegments(
+            numbers=np.array([0, 1]),
+            starts=np.array([0, gap[1]]),
+            stops=np.array([gap[0], n_rows]),
+        )
     strip_map = StripMap(nominal, frame, -n, n_rows + n)
     x_det, y_det = _invert_map(strip_map, r, c, xs, ys)
     seen = on_chip & (rng.uniform(size=n_stars) > missed)
@@ -194,6 +217,10 @@ def make_night(
     x_fake = rng.uniform(n, n_rows - 2, n_fake)
     y_fake = rng.uniform(0.0, frame.n_y - 1.0, n_fake)
     order = rng.permutation(star.size + n_fake)
+    segment = None
+    if segments is not None:
+        rows_fake, _ = strip_map(x_fake, y_fake)
+        segment = segments.of_rows(np.r_[r[star], rows_fake])[order]
     return Night(
         nominal=nominal,
         true=true,
@@ -207,4 +234,22 @@ def make_night(
         star=np.r_[star, np.full(n_fake, -1)][order],
         t_mid=0.5 * (t0 + t1),
         wander=wander,
+        segments=segments,
+        segment=segment,
+    )
+
+
+def solve_scene(night: Night, **kwargs):
+    """:func:`solve_night` of a synthetic night's detections, weighted by its noise."""
+    sigma = np.full(night.x.size, night.sigma)
+    return solve_night(
+        night.x,
+        night.y,
+        night.ref_ra,
+        night.ref_dec,
+        night.nominal,
+        night.frame,
+        x_err=sigma,
+        y_err=sigma,
+        **kwargs,
     )

@@ -37,6 +37,7 @@ from pipeline.stages.astrometry import (
 )
 from pipeline.stages.detect import SourceFlag
 from tests._astrometry_scene import ISSUE_OFFSETS, Wander, make_night
+from tests._astrometry_scene import solve_scene as _solve
 
 LATITUDES = [50.0, -30.0]
 
@@ -310,21 +311,6 @@ def test_residual_grid_cells():
 
 
 # ---------------------------------------------------------------- full solves
-def _solve(night, **kwargs):
-    sigma = np.full(night.x.size, night.sigma)
-    return solve_night(
-        night.x,
-        night.y,
-        night.ref_ra,
-        night.ref_dec,
-        night.nominal,
-        night.frame,
-        x_err=sigma,
-        y_err=sigma,
-        **kwargs,
-    )
-
-
 def _sky_errors(night, solution):
     """Solved minus true sky positions of the real detections, mas along RA and Dec."""
     real = night.star >= 0

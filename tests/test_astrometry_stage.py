@@ -495,6 +495,9 @@ def test_a_stretch_whose_wcs_misses_the_tolerance_is_reported_not_the_night_lost
     astrometry stage used to fail: no zero point and no science product for
     any stretch of the night.  Now the stretch keeps its closest WCS (WCSDEV)
     and is named as a problem.  A tolerance of 0.005 px makes the miss sure.
+    A problem found before the stretch WCSs (here the error floor, beyond a
+    max_error_floor of 1 micro-arcsecond) is reported with it: the WCS loop
+    used to start the night's list of problems anew.
     Self-consistency test on an invented night (pipeline.simulate)."""
     import yaml
 
@@ -521,6 +524,7 @@ def test_a_stretch_whose_wcs_misses_the_tolerance_is_reported_not_the_night_lost
             "columns": {"min_blocks": 4},
             "astrometry": {
                 "wcs_tolerance": 0.005,
+                "max_error_floor": 1e-6,
                 "reference": {
                     "source": "file",
                     "path": "raw/reference.ecsv",
@@ -538,6 +542,7 @@ def test_a_stretch_whose_wcs_misses_the_tolerance_is_reported_not_the_night_lost
     out = capsys.readouterr().out
     assert ", 0 failed, 0 blocked" in out, out
     assert "problem: astrometry/night: s0000: its solved WCS is " in out, out
+    assert "problem: astrometry/night: the geometry does not fit the stars" in out, out
     wcs = json.loads((tmp_path / "out/n/astrometry/night/wcs.json").read_text())
     assert sorted(wcs) == ["s0000", "s0001", "s0002", "s0003"]
     assert wcs["s0000"]["WCSDEV"] > 0.005

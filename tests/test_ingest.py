@@ -845,3 +845,75 @@ stages:
 
     plan = [(s.lo, s.hi) for s in NightStore(load_config(night)).stretches]
     assert plan == [(0, 512 + whole), (1024, 1536), (2048, 2560), (3072, 4096)]
+
+
+def _clocked_night(seqs, line_time_true, pauses=None):
+    """Blocks time-stamped by a true clock while the camera shifted rows every
+    ``line_time_true`` s and its headers say LINETIME = 0.05 s (invented values);
+    ``pauses``: seconds of extra delay before given blocks."""
+    pauses = pauses or {}
+    infos, t = [], START
+    for k, seq in enumerate(seqs):
+        if k:
+            t = t + ((seq - seqs[k - 1]) * N_ROWS * line_time_true + pauses.get(seq, 0.0)) * u.s
+        infos.append(parse_block_header(make_header(seq, **{"DATE-OBS": t.isot}), f"b{seq}.fits"))
+    return infos
+
+
+@pytest.mark.parametrize(("error", "kind"), [(0.02, "gaps"), (-0.03, "overlaps")])
+def test_a_camera_clock_off_its_linetime_is_one_problem(error, kind):
+    """A camera clocked 2 % slow (or 3 % fast) over 40-row blocks: every boundary
+    is off by +0.8 (or -1.2) rows, beyond the 0.5-row tolerance. Ingest used to
+    report a gap or an overlap at every block; one line now names the clock
+    and the line time the stamps imply (0.051 s, 0.0485 s: what was planted,
+    to the 1 ms DATE-OBS is written to over 7 blocks of 2 s). Invented values."""
+    true_line_time = LINE_TIME * (1.0 + error)
+    night = index_night(_clocked_night(list(range(8)), true_line_time))
+    (line,) = night.problems
+    assert line.startswith(f"b1.fits to b7.fits: all 7 block boundaries are {kind} of ")
+    assert f"not 7 {kind} but a camera clock that is not its LINETIME" in line
+    implied = float(line.split("imply a line time of ")[1].split(" s")[0])
+    assert implied == pytest.approx(true_line_time, rel=1e-4)
+    assert night.n_segments == 8  # the timing model is unchanged: a segment per block
+    # a clock within the tolerance (0.4 rows a block) joins up and says nothing
+    assert index_night(_clocked_night(list(range(8)), LINE_TIME * 1.01)).problems == []
+
+
+def test_a_missing_block_in_a_drifting_night_keeps_its_own_gap():
+    """The drift is one line; the missing block 4 is a gap of its own (40 rows plus
+    the drift)."""
+    night = index_night(_clocked_night([0, 1, 2, 3, 5, 6, 7, 8], LINE_TIME * 1.02))
+    assert len(night.problems) == 2
+    assert night.problems[0].startswith("b1.fits to b8.fits: all 6 block boundaries are gaps")
+    assert night.problems[1].startswith("b5.fits: gap of 41.6 rows")
+
+
+def test_gaps_of_different_sizes_stay_gaps():
+    """Pauses of 2, 5 and 12 rows (and two boundaries alike, too few for a
+    pattern) are reported one by one: not a clock."""
+    pauses = {1: 2 * LINE_TIME, 2: 5 * LINE_TIME, 3: 12 * LINE_TIME}
+    night = index_night(_clocked_night([0, 1, 2, 3], LINE_TIME, pauses))
+    assert [p.split(":")[0] for p in night.problems] == ["b1.fits", "b2.fits", "b3.fits"]
+    assert all("gap of" in p for p in night.problems)
+    pair = index_night(_clocked_night([0, 1, 2], LINE_TIME * 1.02))
+    assert len(pair.problems) == 2 and all("gap of 0.8 rows" in p for p in pair.problems)
+
+
+def test_the_stamps_line_time_on_request_joins_the_blocks():
+    """stages.ingest.line_time_from_stamps: the drifting night of 2 % is indexed
+    at the line time its stamps imply (0.051 s, as planted, to the 1 ms of
+    DATE-OBS): one segment, each row at its true time. Off (the default), the
+    timing is LINETIME's. Invented values."""
+    infos = _clocked_night(list(range(8)), LINE_TIME * 1.02)
+    night = index_night(infos, line_time_from_stamps=True)
+    assert night.n_segments == 1
+    assert list(night.table["row_start"]) == [k * N_ROWS for k in range(8)]
+    np.testing.assert_allclose(night.table["line_time"], LINE_TIME * 1.02, rtol=1e-4)
+    (line,) = night.problems
+    assert line.startswith("LINETIME 0.05 s taken as 0.051") and "+20000 ppm" in line
+    rows = describe_rows(night.table, 7 * N_ROWS - 1, 7 * N_ROWS + 1)
+    true_times = np.array([7 * N_ROWS - 1, 7 * N_ROWS]) * LINE_TIME * 1.02
+    np.testing.assert_allclose(rows["time"], true_times, atol=1.5e-3)  # DATE-OBS: 1 ms
+    assert index_night(infos).n_segments == 8
+    options = IngestOptions(line_time_from_stamps=True)
+    assert options.line_time_from_stamps and not IngestOptions().line_time_from_stamps

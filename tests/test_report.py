@@ -377,6 +377,50 @@ def test_a_configured_focal_length_is_not_called_the_spin_period_s() -> None:
     assert rows["focal length"].endswith("6.00000 m from the spin period (+120 +- 540 um)")
 
 
+def test_the_summary_gives_each_segment_s_clock() -> None:
+    """A night of two segments: the second's clock offset in ms and in mas of RA
+    with their errors, or why it was not fitted; a night of one segment says nothing."""
+    first = {
+        "segment": 0,
+        "rows": [0, 2048],
+        "fitted": False,
+        "offset_ms": 0.0,
+        "offset_err_ms": 0.0,
+        "ra_mas": 0.0,
+        "ra_err_mas": 0.0,
+        "n_stars": 400,
+        "note": "the night's clock: clock_offset is this segment's",
+    }
+    second = first | {
+        "segment": 1,
+        "rows": [3072, 5120],
+        "fitted": True,
+        "offset_ms": -30.04,
+        "offset_err_ms": 0.21,
+        "ra_mas": -319.6,
+        "ra_err_mas": 2.2,
+        "n_stars": 231,
+        "note": "fitted from 231 stars",
+    }
+    meta = {"segment_clocks": [first, second]}
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    text = rows["segment clocks (relative to the night's)"]
+    assert text == (
+        "segment 0 (rows 0-2047): the night's clock: clock_offset is this segment's; "
+        "segment 1 (rows 3072-5119): -30.04 +- 0.21 ms (-319.6 +- 2.2 mas in RA), "
+        "fitted from 231 stars"
+    )
+    few = second | {"fitted": False, "n_stars": 3, "note": "not fitted: 3 matched stars"}
+    meta = {"segment_clocks": [first, few]}
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    assert rows["segment clocks (relative to the night's)"].endswith(
+        "segment 1 (rows 3072-5119): not fitted: 3 matched stars"
+    )
+    meta = {"segment_clocks": [first]}
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    assert not any(label.startswith("segment clocks") for label in rows)
+
+
 def _with_meta(meta: dict):
     parameters = scene.solved_products()["astrometry_parameters"].copy()
     parameters.meta.update(meta)

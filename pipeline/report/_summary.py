@@ -7,7 +7,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["data_seconds", "problem_lines", "solved_rows", "summary_rows"]
+__all__ = ["data_seconds", "problem_lines", "segment_clock_text", "solved_rows", "summary_rows"]
 
 
 def _plural(n: int, word: str) -> str:
@@ -102,6 +102,36 @@ def _error_text(value: float, error: float) -> str:
     return f"{value:.6g} +- {error:.2g}" if np.isfinite(error) else f"{value:.6g}"
 
 
+def segment_clock_text(records: list[dict]) -> str | None:
+    """The summary's words for the clock of each segment after a gap, or None.
+
+    Parameters
+    ----------
+    records : list of dict
+        The astrometry parameters' ``meta['segment_clocks']`` (one per
+        segment: ``offset_ms``, ``offset_err_ms``, ``ra_mas``, ``ra_err_mas``,
+        ``fitted``, ``note``...).
+
+    Returns
+    -------
+    str or None
+        One clause per segment; None for a night of one segment.
+    """
+    if len(records) < 2:
+        return None
+    parts = []
+    for r in records:
+        where = f"segment {r['segment']} (rows {r['rows'][0]}-{r['rows'][1] - 1})"
+        if r["fitted"]:
+            parts.append(
+                f"{where}: {r['offset_ms']:+.2f} +- {r['offset_err_ms']:.2f} ms "
+                f"({r['ra_mas']:+.1f} +- {r['ra_err_mas']:.1f} mas in RA), {r['note']}"
+            )
+        else:
+            parts.append(f"{where}: {r['note']}")
+    return "; ".join(parts)
+
+
 def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
     """Summary rows of the solved products (astrometry, zero point), or why they are absent."""
     from pipeline.report._solved import (
@@ -128,6 +158,9 @@ def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
         rows.append(
             ("solved parameters", fitted + ("" if chi2 is None else f"; reduced chi2 {chi2:.2f}"))
         )
+        clocks = segment_clock_text(meta.get("segment_clocks") or [])
+        if clocks is not None:
+            rows.append(("segment clocks (relative to the night's)", clocks))
         if "focal_length_m" in meta and "focal_length_from_spin_m" in meta:
             fit, spin = float(meta["focal_length_m"]), float(meta["focal_length_from_spin_m"])
             # fitted = nominal * (1 + focal_scale): the difference's error is

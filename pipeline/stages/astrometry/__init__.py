@@ -14,6 +14,9 @@ night.
   pattern-free offset histogram of the search.
 * :mod:`~pipeline.stages.astrometry._fit`: robust Gauss-Newton fit with
   covariance and the wander spline; the clock/east-tilt degeneracy.
+* :mod:`~pipeline.stages.astrometry._segments`: the night's segments
+  (:class:`NightSegments`, from ingest's block index): each after the first
+  gets a clock offset of its own, since its first DATE-OBS may be off.
 * :mod:`~pipeline.stages.astrometry._solve`: :func:`solve_night` and
   :class:`AstrometricSolution` (solved sky positions, predictions, grid
   statistics, implied focal length and matched line time).
@@ -65,6 +68,7 @@ from pipeline.stages.astrometry._second_pass import (
     kernel_change,
     solved_kernels,
 )
+from pipeline.stages.astrometry._segments import NightSegments, segment_clock_records
 from pipeline.stages.astrometry._solve import (
     AstrometricSolution,
     SearchRanges,
@@ -90,6 +94,7 @@ __all__ = [
     "GeometryFit",
     "GeometryOffsets",
     "GeometryPredictor",
+    "NightSegments",
     "OffsetPeak",
     "PredictedCentroids",
     "SearchRanges",
@@ -108,6 +113,7 @@ __all__ = [
     "reference_columns",
     "residual_grid",
     "search_geometry",
+    "segment_clock_records",
     "sky_tracks",
     "solve_catalog",
     "solve_night",

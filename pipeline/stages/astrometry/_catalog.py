@@ -41,6 +41,7 @@ from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import TDIModel
 from pipeline.stages.astrometry._fit import FIT_PARAMETERS, _subset
 from pipeline.stages.astrometry._model import east_tilt_equivalent
+from pipeline.stages.astrometry._segments import NightSegments
 from pipeline.stages.astrometry._solve import AstrometricSolution, SearchRanges, solve_night
 from pipeline.stages.astrometry._transparency import fit_transparency
 from pipeline.stages.detect import SourceFlag
@@ -66,6 +67,12 @@ class AstrometryOptions(BaseModel):
         FIT_PARAMETERS, description=f"Parameters to fit, from {FIT_PARAMETERS}."
     )
     min_matches: int = Field(20, ge=3, description="Fewest matched stars a solution needs.")
+    min_segment_stars: int = Field(
+        10,
+        ge=2,
+        description="Fewest matched stars for a segment after a gap to get a clock offset "
+        "of its own (its first DATE-OBS may be off); one with fewer keeps the night's clock.",
+    )
     min_snr: float = Field(
         0.0, ge=0, description="Detections below this S/N are solved but not used in the fit."
     )
@@ -146,7 +153,8 @@ class SolvedCatalog:
         One row per fitted parameter (``name``, ``value``, ``error``,
         ``unit``); ``meta['covariance']`` holds the covariance matrix and
         ``meta`` the derived figures (along-scan offset, focal lengths, line
-        times, the east-tilt degeneracy).
+        times, the east-tilt degeneracy) and ``meta['segment_clocks']`` each
+        segment's clock offset (:meth:`AstrometricSolution.segment_clocks`).
     grid : Table
         Residuals against the reference catalogue, 4 across x 8 along, mas.
     solution : AstrometricSolution
@@ -204,6 +212,8 @@ def solve_catalog(
     options: AstrometryOptions | None = None,
     ref_mag=None,
     start=None,
+    segments: NightSegments | None = None,
+    segment=None,
 ) -> SolvedCatalog:
     """Solve a night's detect catalogue against reference positions.
 
@@ -223,6 +233,12 @@ def solve_catalog(
         ``light_weighting``); None: the fit assumes a clear sky.
     start : GeometryOffsets or None
         Geometry of the first match (see :func:`solve_night`); None: nominal.
+    segments : NightSegments or None
+        The night's segments, each with its own clock (see
+        :func:`solve_night`); None: one clock for the night.
+    segment : array_like of int or None
+        Segment number of each catalogue row (its stretch's); None: that of
+        its strip row.
 
     Returns
     -------
@@ -250,6 +266,8 @@ def solve_catalog(
     if "flags" in catalog.colnames:
         use &= (np.asarray(catalog["flags"], dtype=np.int64) & options.exclude_mask) == 0
     fit_rows = np.flatnonzero(use)
+    if segment is not None:
+        segment = np.asarray(segment, dtype=np.int64)
     fit_x_err, fit_y_err = _with_reference_error(
         frame, x[fit_rows], y[fit_rows], x_err[fit_rows], y_err[fit_rows], options.reference_error
     )
@@ -271,6 +289,9 @@ def solve_catalog(
         "fit_error_floor": options.fit_error_floor,
         "search": ranges,
         "start": start,
+        "segments": segments,
+        "det_segment": None if segment is None else segment[fit_rows],
+        "min_segment_stars": options.min_segment_stars,
     }
     solution = solve_night(*args, **kwargs)
     cloud = None
@@ -288,7 +309,9 @@ def solve_catalog(
             solution = solve_night(*args, transparency=cloud, **kwargs)
         else:
             cloud = dataclasses.replace(cloud, applied=False) if cloud is not None else None
-    ra, dec, ra_err, dec_err, exposure = solution.sky_errors_and_exposures(x, y, x_err, y_err)
+    ra, dec, ra_err, dec_err, exposure = solution.sky_errors_and_exposures(
+        x, y, x_err, y_err, segment
+    )
     out = catalog.copy()
     out["ra"] = ra * u.deg
     out["dec"] = dec * u.deg
@@ -317,6 +340,7 @@ def solve_catalog(
     clock_per_tilt, rotation_per_tilt = east_tilt_equivalent(model, 1.0)
     parameters.meta.update(solution.summary())
     parameters.meta["covariance"] = fit.covariance.tolist()
+    parameters.meta["segment_clocks"] = solution.segment_clocks()
     parameters.meta["cloud_depth"] = None if cloud is None else cloud.depth
     parameters.meta["cloud_significance"] = None if cloud is None else cloud.significance
     parameters.meta["light_weighted"] = cloud is not None and cloud.applied

@@ -10,7 +10,10 @@ with the physical parameters ``theta`` (focal scale, rotation, north tilt,
 radial distortion) acting through :class:`GeometryPredictor`, the clock
 offset ``s`` and line-time scale ``lambda`` entering analytically, and
 ``W`` cubic B-splines in time (knots every ``knot_spacing`` seconds) for
-mirror wobble and image wander.
+mirror wobble and image wander.  On a night of several segments (gaps),
+``s`` is ``s + s_k`` for a detection in segment ``k``: each segment after
+the first with enough stars has a clock offset of its own (its first
+block's DATE-OBS may be off; :mod:`~pipeline.stages.astrometry._segments`).
 
 Degeneracies
 ------------
@@ -34,7 +37,9 @@ Degeneracies
   scan is the line-time scale, a constant across the scan is the north tilt:
   the wander splines are constrained to have zero weighted mean (and, along
   the scan, zero trend) over the matched stars, so those belong to the
-  physical model.
+  physical model.  Likewise a constant along the scan over one segment is
+  that segment's clock offset: the wander along the scan has zero weighted
+  mean over each segment that has one.
 
 Outliers (mismatches, blends, variable stars) are rejected by iterative
 clipping of the normalised residual radius at ``clip_sigma`` times its
@@ -59,6 +64,7 @@ __all__ = [
     "WanderSpline",
     "error_floor",
     "fit_geometry",
+    "free_segments",
     "parameter_jacobian",
 ]
 
@@ -202,6 +208,15 @@ class GeometryFit:
     error_floor : float
         Position error added in quadrature to every pair's in the weights,
         strip pixels (0 unless the fit estimated it).
+    segments : tuple of int
+        Segment numbers whose clock offsets (``offsets.segment_clock``) the
+        fit adjusted, in the order of their entries of ``full_covariance``
+        (after ``names``); empty without segments.
+    reference_segment : int or None
+        The segment whose clock is the night's ``clock_offset`` (None without
+        segments).
+    pair_segment : ndarray of int or None
+        Segment number of each pair's detection.
     """
 
     offsets: GeometryOffsets
@@ -217,6 +232,9 @@ class GeometryFit:
     t_mid: np.ndarray
     chi2_reduced: float
     error_floor: float = 0.0
+    segments: tuple[int, ...] = ()
+    reference_segment: int | None = None
+    pair_segment: np.ndarray | None = None
 
     @property
     def covariance(self) -> np.ndarray:
@@ -228,6 +246,20 @@ class GeometryFit:
     def errors(self) -> dict[str, float]:
         """1-sigma errors of the fitted parameters."""
         return dict(zip(self.names, np.sqrt(np.diag(self.covariance)), strict=True))
+
+    @property
+    def segment_errors(self) -> dict[int, float]:
+        """1-sigma errors of the fitted segment clock offsets, seconds, by segment number."""
+        n = len(self.names)
+        diagonal = np.diag(self.full_covariance)[n : n + len(self.segments)]
+        return dict(zip(self.segments, np.sqrt(diagonal), strict=True))
+
+    def segment_stars(self) -> dict[int, int]:
+        """Pairs kept by the clipping in each segment, by segment number."""
+        if self.pair_segment is None:
+            return {}
+        numbers, counts = np.unique(self.pair_segment[self.used], return_counts=True)
+        return {int(k): int(c) for k, c in zip(numbers, counts, strict=True)}
 
     @property
     def units(self) -> dict[str, str]:
@@ -244,19 +276,29 @@ def _subset(tracks: SkyTracks, index: np.ndarray) -> SkyTracks:
     return SkyTracks(tracks.t_centre[index], tracks.half_width, tracks.coef[:, :, index])
 
 
-def _model(predictor: GeometryPredictor, tracks: SkyTracks, offsets: GeometryOffsets):
+def _model(
+    predictor: GeometryPredictor,
+    tracks: SkyTracks,
+    offsets: GeometryOffsets,
+    segment: np.ndarray | None = None,
+):
     pred = predictor.predict(tracks, offsets)
     dt = predictor.line_time * (1.0 + offsets.line_time_scale)
-    return pred, pred.rows(predictor.n_rows, dt, offsets.clock_offset), pred.column
+    return pred, pred.rows(predictor.n_rows, dt, offsets.clock_offsets(segment)), pred.column
 
 
-def parameter_jacobian(predictor, tracks, offsets, names, pred, row, column):
+def parameter_jacobian(
+    predictor, tracks, offsets, names, pred, row, column, segment=None, segments=()
+):
     """Derivatives of strip positions by the named parameters; shape (2 n, n_par).
 
     ``pred``, ``row`` and ``column`` are the prediction at ``offsets``; the
     clock offset and line time are differentiated analytically, the others
     by forward differences of the predictor (steps ``_STEPS``).  Rows of the
-    result are the ``n`` rows, then the ``n`` columns.
+    result are the ``n`` rows, then the ``n`` columns.  ``segment``: each
+    point's segment number (None: no segment clocks); ``segments``: the
+    segment numbers whose clock offsets (``segment_clock``) follow the named
+    parameters as columns.
     """
     dt0 = predictor.line_time
     differenced = [name for name in names if name not in ("clock_offset", "line_time_scale")]
@@ -264,14 +306,15 @@ def parameter_jacobian(predictor, tracks, offsets, names, pred, row, column):
         dataclasses.replace(offsets, **{name: getattr(offsets, name) + _STEPS[name]})
         for name in differenced
     ]
-    models = dict(zip(differenced, _models(predictor, tracks, moved), strict=True))
+    models = dict(zip(differenced, _models(predictor, tracks, moved, segment), strict=True))
+    d_clock = -1.0 / (dt0 * (1.0 + offsets.line_time_scale))
     cols = []
     for name in names:
         if name == "clock_offset":
-            d_row = np.full(row.shape, -1.0 / (dt0 * (1.0 + offsets.line_time_scale)))
+            d_row = np.full(row.shape, d_clock)
             d_col = np.zeros(row.shape)
         elif name == "line_time_scale":
-            d_row = -(pred.t_mid - offsets.clock_offset) / (
+            d_row = -(pred.t_mid - offsets.clock_offsets(segment)) / (
                 dt0 * (1.0 + offsets.line_time_scale) ** 2
             )
             d_col = np.zeros(row.shape)
@@ -280,10 +323,14 @@ def parameter_jacobian(predictor, tracks, offsets, names, pred, row, column):
             _, row2, col2 = models.pop(name)
             d_row, d_col = (row2 - row) / step, (col2 - column) / step
         cols.append(np.r_[d_row, d_col])
+    for number in segments:
+        cols.append(np.r_[np.where(segment == number, d_clock, 0.0), np.zeros(row.shape)])
     return np.column_stack(cols)
 
 
-def _models(predictor: GeometryPredictor, tracks: SkyTracks, geometries: list) -> list:
+def _models(
+    predictor: GeometryPredictor, tracks: SkyTracks, geometries: list, segment=None
+) -> list:
     """:func:`_model` of each geometry, two at a time (see :func:`in_two_threads`).
 
     A prediction's numpy steps between its compiled passes run on its own
@@ -292,7 +339,7 @@ def _models(predictor: GeometryPredictor, tracks: SkyTracks, geometries: list) -
     """
 
     def model(geometry):
-        return _model(predictor, tracks, geometry)
+        return _model(predictor, tracks, geometry, segment)
 
     if len(tracks) > _THREADED_STARS:
         return [model(geometry) for geometry in geometries]
@@ -339,6 +386,54 @@ def error_floor(residual: np.ndarray, sigma: np.ndarray, dof: float) -> float:
     return float(np.sqrt(e2))
 
 
+def free_segments(
+    pair_segment: np.ndarray | None, ok: np.ndarray, min_stars: int
+) -> tuple[tuple[int, ...], int | None]:
+    """The segments whose clock offsets a fit adjusts, and the night's clock's segment.
+
+    Parameters
+    ----------
+    pair_segment : ndarray of int or None
+        Segment number of each pair; None: no segments.
+    ok : ndarray of bool
+        Pairs with a prediction.
+    min_stars : int
+        Fewest such pairs for a segment of its own.
+
+    Returns
+    -------
+    free : tuple of int
+        Segment numbers with ``min_stars`` pairs or more, but the first.
+    reference : int or None
+        The first of those (the night's ``clock_offset`` is its clock), or
+        the first segment with pairs if none has enough; None without
+        segments or pairs.
+    """
+    if pair_segment is None or not ok.any():
+        return (), None
+    numbers, counts = np.unique(pair_segment[ok], return_counts=True)
+    enough = [int(k) for k, c in zip(numbers, counts, strict=True) if c >= min_stars]
+    if not enough:
+        return (), int(numbers[0])
+    return tuple(enough[1:]), enough[0]
+
+
+def _segment_clocks(offsets, pair_segment, free, clocks=None) -> GeometryOffsets:
+    """``offsets`` with ``segment_clock`` set for the ``free`` segments, 0 elsewhere.
+
+    ``clocks``: their values in the order of ``free``; None keeps those
+    ``offsets`` has (a fit that starts from an earlier one).
+    """
+    if pair_segment is None:
+        return offsets
+    size = max(int(pair_segment.max(initial=-1)) + 1, len(offsets.segment_clock))
+    table = np.zeros(size)
+    if clocks is None:
+        clocks = [offsets.clock_offsets([k]) - offsets.clock_offset for k in free]
+    table[list(free)] = np.ravel(clocks) if free else []
+    return dataclasses.replace(offsets, segment_clock=tuple(float(v) for v in table))
+
+
 def fit_geometry(
     predictor: GeometryPredictor,
     ref_tracks: SkyTracks,
@@ -355,6 +450,8 @@ def fit_geometry(
     clip_sigma: float = 5.0,
     max_iterations: int = 10,
     fit_error_floor: bool = False,
+    segment: np.ndarray | None = None,
+    min_segment_stars: int = 10,
 ) -> GeometryFit:
     """Fit the geometry (and optionally the wander) to matched pairs.
 
@@ -387,6 +484,15 @@ def fit_geometry(
         (:func:`error_floor`), re-weighting the pairs with it at each
         clipping round: the reference stars' errors where the caller could
         not include them, or any jitter the model lacks.
+    segment : ndarray of int, shape (n_det,), or None
+        Segment number of each detection (ingest's ``segment``); None: the
+        night is one segment.  Each segment with ``min_segment_stars``
+        matched stars gets a clock offset of its own
+        (``offsets.segment_clock``), relative to the first such segment's,
+        which is the night's ``clock_offset``; the others keep 0.
+    min_segment_stars : int
+        Fewest matched stars (pairs with a prediction) for a segment's own
+        clock offset.
 
     Returns
     -------
@@ -398,6 +504,11 @@ def fit_geometry(
     the rotation (module notes), so the fitted ``clock_offset`` is
     ``s + tau_E / w`` and the fitted ``rotation`` is
     ``rotation + tau_E tan(phi)`` for an unknown east tilt ``tau_E``.
+
+    A segment's clock offset is a constant along the scan over its rows, so
+    with segment clocks the wander along the scan has zero weighted mean
+    over each such segment's pairs (and over the other pairs together), not
+    only over the night's.
     """
     from scipy.linalg import null_space
 
@@ -418,9 +529,14 @@ def fit_geometry(
     # the prediction at ``offsets``, None once they move: the first iteration of
     # each round predicts at the geometry the round before ended with (and the
     # first round at ``start``), made already (4 of ~46 predictions a fit)
-    model = _model(predictor, tracks, offsets)
+    pred = predictor.predict(tracks, offsets)
+    ok = np.isfinite(pred.t_mid) & np.isfinite(pred.u_mean) & np.isfinite(pred.column)
+    pair_segment = None if segment is None else np.asarray(segment, dtype=np.int64)[det_index]
+    free, reference = free_segments(pair_segment, ok, min_segment_stars)
+    offsets = _segment_clocks(offsets, pair_segment, free)
+    dt = predictor.line_time * (1.0 + offsets.line_time_scale)
+    model = pred, pred.rows(predictor.n_rows, dt, offsets.clock_offsets(pair_segment)), pred.column
     pred, row, column = model
-    ok = np.isfinite(row) & np.isfinite(column)
     used = ok.copy()
     t_mid = np.where(ok, pred.t_mid, np.nanmedian(pred.t_mid) if ok.any() else 0.0)
 
@@ -432,7 +548,16 @@ def fit_geometry(
         kept = basis[np.flatnonzero(ok)]
         total = np.asarray(kept.sum(axis=0)).ravel()
         trend = np.asarray(kept.T @ tn[ok]).ravel()
-        q_row = null_space(np.vstack([total, trend]))
+        # a segment's own clock is its constant along the scan (zero weighted
+        # mean over it); with none, the night's mean is the night's clock's
+        means = [total]
+        if free:
+            own = np.isin(pair_segment, free)
+            means = [
+                np.asarray(basis[np.flatnonzero(ok & part)].sum(axis=0)).ravel()
+                for part in [~own, *(pair_segment == k for k in free)]
+            ]
+        q_row = null_space(np.vstack([*means, trend]))
         q_col = null_space(total[None, :])
         spline_q = (knots, basis, q_row, q_col)
         a = np.zeros(q_row.shape[1])
@@ -445,14 +570,18 @@ def fit_geometry(
         return basis @ (q_row @ a), basis @ (q_col @ b)
 
     values = np.array([getattr(offsets, nm) for nm in names], float)
-    full_cov = np.full((len(names), len(names)), np.nan)
+    clocks = np.array([offsets.segment_clock[k] for k in free], float)
+    n_phys = len(names) + len(free)
+    full_cov = np.full((n_phys, n_phys), np.nan)
     chi2 = np.nan
     for _round in range(10):
         for _ in range(max_iterations):
-            pred, row, column = model or _model(predictor, tracks, offsets)
+            pred, row, column = model or _model(predictor, tracks, offsets, pair_segment)
             w_r, w_c = wander_part()
             res = obs - np.r_[row + w_r, column + w_c]
-            jac = parameter_jacobian(predictor, tracks, offsets, names, pred, row, column)
+            jac = parameter_jacobian(
+                predictor, tracks, offsets, names, pred, row, column, pair_segment, free
+            )
             keep = np.r_[used, used] & np.isfinite(res) & np.isfinite(jac).all(axis=1)
             w = np.where(keep, weight, 0.0)
             res = np.where(keep, res, 0.0)
@@ -465,20 +594,22 @@ def fit_geometry(
             scaled = normal / np.outer(norm, norm)
             delta = np.linalg.lstsq(scaled, rhs / norm, rcond=1e-13)[0] / norm
             values = values + delta[: len(names)]
+            clocks = clocks + delta[len(names) : n_phys]
             offsets = dataclasses.replace(offsets, **dict(zip(names, values, strict=True)))
+            offsets = _segment_clocks(offsets, pair_segment, free, clocks)
             model = None
-            step = jac @ delta[: len(names)]
+            step = jac @ delta[:n_phys]
             if spline_q is not None:
                 _, basis, q_row, q_col = spline_q
-                d_a = delta[len(names) : len(names) + a.size]
-                d_b = delta[len(names) + a.size :]
+                d_a = delta[n_phys : n_phys + a.size]
+                d_b = delta[n_phys + a.size :]
                 a, b = a + d_a, b + d_b
                 step = step + np.r_[basis @ (q_row @ d_a), basis @ (q_col @ d_b)]
             # largest change of any position, pixels
             change = np.abs(step[keep]).max() if keep.any() else 0.0
             if change < 1e-6:
                 break
-        pred, row, column = model = model or _model(predictor, tracks, offsets)
+        pred, row, column = model = model or _model(predictor, tracks, offsets, pair_segment)
         w_r, w_c = wander_part()
         res_r = det_row[det_index] - row - w_r
         res_c = det_column[det_index] - column - w_c
@@ -517,7 +648,10 @@ def fit_geometry(
         int(used.sum()),
         n,
         chi2,
-        ", ".join(f"{nm}={v:.6g}" for nm, v in zip(names, values, strict=True)),
+        ", ".join(
+            [f"{nm}={v:.6g}" for nm, v in zip(names, values, strict=True)]
+            + [f"segment {k} clock={v:.6g}" for k, v in zip(free, clocks, strict=True)]
+        ),
     )
     return GeometryFit(
         offsets=offsets,
@@ -533,4 +667,7 @@ def fit_geometry(
         t_mid=pred.t_mid,
         chi2_reduced=chi2,
         error_floor=floor,
+        segments=free,
+        reference_segment=reference,
+        pair_segment=pair_segment,
     )

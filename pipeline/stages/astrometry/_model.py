@@ -88,6 +88,12 @@ class GeometryOffsets:
         Optical-axis tilt added to the nominal one, arcseconds.
     distortion_k1 : float
         Radial distortion added to the nominal ``k1``, rad^-2.
+    segment_clock : tuple of float
+        Seconds added to ``clock_offset`` for the rows of each of the night's
+        segments, by segment number (ingest's ``segment``; numbers beyond
+        the tuple add 0): a segment's rows are timed from its first block's
+        DATE-OBS, which may be off on its own (see
+        :mod:`~pipeline.stages.astrometry._segments`).
     """
 
     clock_offset: float = 0.0
@@ -97,6 +103,28 @@ class GeometryOffsets:
     tilt_east: float = 0.0
     tilt_north: float = 0.0
     distortion_k1: float = 0.0
+    segment_clock: tuple[float, ...] = ()
+
+    def clock_offsets(self, segment: ArrayLike | None = None) -> float | np.ndarray:
+        """The clock offset of rows in the given segments, seconds.
+
+        Parameters
+        ----------
+        segment : array_like of int or None
+            Segment number of each point; None (or no ``segment_clock``):
+            the night's ``clock_offset`` alone.
+
+        Returns
+        -------
+        float or ndarray
+            ``clock_offset`` plus each point's ``segment_clock`` entry.
+        """
+        if segment is None or not self.segment_clock:
+            return self.clock_offset
+        table = np.r_[np.asarray(self.segment_clock, dtype=float), 0.0]
+        number = np.asarray(segment, dtype=np.intp)
+        inside = (number >= 0) & (number < len(self.segment_clock))
+        return self.clock_offset + table[np.where(inside, number, -1)]
 
     def apply(self, camera: Camera, line_time: float) -> tuple[Camera, float]:
         """The camera and line time these offsets describe, for a full :class:`TDIModel`.

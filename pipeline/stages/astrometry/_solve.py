@@ -42,6 +42,7 @@ from pipeline.stages.astrometry._model import (
     PredictedCentroids,
     SkyTracks,
 )
+from pipeline.stages.astrometry._segments import NightSegments, segment_clock_records
 from pipeline.stages.astrometry._stats import residual_grid
 
 __all__ = ["AstrometricSolution", "SearchRanges", "search_geometry", "solve_night"]
@@ -242,6 +243,9 @@ def solve_night(
     fit_error_floor: bool = False,
     transparency=None,
     start: GeometryOffsets | None = None,
+    segments: NightSegments | None = None,
+    det_segment: ArrayLike | None = None,
+    min_segment_stars: int = 10,
 ) -> AstrometricSolution:
     """Solve a night's geometry from its detections and a reference catalogue.
 
@@ -289,6 +293,16 @@ def solve_night(
         Geometry of the first match (e.g. an earlier solution of the same
         night); None: the nominal one.  If it matches too few stars the
         search starts from the nominal geometry as usual.
+    segments : NightSegments or None, optional
+        The night's segments (ingest's block index): each after the first
+        with ``min_segment_stars`` matched stars gets a clock offset of its
+        own (:mod:`~pipeline.stages.astrometry._segments`); None: one clock
+        for the night.
+    det_segment : array_like of int or None, optional
+        Segment number of each detection (e.g. its stretch's); None or -1:
+        the segment of its strip row.
+    min_segment_stars : int, optional
+        Fewest matched stars for a segment's own clock offset.
 
     Returns
     -------
@@ -328,6 +342,7 @@ def solve_night(
     det_ok = np.isfinite(det_row) & np.isfinite(det_col)
     det_row = np.where(det_ok, det_row, np.nan)
     det_col = np.where(det_ok, det_col, np.nan)
+    det_seg = _segments_of(segments, det_row, det_segment)
 
     # reference stars in the band the chip may see
     rx, ry = frame.pixel_from_icrs(ref_ra, ref_dec)
@@ -357,6 +372,8 @@ def solve_night(
         pr = predictor.predict(ref_tracks, offsets)
         dt = predictor.line_time * (1.0 + offsets.line_time_scale)
         r = pr.rows(n_rows, dt, offsets.clock_offset)
+        if segments is not None and offsets.segment_clock:
+            r = pr.rows(n_rows, dt, offsets.clock_offsets(segments.of_rows(r)))
         c = pr.column
         if fit is not None and fit.wander is not None:
             w_r, w_c = fit.wander(pr.t_mid)
@@ -389,6 +406,8 @@ def solve_night(
         "parameters": parameters,
         "clip_sigma": clip_sigma,
         "fit_error_floor": fit_error_floor,
+        "segment": det_seg,
+        "min_segment_stars": min_segment_stars,
     }
     fit = None
     for knots in (None, knot_spacing, knot_spacing):
@@ -423,7 +442,23 @@ def solve_night(
         ref_tracks=ref_tracks,
         det_row=det_row,
         det_column=det_col,
+        segments=segments,
+        min_segment_stars=min_segment_stars,
     )
+
+
+def _segments_of(segments: NightSegments | None, rows, given=None) -> np.ndarray | None:
+    """Segment number of each point: ``given`` where >= 0, else that of its strip row.
+
+    None without segments.
+    """
+    if segments is None:
+        return None
+    derived = segments.of_rows(rows)
+    if given is None:
+        return derived
+    given = np.broadcast_to(np.asarray(given, dtype=np.int64), derived.shape)
+    return np.where(given >= 0, given, derived)
 
 
 def invert_groups(groups, strip_of, first=None) -> list[tuple[np.ndarray, np.ndarray]]:
@@ -503,6 +538,8 @@ class AstrometricSolution:
     ref_tracks: SkyTracks
     det_row: np.ndarray
     det_column: np.ndarray
+    segments: NightSegments | None = None
+    min_segment_stars: int = 10
 
     # ----------------------------------------------------------- parameters
     @property
@@ -587,14 +624,51 @@ class AstrometricSolution:
         )
         return out
 
+    def segment_clocks(self) -> list[dict]:
+        """Each segment's clock offset relative to the night's, in words and numbers.
+
+        One record per segment (see
+        :func:`~pipeline.stages.astrometry._segments.segment_clock_records`:
+        milliseconds, and mas along right ascension on the sky); empty
+        without segments.
+        """
+        if self.segments is None:
+            return []
+        fit = self.fit
+        errors = fit.segment_errors
+        stars = fit.segment_stars()
+        numbers = [int(k) for k in self.segments.numbers]
+        _, dec = self.frame.icrs_from_pixel(0.0, 0.5 * (self.frame.n_y - 1))
+        reference = fit.reference_segment
+        clocks = np.broadcast_to(
+            self.offsets.clock_offsets(numbers) - self.offsets.clock_offset, (len(numbers),)
+        )
+        return segment_clock_records(
+            self.segments,
+            [float(v) for v in clocks],
+            [0.0 if k == reference else errors.get(k, np.nan) for k in numbers],
+            [stars.get(k, 0) for k in numbers],
+            [k in errors for k in numbers],
+            reference=-1 if reference is None else reference,
+            min_stars=self.min_segment_stars,
+            declination=float(np.asarray(dec).ravel()[0]),
+        )
+
     # ------------------------------------------------------------- positions
     def predict_strip(self, ra: ArrayLike, dec: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
-        """Strip (row, column) at which stars are recorded in the solved geometry."""
+        """Strip (row, column) at which stars are recorded in the solved geometry.
+
+        Each star is timed by the clock of the segment whose rows it falls
+        in at the night's clock.
+        """
         x, _ = self.frame.pixel_from_icrs(ra, dec)
         tracks = self.predictor.tracks(ra, dec, self.predictor.mid_time_of_column(x))
-        return self._strip(tracks)
+        pred = self.predictor.predict(tracks, self.offsets)
+        r, c = self._strip(tracks, pred)
+        return r - self._segment_rows(_segments_of(self.segments, r)), c
 
     def _strip(self, tracks: SkyTracks, pred: PredictedCentroids | None = None):
+        """Solved strip (row, column) at the night's clock (no segment clock)."""
         if pred is None:
             pred = self.predictor.predict(tracks, self.offsets)
         r = pred.rows(self.model.n_rows, self.line_time, self.offsets.clock_offset)
@@ -603,6 +677,13 @@ class AstrometricSolution:
             w_r, w_c = self.fit.wander(pred.t_mid)
             r, c = r + w_r, c + w_c
         return r, c
+
+    def _segment_rows(self, segment: np.ndarray | None) -> np.ndarray | float:
+        """Rows by which each segment's own clock moves its points back along the scan."""
+        if segment is None or not self.offsets.segment_clock:
+            return 0.0
+        extra = self.offsets.clock_offsets(segment) - self.offsets.clock_offset
+        return extra / self.line_time
 
     def _invert(self, target_r, target_c, x, y, strip_of) -> tuple[np.ndarray, np.ndarray]:
         """Rectified ``(x, y)`` with ``strip_of(x, y) = target`` by Newton steps."""
@@ -620,48 +701,77 @@ class AstrometricSolution:
     def _nominal_strip_of_rectified(self, x, y):
         return self.predictor.strip(self.predictor.tracks_from_rectified(self.frame, x, y))
 
-    def sky_from_rectified(self, x: ArrayLike, y: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+    def sky_from_rectified(
+        self, x: ArrayLike, y: ArrayLike, segment: ArrayLike | None = None
+    ) -> tuple[np.ndarray, np.ndarray]:
         """Solved ICRS (ra, dec) of detections at night rectified pixels ``(x, y)``, degrees.
 
         The detection's strip position through the nominal geometry (where
         rectify took it from) is matched by the solved geometry plus wander
-        (Newton steps to 1e-6 px).
+        (Newton steps to 1e-6 px), timed by the clock of its segment:
+        ``segment`` (each point's segment number, e.g. its stretch's), or
+        where None or -1, the segment whose rows hold that strip position.
         """
-        ((ra, dec),) = self.sky_from_rectified_groups([(x, y)])
+        ((ra, dec),) = self.sky_from_rectified_groups([(x, y)], [segment])
         return ra, dec
 
-    def sky_from_rectified_groups(self, groups) -> list[tuple[np.ndarray, np.ndarray]]:
+    def sky_from_rectified_groups(
+        self, groups, segments=None
+    ) -> list[tuple[np.ndarray, np.ndarray]]:
         """:meth:`sky_from_rectified` of each ``(x, y)`` of ``groups``, in one pass.
 
         Each group's positions are those :meth:`sky_from_rectified` gives for
         it alone (its own Newton steps, see :func:`invert_groups`); the
         predictions of all groups are made together, which saves the fixed
         cost of each call (e.g. the WCS grids of a night's 32 stretches).
+        ``segments``: per group, the ``segment`` of :meth:`sky_from_rectified`
+        (a stretch's product lies in one segment); None: each point's own.
         """
         points = [(np.asarray(x, float).ravel(), np.asarray(y, float).ravel()) for x, y in groups]
         x = np.concatenate([x for x, _ in points])
         y = np.concatenate([y for _, y in points])
-        return self._sky_of_groups(points, x, y, *self._rectified_tracks(x, y))
+        given = None
+        if segments is not None:
+            given = np.concatenate(
+                [
+                    np.broadcast_to(np.asarray(-1 if k is None else k, dtype=np.int64), px.shape)
+                    for (px, _), k in zip(points, segments, strict=True)
+                ]
+            )
+        sky, _ = self._sky_of_groups(points, x, y, *self._rectified_tracks(x, y), given)
+        return sky
 
-    def _sky_of_groups(self, points, x, y, tracks, pred):
-        """:meth:`sky_from_rectified_groups` given the concatenated points' tracks."""
+    def _sky_of_groups(self, points, x, y, tracks, pred, segment=None):
+        """:meth:`sky_from_rectified_groups` given the concatenated points' tracks.
+
+        Also returns each point's segment number (None without segments).
+        """
         # the sky tracks of the points serve twice: the nominal strip position
         # (the target) and the solved one (the first Newton step's evaluation)
         tr, tc = self.predictor.strip(tracks)
+        seg = _segments_of(self.segments, tr, segment)
+        # a segment's own clock moves its solved rows back by _segment_rows:
+        # the point whose row at the night's clock lies that much further on
+        target = tr + self._segment_rows(seg)
         ends = np.cumsum([0] + [x.size for x, _ in points])
         parts = [slice(lo, hi) for lo, hi in itertools.pairwise(ends)]
         solved = invert_groups(
-            [(tr[p], tc[p], x[p], y[p]) for p in parts],
+            [(target[p], tc[p], x[p], y[p]) for p in parts],
             self._solved_strip_of_rectified,
             first=self._strip(tracks, pred),
         )
         ra, dec = self.frame.icrs_from_pixel(
             np.concatenate([x for x, _ in solved]), np.concatenate([y for _, y in solved])
         )
-        return [(ra[p], dec[p]) for p in parts]
+        return [(ra[p], dec[p]) for p in parts], seg
 
     def position_errors(
-        self, x: ArrayLike, y: ArrayLike, x_err: ArrayLike, y_err: ArrayLike
+        self,
+        x: ArrayLike,
+        y: ArrayLike,
+        x_err: ArrayLike,
+        y_err: ArrayLike,
+        segment: ArrayLike | None = None,
     ) -> tuple[np.ndarray, np.ndarray]:
         """1-sigma errors of solved sky positions along RA and Dec, arcseconds.
 
@@ -675,6 +785,8 @@ class AstrometricSolution:
             Night rectified pixels of the detections.
         x_err, y_err : array_like, shape (n,)
             Their 1-sigma errors, pixels.
+        segment : array_like of int or None
+            As for :meth:`sky_from_rectified`.
 
         Returns
         -------
@@ -683,10 +795,19 @@ class AstrometricSolution:
         """
         x = np.asarray(x, dtype=float).ravel()
         y = np.asarray(y, dtype=float).ravel()
-        return self._errors(x, y, x_err, y_err, *self._rectified_tracks(x, y))
+        tracks, pred = self._rectified_tracks(x, y)
+        seg = None
+        if self.segments is not None:
+            seg = _segments_of(self.segments, self.predictor.strip(tracks)[0], segment)
+        return self._errors(x, y, x_err, y_err, tracks, pred, seg)
 
     def sky_and_errors(
-        self, x: ArrayLike, y: ArrayLike, x_err: ArrayLike, y_err: ArrayLike
+        self,
+        x: ArrayLike,
+        y: ArrayLike,
+        x_err: ArrayLike,
+        y_err: ArrayLike,
+        segment: ArrayLike | None = None,
     ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """:meth:`sky_from_rectified` and :meth:`position_errors` of the same positions.
 
@@ -701,10 +822,15 @@ class AstrometricSolution:
         ra_err, dec_err : ndarray
             Arcseconds.
         """
-        return self.sky_errors_and_exposures(x, y, x_err, y_err)[:4]
+        return self.sky_errors_and_exposures(x, y, x_err, y_err, segment)[:4]
 
     def sky_errors_and_exposures(
-        self, x: ArrayLike, y: ArrayLike, x_err: ArrayLike, y_err: ArrayLike
+        self,
+        x: ArrayLike,
+        y: ArrayLike,
+        x_err: ArrayLike,
+        y_err: ArrayLike,
+        segment: ArrayLike | None = None,
     ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """:meth:`sky_and_errors` and each position's exposure, from the same tracks.
 
@@ -726,16 +852,24 @@ class AstrometricSolution:
         x = np.asarray(x, dtype=float).ravel()
         y = np.asarray(y, dtype=float).ravel()
         tracks, pred = self._rectified_tracks(x, y)
-        ((ra, dec),) = self._sky_of_groups([(x, y)], x, y, tracks, pred)
+        ((ra, dec),), seg = self._sky_of_groups([(x, y)], x, y, tracks, pred, segment)
         exposure = pred.t_end - pred.t_start
-        return ra, dec, *self._errors(x, y, x_err, y_err, tracks, pred), exposure
+        return ra, dec, *self._errors(x, y, x_err, y_err, tracks, pred, seg), exposure
 
-    def _errors(self, x, y, x_err, y_err, tracks, pred):
-        """:meth:`position_errors` given the positions' tracks and solved prediction."""
+    def _errors(self, x, y, x_err, y_err, tracks, pred, segment=None):
+        """:meth:`position_errors` given the positions' tracks, prediction and segments."""
         fit = self.fit
-        row = pred.rows(self.model.n_rows, self.line_time, self.offsets.clock_offset)
+        row = pred.rows(self.model.n_rows, self.line_time, self.offsets.clock_offsets(segment))
         jac = parameter_jacobian(
-            self.predictor, tracks, self.offsets, fit.names, pred, row, pred.column
+            self.predictor,
+            tracks,
+            self.offsets,
+            fit.names,
+            pred,
+            row,
+            pred.column,
+            segment,
+            fit.segments,
         )
         n = x.size
         cov = fit.full_covariance

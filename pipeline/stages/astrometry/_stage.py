@@ -44,6 +44,7 @@ from pipeline.stages.astrometry._second_pass import (
     kernel_change_error,
     solved_kernels_of_stretches,
 )
+from pipeline.stages.astrometry._segments import NightSegments
 from pipeline.stages.astrometry._wcs import solved_wcs, wcs_sky
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, Stage
 from pipeline.stages.catalog import stack_catalogs
@@ -140,7 +141,14 @@ def reference_columns(ref_index: np.ndarray, reference: QTable) -> dict[str, u.Q
 
 
 def stretch_wcs_cards(
-    solution, x_start: int, n_x: int, tolerance: float, sky=None, *, strict: bool = True
+    solution,
+    x_start: int,
+    n_x: int,
+    tolerance: float,
+    sky=None,
+    *,
+    strict: bool = True,
+    segment: int | None = None,
 ) -> tuple[dict[str, Any], float]:
     """FITS cards of the solved WCS of one rectified stretch, and its largest error.
 
@@ -150,6 +158,8 @@ def stretch_wcs_cards(
     solved positions do not depend on the degree: made once).  ``strict``:
     raise when no degree reaches the tolerance; False: return the closest
     of them (the caller compares ``max_error`` with ``tolerance``).
+    ``segment``: the stretch's segment number, whose clock times it (None:
+    each point's by its row).
 
     Returns
     -------
@@ -165,10 +175,12 @@ def stretch_wcs_cards(
         If no degree reaches the tolerance (the WCS would misplace stars).
     """
     if sky is None and n_x >= 2:
-        (sky,) = wcs_sky(solution, [(x_start, n_x)])
+        (sky,) = wcs_sky(solution, [(x_start, n_x)], segments=[segment])
     tried = []
     for degree in _SIP_DEGREES:
-        wcs, max_error = solved_wcs(solution, x_start, n_x, sip_degree=degree, sky=sky)
+        wcs, max_error = solved_wcs(
+            solution, x_start, n_x, sip_degree=degree, sky=sky, segment=segment
+        )
         if max_error <= tolerance:
             break
         tried.append((max_error, degree, wcs))
@@ -438,7 +450,47 @@ def error_floor_problem(floor_px: float, pixel_scale: float, limit: float) -> st
     )
 
 
-def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
+def stretch_segments(stretches, segments: NightSegments) -> dict[int, int]:
+    """Segment number of each stretch (by its index), from its first row."""
+    return {stretch.index: segments.containing(stretch.start) for stretch in stretches}
+
+
+def _catalog_segments(catalog, by_stretch: dict[int, int]) -> np.ndarray:
+    """Segment number of each catalogue row: its stretch's (-1 where not known)."""
+    index = np.asarray(catalog["stretch"], dtype=np.int64)
+    return np.array([by_stretch.get(int(k), -1) for k in index], dtype=np.int64)
+
+
+def segment_clock_problems(records: list[dict]) -> list[str]:
+    """Problem lines of the segments whose DATE-OBS the stars say is off.
+
+    Parameters
+    ----------
+    records : list of dict
+        :meth:`AstrometricSolution.segment_clocks`.
+
+    Returns
+    -------
+    list of str
+        One line per fitted segment whose clock offset lies more than 5
+        sigma (common practice) and more than 1 ms from the night's clock:
+        less is the rounding of DATE-OBS written to the millisecond.  The
+        solution corrects it; the line says by how much.
+    """
+    return [
+        f"segment {r['segment']} (rows {r['rows'][0]}-{r['rows'][1] - 1}, from "
+        f"{r['first_block']}): its {r['n_stars']} stars put its DATE-OBS "
+        f"{abs(r['offset_ms']):.1f} +- {r['offset_err_ms']:.1f} ms "
+        f"{'late' if r['offset_ms'] < 0 else 'early'} against the night's clock "
+        f"({r['ra_mas']:+.0f} mas in RA): the solution gives the segment its own clock "
+        "(parameters' segment_clocks); check the camera computer's clock, or LINETIME if "
+        "ingest finds the same jump at every block."
+        for r in records
+        if r["fitted"] and abs(r["offset_ms"]) > max(5.0 * r["offset_err_ms"], 1.0)
+    ]
+
+
+def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag, segments=None):
     """Solve, and measure again with the solved smear kernels while they differ enough.
 
     Returns the last solution, one record per pass (what the kernels
@@ -448,6 +500,25 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
     """
     catalog = inputs["catalog"]["catalog"]
     detect_options = _detect_options(catalog)
+    by_stretch = {} if segments is None else stretch_segments(stretches, segments)
+
+    def solve(catalog, options, start=None):
+        """:func:`solve_catalog` of this catalogue, each detection timed by its segment."""
+        along = {}
+        if segments is not None:
+            along = {"segments": segments, "segment": _catalog_segments(catalog, by_stretch)}
+        return solve_catalog(
+            catalog,
+            reference["ra"],
+            reference["dec"],
+            model,
+            frame,
+            options,
+            ref_mag=ref_mag,
+            start=start,
+            **along,
+        )
+
     # The stretches' smear-kernel tables (32 ECSV files of a 4096-column night,
     # ~0.4 s to parse and check against their SHA-256, mostly outside Python's
     # lock) are read in a thread while the first solution is computed: nothing
@@ -455,9 +526,7 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
     # does, whatever the solution raised.
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="astrometry-kernels") as reader:
         pending = reader.submit(_kernel_tables, inputs["rectify"], len(stretches))
-        first = solve_catalog(
-            catalog, reference["ra"], reference["dec"], model, frame, options, ref_mag=ref_mag
-        )
+        first = solve(catalog, options)
         kernels = pending.result()
     passes, start = [], None
     # The next pass's kernels follow a fit weighted by the given errors alone:
@@ -473,16 +542,7 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
         if first is not None:
             solved, first = first, None
         else:
-            solved = solve_catalog(
-                catalog,
-                reference["ra"],
-                reference["dec"],
-                model,
-                frame,
-                options,
-                ref_mag=ref_mag,
-                start=start,
-            )
+            solved = solve(catalog, options, start)
         nodes: dict = {}  # the nominal map's node columns, shared by every stretch's kernels
         new = solved_kernels_of_stretches(kernels, solved.solution, model, frame, nodes=nodes)
         changes = [kernel_change(a, b) for a, b in zip(kernels, new, strict=True)]
@@ -510,7 +570,8 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
             "error_floor_px": round(float(solved.solution.fit.error_floor), 4),
             "threshold_px": round(threshold, 4),
             "geometry": {
-                k: float(v) for k, v in dataclasses.asdict(solved.solution.offsets).items()
+                k: [float(e) for e in v] if isinstance(v, tuple) else float(v)
+                for k, v in dataclasses.asdict(solved.solution.offsets).items()
             },
         }
         wanted = kernels_differ(change, error, threshold)
@@ -535,16 +596,7 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag):
             return solved, passes, problems
         guide = solved
         if options.fit_error_floor:  # only a pass that is followed needs it
-            guide = solve_catalog(
-                catalog,
-                reference["ra"],
-                reference["dec"],
-                model,
-                frame,
-                unfloored,
-                ref_mag=ref_mag,
-                start=solved.solution.offsets,
-            )
+            guide = solve(catalog, unfloored, solved.solution.offsets)
             new = solved_kernels_of_stretches(kernels, guide.solution, model, frame)
         kernels = new
         catalog = _remeasure(inputs, stretches, kernels, detect_options)
@@ -572,8 +624,9 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
     ref_mag = None
     if "mag" in reference.colnames:
         ref_mag = u.Quantity(reference["mag"], u.mag).value
+    segments = NightSegments.from_block_index(inputs["ingest"][BLOCK_INDEX])
     solved, passes, problems = _solve_passes(
-        inputs, stretches, model, frame, options, reference, ref_mag
+        inputs, stretches, model, frame, options, reference, ref_mag, segments
     )
     floor = error_floor_problem(
         float(solved.solution.fit.error_floor), scale, options.max_error_floor
@@ -590,8 +643,12 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
     ]
     products = [(stretch, start, n_x) for stretch, start, n_x in products if n_x > 1]
     # every stretch's solved points in one pass (the fixed cost of each pass is ~5 ms)
-    skies = wcs_sky(solved.solution, [(start, n_x) for _, start, n_x in products])
-    problems = []
+    by_stretch = stretch_segments(stretches, segments)
+    skies = wcs_sky(
+        solved.solution,
+        [(start, n_x) for _, start, n_x in products],
+        segments=[by_stretch[stretch.index] for stretch, _, _ in products],
+    )
     for (stretch, start, n_x), sky in zip(products, skies, strict=True):
         # A stretch whose WCS cannot follow the solution (the start-of-scan ramp,
         # a transparency step) keeps its closest WCS and is reported: failing the
@@ -610,6 +667,26 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
                 "stages.astrometry.wcs_tolerance."
             )
     problems.extend(unmatched_stretches(catalog, [s.id for s in stretches]))
+    clocks = solved.parameters.meta.get("segment_clocks", [])
+    for record in clocks if len(clocks) > 1 else []:
+        where = "segment {} (rows {}-{}, {})".format(
+            record["segment"], record["rows"][0], record["rows"][1] - 1, record["first_block"]
+        )
+        if record["fitted"]:
+            log.info(
+                "%s: clock %+.2f +- %.2f ms (%+.1f +- %.1f mas in RA), %s",
+                where,
+                record["offset_ms"],
+                record["offset_err_ms"],
+                record["ra_mas"],
+                record["ra_err_mas"],
+                record["note"],
+            )
+        elif record["reference"]:
+            log.info("%s: %s", where, record["note"])
+        else:
+            log.warning("%s: %s", where, record["note"])
+    problems.extend(segment_clock_problems(clocks))
     parameters = solved.parameters
     parameters.meta["wcs_max_deviation_px"] = worst
     parameters.meta["passes"] = passes
@@ -658,6 +735,8 @@ STAGE = Stage(
     ),
     # 2: the stretch WCSs fitted linearly (closer to the solution); 3: a pass
     # stopped by max_passes (or deconvolved products) is recorded as such;
-    # parameters record focal_length_given
-    version=3,
+    # parameters record focal_length_given; 4: a clock offset per segment after a
+    # gap (parameters' segment_clocks), the stretch WCSs timed by their segment's;
+    # the passes' and the error floor's problems are no longer dropped
+    version=4,
 )

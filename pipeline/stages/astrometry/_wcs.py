@@ -43,7 +43,9 @@ def _points(n_x: int, n_y: int, n_grid: int) -> list[tuple[np.ndarray, np.ndarra
     return [_grid(n_x, n_y, n_grid, 0.0), reference, _grid(n_x, n_y, 2 * n_grid, 0.25)]
 
 
-def wcs_sky(solution, products, *, n_grid: int = 16) -> list[list[tuple[np.ndarray, np.ndarray]]]:
+def wcs_sky(
+    solution, products, *, n_grid: int = 16, segments=None
+) -> list[list[tuple[np.ndarray, np.ndarray]]]:
     """The solved sky of the points :func:`solved_wcs` fits and checks, for many products.
 
     Parameters
@@ -54,6 +56,9 @@ def wcs_sky(solution, products, *, n_grid: int = 16) -> list[list[tuple[np.ndarr
         ``(x_start, n_x)`` of each product (see :func:`solved_wcs`).
     n_grid : int, optional
         As for :func:`solved_wcs`.
+    segments : sequence of (int or None), optional
+        Per product, the segment number whose clock times it (a stretch lies
+        in one segment); None: each point's by its row.
 
     Returns
     -------
@@ -67,12 +72,20 @@ def wcs_sky(solution, products, *, n_grid: int = 16) -> list[list[tuple[np.ndarr
     groups = [
         (px + x_start, py) for x_start, n_x in products for px, py in _points(n_x, n_y, n_grid)
     ]
-    sky = solution.sky_from_rectified_groups(groups)
+    per_group = None if segments is None else [k for k in segments for _ in range(3)]
+    sky = solution.sky_from_rectified_groups(groups, per_group)
     return [sky[3 * i : 3 * i + 3] for i in range(len(products))]
 
 
 def solved_wcs(
-    solution, x_start: int, n_x: int, *, sip_degree: int = 3, n_grid: int = 16, sky=None
+    solution,
+    x_start: int,
+    n_x: int,
+    *,
+    sip_degree: int = 3,
+    n_grid: int = 16,
+    sky=None,
+    segment: int | None = None,
 ) -> tuple[WCS, float]:
     """A TAN-SIP WCS of the product whose first column is night column ``x_start``.
 
@@ -90,6 +103,9 @@ def solved_wcs(
     sky : list or None, optional
         The product's item of :func:`wcs_sky` (same ``n_grid``), if made
         already; None: computed here.
+    segment : int or None, optional
+        The product's segment number, whose clock times it (see
+        :func:`wcs_sky`); None: each point's by its row.
 
     Returns
     -------
@@ -104,7 +120,7 @@ def solved_wcs(
     n_y = solution.frame.n_y
     (px, py), (ref_x, ref_y), (cx, cy) = _points(n_x, n_y, n_grid)
     if sky is None:
-        (sky,) = wcs_sky(solution, [(x_start, n_x)], n_grid=n_grid)
+        (sky,) = wcs_sky(solution, [(x_start, n_x)], n_grid=n_grid, segments=[segment])
     (ra, dec), (ref_ra, ref_dec), (check_ra, check_dec) = sky
     wcs = _fit_tan_sip(px, py, ra, dec, (ref_x[0], ref_y[0]), (ref_ra[0], ref_dec[0]), sip_degree)
     wcs.pixel_shape = (int(n_x), int(n_y))

@@ -50,6 +50,7 @@ hands the stage headers and rows); :func:`parse_block_header`,
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
@@ -65,6 +66,7 @@ from pipeline.exceptions import IngestError
 from pipeline.geometry.instrument import Site
 from pipeline.runner._rawio import read_block_readout_rows, read_raw_files
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, RAW_FILES, PixelSummary, RawFile, Stage
+from pipeline.stages.ingest._clock import Boundary, find_clock_drift
 from pipeline.stages.ingest._header import (
     KEYWORDS,
     BlockInfo,
@@ -420,6 +422,7 @@ def index_night(
     *,
     tolerance_rows: float = 0.5,
     start_ramp: StartRamp = "night",
+    line_time_from_stamps: bool = False,
 ) -> NightIndex:
     """Order good blocks by time, give each its night rows and check continuity.
 
@@ -437,6 +440,11 @@ def index_night(
         (and went on through any gap), again at the start of every segment
         (clocking restarted after each gap), or before the first block (the
         data hold no partly exposed rows).  Sets the ``clock_row`` column.
+    line_time_from_stamps : bool
+        When the block boundaries show a camera clock off its LINETIME (the
+        same gap or overlap at every block, :mod:`._clock`), index the night
+        again with the line time the DATE-OBS stamps imply for those blocks:
+        they join up, and that line time is the night's.
 
     Returns
     -------
@@ -452,6 +460,8 @@ def index_night(
     rows: list[dict[str, Any]] = []
     reference = blocks[0].date_obs if blocks else None
     segment = 0
+    boundaries: list[Boundary] = []  # every join, for the clock's pattern (._clock)
+    off_lines: dict[int, int] = {}  # boundary -> its gap or overlap line in problems
     for block in blocks:
         t_start = float((block.date_obs - reference).sec)
         if not kept:
@@ -469,12 +479,33 @@ def index_night(
                 f"{block.block_seq}); left out."
             )
             continue
-        new_segment = _continuity(block, prev, offset, tolerance_rows, problems, main_format)
+        new_segment = _continuity(block, prev, problems, main_format)
+        apart, line, off = _join(block, prev, offset, tolerance_rows)
+        if off:
+            off_lines[len(boundaries)] = len(problems)
+        if line is not None:
+            problems.append(line)
+        boundaries.append(
+            Boundary(
+                before=prev.name,
+                after=block.name,
+                offset=float(offset),
+                rows=int(prev.n_rows),
+                seconds=float(t_start - prev_row["t_start"]),
+                line_time=float(prev.line_time),
+                follows=block.block_seq - prev.block_seq == 1
+                and bool(np.isclose(block.line_time, prev.line_time, rtol=1e-9, atol=0)),
+            )
+        )
+        new_segment = new_segment or apart
         segment += new_segment
         row_start = prev_row["row_start"] + prev.n_rows + round(offset)
         segment_row = 0 if new_segment else prev_row["segment_row"] + prev.n_rows
         rows.append(_index_row(block, t_start, row_start, segment, segment_row))
         kept.append(block)
+    drift = _one_clock_fault(problems, boundaries, off_lines, tolerance_rows)
+    if drift is not None and line_time_from_stamps:
+        return _indexed_at(drift, blocks, rejected, tolerance_rows, start_ramp)
     if start_ramp not in ("night", "segment", "none"):
         raise ValueError(f"start_ramp must be 'night', 'segment' or 'none'; got {start_ramp!r}.")
     for row in rows:
@@ -515,8 +546,8 @@ def _main_format(blocks: Sequence[BlockInfo]) -> tuple[int, tuple, tuple] | None
     return max(formats, key=formats.count) if formats else None
 
 
-def _continuity(block, prev, offset, tolerance_rows, problems, main_format) -> bool:
-    """Append problems between ``prev`` and ``block``; True if a new segment starts.
+def _continuity(block, prev, problems, main_format) -> bool:
+    """Append format and setting problems between ``prev`` and ``block``; True: new segment.
 
     A change of camera format names the block whose format differs from the
     night's main format (``main_format``), not the block that returns to it.
@@ -558,27 +589,84 @@ def _continuity(block, prev, offset, tolerance_rows, problems, main_format) -> b
             f"{block.name}: readout changed mid-night ({'; '.join(readout)}); calibrated with "
             "its own values: check the header if the camera's readout mode did not change."
         )
+    return new_segment
+
+
+def _join(block, prev, offset, tolerance_rows) -> tuple[bool, str | None, bool]:
+    """Whether ``block`` joins ``prev`` in time: ``(new_segment, problem, off)``.
+
+    ``off``: the problem is a gap or an overlap (a boundary off in time).
+    """
     seq_step = block.block_seq - prev.block_seq
     if offset > tolerance_rows:
         missing = offset / (block.n_rows + block.lost_rows)  # in blocks of its header's size
-        problems.append(
+        return (
+            True,
             f"{block.name}: gap of {offset:.1f} rows ({offset * prev.line_time:.2f} s, "
             f"about {missing:.2f} block(s); BLOCKSEQ {prev.block_seq} -> {block.block_seq}) "
-            f"after {prev.name}; new segment."
+            f"after {prev.name}; new segment.",
+            True,
         )
-        new_segment = True
-    elif offset < -tolerance_rows:
-        problems.append(
+    if offset < -tolerance_rows:
+        return (
+            True,
             f"{block.name}: starts {-offset:.1f} rows ({-offset * prev.line_time:.2f} s) "
-            f"before the end of {prev.name} (overlap); its rows win; new segment."
+            f"before the end of {prev.name} (overlap); its rows win; new segment.",
+            True,
         )
-        new_segment = True
-    elif seq_step != 1:
-        problems.append(
+    if seq_step != 1:
+        return (
+            False,
             f"{block.name}: BLOCKSEQ {prev.block_seq} -> {block.block_seq} but the times of "
-            f"{prev.name} and {block.name} join up (clock or numbering error?)."
+            f"{prev.name} and {block.name} join up (clock or numbering error?).",
+            False,
         )
-    return new_segment
+    return False, None, False
+
+
+def _one_clock_fault(problems: list[str], boundaries, off_lines: dict, tolerance_rows):
+    """Replace the gap and overlap lines of a clock that is not LINETIME by one line.
+
+    ``off_lines``: boundary index -> index of its gap or overlap line in
+    ``problems`` (see :mod:`._clock`).  The per-boundary lines are logged at
+    debug level instead.  Returns the :class:`~._clock.ClockDrift`, or None.
+    """
+    drift = find_clock_drift(boundaries, tolerance_rows)
+    if drift is None:
+        return None
+    replaced = sorted(off_lines[i] for i in drift.members if i in off_lines)
+    if not replaced:
+        return None
+    for k in replaced:
+        log.debug("%s", problems[k])
+    line = drift.describe(boundaries, tolerance_rows)
+    kept = [p for k, p in enumerate(problems) if k not in set(replaced)]
+    kept.insert(replaced[0], line)
+    problems[:] = kept
+    return drift
+
+
+def _indexed_at(drift, blocks, rejected, tolerance_rows, start_ramp) -> NightIndex:
+    """The night indexed again with the line time the stamps imply (``line_time_from_stamps``).
+
+    Blocks whose LINETIME is the drifting one take the implied line time;
+    the first problem line says so.
+    """
+    header = drift.header_line_time
+    again = [
+        dataclasses.replace(b, line_time=drift.line_time)
+        if np.isclose(b.line_time, header, rtol=1e-9, atol=0)
+        else b
+        for b in blocks
+    ]
+    night = index_night(again, rejected, tolerance_rows=tolerance_rows, start_ramp=start_ramp)
+    night.problems.insert(
+        0,
+        f"LINETIME {header:.9g} s taken as {drift.line_time:.9g} s, the line time the "
+        f"DATE-OBS stamps imply ({drift.relative * 1e6:+.0f} ppm; "
+        "stages.ingest.line_time_from_stamps): the camera's clock is not its LINETIME.",
+    )
+    return night
 
 
 def _index_row(block: BlockInfo, t_start, row_start, segment, segment_row) -> dict[str, Any]:
@@ -720,6 +808,12 @@ class IngestOptions(BaseModel):
     tolerance_rows: float = Field(
         0.5, ge=0, description="Largest DATE-OBS mismatch, in rows, still contiguous."
     )
+    line_time_from_stamps: bool = Field(
+        False,
+        description="When every block boundary shows the same camera clock off LINETIME "
+        "(a gap or overlap of the same size at every block), index the night with the line "
+        "time the DATE-OBS stamps imply instead of LINETIME.",
+    )
     start_ramp: StartRamp = Field(
         "night",
         description="Where charge clocking started: with the night's first block ('night'), "
@@ -772,7 +866,11 @@ def ingest_files(
         except IngestError as exc:
             rejected.append(str(exc))
     night = index_night(
-        infos, rejected, tolerance_rows=options.tolerance_rows, start_ramp=options.start_ramp
+        infos,
+        rejected,
+        tolerance_rows=options.tolerance_rows,
+        start_ramp=options.start_ramp,
+        line_time_from_stamps=options.line_time_from_stamps,
     )
     # A cut file's line goes first: the gap after it, reported by the index, follows from it.
     cut = lost_rows_problems(night, infos, flip_rows)
@@ -866,5 +964,8 @@ STAGE = Stage(
     # instead of being rejected whole; the camera format is the sections'
     # columns (a shorter block, or spaces in DATASEC, is no new format); an
     # image extension with INHERIT = T takes the primary header's keywords
-    version=7,
+    # 8: a camera clock off its LINETIME (the same gap or overlap at every block)
+    # is one problem with the line time the DATE-OBS stamps imply (and, with
+    # line_time_from_stamps, the night's line time)
+    version=8,
 )

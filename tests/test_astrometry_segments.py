@@ -1,0 +1,280 @@
+"""A clock offset per segment in the astrometric solution (gaps split a night).
+
+The sky truth is a full :class:`~pipeline.geometry.TDIModel` (astropy/ERFA
+for the sky <-> focal plane map); the nights are synthetic
+(``tests/_astrometry_scene.py``: invented stars, a gap, and a DATE-OBS
+after it that is off by a planted amount).
+"""
+
+from __future__ import annotations
+
+import erfa
+import numpy as np
+import pytest
+from astropy.table import Table
+
+from pipeline.geometry.optics import ARCSEC_PER_RADIAN, EARTH_ROTATION_RATE
+from pipeline.stages.astrometry import GeometryOffsets, solved_wcs
+from pipeline.stages.astrometry._segments import NightSegments, segment_clock_records
+from tests._astrometry_scene import make_night, solve_scene
+
+#: The night's clock is right, the line time 20 ppm off the header's: the
+#: segment clock is what is tested.
+OFFSETS = GeometryOffsets(clock_offset=0.3, line_time_scale=20e-6, focal_scale=0.002)
+#: The second segment's rows were read 40 ms before their header times (its
+#: first DATE-OBS is 40 ms late): 0.4 rows of this chip, 0.39" at latitude 50.
+SEGMENT_CLOCK = -0.040
+GAP = (7000, 7400)
+
+
+def _solve(night, **kwargs):
+    return solve_scene(night, knot_spacing=120.0, **kwargs)
+
+
+def _along_ra(night, solution, segment=None):
+    """Solved minus true RA of the real detections, mas on the sky, and their segment."""
+    real = night.star >= 0
+    ra, _ = solution.sky_from_rectified(
+        night.x[real], night.y[real], None if segment is None else segment[real]
+    )
+    ra_t, dec_t = night.ref_ra[night.star[real]], night.ref_dec[night.star[real]]
+    d_ra = ((ra - ra_t + 180.0) % 360.0 - 180.0) * np.cos(np.radians(dec_t)) * 3.6e6
+    noise = night.sigma * night.frame.cdelt1 * np.cos(np.radians(dec_t)) * 3.6e6
+    return d_ra, noise, night.segment[real]
+
+
+@pytest.fixture(scope="module")
+def gap_night():
+    return make_night(
+        50.0, offsets=OFFSETS, gap=GAP, segment_clock=SEGMENT_CLOCK, n_stars=2500, seed=11
+    )
+
+
+def test_the_fit_recovers_a_segment_s_clock_offset(gap_night):
+    """The planted 40 ms comes back within its stated error, and the stars with it."""
+    night = gap_night
+    solution = _solve(night, segments=night.segments, det_segment=night.segment)
+    fit = solution.fit
+    assert fit.segments == (1,) and fit.reference_segment == 0
+    error = fit.segment_errors[1]
+    fitted = solution.offsets.segment_clock[1]
+    # within 3 of its stated errors (common practice), and the error itself
+    # small: ~1000 stars at 0.01 px measure 0.4 rows to ~1e-3 of it
+    assert abs(fitted - SEGMENT_CLOCK) < 3.0 * error
+    assert error < 1e-3 * abs(SEGMENT_CLOCK) * 10
+    # the night's clock is the first segment's, as planted
+    dt = night.nominal.line_time
+    assert abs(solution.offsets.clock_offset - OFFSETS.clock_offset) / dt < 0.01
+    # the second segment's stars as well placed as the first's: no mean
+    # offset beyond 3 standard errors, scatter at the centroid noise (1.2:
+    # the bound of the astrometry tests)
+    d_ra, noise, segment = _along_ra(night, solution, night.segment)
+    for k in (0, 1):
+        part = segment == k
+        assert abs(np.mean(d_ra[part])) < 3.0 * np.std(d_ra[part]) / np.sqrt(part.sum())
+        assert np.sqrt(np.mean((d_ra[part] / noise[part]) ** 2)) < 1.2
+    # a product of the second segment: its WCS reproduces the solution
+    x_start = int(np.nanpercentile(night.x[night.segment == 1], 50))
+    _, max_error = solved_wcs(solution, x_start, 512, segment=1)
+    assert max_error < 0.02
+    # the records: value and error in ms and in mas of RA on the sky
+    (first, second) = solution.segment_clocks()
+    assert not first["fitted"] and "night's clock" in first["note"]
+    assert second["fitted"] and second["n_stars"] > 500
+    assert second["offset_ms"] == pytest.approx(fitted * 1e3)
+    assert second["offset_err_ms"] == pytest.approx(error * 1e3)
+    cos_dec = np.cos(np.radians(np.median(night.ref_dec)))
+    # 15.04 "/s of RA per second of time at the sidereal rate
+    assert second["ra_mas"] == pytest.approx(fitted * 15041.07 * cos_dec, rel=1e-3)
+
+
+def test_without_its_own_clock_the_segment_is_off(gap_night):
+    """The same night with too few stars allowed per segment: its stars are off."""
+    night = gap_night
+    solution = _solve(
+        night, segments=night.segments, det_segment=night.segment, min_segment_stars=10**6
+    )
+    assert solution.fit.segments == ()
+    (_, second) = solution.segment_clocks()
+    assert not second["fitted"] and "fewer than min_segment_stars=1000000" in second["note"]
+    d_ra, noise, segment = _along_ra(night, solution, night.segment)
+    # the wander (knots every 120 s) bends around most of the 0.41" step at
+    # the gap, but not all: the stars after it at more than twice their noise
+    part = segment == 1
+    assert np.sqrt(np.mean((d_ra[part] / noise[part]) ** 2)) > 2.0
+
+
+def test_a_night_without_gaps_is_unchanged():
+    """One segment: the same fit, bit for bit, as a night solved without segments."""
+    night = make_night(50.0, offsets=OFFSETS, n_stars=1500, seed=12, duration=900.0)
+    plain = _solve(night)
+    n_rows = int(night.frame.n_x)
+    one = NightSegments(numbers=np.array([0]), starts=np.array([0]), stops=np.array([n_rows]))
+    segmented = _solve(night, segments=one)
+    assert segmented.fit.segments == ()
+    for name in ("clock_offset", "line_time_scale", "focal_scale", "rotation", "tilt_north"):
+        assert getattr(segmented.offsets, name) == getattr(plain.offsets, name)
+    np.testing.assert_array_equal(segmented.fit.full_covariance, plain.fit.full_covariance)
+    real = night.star >= 0
+    np.testing.assert_array_equal(
+        segmented.sky_from_rectified(night.x[real], night.y[real])[0],
+        plain.sky_from_rectified(night.x[real], night.y[real])[0],
+    )
+    (record,) = segmented.segment_clocks()
+    assert record["offset_ms"] == 0.0 and "night's clock" in record["note"]
+
+
+def test_a_right_clock_after_a_gap_fits_zero_and_costs_nothing():
+    """No planted offset: the segment's clock is 0 within its error, positions as good."""
+    night = make_night(50.0, offsets=OFFSETS, gap=GAP, n_stars=2500, seed=11)
+    plain = _solve(night)
+    solution = _solve(night, segments=night.segments, det_segment=night.segment)
+    error = solution.fit.segment_errors[1]
+    assert abs(solution.offsets.segment_clock[1]) < 3.0 * error
+    d_ra, noise, _ = _along_ra(night, solution, night.segment)
+    d_plain, _, _ = _along_ra(night, plain)
+    # one more parameter among ~1000 stars: the rms of the pulls changes by
+    # well under 1 %
+    rms = np.sqrt(np.mean((d_ra / noise) ** 2))
+    assert rms < 1.01 * np.sqrt(np.mean((d_plain / noise) ** 2))
+
+
+def test_segments_of_rows():
+    """Rows in a segment, in a gap (the nearer segment) and in an overlap (the later)."""
+    index = Table(
+        {
+            "file": ["a", "b", "c", "d"],
+            "row_start": [0, 100, 300, 395],
+            "n_rows": [100, 100, 100, 100],
+            "segment": [0, 0, 1, 2],
+            "date_obs": ["t0", "t1", "t2", "t3"],
+        }
+    )
+    segments = NightSegments.from_block_index(index)
+    assert list(segments.starts) == [0, 300, 395] and list(segments.stops) == [200, 400, 495]
+    assert segments.first_blocks == ("a", "c", "d")
+    rows = [0.0, 199.0, 230.0, 270.0, 396.0, 600.0, np.nan]
+    assert list(segments.of_rows(rows)) == [0, 0, 0, 1, 2, 2, 0]
+    # tie at the gap's middle: the later segment
+    assert segments.containing(249.5) == 1
+
+
+def test_the_rate_of_right_ascension_is_erfa_s():
+    """A clock offset of 1 s moves the sky by the Earth rotation angle's rate (ERFA's era00)."""
+    # the Earth rotation angle (IERS Conventions 2010) over one UT1 second, by ERFA
+    day = 2461000.5
+    rate = (erfa.era00(day, 0.5 + 1.0 / 86400.0) - erfa.era00(day, 0.5)) / 1.0
+    assert rate == pytest.approx(EARTH_ROTATION_RATE, rel=1e-9)
+    one = NightSegments(numbers=np.array([0, 1]), starts=np.array([0, 10]), stops=[5, 20])
+    (_, second) = segment_clock_records(
+        one, [0.0, 1.0], [0.0, 0.1], [5, 50], [False, True], reference=0, min_stars=10,
+        declination=60.0,
+    )  # fmt: skip
+    assert second["ra_mas"] == pytest.approx(rate * ARCSEC_PER_RADIAN * 1e3 * 0.5, rel=1e-9)
+    assert second["ra_err_mas"] == pytest.approx(0.1 * second["ra_mas"], rel=1e-9)
+
+
+def test_segment_clock_problems_name_the_segment_and_the_size():
+    """A fitted offset beyond 5 sigma and 1 ms is a problem line; within, none."""
+    from pipeline.stages.astrometry._stage import segment_clock_problems
+
+    record = {
+        "segment": 1,
+        "rows": [3071, 5119],
+        "first_block": "block_0003.fits",
+        "n_stars": 260,
+        "reference": False,
+        "fitted": True,
+        "offset_ms": 49.54,
+        "offset_err_ms": 0.2,
+        "ra_mas": 528.2,
+    }
+    (line,) = segment_clock_problems([record])
+    assert line.startswith("segment 1 (rows 3071-5118, from block_0003.fits): its 260 stars")
+    assert "DATE-OBS 49.5 +- 0.2 ms early against the night's clock (+528 mas in RA)" in line
+    late = record | {"offset_ms": -30.3, "ra_mas": -323.0}
+    assert "30.3 +- 0.2 ms late" in segment_clock_problems([late])[0]
+    # within 5 sigma, or within the millisecond DATE-OBS is written to
+    assert segment_clock_problems([record | {"offset_ms": 0.9, "offset_err_ms": 0.01}]) == []
+    assert segment_clock_problems([record | {"offset_ms": 4.0, "offset_err_ms": 1.0}]) == []
+    assert segment_clock_problems([record | {"fitted": False}]) == []
+
+
+def test_a_night_whose_dates_jump_after_a_gap(tmp_path, capsys):
+    """A simulated night with a missing block whose next blocks were stamped 50 ms
+    early: the stage fits the segment's clock (+50 ms: rows read later than
+    stamped), says so, and the solved positions after the gap follow the truth.
+    Invented night (pipeline.simulate), self-consistency."""
+    import yaml
+    from astropy.io import fits
+    from astropy.table import QTable
+    from astropy.time import Time, TimeDelta
+
+    from pipeline.cli import main
+    from tests._mis_set_night import solved_minus_truth
+
+    config = {
+        "night": {"name": "n", "raw_dir": "raw", "pattern": "block_*.fits", "output_dir": "out"},
+        "site": {"latitude": 45.0, "longitude": 12.5, "height": 1500.0},
+        "camera": {"n_columns": 512, "tdi_rows": 512, "pixel_size": 15.0, "focal_length": 6.0},
+        "run": {"stretch_rows": 512, "overlap_rows": 64, "executor": "serial"},
+        "simulate": {
+            "seed": 45,
+            "start": "2026-11-02T21:10:00",
+            "n_blocks": 5,
+            "block_rows": 512,
+            "overscan_columns": 8,
+            "compress": False,
+            "missing_blocks": [2],
+            "stars": {"density": 60000.0, "mag_bright": 15.0, "mag_faint": 22.0},
+        },
+        "stages": {
+            "ingest": {"start_ramp": "none"},
+            "column_stats": {"block_rows": 64},
+            "columns": {"min_blocks": 4},
+            "astrometry": {
+                "reference_error": 5.0,
+                "reference": {
+                    "source": "file",
+                    "path": "raw/reference.ecsv",
+                    "columns": {"pm_ra": "pmra", "pm_dec": "pmdec"},
+                    "epoch": 2016.0,
+                },
+            },
+        },
+    }
+    path = tmp_path / "night.yaml"
+    path.write_text(yaml.safe_dump(config))
+    assert main(["simulate", str(path)]) == 0
+    for block in (3, 4):  # the camera computer's clock jumped during the gap
+        with fits.open(tmp_path / f"raw/block_000{block}.fits", mode="update") as hdul:
+            stamp = Time(hdul[0].header["DATE-OBS"], scale="utc") - TimeDelta(0.050, format="sec")
+            hdul[0].header["DATE-OBS"] = stamp.isot
+    capsys.readouterr()
+    assert main(["run", str(path), "--to", "astrometry"]) == 1  # the gap is a problem
+    out = capsys.readouterr().out
+    assert "problem: astrometry/night: segment 1 (rows " in out, out
+    assert "ms early against the night's clock" in out
+    parameters = QTable.read(tmp_path / "out/n/astrometry/night/parameters.ecsv")
+    first, second = parameters.meta["segment_clocks"]
+    assert first["reference"] and second["fitted"] and second["first_block"] == "block_0003.fits"
+    # 50 ms within 3 of its stated errors and the half millisecond of DATE-OBS
+    # written to the millisecond (the simulator's start of block 3 is not on one)
+    assert abs(second["offset_ms"] - 50.0) < 3.0 * second["offset_err_ms"] + 0.5
+    catalog = QTable.read(tmp_path / "out/n/astrometry/night/catalog.ecsv")
+    truth = Table.read(tmp_path / "raw/truth.ecsv")
+    bright = (catalog["snr"] > 30) & (catalog["flags"] == 0)
+    near, d_ra, _, _ = solved_minus_truth(catalog[bright], truth)
+    after = np.asarray(catalog[bright]["stretch"])[near] >= 2  # stretches 2, 3: segment 1
+    # the 0.53" the clock moved them is gone: the mean within 3 standard errors
+    # of zero plus the 5.3 mas of half a millisecond (the rounding of a
+    # DATE-OBS written to the millisecond, at 10.6 "/s)
+    error = np.std(d_ra[after]) / np.sqrt(after.sum())
+    assert abs(np.mean(d_ra[after])) < 3.0 * error + 5.3, (np.mean(d_ra[after]), error)
+    # and on both sides of the gap the scatter is what the stated errors say
+    # (measured pulls 1.1 and 1.4; without a clock of its own the segment's
+    # step bent the night's wander and both sides came out at 5)
+    ra_err = catalog[bright]["ra_err"].to_value("mas")[near]
+    for side in (after, ~after):
+        assert np.sqrt(np.mean((d_ra[side] / ra_err[side]) ** 2)) < 2.0
+    assert after.sum() > 30  # enough stars to say so
