@@ -1305,6 +1305,8 @@ STAGE = Stage(
     #     and put into the variance (products of deconvolved stretches only)
     # 13: a crowded field's seeing from the stars fitted alone when fewer
     #     than SEEING_STARS_CROWDED are far from every other source
-    version=13,
+    # 14: EDGE for pixels without data in the core only (in the wings alone,
+    #     NEAR_FLAGGED): a bad column no longer costs its neighbours' stars
+    version=14,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

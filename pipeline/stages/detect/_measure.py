@@ -42,7 +42,11 @@ class SourceFlag(enum.IntFlag):
     BLENDED
         Fitted together with other sources of the same deblended segment.
     EDGE
-        The stamp is cut by the image edge or contains no-data pixels.
+        The stamp is cut by the image edge or reaches the chip's outside or
+        a gap in the night's rows, or a pixel without data (a bad column, a
+        non-finite raw pixel) lies in the star's core.  Such pixels in the
+        wings alone (NEAR_FLAGGED) cost the fit their weight, not its
+        accuracy.
     COSMIC_RAY
         A pixel flagged as a cosmic-ray hit lies in the star's core.
     OVERLAP
@@ -274,7 +278,8 @@ def _flags_for(mask, core, stamp_box, clipped, blended) -> int:
 
 # The bits as plain ints: an IntFlag's ``|`` and ``&`` are Python calls (0.14 s
 # of CPU per crowded stretch's 3600 sources).
-_NO_DATA_BITS = int(MaskBit.OUTSIDE | MaskBit.GAP | MaskBit.NONFINITE)
+_EDGE_BITS = int(MaskBit.OUTSIDE | MaskBit.GAP)
+_NONFINITE_BIT = int(MaskBit.NONFINITE)
 _SATURATED_BITS = int(MaskBit.SATURATED | MaskBit.BLEED)
 _COSMIC_RAY_BIT = int(MaskBit.COSMIC_RAY)
 _EDGE, _NEAR_FLAGGED = int(SourceFlag.EDGE), int(SourceFlag.NEAR_FLAGGED)
@@ -286,7 +291,7 @@ _FIT_FAILED, _UNRESOLVED = int(SourceFlag.FIT_FAILED), int(SourceFlag.UNRESOLVED
 def _flags_from_bits(stamp_bits: int, core_bits: int, clipped, blended) -> int:
     """The flags of a star from the OR of the mask bits over its stamp and its core."""
     flags = 0
-    if stamp_bits & _NO_DATA_BITS or clipped:
+    if clipped or stamp_bits & _EDGE_BITS or core_bits & _NONFINITE_BIT:
         flags |= _EDGE
     if stamp_bits:
         flags |= _NEAR_FLAGGED
