@@ -1373,6 +1373,39 @@ def test_a_damaged_product_is_found_reported_and_recomputed(toy, tmp_path) -> No
     assert night_status(config, verify=True).complete
 
 
+def test_a_product_removed_or_resized_by_hand_is_damaged_not_missing(toy, tmp_path) -> None:
+    """A product file deleted, or edited to another size, after its unit was made
+    is named by the status and reported by the run (exit 1), not silently
+    redone as if the unit had never run."""
+    make_config, _ = toy
+    config = make_config()
+    assert run_night(config).ok
+    (night_dir(config) / "scale/s0001/image.fits").unlink()
+    edited = night_dir(config) / "smooth/s0002/image.fits"
+    edited.write_bytes(edited.read_bytes() + b" ")
+    status = night_status(config)
+    scale, smooth = status.stages[1].units, status.stages[2].units
+    assert scale["s0001"] == (
+        "damaged",
+        "image.fits is gone since its unit was made (removed or renamed by hand?)",
+    )
+    assert smooth["s0002"][0] == "damaged"
+    assert smooth["s0002"][1].startswith("image.fits has ")
+    assert "changed on disk" in smooth["s0002"][1]
+    assert smooth["s0001"][0] == "stale"  # downstream of the lost product
+    assert status.has_problems
+    report = run_night(config)
+    assert not report.ok
+    assert sorted(line.split(":")[0] for line in report.damaged) == ["scale/s0001", "smooth/s0002"]
+    assert "image.fits is gone since its unit was made" in report.format()
+    ran = sorted(f"{r.stage}/{r.unit}" for r in report.results if r.status == "ran")
+    # scale/s0001 comes back byte-identical: smooth/s0001 stays up to date
+    assert ran == ["scale/s0001", "smooth/s0002"]
+    assert product_hashes(config) == product_hashes(_reference(tmp_path))
+    assert run_night(config).ok
+    assert night_status(config).complete
+
+
 def test_an_edited_table_is_found_before_its_rows_are_planned(toy, tmp_path) -> None:
     make_config, _ = toy
     config = make_config()

@@ -413,6 +413,7 @@ def _run_night(
     else:
         workers = contextlib.nullcontext(shared)
     with lock, workers as executor:
+        night.find_lost()
         if verify:
             night.find_damage()
         plan = _with_recut_upstream(night, selected)
@@ -843,6 +844,7 @@ def night_status(config: Config, *, verify: bool = False) -> NightStatus:
         ``'damaged'``.  Otherwise only existence and sizes are checked.
     """
     night = NightStore(config, verify=verify)
+    night.find_lost()
     stages = []
     for stage in config.graph:
         units, problems = night.stage_status(stage)

@@ -37,6 +37,7 @@ from pipeline.runner._store import (
     Known,
     file_digest,
     hash_json,
+    lost_product,
     read_damage,
     read_failure,
     read_product,
@@ -277,6 +278,27 @@ class NightStore:
                     self.damage(stage, unit_id(stretch))
         finally:
             self.verify = verify
+        return dict(self.damaged)
+
+    def find_lost(self) -> dict[tuple[str, str], str]:
+        """Find the units a product of which is gone or changed in size; return (and keep) them.
+
+        Cheap (a look at each file's size, no hashing): a unit whose sidecar
+        lists a product that was removed or edited by hand is then damaged,
+        with the reason (:func:`~pipeline.runner._store.lost_product`), not
+        merely missing, so that ``zdrift status`` says what happened to it
+        and a run reports it.  Called before a run starts and by the status,
+        never while units are being written.
+        """
+        for stage in self.config.graph:
+            for stretch in self.units(stage):
+                unit = unit_id(stretch)
+                key = (stage.name, unit)
+                if key in self.damaged or self.sidecar(stage, unit) is not None:
+                    continue
+                reason = lost_product(self.unit_dir(stage, unit))
+                if reason is not None:
+                    self.damaged[key] = reason
         return dict(self.damaged)
 
     def usable(self, stage: Stage, unit: str) -> dict[str, Any] | None:
