@@ -137,9 +137,73 @@ def _night_units(path: Path) -> tuple[str, list[tuple[str, Path, dict]], list[st
             )
             continue
         units.append((unit_dir.name, unit_dir, sidecar))
+    units, overlapped = current_layout(units)
+    problems.extend(f"night {night}: {SCIENCE} {line}" for line in overlapped)
     if not units and not problems:
         problems.append(f"night {night}: no {SCIENCE} products in {folder}")
     return night, units, problems
+
+
+def _core_rows(sidecar: dict[str, Any]) -> tuple[int, int] | None:
+    """The night rows ``[start, stop)`` a stretch unit's sidecar says are its own, or None."""
+    try:
+        _, start, stop, _ = sidecar["config"]["rows"]
+        return int(start), int(stop)
+    except (KeyError, TypeError, ValueError):
+        return None
+
+
+def current_layout(
+    units: list[tuple[str, Path, dict[str, Any]]],
+) -> tuple[list[tuple[str, Path, dict[str, Any]]], list[str]]:
+    """The stretch units of one product folder that belong to its latest stretch layout.
+
+    A night reduced again with other stretches (``run.stretch_rows``, a
+    block added or lost) leaves the units of the old layout that the new one
+    does not reuse, complete with their sidecars, in its folder.  The
+    stretches of one layout never share a row of their own, so a unit whose
+    own rows (its sidecar's ``config.rows``) overlap those of a unit made
+    after it is left out: co-adding it too would count the same night's sky
+    twice.
+
+    Parameters
+    ----------
+    units : list of (unit, folder, sidecar)
+
+    Returns
+    -------
+    kept : list of (unit, folder, sidecar)
+        In the order given.
+    left_out : list of str
+        One line per unit left out, naming it, its rows and the later unit.
+    """
+    order = sorted(
+        range(len(units)), key=lambda i: str(units[i][2].get("finished", "")), reverse=True
+    )
+    kept: list[int] = []
+    left_out: dict[int, str] = {}
+    for i in order:
+        rows = _core_rows(units[i][2])
+        later = next(
+            (
+                units[k][0]
+                for k in kept
+                if rows is not None
+                and (other := _core_rows(units[k][2])) is not None
+                and rows[0] < other[1]
+                and other[0] < rows[1]
+            ),
+            None,
+        )
+        if later is None:
+            kept.append(i)
+        else:
+            left_out[i] = (
+                f"{units[i][0]} left out (its rows {rows[0]}-{rows[1] - 1} are also those of "
+                f"{later}, made after it: a product of an earlier stretch layout; remove it, or "
+                "name the night's config instead of its folder)"
+            )
+    return [units[i] for i in sorted(kept)], [left_out[i] for i in sorted(left_out)]
 
 
 class MosaicStore:
