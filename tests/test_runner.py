@@ -2175,6 +2175,24 @@ def test_a_changed_stretch_reruns_its_neighbours_only(seams, tmp_path: Path) -> 
     assert ran(report, "seams") == ["s0000", "s0001"]
 
 
+def test_a_run_of_some_stretches_names_the_neighbours_it_left_stale(seams, tmp_path) -> None:
+    """Redoing stretch 0 changes the edge rows stretch 1 reads: the run must say
+    that seams/s0001 is now stale, not that nothing is."""
+    make_config, _ = seams
+    config = make_config()
+    run_night(config)
+    edit_raw_block(tmp_path / "raw", 0)  # night rows 0..24: scale's stretch 0 only
+    report = run_night(config, stretches=[0])
+    assert ran(report, "scale") == ["s0000"] and ran(report, "seams") == ["s0000"]
+    assert report.stale_downstream == {"seams": ["s0001"]}
+    assert "stale products left (rerun with --from seams):\n  seams: s0001" in report.format()
+    status = {s.name: s for s in night_status(config).stages}
+    assert status["seams"].units["s0001"] == ("stale", "inputs changed: neighbours")
+    # a whole-night run selects every stretch: nothing is left to name
+    assert run_night(config).stale_downstream == {}
+    assert night_status(config).complete
+
+
 def test_a_failed_neighbour_leaves_no_data_and_a_problem(seams, monkeypatch) -> None:
     make_config, rows = seams
     config = make_config()
