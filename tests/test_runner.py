@@ -1375,8 +1375,8 @@ def test_a_damaged_product_is_found_reported_and_recomputed(toy, tmp_path) -> No
 
 def test_a_product_removed_or_resized_by_hand_is_damaged_not_missing(toy, tmp_path) -> None:
     """A product file deleted, or edited to another size, after its unit was made
-    is named by the status and reported by the run (exit 1), not silently
-    redone as if the unit had never run."""
+    (or its sidecar broken by an edit) is named by the status and reported by
+    the run (exit 1), not silently redone as if the unit had never run."""
     make_config, _ = toy
     config = make_config()
     assert run_night(config).ok
@@ -1394,13 +1394,22 @@ def test_a_product_removed_or_resized_by_hand_is_damaged_not_missing(toy, tmp_pa
     assert "changed on disk" in smooth["s0002"][1]
     assert smooth["s0001"][0] == "stale"  # downstream of the lost product
     assert status.has_problems
+    (night_dir(config) / "smooth/s0003/_provenance.json").write_text("{ edited")
+    assert night_status(config).stages[2].units["s0003"] == (
+        "damaged",
+        "_provenance.json, the provenance record, is not a JSON object (edited by hand?)",
+    )
     report = run_night(config)
     assert not report.ok
-    assert sorted(line.split(":")[0] for line in report.damaged) == ["scale/s0001", "smooth/s0002"]
+    assert sorted(line.split(":")[0] for line in report.damaged) == [
+        "scale/s0001",
+        "smooth/s0002",
+        "smooth/s0003",
+    ]
     assert "image.fits is gone since its unit was made" in report.format()
     ran = sorted(f"{r.stage}/{r.unit}" for r in report.results if r.status == "ran")
     # scale/s0001 comes back byte-identical: smooth/s0001 stays up to date
-    assert ran == ["scale/s0001", "smooth/s0002"]
+    assert ran == ["scale/s0001", "smooth/s0002", "smooth/s0003"]
     assert product_hashes(config) == product_hashes(_reference(tmp_path))
     assert run_night(config).ok
     assert night_status(config).complete

@@ -827,11 +827,22 @@ def lost_product(unit_dir: Path, record: Mapping[str, Any] | None = None) -> str
     says why, ``'<file> <what>'`` (None when every listed file is there
     with its recorded size, or when there is no valid sidecar to ask).
     Only sizes are looked at; a change of content that keeps the size
-    needs a SHA-256 check (:func:`verify_unit`).
+    needs a SHA-256 check (:func:`verify_unit`).  A sidecar that is no
+    longer a JSON object (written atomically, it was edited by hand) is
+    named too; one of another format is not (an older release's unit).
     """
     if record is None:
-        record = _parse_sidecar(unit_dir)
-        if record is None:
+        try:
+            record = json.loads((unit_dir / SIDECAR_NAME).read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            return None
+        except OSError as exc:
+            return f"{SIDECAR_NAME} cannot be read ({exc.strerror or exc})"
+        except ValueError:
+            record = None
+        if not isinstance(record, dict):
+            return f"{SIDECAR_NAME}, the provenance record, is not a JSON object (edited by hand?)"
+        if record.get("format") != SIDECAR_FORMAT:
             return None
     products = record.get("products", {})
     if not isinstance(products, dict):
