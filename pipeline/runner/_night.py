@@ -75,6 +75,10 @@ NIGHT = "night"
 ABSENT = "absent"
 
 
+#: How a stale unit's reason names the :data:`RUN_STATUS` input.
+_EARLIER_STATES = "the state of an earlier unit"
+
+
 def night_dir(config: Config) -> Path:
     """The night's output folder, ``<output_dir>/<night name>``."""
     return Path(config.night.output_dir) / config.night.name
@@ -676,7 +680,9 @@ class NightStore:
         recorded = record.get("inputs", {})
         changed = sorted(k for k in set(hashes) | set(recorded) if hashes.get(k) != recorded.get(k))
         if changed:
-            return "stale", f"inputs changed: {', '.join(changed)}"
+            # the run status is the state of every earlier unit, not a product
+            names = [_EARLIER_STATES if k == RUN_STATUS else k for k in changed]
+            return "stale", f"inputs changed: {', '.join(names)}"
         for name in stage.requires:
             upstream = self.stages.get(name)
             if upstream is None or hashes.get(name) == ABSENT:
