@@ -136,7 +136,10 @@ def test_a_stale_earlier_unit_is_named_as_such_in_the_status(night) -> None:
     config = night()
     run_night(config)
     stages = {s.name: s for s in night_status(night("stages.check.fail=true")).stages}
-    assert stages["check"].units["night"] == ("stale", "config changed")
+    assert stages["check"].units["night"] == (
+        "stale",
+        "config changed: stages.check.fail false -> true",
+    )
     assert stages["digest"].units["night"] == (
         "stale",
         "inputs changed: the state of an earlier unit",

@@ -75,7 +75,7 @@ from pipeline.runner import (
 )
 from pipeline.runner._ecsv import write_ecsv
 from pipeline.runner._lock import RunLock
-from pipeline.runner._night import NightStore
+from pipeline.runner._night import NightStore, config_change
 from pipeline.runner._rawio import read_rows
 from pipeline.runner._store import SIDECAR_NAME, read_products, read_sidecar, write_products
 from pipeline.runner._unit import UnitOutcome, UnitTask, execute_unit
@@ -671,6 +671,30 @@ def test_config_change_marks_stage_and_downstream_stale_not_upstream(toy) -> Non
                           read_sidecar(night_dir(config) / "total/night"))  # fmt: skip
     # same tolerance argument as in test_full_run_products_and_skip_when_up_to_date
     assert total["summary"]["total"] == pytest.approx(expected_total(rows, 2.0, 5), rel=1e-12)
+
+
+def test_the_status_names_the_config_keys_that_made_a_unit_stale(toy) -> None:
+    """'config changed' alone left the user to guess which of their --set or
+    edits it was: the status names the keys as a config file spells them."""
+    make_config, _ = toy
+    run_night(make_config())
+    status = night_status(make_config("stages.smooth.width=5", "run.overlap_rows=6"))
+    scale, smooth = status.stages[1].units, status.stages[2].units
+    rows = "its rows (run.stretch_rows, run.overlap_rows or the raw blocks)"
+    assert scale["s0001"] == ("stale", f"config changed: {rows}")
+    assert smooth["s0001"] == ("stale", f"config changed: stages.smooth.width 3 -> 5; {rows}")
+    # a stage's camera fields (uses) and its version, named too
+    assert night_status(make_config("camera.n_columns=9")).stages[1].units["s0000"] == (
+        "stale",
+        "config changed: camera.n_columns 6 -> 9",
+    )
+    recorded = {"version": 1, "options": {"a": [1, 2]}, "uses": {}, "rows": None}
+    current = {"version": 2, "options": {"a": [1, 3]}, "uses": {}, "rows": None}
+    assert config_change("scale", recorded, current) == (
+        "config changed: stages.scale.a [1, 2] -> [1, 3]; "
+        "the scale stage's version (a new release) 1 -> 2"
+    )
+    assert config_change("scale", None, current) == "config changed"  # an old sidecar
 
 
 def test_context_fields_a_stage_uses_enter_its_hash(toy) -> None:

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import dataclasses
 import itertools
+import json
 import operator
 import os
 from collections.abc import Iterable, Sequence
@@ -116,6 +117,61 @@ def missing_problems(missing: dict[str, str], what: str = "stretch") -> list[str
         f"ran without {what}{plural if len(ids) > 1 else ''} {format_ids(ids)} ({reason})"
         for reason, ids in _by_reason(missing).items()
     ]
+
+
+def _flat(value: Any, prefix: str = "") -> dict[str, Any]:
+    """A nested mapping as ``dotted.key -> value`` (lists and scalars are leaves)."""
+    if not isinstance(value, dict):
+        return {prefix: value}
+    flat: dict[str, Any] = {}
+    for key, item in value.items():
+        flat.update(_flat(item, f"{prefix}.{key}" if prefix else str(key)))
+    return flat
+
+
+def _shown(value: Any, limit: int = 40) -> str:
+    """A recorded value, its end kept when long (where two paths differ)."""
+    text = json.dumps(value)
+    return text if len(text) <= limit else "..." + text[3 - limit :]
+
+
+def config_change(stage: str, recorded: Any, current: dict[str, Any], most: int = 3) -> str:
+    """Why a unit's config hash changed, in the user's keys: ``'config changed: ...'``.
+
+    Compares the config its sidecar recorded (:meth:`NightStore.config_data`)
+    with the current one and names up to ``most`` differences, as a config
+    file spells them (``stages.detect.threshold_sigma 4.3 -> 5``).
+
+    Examples
+    --------
+    >>> config_change("detect", {"version": 1, "options": {"threshold_sigma": 4.3}, "uses": {},
+    ...     "rows": None}, {"version": 1, "options": {"threshold_sigma": 5}, "uses": {},
+    ...     "rows": None})
+    'config changed: stages.detect.threshold_sigma 4.3 -> 5'
+    """
+    if not isinstance(recorded, dict):
+        return "config changed"
+    old = _flat(recorded)
+    new = _flat(json.loads(json.dumps(current)))  # as the sidecar keeps it
+    names = {"version": f"the {stage} stage's version (a new release)",
+             "rows": "its rows (run.stretch_rows, run.overlap_rows or the raw blocks)"}  # fmt: skip
+    lines = []
+    for key in sorted(set(old) | set(new)):
+        if old.get(key, _NONE) == new.get(key, _NONE):
+            continue
+        part, _, rest = key.partition(".")
+        if part == "rows":  # the same words for every stretch: one line in the status
+            lines.append(names["rows"])
+            continue
+        name = names.get(part) or {"options": f"stages.{stage}.{rest}", "uses": rest}.get(part, key)
+        lines.append(f"{name} {_shown(old.get(key))} -> {_shown(new.get(key))}")
+    if not lines:
+        return "config changed"
+    more = f" and {len(lines) - most} more" if len(lines) > most else ""
+    return f"config changed: {'; '.join(lines[:most])}{more}"
+
+
+_NONE = object()
 
 
 def damage_reason(exc: DamagedProductError) -> str:
@@ -675,8 +731,9 @@ class NightStore:
         hashes, _, problem = self.inputs(stage, stretch)
         if problem is not None:
             return "stale", problem
-        if record.get("config_hash") != hash_json(self.config_data(stage, stretch)):
-            return "stale", "config changed"
+        current = self.config_data(stage, stretch)
+        if record.get("config_hash") != hash_json(current):
+            return "stale", config_change(stage.name, record.get("config"), current)
         recorded = record.get("inputs", {})
         changed = sorted(k for k in set(hashes) | set(recorded) if hashes.get(k) != recorded.get(k))
         if changed:
