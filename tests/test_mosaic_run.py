@@ -171,6 +171,15 @@ def test_a_rerun_skips_the_tiles_and_a_changed_night_reruns_only_the_tiles_it_to
     (mosaic_dir(config) / "tiles" / "tile001" / "_provenance.json").unlink()
     assert mosaic_status(config).tiles["tile001"] == ("missing", "")
     assert ran(run_mosaic(config)) == ["tile001"]
+    # a tile's file removed by hand: damaged and named, rebuilt as it was, reported
+    built = product_digests(config)
+    (mosaic_dir(config) / "tiles" / "tile000" / "catalog.ecsv").unlink()
+    lost = "catalog.ecsv is gone since its unit was made (removed or renamed by hand?)"
+    assert mosaic_status(config).tiles["tile000"] == ("damaged", lost)
+    repaired = run_mosaic(config)
+    assert ran(repaired) == ["tile000"] and not repaired.ok
+    assert repaired.damaged == [f"tiles/tile000: {lost} (recomputed)"]
+    assert product_digests(config) == built
     # a changed co-add option changes every tile
     changed = load_mosaic_config(config_path := write_config(tmp_path, copies), ["coadd.grow=2"])
     assert {s for s, _ in mosaic_status(changed).tiles.values()} == {"stale"}
@@ -434,3 +443,9 @@ def test_science_units_of_an_earlier_stretch_layout_are_left_out(tmp_path, night
     # units whose sidecars say nothing of their rows are all kept
     units = [(u, science / u, {"finished": f}) for u, (_, f) in made.items()]
     assert current_layout(units) == (units, [])
+    # a science file removed by hand: the unit left out says why
+    (science / "s0000" / "image.fits").unlink()
+    assert (
+        "night n1: science s0000 left out (image.fits is gone since its unit was made "
+        "(removed or renamed by hand?))"
+    ) in MosaicStore(config).problems

@@ -43,6 +43,7 @@ from pipeline.runner._store import (
     Known,
     clear_failure,
     hash_json,
+    lost_product,
     read_damage,
     read_failure,
     read_products,
@@ -132,9 +133,8 @@ def _night_units(path: Path) -> tuple[str, list[tuple[str, Path, dict]], list[st
         why = why.get("reason", "failed") if why is not None else read_damage(unit_dir)
         sidecar = None if why is not None else read_sidecar(unit_dir)
         if sidecar is None:
-            problems.append(
-                f"night {night}: {SCIENCE} {unit_dir.name} left out ({why or 'incomplete'})"
-            )
+            why = why or lost_product(unit_dir) or "incomplete"
+            problems.append(f"night {night}: {SCIENCE} {unit_dir.name} left out ({why})")
             continue
         units.append((unit_dir.name, unit_dir, sidecar))
     units, overlapped = current_layout(units)
@@ -286,7 +286,8 @@ class MosaicStore:
             return "damaged", damage
         record = read_sidecar(unit_dir)
         if record is None:
-            return "missing", ""
+            lost = lost_product(unit_dir)  # a tile file removed or resized by hand
+            return ("missing", "") if lost is None else ("damaged", lost)
         if record.get("config_hash") != hash_json(self.config_data(tile)):
             return "stale", "config or tile placement changed"
         now, then = self.input_hashes(tile), record.get("inputs", {})
@@ -472,7 +473,7 @@ def _run_mosaic(config, tiles, force, progress, shared):
     with lock, workers as executor:
         tasks = []
         for tile in selected:
-            state, _ = store.state(tile)
+            state, reason = store.state(tile)
             if state == "done" and not force:
                 report.results.append(UnitResult(TILE_STAGE.name, tile.name, "skipped"))
                 continue
@@ -480,6 +481,9 @@ def _run_mosaic(config, tiles, force, progress, shared):
                 why = "no science product touches the tile"
                 report.results.append(UnitResult(TILE_STAGE.name, tile.name, "blocked", why))
                 continue
+            if state == "damaged" and lost_product(store.unit_dir(TILE_STAGE, tile.name)):
+                log.error("damaged product in %s/%s: %s", TILE_STAGE.name, tile.name, reason)
+                report.damaged.append(f"{TILE_STAGE.name}/{tile.name}: {reason} (recomputed)")
             clear_failure(store.unit_dir(TILE_STAGE, tile.name))
             tasks.append(store.task(tile, executor.remote, (lock.path, lock.token)))
         log.info(
