@@ -53,6 +53,8 @@ if TYPE_CHECKING:
 __all__ = ["exit_now", "main", "run"]
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_LOCKED, EXIT_CANNOT_START, EXIT_INCOMPLETE = range(6)
+#: The reader of the output went away (a pipe into ``head``): 128 + SIGPIPE (13).
+EXIT_PIPE = 141
 
 #: The stage that makes the night's report page (``pipeline.runner.REPORT_PAGE[0]``).
 REPORT_STAGE = "report"
@@ -76,6 +78,8 @@ exit status:
      disk, no permission); nothing was changed
   {EXIT_INCOMPLETE}  status: nothing failed, but some products are stale or missing
      (`zdrift run` brings them up to date)
+  {EXIT_PIPE}  the output's reader left before the end (a pipe into `head`), as the
+     shell says of a process a broken pipe ends; nothing more was printed
 """
 
 
@@ -562,7 +566,24 @@ def main(args: Sequence[str] | None = None) -> int:
 
 def run() -> NoReturn:
     """The ``zdrift`` command: :func:`main` on ``sys.argv``, then :func:`exit_now`."""
-    exit_now(main())
+    try:
+        code = main()
+    except BrokenPipeError:
+        code = _reader_gone()
+    exit_now(code)
+
+
+def _reader_gone() -> int:
+    """End quietly when the output's reader left (``zdrift status night.yaml | head``).
+
+    Standard output is pointed at the null device so that the final flush
+    does not fail again (the advice of Python's ``signal`` documentation,
+    "Note on SIGPIPE"); the status is the shell's for a process a broken
+    pipe ended, 128 + SIGPIPE.
+    """
+    with contextlib.suppress(OSError):
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+    return EXIT_PIPE
 
 
 def exit_now(code: int) -> NoReturn:

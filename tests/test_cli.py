@@ -47,6 +47,22 @@ def test_python_m_pipeline_runs_the_cli() -> None:
     assert result.returncode == 0 and result.stdout.strip() == f"zdrift {pipeline.__version__}"
 
 
+def test_a_reader_that_leaves_early_gets_no_traceback() -> None:
+    """`zdrift config night.yaml | head -1`: the pipe closes before the command
+    writes; it ends quietly with the shell's status for a broken pipe."""
+    config = Path(__file__).parent.parent / "configs" / "demo_2026-10-15.yaml"
+    process = subprocess.Popen(
+        [sys.executable, "-m", "pipeline", "config", str(config)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
+    process.stdout.close()  # the reader is gone before the command starts writing
+    stderr = process.stderr.read().decode()
+    process.stderr.close()
+    assert process.wait(timeout=60) == pipeline.cli.EXIT_PIPE == 141
+    assert stderr == ""
+
+
 def test_a_command_is_required(capsys: pytest.CaptureFixture) -> None:
     assert main([]) == 2
     assert "required: COMMAND" in capsys.readouterr().err
@@ -254,6 +270,7 @@ def test_help_lists_the_exit_codes(capsys: pytest.CaptureFixture) -> None:
             "3  another run",
             "4  run: cannot start",
             "5  status: nothing failed",
+            "141  the output's reader left",
         ):
             assert code in out
 

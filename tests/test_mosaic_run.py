@@ -25,7 +25,14 @@ from pipeline.mosaic import (
 )
 from pipeline.mosaic._products import _binned
 from pipeline.runner import mosaic_dir, mosaic_nights, mosaic_status, run_mosaic
-from pipeline.runner._store import PNG_SIGNATURE, read_product, read_sidecar, write_products
+from pipeline.runner._mosaic import current_layout
+from pipeline.runner._store import (
+    PNG_SIGNATURE,
+    read_product,
+    read_sidecar,
+    write_products,
+    write_sidecar,
+)
 from tests._mosaic_nights import (
     DEC,
     NIGHTS,
@@ -164,6 +171,15 @@ def test_a_rerun_skips_the_tiles_and_a_changed_night_reruns_only_the_tiles_it_to
     (mosaic_dir(config) / "tiles" / "tile001" / "_provenance.json").unlink()
     assert mosaic_status(config).tiles["tile001"] == ("missing", "")
     assert ran(run_mosaic(config)) == ["tile001"]
+    # a tile's file removed by hand: damaged and named, rebuilt as it was, reported
+    built = product_digests(config)
+    (mosaic_dir(config) / "tiles" / "tile000" / "catalog.ecsv").unlink()
+    lost = "catalog.ecsv is gone since its unit was made (removed or renamed by hand?)"
+    assert mosaic_status(config).tiles["tile000"] == ("damaged", lost)
+    repaired = run_mosaic(config)
+    assert ran(repaired) == ["tile000"] and not repaired.ok
+    assert repaired.damaged == [f"tiles/tile000: {lost} (recomputed)"]
+    assert product_digests(config) == built
     # a changed co-add option changes every tile
     changed = load_mosaic_config(config_path := write_config(tmp_path, copies), ["coadd.grow=2"])
     assert {s for s, _ in mosaic_status(changed).tiles.values()} == {"stale"}
@@ -391,3 +407,45 @@ def test_a_mosaic_of_a_reduced_night_named_by_its_config(tmp_path, capsys):
     assert " 0 units ran" in capsys.readouterr().out
     tables = mosaic_nights(config)
     assert set(tables["night"]) == {"2026-10-15"} and all(tables["used"])
+
+
+def test_science_units_of_an_earlier_stretch_layout_are_left_out(tmp_path, nights):
+    """A product folder reduced again with other stretches keeps the old layout's
+    units that the new one did not overwrite: the same night's sky, which must
+    not be co-added twice (the night's config knows its stretches; a folder
+    does not)."""
+    import shutil
+
+    from pipeline.runner._mosaic import MosaicStore
+
+    folder = tmp_path / "products" / "n1"
+    shutil.copytree(nights[0], folder)
+    science = folder / "science"
+    shutil.copytree(science / "s0001", science / "s0002")
+    # own rows [start, stop) in the sidecar's config, as the runner records them
+    made = {
+        "s0000": ([0, 0, 64, 68], "2026-10-16T08:00:00.000+00:00"),  # the new layout
+        "s0001": ([60, 64, 128, 128], "2026-10-16T08:00:01.000+00:00"),
+        "s0002": ([60, 64, 96, 100], "2026-10-15T09:00:00.000+00:00"),  # an old one's
+    }
+    for unit, (rows, finished) in made.items():
+        record = read_sidecar(science / unit)
+        record.pop("format")
+        write_sidecar(science / unit, {**record, "config": {"rows": rows}, "finished": finished})
+    config = load_mosaic_config(write_config(tmp_path, [folder]))
+    store = MosaicStore(config)
+    assert sorted(p.unit for p in store.products) == ["s0000", "s0001"]
+    assert store.problems == [
+        "night n1: science s0002 left out (its rows 64-95 are also those of s0001, made after "
+        "it: a product of an earlier stretch layout; remove it, or name the night's config "
+        "instead of its folder)"
+    ]
+    # units whose sidecars say nothing of their rows are all kept
+    units = [(u, science / u, {"finished": f}) for u, (_, f) in made.items()]
+    assert current_layout(units) == (units, [])
+    # a science file removed by hand: the unit left out says why
+    (science / "s0000" / "image.fits").unlink()
+    assert (
+        "night n1: science s0000 left out (image.fits is gone since its unit was made "
+        "(removed or renamed by hand?))"
+    ) in MosaicStore(config).problems

@@ -131,6 +131,21 @@ def test_a_failure_elsewhere_alone_rebuilds(night) -> None:
     assert open_product(config, "digest", product="seen")["failed"] == []
 
 
+def test_a_stale_earlier_unit_is_named_as_such_in_the_status(night) -> None:
+    """The run status is no product: the status says what it stands for."""
+    config = night()
+    run_night(config)
+    stages = {s.name: s for s in night_status(night("stages.check.fail=true")).stages}
+    assert stages["check"].units["night"] == (
+        "stale",
+        "config changed: stages.check.fail false -> true",
+    )
+    assert stages["digest"].units["night"] == (
+        "stale",
+        "inputs changed: the state of an earlier unit",
+    )
+
+
 def test_optional_requirements_are_checked() -> None:
     with pytest.raises(ValueError, match="optional names 'other'"):
         Stage("x", digest, _toy_graph.TotalOptions, ("total",), "night", optional=("other",))

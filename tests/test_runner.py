@@ -75,7 +75,7 @@ from pipeline.runner import (
 )
 from pipeline.runner._ecsv import write_ecsv
 from pipeline.runner._lock import RunLock
-from pipeline.runner._night import NightStore
+from pipeline.runner._night import NightStore, config_change
 from pipeline.runner._rawio import read_rows
 from pipeline.runner._store import SIDECAR_NAME, read_products, read_sidecar, write_products
 from pipeline.runner._unit import UnitOutcome, UnitTask, execute_unit
@@ -671,6 +671,30 @@ def test_config_change_marks_stage_and_downstream_stale_not_upstream(toy) -> Non
                           read_sidecar(night_dir(config) / "total/night"))  # fmt: skip
     # same tolerance argument as in test_full_run_products_and_skip_when_up_to_date
     assert total["summary"]["total"] == pytest.approx(expected_total(rows, 2.0, 5), rel=1e-12)
+
+
+def test_the_status_names_the_config_keys_that_made_a_unit_stale(toy) -> None:
+    """'config changed' alone left the user to guess which of their --set or
+    edits it was: the status names the keys as a config file spells them."""
+    make_config, _ = toy
+    run_night(make_config())
+    status = night_status(make_config("stages.smooth.width=5", "run.overlap_rows=6"))
+    scale, smooth = status.stages[1].units, status.stages[2].units
+    rows = "its rows (run.stretch_rows, run.overlap_rows or the raw blocks)"
+    assert scale["s0001"] == ("stale", f"config changed: {rows}")
+    assert smooth["s0001"] == ("stale", f"config changed: stages.smooth.width 3 -> 5; {rows}")
+    # a stage's camera fields (uses) and its version, named too
+    assert night_status(make_config("camera.n_columns=9")).stages[1].units["s0000"] == (
+        "stale",
+        "config changed: camera.n_columns 6 -> 9",
+    )
+    recorded = {"version": 1, "options": {"a": [1, 2]}, "uses": {}, "rows": None}
+    current = {"version": 2, "options": {"a": [1, 3]}, "uses": {}, "rows": None}
+    assert config_change("scale", recorded, current) == (
+        "config changed: stages.scale.a [1, 2] -> [1, 3]; "
+        "the scale stage's version (a new release) 1 -> 2"
+    )
+    assert config_change("scale", None, current) == "config changed"  # an old sidecar
 
 
 def test_context_fields_a_stage_uses_enter_its_hash(toy) -> None:
@@ -1371,6 +1395,48 @@ def test_a_damaged_product_is_found_reported_and_recomputed(toy, tmp_path) -> No
     # Once repaired, the night is clean again.
     assert run_night(config).ok
     assert night_status(config, verify=True).complete
+
+
+def test_a_product_removed_or_resized_by_hand_is_damaged_not_missing(toy, tmp_path) -> None:
+    """A product file deleted, or edited to another size, after its unit was made
+    (or its sidecar broken by an edit) is named by the status and reported by
+    the run (exit 1), not silently redone as if the unit had never run."""
+    make_config, _ = toy
+    config = make_config()
+    assert run_night(config).ok
+    (night_dir(config) / "scale/s0001/image.fits").unlink()
+    edited = night_dir(config) / "smooth/s0002/image.fits"
+    edited.write_bytes(edited.read_bytes() + b" ")
+    status = night_status(config)
+    scale, smooth = status.stages[1].units, status.stages[2].units
+    assert scale["s0001"] == (
+        "damaged",
+        "image.fits is gone since its unit was made (removed or renamed by hand?)",
+    )
+    assert smooth["s0002"][0] == "damaged"
+    assert smooth["s0002"][1].startswith("image.fits has ")
+    assert "changed on disk" in smooth["s0002"][1]
+    assert smooth["s0001"][0] == "stale"  # downstream of the lost product
+    assert status.has_problems
+    (night_dir(config) / "smooth/s0003/_provenance.json").write_text("{ edited")
+    assert night_status(config).stages[2].units["s0003"] == (
+        "damaged",
+        "_provenance.json, the provenance record, is not a JSON object (edited by hand?)",
+    )
+    report = run_night(config)
+    assert not report.ok
+    assert sorted(line.split(":")[0] for line in report.damaged) == [
+        "scale/s0001",
+        "smooth/s0002",
+        "smooth/s0003",
+    ]
+    assert "image.fits is gone since its unit was made" in report.format()
+    ran = sorted(f"{r.stage}/{r.unit}" for r in report.results if r.status == "ran")
+    # scale/s0001 comes back byte-identical: smooth/s0001 stays up to date
+    assert ran == ["scale/s0001", "smooth/s0002", "smooth/s0003"]
+    assert product_hashes(config) == product_hashes(_reference(tmp_path))
+    assert run_night(config).ok
+    assert night_status(config).complete
 
 
 def test_an_edited_table_is_found_before_its_rows_are_planned(toy, tmp_path) -> None:
@@ -2140,6 +2206,24 @@ def test_a_changed_stretch_reruns_its_neighbours_only(seams, tmp_path: Path) -> 
     report = run_night(config)
     assert ran(report, "scale") == ["s0000"]
     assert ran(report, "seams") == ["s0000", "s0001"]
+
+
+def test_a_run_of_some_stretches_names_the_neighbours_it_left_stale(seams, tmp_path) -> None:
+    """Redoing stretch 0 changes the edge rows stretch 1 reads: the run must say
+    that seams/s0001 is now stale, not that nothing is."""
+    make_config, _ = seams
+    config = make_config()
+    run_night(config)
+    edit_raw_block(tmp_path / "raw", 0)  # night rows 0..24: scale's stretch 0 only
+    report = run_night(config, stretches=[0])
+    assert ran(report, "scale") == ["s0000"] and ran(report, "seams") == ["s0000"]
+    assert report.stale_downstream == {"seams": ["s0001"]}
+    assert "stale products left (rerun with --from seams):\n  seams: s0001" in report.format()
+    status = {s.name: s for s in night_status(config).stages}
+    assert status["seams"].units["s0001"] == ("stale", "inputs changed: neighbours")
+    # a whole-night run selects every stretch: nothing is left to name
+    assert run_night(config).stale_downstream == {}
+    assert night_status(config).complete
 
 
 def test_a_failed_neighbour_leaves_no_data_and_a_problem(seams, monkeypatch) -> None:

@@ -136,6 +136,26 @@ def test_zero_point_error_matches_monte_carlo_scatter():
     assert np.all(np.abs(ratio - 1) < 0.25), ratio
 
 
+def test_zero_point_error_includes_the_extra_scatter():
+    # Errors quoted at 0.003 mag but truly 0.02 (a reference catalogue without
+    # magnitude errors, ~0.015 mag off each): the quoted zero-point error must
+    # follow the stars' real scatter, as the Monte Carlo scatter of the fitted
+    # zero point shows (common practice; 200 draws: the sampling error of a
+    # standard deviation is 5 %, well inside the 25 % allowed).  It was the
+    # covariance of the first solve, weighted without the extra scatter:
+    # 3-5x too small.
+    t_eval = np.array([300.0, 900.0, 1500.0])
+    values, errors = [], []
+    for seed in range(200):
+        rng = np.random.default_rng(300 + seed)
+        t, delta, _, _, _ = stars(1000, lambda t: np.full_like(t, ZP0), rng, noise=0.02)
+        fit = fit_zero_point(t, delta, np.full(t.size, 0.003), knot_spacing=60.0)
+        values.append(fit(t_eval))
+        errors.append(fit.error(t_eval))
+    ratio = np.std(values, axis=0) / np.mean(errors, axis=0)
+    assert np.all(np.abs(ratio - 1) < 0.25), ratio
+
+
 def test_gap_without_stars_is_bridged_and_flagged():
     rng = np.random.default_rng(4)
     t, delta, sigma, _, _ = stars(3000, lambda t: ZP0 + 0.02 * t / NIGHT, rng)

@@ -248,7 +248,7 @@ class RunReport:
             lines.extend(f"  problem: {result.stage}/{result.unit}: {p}" for p in result.problems)
         if self.stale_downstream:
             first = next(iter(self.stale_downstream))
-            lines.append(f"stale products downstream (rerun with --from {first}):")
+            lines.append(f"stale products left (rerun with --from {first}):")
             for name, ids in self.stale_downstream.items():
                 lines.append(f"  {name}: {format_ids(ids)}")
         return "\n".join(lines)
@@ -413,6 +413,7 @@ def _run_night(
     else:
         workers = contextlib.nullcontext(shared)
     with lock, workers as executor:
+        night.find_lost()
         if verify:
             night.find_damage()
         plan = _with_recut_upstream(night, selected)
@@ -472,7 +473,7 @@ def _run_night(
                     results[key] = result
             _refresh_if_written(night, ran)
         report.results = list(results.values())
-        report.stale_downstream = _stale_downstream(night, selected)
+        report.stale_downstream = _stale_downstream(night, selected, wanted)
     log.info("%s", report.format())
     return report
 
@@ -817,14 +818,27 @@ def _note_damage(night: NightStore, path: Path, reason: str) -> None:
         night.forget(stage, unit_dir.name)  # its state and its dependents' change
 
 
-def _stale_downstream(night: NightStore, selected: Sequence[Stage]) -> dict[str, list[str]]:
+def _stale_downstream(
+    night: NightStore, selected: Sequence[Stage], wanted: frozenset[int] | None = None
+) -> dict[str, list[str]]:
+    """The units left stale by a partial run: ``stage -> unit ids``, in graph order.
+
+    Those of the stages after the first one run that the run left out and,
+    when it ran some stretches only (``wanted``), those of the stretches it
+    did not select in the stages it ran: a stretch beside one that was redone
+    reads its new edge columns (``neighbours``), and the night-scoped stages
+    that read every stretch need them current too.
+    """
     graph = night.config.graph
     first = graph.index(selected[0])
     stale = {}
-    for stage in graph[first + 1 :]:
+    for stage in graph[first:]:
+        units = night.units(stage)
         if stage in selected:
-            continue
-        ids = [unit_id(s) for s in night.units(stage) if night.state(stage, s)[0] == "stale"]
+            if wanted is None or stage.scope != "stretch":
+                continue
+            units = [s for s in units if s.index not in wanted]
+        ids = [unit_id(s) for s in units if night.state(stage, s)[0] == "stale"]
         if ids:
             stale[stage.name] = ids
     return stale
@@ -843,6 +857,7 @@ def night_status(config: Config, *, verify: bool = False) -> NightStatus:
         ``'damaged'``.  Otherwise only existence and sizes are checked.
     """
     night = NightStore(config, verify=verify)
+    night.find_lost()
     stages = []
     for stage in config.graph:
         units, problems = night.stage_status(stage)

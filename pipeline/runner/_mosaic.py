@@ -43,6 +43,7 @@ from pipeline.runner._store import (
     Known,
     clear_failure,
     hash_json,
+    lost_product,
     read_damage,
     read_failure,
     read_products,
@@ -132,14 +133,77 @@ def _night_units(path: Path) -> tuple[str, list[tuple[str, Path, dict]], list[st
         why = why.get("reason", "failed") if why is not None else read_damage(unit_dir)
         sidecar = None if why is not None else read_sidecar(unit_dir)
         if sidecar is None:
-            problems.append(
-                f"night {night}: {SCIENCE} {unit_dir.name} left out ({why or 'incomplete'})"
-            )
+            why = why or lost_product(unit_dir) or "incomplete"
+            problems.append(f"night {night}: {SCIENCE} {unit_dir.name} left out ({why})")
             continue
         units.append((unit_dir.name, unit_dir, sidecar))
+    units, overlapped = current_layout(units)
+    problems.extend(f"night {night}: {SCIENCE} {line}" for line in overlapped)
     if not units and not problems:
         problems.append(f"night {night}: no {SCIENCE} products in {folder}")
     return night, units, problems
+
+
+def _core_rows(sidecar: dict[str, Any]) -> tuple[int, int] | None:
+    """The night rows ``[start, stop)`` a stretch unit's sidecar says are its own, or None."""
+    try:
+        _, start, stop, _ = sidecar["config"]["rows"]
+        return int(start), int(stop)
+    except (KeyError, TypeError, ValueError):
+        return None
+
+
+def current_layout(
+    units: list[tuple[str, Path, dict[str, Any]]],
+) -> tuple[list[tuple[str, Path, dict[str, Any]]], list[str]]:
+    """The stretch units of one product folder that belong to its latest stretch layout.
+
+    A night reduced again with other stretches (``run.stretch_rows``, a
+    block added or lost) leaves the units of the old layout that the new one
+    does not reuse, complete with their sidecars, in its folder.  The
+    stretches of one layout never share a row of their own, so a unit whose
+    own rows (its sidecar's ``config.rows``) overlap those of a unit made
+    after it is left out: co-adding it too would count the same night's sky
+    twice.
+
+    Parameters
+    ----------
+    units : list of (unit, folder, sidecar)
+
+    Returns
+    -------
+    kept : list of (unit, folder, sidecar)
+        In the order given.
+    left_out : list of str
+        One line per unit left out, naming it, its rows and the later unit.
+    """
+    order = sorted(
+        range(len(units)), key=lambda i: str(units[i][2].get("finished", "")), reverse=True
+    )
+    kept: list[int] = []
+    left_out: dict[int, str] = {}
+    for i in order:
+        rows = _core_rows(units[i][2])
+        later = next(
+            (
+                units[k][0]
+                for k in kept
+                if rows is not None
+                and (other := _core_rows(units[k][2])) is not None
+                and rows[0] < other[1]
+                and other[0] < rows[1]
+            ),
+            None,
+        )
+        if later is None:
+            kept.append(i)
+        else:
+            left_out[i] = (
+                f"{units[i][0]} left out (its rows {rows[0]}-{rows[1] - 1} are also those of "
+                f"{later}, made after it: a product of an earlier stretch layout; remove it, or "
+                "name the night's config instead of its folder)"
+            )
+    return [units[i] for i in sorted(kept)], [left_out[i] for i in sorted(left_out)]
 
 
 class MosaicStore:
@@ -222,7 +286,8 @@ class MosaicStore:
             return "damaged", damage
         record = read_sidecar(unit_dir)
         if record is None:
-            return "missing", ""
+            lost = lost_product(unit_dir)  # a tile file removed or resized by hand
+            return ("missing", "") if lost is None else ("damaged", lost)
         if record.get("config_hash") != hash_json(self.config_data(tile)):
             return "stale", "config or tile placement changed"
         now, then = self.input_hashes(tile), record.get("inputs", {})
@@ -408,7 +473,7 @@ def _run_mosaic(config, tiles, force, progress, shared):
     with lock, workers as executor:
         tasks = []
         for tile in selected:
-            state, _ = store.state(tile)
+            state, reason = store.state(tile)
             if state == "done" and not force:
                 report.results.append(UnitResult(TILE_STAGE.name, tile.name, "skipped"))
                 continue
@@ -416,6 +481,9 @@ def _run_mosaic(config, tiles, force, progress, shared):
                 why = "no science product touches the tile"
                 report.results.append(UnitResult(TILE_STAGE.name, tile.name, "blocked", why))
                 continue
+            if state == "damaged" and lost_product(store.unit_dir(TILE_STAGE, tile.name)):
+                log.error("damaged product in %s/%s: %s", TILE_STAGE.name, tile.name, reason)
+                report.damaged.append(f"{TILE_STAGE.name}/{tile.name}: {reason} (recomputed)")
             clear_failure(store.unit_dir(TILE_STAGE, tile.name))
             tasks.append(store.task(tile, executor.remote, (lock.path, lock.token)))
         log.info(

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import dataclasses
 import itertools
+import json
 import operator
 import os
 from collections.abc import Iterable, Sequence
@@ -37,6 +38,7 @@ from pipeline.runner._store import (
     Known,
     file_digest,
     hash_json,
+    lost_product,
     read_damage,
     read_failure,
     read_product,
@@ -72,6 +74,10 @@ __all__ = [
 NIGHT = "night"
 #: Input hash of an optional input the stage runs without.
 ABSENT = "absent"
+
+
+#: How a stale unit's reason names the :data:`RUN_STATUS` input.
+_EARLIER_STATES = "the state of an earlier unit"
 
 
 def night_dir(config: Config) -> Path:
@@ -111,6 +117,61 @@ def missing_problems(missing: dict[str, str], what: str = "stretch") -> list[str
         f"ran without {what}{plural if len(ids) > 1 else ''} {format_ids(ids)} ({reason})"
         for reason, ids in _by_reason(missing).items()
     ]
+
+
+def _flat(value: Any, prefix: str = "") -> dict[str, Any]:
+    """A nested mapping as ``dotted.key -> value`` (lists and scalars are leaves)."""
+    if not isinstance(value, dict):
+        return {prefix: value}
+    flat: dict[str, Any] = {}
+    for key, item in value.items():
+        flat.update(_flat(item, f"{prefix}.{key}" if prefix else str(key)))
+    return flat
+
+
+def _shown(value: Any, limit: int = 40) -> str:
+    """A recorded value, its end kept when long (where two paths differ)."""
+    text = json.dumps(value)
+    return text if len(text) <= limit else "..." + text[3 - limit :]
+
+
+def config_change(stage: str, recorded: Any, current: dict[str, Any], most: int = 3) -> str:
+    """Why a unit's config hash changed, in the user's keys: ``'config changed: ...'``.
+
+    Compares the config its sidecar recorded (:meth:`NightStore.config_data`)
+    with the current one and names up to ``most`` differences, as a config
+    file spells them (``stages.detect.threshold_sigma 4.3 -> 5``).
+
+    Examples
+    --------
+    >>> config_change("detect", {"version": 1, "options": {"threshold_sigma": 4.3}, "uses": {},
+    ...     "rows": None}, {"version": 1, "options": {"threshold_sigma": 5}, "uses": {},
+    ...     "rows": None})
+    'config changed: stages.detect.threshold_sigma 4.3 -> 5'
+    """
+    if not isinstance(recorded, dict):
+        return "config changed"
+    old = _flat(recorded)
+    new = _flat(json.loads(json.dumps(current)))  # as the sidecar keeps it
+    names = {"version": f"the {stage} stage's version (a new release)",
+             "rows": "its rows (run.stretch_rows, run.overlap_rows or the raw blocks)"}  # fmt: skip
+    lines = []
+    for key in sorted(set(old) | set(new)):
+        if old.get(key, _NONE) == new.get(key, _NONE):
+            continue
+        part, _, rest = key.partition(".")
+        if part == "rows":  # the same words for every stretch: one line in the status
+            lines.append(names["rows"])
+            continue
+        name = names.get(part) or {"options": f"stages.{stage}.{rest}", "uses": rest}.get(part, key)
+        lines.append(f"{name} {_shown(old.get(key))} -> {_shown(new.get(key))}")
+    if not lines:
+        return "config changed"
+    more = f" and {len(lines) - most} more" if len(lines) > most else ""
+    return f"config changed: {'; '.join(lines[:most])}{more}"
+
+
+_NONE = object()
 
 
 def damage_reason(exc: DamagedProductError) -> str:
@@ -277,6 +338,27 @@ class NightStore:
                     self.damage(stage, unit_id(stretch))
         finally:
             self.verify = verify
+        return dict(self.damaged)
+
+    def find_lost(self) -> dict[tuple[str, str], str]:
+        """Find the units a product of which is gone or changed in size; return (and keep) them.
+
+        Cheap (a look at each file's size, no hashing): a unit whose sidecar
+        lists a product that was removed or edited by hand is then damaged,
+        with the reason (:func:`~pipeline.runner._store.lost_product`), not
+        merely missing, so that ``zdrift status`` says what happened to it
+        and a run reports it.  Called before a run starts and by the status,
+        never while units are being written.
+        """
+        for stage in self.config.graph:
+            for stretch in self.units(stage):
+                unit = unit_id(stretch)
+                key = (stage.name, unit)
+                if key in self.damaged or self.sidecar(stage, unit) is not None:
+                    continue
+                reason = lost_product(self.unit_dir(stage, unit))
+                if reason is not None:
+                    self.damaged[key] = reason
         return dict(self.damaged)
 
     def usable(self, stage: Stage, unit: str) -> dict[str, Any] | None:
@@ -649,12 +731,15 @@ class NightStore:
         hashes, _, problem = self.inputs(stage, stretch)
         if problem is not None:
             return "stale", problem
-        if record.get("config_hash") != hash_json(self.config_data(stage, stretch)):
-            return "stale", "config changed"
+        current = self.config_data(stage, stretch)
+        if record.get("config_hash") != hash_json(current):
+            return "stale", config_change(stage.name, record.get("config"), current)
         recorded = record.get("inputs", {})
         changed = sorted(k for k in set(hashes) | set(recorded) if hashes.get(k) != recorded.get(k))
         if changed:
-            return "stale", f"inputs changed: {', '.join(changed)}"
+            # the run status is the state of every earlier unit, not a product
+            names = [_EARLIER_STATES if k == RUN_STATUS else k for k in changed]
+            return "stale", f"inputs changed: {', '.join(names)}"
         for name in stage.requires:
             upstream = self.stages.get(name)
             if upstream is None or hashes.get(name) == ABSENT:

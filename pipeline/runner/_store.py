@@ -71,6 +71,7 @@ __all__ = [
     "hash_json",
     "known_digests",
     "learn_digests",
+    "lost_product",
     "mark_damaged",
     "output_hash",
     "read_damage",
@@ -801,19 +802,68 @@ def read_sidecar(unit_dir: Path) -> dict[str, Any] | None:
     Complete means: the sidecar parses, has the current format, and every
     product file it lists exists with the recorded size.
     """
+    record = _parse_sidecar(unit_dir)
+    if record is None or lost_product(unit_dir, record) is not None:
+        return None
+    return record
+
+
+def _parse_sidecar(unit_dir: Path) -> dict[str, Any] | None:
+    """The sidecar as written, if it parses and has the current format, else None."""
     try:
         record = json.loads((unit_dir / SIDECAR_NAME).read_text(encoding="utf-8"))
     except (OSError, ValueError):
         return None
     if not isinstance(record, dict) or record.get("format") != SIDECAR_FORMAT:
         return None
-    for entry in record.get("products", {}).values():
-        try:
-            if (unit_dir / entry["file"]).stat().st_size != entry["size"]:
-                return None
-        except (OSError, KeyError, TypeError):
-            return None
     return record
+
+
+def lost_product(unit_dir: Path, record: Mapping[str, Any] | None = None) -> str | None:
+    """What became of a product its unit's sidecar lists but no longer finds as written.
+
+    A product file removed, or changed in size, after its unit was made
+    (by hand, a copy cut short): the unit is then not complete, and this
+    says why, ``'<file> <what>'`` (None when every listed file is there
+    with its recorded size, or when there is no valid sidecar to ask).
+    Only sizes are looked at; a change of content that keeps the size
+    needs a SHA-256 check (:func:`verify_unit`).  A sidecar that is no
+    longer a JSON object (written atomically, it was edited by hand) is
+    named too; one of another format is not (an older release's unit).
+    """
+    if record is None:
+        try:
+            record = json.loads((unit_dir / SIDECAR_NAME).read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            return None
+        except OSError as exc:
+            return f"{SIDECAR_NAME} cannot be read ({exc.strerror or exc})"
+        except ValueError:
+            record = None
+        if not isinstance(record, dict):
+            return f"{SIDECAR_NAME}, the provenance record, is not a JSON object (edited by hand?)"
+        if record.get("format") != SIDECAR_FORMAT:
+            return None
+    products = record.get("products", {})
+    if not isinstance(products, dict):
+        return "the provenance record lists no products it can read"
+    for entry in products.values():
+        try:
+            name, size = str(entry["file"]), int(entry["size"])
+        except (KeyError, TypeError, ValueError):
+            return "the provenance record lists a product without its file name or size"
+        try:
+            found = (unit_dir / name).stat().st_size
+        except FileNotFoundError:
+            return f"{name} is gone since its unit was made (removed or renamed by hand?)"
+        except OSError as exc:
+            return f"{name} cannot be read ({exc.strerror or exc})"
+        if found != size:
+            return (
+                f"{name} has {found} bytes, {size} when its unit was made "
+                "(changed on disk, or a copy cut short)"
+            )
+    return None
 
 
 def write_sidecar(unit_dir: Path, record: dict[str, Any]) -> None:
@@ -903,7 +953,7 @@ def mark_damaged(unit_dir: Path, reason: str) -> None:
     is no longer done and nothing reads its products; :func:`clean_unit`
     removes the record when the unit is written again.
     """
-    record = read_sidecar(unit_dir)
+    record = _parse_sidecar(unit_dir)  # kept even when a product it lists is gone
     _write_json_file(unit_dir / DAMAGED_NAME, {"reason": reason, "provenance": record})
     with contextlib.suppress(FileNotFoundError):
         (unit_dir / SIDECAR_NAME).unlink()

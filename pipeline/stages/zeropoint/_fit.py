@@ -323,11 +323,15 @@ def fit_zero_point(
         )
         model[good] = design_all @ coef + (0.0 if col is None else c * col[good])
         residual = np.where(good, delta - model, np.nan)
-        extra = _extra_scatter(residual[used], sigma[used])
-        sig = np.sqrt(sigma**2 + extra**2)
+        new_extra = _extra_scatter(residual[used], sigma[used])
+        sig = np.sqrt(sigma**2 + new_extra**2)
         z = np.abs(residual) / sig
         new_used = good & inside & (z <= clip)
-        if np.array_equal(new_used, used):
+        # done once the stars kept and the scatter the solve weighted them with
+        # hold: the covariance (``error``) is then that of the weights used
+        settled = np.isclose(new_extra, extra, rtol=1e-3, atol=1e-5)
+        extra = new_extra
+        if np.array_equal(new_used, used) and settled:
             break
         used = new_used
     return ZeroPointFit(

@@ -443,5 +443,6 @@ STAGE = Stage(
     description="The night's zero point along time, calibrated magnitudes, star flat.",
     warm=("scipy.interpolate", "scipy.linalg", "scipy.sparse", "scipy.special"),
     # 2: the star-flat trend fitted to the stars, with its error
-    version=2,
+    # 3: the stars weighted with the fit's extra scatter, and Z(t)'s error with it
+    version=3,
 )
