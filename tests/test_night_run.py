@@ -341,6 +341,19 @@ def test_columns_can_come_from_another_night(tmp_path, capsys):
     np.testing.assert_array_equal(adopted["dark"], reference["dark"])
     np.testing.assert_array_equal(adopted["flags"], reference["flags"])
     assert adopted.meta["method"] == "external" and adopted.meta["source"] == "columns.ecsv"
+    # The file's content is the input, not its path: the same table elsewhere
+    # (a night archived with its files) leaves everything up to date.
+    moved = tmp_path / "elsewhere/columns.ecsv"
+    moved.parent.mkdir()
+    moved.write_bytes(solved.read_bytes())
+    original = second.read_text()
+    config = yaml.safe_load(original)
+    config["stages"]["columns"]["flat_file"] = str(moved)
+    second.write_text(yaml.safe_dump(config))
+    capsys.readouterr()
+    assert main(["status", str(second)]) == 5  # the stages after calibrate not run
+    assert "columns stale" not in capsys.readouterr().out  # nor calibrate: still done
+    second.write_text(original)
     # The file's content is an input: changing it makes the columns stale.
     reference["flat"][0] *= 1.01
     reference.write(solved, overwrite=True)

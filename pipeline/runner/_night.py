@@ -17,6 +17,7 @@ verify=True)`` checks every product's content up front (``zdrift status
 from __future__ import annotations
 
 import dataclasses
+import functools
 import itertools
 import json
 import operator
@@ -78,6 +79,9 @@ ABSENT = "absent"
 
 #: How a stale unit's reason names the :data:`RUN_STATUS` input.
 _EARLIER_STATES = "the state of an earlier unit"
+#: What a stage's hashed config holds for the path of a file whose content is
+#: one of its inputs (``Stage.files``, ``Stage.streams``).
+FILE_BY_CONTENT = "(a file, by its content)"
 
 
 def night_dir(config: Config) -> Path:
@@ -555,11 +559,21 @@ class NightStore:
         return values[key] if key else values
 
     def config_data(self, stage: Stage, stretch: Stretch | None) -> dict[str, Any]:
-        """What the stage's products depend on besides its inputs (hashed)."""
-        options = self.config.stage_options(stage.name)
+        """What the stage's products depend on besides its inputs (hashed).
+
+        The paths of the stage's ``files`` and ``streams`` are left out (a
+        placeholder stands for a path given): their files' contents are
+        inputs, so a night moved or archived with its files stays up to date.
+        """
+        options = self.config.stage_options(stage.name).model_dump(mode="json")
+        for name in (*stage.files, *stage.streams):
+            *parents, last = name.split(".")
+            holder = functools.reduce(operator.getitem, parents, options)
+            if holder.get(last) is not None:
+                holder[last] = FILE_BY_CONTENT
         return {
             "version": stage.version,
-            "options": options.model_dump(mode="json"),
+            "options": options,
             "uses": {name: self._context_value(name) for name in stage.uses},
             "rows": None
             if stretch is None
