@@ -207,8 +207,9 @@ NIGHTS_FIGURES: tuple[FigureSpec, ...] = (
         "Zero point along each night",
         ("zero_point_nights",),
         _over("zero_point_nights", zero_point_over_nights_figure),
-        "Each night's zero point (band: 1 sigma): the clear nights should agree to a "
-        "few hundredths; a night or a stretch below them lost light to cloud.",
+        "Each night's zero point (band: 1 sigma): the clear nights of one camera and "
+        "filter should agree to a few hundredths (another camera has its own level); a "
+        "night or a stretch below its clear level lost light to cloud.",
     ),
     FigureSpec(
         "residuals_nights",

@@ -217,14 +217,18 @@ def summary_rows(products: Mapping[str, Any], status: Any | None = None) -> list
         n_stretches = status["n_stretches"]
         rows.append(("stretches", "none planned" if n_stretches is None else str(n_stretches)))
         n_problems = sum(len(p) for s in status["stages"] for p in s["problems"].values())
-        rows.append(
-            (
-                "problems and failures",
-                f"{_plural(_count(status, 'failed'), 'failed unit')}, "
-                f"{_plural(_count(status, 'damaged'), 'damaged unit')}, "
-                f"{_plural(n_problems, 'reported problem')}",
-            )
-        )
+        counts = [
+            _plural(_count(status, "failed"), "failed unit"),
+            _plural(_count(status, "damaged"), "damaged unit"),
+        ]
+        # the units the page's problems name besides those (its lines tally)
+        n_stale, n_missing = _count(status, "stale"), _count(status, "missing")
+        if n_stale:
+            counts.append(_plural(n_stale, "out-of-date unit"))
+        if n_missing:
+            counts.append(f"{n_missing} unit{'' if n_missing == 1 else 's'} not run")
+        counts.append(_plural(n_problems, "reported problem"))
+        rows.append(("problems and failures", ", ".join(counts)))
     catalog = products.get("catalog")
     if catalog is not None:
         flagged = int(np.sum(np.asarray(catalog["flags"]) != 0))

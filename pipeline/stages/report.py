@@ -79,6 +79,7 @@ STAGE = Stage(
     # configured focal length is not called the spin period's; the sources are
     # astrometry's last measurement when it measured again; 3: the hours of
     # data leave out the rows calibrate found without data (readout dropouts);
-    # the fitted focal length's difference from the nominal with its error
+    # the fitted focal length's difference from the nominal with its error;
+    # the summary counts the out-of-date units and those not run
     version=3,
 )
