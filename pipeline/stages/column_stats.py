@@ -100,6 +100,7 @@ STAGE = Stage(
     # 5: block rows chosen by the night's length unless configured; 6: readout
     # dropout rows (one raw value in every pixel) left out; 7: the gain and read
     # noise the raw rows show, in the table's meta ('noise'); BLANK pixels of
-    # unsigned raw data are NaN (they read as 0 ADU)
-    version=7,
+    # unsigned raw data are NaN (they read as 0 ADU); 8: the gain from at most
+    # 256 pairs of rows
+    version=8,
 )
