@@ -38,10 +38,11 @@ __all__ = ["NoiseMeasurement", "gain_problems", "measure_gain"]
 #: Image columns used at most, evenly spaced (the estimate needs far fewer than
 #: a chip's, and its cost stays a small part of the stage's).
 MAX_COLUMNS = 128
-#: Pairs of consecutive rows used at most, evenly spaced: each gives the
-#: variance across MAX_COLUMNS columns to ~12 %, so 256 give the gain to
-#: < 1 %, and the cost stays ~10 ms per stretch however long (~35 ms for the
-#: 1152 rows of a 4096-column chip's stretch with every pair).
+#: Pairs of consecutive rows of the image used at most, evenly spaced (the
+#: overscan's few columns use every pair): each gives the variance across
+#: MAX_COLUMNS columns to ~12 %, so 256 give the gain to < 1 %, and the cost
+#: stays ~10 ms per stretch however long (~35 ms for the 1152 rows of a
+#: 4096-column chip's stretch with every pair).
 MAX_PAIRS = 256
 #: Ratio of measured to header value beyond which the header is reported wrong.
 #: A unit mistake (e-/ADU for ADU/e-, a gain of 2 read as 0.5) is a factor of 4;
@@ -135,8 +136,8 @@ def measure_gain(
     pairs = use[:-1] & use[1:] & (segment[:-1] == segment[1:])
     if np.count_nonzero(pairs) < 16:
         return None
-    rows = np.flatnonzero(pairs)
-    rows = rows[:: max(1, len(rows) // MAX_PAIRS)]
+    every = np.flatnonzero(pairs)  # the overscan's few columns: every pair
+    rows = every[:: -(-len(every) // MAX_PAIRS)]  # the step rounded up: <= MAX_PAIRS pairs
     step = max(1, image.shape[1] // MAX_COLUMNS)
     sky = np.asarray(image[:, ::step], dtype=np.float64)
     sky = np.where(sky < saturation[:, None], sky, np.nan)  # saturated stars: no noise
@@ -144,7 +145,7 @@ def measure_gain(
     bias = np.zeros(image.shape[0])
     if overscan.shape[1]:
         stored = np.asarray(overscan, dtype=np.float64)
-        var_overscan = _clipped_variance((stored[rows + 1] - stored[rows]).ravel())
+        var_overscan = _clipped_variance((stored[every + 1] - stored[every]).ravel())
         bias = np.median(stored, axis=1)
     floor = max(var_overscan, 0.25) if np.isfinite(var_overscan) else 0.25
     with np.errstate(invalid="ignore"), warnings.catch_warnings():
@@ -166,8 +167,8 @@ def measure_gain(
         gain=float(measured),
         read_noise=float(measured * np.sqrt(var_overscan)),
         overscan_noise=float(np.sqrt(var_overscan)),
-        header_gain=float(np.median(gain[rows])),
-        header_read_noise=float(np.median(read_noise[rows])),
+        header_gain=float(np.median(gain[every])),
+        header_read_noise=float(np.median(read_noise[every])),
     )
 
 
