@@ -22,7 +22,7 @@ from pipeline.stages.astrometry import (
     solve_night,
     stretch_wcs_cards,
 )
-from pipeline.stages.astrometry._stage import unmatched_stretches
+from pipeline.stages.astrometry._stage import kernels_differ, unmatched_stretches
 from pipeline.stages.base import Stage
 from tests._astrometry_scene import make_night
 from tests._mis_set_night import Chip, mis_set_config, mis_set_figures
@@ -376,11 +376,18 @@ def test_the_stage_recovers_a_mis_set_camera_from_the_raw_night(tmp_path, latitu
     assert figures.pull_dec <= 1.2
     # Two passes: the first solution's kernels move by ~2.5 px (5 rows over
     # 512 TDI rows, end samples half of it), far above the bright stars'
-    # ~0.02 px centroid noise; the second's by < 0.01 px.
+    # ~0.02 px centroid noise; the second's by no more than the fit's noise
+    # (the stage's own test, kernels_differ): measured 0.0193 +- 0.0140 px
+    # north (262 stars; 0.0132 +- 0.0147 with 251 before the stars beside
+    # pixels without data joined the fit), 0.0075 +- 0.0119 px south.
     passes = open_product(config, "astrometry", "night", "parameters").meta["passes"]
     assert [p["pass"] for p in passes] == [1, 2], passes
     assert passes[0]["kernel_change_px"] > 50 * passes[0]["threshold_px"]
-    assert passes[1]["kernel_change_px"] <= passes[1]["threshold_px"]
+    second = passes[1]
+    assert not kernels_differ(
+        second["kernel_change_px"], second["kernel_change_error_px"], second["threshold_px"]
+    )
+    assert second["kernel_change_px"] < 0.05  # a fiftieth of the first pass's
     # 10 mas: a fifth of a pixel's typical bright-star centroid error (~50 mas).
     assert abs(figures.median_ra) < 10.0 and abs(figures.median_dec) < 10.0
     # The reference columns the zeropoint stage reads.
