@@ -139,6 +139,10 @@ def _shown(value: Any, limit: int = 40) -> str:
     return text if len(text) <= limit else "..." + text[3 - limit :]
 
 
+#: A key one of two configs lacks (:func:`config_change`).
+_NONE = object()
+
+
 def config_change(stage: str, recorded: Any, current: dict[str, Any], most: int = 3) -> str:
     """Why a unit's config hash changed, in the user's keys: ``'config changed: ...'``.
 
@@ -173,9 +177,6 @@ def config_change(stage: str, recorded: Any, current: dict[str, Any], most: int 
         return "config changed"
     more = f" and {len(lines) - most} more" if len(lines) > most else ""
     return f"config changed: {'; '.join(lines[:most])}{more}"
-
-
-_NONE = object()
 
 
 def damage_reason(exc: DamagedProductError) -> str:

@@ -689,11 +689,8 @@ def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
     row_table["time"].description = "readout time since meta['reference_time']"
     row_table["bias"].unit = "adu"
     row_table["bias"].description = "bias subtracted from the row (smoothed overscan)"
-    row_table[
-        "data"
-    ].description = (
-        "the row holds data: a block covers it, and it is no readout dropout and not all NaN"
-    )
+    has_data = "the row holds data: a block covers it, and it is no readout dropout and not all NaN"
+    row_table["data"].description = has_data
     out = {
         "image": image_hdulist(
             result.image,

@@ -50,7 +50,6 @@ hands the stage headers and rows); :func:`parse_block_header`,
 
 from __future__ import annotations
 
-import dataclasses
 import logging
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
@@ -640,7 +639,8 @@ def _one_clock_fault(problems: list[str], boundaries, off_lines: dict, tolerance
     for k in replaced:
         log.debug("%s", problems[k])
     line = drift.describe(boundaries, tolerance_rows)
-    kept = [p for k, p in enumerate(problems) if k not in set(replaced)]
+    gone = set(replaced)
+    kept = [p for k, p in enumerate(problems) if k not in gone]
     kept.insert(replaced[0], line)
     problems[:] = kept
     return drift
@@ -654,7 +654,7 @@ def _indexed_at(drift, blocks, rejected, tolerance_rows, start_ramp) -> NightInd
     """
     header = drift.header_line_time
     again = [
-        dataclasses.replace(b, line_time=drift.line_time)
+        replace(b, line_time=drift.line_time)
         if np.isclose(b.line_time, header, rtol=1e-9, atol=0)
         else b
         for b in blocks
