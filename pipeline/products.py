@@ -54,14 +54,14 @@ import re
 from collections.abc import Mapping
 from typing import TYPE_CHECKING
 
-import astropy.units as u
 import numpy as np
-from astropy.io import fits
 
 from pipeline.geometry.instrument import Camera, Site
 from pipeline.masks import BIT_MEANINGS, MASK_DTYPE, MaskBit
 
 if TYPE_CHECKING:
+    import astropy.units as u
+    from astropy.io import fits
     from astropy.nddata import CCDData
     from astropy.time import Time
 
@@ -120,6 +120,8 @@ def flag_header() -> fits.Header:
     astropy.io.fits.Header
         ``FLAGBITn = '<NAME>' / <meaning>`` for each defined bit ``n``.
     """
+    from astropy.io import fits
+
     header = fits.Header()
     for bit in MaskBit:
         number = int(bit).bit_length() - 1
@@ -165,6 +167,7 @@ _IAU1976_ELLIPSOID = (6378140.0, 1.0 / 298.257)
 
 def _geodetic_cards(location) -> list:
     """OBSGEO-L/B/H of a site: its geocentric X/Y/Z on the IAU 1976 ellipsoid (ERFA gc2gde)."""
+    import astropy.units as u
     import erfa
 
     xyz = np.array([location.x.to_value(u.m), location.y.to_value(u.m), location.z.to_value(u.m)])
@@ -212,6 +215,9 @@ def observation_header(
     -------
     astropy.io.fits.Header
     """
+    import astropy.units as u
+    from astropy.io import fits
+
     if not stop >= start:
         raise ValueError(f"stop ({stop} s) must not precede start ({start} s).")
     from astropy.time import TimeDelta
@@ -274,6 +280,8 @@ def night_grid_header(
     -------
     astropy.io.fits.Header
     """
+    from astropy.io import fits
+
     header = fits.Header()
     header["WCSNAMEA"] = ("NIGHT", "0-based night column and row of each pixel")
     for axis, (start, ctype, comment) in enumerate(
@@ -334,6 +342,7 @@ def night_grid_wcs(header: Mapping):
     astropy.wcs.WCS
         Zero-based pixel ``(x, y)`` to 0-based night column and row.
     """
+    from astropy.io import fits
     from astropy.wcs import WCS
 
     night_column(header)  # the same error when the header has no NIGHT grid
@@ -454,6 +463,8 @@ def _merged(first: fits.Header, second: fits.Header) -> fits.Header:
 
 
 def _plane(data: np.ndarray, header: fits.Header, name: str, cards) -> fits.ImageHDU:
+    from astropy.io import fits
+
     plane_header = header.copy()
     for key, value in cards:
         plane_header[key] = value
@@ -489,6 +500,9 @@ def image_hdulist(
     -------
     astropy.io.fits.HDUList
     """
+    import astropy.units as u
+    from astropy.io import fits
+
     image = np.asarray(image)
     if np.shape(variance) != image.shape or np.shape(flags) != image.shape:
         raise ValueError(
@@ -546,6 +560,7 @@ def ccddata_from_hdulist(hdul: fits.HDUList) -> CCDData:
     ValueError
         If a plane is missing or has no ``BUNIT``.
     """
+    import astropy.units as u
     from astropy.nddata import CCDData, VarianceUncertainty  # loads scipy: only when used
     from astropy.wcs import WCS
 

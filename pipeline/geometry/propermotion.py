@@ -3,11 +3,14 @@
 from __future__ import annotations
 
 import warnings
+from typing import TYPE_CHECKING
 
 import erfa
 import numpy as np
-from astropy.time import Time
 from numpy.typing import ArrayLike
+
+if TYPE_CHECKING:
+    from astropy.time import Time
 
 __all__ = ["positions_at_epoch"]
 
@@ -16,6 +19,8 @@ _JULIAN_YEAR_DAYS = 365.25
 
 
 def _as_time(value: Time | ArrayLike, name: str) -> Time:
+    from astropy.time import Time
+
     if isinstance(value, Time):
         return value
     try:

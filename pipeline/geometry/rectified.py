@@ -54,15 +54,18 @@ epoch is the header's time origin, ``DATEREF``/``MJDREF`` (``TIMESYS =
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import erfa
 import numpy as np
-from astropy.io import fits
-from astropy.time import Time, TimeDelta
-from astropy.wcs import WCS
 from numpy.typing import ArrayLike
 
 from pipeline.geometry.optics import EARTH_ROTATION_RATE
+
+if TYPE_CHECKING:
+    from astropy.io import fits
+    from astropy.time import Time
+    from astropy.wcs import WCS
 
 __all__ = ["RectifiedFrame", "column_times", "frame_of_date_matrix"]
 
@@ -198,6 +201,8 @@ class RectifiedFrame:
         -------
         RectifiedFrame
         """
+        from astropy.time import TimeDelta
+
         if n_rows < 1:
             raise ValueError(f"n_rows must be a positive number of night rows; got {n_rows}.")
         if pixel_scale is not None and not pixel_scale > 0:
@@ -315,6 +320,8 @@ class RectifiedFrame:
         -------
         astropy.io.fits.Header
         """
+        from astropy.io import fits
+
         pole_lon, pole_lat = _lonlat(self.matrix @ np.array([0.0, 0.0, 1.0]))
         ref_ra, ref_dec = _lonlat(self.matrix.T @ _unit(self.ra_ref, 0.0))
         header = fits.Header()
@@ -349,6 +356,8 @@ class RectifiedFrame:
 
     def wcs(self, x_start: int = 0, n_x: int | None = None) -> WCS:
         """Astropy WCS of the sub-image whose first column is ``x = x_start``."""
+        from astropy.wcs import WCS
+
         wcs = WCS(self.wcs_header(x_start, n_x))
         if n_x is not None:
             wcs.pixel_shape = (int(n_x), self.n_y)

@@ -20,23 +20,19 @@ import contextlib
 import logging
 import warnings
 from collections.abc import Iterator
+from typing import TYPE_CHECKING
 
-import astropy.units as u
 import numpy as np
-from astropy.coordinates import AltAz, EarthLocation
-from astropy.time import Time, TimeDelta
-from astropy.utils import iers
-from astropy.utils.exceptions import (
-    AstropyDeprecationWarning,
-    AstropyPendingDeprecationWarning,
-    AstropyWarning,
-)
 from erfa import ErfaWarning
 from numpy.typing import ArrayLike
 
 from pipeline._offline import astropy_offline
 from pipeline.exceptions import GeometryWarning
 from pipeline.geometry.instrument import Site
+
+if TYPE_CHECKING:
+    from astropy.coordinates import AltAz, EarthLocation
+    from astropy.time import Time
 
 __all__ = [
     "altaz_frame",
@@ -54,6 +50,9 @@ log = logging.getLogger(__name__)
 
 def earth_location(site: Site) -> EarthLocation:
     """The site as an astropy :class:`~astropy.coordinates.EarthLocation` (WGS84)."""
+    import astropy.units as u
+    from astropy.coordinates import EarthLocation
+
     return EarthLocation.from_geodetic(
         lon=site.longitude * u.deg, lat=site.latitude * u.deg, height=site.height * u.m
     )
@@ -99,6 +98,9 @@ def altaz_frame(site: Site, obstime: Time) -> AltAz:
     Carries the site's pressure, temperature, relative humidity and effective
     wavelength, so that astropy/ERFA apply refraction as well as aberration.
     """
+    import astropy.units as u
+    from astropy.coordinates import AltAz
+
     return AltAz(
         obstime=obstime,
         location=earth_location(site),
@@ -111,6 +113,8 @@ def altaz_frame(site: Site, obstime: Time) -> AltAz:
 
 def times_since(start: Time, seconds: ArrayLike) -> Time:
     """Absolute times ``start + seconds`` (elapsed SI seconds, leap seconds counted)."""
+    from astropy.time import TimeDelta
+
     return start + TimeDelta(np.asarray(seconds, dtype=float), format="sec")
 
 
@@ -124,12 +128,17 @@ def utc_time(value: str | float | Time, format: str | None = None) -> Time:
     format : str or None, optional
         Astropy time format (guessed when None).
     """
+    from astropy.time import Time
+
     with offline_astropy_warnings("The time " + repr(value)):
         return Time(value, format=format, scale="utc")
 
 
 def iers_table_end() -> Time:
     """Last date covered by the bundled IERS Earth-orientation table (incl. predictions)."""
+    from astropy.time import Time
+    from astropy.utils import iers
+
     with astropy_offline():
         table = iers.earth_orientation_table.get()
     return Time(float(table["MJD"][-1].value), format="mjd", scale="utc")
@@ -149,6 +158,12 @@ def offline_astropy_warnings(what: str = "the sky geometry") -> Iterator[None]:
     what : str
         What is being computed, for the message.
     """
+    from astropy.utils.exceptions import (
+        AstropyDeprecationWarning,
+        AstropyPendingDeprecationWarning,
+        AstropyWarning,
+    )
+
     with warnings.catch_warnings(record=True) as caught, astropy_offline():
         warnings.simplefilter("always")
         yield

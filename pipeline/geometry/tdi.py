@@ -49,9 +49,9 @@ from __future__ import annotations
 import itertools
 import logging
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy.time import Time
 from numpy.typing import ArrayLike
 
 from pipeline.geometry.instrument import Camera, Site
@@ -63,6 +63,9 @@ from pipeline.geometry.optics import (
 )
 from pipeline.geometry.propermotion import positions_at_epoch
 from pipeline.geometry.zenith import ZenithAxis
+
+if TYPE_CHECKING:
+    from astropy.time import Time
 
 __all__ = [
     "TDIModel",
@@ -189,6 +192,8 @@ class TDIModel:
         line_time: float | None = None,
         field_margin: float = 1.25,
     ) -> None:
+        from astropy.time import Time
+
         if not isinstance(start, Time):
             raise TypeError(f"start must be an astropy Time; got {type(start).__name__}.")
         if not duration_s >= 0:

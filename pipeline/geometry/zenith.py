@@ -40,17 +40,18 @@ with cubic splines.
 from __future__ import annotations
 
 import logging
+from typing import TYPE_CHECKING
 
-import astropy.units as u
 import numpy as np
-from astropy.coordinates import ICRS, SkyCoord
-from astropy.time import Time
 from numpy.typing import ArrayLike
 
 from pipeline._offline import load_earth_orientation
 from pipeline.geometry.instrument import Site
 from pipeline.geometry.optics import ARCSEC_PER_RADIAN
 from pipeline.geometry.sitetime import altaz_frame, offline_astropy_warnings, times_since
+
+if TYPE_CHECKING:
+    from astropy.time import Time
 
 __all__ = [
     "ZenithAxis",
@@ -260,6 +261,8 @@ class ZenithAxis:
 
     # ------------------------------------------------------------------ build
     def _build(self, n_grid: int) -> None:
+        import astropy.units as u
+        from astropy.coordinates import ICRS, SkyCoord
         from scipy.interpolate import CubicSpline
 
         # The transformations need Earth orientation: the bundled tables from

@@ -3,27 +3,38 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
-import astropy.units as u
 from pydantic import Field, field_validator, model_validator
 
 from pipeline.config import StrictModel
 
+if TYPE_CHECKING:
+    import astropy.units as u
+
 __all__ = ["ReferenceColumns", "ReferenceOptions", "ReferenceUnits"]
 
-# Physical type each kind of column must have (unknown units are config errors).
+#: Physical type each kind of column must have (unknown units are config
+#: errors), as astropy unit strings: :func:`kind_unit` parses them when a
+#: catalogue is read, so that reading a config does not load astropy.units.
 UNIT_KINDS = {
-    "ra": u.deg,
-    "dec": u.deg,
-    "pm_ra": u.mas / u.yr,
-    "pm_dec": u.mas / u.yr,
-    "magnitude": u.mag,
-    "magnitude_error": u.mag,
-    "colour": u.mag,
-    "parallax": u.mas,
-    "radial_velocity": u.km / u.s,
+    "ra": "deg",
+    "dec": "deg",
+    "pm_ra": "mas / yr",
+    "pm_dec": "mas / yr",
+    "magnitude": "mag",
+    "magnitude_error": "mag",
+    "colour": "mag",
+    "parallax": "mas",
+    "radial_velocity": "km / s",
 }
+
+
+def kind_unit(kind: str) -> u.UnitBase:
+    """The astropy unit a ``kind`` of column (a key of :data:`UNIT_KINDS`) is converted to."""
+    import astropy.units as u
+
+    return u.Unit(UNIT_KINDS[kind])
 
 
 class ReferenceColumns(StrictModel):
@@ -154,16 +165,17 @@ class ReferenceOptions(StrictModel):
 
 
 def parse_unit(text: str, kind: str, where: str) -> u.UnitBase:
+    import astropy.units as u
+
     try:
         unit = u.Unit(text, parse_strict="raise")
     except (ValueError, TypeError):
         raise ValueError(
-            f"{where}: unknown unit {text!r}; write an astropy unit such as "
-            f"{UNIT_KINDS[kind].to_string()!r}"
+            f"{where}: unknown unit {text!r}; write an astropy unit such as {UNIT_KINDS[kind]!r}"
         ) from None
-    if not unit.is_equivalent(UNIT_KINDS[kind]):
+    if not unit.is_equivalent(kind_unit(kind)):
         raise ValueError(
             f"{where}: {text!r} is not a unit of the right kind; the {kind} column needs one "
-            f"like {UNIT_KINDS[kind].to_string()!r}"
+            f"like {UNIT_KINDS[kind]!r}"
         )
     return unit

@@ -5,19 +5,20 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import astropy.units as u
 import numpy as np
-from astropy.table import QTable
-from astropy.time import Time
 
 from pipeline.catalogs import GAIA_EPOCH, HIPPARCOS_EPOCH, read_gaia_bright, read_hipparcos
 from pipeline.exceptions import ReferenceCatalogError
 from pipeline.geometry.propermotion import positions_at_epoch
 from pipeline.reference._band import SkyBand
 from pipeline.reference._files import TableFile, open_table_file
-from pipeline.reference._options import UNIT_KINDS, ReferenceOptions, parse_unit
+from pipeline.reference._options import ReferenceOptions, kind_unit, parse_unit
+
+if TYPE_CHECKING:
+    from astropy.table import QTable
+    from astropy.time import Time
 
 __all__ = ["read_reference"]
 
@@ -96,11 +97,13 @@ def _unit_factor(
             )
         unit = declared
     if unit is None:
-        unit = UNIT_KINDS[kind]
-    return float(unit.to(UNIT_KINDS[kind]))
+        unit = kind_unit(kind)
+    return float(unit.to(kind_unit(kind)))
 
 
 def _julian_year(obs_epoch: Time | float) -> float:
+    from astropy.time import Time
+
     if isinstance(obs_epoch, Time):
         return float(obs_epoch.tcb.jyear)
     return float(obs_epoch)
@@ -270,6 +273,9 @@ def _read_file(options: ReferenceOptions, band: SkyBand, obs_epoch, base_dir: Pa
 
 
 def _assemble(pieces, source, epoch, n_read, n_in_band, band, dec_range, limits) -> QTable:
+    import astropy.units as u
+    from astropy.table import QTable
+
     kinds = pieces[0].keys() if pieces else ()
     data = {k: np.concatenate([p[k] for p in pieces]) for k in kinds}
     n_selected = len(data["ra"]) if data else 0

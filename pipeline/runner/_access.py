@@ -5,8 +5,6 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from astropy.io import fits
-
 from pipeline.config import Config
 from pipeline.products import FLUX_EXTENSION, ccddata_from_hdulist
 from pipeline.runner._night import night_dir
@@ -31,6 +29,8 @@ def read_image(path: str | Path) -> CCDData:
     astropy.nddata.CCDData
         See :func:`pipeline.products.ccddata_from_hdulist`.
     """
+    from astropy.io import fits
+
     with fits.open(path, memmap=False) as hdul:
         return ccddata_from_hdulist(hdul)
 
@@ -109,6 +109,8 @@ def open_product(
         If the unit is not done or has no such product (the message lists
         what it has).
     """
+    from astropy.io import fits
+
     path, entry = _locate(config, stage, unit, product)
     value = read_product(path, entry)
     if isinstance(value, fits.HDUList) and FLUX_EXTENSION in value:

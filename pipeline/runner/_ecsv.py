@@ -60,15 +60,15 @@ import textwrap
 import threading
 import types
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import yaml
-from astropy.io.ascii.ecsv import Ecsv, EcsvOutputter
-from astropy.table import Column, Table, serialize
-from astropy.table import meta as table_meta
-from astropy.utils.data_info import serialize_context_as
 
 from pipeline._threads import in_two_threads
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = ["ReadBack", "read_ecsv", "write_ecsv"]
 
@@ -276,6 +276,7 @@ def _libyaml_writer() -> type | None:
     libyaml, or either function no longer looks the name up.
     """
     from astropy.io.ascii.ecsv import Ecsv, EcsvHeader
+    from astropy.table import meta as table_meta
 
     write, to_yaml = EcsvHeader.write, table_meta.get_yaml_from_header
     if not yaml.__with_libyaml__ or "meta" not in write.__code__.co_names:
@@ -367,6 +368,9 @@ def _fast_columns(table: Table) -> list | None:
     None when the table has no column, a column is not one the fast path
     writes (see the module's docstring) or the table carries indices.
     """
+    from astropy.table import serialize
+    from astropy.utils.data_info import serialize_context_as
+
     if table.indices or not table.colnames:
         return None
     with serialize_context_as("ecsv"):
@@ -413,6 +417,8 @@ def _n_values(columns: list) -> int:
 
 def _fast_column(column) -> bool:
     """Whether the fast path prints ``column`` (see the module's docstring)."""
+    from astropy.table import Column
+
     values = column.data
     if type(column) is not Column or values.dtype.kind not in _FAST_KINDS:
         return False
@@ -548,7 +554,7 @@ def _notation_flags(texts) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return holding(ord("e")), holding(ord(".")), one_digit
 
 
-def read_ecsv(path: Path, cls: type[Table] = Table) -> Table:
+def read_ecsv(path: Path, cls: type[Table] | None = None) -> Table:
     """Read an ECSV file as astropy's ``cls.read(path, format='ascii.ecsv')`` does.
 
     Parameters
@@ -556,7 +562,7 @@ def read_ecsv(path: Path, cls: type[Table] = Table) -> Table:
     path : pathlib.Path
         The file.
     cls : type, optional
-        ``Table`` or ``QTable``: the class of the table returned.
+        ``Table`` (the default) or ``QTable``: the class of the table returned.
 
     Returns
     -------
@@ -564,6 +570,10 @@ def read_ecsv(path: Path, cls: type[Table] = Table) -> Table:
         The table, with the same columns, values, dtypes, units, descriptions,
         formats and meta as astropy's reader gives.
     """
+    if cls is None:
+        from astropy.table import Table
+
+        cls = Table
     table = _read_plain(Path(path).read_bytes())
     if table is None:
         return cls.read(path, format="ascii.ecsv")
@@ -617,6 +627,8 @@ def _plain_header(header: str) -> tuple | None:
     ``dtypes`` are the columns' values' (a vector's elements'), ``lengths``
     those of :func:`_vector_length`.
     """
+    from astropy.io.ascii.ecsv import Ecsv
+
     if _OTHER_COLUMNS.search(header):
         return None  # found before the YAML is parsed: astropy reads such files alone
     reader = Ecsv()
@@ -641,7 +653,7 @@ def _assembled(reader, columns: list, values: list[np.ndarray]) -> Table:
     for column, data in zip(columns, values, strict=True):
         column.data = data
     reader.meta["table"].update(reader.header.table_meta)
-    return _Outputter()(columns, reader.meta)
+    return _outputter_class()()(columns, reader.meta)
 
 
 @functools.cache
@@ -652,44 +664,45 @@ def _get_cols():
     parser (~13 ms for a detect catalogue's 28 columns and meta, 0.4 s of
     the 4096-column night's catalog stage, under Python's lock).  This is
     astropy's own function (its code, defaults and closure) with the name
-    ``meta`` bound to :class:`_LibyamlMeta`, whose
-    ``get_header_from_yaml`` builds the same objects with astropy's
+    ``meta`` bound to a namespace whose ``get_header_from_yaml``
+    (:func:`_libyaml_header`) builds the same objects with astropy's
     constructors through libyaml's scanner and parser, and hands any header
     it cannot read to astropy's.  astropy's own function when PyYAML has no
     libyaml, or when it no longer looks the parser up as ``meta``.
     """
     from astropy.io.ascii.ecsv import EcsvHeader
+    from astropy.table import meta as table_meta
 
     original = EcsvHeader.get_cols
     if not yaml.__with_libyaml__ or "meta" not in original.__code__.co_names:
         return original
-    return _with_names(original, meta=_LibyamlMeta)
+    meta = types.SimpleNamespace(
+        YamlParseError=table_meta.YamlParseError, get_header_from_yaml=_libyaml_header
+    )
+    return _with_names(original, meta=meta)
 
 
-class _LibyamlMeta:
-    """``astropy.table.meta``, its ``get_header_from_yaml`` by libyaml (see :func:`_get_cols`)."""
+def _libyaml_header(lines: list[str]):
+    """astropy's header dict of the ECSV header ``lines`` (comment marks removed)."""
+    from astropy.table import meta as table_meta
 
-    YamlParseError = table_meta.YamlParseError
-
-    @staticmethod
-    def get_header_from_yaml(lines: list[str]):
-        """astropy's header dict of the ECSV header ``lines`` (comment marks removed)."""
-        text = textwrap.dedent("\n".join(lines))  # as astropy's
-        # The first line is the '%ECSV 1.0' version line, a directive libyaml
-        # refuses and PyYAML's parser passes over; the document starts after it.
-        version, _, document = text.partition("\n")
-        if version.startswith("%ECSV"):
-            try:
-                return yaml.load(document, Loader=_libyaml_loader())
-            except Exception:  # astropy's parser reads it, or says why not
-                pass
-        return table_meta.get_header_from_yaml(lines)
+    text = textwrap.dedent("\n".join(lines))  # as astropy's
+    # The first line is the '%ECSV 1.0' version line, a directive libyaml
+    # refuses and PyYAML's parser passes over; the document starts after it.
+    version, _, document = text.partition("\n")
+    if version.startswith("%ECSV"):
+        try:
+            return yaml.load(document, Loader=_libyaml_loader())
+        except Exception:  # astropy's parser reads it, or says why not
+            pass
+    return table_meta.get_header_from_yaml(lines)
 
 
 @functools.cache
 def _libyaml_loader() -> type:
     """A libyaml loader with the constructors of astropy's table header loader."""
     from astropy.io.misc.yaml import AstropyLoader
+    from astropy.table import meta as table_meta
 
     class Loader(yaml.CSafeLoader):
         """libyaml's scanner and parser, PyYAML's resolver, astropy's constructors."""
@@ -782,8 +795,13 @@ def _parse_vectors(cells, dtype: np.dtype, length: int) -> np.ndarray:
     return values.reshape(len(cells), length).astype(dtype, copy=False)
 
 
-class _Outputter(EcsvOutputter):
+@functools.cache
+def _outputter_class() -> type:
     """astropy's ECSV outputter for columns whose data are converted already."""
+    from astropy.io.ascii.ecsv import EcsvOutputter
 
-    def _convert_vals(self, cols):
-        pass
+    class Outputter(EcsvOutputter):
+        def _convert_vals(self, cols):
+            pass
+
+    return Outputter

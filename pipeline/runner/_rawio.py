@@ -13,14 +13,18 @@ import warnings
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from astropy.io import fits
-from astropy.table import Table
 
 from pipeline.runner._store import hash_json
 from pipeline.stages.base import BLOCK_INDEX, BLOCK_INDEX_COLUMNS, PixelSummary, RawFile
+
+if TYPE_CHECKING:
+    from astropy.io import fits
+    from astropy.table import Table
+
+    from pipeline.runner._blockrows import BlockRows
 
 __all__ = [
     "blank_to_nan",
@@ -158,6 +162,8 @@ def measurable(hdul: fits.HDUList, index: int, size: int | None) -> bool:
     That is, the bytes of the FITS stream are known (a plain file, or a cut
     compressed stream read from memory) and the image is not tile-compressed.
     """
+    from astropy.io import fits
+
     return size is not None and not isinstance(hdul[index], fits.CompImageHDU)
 
 
@@ -235,6 +241,8 @@ def open_raw(path: Path, **kwargs: Any) -> Iterator[tuple[fits.HDUList, int | No
         decompressed bytes of a cut compressed file (read from memory), None
         for a whole compressed file.
     """
+    from astropy.io import fits
+
     path = Path(path)
     size = _file_size(path)
     try:
@@ -262,6 +270,8 @@ def read_raw_files(raw_dir: Path, names: Sequence[str], *, pixels: bool = True) 
     ``complete_rows`` set (:func:`complete_rows`) and only those rows
     summarised, so that ingest can use them and report the rest as lost.
     """
+    from astropy.io import fits
+
     files = []
     for name in names:
         path = raw_dir / name
@@ -365,6 +375,8 @@ def compressed_damage(path: Path) -> str | None:
 
 def check_block_index(index: Any, stage_name: str) -> Table:
     """Check that a stage's ``block_index`` product has the required columns."""
+    from astropy.table import Table
+
     if not isinstance(index, Table):
         raise TypeError(
             f"Stage {stage_name!r} must return {BLOCK_INDEX!r} as an astropy Table; "
@@ -379,21 +391,21 @@ def check_block_index(index: Any, stage_name: str) -> Table:
     return index
 
 
-def block_index_rows(index: Table) -> int:
+def block_index_rows(index: Table | BlockRows) -> int:
     """Number of rows in the night: ``max(row_start + n_rows)`` (0 if no block)."""
     if len(index) == 0:
         return 0
     return int(np.max(np.asarray(index["row_start"]) + np.asarray(index["n_rows"])))
 
 
-def overlapping_blocks(index: Table, lo: int, hi: int) -> np.ndarray:
+def overlapping_blocks(index: Table | BlockRows, lo: int, hi: int) -> np.ndarray:
     """Indices of the block index rows that hold any of night rows ``[lo, hi)``."""
     start = np.asarray(index["row_start"], dtype=np.int64)
     stop = start + np.asarray(index["n_rows"], dtype=np.int64)
     return np.flatnonzero((start < hi) & (stop > lo))
 
 
-def _overlapping(index: Table, lo: int, hi: int) -> list[tuple[str, int, int, int]]:
+def _overlapping(index: Table | BlockRows, lo: int, hi: int) -> list[tuple[str, int, int, int]]:
     # by column, not by rows of a sliced table (~1 ms per slice in astropy)
     columns = [index[name] for name in ("file", "hdu", "row_start", "n_rows")]
     return [
@@ -403,7 +415,7 @@ def _overlapping(index: Table, lo: int, hi: int) -> list[tuple[str, int, int, in
 
 
 def blocks_fingerprint(
-    raw_dir: Path, index: Table, lo: int, hi: int, *, flip_rows: bool = False
+    raw_dir: Path, index: Table | BlockRows, lo: int, hi: int, *, flip_rows: bool = False
 ) -> str:
     """Hash of what :func:`read_rows` would read for rows ``[lo, hi)``."""
     blocks = _overlapping(index, lo, hi)
@@ -476,7 +488,7 @@ def read_block_readout_rows(
 
 
 def read_rows(
-    raw_dir: Path, index: Table, lo: int, hi: int, *, flip_rows: bool = False
+    raw_dir: Path, index: Table | BlockRows, lo: int, hi: int, *, flip_rows: bool = False
 ) -> np.ndarray:
     """Assemble night rows ``[lo, hi)`` from the raw blocks, in readout order.
 
@@ -484,7 +496,7 @@ def read_rows(
     ----------
     raw_dir : pathlib.Path
         Folder the ``file`` column is relative to.
-    index : astropy.table.Table
+    index : astropy.table.Table or BlockRows
         Block index (columns ``file``, ``hdu``, ``row_start``, ``n_rows``).
     lo, hi : int
         Night rows to read (scan axis).

@@ -48,15 +48,16 @@ import uuid
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from astropy.io import fits
-from astropy.table import QTable, Table
-from astropy.table.meta import get_header_from_yaml
 
 from pipeline.exceptions import DamagedProductError
 from pipeline.runner._ecsv import ReadBack, read_ecsv, write_ecsv
+
+if TYPE_CHECKING:
+    from astropy.io import fits
+    from astropy.table import Table
 
 __all__ = [
     "DAMAGED_NAME",
@@ -247,6 +248,9 @@ def _write_json_file(path: Path, data: Any) -> tuple[str, int]:
 
 
 def _product_kind(name: str, value: Any) -> str:
+    from astropy.io import fits
+    from astropy.table import Table
+
     if isinstance(value, np.ndarray):
         if value.ndim == 0:
             raise TypeError(f"Product {name!r} is a 0-d array; return it in a dict instead.")
@@ -292,6 +296,8 @@ def _with_cards(header: fits.Header, cards: Mapping[str, tuple[Any, str]]) -> fi
 
 
 def _writer(kind: str, value: Any, cards: Mapping[str, tuple[Any, str]]) -> Callable[[Path], None]:
+    from astropy.io import fits
+
     if kind == "array":
         data = value.astype(np.uint8) if value.dtype == bool else value
         hdu = fits.PrimaryHDU(data=data, header=_with_cards(fits.Header(), cards))
@@ -330,6 +336,8 @@ class _TableWriter:
         self.as_read: ReadBack | None = None
 
     def __call__(self, temp: Path) -> None:
+        from astropy.table import QTable, Table
+
         cls = QTable if isinstance(self.table, QTable) else Table  # as read_product reads it
         keep = _table_bytes(self.table) <= WRITTEN_BYTES
         self.as_read = write_ecsv(self.table, temp, as_read=cls if keep else None)
@@ -371,6 +379,8 @@ def write_products(
         Provenance keywords added to FITS headers (deterministic values only,
         so that the same inputs give byte-identical files).
     """
+    from astropy.table import QTable
+
     kinds = check_products(products)
     unit_dir.mkdir(parents=True, exist_ok=True)
     entries = {}
@@ -394,6 +404,9 @@ def write_products(
 
 def read_product(path: Path, entry: Mapping[str, Any]) -> Any:
     """Load one product file as the type the stage returned (``entry`` from the sidecar)."""
+    from astropy.io import fits
+    from astropy.table import QTable, Table
+
     kind = entry["kind"]
     if kind == "array":
         with fits.open(path, memmap=False) as hdul:
@@ -431,6 +444,9 @@ def read_external(path: Path) -> Any:
     gzipped): the first table HDU as a Table, else the primary image as an
     array; ``.json``: the JSON value.
     """
+    from astropy.io import fits
+    from astropy.table import Table
+
     path = Path(path)
     suffixes = [s.lower() for s in path.suffixes if s.lower() != ".gz"]
     kind = suffixes[-1] if suffixes else ""
@@ -457,6 +473,8 @@ def _read_ecsv(path: Path, cls: type[Table]) -> Table:
     rows and a vector column (subtype ``'float32[5]'``) but cannot read it
     back ("shape mismatch"); such a table is rebuilt from the file's header.
     """
+    from astropy.table.meta import get_header_from_yaml
+
     try:
         return read_ecsv(path, cls)
     except ValueError:
@@ -615,6 +633,8 @@ def _load_checked(
     path: Path, entry: Mapping[str, Any], files: contextlib.ExitStack | None = None
 ) -> tuple[str, Any]:
     """``(SHA-256, value)`` of one product, checked first (see :func:`_read_checked`)."""
+    from astropy.io import fits
+
     digest = verify_product(path, entry)
     parsed = _parsed(path, digest) if entry["kind"] == "table" else None
     if parsed is not None:

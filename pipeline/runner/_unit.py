@@ -21,9 +21,8 @@ import warnings
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from astropy.table import Table
 from pydantic import BaseModel
 
 import pipeline
@@ -50,6 +49,9 @@ from pipeline.runner._store import (
 )
 from pipeline.runner._warm import settle_after_warm, unit_running, wait_warm
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, ExternalFile, Stage, StageContext
+
+if TYPE_CHECKING:
+    from pipeline.runner._blockrows import BlockRows
 
 __all__ = ["InputSpec", "UnitOutcome", "UnitTask", "execute_unit", "failed_outcome"]
 
@@ -83,7 +85,7 @@ class InputSpec:
     units: tuple[tuple[Path, Mapping[str, Any]], ...] = ()
     raw_dir: Path | None = None
     names: tuple[str, ...] = ()
-    index: Table | None = None
+    index: BlockRows | None = None
     lo: int = 0
     hi: int = 0
     flip_rows: bool = False

@@ -84,20 +84,18 @@ reversed (``c_file = n_columns - 1 - c``); the truth table gives both.
 from __future__ import annotations
 
 import argparse
+import datetime
 import functools
 import gzip
 import io
 import logging
+import re
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
-import astropy.units as u
 import numpy as np
-from astropy.io import fits
-from astropy.table import Table, vstack
-from astropy.time import Time
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from pipeline._offline import astropy_offline
@@ -139,6 +137,10 @@ from pipeline.simulate._starfield import (
 from pipeline.simulate._starfield import extra_stars as user_stars
 from pipeline.simulate._trail import TrailOptions, trail_samples
 from pipeline.simulate._truth import reference_table, truth_table
+
+if TYPE_CHECKING:
+    from astropy.io import fits
+    from astropy.table import Table
 
 __all__ = [
     "ActualOptions",
@@ -341,6 +343,10 @@ class SimulationOptions(_Options):
     @field_validator("start")
     @classmethod
     def _check_start(cls, value: str) -> str:
+        if _plain_utc_time(value):  # astropy reads it: no need to load astropy.time
+            return value
+        from astropy.time import Time
+
         try:
             Time(value, format="isot", scale="utc")
         except ValueError:
@@ -348,6 +354,21 @@ class SimulationOptions(_Options):
                 f"start must be an ISO 8601 UTC time such as '2026-10-15T23:30:00'; got {value!r}."
             ) from None
         return value
+
+
+def _plain_utc_time(value: str) -> bool:
+    """``value`` is ``YYYY-MM-DDThh:mm:ss[.fff]`` with a calendar date and a time of day.
+
+    Every such string is one astropy's ``isot`` format reads; the others
+    (leap seconds, shorter forms) are left to astropy.
+    """
+    if re.fullmatch(r"\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}(\.\d+)?", value, re.ASCII) is None:
+        return False
+    try:
+        datetime.datetime.strptime(value[:19], "%Y-%m-%dT%H:%M:%S")
+    except ValueError:
+        return False
+    return True
 
 
 #: Name under which the config layer registers the section model.
@@ -447,6 +468,9 @@ def tdi_model(site: Site, camera: Camera, options: SimulationOptions):
         The line time the config implies, written to the headers (LINETIME),
         seconds.
     """
+    import astropy.units as u
+    from astropy.time import Time
+
     from pipeline.geometry.tdi import TDIModel
 
     start = Time(options.start, format="isot", scale="utc")
@@ -501,6 +525,8 @@ def _margins(site, camera, options, model, psf) -> tuple[float, float]:
 
 def _draw_field(camera, options, model, margin, margin_rows, pad=0.0) -> Table:
     """The night's star field (synthetic and catalogue stars), ``pad`` degrees wider."""
+    from astropy.table import vstack
+
     n_tdi, dt = camera.tdi_rows, model.line_time
     n_rows = options.n_blocks * options.block_rows
     ra_range, dec_range = field_bounds(
@@ -582,6 +608,10 @@ def simulate_night(
         exposure), ``saturated`` (approximate: static-star peak above the full
         well).  ``reference``: see :class:`ReferenceOptions`.
     """
+    import astropy.units as u
+    from astropy.table import vstack
+    from astropy.time import Time
+
     from pipeline.geometry.propermotion import positions_at_epoch
 
     if not isinstance(options, SimulationOptions):
@@ -794,6 +824,9 @@ def night_options(site: Site, options: SimulationOptions, repeat: RepeatOptions)
         first night's local apparent sidereal time (astropy/ERFA), ``psf`` and
         ``sky`` changed as ``repeat`` says, ``trails`` from ``repeat``.
     """
+    import astropy.units as u
+    from astropy.time import Time
+
     start = Time(options.start, format="isot", scale="utc")
     later = start + repeat.days * SIDEREAL_DAY * u.s
     lst0 = start.sidereal_time("apparent", longitude=site.longitude * u.deg)
@@ -971,6 +1004,9 @@ def _block_header(b, t_start, dt_nominal, site, camera, start, options) -> fits.
     ``start`` is the time the headers give row 0 of block 0 (the true time plus
     ``actual.clock_offset``); ``camera`` is the camera the config describes.
     """
+    import astropy.units as u
+    from astropy.io import fits
+
     det = options.detector
     n_rows, n_cols, n_os = options.block_rows, camera.n_columns, options.overscan_columns
     date = (start + t_start * u.s).utc
@@ -1025,6 +1061,8 @@ def write_night(night: SimulatedNight, out_dir: str | Path) -> list[Path]:
     list of Path
         The files written, blocks first.
     """
+    from astropy.io import fits
+
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     opts = night.meta.get("options", {})

@@ -7,9 +7,12 @@ observation epoch.
 
 from __future__ import annotations
 
-import astropy.units as u
+from typing import TYPE_CHECKING
+
 import numpy as np
-from astropy.table import Table
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = [
     "catalog_stars",
@@ -59,6 +62,9 @@ def draw_star_field(
     astropy.table.Table
         ``ra``, ``dec`` (deg), ``pmra``, ``pmdec`` (mas/yr), ``mag``, ``colour``.
     """
+    import astropy.units as u
+    from astropy.table import Table
+
     ra0, ra1 = ra_range
     d0, d1 = np.radians(sorted(dec_range))
     area = np.radians(ra1 - ra0) * (np.sin(d1) - np.sin(d0)) * (180.0 / np.pi) ** 2
@@ -102,6 +108,9 @@ def field_bounds(model, camera, t_lo: float, t_hi: float, margin_px: float):
 
 def catalog_stars(kind: str, ra_range, dec_range, options) -> Table:
     """Real stars from a packaged catalogue, at the reference epoch."""
+    import astropy.units as u
+    from astropy.table import Table
+
     from pipeline.catalogs import HIPPARCOS_EPOCH, read_gaia_bright, read_hipparcos
     from pipeline.geometry.propermotion import positions_at_epoch
 
@@ -144,6 +153,9 @@ def catalog_stars(kind: str, ra_range, dec_range, options) -> Table:
 
 
 def extra_stars(extra: Table, options) -> Table:
+    import astropy.units as u
+    from astropy.table import Table
+
     missing = [k for k in ("ra", "dec", "mag") if k not in extra.colnames]
     if missing:
         raise ValueError(

@@ -5,11 +5,15 @@ Private helpers of :mod:`pipeline.simulate`.
 
 from __future__ import annotations
 
-import astropy.units as u
+import functools
+from typing import TYPE_CHECKING
+
 import numpy as np
-from astropy.table import Table
 
 from pipeline.simulate._exposure import peak_fraction
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = ["reference_table", "rounded_table", "truth_table"]
 
@@ -17,6 +21,9 @@ __all__ = ["reference_table", "rounded_table", "truth_table"]
 def truth_table(
     stars, ra, dec, tracks, r_geom, c_geom, cols, psf, options, camera, star_response=None
 ):
+    import astropy.units as u
+    from astropy.table import Table
+
     n_cols = camera.n_columns
     recorded = tracks.recorded
     # Light-weighted centroid = exact time mean + (weighted - unweighted) sample means.
@@ -62,17 +69,23 @@ def truth_table(
     return _add_units(rounded_table(t), units)
 
 
-# Decimals kept in the written tables: 1e-9 deg = 3.6 micro-arcsec, 1e-6 px, 1e-3 e-.
-_DECIMALS = {u.deg: 9, u.pix: 6, u.electron: 3, u.mag: 5, u.s: 6, u.mas / u.yr: 4, u.mas: 3}
+@functools.cache
+def _decimals() -> dict:
+    """Decimals kept in the written tables, by unit: 1e-9 deg = 3.6 micro-arcsec, 1e-6 px,
+    1e-3 e-."""
+    import astropy.units as u
+
+    return {u.deg: 9, u.pix: 6, u.electron: 3, u.mag: 5, u.s: 6, u.mas / u.yr: 4, u.mas: 3}
 
 
 def rounded_table(table: Table) -> Table:
     """Round float columns to a precision far below any use (keeps the ECSV small)."""
+    decimals = _decimals()
     for name in table.colnames:
         col = table[name]
-        if col.dtype.kind == "f" and col.unit in _DECIMALS:
+        if col.dtype.kind == "f" and col.unit in decimals:
             unit = col.unit
-            table[name] = np.round(col, _DECIMALS[unit])
+            table[name] = np.round(col, decimals[unit])
             table[name].unit = unit  # np.round returns a column without it
     return table
 
@@ -86,6 +99,9 @@ def _add_units(table: Table, units: dict[str, str]) -> Table:
 
 def reference_table(stars, truth, options, rng) -> Table:
     """Reference catalogue: truth at the reference epoch with catalogue errors."""
+    import astropy.units as u
+    from astropy.table import Table
+
     ref = options.reference
     keep = np.asarray(truth["mag"], float) <= ref.mag_limit
     n = int(keep.sum())

@@ -8,14 +8,17 @@ standard keywords of :func:`pipeline.products.observation_header`.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy.io import fits
-from astropy.table import Table
-from astropy.time import Time
 
 from pipeline.products import observation_header
 from pipeline.stages.base import StageContext
+
+if TYPE_CHECKING:
+    from astropy.io import fits
+    from astropy.table import Table
+    from astropy.time import Time
 
 __all__ = ["RowTimes", "observation_for_rows", "row_times"]
 
@@ -53,6 +56,8 @@ class RowTimes:
 
 def row_times(index: Table, lo: int, hi: int) -> RowTimes:
     """Times of night rows ``[lo, hi)`` from the ingest stage's block index."""
+    from astropy.time import Time
+
     if len(index) == 0 or index.meta.get("reference_time") is None:
         raise ValueError("the block index is empty; ingest found no usable block this night.")
     start = np.asarray(index["row_start"], dtype=np.int64)

@@ -339,7 +339,7 @@ def segment_rows(index: Any) -> list[tuple[int, int]]:
 
     Parameters
     ----------
-    index : astropy.table.Table
+    index : astropy.table.Table or pipeline.runner._blockrows.BlockRows
         A block index (columns ``row_start``, ``n_rows``, optionally ``segment``).
 
     Returns

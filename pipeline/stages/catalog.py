@@ -19,13 +19,16 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy.table import QTable, Table, vstack
 from pydantic import BaseModel, ConfigDict
 
 from pipeline.stages.base import Stage
 from pipeline.stages.detect._night import MERGE_RULE
+
+if TYPE_CHECKING:
+    from astropy.table import QTable, Table
 
 __all__ = ["STAGE", "CatalogOptions", "common_meta", "stack_catalogs"]
 
@@ -61,6 +64,8 @@ def stack_catalogs(catalogs: Sequence[QTable], seeing: Sequence[Table]) -> tuple
     ValueError
         If no stretch is given (the stage is then blocked, not run).
     """
+    from astropy.table import vstack
+
     if not catalogs or len(catalogs) != len(seeing):
         raise ValueError(
             f"stack_catalogs needs one catalogue and one seeing table per stretch, at least "

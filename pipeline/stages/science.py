@@ -39,11 +39,9 @@ from __future__ import annotations
 import logging
 import re
 import warnings
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy import units as u
-from astropy.io import fits
-from astropy.wcs import WCS, FITSFixedWarning
 from pydantic import BaseModel, ConfigDict
 
 from pipeline.masks import MASK_DTYPE, MaskBit
@@ -61,6 +59,9 @@ from pipeline.products import (
 )
 from pipeline.stages.base import BLOCK_INDEX, Stage
 from pipeline.stages.zeropoint import column_times, night_line_time, scale_to_zero_point
+
+if TYPE_CHECKING:
+    from astropy.io import fits
 
 __all__ = ["STAGE", "ScienceOptions", "calibrate_image", "replace_wcs"]
 
@@ -80,7 +81,7 @@ _TIME_KEY = re.compile(
     r"|TIMEOFFS|DATE-\w+|MJD-\w+|TSTART|TSTOP|TELAPSE|XPOSURE)$"
 )
 #: Unit of calibrated images: counts of the fixed zero point.
-_UNIT = u.ct
+_UNIT = "ct"
 
 
 class ScienceOptions(BaseModel):
@@ -101,6 +102,9 @@ def replace_wcs(header: fits.Header, cards) -> fits.Header:
         Time cards among them (``MJDREF = 0.0`` from ``WCS.to_header``) are
         left out: the header's own time reference stays.
     """
+    from astropy.io import fits
+    from astropy.wcs import WCS, FITSFixedWarning
+
     new = fits.Header()
     if isinstance(cards, fits.Header):
         new = cards.copy()
@@ -174,6 +178,9 @@ def _values(table, name: str) -> np.ndarray:
 
 
 def _run(*, inputs, options: ScienceOptions, context) -> dict:
+    from astropy import units as u
+    from astropy.io import fits
+
     stretch = context.stretch
     rectified = inputs["rectify"]["image"]
     flux_header = rectified[FLUX_EXTENSION].header
@@ -236,8 +243,8 @@ def _run(*, inputs, options: ScienceOptions, context) -> dict:
         for key, value, comment in cards:
             header[key] = (value, comment)
         hdul.append(fits.ImageHDU(data=data, header=header, name=name))
-    hdul[FLUX_EXTENSION].header["BUNIT"] = _UNIT.to_string()
-    hdul[VARIANCE_EXTENSION].header["BUNIT"] = (_UNIT**2).to_string()
+    hdul[FLUX_EXTENSION].header["BUNIT"] = _UNIT
+    hdul[VARIANCE_EXTENSION].header["BUNIT"] = (u.Unit(_UNIT) ** 2).to_string()
     hdul[FLAGS_EXTENSION].header.update(flag_header())  # names the ZERO_POINT bit
     for key, value, comment in cards:
         hdul[0].header[key] = (value, comment)

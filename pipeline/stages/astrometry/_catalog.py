@@ -31,10 +31,9 @@ from __future__ import annotations
 
 import dataclasses
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy import units as u
-from astropy.table import QTable, Table
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
 from pipeline.geometry.rectified import RectifiedFrame
@@ -45,6 +44,9 @@ from pipeline.stages.astrometry._segments import NightSegments
 from pipeline.stages.astrometry._solve import AstrometricSolution, SearchRanges, solve_night
 from pipeline.stages.astrometry._transparency import fit_transparency
 from pipeline.stages.detect import SourceFlag
+
+if TYPE_CHECKING:
+    from astropy.table import QTable, Table
 
 __all__ = ["AstrometryOptions", "SolvedCatalog", "solve_catalog"]
 
@@ -168,6 +170,8 @@ class SolvedCatalog:
 
 
 def _degrees(column) -> np.ndarray:
+    from astropy import units as u
+
     return np.asarray(u.Quantity(column, u.deg).value, dtype=float)
 
 
@@ -249,6 +253,9 @@ def solve_catalog(
     AstrometryError
         If too few stars match (counts and likely causes in the message).
     """
+    from astropy import units as u
+    from astropy.table import Table
+
     options = options or AstrometryOptions()
     missing = [c for c in ("x", "y", "x_err", "y_err") if c not in catalog.colnames]
     if missing:

@@ -46,12 +46,15 @@ stars' 0.01-0.05 px of centroid noise.
 from __future__ import annotations
 
 import dataclasses
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy.table import Table
 
 from pipeline._threads import in_two_threads
 from pipeline.stages.rectify._map import StripMap, column_windows, map_nodes, smear_kernels
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = [
     "BRIGHT_SNR",

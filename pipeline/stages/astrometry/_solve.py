@@ -7,10 +7,9 @@ import itertools
 import logging
 from dataclasses import dataclass
 from functools import cached_property
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy.table import Table
-from astropy.time import TimeDelta
 from numpy.typing import ArrayLike
 
 from pipeline._threads import in_two_threads
@@ -44,6 +43,9 @@ from pipeline.stages.astrometry._model import (
 )
 from pipeline.stages.astrometry._segments import NightSegments, segment_clock_records
 from pipeline.stages.astrometry._stats import residual_grid
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = ["AstrometricSolution", "SearchRanges", "search_geometry", "solve_night"]
 
@@ -564,6 +566,8 @@ class AstrometricSolution:
 
     def model_for(self, offsets: GeometryOffsets) -> TDIModel:
         """A full :class:`TDIModel` of the nominal geometry plus ``offsets``."""
+        from astropy.time import TimeDelta
+
         camera = dataclasses.replace(
             self.model.camera, focal_length=self.model.focal_length, spin_period=None
         )

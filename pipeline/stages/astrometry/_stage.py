@@ -26,11 +26,9 @@ from __future__ import annotations
 import dataclasses
 import logging
 from concurrent.futures import ThreadPoolExecutor
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from astropy import units as u
-from astropy.table import QTable
 from pydantic import Field
 
 from pipeline.exceptions import AstrometryError
@@ -52,6 +50,10 @@ from pipeline.stages.detect import WARM as DETECT_WARM
 from pipeline.stages.detect import DetectOptions, detect_stretch
 from pipeline.stages.rectify import WARM as RECTIFY_WARM
 from pipeline.stages.rectify import night_model, stretch_columns
+
+if TYPE_CHECKING:
+    from astropy import units as u
+    from astropy.table import QTable
 
 __all__ = [
     "STAGE",
@@ -124,6 +126,8 @@ def reference_columns(ref_index: np.ndarray, reference: QTable) -> dict[str, u.Q
         unmatched (and the error or colour NaN throughout when the reference
         has none).
     """
+    from astropy import units as u
+
     ref_index = np.asarray(ref_index, dtype=np.int64)
     matched = ref_index >= 0
     out = {}
@@ -498,6 +502,8 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag, 
     decision), for the parameters' provenance, and the problems: one line
     when the last solution still moves the kernels (:func:`next_pass`).
     """
+    from astropy import units as u
+
     catalog = inputs["catalog"]["catalog"]
     detect_options = _detect_options(catalog)
     by_stretch = {} if segments is None else stretch_segments(stretches, segments)
@@ -604,6 +610,8 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag, 
 
 
 def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
+    from astropy import units as u
+
     stretches = context.input_stretches
     night_rows = context.stretches[-1].stop
     model = night_model(context.site, context.camera, inputs["ingest"][BLOCK_INDEX], night_rows)

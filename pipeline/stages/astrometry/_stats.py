@@ -2,9 +2,13 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
-from astropy.table import Table
 from numpy.typing import ArrayLike
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = ["residual_grid"]
 
@@ -43,6 +47,8 @@ def residual_grid(
         ``error_along``/``error_across`` (standard errors of the means; NaN
         where a cell has fewer than 2 stars).
     """
+    from astropy.table import Table
+
     if n_across < 1 or n_along < 1:
         raise ValueError(f"n_across and n_along must be >= 1 cells; got {n_across} and {n_along}.")
     column, time, d_along, d_across = (

@@ -22,10 +22,12 @@ solve replaces :func:`astropy.wcs.utils.fit_wcs_from_points`' nonlinear fit
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
-from astropy import units as u
-from astropy.coordinates import SkyCoord
-from astropy.wcs import WCS, Sip
+
+if TYPE_CHECKING:
+    from astropy.wcs import WCS
 
 __all__ = ["solved_wcs", "wcs_sky"]
 
@@ -115,6 +117,9 @@ def solved_wcs(
         Largest distance, pixels, between the WCS and the solved geometry
         on a ``2 n_grid`` grid offset from the fit points.
     """
+    from astropy import units as u
+    from astropy.coordinates import SkyCoord
+
     if n_x < 2:
         raise ValueError(f"n_x must be at least 2 columns; got {n_x}.")
     n_y = solution.frame.n_y
@@ -135,6 +140,8 @@ def _fit_tan_sip(px, py, ra, dec, ref_pixel, ref_sky, degree: int) -> WCS:
     ``CRVAL``); the CD matrix and the SIP polynomials of orders 2 to
     ``degree`` are fitted by linear least squares (see the module docstring).
     """
+    from astropy.wcs import WCS, Sip
+
     # Intermediate world coordinates (deg) by astropy's projection: a TAN WCS
     # with a unit CD matrix maps the sky to them as its "pixels".
     plane = WCS(naxis=2)

@@ -38,11 +38,9 @@ import logging
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from astropy.io import fits
-from astropy.table import Table
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from pipeline.exceptions import CalibrationWarning, StageError
@@ -56,6 +54,10 @@ from pipeline.stages.calibrate._columns import adopt_columns, solve_columns, sum
 from pipeline.stages.calibrate._cosmics import NO_DATA_VARIANCE, detect_cosmic_rays
 from pipeline.stages.calibrate._rows import stretch_rows_for_stage
 from pipeline.stages.calibrate._saturation import bleed_pixels, saturation_mask
+
+if TYPE_CHECKING:
+    from astropy.io import fits
+    from astropy.table import Table
 
 __all__ = [
     "STAGE",
@@ -656,6 +658,8 @@ def options_kwargs(options: BaseModel, exclude: tuple[str, ...] = ()) -> dict[st
 
 
 def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
+    from astropy.table import Table
+
     rows = stretch_rows_for_stage(inputs, context)
     columns = None
     if options.flat_field:
@@ -825,6 +829,8 @@ def strip_wcs_header(times: RowTimes, row_lo: int) -> fits.Header:
     ``tolerance_rows``).  The alternate WCS ``A`` (``NIGHT``) gives the
     image column and the night row.
     """
+    from astropy.io import fits
+
     header = fits.Header()
     cards = [
         ("WCSAXES", 2, "two image axes"),

@@ -13,7 +13,6 @@ import functools
 import warnings
 
 import numpy as np
-from astropy.stats import mad_std
 
 from pipeline.stages._signal import fftconvolve, savgol_coeffs
 
@@ -116,6 +115,8 @@ def smooth_levels(
     ndarray of float64, shape (n_rows,)
         Smoothed levels in ADU.
     """
+    from astropy.stats import mad_std
+
     levels = np.asarray(levels, dtype=np.float64)
     good = np.isfinite(levels)
     if not good.any():

@@ -33,15 +33,17 @@ from __future__ import annotations
 import logging
 import warnings
 from collections.abc import Mapping
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy.stats import mad_std
-from astropy.table import Table, unique, vstack
 
 from pipeline._threads import in_two_threads
 from pipeline.exceptions import CalibrationWarning
 from pipeline.masks import MaskBit
 from pipeline.stages.calibrate._chunks import transposed
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = ["adopt_columns", "solve_columns", "summarize_columns"]
 
@@ -100,6 +102,8 @@ def summarize_columns(
         deviation corrected for the clipping, e-) and ``n_pixels`` (pixels
         used), each of length n_columns.
     """
+    from astropy.table import Table
+
     electrons = np.asarray(electrons, dtype=np.float32)
     n_rows, n_columns = electrons.shape
     rows = np.asarray(rows)
@@ -252,6 +256,8 @@ def solve_columns(
         holds ``sky_min``/``sky_max`` (e-), ``n_blocks``, ``n_reference`` and
         ``method`` (``'regression'`` or ``'ratio'``).
     """
+    from astropy.table import Table
+
     table = _merge_blocks(summaries)
     level = np.asarray(table["level"], dtype=np.float64)  # (K, C)
     scatter = np.asarray(table["scatter"], dtype=np.float64)
@@ -395,6 +401,8 @@ def adopt_columns(table: Table, n_columns: int, *, source: str = "") -> Table:
     TypeError
         If ``table`` is neither a table nor a mapping of columns.
     """
+    from astropy.table import Table
+
     if isinstance(table, Mapping) and not isinstance(table, Table):
         try:
             table = Table({name: np.asarray(values) for name, values in table.items()})
@@ -439,6 +447,8 @@ def adopt_columns(table: Table, n_columns: int, *, source: str = "") -> Table:
 
 def _merge_blocks(summaries: Table | list[Table]) -> Table:
     """Stack stretch summaries and keep the fullest copy of each block."""
+    from astropy.table import Table, unique, vstack
+
     if isinstance(summaries, Table):
         summaries = [summaries]
     if not summaries:
@@ -527,6 +537,8 @@ def _robust_sigma(values):
     astropy's ``mad_std`` (the MAD times 1/Phi^-1(3/4) = 1.4826, exact for a
     normal distribution); NaN if there is no finite value (no warning).
     """
+    from astropy.stats import mad_std
+
     values = values[np.isfinite(values)]
     return float(mad_std(values)) if values.size else np.nan
 

@@ -12,13 +12,16 @@ and gathers the per-row header values, segment labels and ramp rows that
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy.table import Table
 
 from pipeline.exceptions import StageError
 from pipeline.stages.base import BLOCK_INDEX, RAW_ROWS
 from pipeline.stages.ingest import camera_format, describe_rows, split_rows
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = ["StretchRows", "dropout_rows", "stretch_rows", "stretch_rows_for_stage"]
 

@@ -35,9 +35,6 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy import units as u
-from astropy.table import QTable, Table
-from astropy.wcs import WCS, FITSFixedWarning
 from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline._lazy import lazy_exports
@@ -74,6 +71,8 @@ from pipeline.stages.detect._saturated import merge_on_footprints, saturated_foo
 from pipeline.stages.detect._sky import sky_errors
 
 if TYPE_CHECKING:
+    from astropy.table import QTable, Table
+
     from pipeline.stages.detect._model import SeeingProfile
 
 __all__ = [
@@ -211,6 +210,9 @@ def _empty_catalog(radii) -> QTable:
 
 def _catalog(values: dict, radii, n: int) -> QTable:
     """Assemble the catalogue table with units."""
+    from astropy import units as u
+    from astropy.table import QTable
+
     pix, e = u.pix, u.electron
     spec = [
         ("x", pix, "night rectified column (first moment; along the scan)"),
@@ -259,6 +261,9 @@ SEEING_STARS_CROWDED = 5
 
 
 def _seeing_table(rows) -> Table:
+    from astropy import units as u
+    from astropy.table import Table
+
     table = Table(
         rows=rows,
         names=("y_lo", "y_hi", "n_stars", "fwhm"),
@@ -1057,6 +1062,8 @@ def _night_column(header) -> int:
 
 def _planes(products, kernels=None) -> Planes:
     """A rectify stretch product as :class:`Planes` (``kernels``: None, its own)."""
+    from astropy.wcs import WCS, FITSFixedWarning
+
     hdul = products["image"]
     header = hdul[FLUX_EXTENSION].header
     with warnings.catch_warnings():
@@ -1183,6 +1190,8 @@ def detect_stretch(
     dict
         ``catalog``, ``seeing`` and, if any, ``PROBLEMS`` (the stage's products).
     """
+    from astropy import units as u
+
     options = DetectOptions() if options is None else options
 
     own_kernels, before_kernels, after_kernels = (None, None, None) if kernels is None else kernels

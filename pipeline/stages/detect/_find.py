@@ -37,7 +37,6 @@ from itertools import pairwise
 from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy.stats import sigma_clipped_stats
 
 from pipeline.stages._signal import savgol_filter
 from pipeline.stages.detect._mesh import clipped_medians
@@ -572,6 +571,8 @@ def measured_noise_correlation(snr: np.ndarray, no_data: np.ndarray) -> float:
         The variance of the 3-sigma-clipped significance (sources clipped),
         or 1 when fewer than 100 pixels have data.
     """
+    from astropy.stats import sigma_clipped_stats
+
     values = snr[~no_data & (snr != 0)]
     if values.size < 100:
         return 1.0

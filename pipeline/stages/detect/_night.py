@@ -18,12 +18,15 @@ no-data columns, and the sources there are flagged ``EDGE``.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy.table import Table, vstack
-from astropy.wcs import WCS
 
 from pipeline.masks import MASK_DTYPE, MaskBit
+
+if TYPE_CHECKING:
+    from astropy.table import Table
+    from astropy.wcs import WCS
 
 __all__ = ["MERGE_RULE", "Planes", "padded_stretch"]
 
@@ -88,6 +91,8 @@ def padded_stretch(
     own_columns : (int, int)
         Array columns ``[a, b)`` of the stretch's own columns.
     """
+    from astropy.table import vstack
+
     ny, nx = own.image.shape[0], own.image.shape[1]
 
     def edge(neighbour, take_last: bool):

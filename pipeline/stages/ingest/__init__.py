@@ -54,11 +54,9 @@ import logging
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any, Literal
+from typing import TYPE_CHECKING, Any, Literal
 
-import astropy.units as u
 import numpy as np
-from astropy.table import Table
 from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline.exceptions import IngestError
@@ -75,6 +73,9 @@ from pipeline.stages.ingest._header import (
 )
 from pipeline.stages.ingest._order import find_out_of_order
 from pipeline.stages.ingest._site import compare_site
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = [
     "KEYWORDS",
@@ -198,6 +199,8 @@ def check_raw_file(
     first) the last read, whose DATE-OBS is then moved on to the first of
     them (``lost_rows`` line times later).
     """
+    import astropy.units as u
+
     if raw.error is not None or raw.header is None:
         raise IngestError(f"{raw.name}: {raw.error or 'no header'}.")
     info = parse_block_header(
@@ -716,6 +719,8 @@ _INDEX_DTYPES = {
 
 
 def _index_table(rows: list[dict[str, Any]]) -> Table:
+    from astropy.table import Table
+
     columns = {}
     for name, dtype in _INDEX_DTYPES.items():
         if dtype is str:

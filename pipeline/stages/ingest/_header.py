@@ -11,11 +11,12 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass
-from typing import Any
-
-from astropy.time import Time
+from typing import TYPE_CHECKING, Any
 
 from pipeline.exceptions import IngestError
+
+if TYPE_CHECKING:
+    from astropy.time import Time
 
 __all__ = [
     "KEYWORDS",
@@ -403,6 +404,8 @@ def parse_block_header(
 
 
 def _parse_time(text, header, name):
+    from astropy.time import Time
+
     system = str(header.get("TIMESYS", "UTC")).strip().upper()
     if system not in _TIME_SCALES:
         raise IngestError(f"{name}: TIMESYS={system!r} is not one of {sorted(_TIME_SCALES)}.")

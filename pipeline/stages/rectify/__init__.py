@@ -77,13 +77,9 @@ import functools
 import logging
 import warnings
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from astropy.io import fits
-from astropy.table import Table
-from astropy.time import Time
-from astropy.wcs import WCS
 from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline.exceptions import RectifyWarning
@@ -108,6 +104,11 @@ from pipeline.stages.rectify._resample import (
     shift_rows,
     transposed,
 )
+
+if TYPE_CHECKING:
+    from astropy.io import fits
+    from astropy.table import Table
+    from astropy.wcs import WCS
 
 __all__ = [
     "NO_DATA_BITS",
@@ -246,6 +247,8 @@ class RectifiedStretch:
 def _cached_model(
     site: Site, camera: Camera, start_isot: str, duration: float, line_time: float
 ) -> TDIModel:
+    from astropy.time import Time
+
     start = Time(start_isot, format="isot", scale="utc")
     return TDIModel(site, camera, start, duration, line_time=line_time)
 

@@ -27,9 +27,12 @@ from __future__ import annotations
 
 import itertools
 import math
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy.table import Table
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = [
     "StripMap",
@@ -425,6 +428,8 @@ def kernel_table(x, y, dx, dy, n_samples: int, description: str, **more) -> Tabl
     ``y``); ``more`` are further per-position columns, all in pixels, as the
     detect stage reads them.
     """
+    from astropy.table import Table
+
     table = Table(
         {
             "x": x,

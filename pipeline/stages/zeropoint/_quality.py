@@ -15,11 +15,13 @@ from __future__ import annotations
 
 import itertools
 from enum import IntFlag
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy import units as u
-from astropy.table import QTable
 from numpy.typing import ArrayLike
+
+if TYPE_CHECKING:
+    from astropy.table import QTable
 
 __all__ = [
     "ZeroPointFlag",
@@ -107,6 +109,9 @@ def interval_quality(
         ``zero_point`` (median over the interval), ``drop`` (largest drop
         below clear), ``scatter`` (mag), ``flags`` (:class:`ZeroPointFlag`).
     """
+    from astropy import units as u
+    from astropy.table import QTable
+
     edges = np.asarray(edges, dtype=float)
     t = np.asarray(star_t, dtype=float)
     residual = np.asarray(star_residual, dtype=float)
@@ -199,6 +204,9 @@ def star_flat(
         stars' residuals (weighted by ``sigma`` when given), and ``deviant`` (indices of the bins
         that are off, see ``max_offset``).
     """
+    from astropy import units as u
+    from astropy.table import QTable
+
     col = np.asarray(column, dtype=float)
     res = np.asarray(residual, dtype=float)
     used = np.asarray(used, dtype=bool) & np.isfinite(col) & np.isfinite(res)

@@ -15,10 +15,9 @@ from __future__ import annotations
 import itertools
 import logging
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
-from astropy import units as u
-from astropy.table import QTable, Table
 from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline.geometry.rectified import column_times
@@ -32,6 +31,9 @@ from pipeline.stages.zeropoint._quality import (
     interval_quality,
     star_flat,
 )
+
+if TYPE_CHECKING:
+    from astropy.table import QTable, Table
 
 __all__ = [
     "STAGE",
@@ -138,6 +140,8 @@ def source_exposures(catalog: QTable, exposure: float) -> np.ndarray | float:
     edge of a 0.59 deg chip at latitude 50), which the star flat then
     reported as a flat-field error.
     """
+    from astropy import units as u
+
     if "exposure" not in catalog.colnames:
         return exposure
     own = catalog["exposure"]
@@ -243,6 +247,9 @@ def calibrate_catalog(
         If the reference catalogue has no magnitudes, or no colours while
         ``fit_colour_term`` is set (the message says what to change).
     """
+    from astropy import units as u
+    from astropy.table import QTable
+
     _check_reference(catalog, fit_colour_term)
     flux = _value(catalog["flux_psf"])
     flux_err = _value(catalog["flux_psf_err"])
@@ -369,6 +376,8 @@ def calibrate_catalog(
 
 
 def _problems(intervals: QTable, trend: dict, max_trend: float) -> list[str]:
+    from astropy import units as u
+
     problems = []
     for row in intervals:
         flags = ZeroPointFlag(int(row["flags"]))
