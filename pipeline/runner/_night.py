@@ -28,6 +28,7 @@ from typing import Any
 
 from pipeline.config import Config
 from pipeline.exceptions import DamagedProductError
+from pipeline.runner._blockrows import BlockRows, read_block_rows
 from pipeline.runner._rawio import (
     block_index_rows,
     blocks_fingerprint,
@@ -211,8 +212,9 @@ class NightStore:
         #: (units already taken out of use have a ``_damaged.json`` record instead).
         self.damaged: dict[tuple[str, str], str] = {}
         self._verified: set[tuple[str, str]] = set()
-        #: The block index last parsed, by its SHA-256 (refreshed after every stage).
-        self._parsed_index: tuple[str, Any] | None = None
+        #: The block index last parsed, by its SHA-256 (refreshed after every stage):
+        #: the columns the runner uses (:mod:`pipeline.runner._blockrows`).
+        self._parsed_index: tuple[str, BlockRows] | None = None
         #: SHA-256 of the files options name, by (path, size, modification time).
         self._digests: dict[tuple[str, int, int], str] = {}
         #: What this run's workers remember of the products they wrote, by path
@@ -236,8 +238,8 @@ class NightStore:
         self._inputs: dict[tuple[str, str], tuple[dict[str, str], list[InputSpec], str | None]] = {}
         self._missing: dict[str, dict[str, str]] = {}
         self._raw_names: list[str] | None = None
-        self._index_rows: dict[tuple[int, int], Any] = {}  # block index rows
-        self.index = None
+        self._index_rows: dict[tuple[int, int], BlockRows] = {}  # block index rows
+        self.index: BlockRows | None = None
         self.stretches: tuple[Stretch, ...] = ()
         if self.row_stage is None:
             return
@@ -248,7 +250,11 @@ class NightStore:
             try:
                 digest = verify_product(folder / entry["file"], entry)
                 if self._parsed_index is None or self._parsed_index[0] != digest:
-                    self._parsed_index = (digest, read_product(folder / entry["file"], entry))
+                    path = folder / entry["file"]
+                    rows = read_block_rows(path) if path.suffix == ".ecsv" else None
+                    if rows is None:
+                        rows = BlockRows.of_table(read_product(path, entry))
+                    self._parsed_index = (digest, rows)
                 self.index = self._parsed_index[1]
             except Exception as exc:  # damaged, or hashes right but does not parse
                 if not isinstance(exc, DamagedProductError):
@@ -626,7 +632,7 @@ class NightStore:
                 lo, hi = stretch.lo, stretch.hi
                 flip = self.context.camera.flip_rows
                 hashes[name] = blocks_fingerprint(self.raw_dir, self.index, lo, hi, flip_rows=flip)
-                if (lo, hi) not in self._index_rows:  # astropy takes ~1 ms per slice
+                if (lo, hi) not in self._index_rows:
                     self._index_rows[lo, hi] = self.index[overlapping_blocks(self.index, lo, hi)]
                 subset = self._index_rows[lo, hi]
                 specs.append(
