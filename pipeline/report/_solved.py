@@ -18,6 +18,7 @@ from pipeline.geometry.rectified import column_times
 from pipeline.report._clock import FIGURE_SIZE, NightClock, _clock_text, time_axis
 
 __all__ = [
+    "fitted_parameter",
     "focal_length_figure",
     "line_time_check",
     "line_time_text",
@@ -123,7 +124,7 @@ def residuals_along_night_figure(grid: Table, hours: tuple[float, float]) -> Fig
     return fig
 
 
-def _parameter(parameters: Table, name: str) -> tuple[float, float] | None:
+def fitted_parameter(parameters: Table, name: str) -> tuple[float, float] | None:
     """``(value, error)`` of a fitted parameter, or None if it was not fitted."""
     names = list(parameters["name"])
     if name not in names:
@@ -237,7 +238,7 @@ def focal_length_figure(parameters: Table, tdi_rows: int) -> Figure:
     meta = parameters.meta
     fit = float(meta["focal_length_m"])
     spin = float(meta["focal_length_from_spin_m"])
-    scale = _parameter(parameters, "focal_scale")
+    scale = fitted_parameter(parameters, "focal_scale")
     # focal_length = nominal * (1 + focal_scale): the error scales with the nominal.
     fit_err = 0.0 if scale is None else fit / (1.0 + scale[0]) * scale[1]
     check = line_time_check(meta, tdi_rows)

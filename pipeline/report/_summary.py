@@ -135,7 +135,7 @@ def segment_clock_text(records: list[dict]) -> str | None:
 def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
     """Summary rows of the solved products (astrometry, zero point), or why they are absent."""
     from pipeline.report._solved import (
-        _parameter,
+        fitted_parameter,
         line_time_check,
         line_time_text,
         nominal_focal_length_label,
@@ -165,7 +165,7 @@ def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
             fit, spin = float(meta["focal_length_m"]), float(meta["focal_length_from_spin_m"])
             # fitted = nominal * (1 + focal_scale): the difference's error is
             # the nominal focal length times the scale's
-            scale = _parameter(parameters, "focal_scale")
+            scale = fitted_parameter(parameters, "focal_scale")
             error = "" if scale is None else f" +- {1e6 * spin * scale[1]:.0f}"
             rows.append(
                 (
