@@ -68,6 +68,36 @@ def test_a_product_folder_has_its_row_on_the_page_across_the_nights(tmp_path, ca
     assert "<th>stars detected</th>" in text and "<td>1234</td>" in text
 
 
+def test_the_page_across_the_nights_is_drawn_again_only_when_what_it_shows_changed(
+    tmp_path, capsys, monkeypatch
+):
+    folders = write_nights(tmp_path / "products")
+    path = _mosaic(tmp_path, [str(p) for p in folders])
+    assert main(["run", str(path)]) == EXIT_OK, capsys.readouterr()
+    page = nights_page(load_mosaic_config(path))
+    first = page.read_bytes()
+    drawn = []
+    import pipeline.report as report
+
+    real = report.build_nights_report
+    monkeypatch.setattr(report, "build_nights_report", lambda *a: drawn.append(1) or real(*a))
+    assert main(["run", str(path)]) == EXIT_OK
+    assert drawn == [] and page.read_bytes() == first  # everything up to date: left alone
+    assert f"across the nights: {page}" in capsys.readouterr().out
+    # a night's report is made (a new product the page shows): drawn again
+    unit_dir = folders[1] / "report" / "night"
+    entries = write_products(unit_dir, {"summary": [["stars detected", "77"]]}, {})
+    record = {"stage": "report", "unit": "night", "night": folders[1].name, "products": entries}
+    write_sidecar(unit_dir, {**record, "output_hash": output_hash(entries)})
+    assert main(["run", str(path)]) == EXIT_OK
+    assert drawn == [1] and "<td>77</td>" in page.read_text()
+    assert main(["run", str(path), "--force"]) == EXIT_OK
+    assert drawn == [1, 1]
+    page.write_text("<html></html>")  # replaced, without the mark of its inputs: drawn again
+    assert main(["run", str(path)]) == EXIT_OK
+    assert drawn == [1, 1, 1] and "<td>77</td>" in page.read_text()
+
+
 @pytest.mark.parametrize("option", [["--stage", "detect"], ["--stretches", "0"], ["--verify"]])
 def test_options_for_one_night_are_refused_for_a_mosaic(tmp_path, capsys, option):
     (tmp_path / "n1.yaml").write_text(NIGHT.format(name="n1", executor="local"))
