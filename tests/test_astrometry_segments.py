@@ -199,11 +199,14 @@ def test_segment_clock_problems_name_the_segment_and_the_size():
     assert segment_clock_problems([record | {"fitted": False}]) == []
 
 
-def test_a_night_whose_dates_jump_after_a_gap(tmp_path, capsys):
+@pytest.mark.parametrize("whole_rows", [0, 41])
+def test_a_night_whose_dates_jump_after_a_gap(tmp_path, capsys, whole_rows):
     """A simulated night with a missing block whose next blocks were stamped 50 ms
     early: the stage fits the segment's clock (+50 ms: rows read later than
     stamped), says so, and the solved positions after the gap follow the truth.
-    Invented night (pipeline.simulate), self-consistency."""
+    41 line times more (2.04 s, beyond the match radius): the segment's clock is
+    found by the search along the scan first.  Invented night (pipeline.simulate),
+    self-consistency."""
     import yaml
     from astropy.io import fits
     from astropy.table import QTable
@@ -245,9 +248,15 @@ def test_a_night_whose_dates_jump_after_a_gap(tmp_path, capsys):
     path = tmp_path / "night.yaml"
     path.write_text(yaml.safe_dump(config))
     assert main(["simulate", str(path)]) == 0
+    # Whole line times keep where the segment's start falls within a row (both
+    # cases fit ~0.5 ms under the jump here): a start moved to another part of
+    # a row (e.g. by 2.000 s, a quarter row) fitted up to ~1.2 ms off the jump
+    # on 1024-column nights (-1.2 to +0.5 ms, not understood), while the
+    # positions after the gap stayed right
+    jump = 0.050 + whole_rows * fits.getheader(tmp_path / "raw/block_0003.fits")["LINETIME"]
     for block in (3, 4):  # the camera computer's clock jumped during the gap
         with fits.open(tmp_path / f"raw/block_000{block}.fits", mode="update") as hdul:
-            stamp = Time(hdul[0].header["DATE-OBS"], scale="utc") - TimeDelta(0.050, format="sec")
+            stamp = Time(hdul[0].header["DATE-OBS"], scale="utc") - TimeDelta(jump, format="sec")
             hdul[0].header["DATE-OBS"] = stamp.isot
     capsys.readouterr()
     assert main(["run", str(path), "--to", "astrometry"]) == 1  # the gap is a problem
@@ -259,7 +268,8 @@ def test_a_night_whose_dates_jump_after_a_gap(tmp_path, capsys):
     assert first["reference"] and second["fitted"] and second["first_block"] == "block_0003.fits"
     # 50 ms within 3 of its stated errors and the half millisecond of DATE-OBS
     # written to the millisecond (the simulator's start of block 3 is not on one)
-    assert abs(second["offset_ms"] - 50.0) < 3.0 * second["offset_err_ms"] + 0.5
+    assert abs(second["offset_ms"] - jump * 1e3) < 3.0 * second["offset_err_ms"] + 0.5
+    assert ("search" in second) == (whole_rows > 0)
     catalog = QTable.read(tmp_path / "out/n/astrometry/night/catalog.ecsv")
     truth = Table.read(tmp_path / "raw/truth.ecsv")
     bright = (catalog["snr"] > 30) & (catalog["flags"] == 0)
