@@ -16,6 +16,7 @@ from astropy.table import Table
 from pipeline.geometry.optics import ARCSEC_PER_RADIAN, EARTH_ROTATION_RATE
 from pipeline.stages.astrometry import GeometryOffsets, solved_wcs
 from pipeline.stages.astrometry._segments import NightSegments, segment_clock_records
+from pipeline.stages.astrometry._stage import segment_clock_problems
 from tests._astrometry_scene import make_night, solve_scene
 
 #: The night's clock is right, the line time 20 ppm off the header's: the
@@ -176,8 +177,6 @@ def test_the_rate_of_right_ascension_is_erfa_s():
 
 def test_segment_clock_problems_name_the_segment_and_the_size():
     """A fitted offset beyond 5 sigma and 1 ms is a problem line; within, none."""
-    from pipeline.stages.astrometry._stage import segment_clock_problems
-
     record = {
         "segment": 1,
         "rows": [3071, 5119],
@@ -200,11 +199,14 @@ def test_segment_clock_problems_name_the_segment_and_the_size():
     assert segment_clock_problems([record | {"fitted": False}]) == []
 
 
-def test_a_night_whose_dates_jump_after_a_gap(tmp_path, capsys):
+@pytest.mark.parametrize("whole_rows", [0, 41])
+def test_a_night_whose_dates_jump_after_a_gap(tmp_path, capsys, whole_rows):
     """A simulated night with a missing block whose next blocks were stamped 50 ms
     early: the stage fits the segment's clock (+50 ms: rows read later than
     stamped), says so, and the solved positions after the gap follow the truth.
-    Invented night (pipeline.simulate), self-consistency."""
+    41 line times more (2.04 s, beyond the match radius): the segment's clock is
+    found by the search along the scan first.  Invented night (pipeline.simulate),
+    self-consistency."""
     import yaml
     from astropy.io import fits
     from astropy.table import QTable
@@ -246,9 +248,15 @@ def test_a_night_whose_dates_jump_after_a_gap(tmp_path, capsys):
     path = tmp_path / "night.yaml"
     path.write_text(yaml.safe_dump(config))
     assert main(["simulate", str(path)]) == 0
+    # Whole line times keep where the segment's start falls within a row (both
+    # cases fit ~0.5 ms under the jump here): a start moved to another part of
+    # a row (e.g. by 2.000 s, a quarter row) fitted up to ~1.2 ms off the jump
+    # on 1024-column nights (-1.2 to +0.5 ms, not understood), while the
+    # positions after the gap stayed right
+    jump = 0.050 + whole_rows * fits.getheader(tmp_path / "raw/block_0003.fits")["LINETIME"]
     for block in (3, 4):  # the camera computer's clock jumped during the gap
         with fits.open(tmp_path / f"raw/block_000{block}.fits", mode="update") as hdul:
-            stamp = Time(hdul[0].header["DATE-OBS"], scale="utc") - TimeDelta(0.050, format="sec")
+            stamp = Time(hdul[0].header["DATE-OBS"], scale="utc") - TimeDelta(jump, format="sec")
             hdul[0].header["DATE-OBS"] = stamp.isot
     capsys.readouterr()
     assert main(["run", str(path), "--to", "astrometry"]) == 1  # the gap is a problem
@@ -260,7 +268,8 @@ def test_a_night_whose_dates_jump_after_a_gap(tmp_path, capsys):
     assert first["reference"] and second["fitted"] and second["first_block"] == "block_0003.fits"
     # 50 ms within 3 of its stated errors and the half millisecond of DATE-OBS
     # written to the millisecond (the simulator's start of block 3 is not on one)
-    assert abs(second["offset_ms"] - 50.0) < 3.0 * second["offset_err_ms"] + 0.5
+    assert abs(second["offset_ms"] - jump * 1e3) < 3.0 * second["offset_err_ms"] + 0.5
+    assert ("search" in second) == (whole_rows > 0)
     catalog = QTable.read(tmp_path / "out/n/astrometry/night/catalog.ecsv")
     truth = Table.read(tmp_path / "raw/truth.ecsv")
     bright = (catalog["snr"] > 30) & (catalog["flags"] == 0)
@@ -278,3 +287,118 @@ def test_a_night_whose_dates_jump_after_a_gap(tmp_path, capsys):
     for side in (after, ~after):
         assert np.sqrt(np.mean((d_ra[side] / ra_err[side]) ** 2)) < 2.0
     assert after.sum() > 30  # enough stars to say so
+
+
+#: A camera computer's clock set again by network time during the gap: the
+#: rows after it were read 2 s later than their DATE-OBS says, 18.8 rows of
+#: this chip at latitude 50, six match radii.
+JUMP = 2.0
+
+
+@pytest.fixture(scope="module")
+def jump_night():
+    return make_night(50.0, offsets=OFFSETS, gap=GAP, segment_clock=JUMP, n_stars=2500, seed=11)
+
+
+def test_a_clock_jump_beyond_the_match_radius_is_found_by_a_search(jump_night):
+    """The segment's stars all miss at the night's clock; the search along the scan
+    finds its clock, the fit recovers the planted 2 s and places its stars as well
+    as the first segment's.  Invented night (tests/_astrometry_scene.py), checked
+    against its own truth: self-consistency."""
+    night = jump_night
+    solution = _solve(night, segments=night.segments, det_segment=night.segment)
+    fit = solution.fit
+    assert fit.segments == (1,) and fit.reference_segment == 0
+    fitted, error = solution.offsets.segment_clock[1], fit.segment_errors[1]
+    # within 3 of its stated errors (common practice), a fraction of a millisecond
+    assert abs(fitted - JUMP) < 3.0 * error and error < 1e-3
+    d_ra, noise, segment = _along_ra(night, solution, night.segment)
+    for k in (0, 1):  # the bounds of test_the_fit_recovers_a_segment_s_clock_offset
+        part = segment == k
+        assert abs(np.mean(d_ra[part])) < 3.0 * np.std(d_ra[part]) / np.sqrt(part.sum())
+        assert np.sqrt(np.mean((d_ra[part] / noise[part]) ** 2)) < 1.2
+    (first, second) = solution.segment_clocks()
+    assert "search" not in first
+    assert second["fitted"] and second["n_stars"] > 900
+    assert second["search"]["found"]
+    # the search's peak, to a fraction of its 3-pixel bins (0.1 s per row here)
+    assert abs(second["search"]["offset_ms"] - 1e3 * JUMP) < 100.0
+    assert "a search along the scan found its stars at a clock +2000" in second["note"]
+    (line,) = segment_clock_problems([first, second])
+    assert "2000.0 +- 0.1 ms early against the night's clock" in line
+
+
+def test_without_the_search_the_jumped_segment_is_lost(jump_night):
+    """search_segment_clock 0: the segment matches nothing and keeps the night's clock."""
+    from pipeline.stages.astrometry import SearchRanges
+
+    night = jump_night
+    solution = _solve(
+        night,
+        segments=night.segments,
+        det_segment=night.segment,
+        search=SearchRanges(segment_clock=0.0),
+    )
+    assert solution.fit.segments == ()
+    (_, second) = solution.segment_clocks()
+    assert not second["fitted"] and "search" not in second
+    d_ra, _, segment = _along_ra(night, solution, night.segment)
+    # 2 s of clock at latitude 50 is 19" of RA: the segment's stars that far off
+    assert np.median(np.abs(d_ra[segment == 1])) > 15e3
+
+
+def test_the_first_segment_is_found_when_the_later_one_leads():
+    """A short first segment and a long one after a gap, 5 s early: the night's
+    search follows the long one, and the search along the scan finds the first,
+    whose clock stays the night's.  Invented night, self-consistency."""
+    night = make_night(
+        50.0, offsets=OFFSETS, gap=(3000, 3400), segment_clock=-5.0, n_stars=2500, seed=11
+    )
+    solution = _solve(night, segments=night.segments, det_segment=night.segment)
+    assert "search_peak" in solution.counts  # the first match failed: the night's search ran
+    fit = solution.fit
+    assert fit.segments == (1,) and fit.reference_segment == 0
+    fitted, error = solution.offsets.segment_clock[1], fit.segment_errors[1]
+    assert abs(fitted - -5.0) < 3.0 * error
+    dt = night.nominal.line_time
+    assert abs(solution.offsets.clock_offset - OFFSETS.clock_offset) / dt < 0.01
+    d_ra, noise, segment = _along_ra(night, solution, night.segment)
+    for k in (0, 1):
+        part = segment == k
+        assert np.sqrt(np.mean((d_ra[part] / noise[part]) ** 2)) < 1.2
+    (first, _) = solution.segment_clocks()
+    assert first["reference"] and first["search"]["found"]
+
+
+def test_a_jump_beyond_the_search_says_so():
+    """15 s after the gap, beyond the 10 s searched: the segment keeps the night's
+    clock and its record and problem line say the search found nothing."""
+    night = make_night(50.0, offsets=OFFSETS, gap=GAP, segment_clock=15.0, n_stars=2500, seed=11)
+    solution = _solve(night, segments=night.segments, det_segment=night.segment)
+    assert solution.fit.segments == ()
+    records = solution.segment_clocks()
+    second = records[1]
+    assert not second["fitted"] and not second["search"]["found"]
+    assert "within +-10 s found no significant clock offset" in second["note"]
+    (line,) = segment_clock_problems(records)
+    assert line.startswith("segment 1 (rows 7400-") and "found no clock" in line
+
+
+def test_search_segment_clock_finds_a_shift_along_the_scan():
+    """Detections of invented stars moved by a clock offset, among as many
+    spurious ones: the peak's clock is the offset to a fraction of a row; with
+    the stars unrelated, no peak.  Self-consistency."""
+    from pipeline.stages.astrometry._segments import search_segment_clock
+
+    rng = np.random.default_rng(5)
+    ref_row, ref_col = rng.uniform(0, 4000, 600), rng.uniform(0, 1024, 600)
+    dt, clock = 0.05, -1.234  # 24.68 rows later than predicted
+    det_row = np.r_[ref_row[:400] - clock / dt, rng.uniform(0, 4000, 400)]
+    det_col = np.r_[ref_col[:400], rng.uniform(0, 1024, 400)]
+    det_row[:400] += rng.normal(0.0, 0.3, 400)
+    kwargs = {"line_time": dt, "max_offset": 10.0, "match_radius": 3.0, "min_stars": 10}
+    found = search_segment_clock(ref_row, ref_col, det_row, det_col, clock=0.5, **kwargs)
+    assert found.found and found.count >= 400
+    assert found.clock == pytest.approx(0.5 + clock, abs=0.2 * dt)
+    unrelated = search_segment_clock(ref_row, ref_col, det_row[400:], det_col[400:], **kwargs)
+    assert not unrelated.found

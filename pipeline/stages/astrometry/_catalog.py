@@ -120,6 +120,13 @@ class AstrometryOptions(BaseModel):
     search_focal: float = Field(0.03, ge=0, description="Search range of the focal length, +-.")
     search_rotation: float = Field(0.5, ge=0, description="Search range of rotation, +- deg.")
     search_tilt: float = Field(60.0, ge=0, description="Search range of the tilt, +- arcsec.")
+    search_segment_clock: float = Field(
+        10.0,
+        ge=0,
+        description="Search range of the clock of a segment after a gap, +- s: a segment "
+        "whose stars do not match at the night's clock (its first DATE-OBS off by more "
+        "than match_radius rows) is searched along the scan within it (0: no search).",
+    )
 
     @field_validator("fit_exclude_flags")
     @classmethod
@@ -283,6 +290,7 @@ def solve_catalog(
         focal_scale=options.search_focal,
         rotation=options.search_rotation,
         tilt=options.search_tilt,
+        segment_clock=options.search_segment_clock,
     )
     args = (x[fit_rows], y[fit_rows], _degrees(ref_ra), _degrees(ref_dec), model, frame)
     kwargs = {

@@ -19,6 +19,18 @@ error of its own first DATE-OBS against that.  A segment needs
 ``min_segment_stars`` matched stars for its offset to be fitted; one with
 fewer keeps offset 0 (the night's clock), and the products say so.
 
+A clock off by more than the match radius (a computer clock set again by
+network time after a restart: 1 s is 15" of right ascension at the equator)
+leaves a segment's stars unmatched at the night's clock, so its offset
+cannot be fitted from them.  Such a segment is searched first
+(:func:`search_segment_clock`): its detections are paired with the
+reference stars predicted within the largest offset searched along the scan
+and the offsets of the pairs binned; a clock offset moves every star of the
+segment by the same number of rows, and the true pairs pile up in one bin.
+A significant peak gives the segment's starting clock, and the fit goes on
+from there as for any other segment; a segment without one keeps the
+night's clock, and the products say what the search found.
+
 A point belongs to the segment whose rows hold it; a point in a gap to the
 nearest segment; in an overlap, to the later segment, whose rows win (as
 ingest's ``describe_rows`` decides).
@@ -33,8 +45,13 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from pipeline.geometry.optics import ARCSEC_PER_RADIAN, EARTH_ROTATION_RATE
+from pipeline.stages.astrometry._match import candidate_pairs, offset_peak, scaled_tree
 
-__all__ = ["NightSegments", "segment_clock_records"]
+__all__ = ["NightSegments", "SegmentSearch", "search_segment_clock", "segment_clock_records"]
+
+#: Sigmas of chance pairs by which a search's peak must stand out (common
+#: practice for a detection among many trials; the night's search uses it too).
+PEAK_SIGNIFICANCE = 5.0
 
 
 @dataclass(frozen=True)
@@ -132,6 +149,117 @@ class NightSegments:
         return int(self.of_rows(np.array([float(row)]))[0])
 
 
+@dataclass(frozen=True)
+class SegmentSearch:
+    """What the search along the scan found for one segment's clock.
+
+    Attributes
+    ----------
+    segment : int
+        Segment number.
+    clock : float
+        Seconds: the clock offset the peak gives the segment, relative to
+        the night's (NaN if no pair was found).
+    count : int
+        Pairs in the peak's 3 x 3 bins.
+    background : float
+        Pairs expected there by chance.
+    max_offset : float
+        Seconds: the largest offset searched, either way.
+    found : bool
+        Whether the peak has ``min_stars`` pairs and stands out of the
+        chance pairs by :data:`PEAK_SIGNIFICANCE` sigmas: the solution then
+        starts the segment's clock from it.
+    """
+
+    segment: int
+    clock: float
+    count: int
+    background: float
+    max_offset: float
+    found: bool
+
+    def describe(self) -> str:
+        """The search's outcome in words, for the products' notes."""
+        chance = f"{self.count} pairs against {self.background:.1f} by chance"
+        if not self.found:
+            return (
+                f"a search along the scan within +-{self.max_offset:g} s found no "
+                f"significant clock offset (best peak: {chance})"
+            )
+        return (
+            f"a search along the scan found its stars at a clock {self.clock * 1e3:+.1f} ms "
+            f"off the first fit's night clock ({chance})"
+        )
+
+
+def search_segment_clock(
+    ref_row: np.ndarray,
+    ref_column: np.ndarray,
+    det_row: np.ndarray,
+    det_column: np.ndarray,
+    *,
+    line_time: float,
+    max_offset: float,
+    match_radius: float,
+    min_stars: int,
+    segment: int = -1,
+    clock: float = 0.0,
+) -> SegmentSearch:
+    """Find one segment's clock offset from the offsets of its pairs along the scan.
+
+    A clock offset ``s`` moves every star of the segment ``-s / line_time``
+    rows along the scan and nothing across it, so the detections' offsets
+    from their own reference stars' predictions share one row offset and a
+    column offset near 0; chance pairs spread evenly over the box searched.
+    The box is ``+-(max_offset / line_time + 2 match_radius)`` rows by
+    ``+-2 match_radius`` columns, in bins of ``match_radius`` (the spread
+    the rest of the geometry leaves, which the first match tolerates).
+
+    Parameters
+    ----------
+    ref_row, ref_column : ndarray
+        Strip positions of the reference stars predicted at the night's
+        clock, pixels (NaN: not on the chip).
+    det_row, det_column : ndarray
+        Strip positions of the segment's detections, pixels.
+    line_time : float
+        Seconds per row.
+    max_offset : float
+        Seconds: the largest clock offset searched, either way.
+    match_radius : float
+        Pixels: the first match's radius.
+    min_stars : int
+        Fewest pairs in the peak for it to count.
+    segment : int, optional
+        The segment's number, for the result.
+    clock : float, optional
+        Seconds: the segment's clock offset relative to the night's in the
+        predictions (the peak's offset is added to it).
+
+    Returns
+    -------
+    SegmentSearch
+    """
+    half_row = max_offset / line_time + 2.0 * match_radius
+    half_column = 2.0 * match_radius
+    ri = np.empty(0, np.intp)
+    if det_row.size:
+        tree = scaled_tree(det_row, det_column, half_row, half_column)
+        ri, di = candidate_pairs(ref_row, ref_column, tree, half_row, half_column)
+    if ri.size == 0:
+        return SegmentSearch(segment, np.nan, 0, 0.0, max_offset, found=False)
+    peak = offset_peak(
+        det_row[di] - ref_row[ri], det_column[di] - ref_column[ri], half_row, half_column,
+        match_radius,
+    )  # fmt: skip
+    found = peak.count >= min_stars and peak.significance >= PEAK_SIGNIFICANCE
+    # detection minus prediction: a clock late by s records the stars s / dt rows earlier
+    return SegmentSearch(
+        segment, clock - peak.d_row * line_time, peak.count, peak.background, max_offset, found
+    )
+
+
 def segment_clock_records(
     segments: NightSegments,
     offsets: Sequence[float],
@@ -142,6 +270,7 @@ def segment_clock_records(
     reference: int,
     min_stars: int,
     declination: float,
+    searches: Sequence[SegmentSearch] = (),
 ) -> list[dict]:
     """What the products say of each segment's clock: value, error, and why.
 
@@ -163,6 +292,9 @@ def segment_clock_records(
         ``min_segment_stars``: fewest stars for a fitted offset.
     declination : float
         Degrees: the strip's declination, for the offset's size on the sky.
+    searches : sequence of SegmentSearch, optional
+        The searches along the scan made for segments whose stars missed at
+        the night's clock (:func:`search_segment_clock`).
 
     Returns
     -------
@@ -174,15 +306,20 @@ def segment_clock_records(
         the night's clock), ``ra_mas`` and
         ``ra_err_mas`` (how far the offset moves the segment's positions
         along right ascension on the sky, east positive: ``offset * omega *
-        cos(dec)``), and ``note`` in words.
+        cos(dec)``), and ``note`` in words; a searched segment also
+        ``search``: ``offset_ms`` the search found (relative to the night's
+        clock of the first fit), ``pairs`` in its peak, ``chance`` pairs
+        there, ``range_s`` searched, and whether it ``found`` a clock.
     """
     # Earth's rotation rate from the Earth rotation angle (IERS Conventions
     # 2010), in mas of right ascension per second of time: 15041.07 mas/s
     mas_per_second = EARTH_ROTATION_RATE * ARCSEC_PER_RADIAN * 1000.0
     on_sky = mas_per_second * float(np.cos(np.radians(declination)))
+    searched = {search.segment: search for search in searches}
     records = []
     for i, number in enumerate(segments.numbers):
         value, error = float(offsets[i]), float(errors[i])
+        search = searched.get(int(number))
         if int(number) == reference:
             note = "the night's clock: clock_offset is this segment's"
         elif fitted[i]:
@@ -192,20 +329,29 @@ def segment_clock_records(
                 f"not fitted: {int(n_stars[i])} matched stars, fewer than "
                 f"min_segment_stars={min_stars}; kept at the night's clock (offset 0)"
             )
-        records.append(
-            {
-                "segment": int(number),
-                "rows": [int(segments.starts[i]), int(segments.stops[i])],
-                "first_block": segments.first_blocks[i] if segments.first_blocks else "",
-                "date_obs": segments.date_obs[i] if segments.date_obs else "",
-                "n_stars": int(n_stars[i]),
-                "reference": int(number) == reference,
-                "fitted": bool(fitted[i]),
-                "offset_ms": value * 1000.0,
-                "offset_err_ms": error * 1000.0,
-                "ra_mas": value * on_sky,
-                "ra_err_mas": error * on_sky,
-                "note": note,
+        if search is not None:
+            note = f"{note}; {search.describe()}"
+        record = {
+            "segment": int(number),
+            "rows": [int(segments.starts[i]), int(segments.stops[i])],
+            "first_block": segments.first_blocks[i] if segments.first_blocks else "",
+            "date_obs": segments.date_obs[i] if segments.date_obs else "",
+            "n_stars": int(n_stars[i]),
+            "reference": int(number) == reference,
+            "fitted": bool(fitted[i]),
+            "offset_ms": value * 1000.0,
+            "offset_err_ms": error * 1000.0,
+            "ra_mas": value * on_sky,
+            "ra_err_mas": error * on_sky,
+            "note": note,
+        }
+        if search is not None:
+            record["search"] = {
+                "offset_ms": search.clock * 1000.0,
+                "pairs": search.count,
+                "chance": round(search.background, 1),
+                "range_s": search.max_offset,
+                "found": search.found,
             }
-        )
+        records.append(record)
     return records

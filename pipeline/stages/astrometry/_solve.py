@@ -41,7 +41,13 @@ from pipeline.stages.astrometry._model import (
     PredictedCentroids,
     SkyTracks,
 )
-from pipeline.stages.astrometry._segments import NightSegments, segment_clock_records
+from pipeline.stages.astrometry._segments import (
+    PEAK_SIGNIFICANCE,
+    NightSegments,
+    SegmentSearch,
+    search_segment_clock,
+    segment_clock_records,
+)
 from pipeline.stages.astrometry._stats import residual_grid
 
 if TYPE_CHECKING:
@@ -69,6 +75,9 @@ class SearchRanges:
     bin_size : float
         Pixels: width of the offset histogram's bins and of the steps of the
         focal-length and rotation grids at the chip's edge.
+    segment_clock : float
+        Seconds either side: the clock offset searched for a segment after a
+        gap whose stars do not match at the night's clock (0: no such search).
     """
 
     clock_offset: float = 10.0
@@ -76,6 +85,7 @@ class SearchRanges:
     rotation: float = 0.5
     tilt: float = 60.0
     bin_size: float = 4.0
+    segment_clock: float = 10.0
 
 
 def _outward(half_range: float, step: float) -> np.ndarray:
@@ -299,7 +309,9 @@ def solve_night(
         The night's segments (ingest's block index): each after the first
         with ``min_segment_stars`` matched stars gets a clock offset of its
         own (:mod:`~pipeline.stages.astrometry._segments`); None: one clock
-        for the night.
+        for the night.  A segment whose stars do not match at the night's
+        clock is first searched along the scan, within
+        ``search.segment_clock`` seconds (:func:`_search_segments`).
     det_segment : array_like of int or None, optional
         Segment number of each detection (e.g. its stretch's); None or -1:
         the segment of its strip row.
@@ -370,7 +382,8 @@ def solve_night(
     tree = cKDTree(np.column_stack([det_row[good_det], det_col[good_det]]))
     row_lo, row_hi = float(np.nanmin(det_row)), float(np.nanmax(det_row))
 
-    def match(offsets: GeometryOffsets, radius: float, fit: GeometryFit | None = None):
+    def predicted(offsets: GeometryOffsets, fit: GeometryFit | None = None):
+        """Strip rows and columns of the reference stars at ``offsets``."""
         pr = predictor.predict(ref_tracks, offsets)
         dt = predictor.line_time * (1.0 + offsets.line_time_scale)
         r = pr.rows(n_rows, dt, offsets.clock_offset)
@@ -380,6 +393,10 @@ def solve_night(
         if fit is not None and fit.wander is not None:
             w_r, w_c = fit.wander(pr.t_mid)
             r, c = r + w_r, c + w_c
+        return r, c
+
+    def match(offsets: GeometryOffsets, radius: float, fit: GeometryFit | None = None):
+        r, c = predicted(offsets, fit)
         on_chip = (c > -0.5) & (c < model.camera.n_columns - 0.5) & (r > row_lo) & (r < row_hi)
         ri, di = match_nearest(r, c, None, None, radius, tree=tree)
         return ri, good_det[di], int(on_chip.sum())
@@ -398,7 +415,7 @@ def solve_night(
         )
         counts["search_peak"] = peak.count
         counts["search_chance"] = round(peak.background, 1)
-        if peak.count < min_matches or peak.significance < 5.0:
+        if peak.count < min_matches or peak.significance < PEAK_SIGNIFICANCE:
             raise _failure(counts, "the search found no significant common offset")
         radius = 2.0 * search.bin_size
         ri, di, _ = match(offsets, radius)
@@ -412,6 +429,9 @@ def solve_night(
         "min_segment_stars": min_segment_stars,
     }
     fit = None
+    searches: tuple[SegmentSearch, ...] | None = None
+    if segments is None or len(segments) < 2 or search is None or not search.segment_clock:
+        searches = ()
     for knots in (None, knot_spacing, knot_spacing):
         if ri.size < min_matches:
             counts["matched"] = int(ri.size)
@@ -430,6 +450,30 @@ def solve_night(
         offsets = fit.offsets
         radius = max(clip_sigma * _robust_radius(fit), 0.05)
         ri, di, _ = match(offsets, radius, fit)
+        if searches is None:
+            # after the first fit, which the segments matched at the night's clock
+            # made: a segment whose stars missed is searched along the scan
+            offsets, searches = _search_segments(
+                segments,
+                *predicted(offsets, fit),
+                det_row,
+                det_col,
+                det_seg,
+                di,
+                offsets=offsets,
+                line_time=predictor.line_time * (1.0 + offsets.line_time_scale),
+                max_offset=search.segment_clock,
+                match_radius=match_radius,
+                min_stars=min_segment_stars,
+                good_fraction=good_fraction,
+            )
+            if any(s.found for s in searches):
+                # its clock is the peak's, to a fraction of a bin: the next fit
+                # starts from pairs as loose as the first's.  A found segment that
+                # becomes the night's clock's (the first with enough stars) starts
+                # from the others' clock: the clocks enter the rows linearly, and
+                # the fit's steps take it there
+                ri, di, _ = match(offsets, match_radius, fit)
     counts["matched"] = int(fit.n_used)
     if fit.n_used < min_matches:
         raise _failure(counts, f"only {fit.n_used} reference stars survived the fit")
@@ -446,7 +490,82 @@ def solve_night(
         det_column=det_col,
         segments=segments,
         min_segment_stars=min_segment_stars,
+        segment_searches=searches,
     )
+
+
+def _search_segments(
+    segments: NightSegments,
+    ref_row: np.ndarray,
+    ref_column: np.ndarray,
+    det_row: np.ndarray,
+    det_column: np.ndarray,
+    det_segment: np.ndarray,
+    det_index: np.ndarray,
+    *,
+    offsets: GeometryOffsets,
+    line_time: float,
+    max_offset: float,
+    match_radius: float,
+    min_stars: int,
+    good_fraction: float,
+) -> tuple[GeometryOffsets, tuple[SegmentSearch, ...]]:
+    """Search along the scan the clock of each segment whose stars missed at the night's.
+
+    ``ref_row``, ``ref_column``: the reference stars predicted at
+    ``offsets`` (the first fit's), each at its segment's clock;
+    ``det_index``: the detections matched there.  A segment is searched
+    when fewer than ``min_stars`` of its detections matched, or fewer than
+    ``good_fraction`` of its reference stars predicted on the chip (or of
+    its detections, if fewer), and it holds ``min_stars`` detections
+    (:func:`~pipeline.stages.astrometry._segments.search_segment_clock`,
+    bins of ``match_radius``).  A significant peak (``found``) sets the
+    segment's clock in the returned offsets; the rest keep theirs.
+
+    Returns
+    -------
+    offsets : GeometryOffsets
+        ``offsets`` with the found segments' clocks.
+    searches : tuple of SegmentSearch
+        One per segment searched.
+    """
+    ok = np.isfinite(det_row) & np.isfinite(det_column)
+    on_chip = np.isfinite(ref_row) & np.isfinite(ref_column)
+    ref_segment = segments.of_rows(ref_row)
+    matched = det_segment[det_index]
+    own = offsets.segment_clock
+    searches = []
+    for number, start, stop in zip(segments.numbers, segments.starts, segments.stops, strict=True):
+        mine = ok & (det_segment == number)
+        expected = min(int(np.sum(on_chip & (ref_segment == number))), int(mine.sum()))
+        pairs = int(np.sum(matched == number))
+        if mine.sum() < min_stars or pairs >= max(min_stars, good_fraction * expected):
+            continue
+        reach = max_offset / line_time + 4.0 * match_radius
+        near = on_chip & (ref_row > start - reach) & (ref_row < stop + reach)
+        found = search_segment_clock(
+            ref_row[near],
+            ref_column[near],
+            det_row[mine],
+            det_column[mine],
+            line_time=line_time,
+            max_offset=max_offset,
+            match_radius=match_radius,
+            min_stars=min_stars,
+            segment=int(number),
+            clock=own[number] if number < len(own) else 0.0,
+        )
+        searches.append(found)
+        log.info("segment %d: %s", int(number), found.describe())
+    if not any(found.found for found in searches):
+        return offsets, tuple(searches)
+    table = np.zeros(max(int(segments.numbers.max()) + 1, len(own)))
+    table[: len(own)] = own
+    for found in searches:
+        if found.found:
+            table[found.segment] = found.clock
+    moved = dataclasses.replace(offsets, segment_clock=tuple(float(v) for v in table))
+    return moved, tuple(searches)
 
 
 def _segments_of(segments: NightSegments | None, rows, given=None) -> np.ndarray | None:
@@ -542,6 +661,7 @@ class AstrometricSolution:
     det_column: np.ndarray
     segments: NightSegments | None = None
     min_segment_stars: int = 10
+    segment_searches: tuple[SegmentSearch, ...] = ()
 
     # ----------------------------------------------------------- parameters
     @property
@@ -656,6 +776,7 @@ class AstrometricSolution:
             reference=-1 if reference is None else reference,
             min_stars=self.min_segment_stars,
             declination=float(np.asarray(dec).ravel()[0]),
+            searches=self.segment_searches,
         )
 
     # ------------------------------------------------------------- positions

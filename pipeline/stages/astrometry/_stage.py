@@ -479,19 +479,35 @@ def segment_clock_problems(records: list[dict]) -> list[str]:
         One line per fitted segment whose clock offset lies more than 5
         sigma (common practice) and more than 1 ms from the night's clock:
         less is the rounding of DATE-OBS written to the millisecond.  The
-        solution corrects it; the line says by how much.
+        solution corrects it; the line says by how much.  And one per
+        segment whose stars missed at the night's clock and whose search
+        along the scan found no clock either: its positions are unchecked.
     """
-    return [
-        f"segment {r['segment']} (rows {r['rows'][0]}-{r['rows'][1] - 1}, from "
-        f"{r['first_block']}): its {r['n_stars']} stars put its DATE-OBS "
-        f"{abs(r['offset_ms']):.1f} +- {r['offset_err_ms']:.1f} ms "
-        f"{'late' if r['offset_ms'] < 0 else 'early'} against the night's clock "
-        f"({r['ra_mas']:+.0f} mas in RA): the solution gives the segment its own clock "
-        "(parameters' segment_clocks); check the camera computer's clock, or LINETIME if "
-        "ingest finds the same jump at every block."
-        for r in records
-        if r["fitted"] and abs(r["offset_ms"]) > max(5.0 * r["offset_err_ms"], 1.0)
-    ]
+    lines = []
+    for r in records:
+        where = (
+            f"segment {r['segment']} (rows {r['rows'][0]}-{r['rows'][1] - 1}, from "
+            f"{r['first_block']})"
+        )
+        search = r.get("search")
+        if r["fitted"] and abs(r["offset_ms"]) > max(5.0 * r["offset_err_ms"], 1.0):
+            lines.append(
+                f"{where}: its {r['n_stars']} stars put its DATE-OBS "
+                f"{abs(r['offset_ms']):.1f} +- {r['offset_err_ms']:.1f} ms "
+                f"{'late' if r['offset_ms'] < 0 else 'early'} against the night's clock "
+                f"({r['ra_mas']:+.0f} mas in RA): the solution gives the segment its own "
+                "clock (parameters' segment_clocks); check the camera computer's clock, or "
+                "LINETIME if ingest finds the same jump at every block."
+            )
+        elif search is not None and not search["found"] and not r["reference"]:
+            lines.append(
+                f"{where}: {r['n_stars']} of its stars matched at the night's clock and a "
+                f"search along the scan within +-{search['range_s']:g} s found no clock "
+                f"(best {search['pairs']} pairs against {search['chance']:g} by chance): "
+                "its positions are the night's clock's, unchecked; check its first block's "
+                "DATE-OBS (a larger stages.astrometry.search_segment_clock) or its detections."
+            )
+    return lines
 
 
 def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag, segments=None):
@@ -745,6 +761,8 @@ STAGE = Stage(
     # stopped by max_passes (or deconvolved products) is recorded as such;
     # parameters record focal_length_given; 4: a clock offset per segment after a
     # gap (parameters' segment_clocks), the stretch WCSs timed by their segment's;
-    # the passes' and the error floor's problems are no longer dropped
-    version=4,
+    # the passes' and the error floor's problems are no longer dropped; 5: a
+    # segment whose stars miss at the night's clock is searched along the scan
+    # (search_segment_clock), its search in its segment_clocks record
+    version=5,
 )
