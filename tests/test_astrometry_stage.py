@@ -572,12 +572,17 @@ def test_a_stretch_the_fit_left_out_whole_is_named():
     ids = ["s0000", "s0001", "s0002", "s0003", "s0004"]
     lines = unmatched_stretches(catalog, ids)
     assert lines == [
-        "s0003: 0 of its 200 detections in the fit against a median of 100 per stretch: its "
-        "positions are the solution's, unchecked (a clock error in its segment's DATE-OBS? "
-        "a cloud?).",
-        "s0004: 5 of its 200 detections in the fit against a median of 100 per stretch: its "
-        "positions are the solution's, unchecked (a clock error in its segment's DATE-OBS? "
-        "a cloud?).",
+        "s0003: 0 of its 200 detections in the fit against a median of 100 per stretch "
+        "fitted: its positions are the solution's, unchecked (a clock error in its segment's "
+        "DATE-OBS? a cloud?).",
+        "s0004: 5 of its 200 detections in the fit against a median of 100 per stretch "
+        "fitted: its positions are the solution's, unchecked (a clock error in its segment's "
+        "DATE-OBS? a cloud?).",
     ]
     # A sparse night (median below 10 per stretch) says nothing.
     assert unmatched_stretches(catalog[::40], ids) == []
+    # Most stretches lost (a segment's clock far off): each is named, against
+    # the stretches the fit used (the median of all five would be 0).
+    ref_index[200:600] = -1
+    lines = unmatched_stretches(Table({"stretch": stretch, "ref_index": ref_index}), ids)
+    assert [line.split(":")[0] for line in lines] == ["s0001", "s0002", "s0003", "s0004"]

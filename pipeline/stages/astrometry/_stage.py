@@ -214,8 +214,10 @@ def unmatched_stretches(catalog, stretch_ids: list[str], min_median: int = 10) -
     in its segment's DATE-OBS, a camera that moved) keeps positions that
     nothing checks; the zero point then calls it FEW_STARS.  Reported when
     the stretch has detections but fewer matched ones than
-    :data:`UNMATCHED_FRACTION` of the median of the night's stretches, and
-    that median is at least ``min_median``.
+    :data:`UNMATCHED_FRACTION` of the median of the stretches the fit used
+    (those with a matched detection: when most stretches are lost, the
+    median of all would be 0 and name none), and that median is at least
+    ``min_median``.
 
     Parameters
     ----------
@@ -235,12 +237,13 @@ def unmatched_stretches(catalog, stretch_ids: list[str], min_median: int = 10) -
     matched = np.asarray(catalog["ref_index"]) >= 0
     detected = np.array([np.sum(index == k) for k in range(len(stretch_ids))])
     kept = np.array([np.sum(matched & (index == k)) for k in range(len(stretch_ids))])
-    if not len(kept) or np.median(kept) < min_median:
+    used = kept[kept > 0]
+    if not used.size or np.median(used) < min_median:
         return []
-    median = float(np.median(kept))
+    median = float(np.median(used))
     return [
         f"{stretch_ids[k]}: {kept[k]} of its {detected[k]} detections in the fit against a "
-        f"median of {median:g} per stretch: its positions are the solution's, unchecked "
+        f"median of {median:g} per stretch fitted: its positions are the solution's, unchecked "
         "(a clock error in its segment's DATE-OBS? a cloud?)."
         for k in range(len(stretch_ids))
         if detected[k] > 0 and kept[k] < UNMATCHED_FRACTION * median
@@ -763,6 +766,7 @@ STAGE = Stage(
     # gap (parameters' segment_clocks), the stretch WCSs timed by their segment's;
     # the passes' and the error floor's problems are no longer dropped; 5: a
     # segment whose stars miss at the night's clock is searched along the scan
-    # (search_segment_clock), its search in its segment_clocks record
+    # (search_segment_clock), its search in its segment_clocks record, and a
+    # stretch the fit left out is named against the stretches the fit used
     version=5,
 )
