@@ -108,12 +108,13 @@ def test_faint_star_flux_errors_are_not_too_small(measured):
 
     The tile is resampled from 0.52 px nights, whose noise it anticorrelates
     between neighbouring tile pixels: the tile's ``NOISECOR``, the factor of
-    a large aperture by its resampling model, is ~0.41 here, while a
-    star-sized matched filter sees 0.85-0.9 of the variance plane's noise on
-    the blank sky of these nights (measured without stars).  The catalogue
-    takes the factor as at least 1: errors ~5-10 % too large.  Given the
-    large-aperture factor instead, the errors came out 0.76 of the scatter
-    (pull rms 1.32).
+    a large aperture, is 0.80 here, while a star-sized matched filter sees
+    0.85-0.9 of the variance plane's noise on the blank sky of these nights
+    (measured without stars).  The catalogue takes the factor as at least
+    1: errors ~5 % too large (given 0.80 instead, pull rms 0.94).  With the
+    resampler's large-aperture factor before it counted the night pixels'
+    uneven weights (0.41), the errors came out 0.76 of the scatter (pull
+    rms 1.32).
     """
     built, catalog, flux = measured
     faint = flux == FAINT
