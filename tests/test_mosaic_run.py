@@ -226,6 +226,9 @@ def test_a_tile_file_has_its_planes_wcs_zero_point_inputs_and_config(built):
         assert [h.name for h in hdul[1:]] == list(TILE_EXTENSIONS)
         primary = hdul[0].header
         assert primary["PHOTZP"] == PHOTZP and primary["NNIGHTS"] == len(NIGHTS)
+        # every night's ZPERR is 0.01: the co-add's lies between 0.01 / sqrt(5)
+        # (equal weights) and 0.01 (one night); tests/test_mosaic_errors.py has the rule
+        assert 0.01 / np.sqrt(len(NIGHTS)) <= primary["ZPERR"] < 0.01
         # tile002 is touched by the second stretch of every night only
         assert [primary[f"INPUT{i + 1}"] for i in range(primary["NINPUTS"])] == [
             f"{night[0]}/s0001" for night in NIGHTS
@@ -333,6 +336,7 @@ def test_the_mosaic_reads_the_science_stages_header_cards():
     assert night.zero_point == header["PHOTZP"]
     assert night.night_zero_point == header["ZPMED"]
     assert night.seeing == header["SEEING"]
+    assert night.zero_point_error == header["ZPERR"] > 0
 
 
 def test_a_science_header_reads_through_astropy_wcs_without_fixes():

@@ -66,6 +66,7 @@ from pipeline.products import (
     NIGHT_ZERO_POINT_KEY,
     SEEING_KEY,
     VARIANCE_EXTENSION,
+    ZERO_POINT_ERROR_KEY,
     ZERO_POINT_KEY,
     night_column,
 )
@@ -116,6 +117,10 @@ class NightImage:
         The TDI smear kernels of its stars (rectify's ``smear_kernels``
         layout) with ``x``, ``y`` in the arrays' own pixels (0-based); None:
         round stars (a deconvolved product, or no kernel recorded).
+    zero_point_error : float
+        1-sigma error of the calibration that put ``image`` on ``zero_point``,
+        mag (the science stage's ``ZPERR``: the largest over the product);
+        0: unknown or exact.
     """
 
     image: np.ndarray
@@ -128,6 +133,7 @@ class NightImage:
     seeing: float | None = None
     noise_correlation: float = 1.0
     smear_kernels: Table | None = None
+    zero_point_error: float = 0.0
 
     @property
     def transparency_zero_point(self) -> float:
@@ -143,9 +149,10 @@ def night_image_from_hdulist(
     ----------
     hdul : astropy.io.fits.HDUList
         The product (:func:`pipeline.products.image_hdulist` layout) with
-        ``PHOTZP`` and optionally ``ZPMED``, ``SEEING`` and ``NOISECOR``
-        on its FLUX plane: the science stage's calibrated product (the
-        keywords: :data:`pipeline.products.ZERO_POINT_KEY` and its neighbours).
+        ``PHOTZP`` and optionally ``ZPMED``, ``ZPERR``, ``SEEING`` and
+        ``NOISECOR`` on its FLUX plane: the science stage's calibrated
+        product (the keywords: :data:`pipeline.products.ZERO_POINT_KEY` and
+        its neighbours).
     night : str or None
         Night label; None: the FLUX plane's ``DATE-OBS`` (its date part).
     smear_kernels : astropy.table.Table or None
@@ -190,6 +197,7 @@ def night_image_from_hdulist(
         seeing=float(header[SEEING_KEY]) if SEEING_KEY in header else None,
         noise_correlation=float(header.get("NOISECOR", 1.0)),
         smear_kernels=smear_kernels,
+        zero_point_error=float(header.get(ZERO_POINT_ERROR_KEY, 0.0)),
     )
 
 
@@ -558,6 +566,9 @@ class MosaicTile:
         ``(FWHM arcsec, weight, pixel arcsec)`` of each night co-added whose
         seeing is known: a star's seeing is their mix
         (:class:`~pipeline.mosaic._kernels.SeeingMix`).
+    zero_point_error : float
+        1-sigma error of ``zero_point`` as the co-add inherits it, mag
+        (:func:`_zero_point_error`); 0: the nights' are unknown.
     """
 
     tile: Tile
@@ -568,11 +579,16 @@ class MosaicTile:
     excluded: dict[int, str] = field(default_factory=dict)
     smear_kernels: Table | None = None
     seeing: tuple[tuple[float, float, float], ...] = ()
+    zero_point_error: float = 0.0
 
     def header(self) -> fits.Header:
-        """The tile's WCS and the mosaic's cards (zero point, nights, noise factor)."""
+        """The tile's WCS and the mosaic's cards (zero point, its error, nights, noise factor)."""
         header = self.tile.wcs.to_header()
         header[ZERO_POINT_KEY] = (self.zero_point, "[mag] m = PHOTZP - 2.5 log10(sum of IMAGE)")
+        header[ZERO_POINT_ERROR_KEY] = (
+            round(self.zero_point_error, 5),
+            "[mag] PHOTZP error, the nights' as co-added",
+        )
         header["NOISECOR"] = (
             round(self.noise_correlation, 5),
             "aperture variance / sum of 1/weight",
@@ -708,6 +724,10 @@ def mosaic_tile(
         p[0]: s / _sky_variance(v) for p, s, v in zip(planes, scale, variances, strict=True)
     }
     kernels = carried_kernels(kept, tile, [night_weight.get(p.night, 0.0) for p in kept])
+    # a night's flux scale is off by its zero point's error (the largest of its products)
+    night_error = {
+        night: max(p.zero_point_error for p in kept if p.night == night) for night in nights
+    }
     result = coadd(
         images,
         variances,
@@ -743,6 +763,9 @@ def mosaic_tile(
         noise_correlation=noise_correlation,
         excluded=excluded,
         smear_kernels=kernels,
+        zero_point_error=_zero_point_error(
+            [night_error[p[0]] for p in planes], [night_weight[p[0]] for p in planes]
+        ),
         seeing=tuple(
             (float(seeing[night]), float(night_weight[night]), pixel[night])
             for night in (p[0] for p in planes)
@@ -765,6 +788,22 @@ def pixel_arcsec(wcs: WCS, shape: tuple[int, int]) -> float:
     d_north = dec[1:] - dec[0]
     area = abs(d_east[0] * d_north[1] - d_east[1] * d_north[0])
     return 3600.0 * float(np.sqrt(area))
+
+
+def _zero_point_error(errors: Sequence[float], weights: Sequence[float]) -> float:
+    """Error of the co-add's zero point from the nights' independent zero point errors, mag.
+
+    A co-added star's flux is the weighted mean of the nights' (weights
+    ``w_i``), each off by its night's zero point error ``e_i`` (small, so
+    magnitudes and relative fluxes add alike): ``sqrt(sum (w_i e_i)**2) /
+    sum w_i``, the error of a weighted mean of independent values (common
+    practice).  0 without weights.
+    """
+    errors, weights = np.asarray(errors, float), np.asarray(weights, float)
+    total = weights.sum()
+    if not total > 0:
+        return 0.0
+    return float(np.sqrt(np.sum((weights * errors) ** 2)) / total)
 
 
 def _sky_variance(variance: np.ndarray) -> float:

@@ -7,9 +7,9 @@ The tile's FITS file (:func:`tile_hdulist`) holds four image extensions on
 the tile's WCS: ``IMAGE`` (counts on the scale of ``PHOTZP``), ``WEIGHT``
 (inverse predicted pixel variance), ``COVERAGE`` (nights kept per pixel) and
 ``FLAGS`` (:class:`~pipeline.masks.MaskBit`).  Its primary header carries the
-zero point (``PHOTZP``), the nights co-added (``NIGHTn``), every input
-product with its SHA-256 (``INPUTn``, ``INHASHn``) and the mosaic config
-(``MOSCONF``, JSON in a long-string card).
+zero point (``PHOTZP``) and its error (``ZPERR``), the nights co-added
+(``NIGHTn``), every input product with its SHA-256 (``INPUTn``,
+``INHASHn``) and the mosaic config (``MOSCONF``, JSON in a long-string card).
 """
 
 from __future__ import annotations
@@ -26,7 +26,12 @@ from astropy.table import QTable, Table
 from pipeline.masks import MASK_DTYPE
 from pipeline.mosaic._coadd import MosaicTile, NightImage, pixel_arcsec
 from pipeline.mosaic._kernels import SeeingMix
-from pipeline.products import FLAGS_EXTENSION, ZERO_POINT_KEY, flag_header
+from pipeline.products import (
+    FLAGS_EXTENSION,
+    ZERO_POINT_ERROR_KEY,
+    ZERO_POINT_KEY,
+    flag_header,
+)
 from pipeline.stages.detect import SeeingProfile
 
 __all__ = [
@@ -113,7 +118,10 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
         detect's columns (``x``, ``y`` in tile pixels, ``ra``, ``dec`` from
         the tile's WCS, ``flux_psf`` in counts of the zero point, ...) plus
         ``mag`` and ``mag_err`` (``PHOTZP - 2.5 log10(flux_psf)``; NaN for a
-        flux <= 0).
+        flux <= 0).  ``mag_err`` holds the flux's error and the zero point's
+        (``tile.zero_point_error``, the nights' calibration errors as
+        co-added; in the meta as ``ZPERR``), as the nights' calibrated
+        catalogues do (:func:`pipeline.stages.zeropoint.calibrate_catalog`).
     """
     from pipeline.stages.detect import detect
 
@@ -143,12 +151,17 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
     positive = flux > 0
     safe = np.where(positive, flux, 1.0)
     catalog["mag"] = np.where(positive, tile.zero_point - 2.5 * np.log10(safe), np.nan) * u.mag
-    catalog["mag_err"] = np.where(positive, _MAG_PER_LN * error / safe, np.nan) * u.mag
+    # the flux's error and the zero point's, independent (common practice)
+    flux_error = _MAG_PER_LN * error / safe
+    mag_err = np.hypot(flux_error, tile.zero_point_error)
+    catalog["mag_err"] = np.where(positive, mag_err, np.nan) * u.mag
     catalog["mag"].info.description = f"{ZERO_POINT_KEY} - 2.5 log10(flux_psf)"
-    catalog["mag_err"].info.description = "1-sigma error of mag"
+    both = f"flux_psf_err and {ZERO_POINT_ERROR_KEY} in quadrature"
+    catalog["mag_err"].info.description = f"1-sigma error of mag: {both}"
     catalog["x"].info.description = "tile column (0-based)"
     catalog["y"].info.description = "tile row (0-based)"
     catalog.meta[ZERO_POINT_KEY] = tile.zero_point
+    catalog.meta[ZERO_POINT_ERROR_KEY] = tile.zero_point_error
     catalog.meta["tile"] = tile.tile.name
     catalog.meta["problems"] = list(result.problems)
     return catalog

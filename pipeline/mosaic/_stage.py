@@ -90,7 +90,9 @@ TILE_STAGE = Stage(
     scope="night",
     uses=(),
     # 2: catalogues measured with the smear kernel the co-added stars carry;
-    # 3: and with the nights' TDI clocking top-hat
-    version=3,
+    # 3: and with the nights' TDI clocking top-hat; 4: mag_err holds the zero
+    # point's error (the nights' ZPERR as co-added), the tile's header ZPERR;
+    # NOISECOR counts the uneven weights of a night sampled by a coarser tile
+    version=4,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )
