@@ -210,7 +210,9 @@ def test_the_tiles_against_the_truth(demo):
     in the worst night's 1.8 arcsec seeing).
     """
     folder, _ = demo
-    truth = _truth(folder, NIGHTS[0])  # the same stars every night (ids match)
+    # the same sky every night: the first night's truth, matched by position (a
+    # star's id differs from night to night)
+    truth = _truth(folder, NIGHTS[0])
     tiles = _tiles(folder)
     coverage = np.concatenate([fits.getdata(t / "tile.fits", "COVERAGE").ravel() for t in tiles])
     assert len(tiles) >= 2 and coverage.max() == 3
