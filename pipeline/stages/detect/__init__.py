@@ -54,6 +54,7 @@ from pipeline.stages.detect._find import (
     find_sources,
     inverse_variance,
     measured_noise_correlation_rows,
+    narrow_gaps,
     segment_moments,
     significance_map,
 )
@@ -97,6 +98,12 @@ log = logging.getLogger(__name__)
 
 #: Mask bits of pixels without data (rectify sets image and variance NaN there).
 _NO_DATA = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN | MaskBit.OUTSIDE
+#: Widest gap of no-data rows, in seeing FWHMs, that a segment of the searches
+#: may cross (:func:`~pipeline.stages.detect._find.narrow_gaps`): one bad raw
+#: column is ~4 rectified rows (1.5 FWHM of 2.7 px), two side by side ~5; a
+#: star centred in a gap of 2 FWHM still shows its wings on both sides, where
+#: the matched filter's significance over the gap is meaningful.
+GAP_FWHM = 2.0
 
 
 class DetectOptions(BaseModel):
@@ -472,6 +479,18 @@ def detect(
         inverse = None if single else inverse_variance(var)
         noise_correlation = 1.0
 
+    # Per gap width: the no-data pixels the searches' segments stay out of,
+    # all but the narrow gaps across the scan (a bad column's rows), which a
+    # star's segment crosses.  Without such a gap, ``no_data`` itself.
+    search_masks: dict = {}
+
+    def search_mask(prof):
+        rows = max(1, int(GAP_FWHM * prof.fwhm))
+        if rows not in search_masks:
+            gaps = narrow_gaps(no_data, rows) if missing else None
+            search_masks[rows] = no_data & ~gaps if gaps is not None and gaps.any() else no_data
+        return search_masks[rows]
+
     def segment(prof, data=None):
         if prof not in filters:
             templates = band_templates(lookup, prof, x_centre, image.shape[0], filter_band)
@@ -500,7 +519,7 @@ def detect(
         )
         return snr, *find_sources(
             snr,
-            no_data,
+            search_mask(prof),
             threshold=threshold_sigma,
             min_pixels=min_pixels,
             deblend_levels=deblend_levels,
@@ -1316,6 +1335,9 @@ STAGE = Stage(
     #     than SEEING_STARS_CROWDED are far from every other source
     # 14: EDGE for pixels without data in the core only (in the wings alone,
     #     NEAR_FLAGGED): a bad column no longer costs its neighbours' stars
-    version=14,
+    # 15: the searches' segments cross a bad column's rows (narrow gaps of no
+    #     data): a star beside or through a bad column is one source, not two
+    #     (products without such gaps unchanged)
+    version=15,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
