@@ -39,7 +39,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline._lazy import lazy_exports
 from pipeline.exceptions import DetectWarning
-from pipeline.masks import MaskBit, has_bits
+from pipeline.masks import has_bits
 from pipeline.products import (
     FLAGS_EXTENSION,
     FLUX_EXTENSION,
@@ -59,6 +59,7 @@ from pipeline.stages.detect._find import (
     significance_map,
 )
 from pipeline.stages.detect._measure import (
+    NO_DATA,
     SourceFlag,
     aperture_fluxes,
     best_fwhm,
@@ -96,8 +97,6 @@ __getattr__, __dir__ = lazy_exports(
 
 log = logging.getLogger(__name__)
 
-#: Mask bits of pixels without data (rectify sets image and variance NaN there).
-_NO_DATA = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN | MaskBit.OUTSIDE
 #: Widest gap of no-data rows, in seeing FWHMs, that a segment of the searches
 #: may cross (:func:`~pipeline.stages.detect._find.narrow_gaps`): one bad raw
 #: column is ~4 rectified rows (1.5 FWHM of 2.7 px), two side by side ~5; a
@@ -416,7 +415,7 @@ def detect(
         profile = SeeingProfile(float(fwhm_guess), seeing_shape, moffat_beta)
     else:
         profile = seeing_profile.with_fwhm(float(fwhm_guess))
-    no_data = has_bits(mask, _NO_DATA) | ~np.isfinite(image) | ~(variance > 0)
+    no_data = has_bits(mask, NO_DATA) | ~np.isfinite(image) | ~(variance > 0)
     empty_seeing = _seeing_table([(0, image.shape[0], 0, np.nan)])
     if no_data.all():
         return DetectResult(
@@ -1149,7 +1148,7 @@ def _has_data(planes: Planes) -> bool:
     """
     for first in range(0, planes.image.shape[0], HAS_DATA_ROWS):
         rows = slice(first, first + HAS_DATA_ROWS)
-        no_data = has_bits(planes.mask[rows], _NO_DATA) | ~np.isfinite(planes.image[rows])
+        no_data = has_bits(planes.mask[rows], NO_DATA) | ~np.isfinite(planes.image[rows])
         if np.any(~no_data & (planes.variance[rows] > 0)):
             return True
     return False
@@ -1336,7 +1335,8 @@ STAGE = Stage(
     # 14: EDGE for pixels without data in the core only (in the wings alone,
     #     NEAR_FLAGGED): a bad column no longer costs its neighbours' stars
     # 15: the searches' segments cross a bad column's rows (narrow gaps of no
-    #     data): a star beside or through a bad column is one source, not two
+    #     data), and a star whose core they cut is not tested for UNRESOLVED:
+    #     a star beside or through a bad column is one source, not two
     #     (products without such gaps unchanged)
     version=15,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
