@@ -1430,8 +1430,7 @@ def test_pixels_without_data_make_edge_in_the_core_only():
     image[64, :] = np.nan
     mask[64, :] |= np.uint16(MaskBit.NONFINITE)
     cat = detect(image, scene.variance, mask, scene.kernels, fwhm_guess=3.2).catalog
-    # Each star's detection (a row without data also leaves faint, flagged
-    # detections beside it: FIT_FAILED or EDGE, left out of every fit).
+    # Each star's detection (one source per star: tests/test_detect_gaps.py).
     d, k = cKDTree(np.column_stack([cat["x"].value, cat["y"].value])).query(np.column_stack([x, y]))
     assert np.all(d < 0.5)
     flags = cat["flags"].value.astype(int)[k]

@@ -39,7 +39,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline._lazy import lazy_exports
 from pipeline.exceptions import DetectWarning
-from pipeline.masks import MaskBit, has_bits
+from pipeline.masks import has_bits
 from pipeline.products import (
     FLAGS_EXTENSION,
     FLUX_EXTENSION,
@@ -54,10 +54,12 @@ from pipeline.stages.detect._find import (
     find_sources,
     inverse_variance,
     measured_noise_correlation_rows,
+    narrow_gaps,
     segment_moments,
     significance_map,
 )
 from pipeline.stages.detect._measure import (
+    NO_DATA,
     SourceFlag,
     aperture_fluxes,
     best_fwhm,
@@ -95,8 +97,12 @@ __getattr__, __dir__ = lazy_exports(
 
 log = logging.getLogger(__name__)
 
-#: Mask bits of pixels without data (rectify sets image and variance NaN there).
-_NO_DATA = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN | MaskBit.OUTSIDE
+#: Widest gap of no-data rows, in seeing FWHMs, that a segment of the searches
+#: may cross (:func:`~pipeline.stages.detect._find.narrow_gaps`): one bad raw
+#: column is ~4 rectified rows (1.5 FWHM of 2.7 px), two side by side ~5; a
+#: star centred in a gap of 2 FWHM still shows its wings on both sides, where
+#: the matched filter's significance over the gap is meaningful.
+GAP_FWHM = 2.0
 
 
 class DetectOptions(BaseModel):
@@ -409,7 +415,7 @@ def detect(
         profile = SeeingProfile(float(fwhm_guess), seeing_shape, moffat_beta)
     else:
         profile = seeing_profile.with_fwhm(float(fwhm_guess))
-    no_data = has_bits(mask, _NO_DATA) | ~np.isfinite(image) | ~(variance > 0)
+    no_data = has_bits(mask, NO_DATA) | ~np.isfinite(image) | ~(variance > 0)
     empty_seeing = _seeing_table([(0, image.shape[0], 0, np.nan)])
     if no_data.all():
         return DetectResult(
@@ -472,6 +478,18 @@ def detect(
         inverse = None if single else inverse_variance(var)
         noise_correlation = 1.0
 
+    # Per gap width: the no-data pixels the searches' segments stay out of,
+    # all but the narrow gaps across the scan (a bad column's rows), which a
+    # star's segment crosses.  Without such a gap, ``no_data`` itself.
+    search_masks: dict = {}
+
+    def search_mask(prof):
+        rows = max(1, int(GAP_FWHM * prof.fwhm))
+        if rows not in search_masks:
+            gaps = narrow_gaps(no_data, rows) if missing else None
+            search_masks[rows] = no_data & ~gaps if gaps is not None and gaps.any() else no_data
+        return search_masks[rows]
+
     def segment(prof, data=None):
         if prof not in filters:
             templates = band_templates(lookup, prof, x_centre, image.shape[0], filter_band)
@@ -500,7 +518,7 @@ def detect(
         )
         return snr, *find_sources(
             snr,
-            no_data,
+            search_mask(prof),
             threshold=threshold_sigma,
             min_pixels=min_pixels,
             deblend_levels=deblend_levels,
@@ -1130,7 +1148,7 @@ def _has_data(planes: Planes) -> bool:
     """
     for first in range(0, planes.image.shape[0], HAS_DATA_ROWS):
         rows = slice(first, first + HAS_DATA_ROWS)
-        no_data = has_bits(planes.mask[rows], _NO_DATA) | ~np.isfinite(planes.image[rows])
+        no_data = has_bits(planes.mask[rows], NO_DATA) | ~np.isfinite(planes.image[rows])
         if np.any(~no_data & (planes.variance[rows] > 0)):
             return True
     return False
@@ -1316,6 +1334,10 @@ STAGE = Stage(
     #     than SEEING_STARS_CROWDED are far from every other source
     # 14: EDGE for pixels without data in the core only (in the wings alone,
     #     NEAR_FLAGGED): a bad column no longer costs its neighbours' stars
-    version=14,
+    # 15: the searches' segments cross a bad column's rows (narrow gaps of no
+    #     data), and a star whose core they cut is not tested for UNRESOLVED:
+    #     a star beside or through a bad column is one source, not two
+    #     (products without such gaps unchanged)
+    version=15,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

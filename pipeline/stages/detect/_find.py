@@ -25,7 +25,11 @@
   :func:`~photutils.segmentation.detect_sources` and
   :func:`~photutils.segmentation.deblend_sources` on the significance map,
   done with fewer calls (:func:`segment_map`, :func:`deblend_segments`:
-  the same results).
+  the same results).  Pixels without data belong to no segment, except
+  those of a narrow gap across the scan (:func:`narrow_gaps`: a bad
+  column's few rows), where the significance is still the matched filter's
+  from the pixels around: a star the gap passes through or beside is one
+  segment, not one on each side.
 """
 
 from __future__ import annotations
@@ -54,6 +58,7 @@ __all__ = [
     "filter_scale",
     "find_sources",
     "inverse_variance",
+    "narrow_gaps",
     "segment_moments",
     "segment_pixels",
     "significance_map",
@@ -801,6 +806,61 @@ def segment_moments(data: np.ndarray, segm, mask: np.ndarray, snr: np.ndarray) -
         orientation=np.rad2deg(orientation) % 360,
         peak=peak,
     )
+
+
+def narrow_gaps(no_data: np.ndarray, max_rows: int) -> np.ndarray:
+    """Pixels without data in runs across the scan of at most ``max_rows``, data on both sides.
+
+    A dead or bad CCD column is, after rectify, a few rows of no-data pixels
+    along the scan (4 rows for one raw column with the resampling's
+    kernels).  The matched filter's significance on them is that of the
+    data around (the template reaches over the gap; :func:`significance_map`
+    gives missing pixels no weight), but a segmentation that leaves them out
+    cuts a star the gap passes through into two segments, and a bright
+    star's wing beyond a gap beside it into a segment of its own: each
+    became a source, fitted as a second star of the pair (most of them
+    FIT_FAILED or EDGE).  The searches segment across these pixels instead;
+    wider holes (gaps between blocks, the chip's outside) stay out.
+
+    Parameters
+    ----------
+    no_data : ndarray of bool, shape (ny, nx)
+        Pixels without data; axis 0 is across the scan (a raw column is a
+        rectified row).
+    max_rows : int
+        Longest run of no-data pixels along axis 0 that counts as narrow.
+
+    Returns
+    -------
+    ndarray of bool, shape (ny, nx)
+        The no-data pixels of runs along axis 0 of at most ``max_rows``
+        pixels that have a pixel with data just before and just after them
+        (a run touching the first or last row is not narrow).
+    """
+    from scipy.ndimage import label
+
+    if max_rows < 1:
+        raise ValueError(f"max_rows must be a positive number of rows; got {max_rows}.")
+    no_data = np.asarray(no_data, bool)
+    out = np.zeros(no_data.shape, bool)
+    rows = np.flatnonzero(no_data.any(axis=1))
+    if not rows.size:
+        return out
+    # runs along axis 0 only (each column on its own), within the rows holding any
+    lo, hi = int(rows[0]), int(rows[-1]) + 1
+    runs, n = label(no_data[lo:hi], structure=[[0, 1, 0], [0, 1, 0], [0, 1, 0]])
+    if n == 0:
+        return out
+    length = np.bincount(runs.reshape(-1), minlength=n + 1)
+    narrow = length <= max_rows
+    narrow[0] = False
+    # runs touching the plane's first or last row have no data beyond them
+    if lo == 0:
+        narrow[runs[0]] = False
+    if hi == no_data.shape[0]:
+        narrow[runs[-1]] = False
+    out[lo:hi] = narrow[runs]
+    return out
 
 
 def segment_map(snr: np.ndarray, no_data: np.ndarray, *, threshold: float, min_pixels: int):

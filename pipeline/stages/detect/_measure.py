@@ -265,15 +265,32 @@ def best_fwhm(fwhm_grid: np.ndarray, chi2: np.ndarray) -> float:
     return float(fwhm_grid[k] + np.clip(shift, -1.0, 1.0) * h)
 
 
-def _flags_for(mask, core, stamp_box, clipped, blended) -> int:
-    """The flags of a star from the mask over its stamp and its ``core`` (bool, on the stamp)."""
+def _flags_for(mask, core, stamp_box, clipped, blended) -> tuple[int, int]:
+    """The flags of a star from the mask over its stamp and its ``core`` (bool, on the stamp).
+
+    Returns the flags and the OR of the mask bits over the core.
+    """
     y0, y1, x0, x1 = stamp_box
     stamp_mask = mask[y0:y1, x0:x1]
     stamp_bits = core_bits = 0
     if stamp_mask.any():  # most stamps have no flagged pixel: skip the bit tests
         stamp_bits = int(np.bitwise_or.reduce(stamp_mask, axis=None))
         core_bits = int(np.bitwise_or.reduce(stamp_mask[core], axis=None))
-    return _flags_from_bits(stamp_bits, core_bits, clipped, blended)
+    return _flags_from_bits(stamp_bits, core_bits, clipped, blended), core_bits
+
+
+def _quadrupole_usable(core_bits: int) -> bool:
+    """Whether a fit's residual quadrupole can mark its star UNRESOLVED.
+
+    Not when pixels without data (a bad column's rows) cut the star's core:
+    the quadrupole is summed over the pixels with data, and a round misfit of
+    the model (the seeing's shape a little off, significant in a bright
+    star) summed over one side of the core is elongated.  On a scene of
+    stars cut by a bad column's four rows, stars of S/N 2000 were flagged so
+    and split into a pair, a second source of S/N 4-8 on the cut's other
+    side.
+    """
+    return not core_bits & _NO_DATA_BITS
 
 
 # The bits as plain ints: an IntFlag's ``|`` and ``&`` are Python calls (0.14 s
@@ -286,6 +303,9 @@ _EDGE, _NEAR_FLAGGED = int(SourceFlag.EDGE), int(SourceFlag.NEAR_FLAGGED)
 _SATURATED, _COSMIC_RAY = int(SourceFlag.SATURATED), int(SourceFlag.COSMIC_RAY)
 _BLENDED, _OVERLAP = int(SourceFlag.BLENDED), int(SourceFlag.OVERLAP)
 _FIT_FAILED, _UNRESOLVED = int(SourceFlag.FIT_FAILED), int(SourceFlag.UNRESOLVED)
+#: Mask bits of pixels without data (rectify sets image and variance NaN there).
+NO_DATA = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN | MaskBit.OUTSIDE
+_NO_DATA_BITS = int(NO_DATA)
 
 
 def _flags_from_bits(stamp_bits: int, core_bits: int, clipped, blended) -> int:
@@ -497,11 +517,12 @@ def _measure_group(
         y0, y1, x0, x1, clipped = box
         unit = fit.units[j]
         core = unit > 0.05 * unit.max()
-        flags = _flags_for(mask, core, (y0, y1, x0, x1), clipped, bool(split[i]))
+        flags, core_bits = _flags_for(mask, core, (y0, y1, x0, x1), clipped, bool(split[i]))
         values = (fit.flux[j], fit.x[j], fit.y[j], fit.flux_err[j], fit.x_err[j], fit.y_err[j])
         fitted = (values, fit.background, fit.chi2, fit.success)
+        pair_i = bool(pair[i]) and _quadrupole_usable(core_bits)
         rows.append(
-            _row(members[i], fitted, flags, pair[i], box, kern[i], resp[i], profile, own_columns)
+            _row(members[i], fitted, flags, pair_i, box, kern[i], resp[i], profile, own_columns)
         )
     return rows
 
@@ -698,8 +719,13 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
         rows = []
         for s in range(first, cuts[g + 1]):
             values = stars_list[s]
-            pair = math.isfinite(sums[s][0]) and _quadrupole_test(sums[s], nc)
-            flags = _flags_from_bits(stamp_bits, int(values[6]), box[4], split[s - first])
+            core_bits = int(values[6])
+            pair = (
+                math.isfinite(sums[s][0])
+                and _quadrupole_usable(core_bits)
+                and _quadrupole_test(sums[s], nc)
+            )
+            flags = _flags_from_bits(stamp_bits, core_bits, box[4], split[s - first])
             fitted = (tuple(values[:6]), background, chi2, success)
             rows.append(
                 _row(starts[s], fitted, flags, pair, box, kern[s], resp[s], profile, own_columns)
