@@ -837,8 +837,6 @@ def narrow_gaps(no_data: np.ndarray, max_rows: int) -> np.ndarray:
         pixels that have a pixel with data just before and just after them
         (a run touching the first or last row is not narrow).
     """
-    from scipy.ndimage import label
-
     if max_rows < 1:
         raise ValueError(f"max_rows must be a positive number of rows; got {max_rows}.")
     no_data = np.asarray(no_data, bool)
@@ -846,20 +844,25 @@ def narrow_gaps(no_data: np.ndarray, max_rows: int) -> np.ndarray:
     rows = np.flatnonzero(no_data.any(axis=1))
     if not rows.size:
         return out
-    # runs along axis 0 only (each column on its own), within the rows holding any
+    # The runs along axis 0, from the no-data pixels alone (a few per cent of
+    # the plane), column by column: ~13 ms for a 4109 x 1024 stretch against
+    # ~50 ms for scipy.ndimage.label of the rows holding any.
     lo, hi = int(rows[0]), int(rows[-1]) + 1
-    runs, n = label(no_data[lo:hi], structure=[[0, 1, 0], [0, 1, 0], [0, 1, 0]])
-    if n == 0:
-        return out
-    length = np.bincount(runs.reshape(-1), minlength=n + 1)
+    n = hi - lo
+    flat = np.flatnonzero(no_data[lo:hi].T)  # column after column
+    column, row = np.divmod(flat, n)
+    starts = np.ones(flat.size, bool)
+    starts[1:] = (np.diff(flat) != 1) | (column[1:] != column[:-1])
+    first = np.flatnonzero(starts)
+    length = np.diff(np.append(first, flat.size))
     narrow = length <= max_rows
-    narrow[0] = False
     # runs touching the plane's first or last row have no data beyond them
     if lo == 0:
-        narrow[runs[0]] = False
+        narrow &= row[first] > 0
     if hi == no_data.shape[0]:
-        narrow[runs[-1]] = False
-    out[lo:hi] = narrow[runs]
+        narrow &= row[first] + length < n
+    keep = np.repeat(narrow, length)
+    out[lo + row[keep], column[keep]] = True
     return out
 
 
