@@ -183,8 +183,10 @@ def _star_noise_ratio(tile: MosaicTile, mix: SeeingMix | None) -> float:
         return 1.0
     scale = pixel_arcsec(tile.tile.wcs, tile.tile.shape)
     sigmas, weights = mix.mixture()
-    ratios = [star_noise_ratio(sigmas, weights, scale / pixel) for _, _, pixel in tile.seeing]
-    return float(np.sum(np.asarray(mix.fractions) * np.asarray(ratios)))
+    ratios = np.array([star_noise_ratio(sigmas, weights, scale / p) for _, _, p in tile.seeing])
+    if np.all(ratios == 1.0):  # no night averaged: the factor exactly as before
+        return 1.0
+    return float(np.sum(np.asarray(mix.fractions) * ratios))
 
 
 def _seeing_mix(tile: MosaicTile, detect_options) -> SeeingProfile | None:
