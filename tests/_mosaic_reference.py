@@ -2,7 +2,9 @@
 
 These are the implementations the compiled ones replaced, kept verbatim so
 that tests can compare the two on random inputs and the benchmark can time
-both in one run.
+both in one run; the average over an output pixel beyond ``STRETCH_FROM``
+(tiles much coarser than their nights) was added to the compiled passes later,
+and here as a plain loop over those pixels (:func:`_averaged_taps`).
 """
 
 from __future__ import annotations
@@ -24,10 +26,12 @@ from pipeline.mosaic._coadd import (
 from pipeline.mosaic._resample import (
     ResampledImage,
     _checked,
+    _cubic_bspline,
     _input_planes,
     _noise_correlation,
     _plan,
 )
+from pipeline.mosaic._resample_jit import STRETCH_FROM
 from pipeline.stages.rectify import NO_DATA_BITS
 from pipeline.stages.rectify._resample import keys_weights
 
@@ -58,6 +62,7 @@ def resample_axis_numpy(
         p = positions[r0:r1]
         base = np.floor(p)
         w = (keys_weights(p - base) * jacobian[r0:r1]).astype(np.float32)
+        w[:, jacobian[r0:r1] > STRETCH_FROM] = 0  # averaged below
         base = base.astype(np.intp)
         if axis == 1:
             offset, stride = (np.arange(r0, r1) * n_cols)[:, None], 1
@@ -77,7 +82,33 @@ def resample_axis_numpy(
             mo |= np.where(nonzero & inside, mflat[index], 0).astype(MASK_DTYPE)
             if not inside.all():
                 mo |= np.where(nonzero & ~inside, outside, 0).astype(MASK_DTYPE)
+    for i, j in zip(*np.nonzero(jacobian > STRETCH_FROM), strict=True):
+        line = (i, slice(None)) if axis == 1 else (slice(None), j)
+        pixel = _averaged_taps(
+            image[line], variance[line], flags[line], positions[i, j], jacobian[i, j], outside
+        )
+        out[i, j], vout[i, j], mout[i, j] = pixel[:3]
+        sum_w2 += pixel[3]
     return out, vout, mout, sum_w2 / max(positions.size, 1)
+
+
+def _averaged_taps(image, variance, flags, position, step, outside):
+    """One output pixel of a line averaged over ``step`` input pixels, tap by tap."""
+    taps = np.arange(int(np.floor(position - 2.0 * step)) + 1, int(np.ceil(position + 2.0 * step)))
+    kernel = _cubic_bspline((taps - position) / step)
+    weights = (step * kernel / kernel.sum()).astype(np.float32)
+    o, vo, mo, sum_w2 = np.float32(0), np.float32(0), MASK_DTYPE.type(0), 0.0
+    for tap, w in zip(taps, weights, strict=True):
+        if w == 0:
+            continue
+        if not 0 <= tap < image.size:
+            mo |= outside
+            continue
+        o += w * image[tap]
+        vo += w * w * variance[tap]
+        sum_w2 += float(w * w)
+        mo |= flags[tap]
+    return o, vo, mo, sum_w2
 
 
 def _numpy_pass(planes, positions, axis):

@@ -251,6 +251,25 @@ _MIN_SIGMA = 0.1
 #: its two cubics on [0, 1] and [1, 2] (Keys 1981, IEEE Trans. ASSP 29, 1153).
 KEYS_M4 = -0.3
 
+
+def resampling_cumulants(pixel: float) -> tuple[float, float]:
+    """Variance and fourth cumulant of the resampler's kernel on the tile, in tile pixels.
+
+    For a night's ``pixel`` (tile pixels): up to ``STRETCH_FROM`` (1.45)
+    night pixels per tile pixel, the Keys kernel on the night's pixels,
+    variance 0 and fourth cumulant ``M4 pixel**4``; beyond, the cubic
+    B-spline one tile pixel wide that averages the night over each tile
+    pixel (:func:`pipeline.mosaic._resample_jit._sample_wide`), four
+    top-hats of 1 convolved: variance ``4 / 12``, fourth cumulant ``-4 /
+    120`` (see :class:`SeeingMix`).
+    """
+    from pipeline.mosaic._resample_jit import STRETCH_FROM
+
+    if pixel * STRETCH_FROM < 1.0:
+        return 4.0 / 12.0, -4.0 / 120.0
+    return 0.0, KEYS_M4 * float(pixel) ** 4
+
+
 #: Share ``w`` of a night's Gaussian taken off by the wider one of its pair (any
 #: w > 0 gives the pair's fourth cumulant; 1/2 keeps both variances within
 #: ~0.1 px**2 of the night's on the demo).
@@ -262,33 +281,37 @@ class SeeingMix(SeeingProfile):
     """Nights' seeing profiles of one family added with weights: a co-added star's seeing.
 
     The model of detect integrates each Gaussian over a tile pixel, but a
-    tile pixel is a sample of the resampled night (its value at the pixel's
-    centre times the pixel's area), whose stars are integrated over the
-    night's own pixels and interpolated with the Keys cubic kernel
-    (:mod:`pipeline.mosaic._resample`).  Along each axis, in tile pixels,
-    a star's samples are the seeing convolved with a top-hat of the night's
-    pixel ``s`` (the night's pixel over the tile's) and the Keys kernel
-    stretched to ``s``; the model is a Gaussian convolved with a top-hat of
-    1.  Cumulants add under convolution (common practice), so each
-    Gaussian of a night is replaced by a pair of Gaussians with the same
-    variance ``sigma**2 + (s**2 - 1) / 12`` and the fourth cumulant the
-    samples need beyond the model's top-hat,
-    ``k4 = (1 - s**4) / 120 + M4 s**4``: a top-hat of width ``w`` has
-    variance ``w**2 / 12`` and fourth cumulant ``-w**4 / 120`` (the
-    uniform distribution, common practice); ``M4 = -3/10`` is the Keys
-    kernel's fourth moment, its mean over the interpolation's phases
-    (``integral t**4 K(t) dt`` of the kernel of Keys 1981, IEEE Trans. ASSP
-    29, 1153; its second moment is 0: the kernel reproduces quadratics).  A
-    pair of weights ``p``, ``1 - p`` and variances ``v_1``, ``v_2`` has
-    fourth cumulant ``3 p (1 - p) (v_1 - v_2)**2`` along an axis; ``k4`` is
-    negative on the demo (the Keys kernel's), so the pair is a Gaussian of
-    weight ``1 + w`` less a wider one of weight ``w``.  Noise-free Gaussian
-    stars of 1.46 px FWHM on the demo's 0.52 px nights come out -0.42 %
-    with the variance alone, +0.14 % with the pair (36 stars; each star's
-    own phase on the night's pixels, not modelled, leaves a spread of
-    0.5 %), ``tests/test_mosaic_kernels.py``; the demo's tiles move from
-    -0.0074 to -0.0046 mag at most.  The pairs double the Gaussians: a
-    tile's catalogue takes ~1.9 times the CPU time.
+    tile pixel is the resampled night (:mod:`pipeline.mosaic._resample`),
+    whose stars are integrated over the night's own pixels and then either
+    interpolated with the Keys cubic kernel (a night of up to 1.45 of the
+    tile's pixels) or averaged over the tile's pixel with the cubic
+    B-spline (a finer one).  Along each axis, in tile pixels, a star's
+    samples are the seeing convolved with a top-hat of the night's pixel
+    ``s`` (the night's pixel over the tile's) and the resampler's kernel,
+    of variance ``r2`` and fourth cumulant ``r4``
+    (:func:`resampling_cumulants`); the model is a Gaussian convolved with
+    a top-hat of 1.  Cumulants add under convolution (common practice), so
+    each Gaussian of a night is replaced by a pair of Gaussians with the
+    same variance ``sigma**2 + (s**2 - 1) / 12 + r2`` and the fourth
+    cumulant the samples need beyond the model's top-hat, ``k4 = (1 -
+    s**4) / 120 + r4``: a top-hat of width ``w`` has variance ``w**2 / 12``
+    and fourth cumulant ``-w**4 / 120`` (the uniform distribution, common
+    practice).  The Keys kernel on the night's pixels has ``r2 = 0`` (it
+    reproduces quadratics) and ``r4 = M4 s**4``, ``M4 = -3/10`` its fourth
+    moment, its mean over the interpolation's phases (``integral t**4 K(t)
+    dt`` of the kernel of Keys 1981, IEEE Trans. ASSP 29, 1153); the cubic
+    B-spline of one tile pixel, four top-hats of 1, ``r2 = 4 / 12`` and
+    ``r4 = -4 / 120``.  A pair of weights ``p``, ``1 - p`` and variances
+    ``v_1``, ``v_2`` has fourth cumulant ``3 p (1 - p) (v_1 - v_2)**2``
+    along an axis; ``k4`` is negative on the demo, so the pair is a
+    Gaussian of weight ``1 + w`` less a wider one of weight ``w``.
+    Noise-free Gaussian stars of 1.46 px FWHM on the demo's 0.52 px nights
+    come out +0.04 % (width held) and -0.06 % (fitted), 36 stars with a
+    spread of 0.02 % (``tests/test_mosaic_kernels.py``; with the Keys
+    kernel sampling the nights, -0.42 % with the variance alone, +0.14 %
+    with the pair and a spread of 0.5 % over the stars' phases on the
+    night's pixels).  The pairs double the Gaussians: a tile's catalogue
+    takes ~1.9 times the CPU time.
 
     Parameters
     ----------
@@ -343,8 +366,9 @@ class SeeingMix(SeeingProfile):
         sigmas, weights = [], []
         for width, fraction, pixel in zip(self.widths, self.fractions, self.pixels, strict=True):
             s, w = SeeingProfile(self.fwhm * width, self.shape, self.beta).mixture()
-            variance = s * s + (pixel * pixel - 1.0) / 12.0
-            k4 = (1.0 - pixel**4) / 120.0 + KEYS_M4 * pixel**4
+            k2_resampling, k4_resampling = resampling_cumulants(pixel)
+            variance = s * s + (pixel * pixel - 1.0) / 12.0 + k2_resampling
+            k4 = (1.0 - pixel**4) / 120.0 + k4_resampling
             if k4 < 0.0:  # weights 1 + w and -w, variances v + w e and v + (1 + w) e
                 e = np.sqrt(-k4 / (3.0 * _PAIR * (1.0 + _PAIR)))
                 pair = (variance + _PAIR * e, variance + (1.0 + _PAIR) * e)

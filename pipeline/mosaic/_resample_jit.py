@@ -21,7 +21,19 @@ import numpy as np
 
 from pipeline._jit import njit
 
-__all__ = ["resample_columns", "resample_rows", "tensor_grid"]
+__all__ = ["STRETCH_FROM", "resample_columns", "resample_rows", "tensor_grid"]
+
+#: Steps (input pixels per output pixel) above which the input is averaged
+#: over the output pixel (:func:`_sample_wide`) rather than sampled with the
+#: four Keys taps.  Sampling every ``step`` pixels leaves those between the
+#: samples nearly out; averaging blurs a star by the output pixel.  A star's
+#: sky-limited flux error (white noise, a 1.45 arcsec star on 1 arcsec
+#: tiles, each image's own star as the filter) grows over the night's by
+#: 6 % sampled at a step of 1.33, 9 % at 1.43, 15 % at 1.5, 25 % at 1.67
+#: and 49 % at 1.92, and by 12 % averaged at any of them: they cross near
+#: 1.45.  Tiles of up to 1.45 night pixels keep the four taps (and their
+#: products as they were).
+STRETCH_FROM = 1.45
 
 
 @njit(nogil=True, inline="always")
@@ -77,6 +89,52 @@ def _sample(image, variance, flags, row, column, along_rows, n_line, w, outside)
             continue
         y = row + k if along_rows else row
         x = column if along_rows else column + k
+        o, vo, sum_w2 = _tap(o, vo, sum_w2, wk, image[y, x], variance[y, x])
+        mo |= flags[y, x]
+    return o, vo, mo, sum_w2
+
+
+@njit(nogil=True, inline="always")
+def _cubic_bspline(t):
+    """The cubic B-spline (four unit top-hats convolved) at distance ``t``, pixels."""
+    t = abs(t)
+    if t < 1.0:
+        return 2.0 / 3.0 - t * t + 0.5 * t * t * t
+    if t < 2.0:
+        u = 2.0 - t
+        return u * u * u / 6.0
+    return 0.0
+
+
+@njit(nogil=True)
+def _sample_wide(image, variance, flags, row, column, along_rows, n_line, position, step, outside):
+    """:func:`_sample`, the input averaged over an output pixel of ``step`` > 1 input pixels.
+
+    The taps are the input pixels ``i`` within ``2 step`` of ``position``
+    along the line (``[i, column]`` if ``along_rows``, else ``[row, i]``),
+    weighted ``step B((i - position) / step) / sum_i B((i - position) /
+    step)``, ``B`` the cubic B-spline (:func:`_cubic_bspline`): every input
+    pixel between the samples counts, and a flat input gives ``step`` times
+    its value at every phase.  Flags as :func:`_sample`.
+    """
+    lo = int(np.floor(position - 2.0 * step)) + 1
+    hi = int(np.ceil(position + 2.0 * step)) - 1
+    norm = 0.0
+    for i in range(lo, hi + 1):
+        norm += _cubic_bspline((i - position) / step)
+    o = np.float32(0.0)
+    vo = np.float32(0.0)
+    mo = np.uint16(0)
+    sum_w2 = 0.0
+    for i in range(lo, hi + 1):
+        wk = np.float32(step * _cubic_bspline((i - position) / step) / norm)
+        if wk == 0:
+            continue
+        if not 0 <= i < n_line:
+            mo |= outside
+            continue
+        y = i if along_rows else row
+        x = column if along_rows else i
         o, vo, sum_w2 = _tap(o, vo, sum_w2, wk, image[y, x], variance[y, x])
         mo |= flags[y, x]
     return o, vo, mo, sum_w2
@@ -183,17 +241,22 @@ def resample_rows(image, variance, flags, grid, shift, outside, out, vout, mout)
         row_jacobian = 0.0
         for j in range(n_out):
             row_jacobian += jacobian[j]
-            o, vo, mo, w2 = _sample(
-                image,
-                variance,
-                flags,
-                r,
-                first[j],
-                False,
-                n_line,
-                (w[0, j], w[1, j], w[2, j], w[3, j]),
-                outside,
-            )
+            if jacobian[j] > STRETCH_FROM:
+                o, vo, mo, w2 = _sample_wide(
+                    image, variance, flags, r, 0, False, n_line, line[j], jacobian[j], outside
+                )
+            else:
+                o, vo, mo, w2 = _sample(
+                    image,
+                    variance,
+                    flags,
+                    r,
+                    first[j],
+                    False,
+                    n_line,
+                    (w[0, j], w[1, j], w[2, j], w[3, j]),
+                    outside,
+                )
             row_out[j], row_vout[j], row_mout[j] = o, vo, mo
             row_w2 += w2
         sum_w2 += row_w2
@@ -282,17 +345,22 @@ def resample_columns(image, variance, flags, grid, shift, core, box, settings, p
         _line_weights(here, jacobian, first, w)
         for c in range(n_cols):
             sum_jacobian += jacobian[c]
-            o, vo, mo, w2 = _sample(
-                image,
-                variance,
-                flags,
-                first[c],
-                c,
-                True,
-                n_line,
-                (w[0, c], w[1, c], w[2, c], w[3, c]),
-                outside,
-            )
+            if jacobian[c] > STRETCH_FROM:
+                o, vo, mo, w2 = _sample_wide(
+                    image, variance, flags, 0, c, True, n_line, here[c], jacobian[c], outside
+                )
+            else:
+                o, vo, mo, w2 = _sample(
+                    image,
+                    variance,
+                    flags,
+                    first[c],
+                    c,
+                    True,
+                    n_line,
+                    (w[0, c], w[1, c], w[2, c], w[3, c]),
+                    outside,
+                )
             sum_w2 += w2
             no_data = (mo & no_data_bits) != 0
             if use_core:

@@ -92,7 +92,9 @@ TILE_STAGE = Stage(
     # 2: catalogues measured with the smear kernel the co-added stars carry;
     # 3: and with the nights' TDI clocking top-hat; 4: mag_err holds the zero
     # point's error (the nights' ZPERR as co-added), the tile's header ZPERR;
-    # NOISECOR counts the uneven weights of a night sampled by a coarser tile
-    version=4,
+    # NOISECOR counts the uneven weights of a night sampled by a coarser tile;
+    # 5: a tile over 1.45 times coarser than its nights averages them over
+    # its pixels (a cubic B-spline), which the catalogue's seeing mix holds
+    version=5,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )
