@@ -112,6 +112,10 @@ def test_other_files_are_left_to_astropy(tmp_path):
     plain.write_text("file hdu row_start n_rows\nb0.fits 0 0 100\n")
     assert read_block_rows(plain) is None
     assert read_block_rows(tmp_path / "absent.ecsv") is None
+    short = tmp_path / "short.ecsv"
+    write_ecsv(_index(), short)
+    short.write_text(short.read_text().rstrip("\n").rsplit(" ", 1)[0] + "\n")  # a cell lost
+    assert read_block_rows(short) is None
     binary = tmp_path / "binary.ecsv"
     binary.write_bytes(b"# %ECSV 1.0\n\xff\xfe")
     assert read_block_rows(binary) is None

@@ -102,8 +102,8 @@ def read_block_rows(path: Path) -> BlockRows | None:
     if meta.get("delimiter", " ") != " " or any(name not in types for name in BLOCK_INDEX_COLUMNS):
         return None
     rows = list(csv.reader(io.StringIO("\n".join(body)), delimiter=" ", quotechar='"'))
-    if not rows or rows[0] != list(types):
-        return None
+    if not rows or rows[0] != list(types) or any(len(row) != len(rows[0]) for row in rows):
+        return None  # astropy says what is wrong with it
     columns = {}
     for name, kind in _KINDS.items():
         if name not in types:
@@ -114,10 +114,7 @@ def read_block_rows(path: Path) -> BlockRows | None:
         ):
             return None
         at = rows[0].index(name)
-        try:
-            cells = [row[at] for row in rows[1:]]
-        except IndexError:
-            return None
+        cells = [row[at] for row in rows[1:]]
         if kind == "int":
             if any(not cell.lstrip("-").isdigit() for cell in cells):
                 return None  # masked ('') or not an integer
