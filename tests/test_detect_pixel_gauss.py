@@ -222,12 +222,14 @@ def _one_edge_at_a_time(first, n, centres, sigmas, box=0.0):
     Taylor's formula to second order), each step in the compiled loop's order
     of operations, from the scalar look-up ``_erf_and_gauss``.
     """
-    from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE, _SQRT2PI
+    from pipeline.stages.detect._pixel_gauss import _SQRT2PI, profile_tables
+
+    erf_table, gauss_table = profile_tables()
 
     look = _erf_and_gauss
 
     def sums(z):
-        c, g = look(z, _ERF_TABLE, _GAUSS_TABLE)
+        c, g = look(z, erf_table, gauss_table)
         cdf = 0.5 * (1.0 + c)
         pdf = g / _SQRT2PI
         return z * cdf + pdf, cdf, pdf
@@ -241,9 +243,9 @@ def _one_edge_at_a_time(first, n, centres, sigmas, box=0.0):
         inv = 1.0 / s
         for k, centre in enumerate(centres.tolist()):
             if box == 0.0:
-                c_lo, g_lo = look((first - 0.5 - centre) * inv, _ERF_TABLE, _GAUSS_TABLE)
+                c_lo, g_lo = look((first - 0.5 - centre) * inv, erf_table, gauss_table)
                 for e in range(n):
-                    c_hi, g_hi = look((first + e + 0.5 - centre) * inv, _ERF_TABLE, _GAUSS_TABLE)
+                    c_hi, g_hi = look((first + e + 0.5 - centre) * inv, erf_table, gauss_table)
                     value[j, k, e] = 0.5 * (c_hi - c_lo)
                     deriv[j, k, e] = -(g_hi - g_lo) * (1.0 / (_SQRT2PI * s))
                     c_lo, g_lo = c_hi, g_hi
@@ -277,7 +279,9 @@ def test_table_look_ups_stay_inside_the_tables_and_equal_one_at_a_time():
     # index past the tables raises IndexError, which the compiled code would
     # not) give each value the scalar reference's bits, at the tables' ends
     # and beyond them on both sides, and read no table entry past the last.
-    from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE, _REACH
+    from pipeline.stages.detect._pixel_gauss import _REACH, profile_tables
+
+    erf_table, gauss_table = profile_tables()
     from pipeline.stages.detect._pixel_gauss_jit import _erf_and_gauss_many
 
     step = 1.0 / 64.0
@@ -285,11 +289,11 @@ def test_table_look_ups_stay_inside_the_tables_and_equal_one_at_a_time():
     zs = np.array([-1e3, -50.0, -_REACH - 1e-9, -3.3, 0.0, 0.01, 2.5, 7.99, 1e3,
                    *[e + d for e in ends for d in (-1e-12, 0.0, 1e-12)]])  # fmt: skip
     c, g, scratch = np.empty(zs.size), np.empty(zs.size), np.full((7, zs.size), np.nan)
-    _erf_and_gauss_many.py_func(zs, _ERF_TABLE, _GAUSS_TABLE, c, g, scratch)
-    reference = np.array([_erf_and_gauss(z, _ERF_TABLE, _GAUSS_TABLE) for z in zs])
+    _erf_and_gauss_many.py_func(zs, erf_table, gauss_table, c, g, scratch)
+    reference = np.array([_erf_and_gauss(z, erf_table, gauss_table) for z in zs])
     np.testing.assert_array_equal(c, reference[:, 0])
     np.testing.assert_array_equal(g, reference[:, 1])
-    assert np.all((scratch[6] >= 0) & (scratch[6] <= _ERF_TABLE.size - 2))
+    assert np.all((scratch[6] >= 0) & (scratch[6] <= erf_table.size - 2))
 
 
 @pytest.mark.parametrize("box", [0.0, *BOXES])
@@ -327,7 +331,9 @@ def test_compiled_rows_are_the_numpy_sampled_profiles_to_the_bit(first, lattice,
     # _model._sampled_profiles (numpy, the Python fits' model) times the
     # component weights over K, to the last bit.
     from pipeline.stages.detect._fit_jit import _rows
-    from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE
+    from pipeline.stages.detect._pixel_gauss import profile_tables
+
+    erf_table, gauss_table = profile_tables()
 
     if lattice >= 0.0:
         assert (first - 2.0) + lattice != first + (lattice - 2.0)
@@ -341,7 +347,7 @@ def test_compiled_rows_are_the_numpy_sampled_profiles_to_the_bit(first, lattice,
         grid, centres, sigmas, None if lattice < 0.0 else lattice, box
     )
     scale = (weights / centres.size)[:, None, None]
-    tables = (_ERF_TABLE, _GAUSS_TABLE)
+    tables = (erf_table, gauss_table)
     rows, rows_d = _rows(first, n, centres, sigmas, weights, lattice, box, *tables, False)
     np.testing.assert_array_equal(rows, (value * scale).reshape(-1, n))
     np.testing.assert_array_equal(rows_d, (deriv * scale).reshape(-1, n))
@@ -357,12 +363,14 @@ def test_model_without_derivatives_is_the_fits_model_to_the_bit(response):
     # models) leaves the derivatives out; its values are those the fits'
     # _unit computes with them, to the last bit.
     from pipeline.stages.detect._fit_jit import _unit, model_compiled
-    from pipeline.stages.detect._pixel_gauss import _ERF_TABLE, _GAUSS_TABLE
+    from pipeline.stages.detect._pixel_gauss import profile_tables
+
+    erf_table, gauss_table = profile_tables()
 
     dx, dy = smear_track([3900.0], 4096, 24, 16.0, 3.0)
     sigmas, weights = SeeingProfile(2.7).mixture()
-    args = (2.0, 23, 1.0, 17, dx[0], dy[0], sigmas, weights, np.array(response), _ERF_TABLE,
-            _GAUSS_TABLE)  # fmt: skip
+    args = (2.0, 23, 1.0, 17, dx[0], dy[0], sigmas, weights, np.array(response), erf_table,
+            gauss_table)  # fmt: skip
     model, model_x, model_y = _unit(13.37, 9.81, *args)
     assert np.abs(model_x).max() > 0 and np.abs(model_y).max() > 0
     np.testing.assert_array_equal(model_compiled(13.37, 9.81, *args), model)

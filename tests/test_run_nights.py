@@ -98,6 +98,18 @@ def test_the_page_across_the_nights_is_drawn_again_only_when_what_it_shows_chang
     assert drawn == [1, 1, 1] and "<td>77</td>" in page.read_text()
 
 
+def test_a_mosaic_run_with_everything_up_to_date_loads_no_heavy_library(tmp_path, capsys):
+    """Nothing to build or draw: the tiles' and the page's checks need neither
+    scipy nor plotting (they loaded ~1 s of libraries on a slow day)."""
+    from test_startup import HEAVY, _heavy_imported
+
+    folders = write_nights(tmp_path / "products")
+    path = _mosaic(tmp_path, [str(p) for p in folders])
+    assert main(["run", str(path)]) == EXIT_OK, capsys.readouterr()
+    code = f"from pipeline.cli import main\nassert main(['run', {str(path)!r}]) == 0"
+    assert _heavy_imported(code, HEAVY) == []
+
+
 @pytest.mark.parametrize("option", [["--stage", "detect"], ["--stretches", "0"], ["--verify"]])
 def test_options_for_one_night_are_refused_for_a_mosaic(tmp_path, capsys, option):
     (tmp_path / "n1.yaml").write_text(NIGHT.format(name="n1", executor="local"))

@@ -80,15 +80,18 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 from astropy.wcs import WCS
-from scipy.interpolate import BSpline, RectBivariateSpline
 
 from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic._tiles import Tile
 from pipeline.stages.rectify import NO_DATA_BITS
 from pipeline.stages.rectify._resample import _cleaned
+
+if TYPE_CHECKING:
+    from scipy.interpolate import RectBivariateSpline
 
 __all__ = ["ResampledImage", "merge_onto_tile", "resample_to_tile"]
 
@@ -194,6 +197,8 @@ class _Mapping:
 
     @classmethod
     def build(cls, tile: Tile, wcs: WCS, input_shape: tuple[int, int]) -> _Mapping:
+        from scipy.interpolate import RectBivariateSpline
+
         n_y, n_x = tile.shape
         # Local derivatives on a coarse 9 x 9 grid (the turn changes across a tile).
         gx, gy = np.meshgrid(np.linspace(0, n_x - 1, 9), np.linspace(0, n_y - 1, 9))
@@ -280,6 +285,8 @@ class _SplineGrid:
 
 def _spline_grid(spline: RectBivariateSpline, x: np.ndarray, y: np.ndarray) -> _SplineGrid:
     """``spline`` on the grid ``x`` by ``y`` (lines along ``x``), as a :class:`_SplineGrid`."""
+    from scipy.interpolate import BSpline
+
     tx, ty, coefficients = spline.tck
     kx, ky = spline.degrees
     coefficients = coefficients.reshape(tx.size - kx - 1, ty.size - ky - 1)
@@ -318,6 +325,8 @@ def _crossing_grid(
     to ``rows`` x ``columns``.  Returns the grid and the least and largest
     value on its nodes.
     """
+    from scipy.interpolate import RectBivariateSpline
+
     y_nodes = _grid_nodes(rows[0], rows[-1])
     x_nodes = _grid_nodes(columns[0], columns[-1])
     fine = np.arange(y_range[0], y_range[1] + 4.0, 4.0)

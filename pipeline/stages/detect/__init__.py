@@ -1023,12 +1023,8 @@ def _subtract_models(image: np.ndarray, fits_, profile, in_place: bool = False) 
     cost as much again in Python as the models).
     """
     from pipeline.stages.detect._fit_jit import subtract_models_compiled
-    from pipeline.stages.detect._model import (
-        _ERF_TABLE,
-        _GAUSS_TABLE,
-        _kernel_samples,
-        _response_rows,
-    )
+    from pipeline.stages.detect._model import _kernel_samples, _response_rows
+    from pipeline.stages.detect._pixel_gauss import profile_tables
 
     out = image if in_place else image.copy()
     kernels = fits_["kernel"]
@@ -1048,8 +1044,7 @@ def _subtract_models(image: np.ndarray, fits_, profile, in_place: bool = False) 
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
         3.0 * profile.fwhm,
-        _ERF_TABLE,
-        _GAUSS_TABLE,
+        *profile_tables(),
     )
     return out
 

@@ -181,7 +181,8 @@ def seeing_curves(
         Reduced chi-square of each star at each trial FWHM.
     """
     from pipeline.stages.detect._measure_jit import seeing_chi2_compiled
-    from pipeline.stages.detect._model import _ERF_TABLE, _GAUSS_TABLE, _response_row, fit_stars
+    from pipeline.stages.detect._model import _response_row, fit_stars
+    from pipeline.stages.detect._pixel_gauss import profile_tables
 
     mixtures = _mixture_tables(profile, fwhm_grid)
     rows, curves = [], []
@@ -209,8 +210,7 @@ def seeing_curves(
             np.ascontiguousarray(kern[0][1], dtype=np.float64),
             _response_row(resp[0]),  # stamp and image pixels differ by whole pixels
             *mixtures,
-            _ERF_TABLE,
-            _GAUSS_TABLE,
+            *profile_tables(),
         )
         rows.append(y)
         curves.append(curve)
@@ -654,12 +654,8 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
     whose fit met a singular step (the Python loop fits them again and
     reports it).
     """
-    from pipeline.stages.detect._model import (
-        _ERF_TABLE,
-        _GAUSS_TABLE,
-        _kernel_samples,
-        _response_rows,
-    )
+    from pipeline.stages.detect._model import _kernel_samples, _response_rows
+    from pipeline.stages.detect._pixel_gauss import profile_tables
 
     if not groups:
         return {}
@@ -702,8 +698,7 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
         _response_rows(resp),
-        _ERF_TABLE,
-        _GAUSS_TABLE,
+        *profile_tables(),
         float(options["noise_correlation"]),
     )
     nc, own_columns = options["noise_correlation"], options["own_columns"]

@@ -34,12 +34,7 @@ import numpy as np
 from astropy.table import Table
 
 from pipeline.simulate._render import GaussianMixturePSF
-from pipeline.stages.detect._pixel_gauss import (
-    _ERF_TABLE,
-    _GAUSS_TABLE,
-    boxed_profiles,
-    pixel_profiles,
-)
+from pipeline.stages.detect._pixel_gauss import boxed_profiles, pixel_profiles, profile_tables
 
 __all__ = [
     "FitResult",
@@ -441,8 +436,7 @@ def model_image(
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
         _response_row(response),
-        _ERF_TABLE,
-        _GAUSS_TABLE,
+        *profile_tables(),
     )
 
 
@@ -665,8 +659,7 @@ def _fit_one(d, sw, origin, shape, x, y, kernels, sigmas, weights, responses, ma
         np.ascontiguousarray(sigmas, dtype=np.float64),
         np.ascontiguousarray(weights, dtype=np.float64),
         np.array([_response_row(r) for r in responses]),
-        _ERF_TABLE,
-        _GAUSS_TABLE,
+        *profile_tables(),
         int(max_evaluations),
     )
     return None if status < 0 else (p, jac, list(units), chi2, status == 1)

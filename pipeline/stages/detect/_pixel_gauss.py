@@ -20,10 +20,10 @@ the reference the compiled one is tested against.
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
-from scipy.special import erf, ndtr
 
 __all__ = [
     "boxed_profiles",
@@ -39,8 +39,6 @@ _ERF_SLOPE = math.sqrt(2.0 / math.pi)  # d erf(z / sqrt 2) / dz at z = 0
 _NODES_PER_SIGMA = 64  # table step 1/64 sigma: Hermite error ~ 2e-10
 _REACH = 8.0  # |z| beyond which erf is +-1 and exp(-z^2/2) < 1.3e-14
 _Z = np.arange(-_REACH * _NODES_PER_SIGMA, _REACH * _NODES_PER_SIGMA + 1) / _NODES_PER_SIGMA
-_ERF_TABLE = erf(_Z / _SQRT2)
-_GAUSS_TABLE = np.exp(-0.5 * _Z * _Z)
 # A top-hat within this of a whole number of pixels shares its edges' points
 # (see boxed_profiles): Taylor's third-order term, (slack / 2 sigma)^3 / 6
 # times phi'(z) <= 0.25, is < 4e-8 for sigma >= 0.5 px.
@@ -50,6 +48,18 @@ _SHARED_SLACK = 0.01
 # 0.64 px, the narrowest of a Moffat mixture), and the formula's division by
 # ``box`` would amplify the tables' rounding (1e-10) beyond 1e-7 below it.
 _LEAST_BOX = 0.05
+
+
+@functools.cache
+def profile_tables() -> tuple[np.ndarray, np.ndarray]:
+    """The tables of ``erf(z / sqrt 2)`` and ``exp(-z^2 / 2)`` at the nodes ``_Z``.
+
+    Made on first use (scipy.special is imported then, not when a config
+    that names detect's options is read or the mosaic package imported).
+    """
+    from scipy.special import erf
+
+    return erf(_Z / _SQRT2), np.exp(-0.5 * _Z * _Z)
 
 
 def pixel_profiles(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndarray):
@@ -79,8 +89,7 @@ def pixel_profiles(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndarray):
         int(grid.size),
         np.ascontiguousarray(centres, dtype=np.float64),
         np.ascontiguousarray(sigmas, dtype=np.float64),
-        _ERF_TABLE,
-        _GAUSS_TABLE,
+        *profile_tables(),
     )
 
 
@@ -123,13 +132,14 @@ def boxed_profiles(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndarray, bo
         np.ascontiguousarray(centres, dtype=np.float64),
         np.ascontiguousarray(sigmas, dtype=np.float64),
         float(box),
-        _ERF_TABLE,
-        _GAUSS_TABLE,
+        *profile_tables(),
     )
 
 
 def boxed_profiles_direct(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndarray, box: float):
     """:func:`boxed_profiles` with ``scipy.special.ndtr``, the formula at every edge."""
+    from scipy.special import ndtr
+
     edges = np.append(grid - 0.5, grid[-1] + 0.5)
     s = sigmas[:, None, None]
     value = np.zeros((sigmas.size, centres.size, grid.size))
@@ -158,6 +168,8 @@ def pixel_profiles_direct(grid: np.ndarray, centres: np.ndarray, sigmas: np.ndar
 
     The error function is evaluated once per pixel edge (``n + 1`` edges).
     """
+    from scipy.special import erf
+
     edges = np.append(grid - 0.5, grid[-1] + 0.5)
     z = (edges[None, None, :] - centres[None, :, None]) / sigmas[:, None, None]
     value = 0.5 * np.diff(erf(z / _SQRT2), axis=2)
