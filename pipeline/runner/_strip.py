@@ -252,12 +252,12 @@ def write_nights_page(config: Any, nights: list[Config], *, force: bool = False)
         products = _night_products(night)
         page = report_page(night)
         if page is not None:
-            products["page"] = Path(os.path.relpath(page, path.parent)).as_posix()
+            products["page"] = _link(page, path.parent)
         entries.append((night.night.name, products))
     for folder in (Path(p) for p in config.mosaic.nights if Path(p).is_dir()):
         products = _folder_products(folder)
         if "page" in products:
-            products["page"] = Path(os.path.relpath(products["page"], path.parent)).as_posix()
+            products["page"] = _link(products["page"], path.parent)
         entries.append((folder.name, products))  # the mosaic's name for the night
     options = night_options(nights)
     tiles = mosaic_nights(config)
@@ -286,7 +286,7 @@ def page_inputs(config: Any, nights: list[Config]) -> str:
     rows = []
     for night in nights:
         page = report_page(night)
-        link = None if page is None else Path(os.path.relpath(page, page_dir)).as_posix()
+        link = None if page is None else _link(page, page_dir)
         rows.append([night.night.name, _digests(night_dir(night), _PRODUCTS), link])
     for folder in (Path(p) for p in config.mosaic.nights if Path(p).is_dir()):
         wanted = {**_PRODUCTS, "page": REPORT_PAGE}
@@ -310,6 +310,11 @@ def page_inputs(config: Any, nights: list[Config]) -> str:
             "options": None if options is None else options.model_dump(mode="json"),
         }
     )
+
+
+def _link(page: Path, folder: Path) -> str:
+    """The link to a night's ``page`` from a page in ``folder`` (relative, POSIX)."""
+    return Path(os.path.relpath(page, folder)).as_posix()
 
 
 def _digests(root: Path, products: dict[str, tuple[str, str]]) -> dict[str, str | None]:
