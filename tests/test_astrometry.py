@@ -543,6 +543,16 @@ def test_too_few_matches_fail_with_counts():
     with pytest.raises(AstrometryError, match="does not cover the night's band") as info:
         solve_night(night.x, night.y, night.ref_ra, night.ref_dec - 5.0, night.nominal, night.frame)
     assert info.value.counts["reference_in_band"] == 0
+    # a shallow catalogue (a bright-star one on a narrow strip): every star
+    # detected, but fewer reference stars on the chip than a solution needs.
+    # The message leads with that, not with the site or the clock.
+    few = night.star[night.star >= 0][:8]
+    with pytest.raises(AstrometryError, match="too shallow for this strip") as info:
+        solve_night(
+            night.x, night.y, night.ref_ra[few], night.ref_dec[few], night.nominal, night.frame
+        )
+    assert info.value.counts["reference_on_chip"] == 8
+    assert str(info.value).index("too shallow") < str(info.value).index("site position")
     # no detection at all (every stretch flagged, e.g. a sky above the full
     # well): it used to crash in the predictor ("cannot reshape array of size 0")
     with pytest.raises(AstrometryError, match="holds no detection") as info:

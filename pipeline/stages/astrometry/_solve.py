@@ -214,6 +214,16 @@ def _failure(counts: dict, reason: str) -> AstrometryError:
             "the reference catalogue does not cover the night's band (check its sky "
             "coverage and the site latitude/longitude)"
         )
+    elif counts.get("reference_on_chip", counts["min_matches"]) < counts["min_matches"]:
+        # No geometry can match more stars than fall on the chip: say so first,
+        # rather than send the user after the site or the clock.
+        causes.append(
+            f"only {counts['reference_on_chip']} reference stars fall on the chip, fewer "
+            f"than min_matches={counts['min_matches']}: the reference catalogue is too "
+            "shallow for this strip (the packaged bright-star catalogues hold few stars in "
+            "a narrow band); give a deeper one (stages.astrometry.reference: source 'file', "
+            "e.g. a Gaia extract of the band) or lower stages.astrometry.min_matches"
+        )
     if counts.get("detections", 0) < 2 * counts.get("min_matches", 0):
         causes.append("too few detections (clouds, bad focus or a wrong detection threshold)")
     causes.append(
