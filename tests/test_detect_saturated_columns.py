@@ -19,9 +19,9 @@ import numpy as np
 import pytest
 from scipy.spatial import cKDTree
 
-from pipeline.masks import MaskBit
+from pipeline.masks import MaskBit, has_bits
 from pipeline.stages.detect import SourceFlag, detect
-from pipeline.stages.detect._saturated import saturated_columns
+from pipeline.stages.detect._saturated import CLIPPED, saturated_columns
 from tests._detect_scene import render_scene
 
 #: The mask bits rectify gives a column saturated all night (no data), and
@@ -110,10 +110,10 @@ def test_saturated_columns_are_long_clipped_runs_from_the_stretch_edge():
     Self-consistency: the pixels the scene's construction says.
     """
     mask, no_data, expected = _expected_runs_plane()
-    got = saturated_columns(mask, no_data)
+    got = saturated_columns(has_bits(mask, CLIPPED), no_data)
     assert got is not None and np.array_equal(got, expected)
     # none: no clipped pixel, or only a star's runs
-    assert saturated_columns(np.zeros((8, 300), np.uint16), np.zeros((8, 300), bool)) is None
+    assert saturated_columns(np.zeros((8, 300), bool), np.zeros((8, 300), bool)) is None
     star = mask.copy()
     star[[5, 10, 11, 12, 13, 20]] = 0
-    assert saturated_columns(star, np.zeros(mask.shape, bool)) is None
+    assert saturated_columns(has_bits(star, CLIPPED), np.zeros(mask.shape, bool)) is None

@@ -70,6 +70,7 @@ from pipeline.stages.detect._measure import (
 )
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
 from pipeline.stages.detect._saturated import (
+    CLIPPED,
     merge_on_footprints,
     saturated_columns,
     saturated_footprints,
@@ -425,7 +426,8 @@ def detect(
     # rows (no data; in its own copy of the mask, BAD_COLUMN | NONFINITE as
     # rectify flags those), so a star whose core they cut is flagged EDGE
     # and not tested for UNRESOLVED, as beside a bad column.
-    columns = saturated_columns(mask, no_data)
+    clipped = has_bits(mask, CLIPPED)
+    columns = saturated_columns(clipped, no_data)
     if columns is not None:
         no_data |= columns
         mask = mask.copy()
@@ -451,7 +453,8 @@ def detect(
     # ``var`` is detect's own plane (a copy, or the caller's scratch space)
     owned = overwrite_input or not np.may_share_memory(var, given_variance)
     # Saturated stars: fitted on their unsaturated wings, one source each.
-    footprints = saturated_footprints(mask, profile.fwhm, columns)
+    footprints = saturated_footprints(mask, profile.fwhm, columns, clipped)
+    del clipped
     grid = KernelGrid(smear_kernels)
     x_centre = x_start + 0.5 * (image.shape[1] - 1)
 

@@ -119,7 +119,7 @@ class Footprints:
 
 
 def saturated_columns(
-    mask: np.ndarray, no_data: np.ndarray, min_run: int = COLUMN_RUN
+    clipped: np.ndarray, no_data: np.ndarray, min_run: int = COLUMN_RUN
 ) -> np.ndarray | None:
     """The clipped pixels of columns saturated through the stretch (not a star's).
 
@@ -135,8 +135,9 @@ def saturated_columns(
 
     Parameters
     ----------
-    mask : ndarray of uint16, shape (ny, nx)
-        :class:`pipeline.masks.MaskBit` bits; axis 1 is the scan axis.
+    clipped : ndarray of bool, shape (ny, nx)
+        The clipped pixels (``has_bits(mask, CLIPPED)``); axis 1 is the scan
+        axis.
     no_data : ndarray of bool, shape (ny, nx)
         Pixels without data (whatever their bits).
     min_run : int
@@ -150,11 +151,14 @@ def saturated_columns(
     """
     from pipeline.stages.detect._find_jit import label_sorted
 
-    clipped = has_bits(mask, CLIPPED)
-    rows = np.flatnonzero(clipped.sum(axis=1) >= min_run)
+    # the rows holding any clipped pixel first (a tenth of the cost of
+    # counting them in every row: 0.15 ms against 1.4 ms on a clean
+    # 1035 x 4096 stretch), then those holding enough
+    rows = np.flatnonzero(clipped.any(axis=1))
+    rows = rows[np.count_nonzero(clipped[rows], axis=1) >= min_run]
     if not rows.size:
         return None
-    nx = mask.shape[1]
+    nx = clipped.shape[1]
     sub = clipped[rows]
     either = (sub | np.asarray(no_data)[rows]).reshape(-1)
     # runs of clipped-or-no-data pixels along each row: numbered by where
@@ -178,13 +182,16 @@ def saturated_columns(
     region, _count = label_sorted(where, nx, True)
     seed_where = (rows[:, None] * nx + np.arange(nx)[None, :])[seeds]
     chosen = np.unique(region[np.searchsorted(where, seed_where)])
-    out = np.zeros(mask.shape, bool)
+    out = np.zeros(clipped.shape, bool)
     out.reshape(-1)[where[np.isin(region, chosen)]] = True
     return out
 
 
 def saturated_footprints(
-    mask: np.ndarray, grow: float, columns: np.ndarray | None = None
+    mask: np.ndarray,
+    grow: float,
+    columns: np.ndarray | None = None,
+    clipped: np.ndarray | None = None,
 ) -> Footprints | None:
     """Find the saturated stars' footprints: clipped pixels grown by ``grow`` pixels.
 
@@ -197,6 +204,8 @@ def saturated_footprints(
         of a clipped core lie within it).
     columns : ndarray of bool or None
         :func:`saturated_columns`: clipped pixels left out (no star's).
+    clipped : ndarray of bool or None
+        ``has_bits(mask, CLIPPED)``, if already made (left as it is).
 
     Returns
     -------
@@ -205,9 +214,9 @@ def saturated_footprints(
     """
     from pipeline.stages.detect._find_jit import label_sorted, segment_bounds
 
-    clipped = has_bits(mask, CLIPPED)
+    clipped = has_bits(mask, CLIPPED) if clipped is None else clipped
     if columns is not None:
-        clipped &= ~columns
+        clipped = clipped & ~columns
     if not clipped.any():
         return None
     grown = clipped
