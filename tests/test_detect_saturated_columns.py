@@ -77,8 +77,12 @@ def test_stars_beside_a_column_saturated_through_the_stretch_are_each_found(spil
     assert np.array_equal(np.sort(k), np.arange(x.size))  # ... and every star found
     flags = np.asarray(cat["flags"].value, int)
     beside = k < n
-    # flagged for the flagged pixels in their stamps, fitted (not FIT_FAILED)
+    # flagged for the flagged pixels in their stamps, fitted (not FIT_FAILED);
+    # a core that reaches the column's pixels (SATURATED: they are its only
+    # clipped ones) reaches pixels detect had no data in: EDGE too
     assert np.all(flags[beside] & SourceFlag.NEAR_FLAGGED)
+    cut = (flags & SourceFlag.SATURATED) != 0
+    assert cut[beside].any() and np.all(flags[cut] & SourceFlag.EDGE)
     assert not np.any(flags & SourceFlag.FIT_FAILED)
     assert np.all(cat["snr"][beside] > 30.0)
 
