@@ -39,7 +39,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline._lazy import lazy_exports
 from pipeline.exceptions import DetectWarning
-from pipeline.masks import has_bits
+from pipeline.masks import MaskBit, has_bits
 from pipeline.products import (
     FLAGS_EXTENSION,
     FLUX_EXTENSION,
@@ -69,7 +69,12 @@ from pipeline.stages.detect._measure import (
     split_pair,
 )
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
-from pipeline.stages.detect._saturated import merge_on_footprints, saturated_footprints
+from pipeline.stages.detect._saturated import (
+    CLIPPED,
+    merge_on_footprints,
+    saturated_columns,
+    saturated_footprints,
+)
 from pipeline.stages.detect._sky import sky_errors
 
 if TYPE_CHECKING:
@@ -416,6 +421,17 @@ def detect(
     else:
         profile = seeing_profile.with_fwhm(float(fwhm_guess))
     no_data = has_bits(mask, NO_DATA) | ~np.isfinite(image) | ~(variance > 0)
+    # Columns saturated from the stretch's edge on: clipped or spilled charge
+    # all along, no star's footprint.  detect takes them as a bad column's
+    # rows (no data; in its own copy of the mask, BAD_COLUMN | NONFINITE as
+    # rectify flags those), so a star whose core they cut is flagged EDGE
+    # and not tested for UNRESOLVED, as beside a bad column.
+    clipped = has_bits(mask, CLIPPED)
+    columns = saturated_columns(clipped, no_data)
+    if columns is not None:
+        no_data |= columns
+        mask = mask.copy()
+        mask[columns] |= mask.dtype.type(int(MaskBit.BAD_COLUMN | MaskBit.NONFINITE))
     empty_seeing = _seeing_table([(0, image.shape[0], 0, np.nan)])
     if no_data.all():
         return DetectResult(
@@ -437,7 +453,8 @@ def detect(
     # ``var`` is detect's own plane (a copy, or the caller's scratch space)
     owned = overwrite_input or not np.may_share_memory(var, given_variance)
     # Saturated stars: fitted on their unsaturated wings, one source each.
-    footprints = saturated_footprints(mask, profile.fwhm)
+    footprints = saturated_footprints(mask, profile.fwhm, columns, clipped)
+    del clipped
     grid = KernelGrid(smear_kernels)
     x_centre = x_start + 0.5 * (image.shape[1] - 1)
 
@@ -1333,6 +1350,10 @@ STAGE = Stage(
     #     data), and a star whose core they cut is not tested for UNRESOLVED:
     #     a star beside or through a bad column is one source, not two
     #     (products without such gaps unchanged)
-    version=15,
+    # 16: a column saturated from the stretch's edge on (saturated_columns)
+    #     is no data and no footprint: the stars beside it are found one by
+    #     one, not merged into one source fitted on nothing (products without
+    #     such a column unchanged)
+    version=16,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
