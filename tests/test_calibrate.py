@@ -442,6 +442,35 @@ def test_calibration_inverts_the_raw_model_without_noise():
     assert result.mask.dtype == np.uint16 and not result.mask.any()
 
 
+def test_a_bleed_trail_ends_in_a_twilight_sky():
+    # A twilight sky above bias + bleed_fraction * (SATURATE - bias): the
+    # trail of a saturated star must end where its spilled charge does, not
+    # run on through the sky to the end of the column (it did: every row of
+    # the column BLEED, a stretch-long "saturated column" for detect).
+    n_rows, n_columns, bias = 400, 32, 1000.0
+    adu = np.full((n_rows, n_columns), bias + 36000.0)  # sky above 33268 ADU
+    adu[200:204, 10] = 65535.0  # saturated core
+    adu[204:210, 10] = 60000.0  # trail at near full well
+    adu[196:200, 10] = 58000.0
+    overscan = np.full((n_rows, 8), bias)
+    result = calibrate_stretch(
+        adu,
+        overscan,
+        gain=GAIN,
+        read_noise=READ_NOISE,
+        saturation=65535.0,
+        flat=np.ones(n_columns),
+        dark=np.zeros(n_columns),
+        cosmic_rays=False,
+    )
+    bleed = has_bits(result.mask, MaskBit.BLEED)
+    assert has_bits(result.mask[200:204, 10], MaskBit.SATURATED).all()
+    assert not bleed[200:204, 10].any()  # saturated pixels carry their own bit
+    # the trail and bleed_grow_rows (2) beyond each end, a column each side
+    assert bleed[194:200, 10].all() and bleed[204:212, 10].all() and bleed[194:212, 9].all()
+    assert not bleed[:192].any() and not bleed[214:].any()
+
+
 def test_column_mask_gap_ramp_and_nonfinite_bits():
     adu, overscan, _truth = _tdi_raw(np.random.default_rng(9), n_rows=512, noise=False)
     adu[100, 7] = np.nan

@@ -34,6 +34,7 @@ The 1-D flat and dark need many rows, so the work is split in three stages:
 
 from __future__ import annotations
 
+import functools
 import logging
 import warnings
 from dataclasses import dataclass
@@ -53,7 +54,7 @@ from pipeline.stages.calibrate._chunks import Scratch, row_chunks
 from pipeline.stages.calibrate._columns import adopt_columns, solve_columns, summarize_columns
 from pipeline.stages.calibrate._cosmics import NO_DATA_VARIANCE, detect_cosmic_rays
 from pipeline.stages.calibrate._rows import stretch_rows_for_stage
-from pipeline.stages.calibrate._saturation import bleed_pixels, saturation_mask
+from pipeline.stages.calibrate._saturation import bleed_level, bleed_pixels, saturation_mask
 
 if TYPE_CHECKING:
     from astropy.io import fits
@@ -408,8 +409,8 @@ def calibrate_stretch(
         See :func:`subtract_bias`.
     bleed_fraction : float
         A pixel continuing a saturated pixel's run along its column belongs to
-        the bleed trail if its raw level exceeds the bias by this fraction of
-        (SATURATE - bias).
+        the bleed trail if its raw level exceeds its row's sky (or bias, if
+        higher) by this fraction of (SATURATE - sky): :func:`bleed_level`.
     bleed_grow_rows, bleed_grow_columns : int
         Margin added around saturated and bleed pixels along and across the
         scan (mask BLEED).
@@ -464,7 +465,7 @@ def calibrate_stretch(
     bleed = bleed_pixels(
         image,
         saturated,
-        bias_level + bleed_fraction * (saturation - bias_level),
+        functools.partial(bleed_level, image, bias_level, saturation, bleed_fraction),
         bleed_grow_rows,
         bleed_grow_columns,
     )
@@ -908,6 +909,8 @@ STAGE = Stage(
     # multi-extension image product with units and observation metadata; 5: readout
     # dropout rows (one raw value in every pixel) flagged GAP; 6: rows.ecsv says
     # which rows hold data (column 'data'), for the report's hours of data, and
-    # BLANK pixels of unsigned raw data are NaN (they read as 0 ADU)
-    version=6,
+    # BLANK pixels of unsigned raw data are NaN (they read as 0 ADU); 7: a bleed
+    # trail ends where it falls to a fraction of the room above the row's sky,
+    # not above the bias (a twilight sky continued every trail to the column's end)
+    version=7,
 )

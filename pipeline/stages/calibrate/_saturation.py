@@ -10,9 +10,16 @@ not trustworthy either (common practice: grow the mask by a pixel).
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 
-__all__ = ["bleed_mask", "bleed_pixels", "saturation_mask"]
+__all__ = ["bleed_level", "bleed_mask", "bleed_pixels", "saturation_mask"]
+
+#: Every how many columns a row's sky is sampled for :func:`bleed_level`
+#: (the median of 512 of a 4096-column row: a star or a hot column moves it
+#: by a fraction of the sky's noise, and the level needs it to a few %).
+SKY_STEP = 8
 
 
 def saturation_mask(raw: np.ndarray, saturation: float | np.ndarray) -> np.ndarray:
@@ -36,10 +43,58 @@ def saturation_mask(raw: np.ndarray, saturation: float | np.ndarray) -> np.ndarr
     return raw >= saturation
 
 
+def bleed_level(
+    raw: np.ndarray,
+    bias: np.ndarray,
+    saturation: float | np.ndarray,
+    fraction: float,
+    rows: np.ndarray | None = None,
+) -> np.ndarray:
+    """Raw level of rows above which a saturated pixel's neighbour is its trail.
+
+    A trail pixel holds spilled charge on top of the sky: it lies above the
+    row's sky (or its bias, if that is higher) by ``fraction`` of the room
+    left between that and ``SATURATE``.  Measured from the bias alone, a
+    twilight sky above ``bias + fraction * (SATURATE - bias)`` would continue
+    every trail through the sky to the end of its column.  The sky is the
+    median of every :data:`SKY_STEP`-th pixel of the row (a non-finite one
+    counts as the lowest: a row mostly without data takes its bias).
+
+    Parameters
+    ----------
+    raw : ndarray, shape (n_rows, n_columns)
+        Raw image in ADU; axis 0 is the scan axis.
+    bias : ndarray of float, shape (n_rows,)
+        Each row's bias level, ADU (0 where unknown).
+    saturation : float or ndarray of shape (n_rows,)
+        SATURATE in ADU.
+    fraction : float
+        Fraction of the room between the row's sky and SATURATE, in (0, 1].
+    rows : ndarray of int or None
+        The rows wanted (:func:`bleed_pixels` asks only for those its walks
+        reach); None: all.
+
+    Returns
+    -------
+    ndarray of float, shape (n_rows,) or ``rows.shape``
+        ADU.
+    """
+    rows = np.arange(raw.shape[0]) if rows is None else np.asarray(rows, dtype=np.int64)
+    sample = np.array(raw[rows, ::SKY_STEP], dtype=np.float64)
+    if sample.shape[1] == 0:
+        sky = np.full(rows.size, -np.inf)
+    else:
+        sample[~np.isfinite(sample)] = -np.inf
+        sky = np.median(sample, axis=1)
+    base = np.fmax(np.asarray(bias, dtype=np.float64)[rows], sky)
+    saturation = np.broadcast_to(np.asarray(saturation, dtype=np.float64), (raw.shape[0],))
+    return base + fraction * (saturation[rows] - base)
+
+
 def bleed_pixels(
     raw: np.ndarray,
     saturated_index: np.ndarray,
-    bleed_level: float | np.ndarray,
+    bleed_level: float | np.ndarray | Callable[[np.ndarray], np.ndarray],
     grow_rows: int = 2,
     grow_columns: int = 1,
 ) -> np.ndarray:
@@ -56,9 +111,11 @@ def bleed_pixels(
         Raw image in ADU (C order); axis 0 is the scan axis.
     saturated_index : ndarray of int
         Sorted flat indices of the saturated pixels.
-    bleed_level : float or ndarray of shape (n_rows,)
+    bleed_level : float, ndarray of shape (n_rows,) or callable
         Raw level in ADU above which a pixel next to a saturated one along the
-        column counts as part of its trail.
+        column counts as part of its trail; a callable gives the levels of the
+        rows (ndarray of int) it is called with, and is asked only for the
+        rows the trails reach (e.g. :func:`bleed_level` with ``rows``).
     grow_rows, grow_columns : int
         Margin added around saturated and bleed pixels, in rows (along the
         scan) and columns (across it).
@@ -73,7 +130,22 @@ def bleed_pixels(
     saturated_index = np.asarray(saturated_index, dtype=np.int64)
     if saturated_index.size == 0:
         return saturated_index
-    level = np.broadcast_to(np.asarray(bleed_level, dtype=np.float64), (n_rows,))
+    if callable(bleed_level):
+        known = np.zeros(n_rows, dtype=bool)
+        level = np.empty(n_rows)
+
+        def levels(rows: np.ndarray) -> np.ndarray:
+            wanted = np.unique(rows[~known[rows]])
+            if wanted.size:
+                level[wanted] = bleed_level(wanted)
+                known[wanted] = True
+            return level[rows]
+    else:
+        fixed = np.broadcast_to(np.asarray(bleed_level, dtype=np.float64), (n_rows,))
+
+        def levels(rows: np.ndarray) -> np.ndarray:
+            return fixed[rows]
+
     flat_raw = raw.reshape(-1)
     is_saturated = np.zeros(raw.size, dtype=bool)
     is_saturated[saturated_index] = True
@@ -86,7 +158,7 @@ def bleed_pixels(
             nxt = front + step
             nxt = nxt[(nxt >= 0) & (nxt < raw.size)]
             nxt = nxt[~is_saturated[nxt]]  # saturated pixels are walked from themselves
-            nxt = nxt[flat_raw[nxt] >= level[nxt // n_columns]]
+            nxt = nxt[flat_raw[nxt] >= levels(nxt // n_columns)]
             trail.append(nxt)
             front = nxt
     rows, cols = np.divmod(np.concatenate(trail), n_columns)
