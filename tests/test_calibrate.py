@@ -453,16 +453,11 @@ def test_a_bleed_trail_ends_in_a_twilight_sky():
     adu[204:210, 10] = 60000.0  # trail at near full well
     adu[196:200, 10] = 58000.0
     overscan = np.full((n_rows, 8), bias)
+    flat_field = {"flat": np.ones(n_columns), "dark": np.zeros(n_columns)}
     result = calibrate_stretch(
-        adu,
-        overscan,
-        gain=GAIN,
-        read_noise=READ_NOISE,
-        saturation=65535.0,
-        flat=np.ones(n_columns),
-        dark=np.zeros(n_columns),
-        cosmic_rays=False,
-    )
+        adu, overscan, gain=GAIN, read_noise=READ_NOISE, saturation=65535.0, cosmic_rays=False,
+        **flat_field,
+    )  # fmt: skip
     bleed = has_bits(result.mask, MaskBit.BLEED)
     assert has_bits(result.mask[200:204, 10], MaskBit.SATURATED).all()
     assert not bleed[200:204, 10].any()  # saturated pixels carry their own bit
