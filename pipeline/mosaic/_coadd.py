@@ -36,7 +36,13 @@ Steps (:func:`mosaic_tile`; :func:`coadd` is the part that sees only arrays):
 6. Average: ``image = sum(w x) / sum(w)`` over the kept nights; ``weight =
    (sum w)**2 / sum(w**2 V)``, the inverse of the predicted pixel variance;
    ``coverage`` the number of kept nights; ``flags`` the OR of the kept
-   nights' flags (of all nights where none is kept).
+   nights' flags (of all nights where none is kept), plus
+   :attr:`~pipeline.masks.MaskBit.NIGHT_LEFT_OUT` where a night with data
+   was left out (rejected, or flagged with an ``ignore_flags`` bit that
+   keeps data: saturated, bleed, cosmic ray) and within
+   ``max(grow, source_radius)`` of a rejection: there the source allowance
+   may have kept a rejected feature's light under a star (a satellite trail
+   across it), which the tile catalogue then flags ``NEAR_FLAGGED``.
 
 The tile's ``noise_correlation`` is the variance of a large aperture sum over
 the sum of ``1 / weight`` across it: the weighted mean over nights of their
@@ -54,7 +60,7 @@ from astropy.io import fits
 from astropy.table import Table
 from astropy.wcs import WCS
 
-from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.masks import MASK_DTYPE, NO_DATA, MaskBit
 from pipeline.mosaic._kernels import carried_kernels
 from pipeline.mosaic._options import CoaddOptions
 from pipeline.mosaic._resample import _Scratch, merge_onto_tile
@@ -281,7 +287,9 @@ class CoaddedPlanes:
     coverage : ndarray of uint16, shape (n_y, n_x)
         Nights kept per pixel.
     flags : ndarray of uint16, shape (n_y, n_x)
-        OR of the kept nights' flags (of all nights' where none is kept).
+        OR of the kept nights' flags (of all nights' where none is kept),
+        plus ``NIGHT_LEFT_OUT`` where a night with data was left out and
+        near rejections (step 6 of the module docstring).
     rejected : ndarray of int, shape (n_nights,)
         Pixels of each night rejected as outliers (after growing).
     offsets : ndarray, shape (n_nights,)
@@ -518,7 +526,7 @@ def coadd(
     )
     n_nights, tile_shape = images.shape[0], images.shape[1:]
     # numba is imported on first use, as for the resampler
-    from pipeline.mosaic._coadd_jit import combine, exclude, median_and_noise, reject
+    from pipeline.mosaic._coadd_jit import combine, exclude, flag_around, median_and_noise, reject
 
     planes = (n_nights, -1)
     images = np.ascontiguousarray(images).reshape(planes)
@@ -535,14 +543,16 @@ def coadd(
     out = (image, weight, coverage, used)
     flags = np.ascontiguousarray(flags, MASK_DTYPE).reshape(planes)
     arrays = (images, variances, flags, weights)
+    # a night's pixel flagged with these still has data, which the co-add leaves out
+    left_out = MASK_DTYPE.type(_flag_bits(ignore_flags) & ~int(NO_DATA))
     if n_nights < min_nights:
-        combine(arrays, kept, out, np.empty(0, np.int64))
+        combine(arrays, kept, out, np.empty(0, np.int64), left_out)
     else:
         # combined with every valid night kept as the median is found; the
         # pixels whose nights the rejections clear are combined again
         median, noise2, count = np.empty(m, images.dtype), np.empty(m), np.empty(m, np.uint16)
         limit = float(reject_sigma) * float(reject_sigma)
-        suspects = median_and_noise(arrays, kept, limit, median, noise2, count, out)
+        suspects = median_and_noise(arrays, kept, limit, median, noise2, count, out, left_out)
         sky = _sky_level(median.reshape(tile_shape))
         # the noise of a median is ~sqrt(pi/2) times that of the mean (common practice)
         arguments = (
@@ -557,7 +567,11 @@ def coadd(
         del median, noise2, count
         rejected, touched = exclude(kept, hits, tile_shape[1], max(int(grow), 0))
         if touched.size:
-            combine(arrays, kept, out, touched)
+            combine(arrays, kept, out, touched, left_out)
+        # A rejected feature's light may remain within a source's allowance
+        # (source_radius) of where it was rejected: a trail under a star.
+        radius = max(int(grow), int(source_radius), 0)
+        flag_around(used, hits, m, tile_shape[1], radius)
     return CoaddedPlanes(
         image=image.reshape(tile_shape),
         weight=weight.reshape(tile_shape),

@@ -6,7 +6,8 @@ what they return (:mod:`pipeline.runner._mosaic`).
 The tile's FITS file (:func:`tile_hdulist`) holds four image extensions on
 the tile's WCS: ``IMAGE`` (counts on the scale of ``PHOTZP``), ``WEIGHT``
 (inverse predicted pixel variance), ``COVERAGE`` (nights kept per pixel) and
-``FLAGS`` (:class:`~pipeline.masks.MaskBit`).  Its primary header carries the
+``FLAGS`` (:class:`~pipeline.masks.MaskBit`: the kept nights' and
+``NIGHT_LEFT_OUT`` where a night was left out).  Its primary header carries the
 zero point (``PHOTZP``) and its error (``ZPERR``), the error the nights'
 astrometric solutions leave on its WCS (``CSYER1``, ``CSYER2``), the nights co-added
 (``NIGHTn``), every input product with its SHA-256 (``INPUTn``,
@@ -109,7 +110,9 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
     its width fitted by detect) where the nights' seeing is known.  The
     fits' noise factor is the tile's ``noise_correlation`` times the share
     of it a star fit sees where the nights were averaged over the tile's
-    pixels (:func:`_star_noise_ratio`), at least 1.
+    pixels (:func:`_star_noise_ratio`), at least 1.  A source whose stamp
+    holds a flagged pixel of the tile (``NIGHT_LEFT_OUT``: a night with data
+    left out, as under another night's satellite trail) is ``NEAR_FLAGGED``.
 
     Parameters
     ----------
