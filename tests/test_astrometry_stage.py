@@ -443,6 +443,9 @@ def test_the_stage_recovers_a_mis_set_camera_from_the_raw_night(tmp_path, latitu
     assert all(cards["ASTPASS"][0] == 2 for cards in wcs.values())
     science = open_product(config, "science", 0)  # a CCDData, its header in meta
     assert science.meta["ASTPASS"] == 2
+    # and the solution's own error over the stretch (CSYER1/2, deg of each
+    # coordinate): a few mas, well below a bright star's ~50 mas centroid error
+    assert 0.0 < science.meta["CSYER2"] * 3.6e6 < 20.0 and science.meta["CSYER1"] > 0.0
     # A changed reference catalogue makes the stage (only) stale.
     reference = tmp_path / "night/raw/reference.ecsv"
     reference.write_text(reference.read_text(encoding="utf-8") + "\n", encoding="utf-8")
