@@ -16,7 +16,7 @@ import enum
 
 import numpy as np
 
-__all__ = ["BIT_MEANINGS", "MASK_DTYPE", "MaskBit", "describe_mask", "has_bits"]
+__all__ = ["BIT_MEANINGS", "MASK_DTYPE", "NO_DATA", "MaskBit", "describe_mask", "has_bits"]
 
 #: dtype of every mask array.
 MASK_DTYPE = np.dtype(np.uint16)
@@ -54,6 +54,13 @@ class MaskBit(enum.IntFlag):
         Set by the science stage: the pixel lies in a stretch whose zero point
         is unreliable (a cloud, a jump in the stars' scatter) or was bridged
         from its neighbours for want of reference stars.  Values are kept.
+    NIGHT_LEFT_OUT
+        Set by the mosaic on a tile: a night that has data here was left out
+        of the co-add, rejected as an outlier across the nights (a satellite
+        trail, a cosmic ray, a transient) or flagged (``ignore_flags``: a
+        saturated or bleed pixel, a cosmic-ray hit).  The value is the other
+        nights' mean: a star here mixes the nights' seeing otherwise than
+        elsewhere, and a trail's light beside it may remain.
     """
 
     SATURATED = 1 << 0
@@ -66,7 +73,11 @@ class MaskBit(enum.IntFlag):
     LOW_EXPOSURE = 1 << 7
     OUTSIDE = 1 << 8
     ZERO_POINT = 1 << 9
+    NIGHT_LEFT_OUT = 1 << 10
 
+
+#: Bits of pixels without data: image and variance NaN.
+NO_DATA = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN | MaskBit.OUTSIDE
 
 #: One-line meaning of each bit (at most 46 characters: a FITS card comment);
 #: image products list them in ``FLAGBITn`` cards.
@@ -81,6 +92,7 @@ BIT_MEANINGS: dict[MaskBit, str] = {
     MaskBit.LOW_EXPOSURE: "start-of-scan ramp: partial exposure",
     MaskBit.OUTSIDE: "rectify drew on pixels beyond the data",
     MaskBit.ZERO_POINT: "zero point unreliable or interpolated",
+    MaskBit.NIGHT_LEFT_OUT: "a night with data here left out of the co-add",
 }
 
 

@@ -11,7 +11,7 @@ HDU    ``EXTNAME``   content
 2      ``FLUXVAR``   its variance, float32, ``BUNIT`` the square of the image's
                      unit, ``UTYPE = 'VarianceUncertainty'``
 3      ``FLAGS``     the flag plane, uint16, OR of :class:`pipeline.masks.MaskBit`
-                     bits; ``FLAGBITn`` cards name bit ``n`` and say what it means
+                     bits; ``FLAGBITn`` cards name bit ``n`` (hexadecimal) and say what it means
 =====  ============  =========================================================
 
 The three planes carry the same WCS and observation metadata, so each can be
@@ -108,7 +108,10 @@ ZERO_POINT_ERROR_KEY = "ZPERR"
 ZERO_POINT_FLAGS_KEY = "ZPFLAGS"
 #: Nominal seeing FWHM of the stretch, arcsec.
 SEEING_KEY = "SEEING"
-#: Keyword prefix of the flag-bit definitions (``FLAGBIT0`` ... ``FLAGBIT15``).
+#: Keyword prefix of the flag-bit definitions: ``FLAGBITn``, ``n`` the bit's
+#: number as one hexadecimal digit (``FLAGBIT0`` ... ``FLAGBIT9``, ``FLAGBITA``
+#: for bit 10 ... ``FLAGBITF``), so that every one of a uint16 mask's bits fits
+#: FITS's 8-character keywords.
 _FLAG_PREFIX = "FLAGBIT"
 
 
@@ -118,14 +121,15 @@ def flag_header() -> fits.Header:
     Returns
     -------
     astropy.io.fits.Header
-        ``FLAGBITn = '<NAME>' / <meaning>`` for each defined bit ``n``.
+        ``FLAGBITn = '<NAME>' / <meaning>`` for each defined bit ``n`` (one
+        hexadecimal digit: ``FLAGBITA`` for bit 10).
     """
     from astropy.io import fits
 
     header = fits.Header()
     for bit in MaskBit:
         number = int(bit).bit_length() - 1
-        header[f"{_FLAG_PREFIX}{number}"] = (bit.name, BIT_MEANINGS[bit])
+        header[f"{_FLAG_PREFIX}{number:X}"] = (bit.name, BIT_MEANINGS[bit])
     return header
 
 
@@ -146,7 +150,7 @@ def flag_bits_from_header(header: Mapping) -> dict[str, int]:
     """
     bits = {}
     for number in range(8 * MASK_DTYPE.itemsize):
-        name = header.get(f"{_FLAG_PREFIX}{number}")
+        name = header.get(f"{_FLAG_PREFIX}{number:X}")
         if name:
             bits[str(name)] = 1 << number
     return bits

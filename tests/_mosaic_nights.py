@@ -85,6 +85,7 @@ def science_product(night: tuple, stretch: str, bump: float = 0.0) -> fits.HDULi
     header[ZERO_POINT_KEY] = PHOTZP
     header[NIGHT_ZERO_POINT_KEY] = zp
     header[ZERO_POINT_ERROR_KEY] = 0.01
+    header["CSYER2"] = 0.01 / 3600.0  # the solved WCS's error in Dec: 10 mas
     header[ZERO_POINT_FLAGS_KEY] = 0
     header[SEEING_KEY] = seeing
     header["DATE-OBS"] = "2026-10-15T21:00:00"

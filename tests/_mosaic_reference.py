@@ -308,13 +308,19 @@ def coadd_numpy(
     ignore_flags=_IGNORE_FLAGS,
     overwrite_input: bool = False,  # accepted as coadd does; the numpy version always copies
 ) -> CoaddedPlanes:
-    """:func:`pipeline.mosaic.coadd` as it was in numpy (steps 5-6 of its docstring)."""
+    """:func:`pipeline.mosaic.coadd` as it was in numpy (steps 5-6 of its docstring).
+
+    With the flags it has had since: ``NIGHT_LEFT_OUT`` where a night with
+    data is left out and within ``max(grow, source_radius)`` of a rejection.
+    """
     images, variances, flags, valid, weights, offsets = weighted_inputs_numpy(
         images, variances, flags, scale, match_levels, ignore_flags
     )
     n_nights = images.shape[0]
     count = valid.sum(axis=0)
     rejected = np.zeros(images.shape, bool)
+    # NIGHT_LEFT_OUT within max(grow, source_radius) of a rejection (before growing)
+    near_rejection = np.zeros(images.shape[1:], bool)
     if n_nights >= min_nights:
         median = weighted_median_numpy(images, weights)
         sky = _sky_level(median)
@@ -329,6 +335,11 @@ def coadd_numpy(
         rejected = (
             valid & (count >= min_nights) & ((images - median) ** 2 > reject_sigma**2 * sigma2)
         )
+        if rejected.any():
+            reach = max(grow, source_radius, 0)
+            near_rejection = ndimage.binary_dilation(
+                rejected.any(axis=0), np.ones((2 * reach + 1, 2 * reach + 1), bool)
+            )
         if grow > 0 and rejected.any():
             structure = np.ones((1, 2 * grow + 1, 2 * grow + 1), bool)
             rejected = ndimage.binary_dilation(rejected, structure) & valid
@@ -342,6 +353,11 @@ def coadd_numpy(
     weight = np.where(has_data, total**2 / np.where(has_data, spread, 1.0), 0.0)
     used = np.bitwise_or.reduce(np.where(kept, flags, 0).astype(MASK_DTYPE), axis=0)
     every = np.bitwise_or.reduce(flags.astype(MASK_DTYPE), axis=0)
+    # a night with data left out: rejected, or flagged with an ignored bit that keeps data
+    kept_data_bits = _flag_bits(ignore_flags) & ~int(NO_DATA_BITS)
+    left_out = (valid & ~kept).any(axis=0) | ((every & kept_data_bits) != 0) | near_rejection
+    every = every | np.where(left_out, MaskBit.NIGHT_LEFT_OUT, 0).astype(MASK_DTYPE)
+    used = used | np.where(left_out, MaskBit.NIGHT_LEFT_OUT, 0).astype(MASK_DTYPE)
     return CoaddedPlanes(
         image=image.astype(np.float32),
         weight=weight.astype(np.float32),

@@ -22,7 +22,12 @@ from pipeline.stages.astrometry import (
     solve_night,
     stretch_wcs_cards,
 )
-from pipeline.stages.astrometry._stage import kernels_differ, unmatched_stretches
+from pipeline.stages.astrometry._stage import (
+    kernels_differ,
+    systematic_error_cards,
+    unmatched_stretches,
+)
+from pipeline.stages.astrometry._wcs import wcs_position_errors
 from pipeline.stages.base import Stage
 from tests._astrometry_scene import make_night
 from tests._mis_set_night import Chip, mis_set_config, mis_set_figures
@@ -105,6 +110,38 @@ def _pixel_miss(solution, sky, expected) -> float:
     (ra, dec), (ra0, dec0) = sky, expected
     along = (ra - ra0) * np.cos(np.radians(dec0)) / solution.frame.cdelt1
     return float(np.max(np.hypot(along, (dec - dec0) / solution.frame.cdelt2)))
+
+
+def test_stretch_wcs_errors_are_the_solution_s_own_over_the_stretch(solution):
+    """CSYER1/CSYER2 of a stretch: the rms of the solution's own error on it, on the sky.
+
+    The solution's error where a star of no centroid error lies
+    (position_errors with x_err = y_err = 0), at random points of each
+    stretch, against the grid's rms (within 10 %: the error changes
+    smoothly along the night); through JSON and astropy.wcs the cards are
+    the WCS's ``csyer`` in degrees of each coordinate (FITS Standard 4.0's
+    CSYERia, from memory).
+    """
+    products = [(1000, 700), (2700, 500)]
+    errors = wcs_position_errors(solution, products, segments=[None, None])
+    rng = np.random.default_rng(8)
+    for (x_start, n_x), (ra_err, dec_err) in zip(products, errors, strict=True):
+        x = x_start + rng.uniform(-0.5, n_x - 0.5, 300)
+        y = rng.uniform(-0.5, solution.frame.n_y - 0.5, 300)
+        ra_e, dec_e = solution.position_errors(x, y, np.zeros(300), np.zeros(300))
+        assert ra_err == pytest.approx(np.sqrt(np.mean(ra_e**2)), rel=0.1)
+        assert dec_err == pytest.approx(np.sqrt(np.mean(dec_e**2)), rel=0.1)
+        # bright detections' errors hold it: a centroid error of 0 leaves this alone
+        assert 0.0 < ra_err < 0.05 and 0.0 < dec_err < 0.05
+        cards, _ = stretch_wcs_cards(solution, x_start, n_x, 0.02)
+        dec = float(cards["CRVAL2"])
+        cards.update(systematic_error_cards(ra_err, dec_err, dec))
+        stored = json.loads(json.dumps(cards))  # the product is stored as JSON
+        wcs = WCS({k: tuple(v) if isinstance(v, list) else v for k, v in stored.items()})
+        assert wcs.wcs.csyer[0] * 3600.0 * np.cos(np.radians(dec)) == pytest.approx(
+            ra_err, rel=1e-3
+        )
+        assert wcs.wcs.csyer[1] * 3600.0 == pytest.approx(dec_err, rel=1e-3)
 
 
 def test_groups_are_solved_as_each_alone(solution):
@@ -406,6 +443,9 @@ def test_the_stage_recovers_a_mis_set_camera_from_the_raw_night(tmp_path, latitu
     assert all(cards["ASTPASS"][0] == 2 for cards in wcs.values())
     science = open_product(config, "science", 0)  # a CCDData, its header in meta
     assert science.meta["ASTPASS"] == 2
+    # and the solution's own error over the stretch (CSYER1/2, deg of each
+    # coordinate): a few mas, well below a bright star's ~50 mas centroid error
+    assert 0.0 < science.meta["CSYER2"] * 3.6e6 < 20.0 and science.meta["CSYER1"] > 0.0
     # A changed reference catalogue makes the stage (only) stale.
     reference = tmp_path / "night/raw/reference.ecsv"
     reference.write_text(reference.read_text(encoding="utf-8") + "\n", encoding="utf-8")

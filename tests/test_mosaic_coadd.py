@@ -243,6 +243,11 @@ def test_night_image_from_an_image_product():
     header["SEEING"] = 3.1
     header["NOISECOR"] = 1.4
     header["DATE-OBS"] = "2026-10-15T21:00:00"
+    # the solved WCS's systematic errors (astrometry's cards), in degrees of each
+    # coordinate: 20 mas on the sky along RA at the centre's declination
+    _, dec = wcs.pixel_to_world_values(14.5, 9.5)
+    header["CSYER1"] = 0.020 / 3600.0 / np.cos(np.radians(dec))
+    header["CSYER2"] = 0.015 / 3600.0
     hdul = image_hdulist(
         np.ones((20, 30)),
         np.ones((20, 30)),
@@ -255,6 +260,9 @@ def test_night_image_from_an_image_product():
     assert (night.zero_point, night.night_zero_point, night.seeing) == (25.0, 24.6, 3.1)
     assert night.noise_correlation == 1.4 and night.night == "2026-10-15"
     assert night.wcs.wcs.ctype[0] == "RA---CAR"
+    assert night.position_error == pytest.approx((0.020, 0.015), rel=1e-9)
+    del hdul["FLUX"].header["CSYER1"], hdul["FLUX"].header["CSYER2"]
+    assert night_image_from_hdulist(hdul).position_error == (0.0, 0.0)
     del hdul["FLUX"].header["PHOTZP"]
     with pytest.raises(ValueError, match="PHOTZP"):
         night_image_from_hdulist(hdul)

@@ -104,7 +104,7 @@ def test_compiled_weighted_median_matches_numpy(n):
     )
     planes = (images, variances, np.zeros(images.shape, MASK_DTYPE), weights)
     combined = (np.empty(m, np.float32), np.empty(m, np.float32), *np.empty((2, m), MASK_DTYPE))
-    median_and_noise(planes, valid, 16.0, median, noise2, count, combined)
+    median_and_noise(planes, valid, 16.0, median, noise2, count, combined, np.uint16(0))
     np.testing.assert_array_equal(median.reshape(theirs.shape), theirs)
     np.testing.assert_array_equal(count, valid.sum(axis=0))
     inverse = np.where(valid, 1.0 / variances.astype(float), 0.0).sum(axis=0)
@@ -142,6 +142,9 @@ def test_compiled_coadd_matches_numpy():
     np.testing.assert_array_equal(ours.rejected, theirs.rejected)
     np.testing.assert_array_equal(ours.coverage, theirs.coverage)
     np.testing.assert_array_equal(ours.flags, theirs.flags)
+    # the nights left out (the trail, the saturated pixels of night 1) are flagged
+    left_out = (ours.flags & MaskBit.NIGHT_LEFT_OUT) != 0
+    assert left_out[10, 40] and left_out[72, 72] and not left_out[50, 10]
     # float64 sums over nights against float32 ones: 1e-6 relative
     np.testing.assert_allclose(ours.image, theirs.image, rtol=1e-6)
     np.testing.assert_allclose(ours.weight, theirs.weight, rtol=1e-6)

@@ -229,6 +229,9 @@ def test_a_tile_file_has_its_planes_wcs_zero_point_inputs_and_config(built):
         # every night's ZPERR is 0.01: the co-add's lies between 0.01 / sqrt(5)
         # (equal weights) and 0.01 (one night); tests/test_mosaic_errors.py has the rule
         assert 0.01 / np.sqrt(len(NIGHTS)) <= primary["ZPERR"] < 0.01
+        # and every night's WCS error in Dec is 10 mas (CSYER2, in degrees): alike
+        dec_error = primary["CSYER2"] * 3.6e6
+        assert 10.0 / np.sqrt(len(NIGHTS)) <= dec_error < 10.0 and primary["CSYER1"] == 0.0
         # tile002 is touched by the second stretch of every night only
         assert [primary[f"INPUT{i + 1}"] for i in range(primary["NINPUTS"])] == [
             f"{night[0]}/s0001" for night in NIGHTS

@@ -36,7 +36,13 @@ Steps (:func:`mosaic_tile`; :func:`coadd` is the part that sees only arrays):
 6. Average: ``image = sum(w x) / sum(w)`` over the kept nights; ``weight =
    (sum w)**2 / sum(w**2 V)``, the inverse of the predicted pixel variance;
    ``coverage`` the number of kept nights; ``flags`` the OR of the kept
-   nights' flags (of all nights where none is kept).
+   nights' flags (of all nights where none is kept), plus
+   :attr:`~pipeline.masks.MaskBit.NIGHT_LEFT_OUT` where a night with data
+   was left out (rejected, or flagged with an ``ignore_flags`` bit that
+   keeps data: saturated, bleed, cosmic ray) and within
+   ``max(grow, source_radius)`` of a rejection: there the source allowance
+   may have kept a rejected feature's light under a star (a satellite trail
+   across it), which the tile catalogue then flags ``NEAR_FLAGGED``.
 
 The tile's ``noise_correlation`` is the variance of a large aperture sum over
 the sum of ``1 / weight`` across it: the weighted mean over nights of their
@@ -54,7 +60,7 @@ from astropy.io import fits
 from astropy.table import Table
 from astropy.wcs import WCS
 
-from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.masks import MASK_DTYPE, NO_DATA, MaskBit
 from pipeline.mosaic._kernels import carried_kernels
 from pipeline.mosaic._options import CoaddOptions
 from pipeline.mosaic._resample import _Scratch, merge_onto_tile
@@ -121,6 +127,11 @@ class NightImage:
         1-sigma error of the calibration that put ``image`` on ``zero_point``,
         mag (the science stage's ``ZPERR``: the largest over the product);
         0: unknown or exact.
+    position_error : (float, float)
+        1-sigma error of ``wcs`` itself along right ascension (on the sky)
+        and declination, arcsec: the night's astrometric solution's own
+        error, which every star on the product shares (the astrometry
+        stage's ``CSYER1``, ``CSYER2``); 0: unknown or exact.
     """
 
     image: np.ndarray
@@ -134,6 +145,7 @@ class NightImage:
     noise_correlation: float = 1.0
     smear_kernels: Table | None = None
     zero_point_error: float = 0.0
+    position_error: tuple[float, float] = (0.0, 0.0)
 
     @property
     def transparency_zero_point(self) -> float:
@@ -150,9 +162,10 @@ def night_image_from_hdulist(
     hdul : astropy.io.fits.HDUList
         The product (:func:`pipeline.products.image_hdulist` layout) with
         ``PHOTZP`` and optionally ``ZPMED``, ``ZPERR``, ``SEEING`` and
-        ``NOISECOR`` on its FLUX plane: the science stage's calibrated
-        product (the keywords: :data:`pipeline.products.ZERO_POINT_KEY` and
-        its neighbours).
+        ``NOISECOR``, ``CSYER1``, ``CSYER2`` on its FLUX plane: the science
+        stage's calibrated product (the keywords:
+        :data:`pipeline.products.ZERO_POINT_KEY` and its neighbours; the
+        WCS's systematic errors, :func:`_wcs_error_on_sky`).
     night : str or None
         Night label; None: the FLUX plane's ``DATE-OBS`` (its date part).
     smear_kernels : astropy.table.Table or None
@@ -184,11 +197,13 @@ def night_image_from_hdulist(
         smear_kernels["x"] = np.asarray(smear_kernels["x"], float) - night_column(header)
     else:
         smear_kernels = None
+    wcs = WCS(header).celestial
+    image = hdul[FLUX_EXTENSION].data
     return NightImage(
-        image=hdul[FLUX_EXTENSION].data,
+        image=image,
         variance=hdul[VARIANCE_EXTENSION].data,
         flags=hdul[FLAGS_EXTENSION].data,
-        wcs=WCS(header).celestial,
+        wcs=wcs,
         zero_point=float(header[ZERO_POINT_KEY]),
         night=night,
         night_zero_point=(
@@ -198,7 +213,24 @@ def night_image_from_hdulist(
         noise_correlation=float(header.get("NOISECOR", 1.0)),
         smear_kernels=smear_kernels,
         zero_point_error=float(header.get(ZERO_POINT_ERROR_KEY, 0.0)),
+        position_error=_wcs_error_on_sky(header, wcs, image.shape),
     )
+
+
+def _wcs_error_on_sky(header: fits.Header, wcs: WCS, shape) -> tuple[float, float]:
+    """A product's ``CSYER1``, ``CSYER2`` on the sky: along RA and Dec, arcsec.
+
+    ``CSYERia`` is the systematic error of a WCS coordinate in its unit
+    (degrees of right ascension and of declination; a reserved WCS keyword
+    of the FITS Standard 4.0, from memory): along right ascension, a
+    distance on the sky is ``cos(dec)`` of it, at the product's centre.
+    Missing cards count as 0.
+    """
+    ra, dec = float(header.get("CSYER1", 0.0)), float(header.get("CSYER2", 0.0))
+    if ra == 0.0:
+        return 0.0, 3600.0 * dec
+    centre = wcs.pixel_to_world_values((shape[1] - 1) / 2, (shape[0] - 1) / 2)
+    return 3600.0 * ra * float(np.cos(np.radians(centre[1]))), 3600.0 * dec
 
 
 def select_products(
@@ -255,7 +287,9 @@ class CoaddedPlanes:
     coverage : ndarray of uint16, shape (n_y, n_x)
         Nights kept per pixel.
     flags : ndarray of uint16, shape (n_y, n_x)
-        OR of the kept nights' flags (of all nights' where none is kept).
+        OR of the kept nights' flags (of all nights' where none is kept),
+        plus ``NIGHT_LEFT_OUT`` where a night with data was left out and
+        near rejections (step 6 of the module docstring).
     rejected : ndarray of int, shape (n_nights,)
         Pixels of each night rejected as outliers (after growing).
     offsets : ndarray, shape (n_nights,)
@@ -492,7 +526,7 @@ def coadd(
     )
     n_nights, tile_shape = images.shape[0], images.shape[1:]
     # numba is imported on first use, as for the resampler
-    from pipeline.mosaic._coadd_jit import combine, exclude, median_and_noise, reject
+    from pipeline.mosaic._coadd_jit import combine, exclude, flag_around, median_and_noise, reject
 
     planes = (n_nights, -1)
     images = np.ascontiguousarray(images).reshape(planes)
@@ -509,14 +543,16 @@ def coadd(
     out = (image, weight, coverage, used)
     flags = np.ascontiguousarray(flags, MASK_DTYPE).reshape(planes)
     arrays = (images, variances, flags, weights)
+    # a night's pixel flagged with these still has data, which the co-add leaves out
+    left_out = MASK_DTYPE.type(_flag_bits(ignore_flags) & ~int(NO_DATA))
     if n_nights < min_nights:
-        combine(arrays, kept, out, np.empty(0, np.int64))
+        combine(arrays, kept, out, np.empty(0, np.int64), left_out)
     else:
         # combined with every valid night kept as the median is found; the
         # pixels whose nights the rejections clear are combined again
         median, noise2, count = np.empty(m, images.dtype), np.empty(m), np.empty(m, np.uint16)
         limit = float(reject_sigma) * float(reject_sigma)
-        suspects = median_and_noise(arrays, kept, limit, median, noise2, count, out)
+        suspects = median_and_noise(arrays, kept, limit, median, noise2, count, out, left_out)
         sky = _sky_level(median.reshape(tile_shape))
         # the noise of a median is ~sqrt(pi/2) times that of the mean (common practice)
         arguments = (
@@ -531,7 +567,11 @@ def coadd(
         del median, noise2, count
         rejected, touched = exclude(kept, hits, tile_shape[1], max(int(grow), 0))
         if touched.size:
-            combine(arrays, kept, out, touched)
+            combine(arrays, kept, out, touched, left_out)
+        # A rejected feature's light may remain within a source's allowance
+        # (source_radius) of where it was rejected: a trail under a star.
+        radius = max(int(grow), int(source_radius), 0)
+        flag_around(used, hits, m, tile_shape[1], radius)
     return CoaddedPlanes(
         image=image.reshape(tile_shape),
         weight=weight.reshape(tile_shape),
@@ -568,7 +608,12 @@ class MosaicTile:
         (:class:`~pipeline.mosaic._kernels.SeeingMix`).
     zero_point_error : float
         1-sigma error of ``zero_point`` as the co-add inherits it, mag
-        (:func:`_zero_point_error`); 0: the nights' are unknown.
+        (:func:`_coadded_error`); 0: the nights' are unknown.
+    position_error : (float, float)
+        1-sigma error of the co-added stars' positions that the nights'
+        astrometric solutions leave, along right ascension (on the sky) and
+        declination, arcsec (the nights' ``position_error`` as co-added,
+        :func:`_coadded_error`); 0: the nights' are unknown.
     """
 
     tile: Tile
@@ -580,10 +625,27 @@ class MosaicTile:
     smear_kernels: Table | None = None
     seeing: tuple[tuple[float, float, float], ...] = ()
     zero_point_error: float = 0.0
+    position_error: tuple[float, float] = (0.0, 0.0)
 
     def header(self) -> fits.Header:
-        """The tile's WCS and the mosaic's cards (zero point, its error, nights, noise factor)."""
+        """The tile's WCS and the mosaic's cards (zero point, its error, nights, noise factor).
+
+        ``CSYER1``, ``CSYER2``: ``position_error`` as the WCS's systematic
+        errors, in degrees of right ascension and declination (at the
+        tile's centre), as the nights' science images carry theirs.
+        """
         header = self.tile.wcs.to_header()
+        n_y, n_x = self.tile.shape
+        _, dec = self.tile.wcs.pixel_to_world_values((n_x - 1) / 2, (n_y - 1) / 2)
+        ra_err, dec_err = self.position_error
+        header["CSYER1"] = (
+            float(f"{ra_err / 3600.0 / np.cos(np.radians(float(dec))):.4e}"),
+            "[deg] RA error the nights' WCSs leave",
+        )
+        header["CSYER2"] = (
+            float(f"{dec_err / 3600.0:.4e}"),
+            "[deg] Dec error the nights' WCSs leave",
+        )
         header[ZERO_POINT_KEY] = (self.zero_point, "[mag] m = PHOTZP - 2.5 log10(sum of IMAGE)")
         header[ZERO_POINT_ERROR_KEY] = (
             round(self.zero_point_error, 5),
@@ -728,6 +790,11 @@ def mosaic_tile(
     night_error = {
         night: max(p.zero_point_error for p in kept if p.night == night) for night in nights
     }
+    # and its WCS by its astrometric solution's error (the largest of its products)
+    night_position_error = {
+        night: np.max([p.position_error for p in kept if p.night == night], axis=0)
+        for night in nights
+    }
     result = coadd(
         images,
         variances,
@@ -763,8 +830,15 @@ def mosaic_tile(
         noise_correlation=noise_correlation,
         excluded=excluded,
         smear_kernels=kernels,
-        zero_point_error=_zero_point_error(
+        zero_point_error=_coadded_error(
             [night_error[p[0]] for p in planes], [night_weight[p[0]] for p in planes]
+        ),
+        position_error=tuple(
+            _coadded_error(
+                [night_position_error[p[0]][axis] for p in planes],
+                [night_weight[p[0]] for p in planes],
+            )
+            for axis in (0, 1)
         ),
         seeing=tuple(
             (float(seeing[night]), float(night_weight[night]), pixel[night])
@@ -790,14 +864,17 @@ def pixel_arcsec(wcs: WCS, shape: tuple[int, int]) -> float:
     return 3600.0 * float(np.sqrt(area))
 
 
-def _zero_point_error(errors: Sequence[float], weights: Sequence[float]) -> float:
-    """Error of the co-add's zero point from the nights' independent zero point errors, mag.
+def _coadded_error(errors: Sequence[float], weights: Sequence[float]) -> float:
+    """Error the co-add inherits from the nights' independent calibration errors.
 
     A co-added star's flux is the weighted mean of the nights' (weights
     ``w_i``), each off by its night's zero point error ``e_i`` (small, so
-    magnitudes and relative fluxes add alike): ``sqrt(sum (w_i e_i)**2) /
-    sum w_i``, the error of a weighted mean of independent values (common
-    practice).  0 without weights.
+    magnitudes and relative fluxes add alike); its position (the first
+    moment of the weighted mean of the nights' images of it, all on one
+    flux scale) is the weighted mean of the nights' positions, each off by
+    its night's astrometric error ``e_i``.  Either way ``sqrt(sum (w_i
+    e_i)**2) / sum w_i``, the error of a weighted mean of independent values
+    (common practice).  0 without weights.
     """
     errors, weights = np.asarray(errors, float), np.asarray(weights, float)
     total = weights.sum()

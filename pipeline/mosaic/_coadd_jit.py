@@ -15,12 +15,14 @@ import math
 import numpy as np
 
 from pipeline._jit import njit
+from pipeline.masks import MaskBit
 
 __all__ = [
     "bilinear_weights",
     "block_medians",
     "combine",
     "exclude",
+    "flag_around",
     "median_and_noise",
     "reject",
     "shift_levels",
@@ -79,13 +81,14 @@ CHUNK = 512
 
 
 @njit(nogil=True)
-def median_and_noise(planes, valid, limit, median, noise2, count, out):
+def median_and_noise(planes, valid, limit, median, noise2, count, out, left_out):
     """Per pixel of ``(n, m)`` planes: weighted median, ``V_m = (pi/2) / sum(1/V_i)``, count.
 
     ``planes`` is ``(images, variances, flags, weights)``.  Each run of
     pixels is also combined into ``out`` (:func:`combine` with every valid
-    night kept) while it is in the processor cache: only the pixels whose
-    nights a rejection clears need combining again.
+    night kept, ``left_out`` its flag bits) while it is in the processor
+    cache: only the pixels whose nights a rejection clears need combining
+    again.
 
     Written into ``median`` (the images' dtype), ``noise2`` (float64) and
     ``count`` (uint16), shape (m,); ``V_m`` is 0 where no night is valid.
@@ -152,7 +155,7 @@ def median_and_noise(planes, valid, limit, median, noise2, count, out):
         for q in range(size):
             if suspect[q]:
                 suspects, n_suspects = _append(suspects, n_suspects, p0 + q)
-        _combine_run(planes, valid, p0, size, work, out)
+        _combine_run(planes, valid, p0, size, work, out, left_out)
     return suspects[:n_suspects]
 
 
@@ -235,24 +238,42 @@ def exclude(valid, hits, n_x, grow):
     return cleared, touched[:n_touched]
 
 
+@njit(nogil=True)
+def flag_around(out_flags, hits, m, n_x, radius):
+    """Set :attr:`~pipeline.masks.MaskBit.NIGHT_LEFT_OUT` in squares of ``2 radius + 1`` px.
+
+    Around every hit (:func:`reject`'s flat indices ``i * m + p``) in
+    ``out_flags`` (the tile's flags, shape (m,), rows ``n_x`` long).
+    """
+    n_y = m // n_x
+    for h in hits:
+        p = h % m
+        y = p // n_x
+        x = p - y * n_x
+        for yy in range(max(y - radius, 0), min(y + radius + 1, n_y)):
+            for xx in range(max(x - radius, 0), min(x + radius + 1, n_x)):
+                out_flags[yy * n_x + xx] |= _LEFT_OUT
+
+
 @njit(nogil=True, inline="always")
-def _combine_run(planes, kept, p0, size, work, out):
+def _combine_run(planes, kept, p0, size, work, out, left_out):
     """:func:`combine` for pixels ``p0 ... p0 + size - 1`` (at most ``CHUNK``).
 
     ``planes`` is ``(images, variances, flags, weights)``, ``work`` a pair of
-    (3, CHUNK) float64 and uint16 buffers, ``out`` ``(image, weight,
-    coverage, flags)``.
+    (3, CHUNK) float64 and (4, CHUNK) uint16 buffers, ``out`` ``(image,
+    weight, coverage, flags)``, ``left_out`` :func:`combine`'s.
     """
     images, variances, flags, weights = planes
     image, weight, coverage, out_flags = out
     total, weighted, spread = work[0][0], work[0][1], work[0][2]
-    used, every, counted = work[1][0], work[1][1], work[1][2]
+    used, every, counted, lost = work[1][0], work[1][1], work[1][2], work[1][3]
     total[:size] = 0.0
     weighted[:size] = 0.0
     spread[:size] = 0.0
     used[:size] = 0
     every[:size] = 0
     counted[:size] = 0
+    lost[:size] = 0
     for i in range(images.shape[0]):
         for q in range(size):
             p = p0 + q
@@ -266,43 +287,53 @@ def _combine_run(planes, kept, p0, size, work, out):
             spread[q] += w * w * variances[i, p] if k else 0.0
             used[q] |= f if k else np.uint16(0)
             counted[q] += k
+            # a night with data (weight > 0: valid) that is not kept: rejected
+            lost[q] += (weights[i, p] > 0) != k
     for q in range(size):
         p = p0 + q
         coverage[p] = counted[q]
+        dropped = _LEFT_OUT if (lost[q] != 0) | ((every[q] & left_out) != 0) else np.uint16(0)
         if total[q] > 0:
             image[p] = weighted[q] / total[q]
             weight[p] = total[q] * total[q] / spread[q] if spread[q] > 0 else 0.0
-            out_flags[p] = used[q]
+            out_flags[p] = used[q] | dropped
         else:
             image[p] = np.nan
             weight[p] = 0.0
-            out_flags[p] = every[q]
+            out_flags[p] = every[q] | dropped
+
+
+#: The tile's bit for a night with data left out of a pixel's mean.
+_LEFT_OUT = np.uint16(int(MaskBit.NIGHT_LEFT_OUT))
 
 
 @njit(nogil=True, inline="always")
 def _combine_work():
-    return np.empty((3, CHUNK), np.float64), np.empty((3, CHUNK), np.uint16)
+    return np.empty((3, CHUNK), np.float64), np.empty((4, CHUNK), np.uint16)
 
 
 @njit(nogil=True)
-def combine(planes, kept, out, pixels):
+def combine(planes, kept, out, pixels, left_out):
     """Weighted mean of ``(n, m)`` planes over the kept nights.
 
     ``planes`` is ``(images, variances, flags, weights)``.  Writes into
     ``out = (image, weight, coverage, flags)``, each of shape (m,): image
     (float32, NaN without data), weight ``(sum w)**2 / sum(w**2 V)``
     (float32, 0 without data), coverage and flags (uint16: OR of the kept
-    nights', of all nights' where none is kept), at every pixel, or at
-    ``pixels`` alone if it is not empty.
+    nights', of all nights' where none is kept; plus
+    :attr:`~pipeline.masks.MaskBit.NIGHT_LEFT_OUT` where a night with data
+    is not kept: its weight > 0 but not in ``kept``, or its flags hold one
+    of the bits ``left_out`` (uint16), at every pixel, or at ``pixels``
+    alone if it is not empty.
     """
     m = kept.shape[1]
     work = _combine_work()
     if pixels.size:
         for p in pixels:
-            _combine_run(planes, kept, p, 1, work, out)
+            _combine_run(planes, kept, p, 1, work, out, left_out)
         return
     for p0 in range(0, m, CHUNK):
-        _combine_run(planes, kept, p0, min(CHUNK, m - p0), work, out)
+        _combine_run(planes, kept, p0, min(CHUNK, m - p0), work, out, left_out)
 
 
 @njit(nogil=True)

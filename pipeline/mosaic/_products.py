@@ -6,8 +6,10 @@ what they return (:mod:`pipeline.runner._mosaic`).
 The tile's FITS file (:func:`tile_hdulist`) holds four image extensions on
 the tile's WCS: ``IMAGE`` (counts on the scale of ``PHOTZP``), ``WEIGHT``
 (inverse predicted pixel variance), ``COVERAGE`` (nights kept per pixel) and
-``FLAGS`` (:class:`~pipeline.masks.MaskBit`).  Its primary header carries the
-zero point (``PHOTZP``) and its error (``ZPERR``), the nights co-added
+``FLAGS`` (:class:`~pipeline.masks.MaskBit`: the kept nights' and
+``NIGHT_LEFT_OUT`` where a night was left out).  Its primary header carries the
+zero point (``PHOTZP``) and its error (``ZPERR``), the error the nights'
+astrometric solutions leave on its WCS (``CSYER1``, ``CSYER2``), the nights co-added
 (``NIGHTn``), every input product with its SHA-256 (``INPUTn``,
 ``INHASHn``) and the mosaic config (``MOSCONF``, JSON in a long-string card).
 """
@@ -108,7 +110,9 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
     its width fitted by detect) where the nights' seeing is known.  The
     fits' noise factor is the tile's ``noise_correlation`` times the share
     of it a star fit sees where the nights were averaged over the tile's
-    pixels (:func:`_star_noise_ratio`), at least 1.
+    pixels (:func:`_star_noise_ratio`), at least 1.  A source whose stamp
+    holds a flagged pixel of the tile (``NIGHT_LEFT_OUT``: a night with data
+    left out, as under another night's satellite trail) is ``NEAR_FLAGGED``.
 
     Parameters
     ----------
@@ -126,6 +130,11 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
         (``tile.zero_point_error``, the nights' calibration errors as
         co-added; in the meta as ``ZPERR``), as the nights' calibrated
         catalogues do (:func:`pipeline.stages.zeropoint.calibrate_catalog`).
+        ``ra_err`` and ``dec_err`` hold the fit's position error and the
+        error the nights' astrometric solutions leave on the tile
+        (``tile.position_error``, arcsec, in the meta as
+        ``wcs_error_arcsec``), as the nights' solved catalogues hold their
+        solution's (:mod:`pipeline.stages.astrometry`).
     """
     from pipeline.stages.detect import detect
 
@@ -162,10 +171,20 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
     catalog["mag"].info.description = f"{ZERO_POINT_KEY} - 2.5 log10(flux_psf)"
     both = f"flux_psf_err and {ZERO_POINT_ERROR_KEY} in quadrature"
     catalog["mag_err"].info.description = f"1-sigma error of mag: {both}"
+    # the fit's position error and the nights' solutions', independent (common practice)
+    for name, extra in zip(("ra_err", "dec_err"), tile.position_error, strict=True):
+        catalog[name] = np.hypot(catalog[name], extra * u.arcsec)
+        axis = "right ascension (on the sky)" if name == "ra_err" else "declination"
+        catalog[
+            name
+        ].info.description = (
+            f"1-sigma error along {axis}: the fit's and the nights' astrometric solutions'"
+        )
     catalog["x"].info.description = "tile column (0-based)"
     catalog["y"].info.description = "tile row (0-based)"
     catalog.meta[ZERO_POINT_KEY] = tile.zero_point
     catalog.meta[ZERO_POINT_ERROR_KEY] = tile.zero_point_error
+    catalog.meta["wcs_error_arcsec"] = [float(e) for e in tile.position_error]
     catalog.meta["tile"] = tile.tile.name
     catalog.meta["problems"] = list(result.problems)
     return catalog

@@ -94,7 +94,10 @@ TILE_STAGE = Stage(
     # point's error (the nights' ZPERR as co-added), the tile's header ZPERR;
     # NOISECOR counts the uneven weights of a night sampled by a coarser tile;
     # 5: a tile over 1.45 times coarser than its nights averages them over
-    # its pixels (a cubic B-spline), which the catalogue's seeing mix holds
-    version=5,
+    # its pixels (a cubic B-spline), which the catalogue's seeing mix holds;
+    # 6: ra_err/dec_err hold the nights' astrometric errors (CSYER1/2) as co-added;
+    # 7: FLAGS' NIGHT_LEFT_OUT where a night with data was left out (and
+    # within source_radius of a rejection), which the catalogue's flags see
+    version=7,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )

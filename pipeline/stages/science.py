@@ -29,6 +29,10 @@ in :mod:`pipeline.products`, for this stage and the mosaic that reads them):
     whether its zero point was bridged from its neighbours.
 ``SEEING``
     Nominal seeing FWHM of the stretch (detect's fit), arcsec.
+``CSYER1``, ``CSYER2``
+    With the solved WCS: the astrometric solution's own error over the
+    stretch, deg of RA and Dec (the FITS WCS systematic error; see
+    :func:`pipeline.stages.astrometry._stage.systematic_error_cards`).
 ``BUNIT``
     ``ct`` (variance ``ct2``): counts on the fixed zero point's scale, no
     longer electrons.

@@ -8,7 +8,11 @@ read in chunks (the stage's one file, handed over by the runner as an
 :class:`~pipeline.stages.base.ExternalFile`, see ``Stage.streams``), and
 :func:`solve_catalog` fits the night's geometry.  Each rectified stretch gets
 a TAN-SIP WCS of the solution (:func:`solved_wcs`), checked to reproduce it
-to ``wcs_tolerance`` pixels.
+to ``wcs_tolerance`` pixels, with the solution's own error over the stretch
+(:func:`~pipeline.stages.astrometry._wcs.wcs_position_errors`) in its
+``CSYER1``, ``CSYER2`` cards (:func:`systematic_error_cards`): the error every
+position measured on the science image shares, which the mosaic's tiles
+carry on.
 
 Second pass: when the solution's tracks differ from the configured ones by
 more than the bright stars' centroid noise (``second_pass_noise``; see
@@ -43,7 +47,7 @@ from pipeline.stages.astrometry._second_pass import (
     solved_kernels_of_stretches,
 )
 from pipeline.stages.astrometry._segments import NightSegments
-from pipeline.stages.astrometry._wcs import solved_wcs, wcs_sky
+from pipeline.stages.astrometry._wcs import solved_wcs, wcs_position_errors, wcs_sky
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, Stage
 from pipeline.stages.catalog import stack_catalogs
 from pipeline.stages.detect import WARM as DETECT_WARM
@@ -200,6 +204,35 @@ def stretch_wcs_cards(
             {"max_error_px": max_error},
         )
     return _wcs_cards(wcs, max_error), float(max_error)
+
+
+def systematic_error_cards(ra_err: float, dec_err: float, dec: float) -> dict[str, list]:
+    """``CSYER1``, ``CSYER2``: a solved WCS's own error, as the FITS WCS standard writes it.
+
+    ``CSYERia`` is the systematic error of coordinate ``i``, in its
+    ``CUNITia`` (a reserved WCS keyword of the FITS Standard 4.0; from memory):
+    degrees of right ascension and of declination.  Every star on the
+    product shares it; its own centroid's error comes on top.
+
+    Parameters
+    ----------
+    ra_err, dec_err : float
+        The solution's error along right ascension (on the sky) and
+        declination, arcsec (:func:`~pipeline.stages.astrometry._wcs.wcs_position_errors`).
+    dec : float
+        Declination of the product's centre, deg: a distance on the sky
+        along right ascension is ``cos(dec)`` of the coordinate's degrees.
+
+    Returns
+    -------
+    dict
+        Keyword -> ``[value, comment]``.
+    """
+    ra_coordinate = ra_err / np.cos(np.radians(dec)) / 3600.0
+    return {
+        "CSYER1": [float(f"{ra_coordinate:.4e}"), "[deg] RA error of the solved WCS"],
+        "CSYER2": [float(f"{dec_err / 3600.0:.4e}"), "[deg] Dec error of the solved WCS"],
+    }
 
 
 #: A stretch with fewer matched detections than this fraction of the night's
@@ -676,7 +709,12 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
         [(start, n_x) for _, start, n_x in products],
         segments=[by_stretch[stretch.index] for stretch, _, _ in products],
     )
-    for (stretch, start, n_x), sky in zip(products, skies, strict=True):
+    errors = wcs_position_errors(
+        solved.solution,
+        [(start, n_x) for _, start, n_x in products],
+        segments=[by_stretch[stretch.index] for stretch, _, _ in products],
+    )
+    for (stretch, start, n_x), sky, error_on_sky in zip(products, skies, errors, strict=True):
         # A stretch whose WCS cannot follow the solution (the start-of-scan ramp,
         # a transparency step) keeps its closest WCS and is reported: failing the
         # stage would cost every stretch of the night its zero point and science.
@@ -684,6 +722,7 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
             solved.solution, start, n_x, options.wcs_tolerance, sky=sky, strict=False
         )
         wcs[stretch.id]["ASTPASS"] = [len(passes), _PASS_COMMENT]
+        wcs[stretch.id].update(systematic_error_cards(*error_on_sky, float(sky[1][1][0])))
         worst = max(worst, error)
         if error > options.wcs_tolerance:
             problems.append(
@@ -767,6 +806,7 @@ STAGE = Stage(
     # the passes' and the error floor's problems are no longer dropped; 5: a
     # segment whose stars miss at the night's clock is searched along the scan
     # (search_segment_clock), its search in its segment_clocks record, and a
-    # stretch the fit left out is named against the stretches the fit used
-    version=5,
+    # stretch the fit left out is named against the stretches the fit used;
+    # 6: each stretch's WCS carries the solution's own error there (CSYER1/2)
+    version=6,
 )

@@ -29,7 +29,7 @@ import numpy as np
 if TYPE_CHECKING:
     from astropy.wcs import WCS
 
-__all__ = ["solved_wcs", "wcs_sky"]
+__all__ = ["solved_wcs", "wcs_position_errors", "wcs_sky"]
 
 
 def _grid(n_x: int, n_y: int, n: int, offset: float) -> tuple[np.ndarray, np.ndarray]:
@@ -77,6 +77,57 @@ def wcs_sky(
     per_group = None if segments is None else [k for k in segments for _ in range(3)]
     sky = solution.sky_from_rectified_groups(groups, per_group)
     return [sky[3 * i : 3 * i + 3] for i in range(len(products))]
+
+
+def wcs_position_errors(
+    solution, products, *, n_grid: int = 8, segments=None
+) -> list[tuple[float, float]]:
+    """The solution's own position error over each product, along RA and Dec, arcsec.
+
+    What a product's solved WCS is uncertain by wherever a star lies on it:
+    the fitted parameters' and wander's covariance carried to the sky
+    (:meth:`~pipeline.stages.astrometry.AstrometricSolution.position_errors`
+    with no centroid error), the root mean square over the centres of an
+    ``n_grid`` x ``n_grid`` grid of equal cells of the product.  Every
+    position measured on the product (or on anything resampled from it)
+    shares this error, beside its own centroid's.
+
+    Parameters
+    ----------
+    solution : AstrometricSolution
+        The night's solution.
+    products : sequence of (int, int)
+        ``(x_start, n_x)`` of each product (see :func:`solved_wcs`).
+    n_grid : int, optional
+        Points per axis of the grid.
+    segments : sequence of (int or None), optional
+        As for :func:`wcs_sky`.
+
+    Returns
+    -------
+    list of (float, float)
+        Per product, the error along right ascension (on the sky) and
+        declination, arcsec.
+    """
+    n_y = solution.frame.n_y
+    points = [_grid(n_x, n_y, n_grid, 0.5) for _, n_x in products]  # cell centres
+    if not points:
+        return []
+    starts = [x_start for x_start, _ in products]
+    x = np.concatenate([px + x_start for x_start, (px, _) in zip(starts, points, strict=True)])
+    y = np.concatenate([py for _, py in points])
+    segment = None
+    if segments is not None:
+        segment = np.repeat([-1 if s is None else int(s) for s in segments], n_grid * n_grid)
+    ra_err, dec_err = solution.position_errors(x, y, 0.0, 0.0, segment=segment)
+    size = n_grid * n_grid
+    return [
+        (
+            float(np.sqrt(np.mean(ra_err[k * size : (k + 1) * size] ** 2))),
+            float(np.sqrt(np.mean(dec_err[k * size : (k + 1) * size] ** 2))),
+        )
+        for k in range(len(products))
+    ]
 
 
 def solved_wcs(

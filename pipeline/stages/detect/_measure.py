@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from pipeline.masks import MaskBit
+from pipeline.masks import NO_DATA, MaskBit
 from pipeline.stages.detect._saturated import Footprints, footprint_bounds, on_footprint
 
 if TYPE_CHECKING:
@@ -303,8 +303,6 @@ _EDGE, _NEAR_FLAGGED = int(SourceFlag.EDGE), int(SourceFlag.NEAR_FLAGGED)
 _SATURATED, _COSMIC_RAY = int(SourceFlag.SATURATED), int(SourceFlag.COSMIC_RAY)
 _BLENDED, _OVERLAP = int(SourceFlag.BLENDED), int(SourceFlag.OVERLAP)
 _FIT_FAILED, _UNRESOLVED = int(SourceFlag.FIT_FAILED), int(SourceFlag.UNRESOLVED)
-#: Mask bits of pixels without data (rectify sets image and variance NaN there).
-NO_DATA = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN | MaskBit.OUTSIDE
 _NO_DATA_BITS = int(NO_DATA)
 
 

@@ -86,7 +86,7 @@ from pipeline.exceptions import RectifyWarning
 from pipeline.geometry.instrument import Camera, Site
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import TDIModel
-from pipeline.masks import MASK_DTYPE, MaskBit
+from pipeline.masks import MASK_DTYPE, NO_DATA, MaskBit
 from pipeline.products import (
     FLAGS_EXTENSION,
     FLUX_EXTENSION,
@@ -127,7 +127,7 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 #: Mask bits of pixels that carry no usable data (image and variance NaN).
-NO_DATA_BITS = MaskBit.NONFINITE | MaskBit.GAP | MaskBit.BAD_COLUMN | MaskBit.OUTSIDE
+NO_DATA_BITS = NO_DATA
 #: Length of the global blocks over which a sampling position is held fixed.
 _BLOCK = 64
 #: Largest change of a sampling position inside a block, pixels.
