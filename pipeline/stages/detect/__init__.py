@@ -17,9 +17,10 @@ Steps (:func:`detect`)
        with the variance plane and the noise correlation of the resampling
        (:mod:`pipeline.stages.detect._find`); segmentation and deblending with
        photutils at ``threshold_sigma``.
-    3. Seeing FWHM from the brightest isolated sources (Brent search on the
-       summed chi-square of smear-aware fits), once per stretch and per band
-       of rows for the report.
+    3. Seeing FWHM from the brightest isolated sources (the minimum of the
+       summed chi-square of smear-aware fits over a grid of widths), once per
+       stretch and per band of rows for the report; for a Moffat profile its
+       index too, once per stretch (:func:`~._measure.best_moffat_beta`).
     4. Smear-aware PSF fit of every source (deblended children together),
        aperture sums at ``aperture_radii`` seeing FWHMs with model aperture
        corrections, shape from photutils ``SourceCatalog``, flags
@@ -59,14 +60,18 @@ from pipeline.stages.detect._find import (
     significance_map,
 )
 from pipeline.stages.detect._measure import (
+    MOFFAT_BETA_MIN_STARS,
+    MOFFAT_BETA_RANGE,
     NO_DATA,
     SourceFlag,
     aperture_fluxes,
     best_fwhm,
+    best_moffat_beta,
     measure_groups,
-    seeing_curves,
+    seeing_stamps,
     single_stars,
     split_pair,
+    stamp_curves,
 )
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
 from pipeline.stages.detect._saturated import merge_on_footprints, saturated_footprints
@@ -132,7 +137,18 @@ class DetectOptions(BaseModel):
     seeing_shape: str = Field(
         "moffat", pattern="^(gaussian|moffat)$", description="Seeing profile family."
     )
-    moffat_beta: float = Field(3.5, gt=1.5, description="Moffat index of the seeing profile.")
+    moffat_beta: float = Field(
+        3.5,
+        gt=1.5,
+        description="Moffat index of the seeing profile: the start of its fit, and the index "
+        "used where it is not fitted.",
+    )
+    fit_moffat_beta: bool = Field(
+        True,
+        description="Fit the Moffat index once per stretch from the seeing stars (within "
+        f"{MOFFAT_BETA_RANGE[0]}-{MOFFAT_BETA_RANGE[1]}; kept at moffat_beta with fewer than "
+        f"{MOFFAT_BETA_MIN_STARS} of them); False: hold it at moffat_beta.",
+    )
     fwhm_guess: float = Field(
         3.0, gt=0, description="Seeing FWHM used for the first detection pass, pixels."
     )
@@ -266,7 +282,8 @@ def _catalog(values: dict, radii, n: int) -> QTable:
 SEEING_STARS_CROWDED = 5
 
 
-def _seeing_table(rows) -> Table:
+def _seeing_table(rows, beta: float) -> Table:
+    """The seeing table: ``rows`` of ``(y_lo, y_hi, n_stars, fwhm)``, the Moffat index ``beta``."""
     from astropy import units as u
     from astropy.table import Table
 
@@ -278,9 +295,13 @@ def _seeing_table(rows) -> Table:
     table["y_lo"].unit = table["y_hi"].unit = u.pix
     table["fwhm"].unit = u.pix
     table["n_stars"].unit = u.dimensionless_unscaled
+    table["beta"] = np.full(len(table), beta, dtype=float)
+    table["beta"].unit = u.dimensionless_unscaled
     table.meta["description"] = (
         "Seeing FWHM fitted from bright isolated stars: the whole stretch (first row), then "
-        "bands of rows across the chip; fwhm NaN where no star qualified."
+        "bands of rows across the chip; fwhm NaN where no star qualified.  beta: the Moffat "
+        "index of the fits, one per stretch (fitted from the first row's stars, or the "
+        "configured moffat_beta where not fitted); NaN for a Gaussian seeing."
     )
     return table
 
@@ -308,6 +329,7 @@ def detect(
     seeing_stars: int = 20,
     seeing_min_snr: float = 30.0,
     seeing_bands: int = 4,
+    fit_moffat_beta: bool = True,
     aperture_radii: tuple[float, ...] = (1.0, 2.0, 3.0),
     find_in_residual: bool = True,
     split_pairs: bool = True,
@@ -344,14 +366,17 @@ def detect(
         them are kept (each star of the night is listed once).  None: all.
     threshold_sigma, min_pixels, background_box, filter_band, deblend_levels,
     deblend_contrast, seeing_shape, moffat_beta, fwhm_guess, seeing_stars,
-    seeing_min_snr, seeing_bands, aperture_radii, find_in_residual, split_pairs
+    seeing_min_snr, seeing_bands, fit_moffat_beta, aperture_radii,
+    find_in_residual, split_pairs
         See :class:`DetectOptions`.
     seeing_profile : SeeingProfile or None
         The seeing's shape when it is not one of ``seeing_shape``'s families
         (e.g. a mosaic tile's mixture of nights in different seeing: a
         subclass whose :meth:`~SeeingProfile.with_fwhm` scales every
         component); its width is fitted from ``fwhm_guess`` as the family's
-        is.  None: ``seeing_shape`` and ``moffat_beta``.
+        is (its shape is not fitted).  None: ``seeing_shape`` and
+        ``moffat_beta`` (for a Moffat profile, its index fitted as
+        ``fit_moffat_beta`` says).
     overwrite_input : bool
         Use ``image`` and ``variance`` as scratch space: float64 planes are
         left holding the image minus the background and the variance, both
@@ -415,8 +440,11 @@ def detect(
         profile = SeeingProfile(float(fwhm_guess), seeing_shape, moffat_beta)
     else:
         profile = seeing_profile.with_fwhm(float(fwhm_guess))
+    # The seeing's Moffat index is fitted (once) only for the family's own profile.
+    fit_beta = fit_moffat_beta and seeing_profile is None and seeing_shape == "moffat"
     no_data = has_bits(mask, NO_DATA) | ~np.isfinite(image) | ~(variance > 0)
-    empty_seeing = _seeing_table([(0, image.shape[0], 0, np.nan)])
+    beta_used = float(profile.beta) if seeing_shape == "moffat" else np.nan
+    empty_seeing = _seeing_table([(0, image.shape[0], 0, np.nan)], beta_used)
     if no_data.all():
         return DetectResult(
             _empty_catalog(radii),
@@ -561,7 +589,7 @@ def detect(
     fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
 
     def seeing_star_curves(px, py, brightness, usable, reach, prof):
-        """Rows and chi-square curves of the brightest usable stars no other source nears.
+        """Stamps, rows and chi-square curves of the brightest usable stars no other source nears.
 
         Near: within ``reach`` (the width :func:`_groups` spreads a fit stamp by).
         """
@@ -570,41 +598,61 @@ def detect(
             isolated[members] = len(members) == 1
         ok = isolated & usable
         chosen = [i for i in np.argsort(-brightness) if ok[i]][:seeing_stars]
-        ys_, curves = seeing_curves(
+        stamps = seeing_stamps(
             residual,
             var_fit,
             [(px[i], py[i]) for i in chosen],
             grid,
             prof,
-            fwhm_grid,
             x_start=x_start,
             point_kernel=point,
         )
+        curves = stamp_curves(stamps, [prof.with_fwhm(f) for f in fwhm_grid])
         trusted = single_stars(fwhm_grid, curves)
-        return ys_[trusted], curves[trusted]
+        ys_ = np.array([s.y for s in stamps], dtype=float)
+        return [s for s, t in zip(stamps, trusted, strict=True) if t], ys_[trusted], curves[trusted]
 
-    def fit_seeing(px, py, brightness, split, prof):
-        """Seeing FWHM (or None) and the seeing table rows from isolated bright sources."""
+    def fit_seeing(px, py, brightness, split, prof, fit_beta=False):
+        """Seeing profile (or None) and the seeing table rows from isolated bright sources.
+
+        With ``fit_beta`` the Moffat index is fitted too (enough stars
+        given), and the widths are those at the fitted index.
+        """
         usable = ~split & (brightness >= seeing_min_snr) & np.isfinite(px + py)
         # Isolated: no other source within twice the reach of a fit stamp.
-        ys_, curves = seeing_star_curves(px, py, brightness, usable, 2.0 * prof.fwhm + 2.0, prof)
+        stamps, ys_, curves = seeing_star_curves(
+            px, py, brightness, usable, 2.0 * prof.fwhm + 2.0, prof
+        )
         if len(ys_) < SEEING_STARS_CROWDED:
             # A crowded field has few stars that far from every other (at
             # ~2,600 sources per megapixel, ~1 in 1,000): take the stars whose
             # fit stamp no other source's overlaps, which are fitted alone.
             crowded = seeing_star_curves(px, py, brightness, usable, prof.fwhm, prof)
-            if len(crowded[0]) > len(ys_):
-                ys_, curves = crowded
+            if len(crowded[1]) > len(ys_):
+                stamps, ys_, curves = crowded
         if not len(ys_):
             return None, [(0, image.shape[0], 0, np.nan)]
-        best = best_fwhm(fwhm_grid, curves)
+        widths = fwhm_grid
+        best = best_fwhm(widths, curves)
+        if fit_beta and len(ys_) >= MOFFAT_BETA_MIN_STARS:
+            beta = best_moffat_beta(stamps, prof.with_fwhm(best))
+            log.debug("Moffat index %s from %d stars (start %.3f)", beta, len(ys_), prof.beta)
+            if beta is not None and beta != prof.beta:
+                # The widths again at the fitted index, over the grid's 7
+                # widths around the best (+-17 %: the width moves a few per
+                # cent with the index), which hold every band's too.
+                prof = SeeingProfile(best, prof.shape, beta)
+                k = int(np.argmin(np.abs(np.log(fwhm_grid / best))))
+                widths = fwhm_grid[max(k - 3, 0) : k + 4]
+                curves = stamp_curves(stamps, [prof.with_fwhm(f) for f in widths])
+                best = best_fwhm(widths, curves)
         rows = [(0, image.shape[0], len(ys_), best)]
         edges = np.linspace(0, image.shape[0], seeing_bands + 1).astype(int)
         for lo, hi in itertools.pairwise(edges):
             inside = (ys_ >= lo) & (ys_ < hi)
-            band = best_fwhm(fwhm_grid, curves[inside]) if inside.any() else np.nan
+            band = best_fwhm(widths, curves[inside]) if inside.any() else np.nan
             rows.append((lo, hi, int(inside.sum()), band))
-        return best, rows
+        return prof.with_fwhm(best), rows
 
     point = deconvolved
     blended = np.asarray(_deblended(segm.labels, parent))
@@ -612,9 +660,10 @@ def detect(
     del snr, segm, parent
     if single:
         var_fit = _fit_variance(var, footprints)
-    fwhm, seeing_rows = fit_seeing(cx, cy, peak, blended, profile)
-    if fwhm is not None:
-        profile = profile.with_fwhm(fwhm)
+    fitted_profile, seeing_rows = fit_seeing(cx, cy, peak, blended, profile, fit_beta)
+    if fitted_profile is not None:
+        fwhm = fitted_profile.fwhm
+        profile = fitted_profile
         if abs(fwhm - fwhm_guess) > 0.25 * fwhm_guess:  # filter far off: detect again
             filter_profile = profile
             if single:  # not held while the search runs
@@ -632,7 +681,12 @@ def detect(
             DetectWarning,
             stacklevel=2,
         )
-    log.debug("seeing FWHM %.3f px from %d stars", profile.fwhm, seeing_rows[0][2])
+    log.debug(
+        "seeing FWHM %.3f px, Moffat index %.3f, from %d stars",
+        profile.fwhm,
+        profile.beta,
+        seeing_rows[0][2],
+    )
 
     shape_cols = [cat.fwhm, cat.ellipticity, cat.orientation]
     del cat
@@ -731,12 +785,13 @@ def detect(
                 # their first fits are those the joint refit would give them again
                 # (their groups are unchanged); the new sources, all flagged as split
                 # off, only bar their neighbours.
+                # (the Moffat index, fitted once, is kept)
                 again, rows = fit_seeing(cx, cy, bright, blended, profile)
-                log.debug("seeing FWHM refitted: %s px", again)
+                log.debug("seeing FWHM refitted: %s px", again and again.fwhm)
                 if again is not None:
                     seeing_rows = rows
-                    if abs(again - profile.fwhm) > 0.003 * profile.fwhm:
-                        profile = profile.with_fwhm(again)
+                    if abs(again.fwhm - profile.fwhm) > 0.003 * profile.fwhm:
+                        profile = again
                 members, fits_ = fit_all(cx, cy, blended)
                 # A source found only in the image minus the models must stand on
                 # its own after the joint refit (residuals of a neighbour's imperfect
@@ -830,7 +885,10 @@ def detect(
     catalog = _catalog(values, radii, x.size)
     catalog.meta["seeing_fwhm"] = float(profile.fwhm)
     catalog.meta["seeing_shape"] = seeing_shape
-    return DetectResult(catalog, _seeing_table(seeing_rows))
+    beta_used = float(profile.beta) if seeing_shape == "moffat" else np.nan
+    if seeing_shape == "moffat":
+        catalog.meta["seeing_beta"] = beta_used
+    return DetectResult(catalog, _seeing_table(seeing_rows, beta_used))
 
 
 #: Largest fraction of the bright sources (S/N >= 50) flagged UNRESOLVED for
@@ -1333,6 +1391,8 @@ STAGE = Stage(
     #     data), and a star whose core they cut is not tested for UNRESOLVED:
     #     a star beside or through a bad column is one source, not two
     #     (products without such gaps unchanged)
-    version=15,
+    # 16: the seeing's Moffat index fitted once per stretch (seeing table
+    #     column ``beta``), and used in the fits
+    version=16,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
