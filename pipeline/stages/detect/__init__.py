@@ -592,6 +592,7 @@ def detect(
         """Stamps, rows and chi-square curves of the brightest usable stars no other source nears.
 
         Near: within ``reach`` (the width :func:`_groups` spreads a fit stamp by).
+        The stamps are :func:`seeing_stamps`', their ``x``, ``y`` those of ``px``, ``py``.
         """
         isolated = np.zeros(len(px), bool)
         for members in _groups(px, py, grid, x_start, reach, point):
@@ -612,11 +613,16 @@ def detect(
         ys_ = np.array([s.y for s in stamps], dtype=float)
         return [s for s, t in zip(stamps, trusted, strict=True) if t], ys_[trusted], curves[trusted]
 
+    # The sources (indices into the positions) the Moffat index was last
+    # fitted on: a refit on the same stars would find the same index.
+    beta_stars: dict = {}
+
     def fit_seeing(px, py, brightness, split, prof, fit_beta=False):
         """Seeing profile (or None) and the seeing table rows from isolated bright sources.
 
         With ``fit_beta`` the Moffat index is fitted too (enough stars
-        given), and the widths are those at the fitted index.
+        given, and not the stars it was fitted on last), and the widths are
+        those at the fitted index.
         """
         usable = ~split & (brightness >= seeing_min_snr) & np.isfinite(px + py)
         # Isolated: no other source within twice the reach of a fit stamp.
@@ -634,7 +640,10 @@ def detect(
             return None, [(0, image.shape[0], 0, np.nan)]
         widths = fwhm_grid
         best = best_fwhm(widths, curves)
-        if fit_beta and len(ys_) >= MOFFAT_BETA_MIN_STARS:
+        index = {(float(a), float(b)): i for i, (a, b) in enumerate(zip(px, py, strict=True))}
+        stars = frozenset(index[float(s.x), float(s.y)] for s in stamps)
+        if fit_beta and len(ys_) >= MOFFAT_BETA_MIN_STARS and stars != beta_stars.get("ids"):
+            beta_stars["ids"] = stars
             beta = best_moffat_beta(stamps, prof.with_fwhm(best))
             log.debug("Moffat index %s from %d stars (start %.3f)", beta, len(ys_), prof.beta)
             if beta is not None and beta != prof.beta:
@@ -785,8 +794,11 @@ def detect(
                 # their first fits are those the joint refit would give them again
                 # (their groups are unchanged); the new sources, all flagged as split
                 # off, only bar their neighbours.
-                # (the Moffat index, fitted once, is kept)
-                again, rows = fit_seeing(cx, cy, bright, blended, profile)
+                # The Moffat index too, if these are other stars than the first's
+                # (stars hiding a companion, or a pair along the smear, fit with
+                # heavier wings: on a scene of such pairs and 8 single stars the
+                # first fit gave 2.58 where the stars' index is ~3.45).
+                again, rows = fit_seeing(cx, cy, bright, blended, profile, fit_beta)
                 log.debug("seeing FWHM refitted: %s px", again and again.fwhm)
                 if again is not None:
                     seeing_rows = rows

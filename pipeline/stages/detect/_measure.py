@@ -204,8 +204,8 @@ class SeeingStamp:
 
     Attributes
     ----------
-    y : float
-        The star's row (array pixels), as a candidate.
+    x, y : float
+        The star's column and row (array pixels), as a candidate.
     data, variance : ndarray, shape (h, w)
         The stamp of the background-subtracted image and its variance, float64.
     x0, y0 : float
@@ -216,6 +216,7 @@ class SeeingStamp:
         Rectify's sampling response as the compiled model takes it.
     """
 
+    x: float
     y: float
     data: np.ndarray
     variance: np.ndarray
@@ -261,6 +262,7 @@ def seeing_stamps(
             continue
         stamps.append(
             SeeingStamp(
+                x,
                 y,
                 np.asarray(data, dtype=np.float64),
                 np.asarray(var, dtype=np.float64),
