@@ -588,11 +588,12 @@ def detect(
     point = deconvolved
     fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
 
-    def seeing_star_curves(px, py, brightness, usable, reach, prof):
+    def seeing_star_curves(px, py, brightness, usable, reach, prof, widths):
         """Stamps, rows and chi-square curves of the brightest usable stars no other source nears.
 
         Near: within ``reach`` (the width :func:`_groups` spreads a fit stamp by).
-        The stamps are :func:`seeing_stamps`', their ``x``, ``y`` those of ``px``, ``py``.
+        The stamps are :func:`seeing_stamps`', their ``x``, ``y`` those of
+        ``px``, ``py``; the curves over ``widths``.
         """
         isolated = np.zeros(len(px), bool)
         for members in _groups(px, py, grid, x_start, reach, point):
@@ -608,8 +609,8 @@ def detect(
             x_start=x_start,
             point_kernel=point,
         )
-        curves = stamp_curves(stamps, [prof.with_fwhm(f) for f in fwhm_grid])
-        trusted = single_stars(fwhm_grid, curves)
+        curves = stamp_curves(stamps, [prof.with_fwhm(f) for f in widths])
+        trusted = single_stars(widths, curves)
         ys_ = np.array([s.y for s in stamps], dtype=float)
         return [s for s, t in zip(stamps, trusted, strict=True) if t], ys_[trusted], curves[trusted]
 
@@ -617,42 +618,50 @@ def detect(
     # fitted on: a refit on the same stars would find the same index.
     beta_stars: dict = {}
 
-    def fit_seeing(px, py, brightness, split, prof, fit_beta=False):
+    def fit_seeing(px, py, brightness, split, prof, fit_beta=False, near=False):
         """Seeing profile (or None) and the seeing table rows from isolated bright sources.
 
         With ``fit_beta`` the Moffat index is fitted too (enough stars
         given, and not the stars it was fitted on last), and the widths are
-        those at the fitted index.
+        those at the fitted index.  With ``near`` (a refit) the widths tried
+        are the grid's 13 around ``prof.fwhm`` (+-37 %), not all 41: the
+        refit moves the seeing by a few per cent, and the 28 widths fewer
+        per star pay for the index's walk.
         """
+        widths = fwhm_grid
+        if near:
+            k = int(np.argmin(np.abs(np.log(fwhm_grid / prof.fwhm))))
+            widths = fwhm_grid[max(k - 6, 0) : k + 7]
         usable = ~split & (brightness >= seeing_min_snr) & np.isfinite(px + py)
         # Isolated: no other source within twice the reach of a fit stamp.
         stamps, ys_, curves = seeing_star_curves(
-            px, py, brightness, usable, 2.0 * prof.fwhm + 2.0, prof
+            px, py, brightness, usable, 2.0 * prof.fwhm + 2.0, prof, widths
         )
         if len(ys_) < SEEING_STARS_CROWDED:
             # A crowded field has few stars that far from every other (at
             # ~2,600 sources per megapixel, ~1 in 1,000): take the stars whose
             # fit stamp no other source's overlaps, which are fitted alone.
-            crowded = seeing_star_curves(px, py, brightness, usable, prof.fwhm, prof)
+            crowded = seeing_star_curves(px, py, brightness, usable, prof.fwhm, prof, widths)
             if len(crowded[1]) > len(ys_):
                 stamps, ys_, curves = crowded
         if not len(ys_):
             return None, [(0, image.shape[0], 0, np.nan)]
-        widths = fwhm_grid
         best = best_fwhm(widths, curves)
         index = {(float(a), float(b)): i for i, (a, b) in enumerate(zip(px, py, strict=True))}
         stars = frozenset(index[float(s.x), float(s.y)] for s in stamps)
         if fit_beta and len(ys_) >= MOFFAT_BETA_MIN_STARS and stars != beta_stars.get("ids"):
+            # A refit starts at the index fitted before, near: fine steps only.
+            refit = "ids" in beta_stars
             beta_stars["ids"] = stars
-            beta = best_moffat_beta(stamps, prof.with_fwhm(best))
+            beta = best_moffat_beta(stamps, prof.with_fwhm(best), coarse=not refit)
             log.debug("Moffat index %s from %d stars (start %.3f)", beta, len(ys_), prof.beta)
             if beta is not None and beta != prof.beta:
-                # The widths again at the fitted index, over the grid's 7
-                # widths around the best (+-17 %: the width moves a few per
-                # cent with the index), which hold every band's too.
+                # The widths again at the fitted index, over the grid's 5
+                # widths around the best (+-12 %: the width moves 1-2 % per
+                # 0.1 of the index), which hold every band's too.
                 prof = SeeingProfile(best, prof.shape, beta)
                 k = int(np.argmin(np.abs(np.log(fwhm_grid / best))))
-                widths = fwhm_grid[max(k - 3, 0) : k + 4]
+                widths = fwhm_grid[max(k - 2, 0) : k + 3]
                 curves = stamp_curves(stamps, [prof.with_fwhm(f) for f in widths])
                 best = best_fwhm(widths, curves)
         rows = [(0, image.shape[0], len(ys_), best)]
@@ -798,7 +807,7 @@ def detect(
                 # (stars hiding a companion, or a pair along the smear, fit with
                 # heavier wings: on a scene of such pairs and 8 single stars the
                 # first fit gave 2.58 where the stars' index is ~3.45).
-                again, rows = fit_seeing(cx, cy, bright, blended, profile, fit_beta)
+                again, rows = fit_seeing(cx, cy, bright, blended, profile, fit_beta, near=True)
                 log.debug("seeing FWHM refitted: %s px", again and again.fwhm)
                 if again is not None:
                     seeing_rows = rows

@@ -382,6 +382,7 @@ def best_moffat_beta(
     bounds: tuple[float, float] = MOFFAT_BETA_RANGE,
     step: float = MOFFAT_BETA_STEP,
     fwhm_step: float = 0.0576,
+    coarse: bool = True,
 ) -> float | None:
     """The Moffat index that fits the seeing stars best, the FWHM fitted along with it.
 
@@ -400,7 +401,8 @@ def best_moffat_beta(
     interpolation error out (a chi-square that is not a parabola in
     ``log(beta)`` over +-20 %: on a simulated night of index 3.0 the first
     walk alone gave 3.03-3.09).  Typically 4 + 3 indices of 3 widths each:
-    ~20 model evaluations per star.
+    ~20 model evaluations per star.  Without ``coarse`` only the second
+    walk: an index known to be near (a refit on other stars), ~10.
 
     Parameters
     ----------
@@ -414,6 +416,8 @@ def best_moffat_beta(
         Factor (> 1) between neighbouring indices of the first walk.
     fwhm_step : float
         Logarithmic step between the widths tried at each index.
+    coarse : bool
+        Walk in steps of ``step`` first.
 
     Returns
     -------
@@ -444,7 +448,7 @@ def best_moffat_beta(
         return value
 
     start = math.log(min(max(profile.beta, lo), hi))
-    for du in (math.log(step), math.log(step) / 3.0):
+    for du in (math.log(step), math.log(step) / 3.0)[0 if coarse else 1 :]:
         start = _walk(start, du, math.log(lo), math.log(hi), evaluate)
         if start is None:
             return None
