@@ -1412,8 +1412,10 @@ STAGE = Stage(
     #     data), and a star whose core they cut is not tested for UNRESOLVED:
     #     a star beside or through a bad column is one source, not two
     #     (products without such gaps unchanged)
-    # 16: the seeing's Moffat index fitted once per stretch (seeing table
-    #     column ``beta``), and used in the fits
+    # 16: the seeing's Moffat index fitted per stretch (seeing table column
+    #     ``beta``, refitted with the seeing when the refit takes other
+    #     stars) and used in the fits; the refit tries the 13 grid widths
+    #     around the first fit's
     version=16,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
