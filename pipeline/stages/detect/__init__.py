@@ -62,6 +62,7 @@ from pipeline.stages.detect._find import (
 from pipeline.stages.detect._measure import (
     MOFFAT_BETA_MIN_STARS,
     MOFFAT_BETA_RANGE,
+    MOFFAT_BETA_SIGNIFICANCE,
     NO_DATA,
     SourceFlag,
     aperture_fluxes,
@@ -282,8 +283,11 @@ def _catalog(values: dict, radii, n: int) -> QTable:
 SEEING_STARS_CROWDED = 5
 
 
-def _seeing_table(rows, beta: float) -> Table:
-    """The seeing table: ``rows`` of ``(y_lo, y_hi, n_stars, fwhm)``, the Moffat index ``beta``."""
+def _seeing_table(rows, beta: float, fit: tuple[float, float] = (np.nan, np.nan)) -> Table:
+    """The seeing table: ``rows`` of ``(y_lo, y_hi, n_stars, fwhm)``.
+
+    ``beta``: the Moffat index used; ``fit``: the index fitted and its error.
+    """
     from astropy import units as u
     from astropy.table import Table
 
@@ -295,13 +299,16 @@ def _seeing_table(rows, beta: float) -> Table:
     table["y_lo"].unit = table["y_hi"].unit = u.pix
     table["fwhm"].unit = u.pix
     table["n_stars"].unit = u.dimensionless_unscaled
-    table["beta"] = np.full(len(table), beta, dtype=float)
-    table["beta"].unit = u.dimensionless_unscaled
+    for name, value in zip(("beta", "beta_fit", "beta_err"), (beta, *fit), strict=True):
+        table[name] = np.full(len(table), value, dtype=float)
+        table[name].unit = u.dimensionless_unscaled
     table.meta["description"] = (
         "Seeing FWHM fitted from bright isolated stars: the whole stretch (first row), then "
         "bands of rows across the chip; fwhm NaN where no star qualified.  beta: the Moffat "
-        "index of the fits, one per stretch (fitted from the first row's stars, or the "
-        "configured moffat_beta where not fitted); NaN for a Gaussian seeing."
+        "index of the fits, one per stretch: beta_fit (fitted from the first row's stars, "
+        "1-sigma error beta_err) where it differs from the configured moffat_beta by more "
+        f"than {MOFFAT_BETA_SIGNIFICANCE:g} errors, else moffat_beta; beta_fit and beta_err "
+        "NaN where not fitted (too few stars), beta NaN for a Gaussian seeing."
     )
     return table
 
@@ -653,12 +660,21 @@ def detect(
             # A refit starts at the index fitted before, near: fine steps only.
             refit = "ids" in beta_stars
             beta_stars["ids"] = stars
-            beta = best_moffat_beta(stamps, prof.with_fwhm(best), coarse=not refit)
-            log.debug("Moffat index %s from %d stars (start %.3f)", beta, len(ys_), prof.beta)
-            if beta is not None and beta != prof.beta:
-                # The widths again at the fitted index, over the grid's 5
-                # widths around the best (+-12 %: the width moves 1-2 % per
-                # 0.1 of the index), which hold every band's too.
+            fitted = best_moffat_beta(stamps, prof.with_fwhm(best), coarse=not refit)
+            log.debug("Moffat index %s from %d stars (start %.3f)", fitted, len(ys_), prof.beta)
+            beta_stars["fit"] = (np.nan, np.nan) if fitted is None else tuple(fitted)
+            # The configured index unless the stars show another: an index
+            # within the noise of it would only add the noise to the stretch's
+            # fluxes (~0.045 mag per unit of the index, FWHM 2.7 px).
+            beta = moffat_beta
+            if fitted is not None and abs(fitted.beta - beta) > MOFFAT_BETA_SIGNIFICANCE * (
+                fitted.error
+            ):
+                beta = fitted.beta
+            if beta != prof.beta:
+                # The widths again at the index, over the grid's 5 widths
+                # around the best (+-12 %: the width moves 1-2 % per 0.1 of
+                # the index), which hold every band's too.
                 prof = SeeingProfile(best, prof.shape, beta)
                 k = int(np.argmin(np.abs(np.log(fwhm_grid / best))))
                 widths = fwhm_grid[max(k - 2, 0) : k + 3]
@@ -811,7 +827,8 @@ def detect(
                 log.debug("seeing FWHM refitted: %s px", again and again.fwhm)
                 if again is not None:
                     seeing_rows = rows
-                    if abs(again.fwhm - profile.fwhm) > 0.003 * profile.fwhm:
+                    moved = abs(again.fwhm - profile.fwhm) > 0.003 * profile.fwhm
+                    if moved or again.beta != profile.beta:
                         profile = again
                 members, fits_ = fit_all(cx, cy, blended)
                 # A source found only in the image minus the models must stand on
@@ -909,7 +926,8 @@ def detect(
     beta_used = float(profile.beta) if seeing_shape == "moffat" else np.nan
     if seeing_shape == "moffat":
         catalog.meta["seeing_beta"] = beta_used
-    return DetectResult(catalog, _seeing_table(seeing_rows, beta_used))
+    fit = beta_stars.get("fit", (np.nan, np.nan))
+    return DetectResult(catalog, _seeing_table(seeing_rows, beta_used, fit))
 
 
 #: Largest fraction of the bright sources (S/N >= 50) flagged UNRESOLVED for
