@@ -662,15 +662,20 @@ def detect(
             beta_stars["ids"] = stars
             fitted = best_moffat_beta(stamps, prof.with_fwhm(best), coarse=not refit)
             log.debug("Moffat index %s from %d stars (start %.3f)", fitted, len(ys_), prof.beta)
-            beta_stars["fit"] = (np.nan, np.nan) if fitted is None else tuple(fitted)
             # The configured index unless the stars show another: an index
             # within the noise of it would only add the noise to the stretch's
-            # fluxes (~0.045 mag per unit of the index, FWHM 2.7 px).
-            beta = moffat_beta
-            if fitted is not None and abs(fitted.beta - beta) > MOFFAT_BETA_SIGNIFICANCE * (
-                fitted.error
-            ):
-                beta = fitted.beta
+            # fluxes (~0.045 mag per unit of the index, FWHM 2.7 px).  A refit
+            # keeps the index in use if within the noise of it too: another
+            # index refits every group (a quarter more CPU on a stretch).
+            beta, bar = moffat_beta, np.inf
+            if fitted is not None:
+                beta, bar = fitted.beta, MOFFAT_BETA_SIGNIFICANCE * fitted.error
+                if abs(beta - moffat_beta) <= bar:
+                    beta = moffat_beta
+            if not (refit and abs(beta - prof.beta) <= bar):
+                beta_stars["fit"] = (np.nan, np.nan) if fitted is None else tuple(fitted)
+            else:
+                beta = prof.beta
             if beta != prof.beta:
                 # The widths again at the index, over the grid's 5 widths
                 # around the best (+-12 %: the width moves 1-2 % per 0.1 of
