@@ -146,9 +146,10 @@ class DetectOptions(BaseModel):
     )
     fit_moffat_beta: bool = Field(
         True,
-        description="Fit the Moffat index once per stretch from the seeing stars (within "
-        f"{MOFFAT_BETA_RANGE[0]}-{MOFFAT_BETA_RANGE[1]}; kept at moffat_beta with fewer than "
-        f"{MOFFAT_BETA_MIN_STARS} of them); False: hold it at moffat_beta.",
+        description="Fit the Moffat index per stretch from the seeing stars (within "
+        f"{MOFFAT_BETA_RANGE[0]}-{MOFFAT_BETA_RANGE[1]}), used where it is more than "
+        f"{MOFFAT_BETA_SIGNIFICANCE:g} of its errors from moffat_beta (kept with fewer than "
+        f"{MOFFAT_BETA_MIN_STARS} seeing stars); False: hold it at moffat_beta.",
     )
     fwhm_guess: float = Field(
         3.0, gt=0, description="Seeing FWHM used for the first detection pass, pixels."
@@ -1435,10 +1436,10 @@ STAGE = Stage(
     #     data), and a star whose core they cut is not tested for UNRESOLVED:
     #     a star beside or through a bad column is one source, not two
     #     (products without such gaps unchanged)
-    # 16: the seeing's Moffat index fitted per stretch (seeing table column
-    #     ``beta``, refitted with the seeing when the refit takes other
-    #     stars) and used in the fits; the refit tries the 13 grid widths
-    #     around the first fit's
+    # 16: the seeing's Moffat index fitted per stretch (refitted with the
+    #     seeing when the refit takes other stars) and used in the fits when
+    #     3 errors off moffat_beta (seeing table columns beta, beta_fit,
+    #     beta_err); the refit tries the 13 grid widths around the first fit's
     version=16,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
