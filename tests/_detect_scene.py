@@ -70,6 +70,8 @@ def render_scene(
     shape=(512, 1024),
     x_start=1000,
     fwhm=3.2,
+    beta=3.5,
+    components=6,
     sky=200.0,
     length_edge=12.0,
     bow_edge=2.0,
@@ -83,6 +85,8 @@ def render_scene(
     ``seed`` is given; the variance plane is the expected variance.  With
     ``round_stars`` there is no smear (a deconvolved product).  With ``snr``
     given, ``flux`` is ignored and each star gets the flux of that optimal S/N.
+    The seeing is a Moffat profile of index ``beta`` drawn as a mixture of
+    ``components`` Gaussians (:meth:`GaussianMixturePSF.moffat`).
     """
     ny, nx = shape
     x = np.asarray(x, dtype=float)
@@ -95,7 +99,7 @@ def render_scene(
     else:
         dx, dy = smear_track(y, ny, k, length_edge, bow_edge)
         kernels = kernel_table(ny, x_start, nx, length_edge, bow_edge)
-    psf = GaussianMixturePSF.moffat(fwhm, 3.5)
+    psf = GaussianMixturePSF.moffat(fwhm, beta, components)
     units = []
     for i in range(x.size):  # each star's own unit-flux image, for its S/N
         one = np.zeros((64, 96))

@@ -35,14 +35,17 @@ def _kernels(length: float) -> Table:
     )
 
 
-def _stretch(length: float) -> tuple[np.ndarray, Table]:
-    """Noise-free stars on a flat sky, each smeared along the scan by ``length`` px."""
+def _stretch(length: float, beta: float = 3.5) -> tuple[np.ndarray, Table]:
+    """Noise-free stars on a flat sky, each smeared along the scan by ``length`` px.
+
+    The seeing: Moffat of index ``beta``.
+    """
     rng = np.random.default_rng(3)
     image = np.full(SHAPE, 50.0)
     xs = np.linspace(40, SHAPE[1] - 40, 8) + rng.uniform(-0.5, 0.5, 8)
     ys = np.array([35.0, 85.0] * 4) + rng.uniform(-0.5, 0.5, 8)
     dx, dy = _track(length)
-    profile = SeeingProfile(FWHM, "moffat", 3.5)
+    profile = SeeingProfile(FWHM, "moffat", beta)
     for x, y in zip(xs, ys, strict=True):
         image += model_image(SHAPE, x, y, dx, dy, profile, flux=1e5)
     catalog = Table({"x": xs + X_START, "y": ys, "snr": np.full(8, 200.0), "flags": np.zeros(8)})
@@ -91,6 +94,29 @@ def test_measured_widths_equal_the_geometry_when_it_is_right():
     # it (measured 4e-4 relative).
     excess = np.asarray(widths["model_along"]) ** 2 - np.asarray(widths["model_across"]) ** 2
     np.testing.assert_allclose(excess, SMEAR**2 / 12, rtol=0.003)
+
+
+def test_the_prediction_takes_the_seeing_index_detect_fitted():
+    # Stars of Moffat index 2.5, against detect's seeing table of that index
+    # (its ``beta`` column, detect 17 on) while the configured one (meta) is
+    # 3.5: the predicted widths are the measured ones, as in the test above.
+    # With the configured index instead the heavier wings go unpredicted:
+    # measured widths 0.41 px above the predicted ones (measured), across
+    # the scan as along it.
+    image, catalog = _stretch(SMEAR, beta=2.5)
+    seeing = _seeing()
+    seeing["beta"] = 2.5
+    widths = measure_smear_widths(
+        image, np.ones(SHAPE, bool), catalog, seeing, _kernels(SMEAR), x_start=X_START
+    )
+    np.testing.assert_allclose(widths["along"], widths["model_along"], atol=1e-3)
+    np.testing.assert_allclose(widths["across"], widths["model_across"], atol=1e-3)
+    seeing.remove_column("beta")  # a table of detect before 16: the configured index
+    configured = measure_smear_widths(
+        image, np.ones(SHAPE, bool), catalog, seeing, _kernels(SMEAR), x_start=X_START
+    )
+    excess = np.asarray(configured["across"]) - np.asarray(configured["model_across"])
+    assert np.all(excess > 0.2)
 
 
 def test_smear_the_geometry_misses_shows_along_the_scan():

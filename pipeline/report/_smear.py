@@ -75,17 +75,24 @@ def _isolated(x: np.ndarray, y: np.ndarray, distance: float) -> np.ndarray:
     return near[:, 1] > distance
 
 
-def _band_fwhm(seeing: Table, x: float, y: float) -> float:
-    """Detect's seeing FWHM of the band (else the stretch) holding ``(x, y)``, pixels."""
+def _band_fwhm(seeing: Table, x: float, y: float) -> tuple[float, float]:
+    """Detect's seeing FWHM (pixels) and Moffat index of the band (else the stretch) at ``(x, y)``.
+
+    The index is the table's ``beta`` column (one per stretch, detect 17 on),
+    else its meta ``moffat_beta`` (default 3.5).
+    """
     xs = np.asarray(seeing["x_start"], float)
     xe = np.asarray(seeing["x_stop"], float)
     lo, hi = np.asarray(seeing["y_lo"], float), np.asarray(seeing["y_hi"], float)
     fwhm = np.asarray(seeing["fwhm"], float)
+    default = float(seeing.meta.get("moffat_beta", 3.5))
+    beta = np.asarray(seeing["beta"], float) if "beta" in seeing.colnames else None
     rows = np.flatnonzero((x >= xs - 0.5) & (x < xe + 0.5) & (y >= lo) & (y < hi))
     rows = rows[np.isfinite(fwhm[rows])]
     if not rows.size:
-        return np.nan
-    return float(fwhm[rows[np.argmin(hi[rows] - lo[rows])]])  # the narrowest band
+        return np.nan, default
+    row = rows[np.argmin(hi[rows] - lo[rows])]  # the narrowest band
+    return float(fwhm[row]), default if beta is None else float(beta[row])
 
 
 def measure_smear_widths(
@@ -113,8 +120,9 @@ def measure_smear_widths(
         those outside the stretch are ignored.
     seeing : astropy.table.Table
         Detect's seeing table (``x_start``, ``x_stop``, ``y_lo``, ``y_hi``,
-        ``fwhm`` pix); ``meta`` ``seeing_shape`` and ``moffat_beta`` (default
-        Moffat 3.5) describe the profile.
+        ``fwhm`` pix, ``beta``); ``meta`` ``seeing_shape`` describes the
+        profile, and ``moffat_beta`` its index where the table has no
+        ``beta`` column (default Moffat 3.5).
     kernels : astropy.table.Table
         Rectify's ``smear_kernels`` of the stretch.
     x_start : int
@@ -146,7 +154,6 @@ def measure_smear_widths(
     ny, nx = image.shape
     grid = KernelGrid(kernels)
     shape = str(seeing.meta.get("seeing_shape", "moffat"))
-    beta = float(seeing.meta.get("moffat_beta", 3.5))
     fwhm_all = np.asarray(seeing["fwhm"], float)
     reach = 4.0 * (np.nanmax(fwhm_all) if np.isfinite(fwhm_all).any() else 3.0)
     half = float(np.max(np.abs(np.asarray(kernels["dx"], float))))
@@ -156,7 +163,7 @@ def measure_smear_widths(
     chosen = own & (flags == 0) & (snr >= min_snr) & _isolated(x, y, 2.0 * radius)
     order = [i for i in np.argsort(-snr) if chosen[i]][:max_stars]
     for i in order:
-        fwhm = _band_fwhm(seeing, x[i], y[i])
+        fwhm, beta = _band_fwhm(seeing, x[i], y[i])
         if not np.isfinite(fwhm):
             continue
         ci, cj = int(np.rint(x[i] - x_start)), int(np.rint(y[i]))

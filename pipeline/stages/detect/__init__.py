@@ -17,9 +17,10 @@ Steps (:func:`detect`)
        with the variance plane and the noise correlation of the resampling
        (:mod:`pipeline.stages.detect._find`); segmentation and deblending with
        photutils at ``threshold_sigma``.
-    3. Seeing FWHM from the brightest isolated sources (Brent search on the
-       summed chi-square of smear-aware fits), once per stretch and per band
-       of rows for the report.
+    3. Seeing FWHM from the brightest isolated sources (the minimum of the
+       summed chi-square of smear-aware fits over a grid of widths), once per
+       stretch and per band of rows for the report; for a Moffat profile its
+       index too, once per stretch (:func:`~._measure.best_moffat_beta`).
     4. Smear-aware PSF fit of every source (deblended children together),
        aperture sums at ``aperture_radii`` seeing FWHMs with model aperture
        corrections, shape from photutils ``SourceCatalog``, flags
@@ -59,14 +60,19 @@ from pipeline.stages.detect._find import (
     significance_map,
 )
 from pipeline.stages.detect._measure import (
+    MOFFAT_BETA_MIN_STARS,
+    MOFFAT_BETA_RANGE,
+    MOFFAT_BETA_SIGNIFICANCE,
     NO_DATA,
     SourceFlag,
     aperture_fluxes,
     best_fwhm,
+    best_moffat_beta,
     measure_groups,
-    seeing_curves,
+    seeing_stamps,
     single_stars,
     split_pair,
+    stamp_curves,
 )
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
 from pipeline.stages.detect._saturated import (
@@ -137,7 +143,19 @@ class DetectOptions(BaseModel):
     seeing_shape: str = Field(
         "moffat", pattern="^(gaussian|moffat)$", description="Seeing profile family."
     )
-    moffat_beta: float = Field(3.5, gt=1.5, description="Moffat index of the seeing profile.")
+    moffat_beta: float = Field(
+        3.5,
+        gt=1.5,
+        description="Moffat index of the seeing profile: the start of its fit, and the index "
+        "used where it is not fitted.",
+    )
+    fit_moffat_beta: bool = Field(
+        True,
+        description="Fit the Moffat index per stretch from the seeing stars (within "
+        f"{MOFFAT_BETA_RANGE[0]}-{MOFFAT_BETA_RANGE[1]}), used where it is more than "
+        f"{MOFFAT_BETA_SIGNIFICANCE:g} of its errors from moffat_beta (kept with fewer than "
+        f"{MOFFAT_BETA_MIN_STARS} seeing stars); False: hold it at moffat_beta.",
+    )
     fwhm_guess: float = Field(
         3.0, gt=0, description="Seeing FWHM used for the first detection pass, pixels."
     )
@@ -271,7 +289,11 @@ def _catalog(values: dict, radii, n: int) -> QTable:
 SEEING_STARS_CROWDED = 5
 
 
-def _seeing_table(rows) -> Table:
+def _seeing_table(rows, beta: float, fit: tuple[float, float] = (np.nan, np.nan)) -> Table:
+    """The seeing table: ``rows`` of ``(y_lo, y_hi, n_stars, fwhm)``.
+
+    ``beta``: the Moffat index used; ``fit``: the index fitted and its error.
+    """
     from astropy import units as u
     from astropy.table import Table
 
@@ -283,9 +305,16 @@ def _seeing_table(rows) -> Table:
     table["y_lo"].unit = table["y_hi"].unit = u.pix
     table["fwhm"].unit = u.pix
     table["n_stars"].unit = u.dimensionless_unscaled
+    for name, value in zip(("beta", "beta_fit", "beta_err"), (beta, *fit), strict=True):
+        table[name] = np.full(len(table), value, dtype=float)
+        table[name].unit = u.dimensionless_unscaled
     table.meta["description"] = (
         "Seeing FWHM fitted from bright isolated stars: the whole stretch (first row), then "
-        "bands of rows across the chip; fwhm NaN where no star qualified."
+        "bands of rows across the chip; fwhm NaN where no star qualified.  beta: the Moffat "
+        "index of the fits, one per stretch: beta_fit (fitted from the first row's stars, "
+        "1-sigma error beta_err) where it differs from the configured moffat_beta by more "
+        f"than {MOFFAT_BETA_SIGNIFICANCE:g} errors, else moffat_beta; beta_fit and beta_err "
+        "NaN where not fitted (too few stars), beta NaN for a Gaussian seeing."
     )
     return table
 
@@ -313,6 +342,7 @@ def detect(
     seeing_stars: int = 20,
     seeing_min_snr: float = 30.0,
     seeing_bands: int = 4,
+    fit_moffat_beta: bool = True,
     aperture_radii: tuple[float, ...] = (1.0, 2.0, 3.0),
     find_in_residual: bool = True,
     split_pairs: bool = True,
@@ -349,14 +379,17 @@ def detect(
         them are kept (each star of the night is listed once).  None: all.
     threshold_sigma, min_pixels, background_box, filter_band, deblend_levels,
     deblend_contrast, seeing_shape, moffat_beta, fwhm_guess, seeing_stars,
-    seeing_min_snr, seeing_bands, aperture_radii, find_in_residual, split_pairs
+    seeing_min_snr, seeing_bands, fit_moffat_beta, aperture_radii,
+    find_in_residual, split_pairs
         See :class:`DetectOptions`.
     seeing_profile : SeeingProfile or None
         The seeing's shape when it is not one of ``seeing_shape``'s families
         (e.g. a mosaic tile's mixture of nights in different seeing: a
         subclass whose :meth:`~SeeingProfile.with_fwhm` scales every
         component); its width is fitted from ``fwhm_guess`` as the family's
-        is.  None: ``seeing_shape`` and ``moffat_beta``.
+        is (its shape is not fitted).  None: ``seeing_shape`` and
+        ``moffat_beta`` (for a Moffat profile, its index fitted as
+        ``fit_moffat_beta`` says).
     overwrite_input : bool
         Use ``image`` and ``variance`` as scratch space: float64 planes are
         left holding the image minus the background and the variance, both
@@ -420,6 +453,8 @@ def detect(
         profile = SeeingProfile(float(fwhm_guess), seeing_shape, moffat_beta)
     else:
         profile = seeing_profile.with_fwhm(float(fwhm_guess))
+    # The seeing's Moffat index is fitted (once) only for the family's own profile.
+    fit_beta = fit_moffat_beta and seeing_profile is None and seeing_shape == "moffat"
     no_data = has_bits(mask, NO_DATA) | ~np.isfinite(image) | ~(variance > 0)
     # Columns saturated from the stretch's edge on: clipped or spilled charge
     # all along, no star's footprint.  detect takes them as a bad column's
@@ -432,7 +467,8 @@ def detect(
         no_data |= columns
         mask = mask.copy()
         mask[columns] |= mask.dtype.type(int(MaskBit.BAD_COLUMN | MaskBit.NONFINITE))
-    empty_seeing = _seeing_table([(0, image.shape[0], 0, np.nan)])
+    beta_used = float(profile.beta) if seeing_shape == "moffat" else np.nan
+    empty_seeing = _seeing_table([(0, image.shape[0], 0, np.nan)], beta_used)
     if no_data.all():
         return DetectResult(
             _empty_catalog(radii),
@@ -577,51 +613,103 @@ def detect(
     point = deconvolved
     fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
 
-    def seeing_star_curves(px, py, brightness, usable, reach, prof):
-        """Rows and chi-square curves of the brightest usable stars no other source nears.
+    def seeing_star_curves(px, py, brightness, usable, reach, prof, widths):
+        """Stamps, rows and chi-square curves of the brightest usable stars no other source nears.
 
         Near: within ``reach`` (the width :func:`_groups` spreads a fit stamp by).
+        The stamps are :func:`seeing_stamps`', their ``x``, ``y`` those of
+        ``px``, ``py``; the curves over ``widths``.
         """
         isolated = np.zeros(len(px), bool)
         for members in _groups(px, py, grid, x_start, reach, point):
             isolated[members] = len(members) == 1
         ok = isolated & usable
         chosen = [i for i in np.argsort(-brightness) if ok[i]][:seeing_stars]
-        ys_, curves = seeing_curves(
+        stamps = seeing_stamps(
             residual,
             var_fit,
             [(px[i], py[i]) for i in chosen],
             grid,
             prof,
-            fwhm_grid,
             x_start=x_start,
             point_kernel=point,
         )
-        trusted = single_stars(fwhm_grid, curves)
-        return ys_[trusted], curves[trusted]
+        curves = stamp_curves(stamps, [prof.with_fwhm(f) for f in widths])
+        trusted = single_stars(widths, curves)
+        ys_ = np.array([s.y for s in stamps], dtype=float)
+        return [s for s, t in zip(stamps, trusted, strict=True) if t], ys_[trusted], curves[trusted]
 
-    def fit_seeing(px, py, brightness, split, prof):
-        """Seeing FWHM (or None) and the seeing table rows from isolated bright sources."""
+    # The sources (indices into the positions) the Moffat index was last
+    # fitted on: a refit on the same stars would find the same index.
+    beta_stars: dict = {}
+
+    def fit_seeing(px, py, brightness, split, prof, fit_beta=False, near=False):
+        """Seeing profile (or None) and the seeing table rows from isolated bright sources.
+
+        With ``fit_beta`` the Moffat index is fitted too (enough stars
+        given, and not the stars it was fitted on last), and the widths are
+        those at the fitted index.  With ``near`` (a refit) the widths tried
+        are the grid's 13 around ``prof.fwhm`` (+-37 %), not all 41: the
+        refit moves the seeing by a few per cent, and the 28 widths fewer
+        per star pay for the index's walk.
+        """
+        widths = fwhm_grid
+        if near:
+            k = int(np.argmin(np.abs(np.log(fwhm_grid / prof.fwhm))))
+            widths = fwhm_grid[max(k - 6, 0) : k + 7]
         usable = ~split & (brightness >= seeing_min_snr) & np.isfinite(px + py)
         # Isolated: no other source within twice the reach of a fit stamp.
-        ys_, curves = seeing_star_curves(px, py, brightness, usable, 2.0 * prof.fwhm + 2.0, prof)
+        stamps, ys_, curves = seeing_star_curves(
+            px, py, brightness, usable, 2.0 * prof.fwhm + 2.0, prof, widths
+        )
         if len(ys_) < SEEING_STARS_CROWDED:
             # A crowded field has few stars that far from every other (at
             # ~2,600 sources per megapixel, ~1 in 1,000): take the stars whose
             # fit stamp no other source's overlaps, which are fitted alone.
-            crowded = seeing_star_curves(px, py, brightness, usable, prof.fwhm, prof)
-            if len(crowded[0]) > len(ys_):
-                ys_, curves = crowded
+            crowded = seeing_star_curves(px, py, brightness, usable, prof.fwhm, prof, widths)
+            if len(crowded[1]) > len(ys_):
+                stamps, ys_, curves = crowded
         if not len(ys_):
             return None, [(0, image.shape[0], 0, np.nan)]
-        best = best_fwhm(fwhm_grid, curves)
+        best = best_fwhm(widths, curves)
+        index = {(float(a), float(b)): i for i, (a, b) in enumerate(zip(px, py, strict=True))}
+        stars = frozenset(index[float(s.x), float(s.y)] for s in stamps)
+        if fit_beta and len(ys_) >= MOFFAT_BETA_MIN_STARS and stars != beta_stars.get("ids"):
+            # A refit starts at the index fitted before, near: fine steps only.
+            refit = "ids" in beta_stars
+            beta_stars["ids"] = stars
+            fitted = best_moffat_beta(stamps, prof.with_fwhm(best), coarse=not refit)
+            log.debug("Moffat index %s from %d stars (start %.3f)", fitted, len(ys_), prof.beta)
+            # The configured index unless the stars show another: an index
+            # within the noise of it would only add the noise to the stretch's
+            # fluxes (~0.045 mag per unit of the index, FWHM 2.7 px).  A refit
+            # keeps the index in use if within the noise of it too: another
+            # index refits every group (a quarter more CPU on a stretch).
+            beta, bar = moffat_beta, np.inf
+            if fitted is not None:
+                beta, bar = fitted.beta, MOFFAT_BETA_SIGNIFICANCE * fitted.error
+                if abs(beta - moffat_beta) <= bar:
+                    beta = moffat_beta
+            if not (refit and abs(beta - prof.beta) <= bar):
+                beta_stars["fit"] = (np.nan, np.nan) if fitted is None else tuple(fitted)
+            else:
+                beta = prof.beta
+            if beta != prof.beta:
+                # The widths again at the index, over the grid's 5 widths
+                # around the best (+-12 %: the width moves 1-2 % per 0.1 of
+                # the index), which hold every band's too.
+                prof = SeeingProfile(best, prof.shape, beta)
+                k = int(np.argmin(np.abs(np.log(fwhm_grid / best))))
+                widths = fwhm_grid[max(k - 2, 0) : k + 3]
+                curves = stamp_curves(stamps, [prof.with_fwhm(f) for f in widths])
+                best = best_fwhm(widths, curves)
         rows = [(0, image.shape[0], len(ys_), best)]
         edges = np.linspace(0, image.shape[0], seeing_bands + 1).astype(int)
         for lo, hi in itertools.pairwise(edges):
             inside = (ys_ >= lo) & (ys_ < hi)
-            band = best_fwhm(fwhm_grid, curves[inside]) if inside.any() else np.nan
+            band = best_fwhm(widths, curves[inside]) if inside.any() else np.nan
             rows.append((lo, hi, int(inside.sum()), band))
-        return best, rows
+        return prof.with_fwhm(best), rows
 
     point = deconvolved
     blended = np.asarray(_deblended(segm.labels, parent))
@@ -629,9 +717,10 @@ def detect(
     del snr, segm, parent
     if single:
         var_fit = _fit_variance(var, footprints)
-    fwhm, seeing_rows = fit_seeing(cx, cy, peak, blended, profile)
-    if fwhm is not None:
-        profile = profile.with_fwhm(fwhm)
+    fitted_profile, seeing_rows = fit_seeing(cx, cy, peak, blended, profile, fit_beta)
+    if fitted_profile is not None:
+        fwhm = fitted_profile.fwhm
+        profile = fitted_profile
         if abs(fwhm - fwhm_guess) > 0.25 * fwhm_guess:  # filter far off: detect again
             filter_profile = profile
             if single:  # not held while the search runs
@@ -649,7 +738,12 @@ def detect(
             DetectWarning,
             stacklevel=2,
         )
-    log.debug("seeing FWHM %.3f px from %d stars", profile.fwhm, seeing_rows[0][2])
+    log.debug(
+        "seeing FWHM %.3f px, Moffat index %.3f, from %d stars",
+        profile.fwhm,
+        profile.beta,
+        seeing_rows[0][2],
+    )
 
     shape_cols = [cat.fwhm, cat.ellipticity, cat.orientation]
     del cat
@@ -748,12 +842,17 @@ def detect(
                 # their first fits are those the joint refit would give them again
                 # (their groups are unchanged); the new sources, all flagged as split
                 # off, only bar their neighbours.
-                again, rows = fit_seeing(cx, cy, bright, blended, profile)
-                log.debug("seeing FWHM refitted: %s px", again)
+                # The Moffat index too, if these are other stars than the first's
+                # (stars hiding a companion, or a pair along the smear, fit with
+                # heavier wings: on a scene of such pairs and 8 single stars the
+                # first fit gave 2.58 where the stars' index is ~3.45).
+                again, rows = fit_seeing(cx, cy, bright, blended, profile, fit_beta, near=True)
+                log.debug("seeing FWHM refitted: %s px", again and again.fwhm)
                 if again is not None:
                     seeing_rows = rows
-                    if abs(again - profile.fwhm) > 0.003 * profile.fwhm:
-                        profile = profile.with_fwhm(again)
+                    moved = abs(again.fwhm - profile.fwhm) > 0.003 * profile.fwhm
+                    if moved or again.beta != profile.beta:
+                        profile = again
                 members, fits_ = fit_all(cx, cy, blended)
                 # A source found only in the image minus the models must stand on
                 # its own after the joint refit (residuals of a neighbour's imperfect
@@ -847,7 +946,11 @@ def detect(
     catalog = _catalog(values, radii, x.size)
     catalog.meta["seeing_fwhm"] = float(profile.fwhm)
     catalog.meta["seeing_shape"] = seeing_shape
-    return DetectResult(catalog, _seeing_table(seeing_rows))
+    beta_used = float(profile.beta) if seeing_shape == "moffat" else np.nan
+    if seeing_shape == "moffat":
+        catalog.meta["seeing_beta"] = beta_used
+    fit = beta_stars.get("fit", (np.nan, np.nan))
+    return DetectResult(catalog, _seeing_table(seeing_rows, beta_used, fit))
 
 
 #: Largest fraction of the bright sources (S/N >= 50) flagged UNRESOLVED for
@@ -1354,6 +1457,11 @@ STAGE = Stage(
     #     is no data and no footprint: the stars beside it are found one by
     #     one, not merged into one source fitted on nothing (products without
     #     such a column unchanged)
-    version=16,
+    # 17: the seeing's Moffat index fitted per stretch (refitted with the
+    #     seeing when the refit takes other stars) and used in the fits when
+    #     3 errors off moffat_beta (seeing table columns beta, beta_fit,
+    #     beta_err); the refit tries the 13 grid widths around the first fit's
+    #     FWHM instead of all 41
+    version=17,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
