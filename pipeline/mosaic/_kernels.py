@@ -215,6 +215,7 @@ def carried_kernels(
     sum_box2 = np.zeros(x.size)
     sum_phase = np.zeros((2, x.size), complex)  # lattice offsets on the unit circle
     sum_step = np.zeros((2, x.size))
+    with_response = np.zeros(x.size)  # the weights of the products that record a response
     boxed = False
     total = np.zeros(x.size)
     nights = list(dict.fromkeys(p.night for p in products))
@@ -231,6 +232,7 @@ def carried_kernels(
                 sum_box2[use] += weight * box[use] ** 2
                 sum_phase[:, use] += weight * np.exp(2j * np.pi * lattice[:2, use])
                 sum_step[:, use] += weight * lattice[2:, use]
+                with_response[use] += weight
                 boxed = True
             total[use] += weight
             taken |= inside
@@ -245,7 +247,11 @@ def carried_kernels(
     response = {}
     if boxed:
         offsets = np.mod(np.angle(sum_phase[:, keep]) / (2.0 * np.pi), 1.0)
-        steps = sum_step[:, keep] / total[keep]
+        # (where no product records one, step 1 and offset 0: a model without taps)
+        recorded = with_response[keep] > 0
+        steps = np.where(
+            recorded, sum_step[:, keep] / np.where(recorded, with_response[keep], 1.0), 1.0
+        )
         response = {
             "lattice_x": offsets[0],
             "lattice_y": offsets[1],
