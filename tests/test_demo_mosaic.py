@@ -270,11 +270,13 @@ def test_the_tile_catalogues_against_the_truth(demo):
     (pipeline.mosaic._kernels).  Positions: the issue's 0.05 px rms (50 mas
     at 1 arcsec a pixel) on each axis (measured 8-13 mas); the mean Dec
     within 10 mas: the nights' frames are held to 5 mas above and the mean
-    of ~30-50 stars of ~10 mas each to ~2 mas (measured +2.9 to +3.5 mas;
-    round profiles, blind to the bow across the scan, gave -140 to -175 mas,
+    of ~30-50 stars of ~10 mas each to ~2 mas (measured -1.5 to +1.6 mas,
+    +2.9 to +3.5 before the tiles' model held rectify's cubic taps; round
+    profiles, blind to the bow across the scan, gave -140 to -175 mas,
     the bow turned the wrong way +290 mas).  Magnitudes: the median within
-    the issue's 0.5 % in flux, 0.0054 mag (measured -0.0036, +0.0004,
-    +0.0018; -0.0046, +0.0006, +0.0002 before detect's BLENDED flags were
+    the issue's 0.5 % in flux, 0.0054 mag (measured -0.0011, +0.0010,
+    -0.0026; -0.0036, +0.0004, +0.0018 without rectify's taps on the tiles;
+    -0.0046, +0.0006, +0.0002 before detect's BLENDED flags were
     mended, when the nights' own catalogues gave -0.007 to +0.012 on the same
     stars and the tiles differed from the nights' mean by -0.0021 to
     +0.0041.  Then, with the seeing mix's variance alone, not the

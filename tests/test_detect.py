@@ -2058,7 +2058,10 @@ def test_residual_quadrupole_is_its_documented_sums():
     assert elongation == pytest.approx(np.hypot(*e) / second, rel=1e-10)
 
 
-@pytest.mark.parametrize("response", [None, _model.Response(0.3, 0.7, 0.9)])
+@pytest.mark.parametrize(
+    "response",
+    [None, _model.Response(0.3, 0.7, 0.9), _model.Response(0.3, 0.7, 0.9, -0.52, 0.52)],
+)
 def test_model_image_is_the_numpy_model(response):
     # Self-consistency: model_image runs compiled; _model._unit_model (numpy)
     # is the reference the fits' Python loop uses.

@@ -27,12 +27,24 @@ spreads a star over a top-hat of one strip row along the scan (rectify's
 ``row_step``), which detect models on a night.  It is carried too: the
 top-hat turned into tile pixels (``row_step`` times the Jacobian's x scale,
 along the tile's x: the nights are turned by about a degree, which puts
-under 2 % of it across), as the tile's ``row_step``, with lattice offsets 0
-(no cubic interpolation at the tile's pixels; rectify's, at the night's
-lattice offsets, moves a tile star's flux by < 0.1 %, measured, and is not
-carried).  Left out, the demo's tiles, whose nights' kernels are short near
-the chip's centre, fit their stars 0.5 to 1 % too bright: the fitted width
-grows by 1 to 5 % to take the top-hat in, the profile's shape does not.
+under 2 % of it across), as the tile's ``row_step``.  Left out, the demo's
+tiles, whose nights' kernels are short near the chip's centre, fit their
+stars 0.5 to 1 % too bright: the fitted width grows by 1 to 5 % to take the
+top-hat in, the profile's shape does not.
+
+So is rectify's cubic interpolation of the strip at the night's lattice
+offsets (detect's :class:`~pipeline.stages.detect._model.Response`): its
+four taps, a rectified pixel apart, are a tile pixel's ``step`` (the
+Jacobian's diagonal, signed: the east axis flips) apart on the tile, and
+the tile's ``lattice_x``, ``lattice_y``, ``lattice_step_x`` and
+``lattice_step_y`` hold them.  The taps keep a star's first moment but not
+its symmetry (at offsets other than 0 and 1/2), so a model without them
+fits the centre off the first moment the WCS maps: the demo's nights'
+offsets drift by -0.12 px per 1024 columns along the scan, and its tiles'
+positions came out 3.5 mas per tile further east (-3.2, +0.6, +3.7 mas on
+three tiles against the nights' own).  Nights of one strip are clocked alike
+(the demo's offsets agree to 0.003 px at a sky position): the tile's
+offsets are the nights' circular mean with the co-add's weights.
 
 The seeing of a co-added star is the nights' seeing profiles added with the
 co-add's weights, not one profile of the family: a single Moffat fitted to
@@ -102,6 +114,10 @@ def _product_kernels(product, tile: Tile, x: np.ndarray, y: np.ndarray, n_sample
     box : ndarray, shape (n,) or None
         The clocking top-hat's length along the tile's x, tile pixels (0
         where ``inside`` is False); None if the product records none.
+    lattice : ndarray, shape (4, n) or None
+        Rectify's lattice offsets along the night's x and y (rectified
+        pixels, in [0, 1)) and tile pixels per rectified pixel along the
+        tile's x and y (signed); None with ``box``.
     """
     n_y, n_x = product.image.shape
     px, py = _night_pixels(tile, product.wcs, x, y)
@@ -113,7 +129,7 @@ def _product_kernels(product, tile: Tile, x: np.ndarray, y: np.ndarray, n_sample
     dx = np.zeros((x.size, n_samples))
     dy = np.zeros((x.size, n_samples))
     if product.smear_kernels is None or not idx.size:
-        return dx, dy, inside, None
+        return dx, dy, inside, None, None
     # Jacobian of product pixels over tile pixels, by central differences, inverted:
     # it carries an offset in the product's pixels into the tile's.
     d_x = (
@@ -133,10 +149,16 @@ def _product_kernels(product, tile: Tile, x: np.ndarray, y: np.ndarray, n_sample
     dy[idx] = carry[:, 1, 0, None] * kx + carry[:, 1, 1, None] * ky
     steps = grid.row_steps(px[idx], py[idx])
     if steps is None:
-        return dx, dy, inside, None
+        return dx, dy, inside, None, None
     box = np.zeros(x.size)
     box[idx] = steps * np.abs(carry[:, 0, 0])  # one strip row along the night's x, in tile px
-    return dx, dy, inside, box
+    lattice = np.zeros((4, x.size))
+    responses = grid.responses(px[idx], py[idx])
+    lattice[0, idx] = [r.lattice_x for r in responses]
+    lattice[1, idx] = [r.lattice_y for r in responses]
+    # a rectified pixel along the night's x (y) in tile pixels along the tile's x (y)
+    lattice[2, idx], lattice[3, idx] = carry[:, 0, 0], carry[:, 1, 1]
+    return dx, dy, inside, box, lattice
 
 
 def carried_kernels(
@@ -170,8 +192,11 @@ def carried_kernels(
         ``(n, K)``, zero mean, tile pixels), ``length`` and ``bow``; where
         the products record it, ``row_step`` (the clocking top-hat along x,
         tile pixels: the root of the nights' weighted mean square) with
-        ``lattice_x`` and ``lattice_y`` 0 (the tile's pixels interpolate no
-        strip lattice).  None if no product has kernels (round stars).
+        ``lattice_x`` and ``lattice_y`` (rectify's lattice offsets, the
+        nights' weighted circular mean, rectified pixels) and
+        ``lattice_step_x`` and ``lattice_step_y`` (tile pixels per rectified
+        pixel, signed, weighted mean).  None if no product has kernels
+        (round stars).
     """
     weights = np.ones(len(products)) if weights is None else np.asarray(weights, float)
     if weights.shape != (len(products),) or not np.all(weights >= 0):
@@ -188,6 +213,9 @@ def carried_kernels(
     sum_x = np.zeros((x.size, n_samples))
     sum_y = np.zeros((x.size, n_samples))
     sum_box2 = np.zeros(x.size)
+    sum_phase = np.zeros((2, x.size), complex)  # lattice offsets on the unit circle
+    sum_step = np.zeros((2, x.size))
+    with_response = np.zeros(x.size)  # the weights of the products that record a response
     boxed = False
     total = np.zeros(x.size)
     nights = list(dict.fromkeys(p.night for p in products))
@@ -196,12 +224,15 @@ def carried_kernels(
         for product, weight in zip(products, weights, strict=True):
             if product.night != night:
                 continue
-            dx, dy, inside, box = _product_kernels(product, tile, x, y, n_samples)
+            dx, dy, inside, box, lattice = _product_kernels(product, tile, x, y, n_samples)
             use = inside & ~taken
             sum_x[use] += weight * dx[use]
             sum_y[use] += weight * dy[use]
             if box is not None:
                 sum_box2[use] += weight * box[use] ** 2
+                sum_phase[:, use] += weight * np.exp(2j * np.pi * lattice[:2, use])
+                sum_step[:, use] += weight * lattice[2:, use]
+                with_response[use] += weight
                 boxed = True
             total[use] += weight
             taken |= inside
@@ -211,14 +242,22 @@ def carried_kernels(
     dx = sum_x[keep] / total[keep, None]
     dy = sum_y[keep] / total[keep, None]
     # The nights' top-hats mixed with their weights: one top-hat of their mean
-    # variance (they differ by < 1e-3 of a row between nights of one strip).
+    # variance (they differ by < 1e-3 of a row between nights of one strip);
+    # their lattice offsets' circular mean and their steps' mean.
     response = {}
     if boxed:
-        zero = np.zeros(int(keep.sum()))
+        offsets = np.mod(np.angle(sum_phase[:, keep]) / (2.0 * np.pi), 1.0)
+        # (where no product records one, step 1 and offset 0: a model without taps)
+        recorded = with_response[keep] > 0
+        steps = np.where(
+            recorded, sum_step[:, keep] / np.where(recorded, with_response[keep], 1.0), 1.0
+        )
         response = {
-            "lattice_x": zero,
-            "lattice_y": zero,
+            "lattice_x": offsets[0],
+            "lattice_y": offsets[1],
             "row_step": np.sqrt(sum_box2[keep] / total[keep]),
+            "lattice_step_x": steps[0],
+            "lattice_step_y": steps[1],
         }
     table = kernel_table(
         x[keep],
@@ -229,8 +268,9 @@ def carried_kernels(
         "TDI smear kernel of a co-added star: the nights' recorded kernels carried into "
         "tile pixels and averaged with the co-add's weights (equal-time samples relative "
         "to their mean; a star's image is the seeing averaged over them); row_step: the "
-        "nights' TDI clocking top-hat along x, tile pixels (lattice offsets 0: the tile's "
-        "pixels interpolate no strip lattice).",
+        "nights' TDI clocking top-hat along x, tile pixels; lattice_x, lattice_y: rectify's "
+        "lattice offsets (rectified px) and lattice_step_x, lattice_step_y: tile px per "
+        "rectified px, signed (its cubic interpolation's taps on the tile).",
         **response,
     )
     log.debug(

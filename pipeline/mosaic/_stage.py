@@ -97,7 +97,9 @@ TILE_STAGE = Stage(
     # its pixels (a cubic B-spline), which the catalogue's seeing mix holds;
     # 6: ra_err/dec_err hold the nights' astrometric errors (CSYER1/2) as co-added;
     # 7: FLAGS' NIGHT_LEFT_OUT where a night with data was left out (and
-    # within source_radius of a rejection), which the catalogue's flags see
-    version=7,
+    # within source_radius of a rejection), which the catalogue's flags see;
+    # 8: the catalogue's model holds rectify's cubic taps at the nights'
+    # lattice offsets (smear_kernels' lattice_*): positions at the first moment
+    version=8,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )

@@ -108,9 +108,67 @@ def _taps(first, lattice, box):
 
 
 @njit(nogil=True)
+def _rows_stepped(
+    first, n, centres, sigmas, weights, lattice, box, step, erf_table, gauss_table, transpose,
+    derivatives,
+):  # fmt: skip
+    """:func:`_rows` on an image resampled from the rectified one (a mosaic tile).
+
+    ``step`` of its pixels per rectified pixel (signed): each Keys tap is
+    the profile on the grid shifted by ``step`` times the tap's rectified
+    distance (:class:`~pipeline.stages.detect._model.Response`), summed in
+    the numpy model's order.
+    """
+    n_samples = centres.size
+    rows = sigmas.size * n_samples
+    stride = n + 1
+    acc_v = np.zeros(0)
+    acc_d = np.zeros(0)
+    started = False
+    for e in range(5):
+        w = _keys(e - 2.0 + lattice)
+        if w == 0.0:
+            continue
+        start = first + step * (e - 2.0 + lattice)
+        if box > 0.0:
+            v, d, stride = boxed_flat(
+                start, n, centres, sigmas, box, erf_table, gauss_table, derivatives
+            )
+        else:
+            v, d, stride = profiles_flat(
+                start, n, centres, sigmas, erf_table, gauss_table, derivatives
+            )
+        width = rows * stride
+        flat_v = v.reshape(width)
+        flat_d = d.reshape(width if derivatives else 0)
+        if not started:
+            acc_v = np.zeros(width)
+            acc_d = np.zeros(width if derivatives else 0)
+            started = True
+        for q in range(width):
+            acc_v[q] += w * flat_v[q]
+        if derivatives:
+            for q in range(width):
+                acc_d[q] += w * flat_d[q]
+    return _laid_out(acc_v, acc_d, stride, n, weights, n_samples, sigmas.size, transpose)
+
+
+@njit(nogil=True)
+def _laid_out(acc_v, acc_d, stride, n, weights, n_samples, n_sigmas, transpose):
+    """The summed profiles (rows ``stride`` apart) as :func:`_rows` returns them."""
+    rows = n_sigmas * n_samples
+    with_d = acc_d.size > 0
+    if transpose:
+        return _columns(acc_v, stride, n, rows), _columns(acc_d, stride, n, rows if with_d else 0)
+    out_v = _scaled_rows(acc_v, stride, n, weights, n_samples, n_sigmas)
+    out_d = _scaled_rows(acc_d, stride, n, weights, n_samples, n_sigmas if with_d else 0)
+    return out_v, out_d
+
+
+@njit(nogil=True)
 def _rows(
     first, n, centres, sigmas, weights, lattice, box, erf_table, gauss_table, transpose,
-    derivatives=True,
+    derivatives=True, step=1.0,
 ):  # fmt: skip
     """Profiles as rectify samples them, laid out for the model's matrix products.
 
@@ -120,7 +178,14 @@ def _rows(
     (:func:`~pipeline.stages.detect._model._sampled_profiles` times
     ``weights / K``), so equal to it to the bit.  ``derivatives`` False:
     the derivatives' rows are left out (shape (0, 0)), for a model alone.
+    ``step`` other than 1: the grid is an image resampled from the
+    rectified one (:func:`_rows_stepped`).
     """
+    if step != 1.0 and lattice >= 0.0:
+        return _rows_stepped(
+            first, n, centres, sigmas, weights, lattice, box, step, erf_table, gauss_table,
+            transpose, derivatives,
+        )  # fmt: skip
     start, extra, taps, shifts = _taps(first, lattice, box)
     if box > 0.0:
         v, d, stride = boxed_flat(
@@ -159,13 +224,7 @@ def _rows(
                 from_d = flat_d[shifts[t] :]
                 for q in range(span):
                     acc_d[q] += w * from_d[q]
-    if transpose:
-        out_v = _columns(acc_v, stride, n, rows)
-        out_d = _columns(acc_d, stride, n, rows if derivatives else 0)
-        return out_v, out_d
-    out_v = _scaled_rows(acc_v, stride, n, weights, n_samples, sigmas.size)
-    out_d = _scaled_rows(acc_d, stride, n, weights, n_samples, sigmas.size if derivatives else 0)
-    return out_v, out_d
+    return _laid_out(acc_v, acc_d, stride, n, weights, n_samples, sigmas.size, transpose)
 
 
 @njit(nogil=True)
@@ -227,11 +286,12 @@ def _unit(
     """
     a, da = _rows(
         x_first, nx, x0 + dx, sigmas, weights, response[0], response[2], erf_table, gauss_table,
-        False,
+        False, True, response[3],
     )  # fmt: skip
     bt, dbt = _rows(
-        y_first, ny, y0 + dy, sigmas, weights, response[1], 0.0, erf_table, gauss_table, True
-    )
+        y_first, ny, y0 + dy, sigmas, weights, response[1], 0.0, erf_table, gauss_table, True,
+        True, response[4],
+    )  # fmt: skip
     return np.dot(bt, a), np.dot(bt, da), np.dot(dbt, a)
 
 
@@ -242,11 +302,11 @@ def model_compiled(
     """The unit model of :func:`_unit` alone, without its derivatives, shape (ny, nx)."""
     a, _ = _rows(
         x_first, nx, x0 + dx, sigmas, weights, response[0], response[2], erf_table, gauss_table,
-        False, False,
+        False, False, response[3],
     )  # fmt: skip
     bt, _ = _rows(
         y_first, ny, y0 + dy, sigmas, weights, response[1], 0.0, erf_table, gauss_table, True,
-        False,
+        False, response[4],
     )  # fmt: skip
     return np.dot(bt, a)
 
@@ -325,9 +385,10 @@ def fit_compiled(
         Star ``s``'s samples are ``[bounds[s], bounds[s + 1])``.
     sigmas, weights, erf, gauss : ndarray
         The profile's mixture and the profile tables.
-    responses : ndarray, shape (n, 3)
-        Per star, rectify's lattice offsets along x and y and the row step
-        (-1, -1, 0: neither resampling nor clocking top-hat).
+    responses : ndarray, shape (n, 5)
+        Per star, rectify's lattice offsets along x and y, the row step and
+        the image's pixels per rectified pixel along x and y (-1, -1, 0, 1,
+        1: neither resampling nor clocking top-hat).
     max_evaluations : int
         Most model evaluations after the start (``fit_stars``'
         ``max_evaluations``); a fit that has not converged by then ends with
