@@ -73,6 +73,7 @@ __all__ = [
     "FLAGS_EXTENSION",
     "FLUX_EXTENSION",
     "NIGHT_ZERO_POINT_KEY",
+    "SEEING_INDEX_KEY",
     "SEEING_KEY",
     "VARIANCE_EXTENSION",
     "ZERO_POINT_ERROR_KEY",
@@ -108,6 +109,10 @@ ZERO_POINT_ERROR_KEY = "ZPERR"
 ZERO_POINT_FLAGS_KEY = "ZPFLAGS"
 #: Nominal seeing FWHM of the stretch, arcsec.
 SEEING_KEY = "SEEING"
+#: Moffat index of the seeing profile detect fitted the stretch's stars with
+#: (its seeing table's ``beta``); absent for a Gaussian seeing.  Our own
+#: keyword: no FITS standard or convention we know of defines it otherwise.
+SEEING_INDEX_KEY = "SEEBETA"
 #: Keyword prefix of the flag-bit definitions: ``FLAGBITn``, ``n`` the bit's
 #: number as one hexadecimal digit (``FLAGBIT0`` ... ``FLAGBIT9``, ``FLAGBITA``
 #: for bit 10 ... ``FLAGBITF``), so that every one of a uint16 mask's bits fits

@@ -271,7 +271,9 @@ def _kernels(stretch: int) -> Table:
     return Table({"x": x, "y": [0.0, 200.0, 0.0, 200.0], "dx": dx, "dy": np.zeros_like(dx)})
 
 
-def _science(stretch, zero_point_mag, flags=0, interpolated=False, fwhm=2.5, product="image"):
+def _science(
+    stretch, zero_point_mag, flags=0, interpolated=False, fwhm=2.5, product="image", beta=None
+):
     grid = QTable(
         {
             "t": [-100.0, 2000.0] * u.s,
@@ -306,6 +308,8 @@ def _science(stretch, zero_point_mag, flags=0, interpolated=False, fwhm=2.5, pro
     # A star of magnitude 15 recorded at Z = 24 over 10 s: 10 * 10**(0.4 * 9) e-.
     flux = EXPOSURE * 10 ** (0.4 * (zero_point_mag - STAR_MAG))
     seeing = Table({"fwhm": [fwhm] * u.pix})
+    if beta is not None:  # detect's Moffat index (NaN: a Gaussian seeing); None: not recorded
+        seeing["beta"] = [beta]
     return science.STAGE.run(
         inputs={
             "ingest": {BLOCK_INDEX: block_index()},
@@ -366,6 +370,19 @@ def test_a_stretch_without_a_seeing_fit_has_no_seeing_card():
     """Detect found no star to fit the seeing with (NaN): the image is still written."""
     hdul = _science(1, 24.0, fwhm=np.nan)
     assert "SEEING" not in hdul["FLUX"].header and "PHOTZP" in hdul["FLUX"].header
+
+
+def test_the_science_product_carries_the_moffat_index_detect_used():
+    """Self-consistency: SEEBETA is the seeing table's ``beta``, for the mosaic's seeing mix."""
+    hdul = _science(1, 24.0, beta=3.0)
+    for hdu in hdul:  # on the primary header and every plane's, as SEEING
+        assert hdu.header["SEEBETA"] == 3.0
+    # an index fitted to no round number is carried as it is
+    assert _science(1, 24.0, beta=3.1234567891)["FLUX"].header["SEEBETA"] == 3.1234567891
+    # a Gaussian seeing (beta NaN) has no index; nor a table that does not record one
+    for beta in (np.nan, None):
+        header = _science(1, 24.0, beta=beta)["FLUX"].header
+        assert "SEEBETA" not in header and "SEEING" in header
 
 
 def _stand_in(name, scope, requires=(), defines_rows=False):

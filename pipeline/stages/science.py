@@ -29,6 +29,11 @@ in :mod:`pipeline.products`, for this stage and the mosaic that reads them):
     whether its zero point was bridged from its neighbours.
 ``SEEING``
     Nominal seeing FWHM of the stretch (detect's fit), arcsec.
+``SEEBETA``
+    Moffat index of the seeing profile detect fitted the stretch's stars
+    with (its seeing table's ``beta``: fitted, or the configured
+    ``moffat_beta``); absent for a Gaussian seeing.  The mosaic mixes each
+    night's profile with it.
 ``CSYER1``, ``CSYER2``
     With the solved WCS: the astrometric solution's own error over the
     stretch, deg of RA and Dec (the FITS WCS systematic error; see
@@ -53,6 +58,7 @@ from pipeline.products import (
     FLAGS_EXTENSION,
     FLUX_EXTENSION,
     NIGHT_ZERO_POINT_KEY,
+    SEEING_INDEX_KEY,
     SEEING_KEY,
     VARIANCE_EXTENSION,
     ZERO_POINT_ERROR_KEY,
@@ -67,7 +73,7 @@ from pipeline.stages.zeropoint import column_times, night_line_time, scale_to_ze
 if TYPE_CHECKING:
     from astropy.io import fits
 
-__all__ = ["STAGE", "ScienceOptions", "calibrate_image", "replace_wcs"]
+__all__ = ["STAGE", "ScienceOptions", "calibrate_image", "replace_wcs", "seeing_index"]
 
 log = logging.getLogger(__name__)
 
@@ -181,6 +187,27 @@ def _values(table, name: str) -> np.ndarray:
     return np.asarray(getattr(column, "value", column), dtype=float)
 
 
+def seeing_index(seeing) -> float | None:
+    """The Moffat index detect fitted a stretch's stars with, from its seeing table.
+
+    Parameters
+    ----------
+    seeing : astropy.table.Table
+        Detect's ``seeing`` product: ``beta``, one value per stretch (every
+        row the same).
+
+    Returns
+    -------
+    float or None
+        The index (dimensionless); None for a Gaussian seeing (``beta``
+        NaN) or a table of a detect that did not record it (no ``beta``).
+    """
+    if "beta" not in seeing.colnames or len(seeing) == 0:
+        return None
+    beta = float(_values(seeing, "beta")[0])
+    return beta if np.isfinite(beta) else None
+
+
 def _run(*, inputs, options: ScienceOptions, context) -> dict:
     from astropy import units as u
     from astropy.io import fits
@@ -236,6 +263,9 @@ def _run(*, inputs, options: ScienceOptions, context) -> dict:
         cards.append(
             (SEEING_KEY, round(fwhm_px * scale, 3), "[arcsec] nominal seeing FWHM (detect)")
         )
+    beta = seeing_index(seeing)
+    if beta is not None:
+        cards.append((SEEING_INDEX_KEY, beta, "Moffat index of the seeing detect used"))
 
     hdul = fits.HDUList([rectified[0].copy()])
     for name, data in (
@@ -267,7 +297,8 @@ STAGE = Stage(
     scope="stretch",
     uses=("camera.tdi_rows",),
     # 2: the ZPMED card, by which the mosaic compares transparency; 3: rectify's
-    # smear kernels beside the image, for the mosaic's tile catalogues
-    version=3,
+    # smear kernels beside the image, for the mosaic's tile catalogues;
+    # 4: the SEEBETA card (detect's Moffat index), which the mosaic's seeing mix uses
+    version=4,
     description="Calibrated images at one fixed zero point, with the solved WCS.",
 )
