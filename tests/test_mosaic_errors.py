@@ -118,7 +118,7 @@ def measured():
 
 def _expected_offset(built) -> float:
     """The co-add's zero point offset: the nights' offsets put in, mean with its weights."""
-    weights = np.array([w for _, w, _ in built.seeing])
+    weights = np.array([night[1] for night in built.seeing])
     offsets = np.array([n[4] for n in NIGHTS])
     return float(np.sum(weights * offsets) / weights.sum())
 
@@ -162,7 +162,7 @@ def test_bright_star_magnitude_errors_hold_the_nights_zero_point_errors(measured
     built, catalog, flux = measured
     bright = flux == BRIGHT
     assert bright.sum() > 25  # 37: the rest split or flagged UNRESOLVED at this S/N
-    weights = np.array([w for _, w, _ in built.seeing])
+    weights = np.array([night[1] for night in built.seeing])
     declared = np.array([n[5] for n in NIGHTS])
     # the error of a weighted mean of independent errors (common practice)
     expected = np.sqrt(np.sum((weights * declared) ** 2)) / weights.sum()
@@ -194,7 +194,7 @@ def test_bright_star_position_errors_hold_the_nights_astrometric_errors(measured
     """
     built, catalog, flux = measured
     bright = flux == BRIGHT
-    weights = np.array([w for _, w, _ in built.seeing])
+    weights = np.array([night[1] for night in built.seeing])
     put_in = np.array([POSITIONS[n[0]] for n in NIGHTS])
     # the error of a weighted mean of independent errors (common practice)
     declared = np.sqrt(np.sum((weights * put_in[:, 2]) ** 2)) / weights.sum() / 1e3

@@ -374,9 +374,12 @@ def test_a_stretch_without_a_seeing_fit_has_no_seeing_card():
 
 def test_the_science_product_carries_the_moffat_index_detect_used():
     """Self-consistency: SEEBETA is the seeing table's ``beta``, for the mosaic's seeing mix."""
+    from pipeline.mosaic import night_image_from_hdulist
+
     hdul = _science(1, 24.0, beta=3.0)
     for hdu in hdul:  # on the primary header and every plane's, as SEEING
         assert hdu.header["SEEBETA"] == 3.0
+    assert night_image_from_hdulist(hdul, "n1").seeing_beta == 3.0
     # an index fitted to no round number is carried as it is
     assert _science(1, 24.0, beta=3.1234567891)["FLUX"].header["SEEBETA"] == 3.1234567891
     # a Gaussian seeing (beta NaN) has no index; nor a table that does not record one

@@ -70,6 +70,7 @@ from pipeline.products import (
     FLAGS_EXTENSION,
     FLUX_EXTENSION,
     NIGHT_ZERO_POINT_KEY,
+    SEEING_INDEX_KEY,
     SEEING_KEY,
     VARIANCE_EXTENSION,
     ZERO_POINT_ERROR_KEY,
@@ -132,6 +133,11 @@ class NightImage:
         and declination, arcsec: the night's astrometric solution's own
         error, which every star on the product shares (the astrometry
         stage's ``CSYER1``, ``CSYER2``); 0: unknown or exact.
+    seeing_beta : float or None
+        Moffat index of the seeing profile the night's detect used (the
+        science stage's ``SEEBETA``); None: unknown (a Gaussian seeing, or a
+        product of a science stage before it wrote the card), the tile's
+        configured ``moffat_beta`` stands in.
     """
 
     image: np.ndarray
@@ -146,6 +152,7 @@ class NightImage:
     smear_kernels: Table | None = None
     zero_point_error: float = 0.0
     position_error: tuple[float, float] = (0.0, 0.0)
+    seeing_beta: float | None = None
 
     @property
     def transparency_zero_point(self) -> float:
@@ -161,7 +168,7 @@ def night_image_from_hdulist(
     ----------
     hdul : astropy.io.fits.HDUList
         The product (:func:`pipeline.products.image_hdulist` layout) with
-        ``PHOTZP`` and optionally ``ZPMED``, ``ZPERR``, ``SEEING`` and
+        ``PHOTZP`` and optionally ``ZPMED``, ``ZPERR``, ``SEEING``, ``SEEBETA`` and
         ``NOISECOR``, ``CSYER1``, ``CSYER2`` on its FLUX plane: the science
         stage's calibrated product (the keywords:
         :data:`pipeline.products.ZERO_POINT_KEY` and its neighbours; the
@@ -214,6 +221,7 @@ def night_image_from_hdulist(
         smear_kernels=smear_kernels,
         zero_point_error=float(header.get(ZERO_POINT_ERROR_KEY, 0.0)),
         position_error=_wcs_error_on_sky(header, wcs, image.shape),
+        seeing_beta=float(header[SEEING_INDEX_KEY]) if SEEING_INDEX_KEY in header else None,
     )
 
 
@@ -602,10 +610,12 @@ class MosaicTile:
         The smear kernel of a co-added star on nodes of the tile, in tile
         pixels (:func:`~pipeline.mosaic._kernels.carried_kernels`); None:
         round stars.
-    seeing : tuple of (float, float, float)
-        ``(FWHM arcsec, weight, pixel arcsec)`` of each night co-added whose
-        seeing is known: a star's seeing is their mix
-        (:class:`~pipeline.mosaic._kernels.SeeingMix`).
+    seeing : tuple of (float, float, float, float)
+        ``(FWHM arcsec, weight, pixel arcsec, Moffat index)`` of each night
+        co-added whose seeing is known: a star's seeing is their mix
+        (:class:`~pipeline.mosaic._kernels.SeeingMix`).  The index is the
+        one the night's detect used (``NightImage.seeing_beta``), NaN where
+        unknown (the configured ``moffat_beta`` stands in).
     zero_point_error : float
         1-sigma error of ``zero_point`` as the co-add inherits it, mag
         (:func:`_coadded_error`); 0: the nights' are unknown.
@@ -623,7 +633,7 @@ class MosaicTile:
     noise_correlation: float
     excluded: dict[int, str] = field(default_factory=dict)
     smear_kernels: Table | None = None
-    seeing: tuple[tuple[float, float, float], ...] = ()
+    seeing: tuple[tuple[float, float, float, float], ...] = ()
     zero_point_error: float = 0.0
     position_error: tuple[float, float] = (0.0, 0.0)
 
@@ -772,6 +782,7 @@ def mosaic_tile(
         images, variances, flags = images[reached], variances[reached], flags[reached]
     planes = [p for p in planes if p is not None]
     seeing = {p.night: p.seeing for p in kept}
+    seeing_beta = {p.night: p.seeing_beta for p in kept}
     pixel = {p.night: pixel_arcsec(p.wcs, p.image.shape) for p in kept}
     scale = np.ones(len(planes))
     if options.weight_by_seeing:
@@ -841,7 +852,12 @@ def mosaic_tile(
             for axis in (0, 1)
         ),
         seeing=tuple(
-            (float(seeing[night]), float(night_weight[night]), pixel[night])
+            (
+                float(seeing[night]),
+                float(night_weight[night]),
+                pixel[night],
+                np.nan if seeing_beta[night] is None else float(seeing_beta[night]),
+            )
             for night in (p[0] for p in planes)
             if seeing[night] is not None and night_weight[night] > 0
         ),

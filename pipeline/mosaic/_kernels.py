@@ -358,18 +358,24 @@ class SeeingMix(SeeingProfile):
     fwhm : float
         Width of the mix, pixels: the fraction-weighted mean of the nights' FWHMs.
     shape, beta
-        The family (see :class:`~pipeline.stages.detect.SeeingProfile`).
+        The family (see :class:`~pipeline.stages.detect.SeeingProfile`);
+        ``beta``, the Moffat index of every night without one in ``betas``
+        (as a summary, :meth:`of_nights` makes it the nights' mean).
     widths : tuple of float
         Each night's FWHM over ``fwhm`` (kept by :meth:`with_fwhm`).
     fractions : tuple of float
         Each night's share of a star's light (the co-add's weights), summing to 1.
     pixels : tuple of float
         Each night's pixel over the tile's (1: no narrowing).
+    betas : tuple of float
+        Each night's Moffat index, the one its detect used (NaN: ``beta``);
+        empty: ``beta`` for every night.  Ignored for a Gaussian family.
     """
 
     widths: tuple[float, ...] = (1.0,)
     fractions: tuple[float, ...] = (1.0,)
     pixels: tuple[float, ...] = (1.0,)
+    betas: tuple[float, ...] = ()
 
     def __post_init__(self) -> None:
         super().__post_init__()
@@ -377,6 +383,11 @@ class SeeingMix(SeeingProfile):
             raise ValueError(
                 "widths, fractions and pixels must be one number per night; got "
                 f"{self.widths!r}, {self.fractions!r} and {self.pixels!r}."
+            )
+        if self.betas and len(self.betas) != len(self.widths):
+            raise ValueError(
+                f"betas must be one Moffat index per night ({len(self.widths)}) or none; "
+                f"got {self.betas!r}."
             )
 
     @classmethod
@@ -387,11 +398,23 @@ class SeeingMix(SeeingProfile):
         pixels: Sequence[float],
         shape: str,
         beta: float,
+        betas: Sequence[float] | None = None,
     ) -> SeeingMix:
-        """The mix of nights of FWHMs ``fwhms`` and pixels ``pixels`` (tile pixels), weighted."""
+        """The mix of nights of FWHMs ``fwhms`` and pixels ``pixels`` (tile pixels), weighted.
+
+        ``betas``: each night's Moffat index (NaN or None: ``beta``, e.g. a
+        night whose product does not record it); the mix's own ``beta`` is
+        then their mean with the nights' shares, a summary for the
+        catalogue (the model uses each night's).
+        """
         fwhms, weights = np.asarray(fwhms, float), np.asarray(weights, float)
         fractions = weights / weights.sum()
         fwhm = float(np.sum(fractions * fwhms))
+        own: tuple[float, ...] = ()
+        if betas is not None and shape == "moffat":
+            known = np.asarray([np.nan if b is None else b for b in betas], float)
+            own = tuple(float(b) for b in np.where(np.isfinite(known), known, beta))
+            beta = float(np.sum(fractions * np.asarray(own)))
         return cls(
             fwhm,
             shape,
@@ -399,13 +422,17 @@ class SeeingMix(SeeingProfile):
             tuple(float(f) for f in fwhms / fwhm),
             tuple(float(f) for f in fractions),
             tuple(float(p) for p in pixels),
+            own,
         )
 
     def mixture(self) -> tuple[np.ndarray, np.ndarray]:
         """Sigmas (pixels) and flux weights (summing to 1) of every night's pairs of Gaussians."""
         sigmas, weights = [], []
-        for width, fraction, pixel in zip(self.widths, self.fractions, self.pixels, strict=True):
-            s, w = SeeingProfile(self.fwhm * width, self.shape, self.beta).mixture()
+        betas = self.betas or (self.beta,) * len(self.widths)
+        for width, fraction, pixel, beta in zip(
+            self.widths, self.fractions, self.pixels, betas, strict=True
+        ):
+            s, w = SeeingProfile(self.fwhm * width, self.shape, beta).mixture()
             k2_resampling, k4_resampling = resampling_cumulants(pixel)
             variance = s * s + (pixel * pixel - 1.0) / 12.0 + k2_resampling
             k4 = (1.0 - pixel**4) / 120.0 + k4_resampling

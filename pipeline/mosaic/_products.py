@@ -35,7 +35,6 @@ from pipeline.products import (
     ZERO_POINT_KEY,
     flag_header,
 )
-from pipeline.stages.detect import SeeingProfile
 
 __all__ = [
     "TILE_EXTENSIONS",
@@ -202,24 +201,30 @@ def _star_noise_ratio(tile: MosaicTile, mix: SeeingMix | None) -> float:
         return 1.0
     scale = pixel_arcsec(tile.tile.wcs, tile.tile.shape)
     sigmas, weights = mix.mixture()
-    ratios = np.array([star_noise_ratio(sigmas, weights, scale / p) for _, _, p in tile.seeing])
+    ratios = np.array([star_noise_ratio(sigmas, weights, scale / n[2]) for n in tile.seeing])
     if np.all(ratios == 1.0):  # no night averaged: the factor exactly as before
         return 1.0
     return float(np.sum(np.asarray(mix.fractions) * ratios))
 
 
-def _seeing_mix(tile: MosaicTile, detect_options) -> SeeingProfile | None:
-    """The co-added stars' seeing: the nights' profiles mixed with their weights (None: unknown)."""
+def _seeing_mix(tile: MosaicTile, detect_options) -> SeeingMix | None:
+    """The co-added stars' seeing: the nights' profiles mixed with their weights (None: unknown).
+
+    Each night's profile has the Moffat index its detect used (``tile.seeing``'s
+    fourth entry, from the science product's ``SEEBETA``); the configured
+    ``moffat_beta`` where a night does not record one.
+    """
     if not tile.seeing:
         return None
     scale = pixel_arcsec(tile.tile.wcs, tile.tile.shape)
-    fwhms, weights, pixels = (np.asarray(c, float) for c in zip(*tile.seeing, strict=True))
+    fwhms, weights, pixels, betas = (np.asarray(c, float) for c in zip(*tile.seeing, strict=True))
     return SeeingMix.of_nights(
         fwhms / scale,
         weights,
         pixels / scale,
         detect_options.get("seeing_shape", "moffat"),
         detect_options.get("moffat_beta", 3.5),
+        betas,
     )
 
 

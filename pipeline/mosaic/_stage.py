@@ -99,7 +99,8 @@ TILE_STAGE = Stage(
     # 7: FLAGS' NIGHT_LEFT_OUT where a night with data was left out (and
     # within source_radius of a rejection), which the catalogue's flags see;
     # 8: the catalogue's model holds rectify's cubic taps at the nights'
-    # lattice offsets (smear_kernels' lattice_*): positions at the first moment
-    version=8,
+    # lattice offsets (smear_kernels' lattice_*): positions at the first moment;
+    # 9: the seeing mix takes each night's Moffat index from its SEEBETA card
+    version=9,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )
