@@ -877,5 +877,9 @@ def test_rows_whose_sky_saturated_are_named():
         "night rows 1250-1299 (50 rows): 100% of their pixels are saturated, the sky itself "
         "filled the wells (twilight, moonlight, a light leak?): no star there can be measured."
     ]
+    # A sky so bright the column solve took every column for bad: the share
+    # is still of the pixels with data, at most 100 %.
+    mask[250:300, :189] |= MASK_DTYPE.type(int(MaskBit.BAD_COLUMN))  # all but one
+    assert saturated_sky_problems(night_row, mask, describe_mask(mask)) == lines
     mask[250:300] = 0  # stars alone say nothing
     assert saturated_sky_problems(night_row, mask, describe_mask(mask)) == []

@@ -749,9 +749,15 @@ def saturated_sky_problems(night_row: np.ndarray, mask: np.ndarray, counts: dict
     """
     if counts.get("SATURATED", 0) <= SATURATED_SKY_SHARE * mask.size:
         return []
-    no_data = int(MaskBit.GAP | MaskBit.NONFINITE | MaskBit.BAD_COLUMN)
-    with_data = ((mask & MASK_DTYPE.type(no_data)) == 0).sum(axis=1)
-    saturated = ((mask & MASK_DTYPE.type(int(MaskBit.SATURATED))) != 0).sum(axis=1)
+    # Pixels with data: not in a gap, finite, and not a bad column's unless
+    # saturated (a dead column does not fill; under a saturated sky the
+    # column solve may take every column for bad).  The saturated share is
+    # of these, so at most 1.
+    is_saturated = (mask & MASK_DTYPE.type(int(MaskBit.SATURATED))) != 0
+    counted = (mask & MASK_DTYPE.type(int(MaskBit.GAP | MaskBit.NONFINITE))) == 0
+    counted &= is_saturated | ((mask & MASK_DTYPE.type(int(MaskBit.BAD_COLUMN))) == 0)
+    with_data = counted.sum(axis=1)
+    saturated = (is_saturated & counted).sum(axis=1)
     full = (with_data > 0) & (saturated > SATURATED_SKY_FRACTION * with_data)
     if not full.any():
         return []
