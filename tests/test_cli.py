@@ -129,20 +129,59 @@ def test_usage_errors_exit_2(toy_file: Path, capsys, extra: list[str], message: 
     assert message in capsys.readouterr().err
 
 
-@pytest.mark.parametrize(
-    ("raw_dir", "message"),
-    [
-        ("missing", "night.raw_dir {path} is not a folder"),
-        ("empty", "no file in {path} matches night.pattern"),
-    ],
-)
-def test_a_night_without_raw_files_says_why(toy_file, capsys, raw_dir, message) -> None:
-    """A wrong raw_dir or pattern blocks ingest with a reason, not a puzzle downstream."""
-    path = toy_file.parent / raw_dir
-    if raw_dir == "empty":
-        path.mkdir()
+def test_a_night_without_raw_files_says_why(toy_file, capsys) -> None:
+    """A wrong pattern blocks ingest with a reason, not a puzzle downstream."""
+    path = toy_file.parent / "empty"
+    path.mkdir()
     assert main(["run", str(toy_file), "--set", f"night.raw_dir={path}"]) == 1
-    assert f"blocked: index/night: {message.format(path=path)}" in capsys.readouterr().out
+    message = f"blocked: index/night: no file in {path} matches night.pattern"
+    assert message in capsys.readouterr().out
+
+
+def _product_files(root: Path) -> dict[str, int]:
+    return {str(p.relative_to(root)): p.stat().st_mtime_ns for p in root.rglob("*") if p.is_file()}
+
+
+def test_a_mistyped_raw_folder_stops_the_run_before_anything_runs(toy_file, capsys) -> None:
+    """No raw folder: a usage error naming it, and the night's products left as they were.
+
+    Before, the stages reading raw blocks were blocked or failed (marking
+    their products failed) while the later ones ran again on the old
+    products, and a report was rebuilt without any stretch.
+    """
+    assert main(["run", str(toy_file)]) == 0
+    night = toy_file.parent / "out" / "toy"
+    before = _product_files(night)
+    capsys.readouterr()
+    path = toy_file.parent / "missing"
+    assert main(["run", str(toy_file), "--set", f"night.raw_dir={path}"]) == 2
+    err = capsys.readouterr().err
+    assert f"night.raw_dir {path} is not a folder, and stages index, scale read the raw" in err
+    assert "run from a later stage (--from smooth)" in err
+    after = _product_files(night)
+    assert {k: v for k, v in after.items() if k != "zdrift.log"} == {
+        k: v for k, v in before.items() if k != "zdrift.log"
+    }
+    # ... and from a later stage the products are worked on without the raw files
+    assert main(["run", str(toy_file), "--set", f"night.raw_dir={path}", "--from", "smooth"]) == 0
+
+
+def test_a_raw_file_gone_blocks_its_stretches_without_failing_them(toy_file, capsys) -> None:
+    """A raw block moved away: the units reading it are blocked, naming it; none is failed.
+
+    (A whole run indexes the night again without it; a run of the later
+    stages goes by the block index of the last.)
+    """
+    assert main(["run", str(toy_file)]) == 0
+    capsys.readouterr()
+    raw = toy_file.parent / "raw"
+    gone = sorted(raw.iterdir())[-1]
+    gone.rename(toy_file.parent / gone.name)
+    assert main(["run", str(toy_file), "--stage", "scale", "--force"]) == 1
+    out = capsys.readouterr().out
+    assert f"raw file(s) {gone.name} of rows" in out and "not found in night.raw_dir" in out
+    assert "failed: scale" not in out
+    assert not list((toy_file.parent / "out" / "toy").rglob("_failed.json"))
 
 
 def test_locked_night_exits_3(toy_file: Path, capsys) -> None:

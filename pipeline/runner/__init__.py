@@ -54,7 +54,7 @@ from pipeline.runner._nightly import (
 from pipeline.runner._store import clear_failure, learn_digests, mark_damaged, write_failure
 from pipeline.runner._unit import UnitOutcome, UnitTask, execute_unit, failed_outcome
 from pipeline.runner._warm import warm_plan
-from pipeline.stages.base import STRETCH_PIXELS, Stage, Stretch
+from pipeline.stages.base import RAW_FILES, RAW_ROWS, STRETCH_PIXELS, Stage, Stretch
 
 __all__ = [
     "LOCK_NAME",
@@ -405,6 +405,7 @@ def _run_night(
         _note_whole_night(selected)
     progress = progress or no_progress
     night = NightStore(config)
+    _check_raw_folder(night, selected)
     report = RunReport(config.night.name)
     results: dict[tuple[str, str], UnitResult] = {}
     lock = RunLock(night.root / LOCK_NAME)
@@ -550,6 +551,33 @@ def _with_recut_upstream(night: NightStore, selected: Sequence[Stage]) -> list[S
         recut[0].name,
     )
     return graph[start:first] + list(selected)
+
+
+def _check_raw_folder(night: NightStore, selected: Sequence[Stage]) -> None:
+    """Stop before anything runs when stages that read raw blocks have no raw folder.
+
+    A mistyped ``night.raw_dir`` otherwise blocked those stages while the
+    later ones ran again on the products left by the last run, and rebuilt
+    the report without any stretch.  A run from a later stage (``--from``,
+    ``--stage``) works on the products without the raw files.
+
+    Raises
+    ------
+    ValueError
+        Some selected stage reads raw blocks and ``night.raw_dir`` is not a
+        folder.
+    """
+    reading = [s.name for s in selected if RAW_FILES in s.requires or RAW_ROWS in s.requires]
+    folder = night.raw_dir.resolve()
+    if reading and not folder.is_dir():
+        last = max(i for i, s in enumerate(selected) if s.name in reading)
+        later = selected[last + 1].name if last + 1 < len(selected) else None
+        hint = f"; to work on the products already made, run from a later stage (--from {later})"
+        raise ValueError(
+            f"night.raw_dir {folder} is not a folder, and stages {', '.join(reading)} read the "
+            "raw blocks: point night.raw_dir (relative to the config file) at the night's raw "
+            f"folder{hint if later else ''}"
+        )
 
 
 def _take_damaged_out_of_use(

@@ -33,6 +33,7 @@ from pipeline.runner._rawio import (
     block_index_rows,
     blocks_fingerprint,
     list_raw_files,
+    missing_blocks,
     overlapping_blocks,
     raw_files_fingerprint,
 )
@@ -630,6 +631,19 @@ class NightStore:
                 if self.index is None:
                     return hashes, specs, self.no_index_reason()
                 lo, hi = stretch.lo, stretch.hi
+                gone = missing_blocks(self.raw_dir, self.index, lo, hi)
+                if gone:
+                    # blocked, not failed: the products made from them stay
+                    # as they are (a wrong night.raw_dir, or raw data archived)
+                    return (
+                        hashes,
+                        specs,
+                        (
+                            f"raw file(s) {', '.join(gone)} of rows {lo}-{hi - 1} not found in "
+                            f"night.raw_dir {self.raw_dir.resolve()}: point night.raw_dir at the "
+                            "night's raw blocks, or restore them"
+                        ),
+                    )
                 flip = self.context.camera.flip_rows
                 hashes[name] = blocks_fingerprint(self.raw_dir, self.index, lo, hi, flip_rows=flip)
                 if (lo, hi) not in self._index_rows:

@@ -36,6 +36,7 @@ __all__ = [
     "image_header",
     "list_raw_files",
     "measurable",
+    "missing_blocks",
     "open_raw",
     "overlapping_blocks",
     "raw_files_fingerprint",
@@ -412,6 +413,12 @@ def _overlapping(index: Table | BlockRows, lo: int, hi: int) -> list[tuple[str, 
         (str(columns[0][i]), int(columns[1][i]), int(columns[2][i]), int(columns[3][i]))
         for i in overlapping_blocks(index, lo, hi)
     ]
+
+
+def missing_blocks(raw_dir: Path, index: Table | BlockRows, lo: int, hi: int) -> list[str]:
+    """The raw files holding rows ``[lo, hi)`` that are not in ``raw_dir`` (names, in order)."""
+    names = dict.fromkeys(block[0] for block in _overlapping(index, lo, hi))
+    return [name for name in names if not (raw_dir / name).is_file()]
 
 
 def blocks_fingerprint(
