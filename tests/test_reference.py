@@ -196,6 +196,20 @@ def test_band_selection_after_proper_motion(tmp_path):
         read_reference(options, band, 2016.0)
 
 
+def test_a_band_missed_in_right_ascension_points_at_the_longitude(tmp_path):
+    """Declinations that agree and right ascensions that do not: a longitude or clock
+    mistake (the night's RA is the local sidereal time), not the latitude."""
+    stars = Table({"ra": [100.0, 101.0], "dec": [25.0, 26.0], "pm_ra": [0.0, 0.0],
+                   "pm_dec": [0.0, 0.0], "mag": [10.0, 11.0]})  # fmt: skip
+    path = tmp_path / "two.ecsv"
+    stars.write(path)
+    options = ReferenceOptions(source="file", path=path)
+    with pytest.raises(ReferenceCatalogError, match=r"the declinations agree, so check site\.lon"):
+        read_reference(options, SkyBand(20.0, 30.0, 5.0, 15.0), 2016.0)
+    with pytest.raises(ReferenceCatalogError, match=r"check site\.latitude"):
+        read_reference(options, SkyBand(40.0, 50.0, 95.0, 105.0), 2016.0)
+
+
 def test_sky_band_geometry():
     band = SkyBand(10.0, 20.0, 350.0, 10.0)
     mask = band.contains(np.array([355.0, 5.0, 20.0, -5.0, 0.0]), np.array([15, 15, 15, 15, 21]))

@@ -285,13 +285,25 @@ def _assemble(pieces, source, epoch, n_read, n_in_band, band, dec_range, limits)
             if np.isfinite(dec_range[0])
             else "it has no valid declinations"
         )
-        hint = (
-            f"; {n_in_band} stars lie in the band but none within the magnitude limits {limits}, "
-            "so widen magnitude_min/magnitude_max"
-            if n_in_band
-            else "; check site.latitude, the night's date, and that the catalogue covers "
-            "the telescope's declination"
-        )
+        overlaps = dec_range[0] <= band.dec_max and dec_range[1] >= band.dec_min
+        if n_in_band:
+            hint = (
+                f"; {n_in_band} stars lie in the band but none within the magnitude limits "
+                f"{limits}, so widen magnitude_min/magnitude_max"
+            )
+        elif overlaps:
+            # the declinations agree: the right ascensions do not (the night's
+            # RA is the local sidereal time, from the site's longitude and the
+            # blocks' times)
+            hint = (
+                "; the declinations agree, so check site.longitude, the blocks' DATE-OBS "
+                "and that the catalogue covers the night's right ascensions"
+            )
+        else:
+            hint = (
+                "; check site.latitude, the night's date, and that the catalogue covers "
+                "the telescope's declination"
+            )
         raise ReferenceCatalogError(
             f"reference catalogue {source} has no stars in the night's band ({band}): "
             f"{covered}{hint}."
