@@ -133,7 +133,13 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
         error the nights' astrometric solutions leave on the tile
         (``tile.position_error``, arcsec, in the meta as
         ``wcs_error_arcsec``), as the nights' solved catalogues hold their
-        solution's (:mod:`pipeline.stages.astrometry`).
+        solution's (:mod:`pipeline.stages.astrometry`).  ``mask_near`` and
+        ``mask_core`` (int) are the OR of the tile's ``FLAGS`` bits
+        (:class:`~pipeline.masks.MaskBit`, listed in the meta's
+        ``mask_bits``) over the stamp the source's fit took, which made it
+        ``NEAR_FLAGGED``, and over its core (:func:`_add_mask_columns`; the
+        sizes in the meta as ``mask_near_half_size`` and
+        ``mask_core_radius``, tile pixels).
     """
     from pipeline.stages.detect import detect
 
