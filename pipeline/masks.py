@@ -13,10 +13,19 @@ NaN.  All other flagged pixels keep their calibrated values.
 from __future__ import annotations
 
 import enum
+import math
 
 import numpy as np
 
-__all__ = ["BIT_MEANINGS", "MASK_DTYPE", "NO_DATA", "MaskBit", "describe_mask", "has_bits"]
+__all__ = [
+    "BIT_MEANINGS",
+    "MASK_DTYPE",
+    "NO_DATA",
+    "MaskBit",
+    "bits_around",
+    "describe_mask",
+    "has_bits",
+]
 
 #: dtype of every mask array.
 MASK_DTYPE = np.dtype(np.uint16)
@@ -112,6 +121,59 @@ def has_bits(mask: np.ndarray, bits: int | MaskBit) -> np.ndarray:
         Same shape as ``mask``.
     """
     return (np.asarray(mask) & MASK_DTYPE.type(int(bits))) != 0
+
+
+def bits_around(mask, x, y, half_x, half_y=None, *, round_=True) -> np.ndarray:
+    """The OR of the mask bits around each of many positions.
+
+    Parameters
+    ----------
+    mask : ndarray of uint16, shape (ny, nx)
+        Mask array.
+    x, y : array_like of float
+        Positions, array pixels (0-based, pixel centres on integers); NaN
+        positions get 0.
+    half_x, half_y : float or array_like of float
+        Half-sizes of the region, pixels: along x and y (``half_y`` None:
+        ``half_x``), one for all positions or one per position.
+    round_ : bool
+        True: the pixels whose centres lie within the ellipse of these
+        semi-axes (a disc if equal); False: the rectangle's pixels, its
+        bounds rounded outward to whole pixels (as detect's stamps are,
+        :func:`pipeline.stages.detect._measure._stamp`).
+
+    Returns
+    -------
+    ndarray of uint16
+        One OR of bits per position (0: no flagged pixel in the region, or
+        the region off the array).
+    """
+    mask = np.asarray(mask)
+    x = np.atleast_1d(np.asarray(x, float))
+    y = np.atleast_1d(np.asarray(y, float))
+    hx = np.broadcast_to(np.asarray(half_x, float), x.shape)
+    hy = hx if half_y is None else np.broadcast_to(np.asarray(half_y, float), x.shape)
+    out = np.zeros(x.shape, dtype=MASK_DTYPE)
+    n_y, n_x = mask.shape
+    for i in np.flatnonzero(np.isfinite(x) & np.isfinite(y) & (hx >= 0) & (hy >= 0)):
+        if round_:
+            x0, x1 = math.ceil(x[i] - hx[i]), math.floor(x[i] + hx[i]) + 1
+            y0, y1 = math.ceil(y[i] - hy[i]), math.floor(y[i] + hy[i]) + 1
+        else:  # rounded outward
+            x0, x1 = math.floor(x[i] - hx[i]), math.ceil(x[i] + hx[i]) + 1
+            y0, y1 = math.floor(y[i] - hy[i]), math.ceil(y[i] + hy[i]) + 1
+        x0, x1, y0, y1 = max(x0, 0), min(x1, n_x), max(y0, 0), min(y1, n_y)
+        if x0 >= x1 or y0 >= y1:
+            continue
+        box = mask[y0:y1, x0:x1]
+        if not box.any():  # most regions hold no flagged pixel
+            continue
+        if round_:
+            u = (np.arange(x0, x1) - x[i]) / max(hx[i], 1e-12)
+            v = (np.arange(y0, y1) - y[i]) / max(hy[i], 1e-12)
+            box = box[v[:, None] ** 2 + u[None, :] ** 2 <= 1.0]
+        out[i] = np.bitwise_or.reduce(box, axis=None) if box.size else 0
+    return out
 
 
 def describe_mask(mask: np.ndarray) -> dict[str, int]:

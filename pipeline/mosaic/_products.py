@@ -25,7 +25,7 @@ from astropy import units as u
 from astropy.io import fits
 from astropy.table import QTable, Table
 
-from pipeline.masks import MASK_DTYPE
+from pipeline.masks import MASK_DTYPE, MaskBit, bits_around
 from pipeline.mosaic._coadd import MosaicTile, NightImage, pixel_arcsec
 from pipeline.mosaic._kernels import SeeingMix
 from pipeline.mosaic._resample import star_noise_ratio
@@ -133,7 +133,13 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
         error the nights' astrometric solutions leave on the tile
         (``tile.position_error``, arcsec, in the meta as
         ``wcs_error_arcsec``), as the nights' solved catalogues hold their
-        solution's (:mod:`pipeline.stages.astrometry`).
+        solution's (:mod:`pipeline.stages.astrometry`).  ``mask_near`` and
+        ``mask_core`` (int) are the OR of the tile's ``FLAGS`` bits
+        (:class:`~pipeline.masks.MaskBit`, listed in the meta's
+        ``mask_bits``) over the stamp the source's fit took, which made it
+        ``NEAR_FLAGGED``, and over its core (:func:`_add_mask_columns`; the
+        sizes in the meta as ``mask_near_half_size`` and
+        ``mask_core_radius``, tile pixels).
     """
     from pipeline.stages.detect import detect
 
@@ -158,6 +164,8 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
         **detect_options,
     )
     catalog = result.catalog
+    _add_mask_columns(catalog, planes.flags, _fitted_profile(result.seeing, mix, detect_options),
+                      _smear_extent(kernels))  # fmt: skip
     flux = np.asarray(catalog["flux_psf"].value, float)
     error = np.asarray(catalog["flux_psf_err"].value, float)
     positive = flux > 0
@@ -187,6 +195,129 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
     catalog.meta["tile"] = tile.tile.name
     catalog.meta["problems"] = list(result.problems)
     return catalog
+
+
+#: Share of a star's peak above which its pixels are its core: detect's own
+#: (SATURATED, COSMIC_RAY and EDGE look at the pixels where the star's model
+#: exceeds 5 % of its peak, :func:`pipeline.stages.detect._measure._flags_for`).
+CORE_LEVEL = 0.05
+
+
+def _add_mask_columns(catalog: QTable, flags: np.ndarray, profile, extent) -> None:
+    """Add ``mask_core`` and ``mask_near``: the OR of the tile's FLAGS bits around each source.
+
+    ``mask_core``: the pixels whose centres lie within the core radius
+    (:func:`core_radius` of ``profile``, the seeing fitted on the tile)
+    plus the longest smear track (``extent``) of the fitted position.
+    ``mask_near``: the stamp its fit took, where a flagged pixel makes it
+    ``NEAR_FLAGGED``: the rectangle of 1.5 FWHM plus the track plus 1 pixel
+    each way (:func:`pipeline.stages.detect._measure._stamp`) around the
+    source, or around the sources fitted with it (``group``).  Detect's own
+    stamps are built around the fits' starting positions with each star's
+    track (and widened over a saturated star's footprint), so the two can
+    differ at the stamp's edge.
+    """
+    x = np.asarray(catalog["x"].value, float)
+    y = np.asarray(catalog["y"].value, float)
+    radius = core_radius(*profile.mixture()) + float(np.hypot(*extent))
+    half_x, half_y = (1.5 * profile.fwhm + e + 1.0 for e in extent)
+    centre_x, centre_y, span_x, span_y = _group_boxes(np.asarray(catalog["group"]), x, y)
+    near = bits_around(flags, centre_x, centre_y, span_x + half_x, span_y + half_y, round_=False)
+    described = (
+        ("mask_core", bits_around(flags, x, y, radius),
+         "OR of the tile's FLAGS bits (MaskBit) within the source's core (meta mask_core_radius)"),
+        ("mask_near", near,
+         "OR of the tile's FLAGS bits (MaskBit) in its fit's stamp (meta mask_near_half_size, "
+         "around its group's sources): why it is NEAR_FLAGGED"),
+    )  # fmt: skip
+    for name, bits, doc in described:
+        catalog[name] = bits.astype(np.int32)
+        catalog[name].info.description = doc
+    catalog.meta["mask_core_radius"] = round(radius, 3)
+    catalog.meta["mask_near_half_size"] = [round(half_x, 3), round(half_y, 3)]
+    catalog.meta["mask_bits"] = {bit.name: int(bit) for bit in MaskBit}
+
+
+def _group_boxes(group, x, y):
+    """Per source: the centre and half-spans of the box around its group's sources (finite)."""
+    centre_x, centre_y = x.copy(), y.copy()
+    span_x, span_y = np.zeros_like(x), np.zeros_like(y)
+    fine = np.isfinite(x) & np.isfinite(y)
+    for g in np.unique(group[fine]):
+        members = fine & (group == g)
+        if np.count_nonzero(members) < 2:
+            continue
+        for centre, span, v in ((centre_x, span_x, x), (centre_y, span_y, y)):
+            lo, hi = float(np.min(v[members])), float(np.max(v[members]))
+            centre[members], span[members] = 0.5 * (lo + hi), 0.5 * (hi - lo)
+    return centre_x, centre_y, span_x, span_y
+
+
+def core_radius(sigmas, weights, level: float = CORE_LEVEL) -> float:
+    """Radius (pixels) where a round mixture of Gaussians falls to ``level`` of its peak.
+
+    Parameters
+    ----------
+    sigmas, weights : array_like of float
+        The mixture's Gaussians (pixels) and their flux weights (a weight may
+        be negative, as in :class:`~pipeline.mosaic._kernels.SeeingMix`).
+    level : float
+        Share of the peak, in (0, 1).
+
+    Returns
+    -------
+    float
+        The outermost radius where the profile is ``level`` of its peak
+        (the profile of a Gaussian of ``sigma`` falls to it at ``sigma
+        sqrt(2 ln(1 / level))``, common practice).
+    """
+    sigmas, weights = np.asarray(sigmas, float), np.asarray(weights, float)
+    heights = weights / sigmas**2
+
+    def profile(r):
+        return np.sum(heights * np.exp(-0.5 * (np.asarray(r, float)[..., None] / sigmas) ** 2), -1)
+
+    peak = float(profile(0.0))
+    radii = np.linspace(0.0, 10.0 * float(np.max(sigmas)) * np.sqrt(2.0 * np.log(1.0 / level)),
+                        4001)  # fmt: skip
+    above = np.flatnonzero(profile(radii) >= level * peak)
+    k = int(above[-1]) if above.size else 0
+    if k + 1 >= radii.size:
+        return float(radii[-1])
+    lo, hi = radii[k], radii[k + 1]
+    for _ in range(40):  # bisection on the crossing between the grid's points
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if profile(mid) >= level * peak else (lo, mid)
+    return float(0.5 * (lo + hi))
+
+
+def _fitted_profile(seeing: Table, mix: SeeingMix | None, detect_options):
+    """The seeing detect fitted on the tile (the whole tile's row), as a profile.
+
+    The nights' mix with its fitted width; a round profile of detect's family
+    where the nights' seeing is unknown; the start's width where no star
+    gave one.
+    """
+    from pipeline.stages.detect import SeeingProfile
+
+    fwhm = float(seeing["fwhm"][0]) if len(seeing) else np.nan
+    if mix is not None:
+        return mix.with_fwhm(fwhm) if np.isfinite(fwhm) else mix
+    if not np.isfinite(fwhm):
+        fwhm = float(detect_options.get("fwhm_guess", 3.0))
+    beta = float(seeing["beta"][0]) if len(seeing) and "beta" in seeing.colnames else np.nan
+    if not np.isfinite(beta):
+        beta = float(detect_options.get("moffat_beta", 3.5))
+    return SeeingProfile(fwhm, detect_options.get("seeing_shape", "moffat"), beta)
+
+
+def _smear_extent(kernels: Table) -> tuple[float, float]:
+    """The longest smear track on the tile along x and y (pixels): largest ``|dx|``, ``|dy|``."""
+    extent = [0.0, 0.0]
+    for dx, dy in zip(kernels["dx"], kernels["dy"], strict=True):
+        extent[0] = max(extent[0], float(np.max(np.abs(dx), initial=0.0)))
+        extent[1] = max(extent[1], float(np.max(np.abs(dy), initial=0.0)))
+    return extent[0], extent[1]
 
 
 def _star_noise_ratio(tile: MosaicTile, mix: SeeingMix | None) -> float:

@@ -101,6 +101,8 @@ TILE_STAGE = Stage(
     # 8: the catalogue's model holds rectify's cubic taps at the nights'
     # lattice offsets (smear_kernels' lattice_*): positions at the first moment;
     # 9: the seeing mix takes each night's Moffat index from its SEEBETA card
-    version=9,
+    # 10: catalogue columns mask_core and mask_near, the tile's FLAGS bits
+    # around each source (why it is NEAR_FLAGGED, and whether in its core)
+    version=10,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )
