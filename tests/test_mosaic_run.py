@@ -456,3 +456,38 @@ def test_science_units_of_an_earlier_stretch_layout_are_left_out(tmp_path, night
         "night n1: science s0000 left out (image.fits is gone since its unit was made "
         "(removed or renamed by hand?))"
     ) in MosaicStore(config).problems
+
+
+def test_a_night_left_out_says_why_its_science_units_are_missing(tmp_path, monkeypatch):
+    """A night whose science units were never made (their astrometry blocked, say)
+    is reported with the units' own problem, not a bare "missing"."""
+    from types import SimpleNamespace
+
+    import pipeline.runner._mosaic as runner_mosaic
+    from pipeline.mosaic._stage import SCIENCE
+
+    problem = "needs astrometry products for night (missing, failed or damaged)"
+    stretches = [SimpleNamespace(id=f"s000{i}") for i in range(3)]
+
+    class Store:  # the few NightStore answers _night_units asks for
+        def __init__(self, config):
+            self.stages = {SCIENCE: "science stage"}
+            self.stretches = stretches
+
+        def state(self, stage, stretch):
+            return "missing", ""
+
+        def inputs(self, stage, stretch):
+            return {}, [], problem if stretch.id != "s0002" else None
+
+    config = SimpleNamespace(night=SimpleNamespace(name="n7"))
+    monkeypatch.setattr(runner_mosaic, "NightStore", Store)
+    monkeypatch.setattr(runner_mosaic, "load_config", lambda path: config)
+    path = tmp_path / "n7.yaml"
+    path.write_text("")
+    night, units, problems = runner_mosaic._night_units(path)
+    assert night == "n7" and units == []
+    assert problems == [
+        f"night n7: science s0000-s0001 left out (missing: {problem})",
+        "night n7: science s0002 left out (missing: not made yet)",
+    ]

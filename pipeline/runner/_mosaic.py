@@ -116,6 +116,10 @@ def _night_units(path: Path) -> tuple[str, list[tuple[str, Path, dict]], list[st
                 folder = store.unit_dir(stage, stretch.id)
                 units.append((stretch.id, folder, store.sidecar(stage, stretch.id)))
             else:
+                if state == "missing" and not reason:
+                    # why it was not made: its inputs' problem (a blocked or
+                    # failed upstream unit), or it was never run
+                    reason = store.inputs(stage, stretch)[2] or "not made yet"
                 left_out.setdefault(f"{state}{': ' + reason if reason else ''}", []).append(
                     stretch.id
                 )
