@@ -271,27 +271,32 @@ def _rows_reached(cut: np.ndarray, spans) -> np.ndarray:
 
 
 def _by_column_star(x, y, fits_: dict, columns: np.ndarray, reach: float) -> np.ndarray:
-    """Whether each position lies on ``columns`` within ``reach`` along the scan of a fit on it.
+    """Whether each position lies on ``columns`` near a fit on it.
 
-    ``fits_``: :func:`~pipeline.stages.detect._measure.measure_groups`'
+    Near: within ``reach`` along the scan, and joined to it across the scan
+    by the column's pixels.  ``fits_``: :func:`~pipeline.stages.detect._measure.measure_groups`'
     result (its ``x``, ``y``); positions in array pixels.
     """
     ny, nx = columns.shape
 
-    def on(xs, ys):
+    def pixel(xs, ys):
         ix = np.clip(np.round(np.nan_to_num(xs)).astype(int), 0, nx - 1)
         iy = np.clip(np.round(np.nan_to_num(ys)).astype(int), 0, ny - 1)
-        return columns[iy, ix]
+        return ix, iy
 
-    fx, fy = np.asarray(fits_["x"], float), np.asarray(fits_["y"], float)
-    stars = np.sort(fx[on(fx, fy)])
+    fx, fy = pixel(np.asarray(fits_["x"], float), np.asarray(fits_["y"], float))
+    fitted = columns[fy, fx]
+    fx_on, fy_on = np.asarray(fits_["x"], float)[fitted], fy[fitted]
     x = np.asarray(x, dtype=float)
-    out = on(x, y)
-    if not stars.size:
-        return np.zeros(x.shape, bool)
-    k = np.clip(np.searchsorted(stars, x), 1, stars.size)
-    gap = np.minimum(np.abs(x - stars[k - 1]), np.abs(stars[np.minimum(k, stars.size - 1)] - x))
-    return out & (gap <= reach)
+    ix, iy = pixel(x, y)
+    out = np.zeros(x.shape, bool)
+    for k in np.flatnonzero(columns[iy, ix]).tolist():
+        for j in np.flatnonzero(np.abs(fx_on - x[k]) <= reach).tolist():
+            lo, hi = sorted((int(iy[k]), int(fy_on[j])))
+            if columns[lo : hi + 1, ix[k]].all():
+                out[k] = True
+                break
+    return out
 
 
 def _empty_catalog(radii) -> QTable:

@@ -429,7 +429,7 @@ def merge_on_column(
     FIT_FAILED).  Segments that start on the column's pixels at columns
     less than ``reach`` apart are one star, as the sources on one saturated
     footprint are (a real pair on the column could not be measured there
-    anyway).
+    anyway), if the column's pixels join them across the scan.
 
     Parameters
     ----------
@@ -462,10 +462,15 @@ def merge_on_column(
     if on.size < 2:
         return False
     # chains of starts on the column, each within ``reach`` of the next
-    # along the scan (one column's rows: a few rows across)
+    # along the scan and joined to it across the scan by the column's pixels
+    # (not another column's at the same place along the scan)
     on = on[np.lexsort((iy[on], ix[on]))]
     xs = np.asarray(x, dtype=float)[on]
-    breaks = np.flatnonzero(np.diff(xs) > reach) + 1
+    joined = np.diff(xs) <= reach
+    for k in np.flatnonzero(joined).tolist():
+        lo, hi = sorted((int(iy[on[k]]), int(iy[on[k + 1]])))
+        joined[k] = bool(columns[lo : hi + 1, ix[on[k]]].all())
+    breaks = np.flatnonzero(~joined) + 1
     groups = [labels[part] for part in np.split(on, breaks) if part.size > 1]
     if not groups:
         return False
