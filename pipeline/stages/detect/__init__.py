@@ -77,6 +77,7 @@ from pipeline.stages.detect._measure import (
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
 from pipeline.stages.detect._saturated import (
     CLIPPED,
+    merge_on_column,
     merge_on_footprints,
     saturated_columns,
     saturated_footprints,
@@ -202,12 +203,21 @@ class DetectResult:
     problems: list[str] = field(default_factory=list)
 
 
-def _start_positions(moments, segm, snr: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _start_positions(
+    moments, segm, snr: np.ndarray, cut: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
     """Start positions of the fits: each segment's centroid, or its S/N peak.
 
     A segment of the S/N map whose image pixels sum to zero or less (noise,
     or a faint source on a dip left by a neighbour's model) has no centroid
-    (NaN); it starts at its highest S/N pixel instead.
+    (NaN); it starts at its highest S/N pixel instead.  So does a segment
+    that crosses ``cut`` (a saturated column's rows, without data): its
+    centroid is that of the pixels on either side, off the star's centre
+    by up to half the column's width when the column cuts the core off
+    centre (a start more than a FWHM from where the fit ends is a failed
+    fit), where the matched filter, which weighs the pixels with data
+    alone, is highest at the star's position in expectation (the
+    Cauchy-Schwarz inequality), to the pixel.
 
     Parameters
     ----------
@@ -216,6 +226,8 @@ def _start_positions(moments, segm, snr: np.ndarray) -> tuple[np.ndarray, np.nda
     segm : `~pipeline.stages.detect._find.Segmentation`
     snr : ndarray
         The S/N map the segments were cut from.
+    cut : ndarray of bool or None
+        Pixels without data the segments may cross (a saturated column's).
 
     Returns
     -------
@@ -224,13 +236,67 @@ def _start_positions(moments, segm, snr: np.ndarray) -> tuple[np.ndarray, np.nda
     """
     x = np.array(moments.x, dtype=float)
     y = np.array(moments.y, dtype=float)
-    for i in np.flatnonzero(~(np.isfinite(x) & np.isfinite(y))):
+    peaks = ~(np.isfinite(x) & np.isfinite(y))
+    if cut is not None:
+        peaks |= _crossing(segm, cut)
+    for i in np.flatnonzero(peaks):
         box = segm.slices[i]
         local = np.where(segm.data[box] == segm.labels[i], snr[box], -np.inf)
         iy, ix = np.unravel_index(np.argmax(local), local.shape)
         y[i] = box[0].start + iy
         x[i] = box[1].start + ix
     return x, y
+
+
+def _crossing(segm, cut: np.ndarray) -> np.ndarray:
+    """Whether each segment of ``segm`` (in its label order) holds a pixel of ``cut``.
+
+    Only the segments whose boxes reach the rows holding ``cut`` pixels are
+    looked at (a saturated column's few rows: a handful of segments).
+    """
+    out = np.zeros(len(segm.labels), bool)
+    reach = _rows_reached(cut, [box[0] for box in segm.slices])
+    for i in np.flatnonzero(reach):
+        box = segm.slices[i]
+        out[i] = bool(np.any(cut[box] & (segm.data[box] == segm.labels[i])))
+    return out
+
+
+def _rows_reached(cut: np.ndarray, spans) -> np.ndarray:
+    """Whether each row span (a slice) holds a row with a ``cut`` pixel."""
+    before = np.concatenate([[0], np.cumsum(cut.any(axis=1))])
+    start = np.array([s.start for s in spans], dtype=np.int64)
+    stop = np.array([s.stop for s in spans], dtype=np.int64)
+    return before[stop] > before[start]
+
+
+def _by_column_star(x, y, fits_: dict, columns: np.ndarray, reach: float) -> np.ndarray:
+    """Whether each position lies on ``columns`` near a fit on it.
+
+    Near: within ``reach`` along the scan, and joined to it across the scan
+    by the column's pixels.  ``fits_``: :func:`~pipeline.stages.detect._measure.measure_groups`'
+    result (its ``x``, ``y``); positions in array pixels.
+    """
+    ny, nx = columns.shape
+
+    def pixel(xs, ys):
+        ix = np.clip(np.round(np.nan_to_num(xs)).astype(int), 0, nx - 1)
+        iy = np.clip(np.round(np.nan_to_num(ys)).astype(int), 0, ny - 1)
+        return ix, iy
+
+    fx, fy = pixel(np.asarray(fits_["x"], float), np.asarray(fits_["y"], float))
+    fitted = columns[fy, fx]
+    fx_on, fy_on = np.asarray(fits_["x"], float)[fitted], fy[fitted]
+    x = np.asarray(x, dtype=float)
+    ix, iy = pixel(x, y)
+    out = np.zeros(x.shape, bool)
+    for k in np.flatnonzero(columns[iy, ix]).tolist():
+        for j in np.flatnonzero(np.abs(fx_on - x[k]) <= reach).tolist():
+            lo, hi = sorted((int(iy[k]), int(fy_on[j])))
+            if columns[lo : hi + 1, ix[k]].all():
+                out[k] = True
+                break
+    return out
 
 
 def _empty_catalog(radii) -> QTable:
@@ -460,9 +526,10 @@ def detect(
     # all along, no star's footprint.  detect takes them as a bad column's
     # rows (no data; in its own copy of the mask, BAD_COLUMN | NONFINITE as
     # rectify flags those), so a star whose core they cut is flagged EDGE
-    # and not tested for UNRESOLVED, as beside a bad column.
+    # and not tested for UNRESOLVED, as beside a bad column; the searches'
+    # segments cross them and the fits' stamps reach across them.
     clipped = has_bits(mask, CLIPPED)
-    columns = saturated_columns(clipped, no_data)
+    columns = saturated_columns(clipped, no_data, own_columns=own_columns)
     if columns is not None:
         no_data |= columns
         mask = mask.copy()
@@ -532,14 +599,18 @@ def detect(
         noise_correlation = 1.0
 
     # Per gap width: the no-data pixels the searches' segments stay out of,
-    # all but the narrow gaps across the scan (a bad column's rows), which a
-    # star's segment crosses.  Without such a gap, ``no_data`` itself.
+    # all but the narrow gaps across the scan (a bad column's rows) and a
+    # saturated column's rows (whatever their width), which a star's segment
+    # crosses: a star whose core they cut is one segment, not one on each
+    # side.  Without such pixels, ``no_data`` itself.
     search_masks: dict = {}
 
     def search_mask(prof):
         rows = max(1, int(GAP_FWHM * prof.fwhm))
         if rows not in search_masks:
             gaps = narrow_gaps(no_data, rows) if missing else None
+            if columns is not None:
+                gaps = columns if gaps is None else gaps | columns
             search_masks[rows] = no_data & ~gaps if gaps is not None and gaps.any() else no_data
         return search_masks[rows]
 
@@ -599,16 +670,23 @@ def detect(
     else:
         var_fit, held = _without_clipped(var, footprints, owned)
 
-    def sources(segm, snr, data):
-        """Segments' moments and start positions, one source per saturated footprint."""
+    def sources(segm, snr, data, parent):
+        """Segments' moments and start positions, one source per saturated footprint.
+
+        And one per star on a saturated column (``parent`` loses the labels
+        merged away).
+        """
         cat = segment_moments(data, segm, no_data, snr)
-        cx, cy = _start_positions(cat, segm, snr)
+        cx, cy = _start_positions(cat, segm, snr, columns)
         if merge_on_footprints(segm, cx, cy, footprints):
             cat = segment_moments(data, segm, no_data, snr)
-            cx, cy = _start_positions(cat, segm, snr)
+            cx, cy = _start_positions(cat, segm, snr, columns)
+        if merge_on_column(segm, parent, cx, cy, columns, profile.fwhm):
+            cat = segment_moments(data, segm, no_data, snr)
+            cx, cy = _start_positions(cat, segm, snr, columns)
         return cat, cx, cy
 
-    cat, cx, cy = sources(segm, snr, residual)
+    cat, cx, cy = sources(segm, snr, residual, parent)
     peak = cat.peak
     point = deconvolved
     fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
@@ -726,7 +804,7 @@ def detect(
             if single:  # not held while the search runs
                 var_fit = None
             snr, segm, parent = segment(filter_profile)
-            cat, cx, cy = sources(segm, snr, residual)
+            cat, cx, cy = sources(segm, snr, residual, parent)
             blended = np.asarray(_deblended(segm.labels, parent))
             del snr, segm, parent
             if single:
@@ -786,6 +864,7 @@ def detect(
             blended=[[split[i] for i in g] for g in members],
             memo=fitted,
             footprints=footprints,
+            cut=columns,
         )
         return members, result
 
@@ -803,7 +882,7 @@ def detect(
         _snr2, segm2, _parent2 = segment(filter_profile, cleaned)
         cat2 = None
         if segm2 is not None:
-            cat2, nx2, ny2 = sources(segm2, _snr2, cleaned)
+            cat2, nx2, ny2 = sources(segm2, _snr2, cleaned, _parent2)
         # the last search: its planes, the filters' and the image minus the models
         # are done with
         del cleaned, _snr2, segm2, _parent2
@@ -819,6 +898,11 @@ def detect(
             # Farther than a FWHM from every fitted source: nearer, a residual is
             # the misfit of that source, and a second source there is degenerate.
             new = np.flatnonzero((near > profile.fwhm) & np.isfinite(nx2))
+            if new.size and columns is not None:
+                # ... and, on a saturated column, from every source fitted on
+                # it at columns within a FWHM: the misfit of a star whose
+                # core the column hides lies across the column's rows
+                new = new[~_by_column_star(nx2[new], ny2[new], fits_, columns, profile.fwhm)]
             if new.size:
                 log.debug("%d more sources in the residual image", new.size)
                 order0 = [i for g in members for i in g]
@@ -1462,6 +1546,11 @@ STAGE = Stage(
     #     3 errors off moffat_beta (seeing table columns beta, beta_fit,
     #     beta_err); the refit tries the 13 grid widths around the first fit's
     #     FWHM instead of all 41
-    version=17,
+    # 18: a star whose core a saturated column cuts is one source fitted on
+    #     the wings beyond it (segments cross the column, the fit starts at the
+    #     filter's peak on a stamp widened across it), and a column saturated
+    #     through a neighbour that stops just past the seam is a column, not a
+    #     star's footprint (products without such a column unchanged)
+    version=18,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

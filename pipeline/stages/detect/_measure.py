@@ -49,7 +49,10 @@ class SourceFlag(enum.IntFlag):
     EDGE
         The stamp is cut by the image edge or reaches the chip's outside or
         a gap in the night's rows, or a pixel without data (a bad column, a
-        non-finite raw pixel) lies in the star's core.  Such pixels in the
+        non-finite raw pixel, a column saturated through the stretch) lies
+        in the star's core.  With SATURATED: the star's core lies on a
+        saturated column (or its own clipped core meets a pixel without
+        data), and its flux comes from the wings beyond.  Such pixels in the
         wings alone (NEAR_FLAGGED) cost the fit their weight, not its
         accuracy.
     COSMIC_RAY
@@ -602,6 +605,7 @@ def measure_groups(
     max_joint: int = 6,
     memo: dict | None = None,
     footprints: Footprints | None = None,
+    cut: np.ndarray | None = None,
 ) -> dict[str, np.ndarray]:
     """Fit each group of sources with the smear-aware model.
 
@@ -633,6 +637,14 @@ def measure_groups(
         jointly fitted group on one has its stamp widened to the footprint
         and the wings around it (the clipped pixels themselves carry no
         weight: NaN in ``variance``).
+    cut : ndarray of bool or None
+        Pixels without data that may cut a star's core: a saturated
+        column's (:func:`~pipeline.stages.detect._saturated.saturated_columns`).
+        A jointly fitted group's stamp that holds some of them is widened
+        across the scan by as many rows as it holds of them on each side,
+        so that the wings beyond them are fitted (a stamp over a star
+        centred on a column 10 rows wide otherwise holds 1-2 rows of data on
+        either side).
 
     Returns
     -------
@@ -672,6 +684,7 @@ def measure_groups(
         "own_columns": own_columns,
         "max_joint": max_joint,
         "footprints": footprints,
+        "cut": cut if cut is not None and cut.any() else None,
     }
     # The joint fits, all in one compiled call; None for a group to fit here.
     batch = _measure_joint(
@@ -753,6 +766,7 @@ def _measure_group(
     own_columns,
     max_joint,
     footprints=None,
+    cut=None,
     looked_up=None,
 ) -> list[dict]:
     """Fit one group of sources; one row (dict) per member.
@@ -766,6 +780,7 @@ def _measure_group(
     kern, extents, resp, owners = looked_up
     if xs.size <= max_joint:
         box = _joint_box(residual.shape, xs, ys, kern, extents, owners, profile.fwhm, footprints)
+        box = _across_cut(box, cut)
         fit = _fit_box(residual, variance, box, xs, ys, kern, profile, noise_correlation, resp)
         per_star = [(fit, i, box) for i in range(xs.size)]
         pair = _unresolved(residual, variance, box, fit, profile, noise_correlation)
@@ -799,6 +814,23 @@ def _joint_box(shape, xs, ys, kern, extents, owners, fwhm, footprints):
     wide = _stamp(shape, *corners, kern, fwhm, extents)
     return (min(wide[0], box[0]), max(wide[1], box[1]), min(wide[2], box[2]),
             max(wide[3], box[3]), box[4])  # fmt: skip
+
+
+def _across_cut(box: tuple, cut: np.ndarray | None) -> tuple:
+    """``box`` (a :func:`_stamp` tuple) widened across the scan over ``cut``'s rows in it.
+
+    The stamp grows by the number of rows of ``box`` that hold a ``cut``
+    pixel, on each side (within the image), so that a star whose core a
+    saturated column cuts is fitted on as many rows of wings as a star
+    without one.  A box without such pixels is returned as it is.
+    """
+    if cut is None:
+        return box
+    y0, y1, x0, x1, clipped = box
+    rows = int(np.count_nonzero(cut[y0:y1, x0:x1].any(axis=1)))
+    if not rows:
+        return box
+    return (max(y0 - rows, 0), min(y1 + rows, cut.shape[0]), x0, x1, clipped)
 
 
 def _stamps(shape, xs, ys, extents, bounds, fwhm) -> list[tuple]:
@@ -944,6 +976,12 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
             members = groups[i]
             boxes[g] = _joint_box(residual.shape, [m[0] for m in members], [m[1] for m in members],
                                   None, extents_i, owners, fwhm, options["footprints"])  # fmt: skip
+    if options["cut"] is not None:
+        cut = options["cut"]
+        before = np.concatenate([[0], np.cumsum(cut.any(axis=1))])
+        rows = np.array([b[:2] for b in boxes], dtype=np.int64).reshape(-1, 2)
+        for g in np.flatnonzero(before[rows[:, 1]] > before[rows[:, 0]]).tolist():
+            boxes[g] = _across_cut(boxes[g], cut)
     dx, dy, samples = _kernel_samples(kern)
     sigmas, weights = profile.mixture()
     stars, quadrupoles, fits = fit_groups(

@@ -25,7 +25,13 @@ stamp widened to the whole stretch.  :func:`saturated_columns` finds such
 clipped pixels; detect takes them as pixels without data (their values are
 clipped or spilled charge all along: common practice, as for a bad column)
 and they make no footprint, so the stars beside them are searched, fitted
-and flagged (SATURATED, NEAR_FLAGGED, EDGE from the mask) one by one.
+and flagged (SATURATED, NEAR_FLAGGED, EDGE from the mask) one by one.  A
+star whose core such a column cuts is one source too, fitted on the wings
+beyond the column as a star cut by a bad column is: the searches' segments
+cross the column's rows, the fit starts at the matched filter's peak (the
+centroid of one side's pixels lay up to half the column's width off) on a
+stamp widened across the column, and the star is flagged SATURATED | EDGE
+(its core reached clipped pixels without data).
 """
 
 from __future__ import annotations
@@ -42,6 +48,7 @@ __all__ = [
     "Footprints",
     "dilate_sparse",
     "footprint_bounds",
+    "merge_on_column",
     "merge_on_footprints",
     "on_footprint",
     "saturated_columns",
@@ -57,8 +64,13 @@ CLIPPED = MaskBit.SATURATED | MaskBit.BLEED
 #: (the brightest synthetic star, r = 14.7, its core and bleed) and none reaches
 #: an end of its stretch; the columns the three bright Gaia stars saturate for
 #: the night, and the twilight bleeds of the first stretch, run 363 to 1074 px
-#: from an end.  A star at a seam would need a bleed of 128 px within the
-#: stretch to be taken for a column.
+#: from an end.  A star at the night's first or last column would need a
+#: bleed of 128 px within the stretch to be taken for a column.  At a seam
+#: with a neighbour the length is not the test: a column saturated through
+#: the neighbour that stops saturating a few pixels past the seam holds few
+#: clipped pixels here, but runs clipped across the neighbour's whole edge
+#: from the plane's end, which a star's core and bleed do only when they
+#: are longer than twice that edge (:func:`saturated_columns`).
 COLUMN_RUN = 128
 
 
@@ -119,18 +131,34 @@ class Footprints:
 
 
 def saturated_columns(
-    clipped: np.ndarray, no_data: np.ndarray, min_run: int = COLUMN_RUN
+    clipped: np.ndarray,
+    no_data: np.ndarray,
+    min_run: int = COLUMN_RUN,
+    own_columns: tuple[int, int] | None = None,
 ) -> np.ndarray | None:
     """The clipped pixels of columns saturated through the stretch (not a star's).
 
     A run along the scan (a row of the rectified stretch: one raw column
-    over time) that holds at least ``min_run`` clipped pixels
-    (:data:`CLIPPED` bits) and reaches the first or the last column of the
-    plane, across pixels without data if need be (the chip's outside, rows
-    missing from the night), is a column saturated from the stretch's edge
-    on: a star's clipped core and bleed lie within the stretch.  Every
-    clipped pixel connected to such a run (8-connected) is returned: the
-    column's partly saturated neighbours and a star whose clipped core
+    over time) of clipped pixels (:data:`CLIPPED` bits) that reaches the
+    first or the last column of the plane, across pixels without data if
+    need be (the chip's outside, rows missing from the night), is a column
+    saturated from the stretch's edge on when
+
+    - it holds at least ``min_run`` clipped pixels (a star's clipped core
+      and bleed are shorter), or
+    - the plane holds a neighbour's edge columns at that end (``own_columns``)
+      and the run crosses them clipped from the plane's end into the
+      stretch's own columns: a column saturated through the neighbour that
+      stops (or starts) saturating just past the seam.  Its clipped pixels
+      here may be few (the neighbour's edge, 31 px on the demo nights, and
+      a few more), but a star's clipped core and bleed reach the plane's
+      end only if they run on beyond its neighbour's whole edge: a star
+      within a few pixels of the seam with a bleed of twice that edge.
+      Across an edge without a neighbour (no data, not clipped) this does
+      not apply.
+
+    Every clipped pixel connected to such a run (8-connected) is returned:
+    the column's partly saturated neighbours and a star whose clipped core
     touches the column come with it.
 
     Parameters
@@ -142,6 +170,10 @@ def saturated_columns(
         Pixels without data (whatever their bits).
     min_run : int
         Fewest clipped pixels of such a run, pixels.
+    own_columns : (int, int) or None
+        Array columns ``[a, b)`` of the stretch's own when the plane holds
+        its neighbours' edge columns beyond them (detect's ``own_columns``);
+        None: no neighbour's edge.
 
     Returns
     -------
@@ -154,11 +186,16 @@ def saturated_columns(
     # the rows holding any clipped pixel first (a tenth of the cost of
     # counting them in every row: 0.15 ms against 1.4 ms on a clean
     # 1035 x 4096 stretch), then those holding enough
+    nx = clipped.shape[1]
     rows = np.flatnonzero(clipped.any(axis=1))
-    rows = rows[np.count_nonzero(clipped[rows], axis=1) >= min_run]
+    seams = _seams(own_columns, nx)
+    # rows clipped across a seam with a neighbour's edge, whatever their count
+    across = np.zeros(rows.size, bool)
+    for a, _end in seams:
+        across |= clipped[rows, a - 1] & clipped[rows, a]
+    rows = rows[across | (np.count_nonzero(clipped[rows], axis=1) >= min_run)]
     if not rows.size:
         return None
-    nx = clipped.shape[1]
     sub = clipped[rows]
     either = (sub | np.asarray(no_data)[rows]).reshape(-1)
     # runs of clipped-or-no-data pixels along each row: numbered by where
@@ -175,6 +212,15 @@ def saturated_columns(
     ends[run[nx - 1 :: nx]] = True  # ... and to the last
     ends[0] = False
     long = ends & (clipped_in >= min_run)
+    flat_sub = sub.reshape(-1)
+    for a, end in seams:
+        # runs from the plane's end (column ``end``) clipped across the seam
+        # between columns a - 1 and a: the run holds both (runs are
+        # contiguous) and the end
+        start = run[end::nx]
+        both = (run[a - 1 :: nx] == start) & (run[a::nx] == start)
+        both &= flat_sub[a - 1 :: nx] & flat_sub[a::nx]
+        long[start[both & (start > 0)]] = True
     if not long.any():
         return None
     seeds = (long[run] & sub.reshape(-1)).reshape(sub.shape)
@@ -184,6 +230,23 @@ def saturated_columns(
     chosen = np.unique(region[np.searchsorted(where, seed_where)])
     out = np.zeros(clipped.shape, bool)
     out.reshape(-1)[where[np.isin(region, chosen)]] = True
+    return out
+
+
+def _seams(own_columns: tuple[int, int] | None, nx: int) -> list[tuple[int, int]]:
+    """``[(a, end), ...]``: each seam with a neighbour's edge beyond it.
+
+    ``a`` is the column after the seam (the seam lies between ``a - 1`` and
+    ``a``), ``end`` the plane's column at that side's end.
+    """
+    if own_columns is None:
+        return []
+    first, stop = int(own_columns[0]), int(own_columns[1])
+    out = []
+    if 0 < first < nx:
+        out.append((first, 0))
+    if 0 < stop < nx:
+        out.append((stop, nx - 1))
     return out
 
 
@@ -348,6 +411,73 @@ def merge_on_footprints(segm, x: np.ndarray, y: np.ndarray, footprints) -> bool:
     if not groups:
         return False
     _merge_labels(segm, groups)
+    return True
+
+
+def merge_on_column(
+    segm, parent: dict, x: np.ndarray, y: np.ndarray, columns, reach: float
+) -> bool:
+    """Merge the segments that start on a saturated column within ``reach`` along the scan.
+
+    The searches' segments cross a saturated column's rows, so a star
+    whose core the column hides is one segment; but a star whose own
+    clipped core joins the column (a saturated star on it, or the star that
+    saturates the column) leaves no data over many rows, the matched
+    filter has nothing to weigh across them, and the star was two segments,
+    one starting at each of the column's edges (a very bright star of the
+    demo nights: two sources 10 px apart across the column, both
+    FIT_FAILED).  Segments that start on the column's pixels at columns
+    less than ``reach`` apart are one star, as the sources on one saturated
+    footprint are (a real pair on the column could not be measured there
+    anyway), if the column's pixels join them across the scan.
+
+    Parameters
+    ----------
+    segm : `~pipeline.stages.detect._find.Segmentation`
+        Modified in place (as :func:`merge_on_footprints` does).
+    parent : dict
+        :func:`~pipeline.stages.detect._find.find_sources`' map of each
+        label to the key its split segment's children share; the labels
+        merged away are removed from it.
+    x, y : ndarray
+        Start position of each segment, in ``segm.labels`` order (pixels).
+    columns : ndarray of bool or None
+        :func:`saturated_columns`.
+    reach : float
+        Largest distance along the scan (axis 1) between the starts of one
+        star's segments, pixels (about a seeing FWHM).
+
+    Returns
+    -------
+    bool
+        Whether any segment was merged.
+    """
+    if columns is None:
+        return False
+    labels = np.asarray(segm.labels)
+    ny, nx = columns.shape
+    ix = np.clip(np.round(np.nan_to_num(x)).astype(int), 0, nx - 1)
+    iy = np.clip(np.round(np.nan_to_num(y)).astype(int), 0, ny - 1)
+    on = np.flatnonzero(columns[iy, ix])
+    if on.size < 2:
+        return False
+    # chains of starts on the column, each within ``reach`` of the next
+    # along the scan and joined to it across the scan by the column's pixels
+    # (not another column's at the same place along the scan)
+    on = on[np.lexsort((iy[on], ix[on]))]
+    xs = np.asarray(x, dtype=float)[on]
+    joined = np.diff(xs) <= reach
+    for k in np.flatnonzero(joined).tolist():
+        lo, hi = sorted((int(iy[on[k]]), int(iy[on[k + 1]])))
+        joined[k] = bool(columns[lo : hi + 1, ix[on[k]]].all())
+    breaks = np.flatnonzero(~joined) + 1
+    groups = [labels[part] for part in np.split(on, breaks) if part.size > 1]
+    if not groups:
+        return False
+    _merge_labels(segm, groups)
+    for same in groups:
+        for label in same[1:].tolist():
+            parent.pop(label, None)
     return True
 
 
