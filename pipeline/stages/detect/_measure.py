@@ -230,6 +230,11 @@ class SeeingStamp:
     dy: np.ndarray
     response: np.ndarray
 
+    @property
+    def clipped(self) -> bool:
+        """Whether the stamp holds clipped pixels (data without variance: a saturated footprint)."""
+        return bool(np.any(np.isfinite(self.data) & ~(self.variance > 0)))
+
 
 def seeing_stamps(
     residual,
