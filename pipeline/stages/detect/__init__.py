@@ -1493,6 +1493,9 @@ STAGE = Stage(
     #     3 errors off moffat_beta (seeing table columns beta, beta_fit,
     #     beta_err); the refit tries the 13 grid widths around the first fit's
     #     FWHM instead of all 41
-    version=17,
+    # 18: the Moffat index fitted on the seeing stars without clipped pixels,
+    #     its walk with a second, finer parabola along the width at each index
+    #     and a third walk along the index (both had pulled it low)
+    version=18,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
