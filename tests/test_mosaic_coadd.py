@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from astropy.io import fits
 
-from pipeline.masks import MASK_DTYPE
+from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic import (
     CoaddOptions,
     NightImage,
@@ -168,6 +168,30 @@ def test_a_sky_that_changes_along_the_scan_is_matched_not_rejected():
     reference = coadd_numpy(images, variances, flags)
     np.testing.assert_allclose(planes.image, reference.image, rtol=1e-6, atol=1e-5)
     np.testing.assert_array_equal(planes.rejected, reference.rejected)
+
+
+@pytest.mark.parametrize("ignored", ["GAP", "ZERO_POINT"])
+def test_a_night_without_a_usable_pixel_on_the_tile_is_left_out(ignored):
+    # Three nights of blank sky on a tile wide enough for several level blocks;
+    # every pixel of the third is flagged with a bit the co-add ignores (a
+    # readout gap over the whole tile, or, with ZERO_POINT in ignore_flags,
+    # a stretch whose zero point a passing cloud made unreliable: a simulated
+    # three-night mosaic failed so, "shape mismatch ... (8, 8) and (2, 2)").
+    # The co-add is the other two nights'.  Invented data: self-consistency.
+    rng = np.random.default_rng(21)
+    shape = (3, 256, 1024)
+    images = (np.array([10.0, 20.0, 30.0])[:, None, None] + rng.normal(0.0, 1.0, shape)).astype(
+        np.float32
+    )
+    variances = np.ones(shape, np.float32)
+    flags = np.zeros(shape, MASK_DTYPE)
+    flags[2] = int(MaskBit[ignored])
+    ignore = (*CoaddOptions().ignore_flags, "ZERO_POINT")
+    planes = coadd(images, variances, flags, ignore_flags=ignore)
+    assert np.all(planes.coverage == 2)
+    assert planes.offsets[2] == 0.0
+    two = coadd(images[:2], variances[:2], flags[:2], ignore_flags=ignore)
+    np.testing.assert_allclose(planes.image, two.image, atol=1e-5)
 
 
 def test_star_fluxes_survive_rejection_in_mixed_seeing(coadds):

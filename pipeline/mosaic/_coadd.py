@@ -347,17 +347,21 @@ def _background_grid(
     the variance plane ripple from pixel to pixel; the block median is the
     sky's, and varies smoothly (interpolated bilinearly between the block
     centres).  Blocks without data take the median of the other blocks; a
-    tile less than two blocks wide gets one value.  NaN without any data.
+    tile less than two blocks wide gets one value.  NaN without any data, in
+    the shape the image's blocks give (every night's grid on a tile has the
+    same shape, so that they stack; a night with no usable pixel there, all
+    of them flagged, is one of them).
     """
     from pipeline.mosaic._coadd_jit import block_medians
 
     grid = block_medians(variance, valid, block, stride)
     good = np.isfinite(grid)
+    shape = grid.shape if min(grid.shape) >= 2 else (2, 2)
     if not good.any():
-        return np.full((2, 2), np.nan)
+        return np.full(shape, np.nan)
     grid = np.where(good, grid, np.median(grid[good]))
     if min(grid.shape) < 2:
-        return np.full((2, 2), np.median(grid))
+        return np.full(shape, np.median(grid))
     return grid
 
 
@@ -488,6 +492,7 @@ def _level_offsets(images: np.ndarray, valid: np.ndarray, weights: np.ndarray) -
     totals = weights.sum(axis=(1, 2))
     if totals.sum() > 0:
         grids -= np.tensordot(totals, grids, axes=1) / totals.sum()
+    grids[totals == 0] = 0.0  # a night without a usable pixel here has no level to shift
     return grids
 
 
