@@ -798,8 +798,17 @@ def mosaic_tile(
     # The nights' weights for their stars' kernels: the co-add's, w = s / (sky variance)
     # (its block medians are the sky's; one value per night is enough for kernels that
     # differ little between nights).
+    # A night none of whose pixels here the co-add may use (all flagged with
+    # ignore_flags) adds no star light: no weight in the kernels, the seeing
+    # mix or the errors.
+    ignored = MASK_DTYPE.type(_flag_bits(options.ignore_flags))
+    usable = [
+        bool(np.any(np.isfinite(image) & ((flag & ignored) == 0)))
+        for image, flag in zip(images, flags, strict=True)
+    ]
     night_weight = {
-        p[0]: s / _sky_variance(v) for p, s, v in zip(planes, scale, variances, strict=True)
+        p[0]: s / _sky_variance(v) if has else 0.0
+        for p, s, v, has in zip(planes, scale, variances, usable, strict=True)
     }
     kernels = carried_kernels(kept, tile, [night_weight.get(p.night, 0.0) for p in kept])
     # a night's flux scale is off by its zero point's error (the largest of its products)
