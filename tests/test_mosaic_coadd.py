@@ -194,7 +194,7 @@ def test_a_night_without_a_usable_pixel_on_the_tile_is_left_out(ignored):
     np.testing.assert_allclose(planes.image, two.image, atol=1e-5)
 
 
-def test_a_night_the_coadd_cannot_use_adds_nothing_to_the_seeing_or_the_errors(nights):
+def test_a_night_the_coadd_cannot_use_is_left_out_of_the_seeing_and_the_errors(nights):
     # Night 0 (the best seeing, 1.2 px sigma) with every pixel flagged
     # ZERO_POINT, which ignore_flags leaves out: it adds no light, so it must
     # not weigh in the tile's seeing mix (the PSF its catalogue fits), its
@@ -214,6 +214,9 @@ def test_a_night_the_coadd_cannot_use_adds_nothing_to_the_seeing_or_the_errors(n
     options = CoaddOptions(ignore_flags=(*CoaddOptions().ignore_flags, "ZERO_POINT"))
     with_flagged = mosaic_tile([flagged, *others], TILE, options)
     without = mosaic_tile(others, TILE, options)
+    # left out, and its row of the nights' table says why
+    assert with_flagged.nights == without.nights
+    assert with_flagged.excluded == {0: "every pixel on the tile flagged with ignore_flags"}
     assert [s[0] for s in with_flagged.seeing] == [s[0] for s in without.seeing]
     assert with_flagged.zero_point_error == pytest.approx(without.zero_point_error)
     assert with_flagged.position_error == pytest.approx(without.position_error)

@@ -786,6 +786,19 @@ def mosaic_tile(
         reached = [i for i, p in enumerate(planes) if p is not None]
         images, variances, flags = images[reached], variances[reached], flags[reached]
     planes = [p for p in planes if p is not None]
+    # A night none of whose pixels here the co-add may use (every one flagged
+    # with ignore_flags: a cloudy stretch's ZERO_POINT, a gap) adds no light:
+    # it is left out like a night beyond the limits, so that it weighs in
+    # neither the seeing mix, the kernels nor the errors.
+    usable = _usable_nights(images, flags, options.ignore_flags)
+    if 0 < len(usable) < len(planes):
+        for k in sorted(set(range(len(planes))) - set(usable)):
+            for i, product in enumerate(products):
+                if product.night == planes[k][0] and i not in excluded:
+                    excluded[i] = "every pixel on the tile flagged with ignore_flags"
+                    log.info("night %s left out: %s", product.night, excluded[i])
+        images, variances, flags = images[usable], variances[usable], flags[usable]
+        planes = [planes[k] for k in usable]
     seeing = {p.night: p.seeing for p in kept}
     seeing_beta = {p.night: p.seeing_beta for p in kept}
     pixel = {p.night: pixel_arcsec(p.wcs, p.image.shape) for p in kept}
@@ -798,17 +811,8 @@ def mosaic_tile(
     # The nights' weights for their stars' kernels: the co-add's, w = s / (sky variance)
     # (its block medians are the sky's; one value per night is enough for kernels that
     # differ little between nights).
-    # A night none of whose pixels here the co-add may use (all flagged with
-    # ignore_flags) adds no star light: no weight in the kernels, the seeing
-    # mix or the errors.
-    ignored = MASK_DTYPE.type(_flag_bits(options.ignore_flags))
-    usable = [
-        bool(np.any(np.isfinite(image) & ((flag & ignored) == 0)))
-        for image, flag in zip(images, flags, strict=True)
-    ]
     night_weight = {
-        p[0]: s / _sky_variance(v) if has else 0.0
-        for p, s, v, has in zip(planes, scale, variances, usable, strict=True)
+        p[0]: s / _sky_variance(v) for p, s, v in zip(planes, scale, variances, strict=True)
     }
     kernels = carried_kernels(kept, tile, [night_weight.get(p.night, 0.0) for p in kept])
     # a night's flux scale is off by its zero point's error (the largest of its products)
@@ -876,6 +880,16 @@ def mosaic_tile(
             if seeing[night] is not None and night_weight[night] > 0
         ),
     )
+
+
+def _usable_nights(images: np.ndarray, flags: np.ndarray, ignore_flags: Sequence[str]) -> list[int]:
+    """Indices of the nights with a pixel that has data and none of ``ignore_flags``."""
+    ignored = MASK_DTYPE.type(_flag_bits(ignore_flags))
+    return [
+        i
+        for i, (image, flag) in enumerate(zip(images, flags, strict=True))
+        if np.any(np.isfinite(image) & ((flag & ignored) == 0))
+    ]
 
 
 def pixel_arcsec(wcs: WCS, shape: tuple[int, int]) -> float:
