@@ -430,6 +430,8 @@ def test_a_sky_ramp_that_would_make_the_sky_negative_is_refused():
     site, camera = _site(41.65), _camera(n_columns=64, tdi_rows=256)
     with pytest.raises(ConfigError, match=r"sky_ramp 2 makes the sky negative .*below 2\.00"):
         simulate_night(site, camera, _options(n_blocks=2, sky={"sky_ramp": 2.0}))
+    # with the start-of-scan ramp the first rows' charge starts with the night
+    simulate_night(site, camera, _options(n_blocks=2, start_ramp=True, sky={"sky_ramp": 2.0}))
     night = simulate_night(site, camera, _options(n_blocks=2, sky={"sky_ramp": 1.9}))
     sky = np.concatenate([b[1][:, :64].astype(float).mean(axis=1) for b in night.blocks]) - 1000.0
     assert np.all(sky > 0)

@@ -638,7 +638,8 @@ def simulate_night(
     n_tdi, n_cols = camera.tdi_rows, camera.n_columns
     n_rows = options.n_blocks * options.block_rows
     duration = n_rows * dt
-    _check_sky_ramp(options.sky.sky_ramp, duration, n_tdi * dt)
+    if not options.start_ramp:  # else the first rows' charge starts with the night
+        _check_sky_ramp(options.sky.sky_ramp, duration, n_tdi * dt)
     psf = _psf_pixels(options.psf, model.pixel_scale)
     obs_time = model.start + duration / 2.0 * u.s
     timings["geometry"] = time.perf_counter() - tic
