@@ -460,7 +460,11 @@ def _cmd_simulate(args: argparse.Namespace, config: Config) -> int:
         return EXIT_USAGE
     out = Path(args.output) if args.output else Path(config.night.raw_dir)
     with cli_logging(args.verbose):
-        written = simulate_to_folders(config.site(), config.camera(), options, out)
+        try:
+            written = simulate_to_folders(config.site(), config.camera(), options, out)
+        except ConfigError as exc:  # options that only the night's geometry shows wrong
+            print(f"zdrift simulate: {exc}", file=sys.stderr)
+            return EXIT_USAGE
     for _, folder, paths in written:
         print(f"wrote {len(paths)} files to {folder}")
     return EXIT_OK

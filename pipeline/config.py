@@ -54,7 +54,7 @@ import importlib.util
 import os
 import types
 import typing
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
@@ -867,6 +867,50 @@ def _fields_at(model: type[BaseModel], loc: KeyPath) -> list[str]:
     return []
 
 
+def _sections(
+    model: type[BaseModel], prefix: tuple[str, ...] = (), seen: tuple[type, ...] = ()
+) -> Iterator[tuple[tuple[str, ...], list[str]]]:
+    """Every section of ``model`` (its own, then each nested one): key path, field names."""
+    yield prefix, list(model.model_fields)
+    for name, info in model.model_fields.items():
+        for member in _unwrap(info.annotation):
+            nested = isinstance(member, type) and issubclass(member, BaseModel)
+            if nested and member not in (*seen, model):  # a model holding itself: once
+                yield from _sections(member, (*prefix, name), (*seen, model))
+
+
+def _other_homes(model: type[BaseModel], loc: KeyPath) -> list[str]:
+    """Dotted paths where the unknown key ``loc[-1]`` is valid, in other sections.
+
+    A key written in the wrong section (``flip_columns`` under ``site``, a
+    stage's option under another stage) is valid somewhere: the user needs to
+    be told where, not only which keys this section has.
+    """
+    key = str(loc[-1])
+    here = tuple(str(part) for part in loc[:-1])
+    # The simulator's section describes synthetic data, not the reduction: a
+    # reduction key is never meant to go there (detect's seeing is not the
+    # simulated ``simulate.psf.fwhm``), so it is offered only from inside it.
+    inside_simulate = here[:1] == ("simulate",)
+    return [
+        ".".join((*prefix, key))
+        for prefix, fields in _sections(model)
+        if key in fields and prefix != here and (inside_simulate or prefix[:1] != ("simulate",))
+    ]
+
+
+def _unknown_key_text(model: type[BaseModel], loc: KeyPath) -> str:
+    """The message for an unknown key: a near spelling, where it belongs, the valid keys."""
+    valid = _fields_at(model, loc[:-1])
+    close = difflib.get_close_matches(str(loc[-1]), valid, n=1, cutoff=0.6)
+    hint = f"did you mean {close[0]!r}? " if close else ""
+    homes = _other_homes(model, loc)
+    if homes:
+        shown = ", ".join(homes[:3]) + (f" (and {len(homes) - 3} more)" if len(homes) > 3 else "")
+        hint += f"{loc[-1]!r} is a key of another section ({shown}): move it there? "
+    return f"unknown key; {hint}valid keys here: {', '.join(valid)}"
+
+
 def _where(loc: KeyPath, locations: Locations, label: str) -> str:
     for depth in range(len(loc), -1, -1):
         if loc[:depth] in locations:
@@ -884,10 +928,7 @@ def _format_errors(
         key_path = ".".join(str(part) for part in loc) or "(top level)"
         where = _where(loc, locations, label)
         if error["type"] == "extra_forbidden":
-            valid = _fields_at(model, loc[:-1])
-            close = difflib.get_close_matches(str(loc[-1]), valid, n=1, cutoff=0.6)
-            hint = f"did you mean {close[0]!r}? " if close else ""
-            text = f"unknown key; {hint}valid keys here: {', '.join(valid)}"
+            text = _unknown_key_text(model, loc)
         elif error["type"] == "missing":
             text = "missing required key"
         else:

@@ -117,8 +117,41 @@ MISSPELLINGS = [
 ]
 
 
-@pytest.mark.parametrize(("extra", "pattern"), MISSPELLINGS)
-def test_misspelled_key_names_file_line_path_and_suggestion(
+# A key written in the wrong section is valid in another one: the message says
+# which, so that the user moves it (the section's own keys alone do not tell).
+WRONG_SECTION = [
+    (
+        "site:\n  flip_columns: true\n",
+        r"line 9: site\.flip_columns: unknown key; 'flip_columns' is a key of another "
+        r"section \(camera\.flip_columns\): move it there\? valid keys here: latitude",
+    ),
+    (
+        "camera:\n  latitude: 10\n",
+        r"camera\.latitude: unknown key; 'latitude' is a key of another section "
+        r"\(site\.latitude\)",
+    ),
+    (  # a stage's option under another stage
+        "stages:\n  smooth:\n    factor: 3\n",
+        r"stages\.smooth\.factor: unknown key; 'factor' is a key of another section "
+        r"\(stages\.scale\.factor\)",
+    ),
+    (  # a stage's option in the night section
+        "  width: 5\n",
+        r"run\.width: unknown key; 'width' is a key of another section \(stages\.smooth\.width\)",
+    ),
+]
+
+
+def test_a_reduction_key_is_not_sent_to_the_simulate_section(night_file: Path) -> None:
+    # simulate.psf.fwhm is the simulated seeing: never where a reduction key goes
+    night_file.write_text(NIGHT_YAML + "stages:\n  scale:\n    fwhm: 3\n")
+    with pytest.raises(ConfigError) as info:
+        load_config(night_file, graph=TOY_GRAPH)
+    assert "stages.scale.fwhm: unknown key; valid keys here: factor" in str(info.value)
+
+
+@pytest.mark.parametrize(("extra", "pattern"), MISSPELLINGS + WRONG_SECTION)
+def test_unknown_key_names_file_line_path_and_suggestion(
     night_file: Path, extra: str, pattern: str
 ) -> None:
     night_file.write_text(NIGHT_YAML + extra)

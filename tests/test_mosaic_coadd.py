@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from astropy.io import fits
 
-from pipeline.masks import MASK_DTYPE
+from pipeline.masks import MASK_DTYPE, MaskBit
 from pipeline.mosaic import (
     CoaddOptions,
     NightImage,
@@ -168,6 +168,59 @@ def test_a_sky_that_changes_along_the_scan_is_matched_not_rejected():
     reference = coadd_numpy(images, variances, flags)
     np.testing.assert_allclose(planes.image, reference.image, rtol=1e-6, atol=1e-5)
     np.testing.assert_array_equal(planes.rejected, reference.rejected)
+
+
+@pytest.mark.parametrize("ignored", ["GAP", "ZERO_POINT"])
+def test_a_night_without_a_usable_pixel_on_the_tile_is_left_out(ignored):
+    # Three nights of blank sky on a tile wide enough for several level blocks;
+    # every pixel of the third is flagged with a bit the co-add ignores (a
+    # readout gap over the whole tile, or, with ZERO_POINT in ignore_flags,
+    # a stretch whose zero point a passing cloud made unreliable: a simulated
+    # three-night mosaic failed so, "shape mismatch ... (8, 8) and (2, 2)").
+    # The co-add is the other two nights'.  Invented data: self-consistency.
+    rng = np.random.default_rng(21)
+    shape = (3, 256, 1024)
+    images = (np.array([10.0, 20.0, 30.0])[:, None, None] + rng.normal(0.0, 1.0, shape)).astype(
+        np.float32
+    )
+    variances = np.ones(shape, np.float32)
+    flags = np.zeros(shape, MASK_DTYPE)
+    flags[2] = int(MaskBit[ignored])
+    ignore = (*CoaddOptions().ignore_flags, "ZERO_POINT")
+    planes = coadd(images, variances, flags, ignore_flags=ignore)
+    assert np.all(planes.coverage == 2)
+    assert planes.offsets[2] == 0.0
+    two = coadd(images[:2], variances[:2], flags[:2], ignore_flags=ignore)
+    np.testing.assert_allclose(planes.image, two.image, atol=1e-5)
+
+
+def test_a_night_the_coadd_cannot_use_is_left_out_of_the_seeing_and_the_errors(nights):
+    # Night 0 (the best seeing, 1.2 px sigma) with every pixel flagged
+    # ZERO_POINT, which ignore_flags leaves out: it adds no light, so it must
+    # not weigh in the tile's seeing mix (the PSF its catalogue fits), its
+    # zero-point or position errors.  On a simulated three-night mosaic it
+    # still did: the tile's bright stars came out 0.007-0.010 mag too bright.
+    import dataclasses
+
+    clean, _ = nights
+    errors = {"zero_point_error": 0.002, "position_error": (1e-6, 1e-6)}
+    flagged = dataclasses.replace(
+        clean[0],
+        flags=np.full(NIGHT_SHAPE, MaskBit.ZERO_POINT, MASK_DTYPE),
+        zero_point_error=0.0001,  # a tiny error that would pull the co-added one down
+        position_error=(1e-8, 1e-8),
+    )
+    others = [dataclasses.replace(night, **errors) for night in clean[1:3]]
+    options = CoaddOptions(ignore_flags=(*CoaddOptions().ignore_flags, "ZERO_POINT"))
+    with_flagged = mosaic_tile([flagged, *others], TILE, options)
+    without = mosaic_tile(others, TILE, options)
+    # left out, and its row of the nights' table says why
+    assert with_flagged.nights == without.nights
+    assert with_flagged.excluded == {0: "every pixel on the tile flagged with ignore_flags"}
+    assert [s[0] for s in with_flagged.seeing] == [s[0] for s in without.seeing]
+    assert with_flagged.zero_point_error == pytest.approx(without.zero_point_error)
+    assert with_flagged.position_error == pytest.approx(without.position_error)
+    np.testing.assert_allclose(with_flagged.planes.image, without.planes.image, atol=1e-4)
 
 
 def test_star_fluxes_survive_rejection_in_mixed_seeing(coadds):

@@ -31,6 +31,12 @@ CAMERA = {"n_columns": 48, "tdi_rows": 128, "pixel_size": 15.0, "focal_length": 
 TO_CATALOG = ("--to", "catalog")
 
 
+#: One block as long as the chip: its first rows' charge began a whole night
+#: earlier, where the helper's sky ramp of 4 would make the sky negative (the
+#: simulator refuses ramps of 1 or more there).
+ONE_BLOCK = {"n_blocks": 1, "block_rows": 128, "sky": {"sky_ramp": 0.9}}
+
+
 def _night(tmp_path: Path, *, camera=None, simulate=None, stages=None, run=None) -> Path:
     """Simulate a small night under ``tmp_path`` and write its config; return the config."""
     config = {
@@ -92,7 +98,7 @@ def test_store_reads_back_an_empty_table_with_vector_columns(tmp_path):
 def test_a_night_within_the_start_ramp_says_how_to_fix_it(tmp_path, capsys):
     """Regression: a night no longer than TDIROWS (the demo's case) crashed in
     column_stats when every row was taken for the start-of-scan ramp."""
-    config = _night(tmp_path, simulate={"n_blocks": 1, "block_rows": 128})
+    config = _night(tmp_path, simulate=ONE_BLOCK)
     capsys.readouterr()
     assert main(["run", str(config), "--to", "calibrate"]) == 1
     out = capsys.readouterr().out
@@ -111,7 +117,7 @@ def test_a_night_within_the_start_ramp_says_how_to_fix_it(tmp_path, capsys):
 def test_a_night_too_short_for_the_column_solve_says_how_to_fix_it(tmp_path, capsys):
     """Fewer statistics blocks than min_blocks used to flag every column BAD and
     leave an empty calibrated night with exit 0; now the solve fails and says why."""
-    config = _night(tmp_path, simulate={"n_blocks": 1, "block_rows": 128})
+    config = _night(tmp_path, simulate=ONE_BLOCK)
     fixed = ["--set", "stages.ingest.start_ramp=none"]  # 128 rows: 2 blocks of 64
     capsys.readouterr()
     assert main(["run", str(config), "--to", "calibrate", *fixed]) == 1
@@ -124,7 +130,7 @@ def test_a_short_night_gets_blocks_enough_for_the_column_solve(tmp_path, capsys)
     """Left unset, the statistics blocks shrink on a short night (an eighth of its
     rows, at least 16) so that its column solve has eight of them, and the
     night is calibrated (with the default 256 rows it had one block and failed)."""
-    config = _night(tmp_path, simulate={"n_blocks": 1, "block_rows": 128})
+    config = _night(tmp_path, simulate=ONE_BLOCK)
     unset = [
         "--set",
         "stages.ingest.start_ramp=none",

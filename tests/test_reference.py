@@ -210,6 +210,48 @@ def test_a_band_missed_in_right_ascension_points_at_the_longitude(tmp_path):
         read_reference(options, SkyBand(40.0, 50.0, 95.0, 105.0), 2016.0)
 
 
+def _coordinates_file(tmp_path, ra, dec, unit, dec_unit="same"):
+    """Two stars written with ``ra``, ``dec`` in ``unit`` (None: no unit in the file)."""
+    stars = Table(
+        {"ra": ra, "dec": dec, "pm_ra": [0.0, 0.0], "pm_dec": [0.0, 0.0], "mag": [10.0, 11.0]}
+    )
+    stars["ra"].unit = unit
+    stars["dec"].unit = unit if dec_unit == "same" else dec_unit
+    path = tmp_path / "two.ecsv"
+    stars.write(path, overwrite=True)
+    return ReferenceOptions(source="file", path=path)
+
+
+def test_coordinates_in_radians_are_named_in_the_error(tmp_path):
+    # Stars at RA 146-147 deg, dec -33 deg written in radians without a unit
+    # (read as degrees, they lie at dec -0.58 deg): the error says they look
+    # like radians and how to declare them, not to check the site's latitude.
+    ra, dec = np.radians([146.5, 147.0]), np.radians([-33.1, -33.0])
+    band = SkyBand(-33.3, -32.9, 145.8, 147.7)
+    with pytest.raises(ReferenceCatalogError, match=r"declinations look like radians") as info:
+        read_reference(_coordinates_file(tmp_path, ra, dec, None), band, 2016.0)
+    assert "units.ra and stages.astrometry.reference.units.dec to rad" in str(info.value)
+    assert "site.latitude" not in str(info.value)
+    # declared in the file, radians are read as such (astropy's unit conversion)
+    out = read_reference(_coordinates_file(tmp_path, ra, dec, "rad"), band, 2016.0)
+    np.testing.assert_allclose(out["dec"].value, [-33.1, -33.0])
+
+
+def test_right_ascensions_in_hours_are_named_in_the_error(tmp_path):
+    # RA 146.5 and 147 deg written as hours (9.7667 h, 9.8 h) in a file that
+    # says deg: the declinations agree, the error says the RAs look like hours.
+    ra, dec = np.array([146.5, 147.0]) / 15.0, [-33.1, -33.0]
+    band = SkyBand(-33.3, -32.9, 145.8, 147.7)
+    with pytest.raises(ReferenceCatalogError, match=r"which look like hours \(times 15"):
+        read_reference(_coordinates_file(tmp_path, ra, dec, "deg"), band, 2016.0)
+    out = read_reference(_coordinates_file(tmp_path, ra, dec, "hourangle", "deg"), band, 2016.0)
+    np.testing.assert_allclose(out["ra"].value, [146.5, 147.0])
+    # right ascensions below 24 deg that are degrees, in a band elsewhere in RA
+    # that 15 times them does not reach: the longitude hint as before
+    with pytest.raises(ReferenceCatalogError, match=r"the declinations agree, so check site"):
+        read_reference(_coordinates_file(tmp_path, [1.0, 2.0], dec, "deg"), band, 2016.0)
+
+
 def test_sky_band_geometry():
     band = SkyBand(10.0, 20.0, 350.0, 10.0)
     mask = band.contains(np.array([355.0, 5.0, 20.0, -5.0, 0.0]), np.array([15, 15, 15, 15, 21]))

@@ -17,6 +17,7 @@ from astropy.time import Time
 from astropy.utils import iers
 from pydantic import ValidationError
 
+from pipeline.exceptions import ConfigError
 from pipeline.geometry.instrument import Camera, Site
 from pipeline.geometry.tdi import first_order_bow
 from pipeline.simulate import (
@@ -419,6 +420,21 @@ def test_luminosity_function_slope():
     # bright limit lowers N(<18) by 10^(-0.33*4) = 5 %, hence the exact form below.
     expected = np.log10((10 ** (0.33 * 22) - 10**4.62) / (10 ** (0.33 * 18) - 10**4.62)) / 4
     assert np.log10(counts[1] / counts[0]) / 4 == pytest.approx(expected, abs=0.005)
+
+
+def test_a_sky_ramp_that_would_make_the_sky_negative_is_refused():
+    # 2 x 256 rows of a 256-row chip: the first rows' exposure began a
+    # crossing (half the night) before row 0 was read, where a ramp of 2
+    # reaches 1 - 2 * 0.5 = 0 (a simulated moonlit night with a ramp of 4 had
+    # its first block's sky clipped at zero, stars and all).
+    site, camera = _site(41.65), _camera(n_columns=64, tdi_rows=256)
+    with pytest.raises(ConfigError, match=r"sky_ramp 2 makes the sky negative .*below 2\.00"):
+        simulate_night(site, camera, _options(n_blocks=2, sky={"sky_ramp": 2.0}))
+    # with the start-of-scan ramp the first rows' charge starts with the night
+    simulate_night(site, camera, _options(n_blocks=2, start_ramp=True, sky={"sky_ramp": 2.0}))
+    night = simulate_night(site, camera, _options(n_blocks=2, sky={"sky_ramp": 1.9}))
+    sky = np.concatenate([b[1][:, :64].astype(float).mean(axis=1) for b in night.blocks]) - 1000.0
+    assert np.all(sky > 0)
 
 
 def test_option_validation():

@@ -236,6 +236,27 @@ def test_missing_reference_magnitudes_or_colours_are_clear_errors():
         run_zeropoint(no_colours)
 
 
+def test_reference_magnitudes_of_another_passband_are_reported():
+    # A reference whose magnitudes are of a bluer band, m_other = m + 0.5 colour
+    # + 1.2 (self-consistency): uncorrected, the colour term leaves 0.5 x the
+    # colours' 0.43 mag spread (uniform over 0-1.5) about the zero point, which
+    # a catalogue in the night's own band does not.
+    catalog, _ = synthetic_catalog(n_stars=1500)
+    other = catalog.copy()
+    other["ref_mag"] = other["ref_mag"] + (1.2 + 0.5 * other["ref_colour"].to_value(u.mag)) * u.mag
+    products = run_zeropoint(other, fit_colour_term=False)
+    assert products["colour_term"]["extra_scatter_mag"] > 0.15
+    reported = [p for p in products[PROBLEMS] if p.startswith("reference stars scatter")]
+    assert len(reported) == 1
+    assert "another passband" in reported[0] and "columns.magnitude" in reported[0]
+    assert "fit_colour_term: true" in reported[0]
+    # The night's own band, its colour term of 0.1 fitted or not (0.043 mag
+    # of scatter left then): nothing reported.
+    for fit_colour_term in (True, False):
+        products = run_zeropoint(catalog, fit_colour_term=fit_colour_term)
+        assert not any(p.startswith("reference stars") for p in products.get(PROBLEMS, []))
+
+
 # ---------------------------------------------------------------------------- science
 
 STAR_MAG = 15.0

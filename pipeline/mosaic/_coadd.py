@@ -347,17 +347,21 @@ def _background_grid(
     the variance plane ripple from pixel to pixel; the block median is the
     sky's, and varies smoothly (interpolated bilinearly between the block
     centres).  Blocks without data take the median of the other blocks; a
-    tile less than two blocks wide gets one value.  NaN without any data.
+    tile less than two blocks wide gets one value.  NaN without any data, in
+    the shape the image's blocks give (every night's grid on a tile has the
+    same shape, so that they stack; a night with no usable pixel there, all
+    of them flagged, is one of them).
     """
     from pipeline.mosaic._coadd_jit import block_medians
 
     grid = block_medians(variance, valid, block, stride)
     good = np.isfinite(grid)
+    shape = grid.shape if min(grid.shape) >= 2 else (2, 2)
     if not good.any():
-        return np.full((2, 2), np.nan)
+        return np.full(shape, np.nan)
     grid = np.where(good, grid, np.median(grid[good]))
     if min(grid.shape) < 2:
-        return np.full((2, 2), np.median(grid))
+        return np.full(shape, np.median(grid))
     return grid
 
 
@@ -488,6 +492,7 @@ def _level_offsets(images: np.ndarray, valid: np.ndarray, weights: np.ndarray) -
     totals = weights.sum(axis=(1, 2))
     if totals.sum() > 0:
         grids -= np.tensordot(totals, grids, axes=1) / totals.sum()
+    grids[totals == 0] = 0.0  # a night without a usable pixel here has no level to shift
     return grids
 
 
@@ -781,6 +786,19 @@ def mosaic_tile(
         reached = [i for i, p in enumerate(planes) if p is not None]
         images, variances, flags = images[reached], variances[reached], flags[reached]
     planes = [p for p in planes if p is not None]
+    # A night none of whose pixels here the co-add may use (every one flagged
+    # with ignore_flags: a cloudy stretch's ZERO_POINT, a gap) adds no light:
+    # it is left out like a night beyond the limits, so that it weighs in
+    # neither the seeing mix, the kernels nor the errors.
+    usable = _usable_nights(images, flags, options.ignore_flags)
+    if 0 < len(usable) < len(planes):
+        for k in sorted(set(range(len(planes))) - set(usable)):
+            for i, product in enumerate(products):
+                if product.night == planes[k][0] and i not in excluded:
+                    excluded[i] = "every pixel on the tile flagged with ignore_flags"
+                    log.info("night %s left out: %s", product.night, excluded[i])
+        images, variances, flags = images[usable], variances[usable], flags[usable]
+        planes = [planes[k] for k in usable]
     seeing = {p.night: p.seeing for p in kept}
     seeing_beta = {p.night: p.seeing_beta for p in kept}
     pixel = {p.night: pixel_arcsec(p.wcs, p.image.shape) for p in kept}
@@ -862,6 +880,16 @@ def mosaic_tile(
             if seeing[night] is not None and night_weight[night] > 0
         ),
     )
+
+
+def _usable_nights(images: np.ndarray, flags: np.ndarray, ignore_flags: Sequence[str]) -> list[int]:
+    """Indices of the nights with a pixel that has data and none of ``ignore_flags``."""
+    ignored = MASK_DTYPE.type(_flag_bits(ignore_flags))
+    return [
+        i
+        for i, (image, flag) in enumerate(zip(images, flags, strict=True))
+        if np.any(np.isfinite(image) & ((flag & ignored) == 0))
+    ]
 
 
 def pixel_arcsec(wcs: WCS, shape: tuple[int, int]) -> float:

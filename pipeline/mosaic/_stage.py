@@ -103,6 +103,8 @@ TILE_STAGE = Stage(
     # 9: the seeing mix takes each night's Moffat index from its SEEBETA card
     # 10: catalogue columns mask_core and mask_near, the tile's FLAGS bits
     # around each source (why it is NEAR_FLAGGED, and whether in its core)
-    version=10,
+    # 11: a night with no usable pixel on the tile (all ignore_flags) is left
+    # out of it: no weight in the seeing mix, the kernels or the errors
+    version=11,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )

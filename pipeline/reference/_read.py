@@ -248,6 +248,7 @@ def _read_file(options: ReferenceOptions, band: SkyBand, obs_epoch, base_dir: Pa
     pieces: list[dict[str, np.ndarray]] = []
     n_read = n_in_band = 0
     dec_range = [np.inf, -np.inf]
+    ra_range = [np.inf, -np.inf]
     limits = (options.magnitude_min, options.magnitude_max)
     names = list(dict.fromkeys(plan.names.values()))
     chunks = table_file.chunks(names, options.chunk_rows, plan.names.get("identifier"))
@@ -257,6 +258,9 @@ def _read_file(options: ReferenceOptions, band: SkyBand, obs_epoch, base_dir: Pa
             dec = np.asarray(raw[plan.names["dec"]], dtype=float) * plan.scale["dec"]
             if np.isfinite(dec).any():
                 dec_range = [min(dec_range[0], np.nanmin(dec)), max(dec_range[1], np.nanmax(dec))]
+            ra = np.asarray(raw[plan.names["ra"]], dtype=float) * plan.scale["ra"]
+            if np.isfinite(ra).any():
+                ra_range = [min(ra_range[0], np.nanmin(ra)), max(ra_range[1], np.nanmax(ra))]
             piece, in_band = _cut_chunk(raw, plan, band, obs_epoch, limits)
             n_in_band += in_band
             pieces.append(piece)
@@ -269,10 +273,48 @@ def _read_file(options: ReferenceOptions, band: SkyBand, obs_epoch, base_dir: Pa
     if n_read == 0:
         raise ReferenceCatalogError(f"reference catalogue {path} is empty: it has no rows.")
     epoch = options.epoch if isinstance(options.epoch, float) else f"column {options.epoch}"
-    return _assemble(pieces, source, epoch, n_read, n_in_band, band, tuple(dec_range), limits)
+    return _assemble(
+        pieces, source, epoch, n_read, n_in_band, band, tuple(dec_range), limits, tuple(ra_range)
+    )
 
 
-def _assemble(pieces, source, epoch, n_read, n_in_band, band, dec_range, limits) -> QTable:
+def _unit_hint(band: SkyBand, ra_range, dec_range) -> str:
+    """Why a catalogue with no star in ``band`` may be read in the wrong unit ('' if not).
+
+    A file whose coordinates are radians (no unit given, so read as degrees)
+    has every declination within +-1.571 "degrees"; one whose right
+    ascensions are hours read as degrees has them within 0-24.  Either is
+    named when the values, converted, would cover the night's band.
+    """
+    config = "stages.astrometry.reference.units"
+    dec_lo, dec_hi = dec_range
+    as_read = dec_lo <= band.dec_max and dec_hi >= band.dec_min
+    if np.isfinite(dec_lo) and not as_read and -np.pi / 2 <= dec_lo <= dec_hi <= np.pi / 2:
+        lo, hi = np.degrees(dec_lo), np.degrees(dec_hi)
+        if lo <= band.dec_max and hi >= band.dec_min:
+            return (
+                f"; its declinations look like radians (times 180/pi they span {lo:.4f} to "
+                f"{hi:.4f} deg, which covers the band): give the ra and dec columns the unit "
+                f"rad in the file, or set {config}.ra and {config}.dec to rad for a file that "
+                "declares no unit"
+            )
+    ra_lo, ra_hi = ra_range
+    if np.isfinite(ra_lo) and 0.0 <= ra_lo <= ra_hi <= 24.0:
+        as_degrees = np.linspace(15.0 * ra_lo, 15.0 * ra_hi, 2000)
+        mid_dec = np.full(as_degrees.size, 0.5 * (band.dec_min + band.dec_max))
+        if band.contains(as_degrees, mid_dec).any():
+            return (
+                f"; its right ascensions span {ra_lo:.4f} to {ra_hi:.4f}, which look like hours "
+                "(times 15 they cover the night's right ascensions): give the ra column the "
+                f"unit hourangle in the file, or set {config}.ra: hourangle for a file that "
+                "declares no unit"
+            )
+    return ""
+
+
+def _assemble(
+    pieces, source, epoch, n_read, n_in_band, band, dec_range, limits, ra_range=(np.nan, np.nan)
+) -> QTable:
     import astropy.units as u
     from astropy.table import QTable
 
@@ -286,11 +328,14 @@ def _assemble(pieces, source, epoch, n_read, n_in_band, band, dec_range, limits)
             else "it has no valid declinations"
         )
         overlaps = dec_range[0] <= band.dec_max and dec_range[1] >= band.dec_min
+        unit_hint = _unit_hint(band, ra_range, dec_range)
         if n_in_band:
             hint = (
                 f"; {n_in_band} stars lie in the band but none within the magnitude limits "
                 f"{limits}, so widen magnitude_min/magnitude_max"
             )
+        elif unit_hint:
+            hint = unit_hint
         elif overlaps:
             # the declinations agree: the right ascensions do not (the night's
             # RA is the local sidereal time, from the site's longitude and the

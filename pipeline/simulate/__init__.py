@@ -638,6 +638,8 @@ def simulate_night(
     n_tdi, n_cols = camera.tdi_rows, camera.n_columns
     n_rows = options.n_blocks * options.block_rows
     duration = n_rows * dt
+    if not options.start_ramp:  # else the first rows' charge starts with the night
+        _check_sky_ramp(options.sky.sky_ramp, duration, n_tdi * dt)
     psf = _psf_pixels(options.psf, model.pixel_scale)
     obs_time = model.start + duration / 2.0 * u.s
     timings["geometry"] = time.perf_counter() - tic
@@ -802,6 +804,26 @@ def simulate_night(
 
 
 #: Mean sidereal day, SI seconds (23 h 56 m 4.0905 s; from memory).
+def _check_sky_ramp(ramp: float, duration: float, crossing: float) -> None:
+    """Refuse a sky ramp that makes the sky negative while the first rows are exposed.
+
+    The sky rate is ``1 + ramp * t / duration`` times the start's, also before
+    the night starts: row 0's charge began collecting a crossing earlier, at
+    ``t = -crossing``, where a steep ramp would make it negative (the
+    detector then clips the image at 0 e-: the first rows lose their sky and
+    stars).  ``ramp`` may be at most ``duration / crossing``.
+    """
+    limit = duration / crossing
+    if ramp >= limit:
+        raise ConfigError(
+            f"simulate.sky.sky_ramp {ramp:g} makes the sky negative before the night starts: "
+            f"the first rows' charge began collecting {crossing:.0f} s (a crossing) before "
+            f"row 0 was read, and a ramp over the {duration:.0f} s night reaches zero there "
+            f"for a ramp of {limit:.2f} or more. Use a gentler sky_ramp (below {limit:.2f}) or "
+            "a longer night (n_blocks x block_rows)."
+        )
+
+
 SIDEREAL_DAY = 86164.0905
 
 

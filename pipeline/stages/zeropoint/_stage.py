@@ -98,6 +98,16 @@ class ZeroPointOptions(BaseModel):
     target_zero_point: float = Field(
         25.0, description="Zero point of calibrated images: mag of a source summing to 1."
     )
+    # A reference in the night's own passband matches the stars to a few
+    # hundredths of a magnitude beyond their errors (common practice); one of
+    # another band leaves its colour term times the stars' colour spread:
+    # 0.17 mag for a term of 0.5 and colours of 0.3 mag rms.
+    max_extra_scatter: float = Field(
+        0.05,
+        gt=0,
+        description="Largest scatter (mag) of the reference stars about the zero point beyond "
+        "their errors; more is reported (a reference of another passband?).",
+    )
 
 
 def night_line_time(block_index: Table) -> float:
@@ -194,6 +204,7 @@ def calibrate_catalog(
     flat_max_offset: float = 0.01,
     flat_max_trend: float = 0.01,
     target_zero_point: float = 25.0,
+    max_extra_scatter: float = 0.05,
 ) -> CalibratedNight:
     """Fit the night's zero point and calibrate every source of the catalogue.
 
@@ -232,6 +243,10 @@ def calibrate_catalog(
         A star-flat trend from edge to edge above this (mag) is reported.
     target_zero_point : float, optional
         Fixed zero point of calibrated images, mag (stored in the products' meta).
+    max_extra_scatter : float, optional
+        The fit's extra scatter (mag: the stars' scatter beyond their
+        errors) above this is reported, as a sign of reference magnitudes
+        in another passband.
 
     Returns
     -------
@@ -371,14 +386,38 @@ def calibrate_catalog(
         intervals=intervals,
         star_flat=flat,
         colour_term=colour_term,
-        problems=_problems(intervals, trend, flat_max_trend),
+        problems=_problems(
+            intervals,
+            trend,
+            flat_max_trend,
+            scatter=(fit.extra_scatter, max_extra_scatter, bool(fit_colour_term)),
+        ),
     )
 
 
-def _problems(intervals: QTable, trend: dict, max_trend: float) -> list[str]:
+def _problems(
+    intervals: QTable,
+    trend: dict,
+    max_trend: float,
+    scatter: tuple[float, float, bool] = (0.0, np.inf, False),
+) -> list[str]:
+    """The night's problems in words.
+
+    ``scatter``: the fit's extra scatter (mag), its limit (mag), and whether
+    a colour term was fitted.
+    """
     from astropy import units as u
 
     problems = []
+    extra, max_extra, colour_fitted = scatter
+    if extra > max_extra:
+        problems.append(
+            f"reference stars scatter {extra:.3f} mag about the zero point beyond their "
+            f"measurement and catalogue errors (limit max_extra_scatter {max_extra} mag): the "
+            "reference magnitudes may be of another passband than the night's filter; check "
+            "stages.astrometry.reference.columns.magnitude"
+            + ("" if colour_fitted else ", or fit a colour term (fit_colour_term: true)")
+        )
     for row in intervals:
         flags = ZeroPointFlag(int(row["flags"]))
         if flags:
@@ -453,5 +492,6 @@ STAGE = Stage(
     warm=("scipy.interpolate", "scipy.linalg", "scipy.sparse", "scipy.special"),
     # 2: the star-flat trend fitted to the stars, with its error
     # 3: the stars weighted with the fit's extra scatter, and Z(t)'s error with it
-    version=3,
+    # 4: an extra scatter above max_extra_scatter is reported as a problem
+    version=4,
 )
