@@ -356,12 +356,17 @@ def test_compiled_rows_are_the_numpy_sampled_profiles_to_the_bit(first, lattice,
     np.testing.assert_array_equal(columns_d, deriv.reshape(-1, n).T)
 
 
-@pytest.mark.parametrize("response", [(-1.0, -1.0, 0.0), (0.38988594, 0.123456789, 1.00007),
-                                      (0.3, 0.7, 0.9)])  # fmt: skip
+@pytest.mark.parametrize("response", [(-1.0, -1.0, 0.0, 1.0, 1.0),
+                                      (0.38988594, 0.123456789, 1.00007, 1.0, 1.0),
+                                      (0.3, 0.7, 0.9, 1.0, 1.0),
+                                      (0.3, 0.7, 0.9, 0.51, -0.49)])  # fmt: skip
 def test_model_without_derivatives_is_the_fits_model_to_the_bit(response):
     # Self-consistency: model_compiled (the seeing curves' and the subtracted
     # models) leaves the derivatives out; its values are those the fits'
-    # _unit computes with them, to the last bit.
+    # _unit computes with them, to the last bit.  A response row has five
+    # values (lattice offsets, row step, the image's steps per rectified
+    # pixel: _response_row); with three, the compiled code read the steps
+    # past the array's end (no bounds check) and the test failed at random.
     from pipeline.stages.detect._fit_jit import _unit, model_compiled
     from pipeline.stages.detect._pixel_gauss import profile_tables
 
