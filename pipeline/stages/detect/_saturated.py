@@ -431,12 +431,15 @@ def column_star_cores(
             half = 0.5 * (b - a)
             yc = 0.5 * (top + bottom)
             run = (xk - x0 >= a) & (xk - x0 < b)
-            if above >= widening and below < widening:
+            # beyond one edge only, or far more beyond it than the other
+            # (whose edge wanders by a row or two): a star beside the band
+            strong = max(above, below) >= max(2 * min(above, below) + 2, 2 * widening)
+            if above >= widening and (below < widening or (strong and above > below)):
                 edge = round(float(np.median(base_hi[a:b])))
-                yc = _one_side_centre(yk[run], edge, int(top), +1, yc)
-            elif below >= widening and above < widening:
+                yc = _one_side_centre(yk[run], edge, int(top), +1, yc, strong)
+            elif below >= widening and (above < widening or strong):
                 edge = round(float(np.median(base_lo[a:b])))
-                yc = _one_side_centre(yk[run], edge, int(bottom), -1, yc)
+                yc = _one_side_centre(yk[run], edge, int(bottom), -1, yc, strong)
             found.append(
                 (
                     xc,
@@ -458,19 +461,23 @@ def column_star_cores(
     return ColumnCores(pixels, xc, yc, reach, x_lo, x_hi, y_lo, y_hi)
 
 
-def _one_side_centre(rows: np.ndarray, edge: int, outer: int, side: int, middle: float) -> float:
+def _one_side_centre(
+    rows: np.ndarray, edge: int, outer: int, side: int, middle: float, beside: bool
+) -> float:
     """Centre across the scan of a core beyond one edge of a band only, pixels.
 
     ``rows``: the rows of the core's clipped pixels (one per pixel);
     ``edge``: the band's last row on that side; ``outer``: the core's
     outermost row; ``side``: +1 beyond the band's upper edge, -1 its lower;
-    ``middle``: the middle of the clipped rows.  The core is longest along
-    the scan at its centre (a round core, and the bleed along the scan, are
-    symmetric about it): the middle of the rows beyond the band within a
-    pixel of the longest.  When they reach the band the centre is hidden in
-    it, and ``middle`` is taken (a star on another star's band, r = 9.5 on
-    the simulated night: 1.8 px off, where the band's edge was 7 px off; a
-    saturated star touching a column on the demo nights, r = 15.9: 1.9 px).
+    ``middle``: the middle of the clipped rows; ``beside``: the core
+    reaches 4 rows or more beyond the band (and twice as far as beyond its
+    other edge, plus 2).  The core is longest along the scan at its centre
+    (a round core, and the bleed along the scan, are symmetric about it):
+    the middle of the rows beyond the band within a pixel of the longest.
+    When they reach the band the centre is hidden in it: at the band's edge
+    for a core ``beside`` it (a saturated star touching a column), else
+    ``middle`` (a star on another star's band, r = 9.5 on the simulated
+    night: 1.8 px off, where the band's edge was 7 px off).
     """
     beyond = np.arange(edge + side, outer + side, side)
     if not beyond.size:
@@ -478,7 +485,7 @@ def _one_side_centre(rows: np.ndarray, edge: int, outer: int, side: int, middle:
     length = np.array([np.count_nonzero(rows == r) for r in beyond.tolist()])
     longest = beyond[length >= length.max() - 1]
     if np.any(longest == edge + side):
-        return middle
+        return float(edge + side) if beside else middle
     return float(np.mean(longest))
 
 
