@@ -49,6 +49,7 @@ from pipeline.products import (
 )
 from pipeline.stages.base import NEIGHBOURS, PROBLEMS, Stage
 from pipeline.stages.detect._find import (
+    SegmentMoments,
     background_model,
     band_templates,
     filter_scale,
@@ -77,6 +78,7 @@ from pipeline.stages.detect._measure import (
 from pipeline.stages.detect._night import MERGE_RULE, Planes, padded_stretch
 from pipeline.stages.detect._saturated import (
     CLIPPED,
+    column_star_cores,
     merge_on_column,
     merge_on_footprints,
     saturated_columns,
@@ -115,6 +117,17 @@ log = logging.getLogger(__name__)
 #: star centred in a gap of 2 FWHM still shows its wings on both sides, where
 #: the matched filter's significance over the gap is meaningful.
 GAP_FWHM = 2.0
+
+#: Seeing FWHMs along the scan beyond a column star's clipped core within
+#: which a start on the saturated column is the core's (:func:`_with_column_stars`):
+#: the matched filter, centred on the column beside the core, still weighs
+#: the core's clipped values and peaks there (3-4 FWHM from the core's
+#: pixels on the simulated night of stars of r = 5 to 9.5).
+CORE_MARGIN_FWHM = 4.0
+
+#: Fewest seeing FWHMs (``fwhm_guess``) along the scan of a saturated
+#: column's widening that is a star's clipped core (:func:`column_star_cores`).
+CORE_LENGTH_FWHM = 5.0
 
 
 class DetectOptions(BaseModel):
@@ -296,6 +309,126 @@ def _by_column_star(x, y, fits_: dict, columns: np.ndarray, reach: float) -> np.
             if columns[lo : hi + 1, ix[k]].all():
                 out[k] = True
                 break
+    return out
+
+
+def _with_column_stars(cat, cx, cy, blended, cores, columns, margin):
+    """The sources with one at each column star's core (:func:`column_star_cores`).
+
+    The sources that start on a core (:meth:`ColumnCores.near`: the search
+    found the core's clipped values beside the column, or the column beside
+    them) are one: the first starts at the core's centre, the others are
+    dropped; a core without one gets a source there (no segment: NaN shape,
+    not blended).  Either way its peak is set to 0, so that it is never
+    taken for a seeing star.
+
+    Parameters
+    ----------
+    cat : `~pipeline.stages.detect._find.SegmentMoments`
+    cx, cy : ndarray
+        Start positions of the sources, pixels.
+    blended : ndarray of bool
+    cores : ColumnCores or None
+    columns : ndarray of bool or None
+        The saturated columns' pixels (without the cores').
+    margin : float
+        Pixels along the scan beyond a core within which a start on the
+        column is the core's (about two FWHM: the matched filter's reach).
+
+    Returns
+    -------
+    cat, cx, cy, blended
+        As given when there is no core, else new ones.
+    """
+    if cores is None:
+        return cat, cx, cy, blended
+    cx, cy = np.array(cx, dtype=float), np.array(cy, dtype=float)
+    peak = np.array(cat.peak, dtype=float)
+    owner = cores.near(cx, cy, columns, margin)
+    keep = owner < 0
+    added = []
+    for i in range(cores.x.size):
+        on = np.flatnonzero(owner == i)
+        if on.size:
+            cx[on[0]], cy[on[0]], peak[on[0]] = cores.x[i], cores.y[i], 0.0
+            keep[on[0]] = True
+        else:
+            added.append(i)
+    extra = np.full(len(added), np.nan)
+
+    def more(values, new):
+        return np.concatenate([np.asarray(values, float)[keep], new])
+
+    cat = SegmentMoments(
+        x=more(cat.x, cores.x[added]),
+        y=more(cat.y, cores.y[added]),
+        fwhm=more(cat.fwhm, extra),
+        ellipticity=more(cat.ellipticity, extra),
+        orientation=more(cat.orientation, extra),
+        peak=more(peak, np.zeros(len(added))),
+    )
+    cx = more(cx, cores.x[added])
+    cy = more(cy, cores.y[added])
+    blended = np.concatenate([np.asarray(blended, bool)[keep], np.zeros(len(added), bool)])
+    return cat, cx, cy, blended
+
+
+def _core_of(cx, cy, cores) -> np.ndarray:
+    """Index of the column star's core each source starts at (-1: none)."""
+    out = np.full(len(cx), -1)
+    if cores is None:
+        return out
+    for k in range(cores.x.size):
+        out[(np.asarray(cx) == cores.x[k]) & (np.asarray(cy) == cores.y[k])] = k
+    return out
+
+
+def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores) -> dict:
+    """``fits_`` with each column star at its core's centre, FIT_FAILED, its flux NaN.
+
+    A star whose clipped core widens a saturated column is clipped out to
+    several FWHM, on one side the column's no-data rows: its fit rests on
+    far wings whose shape nothing measures (the seeing stars pin the
+    profile within a few FWHM), and its error does not say so.  Measured:
+    on a scene drawn with a Moffat profile of 4 Gaussians (the demo's
+    drawing) and fitted with detect's 8, the stars of
+    ``tests/test_detect_saturated_columns.py`` whose bleed is their column
+    came out at 0.19-0.41 of their flux with errors of 0.1-0.4 %, the one
+    touching a column at 4.1 times its flux (10 %) and 2 px off; the demo's
+    three brightest at 0.01-0.15 (0.2-16 %), pulled up to 5 px toward a
+    neighbour.  The core's centre (:func:`column_star_cores`) was within
+    0.7 px of them all.  Such a source is flagged FIT_FAILED (no flux) and
+    SATURATED | EDGE (its core is clipped and meets the column's pixels
+    without data), not UNRESOLVED.
+
+    Parameters
+    ----------
+    fits_ : dict
+        :func:`~pipeline.stages.detect._measure.measure_groups`' result.
+    order : list of int
+        The source of each row of ``fits_``.
+    core_of : ndarray of int
+        :func:`_core_of` of the first search's sources (later ones: none).
+    cores : ColumnCores
+
+    Returns
+    -------
+    dict
+        ``fits_`` itself when no row is a column star's, else a copy.
+    """
+    which = np.array([core_of[i] if i < core_of.size else -1 for i in order], dtype=int)
+    on = which >= 0
+    if not on.any():
+        return fits_
+    out = dict(fits_)
+    out["x"] = np.where(on, cores.x[which], fits_["x"])
+    out["y"] = np.where(on, cores.y[which], fits_["y"])
+    for name in ("x_err", "y_err", "flux", "flux_err"):
+        out[name] = np.where(on, np.nan, fits_[name])
+    bits = int(SourceFlag.FIT_FAILED | SourceFlag.SATURATED | SourceFlag.EDGE)
+    flags = np.where(on, fits_["flags"] | bits, fits_["flags"])
+    # not measured, so not tested for a pair either
+    out["flags"] = np.where(on, flags & ~int(SourceFlag.UNRESOLVED), flags)
     return out
 
 
@@ -530,7 +663,15 @@ def detect(
     # segments cross them and the fits' stamps reach across them.
     clipped = has_bits(mask, CLIPPED)
     columns = saturated_columns(clipped, no_data, own_columns=own_columns)
+    cores = None
     if columns is not None:
+        # ... but the stars on them are stars: where a star's clipped core
+        # widens the column, the core is its footprint, with a source of its
+        # own at the core's centre (_with_column_stars), without a flux
+        # (_column_stars_unmeasured)
+        cores = column_star_cores(columns, min_length=CORE_LENGTH_FWHM * profile.fwhm)
+        if cores is not None:
+            columns &= ~cores.pixels
         no_data |= columns
         mask = mask.copy()
         mask[columns] |= mask.dtype.type(int(MaskBit.BAD_COLUMN | MaskBit.NONFINITE))
@@ -687,6 +828,13 @@ def detect(
         return cat, cx, cy
 
     cat, cx, cy = sources(segm, snr, residual, parent)
+    blended = np.asarray(_deblended(segm.labels, parent))
+    cat, cx, cy, blended = _with_column_stars(
+        cat, cx, cy, blended, cores, columns, CORE_MARGIN_FWHM * profile.fwhm
+    )
+    # which core each source starts on (-1: none); the first pass's sources
+    # keep their indices through the later passes
+    core_of = _core_of(cx, cy, cores)
     peak = cat.peak
     point = deconvolved
     fwhm_grid = fwhm_guess * np.exp(np.linspace(np.log(0.3), np.log(3.0), 41))
@@ -821,7 +969,6 @@ def detect(
         return prof.with_fwhm(best), rows
 
     point = deconvolved
-    blended = np.asarray(_deblended(segm.labels, parent))
     # the search's planes are done with: free them before the fits make theirs
     del snr, segm, parent
     if single:
@@ -837,6 +984,10 @@ def detect(
             snr, segm, parent = segment(filter_profile)
             cat, cx, cy = sources(segm, snr, residual, parent)
             blended = np.asarray(_deblended(segm.labels, parent))
+            cat, cx, cy, blended = _with_column_stars(
+                cat, cx, cy, blended, cores, columns, CORE_MARGIN_FWHM * profile.fwhm
+            )
+            core_of = _core_of(cx, cy, cores)
             del snr, segm, parent
             if single:
                 var_fit = _fit_variance(var, footprints)
@@ -928,7 +1079,15 @@ def detect(
             )[0]
             # Farther than a FWHM from every fitted source: nearer, a residual is
             # the misfit of that source, and a second source there is degenerate.
-            new = np.flatnonzero((near > profile.fwhm) & np.isfinite(nx2))
+            # Nor on a column star's core: its clipped pixels left in the
+            # image minus the models lie off the star's centre (the column
+            # holds the rest), and the core has its source.
+            on_core = (
+                cores.near(nx2, ny2, columns, CORE_MARGIN_FWHM * profile.fwhm) >= 0
+                if cores is not None
+                else np.zeros(len(nx2), bool)
+            )
+            new = np.flatnonzero((near > profile.fwhm) & np.isfinite(nx2) & ~on_core)
             if new.size and columns is not None:
                 # ... and, on a saturated column, from every source fitted on
                 # it at columns within a FWHM: the misfit of a star whose
@@ -1003,6 +1162,8 @@ def detect(
         shape_cols = [np.concatenate([c, c[parents]]) for c in shape_cols]
         members, fits_ = fit_all(cx, cy, blended)
     order = [i for g in members for i in g]
+    if cores is not None:
+        fits_ = _column_stars_unmeasured(fits_, order, core_of, cores)
     keep = np.ones(len(order), bool)
     if own_columns is not None:
         keep = (fits_["x"] >= own_columns[0] - 0.5) & (fits_["x"] < own_columns[1] - 0.5)
@@ -1585,6 +1746,9 @@ STAGE = Stage(
     #     without clipped pixels, its walk with a second, finer parabola along
     #     the width at each index and a third walk along the index (both had
     #     pulled it low)
-    version=18,
+    # 19: a star whose clipped core widens a saturated column (its own bleed,
+    #     or a saturated star touching it) is one source at the widening's
+    #     centre, SATURATED | EDGE | FIT_FAILED, without flux (column_star_cores)
+    version=19,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

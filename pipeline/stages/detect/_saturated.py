@@ -32,6 +32,17 @@ cross the column's rows, the fit starts at the matched filter's peak (the
 centroid of one side's pixels lay up to half the column's width off) on a
 stamp widened across the column, and the star is flagged SATURATED | EDGE
 (its core reached clipped pixels without data).
+
+The star whose bleed the column is, and a saturated star whose clipped core
+touches it, are stars all the same, but their cores are clipped pixels
+connected to the column: taken as the column's, they left no data to
+search or fit (the night's brightest stars were missing, and a saturated
+star touching a column came out 1.5-4 px off toward it with no usable
+flux).  Their cores widen the column's band of clipped rows where they lie:
+:func:`column_star_cores` finds where the band is wider than along the rest
+of it and gives those pixels back to the star: a saturated footprint with
+one source at the core's centre, flagged FIT_FAILED (its flux would rest on
+far wings whose shape nothing measures; see detect).
 """
 
 from __future__ import annotations
@@ -45,7 +56,9 @@ from pipeline.masks import MaskBit, has_bits
 
 __all__ = [
     "CLIPPED",
+    "ColumnCores",
     "Footprints",
+    "column_star_cores",
     "dilate_sparse",
     "footprint_bounds",
     "merge_on_column",
@@ -72,6 +85,89 @@ CLIPPED = MaskBit.SATURATED | MaskBit.BLEED
 #: from the plane's end, which a star's core and bleed do only when they
 #: are longer than twice that edge (:func:`saturated_columns`).
 COLUMN_RUN = 128
+
+#: Rows by which a saturated column's band of clipped pixels must be wider
+#: than its own width nearby (:data:`BAND_WINDOW`) to hold a star's
+#: clipped core (:func:`column_star_cores`).  The band's edges wander by a
+#: row where the spilled charge is near the full well; a core widens it by
+#: more.
+CORE_WIDENING = 2
+
+#: Half-width of the window along the scan over which the band's own
+#: width and edges are taken, pixels: more than twice as long as a
+#: saturated core and its bleed (the simulated night's star of r = 5 on a
+#: 2.2 px seeing: 81 px; the demo's brightest 40-113 px), so the core does
+#: not raise its own reference.
+BAND_WINDOW = 128
+
+#: Columns along the scan added on either side of a widening to make the
+#: core's pixels, pixels.
+CORE_PAD = 2
+
+
+def _pixels_under(x, y, shape) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Whether each position is finite, and the pixel (column, row) under it within ``shape``."""
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    ny, nx = shape
+    inside = np.isfinite(x) & np.isfinite(y)
+    ix = np.clip(np.round(np.where(inside, x, 0.0)).astype(int), 0, nx - 1)
+    iy = np.clip(np.round(np.where(inside, y, 0.0)).astype(int), 0, ny - 1)
+    return inside, ix, iy
+
+
+@dataclass(frozen=True)
+class ColumnCores:
+    """Clipped cores of stars on columns saturated through a stretch.
+
+    Attributes
+    ----------
+    pixels : ndarray of bool, shape (ny, nx)
+        The cores' clipped pixels (stars' footprints, not the column's).
+    x, y : ndarray, shape (n,)
+        Each core's centre, pixels (zero-based): along the scan, the
+        widening's centroid; across it, the middle of the clipped rows
+        where the band is widest, or, for a core beyond one edge of the
+        band only, its outer edge less its half-length along the scan.
+    reach : ndarray, shape (n,)
+        The core's half-width across the scan or half-length along it,
+        whichever is larger, pixels.
+    x_lo, x_hi : ndarray, shape (n,)
+        First and last column of each core's pixels along the scan.
+    y_lo, y_hi : ndarray, shape (n,)
+        Outermost clipped rows of the band over each core's widening.
+    """
+
+    pixels: np.ndarray
+    x: np.ndarray
+    y: np.ndarray
+    reach: np.ndarray
+    x_lo: np.ndarray
+    x_hi: np.ndarray
+    y_lo: np.ndarray
+    y_hi: np.ndarray
+
+    def near(self, x, y, columns: np.ndarray | None, margin: float) -> np.ndarray:
+        """Index of the core each position belongs to (-1: none), pixels.
+
+        A position belongs to a core when it lies on the core's pixels or on
+        ``columns`` (the rest of the band) within ``margin`` along the scan
+        of the core's pixels, at rows the core spans: the matched filter
+        peaks there beside the core's clipped values, where no other star
+        could be measured.
+        """
+        x = np.asarray(x, dtype=float)
+        y = np.asarray(y, dtype=float)
+        ok, ix, iy = _pixels_under(x, y, self.pixels.shape)
+        on = ok & (self.pixels[iy, ix] | (columns[iy, ix] if columns is not None else False))
+        out = np.full(x.shape, -1)
+        for k in np.flatnonzero(on).tolist():
+            inside = (x[k] >= self.x_lo - margin) & (x[k] <= self.x_hi + margin)
+            inside &= np.abs(y[k] - self.y) <= self.reach + margin
+            if inside.any():
+                cand = np.flatnonzero(inside)
+                out[k] = int(cand[np.argmin(np.abs(self.x[cand] - x[k]))])
+        return out
 
 
 @dataclass(frozen=True)
@@ -121,12 +217,7 @@ class Footprints:
 
     def at(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
         """Footprint number under each position (0: none), pixels (zero-based)."""
-        x = np.asarray(x, dtype=float)
-        y = np.asarray(y, dtype=float)
-        ny, nx = self.labels.shape
-        inside = np.isfinite(x) & np.isfinite(y)
-        ix = np.clip(np.round(np.where(inside, x, 0.0)).astype(int), 0, nx - 1)
-        iy = np.clip(np.round(np.where(inside, y, 0.0)).astype(int), 0, ny - 1)
+        inside, ix, iy = _pixels_under(x, y, self.labels.shape)
         return np.where(inside, self.labels[iy, ix], 0).astype(np.int32)
 
 
@@ -231,6 +322,171 @@ def saturated_columns(
     out = np.zeros(clipped.shape, bool)
     out.reshape(-1)[where[np.isin(region, chosen)]] = True
     return out
+
+
+def column_star_cores(
+    columns: np.ndarray,
+    widening: int = CORE_WIDENING,
+    window: int = BAND_WINDOW,
+    pad: int = CORE_PAD,
+    min_length: float = 0.0,
+) -> ColumnCores | None:
+    """Clipped cores of stars on the columns :func:`saturated_columns` found.
+
+    Along each band of connected clipped pixels, the band's width (its
+    clipped rows at each pixel along the scan) is compared with its own
+    width (its median over ``window`` pixels either side): where it
+    exceeds it by ``widening`` rows or more, over ``min_length`` pixels
+    along the scan or more, a star's clipped core lies (the star whose
+    bleed the column is, or a saturated star beside it).  Each run of such
+    pixels, grown by ``pad``, is a core: its clipped pixels are the star's
+    footprint, no longer the column's.  A band of even width (a
+    bleed whose star is outside the stretch, a twilight bleed) holds none.
+
+    The centre across the scan: a star's own bleed is centred on it (charge
+    spills both ways alike), so a core that widens the band on both sides
+    is centred between its outermost clipped rows.  A core beyond one edge
+    of the band only (a saturated star beside the column, or a star on
+    another star's band) is centred where it is longest along the scan
+    (:func:`_one_side_centre`).
+
+    Parameters
+    ----------
+    columns : ndarray of bool, shape (ny, nx)
+        :func:`saturated_columns`' clipped pixels; axis 1 is the scan axis.
+    widening : int
+        Fewest rows of widening, rows.
+    window : int
+        Half-width of the window of the band's own width and edges, pixels.
+    pad : int
+        Pixels along the scan added to each side of a widening.
+    min_length : float
+        Fewest pixels along the scan of a widening that is a core, pixels:
+        a star too faint to saturate, on the column, tips the column's
+        spilled charge over the clip at its edges over a few FWHM (10-14 px
+        on the demo nights, against 28-110 for the saturated stars' cores
+        and their bleed).
+
+    Returns
+    -------
+    ColumnCores or None
+        None when no band widens.
+    """
+    from scipy.ndimage import median_filter
+
+    from pipeline.stages.detect._find_jit import label_sorted
+
+    ny, nx = columns.shape
+    where = np.flatnonzero(columns)
+    if not where.size:
+        return None
+    size = 2 * window + 1
+
+    def local_median(values):
+        return median_filter(values.astype(float), size=size, mode="nearest")
+
+    region, count = label_sorted(where, nx, True)
+    order = np.argsort(region, kind="stable")
+    bounds = np.searchsorted(region[order], np.arange(1, count + 2))
+    ys, xs = np.divmod(where, nx)
+    pixels = np.zeros(columns.shape, bool)
+    found: list[tuple[float, float, float]] = []
+    for k in range(count):
+        members = order[bounds[k] : bounds[k + 1]]
+        yk, xk = ys[members], xs[members]
+        x0 = int(xk.min())
+        n = int(xk.max()) - x0 + 1
+        width = np.bincount(xk - x0, minlength=n)
+        lo = np.full(n, ny)
+        hi = np.full(n, -1)
+        np.minimum.at(lo, xk - x0, yk)
+        np.maximum.at(hi, xk - x0, yk)
+        held = np.flatnonzero(width > 0)
+        # the band's own width and edges: their medians over the pixels
+        # that hold the band (it may pass pixels without data, where it
+        # holds none).  A lower percentile would keep two cores with long
+        # bleeds within a window apart from raising it, but takes the
+        # band's slow changes of width for cores (demo nights: 3-8 sources
+        # more per night along the columns).
+        local = local_median(width[held])
+        wide = np.zeros(n, bool)
+        wide[held] = width[held] - local >= widening
+        if not wide.any():
+            continue
+        base_lo = np.zeros(n)
+        base_hi = np.zeros(n)
+        base_lo[held] = local_median(lo[held])
+        base_hi[held] = local_median(hi[held])
+        excess = np.zeros(n)
+        excess[held] = np.maximum(width[held] - local, 0.0)
+        edges = np.diff(np.concatenate(([0], wide.view(np.int8), [0])))
+        for a, b in zip(np.flatnonzero(edges == 1), np.flatnonzero(edges == -1), strict=True):
+            along = np.arange(a, b)
+            xc = x0 + float(np.sum(along * excess[a:b]) / np.sum(excess[a:b]))
+            top, bottom = float(hi[a:b].max()), float(lo[a:b].min())
+            above = top - float(np.median(base_hi[a:b]))
+            below = float(np.median(base_lo[a:b])) - bottom
+            if b - a < min_length:  # a faint star's light on the column's edges
+                continue
+            half = 0.5 * (b - a)
+            yc = 0.5 * (top + bottom)
+            run = (xk - x0 >= a) & (xk - x0 < b)
+            # beyond one edge only, or far more beyond it than the other
+            # (whose edge wanders by a row or two): a star beside the band
+            strong = max(above, below) >= max(2 * min(above, below) + 2, 2 * widening)
+            if above >= widening and (below < widening or (strong and above > below)):
+                edge = round(float(np.median(base_hi[a:b])))
+                yc = _one_side_centre(yk[run], edge, int(top), +1, yc, strong)
+            elif below >= widening and (above < widening or strong):
+                edge = round(float(np.median(base_lo[a:b])))
+                yc = _one_side_centre(yk[run], edge, int(bottom), -1, yc, strong)
+            found.append(
+                (
+                    xc,
+                    yc,
+                    max(0.5 * (top - bottom), half),
+                    x0 + a - pad,
+                    x0 + b - 1 + pad,
+                    bottom,
+                    top,
+                )
+            )
+            inside = (xk - x0 >= a - pad) & (xk - x0 < b + pad)
+            pixels[yk[inside], xk[inside]] = True
+    if not found:
+        return None
+    xc, yc, reach, x_lo, x_hi, y_lo, y_hi = (
+        np.array(v, dtype=float) for v in zip(*found, strict=True)
+    )
+    return ColumnCores(pixels, xc, yc, reach, x_lo, x_hi, y_lo, y_hi)
+
+
+def _one_side_centre(
+    rows: np.ndarray, edge: int, outer: int, side: int, middle: float, beside: bool
+) -> float:
+    """Centre across the scan of a core beyond one edge of a band only, pixels.
+
+    ``rows``: the rows of the core's clipped pixels (one per pixel);
+    ``edge``: the band's last row on that side; ``outer``: the core's
+    outermost row; ``side``: +1 beyond the band's upper edge, -1 its lower;
+    ``middle``: the middle of the clipped rows; ``beside``: the core
+    reaches 4 rows or more beyond the band (and twice as far as beyond its
+    other edge, plus 2).  The core is longest along the scan at its centre
+    (a round core, and the bleed along the scan, are symmetric about it):
+    the middle of the rows beyond the band within a pixel of the longest.
+    When they reach the band the centre is hidden in it: at the band's edge
+    for a core ``beside`` it (a saturated star touching a column), else
+    ``middle`` (a star on another star's band, r = 9.5 on the simulated
+    night: 1.8 px off, where the band's edge was 7 px off).
+    """
+    beyond = np.arange(edge + side, outer + side, side)
+    if not beyond.size:
+        return middle
+    length = np.array([np.count_nonzero(rows == r) for r in beyond.tolist()])
+    longest = beyond[length >= length.max() - 1]
+    if np.any(longest == edge + side):
+        return float(edge + side) if beside else middle
+    return float(np.mean(longest))
 
 
 def _seams(own_columns: tuple[int, int] | None, nx: int) -> list[tuple[int, int]]:
