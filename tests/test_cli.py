@@ -156,7 +156,7 @@ def test_a_mistyped_raw_folder_stops_the_run_before_anything_runs(toy_file, caps
     path = toy_file.parent / "missing"
     assert main(["run", str(toy_file), "--set", f"night.raw_dir={path}"]) == 2
     err = capsys.readouterr().err
-    assert f"night.raw_dir {path} is not a folder, and stages index, scale read the raw" in err
+    assert f"night toy: night.raw_dir {path} is not a folder, and stages index, scale read" in err
     assert "run from a later stage (--from smooth)" in err
     after = _product_files(night)
     assert {k: v for k, v in after.items() if k != "zdrift.log"} == {

@@ -574,7 +574,8 @@ def _check_raw_folder(night: NightStore, selected: Sequence[Stage]) -> None:
         later = selected[last + 1].name if last + 1 < len(selected) else None
         hint = f"; to work on the products already made, run from a later stage (--from {later})"
         raise ValueError(
-            f"night.raw_dir {folder} is not a folder, and stages {', '.join(reading)} read the "
+            f"night {night.config.night.name}: night.raw_dir {folder} is not a folder, and "
+            f"stages {', '.join(reading)} read the "
             "raw blocks: point night.raw_dir (relative to the config file) at the night's raw "
             f"folder{hint if later else ''}"
         )
