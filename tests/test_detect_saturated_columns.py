@@ -37,6 +37,14 @@ COLUMN_BITS = MaskBit.SATURATED | MaskBit.BLEED | MaskBit.BAD_COLUMN | MaskBit.N
 MARGIN_BITS = MaskBit.BLEED
 
 
+def _detect_quietly(scene, image, mask):
+    """detect's catalogue of a scene (its warnings silenced) and the sources' ``(x, y)``."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        cat = detect(image, scene.variance, mask, scene.kernels, fwhm_guess=3.2).catalog
+    return cat, np.column_stack([cat["x"].value, cat["y"].value])
+
+
 def _column_scene(spill: float):
     """Stars 4 px beside a column saturated along the whole 1000-column stretch.
 
@@ -73,10 +81,7 @@ def test_stars_beside_a_column_saturated_through_the_stretch_are_each_found(spil
     all 12 into one FIT_FAILED source (3 sigma of spilled charge there).
     """
     scene, image, mask, x, y, n = _column_scene(spill)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        cat = detect(image, scene.variance, mask, scene.kernels, fwhm_guess=3.2).catalog
-    found = np.column_stack([cat["x"].value, cat["y"].value])
+    cat, found = _detect_quietly(scene, image, mask)
     d, k = cKDTree(np.column_stack([x, y])).query(found)
     # every detection is a true star (within 0.5 px: S/N 60), no star twice
     extra = (d > 0.5) | (np.bincount(k, minlength=x.size)[k] > 1)
@@ -182,10 +187,7 @@ def test_a_star_whose_core_a_saturated_column_cuts_is_one_fitted_source():
     errors = []
     for seed in (1, 2, 3, 4, 5):
         scene, image, mask, n = _cut_scene(seed)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            cat = detect(image, scene.variance, mask, scene.kernels, fwhm_guess=3.2).catalog
-        found = np.column_stack([cat["x"].value, cat["y"].value])
+        cat, found = _detect_quietly(scene, image, mask)
         on = cKDTree(found).query_ball_point(np.column_stack([scene.x[:n], scene.y[:n]]), 8.0)
         flags = np.asarray(cat["flags"].value, int)
         flux = np.asarray(cat["flux_psf"], float)
@@ -314,10 +316,7 @@ def test_a_bright_star_on_the_column_is_one_source(full_well):
     scene, image, mask, clipped = _bright_on_column(full_well)
     if full_well < 1e5:
         assert clipped[:58].any() and clipped[70:].any()  # beyond the column's rows
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        cat = detect(image, scene.variance, mask, scene.kernels, fwhm_guess=3.2).catalog
-    found = np.column_stack([cat["x"].value, cat["y"].value])
+    cat, found = _detect_quietly(scene, image, mask)
     flags = np.asarray(cat["flags"].value, int)
     flux = np.asarray(cat["flux_psf"], float)
     for i in range(3):
@@ -354,10 +353,7 @@ def test_stars_on_two_columns_at_one_place_along_the_scan_stay_two():
     for row in (99, 108):
         mask[row] |= np.uint16(MARGIN_BITS)
         image[row] += 3.0 * np.sqrt(scene.variance[row])
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        cat = detect(image, scene.variance, mask, scene.kernels, fwhm_guess=3.2).catalog
-    found = np.column_stack([cat["x"].value, cat["y"].value])
+    cat, found = _detect_quietly(scene, image, mask)
     d, k = cKDTree(np.column_stack([x, y])).query(found)
     assert np.all(d < 1.0), found[d >= 1.0]
     assert np.array_equal(np.sort(k), np.arange(x.size))  # each star once
@@ -433,10 +429,7 @@ def test_a_star_whose_bleed_is_the_column_is_one_source_at_its_place():
     0.1-10 %), and there is no other source near it along the columns.
     """
     scene, image, mask = _own_band_scene()
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        cat = detect(image, scene.variance, mask, scene.kernels, fwhm_guess=3.2).catalog
-    found = np.column_stack([cat["x"].value, cat["y"].value])
+    cat, found = _detect_quietly(scene, image, mask)
     flags = np.asarray(cat["flags"].value, int)
     flux = np.asarray(cat["flux_psf"], float)
     error = np.asarray(cat["flux_psf_err"], float)

@@ -81,6 +81,7 @@ from pipeline.stages.detect._saturated import (
     column_star_cores,
     merge_on_column,
     merge_on_footprints,
+    rows_reached,
     saturated_columns,
     saturated_footprints,
 )
@@ -268,19 +269,13 @@ def _crossing(segm, cut: np.ndarray) -> np.ndarray:
     looked at (a saturated column's few rows: a handful of segments).
     """
     out = np.zeros(len(segm.labels), bool)
-    reach = _rows_reached(cut, [box[0] for box in segm.slices])
+    reach = rows_reached(
+        cut, [box[0].start for box in segm.slices], [box[0].stop for box in segm.slices]
+    )
     for i in np.flatnonzero(reach):
         box = segm.slices[i]
         out[i] = bool(np.any(cut[box] & (segm.data[box] == segm.labels[i])))
     return out
-
-
-def _rows_reached(cut: np.ndarray, spans) -> np.ndarray:
-    """Whether each row span (a slice) holds a row with a ``cut`` pixel."""
-    before = np.concatenate([[0], np.cumsum(cut.any(axis=1))])
-    start = np.array([s.start for s in spans], dtype=np.int64)
-    stop = np.array([s.stop for s in spans], dtype=np.int64)
-    return before[stop] > before[start]
 
 
 def _by_column_star(x, y, fits_: dict, columns: np.ndarray, reach: float) -> np.ndarray:

@@ -13,7 +13,12 @@ from typing import TYPE_CHECKING, NamedTuple
 import numpy as np
 
 from pipeline.masks import NO_DATA, MaskBit
-from pipeline.stages.detect._saturated import Footprints, footprint_bounds, on_footprint
+from pipeline.stages.detect._saturated import (
+    Footprints,
+    footprint_bounds,
+    on_footprint,
+    rows_reached,
+)
 
 if TYPE_CHECKING:
     from pipeline.stages.detect._model import KernelGrid, SeeingProfile
@@ -1005,9 +1010,8 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
                                   None, extents_i, owners, fwhm, options["footprints"])  # fmt: skip
     if options["cut"] is not None:
         cut = options["cut"]
-        before = np.concatenate([[0], np.cumsum(cut.any(axis=1))])
         rows = np.array([b[:2] for b in boxes], dtype=np.int64).reshape(-1, 2)
-        for g in np.flatnonzero(before[rows[:, 1]] > before[rows[:, 0]]).tolist():
+        for g in np.flatnonzero(rows_reached(cut, rows[:, 0], rows[:, 1])).tolist():
             boxes[g] = _across_cut(boxes[g], cut)
     dx, dy, samples = _kernel_samples(kern)
     sigmas, weights = profile.mixture()

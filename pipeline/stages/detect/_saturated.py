@@ -64,6 +64,7 @@ __all__ = [
     "merge_on_column",
     "merge_on_footprints",
     "on_footprint",
+    "rows_reached",
     "saturated_columns",
     "saturated_footprints",
 ]
@@ -629,6 +630,24 @@ def footprint_bounds(xs, ys, footprints: Footprints | None, owner=None):
     x_lo = min(b[1].start for b in boxes)
     x_hi = max(b[1].stop for b in boxes) - 1
     return [x_lo, x_hi], [y_lo, y_hi]
+
+
+def rows_reached(cut: np.ndarray, start, stop) -> np.ndarray:
+    """Whether each span of rows ``[start, stop)`` holds a row with a ``cut`` pixel.
+
+    Parameters
+    ----------
+    cut : ndarray of bool, shape (ny, nx)
+        A saturated column's pixels (or any set of pixels).
+    start, stop : array_like of int, shape (n,)
+        First row and the row past the last of each span.
+
+    Returns
+    -------
+    ndarray of bool, shape (n,)
+    """
+    before = np.concatenate([[0], np.cumsum(cut.any(axis=1))])
+    return before[np.asarray(stop, dtype=np.int64)] > before[np.asarray(start, dtype=np.int64)]
 
 
 def merge_on_footprints(segm, x: np.ndarray, y: np.ndarray, footprints) -> bool:
