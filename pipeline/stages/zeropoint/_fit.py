@@ -23,6 +23,14 @@ complement.  Stars that do not follow the model (variables, wrong matches,
 blends) are rejected by iterative clipping of normalised residuals, and an
 extra scatter term (reference catalogue errors beyond their quoted ones) is
 solved for so that the normalised residuals have unit spread.
+
+A cloud shorter than the knot spacing shows in the stars' residuals: within
+one knot interval they run negative at the dip and positive on its shoulders.
+The residuals are averaged in four time bins per interval; an interval whose
+bins depart from zero beyond their errors (a chi-square test) is halved and
+the fit repeated, down to a shortest spacing, so that the zero point follows
+the cloud.  What it still misses there, the binned residuals' excess variance,
+is added to its error (:attr:`ZeroPointFit.misfit`).
 """
 
 from __future__ import annotations
@@ -433,13 +441,13 @@ def fit_zero_point(
     beyond their errors (a change of transparency faster than the knots
     follow: a short cloud), that interval is halved and the fit repeated,
     down to ``min_knot_spacing`` and as long as each half holds enough stars.
-    Then, in every knot interval where such a
-    change was found (at any spacing) and in its neighbours, the excess
-    variance of the binned residuals (their mean square beyond their errors,
-    common practice) is added to the zero point's error: what the spline
-    still misses there (:attr:`ZeroPointFit.misfit`).  On a night whose
-    residuals show no such change, the fit is that of the even knots alone
-    and its error the covariance's.
+    Then, in every knot interval where such a change was found (at any
+    spacing) and in its neighbours, the excess variance of the binned
+    residuals (their mean square beyond their errors, common practice) is
+    added to the zero point's error: what the spline still misses there
+    (:attr:`ZeroPointFit.misfit`).  On a night whose residuals show no such
+    change, the fit is that of the even knots alone and its error the
+    covariance's.
 
     Parameters
     ----------

@@ -68,8 +68,8 @@ class ZeroPointOptions(BaseModel):
     knot_spacing: float = Field(
         60.0,
         gt=0,
-        description="Seconds between spline knots of Z(t): the shortest "
-        "change of transparency followed.",
+        description="Seconds between spline knots of Z(t): the shortest change of "
+        "transparency followed where the stars show no faster one.",
     )
     min_knot_spacing: float = Field(
         7.5,
