@@ -229,7 +229,7 @@ def test_the_cloud_is_followed_and_flagged(night):
     """The cloud is followed to <= 0.01 mag outside its deepest 10 s; its stretches flagged.
 
     Followed: the zero point minus the truth within the issue's 0.01 mag
-    (measured 0.0042; 0.0050 before zeropoint 5) wherever the cloud dims by
+    (measured 0.0042) wherever the cloud dims by
     more than 1e-3 mag, except within 5 s of its deepest point.  Flagged: every
     stretch whose true zero point drops by more than the stage's ``max_drop``
     (0.1 mag) is flagged CLOUD in the intervals, in its sources' ``zp_flags``
