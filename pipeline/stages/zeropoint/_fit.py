@@ -264,7 +264,6 @@ class _Structure:
     chi2: np.ndarray  # sum over the bins of (mean / error)^2
     dof: np.ndarray  # bins counted
     excess: np.ndarray  # mean over the bins of mean^2 - error^2, mag^2 (>= 0)
-    count: np.ndarray  # stars per knot interval
     half_count: np.ndarray  # (n_intervals, 2): stars per half of each interval
 
 
@@ -320,7 +319,6 @@ def _binned_structure(
         chi2=chi2,
         dof=dof,
         excess=np.maximum(excess, 0.0),
-        count=np.bincount(interval, minlength=n_int),
         half_count=np.bincount(interval * 2 + half, minlength=2 * n_int).reshape(n_int, 2),
     )
 
@@ -538,7 +536,7 @@ def fit_zero_point(
         return bridge_penalty * total_weight / n_coef
 
     state = _clipped_fit(knots, *arguments, **settings, penalty=even)
-    fired = []  # (start, stop) of every knot interval found too slow, any round
+    fired = []  # (start, stop) of every knot interval whose stars changed faster, any round
     while True:
         inner = knots[_DEGREE:-_DEGREE]
         structure = _binned_structure(
