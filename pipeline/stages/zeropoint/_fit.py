@@ -23,6 +23,14 @@ complement.  Stars that do not follow the model (variables, wrong matches,
 blends) are rejected by iterative clipping of normalised residuals, and an
 extra scatter term (reference catalogue errors beyond their quoted ones) is
 solved for so that the normalised residuals have unit spread.
+
+A cloud shorter than the knot spacing shows in the stars' residuals: within
+one knot interval they run negative at the dip and positive on its shoulders.
+The residuals are averaged in four time bins per interval; an interval whose
+bins depart from zero beyond their errors (a chi-square test) is halved and
+the fit repeated, down to a shortest spacing, so that the zero point follows
+the cloud.  What it still misses there, the binned residuals' excess variance,
+is added to its error (:attr:`ZeroPointFit.misfit`).
 """
 
 from __future__ import annotations
@@ -64,6 +72,11 @@ class ZeroPointFit:
         before to the first after; there the zero point is the straight line
         between the fit at the two ends (and its error the line between
         their errors).
+    misfit : ndarray or None
+        Per knot interval (``knots[3:-3]``), the rms of the stars' binned
+        residuals beyond their errors, mag, where the fit found a change of
+        transparency faster than its knots (and next to it); added in
+        quadrature to :meth:`error` there.  0 (or None) elsewhere.
     """
 
     knots: np.ndarray
@@ -75,6 +88,7 @@ class ZeroPointFit:
     residual: np.ndarray
     sigma: np.ndarray
     holes: tuple[tuple[float, float], ...] = ()
+    misfit: np.ndarray | None = None
     _factor: np.ndarray = field(repr=False, default=None)
     _colour_direction: np.ndarray = field(repr=False, default=None)
 
@@ -104,11 +118,17 @@ class ZeroPointFit:
         """1-sigma error of ``Z(t)`` (seconds in), mag, from the fit's covariance.
 
         Includes the colour term's uncertainty where it was fitted (the zero
-        point then refers to colour 0, and the two are correlated).
+        point then refers to colour 0, and the two are correlated), and
+        :attr:`misfit` in quadrature where the fit could not follow the stars.
         """
         t = np.clip(np.atleast_1d(np.asarray(t, dtype=float)), *self.t_range)
         ends = [tuple(self._spline_error(np.array(hole), chunk)) for hole in self.holes]
-        return self._bridged(t, self._spline_error(t, chunk), ends)
+        error = self._bridged(t, self._spline_error(t, chunk), ends)
+        if self.misfit is None or not np.any(self.misfit > 0):
+            return error
+        inner = self.knots[_DEGREE:-_DEGREE]
+        which = np.clip(np.searchsorted(inner, t, side="right") - 1, 0, inner.size - 2)
+        return np.hypot(error, self.misfit[which])
 
     def _spline_error(self, t: np.ndarray, chunk: int) -> np.ndarray:
         from scipy.linalg import cho_solve_banded
@@ -137,13 +157,20 @@ def _design(t: np.ndarray, knots: np.ndarray):
     return BSpline.design_matrix(t, knots, _DEGREE)
 
 
-def _banded_normal(design, weight: np.ndarray, penalty: float) -> np.ndarray:
-    """Upper banded form (bandwidth ``_DEGREE``) of ``A^T W A + penalty D1^T D1``."""
+def _banded_normal(design, weight: np.ndarray, penalty) -> np.ndarray:
+    """Upper banded form (bandwidth ``_DEGREE``) of ``A^T W A + D1^T P D1``.
+
+    ``penalty``: one weight for every first difference, or one per difference.
+    """
     from scipy import sparse
 
     n = design.shape[1]
     d1 = sparse.diags([-1.0, 1.0], [0, 1], shape=(max(n - 1, 0), n))
-    normal = (design.T @ design.multiply(weight[:, None]) + penalty * (d1.T @ d1)).tocsr()
+    if np.ndim(penalty) == 0:
+        penalised = penalty * (d1.T @ d1)
+    else:
+        penalised = d1.T @ sparse.diags(np.asarray(penalty, dtype=float)) @ d1
+    normal = (design.T @ design.multiply(weight[:, None]) + penalised).tocsr()
     band = np.zeros((_DEGREE + 1, n))
     for k in range(_DEGREE + 1):
         band[_DEGREE - k, k:] = normal.diagonal(k)
@@ -223,6 +250,173 @@ def _extra_scatter(residual: np.ndarray, sigma: np.ndarray) -> float:
     return 0.5 * (lo + hi)
 
 
+#: Time bins per knot interval in which the stars' residuals are averaged to
+#: look for a change of transparency faster than the knots follow.
+_SUB_BINS = 4
+#: Fewest stars of a bin whose mean residual counts.
+_MIN_BIN_STARS = 3
+
+
+@dataclass(frozen=True)
+class _Structure:
+    """Binned residuals of each knot interval (see :func:`_binned_structure`)."""
+
+    chi2: np.ndarray  # sum over the bins of (mean / error)^2
+    dof: np.ndarray  # bins counted
+    excess: np.ndarray  # mean over the bins of mean^2 - error^2, mag^2 (>= 0)
+    half_count: np.ndarray  # (n_intervals, 2): stars per half of each interval
+
+
+def _binned_structure(
+    t: np.ndarray, residual: np.ndarray, sigma: np.ndarray, inner: np.ndarray, clip: float
+) -> _Structure:
+    """The stars' residuals averaged in ``_SUB_BINS`` time bins of each knot interval.
+
+    A spline with knots every ``h`` seconds cannot follow a dip in
+    transparency much shorter than ``h``: the stars' residuals about the fit
+    then run negative at the dip and positive on its shoulders, within one
+    knot interval.  Each bin's residual is the weighted mean of its stars
+    within ``clip`` of their errors from the bin's median (every star, also
+    those the fit clipped: a misfit large enough clips the very stars that
+    show it); its error is that of a weighted mean, widened by the square
+    root of the bin's reduced chi-square where its stars scatter beyond their
+    errors (common practice, the Birge ratio).  A well-fitting interval's
+    ``chi2`` follows a chi-square law of ``dof`` degrees of freedom (a little
+    below it: the fit absorbs some of the noise).
+    """
+    n_int = inner.size - 1
+    interval = np.clip(np.searchsorted(inner, t, side="right") - 1, 0, n_int - 1)
+    width = inner[interval + 1] - inner[interval]
+    frac = (t - inner[interval]) / width
+    sub = np.clip(np.floor(frac * _SUB_BINS).astype(int), 0, _SUB_BINS - 1)
+    half = (frac >= 0.5).astype(int)
+    n_bins = n_int * _SUB_BINS
+    which = interval * _SUB_BINS + sub
+    # each bin's median (the lower one), from the residuals sorted within bins
+    order = np.lexsort((residual, which))
+    counts = np.bincount(which, minlength=n_bins)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    median = np.zeros(n_bins)
+    full = counts > 0
+    median[full] = residual[order][starts[full] + (counts[full] - 1) // 2]
+    keep = np.abs(residual - median[which]) <= clip * sigma
+    w = np.where(keep, 1.0 / sigma**2, 0.0)
+    n = np.bincount(which, weights=keep.astype(float), minlength=n_bins)
+    sum_w = np.bincount(which, weights=w, minlength=n_bins)
+    ok = (n >= _MIN_BIN_STARS) & (sum_w > 0)
+    mean = np.zeros(n_bins)
+    mean[ok] = np.bincount(which, weights=w * residual, minlength=n_bins)[ok] / sum_w[ok]
+    chi2_within = np.bincount(which, weights=w * (residual - mean[which]) ** 2, minlength=n_bins)
+    birge = np.ones(n_bins)
+    birge[ok] = np.maximum(chi2_within[ok] / (n[ok] - 1), 1.0)
+    var = np.ones(n_bins)
+    var[ok] = birge[ok] / sum_w[ok]
+    per = (n_int, _SUB_BINS)
+    chi2 = np.where(ok, mean**2 / var, 0.0).reshape(per).sum(axis=1)
+    dof = ok.reshape(per).sum(axis=1)
+    excess = np.where(ok, mean**2 - var, 0.0).reshape(per).sum(axis=1) / np.maximum(dof, 1)
+    return _Structure(
+        chi2=chi2,
+        dof=dof,
+        excess=np.maximum(excess, 0.0),
+        half_count=np.bincount(interval * 2 + half, minlength=2 * n_int).reshape(n_int, 2),
+    )
+
+
+def _too_fast(structure: _Structure, false_alarm: float) -> np.ndarray:
+    """Knot intervals whose binned residuals exceed their noise at ``false_alarm``."""
+    from scipy.special import chdtri
+
+    dof = structure.dof
+    limit = np.full(dof.shape, np.inf)
+    limit[dof > 0] = chdtri(dof[dof > 0], false_alarm)  # chi-square inverse survival
+    return structure.chi2 > limit
+
+
+def _difference_penalty(knots: np.ndarray, penalty: float, base_spacing: float) -> np.ndarray:
+    """First-difference weights of the refined knots: ``penalty`` per ``base_spacing`` of time.
+
+    Coefficients ``j`` and ``j + 1`` share the knot intervals ``knots[j+1]``
+    to ``knots[j+4]``; their difference is weighted by the longest of them
+    over the first knots' spacing.  An interval halved twice holds a quarter
+    of the stars per coefficient, and its differences a quarter of the
+    penalty: the penalty's pull relative to the data stays what
+    ``bridge_penalty`` sets, and it still bridges holes (never refined) at
+    full strength.
+    """
+    n_diff = knots.size - _DEGREE - 2
+    spans = np.diff(knots)
+    longest = np.array([spans[j + 1 : j + 1 + _DEGREE].max() for j in range(n_diff)])
+    return penalty * np.minimum(longest / base_spacing, 1.0)
+
+
+def _clipped_fit(knots, t, delta, sigma, col, good, inside, *, clip, max_iterations, penalty):
+    """Solve, clip, solve for the extra scatter, repeat until the stars kept settle.
+
+    ``penalty(total_weight)`` gives the first-difference weight(s) of a solve.
+    """
+    design_all = _design(np.clip(t[good], knots[0], knots[-1]), knots)
+    extra = 0.0
+    used = inside.copy()
+    model = np.zeros_like(delta)
+    for _ in range(max_iterations):
+        sig = np.sqrt(sigma**2 + extra**2)
+        weight = np.where(used, 1.0 / np.where(good, sig, 1.0) ** 2, 0.0)[good]
+        coef, c, c_err, factor, direction = _solve(
+            design_all,
+            np.where(good, delta, 0.0)[good],
+            weight,
+            None if col is None else col[good],
+            penalty(float(np.sum(weight))),
+        )
+        model[good] = design_all @ coef + (0.0 if col is None else c * col[good])
+        residual = np.where(good, delta - model, np.nan)
+        new_extra = _extra_scatter(residual[used], sigma[used])
+        sig = np.sqrt(sigma**2 + new_extra**2)
+        z = np.abs(residual) / sig
+        new_used = good & inside & (z <= clip)
+        # done once the stars kept and the scatter the solve weighted them with
+        # hold: the covariance (``error``) is then that of the weights used
+        settled = np.isclose(new_extra, extra, rtol=1e-3, atol=1e-5)
+        extra = new_extra
+        if np.array_equal(new_used, used) and settled:
+            break
+        used = new_used
+    return {
+        "coefficients": coef,
+        "colour_term": float(c),
+        "colour_term_err": float(c_err),
+        "extra_scatter": float(extra),
+        "used": used,
+        "residual": residual,
+        "sigma": sig,
+        "_factor": factor,
+        "_colour_direction": direction,
+    }
+
+
+def _split(knots: np.ndarray, which: np.ndarray) -> np.ndarray:
+    """The knot vector with the inner intervals ``which`` (bool) halved."""
+    inner = knots[_DEGREE:-_DEGREE]
+    middles = 0.5 * (inner[:-1] + inner[1:])[which]
+    inner = np.sort(np.concatenate([inner, middles]))
+    return np.concatenate([knots[:_DEGREE], inner, knots[-_DEGREE:]])
+
+
+def _reach(inner: np.ndarray, spans: list[tuple[float, float]]) -> np.ndarray:
+    """Knot intervals that overlap one of ``spans`` (s), and their neighbours.
+
+    A cubic spline that misses a change within one interval errs in the
+    next ones too (each coefficient spans four intervals): a fast change
+    found in an interval makes its neighbours' excess count as well.
+    """
+    lo, hi = inner[:-1], inner[1:]
+    hit = np.zeros(lo.size, bool)
+    for a, b in spans:
+        hit |= (lo < b) & (hi > a)
+    return hit | np.r_[hit[1:], False] | np.r_[False, hit[:-1]]
+
+
 def fit_zero_point(
     t: ArrayLike,
     delta: ArrayLike,
@@ -235,8 +429,23 @@ def fit_zero_point(
     max_iterations: int = 10,
     bridge_penalty: float = 0.03,
     min_stars_per_knot: int = 3,
+    min_knot_spacing: float | None = None,
+    false_alarm: float = 1e-4,
 ) -> ZeroPointFit:
     """Fit ``delta = Z(t) + c colour`` with ``Z`` a cubic B-spline in time.
+
+    The knots start every ``knot_spacing`` seconds.  Where the stars'
+    residuals, averaged in four time bins per knot interval, depart from zero
+    beyond their errors (a change of transparency faster than the knots
+    follow: a short cloud), that interval is halved and the fit repeated,
+    down to ``min_knot_spacing`` and as long as each half holds enough stars.
+    Then, in every knot interval where such a change was found (at any
+    spacing) and in its neighbours, the excess variance of the binned
+    residuals (their mean square beyond their errors, common practice) is
+    added to the zero point's error: what the spline still misses there
+    (:attr:`ZeroPointFit.misfit`).  On a night whose residuals show no such
+    change, the fit is that of the even knots alone and its error the
+    covariance's.
 
     Parameters
     ----------
@@ -252,7 +461,8 @@ def fit_zero_point(
         Reference colour of each star, mag.  ``None`` fits no colour term.
     knot_spacing : float, optional
         Seconds between spline knots: the shortest change of transparency
-        the zero point can follow (about one knot spacing).
+        the zero point follows (about one knot spacing) where the stars show
+        no faster one.
     t_range : (float, float) or None, optional
         Times the spline must cover, seconds (default: the stars' range).
     clip : float, optional
@@ -262,12 +472,21 @@ def fit_zero_point(
         Most refits of the clipping loop.
     bridge_penalty : float, optional
         Weight of the first-difference penalty, relative to the mean weight
-        per spline coefficient.  Small: it keeps coefficients that few stars
-        constrain from wandering; 0.03 moves a 25 %, 25 s dip fitted with 8 s
-        knots by < 0.002 mag (measured in the tests).
+        per spline coefficient of the even knots.  Small: it keeps
+        coefficients that few stars constrain from wandering; 0.03 moves a
+        25 %, 25 s dip fitted with 8 s knots by < 0.002 mag (measured in the
+        tests).  Halved knot intervals carry a proportionally smaller one
+        (:func:`_difference_penalty`).
     min_stars_per_knot : int, optional
         Runs of knot intervals with fewer kept stars than this are holes,
         bridged by a straight line (:attr:`ZeroPointFit.holes`).
+    min_knot_spacing : float or None, optional
+        Shortest knot interval the halving makes, seconds; default
+        ``knot_spacing / 8``.  ``knot_spacing`` or more: no halving.
+    false_alarm : float, optional
+        Probability that the residuals of a knot interval where the spline
+        fits are taken for a faster change (chi-square of the four bins'
+        means); 1e-4 halves one interval of a noise-only night of 10000.
 
     Returns
     -------
@@ -292,6 +511,8 @@ def fit_zero_point(
     good = np.all([np.isfinite(a) for a in arrays], axis=0) & (sigma > 0)
     if not knot_spacing > 0:
         raise ValueError(f"knot_spacing must be positive seconds; got {knot_spacing}.")
+    if not 0 < false_alarm < 1:
+        raise ValueError(f"false_alarm must be a probability in (0, 1); got {false_alarm}.")
     lo, hi = (
         (float(np.min(t[good])), float(np.max(t[good])))
         if t_range is None and good.any()
@@ -306,44 +527,40 @@ def fit_zero_point(
             "or more reference stars (a fainter magnitude limit)."
         )
     inside = good & (t >= knots[0]) & (t <= knots[-1])
-    design_all = _design(np.clip(t[good], knots[0], knots[-1]), knots)
-    extra = 0.0
-    used = inside.copy()
-    model = np.zeros_like(delta)
-    for _ in range(max_iterations):
-        sig = np.sqrt(sigma**2 + extra**2)
-        weight = np.where(used, 1.0 / np.where(good, sig, 1.0) ** 2, 0.0)[good]
-        penalty = bridge_penalty * float(np.sum(weight)) / n_coef
-        coef, c, c_err, factor, direction = _solve(
-            design_all,
-            np.where(good, delta, 0.0)[good],
-            weight,
-            None if col is None else col[good],
-            penalty,
+    base_spacing = float(knots[_DEGREE + 1] - knots[_DEGREE])
+    shortest = knot_spacing / 8.0 if min_knot_spacing is None else float(min_knot_spacing)
+    arguments = (t, delta, sigma, col, good, inside)
+    settings = {"clip": clip, "max_iterations": max_iterations}
+
+    def even(total_weight):
+        return bridge_penalty * total_weight / n_coef
+
+    state = _clipped_fit(knots, *arguments, **settings, penalty=even)
+    fired = []  # (start, stop) of every knot interval whose stars changed faster, any round
+    while True:
+        inner = knots[_DEGREE:-_DEGREE]
+        structure = _binned_structure(
+            t[inside], state["residual"][inside], state["sigma"][inside], inner, clip
         )
-        model[good] = design_all @ coef + (0.0 if col is None else c * col[good])
-        residual = np.where(good, delta - model, np.nan)
-        new_extra = _extra_scatter(residual[used], sigma[used])
-        sig = np.sqrt(sigma**2 + new_extra**2)
-        z = np.abs(residual) / sig
-        new_used = good & inside & (z <= clip)
-        # done once the stars kept and the scatter the solve weighted them with
-        # hold: the covariance (``error``) is then that of the weights used
-        settled = np.isclose(new_extra, extra, rtol=1e-3, atol=1e-5)
-        extra = new_extra
-        if np.array_equal(new_used, used) and settled:
+        fast = _too_fast(structure, false_alarm)
+        fired += [(inner[k], inner[k + 1]) for k in np.flatnonzero(fast)]
+        splittable = (
+            fast
+            & (np.diff(inner) / 2 >= shortest * (1 - 1e-9))
+            & (structure.half_count.min(axis=1) >= _SUB_BINS * _MIN_BIN_STARS)
+        )
+        if not splittable.any():
+            misfit = np.where(_reach(inner, fired), np.sqrt(structure.excess), 0.0)
             break
-        used = new_used
+        knots = _split(knots, splittable)
+
+        def refined(total_weight, knots=knots):
+            return _difference_penalty(knots, even(total_weight), base_spacing)
+
+        state = _clipped_fit(knots, *arguments, **settings, penalty=refined)
     return ZeroPointFit(
-        holes=_holes(t[used], knots, min_stars_per_knot),
+        holes=_holes(t[state["used"]], knots, min_stars_per_knot),
         knots=knots,
-        coefficients=coef,
-        colour_term=float(c),
-        colour_term_err=float(c_err),
-        extra_scatter=float(extra),
-        used=used,
-        residual=residual,
-        sigma=sig,
-        _factor=factor,
-        _colour_direction=direction,
+        misfit=misfit,
+        **state,
     )
