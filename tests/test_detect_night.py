@@ -22,9 +22,10 @@ from _seam_graph import (
     stand_in_rectify,
 )
 from _toy_graph import edit_raw_block
+from astropy.table import QTable, Table
 
 from pipeline.config import config_from_mapping
-from pipeline.runner import night_status, open_product, run_night
+from pipeline.runner import night_status, open_product, product_path, run_night
 from pipeline.runner._night import NightStore
 from pipeline.stages import detect
 from pipeline.stages.base import NEIGHBOURS, RAW_ROWS, plan_stretches
@@ -81,6 +82,20 @@ def test_seam_stars_are_measured_whole_and_listed_once(seam_night):
     assert catalog.meta["detect_options"] == stretch.meta["detect_options"]
     assert DetectOptions(**catalog.meta["detect_options"]) == DetectOptions()
     assert "seeing_fwhm" not in catalog.meta
+    # The integer columns read back as integers, however a user reads the
+    # files: a dimensionless Quantity came back as floats, on which a test of
+    # a flag bit raised TypeError.
+    for path in (
+        product_path(config, "detect", 0, "catalog"),
+        product_path(config, "catalog", "night", "catalog"),
+        product_path(config, "catalog", "night", "seeing"),
+    ):
+        for reader in (Table, QTable):
+            table = reader.read(path, format="ascii.ecsv")
+            for name in {"group", "flags", "stretch", "n_stars"} & set(table.colnames):
+                assert table[name].dtype.kind == "i" and table[name].unit is None, (path, name)
+            if "flags" in table.colnames:
+                assert (table["flags"] & SourceFlag.OVERLAP).dtype.kind == "i"
     # An unchanged night reruns nothing.
     again = run_night(config)
     assert again.ok and again.count("ran") == 0
@@ -205,7 +220,6 @@ def test_the_stage_lets_detect_reuse_its_padded_planes(seam_night, monkeypatch):
 
 
 def test_the_night_catalogue_keeps_the_metadata_its_stretches_share():
-    from astropy.table import QTable, Table
 
     from pipeline.stages.catalog import stack_catalogs
 

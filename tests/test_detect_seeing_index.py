@@ -67,7 +67,7 @@ def _saturated_fluxes(catalog):
         i = int(np.argmin(d))
         assert d[i] < 0.5
         ratios.append(float(catalog["flux_psf"][i].value) / sf)
-        flags.append(int(catalog["flags"][i].value))
+        flags.append(int(catalog["flags"][i]))
     return np.array(ratios), np.array(flags)
 
 

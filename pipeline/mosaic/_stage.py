@@ -105,6 +105,8 @@ TILE_STAGE = Stage(
     # around each source (why it is NEAR_FLAGGED, and whether in its core)
     # 11: a night with no usable pixel on the tile (all ignore_flags) is left
     # out of it: no weight in the seeing mix, the kernels or the errors
-    version=11,
+    # 12: the catalogue's flags, group (and detect's other integers) integers
+    # when read, not dimensionless Quantities (floats)
+    version=12,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )

@@ -205,7 +205,8 @@ class DetectResult:
     Attributes
     ----------
     catalog : astropy.table.QTable
-        One row per source, units on every column (see :func:`detect`).
+        One row per source, a unit on every column that has one (``group``,
+        ``flags`` and ``stretch`` are plain integer columns; see :func:`detect`).
     seeing : astropy.table.Table
         Seeing FWHM of the stretch and per band of rows.
     problems : list of str
@@ -454,14 +455,18 @@ def _catalog(values: dict, radii, n: int) -> QTable:
         ("ellipticity", u.dimensionless_unscaled, "1 - b/a of the segment"),
         ("angle", u.deg, "orientation of the major axis, from +x toward +y"),
         ("chi2", u.dimensionless_unscaled, "reduced chi-square of the PSF fit"),
-        ("group", u.dimensionless_unscaled, "sources fitted together share a group"),
-        ("flags", u.dimensionless_unscaled, "SourceFlag bits"),
+        # integers without a unit: plain columns, which a reader gets back as
+        # integers (a Quantity, even a dimensionless one, comes back as floats,
+        # on which a test of the flag bits fails)
+        ("group", None, "sources fitted together share a group"),
+        ("flags", None, "SourceFlag bits"),
     ]
     table = QTable()
     for name, unit, doc in spec:
-        dtype = np.int32 if name in ("group", "flags") else np.float64
-        column = np.asarray(values.get(name, np.zeros(n)), dtype=dtype)
-        table[name] = u.Quantity(column, unit, dtype=dtype)
+        if unit is None:
+            table[name] = np.asarray(values.get(name, np.zeros(n)), dtype=np.int32)
+        else:
+            table[name] = u.Quantity(np.asarray(values.get(name, np.zeros(n)), float), unit)
         table[name].info.description = doc
     for j, r in enumerate(radii):
         tag = f"{j + 1}"
@@ -498,7 +503,6 @@ def _seeing_table(rows, beta: float, fit: tuple[float, float] = (np.nan, np.nan)
     )
     table["y_lo"].unit = table["y_hi"].unit = u.pix
     table["fwhm"].unit = u.pix
-    table["n_stars"].unit = u.dimensionless_unscaled
     for name, value in zip(("beta", "beta_fit", "beta_err"), (beta, *fit), strict=True):
         table[name] = np.full(len(table), value, dtype=float)
         table[name].unit = u.dimensionless_unscaled
@@ -1630,11 +1634,11 @@ def detect_stretch(
         **options.model_dump(),
     )
     catalog = result.catalog
-    catalog["stretch"] = u.Quantity(np.full(len(catalog), stretch_index, np.int32), u.one)
+    catalog["stretch"] = np.full(len(catalog), stretch_index, np.int32)
     catalog["stretch"].info.description = "index of the stretch whose columns hold x"
     catalog.meta["merge_rule"] = MERGE_RULE
     seeing = result.seeing
-    seeing["stretch"] = u.Quantity(np.full(len(seeing), stretch_index, np.int32), u.one)
+    seeing["stretch"] = np.full(len(seeing), stretch_index, np.int32)
     seeing["x_start"] = np.full(len(seeing), own_span[0]) * u.pix
     seeing["x_stop"] = np.full(len(seeing), own_span[1]) * u.pix
     seeing.meta.update(seeing_shape=options.seeing_shape, moffat_beta=options.moffat_beta)
@@ -1744,6 +1748,8 @@ STAGE = Stage(
     # 19: a star whose clipped core widens a saturated column (its own bleed,
     #     or a saturated star touching it) is one source at the widening's
     #     centre, SATURATED | EDGE | FIT_FAILED, without flux (column_star_cores)
-    version=19,
+    # 20: flags, group, stretch and n_stars plain integer columns (they read
+    #     back as floats as dimensionless Quantities)
+    version=20,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
