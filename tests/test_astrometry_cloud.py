@@ -97,8 +97,10 @@ def cloudy_night():
     strip_map = StripMap(model, frame, -4096, 4096 + 4096)
     x0, y0 = frame.pixel_from_icrs(np.asarray(truth["ra"]), np.asarray(truth["dec"]))
 
-    def solve(clear: bool = False, whole: bool = False, **fit_options):
-        kind = "geom" if clear else "mean"
+    def solve(clear: bool = False, whole: bool = False, time_means=False, **fit_options):
+        # time_means: the cloud's fluxes, but positions at the tracks' time
+        # means (what a fit with a long equal-time kernel measures)
+        kind = "geom" if clear or time_means else "mean"
         r, c = (np.asarray(truth[f"{a}_{kind}"], float) for a in ("r", "c"))
         x, y = _invert_map(strip_map, r, c, x0, y0)
         rng = np.random.default_rng(1)
@@ -168,6 +170,8 @@ def test_a_cloud_is_not_taken_for_a_camera_rotation(cloudy_night):
     # measured): the fit's prior shrinks a dip seen only by stars whose
     # crossings all overlap it (a night of one crossing, as the demo's)
     assert parameters.meta["cloud_depth"] == pytest.approx(DEPTH, abs=0.08)
+    floors = parameters.meta["light_weighting_floor_px"]
+    assert floors["light_weighted"] <= floors["time_means"]
     rotation, error = _rotation(parameters)
     print(
         f'light-weighted: rotation {rotation:+.2f}" +- {error:.2f}, depth '
@@ -176,6 +180,45 @@ def test_a_cloud_is_not_taken_for_a_camera_rotation(cloudy_night):
     # 1" plus 3 formal sigma (0.4" on this 256-column chip): 5 % of the 19"
     # effect, for the transparency curve's errors (measured +0.65" +- 0.43")
     assert abs(rotation) <= 1.0 + 3 * error
+
+
+def test_time_mean_positions_under_a_cloud_keep_the_time_means(cloudy_night):
+    """The same cloud in the fluxes, but positions at the tracks' time means,
+    as a fit with a long kernel measures them (on a simulated night at
+    latitude +68.5, 13-px kernels, light weighting took bright stars' scatter
+    from 4.2 to 13.6 mas along RA): the light-weighted fit leaves the
+    reference stars a larger common error, so the time means are kept, and
+    no rotation is made up."""
+    parameters = cloudy_night(time_means=True)
+    # the cloud is seen (the fluxes hold it) ...
+    assert parameters.meta["cloud_depth"] == pytest.approx(DEPTH, abs=0.08)
+    assert parameters.meta["cloud_significance"] > 5.0
+    # ... but the positions do not follow the light
+    floors = parameters.meta["light_weighting_floor_px"]
+    print(f"common errors: {floors}")
+    assert floors["light_weighted"] > floors["time_means"]
+    assert not parameters.meta["light_weighted"]
+    rotation, error = _rotation(parameters)
+    assert abs(rotation) <= 3 * error
+
+
+def test_light_weighting_is_kept_where_it_fits_at_least_as_well():
+    """The rule between the two fits: the smaller common error wins, a tie
+    (both without one) goes to the smaller reduced chi-square, and an exact
+    tie keeps the light weighting."""
+    from types import SimpleNamespace
+
+    from pipeline.stages.astrometry import light_weighting_fits_better as better
+
+    def fit(floor, chi2):
+        return SimpleNamespace(error_floor=floor, chi2_reduced=chi2)
+
+    assert better(fit(0.01, 1.0), fit(0.02, 1.0))
+    assert not better(fit(0.03, 1.0), fit(0.02, 1.0))
+    assert better(fit(0.0, 1.0), fit(0.02, 1.0))
+    assert better(fit(0.0, 0.8), fit(0.0, 0.9))
+    assert not better(fit(0.0, 0.95), fit(0.0, 0.9))
+    assert better(fit(0.02, 1.0), fit(0.02, 1.0))
 
 
 def test_a_clear_night_is_left_as_time_means(cloudy_night):

@@ -46,7 +46,12 @@ geometry, where rectify took the pixel from, so matching and fitting never
 invert the map.
 """
 
-from pipeline.stages.astrometry._catalog import AstrometryOptions, SolvedCatalog, solve_catalog
+from pipeline.stages.astrometry._catalog import (
+    AstrometryOptions,
+    SolvedCatalog,
+    light_weighting_fits_better,
+    solve_catalog,
+)
 from pipeline.stages.astrometry._fit import (
     FIT_PARAMETERS,
     GeometryFit,
@@ -108,6 +113,7 @@ __all__ = [
     "fit_geometry",
     "fit_transparency",
     "kernel_change",
+    "light_weighting_fits_better",
     "match_nearest",
     "offset_peak",
     "reference_columns",

@@ -30,6 +30,7 @@ measured the night again for a kernel change that was not there.
 from __future__ import annotations
 
 import dataclasses
+import logging
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -48,7 +49,9 @@ from pipeline.stages.detect import SourceFlag
 if TYPE_CHECKING:
     from astropy.table import QTable, Table
 
-__all__ = ["AstrometryOptions", "SolvedCatalog", "solve_catalog"]
+__all__ = ["AstrometryOptions", "SolvedCatalog", "light_weighting_fits_better", "solve_catalog"]
+
+log = logging.getLogger(__name__)
 
 
 class AstrometryOptions(BaseModel):
@@ -101,7 +104,8 @@ class AstrometryOptions(BaseModel):
         True,
         description="Measure the sky's transparency from the matched stars' fluxes and, "
         "where a cloud dims it, predict light-weighted centroids (needs flux_psf and "
-        "reference magnitudes).",
+        "reference magnitudes), if the reference stars' positions follow them better "
+        "than time means.",
     )
     min_cloud_depth: float = Field(
         0.05,
@@ -195,6 +199,38 @@ def _with_reference_error(frame: RectifiedFrame, x, y, x_err, y_err, reference_e
     along = reference_error / (frame.cdelt1 * 3.6e6 * np.cos(np.radians(dec)))
     across = reference_error / (frame.cdelt2 * 3.6e6)
     return np.hypot(x_err, along), np.hypot(y_err, across)
+
+
+def light_weighting_fits_better(weighted, time_means) -> bool:
+    """Whether the light-weighted fit describes the reference stars at least as well.
+
+    Under a passing cloud a star's image is its track weighted by the light,
+    and the fit predicts the light's centroid.  detect's fit follows that
+    centroid only where the smear kernel is short against the seeing: along
+    a long kernel the model's shape holds the fitted position near the time
+    mean (a model image whose light centroid moved 0.32 px, fitted with the
+    equal-time kernel of a 13-px track, moved 0.03 px), and a transparency
+    curve deconvolved from crossing-window means can wander between its
+    knots.  The reference stars tell which prediction the measured positions
+    follow: the fit with the smaller common error (``error_floor``, what
+    its reduced chi-square of 1 needs beyond the given errors) or, both
+    without one, the smaller reduced chi-square; a tie keeps the light
+    weighting.
+
+    Parameters
+    ----------
+    weighted, time_means : GeometryFit
+        The fits with and without the light weighting, of the same pairs'
+        catalogue and options.
+
+    Returns
+    -------
+    bool
+    """
+    a, b = float(weighted.error_floor), float(time_means.error_floor)
+    if a > 0.0 or b > 0.0:
+        return a <= b
+    return float(weighted.chi2_reduced) <= float(time_means.chi2_reduced)
 
 
 def _transparency(solution: AstrometricSolution, flux, flux_err, ref_mag):
@@ -310,6 +346,7 @@ def solve_catalog(
     }
     solution = solve_night(*args, **kwargs)
     cloud = None
+    time_means, weighted = solution, None
     if options.light_weighting and ref_mag is not None and "flux_psf" in catalog.colnames:
         flux = np.asarray(u.Quantity(catalog["flux_psf"]).value, dtype=float)[fit_rows]
         flux_err = None
@@ -321,9 +358,22 @@ def solve_catalog(
             and cloud.depth >= options.min_cloud_depth
             and cloud.significance >= options.min_cloud_significance
         ):
-            solution = solve_night(*args, transparency=cloud, **kwargs)
-        else:
-            cloud = dataclasses.replace(cloud, applied=False) if cloud is not None else None
+            weighted = solve_night(*args, transparency=cloud, **kwargs)
+            if light_weighting_fits_better(weighted.fit, solution.fit):
+                solution = weighted
+            else:
+                log.info(
+                    "light-weighted centroids fit the reference stars worse than time means "
+                    "(common error %.4f px against %.4f, reduced chi2 %.3f against %.3f): "
+                    "the time means are kept (long smear kernels, or a transparency curve "
+                    "the stars' fluxes do not pin down)",
+                    weighted.fit.error_floor,
+                    solution.fit.error_floor,
+                    weighted.fit.chi2_reduced,
+                    solution.fit.chi2_reduced,
+                )
+        if cloud is not None and solution is not weighted:
+            cloud = dataclasses.replace(cloud, applied=False)
     ra, dec, ra_err, dec_err, exposure = solution.sky_errors_and_exposures(
         x, y, x_err, y_err, segment
     )
@@ -359,6 +409,11 @@ def solve_catalog(
     parameters.meta["cloud_depth"] = None if cloud is None else cloud.depth
     parameters.meta["cloud_significance"] = None if cloud is None else cloud.significance
     parameters.meta["light_weighted"] = cloud is not None and cloud.applied
+    if weighted is not None:  # both fits made: what each left of the reference stars
+        parameters.meta["light_weighting_floor_px"] = {
+            "light_weighted": round(float(weighted.fit.error_floor), 5),
+            "time_means": round(float(time_means.fit.error_floor), 5),
+        }
     parameters.meta["east_tilt_note"] = (
         "clock_offset and rotation include any east tilt of the axis: 1 arcsec east acts as "
         f"{clock_per_tilt:.6f} s of clock and {rotation_per_tilt:.6f} arcsec of rotation"

@@ -808,5 +808,7 @@ STAGE = Stage(
     # (search_segment_clock), its search in its segment_clocks record, and a
     # stretch the fit left out is named against the stretches the fit used;
     # 6: each stretch's WCS carries the solution's own error there (CSYER1/2)
-    version=6,
+    # 7: the light weighting under a cloud is kept only if the reference stars
+    # follow it at least as well as the time means (light_weighting_floor_px)
+    version=7,
 )

@@ -16,7 +16,13 @@ which a fit without it takes for a camera rotation (15" on the demo night's
 nor the zero-point stage (it runs later, and its zero point is the
 crossing-mean transparency, not its course within a crossing) can undo it;
 the fit can, given the transparency ``T(t)`` itself: the predictor then
-weights each track's time mean by ``T``.
+weights each track's time mean by ``T``.  That prediction is the light's
+centroid, which detect measures only where the smear kernel is short
+against the seeing (along a long kernel the fitted position stays near the
+time mean), and ``T`` between its knots is only as good as the
+deconvolution below: the stage keeps the light weighting only where the
+reference stars follow it at least as well as the time means
+(:func:`~pipeline.stages.astrometry.light_weighting_fits_better`).
 
 How it is measured
 ------------------
