@@ -81,6 +81,11 @@ def test_seam_stars_are_measured_whole_and_listed_once(seam_night):
     assert catalog.meta["detect_options"] == stretch.meta["detect_options"]
     assert DetectOptions(**catalog.meta["detect_options"]) == DetectOptions()
     assert "seeing_fwhm" not in catalog.meta
+    # ... and keeps the mask bits the flags come from, next to them, described
+    names = catalog.colnames
+    assert names[names.index("flags") + 1 : names.index("flags") + 3] == ["mask_near", "mask_core"]
+    assert "MaskBit" in catalog["mask_core"].info.description
+    assert catalog.meta["mask_bits"] == stretch.meta["mask_bits"]
     # An unchanged night reruns nothing.
     again = run_night(config)
     assert again.ok and again.count("ran") == 0

@@ -24,7 +24,8 @@ Steps (:func:`detect`)
     4. Smear-aware PSF fit of every source (deblended children together),
        aperture sums at ``aperture_radii`` seeing FWHMs with model aperture
        corrections, shape from photutils ``SourceCatalog``, flags
-       (:class:`SourceFlag`).
+       (:class:`SourceFlag`) and the mask bits they come from (``mask_near``,
+       ``mask_core``).
 """
 
 from __future__ import annotations
@@ -378,7 +379,7 @@ def _core_of(cx, cy, cores) -> np.ndarray:
     return out
 
 
-def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores) -> dict:
+def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores, shown) -> dict:
     """``fits_`` with each column star at its core's centre, FIT_FAILED, its flux NaN.
 
     A star whose clipped core widens a saturated column is clipped out to
@@ -394,7 +395,9 @@ def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores) -> 
     neighbour.  The core's centre (:func:`column_star_cores`) was within
     0.7 px of them all.  Such a source is flagged FIT_FAILED (no flux) and
     SATURATED | EDGE (its core is clipped and meets the column's pixels
-    without data), not UNRESOLVED.
+    without data), not UNRESOLVED.  Its ``mask_core`` holds, besides the
+    bits under its fit's core, those of its clipped core's pixels (the
+    SATURATED or BLEED its flag says), wherever the fit ended.
 
     Parameters
     ----------
@@ -405,6 +408,8 @@ def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores) -> 
     core_of : ndarray of int
         :func:`_core_of` of the first search's sources (later ones: none).
     cores : ColumnCores
+    shown : ndarray of uint16
+        The stretch's mask (the bits ``mask_core`` shows).
 
     Returns
     -------
@@ -424,7 +429,34 @@ def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores) -> 
     flags = np.where(on, fits_["flags"] | bits, fits_["flags"])
     # not measured, so not tested for a pair either
     out["flags"] = np.where(on, flags & ~int(SourceFlag.UNRESOLVED), flags)
+    core_bits = np.array(fits_["mask_core"])
+    for row in np.flatnonzero(on).tolist():
+        k = which[row]
+        box = (slice(int(cores.y_lo[k]), int(cores.y_hi[k]) + 1),
+               slice(max(int(cores.x_lo[k]), 0), max(int(cores.x_hi[k]) + 1, 0)))  # fmt: skip
+        core_bits[row] |= int(np.bitwise_or.reduce(shown[box][cores.pixels[box]], axis=None))
+    out["mask_core"] = core_bits
     return out
+
+
+#: The catalogue's ``mask_near`` and ``mask_core`` (as the mosaic tiles'
+#: catalogues name theirs, :mod:`pipeline.mosaic._products`): the stretch's
+#: own FLAGS bits, those the flags were made from.  The flags' rules
+#: (:class:`SourceFlag`): NEAR_FLAGGED iff ``mask_near`` is not 0, SATURATED
+#: iff ``mask_core`` holds SATURATED or BLEED, COSMIC_RAY iff it holds
+#: COSMIC_RAY; EDGE where ``mask_near`` holds OUTSIDE or GAP or ``mask_core``
+#: NONFINITE, and also where the stamp is cut by the image's edge or the
+#: core meets a column saturated through the stretch (whose pixels detect
+#: takes as without data; the stretch's bits there are SATURATED or BLEED).
+MASK_NEAR_DESCRIPTION = (
+    "OR of the stretch's FLAGS bits (pipeline.masks.MaskBit) over the stamp its fit took "
+    "(its group's, for sources fitted together): why it is NEAR_FLAGGED"
+)
+MASK_CORE_DESCRIPTION = (
+    "OR of the stretch's FLAGS bits (pipeline.masks.MaskBit) over its core, where its fitted "
+    "model exceeds 5 % of its peak (a tile's: within the radius where the seeing falls to 5 %, "
+    "plus the smear track): why it is SATURATED or COSMIC_RAY"
+)
 
 
 def _empty_catalog(radii) -> QTable:
@@ -456,10 +488,12 @@ def _catalog(values: dict, radii, n: int) -> QTable:
         ("chi2", u.dimensionless_unscaled, "reduced chi-square of the PSF fit"),
         ("group", u.dimensionless_unscaled, "sources fitted together share a group"),
         ("flags", u.dimensionless_unscaled, "SourceFlag bits"),
+        ("mask_near", u.dimensionless_unscaled, MASK_NEAR_DESCRIPTION),
+        ("mask_core", u.dimensionless_unscaled, MASK_CORE_DESCRIPTION),
     ]
     table = QTable()
     for name, unit, doc in spec:
-        dtype = np.int32 if name in ("group", "flags") else np.float64
+        dtype = np.int32 if name in ("group", "flags", "mask_near", "mask_core") else np.float64
         column = np.asarray(values.get(name, np.zeros(n)), dtype=dtype)
         table[name] = u.Quantity(column, unit, dtype=dtype)
         table[name].info.description = doc
@@ -474,6 +508,7 @@ def _catalog(values: dict, radii, n: int) -> QTable:
             table[name] = u.Quantity(column, unit)
             table[name].info.description = doc
     table.meta["flag_bits"] = {flag.name: int(flag) for flag in SourceFlag}
+    table.meta["mask_bits"] = {bit.name: int(bit) for bit in MaskBit}
     table.meta["aperture_radii_fwhm"] = [float(r) for r in radii]
     return table
 
@@ -613,7 +648,11 @@ def detect(
         The catalogue: ``x``, ``y`` (night rectified pixels, first moment),
         errors, ``ra``, ``dec`` (deg), ``flux_psf`` (e-), aperture sums
         ``flux_aperN`` with corrections ``aperN_corr``, ``background`` (e-/pix),
-        shape, ``snr``, ``flags`` (:class:`SourceFlag`); and the seeing table.
+        shape, ``snr``, ``flags`` (:class:`SourceFlag`), ``mask_near`` and
+        ``mask_core`` (the OR of ``mask``'s :class:`pipeline.masks.MaskBit`
+        bits over the stamp each source's fit took and over its core, where
+        its fitted model exceeds 5 % of its peak: the bits its flags come
+        from, :data:`MASK_NEAR_DESCRIPTION`); and the seeing table.
     """
     from scipy.spatial import cKDTree
 
@@ -633,6 +672,9 @@ def detect(
         image = np.asarray(image, dtype=float)
         variance = np.asarray(variance, dtype=float)
     mask = np.asarray(mask)
+    # the stretch's own bits, which the catalogue's mask_near and mask_core
+    # show (detect's copy below adds bits where it takes pixels as without data)
+    shown = None
     if image.ndim != 2 or variance.shape != image.shape or mask.shape != image.shape:
         raise ValueError(
             f"image, variance and mask must be 2-D arrays of one shape; got {image.shape}, "
@@ -668,6 +710,7 @@ def detect(
         if cores is not None:
             columns &= ~cores.pixels
         no_data |= columns
+        shown = mask
         mask = mask.copy()
         mask[columns] |= mask.dtype.type(int(MaskBit.BAD_COLUMN | MaskBit.NONFINITE))
     beta_used = float(profile.beta) if seeing_shape == "moffat" else np.nan
@@ -1042,6 +1085,7 @@ def detect(
             memo=fitted,
             footprints=footprints,
             cut=columns,
+            shown=shown,
         )
         return members, result
 
@@ -1158,7 +1202,7 @@ def detect(
         members, fits_ = fit_all(cx, cy, blended)
     order = [i for g in members for i in g]
     if cores is not None:
-        fits_ = _column_stars_unmeasured(fits_, order, core_of, cores)
+        fits_ = _column_stars_unmeasured(fits_, order, core_of, cores, shown)
     keep = np.ones(len(order), bool)
     if own_columns is not None:
         keep = (fits_["x"] >= own_columns[0] - 0.5) & (fits_["x"] < own_columns[1] - 0.5)
@@ -1194,6 +1238,8 @@ def detect(
         "chi2": fits_["chi2"][idx],
         "group": fits_["group"][idx],
         "flags": fits_["flags"][idx],
+        "mask_near": fits_["mask_near"][idx],
+        "mask_core": fits_["mask_core"][idx],
         "fwhm": shape_cols[0][src],
         "ellipticity": shape_cols[1][src],
         "angle": shape_cols[2][src],
@@ -1744,6 +1790,9 @@ STAGE = Stage(
     # 19: a star whose clipped core widens a saturated column (its own bleed,
     #     or a saturated star touching it) is one source at the widening's
     #     centre, SATURATED | EDGE | FIT_FAILED, without flux (column_star_cores)
-    version=19,
+    # 20: catalogue columns mask_near and mask_core, the stretch's mask bits
+    #     over each source's fit stamp and its core, which its flags come from
+    #     (every other column unchanged)
+    version=20,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )
