@@ -92,10 +92,16 @@ def test_seam_stars_are_measured_whole_and_listed_once(seam_night):
     ):
         for reader in (Table, QTable):
             table = reader.read(path, format="ascii.ecsv")
-            for name in {"group", "flags", "stretch", "n_stars"} & set(table.colnames):
+            integers = {"group", "flags", "stretch", "n_stars", "mask_near", "mask_core"}
+            for name in integers & set(table.colnames):
                 assert table[name].dtype.kind == "i" and table[name].unit is None, (path, name)
             if "flags" in table.colnames:
                 assert (table["flags"] & SourceFlag.OVERLAP).dtype.kind == "i"
+    # ... and keeps the mask bits the flags come from, next to them, described
+    names = catalog.colnames
+    assert names[names.index("flags") + 1 : names.index("flags") + 3] == ["mask_near", "mask_core"]
+    assert "MaskBit" in catalog["mask_core"].info.description
+    assert catalog.meta["mask_bits"] == stretch.meta["mask_bits"]
     # An unchanged night reruns nothing.
     again = run_night(config)
     assert again.ok and again.count("ran") == 0

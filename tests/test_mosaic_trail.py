@@ -215,6 +215,9 @@ def test_the_tile_catalogue_says_which_tile_flags_lie_around_each_source(tiles):
         assert not np.any((near | core) & ~left_out)
         assert catalog.meta["mask_bits"]["NIGHT_LEFT_OUT"] == left_out
         assert 0 < catalog.meta["mask_core_radius"] < min(catalog.meta["mask_near_half_size"]) + 1
+        # the tile's own, in place of detect's, where the tiles have had them
+        assert catalog.colnames[-4:] == ["mask_core", "mask_near", "mag", "mag_err"]
+        assert "tile's FLAGS" in catalog["mask_near"].info.description
     distance = _trail_distance(x, y)
     under = (j1 >= 0) & (distance < 2.0)
     assert np.all(np.asarray(trailed["mask_near"])[j1[under]] & left_out)

@@ -199,7 +199,7 @@ def tile_catalog(tile: MosaicTile, **detect_options) -> QTable:
 
 #: Share of a star's peak above which its pixels are its core: detect's own
 #: (SATURATED, COSMIC_RAY and EDGE look at the pixels where the star's model
-#: exceeds 5 % of its peak, :func:`pipeline.stages.detect._measure._flags_for`).
+#: exceeds 5 % of its peak, :func:`pipeline.stages.detect._measure._mask_bits`).
 CORE_LEVEL = 0.05
 
 
@@ -217,6 +217,13 @@ def _add_mask_columns(catalog: QTable, flags: np.ndarray, profile, extent) -> No
     track (and widened over a saturated star's footprint), so the two can
     differ at the stamp's edge.
     """
+    # detect's own columns of these names (its stamps' and its models' cores)
+    # make way for the tile's, which the tile's products have held since
+    # tiles 10 (a tile is not made again when detect changes)
+    catalog.remove_columns(
+        [name for name in ("mask_near", "mask_core") if name in catalog.colnames]
+    )
+    catalog.meta.pop("mask_bits", None)
     x = np.asarray(catalog["x"].value, float)
     y = np.asarray(catalog["y"].value, float)
     radius = core_radius(*profile.mixture()) + float(np.hypot(*extent))

@@ -24,7 +24,8 @@ Steps (:func:`detect`)
     4. Smear-aware PSF fit of every source (deblended children together),
        aperture sums at ``aperture_radii`` seeing FWHMs with model aperture
        corrections, shape from photutils ``SourceCatalog``, flags
-       (:class:`SourceFlag`).
+       (:class:`SourceFlag`) and the mask bits they come from (``mask_near``,
+       ``mask_core``).
 """
 
 from __future__ import annotations
@@ -379,7 +380,7 @@ def _core_of(cx, cy, cores) -> np.ndarray:
     return out
 
 
-def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores) -> dict:
+def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores, shown) -> dict:
     """``fits_`` with each column star at its core's centre, FIT_FAILED, its flux NaN.
 
     A star whose clipped core widens a saturated column is clipped out to
@@ -395,7 +396,9 @@ def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores) -> 
     neighbour.  The core's centre (:func:`column_star_cores`) was within
     0.7 px of them all.  Such a source is flagged FIT_FAILED (no flux) and
     SATURATED | EDGE (its core is clipped and meets the column's pixels
-    without data), not UNRESOLVED.
+    without data), not UNRESOLVED.  Its ``mask_core`` holds, besides the
+    bits under its fit's core, those of its clipped core's pixels (the
+    SATURATED or BLEED its flag says), wherever the fit ended.
 
     Parameters
     ----------
@@ -406,6 +409,8 @@ def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores) -> 
     core_of : ndarray of int
         :func:`_core_of` of the first search's sources (later ones: none).
     cores : ColumnCores
+    shown : ndarray of uint16
+        The stretch's mask (the bits ``mask_core`` shows).
 
     Returns
     -------
@@ -425,7 +430,34 @@ def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores) -> 
     flags = np.where(on, fits_["flags"] | bits, fits_["flags"])
     # not measured, so not tested for a pair either
     out["flags"] = np.where(on, flags & ~int(SourceFlag.UNRESOLVED), flags)
+    core_bits = np.array(fits_["mask_core"])
+    for row in np.flatnonzero(on).tolist():
+        k = which[row]
+        box = (slice(int(cores.y_lo[k]), int(cores.y_hi[k]) + 1),
+               slice(max(int(cores.x_lo[k]), 0), max(int(cores.x_hi[k]) + 1, 0)))  # fmt: skip
+        core_bits[row] |= int(np.bitwise_or.reduce(shown[box][cores.pixels[box]], axis=None))
+    out["mask_core"] = core_bits
     return out
+
+
+#: The catalogue's ``mask_near`` and ``mask_core`` (as the mosaic tiles'
+#: catalogues name theirs, :mod:`pipeline.mosaic._products`): the stretch's
+#: own FLAGS bits, those the flags were made from.  The flags' rules
+#: (:class:`SourceFlag`): NEAR_FLAGGED iff ``mask_near`` is not 0, SATURATED
+#: iff ``mask_core`` holds SATURATED or BLEED, COSMIC_RAY iff it holds
+#: COSMIC_RAY; EDGE where ``mask_near`` holds OUTSIDE or GAP or ``mask_core``
+#: NONFINITE, and also where the stamp is cut by the image's edge or the
+#: core meets a column saturated through the stretch (whose pixels detect
+#: takes as without data; the stretch's bits there are SATURATED or BLEED).
+MASK_NEAR_DESCRIPTION = (
+    "OR of the stretch's FLAGS bits (pipeline.masks.MaskBit) over the stamp its fit took "
+    "(its group's, for sources fitted together): why it is NEAR_FLAGGED"
+)
+MASK_CORE_DESCRIPTION = (
+    "OR of the stretch's FLAGS bits (pipeline.masks.MaskBit) over its core, where its fitted "
+    "model exceeds 5 % of its peak (a tile's: within the radius where the seeing falls to 5 %, "
+    "plus the smear track): why it is SATURATED or COSMIC_RAY"
+)
 
 
 def _empty_catalog(radii) -> QTable:
@@ -460,6 +492,8 @@ def _catalog(values: dict, radii, n: int) -> QTable:
         # on which a test of the flag bits fails)
         ("group", None, "sources fitted together share a group"),
         ("flags", None, "SourceFlag bits"),
+        ("mask_near", None, MASK_NEAR_DESCRIPTION),
+        ("mask_core", None, MASK_CORE_DESCRIPTION),
     ]
     table = QTable()
     for name, unit, doc in spec:
@@ -479,6 +513,7 @@ def _catalog(values: dict, radii, n: int) -> QTable:
             table[name] = u.Quantity(column, unit)
             table[name].info.description = doc
     table.meta["flag_bits"] = {flag.name: int(flag) for flag in SourceFlag}
+    table.meta["mask_bits"] = {bit.name: int(bit) for bit in MaskBit}
     table.meta["aperture_radii_fwhm"] = [float(r) for r in radii]
     return table
 
@@ -617,7 +652,11 @@ def detect(
         The catalogue: ``x``, ``y`` (night rectified pixels, first moment),
         errors, ``ra``, ``dec`` (deg), ``flux_psf`` (e-), aperture sums
         ``flux_aperN`` with corrections ``aperN_corr``, ``background`` (e-/pix),
-        shape, ``snr``, ``flags`` (:class:`SourceFlag`); and the seeing table.
+        shape, ``snr``, ``flags`` (:class:`SourceFlag`), ``mask_near`` and
+        ``mask_core`` (the OR of ``mask``'s :class:`pipeline.masks.MaskBit`
+        bits over the stamp each source's fit took and over its core, where
+        its fitted model exceeds 5 % of its peak: the bits its flags come
+        from, :data:`MASK_NEAR_DESCRIPTION`); and the seeing table.
     """
     from scipy.spatial import cKDTree
 
@@ -637,6 +676,9 @@ def detect(
         image = np.asarray(image, dtype=float)
         variance = np.asarray(variance, dtype=float)
     mask = np.asarray(mask)
+    # the stretch's own bits, which the catalogue's mask_near and mask_core
+    # show (detect's copy below adds bits where it takes pixels as without data)
+    shown = None
     if image.ndim != 2 or variance.shape != image.shape or mask.shape != image.shape:
         raise ValueError(
             f"image, variance and mask must be 2-D arrays of one shape; got {image.shape}, "
@@ -672,6 +714,7 @@ def detect(
         if cores is not None:
             columns &= ~cores.pixels
         no_data |= columns
+        shown = mask
         mask = mask.copy()
         mask[columns] |= mask.dtype.type(int(MaskBit.BAD_COLUMN | MaskBit.NONFINITE))
     beta_used = float(profile.beta) if seeing_shape == "moffat" else np.nan
@@ -1046,6 +1089,7 @@ def detect(
             memo=fitted,
             footprints=footprints,
             cut=columns,
+            shown=shown,
         )
         return members, result
 
@@ -1162,7 +1206,7 @@ def detect(
         members, fits_ = fit_all(cx, cy, blended)
     order = [i for g in members for i in g]
     if cores is not None:
-        fits_ = _column_stars_unmeasured(fits_, order, core_of, cores)
+        fits_ = _column_stars_unmeasured(fits_, order, core_of, cores, shown)
     keep = np.ones(len(order), bool)
     if own_columns is not None:
         keep = (fits_["x"] >= own_columns[0] - 0.5) & (fits_["x"] < own_columns[1] - 0.5)
@@ -1198,6 +1242,8 @@ def detect(
         "chi2": fits_["chi2"][idx],
         "group": fits_["group"][idx],
         "flags": fits_["flags"][idx],
+        "mask_near": fits_["mask_near"][idx],
+        "mask_core": fits_["mask_core"][idx],
         "fwhm": shape_cols[0][src],
         "ellipticity": shape_cols[1][src],
         "angle": shape_cols[2][src],
@@ -1750,6 +1796,9 @@ STAGE = Stage(
     #     centre, SATURATED | EDGE | FIT_FAILED, without flux (column_star_cores)
     # 20: flags, group, stretch and n_stars plain integer columns (they read
     #     back as floats as dimensionless Quantities)
-    version=20,
+    # 21: catalogue columns mask_near and mask_core, the stretch's mask bits
+    #     over each source's fit stamp and its core, which its flags come from
+    #     (every other column unchanged)
+    version=21,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

@@ -564,18 +564,15 @@ def _walk(start: float, du: float, lo: float, hi: float, evaluate) -> tuple[floa
     return min(max(start + (k + shift) * du, lo), hi), curvature / du**2
 
 
-def _flags_for(mask, core, stamp_box, clipped, blended) -> tuple[int, int]:
-    """The flags of a star from the mask over its stamp and its ``core`` (bool, on the stamp).
-
-    Returns the flags and the OR of the mask bits over the core.
-    """
+def _mask_bits(mask, core, stamp_box) -> tuple[int, int]:
+    """The OR of the mask bits over a stamp and over a star's ``core`` (bool, on the stamp)."""
     y0, y1, x0, x1 = stamp_box
     stamp_mask = mask[y0:y1, x0:x1]
     stamp_bits = core_bits = 0
     if stamp_mask.any():  # most stamps have no flagged pixel: skip the bit tests
         stamp_bits = int(np.bitwise_or.reduce(stamp_mask, axis=None))
         core_bits = int(np.bitwise_or.reduce(stamp_mask[core], axis=None))
-    return _flags_from_bits(stamp_bits, core_bits, clipped, blended), core_bits
+    return stamp_bits, core_bits
 
 
 def _quadrupole_usable(core_bits: int) -> bool:
@@ -638,6 +635,7 @@ def measure_groups(
     memo: dict | None = None,
     footprints: Footprints | None = None,
     cut: np.ndarray | None = None,
+    shown: np.ndarray | None = None,
 ) -> dict[str, np.ndarray]:
     """Fit each group of sources with the smear-aware model.
 
@@ -677,17 +675,27 @@ def measure_groups(
         so that the wings beyond them are fitted (a stamp over a star
         centred on a column 10 rows wide otherwise holds 1-2 rows of data on
         either side).
+    shown : ndarray of uint16, shape (ny, nx), or None
+        The mask whose bits ``mask_near`` and ``mask_core`` show, when
+        ``mask`` (which the flags are made from) is another: detect's copy
+        of the stretch's mask with bits added.  None: ``mask``.
 
     Returns
     -------
     dict of ndarray
         Per source: ``x``, ``y``, ``x_err``, ``y_err``, ``flux``,
         ``flux_err``, ``background`` (fitted offset), ``chi2``, ``flags``,
+        ``mask_near`` and ``mask_core`` (the OR of ``shown``'s bits over the
+        stamp its fit took and over its core, where its fitted unit model
+        exceeds 5 % of its peak: the bits the flags were made from),
         ``group``, ``kernel`` (list of the reduced kernels used) and
         ``response`` (list of the :class:`~pipeline.stages.detect._model.Response`
         used, or None).
     """
-    names = ("x", "y", "x_err", "y_err", "flux", "flux_err", "background", "chi2", "flags")
+    names = (
+        "x", "y", "x_err", "y_err", "flux", "flux_err", "background", "chi2", "flags",
+        "mask_near", "mask_core",
+    )  # fmt: skip
     spacing = KERNEL_SPACING * profile.fwhm
     # The profile's fields, not the profile, in the keys: its dataclass hash
     # is a Python call at every look-up of a key.
@@ -717,6 +725,7 @@ def measure_groups(
         "max_joint": max_joint,
         "footprints": footprints,
         "cut": cut if cut is not None and cut.any() else None,
+        "shown": shown,
     }
     # The joint fits, all in one compiled call; None for a group to fit here.
     batch = _measure_joint(
@@ -799,6 +808,7 @@ def _measure_group(
     max_joint,
     footprints=None,
     cut=None,
+    shown=None,
     looked_up=None,
 ) -> list[dict]:
     """Fit one group of sources; one row (dict) per member.
@@ -826,13 +836,18 @@ def _measure_group(
         y0, y1, x0, x1, clipped = box
         unit = fit.units[j]
         core = unit > 0.05 * unit.max()
-        flags, core_bits = _flags_for(mask, core, (y0, y1, x0, x1), clipped, bool(split[i]))
+        stamp_bits, core_bits = _mask_bits(mask, core, (y0, y1, x0, x1))
+        flags = _flags_from_bits(stamp_bits, core_bits, clipped, bool(split[i]))
+        bits = (stamp_bits, core_bits)
+        if shown is not None:
+            bits = _mask_bits(shown, core, (y0, y1, x0, x1))
         values = (fit.flux[j], fit.x[j], fit.y[j], fit.flux_err[j], fit.x_err[j], fit.y_err[j])
         fitted = (values, fit.background, fit.chi2, fit.success)
         pair_i = bool(pair[i]) and _quadrupole_usable(core_bits)
         rows.append(
-            _row(members[i], fitted, flags, pair_i, box, kern[i], resp[i], profile, own_columns)
-        )
+            _row(members[i], fitted, flags, bits, pair_i, box, kern[i], resp[i], profile,
+                 own_columns)
+        )  # fmt: skip
     return rows
 
 
@@ -886,12 +901,14 @@ def _stamps(shape, xs, ys, extents, bounds, fwhm) -> list[tuple]:
     )  # fmt: skip
 
 
-def _row(start, fitted, flags, pair, box, kernel, response, profile, own_columns) -> dict:
+def _row(start, fitted, flags, bits, pair, box, kernel, response, profile, own_columns) -> dict:
     """The catalogue row (dict) of one star of a fitted group.
 
     ``start``: the star's starting ``(x, y)``; ``fitted``: ``((flux, x, y,
     flux_err, x_err, y_err), background, chi2, success)`` of its fit;
-    ``flags``: those of the mask, the stamp's edge and the blend; ``pair``:
+    ``flags``: those of the mask, the stamp's edge and the blend; ``bits``:
+    the mask bits shown over its stamp and its core (``mask_near``,
+    ``mask_core``), kept whether or not the fit failed; ``pair``:
     the residual's quadrupole marks it UNRESOLVED.  A fit that failed (not
     converged, a flux not positive, or a move of more than a FWHM) keeps the
     start as the position and NaN as the flux.
@@ -915,6 +932,8 @@ def _row(start, fitted, flags, pair, box, kernel, response, profile, own_columns
         "background": background,
         "chi2": chi2,
         "flags": flags,
+        "mask_near": bits[0],
+        "mask_core": bits[1],
         "kernel": kernel,
         "response": response,
     }
@@ -927,7 +946,7 @@ SHARED_GROUPS = 16
 
 def fit_groups(
     residual, variance, mask, boxes, members, x, y, dx, dy, kernels, sigmas, weights,
-    responses, erf, gauss, noise_correlation,
+    responses, erf, gauss, noise_correlation, shown, separate,
 ):  # fmt: skip
     """``fit_groups_compiled`` of the groups; the later ones in a thread while a core is idle.
 
@@ -946,7 +965,7 @@ def fit_groups(
 
     shared = (residual, variance, mask)
     table = (sigmas, weights)
-    rest = (erf, gauss, noise_correlation)
+    rest = (erf, gauss, noise_correlation, shown, separate)
     n_groups = boxes.shape[0]
     if n_groups < SHARED_GROUPS or spare_cores() < 1:
         return fit_groups_compiled(
@@ -1031,17 +1050,19 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
         _response_rows(resp),
         *profile_tables(),
         float(options["noise_correlation"]),
+        mask if options["shown"] is None else options["shown"],
+        options["shown"] is not None,
     )
     nc, own_columns = options["noise_correlation"], options["own_columns"]
     out = {}
     stars_list, sums, fits_list = stars.tolist(), quadrupoles.tolist(), fits.tolist()
     cuts = bounds.tolist()  # Python ints: numpy's scalars cost more per group
     for g, index in enumerate(order):
-        background, chi2, status, stamp_bits = fits_list[g]
+        background, chi2, status, stamp_bits, near = fits_list[g]
         if status < 0:
             continue
         box, first, split = boxes[g], cuts[g], splits[index]
-        stamp_bits, success = int(stamp_bits), status == 1
+        stamp_bits, near, success = int(stamp_bits), int(near), status == 1
         rows = []
         for s in range(first, cuts[g + 1]):
             values = stars_list[s]
@@ -1053,9 +1074,11 @@ def _measure_joint(residual, variance, mask, groups, splits, lookups, profile, o
             )
             flags = _flags_from_bits(stamp_bits, core_bits, box[4], split[s - first])
             fitted = (tuple(values[:6]), background, chi2, success)
+            bits = (near, int(values[7]))
             rows.append(
-                _row(starts[s], fitted, flags, pair, box, kern[s], resp[s], profile, own_columns)
-            )
+                _row(starts[s], fitted, flags, bits, pair, box, kern[s], resp[s], profile,
+                     own_columns)
+            )  # fmt: skip
         out[index] = rows
     return out
 

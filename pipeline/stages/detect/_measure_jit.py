@@ -63,19 +63,27 @@ def quadrupole_sums(data, variance, model, unit, x, y):
 
 
 @njit(nogil=True)
-def _stamp_bits(mask, y0, y1, x0, x1, units):
+def _stamp_bits(mask, shown, separate, y0, y1, x0, x1, units):
     """OR of the mask bits over a stamp, and over each star's core in it.
 
     The core of star ``s`` is where its unit model exceeds 5 % of its peak
     (none where the model holds a NaN, as numpy's ``unit > 0.05 * unit.max()``).
+    Returns the stamp's and the cores' bits of ``mask`` and, with
+    ``separate``, of ``shown`` (else ``mask``'s again).
     """
     stamp = 0
+    stamp_shown = 0
     for j in range(y0, y1):
         for i in range(x0, x1):
             stamp |= mask[j, i]
+            if separate:
+                stamp_shown |= shown[j, i]
+    if not separate:
+        stamp_shown = stamp
     cores = np.zeros(units.shape[0], dtype=np.int64)
-    if stamp == 0:
-        return stamp, cores
+    cores_shown = np.zeros(units.shape[0], dtype=np.int64)
+    if stamp == 0 and stamp_shown == 0:
+        return stamp, cores, stamp_shown, cores_shown
     for s in range(units.shape[0]):
         peak = -np.inf
         nan = False
@@ -92,13 +100,17 @@ def _stamp_bits(mask, y0, y1, x0, x1, units):
             for i in range(units.shape[2]):
                 if units[s, j, i] > 0.05 * peak:
                     cores[s] |= mask[y0 + j, x0 + i]
-    return stamp, cores
+                    if separate:
+                        cores_shown[s] |= shown[y0 + j, x0 + i]
+        if not separate:
+            cores_shown[s] = cores[s]
+    return stamp, cores, stamp_shown, cores_shown
 
 
 @njit(nogil=True)
 def fit_groups_compiled(
     residual, variance, mask, boxes, members, x, y, dx, dy, kernels, sigmas, weights, responses,
-    erf, gauss, noise_correlation,
+    erf, gauss, noise_correlation, shown, separate,
 ):  # fmt: skip
     """Fit many groups of stars, each on its stamp, in one call; see ``measure_groups``.
 
@@ -116,6 +128,7 @@ def fit_groups_compiled(
     residual, variance : ndarray, shape (ny, nx)
         The stretch's background-subtracted image and variance.
     mask : ndarray of uint16, shape (ny, nx)
+        The mask the flags are made from (detect's own copy).
     boxes : ndarray of int64, shape (m, 4)
         Each group's stamp ``(y0, y1, x0, x1)``.
     members : ndarray of int64, shape (m + 1,)
@@ -128,21 +141,27 @@ def fit_groups_compiled(
     sigmas, weights, responses, erf, gauss
         As ``fit_compiled`` takes them (``responses``: one row per star).
     noise_correlation : float
+    shown : ndarray of uint16, shape (ny, nx)
+        The mask whose bits the catalogue shows (the stretch's), read only
+        with ``separate``; without it, ``mask``'s bits are shown.
+    separate : bool
 
     Returns
     -------
-    stars : ndarray, shape (n, 7)
-        Flux, x, y and their errors, and the core's mask bits.
+    stars : ndarray, shape (n, 8)
+        Flux, x, y and their errors, and the core's bits of ``mask`` and
+        of ``shown``.
     quadrupoles : ndarray, shape (n, 6)
         ``quadrupole_sums`` of each star (NaN where the fit did not keep it).
-    groups : ndarray, shape (m, 4)
+    groups : ndarray, shape (m, 5)
         Background, reduced chi-square, status (``fit_compiled``'s: -1 a
-        singular step, to be fitted again in Python) and the stamp's mask bits.
+        singular step, to be fitted again in Python) and the stamp's bits of
+        ``mask`` and of ``shown``.
     """
     n_groups = boxes.shape[0]
-    stars = np.full((x.size, 7), np.nan)
+    stars = np.full((x.size, 8), np.nan)
     quadrupoles = np.full((x.size, 6), np.nan)
-    groups = np.zeros((n_groups, 4))
+    groups = np.zeros((n_groups, 5))
     for g in range(n_groups):
         y0, y1, x0, x1 = boxes[g, 0], boxes[g, 1], boxes[g, 2], boxes[g, 3]
         a, b = members[g], members[g + 1]
@@ -164,8 +183,11 @@ def fit_groups_compiled(
             err[:] = np.nan
         groups[g, 0] = p[0]
         groups[g, 1] = chi2 / max(n_good - p.size, 1)
-        stamp, cores = _stamp_bits(mask, y0, y1, x0, x1, units)
+        stamp, cores, stamp_shown, cores_shown = _stamp_bits(
+            mask, shown, separate, y0, y1, x0, x1, units
+        )
         groups[g, 3] = stamp
+        groups[g, 4] = stamp_shown
         # the whole model: background plus every star, summed as _fitted_model does
         model = np.zeros((y1 - y0, x1 - x0))
         for s in range(b - a):
@@ -176,6 +198,7 @@ def fit_groups_compiled(
                 stars[a + s, k] = p[1 + 3 * s + k]
                 stars[a + s, 3 + k] = err[1 + 3 * s + k]
             stars[a + s, 6] = cores[s]
+            stars[a + s, 7] = cores_shown[s]
             if status == 1 and p[1 + 3 * s] > 0:
                 quadrupoles[a + s] = quadrupole_sums(
                     data, var, model, units[s], p[2 + 3 * s] - x0, p[3 + 3 * s] - y0
