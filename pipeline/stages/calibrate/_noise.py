@@ -18,11 +18,24 @@ Transfer", SPIE, from memory):
 
 So ``GAIN = S / (var_sky - var_overscan)`` and ``RDNOISE = GAIN *
 sqrt(var_overscan)``.  The variance is taken per pair of rows, across the
-columns (stars and cosmic rays are outliers of the differences, which a
-median absolute deviation ignores), because the sky changes along the night
-(twilight, clouds, the start of the scan) and a MAD over pairs of unlike
-noise is no mean of their variances; the gain is the photon-transfer line
-through the origin, ``sum(S) / sum(var_sky - var_overscan)`` over the pairs.
+columns (cosmic rays and the odd star are outliers of the differences, which
+a median absolute deviation ignores), because the sky changes along the
+night (twilight, clouds, the start of the scan) and a MAD over pairs of
+unlike noise is no mean of their variances; the gain is the photon-transfer
+line through the origin, ``sum(S) / sum(var_sky - var_overscan)`` over the
+pairs.
+
+In a crowded field stars are no longer the odd outlier: the slopes of their
+profiles between two rows widen the whole distribution of differences (at
+200,000 stars per square degree, 0.52"/px, the gain came out 1.30 e-/ADU for
+2.0).  So each pair of rows uses only the pixels whose mean over the two rows
+lies at most one noise sigma above the sky there (:func:`_sky_pixels`): for
+two values of one sky, their sum and their difference are independent
+(Gaussian noise of equal variance), so the choice made on the mean leaves
+the differences' spread as it was, while the pixels on stars drop out; the
+sky level ``S`` is the median of those pixels (below the sky's mean by ~0.2
+sigma of the pair's mean: < 0.1 % of a night sky of 10,000 ADU, ~1 % at
+100 ADU).
 """
 
 from __future__ import annotations
@@ -88,6 +101,37 @@ def _row_difference_variance(differences: np.ndarray) -> np.ndarray:
     return np.where(n_finite >= 8, variance, np.nan)
 
 
+#: Pixels of a pair of rows whose mean lies more than this many noise sigmas
+#: (the lower half's spread) above the pair's median are left out of the
+#: gain's estimate: stars and their slopes (see the module notes).  One sigma
+#: keeps ~84 % of the sky's pixels.
+SKY_SIGMAS = 1.0
+
+
+def _sky_pixels(first: np.ndarray, second: np.ndarray) -> np.ndarray:
+    """Which pixels of pairs of rows (each row of ``first`` with ``second``'s) are sky.
+
+    The pairs' means, less the sky each shows: the sky level of each pair
+    (the median across the columns) times each column's response (the
+    median over the pairs of its mean over the pair's level, so that the
+    column-to-column spread of a flat field does not set the cut).  Sky are
+    the pixels whose residual lies at most :data:`SKY_SIGMAS` above its
+    pair's median residual, in units of the residuals' spread below that
+    median (the median minus the 15.87th percentile: stars only add light,
+    so the lower side is the noise's).  NaN is not sky.
+    """
+    mean = 0.5 * (first + second)
+    with warnings.catch_warnings(), np.errstate(invalid="ignore", divide="ignore"):
+        warnings.simplefilter("ignore", RuntimeWarning)  # rows or columns of NaN
+        level = np.nanmedian(mean, axis=1, keepdims=True)
+        level = np.where(level > 0, level, np.nan)
+        response = np.nanmedian(mean / level, axis=0, keepdims=True)
+        residual = mean - level * response
+        centre = np.nanmedian(residual, axis=1, keepdims=True)
+        low = np.nanpercentile(residual, 100.0 * 0.158655, axis=1, keepdims=True)
+        return residual <= centre + SKY_SIGMAS * (centre - low)
+
+
 def _clipped_variance(values: np.ndarray) -> float:
     """Half the variance of overscan differences, clipped at 5 MADs (ADU^2).
 
@@ -150,11 +194,15 @@ def measure_gain(
     floor = max(var_overscan, 0.25) if np.isfinite(var_overscan) else 0.25
     with np.errstate(invalid="ignore"), warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # rows of NaN
-        level = np.nanmedian(sky[rows] - bias[rows, None], axis=1)  # ADU, per pair
+        # The pixels of sky alone (stars' slopes would widen the differences)
+        first, second = sky[rows], sky[rows + 1]
+        alone = _sky_pixels(first, second)
+        first, second = np.where(alone, first, np.nan), np.where(alone, second, np.nan)
+        level = np.nanmedian(first - bias[rows, None], axis=1)  # ADU, per pair
         # The sky changes along the night (twilight, clouds, the start of the
         # scan): one variance per pair of rows, across the columns, since a MAD
         # over pairs of unlike noise is no mean of their variances.
-        variance = _row_difference_variance(sky[rows + 1] - sky[rows])
+        variance = _row_difference_variance(second - first)
     excess = variance - (var_overscan if np.isfinite(var_overscan) else 0.0)
     good = np.isfinite(level) & np.isfinite(excess) & (level > 0)
     measured = np.nan
