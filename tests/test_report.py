@@ -421,6 +421,37 @@ def test_the_summary_gives_each_segment_s_clock() -> None:
     assert not any(label.startswith("segment clocks") for label in rows)
 
 
+def test_the_summary_says_what_astrometry_made_of_a_cloud() -> None:
+    """The cloud's depth and significance, and which centroids the fit kept
+    (with the common error each left the reference stars), in words."""
+    floors = {"light_weighted": 0.0553, "time_means": 0.0213}
+    cases = [
+        (
+            {
+                "light_weighted": True,
+                "light_weighting_floor_px": floors | {"light_weighted": 0.0187},
+            },
+            "deepest loss 26 % (173.1 sigma): centroids weighted by the light (reference stars' "
+            "common error 0.0187 px, against 0.0213 for time means)",
+        ),
+        (
+            {"light_weighted": False, "light_weighting_floor_px": floors},
+            "deepest loss 26 % (173.1 sigma): time means kept: the reference stars followed "
+            "them better (common error 0.0213 px, against 0.0553 weighted by the light)",
+        ),
+        (
+            {"light_weighted": False, "cloud_significance": 0.4},
+            "deepest loss 26 % (0.4 sigma): taken for a clear sky (time means)",
+        ),
+    ]
+    for meta, expected in cases:
+        meta = {"cloud_depth": 0.261, "cloud_significance": 173.1} | meta
+        rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+        assert rows["cloud (astrometry)"] == expected
+    rows = dict(solved_rows(scene.products()))
+    assert "cloud (astrometry)" not in rows  # nothing recorded: nothing said
+
+
 def _with_meta(meta: dict):
     parameters = scene.solved_products()["astrometry_parameters"].copy()
     parameters.meta.update(meta)

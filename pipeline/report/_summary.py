@@ -132,6 +132,36 @@ def segment_clock_text(records: list[dict]) -> str | None:
     return "; ".join(parts)
 
 
+def cloud_text(meta: Mapping[str, Any]) -> str | None:
+    """What astrometry made of the sky's transparency, in words; None if not recorded.
+
+    From the parameters' ``cloud_depth``, ``cloud_significance``,
+    ``light_weighted`` and ``light_weighting_floor_px`` (the common error
+    each fit left the reference stars, when both were made).
+    """
+    depth, significance = meta.get("cloud_depth"), meta.get("cloud_significance")
+    if depth is None or significance is None:
+        return None
+    seen = f"deepest loss {100.0 * float(depth):.0f} % ({float(significance):.1f} sigma)"
+    floors = meta.get("light_weighting_floor_px")
+    if meta.get("light_weighted"):
+        decision = "centroids weighted by the light"
+        if floors:
+            decision += (
+                f" (reference stars' common error {floors['light_weighted']:.4f} px, "
+                f"against {floors['time_means']:.4f} for time means)"
+            )
+    elif floors:
+        decision = (
+            "time means kept: the reference stars followed them better "
+            f"(common error {floors['time_means']:.4f} px, against "
+            f"{floors['light_weighted']:.4f} weighted by the light)"
+        )
+    else:
+        decision = "taken for a clear sky (time means)"
+    return f"{seen}: {decision}"
+
+
 def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
     """Summary rows of the solved products (astrometry, zero point), or why they are absent."""
     from pipeline.report._solved import (
@@ -161,6 +191,9 @@ def solved_rows(products: Mapping[str, Any]) -> list[tuple[str, str]]:
         clocks = segment_clock_text(meta.get("segment_clocks") or [])
         if clocks is not None:
             rows.append(("segment clocks (relative to the night's)", clocks))
+        cloud = cloud_text(meta)
+        if cloud is not None:
+            rows.append(("cloud (astrometry)", cloud))
         if "focal_length_m" in meta and "focal_length_from_spin_m" in meta:
             fit, spin = float(meta["focal_length_m"]), float(meta["focal_length_from_spin_m"])
             # fitted = nominal * (1 + focal_scale): the difference's error is

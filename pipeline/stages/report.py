@@ -80,6 +80,7 @@ STAGE = Stage(
     # astrometry's last measurement when it measured again; 3: the hours of
     # data leave out the rows calibrate found without data (readout dropouts);
     # the fitted focal length's difference from the nominal with its error;
-    # the summary counts the out-of-date units and those not run
-    version=3,
+    # the summary counts the out-of-date units and those not run; 4: a row for
+    # the cloud astrometry saw and the centroids it kept
+    version=4,
 )
