@@ -275,6 +275,28 @@ def test_reference_magnitudes_of_another_passband_are_reported():
     for fit_colour_term in (True, False):
         products = run_zeropoint(catalog, fit_colour_term=fit_colour_term)
         assert not any(p.startswith("reference stars") for p in products.get(PROBLEMS, []))
+        assert not any("colour term is" in p for p in products.get(PROBLEMS, []))
+
+
+def test_a_colour_term_that_absorbs_another_passband_is_reported():
+    """A fitted colour term takes up a reference of another band whole (g for
+    r is about one magnitude per magnitude of g - r; from memory): no scatter
+    is left to report, but the term itself is far beyond a like band's."""
+    catalog, _ = synthetic_catalog(n_stars=1500)
+    other = catalog.copy()
+    other["ref_mag"] = other["ref_mag"] + (0.3 + 0.9 * other["ref_colour"].to_value(u.mag)) * u.mag
+    products = run_zeropoint(other, fit_colour_term=True)
+    term = products["colour_term"]
+    print(f"colour term {term['colour_term']:+.3f} +- {term['colour_term_err']:.3f}")
+    assert abs(term["colour_term"]) > 0.9  # the 0.1 of the night's band and the 0.9 added
+    assert term["extra_scatter_mag"] < 0.05  # absorbed: nothing for the scatter check
+    reported = [p for p in products[PROBLEMS] if "colour term is" in p]
+    assert len(reported) == 1
+    assert "another passband" in reported[0] and "columns.magnitude" in reported[0]
+    assert "max_colour_term" in reported[0]
+    # a larger limit takes it
+    products = run_zeropoint(other, fit_colour_term=True, max_colour_term=1.5)
+    assert not any("colour term is" in p for p in products.get(PROBLEMS, []))
 
 
 # ---------------------------------------------------------------------------- science

@@ -120,6 +120,16 @@ class ZeroPointOptions(BaseModel):
         description="Largest scatter (mag) of the reference stars about the zero point beyond "
         "their errors; more is reported (a reference of another passband?).",
     )
+    # A fitted colour term absorbs a reference of another passband whole (its
+    # magnitudes then come out in that band, for stars with a colour): terms
+    # between like passbands of two systems are a few tenths at most, between
+    # neighbouring bands (g for r) about one (from memory).
+    max_colour_term: float = Field(
+        0.5,
+        gt=0,
+        description="Largest fitted colour term (mag per mag of colour) before it is reported: "
+        "a reference of another passband than the night's filter?",
+    )
 
 
 def night_line_time(block_index: Table) -> float:
@@ -238,6 +248,7 @@ def calibrate_catalog(
     flat_max_trend: float = 0.01,
     target_zero_point: float = 25.0,
     max_extra_scatter: float = 0.05,
+    max_colour_term: float = 0.5,
 ) -> CalibratedNight:
     """Fit the night's zero point and calibrate every source of the catalogue.
 
@@ -282,6 +293,10 @@ def calibrate_catalog(
         The fit's extra scatter (mag: the stars' scatter beyond their
         errors) above this is reported, as a sign of reference magnitudes
         in another passband.
+    max_colour_term : float, optional
+        A fitted colour term larger than this (mag per mag, and 3 of its
+        errors) is reported, as a sign of reference magnitudes in another
+        passband that the colour term absorbed.
 
     Returns
     -------
@@ -427,6 +442,9 @@ def calibrate_catalog(
             trend,
             flat_max_trend,
             scatter=(fit.extra_scatter, max_extra_scatter, bool(fit_colour_term)),
+            colour=(fit.colour_term, fit.colour_term_err, max_colour_term)
+            if fit_colour_term
+            else None,
         ),
     )
 
@@ -436,11 +454,13 @@ def _problems(
     trend: dict,
     max_trend: float,
     scatter: tuple[float, float, bool] = (0.0, np.inf, False),
+    colour: tuple[float, float, float] | None = None,
 ) -> list[str]:
     """The night's problems in words.
 
     ``scatter``: the fit's extra scatter (mag), its limit (mag), and whether
-    a colour term was fitted.
+    a colour term was fitted; ``colour``: the fitted colour term, its error
+    and its limit (mag per mag), None when none was fitted.
     """
     from astropy import units as u
 
@@ -454,6 +474,16 @@ def _problems(
             "stages.astrometry.reference.columns.magnitude"
             + ("" if colour_fitted else ", or fit a colour term (fit_colour_term: true)")
         )
+    if colour is not None:
+        term, term_err, max_term = colour
+        if abs(term) > max_term and abs(term) > 3.0 * term_err:
+            problems.append(
+                f"the fitted colour term is {term:+.3f} +- {term_err:.3f} mag per mag of colour "
+                f"(limit max_colour_term {max_term}): the reference magnitudes may be of another "
+                "passband than the night's filter, which the colour term absorbs (the stars' "
+                "magnitudes are then of that band); check "
+                "stages.astrometry.reference.columns.magnitude"
+            )
     for row in intervals:
         flags = ZeroPointFlag(int(row["flags"]))
         if flags:
@@ -531,5 +561,6 @@ STAGE = Stage(
     # 4: an extra scatter above max_extra_scatter is reported as a problem
     # 5: knot intervals whose stars show a faster change (a short cloud) are halved,
     #    and what the knots still miss is added to Z(t)'s error
-    version=5,
+    # 6: a fitted colour term above max_colour_term is reported as a problem
+    version=6,
 )
