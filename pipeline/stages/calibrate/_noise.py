@@ -121,14 +121,21 @@ def _sky_pixels(first: np.ndarray, second: np.ndarray) -> np.ndarray:
     so the lower side is the noise's).  NaN is not sky.
     """
     mean = 0.5 * (first + second)
+    # numpy's NaN-aware median and percentile cost ~4x the plain ones: those
+    # only where a NaN is (a saturated pixel, a row without data)
+    median, percentile = np.median, np.percentile
+    if np.isnan(mean).any():
+        median, percentile = np.nanmedian, np.nanpercentile
     with warnings.catch_warnings(), np.errstate(invalid="ignore", divide="ignore"):
         warnings.simplefilter("ignore", RuntimeWarning)  # rows or columns of NaN
-        level = np.nanmedian(mean, axis=1, keepdims=True)
+        level = median(mean, axis=1, keepdims=True)
         level = np.where(level > 0, level, np.nan)
-        response = np.nanmedian(mean / level, axis=0, keepdims=True)
+        if not np.isfinite(level).all():
+            median, percentile = np.nanmedian, np.nanpercentile
+        response = median(mean / level, axis=0, keepdims=True)
         residual = mean - level * response
-        centre = np.nanmedian(residual, axis=1, keepdims=True)
-        low = np.nanpercentile(residual, 100.0 * 0.158655, axis=1, keepdims=True)
+        centre = median(residual, axis=1, keepdims=True)
+        low = percentile(residual, 100.0 * 0.158655, axis=1, keepdims=True)
         return residual <= centre + SKY_SIGMAS * (centre - low)
 
 
