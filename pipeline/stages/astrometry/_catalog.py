@@ -43,6 +43,7 @@ from pipeline.stages.astrometry._fit import FIT_PARAMETERS, _subset
 from pipeline.stages.astrometry._model import east_tilt_equivalent
 from pipeline.stages.astrometry._segments import NightSegments
 from pipeline.stages.astrometry._solve import AstrometricSolution, SearchRanges, solve_night
+from pipeline.stages.astrometry._stats import stretch_excess_errors
 from pipeline.stages.astrometry._transparency import fit_transparency
 from pipeline.stages.detect import SourceFlag
 
@@ -199,6 +200,26 @@ def _with_reference_error(frame: RectifiedFrame, x, y, x_err, y_err, reference_e
     along = reference_error / (frame.cdelt1 * 3.6e6 * np.cos(np.radians(dec)))
     across = reference_error / (frame.cdelt2 * 3.6e6)
     return np.hypot(x_err, along), np.hypot(y_err, across)
+
+
+def _stretch_extra(catalog, fit, fit_rows, x_err, y_err) -> dict[int, tuple[float, float]]:
+    """:func:`stretch_excess_errors` of the fit's kept pairs, by the catalogue's ``stretch``.
+
+    ``x_err``, ``y_err``: the fitted detections' errors as the fit weighed
+    them (reference error included).  Empty without a ``stretch`` column.
+    """
+    if "stretch" not in catalog.colnames:
+        return {}
+    used = np.flatnonzero(fit.used)
+    det = fit.det_index[used]
+    stretch = np.asarray(catalog["stretch"], dtype=np.int64)[fit_rows[det]]
+    return stretch_excess_errors(
+        stretch,
+        fit.residual_row[used],
+        fit.residual_column[used],
+        x_err[det],
+        y_err[det],
+    )
 
 
 def light_weighting_fits_better(weighted, time_means) -> bool:
@@ -374,6 +395,21 @@ def solve_catalog(
                 )
         if cloud is not None and solution is not weighted:
             cloud = dataclasses.replace(cloud, applied=False)
+    extra = _stretch_extra(catalog, solution.fit, fit_rows, fit_x_err, fit_y_err)
+    if extra:
+        # the positions of a stretch whose stars the solution does not follow as
+        # well as the night's carry the difference (a passing cloud's)
+        x_err, y_err = x_err.copy(), y_err.copy()
+        stretch = np.asarray(catalog["stretch"], dtype=np.int64)
+        for k, (along, across) in extra.items():
+            sel = stretch == k
+            x_err[sel] = np.hypot(x_err[sel], along)
+            y_err[sel] = np.hypot(y_err[sel], across)
+        log.info(
+            "stretches whose positions carry an error beyond the night's (px, along and "
+            "across the scan): %s",
+            ", ".join(f"s{k:04d} {a:.4f}/{b:.4f}" for k, (a, b) in extra.items()),
+        )
     ra, dec, ra_err, dec_err, exposure = solution.sky_errors_and_exposures(
         x, y, x_err, y_err, segment
     )
@@ -409,6 +445,9 @@ def solve_catalog(
     parameters.meta["cloud_depth"] = None if cloud is None else cloud.depth
     parameters.meta["cloud_significance"] = None if cloud is None else cloud.significance
     parameters.meta["light_weighted"] = cloud is not None and cloud.applied
+    parameters.meta["stretch_extra_error_px"] = {
+        f"s{k:04d}": [round(a, 5), round(b, 5)] for k, (a, b) in extra.items()
+    }
     if weighted is not None:  # both fits made: what each left of the reference stars
         parameters.meta["light_weighting_floor_px"] = {
             "light_weighted": round(float(weighted.fit.error_floor), 5),

@@ -810,5 +810,7 @@ STAGE = Stage(
     # 6: each stretch's WCS carries the solution's own error there (CSYER1/2)
     # 7: the light weighting under a cloud is kept only if the reference stars
     # follow it at least as well as the time means (light_weighting_floor_px)
-    version=7,
+    # 8: a stretch whose reference stars scatter beyond the night's common error
+    # gives its positions' errors the difference (stretch_extra_error_px)
+    version=8,
 )
