@@ -448,6 +448,12 @@ def test_the_summary_says_what_astrometry_made_of_a_cloud() -> None:
         meta = {"cloud_depth": 0.261, "cloud_significance": 173.1} | meta
         rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
         assert rows["cloud (astrometry)"] == expected
+    meta = {"cloud_depth": 0.261, "cloud_significance": 173.1, "light_weighted": False}
+    meta["stretch_extra_error_px"] = {"s0004": [0.0197, 0.0]}
+    rows = dict(solved_rows(scene.products() | {"astrometry_parameters": _with_meta(meta)}))
+    assert rows["cloud (astrometry)"].endswith(
+        "; positions' errors widened in s0004 (+0.0197 / +0.0000 px along / across the scan)"
+    )
     rows = dict(solved_rows(scene.products()))
     assert "cloud (astrometry)" not in rows  # nothing recorded: nothing said
 

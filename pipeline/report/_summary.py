@@ -137,7 +137,9 @@ def cloud_text(meta: Mapping[str, Any]) -> str | None:
 
     From the parameters' ``cloud_depth``, ``cloud_significance``,
     ``light_weighted`` and ``light_weighting_floor_px`` (the common error
-    each fit left the reference stars, when both were made).
+    each fit left the reference stars, when both were made), and the
+    stretches whose positions' errors got an extra error
+    (``stretch_extra_error_px``).
     """
     depth, significance = meta.get("cloud_depth"), meta.get("cloud_significance")
     if depth is None or significance is None:
@@ -159,6 +161,12 @@ def cloud_text(meta: Mapping[str, Any]) -> str | None:
         )
     else:
         decision = "taken for a clear sky (time means)"
+    extra = meta.get("stretch_extra_error_px") or {}
+    if extra:
+        decision += "; positions' errors widened in " + ", ".join(
+            f"{name} (+{along:.4f} / +{across:.4f} px along / across the scan)"
+            for name, (along, across) in extra.items()
+        )
     return f"{seen}: {decision}"
 
 

@@ -81,6 +81,7 @@ STAGE = Stage(
     # data leave out the rows calibrate found without data (readout dropouts);
     # the fitted focal length's difference from the nominal with its error;
     # the summary counts the out-of-date units and those not run; 4: a row for
-    # the cloud astrometry saw and the centroids it kept
-    version=4,
+    # the cloud astrometry saw and the centroids it kept; 5: and the stretches
+    # whose positions' errors it widened
+    version=5,
 )
