@@ -207,7 +207,8 @@ class DetectResult:
     ----------
     catalog : astropy.table.QTable
         One row per source, a unit on every column that has one (``group``,
-        ``flags`` and ``stretch`` are plain integer columns; see :func:`detect`).
+        ``flags``, ``mask_near``, ``mask_core`` and the stage's ``stretch`` are
+        plain integer columns; see :func:`detect`).
     seeing : astropy.table.Table
         Seeing FWHM of the stretch and per band of rows.
     problems : list of str
