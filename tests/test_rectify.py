@@ -21,10 +21,12 @@ from pipeline.geometry.tdi import first_order_bow
 from pipeline.masks import MaskBit
 from pipeline.products import image_hdulist
 from pipeline.stages import GRAPH, StageContext, Stretch
+from pipeline.stages._line_time import clock_spans, other_line_time_blocks
 from pipeline.stages.detect._model import KernelGrid
 from pipeline.stages.rectify import (
     STAGE,
     RectifyOptions,
+    line_time_problem,
     night_line_time,
     night_model,
     rectify,
@@ -718,6 +720,29 @@ def test_stage_is_registered_with_strict_options():
         assert name in parameters
 
 
+def _run_stage(model, index, stretch, stretches):
+    """The stage on ``stretch`` of a night ``index``, calibrated to 576 rows of a flat 10 e- sky."""
+    image = np.full((576, 256), 10.0)
+    calibrated = image_hdulist(
+        image,
+        image.copy(),
+        np.zeros(image.shape, np.uint16),
+        unit="electron",
+        header=fits.Header(),
+        metadata=fits.Header(),
+    )
+    context = StageContext(
+        site=model.site,
+        camera=model.camera,
+        run=RectifyOptions(),
+        night="test",
+        stretch=stretch,
+        stretches=stretches,
+    )
+    inputs = {"ingest": {"block_index": index}, "calibrate": {"image": calibrated}}
+    return STAGE.run(inputs=inputs, options=RectifyOptions(), context=context)
+
+
 def test_stage_run_returns_an_image_product_with_readable_wcs():
     model = scene_model(30.0, 1024)
     index = Table(
@@ -732,25 +757,7 @@ def test_stage_run_returns_an_image_product_with_readable_wcs():
         meta={"reference_time": model.start.isot},
     )
     stretch = Stretch(0, 0, 512, 0, 576)
-    context = StageContext(
-        site=model.site,
-        camera=model.camera,
-        run=RectifyOptions(),
-        night="test",
-        stretch=stretch,
-        stretches=(stretch, Stretch(1, 512, 1024, 448, 1024)),
-    )
-    image = np.full((576, 256), 10.0)
-    calibrated = image_hdulist(
-        image,
-        image.copy(),
-        np.zeros(image.shape, np.uint16),
-        unit="electron",
-        header=fits.Header(),
-        metadata=fits.Header(),
-    )
-    inputs = {"ingest": {"block_index": index}, "calibrate": {"image": calibrated}}
-    products = STAGE.run(inputs=inputs, options=RectifyOptions(), context=context)
+    products = _run_stage(model, index, stretch, (stretch, Stretch(1, 512, 1024, 448, 1024)))
     assert set(products) == {"image", "smear_kernels"}
     planes = products["image"]
     assert [hdu.name for hdu in planes] == ["PRIMARY", "FLUX", "FLUXVAR", "FLAGS"]
@@ -898,9 +905,93 @@ def test_line_times_that_differ_by_header_rounding_are_one_line_time():
     mostly_rounded = np.array([0.0458929] * 3 + [0.045892920031762555] * 2)
     assert night_line_time(mostly_rounded, rows, 5120) == 0.0458929
     assert night_line_time(np.array([0.05, 0.05 + 1e-9]), np.array([10, 10]), 100) == 0.05
-    # A real change of the clock is still refused: 1e-5 relative is 0.05 rows over 5120.
-    with pytest.raises(ValueError, match=r"differ by 0.0512 rows over its 5120 rows"):
-        night_line_time(np.array([0.05, 0.05 * (1 + 1e-5)]), np.array([2560, 2560]), 5120)
+
+
+def test_a_camera_that_changes_its_line_time_mid_night_keeps_the_rows_of_the_most():
+    """A real change of the clock (an operator who retunes the TDI rate) used
+    to fail rectify on every stretch, and so the whole night.  Now the night's
+    line time is the one of the most rows (values within the tolerance, one
+    clock printed with other digits, counted together), and only the stretches
+    with rows of another line time are refused, naming their files and how
+    to reduce them.  (Derived: 1e-5 relative is 0.05 rows over 5120 rows.)"""
+    a, b = 0.05, 0.05 * (1 + 1e-5)
+    assert night_line_time(np.array([a, b]), np.array([2560, 2560]), 5120) == a  # tie: shortest
+    assert night_line_time(np.array([a, b, b]), np.array([2048, 1536, 1536]), 5120) == b
+    # a rounded print of the main clock counts with it
+    rounded = round(b, 7)
+    assert night_line_time(np.array([a, rounded, b]), np.array([2048, 1024, 2048]), 5120) == b
+    index = Table(
+        {
+            "file": ["block_0000.fits", "block_0001.fits", "block_0002.fits"],
+            "row_start": [0, 2048, 3584],
+            "n_rows": [2048, 1536, 1536],
+            "line_time": [a, b, b],
+        }
+    )
+    assert other_line_time_blocks(np.array([a, b, b]), b, 5120).tolist() == [True, False, False]
+    assert line_time_problem(index, (2048, 5120), b) is None
+    reason = line_time_problem(index, (0, 2048), b)
+    assert "block_0000.fits at LINETIME 0.05 s, not the night's 0.0500005 s" in reason
+    assert "(3072 of the night's 5120 rows)" in reason and "night.pattern" in reason
+    # rows from both clocks are refused
+    assert line_time_problem(index, (1900, 2100), b) is not None
+
+
+def test_line_times_are_one_clock_when_they_agree_over_their_segment():
+    """Rows are timed from the start of their segment, so a clock error adds
+    up over the segment's rows (and the TDI rows of the smear), not over the
+    night's: a camera restarted after a 117,665-row gap that computed its
+    line time again 1.2e-7 apart (0.015 rows over that night's 125,857 rows)
+    had its second part refused; over its 4096-row segment it is 0.0005
+    rows. (Derived.)"""
+    a, c = 0.04589291321390699, 0.04589291883945021
+    index = Table(
+        {
+            "file": [f"block_{k:04d}.fits" for k in range(8)],
+            "row_start": [0, 1024, 2048, 3072, 121761, 122785, 123809, 124833],
+            "n_rows": [1024] * 8,
+            "line_time": [a] * 4 + [c] * 4,
+            "tdi_rows": [4096] * 8,
+            "segment": [0] * 4 + [1] * 4,
+        }
+    )
+    np.testing.assert_array_equal(clock_spans(index), [4096] * 8)
+    assert night_line_time(index["line_time"], index["n_rows"], clock_spans(index)) == a
+    assert line_time_problem(index, (121761, 125857), a) is None
+    # a clock 0.2 % slow is another line time however short its segment
+    index["line_time"][4:] = a * 1.002
+    assert "block_0004.fits, block_0005.fits" in line_time_problem(index, (121761, 125857), a)
+    # the segment's rows count where they are more than the TDI rows
+    index["tdi_rows"] = 64
+    np.testing.assert_array_equal(clock_spans(index), [4096] * 8)
+    index["segment"] = [0, 0, 0, 0, 1, 1, 2, 2]
+    np.testing.assert_array_equal(clock_spans(index), [4096] * 4 + [2048] * 4)
+
+
+def test_rectify_refuses_a_stretch_clocked_at_another_line_time():
+    """The stage runs a stretch of the night's line time and refuses one of
+    another, saying why (self-consistency)."""
+    model = scene_model(30.0, 1024)
+    other = model.line_time * 1.002
+    index = Table(
+        {
+            "file": ["a.fits", "b.fits", "c.fits"],
+            "row_start": [0, 512, 1024],
+            "n_rows": [512, 512, 256],
+            "t_start": [0.0, 512 * model.line_time, 1024 * model.line_time],
+            "line_time": [model.line_time, model.line_time, other],
+            "tdi_rows": [model.camera.tdi_rows] * 3,
+            "filter": ["r"] * 3,
+        },
+        meta={"reference_time": model.start.isot},
+    )
+    stretches = (
+        Stretch(0, 0, 512, 0, 576, (0, 1024)),
+        Stretch(1, 1024, 1280, 1024, 1280, (1024, 1280)),
+    )
+    assert set(_run_stage(model, index, stretches[0], stretches)) == {"image", "smear_kernels"}
+    with pytest.raises(ValueError, match=r"s0001 is not rectified: its rows come from c.fits"):
+        _run_stage(model, index, stretches[1], stretches)
 
 
 def test_a_segment_after_a_fractional_gap_is_resampled_to_the_night_s_row_clock():

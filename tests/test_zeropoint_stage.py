@@ -111,9 +111,16 @@ def block_index():
     return index
 
 
-def run_zeropoint(catalog, **options):
+def run_zeropoint(catalog, index=None, solved=None, **options):
+    """The stage on ``catalog``; ``solved``: the stretches with a WCS (None: all)."""
+    if solved is None:
+        solved = range(N_STRETCHES)
+    wcs = {f"s{k:04d}": [["CTYPE1", "RA---TAN"], ["CTYPE2", "DEC--TAN"]] for k in solved}
     return zeropoint.STAGE.run(
-        inputs={"ingest": {BLOCK_INDEX: block_index()}, "astrometry": {"catalog": catalog}},
+        inputs={
+            "ingest": {BLOCK_INDEX: block_index() if index is None else index},
+            "astrometry": {"catalog": catalog, "wcs": wcs},
+        },
         options=ZeroPointOptions(**{"knot_spacing": 8.0, "fit_colour_term": True} | options),
         context=context(),
     )
@@ -203,6 +210,40 @@ def test_a_stretch_with_too_few_stars_is_interpolated_and_flagged(night):
     error = grid["zero_point"].to_value(u.mag)[inside] - CLEAR_ZP
     assert np.max(np.abs(error)) <= 0.008
     assert any(f"s{THIN_STRETCH:04d}" in p and "interpolated" in p for p in products[PROBLEMS])
+
+
+def test_a_stretch_astrometry_did_not_solve_is_flagged_but_not_reported():
+    """A stretch left out upstream (rectify refused its line time, a failed
+    unit) has no stars: its interval is flagged and interpolated as any
+    empty stretch, but the problem is the earlier stages' to report (they
+    say which stretches they ran without), not the zero point's four times
+    over (self-consistency)."""
+    catalog, _ = synthetic_catalog()
+    products = run_zeropoint(catalog, solved=[0, 1, 2, 3, 5])
+    assert products["intervals"][THIN_STRETCH]["flags"] & ZeroPointFlag.FEW_STARS
+    assert not any(p.startswith(f"s{THIN_STRETCH:04d}") for p in products[PROBLEMS])
+    assert any(p.startswith(f"s{CLOUD_STRETCH:04d}") for p in products[PROBLEMS])
+
+
+def test_the_night_s_line_time_is_that_of_its_most_rows():
+    """A camera whose line time changed mid-night: the stretches of the other
+    line time are not rectified, so the zero point times its sources by the
+    line time of the most rows, as rectify (the median of the blocks' values
+    was the mean of two clocks on a night of four blocks each)."""
+    index = Table(
+        {
+            "file": [f"b{k}.fits" for k in range(4)],
+            "hdu": [0] * 4,
+            "row_start": [0, 4500, 9000, 13500],
+            "n_rows": [4500] * 4,
+            "line_time": [LINE_TIME * 1.01, LINE_TIME * 1.01, LINE_TIME, LINE_TIME],
+        }
+    )
+    assert zeropoint.night_line_time(index) == LINE_TIME  # equal rows: the shorter
+    index["n_rows"][0] = 4000
+    assert zeropoint.night_line_time(index) == LINE_TIME
+    index["n_rows"][0], index["n_rows"][3] = 4500, 4000
+    assert zeropoint.night_line_time(index) == LINE_TIME * 1.01
 
 
 def test_a_flat_field_error_in_a_band_of_chip_columns_shows_in_the_star_flat():

@@ -94,6 +94,11 @@ from pipeline.products import (
     image_hdulist,
     night_grid_header,
 )
+from pipeline.stages._line_time import (
+    clock_spans,
+    night_line_time,
+    other_line_time_blocks,
+)
 from pipeline.stages._observation import observation_for_rows, row_times
 from pipeline.stages.base import BLOCK_INDEX, Stage
 from pipeline.stages.rectify._deconvolve import deconvolution_margin, deconvolve_smear
@@ -115,6 +120,7 @@ __all__ = [
     "STAGE",
     "RectifiedStretch",
     "RectifyOptions",
+    "line_time_problem",
     "night_line_time",
     "night_model",
     "rectify",
@@ -269,12 +275,14 @@ def night_model(site: Site, camera: Camera, block_index: Table, n_rows: int) -> 
     Returns
     -------
     TDIModel
-        Covering the whole night (cached per process).
+        Covering the whole night (cached per process), at the line time of
+        the night's most rows (:func:`night_line_time`; blocks at another
+        line time are :func:`line_time_problem`'s).
 
     Raises
     ------
     ValueError
-        If the index is empty or the line time changes within the night.
+        If the index is empty.
     """
     start = block_index.meta.get("reference_time")
     if start is None or len(block_index) == 0:
@@ -282,51 +290,58 @@ def night_model(site: Site, camera: Camera, block_index: Table, n_rows: int) -> 
     dt = night_line_time(
         np.asarray(block_index["line_time"], dtype=float),
         np.asarray(block_index["n_rows"], dtype=np.int64),
-        n_rows,
+        clock_spans(block_index),
     )
     return _cached_model(site, camera, str(start), n_rows * dt, dt)
 
 
-#: Line times of a night's blocks are one line time when the row times they
-#: give differ by at most this many rows over the whole night (headers that
-#: print the same clock with another number of digits).
-LINE_TIME_TOLERANCE_ROWS = 0.01
+def line_time_problem(block_index: Table, rows: tuple[int, int], line_time: float) -> str | None:
+    """Why night rows ``rows`` cannot be rectified at the night's line time, or None.
 
-
-def night_line_time(line_times: np.ndarray, block_rows: np.ndarray, n_rows: int) -> float:
-    """The one line time of a night whose blocks' LINETIME may differ by rounding.
+    A camera that changed its line time mid-night (ingest reports it and
+    starts a segment) has rows whose readout times and smear the night's
+    one clock does not describe.  The night is reduced at the line time of
+    its most rows; a stretch with data from blocks at another one is
+    refused, with what to do about it.
 
     Parameters
     ----------
-    line_times : ndarray of float, shape (n_blocks,)
-        Each block's LINETIME, s.
-    block_rows : ndarray of int, shape (n_blocks,)
-        Each block's rows.
-    n_rows : int
-        Night rows (scan axis).
+    block_index : astropy.table.Table
+        Ingest's block index (``row_start``, ``n_rows``, ``line_time``,
+        ``file``; ``segment``, ``tdi_rows``: :func:`~pipeline.stages._line_time.clock_spans`).
+    rows : (int, int)
+        Night rows ``[start, stop)`` of the stretch's data.
+    line_time : float
+        The night's line time (:func:`night_line_time`), s.
 
     Returns
     -------
-    float
-        The line time of the most rows (the shortest of equally common ones), s.
-
-    Raises
-    ------
-    ValueError
-        If the line times differ so much that the row times they give over
-        the night's ``n_rows`` rows differ by more than
-        :data:`LINE_TIME_TOLERANCE_ROWS` rows.
+    str or None
+        The reason (its blocks, their line time and the night's, and how to
+        reduce them as a night of their own); None if every block in
+        ``rows`` runs at the night's line time.
     """
-    values, where = np.unique(line_times, return_inverse=True)
-    if (values[-1] - values[0]) * n_rows > LINE_TIME_TOLERANCE_ROWS * values[0]:
-        raise ValueError(
-            f"the line time changes within the night ({values.tolist()} s: the row times "
-            f"differ by {(values[-1] - values[0]) * n_rows / values[0]:.3g} rows over its "
-            f"{n_rows} rows, more than {LINE_TIME_TOLERANCE_ROWS}); rectify needs one line "
-            "time per night: reduce the parts as separate nights."
-        )
-    rows = np.bincount(where.ravel(), weights=block_rows, minlength=values.size)
-    return float(values[np.argmax(rows)])
+    start = np.asarray(block_index["row_start"], dtype=np.int64)
+    stop = start + np.asarray(block_index["n_rows"], dtype=np.int64)
+    inside = (start < rows[1]) & (stop > rows[0])
+    line_times = np.asarray(block_index["line_time"], dtype=float)
+    spans = clock_spans(block_index)
+    other = inside & other_line_time_blocks(line_times, line_time, spans)
+    if not other.any():
+        return None
+    files = [str(f) for f in np.asarray(block_index["file"])[other]]
+    values = sorted({float(v) for v in line_times[other]})
+    night = ~other_line_time_blocks(line_times, line_time, spans)
+    return (
+        f"its rows come from {', '.join(files)} at LINETIME "
+        f"{', '.join(f'{v:.9g}' for v in values)} s, not the night's {line_time:.9g} s "
+        f"({int(np.sum(stop[night] - start[night]))} of the night's "
+        f"{int(np.sum(stop - start))} rows): the camera changed its line time mid-night "
+        "(ingest reports where). The rows at the night's line time are reduced; reduce "
+        "these blocks as a night of their own, with a config whose night.pattern matches "
+        "only their files and another night.name (and one that leaves them out for the "
+        "rest, if you want a run without this failure)."
+    )
 
 
 def segment_row_offset(
@@ -715,6 +730,13 @@ def _run(*, inputs, options: RectifyOptions, context) -> dict[str, Any]:
     stretch = context.stretch
     night_rows = context.stretches[-1].stop if context.stretches else stretch.hi
     model = night_model(context.site, context.camera, inputs["ingest"][BLOCK_INDEX], night_rows)
+    problem = line_time_problem(
+        inputs["ingest"][BLOCK_INDEX],
+        stretch.segment or (stretch.lo, stretch.hi),
+        model.line_time,
+    )
+    if problem is not None:
+        raise ValueError(f"stretch s{stretch.index:04d} is not rectified: {problem}")
     planes = inputs["calibrate"]["image"]
     result = rectify(
         planes[FLUX_EXTENSION].data,

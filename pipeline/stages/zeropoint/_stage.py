@@ -21,6 +21,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field
 
 from pipeline.geometry.rectified import column_times
+from pipeline.stages._line_time import index_line_time
 from pipeline.stages.base import BLOCK_INDEX, PROBLEMS, Stage
 from pipeline.stages.detect import SourceFlag
 from pipeline.stages.zeropoint._fit import fit_zero_point
@@ -133,13 +134,14 @@ class ZeroPointOptions(BaseModel):
 
 
 def night_line_time(block_index: Table) -> float:
-    """The night's line time (s) from ingest's block index (column ``line_time``)."""
-    if "line_time" not in block_index.colnames or len(block_index) == 0:
-        raise ValueError(
-            "the block index has no line_time column or no block; the zero point needs "
-            "ingest's block index of a night with usable blocks."
-        )
-    return float(np.median(np.asarray(block_index["line_time"], dtype=float)))
+    """The night's line time (s) from ingest's block index (column ``line_time``).
+
+    That of the night's most rows, as rectify's
+    (:func:`pipeline.stages._line_time.index_line_time`): the stretches of
+    blocks at another line time are not rectified, so none of their
+    sources comes here.
+    """
+    return index_line_time(block_index)
 
 
 @dataclass(frozen=True)
@@ -249,6 +251,7 @@ def calibrate_catalog(
     target_zero_point: float = 25.0,
     max_extra_scatter: float = 0.05,
     max_colour_term: float = 0.5,
+    reduced: frozenset[str] | None = None,
 ) -> CalibratedNight:
     """Fit the night's zero point and calibrate every source of the catalogue.
 
@@ -297,6 +300,11 @@ def calibrate_catalog(
         A fitted colour term larger than this (mag per mag, and 3 of its
         errors) is reported, as a sign of reference magnitudes in another
         passband that the colour term absorbed.
+    reduced : frozenset of str, optional
+        Names (``'s0003'``) of the stretches the stages before reduced;
+        the flags of the others' intervals (no stars: a failed stretch,
+        another line time) are kept but not reported as problems.  None:
+        every stretch.
 
     Returns
     -------
@@ -445,6 +453,7 @@ def calibrate_catalog(
             colour=(fit.colour_term, fit.colour_term_err, max_colour_term)
             if fit_colour_term
             else None,
+            reduced=reduced,
         ),
     )
 
@@ -455,12 +464,15 @@ def _problems(
     max_trend: float,
     scatter: tuple[float, float, bool] = (0.0, np.inf, False),
     colour: tuple[float, float, float] | None = None,
+    reduced: frozenset[str] | None = None,
 ) -> list[str]:
     """The night's problems in words.
 
     ``scatter``: the fit's extra scatter (mag), its limit (mag), and whether
     a colour term was fitted; ``colour``: the fitted colour term, its error
-    and its limit (mag per mag), None when none was fitted.
+    and its limit (mag per mag), None when none was fitted; ``reduced``: the
+    stretches astrometry solved (None: all), the others' flags not being
+    news (the stages before say why they were left out).
     """
     from astropy import units as u
 
@@ -486,7 +498,7 @@ def _problems(
             )
     for row in intervals:
         flags = ZeroPointFlag(int(row["flags"]))
-        if flags:
+        if flags and (reduced is None or str(row["stretch"]) in reduced):
             names = "+".join(f.name for f in ZeroPointFlag if f in flags)
             what = "interpolated from its neighbours" if row["interpolated"] else "unreliable"
             problems.append(
@@ -526,6 +538,9 @@ def _run(*, inputs, options: ZeroPointOptions, context) -> dict:
         tdi_rows=tdi_rows,
         stretch_rows=[(s.start, s.stop) for s in stretches],
         n_y=n_y,
+        # the stretches astrometry solved (a WCS each): the others' empty
+        # intervals are the earlier stages' news
+        reduced=frozenset(inputs["astrometry"]["wcs"]),
         **options.model_dump(),
     )
     log.info(
@@ -562,5 +577,8 @@ STAGE = Stage(
     # 5: knot intervals whose stars show a faster change (a short cloud) are halved,
     #    and what the knots still miss is added to Z(t)'s error
     # 6: a fitted colour term above max_colour_term is reported as a problem
-    version=6,
+    # 7: the line time of the night's most rows (was the blocks' median: wrong on a
+    #    night whose camera changed its line time), and no problem lines for the
+    #    stretches astrometry did not solve
+    version=7,
 )
