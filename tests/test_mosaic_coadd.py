@@ -257,6 +257,27 @@ def test_nights_beyond_the_seeing_and_transparency_limits_are_left_out(nights):
         mosaic_tile(products, TILE, CoaddOptions(max_seeing=1.0))
 
 
+def test_a_tile_co_adds_one_passband(nights):
+    """Nights of another FILTER are not co-added with the rest: without
+    ``coadd.filter`` a tile whose products mix passbands fails and names
+    them; with it, the others are left out with the reason, and products of
+    an unknown passband are kept (common practice: a co-add is of one band)."""
+    import dataclasses
+
+    clean, _ = nights
+    products = [
+        dataclasses.replace(p, filter_name="i" if k == 2 else ("r" if k != 3 else None))
+        for k, p in enumerate(clean)
+    ]
+    with pytest.raises(ValueError, match=r"of 2 passbands \(FILTER r: 2026-10-10, 2026-10-11"):
+        mosaic_tile(products, TILE, CoaddOptions())
+    result = mosaic_tile(products, TILE, CoaddOptions(filter="r"))
+    assert result.excluded == {2: "FILTER i, not coadd.filter r"}
+    assert "2026-10-12" not in result.nights and "2026-10-13" in result.nights
+    alone = mosaic_tile(products[2:3], TILE, CoaddOptions(filter="i"))
+    assert alone.nights == ("2026-10-12",)
+
+
 def test_products_on_other_zero_points_are_rescaled(nights):
     clean, _ = nights
     night = clean[0]

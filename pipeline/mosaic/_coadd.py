@@ -138,6 +138,9 @@ class NightImage:
         science stage's ``SEEBETA``); None: unknown (a Gaussian seeing, or a
         product of a science stage before it wrote the card), the tile's
         configured ``moffat_beta`` stands in.
+    filter_name : str or None
+        Passband of the product (its ``FILTER`` card); None: unknown (never
+        left out by passband).
     """
 
     image: np.ndarray
@@ -153,6 +156,7 @@ class NightImage:
     zero_point_error: float = 0.0
     position_error: tuple[float, float] = (0.0, 0.0)
     seeing_beta: float | None = None
+    filter_name: str | None = None
 
     @property
     def transparency_zero_point(self) -> float:
@@ -222,6 +226,7 @@ def night_image_from_hdulist(
         zero_point_error=float(header.get(ZERO_POINT_ERROR_KEY, 0.0)),
         position_error=_wcs_error_on_sky(header, wcs, image.shape),
         seeing_beta=float(header[SEEING_INDEX_KEY]) if SEEING_INDEX_KEY in header else None,
+        filter_name=(str(header["FILTER"]).strip() or None) if "FILTER" in header else None,
     )
 
 
@@ -246,8 +251,9 @@ def select_products(
     *,
     max_seeing: float | None = None,
     max_transparency_loss: float | None = None,
+    filter_name: str | None = None,
 ) -> tuple[list[NightImage], dict[int, str]]:
-    """Keep the products within the seeing and transparency limits.
+    """Keep the products of one passband within the seeing and transparency limits.
 
     Parameters
     ----------
@@ -256,17 +262,48 @@ def select_products(
         Largest seeing FWHM kept, arcsec; None: no limit.
     max_transparency_loss : float or None
         Largest loss of zero point below the best product's, mag; None: no limit.
+    filter_name : str or None
+        Passband kept (products of another ``filter_name`` are left out;
+        those of an unknown one kept); None: every product's must agree.
 
     Returns
     -------
     kept : list of NightImage
     excluded : dict
         Index in ``products`` -> why it was left out.
+
+    Raises
+    ------
+    ValueError
+        If ``filter_name`` is None and the products are of several passbands
+        (the message names the nights of each): a co-add adds one passband.
     """
+    bands: dict[str, list[str]] = {}
+    for product in products:
+        if product.filter_name is not None:
+            bands.setdefault(product.filter_name, []).append(product.night)
+    if filter_name is None and len(bands) > 1:
+        listed = "; ".join(
+            f"FILTER {band}: {', '.join(dict.fromkeys(nights))}" for band, nights in bands.items()
+        )
+        raise ValueError(
+            f"the products of this tile are of {len(bands)} passbands ({listed}); a mosaic "
+            "co-adds one: set coadd.filter to the one to build (the nights of the others "
+            "are left out), or list only the nights of one passband."
+        )
     excluded: dict[int, str] = {}
-    best = max((p.transparency_zero_point for p in products), default=0.0)
+    best = max(
+        (
+            p.transparency_zero_point
+            for p in products
+            if filter_name is None or p.filter_name in (None, filter_name)
+        ),
+        default=0.0,
+    )
     for i, product in enumerate(products):
-        if max_seeing is not None and product.seeing is not None and product.seeing > max_seeing:
+        if filter_name is not None and product.filter_name not in (None, filter_name):
+            excluded[i] = f"FILTER {product.filter_name}, not coadd.filter {filter_name}"
+        elif max_seeing is not None and product.seeing is not None and product.seeing > max_seeing:
             excluded[i] = f"seeing {product.seeing:.2f} arcsec > max_seeing {max_seeing:g}"
         elif (
             max_transparency_loss is not None
@@ -757,12 +794,13 @@ def mosaic_tile(
         products,
         max_seeing=options.max_seeing,
         max_transparency_loss=options.max_transparency_loss,
+        filter_name=options.filter,
     )
     if not kept:
         raise ValueError(
             f"all {len(products)} products are outside the limits (max_seeing "
-            f"{options.max_seeing}, max_transparency_loss {options.max_transparency_loss}); "
-            "relax them to build this tile."
+            f"{options.max_seeing}, max_transparency_loss {options.max_transparency_loss}, "
+            f"filter {options.filter}); relax them to build this tile."
         )
     zero_point = kept[0].zero_point
     nights: list[str] = list(dict.fromkeys(p.night for p in kept))

@@ -91,6 +91,12 @@ class CoaddOptions(BaseModel):
         description="Leave out nights whose zero point is more than this many magnitudes "
         "below the best night's; null: no limit.",
     )
+    filter: str | None = Field(
+        None,
+        description="Passband (the products' FILTER) to co-add, leaving out nights of "
+        "others; null: every product must have the same FILTER (a tile that would mix "
+        "passbands fails and names them).",
+    )
     weight_by_seeing: bool = Field(
         False,
         description="Multiply each night's inverse-variance weight by (best FWHM / FWHM)^2, "
