@@ -604,6 +604,41 @@ def test_solve_catalog_tables(solved_night):
         AstrometryOptions(match_radiu=3.0)
 
 
+def test_a_failed_solution_names_the_detections_its_flags_left_out(solved_night):
+    """A sky near saturation had detect flag 402 of 481 detections SATURATED;
+    the fit leaves them out, and the failed search used to blame the site
+    or the clock.  The message now says first how many the flags left out
+    and what most saturated stars mean (self-consistency: the flags are set
+    here, and min_matches is beyond reach so that the solution fails)."""
+    night, _ = solved_night
+    n = night.x.size
+    flags = np.where(np.arange(n) % 10 < 8, int(SourceFlag.SATURATED), 0).astype(np.int32)
+    catalog = QTable(
+        {
+            "x": night.x * u.pix,
+            "y": night.y * u.pix,
+            "x_err": np.full(n, night.sigma) * u.pix,
+            "y_err": np.full(n, night.sigma) * u.pix,
+            "flags": flags,
+        }
+    )
+    options = AstrometryOptions(min_matches=10 * n)
+    args = (night.ref_ra * u.deg, night.ref_dec * u.deg, night.nominal, night.frame)
+    with pytest.raises(AstrometryError) as info:
+        solve_catalog(catalog, *args, options)
+    saturated = int(np.count_nonzero(flags))
+    assert (
+        f"Likely causes: {saturated} of the catalogue's {n} detections are left out of the "
+        f"fit by their flags ({saturated} SATURATED; fit_exclude_flags): most stars saturated"
+    ) in str(info.value)
+    assert info.value.counts["left_out_by_flags"] == saturated
+    # a few flagged detections are no news
+    catalog["flags"] = np.where(np.arange(n) % 10 == 0, int(SourceFlag.SATURATED), 0)
+    with pytest.raises(AstrometryError) as info:
+        solve_catalog(catalog, *args, options)
+    assert "left out of the fit by their flags" not in str(info.value)
+
+
 # ------------------------------------------- what the fit sees, and how weighted
 @pytest.fixture(scope="module")
 def noisy_reference_night():

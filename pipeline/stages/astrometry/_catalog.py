@@ -37,6 +37,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
+from pipeline.exceptions import AstrometryError
 from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.geometry.tdi import TDIModel
 from pipeline.stages.astrometry._fit import FIT_PARAMETERS, _subset
@@ -222,6 +223,44 @@ def _stretch_extra(catalog, fit, fit_rows, x_err, y_err) -> dict[int, tuple[floa
     )
 
 
+#: Share of the catalogue's detections that the fit's flags leave out above
+#: which a failed solution names them as a likely cause.
+_LEFT_OUT_SHARE = 0.5
+
+
+def _with_left_out(error: AstrometryError, catalog, exclude_mask: int) -> AstrometryError:
+    """``error`` with a first likely cause when the fit left out most detections.
+
+    A sky that fills most of the wells' range saturates most stars: detect
+    flags them SATURATED, the fit leaves them out (``fit_exclude_flags``),
+    and the search fails for want of matches.  The counts say so before the
+    site or the clock are blamed.
+    """
+    if "flags" not in catalog.colnames or len(catalog) == 0:
+        return error
+    flags = np.asarray(catalog["flags"], dtype=np.int64)
+    left_out = (flags & exclude_mask) != 0
+    if left_out.sum() <= _LEFT_OUT_SHARE * flags.size:
+        return error
+    counts = {
+        flag.name: int(np.count_nonzero(flags[left_out] & int(flag)))
+        for flag in SourceFlag
+        if int(flag) & exclude_mask
+    }
+    named = ", ".join(f"{n} {name}" for name, n in counts.items() if n)
+    cause = (
+        f"{int(left_out.sum())} of the catalogue's {flags.size} detections are left out of "
+        f"the fit by their flags ({named}; fit_exclude_flags)"
+    )
+    if counts.get("SATURATED", 0) > _LEFT_OUT_SHARE * flags.size:
+        cause += (
+            ": most stars saturated, a sky that fills most of the range to saturation "
+            "(calibrate's problems say how much) or a SATURATE set too low"
+        )
+    message = str(error).replace("Likely causes: ", f"Likely causes: {cause}; ", 1)
+    return AstrometryError(message, {**error.counts, "left_out_by_flags": int(left_out.sum())})
+
+
 def light_weighting_fits_better(weighted, time_means) -> bool:
     """Whether the light-weighted fit describes the reference stars at least as well.
 
@@ -365,7 +404,10 @@ def solve_catalog(
         "det_segment": None if segment is None else segment[fit_rows],
         "min_segment_stars": options.min_segment_stars,
     }
-    solution = solve_night(*args, **kwargs)
+    try:
+        solution = solve_night(*args, **kwargs)
+    except AstrometryError as error:
+        raise _with_left_out(error, catalog, options.exclude_mask) from None
     cloud = None
     time_means, weighted = solution, None
     if options.light_weighting and ref_mag is not None and "flux_psf" in catalog.colnames:

@@ -709,7 +709,10 @@ def _run(*, inputs, options: CalibrateOptions, context) -> dict[str, Any]:
         "mask_counts": result.mask_counts,
     }
     problems = dropout_problems(rows.night_row, rows.dropout, rows.image)
-    problems += saturated_sky_problems(rows.night_row, result.mask, out["mask_counts"])
+    saturated = saturated_sky_problems(rows.night_row, result.mask, out["mask_counts"])
+    problems += saturated or sky_fill_problems(
+        result.image, result.mask, rows.saturation, result.bias, rows.gain
+    )
     if problems:
         out[PROBLEMS] = problems
     return out
@@ -772,6 +775,70 @@ def saturated_sky_problems(night_row: np.ndarray, mask: np.ndarray, counts: dict
             "no star there can be measured."
         )
     return lines
+
+
+#: Share of the range from the bias to saturation that a stretch's sky may fill
+#: before the stars on it saturate in numbers: at 80 % a star saturates once its
+#: peak pixel gathers a quarter of the sky's electrons (common practice: keep
+#: the sky well below the wells' and the converter's range).
+SKY_FILL_LIMIT = 0.8
+
+
+def sky_fill_problems(
+    image: np.ndarray,
+    mask: np.ndarray,
+    saturation: np.ndarray,
+    bias: np.ndarray,
+    gain: np.ndarray,
+) -> list[str]:
+    """A line when the stretch's sky fills most of the range to saturation.
+
+    The sky need not saturate itself for the night to be lost: on a sky at
+    95 % of the range every star brighter than a few thousand electrons in
+    its peak pixel saturates, detect flags nearly all of them SATURATED, and
+    astrometry then fails for want of matches with no word of why.
+
+    Parameters
+    ----------
+    image : ndarray, shape (n_rows, n_columns)
+        Calibrated image, e- (sky included).
+    mask : ndarray of uint16, shape (n_rows, n_columns)
+        Its :class:`~pipeline.masks.MaskBit` flags; the sky is the median of
+        unflagged pixels on up to 64 rows.
+    saturation, bias : float or ndarray, shape (n_rows,)
+        SATURATE and the bias subtracted from each row, ADU.
+    gain : float or ndarray, shape (n_rows,)
+        e-/ADU.
+
+    Returns
+    -------
+    list of str
+        One line (sky, its share of the range, the electrons a star's peak
+        may add) when the sky fills more than :data:`SKY_FILL_LIMIT` of the
+        range; else empty.
+    """
+    n_rows = image.shape[0]
+    if n_rows == 0:
+        return []
+    every = slice(None, None, max(1, n_rows // 64))
+    pixels = image[every]
+    usable = (mask[every] == 0) & np.isfinite(pixels)
+    if not usable.any():
+        return []
+    sky = float(np.median(pixels[usable]))
+    room = np.broadcast_to(np.asarray(saturation, float), (n_rows,)) - np.broadcast_to(
+        np.asarray(bias, float), (n_rows,)
+    )
+    room = float(np.median(room * np.broadcast_to(np.asarray(gain, float), (n_rows,))))
+    if not (room > 0 and sky > SKY_FILL_LIMIT * room):
+        return []
+    return [
+        f"the sky ({sky:,.0f} e- per pixel) fills {sky / room:.0%} of the range to "
+        f"saturation ({room:,.0f} e-): a star whose peak pixel gathers more than "
+        f"{max(room - sky, 0.0):,.0f} e- saturates, most of the brighter ones here (a sky "
+        "too bright for this TDI crossing and gain: fewer TDI rows or a darker sky; or "
+        "check the headers' SATURATE and GAIN)."
+    ]
 
 
 def dropout_problems(night_row: np.ndarray, dropout: np.ndarray, image: np.ndarray) -> list[str]:
