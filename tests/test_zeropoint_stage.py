@@ -225,6 +225,34 @@ def test_a_stretch_astrometry_did_not_solve_is_flagged_but_not_reported():
     assert any(p.startswith(f"s{CLOUD_STRETCH:04d}") for p in products[PROBLEMS])
 
 
+def test_consecutive_stretches_flagged_alike_are_one_problem_line():
+    """A sparse field on a small chip flags every stretch FEW_STARS: eight
+    lines said the same thing.  Consecutive stretches with the same flags
+    and handling are one line with the ranges; a lone one reads as before
+    (self-consistency)."""
+    from pipeline.stages.zeropoint._stage import _interval_lines
+
+    few, cloud = int(ZeroPointFlag.FEW_STARS), int(ZeroPointFlag.CLOUD)
+    intervals = QTable(
+        {
+            "stretch": [f"s{k:04d}" for k in range(6)],
+            "flags": [few, few, few, 0, cloud, few],
+            "interpolated": [True, True, True, False, False, True],
+            "n_stars": [5, 9, 3, 40, 30, 4],
+            "drop": [0.015, 0.011, 0.002, 0.0, 0.12, 0.02] * u.mag,
+        }
+    )
+    assert _interval_lines(intervals, None) == [
+        "s0000-s0002 (3 stretches): zero point interpolated from its neighbours (FEW_STARS; "
+        "3-9 stars, drop 0.002 to 0.015 mag)",
+        "s0004: zero point unreliable (CLOUD; 30 stars, drop 0.120 mag)",
+        "s0005: zero point interpolated from its neighbours (FEW_STARS; 4 stars, drop 0.020 mag)",
+    ]
+    # a stretch astrometry did not solve breaks a run
+    lines = _interval_lines(intervals, frozenset({"s0000", "s0002", "s0004", "s0005"}))
+    assert [line.split(":")[0] for line in lines] == ["s0000", "s0002", "s0004", "s0005"]
+
+
 def test_the_night_s_line_time_is_that_of_its_most_rows():
     """A camera whose line time changed mid-night: the stretches of the other
     line time are not rectified, so the zero point times its sources by the

@@ -458,6 +458,47 @@ def calibrate_catalog(
     )
 
 
+def _interval_lines(intervals: QTable, reduced: frozenset[str] | None) -> list[str]:
+    """One line per run of consecutive flagged stretches alike in flags and handling.
+
+    A sparse field on a small chip flags every stretch FEW_STARS: one line
+    for the run, with the range of its star counts and drops, says it
+    once.  A run of one stretch reads as it always has.
+    """
+    from astropy import units as u
+
+    runs: list[list] = []
+    for row in intervals:
+        flags = ZeroPointFlag(int(row["flags"]))
+        if not flags or (reduced is not None and str(row["stretch"]) not in reduced):
+            runs.append([])  # a clear or unsolved stretch ends a run
+            continue
+        key = (int(flags), bool(row["interpolated"]))
+        if runs and runs[-1] and runs[-1][0] == key:
+            runs[-1][1].append(row)
+        else:
+            runs.append([key, [row]])
+    lines = []
+    for run in filter(None, runs):
+        (flags, interpolated), rows = run
+        names = "+".join(f.name for f in ZeroPointFlag if f in ZeroPointFlag(flags))
+        what = "interpolated from its neighbours" if interpolated else "unreliable"
+        stars = [int(r["n_stars"]) for r in rows]
+        drops = [float(r["drop"].to_value(u.mag)) for r in rows]
+        if len(rows) == 1:
+            lines.append(
+                f"{rows[0]['stretch']}: zero point {what} ({names}; {stars[0]} stars, "
+                f"drop {drops[0]:.3f} mag)"
+            )
+        else:
+            lines.append(
+                f"{rows[0]['stretch']}-{rows[-1]['stretch']} ({len(rows)} stretches): zero "
+                f"point {what} ({names}; {min(stars)}-{max(stars)} stars, drop "
+                f"{min(drops):.3f} to {max(drops):.3f} mag)"
+            )
+    return lines
+
+
 def _problems(
     intervals: QTable,
     trend: dict,
@@ -474,7 +515,6 @@ def _problems(
     stretches astrometry solved (None: all), the others' flags not being
     news (the stages before say why they were left out).
     """
-    from astropy import units as u
 
     problems = []
     extra, max_extra, colour_fitted = scatter
@@ -496,15 +536,7 @@ def _problems(
                 "magnitudes are then of that band); check "
                 "stages.astrometry.reference.columns.magnitude"
             )
-    for row in intervals:
-        flags = ZeroPointFlag(int(row["flags"]))
-        if flags and (reduced is None or str(row["stretch"]) in reduced):
-            names = "+".join(f.name for f in ZeroPointFlag if f in flags)
-            what = "interpolated from its neighbours" if row["interpolated"] else "unreliable"
-            problems.append(
-                f"{row['stretch']}: zero point {what} ({names}; {int(row['n_stars'])} stars, "
-                f"drop {row['drop'].to_value(u.mag):.3f} mag)"
-            )
+    problems.extend(_interval_lines(intervals, reduced))
     # A trend past the limit but within its noise (a few hundred stars give
     # ~0.006 mag edge to edge on a 1024-column chip) is not reported.
     trend_err = trend.get("edge_to_edge_err", 0.0)
@@ -578,7 +610,8 @@ STAGE = Stage(
     #    and what the knots still miss is added to Z(t)'s error
     # 6: a fitted colour term above max_colour_term is reported as a problem
     # 7: the line time of the night's most rows (was the blocks' median: wrong on a
-    #    night whose camera changed its line time), and no problem lines for the
-    #    stretches astrometry did not solve
+    #    night whose camera changed its line time), no problem lines for the
+    #    stretches astrometry did not solve, and one line per run of stretches
+    #    flagged alike
     version=7,
 )
