@@ -54,7 +54,9 @@ from pipeline.stages.detect._find import (
 )
 from pipeline.stages.detect._measure import (
     KERNEL_SPACING,
+    isolated_sources,
     measure_groups,
+    psf_aperture_scale,
     residual_quadrupole,
     seeing_curves,
 )
@@ -937,6 +939,66 @@ def test_close_pairs_are_both_found_and_measured():
     ratio = cat["flux_psf"].value[j] / scene.flux - 1
     # Within 5 % (the faint members have S/N ~ 100, so 1 %, plus what the blend costs).
     assert np.all(np.abs(ratio) < 0.05), ratio
+
+
+def test_the_psf_scale_measures_a_seeing_width_that_is_off():
+    """A stretch's PSF fluxes inherit its seeing model's errors: a width 3 %
+    too wide (here held at fwhm_guess; on simulated nights a fit on a dozen
+    stars strayed by 2.5 %) made them 1.05 % too bright (measured).  The
+    stretch's ratio of corrected 2-FWHM aperture sums (less an annulus's sky)
+    to PSF fluxes, ``psf_scale``, which the zero point applies, brings them
+    within 0.4 % of the truth; with the right width it is 1 within 1e-3.
+    Self-consistency with the simulator's renderer."""
+    rng = np.random.default_rng(5)
+    gx, gy = np.meshgrid(np.linspace(40, 980, 16), np.linspace(40, 470, 6))
+    x = gx.ravel() + rng.uniform(-3, 3, gx.size)
+    y = gy.ravel() + rng.uniform(-3, 3, gx.size)
+    scene = render_scene(x, y, 2e5, shape=(512, 1024), x_start=0, seed=3, fwhm=3.2, components=8)
+
+    def measured(fwhm, aperture=2):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", DetectWarning)  # no seeing fit: asked for
+            held = {"fwhm_guess": fwhm, "seeing_stars": 0, "fit_moffat_beta": False}
+            planes = (scene.image, scene.variance, scene.mask, scene.kernels)
+            cat = detect(*planes, psf_scale_aperture=aperture, **held).catalog
+        hit, j = _match(scene, cat, radius=1.0)
+        bias = float(np.median(cat["flux_psf"].value[j[hit]] / scene.flux[hit])) - 1.0
+        return bias, cat["psf_scale"].value, cat["psf_scale_err"].value
+
+    bias, scale, error = measured(3.2 * 1.03)
+    assert 0.008 < bias < 0.013
+    assert np.ptp(scale) == 0 and error[0] < 0.001  # one value for the stretch
+    assert abs((1.0 + bias) * scale[0] - 1.0) < 0.004
+    bias, scale, _ = measured(3.2)
+    assert abs(scale[0] - 1.0) < 1e-3 and abs(bias) < 0.002
+    assert np.isnan(measured(3.2, None)[1]).all()
+    with pytest.raises(ValidationError, match="psf_scale_aperture 4 names no aperture"):
+        DetectOptions(psf_scale_aperture=4)
+
+
+def test_the_psf_scale_uses_isolated_unflagged_bright_stars_only():
+    """Ratios of aperture to PSF flux of a stretch's stars: faint, flagged or
+    crowded ones take no part, an outlier is clipped, and with fewer than five
+    stars the fluxes stay as fitted (self-consistency)."""
+    n = 12
+    psf = np.full(n, 1.0e5)
+    psf_err = np.full(n, 500.0)  # S/N 200
+    aper = np.full(n, 1.02e5)
+    aper_err = np.full(n, 800.0)
+    corr = np.ones(n)
+    flags = np.zeros(n, dtype=int)
+    aper[0] = 1.5e5  # a neighbour in its aperture, missed by the isolation test: clipped
+    scale, error, used = psf_aperture_scale(psf, psf_err, aper, aper_err, corr, flags)
+    assert scale == pytest.approx(1.02) and used == n - 1 and 0 < error < 0.005
+    flags[1:] = int(SourceFlag.BLENDED)
+    assert psf_aperture_scale(psf, psf_err, aper, aper_err, corr, flags) == (1.0, 0.0, 0)
+    flags[:] = 0
+    crowded = np.arange(n) < 8
+    assert psf_aperture_scale(psf, psf_err, aper, aper_err, corr, flags, ~crowded)[2] == 0
+    faint = psf_aperture_scale(psf, psf_err * 10, aper, aper_err, corr, flags)  # S/N 20
+    assert faint == (1.0, 0.0, 0)
+    isolated = isolated_sources([0.0, 5.0, 40.0], [0.0, 0.0, 0.0], [6.0, 6.0, 6.0])
+    assert isolated.tolist() == [False, False, True]
 
 
 def test_crowded_field_seeing_from_stars_fitted_alone():

@@ -154,7 +154,9 @@ def _measured(target, nights, tx, ty, **changes):
     built = mosaic_tile(nights, target, CoaddOptions())
     if changes:
         built = type(built)(**{**built.__dict__, **changes})
-    options = DetectOptions(background_box=32, fwhm_guess=1.8).model_dump()
+    # PSF fluxes as fitted, as a tile's catalogue has them (TileDetectOptions)
+    options = DetectOptions(background_box=32, fwhm_guess=1.8, psf_scale_aperture=None)
+    options = options.model_dump()
     catalog = tile_catalog(built, **options)
     x, y = np.asarray(catalog["x"].value), np.asarray(catalog["y"].value)
     near = np.hypot(x[:, None] - tx[None, :], y[:, None] - ty[None, :])

@@ -253,6 +253,40 @@ def test_consecutive_stretches_flagged_alike_are_one_problem_line():
     assert [line.split(":")[0] for line in lines] == ["s0000", "s0002", "s0004", "s0005"]
 
 
+def test_psf_scales_are_applied_consistently_over_the_night():
+    """Detect's ratios of aperture to PSF flux per stretch: a precise one is
+    applied as measured, a noisy one shrunk toward the night's mean as far
+    as the stretches' true spread says (DerSimonian & Laird's random-effects
+    estimate, from memory), and a stretch without one gets the night's mean:
+    a 7 % common offset applied to one stretch of three and not the others
+    opened a 7 % step (self-consistency)."""
+    from pipeline.stages.zeropoint import psf_scale_shifts
+
+    def catalogue(scale, error):
+        k = np.repeat(np.arange(len(scale)), 3)
+        return QTable(
+            {
+                "stretch": k.astype(np.int32),
+                "psf_scale": np.asarray(scale, float)[k] * u.one,
+                "psf_scale_err": np.asarray(error, float)[k] * u.one,
+            }
+        )
+
+    # one measured stretch of three: all get its factor, no step
+    got = psf_scale_shifts(catalogue([1.07, np.nan, np.nan], [0.004, np.nan, np.nan]))
+    np.testing.assert_allclose(got.shift, -2.5 * np.log10(1.07), rtol=1e-12)
+    assert got.by_stretch == pytest.approx({0: 1.07, 1: 1.07, 2: 1.07})
+    # precise and truly different: as measured (spread 2 %)
+    got = psf_scale_shifts(catalogue([0.98, 1.00, 1.02], [0.0005] * 3))
+    assert [got.by_stretch[k] for k in range(3)] == pytest.approx([0.98, 1.0, 1.02], abs=2e-4)
+    assert got.spread == pytest.approx(0.02, rel=0.05)
+    # differences within their errors: the night's mean for all
+    got = psf_scale_shifts(catalogue([0.99, 1.00, 1.01], [0.05] * 3))
+    assert got.spread == 0.0 and np.ptp(got.shift) == 0.0
+    # older catalogues without the columns: nothing applied
+    assert not psf_scale_shifts(QTable({"stretch": [0, 1]})).shift.any()
+
+
 def test_the_night_s_line_time_is_that_of_its_most_rows():
     """A camera whose line time changed mid-night: the stretches of the other
     line time are not rectified, so the zero point times its sources by the

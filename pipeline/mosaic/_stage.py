@@ -107,6 +107,7 @@ TILE_STAGE = Stage(
     # out of it: no weight in the seeing mix, the kernels or the errors
     # 12: the catalogue's flags, group (and detect's other integers) integers
     # when read, not dimensionless Quantities (floats)
-    version=12,
+    # 13: detect's psf_scale, psf_scale_err columns (NaN: not measured on a tile)
+    version=13,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )

@@ -26,6 +26,10 @@ Steps (:func:`detect`)
        corrections, shape from photutils ``SourceCatalog``, flags
        (:class:`SourceFlag`) and the mask bits they come from (``mask_near``,
        ``mask_core``).
+5. The ratio of aperture ``psf_scale_aperture``'s corrected fluxes to the
+   PSF fluxes of the stretch's bright isolated unflagged stars
+   (:func:`~._measure.psf_aperture_scale`), which the zero point applies
+   across the night.
 """
 
 from __future__ import annotations
@@ -37,7 +41,7 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from pipeline._lazy import lazy_exports
 from pipeline.exceptions import DetectWarning
@@ -66,11 +70,17 @@ from pipeline.stages.detect._measure import (
     MOFFAT_BETA_RANGE,
     MOFFAT_BETA_SIGNIFICANCE,
     NO_DATA,
+    PSF_SCALE_MAX_STARS,
+    PSF_SCALE_MIN_SNR,
     SourceFlag,
+    annulus_levels,
+    aperture_corrections,
     aperture_fluxes,
     best_fwhm,
     best_moffat_beta,
+    isolated_sources,
     measure_groups,
+    psf_aperture_scale,
     seeing_stamps,
     single_stars,
     split_pair,
@@ -187,6 +197,14 @@ class DetectOptions(BaseModel):
     aperture_radii: tuple[float, ...] = Field(
         (1.0, 2.0, 3.0), description="Aperture radii in units of the seeing FWHM."
     )
+    psf_scale_aperture: int | None = Field(
+        2,
+        ge=1,
+        description="Aperture (1-based, of aperture_radii) whose corrected fluxes of the "
+        "stretch's bright isolated unflagged stars give the ratio of aperture to PSF flux "
+        "(catalogue columns psf_scale, psf_scale_err; the zero point applies it); null: "
+        "not measured.",
+    )
     find_in_residual: bool = Field(
         True,
         description="Search the image minus the fitted models once more for sources hidden "
@@ -197,6 +215,18 @@ class DetectOptions(BaseModel):
         description="Fit a source the model leaves elongated (UNRESOLVED) as two, and keep "
         "the two when the data want them (a pair along a long smear looks like one star).",
     )
+
+    @model_validator(mode="after")
+    def _scale_aperture_is_one_of_the_apertures(self):
+        if self.psf_scale_aperture is not None and self.psf_scale_aperture > len(
+            self.aperture_radii
+        ):
+            raise ValueError(
+                f"psf_scale_aperture {self.psf_scale_aperture} names no aperture: "
+                f"aperture_radii has {len(self.aperture_radii)} (count from 1), or set it "
+                "to null."
+            )
+        return self
 
 
 @dataclass(frozen=True)
@@ -488,6 +518,14 @@ def _catalog(values: dict, radii, n: int) -> QTable:
         ("ellipticity", u.dimensionless_unscaled, "1 - b/a of the segment"),
         ("angle", u.deg, "orientation of the major axis, from +x toward +y"),
         ("chi2", u.dimensionless_unscaled, "reduced chi-square of the PSF fit"),
+        (
+            "psf_scale",
+            u.dimensionless_unscaled,
+            "the stretch's ratio of aperture (psf_scale_aperture, corrected to the total, less "
+            "an annulus's sky) to PSF flux of its bright isolated unflagged stars; NaN: too "
+            "few (the zero point puts each stretch's fluxes on this scale)",
+        ),
+        ("psf_scale_err", u.dimensionless_unscaled, "1-sigma error of psf_scale"),
         # integers without a unit: plain columns, which a reader gets back as
         # integers (a Quantity, even a dimensionless one, comes back as floats,
         # on which a test of the flag bits fails)
@@ -578,6 +616,7 @@ def detect(
     seeing_bands: int = 4,
     fit_moffat_beta: bool = True,
     aperture_radii: tuple[float, ...] = (1.0, 2.0, 3.0),
+    psf_scale_aperture: int | None = 2,
     find_in_residual: bool = True,
     split_pairs: bool = True,
     seeing_profile: SeeingProfile | None = None,
@@ -614,7 +653,7 @@ def detect(
     threshold_sigma, min_pixels, background_box, filter_band, deblend_levels,
     deblend_contrast, seeing_shape, moffat_beta, fwhm_guess, seeing_stars,
     seeing_min_snr, seeing_bands, fit_moffat_beta, aperture_radii,
-    find_in_residual, split_pairs
+    psf_scale_aperture, find_in_residual, split_pairs
         See :class:`DetectOptions`.
     seeing_profile : SeeingProfile or None
         The seeing's shape when it is not one of ``seeing_shape``'s families
@@ -690,6 +729,11 @@ def detect(
             f"noise_correlation must be > 0 (rectify's NOISECOR); got {noise_correlation!r}."
         )
     radii = tuple(float(r) for r in aperture_radii)
+    if psf_scale_aperture is not None and not 1 <= psf_scale_aperture <= len(radii):
+        raise ValueError(
+            f"psf_scale_aperture must name one of the {len(radii)} aperture_radii (1 to "
+            f"{len(radii)}) or be null; got {psf_scale_aperture!r}."
+        )
     if seeing_profile is None:
         profile = SeeingProfile(float(fwhm_guess), seeing_shape, moffat_beta)
     else:
@@ -1249,6 +1293,58 @@ def detect(
         "ellipticity": shape_cols[1][src],
         "angle": shape_cols[2][src],
     }
+    scale = (1.0, 0.0, 0)
+    if psf_scale_aperture is not None and x.size:
+        j = psf_scale_aperture - 1
+        radius = radii[j] * profile.fwhm
+        # The candidates: bright, unflagged, and with no other fitted source (the
+        # neighbour stretch's margin's too) within the aperture, two FWHM of the
+        # other's light and the smear's extent; at most the PSF_SCALE_MAX_STARS
+        # brightest, whose errors outweigh the others' anyway.
+        extent = np.array([np.ptp(dx) if np.size(dx) else 0.0 for dx, _ in fits_["kernel"]])
+        reach = radius + 2.0 * profile.fwhm + extent
+        snr = values["flux_psf"] / values["flux_psf_err"]
+        take = isolated_sources(fits_["x"], fits_["y"], reach)[idx]
+        take &= (values["flags"] == 0) & (snr >= PSF_SCALE_MIN_SNR)
+        if take.sum() > PSF_SCALE_MAX_STARS:
+            take[np.flatnonzero(take)[np.argsort(-snr[take])[PSF_SCALE_MAX_STARS:]]] = False
+        # their sums less the local sky above the mesh, from an annulus beyond
+        # the aperture and the smear
+        inner = radius + profile.fwhm + 0.5 * np.max(extent[idx][take], initial=0.0)
+        outer = inner + 3.0 * profile.fwhm
+        local_sky = np.zeros(x.size)
+        local_sky[take] = annulus_levels(residual, no_data, x[take], y[take], inner, outer)
+        # less the star's own wings there (its model's share of the annulus,
+        # spread over it: ~0.1 % of its flux at 2 FWHM otherwise)
+        chosen = np.flatnonzero(take)
+        inside = 1.0 / aperture_corrections(
+            [kernels[i] for i in chosen],
+            y[chosen],
+            profile,
+            [inner, outer],
+            responses=[fits_["response"][idx[i]] for i in chosen],
+        )
+        wings = values["flux_psf"][chosen] * (inside[:, 1] - inside[:, 0])
+        local_sky[chosen] -= wings / (np.pi * (outer**2 - inner**2))
+        scale = psf_aperture_scale(
+            values["flux_psf"],
+            values["flux_psf_err"],
+            ap_flux[:, j] - local_sky * np.pi * radius**2,
+            ap_err[:, j],
+            ap_corr[:, j],
+            values["flags"],
+            take,
+        )
+        log.info(
+            "aperture %d over PSF flux of %d bright isolated stars: %.4f +- %.4f",
+            psf_scale_aperture,
+            scale[2],
+            scale[0],
+            scale[1],
+        )
+    measured = scale[2] > 0
+    values["psf_scale"] = np.full(x.size, scale[0] if measured else np.nan)
+    values["psf_scale_err"] = np.full(x.size, scale[1] if measured else np.nan)
     values["snr"] = values["flux_psf"] / values["flux_psf_err"]
     yi = np.clip(np.round(y).astype(int), 0, image.shape[0] - 1)
     xi = np.clip(np.round(x).astype(int), 0, image.shape[1] - 1)
@@ -1800,6 +1896,9 @@ STAGE = Stage(
     # 21: catalogue columns mask_near and mask_core, the stretch's mask bits
     #     over each source's fit stamp and its core, which its flags come from
     #     (every other column unchanged)
-    version=21,
+    # 22: columns psf_scale, psf_scale_err: the stretch's ratio of aperture
+    #     psf_scale_aperture's corrected fluxes to PSF fluxes of its bright
+    #     isolated unflagged stars (every other column unchanged)
+    version=22,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

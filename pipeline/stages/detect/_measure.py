@@ -26,10 +26,13 @@ if TYPE_CHECKING:
 __all__ = [
     "MoffatIndex",
     "SourceFlag",
+    "annulus_levels",
     "aperture_fluxes",
     "best_fwhm",
     "best_moffat_beta",
+    "isolated_sources",
     "measure_groups",
+    "psf_aperture_scale",
     "residual_quadrupole",
     "seeing_curves",
     "seeing_stamps",
@@ -1443,6 +1446,170 @@ def aperture_fluxes(
     err[:] = np.sqrt(variances * noise_correlation)
     corr[:] = aperture_corrections(kernels, y, profile, radii, responses=responses)
     return flux, err, corr
+
+
+#: Least S/N of a star whose aperture and PSF fluxes set :func:`psf_aperture_scale`.
+PSF_SCALE_MIN_SNR = 50.0
+#: Fewest such stars for a scale; with fewer the PSF fluxes stay as fitted.
+PSF_SCALE_MIN_STARS = 5
+#: Most such stars measured (the brightest), for the annuli's cost.
+PSF_SCALE_MAX_STARS = 100
+#: Clipping of the stars' ratios about their median, robust sigmas.
+PSF_SCALE_CLIP = 3.0
+
+
+def psf_aperture_scale(
+    flux_psf, flux_psf_err, flux_aper, flux_aper_err, correction, flags, isolated=None
+):
+    """The factor that puts a stretch's PSF fluxes on its aperture fluxes' scale.
+
+    A PSF flux is the flux of the fitted model, so it inherits the model's
+    errors: a seeing width 2.5 % too wide (a fit on a dozen stars, or a
+    profile that is not quite a Moffat) gave PSF fluxes ~3 % too bright on a
+    simulated stretch, differently on every stretch, and the zero point
+    followed only part of it.  An aperture of a few FWHM (its model-based
+    correction to the total being small and nearly independent of the
+    width) does not care.  As is common practice in PSF photometry, the PSF
+    fluxes are scaled by the weighted mean ratio of aperture to PSF flux of
+    the stretch's bright unflagged stars.
+
+    Parameters
+    ----------
+    flux_psf, flux_psf_err : ndarray, shape (n,)
+        PSF fluxes and errors, e-.
+    flux_aper, flux_aper_err : ndarray, shape (n,)
+        Aperture sums and errors, e-, less the local sky
+        (:func:`annulus_levels` times the aperture's area).
+    correction : ndarray, shape (n,)
+        The apertures' corrections to the total (model total / model inside).
+    flags : ndarray of int, shape (n,)
+        :class:`SourceFlag` bits: only sources without any take part.
+    isolated : ndarray of bool, shape (n,), optional
+        Sources with no other within reach of their aperture (an aperture
+        sums its neighbours' light too: :func:`isolated_sources`); None: all.
+
+    Returns
+    -------
+    scale : float
+        Aperture over PSF flux (1.0 with fewer than :data:`PSF_SCALE_MIN_STARS`
+        stars of S/N >= :data:`PSF_SCALE_MIN_SNR`).
+    error : float
+        Its 1-sigma error (0 when not measured).
+    n_stars : int
+        Stars that set it (0 when not measured).
+    """
+    flux_psf = np.asarray(flux_psf, dtype=float)
+    total = np.asarray(flux_aper, dtype=float) * np.asarray(correction, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = total / flux_psf
+        error = np.abs(ratio) * np.hypot(
+            np.asarray(flux_aper_err, dtype=float) / np.asarray(flux_aper, dtype=float),
+            np.asarray(flux_psf_err, dtype=float) / flux_psf,
+        )
+        snr = flux_psf / np.asarray(flux_psf_err, dtype=float)
+    use = (
+        (np.asarray(flags) == 0)
+        & (True if isolated is None else np.asarray(isolated, dtype=bool))
+        & (snr >= PSF_SCALE_MIN_SNR)
+        & np.isfinite(ratio)
+        & np.isfinite(error)
+        & (error > 0)
+    )
+    if use.sum() < PSF_SCALE_MIN_STARS:
+        return 1.0, 0.0, 0
+    r, e = ratio[use], error[use]
+    centre = np.median(r)
+    spread = 1.4826 * np.median(np.abs(r - centre))
+    keep = np.abs(r - centre) <= PSF_SCALE_CLIP * np.maximum(spread, e)
+    if keep.sum() < PSF_SCALE_MIN_STARS:
+        return 1.0, 0.0, 0
+    w = 1.0 / e[keep] ** 2
+    scale = float(np.sum(w * r[keep]) / np.sum(w))
+    # the weighted mean's error, widened by the ratios' scatter beyond their errors
+    chi2 = float(np.sum(w * (r[keep] - scale) ** 2)) / max(int(keep.sum()) - 1, 1)
+    return scale, float(np.sqrt(max(chi2, 1.0) / np.sum(w))), int(keep.sum())
+
+
+def annulus_levels(image, no_data, x, y, inner, outer):
+    """Sigma-clipped median of ``image`` in an annulus about each position.
+
+    The local sky that an aperture sum holds above the background mesh (in
+    a crowded field the mesh sits below the sky between the stars' wings;
+    the PSF fit's own background term cannot stand in, as it takes up part
+    of the model's error), measured without any model: the median of a
+    photutils ``CircularAnnulus``'s pixels, clipped at 3 sigma (common
+    practice for sky annuli).
+
+    Parameters
+    ----------
+    image : ndarray, shape (ny, nx)
+        The background-subtracted image, e-.
+    no_data : ndarray of bool, shape (ny, nx)
+        Pixels left out.
+    x, y : ndarray, shape (n,)
+        Centres, pixels.
+    inner, outer : float
+        Annulus radii, pixels.
+
+    Returns
+    -------
+    ndarray, shape (n,)
+        e- per pixel (0 where the annulus holds no pixel).
+    """
+    levels = np.zeros(len(x))
+    if len(x) == 0:
+        return levels
+    from photutils.aperture import CircularAnnulus
+
+    # per source on its own cutout (photutils' ApertureStats copies the whole
+    # plane to mask it: a float64 plane of the stretch at detect's peak)
+    annuli = CircularAnnulus(np.column_stack([x, y]), float(inner), float(outer))
+    for k, footprint in enumerate(annuli.to_mask(method="center")):
+        values = footprint.get_values(image, mask=no_data)
+        values = values[np.isfinite(values)]
+        if values.size:
+            levels[k] = _clipped_median(values)
+    return levels
+
+
+def _clipped_median(values: np.ndarray, sigma: float = 3.0, rounds: int = 5) -> float:
+    """Median of ``values`` clipped at ``sigma`` robust (MAD) spreads about it, iterated."""
+    centre = float(np.median(values))
+    for _ in range(rounds):
+        spread = 1.4826 * float(np.median(np.abs(values - centre)))
+        kept = values[np.abs(values - centre) <= sigma * spread] if spread > 0 else values
+        if kept.size == values.size or kept.size == 0:
+            break
+        values = kept
+        centre = float(np.median(values))
+    return centre
+
+
+def isolated_sources(x, y, reach):
+    """Which sources have no other source within ``reach`` pixels.
+
+    Parameters
+    ----------
+    x, y : ndarray, shape (n,)
+        Positions, pixels.
+    reach : float or ndarray, shape (n,)
+        Each source's distance within which another spoils its aperture sum
+        (its radius, a few seeing FWHM for the other's light, its smear).
+
+    Returns
+    -------
+    ndarray of bool, shape (n,)
+    """
+    from scipy.spatial import cKDTree
+
+    points = np.column_stack([np.asarray(x, dtype=float), np.asarray(y, dtype=float)])
+    reach = np.broadcast_to(np.asarray(reach, dtype=float), (len(points),))
+    if len(points) < 2:
+        return np.ones(len(points), dtype=bool)
+    tree = cKDTree(points)
+    # the nearest other source (k=2: the first is the source itself)
+    distance, _ = tree.query(points, k=2)
+    return distance[:, 1] > reach
 
 
 def _aperture_sums(residual, variance, no_data, x, y, radii):

@@ -28,6 +28,7 @@ from pipeline.stages.zeropoint._stage import (
     calibrate_catalog,
     column_times,
     night_line_time,
+    psf_scale_shifts,
     source_exposures,
 )
 
@@ -43,6 +44,7 @@ __all__ = [
     "fit_zero_point",
     "interval_quality",
     "night_line_time",
+    "psf_scale_shifts",
     "scale_to_zero_point",
     "source_exposures",
     "star_flat",

@@ -43,6 +43,7 @@ __all__ = [
     "calibrate_catalog",
     "column_times",
     "night_line_time",
+    "psf_scale_shifts",
     "source_exposures",
 ]
 
@@ -130,6 +131,87 @@ class ZeroPointOptions(BaseModel):
         gt=0,
         description="Largest fitted colour term (mag per mag of colour) before it is reported: "
         "a reference of another passband than the night's filter?",
+    )
+
+
+@dataclass(frozen=True)
+class PSFScales:
+    """What :func:`psf_scale_shifts` applies.
+
+    Attributes
+    ----------
+    shift : ndarray, shape (n_sources,)
+        Magnitudes added to each source's instrumental magnitude.
+    by_stretch : dict
+        Stretch number -> factor applied to its PSF fluxes.
+    night : float
+        The night's weighted mean factor (a stretch without a measure gets it).
+    spread : float
+        The stretches' spread of true factors beyond their errors, relative.
+    """
+
+    shift: np.ndarray
+    by_stretch: dict
+    night: float
+    spread: float
+
+
+def psf_scale_shifts(catalog: QTable) -> PSFScales:
+    """Put every stretch's PSF fluxes on the apertures' scale, consistently over the night.
+
+    Detect measures each stretch's ratio of aperture to PSF flux
+    (``psf_scale`` +- ``psf_scale_err``, NaN where too few bright isolated
+    stars): a seeing width or Moffat index a few per cent off moves the PSF
+    fluxes by about as much, stretch by stretch.  A stretch's ratio is
+    applied as its share of the true spread between stretches allows (the
+    random-effects estimate of DerSimonian & Laird 1986, Control. Clin.
+    Trials 7, 177, from memory: spread tau^2 from the weighted scatter
+    beyond the errors; each stretch shrunk toward the night's weighted mean
+    by tau^2 / (tau^2 + error^2)); a stretch without a ratio gets the
+    night's mean.  Applying the ratio to some stretches and not others
+    would open steps of the size of the night's common offset (7 % with a
+    Moffat index held off the seeing's) between them.
+
+    Parameters
+    ----------
+    catalog : astropy.table.QTable
+        With ``stretch``, ``psf_scale``, ``psf_scale_err``; without the
+        columns (older catalogues) nothing is applied.
+
+    Returns
+    -------
+    PSFScales
+    """
+    n = len(catalog)
+    none = PSFScales(np.zeros(n), {}, 1.0, 0.0)
+    if n == 0 or not {"stretch", "psf_scale", "psf_scale_err"} <= set(catalog.colnames):
+        return none
+    stretch = np.asarray(catalog["stretch"], dtype=np.int64)
+    scale = _value(catalog["psf_scale"])
+    error = _value(catalog["psf_scale_err"])
+    labels, first = np.unique(stretch, return_index=True)
+    s, e = scale[first], error[first]
+    measured = np.isfinite(s) & (s > 0) & np.isfinite(e) & (e > 0)
+    if not measured.any():
+        return none
+    delta = -2.5 * np.log10(np.where(measured, s, 1.0))
+    sigma = _MAG_PER_RELATIVE_FLUX * np.where(measured, e / np.where(measured, s, 1.0), 1.0)
+    w = 1.0 / sigma[measured] ** 2
+    mean = float(np.sum(w * delta[measured]) / np.sum(w))
+    tau2 = 0.0
+    if measured.sum() >= 2:
+        q = float(np.sum(w * (delta[measured] - mean) ** 2))
+        tau2 = max(0.0, (q - (measured.sum() - 1)) / (np.sum(w) - np.sum(w**2) / np.sum(w)))
+    applied = np.full(labels.size, mean)
+    shrink = tau2 / (tau2 + sigma[measured] ** 2)
+    applied[measured] = mean + (delta[measured] - mean) * shrink
+    where = np.searchsorted(labels, stretch)
+    factors = 10.0 ** (-0.4 * applied)
+    return PSFScales(
+        shift=applied[where],
+        by_stretch={int(k): float(f) for k, f in zip(labels, factors, strict=True)},
+        night=float(10.0 ** (-0.4 * mean)),
+        spread=float(np.sqrt(tau2) / _MAG_PER_RELATIVE_FLUX),
     )
 
 
@@ -330,6 +412,8 @@ def calibrate_catalog(
         snr = _value(catalog["snr"]) if "snr" in catalog.colnames else flux / flux_err
         m_inst = -2.5 * np.log10(flux / source_exposures(catalog, exposure))
         m_inst_err = _MAG_PER_RELATIVE_FLUX * flux_err / flux
+    scales = psf_scale_shifts(catalog)
+    m_inst = m_inst + scales.shift
     t = column_times(_value(catalog["x"]), line_time, tdi_rows)
     ref_mag = _value(catalog["ref_mag"])
     colour = _value(catalog["ref_colour"]) if "ref_colour" in catalog.colnames else None
@@ -383,6 +467,13 @@ def calibrate_catalog(
     few = (np.asarray(intervals["flags"]) & int(ZeroPointFlag.FEW_STARS)) != 0
     intervals["interpolated"] = few | (covered >= 0.5)
     intervals.meta["clear_level_mag"] = clear
+    # the factor each stretch's PSF fluxes were put on the apertures' scale by
+    applied = {int(k): v for k, v in scales.by_stretch.items()}
+    intervals["psf_scale"] = [applied.get(k, scales.night) for k in range(len(stretch_rows))]
+    intervals[
+        "psf_scale"
+    ].info.description = "factor applied to the stretch's PSF fluxes (psf_scale_shifts)"
+    intervals.meta["psf_scale_spread"] = scales.spread
 
     # Every source: Z at its time, its stretch's flags, the colour term where it has a colour.
     which = np.clip(np.searchsorted(edges, t, side="right") - 1, 0, len(stretch_rows) - 1)
@@ -611,7 +702,8 @@ STAGE = Stage(
     # 6: a fitted colour term above max_colour_term is reported as a problem
     # 7: the line time of the night's most rows (was the blocks' median: wrong on a
     #    night whose camera changed its line time), no problem lines for the
-    #    stretches astrometry did not solve, and one line per run of stretches
-    #    flagged alike
+    #    stretches astrometry did not solve, one line per run of stretches
+    #    flagged alike, and each stretch's PSF fluxes put on the apertures'
+    #    scale (detect's psf_scale, psf_scale_shifts; intervals' psf_scale)
     version=7,
 )
