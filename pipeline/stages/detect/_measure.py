@@ -1450,7 +1450,7 @@ def aperture_fluxes(
 
 #: Least S/N of a star whose aperture and PSF fluxes set :func:`psf_aperture_scale`.
 PSF_SCALE_MIN_SNR = 50.0
-#: Fewest such stars for a scale; with fewer the PSF fluxes stay as fitted.
+#: Fewest such stars for a scale; with fewer none is measured (NaN in the catalogue).
 PSF_SCALE_MIN_STARS = 5
 #: Most such stars measured (the brightest), for the annuli's cost.
 PSF_SCALE_MAX_STARS = 100
@@ -1470,8 +1470,10 @@ def psf_aperture_scale(
     followed only part of it.  An aperture of a few FWHM (its model-based
     correction to the total being small and nearly independent of the
     width) does not care.  As is common practice in PSF photometry, the PSF
-    fluxes are scaled by the weighted mean ratio of aperture to PSF flux of
-    the stretch's bright unflagged stars.
+    fluxes are put on the apertures' scale by the weighted mean ratio of
+    aperture to PSF flux of the stretch's bright unflagged stars (detect
+    records it; the zero point applies it consistently over the night,
+    :func:`pipeline.stages.zeropoint.psf_scale_shifts`).
 
     Parameters
     ----------

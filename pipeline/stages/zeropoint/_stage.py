@@ -470,9 +470,8 @@ def calibrate_catalog(
     # the factor each stretch's PSF fluxes were put on the apertures' scale by
     applied = {int(k): v for k, v in scales.by_stretch.items()}
     intervals["psf_scale"] = [applied.get(k, scales.night) for k in range(len(stretch_rows))]
-    intervals[
-        "psf_scale"
-    ].info.description = "factor applied to the stretch's PSF fluxes (psf_scale_shifts)"
+    applied_doc = "factor applied to the stretch's PSF fluxes (psf_scale_shifts)"
+    intervals["psf_scale"].info.description = applied_doc
     intervals.meta["psf_scale_spread"] = scales.spread
 
     # Every source: Z at its time, its stretch's flags, the colour term where it has a colour.
