@@ -251,6 +251,9 @@ def test_consecutive_stretches_flagged_alike_are_one_problem_line():
     # a stretch astrometry did not solve breaks a run
     lines = _interval_lines(intervals, frozenset({"s0000", "s0002", "s0004", "s0005"}))
     assert [line.split(":")[0] for line in lines] == ["s0000", "s0002", "s0004", "s0005"]
+    # every stretch too few: no neighbours to bridge from, the night's fit
+    (line,) = _interval_lines(intervals[:3], None)
+    assert line.startswith("s0000-s0002 (3 stretches): zero point from the night's fit over all")
 
 
 def test_psf_scales_are_applied_consistently_over_the_night():

@@ -569,10 +569,14 @@ def _interval_lines(intervals: QTable, reduced: frozenset[str] | None) -> list[s
         else:
             runs.append([key, [row]])
     lines = []
+    solved = [r for r in intervals if reduced is None or str(r["stretch"]) in reduced]
     for run in filter(None, runs):
         (flags, interpolated), rows = run
         names = "+".join(f.name for f in ZeroPointFlag if f in ZeroPointFlag(flags))
         what = "interpolated from its neighbours" if interpolated else "unreliable"
+        if interpolated and len(rows) == len(solved) > 1:
+            # no neighbour of its own to bridge from: the night's smooth fit
+            what = "from the night's fit over all its stars, no stretch having enough of its own"
         stars = [int(r["n_stars"]) for r in rows]
         drops = [float(r["drop"].to_value(u.mag)) for r in rows]
         if len(rows) == 1:
