@@ -291,17 +291,14 @@ def select_products(
             "co-adds one: set coadd.filter to the one to build (the nights of the others "
             "are left out), or list only the nights of one passband."
         )
+
+    def in_band(product: NightImage) -> bool:
+        return filter_name is None or product.filter_name in (None, filter_name)
+
     excluded: dict[int, str] = {}
-    best = max(
-        (
-            p.transparency_zero_point
-            for p in products
-            if filter_name is None or p.filter_name in (None, filter_name)
-        ),
-        default=0.0,
-    )
+    best = max((p.transparency_zero_point for p in products if in_band(p)), default=0.0)
     for i, product in enumerate(products):
-        if filter_name is not None and product.filter_name not in (None, filter_name):
+        if not in_band(product):
             excluded[i] = f"FILTER {product.filter_name}, not coadd.filter {filter_name}"
         elif max_seeing is not None and product.seeing is not None and product.seeing > max_seeing:
             excluded[i] = f"seeing {product.seeing:.2f} arcsec > max_seeing {max_seeing:g}"

@@ -826,10 +826,8 @@ def sky_fill_problems(
     if not usable.any():
         return []
     sky = float(np.median(pixels[usable]))
-    room = np.broadcast_to(np.asarray(saturation, float), (n_rows,)) - np.broadcast_to(
-        np.asarray(bias, float), (n_rows,)
-    )
-    room = float(np.median(room * np.broadcast_to(np.asarray(gain, float), (n_rows,))))
+    room = (np.asarray(saturation, float) - np.asarray(bias, float)) * np.asarray(gain, float)
+    room = float(np.median(room))  # e-, per row or one value for all
     if not (room > 0 and sky > SKY_FILL_LIMIT * room):
         return []
     return [

@@ -1301,22 +1301,26 @@ def detect(
         # neighbour stretch's margin's too) within the aperture, two FWHM of the
         # other's light and the smear's extent; at most the PSF_SCALE_MAX_STARS
         # brightest, whose errors outweigh the others' anyway.
-        extent = np.array([np.ptp(dx) if np.size(dx) else 0.0 for dx, _ in fits_["kernel"]])
-        reach = radius + 2.0 * profile.fwhm + extent
         snr = values["flux_psf"] / values["flux_psf_err"]
-        take = isolated_sources(fits_["x"], fits_["y"], reach)[idx]
-        take &= (values["flags"] == 0) & (snr >= PSF_SCALE_MIN_SNR)
-        if take.sum() > PSF_SCALE_MAX_STARS:
-            take[np.flatnonzero(take)[np.argsort(-snr[take])[PSF_SCALE_MAX_STARS:]]] = False
+        chosen = np.flatnonzero((values["flags"] == 0) & (snr >= PSF_SCALE_MIN_SNR))
+        dx = [kernels[i][0] for i in chosen]
+        extent = np.array([np.ptp(d) if np.size(d) else 0.0 for d in dx], dtype=float)
+        reach = radius + 2.0 * profile.fwhm + extent
+        alone = isolated_sources(x[chosen], y[chosen], reach, (fits_["x"], fits_["y"]))
+        chosen, extent = chosen[alone], extent[alone]
+        if chosen.size > PSF_SCALE_MAX_STARS:
+            brightest = np.sort(np.argsort(-snr[chosen])[:PSF_SCALE_MAX_STARS])
+            chosen, extent = chosen[brightest], extent[brightest]
+        take = np.zeros(x.size, dtype=bool)
+        take[chosen] = True
         # their sums less the local sky above the mesh, from an annulus beyond
         # the aperture and the smear
-        inner = radius + profile.fwhm + 0.5 * np.max(extent[idx][take], initial=0.0)
+        inner = radius + profile.fwhm + 0.5 * np.max(extent, initial=0.0)
         outer = inner + 3.0 * profile.fwhm
         local_sky = np.zeros(x.size)
-        local_sky[take] = annulus_levels(residual, no_data, x[take], y[take], inner, outer)
+        local_sky[chosen] = annulus_levels(residual, no_data, x[chosen], y[chosen], inner, outer)
         # less the star's own wings there (its model's share of the annulus,
         # spread over it: ~0.1 % of its flux at 2 FWHM otherwise)
-        chosen = np.flatnonzero(take)
         inside = 1.0 / aperture_corrections(
             [kernels[i] for i in chosen],
             y[chosen],

@@ -1575,7 +1575,12 @@ def annulus_levels(image, no_data, x, y, inner, outer):
 
 
 def _clipped_median(values: np.ndarray, sigma: float = 3.0, rounds: int = 5) -> float:
-    """Median of ``values`` clipped at ``sigma`` robust (MAD) spreads about it, iterated."""
+    """Median of ``values`` clipped at ``sigma`` robust (MAD) spreads about it, iterated.
+
+    What astropy's ``sigma_clipped_stats(..., stdfunc='mad_std')[1]`` gives,
+    without its per-call overhead (~0.5 ms: 0.25 s of a stretch's detect
+    with an annulus per candidate star).
+    """
     centre = float(np.median(values))
     for _ in range(rounds):
         spread = 1.4826 * float(np.median(np.abs(values - centre)))
@@ -1587,7 +1592,7 @@ def _clipped_median(values: np.ndarray, sigma: float = 3.0, rounds: int = 5) -> 
     return centre
 
 
-def isolated_sources(x, y, reach):
+def isolated_sources(x, y, reach, among=None):
     """Which sources have no other source within ``reach`` pixels.
 
     Parameters
@@ -1597,6 +1602,8 @@ def isolated_sources(x, y, reach):
     reach : float or ndarray, shape (n,)
         Each source's distance within which another spoils its aperture sum
         (its radius, a few seeing FWHM for the other's light, its smear).
+    among : (ndarray, ndarray) or None
+        ``x``, ``y`` of every source, these among them; None: these alone.
 
     Returns
     -------
@@ -1605,13 +1612,12 @@ def isolated_sources(x, y, reach):
     from scipy.spatial import cKDTree
 
     points = np.column_stack([np.asarray(x, dtype=float), np.asarray(y, dtype=float)])
-    reach = np.broadcast_to(np.asarray(reach, dtype=float), (len(points),))
-    if len(points) < 2:
+    pool = points if among is None else np.column_stack([np.asarray(a, float) for a in among])
+    if len(points) == 0 or len(pool) < 2:
         return np.ones(len(points), dtype=bool)
-    tree = cKDTree(points)
     # the nearest other source (k=2: the first is the source itself)
-    distance, _ = tree.query(points, k=2)
-    return distance[:, 1] > reach
+    distance, _ = cKDTree(pool).query(points, k=2)
+    return distance[:, 1] > np.broadcast_to(np.asarray(reach, dtype=float), (len(points),))
 
 
 def _aperture_sums(residual, variance, no_data, x, y, radii):

@@ -325,13 +325,13 @@ def line_time_problem(block_index: Table, rows: tuple[int, int], line_time: floa
     stop = start + np.asarray(block_index["n_rows"], dtype=np.int64)
     inside = (start < rows[1]) & (stop > rows[0])
     line_times = np.asarray(block_index["line_time"], dtype=float)
-    spans = clock_spans(block_index)
-    other = inside & other_line_time_blocks(line_times, line_time, spans)
+    elsewhere = other_line_time_blocks(line_times, line_time, clock_spans(block_index))
+    other = inside & elsewhere
     if not other.any():
         return None
     files = [str(f) for f in np.asarray(block_index["file"])[other]]
     values = sorted({float(v) for v in line_times[other]})
-    night = ~other_line_time_blocks(line_times, line_time, spans)
+    night = ~elsewhere
     return (
         f"its rows come from {', '.join(files)} at LINETIME "
         f"{', '.join(f'{v:.9g}' for v in values)} s, not the night's {line_time:.9g} s "

@@ -194,17 +194,16 @@ def psf_scale_shifts(catalog: QTable) -> PSFScales:
     measured = np.isfinite(s) & (s > 0) & np.isfinite(e) & (e > 0)
     if not measured.any():
         return none
-    delta = -2.5 * np.log10(np.where(measured, s, 1.0))
-    sigma = _MAG_PER_RELATIVE_FLUX * np.where(measured, e / np.where(measured, s, 1.0), 1.0)
-    w = 1.0 / sigma[measured] ** 2
-    mean = float(np.sum(w * delta[measured]) / np.sum(w))
+    delta = -2.5 * np.log10(s[measured])  # mag
+    sigma = _MAG_PER_RELATIVE_FLUX * e[measured] / s[measured]
+    w = 1.0 / sigma**2
+    mean = float(np.sum(w * delta) / np.sum(w))
     tau2 = 0.0
-    if measured.sum() >= 2:
-        q = float(np.sum(w * (delta[measured] - mean) ** 2))
-        tau2 = max(0.0, (q - (measured.sum() - 1)) / (np.sum(w) - np.sum(w**2) / np.sum(w)))
+    if delta.size >= 2:
+        q = float(np.sum(w * (delta - mean) ** 2))
+        tau2 = max(0.0, (q - (delta.size - 1)) / (np.sum(w) - np.sum(w**2) / np.sum(w)))
     applied = np.full(labels.size, mean)
-    shrink = tau2 / (tau2 + sigma[measured] ** 2)
-    applied[measured] = mean + (delta[measured] - mean) * shrink
+    applied[measured] = mean + (delta - mean) * tau2 / (tau2 + sigma**2)
     where = np.searchsorted(labels, stretch)
     factors = 10.0 ** (-0.4 * applied)
     return PSFScales(
@@ -569,12 +568,12 @@ def _interval_lines(intervals: QTable, reduced: frozenset[str] | None) -> list[s
         else:
             runs.append([key, [row]])
     lines = []
-    solved = [r for r in intervals if reduced is None or str(r["stretch"]) in reduced]
+    n_solved = sum(reduced is None or str(r["stretch"]) in reduced for r in intervals)
     for run in filter(None, runs):
         (flags, interpolated), rows = run
         names = "+".join(f.name for f in ZeroPointFlag if f in ZeroPointFlag(flags))
         what = "interpolated from its neighbours" if interpolated else "unreliable"
-        if interpolated and len(rows) == len(solved) > 1:
+        if interpolated and len(rows) == n_solved > 1:
             # no neighbour of its own to bridge from: the night's smooth fit
             what = "from the night's fit over all its stars, no stretch having enough of its own"
         stars = [int(r["n_stars"]) for r in rows]
