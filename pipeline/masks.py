@@ -51,10 +51,13 @@ class MaskBit(enum.IntFlag):
     NONFINITE
         The raw value was NaN or infinite.  Image and variance are NaN.
     GAP
-        No raw data for this pixel (missing rows).  Image and variance are NaN.
+        No raw data for this pixel (missing rows), or none exposed: the row
+        read out as charge clocking started.  Image and variance are NaN.
     LOW_EXPOSURE
         The row belongs to the start-of-scan ramp: its packets crossed fewer than
-        all TDI rows, so its exposure is partial and the 1-D flat does not apply.
+        all TDI rows, so its exposure is partial.  Calibrate scales it to the
+        full exposure (its variance with it), with the whole chip's 1-D flat
+        and dark, which the packet only partly crossed.
     OUTSIDE
         Set by rectify: the rectified pixel draws on strip pixels beyond the
         chip's columns or beyond the rows handed to the stage (start or end of

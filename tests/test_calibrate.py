@@ -442,6 +442,42 @@ def test_calibration_inverts_the_raw_model_without_noise():
     assert result.mask.dtype == np.uint16 and not result.mask.any()
 
 
+def test_the_start_of_scan_ramp_is_scaled_to_the_full_exposure():
+    # The raw data contract (pipeline.stages.ingest, "Start of the scan"): the
+    # k-th row read after charge clocking starts holds k / TDIROWS of a full
+    # exposure's sky and dark current.  Apply-then-remove (common practice):
+    # noise-free rows built so calibrate back to the sky in every row, with
+    # the variance of the electrons collected scaled alike; the row read as
+    # clocking started has no exposure: no data (GAP).  Without the scaling
+    # the ramp's sky rose from 0, and its end was a step that the search
+    # took for a line of sources across the chip.
+    n_rows, tdi_rows = 1024, 256
+    adu, overscan, truth = _tdi_raw(np.random.default_rng(8), n_rows=n_rows, noise=False)
+    fraction = np.minimum(np.arange(n_rows) / tdi_rows, 1.0)[:, None]
+    dark = truth["dark"] - GAIN * truth["pattern"]  # collected dark, e-
+    full = truth["response"] * truth["sky"][:, None] + dark
+    adu = adu - (1.0 - fraction) * full / GAIN  # raw ADU of the partial exposures
+    result = _calibrate_with_truth(
+        adu.astype(np.float32),
+        overscan,
+        truth,
+        cosmic_rays=False,
+        bias_window=1,
+        rows_since_start=np.arange(n_rows),
+        tdi_rows=tdi_rows,
+    )
+    assert has_bits(result.mask[0], MaskBit.GAP | MaskBit.LOW_EXPOSURE).all()
+    assert np.isnan(result.image[0]).all() and np.isnan(result.variance[0]).all()
+    assert has_bits(result.mask[1:tdi_rows], MaskBit.LOW_EXPOSURE).all()
+    assert not has_bits(result.mask[1:], MaskBit.GAP).any()
+    # float32 raw values (~1e-3 e- as above) grow by 1 / fraction in the ramp.
+    error = np.abs(result.image[1:] - truth["sky"][1:, None])
+    assert np.all(error <= 5e-3 / fraction[1:]), error.max()
+    f, collected = fraction[1:], fraction[1:] * full[1:]
+    expected = (READ_NOISE**2 + collected + GAIN**2 / 12) / (f * truth["response"]) ** 2
+    np.testing.assert_allclose(result.variance[1:], expected, rtol=5e-5)
+
+
 def test_a_bleed_trail_ends_in_a_twilight_sky():
     # A twilight sky above bias + bleed_fraction * (SATURATE - bias): the
     # trail of a saturated star must end where its spilled charge does, not

@@ -32,7 +32,8 @@ def assert_flags_follow_the_bits(catalog) -> None:
     """detect's rules (:class:`SourceFlag`) hold between every row's flags and its bits.
 
     NEAR_FLAGGED iff ``mask_near`` is not 0; SATURATED iff ``mask_core``
-    holds SATURATED or BLEED; COSMIC_RAY iff it holds COSMIC_RAY; EDGE
+    holds SATURATED or BLEED; COSMIC_RAY iff it holds COSMIC_RAY;
+    PARTIAL_EXPOSURE iff it holds LOW_EXPOSURE; EDGE
     wherever the stamp holds OUTSIDE or GAP or the core NONFINITE (and
     elsewhere only for other reasons: the image's edge, a column saturated
     through the stretch); the core lies in the stamp.
@@ -47,6 +48,9 @@ def assert_flags_follow_the_bits(catalog) -> None:
     np.testing.assert_array_equal(has(flags, SourceFlag.NEAR_FLAGGED), near != 0)
     np.testing.assert_array_equal(has(flags, SourceFlag.SATURATED), has(core, SATURATION))
     np.testing.assert_array_equal(has(flags, SourceFlag.COSMIC_RAY), has(core, MaskBit.COSMIC_RAY))
+    np.testing.assert_array_equal(
+        has(flags, SourceFlag.PARTIAL_EXPOSURE), has(core, MaskBit.LOW_EXPOSURE)
+    )
     edge = has(near, MaskBit.OUTSIDE | MaskBit.GAP) | has(core, MaskBit.NONFINITE)
     assert np.all(has(flags, SourceFlag.EDGE)[edge])
     assert not np.any(core & ~near)
@@ -231,3 +235,29 @@ def test_a_column_star_whose_fit_ended_off_its_core_keeps_its_clipped_core_bits(
     assert out["mask_core"].tolist() == [0, SATURATION]
     assert out["flags"][1] & SourceFlag.SATURATED and out["flags"][1] & SourceFlag.FIT_FAILED
     assert (out["x"][1], out["y"][1]) == (30.0, 20.0)
+
+
+def test_stars_in_the_start_of_scan_ramp_are_flagged_partial_exposure():
+    """A star whose core lies in the ramp (LOW_EXPOSURE) is PARTIAL_EXPOSURE, one beside it not.
+
+    The rectified stretch's scan runs along x: the ramp is the first
+    columns.  Invented data (five stars of S/N 150, fitted alone): the ramp
+    ends 6 px before the second star, which has it in its stamp only
+    (NEAR_FLAGGED), while the first lies inside it.
+    """
+    x = [100.0, 300.0, 500.0, 700.0, 900.0]
+    y = [30.0, 64.0, 98.0, 64.0, 160.0]
+    scene = render_scene(x, y, None, snr=150.0, shape=(192, 1000), seed=11)
+    mask = scene.mask.copy()
+    mask[:, :294] |= np.uint16(MaskBit.LOW_EXPOSURE)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        catalog = detect(scene.image, scene.variance, mask, scene.kernels, fwhm_guess=3.2).catalog
+    rows, distance = _nearest(catalog, x, y)
+    assert np.all(distance < 0.5)
+    flags = np.asarray(catalog["flags"])[rows]
+    partial = (flags & int(SourceFlag.PARTIAL_EXPOSURE)) != 0
+    near = (flags & int(SourceFlag.NEAR_FLAGGED)) != 0
+    assert partial.tolist() == [True, False, False, False, False]
+    assert near.tolist() == [True, True, False, False, False]
+    assert_flags_follow_the_bits(catalog)

@@ -240,27 +240,35 @@ def systematic_error_cards(ra_err: float, dec_err: float, dec: float) -> dict[st
 UNMATCHED_FRACTION = 0.1
 
 
-def unmatched_stretches(catalog, stretch_ids: list[str], min_median: int = 10) -> list[str]:
+def unmatched_stretches(
+    catalog, stretch_ids: list[str], min_median: int = 10, exclude_mask: int = 0
+) -> list[str]:
     """One line per stretch whose detections the fit (nearly) all left out.
 
     A stretch whose stars the night's solution does not fit (a clock error
     in its segment's DATE-OBS, a camera that moved) keeps positions that
     nothing checks; the zero point then calls it FEW_STARS.  Reported when
-    the stretch has detections but fewer matched ones than
+    the stretch has detections the fit could use (none of the flags
+    ``exclude_mask``) but fewer matched ones than
     :data:`UNMATCHED_FRACTION` of the median of the stretches the fit used
     (those with a matched detection: when most stretches are lost, the
     median of all would be 0 and name none), and that median is at least
-    ``min_median``.
+    ``min_median``.  A stretch whose detections the flags left out (the
+    start-of-scan ramp's, all PARTIAL_EXPOSURE) is not named: nothing went
+    wrong there.
 
     Parameters
     ----------
     catalog : astropy.table.Table
         The solved catalogue (``stretch``: index into ``stretch_ids``;
-        ``ref_index``: -1 where not in the fit).
+        ``ref_index``: -1 where not in the fit; ``flags``, if ``exclude_mask``).
     stretch_ids : list of str
         The ids of the catalogue's stretches, in order.
     min_median : int, optional
         Fewest matched detections per stretch, as a median, for the check.
+    exclude_mask : int, optional
+        The detect flags (``fit_exclude_flags``) of detections the fit left
+        out by design.
 
     Returns
     -------
@@ -268,16 +276,19 @@ def unmatched_stretches(catalog, stretch_ids: list[str], min_median: int = 10) -
     """
     index = np.asarray(catalog["stretch"], dtype=float)
     matched = np.asarray(catalog["ref_index"]) >= 0
-    detected = np.array([np.sum(index == k) for k in range(len(stretch_ids))])
+    usable = np.ones(len(index), bool)
+    if exclude_mask:
+        usable = (np.asarray(catalog["flags"], dtype=np.int64) & exclude_mask) == 0
+    detected = np.array([np.sum(usable & (index == k)) for k in range(len(stretch_ids))])
     kept = np.array([np.sum(matched & (index == k)) for k in range(len(stretch_ids))])
     used = kept[kept > 0]
     if not used.size or np.median(used) < min_median:
         return []
     median = float(np.median(used))
     return [
-        f"{stretch_ids[k]}: {kept[k]} of its {detected[k]} detections in the fit against a "
-        f"median of {median:g} per stretch fitted: its positions are the solution's, unchecked "
-        "(a clock error in its segment's DATE-OBS? a cloud?)."
+        f"{stretch_ids[k]}: {kept[k]} of its {detected[k]} usable detections in the fit "
+        f"against a median of {median:g} per stretch fitted: its positions are the "
+        "solution's, unchecked (a clock error in its segment's DATE-OBS? a cloud?)."
         for k in range(len(stretch_ids))
         if detected[k] > 0 and kept[k] < UNMATCHED_FRACTION * median
     ]
@@ -732,7 +743,8 @@ def _run(*, inputs, options: AstrometryStageOptions, context) -> dict[str, Any]:
                 "are the solution's; shorter stretches (run.stretch_rows) or a larger "
                 "stages.astrometry.wcs_tolerance."
             )
-    problems.extend(unmatched_stretches(catalog, [s.id for s in stretches]))
+    ids = [s.id for s in stretches]
+    problems.extend(unmatched_stretches(catalog, ids, exclude_mask=options.exclude_mask))
     clocks = solved.parameters.meta.get("segment_clocks", [])
     for record in clocks if len(clocks) > 1 else []:
         where = "segment {} (rows {}-{}, {})".format(
@@ -812,5 +824,6 @@ STAGE = Stage(
     # follow it at least as well as the time means (light_weighting_floor_px)
     # 8: a stretch whose reference stars scatter beyond the night's common error
     # gives its positions' errors the difference (stretch_extra_error_px)
-    version=8,
+    # 9: PARTIAL_EXPOSURE (the start-of-scan ramp's stars) left out of the fit
+    version=9,
 )

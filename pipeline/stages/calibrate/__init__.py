@@ -15,7 +15,8 @@ across the scan) :func:`calibrate_stretch`
    the flat divides it) and the ADC's quantisation (a uniform error of one ADU);
 4. builds the mask (:class:`pipeline.masks.MaskBit`): saturation and bleed
    along the scan, bad and hot columns, cosmic rays, non-finite and missing
-   pixels, the start-of-scan exposure ramp.
+   pixels, the start-of-scan exposure ramp, whose rows it scales to the full
+   exposure (:func:`scale_ramp_rows`).
 
 Stage wiring
 ------------
@@ -74,6 +75,7 @@ __all__ = [
     "columns_product_name",
     "detect_cosmic_rays",
     "empty_rows",
+    "exposure_fraction",
     "options_kwargs",
     "solve_columns",
     "strip_wcs_header",
@@ -471,9 +473,15 @@ def calibrate_stretch(
     )
     flat_mask[saturated] |= int(MaskBit.SATURATED)
     flat_mask[bleed] |= int(MaskBit.BLEED)
+    unexposed = np.zeros(0, dtype=np.int64)
     if rows_since_start is not None and tdi_rows:
-        ramp = (np.asarray(rows_since_start) < int(tdi_rows)) & (segment >= 0)
+        fraction = exposure_fraction(rows_since_start, tdi_rows)
+        ramp = np.flatnonzero((fraction < 1.0) & (segment >= 0))
         mask[ramp] |= int(MaskBit.LOW_EXPOSURE)
+        unexposed = ramp[fraction[ramp] <= 0.0]
+        mask[unexposed] |= int(MaskBit.GAP)  # read at the start of clocking: no exposure
+        exposed = ramp[fraction[ramp] > 0.0]
+        scale_ramp_rows(image_e, variance, exposed, fraction[exposed], flat, dark)
 
     # Pixels without data: NaN in the products, a huge variance for the
     # cosmic-ray search (never the smallest noise).
@@ -481,6 +489,7 @@ def calibrate_stretch(
     bad_columns = np.flatnonzero(column_flags & int(MaskBit.BAD_COLUMN))
     no_data[:, bad_columns] = True
     no_data[gap] = True
+    no_data[unexposed] = True
     no_data.reshape(-1)[nonfinite] = True
     image_e[no_data] = np.nan
     variance[no_data] = NO_DATA_VARIANCE
@@ -500,6 +509,72 @@ def calibrate_stretch(
         mask[hits] |= int(MaskBit.COSMIC_RAY)
     variance[np.isnan(image_e)] = np.nan
     return CalibratedStretch(image_e, variance, mask, bias)
+
+
+def exposure_fraction(rows_since_start: np.ndarray, tdi_rows: int) -> np.ndarray:
+    """Fraction of the full TDI exposure each row received.
+
+    A charge packet read out ``k`` line times after clocking started has
+    crossed only the last ``k`` of the chip's ``tdi_rows`` rows, so it holds
+    ``k / tdi_rows`` of the light (and dark current) of a fully exposed one
+    (the raw data contract: :mod:`pipeline.stages.ingest`, "Start of the
+    scan").  Rows read ``tdi_rows`` or more line times after the start, and
+    rows of a night clocked before its first block, have the full exposure.
+
+    Parameters
+    ----------
+    rows_since_start : ndarray of int, shape (n_rows,)
+        Line times since charge clocking started (``describe_rows``).
+    tdi_rows : int
+        TDIROWS, the chip rows a packet crosses.
+
+    Returns
+    -------
+    ndarray of float64, shape (n_rows,)
+        In [0, 1].
+
+    Examples
+    --------
+    >>> exposure_fraction(np.array([0, 1, 2, 4, 9]), 4)
+    array([0.  , 0.25, 0.5 , 1.  , 1.  ])
+    """
+    since = np.asarray(rows_since_start)
+    if int(tdi_rows) <= 0:
+        raise ValueError(f"tdi_rows must be a positive number of chip rows; got {tdi_rows}.")
+    return np.clip(since.astype(np.float64) / int(tdi_rows), 0.0, 1.0)
+
+
+def scale_ramp_rows(image_e, variance, rows, fraction, flat, dark) -> None:
+    """Bring partly exposed rows to the full exposure, in place.
+
+    A row with ``fraction`` ``f`` of the full exposure collected ``f`` of the
+    sky's, the stars' and the dark current's electrons:
+    ``electrons = f (flat * signal + dark)``.  :func:`_calibrate_pixels` made
+    ``(electrons - dark) / flat`` of it; this returns ``electrons / (f flat) -
+    dark / flat``, the signal of a full exposure, and divides the variance by
+    ``f^2``, so that the start-of-scan ramp carries no step in the sky for the
+    search to find, and its stars their whole fluxes (with the noise of their
+    shorter exposures).  The flat and dark are the full chip's: a packet of
+    the ramp crossed only part of it.
+
+    Parameters
+    ----------
+    image_e, variance : ndarray of float32, shape (n_rows, n_columns)
+        Calibrated electrons and their variance, changed in place.
+    rows : ndarray of int
+        Row indices of the partly exposed rows.
+    fraction : ndarray of float, shape rows.shape
+        Their exposure fractions, in (0, 1] (:func:`exposure_fraction`).
+    flat, dark : ndarray of float, shape (n_columns,)
+        The 1-D flat and additive level (e-) the rows were calibrated with.
+    """
+    if len(rows) == 0:
+        return
+    fraction = np.asarray(fraction, dtype=np.float64)[:, None]
+    missing_dark = (dark * (1.0 / fraction - 1.0) / flat).astype(np.float32)
+    inverse = (1.0 / fraction).astype(np.float32)
+    image_e[rows] = image_e[rows] * inverse + missing_dark
+    variance[rows] = variance[rows] * (inverse * inverse)
 
 
 def _calibrate_pixels(image, bias, gain, read_noise, saturation, flat, dark, column_bias):
@@ -982,6 +1057,8 @@ STAGE = Stage(
     # which rows hold data (column 'data'), for the report's hours of data, and
     # BLANK pixels of unsigned raw data are NaN (they read as 0 ADU); 7: a bleed
     # trail ends where it falls to a fraction of the room above the row's sky,
-    # not above the bias (a twilight sky continued every trail to the column's end)
-    version=7,
+    # not above the bias (a twilight sky continued every trail to the column's end);
+    # 8: the start-of-scan ramp's rows scaled to the full exposure, its first row
+    # (no exposure) no data
+    version=8,
 )

@@ -476,10 +476,11 @@ def _column_stars_unmeasured(fits_: dict, order, core_of: np.ndarray, cores, sho
 #: own FLAGS bits, those the flags were made from.  The flags' rules
 #: (:class:`SourceFlag`): NEAR_FLAGGED iff ``mask_near`` is not 0, SATURATED
 #: iff ``mask_core`` holds SATURATED or BLEED, COSMIC_RAY iff it holds
-#: COSMIC_RAY; EDGE where ``mask_near`` holds OUTSIDE or GAP or ``mask_core``
-#: NONFINITE, and also where the stamp is cut by the image's edge or the
-#: core meets a column saturated through the stretch (whose pixels detect
-#: takes as without data; the stretch's bits there are SATURATED or BLEED).
+#: COSMIC_RAY, PARTIAL_EXPOSURE iff it holds LOW_EXPOSURE; EDGE where
+#: ``mask_near`` holds OUTSIDE or GAP or ``mask_core`` NONFINITE, and also
+#: where the stamp is cut by the image's edge or the core meets a column
+#: saturated through the stretch (whose pixels detect takes as without data;
+#: the stretch's bits there are SATURATED or BLEED).
 MASK_NEAR_DESCRIPTION = (
     "OR of the stretch's FLAGS bits (pipeline.masks.MaskBit) over the stamp its fit took "
     "(its group's, for sources fitted together): why it is NEAR_FLAGGED"
@@ -1903,6 +1904,7 @@ STAGE = Stage(
     # 22: columns psf_scale, psf_scale_err: the stretch's ratio of aperture
     #     psf_scale_aperture's corrected fluxes to PSF fluxes of its bright
     #     isolated unflagged stars (every other column unchanged)
-    version=22,
+    # 23: flag PARTIAL_EXPOSURE, a star whose core lies in the start-of-scan ramp
+    version=23,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

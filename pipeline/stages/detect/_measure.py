@@ -80,6 +80,14 @@ class SourceFlag(enum.IntFlag):
         :data:`UNRESOLVED_ELONGATION` of the model's own second moment); see
         :func:`residual_quadrupole`.  Not tested for sources of groups fitted
         star by star (more than ``max_joint`` members).
+    PARTIAL_EXPOSURE
+        The star's core lies in the start-of-scan ramp (mask LOW_EXPOSURE):
+        its charge packets crossed only part of the chip, so it trailed along
+        only the end of the smear track the model averages over.  Calibrate
+        scales the ramp to the full exposure, but the position is off along
+        the track (by hundreds of mas on the curved tracks far from the
+        equator) and the flux by a few per cent.  The geometry's and the zero
+        point's fits leave such stars out.
     """
 
     SATURATED = 1 << 0
@@ -90,6 +98,7 @@ class SourceFlag(enum.IntFlag):
     OVERLAP = 1 << 5
     FIT_FAILED = 1 << 6
     UNRESOLVED = 1 << 7
+    PARTIAL_EXPOSURE = 1 << 8
 
 
 #: Largest distance between a fit's smear-kernel samples, in seeing FWHMs
@@ -598,10 +607,12 @@ _EDGE_BITS = int(MaskBit.OUTSIDE | MaskBit.GAP)
 _NONFINITE_BIT = int(MaskBit.NONFINITE)
 _SATURATED_BITS = int(MaskBit.SATURATED | MaskBit.BLEED)
 _COSMIC_RAY_BIT = int(MaskBit.COSMIC_RAY)
+_LOW_EXPOSURE_BIT = int(MaskBit.LOW_EXPOSURE)
 _EDGE, _NEAR_FLAGGED = int(SourceFlag.EDGE), int(SourceFlag.NEAR_FLAGGED)
 _SATURATED, _COSMIC_RAY = int(SourceFlag.SATURATED), int(SourceFlag.COSMIC_RAY)
 _BLENDED, _OVERLAP = int(SourceFlag.BLENDED), int(SourceFlag.OVERLAP)
 _FIT_FAILED, _UNRESOLVED = int(SourceFlag.FIT_FAILED), int(SourceFlag.UNRESOLVED)
+_PARTIAL_EXPOSURE = int(SourceFlag.PARTIAL_EXPOSURE)
 _NO_DATA_BITS = int(NO_DATA)
 
 
@@ -616,6 +627,8 @@ def _flags_from_bits(stamp_bits: int, core_bits: int, clipped, blended) -> int:
         flags |= _SATURATED
     if core_bits & _COSMIC_RAY_BIT:
         flags |= _COSMIC_RAY
+    if core_bits & _LOW_EXPOSURE_BIT:
+        flags |= _PARTIAL_EXPOSURE
     if blended:
         flags |= _BLENDED
     return flags

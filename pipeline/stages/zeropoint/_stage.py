@@ -59,6 +59,7 @@ _DOUBTFUL = (
     | SourceFlag.EDGE
     | SourceFlag.COSMIC_RAY
     | SourceFlag.FIT_FAILED
+    | SourceFlag.PARTIAL_EXPOSURE
 )
 
 
@@ -466,6 +467,7 @@ def calibrate_catalog(
     few = (np.asarray(intervals["flags"]) & int(ZeroPointFlag.FEW_STARS)) != 0
     intervals["interpolated"] = few | (covered >= 0.5)
     intervals.meta["clear_level_mag"] = clear
+    partial = _ramp_stars(flags, np.isfinite(m_inst), t, edges)
     # the factor each stretch's PSF fluxes were put on the apertures' scale by
     applied = {int(k): v for k, v in scales.by_stretch.items()}
     intervals["psf_scale"] = [applied.get(k, scales.night) for k in range(len(stretch_rows))]
@@ -543,16 +545,48 @@ def calibrate_catalog(
             if fit_colour_term
             else None,
             reduced=reduced,
+            ramp=frozenset(str(intervals["stretch"][k]) for k in np.flatnonzero(partial)),
         ),
     )
 
 
-def _interval_lines(intervals: QTable, reduced: frozenset[str] | None) -> list[str]:
+def _ramp_stars(flags, measured, t, edges) -> np.ndarray:
+    """Per stretch, whether most of its sources are PARTIAL_EXPOSURE.
+
+    The start-of-scan ramp's stars are left out of the fit (``_DOUBTFUL``;
+    astrometry matched none of them, ``fit_exclude_flags``), so a stretch in
+    the ramp has few stars for a reason worth saying.
+
+    Parameters
+    ----------
+    flags : ndarray of int
+        Detect flags of every source.
+    measured : ndarray of bool
+        Sources with a flux.
+    t : ndarray
+        Their times (:func:`column_times`), s.
+    edges : ndarray, shape (n_stretches + 1,)
+        The stretches' time edges, s.
+    """
+    k = np.searchsorted(edges, t, side="right") - 1
+    inside = measured & (k >= 0) & (k < len(edges) - 1)
+    ramp = (flags & int(SourceFlag.PARTIAL_EXPOSURE)) != 0
+    n = len(edges) - 1
+    in_ramp = np.bincount(k[inside & ramp], minlength=n)[:n]
+    total = np.bincount(k[inside], minlength=n)[:n]
+    return in_ramp > total - in_ramp
+
+
+def _interval_lines(
+    intervals: QTable, reduced: frozenset[str] | None, ramp: frozenset[str] = frozenset()
+) -> list[str]:
     """One line per run of consecutive flagged stretches alike in flags and handling.
 
     A sparse field on a small chip flags every stretch FEW_STARS: one line
     for the run, with the range of its star counts and drops, says it
-    once.  A run of one stretch reads as it always has.
+    once.  A run of one stretch reads as it always has.  ``ramp``: the
+    stretches whose sources lie mostly in the start-of-scan ramp
+    (:func:`_ramp_stars`); their line says why they have few.
     """
     from astropy import units as u
 
@@ -562,7 +596,7 @@ def _interval_lines(intervals: QTable, reduced: frozenset[str] | None) -> list[s
         if not flags or (reduced is not None and str(row["stretch"]) not in reduced):
             runs.append([])  # a clear or unsolved stretch ends a run
             continue
-        key = (int(flags), bool(row["interpolated"]))
+        key = (int(flags), bool(row["interpolated"]), str(row["stretch"]) in ramp)
         if runs and runs[-1] and runs[-1][0] == key:
             runs[-1][1].append(row)
         else:
@@ -570,26 +604,30 @@ def _interval_lines(intervals: QTable, reduced: frozenset[str] | None) -> list[s
     lines = []
     n_solved = sum(reduced is None or str(r["stretch"]) in reduced for r in intervals)
     for run in filter(None, runs):
-        (flags, interpolated), rows = run
+        (flags, interpolated, in_ramp), rows = run
         names = "+".join(f.name for f in ZeroPointFlag if f in ZeroPointFlag(flags))
         what = "interpolated from its neighbours" if interpolated else "unreliable"
         if interpolated and len(rows) == n_solved > 1:
             # no neighbour of its own to bridge from: the night's smooth fit
             what = "from the night's fit over all its stars, no stretch having enough of its own"
-        stars = [int(r["n_stars"]) for r in rows]
-        drops = [float(r["drop"].to_value(u.mag)) for r in rows]
-        if len(rows) == 1:
-            lines.append(
-                f"{rows[0]['stretch']}: zero point {what} ({names}; {stars[0]} stars, "
-                f"drop {drops[0]:.3f} mag)"
-            )
-        else:
-            lines.append(
-                f"{rows[0]['stretch']}-{rows[-1]['stretch']} ({len(rows)} stretches): zero "
-                f"point {what} ({names}; {min(stars)}-{max(stars)} stars, drop "
-                f"{min(drops):.3f} to {max(drops):.3f} mag)"
-            )
+        stars = _span([int(r["n_stars"]) for r in rows], "{}", "-")
+        drops = _span([float(r["drop"].to_value(u.mag)) for r in rows], "{:.3f}", " to ")
+        where = rows[0]["stretch"]
+        if len(rows) > 1:
+            where = f"{rows[0]['stretch']}-{rows[-1]['stretch']} ({len(rows)} stretches)"
+        why = (
+            ": its stars lie in the start-of-scan ramp, left out of the fit (PARTIAL_EXPOSURE)"
+            if in_ramp
+            else ""
+        )
+        lines.append(f"{where}: zero point {what} ({names}; {stars} stars, drop {drops} mag){why}")
     return lines
+
+
+def _span(values, form: str, join: str) -> str:
+    """``'3'`` for one value or equal values, ``'3-7'`` (``join``) for a range."""
+    low, high = form.format(min(values)), form.format(max(values))
+    return low if low == high else f"{low}{join}{high}"
 
 
 def _problems(
@@ -599,6 +637,7 @@ def _problems(
     scatter: tuple[float, float, bool] = (0.0, np.inf, False),
     colour: tuple[float, float, float] | None = None,
     reduced: frozenset[str] | None = None,
+    ramp: frozenset[str] = frozenset(),
 ) -> list[str]:
     """The night's problems in words.
 
@@ -606,7 +645,8 @@ def _problems(
     a colour term was fitted; ``colour``: the fitted colour term, its error
     and its limit (mag per mag), None when none was fitted; ``reduced``: the
     stretches astrometry solved (None: all), the others' flags not being
-    news (the stages before say why they were left out).
+    news (the stages before say why they were left out); ``ramp``: the
+    stretches of the start-of-scan ramp (:func:`_interval_lines`).
     """
 
     problems = []
@@ -629,7 +669,7 @@ def _problems(
                 "magnitudes are then of that band); check "
                 "stages.astrometry.reference.columns.magnitude"
             )
-    problems.extend(_interval_lines(intervals, reduced))
+    problems.extend(_interval_lines(intervals, reduced, ramp))
     # A trend past the limit but within its noise (a few hundred stars give
     # ~0.006 mag edge to edge on a 1024-column chip) is not reported.
     trend_err = trend.get("edge_to_edge_err", 0.0)
@@ -707,5 +747,6 @@ STAGE = Stage(
     #    stretches astrometry did not solve, one line per run of stretches
     #    flagged alike, and each stretch's PSF fluxes put on the apertures'
     #    scale (detect's psf_scale, psf_scale_shifts; intervals' psf_scale)
-    version=7,
+    # 8: PARTIAL_EXPOSURE stars (the start-of-scan ramp's) left out of the fit
+    version=8,
 )
