@@ -146,7 +146,14 @@ def make_night(
         Seconds by which the rows after the gap were really read later than
         their header times say, beyond the night's ``offsets.clock_offset``
         (the second segment's first DATE-OBS is that much early): their
-        stars are recorded ``segment_clock / line_time`` rows earlier.
+        stars are recorded ``segment_clock / line_time`` rows earlier.  The
+        camera reads the rows after the gap from that DATE-OBS on, every
+        true line time, and ingest places the first at night row
+        ``gap[1]`` by the header's: with ``offsets.line_time_scale`` ``e``
+        the rows after the gap are timed from ``gap[1]`` nominal line times
+        after the start, not ``gap[1]`` true ones, which puts their stars
+        ``gap[1] e / (1 + e)`` rows later than a clock running through the
+        gap would.
     """
     rng = np.random.default_rng(seed)
     site = Site(latitude=latitude, longitude=-70.5, height=1200.0, name="test site")
@@ -200,7 +207,8 @@ def make_night(
     segments = None
     if gap is not None:
         after_gap = r >= gap[1] - 0.5
-        r = np.where(after_gap, r - segment_clock / true.line_time, r)
+        restart = gap[1] * offsets.line_time_scale / (1.0 + offsets.line_time_scale)
+        r = np.where(after_gap, r + restart - segment_clock / true.line_time, r)
         on_chip &= (r < gap[0] - 0.5) | (r >= gap[1] - 0.5)
         segments = NightSegments(
             numbers=np.array([0, 1]),

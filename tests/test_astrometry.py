@@ -203,6 +203,44 @@ def test_the_jacobian_s_predictions_in_two_threads_are_those_in_one(monkeypatch)
     np.testing.assert_array_equal(jacobians[0], jacobians[1])
 
 
+def test_the_clock_and_line_time_columns_are_the_rows_derivatives():
+    """The analytic clock and line-time columns of parameter_jacobian equal the
+    rows' central differences (common practice), also for a segment whose
+    rows are timed from its own start (``segment_start``), whose clock moves
+    with the line time."""
+    from pipeline.stages.astrometry import _fit
+
+    _, _, _, nominal = _full_chip(LATITUDES[0])
+    ra, dec, t_mid = _stars_on_chip(nominal, 200)
+    predictor = GeometryPredictor(nominal)
+    tracks = predictor.tracks(ra, dec, t_mid)
+    segment = (np.arange(ra.size) % 2).astype(np.int64)
+    offsets = GeometryOffsets(
+        clock_offset=0.3,
+        line_time_scale=2e-4,
+        segment_clock=(0.0, 0.02),
+        segment_start=(0.0, 600.0),
+    )
+    names = ("clock_offset", "line_time_scale")
+    pred, row, column = _fit._model(predictor, tracks, offsets, segment)
+    jac = _fit.parameter_jacobian(
+        predictor, tracks, offsets, names, pred, row, column, segment, (1,)
+    )
+    n = ra.size
+    for j, (name, step) in enumerate((*zip(names, (1e-3, 1e-6), strict=True), ("seg", 1e-3))):
+        moved = []
+        for sign in (1.0, -1.0):
+            if name == "seg":
+                changed = dataclasses.replace(offsets, segment_clock=(0.0, 0.02 + sign * step))
+            else:
+                changed = dataclasses.replace(
+                    offsets, **{name: getattr(offsets, name) + sign * step}
+                )
+            moved.append(_fit._model(predictor, tracks, changed, segment)[1])
+        numeric = (moved[0] - moved[1]) / (2.0 * step)
+        np.testing.assert_allclose(jac[:n, j], numeric, rtol=1e-6, atol=1e-9)
+
+
 def test_many_stars_predictions_stay_on_one_thread(monkeypatch):
     """Above _THREADED_STARS (the detections' errors) the jacobian's predictions
     are made one at a time: two at once would hold both's temporaries at the

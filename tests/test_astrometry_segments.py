@@ -140,6 +140,39 @@ def test_a_right_clock_after_a_gap_fits_zero_and_costs_nothing():
     assert rms < 1.01 * np.sqrt(np.mean((d_plain / noise) ** 2))
 
 
+def test_a_camera_clock_off_its_line_time_needs_no_segment_clock():
+    """Each segment's rows are timed from its own first DATE-OBS.
+
+    A camera whose rows shift 300 ppm slower than its LINETIME says (a
+    clock 0.05 % off was seen on simulated nights) and whose DATE-OBS are
+    right: after a gap 7400 rows into the night its rows are timed afresh,
+    so the fitted line time alone places them.  The fit took the row clock
+    as running through the gap: it needed a segment clock of 2.2 rows (an
+    85 ms "DATE-OBS error", reported as a problem), and a segment with
+    too few stars for one of its own had every star 2.2 rows off.  Here
+    the second segment may have no clock of its own (min_segment_stars
+    beyond its stars), and its stars are placed as well as the first's.
+    """
+    offsets = GeometryOffsets(clock_offset=0.3, line_time_scale=300e-6, focal_scale=0.002)
+    night = make_night(50.0, offsets=offsets, gap=GAP, n_stars=2500, seed=11)
+    mine = np.count_nonzero(night.segment == 0)
+    solution = _solve(
+        night, segments=night.segments, det_segment=night.segment, min_segment_stars=mine + 1
+    )
+    assert solution.fit.segments == ()
+    scale, error = solution.offsets.line_time_scale, solution.fit.errors["line_time_scale"]
+    assert abs(scale - 300e-6) < 3.0 * error
+    d_ra, noise, segment = _along_ra(night, solution, night.segment)
+    for k in (0, 1):
+        part = segment == k
+        assert abs(np.mean(d_ra[part])) < 3.0 * np.std(d_ra[part]) / np.sqrt(part.sum())
+        assert np.sqrt(np.mean((d_ra[part] / noise[part]) ** 2)) < 1.2
+    # with a clock of its own, the segment's fits 0: its DATE-OBS is right
+    free = _solve(night, segments=night.segments, det_segment=night.segment)
+    assert free.fit.segments == (1,)
+    assert abs(free.offsets.segment_clock[1]) < 3.0 * free.fit.segment_errors[1]
+
+
 def test_segments_of_rows():
     """Rows in a segment, in a gap (the nearer segment) and in an overlap (the later)."""
     index = Table(
@@ -382,6 +415,13 @@ def test_a_jump_beyond_the_search_says_so():
     assert "within +-10 s found no significant clock offset" in second["note"]
     (line,) = segment_clock_problems(records)
     assert line.startswith("segment 1 (rows 7400-") and "found no clock" in line
+    # A sparse segment whose few stars all matched at the night's clock, the
+    # search finding no more: they agree with that clock, no news (a
+    # 512-column night's segment of 3 usable stars was reported "unchecked").
+    sparse = second | {"n_stars": 3, "search": second["search"] | {"pairs": 3}}
+    assert segment_clock_problems([records[0], sparse]) == []
+    missed = second | {"n_stars": 1, "search": second["search"] | {"pairs": 4}}
+    assert len(segment_clock_problems([records[0], missed])) == 1
 
 
 def test_search_segment_clock_finds_a_shift_along_the_scan():

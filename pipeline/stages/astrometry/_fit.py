@@ -314,9 +314,11 @@ def parameter_jacobian(
             d_row = np.full(row.shape, d_clock)
             d_col = np.zeros(row.shape)
         elif name == "line_time_scale":
+            # each segment's rows are timed from its own start (its clock
+            # holds -line_time_scale * segment_start)
             d_row = -(pred.t_mid - offsets.clock_offsets(segment)) / (
                 dt0 * (1.0 + offsets.line_time_scale) ** 2
-            )
+            ) - d_clock * offsets.segment_starts(segment)
             d_col = np.zeros(row.shape)
         else:
             step = _STEPS[name]
@@ -429,7 +431,7 @@ def _segment_clocks(offsets, pair_segment, free, clocks=None) -> GeometryOffsets
     size = max(int(pair_segment.max(initial=-1)) + 1, len(offsets.segment_clock))
     table = np.zeros(size)
     if clocks is None:
-        clocks = [offsets.clock_offsets([k]) - offsets.clock_offset for k in free]
+        clocks = offsets.segment_clocks(list(free))
     table[list(free)] = np.ravel(clocks) if free else []
     return dataclasses.replace(offsets, segment_clock=tuple(float(v) for v in table))
 

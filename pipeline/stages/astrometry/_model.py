@@ -67,6 +67,13 @@ _NO_TILT = np.eye(3)
 _NEWTON_STEPS = 3
 
 
+def _by_segment(table: tuple[float, ...], number: np.ndarray) -> np.ndarray:
+    """``table[number]``, 0 for numbers beyond the table (or negative)."""
+    values = np.r_[np.asarray(table, dtype=float), 0.0]
+    inside = (number >= 0) & (number < len(table))
+    return values[np.where(inside, number, -1)]
+
+
 @dataclass(frozen=True)
 class GeometryOffsets:
     """Departures of the real geometry from the nominal (configured) one.
@@ -94,6 +101,15 @@ class GeometryOffsets:
         the tuple add 0): a segment's rows are timed from its first block's
         DATE-OBS, which may be off on its own (see
         :mod:`~pipeline.stages.astrometry._segments`).
+    segment_start : tuple of float
+        Not fitted: the nominal time from night row 0 to each segment's
+        first row, seconds (its first night row times the nominal line
+        time), by segment number.  Each segment's rows are timed from its
+        own first DATE-OBS, so a line time off by ``line_time_scale`` moves
+        them by ``line_time_scale`` times their time since that segment's
+        start, not since the night's: the segment's clock gains
+        ``-line_time_scale * segment_start`` (:meth:`clock_offsets`), and
+        ``segment_clock`` is the error of its DATE-OBS alone.
     """
 
     clock_offset: float = 0.0
@@ -104,6 +120,12 @@ class GeometryOffsets:
     tilt_north: float = 0.0
     distortion_k1: float = 0.0
     segment_clock: tuple[float, ...] = ()
+    segment_start: tuple[float, ...] = ()
+
+    @property
+    def has_segments(self) -> bool:
+        """Whether rows of different segments may have different clocks."""
+        return bool(self.segment_clock) or any(self.segment_start)
 
     def clock_offsets(self, segment: ArrayLike | None = None) -> float | np.ndarray:
         """The clock offset of rows in the given segments, seconds.
@@ -111,20 +133,33 @@ class GeometryOffsets:
         Parameters
         ----------
         segment : array_like of int or None
-            Segment number of each point; None (or no ``segment_clock``):
-            the night's ``clock_offset`` alone.
+            Segment number of each point; None (or no segments,
+            :attr:`has_segments`): the night's ``clock_offset`` alone.
 
         Returns
         -------
         float or ndarray
-            ``clock_offset`` plus each point's ``segment_clock`` entry.
+            ``clock_offset`` plus each point's ``segment_clock`` entry, less
+            ``line_time_scale`` times its ``segment_start`` entry.
         """
-        if segment is None or not self.segment_clock:
+        if segment is None or not self.has_segments:
             return self.clock_offset
-        table = np.r_[np.asarray(self.segment_clock, dtype=float), 0.0]
         number = np.asarray(segment, dtype=np.intp)
-        inside = (number >= 0) & (number < len(self.segment_clock))
-        return self.clock_offset + table[np.where(inside, number, -1)]
+        return (
+            self.clock_offset
+            + _by_segment(self.segment_clock, number)
+            - self.line_time_scale * _by_segment(self.segment_start, number)
+        )
+
+    def segment_clocks(self, segment: ArrayLike) -> np.ndarray:
+        """Each point's ``segment_clock`` entry, seconds (0 without one): its DATE-OBS error."""
+        return _by_segment(self.segment_clock, np.asarray(segment, dtype=np.intp))
+
+    def segment_starts(self, segment: ArrayLike | None) -> float | np.ndarray:
+        """Each point's ``segment_start`` entry, seconds (0 without one)."""
+        if segment is None or not any(self.segment_start):
+            return 0.0
+        return _by_segment(self.segment_start, np.asarray(segment, dtype=np.intp))
 
     def apply(self, camera: Camera, line_time: float) -> tuple[Camera, float]:
         """The camera and line time these offsets describe, for a full :class:`TDIModel`.

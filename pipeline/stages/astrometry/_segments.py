@@ -10,6 +10,16 @@ segment along the scan by the same amount: 30 ms is 0.3" at latitude 45
 ascension, ``omega`` Earth's rotation rate, :data:`EARTH_ROTATION_RATE`), a
 hundred times the error of a well-measured night.
 
+Its rows are read every true line time from that DATE-OBS on, while ingest
+placed its first row at the night row its DATE-OBS gives at the header's
+line time: a line time off by a fraction ``e`` (a camera clock 300 ppm off)
+moves a row by ``e`` times its time since its own segment's start, not
+since the night's.  The fit times each segment so
+(:attr:`GeometryOffsets.segment_start`, :func:`segment_start_times`): the
+fitted line time places every segment, and a segment's own clock is the
+error of its DATE-OBS alone (timed as one clock through the gap, a 300 ppm
+line time needed 85 ms of "DATE-OBS error" after 7400 rows of 38 ms).
+
 So the fit gives each segment after the first a clock offset of its own, in
 :attr:`GeometryOffsets.segment_clock`, relative to the night's
 ``clock_offset``: the first segment's rows, timed from the night's first
@@ -47,7 +57,13 @@ from numpy.typing import ArrayLike
 from pipeline.geometry.optics import ARCSEC_PER_RADIAN, EARTH_ROTATION_RATE
 from pipeline.stages.astrometry._match import candidate_pairs, offset_peak, scaled_tree
 
-__all__ = ["NightSegments", "SegmentSearch", "search_segment_clock", "segment_clock_records"]
+__all__ = [
+    "NightSegments",
+    "SegmentSearch",
+    "search_segment_clock",
+    "segment_clock_records",
+    "segment_start_times",
+]
 
 #: Sigmas of chance pairs by which a search's peak must stand out (common
 #: practice for a detection among many trials; the night's search uses it too).
@@ -147,6 +163,34 @@ class NightSegments:
     def containing(self, row: int) -> int:
         """Segment number of one night row (see :meth:`of_rows`)."""
         return int(self.of_rows(np.array([float(row)]))[0])
+
+
+def segment_start_times(segments: NightSegments | None, line_time: float) -> tuple[float, ...]:
+    """Nominal seconds from night row 0 to each segment's first row, by segment number.
+
+    The ``segment_start`` of :class:`~pipeline.stages.astrometry._model.GeometryOffsets`:
+    a segment's rows are timed from its own first DATE-OBS, so a line time
+    off by a fraction ``e`` moves a row by ``e`` times its time since its
+    segment's start.  Numbers without a segment get 0.
+
+    Parameters
+    ----------
+    segments : NightSegments or None
+        The night's segments; None: one segment (an empty tuple).
+    line_time : float
+        The night's nominal line time, s.
+
+    Examples
+    --------
+    >>> nights = NightSegments(np.array([0, 1]), np.array([0, 3073]), np.array([1536, 6145]))
+    >>> segment_start_times(nights, 0.04)
+    (0.0, 122.92)
+    """
+    if segments is None or len(segments) < 2:
+        return ()
+    table = np.zeros(int(segments.numbers.max()) + 1)
+    table[segments.numbers] = segments.starts * float(line_time)
+    return tuple(float(v) for v in table)
 
 
 @dataclass(frozen=True)

@@ -47,6 +47,7 @@ from pipeline.stages.astrometry._segments import (
     SegmentSearch,
     search_segment_clock,
     segment_clock_records,
+    segment_start_times,
 )
 from pipeline.stages.astrometry._stats import residual_grid
 
@@ -397,7 +398,7 @@ def solve_night(
         pr = predictor.predict(ref_tracks, offsets)
         dt = predictor.line_time * (1.0 + offsets.line_time_scale)
         r = pr.rows(n_rows, dt, offsets.clock_offset)
-        if segments is not None and offsets.segment_clock:
+        if segments is not None and offsets.has_segments:
             r = pr.rows(n_rows, dt, offsets.clock_offsets(segments.of_rows(r)))
         c = pr.column
         if fit is not None and fit.wander is not None:
@@ -412,6 +413,7 @@ def solve_night(
         return ri, good_det[di], int(on_chip.sum())
 
     offsets = GeometryOffsets() if start is None else start
+    starts = segment_start_times(segments, predictor.line_time)
     ri, di, n_chip = match(offsets, match_radius)
     counts["reference_on_chip"] = n_chip
     counts["matched_nominal"] = int(ri.size)
@@ -429,6 +431,9 @@ def solve_night(
             raise _failure(counts, "the search found no significant common offset")
         radius = 2.0 * search.bin_size
         ri, di, _ = match(offsets, radius)
+    # every segment's rows timed from its own start (what the fits' line time
+    # scale moves them by)
+    offsets = dataclasses.replace(offsets, segment_start=starts)
     kwargs = {
         "sigma_row": sig_x,
         "sigma_column": sig_y,
@@ -774,9 +779,7 @@ class AstrometricSolution:
         numbers = [int(k) for k in self.segments.numbers]
         _, dec = self.frame.icrs_from_pixel(0.0, 0.5 * (self.frame.n_y - 1))
         reference = fit.reference_segment
-        clocks = np.broadcast_to(
-            self.offsets.clock_offsets(numbers) - self.offsets.clock_offset, (len(numbers),)
-        )
+        clocks = self.offsets.segment_clocks(numbers)
         return segment_clock_records(
             self.segments,
             [float(v) for v in clocks],
@@ -815,7 +818,7 @@ class AstrometricSolution:
 
     def _segment_rows(self, segment: np.ndarray | None) -> np.ndarray | float:
         """Rows by which each segment's own clock moves its points back along the scan."""
-        if segment is None or not self.offsets.segment_clock:
+        if segment is None or not self.offsets.has_segments:
             return 0.0
         extra = self.offsets.clock_offsets(segment) - self.offsets.clock_offset
         return extra / self.line_time

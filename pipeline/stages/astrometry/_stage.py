@@ -529,6 +529,9 @@ def segment_clock_problems(records: list[dict]) -> list[str]:
         solution corrects it; the line says by how much.  And one per
         segment whose stars missed at the night's clock and whose search
         along the scan found no clock either: its positions are unchecked.
+        A segment with too few stars for a clock of its own whose search
+        found no more pairs than matched at the night's clock is no news:
+        its stars agree with that clock.
     """
     lines = []
     for r in records:
@@ -546,7 +549,12 @@ def segment_clock_problems(records: list[dict]) -> list[str]:
                 "clock (parameters' segment_clocks); check the camera computer's clock, or "
                 "LINETIME if ingest finds the same jump at every block."
             )
-        elif search is not None and not search["found"] and not r["reference"]:
+        elif (
+            search is not None
+            and not search["found"]
+            and not r["reference"]
+            and r["n_stars"] < max(search["pairs"], 1)
+        ):
             lines.append(
                 f"{where}: {r['n_stars']} of its stars matched at the night's clock and a "
                 f"search along the scan within +-{search['range_s']:g} s found no clock "
@@ -825,5 +833,7 @@ STAGE = Stage(
     # 8: a stretch whose reference stars scatter beyond the night's common error
     # gives its positions' errors the difference (stretch_extra_error_px)
     # 9: PARTIAL_EXPOSURE (the start-of-scan ramp's stars) left out of the fit
-    version=9,
+    # 10: each segment's rows timed from its own start at the fitted line time
+    #     (GeometryOffsets.segment_start): a segment clock is its DATE-OBS's error
+    version=10,
 )
