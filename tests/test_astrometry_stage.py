@@ -455,27 +455,30 @@ def test_the_stage_recovers_a_mis_set_camera_from_the_raw_night(tmp_path, latitu
     assert status["catalog"].units["night"][0] == "done"
 
 
-def _passes_with_kernel_changes(monkeypatch, changes, *, max_passes):
+def _passes_with_kernel_changes(monkeypatch, changes, *, max_passes, rotations=None):
     """_solve_passes on a stub night whose solutions move the kernels by ``changes``
-    (px, one per pass; error 0.1 px, bright-star centroid noise 0.02 px)."""
-    import dataclasses
+    (px, one per pass; error 0.1 px, bright-star centroid noise 0.02 px) and
+    have the camera rotations ``rotations`` (arcsec, one per solution, error
+    1"; None: all 0)."""
     from types import SimpleNamespace
 
-    from pipeline.stages.astrometry import _stage
-
-    @dataclasses.dataclass
-    class Offsets:
-        rotation: float = 0.0
+    from pipeline.stages.astrometry import GeometryOffsets, _stage
 
     catalog = QTable(
         {"x_err": [0.02] * u.pix, "y_err": [0.02] * u.pix}, meta={"detect_options": {}}
     )
-    solved = SimpleNamespace(
-        solution=SimpleNamespace(fit=SimpleNamespace(n_used=5, error_floor=0.0), offsets=Offsets()),
-        catalog={"ref_index": np.array([0])},
-    )
+    angles = iter([0.0] * len(changes) if rotations is None else rotations)
+
+    def solve(*args, **kwargs):
+        fit = SimpleNamespace(n_used=5, error_floor=0.0, errors={"rotation": 1.0})
+        offsets = GeometryOffsets(rotation=next(angles))
+        return SimpleNamespace(
+            solution=SimpleNamespace(fit=fit, offsets=offsets),
+            catalog={"ref_index": np.array([0])},
+        )
+
     remaining = list(changes)
-    monkeypatch.setattr(_stage, "solve_catalog", lambda *a, **k: solved)
+    monkeypatch.setattr(_stage, "solve_catalog", solve)
     monkeypatch.setattr(_stage, "solved_kernels_of_stretches", lambda kernels, *a, **k: kernels)
     monkeypatch.setattr(_stage, "kernel_change", lambda a, b: remaining.pop(0))
     monkeypatch.setattr(_stage, "kernel_change_error", lambda *a, **k: 0.1)
@@ -515,6 +518,33 @@ def test_a_night_whose_kernels_settle_reports_nothing(monkeypatch):
     assert problems == []
     _, passes, problems = _passes_with_kernel_changes(monkeypatch, [0.01], max_passes=1)
     assert passes[0]["next"] == "none" and problems == []
+
+
+def test_a_geometry_still_moving_is_measured_again(monkeypatch):
+    """A solution far from the truth has an inflated covariance: on a simulated
+    night whose camera was turned 0.23 deg unknown to its config the second
+    solution moved the kernels by 0.47 +- 0.28 px, within 3 sigma, and the
+    passes stopped with the stars 48 mas off in Dec, though its rotation had
+    moved by 117", 35 of its errors.  A kernel-shaping parameter moved by
+    more than MOVED_SIGMA errors since the kernels' geometry makes the change
+    known; one within them does not (self-consistency)."""
+    from pipeline.stages.astrometry._stage import MOVED_SIGMA, geometry_moved
+
+    _, passes, _ = _passes_with_kernel_changes(
+        monkeypatch, [10.0, 0.2, 0.2], max_passes=3, rotations=[-670.0, -790.0, -791.0]
+    )
+    assert [p["next"] for p in passes] == [
+        "measure again with these kernels",
+        "measure again with these kernels",
+        "none",
+    ]
+    assert passes[1]["moved_sigma"] == {"rotation": 120.0} and passes[2]["moved_sigma"] == {}
+    from pipeline.stages.astrometry import GeometryOffsets
+
+    before, after = GeometryOffsets(clock_offset=1.0), GeometryOffsets(rotation=4.0)
+    errors = {"clock_offset": 1e-4, "rotation": 4.0 / (MOVED_SIGMA + 0.5)}
+    assert geometry_moved(before, after, errors) == {"rotation": MOVED_SIGMA + 0.5}
+    assert geometry_moved(before, after, errors | {"rotation": 1.0}) == {}  # 4 sigma
 
 
 def test_an_error_floor_beyond_the_limit_is_a_problem():

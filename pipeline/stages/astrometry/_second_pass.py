@@ -37,7 +37,12 @@ is it when the change is not known: below 3 sigma of its own uncertainty
 since kernels that follow the fit's noise move the centroids with it and the
 passes would chase that noise (on the demo night, whose config is right, the
 focal length and distortion walked off by 1-2 sigma a pass, 0.15 px of
-kernel change growing to 0.46 px over three passes).  A focal length off by
+kernel change growing to 0.46 px over three passes).  Unless the geometry
+itself moved by many of its errors since the kernels' (the stage's
+``geometry_moved``): a solution far from the truth has a covariance inflated
+by its misfit, which can hide a real change (0.47 +- 0.28 px on a night
+whose camera rotation, 0.23 deg off the config's, had just moved by 35 of
+its errors).  A focal length off by
 ``e`` changes the kernels by about ``N e`` rows (41 rows for the issue's
 ``e = 1 %`` over 4096 TDI rows, 0.04 px for ``e = 1e-5``), against bright
 stars' 0.01-0.05 px of centroid noise.

@@ -40,6 +40,7 @@ from pipeline.geometry.rectified import RectifiedFrame
 from pipeline.products import FLUX_EXTENSION
 from pipeline.reference import ReferenceOptions, read_reference, sky_band_for_night
 from pipeline.stages.astrometry._catalog import AstrometryOptions, solve_catalog
+from pipeline.stages.astrometry._model import GeometryOffsets
 from pipeline.stages.astrometry._second_pass import (
     centroid_noise,
     kernel_change,
@@ -63,6 +64,7 @@ __all__ = [
     "STAGE",
     "AstrometryStageOptions",
     "error_floor_problem",
+    "geometry_moved",
     "kernels_differ",
     "next_pass",
     "reference_columns",
@@ -372,7 +374,49 @@ def _kernel_tables(rectified, n_stretches: int) -> list:
     return [rectified[i]["smear_kernels"] for i in range(n_stretches)]
 
 
-def kernels_differ(change: float, error: float, threshold: float) -> bool:
+#: Errors by which a parameter that shapes the smear kernels must have moved
+#: since the geometry the kernels came from for the move to count as the
+#: solution still converging (:func:`geometry_moved`): far beyond the 1-2
+#: sigma a pass by which a right config's focal length and distortion walk.
+MOVED_SIGMA = 5.0
+
+
+def geometry_moved(before, after, errors: dict[str, float]) -> dict[str, float]:
+    """The kernel-shaping parameters that moved beyond :data:`MOVED_SIGMA` of their errors.
+
+    A solution far from the truth (a camera rotated 0.23 deg from the
+    config's tilts every track by 8 px over 2048 TDI rows) is fitted to
+    centroids measured with wrong kernels, and its covariance is inflated by
+    the misfit; carried to the kernels it can make a real change look
+    unknown (0.47 +- 0.28 px on a simulated night whose rotation had just
+    moved by 117", 35 of its errors), and the passes stopped with the
+    stars 48 mas off in Dec.  A parameter that moved by many of its errors
+    since the kernels' geometry says the change is real.  The clocks are
+    left out: they move the tracks, not their shapes.
+
+    Parameters
+    ----------
+    before, after : GeometryOffsets
+        The geometry the kernels detect used came from, and the new solution's.
+    errors : dict of str to float
+        The new solution's 1-sigma errors of its fitted parameters.
+
+    Returns
+    -------
+    dict of str to float
+        Each such parameter's move in units of its error.
+    """
+    moved = {}
+    for name, error in errors.items():
+        if name == "clock_offset" or not np.isfinite(error) or error <= 0:
+            continue
+        sigmas = abs(getattr(after, name) - getattr(before, name)) / error
+        if sigmas > MOVED_SIGMA:
+            moved[name] = round(float(sigmas), 1)
+    return moved
+
+
+def kernels_differ(change: float, error: float, threshold: float, moved: bool = False) -> bool:
     """Whether the solved geometry's smear kernels differ from those detect used.
 
     Parameters
@@ -385,15 +429,19 @@ def kernels_differ(change: float, error: float, threshold: float) -> bool:
         Its 1-sigma uncertainty from the solution's covariance, pixels.
     threshold : float
         ``second_pass_noise`` times the bright stars' centroid noise, pixels.
+    moved : bool, optional
+        Whether the geometry moved beyond its errors since the kernels'
+        (:func:`geometry_moved`): the change is then known whatever its
+        uncertainty says.
 
     Returns
     -------
     bool
         True for a change both larger than the bright stars' noise and known:
-        above 3 sigma of the solution's own uncertainty (common practice),
-        else the passes would chase the fit's noise.
+        above 3 sigma of the solution's own uncertainty (common practice), or
+        ``moved``, else the passes would chase the fit's noise.
     """
-    return bool(change > threshold and change > 3.0 * error)
+    return bool(change > threshold and (change > 3.0 * error or moved))
 
 
 def next_pass(
@@ -637,6 +685,9 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag, 
             np.asarray(solved.catalog["ref_index"]) >= 0,
         )
         threshold = options.second_pass_noise * noise
+        moved = geometry_moved(
+            start or GeometryOffsets(), solved.solution.offsets, solved.solution.fit.errors
+        )
         record = {
             "pass": len(passes) + 1,
             "kernels_from": "config" if not passes else f"pass {len(passes)}",
@@ -646,12 +697,13 @@ def _solve_passes(inputs, stretches, model, frame, options, reference, ref_mag, 
             "centroid_noise_px": round(noise, 4),
             "error_floor_px": round(float(solved.solution.fit.error_floor), 4),
             "threshold_px": round(threshold, 4),
+            "moved_sigma": moved,
             "geometry": {
                 k: [float(e) for e in v] if isinstance(v, tuple) else float(v)
                 for k, v in dataclasses.asdict(solved.solution.offsets).items()
             },
         }
-        wanted = kernels_differ(change, error, threshold)
+        wanted = kernels_differ(change, error, threshold, bool(moved))
         deconvolved = wanted and _deconvolved(inputs["rectify"], len(stretches))
         again, record["next"], problem = next_pass(
             wanted, record["pass"], options.max_passes, deconvolved=deconvolved
@@ -835,5 +887,7 @@ STAGE = Stage(
     # 9: PARTIAL_EXPOSURE (the start-of-scan ramp's stars) left out of the fit
     # 10: each segment's rows timed from its own start at the fitted line time
     #     (GeometryOffsets.segment_start): a segment clock is its DATE-OBS's error
-    version=10,
+    # 11: another pass also when the geometry moved beyond its errors since the
+    #     kernels' (geometry_moved; passes' moved_sigma)
+    version=11,
 )
