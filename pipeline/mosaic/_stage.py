@@ -108,6 +108,7 @@ TILE_STAGE = Stage(
     # 12: the catalogue's flags, group (and detect's other integers) integers
     # when read, not dimensionless Quantities (floats)
     # 13: detect's psf_scale, psf_scale_err columns (NaN: not measured on a tile)
-    version=13,
+    # 14: detect's flags PARTIAL_EXPOSURE (a core on LOW_EXPOSURE) and TRAIL
+    version=14,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )

@@ -4,7 +4,7 @@ Which detections the fit sees
 -----------------------------
 Every detection gets a solved position, but the geometry is fitted only to
 detections whose centroid and error detect could measure: not flagged
-SATURATED, EDGE, COSMIC_RAY, FIT_FAILED or PARTIAL_EXPOSURE
+SATURATED, EDGE, COSMIC_RAY, FIT_FAILED, PARTIAL_EXPOSURE or TRAIL
 (``fit_exclude_flags``).  A saturated core, a stamp cut by the chip edge (the
 star's track partly off the chip) or a cosmic-ray hit in the core moves the
 fitted centroid by 0.01 to 0.1 px while the formal error of so bright a star
@@ -87,7 +87,7 @@ class AstrometryOptions(BaseModel):
         0.0, ge=0, description="Detections below this S/N are solved but not used in the fit."
     )
     fit_exclude_flags: tuple[str, ...] = Field(
-        ("SATURATED", "EDGE", "COSMIC_RAY", "FIT_FAILED", "PARTIAL_EXPOSURE"),
+        ("SATURATED", "EDGE", "COSMIC_RAY", "FIT_FAILED", "PARTIAL_EXPOSURE", "TRAIL"),
         description="Detect flags (SourceFlag names) of detections solved but not fitted: "
         "their centroids are off by more than their errors say.",
     )

@@ -889,5 +889,6 @@ STAGE = Stage(
     #     (GeometryOffsets.segment_start): a segment clock is its DATE-OBS's error
     # 11: another pass also when the geometry moved beyond its errors since the
     #     kernels' (geometry_moved; passes' moved_sigma)
-    version=11,
+    # 12: TRAIL (sources on a satellite's trail) left out of the fit
+    version=12,
 )

@@ -97,6 +97,12 @@ from pipeline.stages.detect._saturated import (
     saturated_footprints,
 )
 from pipeline.stages.detect._sky import sky_errors
+from pipeline.stages.detect._trails import (
+    TRAIL_LENGTH_FWHM,
+    kernel_length,
+    on_trails,
+    trail_segments,
+)
 
 if TYPE_CHECKING:
     from astropy.table import QTable, Table
@@ -888,6 +894,17 @@ def detect(
             stacklevel=2,
         )
         return DetectResult(_empty_catalog(radii), empty_seeing)
+    # Satellite trails: the long thin segments, before the merges change them
+    longest = 0.0 if deconvolved else kernel_length(smear_kernels["dx"], smear_kernels["dy"])
+    trails = trail_segments(segm, parent, mask, TRAIL_LENGTH_FWHM * profile.fwhm + 2.0 * longest)
+    if trails:
+        log.info(
+            "%d trail(s) across the stretch at night columns [%d, %d): their sources are "
+            "flagged TRAIL",
+            len(trails),
+            x_start,
+            x_start + image.shape[1],
+        )
     # The fits leave the clipped pixels out (NaN variance).  float64 planes:
     # from here on they are NaN in ``var`` itself (held aside and put back
     # before the apertures, its only later reader; the filters use
@@ -1278,6 +1295,10 @@ def detect(
         [fits_["response"][i] for i in idx],
     )
     src = np.asarray(order)[idx]
+    flags = fits_["flags"][idx]
+    if trails:
+        trail = on_trails(trails, x, y, profile.fwhm)
+        flags = np.where(trail, flags | int(SourceFlag.TRAIL), flags)
     values = {
         "x": x + x_start,
         "y": y,
@@ -1287,7 +1308,7 @@ def detect(
         "flux_psf_err": fits_["flux_err"][idx],
         "chi2": fits_["chi2"][idx],
         "group": fits_["group"][idx],
-        "flags": fits_["flags"][idx],
+        "flags": flags,
         "mask_near": fits_["mask_near"][idx],
         "mask_core": fits_["mask_core"][idx],
         "fwhm": shape_cols[0][src],
@@ -1905,6 +1926,7 @@ STAGE = Stage(
     #     psf_scale_aperture's corrected fluxes to PSF fluxes of its bright
     #     isolated unflagged stars (every other column unchanged)
     # 23: flag PARTIAL_EXPOSURE, a star whose core lies in the start-of-scan ramp
-    version=23,
+    # 24: flag TRAIL, a source on a satellite's trail (long thin segments)
+    version=24,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

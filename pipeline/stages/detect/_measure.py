@@ -88,6 +88,12 @@ class SourceFlag(enum.IntFlag):
         the track (by hundreds of mas on the curved tracks far from the
         equator) and the flux by a few per cent.  The geometry's and the zero
         point's fits leave such stars out.
+    TRAIL
+        The source lies on a satellite's or aircraft's trail (within a seeing
+        FWHM of a long, thin segment of the first search,
+        :mod:`~pipeline.stages.detect._trails`): a piece of the trail, or a
+        star measured with the trail's light.  The astrometric and zero-point
+        fits leave it out.
     """
 
     SATURATED = 1 << 0
@@ -99,6 +105,7 @@ class SourceFlag(enum.IntFlag):
     FIT_FAILED = 1 << 6
     UNRESOLVED = 1 << 7
     PARTIAL_EXPOSURE = 1 << 8
+    TRAIL = 1 << 9
 
 
 #: Largest distance between a fit's smear-kernel samples, in seeing FWHMs

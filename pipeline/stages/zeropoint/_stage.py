@@ -60,6 +60,7 @@ _DOUBTFUL = (
     | SourceFlag.COSMIC_RAY
     | SourceFlag.FIT_FAILED
     | SourceFlag.PARTIAL_EXPOSURE
+    | SourceFlag.TRAIL
 )
 
 
@@ -748,5 +749,6 @@ STAGE = Stage(
     #    flagged alike, and each stretch's PSF fluxes put on the apertures'
     #    scale (detect's psf_scale, psf_scale_shifts; intervals' psf_scale)
     # 8: PARTIAL_EXPOSURE stars (the start-of-scan ramp's) left out of the fit
-    version=8,
+    # 9: TRAIL stars (on a satellite's trail) left out of the fit
+    version=9,
 )
