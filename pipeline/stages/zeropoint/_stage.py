@@ -568,6 +568,10 @@ def _ramp_stars(flags, measured, t, edges) -> np.ndarray:
         Their times (:func:`column_times`), s.
     edges : ndarray, shape (n_stretches + 1,)
         The stretches' time edges, s.
+
+    Returns
+    -------
+    ndarray of bool, shape (n_stretches,)
     """
     k = np.searchsorted(edges, t, side="right") - 1
     inside = measured & (k >= 0) & (k < len(edges) - 1)
