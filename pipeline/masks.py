@@ -66,6 +66,11 @@ class MaskBit(enum.IntFlag):
         Set by the science stage: the pixel lies in a stretch whose zero point
         is unreliable (a cloud, a jump in the stars' scatter) or was bridged
         from its neighbours for want of reference stars.  Values are kept.
+    TRAIL
+        Set by the science stage: the pixel lies on a satellite's or
+        aircraft's trail that detect found in the stretch (within a seeing
+        FWHM of the trail's band; detect's ``trails`` product).  Values are
+        kept; the mosaic leaves such pixels out of its co-adds by default.
     NIGHT_LEFT_OUT
         Set by the mosaic on a tile: a night that has data here was left out
         of the co-add, rejected as an outlier across the nights (a satellite
@@ -86,6 +91,7 @@ class MaskBit(enum.IntFlag):
     OUTSIDE = 1 << 8
     ZERO_POINT = 1 << 9
     NIGHT_LEFT_OUT = 1 << 10
+    TRAIL = 1 << 11
 
 
 #: Bits of pixels without data: image and variance NaN.
@@ -105,6 +111,7 @@ BIT_MEANINGS: dict[MaskBit, str] = {
     MaskBit.OUTSIDE: "rectify drew on pixels beyond the data",
     MaskBit.ZERO_POINT: "zero point unreliable or interpolated",
     MaskBit.NIGHT_LEFT_OUT: "a night with data here left out of the co-add",
+    MaskBit.TRAIL: "on a satellite or aircraft trail",
 }
 
 

@@ -14,7 +14,13 @@ import numpy as np
 
 from pipeline.masks import MaskBit
 from pipeline.stages.detect import SourceFlag, detect
-from pipeline.stages.detect._trails import kernel_length, on_trails, trail_segments
+from pipeline.stages.detect._trails import (
+    kernel_length,
+    on_trails,
+    trail_pixels,
+    trail_segments,
+    trail_table,
+)
 from tests._detect_scene import render_scene
 
 #: Seeing FWHM of the scenes, px.
@@ -36,10 +42,11 @@ def _with_trail(scene, start, stop, peak, seed=3):
     return scene.image + light + noise, scene.variance + light
 
 
-def _detect(image, variance, mask, kernels):
+def _detect(image, variance, mask, kernels, result=False):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return detect(image, variance, mask, kernels, fwhm_guess=FWHM).catalog
+        out = detect(image, variance, mask, kernels, fwhm_guess=FWHM)
+    return out if result else out.catalog
 
 
 def test_sources_on_a_trail_are_flagged_and_the_stars_beside_it_not():
@@ -54,7 +61,19 @@ def test_sources_on_a_trail_are_flagged_and_the_stars_beside_it_not():
     scene = render_scene(x, y, None, snr=150.0, shape=(192, 1000), seed=11)
     start, stop = (150.0, 30.0), (750.0, 180.0)
     image, variance = _with_trail(scene, start, stop, peak=60.0)
-    catalog = _detect(image, variance, scene.mask, scene.kernels)
+    result = _detect(image, variance, scene.mask, scene.kernels, result=True)
+    catalog = result.catalog
+    # the trail itself: its axis along the drawn line, its length the line's
+    # and what the matched filter spreads its ends by (the scene's smear
+    # kernel, up to 12 px long, and the seeing)
+    (found,) = result.trails
+    assert abs(abs(found.uy / found.ux) - 0.25) < 0.01
+    assert 0.0 < 2.0 * found.half_length - np.hypot(600.0, 150.0) < 2.0 * (12.0 + FWHM)
+    # as detect's product, in night columns: the pixels it covers include the
+    # drawn line's middle, and none of the stars away from it
+    table = trail_table(result.trails, 0.0, FWHM)
+    on = trail_pixels(table, np.arange(1000.0), 192)
+    assert on[105, 450] and not on[40, 100] and not on[150, 300]
     flags = np.asarray(catalog["flags"])
     trail = (flags & int(SourceFlag.TRAIL)) != 0
     cx, cy = np.asarray(catalog["x"].value), np.asarray(catalog["y"].value)

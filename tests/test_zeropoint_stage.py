@@ -22,6 +22,7 @@ from pipeline.products import image_hdulist, night_grid_header
 from pipeline.stages import PROBLEMS, check_graph, science, zeropoint
 from pipeline.stages.base import BLOCK_INDEX, RAW_FILES, Stage, StageContext, Stretch
 from pipeline.stages.detect import SourceFlag
+from pipeline.stages.detect._trails import trail_table
 from pipeline.stages.zeropoint import ZeroPointFlag, ZeroPointOptions
 
 LINE_TIME = 0.1  # s
@@ -470,7 +471,14 @@ def _kernels(stretch: int) -> Table:
 
 
 def _science(
-    stretch, zero_point_mag, flags=0, interpolated=False, fwhm=2.5, product="image", beta=None
+    stretch,
+    zero_point_mag,
+    flags=0,
+    interpolated=False,
+    fwhm=2.5,
+    product="image",
+    beta=None,
+    trails=(),
 ):
     grid = QTable(
         {
@@ -512,7 +520,7 @@ def _science(
         inputs={
             "ingest": {BLOCK_INDEX: block_index()},
             "rectify": {"image": _rectified(stretch, flux), "smear_kernels": _kernels(stretch)},
-            "detect": {"seeing": seeing},
+            "detect": {"seeing": seeing, "trails": trail_table(list(trails), 0.0, fwhm)},
             "astrometry": {"wcs": solved},
             "zeropoint": {"zero_point": grid, "intervals": intervals},
         },
@@ -553,6 +561,25 @@ def test_the_calibrated_image_sums_to_the_star_magnitude_at_the_fixed_zero_point
     assert hdul["FLUX"].header["CRVAL1A"] == STRETCH_ROWS
     assert hdul["FLUX"].header["SEEING"] == pytest.approx(2.5, abs=1e-3)
     assert not np.any(hdul["FLAGS"].data)
+
+
+def test_pixels_on_a_trail_carry_the_trail_bit():
+    """detect's trails product marks the science image's pixels within reach
+    (the seeing FWHM) of each trail's band TRAIL, and no others; the values
+    are kept (self-consistency: a trail along the scan through the
+    stretch's rectified rows 10-12, its centre at night column 3030)."""
+    from pipeline.stages.detect._trails import Trail
+
+    x_start = STRETCH_ROWS  # the stretch's first night column (see _rectified)
+    trail = Trail(x=x_start + 30.0, y=11.0, ux=1.0, uy=0.0, half_length=20.0, half_width=1.0)
+    plain = _science(1, 24.0)
+    hdul = _science(1, 24.0, trails=[trail])
+    on = has_bits(hdul["FLAGS"].data, MaskBit.TRAIL)
+    rows, cols = np.nonzero(on)
+    # |y - 11| <= 1 + 2.5 and |x - 3030| <= 20 + 2.5, in the image's own pixels
+    assert set(rows) == set(range(8, 15)) and cols.min() == 8 and cols.max() == 52
+    np.testing.assert_array_equal(hdul["FLUX"].data, plain["FLUX"].data)
+    assert hdul["FLAGS"].header["FLAGBITB"] == "TRAIL"
 
 
 def test_pixels_of_an_unreliable_stretch_carry_the_zero_point_bit():
@@ -648,7 +675,10 @@ def test_the_products_survive_the_store_and_feed_the_science_stage(night, tmp_pa
                 "image": _rectified(CLOUD_STRETCH, flux, star_x),
                 "smear_kernels": _kernels(CLOUD_STRETCH),
             },
-            "detect": {"seeing": Table({"fwhm": [2.5] * u.pix})},
+            "detect": {
+                "seeing": Table({"fwhm": [2.5] * u.pix}),
+                "trails": trail_table([], 0.0, 2.5),
+            },
             "astrometry": {"wcs": {"s0002": [["CTYPE1", "RA---TAN"], ["CTYPE2", "DEC--TAN"]]}},
             "zeropoint": back,
         },

@@ -130,7 +130,16 @@ class CoaddOptions(BaseModel):
         "(sky level) before rejecting and averaging.",
     )
     ignore_flags: tuple[str, ...] = Field(
-        ("SATURATED", "BLEED", "BAD_COLUMN", "COSMIC_RAY", "NONFINITE", "GAP", "OUTSIDE"),
+        (
+            "SATURATED",
+            "BLEED",
+            "BAD_COLUMN",
+            "COSMIC_RAY",
+            "NONFINITE",
+            "GAP",
+            "OUTSIDE",
+            "TRAIL",
+        ),
         description="Flag names (pipeline.masks.MaskBit) whose pixels are left out of the co-add.",
     )
 

@@ -109,6 +109,7 @@ TILE_STAGE = Stage(
     # when read, not dimensionless Quantities (floats)
     # 13: detect's psf_scale, psf_scale_err columns (NaN: not measured on a tile)
     # 14: detect's flags PARTIAL_EXPOSURE (a core on LOW_EXPOSURE) and TRAIL
-    version=14,
+    # 15: the science images' TRAIL pixels left out (ignore_flags)
+    version=15,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )

@@ -7,7 +7,9 @@ interpolated; :func:`~pipeline.stages.zeropoint.column_times`), so that a
 source of magnitude ``m`` sums to ``10**(0.4 (PHOTZP - m))`` on every night
 and nights can be stacked.  The variance is multiplied by the factor's
 square; the flags are carried, plus :attr:`~pipeline.masks.MaskBit.ZERO_POINT`
-on every pixel of a stretch whose zero point the zeropoint stage flagged.
+on every pixel of a stretch whose zero point the zeropoint stage flagged, and
+:attr:`~pipeline.masks.MaskBit.TRAIL` on the pixels of the satellite trails
+detect found (its ``trails`` product).
 The solved WCS of astrometry's ``wcs`` product replaces rectify's nominal
 one (the alternate ``NIGHT`` grid stays).  Rectify's ``smear_kernels`` table
 goes beside the image unchanged (night pixels, as detect reads it): a
@@ -68,6 +70,7 @@ from pipeline.products import (
     night_column,
 )
 from pipeline.stages.base import BLOCK_INDEX, Stage
+from pipeline.stages.detect._trails import trail_pixels
 from pipeline.stages.zeropoint import column_times, night_line_time, scale_to_zero_point
 
 if TYPE_CHECKING:
@@ -242,6 +245,9 @@ def _run(*, inputs, options: ScienceOptions, context) -> dict:
         exposure=exposure,
         unreliable=bool(flags) or interpolated,
     )
+    trails = inputs["detect"]["trails"]
+    if len(trails):
+        mask[trail_pixels(trails, x, mask.shape[0])] |= MASK_DTYPE.type(MaskBit.TRAIL)
     solved = inputs["astrometry"]["wcs"].get(stretch.id)
     if solved is None:
         raise ValueError(
@@ -299,6 +305,7 @@ STAGE = Stage(
     # 2: the ZPMED card, by which the mosaic compares transparency; 3: rectify's
     # smear kernels beside the image, for the mosaic's tile catalogues;
     # 4: the SEEBETA card (detect's Moffat index), which the mosaic's seeing mix uses
-    version=4,
+    # 5: TRAIL on the pixels of detect's trails
+    version=5,
     description="Calibrated images at one fixed zero point, with the solved WCS.",
 )

@@ -99,9 +99,11 @@ from pipeline.stages.detect._saturated import (
 from pipeline.stages.detect._sky import sky_errors
 from pipeline.stages.detect._trails import (
     TRAIL_LENGTH_FWHM,
+    Trail,
     kernel_length,
     on_trails,
     trail_segments,
+    trail_table,
 )
 
 if TYPE_CHECKING:
@@ -249,11 +251,15 @@ class DetectResult:
         Seeing FWHM of the stretch and per band of rows.
     problems : list of str
         One line per problem with the input.
+    trails : list of Trail
+        The satellite trails found (array pixels; :func:`trail_table` makes
+        them a table).
     """
 
     catalog: QTable
     seeing: Table
     problems: list[str] = field(default_factory=list)
+    trails: list[Trail] = field(default_factory=list)
 
 
 def _start_positions(
@@ -1394,7 +1400,7 @@ def detect(
     if seeing_shape == "moffat":
         catalog.meta["seeing_beta"] = beta_used
     fit = beta_stars.get("fit", (np.nan, np.nan))
-    return DetectResult(catalog, _seeing_table(seeing_rows, beta_used, fit))
+    return DetectResult(catalog, _seeing_table(seeing_rows, beta_used, fit), trails=trails)
 
 
 #: Largest fraction of the bright sources (S/N >= 50) flagged UNRESOLVED for
@@ -1811,7 +1817,11 @@ def detect_stretch(
     seeing["x_start"] = np.full(len(seeing), own_span[0]) * u.pix
     seeing["x_stop"] = np.full(len(seeing), own_span[1]) * u.pix
     seeing.meta.update(seeing_shape=options.seeing_shape, moffat_beta=options.moffat_beta)
-    out = {"catalog": catalog, "seeing": seeing}
+    out = {
+        "catalog": catalog,
+        "seeing": seeing,
+        "trails": trail_table(result.trails, padded.x_start, result.seeing["fwhm"][0]),
+    }
     if result.problems:
         out[PROBLEMS] = list(result.problems)
     return out
@@ -1927,6 +1937,7 @@ STAGE = Stage(
     #     isolated unflagged stars (every other column unchanged)
     # 23: flag PARTIAL_EXPOSURE, a star whose core lies in the start-of-scan ramp
     # 24: flag TRAIL, a source on a satellite's trail (long thin segments)
-    version=24,
+    # 25: the trails found, a product of their own (trails.ecsv)
+    version=25,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

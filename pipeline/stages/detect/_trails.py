@@ -38,7 +38,9 @@ __all__ = [
     "Trail",
     "kernel_length",
     "on_trails",
+    "trail_pixels",
     "trail_segments",
+    "trail_table",
 ]
 
 #: Shortest trail, seeing FWHMs (plus twice the longest smear kernel).
@@ -181,3 +183,94 @@ def on_trails(trails: list[Trail], x: np.ndarray, y: np.ndarray, reach: float) -
         across = -(x - t.x) * t.uy + (y - t.y) * t.ux
         hit |= (np.abs(along) <= t.half_length + reach) & (np.abs(across) <= t.half_width + reach)
     return hit
+
+
+def trail_table(trails: list[Trail], x_start: float, fwhm: float):
+    """The trails as detect's ``trails`` product, in the night's rectified pixels.
+
+    Parameters
+    ----------
+    trails : list of Trail
+        :func:`trail_segments` of a stretch's arrays.
+    x_start : float
+        Night column of the arrays' first column.
+    fwhm : float
+        The stretch's seeing FWHM, px: the reach of a trail beyond its band
+        (``reach``), within which a star is on it.
+
+    Returns
+    -------
+    astropy.table.Table
+        Columns ``x``, ``y`` (centre), ``ux``, ``uy`` (unit vector along),
+        ``half_length``, ``half_width``, ``reach``; no rows without trails.
+    """
+    from astropy import units as u
+    from astropy.table import Table
+
+    reach = float(np.asarray(getattr(fwhm, "value", fwhm)))
+    reach = reach if np.isfinite(reach) else 0.0  # no seeing fitted: the band alone
+    table = Table(
+        {
+            "x": [t.x + float(x_start) for t in trails],
+            "y": [t.y for t in trails],
+            "ux": [t.ux for t in trails],
+            "uy": [t.uy for t in trails],
+            "half_length": [t.half_length for t in trails],
+            "half_width": [t.half_width for t in trails],
+            "reach": [reach] * len(trails),
+        },
+        dtype=[float] * 7,
+    )
+    for name in ("x", "y", "half_length", "half_width", "reach"):
+        table[name].unit = u.pix
+    table.meta["description"] = (
+        "satellite or aircraft trails across the stretch (detect's _trails): a band of "
+        "half_width about the line through (x, y) along (ux, uy), half_length either way; "
+        "a source within reach (the seeing FWHM) of it is flagged TRAIL"
+    )
+    return table
+
+
+def trail_pixels(trails, x: np.ndarray, n_y: int) -> np.ndarray:
+    """Pixels on the trails of a ``trails`` table, as a boolean image.
+
+    Parameters
+    ----------
+    trails : astropy.table.Table
+        :func:`trail_table` (night pixels).
+    x : ndarray of float, shape (n_x,)
+        Night column of each of the image's columns.
+    n_y : int
+        The image's rows.
+
+    Returns
+    -------
+    ndarray of bool, shape (n_y, n_x)
+        True within ``reach`` of each trail's band.
+    """
+    x = np.asarray(x, float)
+    on = np.zeros((n_y, x.size), bool)
+    for row in trails:
+        cx, cy, ux, uy = (
+            float(np.asarray(getattr(row[k], "value", row[k]))) for k in ("x", "y", "ux", "uy")
+        )
+        half_length, half_width, reach = (
+            float(np.asarray(getattr(row[k], "value", row[k])))
+            for k in ("half_length", "half_width", "reach")
+        )
+        along_max, across_max = half_length + reach, half_width + reach
+        # the band's bounding box, then the pixels in it
+        ends_x = cx + np.array([-1.0, 1.0]) * along_max * ux
+        ends_y = cy + np.array([-1.0, 1.0]) * along_max * uy
+        cols = np.flatnonzero((x >= ends_x.min() - across_max) & (x <= ends_x.max() + across_max))
+        y0 = max(int(np.floor(ends_y.min() - across_max)), 0)
+        y1 = min(int(np.ceil(ends_y.max() + across_max)) + 1, n_y)
+        if cols.size == 0 or y0 >= y1:
+            continue
+        yy = np.arange(y0, y1, dtype=float)[:, None]
+        xx = x[cols][None, :]
+        along = (xx - cx) * ux + (yy - cy) * uy
+        across = -(xx - cx) * uy + (yy - cy) * ux
+        band = (np.abs(along) <= along_max) & (np.abs(across) <= across_max)
+        on[y0:y1, cols] |= band
+    return on
