@@ -3,11 +3,13 @@
 A satellite crosses the chip in a fraction of a second and leaves a straight
 line of light tens to thousands of pixels long and a seeing wide.  The search
 takes it for one long segment, which the deblending cuts into a chain of
-"sources" (a simulated 2048-column night: 127 false sources along one trail),
+"sources" (a simulated 1024-column night: 127 false sources along one trail),
 and a real star under it is measured with the trail's light.  Masking linear
 features before measuring is common practice; here the sources on a trail are
 flagged TRAIL (they stay in the catalogue: a star under a trail cannot be told
 from a piece of it), and the astrometric and zero-point fits leave them out.
+Detect writes the trails (:func:`trail_table`, its ``trails`` product), and
+the science stage marks their pixels TRAIL (:func:`trail_pixels`).
 
 A segment (the whole segment before deblending) is a trail when it is long,
 :data:`TRAIL_LENGTH_FWHM` seeing FWHMs plus twice the stretch's longest smear
@@ -15,10 +17,10 @@ kernel, and thin, its length at least :data:`TRAIL_ELONGATION` times its
 width (along and across the axis of its pixels' second moments; the width
 from their median distance from the axis, which the stars the trail's
 segment swallowed barely move).  A source is on it within a seeing FWHM of
-that band.  A star's streak is at most a
-kernel and a few FWHMs long; a blend of stars or a galaxy is not that thin.
-A saturated star's bleed trail runs along the scan as thin and long, but its
-segment holds the saturated and bleed pixels: a segment with more than
+that band.  A star's streak is at most a kernel and a few FWHMs long; a
+blend of stars or a galaxy is not that thin.  A saturated star's bleed
+trail runs along the scan as thin and long, but its segment holds the
+saturated and bleed pixels: a segment with more than
 :data:`CLIPPED_FRACTION` of them is not a trail.  A trail too faint to make
 one long segment (broken into short pieces) is not found.
 """
