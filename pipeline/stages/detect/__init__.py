@@ -254,12 +254,16 @@ class DetectResult:
     trails : list of Trail
         The satellite trails found (array pixels; :func:`trail_table` makes
         them a table).
+    trail_reach : float
+        Pixels beyond a trail's band within which a source is on it (the
+        seeing FWHM of the last fits).
     """
 
     catalog: QTable
     seeing: Table
     problems: list[str] = field(default_factory=list)
     trails: list[Trail] = field(default_factory=list)
+    trail_reach: float = 0.0
 
 
 def _start_positions(
@@ -1400,7 +1404,12 @@ def detect(
     if seeing_shape == "moffat":
         catalog.meta["seeing_beta"] = beta_used
     fit = beta_stars.get("fit", (np.nan, np.nan))
-    return DetectResult(catalog, _seeing_table(seeing_rows, beta_used, fit), trails=trails)
+    return DetectResult(
+        catalog,
+        _seeing_table(seeing_rows, beta_used, fit),
+        trails=trails,
+        trail_reach=float(profile.fwhm),
+    )
 
 
 #: Largest fraction of the bright sources (S/N >= 50) flagged UNRESOLVED for
@@ -1820,7 +1829,7 @@ def detect_stretch(
     out = {
         "catalog": catalog,
         "seeing": seeing,
-        "trails": trail_table(result.trails, padded.x_start, result.seeing["fwhm"][0]),
+        "trails": trail_table(result.trails, padded.x_start, result.trail_reach),
     }
     if result.problems:
         out[PROBLEMS] = list(result.problems)
@@ -1938,6 +1947,8 @@ STAGE = Stage(
     # 23: flag PARTIAL_EXPOSURE, a star whose core lies in the start-of-scan ramp
     # 24: flag TRAIL, a source on a satellite's trail (long thin segments)
     # 25: the trails found, a product of their own (trails.ecsv)
-    version=25,
+    # 26: the trails' reach is the FWHM the sources were flagged with (the
+    #     last fits'), not the seeing table's first row
+    version=26,
     description="Find sources; measure smear-aware PSF positions and fluxes, apertures, flags.",
 )

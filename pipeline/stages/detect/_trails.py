@@ -197,8 +197,8 @@ def trail_table(trails: list[Trail], x_start: float, fwhm: float):
     x_start : float
         Night column of the arrays' first column.
     fwhm : float
-        The stretch's seeing FWHM, px: the reach of a trail beyond its band
-        (``reach``), within which a star is on it.
+        The seeing FWHM of the stretch's fits, px: the reach of a trail
+        beyond its band (``reach``), within which a source is on it.
 
     Returns
     -------
@@ -209,8 +209,7 @@ def trail_table(trails: list[Trail], x_start: float, fwhm: float):
     from astropy import units as u
     from astropy.table import Table
 
-    reach = float(np.asarray(getattr(fwhm, "value", fwhm)))
-    reach = reach if np.isfinite(reach) else 0.0  # no seeing fitted: the band alone
+    reach = float(fwhm)
     table = Table(
         {
             "x": [t.x + float(x_start) for t in trails],
