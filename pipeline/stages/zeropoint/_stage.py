@@ -591,7 +591,11 @@ def _interval_lines(
     for the run, with the range of its star counts and drops, says it
     once.  A run of one stretch reads as it always has.  ``ramp``: the
     stretches whose sources lie mostly in the start-of-scan ramp
-    (:func:`_ramp_stars`); their line says why they have few.
+    (:func:`_ramp_stars`); their line says why they have few, and when
+    that is all (FEW_STARS, bridged from the neighbours) it goes to the log,
+    not the problems: every night that starts clocking with its first block
+    has such stretches, and a problem on each would hide the nights with
+    one (``intervals.ecsv`` and the science images' ZERO_POINT bit keep it).
     """
     from astropy import units as u
 
@@ -625,7 +629,11 @@ def _interval_lines(
             if in_ramp
             else ""
         )
-        lines.append(f"{where}: zero point {what} ({names}; {stars} stars, drop {drops} mag){why}")
+        line = f"{where}: zero point {what} ({names}; {stars} stars, drop {drops} mag){why}"
+        if in_ramp and interpolated and flags == int(ZeroPointFlag.FEW_STARS):
+            log.info("%s", line)
+            continue
+        lines.append(line)
     return lines
 
 
@@ -754,5 +762,6 @@ STAGE = Stage(
     #    scale (detect's psf_scale, psf_scale_shifts; intervals' psf_scale)
     # 8: PARTIAL_EXPOSURE stars (the start-of-scan ramp's) left out of the fit
     # 9: TRAIL stars (on a satellite's trail) left out of the fit
-    version=9,
+    # 10: the start-of-scan ramp's bridged stretches logged, not problems
+    version=10,
 )
