@@ -252,26 +252,18 @@ def trail_pixels(trails, x: np.ndarray, n_y: int) -> np.ndarray:
     x = np.asarray(x, float)
     on = np.zeros((n_y, x.size), bool)
     for row in trails:
-        cx, cy, ux, uy = (
-            float(np.asarray(getattr(row[k], "value", row[k]))) for k in ("x", "y", "ux", "uy")
-        )
-        half_length, half_width, reach = (
-            float(np.asarray(getattr(row[k], "value", row[k])))
-            for k in ("half_length", "half_width", "reach")
-        )
-        along_max, across_max = half_length + reach, half_width + reach
-        # the band's bounding box, then the pixels in it
-        ends_x = cx + np.array([-1.0, 1.0]) * along_max * ux
-        ends_y = cy + np.array([-1.0, 1.0]) * along_max * uy
-        cols = np.flatnonzero((x >= ends_x.min() - across_max) & (x <= ends_x.max() + across_max))
-        y0 = max(int(np.floor(ends_y.min() - across_max)), 0)
-        y1 = min(int(np.ceil(ends_y.max() + across_max)) + 1, n_y)
+        value = {k: float(np.asarray(getattr(row[k], "value", row[k]))) for k in row.colnames}
+        reach = value.pop("reach")
+        trail = Trail(**value)
+        # the band's bounding box, then the pixels in it (on_trails)
+        along, across = trail.half_length + reach, trail.half_width + reach
+        xs = trail.x + np.array([-1.0, 1.0]) * along * trail.ux
+        ys = trail.y + np.array([-1.0, 1.0]) * along * trail.uy
+        cols = np.flatnonzero((x >= xs.min() - across) & (x <= xs.max() + across))
+        y0 = max(int(np.floor(ys.min() - across)), 0)
+        y1 = min(int(np.ceil(ys.max() + across)) + 1, n_y)
         if cols.size == 0 or y0 >= y1:
             continue
-        yy = np.arange(y0, y1, dtype=float)[:, None]
-        xx = x[cols][None, :]
-        along = (xx - cx) * ux + (yy - cy) * uy
-        across = -(xx - cx) * uy + (yy - cy) * ux
-        band = (np.abs(along) <= along_max) & (np.abs(across) <= across_max)
-        on[y0:y1, cols] |= band
+        yy, xx = np.meshgrid(np.arange(y0, y1, dtype=float), x[cols], indexing="ij")
+        on[y0:y1, cols] |= on_trails([trail], xx, yy, reach)
     return on
