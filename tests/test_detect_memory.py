@@ -125,8 +125,10 @@ def test_float32_planes_are_measured_as_their_float64_copies(float32_scene):
     The caller's image is left as it was; its variance is NaN where there
     is no data only when it is scratch space.  And the float32 planes save
     memory: measured 4.2 float64 planes of the image at the peak against
-    6.0 from float64 planes (3.7 with scratch space); a float64 plane more
-    (e.g. a copy of the residual for the second search) fails the test.
+    5.6 from float64 planes (6.0 before the seeing's width was fitted
+    without its saturated stars, whose peak came elsewhere; 3.7 with
+    scratch space); a float64 plane more (e.g. a copy of the residual for
+    the second search) fails the test.
     """
     image, variance, mask, kernels, n_clipped = float32_scene
     assert n_clipped > 20  # the scene does clip a star's core
@@ -143,7 +145,8 @@ def test_float32_planes_are_measured_as_their_float64_copies(float32_scene):
     assert np.isnan(scratch[1][:, :6]).all()
     assert np.array_equal(scratch[1][:, 6:], variance[:, 6:])
     plane = image.size * np.dtype(np.float64).itemsize
-    assert peak32 < peak64 - 1.4 * plane
+    assert peak32 < 4.7 * plane
+    assert peak32 < peak64 - plane
 
 
 def _stretch_products(image, variance, mask, kernels, x_start):
