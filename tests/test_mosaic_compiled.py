@@ -170,15 +170,20 @@ def test_spline_on_a_grid_matches_scipy(degree):
 FUSED = [(None, False), ((20.5, 150.5, -0.5, 120.5), False), ((20.5, 150.5, -0.5, 120.5), True)]
 
 
+@pytest.mark.parametrize("scale", [1.01, 1.25])
 @pytest.mark.parametrize(("core", "filled"), FUSED)
-def test_fused_resampling_matches_numpy(core, filled):
-    """Positions made line by line, pass 2 stored or merged in place, against the numpy path."""
+def test_fused_resampling_matches_numpy(core, filled, scale):
+    """Positions made line by line, pass 2 stored or merged in place, against the numpy path.
+
+    Night pixels of 1.01 tile pixels (averaged over each tile pixel) and of
+    1.25 (a finer tile: interpolated with the Keys taps).
+    """
     rng = np.random.default_rng(7)
     shape = (200, 220)
     image, variance, flags = _random_planes(rng, shape)
     image[40:43, :] = np.nan  # no data: NaN on the tile, flagged
     flags[90:92, 100:103] |= np.uint16(MaskBit.COSMIC_RAY)
-    wcs = night_wcs(shape, rotation=0.3, scale=1.01)
+    wcs = night_wcs(shape, rotation=0.3, scale=scale)
     target = tile(160)
     ours = resample_to_tile(image, variance, flags, wcs, target, core=core)
     theirs = resample_to_tile_numpy(image, variance, flags, wcs, target, core=core)

@@ -204,18 +204,28 @@ def test_the_keys_kernels_fourth_moment():
     assert sum(second) == pytest.approx(0.0, abs=1e-12)
 
 
-def test_a_mix_of_one_night_is_the_family_with_the_samples_cumulants():
-    mix = SeeingMix.of_nights([2.5], [3.0], [1.0], "moffat", 3.5)
+@pytest.mark.parametrize("pixel", [1.0, 1.25])
+def test_a_mix_of_one_night_is_the_family_with_the_samples_cumulants(pixel):
+    mix = SeeingMix.of_nights([2.5], [3.0], [pixel], "moffat", 3.5)
     sigmas, weights = mix.mixture()
     own_sigmas, own_weights = SeeingProfile(2.5, "moffat", 3.5).mixture()
     n = own_sigmas.size
-    # each of the family's Gaussians is a pair: the same flux and variance
-    # (pixels of the tile's size: no narrowing), the Keys kernel's fourth cumulant
+    # each of the family's Gaussians is a pair: the same flux, the variance and
+    # fourth cumulant of the night's pixel (a top-hat of width w: variance w**2
+    # / 12, fourth cumulant -w**4 / 120, common practice) beyond the tile's, and
+    # the resampler's: on pixels of the tile's size the cubic B-spline that
+    # averages a night over a tile pixel (four top-hats of 1), on a finer tile
+    # (a night's pixel of 1.25 tile pixels) the Keys kernel's fourth cumulant
+    if pixel == 1.0:
+        extra, extra_k4 = 4.0 / 12.0, -4.0 / 120.0
+    else:
+        extra = (pixel**2 - 1.0) / 12.0
+        extra_k4 = (1.0 - pixel**4) / 120.0 + KEYS_M4 * pixel**4
     for i in range(n):
         flux, variance, k4 = _cumulants(sigmas[[i, n + i]], weights[[i, n + i]])
         assert flux == pytest.approx(own_weights[i], rel=1e-12)
-        assert variance == pytest.approx(own_sigmas[i] ** 2, rel=1e-12)
-        assert k4 == pytest.approx(KEYS_M4, rel=1e-9)
+        assert variance == pytest.approx(own_sigmas[i] ** 2 + extra, rel=1e-12)
+        assert k4 == pytest.approx(extra_k4, rel=1e-9)
     two = SeeingMix.of_nights([2.0, 3.0], [1.0, 3.0], [0.5, 0.5], "gaussian", 3.5)
     assert two.fwhm == pytest.approx(2.75)  # the weighted mean FWHM
     sigmas, weights = two.with_fwhm(5.5).mixture()

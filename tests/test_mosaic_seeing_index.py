@@ -31,9 +31,14 @@ NIGHT_SHAPE = (80, 80)
 CONFIGURED = {"seeing_shape": "moffat", "moffat_beta": 3.5}
 
 
-def _product(night: int, seeing: float, beta: float | None, variance: float = 100.0):
-    """A science product of one night (its header cards) read as the mosaic reads it."""
-    wcs = night_wcs(NIGHT_SHAPE, rotation=0.2 * night, scale=1.0)
+def _product(night: int, seeing: float, beta: float | None, variance: float = 100.0, scale=1.2):
+    """A science product of one night (its header cards) read as the mosaic reads it.
+
+    Its pixels are 1.2 of the tile's: a tile finer than the night is
+    interpolated, which blurs the stars least (the scenes of saturated stars
+    here are drawn without any resampling).
+    """
+    wcs = night_wcs(NIGHT_SHAPE, rotation=0.2 * night, scale=scale)
     header = wcs.to_header()
     header["PHOTZP"] = 25.0
     header["SEEING"] = seeing
@@ -113,23 +118,26 @@ def test_saturated_stars_of_index_3_come_out_right_with_the_nights_cards():
     Detect's scene of saturated stars (``tests/test_detect_seeing_index.py``:
     seeing of index 3.0, FWHM 3.2 px, stars 10-100 times the flux that fills
     the well) fitted with the mix of a tile of 1 arcsec pixels from a night of
-    the same pixels whose science product says SEEING 3.2 arcsec, SEEBETA 3.0
-    (self-consistency: the simulator's renderer).  Measured (seeds 1-3): the
-    mix of the card's index puts the stars within 0.014 mag of the truth;
-    the configured 3.5 (the mix before the card) 0.09-0.20 mag too bright for
+    1.12 arcsec pixels whose science product says SEEING 3.2 arcsec, SEEBETA
+    3.0 (self-consistency: the simulator's renderer).  Measured: the mix of
+    the card's index puts the stars within 0.046 mag of the truth (the mix
+    holds the interpolation's blur, which the scene, drawn without any
+    resampling, lacks: 0.014 while tiles of the nights' pixels were
+    interpolated, whose taps' kurtosis the model holds was smaller); the
+    configured 3.5 (the mix before the card) 0.11-0.22 mag too bright for
     the stars of 30-100 times.
     """
     scene = _scene(3.0, seed=1)
 
     def magnitude_errors(beta_card):
-        built = mosaic_tile([_product(0, 3.2, beta_card)], TILE)
+        built = mosaic_tile([_product(0, 3.2, beta_card, scale=1.12)], TILE)
         mix = _seeing_mix(built, CONFIGURED)
         result = detect(scene.image, scene.variance, scene.mask, scene.kernels, seeing_profile=mix)
         ratios, _ = _saturated_fluxes(result.catalog)
         return -2.5 * np.log10(ratios), result.catalog.meta["seeing_beta"]
 
     errors, beta = magnitude_errors(3.0)
-    assert np.max(np.abs(errors)) < 0.03
+    assert np.max(np.abs(errors)) < 0.05
     assert beta == 3.0  # the catalogue's index: the night's
     errors, beta = magnitude_errors(None)
     assert np.min(errors) < -0.15  # before: the brightest ones 0.2 mag bright

@@ -295,8 +295,9 @@ KEYS_M4 = -0.3
 def resampling_cumulants(pixel: float) -> tuple[float, float]:
     """Variance and fourth cumulant of the resampler's kernel on the tile, in tile pixels.
 
-    For a night's ``pixel`` (tile pixels): up to ``STRETCH_FROM`` (1.45)
-    night pixels per tile pixel, the Keys kernel on the night's pixels,
+    For a night's ``pixel`` (tile pixels): up to ``STRETCH_FROM`` (0.9)
+    night pixels per tile pixel (a tile finer than the night), the Keys
+    kernel on the night's pixels,
     variance 0 and fourth cumulant ``M4 pixel**4``; beyond, the cubic
     B-spline one tile pixel wide that averages the night over each tile
     pixel (:func:`pipeline.mosaic._resample_jit._sample_wide`), four
@@ -323,9 +324,9 @@ class SeeingMix(SeeingProfile):
     The model of detect integrates each Gaussian over a tile pixel, but a
     tile pixel is the resampled night (:mod:`pipeline.mosaic._resample`),
     whose stars are integrated over the night's own pixels and then either
-    interpolated with the Keys cubic kernel (a night of up to 1.45 of the
-    tile's pixels) or averaged over the tile's pixel with the cubic
-    B-spline (a finer one).  Along each axis, in tile pixels, a star's
+    interpolated with the Keys cubic kernel (a night's pixel over 1.1 of
+    the tile's: a finer tile) or averaged over the tile's pixel with the
+    cubic B-spline (any other).  Along each axis, in tile pixels, a star's
     samples are the seeing convolved with a top-hat of the night's pixel
     ``s`` (the night's pixel over the tile's) and the resampler's kernel,
     of variance ``r2`` and fourth cumulant ``r4``

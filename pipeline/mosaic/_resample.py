@@ -31,19 +31,21 @@ Coarser tiles
     the samples hardly count: a star's sky-limited flux error grew 1.49
     times over the night's on a tile of 1.92 night pixels (0.516 arcsec
     nights on 1 arcsec tiles), 1.06 times at 1.33.  Beyond
-    ``STRETCH_FROM`` (1.45, :mod:`pipeline.mosaic._resample_jit`, where the
-    two cross) the input is averaged over the output pixel instead, as
+    ``STRETCH_FROM`` (0.9, :mod:`pipeline.mosaic._resample_jit`: from
+    there the taps' blur, which follows the phase at which each star is
+    sampled, swings a tile's PSF fluxes by several per cent at steps near
+    1) the input is averaged over the output pixel instead, as
     anti-aliasing filters do (common practice): weights ``J B(d / J) / sum
     B(d / J)`` over the input pixels within ``2 J`` (``d`` the distance in
     input pixels), ``B`` the cubic B-spline, which is non-negative (no
     ringing around a star), weighs every input pixel evenly to 0.2 % and,
     normalised, keeps a flat input flat.  The flux error is then 1.12 times
-    the night's at any step (the star blurred by the output pixel, the
-    noise correlated over it), 1.01 on a tile of the night's pixels.  A
+    the night's at steps of 1.33-1.92 (the star blurred by the output pixel,
+    the noise correlated over it), 1.01-1.03 on a tile of the night's pixels.  A
     co-added star is the night's star convolved with the B-spline one tile
     pixel wide, which the tile catalogue's seeing model holds
-    (:class:`pipeline.mosaic._kernels.SeeingMix`).  Tiles up to 1.45 night
-    pixels are resampled exactly as before.
+    (:class:`pipeline.mosaic._kernels.SeeingMix`).  Tiles finer than 0.9
+    night pixels keep the taps: the phase turns within a star there.
 Variance and flags
     Variance is propagated as ``sum(w**2 var)``: exact per pixel for
     independent input pixels, since each pass acts along its own axis.  Flags

@@ -110,6 +110,8 @@ TILE_STAGE = Stage(
     # 13: detect's psf_scale, psf_scale_err columns (NaN: not measured on a tile)
     # 14: detect's flags PARTIAL_EXPOSURE (a core on LOW_EXPOSURE) and TRAIL
     # 15: the science images' TRAIL pixels left out (ignore_flags)
-    version=15,
+    # 16: tiles from 0.9 night pixels up average the nights (was 1.45): the
+    #     interpolation's phase swung PSF fluxes on tiles of the nights' pixels
+    version=16,
     description="One tile of a mosaic: co-add, catalogue, night table, quick look.",
 )
