@@ -64,8 +64,10 @@ class MaskBit(enum.IntFlag):
         the night, or too small an overlap).  Image and variance are NaN.
     ZERO_POINT
         Set by the science stage: the pixel lies in a stretch whose zero point
-        is unreliable (a cloud, a jump in the stars' scatter) or was bridged
-        from its neighbours for want of reference stars.  Values are kept.
+        is unreliable (a cloud, a jump in the stars' scatter; bridged from its
+        neighbours, or not).  A stretch bridged only for want of reference
+        stars is not marked (its ``ZPFLAGS``, ``ZPINTERP`` and ``ZPERR`` cards
+        say it).  Values are kept.
     TRAIL
         Set by the science stage: the pixel lies on a satellite's or
         aircraft's trail that detect found in the stretch (within a seeing

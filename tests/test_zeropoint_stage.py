@@ -586,6 +586,9 @@ def test_pixels_on_a_trail_carry_the_trail_bit():
 
 
 def test_pixels_of_an_unreliable_stretch_carry_the_zero_point_bit():
+    for flag in (ZeroPointFlag.CLOUD, ZeroPointFlag.SCATTER | ZeroPointFlag.FEW_STARS):
+        flags = _science(2, 23.7, flags=int(flag), interpolated=True)["FLAGS"].data
+        assert np.all(has_bits(flags, MaskBit.ZERO_POINT))
     hdul = _science(2, 23.7, flags=int(ZeroPointFlag.CLOUD))
     assert np.all(has_bits(hdul["FLAGS"].data, MaskBit.ZERO_POINT))
     assert hdul["FLAGS"].header["FLAGBIT9"] == "ZERO_POINT"
@@ -614,6 +617,19 @@ def test_the_science_product_carries_the_moffat_index_detect_used():
     for beta in (np.nan, None):
         header = _science(1, 24.0, beta=beta)["FLUX"].header
         assert "SEEBETA" not in header and "SEEING" in header
+
+
+def test_a_stretch_of_few_stars_alone_keeps_its_pixels_unflagged():
+    """FEW_STARS alone (bridged, or the night's fit): cards say so, the pixels are not ZERO_POINT.
+
+    Its few stars showed no cloud (they would have been flagged CLOUD too),
+    and ``ZPERR`` says how well its zero point is known; marked, a sparse
+    night's every pixel was, and every source of its mosaic NEAR_FLAGGED.
+    """
+    hdul = _science(2, 23.7, flags=int(ZeroPointFlag.FEW_STARS), interpolated=True)
+    assert not np.any(has_bits(hdul["FLAGS"].data, MaskBit.ZERO_POINT))
+    header = hdul["FLUX"].header
+    assert header["ZPFLAGS"] == int(ZeroPointFlag.FEW_STARS) and header["ZPINTERP"]
 
 
 def _stand_in(name, scope, requires=(), defines_rows=False):

@@ -7,7 +7,8 @@ interpolated; :func:`~pipeline.stages.zeropoint.column_times`), so that a
 source of magnitude ``m`` sums to ``10**(0.4 (PHOTZP - m))`` on every night
 and nights can be stacked.  The variance is multiplied by the factor's
 square; the flags are carried, plus :attr:`~pipeline.masks.MaskBit.ZERO_POINT`
-on every pixel of a stretch whose zero point the zeropoint stage flagged, and
+on every pixel of a stretch whose zero point is doubtful (:func:`doubtful_zero_point`:
+the zeropoint stage flagged a cloud or a scatter), and
 :attr:`~pipeline.masks.MaskBit.TRAIL` on the pixels of the satellite trails
 detect found (its ``trails`` product).
 The solved WCS of astrometry's ``wcs`` product replaces rectify's nominal
@@ -71,7 +72,12 @@ from pipeline.products import (
 )
 from pipeline.stages.base import BLOCK_INDEX, Stage
 from pipeline.stages.detect._trails import trail_pixels
-from pipeline.stages.zeropoint import column_times, night_line_time, scale_to_zero_point
+from pipeline.stages.zeropoint import (
+    ZeroPointFlag,
+    column_times,
+    night_line_time,
+    scale_to_zero_point,
+)
 
 if TYPE_CHECKING:
     from astropy.io import fits
@@ -141,6 +147,23 @@ def replace_wcs(header: fits.Header, cards) -> fits.Header:
                 "astrometry's wcs product for this stretch."
             )
     return out
+
+
+#: The zero-point flags that make a stretch's calibration doubtful, pixel by
+#: pixel: a cloud (its light lost by an amount the zero point follows only
+#: so far) or stars scattering beyond the night's.  ``FEW_STARS`` alone is not
+#: among them: the stretch's zero point is then bridged from its neighbours,
+#: or the night's fit over all its stars, and its few stars showed no cloud
+#: (they would have been flagged ``CLOUD`` too); its ``ZPERR`` says how well
+#: it is known.  Marking such pixels left every source of a sparse field's
+#: mosaic NEAR_FLAGGED (a simulated 768-column night whose 9 stretches held 2-9
+#: stars each: every stretch bridged, every tile source flagged).
+DOUBTFUL = int(ZeroPointFlag.CLOUD | ZeroPointFlag.SCATTER)
+
+
+def doubtful_zero_point(flags: int) -> bool:
+    """Whether a stretch's zero-point flags mark its pixels ZERO_POINT (:data:`DOUBTFUL`)."""
+    return bool(int(flags) & DOUBTFUL)
 
 
 def calibrate_image(
@@ -243,7 +266,7 @@ def _run(*, inputs, options: ScienceOptions, context) -> dict:
         z,
         target_zero_point=target,
         exposure=exposure,
-        unreliable=bool(flags) or interpolated,
+        unreliable=doubtful_zero_point(flags),
     )
     trails = inputs["detect"]["trails"]
     if len(trails):
@@ -306,6 +329,7 @@ STAGE = Stage(
     # smear kernels beside the image, for the mosaic's tile catalogues;
     # 4: the SEEBETA card (detect's Moffat index), which the mosaic's seeing mix uses
     # 5: TRAIL on the pixels of detect's trails
-    version=5,
+    # 6: ZERO_POINT only on a stretch flagged CLOUD or SCATTER, not FEW_STARS alone
+    version=6,
     description="Calibrated images at one fixed zero point, with the solved WCS.",
 )

@@ -595,7 +595,7 @@ def _interval_lines(
     that is all (FEW_STARS, bridged from the neighbours) it goes to the log,
     not the problems: every night that starts clocking with its first block
     has such stretches, and a problem on each would hide the nights with
-    one (``intervals.ecsv`` and the science images' ZERO_POINT bit keep it).
+    one (``intervals.ecsv`` and the science images' ``ZPFLAGS`` card keep it).
     """
     from astropy import units as u
 
