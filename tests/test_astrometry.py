@@ -591,6 +591,23 @@ def test_too_few_matches_fail_with_counts():
         )
     assert info.value.counts["reference_on_chip"] == 8
     assert str(info.value).index("too shallow") < str(info.value).index("site position")
+    # a sparse field: a few more reference stars on the chip than a solution
+    # needs, most matched where the config puts them, but five of them not
+    # detected: the message says the field is too sparse, before the site
+    refs = night.star[night.star >= 0][:25]
+    keep = ~np.isin(night.star, refs[20:])
+    with pytest.raises(AstrometryError, match="too sparse a field") as info:
+        solve_night(
+            night.x[keep],
+            night.y[keep],
+            night.ref_ra[refs],
+            night.ref_dec[refs],
+            night.nominal,
+            night.frame,
+            min_matches=22,
+        )
+    assert info.value.counts["reference_on_chip"] == 25
+    assert str(info.value).index("too sparse") < str(info.value).index("site position")
     # no detection at all (every stretch flagged, e.g. a sky above the full
     # well): it used to crash in the predictor ("cannot reshape array of size 0")
     with pytest.raises(AstrometryError, match="holds no detection") as info:

@@ -165,3 +165,18 @@ def test_nights_with_the_same_run_section_share_one_pool(tmp_path, monkeypatch):
     assert given["n3"] is None  # run_night makes its own from its run section
     assert made[0].closed  # and the shared pool ends with the nights
     assert len(threads) >= 1 and all(made[0].threads_alive)
+
+
+def test_a_night_without_products_is_named_in_the_log_not_dumped(tmp_path, caplog):
+    """A night whose products the page lacks is logged by its name, not its whole config."""
+    import logging
+
+    from pipeline.config import load_config
+
+    (tmp_path / "n1.yaml").write_text(NIGHT.format(name="n1", executor="serial"))
+    night = load_config(tmp_path / "n1.yaml")
+    with caplog.at_level(logging.INFO, logger="pipeline.runner._strip"):
+        assert _strip._night_products(night) == {}
+    lines = [r.getMessage() for r in caplog.records]
+    assert lines and all(line.startswith("night n1: no ") for line in lines), lines
+    assert not any("Config(" in line for line in lines)

@@ -198,7 +198,9 @@ def _night_products(night: Config) -> dict[str, Any]:
         try:
             products[key] = open_product(night, stage, "night", name)
         except (ValueError, OSError) as exc:  # not made, failed, damaged
-            log.info("night %s: no %s for the page across the nights (%s)", night, key, exc)
+            log.info(
+                "night %s: no %s for the page across the nights (%s)", night.night.name, key, exc
+            )
     return products
 
 

@@ -225,6 +225,22 @@ def _failure(counts: dict, reason: str) -> AstrometryError:
             "a narrow band); give a deeper one (stages.astrometry.reference: source 'file', "
             "e.g. a Gaia extract of the band) or lower stages.astrometry.min_matches"
         )
+    elif counts.get("reference_on_chip", np.inf) < 2 * counts["min_matches"] and max(
+        counts.get("matched_nominal", 0), counts.get("search_peak", 0)
+    ) >= 0.5 * counts.get("reference_on_chip", np.inf):
+        # Most of the few stars on the chip matched where the config puts them
+        # (or agreed on one offset in the search): the geometry is right, the
+        # field too sparse (a simulated night of 27 reference stars on the
+        # chip, 23 matched, 19 kept by the fit, failed with the site and the
+        # clock named first).
+        agreed = max(counts.get("matched_nominal", 0), counts.get("search_peak", 0))
+        causes.append(
+            f"only {counts['reference_on_chip']} reference stars fall on the chip, of which "
+            f"{agreed} matched at one offset from the configured geometry: too sparse a "
+            f"field (or too short a night) for min_matches={counts['min_matches']} once the "
+            "fit drops its outliers; give a deeper reference catalogue (stages.astrometry."
+            "reference) or lower stages.astrometry.min_matches"
+        )
     if counts.get("detections", 0) < 2 * counts.get("min_matches", 0):
         causes.append("too few detections (clouds, bad focus or a wrong detection threshold)")
     causes.append(
