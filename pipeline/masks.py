@@ -111,7 +111,7 @@ BIT_MEANINGS: dict[MaskBit, str] = {
     MaskBit.GAP: "no raw data for this row; no data",
     MaskBit.LOW_EXPOSURE: "start-of-scan ramp: partial exposure",
     MaskBit.OUTSIDE: "rectify drew on pixels beyond the data",
-    MaskBit.ZERO_POINT: "zero point unreliable or interpolated",
+    MaskBit.ZERO_POINT: "zero point doubtful: a cloud or a scatter",
     MaskBit.NIGHT_LEFT_OUT: "a night with data here left out of the co-add",
     MaskBit.TRAIL: "on a satellite or aircraft trail",
 }
